@@ -1,0 +1,13 @@
+"""livematch: live map matching and alerts for vehicle position feeds.
+
+The public API of the exact Fréchet toolkit::
+
+    from livematch import frechet_decide, frechet_distance
+    from livematch import discrete_frechet_distance, hausdorff_distance
+"""
+
+from __future__ import annotations
+
+__version__ = "0.1.0"
+
+__all__ = ["__version__"]

@@ -1,0 +1,166 @@
+"""The directed road-segment graph every matcher works on.
+
+A :class:`RoadNetwork` is a directed graph whose edges are straight *segments*: every
+shape point of a road is a vertex, a two-way road gives one segment per direction and a
+one-way road only the legal one. Each segment keeps its source ids (``way``,
+``from_node``, ``to_node``) so that any output can be checked against the source map.
+
+Hot-path data lives in flat numpy arrays (vertex coordinates, segment endpoints, CSR
+adjacency); the spatial index (shapely's STRtree) is built lazily and is needed only to
+start or restart a match, because the sweep takes its next candidates from adjacency.
+
+Building a network from a map file is the job of :mod:`livematch.mapdata`; saving and
+loading the compiled ``.lmnet`` file lives there too (I/O stays out of the core).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+import shapely
+
+from livematch.core.geometry import Projection
+
+IntArray = npt.NDArray[np.int64]
+Int32Array = npt.NDArray[np.int32]
+FloatArray = npt.NDArray[np.float64]
+
+
+@dataclass(eq=False)
+class RoadNetwork:
+    """Directed segment graph in projected metres.
+
+    Attributes:
+        projection: the CRS of ``node_xy``.
+        node_xy: (V, 2) float64 vertex coordinates in metres.
+        node_id: (V,) int64 source node ids (OSM node id; synthetic for GeoJSON).
+        seg_from, seg_to: (E,) int32 vertex indices of each directed segment.
+        seg_way: (E,) int64 source road id (OSM way id or GeoJSON feature id).
+        seg_road: (E,) int32 index into ``roads`` (name/ref/class of the road), one per way.
+        roads: list of dicts ``{"name": str|None, "ref": str|None, "highway": str}``.
+        seg_len: (E,) float64 segment length in metres.
+        out_ptr, out_seg: CSR adjacency: the segments leaving vertex v are
+            ``out_seg[out_ptr[v]:out_ptr[v + 1]]``.
+        in_ptr, in_seg: CSR of the segments entering each vertex.
+        seg_twin: (E,) int32: the segment of the same road in the opposite direction
+            (same vertices reversed), or -1 for one-way segments.
+        source: a short description of where the network came from (for ``info``).
+    """
+
+    projection: Projection
+    node_xy: FloatArray
+    node_id: IntArray
+    seg_from: Int32Array
+    seg_to: Int32Array
+    seg_way: IntArray
+    seg_road: Int32Array
+    roads: list[dict[str, Any]]
+    seg_len: FloatArray = field(init=False)
+    out_ptr: Int32Array = field(init=False)
+    out_seg: Int32Array = field(init=False)
+    in_ptr: Int32Array = field(init=False)
+    in_seg: Int32Array = field(init=False)
+    seg_twin: Int32Array = field(init=False)
+    source: str = ""
+    _tree: Any = field(default=None, init=False, repr=False)
+
+    def __post_init__(self) -> None:
+        self.node_xy = np.ascontiguousarray(self.node_xy, dtype=np.float64).reshape(-1, 2)
+        self.node_id = np.ascontiguousarray(self.node_id, dtype=np.int64)
+        self.seg_from = np.ascontiguousarray(self.seg_from, dtype=np.int32)
+        self.seg_to = np.ascontiguousarray(self.seg_to, dtype=np.int32)
+        self.seg_way = np.ascontiguousarray(self.seg_way, dtype=np.int64)
+        self.seg_road = np.ascontiguousarray(self.seg_road, dtype=np.int32)
+        n_v, n_e = len(self.node_xy), len(self.seg_from)
+        if not (len(self.node_id) == n_v and len(self.seg_to) == n_e == len(self.seg_way)):
+            raise ValueError("RoadNetwork arrays have inconsistent lengths")
+        if n_e and (min(self.seg_from.min(), self.seg_to.min()) < 0
+                    or max(self.seg_from.max(), self.seg_to.max()) >= n_v):
+            raise ValueError("RoadNetwork segment endpoints refer to missing vertices")
+        d = self.node_xy[self.seg_to] - self.node_xy[self.seg_from]
+        self.seg_len = np.hypot(d[:, 0], d[:, 1])
+        self.out_ptr, self.out_seg = _csr(self.seg_from, n_v)
+        self.in_ptr, self.in_seg = _csr(self.seg_to, n_v)
+        self.seg_twin = _twins(self.seg_from, self.seg_to, n_v)
+
+    @property
+    def n_vertices(self) -> int:
+        """Number of vertices (shape points)."""
+        return len(self.node_xy)
+
+    @property
+    def n_segments(self) -> int:
+        """Number of directed segments."""
+        return len(self.seg_from)
+
+    def out_segments(self, vertex: int) -> Int32Array:
+        """Segments leaving ``vertex``."""
+        return self.out_seg[self.out_ptr[vertex]:self.out_ptr[vertex + 1]]
+
+    def in_segments(self, vertex: int) -> Int32Array:
+        """Segments entering ``vertex``."""
+        return self.in_seg[self.in_ptr[vertex]:self.in_ptr[vertex + 1]]
+
+    def segment_coords(self, segment: int) -> tuple[float, float, float, float]:
+        """(ax, ay, bx, by) of a segment, metres."""
+        a = self.node_xy[self.seg_from[segment]]
+        b = self.node_xy[self.seg_to[segment]]
+        return float(a[0]), float(a[1]), float(b[0]), float(b[1])
+
+    def source_ids(self, segment: int) -> tuple[int, int, int]:
+        """(way, from_node, to_node) source ids of a segment."""
+        return (
+            int(self.seg_way[segment]),
+            int(self.node_id[self.seg_from[segment]]),
+            int(self.node_id[self.seg_to[segment]]),
+        )
+
+    def road_name(self, segment: int) -> str | None:
+        """The road's name (or its ref when unnamed), None when neither is known."""
+        road = self.roads[int(self.seg_road[segment])]
+        name = road.get("name") or road.get("ref")
+        return str(name) if name else None
+
+    def segments_near(self, x: float, y: float, radius: float) -> Int32Array:
+        """Segments whose closest point lies within ``radius`` metres of (x, y), sorted.
+
+        Uses an STRtree built on first use; the matcher calls this only to start or
+        restart, never per fix on the hot path.
+        """
+        if self._tree is None:
+            self._tree = shapely.STRtree(self._segment_lines())
+        if self.n_segments == 0:
+            return np.empty(0, dtype=np.int32)
+        hits = self._tree.query(shapely.Point(x, y), predicate="dwithin", distance=radius)
+        return np.sort(np.asarray(hits, dtype=np.int32))
+
+    def _segment_lines(self) -> npt.NDArray[np.object_]:
+        coords = np.stack([self.node_xy[self.seg_from], self.node_xy[self.seg_to]], axis=1)
+        return np.asarray(shapely.linestrings(coords))
+
+
+def _csr(keys: Int32Array, n: int) -> tuple[Int32Array, Int32Array]:
+    """CSR grouping of segment indices by vertex ``keys`` (stable, so ids stay sorted)."""
+    order = np.argsort(keys, kind="stable").astype(np.int32)
+    counts = np.bincount(keys, minlength=n)
+    ptr = np.zeros(n + 1, dtype=np.int32)
+    np.cumsum(counts, out=ptr[1:])
+    return ptr, order
+
+
+def _twins(seg_from: Int32Array, seg_to: Int32Array, n_v: int) -> Int32Array:
+    """For each segment a->b, the index of a segment b->a, or -1."""
+    twin = np.full(len(seg_from), -1, dtype=np.int32)
+    if len(seg_from) == 0:
+        return twin
+    key = seg_from.astype(np.int64) * n_v + seg_to
+    rev = seg_to.astype(np.int64) * n_v + seg_from
+    order = np.argsort(key, kind="stable")
+    pos = np.searchsorted(key[order], rev)
+    pos = np.minimum(pos, len(key) - 1)
+    found = key[order][pos] == rev
+    twin[found] = order[pos[found]].astype(np.int32)
+    return twin

@@ -1,0 +1,1 @@
+"""Position messages and replay logs: decoding, validation, reading and writing."""

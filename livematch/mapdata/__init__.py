@@ -1,0 +1,1 @@
+"""Road-network sources (OpenStreetMap, GeoJSON) and the compiled network file."""

@@ -1,0 +1,1 @@
+"""The live daemon: MQTT transport, state stores, metrics and health (the shell)."""
