@@ -1,0 +1,135 @@
+"""What the core emits for each fix: assignments, commits, alerts and filter verdicts.
+
+Events carry segment indices and projected metres; :func:`to_record` turns one into the
+JSON-ready dict of the published contract (WGS84, source ids), which is pinned by tests
+and documented in the README. The daemon publishes these records and ``livematch replay``
+writes them, so both produce the same bytes for the same input.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from livematch.core.network import RoadNetwork
+
+
+@dataclass(frozen=True, slots=True)
+class Assignment:
+    """The live road assignment of one accepted fix (provisional: ``committed`` false).
+
+    ``eps_m`` with ``window_fixes`` / ``window_s`` is the certificate: the last
+    ``window_fixes`` fixes (spanning ``window_s`` seconds) lie within Fréchet distance
+    ``eps_m`` of a road path ending on ``segment``.
+    """
+
+    vehicle: str
+    t: float
+    segment: int
+    offset_m: float
+    x: float
+    y: float
+    eps_m: float
+    window_fixes: int
+    window_s: float
+    kind: str = field(default="assignment", init=False)
+
+
+@dataclass(frozen=True, slots=True)
+class MatchedFix:
+    """The final answer for one fix inside a commit."""
+
+    t: float
+    segment: int
+    offset_m: float
+    x: float
+    y: float
+
+
+@dataclass(frozen=True, slots=True)
+class Commit:
+    """A settled stretch: final answers for some fixes and the connected path driven."""
+
+    vehicle: str
+    fixes: tuple[MatchedFix, ...]
+    path: tuple[int, ...]
+    kind: str = field(default="commit", init=False)
+
+
+@dataclass(frozen=True, slots=True)
+class Alert:
+    """An alert of one ``alert_kind`` (e.g. ``off_route``) with the facts behind it."""
+
+    vehicle: str
+    t: float
+    alert_kind: str
+    facts: dict[str, Any]
+    kind: str = field(default="alert", init=False)
+
+
+@dataclass(frozen=True, slots=True)
+class Filtered:
+    """A fix the core refused before the sweep, with a reason code (counted, not published)."""
+
+    vehicle: str
+    t: float
+    reason: str
+    kind: str = field(default="filtered", init=False)
+
+
+Event = Assignment | Commit | Alert | Filtered
+
+
+def _segment_record(network: RoadNetwork, segment: int) -> dict[str, int]:
+    way, from_node, to_node = network.source_ids(segment)
+    return {"way": way, "from_node": from_node, "to_node": to_node}
+
+
+def _lonlat(network: RoadNetwork, x: float, y: float) -> tuple[float, float]:
+    lon, lat = network.projection.to_lonlat(np.array([x]), np.array([y]))
+    return round(float(lon[0]), 7), round(float(lat[0]), 7)
+
+
+def to_record(event: Event, network: RoadNetwork) -> dict[str, Any]:
+    """The JSON-ready published form of an event (the output contract).
+
+    Coordinates are rounded to 1e-7 degree (about 1 cm) and metres to 1 mm, so that the
+    output bytes are stable across platforms.
+    """
+    if isinstance(event, Assignment):
+        lon, lat = _lonlat(network, event.x, event.y)
+        return {
+            "vehicle": event.vehicle,
+            "time": event.t,
+            "lat": lat,
+            "lon": lon,
+            **_segment_record(network, event.segment),
+            "offset_m": round(event.offset_m, 3),
+            "road": network.road_name(event.segment),
+            "eps_m": event.eps_m,
+            "window_fixes": event.window_fixes,
+            "window_s": round(event.window_s, 3),
+            "committed": False,
+        }
+    if isinstance(event, Commit):
+        fixes = []
+        for f in event.fixes:
+            lon, lat = _lonlat(network, f.x, f.y)
+            fixes.append({
+                "time": f.t,
+                "lat": lat,
+                "lon": lon,
+                **_segment_record(network, f.segment),
+                "offset_m": round(f.offset_m, 3),
+            })
+        return {
+            "vehicle": event.vehicle,
+            "fixes": fixes,
+            "path": [_segment_record(network, s) for s in event.path],
+        }
+    if isinstance(event, Alert):
+        return {"vehicle": event.vehicle, "time": event.t, "kind": event.alert_kind,
+                **event.facts}
+    return {"vehicle": event.vehicle, "time": event.t, "reason": event.reason}
