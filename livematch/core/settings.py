@@ -1,0 +1,74 @@
+"""Settings of the per-vehicle tracker, validated at construction.
+
+The shell maps the ``[matcher]`` section of a TOML configuration file onto
+:class:`MatchSettings` key by key; :meth:`MatchSettings.problems` lists what is wrong in
+terms of those keys so that the config loader can name the file and the key.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, fields
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class MatchSettings:
+    """How the online matcher decides, commits and filters. Units: metres, seconds.
+
+    Attributes:
+        eps_levels: the eps ladder, strictly increasing, metres. The smallest level still
+            alive decides. 15 / 30 / 60 m covers good GNSS in the open, urban multipath
+            and degraded canyons (common practice for consumer GNSS error, from memory).
+        max_lag_fixes, max_lag_s: a candidate path older than this is committed even
+            while several candidates are alive (the best one wins); bounds state size.
+        max_speed_mps: a fix implying a faster move from the previous accepted fix is an
+            impossible jump and is filtered (60 m/s = 216 km/h).
+        max_accuracy_m: fixes reporting a worse horizontal accuracy are filtered.
+        reorder_fixes: how many fixes to hold back to put late arrivals in order
+            (0 = no hold-back: a late fix is filtered as out of order).
+        gap_s, gap_m: a step longer than either is a gap, bridged by routing.
+        bridge_speed_mps: the plausible speed bounding a bridged route's length.
+        off_network_s: a vehicle with no road within the largest eps for this long is
+            off the network.
+    """
+
+    eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
+    max_lag_fixes: int = 60
+    max_lag_s: float = 120.0
+    max_speed_mps: float = 60.0
+    max_accuracy_m: float = 150.0
+    reorder_fixes: int = 0
+    gap_s: float = 45.0
+    gap_m: float = 400.0
+    bridge_speed_mps: float = 40.0
+    off_network_s: float = 30.0
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
+
+    def problems(self) -> list[tuple[str, str]]:
+        """Every invalid value as (key, what was expected, with the value found)."""
+        out: list[tuple[str, str]] = []
+        eps = self.eps_levels
+        if not eps:
+            out.append(("eps_levels", "must list at least one level, got []"))
+        elif any(not math.isfinite(e) or e <= 0 for e in eps):
+            out.append(("eps_levels", f"must be positive metres, got {list(eps)}"))
+        elif any(b <= a for a, b in zip(eps, eps[1:], strict=False)):
+            out.append(("eps_levels", f"must be strictly increasing, got {list(eps)}"))
+        positive = ("max_lag_s", "max_speed_mps", "max_accuracy_m", "gap_s", "gap_m",
+                    "bridge_speed_mps", "off_network_s")
+        for name in positive:
+            value = getattr(self, name)
+            if not (isinstance(value, int | float) and math.isfinite(value) and value > 0):
+                out.append((name, f"must be a positive number, got {value!r}"))
+        if not (isinstance(self.max_lag_fixes, int) and self.max_lag_fixes >= 2):
+            out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
+        if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):
+            out.append(("reorder_fixes", f"must be an integer 0..32, got {self.reorder_fixes!r}"))
+        return out
+
+    @classmethod
+    def keys(cls) -> tuple[str, ...]:
+        """The configuration keys this section accepts."""
+        return tuple(f.name for f in fields(cls))
