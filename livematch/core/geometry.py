@@ -63,7 +63,7 @@ class Projection:
     @classmethod
     def utm(cls, lon0: float, lat0: float) -> Projection:
         """The WGS84 UTM zone containing (lon0, lat0) (EPSG 326xx north, 327xx south)."""
-        zone = min(60, max(1, int(math.floor((lon0 + 180.0) / 6.0)) + 1))
+        zone = min(60, max(1, math.floor((lon0 + 180.0) / 6.0) + 1))
         return cls(f"EPSG:{(32600 if lat0 >= 0 else 32700) + zone}")
 
     @classmethod

@@ -7,6 +7,7 @@ terms of those keys so that the config loader can name the file and the key.
 
 from __future__ import annotations
 
+import itertools
 import math
 from dataclasses import dataclass, fields
 
@@ -30,6 +31,12 @@ class MatchSettings:
         bridge_speed_mps: the plausible speed bounding a bridged route's length.
         off_network_s: a vehicle with no road within the largest eps for this long is
             off the network.
+        sigma_m: GNSS error scale of the path cost's distance term (metres); 5 m is a
+            typical open-sky consumer receiver (common practice, from memory).
+        beta_m: scale of the path cost's term for the difference between route length
+            and straight-line step length (metres), as in Newson & Krumm (2009).
+        turn_back_cost: cost charged per U-turn on a candidate path (unitless, in the
+            same units as the other terms: one U-turn weighs like a 2 sigma miss).
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -42,6 +49,9 @@ class MatchSettings:
     gap_m: float = 400.0
     bridge_speed_mps: float = 40.0
     off_network_s: float = 30.0
+    sigma_m: float = 5.0
+    beta_m: float = 10.0
+    turn_back_cost: float = 2.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -54,16 +64,18 @@ class MatchSettings:
             out.append(("eps_levels", "must list at least one level, got []"))
         elif any(not math.isfinite(e) or e <= 0 for e in eps):
             out.append(("eps_levels", f"must be positive metres, got {list(eps)}"))
-        elif any(b <= a for a, b in zip(eps, eps[1:], strict=False)):
+        elif any(b <= a for a, b in itertools.pairwise(eps)):
             out.append(("eps_levels", f"must be strictly increasing, got {list(eps)}"))
         positive = ("max_lag_s", "max_speed_mps", "max_accuracy_m", "gap_s", "gap_m",
-                    "bridge_speed_mps", "off_network_s")
+                    "bridge_speed_mps", "off_network_s", "sigma_m", "beta_m")
         for name in positive:
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value > 0):
                 out.append((name, f"must be a positive number, got {value!r}"))
         if not (isinstance(self.max_lag_fixes, int) and self.max_lag_fixes >= 2):
             out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
+        if not (isinstance(self.turn_back_cost, int | float) and self.turn_back_cost >= 0):
+            out.append(("turn_back_cost", f"must be a number >= 0, got {self.turn_back_cost!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):
             out.append(("reorder_fixes", f"must be an integer 0..32, got {self.reorder_fixes!r}"))
         return out

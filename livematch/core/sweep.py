@@ -1,0 +1,337 @@
+"""One level of the online Fréchet sweep: a trace against the whole road graph at one eps.
+
+The free space between the trace and the road graph (Alt, Efrat, Rote & Wenk, "Matching
+planar maps", J. Algorithms 2003) is swept one trace segment p_i -> p_{i+1} at a time.
+Positions on a segment e = (a, b) are parameters x in [0, 1]; positions on the trace
+segment are parameters s in [0, 1].
+
+* The *free interval* of e at a fix p is {x : |a + x (b - a) - p| <= eps}; a disc meets a
+  segment in one interval, so it is a quadratic's roots clipped to [0, 1].
+* The *white interval* of a vertex v on the trace segment is {s : |p_i + s (p_{i+1} - p_i)
+  - v| <= eps}.
+* A *state* is a segment with its lowest reachable position ``low`` at the current fix:
+  every x from ``low`` to the top of the free interval is reachable (convexity of the free
+  space in one cell).
+
+One step (:func:`sweep_step`):
+
+1. Along the same segment: ``max(low, lo')`` stays reachable if it is inside the new free
+   interval [lo', hi']; the head vertex is reached in this column at the start of its
+   white interval.
+2. Through vertices, in order of the column parameter s (a Dijkstra on s): a vertex
+   reached at s_v makes the whole free interval of each out-segment (v, w) reachable and
+   reaches w at ``max(s_v, start of w's white interval)`` when that is inside it.
+3. Each segment keeps the lowest reachable position (for feasibility) and one
+   back-pointer: the cheapest way it was reached (for the reported path).
+
+Cost of a step: O(k log k) for the k segments and vertices within eps of the new trace
+segment; candidates come from the live states' adjacency, the spatial index is used
+only by :func:`fresh_start` and :func:`bridge_step`.
+
+The back-pointers form a tree of candidate paths (:class:`Node`). Among the paths the
+decision keeps alive, the reported one minimises a cost in the spirit of Newson & Krumm
+(2009): squared distance from fix to matched point over 2 sigma^2, plus the mismatch
+between route length and straight-line step length over beta, plus a charge per U-turn.
+The Fréchet decision says *which* paths are possible; the cost only orders them.
+"""
+
+from __future__ import annotations
+
+import heapq
+import math
+from collections.abc import Iterable
+from dataclasses import dataclass
+
+from livematch.core.network import RoadNetwork
+from livematch.core.routing import bounded_dijkstra, route_segments
+from livematch.core.view import NetworkView
+
+
+class Node:
+    """One candidate state: a segment at one fix, with a back-pointer to its parent.
+
+    Attributes:
+        seg: segment index.
+        seq: the tracker's sequence number of the fix.
+        t: the fix time (epoch s).
+        pos: the reported position on the segment, a parameter in [0, 1]: the fix's
+            projection clamped into the reachable part of the free interval.
+        x, y: the matched point (metres).
+        parent: the state this one was reached from (None for a root).
+        via: segments driven strictly between ``parent.seg`` and ``seg``.
+        cost: accumulated cost of the path ending here (lower is better).
+        low: lowest reachable position on ``seg`` (over every way of reaching it).
+    """
+
+    __slots__ = ("cost", "low", "parent", "pos", "seg", "seq", "t", "via", "x", "y")
+
+    def __init__(
+        self, seg: int, seq: int, t: float, pos: float, x: float, y: float,
+        parent: Node | None, via: tuple[int, ...], cost: float, low: float,
+    ) -> None:
+        self.seg = seg
+        self.seq = seq
+        self.t = t
+        self.pos = pos
+        self.x = x
+        self.y = y
+        self.parent = parent
+        self.via = via
+        self.cost = cost
+        self.low = low
+
+    def __repr__(self) -> str:
+        return f"Node(seg={self.seg}, seq={self.seq}, pos={self.pos:.3f}, cost={self.cost:.2f})"
+
+
+@dataclass(frozen=True, slots=True)
+class StepContext:
+    """Everything one step needs besides the states: the two fixes and the cost weights."""
+
+    view: NetworkView
+    eps: float
+    x0: float
+    y0: float
+    x1: float
+    y1: float
+    seq: int
+    t: float
+    chord: float
+    inv_two_sigma2: float
+    inv_beta: float
+    turn_back_cost: float
+
+
+def free_interval(
+    ax: float, ay: float, bx: float, by: float, px: float, py: float, eps2: float
+) -> tuple[float, float]:
+    """Parameters x in [0, 1] with |a + x (b - a) - p|^2 <= eps2, as (lo, hi); lo > hi if none."""
+    dx = bx - ax
+    dy = by - ay
+    fx = ax - px
+    fy = ay - py
+    a = dx * dx + dy * dy
+    c = fx * fx + fy * fy - eps2
+    if a <= 0.0:
+        return (0.0, 1.0) if c <= 0.0 else (1.0, 0.0)
+    b = fx * dx + fy * dy
+    disc = b * b - a * c
+    if disc < 0.0:
+        return (1.0, 0.0)
+    root = math.sqrt(disc)
+    lo = (-b - root) / a
+    hi = (-b + root) / a
+    return (lo if lo > 0.0 else 0.0, hi if hi < 1.0 else 1.0)
+
+
+def _offer(
+    new: dict[int, Node], ctx: StepContext, seg: int, lo: float, hi: float,
+    parent: Node | None, via: tuple[int, ...],
+) -> None:
+    """Record that ``seg`` is reachable on [lo, hi] from ``parent`` through ``via``."""
+    view = ctx.view
+    a = view.sf[seg]
+    b = view.st[seg]
+    ax = view.vx[a]
+    ay = view.vy[a]
+    dx = view.vx[b] - ax
+    dy = view.vy[b] - ay
+    length2 = dx * dx + dy * dy
+    pos = ((ctx.x1 - ax) * dx + (ctx.y1 - ay) * dy) / length2 if length2 > 0.0 else lo
+    pos = lo if pos < lo else (hi if pos > hi else pos)
+    mx = ax + pos * dx
+    my = ay + pos * dy
+    ex = mx - ctx.x1
+    ey = my - ctx.y1
+    cost = (ex * ex + ey * ey) * ctx.inv_two_sigma2
+    if parent is not None:
+        slen = view.slen
+        if not via and seg == parent.seg:
+            route = (pos - parent.pos) * slen[seg]
+            if route < 0.0:
+                route = 0.0
+        else:
+            route = (1.0 - parent.pos) * slen[parent.seg] + pos * slen[seg]
+            prev = parent.seg
+            twin = view.twin
+            turns = 0
+            for v in via:
+                route += slen[v]
+                if v == twin[prev]:
+                    turns += 1
+                prev = v
+            if seg == twin[prev]:
+                turns += 1
+            cost += turns * ctx.turn_back_cost
+        cost += parent.cost + abs(route - ctx.chord) * ctx.inv_beta
+    node = new.get(seg)
+    if node is None:
+        new[seg] = Node(seg, ctx.seq, ctx.t, pos, mx, my, parent, via, cost, lo)
+        return
+    if lo < node.low:
+        node.low = lo
+    if cost < node.cost:
+        node.pos = pos
+        node.x = mx
+        node.y = my
+        node.parent = parent
+        node.via = via
+        node.cost = cost
+
+
+def sweep_step(live: dict[int, Node], ctx: StepContext) -> dict[int, Node]:
+    """Advance the states ``live`` (at fix p0) by the trace segment p0 -> p1.
+
+    Returns the states at p1; empty when the window is no longer within eps (the
+    decision at this level has died).
+    """
+    view = ctx.view
+    vx, vy, sf, st, out, twin, ok = (
+        view.vx, view.vy, view.sf, view.st, view.out, view.twin, view.turn_back_ok)
+    eps2 = ctx.eps * ctx.eps
+    x0, y0, x1, y1 = ctx.x0, ctx.y0, ctx.x1, ctx.y1
+    new: dict[int, Node] = {}
+    heap: list[tuple[float, float, int, int, Node, tuple[int, ...]]] = []
+    white: dict[int, tuple[float, float]] = {}
+    counter = 0
+    for seg, node in live.items():
+        a = sf[seg]
+        b = st[seg]
+        lo, hi = free_interval(vx[a], vy[a], vx[b], vy[b], x1, y1, eps2)
+        low = node.low if node.low > lo else lo
+        if low <= hi:
+            _offer(new, ctx, seg, low, hi, node, ())
+        w = white.get(b)
+        if w is None:
+            w = free_interval(x0, y0, x1, y1, vx[b], vy[b], eps2)
+            white[b] = w
+        if w[0] <= w[1]:
+            counter += 1
+            heap.append((w[0], node.cost, counter, b, node, ()))
+    heapq.heapify(heap)
+    done: set[int] = set()
+    while heap:
+        s, _, _, v, parent, via = heapq.heappop(heap)
+        if v in done:
+            continue
+        done.add(v)
+        back = twin[via[-1] if via else parent.seg]
+        for f in out[v]:
+            if f == back and not ok[v]:
+                continue
+            w_vertex = st[f]
+            lo, hi = free_interval(vx[v], vy[v], vx[w_vertex], vy[w_vertex], x1, y1, eps2)
+            if lo <= hi:
+                _offer(new, ctx, f, lo, hi, parent, via)
+            if w_vertex in done:
+                continue
+            w = white.get(w_vertex)
+            if w is None:
+                w = free_interval(x0, y0, x1, y1, vx[w_vertex], vy[w_vertex], eps2)
+                white[w_vertex] = w
+            sw = s if s > w[0] else w[0]
+            if sw <= w[1]:
+                counter += 1
+                heapq.heappush(heap, (sw, parent.cost, counter, w_vertex, parent, (*via, f)))
+    return new
+
+
+def fresh_start(network: RoadNetwork, ctx: StepContext) -> dict[int, Node]:
+    """Root states: every segment within eps of the fix p1 (the spatial index's job)."""
+    view = ctx.view
+    eps2 = ctx.eps * ctx.eps
+    new: dict[int, Node] = {}
+    for seg in network.segments_near(ctx.x1, ctx.y1, ctx.eps).tolist():
+        a = view.sf[seg]
+        b = view.st[seg]
+        lo, hi = free_interval(view.vx[a], view.vy[a], view.vx[b], view.vy[b],
+                               ctx.x1, ctx.y1, eps2)
+        if lo <= hi:
+            _offer(new, ctx, seg, lo, hi, None, ())
+    return new
+
+
+def bridge_step(
+    network: RoadNetwork, live: dict[int, Node], ctx: StepContext, limit: float
+) -> dict[int, Node]:
+    """Reach the segments within eps of p1 from ``live`` by routes of at most ``limit`` m.
+
+    Used where the straight chord p0 -> p1 is a poor model of the road path: a long
+    gap between fixes, or a step at which this level's window died. The tree of candidate
+    paths continues through the route; the Fréchet certificate restarts at p1. The route
+    from each state is the shortest one from the nearest live state (a multi-source
+    Dijkstra), an approximation of the cheapest.
+    """
+    view = ctx.view
+    eps2 = ctx.eps * ctx.eps
+    targets = network.segments_near(ctx.x1, ctx.y1, ctx.eps).tolist()
+    if not targets or not live:
+        return {}
+    nodes = list(live.values())
+    sources = [
+        (view.st[n.seg], (1.0 - n.pos) * view.slen[n.seg], i, n.seg) for i, n in enumerate(nodes)
+    ]
+    reached = bounded_dijkstra(view, sources, limit)
+    new: dict[int, Node] = {}
+    for seg in targets:
+        a = view.sf[seg]
+        b = view.st[seg]
+        lo, hi = free_interval(view.vx[a], view.vy[a], view.vx[b], view.vy[b],
+                               ctx.x1, ctx.y1, eps2)
+        if lo > hi:
+            continue
+        same = live.get(seg)
+        if same is not None and hi >= same.pos:
+            _offer(new, ctx, seg, max(lo, same.pos), hi, same, ())
+        r = reached.get(a)
+        if r is None or r.dist + lo * view.slen[seg] > limit:
+            continue
+        via = route_segments(view, reached, a)
+        entering = via[-1] if via else nodes[r.source].seg
+        if seg == view.twin[entering] and not view.turn_back_ok[a]:
+            continue
+        _offer(new, ctx, seg, lo, hi, nodes[r.source], tuple(via))
+    return new
+
+
+def best_leaf(live: dict[int, Node]) -> Node:
+    """The live state with the lowest cost (ties: lowest segment index), deterministic."""
+    return min(live.values(), key=lambda n: (n.cost, n.seg))
+
+
+def common_ancestor(leaves: Iterable[Node]) -> Node | None:
+    """The deepest state every leaf descends from (a leaf itself if only one), or None."""
+    cur = {id(n): n for n in leaves}
+    while len(cur) > 1:
+        top = max(n.seq for n in cur.values())
+        nxt: dict[int, Node] = {}
+        for key, n in cur.items():
+            if n.seq == top:
+                p = n.parent
+                if p is None:
+                    return None
+                nxt[id(p)] = p
+            else:
+                nxt[key] = n
+        cur = nxt
+    return next(iter(cur.values()), None)
+
+
+def ancestor_at(node: Node, seq: int) -> Node:
+    """The ancestor of ``node`` (itself included) with the largest ``seq`` <= ``seq``.
+
+    Stops at the root if the tree does not reach that far back.
+    """
+    while node.seq > seq and node.parent is not None:
+        node = node.parent
+    return node
+
+
+def descends_from(node: Node, ancestor: Node) -> bool:
+    """Whether ``ancestor`` lies on the back-pointer chain of ``node``."""
+    cur: Node | None = node
+    while cur is not None and cur.seq >= ancestor.seq:
+        if cur is ancestor:
+            return True
+        cur = cur.parent
+    return False

@@ -1,0 +1,433 @@
+"""The per-vehicle tracker: filters, the eps ladder, commits and serialisable state.
+
+A :class:`Tracker` turns one vehicle's stream of :class:`~livematch.core.fix.Fix` into
+events (:mod:`livematch.core.events`). It is pure: the fix times are its only clock.
+
+How it decides
+--------------
+* **Filters** (before the sweep, each with a reason code): ``duplicate`` (same time as a
+  fix already taken), ``out_of_order`` (older than the newest fix taken; with
+  ``reorder_fixes`` > 0 a small hold-back buffer first puts late arrivals in order),
+  ``low_accuracy`` (reported accuracy worse than ``max_accuracy_m``), ``impossible_jump``
+  (implied speed from the previous accepted fix above ``max_speed_mps``; after three
+  such fixes in a row the newest is believed, so one bad fix cannot lock a vehicle out).
+* **The eps ladder**: one sweep (:mod:`livematch.core.sweep`) per level. The smallest
+  level alive decides, and every assignment carries its certificate: ``eps_m`` and the
+  window (``window_fixes``, ``window_s``) of fixes that lie within Fréchet distance
+  ``eps_m`` of the reported road path.
+* **When a level's window dies** (or a step is a gap: longer than ``gap_s`` / ``gap_m``),
+  the step is bridged by routing from the live states to the segments within eps of the
+  new fix, bounded by ``bridge_speed_mps`` times the time step: the candidate tree goes
+  on, the certificate window restarts at the new fix. Only when no route exists (the
+  vehicle left the network, or jumped) does the level start afresh from the spatial
+  index — a new tree. A mid-segment U-turn is therefore handled as a death of the small
+  levels followed by a bridge onto the opposite direction (U-turns *inside* the sweep
+  are allowed only at dead ends and intersections).
+* **Commits**: where all live candidates of a level share a prefix (their deepest common
+  ancestor), that prefix is final. Fixes are committed in order, each by the smallest
+  level whose candidate tree covers it. If the oldest uncommitted fix is older than
+  ``max_lag_fixes`` or ``max_lag_s``, the best candidate (lowest path cost, see
+  :mod:`livematch.core.sweep`) is committed up to half the lag and the candidates that
+  disagree with it are dropped; so state stays bounded whatever the trip length.
+  Consecutive committed stretches are joined by a bounded shortest route.
+"""
+
+from __future__ import annotations
+
+import bisect
+import itertools
+import json
+import math
+import zlib
+from collections.abc import Iterator
+from typing import Any
+
+from livematch.core.events import Assignment, Commit, Event, Filtered, MatchedFix
+from livematch.core.fix import Fix
+from livematch.core.network import RoadNetwork
+from livematch.core.routing import connect
+from livematch.core.settings import MatchSettings
+from livematch.core.sweep import (
+    Node,
+    StepContext,
+    ancestor_at,
+    best_leaf,
+    bridge_step,
+    common_ancestor,
+    descends_from,
+    fresh_start,
+    sweep_step,
+)
+from livematch.core.view import NetworkView, view_of
+from livematch.errors import BadStateError
+
+STATE_FORMAT = b"LMT1"
+JUMP_TRUST_AFTER = 3
+
+
+class Level:
+    """One rung of the eps ladder: its live states and the bounds of its windows.
+
+    Attributes:
+        eps: metres.
+        live: segment -> state at the newest fix (empty: dead).
+        tree_seq: sequence number of the fix where the current candidate tree started.
+        cert_seq, cert_t: first fix (sequence number, time) of the certificate window.
+        trim_seq: the last fix at which old history of the tree was cut.
+    """
+
+    __slots__ = ("cert_seq", "cert_t", "eps", "live", "tree_seq", "trim_seq")
+
+    def __init__(self, eps: float) -> None:
+        self.eps = eps
+        self.live: dict[int, Node] = {}
+        self.tree_seq = 0
+        self.cert_seq = 0
+        self.cert_t = 0.0
+        self.trim_seq = 0
+
+
+class Tracker:
+    """Online map matching of one vehicle.
+
+    Args:
+        network: the road network (shared, read-only).
+        vehicle: the vehicle id put on every event.
+        settings: the matcher settings (validated here).
+
+    Example (a single fix on a straight road):
+        >>> from livematch.core.testing import straight_road  # doctest: +SKIP
+    """
+
+    def __init__(
+        self, network: RoadNetwork, vehicle: str, settings: MatchSettings | None = None
+    ) -> None:
+        self.network = network
+        self.vehicle = vehicle
+        self.settings = settings or MatchSettings()
+        problems = self.settings.problems()
+        if problems:
+            key, what = problems[0]
+            raise ValueError(f"matcher.{key} {what}")
+        self._view: NetworkView = view_of(network)
+        self.levels = [Level(e) for e in self.settings.eps_levels]
+        self.seq = 0
+        self.last: tuple[float, float, float] | None = None  # t, x, y of the last accepted fix
+        self.last_released_t: float | None = None
+        self.jumps = 0
+        self.buffer: list[Fix] = []
+        self.times: dict[int, float] = {}
+        self.next_commit = 1
+        self.last_commit: tuple[int, float, int, float] | None = None  # seg, pos, seq, t
+
+    @property
+    def last_time(self) -> float | None:
+        """Time of the newest accepted fix, or None before the first."""
+        return self.last[0] if self.last else None
+
+    # ----------------------------------------------------------------- intake
+    def update(self, fix: Fix) -> list[Event]:
+        """Take one fix; return the events it causes (possibly none)."""
+        events: list[Event] = []
+        for ready in self._admit(fix, events):
+            self._accept(ready, events)
+        return events
+
+    def flush(self) -> list[Event]:
+        """Release held-back fixes and commit every pending fix (end of a log, eviction)."""
+        events: list[Event] = []
+        while self.buffer:
+            ready = self.buffer.pop(0)
+            if self._passes(ready, events):
+                self._accept(ready, events)
+        covering = self._covering()
+        if covering:
+            self._commit_chain(best_leaf(covering[0].live), events, prune=covering[0])
+        return events
+
+    def _admit(self, fix: Fix, events: list[Event]) -> Iterator[Fix]:
+        newest = self.last_released_t
+        if (newest is not None and fix.t == newest) or any(b.t == fix.t for b in self.buffer):
+            events.append(Filtered(fix.vehicle, fix.t, "duplicate"))
+            return
+        if newest is not None and fix.t < newest:
+            events.append(Filtered(fix.vehicle, fix.t, "out_of_order"))
+            return
+        bisect.insort(self.buffer, fix, key=lambda f: f.t)
+        while len(self.buffer) > self.settings.reorder_fixes:
+            ready = self.buffer.pop(0)
+            self.last_released_t = ready.t
+            if self._passes(ready, events):
+                yield ready
+
+    def _passes(self, fix: Fix, events: list[Event]) -> bool:
+        s = self.settings
+        if fix.accuracy is not None and fix.accuracy > s.max_accuracy_m:
+            events.append(Filtered(fix.vehicle, fix.t, "low_accuracy"))
+            return False
+        if self.last is not None:
+            t0, x0, y0 = self.last
+            dt = fix.t - t0
+            if dt <= 0:
+                events.append(Filtered(fix.vehicle, fix.t, "out_of_order"))
+                return False
+            if math.hypot(fix.x - x0, fix.y - y0) > s.max_speed_mps * dt:
+                self.jumps += 1
+                if self.jumps < JUMP_TRUST_AFTER:
+                    events.append(Filtered(fix.vehicle, fix.t, "impossible_jump"))
+                    return False
+        self.jumps = 0
+        return True
+
+    # ------------------------------------------------------------------ sweep
+    def _accept(self, fix: Fix, events: list[Event]) -> None:
+        s = self.settings
+        self.seq += 1
+        seq = self.seq
+        self.times[seq] = fix.t
+        prev = self.last
+        self.last = (fix.t, fix.x, fix.y)
+        if prev is None:
+            x0, y0, dt = fix.x, fix.y, 0.0
+        else:
+            x0, y0, dt = prev[1], prev[2], fix.t - prev[0]
+        chord = math.hypot(fix.x - x0, fix.y - y0)
+        gap = prev is not None and (dt > s.gap_s or chord > s.gap_m)
+        salvage: list[tuple[Level, dict[int, Node]]] = []
+        for level in self.levels:
+            ctx = StepContext(
+                self._view, level.eps, x0, y0, fix.x, fix.y, seq, fix.t, chord,
+                1.0 / (2.0 * s.sigma_m * s.sigma_m), 1.0 / s.beta_m, s.turn_back_cost,
+            )
+            new: dict[int, Node] = {}
+            if level.live and not gap:
+                new = sweep_step(level.live, ctx)
+            if not new and level.live:
+                limit = s.bridge_speed_mps * dt + 2.0 * level.eps
+                new = bridge_step(self.network, level.live, ctx, limit)
+                if new:
+                    level.cert_seq, level.cert_t = seq, fix.t
+            if not new:
+                if level.live:
+                    salvage.append((level, level.live))
+                new = fresh_start(self.network, ctx)
+                level.tree_seq = level.trim_seq = level.cert_seq = seq
+                level.cert_t = fix.t
+            level.live = new
+        deciding = next((lv for lv in self.levels if lv.live), None)
+        if deciding is None:
+            events.append(Filtered(fix.vehicle, fix.t, "no_road_nearby"))
+        else:
+            best = best_leaf(deciding.live)
+            events.append(Assignment(
+                self.vehicle, fix.t, best.seg, best.pos * self._view.slen[best.seg],
+                best.x, best.y, deciding.eps, seq - deciding.cert_seq + 1,
+                fix.t - deciding.cert_t,
+            ))
+        self._settle(seq, fix.t, salvage, events)
+
+    # ---------------------------------------------------------------- commits
+    def _covering(self) -> list[Level]:
+        """Live levels whose candidate tree covers the oldest uncommitted fix."""
+        return [lv for lv in self.levels if lv.live and lv.tree_seq <= self.next_commit]
+
+    def _settle(
+        self, seq: int, t: float, salvage: list[tuple[Level, dict[int, Node]]],
+        events: list[Event],
+    ) -> None:
+        s = self.settings
+        if not self._covering():
+            # The trees that covered the oldest pending fixes died this step: their best
+            # candidate is the final answer for them.
+            for level, old in salvage:
+                if level.tree_seq != seq:
+                    continue
+                leaf = best_leaf(old)
+                if leaf.seq >= self.next_commit:
+                    self._commit_chain(leaf, events, prune=None)
+                    break
+        progressed = True
+        while progressed:
+            progressed = False
+            for level in self._covering():
+                top = common_ancestor(level.live.values())
+                if top is not None and top.seq >= self.next_commit:
+                    self._commit_chain(top, events, prune=None)
+                    progressed = True
+                    break
+        if self.next_commit <= seq:
+            too_many = seq - self.next_commit + 1 > s.max_lag_fixes
+            too_old = t - self.times[self.next_commit] > s.max_lag_s
+            covering = self._covering()
+            if (too_many or too_old) and covering:
+                level = covering[0]
+                keep = self._lag_target(seq, t)
+                node = ancestor_at(best_leaf(level.live), keep)
+                if node.seq >= self.next_commit:
+                    self._commit_chain(node, events, prune=level)
+        alive = [lv.tree_seq for lv in self.levels if lv.live]
+        floor = min(alive) if alive else seq + 1
+        if not self._covering() and floor > self.next_commit:
+            self.next_commit = floor  # fixes no tree covers any more stay unmatched
+        for stale in [k for k in self.times if k < self.next_commit - 1]:
+            del self.times[stale]
+        self._trim(seq, t)
+
+    def _lag_target(self, seq: int, t: float) -> int:
+        """Newest fix a forced commit may reach: half the lag behind the newest fix."""
+        s = self.settings
+        target = seq - s.max_lag_fixes // 2
+        half = t - s.max_lag_s / 2.0
+        for k in range(self.next_commit, seq + 1):
+            if self.times.get(k, t) > half:
+                target = min(target, k - 1)
+                break
+        return max(target, self.next_commit)
+
+    def _commit_chain(self, top: Node, events: list[Event], prune: Level | None) -> None:
+        """Commit the path ending at ``top`` for every fix from ``next_commit`` on."""
+        chain: list[Node] = []
+        node: Node | None = top
+        while node is not None and node.seq >= self.next_commit:
+            chain.append(node)
+            node = node.parent
+        if not chain:
+            return
+        chain.reverse()
+        before = node
+        view = self._view
+        first = chain[0]
+        path: list[int] = []
+        last = self.last_commit
+        if last is None:
+            path.append(first.seg)
+        elif before is not None and before.seq == last[2] and before.seg == last[0]:
+            path.extend(_steps(last[0], first))
+        else:
+            limit = self.settings.bridge_speed_mps * (first.t - last[3]) + 2.0 * max(
+                self.settings.eps_levels) + 100.0
+            route = connect(view, last[0], last[1], first.seg, first.pos, limit)
+            if route is None:
+                path.append(first.seg)  # a break: the vehicle left the network or jumped
+            else:
+                path.extend(route)
+                if route or first.seg != last[0]:
+                    path.append(first.seg)
+        for a, b in itertools.pairwise(chain):
+            path.extend(_steps(a.seg, b))
+        fixes = tuple(
+            MatchedFix(n.t, n.seg, n.pos * view.slen[n.seg], n.x, n.y) for n in chain
+        )
+        events.append(Commit(self.vehicle, fixes, tuple(path)))
+        self.next_commit = top.seq + 1
+        self.last_commit = (top.seg, top.pos, top.seq, top.t)
+        if prune is not None:
+            prune.live = {k: n for k, n in prune.live.items() if descends_from(n, top)}
+            if not prune.live:
+                prune.live = {}
+
+    def _trim(self, seq: int, t: float) -> None:
+        """Cut history no future commit needs; force-prune trees deeper than the lag."""
+        s = self.settings
+        for level in self.levels:
+            if not level.live:
+                continue
+            top = common_ancestor(level.live.values())
+            if top is not None:
+                node = top
+                while node.parent is not None and node.parent.seq >= self.next_commit - 1:
+                    node = node.parent
+                if node.parent is not None and node.parent.seq < self.next_commit - 1:
+                    node.parent = None
+                    level.trim_seq = node.seq
+            elif seq - level.trim_seq > 2 * s.max_lag_fixes:
+                keep = ancestor_at(best_leaf(level.live), seq - s.max_lag_fixes)
+                level.live = {k: n for k, n in level.live.items() if descends_from(n, keep)}
+                keep.parent = None
+                level.trim_seq = keep.seq
+                level.tree_seq = max(level.tree_seq, keep.seq)
+
+    # ---------------------------------------------------------- serialisation
+    def to_bytes(self) -> bytes:
+        """Versioned, compact serialisation of the whole state (zlib-compressed JSON).
+
+        Floats are written with ``repr`` precision, so a restored tracker continues
+        exactly as the original would have.
+        """
+        ids: dict[int, int] = {}
+        rows: list[list[Any]] = []
+
+        def node_id(n: Node) -> int:
+            stack = []
+            cur: Node | None = n
+            while cur is not None and id(cur) not in ids:
+                stack.append(cur)
+                cur = cur.parent
+            for m in reversed(stack):
+                ids[id(m)] = len(rows)
+                parent = ids[id(m.parent)] if m.parent is not None else -1
+                rows.append([m.seg, m.seq, m.t, m.pos, m.x, m.y, parent, list(m.via),
+                             m.cost, m.low])
+            return ids[id(n)]
+
+        levels = []
+        for lv in self.levels:
+            live = [[seg, node_id(n)] for seg, n in lv.live.items()]
+            levels.append([lv.eps, lv.tree_seq, lv.cert_seq, lv.cert_t, lv.trim_seq, live])
+        state = {
+            "vehicle": self.vehicle,
+            "n_segments": self.network.n_segments,
+            "seq": self.seq,
+            "last": self.last,
+            "last_released_t": self.last_released_t,
+            "jumps": self.jumps,
+            "buffer": [[f.vehicle, f.t, f.lon, f.lat, f.x, f.y, f.accuracy, f.speed,
+                        f.heading, f.route] for f in self.buffer],
+            "times": [[k, v] for k, v in self.times.items()],
+            "next_commit": self.next_commit,
+            "last_commit": self.last_commit,
+            "nodes": rows,
+            "levels": levels,
+        }
+        return STATE_FORMAT + zlib.compress(json.dumps(state, separators=(",", ":")).encode())
+
+    @classmethod
+    def from_bytes(
+        cls, network: RoadNetwork, settings: MatchSettings | None, data: bytes
+    ) -> Tracker:
+        """Restore a tracker written by :meth:`to_bytes`."""
+        if not data.startswith(STATE_FORMAT):
+            raise BadStateError(f"not a livematch tracker state (expected {STATE_FORMAT!r})")
+        try:
+            state = json.loads(zlib.decompress(data[len(STATE_FORMAT):]))
+        except (zlib.error, ValueError) as exc:
+            raise BadStateError(f"corrupt tracker state: {exc}") from exc
+        if state["n_segments"] != network.n_segments:
+            raise BadStateError("tracker state was written for a different network")
+        tracker = cls(network, state["vehicle"], settings)
+        if [lv[0] for lv in state["levels"]] != [lv.eps for lv in tracker.levels]:
+            raise BadStateError("tracker state was written with a different eps ladder")
+        nodes: list[Node] = []
+        for seg, seq, t, pos, x, y, parent, via, cost, low in state["nodes"]:
+            nodes.append(Node(seg, seq, t, pos, x, y, nodes[parent] if parent >= 0 else None,
+                              tuple(via), cost, low))
+        for lv, (_, tree_seq, cert_seq, cert_t, trim_seq, live) in zip(
+                tracker.levels, state["levels"], strict=True):
+            lv.tree_seq, lv.cert_seq, lv.cert_t, lv.trim_seq = tree_seq, cert_seq, cert_t, trim_seq
+            lv.live = {seg: nodes[i] for seg, i in live}
+        tracker.seq = state["seq"]
+        tracker.last = tuple(state["last"]) if state["last"] else None
+        tracker.last_released_t = state["last_released_t"]
+        tracker.jumps = state["jumps"]
+        tracker.buffer = [Fix(*row) for row in state["buffer"]]
+        tracker.times = {k: v for k, v in state["times"]}
+        tracker.next_commit = state["next_commit"]
+        tracker.last_commit = tuple(state["last_commit"]) if state["last_commit"] else None
+        return tracker
+
+
+def _steps(prev_seg: int, node: Node) -> list[int]:
+    """Segments entered going from ``prev_seg`` to ``node``: its via, then its own segment."""
+    if not node.via and node.seg == prev_seg:
+        return []
+    return [*node.via, node.seg]

@@ -1,0 +1,69 @@
+"""A shared catalogue of small road graphs and traces (metres), degenerate ones included."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from livematch.core.build import Road, network_from_roads
+from livematch.core.fix import Fix
+from livematch.core.network import RoadNetwork
+
+
+def straight_road(length: float = 1000.0, step: float = 50.0, oneway: bool = False) -> RoadNetwork:
+    """One east-west road from (0, 0), shape points every ``step`` metres."""
+    xs = np.arange(0.0, length + step / 2, step)
+    return network_from_roads([Road([(float(x), 0.0) for x in xs], way=1, oneway=oneway,
+                                    name="Long Street")])
+
+
+def grid(n: int = 5, block: float = 200.0, step: float = 50.0) -> RoadNetwork:
+    """An n x n grid of two-way streets; rows are ways 1, 3, 5...; columns 2, 4, 6..."""
+    roads = []
+    way = 1
+    span = (n - 1) * block
+    for i in range(n):
+        pts = np.arange(0.0, span + step / 2, step)
+        roads.append(Road([(float(x), i * block) for x in pts], way=way, name=f"Row {i}"))
+        roads.append(Road([(i * block, float(y)) for y in pts], way=way + 1, name=f"Col {i}"))
+        way += 2
+    return network_from_roads(roads)
+
+
+def oneway_pair(gap: float = 60.0) -> RoadNetwork:
+    """Two parallel one-way roads ``gap`` metres apart: way 1 eastbound at y=0, way 2
+    westbound at y=gap, joined at both ends by two-way connectors (ways 3 and 4)."""
+    east = Road([(float(x), 0.0) for x in range(0, 1001, 50)], way=1, oneway=True)
+    west = Road([(float(x), gap) for x in range(1000, -1, -50)], way=2, oneway=True)
+    left = Road([(0.0, 0.0), (0.0, gap)], way=3)
+    right = Road([(1000.0, 0.0), (1000.0, gap)], way=4)
+    return network_from_roads([east, west, left, right])
+
+
+def dead_end() -> RoadNetwork:
+    """A main road (way 1, y=0) with a 300 m two-way cul-de-sac north (way 2) at x=500."""
+    main = Road([(float(x), 0.0) for x in range(0, 1001, 50)], way=1)
+    spur = Road([(500.0, float(y)) for y in range(0, 301, 50)], way=2)
+    return network_from_roads([main, spur])
+
+
+def fixes_along(points: list[tuple[float, float]], t0: float = 1_700_000_000.0,
+                dt: float = 1.0, vehicle: str = "v1") -> list[Fix]:
+    """Fixes at the given points (metres), one every ``dt`` seconds; lon/lat left at 0."""
+    return [Fix(vehicle, t0 + i * dt, 0.0, 0.0, float(x), float(y))
+            for i, (x, y) in enumerate(points)]
+
+
+def polyline_points(coords: list[tuple[float, float]], spacing: float) -> list[tuple[float, float]]:
+    """Points every ``spacing`` metres along a polyline (its last point included)."""
+    out: list[tuple[float, float]] = []
+    carry = 0.0
+    for (ax, ay), (bx, by) in zip(coords, coords[1:], strict=False):
+        length = float(np.hypot(bx - ax, by - ay))
+        d = carry
+        while d < length:
+            f = d / length
+            out.append((ax + f * (bx - ax), ay + f * (by - ay)))
+            d += spacing
+        carry = d - length
+    out.append(coords[-1])
+    return out

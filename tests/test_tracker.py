@@ -1,0 +1,272 @@
+"""The per-vehicle tracker: ladder, certificate, commits, filters, state round trip."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from livematch.core.events import Assignment, Commit, Filtered
+from livematch.core.fix import Fix
+from livematch.core.network import RoadNetwork
+from livematch.core.settings import MatchSettings
+from livematch.core.tracker import Tracker
+from livematch.errors import BadStateError
+from tests.catalogue import dead_end, fixes_along, grid, oneway_pair, polyline_points, straight_road
+
+
+def run(tracker: Tracker, fixes: list[Fix], flush: bool = True) -> list:
+    events = []
+    for f in fixes:
+        events.extend(tracker.update(f))
+    if flush:
+        events.extend(tracker.flush())
+    return events
+
+
+def assignments(events: list) -> list[Assignment]:
+    return [e for e in events if isinstance(e, Assignment)]
+
+
+def commits(events: list) -> list[Commit]:
+    return [e for e in events if isinstance(e, Commit)]
+
+
+def committed_path(events: list) -> list[int]:
+    return [s for c in commits(events) for s in c.path]
+
+
+def assert_connected(net: RoadNetwork, path: list[int]) -> None:
+    for a, b in zip(path, path[1:], strict=False):
+        assert net.seg_to[a] == net.seg_from[b], f"path breaks between {a} and {b}"
+
+
+def ways(net: RoadNetwork, segs: list[int]) -> list[int]:
+    out: list[int] = []
+    for s in segs:
+        w = int(net.seg_way[s])
+        if not out or out[-1] != w:
+            out.append(w)
+    return out
+
+
+ROUTE = [(0.0, 200.0), (600.0, 200.0), (600.0, 800.0)]  # east on Row 1 (way 3), north on Col 3 (way 8)
+
+
+def test_tracker_noise_free_matched_exactly_at_smallest_level() -> None:
+    """Fixes exactly on the roads: every one matched onto itself at the smallest eps, one window."""
+    net = grid()
+    fixes = fixes_along(polyline_points(ROUTE, 9.0))
+    events = run(Tracker(net, "v1"), fixes)
+    asg = assignments(events)
+    assert len(asg) == len(fixes)
+    for i, (a, f) in enumerate(zip(asg, fixes, strict=True)):
+        assert a.eps_m == 15.0
+        assert a.window_fixes == i + 1
+        assert math.hypot(a.x - f.x, a.y - f.y) < 1e-6
+    committed = [m for c in commits(events) for m in c.fixes]
+    assert [m.t for m in committed] == [f.t for f in fixes]
+    for m, f in zip(committed, fixes, strict=True):
+        assert math.hypot(m.x - f.x, m.y - f.y) < 1e-6
+    path = committed_path(events)
+    assert_connected(net, path)
+    assert ways(net, path)[-2:] == [3, 8]
+
+
+def test_tracker_certificate_window_seconds() -> None:
+    """window_s is the time spanned by the certified window."""
+    net = straight_road()
+    fixes = fixes_along([(x, 2.0) for x in range(0, 300, 10)], dt=2.0)
+    asg = assignments(run(Tracker(net, "v1"), fixes))
+    assert [a.window_s for a in asg] == [2.0 * i for i in range(len(fixes))]
+
+
+def test_tracker_leaving_network_kills_small_levels_and_restarts() -> None:
+    """A detour far from every road kills the small levels; back on the road they restart."""
+    net = straight_road(2000.0)
+    pts = [(x, 0.0) for x in range(0, 400, 10)]
+    pts += [(400.0, y) for y in range(10, 301, 10)]       # 300 m north, off the network
+    pts += [(400.0, y) for y in range(290, -1, -10)]      # and back
+    pts += [(x, 0.0) for x in range(410, 800, 10)]
+    fixes = fixes_along(pts)
+    events = run(Tracker(net, "v1"), fixes)
+    by_t = {e.t: e for e in events if isinstance(e, Assignment | Filtered)}
+    off = [by_t[f.t] for f in fixes if f.y > 60.0]
+    assert off and all(isinstance(e, Filtered) and e.reason == "no_road_nearby" for e in off)
+    mid = [by_t[f.t] for f in fixes if 15.0 < f.y <= 30.0]
+    assert all(isinstance(e, Assignment) and e.eps_m == 30.0 for e in mid)
+    back = [by_t[f.t] for f in fixes if f.y == 0.0 and f.x > 400.0]
+    assert all(isinstance(e, Assignment) and e.eps_m == 15.0 for e in back)
+    # the 15 m window restarted on the way back rather than spanning the detour
+    assert back[-1].window_fixes < len(back) + 10
+
+
+def test_tracker_oneway_never_driven_backwards() -> None:
+    """Between a one-way pair the westbound trace is matched to the westbound road only."""
+    net = oneway_pair(gap=20.0)
+    # 8 m from the westbound road (way 2, y=20), 12 m from the eastbound one (way 1, y=0)
+    fixes = fixes_along([(x, 12.0) for x in range(950, 49, -10)])
+    events = run(Tracker(net, "v1"), fixes)
+    asg = assignments(events)
+    assert all(int(net.seg_way[a.segment]) == 2 for a in asg[3:])
+    committed = [m for c in commits(events) for m in c.fixes]
+    assert len(committed) == len(fixes)
+    assert all(int(net.seg_way[m.segment]) == 2 for m in committed)
+    path = committed_path(events)
+    assert_connected(net, path)
+    for s in path:  # every westbound segment really goes west
+        assert net.node_xy[net.seg_to[s], 0] < net.node_xy[net.seg_from[s], 0]
+
+
+def test_tracker_uturn_at_dead_end_inside_one_window() -> None:
+    """Up a cul-de-sac and back: the U-turn at its end keeps the smallest window alive."""
+    net = dead_end()
+    route = [(300.0, 0.0), (500.0, 0.0), (500.0, 300.0), (500.0, 0.0), (800.0, 0.0)]
+    fixes = fixes_along(polyline_points(route, 10.0))
+    events = run(Tracker(net, "v1"), fixes)
+    asg = assignments(events)
+    assert [a.window_fixes for a in asg] == list(range(1, len(fixes) + 1))
+    path = committed_path(events)
+    assert_connected(net, path)
+    assert ways(net, path) == [1, 2, 1]
+    spur = [s for s in path if int(net.seg_way[s]) == 2]
+    north = [s for s in spur if net.node_xy[net.seg_to[s], 1] > net.node_xy[net.seg_from[s], 1]]
+    assert len(north) == 6 and len(spur) == 12  # 300 m up in 50 m segments, and back
+
+
+def test_tracker_uturn_mid_segment_restarts_small_level() -> None:
+    """A U-turn in the middle of a segment: the small window dies and the match turns around."""
+    net = straight_road(1000.0, step=100.0)
+    pts = [(float(x), 0.0) for x in range(0, 351, 10)] + [(float(x), 0.0) for x in range(340, 0, -10)]
+    fixes = fixes_along(pts)
+    asg = assignments(run(Tracker(net, "v1"), fixes))
+    westbound = [net.node_xy[net.seg_to[a.segment], 0] < net.node_xy[net.seg_from[a.segment], 0]
+                 for a in asg]
+    assert not any(westbound[:30])
+    assert all(westbound[-20:])
+    assert any(b.window_fixes < a.window_fixes for a, b in zip(asg, asg[1:], strict=False))
+
+
+def noisy_drive(seed: int, n_legs: int = 8) -> tuple[RoadNetwork, list[Fix]]:
+    net = grid(6)
+    rng = np.random.default_rng(seed)
+    corners = [(0.0, 0.0)]
+    for _ in range(n_legs):
+        x, y = corners[-1]
+        choices = [(x + 200, y), (x - 200, y), (x, y + 200), (x, y - 200)]
+        choices = [c for c in choices if 0 <= c[0] <= 1000 and 0 <= c[1] <= 1000
+                   and (len(corners) < 2 or c != corners[-2])]
+        corners.append(choices[rng.integers(len(choices))])
+    pts = polyline_points(corners, 10.0)
+    noise = rng.normal(0.0, 3.0, size=(len(pts), 2))
+    return net, fixes_along([(x + dx, y + dy) for (x, y), (dx, dy) in zip(pts, noise, strict=True)])
+
+
+@pytest.mark.parametrize("cut", [1, 7, 40, 95])
+def test_tracker_restore_mid_trip_gives_identical_outputs(cut: int) -> None:
+    """Serialise after `cut` fixes, restore, continue: the events equal an uninterrupted run."""
+    net, fixes = noisy_drive(seed=cut)
+    settings = MatchSettings(max_lag_fixes=20)
+    straight = Tracker(net, "v1", settings)
+    whole = run(straight, fixes)
+    first = Tracker(net, "v1", settings)
+    before = run(first, fixes[:cut], flush=False)
+    blob = first.to_bytes()
+    restored = Tracker.from_bytes(net, settings, blob)
+    after = run(restored, fixes[cut:])
+    assert before + after == whole
+    assert restored.to_bytes() == straight.to_bytes()
+
+
+def test_tracker_state_rejects_foreign_bytes() -> None:
+    """Restoring garbage or another network's state is a clear BadStateError."""
+    net = straight_road()
+    with pytest.raises(BadStateError):
+        Tracker.from_bytes(net, None, b"nonsense")
+    blob = Tracker(grid(), "v1").to_bytes()
+    with pytest.raises(BadStateError):
+        Tracker.from_bytes(net, None, blob)
+
+
+def test_tracker_state_stays_bounded_on_long_trip() -> None:
+    """Hours of driving back and forth keep the serialised state small (forced commits)."""
+    net = straight_road(2000.0)
+    rng = np.random.default_rng(3)
+    pts = []
+    for lap in range(10):
+        xs = np.arange(0.0, 2000.0, 8.0)
+        pts += [(x, 0.0) for x in (xs if lap % 2 == 0 else xs[::-1])]
+    fixes = fixes_along([(x + rng.normal(0, 4), y + rng.normal(0, 4)) for x, y in pts])
+    tracker = Tracker(net, "v1", MatchSettings(max_lag_fixes=30))
+    sizes = []
+    for f in fixes:
+        tracker.update(f)
+        sizes.append(len(tracker.to_bytes()))
+    assert max(sizes[500:]) < 8000
+    assert tracker.seq - tracker.next_commit < 31
+
+
+def test_tracker_filters_with_reasons() -> None:
+    """Duplicates, late fixes, poor accuracy and impossible jumps are filtered and named."""
+    net = straight_road()
+    t0 = 1_700_000_000.0
+    tr = Tracker(net, "v1")
+    reasons = []
+    feed = [
+        Fix("v1", t0, 0, 0, 100.0, 0.0),
+        Fix("v1", t0, 0, 0, 100.0, 0.0),                    # duplicate
+        Fix("v1", t0 + 2, 0, 0, 120.0, 0.0),
+        Fix("v1", t0 + 1, 0, 0, 110.0, 0.0),                # out of order
+        Fix("v1", t0 + 3, 0, 0, 130.0, 0.0, accuracy=500.0),  # low accuracy
+        Fix("v1", t0 + 4, 0, 0, 900.0, 0.0),                # 780 m in 2 s: impossible
+        Fix("v1", t0 + 5, 0, 0, 140.0, 0.0),
+    ]
+    for f in feed:
+        reasons += [e.reason for e in tr.update(f) if isinstance(e, Filtered)]
+    assert reasons == ["duplicate", "out_of_order", "low_accuracy", "impossible_jump"]
+
+
+def test_tracker_trusts_jump_after_three_in_a_row() -> None:
+    """A vehicle really moved (e.g. on a ferry): the third consecutive 'jump' is believed."""
+    net = straight_road(3000.0)
+    t0 = 1_700_000_000.0
+    tr = Tracker(net, "v1")
+    feed = [Fix("v1", t0, 0, 0, 100.0, 0.0)] + [
+        Fix("v1", t0 + i, 0, 0, 2500.0 + 10 * i, 0.0) for i in range(1, 5)]
+    out = [tr.update(f) for f in feed]
+    assert [type(e[0]).__name__ for e in out] == [
+        "Assignment", "Filtered", "Filtered", "Assignment", "Assignment"]
+
+
+def test_tracker_reorder_buffer_puts_late_fix_in_place() -> None:
+    """With reorder_fixes=2 a fix arriving one place late is still used, in time order."""
+    net = straight_road()
+    t0 = 1_700_000_000.0
+    tr = Tracker(net, "v1", MatchSettings(reorder_fixes=2))
+    feed = [Fix("v1", t0 + i, 0, 0, 100.0 + 10 * i, 0.0) for i in (0, 2, 1, 3, 4, 5)]
+    events = [e for f in feed for e in tr.update(f)] + tr.flush()
+    assert [a.t for a in assignments(events)] == [t0 + i for i in range(6)]
+
+
+def test_tracker_sparse_fixes_bridge_corners() -> None:
+    """Fixes every 30 s around corners: the committed path is connected and follows the roads."""
+    net = grid(6)
+    route = [(0.0, 0.0), (400.0, 0.0), (400.0, 600.0), (1000.0, 600.0)]
+    pts = polyline_points(route, 10.0)[::30]   # 10 m/s sampled every 30 s
+    fixes = fixes_along(pts, dt=30.0)
+    events = run(Tracker(net, "v1"), fixes)
+    path = committed_path(events)
+    assert_connected(net, path)
+    assert ways(net, path) == [1, 6, 7]
+
+
+def test_tracker_single_fix_and_empty_flush() -> None:
+    """Degenerate trips: flushing an empty tracker gives nothing; one fix gives one commit."""
+    net = straight_road()
+    tr = Tracker(net, "v1")
+    assert tr.flush() == []
+    events = run(tr, fixes_along([(500.0, 3.0)]))
+    assert len(assignments(events)) == 1
+    (c,) = commits(events)
+    assert len(c.fixes) == 1 and len(c.path) == 1
