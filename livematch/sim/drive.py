@@ -1,0 +1,474 @@
+"""Simulate one vehicle driving a road network, with ground truth and noisy GPS fixes.
+
+A drive is built in four steps, each seeded by the caller's :class:`numpy.random.Generator`
+(no global random state, no wall clock, so the same seed gives the same drive):
+
+1. **Route**: a random walk along directed segments inside the network's largest strongly
+   connected part (so one-way streets are respected and the walk never gets stuck),
+   preferring straight-ish continuations and never turning back on itself except at a
+   dead end (:func:`random_route`).
+2. **Speed profile**: accelerate to a cruise speed that depends on the road class, slow
+   down for turns and slower roads, stop at some junctions for 5–40 s; integrated in
+   0.2 s steps and sampled at 1 Hz into :class:`TruthPoint` records (time, position,
+   segment, offset along it, index into the path).
+3. **GPS error**: a first-order Gauss–Markov (AR(1)) process per axis with time constant
+   ``tau_s`` and stationary standard deviation ``sigma_m`` (:func:`gauss_markov`), plus
+   rare single-fix outliers 50–300 m away in a random direction.
+4. **Sampling**: :func:`observe` takes every ``interval_s``-th second of the 1 Hz truth
+   and adds the error drawn for that second, so drives sampled at 1, 5, 15 and 30 s share
+   their truth and their noise.
+
+Units: metres, seconds; positions in the network's projected CRS.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import networkx as nx
+import numpy as np
+import numpy.typing as npt
+
+from livematch.core.network import RoadNetwork
+
+FloatArray = npt.NDArray[np.float64]
+BoolArray = npt.NDArray[np.bool_]
+
+#: Cruise speed per OpenStreetMap ``highway`` class, m/s. Typical urban free-flow speeds
+#: (common practice, chosen by hand, not measured); unknown classes use ``DEFAULT_SPEED``.
+ROAD_CLASS_SPEED: dict[str, float] = {
+    "motorway": 25.0, "motorway_link": 14.0,
+    "trunk": 20.0, "trunk_link": 12.0,
+    "primary": 14.0, "primary_link": 10.0,
+    "secondary": 12.5, "secondary_link": 9.0,
+    "tertiary": 11.0, "tertiary_link": 8.0,
+    "unclassified": 9.0, "residential": 8.0, "road": 8.0,
+    "living_street": 4.0, "service": 5.0,
+}
+DEFAULT_SPEED = 8.0
+
+_DT = 0.2  # integration step of the speed profile, s (5 steps per truth sample)
+
+
+@dataclass(frozen=True, kw_only=True)
+class DriveSettings:
+    """How a simulated drive moves and how its GPS errs. Units: metres, seconds.
+
+    Attributes:
+        duration_s: length of the drive; the truth has ``duration_s + 1`` samples at 1 Hz
+            (fewer only if the route ends first, which a long enough route avoids).
+        sigma_m: stationary standard deviation of the GPS error *per axis* (east, north);
+            the horizontal RMS error is ``sigma_m * sqrt(2)``.
+        tau_s: time constant of the error's autocorrelation, ``exp(-lag / tau_s)``.
+            Consumer GNSS error wanders over tens of seconds; 30–60 s is a typical value
+            (from memory).
+        outlier_p: probability that a fix is an outlier.
+        outlier_min_m, outlier_max_m: an outlier is moved this far (uniform) in a uniform
+            random direction, on top of the correlated error.
+        stop_p: probability of stopping at a junction (a vertex with a real choice).
+        stop_min_s, stop_max_s: stop duration, uniform.
+        accel_mps2, decel_mps2: comfortable acceleration and braking (common practice).
+        speed_factor: each drive's cruise speeds are scaled by a uniform factor in this
+            range (drivers differ).
+        straight_bias: the random walk weighs a continuation by ``exp(bias * cos(turn))``:
+            0 is a uniform choice, larger values prefer going straight.
+        delay_s: the receive delay of each fix (``at - time``), uniform in this range.
+            Below 1 s it never reorders fixes sampled every second or slower.
+    """
+
+    duration_s: float = 900.0
+    sigma_m: float = 5.0
+    tau_s: float = 45.0
+    outlier_p: float = 0.01
+    outlier_min_m: float = 50.0
+    outlier_max_m: float = 300.0
+    stop_p: float = 0.1
+    stop_min_s: float = 5.0
+    stop_max_s: float = 40.0
+    accel_mps2: float = 1.5
+    decel_mps2: float = 2.0
+    speed_factor: tuple[float, float] = (0.85, 1.1)
+    straight_bias: float = 2.0
+    delay_s: tuple[float, float] = (0.1, 0.9)
+
+
+@dataclass(frozen=True, slots=True)
+class TruthPoint:
+    """Where the vehicle truly was at second ``t``.
+
+    Attributes:
+        t: epoch seconds.
+        x, y: projected metres.
+        segment: the directed segment driven.
+        offset_m: distance from the segment's start.
+        path_index: index of that segment in :attr:`Drive.path` (a segment can recur).
+        path_pos_m: distance driven from the start of the path.
+    """
+
+    t: float
+    x: float
+    y: float
+    segment: int
+    offset_m: float
+    path_index: int
+    path_pos_m: float
+
+
+@dataclass(frozen=True, slots=True)
+class Observation:
+    """One GPS fix as the vehicle would report it, with a link back to the truth.
+
+    Attributes:
+        t: the fix time (equal to the truth sample's time), epoch seconds.
+        x, y: observed position, projected metres (truth + error).
+        accuracy: the horizontal accuracy the device would report, metres.
+        outlier: whether an outlier jump was added.
+        truth_index: index of the matching sample in :attr:`Drive.truth`.
+        delay_s: receive delay, seconds (the replay log's ``at`` is ``t + delay_s``).
+    """
+
+    t: float
+    x: float
+    y: float
+    accuracy: float
+    outlier: bool
+    truth_index: int
+    delay_s: float
+
+
+@dataclass(frozen=True)
+class Drive:
+    """A simulated drive: its route, its 1 Hz truth and the error drawn for each second.
+
+    Attributes:
+        vehicle: vehicle id.
+        path: the directed segments driven, in order, from the first to the last sample.
+        truth: one :class:`TruthPoint` per second.
+        error_xy: (n, 2) correlated GPS error per second, metres.
+        outlier_xy: (n, 2) outlier jump per second (zero where there is none), metres.
+        accuracy: (n,) reported accuracy per second, metres.
+        delay: (n,) receive delay per second, seconds.
+    """
+
+    vehicle: str
+    path: tuple[int, ...]
+    truth: tuple[TruthPoint, ...]
+    error_xy: FloatArray
+    outlier_xy: FloatArray
+    accuracy: FloatArray
+    delay: FloatArray
+
+
+def gauss_markov(
+    rng: np.random.Generator,
+    n_steps: int,
+    sigma: float,
+    tau_s: float,
+    dt_s: float = 1.0,
+    n_series: int = 1,
+) -> FloatArray:
+    """Sample a first-order Gauss–Markov (AR(1)) process, started in its stationary state.
+
+    ``e[k+1] = phi * e[k] + sqrt(1 - phi**2) * sigma * w[k]`` with ``phi = exp(-dt/tau)``
+    and ``w`` standard normal, so every ``e[k]`` has standard deviation ``sigma`` and the
+    autocorrelation at lag ``h`` steps is ``phi**h`` (the standard first-order
+    Gauss–Markov process). White noise is a poor model of GNSS error: consecutive errors
+    are strongly correlated (Ranacher et al., IJGIS 2016), which is what makes a matcher
+    that trusts "independent" fixes drift onto a parallel road.
+
+    Args:
+        rng: the random generator (the only source of randomness).
+        n_steps: number of samples per series.
+        sigma: stationary standard deviation, metres.
+        tau_s: correlation time constant, seconds (> 0).
+        dt_s: sample spacing, seconds.
+        n_series: independent series, returned as columns.
+
+    Returns:
+        (n_steps, n_series) array.
+
+    >>> gauss_markov(np.random.default_rng(0), 3, 5.0, 30.0).shape
+    (3, 1)
+    >>> gauss_markov(np.random.default_rng(0), 0, 5.0, 30.0).shape
+    (0, 1)
+    """
+    if tau_s <= 0 or sigma < 0 or dt_s <= 0:
+        raise ValueError(f"gauss_markov needs tau_s > 0, sigma >= 0, dt_s > 0; "
+                         f"got tau_s={tau_s}, sigma={sigma}, dt_s={dt_s}")
+    out = np.zeros((n_steps, n_series))
+    if n_steps == 0:
+        return out
+    phi = math.exp(-dt_s / tau_s)
+    w = rng.standard_normal((n_steps, n_series))
+    out[0] = sigma * w[0]
+    scale = math.sqrt(1.0 - phi * phi) * sigma
+    for k in range(1, n_steps):
+        out[k] = phi * out[k - 1] + scale * w[k]
+    return out
+
+
+def drivable_segments(network: RoadNetwork) -> BoolArray:
+    """Mask of the segments inside the largest strongly connected part of the network.
+
+    A walk restricted to these segments can always go on, and any segment of it can be
+    reached from any other. Built with networkx from the network's arrays.
+
+    >>> from livematch.core.geometry import Projection
+    >>> net = RoadNetwork(Projection.local(0, 0), np.array([[0.0, 0], [10, 0]]),
+    ...     np.array([1, 2]), np.array([0]), np.array([1]), np.array([7]), np.array([0]),
+    ...     [{"highway": "residential"}])
+    >>> drivable_segments(net).tolist()   # one one-way segment: no cycle, nothing drivable
+    [False]
+    """
+    graph = nx.DiGraph()
+    graph.add_nodes_from(range(network.n_vertices))
+    graph.add_edges_from(zip(network.seg_from.tolist(), network.seg_to.tolist(), strict=True))
+    best: set[int] = set()
+    for comp in nx.strongly_connected_components(graph):
+        if len(comp) > len(best):
+            best = comp
+    inside = np.zeros(network.n_vertices, dtype=bool)
+    if len(best) > 1:
+        inside[list(best)] = True
+    return inside[network.seg_from] & inside[network.seg_to]
+
+
+def _direction(network: RoadNetwork, segment: int) -> tuple[float, float]:
+    ax, ay, bx, by = network.segment_coords(segment)
+    length = math.hypot(bx - ax, by - ay)
+    if length == 0.0:
+        return 0.0, 0.0
+    return (bx - ax) / length, (by - ay) / length
+
+
+def random_route(
+    network: RoadNetwork,
+    rng: np.random.Generator,
+    min_length_m: float,
+    allowed: BoolArray | None = None,
+    straight_bias: float = 2.0,
+) -> list[int]:
+    """A connected sequence of directed segments at least ``min_length_m`` long.
+
+    Starts at a uniformly chosen allowed segment; at each vertex picks a leaving allowed
+    segment with weight ``exp(straight_bias * cos(turn angle))``, excluding the twin of
+    the segment just driven (no U-turns) unless it is the only way on (a dead end).
+
+    Args:
+        network: the road network.
+        rng: random generator.
+        min_length_m: the route stops growing once it is at least this long.
+        allowed: segments the walk may use (default: :func:`drivable_segments`).
+        straight_bias: preference for going straight (0 = uniform choice).
+
+    Raises:
+        ValueError: when no segment is allowed (a network without any cycle).
+    """
+    if allowed is None:
+        allowed = drivable_segments(network)
+    candidates = np.flatnonzero(allowed)
+    if len(candidates) == 0:
+        raise ValueError(f"network {network.source!r} has no drivable cycle to simulate on")
+    seg = int(candidates[rng.integers(len(candidates))])
+    route = [seg]
+    length = float(network.seg_len[seg])
+    heading = _direction(network, seg)
+    while length < min_length_m:
+        outs = [int(s) for s in network.out_segments(int(network.seg_to[seg])) if allowed[s]]
+        forward = [s for s in outs if s != network.seg_twin[seg]] or outs
+        weights = np.empty(len(forward))
+        for i, s in enumerate(forward):
+            dx, dy = _direction(network, s)
+            weights[i] = math.exp(straight_bias * (dx * heading[0] + dy * heading[1]))
+        seg = forward[int(rng.choice(len(forward), p=weights / weights.sum()))]
+        route.append(seg)
+        length += float(network.seg_len[seg])
+        d = _direction(network, seg)
+        if d != (0.0, 0.0):
+            heading = d
+    return route
+
+
+def _cruise_speed(network: RoadNetwork, segment: int) -> float:
+    road = network.roads[int(network.seg_road[segment])]
+    return ROAD_CLASS_SPEED.get(str(road.get("highway", "")), DEFAULT_SPEED)
+
+
+def _speed_limits(
+    network: RoadNetwork, route: list[int], rng: np.random.Generator, settings: DriveSettings
+) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
+    """Per route segment: start position, cruise speed, entry speed limit, stop duration."""
+    n = len(route)
+    lens = network.seg_len[np.asarray(route, dtype=np.int64)]
+    start = np.concatenate([[0.0], np.cumsum(lens)[:-1]])
+    factor = rng.uniform(*settings.speed_factor)
+    cruise = np.array([_cruise_speed(network, s) * factor for s in route])
+    entry = np.full(n, np.inf)
+    stop = np.zeros(n)
+    stop_draw = rng.random(n)
+    stop_len = rng.uniform(settings.stop_min_s, settings.stop_max_s, n)
+    heading = _direction(network, route[0])
+    for k in range(1, n):
+        d = _direction(network, route[k])
+        if d == (0.0, 0.0):
+            d = heading
+        cos_turn = max(-1.0, min(1.0, d[0] * heading[0] + d[1] * heading[1]))
+        # Corner speed: cos^2(turn / 2) is 1 straight on, 1/2 at a right angle, 0 for a
+        # U-turn; floor 0.2 of cruise (a rule of thumb, common practice).
+        corner = max(0.2, (1.0 + cos_turn) / 2.0)
+        entry[k] = min(cruise[k - 1], cruise[k]) * corner
+        vertex = int(network.seg_from[route[k]])
+        prev = route[k - 1]
+        choices = [s for s in network.out_segments(vertex) if s != network.seg_twin[prev]]
+        if len(choices) >= 2 and stop_draw[k] < settings.stop_p:
+            stop[k] = stop_len[k]
+        heading = d
+    return start, cruise, entry, stop
+
+
+def simulate_drive(
+    network: RoadNetwork,
+    rng: np.random.Generator,
+    vehicle: str,
+    start_time: float,
+    settings: DriveSettings = DriveSettings(),
+    allowed: BoolArray | None = None,
+) -> Drive:
+    """Simulate one drive: route, speed profile, 1 Hz truth and the GPS error per second.
+
+    Args:
+        network: the road network.
+        rng: random generator; the same generator state gives the same drive.
+        vehicle: vehicle id written into the drive.
+        start_time: epoch seconds of the first truth sample.
+        settings: motion and error model.
+        allowed: segments the route may use (default :func:`drivable_segments`; pass it
+            in when simulating many drives on one network, it costs a graph search).
+
+    Example (a 2 s drive along a 100 m two-way street):
+        >>> from livematch.core.geometry import Projection
+        >>> net = RoadNetwork(Projection.local(0, 0), np.array([[0.0, 0], [100, 0]]),
+        ...     np.array([1, 2]), np.array([0, 1]), np.array([1, 0]), np.array([7, 7]),
+        ...     np.array([0, 0]), [{"highway": "residential"}])
+        >>> d = simulate_drive(net, np.random.default_rng(1), "v", 0.0,
+        ...                    DriveSettings(duration_s=2.0))
+        >>> len(d.truth), d.truth[0].offset_m
+        (3, 0.0)
+    """
+    max_speed = max(ROAD_CLASS_SPEED.values()) * settings.speed_factor[1]
+    route = random_route(network, rng, settings.duration_s * max_speed + 100.0, allowed,
+                         settings.straight_bias)
+    start, cruise, entry, stop = _speed_limits(network, route, rng, settings)
+    total = float(start[-1] + network.seg_len[route[-1]])
+    positions = _integrate(start, cruise, entry, stop, total, settings)
+    truth = _truth(network, route, start, positions, start_time)
+    n = len(truth)
+    error = gauss_markov(rng, n, settings.sigma_m, settings.tau_s, 1.0, 2)
+    is_out = rng.random(n) < settings.outlier_p
+    dist = rng.uniform(settings.outlier_min_m, settings.outlier_max_m, n)
+    angle = rng.uniform(0.0, 2.0 * math.pi, n)
+    outlier = np.where(is_out[:, None], np.stack([dist * np.cos(angle),
+                                                  dist * np.sin(angle)], axis=1), 0.0)
+    # Reported accuracy: the radius holding ~68 % of a 2-D Gaussian error with per-axis
+    # sigma is sigma * sqrt(-2 ln 0.32) ~= 1.51 sigma, jittered +-20 % per fix.
+    accuracy = np.round(1.51 * settings.sigma_m * rng.uniform(0.8, 1.2, n), 1)
+    delay = np.round(rng.uniform(*settings.delay_s, n), 3)
+    last = truth[-1].path_index if truth else 0
+    return Drive(vehicle, tuple(route[: last + 1]), truth, error, outlier, accuracy, delay)
+
+
+def _integrate(
+    start: FloatArray, cruise: FloatArray, entry: FloatArray, stop: FloatArray,
+    total: float, settings: DriveSettings,
+) -> list[float]:
+    """Distance along the route at each whole second, by a simple speed controller."""
+    n_samples = int(settings.duration_s) + 1
+    per_sample = round(1.0 / _DT)
+    lookahead = 250.0
+    s, v, dwell = 0.0, 0.0, 0.0
+    k = 0  # current route segment
+    nxt = 1  # next constraint (segment start) not yet passed
+    out = [0.0]
+    step = 0
+    while len(out) < n_samples:
+        step += 1
+        if dwell > 0.0:
+            dwell -= _DT
+        else:
+            while k + 1 < len(start) and start[k + 1] <= s:
+                k += 1
+            allowed = float(cruise[k])
+            j = nxt
+            while j < len(start) and start[j] - s < lookahead:
+                gap = max(0.0, float(start[j]) - s)
+                target = 0.0 if stop[j] > 0.0 else float(entry[j])
+                limit = math.sqrt(target * target + 2.0 * settings.decel_mps2 * gap)
+                if stop[j] > 0.0:
+                    limit = max(1.0, limit)  # creep the last metres instead of never arriving
+                allowed = min(allowed, limit)
+                if stop[j] > 0.0:
+                    break  # nothing beyond a stop matters until the stop is done
+                j += 1
+            v = min(allowed, v + settings.accel_mps2 * _DT)
+            ds = v * _DT
+            while nxt < len(start) and start[nxt] <= s + ds:
+                if stop[nxt] > 0.0:
+                    ds = float(start[nxt]) - s
+                    v = 0.0
+                    dwell = float(stop[nxt])
+                    nxt += 1
+                    break
+                nxt += 1
+            s = min(total, s + ds)
+        if step % per_sample == 0:
+            out.append(s)
+    return out
+
+
+def _truth(
+    network: RoadNetwork, route: list[int], start: FloatArray, positions: list[float],
+    start_time: float,
+) -> tuple[TruthPoint, ...]:
+    points = []
+    for i, s in enumerate(positions):
+        k = int(np.searchsorted(start, s, side="right")) - 1
+        k = min(max(k, 0), len(route) - 1)
+        seg = route[k]
+        length = float(network.seg_len[seg])
+        offset = min(max(s - float(start[k]), 0.0), length)
+        ax, ay, bx, by = network.segment_coords(seg)
+        f = offset / length if length > 0.0 else 0.0
+        points.append(TruthPoint(
+            t=start_time + i, x=ax + f * (bx - ax), y=ay + f * (by - ay), segment=seg,
+            offset_m=offset, path_index=k, path_pos_m=float(start[k]) + offset,
+        ))
+    return tuple(points)
+
+
+def observe(drive: Drive, interval_s: int) -> list[Observation]:
+    """The fixes a device reporting every ``interval_s`` seconds would send.
+
+    Samples seconds 0, k, 2k, ... of the truth and adds that second's error and outlier.
+
+    >>> from livematch.core.geometry import Projection
+    >>> net = RoadNetwork(Projection.local(0, 0), np.array([[0.0, 0], [100, 0]]),
+    ...     np.array([1, 2]), np.array([0, 1]), np.array([1, 0]), np.array([7, 7]),
+    ...     np.array([0, 0]), [{"highway": "residential"}])
+    >>> d = simulate_drive(net, np.random.default_rng(1), "v", 0.0,
+    ...                    DriveSettings(duration_s=10.0))
+    >>> [o.t for o in observe(d, 5)]
+    [0.0, 5.0, 10.0]
+    """
+    if interval_s < 1:
+        raise ValueError(f"interval_s must be a whole number of seconds >= 1, got {interval_s}")
+    out = []
+    for i in range(0, len(drive.truth), interval_s):
+        p = drive.truth[i]
+        ex, ey = drive.error_xy[i] + drive.outlier_xy[i]
+        out.append(Observation(
+            t=p.t, x=p.x + float(ex), y=p.y + float(ey), accuracy=float(drive.accuracy[i]),
+            outlier=bool(np.any(drive.outlier_xy[i] != 0.0)), truth_index=i,
+            delay_s=float(drive.delay[i]),
+        ))
+    return out
