@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import itertools
+
 import numpy as np
 
 from livematch.core.build import Road, network_from_roads
@@ -57,7 +59,7 @@ def polyline_points(coords: list[tuple[float, float]], spacing: float) -> list[t
     """Points every ``spacing`` metres along a polyline (its last point included)."""
     out: list[tuple[float, float]] = []
     carry = 0.0
-    for (ax, ay), (bx, by) in zip(coords, coords[1:], strict=False):
+    for (ax, ay), (bx, by) in itertools.pairwise(coords):
         length = float(np.hypot(bx - ax, by - ay))
         d = carry
         while d < length:

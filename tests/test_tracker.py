@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import numpy as np
@@ -38,7 +39,7 @@ def committed_path(events: list) -> list[int]:
 
 
 def assert_connected(net: RoadNetwork, path: list[int]) -> None:
-    for a, b in zip(path, path[1:], strict=False):
+    for a, b in itertools.pairwise(path):
         assert net.seg_to[a] == net.seg_from[b], f"path breaks between {a} and {b}"
 
 
@@ -51,7 +52,8 @@ def ways(net: RoadNetwork, segs: list[int]) -> list[int]:
     return out
 
 
-ROUTE = [(0.0, 200.0), (600.0, 200.0), (600.0, 800.0)]  # east on Row 1 (way 3), north on Col 3 (way 8)
+# east on Row 1 (way 3), then north on Col 3 (way 8)
+ROUTE = [(0.0, 200.0), (600.0, 200.0), (600.0, 800.0)]
 
 
 def test_tracker_noise_free_matched_exactly_at_smallest_level() -> None:
@@ -138,14 +140,15 @@ def test_tracker_uturn_at_dead_end_inside_one_window() -> None:
 def test_tracker_uturn_mid_segment_restarts_small_level() -> None:
     """A U-turn in the middle of a segment: the small window dies and the match turns around."""
     net = straight_road(1000.0, step=100.0)
-    pts = [(float(x), 0.0) for x in range(0, 351, 10)] + [(float(x), 0.0) for x in range(340, 0, -10)]
+    pts = [(float(x), 0.0) for x in range(0, 351, 10)]
+    pts += [(float(x), 0.0) for x in range(340, 0, -10)]
     fixes = fixes_along(pts)
     asg = assignments(run(Tracker(net, "v1"), fixes))
     westbound = [net.node_xy[net.seg_to[a.segment], 0] < net.node_xy[net.seg_from[a.segment], 0]
                  for a in asg]
     assert not any(westbound[:30])
     assert all(westbound[-20:])
-    assert any(b.window_fixes < a.window_fixes for a, b in zip(asg, asg[1:], strict=False))
+    assert any(b.window_fixes < a.window_fixes for a, b in itertools.pairwise(asg))
 
 
 def noisy_drive(seed: int, n_legs: int = 8) -> tuple[RoadNetwork, list[Fix]]:
