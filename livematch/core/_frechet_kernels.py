@@ -1,0 +1,359 @@
+"""Compiled inner loops for :mod:`livematch.core.frechet` (numba, CPU only).
+
+Private: callers go through :mod:`livematch.core.frechet`, which validates the input and
+shifts both curves to a local origin first. Every kernel takes C-contiguous float64
+(n, 2) arrays in metres. Empty free intervals are written as ``(2.0, -1.0)`` (lo > hi).
+
+Each kernel is compiled on first use and cached on disk (``cache=True``), so the first
+call in a fresh environment pays the compile time once.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numba
+import numpy as np
+
+# Sentinels for an empty interval on a cell boundary: lo > hi.
+_EMPTY_LO = 2.0
+_EMPTY_HI = -1.0
+
+
+@numba.njit(cache=True)
+def free_interval(
+    ax: float, ay: float, bx: float, by: float, px: float, py: float, eps2: float
+) -> tuple[float, float]:
+    """Parameters x in [0, 1] with ``|a + x (b - a) - p|^2 <= eps2``, as (lo, hi).
+
+    The same interval as :func:`livematch.core.geometry.segment_param_interval`, computed
+    for robustness rather than from the raw quadratic: the endpoint tests are exact
+    comparisons of squared distances (so the four boundaries meeting at a cell corner
+    agree about that corner), and the half-width comes from the perpendicular distance
+    (a cross product), which avoids the cancellation in ``b^2 - 4ac`` near tangency.
+    """
+    dx = bx - ax
+    dy = by - ay
+    fx = px - ax
+    fy = py - ay
+    gx = px - bx
+    gy = py - by
+    in0 = fx * fx + fy * fy <= eps2
+    in1 = gx * gx + gy * gy <= eps2
+    if in0 and in1:
+        return 0.0, 1.0  # a disc is convex: both ends inside means all of it
+    a = dx * dx + dy * dy
+    if a <= 0.0:
+        return _EMPTY_LO, _EMPTY_HI  # zero-length segment with its point outside
+    cross = dx * fy - dy * fx
+    r = eps2 - cross * cross / a
+    if r < 0.0:
+        if not (in0 or in1):
+            return _EMPTY_LO, _EMPTY_HI
+        r = 0.0  # rounding: an endpoint is inside, so the line is within eps
+    t0 = (fx * dx + fy * dy) / a
+    w = math.sqrt(r / a)
+    if in0:
+        lo = 0.0
+        hi = min(max(t0 + w, 0.0), 1.0)
+        return lo, hi
+    if in1:
+        return min(max(t0 - w, 0.0), 1.0), 1.0
+    lo = t0 - w
+    hi = t0 + w
+    # Neither end is inside, so a non-empty interval lies inside (0, 1); clamp rounding.
+    if hi < 0.0 or lo > 1.0:
+        return _EMPTY_LO, _EMPTY_HI
+    return max(lo, 0.0), min(hi, 1.0)
+
+
+@numba.njit(cache=True)
+def decide(p: np.ndarray, q: np.ndarray, eps: float) -> bool:
+    """Decide whether the Fréchet distance of p and q is at most eps (Alt & Godau).
+
+    Row-by-row sweep over the free-space diagram. Row j is segment j of q; cell (i, j)
+    pairs segment i of p with segment j of q. ``blo/bhi[i]`` hold the reachable part of
+    the bottom boundary of cell (i, j) (a parameter along p's segment i), and
+    ``llo/lhi`` the reachable part of the left boundary of the current cell (a parameter
+    along q's segment j). Only the band of cells that can be reached is visited, so a
+    call costs O(m + n + reachable cells), at most O(mn).
+    """
+    m = p.shape[0]
+    n = q.shape[0]
+    if not eps >= 0.0:  # also rejects NaN
+        return False
+    eps2 = eps * eps
+    dx0 = p[0, 0] - q[0, 0]
+    dy0 = p[0, 1] - q[0, 1]
+    dx1 = p[m - 1, 0] - q[n - 1, 0]
+    dy1 = p[m - 1, 1] - q[n - 1, 1]
+    if dx0 * dx0 + dy0 * dy0 > eps2 or dx1 * dx1 + dy1 * dy1 > eps2:
+        return False
+    if m == 1 or n == 1:
+        # A single point against a curve: every vertex of the curve must be within eps
+        # (the farthest point of a polyline from a point is one of its vertices).
+        for i in range(m):
+            for j in range(n):
+                dx = p[i, 0] - q[j, 0]
+                dy = p[i, 1] - q[j, 1]
+                if dx * dx + dy * dy > eps2:
+                    return False
+        return True
+
+    blo = np.empty(m - 1)
+    bhi = np.empty(m - 1)
+    # Bottom row boundary (q's vertex 0): reachable only as one run from the start corner.
+    bmin = m
+    bmax = -1
+    chain = True
+    for i in range(m - 1):
+        blo[i] = _EMPTY_LO
+        bhi[i] = _EMPTY_HI
+        if chain:
+            lo, hi = free_interval(
+                p[i, 0], p[i, 1], p[i + 1, 0], p[i + 1, 1], q[0, 0], q[0, 1], eps2
+            )
+            if lo == 0.0 and hi >= 0.0:
+                blo[i] = 0.0
+                bhi[i] = hi
+                bmin = min(bmin, i)
+                bmax = i
+                chain = hi >= 1.0
+            else:
+                chain = False
+
+    lchain = True  # left edge of the diagram (p's vertex 0) still reachable from the start
+    last_right_hi = -1.0
+    for j in range(n - 1):
+        llo = _EMPTY_LO
+        lhi = _EMPTY_HI
+        if lchain:
+            lo, hi = free_interval(
+                q[j, 0], q[j, 1], q[j + 1, 0], q[j + 1, 1], p[0, 0], p[0, 1], eps2
+            )
+            if lo == 0.0 and hi >= 0.0:
+                llo = 0.0
+                lhi = hi
+                lchain = hi >= 1.0
+            else:
+                lchain = False
+        left = llo <= lhi
+        if not left and bmax < 0:
+            return False  # nothing reachable in this row, nor above it
+        start = 0 if left else bmin
+        nbmin = m
+        nbmax = -1
+        i = start
+        finished = False
+        while i < m - 1:
+            if i > bmax and not left:
+                break  # no reachable input for any cell further right in this row
+            bottom = blo[i] <= bhi[i]
+            if left or bottom:
+                tlo, thi = free_interval(
+                    p[i, 0], p[i, 1], p[i + 1, 0], p[i + 1, 1], q[j + 1, 0], q[j + 1, 1], eps2
+                )
+                if not left:
+                    tlo = max(tlo, float(blo[i]))
+                rlo, rhi = free_interval(
+                    q[j, 0], q[j, 1], q[j + 1, 0], q[j + 1, 1], p[i + 1, 0], p[i + 1, 1], eps2
+                )
+                if not bottom:
+                    rlo = max(rlo, llo)
+                if tlo <= thi:
+                    blo[i] = tlo
+                    bhi[i] = thi
+                    nbmin = min(nbmin, i)
+                    nbmax = i
+                else:
+                    blo[i] = _EMPTY_LO
+                    bhi[i] = _EMPTY_HI
+                llo = rlo
+                lhi = rhi
+                left = llo <= lhi
+            else:
+                blo[i] = _EMPTY_LO
+                bhi[i] = _EMPTY_HI
+                llo = _EMPTY_LO
+                lhi = _EMPTY_HI
+                left = False
+            i += 1
+            if i == m - 1:
+                finished = True
+        last_right_hi = lhi if (finished and left) else -1.0
+        bmin = nbmin
+        bmax = nbmax
+    # The end corner is reached through the top edge of the last column or the right edge
+    # of the last row (its distance was checked above, so "contains 1" is exact).
+    return bhi[m - 2] >= 1.0 or last_right_hi >= 1.0
+
+
+@numba.njit(cache=True)
+def discrete_frechet(p: np.ndarray, q: np.ndarray) -> float:
+    """Eiter–Mannila dynamic program over vertex couplings, O(mn) time, O(n) memory."""
+    m = p.shape[0]
+    n = q.shape[0]
+    prev = np.empty(n)
+    cur = np.empty(n)
+    for i in range(m):
+        for j in range(n):
+            dx = p[i, 0] - q[j, 0]
+            dy = p[i, 1] - q[j, 1]
+            d2 = dx * dx + dy * dy
+            if i == 0 and j == 0:
+                best = d2
+            elif i == 0:
+                best = cur[j - 1]
+            elif j == 0:
+                best = prev[0]
+            else:
+                best = min(float(prev[j]), float(prev[j - 1]), float(cur[j - 1]))
+            cur[j] = max(best, d2)
+        prev, cur = cur, prev
+    # Squared distances throughout: sqrt is monotone, so one root at the end suffices.
+    return math.sqrt(prev[n - 1])
+
+
+@numba.njit(cache=True)
+def _segments(q: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Segments of q as separate arrays: start x, start y, dx, dy, 1/length^2 (0 if none).
+
+    Separate contiguous arrays let the inner loops below vectorise.
+    """
+    ax = q[:-1, 0].copy()
+    ay = q[:-1, 1].copy()
+    dx = q[1:, 0] - q[:-1, 0]
+    dy = q[1:, 1] - q[:-1, 1]
+    inv = np.zeros(ax.shape[0])
+    for j in range(ax.shape[0]):
+        a = dx[j] * dx[j] + dy[j] * dy[j]
+        if a > 0.0:
+            inv[j] = 1.0 / a
+    return ax, ay, dx, dy, inv
+
+
+@numba.njit(cache=True)
+def vertex_polyline_dist2(p: np.ndarray, q: np.ndarray) -> np.ndarray:
+    """Squared distance from each vertex of p to the polyline q (>= 2 points), shape (m,)."""
+    ax, ay, dx, dy, inv = _segments(q)
+    m = p.shape[0]
+    out = np.empty(m)
+    for k in range(m):
+        px = p[k, 0]
+        py = p[k, 1]
+        best = np.inf
+        for j in range(ax.shape[0]):
+            fx = px - ax[j]
+            fy = py - ay[j]
+            t = min(max((fx * dx[j] + fy * dy[j]) * inv[j], 0.0), 1.0)
+            ex = fx - t * dx[j]
+            ey = fy - t * dy[j]
+            best = min(best, ex * ex + ey * ey)
+        out[k] = best
+    return out
+
+
+@numba.njit(cache=True)
+def vertex_segment_values(
+    p: np.ndarray, q: np.ndarray, lo: float, hi: float, out: np.ndarray
+) -> int:
+    """Type-b critical values: distances from p's vertices to q's segments, in (lo, hi].
+
+    Writes as many as fit into ``out`` and returns how many there are in all; when that
+    is more than ``out`` holds, the caller calls again with a big enough buffer. (A
+    buffer passed in keeps the hot loop free of reallocation, which numba compiles
+    poorly.)
+    """
+    ax, ay, dx, dy, inv = _segments(q)
+    m = p.shape[0]
+    cap = out.shape[0]
+    lo2 = lo * lo
+    hi2 = hi * hi
+    count = 0
+    for k in range(m):
+        px = p[k, 0]
+        py = p[k, 1]
+        for j in range(ax.shape[0]):
+            fx = px - ax[j]
+            fy = py - ay[j]
+            t = min(max((fx * dx[j] + fy * dy[j]) * inv[j], 0.0), 1.0)
+            ex = fx - t * dx[j]
+            ey = fy - t * dy[j]
+            d2 = ex * ex + ey * ey
+            if lo2 <= d2 and d2 <= hi2:  # cheap prefilter on squares, exact test on roots
+                v = math.sqrt(d2)
+                if lo < v <= hi:
+                    if count < cap:
+                        out[count] = v
+                    count += 1
+    return count
+
+
+@numba.njit(cache=True)
+def equidistant_values(
+    p: np.ndarray, q: np.ndarray, lo: float, hi: float, max_pairs: int, out: np.ndarray
+) -> int:
+    """Type-c critical values of segments of q against pairs of vertices of p, in (lo, hi].
+
+    For segment j of q and vertices k < l of p, the candidate is the distance from p_k
+    (equal to that from p_l) of the point of segment j equidistant from both. It can
+    only be the Fréchet distance eps* if a monotone path crosses row j from column k to
+    column l, so every vertex p_k..p_l lies within eps* <= hi of segment j: only pairs
+    inside one run of consecutive vertices within ``hi`` of segment j are tried.
+    Writes and counts like :func:`vertex_segment_values`; returns -1 once more than
+    ``max_pairs`` pairs would have to be tried (the caller then bisects instead).
+    """
+    ax, ay, dx, dy, inv = _segments(q)
+    m = p.shape[0]
+    cap = out.shape[0]
+    hi2 = hi * hi
+    near = np.empty(m, dtype=np.bool_)
+    count = 0
+    pairs = 0
+    for j in range(ax.shape[0]):
+        sx = ax[j]
+        sy = ay[j]
+        ux = dx[j]
+        uy = dy[j]
+        w = inv[j]
+        for k in range(m):
+            fx = p[k, 0] - sx
+            fy = p[k, 1] - sy
+            t = min(max((fx * ux + fy * uy) * w, 0.0), 1.0)
+            ex = fx - t * ux
+            ey = fy - t * uy
+            near[k] = ex * ex + ey * ey <= hi2
+        k0 = 0
+        while k0 < m:
+            if not near[k0]:
+                k0 += 1
+                continue
+            k1 = k0
+            while k1 + 1 < m and near[k1 + 1]:
+                k1 += 1
+            run = k1 - k0 + 1
+            pairs += run * (run - 1) // 2
+            if pairs > max_pairs:
+                return -1
+            for k in range(k0, k1 + 1):
+                pkx = p[k, 0] - sx
+                pky = p[k, 1] - sy
+                sk = pkx * pkx + pky * pky
+                for ll in range(k + 1, k1 + 1):
+                    plx = p[ll, 0] - sx
+                    ply = p[ll, 1] - sy
+                    den = 2.0 * (ux * (plx - pkx) + uy * (ply - pky))
+                    if den == 0.0:
+                        continue  # no single equidistant point: covered by types a/b
+                    t = (plx * plx + ply * ply - sk) / den
+                    if t < 0.0 or t > 1.0:
+                        continue
+                    ex = t * ux - pkx
+                    ey = t * uy - pky
+                    v = math.sqrt(ex * ex + ey * ey)
+                    if lo < v <= hi:
+                        if count < cap:
+                            out[count] = v
+                        count += 1
+            k0 = k1 + 1
+    return count
