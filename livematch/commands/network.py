@@ -121,7 +121,8 @@ def _render(name: str, facts: dict[str, Any]) -> str:
             f"import      {stats['ways_seen']} seen, {stats['ways_kept']} kept, "
             f"{stats['excluded_class']} other classes, {stats['excluded_access']} closed to "
             f"motor vehicles, {stats['ways_clipped']} clipped at "
-            f"{stats['missing_node_refs']} missing nodes"
+            f"{stats['missing_node_refs']} missing nodes, {stats['degenerate']} left with "
+            "no segment"
         )
     if facts.get("built_at"):
         lines.append(f"built at    {facts['built_at']}")
