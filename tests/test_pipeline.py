@@ -1,0 +1,323 @@
+"""The shared message pipeline: rejects, dedupe, trackers, checkpoints, eviction."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from catalogue import grid, straight_road
+
+from livematch.core.settings import MatchSettings
+from livematch.errors import BadConfigError, BadStateError, LivematchError
+from livematch.feed.decode import FeedLimits
+from livematch.pipeline import (
+    DEDUPE_WINDOW,
+    REJECT_PAYLOAD_CHARS,
+    Output,
+    Pipeline,
+    UnknownVehicleError,
+    matcher_settings_from_mapping,
+)
+
+T0 = 1_764_576_000.0
+ROAD = straight_road(2000.0, 50.0)
+
+
+def message(network, t: float, x: float, y: float, **extra: object) -> bytes:
+    """A position message for the point (x, y) metres of ``network``'s projection."""
+    lon, lat = network.projection.to_lonlat(x, y)
+    return json.dumps({"time": t, "lat": float(lat), "lon": float(lon), **extra}).encode()
+
+
+def drive(vehicle: str, n: int, t0: float = T0, dt: float = 2.0, speed: float = 10.0,
+          seed: int = 0, network=ROAD) -> list[tuple[str, bytes, float]]:
+    """(topic, payload, at) of a vehicle driving east along y=0 with 3 m noise."""
+    rng = np.random.default_rng(seed)
+    out = []
+    for i in range(n):
+        t = t0 + i * dt
+        y = float(rng.normal(0.0, 3.0))
+        out.append((f"fleet/{vehicle}/position", message(network, t, 20.0 + speed * dt * i, y),
+                    t + 0.5))
+    return out
+
+
+def run(pipeline: Pipeline, msgs) -> list[Output]:
+    out: list[Output] = []
+    for topic, payload, at in msgs:
+        out.extend(pipeline.handle(topic, payload, at))
+    return out
+
+
+def test_pipeline_assignment_output():
+    """A good fix gives one assignment Output carrying the contract record."""
+    p = Pipeline(ROAD, MatchSettings())
+    (out,) = p.handle("fleet/bus1/position", message(ROAD, T0, 120.0, 2.0), at=T0 + 0.3)
+    assert (out.kind, out.vehicle) == ("assignment", "bus1")
+    assert list(out.record) == ["vehicle", "time", "lat", "lon", "way", "from_node", "to_node",
+                                "offset_m", "road", "eps_m", "window_fixes", "window_s",
+                                "committed"]
+    assert (out.record["vehicle"], out.record["time"], out.record["way"]) == ("bus1", T0, 1)
+    assert out.record["road"] == "Long Street"
+    assert p.counters == {"messages": 1, "fixes": 1, "assignments": 1, "eps_m:15.0": 1,
+                          "vehicle:new": 1}
+    assert p.vehicles() == ["bus1"]
+
+
+def test_pipeline_reject_record():
+    """A bad message becomes a reject Output with at, topic, reason, detail, payload."""
+    p = Pipeline(ROAD, MatchSettings())
+    (out,) = p.handle("fleet/bus1/position", b'{"time": 1, "lat": 0, "lon": 0}', at=12.5)
+    assert out == Output("reject", "bus1", {
+        "at": 12.5, "topic": "fleet/bus1/position", "reason": "out_of_range",
+        "detail": "time 1.0 is outside the years 2000..2100",
+        "payload": '{"time": 1, "lat": 0, "lon": 0}'})
+    assert p.counters["reject:out_of_range"] == 1
+    assert p.vehicles() == []
+
+
+def test_pipeline_reject_vehicle_known_or_none():
+    """Rejects name the vehicle when topic or payload gives a valid one, else None."""
+    p = Pipeline(ROAD, MatchSettings())
+    assert p.handle("raw/feed", b"garbage", 1.0)[0].vehicle is None
+    assert p.handle("raw/feed", b'{"vehicle": "van3", "lat": "x"}', 1.0)[0].vehicle == "van3"
+    assert p.handle("fleet/bus1/position", b"\x00", 1.0)[0].vehicle == "bus1"
+
+
+def test_pipeline_reject_payload_truncated_and_text():
+    """The reject keeps at most 512 characters of the payload, invalid UTF-8 replaced."""
+    p = Pipeline(ROAD, MatchSettings())
+    big = b"\xff" + b"a" * 5000
+    (out,) = p.handle("fleet/bus1/position", big, 1.0)
+    assert out.record["reason"] == "too_large"
+    assert out.record["payload"] == "\ufffd" + "a" * (REJECT_PAYLOAD_CHARS - 1)
+
+
+def test_pipeline_never_raises_on_garbage():
+    """Random bytes, odd JSON and odd topics all end as rejects, each counted."""
+    rng = np.random.default_rng(7)
+    payloads = [bytes(rng.integers(0, 256, int(n), dtype=np.uint8)) for n in range(0, 200, 7)]
+    payloads += [b"{}", b"[]", b"null", b'{"time": null}', b'{"lat": {}, "lon": []}',
+                 b'{"time": "2025-12-01T08:00:00Z", "lat": 1e308, "lon": -1e308}']
+    p = Pipeline(ROAD, MatchSettings())
+    for topic in ["fleet/bus1/position", "", "#", "fleet/+/position", "a/b/c/d"]:
+        for payload in payloads:
+            outs = p.handle(topic, payload, 0.0)
+            assert [o.kind for o in outs] == ["reject"]
+    rejects = sum(v for k, v in p.counters.items() if k.startswith("reject:"))
+    assert rejects == p.counters["messages"] == 5 * len(payloads)
+
+
+def test_pipeline_duplicate_dropped_and_counted():
+    """The same (vehicle, time) again gives no output, only the duplicate counter."""
+    p = Pipeline(ROAD, MatchSettings())
+    msg = ("fleet/bus1/position", message(ROAD, T0, 100.0, 0.0), T0)
+    assert len(run(p, [msg])) == 1
+    assert run(p, [msg]) == []
+    # Same vehicle and time, another position (a resend with a different fix): still dropped.
+    assert p.handle("fleet/bus1/position", message(ROAD, T0, 140.0, 0.0), T0) == []
+    assert (p.counters["duplicate"], p.counters["fixes"], p.counters["messages"]) == (2, 1, 3)
+
+
+def test_pipeline_redelivery_is_idempotent():
+    """Delivering every message twice, or replaying a batch, changes no output."""
+    msgs = drive("bus1", 30) + drive("bus2", 30, seed=3, t0=T0 + 1)
+    msgs.sort(key=lambda m: m[2])
+    once = Pipeline(ROAD, MatchSettings())
+    expected = run(once, msgs) + once.flush()
+    twice = Pipeline(ROAD, MatchSettings())
+    doubled = [m for msg in msgs for m in (msg, msg)]
+    got = run(twice, doubled[:40]) + run(twice, doubled[20:40]) + run(twice, doubled[40:])
+    got += twice.flush()
+    assert got == expected
+    assert twice.counters["duplicate"] == len(msgs) + 20
+    assert twice.counters["fixes"] == once.counters["fixes"] == len(msgs)
+
+
+def test_pipeline_older_fix_goes_to_tracker():
+    """A fix with a new time older than the newest is not a duplicate: the core filters it."""
+    p = Pipeline(ROAD, MatchSettings())
+    run(p, drive("bus1", 5))
+    assert p.handle("fleet/bus1/position", message(ROAD, T0 + 3.0, 50.0, 0.0), T0) == []
+    assert p.counters["filtered:out_of_order"] == 1
+    assert p.counters["duplicate"] == 0
+    assert p.counters["fixes"] == 6
+
+
+def test_pipeline_dedupe_memory_is_bounded():
+    """Only the newest DEDUPE_WINDOW times are remembered; an older resend is out of order."""
+    p = Pipeline(ROAD, MatchSettings())
+    msgs = drive("bus1", DEDUPE_WINDOW + 5, dt=1.0)
+    run(p, msgs)
+    run(p, [msgs[0]])                 # forgotten by dedupe, refused by the tracker
+    run(p, [msgs[-DEDUPE_WINDOW]])    # still remembered
+    assert p.counters["duplicate"] == 1
+    assert p.counters["filtered:out_of_order"] == 1
+
+
+def test_pipeline_flush_commits_every_accepted_fix():
+    """After flush, the commits hold every accepted fix once per vehicle, vehicles sorted."""
+    p = Pipeline(ROAD, MatchSettings())
+    msgs = sorted(drive("zed", 20) + drive("amy", 20, seed=5), key=lambda m: m[2])
+    outs = run(p, msgs)
+    final = p.flush()
+    assert [o.vehicle for o in final] == sorted(o.vehicle for o in final)
+    for vehicle in ("amy", "zed"):
+        assigned = [o.record["time"] for o in outs if o.kind == "assignment"
+                    and o.vehicle == vehicle]
+        committed = [f["time"] for o in outs + final if o.kind == "commit"
+                     and o.vehicle == vehicle for f in o.record["fixes"]]
+        assert committed == assigned == [T0 + 2.0 * i for i in range(20)]
+    assert p.flush() == []  # nothing pending any more
+
+
+def test_pipeline_export_import_round_trip():
+    """A vehicle moved to a fresh pipeline mid-drive continues exactly as if it had stayed."""
+    msgs = sorted(drive("bus1", 40) + drive("bus2", 40, seed=9, t0=T0 + 0.5),
+                  key=lambda m: m[2])
+    stay = Pipeline(ROAD, MatchSettings())
+    run(stay, msgs[:37])
+    moved = Pipeline(ROAD, MatchSettings())
+    for vehicle in stay.vehicles():
+        blob = stay.export_vehicle(vehicle)
+        assert blob.startswith(b"LMPV\x01")
+        moved.import_vehicle(vehicle, blob)
+    assert moved.vehicles() == ["bus1", "bus2"]
+    assert moved.counters["vehicle:imported"] == 2
+    # Redeliveries of already handled messages are still recognised after the move.
+    assert run(moved, msgs[30:37]) == []
+    assert moved.counters["duplicate"] == 7
+    assert run(moved, msgs[37:]) + moved.flush() == run(stay, msgs[37:]) + stay.flush()
+
+
+def test_pipeline_export_is_stable():
+    """Exporting twice gives the same bytes, and a re-import exports the same bytes again."""
+    p = Pipeline(ROAD, MatchSettings())
+    run(p, drive("bus1", 12))
+    blob = p.export_vehicle("bus1")
+    assert p.export_vehicle("bus1") == blob
+    q = Pipeline(ROAD, MatchSettings())
+    q.import_vehicle("bus1", blob)
+    assert q.export_vehicle("bus1") == blob
+
+
+def test_pipeline_import_refuses_bad_blobs():
+    """Wrong magic, version, truncation, vehicle, network or ladder: BadStateError."""
+    p = Pipeline(ROAD, MatchSettings())
+    run(p, drive("bus1", 8))
+    blob = p.export_vehicle("bus1")
+    q = Pipeline(ROAD, MatchSettings())
+    cases = [
+        (b"XXXX" + blob[4:], "does not start with"),
+        (blob[:4] + b"\x02" + blob[5:], "has version 2"),
+        (blob[:4], "has version None"),
+        (blob[: len(blob) // 2], "is corrupt"),
+        (blob[:5] + b"\x00" + blob[6:], "is corrupt"),
+    ]
+    for bad, needle in cases:
+        with pytest.raises(BadStateError, match=needle):
+            q.import_vehicle("bus1", bad)
+    with pytest.raises(BadStateError, match="holds vehicle 'bus1'"):
+        q.import_vehicle("bus2", blob)
+    with pytest.raises(BadStateError, match="different network"):
+        Pipeline(grid(3), MatchSettings()).import_vehicle("bus1", blob)
+    with pytest.raises(BadStateError, match="different eps ladder"):
+        Pipeline(ROAD, MatchSettings(eps_levels=(10.0, 20.0))).import_vehicle("bus1", blob)
+    assert q.vehicles() == []
+
+
+def test_pipeline_unknown_vehicle():
+    """Exporting or evicting a vehicle not held is UnknownVehicleError (a LivematchError)."""
+    p = Pipeline(ROAD, MatchSettings())
+    with pytest.raises(UnknownVehicleError, match="no state held for vehicle 'ghost'") as info:
+        p.export_vehicle("ghost")
+    assert isinstance(info.value, LivematchError) and isinstance(info.value, KeyError)
+    with pytest.raises(UnknownVehicleError):
+        p.evict("ghost")
+    p.drop("ghost")  # dropping what is not held is harmless
+    assert p.counters["vehicle:dropped"] == 0
+
+
+def test_pipeline_evict_idle_flushes_and_forgets():
+    """Vehicles silent for longer than the TTL (in fix time) are flushed and forgotten."""
+    p = Pipeline(ROAD, MatchSettings())
+    run(p, drive("early", 5, t0=T0))          # newest fix T0 + 8
+    run(p, drive("late", 5, t0=T0 + 100))     # newest fix T0 + 108
+    assert p.idle_vehicles(T0 + 68, 60.0) == []
+    outs: list[Output] = []
+    assert p.evict_idle(T0 + 108, 60.0, into=outs) == ["early"]
+    assert p.vehicles() == ["late"]
+    committed = [f["time"] for o in outs if o.kind == "commit" for f in o.record["fixes"]]
+    assert {o.vehicle for o in outs} == {"early"}
+    assert committed[-1] == T0 + 8
+    assert p.counters["vehicle:evicted"] == 1
+    assert p.evict_idle(T0 + 108, 60.0) == []
+
+
+def test_pipeline_drop_forgets_without_output():
+    """drop() forgets a vehicle without flushing; its next fix starts a new tracker."""
+    p = Pipeline(ROAD, MatchSettings())
+    run(p, drive("bus1", 5))
+    p.drop("bus1")
+    assert p.vehicles() == [] and p.flush() == []
+    assert p.counters["vehicle:dropped"] == 1
+    (out,) = run(p, drive("bus1", 6)[5:])
+    assert out.record["window_fixes"] == 1
+    assert p.counters["vehicle:new"] == 2
+
+
+def test_pipeline_topic_filter_from_limits():
+    """The vehicle comes from the '+' level of the configured topic filter."""
+    p = Pipeline(ROAD, MatchSettings(), limits=FeedLimits(topic_filter="depot/+/gps"))
+    (out,) = p.handle("depot/van7/gps", message(ROAD, T0, 100.0, 0.0), T0)
+    assert out.vehicle == "van7"
+    (rej,) = p.handle("fleet/bus1/position", message(ROAD, T0, 100.0, 0.0), T0)
+    assert rej.record["reason"] == "missing_field"
+
+
+def test_pipeline_invalid_settings():
+    """Invalid matcher settings are refused when the pipeline is built."""
+    with pytest.raises(BadConfigError, match=r"matcher.eps_levels must be strictly increasing"):
+        Pipeline(ROAD, MatchSettings(eps_levels=(30.0, 15.0)))
+
+
+def test_matcher_settings_from_mapping_values():
+    """TOML values map onto MatchSettings; integers are accepted for float keys."""
+    s = matcher_settings_from_mapping(
+        {"eps_levels": [10, 25.5], "max_lag_fixes": 30, "max_speed_mps": 40, "gap_s": 12.5},
+        "live.toml")
+    assert s == MatchSettings(eps_levels=(10.0, 25.5), max_lag_fixes=30, max_speed_mps=40.0,
+                              gap_s=12.5)
+    assert matcher_settings_from_mapping({}, "x") == MatchSettings()
+
+
+@pytest.mark.parametrize(("section", "message"), [
+    ({"eps_levels": [30, 15]},
+     "a.toml: matcher.eps_levels must be strictly increasing, got [30.0, 15.0]"),
+    ({"eps": [15]}, "a.toml: unknown key matcher.eps (expected one of eps_levels, "),
+    ({"max_lag_fixes": True}, "a.toml: matcher.max_lag_fixes must be an integer, got True"),
+    ({"max_lag_fixes": 1.0}, "a.toml: matcher.max_lag_fixes must be an integer, got 1.0"),
+    ({"gap_s": "45"}, "a.toml: matcher.gap_s must be a finite number, got '45'"),
+    ({"gap_s": float("inf")}, "a.toml: matcher.gap_s must be a finite number, got inf"),
+    ({"eps_levels": "15,30"}, "a.toml: matcher.eps_levels must be a list of numbers"),
+    ({"eps_levels": [15, True]}, "a.toml: matcher.eps_levels must be a list of numbers"),
+    ({"max_speed_mps": -3}, "a.toml: matcher.max_speed_mps must be a positive number, got -3"),
+    ({"reorder_fixes": 40}, "a.toml: matcher.reorder_fixes must be an integer 0..32, got 40"),
+])
+def test_matcher_settings_from_mapping_errors(section, message):
+    """Unknown keys, wrong types and invalid values name the file and the key."""
+    with pytest.raises(BadConfigError) as info:
+        matcher_settings_from_mapping(section, "a.toml")
+    assert str(info.value).startswith(message)
+
+
+def test_matcher_settings_from_mapping_lists_every_problem():
+    """Several problems are all reported, one per line."""
+    with pytest.raises(BadConfigError) as info:
+        matcher_settings_from_mapping({"foo": 1, "gap_m": "x"}, "b.toml")
+    assert str(info.value).splitlines() == [
+        "b.toml: unknown key matcher.foo (expected one of "
+        + ", ".join(MatchSettings.keys()) + ")",
+        "b.toml: matcher.gap_m must be a finite number, got 'x'",
+    ]
