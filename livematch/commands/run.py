@@ -1,0 +1,83 @@
+"""``livematch run``: the live daemon (MQTT in, matched roads and alerts out).
+
+Settings come from ``--config FILE`` (TOML), then ``LIVEMATCH__SECTION__KEY``
+environment variables, then the flags below for the common ones (see
+:mod:`livematch.config`). SIGTERM or SIGINT stops it gracefully; the exit code is 0
+after a clean shutdown and 2 for a bad configuration or network.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import logging
+import signal
+from typing import Any
+
+from livematch.config import DaemonConfig, load_config, redact_url
+from livematch.errors import BadConfigError
+from livematch.service.logs import fields, setup_logging
+
+log = logging.getLogger("livematch.run")
+
+
+def register(subparsers: Any) -> None:
+    """Add the ``run`` command to the CLI."""
+    parser = subparsers.add_parser(
+        "run", help="run the live daemon against an MQTT broker",
+        description="Subscribe to vehicle positions, match them to roads, publish "
+                    "assignments, commits, alerts and rejects.")
+    parser.add_argument("--config", metavar="FILE", help="configuration file (TOML)")
+    parser.add_argument("--network", metavar="PATH",
+                        help="road map: OpenStreetMap, GeoJSON or compiled .lmnet")
+    parser.add_argument("--broker", metavar="URL",
+                        help="mqtt://HOST[:PORT] or mqtts://HOST[:PORT]; credentials from "
+                             "LIVEMATCH_MQTT_USERNAME / LIVEMATCH_MQTT_PASSWORD")
+    parser.add_argument("--store", metavar="URL",
+                        help="state store: memory:// (default) or redis://HOST:PORT/DB")
+    parser.add_argument("--metrics", metavar="HOST:PORT",
+                        help="listen address of /metrics, /healthz, /readyz "
+                             "(default 127.0.0.1:9750)")
+    parser.add_argument("--routes", metavar="PATH", help="assigned routes file")
+    parser.add_argument("--fences", metavar="PATH", help="geofences file")
+    parser.set_defaults(func=_run)
+
+
+def _run(args: argparse.Namespace) -> int:
+    overrides = {key: getattr(args, key) for key in
+                 ("network", "broker", "store", "metrics", "routes", "fences")}
+    config = load_config(args.config, overrides=overrides)
+    setup_logging(config.log.level)
+    daemon = build_daemon(config)
+    asyncio.run(_serve(daemon))
+    return 0
+
+
+def build_daemon(config: DaemonConfig) -> Any:
+    """Open the network and build the pipeline and daemon described by ``config``."""
+    from livematch.mapdata.netfile import open_network
+    from livematch.pipeline import Pipeline
+    from livematch.service.daemon import Daemon
+
+    if not config.inputs.network:
+        raise BadConfigError(f"{config.source}: no road network: give --network PATH or "
+                             "inputs.network in the configuration")
+    for key in ("routes", "fences"):
+        if getattr(config.inputs, key):
+            raise BadConfigError(f"{config.source}: inputs.{key} is not supported by this "
+                                 "version of the daemon yet")
+    network = open_network(config.inputs.network)
+    log.info("network loaded", extra=fields(path=config.inputs.network,
+                                            segments=network.n_segments))
+    pipeline = Pipeline(network, config.matcher, limits=config.feed)
+    return Daemon(config, pipeline)
+
+
+async def _serve(daemon: Any) -> None:
+    loop = asyncio.get_running_loop()
+    for sig in (signal.SIGTERM, signal.SIGINT):
+        loop.add_signal_handler(sig, daemon.request_stop)
+    cfg = daemon.config
+    log.info("starting", extra=fields(config=cfg.source, broker=redact_url(cfg.mqtt.url),
+                                      store=redact_url(cfg.store.url), topic=cfg.mqtt.topic))
+    await daemon.run()

@@ -1,0 +1,579 @@
+"""The daemon's configuration: a TOML file, environment overrides and command-line flags.
+
+Precedence, lowest first: built-in defaults, the TOML file, environment variables
+``LIVEMATCH__<SECTION>__<KEY>`` (any key; the value is parsed as a TOML value, and taken
+as a plain string when it is not one, so ``LIVEMATCH__MQTT__URL=mqtt://broker:1883``
+needs no quotes), then the ``livematch run`` flags for the common settings.
+
+Everything is validated at start: an unknown section or key, a wrong type or an
+out-of-range value raises :class:`~livematch.errors.BadConfigError` naming where the
+value came from, the key and what was expected, e.g.::
+
+    config/live.toml: matcher.eps_levels must be strictly increasing, got [30.0, 15.0]
+
+MQTT credentials never live in the file or the URL: they come from
+``LIVEMATCH_MQTT_USERNAME`` / ``LIVEMATCH_MQTT_PASSWORD`` or from ``mqtt.username`` plus
+``mqtt.password_file`` (a file holding only the password), and they are never logged.
+
+Example:
+    >>> cfg = load_config(None, env={"LIVEMATCH__MATCHER__EPS_LEVELS": "[10, 20]"})
+    >>> cfg.matcher.eps_levels, cfg.mqtt.topic
+    ((10.0, 20.0), 'fleet/+/position')
+    >>> load_config(None, env={})  == load_config(None, env={})  # degenerate: all defaults
+    True
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import re
+import tomllib
+import typing
+from collections.abc import Mapping
+from dataclasses import dataclass, field, fields
+from pathlib import Path
+from typing import Any
+from urllib.parse import urlsplit
+
+from livematch.core.settings import MatchSettings
+from livematch.errors import BadConfigError
+from livematch.feed.decode import FeedLimits
+from livematch.pipeline import matcher_settings_from_mapping
+
+ENV_PREFIX = "LIVEMATCH__"
+USERNAME_ENV = "LIVEMATCH_MQTT_USERNAME"
+PASSWORD_ENV = "LIVEMATCH_MQTT_PASSWORD"
+
+# Characters allowed in a Redis key prefix: none of them is special in a SCAN MATCH
+# pattern, so "all vehicles under the prefix" is an exact query.
+_PREFIX_RE = re.compile(r"^[A-Za-z0-9:_.{}\-]*$")
+_LEVELS = ("debug", "info", "warning", "error")
+# Keys holding file paths: relative ones in a file are relative to that file's folder.
+_PATH_KEYS = {("inputs", "network"), ("inputs", "routes"), ("inputs", "fences"),
+              ("mqtt", "password_file"), ("mqtt", "ca_file")}
+
+
+@dataclass(frozen=True, kw_only=True)
+class InputsConfig:
+    """``[inputs]``: the map and the optional route and geofence files.
+
+    Relative paths in a file are taken relative to that file's folder.
+    """
+
+    network: str = ""
+    routes: str = ""
+    fences: str = ""
+
+    def problems(self) -> list[tuple[str, str]]:
+        """Nothing to range-check: paths are opened (and reported) at start."""
+        return []
+
+
+@dataclass(frozen=True, kw_only=True)
+class MqttConfig:
+    """``[mqtt]``: broker, topics and session. Times in seconds, sizes in bytes.
+
+    ``topic`` is the subscription filter; the vehicle id comes from the payload or from
+    the filter's ``+`` level. Output topics are templates with ``{vehicle}``. A
+    persistent MQTT v5 session (``session_expiry_s`` > 0) keeps QoS 1 fixes published
+    while the daemon restarts.
+    """
+
+    url: str = "mqtt://127.0.0.1:1883"
+    topic: str = "fleet/+/position"
+    client_id: str = "livematch"
+    session_expiry_s: int = 3600
+    qos: int = 1
+    keepalive_s: int = 30
+    match_topic: str = "livematch/match/{vehicle}"
+    commit_topic: str = "livematch/commit/{vehicle}"
+    alert_topic: str = "livematch/alert/{vehicle}"
+    reject_topic: str = "livematch/rejects"
+    max_payload_bytes: int = 4096
+    username: str = ""
+    password_file: str = ""
+    ca_file: str = ""
+    reconnect_min_s: float = 0.5
+    reconnect_max_s: float = 30.0
+
+    def problems(self) -> list[tuple[str, str]]:
+        """Every invalid value as (key, expectation with the value found)."""
+        out: list[tuple[str, str]] = []
+        parts = urlsplit(self.url)
+        if parts.scheme not in ("mqtt", "mqtts") or not parts.hostname:
+            out.append(("url", f"must be mqtt://HOST[:PORT] or mqtts://HOST[:PORT], "
+                               f"got {self.url!r}"))
+        elif parts.username is not None or parts.password is not None:
+            out.append(("url", f"must not carry credentials (use {USERNAME_ENV} / "
+                               f"{PASSWORD_ENV} or mqtt.password_file), got {_redact(self.url)}"))
+        else:
+            try:
+                parts.port  # noqa: B018 - raises ValueError on a bad port
+            except ValueError:
+                out.append(("url", f"has a bad port, got {self.url!r}"))
+        if not _valid_filter(self.topic) or self.topic.split("/").count("+") > 1:
+            out.append(("topic", f"must be an MQTT topic filter with at most one '+' level "
+                                 f"(the vehicle id), got {self.topic!r}"))
+        else:
+            clash = [key for key in ("match_topic", "commit_topic", "alert_topic",
+                                     "reject_topic")
+                     if _filter_matches(self.topic, getattr(self, key).replace("{vehicle}", "v"))]
+            if clash:
+                out.append(("topic", f"must not match the output topics "
+                                     f"{', '.join('mqtt.' + k for k in clash)} (the daemon "
+                                     f"would read its own output), got {self.topic!r}"))
+        if not (0 < len(self.client_id) <= 128):
+            out.append(("client_id", f"must be 1..128 characters, got {self.client_id!r}"))
+        for key in ("match_topic", "commit_topic", "alert_topic"):
+            value = getattr(self, key)
+            if "{vehicle}" not in value or not _valid_name(value.replace("{vehicle}", "v")):
+                out.append((key, f"must be a topic name containing {{vehicle}} and no "
+                                 f"wildcard, got {value!r}"))
+        if not _valid_name(self.reject_topic):
+            out.append(("reject_topic", f"must be a topic name without wildcards, "
+                                        f"got {self.reject_topic!r}"))
+        if self.qos not in (0, 1, 2):
+            out.append(("qos", f"must be 0, 1 or 2, got {self.qos!r}"))
+        if not 0 <= self.session_expiry_s <= 0xFFFFFFFF:
+            out.append(("session_expiry_s", f"must be 0..4294967295 seconds, "
+                                            f"got {self.session_expiry_s}"))
+        if not 5 <= self.keepalive_s <= 65535:
+            out.append(("keepalive_s", f"must be 5..65535 seconds, got {self.keepalive_s}"))
+        if not 64 <= self.max_payload_bytes <= 268_435_455:
+            out.append(("max_payload_bytes", f"must be 64..268435455 bytes, "
+                                             f"got {self.max_payload_bytes}"))
+        if not (math.isfinite(self.reconnect_min_s) and self.reconnect_min_s > 0):
+            out.append(("reconnect_min_s", f"must be a positive number of seconds, "
+                                           f"got {self.reconnect_min_s}"))
+        elif not (math.isfinite(self.reconnect_max_s)
+                  and self.reconnect_max_s >= self.reconnect_min_s):
+            out.append(("reconnect_max_s", f"must be >= reconnect_min_s "
+                                           f"({self.reconnect_min_s}), got {self.reconnect_max_s}"))
+        return out
+
+
+@dataclass(frozen=True, kw_only=True)
+class StoreConfig:
+    """``[store]``: where per-vehicle checkpoints live. Times in seconds.
+
+    ``url`` is ``memory://`` (default; state is lost on exit) or ``redis://HOST:PORT/DB``
+    (``rediss://`` for TLS). A vehicle is checkpointed after ``checkpoint_every_fixes``
+    fixes or ``checkpoint_every_s`` seconds, whichever comes first, and on shutdown; one
+    idle for ``idle_ttl_s`` (fix time, and wall-clock key expiry in Redis) is dropped.
+    """
+
+    url: str = "memory://"
+    key_prefix: str = "livematch:"
+    checkpoint_every_fixes: int = 20
+    checkpoint_every_s: float = 10.0
+    idle_ttl_s: float = 3600.0
+
+    def problems(self) -> list[tuple[str, str]]:
+        """Every invalid value as (key, expectation with the value found)."""
+        out: list[tuple[str, str]] = []
+        scheme = urlsplit(self.url).scheme
+        if self.url != "memory://" and scheme not in ("redis", "rediss", "unix"):
+            out.append(("url", f"must be memory:// or redis://HOST:PORT[/DB], "
+                               f"got {_redact(self.url)}"))
+        if not _PREFIX_RE.match(self.key_prefix):
+            out.append(("key_prefix", f"must use only letters, digits and : _ . - {{ }}, "
+                                      f"got {self.key_prefix!r}"))
+        if self.checkpoint_every_fixes < 1:
+            out.append(("checkpoint_every_fixes", f"must be >= 1, "
+                                                  f"got {self.checkpoint_every_fixes}"))
+        for key in ("checkpoint_every_s", "idle_ttl_s"):
+            value = getattr(self, key)
+            if not (math.isfinite(value) and value > 0):
+                out.append((key, f"must be a positive number of seconds, got {value}"))
+        return out
+
+
+@dataclass(frozen=True, kw_only=True)
+class MetricsConfig:
+    """``[metrics]``: the HTTP listener for ``/metrics``, ``/healthz`` and ``/readyz``.
+
+    ``listen`` is ``HOST:PORT`` (loopback by default; port 0 picks a free one), or ``""``
+    to serve nothing.
+    """
+
+    listen: str = "127.0.0.1:9750"
+
+    def problems(self) -> list[tuple[str, str]]:
+        """Every invalid value as (key, expectation with the value found)."""
+        if self.listen == "":
+            return []
+        try:
+            parse_hostport(self.listen)
+        except ValueError as exc:
+            return [("listen", f"must be HOST:PORT with PORT 0..65535 ({exc}), "
+                               f"got {self.listen!r}")]
+        return []
+
+
+@dataclass(frozen=True, kw_only=True)
+class PublishConfig:
+    """``[publish]``: what goes out and how outputs wait while the broker is away.
+
+    ``throttle_s`` 0 publishes every assignment; above 0 an assignment is published only
+    when the vehicle's road changes or ``throttle_s`` seconds (fix time) passed since its
+    last published one (commits, alerts and rejects are never throttled).
+    ``retain_latest`` publishes assignments retained, so a new subscriber gets the latest
+    state of every vehicle. Up to ``queue_max`` outputs wait while the broker is down
+    (intake pauses when full); ``shutdown_grace_s`` bounds the final drain.
+    """
+
+    throttle_s: float = 0.0
+    retain_latest: bool = False
+    queue_max: int = 100_000
+    shutdown_grace_s: float = 10.0
+
+    def problems(self) -> list[tuple[str, str]]:
+        """Every invalid value as (key, expectation with the value found)."""
+        out: list[tuple[str, str]] = []
+        if not (math.isfinite(self.throttle_s) and self.throttle_s >= 0):
+            out.append(("throttle_s", f"must be >= 0 seconds, got {self.throttle_s}"))
+        if self.queue_max < 1:
+            out.append(("queue_max", f"must be >= 1, got {self.queue_max}"))
+        if not (math.isfinite(self.shutdown_grace_s) and self.shutdown_grace_s >= 0):
+            out.append(("shutdown_grace_s", f"must be >= 0 seconds, got {self.shutdown_grace_s}"))
+        return out
+
+
+@dataclass(frozen=True, kw_only=True)
+class LogConfig:
+    """``[log]``: the log level (``debug``, ``info``, ``warning``, ``error``)."""
+
+    level: str = "info"
+
+    def problems(self) -> list[tuple[str, str]]:
+        """Every invalid value as (key, expectation with the value found)."""
+        if self.level not in _LEVELS:
+            return [("level", f"must be one of {', '.join(_LEVELS)}, got {self.level!r}")]
+        return []
+
+
+@dataclass(frozen=True, kw_only=True)
+class DaemonConfig:
+    """The whole validated configuration of ``livematch run``.
+
+    ``feed`` is the ``[feed]`` section (id length, accepted years) completed with the
+    topic filter and the payload limit of ``[mqtt]``.
+    ``username`` / ``password`` are the resolved MQTT credentials (never logged; the
+    ``repr`` hides the password).
+    """
+
+    source: str = "<defaults>"
+    inputs: InputsConfig = field(default_factory=InputsConfig)
+    matcher: MatchSettings = field(default_factory=MatchSettings)
+    mqtt: MqttConfig = field(default_factory=MqttConfig)
+    store: StoreConfig = field(default_factory=StoreConfig)
+    metrics: MetricsConfig = field(default_factory=MetricsConfig)
+    publish: PublishConfig = field(default_factory=PublishConfig)
+    feed: FeedLimits = field(default_factory=FeedLimits)
+    log: LogConfig = field(default_factory=LogConfig)
+    username: str | None = None
+    password: str | None = field(default=None, repr=False)
+
+
+_SECTIONS: dict[str, type] = {
+    "inputs": InputsConfig,
+    "mqtt": MqttConfig,
+    "store": StoreConfig,
+    "metrics": MetricsConfig,
+    "publish": PublishConfig,
+    "log": LogConfig,
+}
+
+# Flags of ``livematch run`` and the key each one sets.
+FLAG_KEYS = {
+    "network": ("inputs", "network"),
+    "routes": ("inputs", "routes"),
+    "fences": ("inputs", "fences"),
+    "broker": ("mqtt", "url"),
+    "store": ("store", "url"),
+    "metrics": ("metrics", "listen"),
+}
+
+
+def load_config(
+    path: str | Path | None,
+    *,
+    env: Mapping[str, str] | None = None,
+    overrides: Mapping[str, Any] | None = None,
+) -> DaemonConfig:
+    """Read, merge and validate the configuration.
+
+    Args:
+        path: the TOML file, or None for defaults only.
+        env: environment variables (default ``os.environ``): ``LIVEMATCH__SECTION__KEY``
+            overrides and the MQTT credentials.
+        overrides: command-line values keyed like :data:`FLAG_KEYS` (``"broker"``...);
+            None values are ignored.
+
+    Raises:
+        BadConfigError: naming the file (or variable, or flag), the key and what was
+            expected; every problem found is listed, one per line.
+    """
+    env = os.environ if env is None else env
+    raw: dict[str, dict[str, tuple[Any, str]]] = {}
+    source = str(path) if path is not None else "<defaults>"
+    base = Path(path).parent if path is not None else Path.cwd()
+    problems: list[str] = []
+    if path is not None:
+        for section, key, value in _read_file(Path(path)):
+            if (section, key) in _PATH_KEYS and isinstance(value, str) and value:
+                value = str(base / value)
+            raw.setdefault(section, {})[key] = (value, source)
+    for name, text in sorted(env.items()):
+        if not name.startswith(ENV_PREFIX):
+            continue
+        parts = name[len(ENV_PREFIX):].lower().split("__")
+        if len(parts) != 2 or not all(parts):
+            problems.append(f"{name}: must be named {ENV_PREFIX}<SECTION>__<KEY>")
+            continue
+        raw.setdefault(parts[0], {})[parts[1]] = (_env_value(text), name)
+    for flag, value in (overrides or {}).items():
+        if value is None:
+            continue
+        section, key = FLAG_KEYS[flag]
+        raw.setdefault(section, {})[key] = (value, f"--{flag}")
+
+    built: dict[str, Any] = {}
+    for section, entries in raw.items():
+        if section not in ("feed", "matcher") and section not in _SECTIONS:
+            where = sorted({origin for _, origin in entries.values()})
+            known = ", ".join(sorted([*_SECTIONS, "feed", "matcher"]))
+            problems.append(f"{', '.join(where)}: unknown section [{section}] "
+                            f"(expected one of {known})")
+    for section, cls in _SECTIONS.items():
+        entries = raw.get(section, {})
+        value, found = _build_section(section, cls, entries)
+        problems.extend(found)
+        built[section] = value
+    built["matcher"], found = _build_matcher(raw.get("matcher", {}))
+    problems.extend(found)
+    feed, feed_problems = _build_feed(built["mqtt"], raw.get("feed", {}))
+    problems.extend(feed_problems)
+    username, password, cred_problems = _credentials(built["mqtt"], env, raw.get("mqtt", {}))
+    problems.extend(cred_problems)
+    if problems:
+        raise BadConfigError("\n".join(problems))
+    return DaemonConfig(source=source, feed=feed, username=username, password=password,
+                        **built)
+
+
+def parse_hostport(text: str) -> tuple[str, int]:
+    """Split ``HOST:PORT`` (IPv6 as ``[::1]:PORT``) into (host, port).
+
+    Example:
+        >>> parse_hostport("127.0.0.1:9750"), parse_hostport("[::1]:0")
+        (('127.0.0.1', 9750), ('::1', 0))
+    """
+    host, sep, port_text = text.rpartition(":")
+    if not sep or not host:
+        raise ValueError("no HOST:PORT")
+    if host.startswith("[") and host.endswith("]"):
+        host = host[1:-1]
+    if not port_text.isdigit() or not 0 <= int(port_text) <= 65535:
+        raise ValueError(f"bad port {port_text!r}")
+    return host, int(port_text)
+
+
+def redact_url(url: str) -> str:
+    """The URL with any password replaced by ``***`` (safe to log)."""
+    return _redact(url)
+
+
+# -- internals -------------------------------------------------------------------------
+
+
+def _read_file(path: Path) -> list[tuple[str, str, Any]]:
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise BadConfigError(f"{path}: cannot read configuration: {exc.strerror}") from exc
+    except UnicodeDecodeError as exc:
+        raise BadConfigError(f"{path}: not UTF-8 text: {exc}") from exc
+    try:
+        doc = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise BadConfigError(f"{path}: not valid TOML: {exc}") from exc
+    out: list[tuple[str, str, Any]] = []
+    problems: list[str] = []
+    for section, body in doc.items():
+        if not isinstance(body, dict):
+            problems.append(f"{path}: top-level key {section!r} must be a [section] table")
+            continue
+        for key, value in body.items():
+            out.append((section, key, value))
+    if problems:
+        raise BadConfigError("\n".join(problems))
+    return out
+
+
+def _env_value(text: str) -> Any:
+    """A TOML value (``[15, 30]``, ``true``, ``"x"``), else the text itself."""
+    try:
+        return tomllib.loads(f"v = {text}")["v"]
+    except tomllib.TOMLDecodeError:
+        return text
+
+
+def _build_section(
+    section: str, cls: type, entries: Mapping[str, tuple[Any, str]]
+) -> tuple[Any, list[str]]:
+    hints = typing.get_type_hints(cls)
+    names = [f.name for f in fields(cls) if f.init]
+    problems: list[str] = []
+    kwargs: dict[str, Any] = {}
+    origin_of: dict[str, str] = {}
+    for key, (value, origin) in entries.items():
+        if key not in names:
+            problems.append(f"{origin}: unknown key {section}.{key} "
+                            f"(expected one of {', '.join(names)})")
+            continue
+        coerced, expected = _coerce(value, hints[key])
+        if expected:
+            problems.append(f"{origin}: {section}.{key} must be {expected}, got {value!r}")
+            continue
+        kwargs[key] = coerced
+        origin_of[key] = origin
+    if problems:
+        return cls(), problems
+    obj = cls(**kwargs)
+    for key, message in obj.problems():
+        where = origin_of.get(key, "<defaults>")
+        problems.append(f"{where}: {section}.{key} {message}")
+    return obj, problems
+
+
+def _coerce(value: Any, hint: Any) -> tuple[Any, str]:
+    """(value converted to the field's type, "" ) or (None, what was expected)."""
+    if hint is bool:
+        return (value, "") if isinstance(value, bool) else (None, "true or false")
+    if hint is int:
+        ok = isinstance(value, int) and not isinstance(value, bool)
+        return (value, "") if ok else (None, "an integer")
+    if hint is float:
+        ok = isinstance(value, int | float) and not isinstance(value, bool)
+        return (float(value), "") if ok else (None, "a number")
+    if hint is str:
+        return (value, "") if isinstance(value, str) else (None, "a string")
+    if typing.get_origin(hint) is tuple:
+        ok = isinstance(value, list | tuple) and all(
+            isinstance(v, int | float) and not isinstance(v, bool) for v in value)
+        return (tuple(float(v) for v in value), "") if ok else (None, "a list of numbers")
+    return value, ""
+
+
+def _build_matcher(entries: Mapping[str, tuple[Any, str]]) -> tuple[MatchSettings, list[str]]:
+    """``[matcher]`` through the pipeline's own mapper, so replay and daemon agree.
+
+    Keys are grouped by where they came from (file, variable, flag) so that every
+    message names the right origin.
+    """
+    by_origin: dict[str, dict[str, Any]] = {}
+    for key, (value, origin) in entries.items():
+        by_origin.setdefault(origin, {})[key] = value
+    problems: list[str] = []
+    for origin, section in by_origin.items():
+        try:
+            matcher_settings_from_mapping(section, origin)
+        except BadConfigError as exc:
+            problems.extend(str(exc).splitlines())
+    if problems:
+        return MatchSettings(), problems
+    merged = {key: value for key, (value, _) in entries.items()}
+    try:
+        return matcher_settings_from_mapping(merged, "matcher"), []
+    except BadConfigError as exc:  # valid alone, invalid together
+        where = ", ".join(sorted(by_origin))
+        return MatchSettings(), [f"{where}: {line.split(': ', 1)[1]}"
+                                 for line in str(exc).splitlines()]
+
+
+def _build_feed(mqtt: MqttConfig, entries: Mapping[str, tuple[Any, str]]
+                ) -> tuple[FeedLimits, list[str]]:
+    """``[feed]`` plus the transport's topic filter and payload limit as FeedLimits."""
+    hints = typing.get_type_hints(FeedLimits)
+    owned = {"topic_filter": "mqtt.topic", "max_payload_bytes": "mqtt.max_payload_bytes"}
+    names = [f.name for f in fields(FeedLimits) if f.name not in owned]
+    problems: list[str] = []
+    kwargs: dict[str, Any] = {}
+    for key, (value, origin) in entries.items():
+        if key in owned:
+            problems.append(f"{origin}: feed.{key} is set by {owned[key]}")
+            continue
+        if key not in names:
+            problems.append(f"{origin}: unknown key feed.{key} "
+                            f"(expected one of {', '.join(names)})")
+            continue
+        coerced, expected = _coerce(value, hints[key])
+        if expected:
+            problems.append(f"{origin}: feed.{key} must be {expected}, got {value!r}")
+            continue
+        kwargs[key] = coerced
+    if problems:
+        return FeedLimits(), problems
+    try:
+        limits = FeedLimits(topic_filter=mqtt.topic, max_payload_bytes=mqtt.max_payload_bytes,
+                            **kwargs)
+    except ValueError as exc:
+        where = sorted({origin for _, origin in entries.values()}) or ["<defaults>"]
+        return FeedLimits(), [f"{', '.join(where)}: [feed]/[mqtt] limits: {exc}"]
+    return limits, []
+
+
+def _credentials(
+    mqtt: MqttConfig, env: Mapping[str, str], entries: Mapping[str, tuple[Any, str]]
+) -> tuple[str | None, str | None, list[str]]:
+    username = env.get(USERNAME_ENV) or mqtt.username or None
+    password = env.get(PASSWORD_ENV)
+    if password is None and mqtt.password_file:
+        origin = entries.get("password_file", (None, "<defaults>"))[1]
+        try:
+            password = Path(mqtt.password_file).read_text(encoding="utf-8").strip("\r\n")
+        except OSError as exc:
+            # Name the file, never its content.
+            return None, None, [f"{origin}: mqtt.password_file cannot be read: "
+                                f"{mqtt.password_file}: {exc.strerror}"]
+    if password is not None and username is None:
+        return None, None, [f"{PASSWORD_ENV} or mqtt.password_file gives a password but no "
+                            f"username ({USERNAME_ENV} or mqtt.username)"]
+    return username, password, []
+
+
+def _redact(url: str) -> str:
+    parts = urlsplit(url)
+    if parts.password is None:
+        return url
+    netloc = parts.netloc.replace(f":{parts.password}@", ":***@", 1)
+    return parts._replace(netloc=netloc).geturl()
+
+
+def _valid_name(topic: str) -> bool:
+    return bool(topic) and "+" not in topic and "#" not in topic and "\0" not in topic
+
+
+def _valid_filter(topic: str) -> bool:
+    if not topic or "\0" in topic:
+        return False
+    levels = topic.split("/")
+    for i, level in enumerate(levels):
+        if "#" in level and (level != "#" or i != len(levels) - 1):
+            return False
+        if "+" in level and level != "+":
+            return False
+    return True
+
+
+def _filter_matches(topic_filter: str, topic: str) -> bool:
+    """True when ``topic`` matches the MQTT filter (``+`` one level, ``#`` the rest)."""
+    want, have = topic_filter.split("/"), topic.split("/")
+    for i, level in enumerate(want):
+        if level == "#":
+            return True
+        if i >= len(have) or (level != "+" and level != have[i]):
+            return False
+    return len(have) == len(want)

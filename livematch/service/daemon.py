@@ -1,0 +1,518 @@
+"""The live daemon: MQTT fixes in, matched roads and alerts out, state kept safe.
+
+One :class:`Daemon` runs these named tasks under one :class:`asyncio.TaskGroup`:
+
+- ``mqtt-connection``: connect (backing off on failure), subscribe, and per connection
+  ``mqtt-receive`` (decode, match, queue outputs, then acknowledge, one message at a
+  time in arrival order, so one vehicle's fixes are processed in order) and
+  ``mqtt-publish`` (send the queued outputs with QoS 1, oldest first; an output leaves
+  the queue only once the broker acknowledged it, so a broker outage delays outputs
+  but loses none);
+- ``checkpoint``: write vehicles' state every K fixes or T seconds, the latest
+  assignments, and evict idle vehicles;
+- ``store-watch``: ping the store for ``/readyz``.
+
+Bad input never stops the daemon: the pipeline turns it into a reject record that goes
+to the dead-letter topic; even an unexpected error while handling one message becomes
+a reject (``internal_error``) and is logged with its traceback. Background loops log,
+count and recover.
+
+Shutdown (:meth:`Daemon.request_stop`, wired to SIGTERM / SIGINT by ``livematch run``):
+stop taking messages (those not yet taken stay unacknowledged and the broker sends them
+again next session), publish what is queued (bounded by ``publish.shutdown_grace_s``),
+disconnect, checkpoint every vehicle, close the store.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import json
+import logging
+import time
+from collections import Counter, deque
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import Any, Protocol
+
+import aiomqtt
+
+from livematch.config import DaemonConfig, parse_hostport, redact_url
+from livematch.errors import LivematchError
+from livematch.pipeline import REJECT_PAYLOAD_CHARS, Output
+from livematch.service.http import HealthServer
+from livematch.service.logs import fields
+from livematch.service.metrics import Metrics
+from livematch.service.mqtt import ack, backoff_delays, make_client
+from livematch.service.store import StateStore, StoreError, open_store
+
+log = logging.getLogger("livematch.daemon")
+
+# How often the checkpoint loop wakes (seconds): bounds how stale {prefix}latest is.
+_TICK_S = 0.5
+# How often the store is pinged for /readyz (seconds).
+_STORE_PING_S = 1.0
+
+
+class OutputLike(Protocol):
+    """What the daemon reads from one pipeline output (see :mod:`livematch.pipeline`)."""
+
+    @property
+    def kind(self) -> str:
+        """``assignment``, ``commit``, ``alert`` or ``reject``."""
+
+    @property
+    def vehicle(self) -> str | None:
+        """The vehicle, None only for rejects without a readable id."""
+
+    @property
+    def record(self) -> Mapping[str, Any]:
+        """The published JSON record."""
+
+
+class PipelineLike(Protocol):
+    """The part of :class:`livematch.pipeline.Pipeline` the daemon uses."""
+
+    counters: Counter[str]
+
+    def handle(self, topic: str, payload: bytes, at: float) -> list[Any]:
+        """Decode, validate, match one message; never raises on bad input."""
+
+    def export_vehicle(self, vehicle: str) -> bytes:
+        """The vehicle's checkpoint blob."""
+
+    def import_vehicle(self, vehicle: str, blob: bytes) -> None:
+        """Restore a vehicle from its checkpoint blob."""
+
+    def vehicles(self) -> list[str]:
+        """Vehicles with state in memory."""
+
+    def evict_idle(self, now_fix_time: float, ttl_s: float, *,
+                   into: list[Any] | None = None) -> list[str]:
+        """Flush and forget vehicles idle for ``ttl_s`` s of fix time (outputs ``into``)."""
+
+
+def encode_record(record: Mapping[str, Any]) -> bytes:
+    """The published bytes of a record: compact UTF-8 JSON, no NaN.
+
+    Example:
+        >>> encode_record({"vehicle": "bus 17", "eps_m": 15.0, "road": None})
+        b'{"vehicle":"bus 17","eps_m":15.0,"road":null}'
+    """
+    return json.dumps(record, separators=(",", ":"), ensure_ascii=False,
+                      allow_nan=False).encode("utf-8")
+
+
+@dataclass(frozen=True, slots=True)
+class _Pending:
+    """One output waiting for the broker."""
+
+    topic: str
+    payload: bytes
+    kind: str
+    retain: bool
+    fix_time: float | None
+
+
+class Daemon:
+    """The live daemon around one pipeline.
+
+    Args:
+        config: the validated configuration.
+        pipeline: decoder + per-vehicle trackers (the same object ``livematch replay``
+            drives, so both produce the same records for the same messages).
+        store: the state store; default from ``config.store.url``.
+        metrics: the metrics; default a fresh registry of its own.
+    """
+
+    def __init__(self, config: DaemonConfig, pipeline: PipelineLike, *,
+                 store: StateStore | None = None, metrics: Metrics | None = None) -> None:
+        self.config = config
+        self.pipeline = pipeline
+        self.store = store or open_store(config.store.url, key_prefix=config.store.key_prefix)
+        self.metrics = metrics or Metrics()
+        self.http: HealthServer | None = None
+        self.broker_connected = False
+        self.store_ok = False
+        self.restored = False
+        self.started = asyncio.Event()  # set once the HTTP endpoint answers
+        self._stopping = asyncio.Event()
+        self._intake_closed = False
+        self._drain_deadline = 0.0
+        self._outbox: deque[_Pending] = deque()
+        self._outbox_cond = asyncio.Condition()
+        self._fixes_since: Counter[str] = Counter()
+        self._last_checkpoint: dict[str, float] = {}
+        self._checkpoint_due = asyncio.Event()
+        self._latest: dict[str, bytes] = {}
+        self._latest_dirty: set[str] = set()
+        self._last_published: dict[str, tuple[Any, float]] = {}
+        self._seen_counters: Counter[str] = Counter()
+        self._newest_fix_t: float | None = None
+
+    # -- control -------------------------------------------------------------------
+
+    def request_stop(self) -> None:
+        """Begin a graceful shutdown (safe to call from a signal handler, repeatedly)."""
+        if not self._stopping.is_set():
+            log.info("stopping", extra=fields(queued=len(self._outbox)))
+        self._stopping.set()
+
+    def readiness(self) -> list[str]:
+        """What is not ready (empty when ready): ``broker``, ``store``, ``restore``."""
+        missing = []
+        if not self.broker_connected:
+            missing.append("broker")
+        if not self.store_ok:
+            missing.append("store")
+        if not self.restored:
+            missing.append("restore")
+        return missing
+
+    async def run(self) -> None:
+        """Run until :meth:`request_stop`; returns after a clean shutdown."""
+        listen = self.config.metrics.listen
+        if listen:
+            host, port = parse_hostport(listen)
+            self.http = HealthServer(host, port, render_metrics=self._render_metrics,
+                                     readiness=self.readiness)
+            await self.http.start()
+            log.info("http listening", extra=fields(address=f"{host}:{self.http.port}"))
+        self.started.set()
+        try:
+            if not await self._open_store():
+                return
+            try:
+                async with asyncio.TaskGroup() as tg:
+                    tg.create_task(self._connection_loop(), name="mqtt-connection")
+                    tg.create_task(self._checkpoint_loop(), name="checkpoint")
+                    tg.create_task(self._store_watch_loop(), name="store-watch")
+            finally:
+                await self._final_checkpoint()
+                with contextlib.suppress(Exception):
+                    await self.store.close()
+        finally:
+            if self.http is not None:
+                await self.http.close()
+            log.info("stopped")
+
+    # -- store ---------------------------------------------------------------------
+
+    async def _open_store(self) -> bool:
+        """Connect (retrying with backoff) and restore every vehicle; False if stopped."""
+        backoff = backoff_delays(self.config.mqtt.reconnect_min_s,
+                                 self.config.mqtt.reconnect_max_s)
+        while not self._stopping.is_set():
+            try:
+                await self.store.connect()
+                blobs = await self.store.load_all()
+                latest = await self.store.get_latest()
+                break
+            except StoreError as exc:
+                self.metrics.store_errors.inc()
+                log.warning("store unavailable", extra=fields(error=exc))
+                await self._sleep_unless_stopping(backoff.next())
+        else:
+            return False
+        self.store_ok = True
+        restored = 0
+        for vehicle, blob in sorted(blobs.items()):
+            try:
+                self.pipeline.import_vehicle(vehicle, blob)
+                restored += 1
+            except LivematchError as exc:
+                self.metrics.store_errors.inc()
+                log.warning("checkpoint not restored", extra=fields(vehicle=vehicle, error=exc))
+        self._latest.update({v: b for v, b in latest.items() if v not in self._latest})
+        self.metrics.vehicles.set(len(self.pipeline.vehicles()))
+        self.restored = True
+        log.info("state restored", extra=fields(store=redact_url(self.config.store.url),
+                                                 vehicles=restored))
+        return True
+
+    async def _store_watch_loop(self) -> None:
+        while not self._stopping.is_set():
+            ok = await self.store.ping()
+            if ok != self.store_ok:
+                log.log(logging.INFO if ok else logging.WARNING,
+                        "store reachable" if ok else "store unreachable",
+                        extra=fields(store=redact_url(self.config.store.url)))
+                if not ok:
+                    self.metrics.store_errors.inc()
+            self.store_ok = ok
+            await self._sleep_unless_stopping(_STORE_PING_S)
+
+    async def _checkpoint_loop(self) -> None:
+        while not self._stopping.is_set():
+            with contextlib.suppress(TimeoutError):
+                await asyncio.wait_for(self._checkpoint_due.wait(), timeout=_TICK_S)
+            self._checkpoint_due.clear()
+            try:
+                await self._flush_state(everything=False)
+                await self._evict_idle()
+            except StoreError as exc:
+                self.metrics.store_errors.inc()
+                log.warning("checkpoint failed; will retry", extra=fields(error=exc))
+            except Exception:  # a bug must not end checkpointing: log, count, go on
+                self.metrics.store_errors.inc()
+                log.exception("checkpoint loop error; will retry")
+
+    async def _flush_state(self, *, everything: bool) -> None:
+        """Write due checkpoints (all with ``everything``) and changed latest records."""
+        now = time.monotonic()
+        cfg = self.config.store
+        live = set(self.pipeline.vehicles())
+        due = [v for v, n in self._fixes_since.items()
+               if v in live and n > 0 and (everything or n >= cfg.checkpoint_every_fixes
+                                           or now - self._last_checkpoint.get(v, 0.0)
+                                           >= cfg.checkpoint_every_s)]
+        if everything:
+            due = sorted(live)
+        if due:
+            snapshot = {v: self._fixes_since[v] for v in due}
+            blobs = {v: self.pipeline.export_vehicle(v) for v in due}
+            await self.store.save(blobs, ttl_s=cfg.idle_ttl_s)
+            for v, n in snapshot.items():
+                self._fixes_since[v] -= n
+                if self._fixes_since[v] <= 0:
+                    del self._fixes_since[v]
+                self._last_checkpoint[v] = now
+            self.metrics.checkpoints.inc(len(blobs))
+        if self._latest_dirty:
+            dirty, self._latest_dirty = self._latest_dirty, set()
+            try:
+                await self.store.set_latest({v: self._latest[v] for v in dirty
+                                             if v in self._latest})
+            except StoreError:
+                self._latest_dirty |= dirty
+                raise
+
+    async def _evict_idle(self) -> None:
+        if self._newest_fix_t is None:
+            return
+        final: list[Any] = []
+        gone = self.pipeline.evict_idle(self._newest_fix_t, self.config.store.idle_ttl_s,
+                                        into=final)
+        for out in final:  # the evicted vehicles' last commits
+            await self._route(out)
+        if gone:
+            for v in gone:
+                self._fixes_since.pop(v, None)
+                self._last_checkpoint.pop(v, None)
+                self._latest.pop(v, None)
+                self._latest_dirty.discard(v)
+                self._last_published.pop(v, None)
+            await self.store.delete(gone)
+            log.info("evicted idle vehicles", extra=fields(count=len(gone)))
+        self.metrics.vehicles.set(len(self.pipeline.vehicles()))
+
+    async def _final_checkpoint(self) -> None:
+        if not self.restored:
+            return  # never restored: writing now would overwrite state we did not load
+        try:
+            await self._flush_state(everything=True)
+            log.info("final checkpoint written",
+                     extra=fields(vehicles=len(self.pipeline.vehicles())))
+        except StoreError as exc:
+            self.metrics.store_errors.inc()
+            log.error("final checkpoint failed", extra=fields(error=exc))
+
+    # -- MQTT ----------------------------------------------------------------------
+
+    async def _connection_loop(self) -> None:
+        cfg = self.config.mqtt
+        backoff = backoff_delays(cfg.reconnect_min_s, cfg.reconnect_max_s)
+        while not self._stopping.is_set():
+            try:
+                await self._session(backoff)
+            except* (aiomqtt.MqttError, OSError) as group:
+                self._lost_connection(group.exceptions[0])
+            except* Exception as group:  # a bug in a loop: log, count, reconnect
+                log.error("mqtt session failed", exc_info=group.exceptions[0])
+                self._lost_connection(group.exceptions[0])
+            finally:
+                self.broker_connected = False
+            if not self._stopping.is_set():
+                await self._sleep_unless_stopping(backoff.next())
+        if self._outbox:
+            self.metrics.dropped.inc(len(self._outbox))
+            log.error("outputs not published at shutdown (broker unavailable)",
+                      extra=fields(count=len(self._outbox)))
+            self._outbox.clear()
+            self.metrics.queue_depth.set(0)
+
+    def _lost_connection(self, exc: BaseException) -> None:
+        self.metrics.reconnects.inc()
+        log.warning("broker connection lost; reconnecting",
+                    extra=fields(broker=redact_url(self.config.mqtt.url), error=exc,
+                                 queued=len(self._outbox)))
+
+    async def _session(self, backoff: Any) -> None:
+        cfg = self.config.mqtt
+        client = make_client(cfg, username=self.config.username, password=self.config.password)
+        async with client:
+            self.broker_connected = True
+            backoff.reset()
+            await client.subscribe(cfg.topic, qos=cfg.qos)
+            log.info("connected and subscribed",
+                     extra=fields(broker=redact_url(cfg.url), topic=cfg.topic,
+                                  client_id=cfg.client_id, queued=len(self._outbox)))
+            async with asyncio.TaskGroup() as tg:
+                tg.create_task(self._receive_loop(client), name="mqtt-receive")
+                tg.create_task(self._publish_loop(client), name="mqtt-publish")
+
+    async def _receive_loop(self, client: aiomqtt.Client) -> None:
+        messages = client.messages.__aiter__()
+        stop = asyncio.create_task(self._stopping.wait(), name="stop-wait")
+        try:
+            while True:
+                nxt = asyncio.ensure_future(messages.__anext__())
+                await asyncio.wait({nxt, stop}, return_when=asyncio.FIRST_COMPLETED)
+                if not nxt.done():
+                    # Stopping: a message not taken stays unacknowledged; the broker
+                    # delivers it again on the next session.
+                    nxt.cancel()
+                    with contextlib.suppress(asyncio.CancelledError, aiomqtt.MqttError):
+                        await nxt
+                    break
+                await self._process(client, nxt.result())
+        finally:
+            stop.cancel()
+        self._intake_closed = True
+        self._drain_deadline = time.monotonic() + self.config.publish.shutdown_grace_s
+        async with self._outbox_cond:
+            self._outbox_cond.notify_all()
+
+    async def _process(self, client: aiomqtt.Client, message: aiomqtt.Message) -> None:
+        """Match one message, queue its outputs, then acknowledge it."""
+        self.metrics.received.inc()
+        payload = message.payload
+        if not isinstance(payload, bytes | bytearray):
+            payload = str(payload).encode()
+        topic = message.topic.value
+        started = time.perf_counter()
+        try:
+            outputs = self.pipeline.handle(topic, bytes(payload), time.time())
+        except Exception as exc:  # a bug must not stop the feed: reject, log, go on
+            log.exception("pipeline error", extra=fields(topic=topic))
+            outputs = [_internal_reject(topic, bytes(payload), exc)]
+        self.metrics.processing.observe(time.perf_counter() - started)
+        self._sync_counters()
+        for out in outputs:
+            await self._route(out)
+        ack(client, message)
+
+    def _sync_counters(self) -> None:
+        """Carry the pipeline's counters (fixes, filtered:<reason>) into the metrics."""
+        for key, value in self.pipeline.counters.items():
+            delta = value - self._seen_counters[key]
+            if delta <= 0:
+                continue
+            self._seen_counters[key] = value
+            if key == "fixes":
+                self.metrics.fixes.inc(delta)
+            elif key == "duplicate":  # a redelivered fix, dropped by (vehicle, time)
+                self.metrics.filtered.labels(reason="duplicate").inc(delta)
+            elif key.startswith("filtered:"):
+                self.metrics.filtered.labels(reason=key.split(":", 1)[1]).inc(delta)
+
+    async def _route(self, out: OutputLike) -> None:
+        cfg = self.config.mqtt
+        record = out.record
+        vehicle = out.vehicle
+        if out.kind == "reject" or vehicle is None:
+            self.metrics.rejected.labels(reason=str(record.get("reason", "unknown"))).inc()
+            await self._enqueue(_Pending(cfg.reject_topic, encode_record(record), "reject",
+                                         False, None))
+            return
+        payload = encode_record(record)
+        fix_time = record.get("time")
+        if out.kind == "assignment":
+            self.metrics.eps_level.labels(eps_m=f"{record.get('eps_m')}").inc()
+            self._latest[vehicle] = payload
+            self._latest_dirty.add(vehicle)
+            self._fixes_since[vehicle] += 1
+            if self._fixes_since[vehicle] >= self.config.store.checkpoint_every_fixes:
+                self._checkpoint_due.set()
+            if isinstance(fix_time, int | float):
+                self._newest_fix_t = max(self._newest_fix_t or fix_time, fix_time)
+            if self._throttled(vehicle, record):
+                self.metrics.throttled.inc()
+                return
+            topic = cfg.match_topic
+        elif out.kind == "commit":
+            topic = cfg.commit_topic
+        elif out.kind == "alert":
+            topic = cfg.alert_topic
+        else:
+            log.warning("unknown output kind dropped", extra=fields(kind=out.kind))
+            return
+        retain = self.config.publish.retain_latest and out.kind == "assignment"
+        stamp = float(fix_time) if isinstance(fix_time, int | float) else None
+        await self._enqueue(_Pending(topic.replace("{vehicle}", vehicle), payload, out.kind,
+                                     retain, stamp))
+
+    def _throttled(self, vehicle: str, record: Mapping[str, Any]) -> bool:
+        """True when this assignment is held back: same road and within throttle_s."""
+        throttle = self.config.publish.throttle_s
+        road, t = record.get("way"), float(record.get("time", 0.0))
+        last = self._last_published.get(vehicle)
+        if throttle > 0 and last is not None and last[0] == road and t - last[1] < throttle:
+            return True
+        self._last_published[vehicle] = (road, t)
+        return False
+
+    async def _enqueue(self, item: _Pending) -> None:
+        """Queue an output; waits (pausing intake) while the queue is full."""
+        limit = self.config.publish.queue_max
+        async with self._outbox_cond:
+            if len(self._outbox) >= limit:
+                log.warning("publish queue full; intake paused", extra=fields(limit=limit))
+            await self._outbox_cond.wait_for(lambda: len(self._outbox) < limit)
+            self._outbox.append(item)
+            self.metrics.queue_depth.set(len(self._outbox))
+            self._outbox_cond.notify_all()
+
+    async def _publish_loop(self, client: aiomqtt.Client) -> None:
+        qos = self.config.mqtt.qos
+        while True:
+            async with self._outbox_cond:
+                await self._outbox_cond.wait_for(lambda: bool(self._outbox)
+                                                 or self._intake_closed)
+                if not self._outbox:
+                    return  # stopping and drained
+                item = self._outbox[0]
+            timeout: float | None = None
+            if self._intake_closed:
+                timeout = self._drain_deadline - time.monotonic()
+                if timeout <= 0:
+                    return  # grace over: what is left is counted as dropped
+            await client.publish(item.topic, item.payload, qos=qos, retain=item.retain,
+                                 timeout=timeout)
+            async with self._outbox_cond:
+                self._outbox.popleft()
+                self.metrics.queue_depth.set(len(self._outbox))
+                self._outbox_cond.notify_all()
+            self.metrics.published.labels(kind=item.kind).inc()
+            if item.kind == "assignment" and item.fix_time is not None:
+                self.metrics.lag.observe(max(0.0, time.time() - item.fix_time))
+
+    # -- helpers -------------------------------------------------------------------
+
+    async def _sleep_unless_stopping(self, seconds: float) -> None:
+        with contextlib.suppress(TimeoutError):
+            await asyncio.wait_for(self._stopping.wait(), timeout=seconds)
+
+    def _render_metrics(self) -> bytes:
+        self.metrics.vehicles.set(len(self.pipeline.vehicles()))
+        self.metrics.queue_depth.set(len(self._outbox))
+        return self.metrics.render()
+
+
+def _internal_reject(topic: str, payload: bytes, exc: Exception) -> Output:
+    """A reject record (same fields as the pipeline's) for a message whose handling failed."""
+    return Output("reject", None, {
+        "at": time.time(), "topic": topic, "reason": "internal_error",
+        "detail": f"{type(exc).__name__}: {exc}"[:200],
+        "payload": payload.decode("utf-8", "replace")[:REJECT_PAYLOAD_CHARS],
+    })

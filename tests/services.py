@@ -1,0 +1,290 @@
+"""Real mosquitto and redis-server for the daemon's tests, and helpers to drive them.
+
+The servers run on free loopback ports, each with a generated config in a temporary
+folder, and are stopped after use (fixtures in ``fixtures_services.py``, loaded with
+``pytest_plugins = ("fixtures_services",)``). Each test gets its own topic and key
+prefix, so tests sharing a server never see each other's messages or keys.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import json
+import os
+import shutil
+import signal
+import socket
+import subprocess
+import time
+import uuid
+from collections.abc import AsyncIterator
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import aiomqtt
+from paho.mqtt.packettypes import PacketTypes
+from paho.mqtt.properties import Properties
+
+from livematch.core.build import Road, network_from_roads
+from livematch.core.geometry import Projection
+from livematch.core.network import RoadNetwork
+
+MOSQUITTO = shutil.which("mosquitto") or "/usr/sbin/mosquitto"
+REDIS_SERVER = shutil.which("redis-server") or "/usr/bin/redis-server"
+
+
+def free_port() -> int:
+    """A TCP port on 127.0.0.1 that nobody listens on right now."""
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+def wait_listening(port: int, proc: subprocess.Popen[bytes], timeout: float = 10.0) -> None:
+    """Block until something accepts on 127.0.0.1:port (or the process died)."""
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if proc.poll() is not None:
+            raise RuntimeError(f"server on port {port} exited with {proc.returncode}")
+        with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+            s.settimeout(0.2)
+            if s.connect_ex(("127.0.0.1", port)) == 0:
+                return
+        time.sleep(0.02)
+    raise RuntimeError(f"nothing listens on 127.0.0.1:{port} after {timeout} s")
+
+
+@dataclass
+class Mosquitto:
+    """A mosquitto 2.x broker with persistence, startable and stoppable on one port."""
+
+    folder: Path
+    port: int = field(default_factory=free_port)
+    proc: subprocess.Popen[bytes] | None = None
+
+    @property
+    def url(self) -> str:
+        return f"mqtt://127.0.0.1:{self.port}"
+
+    def start(self) -> None:
+        self.folder.mkdir(parents=True, exist_ok=True)
+        conf = self.folder / "mosquitto.conf"
+        conf.write_text(
+            f"listener {self.port} 127.0.0.1\n"
+            "allow_anonymous true\n"
+            "persistence true\n"
+            f"persistence_location {self.folder}/\n"
+            "max_queued_messages 100000\n"
+            "max_inflight_messages 100\n"
+            f"log_dest file {self.folder}/mosquitto.log\n"
+        )
+        self.proc = subprocess.Popen([MOSQUITTO, "-c", str(conf)],
+                                     stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        wait_listening(self.port, self.proc)
+
+    def stop(self) -> None:
+        """SIGTERM (mosquitto saves its persistence file) and wait for the exit."""
+        if self.proc is not None and self.proc.poll() is None:
+            self.proc.send_signal(signal.SIGTERM)
+            try:
+                self.proc.wait(timeout=10)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait()
+        self.proc = None
+
+
+@dataclass
+class RedisServer:
+    """A redis-server without persistence on a free port."""
+
+    folder: Path
+    port: int = field(default_factory=free_port)
+    proc: subprocess.Popen[bytes] | None = None
+
+    @property
+    def url(self) -> str:
+        return f"redis://127.0.0.1:{self.port}/0"
+
+    def start(self) -> None:
+        self.folder.mkdir(parents=True, exist_ok=True)
+        self.proc = subprocess.Popen(
+            [REDIS_SERVER, "--port", str(self.port), "--bind", "127.0.0.1",
+             "--save", "", "--appendonly", "no", "--dir", str(self.folder),
+             "--protected-mode", "no"],
+            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        wait_listening(self.port, self.proc)
+
+    def stop(self) -> None:
+        if self.proc is not None and self.proc.poll() is None:
+            self.proc.terminate()
+            try:
+                self.proc.wait(timeout=10)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait()
+        self.proc = None
+
+
+# -- MQTT helpers for tests --------------------------------------------------------------
+
+
+def _session_props(expiry: int) -> Properties:
+    props = Properties(PacketTypes.CONNECT)
+    props.SessionExpiryInterval = expiry
+    return props
+
+
+@dataclass
+class Collector:
+    """Subscribes (QoS 1, persistent session) and keeps every message it receives.
+
+    It reconnects by itself when the broker goes away, so with a persistent session it
+    also gets what was published while it was disconnected.
+    """
+
+    host: str
+    port: int
+    topic_filter: str
+    client_id: str = field(default_factory=lambda: f"collector-{uuid.uuid4().hex[:8]}")
+    messages: list[tuple[str, bytes, bool]] = field(default_factory=list)
+    subscribed: asyncio.Event = field(default_factory=asyncio.Event)
+    _task: asyncio.Task[None] | None = None
+
+    async def _run(self) -> None:
+        while True:
+            try:
+                async with aiomqtt.Client(
+                    self.host, self.port, identifier=self.client_id,
+                    protocol=aiomqtt.ProtocolVersion.V5, clean_start=False,
+                    properties=_session_props(600),
+                ) as client:
+                    await client.subscribe(self.topic_filter, qos=1)
+                    self.subscribed.set()
+                    async for m in client.messages:
+                        payload = m.payload if isinstance(m.payload, bytes) else b""
+                        self.messages.append((m.topic.value, payload, bool(m.retain)))
+            except aiomqtt.MqttError:
+                await asyncio.sleep(0.2)
+
+    async def __aenter__(self) -> Collector:
+        self._task = asyncio.create_task(self._run(), name="collector")
+        await asyncio.wait_for(self.subscribed.wait(), timeout=10)
+        return self
+
+    async def __aexit__(self, *exc: object) -> None:
+        assert self._task is not None
+        self._task.cancel()
+        with contextlib.suppress(asyncio.CancelledError):
+            await self._task
+
+    def records(self, topic_part: str) -> list[dict[str, Any]]:
+        """Decoded payloads of the messages whose topic contains ``topic_part``."""
+        return [json.loads(p) for t, p, _ in self.messages if topic_part in t]
+
+    async def wait_for(self, topic_part: str, count: int, timeout: float = 30.0) -> None:
+        """Wait until at least ``count`` messages with ``topic_part`` arrived."""
+        deadline = time.monotonic() + timeout
+        while len(self.records(topic_part)) < count:
+            if time.monotonic() > deadline:
+                raise AssertionError(f"only {len(self.records(topic_part))} of {count} "
+                                     f"messages on *{topic_part}* after {timeout} s")
+            await asyncio.sleep(0.05)
+
+
+@contextlib.asynccontextmanager
+async def publisher(port: int) -> AsyncIterator[aiomqtt.Client]:
+    """A connected client for publishing test input."""
+    async with aiomqtt.Client("127.0.0.1", port,
+                              identifier=f"pub-{uuid.uuid4().hex[:8]}") as client:
+        yield client
+
+
+def subprocess_env() -> dict[str, str]:
+    """Environment for ``python -m livematch.cli`` subprocesses (no stray overrides)."""
+    return {k: v for k, v in os.environ.items() if not k.startswith("LIVEMATCH")}
+
+
+# -- a small town and its traffic ------------------------------------------------------
+
+#: All test networks are about this point (Helsinki centre), in local metres.
+PROJECTION = Projection.local(24.94, 60.17)
+#: Fix times start here: 2026-05-28 (inside the feed's accepted years).
+T0 = 1_780_000_000.0
+
+
+def town() -> RoadNetwork:
+    """Main Street (way 1, y=0, 0..5000 m) crossed by Side Street (way 2, x=1000)."""
+    main = Road([(float(x), 0.0) for x in range(0, 5001, 100)], way=1, name="Main Street")
+    side = Road([(1000.0, float(y)) for y in range(-1000, 1001, 100)], way=2,
+                name="Side Street")
+    return network_from_roads([main, side], PROJECTION)
+
+
+def position(vehicle: str | None, t: float, x: float, y: float, **extra: Any) -> bytes:
+    """A position message (JSON bytes) at projected (x, y) metres."""
+    lon, lat = PROJECTION.to_lonlat(x, y)
+    msg: dict[str, Any] = {"time": t, "lat": round(float(lat), 7), "lon": round(float(lon), 7)}
+    if vehicle is not None:
+        msg["vehicle"] = vehicle
+    msg.update(extra)
+    return json.dumps(msg).encode()
+
+
+def drive(vehicle: str, n: int, *, start_x: float = 100.0, first: int = 0,
+          step_m: float = 12.0, dt: float = 1.0) -> list[tuple[float, bytes]]:
+    """Fixes ``first..first+n-1`` of a vehicle driving east on Main Street (±2 m jitter)."""
+    out = []
+    for i in range(first, first + n):
+        t = T0 + i * dt
+        out.append((t, position(vehicle, t, start_x + i * step_m, 2.0 if i % 2 else -2.0)))
+    return out
+
+
+def write_config(folder: Path, prefix: str, *, broker: str, store: str = "memory://",
+                 network: str = "", metrics: str = "127.0.0.1:0", extra: str = "") -> Path:
+    """A daemon config file whose topics and keys all live under ``prefix``."""
+    path = folder / f"{prefix}.toml"
+    path.write_text(f"""
+[inputs]
+network = "{network}"
+
+[mqtt]
+url = "{broker}"
+topic = "{prefix}/fleet/+/position"
+client_id = "livematch-{prefix}"
+match_topic = "{prefix}/out/match/{{vehicle}}"
+commit_topic = "{prefix}/out/commit/{{vehicle}}"
+alert_topic = "{prefix}/out/alert/{{vehicle}}"
+reject_topic = "{prefix}/out/rejects"
+max_payload_bytes = 1024
+reconnect_min_s = 0.1
+reconnect_max_s = 0.5
+
+[store]
+url = "{store}"
+key_prefix = "{prefix}:"
+checkpoint_every_fixes = 5
+checkpoint_every_s = 1.0
+
+[metrics]
+listen = "{metrics}"
+
+[log]
+level = "info"
+{extra}
+""")
+    return path
+
+
+async def http_get(port: int, path: str) -> tuple[int, str]:
+    """GET http://127.0.0.1:port/path: (status, body)."""
+    reader, writer = await asyncio.open_connection("127.0.0.1", port)
+    writer.write(f"GET {path} HTTP/1.1\r\nHost: x\r\n\r\n".encode())
+    await writer.drain()
+    raw = await reader.read()
+    writer.close()
+    head, _, body = raw.partition(b"\r\n\r\n")
+    return int(head.split()[1]), body.decode()

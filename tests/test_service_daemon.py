@@ -1,0 +1,278 @@
+"""The live daemon in-process against a real mosquitto (and redis-server)."""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+from collections.abc import AsyncIterator
+from pathlib import Path
+from typing import Any
+
+from prometheus_client.parser import text_string_to_metric_families
+from services import (
+    T0,
+    Collector,
+    Mosquitto,
+    drive,
+    http_get,
+    publisher,
+    town,
+    write_config,
+)
+
+from livematch.config import load_config
+from livematch.pipeline import Pipeline
+from livematch.service.daemon import Daemon
+
+pytest_plugins = ("fixtures_services",)
+
+ASSIGNMENT_FIELDS = {"vehicle", "time", "lat", "lon", "way", "from_node", "to_node",
+                     "offset_m", "road", "eps_m", "window_fixes", "window_s", "committed"}
+
+
+def make_daemon(config_path: Path) -> Daemon:
+    config = load_config(config_path, env={})
+    return Daemon(config, Pipeline(town(), config.matcher, limits=config.feed))
+
+
+@contextlib.asynccontextmanager
+async def running(daemon: Daemon) -> AsyncIterator[asyncio.Task[None]]:
+    """Run the daemon as a task until the block ends, then stop it cleanly."""
+    task = asyncio.create_task(daemon.run(), name="daemon")
+    try:
+        for _ in range(400):
+            if not daemon.readiness() or task.done():
+                break
+            await asyncio.sleep(0.025)
+        assert not task.done(), task.exception()
+        assert daemon.readiness() == []
+        yield task
+    finally:
+        daemon.request_stop()
+        await asyncio.wait_for(task, timeout=30)
+
+
+def direct(messages: list[tuple[str, bytes]], config_path: Path) -> list[Any]:
+    """The outputs of the same messages run through a Pipeline directly (like replay)."""
+    config = load_config(config_path, env={})
+    pipeline = Pipeline(town(), config.matcher, limits=config.feed)
+    out = []
+    for topic, payload in messages:
+        out.extend(pipeline.handle(topic, payload, at=0.0))
+    return out
+
+
+def metric_values(text: str) -> dict[tuple[str, tuple[tuple[str, str], ...]], float]:
+    """Samples of a /metrics page, keyed by (sample name, sorted labels)."""
+    out = {}
+    for family in text_string_to_metric_families(text):
+        for sample in family.samples:
+            out[(sample.name, tuple(sorted(sample.labels.items())))] = sample.value
+    return out
+
+
+async def test_daemon_outputs_equal_direct_pipeline(mosquitto: Mosquitto, prefix: str,
+                                                    tmp_path: Path) -> None:
+    """Fixes of several vehicles in: the same records out as the Pipeline run directly."""
+    cfg = write_config(tmp_path, prefix, broker=mosquitto.url)
+    feeds = [drive(f"bus-{k}", 25, start_x=200.0 + 700 * k) for k in range(3)]
+    messages = [(f"{prefix}/fleet/bus-{k}/position", feeds[k][i][1])
+                for i in range(25) for k in range(3)]
+    expected = direct(messages, cfg)
+    daemon = make_daemon(cfg)
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col, \
+            running(daemon):
+        async with publisher(mosquitto.port) as pub:
+            for topic, payload in messages:
+                await pub.publish(topic, payload, qos=1)
+        await col.wait_for("/out/", len(expected))
+        await asyncio.sleep(0.3)  # nothing more may come
+        assert len(col.messages) == len(expected)
+        for k in range(3):
+            vehicle = f"bus-{k}"
+            for kind, part in (("assignment", "/out/match/"), ("commit", "/out/commit/")):
+                want = [o.record for o in expected if o.kind == kind and o.vehicle == vehicle]
+                got = col.records(f"{part}{vehicle}")
+                assert got == want
+        assignments = col.records("/out/match/")
+        assert len(assignments) == 75
+        assert all(set(a) == ASSIGNMENT_FIELDS for a in assignments)
+        assert {a["way"] for a in assignments} == {1}
+        status, text = await http_get(daemon.http.port, "/metrics")  # type: ignore[union-attr]
+    assert status == 200
+    values = metric_values(text)
+    assert values[("livematch_messages_received_total", ())] == 75
+    assert values[("livematch_fixes_processed_total", ())] == 75
+    assert values[("livematch_published_total", (("kind", "assignment"),))] == 75
+    assert values[("livematch_published_total", (("kind", "commit"),))] == sum(
+        o.kind == "commit" for o in expected)
+    assert values[("livematch_processing_seconds_count", ())] == 75
+    assert values[("livematch_fix_to_publish_lag_seconds_count", ())] == 75
+    assert values[("livematch_eps_level_assignments_total", (("eps_m", "15.0"),))] == 75
+    assert values[("livematch_vehicles_live", ())] == 3
+    assert values[("livematch_publish_queue_depth", ())] == 0
+
+
+BAD_MESSAGES = [
+    # (payload, expected reason)
+    (b"this is not json", "not_json"),
+    (b'{"time": 1780000100, "lat": 60.17}', "missing_field"),
+    (b'{"time": 1780000100, "lat": NaN, "lon": 24.94}', "not_finite"),
+    (b'{"time": 1780000100, "lat": 1e999, "lon": 24.94}', "not_finite"),
+    (b'{"time": 1780000100, "lat": 91, "lon": 24.94}', "out_of_range"),
+    (b'{"time": 1780000100, "lat": "60.17", "lon": 24.94}', "bad_type"),
+    (b'{"time": "last tuesday", "lat": 60.17, "lon": 24.94}', "bad_time"),
+    (b'{"vehicle": "car\\u0007", "time": 1780000100, "lat": 60.17, "lon": 24.94}',
+     "bad_vehicle"),
+    (b'{"time": 1780000100, "lat": 60.17, "lon": 24.94, "pad": "' + b"x" * 2000 + b'"}',
+     "too_large"),
+]
+
+
+async def test_daemon_rejects_go_to_dead_letter_topic(mosquitto: Mosquitto, prefix: str,
+                                                      tmp_path: Path) -> None:
+    """Each malformed message lands on the reject topic with its reason; valid ones all pass."""
+    cfg = write_config(tmp_path, prefix, broker=mosquitto.url)
+    good = drive("van-1", len(BAD_MESSAGES) + 1)
+    topic = f"{prefix}/fleet/van-1/position"
+    messages: list[tuple[str, bytes]] = []
+    for i, (_, payload) in enumerate(good):
+        messages.append((topic, payload))
+        if i < len(BAD_MESSAGES):
+            messages.append((topic, BAD_MESSAGES[i][0]))
+    daemon = make_daemon(cfg)
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col, \
+            running(daemon):
+        async with publisher(mosquitto.port) as pub:
+            for t, payload in messages:
+                await pub.publish(t, payload, qos=1)
+        await col.wait_for("/out/rejects", len(BAD_MESSAGES))
+        await col.wait_for("/out/match/van-1", len(good))
+        _, text = await http_get(daemon.http.port, "/metrics")  # type: ignore[union-attr]
+    rejects = col.records("/out/rejects")
+    assert [r["reason"] for r in rejects] == [reason for _, reason in BAD_MESSAGES]
+    for r, (payload, _) in zip(rejects, BAD_MESSAGES, strict=True):
+        assert r["topic"] == topic
+        assert r["detail"]
+        assert r["payload"] == payload.decode()[:512]
+    assert [a["time"] for a in col.records("/out/match/van-1")] == [t for t, _ in good]
+    values = metric_values(text)
+    assert values[("livematch_messages_received_total", ())] == len(messages)
+    assert values[("livematch_messages_rejected_total", (("reason", "not_finite"),))] == 2
+    for reason in ("not_json", "missing_field", "out_of_range", "bad_type", "bad_time",
+                   "bad_vehicle", "too_large"):
+        assert values[("livematch_messages_rejected_total", (("reason", reason),))] == 1
+    assert values[("livematch_published_total", (("kind", "reject"),))] == len(BAD_MESSAGES)
+
+
+async def test_daemon_drops_redelivered_fix(mosquitto: Mosquitto, prefix: str,
+                                            tmp_path: Path) -> None:
+    """The same fix twice (a QoS 1 redelivery) gives one assignment and a filtered count."""
+    cfg = write_config(tmp_path, prefix, broker=mosquitto.url)
+    fixes = drive("bus-9", 4)
+    topic = f"{prefix}/fleet/bus-9/position"
+    daemon = make_daemon(cfg)
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/match/#") as col, \
+            running(daemon):
+        async with publisher(mosquitto.port) as pub:
+            for _, payload in [fixes[0], fixes[1], fixes[1], fixes[2], fixes[3]]:
+                await pub.publish(topic, payload, qos=1)
+        await col.wait_for("/out/match/", 4)
+        await asyncio.sleep(0.3)
+        _, text = await http_get(daemon.http.port, "/metrics")  # type: ignore[union-attr]
+    assert [a["time"] for a in col.records("/out/match/")] == [t for t, _ in fixes]
+    values = metric_values(text)
+    assert values[("livematch_fixes_filtered_total", (("reason", "duplicate"),))] == 1
+
+
+async def test_daemon_health_endpoints(mosquitto: Mosquitto, prefix: str,
+                                       tmp_path: Path) -> None:
+    """/healthz and /readyz answer 200 when connected; unknown paths 404."""
+    daemon = make_daemon(write_config(tmp_path, prefix, broker=mosquitto.url))
+    async with running(daemon):
+        port = daemon.http.port  # type: ignore[union-attr]
+        assert await http_get(port, "/healthz") == (200, "ok\n")
+        assert await http_get(port, "/readyz") == (200, "ready\n")
+        assert (await http_get(port, "/nothing"))[0] == 404
+
+
+async def test_daemon_throttle_and_retain(mosquitto: Mosquitto, prefix: str,
+                                          tmp_path: Path) -> None:
+    """throttle_s publishes one assignment per road per period; retain keeps the latest."""
+    cfg = write_config(tmp_path, prefix, broker=mosquitto.url,
+                       extra="[publish]\nthrottle_s = 5.0\nretain_latest = true\n")
+    fixes = drive("taxi-1", 12)  # one fix per second on one road
+    daemon = make_daemon(cfg)
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/match/#") as col, \
+            running(daemon):
+        async with publisher(mosquitto.port) as pub:
+            for _, payload in fixes:
+                await pub.publish(f"{prefix}/fleet/taxi-1/position", payload, qos=1)
+        await col.wait_for("/out/match/", 3)
+        await asyncio.sleep(0.3)
+    # fix times T0+0..T0+11: published at 0, 5 and 10 s (same road throughout)
+    assert [a["time"] for a in col.records("/out/match/")] == [T0, T0 + 5, T0 + 10]
+    # A new subscriber gets the retained latest assignment of the vehicle.
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/match/#") as late:
+        await late.wait_for("/out/match/", 1)
+    assert late.records("/out/match/") == [col.records("/out/match/")[-1]]
+    assert late.messages[0][2] is True
+    # Clear the retained message so the broker does not keep it for later tests.
+    async with publisher(mosquitto.port) as pub:
+        await pub.publish(f"{prefix}/out/match/taxi-1", b"", qos=1, retain=True)
+
+
+async def test_daemon_readyz_503_and_requeue_while_broker_down(
+        own_mosquitto: Mosquitto, prefix: str, tmp_path: Path) -> None:
+    """Broker stopped: not ready, outputs kept; restarted: reconnects, sends them, goes on."""
+    broker = own_mosquitto
+    cfg = write_config(tmp_path, prefix, broker=broker.url)
+    topic = f"{prefix}/fleet/bus-1/position"
+    first = drive("bus-1", 150)
+    after = drive("bus-1", 20, first=150)
+    daemon = make_daemon(cfg)
+    async with Collector("127.0.0.1", broker.port, f"{prefix}/out/#") as col, \
+            running(daemon):
+        port = daemon.http.port  # type: ignore[union-attr]
+        async with publisher(broker.port) as pub:
+            for _, payload in first:
+                await pub.publish(topic, payload, qos=1)
+        # Stop the broker while outputs wait in the daemon's queue: between the check
+        # and the signal nothing else runs on this event loop.
+        for _ in range(2000):
+            if len(daemon._outbox) > 0:
+                break
+            await asyncio.sleep(0)
+        waiting = [(p.topic, p.payload) for p in daemon._outbox]
+        assert waiting, "the daemon never had outputs queued"
+        broker.stop()
+        for _ in range(200):
+            if (await http_get(port, "/readyz"))[0] == 503:
+                break
+            await asyncio.sleep(0.05)
+        status, body = await http_get(port, "/readyz")
+        assert (status, body) == (503, "not ready: broker\n")
+        await asyncio.sleep(1.0)  # several reconnect attempts fail meanwhile
+        broker.start()
+        for _ in range(200):
+            if daemon.readiness() == []:
+                break
+            await asyncio.sleep(0.05)
+        assert (await http_get(port, "/readyz"))[0] == 200
+        async with publisher(broker.port) as pub:
+            for _, payload in after:
+                await pub.publish(topic, payload, qos=1)
+        times = {t for t, _ in first + after}
+        for _ in range(600):
+            if {a["time"] for a in col.records("/out/match/")} >= times:
+                break
+            await asyncio.sleep(0.05)
+        got = col.records("/out/match/")
+        status, text = await http_get(port, "/metrics")
+    assert {a["time"] for a in got} == times  # every fix matched, none lost
+    delivered = {(t, p) for t, p, _ in col.messages}
+    for item in waiting:  # what was queued while the broker was away was delivered
+        assert item in delivered
+    values = metric_values(text)
+    assert values[("livematch_broker_reconnects_total", ())] >= 1
+    assert values[("livematch_publish_dropped_total", ())] == 0
