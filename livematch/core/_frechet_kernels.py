@@ -215,27 +215,62 @@ def discrete_frechet(p: np.ndarray, q: np.ndarray) -> float:
 
 
 @numba.njit(cache=True)
-def _segments(q: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """Segments of q as separate arrays: start x, start y, dx, dy, 1/length^2 (0 if none).
+def _segments(
+    q: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Segments of q as separate arrays: ax, ay, bx, by, dx, dy, 1/length^2 (0 if none).
 
-    Separate contiguous arrays let the inner loops below vectorise.
+    Separate contiguous arrays keep the inner loops below simple for the compiler.
     """
     ax = q[:-1, 0].copy()
     ay = q[:-1, 1].copy()
-    dx = q[1:, 0] - q[:-1, 0]
-    dy = q[1:, 1] - q[:-1, 1]
+    bx = q[1:, 0].copy()
+    by = q[1:, 1].copy()
+    dx = bx - ax
+    dy = by - ay
     inv = np.zeros(ax.shape[0])
     for j in range(ax.shape[0]):
         a = dx[j] * dx[j] + dy[j] * dy[j]
         if a > 0.0:
             inv[j] = 1.0 / a
-    return ax, ay, dx, dy, inv
+    return ax, ay, bx, by, dx, dy, inv
+
+
+@numba.njit(cache=True)
+def _point_segment_dist2(
+    px: float,
+    py: float,
+    ax: float,
+    ay: float,
+    bx: float,
+    by: float,
+    dx: float,
+    dy: float,
+    inv: float,
+) -> float:
+    """Squared distance from p to segment a->b (d = b - a, inv = 1/|d|^2 or 0).
+
+    Beyond an end it is the exact squared distance to that end; alongside, the squared
+    perpendicular distance from a cross product, which is exactly 0 for a point on the
+    segment (a projection parameter would leave a rounding residue there).
+    """
+    fx = px - ax
+    fy = py - ay
+    dot = fx * dx + fy * dy
+    if dot <= 0.0:
+        return fx * fx + fy * fy
+    if dot * inv >= 1.0:
+        gx = px - bx
+        gy = py - by
+        return gx * gx + gy * gy
+    cross = dx * fy - dy * fx
+    return cross * cross * inv
 
 
 @numba.njit(cache=True)
 def vertex_polyline_dist2(p: np.ndarray, q: np.ndarray) -> np.ndarray:
     """Squared distance from each vertex of p to the polyline q (>= 2 points), shape (m,)."""
-    ax, ay, dx, dy, inv = _segments(q)
+    ax, ay, bx, by, dx, dy, inv = _segments(q)
     m = p.shape[0]
     out = np.empty(m)
     for k in range(m):
@@ -243,12 +278,8 @@ def vertex_polyline_dist2(p: np.ndarray, q: np.ndarray) -> np.ndarray:
         py = p[k, 1]
         best = np.inf
         for j in range(ax.shape[0]):
-            fx = px - ax[j]
-            fy = py - ay[j]
-            t = min(max((fx * dx[j] + fy * dy[j]) * inv[j], 0.0), 1.0)
-            ex = fx - t * dx[j]
-            ey = fy - t * dy[j]
-            best = min(best, ex * ex + ey * ey)
+            d2 = _point_segment_dist2(px, py, ax[j], ay[j], bx[j], by[j], dx[j], dy[j], inv[j])
+            best = min(best, d2)
         out[k] = best
     return out
 
@@ -264,7 +295,7 @@ def vertex_segment_values(
     buffer passed in keeps the hot loop free of reallocation, which numba compiles
     poorly.)
     """
-    ax, ay, dx, dy, inv = _segments(q)
+    ax, ay, bx, by, dx, dy, inv = _segments(q)
     m = p.shape[0]
     cap = out.shape[0]
     lo2 = lo * lo
@@ -274,12 +305,7 @@ def vertex_segment_values(
         px = p[k, 0]
         py = p[k, 1]
         for j in range(ax.shape[0]):
-            fx = px - ax[j]
-            fy = py - ay[j]
-            t = min(max((fx * dx[j] + fy * dy[j]) * inv[j], 0.0), 1.0)
-            ex = fx - t * dx[j]
-            ey = fy - t * dy[j]
-            d2 = ex * ex + ey * ey
+            d2 = _point_segment_dist2(px, py, ax[j], ay[j], bx[j], by[j], dx[j], dy[j], inv[j])
             if lo2 <= d2 and d2 <= hi2:  # cheap prefilter on squares, exact test on roots
                 v = math.sqrt(d2)
                 if lo < v <= hi:
@@ -303,7 +329,7 @@ def equidistant_values(
     Writes and counts like :func:`vertex_segment_values`; returns -1 once more than
     ``max_pairs`` pairs would have to be tried (the caller then bisects instead).
     """
-    ax, ay, dx, dy, inv = _segments(q)
+    ax, ay, bx, by, dx, dy, inv = _segments(q)
     m = p.shape[0]
     cap = out.shape[0]
     hi2 = hi * hi
@@ -315,14 +341,9 @@ def equidistant_values(
         sy = ay[j]
         ux = dx[j]
         uy = dy[j]
-        w = inv[j]
         for k in range(m):
-            fx = p[k, 0] - sx
-            fy = p[k, 1] - sy
-            t = min(max((fx * ux + fy * uy) * w, 0.0), 1.0)
-            ex = fx - t * ux
-            ey = fy - t * uy
-            near[k] = ex * ex + ey * ey <= hi2
+            d2 = _point_segment_dist2(p[k, 0], p[k, 1], sx, sy, bx[j], by[j], ux, uy, inv[j])
+            near[k] = d2 <= hi2
         k0 = 0
         while k0 < m:
             if not near[k0]:
