@@ -1,13 +1,15 @@
-"""Replay logs: recorded feed messages, one JSON object per line (DESIGN §7).
+r"""Replay logs: recorded feed messages, one JSON object per line (DESIGN §7).
 
 Each line is one received message::
 
     {"at": 1764576005.25, "topic": "fleet/bus17/position", "payload": {"time": ...}}
 
 ``at`` is the receive time (epoch seconds), ``topic`` the MQTT topic, and ``payload`` the
-message: embedded as JSON when it was a JSON object, else as a string holding the
-original text (so a broken message replays as exactly the same broken bytes). A name
-ending in ``.gz`` means gzip. Blank lines are skipped.
+message: embedded verbatim when it was a one-line JSON object, else as a string holding
+the original text (bytes that are not UTF-8 as ``\udcXX`` escapes, Python's
+``surrogateescape``). Either way the reader hands back exactly the bytes that were
+received, so a replay sees what the daemon saw: the same size, the same broken JSON,
+the same verdict. A name ending in ``.gz`` means gzip. Blank lines are skipped.
 
 The log is livematch's own format, so a broken *line* (not JSON, missing ``at``) is an
 error naming the file and line; a bad *payload* inside a good line is just a message the
@@ -17,6 +19,7 @@ pipeline will reject, as it would have live.
 from __future__ import annotations
 
 import gzip
+import json
 import math
 import os
 from collections.abc import Iterator
@@ -99,45 +102,68 @@ def _entry(line: bytes, path: Path, lineno: int) -> LogEntry:
     try:
         rec = _LINE.decode(line)
     except msgspec.DecodeError as exc:
-        raise BadReplayLogError(
-            f"{path}:{lineno}: not a replay log line ({exc}); expected "
-            '{"at": <epoch s>, "topic": "...", "payload": {...} | "..."}') from exc
+        return _entry_with_surrogates(line, path, lineno, exc)
     if not math.isfinite(rec.at):
         raise BadReplayLogError(f"{path}:{lineno}: `at` must be finite, got {rec.at!r}")
     raw = bytes(rec.payload)
     if raw[:1] == b'"':
-        try:
-            raw = _STR.decode(raw).encode("utf-8", "surrogatepass")
-        except (msgspec.DecodeError, UnicodeEncodeError) as exc:
-            raise BadReplayLogError(f"{path}:{lineno}: broken payload string: {exc}") from exc
+        raw = _STR.decode(raw).encode("utf-8")
     return LogEntry(rec.at, rec.topic, raw)
+
+
+def _entry_with_surrogates(line: bytes, path: Path, lineno: int, exc: Exception) -> LogEntry:
+    r"""Read a line msgspec refused: valid only if it is a string payload with ``\udcXX``.
+
+    Those escapes (non-UTF-8 bytes written with ``surrogateescape``) are lone surrogates,
+    which msgspec refuses and the standard library's json accepts.
+    """
+    try:
+        rec = json.loads(line)
+    except ValueError:
+        rec = None
+    if isinstance(rec, dict):
+        at, topic, payload = rec.get("at"), rec.get("topic"), rec.get("payload")
+        if (isinstance(at, int | float) and not isinstance(at, bool) and math.isfinite(at)
+                and isinstance(topic, str) and isinstance(payload, str)):
+            try:
+                return LogEntry(float(at), topic, payload.encode("utf-8", "surrogateescape"))
+            except UnicodeEncodeError:
+                pass
+    raise BadReplayLogError(
+        f"{path}:{lineno}: not a replay log line ({exc}); expected "
+        '{"at": <epoch s>, "topic": "...", "payload": {...} | "..."}') from exc
 
 
 def payload_for_log(payload: bytes) -> bytes:
     r"""Return the JSON text that stands for ``payload`` in a log line.
 
-    A JSON object is embedded compactly with its tokens unchanged; anything else
-    (invalid JSON, a bare number, bytes that are not UTF-8) becomes a JSON string.
-    Invalid UTF-8 is written with ``\xNN`` escapes: such a message is ``not_json``
-    live, and the escaped text is not JSON either, so its replay verdict is the same.
+    A UTF-8 JSON object on one line is embedded verbatim (so its bytes, spacing and
+    number tokens such as ``1e999`` survive); anything else (invalid JSON, a bare
+    number, an object spread over lines, bytes that are not UTF-8) becomes a JSON string
+    of the original text, non-UTF-8 bytes as ``\udcXX`` escapes.
+    :func:`read_replay_log` gives back the original bytes in every case.
 
-    >>> payload_for_log(b'{"lat": 60.1,\n "lon": 1e999}')
-    b'{"lat":60.1,"lon":1e999}'
-    >>> payload_for_log(b"hello")
-    b'"hello"'
+    >>> payload_for_log(b'{"lat": 60.1, "lon": 1e999}')
+    b'{"lat": 60.1, "lon": 1e999}'
+    >>> payload_for_log(b'{"lat": 60.1,\n "lon": NaN}')
+    b'"{\\"lat\\": 60.1,\\n \\"lon\\": NaN}"'
+    >>> payload_for_log(b"\xff")
+    b'"\\udcff"'
     >>> payload_for_log(b"")
     b'""'
     """
-    stripped = payload.strip()
-    if stripped[:1] == b"{":
+    try:
+        text = payload.decode("utf-8")
+    except UnicodeDecodeError:
+        return json.dumps(payload.decode("utf-8", "surrogateescape")).encode("ascii")
+    if payload[:1] == b"{" and payload[-1:] == b"}" and not any(c in text for c in "\n\r"):
         try:
-            # format() works on tokens: numbers keep their text (1e999 stays 1e999).
-            compact = msgspec.json.format(stripped, indent=-1)
-            if compact[:1] == b"{" and b"\n" not in compact:
-                return compact
+            msgspec.json.format(payload)  # checks the JSON syntax, token by token
         except msgspec.DecodeError:
             pass
-    return msgspec.json.encode(payload.decode("utf-8", "backslashreplace"))
+        else:
+            return payload
+    return msgspec.json.encode(text)
 
 
 class ReplayLogWriter:
@@ -147,7 +173,7 @@ class ReplayLogWriter:
         >>> import tempfile, pathlib
         >>> p = pathlib.Path(tempfile.mkdtemp()) / "feed.jsonl"
         >>> with ReplayLogWriter(p) as log:
-        ...     log.write(1.5, "fleet/a/position", b'{"lat": 1}')
+        ...     log.write(1.5, "fleet/a/position", b'{"lat":1}')
         >>> p.read_text()
         '{"at":1.5,"topic":"fleet/a/position","payload":{"lat":1}}\n'
     """
