@@ -26,7 +26,8 @@ from memory of that paper, not re-checked against it):
   stopped vehicle).
 - **Breaks**: a fix with no candidate, or whose candidates are all unreachable from the
   previous step, ends the chain (everything pending is decided) and the next fix with
-  candidates starts a new one.
+  candidates starts a new one. (For the path only, the new chain's first decision is
+  joined to the old chain's last by a bounded shortest route when there is one.)
 
 Our additions, not in the paper: a candidate a little *behind* the previous one on the
 same or the directly preceding segment (``backtrack_m``) is treated as standing still
@@ -346,23 +347,34 @@ class HmmMatcher:
             self.final[i] = m
         if self._last_choice is not None:
             prev_step, prev_state = self._last_choice
-            via = step.link[state] if int(step.back[state]) == prev_state else None
+            linked = int(step.back[state]) == prev_state and prev_step is not step
+            via = step.link[state] if linked else None
             if via is None:
-                via = self._reconnect(prev_step.cands[prev_state], m)
+                dt = (None if step.t is None or prev_step.t is None
+                      else max(0.0, step.t - prev_step.t))
+                via = self._reconnect(prev_step.cands[prev_state], m, dt)
             self.path.extend(via)
         else:
             self.path.append(m.segment)
         self._last_choice = (step, state)
 
-    def _reconnect(self, p: Matched, c: Matched) -> list[int]:
-        """Segments joining two decided states the back-pointers do not join."""
-        if p.segment == c.segment and c.offset_m >= p.offset_m - self.settings.backtrack_m:
+    def _reconnect(self, p: Matched, c: Matched, dt: float | None) -> list[int]:
+        """Segments joining two decided states the back-pointers do not join.
+
+        Fixed-lag decisions need not be consistent with each other. Two decisions on the
+        same segment, or the newer one on the segment just before, mean "no progress"
+        (not a trip round the block); otherwise the shortest route within the usual cutoff
+        joins them, and without one the path has a gap.
+        """
+        if p.segment == c.segment or self._seg_to[c.segment] == self._seg_from[p.segment]:
             return []
+        s = self.settings
         head, tail = self._seg_to[p.segment], self._seg_from[c.segment]
-        cutoff = self.settings.route_slack_m + self.settings.route_factor * math.hypot(
-            c.x - p.x, c.y - p.y)
+        cutoff = s.route_slack_m + s.route_factor * math.hypot(c.x - p.x, c.y - p.y)
+        if dt is not None:
+            cutoff = min(cutoff, s.speed_slack_m + s.max_speed_mps * dt)
         dist, pred = self._dijkstra(head, {tail}, cutoff)
-        _, via = self._route(p, c, dist, pred, math.inf)
+        _, via = self._route(p, c, dist, pred, cutoff)
         return via if via is not None else [c.segment]
 
     def _finish_chain(self) -> None:
@@ -370,7 +382,8 @@ class HmmMatcher:
             self._decide_upto(len(self._chain) - 1)
         self._chain = []
         self._decided = 0
-        self._last_choice = None  # a new chain is not connected to the old one
+        # _last_choice stays: the next chain's first decision is joined to it by routing
+        # when a short route exists (so a break does not cut the path needlessly).
 
 
 def match_hmm(
