@@ -319,3 +319,45 @@ def test_frechet_decide_monotone_and_consistent(p, q, thresholds):
     assert frechet_decide(p, q, d * (1 + 1e-9))
     if d > 0:
         assert not frechet_decide(p, q, d * (1 - 1e-6))
+
+
+# ---------------------------------------------------------------- longer curves
+
+
+def _walk(rng: np.random.Generator, n: int, noise: float) -> tuple[np.ndarray, np.ndarray]:
+    """A random-walk drive (5-15 m steps) and a noisy trace of it, in metres."""
+    heading = np.cumsum(rng.normal(scale=0.3, size=n))
+    step = rng.uniform(5.0, 15.0, size=n)
+    truth = np.cumsum(np.c_[np.cos(heading) * step, np.sin(heading) * step], axis=0)
+    return truth, truth + rng.normal(scale=noise, size=truth.shape)
+
+
+@pytest.mark.parametrize("seed", [1, 7, 2026])
+def test_frechet_distance_long_traces_bracketed_by_geos(seed):
+    """On 300-vertex traces (many pruning blocks): GEOS bounds hold and decide flips at d."""
+    rng = np.random.default_rng(seed)
+    truth, noisy = _walk(rng, 300, 5.0)
+    noisy2 = truth + rng.normal(scale=5.0, size=truth.shape)
+    d = frechet_distance(noisy, noisy2)
+    # shapely.hausdorff_distance / shapely.frechet_distance (GEOS): lower / upper bounds
+    assert hausdorff_distance(noisy, noisy2) == pytest.approx(
+        shapely.hausdorff_distance(_line(noisy), _line(noisy2)), abs=1e-9
+    )
+    assert shapely.hausdorff_distance(_line(noisy), _line(noisy2)) <= d + 1e-9
+    assert d <= shapely.frechet_distance(_line(noisy), _line(noisy2)) + 1e-9
+    assert frechet_decide(noisy, noisy2, d * (1 + 1e-9))
+    assert not frechet_decide(noisy, noisy2, d * (1 - 1e-6))
+
+
+def test_frechet_distance_long_traces_match_densified_discrete():
+    """On 40-vertex traces, the densified discrete value lies within one step above ours."""
+    rng = np.random.default_rng(3)
+    truth, noisy = _walk(rng, 40, 6.0)
+    step = _max_edge(truth, noisy) / 8
+    # shapely.segmentize (GEOS) densifies; Eiter & Mannila (1994) recurrence on the result
+    dense_truth = shapely.get_coordinates(shapely.segmentize(_line(truth), step))
+    dense_noisy = shapely.get_coordinates(shapely.segmentize(_line(noisy), step))
+    d = frechet_distance(truth, noisy)
+    dense = _eiter_mannila(dense_truth, dense_noisy)
+    assert d <= dense + 1e-9
+    assert dense <= d + step + 1e-9

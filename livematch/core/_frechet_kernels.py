@@ -267,19 +267,71 @@ def _point_segment_dist2(
     return cross * cross * inv
 
 
+# Runs of this many consecutive segments (or vertices) share a bounding box, so that the
+# O(mn) scans below can skip a whole run that is provably too far away.
+_BLOCK = 16
+
+
+@numba.njit(cache=True)
+def _block_boxes(x: np.ndarray, y: np.ndarray, npts: int, step: int) -> np.ndarray:
+    """Bounding boxes (xmin, xmax, ymin, ymax) of points b*step .. b*step + step (incl.).
+
+    With ``x, y`` the vertices of a polyline, block b covers segments b*step .. b*step +
+    step - 1 (whose end points are those vertices); for plain vertex blocks the one
+    extra point only enlarges the box, which keeps every test conservative.
+    """
+    nb = (npts + step - 1) // step
+    out = np.empty((nb, 4))
+    for b in range(nb):
+        i0 = b * step
+        i1 = min(i0 + step, x.shape[0] - 1)
+        out[b, 0] = x[i0]
+        out[b, 1] = x[i0]
+        out[b, 2] = y[i0]
+        out[b, 3] = y[i0]
+        for i in range(i0 + 1, i1 + 1):
+            out[b, 0] = min(out[b, 0], x[i])
+            out[b, 1] = max(out[b, 1], x[i])
+            out[b, 2] = min(out[b, 2], y[i])
+            out[b, 3] = max(out[b, 3], y[i])
+    return out
+
+
+@numba.njit(cache=True)
+def _box_dist2(box: np.ndarray, b: int, px: float, py: float) -> float:
+    """Squared distance from p to box b (0 inside): a lower bound for anything in it."""
+    ex = max(box[b, 0] - px, 0.0, px - box[b, 1])
+    ey = max(box[b, 2] - py, 0.0, py - box[b, 3])
+    return ex * ex + ey * ey
+
+
 @numba.njit(cache=True)
 def vertex_polyline_dist2(p: np.ndarray, q: np.ndarray) -> np.ndarray:
-    """Squared distance from each vertex of p to the polyline q (>= 2 points), shape (m,)."""
+    """Squared distance from each vertex of p to the polyline q (>= 2 points), shape (m,).
+
+    Exact minimum over all segments; blocks of segments whose bounding box is no closer
+    than the best distance so far are skipped, and each vertex starts from the segment
+    that was nearest to the previous vertex (consecutive vertices are near each other).
+    """
     ax, ay, bx, by, dx, dy, inv = _segments(q)
+    ns = ax.shape[0]
+    box = _block_boxes(q[:, 0].copy(), q[:, 1].copy(), ns, _BLOCK)
     m = p.shape[0]
     out = np.empty(m)
+    jbest = 0
     for k in range(m):
         px = p[k, 0]
         py = p[k, 1]
-        best = np.inf
-        for j in range(ax.shape[0]):
-            d2 = _point_segment_dist2(px, py, ax[j], ay[j], bx[j], by[j], dx[j], dy[j], inv[j])
-            best = min(best, d2)
+        j = jbest
+        best = _point_segment_dist2(px, py, ax[j], ay[j], bx[j], by[j], dx[j], dy[j], inv[j])
+        for b in range(box.shape[0]):
+            if _box_dist2(box, b, px, py) >= best:
+                continue
+            for j in range(b * _BLOCK, min((b + 1) * _BLOCK, ns)):
+                d2 = _point_segment_dist2(px, py, ax[j], ay[j], bx[j], by[j], dx[j], dy[j], inv[j])
+                if d2 < best:
+                    best = d2
+                    jbest = j
         out[k] = best
     return out
 
@@ -293,9 +345,11 @@ def vertex_segment_values(
     Writes as many as fit into ``out`` and returns how many there are in all; when that
     is more than ``out`` holds, the caller calls again with a big enough buffer. (A
     buffer passed in keeps the hot loop free of reallocation, which numba compiles
-    poorly.)
+    poorly.) Blocks of segments farther than ``hi`` are skipped.
     """
     ax, ay, bx, by, dx, dy, inv = _segments(q)
+    ns = ax.shape[0]
+    box = _block_boxes(q[:, 0].copy(), q[:, 1].copy(), ns, _BLOCK)
     m = p.shape[0]
     cap = out.shape[0]
     lo2 = lo * lo
@@ -304,14 +358,17 @@ def vertex_segment_values(
     for k in range(m):
         px = p[k, 0]
         py = p[k, 1]
-        for j in range(ax.shape[0]):
-            d2 = _point_segment_dist2(px, py, ax[j], ay[j], bx[j], by[j], dx[j], dy[j], inv[j])
-            if lo2 <= d2 and d2 <= hi2:  # cheap prefilter on squares, exact test on roots
-                v = math.sqrt(d2)
-                if lo < v <= hi:
-                    if count < cap:
-                        out[count] = v
-                    count += 1
+        for b in range(box.shape[0]):
+            if _box_dist2(box, b, px, py) > hi2:
+                continue
+            for j in range(b * _BLOCK, min((b + 1) * _BLOCK, ns)):
+                d2 = _point_segment_dist2(px, py, ax[j], ay[j], bx[j], by[j], dx[j], dy[j], inv[j])
+                if lo2 <= d2 and d2 <= hi2:  # cheap prefilter on squares, exact on roots
+                    v = math.sqrt(d2)
+                    if lo < v <= hi:
+                        if count < cap:
+                            out[count] = v
+                        count += 1
     return count
 
 
@@ -331,9 +388,11 @@ def equidistant_values(
     """
     ax, ay, bx, by, dx, dy, inv = _segments(q)
     m = p.shape[0]
-    cap = out.shape[0]
+    vbox = _block_boxes(p[:, 0].copy(), p[:, 1].copy(), m, _BLOCK)
+    nb = vbox.shape[0]
     hi2 = hi * hi
     near = np.empty(m, dtype=np.bool_)
+    far = np.empty(nb, dtype=np.bool_)
     count = 0
     pairs = 0
     for j in range(ax.shape[0]):
@@ -341,40 +400,86 @@ def equidistant_values(
         sy = ay[j]
         ux = dx[j]
         uy = dy[j]
-        for k in range(m):
-            d2 = _point_segment_dist2(p[k, 0], p[k, 1], sx, sy, bx[j], by[j], ux, uy, inv[j])
-            near[k] = d2 <= hi2
-        k0 = 0
-        while k0 < m:
-            if not near[k0]:
-                k0 += 1
+        # Box of the segment: the gap between it and a block's box bounds the distance
+        # from the segment to any vertex of the block from below.
+        sxmin = min(sx, bx[j])
+        sxmax = max(sx, bx[j])
+        symin = min(sy, by[j])
+        symax = max(sy, by[j])
+        for b in range(nb):
+            gx = max(vbox[b, 0] - sxmax, 0.0, sxmin - vbox[b, 1])
+            gy = max(vbox[b, 2] - symax, 0.0, symin - vbox[b, 3])
+            far[b] = gx * gx + gy * gy > hi2
+        b = 0
+        while b < nb:
+            if far[b]:
+                b += 1
                 continue
-            k1 = k0
-            while k1 + 1 < m and near[k1 + 1]:
-                k1 += 1
-            run = k1 - k0 + 1
-            pairs += run * (run - 1) // 2
-            if pairs > max_pairs:
-                return -1
-            for k in range(k0, k1 + 1):
-                pkx = p[k, 0] - sx
-                pky = p[k, 1] - sy
-                sk = pkx * pkx + pky * pky
-                for ll in range(k + 1, k1 + 1):
-                    plx = p[ll, 0] - sx
-                    ply = p[ll, 1] - sy
-                    den = 2.0 * (ux * (plx - pkx) + uy * (ply - pky))
-                    if den == 0.0:
-                        continue  # no single equidistant point: covered by types a/b
-                    t = (plx * plx + ply * ply - sk) / den
-                    if t < 0.0 or t > 1.0:
-                        continue
-                    ex = t * ux - pkx
-                    ey = t * uy - pky
-                    v = math.sqrt(ex * ex + ey * ey)
-                    if lo < v <= hi:
-                        if count < cap:
-                            out[count] = v
-                        count += 1
-            k0 = k1 + 1
+            # A stretch of blocks that may hold vertices within hi; runs cannot cross
+            # a far block, so each stretch is scanned on its own.
+            b_end = b
+            while b_end + 1 < nb and not far[b_end + 1]:
+                b_end += 1
+            r0 = b * _BLOCK
+            r1 = min((b_end + 1) * _BLOCK, m)
+            b = b_end + 1
+            for k in range(r0, r1):
+                d2 = _point_segment_dist2(p[k, 0], p[k, 1], sx, sy, bx[j], by[j], ux, uy, inv[j])
+                near[k] = d2 <= hi2
+            k0 = r0
+            while k0 < r1:
+                if not near[k0]:
+                    k0 += 1
+                    continue
+                k1 = k0
+                while k1 + 1 < r1 and near[k1 + 1]:
+                    k1 += 1
+                run = k1 - k0 + 1
+                pairs += run * (run - 1) // 2
+                if pairs > max_pairs:
+                    return -1
+                count = _equidistant_run(p, k0, k1, sx, sy, ux, uy, lo, hi, out, count)
+                k0 = k1 + 1
+    return count
+
+
+@numba.njit(cache=True)
+def _equidistant_run(
+    p: np.ndarray,
+    k0: int,
+    k1: int,
+    sx: float,
+    sy: float,
+    ux: float,
+    uy: float,
+    lo: float,
+    hi: float,
+    out: np.ndarray,
+    count: int,
+) -> int:
+    """Type-c values in (lo, hi] for the pairs of p_k0..p_k1 on segment s -> s + u.
+
+    Appends to ``out`` while there is room; returns the new total count.
+    """
+    cap = out.shape[0]
+    for k in range(k0, k1 + 1):
+        pkx = p[k, 0] - sx
+        pky = p[k, 1] - sy
+        sk = pkx * pkx + pky * pky
+        for ll in range(k + 1, k1 + 1):
+            plx = p[ll, 0] - sx
+            ply = p[ll, 1] - sy
+            den = 2.0 * (ux * (plx - pkx) + uy * (ply - pky))
+            if den == 0.0:
+                continue  # no single equidistant point: covered by types a/b
+            t = (plx * plx + ply * ply - sk) / den
+            if t < 0.0 or t > 1.0:
+                continue
+            ex = t * ux - pkx
+            ey = t * uy - pky
+            v = math.sqrt(ex * ex + ey * ey)
+            if lo < v <= hi:
+                if count < cap:
+                    out[count] = v
+                count += 1
     return count

@@ -46,6 +46,10 @@ __all__ = [
 # result is therefore exact up to this relative tolerance.
 _REL_TOL = 1e-10
 
+# Step 2 of frechet_distance narrows the bracket by bisection down to this relative width
+# before collecting candidates from it.
+_BRACKET_TOL = 1e-4
+
 # Above this many (segment, vertex pair) combinations to inspect for type-c critical
 # values, frechet_distance bisects on eps instead (see its docstring).
 _MAX_PAIRS = 20_000_000
@@ -160,22 +164,27 @@ def frechet_distance(p: npt.ArrayLike, q: npt.ArrayLike) -> float:
     distance from two vertices of one curve to the point of a segment of the other that
     is equidistant from both. This function finds it as follows:
 
-    1. Bounds: lower = max(endpoint distances, vertex-to-polyline distances both ways)
-       (every point must be matched within eps); upper = the discrete Fréchet distance.
-    2. All type (a)/(b) values in (lower, upper] are sorted (numpy) and searched with
+    1. Lower bound: max(endpoint distances, vertex-to-polyline distances both ways)
+       (every point must be matched within eps). It is itself a critical value, and
+       for similar curves often the answer: one decision settles that.
+    2. Bracket with the decision alone: double from the lower bound until accepted,
+       then bisect until the bracket (lo, hi] is within a relative 1e-4. (The diagonal
+       of the two curves' bounding box is always accepted.)
+    3. All type (a)/(b) values in (lo, hi] are sorted (numpy) and binary-searched with
        the decision, giving consecutive values b_lo (rejected) < b_hi (accepted).
-    3. If the answer is below b_hi it is of type (c) in (b_lo, b_hi). Those candidates
+    4. If the answer is below b_hi it is of type (c) in (b_lo, b_hi). Those candidates
        are enumerated exactly, but only for vertex pairs k < l lying in one run of
        consecutive vertices all within b_hi of the segment (a monotone path that crosses
        the segment's row from column k to column l must pass every column between),
-       then sorted and searched with the decision like step 2.
-    4. Only if step 3 would inspect more than 20 million (segment, pair) combinations
+       then sorted and searched with the decision like step 3.
+    5. Only if step 4 would inspect more than 20 million (segment, pair) combinations
        (curves bunched within b_hi of each other over long stretches) does it bisect on
        eps between b_lo and b_hi instead, until the bracket is within a relative 1e-10.
 
     A candidate c is accepted when the decision accepts c * (1 + 1e-10), to absorb the
-    rounding in computing c, so the result is exact up to a relative 1e-10. Costs
-    O(mn log(mn)) for the candidates plus ~log2(#candidates) decisions.
+    rounding in computing c, so the result is exact up to a relative 1e-10. The scans
+    for candidates are O(mn) at worst but skip blocks of 16 segments whose bounding box
+    is out of range; a decision visits only the reachable band of the free space.
 
     Args:
         p: the first curve, an (n, 2) array in metres; a single point is a curve.
@@ -211,20 +220,33 @@ def frechet_distance(p: npt.ArrayLike, q: npt.ArrayLike) -> float:
     # endpoint pair) is the answer, and one decision proves it.
     if feasible(lower):
         return lower
-    upper = float(_k.discrete_frechet(a, b))
-    if upper <= lower:
-        return upper
 
-    # Step 2: types (a) and (b) within (lower, upper]; upper closes the list as a value
-    # known to be feasible (it is >= the answer).
-    b_ab = _collect(_k.vertex_segment_values, a, b, lower, upper)
-    b_ba = _collect(_k.vertex_segment_values, b, a, lower, upper)
+    # Step 2: bracket (lo, hi] by the decision alone (decisions are cheap: the reachable
+    # band of the free space is narrow near the answer).
+    span = np.concatenate((a, b))
+    top = math.hypot(*(span.max(axis=0) - span.min(axis=0)))  # any matching stays within
+    lo = lower
+    hi = 2.0 * lower if lower > 0.0 else top * 2.0**-20
+    while hi < top and not feasible(hi):
+        lo = hi
+        hi *= 2.0
+    hi = min(hi, top)
+    while hi - lo > _BRACKET_TOL * hi:
+        mid = 0.5 * (lo + hi)
+        if feasible(mid):
+            hi = mid
+        else:
+            lo = mid
+
+    # Step 3: types (a) and (b) within (lo, hi]; hi closes the list as a value known to
+    # be feasible (it is >= the answer, up to the tolerance).
+    b_ab = _collect(_k.vertex_segment_values, a, b, lo, hi)
+    b_ba = _collect(_k.vertex_segment_values, b, a, lo, hi)
     assert b_ab is not None and b_ba is not None  # this kernel never declines
-    values = np.concatenate((b_ab, b_ba))
-    values = np.unique(values[values < upper])
-    b_lo, b_hi = _search(np.append(values, upper), feasible, lower)
+    values = np.unique(np.concatenate((b_ab, b_ba)))
+    b_lo, b_hi = _search(np.append(values[values < hi], hi), feasible, lo)
 
-    # Step 3: type (c) strictly between the two.
+    # Step 4: type (c) strictly between the two.
     cand_ab = _collect(_k.equidistant_values, a, b, b_lo, b_hi, _MAX_PAIRS)
     cand_ba = _collect(_k.equidistant_values, b, a, b_lo, b_hi, _MAX_PAIRS)
     if cand_ab is not None and cand_ba is not None:
@@ -234,7 +256,7 @@ def frechet_distance(p: npt.ArrayLike, q: npt.ArrayLike) -> float:
             return b_hi
         return _search(np.append(c, b_hi), feasible, b_lo)[1]
 
-    # Step 4: bisection fallback.
+    # Step 5: bisection fallback.
     lo, hi = b_lo, b_hi
     while hi - lo > _REL_TOL * hi:
         mid = 0.5 * (lo + hi)
