@@ -50,7 +50,7 @@ import sys
 import tempfile
 import time
 from collections import defaultdict
-from dataclasses import dataclass, field, replace
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -421,8 +421,9 @@ def main(argv: list[str] | None = None) -> int:
     meta = {
         "command": command.strip(), "seed": args.seed, "drives": args.drives,
         "duration_s": args.duration, "intervals": intervals, "extracts": args.extract,
-        "drive_settings": settings.__dict__, "hmm": {k: v for k, v in
-                                                    replace(HmmSettings()).__dict__.items()},
+        "drive_settings": asdict(settings),
+        "hmm": {k: v for k, v in asdict(HmmSettings(lag=args.hmm_lag)).items()
+                if k not in ("sigma_z", "beta")},
         "tolerance_m": TOL_M, "elapsed_s": round(elapsed, 1), "notes": notes,
         "work_dir": str(work) if args.keep else None,
     }

@@ -123,13 +123,15 @@ def test_hmm_gap_without_candidates_restarts_chain():
 
 
 def test_hmm_stationary_jitter_is_not_a_new_step():
-    """Fixes within 2 sigma_z of the last kept fix take that step's answer (paper's rule)."""
+    """Fixes within 2 sigma_z of the last kept fix take that step's segment (paper's rule)."""
     net = grid()
     matcher = HmmMatcher(net, HmmSettings(sigma_z=4.0, lag=0))
     first = matcher.update(120.0, 2.0)
     again = matcher.update(118.0, -3.0)  # 5.4 m away < 8 m
     matcher.flush()
-    assert again == first and matcher.final[1] == matcher.final[0]
+    assert again is not None and first is not None
+    assert again.segment == first.segment and (again.x, again.y) == (118.0, 0.0)
+    assert matcher.final[1].segment == matcher.final[0].segment
     assert len(matcher.path) == 1
 
 

@@ -22,8 +22,8 @@ from memory of that paper, not re-checked against it):
   a candidate farther than that along the roads is unreachable (the paper likewise drops
   transitions with implausibly long routes).
 - **Preprocessing** (paper): a fix within ``2 sigma_z`` of the previous kept fix is not
-  a new HMM step; it takes the answer of that step (this removes the jitter of a
-  stopped vehicle).
+  a new HMM step; it takes the segment chosen for that step (this removes the jitter of
+  a stopped vehicle), placed at its own projection onto that segment.
 - **Breaks**: a fix with no candidate, or whose candidates are all unreachable from the
   previous step, ends the chain (everything pending is decided) and the next fix with
   candidates starts a new one. (For the path only, the new chain's first decision is
@@ -47,7 +47,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import numpy.typing as npt
 
-from livematch.baselines.result import Matched, TraceMatch
+from livematch.baselines.result import Matched, TraceMatch, project_point
 from livematch.core.network import RoadNetwork
 
 FloatArray = npt.NDArray[np.float64]
@@ -125,6 +125,7 @@ class _Step:
     score: FloatArray
     back: IntArray
     link: list[list[int] | None] = field(default_factory=list)
+    merged: dict[int, tuple[float, float]] = field(default_factory=dict)
 
 
 class HmmMatcher:
@@ -179,9 +180,13 @@ class HmmMatcher:
             last = self._chain[-1]
             if math.hypot(x - last.x, y - last.y) < self._min_move:
                 last.fixes.append(i)
+                last.merged[i] = (x, y)
                 if self._decided == len(self._chain):  # that step is already final
-                    self.final[i] = self.final[last.fixes[0]]
-                return last.cands[int(np.argmax(last.score))]
+                    decided = self.final[last.fixes[0]]
+                    assert decided is not None
+                    self.final[i] = project_point(self.network, decided.segment, x, y)
+                best = last.cands[int(np.argmax(last.score))]
+                return project_point(self.network, best.segment, x, y)
         cands = self._candidates(x, y)
         if not cands:
             self._finish_chain()
@@ -344,7 +349,8 @@ class HmmMatcher:
     def _choose(self, step: _Step, state: int) -> None:
         m = step.cands[state]
         for i in step.fixes:
-            self.final[i] = m
+            xy = step.merged.get(i)
+            self.final[i] = m if xy is None else project_point(self.network, m.segment, *xy)
         if self._last_choice is not None:
             prev_step, prev_state = self._last_choice
             linked = int(step.back[state]) == prev_state and prev_step is not step
