@@ -10,6 +10,7 @@ Outside references used here (named again beside each check):
 
 from __future__ import annotations
 
+import doctest
 import math
 
 import numpy as np
@@ -165,6 +166,13 @@ def test_frechet_distance_far_from_origin():
     assert frechet_distance(p + offset, q + offset) == pytest.approx(math.sqrt(2.0), rel=1e-9)
 
 
+def test_frechet_docstring_examples():
+    """The worked examples in the module's docstrings hold (run as doctests)."""
+    result = doctest.testmod(frechet, raise_on_error=False)
+    assert result.attempted >= 13
+    assert result.failed == 0
+
+
 def test_frechet_decide_rejects_bad_eps():
     """A negative or NaN threshold, or an empty curve, is refused with ValueError."""
     with pytest.raises(ValueError, match="eps"):
@@ -226,6 +234,17 @@ def test_hausdorff_distance_equals_shapely(p, q):
     # shapely.hausdorff_distance (GEOS DiscreteHausdorffDistance, vertices to geometry)
     expected = shapely.hausdorff_distance(_line(p), _line(q))
     assert hausdorff_distance(p, q) == pytest.approx(expected, abs=1e-9)
+
+
+@_FAST
+@given(lines, lines)
+def test_hausdorff_distance_is_vertex_sampled(p, q):
+    """Sampling more points than the vertices (GEOS densify) can only raise the value."""
+    # shapely.hausdorff_distance(densify=f) (GEOS): densified sample of the curves, which
+    # still contains every vertex, so it is >= ours; the true point-set Hausdorff
+    # distance can exceed ours (documented), and both stay <= Fréchet (next test).
+    dense = shapely.hausdorff_distance(_line(p), _line(q), densify=0.05)
+    assert hausdorff_distance(p, q) <= dense + 1e-9
 
 
 @_FAST

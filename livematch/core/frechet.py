@@ -109,8 +109,9 @@ def discrete_frechet_distance(p: npt.ArrayLike, q: npt.ArrayLike) -> float:
     vertex used), of the largest distance between coupled vertices; the dynamic program
     of Eiter & Mannila (1994), O(mn). It ignores the segments between vertices, so it is
     an upper bound on the continuous Fréchet distance, and it converges to it as both
-    curves are densified. Same value as ``shapely.frechet_distance`` (GEOS) without
-    ``densify``.
+    curves are densified. It is what ``shapely.frechet_distance`` (GEOS) without
+    ``densify`` computes, except that GEOS 3.14.1 returns a larger value on some inputs
+    (about 2 % of random pairs of 2-11 vertices, never a smaller one; see the tests).
 
     Examples:
         >>> discrete_frechet_distance([[0, 0], [10, 0]], [[0, 3], [10, 3]])
