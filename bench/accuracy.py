@@ -417,6 +417,9 @@ def main(argv: list[str] | None = None) -> int:
                       f"{row['road_dir_final']:.3f}  live {row['road_dir_live']:.3f}  "
                       f"RMF {row['route_mismatch']:.3f}", file=sys.stderr)
     elapsed = time.perf_counter() - started
+    for note in disagreements(rows):
+        notes.append(note)
+        print(f"NOTE: {note}", file=sys.stderr)
     command = "bench/accuracy.py " + " ".join(argv if argv is not None else sys.argv[1:])
     meta = {
         "command": command.strip(), "seed": args.seed, "drives": args.drives,
@@ -425,7 +428,7 @@ def main(argv: list[str] | None = None) -> int:
         "hmm": {k: v for k, v in asdict(HmmSettings(lag=args.hmm_lag)).items()
                 if k not in ("sigma_z", "beta")},
         "tolerance_m": TOL_M, "elapsed_s": round(elapsed, 1), "notes": notes,
-        "work_dir": str(work) if args.keep else None,
+        "work_dir": str(work) if args.keep else None, **git_state(),
     }
     if not args.keep:
         shutil.rmtree(work, ignore_errors=True)
@@ -437,6 +440,30 @@ def main(argv: list[str] | None = None) -> int:
     (out / "accuracy.json").write_text(json.dumps({"meta": meta, "rows": rows}, indent=1),
                                        encoding="utf-8")
     return 0
+
+
+def disagreements(rows: list[dict[str, Any]]) -> list[str]:
+    """The replay subprocess and the in-process pipeline run the same code on the same
+    log, so their accuracy must agree; say where it does not (e.g. code edited mid-run)."""
+    keys = ("road_dir_live", "road_dir_final", "exact_final", "route_mismatch")
+    by = {(r["extract"], r["interval_s"], r["method"]): r for r in rows}
+    out = []
+    for (extract, k, method), r in by.items():
+        other = by.get((extract, k, "livematch (in-process)"))
+        if method == "livematch" and other and any(r[x] != other[x] for x in keys):
+            out.append(f"{extract} {k}s: livematch replay and in-process results differ")
+    return out
+
+
+def git_state() -> dict[str, Any]:
+    """The commit measured and whether livematch/ had uncommitted changes."""
+    def git(*a: str) -> str:
+        proc = subprocess.run(["git", *a], cwd=ROOT, capture_output=True, text=True,
+                              check=False)
+        return proc.stdout.strip()
+
+    return {"git_commit": git("rev-parse", "HEAD"),
+            "livematch_dirty": bool(git("status", "--porcelain", "--", "livematch"))}
 
 
 def _f(value: Any, fmt: str) -> str:
@@ -453,7 +480,9 @@ def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
         f"{meta['duration_s']:.0f} s per extract, GPS error sigma "
         f"{meta['drive_settings']['sigma_m']} m per axis, tau "
         f"{meta['drive_settings']['tau_s']} s, outliers "
-        f"{meta['drive_settings']['outlier_p']:.0%}; {meta['elapsed_s']} s in all).",
+        f"{meta['drive_settings']['outlier_p']:.0%}; {meta['elapsed_s']} s in all). "
+        f"Code: commit {meta['git_commit'][:12]}"
+        f"{' with uncommitted changes under livematch/' if meta['livematch_dirty'] else ''}.",
         "",
         "road+dir: directed segment on the true path within 30 m (along the path) of the "
         "true position. RMF: route mismatch fraction (Newson & Krumm 2009), directed. "

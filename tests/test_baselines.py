@@ -148,3 +148,14 @@ def test_estimate_beta_recovers_exponential_scale():
     assert stats.expon(scale=3.0).median() == pytest.approx(3.0 * math.log(2.0), rel=1e-12)
     x = stats.expon.rvs(scale=3.0, size=200_000, random_state=np.random.default_rng(2))
     assert estimate_beta(x) == pytest.approx(3.0, rel=0.01)
+
+
+def test_baselines_docstring_examples_hold():
+    """The worked examples in the baselines' docstrings hold (run as doctests)."""
+    import doctest
+
+    from livematch.baselines import hmm, nearest, result
+
+    for module in (hmm, nearest, result):
+        outcome = doctest.testmod(module, raise_on_error=False)
+        assert outcome.failed == 0 and outcome.attempted > 0, module.__name__

@@ -286,3 +286,15 @@ def test_route_mismatch_fraction_hand_cases():
     assert route_mismatch_fraction([0, 1], [], lens) == 1.0
     assert route_mismatch_fraction([0, 1], [0, 1, 1], lens) == 20.0 / 30.0  # driven twice
     assert math.isnan(route_mismatch_fraction([], [4], lens))
+
+
+def test_sim_docstring_examples_hold():
+    """The worked examples in the simulator's docstrings hold (run as doctests)."""
+    import doctest
+
+    from livematch.sim import drive, logs, score
+
+    for module in (drive, logs, score):
+        result = doctest.testmod(module, raise_on_error=False)
+        assert result.failed == 0, module.__name__
+    assert doctest.testmod(drive).attempted > 0
