@@ -14,6 +14,7 @@ import pytest
 from pyproj import Geod
 
 from livematch.core.network import RoadNetwork
+from livematch.errors import BadNetworkError
 from livematch.feed.decode import decode_position
 from livematch.mapdata.netfile import open_network
 from livematch.sim.drive import (
@@ -184,7 +185,7 @@ def test_random_route_refuses_network_without_cycle():
     from livematch.core.build import Road, network_from_roads
 
     net = network_from_roads([Road([(0.0, 0.0), (50.0, 0.0)], way=9, oneway=True)])
-    with pytest.raises(ValueError, match="no drivable cycle"):
+    with pytest.raises(BadNetworkError, match="no drivable cycle"):
         random_route(net, np.random.default_rng(0), 100.0)
 
 

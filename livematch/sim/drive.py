@@ -31,6 +31,7 @@ import numpy as np
 import numpy.typing as npt
 
 from livematch.core.network import RoadNetwork
+from livematch.errors import BadNetworkError
 
 FloatArray = npt.NDArray[np.float64]
 BoolArray = npt.NDArray[np.bool_]
@@ -263,13 +264,14 @@ def random_route(
         straight_bias: preference for going straight (0 = uniform choice).
 
     Raises:
-        ValueError: when no segment is allowed (a network without any cycle).
+        BadNetworkError: when no segment is allowed (a network without any cycle).
     """
     if allowed is None:
         allowed = drivable_segments(network)
     candidates = np.flatnonzero(allowed)
     if len(candidates) == 0:
-        raise ValueError(f"network {network.source!r} has no drivable cycle to simulate on")
+        raise BadNetworkError(
+            f"network {network.source!r} has no drivable cycle to simulate on")
     seg = int(candidates[rng.integers(len(candidates))])
     route = [seg]
     length = float(network.seg_len[seg])
