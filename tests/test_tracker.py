@@ -273,3 +273,18 @@ def test_tracker_single_fix_and_empty_flush() -> None:
     assert len(assignments(events)) == 1
     (c,) = commits(events)
     assert len(c.fixes) == 1 and len(c.path) == 1
+
+
+def test_tracker_outlier_gets_interpolated_final_answer() -> None:
+    """A filtered outlier still gets a final answer: the point on the committed path at its time."""
+    net = straight_road(2000.0)
+    pts = [(float(x), 0.0) for x in range(0, 400, 10)]
+    fixes = fixes_along(pts)
+    bad = fixes[20]
+    fixes[20] = Fix(bad.vehicle, bad.t, 0.0, 0.0, bad.x, 900.0)  # 900 m off in 1 s
+    events = run(Tracker(net, "v1"), fixes)
+    assert [e.reason for e in events if isinstance(e, Filtered)] == ["impossible_jump"]
+    final = {m.t: m for c in commits(events) for m in c.fixes}
+    assert sorted(final) == [f.t for f in fixes]
+    m = final[bad.t]
+    assert abs(m.x - 200.0) < 1e-6 and abs(m.y) < 1e-6

@@ -31,6 +31,7 @@ def bounded_dijkstra(
     view: NetworkView,
     sources: list[tuple[int, float, int, int]],
     limit: float,
+    offsets: list[float] | None = None,
 ) -> dict[int, Reach]:
     """Multi-source Dijkstra over vertices, stopping at route length ``limit`` metres.
 
@@ -40,6 +41,10 @@ def bounded_dijkstra(
             search starts at ``vertex`` having already driven ``initial_length`` metres
             along ``entering_segment`` (needed to forbid an illegal U-turn there).
         limit: the longest route considered, metres.
+        offsets: per source tag, a head start added to its labels (metres) and not
+            counted against ``limit``: with a candidate's path cost converted to metres,
+            every vertex is labelled with the source minimising cost plus route length.
+            ``Reach.dist`` then includes the offset.
 
     Returns:
         The vertices reached within ``limit``, each with its :class:`Reach`.
@@ -52,25 +57,25 @@ def bounded_dijkstra(
         {}
     """
     done: dict[int, Reach] = {}
-    entered: dict[int, int] = {}
     heap: list[tuple[float, int, int, int, int]] = []
+    shift = offsets or [0.0] * (1 + max((s[2] for s in sources), default=0))
     for vertex, length, tag, seg in sources:
         if length <= limit:
-            heapq.heappush(heap, (length, tag, vertex, -1, seg))
+            heapq.heappush(heap, (length + shift[tag], tag, vertex, -1, seg))
     out, st, slen, twin, ok = view.out, view.st, view.slen, view.twin, view.turn_back_ok
     while heap:
         dist, tag, v, pred, seg_in = heapq.heappop(heap)
         if v in done:
             continue
         done[v] = Reach(dist, tag, pred)
-        entered[v] = seg_in
         back = twin[seg_in] if seg_in >= 0 else -1
+        cap = limit + shift[tag]
         for f in out[v]:
             if f == back and not ok[v]:
                 continue
             w = st[f]
             nd = dist + slen[f]
-            if nd <= limit and w not in done:
+            if nd <= cap and w not in done:
                 heapq.heappush(heap, (nd, tag, w, f, f))
     return done
 

@@ -29,6 +29,9 @@ class MatchSettings:
             (0 = no hold-back: a late fix is filtered as out of order).
         gap_s, gap_m: a step longer than either is a gap, bridged by routing.
         bridge_speed_mps: the plausible speed bounding a bridged route's length.
+        detour_factor: a bridged route is also at most ``detour_factor`` times the
+            straight step plus ``gap_m``: routes much longer than the straight line
+            between two fixes are implausible (common practice in map matching).
         off_network_s: a vehicle with no road within the largest eps for this long is
             off the network.
         sigma_m: GNSS error scale of the path cost's distance term (metres); 5 m is a
@@ -37,6 +40,9 @@ class MatchSettings:
             and straight-line step length (metres), as in Newson & Krumm (2009).
         turn_back_cost: cost charged per U-turn on a candidate path (unitless, in the
             same units as the other terms: one U-turn weighs like a 2 sigma miss).
+        motion_m: scale of the path cost's motion term (metres): the difference between
+            the matched point's displacement and the fixes' displacement over one step,
+            divided by ``motion_m``. It tells the road ahead from a side branch.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -45,13 +51,15 @@ class MatchSettings:
     max_speed_mps: float = 60.0
     max_accuracy_m: float = 150.0
     reorder_fixes: int = 0
-    gap_s: float = 45.0
-    gap_m: float = 400.0
+    gap_s: float = 10.0
+    gap_m: float = 150.0
     bridge_speed_mps: float = 40.0
+    detour_factor: float = 2.0
     off_network_s: float = 30.0
     sigma_m: float = 5.0
     beta_m: float = 10.0
     turn_back_cost: float = 2.0
+    motion_m: float = 5.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -67,15 +75,18 @@ class MatchSettings:
         elif any(b <= a for a, b in itertools.pairwise(eps)):
             out.append(("eps_levels", f"must be strictly increasing, got {list(eps)}"))
         positive = ("max_lag_s", "max_speed_mps", "max_accuracy_m", "gap_s", "gap_m",
-                    "bridge_speed_mps", "off_network_s", "sigma_m", "beta_m")
+                    "bridge_speed_mps", "detour_factor", "off_network_s", "sigma_m", "beta_m",
+                    "motion_m")
         for name in positive:
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value > 0):
                 out.append((name, f"must be a positive number, got {value!r}"))
         if not (isinstance(self.max_lag_fixes, int) and self.max_lag_fixes >= 2):
             out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
-        if not (isinstance(self.turn_back_cost, int | float) and self.turn_back_cost >= 0):
-            out.append(("turn_back_cost", f"must be a number >= 0, got {self.turn_back_cost!r}"))
+        for name in ("turn_back_cost",):
+            value = getattr(self, name)
+            if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
+                out.append((name, f"must be a number >= 0, got {value!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):
             out.append(("reorder_fixes", f"must be an integer 0..32, got {self.reorder_fixes!r}"))
         return out

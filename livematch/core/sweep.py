@@ -100,6 +100,7 @@ class StepContext:
     inv_two_sigma2: float
     inv_beta: float
     turn_back_cost: float
+    motion_cost: float = 0.0
 
 
 def free_interval(
@@ -126,9 +127,14 @@ def free_interval(
 
 def _offer(
     new: dict[int, Node], ctx: StepContext, seg: int, lo: float, hi: float,
-    parent: Node | None, via: tuple[int, ...],
+    parent: Node | None, via: tuple[int, ...], floor: float = -1.0,
 ) -> None:
-    """Record that ``seg`` is reachable on [lo, hi] from ``parent`` through ``via``."""
+    """Record that ``seg`` is reachable on [lo, hi] from ``parent`` through ``via``.
+
+    The reported position is the fix's projection clamped into [max(lo, floor), hi]:
+    ``floor`` keeps a vehicle that stays on one segment from being reported as rolling
+    backwards (the decision alone would allow it, lagging within eps).
+    """
     view = ctx.view
     a = view.sf[seg]
     b = view.st[seg]
@@ -138,7 +144,8 @@ def _offer(
     dy = view.vy[b] - ay
     length2 = dx * dx + dy * dy
     pos = ((ctx.x1 - ax) * dx + (ctx.y1 - ay) * dy) / length2 if length2 > 0.0 else lo
-    pos = lo if pos < lo else (hi if pos > hi else pos)
+    bottom = lo if lo > floor else (floor if floor < hi else hi)
+    pos = bottom if pos < bottom else (hi if pos > hi else pos)
     mx = ax + pos * dx
     my = ay + pos * dy
     ex = mx - ctx.x1
@@ -147,9 +154,8 @@ def _offer(
     if parent is not None:
         slen = view.slen
         if not via and seg == parent.seg:
+            # signed: rolling back along a segment counts against the step, not for it
             route = (pos - parent.pos) * slen[seg]
-            if route < 0.0:
-                route = 0.0
         else:
             route = (1.0 - parent.pos) * slen[parent.seg] + pos * slen[seg]
             prev = parent.seg
@@ -164,6 +170,13 @@ def _offer(
                 turns += 1
             cost += turns * ctx.turn_back_cost
         cost += parent.cost + abs(route - ctx.chord) * ctx.inv_beta
+        if ctx.motion_cost > 0.0:
+            # The matched point should move as the fixes moved: consecutive GNSS errors
+            # are strongly correlated, so the observed step is accurate even when each
+            # fix is not. Separates the road ahead from a side branch at a junction.
+            ux = (mx - parent.x) - (ctx.x1 - ctx.x0)
+            uy = (my - parent.y) - (ctx.y1 - ctx.y0)
+            cost += math.sqrt(ux * ux + uy * uy) * ctx.motion_cost
     node = new.get(seg)
     if node is None:
         new[seg] = Node(seg, ctx.seq, ctx.t, pos, mx, my, parent, via, cost, lo)
@@ -258,9 +271,11 @@ def bridge_step(
 
     Used where the straight chord p0 -> p1 is a poor model of the road path: a long
     gap between fixes, or a step at which this level's window died. The tree of candidate
-    paths continues through the route; the Fréchet certificate restarts at p1. The route
-    from each state is the shortest one from the nearest live state (a multi-source
-    Dijkstra), an approximation of the cheapest.
+    paths continues through the route; the Fréchet certificate restarts at p1. One
+    multi-source Dijkstra labels every vertex with the live state minimising its path
+    cost (in metres, times beta) plus route length: where the route is at least as long
+    as the straight step, as it nearly always is, that is the cheapest parent under the
+    route-length term of the cost.
     """
     view = ctx.view
     eps2 = ctx.eps * ctx.eps
@@ -268,10 +283,13 @@ def bridge_step(
     if not targets or not live:
         return {}
     nodes = list(live.values())
+    beta = 1.0 / ctx.inv_beta if ctx.inv_beta > 0.0 else 0.0
+    base = min(n.cost for n in nodes)
+    offsets = [(n.cost - base) * beta for n in nodes]
     sources = [
         (view.st[n.seg], (1.0 - n.pos) * view.slen[n.seg], i, n.seg) for i, n in enumerate(nodes)
     ]
-    reached = bounded_dijkstra(view, sources, limit)
+    reached = bounded_dijkstra(view, sources, limit, offsets)
     new: dict[int, Node] = {}
     for seg in targets:
         a = view.sf[seg]
@@ -282,9 +300,9 @@ def bridge_step(
             continue
         same = live.get(seg)
         if same is not None and hi >= same.pos:
-            _offer(new, ctx, seg, max(lo, same.pos), hi, same, ())
+            _offer(new, ctx, seg, max(lo, same.pos), hi, same, (), same.pos)
         r = reached.get(a)
-        if r is None or r.dist + lo * view.slen[seg] > limit:
+        if r is None or r.dist - offsets[r.source] + lo * view.slen[seg] > limit:
             continue
         via = route_segments(view, reached, a)
         entering = via[-1] if via else nodes[r.source].seg
@@ -294,9 +312,13 @@ def bridge_step(
     return new
 
 
-def best_leaf(live: dict[int, Node]) -> Node:
-    """The live state with the lowest cost (ties: lowest segment index), deterministic."""
-    return min(live.values(), key=lambda n: (n.cost, n.seg))
+def best_leaf(live: dict[int, Node], prefer: int = -1) -> Node:
+    """The live state with the lowest cost, deterministic.
+
+    Exact ties (a vehicle standing on a junction is equally close to every branch) go to
+    segment ``prefer`` (the one reported last), then to the lowest segment index.
+    """
+    return min(live.values(), key=lambda n: (n.cost, n.seg != prefer, n.seg))
 
 
 def common_ancestor(leaves: Iterable[Node]) -> Node | None:

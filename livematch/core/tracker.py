@@ -119,6 +119,8 @@ class Tracker:
         self.times: dict[int, float] = {}
         self.next_commit = 1
         self.last_commit: tuple[int, float, int, float] | None = None  # seg, pos, seq, t
+        self.skipped: list[float] = []  # times of filtered fixes awaiting a final answer
+        self.last_seg = -1  # segment of the last assignment (breaks exact ties)
 
     @property
     def last_time(self) -> float | None:
@@ -142,7 +144,8 @@ class Tracker:
                 self._accept(ready, events)
         covering = self._covering()
         if covering:
-            self._commit_chain(best_leaf(covering[0].live), events, prune=covering[0])
+            best = best_leaf(covering[0].live, self.last_seg)
+            self._commit_chain(best, events, prune=covering[0], settle_all=True)
         return events
 
     def _admit(self, fix: Fix, events: list[Event]) -> Iterator[Fix]:
@@ -164,6 +167,7 @@ class Tracker:
         s = self.settings
         if fix.accuracy is not None and fix.accuracy > s.max_accuracy_m:
             events.append(Filtered(fix.vehicle, fix.t, "low_accuracy"))
+            self.skipped.append(fix.t)
             return False
         if self.last is not None:
             t0, x0, y0 = self.last
@@ -175,6 +179,7 @@ class Tracker:
                 self.jumps += 1
                 if self.jumps < JUMP_TRUST_AFTER:
                     events.append(Filtered(fix.vehicle, fix.t, "impossible_jump"))
+                    self.skipped.append(fix.t)
                     return False
         self.jumps = 0
         return True
@@ -198,12 +203,14 @@ class Tracker:
             ctx = StepContext(
                 self._view, level.eps, x0, y0, fix.x, fix.y, seq, fix.t, chord,
                 1.0 / (2.0 * s.sigma_m * s.sigma_m), 1.0 / s.beta_m, s.turn_back_cost,
+                1.0 / s.motion_m,
             )
             new: dict[int, Node] = {}
             if level.live and not gap:
                 new = sweep_step(level.live, ctx)
             if not new and level.live:
-                limit = s.bridge_speed_mps * dt + 2.0 * level.eps
+                limit = min(s.bridge_speed_mps * dt, s.detour_factor * chord + s.gap_m)
+                limit += 2.0 * level.eps
                 new = bridge_step(self.network, level.live, ctx, limit)
                 if new:
                     level.cert_seq, level.cert_t = seq, fix.t
@@ -218,7 +225,8 @@ class Tracker:
         if deciding is None:
             events.append(Filtered(fix.vehicle, fix.t, "no_road_nearby"))
         else:
-            best = best_leaf(deciding.live)
+            best = best_leaf(deciding.live, self.last_seg)
+            self.last_seg = best.seg
             events.append(Assignment(
                 self.vehicle, fix.t, best.seg, best.pos * self._view.slen[best.seg],
                 best.x, best.y, deciding.eps, seq - deciding.cert_seq + 1,
@@ -242,7 +250,7 @@ class Tracker:
             for level, old in salvage:
                 if level.tree_seq != seq:
                     continue
-                leaf = best_leaf(old)
+                leaf = best_leaf(old, self.last_seg)
                 if leaf.seq >= self.next_commit:
                     self._commit_chain(leaf, events, prune=None)
                     break
@@ -262,7 +270,7 @@ class Tracker:
             if (too_many or too_old) and covering:
                 level = covering[0]
                 keep = self._lag_target(seq, t)
-                node = ancestor_at(best_leaf(level.live), keep)
+                node = ancestor_at(best_leaf(level.live, self.last_seg), keep)
                 if node.seq >= self.next_commit:
                     self._commit_chain(node, events, prune=level)
         alive = [lv.tree_seq for lv in self.levels if lv.live]
@@ -284,7 +292,9 @@ class Tracker:
                 break
         return max(target, self.next_commit)
 
-    def _commit_chain(self, top: Node, events: list[Event], prune: Level | None) -> None:
+    def _commit_chain(
+        self, top: Node, events: list[Event], prune: Level | None, settle_all: bool = False
+    ) -> None:
         """Commit the path ending at ``top`` for every fix from ``next_commit`` on."""
         chain: list[Node] = []
         node: Node | None = top
@@ -315,16 +325,45 @@ class Tracker:
                     path.append(first.seg)
         for a, b in itertools.pairwise(chain):
             path.extend(_steps(a.seg, b))
-        fixes = tuple(
-            MatchedFix(n.t, n.seg, n.pos * view.slen[n.seg], n.x, n.y) for n in chain
-        )
-        events.append(Commit(self.vehicle, fixes, tuple(path)))
+        fixes = [MatchedFix(n.t, n.seg, n.pos * view.slen[n.seg], n.x, n.y) for n in chain]
+        if self.skipped:
+            fixes = self._fill_skipped(chain, before, math.inf if settle_all else top.t, fixes)
+        events.append(Commit(self.vehicle, tuple(fixes), tuple(path)))
         self.next_commit = top.seq + 1
         self.last_commit = (top.seg, top.pos, top.seq, top.t)
         if prune is not None:
             prune.live = {k: n for k, n in prune.live.items() if descends_from(n, top)}
             if not prune.live:
                 prune.live = {}
+
+    def _fill_skipped(
+        self, chain: list[Node], before: Node | None, until: float, fixes: list[MatchedFix]
+    ) -> list[MatchedFix]:
+        """Final answers for filtered fixes (outliers, poor accuracy) settled by this commit.
+
+        Such a fix's own position is not evidence, but its time is: its answer is the
+        point reached at that time along the committed path, interpolating linearly in
+        time between the neighbouring matched fixes (held at the ends).
+        """
+        due = [t for t in self.skipped if t < until]
+        if not due:
+            return fixes
+        self.skipped = [t for t in self.skipped if t >= until]
+        links = [before, *chain] if before is not None else chain
+        out = list(fixes)
+        for t in due:
+            k = bisect.bisect_left([n.t for n in links], t)
+            if k == 0:
+                seg, pos = links[0].seg, links[0].pos
+            elif k == len(links):
+                seg, pos = links[-1].seg, links[-1].pos
+            else:
+                a, b = links[k - 1], links[k]
+                seg, pos = _along(self._view, a, b, (t - a.t) / (b.t - a.t))
+            x, y = _point(self._view, seg, pos)
+            out.append(MatchedFix(t, seg, pos * self._view.slen[seg], x, y))
+        out.sort(key=lambda m: m.t)
+        return out
 
     def _trim(self, seq: int, t: float) -> None:
         """Cut history no future commit needs; force-prune trees deeper than the lag."""
@@ -341,7 +380,7 @@ class Tracker:
                     node.parent = None
                     level.trim_seq = node.seq
             elif seq - level.trim_seq > 2 * s.max_lag_fixes:
-                keep = ancestor_at(best_leaf(level.live), seq - s.max_lag_fixes)
+                keep = ancestor_at(best_leaf(level.live, self.last_seg), seq - s.max_lag_fixes)
                 level.live = {k: n for k, n in level.live.items() if descends_from(n, keep)}
                 keep.parent = None
                 level.trim_seq = keep.seq
@@ -386,6 +425,8 @@ class Tracker:
             "times": [[k, v] for k, v in self.times.items()],
             "next_commit": self.next_commit,
             "last_commit": self.last_commit,
+            "skipped": self.skipped,
+            "last_seg": self.last_seg,
             "nodes": rows,
             "levels": levels,
         }
@@ -422,8 +463,36 @@ class Tracker:
         tracker.buffer = [Fix(*row) for row in state["buffer"]]
         tracker.times = {k: v for k, v in state["times"]}
         tracker.next_commit = state["next_commit"]
+        tracker.skipped = list(state["skipped"])
+        tracker.last_seg = state["last_seg"]
         tracker.last_commit = tuple(state["last_commit"]) if state["last_commit"] else None
         return tracker
+
+
+def _along(view: NetworkView, a: Node, b: Node, frac: float) -> tuple[int, float]:
+    """The (segment, position) a fraction ``frac`` of the way along the route a -> b."""
+    legs: list[tuple[int, float, float]] = []  # segment, from pos, to pos
+    if not b.via and b.seg == a.seg:
+        legs.append((a.seg, a.pos, max(a.pos, b.pos)))
+    else:
+        legs.append((a.seg, a.pos, 1.0))
+        legs.extend((s, 0.0, 1.0) for s in b.via)
+        legs.append((b.seg, 0.0, b.pos))
+    total = sum((hi - lo) * view.slen[s] for s, lo, hi in legs)
+    want = frac * total
+    for s, lo, hi in legs:
+        length = (hi - lo) * view.slen[s]
+        if want <= length and length > 0.0:
+            return s, lo + want / view.slen[s]
+        want -= length
+    return b.seg, b.pos
+
+
+def _point(view: NetworkView, seg: int, pos: float) -> tuple[float, float]:
+    """Coordinates of position ``pos`` on segment ``seg``."""
+    a, b = view.sf[seg], view.st[seg]
+    return (view.vx[a] + pos * (view.vx[b] - view.vx[a]),
+            view.vy[a] + pos * (view.vy[b] - view.vy[a]))
 
 
 def _steps(prev_seg: int, node: Node) -> list[int]:
