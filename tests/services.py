@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import getpass
 import json
 import os
 import shutil
@@ -32,6 +33,7 @@ from livematch.core.geometry import Projection
 from livematch.core.network import RoadNetwork
 
 MOSQUITTO = shutil.which("mosquitto") or "/usr/sbin/mosquitto"
+MOSQUITTO_PASSWD = shutil.which("mosquitto_passwd") or "/usr/bin/mosquitto_passwd"
 REDIS_SERVER = shutil.which("redis-server") or "/usr/bin/redis-server"
 
 
@@ -63,17 +65,32 @@ class Mosquitto:
     folder: Path
     port: int = field(default_factory=free_port)
     proc: subprocess.Popen[bytes] | None = None
+    users: dict[str, str] = field(default_factory=dict)  # empty: anonymous access
 
     @property
     def url(self) -> str:
         return f"mqtt://127.0.0.1:{self.port}"
+
+    def _auth_lines(self) -> str:
+        if not self.users:
+            return "allow_anonymous true\n"
+        pw = self.folder / "passwords"
+        pw.unlink(missing_ok=True)
+        for user, password in self.users.items():
+            flags = ["-b"] if pw.exists() else ["-c", "-b"]
+            subprocess.run([MOSQUITTO_PASSWD, *flags, str(pw), user, password], check=True,
+                           stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        return f"allow_anonymous false\npassword_file {pw}\n"
 
     def start(self) -> None:
         self.folder.mkdir(parents=True, exist_ok=True)
         conf = self.folder / "mosquitto.conf"
         conf.write_text(
             f"listener {self.port} 127.0.0.1\n"
-            "allow_anonymous true\n"
+            # as root mosquitto would switch to user "mosquitto", which cannot write
+            # the persistence file into the test's private folder: stay who we are
+            f"user {getpass.getuser()}\n"
+            + self._auth_lines() +
             "persistence true\n"
             f"persistence_location {self.folder}/\n"
             "max_queued_messages 100000\n"
@@ -167,6 +184,11 @@ class Collector:
                         payload = m.payload if isinstance(m.payload, bytes) else b""
                         self.messages.append((m.topic.value, payload, bool(m.retain)))
             except aiomqtt.MqttError:
+                # aiomqtt's __aexit__ can turn a cancellation into an MqttError (its
+                # disconnect timed out): do not mistake being stopped for a broker outage
+                task = asyncio.current_task()
+                if task is not None and task.cancelling():
+                    raise asyncio.CancelledError from None
                 await asyncio.sleep(0.2)
 
     async def __aenter__(self) -> Collector:
@@ -280,11 +302,12 @@ level = "info"
 
 
 async def http_get(port: int, path: str) -> tuple[int, str]:
-    """GET http://127.0.0.1:port/path: (status, body)."""
-    reader, writer = await asyncio.open_connection("127.0.0.1", port)
-    writer.write(f"GET {path} HTTP/1.1\r\nHost: x\r\n\r\n".encode())
-    await writer.drain()
-    raw = await reader.read()
-    writer.close()
+    """GET http://127.0.0.1:port/path: (status, body); at most 10 s."""
+    async with asyncio.timeout(10):
+        reader, writer = await asyncio.open_connection("127.0.0.1", port)
+        writer.write(f"GET {path} HTTP/1.1\r\nHost: x\r\n\r\n".encode())
+        await writer.drain()
+        raw = await reader.read()
+        writer.close()
     head, _, body = raw.partition(b"\r\n\r\n")
     return int(head.split()[1]), body.decode()

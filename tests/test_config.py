@@ -39,7 +39,7 @@ def test_load_config_example_file_is_valid() -> None:
     """The shipped example config/live.toml passes and equals the defaults it documents."""
     cfg = load_config(EXAMPLE, env={})
     assert cfg.inputs.network == str(EXAMPLE.parent / "city.lmnet")
-    assert cfg.matcher == MatchSettings()
+    assert cfg.matcher == MatchSettings(eps_levels=(15.0, 30.0, 60.0))
     assert cfg.mqtt == DaemonConfig().mqtt
     assert cfg.store == DaemonConfig().store
     assert cfg.publish == DaemonConfig().publish

@@ -4,15 +4,20 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import json
+import logging
 from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import Any
 
+import pytest
+import redis
 from prometheus_client.parser import text_string_to_metric_families
 from services import (
     T0,
     Collector,
     Mosquitto,
+    RedisServer,
     drive,
     http_get,
     publisher,
@@ -20,9 +25,13 @@ from services import (
     write_config,
 )
 
+from livematch.cli import main
 from livematch.config import load_config
+from livematch.feed.replaylog import ReplayLogWriter
+from livematch.mapdata.netfile import save_network
 from livematch.pipeline import Pipeline
 from livematch.service.daemon import Daemon
+from livematch.service.logs import KeyValueFormatter
 
 pytest_plugins = ("fixtures_services",)
 
@@ -111,6 +120,51 @@ async def test_daemon_outputs_equal_direct_pipeline(mosquitto: Mosquitto, prefix
     assert values[("livematch_eps_level_assignments_total", (("eps_m", "15.0"),))] == 75
     assert values[("livematch_vehicles_live", ())] == 3
     assert values[("livematch_publish_queue_depth", ())] == 0
+
+
+async def test_daemon_payloads_equal_replay_files(mosquitto: Mosquitto, prefix: str,
+                                                  tmp_path: Path) -> None:
+    """Published bytes equal the lines `livematch replay` writes for the same messages."""
+    net = tmp_path / "town.lmnet"
+    save_network(town(), net)
+    cfg = write_config(tmp_path, prefix, broker=mosquitto.url, network=str(net))
+    feeds = [drive(f"car-{k}", 15, start_x=500.0 + 900 * k) for k in range(2)]
+    messages = [(f"{prefix}/fleet/car-{k}/position", feeds[k][i][1])
+                for i in range(15) for k in range(2)]
+    messages.insert(7, (f"{prefix}/fleet/car-0/position", b'{"time": 1, "lat": 0, "lon": 0}'))
+    log = tmp_path / "feed.jsonl"
+    with ReplayLogWriter(log) as writer:
+        for i, (topic, payload) in enumerate(messages):
+            writer.write(T0 + i, topic, payload)
+    assert main(["replay", str(log), "--network", str(net), "--out", str(tmp_path / "out"),
+                 "--config", str(cfg)]) == 0
+
+    def lines(name: str) -> list[bytes]:
+        return (tmp_path / "out" / name).read_bytes().splitlines()
+
+    # replay flushes every vehicle at the end of its log; a live daemon does not
+    config = load_config(cfg, env={})
+    pipeline = Pipeline(town(), config.matcher, limits=config.feed)
+    for topic, payload in messages:
+        pipeline.handle(topic, payload, at=0.0)
+    at_end = sum(o.kind == "commit" for o in pipeline.flush())
+    live_commits = lines("commits.jsonl")[:len(lines("commits.jsonl")) - at_end]
+    daemon = make_daemon(cfg)
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col, \
+            running(daemon):
+        async with publisher(mosquitto.port) as pub:
+            for topic, payload in messages:
+                await pub.publish(topic, payload, qos=1)
+        await col.wait_for("/out/match/", 30)
+        await col.wait_for("/out/commit/", len(live_commits))
+        await col.wait_for("/out/rejects", 1)
+        await asyncio.sleep(0.3)
+    published = {part: [p for t, p, _ in col.messages if f"/out/{part}" in t]
+                 for part in ("match/", "commit/", "rejects")}
+    assert published["match/"] == lines("assignments.jsonl")
+    assert published["commit/"] == live_commits
+    assert [json.loads(p)["reason"] for p in published["rejects"]] == ["out_of_range"]
+    assert [json.loads(p)["reason"] for p in lines("rejects.jsonl")] == ["out_of_range"]
 
 
 BAD_MESSAGES = [
@@ -276,3 +330,119 @@ async def test_daemon_readyz_503_and_requeue_while_broker_down(
     values = metric_values(text)
     assert values[("livematch_broker_reconnects_total", ())] >= 1
     assert values[("livematch_publish_dropped_total", ())] == 0
+
+
+async def test_daemon_keeps_matching_while_store_down(mosquitto: Mosquitto,
+                                                      own_redis: RedisServer, prefix: str,
+                                                      tmp_path: Path) -> None:
+    """Redis stopped: not ready, errors counted, fixes still matched; back: state rewritten."""
+    cfg = write_config(tmp_path, prefix, broker=mosquitto.url, store=own_redis.url)
+    topic = f"{prefix}/fleet/bus-5/position"
+    fixes = drive("bus-5", 30)
+    daemon = make_daemon(cfg)
+    raw = redis.Redis.from_url(own_redis.url)
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/match/#") as col, \
+            running(daemon), publisher(mosquitto.port) as pub:
+        port = daemon.http.port  # type: ignore[union-attr]
+        for _, payload in fixes[:10]:
+            await pub.publish(topic, payload, qos=1)
+        await col.wait_for("/out/match/", 10)
+        own_redis.stop()
+        for _ in range(100):
+            if (await http_get(port, "/readyz"))[0] == 503:
+                break
+            await asyncio.sleep(0.05)
+        assert await http_get(port, "/readyz") == (503, "not ready: store\n")
+        for _, payload in fixes[10:20]:
+            await pub.publish(topic, payload, qos=1)
+        await col.wait_for("/out/match/", 20)  # matching goes on without the store
+        await asyncio.sleep(1.5)  # a checkpoint is due and fails
+        _, text = await http_get(port, "/metrics")
+        assert metric_values(text)[("livematch_store_errors_total", ())] >= 1
+        own_redis.start()  # same port, empty (no persistence)
+        for _ in range(100):
+            if daemon.readiness() == []:
+                break
+            await asyncio.sleep(0.05)
+        assert daemon.readiness() == []
+        for _, payload in fixes[20:]:
+            await pub.publish(topic, payload, qos=1)
+        await col.wait_for("/out/match/", 30)
+        for _ in range(100):
+            latest = raw.hget(f"{prefix}:latest", "bus-5")
+            if latest is not None and json.loads(latest)["time"] == fixes[-1][0]:
+                break
+            await asyncio.sleep(0.05)
+        assert json.loads(raw.hget(f"{prefix}:latest", "bus-5"))  # type: ignore[arg-type]
+        assert json.loads(latest)["time"] == fixes[-1][0]  # type: ignore[arg-type]
+        assert raw.exists(f"{prefix}:vehicle:bus-5")
+    assert [a["time"] for a in col.records("/out/match/")] == [t for t, _ in fixes]
+
+
+async def test_daemon_evicts_idle_vehicle(mosquitto: Mosquitto, redis_server: RedisServer,
+                                          prefix: str, tmp_path: Path) -> None:
+    """A vehicle silent for idle_ttl_s of fix time is flushed, forgotten and deleted."""
+    cfg = write_config(tmp_path, prefix, broker=mosquitto.url, store=redis_server.url,
+                       extra="")
+    text = cfg.read_text().replace("checkpoint_every_s = 1.0",
+                                   "checkpoint_every_s = 1.0\nidle_ttl_s = 20.0")
+    cfg.write_text(text)
+    quiet = drive("quiet", 5)
+    busy = drive("busy", 40, start_x=2000.0)
+    daemon = make_daemon(cfg)
+    raw = redis.Redis.from_url(redis_server.url)
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col, \
+            running(daemon), publisher(mosquitto.port) as pub:
+        for _, payload in quiet:
+            await pub.publish(f"{prefix}/fleet/quiet/position", payload, qos=1)
+        await col.wait_for("/out/match/quiet", 5)
+        for _ in range(100):  # checkpointed (every 5 fixes)
+            if raw.exists(f"{prefix}:vehicle:quiet"):
+                break
+            await asyncio.sleep(0.05)
+        assert raw.exists(f"{prefix}:vehicle:quiet")
+        for _, payload in busy:
+            await pub.publish(f"{prefix}/fleet/busy/position", payload, qos=1)
+        await col.wait_for("/out/match/busy", 40)
+        for _ in range(100):
+            if daemon.pipeline.vehicles() == ["busy"]:
+                break
+            await asyncio.sleep(0.05)
+        assert daemon.pipeline.vehicles() == ["busy"]
+        for _ in range(100):
+            if not raw.exists(f"{prefix}:vehicle:quiet"):
+                break
+            await asyncio.sleep(0.05)
+        assert not raw.exists(f"{prefix}:vehicle:quiet")
+        assert raw.hget(f"{prefix}:latest", "quiet") is None
+        # the eviction flushed the quiet vehicle: its last fix is committed and published
+        await asyncio.sleep(0.3)
+        committed = [f["time"] for c in col.records("/out/commit/quiet") for f in c["fixes"]]
+        assert committed == [t for t, _ in quiet]
+
+
+async def test_daemon_authenticates_and_never_logs_password(
+        tmp_path: Path, prefix: str, caplog: pytest.LogCaptureFixture) -> None:
+    """Right credentials connect; wrong ones leave it not ready; no password in any log line."""
+    broker = Mosquitto(tmp_path / "auth", users={"fleet": "right-pass-1"})
+    broker.start()
+    caplog.set_level(logging.DEBUG)
+    try:
+        cfg = write_config(tmp_path, prefix, broker=broker.url)
+        env = {"LIVEMATCH_MQTT_USERNAME": "fleet", "LIVEMATCH_MQTT_PASSWORD": "right-pass-1"}
+        config = load_config(cfg, env=env)
+        async with running(Daemon(config, Pipeline(town(), config.matcher))) as _:
+            pass
+        env["LIVEMATCH_MQTT_PASSWORD"] = "wrong-pass-2"
+        config = load_config(cfg, env=env)
+        daemon = Daemon(config, Pipeline(town(), config.matcher))
+        task = asyncio.create_task(daemon.run())
+        await asyncio.sleep(1.5)
+        assert daemon.readiness() == ["broker"]
+        daemon.request_stop()
+        await asyncio.wait_for(task, timeout=30)
+    finally:
+        broker.stop()
+    lines = "\n".join(KeyValueFormatter().format(r) for r in caplog.records)
+    assert "broker connection failed; retrying" in lines
+    assert "right-pass-1" not in lines and "wrong-pass-2" not in lines

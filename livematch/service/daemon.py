@@ -38,7 +38,6 @@ from typing import Any, Protocol
 import aiomqtt
 
 from livematch.config import DaemonConfig, parse_hostport, redact_url
-from livematch.errors import LivematchError
 from livematch.pipeline import REJECT_PAYLOAD_CHARS, Output
 from livematch.service.http import HealthServer
 from livematch.service.logs import fields
@@ -52,6 +51,8 @@ log = logging.getLogger("livematch.daemon")
 _TICK_S = 0.5
 # How often the store is pinged for /readyz (seconds).
 _STORE_PING_S = 1.0
+# How far ahead of the wall clock a fix time may push the eviction clock (seconds).
+_CLOCK_AHEAD_S = 300.0
 
 
 class OutputLike(Protocol):
@@ -140,7 +141,8 @@ class Daemon:
         self._intake_closed = False
         self._drain_deadline = 0.0
         self._outbox: deque[_Pending] = deque()
-        self._outbox_cond = asyncio.Condition()
+        self._outbox_changed = asyncio.Event()  # set on every append, pop and stop
+        self._pending_deletes: set[str] = set()
         self._fixes_since: Counter[str] = Counter()
         self._last_checkpoint: dict[str, float] = {}
         self._checkpoint_due = asyncio.Event()
@@ -194,7 +196,11 @@ class Daemon:
         finally:
             if self.http is not None:
                 await self.http.close()
-            log.info("stopped")
+            c = self.pipeline.counters
+            log.info("stopped", extra=fields(
+                messages=c["messages"], fixes=c["fixes"], duplicates=c["duplicate"],
+                rejects=sum(n for k, n in c.items() if k.startswith("reject:")),
+                vehicles=len(self.pipeline.vehicles())))
 
     # -- store ---------------------------------------------------------------------
 
@@ -220,7 +226,7 @@ class Daemon:
             try:
                 self.pipeline.import_vehicle(vehicle, blob)
                 restored += 1
-            except LivematchError as exc:
+            except Exception as exc:  # one bad checkpoint must not keep the others out
                 self.metrics.store_errors.inc()
                 log.warning("checkpoint not restored", extra=fields(vehicle=vehicle, error=exc))
         self._latest.update({v: b for v, b in latest.items() if v not in self._latest})
@@ -294,7 +300,7 @@ class Daemon:
         gone = self.pipeline.evict_idle(self._newest_fix_t, self.config.store.idle_ttl_s,
                                         into=final)
         for out in final:  # the evicted vehicles' last commits
-            await self._route(out)
+            self._route(out)
         if gone:
             for v in gone:
                 self._fixes_since.pop(v, None)
@@ -302,8 +308,11 @@ class Daemon:
                 self._latest.pop(v, None)
                 self._latest_dirty.discard(v)
                 self._last_published.pop(v, None)
-            await self.store.delete(gone)
+            self._pending_deletes.update(gone)
             log.info("evicted idle vehicles", extra=fields(count=len(gone)))
+        if self._pending_deletes:  # retried until the store takes it
+            await self.store.delete(sorted(self._pending_deletes))
+            self._pending_deletes.clear()
         self.metrics.vehicles.set(len(self.pipeline.vehicles()))
 
     async def _final_checkpoint(self) -> None:
@@ -325,11 +334,11 @@ class Daemon:
         while not self._stopping.is_set():
             try:
                 await self._session(backoff)
-            except* (aiomqtt.MqttError, OSError) as group:
-                self._lost_connection(group.exceptions[0])
-            except* Exception as group:  # a bug in a loop: log, count, reconnect
-                log.error("mqtt session failed", exc_info=group.exceptions[0])
-                self._lost_connection(group.exceptions[0])
+            except (aiomqtt.MqttError, OSError) as exc:
+                self._session_failed(exc)
+            except Exception as exc:  # a bug in a loop: log, count, reconnect
+                log.error("mqtt session failed", exc_info=exc)
+                self._session_failed(exc)
             finally:
                 self.broker_connected = False
             if not self._stopping.is_set():
@@ -341,50 +350,99 @@ class Daemon:
             self._outbox.clear()
             self.metrics.queue_depth.set(0)
 
-    def _lost_connection(self, exc: BaseException) -> None:
-        self.metrics.reconnects.inc()
-        log.warning("broker connection lost; reconnecting",
-                    extra=fields(broker=redact_url(self.config.mqtt.url), error=exc,
-                                 queued=len(self._outbox)))
+    def _session_failed(self, exc: BaseException) -> None:
+        broker = redact_url(self.config.mqtt.url)
+        if self.broker_connected:  # it was up: a lost connection
+            self.metrics.reconnects.inc()
+            log.warning("broker connection lost; reconnecting",
+                        extra=fields(broker=broker, error=exc, queued=len(self._outbox)))
+        else:
+            log.warning("broker connection failed; retrying",
+                        extra=fields(broker=broker, error=exc, queued=len(self._outbox)))
 
     async def _session(self, backoff: Any) -> None:
+        """One connection: subscribe, then receive and publish until stopped or broken."""
         cfg = self.config.mqtt
         client = make_client(cfg, username=self.config.username, password=self.config.password)
-        async with client:
-            self.broker_connected = True
-            backoff.reset()
-            await client.subscribe(cfg.topic, qos=cfg.qos)
-            log.info("connected and subscribed",
-                     extra=fields(broker=redact_url(cfg.url), topic=cfg.topic,
-                                  client_id=cfg.client_id, queued=len(self._outbox)))
-            async with asyncio.TaskGroup() as tg:
-                tg.create_task(self._receive_loop(client), name="mqtt-receive")
-                tg.create_task(self._publish_loop(client), name="mqtt-publish")
+        cancelled = False
+        try:
+            async with client:
+                try:
+                    self.broker_connected = True
+                    backoff.reset()
+                    await client.subscribe(cfg.topic, qos=cfg.qos)
+                    log.info("connected and subscribed",
+                             extra=fields(broker=redact_url(cfg.url), topic=cfg.topic,
+                                          client_id=cfg.client_id, queued=len(self._outbox)))
+                    await self._serve_connection(client)
+                except asyncio.CancelledError:
+                    cancelled = True
+                    raise
+        except aiomqtt.MqttError:
+            if cancelled:  # aiomqtt's __aexit__ replaced our cancellation (disconnect timed out)
+                raise asyncio.CancelledError from None
+            raise
+
+    async def _serve_connection(self, client: aiomqtt.Client) -> None:
+        """Run ``mqtt-receive`` and ``mqtt-publish`` together; the first error ends both.
+
+        Plain tasks rather than a nested TaskGroup: on Python 3.11 a TaskGroup whose child
+        fails leaves its parent task marked as being cancelled, which would confuse the
+        reconnect loop that runs in that parent.
+        """
+        tasks = [asyncio.create_task(self._receive_loop(client), name="mqtt-receive"),
+                 asyncio.create_task(self._publish_loop(client), name="mqtt-publish")]
+        try:
+            await asyncio.wait(tasks, return_when=asyncio.FIRST_EXCEPTION)
+        finally:
+            for task in tasks:
+                task.cancel()
+            results = await asyncio.gather(*tasks, return_exceptions=True)
+        for result in results:
+            if isinstance(result, Exception):
+                raise result
 
     async def _receive_loop(self, client: aiomqtt.Client) -> None:
         messages = client.messages.__aiter__()
         stop = asyncio.create_task(self._stopping.wait(), name="stop-wait")
+        nxt: asyncio.Future[aiomqtt.Message] | None = None
         try:
             while True:
                 nxt = asyncio.ensure_future(messages.__anext__())
                 await asyncio.wait({nxt, stop}, return_when=asyncio.FIRST_COMPLETED)
                 if not nxt.done():
-                    # Stopping: a message not taken stays unacknowledged; the broker
-                    # delivers it again on the next session.
-                    nxt.cancel()
-                    with contextlib.suppress(asyncio.CancelledError, aiomqtt.MqttError):
-                        await nxt
-                    break
-                await self._process(client, nxt.result())
+                    break  # stopping
+                self._process(client, nxt.result())
+                await self._wait_for_room()
         finally:
             stop.cancel()
+            if nxt is not None and not nxt.done():
+                # A message not taken stays unacknowledged; the broker delivers it again
+                # on the next session. Retrieve the outcome so none goes unreported.
+                nxt.cancel()
+                nxt.add_done_callback(_consume_outcome)
         self._intake_closed = True
         self._drain_deadline = time.monotonic() + self.config.publish.shutdown_grace_s
-        async with self._outbox_cond:
-            self._outbox_cond.notify_all()
+        self._outbox_changed.set()
 
-    async def _process(self, client: aiomqtt.Client, message: aiomqtt.Message) -> None:
-        """Match one message, queue its outputs, then acknowledge it."""
+    async def _wait_for_room(self) -> None:
+        """Pause intake while the publish queue is full (the broker is slow or away)."""
+        limit = self.config.publish.queue_max
+        if len(self._outbox) < limit:
+            return
+        log.warning("publish queue full; intake paused", extra=fields(limit=limit))
+        while len(self._outbox) >= limit:
+            self._outbox_changed.clear()
+            await self._outbox_changed.wait()
+        log.info("publish queue has room; intake resumed", extra=fields(queued=len(self._outbox)))
+
+    def _process(self, client: aiomqtt.Client, message: aiomqtt.Message) -> None:
+        """Match one message, queue its outputs, then acknowledge it.
+
+        Synchronous on purpose: nothing can interrupt it between matching and the
+        acknowledgement, so a message is either fully handled (state, outputs, PUBACK)
+        or not at all (and redelivered).
+        """
         self.metrics.received.inc()
         payload = message.payload
         if not isinstance(payload, bytes | bytearray):
@@ -399,7 +457,7 @@ class Daemon:
         self.metrics.processing.observe(time.perf_counter() - started)
         self._sync_counters()
         for out in outputs:
-            await self._route(out)
+            self._route(out)
         ack(client, message)
 
     def _sync_counters(self) -> None:
@@ -416,13 +474,14 @@ class Daemon:
             elif key.startswith("filtered:"):
                 self.metrics.filtered.labels(reason=key.split(":", 1)[1]).inc(delta)
 
-    async def _route(self, out: OutputLike) -> None:
+    def _route(self, out: OutputLike) -> None:
+        """Count an output, update the latest state, and queue it unless throttled."""
         cfg = self.config.mqtt
         record = out.record
         vehicle = out.vehicle
         if out.kind == "reject" or vehicle is None:
             self.metrics.rejected.labels(reason=str(record.get("reason", "unknown"))).inc()
-            await self._enqueue(_Pending(cfg.reject_topic, encode_record(record), "reject",
+            self._enqueue(_Pending(cfg.reject_topic, encode_record(record), "reject",
                                          False, None))
             return
         payload = encode_record(record)
@@ -435,7 +494,10 @@ class Daemon:
             if self._fixes_since[vehicle] >= self.config.store.checkpoint_every_fixes:
                 self._checkpoint_due.set()
             if isinstance(fix_time, int | float):
-                self._newest_fix_t = max(self._newest_fix_t or fix_time, fix_time)
+                # Idle eviction runs on fix time. A device whose clock runs ahead must not
+                # make every other vehicle look idle: cap at the wall clock + 5 min.
+                clock = min(float(fix_time), time.time() + _CLOCK_AHEAD_S)
+                self._newest_fix_t = max(self._newest_fix_t or clock, clock)
             if self._throttled(vehicle, record):
                 self.metrics.throttled.inc()
                 return
@@ -449,7 +511,7 @@ class Daemon:
             return
         retain = self.config.publish.retain_latest and out.kind == "assignment"
         stamp = float(fix_time) if isinstance(fix_time, int | float) else None
-        await self._enqueue(_Pending(topic.replace("{vehicle}", vehicle), payload, out.kind,
+        self._enqueue(_Pending(topic.replace("{vehicle}", vehicle), payload, out.kind,
                                      retain, stamp))
 
     def _throttled(self, vehicle: str, record: Mapping[str, Any]) -> bool:
@@ -462,26 +524,22 @@ class Daemon:
         self._last_published[vehicle] = (road, t)
         return False
 
-    async def _enqueue(self, item: _Pending) -> None:
-        """Queue an output; waits (pausing intake) while the queue is full."""
-        limit = self.config.publish.queue_max
-        async with self._outbox_cond:
-            if len(self._outbox) >= limit:
-                log.warning("publish queue full; intake paused", extra=fields(limit=limit))
-            await self._outbox_cond.wait_for(lambda: len(self._outbox) < limit)
-            self._outbox.append(item)
-            self.metrics.queue_depth.set(len(self._outbox))
-            self._outbox_cond.notify_all()
+    def _enqueue(self, item: _Pending) -> None:
+        """Queue an output (the queue may pass queue_max by one message's outputs)."""
+        self._outbox.append(item)
+        self.metrics.queue_depth.set(len(self._outbox))
+        self._outbox_changed.set()
 
     async def _publish_loop(self, client: aiomqtt.Client) -> None:
+        """Publish queued outputs oldest first; one leaves the queue once acknowledged."""
         qos = self.config.mqtt.qos
         while True:
-            async with self._outbox_cond:
-                await self._outbox_cond.wait_for(lambda: bool(self._outbox)
-                                                 or self._intake_closed)
-                if not self._outbox:
-                    return  # stopping and drained
-                item = self._outbox[0]
+            while not self._outbox and not self._intake_closed:
+                self._outbox_changed.clear()
+                await self._outbox_changed.wait()
+            if not self._outbox:
+                return  # stopping and drained
+            item = self._outbox[0]
             timeout: float | None = None
             if self._intake_closed:
                 timeout = self._drain_deadline - time.monotonic()
@@ -489,10 +547,9 @@ class Daemon:
                     return  # grace over: what is left is counted as dropped
             await client.publish(item.topic, item.payload, qos=qos, retain=item.retain,
                                  timeout=timeout)
-            async with self._outbox_cond:
-                self._outbox.popleft()
-                self.metrics.queue_depth.set(len(self._outbox))
-                self._outbox_cond.notify_all()
+            self._outbox.popleft()
+            self.metrics.queue_depth.set(len(self._outbox))
+            self._outbox_changed.set()
             self.metrics.published.labels(kind=item.kind).inc()
             if item.kind == "assignment" and item.fix_time is not None:
                 self.metrics.lag.observe(max(0.0, time.time() - item.fix_time))
@@ -507,6 +564,12 @@ class Daemon:
         self.metrics.vehicles.set(len(self.pipeline.vehicles()))
         self.metrics.queue_depth.set(len(self._outbox))
         return self.metrics.render()
+
+
+def _consume_outcome(future: asyncio.Future[Any]) -> None:
+    """Mark a future's exception as retrieved (it is expected and of no interest)."""
+    if not future.cancelled():
+        future.exception()
 
 
 def _internal_reject(topic: str, payload: bytes, exc: Exception) -> Output:
