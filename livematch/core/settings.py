@@ -43,6 +43,9 @@ class MatchSettings:
         motion_m: scale of the path cost's motion term (metres): the difference between
             the matched point's displacement and the fixes' displacement over one step,
             divided by ``motion_m``. It tells the road ahead from a side branch.
+        junction_hold: while candidates whose path cost is within this margin of the best
+            one disagree about the branch taken at a junction, the live assignment stays
+            at that junction (0 disables). Commits are unaffected.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -60,6 +63,7 @@ class MatchSettings:
     beta_m: float = 10.0
     turn_back_cost: float = 2.0
     motion_m: float = 5.0
+    junction_hold: float = 3.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -83,7 +87,7 @@ class MatchSettings:
                 out.append((name, f"must be a positive number, got {value!r}"))
         if not (isinstance(self.max_lag_fixes, int) and self.max_lag_fixes >= 2):
             out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
-        for name in ("turn_back_cost",):
+        for name in ("turn_back_cost", "junction_hold"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))

@@ -226,13 +226,43 @@ class Tracker:
             events.append(Filtered(fix.vehicle, fix.t, "no_road_nearby"))
         else:
             best = best_leaf(deciding.live, self.last_seg)
+            seg, pos, x, y = self._hold_at_junction(deciding, best, fix)
             self.last_seg = best.seg
             events.append(Assignment(
-                self.vehicle, fix.t, best.seg, best.pos * self._view.slen[best.seg],
-                best.x, best.y, deciding.eps, seq - deciding.cert_seq + 1,
+                self.vehicle, fix.t, seg, pos * self._view.slen[seg],
+                x, y, deciding.eps, seq - deciding.cert_seq + 1,
                 fix.t - deciding.cert_t,
             ))
         self._settle(seq, fix.t, salvage, events)
+
+    def _hold_at_junction(
+        self, level: Level, best: Node, fix: Fix
+    ) -> tuple[int, float, float, float]:
+        """The live answer: the best candidate, unless it has just taken a branch.
+
+        When the candidates that cost nearly as little as the best one (within
+        ``junction_hold``) went separate ways at a junction, which branch was taken is
+        not yet known; the answer then stays on the road they all came from, at the
+        junction where they split, as long as the fix is within eps of it. A dispatcher
+        sees "at the junction" instead of a branch that may flip a second later.
+        """
+        margin = self.settings.junction_hold
+        if margin <= 0.0:
+            return best.seg, best.pos, best.x, best.y
+        close = [n for n in level.live.values() if n.cost <= best.cost + margin]
+        if len(close) < 2 or all(n.seg == best.seg for n in close):
+            return best.seg, best.pos, best.x, best.y
+        split = common_ancestor(close)
+        if split is None or split is best or _still_on(best, split):
+            return best.seg, best.pos, best.x, best.y
+        branches = {_branch(n, split) for n in close if not _still_on(n, split)}
+        if len(branches) < 2:
+            return best.seg, best.pos, best.x, best.y
+        seg = split.seg
+        x, y = _point(self._view, seg, 1.0)
+        if math.hypot(x - fix.x, y - fix.y) > level.eps:
+            return best.seg, best.pos, best.x, best.y
+        return seg, 1.0, x, y
 
     # ---------------------------------------------------------------- commits
     def _covering(self) -> list[Level]:
@@ -486,6 +516,24 @@ def _along(view: NetworkView, a: Node, b: Node, frac: float) -> tuple[int, float
             return s, lo + want / view.slen[s]
         want -= length
     return b.seg, b.pos
+
+
+def _still_on(node: Node, ancestor: Node) -> bool:
+    """Whether the path from ``ancestor`` to ``node`` never left ancestor's segment."""
+    cur: Node | None = node
+    while cur is not None and cur is not ancestor:
+        if cur.via or cur.seg != ancestor.seg:
+            return False
+        cur = cur.parent
+    return True
+
+
+def _branch(node: Node, ancestor: Node) -> int:
+    """The first segment after ``ancestor``'s on the path from ``ancestor`` to ``node``."""
+    cur = node
+    while cur.parent is not None and cur.parent is not ancestor:
+        cur = cur.parent
+    return cur.via[0] if cur.via else cur.seg
 
 
 def _point(view: NetworkView, seg: int, pos: float) -> tuple[float, float]:
