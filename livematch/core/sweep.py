@@ -321,22 +321,28 @@ def best_leaf(live: dict[int, Node], prefer: int = -1) -> Node:
     return min(live.values(), key=lambda n: (n.cost, n.seg != prefer, n.seg))
 
 
-def common_ancestor(leaves: Iterable[Node]) -> Node | None:
-    """The deepest state every leaf descends from (a leaf itself if only one), or None."""
-    cur = {id(n): n for n in leaves}
+def common_ancestor(leaves: Iterable[Node], floor: int = -1) -> Node | None:
+    """The deepest state every leaf descends from (a leaf itself if only one), or None.
+
+    Leaves must belong to one fix (every state's parent belongs to the fix before, so the
+    walk moves all of them up one fix at a time). The walk gives up, returning None,
+    below fix ``floor``: callers only care about ancestors from there on, and a tree
+    whose branches never merge would otherwise be walked to its roots on every fix.
+    """
+    cur = list({id(n): n for n in leaves}.values())
+    if not cur:
+        return None
     while len(cur) > 1:
-        top = max(n.seq for n in cur.values())
+        if cur[0].seq <= floor:
+            return None
         nxt: dict[int, Node] = {}
-        for key, n in cur.items():
-            if n.seq == top:
-                p = n.parent
-                if p is None:
-                    return None
-                nxt[id(p)] = p
-            else:
-                nxt[key] = n
-        cur = nxt
-    return next(iter(cur.values()), None)
+        for n in cur:
+            p = n.parent
+            if p is None:
+                return None
+            nxt[id(p)] = p
+        cur = list(nxt.values())
+    return cur[0]
 
 
 def ancestor_at(node: Node, seq: int) -> Node:

@@ -288,7 +288,7 @@ class Tracker:
         while progressed:
             progressed = False
             for level in self._covering():
-                top = common_ancestor(level.live.values())
+                top = common_ancestor(level.live.values(), self.next_commit - 1)
                 if top is not None and top.seq >= self.next_commit:
                     self._commit_chain(top, events, prune=None)
                     progressed = True
@@ -401,7 +401,7 @@ class Tracker:
         for level in self.levels:
             if not level.live:
                 continue
-            top = common_ancestor(level.live.values())
+            top = common_ancestor(level.live.values(), self.next_commit - 2)
             if top is not None:
                 node = top
                 while node.parent is not None and node.parent.seq >= self.next_commit - 1:
