@@ -15,6 +15,19 @@ Both the replay command and the daemon go through :meth:`Pipeline.handle`, so th
 messages give the same records, byte for byte, whichever of them ran. The pipeline reads
 no clock: ``at`` (the receive time) only goes into reject records.
 
+Alerts (:mod:`livematch.core.monitors`): every fix the tracker accepts also goes to the
+vehicle's monitors (route, geofences, off-network), whose alerts come out as
+``Output(kind="alert")`` right after that fix's assignment. A vehicle's route is, in this
+order of precedence: the latest retained *control* message on ``livematch/control/{vehicle}/
+route`` (payload ``{"route": "550"}``, ``"550"``, or empty / ``{"route": null}`` to
+clear it), the ``route`` field of the fix, the static ``vehicle_routes`` mapping. A route
+id that is not loaded gives one ``reject`` record with reason ``unknown_route`` each time
+a vehicle asks for it (the fix is still matched); with no routes loaded at all, route ids
+are ignored. Staleness needs a clock the core does not have: the shell calls
+:meth:`Pipeline.tick` with the current receive time (``livematch replay`` calls it with
+each message's ``at``), and a vehicle from which nothing arrived for ``stale_s`` seconds
+of receive time gets a ``stale`` alert (``fresh`` when it reports again).
+
 Bad input never raises: a message that cannot be decoded becomes an
 ``Output(kind="reject")`` and a counter. Every outcome is counted in
 :attr:`Pipeline.counters` (a :class:`collections.Counter`):
@@ -26,7 +39,8 @@ Bad input never raises: a message that cannot be decoded becomes an
 ``fixes``                         fixes handed to a tracker
 ``filtered:<reason>``             refused by the tracker's filters (out_of_order...)
 ``assignments`` ``commits``       published events, by kind
-``alerts``
+``alerts`` ``alert:<kind>``
+``control``                       control messages taken (route assignments)
 ``eps_m:<eps>``                   assignments certified at that eps level (e.g. ``eps_m:15.0``)
 ``vehicle:new`` ``vehicle:...``   trackers created, ``imported``, ``evicted``, ``dropped``
 ================================  ==========================================================
@@ -35,23 +49,35 @@ Bad input never raises: a message that cannot be decoded becomes an
 from __future__ import annotations
 
 import bisect
+import json
 import math
 import typing
+import zlib
 from collections import Counter
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, fields
 from typing import Any
 
 import msgspec
 
 from livematch.core.events import Alert, Assignment, Commit, Event, Filtered, to_record
+from livematch.core.fix import Fix
+from livematch.core.monitors import AlertSettings, Fence, FenceSet, Route, RouteChain
+from livematch.core.monitors.vehicle import VehicleAlerts
 from livematch.core.network import RoadNetwork
 from livematch.core.settings import MatchSettings
 from livematch.core.tracker import Tracker
 from livematch.errors import BadConfigError, BadMessageError, BadStateError, LivematchError
-from livematch.feed.decode import FeedLimits, decode_position, known_vehicle
+from livematch.feed.decode import (
+    FeedLimits,
+    decode_position,
+    known_vehicle,
+    validate_vehicle,
+    vehicle_from_topic,
+)
 
 __all__ = [
+    "CONTROL_TOPIC",
     "DEDUPE_WINDOW",
     "REJECT_PAYLOAD_CHARS",
     "STATE_MAGIC",
@@ -70,7 +96,12 @@ DEDUPE_WINDOW = 64
 REJECT_PAYLOAD_CHARS = 512
 #: Checkpoint blobs start with this and a version byte.
 STATE_MAGIC = b"LMPV"
-STATE_VERSION = 1
+#: Version 2 adds the alert monitors' state; version 1 checkpoints are still read (their
+#: vehicles start with fresh monitors).
+STATE_VERSION = 2
+_READABLE_VERSIONS = (1, 2)
+#: Default topic filter of the route control messages; its ``+`` level is the vehicle.
+CONTROL_TOPIC = "livematch/control/+/route"
 _DEFAULT_LIMITS = FeedLimits()
 
 
@@ -103,6 +134,7 @@ class _Blob(msgspec.Struct, array_like=True, frozen=True):
     vehicle: str
     recent: list[float]
     tracker: bytes
+    alerts: bytes = b""  # version 2: zlib-compressed JSON of the monitors' state
 
 
 _BLOB_ENCODER = msgspec.msgpack.Encoder()
@@ -110,13 +142,18 @@ _BLOB_DECODER = msgspec.msgpack.Decoder(_Blob)
 
 
 class _VehicleState:
-    """A vehicle's tracker plus the pipeline's dedupe memory (sorted recent fix times)."""
+    """A vehicle's tracker, dedupe memory (sorted recent fix times) and alert monitors.
 
-    __slots__ = ("recent", "tracker")
+    ``pending`` holds the fixes handed to the tracker that it has not answered yet.
+    """
+
+    __slots__ = ("alerts", "pending", "recent", "tracker")
 
     def __init__(self, tracker: Tracker, recent: list[float] | None = None) -> None:
         self.tracker = tracker
         self.recent: list[float] = recent or []
+        self.alerts = VehicleAlerts()
+        self.pending: dict[float, Fix] = {}
 
     def seen(self, t: float) -> bool:
         i = bisect.bisect_left(self.recent, t)
@@ -157,15 +194,36 @@ class Pipeline:
     """
 
     def __init__(self, network: RoadNetwork, settings: MatchSettings, *,
-                 limits: FeedLimits = _DEFAULT_LIMITS) -> None:
+                 limits: FeedLimits = _DEFAULT_LIMITS,
+                 routes: Mapping[str, Route] | None = None,
+                 fences: Sequence[Fence] | None = None,
+                 alerts: AlertSettings | None = None,
+                 vehicle_routes: Mapping[str, str] | None = None,
+                 vehicle_groups: Mapping[str, Iterable[str]] | None = None,
+                 control_topic: str = CONTROL_TOPIC) -> None:
         problems = settings.problems()
         if problems:
             raise BadConfigError("; ".join(f"matcher.{key} {what}" for key, what in problems))
+        self.alert_settings = alerts if alerts is not None else AlertSettings()
+        problems = self.alert_settings.problems()
+        if problems:
+            raise BadConfigError("; ".join(f"alerts.{key} {what}" for key, what in problems))
         self.network = network
         self.settings = settings
         self.limits = limits
         self.counters: Counter[str] = Counter()
         self._vehicles: dict[str, _VehicleState] = {}
+        self.routes: dict[str, Route] | None = dict(routes) if routes is not None else None
+        self._chains: dict[int, RouteChain] = {}
+        try:
+            self.fences = FenceSet(fences, self.alert_settings) if fences else None
+        except ValueError as exc:
+            raise BadConfigError(f"fences: {exc}") from exc
+        self.vehicle_routes = dict(vehicle_routes or {})
+        self.vehicle_groups = {v: tuple(g) for v, g in (vehicle_groups or {}).items()}
+        self.control_topic = control_topic
+        self._control: dict[str, str] = {}  # vehicle -> route id from control messages
+        self._stale_due = math.inf  # no vehicle can turn stale before this receive time
 
     # ------------------------------------------------------------------ messages
     def handle(self, topic: str, payload: bytes, at: float) -> list[Output]:
@@ -174,25 +232,22 @@ class Pipeline:
         Args:
             topic: the topic it arrived on.
             payload: its raw bytes.
-            at: receive time, epoch seconds (only copied into reject records).
+            at: receive time, epoch seconds (copied into reject records; the stale watch's
+                clock).
 
         A fix whose time equals one already taken for that vehicle (a QoS 1 redelivery)
         is dropped without output, so handling a message twice changes nothing but the
-        ``duplicate`` counter.
+        ``duplicate`` counter. A message on the control topic assigns a route
+        (:meth:`assign_route`).
         """
         self.counters["messages"] += 1
+        if self.control_topic and vehicle_from_topic(topic, self.control_topic) is not None:
+            return self._control_message(topic, payload, at)
         try:
             fix = decode_position(topic, payload, self.network.projection, self.limits)
         except BadMessageError as exc:
-            self.counters[f"reject:{exc.reason}"] += 1
-            record = {
-                "at": at,
-                "topic": topic,
-                "reason": exc.reason,
-                "detail": exc.detail,
-                "payload": payload.decode("utf-8", "replace")[:REJECT_PAYLOAD_CHARS],
-            }
-            return [Output("reject", known_vehicle(topic, payload, self.limits), record)]
+            return [self._reject(topic, payload, at, exc.reason, exc.detail,
+                                 known_vehicle(topic, payload, self.limits))]
         state = self._vehicles.get(fix.vehicle)
         if state is None:
             state = _VehicleState(Tracker(self.network, fix.vehicle, self.settings))
@@ -203,7 +258,127 @@ class Pipeline:
             return []
         state.remember(fix.t)
         self.counters["fixes"] += 1
-        return self._outputs(state.tracker.update(fix))
+        out = self._alert_outputs(state.alerts.seen(fix, at))
+        self._stale_due = min(self._stale_due, at + self.alert_settings.stale_s)
+        state.pending[fix.t] = fix
+        out.extend(self._outputs(state.tracker.update(fix), state, topic, payload, at))
+        return out
+
+    def _reject(self, topic: str, payload: bytes, at: float, reason: str, detail: str,
+                vehicle: str | None) -> Output:
+        self.counters[f"reject:{reason}"] += 1
+        record = {
+            "at": at,
+            "topic": topic,
+            "reason": reason,
+            "detail": detail,
+            "payload": payload.decode("utf-8", "replace")[:REJECT_PAYLOAD_CHARS],
+        }
+        return Output("reject", vehicle, record)
+
+    def _control_message(self, topic: str, payload: bytes, at: float) -> list[Output]:
+        """A route assignment on the control topic.
+
+        Payload: ``{"route": id | null}``, a JSON string, a bare id, or empty (a deleted
+        retained message: no assignment).
+        """
+        vehicle = vehicle_from_topic(topic, self.control_topic)
+        assert vehicle is not None
+        try:
+            validate_vehicle(vehicle, self.limits, f"topic {topic!r}")
+        except BadMessageError as exc:
+            return [self._reject(topic, payload, at, exc.reason, exc.detail, None)]
+        text = payload.decode("utf-8", "replace").strip()
+        route: Any = None
+        if text:
+            try:
+                doc = json.loads(text)
+            except ValueError:
+                doc = text  # a bare route id
+            route = doc.get("route") if isinstance(doc, dict) else doc
+            if isinstance(route, int | float) and not isinstance(route, bool):
+                route = str(route) if not isinstance(route, float) else None
+            if route is not None and not (isinstance(route, str) and route):
+                return [self._reject(topic, payload, at, "bad_type",
+                                     f"control message route must be a non-empty string or "
+                                     f"null, got {route!r}", vehicle)]
+        self.counters["control"] += 1
+        return self.assign_route(vehicle, route, at=at)
+
+    def assign_route(self, vehicle: str, route_id: str | None, *,
+                     at: float = 0.0) -> list[Output]:
+        """Assign ``route_id`` to ``vehicle`` (None clears it), as a control message does.
+
+        It takes precedence over the route field of fixes and the static mapping. The
+        route monitor switches at the vehicle's next fix; an unknown id gives a reject
+        (``unknown_route``) then. ``at`` only goes into such a reject record.
+        """
+        if route_id is None:
+            self._control.pop(vehicle, None)
+        else:
+            self._control[vehicle] = route_id
+        return []
+
+    def _route_for(self, state: _VehicleState, fix: Fix, topic: str, payload: bytes,
+                   at: float) -> Output | None:
+        """Point the vehicle's route monitor at its current route; a reject if unknown."""
+        routes = self.routes
+        if routes is None:
+            return None
+        wanted = (self._control.get(fix.vehicle) or fix.route
+                  or self.vehicle_routes.get(fix.vehicle))
+        route = routes.get(wanted) if wanted is not None else None
+        chain = self._chain(route) if route is not None else None
+        changed = state.alerts.set_route(wanted, chain, self.alert_settings)
+        if changed and wanted is not None and route is None:
+            return self._reject(topic, payload, at, "unknown_route",
+                                f"route {wanted!r} of vehicle {fix.vehicle!r} is not loaded",
+                                fix.vehicle)
+        return None
+
+    def _chain(self, route: Route) -> RouteChain:
+        chain = self._chains.get(id(route))
+        if chain is None:
+            chain = self._chains[id(route)] = RouteChain(route, self.network.projection)
+        return chain
+
+    def _chain_of(self, route_id: str) -> RouteChain | None:
+        route = self.routes.get(route_id) if self.routes is not None else None
+        return self._chain(route) if route is not None else None
+
+    def route_status(self, vehicle: str) -> dict[str, Any]:
+        """The vehicle's route, its state (``unknown``/``on``/``off``) and progress (m).
+
+        Raises:
+            UnknownVehicleError: when the vehicle is not held.
+        """
+        monitor = self._state(vehicle).alerts.route
+        if monitor is None:
+            return {"route": None, "state": None, "progress_m": None}
+        progress = monitor.progress_m
+        return {"route": monitor.route_id, "state": monitor.state,
+                "progress_m": round(progress, 1) if progress is not None else None}
+
+    def tick(self, now: float) -> list[Output]:
+        """Stale alerts at receive time ``now`` (epoch s), for vehicles in order.
+
+        The core has no clock: the daemon calls this periodically with its clock and
+        ``livematch replay`` after every message with that message's ``at``. A vehicle
+        from which no fix arrived for more than ``stale_s`` seconds of receive time gets
+        one ``stale`` alert; its next fix gives ``fresh``. Cheap when nothing is due.
+        """
+        if now <= self._stale_due:
+            return []
+        out: list[Output] = []
+        due = math.inf
+        for vehicle in sorted(self._vehicles):
+            watch = self._vehicles[vehicle].alerts.watch
+            if watch is None:
+                continue
+            out.extend(self._alert_outputs(watch.check(vehicle, now, self.alert_settings)))
+            due = min(due, watch.due(self.alert_settings))
+        self._stale_due = due
+        return out
 
     def flush(self) -> list[Output]:
         """Commit everything pending for every vehicle (end of a log), in vehicle order.
@@ -212,14 +387,20 @@ class Pipeline:
         """
         out: list[Output] = []
         for vehicle in sorted(self._vehicles):
-            out.extend(self._outputs(self._vehicles[vehicle].tracker.flush()))
+            state = self._vehicles[vehicle]
+            out.extend(self._outputs(state.tracker.flush(), state, "", b"", 0.0))
         return out
 
-    def _outputs(self, events: list[Event]) -> list[Output]:
+    def _outputs(self, events: list[Event], state: _VehicleState | None = None,
+                 topic: str = "", payload: bytes = b"", at: float = 0.0) -> list[Output]:
         out: list[Output] = []
         for event in events:
             if isinstance(event, Filtered):
                 self.counters[f"filtered:{event.reason}"] += 1
+                if state is not None:
+                    fix = state.pending.pop(event.t, None)
+                    if fix is not None and event.reason == "no_road_nearby":
+                        out.extend(self._monitor(state, fix, None, False, topic, payload, at))
                 continue
             if isinstance(event, Assignment):
                 self.counters["assignments"] += 1
@@ -228,8 +409,29 @@ class Pipeline:
                 self.counters["commits"] += 1
             elif isinstance(event, Alert):
                 self.counters["alerts"] += 1
+                self.counters[f"alert:{event.alert_kind}"] += 1
             out.append(Output(event.kind, event.vehicle, to_record(event, self.network)))
+            if isinstance(event, Assignment) and state is not None:
+                fix = state.pending.pop(event.t, None)
+                if fix is not None:
+                    out.extend(self._monitor(state, fix, (event.x, event.y), True, topic,
+                                             payload, at))
         return out
+
+    def _monitor(self, state: _VehicleState, fix: Fix, matched: tuple[float, float] | None,
+                 has_road: bool, topic: str, payload: bytes, at: float) -> list[Output]:
+        out: list[Output] = []
+        reject = self._route_for(state, fix, topic, payload, at)
+        if reject is not None:
+            out.append(reject)
+        alerts = state.alerts.update(fix, matched, has_road, self.fences,
+                                     self.vehicle_groups.get(fix.vehicle, ()),
+                                     self.alert_settings)
+        out.extend(self._alert_outputs(alerts))
+        return out
+
+    def _alert_outputs(self, alerts: list[Alert]) -> list[Output]:
+        return self._outputs(list(alerts)) if alerts else []
 
     # ------------------------------------------------------------------ vehicles
     def vehicles(self) -> list[str]:
@@ -245,15 +447,23 @@ class Pipeline:
     def export_vehicle(self, vehicle: str) -> bytes:
         """Checkpoint one vehicle: its tracker and the dedupe memory, as a compact blob.
 
-        Layout: ``b"LMPV"``, a version byte (1), then a msgpack array
-        ``[vehicle, recent fix times, tracker bytes]`` (no pickle: restoring runs no
-        code from the blob).
+        Layout: ``b"LMPV"``, a version byte (2), then a msgpack array
+        ``[vehicle, recent fix times, tracker bytes, alert state]`` (no pickle: restoring
+        runs no code from the blob). The alert state is zlib-compressed JSON of the
+        monitors, the fixes awaiting the tracker's answer and the control-message route.
 
         Raises:
             UnknownVehicleError: when the vehicle is not held.
         """
         state = self._state(vehicle)
-        blob = _Blob(vehicle, list(state.recent), state.tracker.to_bytes())
+        extra = {
+            "monitors": state.alerts.to_state(),
+            "pending": [[f.vehicle, f.t, f.lon, f.lat, f.x, f.y, f.accuracy, f.speed,
+                         f.heading, f.route] for f in state.pending.values()],
+            "control": self._control.get(vehicle),
+        }
+        alerts = zlib.compress(json.dumps(extra, separators=(",", ":")).encode())
+        blob = _Blob(vehicle, list(state.recent), state.tracker.to_bytes(), alerts)
         return STATE_MAGIC + bytes([STATE_VERSION]) + _BLOB_ENCODER.encode(blob)
 
     def import_vehicle(self, vehicle: str, blob: bytes) -> None:
@@ -268,10 +478,11 @@ class Pipeline:
         if blob[:head] != STATE_MAGIC:
             raise BadStateError(
                 f"checkpoint for vehicle {vehicle!r} does not start with {STATE_MAGIC!r}")
-        if blob[head:head + 1] != bytes([STATE_VERSION]):
+        if not (len(blob) > head and blob[head] in _READABLE_VERSIONS):
             found = blob[head] if len(blob) > head else None
             raise BadStateError(f"checkpoint for vehicle {vehicle!r} has version {found}, "
-                                f"this livematch reads version {STATE_VERSION}")
+                                f"this livematch reads versions "
+                                f"{', '.join(map(str, _READABLE_VERSIONS))}")
         try:
             data = _BLOB_DECODER.decode(blob[head + 1:])
         except msgspec.DecodeError as exc:
@@ -287,7 +498,23 @@ class Pipeline:
             raise BadStateError(
                 f"checkpoint for vehicle {vehicle!r} holds a tracker of {tracker.vehicle!r}")
         recent = sorted(data.recent)[-DEDUPE_WINDOW:]
-        self._vehicles[vehicle] = _VehicleState(tracker, recent)
+        restored = _VehicleState(tracker, recent)
+        if data.alerts:
+            try:
+                extra = json.loads(zlib.decompress(data.alerts))
+                restored.alerts = VehicleAlerts.from_state(
+                    extra["monitors"], self._chain_of, self.alert_settings)
+                restored.pending = {row[1]: Fix(*row) for row in extra["pending"]}
+                control = extra["control"]
+            except (zlib.error, ValueError, KeyError, TypeError) as exc:
+                raise BadStateError(f"checkpoint for vehicle {vehicle!r} has corrupt alert "
+                                    f"state: {exc}") from exc
+            if control is not None:
+                self._control[vehicle] = control
+        watch = restored.alerts.watch
+        if watch is not None:
+            self._stale_due = min(self._stale_due, watch.due(self.alert_settings))
+        self._vehicles[vehicle] = restored
         self.counters["vehicle:imported"] += 1
 
     def evict(self, vehicle: str) -> list[Output]:

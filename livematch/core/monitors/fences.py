@@ -1,0 +1,208 @@
+"""Geofences: enter, exit and dwell alerts for polygons, with margins against flapping.
+
+A :class:`Fence` is a polygon (or multipolygon) in projected metres with an id, a name,
+an optional dwell time and an optional vehicle filter (vehicle ids and/or group names).
+:class:`FenceSet` prepares every fence once for the whole fleet: an *inner* polygon
+(shrunk by ``fence_inner_m``) that a vehicle must reach to enter, an *outer* polygon
+(grown by ``fence_outer_m``) that it must leave to exit, and an STRtree over the outer
+polygons so a fix is tested only against the few fences near it.
+
+:class:`FenceMonitor` is one vehicle's state: the fences it is inside and the counts of
+consecutive fixes beyond a margin (``fence_fixes`` are needed to change state, so one
+outlier never flips a fence). A point on a polygon's boundary counts as inside it
+(shapely's ``intersects``, i.e. ``covers`` for a point).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import shapely
+from shapely.geometry.base import BaseGeometry
+
+from livematch.core.events import Alert
+from livematch.core.fix import Fix
+from livematch.core.monitors.settings import AlertSettings
+
+
+@dataclass(frozen=True, eq=False)
+class Fence:
+    """One geofence.
+
+    Attributes:
+        id: its id (copied into alerts; unique within a set).
+        geometry: a shapely Polygon or MultiPolygon in projected metres.
+        name: a human name, if any.
+        dwell_s: this fence's dwell time, seconds (None: the settings' default).
+        vehicles: vehicle ids it applies to (None with ``groups`` None: every vehicle).
+        groups: vehicle group names it applies to.
+    """
+
+    id: str
+    geometry: BaseGeometry
+    name: str | None = None
+    dwell_s: float | None = None
+    vehicles: frozenset[str] | None = None
+    groups: frozenset[str] | None = None
+
+    def applies_to(self, vehicle: str, groups: Iterable[str] = ()) -> bool:
+        """Whether the fence watches ``vehicle`` (member of ``groups``).
+
+        >>> f = Fence("depot", shapely.box(0, 0, 1, 1), groups=frozenset({"night"}))
+        >>> f.applies_to("bus1"), f.applies_to("bus1", ["night"])
+        (False, True)
+        """
+        if self.vehicles is None and self.groups is None:
+            return True
+        if self.vehicles is not None and vehicle in self.vehicles:
+            return True
+        return self.groups is not None and not self.groups.isdisjoint(groups)
+
+
+class FenceSet:
+    """Every fence, prepared: inner/outer polygons and a spatial index over the outer ones.
+
+    Args:
+        fences: the fences (ids unique).
+        settings: the margins come from ``fence_inner_m`` / ``fence_outer_m``.
+
+    Raises:
+        ValueError: on a repeated fence id or a geometry that is not a (multi)polygon.
+
+    Example (a point 10 m inside a 100 m square, margins 15 m: only near the fence):
+        >>> fs = FenceSet([Fence("a", shapely.box(0, 0, 100, 100))], AlertSettings())
+        >>> fs.near(10.0, 50.0), fs.inside_inner(0, 10.0, 50.0), fs.inside_outer(0, 10.0, 50.0)
+        ([0], False, True)
+        >>> FenceSet([], AlertSettings()).near(0.0, 0.0)   # degenerate: no fences
+        []
+    """
+
+    def __init__(self, fences: Sequence[Fence], settings: AlertSettings) -> None:
+        seen: set[str] = set()
+        for f in fences:
+            if f.id in seen:
+                raise ValueError(f"fence id {f.id!r} is used twice")
+            seen.add(f.id)
+            if f.geometry.geom_type not in ("Polygon", "MultiPolygon") or f.geometry.is_empty:
+                raise ValueError(f"fence {f.id!r} must be a non-empty Polygon or "
+                                 f"MultiPolygon, got {f.geometry.geom_type}")
+        self.fences = list(fences)
+        self.settings = settings
+        self.index = {f.id: i for i, f in enumerate(self.fences)}
+        self.inner = []
+        self.outer = []
+        for f in self.fences:
+            inner = f.geometry.buffer(-settings.fence_inner_m) if settings.fence_inner_m else \
+                f.geometry
+            self.inner.append(f.geometry if inner.is_empty else inner)
+            self.outer.append(f.geometry.buffer(settings.fence_outer_m)
+                              if settings.fence_outer_m else f.geometry)
+        for g in (*self.inner, *self.outer):
+            shapely.prepare(g)
+        self.tree = shapely.STRtree(self.outer) if self.fences else None
+
+    def near(self, x: float, y: float) -> list[int]:
+        """Indices of the fences whose outer polygon holds (x, y) (boundary included)."""
+        if self.tree is None:
+            return []
+        hits = self.tree.query(shapely.Point(x, y), predicate="intersects")
+        return sorted(int(i) for i in np.asarray(hits))
+
+    def inside_inner(self, i: int, x: float, y: float) -> bool:
+        """Whether (x, y) lies in fence ``i``'s inner polygon (boundary included)."""
+        return bool(shapely.intersects_xy(self.inner[i], x, y))
+
+    def inside_outer(self, i: int, x: float, y: float) -> bool:
+        """Whether (x, y) lies in fence ``i``'s outer polygon (boundary included)."""
+        return bool(shapely.intersects_xy(self.outer[i], x, y))
+
+
+class FenceMonitor:
+    """The fences one vehicle is in, with enter / exit / dwell alerts.
+
+    State per fence (only fences the vehicle is inside or about to enter are kept):
+    ``[inside, since_t, dwell_sent, count]`` where ``count`` is the run of consecutive
+    fixes on the far side of the margin that would change ``inside``.
+
+    Example (one fix inside with ``fence_fixes=1``: an enter, then nothing more):
+        >>> fs = FenceSet([Fence("a", shapely.box(0, 0, 100, 100))],
+        ...               AlertSettings(fence_fixes=1))
+        >>> m = FenceMonitor()
+        >>> [a.alert_kind for a in m.update(fs, Fix("v", 0.0, 0, 0, 50, 50), 50, 50, ())]
+        ['fence_enter']
+        >>> m.update(fs, Fix("v", 1.0, 0, 0, 50, 50), 50, 50, ())
+        []
+    """
+
+    def __init__(self) -> None:
+        self.state: dict[str, list[Any]] = {}
+
+    def inside(self) -> list[str]:
+        """Ids of the fences the vehicle is inside, sorted."""
+        return sorted(k for k, v in self.state.items() if v[0])
+
+    def update(self, fences: FenceSet, fix: Fix, x: float, y: float,
+               groups: Iterable[str]) -> list[Alert]:
+        """Take one fix at position (x, y) (raw or matched, metres); return its alerts."""
+        s_fix = fences  # short name for the loop below
+        groups = tuple(groups)
+        alerts: list[Alert] = []
+        near = [i for i in s_fix.near(x, y)
+                if s_fix.fences[i].applies_to(fix.vehicle, groups)]
+        todo = sorted(set(near) | {s_fix.index[k] for k in self.state if k in s_fix.index})
+        for k in [k for k in self.state if k not in s_fix.index]:
+            del self.state[k]  # a fence no longer loaded
+        for i in todo:
+            alerts.extend(self._one(s_fix, i, fix, x, y, i in near))
+        return alerts
+
+    def _one(self, fences: FenceSet, i: int, fix: Fix, x: float, y: float,
+             in_outer: bool) -> list[Alert]:
+        fence = fences.fences[i]
+        settings = fences.settings
+        st = self.state.get(fence.id)
+        inside = bool(st and st[0])
+        facts: dict[str, Any] = {"fence": fence.id, "name": fence.name,
+                                 "lat": fix.lat, "lon": fix.lon}
+        if not inside:
+            if fences.inside_inner(i, x, y):
+                if st is None:
+                    st = self.state[fence.id] = [False, fix.t, False, 0]
+                if st[3] == 0:
+                    st[1] = fix.t
+                st[3] += 1
+                if st[3] >= settings.fence_fixes:
+                    self.state[fence.id] = [True, st[1], False, 0]
+                    return [Alert(fix.vehicle, fix.t, "fence_enter", facts)]
+            elif st is not None:
+                del self.state[fence.id]
+            return []
+        assert st is not None
+        if not in_outer:
+            st[3] += 1
+            if st[3] >= settings.fence_fixes:
+                del self.state[fence.id]
+                return [Alert(fix.vehicle, fix.t, "fence_exit",
+                              {**facts, "duration_s": round(fix.t - st[1], 1)})]
+            return []
+        st[3] = 0
+        dwell = fence.dwell_s if fence.dwell_s is not None else settings.fence_dwell_s
+        if not st[2] and fix.t - st[1] >= dwell:
+            st[2] = True
+            return [Alert(fix.vehicle, fix.t, "fence_dwell",
+                          {**facts, "duration_s": round(fix.t - st[1], 1)})]
+        return []
+
+    def to_state(self) -> dict[str, list[Any]]:
+        """JSON-ready state."""
+        return {k: list(v) for k, v in self.state.items()}
+
+    @classmethod
+    def from_state(cls, state: Mapping[str, list[Any]]) -> FenceMonitor:
+        """Restore a monitor written by :meth:`to_state`."""
+        m = cls()
+        m.state = {k: list(v) for k, v in state.items()}
+        return m

@@ -1,0 +1,415 @@
+"""Route adherence: the Fréchet sweep against a vehicle's assigned route.
+
+A route is a directed polyline in projected metres (a GTFS shape, a GeoJSON line, or the
+roads of a list of way ids; the shell loads them). :class:`RouteChain` turns it into two
+chain graphs (:class:`~livematch.core.network.RoadNetwork` of one-way segments: the route
+and the route reversed) so the matcher's own sweep (:mod:`livematch.core.sweep`) runs on
+them unchanged, with a *free start*: a window starts on every part of the route within
+``eps_route_m`` of its first fix. The shape points are not merged where the route meets
+itself, so a route that overlaps itself (out and back on one street) is one long chain,
+and a closed route (last point on the first) is a cycle that can be driven round and
+round.
+
+:class:`RouteMonitor` keeps, per vehicle, one sweep window per direction and a small
+state machine:
+
+* **progress**: metres from the route's start, from the forward sweep's reachable
+  positions (the candidate that has followed the route longest).
+* **off route**: the fixes have been farther than eps from the route (the sweep is dead
+  and cannot restart) for ``off_route_s`` seconds *and* the vehicle got ``off_route_m``
+  metres away from its last on-route fix. One ``off_route`` alert per episode.
+* **back on route**: ``on_route_fixes`` consecutive fixes within eps again, not against
+  the route's direction; the ``on_route`` alert carries the detour's duration and
+  length.
+* **wrong direction**: the reversed-route sweep has followed the fixes for
+  ``wrong_way_m`` metres while the forward sweep died in that time (it must: a Fréchet
+  match is monotone, so moving backwards more than 2 eps kills it).
+
+Units: metres and seconds; alert positions in WGS84 (the fix's own lat/lon).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+import shapely
+
+from livematch.core.events import Alert
+from livematch.core.fix import Fix
+from livematch.core.geometry import Projection
+from livematch.core.monitors.settings import AlertSettings
+from livematch.core.network import RoadNetwork
+from livematch.core.sweep import Node, StepContext, fresh_start, sweep_step
+from livematch.core.view import NetworkView, view_of
+
+FloatArray = npt.NDArray[np.float64]
+
+#: Two route ends closer than this (metres) make the route a closed loop.
+CLOSE_LOOP_M = 1.0
+
+
+@dataclass(frozen=True, eq=False)
+class Route:
+    """A directed route polyline in projected metres.
+
+    Attributes:
+        id: the route id vehicles refer to.
+        xy: (n, 2) shape points in driving order, metres (n >= 2 distinct points).
+        name: a human name, if the source has one.
+    """
+
+    id: str
+    xy: FloatArray
+    name: str | None = None
+
+
+def _chain_network(points: FloatArray, closed: bool, projection: Projection) -> RoadNetwork:
+    """A one-way chain (or cycle) through ``points``; vertex i is point i, never merged."""
+    n = len(points)
+    seg_from = list(range(n - 1)) + ([n - 1] if closed else [])
+    seg_to = list(range(1, n)) + ([0] if closed else [])
+    return RoadNetwork(
+        projection=projection, node_xy=points, node_id=np.arange(1, n + 1, dtype=np.int64),
+        seg_from=np.array(seg_from, dtype=np.int32), seg_to=np.array(seg_to, dtype=np.int32),
+        seg_way=np.zeros(len(seg_from), dtype=np.int64),
+        seg_road=np.zeros(len(seg_from), dtype=np.int32),
+        roads=[{"name": None, "ref": None, "highway": "route"}], source="route",
+    )
+
+
+class RouteChain:
+    """A route prepared for the sweep: forward and reversed chains, arc lengths, a line.
+
+    Args:
+        route: the route.
+        projection: the road network's projection (the route's ``xy`` are in it).
+
+    Raises:
+        ValueError: when the route has fewer than two distinct points.
+
+    Example (a 100 m straight route; degenerate routes are refused):
+        >>> c = RouteChain(Route("r", np.array([[0.0, 0.0], [100.0, 0.0]])),
+        ...                Projection.local(0, 0))
+        >>> c.length, c.closed, c.progress(0, 0.25)
+        (100.0, False, 25.0)
+        >>> RouteChain(Route("r", np.array([[5.0, 5.0], [5.0, 5.0]])), Projection.local(0, 0))
+        Traceback (most recent call last):
+        ...
+        ValueError: route 'r' needs at least two distinct points, got 1
+    """
+
+    def __init__(self, route: Route, projection: Projection) -> None:
+        xy = np.asarray(route.xy, dtype=np.float64).reshape(-1, 2)
+        keep = np.ones(len(xy), dtype=bool)
+        keep[1:] = np.any(np.diff(xy, axis=0) != 0.0, axis=1)
+        pts = xy[keep]
+        if len(pts) < 2:
+            raise ValueError(f"route {route.id!r} needs at least two distinct points, "
+                             f"got {len(pts)}")
+        self.closed = bool(len(pts) >= 4
+                           and math.hypot(*(pts[-1] - pts[0])) <= CLOSE_LOOP_M)
+        if self.closed:
+            pts = pts[:-1]
+        self.route = route
+        self.points = np.ascontiguousarray(pts)
+        self.forward = _chain_network(self.points, self.closed, projection)
+        self.backward = _chain_network(self.points[::-1].copy(), self.closed, projection)
+        self.forward_view: NetworkView = view_of(self.forward)
+        self.backward_view: NetworkView = view_of(self.backward)
+        self.cum_forward: list[float] = _cumulative(self.forward.seg_len)
+        self.cum_backward: list[float] = _cumulative(self.backward.seg_len)
+        self.length = float(self.forward.seg_len.sum())
+        ring = np.vstack([self.points, self.points[:1]]) if self.closed else self.points
+        self.line = shapely.LineString(ring)
+        shapely.prepare(self.line)
+        self.projection = projection
+
+    def progress(self, segment: int, pos: float, backward: bool = False) -> float:
+        """Metres from the route's start of position ``pos`` on chain ``segment``.
+
+        With ``backward`` the segment is one of the reversed chain, and the result is
+        still measured along the forward route.
+        """
+        if backward:
+            along = self.cum_backward[segment] + pos * float(self.backward.seg_len[segment])
+            return self.length - along
+        return self.cum_forward[segment] + pos * float(self.forward.seg_len[segment])
+
+    def distance(self, x: float, y: float) -> float:
+        """Distance in metres from (x, y) to the route line."""
+        return float(shapely.distance(self.line, shapely.Point(x, y)))
+
+    def nearest(self, x: float, y: float) -> tuple[float, float]:
+        """The point of the route line closest to (x, y), metres."""
+        p = shapely.line_interpolate_point(self.line, shapely.line_locate_point(
+            self.line, shapely.Point(x, y)))
+        return float(shapely.get_x(p)), float(shapely.get_y(p))
+
+
+def _cumulative(lengths: FloatArray) -> list[float]:
+    return np.concatenate([[0.0], np.cumsum(lengths)[:-1]]).tolist()
+
+
+class _Window:
+    """One direction's sweep window: live states and metres followed since its start.
+
+    ``driven[seg]`` is how far (metres along the chain) the candidate ending on ``seg``
+    has followed the route since the window started at ``start_t``. Back-pointers are
+    cut after every step, so the state stays a handful of segments.
+    """
+
+    __slots__ = ("driven", "live", "start_t")
+
+    def __init__(self) -> None:
+        self.live: dict[int, Node] = {}
+        self.driven: dict[int, float] = {}
+        self.start_t = -math.inf
+
+    def best(self) -> tuple[int, Node] | None:
+        """(segment, state) of the candidate that followed the route longest."""
+        if not self.live:
+            return None
+        seg = max(self.live, key=lambda s: (self.driven[s], -self.live[s].cost, -s))
+        return seg, self.live[seg]
+
+    def followed(self) -> float:
+        """Metres the best candidate followed the route in this window (0 when dead)."""
+        return max(self.driven.values(), default=0.0)
+
+    def step(self, chain_net: RoadNetwork, ctx: StepContext) -> None:
+        new = sweep_step(self.live, ctx) if self.live else {}
+        driven: dict[int, float] = {}
+        if new:
+            slen = ctx.view.slen
+            for seg, node in new.items():
+                parent = node.parent
+                assert parent is not None
+                if not node.via and seg == parent.seg:
+                    arc = (node.pos - parent.pos) * slen[seg]
+                else:
+                    arc = ((1.0 - parent.pos) * slen[parent.seg]
+                           + sum(slen[v] for v in node.via) + node.pos * slen[seg])
+                driven[seg] = self.driven[parent.seg] + arc
+        else:
+            new = fresh_start(chain_net, ctx)
+            driven = dict.fromkeys(new, 0.0)
+            self.start_t = ctx.t
+        if new:
+            base = min(n.cost for n in new.values())
+            for node in new.values():
+                node.parent = None
+                node.via = ()
+                node.cost -= base
+        self.live = new
+        self.driven = driven
+
+    def to_state(self) -> list[Any]:
+        return [self.start_t if math.isfinite(self.start_t) else None,
+                [[s, n.seq, n.t, n.pos, n.x, n.y, n.cost, n.low, self.driven[s]]
+                 for s, n in self.live.items()]]
+
+    @classmethod
+    def from_state(cls, state: list[Any]) -> _Window:
+        w = cls()
+        w.start_t = -math.inf if state[0] is None else state[0]
+        for s, seq, t, pos, x, y, cost, low, driven in state[1]:
+            w.live[s] = Node(s, seq, t, pos, x, y, None, (), cost, low)
+            w.driven[s] = driven
+        return w
+
+
+@dataclass
+class _Anchor:
+    """The last on-route fix: time, projected and WGS84 position, progress (or None)."""
+
+    t: float
+    x: float
+    y: float
+    lon: float
+    lat: float
+    progress: float | None
+
+
+@dataclass
+class RouteMonitor:
+    """Route adherence of one vehicle on one route (see the module docstring).
+
+    Args:
+        route_id: the id the vehicle was given (copied into every alert).
+        chain: the prepared route.
+        settings: the alert settings.
+
+    Example (a vehicle driving along a 1 km route at 10 m/s: never an alert):
+        >>> from livematch.core.geometry import Projection
+        >>> chain = RouteChain(Route("r", np.array([[0.0, 0.0], [1000.0, 0.0]])),
+        ...                    Projection.local(0, 0))
+        >>> m = RouteMonitor("r", chain, AlertSettings())
+        >>> [a for k in range(60) for a in m.update(Fix("v", k, 0, 0, 10.0 * k, 3.0))]
+        []
+        >>> m.state, round(m.progress_m, 1)
+        ('on', 590.0)
+    """
+
+    route_id: str
+    chain: RouteChain
+    settings: AlertSettings
+    state: str = "unknown"  # "unknown" (not yet confirmed), "on", "off"
+    seq: int = 0
+    last_xy: tuple[float, float] | None = None
+    near: int = 0  # consecutive fixes within eps
+    dead_since: float | None = None  # first fix of the current run farther than eps
+    dead_origin: tuple[float, float] | None = None  # where that run is measured from
+    dead_far: float = 0.0  # farthest the run got from dead_origin
+    trail_m: float = 0.0  # path length of the fixes since the anchor
+    rejoin: tuple[float, float] | None = None  # (t, trail_m) of the first fix of this near run
+    anchor: _Anchor | None = None
+    wrong: bool = False  # a wrong-direction episode is open
+    progress_m: float | None = None
+    fwd: _Window = field(default_factory=_Window)
+    rev: _Window = field(default_factory=_Window)
+
+    def update(self, fix: Fix) -> list[Alert]:
+        """Take one accepted fix; return the alerts it causes (at most two)."""
+        s = self.settings
+        self.seq += 1
+        x0, y0 = self.last_xy if self.last_xy is not None else (fix.x, fix.y)
+        step_m = math.hypot(fix.x - x0, fix.y - y0)
+        self.last_xy = (fix.x, fix.y)
+        for window, net, view in ((self.fwd, self.chain.forward, self.chain.forward_view),
+                                  (self.rev, self.chain.backward, self.chain.backward_view)):
+            ctx = StepContext(view, s.eps_route_m, x0, y0, fix.x, fix.y, self.seq, fix.t,
+                              step_m, 0.02, 0.1, 0.0)
+            window.step(net, ctx)
+        if self.state != "on":
+            self.trail_m += step_m
+        alerts: list[Alert] = []
+        if self.fwd.live:
+            self._near(fix, alerts)
+        else:
+            self._far(fix, alerts)
+        return alerts
+
+    def _backwards(self) -> bool:
+        """Whether the fixes are following the route backwards (forward sweep died since)."""
+        return (self.fwd.start_t > self.rev.start_t
+                and self.rev.followed() >= self.settings.eps_route_m)
+
+    def _near(self, fix: Fix, alerts: list[Alert]) -> None:
+        s = self.settings
+        self.near += 1
+        self.dead_since = None
+        self.dead_origin = None
+        self.dead_far = 0.0
+        best = self.fwd.best()
+        assert best is not None
+        self.progress_m = self.chain.progress(best[0], best[1].pos)
+        if self.rejoin is None:
+            self.rejoin = (fix.t, self.trail_m)
+        backwards = self._backwards()
+        if (not self.wrong and self.rev.followed() >= s.wrong_way_m
+                and self.fwd.start_t > self.rev.start_t):
+            self.wrong = True
+            rbest = self.rev.best()
+            assert rbest is not None
+            alerts.append(Alert(fix.vehicle, fix.t, "wrong_direction", {
+                "route": self.route_id,
+                "progress_m": _m(self.chain.progress(rbest[0], rbest[1].pos, backward=True)),
+                "backwards_m": _m(self.rev.followed()),
+                "lat": fix.lat, "lon": fix.lon,
+            }))
+        elif self.wrong and self.fwd.followed() >= s.wrong_way_m:
+            self.wrong = False
+        if self.near >= s.on_route_fixes and not backwards:
+            if self.state == "off" and self.anchor is not None:
+                t_back, trail_back = self.rejoin
+                alerts.append(Alert(fix.vehicle, fix.t, "on_route", {
+                    "route": self.route_id,
+                    "duration_s": _m(t_back - self.anchor.t),
+                    "length_m": _m(trail_back),
+                    "progress_m": _m(self.progress_m),
+                    "lat": fix.lat, "lon": fix.lon,
+                }))
+            self.state = "on"
+        if self.state == "on":
+            self.anchor = _Anchor(fix.t, fix.x, fix.y, fix.lon, fix.lat, self.progress_m)
+            self.trail_m = 0.0
+            self.rejoin = None
+
+    def _far(self, fix: Fix, alerts: list[Alert]) -> None:
+        s = self.settings
+        self.near = 0
+        self.rejoin = None
+        if self.dead_since is None:
+            self.dead_since = fix.t
+            if self.anchor is not None and self.state == "on":
+                self.dead_origin = (self.anchor.x, self.anchor.y)
+            else:
+                self.dead_origin = (fix.x, fix.y)
+        assert self.dead_origin is not None
+        far = math.hypot(fix.x - self.dead_origin[0], fix.y - self.dead_origin[1])
+        self.dead_far = max(self.dead_far, far)
+        if (self.state != "off" and fix.t - self.dead_since >= s.off_route_s
+                and self.dead_far >= s.off_route_m):
+            self.state = "off"
+            self.wrong = False
+            a = self.anchor
+            rx, ry = self.chain.nearest(fix.x, fix.y)
+            lon, lat = self.chain.projection.to_lonlat(np.array([rx]), np.array([ry]))
+            alerts.append(Alert(fix.vehicle, fix.t, "off_route", {
+                "route": self.route_id,
+                "distance_m": _m(self.chain.distance(fix.x, fix.y)),
+                "lat": fix.lat, "lon": fix.lon,
+                "route_lat": round(float(lat[0]), 7), "route_lon": round(float(lon[0]), 7),
+                "last_on_route_time": a.t if a else None,
+                "last_on_route_lat": a.lat if a else None,
+                "last_on_route_lon": a.lon if a else None,
+                "last_progress_m": _m(a.progress) if a and a.progress is not None else None,
+            }))
+
+    # ---------------------------------------------------------------- state
+    def to_state(self) -> dict[str, Any]:
+        """JSON-ready state (floats kept exact); the route geometry is not included."""
+        a = self.anchor
+        return {
+            "route": self.route_id, "state": self.state, "seq": self.seq,
+            "last_xy": self.last_xy, "near": self.near, "dead_since": self.dead_since,
+            "dead_origin": self.dead_origin, "dead_far": self.dead_far,
+            "trail_m": self.trail_m, "rejoin": self.rejoin,
+            "anchor": [a.t, a.x, a.y, a.lon, a.lat, a.progress] if a else None,
+            "wrong": self.wrong, "progress_m": self.progress_m,
+            "fwd": self.fwd.to_state(), "rev": self.rev.to_state(),
+        }
+
+    @classmethod
+    def from_state(cls, state: dict[str, Any], chain: RouteChain,
+                   settings: AlertSettings) -> RouteMonitor:
+        """Restore a monitor written by :meth:`to_state` onto the same route."""
+        m = cls(state["route"], chain, settings)
+        m.state = state["state"]
+        m.seq = state["seq"]
+        m.last_xy = _pair(state["last_xy"])
+        m.near = state["near"]
+        m.dead_since = state["dead_since"]
+        m.dead_origin = _pair(state["dead_origin"])
+        m.dead_far = state["dead_far"]
+        m.trail_m = state["trail_m"]
+        m.rejoin = _pair(state["rejoin"])
+        m.anchor = _Anchor(*state["anchor"]) if state["anchor"] else None
+        m.wrong = state["wrong"]
+        m.progress_m = state["progress_m"]
+        m.fwd = _Window.from_state(state["fwd"])
+        m.rev = _Window.from_state(state["rev"])
+        return m
+
+
+def _pair(value: list[float] | None) -> tuple[float, float] | None:
+    return (value[0], value[1]) if value else None
+
+
+def _m(value: float) -> float:
+    """Metres or seconds as published: rounded to 0.1."""
+    return round(float(value), 1)

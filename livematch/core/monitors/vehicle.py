@@ -1,0 +1,122 @@
+"""Every alert monitor of one vehicle, fed from the matcher's verdict on each fix.
+
+:class:`VehicleAlerts` bundles the route monitor (when the vehicle has a known route),
+the geofence monitor, the off-network monitor and the stale watch, and serialises them
+together into the vehicle's checkpoint so a restored vehicle goes on exactly as before.
+It takes the route and fences as arguments instead of holding the fleet-wide data.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterable
+from typing import Any
+
+from livematch.core.events import Alert
+from livematch.core.fix import Fix
+from livematch.core.monitors.fences import FenceMonitor, FenceSet
+from livematch.core.monitors.presence import OffNetworkMonitor, StaleWatch
+from livematch.core.monitors.route import RouteChain, RouteMonitor
+from livematch.core.monitors.settings import AlertSettings
+
+STATE_VERSION = 1
+
+
+class VehicleAlerts:
+    """One vehicle's monitors.
+
+    Attributes:
+        route: the route monitor, None while the vehicle has no known route.
+        requested: the route id last asked for (known or not), None for none.
+        fences: geofence state.
+        network: off-network state.
+        watch: last sign of life (None before the first fix).
+
+    Example (degenerate: a vehicle without route or fences, one fix on a road):
+        >>> a = VehicleAlerts()
+        >>> a.update(Fix("v", 0.0, 24.0, 60.0, 0.0, 0.0), None, True, None, (),
+        ...          AlertSettings())
+        []
+    """
+
+    def __init__(self) -> None:
+        self.route: RouteMonitor | None = None
+        self.requested: str | None = None
+        self.fences = FenceMonitor()
+        self.network = OffNetworkMonitor()
+        self.watch: StaleWatch | None = None
+
+    def set_route(self, route_id: str | None, chain: RouteChain | None,
+                  settings: AlertSettings) -> bool:
+        """Follow ``route_id`` (``chain`` None: unknown or no route); True if it changed.
+
+        A change starts the route monitor afresh (no alert is sent for the change; an open
+        off-route episode of the old route simply ends).
+        """
+        if route_id == self.requested and (self.route is None) == (chain is None):
+            return False
+        self.requested = route_id
+        self.route = RouteMonitor(route_id, chain, settings) if (
+            chain is not None and route_id is not None) else None
+        return True
+
+    def update(self, fix: Fix, matched: tuple[float, float] | None, has_road: bool,
+               fences: FenceSet | None, groups: Iterable[str],
+               settings: AlertSettings) -> list[Alert]:
+        """Take one fix the matcher accepted; return its alerts in a fixed order.
+
+        Args:
+            fix: the fix.
+            matched: the matched point (metres) of its assignment, None without one.
+            has_road: the matcher found a road within its largest eps.
+            fences: the fleet's fences, if any.
+            groups: the vehicle's group names (for fence filters).
+            settings: the alert settings.
+        """
+        alerts = self.network.update(fix, has_road, settings)
+        if self.route is not None:
+            alerts.extend(self.route.update(fix))
+        if fences is not None:
+            x, y = (matched if matched is not None and settings.fence_position == "matched"
+                    else (fix.x, fix.y))
+            alerts.extend(self.fences.update(fences, fix, x, y, groups))
+        return alerts
+
+    def seen(self, fix: Fix, at: float) -> list[Alert]:
+        """A decoded fix arrived at receive time ``at`` (a sign of life)."""
+        if self.watch is None:
+            self.watch = StaleWatch(at, fix.t, fix.lat, fix.lon)
+            return []
+        return self.watch.seen(fix, at)
+
+    def to_state(self) -> dict[str, Any]:
+        """JSON-ready state of every monitor (route geometry excluded)."""
+        return {
+            "v": STATE_VERSION,
+            "requested": self.requested,
+            "route": self.route.to_state() if self.route is not None else None,
+            "fences": self.fences.to_state(),
+            "network": self.network.to_state(),
+            "watch": self.watch.to_state() if self.watch is not None else None,
+        }
+
+    @classmethod
+    def from_state(cls, state: dict[str, Any], chain_of: Callable[[str], RouteChain | None],
+                   settings: AlertSettings) -> VehicleAlerts:
+        """Restore from :meth:`to_state`; ``chain_of`` gives a route id's chain (or None).
+
+        A route that is no longer loaded leaves the vehicle without a route monitor.
+        """
+        if state.get("v") != STATE_VERSION:
+            raise ValueError(f"alert state version {state.get('v')!r}, "
+                             f"expected {STATE_VERSION}")
+        a = cls()
+        a.requested = state["requested"]
+        route = state["route"]
+        if route is not None:
+            chain = chain_of(route["route"])
+            if chain is not None:
+                a.route = RouteMonitor.from_state(route, chain, settings)
+        a.fences = FenceMonitor.from_state(state["fences"])
+        a.network = OffNetworkMonitor.from_state(state["network"])
+        a.watch = StaleWatch.from_state(state["watch"]) if state["watch"] else None
+        return a
