@@ -338,19 +338,17 @@ def test_replay_missing_inputs_exit_2(tmp_path, capsys):
         assert "Traceback" not in err
 
 
-def test_replay_routes_and_fences_noted_not_used(tmp_path, capsys):
-    """Given route/fence files are checked and a note says they are not used yet."""
+def test_replay_bad_routes_file_is_an_error(tmp_path, capsys):
+    """A route file that is not GeoJSON routes stops the replay, naming the file."""
     log = tmp_path / "feed.jsonl"
     log.write_text("")
     routes = tmp_path / "routes.json"
     routes.write_text("{}")
     out = tmp_path / "o"
     assert main(["replay", str(log), "--network", str(NETWORK), "--out", str(out),
-                 "--routes", str(routes)]) == 0
+                 "--routes", str(routes)]) == 2
     err = capsys.readouterr().err
-    assert f"note: --routes {routes}" in err and "not used" in err
-    assert (out / "assignments.jsonl").read_text() == ""
-    assert json.loads((out / "summary.json").read_text())["messages"] == 0
+    assert f"{routes}: expected a GeoJSON FeatureCollection or Feature" in err
 
 
 def test_replay_broken_log_line_is_an_error(tmp_path, capsys):

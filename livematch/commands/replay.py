@@ -12,7 +12,10 @@ the end of the log, and writes into DIR:
 * ``commits.jsonl``: ``vehicle``, ``fixes`` (list of ``{time, lat, lon, way, from_node,
   to_node, offset_m}``), ``path`` (connected sequence of ``{way, from_node, to_node}``);
 * ``rejects.jsonl``: ``at``, ``topic``, ``reason``, ``detail``, ``payload``;
-* ``alerts.jsonl``: alert records (none until route and fence monitors exist);
+* ``alerts.jsonl``: alert records: ``vehicle``, ``time``, ``kind`` and the facts of that
+  kind (docs/alerts.md). After every message the pipeline's stale watch is ticked with
+  that message's ``at`` (:meth:`~livematch.pipeline.Pipeline.tick`), as the daemon does
+  with its clock;
 * ``summary.json``: counts (see :func:`summarize`).
 
 Records keep the field order of the contract and are written compactly, one per line.
@@ -20,7 +23,11 @@ The files depend only on the inputs, so two runs give byte-identical files; the 
 time therefore goes to stderr, never into ``summary.json``.
 
 ``--config`` takes the daemon's TOML file; its ``[matcher]`` section (and the topic
-filter and limits of ``[mqtt]``/``[feed]``) apply. Environment overrides
+filter and limits of ``[mqtt]``/``[feed]``, the ``[alerts]`` section and the
+``inputs.routes`` / ``inputs.fences`` files when the config knows them) apply.
+``--routes`` (GeoJSON lines or a GTFS feed, :mod:`livematch.mapdata.routes`) and
+``--fences`` (GeoJSON polygons, :mod:`livematch.mapdata.fences`) override the files of
+the config. Environment overrides
 (``LIVEMATCH__...``) are deliberately ignored here, so a replay depends only on files.
 """
 
@@ -37,13 +44,15 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import IO, Any
 
+from livematch.core.monitors import AlertSettings
 from livematch.core.settings import MatchSettings
 from livematch.errors import BadConfigError, LivematchError
 from livematch.feed.decode import FeedLimits
 from livematch.feed.replaylog import read_replay_log
 from livematch.pipeline import Output, Pipeline, matcher_settings_from_mapping
 
-__all__ = ["OUTPUT_FILES", "load_replay_config", "register", "replay", "summarize"]
+__all__ = ["OUTPUT_FILES", "load_alert_config", "load_replay_config", "register", "replay",
+           "summarize"]
 
 #: The files ``replay`` writes, by output kind (plus ``summary.json``).
 OUTPUT_FILES = {
@@ -69,8 +78,9 @@ def register(subparsers: Any) -> None:
                         help="folder to write the outputs into (created if missing)")
     parser.add_argument("--config", metavar="FILE",
                         help="daemon TOML configuration; its [matcher] section applies")
-    parser.add_argument("--routes", metavar="FILE", help="route file (not used yet)")
-    parser.add_argument("--fences", metavar="FILE", help="geofence file (not used yet)")
+    parser.add_argument("--routes", metavar="FILE",
+                        help="routes: GeoJSON lines or a GTFS feed (.zip or folder)")
+    parser.add_argument("--fences", metavar="FILE", help="geofences: GeoJSON polygons")
     parser.set_defaults(func=_run)
 
 
@@ -94,6 +104,27 @@ def load_replay_config(path: str | None) -> tuple[MatchSettings, FeedLimits, str
         return _matcher_only(Path(path)), FeedLimits(), ""
     cfg = config.load_config(path, env={})
     return cfg.matcher, cfg.feed, cfg.inputs.network
+
+
+def load_alert_config(path: str | None) -> tuple[AlertSettings, str, str]:
+    """Alert settings and the ``inputs.routes`` / ``inputs.fences`` files of a config.
+
+    Reads what the daemon's loader provides (an ``alerts`` section once it maps one);
+    defaults otherwise, and for no file.
+    """
+    if path is None:
+        return AlertSettings(), "", ""
+    try:
+        config = importlib.import_module("livematch.config")
+    except ModuleNotFoundError as exc:
+        if exc.name != "livematch.config":
+            raise
+        return AlertSettings(), "", ""
+    cfg = config.load_config(path, env={})
+    alerts = getattr(cfg, "alerts", None)
+    inputs = cfg.inputs
+    return (alerts if isinstance(alerts, AlertSettings) else AlertSettings(),
+            getattr(inputs, "routes", "") or "", getattr(inputs, "fences", "") or "")
 
 
 def _matcher_only(path: Path) -> MatchSettings:
@@ -128,6 +159,7 @@ def replay(log: str | Path, pipeline: Pipeline, out_dir: str | Path) -> dict[str
     try:
         for entry in read_replay_log(log):
             _write(streams, pipeline.handle(entry.topic, entry.payload, entry.at))
+            _write(streams, pipeline.tick(entry.at))
         _write(streams, pipeline.flush())
     finally:
         for stream in streams.values():
@@ -197,24 +229,29 @@ def _need_file(path: str | None, flag: str) -> None:
 def _run(args: argparse.Namespace) -> int:
     _need_file(args.log, "LOG")
     _need_file(args.config, "--config")
-    _need_file(args.routes, "--routes")
+    if args.routes is not None and not Path(args.routes).exists():
+        raise LivematchError(f"--routes {args.routes}: no such file or folder")
     _need_file(args.fences, "--fences")
     settings, limits, configured_network = load_replay_config(args.config)
+    alert_settings, routes_path, fences_path = load_alert_config(args.config)
+    routes_path = args.routes or routes_path
+    fences_path = args.fences or fences_path
     network_path = args.network or configured_network
     if not network_path:
         raise LivematchError("replay needs --network NET (or inputs.network in --config)")
     _need_file(network_path, "--network")
-    for flag, value in (("--routes", args.routes), ("--fences", args.fences)):
-        if value is not None:
-            print(f"livematch: note: {flag} {value}: route and geofence alerts are not "
-                  "implemented yet; the file is checked but not used", file=sys.stderr)
 
+    from livematch.mapdata.fences import read_fences
     from livematch.mapdata.netfile import open_network  # heavy import, only when run
+    from livematch.mapdata.routes import load_routes
 
     started = time.perf_counter()
     network = open_network(network_path)
+    routes = load_routes(routes_path, network) if routes_path else None
+    fences = read_fences(fences_path, network.projection) if fences_path else None
     loaded = time.perf_counter()
-    pipeline = Pipeline(network, settings, limits=limits)
+    pipeline = Pipeline(network, settings, limits=limits, routes=routes, fences=fences,
+                        alerts=alert_settings)
     summary = replay(args.log, pipeline, args.out)
     done = time.perf_counter()
     rate = summary["messages"] / (done - loaded) if done > loaded else 0.0
