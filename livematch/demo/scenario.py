@@ -70,7 +70,8 @@ Example (a short, small run):
     >>> [v.id for v in s.vehicles]
     ['bus-11', 'van-1']
     >>> msgs = s.messages()
-    >>> msgs[0].topic, sorted(msgs[0].payload)
+    >>> first = next(m for m in msgs if m.payload["vehicle"] == "bus-11")
+    >>> first.topic, sorted(first.payload)
     ('fleet/bus-11/position', ['accuracy', 'lat', 'lon', 'route', 'time', 'vehicle'])
 """
 
@@ -181,14 +182,16 @@ class BusLine:
 class Fence:
     """A geofence: ``kind`` is ``"customer"``, ``"depot"`` or ``"zone"`` (metres polygon).
 
-    ``vehicle`` names the van whose zone or customer it is (None for the depot).
+    ``vehicles`` are the vans it concerns: the van whose zone or customer it is, every
+    van for the depot. In GeoJSON they become ``properties.vehicles``, which
+    :mod:`livematch.mapdata.fences` reads as the vehicles the fence watches.
     """
 
     id: str
     name: str
     kind: str
     polygon: shapely.Polygon
-    vehicle: str | None
+    vehicles: tuple[str, ...]
 
 
 @dataclass(frozen=True)
@@ -337,7 +340,7 @@ class Scenario:
             features.append({
                 "type": "Feature", "id": fence.id,
                 "properties": {"name": fence.name, "kind": fence.kind,
-                               "vehicle": fence.vehicle},
+                               "vehicles": list(fence.vehicles)},
                 "geometry": {"type": "Polygon",
                              "coordinates": [_lonlat_list(self.town, ring)]},
             })
@@ -572,7 +575,8 @@ def build_scenario(
     stop_vertex = {p.name: p.vertex for p in town.stops()}
     centre = town.centre
 
-    fences: list[Fence] = [Fence("depot", "Larkmoor Depot", "depot", town.depot_area, None)]
+    fences: list[Fence] = [Fence("depot", "Larkmoor Depot", "depot", town.depot_area,
+                                  tuple(f"van-{z + 1}" for z in range(vans)))]
     zones = _zone_polygons()
     tracks: list[Track] = []
     incidents: list[dict[str, Any]] = []
@@ -599,7 +603,7 @@ def build_scenario(
         zid, zname, x0, x1 = ZONES[z]
         vehicle = Vehicle(f"van-{z + 1}", "van", None, zid, van_interval_s)
         zone = zones[zid]
-        fences.append(Fence(zid, zname, "zone", zone, vehicle.id))
+        fences.append(Fence(zid, zname, "zone", zone, (vehicle.id,)))
         inside = _inside_segments(net, zone)
         zgraph = _graph(net, inside)
         core = max(nx.strongly_connected_components(zgraph), key=len)
@@ -641,7 +645,7 @@ def build_scenario(
             road = net.road_name(int(net.in_segments(v)[0]))
             fences.append(Fence(f"cust-{z + 1}{j + 1}", f"{road} {number}", "customer",
                                 shapely.box(*(net.node_xy[v] - 25.0), *(net.node_xy[v] + 25.0)),
-                                vehicle.id))
+                                (vehicle.id,)))
         plans.append((vehicle, vpath, dwell_at, 0.0, 10.0 + 45.0 * ((z + 2) % 4),
                       float(rng.uniform(0.85, 1.0))))
 
