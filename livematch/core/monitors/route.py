@@ -284,8 +284,7 @@ class RouteMonitor:
             ctx = StepContext(view, s.eps_route_m, x0, y0, fix.x, fix.y, self.seq, fix.t,
                               step_m, 0.02, 0.1, 0.0)
             window.step(net, ctx)
-        if self.state != "on":
-            self.trail_m += step_m
+        self.trail_m += step_m  # reset at every on-route fix (the anchor)
         alerts: list[Alert] = []
         if self.fwd.live:
             self._near(fix, alerts)
@@ -294,9 +293,16 @@ class RouteMonitor:
         return alerts
 
     def _backwards(self) -> bool:
-        """Whether the fixes are following the route backwards (forward sweep died since)."""
-        return (self.fwd.start_t > self.rev.start_t
-                and self.rev.followed() >= self.settings.eps_route_m)
+        """Whether the fixes are following the route backwards.
+
+        Either the forward sweep died while the reversed one kept following for eps, or
+        both windows are young and the reversed one followed clearly farther (eps / 2),
+        which tells a vehicle starting backwards from one standing still.
+        """
+        eps = self.settings.eps_route_m
+        rev, fwd = self.rev.followed(), self.fwd.followed()
+        return ((self.fwd.start_t > self.rev.start_t and rev >= eps)
+                or rev - fwd >= eps / 2.0)
 
     def _near(self, fix: Fix, alerts: list[Alert]) -> None:
         s = self.settings

@@ -1,0 +1,348 @@
+"""Alert monitors in the core: route adherence, geofences, off-network and staleness."""
+
+from __future__ import annotations
+
+import itertools
+import json
+import math
+
+import numpy as np
+import pytest
+import shapely
+
+from livematch.core.fix import Fix
+from livematch.core.geometry import Projection
+from livematch.core.monitors import (
+    AlertSettings,
+    Fence,
+    FenceMonitor,
+    FenceSet,
+    OffNetworkMonitor,
+    Route,
+    RouteChain,
+    RouteMonitor,
+    StaleWatch,
+    VehicleAlerts,
+)
+
+PROJ = Projection.local(24.94, 60.17)
+SETTINGS = AlertSettings()
+
+
+def fix(t: float, x: float, y: float, vehicle: str = "v") -> Fix:
+    """A fix at (x, y) metres with its WGS84 position."""
+    lon, lat = PROJ.to_lonlat(x, y)
+    return Fix(vehicle, float(t), round(float(lon), 7), round(float(lat), 7), float(x), float(y))
+
+
+def chain(points: list[tuple[float, float]], route_id: str = "r") -> RouteChain:
+    return RouteChain(Route(route_id, np.array(points, dtype=float)), PROJ)
+
+
+def along(points: list[tuple[float, float]], step: float) -> list[tuple[float, float]]:
+    """Points every ``step`` metres along a polyline (its last point included)."""
+    out: list[tuple[float, float]] = []
+    for (ax, ay), (bx, by) in itertools.pairwise(points):
+        length = math.hypot(bx - ax, by - ay)
+        n = max(1, round(length / step))
+        out.extend((ax + (bx - ax) * k / n, ay + (by - ay) * k / n) for k in range(n))
+    out.append(points[-1])
+    return out
+
+
+def feed(monitor: RouteMonitor, points: list[tuple[float, float]], t0: float = 0.0
+         ) -> list[tuple[int, str, dict]]:
+    """Feed one fix per second; (index, kind, facts) of every alert."""
+    out = []
+    for i, (x, y) in enumerate(points):
+        out.extend((i, a.alert_kind, a.facts) for a in monitor.update(fix(t0 + i, x, y)))
+    return out
+
+
+L_ROUTE = [(0.0, 0.0), (1000.0, 0.0), (1000.0, 1000.0)]
+
+
+# ------------------------------------------------------------------------ route
+def test_route_chain_progress_and_loop_detection():
+    """Progress is arc length from the start; a route ending on its start is a cycle."""
+    c = chain(L_ROUTE)
+    assert (c.length, c.closed) == (2000.0, False)
+    assert c.progress(1, 0.5) == 1500.0
+    assert c.progress(0, 0.25, backward=True) == 1750.0  # reversed chain starts at the end
+    loop = chain([(0, 0), (400, 0), (400, 400), (0, 400), (0, 0)])
+    assert (loop.closed, loop.length, loop.forward.n_segments) == (True, 1600.0, 4)
+
+
+def test_route_monitor_on_route_no_alert_and_progress():
+    """Driving the route at 10 m/s gives no alert and progress equal to the distance driven."""
+    m = RouteMonitor("r", chain(L_ROUTE), SETTINGS)
+    assert feed(m, along(L_ROUTE, 10.0)[:150]) == []
+    assert m.state == "on"
+    assert m.progress_m == pytest.approx(1490.0)
+
+
+def test_route_monitor_detour_off_and_back():
+    """A detour 300 m off the route: one off_route after the persistence, one on_route."""
+    pts = along([(0, 0), (500, 0), (500, 300), (1000, 300), (1000, 700)], 10.0)
+    m = RouteMonitor("r", chain(L_ROUTE), SETTINGS)
+    alerts = feed(m, pts)
+    assert [k for _, k, _ in alerts] == ["off_route", "on_route"]
+    (i_off, _, off), (i_on, _, on) = alerts
+    # Last on-route fix: (500, 40), 40 m from the route = eps; first fix beyond: (500, 50)
+    # at index 55; alert 10 s later.
+    assert off["last_on_route_time"] == 54.0 and off["last_progress_m"] == 500.0
+    assert i_off == 65 and off["distance_m"] == 150.0
+    lon, lat = PROJ.to_lonlat(500.0, 0.0)
+    assert off["route_lat"] == pytest.approx(float(lat), abs=1e-7)
+    assert off["route_lon"] == pytest.approx(float(lon), abs=1e-7)
+    # Back within 40 m of the route: first near fix (960, 300);
+    # on_route after 5 near fixes. Duration: from the last on-route fix to that first fix.
+    first_near = next(i for i, (x, y) in enumerate(pts) if i > i_off and x >= 960.0)
+    assert i_on == first_near + SETTINGS.on_route_fixes - 1
+    assert on["duration_s"] == first_near - 54
+    assert on["length_m"] == pytest.approx(260.0 + 460.0, abs=0.05)
+    assert on["progress_m"] == pytest.approx(1000.0 + 300.0, abs=0.05)  # at (1000, 300)
+    assert m.state == "on"
+
+
+def test_route_monitor_hysteresis_jitter_near_threshold():
+    """Fixes jittering across eps beside the route, moving or standing, never alert."""
+    # Moving parallel to the route 36..44 m away: the run beyond 40 m never lasts 10 s.
+    offsets = [44.0, 44.0, 43.0, 36.0, 37.0] * 60
+    pts = [(5.0 * i, dy) for i, dy in enumerate(offsets)]
+    assert feed(RouteMonitor("r", chain([(0, 0), (2000, 0)]), SETTINGS), pts) == []
+    # Standing 45-55 m off the route for 10 minutes: beyond eps but never 50 m from where
+    # it stood, so no alert (the distance half of the persistence).
+    rng = np.random.default_rng(4)
+    still = [(300.0 + rng.normal(0, 3), 50.0 + rng.normal(0, 3)) for _ in range(600)]
+    m = RouteMonitor("r", chain([(0, 0), (2000, 0)]), SETTINGS)
+    assert feed(m, [(300.0, 30.0)] * 10 + still) == []
+    # The same parallel drive steadily 45 m away is a real off-route: alert after 10 s.
+    steady = [(5.0 * i, 45.0) for i in range(40)]
+    alerts = feed(RouteMonitor("r", chain([(0, 0), (2000, 0)]), SETTINGS), steady)
+    assert [(i, k) for i, k, _ in alerts] == [(10, "off_route")]
+
+
+def test_route_monitor_single_outliers_do_not_alert():
+    """Isolated fixes 200 m away (outliers) break the sweep but never declare off-route."""
+    pts = [(10.0 * i, 200.0 if i % 7 == 3 else 0.0) for i in range(180)]
+    assert feed(RouteMonitor("r", chain([(0, 0), (2000, 0)]), SETTINGS), pts) == []
+
+
+def test_route_monitor_wrong_direction():
+    """Driving the route backwards: one wrong_direction alert after wrong_way_m metres."""
+    pts = along(list(reversed(L_ROUTE)), 10.0)[:60]
+    m = RouteMonitor("r", chain(L_ROUTE), SETTINGS)
+    alerts = feed(m, pts)
+    assert [(i, k) for i, k, _ in alerts] == [(10, "wrong_direction")]
+    facts = alerts[0][2]
+    assert facts["backwards_m"] == 100.0 and facts["progress_m"] == 1900.0
+    assert m.state == "unknown"  # never confirmed on route while going backwards
+
+
+def test_route_monitor_standing_still_is_not_wrong_direction():
+    """A vehicle standing on the route with 5 m jitter for 10 min: no alert of any kind."""
+    rng = np.random.default_rng(7)
+    pts = [(500.0 + rng.normal(0, 5), rng.normal(0, 5)) for _ in range(600)]
+    assert feed(RouteMonitor("r", chain(L_ROUTE), SETTINGS), pts) == []
+
+
+def test_route_monitor_loop_route_round_and_round():
+    """A closed loop driven three times: no alert, progress wraps at the loop length."""
+    square = [(0, 0), (400, 0), (400, 400), (0, 400), (0, 0)]
+    pts = along(square, 10.0)[:-1] * 3 + [(0.0, 0.0), (10.0, 0.0), (20.0, 0.0)]
+    m = RouteMonitor("loop", chain(square, "loop"), SETTINGS)
+    assert feed(m, pts) == []
+    assert m.progress_m == pytest.approx(20.0)
+    assert m.fwd.followed() == pytest.approx(3 * 1600.0 + 20.0)
+
+
+def test_route_monitor_out_and_back_route_overlapping_itself():
+    """A route out along a street and back on it: both halves are on route, no alert."""
+    out_back = [(0, 0), (1000, 0), (0, 0.5)]
+    pts = along([(0, 0), (1000, 0), (0, 0)], 10.0)
+    m = RouteMonitor("ob", chain(out_back, "ob"), SETTINGS)
+    assert feed(m, pts) == []
+    assert m.progress_m == pytest.approx(2000.0, abs=1.0)
+    # Starting on the way back (free start anywhere) is not wrong direction either.
+    m = RouteMonitor("ob", chain(out_back, "ob"), SETTINGS)
+    assert feed(m, along([(900, 0), (100, 0)], 10.0)) == []
+    assert m.progress_m == pytest.approx(1900.0, abs=1.0)
+
+
+def test_route_monitor_state_round_trip_continues_exactly():
+    """A monitor restored from its JSON state mid-detour gives the same alerts after."""
+    pts = along([(0, 0), (500, 0), (500, 300), (1000, 300), (1000, 700)], 10.0)
+    c = chain(L_ROUTE)
+    a = RouteMonitor("r", c, SETTINGS)
+    feed(a, pts[:60])
+    b = RouteMonitor.from_state(json.loads(json.dumps(a.to_state())), c, SETTINGS)
+    rest = [(i + 60, x, y) for i, (x, y) in enumerate(pts[60:])]
+    out_a = [x.facts for t, px, py in rest for x in a.update(fix(t, px, py))]
+    out_b = [x.facts for t, px, py in rest for x in b.update(fix(t, px, py))]
+    assert out_a == out_b and len(out_a) == 2
+    assert a.to_state() == b.to_state()
+
+
+def test_route_chain_refuses_degenerate_route():
+    """A route of one distinct point is refused with its id named."""
+    with pytest.raises(ValueError, match="route 'x' needs at least two distinct points"):
+        chain([(3.0, 3.0), (3.0, 3.0)], "x")
+
+
+# ----------------------------------------------------------------------- fences
+def _shapes() -> list[shapely.Geometry]:
+    concave = shapely.Polygon([(0, 0), (300, 0), (300, 300), (150, 120), (0, 300)])
+    holed = shapely.Polygon([(400, 0), (700, 0), (700, 300), (400, 300)],
+                            [[(500, 100), (600, 100), (600, 200), (500, 200)]])
+    multi = shapely.MultiPolygon([shapely.box(0, 400, 100, 500), shapely.box(200, 400, 300, 500)])
+    return [concave, holed, multi]
+
+
+def test_fence_membership_matches_shapely_predicates():
+    """With no margins, inside iff shapely says the polygon covers the point (reference:
+    shapely's own ``covers`` predicate, GEOS), boundary points included."""
+    shapes = _shapes()
+    fences = FenceSet([Fence(f"f{i}", g) for i, g in enumerate(shapes)],
+                      AlertSettings(fence_inner_m=0.0, fence_outer_m=0.0, fence_fixes=1))
+    rng = np.random.default_rng(11)
+    points = [tuple(p) for p in rng.uniform(-50, 750, (600, 2))]
+    points += [tuple(c) for g in shapes for c in shapely.get_coordinates(g)]  # on boundaries
+    points += [(150.0, 120.0), (550.0, 150.0), (150.0, 450.0)]  # reflex vertex, hole, gap
+    for k, (x, y) in enumerate(points):
+        m = FenceMonitor()
+        m.update(fences, fix(0.0, x, y), x, y, ())
+        expected = [f"f{i}" for i, g in enumerate(shapes) if g.covers(shapely.Point(x, y))]
+        assert m.inside() == expected, (k, x, y)
+
+
+def test_fence_margins_match_shapely_distances():
+    """Entering needs the point >= inner margin inside, leaving > outer margin outside,
+    checked with shapely's distance to the boundary (reference: GEOS distance)."""
+    poly = shapely.Polygon([(0, 0), (300, 0), (300, 300), (150, 120), (0, 300)])
+    settings = AlertSettings(fence_inner_m=15.0, fence_outer_m=20.0, fence_fixes=1)
+    fences = FenceSet([Fence("f", poly)], settings)
+    rng = np.random.default_rng(3)
+    checked = 0
+    for x, y in rng.uniform(-60, 360, (800, 2)):
+        p = shapely.Point(x, y)
+        inside, edge = poly.covers(p), poly.exterior.distance(p)
+        if abs(edge - 15.0) < 0.5 or abs(edge - 20.0) < 0.5:
+            continue  # buffers approximate arcs by chords; stay clear of the margins
+        m = FenceMonitor()
+        entered = [a.alert_kind for a in m.update(fences, fix(0, x, y), x, y, ())]
+        assert (entered == ["fence_enter"]) == (inside and edge >= 15.0)
+        # Start inside (from the centre of the fence), then step to the point.
+        m = FenceMonitor()
+        m.update(fences, fix(0, 150, 50), 150, 50, ())
+        left = [a.alert_kind for a in m.update(fences, fix(1, x, y), x, y, ())]
+        assert (left == ["fence_exit"]) == (not inside and edge > 20.0)
+        checked += 1
+    assert checked > 700
+
+
+def test_fence_standing_on_boundary_does_not_flap():
+    """An hour standing on the boundary with 5 m correlated jitter and outliers: at most
+    one enter and no exit with the default margins; many flaps without them."""
+    from livematch.sim import gauss_markov
+
+    rng = np.random.default_rng(5)
+    err = gauss_markov(rng, 3600, 5.0, 45.0, 1.0, 2)
+    outlier = rng.random(3600) < 0.01
+    err[outlier] += rng.uniform(-150, 150, (int(outlier.sum()), 2))
+    poly = shapely.box(0, 0, 200, 200)
+
+    def kinds(settings: AlertSettings) -> list[str]:
+        fences, m, out = FenceSet([Fence("f", poly)], settings), FenceMonitor(), []
+        for t, (ex, ey) in enumerate(err):
+            x, y = 200.0 + ex, 100.0 + ey
+            out += [a.alert_kind for a in m.update(fences, fix(t, x, y), x, y, ())]
+        return out
+
+    steady = kinds(AlertSettings(fence_dwell_s=1e9))
+    assert steady.count("fence_exit") == 0 and steady.count("fence_enter") <= 1
+    bare = kinds(AlertSettings(fence_inner_m=0.0, fence_outer_m=0.0, fence_fixes=1,
+                               fence_dwell_s=1e9))
+    assert bare.count("fence_enter") > 10
+
+
+def test_fence_enter_dwell_exit_and_filters():
+    """Enter after two fixes inside, one dwell after dwell_s, exit with the time inside;
+    a fence for a group ignores other vehicles."""
+    fences = FenceSet([Fence("depot", shapely.box(0, 0, 100, 100), "Depot", dwell_s=30.0),
+                       Fence("night", shapely.box(0, 0, 100, 100), groups=frozenset({"n"}))],
+                      SETTINGS)
+    m = FenceMonitor()
+    track = [(-50.0, 50.0)] * 3 + [(50.0, 50.0)] * 60 + [(200.0, 50.0)] * 3
+    out = []
+    for t, (x, y) in enumerate(track):
+        out += [(t, a.alert_kind, a.facts) for a in m.update(fences, fix(t, x, y), x, y, ())]
+    assert [(t, k) for t, k, _ in out] == [(4, "fence_enter"), (33, "fence_dwell"),
+                                          (64, "fence_exit")]
+    assert out[0][2]["fence"] == "depot" and out[0][2]["name"] == "Depot"
+    assert out[1][2]["duration_s"] == 30.0 and out[2][2]["duration_s"] == 61.0
+    m = FenceMonitor()
+    got = [a.facts["fence"] for t in range(3) for a in m.update(fences, fix(t, 50, 50), 50, 50,
+                                                                 ["n"])]
+    assert got == ["depot", "night"]
+
+
+def test_fence_set_refuses_bad_fences():
+    """Repeated ids and non-polygons are refused, naming the fence."""
+    with pytest.raises(ValueError, match="fence id 'a' is used twice"):
+        FenceSet([Fence("a", shapely.box(0, 0, 1, 1))] * 2, SETTINGS)
+    with pytest.raises(ValueError, match="fence 'l' must be a non-empty Polygon"):
+        FenceSet([Fence("l", shapely.LineString([(0, 0), (1, 1)]))], SETTINGS)
+
+
+# --------------------------------------------------------------------- presence
+def test_off_network_after_persistence_and_back():
+    """off_network after off_network_s without a road; on_network after 3 fixes with one."""
+    m = OffNetworkMonitor()
+    out = []
+    for t in range(100):
+        has_road = t < 10 or t >= 60
+        out += [(t, a.alert_kind, a.facts) for a in m.update(fix(t, 0, 0), has_road, SETTINGS)]
+    assert [(t, k) for t, k, _ in out] == [(40, "off_network"), (62, "on_network")]
+    assert out[0][2]["since"] == 10.0 and out[0][2]["last_on_network_time"] == 9.0
+    assert out[1][2]["duration_s"] == 52.0
+
+
+def test_stale_watch_once_per_silence():
+    """One stale per silence (judged on receive time), one fresh when fixes resume."""
+    w = StaleWatch(at=10.0, t=9.0, lat=60.0, lon=24.0)
+    assert w.check("v", 130.0, SETTINGS) == []
+    stale = w.check("v", 130.5, SETTINGS)
+    assert [a.alert_kind for a in stale] == ["stale"] and stale[0].t == 130.5
+    assert w.check("v", 500.0, SETTINGS) == []
+    fresh = w.seen(fix(600.0, 0, 0), 601.0)
+    assert [(a.alert_kind, a.facts["silent_s"]) for a in fresh] == [("fresh", 591.0)]
+    assert w.seen(fix(601.0, 0, 0), 602.0) == []
+
+
+def test_vehicle_alerts_state_round_trip():
+    """Every monitor of a vehicle survives a JSON round trip unchanged."""
+    c = chain(L_ROUTE)
+    fences = FenceSet([Fence("f", shapely.box(-100, -100, 100, 100))], SETTINGS)
+    a = VehicleAlerts()
+    a.set_route("r", c, SETTINGS)
+    for t in range(20):
+        a.seen(fix(t, 10.0 * t, 0), t + 0.5)
+        a.update(fix(t, 10.0 * t, 0), (10.0 * t, 0.0), t % 5 != 0, fences, (), SETTINGS)
+    state = json.loads(json.dumps(a.to_state()))
+    b = VehicleAlerts.from_state(state, lambda rid: c if rid == "r" else None, SETTINGS)
+    assert b.to_state() == a.to_state()
+    gone = VehicleAlerts.from_state(state, lambda rid: None, SETTINGS)
+    assert gone.route is None and gone.requested == "r"
+
+
+def test_alert_settings_problems():
+    """Invalid values are listed by key."""
+    bad = AlertSettings(eps_route_m=0.0, on_route_fixes=0, wrong_way_m=50.0,
+                        fence_position="gps", fence_inner_m=-1.0)
+    keys = [k for k, _ in bad.problems()]
+    assert keys == ["eps_route_m", "fence_inner_m", "on_route_fixes", "fence_position"]
+    assert ("wrong_way_m", "must exceed 2 x eps_route_m (80.0), got 50.0") in \
+        AlertSettings(wrong_way_m=50.0).problems()
+    keys = AlertSettings.keys()
+    assert keys[0] == "eps_route_m" and "stale_s" in keys
