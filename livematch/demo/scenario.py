@@ -593,6 +593,8 @@ def build_scenario(
             if line.id == "L2" and n == 0:
                 phase = _phase_before_closure(net, loop, closed, 1300.0)
             path, pos = _rotate(net, loop, phase, repeat=1 + int(seconds * 16.0 / loop_len))
+            while path[0] in closed:  # a bus starting inside the closed block leaves it
+                path, pos = path[1:], 0.0
             path = _detour(net, path, closed, open_graph)
             dwell = {stop_vertex[s]: float(rng.uniform(15.0, 30.0)) for s in line.stops}
             plans.append((vehicle, path, _stops_on(net, path, dwell), pos, 0.0,
