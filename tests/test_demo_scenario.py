@@ -14,7 +14,7 @@ from pyproj import Geod
 
 from livematch.cli import main
 from livematch.demo.samples import LOG_NAME, SAMPLE_FILES
-from livematch.demo.scenario import OFF_ROUTE_M, TRUTH_FORMAT, build_scenario
+from livematch.demo.scenario import LIVE_FLEET, OFF_ROUTE_M, TRUTH_FORMAT, build_scenario
 from livematch.feed.replaylog import read_replay_log
 from livematch.mapdata.fences import read_fences
 from livematch.mapdata.netfile import open_network
@@ -57,6 +57,29 @@ def test_scenario_same_seed_same_output():
     assert json.dumps(a.messages()) == json.dumps(b.messages())
     assert json.dumps(a.truth_records()) == json.dumps(b.truth_records())
     assert json.dumps(a.messages()) != json.dumps(c.messages())
+
+
+def test_scenario_live_fleet_twenty_minutes():
+    """The live demo's size (12 vehicles, 20 min) builds; messages come in receive order."""
+    big = build_scenario(buses=LIVE_FLEET, duration_s=1200.0)
+    assert len(big.vehicles) == 12
+    messages = big.messages()
+    assert [m.at for m in messages] == sorted(m.at for m in messages)
+    per_vehicle = {m.payload["vehicle"] for m in messages}
+    assert len(per_vehicle) == 12
+    kinds = big.summary()["incidents"]
+    assert kinds["detour"] >= 2 and kinds["silent"] == 1 and kinds["zone_exit"] == 1
+
+
+def test_demo_docstring_examples_hold():
+    """The worked examples in the demo modules' docstrings hold (run as doctests)."""
+    import doctest
+
+    from livematch.demo import scenario, town
+
+    for module in (town, scenario):
+        result = doctest.testmod(module, raise_on_error=False)
+        assert result.failed == 0 and result.attempted > 0, module.__name__
 
 
 def test_scenario_bad_arguments_raise():
