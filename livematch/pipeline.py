@@ -296,8 +296,8 @@ class Pipeline:
             except ValueError:
                 doc = text  # a bare route id
             route = doc.get("route") if isinstance(doc, dict) else doc
-            if isinstance(route, int | float) and not isinstance(route, bool):
-                route = str(route) if not isinstance(route, float) else None
+            if isinstance(route, int) and not isinstance(route, bool):
+                route = str(route)  # a bare numeric id: 550 means "550"
             if route is not None and not (isinstance(route, str) and route):
                 return [self._reject(topic, payload, at, "bad_type",
                                      f"control message route must be a non-empty string or "
