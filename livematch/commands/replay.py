@@ -29,6 +29,10 @@ filter and limits of ``[mqtt]``/``[feed]``, the ``[alerts]`` section and the
 ``--fences`` (GeoJSON polygons, :mod:`livematch.mapdata.fences`) override the files of
 the config. Environment overrides
 (``LIVEMATCH__...``) are deliberately ignored here, so a replay depends only on files.
+
+Lab mode (several ``--config``, ``--truth``, ``--report``, ``--speed``, ``--publish``):
+compare settings side by side, score against a truth file, write an HTML report, pace
+by the log's receive times or publish the log into a broker (:mod:`livematch.lab.run`).
 """
 
 from __future__ import annotations
@@ -49,6 +53,7 @@ from livematch.core.settings import MatchSettings
 from livematch.errors import BadConfigError, LivematchError
 from livematch.feed.decode import FeedLimits
 from livematch.feed.replaylog import read_replay_log
+from livematch.lab.cli import add_lab_arguments, lab_wanted
 from livematch.pipeline import Output, Pipeline, matcher_settings_from_mapping
 
 __all__ = ["OUTPUT_FILES", "load_alert_config", "load_replay_config", "register", "replay",
@@ -74,13 +79,15 @@ def register(subparsers: Any) -> None:
     parser.add_argument("--network", metavar="NET",
                         help="road map (.osm.pbf, .osm, .geojson) or compiled .lmnet "
                              "(default: inputs.network of --config)")
-    parser.add_argument("--out", required=True, metavar="DIR",
+    parser.add_argument("--out", metavar="DIR",
                         help="folder to write the outputs into (created if missing)")
-    parser.add_argument("--config", metavar="FILE",
-                        help="daemon TOML configuration; its [matcher] section applies")
+    parser.add_argument("--config", metavar="FILE", action="append",
+                        help="daemon TOML configuration; its [matcher] section applies; "
+                             "repeat it to compare settings (outputs in DIR/<file stem>/)")
     parser.add_argument("--routes", metavar="FILE",
                         help="routes: GeoJSON lines or a GTFS feed (.zip or folder)")
     parser.add_argument("--fences", metavar="FILE", help="geofences: GeoJSON polygons")
+    add_lab_arguments(parser)
     parser.set_defaults(func=_run)
 
 
@@ -227,6 +234,13 @@ def _need_file(path: str | None, flag: str) -> None:
 
 
 def _run(args: argparse.Namespace) -> int:
+    if lab_wanted(args):  # several settings, truth, report, pacing, publishing
+        from livematch.lab.run import run_lab  # heavy imports (matplotlib) only when used
+
+        return run_lab(args)
+    args.config = args.config[0] if args.config else None
+    if not args.out:
+        raise LivematchError("replay needs --out DIR")
     _need_file(args.log, "LOG")
     _need_file(args.config, "--config")
     if args.routes is not None and not Path(args.routes).exists():
