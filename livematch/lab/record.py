@@ -230,7 +230,7 @@ class RecordingTap:
             if at - self._flushed_at >= self.flush_s:
                 self.flush()
                 self._flushed_at = at
-        except (OSError, LivematchError) as exc:
+        except (OSError, ValueError, LivematchError) as exc:  # ValueError: closed file
             self.errors += 1
             self._abandon()
             if at - self._warned_at >= _WARN_EVERY_S:
