@@ -23,7 +23,10 @@ state machine:
   length.
 * **wrong direction**: the reversed-route sweep has followed the fixes for
   ``wrong_way_m`` metres while the forward sweep died in that time (it must: a Fréchet
-  match is monotone, so moving backwards more than 2 eps kills it).
+  match is monotone, so moving backwards more than 2 eps kills it) and has not followed
+  them for eps / 2 since. Where two parts of a route run side by side in opposite
+  directions (within eps), driving one forward is driving the other backwards; the
+  forward sweep then follows too, and that is not wrong direction.
 
 Units: metres and seconds; alert positions in WGS84 (the fix's own lat/lon).
 """
@@ -317,7 +320,8 @@ class RouteMonitor:
             self.rejoin = (fix.t, self.trail_m)
         backwards = self._backwards()
         if (not self.wrong and self.rev.followed() >= s.wrong_way_m
-                and self.fwd.start_t > self.rev.start_t):
+                and self.fwd.start_t > self.rev.start_t
+                and self.fwd.followed() < s.eps_route_m / 2.0):
             self.wrong = True
             rbest = self.rev.best()
             assert rbest is not None
