@@ -85,6 +85,7 @@ __all__ = [
     "Output",
     "Pipeline",
     "UnknownVehicleError",
+    "alert_settings_from_mapping",
     "matcher_settings_from_mapping",
 ]
 
@@ -615,6 +616,57 @@ increasing, got [30.0, 15.0]
         raise BadConfigError("\n".join(problems))
     settings = MatchSettings(**values)
     problems = [f"{where}: matcher.{key} {what}" for key, what in settings.problems()]
+    if problems:
+        raise BadConfigError("\n".join(problems))
+    return settings
+
+
+def alert_settings_from_mapping(section: Mapping[str, Any], where: str) -> AlertSettings:
+    """Build :class:`AlertSettings` from a parsed ``[alerts]`` TOML table.
+
+    Args:
+        section: the table (key -> value as TOML parsed it).
+        where: the file (or other origin) named in errors.
+
+    Raises:
+        BadConfigError: naming ``where`` and the key, for an unknown key, a value of the
+            wrong type, or an invalid value; every problem found, one per line.
+
+    Example:
+        >>> alert_settings_from_mapping({"eps_route_m": 45, "stale_s": 60}, "a.toml").eps_route_m
+        45
+        >>> alert_settings_from_mapping({}, "a.toml") == AlertSettings()
+        True
+        >>> alert_settings_from_mapping({"fence_fixes": 1.5}, "a.toml")
+        Traceback (most recent call last):
+        ...
+        livematch.errors.BadConfigError: a.toml: alerts.fence_fixes must be an integer, got 1.5
+    """
+    hints = typing.get_type_hints(AlertSettings)
+    names = list(AlertSettings.keys())
+    problems: list[str] = []
+    values: dict[str, Any] = {}
+    for key, value in section.items():
+        if key not in names:
+            problems.append(f"{where}: unknown key alerts.{key} "
+                            f"(expected one of {', '.join(names)})")
+            continue
+        hint = hints[key]
+        number = isinstance(value, int | float) and not isinstance(value, bool)
+        if hint is int:
+            ok, expected = number and isinstance(value, int), "an integer"
+        elif hint is float:
+            ok, expected = number and math.isfinite(value), "a finite number"
+        else:
+            ok, expected = isinstance(value, str), "a string"
+        if not ok:
+            problems.append(f"{where}: alerts.{key} must be {expected}, got {value!r}")
+            continue
+        values[key] = value
+    if problems:
+        raise BadConfigError("\n".join(problems))
+    settings = AlertSettings(**values)
+    problems = [f"{where}: alerts.{key} {what}" for key, what in settings.problems()]
     if problems:
         raise BadConfigError("\n".join(problems))
     return settings

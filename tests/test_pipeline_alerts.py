@@ -20,7 +20,7 @@ from livematch.core.monitors import AlertSettings, Fence, Route
 from livematch.core.settings import MatchSettings
 from livematch.errors import BadConfigError
 from livematch.feed.replaylog import ReplayLogWriter
-from livematch.pipeline import Output, Pipeline
+from livematch.pipeline import Output, Pipeline, alert_settings_from_mapping
 
 T0 = 1_764_576_000.0
 PROJ = Projection.local(24.94, 60.17)
@@ -269,3 +269,20 @@ def test_replay_writes_alerts_jsonl(tmp_path):
                                                          ("bus2", "stale")]
     assert all(list(a)[:3] == ["vehicle", "time", "kind"] for a in lines)
     assert lines[1]["time"] == T0 + 2.5 + 120.0 + 1.0 and summary["alerts"] == 2
+
+
+def test_alert_settings_from_mapping_names_file_and_key():
+    """An [alerts] table maps onto AlertSettings; every problem names the file and key."""
+    got = alert_settings_from_mapping({"fence_position": "matched", "on_route_fixes": 3},
+                                      "live.toml")
+    assert (got.fence_position, got.on_route_fixes) == ("matched", 3)
+    with pytest.raises(BadConfigError) as info:
+        alert_settings_from_mapping({"eps": 3, "stale_s": "2m", "fence_position": 1},
+                                    "live.toml")
+    assert str(info.value).splitlines() == [
+        "live.toml: unknown key alerts.eps (expected one of " + ", ".join(AlertSettings.keys())
+        + ")",
+        "live.toml: alerts.stale_s must be a finite number, got '2m'",
+        "live.toml: alerts.fence_position must be a string, got 1"]
+    with pytest.raises(BadConfigError, match=r"live\.toml: alerts\.wrong_way_m must exceed"):
+        alert_settings_from_mapping({"eps_route_m": 60}, "live.toml")
