@@ -192,6 +192,25 @@ async def test_record_feed_writes_every_message_in_order(mosquitto, prefix, tmp_
     assert [e.at for e in entries] == sorted(e.at for e in entries)
 
 
+async def test_record_feed_takes_several_topic_filters(mosquitto, prefix, tmp_path):
+    """Route control messages recorded beside the fixes reach a replay in their order."""
+    config = _mqtt_config(mosquitto.url, f"{prefix}/fleet/+/position", None)
+    tap = RecordingTap(tmp_path / "feed.jsonl")
+    subscribed = asyncio.Event()
+    msgs = [(f"{prefix}/livematch/control/bus7/route", b'{"route": "L2"}'),
+            *_messages(prefix)[:3]]
+    task = asyncio.create_task(record_feed(
+        config, tap, count=len(msgs), subscribed=subscribed,
+        more_topics=[f"{prefix}/livematch/control/+/route"]))
+    await asyncio.wait_for(subscribed.wait(), timeout=10)
+    async with publisher(mosquitto.port) as pub:
+        for topic, payload in msgs:
+            await pub.publish(topic, payload, qos=1)
+    assert await asyncio.wait_for(task, timeout=20) == len(msgs)
+    tap.close()
+    assert [(e.topic, e.payload) for e in read_replay_log(tap.files[0])] == msgs
+
+
 async def test_record_feed_stops_when_asked(mosquitto, prefix, tmp_path):
     """The stop event ends the recording promptly even while no message arrives."""
     config = _mqtt_config(mosquitto.url, f"{prefix}/fleet/+/position", None)
@@ -251,3 +270,6 @@ def test_record_command_refuses_bad_flags(tmp_path, capsys):
     assert "--broker must be mqtt://HOST[:PORT]" in capsys.readouterr().err
     with pytest.raises(BadConfigError, match="--topic must be an MQTT topic filter"):
         _mqtt_config("mqtt://127.0.0.1:1", "fleet/#/x", None)
+    assert main(["record", "--broker", "mqtt://127.0.0.1:1", "--out", str(tmp_path / "a"),
+                 "--topic", "fleet/+/position", "--topic", "a/b+/c"]) == 2
+    assert "got 'a/b+/c'" in capsys.readouterr().err

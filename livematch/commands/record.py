@@ -1,8 +1,9 @@
 """``livematch record``: save a broker's feed as a replay log, without matching anything.
 
-``livematch record --broker mqtt://HOST[:PORT] --out PATH [--topic FILTER]
-[--duration S] [--count N] [--rotate-mb M] [--rotate-s S]`` subscribes to FILTER
-(default ``fleet/+/position``) with QoS 1 and writes every message it receives, whatever
+``livematch record --broker mqtt://HOST[:PORT] --out PATH [--topic FILTER ...]
+[--duration S] [--count N] [--rotate-mb M] [--rotate-s S]`` subscribes to each FILTER
+(default ``fleet/+/position``; add ``livematch/control/+/route`` to keep route
+assignments too) with QoS 1 and writes every message it receives, whatever
 it contains, to PATH in the replay-log format (gzip when PATH ends in ``.gz``; see
 :mod:`livematch.lab.record` for rotation and segment names). Each message is
 acknowledged only after it was written. It stops on SIGINT or SIGTERM, after
@@ -23,6 +24,7 @@ import signal
 import sys
 import time
 import uuid
+from collections.abc import Sequence
 from typing import Any
 
 import aiomqtt
@@ -45,8 +47,9 @@ def register(subparsers: Any) -> None:
     parser.add_argument("--broker", required=True, metavar="URL", help="mqtt://HOST[:PORT]")
     parser.add_argument("--out", required=True, metavar="PATH",
                         help="replay log to write (.jsonl or .jsonl.gz); never overwritten")
-    parser.add_argument("--topic", default="fleet/+/position", metavar="FILTER",
-                        help="topic filter to record (default: fleet/+/position)")
+    parser.add_argument("--topic", action="append", metavar="FILTER",
+                        help="topic filter to record (default: fleet/+/position); repeat "
+                             "it for more, e.g. also livematch/control/+/route")
     parser.add_argument("--duration", type=float, metavar="S",
                         help="stop after S seconds of wall time")
     parser.add_argument("--count", type=int, metavar="N", help="stop after N messages")
@@ -61,15 +64,24 @@ def register(subparsers: Any) -> None:
     parser.set_defaults(func=_run)
 
 
+def _check_filter(topic: str) -> str | None:
+    """What is wrong with an MQTT topic filter (MQTT 5.0 section 4.7.1), or None."""
+    levels = topic.split("/")
+    if not topic or any(("+" in lv or "#" in lv) and len(lv) > 1 for lv in levels) or (
+            "#" in levels[:-1]):
+        return f"--topic must be an MQTT topic filter, got {topic!r}"
+    return None
+
+
 def _mqtt_config(broker: str, topic: str, client_id: str | None) -> MqttConfig:
     config = MqttConfig(url=broker, topic=topic,
                         client_id=client_id or f"livematch-record-{uuid.uuid4().hex[:8]}",
                         session_expiry_s=3600 if client_id else 0,
                         reconnect_min_s=0.2, reconnect_max_s=5.0)
     problems = [f"--broker {what}" for key, what in config.problems() if key == "url"]
-    if not topic or "#" in topic[:-1] or any(
-            ("+" in level or "#" in level) and len(level) > 1 for level in topic.split("/")):
-        problems.append(f"--topic must be an MQTT topic filter, got {topic!r}")
+    bad = _check_filter(topic)
+    if bad:
+        problems.append(bad)
     if problems:
         raise BadConfigError("; ".join(problems))
     return config
@@ -78,11 +90,13 @@ def _mqtt_config(broker: str, topic: str, client_id: str | None) -> MqttConfig:
 async def record_feed(config: MqttConfig, tap: RecordingTap, *, duration_s: float | None = None,
                       count: int | None = None, stop: asyncio.Event | None = None,
                       username: str | None = None, password: str | None = None,
-                      subscribed: asyncio.Event | None = None) -> int:
+                      subscribed: asyncio.Event | None = None,
+                      more_topics: Sequence[str] = ()) -> int:
     """Record ``config.topic`` from ``config.url`` into ``tap`` until told to stop.
 
     Args:
         config: broker URL, topic filter, client id, QoS and session settings.
+        more_topics: further topic filters recorded into the same log.
         tap: where the messages go (closed by the caller).
         duration_s: stop after this many seconds of wall time.
         count: stop after this many messages.
@@ -111,7 +125,8 @@ async def record_feed(config: MqttConfig, tap: RecordingTap, *, duration_s: floa
     while not done():
         try:
             async with make_client(config, username=username, password=password) as client:
-                await client.subscribe(config.topic, qos=config.qos)
+                for topic in (config.topic, *more_topics):
+                    await client.subscribe(topic, qos=config.qos)
                 backoff.reset()
                 if subscribed is not None:
                     subscribed.set()
@@ -163,19 +178,24 @@ async def _main(args: argparse.Namespace, config: MqttConfig, tap: RecordingTap)
         loop.add_signal_handler(sig, stop.set)
     return await record_feed(config, tap, duration_s=args.duration, count=args.count,
                              stop=stop, username=os.environ.get(USERNAME_ENV),
-                             password=os.environ.get(PASSWORD_ENV))
+                             password=os.environ.get(PASSWORD_ENV),
+                             more_topics=args.topic[1:])
 
 
 def _run(args: argparse.Namespace) -> int:
-    config = _mqtt_config(args.broker, args.topic, args.client_id)
+    args.topic = args.topic or ["fleet/+/position"]
+    config = _mqtt_config(args.broker, args.topic[0], args.client_id)
+    bad = [problem for problem in map(_check_filter, args.topic[1:]) if problem]
+    if bad:
+        raise BadConfigError("; ".join(bad))
     for flag, value in (("--duration", args.duration), ("--count", args.count),
                         ("--rotate-mb", args.rotate_mb), ("--rotate-s", args.rotate_s)):
         if value is not None and value < 0:
             raise BadConfigError(f"{flag} must be >= 0, got {value}")
     tap = RecordingTap(args.out, rotate_bytes=int(args.rotate_mb * 1_000_000),
                        rotate_s=args.rotate_s)
-    print(f"livematch: recording {args.topic} from {redact_url(config.url)} into {args.out}",
-          file=sys.stderr)
+    print(f"livematch: recording {', '.join(args.topic)} from {redact_url(config.url)} "
+          f"into {args.out}", file=sys.stderr)
     try:
         recorded = asyncio.run(_main(args, config, tap))
     finally:
