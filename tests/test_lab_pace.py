@@ -3,10 +3,14 @@
 from __future__ import annotations
 
 import asyncio
+import os
+import pty
+import subprocess
+import sys
 import time
 
 import pytest
-from services import T0, Collector, drive, town
+from services import T0, Collector, drive, subprocess_env, town
 
 from livematch.cli import main
 from livematch.errors import LivematchError
@@ -114,3 +118,41 @@ def test_replay_at_speed_gives_the_same_files(tmp_path):
                  "summary.json"):
         assert (tmp_path / "a" / name).read_bytes() == (tmp_path / "b" / name).read_bytes()
     assert (tmp_path / "a" / "rejects.jsonl").read_text().count("not_json") == 1
+
+
+def _run_with_stderr_on(tmp_path, stderr_tty: bool) -> str:
+    """Run a paced lab replay in a subprocess, stderr on a pseudo-terminal or a pipe."""
+    net = tmp_path / "town.lmnet"
+    save_network(town(), net)
+    log = tmp_path / "feed.jsonl"
+    _log(log, "x", n=30, dt=0.02)
+    cmd = [sys.executable, "-m", "livematch.cli", "replay", str(log), "--network", str(net),
+           "--out", str(tmp_path / f"out-{stderr_tty}"), "--speed", "1"]
+    if not stderr_tty:
+        proc = subprocess.run(cmd, env=subprocess_env(), capture_output=True, timeout=60,
+                              check=True)
+        return proc.stderr.decode()
+    master, slave = pty.openpty()
+    proc = subprocess.Popen(cmd, env={**subprocess_env(), "COLUMNS": "100"},
+                            stdout=subprocess.DEVNULL, stderr=slave)
+    os.close(slave)
+    chunks = []
+    while True:
+        try:
+            data = os.read(master, 4096)
+        except OSError:  # EIO: the child closed the terminal
+            break
+        if not data:
+            break
+        chunks.append(data)
+    os.close(master)
+    assert proc.wait(timeout=60) == 0
+    return b"".join(chunks).decode(errors="replace")
+
+
+def test_progress_bar_only_on_a_terminal(tmp_path):
+    """A progress bar goes to stderr when it is a terminal, and never into a pipe."""
+    on_tty = _run_with_stderr_on(tmp_path, True)
+    assert "replaying" in on_tty and "31/31" in on_tty
+    piped = _run_with_stderr_on(tmp_path, False)
+    assert "replaying" not in piped and "replayed 31 messages" in piped
