@@ -136,6 +136,9 @@ def _offer(
     backwards (the decision alone would allow it, lagging within eps).
     """
     view = ctx.view
+    node = new.get(seg)
+    if node is not None and lo >= node.low and parent is not None and parent.cost >= node.cost:
+        return  # every term of the cost is >= 0: this way cannot do better
     a = view.sf[seg]
     b = view.st[seg]
     ax = view.vx[a]
@@ -177,7 +180,6 @@ def _offer(
             ux = (mx - parent.x) - (ctx.x1 - ctx.x0)
             uy = (my - parent.y) - (ctx.y1 - ctx.y0)
             cost += math.sqrt(ux * ux + uy * uy) * ctx.motion_cost
-    node = new.get(seg)
     if node is None:
         new[seg] = Node(seg, ctx.seq, ctx.t, pos, mx, my, parent, via, cost, lo)
         return
