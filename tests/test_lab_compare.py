@@ -13,6 +13,7 @@ import pytest
 
 from livematch.cli import main
 from livematch.lab.compare import format_cell, table_rows, value_at
+from livematch.lab.report import clock
 
 SAMPLES = Path(__file__).resolve().parents[1] / "replay_logs"
 LOG = SAMPLES / "larkmoor-morning.jsonl.gz"
@@ -191,6 +192,11 @@ def test_lab_truth_finds_the_scripted_incidents(lab):
         assert detour["delay_s"] == round(first - detour["start"], 3)
         assert 0.0 <= row["road_dir_live"] <= row["road_dir_final"] <= 1.0
         assert 0.0 <= row["route_mismatch"] < 0.2
+    md = (lab["out"] / "compare.md").read_text()
+    strict, loose = lab["rows"]
+    for a, b in zip(strict["incident_results"], loose["incident_results"], strict=True):
+        assert (f"| {a['type']} | {a['vehicle']} | {clock(a['start'])} | {a['alert']} | "
+                f"{a['delay_s']} | {b['delay_s']} |") in md
 
 
 def test_lab_single_setting_with_report_writes_into_out(tmp_path):

@@ -26,6 +26,7 @@ import io
 import os
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
@@ -42,8 +43,8 @@ from livematch.lab.cli import DEFAULT_VEHICLES
 from livematch.lab.compare import format_cell, table_rows, value_at
 from livematch.lab.diff import RunOutputs
 
-__all__ = ["DEFAULT_VEHICLES", "VehicleView", "markdown_table", "png_data_uri", "raw_fixes",
-           "write_report"]
+__all__ = ["DEFAULT_VEHICLES", "VehicleView", "clock", "incident_lines", "markdown_table",
+           "png_data_uri", "raw_fixes", "write_report"]
 
 #: Colours of the settings, in order (matplotlib's default cycle).
 COLOURS = ("#1f77b4", "#ff7f0e", "#2ca02c", "#d62728", "#9467bd", "#8c564b", "#e377c2",
@@ -71,6 +72,49 @@ def markdown_table(rows: Sequence[Mapping[str, Any]]) -> str:
         cells = " | ".join(format_cell(value_at(r, key)) for r in rows)
         lines.append(f"| {label.strip()} | {cells} |")
     return "\n".join(lines)
+
+
+def clock(t: float) -> str:
+    """An epoch time as UTC date and time to the second, for people to read.
+
+    >>> clock(1780383824.0), clock(0.4)
+    ('2026-06-02 07:03:44Z', '1970-01-01 00:00:00Z')
+    """
+    return datetime.fromtimestamp(t, UTC).strftime("%Y-%m-%d %H:%M:%SZ")
+
+
+def incident_lines(rows: Sequence[Mapping[str, Any]]) -> list[str]:
+    """Markdown table of every scored incident: its alert's delay per setting ("–": missed).
+
+    Example (degenerate: no truth incidents gives no table):
+        >>> incident_lines([{"setting": "a"}])
+        []
+    """
+    results = [r.get("incident_results") or [] for r in rows]
+    if not any(results):
+        return []
+    head = "| incident | vehicle | start | alert | " + " | ".join(
+        f"{r['setting']} delay (s)" for r in rows) + " |"
+    out = [head, "|---|---|---:|---|" + "---:|" * len(rows)]
+    for i, inc in enumerate(results[0]):
+        delays = [format_cell(res[i]["delay_s"]) if i < len(res) else "–" for res in results]
+        out.append(f"| {inc['type']} | {inc['vehicle']} | {clock(inc['start'])} | "
+                   f"{inc['alert']} | "
+                   + " | ".join(delays) + " |")
+    return out
+
+
+def _markdown_to_html_table(lines: Sequence[str]) -> str:
+    if not lines:
+        return ""
+    cells = [[c.strip() for c in line.strip("|").split("|")] for line in lines]
+    head, body = cells[0], cells[2:]
+    out = ["<table><thead><tr>", *(f"<th>{html.escape(c)}</th>" for c in head),
+           "</tr></thead><tbody>"]
+    for row in body:
+        out += ["<tr>", *(f"<td>{html.escape(c)}</td>" for c in row), "</tr>"]
+    out.append("</tbody></table>")
+    return "".join(out)
 
 
 def html_table(rows: Sequence[Mapping[str, Any]]) -> str:
@@ -243,8 +287,8 @@ def _diff_html(summary: Mapping[str, Mapping[str, Mapping[str, Any]]]) -> str:
                    "<th>alerts</th><th>first</th><th>last</th></tr></thead><tbody>")
         for vehicle, s in per_vehicle.items():
             out.append(f"<tr><td>{html.escape(vehicle)}</td><td>{s['live']}</td>"
-                       f"<td>{s['final']}</td><td>{s['alert']}</td><td>{s['first']}</td>"
-                       f"<td>{s['last']}</td></tr>")
+                       f"<td>{s['final']}</td><td>{s['alert']}</td><td>{clock(s['first'])}"
+                       f"</td><td>{clock(s['last'])}</td></tr>")
         out.append("</tbody></table>")
     return "".join(out)
 
@@ -278,6 +322,9 @@ def write_report(path: str | os.PathLike[str], *, title: str,
     ]
     parts += [f"<p>{html.escape(note)}</p>" for note in notes]
     parts += ["<h2>Settings side by side</h2>", html_table(rows)]
+    incidents = incident_lines(rows)
+    if incidents:
+        parts += ["<h2>Incidents of the truth</h2>", _markdown_to_html_table(incidents)]
     parts.append(_diff_html(diff_summary or {}))
     for view in views:
         parts.append(f"<h2>Vehicle {html.escape(view.vehicle)}</h2>")

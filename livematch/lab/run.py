@@ -51,6 +51,8 @@ from livematch.lab.report import (
     DEFAULT_VEHICLES,
     MARGIN_M,
     VehicleView,
+    clock,
+    incident_lines,
     markdown_table,
     raw_fixes,
     write_report,
@@ -217,6 +219,11 @@ def _write_compare(out: Path, args: argparse.Namespace, rows: list[dict[str, Any
              "newest fix of its vehicle when its commit was published; µs per fix is "
              "wall time in the pipeline and the only number that differs between runs. "
              "See livematch/lab/compare.py and livematch/lab/truth.py."]
+    incidents = incident_lines(rows)
+    if incidents:
+        lines += ["", "## Incidents of the truth", "",
+                  "Delay: the first alert that reports the incident minus its start, s "
+                  "(–: missed).", "", *incidents]
     if diffs:
         lines += ["", "## Differences", ""]
         for pair, per_vehicle in diffs.items():
@@ -224,10 +231,11 @@ def _write_compare(out: Path, args: argparse.Namespace, rows: list[dict[str, Any
             if not per_vehicle:
                 lines += ["No difference.", ""]
                 continue
-            lines += ["| vehicle | live road | final road | alerts | first | last |",
+            lines += ["| vehicle | live roads | final roads | alerts | first (UTC) | last (UTC) |",
                       "|---|---:|---:|---:|---:|---:|"]
-            lines += [f"| {v} | {s['live']} | {s['final']} | {s['alert']} | {s['first']} | "
-                      f"{s['last']} |" for v, s in per_vehicle.items()]
+            lines += [f"| {v} | {s['live']} | {s['final']} | {s['alert']} | "
+                      f"{clock(s['first'])} | {clock(s['last'])} |"
+                      for v, s in per_vehicle.items()]
             lines.append("")
         lines.append("Every difference, one per line: diff.jsonl.")
     (out / "compare.md").write_text("\n".join(lines) + "\n", encoding="utf-8")
