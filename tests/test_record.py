@@ -11,21 +11,25 @@ import sys
 import time
 
 import pytest
-from services import T0, drive, publisher, subprocess_env, town
+from services import T0, Collector, drive, publisher, subprocess_env, town, write_config
 
 from livematch.cli import main
 from livematch.commands.record import _mqtt_config, record_feed
+from livematch.config import load_config
 from livematch.core.settings import MatchSettings
 from livematch.errors import BadConfigError
 from livematch.feed.replaylog import read_replay_log
 from livematch.lab.record import (
     BadRecordingError,
+    RecordingPipeline,
     RecordingTap,
     RecordSettings,
     recording_files,
     segment_path,
 )
+from livematch.mapdata.netfile import save_network
 from livematch.pipeline import Pipeline
+from livematch.service.daemon import Daemon
 
 pytest_plugins = ("fixtures_services",)
 
@@ -273,3 +277,41 @@ def test_record_command_refuses_bad_flags(tmp_path, capsys):
     assert main(["record", "--broker", "mqtt://127.0.0.1:1", "--out", str(tmp_path / "a"),
                  "--topic", "fleet/+/position", "--topic", "a/b+/c"]) == 2
     assert "got 'a/b+/c'" in capsys.readouterr().err
+
+
+async def test_daemon_with_recording_pipeline_replays_to_what_it_published(
+        mosquitto, prefix, tmp_path):
+    """A daemon whose pipeline records (no daemon change) gives a log that replays to
+    exactly the records it published: assignments, and rejects with their `at`."""
+    net = tmp_path / "town.lmnet"
+    save_network(town(), net)
+    cfg = write_config(tmp_path, prefix, broker=mosquitto.url, network=str(net))
+    config = load_config(cfg, env={})
+    path = tmp_path / "rec" / "live.jsonl.gz"
+    tap = RecordingTap(path)
+    daemon = Daemon(config, RecordingPipeline(
+        Pipeline(town(), config.matcher, limits=config.feed), tap))
+    messages = [(f"{prefix}/fleet/car-1/position", p) for _, p in drive("car-1", 12)]
+    messages.insert(4, (f"{prefix}/fleet/car-1/position", b"lat=1;lon=2"))
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col:
+        task = asyncio.create_task(daemon.run())
+        for _ in range(400):
+            if not daemon.readiness():
+                break
+            await asyncio.sleep(0.025)
+        async with publisher(mosquitto.port) as pub:
+            for topic, payload in messages:
+                await pub.publish(topic, payload, qos=1)
+        await col.wait_for("/out/match/", 12)
+        await col.wait_for("/out/rejects", 1)
+        daemon.request_stop()
+        await asyncio.wait_for(task, timeout=30)
+    tap.close()
+    assert [(e.topic, e.payload) for e in read_replay_log(path)] == messages
+    assert main(["replay", str(path), "--network", str(net), "--config", str(cfg),
+                 "--out", str(tmp_path / "out")]) == 0
+    published = {part: [p for t, p, _ in col.messages if f"/out/{part}" in t]
+                 for part in ("match/", "rejects")}
+    out = tmp_path / "out"
+    assert published["match/"] == (out / "assignments.jsonl").read_bytes().splitlines()
+    assert published["rejects"] == (out / "rejects.jsonl").read_bytes().splitlines()

@@ -18,16 +18,22 @@ compression, so the limit does not depend on how well the feed compresses) and/o
 receive time (seconds of ``at`` covered by one file, so rotation follows the messages'
 own clock and a test or a replay of the tap is deterministic).
 
-The daemon hook (one call per received message, with the very ``at`` it passes to
-:meth:`Pipeline.handle <livematch.pipeline.Pipeline.handle>`, so that a replay of the
-recording reproduces even the reject records' ``at``)::
+Two ways to hook it into the daemon, both recording with the very ``at`` the daemon
+hands to :meth:`Pipeline.handle <livematch.pipeline.Pipeline.handle>`, so that a replay
+of the recording reproduces even the reject records' ``at``:
 
-    at = time.time()
-    if self.recorder is not None:
-        self.recorder.record(at, topic, payload)
-    outputs = self.pipeline.handle(topic, payload, at)
-    ...
-    self.recorder.close()          # at shutdown
+* no change to the daemon: wrap its pipeline where it is built (``build_daemon``)::
+
+      pipeline = RecordingPipeline(pipeline, tap)     # records, then handles
+      ...
+      tap.close()                                    # after daemon.run() returned
+
+* or one call in ``Daemon._process``, before the pipeline::
+
+      at = time.time()
+      if self.recorder is not None:
+          self.recorder.record(at, topic, payload)
+      outputs = self.pipeline.handle(topic, payload, at)
 
 :meth:`RecordingTap.record` never raises on a write failure (disk full, folder gone): it
 logs, counts :attr:`RecordingTap.errors` and tries a fresh segment on the next message,
@@ -41,14 +47,20 @@ import logging
 import math
 import os
 import re
+from collections import Counter
 from dataclasses import dataclass
 from pathlib import Path
 from types import TracebackType
+from typing import TYPE_CHECKING, Any
 
 from livematch.errors import LivematchError
 from livematch.feed.replaylog import ReplayLogWriter, payload_for_log
 
-__all__ = ["RecordSettings", "RecordingTap", "recording_files", "segment_path"]
+if TYPE_CHECKING:
+    from livematch.pipeline import Output, Pipeline
+
+__all__ = ["RecordSettings", "RecordingPipeline", "RecordingTap", "recording_files",
+           "segment_path"]
 
 log = logging.getLogger("livematch.record")
 
@@ -289,3 +301,75 @@ class RecordingTap:
         if writer is not None:
             with contextlib.suppress(OSError):
                 writer.close()
+
+
+class RecordingPipeline:
+    r"""A pipeline that records every message it is handed before handling it.
+
+    It stands in for :class:`~livematch.pipeline.Pipeline` wherever one is used (the
+    daemon takes it unchanged): :meth:`handle` writes ``(at, topic, payload)`` to the tap,
+    then delegates; everything else is the wrapped pipeline's own. Closing the tap stays
+    with the caller.
+
+    Args:
+        pipeline: the pipeline to wrap.
+        tap: where the messages go.
+
+    Example (a message the pipeline rejects is recorded all the same):
+        >>> import tempfile
+        >>> from livematch.core.build import Road, network_from_roads
+        >>> from livematch.core.settings import MatchSettings
+        >>> from livematch.pipeline import Pipeline
+        >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+        >>> path = Path(tempfile.mkdtemp()) / "feed.jsonl"
+        >>> with RecordingTap(path) as tap:
+        ...     p = RecordingPipeline(Pipeline(net, MatchSettings()), tap)
+        ...     [o.record["reason"] for o in p.handle("fleet/a/position", b"?", 5.0)]
+        ['not_json']
+        >>> path.read_text()
+        '{"at":5.0,"topic":"fleet/a/position","payload":"?"}\n'
+        >>> p.counters["reject:not_json"], p.vehicles()
+        (1, [])
+    """
+
+    def __init__(self, pipeline: Pipeline, tap: RecordingTap) -> None:
+        self.pipeline = pipeline
+        self.tap = tap
+
+    def handle(self, topic: str, payload: bytes, at: float) -> list[Output]:
+        """Record the message, then handle it (see :meth:`Pipeline.handle`)."""
+        self.tap.record(at, topic, payload)
+        return self.pipeline.handle(topic, payload, at)
+
+    @property
+    def counters(self) -> Counter[str]:
+        """The wrapped pipeline's counters."""
+        return self.pipeline.counters
+
+    def tick(self, now: float) -> list[Output]:
+        """See :meth:`Pipeline.tick`."""
+        return self.pipeline.tick(now)
+
+    def flush(self) -> list[Output]:
+        """See :meth:`Pipeline.flush`."""
+        return self.pipeline.flush()
+
+    def vehicles(self) -> list[str]:
+        """See :meth:`Pipeline.vehicles`."""
+        return self.pipeline.vehicles()
+
+    def export_vehicle(self, vehicle: str) -> bytes:
+        """See :meth:`Pipeline.export_vehicle`."""
+        return self.pipeline.export_vehicle(vehicle)
+
+    def import_vehicle(self, vehicle: str, blob: bytes) -> None:
+        """See :meth:`Pipeline.import_vehicle`."""
+        self.pipeline.import_vehicle(vehicle, blob)
+
+    def evict_idle(self, now_fix_time: float, ttl_s: float, *,
+                   into: list[Output] | None = None) -> list[str]:
+        """See :meth:`Pipeline.evict_idle`."""
+        return self.pipeline.evict_idle(now_fix_time, ttl_s, into=into)
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self.pipeline, name)
