@@ -266,7 +266,8 @@ def drive(vehicle: str, n: int, *, start_x: float = 100.0, first: int = 0,
 
 
 def write_config(folder: Path, prefix: str, *, broker: str, store: str = "memory://",
-                 network: str = "", metrics: str = "127.0.0.1:0", extra: str = "") -> Path:
+                 network: str = "", metrics: str = "127.0.0.1:0", extra: str = "",
+                 topic: str = "fleet/+/position") -> Path:
     """A daemon config file whose topics and keys all live under ``prefix``."""
     path = folder / f"{prefix}.toml"
     path.write_text(f"""
@@ -275,7 +276,7 @@ network = "{network}"
 
 [mqtt]
 url = "{broker}"
-topic = "{prefix}/fleet/+/position"
+topic = "{prefix}/{topic}"
 client_id = "livematch-{prefix}"
 match_topic = "{prefix}/out/match/{{vehicle}}"
 commit_topic = "{prefix}/out/commit/{{vehicle}}"

@@ -215,3 +215,12 @@ def test_cli_run_refuses_bad_config(tmp_path: Path, capsys: pytest.CaptureFixtur
     empty = write(tmp_path, "")
     assert main(["run", "--config", str(empty)]) == 2
     assert "no road network: give --network PATH" in capsys.readouterr().err
+
+
+def test_cli_run_refuses_routes_until_supported(capsys: pytest.CaptureFixture[str],
+                                                monkeypatch: pytest.MonkeyPatch) -> None:
+    """--routes is accepted by the parser but refused at start, naming the key."""
+    for name in [n for n in os.environ if n.startswith("LIVEMATCH")]:
+        monkeypatch.delenv(name)
+    assert main(["run", "--network", "x.lmnet", "--routes", "r.json"]) == 2
+    assert "inputs.routes (--routes): routes are not supported" in capsys.readouterr().err

@@ -446,3 +446,39 @@ async def test_daemon_authenticates_and_never_logs_password(
     lines = "\n".join(KeyValueFormatter().format(r) for r in caplog.records)
     assert "broker connection failed; retrying" in lines
     assert "right-pass-1" not in lines and "wrong-pass-2" not in lines
+
+
+async def test_daemon_small_publish_queue_pauses_intake(mosquitto: Mosquitto, prefix: str,
+                                                        tmp_path: Path) -> None:
+    """A full publish queue pauses intake between messages; nothing is lost or reordered."""
+    cfg = write_config(tmp_path, prefix, broker=mosquitto.url,
+                       extra="[publish]\nqueue_max = 1\n")
+    fixes = drive("bus-q", 40)
+    daemon = make_daemon(cfg)
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/match/#") as col, \
+            running(daemon):
+        async with publisher(mosquitto.port) as pub:
+            for _, payload in fixes:
+                await pub.publish(f"{prefix}/fleet/bus-q/position", payload, qos=1)
+        await col.wait_for("/out/match/", 40)
+    assert [a["time"] for a in col.records("/out/match/")] == [t for t, _ in fixes]
+
+
+async def test_daemon_vehicle_from_payload_when_topic_has_none(mosquitto: Mosquitto,
+                                                               prefix: str,
+                                                               tmp_path: Path) -> None:
+    """With a filter without '+', the payload names the vehicle; no vehicle is a reject."""
+    cfg = write_config(tmp_path, prefix, broker=mosquitto.url, topic="feed/#")
+    fixes = drive("tram-4", 5)
+    daemon = make_daemon(cfg)
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col, \
+            running(daemon):
+        async with publisher(mosquitto.port) as pub:
+            for _, payload in fixes:
+                await pub.publish(f"{prefix}/feed/gateway-2", payload, qos=1)
+            await pub.publish(f"{prefix}/feed/gateway-2",
+                              b'{"time": 1780000100, "lat": 60.17, "lon": 24.94}', qos=1)
+        await col.wait_for("/out/match/tram-4", 5)
+        await col.wait_for("/out/rejects", 1)
+    assert [a["time"] for a in col.records("/out/match/tram-4")] == [t for t, _ in fixes]
+    assert [r["reason"] for r in col.records("/out/rejects")] == ["missing_field"]

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import asyncio
+import re
 import signal
 import subprocess
 import sys
@@ -110,5 +111,5 @@ async def test_run_sigterm_restart_loses_nothing_and_restores_state(
         # The window continued across the restart: fix i is certified with i+1 fixes.
         assert [by_time[t]["window_fixes"] for t in sorted(by_time)] == list(range(1, 61))
     log_text = log_path.read_text()
-    assert "state restored" in log_text and "vehicles=2" in log_text
+    assert re.search(r'event="state restored" .*vehicles=2$', log_text, re.MULTILINE)
     assert SECRET not in log_text

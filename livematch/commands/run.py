@@ -64,8 +64,8 @@ def build_daemon(config: DaemonConfig) -> Any:
                              "inputs.network in the configuration")
     for key in ("routes", "fences"):
         if getattr(config.inputs, key):
-            raise BadConfigError(f"{config.source}: inputs.{key} is not supported by this "
-                                 "version of the daemon yet")
+            raise BadConfigError(f"inputs.{key} (--{key}): {key} are not supported by the "
+                                 "daemon yet; leave it empty")
     network = open_network(config.inputs.network)
     log.info("network loaded", extra=fields(path=config.inputs.network,
                                             segments=network.n_segments))

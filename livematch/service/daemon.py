@@ -29,6 +29,7 @@ import asyncio
 import contextlib
 import json
 import logging
+import math
 import time
 from collections import Counter, deque
 from collections.abc import Mapping
@@ -51,6 +52,10 @@ log = logging.getLogger("livematch.daemon")
 _TICK_S = 0.5
 # How often the store is pinged for /readyz (seconds).
 _STORE_PING_S = 1.0
+# Most publishes awaiting their acknowledgement at once.
+_PUBLISH_WINDOW = 32
+# Shortest interval between two "publish queue full" warnings (seconds).
+_FULL_LOG_EVERY_S = 10.0
 # How far ahead of the wall clock a fix time may push the eviction clock (seconds).
 _CLOCK_AHEAD_S = 300.0
 
@@ -136,13 +141,13 @@ class Daemon:
         self.broker_connected = False
         self.store_ok = False
         self.restored = False
-        self.started = asyncio.Event()  # set once the HTTP endpoint answers
         self._stopping = asyncio.Event()
         self._intake_closed = False
         self._drain_deadline = 0.0
         self._outbox: deque[_Pending] = deque()
         self._outbox_changed = asyncio.Event()  # set on every append, pop and stop
         self._pending_deletes: set[str] = set()
+        self._full_logged_at = -math.inf
         self._fixes_since: Counter[str] = Counter()
         self._last_checkpoint: dict[str, float] = {}
         self._checkpoint_due = asyncio.Event()
@@ -180,7 +185,6 @@ class Daemon:
                                      readiness=self.readiness)
             await self.http.start()
             log.info("http listening", extra=fields(address=f"{host}:{self.http.port}"))
-        self.started.set()
         try:
             if not await self._open_store():
                 return
@@ -430,11 +434,14 @@ class Daemon:
         limit = self.config.publish.queue_max
         if len(self._outbox) < limit:
             return
-        log.warning("publish queue full; intake paused", extra=fields(limit=limit))
+        now = time.monotonic()
+        if now - self._full_logged_at >= _FULL_LOG_EVERY_S:  # at most one line per period
+            self._full_logged_at = now
+            log.warning("publish queue full; intake paused until it has room",
+                        extra=fields(limit=limit))
         while len(self._outbox) >= limit:
             self._outbox_changed.clear()
             await self._outbox_changed.wait()
-        log.info("publish queue has room; intake resumed", extra=fields(queued=len(self._outbox)))
 
     def _process(self, client: aiomqtt.Client, message: aiomqtt.Message) -> None:
         """Match one message, queue its outputs, then acknowledge it.
@@ -531,28 +538,45 @@ class Daemon:
         self._outbox_changed.set()
 
     async def _publish_loop(self, client: aiomqtt.Client) -> None:
-        """Publish queued outputs oldest first; one leaves the queue once acknowledged."""
+        """Publish queued outputs oldest first; one leaves the queue once acknowledged.
+
+        Up to ``_PUBLISH_WINDOW`` publishes are in flight at once (they go out in queue
+        order; paho also respects the broker's Receive Maximum), so throughput is not
+        bound by one round trip per output. After a broken connection everything not yet
+        acknowledged is still queued and is sent again.
+        """
         qos = self.config.mqtt.qos
-        while True:
-            while not self._outbox and not self._intake_closed:
-                self._outbox_changed.clear()
-                await self._outbox_changed.wait()
-            if not self._outbox:
-                return  # stopping and drained
-            item = self._outbox[0]
-            timeout: float | None = None
-            if self._intake_closed:
-                timeout = self._drain_deadline - time.monotonic()
-                if timeout <= 0:
+        inflight: deque[asyncio.Task[None]] = deque()
+        try:
+            while True:
+                while len(inflight) < min(_PUBLISH_WINDOW, len(self._outbox)):
+                    item = self._outbox[len(inflight)]
+                    timeout: float | None = None
+                    if self._intake_closed:
+                        timeout = max(0.001, self._drain_deadline - time.monotonic())
+                    inflight.append(asyncio.create_task(client.publish(
+                        item.topic, item.payload, qos=qos, retain=item.retain,
+                        timeout=timeout)))
+                if not inflight:
+                    if self._intake_closed:
+                        return  # stopping and drained
+                    self._outbox_changed.clear()
+                    await self._outbox_changed.wait()
+                    continue
+                if self._intake_closed and time.monotonic() > self._drain_deadline:
                     return  # grace over: what is left is counted as dropped
-            await client.publish(item.topic, item.payload, qos=qos, retain=item.retain,
-                                 timeout=timeout)
-            self._outbox.popleft()
-            self.metrics.queue_depth.set(len(self._outbox))
-            self._outbox_changed.set()
-            self.metrics.published.labels(kind=item.kind).inc()
-            if item.kind == "assignment" and item.fix_time is not None:
-                self.metrics.lag.observe(max(0.0, time.time() - item.fix_time))
+                await inflight[0]  # raises (ending the session) when the publish failed
+                inflight.popleft()
+                item = self._outbox.popleft()
+                self.metrics.queue_depth.set(len(self._outbox))
+                self._outbox_changed.set()
+                self.metrics.published.labels(kind=item.kind).inc()
+                if item.kind == "assignment" and item.fix_time is not None:
+                    self.metrics.lag.observe(max(0.0, time.time() - item.fix_time))
+        finally:
+            for task in inflight:
+                task.cancel()
+            await asyncio.gather(*inflight, return_exceptions=True)
 
     # -- helpers -------------------------------------------------------------------
 

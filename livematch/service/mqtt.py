@@ -60,6 +60,9 @@ def make_client(config: MqttConfig, *, username: str | None, password: str | Non
     # aiomqtt has no switch for manual acknowledgement; paho's public manual_ack_set on
     # the wrapped client is the documented way (paho-mqtt >= 2.0).
     client._client.manual_ack_set(True)
+    # The daemon keeps a window of publishes in flight on purpose; aiomqtt would warn
+    # about every one beyond 10.
+    client.pending_calls_threshold = 1000
     return client
 
 
