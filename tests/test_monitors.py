@@ -117,6 +117,11 @@ def test_route_monitor_hysteresis_jitter_near_threshold():
     still = [(300.0 + rng.normal(0, 3), 50.0 + rng.normal(0, 3)) for _ in range(600)]
     m = RouteMonitor("r", chain([(0, 0), (2000, 0)]), SETTINGS)
     assert feed(m, [(300.0, 30.0)] * 10 + still) == []
+    # Stopping 85 m from the route, only 47 m from the last on-route fix (500, 38): two
+    # eps away is beyond any jitter, so it alerts after 10 s all the same.
+    stop = [(10.0 * i, 0.0) for i in range(50)] + [(500.0, 38.0)] + [(500.0, 85.0)] * 20
+    alerts = feed(RouteMonitor("r", chain([(0, 0), (2000, 0)]), SETTINGS), stop)
+    assert [(i, k, f["distance_m"]) for i, k, f in alerts] == [(61, "off_route", 85.0)]
     # The same parallel drive steadily 45 m away is a real off-route: alert after 10 s.
     steady = [(5.0 * i, 45.0) for i in range(40)]
     alerts = feed(RouteMonitor("r", chain([(0, 0), (2000, 0)]), SETTINGS), steady)

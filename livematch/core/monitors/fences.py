@@ -147,16 +147,16 @@ class FenceMonitor:
     def update(self, fences: FenceSet, fix: Fix, x: float, y: float,
                groups: Iterable[str]) -> list[Alert]:
         """Take one fix at position (x, y) (raw or matched, metres); return its alerts."""
-        s_fix = fences  # short name for the loop below
         groups = tuple(groups)
         alerts: list[Alert] = []
-        near = [i for i in s_fix.near(x, y)
-                if s_fix.fences[i].applies_to(fix.vehicle, groups)]
-        todo = sorted(set(near) | {s_fix.index[k] for k in self.state if k in s_fix.index})
-        for k in [k for k in self.state if k not in s_fix.index]:
+        near = [i for i in fences.near(x, y)
+                if fences.fences[i].applies_to(fix.vehicle, groups)]
+        for k in [k for k in self.state if k not in fences.index]:
             del self.state[k]  # a fence no longer loaded
+        # Fences near the point, and those the vehicle is in (to see it leave them).
+        todo = sorted(set(near) | {fences.index[k] for k in self.state})
         for i in todo:
-            alerts.extend(self._one(s_fix, i, fix, x, y, i in near))
+            alerts.extend(self._one(fences, i, fix, x, y, i in near))
         return alerts
 
     def _one(self, fences: FenceSet, i: int, fix: Fix, x: float, y: float,

@@ -17,7 +17,8 @@ state machine:
   positions (the candidate that has followed the route longest).
 * **off route**: the fixes have been farther than eps from the route (the sweep is dead
   and cannot restart) for ``off_route_s`` seconds *and* the vehicle got ``off_route_m``
-  metres away from its last on-route fix. One ``off_route`` alert per episode.
+  metres away from its last on-route fix or stands 2 eps or more from the route. One
+  ``off_route`` alert per episode.
 * **back on route**: ``on_route_fixes`` consecutive fixes within eps again, not against
   the route's direction; the ``on_route`` alert carries the detour's duration and
   length.
@@ -362,8 +363,12 @@ class RouteMonitor:
         assert self.dead_origin is not None
         far = math.hypot(fix.x - self.dead_origin[0], fix.y - self.dead_origin[1])
         self.dead_far = max(self.dead_far, far)
-        if (self.state != "off" and fix.t - self.dead_since >= s.off_route_s
-                and self.dead_far >= s.off_route_m):
+        if self.state == "off" or fix.t - self.dead_since < s.off_route_s:
+            return
+        distance = self.chain.distance(fix.x, fix.y)
+        # Far enough: moved off_route_m from the last on-route fix, or standing clearly
+        # beyond the reach of jitter around eps (twice eps from the route).
+        if self.dead_far >= s.off_route_m or distance >= 2.0 * s.eps_route_m:
             self.state = "off"
             self.wrong = False
             a = self.anchor
@@ -371,7 +376,7 @@ class RouteMonitor:
             lon, lat = self.chain.projection.to_lonlat(np.array([rx]), np.array([ry]))
             alerts.append(Alert(fix.vehicle, fix.t, "off_route", {
                 "route": self.route_id,
-                "distance_m": _m(self.chain.distance(fix.x, fix.y)),
+                "distance_m": _m(distance),
                 "lat": fix.lat, "lon": fix.lon,
                 "route_lat": round(float(lat[0]), 7), "route_lon": round(float(lon[0]), 7),
                 "last_on_route_time": a.t if a else None,

@@ -28,10 +28,12 @@ class AlertSettings:
         off_route_s, off_route_m: off-route is declared only when the fixes have stayed
             farther than ``eps_route_m`` from the route for ``off_route_s`` seconds (from
             the first such fix) *and* the vehicle has got at least ``off_route_m`` away
-            from where it was last on route. 10 s outlasts the short bursts of multipath
-            and outliers (a few seconds, common practice) while keeping detection within
-            seconds; the distance keeps a vehicle standing beside the route, its fixes
-            jittering across the threshold, from ever alerting.
+            from where it was last on route (or is at least 2 x ``eps_route_m`` from the
+            route). 10 s outlasts the short bursts of multipath and outliers (a few
+            seconds, common practice) while keeping detection within seconds; the
+            distance keeps a vehicle standing beside the route, its fixes jittering
+            across the threshold, from ever alerting, while one stopped well away from
+            the route still does.
         on_route_fixes: back on route after this many consecutive fixes lie within
             ``eps_route_m`` of the route again (and not against its direction).
         wrong_way_m: wrong direction is declared once the fixes have followed the route
