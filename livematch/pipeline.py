@@ -13,7 +13,7 @@ into published records (:func:`~livematch.core.events.to_record`)::
 
 Both the replay command and the daemon go through :meth:`Pipeline.handle`, so the same
 messages give the same records, byte for byte, whichever of them ran. The pipeline reads
-no clock: ``at`` (the receive time) only goes into reject records.
+no clock: ``at`` (the receive time) only goes into reject records and the stale watch.
 
 Alerts (:mod:`livematch.core.monitors`): every fix the tracker accepts also goes to the
 vehicle's monitors (route, geofences, off-network), whose alerts come out as
@@ -178,9 +178,19 @@ class Pipeline:
         settings: the ``[matcher]`` settings (validated here).
         limits: what incoming messages may contain, and the topic filter whose ``+``
             level names the vehicle.
+        routes: route id -> :class:`~livematch.core.monitors.Route` (projected into the
+            network's CRS; :mod:`livematch.mapdata.routes` loads them). None: no route
+            monitoring, route ids in fixes are ignored.
+        fences: the geofences (:mod:`livematch.mapdata.fences` loads them), or None.
+        alerts: the ``[alerts]`` settings (validated here); None: the defaults.
+        vehicle_routes: static vehicle id -> route id, the last resort for a route.
+        vehicle_groups: vehicle id -> group names, for fences that watch groups.
+        control_topic: topic filter of route control messages (its ``+`` level is the
+            vehicle); "" turns control messages off.
 
     Raises:
-        BadConfigError: when ``settings`` has an invalid value.
+        BadConfigError: when ``settings`` or ``alerts`` has an invalid value, or two
+            fences share an id.
 
     Example (a degenerate run: one message that is not JSON)::
 
@@ -262,6 +272,8 @@ class Pipeline:
         out = self._alert_outputs(state.alerts.seen(fix, at))
         self._stale_due = min(self._stale_due, at + self.alert_settings.stale_s)
         state.pending[fix.t] = fix
+        if len(state.pending) > DEDUPE_WINDOW:  # never reached: the tracker answers
+            del state.pending[min(state.pending)]  # every fix within its reorder window
         out.extend(self._outputs(state.tracker.update(fix), state, topic, payload, at))
         return out
 
