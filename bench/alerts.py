@@ -391,6 +391,8 @@ def _f(value: Any, fmt: str) -> str:
 
 
 def markdown(summary: dict[str, dict[str, Any]], meta: dict[str, Any]) -> str:
+    changed = meta["livematch_dirty"]
+    dirty = f" with uncommitted changes in {', '.join(changed)}" if changed else ""
     lines = [
         "# Alert detection on simulated buses",
         "",
@@ -400,7 +402,7 @@ def markdown(summary: dict[str, dict[str, Any]], meta: dict[str, Any]) -> str:
         f"{meta['tau']} s, outliers {meta['outliers']:.0%}; fixes every 1 s; "
         f"{meta['elapsed_s']} s on {meta['jobs']} processes). Code: commit "
         f"{meta['git_commit'][:12]}"
-        f"{' with uncommitted changes under livematch/' if meta['livematch_dirty'] else ''}.",
+        f"{dirty}.",
         "",
         "Alert settings: defaults of `livematch.core.monitors.AlertSettings` "
         f"(eps_route {meta['alert_settings']['eps_route_m']} m, off-route after "
@@ -448,8 +450,8 @@ def git_state() -> dict[str, Any]:
                               check=False)
         return proc.stdout.strip()
 
-    return {"git_commit": git("rev-parse", "HEAD"),
-            "livematch_dirty": bool(git("status", "--porcelain", "--", "livematch"))}
+    dirty = [line[3:] for line in git("status", "--porcelain", "--", "livematch").splitlines()]
+    return {"git_commit": git("rev-parse", "HEAD"), "livematch_dirty": dirty}
 
 
 def main(argv: list[str] | None = None) -> int:
