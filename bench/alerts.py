@@ -450,7 +450,8 @@ def git_state() -> dict[str, Any]:
                               check=False)
         return proc.stdout.strip()
 
-    dirty = [line[3:] for line in git("status", "--porcelain", "--", "livematch").splitlines()]
+    dirty = [line.split(maxsplit=1)[1]
+             for line in git("status", "--porcelain", "--", "livematch").splitlines()]
     return {"git_commit": git("rev-parse", "HEAD"), "livematch_dirty": dirty}
 
 
