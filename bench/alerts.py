@@ -501,8 +501,16 @@ def main(argv: list[str] | None = None) -> int:
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
     (out / "alerts.md").write_text(text, encoding="utf-8")
-    (out / "alerts.json").write_text(json.dumps({"meta": meta, "summary": summary,
-                                                 "buses": rows}, indent=1), encoding="utf-8")
+    # Per detour: [bus, off delay s, back-on delay s, farthest from the route m]; and every
+    # bus with something to look at (a false or missed alert, wrong direction, flaps).
+    detours = [[r["vehicle"], r["off_delay_s"], r["on_delay_s"], round(r["detour_max_m"], 1)]
+               for r in rows if r["detour"]]
+    notable = [{k: v for k, v in r.items() if k != "cpu_s"} for r in rows
+               if r["false_off"] or r.get("missed") or r["wrong_direction"]
+               or r["fence_extra"] or r["fence_deep_missed"]]
+    (out / "alerts.json").write_text(json.dumps(
+        {"meta": meta, "summary": summary, "detours": detours, "notable_buses": notable},
+        indent=1), encoding="utf-8")
     return 0
 
 
