@@ -242,8 +242,12 @@ class EmbeddedBroker:
         loop = asyncio.get_running_loop()
         ready: asyncio.Future[int] = loop.create_future()
         self._task = asyncio.create_task(self._serve(ready), name="mqtt-broker")
+        waiting: set[asyncio.Future[Any]] = {ready, self._task}
+        await asyncio.wait(waiting, return_when=asyncio.FIRST_COMPLETED)
+        if not ready.done():  # the broker task ended without listening
+            ready.set_exception(DemoError("the broker task ended before listening"))
         try:
-            self.port = await ready
+            self.port = ready.result()
         except OSError as exc:
             raise DemoError(f"cannot listen on {self.host}:{self.port}: {exc}") from exc
         return self.port
@@ -254,11 +258,11 @@ class EmbeddedBroker:
             async with anyio.create_task_group() as tg:
                 port = await tg.start(broker.serve)
                 ready.set_result(int(port))
-        except OSError as exc:
-            if not ready.done():
-                ready.set_exception(exc)
-            else:
+        except Exception as exc:  # anyio may wrap the bind error in an ExceptionGroup
+            if ready.done():
                 raise
+            found = _first_os_error(exc)
+            ready.set_exception(found if found is not None else exc)
 
     async def stop(self) -> None:
         """Close the listener and every client connection."""
@@ -709,6 +713,18 @@ class LiveDemo:
             except UnknownVehicleError:
                 continue
             self.board.set_route(v, status.get("route"), status.get("progress_m"))
+
+
+def _first_os_error(exc: BaseException) -> OSError | None:
+    """The first OSError in ``exc`` or, for an exception group, in its members."""
+    if isinstance(exc, OSError):
+        return exc
+    if isinstance(exc, BaseExceptionGroup):
+        for member in exc.exceptions:
+            found = _first_os_error(member)
+            if found is not None:
+                return found
+    return None
 
 
 def _with_broker(config: DaemonConfig, url: str) -> DaemonConfig:
