@@ -36,10 +36,15 @@ from pathlib import Path
 from typing import Any
 from urllib.parse import urlsplit
 
+from livematch.core.monitors import AlertSettings
 from livematch.core.settings import MatchSettings
 from livematch.errors import BadConfigError
 from livematch.feed.decode import FeedLimits
-from livematch.pipeline import matcher_settings_from_mapping
+from livematch.pipeline import (
+    CONTROL_TOPIC,
+    alert_settings_from_mapping,
+    matcher_settings_from_mapping,
+)
 
 ENV_PREFIX = "LIVEMATCH__"
 USERNAME_ENV = "LIVEMATCH_MQTT_USERNAME"
@@ -75,9 +80,10 @@ class MqttConfig:
     """``[mqtt]``: broker, topics and session. Times in seconds, sizes in bytes.
 
     ``topic`` is the subscription filter; the vehicle id comes from the payload or from
-    the filter's ``+`` level. Output topics are templates with ``{vehicle}``. A
-    persistent MQTT v5 session (``session_expiry_s`` > 0) keeps QoS 1 fixes published
-    while the daemon restarts.
+    the filter's ``+`` level. ``control_topic`` carries route assignments (retained,
+    ``{"route": "550"}``; its ``+`` level is the vehicle; ``""`` subscribes to none).
+    Output topics are templates with ``{vehicle}``. A persistent MQTT v5 session
+    (``session_expiry_s`` > 0) keeps QoS 1 fixes published while the daemon restarts.
     """
 
     url: str = "mqtt://127.0.0.1:1883"
@@ -86,6 +92,7 @@ class MqttConfig:
     session_expiry_s: int = 3600
     qos: int = 1
     keepalive_s: int = 30
+    control_topic: str = CONTROL_TOPIC
     match_topic: str = "livematch/match/{vehicle}"
     commit_topic: str = "livematch/commit/{vehicle}"
     alert_topic: str = "livematch/alert/{vehicle}"
@@ -123,6 +130,20 @@ class MqttConfig:
                 out.append(("topic", f"must not match the output topics "
                                      f"{', '.join('mqtt.' + k for k in clash)} (the daemon "
                                      f"would read its own output), got {self.topic!r}"))
+        if self.control_topic and (not _valid_filter(self.control_topic)
+                                   or self.control_topic.split("/").count("+") != 1):
+            out.append(("control_topic", f"must be an MQTT topic filter with one '+' level "
+                                         f"(the vehicle id), or \"\" for none, "
+                                         f"got {self.control_topic!r}"))
+        elif self.control_topic:
+            clash = [key for key in ("match_topic", "commit_topic", "alert_topic",
+                                     "reject_topic")
+                     if _filter_matches(self.control_topic,
+                                        getattr(self, key).replace("{vehicle}", "v"))]
+            if clash:
+                out.append(("control_topic", f"must not match the output topics "
+                                             f"{', '.join('mqtt.' + k for k in clash)}, "
+                                             f"got {self.control_topic!r}"))
         if not (0 < len(self.client_id) <= 128):
             out.append(("client_id", f"must be 1..128 characters, got {self.client_id!r}"))
         for key in ("match_topic", "commit_topic", "alert_topic"):
@@ -266,6 +287,7 @@ class DaemonConfig:
     source: str = "<defaults>"
     inputs: InputsConfig = field(default_factory=InputsConfig)
     matcher: MatchSettings = field(default_factory=MatchSettings)
+    alerts: AlertSettings = field(default_factory=AlertSettings)
     mqtt: MqttConfig = field(default_factory=MqttConfig)
     store: StoreConfig = field(default_factory=StoreConfig)
     metrics: MetricsConfig = field(default_factory=MetricsConfig)
@@ -284,6 +306,10 @@ _SECTIONS: dict[str, type] = {
     "publish": PublishConfig,
     "log": LogConfig,
 }
+
+# Sections mapped by the pipeline's own functions (so replay and daemon agree) or by
+# the feed's limits.
+_MAPPED = ("alerts", "feed", "matcher")
 
 # Flags of ``livematch run`` and the key each one sets.
 FLAG_KEYS = {
@@ -341,9 +367,9 @@ def load_config(
 
     built: dict[str, Any] = {}
     for section, entries in raw.items():
-        if section not in ("feed", "matcher") and section not in _SECTIONS:
+        if section not in _MAPPED and section not in _SECTIONS:
             where = sorted({origin for _, origin in entries.values()})
-            known = ", ".join(sorted([*_SECTIONS, "feed", "matcher"]))
+            known = ", ".join(sorted([*_SECTIONS, *_MAPPED]))
             problems.append(f"{', '.join(where)}: unknown section [{section}] "
                             f"(expected one of {known})")
     for section, cls in _SECTIONS.items():
@@ -351,7 +377,11 @@ def load_config(
         value, found = _build_section(section, cls, entries)
         problems.extend(found)
         built[section] = value
-    built["matcher"], found = _build_matcher(raw.get("matcher", {}))
+    built["matcher"], found = _build_mapped("matcher", raw.get("matcher", {}),
+                                            matcher_settings_from_mapping, MatchSettings)
+    problems.extend(found)
+    built["alerts"], found = _build_mapped("alerts", raw.get("alerts", {}),
+                                           alert_settings_from_mapping, AlertSettings)
     problems.extend(found)
     feed, feed_problems = _build_feed(built["mqtt"], raw.get("feed", {}))
     problems.extend(feed_problems)
@@ -467,11 +497,12 @@ def _coerce(value: Any, hint: Any) -> tuple[Any, str]:
     return value, ""
 
 
-def _build_matcher(entries: Mapping[str, tuple[Any, str]]) -> tuple[MatchSettings, list[str]]:
-    """``[matcher]`` through the pipeline's own mapper, so replay and daemon agree.
+def _build_mapped(section_name: str, entries: Mapping[str, tuple[Any, str]],
+                  mapper: Any, default: type) -> tuple[Any, list[str]]:
+    """A section through the pipeline's own mapper (``[matcher]``, ``[alerts]``).
 
     Keys are grouped by where they came from (file, variable, flag) so that every
-    message names the right origin.
+    message names the right origin; then the merged section is mapped once more.
     """
     by_origin: dict[str, dict[str, Any]] = {}
     for key, (value, origin) in entries.items():
@@ -479,18 +510,18 @@ def _build_matcher(entries: Mapping[str, tuple[Any, str]]) -> tuple[MatchSetting
     problems: list[str] = []
     for origin, section in by_origin.items():
         try:
-            matcher_settings_from_mapping(section, origin)
+            mapper(section, origin)
         except BadConfigError as exc:
             problems.extend(str(exc).splitlines())
     if problems:
-        return MatchSettings(), problems
+        return default(), problems
     merged = {key: value for key, (value, _) in entries.items()}
     try:
-        return matcher_settings_from_mapping(merged, "matcher"), []
+        return mapper(merged, section_name), []
     except BadConfigError as exc:  # valid alone, invalid together
         where = ", ".join(sorted(by_origin))
-        return MatchSettings(), [f"{where}: {line.split(': ', 1)[1]}"
-                                 for line in str(exc).splitlines()]
+        return default(), [f"{where}: {line.split(': ', 1)[1]}"
+                           for line in str(exc).splitlines()]
 
 
 def _build_feed(mqtt: MqttConfig, entries: Mapping[str, tuple[Any, str]]

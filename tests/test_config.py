@@ -3,12 +3,14 @@
 from __future__ import annotations
 
 import os
+import re
 from pathlib import Path
 
 import pytest
 
 from livematch.cli import main
 from livematch.config import DaemonConfig, load_config, parse_hostport
+from livematch.core.monitors import AlertSettings
 from livematch.core.settings import MatchSettings
 from livematch.errors import BadConfigError
 
@@ -40,6 +42,7 @@ def test_load_config_example_file_is_valid() -> None:
     cfg = load_config(EXAMPLE, env={})
     assert cfg.inputs.network == str(EXAMPLE.parent / "city.lmnet")
     assert cfg.matcher == MatchSettings(eps_levels=(15.0, 30.0, 60.0))
+    assert cfg.alerts == AlertSettings(stale_s=120.0)
     assert cfg.mqtt == DaemonConfig().mqtt
     assert cfg.store == DaemonConfig().store
     assert cfg.publish == DaemonConfig().publish
@@ -217,10 +220,24 @@ def test_cli_run_refuses_bad_config(tmp_path: Path, capsys: pytest.CaptureFixtur
     assert "no road network: give --network PATH" in capsys.readouterr().err
 
 
-def test_cli_run_refuses_routes_until_supported(capsys: pytest.CaptureFixture[str],
-                                                monkeypatch: pytest.MonkeyPatch) -> None:
-    """--routes is accepted by the parser but refused at start, naming the key."""
-    for name in [n for n in os.environ if n.startswith("LIVEMATCH")]:
-        monkeypatch.delenv(name)
-    assert main(["run", "--network", "x.lmnet", "--routes", "r.json"]) == 2
-    assert "inputs.routes (--routes): routes are not supported" in capsys.readouterr().err
+def test_load_config_alerts_section(tmp_path: Path) -> None:
+    """[alerts] goes through the pipeline's mapper; errors name the file and key."""
+    path = write(tmp_path, "[alerts]\neps_route_m = 45\nstale_s = 60\n")
+    cfg = load_config(path, env={"LIVEMATCH__ALERTS__FENCE_FIXES": "3"})
+    assert (cfg.alerts.eps_route_m, cfg.alerts.stale_s, cfg.alerts.fence_fixes) == (45, 60, 3)
+    bad = write(tmp_path, "[alerts]\nfence_fixes = 1.5\n", "bad.toml")
+    with pytest.raises(BadConfigError) as err:
+        load_config(bad, env={})
+    assert str(err.value) == f"{bad}: alerts.fence_fixes must be an integer, got 1.5"
+
+
+def test_load_config_control_topic(tmp_path: Path) -> None:
+    """The control filter needs one '+' and must not match an output topic; "" disables."""
+    assert load_config(None, env={}).mqtt.control_topic == "livematch/control/+/route"
+    assert load_config(None, env={"LIVEMATCH__MQTT__CONTROL_TOPIC": '""'}
+                       ).mqtt.control_topic == ""
+    for value, message in (("ctl/route", "must be an MQTT topic filter with one '+'"),
+                           ("livematch/match/+", "must not match the output topics")):
+        with pytest.raises(BadConfigError, match=re.escape(message)):
+            load_config(None, env={"LIVEMATCH__MQTT__CONTROL_TOPIC": value})
+

@@ -14,18 +14,21 @@ import pytest
 import redis
 from prometheus_client.parser import text_string_to_metric_families
 from services import (
+    PROJECTION,
     T0,
     Collector,
     Mosquitto,
     RedisServer,
     drive,
     http_get,
+    position,
     publisher,
     town,
     write_config,
 )
 
 from livematch.cli import main
+from livematch.commands.run import build_daemon
 from livematch.config import load_config
 from livematch.feed.replaylog import ReplayLogWriter
 from livematch.mapdata.netfile import save_network
@@ -482,3 +485,57 @@ async def test_daemon_vehicle_from_payload_when_topic_has_none(mosquitto: Mosqui
         await col.wait_for("/out/rejects", 1)
     assert [a["time"] for a in col.records("/out/match/tram-4")] == [t for t, _ in fixes]
     assert [r["reason"] for r in col.records("/out/rejects")] == ["missing_field"]
+
+
+async def test_daemon_routes_fences_and_control_alerts_equal_pipeline(
+        mosquitto: Mosquitto, prefix: str, tmp_path: Path) -> None:
+    """Routes and fences from files, a retained route control message: the daemon's
+    alerts (off route, fence enter/exit) equal the same messages through the Pipeline."""
+    net = tmp_path / "town.lmnet"
+    save_network(town(), net)
+    (tmp_path / "routes.geojson").write_text(json.dumps({"type": "FeatureCollection",
+        "features": [{"type": "Feature", "id": "R-side", "properties": {"ways": [2]},
+                      "geometry": None},
+                     {"type": "Feature", "id": "R-main", "properties": {"ways": [1]},
+                      "geometry": None}]}))
+    corners = [PROJECTION.to_lonlat(x, y) for x, y in
+               ((1500, -60), (1700, -60), (1700, 60), (1500, 60), (1500, -60))]
+    (tmp_path / "fences.geojson").write_text(json.dumps({"type": "FeatureCollection",
+        "features": [{"type": "Feature", "id": "depot", "properties": {"name": "Depot"},
+                      "geometry": {"type": "Polygon", "coordinates": [
+                          [[float(lon), float(lat)] for lon, lat in corners]]}}]}))
+    cfg = write_config(tmp_path, prefix, broker=mosquitto.url, network=str(net))
+    text = cfg.read_text().replace(
+        "[inputs]\n", '[inputs]\nroutes = "routes.geojson"\nfences = "fences.geojson"\n')
+    cfg.write_text(text.replace(
+        "[mqtt]\n", f'[mqtt]\ncontrol_topic = "{prefix}/control/+/route"\n'))
+    config = load_config(cfg, env={})
+    control = (f"{prefix}/control/bus-1/route", b'{"route": "R-side"}')
+    bus1 = drive("bus-1", 60)  # on Main Street while assigned Side Street: off route
+    bus2 = drive("bus-2", 60, start_x=1300.0)  # R-main in its fixes; through the depot
+    bus2 = [(t, position("bus-2", t, 1300.0 + i * 12.0, 0.0, route="R-main"))
+            for i, (t, _) in enumerate(bus2)]
+    fixes = [(f"{prefix}/fleet/bus-{k}/position", feed[i][1])
+             for i in range(60) for k, feed in ((1, bus1), (2, bus2))]
+    expected = build_daemon(config).pipeline
+    direct_out = [o for topic, payload in [control, *fixes]
+                  for o in expected.handle(topic, payload, at=0.0)]
+    want_alerts = [o.record for o in direct_out if o.kind == "alert"]
+    kinds = {a["kind"] for a in want_alerts}
+    assert {"off_route", "fence_enter", "fence_exit"} <= kinds  # the scenario is meaningful
+    daemon = build_daemon(config)
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col, \
+            running(daemon), publisher(mosquitto.port) as pub:
+        await pub.publish(*control, qos=1, retain=True)
+        for _ in range(200):
+            if daemon.pipeline.counters["control"] == 1:
+                break
+            await asyncio.sleep(0.02)
+        for topic, payload in fixes:
+            await pub.publish(topic, payload, qos=1)
+        await col.wait_for("/out/alert/", len(want_alerts))
+        await col.wait_for("/out/match/", sum(o.kind == "assignment" for o in direct_out))
+        await pub.publish(control[0], b"", qos=1, retain=True)  # clear the retained message
+    for vehicle in ("bus-1", "bus-2"):
+        assert col.records(f"/out/alert/{vehicle}") == [
+            a for a in want_alerts if a["vehicle"] == vehicle]

@@ -38,8 +38,9 @@ def register(subparsers: Any) -> None:
     parser.add_argument("--metrics", metavar="HOST:PORT",
                         help="listen address of /metrics, /healthz, /readyz "
                              "(default 127.0.0.1:9750)")
-    parser.add_argument("--routes", metavar="PATH", help="assigned routes file")
-    parser.add_argument("--fences", metavar="PATH", help="geofences file")
+    parser.add_argument("--routes", metavar="PATH",
+                        help="routes: GeoJSON lines or a GTFS feed (.zip or folder)")
+    parser.add_argument("--fences", metavar="PATH", help="geofences: GeoJSON polygons")
     parser.set_defaults(func=_run)
 
 
@@ -55,21 +56,25 @@ def _run(args: argparse.Namespace) -> int:
 
 def build_daemon(config: DaemonConfig) -> Any:
     """Open the network and build the pipeline and daemon described by ``config``."""
+    from livematch.mapdata.fences import read_fences
     from livematch.mapdata.netfile import open_network
+    from livematch.mapdata.routes import load_routes
     from livematch.pipeline import Pipeline
     from livematch.service.daemon import Daemon
 
     if not config.inputs.network:
         raise BadConfigError(f"{config.source}: no road network: give --network PATH or "
                              "inputs.network in the configuration")
-    for key in ("routes", "fences"):
-        if getattr(config.inputs, key):
-            raise BadConfigError(f"inputs.{key} (--{key}): {key} are not supported by the "
-                                 "daemon yet; leave it empty")
     network = open_network(config.inputs.network)
-    log.info("network loaded", extra=fields(path=config.inputs.network,
-                                            segments=network.n_segments))
-    pipeline = Pipeline(network, config.matcher, limits=config.feed)
+    routes = load_routes(config.inputs.routes, network) if config.inputs.routes else None
+    fences = (read_fences(config.inputs.fences, network.projection)
+              if config.inputs.fences else None)
+    log.info("network loaded", extra=fields(
+        path=config.inputs.network, segments=network.n_segments,
+        routes=len(routes or {}), fences=len(fences or [])))
+    pipeline = Pipeline(network, config.matcher, limits=config.feed, routes=routes,
+                        fences=fences, alerts=config.alerts,
+                        control_topic=config.mqtt.control_topic)
     return Daemon(config, pipeline)
 
 

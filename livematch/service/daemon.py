@@ -9,7 +9,8 @@ One :class:`Daemon` runs these named tasks under one :class:`asyncio.TaskGroup`:
   the queue only once the broker acknowledged it, so a broker outage delays outputs
   but loses none);
 - ``checkpoint``: write vehicles' state every K fixes or T seconds, the latest
-  assignments, and evict idle vehicles;
+  assignments, evict idle vehicles, and (while connected) give the pipeline the clock
+  for ``stale`` alerts of silent vehicles;
 - ``store-watch``: ping the store for ``/readyz``.
 
 Bad input never stops the daemon: the pipeline turns it into a reject record that goes
@@ -92,6 +93,9 @@ class PipelineLike(Protocol):
 
     def vehicles(self) -> list[str]:
         """Vehicles with state in memory."""
+
+    def tick(self, now: float) -> list[Any]:
+        """Stale alerts at receive time ``now`` (epoch seconds)."""
 
     def evict_idle(self, now_fix_time: float, ttl_s: float, *,
                    into: list[Any] | None = None) -> list[str]:
@@ -258,6 +262,9 @@ class Daemon:
                 await asyncio.wait_for(self._checkpoint_due.wait(), timeout=_TICK_S)
             self._checkpoint_due.clear()
             try:
+                if self.broker_connected:  # a silent vehicle goes stale on the clock
+                    for out in self.pipeline.tick(time.time()):
+                        self._route(out)
                 await self._flush_state(everything=False)
                 await self._evict_idle()
             except StoreError as exc:
@@ -375,6 +382,8 @@ class Daemon:
                     self.broker_connected = True
                     backoff.reset()
                     await client.subscribe(cfg.topic, qos=cfg.qos)
+                    if cfg.control_topic:
+                        await client.subscribe(cfg.control_topic, qos=cfg.qos)
                     log.info("connected and subscribed",
                              extra=fields(broker=redact_url(cfg.url), topic=cfg.topic,
                                           client_id=cfg.client_id, queued=len(self._outbox)))
@@ -456,8 +465,10 @@ class Daemon:
             payload = str(payload).encode()
         topic = message.topic.value
         started = time.perf_counter()
+        at = time.time()
         try:
-            outputs = self.pipeline.handle(topic, bytes(payload), time.time())
+            outputs = self.pipeline.handle(topic, bytes(payload), at)
+            outputs += self.pipeline.tick(at)  # as replay does after every message
         except Exception as exc:  # a bug must not stop the feed: reject, log, go on
             log.exception("pipeline error", extra=fields(topic=topic))
             outputs = [_internal_reject(topic, bytes(payload), exc)]
