@@ -22,6 +22,7 @@ and truth files, the outputs as read back from the broker (``live/*.jsonl``), an
 (unless ``--no-report``) the replay lab's report ``replay/report.html``, made by the
 ``livematch replay ... --report`` command it prints, which reopens the run any time.
 
+Ctrl-C ends the feed early; the daemon still drains and everything above is written.
 The scenario and the matcher are deterministic; only the pacing reads the wall clock.
 """
 
@@ -138,7 +139,7 @@ def _run(args: argparse.Namespace) -> int:
     scenario = build_scenario(build_town(), buses=LIVE_FLEET,
                               duration_s=float(math.ceil(scenario_s)))
     vehicles = select_vehicles(scenario, args.vehicles)
-    write_demo_files(files, scenario, vehicles)
+    write_demo_files(files, scenario)
 
     tty = sys.stdout.isatty()
     live_display: Any = None
@@ -205,7 +206,7 @@ def _summary(result: Any, files: Any) -> None:
         _say(f"  alert {_clock(alert.get('time'))} {alert.get('vehicle')} "
              f"{alert.get('kind')} {facts}")
     _say(f"replay log: {files.log}")
-    _say(f"live outputs: {files.live}/")
+    _say(f"live outputs: {files.live}/ (log: {files.out / 'demo.log'})")
 
 
 def _log_to(path: Path) -> None:

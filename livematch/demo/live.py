@@ -32,9 +32,10 @@ import gzip
 import json
 import logging
 import math
+import signal
 import time
 from collections import Counter, deque
-from collections.abc import AsyncIterator, Awaitable, Callable, Mapping, Sequence
+from collections.abc import AsyncIterator, Awaitable, Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
@@ -62,7 +63,9 @@ __all__ = [
     "encode_payload",
     "publish_feed",
     "select_vehicles",
+    "truth_until",
     "write_demo_files",
+    "write_truth",
 ]
 
 log = logging.getLogger("livematch.demo")
@@ -172,22 +175,14 @@ class DemoFiles:
         return self.out / "replay"
 
 
-def write_demo_files(files: DemoFiles, scenario: Scenario, vehicles: Sequence[str]) -> None:
-    """Write the network, routes, fences and truth (of ``vehicles`` only) into ``files.out``.
+def write_demo_files(files: DemoFiles, scenario: Scenario) -> None:
+    """Write the network, routes and fences into ``files.out`` (created if missing).
 
     Raises:
         DemoError: when a file cannot be written (naming it).
     """
     from livematch.demo.town import roads_geojson
 
-    keep = set(vehicles)
-    truth = []
-    for rec in scenario.truth_records():
-        if rec["kind"] == "header":
-            rec = {**rec, "vehicles": [v for v in rec["vehicles"] if v["vehicle"] in keep]}
-        elif rec.get("vehicle") not in keep:
-            continue
-        truth.append(rec)
     try:
         files.out.mkdir(parents=True, exist_ok=True)
         for path, doc in ((files.network, roads_geojson(scenario.town)),
@@ -195,11 +190,53 @@ def write_demo_files(files: DemoFiles, scenario: Scenario, vehicles: Sequence[st
                           (files.fences, scenario.fences_geojson())):
             path.write_text(json.dumps(doc, separators=(",", ":"), ensure_ascii=False) + "\n",
                             encoding="utf-8")
-        with gzip.open(files.truth, "wb") as gz:
-            for rec in truth:
-                gz.write(encode_payload(rec) + b"\n")
     except OSError as exc:
         raise DemoError(f"cannot write the demo files into {str(files.out)!r}: {exc}") from exc
+
+
+def truth_until(scenario: Scenario, vehicles: Sequence[str], until_t: float
+                ) -> list[dict[str, Any]]:
+    """The truth records of ``vehicles`` up to fix time ``until_t`` (epoch s).
+
+    The header lists only those vehicles and its ``duration_s`` ends at ``until_t``;
+    ``fix`` records after it and incidents starting after it are left out, so that a
+    run stopped early is scored only on what was published.
+
+    Example (fixes at 0, 1, 2, 3 s; degenerate: no vehicle kept):
+        >>> from livematch.demo.scenario import build_scenario
+        >>> s = build_scenario(duration_s=3.0, buses={"L2": 1}, vans=0)
+        >>> [r["kind"] for r in truth_until(s, ["bus-21"], s.start_time + 1.0)]
+        ['header', 'path', 'fix', 'fix']
+        >>> [r["kind"] for r in truth_until(s, [], s.start_time)]
+        ['header']
+    """
+    keep = set(vehicles)
+    out: list[dict[str, Any]] = []
+    for rec in scenario.truth_records():
+        if rec["kind"] == "header":
+            rec = {**rec, "vehicles": [v for v in rec["vehicles"] if v["vehicle"] in keep],
+                   "duration_s": round(max(0.0, until_t - scenario.start_time), 3)}
+        else:
+            late = ((rec["kind"] == "fix" and rec["time"] > until_t)
+                    or (rec["kind"] == "incident" and rec["start"] > until_t))
+            if rec.get("vehicle") not in keep or late:
+                continue
+        out.append(rec)
+    return out
+
+
+def write_truth(path: Path, records: Iterable[Mapping[str, Any]]) -> None:
+    """Write truth records as gzip JSON Lines.
+
+    Raises:
+        DemoError: when the file cannot be written.
+    """
+    try:
+        with gzip.open(path, "wb") as gz:
+            for rec in records:
+                gz.write(encode_payload(rec) + b"\n")
+    except OSError as exc:
+        raise DemoError(f"cannot write the truth file {str(path)!r}: {exc}") from exc
 
 
 # --- broker ------------------------------------------------------------------------------
@@ -284,6 +321,7 @@ async def publish_feed(
     clock: Callable[[], float] = time.monotonic,
     sleep: Callable[[float], Awaitable[Any]] = asyncio.sleep,
     on_publish: Callable[[Message, bytes], None] | None = None,
+    stop: asyncio.Event | None = None,
 ) -> int:
     """Publish ``messages`` (QoS 1) paced by their ``at``; returns how many went out.
 
@@ -301,6 +339,8 @@ async def publish_feed(
         clock: the wall clock (monotonic seconds).
         sleep: how to wait.
         on_publish: called once per acknowledged message.
+        stop: when set, publishing ends before the next batch (a batch in flight
+            completes, so every message sent is also passed to ``on_publish``).
     """
     if not messages:
         return 0
@@ -314,7 +354,13 @@ async def publish_feed(
         due = start + (messages[i].at - first_at) / speedup
         wait = due - clock()
         if wait > 0:
-            await sleep(wait)
+            if stop is None:
+                await sleep(wait)
+            else:
+                with contextlib.suppress(TimeoutError):
+                    await asyncio.wait_for(stop.wait(), timeout=wait)
+        if stop is not None and stop.is_set():
+            break
         now_at = first_at + (clock() - start) * speedup
         batch = [messages[i]]
         i += 1
@@ -560,12 +606,18 @@ class LiveDemo:
         self.messages = [m for m in scenario.messages() if m.payload["vehicle"] in keep]
         self._started = 0.0
         self._first_at = self.messages[0].at if self.messages else None
+        self._stop = asyncio.Event()
+
+    def request_stop(self) -> None:
+        """End the feed early (Ctrl-C); the daemon drains and the files are still written."""
+        self._stop.set()
 
     def scenario_time(self) -> float | None:
         """The scenario's clock now (epoch s), None before publishing starts."""
         if self._first_at is None or not self._started:
             return None
-        return self._first_at + (time.monotonic() - self._started) * self.speedup
+        elapsed = min(time.monotonic() - self._started, self.duration_s)
+        return self._first_at + elapsed * self.speedup
 
     async def run(self) -> DemoResult:
         """Run the demo to its end; returns what happened.
@@ -575,6 +627,9 @@ class LiveDemo:
         """
         wall0 = time.monotonic()
         url = f"mqtt://127.0.0.1:{await self.broker.start()}"
+        loop = asyncio.get_running_loop()
+        with contextlib.suppress(NotImplementedError, RuntimeError):  # not main thread
+            loop.add_signal_handler(signal.SIGINT, self.request_stop)
         try:
             if self.on_broker is not None:
                 self.on_broker(url)
@@ -582,6 +637,8 @@ class LiveDemo:
             daemon = build_demo_daemon(config, self.files, self.config_path)
             return await self._run_with(daemon, url, wall0)
         finally:
+            with contextlib.suppress(NotImplementedError, RuntimeError):
+                loop.remove_signal_handler(signal.SIGINT)
             await self.broker.stop()
 
     async def _run_with(self, daemon: Any, url: str, wall0: float) -> DemoResult:
@@ -625,6 +682,9 @@ class LiveDemo:
             raise DemoError(f"the daemon failed: {daemon_task.exception()}") \
                 from daemon_task.exception()
         last_at = self.messages[published - 1].at if published else None
+        last_t = max((float(m.payload["time"]) for m in self.messages[:published]),
+                     default=self.scenario.start_time)
+        write_truth(self.files.truth, truth_until(self.scenario, self.vehicles, last_t))
         return DemoResult(url, self.vehicles, published, Counter(self.board.counts),
                           list(self.board.all_alerts), Counter(daemon.pipeline.counters),
                           time.monotonic() - wall0, self._first_at, last_at)
@@ -657,7 +717,7 @@ class LiveDemo:
         self._started = time.monotonic()
         publishing = asyncio.create_task(
             publish_feed(fleet, self.messages, speedup=self.speedup, until_at=until,
-                         on_publish=record), name="demo-fleet")
+                         on_publish=record, stop=self._stop), name="demo-fleet")
         try:
             await asyncio.wait({publishing, daemon_task}, return_when=asyncio.FIRST_COMPLETED)
             if not publishing.done():
