@@ -216,3 +216,35 @@ def test_lab_refuses_two_settings_with_one_name(tmp_path, capsys):
     assert _lab(tmp_path / "out", tmp_path / "a" / "x.toml", tmp_path / "b" / "x.toml") == 2
     err = capsys.readouterr().err
     assert "have the same name 'x'" in err and not (tmp_path / "out").exists()
+
+
+def test_lab_settings_that_differ_in_alerts(tmp_path):
+    """A twitchy [alerts] setting raises more off-route alerts on the same log; the table,
+    compare.json, each summary and diff.jsonl all say so with the same numbers."""
+    calm = tmp_path / "calm.toml"
+    calm.write_text("[alerts]\noff_route_s = 10.0\n")
+    twitchy = tmp_path / "twitchy.toml"
+    twitchy.write_text("[alerts]\neps_route_m = 20.0\noff_route_s = 3.0\noff_route_m = 20.0\n")
+    out = tmp_path / "out"
+    buf = io.StringIO()
+    with contextlib.redirect_stdout(buf):
+        assert _lab(out, calm, twitchy, extra=("--truth", str(TRUTH))) == 0
+    rows = json.loads((out / "compare.json").read_text())["settings"]
+    by = {r["setting"]: r for r in rows}
+    for name, row in by.items():
+        alerts = _lines(out / name / "alerts.jsonl")
+        summary = json.loads((out / name / "summary.json").read_text())
+        kinds = Counter(a["kind"] for a in alerts)
+        assert row["alerts"] == summary["alerts"] == len(alerts)
+        assert row["alerts_by_kind"]["off_route"] == kinds["off_route"]
+    assert by["twitchy"]["alerts_by_kind"]["off_route"] > by["calm"]["alerts_by_kind"][
+        "off_route"] >= 1
+    assert by["twitchy"]["false_alerts"] > by["calm"]["false_alerts"]
+    md = _table((out / "compare.md").read_text())
+    assert md["alert: off_route"] == [str(by["calm"]["alerts_by_kind"]["off_route"]),
+                                      str(by["twitchy"]["alerts_by_kind"]["off_route"])]
+    assert md == _table(buf.getvalue())
+    moved = [r for r in _lines(out / "diff.jsonl") if r["what"] == "alert"]
+    extra = by["twitchy"]["alerts"] - by["calm"]["alerts"]
+    assert sum(r["a_time"] is None for r in moved) - sum(r["b_time"] is None for r in moved) \
+        == extra
