@@ -346,6 +346,10 @@ class RecordingPipeline:
         """The wrapped pipeline's counters."""
         return self.pipeline.counters
 
+    @counters.setter
+    def counters(self, value: Counter[str]) -> None:
+        self.pipeline.counters = value
+
     def tick(self, now: float) -> list[Output]:
         """See :meth:`Pipeline.tick`."""
         return self.pipeline.tick(now)
