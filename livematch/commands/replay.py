@@ -82,7 +82,7 @@ def register(subparsers: Any) -> None:
     parser.add_argument("--out", metavar="DIR",
                         help="folder to write the outputs into (created if missing)")
     parser.add_argument("--config", metavar="FILE", action="append",
-                        help="daemon TOML configuration; its [matcher] section applies; "
+                        help="daemon TOML configuration; its [matcher] and [alerts] apply; "
                              "repeat it to compare settings (outputs in DIR/<file stem>/)")
     parser.add_argument("--routes", metavar="FILE",
                         help="routes: GeoJSON lines or a GTFS feed (.zip or folder)")
