@@ -169,7 +169,7 @@ def _run(args: argparse.Namespace) -> int:
 
     demo = LiveDemo(scenario, vehicles, config, files, duration_s=args.duration,
                     speedup=args.speedup, port=args.port, on_broker=on_broker,
-                    on_tick=on_tick, config_path=args.config)
+                    on_tick=on_tick)
     try:
         result = asyncio.run(demo.run())
     finally:

@@ -528,28 +528,20 @@ def _clock(t: Any) -> str:
 
 # --- the daemon ----------------------------------------------------------------------------
 
-def build_demo_daemon(config: DaemonConfig, files: DemoFiles, config_path: str | None
-                      ) -> Any:
-    """The daemon of ``config`` over the demo town, its routes and fences.
+def build_demo_daemon(config: DaemonConfig, files: DemoFiles) -> Any:
+    """The daemon exactly as ``livematch run`` builds it, over the demo's own inputs.
 
-    The network, routes and fences are read back from the files the demo wrote, exactly
-    as ``livematch replay`` reads them, so a replay of the log matches the same data.
-    Alert settings come from ``config_path`` as the replay reads them.
+    ``inputs.network``, ``inputs.routes`` and ``inputs.fences`` point at the files the
+    demo wrote, which ``livematch replay`` reads the same way, so a replay of the log
+    matches against the same data. The rest (matcher, alerts, publish...) is ``config``.
     """
-    from livematch.commands.replay import load_alert_config
-    from livematch.mapdata.fences import read_fences
-    from livematch.mapdata.netfile import open_network
-    from livematch.mapdata.routes import load_routes
-    from livematch.pipeline import Pipeline
-    from livematch.service.daemon import Daemon
+    from dataclasses import replace
 
-    network = open_network(files.network)
-    routes = load_routes(files.routes, network)
-    fences = read_fences(files.fences, network.projection)
-    alerts, _, _ = load_alert_config(config_path)
-    pipeline = Pipeline(network, config.matcher, limits=config.feed, routes=routes,
-                        fences=fences, alerts=alerts)
-    return Daemon(config, pipeline)
+    from livematch.commands.run import build_daemon
+
+    inputs = replace(config.inputs, network=str(files.network), routes=str(files.routes),
+                     fences=str(files.fences))
+    return build_daemon(replace(config, inputs=inputs))
 
 
 # --- the whole demo ----------------------------------------------------------------------------
@@ -583,14 +575,12 @@ class LiveDemo:
         port: the broker's port (0: a free one).
         on_broker: called with the broker URL as soon as it listens.
         on_tick: called about 4 times a second with the board (the CLI draws it).
-        config_path: the config file (for the alert settings), or None.
     """
 
     def __init__(self, scenario: Scenario, vehicles: Sequence[str], config: DaemonConfig,
                  files: DemoFiles, *, duration_s: float, speedup: float, port: int = 0,
                  on_broker: Callable[[str], None] | None = None,
-                 on_tick: Callable[[Board, float, float | None], None] | None = None,
-                 config_path: str | None = None) -> None:
+                 on_tick: Callable[[Board, float, float | None], None] | None = None) -> None:
         self.scenario = scenario
         self.vehicles = list(vehicles)
         self.config = config
@@ -600,7 +590,6 @@ class LiveDemo:
         self.broker = EmbeddedBroker(port=port)
         self.on_broker = on_broker
         self.on_tick = on_tick
-        self.config_path = config_path
         self.board = Board(config.mqtt, self.vehicles)
         keep = set(self.vehicles)
         self.messages = [m for m in scenario.messages() if m.payload["vehicle"] in keep]
@@ -634,7 +623,7 @@ class LiveDemo:
             if self.on_broker is not None:
                 self.on_broker(url)
             config = _with_broker(self.config, url)
-            daemon = build_demo_daemon(config, self.files, self.config_path)
+            daemon = build_demo_daemon(config, self.files)
             return await self._run_with(daemon, url, wall0)
         finally:
             with contextlib.suppress(NotImplementedError, RuntimeError):
