@@ -222,7 +222,8 @@ def _log_to(path: Path) -> None:
 
 def main(argv: Sequence[str] | None = None) -> int:
     """``python -m livematch.commands.demo``: the same command without the full CLI."""
-    parser = argparse.ArgumentParser(prog="livematch demo", description=__doc__.split("\n")[0])
+    parser = argparse.ArgumentParser(prog="livematch demo",
+                                     description=(__doc__ or "").split("\n")[0])
     add_arguments(parser)
     args = parser.parse_args(argv)
     try:
