@@ -16,6 +16,7 @@ import os
 import shutil
 import signal
 import socket
+import ssl
 import subprocess
 import time
 import uuid
@@ -66,10 +67,23 @@ class Mosquitto:
     port: int = field(default_factory=free_port)
     proc: subprocess.Popen[bytes] | None = None
     users: dict[str, str] = field(default_factory=dict)  # empty: anonymous access
+    tls: bool = False  # TLS listener with a certificate of a CA made for this broker
+
+    @property
+    def ca_file(self) -> Path:
+        return self.folder / "ca.crt"
+
+    def _tls_lines(self) -> str:
+        if not self.tls:
+            return ""
+        if not self.ca_file.exists():
+            make_test_certificates(self.folder)
+        return (f"cafile {self.ca_file}\ncertfile {self.folder / 'server.crt'}\n"
+                f"keyfile {self.folder / 'server.key'}\n")
 
     @property
     def url(self) -> str:
-        return f"mqtt://127.0.0.1:{self.port}"
+        return f"{'mqtts' if self.tls else 'mqtt'}://127.0.0.1:{self.port}"
 
     def _auth_lines(self) -> str:
         if not self.users:
@@ -90,7 +104,7 @@ class Mosquitto:
             # as root mosquitto would switch to user "mosquitto", which cannot write
             # the persistence file into the test's private folder: stay who we are
             f"user {getpass.getuser()}\n"
-            + self._auth_lines() +
+            + self._auth_lines() + self._tls_lines() +
             "persistence true\n"
             f"persistence_location {self.folder}/\n"
             "max_queued_messages 100000\n"
@@ -111,6 +125,21 @@ class Mosquitto:
                 self.proc.kill()
                 self.proc.wait()
         self.proc = None
+
+
+def make_test_certificates(folder: Path) -> None:
+    """A throw-away CA (ca.crt) and a server certificate for 127.0.0.1, with openssl."""
+    def run(*args: str) -> None:
+        subprocess.run(["openssl", *args], cwd=folder, check=True,
+                       stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+
+    key = ["-newkey", "ec", "-pkeyopt", "ec_paramgen_curve:prime256v1", "-nodes"]
+    run("req", "-x509", *key, "-keyout", "ca.key", "-out", "ca.crt", "-days", "2",
+        "-subj", "/CN=livematch test CA")
+    run("req", *key, "-keyout", "server.key", "-out", "server.csr", "-subj", "/CN=127.0.0.1")
+    (folder / "ext.cnf").write_text("subjectAltName=IP:127.0.0.1\nbasicConstraints=CA:FALSE\n")
+    run("x509", "-req", "-in", "server.csr", "-CA", "ca.crt", "-CAkey", "ca.key",
+        "-CAcreateserial", "-out", "server.crt", "-days", "2", "-extfile", "ext.cnf")
 
 
 @dataclass
@@ -166,6 +195,7 @@ class Collector:
     port: int
     topic_filter: str
     client_id: str = field(default_factory=lambda: f"collector-{uuid.uuid4().hex[:8]}")
+    tls_context: ssl.SSLContext | None = None
     messages: list[tuple[str, bytes, bool]] = field(default_factory=list)
     subscribed: asyncio.Event = field(default_factory=asyncio.Event)
     _task: asyncio.Task[None] | None = None
@@ -176,7 +206,7 @@ class Collector:
                 async with aiomqtt.Client(
                     self.host, self.port, identifier=self.client_id,
                     protocol=aiomqtt.ProtocolVersion.V5, clean_start=False,
-                    properties=_session_props(600),
+                    properties=_session_props(600), tls_context=self.tls_context,
                 ) as client:
                     await client.subscribe(self.topic_filter, qos=1)
                     self.subscribed.set()
@@ -217,10 +247,11 @@ class Collector:
 
 
 @contextlib.asynccontextmanager
-async def publisher(port: int) -> AsyncIterator[aiomqtt.Client]:
+async def publisher(port: int, tls_context: ssl.SSLContext | None = None
+                    ) -> AsyncIterator[aiomqtt.Client]:
     """A connected client for publishing test input."""
-    async with aiomqtt.Client("127.0.0.1", port,
-                              identifier=f"pub-{uuid.uuid4().hex[:8]}") as client:
+    async with aiomqtt.Client("127.0.0.1", port, identifier=f"pub-{uuid.uuid4().hex[:8]}",
+                              tls_context=tls_context) as client:
         yield client
 
 

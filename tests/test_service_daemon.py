@@ -6,6 +6,7 @@ import asyncio
 import contextlib
 import json
 import logging
+import ssl
 from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import Any
@@ -539,3 +540,33 @@ async def test_daemon_routes_fences_and_control_alerts_equal_pipeline(
     for vehicle in ("bus-1", "bus-2"):
         assert col.records(f"/out/alert/{vehicle}") == [
             a for a in want_alerts if a["vehicle"] == vehicle]
+
+
+async def test_daemon_over_tls_with_own_ca(tmp_path: Path, prefix: str) -> None:
+    """mqtts:// with mqtt.ca_file: the daemon verifies the broker and works as over TCP."""
+    broker = Mosquitto(tmp_path / "tls", tls=True)
+    broker.start()
+    try:
+        cfg = write_config(tmp_path, prefix, broker=broker.url)
+        cfg.write_text(cfg.read_text().replace(
+            "[mqtt]\n", f'[mqtt]\nca_file = "{broker.ca_file}"\n'))
+        context = ssl.create_default_context(cafile=str(broker.ca_file))
+        fixes = drive("bus-t", 3)
+        daemon = make_daemon(cfg)
+        async with Collector("127.0.0.1", broker.port, f"{prefix}/out/match/#",
+                             tls_context=context) as col, running(daemon), \
+                publisher(broker.port, context) as pub:
+            for _, payload in fixes:
+                await pub.publish(f"{prefix}/fleet/bus-t/position", payload, qos=1)
+            await col.wait_for("/out/match/", 3)
+        # without the CA the broker's certificate is refused: never ready
+        cfg.write_text(cfg.read_text().replace(f'ca_file = "{broker.ca_file}"\n', ""))
+        untrusting = make_daemon(cfg)
+        task = asyncio.create_task(untrusting.run())
+        await asyncio.sleep(1.0)
+        assert untrusting.readiness() == ["broker"]
+        untrusting.request_stop()
+        await asyncio.wait_for(task, timeout=30)
+    finally:
+        broker.stop()
+    assert [a["time"] for a in col.records("/out/match/")] == [t for t, _ in fixes]
