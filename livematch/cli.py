@@ -22,6 +22,7 @@ COMMAND_MODULES = (
     "livematch.commands.run",
     "livematch.commands.record",
     "livematch.commands.config",
+    "livematch.commands.demo",
 )
 
 

@@ -44,7 +44,7 @@ async def test_demo_publishes_assignments_and_detour_alert(tmp_path: Path) -> No
     env = {k: v for k, v in os.environ.items() if not k.startswith("LIVEMATCH")}
     out = tmp_path / "run"
     proc = await asyncio.create_subprocess_exec(
-        sys.executable, "-m", "livematch.commands.demo", "--duration", "20", "--out", str(out),
+        sys.executable, "-m", "livematch.cli", "demo", "--duration", "20", "--out", str(out),
         cwd=tmp_path, env=env, stdout=asyncio.subprocess.PIPE, stderr=asyncio.subprocess.PIPE)
     assert proc.stdout is not None and proc.stderr is not None
     lines: list[str] = []
