@@ -351,3 +351,17 @@ def test_alert_settings_problems():
         AlertSettings(wrong_way_m=50.0).problems()
     keys = AlertSettings.keys()
     assert keys[0] == "eps_route_m" and "stale_s" in keys
+
+
+def test_monitors_doctests():
+    """The worked examples in the alert modules' docstrings hold (run as doctests)."""
+    import doctest
+    import importlib
+
+    names = ["livematch.core.monitors.settings", "livematch.core.monitors.route",
+             "livematch.core.monitors.fences", "livematch.core.monitors.presence",
+             "livematch.core.monitors.vehicle", "livematch.mapdata.routes",
+             "livematch.mapdata.fences", "livematch.pipeline"]
+    for name in names:
+        outcome = doctest.testmod(importlib.import_module(name), raise_on_error=False)
+        assert outcome.failed == 0 and outcome.attempted > 0, name
