@@ -286,3 +286,42 @@ def test_alert_settings_from_mapping_names_file_and_key():
         "live.toml: alerts.fence_position must be a string, got 1"]
     with pytest.raises(BadConfigError, match=r"live\.toml: alerts\.wrong_way_m must exceed"):
         alert_settings_from_mapping({"eps_route_m": 60}, "live.toml")
+
+
+def test_replay_cli_routes_and_fences_files(tmp_path):
+    """`livematch replay --routes --fences`: bus1 follows its route R1 (no route alert);
+    given the Hill Street line as R1 instead, it is off route; a fence on its path gives
+    enter and exit."""
+    from test_replay import BUS1_ROUTE, DLAT, DLON, LAT0, LON0, NETWORK, write_town_feed
+
+    from livematch.cli import main
+
+    log = tmp_path / "feed.jsonl"
+    write_town_feed(log)
+
+    def line(corners):
+        return {"type": "LineString",
+                "coordinates": [[LON0 + i * DLON, LAT0 + j * DLAT] for i, j in corners]}
+
+    fence = {"type": "Feature", "id": "market", "properties": {"name": "Market"},
+             "geometry": {"type": "Polygon", "coordinates": [[
+                 [LON0 + 2.5 * DLON, LAT0 + 1 * DLAT], [LON0 + 3.5 * DLON, LAT0 + 1 * DLAT],
+                 [LON0 + 3.5 * DLON, LAT0 + 2 * DLAT], [LON0 + 2.5 * DLON, LAT0 + 2 * DLAT],
+                 [LON0 + 2.5 * DLON, LAT0 + 1 * DLAT]]]}}
+    fences = tmp_path / "fences.geojson"
+    fences.write_text(json.dumps({"type": "FeatureCollection", "features": [fence]}))
+    kinds = {}
+    for name, corners in (("own", BUS1_ROUTE), ("hill", [(0.5, 6), (5.5, 6)])):
+        routes = tmp_path / f"{name}.geojson"
+        routes.write_text(json.dumps({"type": "FeatureCollection", "features": [
+            {"type": "Feature", "id": "R1", "properties": {}, "geometry": line(corners)}]}))
+        out = tmp_path / name
+        assert main(["replay", str(log), "--network", str(NETWORK), "--out", str(out),
+                     "--routes", str(routes), "--fences", str(fences)]) == 0
+        lines = [json.loads(s) for s in (out / "alerts.jsonl").read_text().splitlines()]
+        kinds[name] = [(a["vehicle"], a["kind"]) for a in lines]
+        summary = json.loads((out / "summary.json").read_text())
+        assert summary["alerts"] == len(lines)
+    assert kinds["own"] == [("bus1", "fence_enter"), ("bus1", "fence_exit")]
+    assert ("bus1", "off_route") in kinds["hill"]
+    assert [k for k in kinds["hill"] if k[1].startswith("fence")] == kinds["own"]
