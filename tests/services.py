@@ -109,6 +109,7 @@ class Mosquitto:
             f"persistence_location {self.folder}/\n"
             "max_queued_messages 100000\n"
             "max_inflight_messages 100\n"
+            "set_tcp_nodelay true\n"
             f"log_dest file {self.folder}/mosquitto.log\n"
         )
         self.proc = subprocess.Popen([MOSQUITTO, "-c", str(conf)],
@@ -177,6 +178,9 @@ class RedisServer:
 # -- MQTT helpers for tests --------------------------------------------------------------
 
 
+NODELAY = [(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)]
+
+
 def _session_props(expiry: int) -> Properties:
     props = Properties(PacketTypes.CONNECT)
     props.SessionExpiryInterval = expiry
@@ -207,6 +211,7 @@ class Collector:
                     self.host, self.port, identifier=self.client_id,
                     protocol=aiomqtt.ProtocolVersion.V5, clean_start=False,
                     properties=_session_props(600), tls_context=self.tls_context,
+                    socket_options=NODELAY,
                 ) as client:
                     await client.subscribe(self.topic_filter, qos=1)
                     self.subscribed.set()
@@ -251,7 +256,7 @@ async def publisher(port: int, tls_context: ssl.SSLContext | None = None
                     ) -> AsyncIterator[aiomqtt.Client]:
     """A connected client for publishing test input."""
     async with aiomqtt.Client("127.0.0.1", port, identifier=f"pub-{uuid.uuid4().hex[:8]}",
-                              tls_context=tls_context) as client:
+                              tls_context=tls_context, socket_options=NODELAY) as client:
         yield client
 
 

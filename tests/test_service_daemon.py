@@ -570,3 +570,36 @@ async def test_daemon_over_tls_with_own_ca(tmp_path: Path, prefix: str) -> None:
     finally:
         broker.stop()
     assert [a["time"] for a in col.records("/out/match/")] == [t for t, _ in fixes]
+
+
+class ExplodingPipeline(Pipeline):
+    """Fault injection: the real pipeline, but handling a payload with 'boom' raises."""
+
+    def handle(self, topic: str, payload: bytes, at: float) -> list[Any]:
+        if b"boom" in payload:
+            raise RuntimeError("injected fault")
+        return super().handle(topic, payload, at)
+
+
+async def test_daemon_survives_pipeline_error(mosquitto: Mosquitto, prefix: str,
+                                              tmp_path: Path) -> None:
+    """An unexpected error while handling one message is an internal_error reject;
+    the messages around it are processed."""
+    cfg = write_config(tmp_path, prefix, broker=mosquitto.url)
+    config = load_config(cfg, env={})
+    daemon = Daemon(config, ExplodingPipeline(town(), config.matcher, limits=config.feed))
+    fixes = drive("bus-x", 4)
+    topic = f"{prefix}/fleet/bus-x/position"
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col, \
+            running(daemon), publisher(mosquitto.port) as pub:
+        for i, (_, payload) in enumerate(fixes):
+            await pub.publish(topic, payload, qos=1)
+            if i == 1:
+                await pub.publish(topic, b'{"boom": true}', qos=1)
+        await col.wait_for("/out/match/", 4)
+        await col.wait_for("/out/rejects", 1)
+    [reject] = col.records("/out/rejects")
+    assert (reject["reason"], reject["topic"], reject["payload"]) == (
+        "internal_error", topic, '{"boom": true}')
+    assert reject["detail"] == "RuntimeError: injected fault"
+    assert [a["time"] for a in col.records("/out/match/")] == [t for t, _ in fixes]

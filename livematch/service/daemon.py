@@ -220,7 +220,6 @@ class Daemon:
             try:
                 await self.store.connect()
                 blobs = await self.store.load_all()
-                latest = await self.store.get_latest()
                 break
             except StoreError as exc:
                 self.metrics.store_errors.inc()
@@ -237,7 +236,6 @@ class Daemon:
             except Exception as exc:  # one bad checkpoint must not keep the others out
                 self.metrics.store_errors.inc()
                 log.warning("checkpoint not restored", extra=fields(vehicle=vehicle, error=exc))
-        self._latest.update({v: b for v, b in latest.items() if v not in self._latest})
         self.metrics.vehicles.set(len(self.pipeline.vehicles()))
         self.restored = True
         log.info("state restored", extra=fields(store=redact_url(self.config.store.url),
@@ -386,6 +384,7 @@ class Daemon:
                         await client.subscribe(cfg.control_topic, qos=cfg.qos)
                     log.info("connected and subscribed",
                              extra=fields(broker=redact_url(cfg.url), topic=cfg.topic,
+                                          control_topic=cfg.control_topic,
                                           client_id=cfg.client_id, queued=len(self._outbox)))
                     await self._serve_connection(client)
                 except asyncio.CancelledError:

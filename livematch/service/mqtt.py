@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import logging
 import random
+import socket
 import ssl
 from urllib.parse import urlsplit
 
@@ -56,6 +57,8 @@ def make_client(config: MqttConfig, *, username: str | None, password: str | Non
         tls_context=context,
         timeout=timeout_s,
         logger=_PAHO_LOG,
+        # Small packets (PUBACKs, assignments) must not wait for Nagle's algorithm.
+        socket_options=[(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)],
     )
     # aiomqtt has no switch for manual acknowledgement; paho's public manual_ack_set on
     # the wrapped client is the documented way (paho-mqtt >= 2.0).
