@@ -135,14 +135,25 @@ def test_route_monitor_single_outliers_do_not_alert():
 
 
 def test_route_monitor_wrong_direction():
-    """Driving the route backwards: one wrong_direction alert after wrong_way_m metres."""
+    """Driving the route backwards: one wrong_direction alert after wrong_way_m metres,
+    not from a single outlier fix landing on an earlier stretch of the route."""
     pts = along(list(reversed(L_ROUTE)), 10.0)[:60]
     m = RouteMonitor("r", chain(L_ROUTE), SETTINGS)
     alerts = feed(m, pts)
-    assert [(i, k) for i, k, _ in alerts] == [(10, "wrong_direction")]
+    # 100 m backwards at fix 10, confirmed by fix 11.
+    assert [(i, k) for i, k, _ in alerts] == [(11, "wrong_direction")]
     facts = alerts[0][2]
-    assert facts["backwards_m"] == 100.0 and facts["progress_m"] == 1900.0
+    assert facts["backwards_m"] == 110.0 and facts["progress_m"] == 1890.0
     assert m.state == "unknown"  # never confirmed on route while going backwards
+    # Standing at x=1100 after driving there, one fix 150 m back along the route, then
+    # on: the reversed sweep follows that one fix backwards, the next fix undoes it.
+    pts = ([(10.0 * i, 0.0) for i in range(111)] + [(1100.0, 0.0)] * 6 + [(950.0, 0.0)]
+           + [(1100.0 + 10.0 * i, 0.0) for i in range(30)])
+    m = RouteMonitor("r", chain([(0, 0), (2000, 0)]), SETTINGS)
+    assert feed(m, pts) == []
+    # The same with the second fix along: wrong direction.
+    m = RouteMonitor("r", chain([(0, 0), (2000, 0)]), SETTINGS)
+    assert [k for _, k, _ in feed(m, [*pts[:118], (945.0, 0.0)])] == ["wrong_direction"]
 
 
 def test_route_monitor_standing_still_is_not_wrong_direction():

@@ -25,7 +25,10 @@ state machine:
 * **wrong direction**: the reversed-route sweep has followed the fixes for
   ``wrong_way_m`` metres while the forward sweep died in that time (it must: a Fréchet
   match is monotone, so moving backwards more than 2 eps kills it) and has not followed
-  them for eps / 2 since. Where two parts of a route run side by side in opposite
+  them for eps / 2 since, over at least ``on_route_fixes`` fixes (with fixes far apart,
+  the straight chords cut across hairpin bends and one chord proves nothing), at two
+  fixes in a row (one outlier landing on an earlier stretch of the route proves nothing
+  either). Where two parts of a route run side by side in opposite
   directions (within eps), driving one forward is driving the other backwards; the
   forward sweep then follows too, and that is not wrong direction.
 
@@ -166,12 +169,13 @@ class _Window:
     cut after every step, so the state stays a handful of segments.
     """
 
-    __slots__ = ("driven", "live", "start_t")
+    __slots__ = ("driven", "fixes", "live", "start_t")
 
     def __init__(self) -> None:
         self.live: dict[int, Node] = {}
         self.driven: dict[int, float] = {}
         self.start_t = -math.inf
+        self.fixes = 0  # fixes in the window
 
     def best(self) -> tuple[int, Node] | None:
         """(segment, state) of the candidate that followed the route longest."""
@@ -198,10 +202,12 @@ class _Window:
                     arc = ((1.0 - parent.pos) * slen[parent.seg]
                            + sum(slen[v] for v in node.via) + node.pos * slen[seg])
                 driven[seg] = self.driven[parent.seg] + arc
+            self.fixes += 1
         else:
             new = fresh_start(chain_net, ctx)
             driven = dict.fromkeys(new, 0.0)
             self.start_t = ctx.t
+            self.fixes = 1 if new else 0
         if new:
             base = min(n.cost for n in new.values())
             for node in new.values():
@@ -212,7 +218,7 @@ class _Window:
         self.driven = driven
 
     def to_state(self) -> list[Any]:
-        return [self.start_t if math.isfinite(self.start_t) else None,
+        return [self.start_t if math.isfinite(self.start_t) else None, self.fixes,
                 [[s, n.seq, n.t, n.pos, n.x, n.y, n.cost, n.low, self.driven[s]]
                  for s, n in self.live.items()]]
 
@@ -220,7 +226,8 @@ class _Window:
     def from_state(cls, state: list[Any]) -> _Window:
         w = cls()
         w.start_t = -math.inf if state[0] is None else state[0]
-        for s, seq, t, pos, x, y, cost, low, driven in state[1]:
+        w.fixes = state[1]
+        for s, seq, t, pos, x, y, cost, low, driven in state[2]:
             w.live[s] = Node(s, seq, t, pos, x, y, None, (), cost, low)
             w.driven[s] = driven
         return w
@@ -272,6 +279,7 @@ class RouteMonitor:
     rejoin: tuple[float, float] | None = None  # (t, trail_m) of the first fix of this near run
     anchor: _Anchor | None = None
     wrong: bool = False  # a wrong-direction episode is open
+    wrong_seen: bool = False  # the previous fix looked like driving backwards
     progress_m: float | None = None
     fwd: _Window = field(default_factory=_Window)
     rev: _Window = field(default_factory=_Window)
@@ -320,9 +328,14 @@ class RouteMonitor:
         if self.rejoin is None:
             self.rejoin = (fix.t, self.trail_m)
         backwards = self._backwards()
-        if (not self.wrong and self.rev.followed() >= s.wrong_way_m
-                and self.fwd.start_t > self.rev.start_t
-                and self.fwd.followed() < s.eps_route_m / 2.0):
+        backwards_now = (self.rev.followed() >= s.wrong_way_m
+                         and self.rev.fixes >= s.on_route_fixes
+                         and self.fwd.start_t > self.rev.start_t
+                         and self.fwd.followed() < s.eps_route_m / 2.0)
+        # Two fixes in a row, so one outlier landing on an earlier stretch of the route
+        # cannot make it.
+        confirmed, self.wrong_seen = backwards_now and self.wrong_seen, backwards_now
+        if not self.wrong and confirmed:
             self.wrong = True
             rbest = self.rev.best()
             assert rbest is not None
@@ -354,6 +367,7 @@ class RouteMonitor:
         s = self.settings
         self.near = 0
         self.rejoin = None
+        self.wrong_seen = False
         if self.dead_since is None:
             self.dead_since = fix.t
             if self.anchor is not None and self.state == "on":
@@ -395,7 +409,8 @@ class RouteMonitor:
             "dead_origin": self.dead_origin, "dead_far": self.dead_far,
             "trail_m": self.trail_m, "rejoin": self.rejoin,
             "anchor": [a.t, a.x, a.y, a.lon, a.lat, a.progress] if a else None,
-            "wrong": self.wrong, "progress_m": self.progress_m,
+            "wrong": self.wrong, "wrong_seen": self.wrong_seen,
+            "progress_m": self.progress_m,
             "fwd": self.fwd.to_state(), "rev": self.rev.to_state(),
         }
 
@@ -415,6 +430,7 @@ class RouteMonitor:
         m.rejoin = _pair(state["rejoin"])
         m.anchor = _Anchor(*state["anchor"]) if state["anchor"] else None
         m.wrong = state["wrong"]
+        m.wrong_seen = state["wrong_seen"]
         m.progress_m = state["progress_m"]
         m.fwd = _Window.from_state(state["fwd"])
         m.rev = _Window.from_state(state["rev"])
