@@ -45,7 +45,9 @@ ASSIGNMENT_FIELDS = {"vehicle", "time", "lat", "lon", "way", "from_node", "to_no
 
 def make_daemon(config_path: Path) -> Daemon:
     config = load_config(config_path, env={})
-    return Daemon(config, Pipeline(town(), config.matcher, limits=config.feed))
+    return Daemon(config, Pipeline(town(), config.matcher, limits=config.feed,
+                                   alerts=config.alerts,
+                                   control_topic=config.mqtt.control_topic))
 
 
 @contextlib.asynccontextmanager
@@ -603,3 +605,60 @@ async def test_daemon_survives_pipeline_error(mosquitto: Mosquitto, prefix: str,
         "internal_error", topic, '{"boom": true}')
     assert reject["detail"] == "RuntimeError: injected fault"
     assert [a["time"] for a in col.records("/out/match/")] == [t for t, _ in fixes]
+
+
+async def test_daemon_stale_on_the_clock_and_fresh_again(mosquitto: Mosquitto, prefix: str,
+                                                         tmp_path: Path) -> None:
+    """A vehicle silent for stale_s gets `stale` from the clock alone, `fresh` on its next fix."""
+    cfg = write_config(tmp_path, prefix, broker=mosquitto.url,
+                       extra="[alerts]\nstale_s = 1.0\n")
+    fixes = drive("van-s", 4)
+    daemon = make_daemon(cfg)
+    topic = f"{prefix}/fleet/van-s/position"
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/alert/#") as col, \
+            running(daemon), publisher(mosquitto.port) as pub:
+        for _, payload in fixes[:3]:
+            await pub.publish(topic, payload, qos=1)
+        await col.wait_for("/out/alert/", 1, timeout=10)
+        assert [a["kind"] for a in col.records("/out/alert/")] == ["stale"]
+        await pub.publish(topic, fixes[3][1], qos=1)
+        await col.wait_for("/out/alert/", 2, timeout=10)
+    stale, fresh = col.records("/out/alert/")
+    assert (fresh["kind"], stale["last_fix_time"], fresh["last_fix_time"]) == (
+        "fresh", fixes[2][0], fixes[2][0])
+
+
+async def test_daemon_no_stale_from_its_own_outage(own_mosquitto: Mosquitto, prefix: str,
+                                                   tmp_path: Path) -> None:
+    """The broker away for longer than stale_s: no vehicle is declared stale for it, even
+    one whose fixes arrive a little after the reconnection."""
+    broker = own_mosquitto
+    cfg = write_config(tmp_path, prefix, broker=broker.url,
+                       extra="[alerts]\nstale_s = 1.5\n")
+    feeds = {v: drive(v, 6, start_x=100.0 + 1000 * k) for k, v in enumerate(("van-a", "van-b"))}
+    daemon = make_daemon(cfg)
+
+    async def send(vehicle: str, lo: int, hi: int) -> None:
+        async with publisher(broker.port) as pub:
+            for _, payload in feeds[vehicle][lo:hi]:
+                await pub.publish(f"{prefix}/fleet/{vehicle}/position", payload, qos=1)
+
+    async with Collector("127.0.0.1", broker.port, f"{prefix}/out/#") as col, \
+            running(daemon):
+        await send("van-a", 0, 3)
+        await send("van-b", 0, 3)
+        await col.wait_for("/out/match/", 6)
+        broker.stop()
+        await asyncio.sleep(2.5)  # longer than stale_s
+        broker.start()
+        for _ in range(200):
+            if daemon.readiness() == []:
+                break
+            await asyncio.sleep(0.05)
+        await send("van-a", 3, 6)
+        await col.wait_for("/out/match/van-a", 6)
+        await asyncio.sleep(0.5)  # van-b reports a little later, within stale_s
+        await send("van-b", 3, 6)
+        await col.wait_for("/out/match/van-b", 6)
+        await asyncio.sleep(0.3)
+    assert col.records("/out/alert/") == []

@@ -152,6 +152,7 @@ class Daemon:
         self._outbox_changed = asyncio.Event()  # set on every append, pop and stop
         self._pending_deletes: set[str] = set()
         self._full_logged_at = -math.inf
+        self._listening_since: float | None = None  # wall time of the current connection
         self._fixes_since: Counter[str] = Counter()
         self._last_checkpoint: dict[str, float] = {}
         self._checkpoint_due = asyncio.Event()
@@ -260,8 +261,9 @@ class Daemon:
                 await asyncio.wait_for(self._checkpoint_due.wait(), timeout=_TICK_S)
             self._checkpoint_due.clear()
             try:
-                if self.broker_connected:  # a silent vehicle goes stale on the clock
-                    for out in self.pipeline.tick(time.time()):
+                now = time.time()
+                if self._may_tick(now):  # a silent vehicle goes stale on the clock
+                    for out in self.pipeline.tick(now):
                         self._route(out)
                 await self._flush_state(everything=False)
                 await self._evict_idle()
@@ -378,6 +380,7 @@ class Daemon:
             async with client:
                 try:
                     self.broker_connected = True
+                    self._listening_since = time.time()
                     backoff.reset()
                     await client.subscribe(cfg.topic, qos=cfg.qos)
                     if cfg.control_topic:
@@ -467,7 +470,8 @@ class Daemon:
         at = time.time()
         try:
             outputs = self.pipeline.handle(topic, bytes(payload), at)
-            outputs += self.pipeline.tick(at)  # as replay does after every message
+            if self._may_tick(at):  # as replay does after every message
+                outputs += self.pipeline.tick(at)
         except Exception as exc:  # a bug must not stop the feed: reject, log, go on
             log.exception("pipeline error", extra=fields(topic=topic))
             outputs = [_internal_reject(topic, bytes(payload), exc)]
@@ -476,6 +480,19 @@ class Daemon:
         for out in outputs:
             self._route(out)
         ack(client, message)
+
+    def _may_tick(self, now: float) -> bool:
+        """Whether ``stale`` may be judged at ``now``: only after listening for stale_s.
+
+        A vehicle is stale when the daemon heard nothing from it for ``stale_s`` while
+        it was listening. Right after a (re)connection its queued fixes may still be on
+        their way, and while disconnected it is the daemon that hears nothing.
+        """
+        if not self.broker_connected or self._listening_since is None:
+            return False
+        settings = getattr(self.pipeline, "alert_settings", None)
+        stale_s = getattr(settings, "stale_s", self.config.alerts.stale_s)
+        return now - self._listening_since >= float(stale_s)
 
     def _sync_counters(self) -> None:
         """Carry the pipeline's counters (fixes, filtered:<reason>) into the metrics."""
