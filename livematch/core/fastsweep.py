@@ -1,0 +1,148 @@
+"""A compiled drop-in for :func:`livematch.core.sweep.sweep_step`.
+
+:func:`fast_sweep_step` takes and returns the same ``dict[int, Node]`` as the reference
+and gives identical results: the same new states in the same dict order, every field
+bit-identical (segment, position, matched point, cost, lowest reachable position,
+``via``), each parent the very live :class:`~livematch.core.sweep.Node` object the
+reference would pick. The work happens in :func:`livematch.core._sweep_kernel.sweep_kernel`
+(numba); this module only packs the live states into one float array and builds the
+``Node`` objects from the kernel's output rows. The pure-Python reference stays the
+definition: ``tests/test_fastsweep.py`` compares the two step by step.
+
+The network's arrays, and the kernel's scratch and output buffers, are built once per
+network and kept on the :class:`~livematch.core.network.RoadNetwork` object (like its
+:class:`~livematch.core.view.NetworkView`), shared by every vehicle on that network. The
+scratch is reused from call to call, so calls on one network must not run concurrently
+(the daemon runs every tracker on one event loop; the kernel itself holds the GIL).
+
+Example (a vehicle moving 10 m along a straight road; no live states gives no states):
+    >>> from livematch.core.build import Road, network_from_roads
+    >>> from livematch.core.sweep import Node, StepContext, sweep_step
+    >>> from livematch.core.view import view_of
+    >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1, oneway=True)])
+    >>> ctx = StepContext(view_of(net), 15.0, 20.0, 1.0, 30.0, 1.0, 2, 1.0, 10.0,
+    ...                   0.02, 0.2, 5.0)
+    >>> live = {0: Node(0, 1, 0.0, 0.2, 20.0, 0.0, None, (), 0.0, 0.05)}
+    >>> new = fast_sweep_step(live, ctx)
+    >>> [(n.seg, n.pos, n.parent is live[0]) for n in new.values()]
+    [(0, 0.3, True)]
+    >>> new[0].cost == sweep_step(live, ctx)[0].cost
+    True
+    >>> fast_sweep_step({}, ctx)
+    {}
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import numpy.typing as npt
+
+from livematch.core import _sweep_kernel as _k
+from livematch.core.network import RoadNetwork
+from livematch.core.sweep import Node, StepContext
+from livematch.core.view import NetworkView
+
+__all__ = ["SweepArrays", "fast_sweep_step", "sweep_arrays"]
+
+_ATTR = "_sweep_arrays"  # where the per-network arrays live on the RoadNetwork object
+
+# Initial buffer capacities (heap entries, via slots, output rows); doubled on overflow.
+# A 1 Hz step on a city network pushes a few dozen entries.
+_START_ENTRIES = 1024
+_START_VIA = 4096
+_START_ROWS = 512
+
+
+class SweepArrays:
+    """The kernel's arrays for one network: read-only network data plus scratch buffers.
+
+    Attributes:
+        netf, neti: the network (float64 and int64 parts, layout in ``_sweep_kernel``).
+        fbuf, ibuf: scratch and output buffers, grown by :meth:`grow`.
+        out_f0, out_i0, out_via0: where the output rows and the compact vias start.
+    """
+
+    __slots__ = ("cap_b", "cap_h", "cap_m", "fbuf", "ibuf", "n_e", "n_v", "netf", "neti",
+                 "out_f0", "out_i0", "out_via0")
+
+    def __init__(self, view: NetworkView) -> None:
+        net = view.network
+        self.n_v = net.n_vertices
+        self.n_e = net.n_segments
+        self.netf: npt.NDArray[np.float64] = np.concatenate(
+            [np.asarray(view.vx, dtype=np.float64), np.asarray(view.vy, dtype=np.float64),
+             np.asarray(view.slen, dtype=np.float64)])
+        self.neti: npt.NDArray[np.int64] = np.concatenate(
+            [np.asarray(a, dtype=np.int64) for a in (
+                view.sf, view.st, view.twin, net.out_seg, net.out_ptr, view.turn_back_ok)])
+        self.fbuf: npt.NDArray[np.float64] = np.empty(0)
+        self.ibuf: npt.NDArray[np.int64] = np.empty(0, dtype=np.int64)
+        self.cap_h = self.cap_b = self.cap_m = 0
+        self.out_f0 = self.out_i0 = self.out_via0 = 0
+        self.resize(_START_ENTRIES, _START_VIA, _START_ROWS)
+
+    def resize(self, cap_h: int, cap_b: int, cap_m: int) -> None:
+        """Fresh buffers for ``cap_h`` heap entries, ``cap_b`` via slots, ``cap_m`` rows."""
+        n_v, n_e = self.n_v, self.n_e
+        self.cap_h, self.cap_b, self.cap_m = cap_h, cap_b, cap_m
+        self.out_f0 = 2 * n_v + 2 * cap_h
+        self.fbuf = np.zeros(self.out_f0 + cap_m * _k.OUT_F_STRIDE)
+        self.out_i0 = _k.N_HEADER + n_e + 2 * n_v + cap_h * (_k.ENTRY_STRIDE + 1) + cap_b
+        self.out_via0 = self.out_i0 + cap_m * _k.OUT_I_STRIDE
+        ibuf = np.zeros(self.out_via0 + cap_b, dtype=np.int64)
+        ibuf[: _k.N_HEADER] = (n_v, n_e, cap_h, cap_b, cap_m)
+        ibuf[_k.N_HEADER:_k.N_HEADER + n_e] = -1  # seg_slot: no output row yet
+        self.ibuf = ibuf
+
+    def grow(self) -> None:
+        """Double every growable capacity (after the kernel reported an overflow)."""
+        self.resize(2 * self.cap_h, 2 * self.cap_b, 2 * self.cap_m)
+
+
+def sweep_arrays(view: NetworkView) -> SweepArrays:
+    """The network's shared :class:`SweepArrays`, built on first use."""
+    network: RoadNetwork = view.network
+    arrays = getattr(network, _ATTR, None)
+    if arrays is None:
+        arrays = SweepArrays(view)
+        setattr(network, _ATTR, arrays)
+    return arrays
+
+
+def fast_sweep_step(live: dict[int, Node], ctx: StepContext) -> dict[int, Node]:
+    """:func:`livematch.core.sweep.sweep_step`, compiled: same arguments, same result.
+
+    Advances the states ``live`` (at fix p0) by the trace segment p0 -> p1 and returns
+    the states at p1, empty when the window is no longer within eps.
+    """
+    if not live:
+        return {}
+    arrays = sweep_arrays(ctx.view)
+    nodes = list(live.values())
+    flat = [ctx.eps, ctx.x0, ctx.y0, ctx.x1, ctx.y1, ctx.chord, ctx.inv_two_sigma2,
+            ctx.inv_beta, ctx.turn_back_cost, ctx.motion_cost]
+    for n in nodes:
+        flat += (n.seg, n.low, n.pos, n.x, n.y, n.cost)
+    packed = np.array(flat, dtype=np.float64)
+    m = _k.sweep_kernel(arrays.netf, arrays.neti, packed, arrays.fbuf, arrays.ibuf)
+    while m < 0:
+        arrays.grow()
+        m = _k.sweep_kernel(arrays.netf, arrays.neti, packed, arrays.fbuf, arrays.ibuf)
+    if m == 0:
+        return {}
+    f0 = arrays.out_f0
+    i0 = arrays.out_i0
+    rf = arrays.fbuf[f0:f0 + m * _k.OUT_F_STRIDE].tolist()
+    ri = arrays.ibuf[i0:i0 + m * _k.OUT_I_STRIDE].tolist()
+    n_via = ri[-2] + ri[-1]  # the last row's via ends the compact area
+    vias: list[int] = (arrays.ibuf[arrays.out_via0:arrays.out_via0 + n_via].tolist()
+                       if n_via else [])
+    seq = ctx.seq
+    t = ctx.t
+    new: dict[int, Node] = {}
+    for r in range(m):
+        seg, parent, via_start, via_len = ri[4 * r:4 * r + 4]
+        low, pos, x, y, cost = rf[5 * r:5 * r + 5]
+        via = tuple(vias[via_start:via_start + via_len]) if via_len else ()
+        new[seg] = Node(seg, seq, t, pos, x, y, nodes[parent], via, cost, low)
+    return new
