@@ -324,3 +324,18 @@ def test_replay_cli_routes_and_fences_files(tmp_path):
         assert summary["alerts"] == len(lines)
     assert kinds["own"] == [("bus1", "fence_enter"), ("bus1", "fence_exit")]
     assert kinds["hill"] == [("bus1", "off_route"), *kinds["own"]]
+
+
+def test_replay_config_alerts_and_control_topic(tmp_path):
+    """replay takes [alerts] and mqtt.control_topic from the daemon's config file."""
+    from livematch.commands.replay import load_alert_config, load_control_topic
+
+    cfg = tmp_path / "live.toml"
+    cfg.write_text('[alerts]\nstale_s = 60\n[mqtt]\ncontrol_topic = "ops/+/line"\n')
+    assert load_alert_config(str(cfg))[0] == AlertSettings(stale_s=60.0)
+    assert load_control_topic(str(cfg)) == "ops/+/line"
+    assert load_control_topic(None) == "livematch/control/+/route"
+    p = Pipeline(NET, MatchSettings(), routes=ROUTES, control_topic="ops/+/line")
+    assert p.handle("ops/bus1/line", b'"N"', T0) == []
+    run(p, messages("bus1", DETOUR[:3], route="R"))
+    assert p.route_status("bus1")["route"] == "N"

@@ -23,8 +23,8 @@ The files depend only on the inputs, so two runs give byte-identical files; the 
 time therefore goes to stderr, never into ``summary.json``.
 
 ``--config`` takes the daemon's TOML file; its ``[matcher]`` section (and the topic
-filter and limits of ``[mqtt]``/``[feed]``, the ``[alerts]`` section and the
-``inputs.routes`` / ``inputs.fences`` files when the config knows them) apply.
+filter, control topic and limits of ``[mqtt]``/``[feed]``, the ``[alerts]`` section and
+the ``inputs.routes`` / ``inputs.fences`` files) apply.
 ``--routes`` (GeoJSON lines or a GTFS feed, :mod:`livematch.mapdata.routes`) and
 ``--fences`` (GeoJSON polygons, :mod:`livematch.mapdata.fences`) override the files of
 the config. Environment overrides
@@ -54,10 +54,10 @@ from livematch.errors import BadConfigError, LivematchError
 from livematch.feed.decode import FeedLimits
 from livematch.feed.replaylog import read_replay_log
 from livematch.lab.cli import add_lab_arguments, lab_wanted
-from livematch.pipeline import Output, Pipeline, matcher_settings_from_mapping
+from livematch.pipeline import CONTROL_TOPIC, Output, Pipeline, matcher_settings_from_mapping
 
-__all__ = ["OUTPUT_FILES", "load_alert_config", "load_replay_config", "register", "replay",
-           "summarize"]
+__all__ = ["OUTPUT_FILES", "load_alert_config", "load_control_topic", "load_replay_config",
+           "register", "replay", "summarize"]
 
 #: The files ``replay`` writes, by output kind (plus ``summary.json``).
 OUTPUT_FILES = {
@@ -132,6 +132,24 @@ def load_alert_config(path: str | None) -> tuple[AlertSettings, str, str]:
     inputs = cfg.inputs
     return (alerts if isinstance(alerts, AlertSettings) else AlertSettings(),
             getattr(inputs, "routes", "") or "", getattr(inputs, "fences", "") or "")
+
+
+def load_control_topic(path: str | None) -> str:
+    """The route control topic filter (``mqtt.control_topic``) of a config.
+
+    The daemon subscribes to it; the pipeline's default without a file or key.
+    """
+    if path is None:
+        return CONTROL_TOPIC
+    try:
+        config = importlib.import_module("livematch.config")
+    except ModuleNotFoundError as exc:
+        if exc.name != "livematch.config":
+            raise
+        return CONTROL_TOPIC
+    mqtt = getattr(config.load_config(path, env={}), "mqtt", None)
+    topic = getattr(mqtt, "control_topic", CONTROL_TOPIC)
+    return topic if isinstance(topic, str) else CONTROL_TOPIC
 
 
 def _matcher_only(path: Path) -> MatchSettings:
@@ -265,7 +283,7 @@ def _run(args: argparse.Namespace) -> int:
     fences = read_fences(fences_path, network.projection) if fences_path else None
     loaded = time.perf_counter()
     pipeline = Pipeline(network, settings, limits=limits, routes=routes, fences=fences,
-                        alerts=alert_settings)
+                        alerts=alert_settings, control_topic=load_control_topic(args.config))
     summary = replay(args.log, pipeline, args.out)
     done = time.perf_counter()
     rate = summary["messages"] / (done - loaded) if done > loaded else 0.0
