@@ -9,8 +9,8 @@ One :class:`Daemon` runs these named tasks under one :class:`asyncio.TaskGroup`:
   the queue only once the broker acknowledged it, so a broker outage delays outputs
   but loses none);
 - ``checkpoint``: write vehicles' state every K fixes or T seconds, the latest
-  assignments, evict idle vehicles, and (while connected) give the pipeline the clock
-  for ``stale`` alerts of silent vehicles;
+  assignments, evict idle vehicles, and give the pipeline the clock for ``stale`` alerts
+  of silent vehicles (only once connected for ``stale_s``: see :meth:`Daemon._may_tick`);
 - ``store-watch``: ping the store for ``/readyz``.
 
 Bad input never stops the daemon: the pipeline turns it into a reject record that goes
@@ -133,6 +133,17 @@ class Daemon:
             drives, so both produce the same records for the same messages).
         store: the state store; default from ``config.store.url``.
         metrics: the metrics; default a fresh registry of its own.
+
+    Example (what ``livematch run`` does)::
+
+        config = load_config("config/live.toml")
+        pipeline = Pipeline(open_network(config.inputs.network), config.matcher,
+                            limits=config.feed, alerts=config.alerts)
+        daemon = Daemon(config, pipeline)
+        asyncio.run(daemon.run())        # until daemon.request_stop() (SIGTERM)
+
+    A daemon whose broker never answers runs, not ready, until stopped; stopping it then
+    publishes nothing and counts what was queued in ``livematch_publish_dropped_total``.
     """
 
     def __init__(self, config: DaemonConfig, pipeline: PipelineLike, *,
