@@ -32,8 +32,6 @@ class MatchSettings:
         detour_factor: a bridged route is also at most ``detour_factor`` times the
             straight step plus ``gap_m``: routes much longer than the straight line
             between two fixes are implausible (common practice in map matching).
-        off_network_s: a vehicle with no road within the largest eps for this long is
-            off the network.
         sigma_m: GNSS error scale of the path cost's distance term (metres); 5 m is a
             typical open-sky consumer receiver (common practice, from memory).
         beta_m: scale of the path cost's term for the difference between route length
@@ -58,7 +56,6 @@ class MatchSettings:
     gap_m: float = 150.0
     bridge_speed_mps: float = 40.0
     detour_factor: float = 2.0
-    off_network_s: float = 30.0
     sigma_m: float = 5.0
     beta_m: float = 10.0
     turn_back_cost: float = 2.0
@@ -79,7 +76,7 @@ class MatchSettings:
         elif any(b <= a for a, b in itertools.pairwise(eps)):
             out.append(("eps_levels", f"must be strictly increasing, got {list(eps)}"))
         positive = ("max_lag_s", "max_speed_mps", "max_accuracy_m", "gap_s", "gap_m",
-                    "bridge_speed_mps", "detour_factor", "off_network_s", "sigma_m", "beta_m",
+                    "bridge_speed_mps", "detour_factor", "sigma_m", "beta_m",
                     "motion_m")
         for name in positive:
             value = getattr(self, name)
