@@ -6,8 +6,15 @@ objects. The kernel reproduces the pure-Python reference operation for operation
 fastmath, the same expressions in the same order), so every float it returns is
 bit-identical to the reference's.
 
-Few arguments, because every argument costs the numba dispatcher about 0.1 µs per call:
-everything is passed in five flat arrays, cut into named pieces by offsets.
+Two kinds of overhead shape the code. Every argument costs the numba dispatcher about
+0.1 µs per call from Python, so everything is passed in five flat arrays, cut into named
+pieces by offsets (:func:`layout`). And every array handed to another compiled function
+costs two atomic reference-count updates per call, which in a loop of a few hundred calls
+cost more than the arithmetic; so the hot loops call only scalar helpers
+(:func:`free_interval`, :func:`_before`), and the offers are not made where the reference
+makes them but recorded in order and replayed in one place: an offer only writes the new
+states, and nothing the Dijkstra reads depends on them, so the same offers in the same
+order give the same result.
 
 ``netf`` (float64), per network, read-only:
     ``vx[V] | vy[V] | slen[E]``
@@ -17,17 +24,17 @@ everything is passed in five flat arrays, cut into named pieces by offsets.
     per live state six values: ``seg, low, pos, x, y, cost`` (segment ids are exact in a
     float64 far beyond any network size).
 ``fbuf`` (float64), per network, scratch and output:
-    ``white_lo[V] | white_hi[V] | entry_s[H] | entry_cost[H] | out[M * 5]``
-    where an output row is ``low, pos, x, y, cost``.
-``ibuf`` (int64), per network, scratch and output: a header ``V, E, H, B, M``, then
-    ``seg_slot[E] | vflag[V] | vtouched[V] | entry[H * 4] | heap[H] | via[B] | out[M * 4]
-    | out_via[B]`` where an entry row is ``vertex, parent, via_start, via_len`` (its via
-    is ``via[via_start:via_start + via_len]``) and an output row is ``seg, parent,
-    via_start, via_len`` with ``via_start`` relative to ``out_via``: the output states'
-    vias copied there one after another, so the caller converts one slice. ``seg_slot``
-    (segment -> output row, -1) and ``vflag`` (bit 1: white interval cached; bit 2:
-    vertex done) are reset to -1 / 0 before the kernel returns, on success and on
-    overflow alike.
+    ``white_lo[V] | white_hi[V] | entry_s[H] | entry_cost[H] | offer_lo_hi[O * 2]
+    | out[M * 5]`` where an output row is ``low, pos, x, y, cost``.
+``ibuf`` (int64), per network, scratch and output: a header ``V, E, H, B, M, O``, then
+    ``seg_slot[E] | vflag[V] | vtouched[V] | entry[H * 4] | heap[H] | via[B] | offer[O * 4]
+    | out[M * 4] | out_via[B]``. An entry row (and an offer row) is ``vertex`` (``seg``),
+    ``parent, via_start, via_len``, its via being ``via[via_start:via_start + via_len]``;
+    an output row is ``seg, parent, via_start, via_len`` with ``via_start`` relative to
+    ``out_via``: the output states' vias copied there one after another, so the caller
+    converts one slice. ``seg_slot`` (segment -> output row, -1) and ``vflag`` (bit 1:
+    white interval cached; bit 2: vertex done) are reset to -1 / 0 before the kernel
+    returns, on success and on overflow alike.
 
 The heap holds entry ids; an entry id is the reference's ``counter - 1``, so ordering by
 ``(entry_s, entry_cost, id)`` is exactly the reference's ordering of its heap tuples
@@ -36,8 +43,8 @@ them in the same order as :mod:`heapq` (NaN costs, which the reference never pro
 would break the total order).
 
 Return value: the number of new states, or ``OVERFLOW`` (-1) when a buffer (entries,
-vias or output rows) was too small; the caller grows the buffers and calls again (the
-kernel changes nothing the next call reads).
+vias, offers or output rows) was too small; the caller grows the buffers and calls again
+(the kernel changes nothing the next call reads).
 """
 
 from __future__ import annotations
@@ -63,14 +70,15 @@ LIVE_STRIDE = 6
 OUT_F_STRIDE = 5
 OUT_I_STRIDE = 4
 ENTRY_STRIDE = 4
-N_HEADER = 5  # V, E, H, B, M at the head of ``ibuf``
+N_HEADER = 6  # V, E, H, B, M, O at the head of ``ibuf``
+OFFER_STRIDE = 4
 OVERFLOW = -1
 
 _WHITE = 1
 _DONE = 2
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, error_model="numpy")
 def free_interval(
     ax: float, ay: float, bx: float, by: float, px: float, py: float, eps2: float
 ) -> tuple[float, float]:
@@ -99,151 +107,42 @@ def free_interval(
     return (lo if lo > 0.0 else 0.0), (hi if hi < 1.0 else 1.0)
 
 
-@numba.njit(cache=True)
-def _heap_less(es: np.ndarray, ec: np.ndarray, a: int, b: int) -> bool:
-    """Entry a before entry b: Python's tuple order on (s, parent cost, counter)."""
-    if es[a] != es[b]:
-        return es[a] < es[b]
-    if ec[a] != ec[b]:
-        return ec[a] < ec[b]
+@numba.njit(cache=True, error_model="numpy")
+def layout(
+    n_v: int, n_e: int, cap_h: int, cap_b: int, cap_m: int, cap_o: int
+) -> tuple[int, int, int, int, int, int]:
+    """Offsets of the growable areas of the buffers.
+
+    Returns (es, offer_lo_hi, out_f) in ``fbuf``, then (entry, out_i, out_via) in
+    ``ibuf``; the other pieces follow from them (module docstring).
+    """
+    es0 = 2 * n_v
+    offer_f0 = es0 + 2 * cap_h
+    out_f0 = offer_f0 + 2 * cap_o
+    entry0 = N_HEADER + n_e + 2 * n_v
+    out_i0 = entry0 + cap_h * (ENTRY_STRIDE + 1) + cap_b + cap_o * OFFER_STRIDE
+    out_via0 = out_i0 + cap_m * OUT_I_STRIDE
+    return es0, offer_f0, out_f0, entry0, out_i0, out_via0
+
+
+@numba.njit(cache=True, error_model="numpy")
+def _before(s_a: float, c_a: float, a: int, s_b: float, c_b: float, b: int) -> bool:
+    """Heap order: Python's tuple order on (s, parent cost, counter), a before b."""
+    if s_a != s_b:
+        return s_a < s_b
+    if c_a != c_b:
+        return c_a < c_b
     return a < b
 
 
-@numba.njit(cache=True)
-def _heap_push(heap: np.ndarray, n: int, es: np.ndarray, ec: np.ndarray, e: int) -> None:
-    """Add entry ``e`` to the binary min-heap ``heap[:n]`` (the caller bumps n)."""
-    i = n
-    while i > 0:
-        up = (i - 1) >> 1
-        if _heap_less(es, ec, e, heap[up]):
-            heap[i] = heap[up]
-            i = up
-        else:
-            break
-    heap[i] = e
-
-
-@numba.njit(cache=True)
-def _heap_pop(heap: np.ndarray, n: int, es: np.ndarray, ec: np.ndarray) -> int:
-    """Remove and return the smallest entry of ``heap[:n]`` (the caller lowers n)."""
-    top = heap[0]
-    last = heap[n - 1]
-    n -= 1
-    i = 0
-    while True:
-        child = 2 * i + 1
-        if child >= n:
-            break
-        if child + 1 < n and _heap_less(es, ec, heap[child + 1], heap[child]):
-            child += 1
-        if _heap_less(es, ec, heap[child], last):
-            heap[i] = heap[child]
-            i = child
-        else:
-            break
-    if n > 0:
-        heap[i] = last
-    return top
-
-
-@numba.njit(cache=True)
-def _offer(
-    vx: np.ndarray, vy: np.ndarray, slen: np.ndarray, sf: np.ndarray, st: np.ndarray,
-    twin: np.ndarray, live: np.ndarray, seg_slot: np.ndarray, via: np.ndarray,
-    out_f: np.ndarray, out_i: np.ndarray, m: int, cap_m: int,
-    seg: int, lo: float, hi: float, parent: int, via_start: int, via_len: int,
-) -> int:
-    """The reference ``_offer`` with a parent and ``floor`` -1; returns the new row count.
-
-    Returns ``OVERFLOW`` when a new row does not fit in ``cap_m`` rows.
-    """
-    floor = -1.0
-    x0 = live[C_X0]
-    y0 = live[C_Y0]
-    x1 = live[C_X1]
-    y1 = live[C_Y1]
-    prow = N_CTX + parent * LIVE_STRIDE
-    p_seg = int(live[prow])
-    p_pos = live[prow + 2]
-    p_x = live[prow + 3]
-    p_y = live[prow + 4]
-    p_cost = live[prow + 5]
-    slot = seg_slot[seg]
-    if slot >= 0 and lo >= out_f[slot * OUT_F_STRIDE] and p_cost >= out_f[
-            slot * OUT_F_STRIDE + 4]:
-        return m  # every term of the cost is >= 0: this way cannot do better
-    a = sf[seg]
-    b = st[seg]
-    ax = vx[a]
-    ay = vy[a]
-    dx = vx[b] - ax
-    dy = vy[b] - ay
-    length2 = dx * dx + dy * dy
-    pos = ((x1 - ax) * dx + (y1 - ay) * dy) / length2 if length2 > 0.0 else lo
-    bottom = lo if lo > floor else (floor if floor < hi else hi)
-    pos = bottom if pos < bottom else (hi if pos > hi else pos)
-    mx = ax + pos * dx
-    my = ay + pos * dy
-    ex = mx - x1
-    ey = my - y1
-    cost = (ex * ex + ey * ey) * live[C_INV_TWO_SIGMA2]
-    if via_len == 0 and seg == p_seg:
-        route = (pos - p_pos) * slen[seg]
-    else:
-        route = (1.0 - p_pos) * slen[p_seg] + pos * slen[seg]
-        prev = p_seg
-        turns = 0
-        for q in range(via_start, via_start + via_len):
-            v = via[q]
-            route += slen[v]
-            if v == twin[prev]:
-                turns += 1
-            prev = v
-        if seg == twin[prev]:
-            turns += 1
-        cost += turns * live[C_TURN_BACK_COST]
-    cost += p_cost + abs(route - live[C_CHORD]) * live[C_INV_BETA]
-    motion = live[C_MOTION_COST]
-    if motion > 0.0:
-        ux = (mx - p_x) - (x1 - x0)
-        uy = (my - p_y) - (y1 - y0)
-        cost += math.sqrt(ux * ux + uy * uy) * motion
-    if slot < 0:
-        if m >= cap_m:
-            return OVERFLOW
-        seg_slot[seg] = m
-        f = m * OUT_F_STRIDE
-        out_f[f] = lo
-        out_f[f + 1] = pos
-        out_f[f + 2] = mx
-        out_f[f + 3] = my
-        out_f[f + 4] = cost
-        k = m * OUT_I_STRIDE
-        out_i[k] = seg
-        out_i[k + 1] = parent
-        out_i[k + 2] = via_start
-        out_i[k + 3] = via_len
-        return m + 1
-    f = slot * OUT_F_STRIDE
-    if lo < out_f[f]:
-        out_f[f] = lo
-    if cost < out_f[f + 4]:
-        out_f[f + 1] = pos
-        out_f[f + 2] = mx
-        out_f[f + 3] = my
-        out_f[f + 4] = cost
-        k = slot * OUT_I_STRIDE
-        out_i[k + 1] = parent
-        out_i[k + 2] = via_start
-        out_i[k + 3] = via_len
-    return m
-
-
-@numba.njit(cache=True)
+@numba.njit(cache=True, error_model="numpy")
 def sweep_kernel(
     netf: np.ndarray, neti: np.ndarray, live: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray
 ) -> int:
     """One sweep step over flat arrays (layout in the module docstring).
+
+    One long function on purpose: helpers taking arrays would cost reference counting
+    in the hot loops (module docstring).
 
     Returns the number of new states (their rows at the output areas of ``fbuf`` and
     ``ibuf``, in the reference's dict order), or ``OVERFLOW``. Zero live states give 0.
@@ -253,6 +152,9 @@ def sweep_kernel(
     cap_h = ibuf[2]
     cap_b = ibuf[3]
     cap_m = ibuf[4]
+    cap_o = ibuf[5]
+    es0, offer_f0, out_f0, entry0, out_i0, out_via0 = layout(n_v, n_e, cap_h, cap_b, cap_m,
+                                                             cap_o)
     vx = netf[0:n_v]
     vy = netf[n_v:2 * n_v]
     slen = netf[2 * n_v:2 * n_v + n_e]
@@ -264,25 +166,20 @@ def sweep_kernel(
     ok = neti[4 * n_e + n_v + 1:4 * n_e + 2 * n_v + 1]
     white_lo = fbuf[0:n_v]
     white_hi = fbuf[n_v:2 * n_v]
-    es = fbuf[2 * n_v:2 * n_v + cap_h]
-    ec = fbuf[2 * n_v + cap_h:2 * n_v + 2 * cap_h]
-    out_f = fbuf[2 * n_v + 2 * cap_h:2 * n_v + 2 * cap_h + cap_m * OUT_F_STRIDE]
-    p = N_HEADER
-    seg_slot = ibuf[p:p + n_e]
-    p += n_e
-    vflag = ibuf[p:p + n_v]
-    p += n_v
-    vtouched = ibuf[p:p + n_v]
-    p += n_v
-    entry = ibuf[p:p + cap_h * ENTRY_STRIDE]
-    p += cap_h * ENTRY_STRIDE
-    heap = ibuf[p:p + cap_h]
-    p += cap_h
-    via = ibuf[p:p + cap_b]
-    p += cap_b
-    out_i = ibuf[p:p + cap_m * OUT_I_STRIDE]
-    p += cap_m * OUT_I_STRIDE
-    out_via = ibuf[p:p + cap_b]
+    es = fbuf[es0:es0 + cap_h]
+    ec = fbuf[es0 + cap_h:es0 + 2 * cap_h]
+    offer_f = fbuf[offer_f0:offer_f0 + 2 * cap_o]
+    out_f = fbuf[out_f0:out_f0 + cap_m * OUT_F_STRIDE]
+    seg_slot = ibuf[N_HEADER:N_HEADER + n_e]
+    vflag = ibuf[N_HEADER + n_e:N_HEADER + n_e + n_v]
+    vtouched = ibuf[N_HEADER + n_e + n_v:entry0]
+    entry = ibuf[entry0:entry0 + cap_h * ENTRY_STRIDE]
+    heap = ibuf[entry0 + cap_h * ENTRY_STRIDE:entry0 + cap_h * (ENTRY_STRIDE + 1)]
+    via0 = entry0 + cap_h * (ENTRY_STRIDE + 1)
+    via = ibuf[via0:via0 + cap_b]
+    offer = ibuf[via0 + cap_b:via0 + cap_b + cap_o * OFFER_STRIDE]
+    out_i = ibuf[out_i0:out_i0 + cap_m * OUT_I_STRIDE]
+    out_via = ibuf[out_via0:out_via0 + cap_b]
 
     eps = live[C_EPS]
     eps2 = eps * eps
@@ -291,13 +188,15 @@ def sweep_kernel(
     x1 = live[C_X1]
     y1 = live[C_Y1]
     n_live = (live.shape[0] - N_CTX) // LIVE_STRIDE
-    m = 0  # new states so far
     n_touched = 0  # vertices with a flag set
-    n_entries = 0  # entries pushed (the reference's counter)
+    n_entries = 0  # entries made (the reference's counter)
+    n_pushed = 0  # entries already in the heap
     n_heap = 0
     n_via = 0  # used part of ``via``
-    status = 0
+    n_offers = 0
+    overflow = False
 
+    # 1. Along the same segment, and the head vertex into the heap (offers recorded).
     for i in range(n_live):
         row = N_CTX + i * LIVE_STRIDE
         seg = int(live[row])
@@ -307,11 +206,17 @@ def sweep_kernel(
         node_low = live[row + 1]
         low = node_low if node_low > lo else lo
         if low <= hi:
-            m = _offer(vx, vy, slen, sf, st, twin, live, seg_slot, via, out_f, out_i, m,
-                       cap_m, seg, low, hi, i, 0, 0)
-            if m < 0:
-                status = OVERFLOW
+            if n_offers >= cap_o:
+                overflow = True
                 break
+            offer_f[2 * n_offers] = low
+            offer_f[2 * n_offers + 1] = hi
+            k = n_offers * OFFER_STRIDE
+            offer[k] = seg
+            offer[k + 1] = i
+            offer[k + 2] = 0
+            offer[k + 3] = 0
+            n_offers += 1
         if vflag[b] == 0:
             wl, wh = free_interval(x0, y0, x1, y1, vx[b], vy[b], eps2)
             white_lo[b] = wl
@@ -321,27 +226,63 @@ def sweep_kernel(
             n_touched += 1
         if white_lo[b] <= white_hi[b]:
             if n_entries >= cap_h:
-                status = OVERFLOW
+                overflow = True
                 break
             e = n_entries
             n_entries += 1
             es[e] = white_lo[b]
             ec[e] = live[row + 5]
-            entry[e * ENTRY_STRIDE] = b
-            entry[e * ENTRY_STRIDE + 1] = i
-            entry[e * ENTRY_STRIDE + 2] = 0
-            entry[e * ENTRY_STRIDE + 3] = 0
-            _heap_push(heap, n_heap, es, ec, e)
-            n_heap += 1
+            k = e * ENTRY_STRIDE
+            entry[k] = b
+            entry[k + 1] = i
+            entry[k + 2] = 0
+            entry[k + 3] = 0
 
-    while status == 0 and n_heap > 0:
-        e = _heap_pop(heap, n_heap, es, ec)
+    # 2. Through vertices in order of s (offers recorded).
+    while not overflow:
+        while n_pushed < n_entries:  # sift the new entries up into the heap
+            e = n_pushed
+            n_pushed += 1
+            h = n_heap
+            n_heap += 1
+            while h > 0:
+                up = (h - 1) >> 1
+                u = heap[up]
+                if _before(es[e], ec[e], e, es[u], ec[u], u):
+                    heap[h] = u
+                    h = up
+                else:
+                    break
+            heap[h] = e
+        if n_heap == 0:
+            break
+        e = heap[0]  # pop the smallest entry
         n_heap -= 1
+        last = heap[n_heap]
+        h = 0
+        while True:
+            child = 2 * h + 1
+            if child >= n_heap:
+                break
+            c2 = child + 1
+            if c2 < n_heap and _before(es[heap[c2]], ec[heap[c2]], heap[c2],
+                                       es[heap[child]], ec[heap[child]], heap[child]):
+                child = c2
+            c = heap[child]
+            if _before(es[c], ec[c], c, es[last], ec[last], last):
+                heap[h] = c
+                h = child
+            else:
+                break
+        if n_heap > 0:
+            heap[h] = last
+
         s = es[e]
-        v = entry[e * ENTRY_STRIDE]
-        parent = entry[e * ENTRY_STRIDE + 1]
-        via_start = entry[e * ENTRY_STRIDE + 2]
-        via_len = entry[e * ENTRY_STRIDE + 3]
+        k = e * ENTRY_STRIDE
+        v = entry[k]
+        parent = entry[k + 1]
+        via_start = entry[k + 2]
+        via_len = entry[k + 3]
         if vflag[v] & _DONE:
             continue
         vflag[v] |= _DONE  # v was pushed, so its white interval is cached: already touched
@@ -356,11 +297,17 @@ def sweep_kernel(
             w = st[f]
             lo, hi = free_interval(vx[v], vy[v], vx[w], vy[w], x1, y1, eps2)
             if lo <= hi:
-                m = _offer(vx, vy, slen, sf, st, twin, live, seg_slot, via, out_f, out_i, m,
-                           cap_m, f, lo, hi, parent, via_start, via_len)
-                if m < 0:
-                    status = OVERFLOW
+                if n_offers >= cap_o:
+                    overflow = True
                     break
+                offer_f[2 * n_offers] = lo
+                offer_f[2 * n_offers + 1] = hi
+                q = n_offers * OFFER_STRIDE
+                offer[q] = f
+                offer[q + 1] = parent
+                offer[q + 2] = via_start
+                offer[q + 3] = via_len
+                n_offers += 1
             if vflag[w] & _DONE:
                 continue
             if vflag[w] == 0:
@@ -373,46 +320,132 @@ def sweep_kernel(
             sw = s if s > white_lo[w] else white_lo[w]
             if sw <= white_hi[w]:
                 if n_entries >= cap_h or n_via + via_len + 1 > cap_b:
-                    status = OVERFLOW
+                    overflow = True
                     break
                 new_e = n_entries
                 n_entries += 1
                 es[new_e] = sw
-                ec[new_e] = ec[e]
-                entry[new_e * ENTRY_STRIDE] = w
-                entry[new_e * ENTRY_STRIDE + 1] = parent
-                entry[new_e * ENTRY_STRIDE + 2] = n_via
-                entry[new_e * ENTRY_STRIDE + 3] = via_len + 1
-                for q in range(via_len):
-                    via[n_via + q] = via[via_start + q]
+                ec[new_e] = ec[e]  # parent.cost
+                q = new_e * ENTRY_STRIDE
+                entry[q] = w
+                entry[q + 1] = parent
+                entry[q + 2] = n_via
+                entry[q + 3] = via_len + 1
+                for r in range(via_len):
+                    via[n_via + r] = via[via_start + r]
                 via[n_via + via_len] = f
                 n_via += via_len + 1
-                _heap_push(heap, n_heap, es, ec, new_e)
-                n_heap += 1
 
-    if status == 0:
-        # Copy the output states' vias one after another into ``out_via``, so the caller
-        # converts one slice; a row's via_start becomes relative to it.
-        total = 0
-        for r in range(m):
-            total += out_i[r * OUT_I_STRIDE + 3]
-        if total > cap_b:
-            status = OVERFLOW
-        else:
-            c = 0
-            for r in range(m):
-                k = r * OUT_I_STRIDE
-                start = out_i[k + 2]
-                length = out_i[k + 3]
-                for q in range(length):
-                    out_via[c + q] = via[start + q]
-                out_i[k + 2] = c
-                c += length
-
-    for r in range(m):
-        seg_slot[out_i[r * OUT_I_STRIDE]] = -1
     for r in range(n_touched):
         vflag[vtouched[r]] = 0
-    if status != 0:
+    if overflow:
         return OVERFLOW
+
+    # 3. The offers, in the reference's order: the reference's ``_offer`` with a parent
+    # and ``floor`` -1, expression by expression.
+    inv_two_sigma2 = live[C_INV_TWO_SIGMA2]
+    turn_back_cost = live[C_TURN_BACK_COST]
+    chord = live[C_CHORD]
+    inv_beta = live[C_INV_BETA]
+    motion = live[C_MOTION_COST]
+    floor = -1.0
+    m = 0
+    for o in range(n_offers):
+        lo = offer_f[2 * o]
+        hi = offer_f[2 * o + 1]
+        q = o * OFFER_STRIDE
+        seg = offer[q]
+        parent = offer[q + 1]
+        via_start = offer[q + 2]
+        via_len = offer[q + 3]
+        prow = N_CTX + parent * LIVE_STRIDE
+        p_cost = live[prow + 5]
+        slot = seg_slot[seg]
+        if slot >= 0 and lo >= out_f[slot * OUT_F_STRIDE] and p_cost >= out_f[
+                slot * OUT_F_STRIDE + 4]:
+            continue  # every term of the cost is >= 0: this way cannot do better
+        p_seg = int(live[prow])
+        p_pos = live[prow + 2]
+        a = sf[seg]
+        b = st[seg]
+        ax = vx[a]
+        ay = vy[a]
+        dx = vx[b] - ax
+        dy = vy[b] - ay
+        length2 = dx * dx + dy * dy
+        pos = ((x1 - ax) * dx + (y1 - ay) * dy) / length2 if length2 > 0.0 else lo
+        bottom = lo if lo > floor else (floor if floor < hi else hi)
+        pos = bottom if pos < bottom else (hi if pos > hi else pos)
+        mx = ax + pos * dx
+        my = ay + pos * dy
+        ex = mx - x1
+        ey = my - y1
+        cost = (ex * ex + ey * ey) * inv_two_sigma2
+        if via_len == 0 and seg == p_seg:
+            route = (pos - p_pos) * slen[seg]
+        else:
+            route = (1.0 - p_pos) * slen[p_seg] + pos * slen[seg]
+            prev = p_seg
+            turns = 0
+            for r in range(via_start, via_start + via_len):
+                v = via[r]
+                route += slen[v]
+                if v == twin[prev]:
+                    turns += 1
+                prev = v
+            if seg == twin[prev]:
+                turns += 1
+            cost += turns * turn_back_cost
+        cost += p_cost + abs(route - chord) * inv_beta
+        if motion > 0.0:
+            ux = (mx - live[prow + 3]) - (x1 - x0)
+            uy = (my - live[prow + 4]) - (y1 - y0)
+            cost += math.sqrt(ux * ux + uy * uy) * motion
+        if slot < 0:
+            if m >= cap_m:
+                overflow = True
+                break
+            seg_slot[seg] = m
+            f = m * OUT_F_STRIDE
+            out_f[f] = lo
+            out_f[f + 1] = pos
+            out_f[f + 2] = mx
+            out_f[f + 3] = my
+            out_f[f + 4] = cost
+            k = m * OUT_I_STRIDE
+            out_i[k] = seg
+            out_i[k + 1] = parent
+            out_i[k + 2] = via_start
+            out_i[k + 3] = via_len
+            m += 1
+            continue
+        f = slot * OUT_F_STRIDE
+        if lo < out_f[f]:
+            out_f[f] = lo
+        if cost < out_f[f + 4]:
+            out_f[f + 1] = pos
+            out_f[f + 2] = mx
+            out_f[f + 3] = my
+            out_f[f + 4] = cost
+            k = slot * OUT_I_STRIDE
+            out_i[k + 1] = parent
+            out_i[k + 2] = via_start
+            out_i[k + 3] = via_len
+
+    # 4. The output states' vias, one after another in ``out_via``.
+    total = 0
+    for r in range(m):
+        seg_slot[out_i[r * OUT_I_STRIDE]] = -1
+        total += out_i[r * OUT_I_STRIDE + 3]
+    if overflow or total > cap_b:
+        return OVERFLOW
+    c = 0
+    for r in range(m):
+        k = r * OUT_I_STRIDE
+        start = out_i[k + 2]
+        length = out_i[k + 3]
+        for q in range(length):
+            out_via[c + q] = via[start + q]
+        out_i[k + 2] = c
+        c += length
     return m

@@ -46,11 +46,12 @@ __all__ = ["SweepArrays", "fast_sweep_step", "sweep_arrays"]
 
 _ATTR = "_sweep_arrays"  # where the per-network arrays live on the RoadNetwork object
 
-# Initial buffer capacities (heap entries, via slots, output rows); doubled on overflow.
-# A 1 Hz step on a city network pushes a few dozen entries.
+# Initial buffer capacities (heap entries, via slots, output rows, offers); doubled on
+# overflow. A 1 Hz step on a city network makes a few dozen entries and offers.
 _START_ENTRIES = 1024
 _START_VIA = 4096
 _START_ROWS = 512
+_START_OFFERS = 2048
 
 
 class SweepArrays:
@@ -62,8 +63,8 @@ class SweepArrays:
         out_f0, out_i0, out_via0: where the output rows and the compact vias start.
     """
 
-    __slots__ = ("cap_b", "cap_h", "cap_m", "fbuf", "ibuf", "n_e", "n_v", "netf", "neti",
-                 "out_f0", "out_i0", "out_via0")
+    __slots__ = ("cap_b", "cap_h", "cap_m", "cap_o", "fbuf", "ibuf", "n_e", "n_v", "netf",
+                 "neti", "out_f0", "out_i0", "out_via0")
 
     def __init__(self, view: NetworkView) -> None:
         net = view.network
@@ -77,26 +78,28 @@ class SweepArrays:
                 view.sf, view.st, view.twin, net.out_seg, net.out_ptr, view.turn_back_ok)])
         self.fbuf: npt.NDArray[np.float64] = np.empty(0)
         self.ibuf: npt.NDArray[np.int64] = np.empty(0, dtype=np.int64)
-        self.cap_h = self.cap_b = self.cap_m = 0
+        self.cap_h = self.cap_b = self.cap_m = self.cap_o = 0
         self.out_f0 = self.out_i0 = self.out_via0 = 0
-        self.resize(_START_ENTRIES, _START_VIA, _START_ROWS)
+        self.resize(_START_ENTRIES, _START_VIA, _START_ROWS, _START_OFFERS)
 
-    def resize(self, cap_h: int, cap_b: int, cap_m: int) -> None:
-        """Fresh buffers for ``cap_h`` heap entries, ``cap_b`` via slots, ``cap_m`` rows."""
+    def resize(self, cap_h: int, cap_b: int, cap_m: int, cap_o: int) -> None:
+        """Fresh buffers: ``cap_h`` heap entries, ``cap_b`` vias, ``cap_m`` rows, ``cap_o`` offers.
+
+        Also the way to test the growth path: start with tiny capacities.
+        """
         n_v, n_e = self.n_v, self.n_e
-        self.cap_h, self.cap_b, self.cap_m = cap_h, cap_b, cap_m
-        self.out_f0 = 2 * n_v + 2 * cap_h
-        self.fbuf = np.zeros(self.out_f0 + cap_m * _k.OUT_F_STRIDE)
-        self.out_i0 = _k.N_HEADER + n_e + 2 * n_v + cap_h * (_k.ENTRY_STRIDE + 1) + cap_b
-        self.out_via0 = self.out_i0 + cap_m * _k.OUT_I_STRIDE
-        ibuf = np.zeros(self.out_via0 + cap_b, dtype=np.int64)
-        ibuf[: _k.N_HEADER] = (n_v, n_e, cap_h, cap_b, cap_m)
+        self.cap_h, self.cap_b, self.cap_m, self.cap_o = cap_h, cap_b, cap_m, cap_o
+        _, _, out_f0, _, out_i0, out_via0 = _k.layout(n_v, n_e, cap_h, cap_b, cap_m, cap_o)
+        self.out_f0, self.out_i0, self.out_via0 = out_f0, out_i0, out_via0
+        self.fbuf = np.zeros(out_f0 + cap_m * _k.OUT_F_STRIDE)
+        ibuf = np.zeros(out_via0 + cap_b, dtype=np.int64)
+        ibuf[: _k.N_HEADER] = (n_v, n_e, cap_h, cap_b, cap_m, cap_o)
         ibuf[_k.N_HEADER:_k.N_HEADER + n_e] = -1  # seg_slot: no output row yet
         self.ibuf = ibuf
 
     def grow(self) -> None:
         """Double every growable capacity (after the kernel reported an overflow)."""
-        self.resize(2 * self.cap_h, 2 * self.cap_b, 2 * self.cap_m)
+        self.resize(2 * self.cap_h, 2 * self.cap_b, 2 * self.cap_m, 2 * self.cap_o)
 
 
 def sweep_arrays(view: NetworkView) -> SweepArrays:
