@@ -40,6 +40,7 @@ from livematch.core.monitors import AlertSettings
 from livematch.core.settings import MatchSettings
 from livematch.errors import BadConfigError
 from livematch.feed.decode import FeedLimits
+from livematch.lab.record import RecordSettings
 from livematch.pipeline import (
     CONTROL_TOPIC,
     alert_settings_from_mapping,
@@ -56,7 +57,7 @@ _PREFIX_RE = re.compile(r"^[A-Za-z0-9:_.{}\-]*$")
 _LEVELS = ("debug", "info", "warning", "error")
 # Keys holding file paths: relative ones in a file are relative to that file's folder.
 _PATH_KEYS = {("inputs", "network"), ("inputs", "routes"), ("inputs", "fences"),
-              ("mqtt", "password_file"), ("mqtt", "ca_file")}
+              ("mqtt", "password_file"), ("mqtt", "ca_file"), ("record", "path")}
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -294,6 +295,7 @@ class DaemonConfig:
     publish: PublishConfig = field(default_factory=PublishConfig)
     feed: FeedLimits = field(default_factory=FeedLimits)
     log: LogConfig = field(default_factory=LogConfig)
+    record: RecordSettings = field(default_factory=RecordSettings)
     username: str | None = None
     password: str | None = field(default=None, repr=False)
 
@@ -305,6 +307,7 @@ _SECTIONS: dict[str, type] = {
     "metrics": MetricsConfig,
     "publish": PublishConfig,
     "log": LogConfig,
+    "record": RecordSettings,
 }
 
 # Sections mapped by the pipeline's own functions (so replay and daemon agree) or by
@@ -319,6 +322,7 @@ FLAG_KEYS = {
     "broker": ("mqtt", "url"),
     "store": ("store", "url"),
     "metrics": ("metrics", "listen"),
+    "record": ("record", "path"),
 }
 
 

@@ -241,3 +241,17 @@ def test_load_config_control_topic(tmp_path: Path) -> None:
         with pytest.raises(BadConfigError, match=re.escape(message)):
             load_config(None, env={"LIVEMATCH__MQTT__CONTROL_TOPIC": value})
 
+
+
+def test_load_config_record_section_and_flag(tmp_path: Path) -> None:
+    """[record] is validated by key; --record sets the path, relative to nothing."""
+    cfg = tmp_path / "live.toml"
+    cfg.write_text('[record]\npath = "logs/feed.jsonl.gz"\nrotate_s = 3600\n', encoding="utf-8")
+    config = load_config(cfg, env={})
+    assert config.record.path == str(tmp_path / "logs" / "feed.jsonl.gz")
+    assert config.record.rotate_s == 3600
+    flagged = load_config(cfg, env={}, overrides={"record": "other.jsonl"})
+    assert flagged.record.path == "other.jsonl"
+    cfg.write_text("[record]\nrotate_mb = -1\n", encoding="utf-8")
+    with pytest.raises(BadConfigError, match=r"record\.rotate_mb must be a number >= 0"):
+        load_config(cfg, env={})

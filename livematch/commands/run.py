@@ -12,13 +12,16 @@ import argparse
 import asyncio
 import logging
 import signal
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from livematch.config import DaemonConfig, load_config, redact_url
 from livematch.errors import BadConfigError
 from livematch.service.logs import fields, setup_logging
 
 log = logging.getLogger("livematch.run")
+
+if TYPE_CHECKING:
+    from livematch.lab.record import RecordingTap
 
 
 def register(subparsers: Any) -> None:
@@ -41,21 +44,34 @@ def register(subparsers: Any) -> None:
     parser.add_argument("--routes", metavar="PATH",
                         help="routes: GeoJSON lines or a GTFS feed (.zip or folder)")
     parser.add_argument("--fences", metavar="PATH", help="geofences: GeoJSON polygons")
+    parser.add_argument("--record", metavar="PATH",
+                        help="also write every received message to this replay log "
+                             "(.gz: compressed; rotation: [record] rotate_mb / rotate_s)")
     parser.set_defaults(func=_run)
 
 
 def _run(args: argparse.Namespace) -> int:
     overrides = {key: getattr(args, key) for key in
-                 ("network", "broker", "store", "metrics", "routes", "fences")}
+                 ("network", "broker", "store", "metrics", "routes", "fences", "record")}
     config = load_config(args.config, overrides=overrides)
     setup_logging(config.log.level)
-    daemon = build_daemon(config)
-    asyncio.run(_serve(daemon))
+    tap = config.record.tap()
+    daemon = build_daemon(config, tap)
+    try:
+        asyncio.run(_serve(daemon))
+    finally:
+        if tap is not None:
+            tap.close()
     return 0
 
 
-def build_daemon(config: DaemonConfig) -> Any:
-    """Open the network and build the pipeline and daemon described by ``config``."""
+def build_daemon(config: DaemonConfig, tap: RecordingTap | None = None) -> Any:
+    """Open the network and build the pipeline and daemon described by ``config``.
+
+    With a recording ``tap`` every message handed to the pipeline, rejects included, is
+    also written to a replay log (``--record`` / ``[record]``); the caller closes it.
+    """
+    from livematch.lab.record import RecordingPipeline
     from livematch.mapdata.fences import read_fences
     from livematch.mapdata.netfile import open_network
     from livematch.mapdata.routes import load_routes
@@ -72,9 +88,11 @@ def build_daemon(config: DaemonConfig) -> Any:
     log.info("network loaded", extra=fields(
         path=config.inputs.network, segments=network.n_segments,
         routes=len(routes or {}), fences=len(fences or [])))
-    pipeline = Pipeline(network, config.matcher, limits=config.feed, routes=routes,
-                        fences=fences, alerts=config.alerts,
-                        control_topic=config.mqtt.control_topic)
+    pipeline: Any = Pipeline(network, config.matcher, limits=config.feed, routes=routes,
+                             fences=fences, alerts=config.alerts,
+                             control_topic=config.mqtt.control_topic)
+    if tap is not None:
+        pipeline = RecordingPipeline(pipeline, tap)
     return Daemon(config, pipeline)
 
 
