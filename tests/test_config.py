@@ -255,3 +255,11 @@ def test_load_config_record_section_and_flag(tmp_path: Path) -> None:
     cfg.write_text("[record]\nrotate_mb = -1\n", encoding="utf-8")
     with pytest.raises(BadConfigError, match=r"record\.rotate_mb must be a number >= 0"):
         load_config(cfg, env={})
+
+
+@pytest.mark.parametrize("name", ["live.toml", "demo.toml", "transit.toml", "delivery.toml"])
+def test_load_config_every_example_in_config_folder(name: str) -> None:
+    """Every commented example configuration shipped in config/ is valid."""
+    path = Path(__file__).resolve().parent.parent / "config" / name
+    config = load_config(path, env={})
+    assert config.source.endswith(name)
