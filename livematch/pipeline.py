@@ -599,38 +599,7 @@ def matcher_settings_from_mapping(section: Mapping[str, Any], where: str) -> Mat
         livematch.errors.BadConfigError: a.toml: matcher.eps_levels must be strictly \
 increasing, got [30.0, 15.0]
     """
-    hints = typing.get_type_hints(MatchSettings)
-    names = [f.name for f in fields(MatchSettings)]
-    problems: list[str] = []
-    values: dict[str, Any] = {}
-    for key, value in section.items():
-        if key not in names:
-            problems.append(f"{where}: unknown key matcher.{key} "
-                            f"(expected one of {', '.join(names)})")
-            continue
-        hint = hints[key]
-        number = isinstance(value, int | float) and not isinstance(value, bool)
-        if hint is int:
-            ok, expected = number and isinstance(value, int), "an integer"
-        elif hint is float:
-            ok, expected = number and math.isfinite(value), "a finite number"
-        elif typing.get_origin(hint) is tuple:
-            ok = isinstance(value, list | tuple) and all(
-                isinstance(v, int | float) and not isinstance(v, bool) for v in value)
-            expected = "a list of numbers"
-        else:  # a field type this mapper does not know yet: let problems() judge it
-            ok, expected = True, ""
-        if not ok:
-            problems.append(f"{where}: matcher.{key} must be {expected}, got {value!r}")
-            continue
-        values[key] = tuple(value) if isinstance(value, list) else value
-    if problems:
-        raise BadConfigError("\n".join(problems))
-    settings = MatchSettings(**values)
-    problems = [f"{where}: matcher.{key} {what}" for key, what in settings.problems()]
-    if problems:
-        raise BadConfigError("\n".join(problems))
-    return settings
+    return _settings_from_mapping(MatchSettings, "matcher", section, where)
 
 
 def alert_settings_from_mapping(section: Mapping[str, Any], where: str) -> AlertSettings:
@@ -654,13 +623,28 @@ def alert_settings_from_mapping(section: Mapping[str, Any], where: str) -> Alert
         ...
         livematch.errors.BadConfigError: a.toml: alerts.fence_fixes must be an integer, got 1.5
     """
-    hints = typing.get_type_hints(AlertSettings)
-    names = list(AlertSettings.keys())
+    return _settings_from_mapping(AlertSettings, "alerts", section, where)
+
+
+_Settings = typing.TypeVar("_Settings", MatchSettings, AlertSettings)
+
+
+def _settings_from_mapping(
+    cls: type[_Settings], name: str, section: Mapping[str, Any], where: str
+) -> _Settings:
+    """Check a TOML table key by key against a settings dataclass, then build it.
+
+    Types are checked first (int, finite float, list of numbers, string), then the
+    dataclass's own ``problems()``; every problem is reported, each naming ``where`` and
+    ``name.key``.
+    """
+    hints = typing.get_type_hints(cls)
+    names = [f.name for f in fields(cls)]
     problems: list[str] = []
     values: dict[str, Any] = {}
     for key, value in section.items():
         if key not in names:
-            problems.append(f"{where}: unknown key alerts.{key} "
+            problems.append(f"{where}: unknown key {name}.{key} "
                             f"(expected one of {', '.join(names)})")
             continue
         hint = hints[key]
@@ -669,16 +653,22 @@ def alert_settings_from_mapping(section: Mapping[str, Any], where: str) -> Alert
             ok, expected = number and isinstance(value, int), "an integer"
         elif hint is float:
             ok, expected = number and math.isfinite(value), "a finite number"
-        else:
+        elif typing.get_origin(hint) is tuple:
+            ok = isinstance(value, list | tuple) and all(
+                isinstance(v, int | float) and not isinstance(v, bool) for v in value)
+            expected = "a list of numbers"
+        elif hint is str:
             ok, expected = isinstance(value, str), "a string"
+        else:  # a field type this mapper does not know yet: let problems() judge it
+            ok, expected = True, ""
         if not ok:
-            problems.append(f"{where}: alerts.{key} must be {expected}, got {value!r}")
+            problems.append(f"{where}: {name}.{key} must be {expected}, got {value!r}")
             continue
-        values[key] = value
+        values[key] = tuple(value) if isinstance(value, list) else value
     if problems:
         raise BadConfigError("\n".join(problems))
-    settings = AlertSettings(**values)
-    problems = [f"{where}: alerts.{key} {what}" for key, what in settings.problems()]
+    settings = cls(**values)
+    problems = [f"{where}: {name}.{key} {what}" for key, what in settings.problems()]
     if problems:
         raise BadConfigError("\n".join(problems))
     return settings
