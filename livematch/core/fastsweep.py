@@ -34,6 +34,8 @@ Example (a vehicle moving 10 m along a straight road; no live states gives no st
 
 from __future__ import annotations
 
+import operator
+
 import numpy as np
 import numpy.typing as npt
 
@@ -45,6 +47,8 @@ from livematch.core.view import NetworkView
 __all__ = ["SweepArrays", "fast_sweep_step", "sweep_arrays"]
 
 _ATTR = "_sweep_arrays"  # where the per-network arrays live on the RoadNetwork object
+# The fields of a live state the kernel reads, in the order of a row of its ``live`` array.
+_packed_fields = operator.attrgetter("seg", "low", "pos", "x", "y", "cost")
 
 # Initial buffer capacities (heap entries, via slots, output rows, offers); doubled on
 # overflow. A 1 Hz step on a city network makes a few dozen entries and offers.
@@ -125,7 +129,7 @@ def fast_sweep_step(live: dict[int, Node], ctx: StepContext) -> dict[int, Node]:
     flat = [ctx.eps, ctx.x0, ctx.y0, ctx.x1, ctx.y1, ctx.chord, ctx.inv_two_sigma2,
             ctx.inv_beta, ctx.turn_back_cost, ctx.motion_cost]
     for n in nodes:
-        flat += (n.seg, n.low, n.pos, n.x, n.y, n.cost)
+        flat += _packed_fields(n)
     packed = np.array(flat, dtype=np.float64)
     m = _k.sweep_kernel(arrays.netf, arrays.neti, packed, arrays.fbuf, arrays.ibuf)
     while m < 0:
@@ -135,17 +139,17 @@ def fast_sweep_step(live: dict[int, Node], ctx: StepContext) -> dict[int, Node]:
         return {}
     f0 = arrays.out_f0
     i0 = arrays.out_i0
-    rf = arrays.fbuf[f0:f0 + m * _k.OUT_F_STRIDE].tolist()
     ri = arrays.ibuf[i0:i0 + m * _k.OUT_I_STRIDE].tolist()
+    rf = iter(arrays.fbuf[f0:f0 + m * _k.OUT_F_STRIDE].tolist())
     n_via = ri[-2] + ri[-1]  # the last row's via ends the compact area
     vias: list[int] = (arrays.ibuf[arrays.out_via0:arrays.out_via0 + n_via].tolist()
                        if n_via else [])
     seq = ctx.seq
     t = ctx.t
     new: dict[int, Node] = {}
-    for r in range(m):
-        seg, parent, via_start, via_len = ri[4 * r:4 * r + 4]
-        low, pos, x, y, cost = rf[5 * r:5 * r + 5]
+    it = iter(ri)
+    for seg, parent, via_start, via_len, low, pos, x, y, cost in zip(
+            it, it, it, it, rf, rf, rf, rf, rf, strict=False):
         via = tuple(vias[via_start:via_start + via_len]) if via_len else ()
         new[seg] = Node(seg, seq, t, pos, x, y, nodes[parent], via, cost, low)
     return new
