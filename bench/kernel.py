@@ -60,7 +60,7 @@ def _repeat_kernel(netf: np.ndarray, neti: np.ndarray, live: np.ndarray, fbuf: n
                    ibuf: np.ndarray, n: int) -> int:
     m = 0
     for _ in range(n):
-        m = _k.sweep_kernel(netf, neti, live, fbuf, ibuf)
+        m, _ = _k.sweep_kernel(netf, neti, live, fbuf, ibuf)
     return m
 
 

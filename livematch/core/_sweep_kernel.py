@@ -28,11 +28,11 @@ order give the same result.
     | out[M * 5]`` where an output row is ``low, pos, x, y, cost``.
 ``ibuf`` (int64), per network, scratch and output: a header ``V, E, H, B, M, O``, then
     ``seg_slot[E] | vflag[V] | vtouched[V] | entry[H * 4] | heap[H] | via[B] | offer[O * 4]
-    | out[M * 4] | out_via[B]``. An entry row (and an offer row) is ``vertex`` (``seg``),
-    ``parent, via_start, via_len``, its via being ``via[via_start:via_start + via_len]``;
-    an output row is ``seg, parent, via_start, via_len`` with ``via_start`` relative to
-    ``out_via``: the output states' vias copied there one after another, so the caller
-    converts one slice. ``seg_slot`` (segment -> output row, -1) and ``vflag`` (bit 1:
+    | out[M * 4 + B]``. An entry row (and an offer row) is ``vertex`` (``seg``),
+    ``parent, via_start, via_len``, its via being ``via[via_start:via_start + via_len]``.
+    The output is ``m`` rows ``seg, parent, via_start, via_len`` followed by the output
+    states' vias one after another, ``via_start`` counting from the end of the rows: the
+    caller converts one slice. ``seg_slot`` (segment -> output row, -1) and ``vflag`` (bit 1:
     white interval cached; bit 2: vertex done) are reset to -1 / 0 before the kernel
     returns, on success and on overflow alike.
 
@@ -42,9 +42,10 @@ The heap holds entry ids; an entry id is the reference's ``counter - 1``, so ord
 them in the same order as :mod:`heapq` (NaN costs, which the reference never produces,
 would break the total order).
 
-Return value: the number of new states, or ``OVERFLOW`` (-1) when a buffer (entries,
-vias, offers or output rows) was too small; the caller grows the buffers and calls again
-(the kernel changes nothing the next call reads).
+Return value: ``(m, n_via)``, the number of new states and of via entries after their
+rows, or ``(OVERFLOW, 0)`` (-1) when a buffer (entries, vias, offers or output rows) was
+too small; the caller grows the buffers and calls again (the kernel changes nothing the
+next call reads).
 """
 
 from __future__ import annotations
@@ -113,16 +114,16 @@ def layout(
 ) -> tuple[int, int, int, int, int, int]:
     """Offsets of the growable areas of the buffers.
 
-    Returns (es, offer_lo_hi, out_f) in ``fbuf``, then (entry, out_i, out_via) in
-    ``ibuf``; the other pieces follow from them (module docstring).
+    Returns (es, offer_lo_hi, out_f) in ``fbuf``, then (entry, out_i) in ``ibuf`` and
+    the length of ``ibuf``; the other pieces follow from them (module docstring).
     """
     es0 = 2 * n_v
     offer_f0 = es0 + 2 * cap_h
     out_f0 = offer_f0 + 2 * cap_o
     entry0 = N_HEADER + n_e + 2 * n_v
     out_i0 = entry0 + cap_h * (ENTRY_STRIDE + 1) + cap_b + cap_o * OFFER_STRIDE
-    out_via0 = out_i0 + cap_m * OUT_I_STRIDE
-    return es0, offer_f0, out_f0, entry0, out_i0, out_via0
+    end = out_i0 + cap_m * OUT_I_STRIDE + cap_b
+    return es0, offer_f0, out_f0, entry0, out_i0, end
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -138,14 +139,15 @@ def _before(s_a: float, c_a: float, a: int, s_b: float, c_b: float, b: int) -> b
 @numba.njit(cache=True, error_model="numpy")
 def sweep_kernel(
     netf: np.ndarray, neti: np.ndarray, live: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray
-) -> int:
+) -> tuple[int, int]:
     """One sweep step over flat arrays (layout in the module docstring).
 
     One long function on purpose: helpers taking arrays would cost reference counting
     in the hot loops (module docstring).
 
-    Returns the number of new states (their rows at the output areas of ``fbuf`` and
-    ``ibuf``, in the reference's dict order), or ``OVERFLOW``. Zero live states give 0.
+    Returns ``(m, n_via)``: ``m`` new states (their rows at the output areas of ``fbuf``
+    and ``ibuf``, in the reference's dict order), ``n_via`` via entries after the rows;
+    or ``(OVERFLOW, 0)``. Zero live states give (0, 0).
     """
     n_v = ibuf[0]
     n_e = ibuf[1]
@@ -153,7 +155,7 @@ def sweep_kernel(
     cap_b = ibuf[3]
     cap_m = ibuf[4]
     cap_o = ibuf[5]
-    es0, offer_f0, out_f0, entry0, out_i0, out_via0 = layout(n_v, n_e, cap_h, cap_b, cap_m,
+    es0, offer_f0, out_f0, entry0, out_i0, end = layout(n_v, n_e, cap_h, cap_b, cap_m,
                                                              cap_o)
     vx = netf[0:n_v]
     vy = netf[n_v:2 * n_v]
@@ -178,8 +180,7 @@ def sweep_kernel(
     via0 = entry0 + cap_h * (ENTRY_STRIDE + 1)
     via = ibuf[via0:via0 + cap_b]
     offer = ibuf[via0 + cap_b:via0 + cap_b + cap_o * OFFER_STRIDE]
-    out_i = ibuf[out_i0:out_i0 + cap_m * OUT_I_STRIDE]
-    out_via = ibuf[out_via0:out_via0 + cap_b]
+    out_i = ibuf[out_i0:end]
 
     eps = live[C_EPS]
     eps2 = eps * eps
@@ -339,7 +340,7 @@ def sweep_kernel(
     for r in range(n_touched):
         vflag[vtouched[r]] = 0
     if overflow:
-        return OVERFLOW
+        return OVERFLOW, 0
 
     # 3. The offers, in the reference's order: the reference's ``_offer`` with a parent
     # and ``floor`` -1, expression by expression.
@@ -432,20 +433,21 @@ def sweep_kernel(
             out_i[k + 2] = via_start
             out_i[k + 3] = via_len
 
-    # 4. The output states' vias, one after another in ``out_via``.
+    # 4. The output states' vias, one after another after the rows.
     total = 0
     for r in range(m):
         seg_slot[out_i[r * OUT_I_STRIDE]] = -1
         total += out_i[r * OUT_I_STRIDE + 3]
     if overflow or total > cap_b:
-        return OVERFLOW
+        return OVERFLOW, 0
     c = 0
+    base = m * OUT_I_STRIDE
     for r in range(m):
         k = r * OUT_I_STRIDE
         start = out_i[k + 2]
         length = out_i[k + 3]
         for q in range(length):
-            out_via[c + q] = via[start + q]
+            out_i[base + c + q] = via[start + q]
         out_i[k + 2] = c
         c += length
-    return m
+    return m, total

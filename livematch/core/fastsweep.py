@@ -64,11 +64,11 @@ class SweepArrays:
     Attributes:
         netf, neti: the network (float64 and int64 parts, layout in ``_sweep_kernel``).
         fbuf, ibuf: scratch and output buffers, grown by :meth:`grow`.
-        out_f0, out_i0, out_via0: where the output rows and the compact vias start.
+        out_f0, out_i0: where the output rows start (the vias follow the int rows).
     """
 
     __slots__ = ("cap_b", "cap_h", "cap_m", "cap_o", "fbuf", "ibuf", "n_e", "n_v", "netf",
-                 "neti", "out_f0", "out_i0", "out_via0")
+                 "neti", "out_f0", "out_i0")
 
     def __init__(self, view: NetworkView) -> None:
         net = view.network
@@ -83,7 +83,7 @@ class SweepArrays:
         self.fbuf: npt.NDArray[np.float64] = np.empty(0)
         self.ibuf: npt.NDArray[np.int64] = np.empty(0, dtype=np.int64)
         self.cap_h = self.cap_b = self.cap_m = self.cap_o = 0
-        self.out_f0 = self.out_i0 = self.out_via0 = 0
+        self.out_f0 = self.out_i0 = 0
         self.resize(_START_ENTRIES, _START_VIA, _START_ROWS, _START_OFFERS)
 
     def resize(self, cap_h: int, cap_b: int, cap_m: int, cap_o: int) -> None:
@@ -93,10 +93,10 @@ class SweepArrays:
         """
         n_v, n_e = self.n_v, self.n_e
         self.cap_h, self.cap_b, self.cap_m, self.cap_o = cap_h, cap_b, cap_m, cap_o
-        _, _, out_f0, _, out_i0, out_via0 = _k.layout(n_v, n_e, cap_h, cap_b, cap_m, cap_o)
-        self.out_f0, self.out_i0, self.out_via0 = out_f0, out_i0, out_via0
+        _, _, out_f0, _, out_i0, end = _k.layout(n_v, n_e, cap_h, cap_b, cap_m, cap_o)
+        self.out_f0, self.out_i0 = out_f0, out_i0
         self.fbuf = np.zeros(out_f0 + cap_m * _k.OUT_F_STRIDE)
-        ibuf = np.zeros(out_via0 + cap_b, dtype=np.int64)
+        ibuf = np.zeros(end, dtype=np.int64)
         ibuf[: _k.N_HEADER] = (n_v, n_e, cap_h, cap_b, cap_m, cap_o)
         ibuf[_k.N_HEADER:_k.N_HEADER + n_e] = -1  # seg_slot: no output row yet
         self.ibuf = ibuf
@@ -131,23 +131,23 @@ def fast_sweep_step(live: dict[int, Node], ctx: StepContext) -> dict[int, Node]:
     for n in nodes:
         flat += _packed_fields(n)
     packed = np.array(flat, dtype=np.float64)
-    m = _k.sweep_kernel(arrays.netf, arrays.neti, packed, arrays.fbuf, arrays.ibuf)
+    m, n_via = _k.sweep_kernel(arrays.netf, arrays.neti, packed, arrays.fbuf, arrays.ibuf)
     while m < 0:
         arrays.grow()
-        m = _k.sweep_kernel(arrays.netf, arrays.neti, packed, arrays.fbuf, arrays.ibuf)
+        m, n_via = _k.sweep_kernel(arrays.netf, arrays.neti, packed, arrays.fbuf,
+                                   arrays.ibuf)
     if m == 0:
         return {}
     f0 = arrays.out_f0
     i0 = arrays.out_i0
-    ri = arrays.ibuf[i0:i0 + m * _k.OUT_I_STRIDE].tolist()
+    n_ints = m * _k.OUT_I_STRIDE
+    ri = arrays.ibuf[i0:i0 + n_ints + n_via].tolist()
     rf = iter(arrays.fbuf[f0:f0 + m * _k.OUT_F_STRIDE].tolist())
-    n_via = ri[-2] + ri[-1]  # the last row's via ends the compact area
-    vias: list[int] = (arrays.ibuf[arrays.out_via0:arrays.out_via0 + n_via].tolist()
-                       if n_via else [])
+    vias = ri[n_ints:] if n_via else []
     seq = ctx.seq
     t = ctx.t
     new: dict[int, Node] = {}
-    it = iter(ri)
+    it = iter(ri)  # four ints, then five floats per row; zip stops when rf runs out
     for seg, parent, via_start, via_len, low, pos, x, y, cost in zip(
             it, it, it, it, rf, rf, rf, rf, rf, strict=False):
         via = tuple(vias[via_start:via_start + via_len]) if via_len else ()
