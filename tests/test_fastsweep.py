@@ -222,3 +222,16 @@ def test_fastsweep_docstring_examples() -> None:
     """The worked example in the module's docstring holds (run as a doctest)."""
     result = doctest.testmod(fastsweep, raise_on_error=False)
     assert result.attempted > 0 and result.failed == 0
+
+
+def test_fast_sweep_step_reads_keys_and_seg_like_the_reference() -> None:
+    """A dict whose key disagrees with its state's ``seg`` (never built by the matcher):
+    still identical, the key steering the continuation and ``seg`` the route cost."""
+    net = straight_road()
+    view = view_of(net)
+    east = segment_between(net, (100.0, 0.0), (150.0, 0.0))
+    prev = segment_between(net, (50.0, 0.0), (100.0, 0.0))
+    live = {east: Node(prev, 1, 1.0, 0.5, 75.0, 0.0, None, (), 0.0, 0.2)}
+    ctx = StepContext(view, 15.0, 110.0, 2.0, 120.0, 1.0, 2, 2.0, 10.0, 0.02, 0.1, 2.0, 0.2)
+    new = check_step(live, ctx)
+    assert east in new

@@ -21,8 +21,10 @@ order give the same result.
 ``neti`` (int64), per network, read-only:
     ``sf[E] | st[E] | twin[E] | out_seg[E] | out_ptr[V + 1] | turn_back_ok[V]``
 ``live`` (float64), per call: ``N_CTX`` step scalars (see the ``C_*`` indices), then
-    per live state six values: ``seg, low, pos, x, y, cost`` (segment ids are exact in a
-    float64 far beyond any network size).
+    per live state seven values: its dict key, then its ``seg, low, pos, x, y, cost``
+    (the reference reads the key where it iterates over the states and ``seg`` where it
+    reads the parent; the two agree in every dict the matcher builds. Segment ids are
+    exact in a float64 far beyond any network size).
 ``fbuf`` (float64), per network, scratch and output:
     ``white_lo[V] | white_hi[V] | entry_s[H] | entry_cost[H] | offer_lo_hi[O * 2]
     | out[M * 5]`` where an output row is ``low, pos, x, y, cost``.
@@ -67,7 +69,15 @@ C_INV_BETA = 7
 C_TURN_BACK_COST = 8
 C_MOTION_COST = 9
 N_CTX = 10
-LIVE_STRIDE = 6
+LIVE_STRIDE = 7
+# Offsets within a row of ``live``.
+L_KEY = 0
+L_SEG = 1
+L_LOW = 2
+L_POS = 3
+L_X = 4
+L_Y = 5
+L_COST = 6
 OUT_F_STRIDE = 5
 OUT_I_STRIDE = 4
 ENTRY_STRIDE = 4
@@ -200,11 +210,11 @@ def sweep_kernel(
     # 1. Along the same segment, and the head vertex into the heap (offers recorded).
     for i in range(n_live):
         row = N_CTX + i * LIVE_STRIDE
-        seg = int(live[row])
+        seg = int(live[row + L_KEY])
         a = sf[seg]
         b = st[seg]
         lo, hi = free_interval(vx[a], vy[a], vx[b], vy[b], x1, y1, eps2)
-        node_low = live[row + 1]
+        node_low = live[row + L_LOW]
         low = node_low if node_low > lo else lo
         if low <= hi:
             if n_offers >= cap_o:
@@ -232,7 +242,7 @@ def sweep_kernel(
             e = n_entries
             n_entries += 1
             es[e] = white_lo[b]
-            ec[e] = live[row + 5]
+            ec[e] = live[row + L_COST]
             k = e * ENTRY_STRIDE
             entry[k] = b
             entry[k + 1] = i
@@ -290,7 +300,7 @@ def sweep_kernel(
         if via_len > 0:
             back = twin[via[via_start + via_len - 1]]
         else:
-            back = twin[int(live[N_CTX + parent * LIVE_STRIDE])]
+            back = twin[int(live[N_CTX + parent * LIVE_STRIDE + L_SEG])]
         for j in range(out_ptr[v], out_ptr[v + 1]):
             f = out_seg[j]
             if f == back and ok[v] == 0:
@@ -360,13 +370,13 @@ def sweep_kernel(
         via_start = offer[q + 2]
         via_len = offer[q + 3]
         prow = N_CTX + parent * LIVE_STRIDE
-        p_cost = live[prow + 5]
+        p_cost = live[prow + L_COST]
         slot = seg_slot[seg]
         if slot >= 0 and lo >= out_f[slot * OUT_F_STRIDE] and p_cost >= out_f[
                 slot * OUT_F_STRIDE + 4]:
             continue  # every term of the cost is >= 0: this way cannot do better
-        p_seg = int(live[prow])
-        p_pos = live[prow + 2]
+        p_seg = int(live[prow + L_SEG])
+        p_pos = live[prow + L_POS]
         a = sf[seg]
         b = st[seg]
         ax = vx[a]
@@ -399,8 +409,8 @@ def sweep_kernel(
             cost += turns * turn_back_cost
         cost += p_cost + abs(route - chord) * inv_beta
         if motion > 0.0:
-            ux = (mx - live[prow + 3]) - (x1 - x0)
-            uy = (my - live[prow + 4]) - (y1 - y0)
+            ux = (mx - live[prow + L_X]) - (x1 - x0)
+            uy = (my - live[prow + L_Y]) - (y1 - y0)
             cost += math.sqrt(ux * ux + uy * uy) * motion
         if slot < 0:
             if m >= cap_m:

@@ -128,7 +128,8 @@ def fast_sweep_step(live: dict[int, Node], ctx: StepContext) -> dict[int, Node]:
     nodes = list(live.values())
     flat = [ctx.eps, ctx.x0, ctx.y0, ctx.x1, ctx.y1, ctx.chord, ctx.inv_two_sigma2,
             ctx.inv_beta, ctx.turn_back_cost, ctx.motion_cost]
-    for n in nodes:
+    for seg, n in live.items():
+        flat.append(seg)
         flat += _packed_fields(n)
     packed = np.array(flat, dtype=np.float64)
     m, n_via = _k.sweep_kernel(arrays.netf, arrays.neti, packed, arrays.fbuf, arrays.ibuf)
