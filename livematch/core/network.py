@@ -67,6 +67,7 @@ class RoadNetwork:
     source: str = ""
     _tree: Any = field(default=None, init=False, repr=False)
     _view: Any = field(default=None, init=False, repr=False)
+    _sweep_arrays: Any = field(default=None, init=False, repr=False)
 
     def __post_init__(self) -> None:
         self.node_xy = np.ascontiguousarray(self.node_xy, dtype=np.float64).reshape(-1, 2)

@@ -43,6 +43,7 @@ from collections.abc import Iterator
 from typing import Any
 
 from livematch.core.events import Assignment, Commit, Event, Filtered, MatchedFix
+from livematch.core.fastsweep import fast_sweep_step
 from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
 from livematch.core.routing import connect
@@ -56,7 +57,6 @@ from livematch.core.sweep import (
     common_ancestor,
     descends_from,
     fresh_start,
-    sweep_step,
 )
 from livematch.core.view import NetworkView, view_of
 from livematch.errors import BadStateError
@@ -207,7 +207,7 @@ class Tracker:
             )
             new: dict[int, Node] = {}
             if level.live and not gap:
-                new = sweep_step(level.live, ctx)
+                new = fast_sweep_step(level.live, ctx)
             if not new and level.live:
                 limit = min(s.bridge_speed_mps * dt, s.detour_factor * chord + s.gap_m)
                 limit += 2.0 * level.eps
