@@ -90,7 +90,8 @@ def main(argv: list[str] | None = None) -> int:
         "# Tracker time per fix (1 Hz simulated drives)",
         "",
         f"Command: `bench/speed.py --drives {args.drives} --duration {args.duration:g}` "
-        f"on {machine}. Pure-Python sweep; numbers move with machine load.",
+        f"on {machine}. Sweep step compiled (numba), candidate tree and commits in "
+        "Python; numbers move with machine load.",
         "",
         "| extract | configuration | fixes | µs median | µs p95 | µs mean "
         "| state bytes median | max |",
