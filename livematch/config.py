@@ -54,6 +54,7 @@ PASSWORD_ENV = "LIVEMATCH_MQTT_PASSWORD"
 # Characters allowed in a Redis key prefix: none of them is special in a SCAN MATCH
 # pattern, so "all vehicles under the prefix" is an exact query.
 _PREFIX_RE = re.compile(r"^[A-Za-z0-9:_.{}\-]*$")
+_GROUP_NAME_RE = re.compile(r"^[A-Za-z0-9._\-]{0,64}$")
 _LEVELS = ("debug", "info", "warning", "error")
 # Keys holding file paths: relative ones in a file are relative to that file's folder.
 _PATH_KEYS = {("inputs", "network"), ("inputs", "routes"), ("inputs", "fences"),
@@ -212,6 +213,46 @@ class StoreConfig:
 
 
 @dataclass(frozen=True, kw_only=True)
+class GroupConfig:
+    """``[group]``: scale-out across worker processes by shard leases in Redis. Seconds.
+
+    ``name`` "" (the default) runs one standalone daemon, as before. A non-empty name
+    (``--group NAME``) joins that worker group: vehicles map to ``shards`` shards by a
+    stable hash, each worker holds about ``ceil(shards / live workers)`` of them by
+    leases of ``lease_s`` seconds (renewed every ``lease_s / 3``), matches only their
+    vehicles, and keeps the fixes of other shards for ``buffer_s`` seconds (at most
+    ``buffer_max`` per shard) to replay them if it takes such a shard over. ``worker``
+    names this process in the group ("" = ``HOSTNAME-PID``); it is also appended to
+    ``mqtt.client_id`` so that every worker has its own MQTT session. Needs a Redis
+    store whose ``key_prefix`` holds no ``{}`` (the keys carry a shard hash tag).
+    """
+
+    name: str = ""
+    worker: str = ""
+    shards: int = 64
+    lease_s: float = 10.0
+    buffer_s: float = 120.0
+    buffer_max: int = 20_000
+
+    def problems(self) -> list[tuple[str, str]]:
+        """Every invalid value as (key, expectation with the value found)."""
+        out: list[tuple[str, str]] = []
+        for key in ("name", "worker"):
+            value = getattr(self, key)
+            if not _GROUP_NAME_RE.match(value):
+                out.append((key, f"must be at most 64 letters, digits or . _ -, got {value!r}"))
+        if not 1 <= self.shards <= 16384:
+            out.append(("shards", f"must be 1..16384, got {self.shards}"))
+        if not (math.isfinite(self.lease_s) and 1.0 <= self.lease_s <= 3600.0):
+            out.append(("lease_s", f"must be 1..3600 seconds, got {self.lease_s}"))
+        if not (math.isfinite(self.buffer_s) and self.buffer_s >= 0):
+            out.append(("buffer_s", f"must be >= 0 seconds, got {self.buffer_s}"))
+        if self.buffer_max < 0:
+            out.append(("buffer_max", f"must be >= 0, got {self.buffer_max}"))
+        return out
+
+
+@dataclass(frozen=True, kw_only=True)
 class MetricsConfig:
     """``[metrics]``: the HTTP listener for ``/metrics``, ``/healthz`` and ``/readyz``.
 
@@ -296,6 +337,7 @@ class DaemonConfig:
     feed: FeedLimits = field(default_factory=FeedLimits)
     log: LogConfig = field(default_factory=LogConfig)
     record: RecordSettings = field(default_factory=RecordSettings)
+    group: GroupConfig = field(default_factory=GroupConfig)
     username: str | None = None
     password: str | None = field(default=None, repr=False)
 
@@ -308,6 +350,7 @@ _SECTIONS: dict[str, type] = {
     "publish": PublishConfig,
     "log": LogConfig,
     "record": RecordSettings,
+    "group": GroupConfig,
 }
 
 # Sections mapped by the pipeline's own functions (so replay and daemon agree) or by
@@ -323,6 +366,9 @@ FLAG_KEYS = {
     "store": ("store", "url"),
     "metrics": ("metrics", "listen"),
     "record": ("record", "path"),
+    "group": ("group", "name"),
+    "shards": ("group", "shards"),
+    "worker": ("group", "worker"),
 }
 
 
@@ -389,6 +435,7 @@ def load_config(
     problems.extend(found)
     feed, feed_problems = _build_feed(built["mqtt"], raw.get("feed", {}))
     problems.extend(feed_problems)
+    problems.extend(_group_problems(built["group"], built["store"], raw.get("group", {})))
     username, password, cred_problems = _credentials(built["mqtt"], env, raw.get("mqtt", {}))
     problems.extend(cred_problems)
     if problems:
@@ -558,6 +605,21 @@ def _build_feed(mqtt: MqttConfig, entries: Mapping[str, tuple[Any, str]]
         where = sorted({origin for _, origin in entries.values()}) or ["<defaults>"]
         return FeedLimits(), [f"{', '.join(where)}: [feed]/[mqtt] limits: {exc}"]
     return limits, []
+
+
+def _group_problems(group: GroupConfig, store: StoreConfig,
+                    entries: Mapping[str, tuple[Any, str]]) -> list[str]:
+    """A worker group needs a Redis store and a key prefix free of hash tags."""
+    if not group.name:
+        return []
+    origin = entries.get("name", (None, "<defaults>"))[1]
+    if store.url == "memory://":
+        return [f"{origin}: group.name {group.name!r} needs a Redis store (store.url), "
+                f"got memory://"]
+    if "{" in store.key_prefix or "}" in store.key_prefix:
+        return [f"{origin}: group.name {group.name!r} needs a store.key_prefix without "
+                f"{{ }} (keys carry the shard as their hash tag), got {store.key_prefix!r}"]
+    return []
 
 
 def _credentials(

@@ -47,12 +47,21 @@ def register(subparsers: Any) -> None:
     parser.add_argument("--record", metavar="PATH",
                         help="also write every received message to this replay log "
                              "(.gz: compressed; rotation: [record] rotate_mb / rotate_s)")
+    parser.add_argument("--group", metavar="NAME",
+                        help="join this worker group (needs a Redis store): share the "
+                             "fleet with the group's other workers by shard leases")
+    parser.add_argument("--shards", metavar="N", type=int,
+                        help="number of shards of the group (default 64; the same in "
+                             "every worker)")
+    parser.add_argument("--worker", metavar="NAME",
+                        help="this worker's name in the group (default HOSTNAME-PID)")
     parser.set_defaults(func=_run)
 
 
 def _run(args: argparse.Namespace) -> int:
     overrides = {key: getattr(args, key) for key in
-                 ("network", "broker", "store", "metrics", "routes", "fences", "record")}
+                 ("network", "broker", "store", "metrics", "routes", "fences", "record",
+                  "group", "shards", "worker")}
     config = load_config(args.config, overrides=overrides)
     setup_logging(config.log.level)
     tap = config.record.tap()
@@ -102,5 +111,6 @@ async def _serve(daemon: Any) -> None:
         loop.add_signal_handler(sig, daemon.request_stop)
     cfg = daemon.config
     log.info("starting", extra=fields(config=cfg.source, broker=redact_url(cfg.mqtt.url),
-                                      store=redact_url(cfg.store.url), topic=cfg.mqtt.topic))
+                                      store=redact_url(cfg.store.url), topic=cfg.mqtt.topic,
+                                      group=cfg.group.name))
     await daemon.run()

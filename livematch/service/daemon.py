@@ -11,7 +11,13 @@ One :class:`Daemon` runs these named tasks under one :class:`asyncio.TaskGroup`:
 - ``checkpoint``: write vehicles' state every K fixes or T seconds, the latest
   assignments, evict idle vehicles, and give the pipeline the clock for ``stale`` alerts
   of silent vehicles (only once connected for ``stale_s``: see :meth:`Daemon._may_tick`);
-- ``store-watch``: ping the store for ``/readyz``.
+- ``store-watch``: ping the store for ``/readyz``;
+- ``shards`` (only in a worker group, ``[group] name``): announce this worker, renew its
+  leases, take free shards up to its share (restore their vehicles from Redis, then
+  replay the fixes kept for them) and hand excess shards over (fenced checkpoint, then
+  release). Fixes of shards held elsewhere are acknowledged and kept for
+  ``group.buffer_s`` seconds, so a takeover after a crash loses none of them; see
+  :mod:`livematch.service.shards`.
 
 Bad input never stops the daemon: the pipeline turns it into a reject record that goes
 to the dead-letter topic; even an unexpected error while handling one message becomes
@@ -31,20 +37,26 @@ import contextlib
 import json
 import logging
 import math
+import os
+import re
+import socket
 import time
 from collections import Counter, deque
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any, Protocol
 
 import aiomqtt
+import redis.asyncio as aioredis
 
-from livematch.config import DaemonConfig, parse_hostport, redact_url
+from livematch.config import DaemonConfig, MqttConfig, parse_hostport, redact_url
+from livematch.feed.decode import known_vehicle, vehicle_from_topic
 from livematch.pipeline import REJECT_PAYLOAD_CHARS, Output
 from livematch.service.http import HealthServer
 from livematch.service.logs import fields
 from livematch.service.metrics import Metrics
 from livematch.service.mqtt import ack, backoff_delays, make_client
+from livematch.service.shards import LeaseManager, preference, shard_of, target_share
 from livematch.service.store import StateStore, StoreError, open_store
 
 log = logging.getLogger("livematch.daemon")
@@ -59,6 +71,8 @@ _PUBLISH_WINDOW = 32
 _FULL_LOG_EVERY_S = 10.0
 # How far ahead of the wall clock a fix time may push the eviction clock (seconds).
 _CLOCK_AHEAD_S = 300.0
+# Longest wait for the outputs of a checkpoint's fixes to be acknowledged (seconds).
+_ACK_WAIT_S = 1.0
 
 
 class OutputLike(Protocol):
@@ -100,6 +114,9 @@ class PipelineLike(Protocol):
     def evict_idle(self, now_fix_time: float, ttl_s: float, *,
                    into: list[Any] | None = None) -> list[str]:
         """Flush and forget vehicles idle for ``ttl_s`` s of fix time (outputs ``into``)."""
+
+    def drop(self, vehicle: str) -> None:
+        """Forget a vehicle without flushing (another worker holds its shard now)."""
 
 
 def encode_record(record: Mapping[str, Any]) -> bytes:
@@ -172,6 +189,18 @@ class Daemon:
         self._last_published: dict[str, tuple[Any, float]] = {}
         self._seen_counters: Counter[str] = Counter()
         self._newest_fix_t: float | None = None
+        # Worker group (None: a standalone daemon, as without [group]).
+        group = config.group
+        self.worker = group.worker or _default_worker()
+        self.leases: LeaseManager | None = None
+        self._mqtt: MqttConfig = config.mqtt
+        if group.name:
+            self._mqtt = replace(config.mqtt, client_id=f"{config.mqtt.client_id}-{self.worker}")
+        self._active: set[int] = set()  # shards whose vehicles this worker matches
+        self._buffers: dict[int, deque[tuple[float, str, bytes]]] = {}
+        self._enqueued = 0  # outputs ever queued
+        self._acked = 0  # outputs ever acknowledged by the broker (queue order)
+        self._shard_cache: dict[str, int] = {}
 
     # -- control -------------------------------------------------------------------
 
@@ -209,6 +238,8 @@ class Daemon:
                     tg.create_task(self._connection_loop(), name="mqtt-connection")
                     tg.create_task(self._checkpoint_loop(), name="checkpoint")
                     tg.create_task(self._store_watch_loop(), name="store-watch")
+                    if self.leases is not None:
+                        tg.create_task(self._shard_loop(), name="shards")
             finally:
                 await self._final_checkpoint()
                 with contextlib.suppress(Exception):
@@ -231,7 +262,11 @@ class Daemon:
         while not self._stopping.is_set():
             try:
                 await self.store.connect()
-                blobs = await self.store.load_all()
+                if self.config.group.name:
+                    await self._join_group()
+                    blobs = {}  # vehicles are restored shard by shard as leases are taken
+                else:
+                    blobs = await self.store.load_all()
                 break
             except StoreError as exc:
                 self.metrics.store_errors.inc()
@@ -249,6 +284,8 @@ class Daemon:
                 self.metrics.store_errors.inc()
                 log.warning("checkpoint not restored", extra=fields(vehicle=vehicle, error=exc))
         self.metrics.vehicles.set(len(self.pipeline.vehicles()))
+        if self.leases is not None:
+            return True  # ready once the first lease round is done
         self.restored = True
         log.info("state restored", extra=fields(store=redact_url(self.config.store.url),
                                                  vehicles=restored))
@@ -287,6 +324,9 @@ class Daemon:
 
     async def _flush_state(self, *, everything: bool) -> None:
         """Write due checkpoints (all with ``everything``) and changed latest records."""
+        if self.leases is not None:
+            await self._flush_shards(everything=everything)
+            return
         now = time.monotonic()
         cfg = self.config.store
         live = set(self.pipeline.vehicles())
@@ -332,12 +372,15 @@ class Daemon:
                 self._last_published.pop(v, None)
             self._pending_deletes.update(gone)
             log.info("evicted idle vehicles", extra=fields(count=len(gone)))
-        if self._pending_deletes:  # retried until the store takes it
+        if self._pending_deletes and self.leases is None:  # retried until the store takes it
             await self.store.delete(sorted(self._pending_deletes))
             self._pending_deletes.clear()
         self.metrics.vehicles.set(len(self.pipeline.vehicles()))
 
     async def _final_checkpoint(self) -> None:
+        if self.leases is not None:
+            await self._leave_group()
+            return
         if not self.restored:
             return  # never restored: writing now would overwrite state we did not load
         try:
@@ -347,6 +390,299 @@ class Daemon:
         except StoreError as exc:
             self.metrics.store_errors.inc()
             log.error("final checkpoint failed", extra=fields(error=exc))
+
+    # -- worker group --------------------------------------------------------------
+
+    async def _join_group(self) -> None:
+        """Create the lease manager (own Redis connection) and check the shard count."""
+        group = self.config.group
+        if self.leases is None:
+            client = aioredis.Redis.from_url(self.config.store.url, socket_timeout=2.0,
+                                             socket_connect_timeout=2.0)
+            self.leases = LeaseManager(client, url=self.config.store.url,
+                                       prefix=self.config.store.key_prefix, group=group.name,
+                                       worker=self.worker, n_shards=group.shards,
+                                       lease_s=group.lease_s)
+        await self.leases.join()
+        log.info("joined worker group", extra=fields(group=group.name, worker=self.worker,
+                                                     shards=group.shards,
+                                                     lease_s=group.lease_s))
+
+    def _shard(self, key: str) -> int:
+        """The shard of a vehicle id (or of a topic, for messages naming no vehicle)."""
+        shard = self._shard_cache.get(key)
+        if shard is None:
+            if len(self._shard_cache) >= 1_000_000:  # bound the cache against id floods
+                self._shard_cache.clear()
+            shard = self._shard_cache[key] = shard_of(key, self.config.group.shards)
+        return shard
+
+    def _message_shard(self, topic: str, payload: bytes) -> int | None:
+        """The shard a message belongs to; None for control messages.
+
+        Every worker applies control messages; only the holder of the vehicle's shard
+        publishes what follows from them.
+        """
+        control = self.config.mqtt.control_topic
+        if control and vehicle_from_topic(topic, control) is not None:
+            return None
+        vehicle = known_vehicle(topic, payload, self.config.feed)
+        return self._shard(vehicle if vehicle is not None else topic)
+
+    def _keep(self, shard: int, at: float, topic: str, payload: bytes) -> None:
+        """Keep a fix of a shard held elsewhere for ``buffer_s`` (at most ``buffer_max``)."""
+        group = self.config.group
+        buf = self._buffers.setdefault(shard, deque())
+        horizon = at - group.buffer_s
+        while buf and buf[0][0] < horizon:
+            buf.popleft()
+        if group.buffer_max == 0:
+            self.metrics.buffer_dropped.inc()
+            return
+        if len(buf) >= group.buffer_max:
+            buf.popleft()
+            self.metrics.buffer_dropped.inc()
+        buf.append((at, topic, payload))
+        self.metrics.buffered.inc()
+
+    def _prune_buffers(self, now: float) -> None:
+        horizon = now - self.config.group.buffer_s
+        depth = 0
+        for buf in self._buffers.values():
+            while buf and buf[0][0] < horizon:
+                buf.popleft()
+            depth += len(buf)
+        self.metrics.buffer_depth.set(depth)
+
+    def _check_deadlines(self) -> None:
+        """Stop matching shards whose lease may have run out (checked per message)."""
+        assert self.leases is not None
+        if time.monotonic() >= self.leases.next_deadline():
+            for shard in self.leases.expired():
+                self._lose(shard, "expired")
+
+    async def _shard_loop(self) -> None:
+        """Announce, renew, rebalance every ``lease_s / 3`` seconds."""
+        assert self.leases is not None
+        period = self.config.group.lease_s / 3
+        while not self._stopping.is_set():
+            try:
+                await self._shard_round()
+                if not self.restored:
+                    self.restored = True
+                    log.info("state restored", extra=fields(
+                        store=redact_url(self.config.store.url),
+                        vehicles=len(self.pipeline.vehicles()),
+                        shards=len(self._active)))
+            except StoreError as exc:
+                self.metrics.lease_failures.inc()
+                log.warning("lease round failed; will retry", extra=fields(error=exc))
+            except Exception:  # a bug must not end the leases: log, count, go on
+                self.metrics.lease_failures.inc()
+                log.exception("lease round error; will retry")
+            self._check_deadlines()
+            self._prune_buffers(time.time())
+            self.metrics.shards_held.set(len(self._active))
+            self.metrics.vehicles.set(len(self.pipeline.vehicles()))
+            await self._sleep_unless_stopping(period)
+
+    async def _shard_round(self) -> None:
+        """One round: heartbeat, renew, then take free shards or hand excess ones over."""
+        leases = self.leases
+        assert leases is not None
+        members = await leases.heartbeat()
+        for shard in await leases.renew():
+            self._lose(shard, "taken")
+        self._check_deadlines()
+        target = target_share(leases.n_shards, len(members))
+        rank = {s: i for i, s in enumerate(preference(self.worker, leases.n_shards))}
+        held = sorted(leases.held, key=rank.__getitem__)
+        for shard in held[target:]:
+            if self._stopping.is_set():
+                return
+            await self._hand_over(shard)
+        if len(leases.held) >= target:
+            return
+        owners = await leases.owners()
+        for shard in sorted(rank, key=rank.__getitem__):
+            if len(leases.held) >= target or self._stopping.is_set():
+                break
+            if owners.get(shard) is None and shard not in leases.held:
+                fence = await leases.acquire(shard)
+                if fence is not None:
+                    await self._take(shard, fence)
+
+    async def _take(self, shard: int, fence: int) -> None:
+        """Restore a newly acquired shard's vehicles, replay the fixes kept, match it."""
+        leases = self.leases
+        assert leases is not None
+        try:
+            blobs = await leases.load(shard)
+        except StoreError:
+            with contextlib.suppress(StoreError):
+                await leases.release(shard)
+            raise
+        if leases.held.get(shard) != fence:  # lost while loading
+            return
+        # From here on synchronous: no message can slip between restore and replay.
+        restored = 0
+        for vehicle, blob in sorted(blobs.items()):
+            try:
+                self.pipeline.import_vehicle(vehicle, blob)
+                restored += 1
+            except Exception as exc:  # one bad checkpoint must not keep the others out
+                self.metrics.store_errors.inc()
+                log.warning("checkpoint not restored", extra=fields(vehicle=vehicle, error=exc))
+        self._active.add(shard)
+        kept = self._buffers.pop(shard, deque())
+        horizon = time.time() - self.config.group.buffer_s
+        replayed = 0
+        for at, topic, payload in kept:
+            if at >= horizon:
+                self._handle(topic, payload, at)
+                replayed += 1
+        self.metrics.takeovers.inc()
+        self.metrics.replayed.inc(replayed)
+        self.metrics.shards_held.set(len(self._active))
+        log.info("shard taken", extra=fields(shard=shard, fence=fence, vehicles=restored,
+                                             replayed=replayed))
+
+    def _shard_vehicles(self, shard: int) -> list[str]:
+        return [v for v in self.pipeline.vehicles() if self._shard(v) == shard]
+
+    def _forget_vehicle(self, vehicle: str) -> None:
+        self.pipeline.drop(vehicle)
+        self._fixes_since.pop(vehicle, None)
+        self._last_checkpoint.pop(vehicle, None)
+        self._latest.pop(vehicle, None)
+        self._latest_dirty.discard(vehicle)
+        self._last_published.pop(vehicle, None)
+        self._pending_deletes.discard(vehicle)
+
+    def _lose(self, shard: int, why: str) -> None:
+        """A shard is no longer ours: drop its vehicles without writing anything."""
+        assert self.leases is not None
+        self.leases.forget(shard)
+        if shard not in self._active:
+            return
+        self._active.discard(shard)
+        vehicles = self._shard_vehicles(shard)
+        for vehicle in vehicles:
+            self._forget_vehicle(vehicle)
+        for vehicle in [v for v in self._pending_deletes if self._shard(v) == shard]:
+            self._pending_deletes.discard(vehicle)
+        self.metrics.shards_lost.labels(why=why).inc()
+        self.metrics.shards_held.set(len(self._active))
+        log.warning("shard lost", extra=fields(shard=shard, why=why, vehicles=len(vehicles)))
+
+    async def _outputs_acked(self, upto: int, timeout: float) -> bool:
+        """Wait (at most ``timeout`` s) until the first ``upto`` outputs were acknowledged."""
+        deadline = time.monotonic() + timeout
+        while self._acked < upto:
+            left = deadline - time.monotonic()
+            if left <= 0 or (self._intake_closed and not self.broker_connected):
+                return False
+            self._outbox_changed.clear()
+            with contextlib.suppress(TimeoutError):
+                await asyncio.wait_for(self._outbox_changed.wait(), timeout=min(left, 0.1))
+        return True
+
+    async def _hand_over(self, shard: int) -> None:
+        """Give a shard to the group: stop matching it, checkpoint it (fenced), release."""
+        leases = self.leases
+        assert leases is not None
+        self._active.discard(shard)  # its fixes are kept from now on
+        await self._outputs_acked(self._enqueued, _ACK_WAIT_S)
+        fence = leases.held.get(shard)
+        vehicles = self._shard_vehicles(shard)
+        try:
+            if fence is not None:
+                await self._save_shard(shard, fence, vehicles, everything=True)
+            if shard in leases.held:
+                await leases.release(shard)
+        except StoreError:
+            if shard in leases.held:
+                self._active.add(shard)  # still ours: go on matching it
+            raise
+        for vehicle in vehicles:
+            self._forget_vehicle(vehicle)
+        self.metrics.shards_held.set(len(self._active))
+        log.info("shard handed over", extra=fields(shard=shard, vehicles=len(vehicles)))
+
+    async def _save_shard(self, shard: int, fence: int, due: list[str], *,
+                          everything: bool) -> bool:
+        """Checkpoint ``due`` vehicles of a shard, its dirty latest records and deletions.
+
+        Returns False when the write was fenced out (the shard is then lost).
+        """
+        assert self.leases is not None
+        now = time.monotonic()
+        snapshot = {v: self._fixes_since[v] for v in due}
+        blobs = {v: self.pipeline.export_vehicle(v) for v in due}
+        if blobs and not everything and not await self._outputs_acked(self._enqueued,
+                                                                       _ACK_WAIT_S):
+            return True  # outputs not yet out: a later round writes a newer checkpoint
+        dirty = sorted(v for v in self._latest_dirty if self._shard(v) == shard)
+        latest = {v: self._latest[v] for v in dirty if v in self._latest}
+        deleted = sorted(v for v in self._pending_deletes if self._shard(v) == shard)
+        if not (blobs or latest or deleted):
+            return True
+        ok = await self.leases.save(shard, fence=fence, blobs=blobs, latest=latest,
+                                    deleted=deleted, ttl_s=self.config.store.idle_ttl_s)
+        if not ok:
+            self.metrics.fenced.inc()
+            self._lose(shard, "fenced")
+            return False
+        for v, n in snapshot.items():
+            self._fixes_since[v] -= n
+            if self._fixes_since[v] <= 0:
+                del self._fixes_since[v]
+            self._last_checkpoint[v] = now
+        self._latest_dirty.difference_update(dirty)
+        self._pending_deletes.difference_update(deleted)
+        self.metrics.checkpoints.inc(len(blobs))
+        return True
+
+    async def _flush_shards(self, *, everything: bool) -> None:
+        """:meth:`_flush_state` for a worker group: per shard, fenced."""
+        leases = self.leases
+        assert leases is not None
+        now = time.monotonic()
+        cfg = self.config.store
+        due_by: dict[int, list[str]] = {}
+        for v in self.pipeline.vehicles():
+            n = self._fixes_since.get(v, 0)
+            if everything or (n > 0 and (n >= cfg.checkpoint_every_fixes
+                                         or now - self._last_checkpoint.get(v, 0.0)
+                                         >= cfg.checkpoint_every_s)):
+                due_by.setdefault(self._shard(v), []).append(v)
+        for v in [*self._latest_dirty, *self._pending_deletes]:
+            due_by.setdefault(self._shard(v), [])
+        for shard in sorted(due_by):
+            fence = leases.held.get(shard)
+            if fence is None or shard not in self._active:
+                continue
+            await self._save_shard(shard, fence, due_by[shard], everything=everything)
+
+    async def _leave_group(self) -> None:
+        """On shutdown: checkpoint every shard held (fenced), release it, leave."""
+        leases = self.leases
+        if leases is None:
+            return
+        try:
+            if self.restored:
+                await self._flush_shards(everything=True)
+            for shard in sorted(leases.held):
+                await leases.release(shard)
+            await leases.heartbeat(leave=True)
+            log.info("final checkpoint written; left the group",
+                     extra=fields(vehicles=len(self.pipeline.vehicles())))
+        except StoreError as exc:
+            self.metrics.store_errors.inc()
+            log.error("final checkpoint failed", extra=fields(error=exc))
+        finally:
+            with contextlib.suppress(Exception):
+                await leases.client.aclose()
 
     # -- MQTT ----------------------------------------------------------------------
 
@@ -384,7 +720,7 @@ class Daemon:
 
     async def _session(self, backoff: Any) -> None:
         """One connection: subscribe, then receive and publish until stopped or broken."""
-        cfg = self.config.mqtt
+        cfg = self._mqtt
         client = make_client(cfg, username=self.config.username, password=self.config.password)
         cancelled = False
         try:
@@ -477,8 +813,20 @@ class Daemon:
         if not isinstance(payload, bytes | bytearray):
             payload = str(payload).encode()
         topic = message.topic.value
-        started = time.perf_counter()
         at = time.time()
+        if self.leases is not None:
+            self._check_deadlines()
+            shard = self._message_shard(topic, bytes(payload))
+            if shard is not None and shard not in self._active:
+                self._keep(shard, at, topic, bytes(payload))  # another worker's fix
+                ack(client, message)
+                return
+        self._handle(topic, bytes(payload), at)
+        ack(client, message)
+
+    def _handle(self, topic: str, payload: bytes, at: float) -> None:
+        """Match one message and queue its outputs (no acknowledgement)."""
+        started = time.perf_counter()
         try:
             outputs = self.pipeline.handle(topic, bytes(payload), at)
             if self._may_tick(at):  # as replay does after every message
@@ -489,8 +837,8 @@ class Daemon:
         self.metrics.processing.observe(time.perf_counter() - started)
         self._sync_counters()
         for out in outputs:
-            self._route(out)
-        ack(client, message)
+            if self.leases is None or self._shard(out.vehicle or topic) in self._active:
+                self._route(out)
 
     def _may_tick(self, now: float) -> bool:
         """Whether ``stale`` may be judged at ``now``: only after listening for stale_s.
@@ -572,6 +920,7 @@ class Daemon:
     def _enqueue(self, item: _Pending) -> None:
         """Queue an output (the queue may pass queue_max by one message's outputs)."""
         self._outbox.append(item)
+        self._enqueued += 1
         self.metrics.queue_depth.set(len(self._outbox))
         self._outbox_changed.set()
 
@@ -606,6 +955,7 @@ class Daemon:
                 await inflight[0]  # raises (ending the session) when the publish failed
                 inflight.popleft()
                 item = self._outbox.popleft()
+                self._acked += 1
                 self.metrics.queue_depth.set(len(self._outbox))
                 self._outbox_changed.set()
                 self.metrics.published.labels(kind=item.kind).inc()
@@ -626,6 +976,12 @@ class Daemon:
         self.metrics.vehicles.set(len(self.pipeline.vehicles()))
         self.metrics.queue_depth.set(len(self._outbox))
         return self.metrics.render()
+
+
+def _default_worker() -> str:
+    """``HOSTNAME-PID``, reduced to the characters a worker name may hold."""
+    name = re.sub(r"[^A-Za-z0-9._\-]", "-", f"{socket.gethostname()}-{os.getpid()}")
+    return name[-64:]
 
 
 def _consume_outcome(future: asyncio.Future[Any]) -> None:

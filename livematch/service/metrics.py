@@ -19,6 +19,15 @@ livematch_store_errors_total                          failed state-store operati
 livematch_broker_reconnects_total                     lost broker connections
 livematch_publish_queue_depth                         outputs waiting for the broker
 livematch_checkpoints_total                           vehicle checkpoints written
+livematch_shards_held                                 shards this worker holds (worker group)
+livematch_lease_renew_failures_total                  lease rounds that could not reach Redis
+livematch_shard_takeovers_total                       shards acquired (restored and replayed)
+livematch_shards_lost_total{why}                      shards lost (expired, taken, fenced)
+livematch_checkpoints_fenced_total                    checkpoint writes refused by fencing
+livematch_shard_buffered_total                        fixes kept for shards held elsewhere
+livematch_shard_buffer_dropped_total                  kept fixes dropped (buffer full)
+livematch_shard_replayed_total                        kept fixes replayed after a takeover
+livematch_shard_buffer_messages                       fixes currently kept for other shards
 ====================================================  =======================================
 
 Example:
@@ -84,6 +93,30 @@ class Metrics:
                                  "Outputs waiting to be published.", registry=r)
         self.checkpoints = Counter("livematch_checkpoints",
                                    "Vehicle checkpoints written to the state store.", registry=r)
+
+        self.shards_held = Gauge("livematch_shards_held",
+                                 "Shards this worker holds by lease (worker group).", registry=r)
+        self.lease_failures = Counter("livematch_lease_renew_failures",
+                                      "Lease rounds (renew, acquire, release) that failed.",
+                                      registry=r)
+        self.takeovers = Counter("livematch_shard_takeovers",
+                                 "Shards acquired: vehicles restored, kept fixes replayed.",
+                                 registry=r)
+        self.shards_lost = Counter("livematch_shards_lost",
+                                   "Shards lost without a hand-over, by why.", ["why"],
+                                   registry=r)
+        self.fenced = Counter("livematch_checkpoints_fenced",
+                              "Checkpoint writes refused: another worker holds the shard.",
+                              registry=r)
+        self.buffered = Counter("livematch_shard_buffered",
+                                "Fixes kept for shards held by other workers.", registry=r)
+        self.buffer_dropped = Counter("livematch_shard_buffer_dropped",
+                                      "Kept fixes dropped because a shard's buffer was full.",
+                                      registry=r)
+        self.replayed = Counter("livematch_shard_replayed",
+                                "Kept fixes replayed after taking a shard over.", registry=r)
+        self.buffer_depth = Gauge("livematch_shard_buffer_messages",
+                                  "Fixes currently kept for shards held elsewhere.", registry=r)
 
     def render(self) -> bytes:
         """The registry in the Prometheus text exposition format."""

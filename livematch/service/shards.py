@@ -1,0 +1,362 @@
+"""Shards, leases and fenced checkpoints: how several ``livematch run`` workers share a fleet.
+
+Vehicles map to ``n`` shards by a stable hash of their id (:func:`shard_of`), the same
+in every process and every release. The workers of one group hold shards by leases in
+Redis; a worker matches only the vehicles of the shards it holds.
+
+Redis keys (all of one shard share the hash tag ``{s:NN}``, so they live on one Redis
+Cluster slot and one Lua script may touch them together)::
+
+    {prefix}{s:NN}:lease          string "worker-token:fence", expires after lease_s
+    {prefix}{s:NN}:fence          integer, INCR on every acquisition (never expires)
+    {prefix}{s:NN}:vehicle:ID     the vehicle's checkpoint blob, expires after idle_ttl_s
+    {prefix}{s:NN}:vehicles       set of the shard's vehicle ids (index for restoring)
+    {prefix}{s:NN}:latest         hash: vehicle -> its latest assignment record (JSON)
+    {prefix}group:NAME:members    sorted set: worker -> expiry time (ms, Redis clock)
+    {prefix}group:NAME:shards     the group's shard count (all workers must agree)
+
+Safety rests on two rules:
+
+- a lease is taken with ``SET NX`` semantics and extended only by the holder of its
+  random token (compare-and-extend in Lua); the worker stops using a shard at a local
+  deadline that is never later than the lease's expiry in Redis;
+- every acquisition increments the shard's fencing number, and every checkpoint write
+  goes through a Lua script that refuses it unless the writer's fencing number is still
+  the current one. A worker that stalled (GC pause, SIGSTOP, a slow disk) past its
+  lease and woke up after another took the shard therefore cannot overwrite the newer
+  state: its write is refused and it drops the shard.
+
+Example:
+    >>> shard_of("bus-17", 64), shard_of("bus-17", 64) == shard_of("bus-17", 64)
+    (11, True)
+    >>> shard_of("anything", 1)   # degenerate: one shard holds everything
+    0
+    >>> shard_tag(7, 64), shard_tag(7, 1000)
+    ('s:07', 's:007')
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+import secrets
+import time
+from collections.abc import Iterable, Mapping
+from typing import Any
+
+import redis.asyncio as aioredis
+from redis.exceptions import RedisError
+
+from livematch.config import redact_url
+from livematch.service.store import StoreError
+
+
+def shard_of(vehicle: str, n_shards: int) -> int:
+    """The shard (0..n_shards-1) of a vehicle id: BLAKE2b-64 of its UTF-8 bytes mod n.
+
+    Stable across processes and Python versions (unlike ``hash()``), so every worker
+    and every restart agrees.
+    """
+    digest = hashlib.blake2b(vehicle.encode("utf-8"), digest_size=8).digest()
+    return int.from_bytes(digest, "big") % n_shards
+
+
+def shard_tag(shard: int, n_shards: int) -> str:
+    """The hash tag body of a shard, zero-padded to the width of the largest shard."""
+    return f"s:{shard:0{len(str(max(0, n_shards - 1)))}d}"
+
+
+def preference(worker: str, n_shards: int) -> list[int]:
+    """The shards in the order this worker prefers them (rendezvous hashing).
+
+    Different workers prefer different shards, so few of them race for the same free
+    shard, and a worker's preferred set changes little when others join or leave.
+
+    Example:
+        >>> sorted(preference("w1", 4)) == [0, 1, 2, 3]
+        True
+        >>> preference("w1", 1)
+        [0]
+    """
+    def score(shard: int) -> bytes:
+        return hashlib.blake2b(f"{worker}\0{shard}".encode(), digest_size=8).digest()
+    return sorted(range(n_shards), key=score)
+
+
+def target_share(n_shards: int, n_workers: int) -> int:
+    """How many shards one worker aims at: ceil(shards / live workers).
+
+    Example:
+        >>> target_share(64, 3), target_share(64, 1), target_share(4, 0)
+        (22, 64, 4)
+    """
+    return math.ceil(n_shards / max(1, n_workers))
+
+
+# KEYS: lease, fence. ARGV: token, ttl_ms. Returns the new fencing number, or nil when
+# the lease is held (by anyone).
+_ACQUIRE = """
+if redis.call('EXISTS', KEYS[1]) == 1 then return false end
+local f = redis.call('INCR', KEYS[2])
+redis.call('SET', KEYS[1], ARGV[1] .. ':' .. f, 'PX', ARGV[2])
+return f
+"""
+
+# KEYS: lease. ARGV: value, ttl_ms. Compare-and-extend: 1 when extended, 0 when lost.
+_RENEW = """
+if redis.call('GET', KEYS[1]) == ARGV[1] then
+  redis.call('PEXPIRE', KEYS[1], ARGV[2])
+  return 1
+end
+return 0
+"""
+
+# KEYS: lease. ARGV: value. Compare-and-delete.
+_RELEASE = """
+if redis.call('GET', KEYS[1]) == ARGV[1] then return redis.call('DEL', KEYS[1]) end
+return 0
+"""
+
+# KEYS: fence, index, latest, then the vehicle keys written, then those deleted.
+# ARGV: fence, ttl_ms, n_blobs, n_latest, n_deleted, then (vehicle, blob) pairs,
+# (vehicle, record) pairs and deleted vehicles. 1 when written, 0 when fenced out.
+_SAVE = """
+if redis.call('GET', KEYS[1]) ~= ARGV[1] then return 0 end
+local nb, nl, nd = tonumber(ARGV[3]), tonumber(ARGV[4]), tonumber(ARGV[5])
+local a = 6
+for i = 1, nb do
+  redis.call('SET', KEYS[3 + i], ARGV[a + 1], 'PX', ARGV[2])
+  redis.call('SADD', KEYS[2], ARGV[a])
+  a = a + 2
+end
+for i = 1, nl do
+  redis.call('HSET', KEYS[3], ARGV[a], ARGV[a + 1])
+  a = a + 2
+end
+for i = 1, nd do
+  redis.call('DEL', KEYS[3 + nb + i])
+  redis.call('SREM', KEYS[2], ARGV[a])
+  redis.call('HDEL', KEYS[3], ARGV[a])
+  a = a + 1
+end
+return 1
+"""
+
+# KEYS: members. ARGV: worker, ttl_ms ("0": leave). Expired members are removed; the
+# live ones are returned, sorted. Uses the Redis clock so workers' clocks do not matter.
+_MEMBERS = """
+local t = redis.call('TIME')
+local now = tonumber(t[1]) * 1000 + math.floor(tonumber(t[2]) / 1000)
+redis.call('ZREMRANGEBYSCORE', KEYS[1], '-inf', now)
+if ARGV[2] == '0' then
+  redis.call('ZREM', KEYS[1], ARGV[1])
+else
+  redis.call('ZADD', KEYS[1], now + tonumber(ARGV[2]), ARGV[1])
+end
+return redis.call('ZRANGE', KEYS[1], 0, -1)
+"""
+
+
+class LeaseManager:
+    """One worker's leases, membership and fenced checkpoint writes in Redis.
+
+    Args:
+        client: a ``redis.asyncio`` client (the caller closes it).
+        url: the store URL, for messages (its password is redacted).
+        prefix: the key prefix (``store.key_prefix``, without ``{ }``).
+        group: the worker group's name.
+        worker: this worker's name (unique within the group).
+        n_shards: the number of shards (the same in every worker of the group).
+        lease_s: lease duration, seconds.
+
+    ``held`` maps each shard held to its fencing number. Every method that talks to
+    Redis raises :class:`StoreError` when Redis cannot be reached.
+    """
+
+    def __init__(self, client: aioredis.Redis, *, url: str, prefix: str, group: str,
+                 worker: str, n_shards: int, lease_s: float) -> None:
+        self.client = client
+        self.url = url
+        self.prefix = prefix
+        self.group = group
+        self.worker = worker
+        self.n_shards = n_shards
+        self.lease_s = lease_s
+        self.token = f"{worker}-{secrets.token_hex(8)}"
+        self.held: dict[int, int] = {}
+        self._deadline: dict[int, float] = {}
+        self._members_key = f"{prefix}group:{group}:members"
+        self._acquire = client.register_script(_ACQUIRE)
+        self._renew = client.register_script(_RENEW)
+        self._release = client.register_script(_RELEASE)
+        self._save = client.register_script(_SAVE)
+        self._members = client.register_script(_MEMBERS)
+
+    # -- keys ------------------------------------------------------------------------
+
+    def key(self, shard: int, name: str) -> str:
+        """``{prefix}{s:NN}:name``: a key of one shard."""
+        return f"{self.prefix}{{{shard_tag(shard, self.n_shards)}}}:{name}"
+
+    def vehicle_key(self, shard: int, vehicle: str) -> str:
+        """``{prefix}{s:NN}:vehicle:ID``: a vehicle's checkpoint."""
+        return self.key(shard, f"vehicle:{vehicle}")
+
+    @property
+    def _ttl_ms(self) -> int:
+        return max(1, math.ceil(self.lease_s * 1000))
+
+    def _fail(self, action: str, exc: Exception) -> StoreError:
+        return StoreError(f"redis {redact_url(self.url)}: {action} failed: {exc}")
+
+    # -- membership ------------------------------------------------------------------
+
+    async def join(self) -> None:
+        """Check that the group's shard count is ours (the first worker records it).
+
+        Raises:
+            StoreError: Redis is unreachable, or the group runs with another count.
+        """
+        key = f"{self.prefix}group:{self.group}:shards"
+        try:
+            await self.client.set(key, self.n_shards, nx=True)
+            found = await self.client.get(key)
+        except (RedisError, OSError) as exc:
+            raise self._fail("joining the group", exc) from exc
+        if found is not None and int(found) != self.n_shards:
+            raise StoreError(f"group {self.group!r} under prefix {self.prefix!r} runs with "
+                             f"{int(found)} shards, this worker has group.shards = "
+                             f"{self.n_shards}")
+
+    async def heartbeat(self, *, leave: bool = False) -> list[str]:
+        """Announce this worker for 3 lease periods (or leave); the live members, sorted."""
+        ttl = "0" if leave else str(3 * self._ttl_ms)
+        try:
+            names = await self._members(keys=[self._members_key], args=[self.worker, ttl])
+        except (RedisError, OSError) as exc:
+            raise self._fail("announcing the worker", exc) from exc
+        return sorted(n.decode() if isinstance(n, bytes) else str(n) for n in names)
+
+    # -- leases ----------------------------------------------------------------------
+
+    async def owners(self) -> dict[int, str | None]:
+        """Every shard's lease value (``worker-token:fence``), None when free."""
+        try:
+            async with self.client.pipeline(transaction=False) as pipe:
+                for shard in range(self.n_shards):
+                    pipe.get(self.key(shard, "lease"))
+                values = await pipe.execute()
+        except (RedisError, OSError) as exc:
+            raise self._fail("reading the leases", exc) from exc
+        return {s: (v.decode() if isinstance(v, bytes) else v) for s, v in enumerate(values)}
+
+    async def acquire(self, shard: int) -> int | None:
+        """Take a free shard: its new fencing number, or None when someone holds it."""
+        started = time.monotonic()
+        try:
+            fence = await self._acquire(keys=[self.key(shard, "lease"), self.key(shard, "fence")],
+                                        args=[self.token, self._ttl_ms])
+        except (RedisError, OSError) as exc:
+            raise self._fail(f"acquiring shard {shard}", exc) from exc
+        if fence is None:
+            return None
+        self.held[shard] = int(fence)
+        self._deadline[shard] = started + self.lease_s
+        return int(fence)
+
+    async def renew(self) -> list[int]:
+        """Extend every lease held; the shards whose lease was lost (and are forgotten)."""
+        shards = sorted(self.held)
+        if not shards:
+            return []
+        started = time.monotonic()
+        try:
+            async with self.client.pipeline(transaction=False) as pipe:
+                for shard in shards:
+                    await self._renew(keys=[self.key(shard, "lease")],
+                                      args=[self._value(shard), self._ttl_ms], client=pipe)
+                results = await pipe.execute()
+        except (RedisError, OSError) as exc:
+            raise self._fail(f"renewing {len(shards)} lease(s)", exc) from exc
+        lost = []
+        for shard, ok in zip(shards, results, strict=True):
+            if ok == 1:
+                self._deadline[shard] = started + self.lease_s
+            else:
+                lost.append(shard)
+                self.forget(shard)
+        return lost
+
+    def expired(self, now: float | None = None) -> list[int]:
+        """Shards whose lease may have run out (no renewal confirmed in time); forgotten.
+
+        The deadline is counted from before the renewal was sent, so it never falls
+        after the lease's expiry in Redis: past it, another worker may hold the shard.
+        """
+        now = time.monotonic() if now is None else now
+        gone = sorted(s for s, d in self._deadline.items() if d <= now)
+        for shard in gone:
+            self.forget(shard)
+        return gone
+
+    def next_deadline(self) -> float:
+        """The earliest local lease deadline (monotonic seconds), inf when none is held."""
+        return min(self._deadline.values(), default=math.inf)
+
+    def forget(self, shard: int) -> None:
+        """Stop considering a shard held (without telling Redis)."""
+        self.held.pop(shard, None)
+        self._deadline.pop(shard, None)
+
+    async def release(self, shard: int) -> None:
+        """Give a shard up now (compare-and-delete), so another worker can take it."""
+        value = self._value(shard)
+        self.forget(shard)
+        try:
+            await self._release(keys=[self.key(shard, "lease")], args=[value])
+        except (RedisError, OSError) as exc:
+            raise self._fail(f"releasing shard {shard}", exc) from exc
+
+    def _value(self, shard: int) -> str:
+        return f"{self.token}:{self.held[shard]}"
+
+    # -- fenced state ----------------------------------------------------------------
+
+    async def save(self, shard: int, *, fence: int, blobs: Mapping[str, bytes],
+                   latest: Mapping[str, bytes], deleted: Iterable[str], ttl_s: float) -> bool:
+        """Write a shard's checkpoints, latest records and deletions, fenced.
+
+        Returns False (writing nothing) when ``fence`` is no longer the shard's current
+        fencing number: another worker took the shard since.
+        """
+        gone = list(deleted)
+        keys = [self.key(shard, "fence"), self.key(shard, "vehicles"), self.key(shard, "latest")]
+        keys += [self.vehicle_key(shard, v) for v in blobs]
+        keys += [self.vehicle_key(shard, v) for v in gone]
+        args: list[Any] = [fence, max(1, math.ceil(ttl_s * 1000)), len(blobs), len(latest),
+                           len(gone)]
+        for vehicle, blob in blobs.items():
+            args += [vehicle, blob]
+        for vehicle, record in latest.items():
+            args += [vehicle, record]
+        args += gone
+        try:
+            return bool(await self._save(keys=keys, args=args) == 1)
+        except (RedisError, OSError) as exc:
+            raise self._fail(f"saving shard {shard}", exc) from exc
+
+    async def load(self, shard: int) -> dict[str, bytes]:
+        """Every checkpoint of a shard, by vehicle (expired ones are skipped)."""
+        try:
+            members = await self.client.smembers(self.key(shard, "vehicles"))
+            names = sorted(m.decode() if isinstance(m, bytes) else str(m) for m in members)
+            out: dict[str, bytes] = {}
+            for start in range(0, len(names), 500):
+                batch = names[start:start + 500]
+                blobs = await self.client.mget([self.vehicle_key(shard, v) for v in batch])
+                for vehicle, blob in zip(batch, blobs, strict=True):
+                    if isinstance(blob, bytes):
+                        out[vehicle] = blob
+        except (RedisError, OSError) as exc:
+            raise self._fail(f"loading shard {shard}", exc) from exc
+        return out

@@ -1,0 +1,251 @@
+"""Shards, leases and fencing against a real redis-server; two in-process workers."""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import hashlib
+import re
+from collections.abc import AsyncIterator, Iterator
+from pathlib import Path
+
+import pytest
+import redis.asyncio as aioredis
+from scipy.stats import chisquare
+from services import Collector, Mosquitto, RedisServer, drive, publisher, town, write_config
+
+from livematch.config import load_config
+from livematch.errors import BadConfigError
+from livematch.pipeline import Pipeline
+from livematch.service.daemon import Daemon
+from livematch.service.shards import LeaseManager, preference, shard_of, target_share
+from livematch.service.store import StoreError
+
+pytest_plugins = ("fixtures_services",)
+
+
+# -- the hash --------------------------------------------------------------------------
+
+
+def test_shard_of_matches_blake2b_reference() -> None:
+    """The shard is BLAKE2b-64 (RFC 7693, via hashlib) of the id, big-endian, mod n."""
+    # Reference computed independently with hashlib's blake2b, as RFC 7693 defines it.
+    for vehicle in ("bus-17", "", "ümlaut-van", "x" * 64):
+        digest = hashlib.blake2b(vehicle.encode(), digest_size=8).hexdigest()
+        assert shard_of(vehicle, 64) == int(digest, 16) % 64
+    assert shard_of("bus-17", 64) == 11  # pinned: the mapping must never change
+
+
+def test_shard_of_spreads_ids_evenly() -> None:
+    """10,000 ids over 64 shards pass a chi-square test of uniformity (scipy)."""
+    counts = [0] * 64
+    for i in range(10_000):
+        counts[shard_of(f"vehicle-{i}", 64)] += 1
+    # common practice: reject uniformity only below p = 0.001
+    assert chisquare(counts).pvalue > 0.001
+
+
+def test_target_share_covers_every_shard() -> None:
+    """ceil(n / workers) per worker: the shares always add up to at least n."""
+    for n in (1, 7, 64, 1000):
+        for workers in range(1, 12):
+            assert target_share(n, workers) * workers >= n
+            assert (target_share(n, workers) - 1) * workers < n  # and no larger
+    assert sorted(preference("w", 8)) == list(range(8))
+    assert preference("a", 64) != preference("b", 64)
+
+
+# -- leases ----------------------------------------------------------------------------
+
+
+@pytest.fixture
+def redis_url(redis_server: RedisServer) -> str:
+    return redis_server.url
+
+
+@contextlib.asynccontextmanager
+async def managers(url: str, prefix: str, *names: str, lease_s: float = 1.0,
+                   n_shards: int = 4) -> AsyncIterator[list[LeaseManager]]:
+    client = aioredis.Redis.from_url(url)
+    try:
+        yield [LeaseManager(client, url=url, prefix=f"{prefix}:", group="g", worker=n,
+                            n_shards=n_shards, lease_s=lease_s) for n in names]
+    finally:
+        await client.aclose()
+
+
+async def test_lease_exclusive_and_renewed(redis_url: str, prefix: str) -> None:
+    """A held shard cannot be acquired by another; renewing extends its expiry."""
+    async with managers(redis_url, prefix, "a", "b", lease_s=1.0) as (a, b):
+        assert await a.acquire(2) == 1
+        assert await b.acquire(2) is None
+        for _ in range(4):  # 1.6 s in all: past the 1 s lease, kept alive by renewals
+            await asyncio.sleep(0.4)
+            assert await a.renew() == []
+        assert await b.acquire(2) is None
+        ttl = await a.client.pttl(a.key(2, "lease"))
+        assert 500 < ttl <= 1000
+        owners = await b.owners()
+        assert owners[2] == f"{a.token}:1"
+        assert owners[0] is None
+
+
+async def test_lease_expires_and_fence_refuses_stale_writer(redis_url: str,
+                                                            prefix: str) -> None:
+    """A lease not renewed expires; the next holder gets fence 2 and the stalled
+    holder's checkpoint write is refused, leaving the newer state in place."""
+    async with managers(redis_url, prefix, "a", "b", lease_s=1.0) as (a, b):
+        assert await a.acquire(1) == 1
+        assert await a.save(1, fence=1, blobs={"v": b"old"}, latest={"v": b"{}"},
+                            deleted=[], ttl_s=60)
+        await asyncio.sleep(1.1)  # a stalls past its lease
+        assert a.expired() == [1]
+        assert await b.acquire(1) == 2
+        assert await b.load(1) == {"v": b"old"}
+        assert await b.save(1, fence=2, blobs={"v": b"new"}, latest={}, deleted=[], ttl_s=60)
+        # a wakes up and tries to write what it had: refused
+        assert not await a.save(1, fence=1, blobs={"v": b"stale"}, latest={"v": b"x"},
+                                deleted=["v"], ttl_s=60)
+        assert await b.load(1) == {"v": b"new"}
+        assert await b.client.hget(b.key(1, "latest"), "v") == b"{}"
+        # a's renewal does not revive its lease either
+        a.held[1] = 1
+        assert await a.renew() == [1]
+        assert await b.renew() == []
+
+
+async def test_lease_release_and_deletes(redis_url: str, prefix: str) -> None:
+    """A released shard is free at once; fenced deletes remove blob, index and latest."""
+    async with managers(redis_url, prefix, "a", "b") as (a, b):
+        fence = await a.acquire(3)
+        assert fence == 1
+        assert await a.save(3, fence=1, blobs={"v": b"1", "w": b"2"},
+                            latest={"v": b"{}", "w": b"{}"}, deleted=[], ttl_s=60)
+        assert await a.save(3, fence=1, blobs={}, latest={}, deleted=["w"], ttl_s=60)
+        await a.release(3)
+        assert 3 not in a.held
+        assert await b.acquire(3) == 2
+        assert await b.load(3) == {"v": b"1"}
+        assert await b.client.hkeys(b.key(3, "latest")) == [b"v"]
+        assert (await b.client.smembers(b.key(3, "vehicles"))) == {b"v"}
+
+
+async def test_keys_hash_tagged_by_shard(redis_url: str, prefix: str) -> None:
+    """Every key of a shard carries the {s:NN} hash tag (one Redis Cluster slot)."""
+    async with managers(redis_url, prefix, "a", n_shards=64) as (a,):
+        assert a.vehicle_key(7, "bus 1") == f"{prefix}:{{s:07}}:vehicle:bus 1"
+        assert a.key(63, "lease") == f"{prefix}:{{s:63}}:lease"
+
+
+async def test_membership_expires_and_shard_count_is_checked(redis_url: str,
+                                                              prefix: str) -> None:
+    """Members are listed while they heartbeat; a worker with another shard count is refused."""
+    async with managers(redis_url, prefix, "a", "b", lease_s=1.0) as (a, b):
+        await a.join()
+        assert await a.heartbeat() == ["a"]
+        assert await b.heartbeat() == ["a", "b"]
+        assert await b.heartbeat(leave=True) == ["a"]
+        other = LeaseManager(a.client, url=redis_url, prefix=f"{prefix}:", group="g",
+                             worker="c", n_shards=8, lease_s=1.0)
+        with pytest.raises(StoreError, match="runs with 4 shards"):
+            await other.join()
+
+
+# -- configuration ---------------------------------------------------------------------
+
+
+def test_config_group_needs_redis_and_plain_prefix(tmp_path: Path) -> None:
+    """[group] name with memory:// or a prefix holding { } is refused, naming the key."""
+    with pytest.raises(BadConfigError, match=re.escape("group.name 'g' needs a Redis store")):
+        load_config(None, env={"LIVEMATCH__GROUP__NAME": "g"})
+    with pytest.raises(BadConfigError, match=re.escape("needs a store.key_prefix without")):
+        load_config(None, env={"LIVEMATCH__GROUP__NAME": "g",
+                               "LIVEMATCH__STORE__URL": "redis://127.0.0.1:1/0",
+                               "LIVEMATCH__STORE__KEY_PREFIX": "{fleet}:"})
+    with pytest.raises(BadConfigError, match=re.escape("group.shards must be 1..16384, got 0")):
+        load_config(None, env={"LIVEMATCH__GROUP__SHARDS": "0"})
+    cfg = load_config(None, env={"LIVEMATCH__STORE__URL": "redis://127.0.0.1:1/0"},
+                      overrides={"group": "north", "shards": 16, "worker": "w1"})
+    assert (cfg.group.name, cfg.group.shards, cfg.group.worker) == ("north", 16, "w1")
+    assert load_config(None, env={}).group.name == ""  # default: standalone, as before
+
+
+# -- two workers in one process ----------------------------------------------------------
+
+
+def group_daemon(config_path: Path, worker: str) -> Daemon:
+    config = load_config(config_path, env={"LIVEMATCH__GROUP__WORKER": worker})
+    return Daemon(config, Pipeline(town(), config.matcher, limits=config.feed,
+                                   alerts=config.alerts,
+                                   control_topic=config.mqtt.control_topic))
+
+
+async def wait_until(cond: object, timeout: float = 20.0, what: str = "") -> None:
+    deadline = asyncio.get_running_loop().time() + timeout
+    while not cond():  # type: ignore[operator]
+        assert asyncio.get_running_loop().time() < deadline, f"timed out: {what}"
+        await asyncio.sleep(0.05)
+
+
+@pytest.fixture
+def group_config(tmp_path: Path, mosquitto: Mosquitto, redis_server: RedisServer,
+                 prefix: str) -> Iterator[Path]:
+    yield write_config(tmp_path, prefix, broker=mosquitto.url, store=redis_server.url,
+                       metrics="", extra="[group]\nname = \"g\"\nshards = 8\nlease_s = 1.0\n")
+
+
+async def test_two_workers_split_shards_and_every_fix_is_answered(
+        group_config: Path, mosquitto: Mosquitto, prefix: str) -> None:
+    """A second worker takes half the shards; each fix is answered, by its shard's
+    holder; when the second leaves gracefully, the first takes everything back and
+    continues every vehicle's window from the checkpoints."""
+    a, b = group_daemon(group_config, "a"), group_daemon(group_config, "b")
+    vehicles = [f"v{i}" for i in range(12)]
+    feeds = {v: drive(v, 30, start_x=100.0 + 300 * (i % 10)) for i, v in enumerate(vehicles)}
+
+    async def publish(lo: int, hi: int) -> None:
+        async with publisher(mosquitto.port) as pub:
+            for i in range(lo, hi):
+                for v in vehicles:
+                    await pub.publish(f"{prefix}/fleet/{v}/position", feeds[v][i][1], qos=1)
+
+    def answered() -> dict[str, list[float]]:
+        out: dict[str, list[float]] = {v: [] for v in vehicles}
+        for r in col.records("/out/match/"):
+            out[r["vehicle"]].append(r["time"])
+        return out
+
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col:
+        task_a = asyncio.create_task(a.run())
+        await wait_until(lambda: len(a._active) == 8, what="a holds all shards")
+        await publish(0, 10)
+        await wait_until(lambda: all(len(t) >= 10 for t in answered().values()),
+                         what="first fixes answered")
+        task_b = asyncio.create_task(b.run())
+        await wait_until(lambda: len(a._active) == 4 and len(b._active) == 4,
+                         what="shares rebalanced")
+        assert a._active.isdisjoint(b._active)
+        await publish(10, 20)
+        await wait_until(lambda: all(len(set(t)) >= 20 for t in answered().values()),
+                         what="second fixes answered")
+        for v in vehicles:  # each vehicle lives in exactly one worker
+            held_by = [d for d in (a, b) if v in d.pipeline.vehicles()]
+            assert len(held_by) == 1
+            assert shard_of(v, 8) in held_by[0]._active
+        b.request_stop()
+        await asyncio.wait_for(task_b, 20)
+        await wait_until(lambda: len(a._active) == 8, what="a takes everything back")
+        await publish(20, 30)
+        await wait_until(lambda: all(len(set(t)) >= 30 for t in answered().values()),
+                         what="last fixes answered")
+        a.request_stop()
+        await asyncio.wait_for(task_a, 20)
+    by_vehicle: dict[str, dict[float, int]] = {v: {} for v in vehicles}
+    for r in col.records("/out/match/"):
+        by_vehicle[r["vehicle"]][r["time"]] = r["window_fixes"]
+    for v in vehicles:
+        times = sorted(by_vehicle[v])
+        assert times == [t for t, _ in feeds[v]]  # every fix answered
+        # the certificate window went on across both hand-overs: fix i with i+1 fixes
+        assert [by_vehicle[v][t] for t in times] == list(range(1, 31))
+    assert a.metrics.takeovers._value.get() >= 12  # 8 at start, 4 back from b
