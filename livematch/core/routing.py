@@ -52,8 +52,13 @@ def bounded_dijkstra(
     A U-turn (leaving a vertex on the twin of the segment that entered it) is allowed
     only where ``view.turn_back_ok`` says so (dead ends and intersections).
 
-    Example (degenerate: no sources reaches nothing):
-        >>> bounded_dijkstra(None, [], 100.0)  # doctest: +SKIP
+    Example (a 100 m segment and its twin; no source reaches nothing):
+        >>> from livematch.core.build import Road, network_from_roads
+        >>> from livematch.core.view import view_of
+        >>> view = view_of(network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)]))
+        >>> bounded_dijkstra(view, [(0, 0.0, 0, -1)], 150.0)
+        {0: Reach(dist=0.0, source=0, pred=-1), 1: Reach(dist=100.0, source=0, pred=0)}
+        >>> bounded_dijkstra(view, [], 100.0)
         {}
     """
     done: dict[int, Reach] = {}

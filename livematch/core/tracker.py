@@ -95,8 +95,20 @@ class Tracker:
         vehicle: the vehicle id put on every event.
         settings: the matcher settings (validated here).
 
-    Example (a single fix on a straight road):
-        >>> from livematch.core.testing import straight_road  # doctest: +SKIP
+    Example (three fixes along a straight two-way road, then the end of the trip):
+        >>> from livematch.core.build import Road, network_from_roads
+        >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0), (200.0, 0.0)], way=7)])
+        >>> tracker = Tracker(net, "bus-1")
+        >>> events = []
+        >>> for i, x in enumerate((10.0, 20.0, 30.0)):
+        ...     events += tracker.update(Fix("bus-1", 1000.0 + i, 0.0, 0.0, x, 2.0))
+        >>> [(e.eps_m, e.window_fixes, round(e.offset_m, 1)) for e in events
+        ...  if e.kind == "assignment"]
+        [(15.0, 1, 10.0), (15.0, 2, 20.0), (15.0, 3, 30.0)]
+        >>> [len(e.fixes) for e in events + tracker.flush() if e.kind == "commit"]
+        [3]
+        >>> tracker.flush()  # nothing left to settle
+        []
     """
 
     def __init__(
