@@ -15,8 +15,9 @@ One :class:`Daemon` runs these named tasks under one :class:`asyncio.TaskGroup`:
 - ``shards`` (only in a worker group, ``[group] name``): announce this worker, renew its
   leases, take free shards up to its share (restore their vehicles from Redis, then
   replay the fixes kept for them) and hand excess shards over (fenced checkpoint, then
-  release). Fixes of shards held elsewhere are acknowledged and kept for
-  ``group.buffer_s`` seconds, so a takeover after a crash loses none of them; see
+  release). Fixes of shards held elsewhere are acknowledged unmatched; every fix is
+  kept for ``group.buffer_s`` seconds and replayed when its shard is taken, so a takeover
+  after a crash (or after this worker lost Redis) loses none of them; see
   :mod:`livematch.service.shards`.
 
 Bad input never stops the daemon: the pipeline turns it into a reject record that goes
@@ -201,6 +202,9 @@ class Daemon:
         self._enqueued = 0  # outputs ever queued
         self._acked = 0  # outputs ever acknowledged by the broker (queue order)
         self._shard_cache: dict[str, int] = {}
+        # One shard write at a time: a hand-over's checkpoint must not be overtaken by
+        # an older export of the periodic checkpoint (same fencing number, older state).
+        self._write_lock = asyncio.Lock()
 
     # -- control -------------------------------------------------------------------
 
@@ -593,11 +597,9 @@ class Daemon:
         assert leases is not None
         self._active.discard(shard)  # its fixes are kept from now on
         await self._outputs_acked(self._enqueued, _ACK_WAIT_S)
-        fence = leases.held.get(shard)
         vehicles = self._shard_vehicles(shard)
         try:
-            if fence is not None:
-                await self._save_shard(shard, fence, vehicles, everything=True)
+            await self._save_shard(shard, vehicles, everything=True, handing_over=True)
             if shard in leases.held:
                 await leases.release(shard)
         except StoreError:
@@ -609,13 +611,26 @@ class Daemon:
         self.metrics.shards_held.set(len(self._active))
         log.info("shard handed over", extra=fields(shard=shard, vehicles=len(vehicles)))
 
-    async def _save_shard(self, shard: int, fence: int, due: list[str], *,
-                          everything: bool) -> bool:
+    async def _save_shard(self, shard: int, due: list[str], *, everything: bool,
+                          handing_over: bool = False) -> bool:
         """Checkpoint ``due`` vehicles of a shard, its dirty latest records and deletions.
 
-        Returns False when the write was fenced out (the shard is then lost).
+        Returns False when the write was fenced out (the shard is then lost). Writes are
+        serialised, and each exports the state only once it has the turn, so a later
+        write never carries older state than an earlier one.
         """
+        async with self._write_lock:
+            return await self._save_shard_locked(shard, due, everything=everything,
+                                                 handing_over=handing_over)
+
+    async def _save_shard_locked(self, shard: int, due: list[str], *, everything: bool,
+                                 handing_over: bool) -> bool:
         assert self.leases is not None
+        fence = self.leases.held.get(shard)
+        if fence is None or not (handing_over or shard in self._active):
+            return True  # no longer ours, or being handed over: nothing to write here
+        held = set(self.pipeline.vehicles())
+        due = [v for v in due if v in held]
         now = time.monotonic()
         snapshot = {v: self._fixes_since[v] for v in due}
         blobs = {v: self.pipeline.export_vehicle(v) for v in due}
@@ -659,10 +674,7 @@ class Daemon:
         for v in [*self._latest_dirty, *self._pending_deletes]:
             due_by.setdefault(self._shard(v), [])
         for shard in sorted(due_by):
-            fence = leases.held.get(shard)
-            if fence is None or shard not in self._active:
-                continue
-            await self._save_shard(shard, fence, due_by[shard], everything=everything)
+            await self._save_shard(shard, due_by[shard], everything=everything)
 
     async def _leave_group(self) -> None:
         """On shutdown: checkpoint every shard held (fenced), release it, leave."""
@@ -817,10 +829,13 @@ class Daemon:
         if self.leases is not None:
             self._check_deadlines()
             shard = self._message_shard(topic, bytes(payload))
-            if shard is not None and shard not in self._active:
-                self._keep(shard, at, topic, bytes(payload))  # another worker's fix
-                ack(client, message)
-                return
+            if shard is not None:
+                # Kept whoever holds the shard: replayed if this worker takes it (again)
+                # after its holder (or this worker, cut off from Redis) lost it.
+                self._keep(shard, at, topic, bytes(payload))
+                if shard not in self._active:  # another worker's fix
+                    ack(client, message)
+                    return
         self._handle(topic, bytes(payload), at)
         ack(client, message)
 

@@ -229,8 +229,12 @@ class LeaseManager:
                              f"{self.n_shards}")
 
     async def heartbeat(self, *, leave: bool = False) -> list[str]:
-        """Announce this worker for 3 lease periods (or leave); the live members, sorted."""
-        ttl = "0" if leave else str(3 * self._ttl_ms)
+        """Announce this worker for one lease period (or leave); the live members, sorted.
+
+        A worker that died drops out of the list when its leases expire, so the others'
+        share grows in time to take its shards.
+        """
+        ttl = "0" if leave else str(self._ttl_ms)
         try:
             names = await self._members(keys=[self._members_key], args=[self.worker, ttl])
         except (RedisError, OSError) as exc:

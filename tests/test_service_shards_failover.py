@@ -1,0 +1,155 @@
+"""Two ``livematch run --group`` worker processes; one is SIGKILLed mid-feed."""
+
+from __future__ import annotations
+
+import asyncio
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import msgspec
+import redis.asyncio as aioredis
+from prometheus_client.parser import text_string_to_metric_families
+from services import (
+    Collector,
+    Mosquitto,
+    RedisServer,
+    drive,
+    free_port,
+    http_get,
+    publisher,
+    subprocess_env,
+    town,
+    write_config,
+)
+
+from livematch.mapdata.netfile import save_network
+from livematch.pipeline import STATE_MAGIC
+
+pytest_plugins = ("fixtures_services",)
+
+SHARDS = 8
+
+
+def start_worker(config: Path, worker: str, metrics_port: int,
+                 log_path: Path) -> subprocess.Popen[bytes]:
+    with log_path.open("ab") as log:
+        return subprocess.Popen(
+            [sys.executable, "-m", "livematch.cli", "run", "--config", str(config),
+             "--group", "g", "--shards", str(SHARDS), "--worker", worker,
+             "--metrics", f"127.0.0.1:{metrics_port}"],
+            stdout=log, stderr=log, env=subprocess_env())
+
+
+async def metric(port: int, name: str) -> float:
+    """The value of one unlabelled metric of a worker (or -1 when unreachable)."""
+    try:
+        status, body = await http_get(port, "/metrics")
+    except OSError:
+        return -1.0
+    assert status == 200
+    for family in text_string_to_metric_families(body):
+        for sample in family.samples:
+            if sample.name == name:
+                return float(sample.value)
+    return -1.0
+
+
+async def checkpoint_times(client: aioredis.Redis, prefix: str) -> dict[str, float]:
+    """Each vehicle's newest fix time in its Redis checkpoint (the blob's recent times)."""
+    out: dict[str, float] = {}
+    async for key in client.scan_iter(match=f"{prefix}:{{s:*}}:vehicle:*", count=500):
+        blob = await client.get(key)
+        if blob is None:
+            continue
+        assert blob.startswith(STATE_MAGIC)
+        vehicle, recent, _tracker, _alerts = msgspec.msgpack.decode(blob[len(STATE_MAGIC) + 1:])
+        out[vehicle] = max(recent)
+    return out
+
+
+async def test_sigkill_one_worker_every_fix_answered_no_state_backwards(
+        mosquitto: Mosquitto, redis_server: RedisServer, prefix: str, tmp_path: Path) -> None:
+    """Two workers share 8 shards; one is SIGKILLed mid-feed. The other takes its shards
+    over (restore + replay of the fixes it kept): every published fix gets an
+    assignment, no checkpoint ever goes back in fix time, and every answer of a fix
+    carries the same certificate window (the state continued, not restarted)."""
+    net_path = tmp_path / "town.lmnet"
+    save_network(town(), net_path)
+    cfg = write_config(tmp_path, prefix, broker=mosquitto.url, store=redis_server.url,
+                       network=str(net_path), extra="[group]\nlease_s = 2.0\n")
+    ports = {"w1": free_port(), "w2": free_port()}
+    logs = {w: tmp_path / f"{w}.log" for w in ports}
+    vehicles = [f"car-{i}" for i in range(10)]
+    n_fixes = 50
+    feeds = {v: drive(v, n_fixes, start_x=100.0 + 400 * i) for i, v in enumerate(vehicles)}
+    client = aioredis.Redis.from_url(redis_server.url)
+    backwards: list[str] = []
+    seen: dict[str, float] = {}
+
+    async def watch_checkpoints() -> None:
+        while True:
+            for v, t in (await checkpoint_times(client, prefix)).items():
+                if t < seen.get(v, t):
+                    backwards.append(f"{v}: {seen[v]} -> {t}")
+                seen[v] = max(t, seen.get(v, t))
+            await asyncio.sleep(0.05)
+
+    procs = {w: start_worker(cfg, w, ports[w], logs[w]) for w in ports}
+    watcher = asyncio.create_task(watch_checkpoints())
+    try:
+        async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col:
+            deadline = time.monotonic() + 60
+            while [await metric(p, "livematch_shards_held") for p in ports.values()] != [4, 4]:
+                assert time.monotonic() < deadline, "workers did not split the shards"
+                for w, proc in procs.items():
+                    assert proc.poll() is None, logs[w].read_text()
+                await asyncio.sleep(0.2)
+            killed_at = 0.0
+            async with publisher(mosquitto.port) as pub:
+                for i in range(n_fixes):
+                    for v in vehicles:
+                        await pub.publish(f"{prefix}/fleet/{v}/position", feeds[v][i][1], qos=1)
+                    if i == 20:
+                        procs["w1"].send_signal(signal.SIGKILL)  # mid-feed, no goodbye
+                        await asyncio.to_thread(procs["w1"].wait, 10)
+                        killed_at = time.monotonic()
+                    await asyncio.sleep(0.1)
+            taken_over = None
+            want = {v: {t for t, _ in feeds[v]} for v in vehicles}
+            deadline = time.monotonic() + 60
+            while True:
+                got = {v: {r["time"] for r in col.records(f"/out/match/{v}")} for v in vehicles}
+                if taken_over is None and await metric(ports["w2"], "livematch_shards_held") == 8:
+                    taken_over = time.monotonic() - killed_at
+                if got == want and taken_over is not None:
+                    break
+                missing = sum(len(want[v] - got[v]) for v in vehicles)
+                assert time.monotonic() < deadline, f"{missing} fixes never answered"
+                await asyncio.sleep(0.1)
+            # the survivor's checkpoints catch up with the last fix of every vehicle
+            deadline = time.monotonic() + 20
+            while seen != {v: max(want[v]) for v in vehicles}:
+                assert time.monotonic() < deadline, f"checkpoints lag: {seen}"
+                await asyncio.sleep(0.1)
+            procs["w2"].send_signal(signal.SIGTERM)
+            assert await asyncio.to_thread(procs["w2"].wait, 30) == 0
+    finally:
+        watcher.cancel()
+        for proc in procs.values():
+            if proc.poll() is None:
+                proc.kill()
+                proc.wait()
+        await client.aclose()
+    assert backwards == []
+    assert taken_over < 10.0  # lease 2 s + a renewal period + restore, with room for a slow CI
+    for v in vehicles:
+        windows: dict[float, set[int]] = {}
+        for r in col.records(f"/out/match/{v}"):
+            windows.setdefault(r["time"], set()).add(r["window_fixes"])
+        times = sorted(windows)
+        # one window per fix, even when two workers answered it; it grows 1, 2, 3, ...
+        assert [windows[t] for t in times] == [{k} for k in range(1, n_fixes + 1)], v
+    assert "shard taken" in logs["w2"].read_text()
