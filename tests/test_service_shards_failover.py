@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import asyncio
+import re
 import signal
 import subprocess
 import sys
@@ -76,6 +77,27 @@ async def test_sigkill_one_worker_every_fix_answered_no_state_backwards(
     over (restore + replay of the fixes it kept): every published fix gets an
     assignment, no checkpoint ever goes back in fix time, and every answer of a fix
     carries the same certificate window (the state continued, not restarted)."""
+    logs, taken_over = await scenario(mosquitto, redis_server, prefix, tmp_path, "kill")
+    assert taken_over < 10.0  # lease 2 s + a renewal period + restore, with room for a slow CI
+    assert "shard taken" in logs["w2"].read_text()
+
+
+async def test_stalled_worker_is_fenced_and_rejoins(
+        mosquitto: Mosquitto, redis_server: RedisServer, prefix: str, tmp_path: Path) -> None:
+    """One worker is frozen (SIGSTOP) past its leases mid-feed and then resumes: the
+    other takes its shards; the resumed worker drops them instead of writing its stale
+    state, and the two split the shards again. Every fix answered, no state backwards."""
+    logs, taken_over = await scenario(mosquitto, redis_server, prefix, tmp_path, "stop")
+    assert taken_over < 10.0
+    w1 = logs["w1"].read_text()
+    assert re.search(r'event="shard lost" shard=\d+ why=(expired|fenced|taken)', w1), w1
+    assert "shard taken" in logs["w2"].read_text()
+
+
+async def scenario(mosquitto: Mosquitto, redis_server: RedisServer, prefix: str,
+                   tmp_path: Path, mode: str) -> tuple[dict[str, Path], float]:
+    """Run two workers, disturb w1 after fix 20 (``kill``: SIGKILL; ``stop``: SIGSTOP
+    for 4 s, then SIGCONT), check every fix and every checkpoint; (logs, takeover s)."""
     net_path = tmp_path / "town.lmnet"
     save_network(town(), net_path)
     cfg = write_config(tmp_path, prefix, broker=mosquitto.url, store=redis_server.url,
@@ -97,54 +119,72 @@ async def test_sigkill_one_worker_every_fix_answered_no_state_backwards(
                 seen[v] = max(t, seen.get(v, t))
             await asyncio.sleep(0.05)
 
+    async def held() -> list[float]:
+        return [await metric(p, "livematch_shards_held") for p in ports.values()]
+
     procs = {w: start_worker(cfg, w, ports[w], logs[w]) for w in ports}
     watcher = asyncio.create_task(watch_checkpoints())
     try:
         async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col:
             deadline = time.monotonic() + 60
-            while [await metric(p, "livematch_shards_held") for p in ports.values()] != [4, 4]:
+            while await held() != [4, 4]:
                 assert time.monotonic() < deadline, "workers did not split the shards"
                 for w, proc in procs.items():
                     assert proc.poll() is None, logs[w].read_text()
                 await asyncio.sleep(0.2)
-            killed_at = 0.0
+            disturbed_at = 0.0
+            taken_over: float | None = None
             async with publisher(mosquitto.port) as pub:
                 for i in range(n_fixes):
                     for v in vehicles:
                         await pub.publish(f"{prefix}/fleet/{v}/position", feeds[v][i][1], qos=1)
                     if i == 20:
-                        procs["w1"].send_signal(signal.SIGKILL)  # mid-feed, no goodbye
-                        await asyncio.to_thread(procs["w1"].wait, 10)
-                        killed_at = time.monotonic()
+                        disturbed_at = time.monotonic()
+                        if mode == "kill":
+                            procs["w1"].send_signal(signal.SIGKILL)  # mid-feed, no goodbye
+                            await asyncio.to_thread(procs["w1"].wait, 10)
+                        else:
+                            procs["w1"].send_signal(signal.SIGSTOP)  # frozen, leases run out
+                    if (mode == "stop" and taken_over is None and disturbed_at
+                            and await metric(ports["w2"], "livematch_shards_held") == 8):
+                        taken_over = time.monotonic() - disturbed_at
                     await asyncio.sleep(0.1)
-            taken_over = None
             want = {v: {t for t, _ in feeds[v]} for v in vehicles}
             deadline = time.monotonic() + 60
             while True:
                 got = {v: {r["time"] for r in col.records(f"/out/match/{v}")} for v in vehicles}
                 if taken_over is None and await metric(ports["w2"], "livematch_shards_held") == 8:
-                    taken_over = time.monotonic() - killed_at
+                    taken_over = time.monotonic() - disturbed_at
+                if mode == "stop" and taken_over is not None and procs["w1"].poll() is None:
+                    procs["w1"].send_signal(signal.SIGCONT)  # wakes with stale leases
                 if got == want and taken_over is not None:
                     break
                 missing = sum(len(want[v] - got[v]) for v in vehicles)
                 assert time.monotonic() < deadline, f"{missing} fixes never answered"
                 await asyncio.sleep(0.1)
-            # the survivor's checkpoints catch up with the last fix of every vehicle
+            if mode == "stop":  # the resumed worker rejoins: the shares even out again
+                deadline = time.monotonic() + 30
+                while await held() != [4, 4]:
+                    assert time.monotonic() < deadline, f"no rebalance: {await held()}"
+                    await asyncio.sleep(0.2)
+            # the checkpoints catch up with the last fix of every vehicle
             deadline = time.monotonic() + 20
             while seen != {v: max(want[v]) for v in vehicles}:
                 assert time.monotonic() < deadline, f"checkpoints lag: {seen}"
                 await asyncio.sleep(0.1)
-            procs["w2"].send_signal(signal.SIGTERM)
-            assert await asyncio.to_thread(procs["w2"].wait, 30) == 0
+            for w, proc in procs.items():
+                if proc.poll() is None:
+                    proc.send_signal(signal.SIGTERM)
+                    assert await asyncio.to_thread(proc.wait, 30) == 0, w
     finally:
         watcher.cancel()
         for proc in procs.values():
             if proc.poll() is None:
+                proc.send_signal(signal.SIGCONT)
                 proc.kill()
                 proc.wait()
         await client.aclose()
     assert backwards == []
-    assert taken_over < 10.0  # lease 2 s + a renewal period + restore, with room for a slow CI
     for v in vehicles:
         windows: dict[float, set[int]] = {}
         for r in col.records(f"/out/match/{v}"):
@@ -152,4 +192,5 @@ async def test_sigkill_one_worker_every_fix_answered_no_state_backwards(
         times = sorted(windows)
         # one window per fix, even when two workers answered it; it grows 1, 2, 3, ...
         assert [windows[t] for t in times] == [{k} for k in range(1, n_fixes + 1)], v
-    assert "shard taken" in logs["w2"].read_text()
+    assert taken_over is not None
+    return logs, taken_over
