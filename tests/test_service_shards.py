@@ -249,3 +249,49 @@ async def test_two_workers_split_shards_and_every_fix_is_answered(
         # the certificate window went on across both hand-overs: fix i with i+1 fixes
         assert [by_vehicle[v][t] for t in times] == list(range(1, 31))
     assert a.metrics.takeovers._value.get() >= 12  # 8 at start, 4 back from b
+
+
+async def test_worker_fenced_out_writes_nothing_and_recovers(
+        group_config: Path, mosquitto: Mosquitto, redis_server: RedisServer,
+        prefix: str) -> None:
+    """When the shard's fencing number moves on (another worker acquired it while this
+    one stalled), the worker's next checkpoint is refused: the stored checkpoint stays as
+    it was, the shard's vehicles are dropped; once the lease has run out the worker takes
+    the shard again and continues from the checkpoint plus the fixes it kept."""
+    a = group_daemon(group_config, "a")
+    vehicle = "fenced-1"
+    shard = shard_of(vehicle, 8)
+    feed = drive(vehicle, 10)
+    client = aioredis.Redis.from_url(redis_server.url)
+    key = f"{prefix}:{{s:{shard}}}:vehicle:{vehicle}"
+
+    async def publish(lo: int, hi: int) -> None:
+        async with publisher(mosquitto.port) as pub:
+            for _, payload in feed[lo:hi]:
+                await pub.publish(f"{prefix}/fleet/{vehicle}/position", payload, qos=1)
+
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col:
+        task = asyncio.create_task(a.run())
+        try:
+            await wait_until(lambda: len(a._active) == 8, what="a holds all shards")
+            await publish(0, 5)
+            await wait_until(lambda: len(col.records("/out/match/")) == 5, what="answers")
+            await wait_until(lambda: not a._fixes_since, what="checkpoint written")
+            stored = await client.get(key)
+            assert stored is not None
+            await client.incr(f"{prefix}:{{s:{shard}}}:fence")  # someone else's turn now
+            await publish(5, 10)
+            await wait_until(lambda: a.metrics.fenced._value.get() == 1, what="write fenced")
+            assert await client.get(key) == stored  # the stale state was not written
+            assert a.metrics.shards_lost.labels(why="fenced")._value.get() == 1
+            await wait_until(lambda: shard in a._active, what="shard taken again")
+            await wait_until(lambda: {r["time"] for r in col.records("/out/match/")}
+                             == {t for t, _ in feed}, what="every fix answered")
+        finally:
+            a.request_stop()
+            await asyncio.wait_for(task, 20)
+            await client.aclose()
+    windows: dict[float, set[int]] = {}
+    for r in col.records("/out/match/"):
+        windows.setdefault(r["time"], set()).add(r["window_fixes"])
+    assert [windows[t] for t in sorted(windows)] == [{k} for k in range(1, 11)]

@@ -501,10 +501,18 @@ class Daemon:
         target = target_share(leases.n_shards, len(members))
         rank = {s: i for i, s in enumerate(preference(self.worker, leases.n_shards))}
         held = sorted(leases.held, key=rank.__getitem__)
-        for shard in held[target:]:
-            if self._stopping.is_set():
-                return
-            await self._hand_over(shard)
+        excess = held[target:]
+        if excess:
+            self._active.difference_update(excess)  # stop matching them: fixes only kept
+            await self._outputs_acked(self._enqueued, _ACK_WAIT_S)  # their answers out
+        try:
+            for shard in excess:
+                await self._hand_over(shard)
+        except StoreError:
+            for shard in excess:  # not handed over: its lease runs out, whoever takes it
+                if shard in leases.held:  # restores the checkpoint and replays
+                    self._lose(shard, "handover_failed")
+            raise
         if len(leases.held) >= target:
             return
         owners = await leases.owners()
@@ -567,10 +575,11 @@ class Daemon:
         """A shard is no longer ours: drop its vehicles without writing anything."""
         assert self.leases is not None
         self.leases.forget(shard)
-        if shard not in self._active:
-            return
+        was_active = shard in self._active
         self._active.discard(shard)
         vehicles = self._shard_vehicles(shard)
+        if not (was_active or vehicles):
+            return
         for vehicle in vehicles:
             self._forget_vehicle(vehicle)
         for vehicle in [v for v in self._pending_deletes if self._shard(v) == shard]:
@@ -592,51 +601,45 @@ class Daemon:
         return True
 
     async def _hand_over(self, shard: int) -> None:
-        """Give a shard to the group: stop matching it, checkpoint it (fenced), release."""
+        """Give a shard to the group: checkpoint it (fenced), release it, forget it.
+
+        The caller stopped matching the shard and waited for its queued outputs.
+        """
         leases = self.leases
         assert leases is not None
-        self._active.discard(shard)  # its fixes are kept from now on
-        await self._outputs_acked(self._enqueued, _ACK_WAIT_S)
+        self._active.discard(shard)  # its fixes are only kept from now on
         vehicles = self._shard_vehicles(shard)
         try:
-            await self._save_shard(shard, vehicles, everything=True, handing_over=True)
+            async with self._write_lock:
+                fence = leases.held.get(shard)
+                if fence is not None:
+                    await self._write_shard(shard, fence, self._export(vehicles))
             if shard in leases.held:
                 await leases.release(shard)
         except StoreError:
-            if shard in leases.held:
-                self._active.add(shard)  # still ours: go on matching it
+            # Fixes arrived unmatched since the shard was stopped: matching it again
+            # would skip them. Drop it; its lease runs out and the taker replays them.
+            self._lose(shard, "handover_failed")
             raise
         for vehicle in vehicles:
             self._forget_vehicle(vehicle)
         self.metrics.shards_held.set(len(self._active))
         log.info("shard handed over", extra=fields(shard=shard, vehicles=len(vehicles)))
 
-    async def _save_shard(self, shard: int, due: list[str], *, everything: bool,
-                          handing_over: bool = False) -> bool:
-        """Checkpoint ``due`` vehicles of a shard, its dirty latest records and deletions.
+    def _export(self, vehicles: list[str]) -> tuple[dict[str, int], dict[str, bytes]]:
+        """(fixes counted since the last checkpoint, checkpoint blob) of each vehicle."""
+        return ({v: self._fixes_since.get(v, 0) for v in vehicles},
+                {v: self.pipeline.export_vehicle(v) for v in vehicles})
 
-        Returns False when the write was fenced out (the shard is then lost). Writes are
-        serialised, and each exports the state only once it has the turn, so a later
-        write never carries older state than an earlier one.
+    async def _write_shard(self, shard: int, fence: int,
+                           export: tuple[dict[str, int], dict[str, bytes]]) -> bool:
+        """Write a shard's exported checkpoints, dirty latest records and deletions.
+
+        Returns False when the write was fenced out (the shard is then lost).
         """
-        async with self._write_lock:
-            return await self._save_shard_locked(shard, due, everything=everything,
-                                                 handing_over=handing_over)
-
-    async def _save_shard_locked(self, shard: int, due: list[str], *, everything: bool,
-                                 handing_over: bool) -> bool:
         assert self.leases is not None
-        fence = self.leases.held.get(shard)
-        if fence is None or not (handing_over or shard in self._active):
-            return True  # no longer ours, or being handed over: nothing to write here
-        held = set(self.pipeline.vehicles())
-        due = [v for v in due if v in held]
         now = time.monotonic()
-        snapshot = {v: self._fixes_since[v] for v in due}
-        blobs = {v: self.pipeline.export_vehicle(v) for v in due}
-        if blobs and not everything and not await self._outputs_acked(self._enqueued,
-                                                                       _ACK_WAIT_S):
-            return True  # outputs not yet out: a later round writes a newer checkpoint
+        snapshot, blobs = export
         dirty = sorted(v for v in self._latest_dirty if self._shard(v) == shard)
         latest = {v: self._latest[v] for v in dirty if v in self._latest}
         deleted = sorted(v for v in self._pending_deletes if self._shard(v) == shard)
@@ -649,9 +652,10 @@ class Daemon:
             self._lose(shard, "fenced")
             return False
         for v, n in snapshot.items():
-            self._fixes_since[v] -= n
-            if self._fixes_since[v] <= 0:
-                del self._fixes_since[v]
+            if v in self._fixes_since:
+                self._fixes_since[v] -= n
+                if self._fixes_since[v] <= 0:
+                    del self._fixes_since[v]
             self._last_checkpoint[v] = now
         self._latest_dirty.difference_update(dirty)
         self._pending_deletes.difference_update(deleted)
@@ -659,7 +663,14 @@ class Daemon:
         return True
 
     async def _flush_shards(self, *, everything: bool) -> None:
-        """:meth:`_flush_state` for a worker group: per shard, fenced."""
+        """:meth:`_flush_state` for a worker group: per shard, fenced.
+
+        The due vehicles are exported first; the checkpoints are written only once the
+        broker acknowledged every output queued before the export (so a checkpoint
+        never covers a fix whose answer could still be lost with this process), else
+        this round writes nothing. One write at a time (``_write_lock``), so a
+        hand-over's checkpoint is never overtaken by an older export.
+        """
         leases = self.leases
         assert leases is not None
         now = time.monotonic()
@@ -673,8 +684,16 @@ class Daemon:
                 due_by.setdefault(self._shard(v), []).append(v)
         for v in [*self._latest_dirty, *self._pending_deletes]:
             due_by.setdefault(self._shard(v), [])
-        for shard in sorted(due_by):
-            await self._save_shard(shard, due_by[shard], everything=everything)
+        async with self._write_lock:
+            plan = {s: (leases.held[s], self._export(due)) for s, due in sorted(due_by.items())
+                    if s in self._active and s in leases.held}
+            exported = any(blobs for _, (_, blobs) in plan.values())
+            if (exported and not everything
+                    and not await self._outputs_acked(self._enqueued, _ACK_WAIT_S)):
+                return  # outputs not yet out: a later round writes a newer checkpoint
+            for shard, (fence, export) in plan.items():
+                if leases.held.get(shard) == fence:
+                    await self._write_shard(shard, fence, export)
 
     async def _leave_group(self) -> None:
         """On shutdown: checkpoint every shard held (fenced), release it, leave."""

@@ -22,7 +22,7 @@ livematch_checkpoints_total                           vehicle checkpoints writte
 livematch_shards_held                                 shards this worker holds (worker group)
 livematch_lease_renew_failures_total                  lease rounds that could not reach Redis
 livematch_shard_takeovers_total                       shards acquired (restored and replayed)
-livematch_shards_lost_total{why}                      shards lost (expired, taken, fenced)
+livematch_shards_lost_total{why}                      shards lost (expired, taken, fenced, ...)
 livematch_checkpoints_fenced_total                    checkpoint writes refused by fencing
 livematch_shard_buffered_total                        fixes kept for shards held elsewhere
 livematch_shard_buffer_dropped_total                  kept fixes dropped (buffer full)
