@@ -24,10 +24,10 @@ livematch_lease_renew_failures_total                  lease rounds that could no
 livematch_shard_takeovers_total                       shards acquired (restored and replayed)
 livematch_shards_lost_total{why}                      shards lost (expired, taken, fenced, ...)
 livematch_checkpoints_fenced_total                    checkpoint writes refused by fencing
-livematch_shard_buffered_total                        fixes kept for shards held elsewhere
+livematch_shard_buffered_total                        fixes kept for a replay after a takeover
 livematch_shard_buffer_dropped_total                  kept fixes dropped (buffer full)
 livematch_shard_replayed_total                        kept fixes replayed after a takeover
-livematch_shard_buffer_messages                       fixes currently kept for other shards
+livematch_shard_buffer_messages                       fixes currently kept for replays
 ====================================================  =======================================
 
 Example:
@@ -109,14 +109,16 @@ class Metrics:
                               "Checkpoint writes refused: another worker holds the shard.",
                               registry=r)
         self.buffered = Counter("livematch_shard_buffered",
-                                "Fixes kept for shards held by other workers.", registry=r)
+                                "Fixes kept for a replay after a takeover (worker group).",
+                                registry=r)
         self.buffer_dropped = Counter("livematch_shard_buffer_dropped",
                                       "Kept fixes dropped because a shard's buffer was full.",
                                       registry=r)
         self.replayed = Counter("livematch_shard_replayed",
                                 "Kept fixes replayed after taking a shard over.", registry=r)
         self.buffer_depth = Gauge("livematch_shard_buffer_messages",
-                                  "Fixes currently kept for shards held elsewhere.", registry=r)
+                                  "Fixes currently kept for replays (worker group).",
+                                  registry=r)
 
     def render(self) -> bytes:
         """The registry in the Prometheus text exposition format."""
