@@ -151,6 +151,9 @@ def _run(args: argparse.Namespace) -> int:
         _say(f"watch: mosquitto_sub -V mqttv5 -h 127.0.0.1 -p {port} -t 'livematch/#' -v")
         _say(f"feed: {len(vehicles)} vehicles on fleet/<vehicle>/position, "
              f"{args.duration:g} s at {args.speedup:g}x ({scenario_s:.0f} s of the scenario)")
+        _say("note: the town and fleet are invented. With real vehicles, positions are "
+             "personal data and alerts support dispatchers, they do not replace them "
+             "(README, Cautions).")
 
     def on_tick(board: Any, wall_s: float, scenario_t: float | None) -> None:
         nonlocal live_display
