@@ -86,6 +86,9 @@ class MqttConfig:
     ``{"route": "550"}``; its ``+`` level is the vehicle; ``""`` subscribes to none).
     Output topics are templates with ``{vehicle}``. A persistent MQTT v5 session
     (``session_expiry_s`` > 0) keeps QoS 1 fixes published while the daemon restarts.
+    ``intake_max`` bounds the messages received and waiting to be matched; beyond it the
+    oldest waiting message of a vehicle with a newer one waiting is shed
+    (:class:`livematch.service.mqtt.IntakeQueue`).
     """
 
     url: str = "mqtt://127.0.0.1:1883"
@@ -105,10 +108,13 @@ class MqttConfig:
     ca_file: str = ""
     reconnect_min_s: float = 0.5
     reconnect_max_s: float = 30.0
+    intake_max: int = 10_000
 
     def problems(self) -> list[tuple[str, str]]:
         """Every invalid value as (key, expectation with the value found)."""
         out: list[tuple[str, str]] = []
+        if self.intake_max < 1:
+            out.append(("intake_max", f"must be >= 1, got {self.intake_max}"))
         parts = urlsplit(self.url)
         if parts.scheme not in ("mqtt", "mqtts") or not parts.hostname:
             out.append(("url", f"must be mqtt://HOST[:PORT] or mqtts://HOST[:PORT], "

@@ -34,8 +34,10 @@ Bad input never raises: a message that cannot be decoded becomes an
 
 ================================  ==========================================================
 ``messages``                      every message handled
-``reject:<reason>``               refused by the decoder (reason codes of ``feed.decode``)
+``reject:<reason>``               refused by the decoder (reason codes of ``feed.decode``,
+                                  ``future_time`` and ``rate_limited`` included)
 ``duplicate``                     same (vehicle, time) as a fix already taken: dropped
+``late``                          fixes taken although more than ``max_age_s`` behind ``at``
 ``fixes``                         fixes handed to a tracker
 ``filtered:<reason>``             refused by the tracker's filters (out_of_order...)
 ``assignments`` ``commits``       published events, by kind
@@ -148,13 +150,37 @@ class _VehicleState:
     ``pending`` holds the fixes handed to the tracker that it has not answered yet.
     """
 
-    __slots__ = ("alerts", "pending", "recent", "tracker")
+    __slots__ = ("alerts", "bucket", "pending", "recent", "tracker")
 
     def __init__(self, tracker: Tracker, recent: list[float] | None = None) -> None:
         self.tracker = tracker
         self.recent: list[float] = recent or []
         self.alerts = VehicleAlerts()
         self.pending: dict[float, Fix] = {}
+        # Rate limit: (tokens, receive time, newest fix time) after the last fix checked.
+        self.bucket: tuple[float, float, float] | None = None
+
+    def allow(self, at: float, t: float, rate_hz: float) -> bool:
+        """Token bucket of ``rate_hz`` fixes per second, burst ``max(1, rate_hz)``.
+
+        Tokens refill by the larger of the receive time and the fix time elapsed since
+        the last fix: a burst of queued fixes delivered at once after an outage (receive
+        times equal, fix times a second apart) passes, a sender flooding with fix times
+        close together does not. The fix time cannot run ahead of the receive time by
+        more than ``max_future_s``, and the burst caps what a jump can buy.
+        """
+        if rate_hz <= 0:
+            return True
+        cap = max(1.0, rate_hz)
+        if self.bucket is None:
+            tokens, last_at, last_t = cap, at, t
+        else:
+            tokens, last_at, last_t = self.bucket
+            tokens = min(cap, tokens + max(at - last_at, t - last_t, 0.0) * rate_hz)
+            last_at, last_t = max(at, last_at), max(t, last_t)
+        ok = tokens >= 1.0
+        self.bucket = (tokens - 1.0 if ok else tokens, last_at, last_t)
+        return ok
 
     def seen(self, t: float) -> bool:
         i = bisect.bisect_left(self.recent, t)
@@ -255,7 +281,7 @@ class Pipeline:
         if self.control_topic and vehicle_from_topic(topic, self.control_topic) is not None:
             return self._control_message(topic, payload, at)
         try:
-            fix = decode_position(topic, payload, self.network.projection, self.limits)
+            fix = decode_position(topic, payload, self.network.projection, self.limits, at)
         except BadMessageError as exc:
             return [self._reject(topic, payload, at, exc.reason, exc.detail,
                                  known_vehicle(topic, payload, self.limits))]
@@ -267,6 +293,12 @@ class Pipeline:
         if state.seen(fix.t):
             self.counters["duplicate"] += 1
             return []
+        if not state.allow(at, fix.t, self.limits.max_rate_hz):
+            return [self._reject(topic, payload, at, "rate_limited",
+                                 f"vehicle {fix.vehicle!r} sent more than "
+                                 f"{self.limits.max_rate_hz:g} fixes per second", fix.vehicle)]
+        if self.limits.max_age_s > 0 and at - fix.t > self.limits.max_age_s:
+            self.counters["late"] += 1
         state.remember(fix.t)
         self.counters["fixes"] += 1
         out = self._alert_outputs(state.alerts.seen(fix, at))

@@ -7,6 +7,7 @@ import contextlib
 import json
 import logging
 import ssl
+import time
 from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import Any
@@ -73,7 +74,7 @@ def direct(messages: list[tuple[str, bytes]], config_path: Path) -> list[Any]:
     pipeline = Pipeline(town(), config.matcher, limits=config.feed)
     out = []
     for topic, payload in messages:
-        out.extend(pipeline.handle(topic, payload, at=0.0))
+        out.extend(pipeline.handle(topic, payload, at=time.time()))
     return out
 
 
@@ -152,7 +153,7 @@ async def test_daemon_payloads_equal_replay_files(mosquitto: Mosquitto, prefix: 
     config = load_config(cfg, env={})
     pipeline = Pipeline(town(), config.matcher, limits=config.feed)
     for topic, payload in messages:
-        pipeline.handle(topic, payload, at=0.0)
+        pipeline.handle(topic, payload, at=time.time())
     at_end = sum(o.kind == "commit" for o in pipeline.flush())
     live_commits = lines("commits.jsonl")[:len(lines("commits.jsonl")) - at_end]
     daemon = make_daemon(cfg)
@@ -522,7 +523,7 @@ async def test_daemon_routes_fences_and_control_alerts_equal_pipeline(
              for i in range(60) for k, feed in ((1, bus1), (2, bus2))]
     expected = build_daemon(config).pipeline
     direct_out = [o for topic, payload in [control, *fixes]
-                  for o in expected.handle(topic, payload, at=0.0)]
+                  for o in expected.handle(topic, payload, at=time.time())]
     want_alerts = [o.record for o in direct_out if o.kind == "alert"]
     kinds = {a["kind"] for a in want_alerts}
     assert {"off_route", "fence_enter", "fence_exit"} <= kinds  # the scenario is meaningful

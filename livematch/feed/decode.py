@@ -63,6 +63,8 @@ REASONS = (
     "bad_vehicle",      # empty, too long, or with '/', '+', '#', control characters
     "too_large",        # payload longer than FeedLimits.max_payload_bytes
     "vehicle_mismatch", # payload vehicle differs from the topic's vehicle level
+    "future_time",      # fix time more than FeedLimits.max_future_s ahead of its receive time
+    "rate_limited",     # more fixes of one vehicle per second than feed.max_rate_hz allows
 )
 
 
@@ -79,6 +81,20 @@ class FeedLimits:
         topic_filter: the MQTT topic filter the feed is subscribed with; its single
             ``+`` level carries the vehicle id. A filter without ``+`` means the vehicle
             must be in the payload.
+        max_future_s: a fix whose time is more than this many seconds AHEAD of its
+            receive time is refused (``future_time``). A device with a broken clock
+            (wrong year, a bad GPS week rollover, local time sent as UTC) would otherwise
+            set the vehicle's newest time far in the future, and the tracker would then
+            refuse every later real fix as out of order. 300 s allows for the receiver's
+            own clock being a few minutes off (common practice for NTP-less hosts);
+            0 turns the check off.
+        max_age_s: a fix whose time is more than this many seconds BEHIND its receive
+            time is still matched (it may be a device catching up after a tunnel or a
+            broker queue after an outage) but counted as ``late``; 0 turns the count off.
+        max_rate_hz: at most this many fixes per second of receive time per vehicle
+            (a token bucket with a burst of the same size); extra fixes are refused as
+            ``rate_limited``. GPS receivers report at 1-10 Hz (common practice); a faster
+            sender is broken or hostile. 0 turns the limit off.
 
     Example:
         >>> FeedLimits().max_payload_bytes
@@ -92,6 +108,9 @@ class FeedLimits:
     min_year: int = 2000
     max_year: int = 2100
     topic_filter: str = "fleet/+/position"
+    max_future_s: float = 300.0
+    max_age_s: float = 3600.0
+    max_rate_hz: float = 10.0
 
     def __post_init__(self) -> None:
         if self.max_payload_bytes < 1:
@@ -101,6 +120,10 @@ class FeedLimits:
         if not 1 <= self.min_year <= self.max_year <= 9998:
             raise ValueError(f"need 1 <= min_year <= max_year <= 9998, "
                              f"got {self.min_year}..{self.max_year}")
+        for name in ("max_future_s", "max_age_s", "max_rate_hz"):
+            value = getattr(self, name)
+            if not (math.isfinite(value) and value >= 0):
+                raise ValueError(f"{name} must be a finite number >= 0, got {value!r}")
         if self.topic_filter.count("+") > 1:
             raise ValueError(f"topic_filter may have at most one '+' level (the vehicle), "
                              f"got {self.topic_filter!r}")
@@ -279,7 +302,8 @@ def _decode_error(exc: msgspec.DecodeError, payload: bytes) -> BadMessageError:
 
 
 def decode_position(
-    topic: str, payload: bytes, projection: Projection, limits: FeedLimits = FeedLimits()
+    topic: str, payload: bytes, projection: Projection, limits: FeedLimits = FeedLimits(),
+    at: float | None = None,
 ) -> Fix:
     """Decode and validate one position message into a projected :class:`Fix`.
 
@@ -288,6 +312,8 @@ def decode_position(
         payload: the raw message bytes (UTF-8 JSON).
         projection: the network's projection; ``x``/``y`` of the fix are in its metres.
         limits: size, id, time and topic rules.
+        at: the receive time (epoch seconds); when given, a fix more than
+            ``limits.max_future_s`` ahead of it is refused as ``future_time``.
 
     Raises:
         BadMessageError: with one of :data:`REASONS`; checks run in a fixed order (size,
@@ -338,6 +364,11 @@ Expected `object`, got `array`
             "out_of_range",
             f"time {msg.time!r} is outside the years {limits.min_year}..{limits.max_year}"
             f"{hint}")
+    if at is not None and limits.max_future_s > 0 and t - at > limits.max_future_s:
+        raise BadMessageError(
+            "future_time",
+            f"time {msg.time!r} is {t - at:.0f} s ahead of its receive time {at!r}, more "
+            f"than {limits.max_future_s:g} s (is the device's clock wrong?)")
     _check_range("lat", msg.lat, -90.0, 90.0, "degrees")
     _check_range("lon", msg.lon, -180.0, 180.0, "degrees")
     _check_range("accuracy", msg.accuracy, 0.0, math.inf, "metres")

@@ -56,7 +56,7 @@ from livematch.pipeline import REJECT_PAYLOAD_CHARS, Output
 from livematch.service.http import HealthServer
 from livematch.service.logs import fields
 from livematch.service.metrics import Metrics
-from livematch.service.mqtt import ack, backoff_delays, make_client
+from livematch.service.mqtt import IntakeQueue, ack, backoff_delays, drain, make_client
 from livematch.service.shards import LeaseManager, preference, shard_of, target_share
 from livematch.service.store import StateStore, StoreError, open_store
 
@@ -68,6 +68,8 @@ _TICK_S = 0.5
 _STORE_PING_S = 1.0
 # Most publishes awaiting their acknowledgement at once.
 _PUBLISH_WINDOW = 32
+# Most packets read from the broker's socket after each matched message (mqtt.drain).
+_DRAIN_PACKETS = 1000
 # Shortest interval between two "publish queue full" warnings (seconds).
 _FULL_LOG_EVERY_S = 10.0
 # How far ahead of the wall clock a fix time may push the eviction clock (seconds).
@@ -205,6 +207,8 @@ class Daemon:
         # One shard write at a time: a hand-over's checkpoint must not be overtaken by
         # an older export of the periodic checkpoint (same fencing number, older state).
         self._write_lock = asyncio.Lock()
+        self._intake: IntakeQueue | None = None  # the current connection's intake queue
+        self._intake_peak = 0
 
     # -- control -------------------------------------------------------------------
 
@@ -752,7 +756,10 @@ class Daemon:
     async def _session(self, backoff: Any) -> None:
         """One connection: subscribe, then receive and publish until stopped or broken."""
         cfg = self._mqtt
-        client = make_client(cfg, username=self.config.username, password=self.config.password)
+        self._intake = IntakeQueue(cfg.intake_max, key_of=self._intake_key,
+                                   on_shed=self._count_shed)
+        client = make_client(cfg, username=self.config.username, password=self.config.password,
+                             intake=self._intake)
         cancelled = False
         try:
             async with client:
@@ -805,7 +812,15 @@ class Daemon:
                 await asyncio.wait({nxt, stop}, return_when=asyncio.FIRST_COMPLETED)
                 if not nxt.done():
                     break  # stopping
-                self._process(client, nxt.result())
+                message = nxt.result()
+                if self._intake is not None and self._intake.was_shed(message):
+                    ack(client, message)  # shed on purpose (and counted): acknowledge
+                else:
+                    self._process(client, message)
+                    # Take what has arrived meanwhile, so that a backlog is shed here
+                    # (newest fix of every vehicle kept), not queued at the broker.
+                    drain(client, _DRAIN_PACKETS)
+                self._note_intake()
                 await self._wait_for_room()
         finally:
             stop.cancel()
@@ -817,6 +832,29 @@ class Daemon:
         self._intake_closed = True
         self._drain_deadline = time.monotonic() + self.config.publish.shutdown_grace_s
         self._outbox_changed.set()
+
+    def _intake_key(self, topic: str, payload: bytes) -> str:
+        """The vehicle a received message is about, for shedding (cheap; topic first)."""
+        vehicle = vehicle_from_topic(topic, self._mqtt.topic)
+        if vehicle is not None:
+            return "v:" + vehicle
+        control = self._mqtt.control_topic
+        if control and vehicle_from_topic(topic, control) is not None:
+            return "c:" + topic
+        vehicle = known_vehicle(topic, payload, self.config.feed)
+        return "v:" + vehicle if vehicle is not None else "t:" + topic
+
+    def _count_shed(self, message: aiomqtt.Message) -> None:
+        self.metrics.shed.inc()
+
+    def _note_intake(self) -> None:
+        """Carry the intake queue's depth and peak into the metrics."""
+        intake = self._intake
+        if intake is None:
+            return
+        self._intake_peak = max(self._intake_peak, intake.peak)
+        self.metrics.intake_depth.set(intake.waiting)
+        self.metrics.intake_peak.set(self._intake_peak)
 
     async def _wait_for_room(self) -> None:
         """Pause intake while the publish queue is full (the broker is slow or away)."""
@@ -896,6 +934,8 @@ class Daemon:
             self._seen_counters[key] = value
             if key == "fixes":
                 self.metrics.fixes.inc(delta)
+            elif key == "late":  # matched, but far behind its receive time
+                self.metrics.late.inc(delta)
             elif key == "duplicate":  # a redelivered fix, dropped by (vehicle, time)
                 self.metrics.filtered.labels(reason="duplicate").inc(delta)
             elif key.startswith("filtered:"):
@@ -1009,6 +1049,7 @@ class Daemon:
     def _render_metrics(self) -> bytes:
         self.metrics.vehicles.set(len(self.pipeline.vehicles()))
         self.metrics.queue_depth.set(len(self._outbox))
+        self._note_intake()
         return self.metrics.render()
 
 

@@ -65,6 +65,17 @@ class Metrics:
         self.filtered = Counter("livematch_fixes_filtered",
                                 "Fixes the matcher refused before the sweep, by reason.",
                                 ["reason"], registry=r)
+        self.late = Counter("livematch_fixes_late",
+                            "Fixes matched although more than feed.max_age_s behind their "
+                            "receive time.", registry=r)
+        self.shed = Counter("livematch_fixes_shed",
+                            "Queued messages dropped (and acknowledged) because the intake "
+                            "queue was over intake.queue_max; a newer one of the same "
+                            "vehicle was kept where there was one.", registry=r)
+        self.intake_depth = Gauge("livematch_intake_queue_depth",
+                                  "Messages received and waiting to be matched.", registry=r)
+        self.intake_peak = Gauge("livematch_intake_queue_peak",
+                                 "Largest intake queue depth since start.", registry=r)
         self.published = Counter("livematch_published",
                                  "Outputs acknowledged by the broker, by kind.",
                                  ["kind"], registry=r)

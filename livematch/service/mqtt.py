@@ -9,15 +9,26 @@ The daemon speaks MQTT v5 through aiomqtt (itself on paho-mqtt) with:
   unacknowledged and the broker delivers it again on the next session. Messages are
   acknowledged in the order they arrived, as MQTT requires;
 - no Maximum Packet Size property: an oversize fix must reach us so that it lands on
-  the dead-letter topic with reason ``too_large`` instead of being dropped by the broker.
+  the dead-letter topic with reason ``too_large`` instead of being dropped by the broker;
+- a bounded intake queue (:class:`IntakeQueue`, ``mqtt.intake_max``): when messages
+  arrive faster than they are matched, the oldest waiting message of a vehicle that has
+  a newer one waiting is shed, so memory stays bounded and every vehicle's newest fix
+  is kept. A shed QoS 1 message is acknowledged (it was dropped on purpose and counted
+  in ``livematch_fixes_shed_total``), in its arrival order, when the receive loop reaches
+  its place.
 """
 
 from __future__ import annotations
 
+import asyncio
+import contextlib
 import logging
 import random
+import select
 import socket
 import ssl
+from collections import deque
+from collections.abc import Callable
 from urllib.parse import urlsplit
 
 import aiomqtt
@@ -32,11 +43,13 @@ _PAHO_LOG.setLevel(logging.WARNING)
 
 
 def make_client(config: MqttConfig, *, username: str | None, password: str | None,
-                timeout_s: float = 10.0) -> aiomqtt.Client:
+                timeout_s: float = 10.0, intake: IntakeQueue | None = None
+                ) -> aiomqtt.Client:
     """A not-yet-connected aiomqtt client for ``config`` (use it as ``async with``).
 
     ``mqtts://`` uses TLS with the system's trust store, or ``config.ca_file`` when set.
-    Must be called inside a running event loop (aiomqtt binds to it).
+    ``intake`` replaces aiomqtt's unbounded incoming queue (the daemon gives an
+    :class:`IntakeQueue`). Must be called inside a running event loop (aiomqtt binds to it).
     """
     parts = urlsplit(config.url)
     tls = parts.scheme == "mqtts"
@@ -66,7 +79,200 @@ def make_client(config: MqttConfig, *, username: str | None, password: str | Non
     # The daemon keeps a window of publishes in flight on purpose; aiomqtt would warn
     # about every one beyond 10.
     client.pending_calls_threshold = 1000
+    if intake is not None:
+        # aiomqtt reads its incoming queue from this attribute (put in its on_message
+        # callback, get in client.messages); its own bound would drop the NEWEST message
+        # silently and leave a QoS 1 one unacknowledged for the rest of the session.
+        client._queue = intake
     return client
+
+
+def drain(client: aiomqtt.Client, max_packets: int) -> int:
+    """Read up to ``max_packets`` packets already waiting on the socket; return how many.
+
+    aiomqtt reads one packet (or one per publish in flight) each time the event loop sees
+    the socket readable, and the daemon matches one message between two such turns, so
+    a backlog would wait in the kernel and at the broker, where a vehicle's newest fix
+    queues behind its older ones (or is dropped by the broker's own limits). Draining
+    moves the backlog into the :class:`IntakeQueue`, which keeps every vehicle's newest
+    fix. Reading is cheap next to matching (tens of microseconds against milliseconds).
+    Errors are left for aiomqtt's own reader to find and report.
+    """
+    paho = client._client
+    read = 0
+    with contextlib.suppress(Exception):
+        while read < max_packets:
+            sock = paho.socket()
+            if sock is None:
+                break
+            pending = getattr(sock, "pending", None)
+            if not (pending is not None and pending() > 0):
+                ready, _, _ = select.select([sock], [], [], 0)
+                if not ready:
+                    break
+            paho.loop_read()
+            read += 1
+    return read
+
+
+class _Slot:
+    """A place in the intake queue: the message, or None once shed (QoS 0)."""
+
+    __slots__ = ("key", "message", "shed")
+
+    def __init__(self, key: str, message: aiomqtt.Message) -> None:
+        self.key = key
+        self.message: aiomqtt.Message | None = message
+        self.shed = False
+
+
+class _Slots:
+    """Arrival-ordered slots with per-vehicle indexes; ``len`` counts live messages.
+
+    ``asyncio.Queue`` only appends, pops from the left, and asks for the length and
+    truthiness of its container, so this stands in for its deque.
+    """
+
+    def __init__(self) -> None:
+        self.order: deque[_Slot] = deque()
+        self.by_key: dict[str, deque[_Slot]] = {}
+        self.multi: dict[str, None] = {}  # keys with two or more live messages, oldest first
+        self.live = 0  # messages waiting to be matched
+        self.markers = 0  # shed QoS 1 messages waiting for their acknowledgement
+
+    def __len__(self) -> int:
+        return self.live + self.markers
+
+    def __bool__(self) -> bool:
+        return len(self) > 0
+
+    def append(self, slot: _Slot) -> None:
+        self.order.append(slot)
+        same = self.by_key.setdefault(slot.key, deque())
+        same.append(slot)
+        if len(same) == 2:
+            self.multi[slot.key] = None
+        self.live += 1
+
+    def _unindex_oldest(self, key: str) -> _Slot:
+        same = self.by_key[key]
+        slot = same.popleft()
+        if len(same) == 1:
+            self.multi.pop(key, None)
+        elif not same:
+            del self.by_key[key]
+        return slot
+
+    def popleft(self) -> aiomqtt.Message:
+        while True:
+            slot = self.order.popleft()
+            if slot.shed:
+                if slot.message is None:
+                    continue  # a shed QoS 0 message: nothing left to do
+                self.markers -= 1
+                return slot.message
+            self._unindex_oldest(slot.key)
+            self.live -= 1
+            assert slot.message is not None
+            return slot.message
+
+    def shed_one(self, key: str) -> aiomqtt.Message:
+        """Shed one live message and return it.
+
+        The oldest of ``key`` if it has two, else of another vehicle with two, else the
+        oldest live message.
+        """
+        if len(self.by_key.get(key, ())) < 2:
+            key = next(iter(self.multi), "")
+        if not key:
+            key = next(s.key for s in self.order if not s.shed)
+        slot = self._unindex_oldest(key)
+        slot.shed = True
+        self.live -= 1
+        message = slot.message
+        assert message is not None
+        if message.qos > 0:
+            self.markers += 1
+        else:
+            slot.message = None
+        if len(self.order) > 2 * (self.live + self.markers) + 64:  # drop dead slots
+            self.order = deque(s for s in self.order if not s.shed or s.message is not None)
+        return message
+
+
+class IntakeQueue(asyncio.Queue[aiomqtt.Message]):
+    """aiomqtt's incoming queue with a bound that sheds old fixes, never the newest.
+
+    Args:
+        limit: most messages waiting to be matched (``mqtt.intake_max``).
+        key_of: (topic, payload) -> the vehicle the message is about (the key that
+            decides which messages may replace one another).
+        on_shed: called with each message shed (for counting), when it is shed.
+
+    When a message arrives and ``limit`` are already waiting, one waiting message is
+    shed: the oldest of the same vehicle when that vehicle has another one waiting, else
+    the oldest of some vehicle that has two or more waiting, else (more distinct vehicles
+    waiting than ``limit``) the oldest message. A shed QoS 0 message vanishes; a shed
+    QoS 1 message keeps its place as a marker (its payload released) that the receive
+    loop acknowledges without matching (:meth:`was_shed`), so acknowledgements stay in
+    arrival order. Markers are bounded by the broker's in-flight window.
+
+    Example:
+        >>> q = IntakeQueue(2, key_of=lambda topic, payload: topic)
+        >>> def m(topic, mid):
+        ...     return aiomqtt.Message(topic, b"x", 0, False, mid, None)
+        >>> for i, topic in enumerate(["a", "b", "a", "a"]):
+        ...     q.put_nowait(m(topic, i))
+        >>> [(x.topic.value, x.mid) for x in (q.get_nowait(), q.get_nowait())]
+        [('b', 1), ('a', 3)]
+        >>> q.shed_total, q.qsize()
+        (2, 0)
+    """
+
+    def __init__(self, limit: int, *, key_of: Callable[[str, bytes], str],
+                 on_shed: Callable[[aiomqtt.Message], None] | None = None) -> None:
+        super().__init__()
+        self.limit = limit
+        self.key_of = key_of
+        self.on_shed = on_shed
+        self.shed_total = 0
+        self.peak = 0
+        self._shed_ids: set[int] = set()
+
+    def _init(self, maxsize: int) -> None:
+        self._queue = _Slots()
+
+    def _put(self, item: aiomqtt.Message) -> None:
+        slots: _Slots = self._queue
+        payload = item.payload if isinstance(item.payload, bytes | bytearray) else b""
+        key = self.key_of(item.topic.value, bytes(payload))
+        slots.append(_Slot(key, item))
+        if slots.live > self.limit:
+            shed = slots.shed_one(key)
+            self.shed_total += 1
+            if shed.qos > 0:
+                self._shed_ids.add(id(shed))
+                shed.payload = b""
+            if self.on_shed is not None:
+                self.on_shed(shed)
+        self.peak = max(self.peak, slots.live)
+
+    def _get(self) -> aiomqtt.Message:
+        slots: _Slots = self._queue
+        return slots.popleft()
+
+    @property
+    def waiting(self) -> int:
+        """Messages waiting to be matched (shed markers not counted)."""
+        slots: _Slots = self._queue
+        return slots.live
+
+    def was_shed(self, message: aiomqtt.Message) -> bool:
+        """Whether ``message`` (just taken from the queue) was shed: acknowledge only."""
+        if id(message) in self._shed_ids:
+            self._shed_ids.discard(id(message))
+            return True
+        return False
 
 
 def ack(client: aiomqtt.Client, message: aiomqtt.Message) -> None:
