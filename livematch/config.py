@@ -50,6 +50,7 @@ from livematch.pipeline import (
 ENV_PREFIX = "LIVEMATCH__"
 USERNAME_ENV = "LIVEMATCH_MQTT_USERNAME"
 PASSWORD_ENV = "LIVEMATCH_MQTT_PASSWORD"
+REDIS_PASSWORD_ENV = "LIVEMATCH_REDIS_PASSWORD"
 
 # Characters allowed in a Redis key prefix: none of them is special in a SCAN MATCH
 # pattern, so "all vehicles under the prefix" is an exact query.
@@ -58,7 +59,8 @@ _GROUP_NAME_RE = re.compile(r"^[A-Za-z0-9._\-]{0,64}$")
 _LEVELS = ("debug", "info", "warning", "error")
 # Keys holding file paths: relative ones in a file are relative to that file's folder.
 _PATH_KEYS = {("inputs", "network"), ("inputs", "routes"), ("inputs", "fences"),
-              ("mqtt", "password_file"), ("mqtt", "ca_file"), ("record", "path")}
+              ("mqtt", "password_file"), ("mqtt", "ca_file"), ("record", "path"),
+              ("store", "password_file"), ("store", "ca_file")}
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -190,6 +192,11 @@ class StoreConfig:
     (``rediss://`` for TLS). A vehicle is checkpointed after ``checkpoint_every_fixes``
     fixes or ``checkpoint_every_s`` seconds, whichever comes first, and on shutdown; one
     idle for ``idle_ttl_s`` (fix time, and wall-clock key expiry in Redis) is dropped.
+    Redis AUTH: the password comes from ``LIVEMATCH_REDIS_PASSWORD``, else from
+    ``password_file`` (the file holds only the password), else from the URL (allowed,
+    but it is then in the config; logs show it as ``***``); ``username`` names a Redis
+    ACL user (default: the ``default`` user). ``rediss://`` uses TLS with the system's
+    trust store, or ``ca_file`` when set.
     """
 
     url: str = "memory://"
@@ -197,6 +204,9 @@ class StoreConfig:
     checkpoint_every_fixes: int = 20
     checkpoint_every_s: float = 10.0
     idle_ttl_s: float = 3600.0
+    username: str = ""
+    password_file: str = ""
+    ca_file: str = ""
 
     def problems(self) -> list[tuple[str, str]]:
         """Every invalid value as (key, expectation with the value found)."""
@@ -346,6 +356,7 @@ class DaemonConfig:
     group: GroupConfig = field(default_factory=GroupConfig)
     username: str | None = None
     password: str | None = field(default=None, repr=False)
+    store_password: str | None = field(default=None, repr=False)
 
 
 _SECTIONS: dict[str, type] = {
@@ -444,10 +455,12 @@ def load_config(
     problems.extend(_group_problems(built["group"], built["store"], raw.get("group", {})))
     username, password, cred_problems = _credentials(built["mqtt"], env, raw.get("mqtt", {}))
     problems.extend(cred_problems)
+    store_password, found = _store_password(built["store"], env, raw.get("store", {}))
+    problems.extend(found)
     if problems:
         raise BadConfigError("\n".join(problems))
     return DaemonConfig(source=source, feed=feed, username=username, password=password,
-                        **built)
+                        store_password=store_password, **built)
 
 
 def parse_hostport(text: str) -> tuple[str, int]:
@@ -645,6 +658,21 @@ def _credentials(
         return None, None, [f"{PASSWORD_ENV} or mqtt.password_file gives a password but no "
                             f"username ({USERNAME_ENV} or mqtt.username)"]
     return username, password, []
+
+
+def _store_password(store: StoreConfig, env: Mapping[str, str],
+                    entries: Mapping[str, tuple[Any, str]]) -> tuple[str | None, list[str]]:
+    """The Redis password: the environment, else ``store.password_file``, else None."""
+    password = env.get(REDIS_PASSWORD_ENV)
+    if password is None and store.password_file:
+        origin = entries.get("password_file", (None, "<defaults>"))[1]
+        try:
+            password = Path(store.password_file).read_text(encoding="utf-8").strip("\r\n")
+        except OSError as exc:
+            # Name the file, never its content.
+            return None, [f"{origin}: store.password_file cannot be read: "
+                          f"{store.password_file}: {exc.strerror}"]
+    return password or None, []
 
 
 def _redact(url: str) -> str:

@@ -150,17 +150,34 @@ class RedisServer:
     folder: Path
     port: int = field(default_factory=free_port)
     proc: subprocess.Popen[bytes] | None = None
+    password: str = ""  # non-empty: started with requirepass (AUTH needed)
+    tls: bool = False  # TLS only (rediss://), with a throw-away CA in folder/ca.crt
 
     @property
     def url(self) -> str:
-        return f"redis://127.0.0.1:{self.port}/0"
+        return f"{'rediss' if self.tls else 'redis'}://127.0.0.1:{self.port}/0"
+
+    @property
+    def ca_file(self) -> Path:
+        return self.folder / "ca.crt"
+
+    def _tls_args(self) -> list[str]:
+        if not self.tls:
+            return ["--port", str(self.port)]
+        if not self.ca_file.exists():
+            make_test_certificates(self.folder)
+        return ["--port", "0", "--tls-port", str(self.port),
+                "--tls-cert-file", str(self.folder / "server.crt"),
+                "--tls-key-file", str(self.folder / "server.key"),
+                "--tls-ca-cert-file", str(self.ca_file), "--tls-auth-clients", "no"]
 
     def start(self) -> None:
         self.folder.mkdir(parents=True, exist_ok=True)
         self.proc = subprocess.Popen(
-            [REDIS_SERVER, "--port", str(self.port), "--bind", "127.0.0.1",
+            [REDIS_SERVER, *self._tls_args(), "--bind", "127.0.0.1",
              "--save", "", "--appendonly", "no", "--dir", str(self.folder),
-             "--protected-mode", "no"],
+             "--protected-mode", "no",
+             *(["--requirepass", self.password] if self.password else [])],
             stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
         wait_listening(self.port, self.proc)
 

@@ -48,7 +48,6 @@ from dataclasses import dataclass, replace
 from typing import Any, Protocol
 
 import aiomqtt
-import redis.asyncio as aioredis
 
 from livematch.config import DaemonConfig, MqttConfig, parse_hostport, redact_url
 from livematch.feed.decode import known_vehicle, vehicle_from_topic
@@ -58,7 +57,7 @@ from livematch.service.logs import fields
 from livematch.service.metrics import Metrics
 from livematch.service.mqtt import IntakeQueue, ack, backoff_delays, drain, make_client
 from livematch.service.shards import LeaseManager, preference, shard_of, target_share
-from livematch.service.store import StateStore, StoreError, open_store
+from livematch.service.store import StateStore, StoreError, open_store, redis_client
 
 log = logging.getLogger("livematch.daemon")
 
@@ -170,7 +169,11 @@ class Daemon:
                  store: StateStore | None = None, metrics: Metrics | None = None) -> None:
         self.config = config
         self.pipeline = pipeline
-        self.store = store or open_store(config.store.url, key_prefix=config.store.key_prefix)
+        sc = config.store
+        self.store = store or open_store(sc.url, key_prefix=sc.key_prefix,
+                                         password=config.store_password,
+                                         username=sc.username or None,
+                                         ca_file=sc.ca_file or None)
         self.metrics = metrics or Metrics()
         self.http: HealthServer | None = None
         self.broker_connected = False
@@ -405,8 +408,9 @@ class Daemon:
         """Create the lease manager (own Redis connection) and check the shard count."""
         group = self.config.group
         if self.leases is None:
-            client = aioredis.Redis.from_url(self.config.store.url, socket_timeout=2.0,
-                                             socket_connect_timeout=2.0)
+            sc = self.config.store
+            client = redis_client(sc.url, timeout_s=2.0, password=self.config.store_password,
+                                  username=sc.username or None, ca_file=sc.ca_file or None)
             self.leases = LeaseManager(client, url=self.config.store.url,
                                        prefix=self.config.store.key_prefix, group=group.name,
                                        worker=self.worker, n_shards=group.shards,

@@ -32,7 +32,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Iterable, Mapping
-from typing import Protocol, runtime_checkable
+from typing import Any, Protocol, runtime_checkable
 
 import redis.asyncio as aioredis
 from redis.exceptions import RedisError
@@ -126,16 +126,18 @@ class RedisStore:
         key_prefix: prepended to every key; use a hash tag such as ``{fleet1}:`` to
             keep one fleet's keys on one Redis Cluster slot.
         timeout_s: socket timeout of every command, seconds.
+        password, username, ca_file: see :func:`redis_client`.
     """
 
     def __init__(self, url: str, *, key_prefix: str = "livematch:",
-                 timeout_s: float = 2.0) -> None:
+                 timeout_s: float = 2.0, password: str | None = None,
+                 username: str | None = None, ca_file: str | None = None) -> None:
         self.url = url
         self.key_prefix = key_prefix
         self._vehicle_prefix = f"{key_prefix}vehicle:"
         self._latest_key = f"{key_prefix}latest"
-        self._redis: aioredis.Redis = aioredis.Redis.from_url(
-            url, socket_timeout=timeout_s, socket_connect_timeout=timeout_s)
+        self._redis: aioredis.Redis = redis_client(
+            url, timeout_s=timeout_s, password=password, username=username, ca_file=ca_file)
 
     def _fail(self, action: str, exc: Exception) -> StoreError:
         return StoreError(f"redis {redact_url(self.url)}: {action} failed: {exc}")
@@ -221,8 +223,38 @@ def _text(value: bytes | str) -> str:
     return value.decode() if isinstance(value, bytes) else value
 
 
-def open_store(url: str, *, key_prefix: str) -> StateStore:
-    """The store for a ``[store] url``: ``memory://`` or ``redis://…``.
+def redis_client(url: str, *, timeout_s: float = 2.0, password: str | None = None,
+                 username: str | None = None, ca_file: str | None = None) -> aioredis.Redis:
+    """A ``redis.asyncio`` client for ``url`` with AUTH and TLS settings.
+
+    Args:
+        url: ``redis://HOST:PORT/DB`` or ``rediss://`` (TLS).
+        timeout_s: connect and command timeout, seconds.
+        password: AUTH password; None keeps the URL's (if any). It is handed to the
+            client only, never formatted into a message.
+        username: ACL user name; None or "" keeps the URL's (or Redis's ``default``).
+        ca_file: CA bundle that signs the server's certificate, for ``rediss://``; None:
+            the system's trust store.
+
+    Example (no connection is made until the first command):
+        >>> client = redis_client("redis://127.0.0.1:1/0", password="s3cret")
+        >>> "s3cret" in repr(client)
+        False
+    """
+    kwargs: dict[str, Any] = {"socket_timeout": timeout_s,
+                              "socket_connect_timeout": timeout_s}
+    if password is not None:
+        kwargs["password"] = password
+    if username:
+        kwargs["username"] = username
+    if url.startswith("rediss://") and ca_file:
+        kwargs["ssl_ca_certs"] = ca_file
+    return aioredis.Redis.from_url(url, **kwargs)
+
+
+def open_store(url: str, *, key_prefix: str, password: str | None = None,
+               username: str | None = None, ca_file: str | None = None) -> StateStore:
+    """The store for a ``[store] url``: ``memory://`` or ``redis://…`` (``rediss://``).
 
     Example:
         >>> type(open_store("memory://", key_prefix="x:")).__name__
@@ -230,4 +262,5 @@ def open_store(url: str, *, key_prefix: str) -> StateStore:
     """
     if url == "memory://":
         return MemoryStore()
-    return RedisStore(url, key_prefix=key_prefix)
+    return RedisStore(url, key_prefix=key_prefix, password=password, username=username,
+                      ca_file=ca_file)
