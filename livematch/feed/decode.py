@@ -46,6 +46,7 @@ __all__ = [
     "FeedLimits",
     "decode_position",
     "known_vehicle",
+    "looks_like_position",
     "parse_time",
     "validate_vehicle",
     "vehicle_from_topic",
@@ -380,6 +381,27 @@ Expected `object`, got `array`
         vehicle=vehicle, t=t, lon=msg.lon, lat=msg.lat, x=float(x), y=float(y),
         accuracy=msg.accuracy, speed=msg.speed, heading=msg.heading, route=msg.route,
     )
+
+
+def looks_like_position(payload: bytes, limits: FeedLimits = FeedLimits()) -> bool:
+    """Whether ``payload`` passes the size and type checks of a position message.
+
+    A cheap first look (no projection, no range checks) for deciding what to drop first
+    when the daemon is overloaded: False means :func:`decode_position` would certainly
+    refuse the message.
+
+    >>> looks_like_position(b'{"time": 1700000000, "lat": 60.1, "lon": 24.9}')
+    True
+    >>> looks_like_position(b"{broken"), looks_like_position(b"")
+    (False, False)
+    """
+    if len(payload) > limits.max_payload_bytes:
+        return False
+    try:
+        _DECODER.decode(payload)
+    except msgspec.DecodeError:
+        return False
+    return True
 
 
 def known_vehicle(topic: str, payload: bytes, limits: FeedLimits = FeedLimits()) -> str | None:

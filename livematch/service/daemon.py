@@ -50,12 +50,19 @@ from typing import Any, Protocol
 import aiomqtt
 
 from livematch.config import DaemonConfig, MqttConfig, parse_hostport, redact_url
-from livematch.feed.decode import known_vehicle, vehicle_from_topic
+from livematch.feed.decode import known_vehicle, looks_like_position, vehicle_from_topic
 from livematch.pipeline import REJECT_PAYLOAD_CHARS, Output
 from livematch.service.http import HealthServer
 from livematch.service.logs import fields
 from livematch.service.metrics import Metrics
-from livematch.service.mqtt import IntakeQueue, ack, backoff_delays, drain, make_client
+from livematch.service.mqtt import (
+    JUNK_KEY,
+    IntakeQueue,
+    ack,
+    backoff_delays,
+    drain,
+    make_client,
+)
 from livematch.service.shards import LeaseManager, preference, shard_of, target_share
 from livematch.service.store import StateStore, StoreError, open_store, redis_client
 
@@ -839,12 +846,14 @@ class Daemon:
 
     def _intake_key(self, topic: str, payload: bytes) -> str:
         """The vehicle a received message is about, for shedding (cheap; topic first)."""
-        vehicle = vehicle_from_topic(topic, self._mqtt.topic)
-        if vehicle is not None:
-            return "v:" + vehicle
         control = self._mqtt.control_topic
         if control and vehicle_from_topic(topic, control) is not None:
             return "c:" + topic
+        if not looks_like_position(payload, self.config.feed):
+            return JUNK_KEY  # shed before any fix
+        vehicle = vehicle_from_topic(topic, self._mqtt.topic)
+        if vehicle is not None:
+            return "v:" + vehicle
         vehicle = known_vehicle(topic, payload, self.config.feed)
         return "v:" + vehicle if vehicle is not None else "t:" + topic
 

@@ -13,9 +13,11 @@ The daemon speaks MQTT v5 through aiomqtt (itself on paho-mqtt) with:
 - a bounded intake queue (:class:`IntakeQueue`, ``mqtt.intake_max``): when messages
   arrive faster than they are matched, the oldest waiting message of a vehicle that has
   a newer one waiting is shed, so memory stays bounded and every vehicle's newest fix
-  is kept. A shed QoS 1 message is acknowledged (it was dropped on purpose and counted
-  in ``livematch_fixes_shed_total``), in its arrival order, when the receive loop reaches
-  its place.
+  is kept. QoS 1 messages are also flow-controlled by the broker (the session's Receive
+  Maximum is ``intake_max``), so QoS 1 alone never fills the queue; they are shed only
+  when QoS 0 traffic fills it too. A shed QoS 1 message is acknowledged (it was
+  dropped on purpose and counted in ``livematch_fixes_shed_total``), in its arrival
+  order, when the receive loop reaches its place.
 """
 
 from __future__ import annotations
@@ -57,6 +59,10 @@ def make_client(config: MqttConfig, *, username: str | None, password: str | Non
     port = parts.port or (8883 if tls else 1883)
     props = Properties(PacketTypes.CONNECT)
     props.SessionExpiryInterval = config.session_expiry_s
+    # MQTT v5 flow control: the broker sends at most this many QoS 1/2 messages not yet
+    # acknowledged, so a QoS 1 backlog waits at the broker (nothing lost) instead of
+    # being shed here; QoS 0 has no flow control and is bounded by the IntakeQueue.
+    props.ReceiveMaximum = min(65_535, config.intake_max)
     client = aiomqtt.Client(
         parts.hostname or "localhost",
         port,
@@ -113,6 +119,10 @@ def drain(client: aiomqtt.Client, max_packets: int) -> int:
             paho.loop_read()
             read += 1
     return read
+
+
+#: Intake key of messages that cannot be a position fix (shed before any fix).
+JUNK_KEY = "junk"
 
 
 class _Slot:
@@ -179,10 +189,12 @@ class _Slots:
     def shed_one(self, key: str) -> aiomqtt.Message:
         """Shed one live message and return it.
 
-        The oldest of ``key`` if it has two, else of another vehicle with two, else the
-        oldest live message.
+        The oldest junk message (:data:`JUNK_KEY`) if any, else the oldest of ``key`` if
+        it has two, else of another vehicle with two, else the oldest live message.
         """
-        if len(self.by_key.get(key, ())) < 2:
+        if self.by_key.get(JUNK_KEY):
+            key = JUNK_KEY
+        elif len(self.by_key.get(key, ())) < 2:
             key = next(iter(self.multi), "")
         if not key:
             key = next(s.key for s in self.order if not s.shed)
@@ -210,12 +222,14 @@ class IntakeQueue(asyncio.Queue[aiomqtt.Message]):
         on_shed: called with each message shed (for counting), when it is shed.
 
     When a message arrives and ``limit`` are already waiting, one waiting message is
-    shed: the oldest of the same vehicle when that vehicle has another one waiting, else
-    the oldest of some vehicle that has two or more waiting, else (more distinct vehicles
-    waiting than ``limit``) the oldest message. A shed QoS 0 message vanishes; a shed
-    QoS 1 message keeps its place as a marker (its payload released) that the receive
-    loop acknowledges without matching (:meth:`was_shed`), so acknowledgements stay in
-    arrival order. Markers are bounded by the broker's in-flight window.
+    shed: the oldest message keyed :data:`JUNK_KEY` (one that cannot be a fix and would
+    only be rejected), else the oldest of the same vehicle when that vehicle has another
+    one waiting, else the oldest of some vehicle that has two or more waiting, else
+    (more distinct vehicles waiting than ``limit``) the oldest message. A shed QoS 0
+    message vanishes; a shed QoS 1 message keeps its place as a marker (its payload
+    released) that the receive loop acknowledges without matching (:meth:`was_shed`),
+    so acknowledgements stay in arrival order. Markers are bounded by the broker's
+    in-flight window (the Receive Maximum, where the broker honours it).
 
     Example:
         >>> q = IntakeQueue(2, key_of=lambda topic, payload: topic)
