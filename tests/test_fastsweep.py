@@ -14,7 +14,6 @@ from __future__ import annotations
 import doctest
 import importlib.resources
 import itertools
-import math
 from functools import cache
 
 import numpy as np
@@ -68,10 +67,8 @@ def run_trace(network: RoadNetwork, points: list[tuple[float, float]], eps: floa
     history = []
     for seq, (x, y) in enumerate(points, start=1):
         x0, y0 = prev if prev is not None else (x, y)
-        chord = math.hypot(x - x0, y - y0)
-        ctx = StepContext(view, eps, x0, y0, x, y, seq, float(seq), chord,
-                          1.0 / (2.0 * s.sigma_m * s.sigma_m), 1.0 / s.beta_m,
-                          s.turn_back_cost, 1.0 / s.motion_m)
+        ctx = StepContext.between(view, s, eps, x0, y0, x, y, seq, float(seq))
+        chord = ctx.chord
         new: dict[int, Node] = {}
         if live:
             new = check_step(live, ctx)

@@ -44,6 +44,7 @@ from dataclasses import dataclass
 
 from livematch.core.network import RoadNetwork
 from livematch.core.routing import bounded_dijkstra, route_segments
+from livematch.core.settings import MatchSettings
 from livematch.core.view import NetworkView
 
 
@@ -101,6 +102,16 @@ class StepContext:
     inv_beta: float
     turn_back_cost: float
     motion_cost: float = 0.0
+
+    @classmethod
+    def between(
+        cls, view: NetworkView, settings: MatchSettings, eps: float,
+        x0: float, y0: float, x1: float, y1: float, seq: int, t: float,
+    ) -> StepContext:
+        """The context of the step p0 -> p1 at one eps, with the cost weights of ``settings``."""
+        return cls(view, eps, x0, y0, x1, y1, seq, t, math.hypot(x1 - x0, y1 - y0),
+                   1.0 / (2.0 * settings.sigma_m * settings.sigma_m), 1.0 / settings.beta_m,
+                   settings.turn_back_cost, 1.0 / settings.motion_m)
 
 
 def free_interval(

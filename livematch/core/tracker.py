@@ -212,11 +212,8 @@ class Tracker:
         gap = prev is not None and (dt > s.gap_s or chord > s.gap_m)
         salvage: list[tuple[Level, dict[int, Node]]] = []
         for level in self.levels:
-            ctx = StepContext(
-                self._view, level.eps, x0, y0, fix.x, fix.y, seq, fix.t, chord,
-                1.0 / (2.0 * s.sigma_m * s.sigma_m), 1.0 / s.beta_m, s.turn_back_cost,
-                1.0 / s.motion_m,
-            )
+            ctx = StepContext.between(self._view, s, level.eps, x0, y0, fix.x, fix.y, seq,
+                                      fix.t)
             new: dict[int, Node] = {}
             if level.live and not gap:
                 new = fast_sweep_step(level.live, ctx)
