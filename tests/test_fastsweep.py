@@ -25,7 +25,7 @@ from livematch.core.fastsweep import fast_sweep_step, sweep_arrays
 from livematch.core.geometry import Projection
 from livematch.core.network import RoadNetwork
 from livematch.core.settings import MatchSettings
-from livematch.core.sweep import Node, StepContext, bridge_step, fresh_start, sweep_step
+from livematch.core.sweep import Node, StepContext, advance, sweep_step
 from livematch.core.view import view_of
 from livematch.mapdata.netfile import open_network
 from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
@@ -68,16 +68,7 @@ def run_trace(network: RoadNetwork, points: list[tuple[float, float]], eps: floa
     for seq, (x, y) in enumerate(points, start=1):
         x0, y0 = prev if prev is not None else (x, y)
         ctx = StepContext.between(view, s, eps, x0, y0, x, y, seq, float(seq))
-        chord = ctx.chord
-        new: dict[int, Node] = {}
-        if live:
-            new = check_step(live, ctx)
-            if not new:
-                limit = min(s.bridge_speed_mps, s.detour_factor * chord + s.gap_m) + 2 * eps
-                new = bridge_step(network, live, ctx, limit)
-        if not new:
-            new = fresh_start(network, ctx)
-        live = new
+        live, _ = advance(network, live, ctx, s, 1.0, step=check_step)
         prev = (x, y)
         history.append(live)
     return history

@@ -39,7 +39,7 @@ from __future__ import annotations
 
 import heapq
 import math
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 
 from livematch.core.network import RoadNetwork
@@ -336,6 +336,38 @@ def bridge_step(
                 continue
             _offer(new, ctx, seg, lo, hi, nodes[r.source], tuple(via))
     return new
+
+
+def advance(
+    network: RoadNetwork, live: dict[int, Node], ctx: StepContext, settings: MatchSettings,
+    dt: float, *, gap: bool = False,
+    step: Callable[[dict[int, Node], StepContext], dict[int, Node]] = sweep_step,
+) -> tuple[dict[int, Node], str]:
+    """One level, one fix: sweep, else bridge, else start afresh.
+
+    Args:
+        network, live, ctx: the level's states at the previous fix and the step.
+        settings: bridging bounds (``bridge_speed_mps``, ``detour_factor``, ``gap_m``).
+        dt: seconds since the previous fix.
+        gap: the step is a gap: skip the sweep, bridge at once.
+        step: the sweep implementation (the compiled one in the tracker).
+
+    Returns:
+        The new states and how they were reached: ``"swept"`` (the Fréchet window goes
+        on), ``"bridged"`` (the candidate tree goes on, the window restarts) or
+        ``"fresh"`` (a new tree from the spatial index; empty when no road is near).
+    """
+    if live and not gap:
+        new = step(live, ctx)
+        if new:
+            return new, "swept"
+    if live:
+        limit = min(settings.bridge_speed_mps * dt,
+                    settings.detour_factor * ctx.chord + settings.gap_m) + 2.0 * ctx.eps
+        new = bridge_step(network, live, ctx, limit)
+        if new:
+            return new, "bridged"
+    return fresh_start(network, ctx), "fresh"
 
 
 def best_leaf(live: dict[int, Node], prefer: int = -1) -> Node:

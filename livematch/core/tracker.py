@@ -51,12 +51,11 @@ from livematch.core.settings import MatchSettings
 from livematch.core.sweep import (
     Node,
     StepContext,
+    advance,
     ancestor_at,
     best_leaf,
-    bridge_step,
     common_ancestor,
     descends_from,
-    fresh_start,
 )
 from livematch.core.view import NetworkView, view_of
 from livematch.errors import BadStateError
@@ -214,19 +213,13 @@ class Tracker:
         for level in self.levels:
             ctx = StepContext.between(self._view, s, level.eps, x0, y0, fix.x, fix.y, seq,
                                       fix.t)
-            new: dict[int, Node] = {}
-            if level.live and not gap:
-                new = fast_sweep_step(level.live, ctx)
-            if not new and level.live:
-                limit = min(s.bridge_speed_mps * dt, s.detour_factor * chord + s.gap_m)
-                limit += 2.0 * level.eps
-                new = bridge_step(self.network, level.live, ctx, limit)
-                if new:
-                    level.cert_seq, level.cert_t = seq, fix.t
-            if not new:
+            new, how = advance(self.network, level.live, ctx, s, dt, gap=gap,
+                               step=fast_sweep_step)
+            if how == "bridged":
+                level.cert_seq, level.cert_t = seq, fix.t
+            elif how == "fresh":
                 if level.live:
                     salvage.append((level, level.live))
-                new = fresh_start(self.network, ctx)
                 level.tree_seq = level.trim_seq = level.cert_seq = seq
                 level.cert_t = fix.t
             level.live = new
