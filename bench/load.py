@@ -1,25 +1,57 @@
-"""Benchmark: end-to-end load through a real broker, against the broker's own ceiling.
+"""Benchmark: end-to-end load through a real broker, stepped up to each system's ceiling.
 
-Run: ``.venv/bin/python bench/load.py [--vehicles 250,500,1000,2000] [--seconds 15]
-[--systems relay,livematch-1,livematch-2]``
+Run: ``.venv/bin/python bench/load.py [--rates 500,1000,2000,4000,8000,16000]
+[--seconds 10] [--systems direct,relay,livematch-1,livematch-2] [--generators 2]
+[--refine 2] [--half-repeats 3]``
 
-For every system and every fleet size N, on this machine and loopback only:
+For every system, the offered load is stepped up (each vehicle sends one fix per second,
+so N vehicles offer N fixes/s) until a step is not sustained, then the gap between the
+last sustained and the first failed step is bisected ``--refine`` times. Every step runs,
+on this machine and loopback only:
 
 - a fresh ``mosquitto`` on a free loopback port (and a fresh ``redis-server`` for the
   two-worker group);
-- a **load generator** in its own process publishing N vehicles at 1 Hz each (QoS 1),
-  positions from simulated drives on the invented demo town, each fix stamped with the
-  wall-clock time it is published;
-- the **system under test**: ``relay`` (a bare relay on the same MQTT client library:
-  subscribe, decode the JSON, publish it on an output topic; no matching — the ceiling),
+- the **system under test**: ``direct`` (none: the subscriber reads the input topic; the
+  ceiling of the harness itself: generator + broker + subscriber), ``relay`` (a bare relay
+  on the same MQTT client library as livematch, aiomqtt: subscribe, decode the JSON,
+  publish it on an output topic; no matching; the ceiling livematch is compared with),
   ``livematch-1`` (``livematch run``, memory store) or ``livematch-2`` (two
-  ``livematch run --group`` workers sharing the fleet through Redis shard leases);
-- a **subscriber** in this process timing every output against the fix time it carries.
+  ``livematch run --group`` workers sharing the fleet through Redis shard leases; each
+  worker receives the whole feed and drops the other's vehicles);
+- ``--generators`` **load generator** processes (paho-mqtt directly, QoS 1, up to 1,000
+  publishes in flight each, every fix due in a 5 ms tick published as one batch), vehicle
+  i in generator ``i % generators``, the N vehicles spread evenly over each second;
+  positions from a pool of simulated drives on the invented demo town (vehicle i drives
+  pool drive ``i % pool`` from second ``i // pool``); each fix stamped with the wall-clock
+  time it is handed to the client. Every generator reports what it achieved: fixes
+  published and acknowledged per second and how far it fell behind its schedule;
+- a **subscriber** in this process (paho-mqtt, QoS 1) that only stores (receive time,
+  payload); the payloads are decoded after the step.
 
-Reported per run: offered and delivered messages per second (outputs per fix: one
-assignment, or one relayed message), the share delivered, and the latency from fix time
-to output received, p50 / p99. "Sustained" = delivered at least 99 % of the fixes within
-the run plus 5 s. The two-worker rows matter only on a machine with spare cores.
+Before a step's clock starts the system is warmed up: 16 probe vehicles send fixes until
+each has had an answer (so the map is loaded, the worker group holds its shards, compiled
+code is loaded). Probe outputs are not counted.
+
+**Sustained** (all must hold):
+
+1. the generators published >= 99 % of the offered fixes within the step plus 1 s
+   (otherwise the step measures the generator, and it is marked ``generator-bound``);
+2. >= 99 % of the fixes' outputs reached the subscriber by the end of the step plus 5 s;
+3. latency is not growing: the median latency of the fixes sent in the last third of
+   the step exceeds that of the first third by at most 100 ms (a system short of the
+   offered rate by a few per cent builds a queue, and its latency grows by that fraction
+   of every second, about 70 ms over a 10 s step per 1 % short);
+4. p99 latency <= 1,000 ms.
+
+Reported per step: offered fixes/s, generator fixes/s and schedule lag, outputs received
+per second while the step ran, the share delivered, latency p50 / p99 (from fix time to
+output received; first and last third too), CPU seconds used by the system under test,
+the broker, the generators and the subscriber, the 1-minute load average before the step
+(/proc/loadavg, as ``uptime`` prints it). Then per system the maximum sustained rate, the
+ratios livematch-1 / relay and livematch-2 / livematch-1, and ``--half-repeats`` runs of
+livematch-1 at half of its maximum with their p50 / p99. Everything shares the machine's
+cores (and, here, other people's work): on 2 cores the two-worker group cannot be faster.
+Results: ``bench/results/load.md`` and ``load.json``.
 """
 
 from __future__ import annotations
@@ -31,16 +63,28 @@ import json
 import os
 import shutil
 import socket
+import statistics
 import subprocess
 import sys
 import tempfile
+import threading
 import time
 from pathlib import Path
 from typing import Any
 
 ROOT = Path(__file__).resolve().parent.parent
 NETWORK = ROOT / "replay_logs" / "larkmoor.geojson"
-IN_FLIGHT = 256  # QoS 1 publishes awaiting their PUBACK at once (generator and relay)
+IN_TOPIC = "fleet/+/position"
+RELAY_IN_FLIGHT = 256  # the relay's QoS 1 publishes awaiting their PUBACK at once
+GEN_IN_FLIGHT = 1000  # each generator's QoS 1 publishes awaiting their PUBACK at once
+GEN_TICK_S = 0.005  # a generator publishes every fix due in one batch per tick
+POOL_DRIVES = 200  # simulated drives shared by all vehicles
+POOL_SECONDS = 60  # vehicle i starts pool drive i % POOL_DRIVES at second i // POOL_DRIVES
+PROBES = 16  # warm-up vehicles
+GRACE_S = 5.0  # outputs arriving later than the step's end + this are missing
+MAX_P99_MS = 1000.0
+MAX_GROWTH_MS = 100.0
+CLK_TCK = os.sysconf("SC_CLK_TCK")
 
 
 def free_port() -> int:
@@ -81,9 +125,40 @@ def start_redis(folder: Path) -> tuple[subprocess.Popen[bytes], int]:
     return proc, port
 
 
-# ------------------------------------------------------------------ the generator role
-def drives(n: int, seconds: int) -> list[list[tuple[float, float]]]:
-    """Per vehicle, ``seconds`` WGS84 positions one second apart along the demo town."""
+def cpu_seconds(pid: int) -> float:
+    """User + system CPU time of a live process (0 when it is gone)."""
+    try:
+        fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    except OSError:
+        return 0.0
+    return (int(fields[11]) + int(fields[12])) / CLK_TCK
+
+
+def load_average() -> float:
+    """The 1-minute load average, as ``uptime`` prints it."""
+    return float(Path("/proc/loadavg").read_text().split()[0])
+
+
+def paho_client(name: str) -> Any:
+    import paho.mqtt.client as mqtt
+
+    return mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=f"{name}-{os.getpid()}",
+                       protocol=mqtt.MQTTv311)
+
+
+def connect(client: Any, port: int) -> None:
+    """Connect and run the network loop in a thread; return once connected."""
+    connected = threading.Event()
+    client.on_connect = lambda *_a: connected.set()
+    client.connect("127.0.0.1", port, keepalive=60)
+    client.loop_start()
+    if not connected.wait(10.0):
+        raise RuntimeError(f"could not connect to the broker on 127.0.0.1:{port}")
+
+
+# --------------------------------------------------------------- the drive pool
+def make_pool(path: Path) -> None:
+    """``POOL_DRIVES`` drives of ``POOL_SECONDS`` + 70 s on the demo town, lon/lat at 1 Hz."""
     import numpy as np
 
     from livematch.mapdata.netfile import open_network
@@ -91,53 +166,98 @@ def drives(n: int, seconds: int) -> list[list[tuple[float, float]]]:
 
     net = open_network(str(NETWORK))
     allowed = drivable_segments(net)
-    out = []
-    for i in range(n):
+    seconds = POOL_SECONDS + 70
+    lon = np.empty((POOL_DRIVES, seconds))
+    lat = np.empty((POOL_DRIVES, seconds))
+    for i in range(POOL_DRIVES):
         d = simulate_drive(net, np.random.default_rng([77, i]), f"v{i}", 0.0,
                            DriveSettings(duration_s=float(seconds)), allowed)
         xs = [p.x + e[0] for p, e in zip(d.truth, d.error_xy, strict=False)]
         ys = [p.y + e[1] for p, e in zip(d.truth, d.error_xy, strict=False)]
-        lon, lat = net.projection.to_lonlat(xs, ys)
-        out.append(list(zip(lon.tolist(), lat.tolist(), strict=True)))
-    return out
+        lo, la = net.projection.to_lonlat(xs, ys)
+        k = min(seconds, len(lo))
+        lon[i, :k], lat[i, :k] = lo[:k], la[:k]
+        lon[i, k:], lat[i, k:] = lo[k - 1], la[k - 1]
+    np.savez(path, lon=lon, lat=lat)
 
 
-async def generate(port: int, n: int, seconds: int, topic: str) -> None:
-    import aiomqtt
+def position(pool: Any, i: int, k: int) -> tuple[float, float]:
+    """Vehicle ``i``'s (lon, lat) at second ``k`` of the step."""
+    row, start = i % POOL_DRIVES, (i // POOL_DRIVES) % POOL_SECONDS
+    return float(pool["lon"][row, start + k]), float(pool["lat"][row, start + k])
 
-    tracks = drives(n, seconds + 1)
-    inflight = asyncio.Semaphore(IN_FLIGHT)
-    pending: set[asyncio.Task[None]] = set()
-    async with aiomqtt.Client("127.0.0.1", port, identifier=f"gen-{os.getpid()}",
-                              max_queued_outgoing_messages=0) as client:
-        start = time.time() + 0.5
-        for k in range(seconds):
-            for i in range(n):
-                # spread the N vehicles evenly over each second
-                at = start + k + i / n
-                delay = at - time.time()
-                if delay > 0:
-                    await asyncio.sleep(delay)
-                lon, lat = tracks[i][k]
-                payload = json.dumps({"vehicle": f"v{i}", "time": round(time.time(), 3),
-                                      "lat": lat, "lon": lon, "accuracy": 5.0})
-                await inflight.acquire()  # QoS 1: many in flight, not one round trip each
-                task = asyncio.create_task(
-                    client.publish(topic.replace("+", f"v{i}"), payload, qos=1))
-                task.add_done_callback(lambda _t: inflight.release())
-                pending.add(task)
-                task.add_done_callback(pending.discard)
-        await asyncio.gather(*pending)
+
+# ------------------------------------------------------------------ the generator role
+def generate(port: int, pool_path: str, n: int, seconds: int, first: int, step: int) -> None:
+    """Publish vehicles first, first + step, ... < n at 1 Hz; print what was achieved.
+
+    Protocol with the bench: prints ``ready`` once connected, reads ``go <epoch>`` (the
+    start of second 0), publishes, waits for the acknowledgements and prints one JSON line.
+    """
+    import numpy as np
+
+    pool = dict(np.load(pool_path))
+    mine = list(range(first, n, step))
+    plan = [(k + i / n, i, *position(pool, i, k)) for k in range(seconds) for i in mine]
+    acked = [0]
+
+    def on_publish(*_a: Any) -> None:
+        acked[0] += 1
+
+    client = paho_client("gen")
+    client.max_inflight_messages_set(GEN_IN_FLIGHT)
+    client.max_queued_messages_set(0)
+    client.on_publish = on_publish
+    connect(client, port)
+    print("ready", flush=True)
+    t0 = float(sys.stdin.readline().split()[1])
+    lags: list[float] = []
+    published = 0
+    first_at = last_at = 0.0
+    j = 0
+    while j < len(plan):
+        now = time.time()
+        due = plan[j][0] + t0
+        if due > now:  # sleep a whole tick at least: what falls due meanwhile is one batch
+            time.sleep(max(GEN_TICK_S, due - now))
+            continue
+        if not first_at:
+            first_at = now
+        while j < len(plan) and plan[j][0] + t0 <= now:  # one batch: everything due
+            offset, i, lon, lat = plan[j]
+            stamp = time.time()
+            client.publish(f"fleet/v{i}/position",
+                           f'{{"vehicle":"v{i}","time":{stamp:.3f},"lat":{lat:.7f},'
+                           f'"lon":{lon:.7f},"accuracy":5.0}}', qos=1)
+            lags.append(stamp - t0 - offset)
+            published += 1
+            j += 1
+        last_at = time.time()
+    end = time.time() + 30.0
+    while acked[0] < published and time.time() < end:
+        time.sleep(0.01)
+    acked_at = time.time()
+    client.loop_stop()
+    client.disconnect()
+    lags.sort()
+    print(json.dumps({
+        "published": published, "acked": acked[0], "first_at": first_at,
+        "last_at": last_at, "acked_at": acked_at,
+        "lag_p50_ms": round(lags[len(lags) // 2] * 1000, 1) if lags else None,
+        "lag_p99_ms": round(lags[int(0.99 * (len(lags) - 1))] * 1000, 1) if lags else None,
+        "lag_max_ms": round(lags[-1] * 1000, 1) if lags else None,
+    }), flush=True)
 
 
 # ------------------------------------------------------------------- the relay role
 async def relay(port: int, topic: str) -> None:
+    """Subscribe, decode, publish on ``relay/out/<vehicle>``: no matching (the ceiling)."""
     import aiomqtt
     import msgspec
 
     async with aiomqtt.Client("127.0.0.1", port, identifier=f"relay-{os.getpid()}") as client:
         await client.subscribe(topic, qos=1)
-        inflight = asyncio.Semaphore(IN_FLIGHT)
+        inflight = asyncio.Semaphore(RELAY_IN_FLIGHT)
         pending: set[asyncio.Task[None]] = set()
         async for message in client.messages:
             record = msgspec.json.decode(message.payload)  # the ceiling still decodes
@@ -149,7 +269,7 @@ async def relay(port: int, topic: str) -> None:
             task.add_done_callback(pending.discard)
 
 
-# --------------------------------------------------------------------------- one run
+# --------------------------------------------------------------------------- one step
 def daemon_config(folder: Path, port: int, store: str, worker: str, group: str) -> Path:
     cfg = folder / f"{worker}.toml"
     group_lines = f'[group]\nname = "{group}"\nworker = "{worker}"\nlease_s = 5\n' if group else ""
@@ -159,7 +279,7 @@ network = "{NETWORK}"
 
 [mqtt]
 url = "mqtt://127.0.0.1:{port}"
-topic = "fleet/+/position"
+topic = "{IN_TOPIC}"
 client_id = "load-{worker}"
 control_topic = ""
 
@@ -176,34 +296,74 @@ level = "warning"
     return cfg
 
 
-async def collect(port: int, topic: str, expected: int, deadline: float) -> list[float]:
-    import aiomqtt
+class Subscriber:
+    """Stores (receive time, payload) of every output; decodes nothing while running."""
 
-    latencies: list[float] = []
-    async with aiomqtt.Client("127.0.0.1", port, identifier=f"sub-{os.getpid()}") as client:
-        await client.subscribe(topic, qos=1)
-        with contextlib.suppress(TimeoutError):
-            async with asyncio.timeout(max(0.0, deadline - time.time())):
-                async for message in client.messages:
-                    now = time.time()
-                    record = json.loads(message.payload)
-                    latencies.append(now - float(record["time"]))
-                    if len(latencies) >= expected:
-                        break
-    return latencies
+    def __init__(self, port: int, topic: str) -> None:
+        self.got: list[tuple[float, bytes]] = []
+        self.client = paho_client("sub")
+        self.client.on_message = lambda _c, _u, m: self.got.append((time.time(), m.payload))
+        self.subscribed = threading.Event()
+        self.client.on_subscribe = lambda *_a: self.subscribed.set()
+        connect(self.client, port)
+        self.client.subscribe(topic, qos=1)
+        if not self.subscribed.wait(10.0):
+            raise RuntimeError(f"subscription to {topic!r} not acknowledged")
+
+    def close(self) -> None:
+        self.client.loop_stop()
+        self.client.disconnect()
 
 
-def run_one(system: str, n: int, seconds: int) -> dict[str, Any]:
+def warm_up(sub: Subscriber, pool: Any, timeout: float = 60.0) -> float:
+    """Send probe fixes until every probe vehicle has had an output; seconds it took."""
+    started = time.time()
+    answered: set[str] = set()
+    k = 0
+    while len(answered) < PROBES:
+        if time.time() - started > timeout:
+            raise RuntimeError(f"system not answering: {len(answered)}/{PROBES} probes")
+        for p in range(PROBES):
+            lon, lat = position(pool, POOL_DRIVES - 1 - p, k % 60)
+            sub.client.publish(f"fleet/probe{p}/position", json.dumps(
+                {"vehicle": f"probe{p}", "time": round(time.time(), 3), "lat": lat,
+                 "lon": lon, "accuracy": 5.0}), qos=1)
+        k += 1
+        time.sleep(0.5)
+        for _at, payload in list(sub.got):
+            vehicle = json.loads(payload).get("vehicle", "")
+            if vehicle.startswith("probe"):
+                answered.add(vehicle)
+    time.sleep(1.0)  # let the last probes' outputs arrive
+    return time.time() - started
+
+
+def percentile(values: list[float], q: float) -> float | None:
+    return round(values[int(q * (len(values) - 1))] * 1000, 1) if values else None
+
+
+def run_step(system: str, rate: int, seconds: int, generators: int,
+             pool_path: Path) -> dict[str, Any]:
+    """One step: ``rate`` vehicles at 1 Hz for ``seconds`` through ``system``."""
+    import numpy as np
+
+    pool = dict(np.load(pool_path))
     folder = Path(tempfile.mkdtemp(prefix="lm-load-"))
     procs: list[subprocess.Popen[bytes]] = []
+    sut: list[subprocess.Popen[bytes]] = []
+    gens: list[subprocess.Popen[bytes]] = []
+    sub: Subscriber | None = None
+    loadavg = load_average()
     try:
         broker, port = start_mosquitto(folder)
         procs.append(broker)
         env = dict(os.environ)
-        if system == "relay":
+        if system == "direct":
+            out_topic = IN_TOPIC
+        elif system == "relay":
             out_topic = "relay/out/#"
-            procs.append(subprocess.Popen([sys.executable, __file__, "--role", "relay",
-                                           "--port", str(port)], env=env))
+            sut.append(subprocess.Popen([sys.executable, __file__, "--role", "relay",
+                                         "--port", str(port)], env=env))
         else:
             out_topic = "livematch/match/#"
             workers = 2 if system == "livematch-2" else 1
@@ -214,81 +374,295 @@ def run_one(system: str, n: int, seconds: int) -> dict[str, Any]:
                 store, group = f"redis://127.0.0.1:{rport}/0", "load"
             for w in range(workers):
                 cfg = daemon_config(folder, port, store, f"w{w}", group)
-                procs.append(subprocess.Popen([sys.executable, "-m", "livematch.cli", "run",
-                                               "--config", str(cfg)], env=env))
-        time.sleep(4.0 if system != "relay" else 1.0)  # map load, leases
-        expected = n * seconds
-        deadline = time.time() + seconds + 8.0
-        gen = subprocess.Popen([sys.executable, __file__, "--role", "generator", "--port",
-                                str(port), "--n", str(n), "--seconds", str(seconds)], env=env)
-        procs.append(gen)
-        latencies = asyncio.run(collect(port, out_topic, expected, deadline))
-        gen.wait(timeout=30)
+                sut.append(subprocess.Popen([sys.executable, "-m", "livematch.cli", "run",
+                                             "--config", str(cfg)], env=env))
+        procs.extend(sut)
+        sub = Subscriber(port, out_topic)
+        warm_s = warm_up(sub, pool) if sut else 0.0
+        for g in range(generators):
+            gens.append(subprocess.Popen(
+                [sys.executable, __file__, "--role", "generator", "--port", str(port),
+                 "--pool", str(pool_path), "--n", str(rate), "--seconds", str(seconds),
+                 "--first", str(g), "--step", str(generators)],
+                env=env, stdin=subprocess.PIPE, stdout=subprocess.PIPE))
+        procs.extend(gens)
+        for gen in gens:
+            assert gen.stdout is not None
+            if gen.stdout.readline().strip() != b"ready":
+                raise RuntimeError("a generator did not start")
+        sub.got.clear()
+        cpu0 = {p.pid: cpu_seconds(p.pid) for p in procs}
+        self0 = time.process_time()
+        t0 = time.time() + 0.3
+        for gen in gens:
+            assert gen.stdin is not None
+            gen.stdin.write(f"go {t0}\n".encode())
+            gen.stdin.flush()
+        expected = rate * seconds
+        deadline = t0 + seconds + GRACE_S
+        while time.time() < deadline and len(sub.got) < expected:
+            time.sleep(0.05)
+        cpu = {p.pid: cpu_seconds(p.pid) - cpu0[p.pid] for p in procs}
+        self_cpu = time.process_time() - self0
+        reports = []
+        for gen in gens:
+            out, _ = gen.communicate(timeout=60)
+            reports.append(json.loads(out.decode().strip().splitlines()[-1]))
+        got = list(sub.got)
     finally:
+        if sub is not None:
+            with contextlib.suppress(Exception):
+                sub.close()
         for p in reversed(procs):
             p.terminate()
         for p in procs:
             with contextlib.suppress(subprocess.TimeoutExpired):
                 p.wait(timeout=15)
         shutil.rmtree(folder, ignore_errors=True)
-    latencies.sort()
 
-    def pct(q: float) -> float | None:
-        return round(latencies[int(q * (len(latencies) - 1))] * 1000, 1) if latencies else None
+    third = seconds / 3.0
+    lat_all: list[float] = []
+    lat_first: list[float] = []
+    lat_last: list[float] = []
+    in_run = 0
+    seen: set[tuple[str, float]] = set()
+    for at, payload in got:
+        record = json.loads(payload)
+        vehicle = str(record.get("vehicle", ""))
+        if not vehicle.startswith("v"):
+            continue
+        fix_t = float(record["time"])
+        if (vehicle, fix_t) in seen:
+            continue  # a redelivered output counts once
+        seen.add((vehicle, fix_t))
+        latency = at - fix_t
+        lat_all.append(latency)
+        if fix_t < t0 + third:
+            lat_first.append(latency)
+        elif fix_t >= t0 + 2 * third:
+            lat_last.append(latency)
+        if at <= t0 + seconds:
+            in_run += 1
+    for values in (lat_all, lat_first, lat_last):
+        values.sort()
+    published = sum(r["published"] for r in reports)
+    gen_span = max(r["last_at"] for r in reports) - t0
+    gen_ok = published >= 0.99 * expected and gen_span <= seconds + 1.0
+    share = len(lat_all) / expected if expected else 0.0
+    p50_first, p50_last = percentile(lat_first, 0.5), percentile(lat_last, 0.5)
+    growth = (p50_last - p50_first) if p50_first is not None and p50_last is not None else None
+    p99 = percentile(lat_all, 0.99)
+    sustained = (gen_ok and share >= 0.99 and growth is not None
+                 and growth <= MAX_GROWTH_MS and p99 is not None and p99 <= MAX_P99_MS)
+    broker_pid, sut_pids = procs[0].pid, {p.pid for p in sut}
+    gen_pids = {p.pid for p in gens}
+    return {
+        "system": system, "offered_per_s": rate, "seconds": seconds,
+        "generators": generators, "loadavg_1m": loadavg, "warm_up_s": round(warm_s, 1),
+        "generator_published": published,
+        "generator_per_s": round(published / max(gen_span, 1e-9) if published else 0.0, 1),
+        "generator_acked": sum(r["acked"] for r in reports),
+        "generator_lag_p99_ms": max(r["lag_p99_ms"] or 0.0 for r in reports),
+        "generator_lag_max_ms": max(r["lag_max_ms"] or 0.0 for r in reports),
+        "generator_ok": gen_ok,
+        "received_in_run_per_s": round(in_run / seconds, 1),
+        "delivered": len(lat_all), "delivered_share": round(share, 4),
+        "p50_ms": percentile(lat_all, 0.5), "p99_ms": p99,
+        "p50_first_third_ms": p50_first, "p50_last_third_ms": p50_last,
+        "p99_first_third_ms": percentile(lat_first, 0.99),
+        "p99_last_third_ms": percentile(lat_last, 0.99),
+        "growth_ms": round(growth, 1) if growth is not None else None,
+        "cpu_s": {"system": round(sum(cpu[p] for p in sut_pids), 2),
+                  "broker": round(cpu[broker_pid], 2),
+                  "generators": round(sum(cpu[p] for p in gen_pids), 2),
+                  "subscriber": round(self_cpu, 2)},
+        "sustained": sustained,
+        "verdict": ("sustained" if sustained else
+                    "generator-bound" if not gen_ok else "not sustained"),
+    }
 
-    share = len(latencies) / expected if expected else 0.0
-    return {"system": system, "vehicles": n, "offered_per_s": n,
-            "delivered_per_s": round(len(latencies) / seconds, 1),
-            "delivered_share": round(share, 4), "p50_ms": pct(0.5), "p99_ms": pct(0.99),
-            "sustained": share >= 0.99}
+
+# ------------------------------------------------------------------------ the search
+def ceiling(system: str, rates: list[int], refine: int, seconds: int, generators: int,
+            pool: Path, rows: list[dict[str, Any]]) -> dict[str, Any]:
+    """Step ``rates`` up until a step fails, then bisect ``refine`` times."""
+    best: int | None = None
+    failed: int | None = None
+    bound = False
+
+    def step(rate: int) -> bool:
+        nonlocal bound
+        row = run_step(system, rate, seconds, generators, pool)
+        print(json.dumps(row), flush=True)
+        rows.append(row)
+        bound = bound or row["verdict"] == "generator-bound"
+        return bool(row["sustained"])
+
+    for rate in rates:
+        if step(rate):
+            best = rate
+        else:
+            failed = rate
+            break
+    for _ in range(refine):
+        if best is None or failed is None or bound:
+            break
+        mid = int(round((best + failed) / 2 / 50.0) * 50)
+        if mid in (best, failed):
+            break
+        if step(mid):
+            best = mid
+        else:
+            failed = mid
+    return {"system": system, "max_sustained_per_s": best, "first_failed_per_s": failed,
+            "generator_bound": bound}
+
+
+def git_state() -> dict[str, str]:
+    def git(*args: str) -> str:
+        return subprocess.run(["git", *args], cwd=ROOT, capture_output=True, text=True,
+                              check=False).stdout.strip()
+
+    return {"commit": git("rev-parse", "--short", "HEAD"),
+            "livematch_uncommitted": git("status", "--porcelain", "--", "livematch")}
+
+
+def fmt(value: Any) -> str:
+    return "—" if value is None else str(value)
+
+
+def report(args: argparse.Namespace, rows: list[dict[str, Any]],
+           ceilings: list[dict[str, Any]], half: list[dict[str, Any]],
+           git: dict[str, str], started: str) -> str:
+    by = {c["system"]: c["max_sustained_per_s"] for c in ceilings}
+
+    def ratio(a: str, b: str) -> str:
+        return (f"{by[a] / by[b]:.2f}" if by.get(a) and by.get(b) else "—")
+
+    cmd = (f"bench/load.py --rates {args.rates} --seconds {args.seconds} --systems "
+           f"{args.systems} --generators {args.generators} --refine {args.refine} "
+           f"--half-repeats {args.half_repeats}")
+    lines = [
+        "# End-to-end load through mosquitto on loopback",
+        "",
+        f"Command: `.venv/bin/python {cmd}`, started {started} UTC, livematch at commit "
+        f"{git['commit']}" + (" with uncommitted changes under livematch/ (others' work "
+                              "in progress)" if git["livematch_uncommitted"] else "") + ".",
+        "",
+        f"Machine: {os.cpu_count()} cores, shared by the broker, the generators, the "
+        "subscriber and the system under test (and by other people's work: the 1-minute "
+        "load average before each step is in the table). Each vehicle sends one fix per "
+        "second (QoS 1); latency is from the fix's own time (stamped when it is handed to "
+        "the MQTT client) to its output arriving at the subscriber. Sustained = generator "
+        f"kept its schedule, >= 99 % delivered by the end + {GRACE_S:g} s, median latency of "
+        f"the last third of the step at most {MAX_GROWTH_MS:g} ms above the first third's, "
+        f"p99 <= {MAX_P99_MS:g} ms.",
+        "",
+        "## Ceilings",
+        "",
+        "| system | max sustained fixes/s | first failed | note |",
+        "|---|---:|---:|---|",
+    ]
+    for c in ceilings:
+        note = "generator-bound: the harness, not the system, stopped the search" \
+            if c["generator_bound"] else ""
+        lines.append(f"| {c['system']} | {fmt(c['max_sustained_per_s'])} | "
+                     f"{fmt(c['first_failed_per_s'])} | {note} |")
+    lines += [
+        "",
+        f"livematch-1 / relay: {ratio('livematch-1', 'relay')} (goal >= 0.80); "
+        f"livematch-2 / livematch-1: {ratio('livematch-2', 'livematch-1')} (goal >= 1.6, "
+        "not reachable when both workers share 2 cores with everything else).",
+        "",
+    ]
+    if half:
+        lines += [f"## livematch-1 at half of its maximum ({half[0]['offered_per_s']} fixes/s)",
+                  "", "| run | load avg | delivered | p50 ms | p99 ms | growth ms | sustained |",
+                  "|---:|---:|---:|---:|---:|---:|---|"]
+        for k, r in enumerate(half, 1):
+            lines.append(f"| {k} | {r['loadavg_1m']} | {r['delivered_share']:.1%} | "
+                         f"{fmt(r['p50_ms'])} | {fmt(r['p99_ms'])} | {fmt(r['growth_ms'])} | "
+                         f"{'yes' if r['sustained'] else 'no'} |")
+        p50s = [r["p50_ms"] for r in half if r["p50_ms"] is not None]
+        p99s = [r["p99_ms"] for r in half if r["p99_ms"] is not None]
+        if p50s and p99s:
+            lines += ["", f"Median of the runs: p50 {statistics.median(p50s)} ms, p99 "
+                          f"{statistics.median(p99s)} ms (goal p99 <= 100 ms)."]
+        lines.append("")
+    lines += [
+        "## Every step",
+        "",
+        "| system | offered/s | load avg | generator/s (lag p99 ms) | received/s in step | "
+        "delivered | p50 ms | p99 ms | p50 first / last third ms | CPU s: system / broker "
+        "/ generators / subscriber | verdict |",
+        "|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---|",
+    ]
+    for r in rows:
+        c = r["cpu_s"]
+        lines.append(
+            f"| {r['system']} | {r['offered_per_s']} | {r['loadavg_1m']} | "
+            f"{r['generator_per_s']} ({r['generator_lag_p99_ms']}) | "
+            f"{r['received_in_run_per_s']} | {r['delivered_share']:.1%} | {fmt(r['p50_ms'])} | "
+            f"{fmt(r['p99_ms'])} | {fmt(r['p50_first_third_ms'])} / "
+            f"{fmt(r['p50_last_third_ms'])} | {c['system']} / {c['broker']} / "
+            f"{c['generators']} / {c['subscriber']} | {r['verdict']} |")
+    return "\n".join(lines) + "\n"
 
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--role", choices=("bench", "generator", "relay"), default="bench")
     ap.add_argument("--port", type=int, default=0)
+    ap.add_argument("--pool", default="")
     ap.add_argument("--n", type=int, default=0)
-    ap.add_argument("--vehicles", default="250,500,1000,2000")
-    ap.add_argument("--seconds", type=int, default=15)
-    ap.add_argument("--systems", default="relay,livematch-1,livematch-2")
+    ap.add_argument("--first", type=int, default=0)
+    ap.add_argument("--step", type=int, default=1)
+    ap.add_argument("--rates", default="500,1000,2000,4000,8000,16000",
+                    help="offered fixes/s to step through (= vehicles at 1 Hz)")
+    ap.add_argument("--seconds", type=int, default=10, help="length of each step")
+    ap.add_argument("--systems", default="direct,relay,livematch-1,livematch-2")
+    ap.add_argument("--generators", type=int, default=2, help="generator processes")
+    ap.add_argument("--refine", type=int, default=2,
+                    help="bisections between the last sustained and the first failed step")
+    ap.add_argument("--half-repeats", type=int, default=3,
+                    help="runs of livematch-1 at half of its maximum")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     args = ap.parse_args(argv)
     if args.role == "generator":
-        asyncio.run(generate(args.port, args.n, args.seconds, "fleet/+/position"))
+        generate(args.port, args.pool, args.n, args.seconds, args.first, args.step)
         return 0
     if args.role == "relay":
         with contextlib.suppress(KeyboardInterrupt):
-            asyncio.run(relay(args.port, "fleet/+/position"))
+            asyncio.run(relay(args.port, IN_TOPIC))
         return 0
-    rows = []
-    for system in args.systems.split(","):
-        for n in (int(v) for v in args.vehicles.split(",")):
-            row = run_one(system, n, args.seconds)
-            print(json.dumps(row), flush=True)
-            rows.append(row)
-    lines = [
-        "# End-to-end load through mosquitto on loopback",
-        "",
-        f"Command: `bench/load.py --vehicles {args.vehicles} --seconds {args.seconds} "
-        f"--systems {args.systems}`; {os.cpu_count()} cores shared by the broker, the "
-        "generator, the subscriber and the system under test. Each vehicle sends one fix "
-        "per second (QoS 1); latency is from the fix's own time to its output arriving at "
-        "the subscriber.",
-        "",
-        "| system | vehicles (fixes/s offered) | delivered/s | delivered | p50 ms | p99 ms "
-        "| sustained |",
-        "|---|---:|---:|---:|---:|---:|---|",
-    ]
-    for r in rows:
-        lines.append(f"| {r['system']} | {r['vehicles']} | {r['delivered_per_s']} | "
-                     f"{r['delivered_share']:.1%} | {r['p50_ms']} | {r['p99_ms']} | "
-                     f"{'yes' if r['sustained'] else 'no'} |")
-    text = "\n".join(lines) + "\n"
+    started = time.strftime("%Y-%m-%d %H:%M", time.gmtime())
+    git = git_state()
+    rates = [int(v) for v in args.rates.split(",")]
+    rows: list[dict[str, Any]] = []
+    ceilings: list[dict[str, Any]] = []
+    half: list[dict[str, Any]] = []
+    with tempfile.TemporaryDirectory(prefix="lm-pool-") as tmp:
+        pool = Path(tmp) / "pool.npz"
+        make_pool(pool)
+        for system in args.systems.split(","):
+            ceilings.append(ceiling(system, rates, args.refine, args.seconds,
+                                    args.generators, pool, rows))
+        top = next((c["max_sustained_per_s"] for c in ceilings
+                    if c["system"] == "livematch-1"), None)
+        if top:
+            for _ in range(args.half_repeats):
+                row = run_step("livematch-1", top // 2, args.seconds, args.generators, pool)
+                print(json.dumps(row), flush=True)
+                half.append(row)
+    text = report(args, rows, ceilings, half, git, started)
     print(text)
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
     (out / "load.md").write_text(text, encoding="utf-8")
-    (out / "load.json").write_text(json.dumps(rows, indent=1), encoding="utf-8")
+    (out / "load.json").write_text(json.dumps(
+        {"command": sys.argv, "started_utc": started, "cpu_count": os.cpu_count(),
+         "git": git, "ceilings": ceilings, "half_load": half, "steps": rows}, indent=1),
+        encoding="utf-8")
     return 0
 
 
