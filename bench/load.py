@@ -29,8 +29,9 @@ on this machine and loopback only:
   payload); the payloads are decoded after the step.
 
 Before a step's clock starts the system is warmed up: 16 probe vehicles send fixes until
-each has had an answer (so the map is loaded, the worker group holds its shards, compiled
-code is loaded). Probe outputs are not counted.
+each has had 3 answers (so the map is loaded, the worker group holds its shards, the
+compiled sweep kernel is loaded: its first call in a process takes most of a second).
+Probe outputs are not counted.
 
 **Sustained** (all must hold):
 
@@ -81,6 +82,7 @@ GEN_TICK_S = 0.005  # a generator publishes every fix due in one batch per tick
 POOL_DRIVES = 200  # simulated drives shared by all vehicles
 POOL_SECONDS = 60  # vehicle i starts pool drive i % POOL_DRIVES at second i // POOL_DRIVES
 PROBES = 16  # warm-up vehicles
+WARM_FIXES = 3  # outputs each warm-up vehicle must have had
 GRACE_S = 5.0  # outputs arriving later than the step's end + this are missing
 MAX_P99_MS = 1000.0
 MAX_GROWTH_MS = 100.0
@@ -269,6 +271,94 @@ async def relay(port: int, topic: str) -> None:
             task.add_done_callback(pending.discard)
 
 
+# ---------------------------------------------------------------- the probe role
+def probe(argv: list[str], out_path: str, nodelay: bool, freeze: bool) -> int:
+    """Run ``livematch <argv>`` with timing probes; write them to ``out_path`` at exit.
+
+    Nothing in livematch is changed: the probes wrap public methods from outside.
+    Recorded (epoch s, milliseconds): every garbage collection (generation, pause,
+    objects collected), every ``Pipeline.handle``, ``Pipeline.export_vehicle`` (one per
+    vehicle checkpointed) and ``Pipeline.tick`` call, and every stall of the event loop
+    longer than 20 ms (a 10 ms heartbeat that woke late). ``nodelay`` sets TCP_NODELAY on
+    the MQTT socket (off in paho-mqtt: a small write waits for the previous one's ACK).
+    ``freeze`` calls ``gc.freeze()`` once the event loop runs (the map and every module
+    loaded), so full collections no longer walk those objects.
+    """
+    import atexit
+    import gc
+    import socket as socket_module
+
+    from livematch.cli import main as livematch_main
+    from livematch.pipeline import Pipeline
+
+    rec: dict[str, list[Any]] = {"gc": [], "handle": [], "export": [], "tick": [],
+                                 "stall": []}
+    gc_started = [0.0]
+
+    def on_gc(phase: str, info: dict[str, int]) -> None:
+        if phase == "start":
+            gc_started[0] = time.perf_counter()
+        else:
+            rec["gc"].append((time.time(), info["generation"],
+                              (time.perf_counter() - gc_started[0]) * 1000,
+                              info["collected"]))
+
+    gc.callbacks.append(on_gc)
+
+    def timed(name: str, fn: Any) -> Any:
+        def wrapper(*args: Any, **kwargs: Any) -> Any:
+            started = time.perf_counter()
+            try:
+                return fn(*args, **kwargs)
+            finally:
+                rec[name].append((time.time(), (time.perf_counter() - started) * 1000))
+        return wrapper
+
+    Pipeline.handle = timed("handle", Pipeline.handle)  # type: ignore[method-assign]
+    Pipeline.export_vehicle = timed(  # type: ignore[method-assign]
+        "export", Pipeline.export_vehicle)
+    Pipeline.tick = timed("tick", Pipeline.tick)  # type: ignore[method-assign]
+    if nodelay:
+        plain = socket_module.create_connection
+
+        def create_connection(*args: Any, **kwargs: Any) -> socket_module.socket:
+            sock = plain(*args, **kwargs)
+            sock.setsockopt(socket_module.IPPROTO_TCP, socket_module.TCP_NODELAY, 1)
+            return sock
+
+        socket_module.create_connection = create_connection  # type: ignore[assignment]
+    plain_run = asyncio.run
+
+    async def heartbeat() -> None:
+        if freeze:
+            gc.collect()
+            gc.freeze()
+        while True:
+            before = time.perf_counter()
+            await asyncio.sleep(0.01)
+            late = (time.perf_counter() - before - 0.01) * 1000
+            if late > 20:
+                rec["stall"].append((time.time(), late))
+
+    def run(main: Any, **kwargs: Any) -> Any:
+        async def both() -> Any:
+            beat = asyncio.create_task(heartbeat())
+            try:
+                return await main
+            finally:
+                beat.cancel()
+        return plain_run(both(), **kwargs)
+
+    asyncio.run = run  # type: ignore[assignment]
+
+    def dump() -> None:
+        rec["objects_at_exit"] = [len(gc.get_objects()), gc.get_freeze_count()]
+        Path(out_path).write_text(json.dumps(rec), encoding="utf-8")
+
+    atexit.register(dump)
+    return livematch_main(argv)
+
+
 # --------------------------------------------------------------------------- one step
 def daemon_config(folder: Path, port: int, store: str, worker: str, group: str) -> Path:
     cfg = folder / f"{worker}.toml"
@@ -316,11 +406,15 @@ class Subscriber:
 
 
 def warm_up(sub: Subscriber, pool: Any, timeout: float = 60.0) -> float:
-    """Send probe fixes until every probe vehicle has had an output; seconds it took."""
+    """Send probe fixes until every probe vehicle has had 3 outputs; seconds it took.
+
+    Three, not one: a vehicle's first fix is answered without a sweep step, and the first
+    sweep step of a process loads the compiled kernel (most of a second).
+    """
     started = time.time()
-    answered: set[str] = set()
+    answered: dict[str, int] = {}
     k = 0
-    while len(answered) < PROBES:
+    while len(answered) < PROBES or min(answered.values()) < WARM_FIXES:
         if time.time() - started > timeout:
             raise RuntimeError(f"system not answering: {len(answered)}/{PROBES} probes")
         for p in range(PROBES):
@@ -330,10 +424,11 @@ def warm_up(sub: Subscriber, pool: Any, timeout: float = 60.0) -> float:
                  "lon": lon, "accuracy": 5.0}), qos=1)
         k += 1
         time.sleep(0.5)
+        answered.clear()
         for _at, payload in list(sub.got):
             vehicle = json.loads(payload).get("vehicle", "")
             if vehicle.startswith("probe"):
-                answered.add(vehicle)
+                answered[vehicle] = answered.get(vehicle, 0) + 1
     time.sleep(1.0)  # let the last probes' outputs arrive
     return time.time() - started
 
@@ -342,9 +437,15 @@ def percentile(values: list[float], q: float) -> float | None:
     return round(values[int(q * (len(values) - 1))] * 1000, 1) if values else None
 
 
-def run_step(system: str, rate: int, seconds: int, generators: int,
-             pool_path: Path) -> dict[str, Any]:
-    """One step: ``rate`` vehicles at 1 Hz for ``seconds`` through ``system``."""
+def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: Path,
+             probe_to: Path | None = None, nodelay: bool = False, freeze: bool = False,
+             py_spy: bool = False) -> dict[str, Any]:
+    """One step: ``rate`` vehicles at 1 Hz for ``seconds`` through ``system``.
+
+    With ``probe_to`` (livematch-1 only) the daemon runs under :func:`probe` (and with
+    ``py_spy`` is sampled by py-spy while the step runs); the probe records, py-spy's
+    collapsed stacks and every fix's (fix time, latency) land in that folder.
+    """
     import numpy as np
 
     pool = dict(np.load(pool_path))
@@ -374,8 +475,12 @@ def run_step(system: str, rate: int, seconds: int, generators: int,
                 store, group = f"redis://127.0.0.1:{rport}/0", "load"
             for w in range(workers):
                 cfg = daemon_config(folder, port, store, f"w{w}", group)
-                sut.append(subprocess.Popen([sys.executable, "-m", "livematch.cli", "run",
-                                             "--config", str(cfg)], env=env))
+                cmd = [sys.executable, "-m", "livematch.cli"]
+                if probe_to is not None:
+                    cmd = [sys.executable, __file__, "--role", "probe", "--probe-out",
+                           str(probe_to / "probe.json")] + (["--nodelay"] if nodelay else []) \
+                        + (["--freeze"] if freeze else [])
+                sut.append(subprocess.Popen([*cmd, "run", "--config", str(cfg)], env=env))
         procs.extend(sut)
         sub = Subscriber(port, out_topic)
         warm_s = warm_up(sub, pool) if sut else 0.0
@@ -391,6 +496,13 @@ def run_step(system: str, rate: int, seconds: int, generators: int,
             if gen.stdout.readline().strip() != b"ready":
                 raise RuntimeError("a generator did not start")
         sub.got.clear()
+        spy = None
+        if py_spy and probe_to is not None:
+            spy = subprocess.Popen([str(Path(sys.executable).parent / "py-spy"), "record",
+                                    "--pid", str(sut[0].pid), "--rate", "200", "--format",
+                                    "raw", "--duration", str(seconds + 1), "--output",
+                                    str(probe_to / "py-spy.txt")],
+                                   stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
         cpu0 = {p.pid: cpu_seconds(p.pid) for p in procs}
         self0 = time.process_time()
         t0 = time.time() + 0.3
@@ -409,6 +521,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int,
             out, _ = gen.communicate(timeout=60)
             reports.append(json.loads(out.decode().strip().splitlines()[-1]))
         got = list(sub.got)
+        if spy is not None:
+            spy.wait(timeout=60)
     finally:
         if sub is not None:
             with contextlib.suppress(Exception):
@@ -443,6 +557,11 @@ def run_step(system: str, rate: int, seconds: int, generators: int,
             lat_last.append(latency)
         if at <= t0 + seconds:
             in_run += 1
+    if probe_to is not None:
+        (probe_to / "fixes.json").write_text(json.dumps(
+            {"t0": t0, "fixes": [(json.loads(p)["time"], at) for at, p in got
+                                 if str(json.loads(p).get("vehicle", "")).startswith("v")]}),
+            encoding="utf-8")
     for values in (lat_all, lat_first, lat_last):
         values.sort()
     published = sum(r["published"] for r in reports)
@@ -516,6 +635,142 @@ def ceiling(system: str, rates: list[int], refine: int, seconds: int, generators
             failed = mid
     return {"system": system, "max_sustained_per_s": best, "first_failed_per_s": failed,
             "generator_bound": bound}
+
+
+# ---------------------------------------------------------------- the profile mode
+def _spans(rows: list[tuple[float, float]], gap_ms: float) -> list[tuple[float, float, int]]:
+    """Calls closer than ``gap_ms`` merged: (start epoch s, summed ms, calls)."""
+    out: list[tuple[float, float, int]] = []
+    for at, ms in sorted(rows):
+        start = at - ms / 1000
+        if out and start - out[-1][0] - out[-1][1] / 1000 <= gap_ms / 1000:
+            s0, total, n = out[-1]
+            out[-1] = (s0, total + ms, n + 1)
+        else:
+            out.append((start, ms, 1))
+    return out
+
+
+def _stack_table(path: Path, top: int) -> dict[str, list[tuple[str, float]]]:
+    """py-spy collapsed stacks: the functions with most samples, self and inclusive."""
+    own: dict[str, int] = {}
+    incl: dict[str, int] = {}
+    total = 0
+    for line in path.read_text(encoding="utf-8").splitlines():
+        stack, _, count = line.rpartition(" ")
+        if not stack:
+            continue
+        n = int(count)
+        total += n
+        frames = [f.split(" (")[0] + " (" + f.split(" (")[-1].split(":")[0].split("/")[-1]
+                  + ")" if " (" in f else f for f in stack.split(";")[1:]]
+        if frames:
+            own[frames[-1]] = own.get(frames[-1], 0) + n
+        for f in set(frames):
+            incl[f] = incl.get(f, 0) + n
+
+    def share(d: dict[str, int]) -> list[tuple[str, float]]:
+        return [(k, round(v / total, 3)) for k, v in sorted(d.items(), key=lambda kv: -kv[1])
+                [:top]]
+    return {"samples": [("all", float(total))], "self": share(own), "inclusive": share(incl)}
+
+
+def profile(rate: int, seconds: int, generators: int, nodelay: bool, freeze: bool,
+            py_spy: bool, out: Path, name: str) -> dict[str, Any]:
+    """One livematch-1 step under the probes (and py-spy): where the time and p99 go."""
+    with tempfile.TemporaryDirectory(prefix="lm-profile-") as tmp:
+        folder = Path(tmp)
+        pool = folder / "pool.npz"
+        make_pool(pool)
+        row = run_step("livematch-1", rate, seconds, generators, pool, probe_to=folder,
+                       nodelay=nodelay, freeze=freeze, py_spy=py_spy)
+        rec = json.loads((folder / "probe.json").read_text(encoding="utf-8"))
+        fixes = json.loads((folder / "fixes.json").read_text(encoding="utf-8"))
+        stacks = (_stack_table(folder / "py-spy.txt", 25)
+                  if (folder / "py-spy.txt").exists() else None)
+    t0 = fixes["t0"]
+    lo, hi = t0, t0 + seconds + GRACE_S
+
+    def within(rows: list[list[float]]) -> list[list[float]]:
+        return [r for r in rows if lo <= r[0] <= hi]
+
+    handle = sorted(r[1] for r in within(rec["handle"]))
+    exports = [(r[0], r[1]) for r in within(rec["export"])]
+    bursts = _spans(exports, 5.0)
+    gcs = within(rec["gc"])
+    stalls = sorted(within(rec["stall"]), key=lambda r: -r[1])
+    slow = [(ft, at - ft) for ft, at in fixes["fixes"] if at - ft >= 0.1]
+    window = [(r[0] - r[1] / 1000, r[0]) for r in stalls]
+
+    def during(t: float, rows: list[tuple[float, float]]) -> bool:
+        return any(a <= t <= b for a, b in rows)
+
+    slow_in_stall = sum(1 for ft, lat in slow
+                        if any(ft <= b and ft + lat >= a for a, b in window))
+
+    def overlaps(a: float, b: float) -> dict[str, Any]:
+        return {"gc_ms": round(sum(g[2] for g in gcs if a <= g[0] <= b + 0.001), 1),
+                "gc_gen2": sum(1 for g in gcs if g[1] == 2 and a <= g[0] <= b + 0.001),
+                "export_ms": round(sum(ms for at, ms in exports if a <= at <= b + 0.001), 1),
+                "exports": sum(1 for at, _ in exports if a <= at <= b + 0.001),
+                "handle_ms": round(sum(r[1] for r in within(rec["handle"])
+                                       if a <= r[0] <= b + 0.001), 1)}
+
+    lat = sorted(at - ft for ft, at in fixes["fixes"])
+    result = {
+        "rate": rate, "seconds": seconds, "nodelay": nodelay, "freeze": freeze,
+        "objects_at_exit": rec.get("objects_at_exit"), "step": row,
+        "latency_ms": {"p50": percentile(lat, 0.5), "p99": percentile(lat, 0.99),
+                       "max": percentile(lat, 1.0), "fixes": len(lat),
+                       ">=100ms": len(slow), "of them waiting out a loop stall": slow_in_stall},
+        "handle_ms": {"calls": len(handle), "p50": round(handle[len(handle) // 2], 3),
+                      "p99": round(handle[int(0.99 * (len(handle) - 1))], 2),
+                      "max": round(handle[-1], 1), "busy_share": round(
+                          sum(handle) / 1000 / (seconds + GRACE_S), 3)} if handle else {},
+        "checkpoint": {"exports": len(exports),
+                       "export_ms_mean": round(sum(ms for _, ms in exports)
+                                               / max(1, len(exports)), 3),
+                       "bursts": len(bursts),
+                       "largest_bursts": [(round(a - t0, 2), round(ms, 1), n) for a, ms, n in
+                                          sorted(bursts, key=lambda b: -b[1])[:5]]},
+        "gc": {str(g): {"count": sum(1 for r in gcs if r[1] == g),
+                        "total_ms": round(sum(r[2] for r in gcs if r[1] == g), 1),
+                        "max_ms": round(max([r[2] for r in gcs if r[1] == g] or [0.0]), 1)}
+               for g in (0, 1, 2)},
+        "stalls": {"count": len(stalls), "total_ms": round(sum(r[1] for r in stalls), 1),
+                   "worst": [{"at_s": round(r[0] - r[1] / 1000 - t0, 2),
+                              "ms": round(r[1], 1),
+                              **overlaps(r[0] - r[1] / 1000, r[0])} for r in stalls[:10]]},
+        "py_spy": stacks,
+    }
+    text = render_profile(result)
+    print(text)
+    (out / f"{name}.md").write_text(text, encoding="utf-8")
+    (out / f"{name}.json").write_text(json.dumps(result, indent=1), encoding="utf-8")
+    return result
+
+
+def render_profile(r: dict[str, Any]) -> str:
+    step = r["step"]
+    lines = [f"# One livematch worker at {r['rate']} fixes/s under probes",
+             "",
+             f"Command: `.venv/bin/python bench/load.py --profile {r['rate']} --seconds "
+             f"{r['seconds']}{' --nodelay' if r['nodelay'] else ''}"
+             f"{' --freeze' if r['freeze'] else ''} --py-spy`; load average "
+             f"{step['loadavg_1m']} before the step; {os.cpu_count()} cores shared with the "
+             "broker, generators, subscriber and other people's work. TCP_NODELAY on the "
+             f"daemon's MQTT socket: {'set by the probe' if r['nodelay'] else 'no (as shipped)'}"
+             f"; gc.freeze() after start: {'yes' if r['freeze'] else 'no (as shipped)'}.",
+             "",
+             "```json",
+             json.dumps({k: v for k, v in r.items() if k not in ("step", "py_spy")}, indent=1),
+             "```", ""]
+    if r["py_spy"]:
+        lines += ["py-spy (200 Hz, idle excluded): share of samples", "",
+                  "| self | share | inclusive | share |", "|---|---:|---|---:|"]
+        for (a, x), (b, y) in zip(r["py_spy"]["self"], r["py_spy"]["inclusive"], strict=False):
+            lines.append(f"| {a} | {x:.1%} | {b} | {y:.1%} |")
+    return "\n".join(lines) + "\n"
 
 
 def git_state() -> dict[str, str]:
@@ -626,8 +881,32 @@ def main(argv: list[str] | None = None) -> int:
                     help="bisections between the last sustained and the first failed step")
     ap.add_argument("--half-repeats", type=int, default=3,
                     help="runs of livematch-1 at half of its maximum")
+    ap.add_argument("--profile", type=int, default=0, metavar="RATE",
+                    help="instead of the search: one livematch-1 step at RATE under probes")
+    ap.add_argument("--nodelay", action="store_true",
+                    help="with --profile: set TCP_NODELAY on the daemon's MQTT socket")
+    ap.add_argument("--freeze", action="store_true",
+                    help="with --profile: gc.freeze() in the daemon once it runs")
+    ap.add_argument("--py-spy", action="store_true",
+                    help="with --profile: sample the daemon with py-spy (pip install py-spy)")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
+    argv = sys.argv[1:] if argv is None else argv
+    if argv[:2] == ["--role", "probe"]:  # --probe-out PATH [--nodelay] <livematch args>
+        rest = argv[4:]
+        flags = {"--nodelay", "--freeze"}
+        opts = set()
+        while rest and rest[0] in flags:
+            opts.add(rest.pop(0))
+        return probe(rest, argv[3], "--nodelay" in opts, "--freeze" in opts)
     args = ap.parse_args(argv)
+    if args.profile:
+        out = Path(args.out)
+        out.mkdir(parents=True, exist_ok=True)
+        name = "load.profile" + ("-nodelay" if args.nodelay else "") + (
+            "-freeze" if args.freeze else "")
+        profile(args.profile, args.seconds, args.generators, args.nodelay, args.freeze,
+                args.py_spy, out, name)
+        return 0
     if args.role == "generator":
         generate(args.port, args.pool, args.n, args.seconds, args.first, args.step)
         return 0
