@@ -299,12 +299,17 @@ class PublishConfig:
     last published one (commits, alerts and rejects are never throttled).
     ``retain_latest`` publishes assignments retained, so a new subscriber gets the latest
     state of every vehicle. Up to ``queue_max`` outputs wait while the broker is down
-    (intake pauses when full); ``shutdown_grace_s`` bounds the final drain.
+    (intake pauses when full); ``shutdown_grace_s`` bounds the final drain. Rejects
+    wait in a queue of their own, sent after the other outputs and bounded by
+    ``reject_queue_max``: beyond it a reject is counted but not published
+    (``livematch_rejects_suppressed_total{why="queue_full"}``), so a flood of bad input
+    neither delays the answers nor grows memory.
     """
 
     throttle_s: float = 0.0
     retain_latest: bool = False
     queue_max: int = 100_000
+    reject_queue_max: int = 10_000
     shutdown_grace_s: float = 10.0
 
     def problems(self) -> list[tuple[str, str]]:
@@ -314,6 +319,8 @@ class PublishConfig:
             out.append(("throttle_s", f"must be >= 0 seconds, got {self.throttle_s}"))
         if self.queue_max < 1:
             out.append(("queue_max", f"must be >= 1, got {self.queue_max}"))
+        if self.reject_queue_max < 0:
+            out.append(("reject_queue_max", f"must be >= 0, got {self.reject_queue_max}"))
         if not (math.isfinite(self.shutdown_grace_s) and self.shutdown_grace_s >= 0):
             out.append(("shutdown_grace_s", f"must be >= 0 seconds, got {self.shutdown_grace_s}"))
         return out

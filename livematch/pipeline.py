@@ -286,6 +286,11 @@ class Pipeline:
             return [self._reject(topic, payload, at, exc.reason, exc.detail,
                                  known_vehicle(topic, payload, self.limits))]
         state = self._vehicles.get(fix.vehicle)
+        cap = self.limits.max_vehicles
+        if state is None and cap and len(self._vehicles) >= cap:
+            return [self._reject(topic, payload, at, "too_many_vehicles",
+                                 f"vehicle {fix.vehicle!r} is new and {cap} vehicles are "
+                                 f"held already (feed.max_vehicles)", fix.vehicle)]
         if state is None:
             state = _VehicleState(Tracker(self.network, fix.vehicle, self.settings))
             self._vehicles[fix.vehicle] = state

@@ -74,6 +74,8 @@ def test_load_config_eps_levels_not_increasing(tmp_path: Path) -> None:
     ("[log]\nlevel = 'loud'\n", "log.level must be one of debug, info, warning, error"),
     ("[feed]\nmax_year = 1990\n", "need 1 <= min_year <= max_year <= 9998"),
     ("[feed]\ntopic_filter = 'x/+'\n", "feed.topic_filter is set by mqtt.topic"),
+    ("[feed]\nmax_vehicles = -1\n", "max_vehicles must be >= 0, got -1"),
+    ("[publish]\nreject_queue_max = -5\n", "publish.reject_queue_max must be >= 0, got -5"),
     ("[matcher]\nmax_lag_s = -1\n", "matcher.max_lag_s must be a positive number"),
     ("[matcher]\nspeed = 3\n", "unknown key matcher.speed"),
     ("[daemon]\nx = 1\n", "unknown section [daemon]"),

@@ -21,7 +21,17 @@ from pathlib import Path
 import paho.mqtt.client as mqtt
 import pytest
 import redis.asyncio as aioredis
-from services import Collector, Mosquitto, drive, free_port, subprocess_env, town, write_config
+from prometheus_client.parser import text_string_to_metric_families
+from services import (
+    Collector,
+    Mosquitto,
+    drive,
+    free_port,
+    http_get,
+    subprocess_env,
+    town,
+    write_config,
+)
 from test_faults_group import PersistentRedis
 from test_service_shards_failover import checkpoint_times, metric
 
@@ -96,6 +106,21 @@ def publish_all(port: int, messages: list[tuple[str, bytes]]) -> None:
         client.loop_stop()
 
 
+async def metric_sum(port: int, name: str, **labels: str) -> float:
+    """The sum of a worker's samples of one metric whose labels include ``labels``."""
+    try:
+        status, body = await http_get(port, "/metrics")
+    except OSError:
+        return -1.0
+    assert status == 200
+    total = 0.0
+    for family in text_string_to_metric_families(body):
+        for sample in family.samples:
+            if sample.name == name and labels.items() <= sample.labels.items():
+                total += float(sample.value)
+    return total
+
+
 def rss_kb(pid: int) -> int:
     """Resident set size of a process, KiB (Linux /proc)."""
     for line in Path(f"/proc/{pid}/status").read_text().splitlines():
@@ -139,8 +164,13 @@ async def test_faults_three_workers_kill_restarts_and_flood(
     seen: dict[str, float] = {}
     report: dict[str, object] = {"flood": FLOOD}
 
+    rss_peak: dict[str, int] = {}
+
     async def watch_checkpoints() -> None:
         while True:
+            for w in ("w1", "w3"):  # the survivors' largest resident size, every 0.1 s
+                if procs[w].poll() is None:
+                    rss_peak[w] = max(rss_peak.get(w, 0), rss_kb(procs[w].pid))
             try:
                 for v, t in (await checkpoint_times(client, prefix)).items():
                     if t < seen.get(v, t):
@@ -206,11 +236,21 @@ async def test_faults_three_workers_kill_restarts_and_flood(
                 missing = sum(len(want[v] - got[v]) for v in VEHICLES)
                 assert time.monotonic() < deadline, f"{missing} fixes never answered"
                 await asyncio.sleep(0.2)
-            deadline = time.monotonic() + 60
+            deadline = time.monotonic() + 60 + FLOOD / 1000
+            while sum([await metric_sum(ports[w], "livematch_publish_queue_depth")
+                       for w in ("w1", "w3")]) != 0:  # the tail of the flood's rejects
+                assert time.monotonic() < deadline, "outputs still queued"
+                await asyncio.sleep(0.5)
+            await asyncio.sleep(1.0)  # the last ones on their way to the collector
             rejects = len(col.records("/out/rejects"))
-            while rejects < FLOOD and time.monotonic() < deadline:
-                await asyncio.sleep(0.5)  # the tail of the flood's rejects
-                rejects = len(col.records("/out/rejects"))
+            for why in ("replay", "queue_full"):
+                report[f"suppressed_{why}"] = sum(
+                    [await metric_sum(ports[w], "livematch_rejects_suppressed_total", why=why)
+                     for w in ("w1", "w3")])
+            report["reconnects"] = [await metric_sum(ports[w], "livematch_broker_reconnects_total")
+                                    for w in ("w1", "w3")]
+            report["lost"] = [await metric_sum(ports[w], "livematch_shards_lost_total")
+                              for w in ("w1", "w3")]
             rss_after = {w: rss_kb(procs[w].pid) for w in ("w1", "w3")}
             report["shed"] = sum([await metric(ports[w], "livematch_fixes_shed_total")
                                   for w in ("w1", "w3")])
@@ -219,6 +259,7 @@ async def test_faults_three_workers_kill_restarts_and_flood(
             report["rejects"] = rejects
             report["rss_kb"] = {w: (rss_before[w], rss_after[w]) for w in rss_before}
             report["rss_mid_kb"] = {w: (rss_mid[w], rss_after[w]) for w in rss_mid}
+            report["rss_peak_kb"] = {w: (rss_before[w], rss_peak[w]) for w in rss_before}
             deadline = time.monotonic() + 30
             while seen != {v: max(want[v]) for v in VEHICLES}:
                 assert time.monotonic() < deadline, f"checkpoints lag: {seen}"
@@ -249,6 +290,8 @@ async def test_faults_three_workers_kill_restarts_and_flood(
     growth = {w: (a - b) / 1024 for w, (b, a) in report["rss_kb"].items()}  # type: ignore[union-attr]
     growth_mid = {w: (a - b) / 1024
                   for w, (b, a) in report["rss_mid_kb"].items()}  # type: ignore[union-attr]
+    growth_peak = {w: (a - b) / 1024
+                   for w, (b, a) in report["rss_peak_kb"].items()}  # type: ignore[union-attr]
     lines = [
         "# Fault-injection suite",
         "",
@@ -271,20 +314,29 @@ async def test_faults_three_workers_kill_restarts_and_flood(
         f"| time to take over the dead worker's shards | {report['takeover_s']:.2f} s |",
         f"| malformed messages published / reject records received (a)"
         f" | {FLOOD} / {rejects} |",
+        f"| rejects not published again after a takeover / for a full reject queue (a)"
+        f" | {report['suppressed_replay']:.0f} / {report['suppressed_queue_full']:.0f} |",
+        "| broker reconnections of the survivors (w1, w3; the broker restart is one) | "
+        + ", ".join(f"{n:.0f}" for n in report["reconnects"]) + " |",  # type: ignore[attr-defined]
+        "| shards lost without a hand-over by the survivors (w1, w3) | "
+        + ", ".join(f"{n:.0f}" for n in report["lost"]) + " |",  # type: ignore[attr-defined]
         "| RSS growth of the survivors, ready to end (w1, w3) (b) | "
         + ", ".join(f"{growth[w]:+.1f} MiB" for w in sorted(growth)) + " |",
         "| RSS growth of the survivors, after the takeover to end (phases 2-4) | "
         + ", ".join(f"{growth_mid[w]:+.1f} MiB" for w in sorted(growth_mid)) + " |",
+        "| largest RSS of the survivors during the flood, above ready (w1, w3) | "
+        + ", ".join(f"{growth_peak[w]:+.1f} MiB" for w in sorted(growth_peak)) + " |",
         f"| messages shed by the survivors / largest intake queue | {report['shed']:.0f}"
         f" / {report['peak']:.0f} |",
         f"| wall time of the scenario | {elapsed:.0f} s |",
         "",
-        "(a) more rejects than malformed messages: a taken-over shard's kept messages are",
-        "replayed, and the malformed ones among them are rejected (and published) again;",
-        "delivery is at least once. (b) includes the first fixes' compilation and",
-        "matcher warm-up, the takeover of w2's shards and the kept-message buffers",
-        "(`group.buffer_s`, `group.buffer_max`), which hold every message of the feed",
-        "for 120 s.",
+        "(a) a reject is published once, by the worker holding the message's shard when",
+        "it arrives; a takeover's replay re-matches the kept fixes but does not publish",
+        "their rejects again (counted instead), so the malformed messages that w2 had",
+        "received but not yet handled when it was killed get no reject record. (b)",
+        "includes the first fixes' compilation and matcher warm-up, the takeover of w2's",
+        "shards and the kept-fix buffers (`group.buffer_s`, `group.buffer_max`), which",
+        "hold every possible fix of the feed (not the junk) for 120 s.",
         "",
     ]
     text = "\n".join(lines)

@@ -663,3 +663,37 @@ async def test_daemon_no_stale_from_its_own_outage(own_mosquitto: Mosquitto, pre
         await col.wait_for("/out/match/van-b", 6)
         await asyncio.sleep(0.3)
     assert col.records("/out/alert/") == []
+
+
+async def test_daemon_vehicle_cap_rejects_new_vehicles_and_serves_the_others(
+        mosquitto: Mosquitto, prefix: str, tmp_path: Path,
+        caplog: pytest.LogCaptureFixture) -> None:
+    """With feed.max_vehicles = 2 a third vehicle's fixes are rejected as
+    too_many_vehicles (counted, logged once), while the two held are still answered."""
+    cfg = write_config(tmp_path, prefix, broker=mosquitto.url,
+                       extra="[feed]\nmax_vehicles = 2\n")
+    feeds = {v: drive(v, 6, start_x=100.0 + 600 * i)
+             for i, v in enumerate(["cap-a", "cap-b", "cap-c"])}
+    daemon = make_daemon(cfg)
+    caplog.set_level(logging.WARNING, logger="livematch.daemon")
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col, \
+            running(daemon):
+        async with publisher(mosquitto.port) as pub:
+            for i in range(6):
+                for v in ("cap-a", "cap-b", "cap-c"):  # a and b come first: they are held
+                    await pub.publish(f"{prefix}/fleet/{v}/position", feeds[v][i][1], qos=1)
+        await col.wait_for("/out/match/cap-b", 6)
+        await col.wait_for("/out/rejects", 6)
+        _, text = await http_get(daemon.http.port, "/metrics")  # type: ignore[union-attr]
+    for v in ("cap-a", "cap-b"):
+        assert [r["time"] for r in col.records(f"/out/match/{v}")] == [t for t, _ in feeds[v]]
+    assert col.records("/out/match/cap-c") == []
+    rejects = col.records("/out/rejects")
+    assert [r["reason"] for r in rejects] == ["too_many_vehicles"] * 6
+    assert "'cap-c' is new and 2 vehicles are held already" in rejects[0]["detail"]
+    values = metric_values(text)
+    assert values[("livematch_messages_rejected_total",
+                   (("reason", "too_many_vehicles"),))] == 6
+    assert daemon.pipeline.vehicles() == ["cap-a", "cap-b"]
+    cap_lines = [r for r in caplog.records if "vehicle cap reached" in r.getMessage()]
+    assert len(cap_lines) == 1  # once per 10 s, not once per fix

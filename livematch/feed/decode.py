@@ -66,6 +66,7 @@ REASONS = (
     "vehicle_mismatch", # payload vehicle differs from the topic's vehicle level
     "future_time",      # fix time more than FeedLimits.max_future_s ahead of its receive time
     "rate_limited",     # more fixes of one vehicle per second than feed.max_rate_hz allows
+    "too_many_vehicles",  # a new vehicle while the daemon holds limits.max_vehicles already
 )
 
 
@@ -96,6 +97,14 @@ class FeedLimits:
             (a token bucket with a burst of the same size); extra fixes are refused as
             ``rate_limited``. GPS receivers report at 1-10 Hz (common practice); a faster
             sender is broken or hostile. 0 turns the limit off.
+        max_vehicles: at most this many vehicles with matcher state in one process; a
+            fix of a further vehicle is refused (``too_many_vehicles``) while the
+            vehicles already held go on being matched. A bound on memory and on the
+            work one process takes on: 20,000 vehicles at one fix per 30 s are ~670
+            fixes/s, about half of what one process matches (rule of thumb from
+            ``bench/results/load.md``; more vehicles belong to more workers). Vehicles
+            leave by idle eviction (``store.idle_ttl_s``) or a shard hand-over. 0
+            turns the cap off.
 
     Example:
         >>> FeedLimits().max_payload_bytes
@@ -112,6 +121,7 @@ class FeedLimits:
     max_future_s: float = 300.0
     max_age_s: float = 3600.0
     max_rate_hz: float = 10.0
+    max_vehicles: int = 20_000
 
     def __post_init__(self) -> None:
         if self.max_payload_bytes < 1:
@@ -125,6 +135,8 @@ class FeedLimits:
             value = getattr(self, name)
             if not (math.isfinite(value) and value >= 0):
                 raise ValueError(f"{name} must be a finite number >= 0, got {value!r}")
+        if self.max_vehicles < 0:
+            raise ValueError(f"max_vehicles must be >= 0, got {self.max_vehicles}")
         if self.topic_filter.count("+") > 1:
             raise ValueError(f"topic_filter may have at most one '+' level (the vehicle), "
                              f"got {self.topic_filter!r}")
@@ -417,14 +429,20 @@ def known_vehicle(topic: str, payload: bytes, limits: FeedLimits = FeedLimits())
     >>> known_vehicle("other", b'{"vehicle": "a/b"}') is None
     True
     """
-    candidates: list[object] = [vehicle_from_topic(topic, limits.topic_filter)]
+    from_topic = vehicle_from_topic(topic, limits.topic_filter)
+    if from_topic is not None and _usable(from_topic, limits):
+        return from_topic  # the payload is not even read: cheap for floods of junk
     if len(payload) <= limits.max_payload_bytes:
         with contextlib.suppress(msgspec.DecodeError):
-            candidates.append(_OBJECT_DECODER.decode(payload).get("vehicle"))
-    for vehicle in candidates:
-        if isinstance(vehicle, str):
-            try:
-                return validate_vehicle(vehicle, limits, "")
-            except BadMessageError:
-                continue
+            vehicle = _OBJECT_DECODER.decode(payload).get("vehicle")
+            if isinstance(vehicle, str) and _usable(vehicle, limits):
+                return vehicle
     return None
+
+
+def _usable(vehicle: str, limits: FeedLimits) -> bool:
+    try:
+        validate_vehicle(vehicle, limits, "")
+    except BadMessageError:
+        return False
+    return True

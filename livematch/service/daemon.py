@@ -74,14 +74,19 @@ _TICK_S = 0.5
 _STORE_PING_S = 1.0
 # Most publishes awaiting their acknowledgement at once.
 _PUBLISH_WINDOW = 32
-# Most packets read from the broker's socket after each matched message (mqtt.drain).
-_DRAIN_PACKETS = 1000
+# Most packets read from the broker's socket after each matched message (mqtt.drain):
+# far more than one message's worth, so a backlog still moves into the intake queue, and
+# few enough (~10 ms of decoding) that a lease renewal's reply is read without delay.
+_DRAIN_PACKETS = 100
 # Shortest interval between two "publish queue full" warnings (seconds).
 _FULL_LOG_EVERY_S = 10.0
 # How far ahead of the wall clock a fix time may push the eviction clock (seconds).
 _CLOCK_AHEAD_S = 300.0
 # Longest wait for the outputs of a checkpoint's fixes to be acknowledged (seconds).
 _ACK_WAIT_S = 1.0
+# A takeover replays this many kept messages, then lets the event loop run (leases,
+# PUBACKs, keepalive) before the next ones.
+_REPLAY_CHUNK = 200
 
 
 class OutputLike(Protocol):
@@ -189,7 +194,9 @@ class Daemon:
         self._stopping = asyncio.Event()
         self._intake_closed = False
         self._drain_deadline = 0.0
-        self._outbox: deque[_Pending] = deque()
+        self._outbox: deque[_Pending] = deque()  # assignments, commits, alerts
+        self._reject_box: deque[_Pending] = deque()  # rejects: sent after the others
+        self._replaying = False  # a takeover's replay is running _handle
         self._outbox_changed = asyncio.Event()  # set on every append, pop and stop
         self._pending_deletes: set[str] = set()
         self._full_logged_at = -math.inf
@@ -210,7 +217,13 @@ class Daemon:
         if group.name:
             self._mqtt = replace(config.mqtt, client_id=f"{config.mqtt.client_id}-{self.worker}")
         self._active: set[int] = set()  # shards whose vehicles this worker matches
-        self._buffers: dict[int, deque[tuple[float, str, bytes]]] = {}
+        self._taking: set[int] = set()  # shards whose kept fixes are being replayed
+        # (sequence number, receive time, topic, payload) of every possible fix, by shard
+        self._buffers: dict[int, deque[tuple[int, float, str, bytes]]] = {}
+        self._kept_seq = 0
+        self._members: list[str] | None = None  # the group's live workers, last heartbeat
+        self._rebalance_due = asyncio.Event()
+        self._cap_logged_at = -math.inf
         self._enqueued = 0  # outputs ever queued
         self._acked = 0  # outputs ever acknowledged by the broker (queue order)
         self._shard_cache: dict[str, int] = {}
@@ -257,6 +270,7 @@ class Daemon:
                     tg.create_task(self._checkpoint_loop(), name="checkpoint")
                     tg.create_task(self._store_watch_loop(), name="store-watch")
                     if self.leases is not None:
+                        tg.create_task(self._lease_loop(), name="leases")
                         tg.create_task(self._shard_loop(), name="shards")
             finally:
                 await self._final_checkpoint()
@@ -449,11 +463,16 @@ class Daemon:
         return self._shard(vehicle if vehicle is not None else topic)
 
     def _keep(self, shard: int, at: float, topic: str, payload: bytes) -> None:
-        """Keep a fix of a shard held elsewhere for ``buffer_s`` (at most ``buffer_max``)."""
+        """Keep a possible fix for ``buffer_s`` (at most ``buffer_max`` per shard).
+
+        Kept whoever holds the shard, and not consumed by a takeover: if this worker
+        loses the shard and takes it again before a newer checkpoint was written, the
+        replay must again start from that checkpoint's fixes.
+        """
         group = self.config.group
         buf = self._buffers.setdefault(shard, deque())
         horizon = at - group.buffer_s
-        while buf and buf[0][0] < horizon:
+        while buf and buf[0][1] < horizon:
             buf.popleft()
         if group.buffer_max == 0:
             self.metrics.buffer_dropped.inc()
@@ -461,14 +480,15 @@ class Daemon:
         if len(buf) >= group.buffer_max:
             buf.popleft()
             self.metrics.buffer_dropped.inc()
-        buf.append((at, topic, payload))
+        self._kept_seq += 1
+        buf.append((self._kept_seq, at, topic, payload))
         self.metrics.buffered.inc()
 
     def _prune_buffers(self, now: float) -> None:
         horizon = now - self.config.group.buffer_s
         depth = 0
         for buf in self._buffers.values():
-            while buf and buf[0][0] < horizon:
+            while buf and buf[0][1] < horizon:
                 buf.popleft()
             depth += len(buf)
         self.metrics.buffer_depth.set(depth)
@@ -480,13 +500,47 @@ class Daemon:
             for shard in self.leases.expired():
                 self._lose(shard, "expired")
 
-    async def _shard_loop(self) -> None:
-        """Announce, renew, rebalance every ``lease_s / 3`` seconds."""
-        assert self.leases is not None
+    async def _lease_loop(self) -> None:
+        """Announce this worker and renew its leases every ``lease_s / 3`` seconds.
+
+        A task of its own, so that a renewal never waits behind a takeover's restore and
+        replay or a hand-over (which run in ``shards``); intake yields to the event loop
+        after every message and a replay every ``_REPLAY_CHUNK`` messages, so a renewal
+        is sent within milliseconds of being due even under a flood.
+        """
+        leases = self.leases
+        assert leases is not None
         period = self.config.group.lease_s / 3
         while not self._stopping.is_set():
             try:
-                await self._shard_round()
+                for shard in await leases.renew():  # first: the deadlines depend on it
+                    self._lose(shard, "taken")
+                self._members = await leases.heartbeat()
+                self._rebalance_due.set()
+            except StoreError as exc:
+                self.metrics.lease_failures.inc()
+                log.warning("lease renewal failed; will retry", extra=fields(error=exc))
+            except Exception:  # a bug must not end the leases: log, count, go on
+                self.metrics.lease_failures.inc()
+                log.exception("lease renewal error; will retry")
+            self._check_deadlines()
+            self._prune_buffers(time.time())
+            self.metrics.shards_held.set(len(self._active))
+            await self._sleep_unless_stopping(period)
+
+    async def _shard_loop(self) -> None:
+        """After each renewal: take free shards up to this worker's share, hand excess over."""
+        assert self.leases is not None
+        period = self.config.group.lease_s / 3
+        while not self._stopping.is_set():
+            with contextlib.suppress(TimeoutError):
+                await asyncio.wait_for(self._rebalance_due.wait(), timeout=period)
+            self._rebalance_due.clear()
+            members = self._members
+            if members is None or self._stopping.is_set():
+                continue
+            try:
+                await self._shard_round(members)
                 if not self.restored:
                     self.restored = True
                     log.info("state restored", extra=fields(
@@ -499,19 +553,13 @@ class Daemon:
             except Exception:  # a bug must not end the leases: log, count, go on
                 self.metrics.lease_failures.inc()
                 log.exception("lease round error; will retry")
-            self._check_deadlines()
-            self._prune_buffers(time.time())
             self.metrics.shards_held.set(len(self._active))
             self.metrics.vehicles.set(len(self.pipeline.vehicles()))
-            await self._sleep_unless_stopping(period)
 
-    async def _shard_round(self) -> None:
-        """One round: heartbeat, renew, then take free shards or hand excess ones over."""
+    async def _shard_round(self, members: list[str]) -> None:
+        """One rebalancing round: take free shards or hand excess ones over."""
         leases = self.leases
         assert leases is not None
-        members = await leases.heartbeat()
-        for shard in await leases.renew():
-            self._lose(shard, "taken")
         self._check_deadlines()
         target = target_share(leases.n_shards, len(members))
         rank = {s: i for i, s in enumerate(preference(self.worker, leases.n_shards))}
@@ -551,7 +599,6 @@ class Daemon:
             raise
         if leases.held.get(shard) != fence:  # lost while loading
             return
-        # From here on synchronous: no message can slip between restore and replay.
         restored = 0
         for vehicle, blob in sorted(blobs.items()):
             try:
@@ -560,19 +607,56 @@ class Daemon:
             except Exception as exc:  # one bad checkpoint must not keep the others out
                 self.metrics.store_errors.inc()
                 log.warning("checkpoint not restored", extra=fields(vehicle=vehicle, error=exc))
-        self._active.add(shard)
-        kept = self._buffers.pop(shard, deque())
-        horizon = time.time() - self.config.group.buffer_s
-        replayed = 0
-        for at, topic, payload in kept:
-            if at >= horizon:
-                self._handle(topic, payload, at)
-                replayed += 1
+        replayed = await self._replay(shard, fence)
+        if replayed is None:  # lost while replaying: _lose dropped its vehicles
+            return
         self.metrics.takeovers.inc()
         self.metrics.replayed.inc(replayed)
         self.metrics.shards_held.set(len(self._active))
         log.info("shard taken", extra=fields(shard=shard, fence=fence, vehicles=restored,
                                              replayed=replayed))
+
+    async def _replay(self, shard: int, fence: int) -> int | None:
+        """Replay the fixes kept for a shard just restored, then start matching it.
+
+        The shard is not matched meanwhile: its fixes arriving during the replay are only
+        kept, and the replay goes on until it has caught up with them; the last step
+        (nothing left to replay -> matching) has no ``await`` in between, so no fix is
+        skipped or taken out of order. Every ``_REPLAY_CHUNK`` messages the event loop
+        runs (lease renewals, PUBACKs, MQTT keepalive). Fixes the restored checkpoint
+        already covers are dropped as duplicates (vehicle, time). Rejects are counted
+        but not published again (``livematch_rejects_suppressed_total{why="replay"}``):
+        the worker holding the shard when the message arrived published them.
+
+        Returns the number of messages replayed, or None when the lease was lost
+        meanwhile (the shard's vehicles are then dropped).
+        """
+        assert self.leases is not None
+        self._taking.add(shard)
+        horizon = time.time() - self.config.group.buffer_s
+        done_seq = 0
+        replayed = 0
+        try:
+            while True:
+                todo = [entry for entry in self._buffers.get(shard, ()) if entry[0] > done_seq]
+                if not todo:
+                    self._active.add(shard)  # caught up: matching from the next message
+                    return replayed
+                for k, (seq, at, topic, payload) in enumerate(todo, 1):
+                    done_seq = seq
+                    if at >= horizon:
+                        self._replaying = True
+                        try:
+                            self._handle(topic, payload, at)
+                        finally:
+                            self._replaying = False
+                        replayed += 1
+                    if k % _REPLAY_CHUNK == 0:
+                        await asyncio.sleep(0)
+                        if self.leases.held.get(shard) != fence:
+                            return None  # _lose ran meanwhile and dropped its vehicles
+        finally:
+            self._taking.discard(shard)
 
     def _shard_vehicles(self, shard: int) -> list[str]:
         return [v for v in self.pipeline.vehicles() if self._shard(v) == shard]
@@ -590,7 +674,7 @@ class Daemon:
         """A shard is no longer ours: drop its vehicles without writing anything."""
         assert self.leases is not None
         self.leases.forget(shard)
-        was_active = shard in self._active
+        was_active = shard in self._active or shard in self._taking
         self._active.discard(shard)
         vehicles = self._shard_vehicles(shard)
         if not (was_active or vehicles):
@@ -747,11 +831,13 @@ class Daemon:
                 self.broker_connected = False
             if not self._stopping.is_set():
                 await self._sleep_unless_stopping(backoff.next())
-        if self._outbox:
-            self.metrics.dropped.inc(len(self._outbox))
+        left = len(self._outbox) + len(self._reject_box)
+        if left:
+            self.metrics.dropped.inc(left)
             log.error("outputs not published at shutdown (broker unavailable)",
-                      extra=fields(count=len(self._outbox)))
+                      extra=fields(count=left))
             self._outbox.clear()
+            self._reject_box.clear()
             self.metrics.queue_depth.set(0)
 
     def _session_failed(self, exc: BaseException) -> None:
@@ -824,6 +910,8 @@ class Daemon:
                 if not nxt.done():
                     break  # stopping
                 message = nxt.result()
+                if _disconnected(client):  # what is still queued is redelivered anyway
+                    raise aiomqtt.MqttError("Disconnected during message iteration")
                 if self._intake is not None and self._intake.was_shed(message):
                     ack(client, message)  # shed on purpose (and counted): acknowledge
                 else:
@@ -900,11 +988,15 @@ class Daemon:
             self._check_deadlines()
             shard = self._message_shard(topic, bytes(payload))
             if shard is not None:
-                # Kept whoever holds the shard: replayed if this worker takes it (again)
-                # after its holder (or this worker, cut off from Redis) lost it.
-                self._keep(shard, at, topic, bytes(payload))
-                if shard not in self._active:  # another worker's fix
-                    ack(client, message)
+                # A possible fix is kept whoever holds the shard: replayed if this worker
+                # takes it (again) after its holder (or this worker, cut off from Redis)
+                # lost it. A message that cannot be a fix changes no state; it is only
+                # rejected, by the worker holding its shard now.
+                possible = looks_like_position(bytes(payload), self.config.feed)
+                if possible:
+                    self._keep(shard, at, topic, bytes(payload))
+                if not (shard in self._active or (shard in self._taking and not possible)):
+                    ack(client, message)  # another worker's message (or being replayed)
                     return
         self._handle(topic, bytes(payload), at)
         ack(client, message)
@@ -922,8 +1014,12 @@ class Daemon:
         self.metrics.processing.observe(time.perf_counter() - started)
         self._sync_counters()
         for out in outputs:
-            if self.leases is None or self._shard(out.vehicle or topic) in self._active:
+            if self.leases is None or self._answers(self._shard(out.vehicle or topic)):
                 self._route(out)
+
+    def _answers(self, shard: int) -> bool:
+        """Whether this worker publishes the outputs of a shard (held, or being replayed)."""
+        return shard in self._active or shard in self._taking
 
     def _may_tick(self, now: float) -> bool:
         """Whether ``stale`` may be judged at ``now``: only after listening for stale_s.
@@ -960,9 +1056,19 @@ class Daemon:
         record = out.record
         vehicle = out.vehicle
         if out.kind == "reject" or vehicle is None:
-            self.metrics.rejected.labels(reason=str(record.get("reason", "unknown"))).inc()
-            self._enqueue(_Pending(cfg.reject_topic, encode_record(record), "reject",
-                                         False, None))
+            reason = str(record.get("reason", "unknown"))
+            self.metrics.rejected.labels(reason=reason).inc()
+            if reason == "too_many_vehicles":
+                self._log_cap(vehicle)
+            if self._replaying:  # published when the message first arrived
+                self.metrics.rejects_suppressed.labels(why="replay").inc()
+            elif len(self._reject_box) >= self.config.publish.reject_queue_max:
+                self.metrics.rejects_suppressed.labels(why="queue_full").inc()
+            else:
+                self._reject_box.append(_Pending(cfg.reject_topic, encode_record(record),
+                                                 "reject", False, None))
+                self.metrics.queue_depth.set(len(self._outbox) + len(self._reject_box))
+                self._outbox_changed.set()
             return
         payload = encode_record(record)
         fix_time = record.get("time")
@@ -994,6 +1100,16 @@ class Daemon:
         self._enqueue(_Pending(topic.replace("{vehicle}", vehicle), payload, out.kind,
                                      retain, stamp))
 
+    def _log_cap(self, vehicle: str | None) -> None:
+        """Say (at most once per ``_FULL_LOG_EVERY_S``) that new vehicles are refused."""
+        now = time.monotonic()
+        if now - self._cap_logged_at >= _FULL_LOG_EVERY_S:
+            self._cap_logged_at = now
+            log.warning("vehicle cap reached; fixes of new vehicles are rejected "
+                        "(too_many_vehicles)",
+                        extra=fields(max_vehicles=self.config.feed.max_vehicles,
+                                     vehicle=vehicle))
+
     def _throttled(self, vehicle: str, record: Mapping[str, Any]) -> bool:
         """True when this assignment is held back: same road and within throttle_s."""
         throttle = self.config.publish.throttle_s
@@ -1008,29 +1124,40 @@ class Daemon:
         """Queue an output (the queue may pass queue_max by one message's outputs)."""
         self._outbox.append(item)
         self._enqueued += 1
-        self.metrics.queue_depth.set(len(self._outbox))
+        self.metrics.queue_depth.set(len(self._outbox) + len(self._reject_box))
         self._outbox_changed.set()
 
     async def _publish_loop(self, client: aiomqtt.Client) -> None:
         """Publish queued outputs oldest first; one leaves the queue once acknowledged.
 
-        Up to ``_PUBLISH_WINDOW`` publishes are in flight at once (they go out in queue
-        order; paho also respects the broker's Receive Maximum), so throughput is not
-        bound by one round trip per output. After a broken connection everything not yet
-        acknowledged is still queued and is sent again.
+        Assignments, commits and alerts go before rejects: a flood of bad input delays
+        only its own dead letters. Up to ``_PUBLISH_WINDOW`` publishes are in flight at
+        once (each queue's in order; paho also respects the broker's Receive Maximum),
+        so throughput is not bound by one round trip per output. An acknowledgement is
+        awaited without a time limit: under a flood the broker's PUBACK queues behind
+        the messages it is sending us, and a dead connection is found by the MQTT
+        keepalive instead. After a broken connection everything not yet acknowledged
+        is still queued and is sent again.
         """
         qos = self.config.mqtt.qos
-        inflight: deque[asyncio.Task[None]] = deque()
+        inflight: deque[tuple[asyncio.Task[None], bool]] = deque()  # (publish, is reject)
+        sent = [0, 0]  # in flight from self._outbox, from self._reject_box (their heads)
         try:
             while True:
-                while len(inflight) < min(_PUBLISH_WINDOW, len(self._outbox)):
-                    item = self._outbox[len(inflight)]
-                    timeout: float | None = None
+                while len(inflight) < _PUBLISH_WINDOW:
+                    if len(self._outbox) > sent[0]:
+                        is_reject, item = False, self._outbox[sent[0]]
+                    elif len(self._reject_box) > sent[1]:
+                        is_reject, item = True, self._reject_box[sent[1]]
+                    else:
+                        break
+                    sent[is_reject] += 1
+                    timeout = math.inf
                     if self._intake_closed:
                         timeout = max(0.001, self._drain_deadline - time.monotonic())
-                    inflight.append(asyncio.create_task(client.publish(
+                    inflight.append((asyncio.create_task(client.publish(
                         item.topic, item.payload, qos=qos, retain=item.retain,
-                        timeout=timeout)))
+                        timeout=timeout)), is_reject))
                 if not inflight:
                     if self._intake_closed:
                         return  # stopping and drained
@@ -1039,19 +1166,24 @@ class Daemon:
                     continue
                 if self._intake_closed and time.monotonic() > self._drain_deadline:
                     return  # grace over: what is left is counted as dropped
-                await inflight[0]  # raises (ending the session) when the publish failed
+                task, is_reject = inflight[0]
+                await task  # raises (ending the session) when the publish failed
                 inflight.popleft()
-                item = self._outbox.popleft()
-                self._acked += 1
-                self.metrics.queue_depth.set(len(self._outbox))
+                sent[is_reject] -= 1
+                if is_reject:
+                    item = self._reject_box.popleft()
+                else:
+                    item = self._outbox.popleft()
+                    self._acked += 1
+                self.metrics.queue_depth.set(len(self._outbox) + len(self._reject_box))
                 self._outbox_changed.set()
                 self.metrics.published.labels(kind=item.kind).inc()
                 if item.kind == "assignment" and item.fix_time is not None:
                     self.metrics.lag.observe(max(0.0, time.time() - item.fix_time))
         finally:
-            for task in inflight:
+            for task, _ in inflight:
                 task.cancel()
-            await asyncio.gather(*inflight, return_exceptions=True)
+            await asyncio.gather(*(task for task, _ in inflight), return_exceptions=True)
 
     # -- helpers -------------------------------------------------------------------
 
@@ -1061,15 +1193,31 @@ class Daemon:
 
     def _render_metrics(self) -> bytes:
         self.metrics.vehicles.set(len(self.pipeline.vehicles()))
-        self.metrics.queue_depth.set(len(self._outbox))
+        self.metrics.queue_depth.set(len(self._outbox) + len(self._reject_box))
+        self.metrics.memory.set(_resident_bytes())
         self._note_intake()
         return self.metrics.render()
+
+
+def _resident_bytes() -> float:
+    """Resident set size of this process in bytes (Linux ``/proc``; NaN elsewhere)."""
+    try:
+        with open("/proc/self/statm", encoding="ascii") as f:
+            return float(int(f.read().split()[1]) * os.sysconf("SC_PAGE_SIZE"))
+    except (OSError, ValueError, IndexError):
+        return math.nan
 
 
 def _default_worker() -> str:
     """``HOSTNAME-PID``, reduced to the characters a worker name may hold."""
     name = re.sub(r"[^A-Za-z0-9._\-]", "-", f"{socket.gethostname()}-{os.getpid()}")
     return name[-64:]
+
+
+def _disconnected(client: aiomqtt.Client) -> bool:
+    """Whether aiomqtt saw the connection end (messages may still be queued then)."""
+    done = getattr(client, "_disconnected", None)
+    return isinstance(done, asyncio.Future) and done.done()
 
 
 def _consume_outcome(future: asyncio.Future[Any]) -> None:

@@ -130,6 +130,13 @@ class Metrics:
         self.buffer_depth = Gauge("livematch_shard_buffer_messages",
                                   "Fixes currently kept for replays (worker group).",
                                   registry=r)
+        self.rejects_suppressed = Counter(
+            "livematch_rejects_suppressed",
+            "Reject records counted but not published, by why (replay: already published "
+            "when the message first arrived; queue_full: publish.reject_queue_max reached).",
+            ["why"], registry=r)
+        self.memory = Gauge("livematch_resident_memory_bytes",
+                            "Resident set size of this process (Linux), bytes.", registry=r)
 
     def render(self) -> bytes:
         """The registry in the Prometheus text exposition format."""

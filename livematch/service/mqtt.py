@@ -258,6 +258,10 @@ class IntakeQueue(asyncio.Queue[aiomqtt.Message]):
 
     def _put(self, item: aiomqtt.Message) -> None:
         slots: _Slots = self._queue
+        # paho builds an MQTT v5 Properties object for every message (two dicts of all
+        # property names and types, a few KiB); nothing reads them here, and a backlog of
+        # 100,000 waiting messages would otherwise hold hundreds of MiB.
+        item.properties = None
         payload = item.payload if isinstance(item.payload, bytes | bytearray) else b""
         key = self.key_of(item.topic.value, bytes(payload))
         slots.append(_Slot(key, item))

@@ -273,6 +273,7 @@ class LeaseManager:
         shards = sorted(self.held)
         if not shards:
             return []
+        sent = {shard: self.held[shard] for shard in shards}
         started = time.monotonic()
         try:
             async with self.client.pipeline(transaction=False) as pipe:
@@ -284,6 +285,8 @@ class LeaseManager:
             raise self._fail(f"renewing {len(shards)} lease(s)", exc) from exc
         lost = []
         for shard, ok in zip(shards, results, strict=True):
+            if self.held.get(shard) != sent[shard]:
+                continue  # released (or lost and taken again) while the renewal was out
             if ok == 1:
                 self._deadline[shard] = started + self.lease_s
             else:
