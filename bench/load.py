@@ -254,10 +254,17 @@ def generate(port: int, pool_path: str, n: int, seconds: int, first: int, step: 
 # ------------------------------------------------------------------- the relay role
 async def relay(port: int, topic: str) -> None:
     """Subscribe, decode, publish on ``relay/out/<vehicle>``: no matching (the ceiling)."""
+    import logging
+
     import aiomqtt
     import msgspec
 
-    async with aiomqtt.Client("127.0.0.1", port, identifier=f"relay-{os.getpid()}") as client:
+    # aiomqtt warns whenever more than 10 publishes await their PUBACK: that is the plan.
+    logging.getLogger("mqtt").setLevel(logging.ERROR)
+    # paho-mqtt keeps at most 20 QoS 1 publishes in flight unless told otherwise; the
+    # relay's window is RELAY_IN_FLIGHT, so the client must allow as many.
+    async with aiomqtt.Client("127.0.0.1", port, identifier=f"relay-{os.getpid()}",
+                              max_inflight_messages=RELAY_IN_FLIGHT) as client:
         await client.subscribe(topic, qos=1)
         inflight = asyncio.Semaphore(RELAY_IN_FLIGHT)
         pending: set[asyncio.Task[None]] = set()
@@ -272,7 +279,7 @@ async def relay(port: int, topic: str) -> None:
 
 
 # ---------------------------------------------------------------- the probe role
-def probe(argv: list[str], out_path: str, nodelay: bool, freeze: bool) -> int:
+def probe(argv: list[str], out_path: str, nodelay: bool, freeze: bool, inflight: int) -> int:
     """Run ``livematch <argv>`` with timing probes; write them to ``out_path`` at exit.
 
     Nothing in livematch is changed: the probes wrap public methods from outside.
@@ -282,7 +289,8 @@ def probe(argv: list[str], out_path: str, nodelay: bool, freeze: bool) -> int:
     longer than 20 ms (a 10 ms heartbeat that woke late). ``nodelay`` sets TCP_NODELAY on
     the MQTT socket (off in paho-mqtt: a small write waits for the previous one's ACK).
     ``freeze`` calls ``gc.freeze()`` once the event loop runs (the map and every module
-    loaded), so full collections no longer walk those objects.
+    loaded), so full collections no longer walk those objects. ``inflight`` > 0 lets the
+    MQTT client keep that many QoS 1 publishes in flight (paho-mqtt's default is 20).
     """
     import atexit
     import gc
@@ -318,6 +326,16 @@ def probe(argv: list[str], out_path: str, nodelay: bool, freeze: bool) -> int:
     Pipeline.export_vehicle = timed(  # type: ignore[method-assign]
         "export", Pipeline.export_vehicle)
     Pipeline.tick = timed("tick", Pipeline.tick)  # type: ignore[method-assign]
+    if inflight > 0:
+        import aiomqtt
+
+        plain_init = aiomqtt.Client.__init__
+
+        def init(self: Any, *args: Any, **kwargs: Any) -> None:
+            kwargs["max_inflight_messages"] = inflight
+            plain_init(self, *args, **kwargs)
+
+        aiomqtt.Client.__init__ = init  # type: ignore[method-assign]
     if nodelay:
         plain = socket_module.create_connection
 
@@ -439,7 +457,7 @@ def percentile(values: list[float], q: float) -> float | None:
 
 def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: Path,
              probe_to: Path | None = None, nodelay: bool = False, freeze: bool = False,
-             py_spy: bool = False) -> dict[str, Any]:
+             inflight: int = 0, py_spy: bool = False) -> dict[str, Any]:
     """One step: ``rate`` vehicles at 1 Hz for ``seconds`` through ``system``.
 
     With ``probe_to`` (livematch-1 only) the daemon runs under :func:`probe` (and with
@@ -479,7 +497,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                 if probe_to is not None:
                     cmd = [sys.executable, __file__, "--role", "probe", "--probe-out",
                            str(probe_to / "probe.json")] + (["--nodelay"] if nodelay else []) \
-                        + (["--freeze"] if freeze else [])
+                        + (["--freeze"] if freeze else []) \
+                        + (["--inflight", str(inflight)] if inflight else [])
                 sut.append(subprocess.Popen([*cmd, "run", "--config", str(cfg)], env=env))
         procs.extend(sut)
         sub = Subscriber(port, out_topic)
@@ -676,14 +695,14 @@ def _stack_table(path: Path, top: int) -> dict[str, list[tuple[str, float]]]:
 
 
 def profile(rate: int, seconds: int, generators: int, nodelay: bool, freeze: bool,
-            py_spy: bool, out: Path, name: str) -> dict[str, Any]:
+            inflight: int, py_spy: bool, out: Path, name: str) -> dict[str, Any]:
     """One livematch-1 step under the probes (and py-spy): where the time and p99 go."""
     with tempfile.TemporaryDirectory(prefix="lm-profile-") as tmp:
         folder = Path(tmp)
         pool = folder / "pool.npz"
         make_pool(pool)
         row = run_step("livematch-1", rate, seconds, generators, pool, probe_to=folder,
-                       nodelay=nodelay, freeze=freeze, py_spy=py_spy)
+                       nodelay=nodelay, freeze=freeze, inflight=inflight, py_spy=py_spy)
         rec = json.loads((folder / "probe.json").read_text(encoding="utf-8"))
         fixes = json.loads((folder / "fixes.json").read_text(encoding="utf-8"))
         stacks = (_stack_table(folder / "py-spy.txt", 25)
@@ -719,6 +738,7 @@ def profile(rate: int, seconds: int, generators: int, nodelay: bool, freeze: boo
     lat = sorted(at - ft for ft, at in fixes["fixes"])
     result = {
         "rate": rate, "seconds": seconds, "nodelay": nodelay, "freeze": freeze,
+        "inflight": inflight,
         "objects_at_exit": rec.get("objects_at_exit"), "step": row,
         "latency_ms": {"p50": percentile(lat, 0.5), "p99": percentile(lat, 0.99),
                        "max": percentile(lat, 1.0), "fixes": len(lat),
@@ -756,11 +776,14 @@ def render_profile(r: dict[str, Any]) -> str:
              "",
              f"Command: `.venv/bin/python bench/load.py --profile {r['rate']} --seconds "
              f"{r['seconds']}{' --nodelay' if r['nodelay'] else ''}"
-             f"{' --freeze' if r['freeze'] else ''} --py-spy`; load average "
+             f"{' --freeze' if r['freeze'] else ''}"
+             f"{' --inflight ' + str(r['inflight']) if r['inflight'] else ''} --py-spy`; "
+             "load average "
              f"{step['loadavg_1m']} before the step; {os.cpu_count()} cores shared with the "
              "broker, generators, subscriber and other people's work. TCP_NODELAY on the "
              f"daemon's MQTT socket: {'set by the probe' if r['nodelay'] else 'no (as shipped)'}"
-             f"; gc.freeze() after start: {'yes' if r['freeze'] else 'no (as shipped)'}.",
+             f"; gc.freeze() after start: {'yes' if r['freeze'] else 'no (as shipped)'}; "
+             f"QoS 1 publishes in flight: {r['inflight'] or '20 (paho default, as shipped)'}.",
              "",
              "```json",
              json.dumps({k: v for k, v in r.items() if k not in ("step", "py_spy")}, indent=1),
@@ -818,9 +841,13 @@ def report(args: argparse.Namespace, rows: list[dict[str, Any]],
         "| system | max sustained fixes/s | first failed | note |",
         "|---|---:|---:|---|",
     ]
+    harness = by.get("direct")
     for c in ceilings:
         note = "generator-bound: the harness, not the system, stopped the search" \
             if c["generator_bound"] else ""
+        if (c["system"] != "direct" and harness and c["max_sustained_per_s"]
+                and c["max_sustained_per_s"] >= harness):
+            note = "at the harness's own ceiling (direct): a lower bound"
         lines.append(f"| {c['system']} | {fmt(c['max_sustained_per_s'])} | "
                      f"{fmt(c['first_failed_per_s'])} | {note} |")
     lines += [
@@ -887,25 +914,31 @@ def main(argv: list[str] | None = None) -> int:
                     help="with --profile: set TCP_NODELAY on the daemon's MQTT socket")
     ap.add_argument("--freeze", action="store_true",
                     help="with --profile: gc.freeze() in the daemon once it runs")
+    ap.add_argument("--inflight", type=int, default=0,
+                    help="with --profile: QoS 1 publishes the daemon keeps in flight")
     ap.add_argument("--py-spy", action="store_true",
                     help="with --profile: sample the daemon with py-spy (pip install py-spy)")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     argv = sys.argv[1:] if argv is None else argv
     if argv[:2] == ["--role", "probe"]:  # --probe-out PATH [--nodelay] <livematch args>
         rest = argv[4:]
-        flags = {"--nodelay", "--freeze"}
         opts = set()
-        while rest and rest[0] in flags:
-            opts.add(rest.pop(0))
-        return probe(rest, argv[3], "--nodelay" in opts, "--freeze" in opts)
+        inflight = 0
+        while rest and rest[0] in {"--nodelay", "--freeze", "--inflight"}:
+            flag = rest.pop(0)
+            if flag == "--inflight":
+                inflight = int(rest.pop(0))
+            opts.add(flag)
+        return probe(rest, argv[3], "--nodelay" in opts, "--freeze" in opts, inflight)
     args = ap.parse_args(argv)
     if args.profile:
         out = Path(args.out)
         out.mkdir(parents=True, exist_ok=True)
         name = "load.profile" + ("-nodelay" if args.nodelay else "") + (
-            "-freeze" if args.freeze else "")
+            "-freeze" if args.freeze else "") + (
+            f"-inflight{args.inflight}" if args.inflight else "")
         profile(args.profile, args.seconds, args.generators, args.nodelay, args.freeze,
-                args.py_spy, out, name)
+                args.inflight, args.py_spy, out, name)
         return 0
     if args.role == "generator":
         generate(args.port, args.pool, args.n, args.seconds, args.first, args.step)
