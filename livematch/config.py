@@ -84,8 +84,12 @@ class MqttConfig:
     """``[mqtt]``: broker, topics and session. Times in seconds, sizes in bytes.
 
     ``topic`` is the subscription filter; the vehicle id comes from the payload or from
-    the filter's ``+`` level. ``control_topic`` carries route assignments (retained,
-    ``{"route": "550"}``; its ``+`` level is the vehicle; ``""`` subscribes to none).
+    the filter's ``+`` level. A ``{shard}`` level (``fleet/{shard}/+/position``) carries
+    the vehicle's shard (:func:`livematch.service.shards.shard_of` with
+    ``group.shards``): a worker of a group then subscribes only to its shards' topics
+    and those it stands by for, a standalone daemon to all (``{shard}`` read as ``+``).
+    ``control_topic`` carries route assignments (retained, ``{"route": "550"}``; its
+    ``+`` level is the vehicle; ``""`` subscribes to none).
     Output topics are templates with ``{vehicle}``. A persistent MQTT v5 session
     (``session_expiry_s`` > 0) keeps QoS 1 fixes published while the daemon restarts.
     ``intake_max`` bounds the messages received and waiting to be matched; beyond it the
@@ -129,13 +133,19 @@ class MqttConfig:
                 parts.port  # noqa: B018 - raises ValueError on a bad port
             except ValueError:
                 out.append(("url", f"has a bad port, got {self.url!r}"))
-        if not _valid_filter(self.topic) or self.topic.split("/").count("+") > 1:
+        levels = self.topic.split("/")
+        plain = self.topic.replace("{shard}", "+")  # what is subscribed to without a group
+        if "{shard}" in self.topic and (self.topic.count("{shard}") != 1
+                                        or levels.count("{shard}") != 1):
+            out.append(("topic", f"may hold {{shard}} once, as a whole level "
+                                 f"(fleet/{{shard}}/+/position), got {self.topic!r}"))
+        elif not _valid_filter(plain) or levels.count("+") > 1:
             out.append(("topic", f"must be an MQTT topic filter with at most one '+' level "
                                  f"(the vehicle id), got {self.topic!r}"))
         else:
             clash = [key for key in ("match_topic", "commit_topic", "alert_topic",
                                      "reject_topic")
-                     if _filter_matches(self.topic, getattr(self, key).replace("{vehicle}", "v"))]
+                     if _filter_matches(plain, getattr(self, key).replace("{vehicle}", "v"))]
             if clash:
                 out.append(("topic", f"must not match the output topics "
                                      f"{', '.join('mqtt.' + k for k in clash)} (the daemon "

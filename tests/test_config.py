@@ -75,6 +75,9 @@ def test_load_config_eps_levels_not_increasing(tmp_path: Path) -> None:
     ("[feed]\nmax_year = 1990\n", "need 1 <= min_year <= max_year <= 9998"),
     ("[feed]\ntopic_filter = 'x/+'\n", "feed.topic_filter is set by mqtt.topic"),
     ("[feed]\nmax_vehicles = -1\n", "max_vehicles must be >= 0, got -1"),
+    ("[mqtt]\ntopic = 'fleet/{shard}/{shard}/+'\n", "mqtt.topic may hold {shard} once"),
+    ("[mqtt]\ntopic = 'fleet/s{shard}/+'\n", "mqtt.topic may hold {shard} once, as a whole"),
+    ("[mqtt]\ntopic = 'fleet/{shard}/+/+'\n", "mqtt.topic must be an MQTT topic filter"),
     ("[publish]\nreject_queue_max = -5\n", "publish.reject_queue_max must be >= 0, got -5"),
     ("[matcher]\nmax_lag_s = -1\n", "matcher.max_lag_s must be a positive number"),
     ("[matcher]\nspeed = 3\n", "unknown key matcher.speed"),
@@ -265,3 +268,11 @@ def test_load_config_every_example_in_config_folder(name: str) -> None:
     path = Path(__file__).resolve().parent.parent / "config" / name
     config = load_config(path, env={})
     assert config.source.endswith(name)
+
+
+def test_load_config_topic_with_shard_level(tmp_path: Path) -> None:
+    """A {shard} level in mqtt.topic is accepted and reaches the feed's topic filter."""
+    path = write(tmp_path, "[mqtt]\ntopic = 'fleet/{shard}/+/position'\n")
+    config = load_config(path, env={})
+    assert config.mqtt.topic == "fleet/{shard}/+/position"
+    assert config.feed.topic_filter == "fleet/{shard}/+/position"

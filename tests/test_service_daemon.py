@@ -37,6 +37,7 @@ from livematch.mapdata.netfile import save_network
 from livematch.pipeline import Pipeline
 from livematch.service.daemon import Daemon
 from livematch.service.logs import KeyValueFormatter
+from livematch.service.shards import shard_of
 
 pytest_plugins = ("fixtures_services",)
 
@@ -697,3 +698,31 @@ async def test_daemon_vehicle_cap_rejects_new_vehicles_and_serves_the_others(
     assert daemon.pipeline.vehicles() == ["cap-a", "cap-b"]
     cap_lines = [r for r in caplog.records if "vehicle cap reached" in r.getMessage()]
     assert len(cap_lines) == 1  # once per 10 s, not once per fix
+
+
+async def test_daemon_standalone_topic_with_shard_reads_every_shard(
+        mosquitto: Mosquitto, prefix: str, tmp_path: Path) -> None:
+    """A standalone daemon on ``fleet/{shard}/+/position`` subscribes to every shard
+    (``{shard}`` read as ``+``), matches fixes on their vehicle's shard topic and rejects
+    one on another shard's topic as ``wrong_shard``."""
+    cfg = write_config(tmp_path, prefix, broker=mosquitto.url, topic="fleet/{shard}/+/position",
+                       extra="[group]\nshards = 16\n")
+    feeds = {v: drive(v, 4, start_x=100.0 + 600 * i) for i, v in enumerate(["sa", "sb"])}
+    daemon = make_daemon(cfg)
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col, \
+            running(daemon):
+        async with publisher(mosquitto.port) as pub:
+            for v, feed in feeds.items():
+                for _, payload in feed:
+                    await pub.publish(f"{prefix}/fleet/{shard_of(v, 16)}/{v}/position",
+                                      payload, qos=1)
+            wrong = (shard_of("sa", 16) + 1) % 16
+            await pub.publish(f"{prefix}/fleet/{wrong}/sa/position",
+                              drive("sa", 1, first=9)[0][1], qos=1)
+        await col.wait_for("/out/match/sb", 4)
+        await col.wait_for("/out/rejects", 1)
+    for v, feed in feeds.items():
+        assert [r["time"] for r in col.records(f"/out/match/{v}")] == [t for t, _ in feed]
+    rejects = col.records("/out/rejects")
+    assert [(r["reason"], r["topic"]) for r in rejects] == [
+        ("wrong_shard", f"{prefix}/fleet/{wrong}/sa/position")]

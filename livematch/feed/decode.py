@@ -43,11 +43,13 @@ from livematch.errors import BadMessageError
 
 __all__ = [
     "REASONS",
+    "SHARD_LEVEL",
     "FeedLimits",
     "decode_position",
     "known_vehicle",
     "looks_like_position",
     "parse_time",
+    "shard_from_topic",
     "validate_vehicle",
     "vehicle_from_topic",
 ]
@@ -66,8 +68,12 @@ REASONS = (
     "vehicle_mismatch", # payload vehicle differs from the topic's vehicle level
     "future_time",      # fix time more than FeedLimits.max_future_s ahead of its receive time
     "rate_limited",     # more fixes of one vehicle per second than feed.max_rate_hz allows
-    "too_many_vehicles",  # a new vehicle while the daemon holds limits.max_vehicles already
+    "too_many_vehicles",  # a new vehicle while the daemon holds feed.max_vehicles already
+    "wrong_shard",      # the topic's shard level is not the shard of the message's vehicle
 )
+
+#: The topic level that stands for the vehicle's shard in ``mqtt.topic`` (worker groups).
+SHARD_LEVEL = "{shard}"
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -182,7 +188,8 @@ def vehicle_from_topic(topic: str, topic_filter: str = "fleet/+/position") -> st
     """Return the topic level that the filter's ``+`` stands for, or None.
 
     None when the filter has no ``+``, or the topic does not match the filter (then the
-    vehicle must come from the payload). The level is returned as is, unvalidated.
+    vehicle must come from the payload). The level is returned as is, unvalidated. A
+    ``{shard}`` level (:data:`SHARD_LEVEL`) matches any one level and is not the vehicle.
 
     >>> vehicle_from_topic("fleet/bus17/position")
     'bus17'
@@ -192,6 +199,8 @@ def vehicle_from_topic(topic: str, topic_filter: str = "fleet/+/position") -> st
     '7'
     >>> vehicle_from_topic("fleet//position")  # an empty level matches '+'
     ''
+    >>> vehicle_from_topic("fleet/17/bus17/position", "fleet/{shard}/+/position")
+    'bus17'
     """
     want = topic_filter.split("/")
     have = topic.split("/")
@@ -203,9 +212,36 @@ def vehicle_from_topic(topic: str, topic_filter: str = "fleet/+/position") -> st
             return None
         if level == "+":
             vehicle = have[i]
-        elif level != have[i]:
+        elif level != have[i] and level != SHARD_LEVEL:
             return None
     return vehicle if len(have) == len(want) else None
+
+
+def shard_from_topic(topic: str, topic_filter: str) -> str | None:
+    """The topic level at the filter's ``{shard}`` level, unvalidated; None without one.
+
+    None too when the topic does not match the filter.
+
+    >>> shard_from_topic("fleet/17/bus17/position", "fleet/{shard}/+/position")
+    '17'
+    >>> shard_from_topic("fleet/bus17/position", "fleet/+/position") is None
+    True
+    """
+    want = topic_filter.split("/")
+    if SHARD_LEVEL not in want:
+        return None
+    have = topic.split("/")
+    found: str | None = None
+    for i, level in enumerate(want):
+        if level == "#":
+            return found if len(have) >= i else None
+        if i >= len(have):
+            return None
+        if level == SHARD_LEVEL:
+            found = have[i]
+        elif level not in ("+", have[i]):
+            return None
+    return found if len(have) == len(want) else None
 
 
 def validate_vehicle(vehicle: str, limits: FeedLimits, where: str) -> str:

@@ -50,7 +50,13 @@ from typing import Any, Protocol
 import aiomqtt
 
 from livematch.config import DaemonConfig, MqttConfig, parse_hostport, redact_url
-from livematch.feed.decode import known_vehicle, looks_like_position, vehicle_from_topic
+from livematch.feed.decode import (
+    SHARD_LEVEL,
+    known_vehicle,
+    looks_like_position,
+    shard_from_topic,
+    vehicle_from_topic,
+)
 from livematch.pipeline import REJECT_PAYLOAD_CHARS, Output
 from livematch.service.http import HealthServer
 from livematch.service.logs import fields
@@ -63,7 +69,13 @@ from livematch.service.mqtt import (
     drain,
     make_client,
 )
-from livematch.service.shards import LeaseManager, preference, shard_of, target_share
+from livematch.service.shards import (
+    LeaseManager,
+    preference,
+    rank_workers,
+    shard_of,
+    target_share,
+)
 from livematch.service.store import StateStore, StoreError, open_store, redis_client
 
 log = logging.getLogger("livematch.daemon")
@@ -224,6 +236,12 @@ class Daemon:
         self._members: list[str] | None = None  # the group's live workers, last heartbeat
         self._rebalance_due = asyncio.Event()
         self._cap_logged_at = -math.inf
+        # A {shard} level in mqtt.topic: the feed is partitioned by shard at the source.
+        self._sharded_topic = SHARD_LEVEL in config.mqtt.topic.split("/")
+        self._client: aiomqtt.Client | None = None  # the current connection, if any
+        self._subs: set[int] = set()  # shard topics subscribed on this connection
+        self._want_subs: set[int] = set()  # shard topics this worker should receive
+        self._subs_lock = asyncio.Lock()
         self._enqueued = 0  # outputs ever queued
         self._acked = 0  # outputs ever acknowledged by the broker (queue order)
         self._shard_cache: dict[str, int] = {}
@@ -460,7 +478,9 @@ class Daemon:
         if control and vehicle_from_topic(topic, control) is not None:
             return None
         vehicle = known_vehicle(topic, payload, self.config.feed)
-        return self._shard(vehicle if vehicle is not None else topic)
+        if vehicle is not None:
+            return self._shard(vehicle)
+        return self._topic_shard(topic) if self._sharded_topic else self._shard(topic)
 
     def _keep(self, shard: int, at: float, topic: str, payload: bytes) -> None:
         """Keep a possible fix for ``buffer_s`` (at most ``buffer_max`` per shard).
@@ -511,6 +531,8 @@ class Daemon:
         leases = self.leases
         assert leases is not None
         period = self.config.group.lease_s / 3
+        if self._sharded_topic:
+            await self._subscribe_before_joining()
         while not self._stopping.is_set():
             try:
                 for shard in await leases.renew():  # first: the deadlines depend on it
@@ -561,6 +583,9 @@ class Daemon:
         leases = self.leases
         assert leases is not None
         self._check_deadlines()
+        if self._sharded_topic:
+            await self._claim_round(members)
+            return
         target = target_share(leases.n_shards, len(members))
         rank = {s: i for i, s in enumerate(preference(self.worker, leases.n_shards))}
         held = sorted(leases.held, key=rank.__getitem__)
@@ -586,6 +611,150 @@ class Daemon:
                 fence = await leases.acquire(shard)
                 if fence is not None:
                     await self._take(shard, fence)
+
+    def _ranked(self, members: list[str]) -> tuple[set[int], set[int]]:
+        """(shards this worker holds, shards it stands by for) by rendezvous ranking."""
+        assert self.leases is not None
+        live = sorted({*members, self.worker})
+        mine: set[int] = set()
+        standby: set[int] = set()
+        for shard in range(self.leases.n_shards):
+            ranked = rank_workers(shard, live)
+            if ranked[0] == self.worker:
+                mine.add(shard)
+            elif len(ranked) > 1 and ranked[1] == self.worker:
+                standby.add(shard)
+        return mine, standby
+
+    async def _claim_round(self, members: list[str]) -> None:
+        """A rebalancing round when the topic carries the shard (``{shard}``).
+
+        Each shard belongs to the live worker ranked first for it (rendezvous hashing),
+        and the second stands by: both receive its topic and keep its fixes. So when a
+        worker dies, each of its shards goes to the worker that has its fixes since the
+        last checkpoint; when one joins (it subscribes before it announces itself), the
+        holders hand over the shards it ranks first for, with a fenced checkpoint, and
+        it has received every fix since. Shares are even only on average (rendezvous
+        hashing; the plain topic keeps ``ceil(shards / workers)`` exactly).
+        """
+        leases = self.leases
+        assert leases is not None
+        mine, standby = self._ranked(members)
+        await self._sync_subscriptions(mine | standby | set(leases.held))
+        excess = sorted(s for s in leases.held if s not in mine)
+        if excess:
+            self._active.difference_update(excess)  # stop matching them: fixes only kept
+            await self._outputs_acked(self._enqueued, _ACK_WAIT_S)  # their answers out
+            try:
+                for shard in excess:
+                    await self._hand_over(shard)
+            except StoreError:
+                for shard in excess:
+                    if shard in leases.held:
+                        self._lose(shard, "handover_failed")
+                raise
+        for shard in sorted(mine - set(leases.held)):
+            if self._stopping.is_set():
+                break
+            if shard not in self._subs:
+                continue  # its fixes would not reach this worker yet
+            fence = await leases.acquire(shard)
+            if fence is not None:
+                await self._take(shard, fence)
+        await self._sync_subscriptions(mine | standby | set(leases.held))
+
+    async def _subscribe_before_joining(self) -> None:
+        """With a ``{shard}`` topic, subscribe before announcing this worker.
+
+        The others hand over the shards it ranks first for as soon as they see it, and
+        it must have received every fix since their checkpoint.
+        """
+        leases = self.leases
+        assert leases is not None
+        while not self._stopping.is_set():
+            try:
+                members = await leases.heartbeat(leave=True)  # read, not yet announced
+            except StoreError as exc:
+                self.metrics.lease_failures.inc()
+                log.warning("reading the group failed; will retry", extra=fields(error=exc))
+            else:
+                mine, standby = self._ranked(members)
+                if await self._sync_subscriptions(mine | standby):
+                    return
+            await self._sleep_unless_stopping(0.2)
+
+    def _shard_filter(self, shard: int) -> str:
+        """The subscription filter of one shard's topic."""
+        levels = self._mqtt.topic.split("/")
+        return "/".join(str(shard) if level == SHARD_LEVEL else level for level in levels)
+
+    def _feed_filters(self, shards: set[int]) -> list[str]:
+        """What a new connection subscribes to for the feed.
+
+        ``shards`` are the shard topics wanted, in a group with a ``{shard}`` topic.
+        """
+        topic = self._mqtt.topic
+        if not self._sharded_topic:
+            return [topic]
+        if self.leases is None:  # standalone: every shard
+            return [topic.replace(SHARD_LEVEL, "+")]
+        return [self._shard_filter(s) for s in sorted(shards)]
+
+    async def _sync_subscriptions(self, want: set[int]) -> bool:
+        """Receive exactly the shard topics in ``want``.
+
+        False when not connected (the next connection subscribes to them) or when the
+        broker refused.
+        """
+        self._want_subs = set(want)
+        async with self._subs_lock:
+            client = self._client
+            if client is None or not self.broker_connected:
+                return False
+            qos = self._mqtt.qos
+            try:
+                for shard in sorted(want - self._subs):
+                    await client.subscribe(self._shard_filter(shard), qos=qos)
+                    self._subs.add(shard)
+                for shard in sorted(self._subs - want):
+                    await client.unsubscribe(self._shard_filter(shard))
+                    self._subs.discard(shard)
+            except aiomqtt.MqttError as exc:
+                log.warning("shard subscriptions not updated; will retry",
+                            extra=fields(error=exc))
+                return False
+        return True
+
+    def _topic_shard(self, topic: str) -> int:
+        """The shard named by a topic's ``{shard}`` level (else the topic's hash)."""
+        level = shard_from_topic(topic, self._mqtt.topic)
+        n = self.config.group.shards
+        if level is not None and level.isdigit() and int(level) < n:
+            return int(level)
+        return self._shard(topic)
+
+    def _wrong_shard(self, topic: str, payload: bytes, at: float) -> Output | None:
+        """A ``wrong_shard`` reject when the topic's shard is not the vehicle's, else None.
+
+        A sender that computes another shard (another ``group.shards``, another hash)
+        would otherwise have its fixes matched by a worker that does not hold the
+        vehicle, or by none.
+        """
+        if not self._sharded_topic:
+            return None
+        level = shard_from_topic(topic, self._mqtt.topic)
+        vehicle = known_vehicle(topic, payload, self.config.feed)
+        if level is None or vehicle is None:
+            return None
+        expected = self._shard(vehicle)
+        if level == str(expected):
+            return None
+        return Output("reject", vehicle, {
+            "at": at, "topic": topic, "reason": "wrong_shard",
+            "detail": f"topic shard level {level[:20]!r} is not shard {expected} of vehicle "
+                      f"{vehicle!r} (group.shards = {self.config.group.shards})",
+            "payload": payload.decode("utf-8", "replace")[:REJECT_PAYLOAD_CHARS],
+        })
 
     async def _take(self, shard: int, fence: int) -> None:
         """Restore a newly acquired shard's vehicles, replay the fixes kept, match it."""
@@ -864,7 +1033,14 @@ class Daemon:
                     self.broker_connected = True
                     self._listening_since = time.time()
                     backoff.reset()
-                    await client.subscribe(cfg.topic, qos=cfg.qos)
+                    self._client = client
+                    async with self._subs_lock:
+                        self._subs = set()
+                        wanted = set(self._want_subs)
+                        for feed_filter in self._feed_filters(wanted):
+                            await client.subscribe(feed_filter, qos=cfg.qos)
+                        if self._sharded_topic and self.leases is not None:
+                            self._subs = wanted
                     if cfg.control_topic:
                         await client.subscribe(cfg.control_topic, qos=cfg.qos)
                     log.info("connected and subscribed",
@@ -875,6 +1051,8 @@ class Daemon:
                 except asyncio.CancelledError:
                     cancelled = True
                     raise
+                finally:
+                    self._client = None
         except aiomqtt.MqttError:
             if cancelled:  # aiomqtt's __aexit__ replaced our cancellation (disconnect timed out)
                 raise asyncio.CancelledError from None
@@ -984,6 +1162,12 @@ class Daemon:
             payload = str(payload).encode()
         topic = message.topic.value
         at = time.time()
+        wrong = self._wrong_shard(topic, bytes(payload), at)
+        if wrong is not None:  # published by the holder of the topic's shard
+            if self.leases is None or self._answers(self._topic_shard(topic)):
+                self._route(wrong)
+            ack(client, message)
+            return
         if self.leases is not None:
             self._check_deadlines()
             shard = self._message_shard(topic, bytes(payload))

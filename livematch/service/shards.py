@@ -78,9 +78,27 @@ def preference(worker: str, n_shards: int) -> list[int]:
         >>> preference("w1", 1)
         [0]
     """
-    def score(shard: int) -> bytes:
-        return hashlib.blake2b(f"{worker}\0{shard}".encode(), digest_size=8).digest()
-    return sorted(range(n_shards), key=score)
+    return sorted(range(n_shards), key=lambda shard: _score(worker, shard))
+
+
+def rank_workers(shard: int, workers: Iterable[str]) -> list[str]:
+    """The workers in the order they claim a shard (rendezvous hashing, as :func:`preference`).
+
+    With a ``{shard}`` topic the first one holds the shard and the second stands by
+    (receives its topic and keeps its fixes for a takeover). When a worker leaves, only
+    its shards move, each to its second: the worker that has been keeping its fixes.
+
+    Example:
+        >>> rank_workers(3, ["w1", "w2"]) in (["w1", "w2"], ["w2", "w1"])
+        True
+        >>> rank_workers(3, [])
+        []
+    """
+    return sorted(workers, key=lambda worker: _score(worker, shard))
+
+
+def _score(worker: str, shard: int) -> bytes:
+    return hashlib.blake2b(f"{worker}\0{shard}".encode(), digest_size=8).digest()
 
 
 def target_share(n_shards: int, n_workers: int) -> int:

@@ -1,0 +1,164 @@
+"""The shard in the topic (``fleet/{shard}/+/position``): workers receive only their part."""
+
+from __future__ import annotations
+
+import asyncio
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import redis.asyncio as aioredis
+from services import (
+    Collector,
+    Mosquitto,
+    RedisServer,
+    drive,
+    free_port,
+    publisher,
+    subprocess_env,
+    town,
+    write_config,
+)
+from test_faults_suite import metric_sum
+from test_service_shards_failover import checkpoint_times
+
+from livematch.mapdata.netfile import save_network
+from livematch.service.shards import rank_workers, shard_of
+
+pytest_plugins = ("fixtures_services",)
+
+SHARDS = 8
+WORKERS = ("w1", "w2", "w3")
+
+
+def start_worker(config: Path, worker: str, port: int, log: Path) -> subprocess.Popen[bytes]:
+    with log.open("ab") as out:
+        return subprocess.Popen(
+            [sys.executable, "-m", "livematch.cli", "run", "--config", str(config),
+             "--group", "g", "--shards", str(SHARDS), "--worker", worker,
+             "--metrics", f"127.0.0.1:{port}"],
+            stdout=out, stderr=out, env=subprocess_env())
+
+
+def ranked(workers: tuple[str, ...]) -> dict[str, tuple[set[int], set[int]]]:
+    """Each worker's (shards held, shards stood by for) by rendezvous ranking."""
+    out: dict[str, tuple[set[int], set[int]]] = {w: (set(), set()) for w in workers}
+    for shard in range(SHARDS):
+        first, second = rank_workers(shard, workers)[:2]
+        out[first][0].add(shard)
+        out[second][1].add(shard)
+    return out
+
+
+async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
+        mosquitto: Mosquitto, redis_server: RedisServer, prefix: str, tmp_path: Path) -> None:
+    """Three workers on ``{prefix}/fleet/{shard}/+/position``: each holds the shards it
+    ranks first for and receives only those and the ones it stands by for (exact
+    message counts); a fix on another shard's topic is a ``wrong_shard`` reject; after
+    a SIGKILL the standbys take the dead worker's shards: every fix is answered, no
+    checkpoint goes back, every vehicle's certificate window grows 1, 2, 3, ..."""
+    net = tmp_path / "town.lmnet"
+    save_network(town(), net)
+    cfg = write_config(tmp_path, prefix, broker=mosquitto.url, store=redis_server.url,
+                       network=str(net), extra="[group]\nlease_s = 2.0\n",
+                       topic="fleet/{shard}/+/position")
+    ports = {w: free_port() for w in WORKERS}
+    logs = {w: tmp_path / f"{w}.log" for w in WORKERS}
+    vehicles = [f"sv-{i}" for i in range(9)]
+    n_fixes = 30
+    feeds = {v: drive(v, n_fixes, start_x=100.0 + 400 * i) for i, v in enumerate(vehicles)}
+    topic = {v: f"{prefix}/fleet/{shard_of(v, SHARDS)}/{v}/position" for v in vehicles}
+    client = aioredis.Redis.from_url(redis_server.url)
+    backwards: list[str] = []
+    seen: dict[str, float] = {}
+
+    async def watch_checkpoints() -> None:
+        while True:
+            for v, t in (await checkpoint_times(client, prefix)).items():
+                if t < seen.get(v, t):
+                    backwards.append(f"{v}: {seen[v]} -> {t}")
+                seen[v] = max(t, seen.get(v, t))
+            await asyncio.sleep(0.05)
+
+    async def held(workers: tuple[str, ...]) -> list[float]:
+        return [await metric_sum(ports[w], "livematch_shards_held") for w in workers]
+
+    async def settle(workers: tuple[str, ...]) -> None:
+        want = [float(len(ranked(workers)[w][0])) for w in workers]
+        deadline = time.monotonic() + 60
+        while await held(workers) != want:
+            assert time.monotonic() < deadline, f"held {await held(workers)}, want {want}"
+            for w in workers:
+                assert procs[w].poll() is None, logs[w].read_text()
+            await asyncio.sleep(0.2)
+        await asyncio.sleep(1.5)  # the round's last step: unsubscribe what is not wanted
+
+    async def publish(lo: int, hi: int) -> None:
+        async with publisher(mosquitto.port) as pub:
+            for i in range(lo, hi):
+                for v in vehicles:
+                    await pub.publish(topic[v], feeds[v][i][1], qos=1)
+                await asyncio.sleep(0.05)
+
+    async def answered(hi: int) -> None:
+        want = {v: {t for t, _ in feeds[v][:hi]} for v in vehicles}
+        deadline = time.monotonic() + 60
+        while {v: {r["time"] for r in col.records(f"/out/match/{v}")} for v in vehicles} \
+                != want:
+            assert time.monotonic() < deadline, "fixes not answered"
+            await asyncio.sleep(0.1)
+
+    procs = {w: start_worker(cfg, w, ports[w], logs[w]) for w in WORKERS}
+    watcher = asyncio.create_task(watch_checkpoints())
+    try:
+        async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col:
+            await settle(WORKERS)
+            before = {w: await metric_sum(ports[w], "livematch_messages_received_total")
+                      for w in WORKERS}
+            await publish(0, 15)
+            await answered(15)
+            roles = ranked(WORKERS)
+            for w in WORKERS:  # only the shards it holds or stands by for reach a worker
+                mine, standby = roles[w]
+                expect = sum(15 for v in vehicles if shard_of(v, SHARDS) in mine | standby)
+                got = await metric_sum(ports[w], "livematch_messages_received_total")
+                assert got - before[w] == expect, (w, got - before[w], expect)
+            wrong = (shard_of("sv-0", SHARDS) + 1) % SHARDS
+            async with publisher(mosquitto.port) as pub:
+                await pub.publish(f"{prefix}/fleet/{wrong}/sv-0/position",
+                                  drive("sv-0", 1, first=200)[0][1], qos=1)
+            await col.wait_for("/out/rejects", 1)
+            victim = rank_workers(shard_of("sv-0", SHARDS), WORKERS)[0]
+            procs[victim].send_signal(signal.SIGKILL)
+            await asyncio.to_thread(procs[victim].wait, 10)
+            survivors = tuple(w for w in WORKERS if w != victim)
+            await publish(15, n_fixes)
+            await answered(n_fixes)
+            await settle(survivors)
+            deadline = time.monotonic() + 20
+            while seen != {v: max(t for t, _ in feeds[v]) for v in vehicles}:
+                assert time.monotonic() < deadline, f"checkpoints lag: {seen}"
+                await asyncio.sleep(0.1)
+            for w in survivors:
+                procs[w].send_signal(signal.SIGTERM)
+                assert await asyncio.to_thread(procs[w].wait, 30) == 0, logs[w].read_text()
+    finally:
+        watcher.cancel()
+        for proc in procs.values():
+            if proc.poll() is None:
+                proc.kill()
+                proc.wait()
+        await client.aclose()
+    rejects = col.records("/out/rejects")
+    assert [r["reason"] for r in rejects] == ["wrong_shard"]
+    assert rejects[0]["detail"] == (f"topic shard level '{wrong}' is not shard "
+                                    f"{shard_of('sv-0', SHARDS)} of vehicle 'sv-0' "
+                                    f"(group.shards = {SHARDS})")
+    assert backwards == []
+    for v in vehicles:
+        windows: dict[float, set[int]] = {}
+        for r in col.records(f"/out/match/{v}"):
+            windows.setdefault(r["time"], set()).add(r["window_fixes"])
+        assert [windows[t] for t in sorted(windows)] == [{k} for k in range(1, n_fixes + 1)], v
