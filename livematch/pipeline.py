@@ -62,6 +62,7 @@ from typing import Any
 
 import msgspec
 
+from livematch.core.candidates import warm_up
 from livematch.core.events import Alert, Assignment, Commit, Event, Filtered, to_record
 from livematch.core.fix import Fix
 from livematch.core.monitors import AlertSettings, Fence, FenceSet, Route, RouteChain
@@ -261,6 +262,7 @@ class Pipeline:
         self.control_topic = control_topic
         self._control: dict[str, str] = {}  # vehicle -> route id from control messages
         self._stale_due = math.inf  # no vehicle can turn stale before this receive time
+        warm_up()  # compile the matcher's kernels before the first message, not during it
 
     # ------------------------------------------------------------------ messages
     def handle(self, topic: str, payload: bytes, at: float) -> list[Output]:

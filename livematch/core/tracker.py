@@ -42,21 +42,15 @@ import zlib
 from collections.abc import Iterator
 from typing import Any
 
+import numpy as np
+
+from livematch.core.candidates import CandidateTree
 from livematch.core.events import Assignment, Commit, Event, Filtered, MatchedFix
-from livematch.core.fastsweep import fast_sweep_step
 from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
 from livematch.core.routing import connect
 from livematch.core.settings import MatchSettings
-from livematch.core.sweep import (
-    Node,
-    StepContext,
-    advance,
-    ancestor_at,
-    best_leaf,
-    common_ancestor,
-    descends_from,
-)
+from livematch.core.sweep import Node, StepContext, advance
 from livematch.core.view import NetworkView, view_of
 from livematch.errors import BadStateError
 
@@ -65,21 +59,22 @@ JUMP_TRUST_AFTER = 3
 
 
 class Level:
-    """One rung of the eps ladder: its live states and the bounds of its windows.
+    """One rung of the eps ladder: its candidate tree and the bounds of its windows.
 
     Attributes:
         eps: metres.
-        live: segment -> state at the newest fix (empty: dead).
+        tree: the candidate tree; its live block holds the states at the newest fix
+            (empty: dead).
         tree_seq: sequence number of the fix where the current candidate tree started.
         cert_seq, cert_t: first fix (sequence number, time) of the certificate window.
         trim_seq: the last fix at which old history of the tree was cut.
     """
 
-    __slots__ = ("cert_seq", "cert_t", "eps", "live", "tree_seq", "trim_seq")
+    __slots__ = ("cert_seq", "cert_t", "eps", "tree", "tree_seq", "trim_seq")
 
     def __init__(self, eps: float) -> None:
         self.eps = eps
-        self.live: dict[int, Node] = {}
+        self.tree = CandidateTree()
         self.tree_seq = 0
         self.cert_seq = 0
         self.cert_t = 0.0
@@ -122,6 +117,10 @@ class Tracker:
             raise ValueError(f"matcher.{key} {what}")
         self._view: NetworkView = view_of(network)
         self.levels = [Level(e) for e in self.settings.eps_levels]
+        s = self.settings
+        # the sweep kernel's step scalars after eps, x0, y0, x1, y1, chord (StepContext)
+        self._weights = (1.0 / (2.0 * s.sigma_m * s.sigma_m), 1.0 / s.beta_m,
+                         s.turn_back_cost, 1.0 / s.motion_m)
         self.seq = 0
         self.last: tuple[float, float, float] | None = None  # t, x, y of the last accepted fix
         self.last_released_t: float | None = None
@@ -155,8 +154,9 @@ class Tracker:
                 self._accept(ready, events)
         covering = self._covering()
         if covering:
-            best = best_leaf(covering[0].live, self.last_seg)
-            self._commit_chain(best, events, prune=covering[0], settle_all=True)
+            tree = covering[0].tree
+            self._commit_chain(tree, tree.best(self.last_seg), events, prune=covering[0],
+                               settle_all=True)
         return events
 
     def _admit(self, fix: Fix, events: list[Event]) -> Iterator[Fix]:
@@ -209,27 +209,36 @@ class Tracker:
             x0, y0, dt = prev[1], prev[2], fix.t - prev[0]
         chord = math.hypot(fix.x - x0, fix.y - y0)
         gap = prev is not None and (dt > s.gap_s or chord > s.gap_m)
-        salvage: list[tuple[Level, dict[int, Node]]] = []
+        salvage: list[tuple[Level, CandidateTree]] = []
+        step = np.array((0.0, x0, y0, fix.x, fix.y, chord, *self._weights))
         for level in self.levels:
+            tree = level.tree
+            if len(tree) and not gap:
+                step[0] = level.eps
+                if tree.sweep(self._view, step, seq, fix.t):
+                    continue
+            # the window died (or the step is a gap): bridge, else start afresh
             ctx = StepContext.between(self._view, s, level.eps, x0, y0, fix.x, fix.y, seq,
                                       fix.t)
-            new, how = advance(self.network, level.live, ctx, s, dt, gap=gap,
-                               step=fast_sweep_step)
+            nodes, rows = tree.live_nodes()
+            new, how = advance(self.network, nodes, ctx, s, dt, gap=True)
             if how == "bridged":
+                tree.extend(new, rows)
                 level.cert_seq, level.cert_t = seq, fix.t
-            elif how == "fresh":
-                if level.live:
-                    salvage.append((level, level.live))
+            else:
+                if len(tree):
+                    salvage.append((level, tree))
+                level.tree = CandidateTree()
+                level.tree.extend(new, {})
                 level.tree_seq = level.trim_seq = level.cert_seq = seq
                 level.cert_t = fix.t
-            level.live = new
-        deciding = next((lv for lv in self.levels if lv.live), None)
+        deciding = next((lv for lv in self.levels if len(lv.tree)), None)
         if deciding is None:
             events.append(Filtered(fix.vehicle, fix.t, "no_road_nearby"))
         else:
-            best = best_leaf(deciding.live, self.last_seg)
+            best = deciding.tree.best(self.last_seg)
             seg, pos, x, y = self._hold_at_junction(deciding, best, fix)
-            self.last_seg = best.seg
+            self.last_seg = int(deciding.tree.ti[best, 0])
             events.append(Assignment(
                 self.vehicle, fix.t, seg, pos * self._view.slen[seg],
                 x, y, deciding.eps, seq - deciding.cert_seq + 1,
@@ -238,7 +247,7 @@ class Tracker:
         self._settle(seq, fix.t, salvage, events)
 
     def _hold_at_junction(
-        self, level: Level, best: Node, fix: Fix
+        self, level: Level, best: int, fix: Fix
     ) -> tuple[int, float, float, float]:
         """The live answer: the best candidate, unless it has just taken a branch.
 
@@ -248,31 +257,25 @@ class Tracker:
         junction where they split, as long as the fix is within eps of it. A dispatcher
         sees "at the junction" instead of a branch that may flip a second later.
         """
+        tree = level.tree
         margin = self.settings.junction_hold
-        if margin <= 0.0:
-            return best.seg, best.pos, best.x, best.y
-        close = [n for n in level.live.values() if n.cost <= best.cost + margin]
-        if len(close) < 2 or all(n.seg == best.seg for n in close):
-            return best.seg, best.pos, best.x, best.y
-        split = common_ancestor(close)
-        if split is None or split is best or _still_on(best, split):
-            return best.seg, best.pos, best.x, best.y
-        branches = {_branch(n, split) for n in close if not _still_on(n, split)}
-        if len(branches) < 2:
-            return best.seg, best.pos, best.x, best.y
-        seg = split.seg
-        x, y = _point(self._view, seg, 1.0)
-        if math.hypot(x - fix.x, y - fix.y) > level.eps:
-            return best.seg, best.pos, best.x, best.y
-        return seg, 1.0, x, y
+        split = tree.junction_split(best, margin) if margin > 0.0 else -1
+        if split >= 0:
+            seg = int(tree.ti[split, 0])
+            x, y = _point(self._view, seg, 1.0)
+            if math.hypot(x - fix.x, y - fix.y) <= level.eps:
+                return seg, 1.0, x, y
+        _, pos, x, y, _, _ = tree.tf[best].tolist()
+        return int(tree.ti[best, 0]), pos, x, y
 
     # ---------------------------------------------------------------- commits
     def _covering(self) -> list[Level]:
         """Live levels whose candidate tree covers the oldest uncommitted fix."""
-        return [lv for lv in self.levels if lv.live and lv.tree_seq <= self.next_commit]
+        first = self.next_commit
+        return [lv for lv in self.levels if lv.tree.hi > lv.tree.lo and lv.tree_seq <= first]
 
     def _settle(
-        self, seq: int, t: float, salvage: list[tuple[Level, dict[int, Node]]],
+        self, seq: int, t: float, salvage: list[tuple[Level, CandidateTree]],
         events: list[Event],
     ) -> None:
         s = self.settings
@@ -282,17 +285,18 @@ class Tracker:
             for level, old in salvage:
                 if level.tree_seq != seq:
                     continue
-                leaf = best_leaf(old, self.last_seg)
-                if leaf.seq >= self.next_commit:
-                    self._commit_chain(leaf, events, prune=None)
+                leaf = old.best(self.last_seg)
+                if old.seq_of(leaf) >= self.next_commit:
+                    self._commit_chain(old, leaf, events, prune=None)
                     break
         progressed = True
         while progressed:
             progressed = False
             for level in self._covering():
-                top = common_ancestor(level.live.values(), self.next_commit - 1)
-                if top is not None and top.seq >= self.next_commit:
-                    self._commit_chain(top, events, prune=None)
+                tree = level.tree
+                top = tree.common_ancestor(self.next_commit - 1)
+                if top >= 0 and tree.seq_of(top) >= self.next_commit:
+                    self._commit_chain(tree, top, events, prune=None)
                     progressed = True
                     break
         if self.next_commit <= seq:
@@ -301,11 +305,12 @@ class Tracker:
             covering = self._covering()
             if (too_many or too_old) and covering:
                 level = covering[0]
+                tree = level.tree
                 keep = self._lag_target(seq, t)
-                node = ancestor_at(best_leaf(level.live, self.last_seg), keep)
-                if node.seq >= self.next_commit:
-                    self._commit_chain(node, events, prune=level)
-        alive = [lv.tree_seq for lv in self.levels if lv.live]
+                node = tree.ancestor_at(tree.best(self.last_seg), keep)
+                if tree.seq_of(node) >= self.next_commit:
+                    self._commit_chain(tree, node, events, prune=level)
+        alive = [lv.tree_seq for lv in self.levels if len(lv.tree)]
         floor = min(alive) if alive else seq + 1
         if not self._covering() and floor > self.next_commit:
             self.next_commit = floor  # fixes no tree covers any more stay unmatched
@@ -325,18 +330,14 @@ class Tracker:
         return max(target, self.next_commit)
 
     def _commit_chain(
-        self, top: Node, events: list[Event], prune: Level | None, settle_all: bool = False
+        self, tree: CandidateTree, row: int, events: list[Event], prune: Level | None,
+        settle_all: bool = False,
     ) -> None:
-        """Commit the path ending at ``top`` for every fix from ``next_commit`` on."""
-        chain: list[Node] = []
-        node: Node | None = top
-        while node is not None and node.seq >= self.next_commit:
-            chain.append(node)
-            node = node.parent
+        """Commit the path ending at row ``row`` for every fix from ``next_commit`` on."""
+        chain, before = tree.chain(row, self.next_commit)
         if not chain:
             return
-        chain.reverse()
-        before = node
+        top = chain[-1]
         view = self._view
         first = chain[0]
         path: list[int] = []
@@ -364,9 +365,7 @@ class Tracker:
         self.next_commit = top.seq + 1
         self.last_commit = (top.seg, top.pos, top.seq, top.t)
         if prune is not None:
-            prune.live = {k: n for k, n in prune.live.items() if descends_from(n, top)}
-            if not prune.live:
-                prune.live = {}
+            prune.tree.prune(row)
 
     def _fill_skipped(
         self, chain: list[Node], before: Node | None, until: float, fixes: list[MatchedFix]
@@ -399,24 +398,14 @@ class Tracker:
 
     def _trim(self, seq: int, t: float) -> None:
         """Cut history no future commit needs; force-prune trees deeper than the lag."""
-        s = self.settings
         for level in self.levels:
-            if not level.live:
+            if not len(level.tree):
                 continue
-            top = common_ancestor(level.live.values(), self.next_commit - 2)
-            if top is not None:
-                node = top
-                while node.parent is not None and node.parent.seq >= self.next_commit - 1:
-                    node = node.parent
-                if node.parent is not None and node.parent.seq < self.next_commit - 1:
-                    node.parent = None
-                    level.trim_seq = node.seq
-            elif seq - level.trim_seq > 2 * s.max_lag_fixes:
-                keep = ancestor_at(best_leaf(level.live, self.last_seg), seq - s.max_lag_fixes)
-                level.live = {k: n for k, n in level.live.items() if descends_from(n, keep)}
-                keep.parent = None
-                level.trim_seq = keep.seq
-                level.tree_seq = max(level.tree_seq, keep.seq)
+            level.trim_seq, forced = level.tree.trim(
+                self.next_commit, seq, level.trim_seq, self.settings.max_lag_fixes,
+                self.last_seg)
+            if forced >= 0:
+                level.tree_seq = max(level.tree_seq, forced)
 
     # ---------------------------------------------------------- serialisation
     def to_bytes(self) -> bytes:
@@ -442,8 +431,11 @@ class Tracker:
             return ids[id(n)]
 
         levels = []
+        held: list[list[Node]] = []  # keeps every node alive: ``ids`` is keyed by id()
         for lv in self.levels:
-            live = [[seg, node_id(n)] for seg, n in lv.live.items()]
+            tree = lv.tree
+            held.append(tree.rows())
+            live = [[n.seg, node_id(n)] for n in held[-1][tree.lo:tree.hi]]
             levels.append([lv.eps, lv.tree_seq, lv.cert_seq, lv.cert_t, lv.trim_seq, live])
         state = {
             "vehicle": self.vehicle,
@@ -487,7 +479,7 @@ class Tracker:
         for lv, (_, tree_seq, cert_seq, cert_t, trim_seq, live) in zip(
                 tracker.levels, state["levels"], strict=True):
             lv.tree_seq, lv.cert_seq, lv.cert_t, lv.trim_seq = tree_seq, cert_seq, cert_t, trim_seq
-            lv.live = {seg: nodes[i] for seg, i in live}
+            lv.tree = CandidateTree.from_nodes({seg: nodes[i] for seg, i in live})
         tracker.seq = state["seq"]
         tracker.last = tuple(state["last"]) if state["last"] else None
         tracker.last_released_t = state["last_released_t"]
@@ -518,24 +510,6 @@ def _along(view: NetworkView, a: Node, b: Node, frac: float) -> tuple[int, float
             return s, lo + want / view.slen[s]
         want -= length
     return b.seg, b.pos
-
-
-def _still_on(node: Node, ancestor: Node) -> bool:
-    """Whether the path from ``ancestor`` to ``node`` never left ancestor's segment."""
-    cur: Node | None = node
-    while cur is not None and cur is not ancestor:
-        if cur.via or cur.seg != ancestor.seg:
-            return False
-        cur = cur.parent
-    return True
-
-
-def _branch(node: Node, ancestor: Node) -> int:
-    """The first segment after ``ancestor``'s on the path from ``ancestor`` to ``node``."""
-    cur = node
-    while cur.parent is not None and cur.parent is not ancestor:
-        cur = cur.parent
-    return cur.via[0] if cur.via else cur.seg
 
 
 def _point(view: NetworkView, seg: int, pos: float) -> tuple[float, float]:

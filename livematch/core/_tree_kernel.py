@@ -1,0 +1,357 @@
+"""Compiled operations on a candidate tree held in flat arrays (numba, CPU only).
+
+Private: :class:`livematch.core.candidates.CandidateTree` is the interface. A tree is
+three arrays, rows in topological order (a parent's row always precedes its children's):
+
+``ti`` (int32, rows x 5): ``seg, seq, parent, via_start, via_len`` (``parent`` -1 for a
+    root; the via of a row is ``tv[via_start:via_start + via_len]``).
+``tf`` (float64, rows x 6): ``low, pos, x, y, cost, t`` — the first five in the order of a
+    sweep kernel output row, so a live row is handed to the kernel without reordering.
+``tv`` (int32): the vias, one after another.
+
+The live states are one contiguous block of rows ``[lo, hi)``, the newest fix's; they are
+leaves (nothing points at them), so they can be filtered in place. Every function here
+mirrors a Python function of :mod:`livematch.core.sweep` or :mod:`livematch.core.tracker`
+on :class:`~livematch.core.sweep.Node` objects, step for step, so that a tracker on
+arrays makes the same decisions as one on objects (``tests/test_candidates.py``).
+"""
+
+from __future__ import annotations
+
+import numba
+import numpy as np
+
+from livematch.core import _sweep_kernel as _k
+
+I_SEG = 0
+I_SEQ = 1
+I_PARENT = 2
+I_VIA0 = 3
+I_VIAN = 4
+ROW_I = 5
+F_LOW = 0
+F_POS = 1
+F_X = 2
+F_Y = 3
+F_COST = 4
+F_T = 5
+ROW_F = 6
+
+ARENA_FULL = -2  # tree_sweep: the tree's arrays are too small for the new rows
+
+_jit = numba.njit(cache=True, error_model="numpy")
+
+
+@_jit
+def tree_sweep(
+    netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
+    ctx: np.ndarray, ti: np.ndarray, tf: np.ndarray, tv: np.ndarray,
+    n: int, nv: int, lo: int, hi: int, seq: int, t: float,
+) -> tuple[int, int, int]:
+    """One sweep step of the live block ``[lo, hi)``; the new states are appended as rows.
+
+    ``ctx`` holds the kernel's ``N_CTX`` step scalars. Returns ``(code, m, n_via)``:
+    ``m`` new rows at ``[n, n + m)`` and ``n_via`` vias at ``tv[nv:nv + n_via]``, code 0;
+    ``m`` = 0 when the window died (nothing written); code ``OVERFLOW`` when the kernel's
+    buffers are too small, ``ARENA_FULL`` when the tree's arrays are (nothing written
+    either; ``m`` and ``n_via`` then say how much room the step needs).
+    """
+    k = hi - lo
+    live = np.empty(_k.N_CTX + _k.LIVE_STRIDE * k)
+    for j in range(_k.N_CTX):
+        live[j] = ctx[j]
+    for j in range(k):
+        r = lo + j
+        b = _k.N_CTX + _k.LIVE_STRIDE * j
+        seg = ti[r, I_SEG]
+        live[b] = seg
+        live[b + 1] = seg
+        live[b + 2] = tf[r, F_LOW]
+        live[b + 3] = tf[r, F_POS]
+        live[b + 4] = tf[r, F_X]
+        live[b + 5] = tf[r, F_Y]
+        live[b + 6] = tf[r, F_COST]
+    m, n_via = _k.sweep_kernel(netf, neti, live, fbuf, ibuf)
+    if m < 0:
+        return m, 0, 0
+    if m == 0:
+        return 0, 0, 0
+    if n + m > ti.shape[0] or nv + n_via > tv.shape[0]:
+        return ARENA_FULL, m, n_via
+    _, _, out_f0, _, out_i0, _ = _k.layout(ibuf[0], ibuf[1], ibuf[2], ibuf[3], ibuf[4],
+                                           ibuf[5])
+    for j in range(m):
+        r = n + j
+        oi = out_i0 + j * _k.OUT_I_STRIDE
+        of = out_f0 + j * _k.OUT_F_STRIDE
+        ti[r, I_SEG] = ibuf[oi]
+        ti[r, I_SEQ] = seq
+        ti[r, I_PARENT] = lo + ibuf[oi + 1]
+        ti[r, I_VIA0] = nv + ibuf[oi + 2]
+        ti[r, I_VIAN] = ibuf[oi + 3]
+        for c in range(5):
+            tf[r, c] = fbuf[of + c]
+        tf[r, F_T] = t
+    vb = out_i0 + m * _k.OUT_I_STRIDE
+    for j in range(n_via):
+        tv[nv + j] = ibuf[vb + j]
+    return 0, m, n_via
+
+
+@_jit
+def compact(
+    ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, n: int, lo: int, hi: int,
+    spare_rows: int, spare_vias: int,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, int, int, int]:
+    """Keep only the live block and its ancestors, in new arrays with room to spare.
+
+    The room left is at least ``spare_rows`` rows (``spare_vias`` vias) and half as many
+    as are kept, so compactions get rarer as the tree grows (amortised O(1) per row).
+    Returns ``(ti, tf, tv, n, nv, lo)``; the live block keeps its order and length.
+    """
+    keep = np.zeros(n, np.bool_)
+    keep[lo:hi] = True
+    for r in range(n - 1, -1, -1):
+        if keep[r]:
+            p = ti[r, I_PARENT]
+            if p >= 0:
+                keep[p] = True
+    new_index = np.full(n, -1, np.int64)
+    rows = 0
+    vias = 0
+    for r in range(n):
+        if keep[r]:
+            new_index[r] = rows
+            rows += 1
+            vias += ti[r, I_VIAN]
+    cap = rows + max(rows // 2, spare_rows)
+    ti2 = np.empty((cap, ROW_I), np.int32)
+    tf2 = np.empty((cap, ROW_F))
+    tv2 = np.empty(vias + max(vias // 2, spare_vias), np.int32)
+    nv = 0
+    for r in range(n):
+        q = new_index[r]
+        if q < 0:
+            continue
+        p = ti[r, I_PARENT]
+        ti2[q, I_SEG] = ti[r, I_SEG]
+        ti2[q, I_SEQ] = ti[r, I_SEQ]
+        ti2[q, I_PARENT] = new_index[p] if p >= 0 else -1
+        ti2[q, I_VIA0] = nv
+        ti2[q, I_VIAN] = ti[r, I_VIAN]
+        for j in range(ti[r, I_VIAN]):
+            tv2[nv + j] = tv[ti[r, I_VIA0] + j]
+        nv += ti[r, I_VIAN]
+        for c in range(ROW_F):
+            tf2[q, c] = tf[r, c]
+    return ti2, tf2, tv2, rows, nv, int(new_index[lo]) if hi > lo else rows
+
+
+@_jit
+def best_row(ti: np.ndarray, tf: np.ndarray, lo: int, hi: int, prefer: int) -> int:
+    """:func:`livematch.core.sweep.best_leaf`: lowest (cost, seg != prefer, seg)."""
+    best = lo
+    for r in range(lo + 1, hi):
+        c, cb = tf[r, F_COST], tf[best, F_COST]
+        if c != cb:
+            if c < cb:
+                best = r
+            continue
+        s, sb = ti[r, I_SEG], ti[best, I_SEG]
+        if (s != prefer) != (sb != prefer):
+            if s == prefer:
+                best = r
+            continue
+        if s < sb:
+            best = r
+    return best
+
+
+@_jit
+def _ancestor(ti: np.ndarray, cur: np.ndarray, k: int, floor: int) -> int:
+    """:func:`livematch.core.sweep.common_ancestor` of the ``k`` distinct rows ``cur``."""
+    while k > 1:
+        if ti[cur[0], I_SEQ] <= floor:
+            return -1
+        nk = 0
+        for j in range(k):
+            p = ti[cur[j], I_PARENT]
+            if p < 0:
+                return -1
+            seen = False
+            for q in range(nk):
+                if cur[q] == p:
+                    seen = True
+                    break
+            if not seen:
+                cur[nk] = p  # nk <= j: rows still to read are not overwritten
+                nk += 1
+        k = nk
+    return cur[0] if k == 1 else -1
+
+
+@_jit
+def block_ancestor(ti: np.ndarray, lo: int, hi: int, floor: int) -> int:
+    """The deepest common ancestor of the live block, or -1 (see :func:`_ancestor`)."""
+    cur = np.arange(lo, hi)
+    return _ancestor(ti, cur, hi - lo, floor)
+
+
+@_jit
+def _still_on(ti: np.ndarray, node: int, anc: int) -> bool:
+    """Whether the path from ``anc`` to ``node`` never left ``anc``'s segment."""
+    seg = ti[anc, I_SEG]
+    cur = node
+    while cur >= 0 and cur != anc:
+        if ti[cur, I_VIAN] > 0 or ti[cur, I_SEG] != seg:
+            return False
+        cur = ti[cur, I_PARENT]
+    return True
+
+
+@_jit
+def _branch(ti: np.ndarray, tv: np.ndarray, node: int, anc: int) -> int:
+    """The first segment after ``anc``'s on the path from ``anc`` to ``node``."""
+    cur = node
+    while ti[cur, I_PARENT] >= 0 and ti[cur, I_PARENT] != anc:
+        cur = ti[cur, I_PARENT]
+    if ti[cur, I_VIAN] > 0:
+        return tv[ti[cur, I_VIA0]]
+    return ti[cur, I_SEG]
+
+
+@_jit
+def junction_split(
+    ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, lo: int, hi: int, best: int,
+    margin: float,
+) -> int:
+    """The junction the near-best candidates split at, or -1 to report ``best`` itself.
+
+    Mirrors the decision of :meth:`livematch.core.tracker.Tracker._hold_at_junction`
+    up to (not including) its distance check.
+    """
+    limit = tf[best, F_COST] + margin
+    close = np.empty(hi - lo, np.int64)
+    k = 0
+    varied = False
+    for r in range(lo, hi):
+        if tf[r, F_COST] <= limit:
+            close[k] = r
+            k += 1
+            if ti[r, I_SEG] != ti[best, I_SEG]:
+                varied = True
+    if k < 2 or not varied:
+        return -1
+    walk = close[:k].copy()
+    split = _ancestor(ti, walk, k, -1)
+    if split < 0 or split == best or _still_on(ti, best, split):
+        return -1
+    first = -1
+    for j in range(k):
+        n = close[j]
+        if _still_on(ti, n, split):
+            continue
+        b = _branch(ti, tv, n, split)
+        if first < 0:
+            first = b
+        elif b != first:
+            return split
+    return -1
+
+
+@_jit
+def descends_from(ti: np.ndarray, node: int, anc: int) -> bool:
+    """Whether row ``anc`` lies on the back-pointer chain of row ``node``."""
+    seq = ti[anc, I_SEQ]
+    cur = node
+    while cur >= 0 and ti[cur, I_SEQ] >= seq:
+        if cur == anc:
+            return True
+        cur = ti[cur, I_PARENT]
+    return False
+
+
+@_jit
+def prune_live(ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, lo: int, hi: int,
+               anc: int) -> int:
+    """Keep, in order, the live rows descending from ``anc``; returns the new ``hi``.
+
+    Live rows are leaves, so moving them within the block breaks no back-pointer.
+    """
+    w = lo
+    for r in range(lo, hi):
+        if descends_from(ti, r, anc):
+            if w != r:
+                for c in range(ROW_I):
+                    ti[w, c] = ti[r, c]
+                for c in range(ROW_F):
+                    tf[w, c] = tf[r, c]
+            w += 1
+    return w
+
+
+@_jit
+def ancestor_at(ti: np.ndarray, row: int, seq: int) -> int:
+    """The ancestor of ``row`` (itself included) with the largest seq <= ``seq``."""
+    while ti[row, I_SEQ] > seq and ti[row, I_PARENT] >= 0:
+        row = ti[row, I_PARENT]
+    return row
+
+
+@_jit
+def chain_rows(ti: np.ndarray, top: int, min_seq: int) -> np.ndarray:
+    """Rows from the oldest with seq >= ``min_seq`` up to ``top``, then the row before.
+
+    The last element is the parent of the first chain row (-1 if none).
+    """
+    length = 0
+    cur = top
+    while cur >= 0 and ti[cur, I_SEQ] >= min_seq:
+        length += 1
+        cur = ti[cur, I_PARENT]
+    out = np.empty(length + 1, np.int64)
+    out[length] = cur
+    cur = top
+    for j in range(length - 1, -1, -1):
+        out[j] = cur
+        cur = ti[cur, I_PARENT]
+    return out
+
+
+@_jit
+def trim(
+    ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, lo: int, hi: int, next_commit: int,
+    seq: int, trim_seq: int, max_lag: int, prefer: int,
+) -> tuple[int, int, int]:
+    """Cut the history no future commit needs; force-prune a tree that stopped committing.
+
+    Commits only ever read states from fix ``next_commit - 1`` on, so every back-pointer
+    to an older state is cut (that state becomes unreachable, and the next compaction
+    drops it): a tree holds the live states and their paths back to the last commit,
+    never more. If the tree has not been cut for ``2 * max_lag`` fixes (commits stalled),
+    only the live states descending from the best one's ancestor ``max_lag`` fixes back
+    are kept.
+
+    Returns ``(hi, trim_seq, forced)``: the live block's new end, the fix the history now
+    starts at and the seq of the state a forced prune kept (-1 if none).
+    """
+    cut = next_commit - 1
+    for r in range(lo, hi):
+        cur = r
+        while True:
+            p = ti[cur, I_PARENT]
+            if p < 0:
+                break
+            if ti[p, I_SEQ] < cut:
+                ti[cur, I_PARENT] = -1
+                break
+            cur = p
+    if cut > trim_seq:
+        trim_seq = cut
+    if seq - trim_seq > 2 * max_lag:
+        keep = ancestor_at(ti, best_row(ti, tf, lo, hi, prefer), seq - max_lag)
+        kept = int(ti[keep, I_SEQ])
+        ti[keep, I_PARENT] = -1  # before pruning: ``keep`` may be a live row that moves
+        hi = prune_live(ti, tf, tv, lo, hi, keep)
+        return hi, kept, kept
+    return hi, trim_seq, -1

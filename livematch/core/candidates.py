@@ -1,0 +1,266 @@
+"""One eps level's tree of candidate paths, held in flat arrays.
+
+The tree of back-pointers (:mod:`livematch.core.sweep`) changes on every fix: each live
+state of the new fix is a new node. Kept as Python objects, building those nodes costs
+more than the compiled sweep that computes them, and each costs a few hundred bytes.
+:class:`CandidateTree` keeps the nodes as rows of three arrays instead (layout in
+:mod:`livematch.core._tree_kernel`): the sweep kernel's output rows are appended as they
+are, the newest fix's states are one block of rows, and every operation the tracker needs
+on the tree (best leaf, deepest common ancestor, pruning, trimming, the chain a commit
+settles) is a compiled function on those arrays. Rows no live state descends from are
+dropped when the arrays fill up (:func:`~livematch.core._tree_kernel.compact`).
+
+Rare steps (bridging a gap, starting afresh) still run the pure-Python code of
+:mod:`livematch.core.sweep` on :class:`~livematch.core.sweep.Node` objects:
+:meth:`CandidateTree.live_nodes` hands the live rows out as nodes and
+:meth:`CandidateTree.extend` takes the new nodes back as rows.
+
+Example (a vehicle on a straight one-way road; two fixes 10 m apart):
+    >>> import numpy as np
+    >>> from livematch.core.build import Road, network_from_roads
+    >>> from livematch.core.sweep import StepContext, fresh_start
+    >>> from livematch.core.view import view_of
+    >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1, oneway=True)])
+    >>> ctx = StepContext(view_of(net), 15.0, 20.0, 1.0, 20.0, 1.0, 1, 1.0, 0.0,
+    ...                   0.02, 0.2, 2.0)
+    >>> tree = CandidateTree()
+    >>> tree.extend(fresh_start(net, ctx), {})
+    >>> step = np.array([15.0, 20.0, 1.0, 30.0, 1.0, 10.0, 0.02, 0.2, 2.0, 0.2])
+    >>> tree.sweep(view_of(net), step, 2, 2.0)
+    True
+    >>> [(n.seg, round(n.pos, 2)) for n in tree.live_nodes()[0].values()]
+    [(0, 0.3)]
+    >>> tree.sweep(view_of(net), np.array([15.0, 30.0, 1.0, 30.0, 90.0, 89.0, 0.02, 0.2,
+    ...                                     2.0, 0.2]), 3, 3.0)  # 89 m off the road: dies
+    False
+    >>> len(tree)  # a step that dies leaves the tree as it was
+    1
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import numpy.typing as npt
+
+from livematch.core import _tree_kernel as _t
+from livematch.core._sweep_kernel import OVERFLOW
+from livematch.core.fastsweep import sweep_arrays
+from livematch.core.sweep import Node
+from livematch.core.view import NetworkView
+
+__all__ = ["CandidateTree"]
+
+_MIN_SPARE = 8  # rows (and vias) of room left after a compaction, at least
+
+
+class CandidateTree:
+    """The candidate tree of one level: rows, and the live block ``[lo, hi)``.
+
+    Attributes:
+        ti, tf, tv: the rows (layout in :mod:`livematch.core._tree_kernel`).
+        n, nv: rows and vias in use.
+        lo, hi: the live block (the newest fix's states, in the reference's dict order).
+    """
+
+    __slots__ = ("hi", "lo", "n", "nv", "tf", "ti", "tv")
+
+    def __init__(self) -> None:
+        self.ti: npt.NDArray[np.int32] = np.empty((0, _t.ROW_I), np.int32)
+        self.tf: npt.NDArray[np.float64] = np.empty((0, _t.ROW_F))
+        self.tv: npt.NDArray[np.int32] = np.empty(0, np.int32)
+        self.n = self.nv = self.lo = self.hi = 0
+
+    def __len__(self) -> int:
+        """The number of live states."""
+        return self.hi - self.lo
+
+    # ----------------------------------------------------------------- growth
+    def compact(self, spare_rows: int = 0, spare_vias: int = 0) -> None:
+        """Drop the rows no live state descends from; leave room for more rows.
+
+        The room left is at least ``spare_rows``, three times the live block,
+        ``_MIN_SPARE`` and half the rows kept (vias: ``spare_vias`` and one per row of
+        room): a few steps before the next compaction, without doubling the memory.
+        """
+        live = self.hi - self.lo
+        rows = max(spare_rows, 3 * live, _MIN_SPARE)
+        vias = max(spare_vias, rows)  # most states have no via; a tree sweep asks for more
+        self.ti, self.tf, self.tv, self.n, self.nv, self.lo = _t.compact(
+            self.ti, self.tf, self.tv, self.n, self.lo, self.hi, rows, vias)
+        self.hi = self.lo + live
+
+    def _make_room(self, rows: int, vias: int) -> None:
+        if self.n + rows > len(self.ti) or self.nv + vias > len(self.tv):
+            self.compact(rows, vias)
+
+    # ------------------------------------------------------------------ steps
+    def sweep(self, view: NetworkView, ctx: npt.NDArray[np.float64], seq: int,
+              t: float) -> bool:
+        """One compiled sweep step (``ctx``: the kernel's step scalars) at fix ``seq``.
+
+        Returns whether the window survived; if not, the tree is unchanged.
+        """
+        arrays = sweep_arrays(view)
+        likely = 2 * (self.hi - self.lo) + 8  # a step rarely makes twice the live states
+        if self.n + likely > len(self.ti):
+            self.compact(2 * likely, 2 * likely)  # room for about three steps
+        while True:
+            code, m, n_via = _t.tree_sweep(
+                arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf, ctx, self.ti, self.tf,
+                self.tv, self.n, self.nv, self.lo, self.hi, seq, t)
+            if code == OVERFLOW:
+                arrays.grow()
+            elif code == _t.ARENA_FULL:
+                self.compact(m, n_via)
+            else:
+                break
+        if m == 0:
+            return False
+        self.lo = self.n
+        self.hi = self.n = self.n + m
+        self.nv += n_via
+        return True
+
+    def live_nodes(self) -> tuple[dict[int, Node], dict[int, int]]:
+        """The live states as parentless nodes (segment -> node), and node id -> row."""
+        nodes: dict[int, Node] = {}
+        rows: dict[int, int] = {}
+        for r in range(self.lo, self.hi):
+            node = self.node(r)
+            nodes[node.seg] = node
+            rows[id(node)] = r
+        return nodes, rows
+
+    def extend(self, new: dict[int, Node], rows: dict[int, int]) -> None:
+        """Append ``new`` (the next fix's states) as the live block.
+
+        Each parent must be None (a root) or a node of :meth:`live_nodes`, found in
+        ``rows``; the other fields are copied as they are.
+        """
+        vias = sum(len(n.via) for n in new.values())
+        old_lo = self.lo
+        self._make_room(len(new), vias)
+        shift = self.lo - old_lo  # a compaction moves the live block, keeping its order
+        lo = self.n
+        for r, node in enumerate(new.values(), start=lo):
+            parent = -1 if node.parent is None else rows[id(node.parent)] + shift
+            self.ti[r] = (node.seg, node.seq, parent, self.nv, len(node.via))
+            self.tf[r] = (node.low, node.pos, node.x, node.y, node.cost, node.t)
+            self.tv[self.nv:self.nv + len(node.via)] = node.via
+            self.nv += len(node.via)
+        self.lo = lo
+        self.hi = self.n = lo + len(new)
+
+    @classmethod
+    def from_nodes(cls, live: dict[int, Node]) -> CandidateTree:
+        """A tree holding the live states ``live`` (linked nodes) and their ancestors."""
+        seen: dict[int, Node] = {}
+        for leaf in live.values():
+            cur = leaf.parent
+            while cur is not None and id(cur) not in seen:
+                seen[id(cur)] = cur
+                cur = cur.parent
+        older = sorted(seen.values(), key=lambda n: n.seq)  # parents before children
+        tree = cls()
+        row_of: dict[int, int] = {}
+        # room for every row at once: a compaction in between would drop older rows
+        tree._make_room(len(older) + len(live),
+                        sum(len(n.via) for n in (*older, *live.values())))
+        for node in older:
+            tree.extend({node.seg: node}, row_of)
+            row_of[id(node)] = tree.lo
+        tree.extend(live, row_of)
+        return tree
+
+    # ------------------------------------------------------------- questions
+    def node(self, row: int, parent: Node | None = None) -> Node:
+        """Row ``row`` as a :class:`Node` (with ``parent`` as its parent)."""
+        seg, seq, _, v0, vn = self.ti[row].tolist()
+        low, pos, x, y, cost, t = self.tf[row].tolist()
+        via = tuple(self.tv[v0:v0 + vn].tolist()) if vn else ()
+        return Node(seg, seq, t, pos, x, y, parent, via, cost, low)
+
+    def seq_of(self, row: int) -> int:
+        """The fix sequence number of row ``row``."""
+        return int(self.ti[row, _t.I_SEQ])
+
+    def best(self, prefer: int) -> int:
+        """The row of the best live state (:func:`livematch.core.sweep.best_leaf`)."""
+        return _t.best_row(self.ti, self.tf, self.lo, self.hi, prefer)
+
+    def common_ancestor(self, floor: int) -> int:
+        """The live states' deepest common ancestor, -1 if none at or above fix ``floor``."""
+        return _t.block_ancestor(self.ti, self.lo, self.hi, floor)
+
+    def ancestor_at(self, row: int, seq: int) -> int:
+        """The ancestor of ``row`` (itself included) with the largest seq <= ``seq``."""
+        return _t.ancestor_at(self.ti, row, seq)
+
+    def junction_split(self, best: int, margin: float) -> int:
+        """The row where the near-best candidates split at a junction, or -1."""
+        return _t.junction_split(self.ti, self.tf, self.tv, self.lo, self.hi, best, margin)
+
+    def chain(self, top: int, min_seq: int) -> tuple[list[Node], Node | None]:
+        """The path to ``top`` from fix ``min_seq`` on as linked nodes, and the node before.
+
+        The first node's parent is the node before (None at a root).
+        """
+        rows = _t.chain_rows(self.ti, top, min_seq).tolist()
+        before = self.node(rows[-1]) if rows[-1] >= 0 else None
+        chain: list[Node] = []
+        parent = before
+        for r in rows[:-1]:
+            parent = self.node(r, parent)
+            chain.append(parent)
+        return chain, before
+
+    # ---------------------------------------------------------------- cutting
+    def prune(self, row: int) -> None:
+        """Keep only the live states descending from ``row``."""
+        self.hi = _t.prune_live(self.ti, self.tf, self.tv, self.lo, self.hi, row)
+
+    def trim(self, next_commit: int, seq: int, trim_seq: int, max_lag: int,
+             prefer: int) -> tuple[int, int]:
+        """Cut history older than any future commit needs (``Tracker._trim``).
+
+        Returns the new trim point and the seq of the state a forced prune kept (-1).
+        """
+        self.hi, trim_seq, forced = _t.trim(self.ti, self.tf, self.tv, self.lo, self.hi,
+                                            next_commit, seq, trim_seq, max_lag, prefer)
+        return trim_seq, forced
+
+    def rows(self) -> list[Node]:
+        """Every row still needed (after a compaction), as linked nodes in row order."""
+        self.compact()
+        nodes: list[Node] = []
+        for r in range(self.n):
+            p = int(self.ti[r, _t.I_PARENT])
+            nodes.append(self.node(r, nodes[p] if p >= 0 else None))
+        return nodes
+
+
+def warm_up() -> None:
+    """Compile every tree and sweep kernel now rather than on a vehicle's first fixes.
+
+    numba compiles a kernel on its first call (a few seconds on a cold cache, well under
+    a second from the on-disk cache); a service calls this before it connects, so that no
+    broker keepalive or lease renewal waits behind a compilation. Runs a short trace
+    through a T junction and calls the kernels a tracker meets only rarely.
+
+    Example:
+        >>> warm_up()  # compiles (or loads) the kernels; nothing to return
+    """
+    from livematch.core.build import Road, network_from_roads
+    from livematch.core.fix import Fix
+    from livematch.core.tracker import Tracker
+
+    net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0), (200.0, 0.0)], way=1),
+                              Road([(100.0, 0.0), (100.0, 100.0)], way=2)])
+    tracker = Tracker(net, "warm-up")
+    for i in range(12):
+        tracker.update(Fix("warm-up", float(i), 0.0, 0.0, 10.0 * i, 1.0))
+    tracker = Tracker.from_bytes(net, None, tracker.to_bytes())
+    tree = tracker.levels[-1].tree
+    row = tree.ancestor_at(tree.best(-1), 0)
+    tree.prune(row)
+    tracker.flush()

