@@ -141,6 +141,14 @@ def load_average() -> float:
     return float(Path("/proc/loadavg").read_text().split()[0])
 
 
+def cpu_pressure() -> float | None:
+    """Share of the last 10 s in which some runnable task waited for a CPU (Linux PSI, %)."""
+    try:
+        return float(Path("/proc/pressure/cpu").read_text().split()[1].split("=")[1])
+    except (OSError, IndexError, ValueError):
+        return None
+
+
 def paho_client(name: str) -> Any:
     import paho.mqtt.client as mqtt
 
@@ -472,7 +480,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
     sut: list[subprocess.Popen[bytes]] = []
     gens: list[subprocess.Popen[bytes]] = []
     sub: Subscriber | None = None
-    loadavg = load_average()
+    loadavg, pressure = load_average(), cpu_pressure()
     try:
         broker, port = start_mosquitto(folder)
         procs.append(broker)
@@ -596,7 +604,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
     gen_pids = {p.pid for p in gens}
     return {
         "system": system, "offered_per_s": rate, "seconds": seconds,
-        "generators": generators, "loadavg_1m": loadavg, "warm_up_s": round(warm_s, 1),
+        "generators": generators, "loadavg_1m": loadavg, "cpu_pressure_10s": pressure,
+        "cpu_pressure_10s_after": cpu_pressure(), "warm_up_s": round(warm_s, 1),
         "generator_published": published,
         "generator_per_s": round(published / max(gen_span, 1e-9) if published else 0.0, 1),
         "generator_acked": sum(r["acked"] for r in reports),
@@ -627,6 +636,7 @@ def ceiling(system: str, rates: list[int], refine: int, seconds: int, generators
     best: int | None = None
     failed: int | None = None
     bound = False
+    first_row = len(rows)
 
     def step(rate: int) -> bool:
         nonlocal bound
@@ -653,7 +663,7 @@ def ceiling(system: str, rates: list[int], refine: int, seconds: int, generators
         else:
             failed = mid
     return {"system": system, "max_sustained_per_s": best, "first_failed_per_s": failed,
-            "generator_bound": bound}
+            "generator_bound": bound, "steps": len(rows) - first_row}
 
 
 # ---------------------------------------------------------------- the profile mode
@@ -812,14 +822,26 @@ def fmt(value: Any) -> str:
 def report(args: argparse.Namespace, rows: list[dict[str, Any]],
            ceilings: list[dict[str, Any]], half: list[dict[str, Any]],
            git: dict[str, str], started: str) -> str:
-    by = {c["system"]: c["max_sustained_per_s"] for c in ceilings}
+    systems = list(dict.fromkeys(c["system"] for c in ceilings))
+    found: dict[str, list[int]] = {
+        s: [c["max_sustained_per_s"] for c in ceilings
+            if c["system"] == s and c["max_sustained_per_s"]] for s in systems}
+    by = {s: statistics.median_low(v) if v else None for s, v in found.items()}
 
     def ratio(a: str, b: str) -> str:
-        return (f"{by[a] / by[b]:.2f}" if by.get(a) and by.get(b) else "—")
+        if not (by.get(a) and by.get(b)):
+            return "—"
+        each = []
+        for k in sorted({c["repeat"] for c in ceilings}):
+            got = {c["system"]: c["max_sustained_per_s"] for c in ceilings if c["repeat"] == k}
+            if got.get(a) and got.get(b):
+                each.append(f"{got[a] / got[b]:.2f}")
+        per = f" (each repeat: {', '.join(each)})" if len(each) > 1 else ""
+        return f"{by[a] / by[b]:.2f}{per}"
 
     cmd = (f"bench/load.py --rates {args.rates} --seconds {args.seconds} --systems "
            f"{args.systems} --generators {args.generators} --refine {args.refine} "
-           f"--half-repeats {args.half_repeats}")
+           f"--repeat {args.repeat} --half-repeats {args.half_repeats}")
     lines = [
         "# End-to-end load through mosquitto on loopback",
         "",
@@ -838,18 +860,25 @@ def report(args: argparse.Namespace, rows: list[dict[str, Any]],
         "",
         "## Ceilings",
         "",
-        "| system | max sustained fixes/s | first failed | note |",
-        "|---|---:|---:|---|",
+        "| repeat | system | max sustained fixes/s | first failed | load avg during the "
+        "search | note |",
+        "|---:|---|---:|---:|---|---|",
     ]
     harness = by.get("direct")
+    start = 0
     for c in ceilings:
+        mine = rows[start:start + c["steps"]]
+        start += c["steps"]
+        loads = [r["loadavg_1m"] for r in mine]
         note = "generator-bound: the harness, not the system, stopped the search" \
             if c["generator_bound"] else ""
         if (c["system"] != "direct" and harness and c["max_sustained_per_s"]
                 and c["max_sustained_per_s"] >= harness):
             note = "at the harness's own ceiling (direct): a lower bound"
-        lines.append(f"| {c['system']} | {fmt(c['max_sustained_per_s'])} | "
-                     f"{fmt(c['first_failed_per_s'])} | {note} |")
+        lines.append(f"| {c['repeat']} | {c['system']} | {fmt(c['max_sustained_per_s'])} | "
+                     f"{fmt(c['first_failed_per_s'])} | {min(loads)}-{max(loads)} | {note} |")
+    lines += ["", "Median of the repeats: " + ", ".join(
+        f"{s} {fmt(by[s])}" for s in systems) + " fixes/s."]
     lines += [
         "",
         f"livematch-1 / relay: {ratio('livematch-1', 'relay')} (goal >= 0.80); "
@@ -874,7 +903,8 @@ def report(args: argparse.Namespace, rows: list[dict[str, Any]],
     lines += [
         "## Every step",
         "",
-        "| system | offered/s | load avg | generator/s (lag p99 ms) | received/s in step | "
+        "| system | offered/s | load avg (CPU pressure %) | generator/s (lag p99 ms) | "
+        "received/s in step | "
         "delivered | p50 ms | p99 ms | p50 first / last third ms | CPU s: system / broker "
         "/ generators / subscriber | verdict |",
         "|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---|",
@@ -882,7 +912,8 @@ def report(args: argparse.Namespace, rows: list[dict[str, Any]],
     for r in rows:
         c = r["cpu_s"]
         lines.append(
-            f"| {r['system']} | {r['offered_per_s']} | {r['loadavg_1m']} | "
+            f"| {r['system']} | {r['offered_per_s']} | {r['loadavg_1m']} "
+            f"({fmt(r.get('cpu_pressure_10s'))}) | "
             f"{r['generator_per_s']} ({r['generator_lag_p99_ms']}) | "
             f"{r['received_in_run_per_s']} | {r['delivered_share']:.1%} | {fmt(r['p50_ms'])} | "
             f"{fmt(r['p99_ms'])} | {fmt(r['p50_first_third_ms'])} / "
@@ -906,6 +937,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--generators", type=int, default=2, help="generator processes")
     ap.add_argument("--refine", type=int, default=2,
                     help="bisections between the last sustained and the first failed step")
+    ap.add_argument("--repeat", type=int, default=1,
+                    help="search every system's ceiling this many times (systems in turn)")
     ap.add_argument("--half-repeats", type=int, default=3,
                     help="runs of livematch-1 at half of its maximum")
     ap.add_argument("--profile", type=int, default=0, metavar="RATE",
@@ -953,14 +986,20 @@ def main(argv: list[str] | None = None) -> int:
     rows: list[dict[str, Any]] = []
     ceilings: list[dict[str, Any]] = []
     half: list[dict[str, Any]] = []
+    systems = args.systems.split(",")
     with tempfile.TemporaryDirectory(prefix="lm-pool-") as tmp:
         pool = Path(tmp) / "pool.npz"
         make_pool(pool)
-        for system in args.systems.split(","):
-            ceilings.append(ceiling(system, rates, args.refine, args.seconds,
-                                    args.generators, pool, rows))
-        top = next((c["max_sustained_per_s"] for c in ceilings
-                    if c["system"] == "livematch-1"), None)
+        for repeat in range(1, args.repeat + 1):
+            for system in systems:
+                found = ceiling(system, rates, args.refine, args.seconds, args.generators,
+                                pool, rows)
+                ceilings.append({"repeat": repeat, **found})
+                for row in rows:
+                    row.setdefault("repeat", repeat)
+        tops = [c["max_sustained_per_s"] for c in ceilings
+                if c["system"] == "livematch-1" and c["max_sustained_per_s"]]
+        top = int(statistics.median(tops)) if tops else None
         if top:
             for _ in range(args.half_repeats):
                 row = run_step("livematch-1", top // 2, args.seconds, args.generators, pool)
