@@ -87,6 +87,7 @@ GRACE_S = 5.0  # outputs arriving later than the step's end + this are missing
 MAX_P99_MS = 1000.0
 MAX_GROWTH_MS = 100.0
 CLK_TCK = os.sysconf("SC_CLK_TCK")
+BROKER_NODELAY = False  # --broker-nodelay: mosquitto's set_tcp_nodelay (off by default)
 
 
 def free_port() -> int:
@@ -106,11 +107,13 @@ def wait_port(port: int, timeout: float = 10.0) -> None:
 
 
 def start_mosquitto(folder: Path) -> tuple[subprocess.Popen[bytes], int]:
+    """A fresh broker; with ``--broker-nodelay`` it sets TCP_NODELAY on its sockets."""
     port = free_port()
     conf = folder / "mosquitto.conf"
+    nodelay = "set_tcp_nodelay true\n" if BROKER_NODELAY else ""
     conf.write_text(f"listener {port} 127.0.0.1\nallow_anonymous true\n"
                     "max_queued_messages 1000000\nmax_inflight_messages 1000\n"
-                    f"user {os.environ.get('USER') or 'root'}\n", encoding="utf-8")
+                    f"{nodelay}user {os.environ.get('USER') or 'root'}\n", encoding="utf-8")
     exe = shutil.which("mosquitto") or "/usr/sbin/mosquitto"
     proc = subprocess.Popen([exe, "-c", str(conf)], stdout=subprocess.DEVNULL,
                             stderr=subprocess.DEVNULL)
@@ -787,7 +790,8 @@ def render_profile(r: dict[str, Any]) -> str:
              f"Command: `.venv/bin/python bench/load.py --profile {r['rate']} --seconds "
              f"{r['seconds']}{' --nodelay' if r['nodelay'] else ''}"
              f"{' --freeze' if r['freeze'] else ''}"
-             f"{' --inflight ' + str(r['inflight']) if r['inflight'] else ''} --py-spy`; "
+             f"{' --inflight ' + str(r['inflight']) if r['inflight'] else ''}"
+             f"{' --broker-nodelay' if BROKER_NODELAY else ''} --py-spy`; "
              "load average "
              f"{step['loadavg_1m']} before the step; {os.cpu_count()} cores shared with the "
              "broker, generators, subscriber and other people's work. TCP_NODELAY on the "
@@ -841,7 +845,8 @@ def report(args: argparse.Namespace, rows: list[dict[str, Any]],
 
     cmd = (f"bench/load.py --rates {args.rates} --seconds {args.seconds} --systems "
            f"{args.systems} --generators {args.generators} --refine {args.refine} "
-           f"--repeat {args.repeat} --half-repeats {args.half_repeats}")
+           f"--repeat {args.repeat} --half-repeats {args.half_repeats}"
+           + (" --broker-nodelay" if args.broker_nodelay else ""))
     lines = [
         "# End-to-end load through mosquitto on loopback",
         "",
@@ -856,7 +861,8 @@ def report(args: argparse.Namespace, rows: list[dict[str, Any]],
         "the MQTT client) to its output arriving at the subscriber. Sustained = generator "
         f"kept its schedule, >= 99 % delivered by the end + {GRACE_S:g} s, median latency of "
         f"the last third of the step at most {MAX_GROWTH_MS:g} ms above the first third's, "
-        f"p99 <= {MAX_P99_MS:g} ms.",
+        f"p99 <= {MAX_P99_MS:g} ms. Broker: mosquitto with TCP_NODELAY "
+        f"{'on (--broker-nodelay)' if args.broker_nodelay else 'off (its default)'}.",
         "",
         "## Ceilings",
         "",
@@ -951,6 +957,8 @@ def main(argv: list[str] | None = None) -> int:
                     help="with --profile: QoS 1 publishes the daemon keeps in flight")
     ap.add_argument("--py-spy", action="store_true",
                     help="with --profile: sample the daemon with py-spy (pip install py-spy)")
+    ap.add_argument("--broker-nodelay", action="store_true",
+                    help="mosquitto with set_tcp_nodelay true (its default is false)")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     argv = sys.argv[1:] if argv is None else argv
     if argv[:2] == ["--role", "probe"]:  # --probe-out PATH [--nodelay] <livematch args>
@@ -964,10 +972,13 @@ def main(argv: list[str] | None = None) -> int:
             opts.add(flag)
         return probe(rest, argv[3], "--nodelay" in opts, "--freeze" in opts, inflight)
     args = ap.parse_args(argv)
+    global BROKER_NODELAY
+    BROKER_NODELAY = args.broker_nodelay
     if args.profile:
         out = Path(args.out)
         out.mkdir(parents=True, exist_ok=True)
-        name = "load.profile" + ("-nodelay" if args.nodelay else "") + (
+        name = f"load.profile-{args.profile}" + ("-nodelay" if args.nodelay else "") + (
+            "-brokernodelay" if args.broker_nodelay else "") + (
             "-freeze" if args.freeze else "") + (
             f"-inflight{args.inflight}" if args.inflight else "")
         profile(args.profile, args.seconds, args.generators, args.nodelay, args.freeze,
@@ -1012,6 +1023,7 @@ def main(argv: list[str] | None = None) -> int:
     (out / "load.md").write_text(text, encoding="utf-8")
     (out / "load.json").write_text(json.dumps(
         {"command": sys.argv, "started_utc": started, "cpu_count": os.cpu_count(),
+         "broker_nodelay": args.broker_nodelay,
          "git": git, "ceilings": ceilings, "half_load": half, "steps": rows}, indent=1),
         encoding="utf-8")
     return 0
