@@ -1,8 +1,8 @@
 """Benchmark: end-to-end load through a real broker, stepped up to each system's ceiling.
 
-Run: ``.venv/bin/python bench/load.py [--rates 500,1000,2000,4000,8000,16000]
-[--seconds 10] [--systems direct,relay,livematch-1,livematch-2] [--generators 2]
-[--refine 2] [--half-repeats 3]``
+Run: ``.venv/bin/python bench/load.py [--rates 250,500,1000,2000,4000,8000,16000]
+[--seconds 10] [--systems direct,relay,livematch-1,livematch-2,livematch-2s]
+[--generators 2] [--refine 2] [--repeat 1] [--half-repeats 3] [--broker-nodelay]``
 
 For every system, the offered load is stepped up (each vehicle sends one fix per second,
 so N vehicles offer N fixes/s) until a step is not sustained, then the gap between the
@@ -17,7 +17,10 @@ on this machine and loopback only:
   publish it on an output topic; no matching; the ceiling livematch is compared with),
   ``livematch-1`` (``livematch run``, memory store) or ``livematch-2`` (two
   ``livematch run --group`` workers sharing the fleet through Redis shard leases; each
-  worker receives the whole feed and drops the other's vehicles);
+  worker receives the whole feed and drops the other's vehicles) or ``livematch-2s``
+  (the same group with the shard in the input topic, ``fleet/{shard}/+/position``, the
+  generators publishing each vehicle on its shard's topic: each worker subscribes only
+  to the shards it holds or stands by for);
 - ``--generators`` **load generator** processes (paho-mqtt directly, QoS 1, up to 1,000
   publishes in flight each, every fix due in a 5 ms tick published as one batch), vehicle
   i in generator ``i % generators``, the N vehicles spread evenly over each second;
@@ -76,6 +79,8 @@ from typing import Any
 ROOT = Path(__file__).resolve().parent.parent
 NETWORK = ROOT / "replay_logs" / "larkmoor.geojson"
 IN_TOPIC = "fleet/+/position"
+SHARD_TOPIC = "fleet/{shard}/+/position"  # livematch-2s: the feed partitioned by shard
+GROUP_SHARDS = 64  # livematch's default group.shards
 RELAY_IN_FLIGHT = 256  # the relay's QoS 1 publishes awaiting their PUBACK at once
 GEN_IN_FLIGHT = 1000  # each generator's QoS 1 publishes awaiting their PUBACK at once
 GEN_TICK_S = 0.005  # a generator publishes every fix due in one batch per tick
@@ -201,7 +206,18 @@ def position(pool: Any, i: int, k: int) -> tuple[float, float]:
 
 
 # ------------------------------------------------------------------ the generator role
-def generate(port: int, pool_path: str, n: int, seconds: int, first: int, step: int) -> None:
+def feed_topic(vehicle: str, shards: int) -> str:
+    """The input topic of a vehicle: ``fleet/<vehicle>/position``, or with ``shards`` > 0
+    ``fleet/<shard>/<vehicle>/position`` (livematch's ``{shard}`` topic level)."""
+    if shards <= 0:
+        return f"fleet/{vehicle}/position"
+    from livematch.service.shards import shard_of
+
+    return f"fleet/{shard_of(vehicle, shards)}/{vehicle}/position"
+
+
+def generate(port: int, pool_path: str, n: int, seconds: int, first: int, step: int,
+             shards: int) -> None:
     """Publish vehicles first, first + step, ... < n at 1 Hz; print what was achieved.
 
     Protocol with the bench: prints ``ready`` once connected, reads ``go <epoch>`` (the
@@ -211,6 +227,7 @@ def generate(port: int, pool_path: str, n: int, seconds: int, first: int, step: 
 
     pool = dict(np.load(pool_path))
     mine = list(range(first, n, step))
+    topics = {i: feed_topic(f"v{i}", shards) for i in mine}
     plan = [(k + i / n, i, *position(pool, i, k)) for k in range(seconds) for i in mine]
     acked = [0]
 
@@ -239,7 +256,7 @@ def generate(port: int, pool_path: str, n: int, seconds: int, first: int, step: 
         while j < len(plan) and plan[j][0] + t0 <= now:  # one batch: everything due
             offset, i, lon, lat = plan[j]
             stamp = time.time()
-            client.publish(f"fleet/v{i}/position",
+            client.publish(topics[i],
                            f'{{"vehicle":"v{i}","time":{stamp:.3f},"lat":{lat:.7f},'
                            f'"lon":{lon:.7f},"accuracy":5.0}}', qos=1)
             lags.append(stamp - t0 - offset)
@@ -389,7 +406,8 @@ def probe(argv: list[str], out_path: str, nodelay: bool, freeze: bool, inflight:
 
 
 # --------------------------------------------------------------------------- one step
-def daemon_config(folder: Path, port: int, store: str, worker: str, group: str) -> Path:
+def daemon_config(folder: Path, port: int, store: str, worker: str, group: str,
+                  topic: str = IN_TOPIC) -> Path:
     cfg = folder / f"{worker}.toml"
     group_lines = f'[group]\nname = "{group}"\nworker = "{worker}"\nlease_s = 5\n' if group else ""
     cfg.write_text(f"""
@@ -398,7 +416,7 @@ network = "{NETWORK}"
 
 [mqtt]
 url = "mqtt://127.0.0.1:{port}"
-topic = "{IN_TOPIC}"
+topic = "{topic}"
 client_id = "load-{worker}"
 control_topic = ""
 
@@ -434,7 +452,7 @@ class Subscriber:
         self.client.disconnect()
 
 
-def warm_up(sub: Subscriber, pool: Any, timeout: float = 60.0) -> float:
+def warm_up(sub: Subscriber, pool: Any, shards: int, timeout: float = 60.0) -> float:
     """Send probe fixes until every probe vehicle has had 3 outputs; seconds it took.
 
     Three, not one: a vehicle's first fix is answered without a sweep step, and the first
@@ -448,7 +466,7 @@ def warm_up(sub: Subscriber, pool: Any, timeout: float = 60.0) -> float:
             raise RuntimeError(f"system not answering: {len(answered)}/{PROBES} probes")
         for p in range(PROBES):
             lon, lat = position(pool, POOL_DRIVES - 1 - p, k % 60)
-            sub.client.publish(f"fleet/probe{p}/position", json.dumps(
+            sub.client.publish(feed_topic(f"probe{p}", shards), json.dumps(
                 {"vehicle": f"probe{p}", "time": round(time.time(), 3), "lat": lat,
                  "lon": lon, "accuracy": 5.0}), qos=1)
         k += 1
@@ -483,6 +501,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
     sut: list[subprocess.Popen[bytes]] = []
     gens: list[subprocess.Popen[bytes]] = []
     sub: Subscriber | None = None
+    shards = GROUP_SHARDS if system == "livematch-2s" else 0
     loadavg, pressure = load_average(), cpu_pressure()
     try:
         broker, port = start_mosquitto(folder)
@@ -496,14 +515,15 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                                          "--port", str(port)], env=env))
         else:
             out_topic = "livematch/match/#"
-            workers = 2 if system == "livematch-2" else 1
+            workers = 2 if system.startswith("livematch-2") else 1
             store, group = "memory://", ""
             if workers == 2:
                 redis, rport = start_redis(folder)
                 procs.append(redis)
                 store, group = f"redis://127.0.0.1:{rport}/0", "load"
             for w in range(workers):
-                cfg = daemon_config(folder, port, store, f"w{w}", group)
+                cfg = daemon_config(folder, port, store, f"w{w}", group,
+                                    SHARD_TOPIC if shards else IN_TOPIC)
                 cmd = [sys.executable, "-m", "livematch.cli"]
                 if probe_to is not None:
                     cmd = [sys.executable, __file__, "--role", "probe", "--probe-out",
@@ -513,12 +533,12 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                 sut.append(subprocess.Popen([*cmd, "run", "--config", str(cfg)], env=env))
         procs.extend(sut)
         sub = Subscriber(port, out_topic)
-        warm_s = warm_up(sub, pool) if sut else 0.0
+        warm_s = warm_up(sub, pool, shards) if sut else 0.0
         for g in range(generators):
             gens.append(subprocess.Popen(
                 [sys.executable, __file__, "--role", "generator", "--port", str(port),
                  "--pool", str(pool_path), "--n", str(rate), "--seconds", str(seconds),
-                 "--first", str(g), "--step", str(generators)],
+                 "--first", str(g), "--step", str(generators), "--shards", str(shards)],
                 env=env, stdin=subprocess.PIPE, stdout=subprocess.PIPE))
         procs.extend(gens)
         for gen in gens:
@@ -888,8 +908,9 @@ def report(args: argparse.Namespace, rows: list[dict[str, Any]],
     lines += [
         "",
         f"livematch-1 / relay: {ratio('livematch-1', 'relay')} (goal >= 0.80); "
-        f"livematch-2 / livematch-1: {ratio('livematch-2', 'livematch-1')} (goal >= 1.6, "
-        "not reachable when both workers share 2 cores with everything else).",
+        f"livematch-2 / livematch-1: {ratio('livematch-2', 'livematch-1')}; livematch-2s / "
+        f"livematch-1: {ratio('livematch-2s', 'livematch-1')} (goal >= 1.6, not reachable "
+        "when both workers share 2 cores with everything else).",
         "",
     ]
     if half:
@@ -936,10 +957,11 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--n", type=int, default=0)
     ap.add_argument("--first", type=int, default=0)
     ap.add_argument("--step", type=int, default=1)
-    ap.add_argument("--rates", default="500,1000,2000,4000,8000,16000",
+    ap.add_argument("--shards", type=int, default=0)
+    ap.add_argument("--rates", default="250,500,1000,2000,4000,8000,16000",
                     help="offered fixes/s to step through (= vehicles at 1 Hz)")
     ap.add_argument("--seconds", type=int, default=10, help="length of each step")
-    ap.add_argument("--systems", default="direct,relay,livematch-1,livematch-2")
+    ap.add_argument("--systems", default="direct,relay,livematch-1,livematch-2,livematch-2s")
     ap.add_argument("--generators", type=int, default=2, help="generator processes")
     ap.add_argument("--refine", type=int, default=2,
                     help="bisections between the last sustained and the first failed step")
@@ -985,7 +1007,8 @@ def main(argv: list[str] | None = None) -> int:
                 args.inflight, args.py_spy, out, name)
         return 0
     if args.role == "generator":
-        generate(args.port, args.pool, args.n, args.seconds, args.first, args.step)
+        generate(args.port, args.pool, args.n, args.seconds, args.first, args.step,
+                 args.shards)
         return 0
     if args.role == "relay":
         with contextlib.suppress(KeyboardInterrupt):
