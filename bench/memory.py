@@ -161,6 +161,9 @@ def reachable(root: object) -> dict[int, object]:
             continue
         seen[id(obj)] = obj
         stack.extend(gc.get_referents(obj))
+        base = getattr(obj, "base", None) if type(obj).__name__ == "ndarray" else None
+        if base is not None:  # a view: the buffer it looks into is held too
+            stack.append(base)
     return seen
 
 
