@@ -11,8 +11,6 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from typing import Any
 
-import numpy as np
-
 from livematch.core.network import RoadNetwork
 
 
@@ -88,8 +86,8 @@ def _segment_record(network: RoadNetwork, segment: int) -> dict[str, int]:
 
 
 def _lonlat(network: RoadNetwork, x: float, y: float) -> tuple[float, float]:
-    lon, lat = network.projection.to_lonlat(np.array([x]), np.array([y]))
-    return round(float(lon[0]), 7), round(float(lat[0]), 7)
+    lon, lat = network.projection.point_to_lonlat(x, y)
+    return round(lon, 7), round(lat, 7)
 
 
 def to_record(event: Event, network: RoadNetwork) -> dict[str, Any]:

@@ -99,6 +99,26 @@ class Projection:
         lon, lat = self._inverse.transform(np.asarray(x, float), np.asarray(y, float))
         return np.asarray(lon, float), np.asarray(lat, float)
 
+    def point_to_xy(self, lon: float, lat: float) -> tuple[float, float]:
+        """One point, WGS84 degrees to projected metres, as plain floats.
+
+        The same PROJ operation as :meth:`to_xy` (the same numbers), without the array
+        round trip that costs several times the projection itself for one point: the
+        per-message path of the service.
+
+        Example:
+            >>> p = Projection.local(24.94, 60.17)
+            >>> p.point_to_xy(24.95, 60.17) == tuple(float(v) for v in p.to_xy(24.95, 60.17))
+            True
+        """
+        x, y = self._forward.transform(float(lon), float(lat))
+        return x, y
+
+    def point_to_lonlat(self, x: float, y: float) -> tuple[float, float]:
+        """One point, projected metres to WGS84 degrees, as plain floats (see above)."""
+        lon, lat = self._inverse.transform(float(x), float(y))
+        return lon, lat
+
     def __repr__(self) -> str:
         return f"Projection({self.crs!r})"
 

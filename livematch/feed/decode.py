@@ -424,9 +424,9 @@ Expected `object`, got `array`
     _check_range("speed", msg.speed, 0.0, math.inf, "m/s")
     _check_range("heading", msg.heading, 0.0, 360.0, "degrees")
 
-    x, y = projection.to_xy(msg.lon, msg.lat)
+    x, y = projection.point_to_xy(msg.lon, msg.lat)
     return Fix(
-        vehicle=vehicle, t=t, lon=msg.lon, lat=msg.lat, x=float(x), y=float(y),
+        vehicle=vehicle, t=t, lon=msg.lon, lat=msg.lat, x=x, y=y,
         accuracy=msg.accuracy, speed=msg.speed, heading=msg.heading, route=msg.route,
     )
 

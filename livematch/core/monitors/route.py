@@ -389,12 +389,12 @@ class RouteMonitor:
             self.wrong = False
             a = self.anchor
             rx, ry = self.chain.nearest(fix.x, fix.y)
-            lon, lat = self.chain.projection.to_lonlat(np.array([rx]), np.array([ry]))
+            lon, lat = self.chain.projection.point_to_lonlat(rx, ry)
             alerts.append(Alert(fix.vehicle, fix.t, "off_route", {
                 "route": self.route_id,
                 "distance_m": _m(distance),
                 "lat": fix.lat, "lon": fix.lon,
-                "route_lat": round(float(lat[0]), 7), "route_lon": round(float(lon[0]), 7),
+                "route_lat": round(lat, 7), "route_lon": round(lon, 7),
                 "last_on_route_time": a.t if a else None,
                 "last_on_route_lat": a.lat if a else None,
                 "last_on_route_lon": a.lon if a else None,
