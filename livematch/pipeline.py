@@ -51,6 +51,7 @@ Bad input never raises: a message that cannot be decoded becomes an
 from __future__ import annotations
 
 import bisect
+import functools
 import json
 import math
 import typing
@@ -197,6 +198,12 @@ class _VehicleState:
         return self.recent[-1] if self.recent else None
 
 
+
+@functools.cache
+def _compiled() -> None:
+    """Compile (or load) the matcher's kernels once per process (see ``warm_up``)."""
+    warm_up()
+
 class Pipeline:
     """Decode, dedupe, track and publish: the whole per-message path of one worker.
 
@@ -262,7 +269,7 @@ class Pipeline:
         self.control_topic = control_topic
         self._control: dict[str, str] = {}  # vehicle -> route id from control messages
         self._stale_due = math.inf  # no vehicle can turn stale before this receive time
-        warm_up()  # compile the matcher's kernels before the first message, not during it
+        _compiled()  # compile the matcher's kernels before the first message, not during it
 
     # ------------------------------------------------------------------ messages
     def handle(self, topic: str, payload: bytes, at: float) -> list[Output]:

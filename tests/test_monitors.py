@@ -9,6 +9,7 @@ import math
 import numpy as np
 import pytest
 import shapely
+import shapely.affinity
 
 from livematch.core.fix import Fix
 from livematch.core.geometry import Projection
@@ -376,3 +377,31 @@ def test_monitors_doctests():
     for name in names:
         outcome = doctest.testmod(importlib.import_module(name), raise_on_error=False)
         assert outcome.failed == 0 and outcome.attempted > 0, name
+
+
+def test_fence_set_near_equals_strtree_query() -> None:
+    """The fence grid finds exactly the fences shapely's STRtree ``intersects`` finds.
+
+    Reference: shapely.STRtree (GEOS), queried with a Point; random discs, rotated boxes,
+    one fence larger than the grid takes, and points on polygon vertices (boundary).
+    """
+    rng = np.random.default_rng(3)
+    fences = []
+    for k in range(60):
+        x, y = rng.uniform(-3000.0, 3000.0, 2)
+        if k % 2:
+            poly = shapely.Point(x, y).buffer(float(rng.uniform(20.0, 600.0)))
+        else:
+            w, h = rng.uniform(30.0, 900.0, 2)
+            poly = shapely.affinity.rotate(shapely.box(x - w, y - h, x + w, y + h),
+                                           float(rng.uniform(0.0, 90.0)))
+        fences.append(Fence(f"f{k}", poly))
+    fences.append(Fence("county", shapely.box(-40000.0, -40000.0, 40000.0, 40000.0)))
+    fs = FenceSet(fences, AlertSettings())
+    tree = shapely.STRtree(fs.outer)
+    points = [tuple(p) for p in rng.uniform(-4000.0, 4000.0, (3000, 2))]
+    points += [c for g in fs.outer[:20] for c in list(g.exterior.coords)[:8]]
+    points += [(250.0, 500.0), (0.0, 0.0), (-250.0, -250.0)]  # on grid lines
+    for x, y in points:
+        want = sorted(int(i) for i in tree.query(shapely.Point(x, y), predicate="intersects"))
+        assert fs.near(float(x), float(y)) == want, (x, y)

@@ -15,11 +15,11 @@ outlier never flips a fence). A point on a polygon's boundary counts as inside i
 
 from __future__ import annotations
 
+import math
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-import numpy as np
 import shapely
 from shapely.geometry.base import BaseGeometry
 
@@ -62,6 +62,10 @@ class Fence:
         return self.groups is not None and not self.groups.isdisjoint(groups)
 
 
+GRID_CELL_M = 250.0  # side of a cell of the fence grid, metres
+GRID_MAX_CELLS = 4096  # a fence covering more cells is tested at every fix instead
+
+
 class FenceSet:
     """Every fence, prepared: inner/outer polygons and a spatial index over the outer ones.
 
@@ -102,14 +106,33 @@ class FenceSet:
                               if settings.fence_outer_m else f.geometry)
         for g in (*self.inner, *self.outer):
             shapely.prepare(g)
-        self.tree = shapely.STRtree(self.outer) if self.fences else None
+        # A uniform grid over the outer polygons' bounding boxes: a fix looks up one cell
+        # and tests the few fences listed there, with no geometry object built per fix
+        # (an STRtree query needs a Point, which costs more than the tests themselves).
+        self._grid: dict[tuple[int, int], list[int]] = {}
+        self._everywhere: list[int] = []  # fences too large for the grid: always tested
+        for i, g in enumerate(self.outer):
+            x0, y0, x1, y1 = g.bounds
+            cx0, cy0 = math.floor(x0 / GRID_CELL_M), math.floor(y0 / GRID_CELL_M)
+            cx1, cy1 = math.floor(x1 / GRID_CELL_M), math.floor(y1 / GRID_CELL_M)
+            if (cx1 - cx0 + 1) * (cy1 - cy0 + 1) > GRID_MAX_CELLS:
+                self._everywhere.append(i)
+                continue
+            for cx in range(cx0, cx1 + 1):
+                for cy in range(cy0, cy1 + 1):
+                    self._grid.setdefault((cx, cy), []).append(i)
 
     def near(self, x: float, y: float) -> list[int]:
-        """Indices of the fences whose outer polygon holds (x, y) (boundary included)."""
-        if self.tree is None:
-            return []
-        hits = self.tree.query(shapely.Point(x, y), predicate="intersects")
-        return sorted(int(i) for i in np.asarray(hits))
+        """Indices of the fences whose outer polygon holds (x, y) (boundary included).
+
+        Sorted. The same set an STRtree ``intersects`` query gives (tests/test_monitors.py
+        compares the two).
+        """
+        cell = self._grid.get((math.floor(x / GRID_CELL_M), math.floor(y / GRID_CELL_M)), [])
+        if self._everywhere:
+            cell = sorted({*cell, *self._everywhere})
+        outer = self.outer
+        return [i for i in cell if shapely.intersects_xy(outer[i], x, y)]
 
     def inside_inner(self, i: int, x: float, y: float) -> bool:
         """Whether (x, y) lies in fence ``i``'s inner polygon (boundary included)."""
