@@ -21,81 +21,35 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from livematch.core import _sweep_kernel as _k
+# The row layout, and the sweep step on a tree (``tree_sweep``), live in _sweep_kernel:
+# numba's disk cache only notices changes to a function's own file, and the step inlines
+# the sweep kernel.
+from livematch.core._sweep_kernel import (
+    ARENA_FULL,
+    F_COST,
+    F_LOW,
+    F_POS,
+    F_T,
+    F_X,
+    F_Y,
+    I_PARENT,
+    I_SEG,
+    I_SEQ,
+    I_VIA0,
+    I_VIAN,
+    ROW_F,
+    ROW_I,
+    tree_sweep,
+)
 
-I_SEG = 0
-I_SEQ = 1
-I_PARENT = 2
-I_VIA0 = 3
-I_VIAN = 4
-ROW_I = 5
-F_LOW = 0
-F_POS = 1
-F_X = 2
-F_Y = 3
-F_COST = 4
-F_T = 5
-ROW_F = 6
-
-ARENA_FULL = -2  # tree_sweep: the tree's arrays are too small for the new rows
+__all__ = [
+    "ARENA_FULL", "F_COST", "F_LOW", "F_POS", "F_T", "F_X", "F_Y", "I_PARENT", "I_SEG",
+    "I_SEQ", "I_VIA0", "I_VIAN", "ROW_F", "ROW_I", "ancestor_at", "best_row",
+    "block_ancestor", "chain_rows", "compact", "descends_from", "junction_split",
+    "prune_live", "tree_sweep", "trim",
+]
 
 _jit = numba.njit(cache=True, error_model="numpy")
-
-
-@_jit
-def tree_sweep(
-    netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
-    ctx: np.ndarray, ti: np.ndarray, tf: np.ndarray, tv: np.ndarray,
-    n: int, nv: int, lo: int, hi: int, seq: int, t: float,
-) -> tuple[int, int, int]:
-    """One sweep step of the live block ``[lo, hi)``; the new states are appended as rows.
-
-    ``ctx`` holds the kernel's ``N_CTX`` step scalars. Returns ``(code, m, n_via)``:
-    ``m`` new rows at ``[n, n + m)`` and ``n_via`` vias at ``tv[nv:nv + n_via]``, code 0;
-    ``m`` = 0 when the window died (nothing written); code ``OVERFLOW`` when the kernel's
-    buffers are too small, ``ARENA_FULL`` when the tree's arrays are (nothing written
-    either; ``m`` and ``n_via`` then say how much room the step needs).
-    """
-    k = hi - lo
-    live = np.empty(_k.N_CTX + _k.LIVE_STRIDE * k)
-    for j in range(_k.N_CTX):
-        live[j] = ctx[j]
-    for j in range(k):
-        r = lo + j
-        b = _k.N_CTX + _k.LIVE_STRIDE * j
-        seg = ti[r, I_SEG]
-        live[b] = seg
-        live[b + 1] = seg
-        live[b + 2] = tf[r, F_LOW]
-        live[b + 3] = tf[r, F_POS]
-        live[b + 4] = tf[r, F_X]
-        live[b + 5] = tf[r, F_Y]
-        live[b + 6] = tf[r, F_COST]
-    m, n_via = _k.sweep_kernel(netf, neti, live, fbuf, ibuf)
-    if m < 0:
-        return m, 0, 0
-    if m == 0:
-        return 0, 0, 0
-    if n + m > ti.shape[0] or nv + n_via > tv.shape[0]:
-        return ARENA_FULL, m, n_via
-    _, _, out_f0, _, out_i0, _ = _k.layout(ibuf[0], ibuf[1], ibuf[2], ibuf[3], ibuf[4],
-                                           ibuf[5])
-    for j in range(m):
-        r = n + j
-        oi = out_i0 + j * _k.OUT_I_STRIDE
-        of = out_f0 + j * _k.OUT_F_STRIDE
-        ti[r, I_SEG] = ibuf[oi]
-        ti[r, I_SEQ] = seq
-        ti[r, I_PARENT] = lo + ibuf[oi + 1]
-        ti[r, I_VIA0] = nv + ibuf[oi + 2]
-        ti[r, I_VIAN] = ibuf[oi + 3]
-        for c in range(5):
-            tf[r, c] = fbuf[of + c]
-        tf[r, F_T] = t
-    vb = out_i0 + m * _k.OUT_I_STRIDE
-    for j in range(n_via):
-        tv[nv + j] = ibuf[vb + j]
-    return 0, m, n_via
 
 
 @_jit
