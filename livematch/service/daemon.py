@@ -12,13 +12,20 @@ One :class:`Daemon` runs these named tasks under one :class:`asyncio.TaskGroup`:
   assignments, evict idle vehicles, and give the pipeline the clock for ``stale`` alerts
   of silent vehicles (only once connected for ``stale_s``: see :meth:`Daemon._may_tick`);
 - ``store-watch``: ping the store for ``/readyz``;
-- ``shards`` (only in a worker group, ``[group] name``): announce this worker, renew its
-  leases, take free shards up to its share (restore their vehicles from Redis, then
-  replay the fixes kept for them) and hand excess shards over (fenced checkpoint, then
-  release). Fixes of shards held elsewhere are acknowledged unmatched; every fix is
-  kept for ``group.buffer_s`` seconds and replayed when its shard is taken, so a takeover
-  after a crash (or after this worker lost Redis) loses none of them; see
-  :mod:`livematch.service.shards`.
+- ``leases`` and ``shards`` (only in a worker group, ``[group] name``): ``leases``
+  announces this worker and renews its leases every ``lease_s / 3`` (never waiting
+  behind a takeover); ``shards`` then takes free shards up to its share (restore their
+  vehicles from Redis, replay the fixes kept for them, yielding every
+  ``_REPLAY_CHUNK`` messages) and hands excess shards over (fenced checkpoint, then
+  release). Fixes of shards held elsewhere are acknowledged unmatched; every possible
+  fix is kept for ``group.buffer_s`` seconds and replayed when its shard is taken, so a
+  takeover after a crash (or after this worker lost Redis) loses none of them. With a
+  ``{shard}`` level in ``mqtt.topic`` a worker subscribes only to the shards it holds
+  and stands by for; see :mod:`livematch.service.shards` and ``docs/scale.md``.
+
+Outputs wait in two bounded queues, published oldest first: assignments, commits and
+alerts, then rejects (``publish.reject_queue_max``; beyond it rejects are counted, not
+published), so a flood of bad input never delays an answer.
 
 Bad input never stops the daemon: the pipeline turns it into a reject record that goes
 to the dead-letter topic; even an unexpected error while handling one message becomes
@@ -68,6 +75,7 @@ from livematch.service.mqtt import (
     backoff_delays,
     drain,
     make_client,
+    until_answered,
 )
 from livematch.service.shards import (
     LeaseManager,
@@ -714,10 +722,12 @@ class Daemon:
             qos = self._mqtt.qos
             try:
                 for shard in sorted(want - self._subs):
-                    await client.subscribe(self._shard_filter(shard), qos=qos)
+                    await until_answered(client, client.subscribe(
+                        self._shard_filter(shard), qos=qos, timeout=math.inf))
                     self._subs.add(shard)
                 for shard in sorted(self._subs - want):
-                    await client.unsubscribe(self._shard_filter(shard))
+                    await until_answered(client, client.unsubscribe(
+                        self._shard_filter(shard), timeout=math.inf))
                     self._subs.discard(shard)
             except aiomqtt.MqttError as exc:
                 log.warning("shard subscriptions not updated; will retry",
@@ -1038,11 +1048,13 @@ class Daemon:
                         self._subs = set()
                         wanted = set(self._want_subs)
                         for feed_filter in self._feed_filters(wanted):
-                            await client.subscribe(feed_filter, qos=cfg.qos)
+                            await until_answered(client, client.subscribe(
+                                feed_filter, qos=cfg.qos, timeout=math.inf))
                         if self._sharded_topic and self.leases is not None:
                             self._subs = wanted
                     if cfg.control_topic:
-                        await client.subscribe(cfg.control_topic, qos=cfg.qos)
+                        await until_answered(client, client.subscribe(
+                            cfg.control_topic, qos=cfg.qos, timeout=math.inf))
                     log.info("connected and subscribed",
                              extra=fields(broker=redact_url(cfg.url), topic=cfg.topic,
                                           control_topic=cfg.control_topic,

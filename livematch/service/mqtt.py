@@ -30,7 +30,8 @@ import select
 import socket
 import ssl
 from collections import deque
-from collections.abc import Callable
+from collections.abc import Awaitable, Callable
+from typing import TypeVar
 from urllib.parse import urlsplit
 
 import aiomqtt
@@ -38,6 +39,8 @@ from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 
 from livematch.config import MqttConfig
+
+T = TypeVar("T")
 
 # paho logs every packet at debug level; keep it to warnings (no payloads, no secrets).
 _PAHO_LOG = logging.getLogger("livematch.mqtt.paho")
@@ -291,6 +294,32 @@ class IntakeQueue(asyncio.Queue[aiomqtt.Message]):
             self._shed_ids.discard(id(message))
             return True
         return False
+
+
+async def until_answered(client: aiomqtt.Client, request: Awaitable[T]) -> T:
+    """Await a request to the broker (subscribe...) without a time limit, until disconnected.
+
+    After a reconnection the broker first sends what it queued for the persistent
+    session (up to the Receive Maximum, tens of thousands of messages under a flood)
+    and its SUBACK comes after them: a fixed timeout (aiomqtt's default is 10 s) ended
+    the session, which redelivered the whole backlog, whose reading outlasted the next
+    timeout, and so on forever (measured in the fault suite's 100,000-message run).
+    aiomqtt does not fail a pending request when the connection drops, so the wait
+    races the connection's end, which raises :class:`aiomqtt.MqttError`.
+    """
+    task = asyncio.ensure_future(request)
+    closed = getattr(client, "_disconnected", None)
+    if not isinstance(closed, asyncio.Future):
+        return await task
+    try:
+        await asyncio.wait({task, closed}, return_when=asyncio.FIRST_COMPLETED)
+    except asyncio.CancelledError:
+        task.cancel()
+        raise
+    if task.done():
+        return task.result()
+    task.cancel()
+    raise aiomqtt.MqttError("Disconnected while waiting for the broker's answer")
 
 
 def ack(client: aiomqtt.Client, message: aiomqtt.Message) -> None:
