@@ -59,8 +59,8 @@ def compact(
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, int, int, int]:
     """Keep only the live block and its ancestors, in new arrays with room to spare.
 
-    The room left is at least ``spare_rows`` rows (``spare_vias`` vias) and half as many
-    as are kept, so compactions get rarer as the tree grows (amortised O(1) per row).
+    The room left is at least ``spare_rows`` rows (``spare_vias`` vias) and a quarter of
+    those kept, so compactions get rarer as the tree grows (amortised O(1) per row).
     Returns ``(ti, tf, tv, n, nv, lo)``; the live block keeps its order and length.
     """
     keep = np.zeros(n, np.bool_)
@@ -78,10 +78,10 @@ def compact(
             new_index[r] = rows
             rows += 1
             vias += ti[r, I_VIAN]
-    cap = rows + max(rows // 2, spare_rows)
+    cap = rows + max(rows // 4, spare_rows)
     ti2 = np.empty((cap, ROW_I), np.int32)
     tf2 = np.empty((cap, ROW_F))
-    tv2 = np.empty(vias + max(vias // 2, spare_vias), np.int32)
+    tv2 = np.empty(vias + max(vias // 4, spare_vias), np.int32)
     nv = 0
     for r in range(n):
         q = new_index[r]

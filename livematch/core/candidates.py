@@ -78,13 +78,14 @@ class CandidateTree:
     def compact(self, spare_rows: int = 0, spare_vias: int = 0) -> None:
         """Drop the rows no live state descends from; leave room for more rows.
 
-        The room left is at least ``spare_rows``, three times the live block,
-        ``_MIN_SPARE`` and half the rows kept (vias: ``spare_vias`` and one per row of
-        room): a few steps before the next compaction, without doubling the memory.
+        The room left is at least ``spare_rows``, one and a half times the live block,
+        ``_MIN_SPARE`` and a quarter of the rows kept (vias: ``spare_vias`` and one per
+        two rows of room): a step or two before the next compaction. Tight on purpose:
+        a service holds many idle trees, and a compaction costs about a microsecond.
         """
         live = self.hi - self.lo
-        rows = max(spare_rows, 3 * live, _MIN_SPARE)
-        vias = max(spare_vias, rows)  # most states have no via; a tree sweep asks for more
+        rows = max(spare_rows, live + live // 2, _MIN_SPARE)
+        vias = max(spare_vias, rows // 2)  # most states have no via; a tree sweep asks for more
         self.ti, self.tf, self.tv, self.n, self.nv, self.lo = _t.compact(
             self.ti, self.tf, self.tv, self.n, self.lo, self.hi, rows, vias)
         self.hi = self.lo + live
@@ -101,9 +102,9 @@ class CandidateTree:
         Returns whether the window survived; if not, the tree is unchanged.
         """
         arrays = sweep_arrays(view)
-        likely = 2 * (self.hi - self.lo) + 8  # a step rarely makes twice the live states
+        likely = self.hi - self.lo + 4  # a step mostly makes about as many states as live
         if self.n + likely > len(self.ti):
-            self.compact(2 * likely, 2 * likely)  # room for about three steps
+            self.compact(likely, likely)
         while True:
             code, m, n_via = _t.tree_sweep(
                 arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf, ctx, self.ti, self.tf,
