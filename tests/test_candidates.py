@@ -92,6 +92,7 @@ def check_tree(tree: CandidateTree, tracker: Tracker, ctx: StepContext) -> tuple
     """
     splits = ancestors = 0
     nodes = tree.rows()  # compacts: row r is nodes[r] from here on
+    index_of = {id(n): r for r, n in enumerate(nodes)}
     live = nodes[tree.lo:tree.hi]
     live_dict = {n.seg: n for n in live}
     assert len(live_dict) == len(live)
@@ -122,6 +123,14 @@ def check_tree(tree: CandidateTree, tracker: Tracker, ctx: StepContext) -> tuple
     assert (before is None) == (cur is None)
     if before is not None and cur is not None:
         assert fields(before) == fields(cur)
+    # the live states handed to the Python steps (bridging), each with its parent
+    handed, rows = tree.live_nodes()
+    assert [fields(n) for n in handed.values()] == [fields(n) for n in live]
+    for n, ref_n in zip(handed.values(), live, strict=True):
+        assert rows[id(n)] == index_of[id(ref_n)]
+        assert (n.parent is None) == (ref_n.parent is None)
+        if n.parent is not None and ref_n.parent is not None:
+            assert fields(n.parent) == fields(ref_n.parent)
     # the sweep: a copy of the tree against sweep_step on the same states
     copy = CandidateTree.from_nodes(live_dict)
     step = np.array((ctx.eps, ctx.x0, ctx.y0, ctx.x1, ctx.y1, ctx.chord, ctx.inv_two_sigma2,

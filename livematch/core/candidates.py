@@ -123,11 +123,22 @@ class CandidateTree:
         return True
 
     def live_nodes(self) -> tuple[dict[int, Node], dict[int, int]]:
-        """The live states as parentless nodes (segment -> node), and node id -> row."""
+        """The live states as nodes (segment -> node), and node id -> row.
+
+        Each node's parent is given too (as a parentless node), so the step that reached
+        a state is known (its route length and speed), not the path before it.
+        """
         nodes: dict[int, Node] = {}
         rows: dict[int, int] = {}
+        parents: dict[int, Node] = {}
         for r in range(self.lo, self.hi):
-            node = self.node(r)
+            p = int(self.ti[r, _t.I_PARENT])
+            parent = None
+            if p >= 0:
+                parent = parents.get(p)
+                if parent is None:
+                    parent = parents[p] = self.node(p)
+            node = self.node(r, parent)
             nodes[node.seg] = node
             rows[id(node)] = r
         return nodes, rows
