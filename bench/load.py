@@ -770,7 +770,8 @@ def profile(rate: int, seconds: int, generators: int, nodelay: bool, freeze: boo
 
     lat = sorted(at - ft for ft, at in fixes["fixes"])
     result = {
-        "rate": rate, "seconds": seconds, "nodelay": nodelay, "freeze": freeze,
+        "rate": rate, "seconds": seconds, "git": git_state(), "nodelay": nodelay,
+        "freeze": freeze, "broker_nodelay": BROKER_NODELAY,
         "inflight": inflight,
         "objects_at_exit": rec.get("objects_at_exit"), "step": row,
         "latency_ms": {"p50": percentile(lat, 0.5), "p99": percentile(lat, 0.99),
