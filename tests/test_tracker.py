@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import itertools
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -297,3 +298,29 @@ def test_tracker_outlier_gets_interpolated_final_answer() -> None:
     assert sorted(final) == [f.t for f in fixes]
     m = final[bad.t]
     assert abs(m.x - 200.0) < 1e-6 and abs(m.y) < 1e-6
+
+
+def test_tracker_reads_older_lmt1_state() -> None:
+    """A checkpoint in the older LMT1 format (JSON node rows) restores and continues.
+
+    tests/data/states/test-osm-bus7-fix120.lmt1: a tracker after 120 fixes of a simulated
+    drive on the pyrosm test extract (© OpenStreetMap contributors, ODbL). Restored from
+    it, and restored again from its own LMT2 bytes, both continue identically.
+    """
+    import importlib.resources
+
+    from livematch.mapdata.netfile import open_network
+    from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
+
+    net = open_network(str(importlib.resources.files("pyrosm") / "data" / "test.osm.pbf"))
+    blob = (Path(__file__).parent / "data" / "states" / "test-osm-bus7-fix120.lmt1").read_bytes()
+    assert blob[:4] == b"LMT1"
+    old = Tracker.from_bytes(net, None, blob)
+    assert old.seq == 118 and old.vehicle == "bus-7"  # 120 fixes, 2 filtered
+    assert any(len(lv.tree) for lv in old.levels)
+    new = Tracker.from_bytes(net, None, old.to_bytes())
+    assert old.to_bytes()[:4] == b"LMT2"
+    d = simulate_drive(net, np.random.default_rng([41, 77]), "bus-7", 1.7e9,
+                       DriveSettings(duration_s=240.0), drivable_segments(net))
+    fixes = [Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy) for o in observe(d, 1)]
+    assert run(old, fixes[120:]) == run(new, fixes[120:])

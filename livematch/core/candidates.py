@@ -241,6 +241,29 @@ class CandidateTree:
                                             next_commit, seq, trim_seq, max_lag, prefer)
         return trim_seq, forced
 
+    def packed(self) -> tuple[npt.NDArray[np.int32], npt.NDArray[np.float64],
+                              npt.NDArray[np.int32], int]:
+        """The rows still needed, tight, and the live count (the live block is last).
+
+        Copies; the tree itself is not changed.
+        """
+        ti, tf, tv, n, nv, _ = _t.compact(self.ti, self.tf, self.tv, self.n, self.lo,
+                                          self.hi, 0, 0)
+        return ti[:n], tf[:n], tv[:nv], self.hi - self.lo
+
+    @classmethod
+    def unpacked(cls, ti: npt.NDArray[np.int32], tf: npt.NDArray[np.float64],
+                 tv: npt.NDArray[np.int32], live: int) -> CandidateTree:
+        """The tree :meth:`packed` gave (arrays copied, so read-only buffers will do)."""
+        tree = cls()
+        tree.ti = np.array(ti, dtype=np.int32)
+        tree.tf = np.array(tf, dtype=np.float64)
+        tree.tv = np.array(tv, dtype=np.int32)
+        tree.n = tree.hi = len(ti)
+        tree.nv = len(tv)
+        tree.lo = tree.n - live
+        return tree
+
     def rows(self) -> list[Node]:
         """Every row still needed (after a compaction), as linked nodes in row order."""
         self.compact()

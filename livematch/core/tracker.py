@@ -40,10 +40,10 @@ import json
 import math
 import zlib
 from collections.abc import Iterator
-from typing import Any
 
 import numpy as np
 
+from livematch.core._tree_kernel import ROW_F, ROW_I
 from livematch.core.candidates import CandidateTree
 from livematch.core.events import Assignment, Commit, Event, Filtered, MatchedFix
 from livematch.core.fix import Fix
@@ -54,7 +54,8 @@ from livematch.core.sweep import Node, StepContext, advance
 from livematch.core.view import NetworkView, view_of
 from livematch.errors import BadStateError
 
-STATE_FORMAT = b"LMT1"
+STATE_FORMAT = b"LMT2"
+STATE_FORMAT_V1 = b"LMT1"  # JSON rows of linked nodes; still read
 JUMP_TRUST_AFTER = 3
 
 
@@ -409,34 +410,20 @@ class Tracker:
 
     # ---------------------------------------------------------- serialisation
     def to_bytes(self) -> bytes:
-        """Versioned, compact serialisation of the whole state (zlib-compressed JSON).
+        """Versioned, compact serialisation of the whole state.
 
-        Floats are written with ``repr`` precision, so a restored tracker continues
-        exactly as the original would have.
+        ``LMT2``: zlib over a 4-byte header length, a JSON header (the scalars, floats
+        written with ``repr`` precision) and each level's candidate tree as raw arrays,
+        compacted to the rows still needed. A restored tracker continues exactly as the
+        original would have. :meth:`from_bytes` also reads the older ``LMT1`` (JSON rows).
         """
-        ids: dict[int, int] = {}
-        rows: list[list[Any]] = []
-
-        def node_id(n: Node) -> int:
-            stack = []
-            cur: Node | None = n
-            while cur is not None and id(cur) not in ids:
-                stack.append(cur)
-                cur = cur.parent
-            for m in reversed(stack):
-                ids[id(m)] = len(rows)
-                parent = ids[id(m.parent)] if m.parent is not None else -1
-                rows.append([m.seg, m.seq, m.t, m.pos, m.x, m.y, parent, list(m.via),
-                             m.cost, m.low])
-            return ids[id(n)]
-
         levels = []
-        held: list[list[Node]] = []  # keeps every node alive: ``ids`` is keyed by id()
+        arrays: list[bytes] = []
         for lv in self.levels:
-            tree = lv.tree
-            held.append(tree.rows())
-            live = [[n.seg, node_id(n)] for n in held[-1][tree.lo:tree.hi]]
-            levels.append([lv.eps, lv.tree_seq, lv.cert_seq, lv.cert_t, lv.trim_seq, live])
+            ti, tf, tv, live = lv.tree.packed()
+            levels.append([lv.eps, lv.tree_seq, lv.cert_seq, lv.cert_t, lv.trim_seq,
+                           len(ti), len(tv), live])
+            arrays += (ti.tobytes(), tf.tobytes(), tv.tobytes())
         state = {
             "vehicle": self.vehicle,
             "n_segments": self.network.n_segments,
@@ -451,20 +438,27 @@ class Tracker:
             "last_commit": self.last_commit,
             "skipped": self.skipped,
             "last_seg": self.last_seg,
-            "nodes": rows,
             "levels": levels,
         }
-        return STATE_FORMAT + zlib.compress(json.dumps(state, separators=(",", ":")).encode())
+        header = json.dumps(state, separators=(",", ":")).encode()
+        return STATE_FORMAT + zlib.compress(
+            b"".join((len(header).to_bytes(4, "little"), header, *arrays)))
 
     @classmethod
     def from_bytes(
         cls, network: RoadNetwork, settings: MatchSettings | None, data: bytes
     ) -> Tracker:
-        """Restore a tracker written by :meth:`to_bytes`."""
-        if not data.startswith(STATE_FORMAT):
+        """Restore a tracker written by :meth:`to_bytes` (``LMT2``, or the older ``LMT1``)."""
+        fmt = data[:len(STATE_FORMAT)]
+        if fmt not in (STATE_FORMAT, STATE_FORMAT_V1):
             raise BadStateError(f"not a livematch tracker state (expected {STATE_FORMAT!r})")
         try:
-            state = json.loads(zlib.decompress(data[len(STATE_FORMAT):]))
+            body = zlib.decompress(data[len(STATE_FORMAT):])
+            if fmt == STATE_FORMAT_V1:
+                state, rest = json.loads(body), b""
+            else:
+                size = int.from_bytes(body[:4], "little")
+                state, rest = json.loads(body[4:4 + size]), body[4 + size:]
         except (zlib.error, ValueError) as exc:
             raise BadStateError(f"corrupt tracker state: {exc}") from exc
         if state["n_segments"] != network.n_segments:
@@ -472,14 +466,34 @@ class Tracker:
         tracker = cls(network, state["vehicle"], settings)
         if [lv[0] for lv in state["levels"]] != [lv.eps for lv in tracker.levels]:
             raise BadStateError("tracker state was written with a different eps ladder")
-        nodes: list[Node] = []
-        for seg, seq, t, pos, x, y, parent, via, cost, low in state["nodes"]:
-            nodes.append(Node(seg, seq, t, pos, x, y, nodes[parent] if parent >= 0 else None,
-                              tuple(via), cost, low))
-        for lv, (_, tree_seq, cert_seq, cert_t, trim_seq, live) in zip(
-                tracker.levels, state["levels"], strict=True):
-            lv.tree_seq, lv.cert_seq, lv.cert_t, lv.trim_seq = tree_seq, cert_seq, cert_t, trim_seq
-            lv.tree = CandidateTree.from_nodes({seg: nodes[i] for seg, i in live})
+        if fmt == STATE_FORMAT_V1:
+            nodes: list[Node] = []
+            for seg, seq, t, pos, x, y, parent, via, cost, low in state["nodes"]:
+                nodes.append(Node(seg, seq, t, pos, x, y,
+                                  nodes[parent] if parent >= 0 else None, tuple(via), cost,
+                                  low))
+            for lv, (_, tree_seq, cert_seq, cert_t, trim_seq, live) in zip(
+                    tracker.levels, state["levels"], strict=True):
+                lv.tree_seq, lv.cert_seq, lv.cert_t = tree_seq, cert_seq, cert_t
+                lv.trim_seq = trim_seq
+                lv.tree = CandidateTree.from_nodes({seg: nodes[i] for seg, i in live})
+        else:
+            at = 0
+            for lv, (_, tree_seq, cert_seq, cert_t, trim_seq, rows, vias, live) in zip(
+                    tracker.levels, state["levels"], strict=True):
+                lv.tree_seq, lv.cert_seq, lv.cert_t = tree_seq, cert_seq, cert_t
+                lv.trim_seq = trim_seq
+                sizes = (rows * ROW_I * 4, rows * ROW_F * 8, vias * 4)
+                parts = []
+                for size in sizes:
+                    if at + size > len(rest):
+                        raise BadStateError("corrupt tracker state: candidate tree cut short")
+                    parts.append(rest[at:at + size])
+                    at += size
+                lv.tree = CandidateTree.unpacked(
+                    np.frombuffer(parts[0], np.int32).reshape(rows, ROW_I),
+                    np.frombuffer(parts[1], np.float64).reshape(rows, ROW_F),
+                    np.frombuffer(parts[2], np.int32), live)
         tracker.seq = state["seq"]
         tracker.last = tuple(state["last"]) if state["last"] else None
         tracker.last_released_t = state["last_released_t"]
