@@ -1,7 +1,8 @@
 """Benchmark: resident memory per live vehicle, up to 100,000 vehicles in one process.
 
 Run: ``.venv/bin/python bench/memory.py [--counts 1000,10000,100000] [--drives 40]
-[--duration 600] [--pipeline-vehicles 1000] [--pipeline-seconds 120]``
+[--duration 600] [--states 30] [--copies 400] [--pipeline-vehicles 1000]
+[--pipeline-seconds 120]``
 
 Goal (issue 9): <= 4 KB for a typical live vehicle, 100,000 vehicles in <= 1 GB resident.
 
@@ -15,9 +16,13 @@ representation is. Steps, each measuring process a fresh subprocess:
    per axis, 1 % outliers), each through its own ``Tracker`` (default ladder 15/30/60 m);
    from one minute in, every 30 fixes a snapshot ``Tracker.to_bytes()``: live states at
    different moments of different drives (moving, stopped, after outliers).
-2. **Per vehicle** (subprocess): every snapshot restored once with ``tracemalloc`` on;
-   the Python heap a restored tracker keeps (after ``gc.collect()``) is its size. Median,
-   mean, p95, max, next to the serialised bytes of the same snapshots.
+2. **Per vehicle** (two subprocesses): ``--states`` snapshots spread over the pool,
+   ``--copies`` copies of each restored and kept, RSS growth / copies = that state's
+   resident cost (allocator overhead and arrays allocated by compiled code included);
+   and every snapshot restored once with ``tracemalloc`` on: the Python heap a restored
+   tracker keeps (after ``gc.collect()``; memory that numba allocates is not traced), and
+   what the median one holds by type. Median, mean, p95, max, next to the serialised
+   bytes of the same snapshots.
 3. **N vehicles** (one subprocess per N in ``--counts``): network loaded and warmed (one
    tracker driven a few fixes and dropped), RSS read from ``/proc/self/status``; then N
    trackers restored from the pool (copy k from snapshot k mod pool size; restored
@@ -182,7 +187,34 @@ def composition(tracker: object, other: object) -> list[tuple[str, int, int]]:
         row = by_type.setdefault(type(obj).__name__, [0, 0])
         row[0] += 1
         row[1] += sys.getsizeof(obj)
+        base = getattr(obj, "base", None) if type(obj).__name__ == "ndarray" else None
+        if base is not None and type(base).__name__ != "ndarray":
+            row[1] += obj.nbytes  # data owned by something else (numba's MemInfo)
     return sorted(((k, v[0], v[1]) for k, v in by_type.items()), key=lambda r: -r[2])
+
+
+def per_state_rss(pool_path: str, states: int, copies: int) -> dict[str, Any]:
+    """RSS growth per copy when ``copies`` copies of each of ``states`` pool states are
+    restored (states evenly spread over the pool): a per-vehicle distribution in the
+    same unit as step 3, allocator overhead and compiled-code allocations included."""
+    from _drives import load_extract
+
+    from livematch.core.settings import MatchSettings
+    from livematch.core.tracker import Tracker
+
+    snapshots: list[bytes] = pickle.loads(Path(pool_path).read_bytes())["snapshots"]
+    network, settings = load_extract("helsinki"), MatchSettings()
+    warm(network, settings)
+    step = max(1, len(snapshots) // states)
+    kept = []
+    sizes = []
+    for blob in snapshots[::step][:states]:
+        gc.collect()
+        before = rss_kb()
+        kept.append([Tracker.from_bytes(network, settings, blob) for _ in range(copies)])
+        gc.collect()
+        sizes.append((rss_kb() - before) * 1024 / copies)
+    return {"rss_bytes": sizes, "copies": copies}
 
 
 # ------------------------------------------------------------------- 3. N vehicles
@@ -284,6 +316,7 @@ def stats(values: list[float]) -> dict[str, float]:
 
 def report(r: dict[str, Any]) -> str:
     heap, ser = r["per_vehicle"]["heap"], r["per_vehicle"]["serialised"]
+    rss = r["per_vehicle"]["rss"]
     lines = [
         "# Resident memory per live vehicle",
         "",
@@ -298,21 +331,28 @@ def report(r: dict[str, Any]) -> str:
         f"Helsinki extract ({r['pool']['segments']} directed segments), one every "
         f"{SNAPSHOT_EVERY} fixes from fix {SNAPSHOT_FROM} on; default ladder 15/30/60 m.",
         "",
-        "## One vehicle (each pool state restored once; Python heap kept, tracemalloc)",
+        "## One vehicle",
         "",
         "| | median | mean | p95 | max |",
         "|---|---:|---:|---:|---:|",
-        f"| heap per tracker, KB | {heap['median'] / 1024:.2f} | {heap['mean'] / 1024:.2f} | "
-        f"{heap['p95'] / 1024:.2f} | {heap['max'] / 1024:.2f} |",
+        f"| resident per tracker, KB ({r['per_vehicle']['rss_states']} states x "
+        f"{r['per_vehicle']['rss_copies']} copies, RSS growth / copies) | "
+        f"{rss['median'] / 1024:.2f} | {rss['mean'] / 1024:.2f} | {rss['p95'] / 1024:.2f} | "
+        f"{rss['max'] / 1024:.2f} |",
+        f"| Python heap per tracker, KB (every state once, tracemalloc: arrays allocated by "
+        f"compiled code are not traced) | {heap['median'] / 1024:.2f} | "
+        f"{heap['mean'] / 1024:.2f} | {heap['p95'] / 1024:.2f} | {heap['max'] / 1024:.2f} |",
         f"| serialised (`to_bytes`), KB | {ser['median'] / 1024:.2f} | "
         f"{ser['mean'] / 1024:.2f} | {ser['p95'] / 1024:.2f} | {ser['max'] / 1024:.2f} |",
         "",
         f"A tracker that has seen no fix: {r['per_vehicle']['fresh_kb']:.2f} KB. Load average: "
-        f"{r['per_vehicle']['loadavg_1m']}. Goal: <= 4 KB for a typical live vehicle.",
+        f"{r['per_vehicle']['loadavg_1m']} / {r['per_vehicle']['rss_loadavg_1m']}. Goal: "
+        "<= 4 KB for a typical live vehicle.",
         "",
-        "What the median tracker holds that another vehicle's tracker does not share "
-        "(objects reachable through `gc.get_referents`, `sys.getsizeof` each; "
-        "allocator overhead not included):",
+        "What the median tracker (by Python heap) holds that another vehicle's tracker does "
+        "not share (objects reachable through `gc.get_referents`, `sys.getsizeof` each, "
+        "plus the data of arrays whose buffer numba allocated; allocator overhead not "
+        "included):",
         "",
         "| type | objects | KB |",
         "|---|---:|---:|",
@@ -370,6 +410,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--counts", default="1000,10000,100000")
     ap.add_argument("--drives", type=int, default=40)
     ap.add_argument("--duration", type=float, default=600.0, help="seconds per drive")
+    ap.add_argument("--states", type=int, default=30,
+                    help="pool states whose RSS per copy is measured")
+    ap.add_argument("--copies", type=int, default=400, help="copies of each such state")
     ap.add_argument("--pipeline-vehicles", type=int, default=1000)
     ap.add_argument("--pipeline-seconds", type=int, default=120)
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
@@ -378,6 +421,8 @@ def main(argv: list[str] | None = None) -> int:
         what, *rest = args.role
         if what == "per-vehicle":
             out = per_vehicle(rest[0])
+        elif what == "per-state-rss":
+            out = per_state_rss(rest[0], int(rest[1]), int(rest[2]))
         elif what == "count":
             out = n_vehicles(rest[0], int(rest[1]))
         else:
@@ -398,6 +443,8 @@ def main(argv: list[str] | None = None) -> int:
         print(f"pool: {len(pool['snapshots'])} snapshots", flush=True)
         pv = child(["per-vehicle", str(pool_path)])
         print(f"per vehicle: median heap {statistics.median(pv['heap_bytes'])} B", flush=True)
+        ps = child(["per-state-rss", str(pool_path), str(args.states), str(args.copies)])
+        print(f"per state: median RSS {statistics.median(ps['rss_bytes'])} B", flush=True)
         counts = []
         for n in (int(v) for v in args.counts.split(",")):
             row = child(["count", str(pool_path), str(n)])
@@ -418,6 +465,8 @@ def main(argv: list[str] | None = None) -> int:
                  "duration_s": args.duration, "segments": pool["segments"],
                  "fixes": pool["fixes"]},
         "per_vehicle": {"heap": stats(pv["heap_bytes"]),
+                        "rss": stats(ps["rss_bytes"]), "rss_states": len(ps["rss_bytes"]),
+                        "rss_copies": ps["copies"], "rss_loadavg_1m": ps["loadavg_1m"],
                         "serialised": stats(pv["serialised_bytes"]),
                         "loadavg_1m": pv["loadavg_1m"],
                         "fresh_kb": round(pv["fresh_tracker_bytes"] / 1024, 3),
