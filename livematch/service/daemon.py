@@ -50,7 +50,7 @@ import re
 import socket
 import time
 from collections import Counter, deque
-from collections.abc import Mapping
+from collections.abc import Coroutine, Mapping
 from dataclasses import dataclass, replace
 from typing import Any, Protocol
 
@@ -1044,22 +1044,7 @@ class Daemon:
                     self._listening_since = time.time()
                     backoff.reset()
                     self._client = client
-                    async with self._subs_lock:
-                        self._subs = set()
-                        wanted = set(self._want_subs)
-                        for feed_filter in self._feed_filters(wanted):
-                            await until_answered(client, client.subscribe(
-                                feed_filter, qos=cfg.qos, timeout=math.inf))
-                        if self._sharded_topic and self.leases is not None:
-                            self._subs = wanted
-                    if cfg.control_topic:
-                        await until_answered(client, client.subscribe(
-                            cfg.control_topic, qos=cfg.qos, timeout=math.inf))
-                    log.info("connected and subscribed",
-                             extra=fields(broker=redact_url(cfg.url), topic=cfg.topic,
-                                          control_topic=cfg.control_topic,
-                                          client_id=cfg.client_id, queued=len(self._outbox)))
-                    await self._serve_connection(client)
+                    await self._serve_connection(client, self._subscribe(client))
                 except asyncio.CancelledError:
                     cancelled = True
                     raise
@@ -1070,14 +1055,39 @@ class Daemon:
                 raise asyncio.CancelledError from None
             raise
 
-    async def _serve_connection(self, client: aiomqtt.Client) -> None:
-        """Run ``mqtt-receive`` and ``mqtt-publish`` together; the first error ends both.
+    async def _subscribe(self, client: aiomqtt.Client) -> None:
+        """Subscribe a new connection to the feed and the control topic.
+
+        Runs beside ``mqtt-receive``: after a reconnection the broker sends the
+        session's backlog before the SUBACK, and matching it need not wait.
+        """
+        cfg = self._mqtt
+        async with self._subs_lock:
+            self._subs = set()
+            wanted = set(self._want_subs)
+            for feed_filter in self._feed_filters(wanted):
+                await until_answered(client, client.subscribe(
+                    feed_filter, qos=cfg.qos, timeout=math.inf))
+            if self._sharded_topic and self.leases is not None:
+                self._subs = wanted
+        if cfg.control_topic:
+            await until_answered(client, client.subscribe(
+                cfg.control_topic, qos=cfg.qos, timeout=math.inf))
+        log.info("connected and subscribed",
+                 extra=fields(broker=redact_url(cfg.url), topic=cfg.topic,
+                              control_topic=cfg.control_topic,
+                              client_id=cfg.client_id, queued=len(self._outbox)))
+
+    async def _serve_connection(self, client: aiomqtt.Client,
+                                subscribe: Coroutine[Any, Any, None]) -> None:
+        """Run ``mqtt-subscribe``, ``-receive`` and ``-publish``; the first error ends all.
 
         Plain tasks rather than a nested TaskGroup: on Python 3.11 a TaskGroup whose child
         fails leaves its parent task marked as being cancelled, which would confuse the
         reconnect loop that runs in that parent.
         """
-        tasks = [asyncio.create_task(self._receive_loop(client), name="mqtt-receive"),
+        tasks = [asyncio.create_task(subscribe, name="mqtt-subscribe"),
+                 asyncio.create_task(self._receive_loop(client), name="mqtt-receive"),
                  asyncio.create_task(self._publish_loop(client), name="mqtt-publish")]
         try:
             await asyncio.wait(tasks, return_when=asyncio.FIRST_EXCEPTION)
