@@ -784,8 +784,10 @@ def _with_broker(config: DaemonConfig, url: str) -> DaemonConfig:
 
 @contextlib.asynccontextmanager
 async def _client(port: int, identifier: str) -> AsyncIterator[aiomqtt.Client]:
+    # Generous operation timeout: broker, fleet and daemon share one event loop, and on a
+    # busy machine an acknowledgement can wait behind the daemon's work for seconds.
     client = aiomqtt.Client("127.0.0.1", port, identifier=identifier,
-                            protocol=aiomqtt.ProtocolVersion.V5, timeout=10.0)
+                            protocol=aiomqtt.ProtocolVersion.V5, timeout=30.0)
     # The fleet publishes every message due at once concurrently (one per vehicle):
     # that many pending publishes is expected, not worth aiomqtt's warning.
     client.pending_calls_threshold = 1000
