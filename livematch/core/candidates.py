@@ -44,7 +44,7 @@ import numpy.typing as npt
 
 from livematch.core import _tree_kernel as _t
 from livematch.core._sweep_kernel import OVERFLOW
-from livematch.core.fastsweep import sweep_arrays
+from livematch.core.fastsweep import fast_sweep_step, sweep_arrays
 from livematch.core.sweep import Node
 from livematch.core.view import NetworkView
 
@@ -279,15 +279,18 @@ def warm_up() -> None:
 
     numba compiles a kernel on its first call (a few seconds on a cold cache, well under
     a second from the on-disk cache); a service calls this before it connects, so that no
-    broker keepalive or lease renewal waits behind a compilation. Runs a short trace
-    through a T junction and calls the kernels a tracker meets only rarely.
+    broker keepalive, acknowledgement or lease renewal waits behind a compilation. Runs a
+    short trace through a T junction, calls the kernels a tracker meets only rarely, and
+    the sweep kernel on its own (the route monitor calls it directly).
 
     Example:
         >>> warm_up()  # compiles (or loads) the kernels; nothing to return
     """
     from livematch.core.build import Road, network_from_roads
     from livematch.core.fix import Fix
+    from livematch.core.sweep import StepContext
     from livematch.core.tracker import Tracker
+    from livematch.core.view import view_of
 
     net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0), (200.0, 0.0)], way=1),
                               Road([(100.0, 0.0), (100.0, 100.0)], way=2)])
@@ -298,4 +301,8 @@ def warm_up() -> None:
     tree = tracker.levels[-1].tree
     row = tree.ancestor_at(tree.best(-1), 0)
     tree.prune(row)
+    # the sweep kernel on its own (the route monitor's step) is a compilation of its own
+    live, _ = tree.live_nodes()
+    fast_sweep_step(live, StepContext.between(view_of(net), tracker.settings, 15.0, 110.0,
+                                              1.0, 120.0, 1.0, tracker.seq + 1, 99.0))
     tracker.flush()
