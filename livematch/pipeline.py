@@ -200,8 +200,12 @@ class _VehicleState:
 
 
 @functools.cache
-def _compiled() -> None:
-    """Compile (or load) the matcher's kernels once per process (see ``warm_up``)."""
+def prepare_kernels() -> None:
+    """Compile (or load) the matcher's kernels, once per process (see ``warm_up``).
+
+    Every Pipeline calls it; a program that hosts other work on its event loop (the
+    demo's embedded broker) calls it before starting that work.
+    """
     warm_up()
 
 class Pipeline:
@@ -269,7 +273,7 @@ class Pipeline:
         self.control_topic = control_topic
         self._control: dict[str, str] = {}  # vehicle -> route id from control messages
         self._stale_due = math.inf  # no vehicle can turn stale before this receive time
-        _compiled()  # compile the matcher's kernels before the first message, not during it
+        prepare_kernels()  # compile the matcher's kernels before the first message
 
     # ------------------------------------------------------------------ messages
     def handle(self, topic: str, payload: bytes, at: float) -> list[Output]:

@@ -50,6 +50,7 @@ from livematch.config import DaemonConfig, MqttConfig
 from livematch.demo.scenario import Message, Scenario
 from livematch.errors import LivematchError
 from livematch.feed.replaylog import ReplayLogWriter
+from livematch.pipeline import prepare_kernels
 
 __all__ = [
     "DEMO_ORDER",
@@ -615,6 +616,9 @@ class LiveDemo:
             DemoError: when the broker cannot listen or the daemon stops on its own.
         """
         wall0 = time.monotonic()
+        # Compile the matcher's kernels before the broker listens: the broker shares this
+        # event loop, and a compilation on a cold cache blocks it for seconds.
+        prepare_kernels()
         url = f"mqtt://127.0.0.1:{await self.broker.start()}"
         loop = asyncio.get_running_loop()
         with contextlib.suppress(NotImplementedError, RuntimeError):  # not main thread
