@@ -30,6 +30,11 @@ How it decides
   :mod:`livematch.core.sweep`) is committed up to half the lag and the candidates that
   disagree with it are dropped; so state stays bounded whatever the trip length.
   Consecutive committed stretches are joined by a bounded shortest route.
+* **The trees are arrays** (:mod:`livematch.core.candidates`): each level's candidate
+  tree is rows of flat arrays, swept and queried by compiled functions, and cut at the
+  last commit (nothing older is ever read), so a tree holds the live candidates and
+  their paths back to the last commit. Bridging and fresh starts, which are rare, run
+  the pure-Python steps of :mod:`livematch.core.sweep` on node objects.
 """
 
 from __future__ import annotations
