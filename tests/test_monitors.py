@@ -405,3 +405,61 @@ def test_fence_set_near_equals_strtree_query() -> None:
     for x, y in points:
         want = sorted(int(i) for i in tree.query(shapely.Point(x, y), predicate="intersects"))
         assert fs.near(float(x), float(y)) == want, (x, y)
+
+
+def test_route_window_step_equals_node_reference() -> None:
+    """The compiled route-window step equals sweep_step on nodes plus the driven metres.
+
+    Reference: livematch.core.sweep.sweep_step (pure Python) on the same live states, then
+    the window's rules written on nodes: driven = parent's + the step's route length, costs
+    rebased to a minimum of 0. A zig-zag route (many short chain segments, a U-turn
+    spur) and a noisy trace along it and back.
+    """
+    from livematch.core import _sweep_kernel as k
+    from livematch.core.fastsweep import sweep_arrays
+    from livematch.core.sweep import Node, StepContext, fresh_start, sweep_step
+
+    pts = [(0.0, 0.0)] + [(20.0 * i, 15.0 * (i % 2)) for i in range(1, 40)]
+    ch = chain(pts)
+    view = ch.forward_view
+    arrays = sweep_arrays(view)
+    rng = np.random.default_rng(12)
+    trace = [(x + rng.normal(0, 4), y + rng.normal(0, 4)) for x, y in pts[::2]]
+    trace += trace[::-1]  # and back: the forward window dies and restarts
+    rows = np.empty((0, 6))
+    driven = np.empty(0)
+    steps = 0
+    for seq, ((x0, y0), (x1, y1)) in enumerate(itertools.pairwise(trace), start=1):
+        ctx = StepContext(view, 25.0, x0, y0, x1, y1, seq, float(seq),
+                          math.hypot(x1 - x0, y1 - y0), 0.02, 0.1, 0.0)
+        if len(rows):
+            live = {int(r[0]): Node(int(r[0]), seq - 1, 0.0, r[2], r[3], r[4], None, (), r[5],
+                                    r[1]) for r in rows.tolist()}
+            before = dict(zip(live, driven.tolist(), strict=True))
+            ref = sweep_step(live, ctx)
+            scalars = np.array((ctx.eps, x0, y0, x1, y1, ctx.chord, 0.02, 0.1, 0.0, 0.0))
+            code, got, got_driven = k.window_step(arrays.netf, arrays.neti, arrays.fbuf,
+                                                  arrays.ibuf, scalars, rows, driven)
+            assert code == 0
+            assert [int(s) for s in got[:, 0]] == list(ref)
+            if ref:
+                steps += 1
+                base = min(n.cost for n in ref.values())
+                slen = view.slen
+                for j, (seg, n) in enumerate(ref.items()):
+                    p = n.parent
+                    assert p is not None
+                    if not n.via and seg == p.seg:
+                        arc = (n.pos - p.pos) * slen[seg]
+                    else:
+                        arc = ((1.0 - p.pos) * slen[p.seg] + sum(slen[v] for v in n.via)
+                               + n.pos * slen[seg])
+                    assert got_driven[j] == before[p.seg] + arc
+                    assert got[j].tolist() == [seg, n.low, n.pos, n.x, n.y, n.cost - base]
+                rows, driven = got, got_driven
+                continue
+        new = fresh_start(ch.forward, ctx)
+        rows = np.array([(n.seg, n.low, n.pos, n.x, n.y, n.cost) for n in new.values()])
+        rows = rows.reshape(len(new), 6)
+        driven = np.zeros(len(new))
+    assert steps > 20

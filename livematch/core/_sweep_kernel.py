@@ -537,3 +537,69 @@ def tree_sweep(
     for j in range(n_via):
         tv[nv + j] = ibuf[vb + j]
     return 0, m, n_via
+
+
+@numba.njit(cache=True, error_model="numpy")
+def window_step(
+    netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
+    ctx: np.ndarray, rows: np.ndarray, driven: np.ndarray,
+) -> tuple[int, np.ndarray, np.ndarray]:
+    """One step of a route monitor's window (livematch.core.monitors.route._Window).
+
+    ``rows`` holds the live states as ``seg, low, pos, x, y, cost`` and ``driven`` the
+    metres each has followed the route. Returns ``(code, rows, driven)`` for the new
+    states: each one's driven metres are its parent's plus the route length of the step,
+    and the costs are rebased so that the cheapest is 0 (the window keeps no history).
+    ``code`` is 0, or ``OVERFLOW`` when the kernel's buffers are too small. No live
+    state left gives empty arrays.
+    """
+    k = rows.shape[0]
+    live = np.empty(N_CTX + LIVE_STRIDE * k)
+    for j in range(N_CTX):
+        live[j] = ctx[j]
+    for j in range(k):
+        b = N_CTX + LIVE_STRIDE * j
+        live[b] = rows[j, 0]
+        for c in range(6):
+            live[b + 1 + c] = rows[j, c]
+    m, _ = sweep_kernel(netf, neti, live, fbuf, ibuf)
+    if m <= 0:
+        return (OVERFLOW if m < 0 else 0), np.empty((0, 6)), np.empty(0)
+    n_v = ibuf[0]
+    n_e = ibuf[1]
+    slen = netf[2 * n_v:2 * n_v + n_e]
+    _, _, out_f0, _, out_i0, _ = layout(n_v, n_e, ibuf[2], ibuf[3], ibuf[4], ibuf[5])
+    vb = out_i0 + m * OUT_I_STRIDE
+    out = np.empty((m, 6))
+    new_driven = np.empty(m)
+    for j in range(m):
+        oi = out_i0 + j * OUT_I_STRIDE
+        of = out_f0 + j * OUT_F_STRIDE
+        seg = ibuf[oi]
+        parent = ibuf[oi + 1]
+        via_start = ibuf[oi + 2]
+        via_len = ibuf[oi + 3]
+        pos = fbuf[of + 1]
+        pseg = int(rows[parent, 0])
+        ppos = rows[parent, 2]
+        if via_len == 0 and seg == pseg:
+            arc = (pos - ppos) * slen[seg]
+        else:
+            through = 0.0
+            for q in range(via_len):
+                through += slen[ibuf[vb + via_start + q]]
+            arc = (1.0 - ppos) * slen[pseg] + through + pos * slen[seg]
+        new_driven[j] = driven[parent] + arc
+        out[j, 0] = seg
+        out[j, 1] = fbuf[of]
+        out[j, 2] = pos
+        out[j, 3] = fbuf[of + 2]
+        out[j, 4] = fbuf[of + 3]
+        out[j, 5] = fbuf[of + 4]
+    base = out[0, 5]
+    for j in range(1, m):
+        if out[j, 5] < base:
+            base = out[j, 5]
+    for j in range(m):
+        out[j, 5] -= base
+    return 0, out, new_driven

@@ -43,7 +43,7 @@ import numpy as np
 import numpy.typing as npt
 
 from livematch.core import _tree_kernel as _t
-from livematch.core._sweep_kernel import OVERFLOW
+from livematch.core._sweep_kernel import OVERFLOW, window_step
 from livematch.core.fastsweep import fast_sweep_step, sweep_arrays
 from livematch.core.sweep import Node
 from livematch.core.view import NetworkView
@@ -280,8 +280,8 @@ def warm_up() -> None:
     numba compiles a kernel on its first call (a few seconds on a cold cache, well under
     a second from the on-disk cache); a service calls this before it connects, so that no
     broker keepalive, acknowledgement or lease renewal waits behind a compilation. Runs a
-    short trace through a T junction, calls the kernels a tracker meets only rarely, and
-    the sweep kernel on its own (the route monitor calls it directly).
+    short trace through a T junction, calls the kernels a tracker meets only rarely, the
+    sweep kernel on its own and the route monitor's window step.
 
     Example:
         >>> warm_up()  # compiles (or loads) the kernels; nothing to return
@@ -303,6 +303,13 @@ def warm_up() -> None:
     tree.prune(row)
     # the sweep kernel on its own (the route monitor's step) is a compilation of its own
     live, _ = tree.live_nodes()
-    fast_sweep_step(live, StepContext.between(view_of(net), tracker.settings, 15.0, 110.0,
-                                              1.0, 120.0, 1.0, tracker.seq + 1, 99.0))
+    ctx = StepContext.between(view_of(net), tracker.settings, 15.0, 110.0, 1.0, 120.0, 1.0,
+                              tracker.seq + 1, 99.0)
+    fast_sweep_step(live, ctx)
+    # and the route monitor's window step
+    arrays = sweep_arrays(view_of(net))
+    rows = np.array([(n.seg, n.low, n.pos, n.x, n.y, n.cost) for n in live.values()])
+    window_step(arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf,
+                np.array((15.0, 110.0, 1.0, 120.0, 1.0, 10.0, 0.02, 0.1, 0.0, 0.0)), rows,
+                np.zeros(len(rows)))
     tracker.flush()

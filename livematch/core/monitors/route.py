@@ -45,13 +45,14 @@ import numpy as np
 import numpy.typing as npt
 import shapely
 
+from livematch.core import _sweep_kernel as _k
 from livematch.core.events import Alert
-from livematch.core.fastsweep import fast_sweep_step
+from livematch.core.fastsweep import sweep_arrays
 from livematch.core.fix import Fix
 from livematch.core.geometry import Projection
 from livematch.core.monitors.settings import AlertSettings
 from livematch.core.network import RoadNetwork
-from livematch.core.sweep import Node, StepContext, fresh_start
+from livematch.core.sweep import StepContext, fresh_start
 from livematch.core.view import NetworkView, view_of
 
 FloatArray = npt.NDArray[np.float64]
@@ -165,73 +166,90 @@ def _cumulative(lengths: FloatArray) -> list[float]:
 class _Window:
     """One direction's sweep window: live states and metres followed since its start.
 
-    ``driven[seg]`` is how far (metres along the chain) the candidate ending on ``seg``
-    has followed the route since the window started at ``start_t``. Back-pointers are
-    cut after every step, so the state stays a handful of segments.
+    ``rows`` holds the live states (``seg, low, pos, x, y, cost``, the sweep kernel's
+    row layout) and ``driven[j]`` how far (metres along the chain) the candidate of row
+    ``j`` has followed the route since the window started at ``start_t``. Back-pointers
+    are cut after every step, so the state stays a handful of rows; the step is one
+    compiled call (:func:`livematch.core._sweep_kernel.window_step`).
     """
 
-    __slots__ = ("driven", "fixes", "live", "start_t")
+    __slots__ = ("driven", "fixes", "rows", "seq", "start_t", "t")
 
     def __init__(self) -> None:
-        self.live: dict[int, Node] = {}
-        self.driven: dict[int, float] = {}
+        self.rows: FloatArray = np.empty((0, 6))
+        self.driven: FloatArray = np.empty(0)
+        self.seq = 0  # the fix the live states belong to
+        self.t = 0.0
         self.start_t = -math.inf
         self.fixes = 0  # fixes in the window
 
-    def best(self) -> tuple[int, Node] | None:
-        """(segment, state) of the candidate that followed the route longest."""
-        if not self.live:
+    @property
+    def live(self) -> bool:
+        """Whether the window has live states."""
+        return len(self.rows) > 0
+
+    def best(self) -> tuple[int, float] | None:
+        """(segment, position) of the candidate that followed the route longest."""
+        if not len(self.rows):
             return None
-        seg = max(self.live, key=lambda s: (self.driven[s], -self.live[s].cost, -s))
-        return seg, self.live[seg]
+        rows = self.rows.tolist()
+        driven = self.driven.tolist()
+        j = max(range(len(rows)), key=lambda j: (driven[j], -rows[j][5], -rows[j][0]))
+        return int(rows[j][0]), rows[j][2]
 
     def followed(self) -> float:
         """Metres the best candidate followed the route in this window (0 when dead)."""
-        return max(self.driven.values(), default=0.0)
+        return float(self.driven.max()) if len(self.driven) else 0.0
 
     def step(self, chain_net: RoadNetwork, ctx: StepContext) -> None:
-        # the compiled step: bit-identical to sweep.sweep_step (tests/test_fastsweep.py)
-        new = fast_sweep_step(self.live, ctx) if self.live else {}
-        driven: dict[int, float] = {}
-        if new:
-            slen = ctx.view.slen
-            for seg, node in new.items():
-                parent = node.parent
-                assert parent is not None
-                if not node.via and seg == parent.seg:
-                    arc = (node.pos - parent.pos) * slen[seg]
-                else:
-                    arc = ((1.0 - parent.pos) * slen[parent.seg]
-                           + sum(slen[v] for v in node.via) + node.pos * slen[seg])
-                driven[seg] = self.driven[parent.seg] + arc
+        """Advance by one fix: sweep, else start afresh from the chain's spatial index."""
+        code, rows, driven = 0, self.rows[:0], self.driven[:0]
+        if len(self.rows):
+            arrays = sweep_arrays(ctx.view)
+            scalars = np.array((ctx.eps, ctx.x0, ctx.y0, ctx.x1, ctx.y1, ctx.chord,
+                                ctx.inv_two_sigma2, ctx.inv_beta, ctx.turn_back_cost,
+                                ctx.motion_cost))
+            while True:
+                code, rows, driven = _k.window_step(arrays.netf, arrays.neti, arrays.fbuf,
+                                                    arrays.ibuf, scalars, self.rows,
+                                                    self.driven)
+                if code != _k.OVERFLOW:
+                    break
+                arrays.grow()
+        if len(rows):
             self.fixes += 1
         else:
             new = fresh_start(chain_net, ctx)
-            driven = dict.fromkeys(new, 0.0)
+            rows = np.array([(n.seg, n.low, n.pos, n.x, n.y, n.cost) for n in new.values()],
+                            dtype=np.float64).reshape(len(new), 6)
+            driven = np.zeros(len(new))
             self.start_t = ctx.t
             self.fixes = 1 if new else 0
-        if new:
-            base = min(n.cost for n in new.values())
-            for node in new.values():
-                node.parent = None
-                node.via = ()
-                node.cost -= base
-        self.live = new
+            if new:
+                rows[:, 5] -= min(n.cost for n in new.values())
+        self.rows = rows
         self.driven = driven
+        self.seq = ctx.seq
+        self.t = ctx.t
 
     def to_state(self) -> list[Any]:
         return [self.start_t if math.isfinite(self.start_t) else None, self.fixes,
-                [[s, n.seq, n.t, n.pos, n.x, n.y, n.cost, n.low, self.driven[s]]
-                 for s, n in self.live.items()]]
+                [[int(seg), self.seq, self.t, pos, x, y, cost, low, driven]
+                 for (seg, low, pos, x, y, cost), driven in zip(
+                     self.rows.tolist(), self.driven.tolist(), strict=True)]]
 
     @classmethod
     def from_state(cls, state: list[Any]) -> _Window:
         w = cls()
         w.start_t = -math.inf if state[0] is None else state[0]
         w.fixes = state[1]
-        for s, seq, t, pos, x, y, cost, low, driven in state[2]:
-            w.live[s] = Node(s, seq, t, pos, x, y, None, (), cost, low)
-            w.driven[s] = driven
+        rows = state[2]
+        w.rows = np.array([(s, low, pos, x, y, cost)
+                           for s, _, _, pos, x, y, cost, low, _ in rows],
+                          dtype=np.float64).reshape(len(rows), 6)
+        w.driven = np.array([r[8] for r in rows], dtype=np.float64)
+        if rows:
+            w.seq, w.t = rows[0][1], rows[0][2]
         return w
 
 
@@ -326,7 +344,7 @@ class RouteMonitor:
         self.dead_far = 0.0
         best = self.fwd.best()
         assert best is not None
-        self.progress_m = self.chain.progress(best[0], best[1].pos)
+        self.progress_m = self.chain.progress(best[0], best[1])
         if self.rejoin is None:
             self.rejoin = (fix.t, self.trail_m)
         backwards = self._backwards()
@@ -343,7 +361,7 @@ class RouteMonitor:
             assert rbest is not None
             alerts.append(Alert(fix.vehicle, fix.t, "wrong_direction", {
                 "route": self.route_id,
-                "progress_m": _m(self.chain.progress(rbest[0], rbest[1].pos, backward=True)),
+                "progress_m": _m(self.chain.progress(rbest[0], rbest[1], backward=True)),
                 "backwards_m": _m(self.rev.followed()),
                 "lat": fix.lat, "lon": fix.lon,
             }))
