@@ -78,13 +78,13 @@ class CandidateTree:
     def compact(self, spare_rows: int = 0, spare_vias: int = 0) -> None:
         """Drop the rows no live state descends from; leave room for more rows.
 
-        The room left is at least ``spare_rows``, one and a half times the live block,
-        ``_MIN_SPARE`` and a quarter of the rows kept (vias: ``spare_vias`` and one per
+        The room left is at least ``spare_rows``, twice the live block plus
+        ``_MIN_SPARE``, and a quarter of the rows kept (vias: ``spare_vias`` and one per
         two rows of room): a step or two before the next compaction. Tight on purpose:
         a service holds many idle trees, and a compaction costs about a microsecond.
         """
         live = self.hi - self.lo
-        rows = max(spare_rows, live + live // 2, _MIN_SPARE)
+        rows = max(spare_rows, 2 * live + _MIN_SPARE)
         vias = max(spare_vias, rows // 2)  # most states have no via; a tree sweep asks for more
         self.ti, self.tf, self.tv, self.n, self.nv, self.lo = _t.compact(
             self.ti, self.tf, self.tv, self.n, self.lo, self.hi, rows, vias)
