@@ -848,14 +848,17 @@ def report(args: argparse.Namespace, rows: list[dict[str, Any]],
            ceilings: list[dict[str, Any]], half: list[dict[str, Any]],
            git: dict[str, str], started: str) -> str:
     systems = list(dict.fromkeys(c["system"] for c in ceilings))
+    # a search whose first step already failed counts as 0 ("below the lowest rate")
     found: dict[str, list[int]] = {
-        s: [c["max_sustained_per_s"] for c in ceilings
-            if c["system"] == s and c["max_sustained_per_s"]] for s in systems}
+        s: [c["max_sustained_per_s"] or 0 for c in ceilings if c["system"] == s]
+        for s in systems}
     by = {s: statistics.median_low(v) if v else None for s, v in found.items()}
+    lowest = min(int(v) for v in args.rates.split(","))
 
     def ratio(a: str, b: str) -> str:
         if not (by.get(a) and by.get(b)):
-            return "—"
+            return "—" if a not in by or b not in by else (
+                f"< {lowest / by[b]:.2f}" if by.get(b) else "—")
         each = []
         for k in sorted({c["repeat"] for c in ceilings}):
             got = {c["system"]: c["max_sustained_per_s"] for c in ceilings if c["repeat"] == k}
@@ -877,7 +880,9 @@ def report(args: argparse.Namespace, rows: list[dict[str, Any]],
         "",
         f"Machine: {os.cpu_count()} cores, shared by the broker, the generators, the "
         "subscriber and the system under test (and by other people's work: the 1-minute "
-        "load average before each step is in the table). Each vehicle sends one fix per "
+        "load average before each step is in the tables, and the CPU pressure, the share "
+        "of the last 10 s in which some runnable task waited for a CPU, from "
+        "/proc/pressure/cpu). Each vehicle sends one fix per "
         "second (QoS 1); latency is from the fix's own time (stamped when it is handed to "
         "the MQTT client) to its output arriving at the subscriber. Sustained = generator "
         f"kept its schedule, >= 99 % delivered by the end + {GRACE_S:g} s, median latency of "
@@ -902,10 +907,12 @@ def report(args: argparse.Namespace, rows: list[dict[str, Any]],
         if (c["system"] != "direct" and harness and c["max_sustained_per_s"]
                 and c["max_sustained_per_s"] >= harness):
             note = "at the harness's own ceiling (direct): a lower bound"
-        lines.append(f"| {c['repeat']} | {c['system']} | {fmt(c['max_sustained_per_s'])} | "
+        top = c["max_sustained_per_s"] or f"< {lowest}"
+        lines.append(f"| {c['repeat']} | {c['system']} | {top} | "
                      f"{fmt(c['first_failed_per_s'])} | {min(loads)}-{max(loads)} | {note} |")
-    lines += ["", "Median of the repeats: " + ", ".join(
-        f"{s} {fmt(by[s])}" for s in systems) + " fixes/s."]
+    lines += ["", "Median of the repeats (a search that failed at its first step counts as "
+              "below it): " + ", ".join(
+                  f"{s} {by[s] if by[s] else f'< {lowest}'}" for s in systems) + " fixes/s."]
     lines += [
         "",
         f"livematch-1 / relay: {ratio('livematch-1', 'relay')} (goal >= 0.80); "
@@ -931,16 +938,16 @@ def report(args: argparse.Namespace, rows: list[dict[str, Any]],
     lines += [
         "## Every step",
         "",
-        "| system | offered/s | load avg (CPU pressure %) | generator/s (lag p99 ms) | "
+        "| repeat | system | offered/s | load avg (CPU pressure %) | generator/s (lag p99 ms) | "
         "received/s in step | "
         "delivered | p50 ms | p99 ms | p50 first / last third ms | CPU s: system / broker "
         "/ generators / subscriber | verdict |",
-        "|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---|",
+        "|---:|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---|",
     ]
     for r in rows:
         c = r["cpu_s"]
         lines.append(
-            f"| {r['system']} | {r['offered_per_s']} | {r['loadavg_1m']} "
+            f"| {r.get('repeat', 1)} | {r['system']} | {r['offered_per_s']} | {r['loadavg_1m']} "
             f"({fmt(r.get('cpu_pressure_10s'))}) | "
             f"{r['generator_per_s']} ({r['generator_lag_p99_ms']}) | "
             f"{r['received_in_run_per_s']} | {r['delivered_share']:.1%} | {fmt(r['p50_ms'])} | "
@@ -984,6 +991,15 @@ def main(argv: list[str] | None = None) -> int:
                     help="mosquitto with set_tcp_nodelay true (its default is false)")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     argv = sys.argv[1:] if argv is None else argv
+    if argv[:1] == ["--render"]:  # re-render load.md from load.json (after a report fix)
+        saved = json.loads(Path(argv[1]).read_text(encoding="utf-8"))
+        old_args = ap.parse_args([a for a in saved["command"][1:]])
+        old_args.broker_nodelay = saved.get("broker_nodelay", False)
+        text = report(old_args, saved["steps"], saved["ceilings"], saved["half_load"],
+                      saved["git"], saved["started_utc"])
+        Path(argv[1]).with_suffix(".md").write_text(text, encoding="utf-8")
+        print(text)
+        return 0
     if argv[:2] == ["--role", "probe"]:  # --probe-out PATH [--nodelay] <livematch args>
         rest = argv[4:]
         opts = set()
