@@ -495,7 +495,8 @@ def tree_sweep(
     ``m`` new rows at ``[n, n + m)`` and ``n_via`` vias at ``tv[nv:nv + n_via]``, code 0;
     ``m`` = 0 when the window died (nothing written); code ``OVERFLOW`` when the kernel's
     buffers are too small, ``ARENA_FULL`` when the tree's arrays are (nothing written
-    either; ``m`` and ``n_via`` then say how much room the step needs).
+    either; ``m`` and ``n_via`` then say how much room the step needs, and
+    :func:`tree_append` appends the result once there is room).
     """
     k = hi - lo
     live = np.empty(N_CTX + LIVE_STRIDE * k)
@@ -519,6 +520,21 @@ def tree_sweep(
         return 0, 0, 0
     if n + m > ti.shape[0] or nv + n_via > tv.shape[0]:
         return ARENA_FULL, m, n_via
+    tree_append(fbuf, ibuf, ti, tf, tv, n, nv, lo, seq, t, m, n_via)
+    return 0, m, n_via
+
+
+@numba.njit(cache=True, error_model="numpy")
+def tree_append(
+    fbuf: np.ndarray, ibuf: np.ndarray, ti: np.ndarray, tf: np.ndarray, tv: np.ndarray,
+    n: int, nv: int, lo: int, seq: int, t: float, m: int, n_via: int,
+) -> None:
+    """Append the last kernel call's ``m`` output rows (and ``n_via`` vias) to a tree.
+
+    The output stays in the scratch buffers until the next kernel call, so after an
+    ``ARENA_FULL`` the caller makes room and appends without sweeping again. Parents
+    are rows of the live block starting at ``lo``.
+    """
     _, _, out_f0, _, out_i0, _ = layout(ibuf[0], ibuf[1], ibuf[2], ibuf[3], ibuf[4],
                                            ibuf[5])
     for j in range(m):
@@ -536,7 +552,6 @@ def tree_sweep(
     vb = out_i0 + m * OUT_I_STRIDE
     for j in range(n_via):
         tv[nv + j] = ibuf[vb + j]
-    return 0, m, n_via
 
 
 @numba.njit(cache=True, error_model="numpy")

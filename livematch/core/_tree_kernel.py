@@ -39,6 +39,7 @@ from livematch.core._sweep_kernel import (
     I_VIAN,
     ROW_F,
     ROW_I,
+    tree_append,
     tree_sweep,
 )
 
@@ -46,7 +47,7 @@ __all__ = [
     "ARENA_FULL", "F_COST", "F_LOW", "F_POS", "F_T", "F_X", "F_Y", "I_PARENT", "I_SEG",
     "I_SEQ", "I_VIA0", "I_VIAN", "ROW_F", "ROW_I", "ancestor_at", "best_row",
     "block_ancestor", "chain_rows", "compact", "descends_from", "junction_split",
-    "prune_live", "tree_sweep", "trim",
+    "prune_live", "tree_append", "tree_sweep", "trim",
 ]
 
 _jit = numba.njit(cache=True, error_model="numpy")

@@ -112,7 +112,11 @@ class CandidateTree:
             if code == OVERFLOW:
                 arrays.grow()
             elif code == _t.ARENA_FULL:
+                # the result waits in the kernel's buffers: make room, then append it
                 self.compact(m, n_via)
+                _t.tree_append(arrays.fbuf, arrays.ibuf, self.ti, self.tf, self.tv, self.n,
+                               self.nv, self.lo, seq, t, m, n_via)
+                break
             else:
                 break
         if m == 0:
@@ -306,8 +310,10 @@ def warm_up() -> None:
     ctx = StepContext.between(view_of(net), tracker.settings, 15.0, 110.0, 1.0, 120.0, 1.0,
                               tracker.seq + 1, 99.0)
     fast_sweep_step(live, ctx)
-    # and the route monitor's window step
+    # the append after a compaction (nothing to append here), and the route monitor's step
     arrays = sweep_arrays(view_of(net))
+    _t.tree_append(arrays.fbuf, arrays.ibuf, tree.ti, tree.tf, tree.tv, tree.n, tree.nv,
+                   tree.lo, 0, 0.0, 0, 0)
     rows = np.array([(n.seg, n.low, n.pos, n.x, n.y, n.cost) for n in live.values()])
     window_step(arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf,
                 np.array((15.0, 110.0, 1.0, 120.0, 1.0, 10.0, 0.02, 0.1, 0.0, 0.0)), rows,

@@ -173,11 +173,12 @@ class _Window:
     compiled call (:func:`livematch.core._sweep_kernel.window_step`).
     """
 
-    __slots__ = ("driven", "fixes", "rows", "seq", "start_t", "t")
+    __slots__ = ("driven", "fixes", "most", "rows", "seq", "start_t", "t")
 
     def __init__(self) -> None:
         self.rows: FloatArray = np.empty((0, 6))
         self.driven: FloatArray = np.empty(0)
+        self.most = 0.0  # the largest of ``driven`` (0 when dead)
         self.seq = 0  # the fix the live states belong to
         self.t = 0.0
         self.start_t = -math.inf
@@ -199,7 +200,7 @@ class _Window:
 
     def followed(self) -> float:
         """Metres the best candidate followed the route in this window (0 when dead)."""
-        return float(self.driven.max()) if len(self.driven) else 0.0
+        return self.most
 
     def step(self, chain_net: RoadNetwork, ctx: StepContext) -> None:
         """Advance by one fix: sweep, else start afresh from the chain's spatial index."""
@@ -229,6 +230,7 @@ class _Window:
                 rows[:, 5] -= min(n.cost for n in new.values())
         self.rows = rows
         self.driven = driven
+        self.most = max(driven.tolist(), default=0.0)
         self.seq = ctx.seq
         self.t = ctx.t
 
@@ -248,6 +250,7 @@ class _Window:
                            for s, _, _, pos, x, y, cost, low, _ in rows],
                           dtype=np.float64).reshape(len(rows), 6)
         w.driven = np.array([r[8] for r in rows], dtype=np.float64)
+        w.most = max((r[8] for r in rows), default=0.0)
         if rows:
             w.seq, w.t = rows[0][1], rows[0][2]
         return w
