@@ -137,6 +137,11 @@ class Metrics:
             ["why"], registry=r)
         self.memory = Gauge("livematch_resident_memory_bytes",
                             "Resident set size of this process (Linux), bytes.", registry=r)
+        self.gc_pause = Histogram("livematch_gc_pause_seconds",
+                                  "Python garbage collections (they stop the event loop), "
+                                  "by how long they took.", ["generation"],
+                                  buckets=(0.001, 0.01, 0.05, 0.1, 0.25, 0.5, 1.0, 2.0, 5.0),
+                                  registry=r)
 
     def render(self) -> bytes:
         """The registry in the Prometheus text exposition format."""
