@@ -53,6 +53,11 @@ __all__ = ["CandidateTree"]
 _MIN_SPARE = 8  # rows (and vias) of room left after a compaction, at least
 
 
+_NO_TI: npt.NDArray[np.int32] = np.empty((0, _t.ROW_I), np.int32)
+_NO_TF: npt.NDArray[np.float64] = np.empty((0, _t.ROW_F))
+_NO_TV: npt.NDArray[np.int32] = np.empty(0, np.int32)
+
+
 class CandidateTree:
     """The candidate tree of one level: rows, and the live block ``[lo, hi)``.
 
@@ -65,9 +70,11 @@ class CandidateTree:
     __slots__ = ("hi", "lo", "n", "nv", "tf", "ti", "tv")
 
     def __init__(self) -> None:
-        self.ti: npt.NDArray[np.int32] = np.empty((0, _t.ROW_I), np.int32)
-        self.tf: npt.NDArray[np.float64] = np.empty((0, _t.ROW_F))
-        self.tv: npt.NDArray[np.int32] = np.empty(0, np.int32)
+        # zero-size arrays shared by every empty tree (nothing can be written into them:
+        # rows are written only after a compaction has made arrays of this tree's own)
+        self.ti: npt.NDArray[np.int32] = _NO_TI
+        self.tf: npt.NDArray[np.float64] = _NO_TF
+        self.tv: npt.NDArray[np.int32] = _NO_TV
         self.n = self.nv = self.lo = self.hi = 0
 
     def __len__(self) -> int:

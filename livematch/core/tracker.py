@@ -111,6 +111,12 @@ class Tracker:
         []
     """
 
+    # slots: a service holds one tracker per vehicle, and an instance dict costs more
+    # than a small candidate tree
+    __slots__ = ("_view", "_weights", "buffer", "jumps", "last", "last_commit",
+                 "last_released_t", "last_seg", "levels", "network", "next_commit", "seq",
+                 "settings", "skipped", "times", "vehicle")
+
     def __init__(
         self, network: RoadNetwork, vehicle: str, settings: MatchSettings | None = None
     ) -> None:
