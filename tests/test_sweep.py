@@ -14,7 +14,17 @@ import shapely
 from livematch import frechet_decide, frechet_distance
 from livematch.core.build import Road, network_from_roads
 from livematch.core.network import RoadNetwork
-from livematch.core.sweep import Node, StepContext, free_interval, sweep_step
+from livematch.core.settings import MatchSettings
+from livematch.core.sweep import (
+    Node,
+    StepContext,
+    best_leaf,
+    bridge_step,
+    free_interval,
+    pace,
+    step_route,
+    sweep_step,
+)
 from livematch.core.view import view_of
 
 
@@ -98,3 +108,66 @@ def test_sweep_single_point_trace_on_chain() -> None:
     p = np.array([[5.0, 0.0]])
     assert sweep_decides(p, q, 5.0) == frechet_decide(p, q, 5.0)
     assert sweep_decides(p, q, 4.9) == frechet_decide(p, q, 4.9)
+
+
+
+def two_lanes() -> RoadNetwork:
+    """Two parallel eastbound one-way roads 20 m apart, 300 m long, each of two segments.
+
+    Segments 0, 1: the lower road (y = 0); segments 2, 3: the upper road (y = 20).
+    """
+    return network_from_roads([
+        Road([(0.0, 0.0), (150.0, 0.0), (300.0, 0.0)], way=1, oneway=True),
+        Road([(0.0, 20.0), (150.0, 20.0), (300.0, 20.0)], way=2, oneway=True),
+    ])
+
+
+def test_step_route_and_pace_on_straight_road() -> None:
+    """Route of a step and the pace it predicts: 140 m in 4 s gives 350 m in the next 10 s."""
+    view = view_of(two_lanes())
+    root = Node(0, 1, 0.0, 0.2, 30.0, 0.0, None, (), 0.0, 0.0)  # 30 m along the road
+    node = Node(1, 2, 4.0, 20.0 / 150.0, 170.0, 0.0, root, (), 0.0, 0.0)  # 170 m along
+    assert step_route(view, root) == -1.0
+    assert pace(view, root, 14.0) == -1.0
+    # (1 - 0.2) * 150 + 20 = 140 m in 4 s
+    assert step_route(view, node) == pytest.approx(140.0, abs=1e-9)
+    assert pace(view, node, 14.0) == pytest.approx(350.0, abs=1e-9)
+    # a roll back on one segment counts as standing still
+    back = Node(0, 2, 4.0, 0.1, 15.0, 0.0, root, (), 0.0, 0.0)
+    assert step_route(view, back) == pytest.approx(-15.0, abs=1e-9)
+    assert pace(view, back, 14.0) == 0.0
+    assert pace(view, node, 4.0) == -1.0  # no time has passed since the node
+
+
+def test_bridge_step_pace_prefers_the_candidate_keeping_its_speed() -> None:
+    """A fix between two lanes: the bridge picks the lane whose candidate kept its speed.
+
+    Both candidates stand at x = 100 m, 10 s before the fix at (200, 10), which is as far
+    from both lanes; the upper lane's candidate came 100 m in the 10 s before, the lower
+    lane's 5 m, but its path so far cost 1 less. Their routes to the fix are the same,
+    so the pace term, |100 - 5| / pace_m against the slow one, decides.
+    """
+    net = two_lanes()
+    view = view_of(net)
+    low, up = 0, 2
+    assert net.segment_coords(low) == (0.0, 0.0, 150.0, 0.0)
+    assert net.segment_coords(up) == (0.0, 20.0, 150.0, 20.0)
+    slow0 = Node(low, 1, 0.0, 95.0 / 150.0, 95.0, 0.0, None, (), 1.0, 0.0)
+    fast0 = Node(up, 1, 0.0, 0.0, 0.0, 20.0, None, (), 1.0, 0.0)
+    slow = Node(low, 2, 10.0, 100.0 / 150.0, 100.0, 0.0, slow0, (), 1.0, 0.0)
+    fast = Node(up, 2, 10.0, 100.0 / 150.0, 100.0, 20.0, fast0, (), 2.0, 0.0)
+    live = {low: slow, up: fast}
+
+    def bridged(pace_m: float) -> dict[int, Node]:
+        ctx = StepContext.between(view, MatchSettings(pace_m=pace_m), 15.0,
+                                  100.0, 10.0, 200.0, 10.0, 3, 20.0)
+        return bridge_step(net, live, ctx, 400.0)
+
+    with_pace = bridged(20.0)
+    assert sorted(with_pace) == [1, 3]
+    assert with_pace[1].parent is slow and with_pace[3].parent is fast
+    assert with_pace[1].cost - with_pace[3].cost == pytest.approx(95.0 / 20.0 - 1.0, abs=1e-9)
+    assert best_leaf(with_pace).seg == 3
+    without = bridged(1e9)  # a pace term of 1e-7: the path so far decides
+    assert without[3].cost - without[1].cost == pytest.approx(1.0, abs=1e-6)
+    assert best_leaf(without).seg == 1

@@ -41,6 +41,11 @@ class MatchSettings:
         motion_m: scale of the path cost's motion term (metres): the difference between
             the matched point's displacement and the fixes' displacement over one step,
             divided by ``motion_m``. It tells the road ahead from a side branch.
+        pace_m: scale of the path cost's pace term (metres), charged in bridged steps
+            only: the difference between a candidate route's length and the length the
+            same candidate would have driven at the speed of its previous step, divided
+            by ``pace_m``. At 15-30 s between fixes it tells "drove to the end of the
+            dead end and came back" from "stood still" (:mod:`livematch.core.sweep`).
         junction_hold: while candidates whose path cost is within this margin of the best
             one disagree about the branch taken at a junction, the live assignment stays
             at that junction (0 disables). Commits are unaffected.
@@ -60,6 +65,7 @@ class MatchSettings:
     beta_m: float = 10.0
     turn_back_cost: float = 2.0
     motion_m: float = 5.0
+    pace_m: float = 20.0
     junction_hold: float = 3.0
 
     def __post_init__(self) -> None:
@@ -77,7 +83,7 @@ class MatchSettings:
             out.append(("eps_levels", f"must be strictly increasing, got {list(eps)}"))
         positive = ("max_lag_s", "max_speed_mps", "max_accuracy_m", "gap_s", "gap_m",
                     "bridge_speed_mps", "detour_factor", "sigma_m", "beta_m",
-                    "motion_m")
+                    "motion_m", "pace_m")
         for name in positive:
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value > 0):

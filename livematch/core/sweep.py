@@ -31,7 +31,15 @@ only by :func:`fresh_start` and :func:`bridge_step`.
 The back-pointers form a tree of candidate paths (:class:`Node`). Among the paths the
 decision keeps alive, the reported one minimises a cost in the spirit of Newson & Krumm
 (2009): squared distance from fix to matched point over 2 sigma^2, plus the mismatch
-between route length and straight-line step length over beta, plus a charge per U-turn.
+between route length and straight-line step length over beta, plus a charge per U-turn,
+plus a motion term (the matched point should move as the fixes moved). In bridged steps
+(long gaps) one more term compares the route length with the length the candidate's own
+previous step predicts at the same speed (:func:`pace`): with 15-30 s between fixes the
+route-against-chord term of Newson & Krumm alone prefers "stood still" to "drove into
+the dead end and came back", because the chord of a U-turn is short. Using speed
+in the transition follows the temporal analysis of ST-Matching (Lou et al., "Map-matching
+for low-sampling-rate GPS trajectories", ACM SIGSPATIAL GIS 2009, from memory), which
+compares with speed limits; here the reference speed is the candidate's own.
 The Fréchet decision says *which* paths are possible; the cost only orders them.
 """
 
@@ -102,6 +110,7 @@ class StepContext:
     inv_beta: float
     turn_back_cost: float
     motion_cost: float = 0.0
+    pace_cost: float = 0.0
 
     @classmethod
     def between(
@@ -111,7 +120,7 @@ class StepContext:
         """The context of the step p0 -> p1 at one eps, with the cost weights of ``settings``."""
         return cls(view, eps, x0, y0, x1, y1, seq, t, math.hypot(x1 - x0, y1 - y0),
                    1.0 / (2.0 * settings.sigma_m * settings.sigma_m), 1.0 / settings.beta_m,
-                   settings.turn_back_cost, 1.0 / settings.motion_m)
+                   settings.turn_back_cost, 1.0 / settings.motion_m, 1.0 / settings.pace_m)
 
 
 def free_interval(
@@ -138,13 +147,16 @@ def free_interval(
 
 def _offer(
     new: dict[int, Node], ctx: StepContext, seg: int, lo: float, hi: float,
-    parent: Node | None, via: tuple[int, ...], floor: float = -1.0,
+    parent: Node | None, via: tuple[int, ...], floor: float = -1.0, expect: float = -1.0,
 ) -> None:
     """Record that ``seg`` is reachable on [lo, hi] from ``parent`` through ``via``.
 
     The reported position is the fix's projection clamped into [max(lo, floor), hi]:
     ``floor`` keeps a vehicle that stays on one segment from being reported as rolling
-    backwards (the decision alone would allow it, lagging within eps).
+    backwards (the decision alone would allow it, lagging within eps). ``expect`` >= 0
+    adds the pace term: |route - expect| times ``ctx.pace_cost``, where ``expect`` is
+    the route length the parent's own speed predicts (:func:`pace`). Only
+    :func:`bridge_step` passes it; the sweep (and its compiled twin) never does.
     """
     view = ctx.view
     node = new.get(seg)
@@ -184,6 +196,8 @@ def _offer(
                 turns += 1
             cost += turns * ctx.turn_back_cost
         cost += parent.cost + abs(route - ctx.chord) * ctx.inv_beta
+        if expect >= 0.0:
+            cost += abs(route - expect) * ctx.pace_cost
         if ctx.motion_cost > 0.0:
             # The matched point should move as the fixes moved: consecutive GNSS errors
             # are strongly correlated, so the observed step is accurate even when each
@@ -277,6 +291,56 @@ def fresh_start(network: RoadNetwork, ctx: StepContext) -> dict[int, Node]:
     return new
 
 
+def step_route(view: NetworkView, node: Node) -> float:
+    """Route length (metres) of the step that reached ``node`` from its parent; -1 at a root.
+
+    The same length the route term of the cost uses: signed when the step stayed on one
+    segment (a lag within eps can report a small roll back).
+
+    Example (one 100 m road; a root, then a state 25 m further on):
+        >>> from livematch.core.build import Road, network_from_roads
+        >>> from livematch.core.view import view_of
+        >>> view = view_of(network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)]))
+        >>> root = Node(0, 1, 0.0, 0.25, 25.0, 0.0, None, (), 0.0, 0.0)
+        >>> step_route(view, root)
+        -1.0
+        >>> step_route(view, Node(0, 2, 5.0, 0.5, 50.0, 0.0, root, (), 0.0, 0.0))
+        25.0
+    """
+    parent = node.parent
+    if parent is None:
+        return -1.0
+    slen = view.slen
+    if not node.via and node.seg == parent.seg:
+        return (node.pos - parent.pos) * slen[node.seg]
+    return ((1.0 - parent.pos) * slen[parent.seg] + sum(slen[v] for v in node.via)
+            + node.pos * slen[node.seg])
+
+
+def pace(view: NetworkView, node: Node, t: float) -> float:
+    """Metres a candidate would drive from ``node`` until time ``t`` at its last speed.
+
+    The speed is the route length of the step that reached ``node`` over that step's
+    duration (a roll back counts as standing still). Returns -1 when there is no such
+    step (a root, or a tree cut by a commit) or the times do not increase.
+
+    Example (25 m in 5 s, so 50 m in the next 10 s; a root has no pace):
+        >>> from livematch.core.build import Road, network_from_roads
+        >>> from livematch.core.view import view_of
+        >>> view = view_of(network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)]))
+        >>> root = Node(0, 1, 0.0, 0.25, 25.0, 0.0, None, (), 0.0, 0.0)
+        >>> pace(view, Node(0, 2, 5.0, 0.5, 50.0, 0.0, root, (), 0.0, 0.0), 15.0)
+        50.0
+        >>> pace(view, root, 15.0)
+        -1.0
+    """
+    parent = node.parent
+    if parent is None or node.t <= parent.t or t <= node.t:
+        return -1.0
+    route = step_route(view, node)
+    return (route if route > 0.0 else 0.0) * (t - node.t) / (node.t - parent.t)
+
+
 BRIDGE_OWN_SEARCHES = 8  # on the simulated drives more than 8 changed nothing (bench/accuracy.py)
 
 
@@ -294,7 +358,10 @@ def bridge_step(
     route-length term of the cost. The other terms (the motion term above all) differ
     per parent, so the ``BRIDGE_OWN_SEARCHES`` cheapest states also get a search of their
     own and every target is offered to each of them: at 15-30 s between fixes that is
-    where most of the accuracy comes from.
+    where most of the accuracy comes from. Every offer here also pays the pace term
+    (:func:`pace`, ``settings.pace_m``): on the simulated drives of bench/accuracy.py it
+    is what gets a vehicle out of a dead end it drove into and back out of between two
+    fixes.
     """
     view = ctx.view
     eps2 = ctx.eps * ctx.eps
@@ -315,6 +382,7 @@ def bridge_step(
     for i in ranked[:BRIDGE_OWN_SEARCHES] if len(nodes) > 1 else ():
         own = [0.0] * len(nodes)
         searches.append((bounded_dijkstra(view, [sources[i]], limit, own), own))
+    paces = [pace(view, n, ctx.t) for n in nodes] if ctx.pace_cost > 0.0 else [-1.0] * len(nodes)
     new: dict[int, Node] = {}
     for seg in targets:
         a = view.sf[seg]
@@ -325,7 +393,8 @@ def bridge_step(
             continue
         same = live.get(seg)
         if same is not None and hi >= same.pos:
-            _offer(new, ctx, seg, max(lo, same.pos), hi, same, (), same.pos)
+            _offer(new, ctx, seg, max(lo, same.pos), hi, same, (), same.pos,
+                   pace(view, same, ctx.t) if ctx.pace_cost > 0.0 else -1.0)
         for reached, shift in searches:
             r = reached.get(a)
             if r is None or r.dist - shift[r.source] + lo * view.slen[seg] > limit:
@@ -334,7 +403,7 @@ def bridge_step(
             entering = via[-1] if via else nodes[r.source].seg
             if seg == view.twin[entering] and not view.turn_back_ok[a]:
                 continue
-            _offer(new, ctx, seg, lo, hi, nodes[r.source], tuple(via))
+            _offer(new, ctx, seg, lo, hi, nodes[r.source], tuple(via), -1.0, paces[r.source])
     return new
 
 
