@@ -41,12 +41,12 @@ class MatchSettings:
         motion_m: scale of the path cost's motion term (metres): the difference between
             the matched point's displacement and the fixes' displacement over one step,
             divided by ``motion_m``. It tells the road ahead from a side branch.
-        pace_m: scale of the path cost's pace term (metres), charged only in steps
-            bridged across a gap (``gap_s``, ``gap_m``): the difference between a
-            candidate route's length and the length the same candidate would have driven
-            at the speed of its previous step, divided by ``pace_m``. At 15-30 s between
-            fixes it tells "drove to the end of the dead end and came back" from "stood
-            still" (:mod:`livematch.core.sweep`).
+        pace_m: scale of the path cost's pace term (metres), charged in bridged steps
+            only (a gap, or a window that died): the difference between a candidate
+            route's length and the length the same candidate would have driven at the
+            speed of its previous step, divided by ``pace_m``. At 15-30 s between fixes
+            it tells "drove to the end of the dead end and came back" from "stood still"
+            (:mod:`livematch.core.sweep`).
         junction_hold: while candidates whose path cost is within this margin of the best
             one disagree about the branch taken at a junction, the live assignment stays
             at that junction (0 disables). Commits are unaffected.

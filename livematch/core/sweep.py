@@ -32,8 +32,8 @@ The back-pointers form a tree of candidate paths (:class:`Node`). Among the path
 decision keeps alive, the reported one minimises a cost in the spirit of Newson & Krumm
 (2009): squared distance from fix to matched point over 2 sigma^2, plus the mismatch
 between route length and straight-line step length over beta, plus a charge per U-turn,
-plus a motion term (the matched point should move as the fixes moved). In steps bridged
-across a gap (``gap_s`` / ``gap_m``) one more term compares the route length with the
+plus a motion term (the matched point should move as the fixes moved). In bridged steps
+(a gap, or a window that died) one more term compares the route length with the
 length the candidate's own previous step predicts at the same speed (:func:`pace`): with
 15-30 s between fixes the route-against-chord term alone prefers "stood still" to "drove
 into the dead end and came back", because the chord of a U-turn is short. Using speed in
@@ -48,7 +48,7 @@ from __future__ import annotations
 import heapq
 import math
 from collections.abc import Callable, Iterable
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 
 from livematch.core.network import RoadNetwork
 from livematch.core.routing import bounded_dijkstra, route_segments
@@ -359,9 +359,9 @@ def bridge_step(
     per parent, so the ``BRIDGE_OWN_SEARCHES`` cheapest states also get a search of their
     own and every target is offered to each of them: at 15-30 s between fixes that is
     where most of the accuracy comes from. Every offer here also pays the pace term
-    (:func:`pace`) when ``ctx.pace_cost`` > 0, which :func:`advance` sets only for gaps:
-    on the simulated drives of bench/accuracy.py it is what gets a vehicle out of a dead
-    end it drove into and back out of between two fixes 15-30 s apart.
+    (:func:`pace`, ``ctx.pace_cost``): on the simulated drives of bench/accuracy.py it
+    is what gets a vehicle out of a dead end it drove into and back out of between two
+    fixes 15-30 s apart.
     """
     view = ctx.view
     eps2 = ctx.eps * ctx.eps
@@ -418,8 +418,7 @@ def advance(
         network, live, ctx: the level's states at the previous fix and the step.
         settings: bridging bounds (``bridge_speed_mps``, ``detour_factor``, ``gap_m``).
         dt: seconds since the previous fix.
-        gap: the step is a gap: skip the sweep, bridge at once, with the pace term
-            (``ctx.pace_cost``); a bridge after a dead window goes without it.
+        gap: the step is a gap: skip the sweep, bridge at once.
         step: the sweep implementation (the compiled one in the tracker).
 
     Returns:
@@ -434,8 +433,7 @@ def advance(
     if live:
         limit = min(settings.bridge_speed_mps * dt,
                     settings.detour_factor * ctx.chord + settings.gap_m) + 2.0 * ctx.eps
-        # the pace term only where the chord says least: at gaps, not where a window died
-        new = bridge_step(network, live, ctx if gap else replace(ctx, pace_cost=0.0), limit)
+        new = bridge_step(network, live, ctx, limit)
         if new:
             return new, "bridged"
     return fresh_start(network, ctx), "fresh"
