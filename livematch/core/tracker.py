@@ -9,8 +9,10 @@ How it decides
   fix already taken), ``out_of_order`` (older than the newest fix taken; with
   ``reorder_fixes`` > 0 a small hold-back buffer first puts late arrivals in order),
   ``low_accuracy`` (reported accuracy worse than ``max_accuracy_m``), ``impossible_jump``
-  (implied speed from the previous accepted fix above ``max_speed_mps``; after three
-  such fixes in a row the newest is believed, so one bad fix cannot lock a vehicle out).
+  (implied speed from the previous accepted fix above ``max_speed_mps``, or above the
+  speed of the last accepted step plus what ``ACCEL_MPS2`` and the GNSS error
+  (``sigma_m``) allow; after three such fixes in a row the newest is believed, so one
+  bad fix cannot lock a vehicle out).
 * **The eps ladder**: one sweep (:mod:`livematch.core.sweep`) per level. The smallest
   level alive decides, and every assignment carries its certificate: ``eps_m`` and the
   window (``window_fixes``, ``window_s``) of fixes that lie within Fréchet distance
@@ -62,6 +64,9 @@ from livematch.errors import BadStateError
 STATE_FORMAT = b"LMT2"
 STATE_FORMAT_V1 = b"LMT1"  # JSON rows of linked nodes; still read
 JUMP_TRUST_AFTER = 3
+# A road vehicle changes speed by at most about 3 m/s per second (ordinary braking and
+# acceleration; common practice, from memory).
+ACCEL_MPS2 = 3.0
 
 
 class Level:
@@ -115,7 +120,7 @@ class Tracker:
     # than a small candidate tree
     __slots__ = ("_view", "_weights", "buffer", "jumps", "last", "last_commit",
                  "last_released_t", "last_seg", "levels", "network", "next_commit", "seq",
-                 "settings", "skipped", "times", "vehicle")
+                 "settings", "skipped", "speed", "times", "vehicle")
 
     def __init__(
         self, network: RoadNetwork, vehicle: str, settings: MatchSettings | None = None
@@ -137,6 +142,7 @@ class Tracker:
         self.last: tuple[float, float, float] | None = None  # t, x, y of the last accepted fix
         self.last_released_t: float | None = None
         self.jumps = 0
+        self.speed: float | None = None  # implied speed of the last accepted step, m/s
         self.buffer: list[Fix] = []
         self.times: dict[int, float] = {}
         self.next_commit = 1
@@ -198,7 +204,13 @@ class Tracker:
             if dt <= 0:
                 events.append(Filtered(fix.vehicle, fix.t, "out_of_order"))
                 return False
-            if math.hypot(fix.x - x0, fix.y - y0) > s.max_speed_mps * dt:
+            limit = s.max_speed_mps
+            if self.speed is not None:
+                # the speed of the last step, changed by at most ACCEL_MPS2, plus three
+                # standard deviations of the error of a difference of two fixes
+                limit = min(limit, self.speed + ACCEL_MPS2 * dt
+                            + 3.0 * math.sqrt(2.0) * s.sigma_m / dt)
+            if math.hypot(fix.x - x0, fix.y - y0) > limit * dt:
                 self.jumps += 1
                 if self.jumps < JUMP_TRUST_AFTER:
                     events.append(Filtered(fix.vehicle, fix.t, "impossible_jump"))
@@ -215,6 +227,8 @@ class Tracker:
         self.times[seq] = fix.t
         prev = self.last
         self.last = (fix.t, fix.x, fix.y)
+        if prev is not None and fix.t > prev[0]:
+            self.speed = math.hypot(fix.x - prev[1], fix.y - prev[2]) / (fix.t - prev[0])
         if prev is None:
             x0, y0, dt = fix.x, fix.y, 0.0
         else:
@@ -442,6 +456,7 @@ class Tracker:
             "last": self.last,
             "last_released_t": self.last_released_t,
             "jumps": self.jumps,
+            "speed": self.speed,
             "buffer": [[f.vehicle, f.t, f.lon, f.lat, f.x, f.y, f.accuracy, f.speed,
                         f.heading, f.route] for f in self.buffer],
             "times": [[k, v] for k, v in self.times.items()],
@@ -509,6 +524,7 @@ class Tracker:
         tracker.last = tuple(state["last"]) if state["last"] else None
         tracker.last_released_t = state["last_released_t"]
         tracker.jumps = state["jumps"]
+        tracker.speed = state.get("speed")  # absent in older states
         tracker.buffer = [Fix(*row) for row in state["buffer"]]
         tracker.times = {k: v for k, v in state["times"]}
         tracker.next_commit = state["next_commit"]
