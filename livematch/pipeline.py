@@ -56,6 +56,7 @@ import json
 import math
 import typing
 import zlib
+from array import array
 from collections import Counter
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, fields
@@ -156,7 +157,8 @@ class _VehicleState:
 
     def __init__(self, tracker: Tracker, recent: list[float] | None = None) -> None:
         self.tracker = tracker
-        self.recent: list[float] = recent or []
+        # unboxed doubles: 8 bytes a time instead of a float object and a pointer
+        self.recent: array[float] = array("d", recent or ())
         self.alerts = VehicleAlerts()
         self.pending: dict[float, Fix] = {}
         # Rate limit: (tokens, receive time, newest fix time) after the last fix checked.

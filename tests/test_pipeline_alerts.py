@@ -191,8 +191,12 @@ def test_pipeline_off_network_and_back():
     p = Pipeline(NET, MatchSettings(max_speed_mps=400.0))
     found = alerts(run(p, messages("van", pts)))
     assert [a["kind"] for a in found] == ["off_network", "on_network"]
-    assert found[0]["since"] == T0 + 11 and found[0]["time"] == T0 + 41
-    assert found[1]["time"] == T0 + 53 and found[1]["duration_s"] == 42.0
+    # The 300 m jumps out (at T0 + 11) and back (at T0 + 51) are far beyond the last
+    # step's speed (10 m/s): each is filtered as impossible twice and believed at the
+    # third fix, so the episode runs from T0 + 13 and ends at T0 + 55.
+    assert p.counters["filtered:impossible_jump"] == 4
+    assert found[0]["since"] == T0 + 13 and found[0]["time"] == T0 + 43
+    assert found[1]["time"] == T0 + 55 and found[1]["duration_s"] == 42.0
 
 
 def test_pipeline_fences_groups_and_matched_position():
