@@ -146,6 +146,7 @@ async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
                 assert await asyncio.to_thread(procs[w].wait, 30) == 0, logs[w].read_text()
     finally:
         watcher.cancel()
+        await asyncio.gather(watcher, return_exceptions=True)  # before its client closes
         for proc in procs.values():
             if proc.poll() is None:
                 proc.kill()

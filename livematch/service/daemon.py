@@ -219,7 +219,6 @@ class Daemon:
         self._drain_deadline = 0.0
         self._outbox: deque[_Pending] = deque()  # assignments, commits, alerts
         self._reject_box: deque[_Pending] = deque()  # rejects: sent after the others
-        self._replaying = False  # a takeover's replay is running _handle
         self._outbox_changed = asyncio.Event()  # set on every append, pop and stop
         self._pending_deletes: set[str] = set()
         self._full_logged_at = -math.inf
@@ -835,9 +834,9 @@ class Daemon:
         (nothing left to replay -> matching) has no ``await`` in between, so no fix is
         skipped or taken out of order. Every ``_REPLAY_CHUNK`` messages the event loop
         runs (lease renewals, PUBACKs, MQTT keepalive). Fixes the restored checkpoint
-        already covers are dropped as duplicates (vehicle, time). Rejects are counted
-        but not published again (``livematch_rejects_suppressed_total{why="replay"}``):
-        the worker holding the shard when the message arrived published them.
+        already covers are dropped as duplicates (vehicle, time). Answers and rejects
+        of the rest are published (again, if their first holder got that far): at
+        least once, like every output.
 
         Returns the number of messages replayed, or None when the lease was lost
         meanwhile (the shard's vehicles are then dropped).
@@ -856,11 +855,7 @@ class Daemon:
                 for k, (seq, at, topic, payload) in enumerate(todo, 1):
                     done_seq = seq
                     if at >= horizon:
-                        self._replaying = True
-                        try:
-                            self._handle(topic, payload, at)
-                        finally:
-                            self._replaying = False
+                        self._handle(topic, payload, at)
                         replayed += 1
                     if k % _REPLAY_CHUNK == 0:
                         await asyncio.sleep(0)
@@ -1309,9 +1304,7 @@ class Daemon:
             self.metrics.rejected.labels(reason=reason).inc()
             if reason == "too_many_vehicles":
                 self._log_cap(vehicle)
-            if self._replaying:  # published when the message first arrived
-                self.metrics.rejects_suppressed.labels(why="replay").inc()
-            elif len(self._reject_box) >= self.config.publish.reject_queue_max:
+            if len(self._reject_box) >= self.config.publish.reject_queue_max:
                 self.metrics.rejects_suppressed.labels(why="queue_full").inc()
             else:
                 self._reject_box.append(_Pending(cfg.reject_topic, encode_record(record),

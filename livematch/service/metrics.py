@@ -132,8 +132,8 @@ class Metrics:
                                   registry=r)
         self.rejects_suppressed = Counter(
             "livematch_rejects_suppressed",
-            "Reject records counted but not published, by why (replay: already published "
-            "when the message first arrived; queue_full: publish.reject_queue_max reached).",
+            "Reject records counted but not published, by why (queue_full: "
+            "publish.reject_queue_max were waiting).",
             ["why"], registry=r)
         self.memory = Gauge("livematch_resident_memory_bytes",
                             "Resident set size of this process (Linux), bytes.", registry=r)
