@@ -213,3 +213,19 @@ def test_candidate_tree_empty_and_roots() -> None:
     assert [fields(n) for n in tree.rows()] == [fields(n) for n in roots.values()]
     assert tree.best(-1) == 1  # the cheaper root
     assert tree.common_ancestor(-1) == -1  # two roots share no ancestor
+
+
+def test_tracker_keeps_sparse_vehicles_trees_tight() -> None:
+    """At 10 s between fixes every tree is shrunk to the rows still needed after a fix."""
+    net = osm("test")
+    tracker = Tracker(net, "v", MatchSettings())
+    fixes = drive(net, 3, 10, 300.0)[:20]
+    tracker.update(fixes[0])  # the first fix has no time step
+    for fix in fixes[1:]:
+        tracker.update(fix)
+        for level in tracker.levels:
+            tree = level.tree
+            assert len(tree.ti) == tree.n and len(tree.tv) == tree.nv
+            if tree.n:
+                assert tree.hi == tree.n  # the live block is last
+                assert [n.seq for n in tree.rows()][-1] == tracker.seq

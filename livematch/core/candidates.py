@@ -97,6 +97,16 @@ class CandidateTree:
             self.ti, self.tf, self.tv, self.n, self.lo, self.hi, rows, vias)
         self.hi = self.lo + live
 
+    def shrink(self) -> None:
+        """Keep only the rows still needed, with no room to spare (an idle tree)."""
+        if self.n == 0:
+            return
+        ti, tf, tv, n, nv, lo = _t.compact(self.ti, self.tf, self.tv, self.n, self.lo,
+                                           self.hi, 0, 0)
+        live = self.hi - self.lo
+        self.ti, self.tf, self.tv = ti[:n].copy(), tf[:n].copy(), tv[:nv].copy()
+        self.n, self.nv, self.lo, self.hi = n, nv, lo, lo + live
+
     def _make_room(self, rows: int, vias: int) -> None:
         if self.n + rows > len(self.ti) or self.nv + vias > len(self.tv):
             self.compact(rows, vias)

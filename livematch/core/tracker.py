@@ -67,6 +67,8 @@ JUMP_TRUST_AFTER = 3
 # A road vehicle changes speed by at most about 3 m/s per second (ordinary braking and
 # acceleration; common practice, from memory).
 ACCEL_MPS2 = 3.0
+# From this many seconds between fixes on, the trees are kept tight between fixes.
+SPARSE_S = 5.0
 
 
 class Level:
@@ -271,6 +273,11 @@ class Tracker:
                 fix.t - deciding.cert_t,
             ))
         self._settle(seq, fix.t, salvage, events)
+        if dt >= SPARSE_S:
+            # a vehicle reporting this rarely spends most of its time idle: keep its
+            # trees without spare room (a compaction per level; decisions unchanged)
+            for level in self.levels:
+                level.tree.shrink()
 
     def _hold_at_junction(
         self, level: Level, best: int, fix: Fix
