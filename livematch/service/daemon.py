@@ -628,18 +628,7 @@ class Daemon:
         target = target_share(leases.n_shards, len(members))
         rank = {s: i for i, s in enumerate(preference(self.worker, leases.n_shards))}
         held = sorted(leases.held, key=rank.__getitem__)
-        excess = held[target:]
-        if excess:
-            self._active.difference_update(excess)  # stop matching them: fixes only kept
-            await self._outputs_acked(self._enqueued, _ACK_WAIT_S)  # their answers out
-        try:
-            for shard in excess:
-                await self._hand_over(shard)
-        except StoreError:
-            for shard in excess:  # not handed over: its lease runs out, whoever takes it
-                if shard in leases.held:  # restores the checkpoint and replays
-                    self._lose(shard, "handover_failed")
-            raise
+        await self._hand_over_all(held[target:])
         if len(leases.held) >= target:
             return
         owners = await leases.owners()
@@ -650,6 +639,26 @@ class Daemon:
                 fence = await leases.acquire(shard)
                 if fence is not None:
                     await self._take(shard, fence)
+
+    async def _hand_over_all(self, excess: list[int]) -> None:
+        """Stop matching the shards ``excess``, let their answers out, hand each over.
+
+        A shard not handed over (Redis failed) is dropped: its lease runs out, and
+        whoever takes it restores the checkpoint and replays the kept fixes.
+        """
+        if not excess:
+            return
+        assert self.leases is not None
+        self._active.difference_update(excess)  # stop matching them: fixes only kept
+        await self._outputs_acked(self._enqueued, _ACK_WAIT_S)  # their answers out
+        try:
+            for shard in excess:
+                await self._hand_over(shard)
+        except StoreError:
+            for shard in excess:
+                if shard in self.leases.held:
+                    self._lose(shard, "handover_failed")
+            raise
 
     def _ranked(self, members: list[str]) -> tuple[set[int], set[int]]:
         """(shards this worker holds, shards it stands by for) by rendezvous ranking."""
@@ -680,18 +689,7 @@ class Daemon:
         assert leases is not None
         mine, standby = self._ranked(members)
         await self._sync_subscriptions(mine | standby | set(leases.held))
-        excess = sorted(s for s in leases.held if s not in mine)
-        if excess:
-            self._active.difference_update(excess)  # stop matching them: fixes only kept
-            await self._outputs_acked(self._enqueued, _ACK_WAIT_S)  # their answers out
-            try:
-                for shard in excess:
-                    await self._hand_over(shard)
-            except StoreError:
-                for shard in excess:
-                    if shard in leases.held:
-                        self._lose(shard, "handover_failed")
-                raise
+        await self._hand_over_all(sorted(s for s in leases.held if s not in mine))
         for shard in sorted(mine - set(leases.held)):
             if self._stopping.is_set():
                 break
