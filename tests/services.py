@@ -365,3 +365,21 @@ async def http_get(port: int, path: str) -> tuple[int, str]:
         writer.close()
     head, _, body = raw.partition(b"\r\n\r\n")
     return int(head.split()[1]), body.decode()
+
+
+async def end_group_run(watcher: asyncio.Task[Any], procs: dict[str, subprocess.Popen[bytes]],
+                        client: Any) -> None:
+    """Tear down a worker-group test: the checkpoint watcher, the workers, its Redis client.
+
+    The watcher is let end before its client closes (bounded: a Redis read may ignore
+    the cancel); workers still running are killed.
+    """
+    watcher.cancel()
+    await asyncio.wait({watcher}, timeout=5)
+    if watcher.done() and not watcher.cancelled():
+        watcher.exception()  # retrieved: a closed connection is expected here
+    for proc in procs.values():
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    await client.aclose()

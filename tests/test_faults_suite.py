@@ -26,6 +26,7 @@ from services import (
     Collector,
     Mosquitto,
     drive,
+    end_group_run,
     free_port,
     http_get,
     subprocess_env,
@@ -267,16 +268,7 @@ async def test_faults_three_workers_kill_restarts_and_flood(
                 procs[w].send_signal(signal.SIGTERM)
                 assert await asyncio.to_thread(procs[w].wait, 30) == 0, logs[w].read_text()
     finally:
-        watcher.cancel()
-        # let it end before its client closes (bounded: a Redis read may ignore the cancel)
-        await asyncio.wait({watcher}, timeout=5)
-        if watcher.done() and not watcher.cancelled():
-            watcher.exception()  # retrieved: a closed connection is expected here
-        for proc in procs.values():
-            if proc.poll() is None:
-                proc.kill()
-                proc.wait()
-        await client.aclose()
+        await end_group_run(watcher, procs, client)
         redis_server.stop()
     window_regressions = []
     answered = 0

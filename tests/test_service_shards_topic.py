@@ -15,6 +15,7 @@ from services import (
     Mosquitto,
     RedisServer,
     drive,
+    end_group_run,
     free_port,
     publisher,
     subprocess_env,
@@ -145,16 +146,7 @@ async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
                 procs[w].send_signal(signal.SIGTERM)
                 assert await asyncio.to_thread(procs[w].wait, 30) == 0, logs[w].read_text()
     finally:
-        watcher.cancel()
-        # let it end before its client closes (bounded: a Redis read may ignore the cancel)
-        await asyncio.wait({watcher}, timeout=5)
-        if watcher.done() and not watcher.cancelled():
-            watcher.exception()  # retrieved: a closed connection is expected here
-        for proc in procs.values():
-            if proc.poll() is None:
-                proc.kill()
-                proc.wait()
-        await client.aclose()
+        await end_group_run(watcher, procs, client)
     rejects = col.records("/out/rejects")
     assert [r["reason"] for r in rejects] == ["wrong_shard"]
     assert rejects[0]["detail"] == (f"topic shard level '{wrong}' is not shard "

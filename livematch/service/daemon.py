@@ -365,14 +365,7 @@ class Daemon:
         else:
             return False
         self.store_ok = True
-        restored = 0
-        for vehicle, blob in sorted(blobs.items()):
-            try:
-                self.pipeline.import_vehicle(vehicle, blob)
-                restored += 1
-            except Exception as exc:  # one bad checkpoint must not keep the others out
-                self.metrics.store_errors.inc()
-                log.warning("checkpoint not restored", extra=fields(vehicle=vehicle, error=exc))
+        restored = self._import_all(blobs)
         self.metrics.vehicles.set(len(self.pipeline.vehicles()))
         if self.leases is not None:
             return True  # ready once the first lease round is done
@@ -444,6 +437,21 @@ class Daemon:
             except StoreError:
                 self._latest_dirty |= dirty
                 raise
+
+    def _import_all(self, blobs: dict[str, bytes]) -> int:
+        """Restore every checkpoint in ``blobs``; returns how many were restored.
+
+        One bad checkpoint is logged and counted and does not keep the others out.
+        """
+        restored = 0
+        for vehicle, blob in sorted(blobs.items()):
+            try:
+                self.pipeline.import_vehicle(vehicle, blob)
+                restored += 1
+            except Exception as exc:  # one bad checkpoint must not keep the others out
+                self.metrics.store_errors.inc()
+                log.warning("checkpoint not restored", extra=fields(vehicle=vehicle, error=exc))
+        return restored
 
     def _checkpointed_at(self, vehicle: str, now: float) -> float:
         """When ``vehicle`` was last checkpointed (monotonic s).
@@ -823,14 +831,7 @@ class Daemon:
             raise
         if leases.held.get(shard) != fence:  # lost while loading
             return
-        restored = 0
-        for vehicle, blob in sorted(blobs.items()):
-            try:
-                self.pipeline.import_vehicle(vehicle, blob)
-                restored += 1
-            except Exception as exc:  # one bad checkpoint must not keep the others out
-                self.metrics.store_errors.inc()
-                log.warning("checkpoint not restored", extra=fields(vehicle=vehicle, error=exc))
+        restored = self._import_all(blobs)
         replayed = await self._replay(shard, fence)
         if replayed is None:  # lost while replaying: _lose dropped its vehicles
             return
