@@ -463,3 +463,23 @@ def test_route_window_step_equals_node_reference() -> None:
         rows = rows.reshape(len(new), 6)
         driven = np.zeros(len(new))
     assert steps > 20
+
+
+def test_route_window_best_equals_python_max() -> None:
+    """The compiled best-candidate pick equals ``max`` over (driven, -cost, -segment).
+
+    Reference: Python's built-in ``max`` with that key, which keeps the first of equal
+    keys; many ties (driven and cost drawn from a few values) exercise every tie-break.
+    """
+    from livematch.core import _sweep_kernel as k
+
+    rng = np.random.default_rng(5)
+    assert k.window_best(np.empty((0, 6)), np.empty(0)) == -1  # degenerate: no live state
+    for _ in range(300):
+        m = int(rng.integers(1, 12))
+        rows = np.zeros((m, 6))
+        rows[:, 0] = rng.integers(0, 4, m)
+        rows[:, 5] = rng.choice([0.0, 0.5, 1.0], m)
+        driven = rng.choice([0.0, 3.0, 7.5], m)
+        want = max(range(m), key=lambda j: (driven[j], -rows[j, 5], -rows[j, 0]))
+        assert k.window_best(rows, driven) == want

@@ -618,3 +618,23 @@ def window_step(
     for j in range(m):
         out[j, 5] -= base
     return 0, out, new_driven
+
+
+@numba.njit(cache=True, error_model="numpy")
+def window_best(rows: np.ndarray, driven: np.ndarray) -> int:
+    """Row of the window candidate that followed the route longest; -1 when none is live.
+
+    Ties go to the lower cost (column 5), then the lower segment id (column 0), then the
+    earlier row: the order of ``max`` over ``(driven, -cost, -seg)`` in row order, which
+    :meth:`livematch.core.monitors.route._Window.best` used before this was compiled.
+    """
+    best = -1
+    for j in range(rows.shape[0]):
+        if best < 0:
+            best = j
+            continue
+        d, b = driven[j], driven[best]
+        if d > b or (d == b and (rows[j, 5] < rows[best, 5] or (
+                rows[j, 5] == rows[best, 5] and rows[j, 0] < rows[best, 0]))):
+            best = j
+    return best

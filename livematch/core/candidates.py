@@ -43,7 +43,7 @@ import numpy as np
 import numpy.typing as npt
 
 from livematch.core import _tree_kernel as _t
-from livematch.core._sweep_kernel import OVERFLOW, window_step
+from livematch.core._sweep_kernel import OVERFLOW, window_best, window_step
 from livematch.core.fastsweep import fast_sweep_step, sweep_arrays
 from livematch.core.sweep import Node
 from livematch.core.view import NetworkView
@@ -332,7 +332,9 @@ def warm_up() -> None:
     _t.tree_append(arrays.fbuf, arrays.ibuf, tree.ti, tree.tf, tree.tv, tree.n, tree.nv,
                    tree.lo, 0, 0.0, 0, 0)
     rows = np.array([(n.seg, n.low, n.pos, n.x, n.y, n.cost) for n in live.values()])
-    window_step(arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf,
-                np.array((15.0, 110.0, 1.0, 120.0, 1.0, 10.0, 0.02, 0.1, 0.0, 0.0)), rows,
-                np.zeros(len(rows)))
+    _, rows, driven = window_step(
+        arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf,
+        np.array((15.0, 110.0, 1.0, 120.0, 1.0, 10.0, 0.02, 0.1, 0.0, 0.0)), rows,
+        np.zeros(len(rows)))
+    window_best(rows, driven)
     tracker.flush()

@@ -159,6 +159,19 @@ class RouteChain:
         return float(shapely.get_x(p)), float(shapely.get_y(p))
 
 
+#: The window's cost weights: 1 / (2 sigma^2) with sigma 5 m, 1 / beta with beta 10 m, no
+#: turn-back or motion cost. A window only asks whether the fixes follow the route, so the
+#: weights merely rank its candidates (:meth:`_Window.best` breaks ties by cost).
+_WINDOW_WEIGHTS = (0.02, 0.1, 0.0, 0.0)
+_NO_ROWS: FloatArray = np.empty((0, 6))
+
+
+def _step_scalars(eps: float, x0: float, y0: float, x1: float, y1: float,
+                  chord: float) -> FloatArray:
+    """The window kernel's step scalars, in :class:`StepContext`'s order."""
+    return np.array((eps, x0, y0, x1, y1, chord, *_WINDOW_WEIGHTS))
+
+
 def _cumulative(lengths: FloatArray) -> list[float]:
     return np.concatenate([[0.0], np.cumsum(lengths)[:-1]]).tolist()
 
@@ -191,25 +204,26 @@ class _Window:
 
     def best(self) -> tuple[int, float] | None:
         """(segment, position) of the candidate that followed the route longest."""
-        if not len(self.rows):
+        j = _k.window_best(self.rows, self.driven)
+        if j < 0:
             return None
-        rows = self.rows.tolist()
-        driven = self.driven.tolist()
-        j = max(range(len(rows)), key=lambda j: (driven[j], -rows[j][5], -rows[j][0]))
-        return int(rows[j][0]), rows[j][2]
+        return int(self.rows[j, 0]), float(self.rows[j, 2])
 
     def followed(self) -> float:
         """Metres the best candidate followed the route in this window (0 when dead)."""
         return self.most
 
-    def step(self, chain_net: RoadNetwork, ctx: StepContext) -> None:
-        """Advance by one fix: sweep, else start afresh from the chain's spatial index."""
-        code, rows, driven = 0, self.rows[:0], self.driven[:0]
+    def step(self, chain_net: RoadNetwork, view: NetworkView, scalars: FloatArray,
+             seq: int, t: float) -> None:
+        """Advance by one fix: sweep, else start afresh from the chain's spatial index.
+
+        ``scalars`` are the kernel's step scalars (:func:`_step_scalars`), the same for
+        both directions; the :class:`StepContext` the pure-Python start needs is built
+        only when the window starts afresh (a few per cent of fixes).
+        """
+        rows = driven = _NO_ROWS
         if len(self.rows):
-            arrays = sweep_arrays(ctx.view)
-            scalars = np.array((ctx.eps, ctx.x0, ctx.y0, ctx.x1, ctx.y1, ctx.chord,
-                                ctx.inv_two_sigma2, ctx.inv_beta, ctx.turn_back_cost,
-                                ctx.motion_cost))
+            arrays = sweep_arrays(view)
             while True:
                 code, rows, driven = _k.window_step(arrays.netf, arrays.neti, arrays.fbuf,
                                                     arrays.ibuf, scalars, self.rows,
@@ -219,20 +233,25 @@ class _Window:
                 arrays.grow()
         if len(rows):
             self.fixes += 1
+            self.most = max(driven.tolist())
         else:
-            new = fresh_start(chain_net, ctx)
+            eps, x0, y0, x1, y1, chord, inv_two_sigma2, inv_beta, turn_back, motion = (
+                scalars.tolist())
+            new = fresh_start(chain_net, StepContext(view, eps, x0, y0, x1, y1, seq, t,
+                                                     chord, inv_two_sigma2, inv_beta,
+                                                     turn_back, motion))
             rows = np.array([(n.seg, n.low, n.pos, n.x, n.y, n.cost) for n in new.values()],
                             dtype=np.float64).reshape(len(new), 6)
             driven = np.zeros(len(new))
-            self.start_t = ctx.t
+            self.start_t = t
             self.fixes = 1 if new else 0
+            self.most = 0.0
             if new:
                 rows[:, 5] -= min(n.cost for n in new.values())
         self.rows = rows
         self.driven = driven
-        self.most = max(driven.tolist(), default=0.0)
-        self.seq = ctx.seq
-        self.t = ctx.t
+        self.seq = seq
+        self.t = t
 
     def to_state(self) -> list[Any]:
         return [self.start_t if math.isfinite(self.start_t) else None, self.fixes,
@@ -314,11 +333,10 @@ class RouteMonitor:
         x0, y0 = self.last_xy if self.last_xy is not None else (fix.x, fix.y)
         step_m = math.hypot(fix.x - x0, fix.y - y0)
         self.last_xy = (fix.x, fix.y)
-        for window, net, view in ((self.fwd, self.chain.forward, self.chain.forward_view),
-                                  (self.rev, self.chain.backward, self.chain.backward_view)):
-            ctx = StepContext(view, s.eps_route_m, x0, y0, fix.x, fix.y, self.seq, fix.t,
-                              step_m, 0.02, 0.1, 0.0)
-            window.step(net, ctx)
+        scalars = _step_scalars(s.eps_route_m, x0, y0, fix.x, fix.y, step_m)
+        chain = self.chain
+        self.fwd.step(chain.forward, chain.forward_view, scalars, self.seq, fix.t)
+        self.rev.step(chain.backward, chain.backward_view, scalars, self.seq, fix.t)
         self.trail_m += step_m  # reset at every on-route fix (the anchor)
         alerts: list[Alert] = []
         if self.fwd.live:
