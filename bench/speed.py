@@ -72,8 +72,11 @@ def measure(drives: list[list[Fix]], settings: MatchSettings, network: Any) -> d
     }
 
 
-def measure_pipeline(drives: list[Drive], network: RoadNetwork) -> dict[str, Any]:
-    """Time ``Pipeline.handle`` per fix message, each vehicle on its own path as route."""
+def pipeline_setup(drives: list[Drive], network: RoadNetwork
+                   ) -> tuple[Pipeline, list[tuple[float, str, bytes]]]:
+    """A pipeline with each vehicle's own path as its route and 40 fences near the drives,
+    and the drives' 1 Hz fixes as JSON messages ``(time, topic, payload)`` in time order.
+    """
     routes = {}
     for d in drives:
         verts = [int(network.seg_from[d.path[0]])] + [int(network.seg_to[s]) for s in d.path]
@@ -96,6 +99,12 @@ def measure_pipeline(drives: list[Drive], network: RoadNetwork) -> dict[str, Any
                     "accuracy": o.accuracy}
             messages.append((o.t, f"fleet/{d.vehicle}", json.dumps(body).encode()))
     messages.sort(key=lambda m: m[0])
+    return pipeline, messages
+
+
+def measure_pipeline(drives: list[Drive], network: RoadNetwork) -> dict[str, Any]:
+    """Time ``Pipeline.handle`` per fix message, each vehicle on its own path as route."""
+    pipeline, messages = pipeline_setup(drives, network)
     per_fix: list[float] = []
     for t, topic, payload in messages:
         t0 = time.perf_counter_ns()

