@@ -97,6 +97,9 @@ class FenceSet:
         self.fences = list(fences)
         self.settings = settings
         self.index = {f.id: i for i, f in enumerate(self.fences)}
+        # whether any fence watches only some vehicles (else every fence applies to all)
+        self.filtered = any(f.vehicles is not None or f.groups is not None
+                            for f in self.fences)
         self.inner = []
         self.outer = []
         for f in self.fences:
@@ -182,27 +185,35 @@ class FenceMonitor:
     def update(self, fences: FenceSet, fix: Fix, x: float, y: float,
                groups: Iterable[str]) -> list[Alert]:
         """Take one fix at position (x, y) (raw or matched, metres); return its alerts."""
-        groups = tuple(groups)
+        state = self.state
+        hits = fences.near(x, y)
+        if not hits and not state:
+            return []  # near no fence and in none: most fixes of a fleet
+        if fences.filtered:
+            groups = tuple(groups)
+            near = [i for i in hits if fences.fences[i].applies_to(fix.vehicle, groups)]
+        else:
+            near = hits
+        if state:
+            for k in [k for k in state if k not in fences.index]:
+                del state[k]  # a fence no longer loaded
+            # Fences near the point, and those the vehicle is in (to see it leave them).
+            todo = sorted(set(near) | {fences.index[k] for k in state})
+        else:
+            todo = near  # sorted already
         alerts: list[Alert] = []
-        near = [i for i in fences.near(x, y)
-                if fences.fences[i].applies_to(fix.vehicle, groups)]
-        for k in [k for k in self.state if k not in fences.index]:
-            del self.state[k]  # a fence no longer loaded
-        # Fences near the point, and those the vehicle is in (to see it leave them).
-        todo = sorted(set(near) | {fences.index[k] for k in self.state})
         for i, in_inner in zip(todo, fences.inside_inner_many(todo, x, y), strict=True):
-            alerts.extend(self._one(fences, i, fix, x, y, i in near, in_inner))
+            alert = self._one(fences, i, fix, i in near, in_inner)
+            if alert is not None:
+                alerts.append(alert)
         return alerts
 
-    def _one(self, fences: FenceSet, i: int, fix: Fix, x: float, y: float,
-             in_outer: bool, in_inner: bool) -> list[Alert]:
+    def _one(self, fences: FenceSet, i: int, fix: Fix, in_outer: bool,
+             in_inner: bool) -> Alert | None:
         fence = fences.fences[i]
         settings = fences.settings
         st = self.state.get(fence.id)
-        inside = bool(st and st[0])
-        facts: dict[str, Any] = {"fence": fence.id, "name": fence.name,
-                                 "lat": fix.lat, "lon": fix.lon}
-        if not inside:
+        if not (st and st[0]):  # not inside
             if in_inner:
                 if st is None:
                     st = self.state[fence.id] = [False, fix.t, False, 0]
@@ -211,25 +222,22 @@ class FenceMonitor:
                 st[3] += 1
                 if st[3] >= settings.fence_fixes:
                     self.state[fence.id] = [True, st[1], False, 0]
-                    return [Alert(fix.vehicle, fix.t, "fence_enter", facts)]
+                    return _alert(fence, fix, "fence_enter", None)
             elif st is not None:
                 del self.state[fence.id]
-            return []
-        assert st is not None
+            return None
         if not in_outer:
             st[3] += 1
             if st[3] >= settings.fence_fixes:
                 del self.state[fence.id]
-                return [Alert(fix.vehicle, fix.t, "fence_exit",
-                              {**facts, "duration_s": round(fix.t - st[1], 1)})]
-            return []
+                return _alert(fence, fix, "fence_exit", fix.t - st[1])
+            return None
         st[3] = 0
         dwell = fence.dwell_s if fence.dwell_s is not None else settings.fence_dwell_s
         if not st[2] and fix.t - st[1] >= dwell:
             st[2] = True
-            return [Alert(fix.vehicle, fix.t, "fence_dwell",
-                          {**facts, "duration_s": round(fix.t - st[1], 1)})]
-        return []
+            return _alert(fence, fix, "fence_dwell", fix.t - st[1])
+        return None
 
     def to_state(self) -> dict[str, list[Any]]:
         """JSON-ready state."""
@@ -241,3 +249,12 @@ class FenceMonitor:
         m = cls()
         m.state = {k: list(v) for k, v in state.items()}
         return m
+
+
+def _alert(fence: Fence, fix: Fix, kind: str, duration_s: float | None) -> Alert:
+    """A fence alert at ``fix``; exits and dwells carry the time inside (0.1 s)."""
+    facts: dict[str, Any] = {"fence": fence.id, "name": fence.name,
+                             "lat": fix.lat, "lon": fix.lon}
+    if duration_s is not None:
+        facts["duration_s"] = round(duration_s, 1)
+    return Alert(fix.vehicle, fix.t, kind, facts)
