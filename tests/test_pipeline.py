@@ -255,6 +255,32 @@ def test_pipeline_evict_idle_flushes_and_forgets():
     assert p.evict_idle(T0 + 108, 60.0) == []
 
 
+def test_pipeline_idle_vehicles_after_late_data_and_restores():
+    """The shortcut of idle_vehicles misses no vehicle: one restored from an old
+    checkpoint and one whose first fix is older than every other vehicle's are found.
+
+    Reference: the definition itself (newest fix more than ttl before now), checked
+    against a full scan of every vehicle at each step.
+    """
+    p = Pipeline(ROAD, MatchSettings())
+    run(p, drive("a", 5, t0=T0 + 100))                # newest T0 + 108
+    assert p.idle_vehicles(T0 + 150, 60.0) == []      # looks, floor T0 + 108
+    assert p.idle_vehicles(T0 + 160, 60.0) == []      # below the floor: no look
+    run(p, drive("old", 2, t0=T0))                    # late data: newest T0 + 2
+    assert p.idle_vehicles(T0 + 160, 60.0) == ["old"]
+    other = Pipeline(ROAD, MatchSettings())
+    run(other, drive("parked", 3, t0=T0 - 50))        # newest T0 - 46
+    blob = other.export_vehicle("parked")
+    p.evict("old")
+    assert p.idle_vehicles(T0 + 160, 60.0) == []      # floor back to T0 + 108
+    p.import_vehicle("parked", blob)
+    assert p.idle_vehicles(T0 + 160, 60.0) == ["parked"]
+    for now in (T0 + 100, T0 + 168, T0 + 169):
+        full = sorted(v for v in p.vehicles()
+                      if now - max(p._vehicles[v].recent) > 60.0)
+        assert p.idle_vehicles(now, 60.0) == full
+
+
 def test_pipeline_drop_forgets_without_output():
     """drop() forgets a vehicle without flushing; its next fix starts a new tracker."""
     p = Pipeline(ROAD, MatchSettings())
