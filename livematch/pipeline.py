@@ -64,6 +64,7 @@ from typing import Any
 
 import msgspec
 
+from livematch.core import routing
 from livematch.core.candidates import warm_up
 from livematch.core.events import Alert, Assignment, Commit, Event, Filtered, to_record
 from livematch.core.fix import Fix
@@ -209,6 +210,7 @@ def prepare_kernels() -> None:
     demo's embedded broker) calls it before starting that work.
     """
     warm_up()
+    routing.warm_up()  # the bounded search of bridged steps (fixes 10 s or more apart)
 
 class Pipeline:
     """Decode, dedupe, track and publish: the whole per-message path of one worker.

@@ -1,17 +1,36 @@
 """Bounded shortest paths on the directed segment graph.
 
-Used off the hot path: to bridge a step the straight chord cannot model (a long gap, or a
-window that died) and to join committed stretches that came from different candidate
-trees. Every search is bounded by a length, so its cost depends on the neighbourhood,
-never on the size of the network.
+Used to bridge a step the straight chord cannot model (a long gap, or a window that
+died) and to join committed stretches that came from different candidate trees. Every
+search is bounded by a length, so its cost depends on the neighbourhood, never on the
+size of the network.
+
+With fixes 15-30 s apart every step is bridged, several searches per eps level, so the
+searches are on the hot path of a sparse vehicle. :func:`bounded_dijkstra` and
+:func:`route_segments` are the pure-Python definition; :func:`route_searches` runs the
+same searches compiled (``_route_kernel``, numba) and answers only for the few vertices
+the caller asks about, with bit-identical distances, the same source and the same route
+(``tests/test_routing.py`` compares the two on the OpenStreetMap extracts).
+:func:`route_searches_reference` is the same interface on the pure-Python routines.
 """
 
 from __future__ import annotations
 
 import heapq
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from typing import Any, NamedTuple
 
+import numpy as np
+import numpy.typing as npt
+
+from livematch.core import _route_kernel as _rk
 from livematch.core.view import NetworkView
+
+Source = tuple[int, float, int, int]
+"""A search's start: ``(vertex, initial_length, source_tag, entering_segment)``."""
+Search = tuple[list[Source], list[float] | None]
+"""The sources of one search and its per-tag offsets (None: no offsets)."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -102,23 +121,175 @@ def route_segments(view: NetworkView, reached: dict[int, Reach], vertex: int) ->
     return segs
 
 
+class Arrival(NamedTuple):
+    """How one vertex was reached by a search: :class:`Reach` with the route spelled out.
+
+    Attributes:
+        dist: route length in metres, the source's offset included (``Reach.dist``).
+        source: the tag of the source the route starts from.
+        segs: the route's segments in driving order, the source's own segment not
+            included (:func:`route_segments`); empty when the vertex is the source's own
+            head vertex.
+    """
+
+    dist: float
+    source: int
+    segs: tuple[int, ...]
+
+
+RouteSearch = Callable[[NetworkView, Sequence[Search], float, list[int]],
+                       list[list[Arrival | None]]]
+"""The signature of :func:`route_searches` and :func:`route_searches_reference`."""
+
+
+def route_searches_reference(
+    view: NetworkView, searches: Sequence[Search], limit: float, ends: list[int]
+) -> list[list[Arrival | None]]:
+    """Run bounded searches and report how each of the vertices ``ends`` was reached.
+
+    Args:
+        view: the network view.
+        searches: per search, the sources and the offsets of :func:`bounded_dijkstra`.
+        limit: the longest route considered (metres), for every search.
+        ends: the vertices to report on (repeats allowed).
+
+    Returns:
+        Per search, per end vertex, its :class:`Arrival` or None when the search did not
+        reach it. This is the pure-Python definition: :func:`bounded_dijkstra` and
+        :func:`route_segments`.
+
+    Example (a 100 m road both ways; vertex 1 is reached, nothing from no source):
+        >>> from livematch.core.build import Road, network_from_roads
+        >>> from livematch.core.view import view_of
+        >>> view = view_of(network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)]))
+        >>> route_searches_reference(view, [([(0, 0.0, 0, -1)], None), ([], None)], 150.0, [1])
+        [[Arrival(dist=100.0, source=0, segs=(0,))], [None]]
+    """
+    answer: list[list[Arrival | None]] = []
+    for sources, offsets in searches:
+        reached = bounded_dijkstra(view, sources, limit, offsets)
+        row: list[Arrival | None] = []
+        for v in ends:
+            r = reached.get(v)
+            row.append(None if r is None else
+                       Arrival(r.dist, r.source, tuple(route_segments(view, reached, v))))
+        answer.append(row)
+    return answer
+
+
+class RouteArrays:
+    """The compiled search's arrays for one network.
+
+    The network's arrays are shared with the sweep kernel; the per-vertex scratch is
+    reused from call to call, so calls on one network must not run concurrently (as for
+    the sweep kernel; the daemon runs every tracker on one event loop).
+    """
+
+    __slots__ = ("flag", "lab_f", "lab_i", "netf", "neti")
+
+    def __init__(self, view: NetworkView) -> None:
+        from livematch.core.fastsweep import sweep_arrays  # imports sweep, which imports us
+
+        arrays = sweep_arrays(view)
+        n_v = view.network.n_vertices
+        self.netf: npt.NDArray[np.float64] = arrays.netf
+        self.neti: npt.NDArray[np.int64] = arrays.neti
+        self.flag: npt.NDArray[np.uint8] = np.zeros(n_v, dtype=np.uint8)
+        self.lab_f: npt.NDArray[np.float64] = np.zeros(n_v, dtype=np.float64)
+        self.lab_i: npt.NDArray[np.int32] = np.zeros(3 * n_v, dtype=np.int32)
+
+
+_ATTR = "_route_arrays"  # where the per-network arrays live on the RoadNetwork object
+
+
+def route_arrays(view: NetworkView) -> RouteArrays:
+    """The network's shared :class:`RouteArrays`, built on first use."""
+    network: Any = view.network
+    arrays = getattr(network, _ATTR, None)
+    if arrays is None:
+        arrays = RouteArrays(view)
+        setattr(network, _ATTR, arrays)
+    return arrays
+
+
+def route_searches(
+    view: NetworkView, searches: Sequence[Search], limit: float, ends: list[int]
+) -> list[list[Arrival | None]]:
+    """:func:`route_searches_reference`, compiled: same arguments, same answer.
+
+    All the searches run in one call of the kernel, each stopping as soon as every end
+    vertex is settled (their labels are final then; see ``_route_kernel``).
+
+    Example (as for the reference):
+        >>> from livematch.core.build import Road, network_from_roads
+        >>> from livematch.core.view import view_of
+        >>> view = view_of(network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)]))
+        >>> route_searches(view, [([(0, 0.0, 0, -1)], None), ([], None)], 150.0, [1])
+        [[Arrival(dist=100.0, source=0, segs=(0,))], [None]]
+        >>> route_searches(view, [], 150.0, [1])
+        []
+    """
+    if not searches:
+        return []
+    arrays = route_arrays(view)
+    req: list[float] = [limit, len(ends), *ends, len(searches)]
+    for sources, offsets in searches:
+        req.append(len(sources))
+        for vertex, length, tag, seg in sources:
+            req += (vertex, length, tag, seg, offsets[tag] if offsets else 0.0)
+    dist, info, vias = _rk.route_kernel(arrays.netf, arrays.neti, arrays.flag, arrays.lab_f,
+                                        arrays.lab_i, np.array(req, dtype=np.float64))
+    segs = vias.tolist()
+    it = iter(info.tolist())  # four ints per row: found, source, via_start, via_len
+    flat = [Arrival(d, source, tuple(segs[start:start + n])) if found else None
+            for d, found, source, start, n in zip(dist.tolist(), it, it, it, it, strict=False)]
+    n_ends = len(ends)
+    return [flat[j * n_ends:(j + 1) * n_ends] for j in range(len(searches))]
+
+
 def connect(
-    view: NetworkView, from_seg: int, from_pos: float, to_seg: int, to_pos: float, limit: float
+    view: NetworkView, from_seg: int, from_pos: float, to_seg: int, to_pos: float, limit: float,
+    search: RouteSearch = route_searches,
 ) -> list[int] | None:
     """Segments strictly between (from_seg, from_pos) and (to_seg, to_pos), or None.
 
     Positions are parameters in [0, 1] along the segments. Staying on one segment and
     moving forward needs no segment in between (returns ``[]``); otherwise the shortest
     route from the head of ``from_seg`` to the tail of ``to_seg`` no longer than
-    ``limit`` metres in all.
+    ``limit`` metres in all. ``search`` is :func:`route_searches` or its reference.
+
+    Example (a 100 m road both ways: from 30 m along it to 20 m along the way back):
+        >>> from livematch.core.build import Road, network_from_roads
+        >>> from livematch.core.view import view_of
+        >>> view = view_of(network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)]))
+        >>> connect(view, 0, 0.3, 1, 0.2, 200.0), connect(view, 0, 0.3, 1, 0.2, 80.0)
+        ([], None)
+        >>> connect(view, 0, 0.3, 0, 0.5, 10.0)
+        []
     """
     if from_seg == to_seg and to_pos >= from_pos:
         return []
     start = view.st[from_seg]
     head_left = (1.0 - from_pos) * view.slen[from_seg]
-    reached = bounded_dijkstra(view, [(start, head_left, 0, from_seg)], limit)
     tail = view.sf[to_seg]
-    r = reached.get(tail)
+    r = search(view, [([(start, head_left, 0, from_seg)], None)], limit, [tail])[0][0]
     if r is None or r.dist + to_pos * view.slen[to_seg] > limit:
         return None
-    return route_segments(view, reached, tail)
+    return list(r.segs)
+
+
+def warm_up() -> None:
+    """Compile (or load) the search kernel now rather than at a vehicle's first bridged step.
+
+    Called by :func:`livematch.pipeline.prepare_kernels` with the sweep and tree kernels'
+    warm-up, for the same reason: no broker keepalive or lease renewal should wait behind
+    a compilation (a few seconds on a cold cache).
+
+    Example:
+        >>> warm_up()  # compiles (or loads) the kernel; nothing to return
+    """
+    from livematch.core.build import Road, network_from_roads
+    from livematch.core.view import view_of
+
+    view = view_of(network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)]))
+    route_searches(view, [([(0, 0.0, 0, -1)], [0.0])], 150.0, [1])

