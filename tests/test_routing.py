@@ -28,6 +28,7 @@ from livematch.core.routing import (
     Search,
     bounded_dijkstra,
     connect,
+    route_arrays,
     route_searches,
     route_searches_reference,
 )
@@ -253,6 +254,19 @@ def test_route_searches_large_search_grows_heap() -> None:
     ends = list(range(net.n_vertices))
     answer = check_searches(view, [([(0, 0.0, 0, -1)], None)], 1e9, ends)
     assert all(a is not None for a in answer[0])
+
+
+def test_route_searches_grows_small_buffers() -> None:
+    """Heap and route buffers far too small for the searches: the kernel reports it, the
+    wrapper grows them and the answer is still identical."""
+    net = grid(n=5, block=100.0, step=10.0)
+    view = view_of(net)
+    arrays = route_arrays(view)
+    arrays.resize(1, 1)
+    ends = list(range(0, net.n_vertices, 7))
+    sources = [(0, 0.0, 0, -1), (40, 5.0, 1, -1)]
+    check_searches(view, [(sources, [0.0, 30.0]), (sources[1:], None)], 500.0, ends)
+    assert len(arrays.hf) > 2 and len(arrays.vias) > 1
 
 
 def test_connect_compiled_equals_reference_on_osm() -> None:

@@ -1,10 +1,13 @@
 """Compiled bounded Dijkstra of :mod:`livematch.core.routing` (numba, CPU only).
 
 Private: callers go through :func:`livematch.core.routing.route_searches`, which packs the
-request and unpacks the answer into :class:`~livematch.core.routing.Route` tuples. The
+request and unpacks the answer into :class:`~livematch.core.routing.Arrival` tuples. The
 kernel reproduces :func:`livematch.core.routing.bounded_dijkstra` followed by
 :func:`~livematch.core.routing.route_segments` operation for operation (no fastmath, the
 same sums in the same order), so every distance is bit-identical to the reference's.
+Arrays are never reallocated inside the kernel: a loop that may rebind an array makes
+numba count references on every pass, which made an early version of this kernel about
+twenty times slower (some 400 against 20-70 ns per settled vertex).
 
 Order of the search. The reference's heap holds tuples ``(dist, tag, vertex, pred,
 seg_in)``. No two of them are equal: an entry pushed from a popped vertex carries the
@@ -29,15 +32,25 @@ Arrays (the network's are those of :class:`livematch.core.fastsweep.SweepArrays`
     bit is cleared again before the kernel returns. ``lab_f`` holds a popped vertex's
     distance; ``lab_i`` its source tag, its entering segment and the list of popped
     vertices (to clear their bits).
+``hf`` (float64[2 H]), ``hi`` (int64[5 H]): per-network heap scratch for ``H`` entries:
+    ``heap_d[H] | shift[H]`` and ``heap[H] | entry[4 H]`` (an entry is ``tag, vertex,
+    pred, seg_in``; the heap holds entry ids and their distances). A search pushes at
+    most its sources plus one entry per segment, so ``H`` = sources + segments always
+    suffices; the caller starts smaller and grows on ``OVERFLOW``.
+``vias`` (int64[B]): output, the routes' segments.
 ``req`` (float64), per call: ``limit, n_ends, ends[n_ends], n_searches``, then per search
     ``n_sources`` and per source ``vertex, length, tag, segment, shift`` where ``shift``
     is the reference's ``offsets[tag]`` (0 without offsets). Vertex and segment ids and
     tags are exact in a float64 far beyond any network size.
 
-Answer: ``(dist, info, vias)``: for search ``j`` and end ``k`` (row ``j * n_ends + k``),
-``dist`` the reference's ``Reach.dist`` and ``info`` four ints ``found, source,
-via_start, via_len``, the route's segments being ``vias[via_start:via_start + via_len]``
-in driving order.
+Answer: ``(dist, info, n_via)``, or ``OVERFLOW`` (-1) as ``n_via`` when ``H`` or ``B``
+was too small (every flag is cleared all the same; the caller grows the buffers and
+calls again: nothing the next call reads was changed). One row per end a search
+reached, in the order of the searches and, within one, of ``ends``: ``dist`` the
+reference's ``Reach.dist`` and ``info`` four ints ``row, source, via_start, via_len``
+where ``row`` is ``j * n_ends + k`` for search ``j`` and end ``k``; the route's
+segments are ``vias[via_start:via_start + via_len]`` in driving order, ``n_via`` the
+number of them written.
 """
 
 from __future__ import annotations
@@ -50,15 +63,13 @@ _jit = numba.njit(cache=True, error_model="numpy")
 _DONE = 1
 _END = 2
 INFO_STRIDE = 4
+OVERFLOW = -1
 ENTRY_STRIDE = 4  # a heap entry's ints: tag, vertex, pred, seg_in
 
 
 @_jit
-def _less(d1: float, t1: int, v1: int, p1: int, s1: int,
-          d2: float, t2: int, v2: int, p2: int, s2: int) -> bool:
-    """``(d1, t1, v1, p1, s1) < (d2, t2, v2, p2, s2)`` as Python compares tuples."""
-    if d1 != d2:
-        return d1 < d2
+def _tie_less(t1: int, v1: int, p1: int, s1: int, t2: int, v2: int, p2: int, s2: int) -> bool:
+    """``(t1, v1, p1, s1) < (t2, v2, p2, s2)``: the rest of two keys of equal distance."""
     if t1 != t2:
         return t1 < t2
     if v1 != v2:
@@ -69,26 +80,10 @@ def _less(d1: float, t1: int, v1: int, p1: int, s1: int,
 
 
 @_jit
-def _grown_f(a: np.ndarray, n: int) -> np.ndarray:
-    """A float array of length ``n`` holding ``a`` at its start."""
-    b = np.empty(n, dtype=np.float64)
-    b[:a.shape[0]] = a
-    return b
-
-
-@_jit
-def _grown_i(a: np.ndarray, n: int) -> np.ndarray:
-    """An int array of length ``n`` holding ``a`` at its start."""
-    b = np.empty(n, dtype=np.int64)
-    b[:a.shape[0]] = a
-    return b
-
-
-@_jit
 def route_kernel(
     netf: np.ndarray, neti: np.ndarray, flag: np.ndarray, lab_f: np.ndarray,
-    lab_i: np.ndarray, req: np.ndarray,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    lab_i: np.ndarray, req: np.ndarray, hf: np.ndarray, hi: np.ndarray, vias: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray, int]:
     """Bounded multi-source Dijkstra searches and the routes to ``ends`` (see module doc)."""
     n_v = flag.shape[0]
     n_e = netf.shape[0] - 2 * n_v
@@ -115,16 +110,20 @@ def route_kernel(
     n_searches = int(req[pos])
     pos += 1
 
-    out_d = np.zeros(n_searches * n_ends, dtype=np.float64)
-    out_i = np.zeros(n_searches * n_ends * INFO_STRIDE, dtype=np.int64)
-    vias = np.empty(64, dtype=np.int64)
+    out_d = np.empty(n_searches * n_ends, dtype=np.float64)
+    out_i = np.empty(n_searches * n_ends * INFO_STRIDE, dtype=np.int64)
+    n_out = 0
     n_via = 0
+    overflow = False
 
-    # heap entries: key (dist, tag, vertex, pred, seg_in) and the tag's shift
-    e_d = np.empty(256, dtype=np.float64)
-    e_sh = np.empty(256, dtype=np.float64)
-    e_i = np.empty(ENTRY_STRIDE * 256, dtype=np.int64)
-    heap = np.empty(256, dtype=np.int64)
+    # Heap entries (ids) hold a key (dist, tag, vertex, pred, seg_in) and the tag's shift;
+    # the heap array keeps each entry's distance beside its id, so that most comparisons
+    # (distances differ) read no entry at all.
+    cap_h = hf.shape[0] // 2
+    heap_d = hf[:cap_h]
+    e_sh = hf[cap_h:]
+    heap = hi[:cap_h]
+    e_i = hi[cap_h:]
 
     for j in range(n_searches):
         n_src = int(req[pos])
@@ -142,68 +141,73 @@ def route_kernel(
             pos += 5
             if not length <= limit:
                 continue
-            if n_ent == e_d.shape[0]:
-                size = 2 * e_d.shape[0]
-                e_d = _grown_f(e_d, size)
-                e_sh = _grown_f(e_sh, size)
-                e_i = _grown_i(e_i, ENTRY_STRIDE * size)
-                heap = _grown_i(heap, size)
+            if n_ent == cap_h:
+                overflow = True
+                break
             e = n_ent
             n_ent += 1
-            e_d[e] = length + shift
+            d = length + shift
             e_sh[e] = shift
             e_i[4 * e] = tag
             e_i[4 * e + 1] = vertex
             e_i[4 * e + 2] = -1
             e_i[4 * e + 3] = seg
-            # sift up
             c = n_heap
             n_heap += 1
-            while c > 0:
+            while c > 0:  # sift up
                 p = (c - 1) >> 1
-                h = heap[p]
-                if _less(e_d[e], e_i[4 * e], e_i[4 * e + 1], e_i[4 * e + 2], e_i[4 * e + 3],
-                         e_d[h], e_i[4 * h], e_i[4 * h + 1], e_i[4 * h + 2], e_i[4 * h + 3]):
-                    heap[c] = h
+                hd = heap_d[p]
+                if d < hd or (d == hd and _tie_less(
+                        tag, vertex, -1, seg, e_i[4 * heap[p]], e_i[4 * heap[p] + 1],
+                        e_i[4 * heap[p] + 2], e_i[4 * heap[p] + 3])):
+                    heap[c] = heap[p]
+                    heap_d[c] = hd
                     c = p
                 else:
                     break
             heap[c] = e
+            heap_d[c] = d
 
-        while n_heap > 0 and remaining > 0:
+        while n_heap > 0 and remaining > 0 and not overflow:
             top = heap[0]
+            dist = heap_d[0]
             n_heap -= 1
             if n_heap > 0:
                 # move the last entry to the root and sift it down
                 e = heap[n_heap]
+                d = heap_d[n_heap]
                 c = 0
                 while True:
                     a = 2 * c + 1
                     if a >= n_heap:
                         break
                     b = a + 1
-                    m = heap[a]
                     if b < n_heap:
-                        hb = heap[b]
-                        if _less(e_d[hb], e_i[4 * hb], e_i[4 * hb + 1], e_i[4 * hb + 2],
-                                 e_i[4 * hb + 3], e_d[m], e_i[4 * m], e_i[4 * m + 1],
-                                 e_i[4 * m + 2], e_i[4 * m + 3]):
-                            m = hb
+                        da = heap_d[a]
+                        db = heap_d[b]
+                        if db < da or (db == da and _tie_less(
+                                e_i[4 * heap[b]], e_i[4 * heap[b] + 1], e_i[4 * heap[b] + 2],
+                                e_i[4 * heap[b] + 3], e_i[4 * heap[a]], e_i[4 * heap[a] + 1],
+                                e_i[4 * heap[a] + 2], e_i[4 * heap[a] + 3])):
                             a = b
-                    if _less(e_d[m], e_i[4 * m], e_i[4 * m + 1], e_i[4 * m + 2], e_i[4 * m + 3],
-                             e_d[e], e_i[4 * e], e_i[4 * e + 1], e_i[4 * e + 2], e_i[4 * e + 3]):
-                        heap[c] = m
+                    da = heap_d[a]
+                    if da < d or (da == d and _tie_less(
+                            e_i[4 * heap[a]], e_i[4 * heap[a] + 1], e_i[4 * heap[a] + 2],
+                            e_i[4 * heap[a] + 3], e_i[4 * e], e_i[4 * e + 1], e_i[4 * e + 2],
+                            e_i[4 * e + 3])):
+                        heap[c] = heap[a]
+                        heap_d[c] = da
                         c = a
                     else:
                         break
                 heap[c] = e
+                heap_d[c] = d
             v = e_i[4 * top + 1]
             if flag[v] & _DONE:
                 continue
             flag[v] = flag[v] | _DONE
             lab_i[n_done] = v
             n_done += 1
-            dist = e_d[top]
             tag = e_i[4 * top]
             seg_in = e_i[4 * top + 3]
             lab_f[v] = dist
@@ -224,15 +228,11 @@ def route_kernel(
                 w = neti[st0 + f]
                 nd = dist + netf[slen0 + f]
                 if nd <= cap and not flag[w] & _DONE:
-                    if n_ent == e_d.shape[0]:
-                        size = 2 * e_d.shape[0]
-                        e_d = _grown_f(e_d, size)
-                        e_sh = _grown_f(e_sh, size)
-                        e_i = _grown_i(e_i, ENTRY_STRIDE * size)
-                        heap = _grown_i(heap, size)
+                    if n_ent == cap_h:
+                        overflow = True
+                        break
                     e = n_ent
                     n_ent += 1
-                    e_d[e] = nd
                     e_sh[e] = shift
                     e_i[4 * e] = tag
                     e_i[4 * e + 1] = w
@@ -240,35 +240,39 @@ def route_kernel(
                     e_i[4 * e + 3] = f
                     c = n_heap
                     n_heap += 1
-                    while c > 0:
+                    while c > 0:  # sift up
                         p = (c - 1) >> 1
-                        h = heap[p]
-                        if _less(nd, tag, w, f, f, e_d[h], e_i[4 * h], e_i[4 * h + 1],
-                                 e_i[4 * h + 2], e_i[4 * h + 3]):
-                            heap[c] = h
+                        hd = heap_d[p]
+                        if nd < hd or (nd == hd and _tie_less(
+                                tag, w, f, f, e_i[4 * heap[p]], e_i[4 * heap[p] + 1],
+                                e_i[4 * heap[p] + 2], e_i[4 * heap[p] + 3])):
+                            heap[c] = heap[p]
+                            heap_d[c] = hd
                             c = p
                         else:
                             break
                     heap[c] = e
+                    heap_d[c] = nd
 
-        # the answer for each end: its label and the route back to its source
+        # the answer for each end reached: its label and the route back to its source
         for k in range(n_ends):
             v = ends[k]
-            row = j * n_ends + k
-            if not flag[v] & _DONE:
+            if overflow or not flag[v] & _DONE:
                 continue
-            out_d[row] = lab_f[v]
-            out_i[INFO_STRIDE * row] = 1
-            out_i[INFO_STRIDE * row + 1] = lab_i[src0 + v]
             n = 0
             u = v
             while lab_i[pred0 + u] >= 0:
                 n += 1
                 u = neti[lab_i[pred0 + u]]  # the tail vertex sf of the entering segment
-            while n_via + n > vias.shape[0]:
-                vias = _grown_i(vias, 2 * vias.shape[0])
-            out_i[INFO_STRIDE * row + 2] = n_via
-            out_i[INFO_STRIDE * row + 3] = n
+            if n_via + n > vias.shape[0]:
+                overflow = True
+                continue
+            out_d[n_out] = lab_f[v]
+            out_i[INFO_STRIDE * n_out] = j * n_ends + k
+            out_i[INFO_STRIDE * n_out + 1] = lab_i[src0 + v]
+            out_i[INFO_STRIDE * n_out + 2] = n_via
+            out_i[INFO_STRIDE * n_out + 3] = n
+            n_out += 1
             u = v
             i = n_via + n
             while lab_i[pred0 + u] >= 0:
@@ -280,6 +284,10 @@ def route_kernel(
         for q in range(n_done):
             u = lab_i[q]
             flag[u] = flag[u] ^ _DONE
+        if overflow:
+            break
     for k in range(n_ends):
         flag[ends[k]] = 0
-    return out_d, out_i, vias[:n_via]
+    if overflow:
+        return out_d[:0], out_i[:0], OVERFLOW
+    return out_d[:n_out], out_i[:INFO_STRIDE * n_out], n_via

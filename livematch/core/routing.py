@@ -137,6 +137,10 @@ class Arrival(NamedTuple):
     segs: tuple[int, ...]
 
 
+# Arrival(d, source, segs) without the Python-level __new__ of a NamedTuple (3x faster;
+# a bridged step builds about a hundred of them)
+_new_tuple = tuple.__new__
+
 RouteSearch = Callable[[NetworkView, Sequence[Search], float, list[int]],
                        list[list[Arrival | None]]]
 """The signature of :func:`route_searches` and :func:`route_searches_reference`."""
@@ -185,7 +189,7 @@ class RouteArrays:
     the sweep kernel; the daemon runs every tracker on one event loop).
     """
 
-    __slots__ = ("flag", "lab_f", "lab_i", "netf", "neti")
+    __slots__ = ("flag", "hf", "hi", "lab_f", "lab_i", "netf", "neti", "vias")
 
     def __init__(self, view: NetworkView) -> None:
         from livematch.core.fastsweep import sweep_arrays  # imports sweep, which imports us
@@ -197,9 +201,30 @@ class RouteArrays:
         self.flag: npt.NDArray[np.uint8] = np.zeros(n_v, dtype=np.uint8)
         self.lab_f: npt.NDArray[np.float64] = np.zeros(n_v, dtype=np.float64)
         self.lab_i: npt.NDArray[np.int32] = np.zeros(3 * n_v, dtype=np.int32)
+        self.hf: npt.NDArray[np.float64] = np.empty(0)
+        self.hi: npt.NDArray[np.int64] = np.empty(0, dtype=np.int64)
+        self.vias: npt.NDArray[np.int64] = np.empty(0, dtype=np.int64)
+        self.resize(_START_ENTRIES, _START_VIA)
+
+    def resize(self, entries: int, vias: int) -> None:
+        """Fresh heap scratch for ``entries`` entries and room for ``vias`` route segments.
+
+        Also the way to test the growth path: start with tiny capacities.
+        """
+        self.hf = np.empty(2 * entries)
+        self.hi = np.empty(5 * entries, dtype=np.int64)
+        self.vias = np.empty(vias, dtype=np.int64)
+
+    def grow(self) -> None:
+        """Double both capacities (after the kernel reported an overflow)."""
+        self.resize(len(self.hf), 2 * len(self.vias))
 
 
 _ATTR = "_route_arrays"  # where the per-network arrays live on the RoadNetwork object
+# Initial capacities (heap entries, route segments), doubled on overflow. A bridged step
+# at 15-30 s on a city network settles a few hundred vertices per search.
+_START_ENTRIES = 4096
+_START_VIA = 8192
 
 
 def route_arrays(view: NetworkView) -> RouteArrays:
@@ -237,13 +262,21 @@ def route_searches(
         req.append(len(sources))
         for vertex, length, tag, seg in sources:
             req += (vertex, length, tag, seg, offsets[tag] if offsets else 0.0)
-    dist, info, vias = _rk.route_kernel(arrays.netf, arrays.neti, arrays.flag, arrays.lab_f,
-                                        arrays.lab_i, np.array(req, dtype=np.float64))
-    segs = vias.tolist()
-    it = iter(info.tolist())  # four ints per row: found, source, via_start, via_len
-    flat = [Arrival(d, source, tuple(segs[start:start + n])) if found else None
-            for d, found, source, start, n in zip(dist.tolist(), it, it, it, it, strict=False)]
+    packed = np.array(req, dtype=np.float64)
+    while True:
+        dist, info, n_via = _rk.route_kernel(arrays.netf, arrays.neti, arrays.flag,
+                                             arrays.lab_f, arrays.lab_i, packed, arrays.hf,
+                                             arrays.hi, arrays.vias)
+        if n_via >= 0:
+            break
+        arrays.grow()
     n_ends = len(ends)
+    flat: list[Arrival | None] = [None] * (len(searches) * n_ends)
+    # a slice of a tuple is the route's tuple: one allocation
+    segs = tuple(arrays.vias[:n_via].tolist())
+    it = iter(info.tolist())  # four ints per reached end: row, source, via_start, via_len
+    for d, row, source, start, n in zip(dist.tolist(), it, it, it, it, strict=False):
+        flat[row] = _new_tuple(Arrival, (d, source, segs[start:start + n]))
     return [flat[j * n_ends:(j + 1) * n_ends] for j in range(len(searches))]
 
 
