@@ -18,6 +18,8 @@ arrays makes the same decisions as one on objects (``tests/test_candidates.py``)
 
 from __future__ import annotations
 
+import math
+
 import numba
 import numpy as np
 
@@ -45,9 +47,9 @@ from livematch.core._sweep_kernel import (
 
 __all__ = [
     "ARENA_FULL", "F_COST", "F_LOW", "F_POS", "F_T", "F_X", "F_Y", "I_PARENT", "I_SEG",
-    "I_SEQ", "I_VIA0", "I_VIAN", "ROW_F", "ROW_I", "ancestor_at", "best_row",
-    "block_ancestor", "chain_rows", "compact", "descends_from", "junction_split",
-    "prune_live", "tree_append", "tree_sweep", "trim",
+    "I_SEQ", "I_VIA0", "I_VIAN", "ROW_F", "ROW_I", "ancestor_at", "best_row", "best_scored",
+    "block_ancestor", "chain_rows", "compact", "descends_from", "driven_since", "junction_split",
+    "live_scores", "prune_live", "tree_append", "tree_sweep", "trim",
 ]
 
 _jit = numba.njit(cache=True, error_model="numpy")
@@ -105,9 +107,15 @@ def compact(
 @_jit
 def best_row(ti: np.ndarray, tf: np.ndarray, lo: int, hi: int, prefer: int) -> int:
     """:func:`livematch.core.sweep.best_leaf`: lowest (cost, seg != prefer, seg)."""
+    return best_scored(ti, tf[lo:hi, F_COST], lo, hi, prefer)
+
+
+@_jit
+def best_scored(ti: np.ndarray, score: np.ndarray, lo: int, hi: int, prefer: int) -> int:
+    """The live row with the lowest (score, seg != prefer, seg); ``score[r - lo]`` is row r's."""
     best = lo
     for r in range(lo + 1, hi):
-        c, cb = tf[r, F_COST], tf[best, F_COST]
+        c, cb = score[r - lo], score[best - lo]
         if c != cb:
             if c < cb:
                 best = r
@@ -120,6 +128,41 @@ def best_row(ti: np.ndarray, tf: np.ndarray, lo: int, hi: int, prefer: int) -> i
         if s < sb:
             best = r
     return best
+
+
+@_jit
+def live_scores(
+    ti: np.ndarray, tf: np.ndarray, lo: int, hi: int, fix_xy: np.ndarray, fix_seq0: int,
+    first: int, inv_two_sigma2: float, inv_tau: float, max_dt: float,
+) -> np.ndarray:
+    """:func:`livematch.core.sweep.live_score` of every live row, in row order.
+
+    ``fix_xy[i]`` is the fix of sequence number ``fix_seq0 + i``; links to states older
+    than fix ``first`` are not walked.
+    """
+    out = np.empty(hi - lo)
+    n = fix_xy.shape[0]
+    for r in range(lo, hi):
+        score = tf[r, F_COST]
+        cur = r
+        while True:
+            p = ti[cur, I_PARENT]
+            if p < 0 or ti[p, I_SEQ] < first:
+                break
+            i = ti[cur, I_SEQ] - fix_seq0
+            j = ti[p, I_SEQ] - fix_seq0
+            dt = tf[cur, F_T] - tf[p, F_T]
+            if j >= 0 and i < n and 0.0 < dt <= max_dt:
+                ex = tf[cur, F_X] - fix_xy[i, 0]
+                ey = tf[cur, F_Y] - fix_xy[i, 1]
+                rho = math.exp(-dt * inv_tau)
+                wx = ex - rho * (tf[p, F_X] - fix_xy[j, 0])
+                wy = ey - rho * (tf[p, F_Y] - fix_xy[j, 1])
+                score += ((wx * wx + wy * wy) * inv_two_sigma2 / (1.0 - rho * rho)
+                          - (ex * ex + ey * ey) * inv_two_sigma2)
+            cur = p
+        out[r - lo] = score
+    return out
 
 
 @_jit
@@ -177,20 +220,21 @@ def _branch(ti: np.ndarray, tv: np.ndarray, node: int, anc: int) -> int:
 
 @_jit
 def junction_split(
-    ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, lo: int, hi: int, best: int,
-    margin: float,
+    ti: np.ndarray, tv: np.ndarray, lo: int, hi: int, best: int, margin: float,
+    score: np.ndarray,
 ) -> int:
     """The junction the near-best candidates split at, or -1 to report ``best`` itself.
 
+    Near-best: a live row r with ``score[r - lo]`` within ``margin`` of the best one's.
     Mirrors the decision of :meth:`livematch.core.tracker.Tracker._hold_at_junction`
     up to (not including) its distance check.
     """
-    limit = tf[best, F_COST] + margin
+    limit = score[best - lo] + margin
     close = np.empty(hi - lo, np.int64)
     k = 0
     varied = False
     for r in range(lo, hi):
-        if tf[r, F_COST] <= limit:
+        if score[r - lo] <= limit:
             close[k] = r
             k += 1
             if ti[r, I_SEG] != ti[best, I_SEG]:
@@ -212,6 +256,31 @@ def junction_split(
         elif b != first:
             return split
     return -1
+
+
+@_jit
+def driven_since(ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, slen: np.ndarray, node: int,
+                 anc: int) -> float:
+    """Metres driven along the path of row ``node`` since the head vertex of ``anc``'s segment.
+
+    ``anc`` must lie on ``node``'s back-pointer chain. Each link's length is the route the
+    sweep charged for it: along one segment, or out of the parent's segment, through the
+    vias, into the child's.
+    """
+    total = 0.0
+    cur = node
+    while cur != anc:
+        p = ti[cur, I_PARENT]
+        seg = ti[cur, I_SEG]
+        p_seg = ti[p, I_SEG]
+        if ti[cur, I_VIAN] == 0 and seg == p_seg:
+            total += (tf[cur, F_POS] - tf[p, F_POS]) * slen[seg]
+        else:
+            total += (1.0 - tf[p, F_POS]) * slen[p_seg] + tf[cur, F_POS] * slen[seg]
+            for j in range(ti[cur, I_VIA0], ti[cur, I_VIA0] + ti[cur, I_VIAN]):
+                total += slen[tv[j]]
+        cur = p
+    return total - (1.0 - tf[anc, F_POS]) * slen[ti[anc, I_SEG]]
 
 
 @_jit

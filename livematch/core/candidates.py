@@ -217,9 +217,26 @@ class CandidateTree:
         """The fix sequence number of row ``row``."""
         return int(self.ti[row, _t.I_SEQ])
 
-    def best(self, prefer: int) -> int:
-        """The row of the best live state (:func:`livematch.core.sweep.best_leaf`)."""
-        return _t.best_row(self.ti, self.tf, self.lo, self.hi, prefer)
+    def best(self, prefer: int, score: npt.NDArray[np.float64] | None = None) -> int:
+        """The row of the best live state (:func:`livematch.core.sweep.best_leaf`).
+
+        With ``score`` (one value per live row, in row order, e.g. :meth:`live_scores`)
+        the lowest score wins instead of the lowest path cost; ties are broken alike.
+        """
+        if score is None:
+            return _t.best_row(self.ti, self.tf, self.lo, self.hi, prefer)
+        return _t.best_scored(self.ti, score, self.lo, self.hi, prefer)
+
+    def live_scores(self, fix_xy: npt.NDArray[np.float64], fix_seq0: int, first: int,
+                    inv_two_sigma2: float, tau_s: float,
+                    max_dt: float) -> npt.NDArray[np.float64]:
+        """:func:`livematch.core.sweep.live_score` of every live state, in row order.
+
+        ``fix_xy[i]`` is the fix of sequence number ``fix_seq0 + i``; states older than
+        fix ``first`` are not looked at.
+        """
+        return _t.live_scores(self.ti, self.tf, self.lo, self.hi, fix_xy, fix_seq0, first,
+                              inv_two_sigma2, 1.0 / tau_s, max_dt)
 
     def common_ancestor(self, floor: int) -> int:
         """The live states' deepest common ancestor, -1 if none at or above fix ``floor``."""
@@ -229,9 +246,24 @@ class CandidateTree:
         """The ancestor of ``row`` (itself included) with the largest seq <= ``seq``."""
         return _t.ancestor_at(self.ti, row, seq)
 
-    def junction_split(self, best: int, margin: float) -> int:
-        """The row where the near-best candidates split at a junction, or -1."""
-        return _t.junction_split(self.ti, self.tf, self.tv, self.lo, self.hi, best, margin)
+    def junction_split(self, best: int, margin: float,
+                       score: npt.NDArray[np.float64] | None = None) -> int:
+        """The row where the near-best candidates split at a junction, or -1.
+
+        Near-best: within ``margin`` of ``best`` in path cost, or in ``score`` if given
+        (one value per live row, in row order).
+        """
+        if score is None:
+            score = self.tf[self.lo:self.hi, _t.F_COST]
+        return _t.junction_split(self.ti, self.tv, self.lo, self.hi, best, margin, score)
+
+    def driven_since(self, row: int, anc: int, slen: npt.NDArray[np.float64]) -> float:
+        """Metres driven on ``row``'s path since the end of ancestor ``anc``'s segment.
+
+        ``slen``: every segment's length (metres). Negative while ``row`` is still on
+        ``anc``'s segment.
+        """
+        return float(_t.driven_since(self.ti, self.tf, self.tv, slen, row, anc))
 
     def chain(self, top: int, min_seq: int) -> tuple[list[Node], Node | None]:
         """The path to ``top`` from fix ``min_seq`` on as linked nodes, and the node before.

@@ -47,9 +47,19 @@ class MatchSettings:
             speed of its previous step, divided by ``pace_m``. At 15-30 s between fixes
             it tells "drove to the end of the dead end and came back" from "stood still"
             (:mod:`livematch.core.sweep`).
-        junction_hold: while candidates whose path cost is within this margin of the best
-            one disagree about the branch taken at a junction, the live assignment stays
-            at that junction (0 disables). Commits are unaffected.
+        junction_hold: while candidates whose live score (see ``error_tau_s``) is within
+            this margin of the best one disagree about the branch taken at a junction, the
+            live assignment stays at that junction (0 disables). Commits are unaffected.
+        junction_hold_m: the live assignment stays at such a junction only while the best
+            candidate has driven at most this far past it along its path (metres); beyond
+            that the held answer would be stale, and the best candidate is reported.
+        error_tau_s: time constant (seconds) of the GNSS error's autocorrelation, used to
+            rank the live candidates: the live assignment goes to the lowest live score
+            (:func:`livematch.core.sweep.live_score`), which charges a candidate for
+            changes of its offset from the fixes rather than for the offset itself, so a
+            side road the error leans towards does not win the live answer. 0 ranks by
+            path cost. 30 s is the low end of the tens of seconds consumer GNSS error
+            wanders over (common practice, from memory). Commits are unaffected.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -68,6 +78,8 @@ class MatchSettings:
     motion_m: float = 5.0
     pace_m: float = 20.0
     junction_hold: float = 3.0
+    junction_hold_m: float = 30.0
+    error_tau_s: float = 30.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -91,7 +103,7 @@ class MatchSettings:
                 out.append((name, f"must be a positive number, got {value!r}"))
         if not (isinstance(self.max_lag_fixes, int) and self.max_lag_fixes >= 2):
             out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
-        for name in ("turn_back_cost", "junction_hold"):
+        for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))

@@ -69,6 +69,7 @@ JUMP_TRUST_AFTER = 3
 ACCEL_MPS2 = 3.0
 # From this many seconds between fixes on, the trees are kept tight between fixes.
 SPARSE_S = 5.0
+_NO_FIXES = np.empty((0, 2))  # shared by trackers that have seen no fix (never written)
 
 
 class Level:
@@ -120,9 +121,9 @@ class Tracker:
 
     # slots: a service holds one tracker per vehicle, and an instance dict costs more
     # than a small candidate tree
-    __slots__ = ("_view", "_weights", "buffer", "jumps", "last", "last_commit",
-                 "last_released_t", "last_seg", "levels", "network", "next_commit", "seq",
-                 "settings", "skipped", "speed", "times", "vehicle")
+    __slots__ = ("_view", "_weights", "buffer", "fix_n", "fix_seq0", "fix_xy", "jumps", "last",
+                 "last_commit", "last_released_t", "last_seg", "levels", "network",
+                 "next_commit", "seq", "settings", "skipped", "speed", "times", "vehicle")
 
     def __init__(
         self, network: RoadNetwork, vehicle: str, settings: MatchSettings | None = None
@@ -151,6 +152,12 @@ class Tracker:
         self.last_commit: tuple[int, float, int, float] | None = None  # seg, pos, seq, t
         self.skipped: list[float] = []  # times of filtered fixes awaiting a final answer
         self.last_seg = -1  # segment of the last assignment (breaks exact ties)
+        # positions of the accepted fixes from fix_seq0 on (row i: fix fix_seq0 + i; the
+        # first fix_n rows in use), for the live score; rows older than the last commit
+        # are dropped when the array fills up
+        self.fix_xy: np.ndarray = _NO_FIXES
+        self.fix_seq0 = 1
+        self.fix_n = 0
 
     @property
     def last_time(self) -> float | None:
@@ -227,6 +234,7 @@ class Tracker:
         self.seq += 1
         seq = self.seq
         self.times[seq] = fix.t
+        self._log_fix(fix.x, fix.y)
         prev = self.last
         self.last = (fix.t, fix.x, fix.y)
         if prev is not None and fix.t > prev[0]:
@@ -264,8 +272,9 @@ class Tracker:
         if deciding is None:
             events.append(Filtered(fix.vehicle, fix.t, "no_road_nearby"))
         else:
-            best = deciding.tree.best(self.last_seg)
-            seg, pos, x, y = self._hold_at_junction(deciding, best, fix)
+            score = self._live_scores(deciding)
+            best = deciding.tree.best(self.last_seg, score)
+            seg, pos, x, y = self._hold_at_junction(deciding, best, fix, dt, score)
             self.last_seg = int(deciding.tree.ti[best, 0])
             events.append(Assignment(
                 self.vehicle, fix.t, seg, pos * self._view.slen[seg],
@@ -279,21 +288,72 @@ class Tracker:
             for level in self.levels:
                 level.tree.shrink()
 
+    def _log_fix(self, x: float, y: float) -> None:
+        """Keep the position of the fix just accepted (sequence number ``self.seq``)."""
+        n = self.fix_n
+        if n == len(self.fix_xy):
+            # full: drop what no live score reads any more (older than the last commit),
+            # then leave room for as many rows again as are kept
+            drop = min(n, max(0, self.next_commit - 1 - self.fix_seq0))
+            kept = self.fix_xy[drop:n]
+            self.fix_xy = np.empty((max(8, 2 * len(kept)), 2))
+            self.fix_xy[:len(kept)] = kept
+            self.fix_seq0 += drop
+            n = self.fix_n = len(kept)
+        self.fix_xy[n, 0] = x
+        self.fix_xy[n, 1] = y
+        self.fix_n = n + 1
+
+    def _live_scores(self, level: Level) -> np.ndarray | None:
+        """The live score of each of the level's live states, or None (rank by cost).
+
+        Rule (``error_tau_s`` > 0): the live answer goes to the candidate with the lowest
+        :func:`livematch.core.sweep.live_score`, which rescores the distance terms along
+        the candidate's path back to the last commit for GNSS error that is correlated in
+        time. Why: with the error leaning towards a side road or a parallel road for tens
+        of seconds, the plain path cost keeps a wrong branch best until it dies, and the
+        live answer stays wrong that long (final answers were right: the commit waits for
+        the branches to merge). Commits still use the path cost.
+        """
+        s = self.settings
+        tree = level.tree
+        if s.error_tau_s <= 0.0 or len(tree) < 2:
+            return None
+        return tree.live_scores(self.fix_xy[:self.fix_n], self.fix_seq0, self.next_commit - 1,
+                                self._weights[0], s.error_tau_s, s.gap_s)
+
     def _hold_at_junction(
-        self, level: Level, best: int, fix: Fix
+        self, level: Level, best: int, fix: Fix, dt: float, score: np.ndarray | None = None
     ) -> tuple[int, float, float, float]:
         """The live answer: the best candidate, unless it has just taken a branch.
 
-        When the candidates that cost nearly as little as the best one (within
-        ``junction_hold``) went separate ways at a junction, which branch was taken is
-        not yet known; the answer then stays on the road they all came from, at the
-        junction where they split, as long as the fix is within eps of it. A dispatcher
-        sees "at the junction" instead of a branch that may flip a second later.
+        When the candidates that score nearly as well as the best one (within
+        ``junction_hold`` of its live score, or of its path cost if ``score`` is None) went
+        separate ways at a junction, which branch was taken is not yet known; the answer
+        then stays on the road they all came from, at the junction where they split, as
+        long as the fix is within eps of it and the best candidate has driven at most
+        ``junction_hold_m`` past it. A dispatcher sees "at the junction" instead of a
+        branch that may flip a second later.
+
+        Why the second bound: where the candidates split long ago (a loop of service roads
+        driven round, a wide junction whose branches meet again) the junction can be
+        within eps of the fix yet far behind the vehicle along its path; a held answer
+        there is stale (35-46 m behind the truth in the misses this was changed for, one
+        of them on noise-free fixes). Why scores, not costs: the near-best set is taken
+        with the same ranking that picks the best candidate (:meth:`_live_scores`); a
+        margin in path cost around a candidate chosen by score holds at junctions the
+        score has already decided.
         """
         tree = level.tree
-        margin = self.settings.junction_hold
-        split = tree.junction_split(best, margin) if margin > 0.0 else -1
-        if split >= 0:
+        s = self.settings
+        margin = s.junction_hold
+        if score is not None and 0.0 < dt <= s.gap_s:
+            # the newest link was rescored, its distance terms weighted 1 / (1 - rho^2):
+            # the margin widens with the square root of that weight (tuned, see above)
+            rho = math.exp(-dt / s.error_tau_s)
+            margin /= math.sqrt(1.0 - rho * rho)
+        split = tree.junction_split(best, margin, score) if margin > 0.0 else -1
+        if split >= 0 and tree.driven_since(best, split, self.network.seg_len) <= s.junction_hold_m:
             seg = int(tree.ti[split, 0])
             x, y = _point(self._view, seg, 1.0)
             if math.hypot(x - fix.x, y - fix.y) <= level.eps:
@@ -456,6 +516,9 @@ class Tracker:
             levels.append([lv.eps, lv.tree_seq, lv.cert_seq, lv.cert_t, lv.trim_seq,
                            len(ti), len(tv), live])
             arrays += (ti.tobytes(), tf.tobytes(), tv.tobytes())
+        # the fix positions a live score may still read: from the last committed fix on
+        skip = min(self.fix_n, max(0, self.next_commit - 1 - self.fix_seq0))
+        arrays.append(self.fix_xy[skip:self.fix_n].tobytes())
         state = {
             "vehicle": self.vehicle,
             "n_segments": self.network.n_segments,
@@ -472,6 +535,7 @@ class Tracker:
             "skipped": self.skipped,
             "last_seg": self.last_seg,
             "levels": levels,
+            "fixes": [self.fix_seq0 + skip, self.fix_n - skip],
         }
         header = json.dumps(state, separators=(",", ":")).encode()
         return STATE_FORMAT + zlib.compress(
@@ -499,6 +563,7 @@ class Tracker:
         tracker = cls(network, state["vehicle"], settings)
         if [lv[0] for lv in state["levels"]] != [lv.eps for lv in tracker.levels]:
             raise BadStateError("tracker state was written with a different eps ladder")
+        at = 0  # read position in the raw arrays after the header (LMT2)
         if fmt == STATE_FORMAT_V1:
             nodes: list[Node] = []
             for seg, seq, t, pos, x, y, parent, via, cost, low in state["nodes"]:
@@ -511,7 +576,6 @@ class Tracker:
                 lv.trim_seq = trim_seq
                 lv.tree = CandidateTree.from_nodes({seg: nodes[i] for seg, i in live})
         else:
-            at = 0
             for lv, (_, tree_seq, cert_seq, cert_t, trim_seq, rows, vias, live) in zip(
                     tracker.levels, state["levels"], strict=True):
                 lv.tree_seq, lv.cert_seq, lv.cert_t = tree_seq, cert_seq, cert_t
@@ -528,6 +592,13 @@ class Tracker:
                     np.frombuffer(parts[1], np.float64).reshape(rows, ROW_F),
                     np.frombuffer(parts[2], np.int32), live)
         tracker.seq = state["seq"]
+        # absent in older states: no fix positions, the live score starts with new fixes
+        seq0, n = state.get("fixes", (state["seq"] + 1, 0))
+        if n:
+            if fmt != STATE_FORMAT or at + 16 * n > len(rest):
+                raise BadStateError("corrupt tracker state: fix positions cut short")
+            tracker.fix_xy = np.frombuffer(rest[at:at + 16 * n], np.float64).reshape(n, 2).copy()
+        tracker.fix_seq0, tracker.fix_n = seq0, n
         tracker.last = tuple(state["last"]) if state["last"] else None
         tracker.last_released_t = state["last_released_t"]
         tracker.jumps = state["jumps"]
