@@ -27,6 +27,7 @@ from livematch.core.sweep import (
     best_leaf,
     common_ancestor,
     descends_from,
+    live_score,
     sweep_step,
 )
 from livematch.core.tracker import Tracker
@@ -72,9 +73,15 @@ def branch(node: Node, ancestor: Node) -> int:
     return cur.via[0] if cur.via else cur.seg
 
 
-def junction_reference(live: list[Node], best: Node, margin: float) -> Node | None:
-    """Reference: where the near-best candidates split at a junction (None: no hold)."""
-    close = [n for n in live if n.cost <= best.cost + margin]
+def junction_reference(live: list[Node], best: Node, margin: float,
+                       score: list[float] | None = None) -> Node | None:
+    """Reference: where the near-best candidates split at a junction (None: no hold).
+
+    Near-best by path cost, or by ``score`` (one per live node) if given.
+    """
+    value = [n.cost for n in live] if score is None else score
+    limit = value[live.index(best)] + margin
+    close = [n for n, v in zip(live, value, strict=True) if v <= limit]
     if len(close) < 2 or all(n.seg == best.seg for n in close):
         return None
     split = common_ancestor(close)
@@ -85,12 +92,36 @@ def junction_reference(live: list[Node], best: Node, margin: float) -> Node | No
     return split
 
 
-def check_tree(tree: CandidateTree, tracker: Tracker, ctx: StepContext) -> tuple[int, int]:
+def driven_reference(net: RoadNetwork, node: Node, ancestor: Node) -> float:
+    """Reference: metres along node's path from the head vertex of ancestor's segment.
+
+    Built from the segments driven (the ancestor's, each link's via, each state's own)
+    and the positions on the first and last, not from the kernel's per-link sum.
+    """
+    segs: list[tuple[int, float, float]] = []  # segment, from pos, to pos; newest first
+    cur = node
+    while cur is not ancestor:
+        assert cur.parent is not None
+        p = cur.parent
+        if not cur.via and cur.seg == p.seg:
+            segs.append((cur.seg, p.pos, cur.pos))
+        else:
+            segs.append((cur.seg, 0.0, cur.pos))
+            segs.extend((v, 0.0, 1.0) for v in reversed(cur.via))
+            segs.append((p.seg, p.pos, 1.0))
+        cur = p
+    return sum((b - a) * float(net.seg_len[s]) for s, a, b in segs) - (
+        1.0 - ancestor.pos) * float(net.seg_len[ancestor.seg])
+
+
+def check_tree(tree: CandidateTree, tracker: Tracker,
+               ctx: StepContext) -> tuple[int, int, int]:
     """Every tree operation on arrays equals its reference on nodes, for this tree.
 
-    Returns how many junction splits and common ancestors were found (coverage).
+    Returns how many junction splits and common ancestors were found, and how often the
+    live score picked another state than the path cost (coverage).
     """
-    splits = ancestors = 0
+    splits = ancestors = reranked = 0
     nodes = tree.rows()  # compacts: row r is nodes[r] from here on
     index_of = {id(n): r for r, n in enumerate(nodes)}
     live = nodes[tree.lo:tree.hi]
@@ -110,6 +141,28 @@ def check_tree(tree: CandidateTree, tracker: Tracker, ctx: StepContext) -> tuple
         got = tree.junction_split(best, margin)
         assert (got, ref) == (-1, None) or nodes[got] is ref
         splits += ref is not None
+        if ref is not None:
+            driven = tree.driven_since(best, got, tracker.network.seg_len)
+            assert driven == pytest.approx(driven_reference(tracker.network, nodes[best], ref),
+                                           abs=1e-9)
+    # the live score: compiled, against the reference on nodes, and the junction rule by it
+    s = tracker.settings
+    fixes = {tracker.fix_seq0 + i: (float(x), float(y))
+             for i, (x, y) in enumerate(tracker.fix_xy[:tracker.fix_n])}
+    for first in (tracker.next_commit - 1, seq - 3):
+        score = tree.live_scores(tracker.fix_xy[:tracker.fix_n], tracker.fix_seq0, first,
+                                 1.0 / (2.0 * s.sigma_m ** 2), s.error_tau_s, s.gap_s)
+        ref_score = [live_score(n, fixes, first, 1.0 / (2.0 * s.sigma_m ** 2), s.error_tau_s,
+                                s.gap_s) for n in live]
+        assert score.tolist() == pytest.approx(ref_score, rel=1e-12, abs=1e-12)
+        scored = tree.best(tracker.last_seg, score)
+        reranked += scored != best
+        assert nodes[scored] is min(live, key=lambda n: (
+            ref_score[live.index(n)], n.seg != tracker.last_seg, n.seg))
+        for margin in (3.0, 12.0):
+            ref = junction_reference(live, nodes[scored], margin, ref_score)
+            got = tree.junction_split(scored, margin, score)
+            assert (got, ref) == (-1, None) or nodes[got] is ref
     for target in (seq - 1, seq - 5, 0):
         assert nodes[tree.ancestor_at(best, target)] is ancestor_at(nodes[best], target)
     top = tree.ancestor_at(best, seq - 3)
@@ -153,7 +206,7 @@ def check_tree(tree: CandidateTree, tracker: Tracker, ctx: StepContext) -> tuple
     other = CandidateTree.from_nodes(live_dict)
     other.prune(other.ancestor_at(other.best(tracker.last_seg), seq - 2))
     assert [fields(n) for n in other.rows()[other.lo:other.hi]] == want
-    return splits, ancestors
+    return splits, ancestors, reranked
 
 
 @pytest.mark.parametrize(("name", "every"), [("test", 1), ("test", 10), ("Helsinki", 1),
@@ -162,7 +215,7 @@ def test_candidate_tree_matches_node_reference_on_osm_drives(name: str, every: i
     """Every array operation equals the Node reference on the trees of real drives."""
     net = osm(name)
     settings = MatchSettings()
-    checked = splits = ancestors = 0
+    checked = splits = ancestors = reranked = 0
     for seed in range(2):
         tracker = Tracker(net, f"v{seed}", settings)
         fixes = drive(net, seed, every)
@@ -180,7 +233,9 @@ def test_candidate_tree_matches_node_reference_on_osm_drives(name: str, every: i
                 checked += 1
                 splits += found[0]
                 ancestors += found[1]
+                reranked += found[2]
     assert checked > 50 and splits > 0 and ancestors > checked  # the cases really occur
+    assert reranked > 0 or every > 1  # at 10 s every link is a gap: the score is the cost
 
 
 def test_candidate_tree_trim_and_compaction_keep_decisions() -> None:

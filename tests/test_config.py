@@ -80,6 +80,8 @@ def test_load_config_eps_levels_not_increasing(tmp_path: Path) -> None:
     ("[mqtt]\ntopic = 'fleet/{shard}/+/+'\n", "mqtt.topic must be an MQTT topic filter"),
     ("[publish]\nreject_queue_max = -5\n", "publish.reject_queue_max must be >= 0, got -5"),
     ("[matcher]\nmax_lag_s = -1\n", "matcher.max_lag_s must be a positive number"),
+    ("[matcher]\nerror_tau_s = -30\n", "matcher.error_tau_s must be a number >= 0, got -30"),
+    ("[matcher]\njunction_hold_m = -5\n", "matcher.junction_hold_m must be a number >= 0, got -5"),
     ("[matcher]\nspeed = 3\n", "unknown key matcher.speed"),
     ("[daemon]\nx = 1\n", "unknown section [daemon]"),
     ("title = 'x'\n", "top-level key 'title' must be a [section] table"),

@@ -324,3 +324,57 @@ def test_tracker_reads_older_lmt1_state() -> None:
                        DriveSettings(duration_s=240.0), drivable_segments(net))
     fixes = [Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy) for o in observe(d, 1)]
     assert run(old, fixes[120:]) == run(new, fixes[120:])
+
+
+def side_road_parallel() -> RoadNetwork:
+    """Main road (way 1, y=0, x 0..400) and a side road (way 2) leaving it at x=100 and
+    running 8 m north of it, parallel, to x=400 (a service road along a street)."""
+    from livematch.core.build import Road, network_from_roads
+
+    main = Road([(float(x), 0.0) for x in range(0, 401, 20)], way=1)
+    side = Road([(100.0, 0.0), (110.0, 8.0), *[(float(x), 8.0) for x in range(140, 401, 30)]],
+                way=2)
+    return network_from_roads([main, side])
+
+
+def test_tracker_live_answer_not_drawn_to_road_the_error_leans_to() -> None:
+    """GNSS error leaning 6 m north for the whole drive (correlated error): after the side
+    road leaves, it lies 2 m from every fix and the main road 6 m. Ranked by path cost the
+    live answer moves to the side road; ranked by the live score (error_tau_s) an offset
+    that stays is no evidence, the turn that would explain the fixes better is, and the
+    live answer stays on the main road the vehicle never left."""
+    net = side_road_parallel()
+    fixes = fixes_along([(10.0 * i, 6.0) for i in range(1, 38)])
+    far = [i for i, f in enumerate(fixes) if f.x >= 150.0]  # past any junction hold
+    by_score = assignments(run(Tracker(net, "v1"), fixes))
+    by_cost = assignments(run(Tracker(net, "v1", MatchSettings(error_tau_s=0.0)), fixes))
+    assert {int(net.seg_way[by_score[i].segment]) for i in far} == {1}
+    assert {int(net.seg_way[by_cost[i].segment]) for i in far} == {2}
+
+
+def test_tracker_junction_hold_ends_past_junction_hold_m() -> None:
+    """Fixes exactly between the two branches of a fork: which one is driven stays open, so
+    the live answer waits at the fork (x=100) while the fix is within eps of it, but only
+    while the best candidate has driven at most junction_hold_m past it."""
+    from livematch.core.build import Road, network_from_roads
+
+    net = network_from_roads([
+        Road([(0.0, 0.0), (50.0, 0.0), (100.0, 0.0)], way=1),
+        Road([(100.0, 0.0), (300.0, 40.0)], way=2),
+        Road([(100.0, 0.0), (300.0, -40.0)], way=3),
+    ])
+    fixes = fixes_along([(5.0 * i, 0.0) for i in range(1, 30)])
+
+    def held(settings: MatchSettings) -> list[float]:
+        """x of the fixes past the fork whose live answer is the fork itself."""
+        out = []
+        for f, a in zip(fixes, assignments(run(Tracker(net, "v1", settings), fixes)),
+                        strict=True):
+            if f.x > 100.0 and int(net.seg_way[a.segment]) == 1:
+                assert (a.x, a.y) == (100.0, 0.0)
+                out.append(f.x)
+        return out
+
+    assert held(MatchSettings()) == [105.0, 110.0, 115.0]  # then more than eps (15 m) away
+    assert held(MatchSettings(junction_hold_m=7.0)) == [105.0]  # then > 7 m past it
+    assert held(MatchSettings(junction_hold=0.0)) == []
