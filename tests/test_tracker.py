@@ -378,3 +378,21 @@ def test_tracker_junction_hold_ends_past_junction_hold_m() -> None:
     assert held(MatchSettings()) == [105.0, 110.0, 115.0]  # then more than eps (15 m) away
     assert held(MatchSettings(junction_hold_m=7.0)) == [105.0]  # then > 7 m past it
     assert held(MatchSettings(junction_hold=0.0)) == []
+
+
+def test_tracker_forced_commit_by_live_score_on_dense_fixes() -> None:
+    """The same leaning error, with a lag short enough that commits are forced while both
+    roads are alive: at 1 s between fixes the forced commit takes the best candidate by
+    live score (the main road); ranked by path cost it commits the side road."""
+    net = side_road_parallel()
+    fixes = fixes_along([(10.0 * i, 6.0) for i in range(1, 38)])
+    settings = MatchSettings(max_lag_fixes=10)
+
+    def committed_ways(settings: MatchSettings) -> set[int]:
+        """Ways of the final answers of the fixes past x=150."""
+        return {int(net.seg_way[m.segment]) for c in commits(run(Tracker(net, "v1", settings),
+                                                                  fixes))
+                for m in c.fixes if m.x >= 150.0}
+
+    assert committed_ways(settings) == {1}
+    assert committed_ways(MatchSettings(max_lag_fixes=10, error_tau_s=0.0)) == {2}

@@ -59,7 +59,9 @@ class MatchSettings:
             changes of its offset from the fixes rather than for the offset itself, so a
             side road the error leans towards does not win the live answer. 0 ranks by
             path cost. 30 s is the low end of the tens of seconds consumer GNSS error
-            wanders over (common practice, from memory). Commits are unaffected.
+            wanders over (common practice, from memory). A forced commit (``max_lag_*``)
+            ranks by the same score while fixes come less than 5 s apart; other commits are
+            unaffected.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
