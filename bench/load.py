@@ -144,6 +144,29 @@ def cpu_seconds(pid: int) -> float:
     return (int(fields[11]) + int(fields[12])) / CLK_TCK
 
 
+def cpu_split(pid: int) -> tuple[float, float]:
+    """(user, system) CPU seconds of a live process ((0, 0) when it is gone)."""
+    try:
+        fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    except OSError:
+        return 0.0, 0.0
+    return int(fields[11]) / CLK_TCK, int(fields[12]) / CLK_TCK
+
+
+def scrape_published(port: int) -> dict[str, float]:
+    """``livematch_published_total`` by kind, read from a daemon's /metrics."""
+    import urllib.request
+
+    with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=5) as r:
+        text = r.read().decode()
+    out: dict[str, float] = {}
+    for line in text.splitlines():
+        if line.startswith("livematch_published_total{"):
+            kind = line.split('kind="', 1)[1].split('"', 1)[0]
+            out[kind] = float(line.rsplit(" ", 1)[1])
+    return out
+
+
 def load_average() -> float:
     """The 1-minute load average, as ``uptime`` prints it."""
     return float(Path("/proc/loadavg").read_text().split()[0])
@@ -407,8 +430,10 @@ def probe(argv: list[str], out_path: str, nodelay: bool, freeze: bool, inflight:
 
 # --------------------------------------------------------------------------- one step
 def daemon_config(folder: Path, port: int, store: str, worker: str, group: str,
-                  topic: str = IN_TOPIC) -> Path:
+                  topic: str = IN_TOPIC, metrics_port: int = 0) -> Path:
+    """A daemon configuration; ``metrics_port`` > 0 opens its /metrics on that port."""
     cfg = folder / f"{worker}.toml"
+    listen = f"127.0.0.1:{metrics_port}" if metrics_port else ""
     group_lines = f'[group]\nname = "{group}"\nworker = "{worker}"\nlease_s = 5\n' if group else ""
     cfg.write_text(f"""
 [inputs]
@@ -425,7 +450,7 @@ url = "{store}"
 key_prefix = "load:"
 
 [metrics]
-listen = ""
+listen = "{listen}"
 
 [log]
 level = "warning"
@@ -486,8 +511,12 @@ def percentile(values: list[float], q: float) -> float | None:
 
 def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: Path,
              probe_to: Path | None = None, nodelay: bool = False, freeze: bool = False,
-             inflight: int = 0, py_spy: bool = False) -> dict[str, Any]:
+             inflight: int = 0, py_spy: bool = False, count_publishes: bool = False
+             ) -> dict[str, Any]:
     """One step: ``rate`` vehicles at 1 Hz for ``seconds`` through ``system``.
+
+    With ``count_publishes`` (livematch only) the daemon's /metrics is opened and its
+    publishes by kind during the step are reported (``published_by_kind``).
 
     With ``probe_to`` (livematch-1 only) the daemon runs under :func:`probe` (and with
     ``py_spy`` is sampled by py-spy while the step runs); the probe records, py-spy's
@@ -502,6 +531,9 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
     gens: list[subprocess.Popen[bytes]] = []
     sub: Subscriber | None = None
     shards = GROUP_SHARDS if system == "livematch-2s" else 0
+    metrics_ports: list[int] = []
+    published0: list[dict[str, float]] = []
+    published1: list[dict[str, float]] = []
     loadavg, pressure = load_average(), cpu_pressure()
     try:
         broker, port = start_mosquitto(folder)
@@ -522,8 +554,11 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                 procs.append(redis)
                 store, group = f"redis://127.0.0.1:{rport}/0", "load"
             for w in range(workers):
+                if count_publishes:
+                    metrics_ports.append(free_port())
                 cfg = daemon_config(folder, port, store, f"w{w}", group,
-                                    SHARD_TOPIC if shards else IN_TOPIC)
+                                    SHARD_TOPIC if shards else IN_TOPIC,
+                                    metrics_ports[-1] if count_publishes else 0)
                 cmd = [sys.executable, "-m", "livematch.cli"]
                 if probe_to is not None:
                     cmd = [sys.executable, __file__, "--role", "probe", "--probe-out",
@@ -553,7 +588,9 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                                     "raw", "--duration", str(seconds + 1), "--output",
                                     str(probe_to / "py-spy.txt")],
                                    stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        published0 = [scrape_published(mp) for mp in metrics_ports]
         cpu0 = {p.pid: cpu_seconds(p.pid) for p in procs}
+        split0 = {p.pid: cpu_split(p.pid) for p in sut}
         self0 = time.process_time()
         t0 = time.time() + 0.3
         for gen in gens:
@@ -565,7 +602,10 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         while time.time() < deadline and len(sub.got) < expected:
             time.sleep(0.05)
         cpu = {p.pid: cpu_seconds(p.pid) - cpu0[p.pid] for p in procs}
+        split = {p.pid: tuple(b - a for a, b in zip(split0[p.pid], cpu_split(p.pid),
+                                                     strict=True)) for p in sut}
         self_cpu = time.process_time() - self0
+        published1 = [scrape_published(mp) for mp in metrics_ports]
         reports = []
         for gen in gens:
             out, _ = gen.communicate(timeout=60)
@@ -646,6 +686,12 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                   "broker": round(cpu[broker_pid], 2),
                   "generators": round(sum(cpu[p] for p in gen_pids), 2),
                   "subscriber": round(self_cpu, 2)},
+        "system_user_sys_s": [round(sum(split[p][0] for p in sut_pids), 2),
+                              round(sum(split[p][1] for p in sut_pids), 2)],
+        "published_by_kind": {k: sum(b.get(k, 0.0) - a.get(k, 0.0)
+                                     for a, b in zip(published0, published1, strict=True))
+                              for k in sorted({k for d in published1 for k in d})}
+        if published1 else None,
         "sustained": sustained,
         "verdict": ("sustained" if sustained else
                     "generator-bound" if not gen_ok else "not sustained"),
@@ -687,6 +733,109 @@ def ceiling(system: str, rates: list[int], refine: int, seconds: int, generators
             failed = mid
     return {"system": system, "max_sustained_per_s": best, "first_failed_per_s": failed,
             "generator_bound": bound, "steps": len(rows) - first_row}
+
+
+# ------------------------------------------------------------ the CPU-per-fix mode
+def cpu_per_fix(rate: int, seconds: int, repeat: int, generators: int, systems: list[str],
+                out: Path, name: str, note: str = "") -> dict[str, Any]:
+    """CPU time per fix of each process, the systems in turn at one fixed rate.
+
+    Robust to a shared machine in a way the ceiling search is not: each system handles
+    the same fixes (``rate`` x ``seconds``) at the same offered rate, and CPU seconds
+    (user + system, /proc/<pid>/stat) count only work done, not time spent waiting for a
+    core that someone else holds. The systems alternate, ``repeat`` rounds, so a change
+    in the machine's load hits both alike; the ratio is taken within each round.
+    """
+    started = time.strftime("%Y-%m-%d %H:%M", time.gmtime())
+    rows: list[dict[str, Any]] = []
+    with tempfile.TemporaryDirectory(prefix="lm-pool-") as tmp:
+        pool = Path(tmp) / "pool.npz"
+        make_pool(pool)
+        for k in range(1, repeat + 1):
+            for system in systems:
+                row = run_step(system, rate, seconds, generators, pool,
+                               count_publishes=system.startswith("livematch"))
+                row["repeat"] = k
+                fixes = rate * seconds
+                row["ms_per_fix"] = {role: round(v * 1000 / fixes, 4)
+                                     for role, v in row["cpu_s"].items()}
+                user, sys_s = row["system_user_sys_s"]
+                row["system_user_sys_ms_per_fix"] = [round(user * 1000 / fixes, 4),
+                                                     round(sys_s * 1000 / fixes, 4)]
+                kinds = row["published_by_kind"]
+                row["publishes_per_fix"] = (round(sum(kinds.values()) / fixes, 3)
+                                            if kinds else 1.0)
+                print(json.dumps(row), flush=True)
+                rows.append(row)
+    result = {"command": sys.argv, "started_utc": started, "cpu_count": os.cpu_count(),
+              "rate": rate, "seconds": seconds, "repeat": repeat, "systems": systems,
+              "broker_nodelay": BROKER_NODELAY, "git": git_state(), "note": note,
+              "livematch_from": str(Path(livematch_file()).parent), "steps": rows}
+    text = render_cpu(result)
+    print(text)
+    (out / f"{name}.md").write_text(text, encoding="utf-8")
+    (out / f"{name}.json").write_text(json.dumps(result, indent=1), encoding="utf-8")
+    return result
+
+
+def render_cpu(r: dict[str, Any]) -> str:
+    rows = r["steps"]
+    loads = [row["loadavg_1m"] for row in rows]
+    cmd = " ".join(["bench/load.py", *[a for a in r["command"][1:]]])
+    git = r["git"]
+    lines = [
+        f"# CPU time per fix at {r['rate']} fixes/s",
+        "",
+        f"Command: `.venv/bin/python {cmd}`, started {r['started_utc']} UTC, livematch at "
+        f"commit {git['commit']}" + (" with uncommitted changes under livematch/"
+                                     if git["livematch_uncommitted"] else "") + "; "
+        f"1-minute load average before the steps {min(loads)}-{max(loads)}; "
+        f"{r['cpu_count']} cores shared with other people's work. livematch imported "
+        f"from `{r['livematch_from']}`." + (f" {r['note']}" if r.get("note") else ""),
+        "",
+        f"Each step: {r['rate']} vehicles at 1 Hz for {r['seconds']} s "
+        f"({r['rate'] * r['seconds']:,} fixes, QoS 1) through a fresh mosquitto; CPU seconds "
+        "(user + system, /proc/<pid>/stat) of each process from the start of the step "
+        "until its outputs arrived, divided by the fixes. Warm-up (16 probe vehicles) is "
+        "excluded. Publishes per fix: the relay publishes one message per fix; "
+        "livematch's count is its own `livematch_published_total` during the step "
+        "(assignments, commits, alerts). Every publish also costs a PUBACK read, and "
+        "every fix a PUBLISH read and a PUBACK write, in both systems.",
+        "",
+        "| round | system | load avg | delivered | p50 / p99 ms | publishes per fix | "
+        "CPU ms per fix: system (user + sys) | broker | generators | subscriber |",
+        "|---:|---|---:|---:|---:|---:|---:|---:|---:|---:|",
+    ]
+    for row in rows:
+        m = row["ms_per_fix"]
+        u, y = row["system_user_sys_ms_per_fix"]
+        lines.append(
+            f"| {row['repeat']} | {row['system']} | {row['loadavg_1m']} | "
+            f"{row['delivered_share']:.1%} | {fmt(row['p50_ms'])} / {fmt(row['p99_ms'])} | "
+            f"{row['publishes_per_fix']} | {m['system']:.3f} ({u:.3f} + {y:.3f}) | "
+            f"{m['broker']:.3f} | {m['generators']:.3f} | {m['subscriber']:.3f} |")
+    systems = r["systems"]
+    med = {s: statistics.median(row["ms_per_fix"]["system"] for row in rows
+                                if row["system"] == s) for s in systems}
+    lines += ["", "Median CPU ms per fix of the system: " + ", ".join(
+        f"{s} {med[s]:.3f}" for s in systems) + "."]
+    if "relay" in systems:
+        for s in systems:
+            if s == "relay":
+                continue
+            each = []
+            for k in range(1, r["repeat"] + 1):
+                a = [row for row in rows if row["repeat"] == k and row["system"] == s]
+                b = [row for row in rows if row["repeat"] == k and row["system"] == "relay"]
+                if a and b and b[0]["ms_per_fix"]["system"] > 0:
+                    each.append(a[0]["ms_per_fix"]["system"] / b[0]["ms_per_fix"]["system"])
+            if each:
+                lines.append(f"{s} / relay, CPU per fix within each round: "
+                             + ", ".join(f"{x:.2f}" for x in each)
+                             + f" (median {statistics.median(each):.2f}); the CPU-bound "
+                             f"throughput ratio is about the inverse, "
+                             f"{1 / statistics.median(each):.2f}.")
+    return "\n".join(lines) + "\n"
 
 
 # ---------------------------------------------------------------- the profile mode
@@ -829,6 +978,13 @@ def render_profile(r: dict[str, Any]) -> str:
         for (a, x), (b, y) in zip(r["py_spy"]["self"], r["py_spy"]["inclusive"], strict=False):
             lines.append(f"| {a} | {x:.1%} | {b} | {y:.1%} |")
     return "\n".join(lines) + "\n"
+
+
+def livematch_file() -> str:
+    """Where the livematch package the daemons run comes from (PYTHONPATH decides)."""
+    import livematch
+
+    return str(livematch.__file__)
 
 
 def git_state() -> dict[str, str]:
@@ -989,6 +1145,13 @@ def main(argv: list[str] | None = None) -> int:
                     help="with --profile: sample the daemon with py-spy (pip install py-spy)")
     ap.add_argument("--broker-nodelay", action="store_true",
                     help="mosquitto with set_tcp_nodelay true (its default is false)")
+    ap.add_argument("--cpu-per-fix", type=int, default=0, metavar="RATE",
+                    help="instead of the search: CPU time per fix of each process at RATE, "
+                         "the --systems in turn (default relay,livematch-1), --repeat rounds")
+    ap.add_argument("--name", default="",
+                    help="with --cpu-per-fix: result file stem (default load.cpu-RATE)")
+    ap.add_argument("--note", default="",
+                    help="with --cpu-per-fix: a sentence for the report (which code ran)")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     argv = sys.argv[1:] if argv is None else argv
     if argv[:1] == ["--render"]:  # re-render load.md from load.json (after a report fix)
@@ -1022,6 +1185,14 @@ def main(argv: list[str] | None = None) -> int:
             f"-inflight{args.inflight}" if args.inflight else "")
         profile(args.profile, args.seconds, args.generators, args.nodelay, args.freeze,
                 args.inflight, args.py_spy, out, name)
+        return 0
+    if args.cpu_per_fix:
+        out = Path(args.out)
+        out.mkdir(parents=True, exist_ok=True)
+        systems = (args.systems.split(",") if "--systems" in argv
+                   else ["relay", "livematch-1"])
+        cpu_per_fix(args.cpu_per_fix, args.seconds, args.repeat, args.generators, systems,
+                    out, args.name or f"load.cpu-{args.cpu_per_fix}", args.note)
         return 0
     if args.role == "generator":
         generate(args.port, args.pool, args.n, args.seconds, args.first, args.step,
