@@ -366,11 +366,14 @@ def probe(argv: list[str], out_path: str, nodelay: bool, freeze: bool, inflight:
 
     def timed(name: str, fn: Any) -> Any:
         def wrapper(*args: Any, **kwargs: Any) -> Any:
-            started = time.perf_counter()
+            started, cpu = time.perf_counter(), time.thread_time()
             try:
                 return fn(*args, **kwargs)
             finally:
-                rec[name].append((time.time(), (time.perf_counter() - started) * 1000))
+                # (end epoch s, wall ms, CPU ms of this thread: not counting the time
+                # another process held the core)
+                rec[name].append((time.time(), (time.perf_counter() - started) * 1000,
+                                  (time.thread_time() - cpu) * 1000))
         return wrapper
 
     Pipeline.handle = timed("handle", Pipeline.handle)  # type: ignore[method-assign]
@@ -589,6 +592,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                                     str(probe_to / "py-spy.txt")],
                                    stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
         published0 = [scrape_published(mp) for mp in metrics_ports]
+        window0 = time.time()
         cpu0 = {p.pid: cpu_seconds(p.pid) for p in procs}
         split0 = {p.pid: cpu_split(p.pid) for p in sut}
         self0 = time.process_time()
@@ -605,6 +609,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         split = {p.pid: tuple(b - a for a, b in zip(split0[p.pid], cpu_split(p.pid),
                                                      strict=True)) for p in sut}
         self_cpu = time.process_time() - self0
+        window1 = time.time()
         published1 = [scrape_published(mp) for mp in metrics_ports]
         reports = []
         for gen in gens:
@@ -692,6 +697,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                                      for a, b in zip(published0, published1, strict=True))
                               for k in sorted({k for d in published1 for k in d})}
         if published1 else None,
+        "cpu_window": [window0, window1],
         "sustained": sustained,
         "verdict": ("sustained" if sustained else
                     "generator-bound" if not gen_ok else "not sustained"),
@@ -753,10 +759,23 @@ def cpu_per_fix(rate: int, seconds: int, repeat: int, generators: int, systems: 
         make_pool(pool)
         for k in range(1, repeat + 1):
             for system in systems:
+                probe_dir = Path(tempfile.mkdtemp(prefix="lm-cpu-"))
+                probed = system == "livematch-1"
                 row = run_step(system, rate, seconds, generators, pool,
+                               probe_to=probe_dir if probed else None,
                                count_publishes=system.startswith("livematch"))
                 row["repeat"] = k
-                fixes = rate * seconds
+                # fixes whose output arrived while the CPU was counted (all of them when
+                # the system kept up; then the same for every system)
+                fixes = max(1, row["delivered"])
+                row["pipeline_ms_per_fix"] = None
+                if probed:
+                    rec = json.loads((probe_dir / "probe.json").read_text(encoding="utf-8"))
+                    a, b = row["cpu_window"]
+                    row["pipeline_ms_per_fix"] = {
+                        name: round(sum(r[2] for r in rec[name] if a <= r[0] <= b)
+                                    / fixes, 4) for name in ("handle", "export", "tick")}
+                shutil.rmtree(probe_dir, ignore_errors=True)
                 row["ms_per_fix"] = {role: round(v * 1000 / fixes, 4)
                                      for role, v in row["cpu_s"].items()}
                 user, sys_s = row["system_user_sys_s"]
@@ -796,29 +815,50 @@ def render_cpu(r: dict[str, Any]) -> str:
         f"Each step: {r['rate']} vehicles at 1 Hz for {r['seconds']} s "
         f"({r['rate'] * r['seconds']:,} fixes, QoS 1) through a fresh mosquitto; CPU seconds "
         "(user + system, /proc/<pid>/stat) of each process from the start of the step "
-        "until its outputs arrived, divided by the fixes. Warm-up (16 probe vehicles) is "
-        "excluded. Publishes per fix: the relay publishes one message per fix; "
+        "until its outputs arrived (at most the step + 5 s), divided by the fixes whose "
+        "output arrived by then. Warm-up (16 probe vehicles) is excluded. A step with "
+        "less than 99 % delivered did not keep up (the machine was too busy): its "
+        "figures are less comparable. Publishes per fix: the relay publishes one message per fix; "
         "livematch's count is its own `livematch_published_total` during the step "
         "(assignments, commits, alerts). Every publish also costs a PUBACK read, and "
-        "every fix a PUBLISH read and a PUBACK write, in both systems.",
+        "every fix a PUBLISH read and a PUBACK write, in both systems. livematch-1 runs "
+        "under the probe of `--profile` (no py-spy), which sums the CPU time of its "
+        "thread (`time.thread_time`) inside `Pipeline.handle`, `Pipeline.export_vehicle` "
+        "(checkpoints) and `Pipeline.tick` during the step: *pipeline*; *shell* is the "
+        "rest of the daemon's CPU (MQTT client, event loop, queues, encoding, metrics).",
         "",
         "| round | system | load avg | delivered | p50 / p99 ms | publishes per fix | "
-        "CPU ms per fix: system (user + sys) | broker | generators | subscriber |",
-        "|---:|---|---:|---:|---:|---:|---:|---:|---:|---:|",
+        "CPU ms per fix: system (user + sys) | of which pipeline: handle + checkpoints "
+        "+ tick | shell | broker | generators | subscriber |",
+        "|---:|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|",
     ]
     for row in rows:
         m = row["ms_per_fix"]
         u, y = row["system_user_sys_ms_per_fix"]
+        pipe = row.get("pipeline_ms_per_fix")
+        if pipe:
+            total = pipe["handle"] + pipe["export"] + pipe["tick"]
+            split = (f"{total:.3f} ({pipe['handle']:.3f} + {pipe['export']:.3f} + "
+                     f"{pipe['tick']:.3f}) | {m['system'] - total:.3f}")
+        else:
+            split = "— | —"
         lines.append(
             f"| {row['repeat']} | {row['system']} | {row['loadavg_1m']} | "
             f"{row['delivered_share']:.1%} | {fmt(row['p50_ms'])} / {fmt(row['p99_ms'])} | "
-            f"{row['publishes_per_fix']} | {m['system']:.3f} ({u:.3f} + {y:.3f}) | "
+            f"{row['publishes_per_fix']} | {m['system']:.3f} ({u:.3f} + {y:.3f}) | {split} | "
             f"{m['broker']:.3f} | {m['generators']:.3f} | {m['subscriber']:.3f} |")
     systems = r["systems"]
     med = {s: statistics.median(row["ms_per_fix"]["system"] for row in rows
                                 if row["system"] == s) for s in systems}
     lines += ["", "Median CPU ms per fix of the system: " + ", ".join(
         f"{s} {med[s]:.3f}" for s in systems) + "."]
+    shells = [row["ms_per_fix"]["system"] - sum(row["pipeline_ms_per_fix"].values())
+              for row in rows if row.get("pipeline_ms_per_fix")]
+    pipes = [sum(row["pipeline_ms_per_fix"].values()) for row in rows
+             if row.get("pipeline_ms_per_fix")]
+    if shells:
+        lines.append(f"livematch-1: pipeline {statistics.median(pipes):.3f} and shell "
+                     f"{statistics.median(shells):.3f} CPU ms per fix (medians).")
     if "relay" in systems:
         for s in systems:
             if s == "relay":
