@@ -396,3 +396,101 @@ def test_tracker_forced_commit_by_live_score_on_dense_fixes() -> None:
 
     assert committed_ways(settings) == {1}
     assert committed_ways(MatchSettings(max_lag_fixes=10, error_tau_s=0.0)) == {2}
+
+
+# ---------------------------------------------------------------- spike test
+# A vehicle on Row 1 of the grid (way 3, y = 200), east at 10 m/s, a fix every 15 s.
+SPARSE_PTS = [(50.0 + 150.0 * i, 201.0) for i in range(6)]
+
+
+def test_tracker_spike_between_good_fixes_is_dropped() -> None:
+    """A fix 150 m off the road between two good fixes 15 s apart is dropped one fix late.
+
+    No speed bound catches it (300 m in 15 s is plausible). Matching the next fix straight
+    from the one before the spike costs far less than going through it: the fix is
+    reported as filtered (``spike``) and its final answer is the point on the committed
+    path at its time (a leave-one-out test, see livematch.core.tracker).
+    """
+    net = grid()
+    fixes = fixes_along(SPARSE_PTS, dt=15.0)
+    bad = fixes[3]
+    fixes[3] = Fix(bad.vehicle, bad.t, 0.0, 0.0, 500.0, 350.0)  # 150 m north of (500, 200)
+    events = run(Tracker(net, "v1", MatchSettings(spike_cost=30.0)), fixes)
+    assert [(e.t, e.reason) for e in events if isinstance(e, Filtered)] == [(bad.t, "spike")]
+    path = committed_path(events)
+    assert_connected(net, path)
+    assert ways(net, path) == [3]
+    final = {m.t: m for c in commits(events) for m in c.fixes}
+    assert sorted(final) == [f.t for f in fixes]
+    m = final[bad.t]
+    # halfway in time between the matched neighbours at x = 350 and 650 on y = 200
+    assert abs(m.x - 500.0) < 2.0 and m.y == 200.0
+    # without the test the spike pulls the committed path off Row 1
+    plain = run(Tracker(net, "v1", MatchSettings(spike_cost=0.0)), fixes)
+    assert not any(isinstance(e, Filtered) for e in plain)
+    assert ways(net, committed_path(plain)) != [3]
+
+
+def test_tracker_genuine_dead_end_detour_is_not_dropped() -> None:
+    """A fix at the end of a cul-de-sac, driven in and out between two fixes, stays.
+
+    Its neighbours are both at the same spot 150 m down the cul-de-sac, so it looks like a
+    spike by geometry alone; the path through it matches the vehicle's pace (150 m per
+    15 s both ways), the path without it would have stood still for 30 s.
+    """
+    net = dead_end()
+    # main road east from x = 50, up the cul-de-sac at x = 500 to its end, back, east
+    route = [(50.0, 0.0), (500.0, 0.0), (500.0, 300.0), (500.0, 0.0), (1000.0, 0.0)]
+    pts = polyline_points(route, 150.0)
+    assert (500.0, 300.0) in pts
+    fixes = fixes_along(pts, dt=15.0)
+    events = run(Tracker(net, "v1", MatchSettings(spike_cost=30.0)), fixes)
+    assert not any(isinstance(e, Filtered) for e in events)
+    path = committed_path(events)
+    assert_connected(net, path)
+    assert ways(net, path) == [1, 2, 1]
+    end = {m.t: m for c in commits(events) for m in c.fixes}[fixes[pts.index((500.0, 300.0))].t]
+    assert math.hypot(end.x - 500.0, end.y - 300.0) < 1e-6
+
+
+def test_tracker_spike_test_only_from_5_to_20_s() -> None:
+    """At 1 s between fixes (the jump filter's bound is tight) and at 30 s (the test lost
+    more good fixes than it caught spikes) the spike test never runs."""
+    net = grid()
+    dense = fixes_along(polyline_points(ROUTE, 10.0))
+    assert (run(Tracker(net, "v1", MatchSettings(spike_cost=30.0)), dense)
+            == run(Tracker(net, "v1", MatchSettings(spike_cost=0.0)), dense))
+    sparse = fixes_along([(50.0 + 300.0 * i, 201.0) for i in range(3)], dt=30.0)
+    sparse[1] = Fix("v1", sparse[1].t, 0.0, 0.0, 350.0, 350.0)  # 150 m off: not tested
+    events = run(Tracker(net, "v1", MatchSettings(spike_cost=30.0)), sparse)
+    assert not any(isinstance(e, Filtered) for e in events)
+    assert events == run(Tracker(net, "v1", MatchSettings(spike_cost=0.0)), sparse)
+
+
+@pytest.mark.parametrize("cut", [2, 3, 4, 5])
+def test_tracker_restore_around_spike_gives_identical_outputs(cut: int) -> None:
+    """Serialise before, at and just after a spike (the state before it is kept), restore:
+    the events equal an uninterrupted run."""
+    net = grid()
+    fixes = fixes_along(SPARSE_PTS, dt=15.0)
+    fixes[3] = Fix("v1", fixes[3].t, 0.0, 0.0, 500.0, 350.0)
+    settings = MatchSettings(spike_cost=30.0)
+    straight = Tracker(net, "v1", settings)
+    whole = run(straight, fixes)
+    assert any(isinstance(e, Filtered) for e in whole)
+    first = Tracker(net, "v1", settings)
+    before = run(first, fixes[:cut], flush=False)
+    restored = Tracker.from_bytes(net, settings, first.to_bytes())
+    assert (restored.before is None) == (first.before is None)
+    assert restored.to_bytes() == first.to_bytes()
+    after = run(restored, fixes[cut:])
+    assert before + after == whole
+
+
+def test_tracker_spike_cost_validated() -> None:
+    """spike_cost is a number >= 0 (0 turns the spike test off); a negative one is refused."""
+    assert MatchSettings(spike_cost=0.0).problems() == []
+    assert MatchSettings(spike_cost=-1.0).problems() == [
+        ("spike_cost", "must be a number >= 0, got -1.0")]
+    with pytest.raises(ValueError, match=r"matcher\.spike_cost must be a number >= 0"):
+        Tracker(grid(), "v1", MatchSettings(spike_cost=math.nan))

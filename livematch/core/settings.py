@@ -65,6 +65,15 @@ class MatchSettings:
             wanders over (common practice, from memory). A forced commit (``max_lag_*``)
             ranks by the same score while fixes come less than 5 s apart; other commits are
             unaffected.
+        spike_cost: the retroactive spike test's charge for dropping a fix (path cost
+            units, see :mod:`livematch.core.sweep`; 0 disables), for a fix between two
+            15 s steps and in proportion to the time the two steps span. One fix later, a
+            fix of a sparse vehicle (5-20 s after the fix before) is dropped as a
+            ``spike`` when the path without it fits the next fix better by more than
+            the charge (:meth:`livematch.core.tracker.Tracker._spike_test`). It catches
+            the outliers that no speed bound can: 300 m off in 15 s is a plausible move.
+            30 was chosen on simulated drives (bench/accuracy.py's simulator, seeds other
+            than the bench's).
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -85,6 +94,7 @@ class MatchSettings:
     junction_hold: float = 3.0
     junction_hold_m: float = 30.0
     error_tau_s: float = 30.0
+    spike_cost: float = 30.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -108,7 +118,8 @@ class MatchSettings:
                 out.append((name, f"must be a positive number, got {value!r}"))
         if not (isinstance(self.max_lag_fixes, int) and self.max_lag_fixes >= 2):
             out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
-        for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s"):
+        for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s",
+                     "spike_cost"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))

@@ -13,6 +13,13 @@ How it decides
   speed of the last accepted step plus what ``ACCEL_MPS2`` and the GNSS error
   (``sigma_m``) allow; after three such fixes in a row the newest is believed, so one
   bad fix cannot lock a vehicle out).
+* **Spike test** (``spike_cost``; fixes 5-20 s after the one before): one fix
+  later, a fix is dropped and reported as filtered (``spike``) when the path matched
+  without it fits the next fix much better than the path through it (see
+  :meth:`Tracker._spike_test`). This catches the outliers that no speed bound can at
+  sparse sampling: 300 m off in 15 s is a plausible move. The newest fix of a sparse
+  vehicle is therefore committed one fix later than before; the tracker keeps a copy
+  of its levels as they were before its newest fix (serialised with the state).
 * **The eps ladder**: one sweep (:mod:`livematch.core.sweep`) per level. The smallest
   level alive decides, and every assignment carries its certificate: ``eps_m`` and the
   window (``window_fixes``, ``window_s``) of fixes that lie within Fréchet distance
@@ -59,7 +66,7 @@ from collections.abc import Iterator
 
 import numpy as np
 
-from livematch.core._tree_kernel import ROW_F, ROW_I
+from livematch.core._tree_kernel import F_COST, ROW_F, ROW_I
 from livematch.core.candidates import CandidateTree
 from livematch.core.events import Assignment, Commit, Event, Filtered, MatchedFix
 from livematch.core.fix import Fix
@@ -79,6 +86,16 @@ ACCEL_MPS2 = 3.0
 # From this many seconds between fixes on, the trees are kept tight between fixes.
 SPARSE_S = 5.0
 _NO_FIXES = np.empty((0, 2))  # shared by trackers that have seen no fix (never written)
+# A fix this many seconds after the fix before, from SPIKE_MIN_S to SPIKE_MAX_S, is kept
+# open to the spike test (MatchSettings.spike_cost). Closer fixes are left to the jump
+# filter, whose bound is tight at short steps. At 30 s between fixes the test lost more
+# good fixes than it caught outliers (final accuracy -0.2 to -0.8 points on simulated
+# drives of seeds other than the bench's), so it stops at 20 s.
+SPIKE_MIN_S = 5.0
+SPIKE_MAX_S = 20.0
+# The time spanned by the two steps around a tested fix at which its charge is
+# MatchSettings.spike_cost (it scales in proportion).
+SPIKE_SPAN_S = 30.0
 
 
 class Level:
@@ -130,9 +147,10 @@ class Tracker:
 
     # slots: a service holds one tracker per vehicle, and an instance dict costs more
     # than a small candidate tree
-    __slots__ = ("_view", "_weights", "buffer", "fix_n", "fix_seq0", "fix_xy", "jumps", "last",
-                 "last_commit", "last_released_t", "last_seg", "levels", "network",
-                 "next_commit", "seq", "settings", "skipped", "speed", "times", "vehicle")
+    __slots__ = ("_view", "_weights", "before", "buffer", "fix_n", "fix_seq0", "fix_xy",
+                 "jumps", "last", "last_commit", "last_released_t", "last_seg", "levels",
+                 "network", "next_commit", "seq", "settings", "skipped", "speed", "times",
+                 "vehicle")
 
     def __init__(
         self, network: RoadNetwork, vehicle: str, settings: MatchSettings | None = None
@@ -167,6 +185,7 @@ class Tracker:
         self.fix_xy: np.ndarray = _NO_FIXES
         self.fix_seq0 = 1
         self.fix_n = 0
+        self.before: _Before | None = None  # the state before the newest fix (spike test)
 
     @property
     def last_time(self) -> float | None:
@@ -193,6 +212,7 @@ class Tracker:
             tree = covering[0].tree
             self._commit_chain(tree, tree.best(self.last_seg), events, prune=covering[0],
                                settle_all=True)
+        self.before = None  # what is committed stays: no fix is dropped after this
         return events
 
     def _admit(self, fix: Fix, events: list[Event]) -> Iterator[Fix]:
@@ -240,14 +260,63 @@ class Tracker:
     # ------------------------------------------------------------------ sweep
     def _accept(self, fix: Fix, events: list[Event]) -> None:
         s = self.settings
+        prev = self.last
+        # The state before this fix, kept so that the next fix can still drop this one
+        # (the spike test); only a sparse vehicle's fixes are tested.
+        before = (self._state_before() if s.spike_cost > 0.0 and prev is not None
+                  and SPIKE_MIN_S <= fix.t - prev[0] <= SPIKE_MAX_S else None)
+        # whether the newest fix broke every level's tree (none goes on from before it)
+        broke = not any(_goes_on(lv, self.seq) for lv in self.levels)
         self.seq += 1
         seq = self.seq
         self.times[seq] = fix.t
         self._log_fix(fix.x, fix.y)
-        prev = self.last
         self.last = (fix.t, fix.x, fix.y)
         if prev is not None and fix.t > prev[0]:
             self.speed = math.hypot(fix.x - prev[1], fix.y - prev[2]) / (fix.t - prev[0])
+        dt = fix.t - prev[0] if prev is not None else 0.0
+        salvage = self._advance_levels(fix, prev, seq)
+        if self.before is not None and prev is not None:
+            straight_from = self.before.last
+            dropped = self._spike_test(fix, seq, broke, events)
+            if dropped is not None:
+                # the fix before this one was a spike: this fix now follows the one
+                # before that; it is not tested in turn (two spikes in a row are rare,
+                # and a chain of drops would bridge ever longer gaps)
+                seq, salvage = dropped
+                before = None
+                if straight_from is not None:
+                    dt = fix.t - straight_from[0]
+        self.before = before
+        deciding = next((lv for lv in self.levels if len(lv.tree)), None)
+        if deciding is None:
+            events.append(Filtered(fix.vehicle, fix.t, "no_road_nearby"))
+        else:
+            score = self._live_scores(deciding)
+            best = deciding.tree.best(self.last_seg, score)
+            seg, pos, x, y = self._hold_at_junction(deciding, best, fix, dt, score)
+            self.last_seg = int(deciding.tree.ti[best, 0])
+            events.append(Assignment(
+                self.vehicle, fix.t, seg, pos * self._view.slen[seg],
+                x, y, deciding.eps, seq - deciding.cert_seq + 1,
+                fix.t - deciding.cert_t,
+            ))
+        self._settle(seq, fix.t, dt, salvage, events, hold_newest=before is not None)
+        if prev is not None and fix.t - prev[0] >= SPARSE_S:
+            # a vehicle reporting this rarely spends most of its time idle: keep its
+            # trees without spare room (a compaction per level; decisions unchanged)
+            for level in self.levels:
+                level.tree.shrink()
+
+    def _advance_levels(
+        self, fix: Fix, prev: tuple[float, float, float] | None, seq: int
+    ) -> list[tuple[Level, CandidateTree]]:
+        """Move every level to ``fix`` (sequence number ``seq``) from the fix ``prev``.
+
+        Sweep, else bridge, else start afresh (:func:`livematch.core.sweep.advance`).
+        Returns the levels that started afresh with the trees they had before.
+        """
+        s = self.settings
         if prev is None:
             x0, y0, dt = fix.x, fix.y, 0.0
         else:
@@ -277,25 +346,103 @@ class Tracker:
                 level.tree.extend(new, {})
                 level.tree_seq = level.trim_seq = level.cert_seq = seq
                 level.cert_t = fix.t
-        deciding = next((lv for lv in self.levels if len(lv.tree)), None)
-        if deciding is None:
-            events.append(Filtered(fix.vehicle, fix.t, "no_road_nearby"))
-        else:
-            score = self._live_scores(deciding)
-            best = deciding.tree.best(self.last_seg, score)
-            seg, pos, x, y = self._hold_at_junction(deciding, best, fix, dt, score)
-            self.last_seg = int(deciding.tree.ti[best, 0])
-            events.append(Assignment(
-                self.vehicle, fix.t, seg, pos * self._view.slen[seg],
-                x, y, deciding.eps, seq - deciding.cert_seq + 1,
-                fix.t - deciding.cert_t,
-            ))
-        self._settle(seq, fix.t, dt, salvage, events)
-        if dt >= SPARSE_S:
-            # a vehicle reporting this rarely spends most of its time idle: keep its
-            # trees without spare room (a compaction per level; decisions unchanged)
-            for level in self.levels:
-                level.tree.shrink()
+        return salvage
+
+    # ------------------------------------------------------------- spike test
+    def _state_before(self) -> _Before:
+        """A copy of the matching state as it is now (before the next fix)."""
+        return _Before(self.last, self.speed, self.last_seg,
+                       [_copy_level(lv) for lv in self.levels])
+
+    def _spike_test(
+        self, fix: Fix, seq: int, broke: bool, events: list[Event]
+    ) -> tuple[int, list[tuple[Level, CandidateTree]]] | None:
+        """Decide, one fix late, whether the fix before ``fix`` was a spike; drop it if so.
+
+        The levels have just been moved to ``fix`` (sequence number ``seq``) through the
+        suspect, fix ``seq - 1``. The test leaves the suspect out and looks at what that
+        does to the fit of the path (a leave-one-out test, like the deleted-residual
+        outlier diagnostics of regression, e.g. Cook, Technometrics 1977; from memory).
+        Dropping a fix is charged ``spike_cost`` for two 15 s steps, in proportion to the
+        time the two steps span (the noise of a step's cost grows with its length), so
+        this is the likelihood-ratio test of a measurement model with a small constant
+        chance of a fix being anywhere (a Gaussian plus a uniform outlier component;
+        common practice in robust estimation, from memory).
+
+        1. Gate: at the smallest level whose tree goes on through the suspect, if the
+           best path cost rose by at most the charge over the two steps, nothing without
+           the suspect can be better by the charge: keep it (no second computation).
+        2. Otherwise the levels are also moved to ``fix`` straight from the state before
+           the suspect. At the smallest level whose tree goes on both ways, the suspect
+           is dropped when the straight way costs more than the charge less and its own
+           step cost rose by at most the charge (when ``fix`` is itself a spike, the
+           straight way, over twice the time, reaches it more easily: that must not
+           drop the good fix before it).
+        3. If no level goes on both ways: dropped when the suspect broke every tree (or
+           met no road) or the straight way's step cost rose by at most the charge, at
+           the smallest level where it goes on.
+
+        ``broke``: no level's tree went on through the suspect from before it.
+        Returns None when the suspect stays (the levels are as they were), else the
+        sequence number ``fix`` now has and the levels that started afresh in the
+        straight way. A dropped fix is reported as filtered (``spike``); its final answer
+        is interpolated along the committed path like any filtered fix's.
+        """
+        before = self.before
+        assert before is not None and before.last is not None
+        s = self.settings
+        suspect = seq - 1
+        through = self.levels
+        # the noise of a step's transition terms grows with its length: the charge is
+        # spike_cost for two 15 s steps, in proportion to the time they span
+        charge = s.spike_cost * (fix.t - before.last[0]) / SPIKE_SPAN_S
+        first = next((i for i, lv in enumerate(through)
+                      if len(lv.tree) and lv.tree_seq < suspect), -1)
+        if first >= 0 and len(before.levels[first].tree):
+            rise = _best_cost(through[first].tree) - _best_cost(before.levels[first].tree)
+            if rise <= charge:
+                return None  # the straight way cannot cost spike_cost less than this
+        kept = (self.speed, self.times[suspect])
+        self.levels = [_copy_level(lv) for lv in before.levels]
+        self.seq = suspect
+        del self.times[seq]
+        self.times[suspect] = fix.t
+        t0, x0, y0 = before.last
+        self.speed = math.hypot(fix.x - x0, fix.y - y0) / (fix.t - t0)
+        salvage = self._advance_levels(fix, before.last, suspect)
+        drop: bool | None = None
+        for i, (a, b) in enumerate(zip(through, self.levels, strict=True)):
+            if _goes_on(a, suspect) and _goes_on(b, suspect):
+                # the straight way must also be an ordinary step: when this fix is the
+                # spike, the straight way reaches it more easily (a longer time) and
+                # would wrongly drop the good fix before it
+                drop = (_best_cost(b.tree) + charge < _best_cost(a.tree)
+                        and _best_cost(b.tree) - _best_cost(before.levels[i].tree) <= charge)
+                break
+        if drop is None:
+            # no level goes on both ways: drop when the suspect broke every tree (or met
+            # no road), or when the straight way's cost rose by at most the charge
+            on = next((i for i, lv in enumerate(self.levels) if _goes_on(lv, suspect)), -1)
+            drop = on >= 0 and (broke or _best_cost(self.levels[on].tree)
+                                - _best_cost(before.levels[on].tree) <= charge)
+        if not drop:
+            self.levels = through
+            self.seq = seq
+            self.speed, self.times[suspect] = kept
+            self.times[seq] = fix.t
+            return None
+        t_suspect = kept[1]
+        # this fix takes the suspect's sequence number, so its position takes the
+        # suspect's row of the fix log (the suspect is not committed: the row is there)
+        row = suspect - self.fix_seq0
+        self.fix_xy[row, 0] = fix.x
+        self.fix_xy[row, 1] = fix.y
+        self.fix_n = row + 1
+        events.append(Filtered(fix.vehicle, t_suspect, "spike"))
+        bisect.insort(self.skipped, t_suspect)
+        self.next_commit = min(self.next_commit, suspect)
+        self.last_seg = before.last_seg
+        return suspect, salvage
 
     def _log_fix(self, x: float, y: float) -> None:
         """Keep the position of the fix just accepted (sequence number ``self.seq``)."""
@@ -382,9 +529,11 @@ class Tracker:
 
     def _settle(
         self, seq: int, t: float, dt: float, salvage: list[tuple[Level, CandidateTree]],
-        events: list[Event],
+        events: list[Event], hold_newest: bool = False,
     ) -> None:
+        """Commit what is settled. ``hold_newest``: not fix ``seq`` (the spike test may drop it)."""
         s = self.settings
+        newest = seq - 1 if hold_newest else seq
         if not self._covering():
             # The trees that covered the oldest pending fixes died this step: their best
             # candidate is the final answer for them.
@@ -401,7 +550,9 @@ class Tracker:
             for level in self._covering():
                 tree = level.tree
                 top = tree.common_ancestor(self.next_commit - 1)
-                if top >= 0 and tree.seq_of(top) >= self.next_commit:
+                if top >= 0 and tree.seq_of(top) > newest:
+                    top = tree.ancestor_at(top, newest)
+                if top >= 0 and self.next_commit <= tree.seq_of(top) <= newest:
                     self._commit_chain(tree, top, events, prune=None)
                     progressed = True
                     break
@@ -412,11 +563,11 @@ class Tracker:
             if (too_many or too_old) and covering:
                 level = covering[0]
                 tree = level.tree
-                keep = self._lag_target(seq, t)
+                keep = min(self._lag_target(seq, t), newest)
                 # fixes this dense: the best candidate by live score (see _live_scores)
                 score = self._live_scores(level) if dt < SPARSE_S else None
                 node = tree.ancestor_at(tree.best(self.last_seg, score), keep)
-                if tree.seq_of(node) >= self.next_commit:
+                if self.next_commit <= tree.seq_of(node) <= newest:
                     self._commit_chain(tree, node, events, prune=level)
         alive = [lv.tree_seq for lv in self.levels if len(lv.tree)]
         floor = min(alive) if alive else seq + 1
@@ -524,16 +675,15 @@ class Tracker:
         compacted to the rows still needed. A restored tracker continues exactly as the
         original would have. :meth:`from_bytes` also reads the older ``LMT1`` (JSON rows).
         """
-        levels = []
         arrays: list[bytes] = []
-        for lv in self.levels:
-            ti, tf, tv, live = lv.tree.packed()
-            levels.append([lv.eps, lv.tree_seq, lv.cert_seq, lv.cert_t, lv.trim_seq,
-                           len(ti), len(tv), live])
-            arrays += (ti.tobytes(), tf.tobytes(), tv.tobytes())
+        levels = _pack_levels(self.levels, arrays)
         # the fix positions a live score may still read: from the last committed fix on
         skip = min(self.fix_n, max(0, self.next_commit - 1 - self.fix_seq0))
         arrays.append(self.fix_xy[skip:self.fix_n].tobytes())
+        before = None
+        if self.before is not None:
+            b = self.before
+            before = [b.last, b.speed, b.last_seg, _pack_levels(b.levels, arrays)]
         state = {
             "vehicle": self.vehicle,
             "n_segments": self.network.n_segments,
@@ -551,6 +701,7 @@ class Tracker:
             "last_seg": self.last_seg,
             "levels": levels,
             "fixes": [self.fix_seq0 + skip, self.fix_n - skip],
+            "before": before,
         }
         header = json.dumps(state, separators=(",", ":")).encode()
         return STATE_FORMAT + zlib.compress(
@@ -590,30 +741,27 @@ class Tracker:
                 lv.tree_seq, lv.cert_seq, lv.cert_t = tree_seq, cert_seq, cert_t
                 lv.trim_seq = trim_seq
                 lv.tree = CandidateTree.from_nodes({seg: nodes[i] for seg, i in live})
+            tracker.fix_seq0 = state["seq"] + 1  # no fix positions: the score starts anew
         else:
-            for lv, (_, tree_seq, cert_seq, cert_t, trim_seq, rows, vias, live) in zip(
-                    tracker.levels, state["levels"], strict=True):
-                lv.tree_seq, lv.cert_seq, lv.cert_t = tree_seq, cert_seq, cert_t
-                lv.trim_seq = trim_seq
-                sizes = (rows * ROW_I * 4, rows * ROW_F * 8, vias * 4)
-                parts = []
-                for size in sizes:
-                    if at + size > len(rest):
-                        raise BadStateError("corrupt tracker state: candidate tree cut short")
-                    parts.append(rest[at:at + size])
-                    at += size
-                lv.tree = CandidateTree.unpacked(
-                    np.frombuffer(parts[0], np.int32).reshape(rows, ROW_I),
-                    np.frombuffer(parts[1], np.float64).reshape(rows, ROW_F),
-                    np.frombuffer(parts[2], np.int32), live)
-        tracker.seq = state["seq"]
-        # absent in older states: no fix positions, the live score starts with new fixes
-        seq0, n = state.get("fixes", (state["seq"] + 1, 0))
-        if n:
-            if fmt != STATE_FORMAT or at + 16 * n > len(rest):
+            at = _unpack_levels(tracker.levels, state["levels"], rest, 0)
+            # absent in older states: no fix positions, the live score starts with
+            # new fixes
+            seq0, n = state.get("fixes", (state["seq"] + 1, 0))
+            if at + 16 * n > len(rest):
                 raise BadStateError("corrupt tracker state: fix positions cut short")
-            tracker.fix_xy = np.frombuffer(rest[at:at + 16 * n], np.float64).reshape(n, 2).copy()
-        tracker.fix_seq0, tracker.fix_n = seq0, n
+            if n:
+                tracker.fix_xy = np.frombuffer(rest[at:at + 16 * n], np.float64).reshape(
+                    n, 2).copy()
+            tracker.fix_seq0, tracker.fix_n = seq0, n
+            at += 16 * n
+            before = state.get("before")  # absent in states written before the spike test
+            if before is not None:
+                last, speed, last_seg, packed = before
+                levels = [Level(lv.eps) for lv in tracker.levels]
+                _unpack_levels(levels, packed, rest, at)
+                tracker.before = _Before(tuple(last) if last else None, speed, last_seg,
+                                         levels)
+        tracker.seq = state["seq"]
         tracker.last = tuple(state["last"]) if state["last"] else None
         tracker.last_released_t = state["last_released_t"]
         tracker.jumps = state["jumps"]
@@ -625,6 +773,42 @@ class Tracker:
         tracker.last_seg = state["last_seg"]
         tracker.last_commit = tuple(state["last_commit"]) if state["last_commit"] else None
         return tracker
+
+
+def _pack_levels(levels: list[Level], arrays: list[bytes]) -> list[list[float | int]]:
+    """The header rows of ``levels`` for :meth:`Tracker.to_bytes`; their arrays go to ``arrays``."""
+    rows: list[list[float | int]] = []
+    for lv in levels:
+        ti, tf, tv, live = lv.tree.packed()
+        rows.append([lv.eps, lv.tree_seq, lv.cert_seq, lv.cert_t, lv.trim_seq,
+                     len(ti), len(tv), live])
+        arrays += (ti.tobytes(), tf.tobytes(), tv.tobytes())
+    return rows
+
+
+def _unpack_levels(levels: list[Level], rows: list[list[float | int]], rest: bytes,
+                   at: int) -> int:
+    """Fill ``levels`` from header ``rows`` and the arrays in ``rest`` from ``at`` on.
+
+    Returns where the next arrays start.
+    """
+    for lv, (_, tree_seq, cert_seq, cert_t, trim_seq, n_rows, n_vias, live) in zip(
+            levels, rows, strict=True):
+        lv.tree_seq, lv.cert_seq, lv.cert_t = int(tree_seq), int(cert_seq), float(cert_t)
+        lv.trim_seq = int(trim_seq)
+        nr, nv = int(n_rows), int(n_vias)
+        sizes = (nr * ROW_I * 4, nr * ROW_F * 8, nv * 4)
+        parts = []
+        for size in sizes:
+            if at + size > len(rest):
+                raise BadStateError("corrupt tracker state: candidate tree cut short")
+            parts.append(rest[at:at + size])
+            at += size
+        lv.tree = CandidateTree.unpacked(
+            np.frombuffer(parts[0], np.int32).reshape(nr, ROW_I),
+            np.frombuffer(parts[1], np.float64).reshape(nr, ROW_F),
+            np.frombuffer(parts[2], np.int32), int(live))
+    return at
 
 
 def _along(view: NetworkView, a: Node, b: Node, frac: float) -> tuple[int, float]:
@@ -658,3 +842,47 @@ def _steps(prev_seg: int, node: Node) -> list[int]:
     if not node.via and node.seg == prev_seg:
         return []
     return [*node.via, node.seg]
+
+
+class _Before:
+    """The matching state before a tracker's newest fix, kept for the spike test.
+
+    Attributes:
+        last: time and position (t, x, y) of the fix before the newest one.
+        speed: the implied speed of the step to that fix, m/s (None if none).
+        last_seg: the segment of the assignment of that fix.
+        levels: copies of the levels (trees, windows) as they were after that fix.
+    """
+
+    __slots__ = ("last", "last_seg", "levels", "speed")
+
+    def __init__(self, last: tuple[float, float, float] | None, speed: float | None,
+                 last_seg: int, levels: list[Level]) -> None:
+        self.last = last
+        self.speed = speed
+        self.last_seg = last_seg
+        self.levels = levels
+
+
+def _copy_level(level: Level) -> Level:
+    """A copy of ``level`` whose tree holds only the rows still needed."""
+    out = Level(level.eps)
+    ti, tf, tv, live = level.tree.packed()  # already copies: no second copy
+    tree = out.tree = CandidateTree()
+    tree.ti, tree.tf, tree.tv = ti, tf, tv
+    tree.n = tree.hi = len(ti)
+    tree.nv = len(tv)
+    tree.lo = tree.n - live
+    out.tree_seq, out.cert_seq, out.cert_t = level.tree_seq, level.cert_seq, level.cert_t
+    out.trim_seq = level.trim_seq
+    return out
+
+
+def _best_cost(tree: CandidateTree) -> float:
+    """The lowest path cost among the live states of a non-empty tree."""
+    return float(tree.tf[tree.lo:tree.hi, F_COST].min())
+
+
+def _goes_on(level: Level, seq: int) -> bool:
+    """Whether ``level`` is alive with a tree that began before fix ``seq``."""
+    return len(level.tree) > 0 and level.tree_seq < seq
