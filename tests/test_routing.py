@@ -286,6 +286,30 @@ def test_bridge_step_dead_end_in_and_out() -> None:
                                                        150.0, 100.0]
 
 
+def test_connect_dead_end_joins() -> None:
+    """``connect`` on the cul-de-sac: stretches disagreeing about the direction at a shape
+    point are joined where they meet (the last turn is not checked, as before), and a
+    route back out of the dead end past the vertices already driven is found."""
+    net = dead_end()
+    view = view_of(net)
+
+    def spur(y0: float, y1: float) -> int:
+        """The cul-de-sac's segment from y0 to y1 (x = 500)."""
+        return next(s for s in range(net.n_segments)
+                    if view.vx[view.sf[s]] == 500.0 == view.vx[view.st[s]]
+                    and view.vy[view.sf[s]] == y0 and view.vy[view.st[s]] == y1)
+
+    mid = spur(100.0, 150.0)
+    for search in (route_searches, route_searches_reference):
+        assert connect(view, mid, 0.5, view.twin[mid], 0.5, 1000.0, search) == []
+        back = connect(view, mid, 0.5, spur(50.0, 0.0), 0.5, 1000.0, search)
+        assert back is not None
+        assert [view.vy[view.st[g]] for g in back] == [200.0, 250.0, 300.0, 250.0, 200.0,
+                                                       150.0, 100.0, 50.0]
+        # 25 + 150 up, 250 down, 25 along: 450 m, one metre short is too short
+        assert connect(view, mid, 0.5, spur(50.0, 0.0), 0.5, 449.0, search) is None
+
+
 def test_route_searches_large_search_grows_heap() -> None:
     """A search over a whole 9 x 9 grid (far more heap entries than the kernel's first
     allocation) and routes to every vertex: identical."""
