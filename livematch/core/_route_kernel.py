@@ -7,36 +7,42 @@ kernel reproduces :func:`livematch.core.routing.bounded_dijkstra` followed by
 same sums in the same order), so every distance is bit-identical to the reference's.
 Arrays are never reallocated inside the kernel: a loop that may rebind an array makes
 numba count references on every pass, which made an early version of this kernel about
-twenty times slower (some 400 against 20-70 ns per settled vertex).
+twenty times slower (some 400 against 20-70 ns per settled state).
 
-Order of the search. The reference's heap holds tuples ``(dist, tag, vertex, pred,
-seg_in)``. No two of them are equal: an entry pushed from a popped vertex carries the
-segment it leaves by (``pred``), and a vertex is popped once; a source entry carries
-``pred`` -1 and its own segment. Those keys are therefore a total order (distances are
-never NaN: lengths and offsets are finite and >= 0), and any correct binary heap ordering
-by the same tuple pops them in the same sequence as :mod:`heapq`; the heap below compares
-the five fields lexicographically, exactly as Python compares the tuples.
+The search is edge-based, as the reference: a state is a directed segment, labelled with
+the route length to its tail vertex; each segment is settled once, a vertex may be
+passed more than once.
 
-Stopping early. A vertex's label is final when it is popped (every later entry has a key
-at least as large), and so are the labels on its route, popped before it. The kernel is
-only asked about a few vertices (``ends``), so each search stops as soon as all of them
-are popped: the answer for them is the reference's, the rest is never looked at.
+Order of the search. The reference's heap holds tuples ``(dist, tag, seg, pred)``. An
+entry pushed from a popped segment carries it as ``pred``, and a segment is popped once
+and pushes each of its successors once; a source's entries carry ``pred`` -1 and their
+source's tag. Two entries can only have equal keys when two sources share a tag and a
+vertex and have equal distances, and then they are the same entry in every field. Those
+keys are therefore a total order up to identical entries (distances are never NaN:
+lengths and offsets are finite and >= 0), and any correct binary heap ordering by the
+same tuple pops them in the same sequence as :mod:`heapq`; the heap below compares the
+four fields lexicographically, exactly as Python compares the tuples.
+
+Stopping early. A segment's label is final when it is popped (every later entry has a
+key at least as large), and so are the labels on its route, popped before it. The kernel
+is only asked about a few segments (``ends``), so each search stops as soon as all of
+them are popped: the answer for them is the reference's, the rest is never looked at.
 
 Arrays (the network's are those of :class:`livematch.core.fastsweep.SweepArrays`):
 
 ``netf`` (float64), read-only: ``vx[V] | vy[V] | slen[E]``.
 ``neti`` (int64), read-only: ``sf[E] | st[E] | twin[E] | out_seg[E] | out_ptr[V + 1]
     | turn_back_ok[V]``.
-``flag`` (uint8[V]), ``lab_f`` (float64[V]), ``lab_i`` (int32[3 V]): per-network scratch.
-    ``flag`` bit 1: vertex popped in this search; bit 2: vertex is one of the ends. Every
-    bit is cleared again before the kernel returns. ``lab_f`` holds a popped vertex's
-    distance; ``lab_i`` its source tag, its entering segment and the list of popped
-    vertices (to clear their bits).
-``hf`` (float64[2 H]), ``hi`` (int64[5 H]): per-network heap scratch for ``H`` entries:
-    ``heap_d[H] | shift[H]`` and ``heap[H] | entry[4 H]`` (an entry is ``tag, vertex,
-    pred, seg_in``; the heap holds entry ids and their distances). A search pushes at
-    most its sources plus one entry per segment, so ``H`` = sources + segments always
-    suffices; the caller starts smaller and grows on ``OVERFLOW``.
+``flag`` (uint8[E]), ``lab_f`` (float64[E]), ``lab_i`` (int32[3 E]): per-network scratch.
+    ``flag`` bit 1: segment popped in this search; bit 2: segment is one of the ends.
+    Every bit is cleared again before the kernel returns. ``lab_f`` holds a popped
+    segment's distance; ``lab_i`` its source tag, the segment before it on its route and
+    the list of popped segments (to clear their bits).
+``hf`` (float64[2 H]), ``hi`` (int64[4 H]): per-network heap scratch for ``H`` entries:
+    ``heap_d[H] | shift[H]`` and ``heap[H] | entry[3 H]`` (an entry is ``tag, seg,
+    pred``; the heap holds entry ids and their distances). A search pushes at most its
+    sources' out segments plus one entry per turn (a pair of consecutive segments), so
+    the caller starts smaller and grows on ``OVERFLOW``.
 ``vias`` (int64[B]): output, the routes' segments.
 ``req`` (float64), per call: ``limit, n_ends, ends[n_ends], n_searches``, then per search
     ``n_sources`` and per source ``vertex, length, tag, segment, shift`` where ``shift``
@@ -64,19 +70,42 @@ _DONE = 1
 _END = 2
 INFO_STRIDE = 4
 OVERFLOW = -1
-ENTRY_STRIDE = 4  # a heap entry's ints: tag, vertex, pred, seg_in
+ENTRY_STRIDE = 3  # a heap entry's ints: tag, seg, pred
 
 
 @_jit
-def _tie_less(t1: int, v1: int, p1: int, s1: int, t2: int, v2: int, p2: int, s2: int) -> bool:
-    """``(t1, v1, p1, s1) < (t2, v2, p2, s2)``: the rest of two keys of equal distance."""
+def _less(d1: float, t1: int, s1: int, p1: int, d2: float, t2: int, s2: int, p2: int) -> bool:
+    """``(d1, t1, s1, p1) < (d2, t2, s2, p2)``, as Python compares the tuples."""
+    if d1 != d2:
+        return d1 < d2
     if t1 != t2:
         return t1 < t2
-    if v1 != v2:
-        return v1 < v2
-    if p1 != p2:
-        return p1 < p2
-    return s1 < s2
+    if s1 != s2:
+        return s1 < s2
+    return p1 < p2
+
+
+@_jit
+def _push(heap_d: np.ndarray, heap: np.ndarray, e_i: np.ndarray, e_sh: np.ndarray,
+          n_heap: int, e: int, d: float, tag: int, seg: int, pred: int, shift: float) -> None:
+    """Store entry ``e`` = ``(d, tag, seg, pred)`` and sift it up a heap of ``n_heap``."""
+    e_sh[e] = shift
+    e_i[3 * e] = tag
+    e_i[3 * e + 1] = seg
+    e_i[3 * e + 2] = pred
+    c = n_heap
+    while c > 0:
+        p = (c - 1) >> 1
+        hp = heap[p]
+        hd = heap_d[p]
+        if _less(d, tag, seg, pred, hd, e_i[3 * hp], e_i[3 * hp + 1], e_i[3 * hp + 2]):
+            heap[c] = hp
+            heap_d[c] = hd
+            c = p
+        else:
+            break
+    heap[c] = e
+    heap_d[c] = d
 
 
 @_jit
@@ -84,27 +113,27 @@ def route_kernel(
     netf: np.ndarray, neti: np.ndarray, flag: np.ndarray, lab_f: np.ndarray,
     lab_i: np.ndarray, req: np.ndarray, hf: np.ndarray, hi: np.ndarray, vias: np.ndarray,
 ) -> tuple[np.ndarray, np.ndarray, int]:
-    """Bounded multi-source Dijkstra searches and the routes to ``ends`` (see module doc)."""
-    n_v = flag.shape[0]
-    n_e = netf.shape[0] - 2 * n_v
+    """Bounded multi-source edge-based Dijkstra searches and the routes to ``ends``."""
+    n_e = flag.shape[0]
+    n_v = (netf.shape[0] - n_e) // 2
     slen0 = 2 * n_v
     st0 = n_e
     twin0 = 2 * n_e
     oseg0 = 3 * n_e
     optr0 = 4 * n_e
     ok0 = 4 * n_e + n_v + 1
-    src0 = n_v  # lab_i: source tag of each popped vertex
-    pred0 = 2 * n_v  # lab_i: entering segment of each popped vertex; lab_i[:n_v]: popped list
+    src0 = n_e  # lab_i: source tag of each popped segment
+    pred0 = 2 * n_e  # lab_i: the segment before each popped one; lab_i[:n_e]: popped list
 
     limit = req[0]
     n_ends = int(req[1])
     ends = np.empty(n_ends, dtype=np.int64)
     distinct = 0
     for k in range(n_ends):
-        v = int(req[2 + k])
-        ends[k] = v
-        if not flag[v] & _END:
-            flag[v] = _END
+        g = int(req[2 + k])
+        ends[k] = g
+        if not flag[g] & _END:
+            flag[g] = _END
             distinct += 1
     pos = 2 + n_ends
     n_searches = int(req[pos])
@@ -116,8 +145,8 @@ def route_kernel(
     n_via = 0
     overflow = False
 
-    # Heap entries (ids) hold a key (dist, tag, vertex, pred, seg_in) and the tag's shift;
-    # the heap array keeps each entry's distance beside its id, so that most comparisons
+    # Heap entries (ids) hold a key (dist, tag, seg, pred) and the tag's shift; the heap
+    # array keeps each entry's distance beside its id, so that most comparisons
     # (distances differ) read no entry at all.
     cap_h = hf.shape[0] // 2
     heap_d = hf[:cap_h]
@@ -139,34 +168,20 @@ def route_kernel(
             seg = int(req[pos + 3])
             shift = req[pos + 4]
             pos += 5
-            if not length <= limit:
+            if not length <= limit or overflow:
                 continue
-            if n_ent == cap_h:
-                overflow = True
-                break
-            e = n_ent
-            n_ent += 1
+            back = neti[twin0 + seg] if seg >= 0 and neti[ok0 + vertex] == 0 else -1
             d = length + shift
-            e_sh[e] = shift
-            e_i[4 * e] = tag
-            e_i[4 * e + 1] = vertex
-            e_i[4 * e + 2] = -1
-            e_i[4 * e + 3] = seg
-            c = n_heap
-            n_heap += 1
-            while c > 0:  # sift up
-                p = (c - 1) >> 1
-                hd = heap_d[p]
-                if d < hd or (d == hd and _tie_less(
-                        tag, vertex, -1, seg, e_i[4 * heap[p]], e_i[4 * heap[p] + 1],
-                        e_i[4 * heap[p] + 2], e_i[4 * heap[p] + 3])):
-                    heap[c] = heap[p]
-                    heap_d[c] = hd
-                    c = p
-                else:
+            for r in range(neti[optr0 + vertex], neti[optr0 + vertex + 1]):
+                f = neti[oseg0 + r]
+                if f == back:
+                    continue
+                if n_ent == cap_h:
+                    overflow = True
                     break
-            heap[c] = e
-            heap_d[c] = d
+                _push(heap_d, heap, e_i, e_sh, n_heap, n_ent, d, tag, f, -1, shift)
+                n_ent += 1
+                n_heap += 1
 
         while n_heap > 0 and remaining > 0 and not overflow:
             top = heap[0]
@@ -176,6 +191,9 @@ def route_kernel(
                 # move the last entry to the root and sift it down
                 e = heap[n_heap]
                 d = heap_d[n_heap]
+                et = e_i[3 * e]
+                es = e_i[3 * e + 1]
+                ep = e_i[3 * e + 2]
                 c = 0
                 while True:
                     a = 2 * c + 1
@@ -183,103 +201,78 @@ def route_kernel(
                         break
                     b = a + 1
                     if b < n_heap:
-                        da = heap_d[a]
-                        db = heap_d[b]
-                        if db < da or (db == da and _tie_less(
-                                e_i[4 * heap[b]], e_i[4 * heap[b] + 1], e_i[4 * heap[b] + 2],
-                                e_i[4 * heap[b] + 3], e_i[4 * heap[a]], e_i[4 * heap[a] + 1],
-                                e_i[4 * heap[a] + 2], e_i[4 * heap[a] + 3])):
+                        ha = heap[a]
+                        hb = heap[b]
+                        if _less(heap_d[b], e_i[3 * hb], e_i[3 * hb + 1], e_i[3 * hb + 2],
+                                 heap_d[a], e_i[3 * ha], e_i[3 * ha + 1], e_i[3 * ha + 2]):
                             a = b
+                    ha = heap[a]
                     da = heap_d[a]
-                    if da < d or (da == d and _tie_less(
-                            e_i[4 * heap[a]], e_i[4 * heap[a] + 1], e_i[4 * heap[a] + 2],
-                            e_i[4 * heap[a] + 3], e_i[4 * e], e_i[4 * e + 1], e_i[4 * e + 2],
-                            e_i[4 * e + 3])):
-                        heap[c] = heap[a]
+                    if _less(da, e_i[3 * ha], e_i[3 * ha + 1], e_i[3 * ha + 2],
+                             d, et, es, ep):
+                        heap[c] = ha
                         heap_d[c] = da
                         c = a
                     else:
                         break
                 heap[c] = e
                 heap_d[c] = d
-            v = e_i[4 * top + 1]
-            if flag[v] & _DONE:
+            g = e_i[3 * top + 1]
+            if flag[g] & _DONE:
                 continue
-            flag[v] = flag[v] | _DONE
-            lab_i[n_done] = v
+            flag[g] = flag[g] | _DONE
+            lab_i[n_done] = g
             n_done += 1
-            tag = e_i[4 * top]
-            seg_in = e_i[4 * top + 3]
-            lab_f[v] = dist
-            lab_i[src0 + v] = tag
-            lab_i[pred0 + v] = e_i[4 * top + 2]
-            if flag[v] & _END:
+            tag = e_i[3 * top]
+            lab_f[g] = dist
+            lab_i[src0 + g] = tag
+            lab_i[pred0 + g] = e_i[3 * top + 2]
+            if flag[g] & _END:
                 remaining -= 1
                 if remaining == 0:
                     break
-            back = neti[twin0 + seg_in] if seg_in >= 0 else -1
             shift = e_sh[top]
-            cap = limit + shift
-            ok = neti[ok0 + v] != 0
+            nd = dist + netf[slen0 + g]
+            if not nd <= limit + shift:
+                continue
+            v = neti[st0 + g]
+            back = neti[twin0 + g] if neti[ok0 + v] == 0 else -1
             for r in range(neti[optr0 + v], neti[optr0 + v + 1]):
                 f = neti[oseg0 + r]
-                if f == back and not ok:
+                if f == back or flag[f] & _DONE:
                     continue
-                w = neti[st0 + f]
-                nd = dist + netf[slen0 + f]
-                if nd <= cap and not flag[w] & _DONE:
-                    if n_ent == cap_h:
-                        overflow = True
-                        break
-                    e = n_ent
-                    n_ent += 1
-                    e_sh[e] = shift
-                    e_i[4 * e] = tag
-                    e_i[4 * e + 1] = w
-                    e_i[4 * e + 2] = f
-                    e_i[4 * e + 3] = f
-                    c = n_heap
-                    n_heap += 1
-                    while c > 0:  # sift up
-                        p = (c - 1) >> 1
-                        hd = heap_d[p]
-                        if nd < hd or (nd == hd and _tie_less(
-                                tag, w, f, f, e_i[4 * heap[p]], e_i[4 * heap[p] + 1],
-                                e_i[4 * heap[p] + 2], e_i[4 * heap[p] + 3])):
-                            heap[c] = heap[p]
-                            heap_d[c] = hd
-                            c = p
-                        else:
-                            break
-                    heap[c] = e
-                    heap_d[c] = nd
+                if n_ent == cap_h:
+                    overflow = True
+                    break
+                _push(heap_d, heap, e_i, e_sh, n_heap, n_ent, nd, tag, f, g, shift)
+                n_ent += 1
+                n_heap += 1
 
         # the answer for each end reached: its label and the route back to its source
         for k in range(n_ends):
-            v = ends[k]
-            if overflow or not flag[v] & _DONE:
+            g = ends[k]
+            if overflow or not flag[g] & _DONE:
                 continue
             n = 0
-            u = v
-            while lab_i[pred0 + u] >= 0:
+            u = lab_i[pred0 + g]
+            while u >= 0:
                 n += 1
-                u = neti[lab_i[pred0 + u]]  # the tail vertex sf of the entering segment
+                u = lab_i[pred0 + u]
             if n_via + n > vias.shape[0]:
                 overflow = True
                 continue
-            out_d[n_out] = lab_f[v]
+            out_d[n_out] = lab_f[g]
             out_i[INFO_STRIDE * n_out] = j * n_ends + k
-            out_i[INFO_STRIDE * n_out + 1] = lab_i[src0 + v]
+            out_i[INFO_STRIDE * n_out + 1] = lab_i[src0 + g]
             out_i[INFO_STRIDE * n_out + 2] = n_via
             out_i[INFO_STRIDE * n_out + 3] = n
             n_out += 1
-            u = v
+            u = lab_i[pred0 + g]
             i = n_via + n
-            while lab_i[pred0 + u] >= 0:
+            while u >= 0:
                 i -= 1
-                f = lab_i[pred0 + u]
-                vias[i] = f
-                u = neti[f]
+                vias[i] = u
+                u = lab_i[pred0 + u]
             n_via += n
         for q in range(n_done):
             u = lab_i[q]

@@ -8,10 +8,14 @@ size of the network.
 With fixes 15-30 s apart every step is bridged, several searches per eps level, so the
 searches are on the hot path of a sparse vehicle. :func:`bounded_dijkstra` and
 :func:`route_segments` are the pure-Python definition; :func:`route_searches` runs the
-same searches compiled (``_route_kernel``, numba) and answers only for the few vertices
+same searches compiled (``_route_kernel``, numba) and answers only for the few segments
 the caller asks about, with bit-identical distances, the same source and the same route
 (``tests/test_routing.py`` compares the two on the OpenStreetMap extracts).
 :func:`route_searches_reference` is the same interface on the pure-Python routines.
+
+The searches are edge-based (a state is the directed segment entered), not vertex-based:
+a vehicle that drives into a dead end or a short spur and back out between two fixes
+passes some vertices twice, which a search settling each vertex once cannot route.
 """
 
 from __future__ import annotations
@@ -35,10 +39,10 @@ Search = tuple[list[Source], list[float] | None]
 
 @dataclass(frozen=True, slots=True)
 class Reach:
-    """How a vertex was reached: route length, which source, and the segment that entered it.
+    """How a segment was entered: route length to its tail, which source, the segment before.
 
-    ``pred`` is the segment entering the vertex on the shortest route, or -1 when the
-    vertex is the source's own head vertex.
+    ``pred`` is the segment driven just before on the shortest route, or -1 when the
+    segment leaves the source's own head vertex.
     """
 
     dist: float
@@ -52,26 +56,32 @@ def bounded_dijkstra(
     limit: float,
     offsets: list[float] | None = None,
 ) -> dict[int, Reach]:
-    """Multi-source Dijkstra over vertices, stopping at route length ``limit`` metres.
+    """Multi-source Dijkstra over directed segments, stopping at route length ``limit`` m.
 
     Args:
         view: the network view.
         sources: ``(vertex, initial_length, source_tag, entering_segment)`` tuples: the
             search starts at ``vertex`` having already driven ``initial_length`` metres
-            along ``entering_segment`` (needed to forbid an illegal U-turn there).
+            along ``entering_segment`` (-1: none; needed to forbid an illegal U-turn there).
         limit: the longest route considered, metres.
         offsets: per source tag, a head start added to its labels (metres) and not
             counted against ``limit``: with a candidate's path cost converted to metres,
-            every vertex is labelled with the source minimising cost plus route length.
+            every segment is labelled with the source minimising cost plus route length.
             ``Reach.dist`` then includes the offset.
 
     Returns:
-        The vertices reached within ``limit``, each with its :class:`Reach`.
+        The segments entered within ``limit`` (their tail vertex reached by a route of at
+        most ``limit`` metres from which turning into them is allowed), each with its
+        :class:`Reach`; ``dist`` is the route length up to the segment's tail.
 
-    A U-turn (leaving a vertex on the twin of the segment that entered it) is allowed
-    only where ``view.turn_back_ok`` says so (dead ends and intersections).
+    The search is edge-based: its states are the segments entered, each settled once, so
+    a route may pass a vertex more than once (into a dead end and back out past the
+    vertices it came by). A U-turn (leaving a vertex on the twin of the segment that
+    entered it) is allowed only where ``view.turn_back_ok`` says so (dead ends and
+    intersections).
 
-    Example (a 100 m segment and its twin; no source reaches nothing):
+    Example (a 100 m segment and its twin: from the tail heading east, the twin is entered
+    after a U-turn at the dead end; no source reaches nothing):
         >>> from livematch.core.build import Road, network_from_roads
         >>> from livematch.core.view import view_of
         >>> view = view_of(network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)]))
@@ -81,55 +91,58 @@ def bounded_dijkstra(
         {}
     """
     done: dict[int, Reach] = {}
-    heap: list[tuple[float, int, int, int, int]] = []
+    # entries (distance to the segment's tail, tag, segment, segment before); the label
+    # is the tail's, so the bound and the sums are those of a vertex search, shifted by
+    # one segment: the same floating-point additions in the same order
+    heap: list[tuple[float, int, int, int]] = []
     shift = offsets or [0.0] * (1 + max((s[2] for s in sources), default=0))
+    out, st, slen, twin, ok = view.out, view.st, view.slen, view.twin, view.turn_back_ok
     for vertex, length, tag, seg in sources:
         if length <= limit:
-            heapq.heappush(heap, (length + shift[tag], tag, vertex, -1, seg))
-    out, st, slen, twin, ok = view.out, view.st, view.slen, view.twin, view.turn_back_ok
+            back = twin[seg] if seg >= 0 and not ok[vertex] else -1
+            for f in out[vertex]:
+                if f != back:
+                    heapq.heappush(heap, (length + shift[tag], tag, f, -1))
     while heap:
-        dist, tag, v, pred, seg_in = heapq.heappop(heap)
-        if v in done:
+        dist, tag, g, pred = heapq.heappop(heap)
+        if g in done:
             continue
-        done[v] = Reach(dist, tag, pred)
-        back = twin[seg_in] if seg_in >= 0 else -1
-        cap = limit + shift[tag]
+        done[g] = Reach(dist, tag, pred)
+        v = st[g]
+        nd = dist + slen[g]
+        if nd > limit + shift[tag]:
+            continue
+        back = twin[g] if not ok[v] else -1
         for f in out[v]:
-            if f == back and not ok[v]:
-                continue
-            w = st[f]
-            nd = dist + slen[f]
-            if nd <= cap and w not in done:
-                heapq.heappush(heap, (nd, tag, w, f, f))
+            if f != back and f not in done:
+                heapq.heappush(heap, (nd, tag, f, g))
     return done
 
 
-def route_segments(view: NetworkView, reached: dict[int, Reach], vertex: int) -> list[int]:
-    """The segments of the shortest route ending at ``vertex``, in driving order.
+def route_segments(view: NetworkView, reached: dict[int, Reach], segment: int) -> list[int]:
+    """The segments of the shortest route entering ``segment``, in driving order.
 
-    The source's own segment is not included.
+    Neither the source's own segment nor ``segment`` itself is included.
     """
     segs: list[int] = []
-    v = vertex
-    while True:
-        r = reached[v]
-        if r.pred < 0:
-            break
-        segs.append(r.pred)
-        v = view.sf[r.pred]
+    g = reached[segment].pred
+    while g >= 0:
+        segs.append(g)
+        g = reached[g].pred
     segs.reverse()
     return segs
 
 
 class Arrival(NamedTuple):
-    """How one vertex was reached by a search: :class:`Reach` with the route spelled out.
+    """How one segment was entered by a search: :class:`Reach` with the route spelled out.
 
     Attributes:
-        dist: route length in metres, the source's offset included (``Reach.dist``).
+        dist: route length in metres to the segment's tail, the source's offset included
+            (``Reach.dist``).
         source: the tag of the source the route starts from.
-        segs: the route's segments in driving order, the source's own segment not
-            included (:func:`route_segments`); empty when the vertex is the source's own
-            head vertex.
+        segs: the route's segments in driving order, neither the source's own segment nor
+            the segment entered included (:func:`route_segments`); empty when the segment
+            leaves the source's own head vertex.
     """
 
     dist: float
@@ -149,20 +162,22 @@ RouteSearch = Callable[[NetworkView, Sequence[Search], float, list[int]],
 def route_searches_reference(
     view: NetworkView, searches: Sequence[Search], limit: float, ends: list[int]
 ) -> list[list[Arrival | None]]:
-    """Run bounded searches and report how each of the vertices ``ends`` was reached.
+    """Run bounded searches and report how each of the segments ``ends`` was entered.
 
     Args:
         view: the network view.
         searches: per search, the sources and the offsets of :func:`bounded_dijkstra`.
         limit: the longest route considered (metres), for every search.
-        ends: the vertices to report on (repeats allowed).
+        ends: the segments to report on (repeats allowed).
 
     Returns:
-        Per search, per end vertex, its :class:`Arrival` or None when the search did not
-        reach it. This is the pure-Python definition: :func:`bounded_dijkstra` and
+        Per search, per end segment, its :class:`Arrival` (the route to the segment's tail
+        vertex from which turning into it is allowed) or None when the search did not
+        enter it. This is the pure-Python definition: :func:`bounded_dijkstra` and
         :func:`route_segments`.
 
-    Example (a 100 m road both ways; vertex 1 is reached, nothing from no source):
+    Example (a 100 m road both ways; its way back, segment 1, is entered after 100 m
+    and a U-turn at the dead end; nothing from no source):
         >>> from livematch.core.build import Road, network_from_roads
         >>> from livematch.core.view import view_of
         >>> view = view_of(network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)]))
@@ -173,10 +188,10 @@ def route_searches_reference(
     for sources, offsets in searches:
         reached = bounded_dijkstra(view, sources, limit, offsets)
         row: list[Arrival | None] = []
-        for v in ends:
-            r = reached.get(v)
+        for seg in ends:
+            r = reached.get(seg)
             row.append(None if r is None else
-                       Arrival(r.dist, r.source, tuple(route_segments(view, reached, v))))
+                       Arrival(r.dist, r.source, tuple(route_segments(view, reached, seg))))
         answer.append(row)
     return answer
 
@@ -184,7 +199,7 @@ def route_searches_reference(
 class RouteArrays:
     """The compiled search's arrays for one network.
 
-    The network's arrays are shared with the sweep kernel; the per-vertex scratch is
+    The network's arrays are shared with the sweep kernel; the per-segment scratch is
     reused from call to call, so calls on one network must not run concurrently (as for
     the sweep kernel; the daemon runs every tracker on one event loop).
     """
@@ -195,12 +210,12 @@ class RouteArrays:
         from livematch.core.fastsweep import sweep_arrays  # imports sweep, which imports us
 
         arrays = sweep_arrays(view)
-        n_v = view.network.n_vertices
+        n_e = view.network.n_segments
         self.netf: npt.NDArray[np.float64] = arrays.netf
         self.neti: npt.NDArray[np.int64] = arrays.neti
-        self.flag: npt.NDArray[np.uint8] = np.zeros(n_v, dtype=np.uint8)
-        self.lab_f: npt.NDArray[np.float64] = np.zeros(n_v, dtype=np.float64)
-        self.lab_i: npt.NDArray[np.int32] = np.zeros(3 * n_v, dtype=np.int32)
+        self.flag: npt.NDArray[np.uint8] = np.zeros(n_e, dtype=np.uint8)
+        self.lab_f: npt.NDArray[np.float64] = np.zeros(n_e, dtype=np.float64)
+        self.lab_i: npt.NDArray[np.int32] = np.zeros(3 * n_e, dtype=np.int32)
         self.hf: npt.NDArray[np.float64] = np.empty(0)
         self.hi: npt.NDArray[np.int64] = np.empty(0, dtype=np.int64)
         self.vias: npt.NDArray[np.int64] = np.empty(0, dtype=np.int64)
@@ -212,7 +227,7 @@ class RouteArrays:
         Also the way to test the growth path: start with tiny capacities.
         """
         self.hf = np.empty(2 * entries)
-        self.hi = np.empty(5 * entries, dtype=np.int64)
+        self.hi = np.empty((1 + _rk.ENTRY_STRIDE) * entries, dtype=np.int64)
         self.vias = np.empty(vias, dtype=np.int64)
 
     def grow(self) -> None:
@@ -222,7 +237,7 @@ class RouteArrays:
 
 _ATTR = "_route_arrays"  # where the per-network arrays live on the RoadNetwork object
 # Initial capacities (heap entries, route segments), doubled on overflow. A bridged step
-# at 15-30 s on a city network settles a few hundred vertices per search.
+# at 15-30 s on a city network settles a few hundred segments per search.
 _START_ENTRIES = 4096
 _START_VIA = 8192
 
@@ -243,7 +258,7 @@ def route_searches(
     """:func:`route_searches_reference`, compiled: same arguments, same answer.
 
     All the searches run in one call of the kernel, each stopping as soon as every end
-    vertex is settled (their labels are final then; see ``_route_kernel``).
+    segment is settled (their labels are final then; see ``_route_kernel``).
 
     Example (as for the reference):
         >>> from livematch.core.build import Road, network_from_roads
@@ -291,6 +306,12 @@ def connect(
     route from the head of ``from_seg`` to the tail of ``to_seg`` no longer than
     ``limit`` metres in all. ``search`` is :func:`route_searches` or its reference.
 
+    The route arrives at the tail of ``to_seg`` by any segment: the last turn, into
+    ``to_seg``, is not checked (as it never was). Two committed stretches that disagree
+    about the direction are then joined where they meet, not by an excursion to the next
+    place the network allows a U-turn (on the simulated drives of bench/accuracy.py such
+    excursions added segments the vehicle never drove).
+
     Example (a 100 m road both ways: from 30 m along it to 20 m along the way back):
         >>> from livematch.core.build import Road, network_from_roads
         >>> from livematch.core.view import view_of
@@ -305,10 +326,19 @@ def connect(
     start = view.st[from_seg]
     head_left = (1.0 - from_pos) * view.slen[from_seg]
     tail = view.sf[to_seg]
-    r = search(view, [([(start, head_left, 0, from_seg)], None)], limit, [tail])[0][0]
-    if r is None or r.dist + to_pos * view.slen[to_seg] > limit:
+    rest = to_pos * view.slen[to_seg]
+    if start == tail:
+        return [] if head_left + rest <= limit else None
+    # the search enters segments; the tail is reached at the head of one entering it
+    into = view.network.in_segments(tail).tolist()
+    found = search(view, [([(start, head_left, 0, from_seg)], None)], limit, into)[0]
+    best: tuple[float, int, Arrival] | None = None
+    for seg, r in zip(into, found, strict=True):
+        if r is not None and (best is None or (r.dist + view.slen[seg], seg) < best[:2]):
+            best = (r.dist + view.slen[seg], seg, r)
+    if best is None or best[0] + rest > limit:
         return None
-    return list(r.segs)
+    return [*best[2].segs, best[1]]
 
 
 def warm_up() -> None:

@@ -384,8 +384,9 @@ def bridge_step(
     own = [0.0] * len(nodes)
     for i in ranked[:BRIDGE_OWN_SEARCHES] if len(nodes) > 1 else ():
         searches.append(([sources[i]], own))
-    # one call for every search, answering for the targets' tail vertices only
-    found = search(view, searches, limit, [view.sf[seg] for seg in targets])
+    # one call for every search, answering for the targets only (each entered by a route
+    # that may turn into it: U-turns only where the network allows them)
+    found = search(view, searches, limit, targets)
     paces = [pace(view, n, ctx.t) for n in nodes] if ctx.pace_cost > 0.0 else [-1.0] * len(nodes)
     new: dict[int, Node] = {}
     for k, seg in enumerate(targets):
@@ -403,11 +404,7 @@ def bridge_step(
             r = arrivals[k]
             if r is None or r.dist - shift[r.source] + lo * view.slen[seg] > limit:
                 continue
-            via = r.segs
-            entering = via[-1] if via else nodes[r.source].seg
-            if seg == view.twin[entering] and not view.turn_back_ok[a]:
-                continue
-            _offer(new, ctx, seg, lo, hi, nodes[r.source], via, -1.0, paces[r.source])
+            _offer(new, ctx, seg, lo, hi, nodes[r.source], r.segs, -1.0, paces[r.source])
     return new
 
 
