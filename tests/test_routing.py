@@ -18,7 +18,7 @@ from __future__ import annotations
 import importlib.resources
 import itertools
 from collections.abc import Sequence
-from functools import cache
+from functools import cache, partial
 
 import networkx as nx
 import numpy as np
@@ -230,6 +230,13 @@ def test_route_searches_degenerate_requests() -> None:
     assert far[0][1] == far[0][2] is not None and far[0][3] is None
 
 
+def _spur(net: RoadNetwork, view: NetworkView, y0: float, y1: float) -> int:
+    """The cul-de-sac's segment of ``dead_end()`` from y0 to y1 (x = 500)."""
+    return next(s for s in range(net.n_segments)
+                if view.vx[view.sf[s]] == 500.0 == view.vx[view.st[s]]
+                and view.vy[view.sf[s]] == y0 and view.vy[view.st[s]] == y1)
+
+
 def test_route_searches_u_turn_only_where_allowed() -> None:
     """A U-turn at a dead end is routed; in the middle of a road (a plain shape point) it
     is not. The search is edge-based, so the way back over vertices it has passed already
@@ -237,11 +244,7 @@ def test_route_searches_u_turn_only_where_allowed() -> None:
     net = dead_end()
     view = view_of(net)
 
-    def spur(y0: float, y1: float) -> int:
-        """The cul-de-sac's segment from y0 to y1 (x = 500)."""
-        return next(s for s in range(net.n_segments)
-                    if view.vx[view.sf[s]] == 500.0 == view.vx[view.st[s]]
-                    and view.vy[view.sf[s]] == y0 and view.vy[view.st[s]] == y1)
+    spur = partial(_spur, net, view)
 
     up, mid = spur(250.0, 300.0), spur(100.0, 150.0)
     down_tip, down_mid, down_below = spur(300.0, 250.0), spur(150.0, 100.0), spur(100.0, 50.0)
@@ -293,11 +296,7 @@ def test_connect_dead_end_joins() -> None:
     net = dead_end()
     view = view_of(net)
 
-    def spur(y0: float, y1: float) -> int:
-        """The cul-de-sac's segment from y0 to y1 (x = 500)."""
-        return next(s for s in range(net.n_segments)
-                    if view.vx[view.sf[s]] == 500.0 == view.vx[view.st[s]]
-                    and view.vy[view.sf[s]] == y0 and view.vy[view.st[s]] == y1)
+    spur = partial(_spur, net, view)
 
     mid = spur(100.0, 150.0)
     for search in (route_searches, route_searches_reference):
