@@ -790,7 +790,12 @@ def cpu_per_fix(rate: int, seconds: int, repeat: int, generators: int, systems: 
               "rate": rate, "seconds": seconds, "repeat": repeat, "systems": systems,
               "broker_nodelay": BROKER_NODELAY, "git": git_state(), "note": note,
               "livematch_from": str(Path(livematch_file()).parent), "steps": rows}
-    text = render_cpu(result)
+    return publish_result(out, name, result, render_cpu(result))
+
+
+def publish_result(out: Path, name: str, result: dict[str, Any], text: str
+                   ) -> dict[str, Any]:
+    """Print the report and write it as ``out/name.md`` beside the raw ``out/name.json``."""
     print(text)
     (out / f"{name}.md").write_text(text, encoding="utf-8")
     (out / f"{name}.json").write_text(json.dumps(result, indent=1), encoding="utf-8")
@@ -986,11 +991,7 @@ def profile(rate: int, seconds: int, generators: int, nodelay: bool, freeze: boo
                               **overlaps(r[0] - r[1] / 1000, r[0])} for r in stalls[:10]]},
         "py_spy": stacks,
     }
-    text = render_profile(result)
-    print(text)
-    (out / f"{name}.md").write_text(text, encoding="utf-8")
-    (out / f"{name}.json").write_text(json.dumps(result, indent=1), encoding="utf-8")
-    return result
+    return publish_result(out, name, result, render_profile(result))
 
 
 def render_profile(r: dict[str, Any]) -> str:
