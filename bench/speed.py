@@ -58,6 +58,8 @@ CONFIGS = {
     "30 m only": MatchSettings(eps_levels=(30.0,)),
     "60 m only": MatchSettings(eps_levels=(60.0,)),
     "ladder 15/30/60": MatchSettings(),
+    # the live answer ranked by path cost instead of the live score: what the score costs
+    "ladder, live score off (error_tau_s 0)": MatchSettings(error_tau_s=0.0),
 }
 
 
