@@ -13,6 +13,7 @@ import contextlib
 import getpass
 import json
 import os
+import random
 import shutil
 import signal
 import socket
@@ -38,9 +39,34 @@ MOSQUITTO_PASSWD = shutil.which("mosquitto_passwd") or "/usr/bin/mosquitto_passw
 REDIS_SERVER = shutil.which("redis-server") or "/usr/bin/redis-server"
 
 
+def _ephemeral_range() -> tuple[int, int]:
+    """The kernel's range for outgoing connections' local ports (Linux default otherwise)."""
+    try:
+        low, high = Path("/proc/sys/net/ipv4/ip_local_port_range").read_text().split()
+        return int(low), int(high)
+    except (OSError, ValueError):
+        return 32768, 60999
+
+
 def free_port() -> int:
-    """A TCP port on 127.0.0.1 that nobody listens on right now."""
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+    """A TCP port on 127.0.0.1 that nobody listens on right now, outside the ephemeral range.
+
+    A port from ``bind(0)`` lies in the range the kernel also gives outgoing connections
+    (every MQTT and Redis client of a test takes one), so between this call and the
+    server's own bind a client could take it: a worker then failed with "address already
+    in use". Ports below (or above) that range are only taken by listeners.
+    """
+    low, high = _ephemeral_range()
+    candidates = [p for p in (*range(20000, low), *range(high + 1, 65536)) if p >= 1024]
+    rng = random.Random(os.getpid() ^ time.monotonic_ns())
+    for port in rng.sample(candidates, min(200, len(candidates))):
+        with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+            try:
+                s.bind(("127.0.0.1", port))
+            except OSError:
+                continue
+            return port
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:  # all taken: any port
         s.bind(("127.0.0.1", 0))
         return int(s.getsockname()[1])
 
