@@ -483,3 +483,11 @@ def test_route_window_best_equals_python_max() -> None:
         driven = rng.choice([0.0, 3.0, 7.5], m)
         want = max(range(m), key=lambda j: (driven[j], -rows[j, 5], -rows[j, 0]))
         assert k.window_best(rows, driven) == want
+
+
+def test_vehicle_monitors_have_no_instance_dict():
+    """The per-vehicle monitor objects use slots (one set per vehicle in a service)."""
+    alerts = VehicleAlerts()
+    alerts.seen(Fix("v", 0.0, 24.94, 60.17, 0.0, 0.0), 1.0)
+    for obj in (alerts, alerts.fences, alerts.network, alerts.watch):
+        assert not hasattr(obj, "__dict__"), type(obj).__name__

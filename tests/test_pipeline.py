@@ -156,6 +156,18 @@ def test_pipeline_dedupe_memory_is_bounded():
     assert p.counters["filtered:out_of_order"] == 1
 
 
+def test_pipeline_answered_fixes_leave_no_pending_table():
+    """Once the tracker has answered every fix, the vehicle's pending dict is a fresh one
+    (an emptied dict keeps its table: bytes every idle vehicle would carry)."""
+    import sys
+
+    p = Pipeline(ROAD, MatchSettings())
+    run(p, drive("bus1", 5, dt=1.0))
+    state = p._vehicles["bus1"]
+    assert state.pending == {}
+    assert sys.getsizeof(state.pending) == sys.getsizeof({})
+
+
 def test_pipeline_flush_commits_every_accepted_fix():
     """After flush, the commits hold every accepted fix once per vehicle, vehicles sorted."""
     p = Pipeline(ROAD, MatchSettings())

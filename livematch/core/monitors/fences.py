@@ -175,6 +175,8 @@ class FenceMonitor:
         []
     """
 
+    __slots__ = ("state",)  # one per vehicle: no instance dict
+
     def __init__(self) -> None:
         self.state: dict[str, list[Any]] = {}
 

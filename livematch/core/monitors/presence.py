@@ -22,7 +22,7 @@ from livematch.core.fix import Fix
 from livematch.core.monitors.settings import AlertSettings
 
 
-@dataclass
+@dataclass(slots=True)  # one per vehicle: no instance dict
 class OffNetworkMonitor:
     """One vehicle's off-network state.
 
@@ -81,7 +81,7 @@ class OffNetworkMonitor:
         return cls(**state)
 
 
-@dataclass
+@dataclass(slots=True)  # one per vehicle: no instance dict
 class StaleWatch:
     """One vehicle's last sign of life and whether it is stale.
 

@@ -38,6 +38,8 @@ class VehicleAlerts:
         []
     """
 
+    __slots__ = ("fences", "network", "requested", "route", "watch")  # one per vehicle
+
     def __init__(self) -> None:
         self.route: RouteMonitor | None = None
         self.requested: str | None = None
