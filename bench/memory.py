@@ -44,6 +44,7 @@ The estimate for 100,000 vehicles behind a pipeline: the step-3 growth at 100,00
 from __future__ import annotations
 
 import argparse
+import contextlib
 import gc
 import json
 import os
@@ -70,6 +71,37 @@ def rss_kb() -> int:
         if line.startswith("VmRSS:"):
             return int(line.split()[1])
     raise RuntimeError("no VmRSS in /proc/self/status")
+
+
+def trimmed_rss_kb() -> int:
+    """RSS after asking glibc to give back the free memory it holds (``malloc_trim(0)``).
+
+    The difference to :func:`rss_kb` is memory freed by the program but kept by the
+    allocator (holes between live blocks; reused by later allocations, not returned).
+    Linux with glibc only; elsewhere the plain RSS.
+    """
+    import ctypes
+
+    with contextlib.suppress(OSError, AttributeError):
+        ctypes.CDLL("libc.so.6").malloc_trim(0)
+    return rss_kb()
+
+
+def array_bytes(root: object, shared: dict[int, object]) -> tuple[int, int]:
+    """(arrays, data bytes) of the numpy arrays reachable from ``root`` (see
+    :func:`reachable`) but not in ``shared`` (e.g. what a fresh tracker reaches: the
+    network); a view counts the buffer it looks into once."""
+    buffers: dict[int, int] = {}
+    count = 0
+    for key, obj in reachable(root).items():
+        if key not in shared and type(obj).__name__ == "ndarray":
+            count += 1
+            base = obj
+            while getattr(base, "base", None) is not None and type(base.base).__name__ == \
+                    "ndarray":
+                base = base.base
+            buffers[id(base)] = max(buffers.get(id(base), 0), base.nbytes)
+    return count, sum(buffers.values())
 
 
 def load_average() -> float:
@@ -291,10 +323,25 @@ def pipeline_run(how: str, vehicles: int, seconds: int, drives_count: int,
     elapsed = time.perf_counter() - started
     gc.collect()
     rss1 = rss_kb()
-    return {"how": how, "vehicles": held, "fixes": len(feed), "outputs": outputs,
-            "rss_before_kb": rss0, "rss_after_kb": rss1,
-            "kb_per_vehicle": round((rss1 - rss0) / held, 3),
-            "us_per_fix": round(elapsed / len(feed) * 1e6, 1)}
+    rss_trim = trimmed_rss_kb()
+    out = {"how": how, "vehicles": held, "fixes": len(feed), "outputs": outputs,
+           "rss_before_kb": rss0, "rss_after_kb": rss1, "rss_trimmed_kb": rss_trim,
+           "kb_per_vehicle": round((rss1 - rss0) / held, 3),
+           "kb_per_vehicle_trimmed": round((rss_trim - rss0) / held, 3),
+           "us_per_fix": round(elapsed / len(feed) * 1e6, 1)}
+    if how == "trackers":
+        # the driven trackers' arrays as held (spare room and rows not yet compacted
+        # away included), and the same trackers restored from their serialised state
+        # (what they need); the public API only, arrays found by introspection
+        fresh = Tracker(network, "fresh", settings)
+        shared = reachable(fresh)
+        held_arrays = [array_bytes(t, shared) for t in trackers.values()]
+        tight = [array_bytes(Tracker.from_bytes(network, settings, t.to_bytes()), shared)
+                 for t in trackers.values()]
+        out["arrays_per_tracker"] = statistics.fmean(a for a, _ in held_arrays)
+        out["array_kb_held"] = round(statistics.fmean(b for _, b in held_arrays) / 1024, 3)
+        out["array_kb_restored"] = round(statistics.fmean(b for _, b in tight) / 1024, 3)
+    return out
 
 
 # ---------------------------------------------------------------------------- driver
@@ -386,6 +433,7 @@ def report(r: dict[str, Any]) -> str:
         f"Pipeline overhead: {r['pipeline']['overhead_kb']:.2f} KB per vehicle (dedupe memory "
         "of the last 64 fix times, rate-limit bucket, alert monitors without routes or "
         "fences, the dict entries).",
+        *driven_breakdown(t, p),
         "",
         "## 100,000 vehicles",
         "",
@@ -408,6 +456,32 @@ def report(r: dict[str, Any]) -> str:
     else:
         lines.append("Not measured in this run (`--counts` without 100000).")
     return "\n".join(lines) + "\n"
+
+
+def driven_breakdown(t: dict[str, Any], p: dict[str, Any]) -> list[str]:
+    """Report lines: where the memory of a driven tracker goes (absent in older runs)."""
+    if "array_kb_held" not in t:
+        return []
+    return [
+        "",
+        f"Where a driven tracker's {t['kb_per_vehicle']:.2f} KB go (bare trackers above, "
+        "means per vehicle):",
+        "",
+        "| part | KB |",
+        "|---|---:|",
+        f"| array data held ({t['arrays_per_tracker']:.1f} arrays: candidate trees with their "
+        f"spare room and rows not yet compacted away, fix positions) | "
+        f"{t['array_kb_held']:.2f} |",
+        f"| of which the same trackers restored from `to_bytes` hold (rows still needed, "
+        f"no room) | {t['array_kb_restored']:.2f} |",
+        "| memory freed but kept by the allocator (RSS minus RSS after glibc "
+        f"`malloc_trim(0)`) | {t['kb_per_vehicle'] - t['kb_per_vehicle_trimmed']:.2f} |",
+        "| the rest (Python objects, array and allocator headers, event objects in "
+        f"flight) | {t['kb_per_vehicle_trimmed'] - t['array_kb_held']:.2f} |",
+        "",
+        f"Through the pipeline, freed but kept by the allocator: "
+        f"{p['kb_per_vehicle'] - p['kb_per_vehicle_trimmed']:.2f} KB per vehicle.",
+    ]
 
 
 def main(argv: list[str] | None = None) -> int:
