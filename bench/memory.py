@@ -34,7 +34,11 @@ representation is. Steps, each measuring process a fresh subprocess:
    .handle`` (decode, dedupe memory, rate-limit bucket, alert monitors without routes or
    fences, trackers). RSS growth per vehicle of each; the difference is the pipeline's
    own overhead per vehicle. Vehicle i drives pool drive ``i % drives`` from second
-   ``7 * (i // drives)``.
+   ``7 * (i // drives)``. Where a driven tracker's memory goes: the data of the arrays
+   reachable from each driven tracker (found by introspection, not by field names; the
+   network's, which a fresh tracker reaches too, left out), the same after a round trip
+   through ``to_bytes`` / ``from_bytes`` (the rows still needed, no spare room), and RSS
+   after glibc's ``malloc_trim(0)`` (memory freed but kept by the allocator).
 
 The estimate for 100,000 vehicles behind a pipeline: the step-3 growth at 100,000 plus
 100,000 x the step-4 overhead, plus the base RSS of step 3. Results:
