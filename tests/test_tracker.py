@@ -494,3 +494,36 @@ def test_tracker_spike_cost_validated() -> None:
         ("spike_cost", "must be a number >= 0, got -1.0")]
     with pytest.raises(ValueError, match=r"matcher\.spike_cost must be a number >= 0"):
         Tracker(grid(), "v1", MatchSettings(spike_cost=math.nan))
+
+
+def test_tracker_join_never_longer_than_vehicle_could_drive() -> None:
+    """Two committed stretches on two parallel roads 40 m apart, 2 s apart in time, are
+    joined by no route longer than 40 m/s x 2 s + 2 x eps (110 m): the only route
+    between them, round the block by the rung at x=360, is 180 m, so the committed path
+    breaks between the roads instead of drawing a loop nobody drove."""
+    import networkx as nx
+
+    from livematch.core.build import Road, network_from_roads
+
+    south = Road([(float(x), 0.0) for x in (*range(0, 351, 50), 360, *range(400, 1001, 50))],
+                 way=1)
+    north = Road([(float(x), 40.0) for x in (*range(0, 351, 50), 360, *range(400, 1001, 50))],
+                 way=2)
+    rung = Road([(360.0, 0.0), (360.0, 40.0)], way=3)
+    net = network_from_roads([south, north, rung])
+    # 10 m/s east on the south road, then the fixes jump to the north road (the first
+    # fix there is filtered as an impossible jump, the second is taken 2 s later)
+    fixes = fixes_along([(float(x), 0.0) for x in range(0, 301, 10)]
+                        + [(float(x), 40.0) for x in range(310, 601, 10)])
+    settings = MatchSettings(eps_levels=(15.0,))
+    path = committed_path(run(Tracker(net, "v1", settings), fixes))
+    assert ways(net, path) == [1, 2]
+    # outside check (networkx): from the south road at x=300 the north road at x=300,
+    # where the eastbound segment holding x=320 begins, is 160 m away, 180 m to x=320
+    g = nx.DiGraph()
+    for s in range(net.n_segments):
+        g.add_edge(int(net.seg_from[s]), int(net.seg_to[s]), length=float(net.seg_len[s]))
+    node = {(float(x), float(y)): i for i, (x, y) in enumerate(net.node_xy.tolist())}
+    around = nx.shortest_path_length(g, node[(300.0, 0.0)], node[(300.0, 40.0)],
+                                     weight="length")
+    assert around + 20.0 == 180.0 > 40.0 * 2.0 + 2.0 * 15.0
