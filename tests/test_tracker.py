@@ -9,6 +9,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from livematch.core.build import Road, network_from_roads
 from livematch.core.events import Assignment, Commit, Filtered
 from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
@@ -527,3 +528,25 @@ def test_tracker_join_never_longer_than_vehicle_could_drive() -> None:
     around = nx.shortest_path_length(g, node[(300.0, 0.0)], node[(300.0, 40.0)],
                                      weight="length")
     assert around + 20.0 == 180.0 > 40.0 * 2.0 + 2.0 * 15.0
+
+
+@pytest.mark.parametrize("dt", [1.0, 15.0, 30.0])
+def test_tracker_first_fix_at_segment_end_reported_on_segment_entered(dt: float) -> None:
+    """A trip whose first fix matches the very end of a segment starts on the segment entered.
+
+    Plain data: road 1 runs east to the vertex (100, 0), road 2 north from it (a 5 m
+    segment, then 95 m). The first fix lies outside both, 4.24 m from the vertex, so the
+    vertex is its matched point on either road; the path must not claim road 1, of which
+    the vehicle drove nothing.
+    """
+    net = network_from_roads([
+        Road([(0.0, 0.0), (100.0, 0.0)], way=1, oneway=True),
+        Road([(100.0, 0.0), (100.0, 5.0), (100.0, 100.0)], way=2, oneway=True),
+    ])
+    pts = [(103.0, -3.0), (100.0, 30.0), (100.0, 60.0), (100.0, 90.0)]
+    events = run(Tracker(net, "v1"), fixes_along(pts, dt=dt))
+    first = commits(events)[0].fixes[0]
+    assert (first.segment, first.offset_m, first.x, first.y) == (1, 0.0, 100.0, 0.0)
+    path = committed_path(events)
+    assert path == [1, 2]
+    assert_connected(net, path)

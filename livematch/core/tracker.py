@@ -49,7 +49,10 @@ How it decides
   disagree with it are dropped; so state stays bounded whatever the trip length.
   Consecutive committed stretches are joined by a shortest route no longer than the
   vehicle could drive in the time between them (:meth:`Tracker._join_limit`), else the
-  committed path breaks there.
+  committed path breaks there. A stretch
+  (the trip's first, or one after a break) whose first fix matched the very end of a
+  segment reports that fix at the start of the segment it enters next, the same point,
+  and its path begins there: the path never claims a segment the vehicle drove none of.
 * **The trees are arrays** (:mod:`livematch.core.candidates`): each level's candidate
   tree is rows of flat arrays, swept and queried by compiled functions, and cut at the
   last commit (nothing older is ever read), so a tree holds the live candidates and
@@ -603,6 +606,7 @@ class Tracker:
         first = chain[0]
         path: list[int] = []
         last = self.last_commit
+        starts = last is None  # a new stretch: nothing committed before it joins on
         if last is None:
             path.append(first.seg)
         elif before is not None and before.seq == last[2] and before.seg == last[0]:
@@ -611,6 +615,7 @@ class Tracker:
             route = connect(view, last[0], last[1], first.seg, first.pos,
                             self._join_limit(first.t - last[3]))
             if route is None:
+                starts = True
                 path.append(first.seg)  # a break: the vehicle left the network or jumped
             else:
                 path.extend(route)
@@ -619,6 +624,19 @@ class Tracker:
         for a, b in itertools.pairwise(chain):
             path.extend(_steps(a.seg, b))
         fixes = [MatchedFix(n.t, n.seg, n.pos * view.slen[n.seg], n.x, n.y) for n in chain]
+        if starts and first.pos >= 1.0:
+            # A stretch that starts at the very end of a segment drives none of it: report
+            # its first fix at the start of the segment entered next (the same point) and
+            # begin the path there, so that the path claims no segment it never drove.
+            entered = self._entered_after(tree, chain)
+            if entered >= 0:
+                fixes[0] = MatchedFix(first.t, entered, 0.0, first.x, first.y)
+                path[0] = entered
+                if path[1:2] == [entered]:
+                    del path[0]
+                if len(chain) == 1:
+                    top = Node(entered, first.seq, first.t, 0.0, first.x, first.y,
+                               first.parent, (), first.cost, 0.0)
         if self.skipped:
             fixes = self._fill_skipped(chain, before, math.inf if settle_all else top.t, fixes)
         events.append(Commit(self.vehicle, tuple(fixes), tuple(path)))
@@ -647,6 +665,29 @@ class Tracker:
         may be 40 + 120 = 160 m long; 0 s apart (two stretches at one fix) 120 m.
         """
         return self.settings.bridge_speed_mps * dt + 2.0 * max(self.settings.eps_levels)
+
+    def _entered_after(self, tree: CandidateTree, chain: list[Node]) -> int:
+        """The segment the path enters right after the first node of ``chain``, or -1.
+
+        From the chain itself; when the chain is that node alone, from the paths of the
+        tree's live candidates, only if every one of them goes through that node and
+        enters the same segment after it (-1 otherwise: the commit stays as it was, and
+        no later commit can contradict it).
+        """
+        first = chain[0]
+        if len(chain) > 1:
+            entered = _steps(first.seg, chain[1])
+            return entered[0] if entered else -1
+        found = -1
+        for row in range(tree.lo, tree.hi):
+            ahead, _ = tree.chain(row, first.seq)
+            if len(ahead) < 2 or ahead[0].seg != first.seg or ahead[0].seq != first.seq:
+                return -1
+            entered = _steps(first.seg, ahead[1])
+            if not entered or (found >= 0 and entered[0] != found):
+                return -1
+            found = entered[0]
+        return found
 
     def _fill_skipped(
         self, chain: list[Node], before: Node | None, until: float, fixes: list[MatchedFix]
