@@ -16,6 +16,8 @@ from functools import cache
 import numpy as np
 import pytest
 
+from livematch.core import _tree_kernel as _t
+from livematch.core._sweep_kernel import compact_in_place, kept_rows
 from livematch.core.candidates import CandidateTree
 from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
@@ -253,6 +255,31 @@ def test_candidate_tree_trim_and_compaction_keep_decisions() -> None:
             assert level.tree.n <= len(level.tree.ti)
     assert out_plain == out_squeezed
     assert plain.flush() == squeezed.flush()
+
+
+def test_compact_in_place_equals_compact_into_new_arrays() -> None:
+    """The sweep's compaction within a tree's own arrays keeps the rows a new-array one does."""
+    net = osm("Helsinki")
+    tracker = Tracker(net, "v", MatchSettings())
+    compared = moved = 0
+    for fix in drive(net, 7, 1, 180.0):
+        tracker.update(fix)
+        for level in tracker.levels:
+            tree = level.tree
+            if tree.n == 0:
+                continue
+            ti, tf, tv, n, nv, lo = _t.compact(tree.ti, tree.tf, tree.tv, tree.n, tree.lo,
+                                               tree.hi, 0, 0)
+            ti2, tf2, tv2 = tree.ti.copy(), tree.tf.copy(), tree.tv.copy()
+            got = compact_in_place(ti2, tf2, tv2, tree.n, tree.lo, tree.hi)
+            assert got == (n, nv, lo)
+            assert ti2[:n].tolist() == ti[:n].tolist()
+            assert tf2[:n].tobytes() == tf[:n].tobytes()
+            assert tv2[:nv].tolist() == tv[:nv].tolist()
+            assert kept_rows(tree.ti, tree.n, tree.lo, tree.hi) == (n, nv)
+            compared += 1
+            moved += n < tree.n
+    assert compared > 300 and moved > 100  # rows really move
 
 
 def test_candidate_tree_empty_and_roots() -> None:

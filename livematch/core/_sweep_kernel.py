@@ -488,15 +488,20 @@ def tree_sweep(
     netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
     ctx: np.ndarray, ti: np.ndarray, tf: np.ndarray, tv: np.ndarray,
     n: int, nv: int, lo: int, hi: int, seq: int, t: float,
-) -> tuple[int, int, int]:
+) -> tuple[int, int, int, int, int, int]:
     """One sweep step of the live block ``[lo, hi)``; the new states are appended as rows.
 
-    ``ctx`` holds the kernel's ``N_CTX`` step scalars. Returns ``(code, m, n_via)``:
-    ``m`` new rows at ``[n, n + m)`` and ``n_via`` vias at ``tv[nv:nv + n_via]``, code 0;
-    ``m`` = 0 when the window died (nothing written); code ``OVERFLOW`` when the kernel's
-    buffers are too small, ``ARENA_FULL`` when the tree's arrays are (nothing written
-    either; ``m`` and ``n_via`` then say how much room the step needs, and
-    :func:`tree_append` appends the result once there is room).
+    ``ctx`` holds the kernel's ``N_CTX`` step scalars. Returns ``(code, m, n_via, n, nv,
+    lo)``: code 0 with ``m`` new rows at ``[n, n + m)`` (the returned ``n`` is the old
+    one) and ``n_via`` vias at ``tv[nv:nv + n_via]``; ``m`` = 0 when the window died
+    (nothing written). When the new rows do not fit, the tree is first compacted in its
+    own arrays (:func:`compact_in_place`; ``n``, ``nv`` and ``lo`` then change: the
+    returned values are the tree's after it) if that makes room and the arrays are not
+    more than twice the size a compaction into new arrays would give them (so a tree
+    that shrank gives its memory back). Else nothing is written: code ``ARENA_FULL``,
+    ``m`` and ``n_via`` say how much room the step needs, and :func:`tree_append`
+    appends the result once the caller has made room. Code ``OVERFLOW``: the kernel's
+    buffers are too small (nothing written either).
     """
     k = hi - lo
     live = np.empty(N_CTX + LIVE_STRIDE * k)
@@ -515,13 +520,80 @@ def tree_sweep(
         live[b + 6] = tf[r, F_COST]
     m, n_via = sweep_kernel(netf, neti, live, fbuf, ibuf)
     if m < 0:
-        return m, 0, 0
+        return m, 0, 0, n, nv, lo
     if m == 0:
-        return 0, 0, 0
+        return 0, 0, 0, n, nv, lo
     if n + m > ti.shape[0] or nv + n_via > tv.shape[0]:
-        return ARENA_FULL, m, n_via
+        kept, kept_v = kept_rows(ti, n, lo, hi)
+        # the capacity CandidateTree.compact would give (spare: twice the live block + 8)
+        spare = 2 * k + 8
+        cap = kept + max(kept // 4, spare)
+        if (kept + m > ti.shape[0] or kept_v + n_via > tv.shape[0]
+                or ti.shape[0] > 2 * cap):
+            return ARENA_FULL, m, n_via, n, nv, lo
+        n, nv, lo = compact_in_place(ti, tf, tv, n, lo, hi)
     tree_append(fbuf, ibuf, ti, tf, tv, n, nv, lo, seq, t, m, n_via)
-    return 0, m, n_via
+    return 0, m, n_via, n, nv, lo
+
+
+@numba.njit(cache=True, error_model="numpy")
+def kept_rows(ti: np.ndarray, n: int, lo: int, hi: int) -> tuple[int, int]:
+    """Rows and vias a compaction keeps: the live block ``[lo, hi)`` and its ancestors."""
+    keep = np.zeros(n, np.bool_)
+    keep[lo:hi] = True
+    rows = 0
+    vias = 0
+    for r in range(n - 1, -1, -1):
+        if keep[r]:
+            rows += 1
+            vias += ti[r, I_VIAN]
+            p = ti[r, I_PARENT]
+            if p >= 0:
+                keep[p] = True
+    return rows, vias
+
+
+@numba.njit(cache=True, error_model="numpy")
+def compact_in_place(
+    ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, n: int, lo: int, hi: int,
+) -> tuple[int, int, int]:
+    """Keep only the live block and its ancestors, moved down within the same arrays.
+
+    The rows kept, and their vias, come out exactly as :func:`livematch.core._tree_kernel.compact`
+    writes them into new arrays (same order, same parents, vias one after another), so
+    a tree compacted either way holds the same rows. Safe in place: a row only ever moves
+    down (its new index is at most its old one, and so is its vias' start). Returns
+    ``(n, nv, lo)``.
+    """
+    keep = np.zeros(n, np.bool_)
+    keep[lo:hi] = True
+    for r in range(n - 1, -1, -1):
+        if keep[r]:
+            p = ti[r, I_PARENT]
+            if p >= 0:
+                keep[p] = True
+    new_index = np.full(n, -1, np.int64)
+    q = 0
+    nv = 0
+    for r in range(n):
+        if not keep[r]:
+            continue
+        new_index[r] = q
+        p = ti[r, I_PARENT]
+        v0 = ti[r, I_VIA0]
+        vn = ti[r, I_VIAN]
+        for j in range(vn):
+            tv[nv + j] = tv[v0 + j]
+        ti[q, I_SEG] = ti[r, I_SEG]
+        ti[q, I_SEQ] = ti[r, I_SEQ]
+        ti[q, I_PARENT] = new_index[p] if p >= 0 else -1
+        ti[q, I_VIA0] = nv
+        ti[q, I_VIAN] = vn
+        for c in range(ROW_F):
+            tf[q, c] = tf[r, c]
+        nv += vn
+        q += 1
+    return q, nv, int(new_index[lo]) if hi > lo else q
 
 
 @numba.njit(cache=True, error_model="numpy")

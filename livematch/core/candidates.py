@@ -119,11 +119,9 @@ class CandidateTree:
         Returns whether the window survived; if not, the tree is unchanged.
         """
         arrays = sweep_arrays(view)
-        likely = self.hi - self.lo + 4  # a step mostly makes about as many states as live
-        if self.n + likely > len(self.ti):
-            self.compact(likely, likely)
         while True:
-            code, m, n_via = _t.tree_sweep(
+            # a tree whose arrays are full is compacted within them by the kernel
+            code, m, n_via, self.n, self.nv, self.lo = _t.tree_sweep(
                 arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf, ctx, self.ti, self.tf,
                 self.tv, self.n, self.nv, self.lo, self.hi, seq, t)
             if code == OVERFLOW:
