@@ -165,6 +165,16 @@ def check_tree(tree: CandidateTree, tracker: Tracker,
             ref = junction_reference(live, nodes[scored], margin, ref_score)
             got = tree.junction_split(scored, margin, score)
             assert (got, ref) == (-1, None) or nodes[got] is ref
+        # both rows in one call, by live score and by path cost (tau 0)
+        for tau, ranked, costs in ((s.error_tau_s, scored, ref_score), (0.0, best, None)):
+            for margin in (0.0, 3.0, 12.0):
+                got_best, got_split = tree.live_answer(
+                    tracker.last_seg, tracker.fix_xy, tracker.fix_n, tracker.fix_seq0, first,
+                    1.0 / (2.0 * s.sigma_m ** 2), tau, s.gap_s, margin)
+                assert got_best == ranked
+                ref = (junction_reference(live, nodes[ranked], margin, costs) if margin > 0.0
+                       else None)
+                assert (got_split, ref) == (-1, None) or nodes[got_split] is ref
     for target in (seq - 1, seq - 5, 0):
         assert nodes[tree.ancestor_at(best, target)] is ancestor_at(nodes[best], target)
     top = tree.ancestor_at(best, seq - 3)

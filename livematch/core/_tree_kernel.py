@@ -49,7 +49,7 @@ __all__ = [
     "ARENA_FULL", "F_COST", "F_LOW", "F_POS", "F_T", "F_X", "F_Y", "I_PARENT", "I_SEG",
     "I_SEQ", "I_VIA0", "I_VIAN", "ROW_F", "ROW_I", "ancestor_at", "best_row", "best_scored",
     "block_ancestor", "chain_rows", "compact", "descends_from", "driven_since", "junction_split",
-    "live_scores", "prune_live", "tree_append", "tree_sweep", "trim",
+    "live_answer", "live_scores", "prune_live", "tree_append", "tree_sweep", "trim",
 ]
 
 _jit = numba.njit(cache=True, error_model="numpy")
@@ -163,6 +163,30 @@ def live_scores(
             cur = p
         out[r - lo] = score
     return out
+
+
+@_jit
+def live_answer(
+    ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, lo: int, hi: int, prefer: int,
+    fix_xy: np.ndarray, fix_n: int, fix_seq0: int, first: int, inv_two_sigma2: float,
+    inv_tau: float, max_dt: float, margin: float,
+) -> tuple[int, int]:
+    """The live answer's rows in one call: ``(best, split)``.
+
+    ``best``: :func:`best_scored` by :func:`live_scores` (over ``fix_xy[:fix_n]``) when
+    ``inv_tau`` > 0, else :func:`best_row` (path cost). ``split``: :func:`junction_split`
+    around ``best`` with the same ranking, -1 when ``margin`` is not positive. Each call
+    from Python costs a dispatch per argument and a returned array costs more than the
+    scoring itself, so the tracker asks for both rows at once.
+    """
+    if inv_tau > 0.0:
+        score = live_scores(ti, tf, lo, hi, fix_xy[:fix_n], fix_seq0, first, inv_two_sigma2,
+                            inv_tau, max_dt)
+    else:
+        score = tf[lo:hi, F_COST].copy()
+    best = best_scored(ti, score, lo, hi, prefer)
+    split = junction_split(ti, tv, lo, hi, best, margin, score) if margin > 0.0 else -1
+    return best, split
 
 
 @_jit

@@ -236,6 +236,18 @@ class CandidateTree:
         return _t.live_scores(self.ti, self.tf, self.lo, self.hi, fix_xy, fix_seq0, first,
                               inv_two_sigma2, 1.0 / tau_s, max_dt)
 
+    def live_answer(self, prefer: int, fix_xy: npt.NDArray[np.float64], fix_n: int,
+                    fix_seq0: int, first: int, inv_two_sigma2: float, tau_s: float,
+                    max_dt: float, margin: float) -> tuple[int, int]:
+        """:meth:`best` and :meth:`junction_split` in one compiled call: ``(best, split)``.
+
+        Ranked by :meth:`live_scores` over ``fix_xy[:fix_n]`` when ``tau_s`` > 0, else by
+        path cost; ``split`` is -1 when ``margin`` is not positive.
+        """
+        return _t.live_answer(self.ti, self.tf, self.tv, self.lo, self.hi, prefer, fix_xy,
+                              fix_n, fix_seq0, first, inv_two_sigma2,
+                              1.0 / tau_s if tau_s > 0.0 else 0.0, max_dt, margin)
+
     def common_ancestor(self, floor: int) -> int:
         """The live states' deepest common ancestor, -1 if none at or above fix ``floor``."""
         return _t.block_ancestor(self.ti, self.lo, self.hi, floor)

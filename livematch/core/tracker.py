@@ -271,7 +271,9 @@ class Tracker:
         before = (self._state_before() if s.spike_cost > 0.0 and prev is not None
                   and SPIKE_MIN_S <= fix.t - prev[0] <= SPIKE_MAX_S else None)
         # whether the newest fix broke every level's tree (none goes on from before it)
-        broke = not any(_goes_on(lv, self.seq) for lv in self.levels)
+        # (asked only when the spike test will run: it is the only reader)
+        broke = self.before is not None and not any(_goes_on(lv, self.seq)
+                                                     for lv in self.levels)
         self.seq += 1
         seq = self.seq
         self.times[seq] = fix.t
@@ -297,9 +299,8 @@ class Tracker:
         if deciding is None:
             events.append(Filtered(fix.vehicle, fix.t, "no_road_nearby"))
         else:
-            score = self._live_scores(deciding)
-            best = deciding.tree.best(self.last_seg, score)
-            seg, pos, x, y = self._hold_at_junction(deciding, best, fix, dt, score)
+            best, split = self._live_answer(deciding, dt)
+            seg, pos, x, y = self._hold_at_junction(deciding, best, split, fix)
             self.last_seg = int(deciding.tree.ti[best, 0])
             events.append(Assignment(
                 self.vehicle, fix.t, seg, pos * self._view.slen[seg],
@@ -487,14 +488,36 @@ class Tracker:
         return tree.live_scores(self.fix_xy[:self.fix_n], self.fix_seq0, self.next_commit - 1,
                                 self._weights[0], s.error_tau_s, s.gap_s)
 
+    def _live_answer(self, level: Level, dt: float) -> tuple[int, int]:
+        """The deciding level's best live row and the junction its near-best set split at.
+
+        ``(best, split)``, split -1 if none: the ranking of :meth:`_live_scores` (the live
+        score, or the path cost) and the near-best margin of :meth:`_hold_at_junction`,
+        in one compiled call (:meth:`CandidateTree.live_answer`).
+        """
+        s = self.settings
+        tree = level.tree
+        scored = s.error_tau_s > 0.0 and len(tree) >= 2
+        margin = s.junction_hold
+        if scored and 0.0 < dt <= s.gap_s:
+            # the newest link was rescored, its distance terms weighted 1 / (1 - rho^2):
+            # the margin widens with the square root of that weight (tuned, see
+            # _hold_at_junction)
+            rho = math.exp(-dt / s.error_tau_s)
+            margin /= math.sqrt(1.0 - rho * rho)
+        return tree.live_answer(self.last_seg, self.fix_xy, self.fix_n, self.fix_seq0,
+                                self.next_commit - 1, self._weights[0],
+                                s.error_tau_s if scored else 0.0, s.gap_s, margin)
+
     def _hold_at_junction(
-        self, level: Level, best: int, fix: Fix, dt: float, score: np.ndarray | None = None
+        self, level: Level, best: int, split: int, fix: Fix
     ) -> tuple[int, float, float, float]:
         """The live answer: the best candidate, unless it has just taken a branch.
 
         When the candidates that score nearly as well as the best one (within
-        ``junction_hold`` of its live score, or of its path cost if ``score`` is None) went
-        separate ways at a junction, which branch was taken is not yet known; the answer
+        ``junction_hold`` of its live score, or of its path cost when the score is off)
+        went separate ways at a junction (row ``split`` from :meth:`_live_answer`, -1 if
+        they did not), which branch was taken is not yet known; the answer
         then stays on the road they all came from, at the junction where they split, as
         long as the fix is within eps of it and the best candidate has driven at most
         ``junction_hold_m`` past it. A dispatcher sees "at the junction" instead of a
@@ -511,13 +534,6 @@ class Tracker:
         """
         tree = level.tree
         s = self.settings
-        margin = s.junction_hold
-        if score is not None and 0.0 < dt <= s.gap_s:
-            # the newest link was rescored, its distance terms weighted 1 / (1 - rho^2):
-            # the margin widens with the square root of that weight (tuned, see above)
-            rho = math.exp(-dt / s.error_tau_s)
-            margin /= math.sqrt(1.0 - rho * rho)
-        split = tree.junction_split(best, margin, score) if margin > 0.0 else -1
         if split >= 0 and tree.driven_since(best, split, self.network.seg_len) <= s.junction_hold_m:
             seg = int(tree.ti[split, 0])
             x, y = _point(self._view, seg, 1.0)
