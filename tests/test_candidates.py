@@ -177,6 +177,16 @@ def check_tree(tree: CandidateTree, tracker: Tracker,
                 assert (got_split, ref) == (-1, None) or nodes[got_split] is ref
     for target in (seq - 1, seq - 5, 0):
         assert nodes[tree.ancestor_at(best, target)] is ancestor_at(nodes[best], target)
+    # the commit point: the common ancestor taken back to the newest committable fix
+    for next_commit in (tracker.next_commit, seq - 2, seq):
+        for newest in (seq, seq - 1):
+            ref_top = common_ancestor(live, next_commit - 1)
+            if ref_top is not None and ref_top.seq > newest:
+                ref_top = ancestor_at(ref_top, newest)
+            if ref_top is not None and not next_commit <= ref_top.seq <= newest:
+                ref_top = None
+            got = tree.commit_point(next_commit, newest)
+            assert (got, ref_top) == (-1, None) or nodes[got] is ref_top
     top = tree.ancestor_at(best, seq - 3)
     chain, before = tree.chain(best, nodes[top].seq)
     ref_chain = []

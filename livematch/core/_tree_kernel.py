@@ -48,8 +48,9 @@ from livematch.core._sweep_kernel import (
 __all__ = [
     "ARENA_FULL", "F_COST", "F_LOW", "F_POS", "F_T", "F_X", "F_Y", "I_PARENT", "I_SEG",
     "I_SEQ", "I_VIA0", "I_VIAN", "ROW_F", "ROW_I", "ancestor_at", "best_row", "best_scored",
-    "block_ancestor", "chain_rows", "compact", "descends_from", "driven_since", "junction_split",
-    "live_answer", "live_scores", "prune_live", "tree_append", "tree_sweep", "trim",
+    "block_ancestor", "chain_rows", "commit_point", "compact", "descends_from", "driven_since",
+    "junction_split", "live_answer", "live_scores", "prune_live", "tree_append", "tree_sweep",
+    "trim",
 ]
 
 _jit = numba.njit(cache=True, error_model="numpy")
@@ -217,6 +218,23 @@ def block_ancestor(ti: np.ndarray, lo: int, hi: int, floor: int) -> int:
     """The deepest common ancestor of the live block, or -1 (see :func:`_ancestor`)."""
     cur = np.arange(lo, hi)
     return _ancestor(ti, cur, hi - lo, floor)
+
+
+@_jit
+def commit_point(ti: np.ndarray, lo: int, hi: int, next_commit: int, newest: int) -> int:
+    """The row a commit of the live block may settle up to, or -1.
+
+    The live states' deepest common ancestor (:func:`block_ancestor` above fix
+    ``next_commit - 1``), taken back to fix ``newest`` if it is newer
+    (:func:`ancestor_at`); -1 unless its fix lies in ``[next_commit, newest]``. One call
+    for what ``Tracker._settle`` asks of every covering level.
+    """
+    top = block_ancestor(ti, lo, hi, next_commit - 1)
+    if top >= 0 and ti[top, I_SEQ] > newest:
+        top = ancestor_at(ti, top, newest)
+    if top >= 0 and next_commit <= ti[top, I_SEQ] <= newest:
+        return top
+    return -1
 
 
 @_jit

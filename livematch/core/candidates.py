@@ -252,6 +252,15 @@ class CandidateTree:
         """The live states' deepest common ancestor, -1 if none at or above fix ``floor``."""
         return _t.block_ancestor(self.ti, self.lo, self.hi, floor)
 
+    def commit_point(self, next_commit: int, newest: int) -> int:
+        """The deepest common ancestor of the live states, taken back to fix ``newest``.
+
+        -1 unless its fix lies in ``[next_commit, newest]``: :meth:`common_ancestor` above
+        fix ``next_commit - 1``, then :meth:`ancestor_at` ``newest`` if it is newer, in one
+        compiled call.
+        """
+        return _t.commit_point(self.ti, self.lo, self.hi, next_commit, newest)
+
     def ancestor_at(self, row: int, seq: int) -> int:
         """The ancestor of ``row`` (itself included) with the largest seq <= ``seq``."""
         return _t.ancestor_at(self.ti, row, seq)

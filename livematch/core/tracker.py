@@ -113,9 +113,12 @@ class Level:
         tree_seq: sequence number of the fix where the current candidate tree started.
         cert_seq, cert_t: first fix (sequence number, time) of the certificate window.
         trim_seq: the last fix at which old history of the tree was cut.
+        cut: no back-pointer of the tree leads from a state at or after fix ``cut`` to
+            one before it (-1: not known; not serialised, a restored level walks once).
+            Lets :meth:`Tracker._trim` skip the walk while the cut stays where it was.
     """
 
-    __slots__ = ("cert_seq", "cert_t", "eps", "tree", "tree_seq", "trim_seq")
+    __slots__ = ("cert_seq", "cert_t", "cut", "eps", "tree", "tree_seq", "trim_seq")
 
     def __init__(self, eps: float) -> None:
         self.eps = eps
@@ -124,6 +127,7 @@ class Level:
         self.cert_seq = 0
         self.cert_t = 0.0
         self.trim_seq = 0
+        self.cut = -1
 
 
 class Tracker:
@@ -570,10 +574,9 @@ class Tracker:
             progressed = False
             for level in self._covering():
                 tree = level.tree
-                top = tree.common_ancestor(self.next_commit - 1)
-                if top >= 0 and tree.seq_of(top) > newest:
-                    top = tree.ancestor_at(top, newest)
-                if top >= 0 and self.next_commit <= tree.seq_of(top) <= newest:
+                # the common ancestor, back to the newest fix that may be committed
+                top = tree.commit_point(self.next_commit, newest)
+                if top >= 0:
                     self._commit_chain(tree, top, events, prune=None)
                     progressed = True
                     break
@@ -735,13 +738,27 @@ class Tracker:
         return out
 
     def _trim(self, seq: int, t: float) -> None:
-        """Cut history no future commit needs; force-prune trees deeper than the lag."""
+        """Cut history no future commit needs; force-prune trees deeper than the lag.
+
+        The compiled walk (:meth:`CandidateTree.trim`) runs only when the cut moved past
+        the one the level's links already respect (``Level.cut``) or a forced prune is
+        due: a new state's back-pointer leads to a state of the fix before, never to one
+        older than a cut made since, so with the cut where it was the walk would change
+        nothing (same trees, same ``trim_seq``).
+        """
+        cut = self.next_commit - 1
+        max_lag = self.settings.max_lag_fixes
         for level in self.levels:
-            if not len(level.tree):
+            tree = level.tree
+            if tree.hi == tree.lo:
                 continue
-            level.trim_seq, forced = level.tree.trim(
-                self.next_commit, seq, level.trim_seq, self.settings.max_lag_fixes,
-                self.last_seg)
+            trim_seq = level.trim_seq if level.trim_seq > cut else cut
+            if cut <= level.cut and seq - trim_seq <= 2 * max_lag:
+                level.trim_seq = trim_seq  # what the walk would have returned
+                continue
+            level.trim_seq, forced = tree.trim(self.next_commit, seq, level.trim_seq, max_lag,
+                                               self.last_seg)
+            level.cut = cut
             if forced >= 0:
                 level.tree_seq = max(level.tree_seq, forced)
 
