@@ -559,7 +559,9 @@ class Tracker:
         """Commit what is settled. ``hold_newest``: not fix ``seq`` (the spike test may drop it)."""
         s = self.settings
         newest = seq - 1 if hold_newest else seq
-        if not self._covering():
+        # the covering levels change only with a commit: asked again after each one
+        covering = self._covering()
+        if not covering:
             # The trees that covered the oldest pending fixes died this step: their best
             # candidate is the final answer for them.
             for level, old in salvage:
@@ -568,22 +570,23 @@ class Tracker:
                 leaf = old.best(self.last_seg)
                 if old.seq_of(leaf) >= self.next_commit:
                     self._commit_chain(old, leaf, events, prune=None)
+                    covering = self._covering()
                     break
         progressed = True
         while progressed:
             progressed = False
-            for level in self._covering():
+            for level in covering:
                 tree = level.tree
                 # the common ancestor, back to the newest fix that may be committed
                 top = tree.commit_point(self.next_commit, newest)
                 if top >= 0:
                     self._commit_chain(tree, top, events, prune=None)
+                    covering = self._covering()
                     progressed = True
                     break
         if self.next_commit <= seq:
             too_many = seq - self.next_commit + 1 > s.max_lag_fixes
             too_old = t - self.times[self.next_commit] > s.max_lag_s
-            covering = self._covering()
             if (too_many or too_old) and covering:
                 level = covering[0]
                 tree = level.tree
@@ -593,10 +596,12 @@ class Tracker:
                 node = tree.ancestor_at(tree.best(self.last_seg, score), keep)
                 if self.next_commit <= tree.seq_of(node) <= newest:
                     self._commit_chain(tree, node, events, prune=level)
-        alive = [lv.tree_seq for lv in self.levels if len(lv.tree)]
-        floor = min(alive) if alive else seq + 1
-        if not self._covering() and floor > self.next_commit:
-            self.next_commit = floor  # fixes no tree covers any more stay unmatched
+                    covering = self._covering()
+        if not covering:
+            alive = [lv.tree_seq for lv in self.levels if len(lv.tree)]
+            floor = min(alive) if alive else seq + 1
+            if floor > self.next_commit:
+                self.next_commit = floor  # fixes no tree covers any more stay unmatched
         for stale in [k for k in self.times if k < self.next_commit - 1]:
             del self.times[stale]
         self._trim(seq, t)
