@@ -20,6 +20,9 @@ warm :class:`livematch.pipeline.Pipeline`. Each stage's entry point is wrapped w
 - records: ``to_record`` (the published JSON-ready dicts, WGS84 conversion);
 - pipeline glue: the rest of ``handle`` (dedupe, rate limit, counters, output objects).
 
+Also the number of compiled calls the tracker makes per message (a count, so the same
+on a busy machine: each call pays numba's dispatch before any work).
+
 Reported as mean microseconds per message over the run (the minimum over ``--repeat``
 runs of each stage, so a scheduler hiccup does not land in one stage), next to the
 total of an unwrapped run. The wrappers add about 0.2 µs per wrapped call, charged to
@@ -61,14 +64,17 @@ class Clock:
 
     def __init__(self) -> None:
         self.ns: dict[str, int] = dict.fromkeys(STAGES, 0)
+        self.calls: dict[str, int] = dict.fromkeys(STAGES, 0)  # wrapped calls per stage
         self._inner = 0  # ns of wrapped calls inside the current outer call
 
     def wrap(self, stage: str, fn: Callable[..., Any], outer: bool = False
              ) -> Callable[..., Any]:
         """``fn`` timed into ``stage`` (an ``outer`` stage excludes wrapped calls inside)."""
         ns = self.ns
+        calls = self.calls
 
         def timed(*args: Any, **kwargs: Any) -> Any:
+            calls[stage] += 1
             saved = self._inner
             self._inner = 0
             t0 = time.perf_counter_ns()
@@ -122,6 +128,7 @@ def run(drives: list[Any], network: Any, wrapped: bool) -> dict[str, float]:
     if wrapped:
         clock.ns["pipeline glue"] = total - sum(clock.ns.values())
         out.update({k: v / n / 1000.0 for k, v in clock.ns.items()})
+        out["compiled calls"] = clock.calls["tracker, compiled calls"] / n
     return out
 
 
@@ -144,6 +151,7 @@ def main(argv: list[str] | None = None) -> int:
         staged = [run(sims, network, wrapped=True) for _ in range(args.repeat)]
         row: dict[str, Any] = {"extract": name, "unwrapped": min(plain)}
         row.update({k: min(r[k] for r in staged) for k in ["total", *STAGES]})
+        row["compiled calls"] = staged[0]["compiled calls"]  # a count: the same every run
         rows.append(row)
     load = " / ".join(f"{v:.2f}" for v in loads)
     head = " | ".join(r["extract"] for r in rows)
@@ -164,6 +172,8 @@ def main(argv: list[str] | None = None) -> int:
                  + " |")
     lines.append("| total without wrappers | "
                  + " | ".join(f"{r['unwrapped']:.1f}" for r in rows) + " |")
+    lines.append("| tracker's compiled calls per message (count) | "
+                 + " | ".join(f"{r['compiled calls']:.2f}" for r in rows) + " |")
     text = "\n".join(lines) + "\n"
     print(text)
     out = Path(args.out)
