@@ -496,9 +496,10 @@ def tree_sweep(
     one) and ``n_via`` vias at ``tv[nv:nv + n_via]``; ``m`` = 0 when the window died
     (nothing written). When the new rows do not fit, the tree is first compacted in its
     own arrays (:func:`compact_in_place`; ``n``, ``nv`` and ``lo`` then change: the
-    returned values are the tree's after it) if that makes room and the arrays are not
-    more than twice the size a compaction into new arrays would give them (so a tree
-    that shrank gives its memory back). Else nothing is written: code ``ARENA_FULL``,
+    returned values are the tree's after it) if that makes room and the arrays are at
+    most one and a half times the size a compaction into new arrays would give them (so
+    a tree that shrank gives its memory back, and a tree holds about as many bytes as
+    with new arrays at every compaction). Else nothing is written: code ``ARENA_FULL``,
     ``m`` and ``n_via`` say how much room the step needs, and :func:`tree_append`
     appends the result once the caller has made room. Code ``OVERFLOW``: the kernel's
     buffers are too small (nothing written either).
@@ -529,7 +530,7 @@ def tree_sweep(
         spare = 2 * k + 8
         cap = kept + max(kept // 4, spare)
         if (kept + m > ti.shape[0] or kept_v + n_via > tv.shape[0]
-                or ti.shape[0] > 2 * cap):
+                or 2 * ti.shape[0] > 3 * cap):
             return ARENA_FULL, m, n_via, n, nv, lo
         n, nv, lo = compact_in_place(ti, tf, tv, n, lo, hi)
     tree_append(fbuf, ibuf, ti, tf, tv, n, nv, lo, seq, t, m, n_via)
