@@ -31,6 +31,16 @@ Measures (per method and interval, pooled over drives; see bench/README.md):
   the JSON).
 - µs/fix: wall time / fixes (see above for what the wall time covers).
 
+Drive model (``--sim``): ``plain`` is the original simulator (every drive starts at a
+vertex at standstill, its true path is cut at the last second, and the route is a
+straight-biased random walk that may circle a short loop). ``realistic`` adds a 60 s
+lead-in/lead-out (fixes only from the device's first to its last report, truth driven
+around them) and a walk that avoids already-driven directed segments
+(``livematch.sim.drive.REALISTIC``, see ``DriveSettings``); ``lead`` and ``route`` turn
+on only one of the two, to split the effect. The same drives and fixes go to every
+method (livematch, HMM, nearest); RMF's reference is the true path between the first
+and the last fix in every model.
+
 Usage::
 
     .venv/bin/python bench/accuracy.py               # default run (a few minutes)
@@ -49,7 +59,7 @@ import subprocess
 import sys
 import tempfile
 import time
-from collections import defaultdict
+from collections import Counter, defaultdict
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
@@ -64,6 +74,7 @@ from livematch.baselines.hmm import estimate_beta, estimate_sigma_z  # noqa: E40
 from livematch.core.geometry import project_on_segment  # noqa: E402
 from livematch.core.network import RoadNetwork  # noqa: E402
 from livematch.sim.drive import (  # noqa: E402
+    REALISTIC,
     Drive,
     DriveSettings,
     Observation,
@@ -77,6 +88,13 @@ from livematch.sim.score import TruePath, route_mismatch_fraction  # noqa: E402
 EXTRACTS = {"helsinki": "Helsinki.osm.pbf", "test": "test.osm.pbf"}
 START_TIME = 1_767_225_600.0  # 2026-01-01T00:00:00Z
 TOL_M = 30.0
+#: ``--sim`` drive models: DriveSettings fields on top of the command's other settings.
+SIM_MODELS: dict[str, dict[str, float]] = {
+    "plain": {},
+    "realistic": dict(REALISTIC),
+    "lead": {"lead_s": REALISTIC["lead_s"]},
+    "route": {"revisit_factor": REALISTIC["revisit_factor"]},
+}
 LIVEMATCH = ROOT / ".venv" / "bin" / "livematch"
 
 
@@ -263,23 +281,48 @@ def run_inproc(network: RoadNetwork, records: list[dict[str, Any]],
 
 
 # ---------------------------------------------------------------------------- scoring
+#: Where a final-answer miss sits (a diagnostic of the harness, in the JSON only):
+#: the first or last fix of a drive, an interior fix on a directed segment the true path
+#: drives 3 times or more (circling), or any other interior fix.
+MISS_CLASSES = ("first", "last", "circling", "interior")
+
+
+def miss_class(i: int, n_fixes: int, passes: int) -> str:
+    """Class of a miss at fix ``i`` of ``n_fixes`` whose true segment is driven ``passes``
+    times on the true path.
+
+    >>> miss_class(0, 5, 1), miss_class(4, 5, 9), miss_class(2, 5, 3), miss_class(0, 1, 1)
+    ('first', 'last', 'circling', 'first')
+    """
+    if i == 0:
+        return "first"
+    if i == n_fixes - 1:
+        return "last"
+    return "circling" if passes >= 3 else "interior"
+
+
 def score(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
           run: MethodRun) -> dict[str, Any]:
     n = live_ok = final_ok = exact = answered = 0
     errors: list[float] = []
     mismatch = true_len = 0.0
+    misses = dict.fromkeys(MISS_CLASSES, 0)
     for drive, obs in fleet:
         match = run.matches[drive.vehicle]
         tp = TruePath(drive.path, network.seg_len)
+        passes = Counter(drive.path)
         for i, o in enumerate(obs):
             p = drive.truth[o.truth_index]
             n += 1
             live, final = match.live[i], match.final[i]
             live_ok += live is not None and tp.near(live.segment, p.path_pos_m, TOL_M)
+            ok = final is not None and tp.near(final.segment, p.path_pos_m, TOL_M)
+            if not ok:
+                misses[miss_class(i, len(obs), passes[p.segment])] += 1
             if final is None:
                 continue
             answered += 1
-            final_ok += tp.near(final.segment, p.path_pos_m, TOL_M)
+            final_ok += ok
             exact += final.segment == p.segment
             errors.append(math.hypot(final.x - p.x, final.y - p.y))
         lo = drive.truth[obs[0].truth_index].path_index
@@ -303,6 +346,7 @@ def score(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
         "commit_lag_median_s": float(np.median(lag)) if len(lag) else None,
         "commit_lag_p95_s": float(np.percentile(lag, 95)) if len(lag) else None,
         "settled_by_flush": run.flushed,
+        "final_misses_by_class": misses,
         "us_per_fix": 1e6 * run.seconds / n if n else math.nan,
         "timing": run.timing_note,
     }
@@ -320,6 +364,10 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--sigma", type=float, default=5.0, help="GPS error sigma per axis, m")
     ap.add_argument("--tau", type=float, default=45.0, help="GPS error time constant, s")
     ap.add_argument("--outliers", type=float, default=0.01, help="outlier probability")
+    ap.add_argument("--sim", choices=tuple(SIM_MODELS), default="plain",
+                    help="drive model: plain (original), realistic (lead-in/out and a "
+                         "route that does not circle), lead or route (one of the two); "
+                         "default plain")
     ap.add_argument("--calibration-drives", type=int, default=8)
     ap.add_argument("--hmm-lag", type=int, default=5, help="HMM fixed lag, steps")
     ap.add_argument("--livematch", choices=("auto", "replay", "inproc", "skip"),
@@ -336,7 +384,7 @@ def main(argv: list[str] | None = None) -> int:
         args.extract, args.calibration_drives = "helsinki", 3
     intervals = [int(k) for k in args.intervals.split(",")]
     settings = DriveSettings(duration_s=args.duration, sigma_m=args.sigma, tau_s=args.tau,
-                             outlier_p=args.outliers)
+                             outlier_p=args.outliers, **SIM_MODELS[args.sim])
 
     replay_ok, inproc_ok = livematch_available()
     do_replay = args.livematch in ("auto", "replay") and replay_ok
@@ -415,7 +463,8 @@ def main(argv: list[str] | None = None) -> int:
                 rows.append(row)
                 print(f"{name:9s} {k:3d}s {method:24s} road+dir final "
                       f"{row['road_dir_final']:.3f}  live {row['road_dir_live']:.3f}  "
-                      f"RMF {row['route_mismatch']:.3f}", file=sys.stderr)
+                      f"RMF {row['route_mismatch']:.3f}  misses "
+                      f"{row['final_misses_by_class']}", file=sys.stderr)
     elapsed = time.perf_counter() - started
     for note in disagreements(rows):
         notes.append(note)
@@ -423,7 +472,8 @@ def main(argv: list[str] | None = None) -> int:
     command = "bench/accuracy.py " + " ".join(argv if argv is not None else sys.argv[1:])
     meta = {
         "command": command.strip(), "seed": args.seed, "drives": args.drives,
-        "duration_s": args.duration, "intervals": intervals, "extracts": args.extract,
+        "duration_s": args.duration, "intervals": intervals, "sim": args.sim,
+        "extracts": args.extract,
         "drive_settings": asdict(settings),
         "hmm": {k: v for k, v in asdict(HmmSettings(lag=args.hmm_lag)).items()
                 if k not in ("sigma_z", "beta")},
@@ -480,7 +530,8 @@ def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
         f"{meta['duration_s']:.0f} s per extract, GPS error sigma "
         f"{meta['drive_settings']['sigma_m']} m per axis, tau "
         f"{meta['drive_settings']['tau_s']} s, outliers "
-        f"{meta['drive_settings']['outlier_p']:.0%}; {meta['elapsed_s']} s in all). "
+        f"{meta['drive_settings']['outlier_p']:.0%}; drive model {meta['sim']}; "
+        f"{meta['elapsed_s']} s in all). "
         f"Code: commit {meta['git_commit'][:12]}"
         f"{' with uncommitted changes under livematch/' if meta['livematch_dirty'] else ''}.",
         "",

@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
+import hashlib
 import importlib.resources
 import itertools
 import json
 import math
+from collections import Counter
 from functools import cache
 
 import numpy as np
@@ -13,6 +15,7 @@ import osmium
 import pytest
 from pyproj import Geod
 
+from livematch.core.build import Road, network_from_roads
 from livematch.core.network import RoadNetwork
 from livematch.errors import BadNetworkError
 from livematch.feed.decode import decode_position
@@ -299,3 +302,95 @@ def test_sim_docstring_examples_hold():
         result = doctest.testmod(module, raise_on_error=False)
         assert result.failed == 0, module.__name__
     assert doctest.testmod(drive).attempted > 0
+
+
+def test_simulate_drive_defaults_bit_identical_to_before_realistic_options():
+    """Default settings still draw exactly the drives they drew before lead_s/revisit_factor."""
+    net = extract_network()
+    d = simulate_drive(net, np.random.default_rng([2009, 1, 3]), "v", T0,
+                       DriveSettings(duration_s=300.0), drivable_segments(net))
+    h = hashlib.sha256()
+    h.update(repr(d.path).encode())
+    h.update(repr(d.truth).encode())
+    for a in (d.error_xy, d.outlier_xy, d.accuracy, d.delay):
+        h.update(a.tobytes())
+    h.update(repr(observe(d, 15)).encode())
+    assert d.observed is None and len(d.path) == 23 and len(d.truth) == 301
+    # Digest computed with this same code on main at commit c1bf745, before the opt-in
+    # lead-in/lead-out and revisit options were added: defaults must not change a drive.
+    assert h.hexdigest() == "dba4bf666f372ca8fc8b7795238726e5f0803ed93a306d1aaea72fb0b2d30a04"
+
+
+def test_simulate_drive_lead_in_out_observes_only_the_window():
+    """With lead_s the fixes cover only the middle duration_s; truth is driven around them."""
+    net = grid()
+    lead, settings = 30, DriveSettings(duration_s=120.0, lead_s=30.0, stop_p=0.0)
+    d = simulate_drive(net, np.random.default_rng(11), "v", T0, settings)
+    assert len(d.truth) == 120 + 2 * lead + 1 and d.observed == (30, 150)
+    assert [p.t for p in d.truth[:2]] == [T0 - 30, T0 - 29] and d.truth[-1].t == T0 + 150
+    obs = observe(d, 15)
+    assert [o.t for o in obs] == [T0 + 15.0 * k for k in range(9)]
+    assert [o.truth_index for o in obs] == list(range(30, 151, 15))
+    first, last = d.truth[30], d.truth[150]
+    # Moving at the first fix, and more than the scorer's 30 m tolerance (bench/accuracy.py
+    # TOL_M) of truly driven path on either side of the first and the last fix.
+    assert d.truth[31].path_pos_m > first.path_pos_m
+    assert first.path_pos_m - d.truth[0].path_pos_m > 30.0 and first.path_index >= 1
+    assert d.truth[-1].path_pos_m - last.path_pos_m > 30.0
+    assert len(d.path) - 1 > last.path_index
+    assert d.path[d.truth[-1].path_index] == d.truth[-1].segment
+    assert_connected(net, d.path)
+    # The segment driven just before the first fix's is on the true path within 30 m
+    # along it when the fix is near its segment's start (here: the scorer's tolerance).
+    tp = TruePath(d.path, net.seg_len)
+    before = d.path[first.path_index - 1]
+    assert tp.near(before, first.path_pos_m, first.offset_m + 1e-9)
+    # Without a lead-in the drive starts at a vertex at standstill, observed from second 0.
+    plain = simulate_drive(net, np.random.default_rng(11), "v", T0,
+                           DriveSettings(duration_s=120.0, stop_p=0.0))
+    assert plain.observed is None and plain.truth[0].path_pos_m == 0.0
+    assert observe(plain, 15)[0].truth_index == 0 and len(plain.truth) == 121
+
+
+def test_drive_settings_refuse_bad_realistic_options():
+    """A negative or fractional lead and a revisit factor outside (0, 1] are refused."""
+    with pytest.raises(ValueError, match="lead_s must be >= 0 seconds, got -1"):
+        DriveSettings(lead_s=-1.0)
+    with pytest.raises(ValueError, match=r"revisit_factor must be in \(0, 1\], got 0"):
+        DriveSettings(revisit_factor=0.0)
+    with pytest.raises(ValueError, match=r"got 1\.5"):
+        DriveSettings(revisit_factor=1.5)
+    with pytest.raises(ValueError, match=r"whole number of seconds, got 2\.5"):
+        simulate_drive(grid(), np.random.default_rng(0), "v", T0,
+                       DriveSettings(duration_s=10.0, lead_s=2.5))
+
+
+def lollipop() -> RoadNetwork:
+    """A 1 km two-way road with a 20 m spur at x=500 to an 85 m two-way loop (a 12-gon).
+
+    Like a turning loop at the end of a service road: going round, the loop goes on with
+    a gentle 30 degree turn while leaving down the spur is a sharp turn.
+    """
+    main = Road([(float(x), 0.0) for x in range(0, 1001, 50)], way=1)
+    spur = Road([(500.0, 0.0), (500.0, 20.0)], way=2)
+    r = 85.0 / (2.0 * math.pi)
+    turn = [2.0 * math.pi * k / 12 for k in range(13)]
+    ring = [(500.0 + r * math.sin(a), 20.0 + r - r * math.cos(a)) for a in turn]
+    ring[0] = ring[-1] = (500.0, 20.0)  # exactly the spur's end, so they share the vertex
+    return network_from_roads([main, spur, Road(ring, way=3)])
+
+
+def test_random_route_revisit_factor_does_not_circle_a_small_loop():
+    """With revisit_factor 0.1 no directed segment is driven more than 3 times on a
+    lollipop network (300 seeded 1 km routes); the plain walk circles the loop."""
+    net = lollipop()
+    allowed = drivable_segments(net)
+    assert allowed.all() and net.n_segments == 66
+
+    def most_passes(factor: float) -> list[int]:
+        return [max(Counter(random_route(net, np.random.default_rng(seed), 1000.0, allowed,
+                                         2.0, factor)).values()) for seed in range(300)]
+
+    realistic, plain = most_passes(0.1), most_passes(1.0)
+    assert max(realistic) <= 3
+    assert max(plain) >= 10 and sum(p > 3 for p in plain) >= 50  # the walk it replaces
