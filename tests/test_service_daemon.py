@@ -297,8 +297,10 @@ async def test_daemon_readyz_503_and_requeue_while_broker_down(
             running(daemon):
         port = daemon.http.port  # type: ignore[union-attr]
         async with publisher(broker.port) as pub:
-            for _, payload in first:
-                await pub.publish(topic, payload, qos=1)
+            # All at once (the broker keeps their order): the daemon keeps up with one
+            # fix at a time and has every output acknowledged before the next arrives.
+            await asyncio.gather(*(pub.publish(topic, payload, qos=1)
+                                   for _, payload in first))
         # Stop the broker while outputs wait in the daemon's queue: between the check
         # and the signal nothing else runs on this event loop.
         for _ in range(2000):

@@ -29,9 +29,10 @@ import random
 import select
 import socket
 import ssl
+import threading
 from collections import deque
 from collections.abc import Awaitable, Callable
-from typing import TypeVar
+from typing import Any, TypeVar
 from urllib.parse import urlsplit
 
 import aiomqtt
@@ -261,6 +262,8 @@ class IntakeQueue(asyncio.Queue[aiomqtt.Message]):
         self.shed_total = 0
         self.peak = 0
         self._shed_ids: set[int] = set()
+        self._waiter: asyncio.Future[None] | None = None
+        self._interrupted = False
 
     def _init(self, maxsize: int) -> None:
         self._queue = _Slots()
@@ -287,6 +290,49 @@ class IntakeQueue(asyncio.Queue[aiomqtt.Message]):
     def _get(self) -> aiomqtt.Message:
         slots: _Slots = self._queue
         return slots.popleft()
+
+    def put_nowait(self, item: aiomqtt.Message) -> None:
+        """Queue ``item`` (shedding an older one when full) and wake :meth:`wait`."""
+        super().put_nowait(item)
+        self._wake()
+
+    def interrupt(self, _done: object = None) -> None:
+        """End the current and every later :meth:`wait` (stopping or disconnected).
+
+        Usable as a done-callback of a future (the argument is ignored).
+        """
+        self._interrupted = True
+        self._wake()
+
+    def _wake(self) -> None:
+        waiter = self._waiter
+        if waiter is not None and not waiter.done():
+            waiter.set_result(None)
+
+    async def wait(self) -> None:
+        """Return once a message waits or :meth:`interrupt` was called.
+
+        One future per wait, no task: the receive loop used aiomqtt's message iterator
+        (a task for the queue's get plus an ``asyncio.wait`` per message, inside a second
+        task and wait of its own to race the stop signal), which cost more than relaying
+        the message (``bench/load.py --cpu-per-fix``).
+
+        Example:
+            >>> async def demo():
+            ...     q = IntakeQueue(2, key_of=lambda topic, payload: topic)
+            ...     asyncio.get_running_loop().call_soon(q.interrupt)
+            ...     await q.wait()              # nothing came: returns when interrupted
+            ...     return q.empty()
+            >>> asyncio.run(demo())
+            True
+        """
+        while self.empty() and not self._interrupted:
+            waiter = asyncio.get_running_loop().create_future()
+            self._waiter = waiter
+            try:
+                await waiter
+            finally:
+                self._waiter = None
 
     @property
     def waiting(self) -> int:
@@ -326,6 +372,90 @@ async def until_answered(client: aiomqtt.Client, request: Awaitable[T]) -> T:
         return task.result()
     task.cancel()
     raise aiomqtt.MqttError("Disconnected while waiting for the broker's answer")
+
+
+def write_soon(client: aiomqtt.Client) -> None:
+    """Send queued packets once per turn of the event loop, without a wake-up syscall.
+
+    aiomqtt tells paho to ask for the socket's writability by
+    ``loop.call_soon_threadsafe(loop.add_writer, ...)`` for every packet queued: a write
+    to the event loop's self-pipe, a read of it, a change of the epoll set and a further
+    turn of the loop per PUBACK or PUBLISH. Here a packet queued from the event loop's
+    own thread schedules one ``loop_write`` (which sends every packet queued by then)
+    with ``call_soon``; only when the socket's send buffer is full (paho still wants to
+    write afterwards) is aiomqtt's writer callback registered, as before. Packets queued
+    from another thread (paho's connect runs in an executor) take aiomqtt's way.
+    Must be called in the event loop's thread, before connecting.
+    """
+    paho = client._client
+    loop = asyncio.get_running_loop()
+    loop_thread = threading.get_ident()
+    plain_register = paho.on_socket_register_write
+    plain_unregister = paho.on_socket_unregister_write
+    state = {"writer": False}
+
+    def wait_writable() -> None:
+        state["writer"] = True
+        sock = paho.socket()
+        if plain_register is not None and sock is not None:
+            plain_register(paho, None, sock)
+
+    def flush() -> None:
+        try:
+            paho.loop_write()
+        except Exception as exc:  # as aiomqtt's writer callback: the connection broke
+            disconnected = getattr(client, "_disconnected", None)
+            if isinstance(disconnected, asyncio.Future) and not disconnected.done():
+                disconnected.set_exception(exc)
+            return
+        # paho keeps its "write registered" flag while packets are left (send buffer
+        # full), so it will not ask again: wait for writability the aiomqtt way.
+        if paho.want_write() and not state["writer"]:
+            wait_writable()
+
+    def register(c: Any, userdata: Any, sock: Any) -> None:
+        # paho calls this once until its queue is empty again (it keeps a flag)
+        if threading.get_ident() != loop_thread:
+            wait_writable()
+        else:
+            loop.call_soon(flush)
+
+    def unregister(c: Any, userdata: Any, sock: Any) -> None:
+        if state["writer"]:
+            state["writer"] = False
+            if plain_unregister is not None:
+                plain_unregister(c, userdata, sock)
+
+    paho.on_socket_register_write = register
+    paho.on_socket_unregister_write = unregister
+
+
+def publish_now(client: aiomqtt.Client, topic: str, payload: bytes, *, qos: int,
+                retain: bool) -> object:
+    """Hand one message to paho now; return its ``MQTTMessageInfo`` (``is_published()``).
+
+    aiomqtt's ``publish`` is a coroutine that needs a task per message to keep several in
+    flight, plus an event and a wait per message; the daemon follows its window by
+    polling the infos in order instead, woken by :func:`on_acknowledged`. Raises
+    :class:`aiomqtt.MqttCodeError` when paho refuses the message, as aiomqtt does.
+    """
+    info = client._client.publish(topic, payload, qos, retain)
+    if info.rc != 0:  # paho's MQTT_ERR_SUCCESS
+        raise aiomqtt.MqttCodeError(info.rc, "Could not publish message")
+    return info
+
+
+def on_acknowledged(client: aiomqtt.Client, callback: Callable[[], None]) -> None:
+    """Call ``callback`` (in the event loop) after every PUBACK, besides aiomqtt's own."""
+    paho = client._client
+    inner = paho.on_publish
+
+    def on_publish(*args: Any) -> None:
+        if inner is not None:
+            inner(*args)
+        callback()
+
+    paho.on_publish = on_publish
 
 
 def ack(client: aiomqtt.Client, message: aiomqtt.Message) -> None:
