@@ -401,6 +401,7 @@ def write_soon(client: aiomqtt.Client) -> None:
             plain_register(paho, None, sock)
 
     def flush() -> None:
+        coalesce(paho)
         try:
             paho.loop_write()
         except Exception as exc:  # as aiomqtt's writer callback: the connection broke
@@ -428,6 +429,55 @@ def write_soon(client: aiomqtt.Client) -> None:
 
     paho.on_socket_register_write = register
     paho.on_socket_unregister_write = unregister
+
+
+_PUBLISH = 0x30  # MQTT control packet types (MQTT 5.0 section 2.1.2), high nibble
+_DISCONNECT = 0xE0
+
+
+def coalesce(paho: Any) -> int:
+    """Join the packets paho has queued into one, so that one ``send`` carries them all.
+
+    paho writes every queued packet with a ``send`` of its own: a PUBACK and one or two
+    PUBLISHes per fix, each a system call that wakes the broker. Joined, they go out
+    as one write (the socket has TCP_NODELAY, so as one segment). A queued packet's
+    entry is only read again after its last byte is written, and only for a QoS 0
+    PUBLISH (its delivery callback) or a DISCONNECT (closing the socket): when either is
+    queued, or a packet is already partly written, nothing is joined. Returns how many
+    packets were joined (0: none). Relies on paho-mqtt 2.x's queue of ``_OutPacket``
+    dicts; with any other layout it joins nothing.
+
+    Example:
+        >>> class FakePaho:
+        ...     def __init__(self, packets):
+        ...         self._out_packet = deque({"command": c, "mid": 0, "qos": q, "pos": 0,
+        ...             "to_process": len(b), "packet": b, "info": None} for c, q, b in packets)
+        >>> p = FakePaho([(0x40, 0, b"ack"), (0x32, 1, b"pub")])
+        >>> coalesce(p), [x["packet"] for x in p._out_packet]
+        (2, [b'ackpub'])
+        >>> p = FakePaho([(0x40, 0, b"ack"), (0x30, 0, b"qos0")])  # QoS 0: left alone
+        >>> coalesce(p), len(p._out_packet)
+        (0, 2)
+    """
+    queue = getattr(paho, "_out_packet", None)
+    if not isinstance(queue, deque) or len(queue) < 2:
+        return 0
+    parts = []
+    try:
+        for packet in queue:
+            kind = packet["command"] & 0xF0
+            if (packet["pos"] != 0 or kind == _DISCONNECT
+                    or (kind == _PUBLISH and packet["qos"] == 0)):
+                return 0
+            parts.append(packet["packet"])
+    except (KeyError, TypeError):
+        return 0
+    data = b"".join(parts)
+    queue.clear()
+    # command 0 is reserved in MQTT: paho does nothing for it once it is written
+    queue.append({"command": 0, "mid": 0, "qos": 0, "pos": 0, "to_process": len(data),
+                  "packet": data, "info": None})
+    return len(parts)
 
 
 def publish_now(client: aiomqtt.Client, topic: str, payload: bytes, *, qos: int,
