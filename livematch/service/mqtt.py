@@ -433,6 +433,9 @@ def write_soon(client: aiomqtt.Client) -> None:
 
 _PUBLISH = 0x30  # MQTT control packet types (MQTT 5.0 section 2.1.2), high nibble
 _DISCONNECT = 0xE0
+# Largest joined write (bytes): paho resends a partly written packet from a copy of its
+# rest, so one huge packet behind a full socket would be copied again on every write.
+_JOIN_MAX = 64 * 1024
 
 
 def coalesce(paho: Any) -> int:
@@ -443,8 +446,9 @@ def coalesce(paho: Any) -> int:
     as one write (the socket has TCP_NODELAY, so as one segment). A queued packet's
     entry is only read again after its last byte is written, and only for a QoS 0
     PUBLISH (its delivery callback) or a DISCONNECT (closing the socket): when either is
-    queued, or a packet is already partly written, nothing is joined. Returns how many
-    packets were joined (0: none). Relies on paho-mqtt 2.x's queue of ``_OutPacket``
+    queued, or a packet is already partly written, nothing is joined. Joined writes are
+    at most ``_JOIN_MAX`` bytes (a larger packet stays as it is). Returns how many
+    packets the joined writes carry (0: nothing was joined). Relies on paho-mqtt 2.x's queue of ``_OutPacket``
     dicts; with any other layout it joins nothing.
 
     Example:
@@ -462,22 +466,31 @@ def coalesce(paho: Any) -> int:
     queue = getattr(paho, "_out_packet", None)
     if not isinstance(queue, deque) or len(queue) < 2:
         return 0
-    parts = []
+    chunks: list[list[bytes]] = [[]]
+    size = 0
     try:
         for packet in queue:
             kind = packet["command"] & 0xF0
             if (packet["pos"] != 0 or kind == _DISCONNECT
                     or (kind == _PUBLISH and packet["qos"] == 0)):
                 return 0
-            parts.append(packet["packet"])
+            data = packet["packet"]
+            if size + len(data) > _JOIN_MAX and chunks[-1]:
+                chunks.append([])
+                size = 0
+            chunks[-1].append(data)
+            size += len(data)
     except (KeyError, TypeError):
         return 0
-    data = b"".join(parts)
+    if len(chunks) == len(queue):
+        return 0  # nothing to join
     queue.clear()
-    # command 0 is reserved in MQTT: paho does nothing for it once it is written
-    queue.append({"command": 0, "mid": 0, "qos": 0, "pos": 0, "to_process": len(data),
-                  "packet": data, "info": None})
-    return len(parts)
+    for parts in chunks:
+        data = b"".join(parts)
+        # command 0 is reserved in MQTT: paho does nothing for it once it is written
+        queue.append({"command": 0, "mid": 0, "qos": 0, "pos": 0, "to_process": len(data),
+                      "packet": data, "info": None})
+    return sum(len(parts) for parts in chunks)
 
 
 def publish_now(client: aiomqtt.Client, topic: str, payload: bytes, *, qos: int,
