@@ -448,8 +448,8 @@ def coalesce(paho: Any) -> int:
     PUBLISH (its delivery callback) or a DISCONNECT (closing the socket): when either is
     queued, or a packet is already partly written, nothing is joined. Joined writes are
     at most ``_JOIN_MAX`` bytes (a larger packet stays as it is). Returns how many
-    packets the joined writes carry (0: nothing was joined). Relies on paho-mqtt 2.x's queue of ``_OutPacket``
-    dicts; with any other layout it joins nothing.
+    packets the joined writes carry (0: nothing was joined). Relies on paho-mqtt 2.x's
+    queue of ``_OutPacket`` dicts; with any other layout it joins nothing.
 
     Example:
         >>> class FakePaho:
