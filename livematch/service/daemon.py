@@ -104,6 +104,9 @@ _PUBLISH_WINDOW = 32
 # far more than one message's worth, so a backlog still moves into the intake queue, and
 # few enough (~10 ms of decoding) that a lease renewal's reply is read without delay.
 _DRAIN_PACKETS = 100
+# ... and for at most this long (seconds), so that a turn of the event loop stays short
+# on a busy machine, where the process gets a fraction of a core (mqtt.drain).
+_DRAIN_BUDGET_S = 0.005
 # Shortest interval between two "publish queue full" warnings (seconds).
 _FULL_LOG_EVERY_S = 10.0
 # How far ahead of the wall clock a fix time may push the eviction clock (seconds).
@@ -266,6 +269,7 @@ class Daemon:
         self.store_ok = False
         self.restored = False
         self._stopping = asyncio.Event()
+        self._sleepers: set[asyncio.Future[None]] = set()  # see _sleep_unless_stopping
         self._intake_closed = False
         self._drain_deadline = 0.0
         self._outbox: deque[_Pending] = deque()  # assignments, commits, alerts
@@ -332,6 +336,8 @@ class Daemon:
         if not self._stopping.is_set():
             log.info("stopping", extra=fields(queued=len(self._outbox)))
         self._stopping.set()
+        for waiter in list(self._sleepers):
+            _wake(waiter)
 
     def readiness(self) -> list[str]:
         """What is not ready (empty when ready): ``broker``, ``store``, ``restore``."""
@@ -659,21 +665,27 @@ class Daemon:
         if self._sharded_topic:
             await self._subscribe_before_joining()
         while not self._stopping.is_set():
+            started = time.monotonic()
             try:
-                for shard in await leases.renew():  # first: the deadlines depend on it
+                # one round trip; the lost shards first: the deadlines depend on them
+                lost, self._members = await leases.renew_and_announce()
+                for shard in lost:
                     self._lose(shard, "taken")
-                self._members = await leases.heartbeat()
                 self._rebalance_due.set()
             except StoreError as exc:
+                started = time.monotonic()  # failed: wait a whole period before retrying
                 self.metrics.lease_failures.inc()
                 log.warning("lease renewal failed; will retry", extra=fields(error=exc))
             except Exception:  # a bug must not end the leases: log, count, go on
+                started = time.monotonic()
                 self.metrics.lease_failures.inc()
                 log.exception("lease renewal error; will retry")
             self._check_deadlines()
             self._prune_buffers(time.time())
             self.metrics.shards_held.set(len(self._active))
-            await self._sleep_unless_stopping(period)
+            # The next renewal is due one period after this one was sent, not one period
+            # after its reply: the time the round trip took does not delay the next.
+            await self._sleep_unless_stopping(started + period - time.monotonic())
 
     async def _shard_loop(self) -> None:
         """After each renewal: take free shards up to this worker's share, hand excess over."""
@@ -1235,7 +1247,7 @@ class Daemon:
                     self._process(client, message)
                     # Take what has arrived meanwhile, so that a backlog is shed here
                     # (newest fix of every vehicle kept), not queued at the broker.
-                    drain(client, _DRAIN_PACKETS)
+                    drain(client, _DRAIN_PACKETS, _DRAIN_BUDGET_S)
                 await self._wait_for_room()
                 await asyncio.sleep(0)  # leases, PUBACKs and keepalive run between messages
         finally:
@@ -1513,8 +1525,24 @@ class Daemon:
     # -- helpers -------------------------------------------------------------------
 
     async def _sleep_unless_stopping(self, seconds: float) -> None:
-        with contextlib.suppress(TimeoutError):
-            await asyncio.wait_for(self._stopping.wait(), timeout=seconds)
+        """Sleep ``seconds`` (none when not positive), or until a stop is requested.
+
+        One future, resolved by a timer or by :meth:`request_stop`: woken in two turns
+        of the event loop, where ``asyncio.wait_for`` on the stop event takes four (a
+        task for the event's wait, cancelled on the timeout and then awaited), and under
+        a flood each turn can last 0.1-0.4 s (the lease loop sleeps here).
+        """
+        if seconds <= 0 or self._stopping.is_set():
+            return
+        loop = asyncio.get_running_loop()
+        waiter: asyncio.Future[None] = loop.create_future()
+        timer = loop.call_later(seconds, _wake, waiter)
+        self._sleepers.add(waiter)
+        try:
+            await waiter
+        finally:
+            timer.cancel()
+            self._sleepers.discard(waiter)
 
     def _render_metrics(self) -> bytes:
         self.metrics.vehicles.set(len(self.pipeline.vehicles()))
@@ -1541,6 +1569,12 @@ def _disconnected(client: aiomqtt.Client) -> bool:
     """Whether aiomqtt saw the connection end (messages may still be queued then)."""
     done = getattr(client, "_disconnected", None)
     return isinstance(done, asyncio.Future) and done.done()
+
+
+def _wake(waiter: asyncio.Future[None]) -> None:
+    """Resolve a sleeper's future unless it is already done (woken or cancelled)."""
+    if not waiter.done():
+        waiter.set_result(None)
 
 
 def _internal_reject(topic: str, payload: bytes, exc: Exception) -> Output:
