@@ -67,7 +67,7 @@ from livematch.feed.decode import (
     shard_from_topic,
     vehicle_from_topic,
 )
-from livematch.pipeline import REJECT_PAYLOAD_CHARS, Output
+from livematch.pipeline import REJECT_PAYLOAD_CHARS, Output, UnknownVehicleError
 from livematch.service.http import HealthServer
 from livematch.service.logs import fields
 from livematch.service.metrics import Metrics
@@ -85,12 +85,20 @@ from livematch.service.mqtt import (
 )
 from livematch.service.shards import (
     LeaseManager,
+    Renewal,
+    RenewalThread,
     preference,
     rank_workers,
     shard_of,
     target_share,
 )
-from livematch.service.store import StateStore, StoreError, open_store, redis_client
+from livematch.service.store import (
+    StateStore,
+    StoreError,
+    open_store,
+    redis_client,
+    redis_sync_client,
+)
 
 log = logging.getLogger("livematch.daemon")
 
@@ -455,9 +463,22 @@ class Daemon:
             await self._sleep_unless_stopping(_STORE_PING_S)
 
     async def _checkpoint_loop(self) -> None:
+        """Every ``_TICK_S`` (sooner when a vehicle's checkpoint is due): tick, write, evict.
+
+        While the store fails, a round is tried once per ``_TICK_S`` (a due checkpoint
+        does not wake it sooner: that retried every few milliseconds while Redis was
+        down), and the failure is logged at its start, then at most once per
+        ``_FULL_LOG_EVERY_S`` with the number of failed rounds since the last line.
+        """
+        failed = 0  # rounds failed since the last success
+        unlogged = 0  # of which not yet reported in a log line
+        logged_at = -math.inf
         while not self._stopping.is_set():
-            with contextlib.suppress(TimeoutError):
-                await asyncio.wait_for(self._checkpoint_due.wait(), timeout=_TICK_S)
+            if failed:
+                await self._sleep_unless_stopping(_TICK_S)
+            else:
+                with contextlib.suppress(TimeoutError):
+                    await asyncio.wait_for(self._checkpoint_due.wait(), timeout=_TICK_S)
             self._checkpoint_due.clear()
             try:
                 now = time.time()
@@ -466,9 +487,19 @@ class Daemon:
                         self._route(out)
                 await self._flush_state(everything=False)
                 await self._evict_idle()
+                if failed:
+                    log.info("checkpoints written again", extra=fields(failed_rounds=failed))
+                failed = unlogged = 0
+                logged_at = -math.inf  # a new outage is reported at once
             except StoreError as exc:
                 self.metrics.store_errors.inc()
-                log.warning("checkpoint failed; will retry", extra=fields(error=exc))
+                failed += 1
+                unlogged += 1
+                if time.monotonic() - logged_at >= _FULL_LOG_EVERY_S:
+                    logged_at = time.monotonic()
+                    log.warning("checkpoint failed; will retry",
+                                extra=fields(error=exc, failed_rounds=unlogged))
+                    unlogged = 0
             except Exception:  # a bug must not end checkpointing: log, count, go on
                 self.metrics.store_errors.inc()
                 log.exception("checkpoint loop error; will retry")
@@ -479,18 +510,10 @@ class Daemon:
             await self._flush_shards(everything=everything)
             return
         now = time.monotonic()
-        cfg = self.config.store
-        live = set(self.pipeline.vehicles())
-        due = [v for v, n in self._fixes_since.items()
-               if v in live and n > 0 and (everything or n >= cfg.checkpoint_every_fixes
-                                           or now - self._checkpointed_at(v, now)
-                                           >= cfg.checkpoint_every_s)]
-        if everything:
-            due = sorted(live)
+        due = self.pipeline.vehicles() if everything else self._due_vehicles(now)
         if due:
-            snapshot = {v: self._fixes_since[v] for v in due}
-            blobs = {v: self.pipeline.export_vehicle(v) for v in due}
-            await self.store.save(blobs, ttl_s=cfg.idle_ttl_s)
+            snapshot, blobs = self._export(due)
+            await self.store.save(blobs, ttl_s=self.config.store.idle_ttl_s)
             for v, n in snapshot.items():
                 self._fixes_since[v] -= n
                 if self._fixes_since[v] <= 0:
@@ -652,40 +675,58 @@ class Daemon:
                 self._lose(shard, "expired")
 
     async def _lease_loop(self) -> None:
-        """Announce this worker and renew its leases every ``lease_s / 3`` seconds.
+        """Renew this worker's leases and announce it every ``lease_s / 3`` seconds.
 
-        A task of its own, so that a renewal never waits behind a takeover's restore and
-        replay or a hand-over (which run in ``shards``); intake yields to the event loop
-        after every message and a replay every ``_REPLAY_CHUNK`` messages, so a renewal
-        is sent within milliseconds of being due even under a flood.
+        The renewals run in a thread of their own with a blocking Redis client
+        (:class:`~livematch.service.shards.RenewalThread`): a renewal made in the event
+        loop waits one turn of the loop per request and per reply, and under a flood on
+        a busy machine a turn lasted 0.1-0.4 s, so renewals came up to 5.7 s apart and
+        2 s leases expired (fault suite, load average 8-10). The outcome is applied in
+        the event loop (one turn after it arrives). This task checks the deadlines and
+        prunes the kept-message buffers once per period.
         """
         leases = self.leases
         assert leases is not None
         period = self.config.group.lease_s / 3
         if self._sharded_topic:
             await self._subscribe_before_joining()
-        while not self._stopping.is_set():
-            started = time.monotonic()
-            try:
-                # one round trip; the lost shards first: the deadlines depend on them
-                lost, self._members = await leases.renew_and_announce()
-                for shard in lost:
-                    self._lose(shard, "taken")
-                self._rebalance_due.set()
-            except StoreError as exc:
-                started = time.monotonic()  # failed: wait a whole period before retrying
+        sc = self.config.store
+        loop = asyncio.get_running_loop()
+        renewer = RenewalThread(
+            leases, redis_sync_client(sc.url, timeout_s=min(2.0, period),
+                                      password=self.config.store_password,
+                                      username=sc.username or None,
+                                      ca_file=sc.ca_file or None),
+            period, lambda renewal: loop.call_soon_threadsafe(self._renewed, renewal))
+        renewer.start()
+        try:
+            while not self._stopping.is_set():
+                self._check_deadlines()
+                self._prune_buffers(time.time())
+                self.metrics.shards_held.set(len(self._active))
+                await self._sleep_unless_stopping(period)
+        finally:
+            await asyncio.to_thread(renewer.stop)  # no renewal or announcement after this
+
+    def _renewed(self, renewal: Renewal) -> None:
+        """Apply a renewal round's outcome (in the event loop, from the renewal thread)."""
+        leases = self.leases
+        assert leases is not None
+        try:
+            if renewal.error is not None:
                 self.metrics.lease_failures.inc()
-                log.warning("lease renewal failed; will retry", extra=fields(error=exc))
-            except Exception:  # a bug must not end the leases: log, count, go on
-                started = time.monotonic()
-                self.metrics.lease_failures.inc()
-                log.exception("lease renewal error; will retry")
-            self._check_deadlines()
-            self._prune_buffers(time.time())
-            self.metrics.shards_held.set(len(self._active))
-            # The next renewal is due one period after this one was sent, not one period
-            # after its reply: the time the round trip took does not delay the next.
-            await self._sleep_unless_stopping(started + period - time.monotonic())
+                log.warning("lease renewal failed; will retry",
+                            extra=fields(error=renewal.error))
+                return
+            for shard in leases.apply(renewal):  # first: the deadlines depend on it
+                self._lose(shard, "taken")
+            self._members = renewal.members
+            self._rebalance_due.set()
+        except Exception:  # a bug must not end the leases: log, count, go on
+            self.metrics.lease_failures.inc()
+            log.exception("lease renewal error; will retry")
+        self._check_deadlines()
+        self.metrics.shards_held.set(len(self._active))
 
     async def _shard_loop(self) -> None:
         """After each renewal: take free shards up to this worker's share, hand excess over."""
@@ -1020,10 +1061,33 @@ class Daemon:
         self.metrics.shards_held.set(len(self._active))
         log.info("shard handed over", extra=fields(shard=shard, vehicles=len(vehicles)))
 
+    def _due_vehicles(self, now: float) -> list[str]:
+        """The vehicles whose periodic checkpoint is due (monotonic ``now``), sorted.
+
+        Only vehicles with fixes since their last checkpoint can be due, so only those
+        are looked at (not every vehicle held: this runs every ``_TICK_S``).
+        """
+        cfg = self.config.store
+        return sorted(v for v, n in self._fixes_since.items()
+                      if n > 0 and (n >= cfg.checkpoint_every_fixes
+                                    or now - self._checkpointed_at(v, now)
+                                    >= cfg.checkpoint_every_s))
+
     def _export(self, vehicles: list[str]) -> tuple[dict[str, int], dict[str, bytes]]:
-        """(fixes counted since the last checkpoint, checkpoint blob) of each vehicle."""
-        return ({v: self._fixes_since.get(v, 0) for v in vehicles},
-                {v: self.pipeline.export_vehicle(v) for v in vehicles})
+        """(fixes counted since the last checkpoint, checkpoint blob) of each vehicle.
+
+        A vehicle the pipeline no longer holds is left out (and its count forgotten).
+        """
+        counts: dict[str, int] = {}
+        blobs: dict[str, bytes] = {}
+        for v in vehicles:
+            try:
+                blobs[v] = self.pipeline.export_vehicle(v)
+            except UnknownVehicleError:
+                self._fixes_since.pop(v, None)
+                continue
+            counts[v] = self._fixes_since.get(v, 0)
+        return counts, blobs
 
     async def _write_shard(self, shard: int, fence: int,
                            export: tuple[dict[str, int], dict[str, bytes]]) -> bool:
@@ -1068,14 +1132,9 @@ class Daemon:
         leases = self.leases
         assert leases is not None
         now = time.monotonic()
-        cfg = self.config.store
         due_by: dict[int, list[str]] = {}
-        for v in self.pipeline.vehicles():
-            n = self._fixes_since.get(v, 0)
-            if everything or (n > 0 and (n >= cfg.checkpoint_every_fixes
-                                         or now - self._checkpointed_at(v, now)
-                                         >= cfg.checkpoint_every_s)):
-                due_by.setdefault(self._shard(v), []).append(v)
+        for v in self.pipeline.vehicles() if everything else self._due_vehicles(now):
+            due_by.setdefault(self._shard(v), []).append(v)
         for v in [*self._latest_dirty, *self._pending_deletes]:
             due_by.setdefault(self._shard(v), [])
         async with self._write_lock:

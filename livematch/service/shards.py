@@ -40,10 +40,13 @@ from __future__ import annotations
 import hashlib
 import math
 import secrets
+import threading
 import time
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
+from dataclasses import dataclass
 from typing import Any
 
+import redis
 import redis.asyncio as aioredis
 from redis.exceptions import RedisError
 
@@ -175,6 +178,74 @@ return redis.call('ZRANGE', KEYS[1], 0, -1)
 """
 
 
+@dataclass(frozen=True, slots=True)
+class Renewal:
+    """One renewal round's outcome (:meth:`LeaseManager.renewal_round`).
+
+    Attributes:
+        sent: shard -> fencing number, the leases the round tried to extend.
+        started: monotonic time before the request was sent (the new deadlines count
+            from it, so they never fall after the leases' expiry in Redis).
+        results: per shard of ``sent``, in order: 1 when extended, 0 when lost.
+        members: the group's live workers, sorted; None when the round failed.
+        error: why the round failed, else None.
+    """
+
+    sent: dict[int, int]
+    started: float
+    results: list[object]
+    members: list[str] | None
+    error: StoreError | None
+
+
+class RenewalThread:
+    """Runs :meth:`LeaseManager.renewal_round` every ``period_s`` in a thread of its own.
+
+    Each outcome goes to ``deliver`` (called in this thread: hand it to the event loop
+    with ``loop.call_soon_threadsafe``). A round is due ``period_s`` after the previous
+    one was sent (after a failure: ``period_s`` after the failure). The thread only
+    waits on Redis, so it needs the GIL for microseconds per round.
+
+    Example::
+
+        thread = RenewalThread(leases, redis.Redis.from_url(url), 2.0 / 3,
+                               lambda r: loop.call_soon_threadsafe(apply, r))
+        thread.start()
+        ...
+        thread.stop()    # waits for a round in progress (at most the client's timeout)
+    """
+
+    def __init__(self, leases: LeaseManager, client: redis.Redis, period_s: float,
+                 deliver: Callable[[Renewal], object]) -> None:
+        self.leases = leases
+        self.client = client
+        self.period_s = period_s
+        self.deliver = deliver
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, name="lease-renewal", daemon=True)
+
+    def start(self) -> None:
+        """Start renewing (the first round at once)."""
+        self._thread.start()
+
+    def stop(self) -> None:
+        """Stop renewing: no round starts after this returns; the client is closed."""
+        self._stop.set()
+        if self._thread.is_alive():
+            self._thread.join()
+        self.client.close()
+
+    def _run(self) -> None:
+        due = time.monotonic()
+        while not self._stop.wait(max(0.0, due - time.monotonic())):
+            renewal = self.leases.renewal_round(self.client)
+            due = (renewal.started if renewal.error is None else time.monotonic()) \
+                + self.period_s
+            if self._stop.is_set():
+                return  # stopping: the event loop may be gone
+            self.deliver(renewal)
+
+
 class LeaseManager:
     """One worker's leases, membership and fenced checkpoint writes in Redis.
 
@@ -303,37 +374,45 @@ class LeaseManager:
             raise self._fail(f"renewing {len(shards)} lease(s)", exc) from exc
         return self._settle(sent, started, results)
 
-    async def renew_and_announce(self) -> tuple[list[int], list[str]]:
-        """:meth:`renew` and :meth:`heartbeat` in one round trip: (shards lost, members).
+    def renewal_round(self, client: redis.Redis) -> Renewal:
+        """Renew every lease held and announce this worker, in one round trip on ``client``.
 
-        The lease loop's every wait (a request sent, its reply read) lasts at least one
-        turn of the event loop, and a turn takes as long as the longest step run in it
-        (a matched message and the packets read after it: 0.1-0.4 s under a flood on a
-        busy machine, measured in the fault suite). So the renewals and the heartbeat
-        go in one pipeline of plain EVALs: scripts registered with ``register_script``
-        would add a ``SCRIPT EXISTS`` round trip to every pipeline. Redis compiles a
-        script sent by EVAL once and keeps it, so sending the text costs only its bytes.
-
-        Example (a worker holding no shard only announces itself)::
-
-            lost, members = await leases.renew_and_announce()   # ([], ["w1"])
+        Blocking: run by :class:`RenewalThread`, with a synchronous client of its own,
+        so that renewals do not wait for the event loop. Every wait of an asyncio
+        renewal (a request sent, its reply read) lasts at least one turn of the event
+        loop, and a turn lasts as long as all the steps run in it: under a flood on a
+        busy machine turns of 0.1-0.4 s made renewal gaps of up to 5.7 s and expired a
+        2 s lease (fault suite, load average 8-10). The leases held are read, not
+        changed: :meth:`apply` applies the outcome in the event loop's thread. One
+        pipeline of plain EVALs (Redis compiles a script once and keeps it; scripts
+        registered with ``register_script`` would add a ``SCRIPT EXISTS`` round trip).
         """
-        shards = sorted(self.held)
-        sent = {shard: self.held[shard] for shard in shards}
+        sent = dict(list(self.held.items()))  # one C-level copy: safe beside the loop
         started = time.monotonic()
         try:
-            async with self.client.pipeline(transaction=False) as pipe:
-                for shard in shards:
-                    pipe.eval(_RENEW, 1, self.key(shard, "lease"), self._value(shard),
-                              self._ttl_ms)
-                pipe.eval(_MEMBERS, 1, self._members_key, self.worker, str(self._ttl_ms))
-                results = await pipe.execute()
+            pipe = client.pipeline(transaction=False)
+            for shard, fence in sent.items():
+                pipe.eval(_RENEW, 1, self.key(shard, "lease"), f"{self.token}:{fence}",
+                          self._ttl_ms)
+            pipe.eval(_MEMBERS, 1, self._members_key, self.worker, str(self._ttl_ms))
+            results = pipe.execute()
         except (RedisError, OSError) as exc:
-            raise self._fail(f"renewing {len(shards)} lease(s) and announcing the worker",
-                             exc) from exc
-        lost = self._settle(sent, started, results[:-1])
-        return lost, sorted(n.decode() if isinstance(n, bytes) else str(n)
-                            for n in results[-1])
+            return Renewal(sent, started, [], None, self._fail(
+                f"renewing {len(sent)} lease(s) and announcing the worker", exc))
+        members = sorted(n.decode() if isinstance(n, bytes) else str(n)
+                         for n in results[-1])
+        return Renewal(sent, started, list(results[:-1]), members, None)
+
+    def apply(self, renewal: Renewal) -> list[int]:
+        """Apply a :meth:`renewal_round` (in the event loop's thread); the shards lost.
+
+        Example (a round that renewed nothing and failed changes nothing)::
+
+            leases.apply(Renewal({}, 0.0, [], None, StoreError("down")))   # []
+        """
+        if renewal.error is not None:
+            return []
+        return self._settle(renewal.sent, renewal.started, renewal.results)
 
     def _settle(self, sent: Mapping[int, int], started: float,
                 results: Sequence[object]) -> list[int]:
