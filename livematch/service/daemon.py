@@ -76,6 +76,7 @@ from livematch.service.mqtt import (
     IntakeQueue,
     ack,
     backoff_delays,
+    cap_inflight,
     drain,
     make_client,
     on_acknowledged,
@@ -106,8 +107,11 @@ log = logging.getLogger("livematch.daemon")
 _TICK_S = 0.5
 # How often the store is pinged for /readyz (seconds).
 _STORE_PING_S = 1.0
-# Most publishes awaiting their acknowledgement at once.
-_PUBLISH_WINDOW = 32
+# Most publishes awaiting their acknowledgement at once (fewer when the broker's Receive
+# Maximum is lower: mqtt.cap_inflight). Under a flood of bad input the rejects go out at
+# about this many per PUBACK delay; paho's own bound of 20 let them pile up past
+# publish.reject_queue_max in the fault suite.
+_PUBLISH_WINDOW = 100
 # Most packets read from the broker's socket after each matched message (mqtt.drain):
 # far more than one message's worth, so a backlog still moves into the intake queue, and
 # few enough (~10 ms of decoding) that a lease renewal's reply is read without delay.
@@ -1213,6 +1217,7 @@ class Daemon:
         client = make_client(cfg, username=self.config.username, password=self.config.password,
                              intake=self._intake)
         write_soon(client)
+        cap_inflight(client, _PUBLISH_WINDOW)
         cancelled = False
         try:
             async with client:

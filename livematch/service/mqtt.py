@@ -517,6 +517,39 @@ def publish_now(client: aiomqtt.Client, topic: str, payload: bytes, *, qos: int,
     return info
 
 
+def cap_inflight(client: aiomqtt.Client, most: int) -> None:
+    """Keep up to ``most`` QoS 1/2 publishes in flight, fewer if the broker says so.
+
+    paho sends at most 20 by default and does not read the broker's Receive Maximum
+    from the CONNACK (MQTT 5.0 section 3.2.2.3.3; absent means 65,535), and sending more
+    than it is a protocol error that ends the connection (section 4.9). So until the
+    CONNACK the bound is ``min(most, 20)``, then ``min(most, Receive Maximum)``. Under a
+    flood the broker's PUBACKs queue behind the messages it sends us, so outputs per
+    second are about the bound divided by that delay. Call before connecting.
+
+    Example::
+
+        cap_inflight(client, 100)   # mosquitto with max_inflight_messages 100: 100
+    """
+    paho = client._client
+    paho.max_inflight_messages_set(max(1, min(most, 20)))
+    inner: Any = paho.on_connect
+
+    def on_connect(c: Any, userdata: Any, flags: Any, reason_code: Any,
+                   properties: Any = None, *rest: Any) -> None:
+        limit = 65_535
+        if properties is not None:
+            with contextlib.suppress(AttributeError):  # paho: absent property
+                limit = int(properties.ReceiveMaximum)
+        # paho's setter refuses once connected; its CONNACK handler calls this before
+        # it sends anything queued, so the attribute behind the setter is safe to set.
+        paho._max_inflight_messages = max(1, min(most, limit))
+        if inner is not None:
+            inner(c, userdata, flags, reason_code, properties, *rest)
+
+    paho.on_connect = on_connect
+
+
 def on_acknowledged(client: aiomqtt.Client, callback: Callable[[], None]) -> None:
     """Call ``callback`` (in the event loop) after every PUBACK, besides aiomqtt's own."""
     paho = client._client
