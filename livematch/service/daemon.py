@@ -78,6 +78,7 @@ from livematch.service.mqtt import (
     backoff_delays,
     cap_inflight,
     drain,
+    lean_receive,
     make_client,
     on_acknowledged,
     publish_now,
@@ -1218,6 +1219,7 @@ class Daemon:
                              intake=self._intake)
         write_soon(client)
         cap_inflight(client, _PUBLISH_WINDOW)
+        lean_receive(client)
         cancelled = False
         try:
             async with client:

@@ -38,8 +38,11 @@ from typing import Any, TypeVar
 from urllib.parse import urlsplit
 
 import aiomqtt
+from paho.mqtt.client import MQTTMessage
+from paho.mqtt.enums import MQTTErrorCode
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
+from paho.mqtt.reasoncodes import ReasonCode
 
 from livematch.config import MqttConfig
 
@@ -515,6 +518,70 @@ def publish_now(client: aiomqtt.Client, topic: str, payload: bytes, *, qos: int,
     if info.rc != 0:  # paho's MQTT_ERR_SUCCESS
         raise aiomqtt.MqttCodeError(info.rc, "Could not publish message")
     return info
+
+
+def lean_receive(client: aiomqtt.Client) -> None:
+    """Decode the common incoming PUBLISH and PUBACK without paho's MQTT 5 objects.
+
+    With MQTT 5 paho builds a ``Properties`` object for every PUBLISH it reads (two
+    dictionaries of every property name and type; ``decode_publish`` took about 6x as
+    long as for the same packet in MQTT 3.1.1) and a ``ReasonCode`` and a ``Properties``
+    for every PUBACK, though nothing here reads them (the intake queue drops them). A
+    QoS 0 or 1 PUBLISH with a topic name and no properties (a zero property length) is
+    decoded here into the same ``MQTTMessage`` (``properties`` None) and handed to
+    paho's own delivery (``_handle_on_message``); a PUBACK of two bytes (success, no
+    reason code or properties, MQTT 5.0 section 3.4.2.1) goes to paho's ``on_publish``
+    dispatch with shared success objects. Anything else takes paho's way. Relies on
+    paho-mqtt 2.x internals (``_in_packet``, ``_handle_publish``,
+    ``_handle_pubackcomp``, ``_do_on_publish``); the test compares with paho's decoding.
+    Call before connecting.
+    """
+    paho: Any = client._client
+    plain_publish = paho._handle_publish
+    plain_puback = paho._handle_pubackcomp
+    success = ReasonCode(PacketTypes.PUBACK)  # "Success"
+    no_properties = Properties(PacketTypes.PUBACK)
+
+    def handle_publish() -> Any:
+        header = paho._in_packet["command"]
+        packet = paho._in_packet["packet"]
+        qos = (header & 0x06) >> 1
+        size = len(packet)
+        if qos > 1 or size < 3:
+            return plain_publish()
+        start = 2 + ((packet[0] << 8) | packet[1])  # after the topic name
+        mid = 0
+        if qos:
+            if size < start + 2:
+                return plain_publish()
+            mid = (packet[start] << 8) | packet[start + 1]
+            start += 2
+        if start == 2 or size <= start or packet[start] != 0:
+            return plain_publish()  # no topic name (an alias), or properties
+        message = MQTTMessage(mid=mid, topic=bytes(packet[2:start - (2 if qos else 0)]))
+        message.dup = bool(header & 0x08)
+        message.qos = qos
+        message.retain = bool(header & 0x01)
+        message.properties = None
+        message.payload = bytes(packet[start + 1:])
+        message.timestamp = time.monotonic()
+        paho._handle_on_message(message)
+        if qos and not paho._manual_ack:
+            return paho._send_puback(mid)
+        return MQTTErrorCode.MQTT_ERR_SUCCESS
+
+    def handle_puback(cmd: str) -> Any:
+        packet = paho._in_packet["packet"]
+        if cmd != "PUBACK" or len(packet) != 2:
+            return plain_puback(cmd)
+        mid = (packet[0] << 8) | packet[1]
+        with paho._out_message_mutex:
+            if mid in paho._out_messages:
+                return paho._do_on_publish(mid, success, no_properties)
+        return MQTTErrorCode.MQTT_ERR_SUCCESS
+
+    paho._handle_publish = handle_publish
+    paho._handle_pubackcomp = handle_puback
 
 
 def cap_inflight(client: aiomqtt.Client, most: int) -> None:
