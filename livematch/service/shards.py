@@ -243,7 +243,10 @@ class RenewalThread:
                 + self.period_s
             if self._stop.is_set():
                 return  # stopping: the event loop may be gone
-            self.deliver(renewal)
+            try:
+                self.deliver(renewal)
+            except RuntimeError:  # the event loop closed without stopping this thread
+                return
 
 
 class LeaseManager:
