@@ -154,6 +154,23 @@ async def test_renewal_thread_renews_while_event_loop_blocked(redis_url: str,
             await asyncio.to_thread(thread.stop)
 
 
+async def test_renewal_thread_retries_failures_soon(redis_url: str, prefix: str) -> None:
+    """While Redis cannot be reached, a round is retried every 0.1 s, not every period."""
+    async with managers(redis_url, prefix, "a") as (a,):
+        got: list[Renewal] = []
+        # port 1 on loopback: nothing listens there, so every connection is refused
+        thread = RenewalThread(a, redis.Redis.from_url("redis://127.0.0.1:1/0",
+                                                       socket_connect_timeout=0.5),
+                               2.0, got.append)
+        thread.start()
+        try:
+            await asyncio.sleep(0.55)
+        finally:
+            await asyncio.to_thread(thread.stop)
+        assert len(got) >= 3  # one per 0.1 s (load permitting); one per period: 1
+        assert all(r.error is not None and r.members is None for r in got)
+
+
 async def test_lease_release_and_deletes(redis_url: str, prefix: str) -> None:
     """A released shard is free at once; fenced deletes remove blob, index and latest."""
     async with managers(redis_url, prefix, "a", "b") as (a, b):

@@ -283,6 +283,8 @@ class Daemon:
         self.restored = False
         self._stopping = asyncio.Event()
         self._sleepers: set[asyncio.Future[None]] = set()  # see _sleep_unless_stopping
+        self._renewal_logged_at = -math.inf  # last "lease renewal failed" line
+        self._renewal_failures = 0  # failed renewal rounds not yet in a log line
         self._intake_closed = False
         self._drain_deadline = 0.0
         self._outbox: deque[_Pending] = deque()  # assignments, commits, alerts
@@ -718,11 +720,18 @@ class Daemon:
         leases = self.leases
         assert leases is not None
         try:
-            if renewal.error is not None:
+            if renewal.error is not None:  # retried every 0.1 s: logged at most every 10 s
                 self.metrics.lease_failures.inc()
-                log.warning("lease renewal failed; will retry",
-                            extra=fields(error=renewal.error))
+                self._renewal_failures += 1
+                now = time.monotonic()
+                if now - self._renewal_logged_at >= _FULL_LOG_EVERY_S:
+                    self._renewal_logged_at = now
+                    log.warning("lease renewal failed; will retry", extra=fields(
+                        error=renewal.error, failed_rounds=self._renewal_failures))
+                    self._renewal_failures = 0
                 return
+            self._renewal_logged_at = -math.inf  # the next outage is reported at once
+            self._renewal_failures = 0
             for shard in leases.apply(renewal):  # first: the deadlines depend on it
                 self._lose(shard, "taken")
             self._members = renewal.members

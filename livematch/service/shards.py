@@ -178,6 +178,10 @@ return redis.call('ZRANGE', KEYS[1], 0, -1)
 """
 
 
+#: Seconds between renewal attempts while they fail (at most the renewal period).
+_RETRY_S = 0.1
+
+
 @dataclass(frozen=True, slots=True)
 class Renewal:
     """One renewal round's outcome (:meth:`LeaseManager.renewal_round`).
@@ -203,7 +207,10 @@ class RenewalThread:
 
     Each outcome goes to ``deliver`` (called in this thread: hand it to the event loop
     with ``loop.call_soon_threadsafe``). A round is due ``period_s`` after the previous
-    one was sent (after a failure: ``period_s`` after the failure). The thread only
+    one was sent; after a failure the next is tried ``_RETRY_S`` later (a lease held is
+    lost a period after the last renewal that could not be repeated: waiting a whole
+    period after a failed one lost every shard of a worker after Redis had been back for
+    0.3 s, fault suite). The thread only
     waits on Redis, so it needs the GIL for microseconds per round.
 
     Example::
@@ -239,8 +246,10 @@ class RenewalThread:
         due = time.monotonic()
         while not self._stop.wait(max(0.0, due - time.monotonic())):
             renewal = self.leases.renewal_round(self.client)
-            due = (renewal.started if renewal.error is None else time.monotonic()) \
-                + self.period_s
+            if renewal.error is None:
+                due = renewal.started + self.period_s
+            else:  # soon again: a lease lives only until a period after the last success
+                due = time.monotonic() + min(self.period_s, _RETRY_S)
             if self._stop.is_set():
                 return  # stopping: the event loop may be gone
             try:
