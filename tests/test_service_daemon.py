@@ -297,8 +297,10 @@ async def test_daemon_readyz_503_and_requeue_while_broker_down(
             running(daemon):
         port = daemon.http.port  # type: ignore[union-attr]
         async with publisher(broker.port) as pub:
-            for _, payload in first:
-                await pub.publish(topic, payload, qos=1)
+            # All at once (the broker keeps their order): the daemon keeps up with one
+            # fix at a time and has every output acknowledged before the next arrives.
+            await asyncio.gather(*(pub.publish(topic, payload, qos=1)
+                                   for _, payload in first))
         # Stop the broker while outputs wait in the daemon's queue: between the check
         # and the signal nothing else runs on this event loop.
         for _ in range(2000):
@@ -340,10 +342,11 @@ async def test_daemon_readyz_503_and_requeue_while_broker_down(
     assert values[("livematch_publish_dropped_total", ())] == 0
 
 
-async def test_daemon_keeps_matching_while_store_down(mosquitto: Mosquitto,
-                                                      own_redis: RedisServer, prefix: str,
-                                                      tmp_path: Path) -> None:
+async def test_daemon_keeps_matching_while_store_down(
+        mosquitto: Mosquitto, own_redis: RedisServer, prefix: str, tmp_path: Path,
+        caplog: pytest.LogCaptureFixture) -> None:
     """Redis stopped: not ready, errors counted, fixes still matched; back: state rewritten."""
+    caplog.set_level(logging.INFO, logger="livematch.daemon")
     cfg = write_config(tmp_path, prefix, broker=mosquitto.url, store=own_redis.url)
     topic = f"{prefix}/fleet/bus-5/position"
     fixes = drive("bus-5", 30)
@@ -385,6 +388,13 @@ async def test_daemon_keeps_matching_while_store_down(mosquitto: Mosquitto,
         assert json.loads(latest)["time"] == fixes[-1][0]  # type: ignore[arg-type]
         assert raw.exists(f"{prefix}:vehicle:bus-5")
     assert [a["time"] for a in col.records("/out/match/")] == [t for t, _ in fixes]
+    # An outage shorter than the 10 s between two such lines: one line at its start
+    # (a round a tick, not one per due checkpoint), one when checkpoints go through again.
+    failed = [r for r in caplog.records if r.getMessage() == "checkpoint failed; will retry"]
+    again = [r for r in caplog.records if r.getMessage() == "checkpoints written again"]
+    assert [r.fields["failed_rounds"] for r in failed] == [1]  # type: ignore[attr-defined]
+    assert len(again) == 1
+    assert again[0].fields["failed_rounds"] >= 2  # type: ignore[attr-defined]  # 1.5 s down
 
 
 async def test_daemon_evicts_idle_vehicle(mosquitto: Mosquitto, redis_server: RedisServer,

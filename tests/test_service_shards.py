@@ -6,10 +6,12 @@ import asyncio
 import contextlib
 import hashlib
 import re
+import time
 from collections.abc import AsyncIterator, Iterator
 from pathlib import Path
 
 import pytest
+import redis
 import redis.asyncio as aioredis
 from scipy.stats import chisquare
 from services import Collector, Mosquitto, RedisServer, drive, publisher, town, write_config
@@ -18,7 +20,14 @@ from livematch.config import load_config
 from livematch.errors import BadConfigError
 from livematch.pipeline import Pipeline
 from livematch.service.daemon import Daemon
-from livematch.service.shards import LeaseManager, preference, shard_of, target_share
+from livematch.service.shards import (
+    LeaseManager,
+    Renewal,
+    RenewalThread,
+    preference,
+    shard_of,
+    target_share,
+)
 from livematch.service.store import StoreError
 
 pytest_plugins = ("fixtures_services",)
@@ -112,6 +121,54 @@ async def test_lease_expires_and_fence_refuses_stale_writer(redis_url: str,
         a.held[1] = 1
         assert await a.renew() == [1]
         assert await b.renew() == []
+
+
+async def test_renewal_thread_renews_while_event_loop_blocked(redis_url: str,
+                                                               prefix: str) -> None:
+    """Renewals from their own thread keep a 1 s lease through a 1.5 s blocked event loop;
+    a lease gone from Redis comes back as lost."""
+    async with managers(redis_url, prefix, "a", "b", lease_s=1.0) as (a, b):
+        assert await a.acquire(1) == 1
+        loop = asyncio.get_running_loop()
+        got: list[Renewal] = []
+        thread = RenewalThread(a, redis.Redis.from_url(redis_url), 1.0 / 3,
+                               lambda r: loop.call_soon_threadsafe(got.append, r))
+        thread.start()
+        try:
+            time.sleep(1.5)  # one long turn of the event loop: nothing async runs
+            await asyncio.sleep(0)  # the outcomes delivered meanwhile arrive
+            assert len(got) >= 3
+            assert [a.apply(r) for r in got] == [[]] * len(got)
+            assert [r.members for r in got] == [["a"]] * len(got)  # b never announced
+            assert a.expired() == []
+            assert await b.acquire(1) is None  # still a's in Redis
+            await a.client.delete(a.key(1, "lease"))
+            got.clear()
+            for _ in range(100):
+                if got:
+                    break
+                await asyncio.sleep(0.02)
+            assert a.apply(got[0]) == [1]
+            assert a.held == {}
+        finally:
+            await asyncio.to_thread(thread.stop)
+
+
+async def test_renewal_thread_retries_failures_soon(redis_url: str, prefix: str) -> None:
+    """While Redis cannot be reached, a round is retried every 0.1 s, not every period."""
+    async with managers(redis_url, prefix, "a") as (a,):
+        got: list[Renewal] = []
+        # port 1 on loopback: nothing listens there, so every connection is refused
+        thread = RenewalThread(a, redis.Redis.from_url("redis://127.0.0.1:1/0",
+                                                       socket_connect_timeout=0.5),
+                               2.0, got.append)
+        thread.start()
+        try:
+            await asyncio.sleep(0.55)
+        finally:
+            await asyncio.to_thread(thread.stop)
+        assert len(got) >= 3  # one per 0.1 s (load permitting); one per period: 1
+        assert all(r.error is not None and r.members is None for r in got)
 
 
 async def test_lease_release_and_deletes(redis_url: str, prefix: str) -> None:

@@ -25,18 +25,24 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import logging
+import math
 import random
 import select
 import socket
 import ssl
+import threading
+import time
 from collections import deque
 from collections.abc import Awaitable, Callable
-from typing import TypeVar
+from typing import Any, TypeVar
 from urllib.parse import urlsplit
 
 import aiomqtt
+from paho.mqtt.client import MQTTMessage
+from paho.mqtt.enums import MQTTErrorCode
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
+from paho.mqtt.reasoncodes import ReasonCode
 
 from livematch.config import MqttConfig
 
@@ -96,7 +102,7 @@ def make_client(config: MqttConfig, *, username: str | None, password: str | Non
     return client
 
 
-def drain(client: aiomqtt.Client, max_packets: int) -> int:
+def drain(client: aiomqtt.Client, max_packets: int, budget_s: float = math.inf) -> int:
     """Read about ``max_packets`` packets already waiting on the socket; return how many.
 
     aiomqtt reads one packet (or one per publish in flight) each time the event loop sees
@@ -106,11 +112,18 @@ def drain(client: aiomqtt.Client, max_packets: int) -> int:
     moves the backlog into the :class:`IntakeQueue`, which keeps every vehicle's newest
     fix. Reading is cheap next to matching (tens of microseconds against milliseconds).
     Errors are left for aiomqtt's own reader to find and report.
+
+    Reading stops early once ``budget_s`` seconds have passed: everything else in the
+    process (lease renewals, acknowledgements) waits while a turn of the event loop
+    lasts, and on a busy machine a matched message and the 100 packets read after it
+    took 80-400 ms of wall time (fault suite, load average 6-8), about three quarters
+    of it reading; what is left is read in a later turn.
     """
     paho = client._client
     read = 0
+    until = time.monotonic() + budget_s
     with contextlib.suppress(Exception):
-        while read < max_packets:
+        while read < max_packets and time.monotonic() < until:
             sock = paho.socket()
             if sock is None:
                 break
@@ -261,6 +274,8 @@ class IntakeQueue(asyncio.Queue[aiomqtt.Message]):
         self.shed_total = 0
         self.peak = 0
         self._shed_ids: set[int] = set()
+        self._waiter: asyncio.Future[None] | None = None
+        self._interrupted = False
 
     def _init(self, maxsize: int) -> None:
         self._queue = _Slots()
@@ -287,6 +302,49 @@ class IntakeQueue(asyncio.Queue[aiomqtt.Message]):
     def _get(self) -> aiomqtt.Message:
         slots: _Slots = self._queue
         return slots.popleft()
+
+    def put_nowait(self, item: aiomqtt.Message) -> None:
+        """Queue ``item`` (shedding an older one when full) and wake :meth:`wait`."""
+        super().put_nowait(item)
+        self._wake()
+
+    def interrupt(self, _done: object = None) -> None:
+        """End the current and every later :meth:`wait` (stopping or disconnected).
+
+        Usable as a done-callback of a future (the argument is ignored).
+        """
+        self._interrupted = True
+        self._wake()
+
+    def _wake(self) -> None:
+        waiter = self._waiter
+        if waiter is not None and not waiter.done():
+            waiter.set_result(None)
+
+    async def wait(self) -> None:
+        """Return once a message waits or :meth:`interrupt` was called.
+
+        One future per wait, no task: the receive loop used aiomqtt's message iterator
+        (a task for the queue's get plus an ``asyncio.wait`` per message, inside a second
+        task and wait of its own to race the stop signal), which cost more than relaying
+        the message (``bench/load.py --cpu-per-fix``).
+
+        Example:
+            >>> async def demo():
+            ...     q = IntakeQueue(2, key_of=lambda topic, payload: topic)
+            ...     asyncio.get_running_loop().call_soon(q.interrupt)
+            ...     await q.wait()              # nothing came: returns when interrupted
+            ...     return q.empty()
+            >>> asyncio.run(demo())
+            True
+        """
+        while self.empty() and not self._interrupted:
+            waiter = asyncio.get_running_loop().create_future()
+            self._waiter = waiter
+            try:
+                await waiter
+            finally:
+                self._waiter = None
 
     @property
     def waiting(self) -> int:
@@ -326,6 +384,250 @@ async def until_answered(client: aiomqtt.Client, request: Awaitable[T]) -> T:
         return task.result()
     task.cancel()
     raise aiomqtt.MqttError("Disconnected while waiting for the broker's answer")
+
+
+def write_soon(client: aiomqtt.Client) -> None:
+    """Send queued packets once per turn of the event loop, without a wake-up syscall.
+
+    aiomqtt tells paho to ask for the socket's writability by
+    ``loop.call_soon_threadsafe(loop.add_writer, ...)`` for every packet queued: a write
+    to the event loop's self-pipe, a read of it, a change of the epoll set and a further
+    turn of the loop per PUBACK or PUBLISH. Here a packet queued from the event loop's
+    own thread schedules one ``loop_write`` (which sends every packet queued by then)
+    with ``call_soon``; only when the socket's send buffer is full (paho still wants to
+    write afterwards) is aiomqtt's writer callback registered, as before. Packets queued
+    from another thread (paho's connect runs in an executor) take aiomqtt's way.
+    Must be called in the event loop's thread, before connecting.
+    """
+    paho = client._client
+    loop = asyncio.get_running_loop()
+    loop_thread = threading.get_ident()
+    plain_register = paho.on_socket_register_write
+    plain_unregister = paho.on_socket_unregister_write
+    state = {"writer": False}
+
+    def wait_writable() -> None:
+        state["writer"] = True
+        sock = paho.socket()
+        if plain_register is not None and sock is not None:
+            plain_register(paho, None, sock)
+
+    def flush() -> None:
+        coalesce(paho)
+        try:
+            paho.loop_write()
+        except Exception as exc:  # as aiomqtt's writer callback: the connection broke
+            disconnected = getattr(client, "_disconnected", None)
+            if isinstance(disconnected, asyncio.Future) and not disconnected.done():
+                disconnected.set_exception(exc)
+            return
+        # paho keeps its "write registered" flag while packets are left (send buffer
+        # full), so it will not ask again: wait for writability the aiomqtt way.
+        if paho.want_write() and not state["writer"]:
+            wait_writable()
+
+    def register(c: Any, userdata: Any, sock: Any) -> None:
+        # paho calls this once until its queue is empty again (it keeps a flag)
+        if threading.get_ident() != loop_thread:
+            wait_writable()
+        else:
+            loop.call_soon(flush)
+
+    def unregister(c: Any, userdata: Any, sock: Any) -> None:
+        if state["writer"]:
+            state["writer"] = False
+            if plain_unregister is not None:
+                plain_unregister(c, userdata, sock)
+
+    paho.on_socket_register_write = register
+    paho.on_socket_unregister_write = unregister
+
+
+_PUBLISH = 0x30  # MQTT control packet types (MQTT 5.0 section 2.1.2), high nibble
+_DISCONNECT = 0xE0
+# Largest joined write (bytes): paho resends a partly written packet from a copy of its
+# rest, so one huge packet behind a full socket would be copied again on every write.
+_JOIN_MAX = 64 * 1024
+
+
+def coalesce(paho: Any) -> int:
+    """Join the packets paho has queued into one, so that one ``send`` carries them all.
+
+    paho writes every queued packet with a ``send`` of its own: a PUBACK and one or two
+    PUBLISHes per fix, each a system call that wakes the broker. Joined, they go out
+    as one write (the socket has TCP_NODELAY, so as one segment). A queued packet's
+    entry is only read again after its last byte is written, and only for a QoS 0
+    PUBLISH (its delivery callback) or a DISCONNECT (closing the socket): when either is
+    queued, or a packet is already partly written, nothing is joined. Joined writes are
+    at most ``_JOIN_MAX`` bytes (a larger packet stays as it is). Returns how many
+    packets the joined writes carry (0: nothing was joined). Relies on paho-mqtt 2.x's
+    queue of ``_OutPacket`` dicts; with any other layout it joins nothing.
+
+    Example:
+        >>> class FakePaho:
+        ...     def __init__(self, packets):
+        ...         self._out_packet = deque({"command": c, "mid": 0, "qos": q, "pos": 0,
+        ...             "to_process": len(b), "packet": b, "info": None} for c, q, b in packets)
+        >>> p = FakePaho([(0x40, 0, b"ack"), (0x32, 1, b"pub")])
+        >>> coalesce(p), [x["packet"] for x in p._out_packet]
+        (2, [b'ackpub'])
+        >>> p = FakePaho([(0x40, 0, b"ack"), (0x30, 0, b"qos0")])  # QoS 0: left alone
+        >>> coalesce(p), len(p._out_packet)
+        (0, 2)
+    """
+    queue = getattr(paho, "_out_packet", None)
+    if not isinstance(queue, deque) or len(queue) < 2:
+        return 0
+    chunks: list[list[bytes]] = [[]]
+    size = 0
+    try:
+        for packet in queue:
+            kind = packet["command"] & 0xF0
+            if (packet["pos"] != 0 or kind == _DISCONNECT
+                    or (kind == _PUBLISH and packet["qos"] == 0)):
+                return 0
+            data = packet["packet"]
+            if size + len(data) > _JOIN_MAX and chunks[-1]:
+                chunks.append([])
+                size = 0
+            chunks[-1].append(data)
+            size += len(data)
+    except (KeyError, TypeError):
+        return 0
+    if len(chunks) == len(queue):
+        return 0  # nothing to join
+    queue.clear()
+    for parts in chunks:
+        data = b"".join(parts)
+        # command 0 is reserved in MQTT: paho does nothing for it once it is written
+        queue.append({"command": 0, "mid": 0, "qos": 0, "pos": 0, "to_process": len(data),
+                      "packet": data, "info": None})
+    return sum(len(parts) for parts in chunks)
+
+
+def publish_now(client: aiomqtt.Client, topic: str, payload: bytes, *, qos: int,
+                retain: bool) -> object:
+    """Hand one message to paho now; return its ``MQTTMessageInfo`` (``is_published()``).
+
+    aiomqtt's ``publish`` is a coroutine that needs a task per message to keep several in
+    flight, plus an event and a wait per message; the daemon follows its window by
+    polling the infos in order instead, woken by :func:`on_acknowledged`. Raises
+    :class:`aiomqtt.MqttCodeError` when paho refuses the message, as aiomqtt does.
+    """
+    info = client._client.publish(topic, payload, qos, retain)
+    if info.rc != 0:  # paho's MQTT_ERR_SUCCESS
+        raise aiomqtt.MqttCodeError(info.rc, "Could not publish message")
+    return info
+
+
+def lean_receive(client: aiomqtt.Client) -> None:
+    """Decode the common incoming PUBLISH and PUBACK without paho's MQTT 5 objects.
+
+    With MQTT 5 paho builds a ``Properties`` object for every PUBLISH it reads (two
+    dictionaries of every property name and type; ``decode_publish`` took about 6x as
+    long as for the same packet in MQTT 3.1.1) and a ``ReasonCode`` and a ``Properties``
+    for every PUBACK, though nothing here reads them (the intake queue drops them). A
+    QoS 0 or 1 PUBLISH with a topic name and no properties (a zero property length) is
+    decoded here into the same ``MQTTMessage`` (``properties`` None) and handed to
+    paho's own delivery (``_handle_on_message``); a PUBACK of two bytes (success, no
+    reason code or properties, MQTT 5.0 section 3.4.2.1) goes to paho's ``on_publish``
+    dispatch with shared success objects. Anything else takes paho's way. Relies on
+    paho-mqtt 2.x internals (``_in_packet``, ``_handle_publish``,
+    ``_handle_pubackcomp``, ``_do_on_publish``); the test compares with paho's decoding.
+    Call before connecting.
+    """
+    paho: Any = client._client
+    plain_publish = paho._handle_publish
+    plain_puback = paho._handle_pubackcomp
+    success = ReasonCode(PacketTypes.PUBACK)  # "Success"
+    no_properties = Properties(PacketTypes.PUBACK)
+
+    def handle_publish() -> Any:
+        header = paho._in_packet["command"]
+        packet = paho._in_packet["packet"]
+        qos = (header & 0x06) >> 1
+        size = len(packet)
+        if qos > 1 or size < 3:
+            return plain_publish()
+        start = 2 + ((packet[0] << 8) | packet[1])  # after the topic name
+        mid = 0
+        if qos:
+            if size < start + 2:
+                return plain_publish()
+            mid = (packet[start] << 8) | packet[start + 1]
+            start += 2
+        if start == 2 or size <= start or packet[start] != 0:
+            return plain_publish()  # no topic name (an alias), or properties
+        message = MQTTMessage(mid=mid, topic=bytes(packet[2:start - (2 if qos else 0)]))
+        message.dup = bool(header & 0x08)
+        message.qos = qos
+        message.retain = bool(header & 0x01)
+        message.properties = None
+        message.payload = bytes(packet[start + 1:])
+        message.timestamp = time.monotonic()
+        paho._handle_on_message(message)
+        if qos and not paho._manual_ack:
+            return paho._send_puback(mid)
+        return MQTTErrorCode.MQTT_ERR_SUCCESS
+
+    def handle_puback(cmd: str) -> Any:
+        packet = paho._in_packet["packet"]
+        if cmd != "PUBACK" or len(packet) != 2:
+            return plain_puback(cmd)
+        mid = (packet[0] << 8) | packet[1]
+        with paho._out_message_mutex:
+            if mid in paho._out_messages:
+                return paho._do_on_publish(mid, success, no_properties)
+        return MQTTErrorCode.MQTT_ERR_SUCCESS
+
+    paho._handle_publish = handle_publish
+    paho._handle_pubackcomp = handle_puback
+
+
+def cap_inflight(client: aiomqtt.Client, most: int) -> None:
+    """Keep up to ``most`` QoS 1/2 publishes in flight, fewer if the broker says so.
+
+    paho sends at most 20 by default and does not read the broker's Receive Maximum
+    from the CONNACK (MQTT 5.0 section 3.2.2.3.3; absent means 65,535), and sending more
+    than it is a protocol error that ends the connection (section 4.9). So until the
+    CONNACK the bound is ``min(most, 20)``, then ``min(most, Receive Maximum)``. Under a
+    flood the broker's PUBACKs queue behind the messages it sends us, so outputs per
+    second are about the bound divided by that delay. Call before connecting.
+
+    Example::
+
+        cap_inflight(client, 100)   # mosquitto with max_inflight_messages 100: 100
+    """
+    paho = client._client
+    paho.max_inflight_messages_set(max(1, min(most, 20)))
+    inner: Any = paho.on_connect
+
+    def on_connect(c: Any, userdata: Any, flags: Any, reason_code: Any,
+                   properties: Any = None, *rest: Any) -> None:
+        limit = 65_535
+        if properties is not None:
+            with contextlib.suppress(AttributeError):  # paho: absent property
+                limit = int(properties.ReceiveMaximum)
+        # paho's setter refuses once connected; its CONNACK handler calls this before
+        # it sends anything queued, so the attribute behind the setter is safe to set.
+        paho._max_inflight_messages = max(1, min(most, limit))
+        if inner is not None:
+            inner(c, userdata, flags, reason_code, properties, *rest)
+
+    paho.on_connect = on_connect
+
+
+def on_acknowledged(client: aiomqtt.Client, callback: Callable[[], None]) -> None:
+    """Call ``callback`` (in the event loop) after every PUBACK, besides aiomqtt's own."""
+    paho = client._client
+    inner = paho.on_publish
+
+    def on_publish(*args: Any) -> None:
+        if inner is not None:
+            inner(*args)
+        callback()
+
+    paho.on_publish = on_publish
 
 
 def ack(client: aiomqtt.Client, message: aiomqtt.Message) -> None:

@@ -34,6 +34,7 @@ import math
 from collections.abc import Iterable, Mapping
 from typing import Any, Protocol, runtime_checkable
 
+import redis
 import redis.asyncio as aioredis
 from redis.exceptions import RedisError
 
@@ -241,6 +242,28 @@ def redis_client(url: str, *, timeout_s: float = 2.0, password: str | None = Non
         >>> "s3cret" in repr(client)
         False
     """
+    return aioredis.Redis.from_url(url, **_redis_options(url, timeout_s, password, username,
+                                                         ca_file))
+
+
+def redis_sync_client(url: str, *, timeout_s: float = 2.0, password: str | None = None,
+                      username: str | None = None, ca_file: str | None = None
+                      ) -> redis.Redis:
+    """A blocking ``redis`` client with the settings of :func:`redis_client`.
+
+    For a thread that must not wait for the event loop (the lease renewals).
+
+    Example (no connection is made until the first command):
+        >>> client = redis_sync_client("redis://127.0.0.1:1/0", password="s3cret")
+        >>> "s3cret" in repr(client)
+        False
+    """
+    return redis.Redis.from_url(url, **_redis_options(url, timeout_s, password, username,
+                                                      ca_file))
+
+
+def _redis_options(url: str, timeout_s: float, password: str | None, username: str | None,
+                   ca_file: str | None) -> dict[str, Any]:
     kwargs: dict[str, Any] = {"socket_timeout": timeout_s,
                               "socket_connect_timeout": timeout_s}
     if password is not None:
@@ -249,7 +272,7 @@ def redis_client(url: str, *, timeout_s: float = 2.0, password: str | None = Non
         kwargs["username"] = username
     if url.startswith("rediss://") and ca_file:
         kwargs["ssl_ca_certs"] = ca_file
-    return aioredis.Redis.from_url(url, **kwargs)
+    return kwargs
 
 
 def open_store(url: str, *, key_prefix: str, password: str | None = None,

@@ -1,0 +1,67 @@
+"""MQTT helpers of the daemon against a real mosquitto on loopback."""
+
+from __future__ import annotations
+
+import asyncio
+
+import aiomqtt
+from paho.mqtt.packettypes import PacketTypes
+from paho.mqtt.properties import Properties
+from services import Collector, Mosquitto
+
+from livematch.service.mqtt import cap_inflight, lean_receive
+
+pytest_plugins = ("fixtures_services",)
+
+
+async def test_cap_inflight_follows_broker_receive_maximum(mosquitto: Mosquitto,
+                                                           prefix: str) -> None:
+    """The in-flight bound is min(asked, the broker's Receive Maximum); 150 QoS 1
+    publishes at once then all arrive over one connection."""
+    # The test broker's config sets max_inflight_messages 100, which mosquitto sends as
+    # its Receive Maximum (MQTT 5.0 section 3.2.2.3.3).
+    for asked, want in ((500, 100), (50, 50)):
+        client = aiomqtt.Client("127.0.0.1", mosquitto.port,
+                                protocol=aiomqtt.ProtocolVersion.V5)
+        cap_inflight(client, asked)
+        assert client._client._max_inflight_messages == min(asked, 20)  # before CONNACK
+        async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/cap/#") as col, client:
+            assert client._client._max_inflight_messages == want
+            await asyncio.gather(*(client.publish(f"{prefix}/cap/{asked}", b"{}", qos=1)
+                                   for _ in range(150)))
+            await col.wait_for(f"/cap/{asked}", 150)
+
+
+async def test_lean_receive_decodes_as_paho(mosquitto: Mosquitto, prefix: str) -> None:
+    """Messages read by lean_receive equal paho's own decoding (topic, payload, QoS,
+    retain), with and without MQTT 5 properties; its PUBACKs complete publishes."""
+    plain = aiomqtt.Client("127.0.0.1", mosquitto.port, protocol=aiomqtt.ProtocolVersion.V5)
+    lean = aiomqtt.Client("127.0.0.1", mosquitto.port, protocol=aiomqtt.ProtocolVersion.V5)
+    lean_receive(lean)
+    user = Properties(PacketTypes.PUBLISH)
+    user.UserProperty = ("k", "v")
+    sent = [(f"{prefix}/lean/a", b'{"x":1}', 0, None), (f"{prefix}/lean/b", b"", 1, None),
+            (f"{prefix}/lean/\u00e9", bytes(range(256)), 1, None),
+            (f"{prefix}/lean/p", b"with properties", 1, user),
+            (f"{prefix}/lean/q", b"qos 0 with properties", 0, user)]
+    got: dict[str, list[tuple[str, bytes, int, bool, str]]] = {}
+    async with plain, lean:
+        for client in (plain, lean):
+            await client.subscribe(f"{prefix}/lean/#", qos=1)
+        for topic, payload, qos, props in sent:  # from the lean client: PUBACKs read lean
+            await lean.publish(topic, payload, qos=qos, properties=props)
+        for name, client in (("plain", plain), ("lean", lean)):
+            rows = got.setdefault(name, [])
+            async with asyncio.timeout(10):
+                async for m in client.messages:
+                    kind = ("none" if m.properties is None else "user"
+                            if hasattr(m.properties, "UserProperty") else "empty")
+                    rows.append((m.topic.value, bytes(m.payload),  # type: ignore[arg-type]
+                                 m.qos, m.retain, kind))
+                    if len(rows) == len(sent):
+                        break
+    # paho gives an empty Properties object where the lean path gives None (its sign)
+    assert got["plain"] == [(t, p, q, False, "empty" if props is None else "user")
+                            for t, p, q, props in sent]
+    assert got["lean"] == [(t, p, q, False, "none" if props is None else "user")
+                           for t, p, q, props in sent]
