@@ -154,6 +154,37 @@ async def test_renewal_thread_renews_while_event_loop_blocked(redis_url: str,
             await asyncio.to_thread(thread.stop)
 
 
+async def test_renewal_thread_lets_leases_lapse_when_event_loop_stuck(redis_url: str,
+                                                                      prefix: str) -> None:
+    """An event loop that applies no renewal for stall_s stops the renewals, so the 1 s
+    lease of a worker stuck for 3 s lapses in Redis and another worker can take the
+    shard (as if the process had died); renewals resume once the loop confirms again."""
+    async with managers(redis_url, prefix, "a", "b", lease_s=1.0) as (a, b):
+        assert await a.acquire(1) == 1
+        loop = asyncio.get_running_loop()
+        got: list[Renewal] = []
+        thread = RenewalThread(a, redis.Redis.from_url(redis_url), 1.0 / 3,
+                               lambda r: loop.call_soon_threadsafe(got.append, r),
+                               stall_s=1.0)
+        thread.start()
+        try:
+            time.sleep(3.0)  # stuck: nothing the thread delivers is applied
+            assert thread.stalled
+            assert await b.acquire(1) == 2  # a's lease lapsed: b holds shard 1 now
+            await asyncio.sleep(0)
+            rounds = len(got)
+            assert rounds <= 5  # about stall_s / period rounds, then none (1 s / 0.33 s)
+            thread.applied()  # the loop runs again and confirms
+            for _ in range(100):
+                if len(got) > rounds:
+                    break
+                await asyncio.sleep(0.02)
+            assert not thread.stalled
+            assert a.apply(got[-1]) == [1]  # a learns that it lost the shard
+        finally:
+            await asyncio.to_thread(thread.stop)
+
+
 async def test_renewal_thread_retries_failures_soon(redis_url: str, prefix: str) -> None:
     """While Redis cannot be reached, a round is retried every 0.1 s, not every period."""
     async with managers(redis_url, prefix, "a") as (a,):

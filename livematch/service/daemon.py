@@ -285,6 +285,7 @@ class Daemon:
         self._sleepers: set[asyncio.Future[None]] = set()  # see _sleep_unless_stopping
         self._renewal_logged_at = -math.inf  # last "lease renewal failed" line
         self._renewal_failures = 0  # failed renewal rounds not yet in a log line
+        self._renewer: RenewalThread | None = None  # group mode: renews the leases
         self._intake_closed = False
         self._drain_deadline = 0.0
         self._outbox: deque[_Pending] = deque()  # assignments, commits, alerts
@@ -704,7 +705,9 @@ class Daemon:
                                       password=self.config.store_password,
                                       username=sc.username or None,
                                       ca_file=sc.ca_file or None),
-            period, lambda renewal: loop.call_soon_threadsafe(self._renewed, renewal))
+            period, lambda renewal: loop.call_soon_threadsafe(self._renewed, renewal),
+            stall_s=2.0 * self.config.group.lease_s)
+        self._renewer = renewer
         renewer.start()
         try:
             while not self._stopping.is_set():
@@ -719,6 +722,8 @@ class Daemon:
         """Apply a renewal round's outcome (in the event loop, from the renewal thread)."""
         leases = self.leases
         assert leases is not None
+        if self._renewer is not None:
+            self._renewer.applied()  # the loop is alive: the thread may go on renewing
         try:
             if renewal.error is not None:  # retried every 0.1 s: logged at most every 10 s
                 self.metrics.lease_failures.inc()

@@ -38,6 +38,7 @@ Example:
 from __future__ import annotations
 
 import hashlib
+import logging
 import math
 import secrets
 import threading
@@ -52,6 +53,8 @@ from redis.exceptions import RedisError
 
 from livematch.config import redact_url
 from livematch.service.store import StoreError
+
+log = logging.getLogger("livematch.shards")
 
 
 def shard_of(vehicle: str, n_shards: int) -> int:
@@ -213,6 +216,14 @@ class RenewalThread:
     0.3 s, fault suite). The thread only
     waits on Redis, so it needs the GIL for microseconds per round.
 
+    A thread that renews on its own would also keep the leases of a worker whose event
+    loop is stuck for good (a bug, a deadlock): its shards would never fail over. So the
+    event loop confirms the outcomes it applies (:meth:`applied`), and when one has
+    waited longer than ``stall_s`` the thread renews nothing more until the loop
+    confirms again: the leases lapse and a standby takes the shards over, as it would if
+    the process had died. ``stall_s`` must be longer than the longest turn a healthy
+    loop takes (under the fault flood on a busy machine turns lasted up to 0.4 s).
+
     Example::
 
         thread = RenewalThread(leases, redis.Redis.from_url(url), 2.0 / 3,
@@ -223,11 +234,15 @@ class RenewalThread:
     """
 
     def __init__(self, leases: LeaseManager, client: redis.Redis, period_s: float,
-                 deliver: Callable[[Renewal], object]) -> None:
+                 deliver: Callable[[Renewal], object], *,
+                 stall_s: float = math.inf) -> None:
         self.leases = leases
         self.client = client
         self.period_s = period_s
         self.deliver = deliver
+        self.stall_s = stall_s
+        self.stalled = False  # True while renewals are held back for a stuck event loop
+        self._waiting_since: float | None = None  # an outcome delivered, not yet applied
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._run, name="lease-renewal", daemon=True)
 
@@ -242,9 +257,23 @@ class RenewalThread:
             self._thread.join()
         self.client.close()
 
+    def applied(self) -> None:
+        """Confirm (from the event loop) that the outcomes delivered so far were applied."""
+        self._waiting_since = None
+
     def _run(self) -> None:
         due = time.monotonic()
         while not self._stop.wait(max(0.0, due - time.monotonic())):
+            waiting = self._waiting_since
+            if waiting is not None and time.monotonic() - waiting > self.stall_s:
+                if not self.stalled:
+                    log.error("event loop has applied no lease renewal for %.1f s: no "
+                              "renewal until it does, so the leases can lapse",
+                              time.monotonic() - waiting)
+                self.stalled = True
+                due = time.monotonic() + min(self.period_s, _RETRY_S)
+                continue
+            self.stalled = False
             renewal = self.leases.renewal_round(self.client)
             if renewal.error is None:
                 due = renewal.started + self.period_s
@@ -252,6 +281,8 @@ class RenewalThread:
                 due = time.monotonic() + min(self.period_s, _RETRY_S)
             if self._stop.is_set():
                 return  # stopping: the event loop may be gone
+            if self._waiting_since is None:  # set before the loop can confirm it
+                self._waiting_since = time.monotonic()
             try:
                 self.deliver(renewal)
             except RuntimeError:  # the event loop closed without stopping this thread
