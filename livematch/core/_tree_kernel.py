@@ -41,6 +41,7 @@ from livematch.core._sweep_kernel import (
     I_VIAN,
     ROW_F,
     ROW_I,
+    compact,
     tree_append,
     tree_sweep,
 )
@@ -54,55 +55,6 @@ __all__ = [
 ]
 
 _jit = numba.njit(cache=True, error_model="numpy")
-
-
-@_jit
-def compact(
-    ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, n: int, lo: int, hi: int,
-    spare_rows: int, spare_vias: int,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray, int, int, int]:
-    """Keep only the live block and its ancestors, in new arrays with room to spare.
-
-    The room left is at least ``spare_rows`` rows (``spare_vias`` vias) and a quarter of
-    those kept, so compactions get rarer as the tree grows (amortised O(1) per row).
-    Returns ``(ti, tf, tv, n, nv, lo)``; the live block keeps its order and length.
-    """
-    keep = np.zeros(n, np.bool_)
-    keep[lo:hi] = True
-    for r in range(n - 1, -1, -1):
-        if keep[r]:
-            p = ti[r, I_PARENT]
-            if p >= 0:
-                keep[p] = True
-    new_index = np.full(n, -1, np.int64)
-    rows = 0
-    vias = 0
-    for r in range(n):
-        if keep[r]:
-            new_index[r] = rows
-            rows += 1
-            vias += ti[r, I_VIAN]
-    cap = rows + max(rows // 4, spare_rows)
-    ti2 = np.empty((cap, ROW_I), np.int32)
-    tf2 = np.empty((cap, ROW_F))
-    tv2 = np.empty(vias + max(vias // 4, spare_vias), np.int32)
-    nv = 0
-    for r in range(n):
-        q = new_index[r]
-        if q < 0:
-            continue
-        p = ti[r, I_PARENT]
-        ti2[q, I_SEG] = ti[r, I_SEG]
-        ti2[q, I_SEQ] = ti[r, I_SEQ]
-        ti2[q, I_PARENT] = new_index[p] if p >= 0 else -1
-        ti2[q, I_VIA0] = nv
-        ti2[q, I_VIAN] = ti[r, I_VIAN]
-        for j in range(ti[r, I_VIAN]):
-            tv2[nv + j] = tv[ti[r, I_VIA0] + j]
-        nv += ti[r, I_VIAN]
-        for c in range(ROW_F):
-            tf2[q, c] = tf[r, c]
-    return ti2, tf2, tv2, rows, nv, int(new_index[lo]) if hi > lo else rows
 
 
 @_jit
