@@ -410,8 +410,11 @@ class Pipeline:
         wanted = (self._control.get(fix.vehicle) or fix.route
                   or self.vehicle_routes.get(fix.vehicle))
         route = routes.get(wanted) if wanted is not None else None
+        alerts = state.alerts
+        if wanted == alerts.requested and (alerts.route is None) == (route is None):
+            return None  # the route it follows already (set_route would change nothing)
         chain = self._chain(route) if route is not None else None
-        changed = state.alerts.set_route(wanted, chain, self.alert_settings)
+        changed = alerts.set_route(wanted, chain, self.alert_settings)
         if changed and wanted is not None and route is None:
             return self._reject(topic, payload, at, "unknown_route",
                                 f"route {wanted!r} of vehicle {fix.vehicle!r} is not loaded",
