@@ -226,9 +226,16 @@ class FenceMonitor:
             todo = sorted(set(near) | {fences.index[k] for k in state})
         else:
             todo = near  # sorted already
+        # Only a fence the vehicle is not inside asks for the inner polygon (entering);
+        # inside one, only the outer polygon counts (leaving). Each fence's state is its
+        # own, so this can be decided for all of them before any is updated.
+        listed = fences.fences
+        entering = [i for i in todo
+                    if not ((st := state.get(listed[i].id)) is not None and st[0])]
+        inner = dict(zip(entering, fences.inside_inner_many(entering, x, y), strict=True))
         alerts: list[Alert] = []
-        for i, in_inner in zip(todo, fences.inside_inner_many(todo, x, y), strict=True):
-            alert = self._one(fences, i, fix, i in near, in_inner)
+        for i in todo:
+            alert = self._one(fences, i, fix, i in near, inner.get(i, False))
             if alert is not None:
                 alerts.append(alert)
         return alerts
