@@ -17,7 +17,8 @@ warm :class:`livematch.pipeline.Pipeline`. Each stage's entry point is wrapped w
 - route monitor: ``RouteMonitor.update`` (both sweep windows and the state machine);
 - fences: ``FenceMonitor.update``;
 - off-network and stale watch: ``OffNetworkMonitor.update``, ``StaleWatch.seen``;
-- records: ``to_record`` (the published JSON-ready dicts, WGS84 conversion);
+- records: ``RecordBuilder.record`` (the published JSON-ready dicts of ``to_record``,
+  WGS84 conversion);
 - pipeline glue: the rest of ``handle`` (dedupe, rate limit, counters, output objects).
 
 Also the number of compiled calls the tracker makes per message (a count, so the same
@@ -48,6 +49,7 @@ from speed import pipeline_setup
 
 import livematch.pipeline as pipeline_module
 from livematch.core import _tree_kernel
+from livematch.core.events import RecordBuilder
 from livematch.core.monitors.fences import FenceMonitor
 from livematch.core.monitors.presence import OffNetworkMonitor, StaleWatch
 from livematch.core.monitors.route import RouteMonitor
@@ -98,7 +100,7 @@ def patch(clock: Clock) -> list[tuple[Any, str, Any]]:
         setattr(owner, name, clock.wrap(stage, original, outer))
 
     put(pipeline_module, "decode_position", "decode")
-    put(pipeline_module, "to_record", "records")
+    put(RecordBuilder, "record", "records")
     put(Tracker, "update", "tracker, Python", outer=True)
     for name in dir(_tree_kernel):
         if hasattr(getattr(_tree_kernel, name), "py_func"):  # a numba dispatcher

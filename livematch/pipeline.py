@@ -3,7 +3,8 @@
 One call per received message: decode and validate (:mod:`livematch.feed.decode`),
 drop redeliveries by (vehicle, time), hand the fix to that vehicle's
 :class:`~livematch.core.tracker.Tracker` (created on its first fix) and turn the events
-into published records (:func:`~livematch.core.events.to_record`)::
+into published records (:func:`~livematch.core.events.to_record`, built by a
+:class:`~livematch.core.events.RecordBuilder` that reads each segment's ids once)::
 
     pipeline = Pipeline(network, MatchSettings())
     for out in pipeline.handle("fleet/bus17/position", payload, at=received):
@@ -66,7 +67,7 @@ import msgspec
 
 from livematch.core import routing
 from livematch.core.candidates import warm_up
-from livematch.core.events import Alert, Assignment, Commit, Event, Filtered, to_record
+from livematch.core.events import Alert, Assignment, Commit, Event, Filtered, RecordBuilder
 from livematch.core.fix import Fix
 from livematch.core.monitors import AlertSettings, Fence, FenceSet, Route, RouteChain
 from livematch.core.monitors.vehicle import VehicleAlerts
@@ -188,13 +189,20 @@ class _VehicleState:
         return ok
 
     def seen(self, t: float) -> bool:
-        i = bisect.bisect_left(self.recent, t)
-        return i < len(self.recent) and self.recent[i] == t
+        recent = self.recent
+        if not recent or t > recent[-1]:
+            return False  # newer than every time held: the usual case, no search
+        i = bisect.bisect_left(recent, t)
+        return i < len(recent) and recent[i] == t
 
     def remember(self, t: float) -> None:
-        bisect.insort(self.recent, t)
-        if len(self.recent) > DEDUPE_WINDOW:
-            del self.recent[0]
+        recent = self.recent
+        if recent and t <= recent[-1]:
+            bisect.insort(recent, t)
+        else:
+            recent.append(t)  # in order: stays sorted
+        if len(recent) > DEDUPE_WINDOW:
+            del recent[0]
 
     @property
     def newest(self) -> float | None:
@@ -265,6 +273,8 @@ class Pipeline:
         self.settings = settings
         self.limits = limits
         self.counters: Counter[str] = Counter()
+        self._records = RecordBuilder(network)
+        self._eps_keys: dict[float, str] = {}  # eps level -> its counter name
         self._vehicles: dict[str, _VehicleState] = {}
         self.routes: dict[str, Route] | None = dict(routes) if routes is not None else None
         self._chains: dict[int, RouteChain] = {}
@@ -400,8 +410,11 @@ class Pipeline:
         wanted = (self._control.get(fix.vehicle) or fix.route
                   or self.vehicle_routes.get(fix.vehicle))
         route = routes.get(wanted) if wanted is not None else None
+        alerts = state.alerts
+        if wanted == alerts.requested and (alerts.route is None) == (route is None):
+            return None  # the route it follows already (set_route would change nothing)
         chain = self._chain(route) if route is not None else None
-        changed = state.alerts.set_route(wanted, chain, self.alert_settings)
+        changed = alerts.set_route(wanted, chain, self.alert_settings)
         if changed and wanted is not None and route is None:
             return self._reject(topic, payload, at, "unknown_route",
                                 f"route {wanted!r} of vehicle {fix.vehicle!r} is not loaded",
@@ -476,13 +489,16 @@ class Pipeline:
                 continue
             if isinstance(event, Assignment):
                 self.counters["assignments"] += 1
-                self.counters[f"eps_m:{float(event.eps_m)!r}"] += 1
+                key = self._eps_keys.get(event.eps_m)
+                if key is None:
+                    key = self._eps_keys[event.eps_m] = f"eps_m:{float(event.eps_m)!r}"
+                self.counters[key] += 1
             elif isinstance(event, Commit):
                 self.counters["commits"] += 1
             elif isinstance(event, Alert):
                 self.counters["alerts"] += 1
                 self.counters[f"alert:{event.alert_kind}"] += 1
-            out.append(Output(event.kind, event.vehicle, to_record(event, self.network)))
+            out.append(Output(event.kind, event.vehicle, self._records.record(event)))
             if isinstance(event, Assignment) and state is not None:
                 fix = state.pending.pop(event.t, None)
                 if fix is not None:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import calendar
+import itertools
 import json
 import math
 from datetime import UTC, datetime, timedelta, timezone
@@ -15,6 +16,7 @@ from livematch.errors import BadMessageError, LivematchError
 from livematch.feed.decode import (
     REASONS,
     FeedLimits,
+    _vehicle_by_levels,
     decode_position,
     known_vehicle,
     parse_time,
@@ -308,6 +310,26 @@ def test_vehicle_from_topic_filters():
     assert vehicle_from_topic("a/v1", "a/+/#") == "v1"  # '#' also matches the parent level
     assert vehicle_from_topic("a/v1/b", "a/#") is None
     assert vehicle_from_topic("x/v1", "+/v1") == "x"
+
+
+def test_vehicle_from_topic_fast_reading_equals_level_by_level():
+    """The two-compare reading of 'prefix/+/suffix' filters gives what the level-by-level
+    reading gives, for every filter and topic built from a small set of levels.
+
+    Reference: the level-by-level walk (``_vehicle_by_levels``), which follows the MQTT
+    topic filter rules (OASIS MQTT 5.0, section 4.7: '+' one level, '#' the rest and the
+    parent level); empty levels, missing and extra levels, '#' and '{shard}' included.
+    """
+    levels = ["fleet", "position", "bus17", "", "+", "#", "{shard}"]
+    filters = {"/".join(c) for n in range(1, 4) for c in itertools.product(levels, repeat=n)
+               if "#" not in c[:-1]}
+    topics = {f for f in filters if not {"+", "#", "{shard}"} & set(f.split("/"))}
+    topics |= {"fleet/bus17/position", "fleet//position", "fleet/position", "/", "//",
+               "fleet/bus17/position/x", "fleet/a/b/position", "livematch/control/v1/route"}
+    for topic_filter in sorted(filters):
+        for topic in sorted(topics):
+            assert (vehicle_from_topic(topic, topic_filter)
+                    == _vehicle_by_levels(topic, topic_filter)), (topic, topic_filter)
 
 
 def test_validate_vehicle_where_is_named():

