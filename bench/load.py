@@ -20,7 +20,9 @@ on this machine and loopback only:
   worker receives the whole feed and drops the other's vehicles) or ``livematch-2s``
   (the same group with the shard in the input topic, ``fleet/{shard}/+/position``, the
   generators publishing each vehicle on its shard's topic: each worker subscribes only
-  to the shards it holds or stands by for);
+  to the shards it holds or stands by for); for breaking the group's cost down,
+  ``livematch-1r`` (one worker, Redis store, no group) and ``livematch-1g`` (a group of
+  one worker: it holds all shards, through Redis);
 - ``--generators`` **load generator** processes (paho-mqtt directly, QoS 1, up to 1,000
   publishes in flight each, every fix due in a 5 ms tick published as one batch), vehicle
   i in generator ``i % generators``, the N vehicles spread evenly over each second;
@@ -88,6 +90,7 @@ POOL_DRIVES = 200  # simulated drives shared by all vehicles
 POOL_SECONDS = 60  # vehicle i starts pool drive i % POOL_DRIVES at second i // POOL_DRIVES
 PROBES = 16  # warm-up vehicles
 WARM_FIXES = 3  # outputs each warm-up vehicle must have had
+CPROFILE_TO: Path | None = None  # --cprofile: run every livematch worker under cProfile
 GRACE_S = 5.0  # outputs arriving later than the step's end + this are missing
 MAX_P99_MS = 1000.0
 MAX_GROWTH_MS = 100.0
@@ -552,10 +555,11 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
             out_topic = "livematch/match/#"
             workers = 2 if system.startswith("livematch-2") else 1
             store, group = "memory://", ""
-            if workers == 2:
+            if workers == 2 or system in ("livematch-1r", "livematch-1g"):
                 redis, rport = start_redis(folder)
                 procs.append(redis)
-                store, group = f"redis://127.0.0.1:{rport}/0", "load"
+                store = f"redis://127.0.0.1:{rport}/0"
+                group = "" if system == "livematch-1r" else "load"
             for w in range(workers):
                 if count_publishes:
                     metrics_ports.append(free_port())
@@ -563,6 +567,10 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                                     SHARD_TOPIC if shards else IN_TOPIC,
                                     metrics_ports[-1] if count_publishes else 0)
                 cmd = [sys.executable, "-m", "livematch.cli"]
+                if CPROFILE_TO is not None:  # --cprofile: each worker's profile at its exit
+                    cmd = [sys.executable, "-m", "cProfile", "-o",
+                           str(CPROFILE_TO / f"{system}.{rate}.w{w}.{time.time():.0f}.prof"),
+                           "-m", "livematch.cli"]
                 if probe_to is not None:
                     cmd = [sys.executable, __file__, "--role", "probe", "--probe-out",
                            str(probe_to / "probe.json")] + (["--nodelay"] if nodelay else []) \
@@ -743,7 +751,7 @@ def ceiling(system: str, rates: list[int], refine: int, seconds: int, generators
 
 # ------------------------------------------------------------ the CPU-per-fix mode
 def cpu_per_fix(rate: int, seconds: int, repeat: int, generators: int, systems: list[str],
-                out: Path, name: str, note: str = "") -> dict[str, Any]:
+                out: Path, name: str, note: str = "", probe: bool = True) -> dict[str, Any]:
     """CPU time per fix of each process, the systems in turn at one fixed rate.
 
     Robust to a shared machine in a way the ceiling search is not: each system handles
@@ -760,7 +768,7 @@ def cpu_per_fix(rate: int, seconds: int, repeat: int, generators: int, systems: 
         for k in range(1, repeat + 1):
             for system in systems:
                 probe_dir = Path(tempfile.mkdtemp(prefix="lm-cpu-"))
-                probed = system == "livematch-1"
+                probed = probe and system == "livematch-1"
                 row = run_step(system, rate, seconds, generators, pool,
                                probe_to=probe_dir if probed else None,
                                count_publishes=system.startswith("livematch"))
@@ -1189,6 +1197,14 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--cpu-per-fix", type=int, default=0, metavar="RATE",
                     help="instead of the search: CPU time per fix of each process at RATE, "
                          "the --systems in turn (default relay,livematch-1), --repeat rounds")
+    ap.add_argument("--cprofile", default="",
+                    help="with --cpu-per-fix: run every livematch worker under cProfile, "
+                         "writing <system>.<rate>.w<k>.<time>.prof into this folder (call "
+                         "counts per fix; the profiler's own cost makes the CPU figures "
+                         "unusable)")
+    ap.add_argument("--no-probe", action="store_true",
+                    help="with --cpu-per-fix: run livematch-1 without the probe (its "
+                         "timers cost CPU the other systems do not pay; no pipeline split)")
     ap.add_argument("--name", default="",
                     help="with --cpu-per-fix: result file stem (default load.cpu-RATE)")
     ap.add_argument("--note", default="",
@@ -1228,12 +1244,17 @@ def main(argv: list[str] | None = None) -> int:
                 args.inflight, args.py_spy, out, name)
         return 0
     if args.cpu_per_fix:
+        global CPROFILE_TO
+        if args.cprofile:
+            CPROFILE_TO = Path(args.cprofile)
+            CPROFILE_TO.mkdir(parents=True, exist_ok=True)
         out = Path(args.out)
         out.mkdir(parents=True, exist_ok=True)
         systems = (args.systems.split(",") if "--systems" in argv
                    else ["relay", "livematch-1"])
         cpu_per_fix(args.cpu_per_fix, args.seconds, args.repeat, args.generators, systems,
-                    out, args.name or f"load.cpu-{args.cpu_per_fix}", args.note)
+                    out, args.name or f"load.cpu-{args.cpu_per_fix}", args.note,
+                    probe=not args.no_probe)
         return 0
     if args.role == "generator":
         generate(args.port, args.pool, args.n, args.seconds, args.first, args.step,

@@ -5,6 +5,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import hashlib
+import math
 import re
 import time
 from collections.abc import AsyncIterator, Iterator
@@ -97,6 +98,27 @@ async def test_lease_exclusive_and_renewed(redis_url: str, prefix: str) -> None:
         owners = await b.owners()
         assert owners[2] == f"{a.token}:1"
         assert owners[0] is None
+
+
+async def test_next_deadline_follows_acquire_renew_and_forget(redis_url: str,
+                                                              prefix: str) -> None:
+    """The earliest lease deadline (kept between changes) moves with every acquisition,
+    renewal and forgotten shard, as the minimum over the shards held would."""
+    async with managers(redis_url, prefix, "a", lease_s=5.0) as (a,):
+        assert a.next_deadline() == math.inf
+        before = time.monotonic()
+        assert await a.acquire(0) == 1
+        first = a.next_deadline()
+        assert before + 5.0 <= first <= time.monotonic() + 5.0
+        await asyncio.sleep(0.05)
+        assert await a.acquire(1) == 1
+        assert a.next_deadline() == first  # shard 0's deadline is still the earliest
+        assert await a.renew() == []  # both extended: the earliest is later now
+        assert first < a.next_deadline() == min(a._deadline.values())
+        a.forget(0)
+        assert a.next_deadline() == a._deadline[1]
+        assert a.expired(now=a._deadline[1]) == [1]
+        assert a.next_deadline() == math.inf
 
 
 async def test_lease_expires_and_fence_refuses_stale_writer(redis_url: str,

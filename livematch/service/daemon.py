@@ -120,6 +120,8 @@ _DRAIN_PACKETS = 100
 # ... and for at most this long (seconds), so that a turn of the event loop stays short
 # on a busy machine, where the process gets a fraction of a core (mqtt.drain).
 _DRAIN_BUDGET_S = 0.005
+# Most messages only kept for another worker's shard taken in one turn of the loop.
+_KEPT_RUN = 16
 # Shortest interval between two "publish queue full" warnings (seconds).
 _FULL_LOG_EVERY_S = 10.0
 # How far ahead of the wall clock a fix time may push the eviction clock (seconds).
@@ -1109,17 +1111,27 @@ class Daemon:
         return counts, blobs
 
     async def _write_shard(self, shard: int, fence: int,
-                           export: tuple[dict[str, int], dict[str, bytes]]) -> bool:
+                           export: tuple[dict[str, int], dict[str, bytes]],
+                           candidates: tuple[list[str], list[str]] | None = None) -> bool:
         """Write a shard's exported checkpoints, dirty latest records and deletions.
 
-        Returns False when the write was fenced out (the shard is then lost).
+        ``candidates``: the shard's vehicles with a dirty latest record and with a
+        pending deletion, grouped by the caller in one pass for every shard (those still
+        dirty or pending are written); None looks through all of them for this shard
+        (a pass per shard costs shards x vehicles: 35 shard lookups per fix in a group
+        holding 64 shards, ``bench/load.py --cprofile``). Returns False when the write
+        was fenced out (the shard is then lost).
         """
         assert self.leases is not None
         now = time.monotonic()
         snapshot, blobs = export
-        dirty = sorted(v for v in self._latest_dirty if self._shard(v) == shard)
+        if candidates is None:
+            dirty = sorted(v for v in self._latest_dirty if self._shard(v) == shard)
+            deleted = sorted(v for v in self._pending_deletes if self._shard(v) == shard)
+        else:
+            dirty = sorted(v for v in candidates[0] if v in self._latest_dirty)
+            deleted = sorted(v for v in candidates[1] if v in self._pending_deletes)
         latest = {v: self._latest[v] for v in dirty if v in self._latest}
-        deleted = sorted(v for v in self._pending_deletes if self._shard(v) == shard)
         if not (blobs or latest or deleted):
             return True
         ok = await self.leases.save(shard, fence=fence, blobs=blobs, latest=latest,
@@ -1154,8 +1166,15 @@ class Daemon:
         due_by: dict[int, list[str]] = {}
         for v in self.pipeline.vehicles() if everything else self._due_vehicles(now):
             due_by.setdefault(self._shard(v), []).append(v)
-        for v in [*self._latest_dirty, *self._pending_deletes]:
-            due_by.setdefault(self._shard(v), [])
+        touched: dict[int, tuple[list[str], list[str]]] = {}  # dirty latest, deletions
+        for v in self._latest_dirty:
+            s = self._shard(v)
+            due_by.setdefault(s, [])
+            touched.setdefault(s, ([], []))[0].append(v)
+        for v in self._pending_deletes:
+            s = self._shard(v)
+            due_by.setdefault(s, [])
+            touched.setdefault(s, ([], []))[1].append(v)
         async with self._write_lock:
             plan = {s: (leases.held[s], self._export(due)) for s, due in sorted(due_by.items())
                     if s in self._active and s in leases.held}
@@ -1165,7 +1184,8 @@ class Daemon:
                 return  # outputs not yet out: a later round writes a newer checkpoint
             for shard, (fence, export) in plan.items():
                 if leases.held.get(shard) == fence:
-                    await self._write_shard(shard, fence, export)
+                    await self._write_shard(shard, fence, export,
+                                            touched.get(shard, ([], [])))
 
     async def _leave_group(self) -> None:
         """On shutdown: checkpoint every shard held (fenced), release it, leave."""
@@ -1310,6 +1330,7 @@ class Daemon:
         closed = getattr(client, "_disconnected", None)
         if isinstance(closed, asyncio.Future):
             closed.add_done_callback(intake.interrupt)
+        kept_run = 0  # messages only kept (another worker's shard) since the last turn
         try:
             while True:
                 await intake.wait()
@@ -1324,10 +1345,20 @@ class Daemon:
                 if self._intake is not None and self._intake.was_shed(message):
                     ack(client, message)  # shed on purpose (and counted): acknowledge
                 else:
-                    self._process(client, message)
+                    if (self._process(client, message) and kept_run < _KEPT_RUN
+                            and not intake.empty()):
+                        # Another worker's fix, only kept (no output): take the next
+                        # message waiting in this turn of the loop, so that the PUBACKs of
+                        # a run of them leave in one send after one loop turn. In a group
+                        # of 2 every worker receives the whole feed (its standby shards'
+                        # fixes are half of it). Nothing is drained meanwhile: the turn
+                        # stays as short as one matched message's.
+                        kept_run += 1
+                        continue
                     # Take what has arrived meanwhile, so that a backlog is shed here
                     # (newest fix of every vehicle kept), not queued at the broker.
                     drain(client, _DRAIN_PACKETS, _DRAIN_BUDGET_S)
+                kept_run = 0
                 await self._wait_for_room()
                 await asyncio.sleep(0)  # leases, PUBACKs and keepalive run between messages
         finally:
@@ -1368,12 +1399,13 @@ class Daemon:
             self._outbox_changed.clear()
             await self._outbox_changed.wait()
 
-    def _process(self, client: aiomqtt.Client, message: aiomqtt.Message) -> None:
+    def _process(self, client: aiomqtt.Client, message: aiomqtt.Message) -> bool:
         """Match one message, queue its outputs, then acknowledge it.
 
         Synchronous on purpose: nothing can interrupt it between matching and the
         acknowledgement, so a message is either fully handled (state, outputs, PUBACK)
-        or not at all (and redelivered).
+        or not at all (and redelivered). Returns True when the message was only kept
+        and acknowledged (another worker's shard), False when it was handled here.
         """
         self.metrics.received.inc()
         payload = message.payload
@@ -1386,7 +1418,7 @@ class Daemon:
             if self.leases is None or self._answers(self._topic_shard(topic)):
                 self._route(wrong)
             ack(client, message)
-            return
+            return False
         if self.leases is not None:
             self._check_deadlines()
             shard = self._message_shard(topic, bytes(payload))
@@ -1400,9 +1432,10 @@ class Daemon:
                     self._keep(shard, at, topic, bytes(payload))
                 if not (shard in self._active or (shard in self._taking and not possible)):
                     ack(client, message)  # another worker's message (or being replayed)
-                    return
+                    return True
         self._handle(topic, bytes(payload), at)
         ack(client, message)
+        return False
 
     def _handle(self, topic: str, payload: bytes, at: float) -> None:
         """Match one message and queue its outputs (no acknowledgement)."""

@@ -317,6 +317,7 @@ class LeaseManager:
         self.token = f"{worker}-{secrets.token_hex(8)}"
         self.held: dict[int, int] = {}
         self._deadline: dict[int, float] = {}
+        self._earliest: float | None = None  # min of _deadline; None: to be recomputed
         self._members_key = f"{prefix}group:{group}:members"
         self._acquire = client.register_script(_ACQUIRE)
         self._renew = client.register_script(_RENEW)
@@ -398,6 +399,7 @@ class LeaseManager:
             return None
         self.held[shard] = int(fence)
         self._deadline[shard] = started + self.lease_s
+        self._earliest = None
         return int(fence)
 
     async def renew(self) -> list[int]:
@@ -470,6 +472,7 @@ class LeaseManager:
                 continue  # released (or lost and taken again) while the renewal was out
             if ok == 1:
                 self._deadline[shard] = started + self.lease_s
+                self._earliest = None
             else:
                 lost.append(shard)
                 self.forget(shard)
@@ -488,13 +491,21 @@ class LeaseManager:
         return gone
 
     def next_deadline(self) -> float:
-        """The earliest local lease deadline (monotonic seconds), inf when none is held."""
-        return min(self._deadline.values(), default=math.inf)
+        """The earliest local lease deadline (monotonic seconds), inf when none is held.
+
+        Asked for every message a worker receives: the minimum is kept until a deadline
+        changes (a renewal, an acquisition, a shard forgotten), not recomputed over every
+        shard held each time.
+        """
+        if self._earliest is None:
+            self._earliest = min(self._deadline.values(), default=math.inf)
+        return self._earliest
 
     def forget(self, shard: int) -> None:
         """Stop considering a shard held (without telling Redis)."""
         self.held.pop(shard, None)
-        self._deadline.pop(shard, None)
+        if self._deadline.pop(shard, None) is not None:
+            self._earliest = None
 
     async def release(self, shard: int) -> None:
         """Give a shard up now (compare-and-delete), so another worker can take it."""
