@@ -220,6 +220,7 @@ def prepare_kernels() -> None:
     warm_up()
     routing.warm_up()  # the bounded search of bridged steps (fixes 10 s or more apart)
 
+
 class Pipeline:
     """Decode, dedupe, track and publish: the whole per-message path of one worker.
 

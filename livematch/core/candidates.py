@@ -372,6 +372,14 @@ def warm_up() -> None:
     tracker = Tracker.from_bytes(net, None, tracker.to_bytes())
     tree = tracker.levels[-1].tree
     row = tree.ancestor_at(tree.best(-1), 0)
+    # kernels a tracker calls from Python only at a junction hold, a forced lag commit or
+    # a spike test (5-20 s between fixes): a service met them compiling mid-run
+    score = tree.live_scores(tracker.fix_xy[:tracker.fix_n], tracker.fix_seq0, 0, 0.02,
+                             30.0, 5.0)
+    best = tree.best(-1, score)
+    tree.junction_split(best, 1.0, score)
+    tree.driven_since(best, row, net.seg_len)
+    tree.common_ancestor(0)
     tree.prune(row)
     # the sweep kernel on its own (the route monitor's step) is a compilation of its own
     live, _ = tree.live_nodes()
