@@ -379,6 +379,23 @@ def test_monitors_doctests():
         assert outcome.failed == 0 and outcome.attempted > 0, name
 
 
+def random_fences(rng: np.random.Generator, count: int, spread: float,
+                  radius: tuple[float, float], half: tuple[float, float]) -> list[Fence]:
+    """``count`` fences centred within ``spread`` metres of the origin: discs of a radius
+    in ``radius`` and boxes of half-sides in ``half`` rotated by 0-90 degrees, in turn."""
+    fences = []
+    for k in range(count):
+        x, y = rng.uniform(-spread, spread, 2)
+        if k % 2:
+            poly = shapely.Point(x, y).buffer(float(rng.uniform(*radius)))
+        else:
+            w, h = rng.uniform(*half, 2)
+            poly = shapely.affinity.rotate(shapely.box(x - w, y - h, x + w, y + h),
+                                           float(rng.uniform(0.0, 90.0)))
+        fences.append(Fence(f"f{k}", poly))
+    return fences
+
+
 def test_fence_set_near_equals_strtree_query() -> None:
     """The fence grid finds exactly the fences shapely's STRtree ``intersects`` finds.
 
@@ -386,16 +403,7 @@ def test_fence_set_near_equals_strtree_query() -> None:
     one fence larger than the grid takes, and points on polygon vertices (boundary).
     """
     rng = np.random.default_rng(3)
-    fences = []
-    for k in range(60):
-        x, y = rng.uniform(-3000.0, 3000.0, 2)
-        if k % 2:
-            poly = shapely.Point(x, y).buffer(float(rng.uniform(20.0, 600.0)))
-        else:
-            w, h = rng.uniform(30.0, 900.0, 2)
-            poly = shapely.affinity.rotate(shapely.box(x - w, y - h, x + w, y + h),
-                                           float(rng.uniform(0.0, 90.0)))
-        fences.append(Fence(f"f{k}", poly))
+    fences = random_fences(rng, 60, 3000.0, (20.0, 600.0), (30.0, 900.0))
     fences.append(Fence("county", shapely.box(-40000.0, -40000.0, 40000.0, 40000.0)))
     fs = FenceSet(fences, AlertSettings())
     tree = shapely.STRtree(fs.outer)
@@ -417,16 +425,7 @@ def test_fence_set_box_skip_equals_shapely_tests() -> None:
     edges.
     """
     rng = np.random.default_rng(5)
-    fences = []
-    for k in range(40):
-        x, y = rng.uniform(-1500.0, 1500.0, 2)
-        if k % 2:
-            poly = shapely.Point(x, y).buffer(float(rng.uniform(30.0, 300.0)))
-        else:
-            w, h = rng.uniform(30.0, 400.0, 2)
-            poly = shapely.affinity.rotate(shapely.box(x - w, y - h, x + w, y + h),
-                                           float(rng.uniform(0.0, 90.0)))
-        fences.append(Fence(f"f{k}", poly))
+    fences = random_fences(rng, 40, 1500.0, (30.0, 300.0), (30.0, 400.0))
     fs = FenceSet(fences, AlertSettings())
     assert not fs._everywhere  # the grid path is the one under test
     points = [tuple(p) for p in rng.uniform(-2000.0, 2000.0, (3000, 2))]
