@@ -8,6 +8,9 @@ from livematch.sim (correlated GPS error, sigma 5 m per axis, 1 % outliers), see
 from __future__ import annotations
 
 import importlib.resources
+import json
+from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -44,3 +47,13 @@ def drive_fixes(network: RoadNetwork, drives: int, duration_s: float,
     """``drives`` simulated drives of ``duration_s`` seconds, as 1 Hz fixes each."""
     return [[Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy) for o in observe(d, 1)]
             for d in simulate_drives(network, drives, duration_s, seed)]
+
+
+def write_report(out_dir: str, stem: str, text: str, data: Any) -> None:
+    """Print a bench's markdown report and write it and its data as ``STEM.md`` and
+    ``STEM.json`` into ``out_dir`` (created if missing)."""
+    print(text)
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    (out / f"{stem}.md").write_text(text, encoding="utf-8")
+    (out / f"{stem}.json").write_text(json.dumps(data, indent=1), encoding="utf-8")

@@ -30,7 +30,6 @@ Results: a Markdown table on stdout and in ``bench/results/kernel.md`` (+ ``.jso
 from __future__ import annotations
 
 import argparse
-import json
 import platform
 import statistics
 import time
@@ -39,7 +38,7 @@ from typing import Any
 
 import numba
 import numpy as np
-from _drives import drive_fixes, load_extract
+from _drives import drive_fixes, load_extract, write_report
 
 from livematch.core import _sweep_kernel as _k
 from livematch.core.candidates import CandidateTree
@@ -200,13 +199,8 @@ def main(argv: list[str] | None = None) -> int:
             f"{r['new_mean']:.1f} | {cell(r['reference'])} | {cell(r['fast'])} | "
             f"{cell(r['tree'])} | {cell(r['kernel_call'])} | {cell(r['kernel_body'])} | "
             f"{r['reference']['mean'] / r['tree']['mean']:.1f}x |")
-    text = "\n".join(lines) + "\n"
-    print(text)
-    out = Path(args.out)
-    out.mkdir(parents=True, exist_ok=True)
-    (out / "kernel.md").write_text(text, encoding="utf-8")
-    (out / "kernel.json").write_text(json.dumps({"command": lines[2], "rows": rows}, indent=1),
-                                     encoding="utf-8")
+    write_report(args.out, "kernel", "\n".join(lines) + "\n",
+                 {"command": lines[2], "rows": rows})
     return 0
 
 

@@ -40,7 +40,7 @@ from typing import Any
 
 import numpy as np
 import shapely
-from _drives import load_extract, simulate_drives
+from _drives import load_extract, simulate_drives, write_report
 
 from livematch.core import sweep
 from livematch.core.fix import Fix
@@ -242,13 +242,8 @@ def main_sparse(args: argparse.Namespace) -> int:
                      f"{r['us_median']:.0f} | {r['us_p95']:.0f} | {r['us_mean']:.0f} | "
                      f"{r['cpu_us_per_fix']:.0f} | {ratio:.1f} | "
                      f"{'yes' if r['events_identical'] else 'NO'} |")
-    text = "\n".join(lines) + "\n"
-    print(text)
-    out = Path(args.out)
-    out.mkdir(parents=True, exist_ok=True)
-    (out / "speed.sparse.md").write_text(text, encoding="utf-8")
-    (out / "speed.sparse.json").write_text(json.dumps(
-        {"load_start": loads, "rows": rows}, indent=1), encoding="utf-8")
+    write_report(args.out, "speed.sparse", "\n".join(lines) + "\n",
+                 {"load_start": loads, "rows": rows})
     return 0 if all(r["events_identical"] for r in rows) else 1
 
 
@@ -297,12 +292,7 @@ def main(argv: list[str] | None = None) -> int:
                      f"{r['us_p95']:.0f} | {r['us_mean']:.0f} | {r['cpu_us_median']:.0f} | "
                      f"{r['state_bytes_median']:.0f} | "
                      f"{r['state_bytes_max']} |")
-    text = "\n".join(lines) + "\n"
-    print(text)
-    out = Path(args.out)
-    out.mkdir(parents=True, exist_ok=True)
-    (out / "speed.md").write_text(text, encoding="utf-8")
-    (out / "speed.json").write_text(json.dumps(rows, indent=1), encoding="utf-8")
+    write_report(args.out, "speed", "\n".join(lines) + "\n", rows)
     return 0
 
 
