@@ -502,6 +502,62 @@ def test_route_window_step_equals_node_reference() -> None:
     assert steps > 20
 
 
+def test_route_window_advance_equals_python_reference() -> None:
+    """The route window's compiled step (sweep or fresh start) equals its Python reference.
+
+    Reference: ``_route_kernel.reference_advance`` (livematch.core.sweep.sweep_step and
+    fresh_start on nodes, pure Python), compared float for float, and the roots of every
+    fresh start against shapely: the chain segments whose ``shapely.distance`` from the
+    fix is within eps (none lies within a micrometre of eps here). A zig-zag open route
+    and a closed loop, each window started with room for one state so the growth path
+    runs, traces along them and back (the forward window dies and starts afresh).
+    """
+    from livematch.core.monitors import _route_kernel as rk
+    from livematch.core.monitors.route import _step_scalars
+    from livematch.core.sweep import StepContext
+
+    zigzag = [(0.0, 0.0)] + [(20.0 * i, 15.0 * (i % 2)) for i in range(1, 40)]
+    loop = [(150.0 * math.cos(a), 150.0 * math.sin(a))
+            for a in np.linspace(0.0, 2.0 * math.pi, 41)]
+    rng = np.random.default_rng(12)
+    fresh_starts = sweeps = 0
+    for pts in (zigzag, loop):
+        ch = chain(pts)
+        for net, view, arrays in ((ch.forward, ch.forward_view, ch.forward_arrays),
+                                  (ch.backward, ch.backward_view, ch.backward_arrays)):
+            lines = shapely.linestrings(np.stack(
+                [net.node_xy[net.seg_from], net.node_xy[net.seg_to]], axis=1))
+            trace = [(x + rng.normal(0, 6), y + rng.normal(0, 6)) for x, y in pts[::2]]
+            trace += [*trace[::-1], (5000.0, 5000.0), *trace]  # back, far away, again
+            w = np.zeros(1 + rk.ROW)
+            rows: list[list[float]] = []
+            for seq, ((x0, y0), (x1, y1)) in enumerate(itertools.pairwise(trace), start=1):
+                chord = math.hypot(x1 - x0, y1 - y0)
+                ctx = StepContext(view, 25.0, x0, y0, x1, y1, seq, float(seq), chord,
+                                  0.02, 0.1, 0.0)
+                rows, fresh = rk.reference_advance(net, view, ctx, rows)
+                scalars = _step_scalars(25.0, x0, y0, x1, y1, chord)
+                while (got := rk.window_advance(arrays.netf, arrays.neti, arrays.fbuf,
+                                                arrays.ibuf, scalars, w))[0] < 0:
+                    assert got[0] == rk.ROWS_OVERFLOW
+                    w = np.concatenate([w, np.zeros(rk.ROW * got[1])])
+                k, got_fresh, most, best_seg, best_pos = got
+                assert k == len(rows) and bool(got_fresh) == fresh
+                assert w[1:1 + rk.ROW * k].reshape(k, rk.ROW).tolist() == rows
+                j = rk.best_row(rows)
+                assert (best_seg, best_pos) == ((int(rows[j][0]), rows[j][2]) if rows
+                                                else (-1, 0.0))
+                assert most == max((r[6] for r in rows), default=0.0)
+                if fresh:
+                    fresh_starts += 1
+                    dist = shapely.distance(lines, shapely.Point(x1, y1))
+                    assert not np.any(np.abs(dist - 25.0) < 1e-6)
+                    assert [int(r[0]) for r in rows] == np.flatnonzero(dist <= 25.0).tolist()
+                else:
+                    sweeps += 1
+    assert fresh_starts > 20 and sweeps > 100
+
+
 def test_route_window_best_equals_python_max() -> None:
     """The compiled best-candidate pick equals ``max`` over (driven, -cost, -segment).
 
