@@ -444,6 +444,63 @@ def test_fence_set_box_skip_equals_shapely_tests() -> None:
         assert fs.inside_inner_many(some, x, y) == [want[i] for i in some], (x, y)
 
 
+def test_fence_probe_equals_shapely_on_edges_vertices_and_holes() -> None:
+    """The compiled probe gives shapely's answer for every fence, boundary points included.
+
+    Reference: ``shapely.intersects_xy`` (GEOS) on each outer and inner polygon. Shapes:
+    random discs and rotated boxes, an axis-aligned box (horizontal edges), a polygon with
+    a hole, a multipolygon, a self-intersecting "bow tie" (invalid: always left to
+    shapely), a 3000-vertex disc (beyond the compiled test's size limit) and a fence too
+    large for the grid. Points: random, every vertex, edge midpoints (on the boundary to
+    within rounding), points on horizontal edges and on the hole's boundary. Also checks
+    that most answers came from the compiled test and that the undecided path ran.
+    """
+    from livematch.core.monitors import _fence_kernel as fk
+
+    rng = np.random.default_rng(21)
+    fences = random_fences(rng, 30, 1500.0, (30.0, 300.0), (30.0, 400.0))
+    ring = shapely.box(-300.0, -300.0, 300.0, 300.0)
+    fences.append(Fence("square", shapely.box(100.0, 100.0, 400.0, 250.0)))
+    fences.append(Fence("hole", ring.difference(shapely.box(-100.0, -100.0, 100.0, 100.0))))
+    fences.append(Fence("multi", shapely.MultiPolygon([
+        shapely.box(500.0, 500.0, 700.0, 700.0), shapely.box(720.0, 500.0, 900.0, 640.0)])))
+    fences.append(Fence("bowtie", shapely.Polygon([(-900.0, -900.0), (-600.0, -600.0),
+                                                   (-600.0, -900.0), (-900.0, -600.0)])))
+    fences.append(Fence("dense", shapely.Point(-500.0, 500.0).buffer(250.0, 750)))
+    fences.append(Fence("county", shapely.box(-40000.0, -40000.0, 40000.0, 40000.0)))
+    for settings in (AlertSettings(), AlertSettings(fence_inner_m=0.0, fence_outer_m=0.0)):
+        fs = FenceSet(fences, settings)
+        points = [tuple(p) for p in rng.uniform(-1600.0, 1600.0, (2000, 2))]
+        for g in (*fs.outer, *fs.inner):
+            for part in getattr(g, "geoms", [g]):
+                for r in (part.exterior, *part.interiors):
+                    xy = shapely.get_coordinates(r)[:40]
+                    points += [tuple(v) for v in xy]
+                    points += [tuple(v) for v in (xy[:-1] + xy[1:]) / 2.0]
+        points += [(250.0, 250.0), (150.0, 100.0), (0.0, 100.0), (-100.0, 0.0), (600.0, 700.0)]
+        every = range(len(fences))
+        # left to shapely: the dense disc, and the bow tie where no margin repairs it (a
+        # buffer of a bow tie is valid)
+        left = {len(fences) - 2} | ({len(fences) - 3} if settings.fence_outer_m == 0 else set())
+        undecided_random: set[int] = set()
+        undecided_boundary = 0
+        for k, (x, y) in enumerate(points):
+            x, y = float(x), float(y)
+            near, inner = fs.probe(x, y)
+            want = [i for i in every if shapely.intersects_xy(fs.outer[i], x, y)]
+            assert near == want, (x, y)
+            assert inner == [bool(shapely.intersects_xy(fs.inner[i], x, y)) for i in near]
+            n = fk.fence_probe(x, y, 250.0, fs._fi, fs._ff, fs._out)
+            rows = fs._out[:3 * n].reshape(n, 3)
+            unsure = rows[np.any(rows[:, 1:] == fk.UNDECIDED, axis=1), 0].tolist()
+            if k < 2000:
+                undecided_random.update(unsure)
+            else:
+                undecided_boundary += len(set(unsure) - left)
+        # random points: only the shapes left to shapely; vertices: the fallback ran
+        assert undecided_random == left and undecided_boundary > 100
+
+
 def test_route_window_step_equals_node_reference() -> None:
     """The compiled route-window step equals sweep_step on nodes plus the driven metres.
 

@@ -27,6 +27,7 @@ from shapely.geometry.base import BaseGeometry
 
 from livematch.core.events import Alert
 from livematch.core.fix import Fix
+from livematch.core.monitors import _fence_kernel as _fk
 from livematch.core.monitors.settings import AlertSettings
 
 
@@ -134,11 +135,54 @@ class FenceSet:
         self._boxes = {cell: tuple((i, *self.outer[i].bounds) for i in ids)
                        for cell, ids in grid.items()}
         self._inner_bounds = [g.bounds for g in self.inner]
+        # The same grid, the polygons' rings and boxes as flat tables for the compiled
+        # probe (one call per fix, shapely only where it cannot be sure: _fence_kernel).
+        self._fi, self._ff = _fk.build_tables(list(zip(self.outer, self.inner, strict=True)),
+                                              grid, self._everywhere)
+        self._out = np.zeros(3 * max(1, len(self.fences)), dtype=np.int64)  # scratch
+
+    def probe(self, x: float, y: float) -> tuple[list[int], list[bool]]:
+        """The fences whose outer polygon holds (x, y), and whether each inner one does.
+
+        Both boundary included; the fences sorted. One compiled call
+        (:func:`~livematch.core.monitors._fence_kernel.fence_probe`); shapely decides the
+        rare point the compiled test cannot be sure of (on or within rounding of an edge).
+        The same answers as :meth:`near_shapely` and :meth:`inside_inner_many`
+        (tests/test_monitors.py compares them).
+
+        >>> fs = FenceSet([Fence("a", shapely.box(0, 0, 100, 100))], AlertSettings())
+        >>> fs.probe(10.0, 50.0), fs.probe(20.0, 50.0), fs.probe(100.0, 50.0)
+        (([0], [False]), ([0], [True]), ([0], [False]))
+        >>> fs.probe(-20.0, 50.0)   # beyond the outer margin
+        ([], [])
+        """
+        n = _fk.fence_probe(x, y, GRID_CELL_M, self._fi, self._ff, self._out)
+        if n == 0:
+            return [], []
+        rows = self._out[:3 * n].tolist()
+        near: list[int] = []
+        inner: list[bool] = []
+        for j in range(0, 3 * n, 3):
+            i, outer, inside = rows[j], rows[j + 1], rows[j + 2]
+            if outer == _fk.UNDECIDED and not shapely.intersects_xy(self.outer[i], x, y):
+                continue
+            if inside == _fk.UNDECIDED:
+                inside = 1 if shapely.intersects_xy(self.inner[i], x, y) else 0
+            near.append(i)
+            inner.append(inside == _fk.INSIDE)
+        return near, inner
 
     def near(self, x: float, y: float) -> list[int]:
         """Indices of the fences whose outer polygon holds (x, y) (boundary included).
 
-        Sorted. The same set an STRtree ``intersects`` query gives (tests/test_monitors.py
+        Sorted (:meth:`probe`'s first half).
+        """
+        return self.probe(x, y)[0]
+
+    def near_shapely(self, x: float, y: float) -> list[int]:
+        """:meth:`near` by shapely's own tests on the grid's candidates (the reference).
+
+        The same set an STRtree ``intersects`` query gives (tests/test_monitors.py
         compares the two).
         """
         key = (math.floor(x / GRID_CELL_M), math.floor(y / GRID_CELL_M))
@@ -211,7 +255,7 @@ class FenceMonitor:
                groups: Iterable[str]) -> list[Alert]:
         """Take one fix at position (x, y) (raw or matched, metres); return its alerts."""
         state = self.state
-        hits = fences.near(x, y)
+        hits, hits_inner = fences.probe(x, y)
         if not hits and not state:
             return []  # near no fence and in none: most fixes of a fleet
         if fences.filtered:
@@ -232,7 +276,11 @@ class FenceMonitor:
         listed = fences.fences
         entering = [i for i in todo
                     if not ((st := state.get(listed[i].id)) is not None and st[0])]
-        inner = dict(zip(entering, fences.inside_inner_many(entering, x, y), strict=True))
+        probed = dict(zip(hits, hits_inner, strict=True))
+        inner = {i: probed[i] for i in entering if i in probed}
+        if len(inner) < len(entering):  # a fence being entered that the point is outside
+            rest = [i for i in entering if i not in probed]
+            inner.update(zip(rest, fences.inside_inner_many(rest, x, y), strict=True))
         alerts: list[Alert] = []
         for i in todo:
             alert = self._one(fences, i, fix, i in near, inner.get(i, False))
