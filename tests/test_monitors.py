@@ -490,7 +490,7 @@ def test_fence_probe_equals_shapely_on_edges_vertices_and_holes() -> None:
             want = [i for i in every if shapely.intersects_xy(fs.outer[i], x, y)]
             assert near == want, (x, y)
             assert inner == [bool(shapely.intersects_xy(fs.inner[i], x, y)) for i in near]
-            n = fk.fence_probe(x, y, 250.0, fs._fi, fs._ff, fs._out)
+            n = abs(fk.fence_probe(x, y, 250.0, fs._fi, fs._ff, fs._out))
             rows = fs._out[:3 * n].reshape(n, 3)
             unsure = rows[np.any(rows[:, 1:] == fk.UNDECIDED, axis=1), 0].tolist()
             if k < 2000:

@@ -40,7 +40,8 @@ This is the y-interval index GEOS keeps for the same job, flattened.
 
 Output rows in ``out`` (int64, at least ``3F``): ``fence, outer, inner`` with a location
 ``INSIDE`` (interior or boundary), ``OUTSIDE`` or ``UNDECIDED``; only fences whose outer
-polygon is not certainly outside are listed, ascending.
+polygon is not certainly outside are listed, ascending. The count returned is negated
+when any location is ``UNDECIDED``, so the common case needs no scan for them.
 """
 
 from __future__ import annotations
@@ -213,6 +214,8 @@ def fence_probe(x: float, y: float, cell_m: float, fi: np.ndarray, ff: np.ndarra
                 out: np.ndarray) -> int:
     """Rows ``fence, outer, inner`` in ``out`` for the fences near (x, y); their number.
 
+    The number is negated when a row holds an ``UNDECIDED`` location.
+
     ``cell_m`` is the grid's cell side (metres); the cell is ``floor(x / cell_m)``,
     ``floor(y / cell_m)``, as the grid was built.
     """
@@ -233,6 +236,7 @@ def fence_probe(x: float, y: float, cell_m: float, fi: np.ndarray, ff: np.ndarra
             lo = ptr[c]
             hi = ptr[c + 1]
     n = 0
+    unsure = False
     j = lo
     e = 0
     while j < hi or e < n_e:  # merge the cell's fences and the everywhere ones, ascending
@@ -245,11 +249,14 @@ def fence_probe(x: float, y: float, cell_m: float, fi: np.ndarray, ff: np.ndarra
         outer = _polygon(fi, ff, 2 * i, x, y)
         if outer == OUTSIDE:
             continue
+        inner = _polygon(fi, ff, 2 * i + 1, x, y)
         out[3 * n] = i
         out[3 * n + 1] = outer
-        out[3 * n + 2] = _polygon(fi, ff, 2 * i + 1, x, y)
+        out[3 * n + 2] = inner
         n += 1
-    return n
+        if outer == UNDECIDED or inner == UNDECIDED:
+            unsure = True
+    return -n if unsure else n
 
 
 def warm_up() -> None:

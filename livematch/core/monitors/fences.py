@@ -16,7 +16,7 @@ outlier never flips a fence). A point on a polygon's boundary counts as inside i
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Collection, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from itertools import compress
 from typing import Any
@@ -157,9 +157,11 @@ class FenceSet:
         ([], [])
         """
         n = _fk.fence_probe(x, y, GRID_CELL_M, self._fi, self._ff, self._out)
-        if n == 0:
-            return [], []
-        rows = self._out[:3 * n].tolist()
+        if n >= 0:  # every answer certain (or no fence near)
+            rows = self._out[:3 * n].tolist()
+            return rows[0::3], [v == _fk.INSIDE for v in rows[2::3]]
+        rows = self._out[:-3 * n].tolist()
+        n = -n
         near: list[int] = []
         inner: list[bool] = []
         for j in range(0, 3 * n, 3):
@@ -255,35 +257,40 @@ class FenceMonitor:
                groups: Iterable[str]) -> list[Alert]:
         """Take one fix at position (x, y) (raw or matched, metres); return its alerts."""
         state = self.state
-        hits, hits_inner = fences.probe(x, y)
-        if not hits and not state:
+        near, near_inner = fences.probe(x, y)
+        if not near and not state:
             return []  # near no fence and in none: most fixes of a fleet
+        inner = dict(zip(near, near_inner, strict=True))  # fence -> point in its inner polygon
         if fences.filtered:
             groups = tuple(groups)
-            near = [i for i in hits if fences.fences[i].applies_to(fix.vehicle, groups)]
+            near = [i for i in near if fences.fences[i].applies_to(fix.vehicle, groups)]
+            outer: Collection[int] = set(near)
         else:
-            near = hits
+            outer = inner.keys()
         if state:
-            for k in [k for k in state if k not in fences.index]:
-                del state[k]  # a fence no longer loaded
+            index = fences.index
+            if not state.keys() <= index.keys():
+                for k in [k for k in state if k not in index]:
+                    del state[k]  # a fence no longer loaded
             # Fences near the point, and those the vehicle is in (to see it leave them).
-            todo = sorted(set(near) | {fences.index[k] for k in state})
+            extra = [i for k in state if (i := index[k]) not in outer]
+            todo = sorted(near + extra) if extra else near  # near: sorted already
         else:
-            todo = near  # sorted already
+            todo = near
         # Only a fence the vehicle is not inside asks for the inner polygon (entering);
         # inside one, only the outer polygon counts (leaving). Each fence's state is its
-        # own, so this can be decided for all of them before any is updated.
+        # own, so this can be decided for all of them before any is updated. The probe
+        # answered for the fences near the point; one being entered (a run of fixes in its
+        # inner polygon under way) that the point is now outside asks shapely.
         listed = fences.fences
-        entering = [i for i in todo
-                    if not ((st := state.get(listed[i].id)) is not None and st[0])]
-        probed = dict(zip(hits, hits_inner, strict=True))
-        inner = {i: probed[i] for i in entering if i in probed}
-        if len(inner) < len(entering):  # a fence being entered that the point is outside
-            rest = [i for i in entering if i not in probed]
-            inner.update(zip(rest, fences.inside_inner_many(rest, x, y), strict=True))
+        rest = [i for i in todo if i not in inner
+                and not ((st := state.get(listed[i].id)) is not None and st[0])]
+        if rest:
+            inner = {**inner, **dict(zip(rest, fences.inside_inner_many(rest, x, y),
+                                         strict=True))}
         alerts: list[Alert] = []
         for i in todo:
-            alert = self._one(fences, i, fix, i in near, inner.get(i, False))
+            alert = self._one(fences, i, fix, i in outer, inner.get(i, False))
             if alert is not None:
                 alerts.append(alert)
         return alerts
