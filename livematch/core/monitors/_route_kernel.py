@@ -1,7 +1,8 @@
 """Compiled step of a route monitor's sweep window (numba, CPU only).
 
-Private: :class:`livematch.core.monitors.route._Window` calls :func:`window_advance` once
-per fix and direction. One call does the whole step of the pure-Python reference
+Private: :class:`livematch.core.monitors.route.RouteMonitor` calls :func:`route_advance`
+once per fix for both directions (:func:`window_advance` is one direction). One window's
+step does all of the pure-Python reference
 (:func:`reference_advance`, built on :func:`livematch.core.sweep.sweep_step` and
 :func:`livematch.core.sweep.fresh_start`): the sweep of the live states, and when none
 survives, the *fresh start* from every chain segment within eps of the new fix, then the
@@ -49,6 +50,7 @@ ROW = 7  # seg, low, pos, x, y, cost, driven
 #: Return codes besides a state count (>= 0).
 SWEEP_OVERFLOW = -1  # the sweep kernel's buffers are too small: grow them, call again
 ROWS_OVERFLOW = -2  # ``w`` is too small: the second value says how many rows are needed
+SKIPPED = -3  # route_advance did not step the reversed window (the forward one overflowed)
 #: Slack of the fresh start's bounding-box test (metres): it only has to keep every
 #: segment the free interval could accept; the free interval decides.
 BOX_SLACK_M = 1e-6
@@ -68,19 +70,12 @@ def _best(w: np.ndarray, k: int) -> int:
     return best
 
 
-@numba.njit(cache=True, error_model="numpy")
-def window_advance(
+@numba.njit(cache=True, error_model="numpy", inline="always")
+def _advance(
     netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
     ctx: np.ndarray, w: np.ndarray,
 ) -> tuple[int, int, float, int, float]:
-    """Advance the window ``w`` by the step ``ctx`` (the sweep kernel's step scalars).
-
-    Returns ``(k, fresh, most, best_seg, best_pos)``: the number of live states now in
-    ``w``, 1 when they come from a fresh start (0 when swept), the metres the best
-    candidate has followed the route, and that candidate's segment and position (-1 and 0
-    when no state is live). ``k`` is ``SWEEP_OVERFLOW`` or ``ROWS_OVERFLOW`` (then
-    ``fresh`` holds the rows needed) when a buffer is too small; ``w`` is then unchanged.
-    """
+    """:func:`window_advance`, inlined into the compiled callers."""
     cap = (w.shape[0] - 1) // ROW
     k = int(w[0])
     n_v = ibuf[0]
@@ -201,6 +196,42 @@ def window_advance(
 
 
 @numba.njit(cache=True, error_model="numpy")
+def window_advance(
+    netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
+    ctx: np.ndarray, w: np.ndarray,
+) -> tuple[int, int, float, int, float]:
+    """Advance the window ``w`` by the step ``ctx`` (the sweep kernel's step scalars).
+
+    Returns ``(k, fresh, most, best_seg, best_pos)``: the number of live states now in
+    ``w``, 1 when they come from a fresh start (0 when swept), the metres the best
+    candidate has followed the route, and that candidate's segment and position (-1 and 0
+    when no state is live). ``k`` is ``SWEEP_OVERFLOW`` or ``ROWS_OVERFLOW`` (then
+    ``fresh`` holds the rows needed) when a buffer is too small; ``w`` is then unchanged.
+    """
+    return _advance(netf, neti, fbuf, ibuf, ctx, w)
+
+
+@numba.njit(cache=True, error_model="numpy")
+def route_advance(
+    netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
+    bnetf: np.ndarray, bneti: np.ndarray, bfbuf: np.ndarray, bibuf: np.ndarray,
+    ctx: np.ndarray, w: np.ndarray, bw: np.ndarray,
+) -> tuple[int, int, float, int, float, int, int, float, int, float]:
+    """:func:`window_advance` of the forward window ``w``, then of the reversed one ``bw``.
+
+    One call per fix instead of two (each call from Python pays numba's dispatch). The
+    ten values are the two windows' five. The reversed window is stepped only when the
+    forward one succeeded (``k >= 0``); its ``k`` is ``SKIPPED`` otherwise, and the caller
+    finishes a window that reported an overflow with :func:`window_advance`.
+    """
+    k, fresh, most, seg, pos = _advance(netf, neti, fbuf, ibuf, ctx, w)
+    if k < 0:
+        return k, fresh, most, seg, pos, SKIPPED, 0, 0.0, -1, 0.0
+    bk, bfresh, bmost, bseg, bpos = _advance(bnetf, bneti, bfbuf, bibuf, ctx, bw)
+    return k, fresh, most, seg, pos, bk, bfresh, bmost, bseg, bpos
+
+
+@numba.njit(cache=True, error_model="numpy")
 def _rebase(w: np.ndarray, k: int) -> None:
     """Subtract the smallest cost of the ``k`` rows from each (the window keeps no history)."""
     base = w[1 + 5]
@@ -288,7 +319,10 @@ def warm_up() -> None:
                                     oneway=True)])
     arrays = sweep_arrays(view_of(net))
     w = np.zeros(1 + ROW * 4)
+    bw = np.zeros(1 + ROW * 4)
+    a = (arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf)
     for x in (10.0, 20.0):
         ctx = np.array((40.0, x - 10.0, 0.0, x, 0.0, 10.0, 0.02, 0.1, 0.0, 0.0))
-        window_advance(arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf, ctx, w)
+        window_advance(*a, ctx, w)
+        route_advance(*a, *a, ctx, w, bw)
     assert math.isfinite(w[1])

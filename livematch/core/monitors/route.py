@@ -133,6 +133,8 @@ class RouteChain:
         self.backward_arrays = sweep_arrays(self.backward_view)
         self.cum_forward: list[float] = _cumulative(self.forward.seg_len)
         self.cum_backward: list[float] = _cumulative(self.backward.seg_len)
+        self._len_forward: list[float] = self.forward.seg_len.tolist()
+        self._len_backward: list[float] = self.backward.seg_len.tolist()
         self.length = float(self.forward.seg_len.sum())
         ring = np.vstack([self.points, self.points[:1]]) if self.closed else self.points
         self.line = shapely.LineString(ring)
@@ -146,9 +148,9 @@ class RouteChain:
         still measured along the forward route.
         """
         if backward:
-            along = self.cum_backward[segment] + pos * float(self.backward.seg_len[segment])
+            along = self.cum_backward[segment] + pos * self._len_backward[segment]
             return self.length - along
-        return self.cum_forward[segment] + pos * float(self.forward.seg_len[segment])
+        return self.cum_forward[segment] + pos * self._len_forward[segment]
 
     def distance(self, x: float, y: float) -> float:
         """Distance in metres from (x, y) to the route line."""
@@ -229,18 +231,29 @@ class _Window:
 
         ``scalars`` are the kernel's step scalars (:func:`_step_scalars`), the same for
         both directions; ``arrays`` the direction's chain in the sweep kernel's layout.
+        (:meth:`RouteMonitor.update` steps both windows in one call; this is its way
+        round an overflow.)
         """
         while True:
             k, fresh, most, best_seg, best_pos = _rk.window_advance(
                 arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf, scalars, self.w)
             if k >= 0:
                 break
-            if k == _rk.SWEEP_OVERFLOW:
-                arrays.grow()
-            else:  # ``fresh`` rows needed
-                grown = np.zeros(1 + _rk.ROW * max(fresh, 2 * (len(self.w) // _rk.ROW)))
-                grown[:len(self.w)] = self.w
-                self.w = grown
+            self.grow(arrays, k, fresh)
+        self.done(k, fresh, most, best_seg, best_pos, seq, t)
+
+    def grow(self, arrays: SweepArrays, code: int, needed: int) -> None:
+        """Make room after the kernel returned ``code`` (an overflow) with ``needed``."""
+        if code == _rk.SWEEP_OVERFLOW:
+            arrays.grow()
+        elif code == _rk.ROWS_OVERFLOW:
+            grown = np.zeros(1 + _rk.ROW * max(needed, 2 * (len(self.w) // _rk.ROW)))
+            grown[:len(self.w)] = self.w
+            self.w = grown
+
+    def done(self, k: int, fresh: int, most: float, best_seg: int, best_pos: float,
+             seq: int, t: float) -> None:
+        """Take the compiled step's answer (:func:`~._route_kernel.window_advance`)."""
         self.k = k
         self.most = most
         self.best_seg = best_seg
@@ -337,8 +350,23 @@ class RouteMonitor:
         self.last_xy = (fix.x, fix.y)
         scalars = _step_scalars(s.eps_route_m, x0, y0, fix.x, fix.y, step_m)
         chain = self.chain
-        self.fwd.step(chain.forward_arrays, scalars, self.seq, fix.t)
-        self.rev.step(chain.backward_arrays, scalars, self.seq, fix.t)
+        fa = chain.forward_arrays
+        ba = chain.backward_arrays
+        fwd = self.fwd
+        rev = self.rev
+        k, fresh, most, seg, pos, bk, bfresh, bmost, bseg, bpos = _rk.route_advance(
+            fa.netf, fa.neti, fa.fbuf, fa.ibuf, ba.netf, ba.neti, ba.fbuf, ba.ibuf,
+            scalars, fwd.w, rev.w)
+        if k >= 0:
+            fwd.done(k, fresh, most, seg, pos, self.seq, fix.t)
+        else:  # an overflow: grow, then one window at a time
+            fwd.grow(fa, k, fresh)
+            fwd.step(fa, scalars, self.seq, fix.t)
+        if bk >= 0:
+            rev.done(bk, bfresh, bmost, bseg, bpos, self.seq, fix.t)
+        else:
+            rev.grow(ba, bk, bfresh)
+            rev.step(ba, scalars, self.seq, fix.t)
         self.trail_m += step_m  # reset at every on-route fix (the anchor)
         alerts: list[Alert] = []
         if self.fwd.live:
@@ -402,7 +430,12 @@ class RouteMonitor:
                 }))
             self.state = "on"
         if self.state == "on":
-            self.anchor = _Anchor(fix.t, fix.x, fix.y, fix.lon, fix.lat, self.progress_m)
+            a = self.anchor
+            if a is None:
+                self.anchor = _Anchor(fix.t, fix.x, fix.y, fix.lon, fix.lat, self.progress_m)
+            else:  # moved in place (nothing else holds it)
+                a.t, a.x, a.y, a.lon, a.lat, a.progress = (fix.t, fix.x, fix.y, fix.lon,
+                                                           fix.lat, self.progress_m)
             self.trail_m = 0.0
             self.rejoin = None
 
