@@ -615,6 +615,33 @@ def test_route_window_advance_equals_python_reference() -> None:
     assert fresh_starts > 20 and sweeps > 100
 
 
+def test_route_kernel_code_key_follows_the_callee_code() -> None:
+    """The route kernel's cache key changes with a compiled callee's code or constants.
+
+    numba's documentation (caching notes, from memory): the disk cache is not invalidated
+    when a function called from another file changes; the key is what forces a new
+    compilation then. Two throwaway modules differing in one expression or one constant.
+    """
+    import types
+
+    import numba
+
+    from livematch.core.monitors import _route_kernel as rk
+
+    def module(body: str, limit: int) -> types.ModuleType:
+        m = types.ModuleType("probe_module")
+        m.__dict__["numba"] = numba
+        m.LIMIT = limit
+        exec(f"@numba.njit\ndef f(x):\n    return {body}\n", m.__dict__)
+        return m
+
+    base = rk.code_key(module("x + 1", 3))
+    assert rk.code_key(module("x + 1", 3)) == base  # stable: no addresses in it
+    assert rk.code_key(module("x + 2", 3)) != base
+    assert rk.code_key(module("x - 1", 3)) != base
+    assert rk.code_key(module("x + 1", 4)) != base
+
+
 def test_route_window_best_equals_python_max() -> None:
     """The compiled best-candidate pick equals ``max`` over (driven, -cost, -segment).
 

@@ -34,6 +34,10 @@ last bits of a double, where GEOS's distance and the quadratic's rounding may di
 from __future__ import annotations
 
 import math
+import types
+import zlib
+from collections.abc import Callable
+from typing import Any
 
 import numba
 import numpy as np
@@ -195,40 +199,82 @@ def _advance(
     return count, 1, 0.0, int(w[1 + ROW * j]), w[1 + ROW * j + 2]
 
 
-@numba.njit(cache=True, error_model="numpy")
-def window_advance(
-    netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
-    ctx: np.ndarray, w: np.ndarray,
-) -> tuple[int, int, float, int, float]:
-    """Advance the window ``w`` by the step ``ctx`` (the sweep kernel's step scalars).
+def _code_bytes(code: types.CodeType) -> bytes:
+    """A code object's bytecode, names and constants (nested code recursively), as bytes."""
+    parts = [code.co_code, repr(code.co_names).encode()]
+    for c in code.co_consts:
+        parts.append(_code_bytes(c) if isinstance(c, types.CodeType) else repr(c).encode())
+    return b"\x00".join(parts)
 
-    Returns ``(k, fresh, most, best_seg, best_pos)``: the number of live states now in
-    ``w``, 1 when they come from a fresh start (0 when swept), the metres the best
-    candidate has followed the route, and that candidate's segment and position (-1 and 0
-    when no state is live). ``k`` is ``SWEEP_OVERFLOW`` or ``ROWS_OVERFLOW`` (then
-    ``fresh`` holds the rows needed) when a buffer is too small; ``w`` is then unchanged.
+
+def code_key(module: types.ModuleType) -> int:
+    """Checksum of a kernel module: its compiled functions' code and its number constants.
+
+    numba's disk cache notices a change to a cached function's own file only, not to a
+    compiled function it calls in another file (here: the sweep kernel). The entry points
+    below are made with this checksum of :mod:`livematch.core._sweep_kernel` as a closure
+    constant, which numba's cache does key on, so a changed sweep kernel means a new
+    compilation instead of a stale one. Computed from the loaded code (no file read).
+
+    >>> code_key(_k) == code_key(_k), isinstance(code_key(_k), int)
+    (True, True)
     """
-    return _advance(netf, neti, fbuf, ibuf, ctx, w)
+    parts: list[bytes] = []
+    for name, value in sorted(vars(module).items()):
+        if hasattr(value, "py_func"):  # a numba dispatcher
+            parts.append(name.encode() + b"=" + _code_bytes(value.py_func.__code__))
+        elif isinstance(value, int | float) and not isinstance(value, bool):
+            parts.append(f"{name}={value!r}".encode())
+    return zlib.crc32(b"\x01".join(parts))
 
 
-@numba.njit(cache=True, error_model="numpy")
-def route_advance(
-    netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
-    bnetf: np.ndarray, bneti: np.ndarray, bfbuf: np.ndarray, bibuf: np.ndarray,
-    ctx: np.ndarray, w: np.ndarray, bw: np.ndarray,
-) -> tuple[int, int, float, int, float, int, int, float, int, float]:
-    """:func:`window_advance` of the forward window ``w``, then of the reversed one ``bw``.
+def _entry_points(sweep_key: int) -> tuple[Callable[..., Any], Callable[..., Any]]:
+    """The compiled entry points, keyed on the sweep kernel's code (:func:`code_key`)."""
 
-    One call per fix instead of two (each call from Python pays numba's dispatch). The
-    ten values are the two windows' five. The reversed window is stepped only when the
-    forward one succeeded (``k >= 0``); its ``k`` is ``SKIPPED`` otherwise, and the caller
-    finishes a window that reported an overflow with :func:`window_advance`.
-    """
-    k, fresh, most, seg, pos = _advance(netf, neti, fbuf, ibuf, ctx, w)
-    if k < 0:
-        return k, fresh, most, seg, pos, SKIPPED, 0, 0.0, -1, 0.0
-    bk, bfresh, bmost, bseg, bpos = _advance(bnetf, bneti, bfbuf, bibuf, ctx, bw)
-    return k, fresh, most, seg, pos, bk, bfresh, bmost, bseg, bpos
+    @numba.njit(cache=True, error_model="numpy")
+    def window_advance(
+        netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
+        ctx: np.ndarray, w: np.ndarray,
+    ) -> tuple[int, int, float, int, float]:
+        """Advance the window ``w`` by the step ``ctx`` (the sweep kernel's step scalars).
+
+        Returns ``(k, fresh, most, best_seg, best_pos)``: the number of live states now in
+        ``w``, 1 when they come from a fresh start (0 when swept), the metres the best
+        candidate has followed the route, and that candidate's segment and position (-1
+        and 0 when no state is live). ``k`` is ``SWEEP_OVERFLOW`` or ``ROWS_OVERFLOW``
+        (then ``fresh`` holds the rows needed) when a buffer is too small; ``w`` is then
+        unchanged.
+        """
+        if sweep_key == -1:  # never: the key only has to be part of the function
+            return SWEEP_OVERFLOW, 0, 0.0, -1, 0.0
+        return _advance(netf, neti, fbuf, ibuf, ctx, w)
+
+    @numba.njit(cache=True, error_model="numpy")
+    def route_advance(
+        netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
+        bnetf: np.ndarray, bneti: np.ndarray, bfbuf: np.ndarray, bibuf: np.ndarray,
+        ctx: np.ndarray, w: np.ndarray, bw: np.ndarray,
+    ) -> tuple[int, int, float, int, float, int, int, float, int, float]:
+        """:func:`window_advance` of the forward window ``w``, then of the reversed ``bw``.
+
+        One call per fix instead of two (each call from Python pays numba's dispatch).
+        The ten values are the two windows' five. The reversed window is stepped only
+        when the forward one succeeded (``k >= 0``); its ``k`` is ``SKIPPED`` otherwise,
+        and the caller finishes a window that reported an overflow with
+        :func:`window_advance`.
+        """
+        if sweep_key == -1:  # never (see window_advance)
+            return SWEEP_OVERFLOW, 0, 0.0, -1, 0.0, SKIPPED, 0, 0.0, -1, 0.0
+        k, fresh, most, seg, pos = _advance(netf, neti, fbuf, ibuf, ctx, w)
+        if k < 0:
+            return k, fresh, most, seg, pos, SKIPPED, 0, 0.0, -1, 0.0
+        bk, bfresh, bmost, bseg, bpos = _advance(bnetf, bneti, bfbuf, bibuf, ctx, bw)
+        return k, fresh, most, seg, pos, bk, bfresh, bmost, bseg, bpos
+
+    return window_advance, route_advance
+
+
+window_advance, route_advance = _entry_points(code_key(_k))
 
 
 @numba.njit(cache=True, error_model="numpy")
