@@ -4,8 +4,10 @@ A :class:`Fence` is a polygon (or multipolygon) in projected metres with an id, 
 an optional dwell time and an optional vehicle filter (vehicle ids and/or group names).
 :class:`FenceSet` prepares every fence once for the whole fleet: an *inner* polygon
 (shrunk by ``fence_inner_m``) that a vehicle must reach to enter, an *outer* polygon
-(grown by ``fence_outer_m``) that it must leave to exit, and an STRtree over the outer
-polygons so a fix is tested only against the few fences near it.
+(grown by ``fence_outer_m``) that it must leave to exit, and a grid over the outer
+polygons so a fix is tested only against the few fences near it. The per-fix test is one
+compiled call (:mod:`livematch.core.monitors._fence_kernel`) that gives shapely's answer
+and asks shapely itself only for a point on or within rounding of a polygon's edge.
 
 :class:`FenceMonitor` is one vehicle's state: the fences it is inside and the counts of
 consecutive fixes beyond a margin (``fence_fixes`` are needed to change state, so one
