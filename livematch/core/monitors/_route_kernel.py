@@ -34,7 +34,6 @@ last bits of a double, where GEOS's distance and the quadratic's rounding may di
 from __future__ import annotations
 
 import math
-import types
 import zlib
 from collections.abc import Callable
 from typing import Any
@@ -199,15 +198,18 @@ def _advance(
     return count, 1, 0.0, int(w[1 + ROW * j]), w[1 + ROW * j + 2]
 
 
-def _code_bytes(code: types.CodeType) -> bytes:
+_CodeType = type((lambda: 0).__code__)  # types.CodeType without the import (core layers)
+
+
+def _code_bytes(code: Any) -> bytes:
     """A code object's bytecode, names and constants (nested code recursively), as bytes."""
     parts = [code.co_code, repr(code.co_names).encode()]
     for c in code.co_consts:
-        parts.append(_code_bytes(c) if isinstance(c, types.CodeType) else repr(c).encode())
+        parts.append(_code_bytes(c) if isinstance(c, _CodeType) else repr(c).encode())
     return b"\x00".join(parts)
 
 
-def code_key(module: types.ModuleType) -> int:
+def code_key(module: Any) -> int:
     """Checksum of a kernel module: its compiled functions' code and its number constants.
 
     numba's disk cache notices a change to a cached function's own file only, not to a
