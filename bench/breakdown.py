@@ -21,8 +21,13 @@ warm :class:`livematch.pipeline.Pipeline`. Each stage's entry point is wrapped w
   WGS84 conversion);
 - pipeline glue: the rest of ``handle`` (dedupe, rate limit, counters, output objects).
 
-Also the number of compiled calls the tracker makes per message (a count, so the same
-on a busy machine: each call pays numba's dispatch before any work).
+Also counts per message, the same on a busy machine (a count does not move with load):
+the compiled calls the tracker makes (each call pays numba's dispatch before any work),
+and, from one more run with counting wrappers only, the compiled calls and the shapely
+calls (each pays shapely's own per-call overhead, several µs) made inside the route
+monitor and inside the fence monitor. Those counts look up the kernels by module, so
+the script also counts on an older checkout (``PYTHONPATH=<checkout> .venv/bin/python
+bench/breakdown.py --out /tmp/x``); a kernel module the checkout lacks counts nothing.
 
 Reported as mean microseconds per message over the run (the minimum over ``--repeat``
 runs of each stage, so a scheduler hiccup does not land in one stage), next to the
@@ -36,6 +41,7 @@ Results: ``bench/results/breakdown.md`` (+ ``.json``).
 from __future__ import annotations
 
 import argparse
+import importlib
 import json
 import os
 import platform
@@ -44,6 +50,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
+import shapely
 from _drives import load_extract, simulate_drives
 from speed import pipeline_setup
 
@@ -56,6 +63,17 @@ from livematch.core.monitors.route import RouteMonitor
 from livematch.core.tracker import Tracker
 
 ROOT = Path(__file__).resolve().parent.parent
+
+#: Modules whose numba functions the monitors may call (those a checkout lacks are skipped).
+MONITOR_KERNELS = ["livematch.core._sweep_kernel", "livematch.core.monitors._route_kernel",
+                   "livematch.core.monitors._fence_kernel"]
+#: The shapely entry points the monitors use per fix (module functions; STRtree.query).
+SHAPELY_CALLS = ["intersects_xy", "distance", "line_locate_point", "line_interpolate_point"]
+#: Count rows: (label, monitor, kind).
+COUNTS = [("route monitor's compiled calls per message (count)", "route", "compiled"),
+          ("route monitor's shapely calls per message (count)", "route", "shapely"),
+          ("fences' compiled calls per message (count)", "fences", "compiled"),
+          ("fences' shapely calls per message (count)", "fences", "shapely")]
 
 STAGES = ["decode", "tracker, Python", "tracker, compiled calls", "route monitor", "fences",
           "off-network and stale watch", "records", "pipeline glue"]
@@ -112,6 +130,60 @@ def patch(clock: Clock) -> list[tuple[Any, str, Any]]:
     return undo
 
 
+def count_calls(drives: list[Any], network: Any) -> dict[str, float]:
+    """Compiled and shapely calls per message inside each monitor (a run, nothing timed)."""
+    pipeline, messages = pipeline_setup(drives, network)
+    tally = {(m, k): 0 for _, m, k in COUNTS}
+    inside: list[str] = []  # the monitor whose update is running
+    undo: list[tuple[Any, str, Any]] = []
+
+    def put(owner: Any, name: str, wrapper: Callable[[Callable[..., Any]], Any]) -> None:
+        original = getattr(owner, name)
+        undo.append((owner, name, original))
+        setattr(owner, name, wrapper(original))
+
+    def monitor(label: str) -> Callable[[Callable[..., Any]], Any]:
+        def wrap(fn: Callable[..., Any]) -> Any:
+            def call(*args: Any, **kwargs: Any) -> Any:
+                inside.append(label)
+                try:
+                    return fn(*args, **kwargs)
+                finally:
+                    inside.pop()
+            return call
+        return wrap
+
+    def counted(kind: str) -> Callable[[Callable[..., Any]], Any]:
+        def wrap(fn: Callable[..., Any]) -> Any:
+            def call(*args: Any, **kwargs: Any) -> Any:
+                if inside:
+                    tally[inside[-1], kind] += 1
+                return fn(*args, **kwargs)
+            return call
+        return wrap
+
+    put(RouteMonitor, "update", monitor("route"))
+    put(FenceMonitor, "update", monitor("fences"))
+    for module_name in MONITOR_KERNELS:
+        try:
+            module = importlib.import_module(module_name)
+        except ImportError:
+            continue
+        for name in dir(module):
+            if hasattr(getattr(module, name), "py_func"):  # a numba dispatcher
+                put(module, name, counted("compiled"))
+    for name in SHAPELY_CALLS:
+        put(shapely, name, counted("shapely"))
+    put(shapely.STRtree, "query", counted("shapely"))
+    try:
+        for t, topic, payload in messages:
+            pipeline.handle(topic, payload, t + 0.5)
+    finally:
+        for owner, name, original in reversed(undo):
+            setattr(owner, name, original)
+    return {label: tally[m, k] / len(messages) for label, m, k in COUNTS}
+
+
 def run(drives: list[Any], network: Any, wrapped: bool) -> dict[str, float]:
     """One pass over the messages on a fresh pipeline; µs per message by stage."""
     pipeline, messages = pipeline_setup(drives, network)
@@ -154,6 +226,7 @@ def main(argv: list[str] | None = None) -> int:
         row: dict[str, Any] = {"extract": name, "unwrapped": min(plain)}
         row.update({k: min(r[k] for r in staged) for k in ["total", *STAGES]})
         row["compiled calls"] = staged[0]["compiled calls"]  # a count: the same every run
+        row.update(count_calls(sims, network))
         rows.append(row)
     load = " / ".join(f"{v:.2f}" for v in loads)
     head = " | ".join(r["extract"] for r in rows)
@@ -176,6 +249,8 @@ def main(argv: list[str] | None = None) -> int:
                  + " | ".join(f"{r['unwrapped']:.1f}" for r in rows) + " |")
     lines.append("| tracker's compiled calls per message (count) | "
                  + " | ".join(f"{r['compiled calls']:.2f}" for r in rows) + " |")
+    for label, _, _ in COUNTS:
+        lines.append(f"| {label} | " + " | ".join(f"{r[label]:.3f}" for r in rows) + " |")
     text = "\n".join(lines) + "\n"
     print(text)
     out = Path(args.out)

@@ -444,6 +444,63 @@ def test_fence_set_box_skip_equals_shapely_tests() -> None:
         assert fs.inside_inner_many(some, x, y) == [want[i] for i in some], (x, y)
 
 
+def test_fence_probe_equals_shapely_on_edges_vertices_and_holes() -> None:
+    """The compiled probe gives shapely's answer for every fence, boundary points included.
+
+    Reference: ``shapely.intersects_xy`` (GEOS) on each outer and inner polygon. Shapes:
+    random discs and rotated boxes, an axis-aligned box (horizontal edges), a polygon with
+    a hole, a multipolygon, a self-intersecting "bow tie" (invalid: always left to
+    shapely), a 3000-vertex disc (beyond the compiled test's size limit) and a fence too
+    large for the grid. Points: random, every vertex, edge midpoints (on the boundary to
+    within rounding), points on horizontal edges and on the hole's boundary. Also checks
+    that most answers came from the compiled test and that the undecided path ran.
+    """
+    from livematch.core.monitors import _fence_kernel as fk
+
+    rng = np.random.default_rng(21)
+    fences = random_fences(rng, 30, 1500.0, (30.0, 300.0), (30.0, 400.0))
+    ring = shapely.box(-300.0, -300.0, 300.0, 300.0)
+    fences.append(Fence("square", shapely.box(100.0, 100.0, 400.0, 250.0)))
+    fences.append(Fence("hole", ring.difference(shapely.box(-100.0, -100.0, 100.0, 100.0))))
+    fences.append(Fence("multi", shapely.MultiPolygon([
+        shapely.box(500.0, 500.0, 700.0, 700.0), shapely.box(720.0, 500.0, 900.0, 640.0)])))
+    fences.append(Fence("bowtie", shapely.Polygon([(-900.0, -900.0), (-600.0, -600.0),
+                                                   (-600.0, -900.0), (-900.0, -600.0)])))
+    fences.append(Fence("dense", shapely.Point(-500.0, 500.0).buffer(250.0, 750)))
+    fences.append(Fence("county", shapely.box(-40000.0, -40000.0, 40000.0, 40000.0)))
+    for settings in (AlertSettings(), AlertSettings(fence_inner_m=0.0, fence_outer_m=0.0)):
+        fs = FenceSet(fences, settings)
+        points = [tuple(p) for p in rng.uniform(-1600.0, 1600.0, (2000, 2))]
+        for g in (*fs.outer, *fs.inner):
+            for part in getattr(g, "geoms", [g]):
+                for r in (part.exterior, *part.interiors):
+                    xy = shapely.get_coordinates(r)[:40]
+                    points += [tuple(v) for v in xy]
+                    points += [tuple(v) for v in (xy[:-1] + xy[1:]) / 2.0]
+        points += [(250.0, 250.0), (150.0, 100.0), (0.0, 100.0), (-100.0, 0.0), (600.0, 700.0)]
+        every = range(len(fences))
+        # left to shapely: the dense disc, and the bow tie where no margin repairs it (a
+        # buffer of a bow tie is valid)
+        left = {len(fences) - 2} | ({len(fences) - 3} if settings.fence_outer_m == 0 else set())
+        undecided_random: set[int] = set()
+        undecided_boundary = 0
+        for k, (x, y) in enumerate(points):
+            x, y = float(x), float(y)
+            near, inner = fs.probe(x, y)
+            want = [i for i in every if shapely.intersects_xy(fs.outer[i], x, y)]
+            assert near == want, (x, y)
+            assert inner == [bool(shapely.intersects_xy(fs.inner[i], x, y)) for i in near]
+            n = abs(fk.fence_probe(x, y, 250.0, fs._fi, fs._ff, fs._out))
+            rows = fs._out[:3 * n].reshape(n, 3)
+            unsure = rows[np.any(rows[:, 1:] == fk.UNDECIDED, axis=1), 0].tolist()
+            if k < 2000:
+                undecided_random.update(unsure)
+            else:
+                undecided_boundary += len(set(unsure) - left)
+        # random points: only the shapes left to shapely; vertices: the fallback ran
+        assert undecided_random == left and undecided_boundary > 100
+
+
 def test_route_window_step_equals_node_reference() -> None:
     """The compiled route-window step equals sweep_step on nodes plus the driven metres.
 
@@ -500,6 +557,89 @@ def test_route_window_step_equals_node_reference() -> None:
         rows = rows.reshape(len(new), 6)
         driven = np.zeros(len(new))
     assert steps > 20
+
+
+def test_route_window_advance_equals_python_reference() -> None:
+    """The route window's compiled step (sweep or fresh start) equals its Python reference.
+
+    Reference: ``_route_kernel.reference_advance`` (livematch.core.sweep.sweep_step and
+    fresh_start on nodes, pure Python), compared float for float, and the roots of every
+    fresh start against shapely: the chain segments whose ``shapely.distance`` from the
+    fix is within eps (none lies within a micrometre of eps here). A zig-zag open route
+    and a closed loop, each window started with room for one state so the growth path
+    runs, traces along them and back (the forward window dies and starts afresh).
+    """
+    from livematch.core.monitors import _route_kernel as rk
+    from livematch.core.monitors.route import _step_scalars
+    from livematch.core.sweep import StepContext
+
+    zigzag = [(0.0, 0.0)] + [(20.0 * i, 15.0 * (i % 2)) for i in range(1, 40)]
+    loop = [(150.0 * math.cos(a), 150.0 * math.sin(a))
+            for a in np.linspace(0.0, 2.0 * math.pi, 41)]
+    rng = np.random.default_rng(12)
+    fresh_starts = sweeps = 0
+    for pts in (zigzag, loop):
+        ch = chain(pts)
+        for net, view, arrays in ((ch.forward, ch.forward_view, ch.forward_arrays),
+                                  (ch.backward, ch.backward_view, ch.backward_arrays)):
+            lines = shapely.linestrings(np.stack(
+                [net.node_xy[net.seg_from], net.node_xy[net.seg_to]], axis=1))
+            trace = [(x + rng.normal(0, 6), y + rng.normal(0, 6)) for x, y in pts[::2]]
+            trace += [*trace[::-1], (5000.0, 5000.0), *trace]  # back, far away, again
+            w = np.zeros(1 + rk.ROW)
+            rows: list[list[float]] = []
+            for seq, ((x0, y0), (x1, y1)) in enumerate(itertools.pairwise(trace), start=1):
+                chord = math.hypot(x1 - x0, y1 - y0)
+                ctx = StepContext(view, 25.0, x0, y0, x1, y1, seq, float(seq), chord,
+                                  0.02, 0.1, 0.0)
+                rows, fresh = rk.reference_advance(net, view, ctx, rows)
+                scalars = _step_scalars(25.0, x0, y0, x1, y1, chord)
+                while (got := rk.window_advance(arrays.netf, arrays.neti, arrays.fbuf,
+                                                arrays.ibuf, scalars, w))[0] < 0:
+                    assert got[0] == rk.ROWS_OVERFLOW
+                    w = np.concatenate([w, np.zeros(rk.ROW * got[1])])
+                k, got_fresh, most, best_seg, best_pos = got
+                assert k == len(rows) and bool(got_fresh) == fresh
+                assert w[1:1 + rk.ROW * k].reshape(k, rk.ROW).tolist() == rows
+                j = rk.best_row(rows)
+                assert (best_seg, best_pos) == ((int(rows[j][0]), rows[j][2]) if rows
+                                                else (-1, 0.0))
+                assert most == max((r[6] for r in rows), default=0.0)
+                if fresh:
+                    fresh_starts += 1
+                    dist = shapely.distance(lines, shapely.Point(x1, y1))
+                    assert not np.any(np.abs(dist - 25.0) < 1e-6)
+                    assert [int(r[0]) for r in rows] == np.flatnonzero(dist <= 25.0).tolist()
+                else:
+                    sweeps += 1
+    assert fresh_starts > 20 and sweeps > 100
+
+
+def test_route_kernel_code_key_follows_the_callee_code() -> None:
+    """The route kernel's cache key changes with a compiled callee's code or constants.
+
+    numba's documentation (caching notes, from memory): the disk cache is not invalidated
+    when a function called from another file changes; the key is what forces a new
+    compilation then. Two throwaway modules differing in one expression or one constant.
+    """
+    import types
+
+    import numba
+
+    from livematch.core.monitors import _route_kernel as rk
+
+    def module(body: str, limit: int) -> types.ModuleType:
+        m = types.ModuleType("probe_module")
+        m.__dict__["numba"] = numba
+        m.LIMIT = limit
+        exec(f"@numba.njit\ndef f(x):\n    return {body}\n", m.__dict__)
+        return m
+
+    base = rk.code_key(module("x + 1", 3))
+    assert rk.code_key(module("x + 1", 3)) == base  # stable: no addresses in it
+    assert rk.code_key(module("x + 2", 3)) != base
+    assert rk.code_key(module("x - 1", 3)) != base
+    assert rk.code_key(module("x + 1", 4)) != base
 
 
 def test_route_window_best_equals_python_max() -> None:

@@ -4,8 +4,10 @@ A :class:`Fence` is a polygon (or multipolygon) in projected metres with an id, 
 an optional dwell time and an optional vehicle filter (vehicle ids and/or group names).
 :class:`FenceSet` prepares every fence once for the whole fleet: an *inner* polygon
 (shrunk by ``fence_inner_m``) that a vehicle must reach to enter, an *outer* polygon
-(grown by ``fence_outer_m``) that it must leave to exit, and an STRtree over the outer
-polygons so a fix is tested only against the few fences near it.
+(grown by ``fence_outer_m``) that it must leave to exit, and a grid over the outer
+polygons so a fix is tested only against the few fences near it. The per-fix test is one
+compiled call (:mod:`livematch.core.monitors._fence_kernel`) that gives shapely's answer
+and asks shapely itself only for a point on or within rounding of a polygon's edge.
 
 :class:`FenceMonitor` is one vehicle's state: the fences it is inside and the counts of
 consecutive fixes beyond a margin (``fence_fixes`` are needed to change state, so one
@@ -16,7 +18,7 @@ outlier never flips a fence). A point on a polygon's boundary counts as inside i
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Collection, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from itertools import compress
 from typing import Any
@@ -27,6 +29,7 @@ from shapely.geometry.base import BaseGeometry
 
 from livematch.core.events import Alert
 from livematch.core.fix import Fix
+from livematch.core.monitors import _fence_kernel as _fk
 from livematch.core.monitors.settings import AlertSettings
 
 
@@ -134,11 +137,56 @@ class FenceSet:
         self._boxes = {cell: tuple((i, *self.outer[i].bounds) for i in ids)
                        for cell, ids in grid.items()}
         self._inner_bounds = [g.bounds for g in self.inner]
+        # The same grid, the polygons' rings and boxes as flat tables for the compiled
+        # probe (one call per fix, shapely only where it cannot be sure: _fence_kernel).
+        self._fi, self._ff = _fk.build_tables(list(zip(self.outer, self.inner, strict=True)),
+                                              grid, self._everywhere)
+        self._out = np.zeros(3 * max(1, len(self.fences)), dtype=np.int64)  # scratch
+
+    def probe(self, x: float, y: float) -> tuple[list[int], list[bool]]:
+        """The fences whose outer polygon holds (x, y), and whether each inner one does.
+
+        Both boundary included; the fences sorted. One compiled call
+        (:func:`~livematch.core.monitors._fence_kernel.fence_probe`); shapely decides the
+        rare point the compiled test cannot be sure of (on or within rounding of an edge).
+        The same answers as :meth:`near_shapely` and :meth:`inside_inner_many`
+        (tests/test_monitors.py compares them).
+
+        >>> fs = FenceSet([Fence("a", shapely.box(0, 0, 100, 100))], AlertSettings())
+        >>> fs.probe(10.0, 50.0), fs.probe(20.0, 50.0), fs.probe(100.0, 50.0)
+        (([0], [False]), ([0], [True]), ([0], [False]))
+        >>> fs.probe(-20.0, 50.0)   # beyond the outer margin
+        ([], [])
+        """
+        n = _fk.fence_probe(x, y, GRID_CELL_M, self._fi, self._ff, self._out)
+        if n >= 0:  # every answer certain (or no fence near)
+            rows = self._out[:3 * n].tolist()
+            return rows[0::3], [v == _fk.INSIDE for v in rows[2::3]]
+        rows = self._out[:-3 * n].tolist()
+        n = -n
+        near: list[int] = []
+        inner: list[bool] = []
+        for j in range(0, 3 * n, 3):
+            i, outer, inside = rows[j], rows[j + 1], rows[j + 2]
+            if outer == _fk.UNDECIDED and not shapely.intersects_xy(self.outer[i], x, y):
+                continue
+            if inside == _fk.UNDECIDED:
+                inside = 1 if shapely.intersects_xy(self.inner[i], x, y) else 0
+            near.append(i)
+            inner.append(inside == _fk.INSIDE)
+        return near, inner
 
     def near(self, x: float, y: float) -> list[int]:
         """Indices of the fences whose outer polygon holds (x, y) (boundary included).
 
-        Sorted. The same set an STRtree ``intersects`` query gives (tests/test_monitors.py
+        Sorted (:meth:`probe`'s first half).
+        """
+        return self.probe(x, y)[0]
+
+    def near_shapely(self, x: float, y: float) -> list[int]:
+        """:meth:`near` by shapely's own tests on the grid's candidates (the reference).
+
+        The same set an STRtree ``intersects`` query gives (tests/test_monitors.py
         compares the two).
         """
         key = (math.floor(x / GRID_CELL_M), math.floor(y / GRID_CELL_M))
@@ -211,31 +259,40 @@ class FenceMonitor:
                groups: Iterable[str]) -> list[Alert]:
         """Take one fix at position (x, y) (raw or matched, metres); return its alerts."""
         state = self.state
-        hits = fences.near(x, y)
-        if not hits and not state:
+        near, near_inner = fences.probe(x, y)
+        if not near and not state:
             return []  # near no fence and in none: most fixes of a fleet
+        inner = dict(zip(near, near_inner, strict=True))  # fence -> point in its inner polygon
         if fences.filtered:
             groups = tuple(groups)
-            near = [i for i in hits if fences.fences[i].applies_to(fix.vehicle, groups)]
+            near = [i for i in near if fences.fences[i].applies_to(fix.vehicle, groups)]
+            outer: Collection[int] = set(near)
         else:
-            near = hits
+            outer = inner.keys()
         if state:
-            for k in [k for k in state if k not in fences.index]:
-                del state[k]  # a fence no longer loaded
+            index = fences.index
+            if not state.keys() <= index.keys():
+                for k in [k for k in state if k not in index]:
+                    del state[k]  # a fence no longer loaded
             # Fences near the point, and those the vehicle is in (to see it leave them).
-            todo = sorted(set(near) | {fences.index[k] for k in state})
+            extra = [i for k in state if (i := index[k]) not in outer]
+            todo = sorted(near + extra) if extra else near  # near: sorted already
         else:
-            todo = near  # sorted already
+            todo = near
         # Only a fence the vehicle is not inside asks for the inner polygon (entering);
         # inside one, only the outer polygon counts (leaving). Each fence's state is its
-        # own, so this can be decided for all of them before any is updated.
+        # own, so this can be decided for all of them before any is updated. The probe
+        # answered for the fences near the point; one being entered (a run of fixes in its
+        # inner polygon under way) that the point is now outside asks shapely.
         listed = fences.fences
-        entering = [i for i in todo
-                    if not ((st := state.get(listed[i].id)) is not None and st[0])]
-        inner = dict(zip(entering, fences.inside_inner_many(entering, x, y), strict=True))
+        rest = [i for i in todo if i not in inner
+                and not ((st := state.get(listed[i].id)) is not None and st[0])]
+        if rest:
+            inner = {**inner, **dict(zip(rest, fences.inside_inner_many(rest, x, y),
+                                         strict=True))}
         alerts: list[Alert] = []
         for i in todo:
-            alert = self._one(fences, i, fix, i in near, inner.get(i, False))
+            alert = self._one(fences, i, fix, i in outer, inner.get(i, False))
             if alert is not None:
                 alerts.append(alert)
         return alerts

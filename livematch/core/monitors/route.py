@@ -45,14 +45,13 @@ import numpy as np
 import numpy.typing as npt
 import shapely
 
-from livematch.core import _sweep_kernel as _k
 from livematch.core.events import Alert
-from livematch.core.fastsweep import sweep_arrays
+from livematch.core.fastsweep import SweepArrays, sweep_arrays
 from livematch.core.fix import Fix
 from livematch.core.geometry import Projection
+from livematch.core.monitors import _route_kernel as _rk
 from livematch.core.monitors.settings import AlertSettings
 from livematch.core.network import RoadNetwork
-from livematch.core.sweep import StepContext, fresh_start
 from livematch.core.view import NetworkView, view_of
 
 FloatArray = npt.NDArray[np.float64]
@@ -129,8 +128,13 @@ class RouteChain:
         self.backward = _chain_network(self.points[::-1].copy(), self.closed, projection)
         self.forward_view: NetworkView = view_of(self.forward)
         self.backward_view: NetworkView = view_of(self.backward)
+        # the compiled window step's arrays (read-only chain, scratch grown on demand)
+        self.forward_arrays = sweep_arrays(self.forward_view)
+        self.backward_arrays = sweep_arrays(self.backward_view)
         self.cum_forward: list[float] = _cumulative(self.forward.seg_len)
         self.cum_backward: list[float] = _cumulative(self.backward.seg_len)
+        self._len_forward: list[float] = self.forward.seg_len.tolist()
+        self._len_backward: list[float] = self.backward.seg_len.tolist()
         self.length = float(self.forward.seg_len.sum())
         ring = np.vstack([self.points, self.points[:1]]) if self.closed else self.points
         self.line = shapely.LineString(ring)
@@ -144,9 +148,9 @@ class RouteChain:
         still measured along the forward route.
         """
         if backward:
-            along = self.cum_backward[segment] + pos * float(self.backward.seg_len[segment])
+            along = self.cum_backward[segment] + pos * self._len_backward[segment]
             return self.length - along
-        return self.cum_forward[segment] + pos * float(self.forward.seg_len[segment])
+        return self.cum_forward[segment] + pos * self._len_forward[segment]
 
     def distance(self, x: float, y: float) -> float:
         """Distance in metres from (x, y) to the route line."""
@@ -163,7 +167,7 @@ class RouteChain:
 #: turn-back or motion cost. A window only asks whether the fixes follow the route, so the
 #: weights merely rank its candidates (:meth:`_Window.best` breaks ties by cost).
 _WINDOW_WEIGHTS = (0.02, 0.1, 0.0, 0.0)
-_NO_ROWS: FloatArray = np.empty((0, 6))
+_START_ROWS = 4  # a new window's room for live states (grown when a step needs more)
 
 
 def _step_scalars(eps: float, x0: float, y0: float, x1: float, y1: float,
@@ -179,19 +183,24 @@ def _cumulative(lengths: FloatArray) -> list[float]:
 class _Window:
     """One direction's sweep window: live states and metres followed since its start.
 
-    ``rows`` holds the live states (``seg, low, pos, x, y, cost``, the sweep kernel's
-    row layout) and ``driven[j]`` how far (metres along the chain) the candidate of row
-    ``j`` has followed the route since the window started at ``start_t``. Back-pointers
-    are cut after every step, so the state stays a handful of rows; the step is one
-    compiled call (:func:`livematch.core._sweep_kernel.window_step`).
+    ``w`` holds the live states in the compiled step's layout
+    (:mod:`livematch.core.monitors._route_kernel`: a count, then per state ``seg, low,
+    pos, x, y, cost, driven``), ``driven`` being how far (metres along the chain) the
+    candidate has followed the route since the window started at ``start_t``.
+    Back-pointers are cut after every step, so the state stays a handful of rows,
+    rewritten in place by one compiled call per fix
+    (:func:`~livematch.core.monitors._route_kernel.window_advance`), which also picks the
+    best candidate.
     """
 
-    __slots__ = ("driven", "fixes", "most", "rows", "seq", "start_t", "t")
+    __slots__ = ("best_pos", "best_seg", "fixes", "k", "most", "seq", "start_t", "t", "w")
 
     def __init__(self) -> None:
-        self.rows: FloatArray = np.empty((0, 6))
-        self.driven: FloatArray = np.empty(0)
-        self.most = 0.0  # the largest of ``driven`` (0 when dead)
+        self.w: FloatArray = np.zeros(1 + _rk.ROW * _START_ROWS)
+        self.k = 0  # live states (rows of ``w`` in use)
+        self.most = 0.0  # the largest driven metres (0 when dead)
+        self.best_seg = -1  # the best candidate's segment (-1 when dead) and position
+        self.best_pos = 0.0
         self.seq = 0  # the fix the live states belong to
         self.t = 0.0
         self.start_t = -math.inf
@@ -200,79 +209,84 @@ class _Window:
     @property
     def live(self) -> bool:
         """Whether the window has live states."""
-        return len(self.rows) > 0
+        return self.k > 0
 
     def best(self) -> tuple[int, float] | None:
         """(segment, position) of the candidate that followed the route longest."""
-        n = len(self.rows)
-        if n == 0:
+        if self.k == 0:
             return None
-        j = 0 if n == 1 else _k.window_best(self.rows, self.driven)  # one row: no call
-        return int(self.rows[j, 0]), float(self.rows[j, 2])
+        return self.best_seg, self.best_pos
 
     def followed(self) -> float:
         """Metres the best candidate followed the route in this window (0 when dead)."""
         return self.most
 
-    def step(self, chain_net: RoadNetwork, view: NetworkView, scalars: FloatArray,
-             seq: int, t: float) -> None:
-        """Advance by one fix: sweep, else start afresh from the chain's spatial index.
+    def rows(self) -> list[list[float]]:
+        """The live states as ``seg, low, pos, x, y, cost, driven`` rows."""
+        k = self.k
+        return self.w[1:1 + _rk.ROW * k].reshape(k, _rk.ROW).tolist()
+
+    def step(self, arrays: SweepArrays, scalars: FloatArray, seq: int, t: float) -> None:
+        """Advance by one fix: sweep, else start afresh from the chain segments near it.
 
         ``scalars`` are the kernel's step scalars (:func:`_step_scalars`), the same for
-        both directions; the :class:`StepContext` the pure-Python start needs is built
-        only when the window starts afresh (a few per cent of fixes).
+        both directions; ``arrays`` the direction's chain in the sweep kernel's layout.
+        (:meth:`RouteMonitor.update` steps both windows in one call; this is its way
+        round an overflow.)
         """
-        rows = driven = _NO_ROWS
-        if len(self.rows):
-            arrays = sweep_arrays(view)
-            while True:
-                code, rows, driven = _k.window_step(arrays.netf, arrays.neti, arrays.fbuf,
-                                                    arrays.ibuf, scalars, self.rows,
-                                                    self.driven)
-                if code != _k.OVERFLOW:
-                    break
-                arrays.grow()
-        if len(rows):
-            self.fixes += 1
-            self.most = max(driven.tolist())
-        else:
-            eps, x0, y0, x1, y1, chord, inv_two_sigma2, inv_beta, turn_back, motion = (
-                scalars.tolist())
-            new = fresh_start(chain_net, StepContext(view, eps, x0, y0, x1, y1, seq, t,
-                                                     chord, inv_two_sigma2, inv_beta,
-                                                     turn_back, motion))
-            rows = np.array([(n.seg, n.low, n.pos, n.x, n.y, n.cost) for n in new.values()],
-                            dtype=np.float64).reshape(len(new), 6)
-            driven = np.zeros(len(new))
+        while True:
+            k, fresh, most, best_seg, best_pos = _rk.window_advance(
+                arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf, scalars, self.w)
+            if k >= 0:
+                break
+            self.grow(arrays, k, fresh)
+        self.done(k, fresh, most, best_seg, best_pos, seq, t)
+
+    def grow(self, arrays: SweepArrays, code: int, needed: int) -> None:
+        """Make room after the kernel returned ``code`` (an overflow) with ``needed``."""
+        if code == _rk.SWEEP_OVERFLOW:
+            arrays.grow()
+        elif code == _rk.ROWS_OVERFLOW:
+            grown = np.zeros(1 + _rk.ROW * max(needed, 2 * (len(self.w) // _rk.ROW)))
+            grown[:len(self.w)] = self.w
+            self.w = grown
+
+    def done(self, k: int, fresh: int, most: float, best_seg: int, best_pos: float,
+             seq: int, t: float) -> None:
+        """Take the compiled step's answer (:func:`~._route_kernel.window_advance`)."""
+        self.k = k
+        self.most = most
+        self.best_seg = best_seg
+        self.best_pos = best_pos
+        if fresh:
             self.start_t = t
-            self.fixes = 1 if new else 0
-            self.most = 0.0
-            if new:
-                rows[:, 5] -= min(n.cost for n in new.values())
-        self.rows = rows
-        self.driven = driven
+            self.fixes = 1 if k else 0
+        else:
+            self.fixes += 1
         self.seq = seq
         self.t = t
 
     def to_state(self) -> list[Any]:
         return [self.start_t if math.isfinite(self.start_t) else None, self.fixes,
                 [[int(seg), self.seq, self.t, pos, x, y, cost, low, driven]
-                 for (seg, low, pos, x, y, cost), driven in zip(
-                     self.rows.tolist(), self.driven.tolist(), strict=True)]]
+                 for seg, low, pos, x, y, cost, driven in self.rows()]]
 
     @classmethod
     def from_state(cls, state: list[Any]) -> _Window:
         w = cls()
         w.start_t = -math.inf if state[0] is None else state[0]
         w.fixes = state[1]
-        rows = state[2]
-        w.rows = np.array([(s, low, pos, x, y, cost)
-                           for s, _, _, pos, x, y, cost, low, _ in rows],
-                          dtype=np.float64).reshape(len(rows), 6)
-        w.driven = np.array([r[8] for r in rows], dtype=np.float64)
-        w.most = max((r[8] for r in rows), default=0.0)
+        rows = [[float(s), low, pos, x, y, cost, driven]
+                for s, _, _, pos, x, y, cost, low, driven in state[2]]
+        w.k = len(rows)
+        w.w = np.zeros(1 + _rk.ROW * max(w.k, _START_ROWS))
+        w.w[0] = w.k
         if rows:
-            w.seq, w.t = rows[0][1], rows[0][2]
+            w.w[1:1 + _rk.ROW * w.k] = np.array(rows, dtype=np.float64).ravel()
+            w.most = max(r[6] for r in rows)
+            j = _rk.best_row(rows)
+            w.best_seg, w.best_pos = int(rows[j][0]), rows[j][2]
+            w.seq, w.t = state[2][0][1], state[2][0][2]
         return w
 
 
@@ -336,8 +350,23 @@ class RouteMonitor:
         self.last_xy = (fix.x, fix.y)
         scalars = _step_scalars(s.eps_route_m, x0, y0, fix.x, fix.y, step_m)
         chain = self.chain
-        self.fwd.step(chain.forward, chain.forward_view, scalars, self.seq, fix.t)
-        self.rev.step(chain.backward, chain.backward_view, scalars, self.seq, fix.t)
+        fa = chain.forward_arrays
+        ba = chain.backward_arrays
+        fwd = self.fwd
+        rev = self.rev
+        k, fresh, most, seg, pos, bk, bfresh, bmost, bseg, bpos = _rk.route_advance(
+            fa.netf, fa.neti, fa.fbuf, fa.ibuf, ba.netf, ba.neti, ba.fbuf, ba.ibuf,
+            scalars, fwd.w, rev.w)
+        if k >= 0:
+            fwd.done(k, fresh, most, seg, pos, self.seq, fix.t)
+        else:  # an overflow: grow, then one window at a time
+            fwd.grow(fa, k, fresh)
+            fwd.step(fa, scalars, self.seq, fix.t)
+        if bk >= 0:
+            rev.done(bk, bfresh, bmost, bseg, bpos, self.seq, fix.t)
+        else:
+            rev.grow(ba, bk, bfresh)
+            rev.step(ba, scalars, self.seq, fix.t)
         self.trail_m += step_m  # reset at every on-route fix (the anchor)
         alerts: list[Alert] = []
         if self.fwd.live:
@@ -401,7 +430,12 @@ class RouteMonitor:
                 }))
             self.state = "on"
         if self.state == "on":
-            self.anchor = _Anchor(fix.t, fix.x, fix.y, fix.lon, fix.lat, self.progress_m)
+            a = self.anchor
+            if a is None:
+                self.anchor = _Anchor(fix.t, fix.x, fix.y, fix.lon, fix.lat, self.progress_m)
+            else:  # moved in place (nothing else holds it)
+                a.t, a.x, a.y, a.lon, a.lat, a.progress = (fix.t, fix.x, fix.y, fix.lon,
+                                                           fix.lat, self.progress_m)
             self.trail_m = 0.0
             self.rejoin = None
 
