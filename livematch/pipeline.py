@@ -69,7 +69,15 @@ from livematch.core import routing
 from livematch.core.candidates import warm_up
 from livematch.core.events import Alert, Assignment, Commit, Event, Filtered, RecordBuilder
 from livematch.core.fix import Fix
-from livematch.core.monitors import AlertSettings, Fence, FenceSet, Route, RouteChain
+from livematch.core.monitors import (
+    AlertSettings,
+    Fence,
+    FenceSet,
+    Route,
+    RouteChain,
+    _fence_kernel,
+    _route_kernel,
+)
 from livematch.core.monitors.vehicle import VehicleAlerts
 from livematch.core.network import RoadNetwork
 from livematch.core.settings import MatchSettings
@@ -219,6 +227,8 @@ def prepare_kernels() -> None:
     """
     warm_up()
     routing.warm_up()  # the bounded search of bridged steps (fixes 10 s or more apart)
+    _route_kernel.warm_up()  # the route monitor's window step (both directions, one call)
+    _fence_kernel.warm_up()  # the fence probe
 
 
 class Pipeline:
