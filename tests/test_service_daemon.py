@@ -12,6 +12,7 @@ from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import Any
 
+import aiomqtt
 import pytest
 import redis
 from prometheus_client.parser import text_string_to_metric_families
@@ -35,8 +36,9 @@ from livematch.config import load_config
 from livematch.feed.replaylog import ReplayLogWriter
 from livematch.mapdata.netfile import save_network
 from livematch.pipeline import Pipeline
-from livematch.service.daemon import Daemon
+from livematch.service.daemon import Daemon, _Pending
 from livematch.service.logs import KeyValueFormatter
+from livematch.service.mqtt import IntakeQueue
 from livematch.service.shards import shard_of
 
 pytest_plugins = ("fixtures_services",)
@@ -736,3 +738,22 @@ async def test_daemon_standalone_topic_with_shard_reads_every_shard(
     rejects = col.records("/out/rejects")
     assert [(r["reason"], r["topic"]) for r in rejects] == [
         ("wrong_shard", f"{prefix}/fleet/{wrong}/sa/position")]
+
+
+def test_daemon_run_on_takes_waiting_messages_within_its_bounds(prefix: str,
+                                                                  tmp_path: Path) -> None:
+    """A turn matches further waiting messages: not past 8, 2 ms, or a full publish queue."""
+    cfg = write_config(tmp_path, prefix, broker="mqtt://127.0.0.1:1",
+                       extra="[publish]\nqueue_max = 2\n")
+    daemon = make_daemon(cfg)
+    intake = IntakeQueue(10, key_of=lambda topic, payload: topic)
+    soon = time.monotonic() + 60.0
+    assert not daemon._run_on(0, soon, intake)  # nothing waits
+    intake.put_nowait(aiomqtt.Message("a", b"x", 1, False, 1, None))
+    assert daemon._run_on(0, 0.0, intake)  # the first message's run starts its clock
+    assert daemon._run_on(6, soon, intake)
+    assert not daemon._run_on(7, soon, intake)  # 8 matched in this turn
+    assert not daemon._run_on(1, time.monotonic() - 0.001, intake)  # its 2 ms are over
+    for _ in range(2):
+        daemon._outbox.append(_Pending("t", b"{}", "assignment", False, None))
+    assert not daemon._run_on(0, soon, intake)  # publish queue full
