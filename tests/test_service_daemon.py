@@ -299,16 +299,27 @@ async def test_daemon_readyz_503_and_requeue_while_broker_down(
             running(daemon):
         port = daemon.http.port  # type: ignore[union-attr]
         async with publisher(broker.port) as pub:
-            # All at once (the broker keeps their order): the daemon keeps up with one
-            # fix at a time and has every output acknowledged before the next arrives.
+            # All but the last 20 at once (the broker keeps their order); the daemon
+            # may match and publish all of them before the last acknowledgement reaches
+            # this publisher (it matches messages that arrive together in one turn).
             await asyncio.gather(*(pub.publish(topic, payload, qos=1)
-                                   for _, payload in first))
+                                   for _, payload in first[:-20]))
+        # Then one at a time, until outputs are seen waiting for the broker's
+        # acknowledgement in the daemon's queue (the rest follow the restart). This
+        # publisher stays connected until then: closing it would let the daemon's
+        # acknowledgements arrive meanwhile.
+        tail = contextlib.AsyncExitStack()
+        pub = await tail.enter_async_context(publisher(broker.port))
+        sent = len(first) - 20
+        while sent < len(first) and not daemon._outbox:
+            await pub.publish(topic, first[sent][1], qos=1)
+            sent += 1
+            for _ in range(2000):
+                if len(daemon._outbox) > 0:
+                    break
+                await asyncio.sleep(0)
         # Stop the broker while outputs wait in the daemon's queue: between the check
         # and the signal nothing else runs on this event loop.
-        for _ in range(2000):
-            if len(daemon._outbox) > 0:
-                break
-            await asyncio.sleep(0)
         waiting = [(p.topic, p.payload) for p in daemon._outbox]
         assert waiting, "the daemon never had outputs queued"
         broker.stop()
@@ -318,6 +329,8 @@ async def test_daemon_readyz_503_and_requeue_while_broker_down(
             await asyncio.sleep(0.05)
         status, body = await http_get(port, "/readyz")
         assert (status, body) == (503, "not ready: broker\n")
+        with contextlib.suppress(aiomqtt.MqttError):
+            await tail.aclose()  # its broker is gone
         await asyncio.sleep(1.0)  # several reconnect attempts fail meanwhile
         broker.start()
         for _ in range(200):
@@ -326,7 +339,7 @@ async def test_daemon_readyz_503_and_requeue_while_broker_down(
             await asyncio.sleep(0.05)
         assert (await http_get(port, "/readyz"))[0] == 200
         async with publisher(broker.port) as pub:
-            for _, payload in after:
+            for _, payload in first[sent:] + after:
                 await pub.publish(topic, payload, qos=1)
         times = {t for t, _ in first + after}
         for _ in range(600):
