@@ -770,3 +770,43 @@ def test_daemon_run_on_takes_waiting_messages_within_its_bounds(prefix: str,
     for _ in range(2):
         daemon._outbox.append(_Pending("t", b"{}", "assignment", False, None))
     assert not daemon._run_on(0, soon, intake)  # publish queue full
+
+
+async def test_daemon_disconnect_error_is_retrieved_when_nobody_waits(
+        own_mosquitto: Mosquitto) -> None:
+    """A connection lost with nobody reading aiomqtt's disconnection error: no asyncio warning.
+
+    Reference: asyncio reports an exception never retrieved from a collected future
+    through the event loop's exception handler (Python documentation, "Developing with
+    asyncio", detect never-retrieved exceptions).
+    """
+    import gc
+
+    from livematch.service.daemon import _observe_disconnect
+
+    loop = asyncio.get_running_loop()
+    reported: list[dict[str, Any]] = []
+    loop.set_exception_handler(lambda _loop, context: reported.append(context))
+    try:
+        for observed in (False, True):
+            client = aiomqtt.Client("127.0.0.1", own_mosquitto.port,
+                                    identifier=f"t-{observed}")
+            await client.__aenter__()
+            if observed:
+                _observe_disconnect(client)
+            own_mosquitto.stop()  # the broker goes away while nobody waits on the future
+            for _ in range(200):
+                if client._disconnected.done():
+                    break
+                await asyncio.sleep(0.025)
+            assert client._disconnected.done()
+            await client.__aexit__(None, None, None)  # returns early: already disconnected
+            del client
+            gc.collect()
+            await asyncio.sleep(0)
+            messages = [c.get("message", "") for c in reported]
+            assert any("never retrieved" in m for m in messages) is not observed
+            reported.clear()
+            own_mosquitto.start()
+    finally:
+        loop.set_exception_handler(None)

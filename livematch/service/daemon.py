@@ -1268,6 +1268,7 @@ class Daemon:
         cancelled = False
         try:
             async with client:
+                _observe_disconnect(client)
                 try:
                     self.broker_connected = True
                     self._listening_since = time.time()
@@ -1724,6 +1725,26 @@ def _disconnected(client: aiomqtt.Client) -> bool:
     """Whether aiomqtt saw the connection end (messages may still be queued then)."""
     done = getattr(client, "_disconnected", None)
     return isinstance(done, asyncio.Future) and done.done()
+
+
+def _observe_disconnect(client: aiomqtt.Client) -> None:
+    """Retrieve the error of aiomqtt's disconnection future whenever it is set.
+
+    aiomqtt sets an exception on it when the connection breaks, and its ``__aexit__``
+    returns without looking at it when it is already done. When the connection broke
+    while the daemon was stopping (the broker stopped with it; the receive loop, which
+    otherwise reads it, had ended), nobody did, and asyncio printed "Future exception
+    was never retrieved" when the future was collected. The error itself is reported
+    as before: the receive loop raises it as the cause of the session's end.
+    """
+    closed = getattr(client, "_disconnected", None)
+    if isinstance(closed, asyncio.Future):
+        closed.add_done_callback(_retrieve_error)
+
+
+def _retrieve_error(future: asyncio.Future[Any]) -> None:
+    if not future.cancelled():
+        future.exception()
 
 
 def _wake(waiter: asyncio.Future[None]) -> None:
