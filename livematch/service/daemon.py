@@ -643,16 +643,16 @@ class Daemon:
             shard = self._shard_cache[key] = shard_of(key, self.config.group.shards)
         return shard
 
-    def _message_shard(self, topic: str, payload: bytes) -> int | None:
+    def _message_shard(self, topic: str, vehicle: str | None) -> int | None:
         """The shard a message belongs to; None for control messages.
 
+        ``vehicle`` is the message's :func:`~livematch.feed.decode.known_vehicle`.
         Every worker applies control messages; only the holder of the vehicle's shard
         publishes what follows from them.
         """
         control = self.config.mqtt.control_topic
         if control and vehicle_from_topic(topic, control) is not None:
             return None
-        vehicle = known_vehicle(topic, payload, self.config.feed)
         if vehicle is not None:
             return self._shard(vehicle)
         return self._topic_shard(topic) if self._sharded_topic else self._shard(topic)
@@ -943,17 +943,18 @@ class Daemon:
             return int(level)
         return self._shard(topic)
 
-    def _wrong_shard(self, topic: str, payload: bytes, at: float) -> Output | None:
+    def _wrong_shard(self, topic: str, payload: bytes, at: float,
+                     vehicle: str | None) -> Output | None:
         """A ``wrong_shard`` reject when the topic's shard is not the vehicle's, else None.
 
-        A sender that computes another shard (another ``group.shards``, another hash)
+        ``vehicle`` is the message's :func:`~livematch.feed.decode.known_vehicle`. A
+        sender that computes another shard (another ``group.shards``, another hash)
         would otherwise have its fixes matched by a worker that does not hold the
         vehicle, or by none.
         """
         if not self._sharded_topic:
             return None
         level = shard_from_topic(topic, self._mqtt.topic)
-        vehicle = known_vehicle(topic, payload, self.config.feed)
         if level is None or vehicle is None:
             return None
         expected = self._shard(vehicle)
@@ -1359,7 +1360,8 @@ class Daemon:
                 if self._intake is not None and self._intake.was_shed(message):
                     ack(client, message)  # shed on purpose (and counted): acknowledge
                 else:
-                    if (self._process(client, message) and kept_run < _KEPT_RUN
+                    if (self._process(client, message, intake.last_key)
+                            and kept_run < _KEPT_RUN
                             and not intake.empty()):
                         # Another worker's fix, only kept (no output): take the next
                         # message waiting in this turn of the loop, so that the PUBACKs of
@@ -1437,21 +1439,29 @@ class Daemon:
             self._outbox_changed.clear()
             await self._outbox_changed.wait()
 
-    def _process(self, client: aiomqtt.Client, message: aiomqtt.Message) -> bool:
+    def _process(self, client: aiomqtt.Client, message: aiomqtt.Message,
+                 key: str | None = None) -> bool:
         """Match one message, queue its outputs, then acknowledge it.
 
         Synchronous on purpose: nothing can interrupt it between matching and the
         acknowledgement, so a message is either fully handled (state, outputs, PUBACK)
         or not at all (and redelivered). Returns True when the message was only kept
         and acknowledged (another worker's shard), False when it was handled here.
+        ``key`` is the message's intake key (:meth:`_intake_key`, computed when it
+        arrived), which tells without decoding the payload again whether it can be a
+        fix; None: decode it.
         """
         self.metrics.received.inc()
         payload = message.payload
         if not isinstance(payload, bytes | bytearray):
             payload = str(payload).encode()
+        payload = bytes(payload)
         topic = message.topic.value
         at = time.time()
-        wrong = self._wrong_shard(topic, bytes(payload), at)
+        # read once for the shard checks below (it may decode the payload)
+        vehicle = (known_vehicle(topic, payload, self.config.feed)
+                   if self._sharded_topic or self.leases is not None else None)
+        wrong = self._wrong_shard(topic, payload, at, vehicle)
         if wrong is not None:  # published by the holder of the topic's shard
             if self.leases is None or self._answers(self._topic_shard(topic)):
                 self._route(wrong)
@@ -1459,13 +1469,14 @@ class Daemon:
             return False
         if self.leases is not None:
             self._check_deadlines()
-            shard = self._message_shard(topic, bytes(payload))
+            shard = self._message_shard(topic, vehicle)
             if shard is not None:
                 # A possible fix is kept whoever holds the shard: replayed if this worker
                 # takes it (again) after its holder (or this worker, cut off from Redis)
                 # lost it. A message that cannot be a fix changes no state; it is only
                 # rejected, by the worker holding its shard now.
-                possible = looks_like_position(bytes(payload), self.config.feed)
+                possible = (key != JUNK_KEY if key is not None and not key.startswith("c:")
+                            else looks_like_position(payload, self.config.feed))
                 if possible:
                     self._keep(shard, at, topic, bytes(payload))
                 if not (shard in self._active or (shard in self._taking and not possible)):
