@@ -86,7 +86,7 @@ def _segment_record(network: RoadNetwork, segment: int) -> dict[str, int]:
 
 
 def _lonlat(network: RoadNetwork, x: float, y: float) -> tuple[float, float]:
-    lon, lat = network.projection.quick_to_lonlat(x, y)
+    lon, lat = network.projection.point_to_lonlat(x, y)
     return round(lon, 7), round(lat, 7)
 
 
@@ -94,10 +94,7 @@ def to_record(event: Event, network: RoadNetwork) -> dict[str, Any]:
     """The JSON-ready published form of an event (the output contract).
 
     Coordinates are rounded to 1e-7 degree (about 1 cm) and metres to 1 mm, so that the
-    output bytes are stable across platforms. They come from the projection's
-    :meth:`~livematch.core.geometry.Projection.quick_to_lonlat` (within about 1e-13
-    degree of pyproj, a few nanometres: a published digit differs from pyproj's only
-    when pyproj's value lies that close to a rounding boundary).
+    output bytes are stable across platforms.
     """
     if isinstance(event, Assignment):
         lon, lat = _lonlat(network, event.x, event.y)
@@ -159,7 +156,7 @@ class RecordBuilder:
 
     def __init__(self, network: RoadNetwork) -> None:
         self.network = network
-        self._inverse = network.projection.quick_to_lonlat
+        self._inverse = network.projection.point_to_lonlat
         self._segments: dict[int, tuple[int, int, int, str | None]] = {}
 
     def _segment(self, segment: int) -> tuple[int, int, int, str | None]:

@@ -12,11 +12,13 @@ A UTM zone or any EPSG code can be asked for instead.
 from __future__ import annotations
 
 import math
+import typing
 from collections.abc import Callable
 
 import numpy as np
 import numpy.typing as npt
 from pyproj import CRS, Transformer
+from pyproj.enums import TransformDirection
 
 from livematch.errors import BadNetworkError
 
@@ -37,7 +39,7 @@ class Projection:
         (0.0, 0.0)
     """
 
-    __slots__ = ("_forward", "_inverse", "_quick_lonlat", "crs")
+    __slots__ = ("_forward", "_inverse", "_point_forward", "_point_inverse", "crs")
 
     def __init__(self, crs: str) -> None:
         try:
@@ -52,8 +54,8 @@ class Projection:
         self.crs = crs
         self._forward = Transformer.from_crs("EPSG:4326", parsed, always_xy=True)
         self._inverse = Transformer.from_crs(parsed, "EPSG:4326", always_xy=True)
-        # the published records' path back to WGS84 (built on first use): 200 m cells
-        self._quick_lonlat: PointGrid | None = None
+        self._point_forward = _one_point(self._forward)
+        self._point_inverse = _one_point(self._inverse)
 
     @classmethod
     def local(cls, lon0: float, lat0: float) -> Projection:
@@ -107,167 +109,54 @@ class Projection:
 
         The same PROJ operation as :meth:`to_xy` (the same numbers), without the array
         round trip that costs several times the projection itself for one point: the
-        per-message path of the service.
+        per-message path of the service. Where pyproj has it, its one-point routine is
+        called directly (see :func:`_one_point`).
 
         Example:
             >>> p = Projection.local(24.94, 60.17)
             >>> p.point_to_xy(24.95, 60.17) == tuple(float(v) for v in p.to_xy(24.95, 60.17))
             True
         """
-        x, y = self._forward.transform(float(lon), float(lat))
+        x, y = self._point_forward(float(lon), float(lat), None, None, _FORWARD, False, False)
         return x, y
 
     def point_to_lonlat(self, x: float, y: float) -> tuple[float, float]:
         """One point, projected metres to WGS84 degrees, as plain floats (see above)."""
-        lon, lat = self._inverse.transform(float(x), float(y))
+        lon, lat = self._point_inverse(float(x), float(y), None, None, _FORWARD, False, False)
         return lon, lat
-
-    def quick_to_lonlat(self, x: float, y: float) -> tuple[float, float]:
-        """One point, projected metres to WGS84 degrees, from a :class:`PointGrid`.
-
-        Within about 2e-13 degree (a few nanometres) of :meth:`point_to_lonlat`, which
-        is checked for every cell of the grid when it is filled (where the check fails,
-        near a singular point of the projection, the answer is :meth:`point_to_lonlat`'s),
-        at about half its cost: the published records convert one or two points per
-        message back to WGS84. Records round to 1e-7 degree, so a published digit can
-        differ from pyproj's only where pyproj's value lies within 2e-13 degree of a
-        rounding boundary (``bench/outputs.py`` prints the same digest either way).
-
-        Why not the way in too: the matcher breaks exact ties (the two directions of a
-        two-way road) on the last bits of a fix's coordinates, so a fix projected with a
-        nanometre's difference can be matched to the other direction; the decoder keeps
-        :meth:`point_to_xy`.
-
-        Example:
-            >>> p = Projection.local(24.94, 60.17)
-            >>> lon, lat = p.quick_to_lonlat(500.0, -250.0)
-            >>> elon, elat = p.point_to_lonlat(500.0, -250.0)
-            >>> abs(lon - elon) < 1e-12 and abs(lat - elat) < 1e-12
-            True
-        """
-        grid = self._quick_lonlat
-        if grid is None:
-            grid = self._quick_lonlat = PointGrid(self.point_to_lonlat, 200.0, 1e-12)
-        return grid(x, y)
 
     def __repr__(self) -> str:
         return f"Projection({self.crs!r})"
 
 
-#: Coefficients of u**0, u**1, u**2 of the quadratic through values at u = 0, 0.5, 1.
-_QUADRATIC = np.array([[1.0, 0.0, 0.0], [-3.0, 4.0, -1.0], [2.0, -4.0, 2.0]])
-_NODES = (0.0, 0.5, 1.0)
-#: Where a filled cell is checked against the exact map (away from every node).
-_CHECKS = ((0.25, 0.75), (0.8, 0.3))
+_FORWARD = TransformDirection.FORWARD
+#: (x, y, z, time, direction, radians, errcheck) -> the transformed (x, y)
+_PointFunction = Callable[[float, float, None, None, TransformDirection, bool, bool],
+                          tuple[float, float]]
 
 
-class PointGrid:
-    """A smooth map of the plane evaluated point by point from cached quadratic pieces.
+def _one_point(transformer: Transformer) -> _PointFunction:
+    """The routine ``transformer.transform`` runs for one point, called without it.
 
-    The plane is cut into square cells of side ``step`` (in the map's input units).
-    The first point that falls in a cell fills it: the exact map at the cell's 3 x 3
-    nodes (corners, edge midpoints, centre) gives the biquadratic that passes through
-    them, and the exact map at two more points of the cell must agree with it within
-    ``tolerance`` (in output units) or the cell is marked exact-only (near a singular
-    point of a projection, or where it returns infinity). A point in a filled cell then
-    costs a dict look-up and 16 multiplications per output coordinate instead of the
-    exact map. The answer depends only on the point, never on which points came
-    before (the cells lie on a fixed grid), so a replay gives the same bytes as the
-    live run; at most ``max_cells`` cells are kept (all are dropped when full).
-
-    Why it is accurate: a projection is smooth at the scale of a city block, and the
-    error of a quadratic piece shrinks with the cube of the cell's side. For the
-    azimuthal equidistant projection of :meth:`Projection.local`, 200 m cells stay
-    within 2e-8 m of pyproj over 30 km about the centre (``tests/test_geometry.py``).
-
-    Args:
-        exact: the map, one point at a time (e.g. :meth:`Projection.point_to_lonlat`).
-        step: side of a cell, in the input's units (metres or degrees).
-        tolerance: largest difference from ``exact`` accepted at a cell's check
-            points, in the output's units.
-        max_cells: cells kept before the cache is emptied.
-
-    Example (the identity doubled: a quadratic piece is exact for it; and a cell
-    where the map is not finite falls back to the map itself):
-        >>> grid = PointGrid(lambda a, b: (2.0 * a, 2.0 * b), 8.0, 1e-9)
-        >>> grid(3.0, -4.0)
-        (6.0, -8.0)
-        >>> odd = PointGrid(lambda a, b: (1.0 / a if a else math.inf, b), 1.0, 1e-9)
-        >>> odd(0.5, 1.0)
-        (2.0, 1.0)
+    For two plain floats ``Transformer.transform`` calls the compiled
+    ``_transformer._transform_point`` with its arguments by keyword, inside a ``try``
+    (it falls back to the array path on a ``TypeError``): about a third of the cost of
+    a one-point transform in the service (0.8 of 2.8 µs, measured with timeit). Called
+    directly with the same arguments (``z`` and time None, forward, degrees, no error
+    check: ``transform``'s defaults) it gives the same numbers (``tests/test_geometry.py``
+    compares the two). A pyproj without that routine gets ``transform`` itself.
     """
+    inner = getattr(getattr(transformer, "_transformer", None), "_transform_point", None)
+    if callable(inner):
+        return typing.cast(_PointFunction, inner)
+    public = transformer.transform
 
-    __slots__ = ("_cells", "_exact", "_inv_step", "max_cells", "step", "tolerance")
+    def point(x: float, y: float, z: None, t: None, direction: TransformDirection,
+              radians: bool, errcheck: bool) -> tuple[float, float]:
+        return typing.cast(tuple[float, float], public(
+            x, y, direction=direction, radians=radians, errcheck=errcheck))
 
-    def __init__(self, exact: Callable[[float, float], tuple[float, float]], step: float,
-                 tolerance: float, max_cells: int = 4096) -> None:
-        if not (step > 0 and math.isfinite(step)):
-            raise ValueError(f"PointGrid step must be a finite number > 0, got {step!r}")
-        self._exact = exact
-        self.step = step
-        self._inv_step = 1.0 / step
-        self.tolerance = tolerance
-        self.max_cells = max_cells
-        # (i, j) -> (f0, g0, 8 coefficients of f, 8 of g), or None: exact-only cell
-        self._cells: dict[tuple[int, int], tuple[float, ...] | None] = {}
-
-    def __call__(self, a: float, b: float) -> tuple[float, float]:
-        """The map at (a, b)."""
-        fa = a * self._inv_step
-        fb = b * self._inv_step
-        try:
-            i = math.floor(fa)
-            j = math.floor(fb)
-        except (OverflowError, ValueError):  # infinity or NaN: no cell
-            return self._exact(a, b)
-        cell = self._cells.get((i, j), _EMPTY)
-        if cell is _EMPTY:
-            cell = self._fill(i, j)
-        if cell is None:
-            return self._exact(a, b)
-        u = fa - i
-        v = fb - j
-        (f0, f10, f20, f01, f11, f21, f02, f12, f22,
-         g0, g10, g20, g01, g11, g21, g02, g12, g22) = cell
-        f = f0 + (u * (f10 + u * f20)
-                  + v * ((f01 + u * (f11 + u * f21)) + v * (f02 + u * (f12 + u * f22))))
-        g = g0 + (u * (g10 + u * g20)
-                  + v * ((g01 + u * (g11 + u * g21)) + v * (g02 + u * (g12 + u * g22))))
-        return f, g
-
-    def _fill(self, i: int, j: int) -> tuple[float, ...] | None:
-        """Compute (and keep) the pieces of cell (i, j); None when it fails its check."""
-        if len(self._cells) >= self.max_cells:
-            self._cells.clear()
-        step = self.step
-        exact = self._exact
-        values = np.array([[exact((i + du) * step, (j + dv) * step) for dv in _NODES]
-                           for du in _NODES])  # [u node, v node, output]
-        cell: tuple[float, ...] | None = None
-        if np.all(np.isfinite(values)):
-            parts: list[float] = []
-            for k in range(2):
-                base = float(values[0, 0, k])
-                # monomial coefficients c[p, q] of u**p v**q, relative to the corner value
-                c = _QUADRATIC @ (values[:, :, k] - base) @ _QUADRATIC.T
-                parts += [base, float(c[1, 0]), float(c[2, 0]), float(c[0, 1]),
-                          float(c[1, 1]), float(c[2, 1]), float(c[0, 2]), float(c[1, 2]),
-                          float(c[2, 2])]
-            cell = tuple(parts)
-            self._cells[(i, j)] = cell
-            for du, dv in _CHECKS:
-                a, b = (i + du) * step, (j + dv) * step
-                want = exact(a, b)
-                got = self(a, b)
-                if not (abs(got[0] - want[0]) <= self.tolerance
-                        and abs(got[1] - want[1]) <= self.tolerance):
-                    cell = None
-                    break
-        self._cells[(i, j)] = cell
-        return cell
-
-
-_EMPTY: tuple[float, ...] = ()
+    return point
 
 
 def as_polyline(points: npt.ArrayLike) -> FloatArray:
