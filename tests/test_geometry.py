@@ -2,10 +2,13 @@
 
 from __future__ import annotations
 
-import numpy as np
-from pyproj import Geod
+from typing import Any
 
-from livematch.core.geometry import Projection
+import numpy as np
+from pyproj import Geod, Transformer
+from pyproj.enums import TransformDirection
+
+from livematch.core.geometry import Projection, _one_point
 
 
 def test_projection_point_methods_equal_array_methods() -> None:
@@ -36,3 +39,38 @@ def test_projection_local_preserves_geodesic_distance_from_centre() -> None:
         x, y = p.point_to_xy(float(lon), float(lat))
         _, _, dist = geod.inv(24.94, 60.17, float(lon), float(lat))
         assert abs(np.hypot(x, y) - dist) < 1e-3  # metres
+
+
+def test_projection_point_methods_equal_pyproj_transform() -> None:
+    """The one-point routine called directly gives Transformer.transform's floats exactly.
+
+    Reference: pyproj's public Transformer.transform on transformers built here (local
+    AEQD about Helsinki and the UTM zone EPSG:32635), both directions.
+    """
+    rng = np.random.default_rng(12)
+    lon = 24.94 + rng.uniform(-0.3, 0.3, 300)
+    lat = 60.17 + rng.uniform(-0.15, 0.15, 300)
+    for p in (Projection.local(24.94, 60.17), Projection.utm(24.94, 60.17)):
+        forward = Transformer.from_crs("EPSG:4326", p.crs, always_xy=True)
+        inverse = Transformer.from_crs(p.crs, "EPSG:4326", always_xy=True)
+        for a, b in zip(lon.tolist(), lat.tolist(), strict=True):
+            x, y = p.point_to_xy(a, b)
+            assert (x, y) == forward.transform(a, b)
+            assert p.point_to_lonlat(x, y) == inverse.transform(x, y)
+
+
+def test_one_point_falls_back_to_transform_without_the_routine() -> None:
+    """A transformer without pyproj's one-point routine is called through transform()."""
+
+    class PublicOnly:
+        """Only the public method of a real pyproj Transformer."""
+
+        def __init__(self) -> None:
+            self.real = Transformer.from_crs("EPSG:4326", "EPSG:32635", always_xy=True)
+
+        def transform(self, *args: Any, **kwargs: Any) -> Any:
+            return self.real.transform(*args, **kwargs)
+
+    point = _one_point(PublicOnly())  # type: ignore[arg-type]
+    want = Transformer.from_crs("EPSG:4326", "EPSG:32635", always_xy=True).transform(25.0, 60.0)
+    assert point(25.0, 60.0, None, None, TransformDirection.FORWARD, False, False) == want

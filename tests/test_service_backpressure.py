@@ -141,3 +141,18 @@ async def burst(mosquitto: Mosquitto, prefix: str, tmp_path: Path, *, qos: int,
     async with running(Daemon(config, again)):
         await asyncio.sleep(1.0)
     assert again.counters["messages"] == 0
+
+
+def test_intake_queue_last_key_names_the_message_taken() -> None:
+    """last_key is the key_of of the message just taken, markers and junk included."""
+    def msg(topic: str, mid: int, qos: int) -> aiomqtt.Message:
+        return aiomqtt.Message(topic, b"x", qos, False, mid, None)
+
+    keys = {"a": "v:a", "j": JUNK_KEY}
+    q = IntakeQueue(1, key_of=lambda topic, payload: keys[topic])
+    assert q.last_key == ""
+    q.put_nowait(msg("j", 1, qos=1))
+    q.put_nowait(msg("a", 2, qos=0))  # full: the junk message is shed, kept as a marker
+    first = q.get_nowait()
+    assert (first.mid, q.last_key, q.was_shed(first)) == (1, JUNK_KEY, True)
+    assert (q.get_nowait().mid, q.last_key) == (2, "v:a")

@@ -12,6 +12,7 @@ from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import Any
 
+import aiomqtt
 import pytest
 import redis
 from prometheus_client.parser import text_string_to_metric_families
@@ -35,8 +36,9 @@ from livematch.config import load_config
 from livematch.feed.replaylog import ReplayLogWriter
 from livematch.mapdata.netfile import save_network
 from livematch.pipeline import Pipeline
-from livematch.service.daemon import Daemon
+from livematch.service.daemon import Daemon, _Pending
 from livematch.service.logs import KeyValueFormatter
+from livematch.service.mqtt import IntakeQueue
 from livematch.service.shards import shard_of
 
 pytest_plugins = ("fixtures_services",)
@@ -297,16 +299,27 @@ async def test_daemon_readyz_503_and_requeue_while_broker_down(
             running(daemon):
         port = daemon.http.port  # type: ignore[union-attr]
         async with publisher(broker.port) as pub:
-            # All at once (the broker keeps their order): the daemon keeps up with one
-            # fix at a time and has every output acknowledged before the next arrives.
+            # All but the last 20 at once (the broker keeps their order); the daemon
+            # may match and publish all of them before the last acknowledgement reaches
+            # this publisher (it matches messages that arrive together in one turn).
             await asyncio.gather(*(pub.publish(topic, payload, qos=1)
-                                   for _, payload in first))
+                                   for _, payload in first[:-20]))
+        # Then one at a time, until outputs are seen waiting for the broker's
+        # acknowledgement in the daemon's queue (the rest follow the restart). This
+        # publisher stays connected until then: closing it would let the daemon's
+        # acknowledgements arrive meanwhile.
+        tail = contextlib.AsyncExitStack()
+        pub = await tail.enter_async_context(publisher(broker.port))
+        sent = len(first) - 20
+        while sent < len(first) and not daemon._outbox:
+            await pub.publish(topic, first[sent][1], qos=1)
+            sent += 1
+            for _ in range(2000):
+                if len(daemon._outbox) > 0:
+                    break
+                await asyncio.sleep(0)
         # Stop the broker while outputs wait in the daemon's queue: between the check
         # and the signal nothing else runs on this event loop.
-        for _ in range(2000):
-            if len(daemon._outbox) > 0:
-                break
-            await asyncio.sleep(0)
         waiting = [(p.topic, p.payload) for p in daemon._outbox]
         assert waiting, "the daemon never had outputs queued"
         broker.stop()
@@ -316,6 +329,8 @@ async def test_daemon_readyz_503_and_requeue_while_broker_down(
             await asyncio.sleep(0.05)
         status, body = await http_get(port, "/readyz")
         assert (status, body) == (503, "not ready: broker\n")
+        with contextlib.suppress(aiomqtt.MqttError):
+            await tail.aclose()  # its broker is gone
         await asyncio.sleep(1.0)  # several reconnect attempts fail meanwhile
         broker.start()
         for _ in range(200):
@@ -324,7 +339,7 @@ async def test_daemon_readyz_503_and_requeue_while_broker_down(
             await asyncio.sleep(0.05)
         assert (await http_get(port, "/readyz"))[0] == 200
         async with publisher(broker.port) as pub:
-            for _, payload in after:
+            for _, payload in first[sent:] + after:
                 await pub.publish(topic, payload, qos=1)
         times = {t for t, _ in first + after}
         for _ in range(600):
@@ -736,3 +751,62 @@ async def test_daemon_standalone_topic_with_shard_reads_every_shard(
     rejects = col.records("/out/rejects")
     assert [(r["reason"], r["topic"]) for r in rejects] == [
         ("wrong_shard", f"{prefix}/fleet/{wrong}/sa/position")]
+
+
+def test_daemon_run_on_takes_waiting_messages_within_its_bounds(prefix: str,
+                                                                  tmp_path: Path) -> None:
+    """A turn matches further waiting messages: not past 8, 2 ms, or a full publish queue."""
+    cfg = write_config(tmp_path, prefix, broker="mqtt://127.0.0.1:1",
+                       extra="[publish]\nqueue_max = 2\n")
+    daemon = make_daemon(cfg)
+    intake = IntakeQueue(10, key_of=lambda topic, payload: topic)
+    soon = time.monotonic() + 60.0
+    assert not daemon._run_on(0, soon, intake)  # nothing waits
+    intake.put_nowait(aiomqtt.Message("a", b"x", 1, False, 1, None))
+    assert daemon._run_on(0, 0.0, intake)  # the first message's run starts its clock
+    assert daemon._run_on(6, soon, intake)
+    assert not daemon._run_on(7, soon, intake)  # 8 matched in this turn
+    assert not daemon._run_on(1, time.monotonic() - 0.001, intake)  # its 2 ms are over
+    for _ in range(2):
+        daemon._outbox.append(_Pending("t", b"{}", "assignment", False, None))
+    assert not daemon._run_on(0, soon, intake)  # publish queue full
+
+
+async def test_daemon_disconnect_error_is_retrieved_when_nobody_waits(
+        own_mosquitto: Mosquitto) -> None:
+    """A connection lost with nobody reading aiomqtt's disconnection error: no asyncio warning.
+
+    Reference: asyncio reports an exception never retrieved from a collected future
+    through the event loop's exception handler (Python documentation, "Developing with
+    asyncio", detect never-retrieved exceptions).
+    """
+    import gc
+
+    from livematch.service.daemon import _observe_disconnect
+
+    loop = asyncio.get_running_loop()
+    reported: list[dict[str, Any]] = []
+    loop.set_exception_handler(lambda _loop, context: reported.append(context))
+    try:
+        for observed in (False, True):
+            client = aiomqtt.Client("127.0.0.1", own_mosquitto.port,
+                                    identifier=f"t-{observed}")
+            await client.__aenter__()
+            if observed:
+                _observe_disconnect(client)
+            own_mosquitto.stop()  # the broker goes away while nobody waits on the future
+            for _ in range(200):
+                if client._disconnected.done():
+                    break
+                await asyncio.sleep(0.025)
+            assert client._disconnected.done()
+            await client.__aexit__(None, None, None)  # returns early: already disconnected
+            del client
+            gc.collect()
+            await asyncio.sleep(0)
+            messages = [c.get("message", "") for c in reported]
+            assert any("never retrieved" in m for m in messages) is not observed
+            reported.clear()
+            own_mosquitto.start()
+    finally:
+        loop.set_exception_handler(None)

@@ -122,6 +122,11 @@ _DRAIN_PACKETS = 100
 _DRAIN_BUDGET_S = 0.005
 # Most messages only kept for another worker's shard taken in one turn of the loop.
 _KEPT_RUN = 16
+# Most messages matched in one turn of the loop when several have arrived at once, and
+# the longest such a run may last (seconds): their acknowledgements and outputs then
+# leave in one write (mqtt.coalesce) instead of one per message.
+_MATCHED_RUN = 8
+_MATCHED_RUN_S = 0.002
 # Shortest interval between two "publish queue full" warnings (seconds).
 _FULL_LOG_EVERY_S = 10.0
 # How far ahead of the wall clock a fix time may push the eviction clock (seconds).
@@ -219,14 +224,20 @@ def _plain_floats(value: Any) -> bool:
     """
     kind = type(value)
     if kind is dict:
-        if not all(type(k) is str for k in value):
-            return False
-        items = value.values()
-    elif kind is list or kind is tuple:
-        items = value
-    else:
+        # keys and values in one loop (a generator over the keys cost a resume per key)
+        for k, v in value.items():
+            if type(k) is not str:
+                return False
+            t = type(v)
+            if t is float:
+                if not (v == 0.0 or 1e-4 <= v < 1e16 or -1e16 < v <= -1e-4):
+                    return False
+            elif t not in _SCALARS and not _plain_floats(v):
+                return False
+        return True
+    if kind is not list and kind is not tuple:
         return False
-    for v in items:
+    for v in value:
         t = type(v)
         if t is float:
             if not (v == 0.0 or 1e-4 <= v < 1e16 or -1e16 < v <= -1e-4):
@@ -632,16 +643,16 @@ class Daemon:
             shard = self._shard_cache[key] = shard_of(key, self.config.group.shards)
         return shard
 
-    def _message_shard(self, topic: str, payload: bytes) -> int | None:
+    def _message_shard(self, topic: str, vehicle: str | None) -> int | None:
         """The shard a message belongs to; None for control messages.
 
+        ``vehicle`` is the message's :func:`~livematch.feed.decode.known_vehicle`.
         Every worker applies control messages; only the holder of the vehicle's shard
         publishes what follows from them.
         """
         control = self.config.mqtt.control_topic
         if control and vehicle_from_topic(topic, control) is not None:
             return None
-        vehicle = known_vehicle(topic, payload, self.config.feed)
         if vehicle is not None:
             return self._shard(vehicle)
         return self._topic_shard(topic) if self._sharded_topic else self._shard(topic)
@@ -932,17 +943,18 @@ class Daemon:
             return int(level)
         return self._shard(topic)
 
-    def _wrong_shard(self, topic: str, payload: bytes, at: float) -> Output | None:
+    def _wrong_shard(self, topic: str, payload: bytes, at: float,
+                     vehicle: str | None) -> Output | None:
         """A ``wrong_shard`` reject when the topic's shard is not the vehicle's, else None.
 
-        A sender that computes another shard (another ``group.shards``, another hash)
+        ``vehicle`` is the message's :func:`~livematch.feed.decode.known_vehicle`. A
+        sender that computes another shard (another ``group.shards``, another hash)
         would otherwise have its fixes matched by a worker that does not hold the
         vehicle, or by none.
         """
         if not self._sharded_topic:
             return None
         level = shard_from_topic(topic, self._mqtt.topic)
-        vehicle = known_vehicle(topic, payload, self.config.feed)
         if level is None or vehicle is None:
             return None
         expected = self._shard(vehicle)
@@ -1257,6 +1269,7 @@ class Daemon:
         cancelled = False
         try:
             async with client:
+                _observe_disconnect(client)
                 try:
                     self.broker_connected = True
                     self._listening_since = time.time()
@@ -1331,6 +1344,8 @@ class Daemon:
         if isinstance(closed, asyncio.Future):
             closed.add_done_callback(intake.interrupt)
         kept_run = 0  # messages only kept (another worker's shard) since the last turn
+        matched_run = 0  # messages matched in this turn of the loop
+        run_until = 0.0  # monotonic time after which this turn takes no further message
         try:
             while True:
                 await intake.wait()
@@ -1345,7 +1360,8 @@ class Daemon:
                 if self._intake is not None and self._intake.was_shed(message):
                     ack(client, message)  # shed on purpose (and counted): acknowledge
                 else:
-                    if (self._process(client, message) and kept_run < _KEPT_RUN
+                    if (self._process(client, message, intake.last_key)
+                            and kept_run < _KEPT_RUN
                             and not intake.empty()):
                         # Another worker's fix, only kept (no output): take the next
                         # message waiting in this turn of the loop, so that the PUBACKs of
@@ -1358,7 +1374,20 @@ class Daemon:
                     # Take what has arrived meanwhile, so that a backlog is shed here
                     # (newest fix of every vehicle kept), not queued at the broker.
                     drain(client, _DRAIN_PACKETS, _DRAIN_BUDGET_S)
+                    if self._run_on(matched_run, run_until, intake):
+                        # Messages that arrived together (a sender's batch, a burst after
+                        # a pause): match the next one in this turn too, so that the
+                        # acknowledgements and outputs of the run leave in one write
+                        # after it (one system call and one wake-up of the broker, not
+                        # one per message). Bounded in count and time, so the turn
+                        # stays short and the first message's outputs are not held
+                        # back for long.
+                        if matched_run == 0:
+                            run_until = time.monotonic() + _MATCHED_RUN_S
+                        matched_run += 1
+                        continue
                 kept_run = 0
+                matched_run = 0
                 await self._wait_for_room()
                 await asyncio.sleep(0)  # leases, PUBACKs and keepalive run between messages
         finally:
@@ -1368,6 +1397,17 @@ class Daemon:
         self._intake_closed = True
         self._drain_deadline = time.monotonic() + self.config.publish.shutdown_grace_s
         self._outbox_changed.set()
+
+    def _run_on(self, matched_run: int, run_until: float, intake: IntakeQueue) -> bool:
+        """Whether the receive loop matches another waiting message in the same turn.
+
+        Only while messages wait, fewer than ``_MATCHED_RUN`` were matched in this turn
+        and the first of them started less than ``_MATCHED_RUN_S`` ago, and the publish
+        queue has room (``_wait_for_room`` runs between turns).
+        """
+        return (not intake.empty() and matched_run + 1 < _MATCHED_RUN
+                and (matched_run == 0 or time.monotonic() < run_until)
+                and len(self._outbox) < self.config.publish.queue_max)
 
     def _intake_key(self, topic: str, payload: bytes) -> str:
         """The vehicle a received message is about, for shedding (cheap; topic first)."""
@@ -1399,21 +1439,29 @@ class Daemon:
             self._outbox_changed.clear()
             await self._outbox_changed.wait()
 
-    def _process(self, client: aiomqtt.Client, message: aiomqtt.Message) -> bool:
+    def _process(self, client: aiomqtt.Client, message: aiomqtt.Message,
+                 key: str | None = None) -> bool:
         """Match one message, queue its outputs, then acknowledge it.
 
         Synchronous on purpose: nothing can interrupt it between matching and the
         acknowledgement, so a message is either fully handled (state, outputs, PUBACK)
         or not at all (and redelivered). Returns True when the message was only kept
         and acknowledged (another worker's shard), False when it was handled here.
+        ``key`` is the message's intake key (:meth:`_intake_key`, computed when it
+        arrived), which tells without decoding the payload again whether it can be a
+        fix; None: decode it.
         """
         self.metrics.received.inc()
         payload = message.payload
         if not isinstance(payload, bytes | bytearray):
             payload = str(payload).encode()
+        payload = bytes(payload)
         topic = message.topic.value
         at = time.time()
-        wrong = self._wrong_shard(topic, bytes(payload), at)
+        # read once for the shard checks below (it may decode the payload)
+        vehicle = (known_vehicle(topic, payload, self.config.feed)
+                   if self._sharded_topic or self.leases is not None else None)
+        wrong = self._wrong_shard(topic, payload, at, vehicle)
         if wrong is not None:  # published by the holder of the topic's shard
             if self.leases is None or self._answers(self._topic_shard(topic)):
                 self._route(wrong)
@@ -1421,13 +1469,14 @@ class Daemon:
             return False
         if self.leases is not None:
             self._check_deadlines()
-            shard = self._message_shard(topic, bytes(payload))
+            shard = self._message_shard(topic, vehicle)
             if shard is not None:
                 # A possible fix is kept whoever holds the shard: replayed if this worker
                 # takes it (again) after its holder (or this worker, cut off from Redis)
                 # lost it. A message that cannot be a fix changes no state; it is only
                 # rejected, by the worker holding its shard now.
-                possible = looks_like_position(bytes(payload), self.config.feed)
+                possible = (key != JUNK_KEY if key is not None and not key.startswith("c:")
+                            else looks_like_position(payload, self.config.feed))
                 if possible:
                     self._keep(shard, at, topic, bytes(payload))
                 if not (shard in self._active or (shard in self._taking and not possible)):
@@ -1448,7 +1497,6 @@ class Daemon:
             log.exception("pipeline error", extra=fields(topic=topic))
             outputs = [_internal_reject(topic, bytes(payload), exc)]
         self.metrics.processing.observe(time.perf_counter() - started)
-        self._sync_counters()
         for out in outputs:
             if self.leases is None or self._answers(self._shard(out.vehicle or topic)):
                 self._route(out)
@@ -1471,7 +1519,12 @@ class Daemon:
         return now - self._listening_since >= float(stale_s)
 
     def _sync_counters(self) -> None:
-        """Carry the pipeline's counters (fixes, filtered:<reason>) into the metrics."""
+        """Carry the pipeline's counters (fixes, filtered:<reason>) into the metrics.
+
+        Called when the metrics are rendered, not per message: it walks every counter of
+        the pipeline (a few microseconds a message), and nothing else reads these
+        metrics.
+        """
         for key, value in self.pipeline.counters.items():
             delta = value - self._seen_counters[key]
             if delta <= 0:
@@ -1658,6 +1711,7 @@ class Daemon:
             self._sleepers.discard(waiter)
 
     def _render_metrics(self) -> bytes:
+        self._sync_counters()
         self.metrics.vehicles.set(len(self.pipeline.vehicles()))
         self.metrics.memory.set(_resident_bytes())
         return self.metrics.render()
@@ -1682,6 +1736,26 @@ def _disconnected(client: aiomqtt.Client) -> bool:
     """Whether aiomqtt saw the connection end (messages may still be queued then)."""
     done = getattr(client, "_disconnected", None)
     return isinstance(done, asyncio.Future) and done.done()
+
+
+def _observe_disconnect(client: aiomqtt.Client) -> None:
+    """Retrieve the error of aiomqtt's disconnection future whenever it is set.
+
+    aiomqtt sets an exception on it when the connection breaks, and its ``__aexit__``
+    returns without looking at it when it is already done. When the connection broke
+    while the daemon was stopping (the broker stopped with it; the receive loop, which
+    otherwise reads it, had ended), nobody did, and asyncio printed "Future exception
+    was never retrieved" when the future was collected. The error itself is reported
+    as before: the receive loop raises it as the cause of the session's end.
+    """
+    closed = getattr(client, "_disconnected", None)
+    if isinstance(closed, asyncio.Future):
+        closed.add_done_callback(_retrieve_error)
+
+
+def _retrieve_error(future: asyncio.Future[Any]) -> None:
+    if not future.cancelled():
+        future.exception()
 
 
 def _wake(waiter: asyncio.Future[None]) -> None:

@@ -171,6 +171,7 @@ class _Slots:
         self.multi: dict[str, None] = {}  # keys with two or more live messages, oldest first
         self.live = 0  # messages waiting to be matched
         self.markers = 0  # shed QoS 1 messages waiting for their acknowledgement
+        self.last_key = ""  # key of the message popped last
 
     def __len__(self) -> int:
         return self.live + self.markers
@@ -198,6 +199,7 @@ class _Slots:
     def popleft(self) -> aiomqtt.Message:
         while True:
             slot = self.order.popleft()
+            self.last_key = slot.key
             if slot.shed:
                 if slot.message is None:
                     continue  # a shed QoS 0 message: nothing left to do
@@ -302,6 +304,16 @@ class IntakeQueue(asyncio.Queue[aiomqtt.Message]):
     def _get(self) -> aiomqtt.Message:
         slots: _Slots = self._queue
         return slots.popleft()
+
+    @property
+    def last_key(self) -> str:
+        """The key (``key_of``) of the message taken last, "" before the first.
+
+        The receive loop reads it instead of computing the key again: for a message
+        keyed :data:`JUNK_KEY` the payload was found not to be a fix when it arrived.
+        """
+        slots: _Slots = self._queue
+        return slots.last_key
 
     def put_nowait(self, item: aiomqtt.Message) -> None:
         """Queue ``item`` (shedding an older one when full) and wake :meth:`wait`."""
