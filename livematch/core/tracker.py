@@ -42,7 +42,9 @@ How it decides
   are allowed only at dead ends and intersections).
 * **Commits**: where all live candidates of a level share a prefix (their deepest common
   ancestor), that prefix is final. Fixes are committed in order, each by the smallest
-  level whose candidate tree covers it. If the oldest uncommitted fix is older than
+  level whose candidate tree covers it, unless that tree restarted more recently than a
+  larger level's and its stretch could neither continue nor join the committed path: then
+  the older tree commits (:meth:`Tracker._defers`). If the oldest uncommitted fix is older than
   ``max_lag_fixes`` or ``max_lag_s``, the best candidate (lowest live score below
   ``SPARSE_S`` between fixes, else lowest path cost; see :mod:`livematch.core.sweep`) is
   committed up to half the lag and the candidates that
@@ -579,7 +581,7 @@ class Tracker:
                 tree = level.tree
                 # the common ancestor, back to the newest fix that may be committed
                 top = tree.commit_point(self.next_commit, newest)
-                if top >= 0:
+                if top >= 0 and not self._defers(level, top, covering):
                     self._commit_chain(tree, top, events, prune=None)
                     covering = self._covering()
                     progressed = True
@@ -588,7 +590,9 @@ class Tracker:
             too_many = seq - self.next_commit + 1 > s.max_lag_fixes
             too_old = t - self.times[self.next_commit] > s.max_lag_s
             if (too_many or too_old) and covering:
-                level = covering[0]
+                level = next((lv for lv in covering
+                              if not self._defers(lv, lv.tree.best(self.last_seg), covering)),
+                             covering[0])
                 tree = level.tree
                 keep = min(self._lag_target(seq, t), newest)
                 # fixes this dense: the best candidate by live score (see _live_scores)
@@ -605,6 +609,29 @@ class Tracker:
         for stale in [k for k in self.times if k < self.next_commit - 1]:
             del self.times[stale]
         self._trim(seq, t)
+
+    def _defers(self, level: Level, row: int, covering: list[Level]) -> bool:
+        """Whether ``level`` leaves the commit up to row ``row`` to a larger covering level.
+
+        It does when a larger covering level's tree is older (it went on where this one
+        started afresh), and this level's path up to ``row`` neither continues the last
+        committed point nor can be joined to it (:meth:`_join_limit`): committed, it
+        would break the path, where the older tree's candidates may continue it. Why: at
+        1 s a small level that lost the road for a second often restarts on a parallel
+        road for one to three fixes; committed, such a stretch breaks the path at both
+        ends and adds a road never driven.
+        """
+        last = self.last_commit
+        if last is None or not any(lv.eps > level.eps and lv.tree_seq < level.tree_seq
+                                   for lv in covering):
+            return False
+        chain, before = level.tree.chain(row, self.next_commit)
+        if not chain or (before is not None and before.seq == last[2]
+                         and before.seg == last[0]):
+            return False
+        first = chain[0]
+        return connect(self._view, last[0], last[1], first.seg, first.pos,
+                       self._join_limit(first.t - last[3])) is None
 
     def _lag_target(self, seq: int, t: float) -> int:
         """Newest fix a forced commit may reach: half the lag behind the newest fix."""
