@@ -636,9 +636,14 @@ class Tracker:
         if last is None or not any(lv is not level and lv.tree_seq <= level.tree_seq
                                    for lv in covering):
             return False
-        chain, before = level.tree.chain(row, self.next_commit)
-        if not chain or (before is not None and before.seq == last[2]
-                         and before.seg == last[0]):
+        tree = level.tree
+        # the state just before the stretch (a compiled walk; no nodes built for the
+        # usual case, a stretch that goes on from the last committed state)
+        before = tree.ancestor_at(row, self.next_commit - 1)
+        if tree.seq_of(before) == last[2] and int(tree.ti[before, 0]) == last[0]:
+            return False
+        chain, _ = tree.chain(row, self.next_commit)
+        if not chain:
             return False
         first = chain[0]
         return connect(self._view, last[0], last[1], first.seg, first.pos,
