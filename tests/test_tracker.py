@@ -530,6 +530,35 @@ def test_tracker_join_never_longer_than_vehicle_could_drive() -> None:
     assert around + 20.0 == 180.0 > 40.0 * 2.0 + 2.0 * 15.0
 
 
+def test_tracker_fresh_small_level_stretch_that_breaks_path_left_to_older_level() -> None:
+    """Three fixes drawn 22 m towards a road no route reaches: the 15 m level restarts on it
+    for them, the 30 m level's older tree stays on the road driven; the commit goes to the
+    older tree, so the committed path is the one road, unbroken (networkx's shortest path
+    between its ends), and every fix is on it."""
+    import networkx as nx
+
+    main = Road([(float(x), 0.0) for x in range(0, 1001, 50)], way=1)
+    # one way (a single candidate on it, which commits at once), joined to nothing
+    island = Road([(float(x), 25.0) for x in range(300, 501, 50)], way=2, oneway=True)
+    net = network_from_roads([main, island])
+    pts = [(float(x), 22.0 if x in (400, 410, 420) else 0.0) for x in range(0, 701, 10)]
+    events = run(Tracker(net, "v1", MatchSettings(eps_levels=(15.0, 30.0))),
+                 fixes_along(pts))
+    path = committed_path(events)
+    assert_connected(net, path)
+    assert ways(net, path) == [1]
+    assert all(f.segment in path for c in commits(events) for f in c.fixes)
+    # outside check (networkx): the route between the path's ends on the road graph, and
+    # no route at all from the road driven to the other one
+    g = nx.DiGraph()
+    for s in range(net.n_segments):
+        g.add_edge(int(net.seg_from[s]), int(net.seg_to[s]), seg=s)
+    nodes = nx.shortest_path(g, int(net.seg_from[path[0]]), int(net.seg_to[path[-1]]))
+    assert path == [g.edges[a, b]["seg"] for a, b in itertools.pairwise(nodes)]
+    assert not nx.has_path(g, int(net.seg_from[path[0]]), int(net.seg_from[
+        next(s for s in range(net.n_segments) if net.seg_way[s] == 2)]))
+
+
 @pytest.mark.parametrize("dt", [1.0, 15.0, 30.0])
 def test_tracker_first_fix_at_segment_end_reported_on_segment_entered(dt: float) -> None:
     """A trip whose first fix matches the very end of a segment starts on the segment entered.
