@@ -13,6 +13,7 @@ from functools import cache
 import numpy as np
 import osmium
 import pytest
+import shapely
 from pyproj import Geod
 
 from livematch.core.build import Road, network_from_roads
@@ -35,7 +36,7 @@ from livematch.sim.logs import (
     truth_records,
     write_jsonl,
 )
-from livematch.sim.score import TruePath, route_mismatch_fraction
+from livematch.sim.score import TruePath, path_snap_error, route_mismatch_fraction
 from tests.catalogue import grid, oneway_pair
 
 T0 = 1_767_225_600.0
@@ -394,3 +395,22 @@ def test_random_route_revisit_factor_does_not_circle_a_small_loop():
     realistic, plain = most_passes(0.1), most_passes(1.0)
     assert max(realistic) <= 3
     assert max(plain) >= 10 and sum(p > 3 for p in plain) >= 50  # the walk it replaces
+
+
+def test_path_snap_error_matches_shapely_projection_on_a_bent_road() -> None:
+    """The oracle snap equals shapely's nearest point on the driven line (outside reference)."""
+    # Outside reference: shapely's LineString.project / interpolate (GEOS) give the nearest
+    # point of the whole driven line; with a reach covering the path both must agree.
+    pts = np.array([[0.0, 0.0], [40.0, 0.0], [70.0, 25.0], [70.0, 80.0], [20.0, 95.0]])
+    seg_start, seg_end = pts[:-1], pts[1:]
+    line = shapely.LineString(pts)
+    rng = np.random.default_rng(5)
+    for _ in range(200):
+        true_at = float(rng.uniform(0.0, line.length))
+        tp = line.interpolate(true_at)
+        fix = (tp.x + float(rng.normal(0, 8)), tp.y + float(rng.normal(0, 8)))
+        index = int(np.searchsorted(np.cumsum(np.hypot(*(seg_end - seg_start).T)), true_at))
+        got = path_snap_error(seg_start, seg_end, [0, 1, 2, 3], min(index, 3),
+                              (tp.x, tp.y), fix, reach_m=1e6)
+        snapped = line.interpolate(line.project(shapely.Point(fix)))
+        assert got == pytest.approx(snapped.distance(tp), abs=1e-9)
