@@ -475,12 +475,22 @@ I_VIAN = 4
 ROW_I = 5
 F_LOW = 0
 F_POS = 1
-F_X = 2
-F_Y = 3
-F_COST = 4
-F_T = 5
-ROW_F = 6
+F_COST = 2
+F_T = 3
+ROW_F = 4
 ARENA_FULL = -2  # tree_sweep: the tree's arrays are too small for the new rows
+
+
+@numba.njit(cache=True, error_model="numpy")
+def network_sizes(netf: np.ndarray, neti: np.ndarray) -> tuple[int, int]:
+    """``(V, E)``, vertices and segments, from the lengths of ``netf`` and ``neti``.
+
+    ``netf`` holds 2 V + E values and ``neti`` 4 E + 2 V + 1 (module docstring), so
+    E = (len(neti) - len(netf) - 1) / 3 exactly. Lets a kernel that needs the geometry
+    take the two network arrays alone.
+    """
+    n_e = (neti.shape[0] - netf.shape[0] - 1) // 3
+    return (netf.shape[0] - n_e) // 2, n_e
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -505,6 +515,12 @@ def tree_sweep(
     buffers are too small (nothing written either).
     """
     k = hi - lo
+    n_v = ibuf[0]
+    n_e = ibuf[1]
+    vx = netf[0:n_v]
+    vy = netf[n_v:2 * n_v]
+    sf = neti[0:n_e]
+    st = neti[n_e:2 * n_e]
     live = np.empty(N_CTX + LIVE_STRIDE * k)
     for j in range(N_CTX):
         live[j] = ctx[j]
@@ -512,12 +528,19 @@ def tree_sweep(
         r = lo + j
         b = N_CTX + LIVE_STRIDE * j
         seg = ti[r, I_SEG]
+        pos = tf[r, F_POS]
         live[b] = seg
         live[b + 1] = seg
         live[b + 2] = tf[r, F_LOW]
-        live[b + 3] = tf[r, F_POS]
-        live[b + 4] = tf[r, F_X]
-        live[b + 5] = tf[r, F_Y]
+        live[b + 3] = pos
+        # the matched point, not kept in the row: recomputed by the sweep's own expression
+        # (``mx = ax + pos * dx``), so bit for bit the value the sweep wrote
+        a = sf[seg]
+        e = st[seg]
+        ax = vx[a]
+        ay = vy[a]
+        live[b + 4] = ax + pos * (vx[e] - ax)
+        live[b + 5] = ay + pos * (vy[e] - ay)
         live[b + 6] = tf[r, F_COST]
     m, n_via = sweep_kernel(netf, neti, live, fbuf, ibuf)
     if m < 0:
@@ -674,8 +697,10 @@ def tree_append(
         ti[r, I_PARENT] = lo + ibuf[oi + 1]
         ti[r, I_VIA0] = nv + ibuf[oi + 2]
         ti[r, I_VIAN] = ibuf[oi + 3]
-        for c in range(5):
-            tf[r, c] = fbuf[of + c]
+        # an output row is low, pos, x, y, cost: the matched point is not kept
+        tf[r, F_LOW] = fbuf[of]
+        tf[r, F_POS] = fbuf[of + 1]
+        tf[r, F_COST] = fbuf[of + 4]
         tf[r, F_T] = t
     vb = out_i0 + m * OUT_I_STRIDE
     for j in range(n_via):

@@ -5,8 +5,11 @@ three arrays, rows in topological order (a parent's row always precedes its chil
 
 ``ti`` (int32, rows x 5): ``seg, seq, parent, via_start, via_len`` (``parent`` -1 for a
     root; the via of a row is ``tv[via_start:via_start + via_len]``).
-``tf`` (float64, rows x 6): ``low, pos, x, y, cost, t`` — the first five in the order of a
-    sweep kernel output row, so a live row is handed to the kernel without reordering.
+``tf`` (float64, rows x 4): ``low, pos, cost, t``. The matched point (x, y) of a row is
+    not stored: it is ``a + pos (b - a)`` on the row's segment, the very expression the
+    sweep computed it with, so it is recomputed bit for bit where it is read (the live
+    score, the sweep's input, a row handed out as a node) from the network's arrays.
+    A row is 52 bytes (20 + 32) instead of 68 with the point.
 ``tv`` (int32): the vias, one after another.
 
 The live states are one contiguous block of rows ``[lo, hi)``, the newest fix's; they are
@@ -32,8 +35,6 @@ from livematch.core._sweep_kernel import (
     F_LOW,
     F_POS,
     F_T,
-    F_X,
-    F_Y,
     I_PARENT,
     I_SEG,
     I_SEQ,
@@ -42,13 +43,14 @@ from livematch.core._sweep_kernel import (
     ROW_F,
     ROW_I,
     compact,
+    network_sizes,
     tree_append,
     tree_sweep,
 )
 
 __all__ = [
-    "ARENA_FULL", "F_COST", "F_LOW", "F_POS", "F_T", "F_X", "F_Y", "I_PARENT", "I_SEG",
-    "I_SEQ", "I_VIA0", "I_VIAN", "ROW_F", "ROW_I", "ancestor_at", "best_row", "best_scored",
+    "ARENA_FULL", "F_COST", "F_LOW", "F_POS", "F_T", "I_PARENT", "I_SEG", "I_SEQ", "I_VIA0",
+    "I_VIAN", "ROW_F", "ROW_I", "ancestor_at", "best_row", "best_scored",
     "block_ancestor", "chain_rows", "commit_point", "compact", "descends_from", "driven_since",
     "junction_split", "live_answer", "live_scores", "prune_live", "tree_append", "tree_sweep",
     "trim",
@@ -85,16 +87,23 @@ def best_scored(ti: np.ndarray, score: np.ndarray, lo: int, hi: int, prefer: int
 
 @_jit
 def live_scores(
-    ti: np.ndarray, tf: np.ndarray, lo: int, hi: int, fix_xy: np.ndarray, fix_seq0: int,
-    first: int, inv_two_sigma2: float, inv_tau: float, max_dt: float,
+    netf: np.ndarray, neti: np.ndarray, ti: np.ndarray, tf: np.ndarray, lo: int, hi: int,
+    fix_xy: np.ndarray, fix_seq0: int, first: int, inv_two_sigma2: float, inv_tau: float,
+    max_dt: float,
 ) -> np.ndarray:
     """:func:`livematch.core.sweep.live_score` of every live row, in row order.
 
-    ``fix_xy[i]`` is the fix of sequence number ``fix_seq0 + i``; links to states older
-    than fix ``first`` are not walked.
+    ``netf``, ``neti``: the network (``livematch.core._sweep_kernel``), for the matched
+    points. ``fix_xy[i]`` is the fix of sequence number ``fix_seq0 + i``; links to states
+    older than fix ``first`` are not walked.
     """
     out = np.empty(hi - lo)
     n = fix_xy.shape[0]
+    n_v, n_e = network_sizes(netf, neti)
+    vx = netf[0:n_v]
+    vy = netf[n_v:2 * n_v]
+    sf = neti[0:n_e]
+    st = neti[n_e:2 * n_e]
     for r in range(lo, hi):
         score = tf[r, F_COST]
         cur = r
@@ -106,11 +115,18 @@ def live_scores(
             j = ti[p, I_SEQ] - fix_seq0
             dt = tf[cur, F_T] - tf[p, F_T]
             if j >= 0 and i < n and 0.0 < dt <= max_dt:
-                ex = tf[cur, F_X] - fix_xy[i, 0]
-                ey = tf[cur, F_Y] - fix_xy[i, 1]
+                # the matched points of both rows, as the sweep computed them
+                pos = tf[cur, F_POS]
+                a = sf[ti[cur, I_SEG]]
+                b = st[ti[cur, I_SEG]]
+                ex = (vx[a] + pos * (vx[b] - vx[a])) - fix_xy[i, 0]
+                ey = (vy[a] + pos * (vy[b] - vy[a])) - fix_xy[i, 1]
+                pos = tf[p, F_POS]
+                a = sf[ti[p, I_SEG]]
+                b = st[ti[p, I_SEG]]
                 rho = math.exp(-dt * inv_tau)
-                wx = ex - rho * (tf[p, F_X] - fix_xy[j, 0])
-                wy = ey - rho * (tf[p, F_Y] - fix_xy[j, 1])
+                wx = ex - rho * ((vx[a] + pos * (vx[b] - vx[a])) - fix_xy[j, 0])
+                wy = ey - rho * ((vy[a] + pos * (vy[b] - vy[a])) - fix_xy[j, 1])
                 score += ((wx * wx + wy * wy) * inv_two_sigma2 / (1.0 - rho * rho)
                           - (ex * ex + ey * ey) * inv_two_sigma2)
             cur = p
@@ -120,9 +136,9 @@ def live_scores(
 
 @_jit
 def live_answer(
-    ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, lo: int, hi: int, prefer: int,
-    fix_xy: np.ndarray, fix_n: int, fix_seq0: int, first: int, inv_two_sigma2: float,
-    inv_tau: float, max_dt: float, margin: float,
+    netf: np.ndarray, neti: np.ndarray, ti: np.ndarray, tf: np.ndarray, tv: np.ndarray,
+    lo: int, hi: int, prefer: int, fix_xy: np.ndarray, fix_n: int, fix_seq0: int,
+    first: int, inv_two_sigma2: float, inv_tau: float, max_dt: float, margin: float,
 ) -> tuple[int, int]:
     """The live answer's rows in one call: ``(best, split)``.
 
@@ -133,8 +149,8 @@ def live_answer(
     scoring itself, so the tracker asks for both rows at once.
     """
     if inv_tau > 0.0:
-        score = live_scores(ti, tf, lo, hi, fix_xy[:fix_n], fix_seq0, first, inv_two_sigma2,
-                            inv_tau, max_dt)
+        score = live_scores(netf, neti, ti, tf, lo, hi, fix_xy[:fix_n], fix_seq0, first,
+                            inv_two_sigma2, inv_tau, max_dt)
     else:
         score = tf[lo:hi, F_COST].copy()
     best = best_scored(ti, score, lo, hi, prefer)
