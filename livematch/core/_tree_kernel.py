@@ -107,29 +107,36 @@ def live_scores(
     for r in range(lo, hi):
         score = tf[r, F_COST]
         cur = r
+        # the matched points, as the sweep computed them (rows keep none): each row's is
+        # computed once, and a link's parent is the next link's child
+        pos = tf[cur, F_POS]
+        a = sf[ti[cur, I_SEG]]
+        b = st[ti[cur, I_SEG]]
+        cx = vx[a] + pos * (vx[b] - vx[a])
+        cy = vy[a] + pos * (vy[b] - vy[a])
         while True:
             p = ti[cur, I_PARENT]
             if p < 0 or ti[p, I_SEQ] < first:
                 break
+            pos = tf[p, F_POS]
+            a = sf[ti[p, I_SEG]]
+            b = st[ti[p, I_SEG]]
+            px = vx[a] + pos * (vx[b] - vx[a])
+            py = vy[a] + pos * (vy[b] - vy[a])
             i = ti[cur, I_SEQ] - fix_seq0
             j = ti[p, I_SEQ] - fix_seq0
             dt = tf[cur, F_T] - tf[p, F_T]
             if j >= 0 and i < n and 0.0 < dt <= max_dt:
-                # the matched points of both rows, as the sweep computed them
-                pos = tf[cur, F_POS]
-                a = sf[ti[cur, I_SEG]]
-                b = st[ti[cur, I_SEG]]
-                ex = (vx[a] + pos * (vx[b] - vx[a])) - fix_xy[i, 0]
-                ey = (vy[a] + pos * (vy[b] - vy[a])) - fix_xy[i, 1]
-                pos = tf[p, F_POS]
-                a = sf[ti[p, I_SEG]]
-                b = st[ti[p, I_SEG]]
+                ex = cx - fix_xy[i, 0]
+                ey = cy - fix_xy[i, 1]
                 rho = math.exp(-dt * inv_tau)
-                wx = ex - rho * ((vx[a] + pos * (vx[b] - vx[a])) - fix_xy[j, 0])
-                wy = ey - rho * ((vy[a] + pos * (vy[b] - vy[a])) - fix_xy[j, 1])
+                wx = ex - rho * (px - fix_xy[j, 0])
+                wy = ey - rho * (py - fix_xy[j, 1])
                 score += ((wx * wx + wy * wy) * inv_two_sigma2 / (1.0 - rho * rho)
                           - (ex * ex + ey * ey) * inv_two_sigma2)
             cur = p
+            cx = px
+            cy = py
         out[r - lo] = score
     return out
 

@@ -214,8 +214,13 @@ class CandidateTree:
         seg, seq, _, v0, vn = self.ti[row].tolist()
         low, pos, cost, t = self.tf[row].tolist()
         via = tuple(self.tv[v0:v0 + vn].tolist()) if vn else ()
-        x, y = _point(view, seg, pos)
-        return Node(seg, seq, t, pos, x, y, parent, via, cost, low)
+        a = view.sf[seg]
+        b = view.st[seg]
+        ax = view.vx[a]
+        ay = view.vy[a]
+        # _point inlined (a chain of nodes is built at every commit)
+        return Node(seg, seq, t, pos, ax + pos * (view.vx[b] - ax), ay + pos * (view.vy[b] - ay),
+                    parent, via, cost, low)
 
     def point(self, view: NetworkView, row: int) -> tuple[int, float, float, float]:
         """Row ``row``'s segment, position and matched point ``(seg, pos, x, y)``.
@@ -347,18 +352,21 @@ class CandidateTree:
 
     @classmethod
     def unpacked(cls, ti: npt.NDArray[np.int32], tf: npt.NDArray[np.float64],
-                 tv: npt.NDArray[np.int32], live: int) -> CandidateTree:
+                 tv: npt.NDArray[np.int32], live: int, copy: bool = True) -> CandidateTree:
         """The tree :meth:`packed` gave (arrays copied, so read-only buffers will do).
 
-        An empty tree, or one without vias, shares the module's empty arrays instead of
-        holding arrays of its own (about 120 bytes each): nothing is written into them
-        before a compaction has given the tree arrays with room.
+        ``copy`` False: the tree takes the arrays as they are (they must be writable
+        and its own, such as :meth:`packed`'s). An empty tree, or one without vias,
+        shares the module's empty arrays instead of holding arrays of its own (about
+        120 bytes each): nothing is written into them before a compaction has given the
+        tree arrays with room.
         """
         tree = cls()
         if len(ti):
-            tree.ti = np.array(ti, dtype=np.int32)
-            tree.tf = np.array(tf, dtype=np.float64)
-        tree.tv = _tight_vias(np.asarray(tv, dtype=np.int32))
+            tree.ti = np.array(ti, dtype=np.int32, copy=copy)
+            tree.tf = np.array(tf, dtype=np.float64, copy=copy)
+        if len(tv):
+            tree.tv = np.array(tv, dtype=np.int32, copy=copy)
         tree.n = tree.hi = len(ti)
         tree.nv = len(tv)
         tree.lo = tree.n - live

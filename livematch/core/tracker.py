@@ -978,11 +978,7 @@ def _copy_level(level: Level) -> Level:
     """A copy of ``level`` whose tree holds only the rows still needed."""
     out = Level(level.eps)
     ti, tf, tv, live = level.tree.packed()  # already copies: no second copy
-    tree = out.tree = CandidateTree()
-    tree.ti, tree.tf, tree.tv = ti, tf, tv
-    tree.n = tree.hi = len(ti)
-    tree.nv = len(tv)
-    tree.lo = tree.n - live
+    out.tree = CandidateTree.unpacked(ti, tf, tv, live, copy=False)
     out.tree_seq, out.cert_seq, out.cert_t = level.tree_seq, level.cert_seq, level.cert_t
     out.trim_seq = level.trim_seq
     return out
