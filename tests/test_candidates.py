@@ -286,7 +286,7 @@ def test_candidate_tree_trim_and_compaction_keep_decisions() -> None:
 
 
 def test_compact_in_place_equals_compact_into_new_arrays() -> None:
-    """The sweep's compaction within a tree's own arrays keeps the rows a new-array one does."""
+    """Compacting in place, or into new arrays, keeps the rows a compaction into new arrays does."""
     net = osm("Helsinki")
     tracker = Tracker(net, "v", MatchSettings())
     compared = moved = 0
@@ -305,6 +305,15 @@ def test_compact_in_place_equals_compact_into_new_arrays() -> None:
             assert tf2[:n].tobytes() == tf[:n].tobytes()
             assert tv2[:nv].tolist() == tv[:nv].tolist()
             assert kept_rows(tree.ti, tree.n, tree.lo, tree.hi) == (n, nv)
+            # into new numpy arrays of exactly that size (CandidateTree.compact, shrink)
+            ti3, tf3 = np.empty((n, _t.ROW_I), np.int32), np.empty((n, _t.ROW_F))
+            tv3 = np.empty(nv, np.int32)
+            assert _t.compact_into(tree.ti, tree.tf, tree.tv, tree.n, tree.lo, tree.hi, ti3,
+                                   tf3, tv3) == (n, nv, lo)
+            assert ti3.tobytes() == ti[:n].tobytes() and tf3.tobytes() == tf[:n].tobytes()
+            assert tv3.tobytes() == tv[:nv].tobytes()
+            # the arrays a tree keeps are numpy's own, not handed back by compiled code
+            assert tree.ti.base is None and tree.tf.base is None
             compared += 1
             moved += n < tree.n
     assert compared > 300 and moved > 100  # rows really move

@@ -43,6 +43,8 @@ from livematch.core._sweep_kernel import (
     ROW_F,
     ROW_I,
     compact,
+    compact_into,
+    kept_rows,
     network_sizes,
     tree_append,
     tree_sweep,
@@ -51,9 +53,9 @@ from livematch.core._sweep_kernel import (
 __all__ = [
     "ARENA_FULL", "F_COST", "F_LOW", "F_POS", "F_T", "I_PARENT", "I_SEG", "I_SEQ", "I_VIA0",
     "I_VIAN", "ROW_F", "ROW_I", "ancestor_at", "best_row", "best_scored",
-    "block_ancestor", "chain_rows", "commit_point", "compact", "descends_from", "driven_since",
-    "junction_split", "live_answer", "live_scores", "prune_live", "tree_append", "tree_sweep",
-    "trim",
+    "block_ancestor", "chain_rows", "commit_point", "compact", "compact_into", "descends_from",
+    "driven_since", "junction_split", "kept_rows", "live_answer", "live_scores", "prune_live",
+    "tree_append", "tree_sweep", "trim",
 ]
 
 _jit = numba.njit(cache=True, error_model="numpy")

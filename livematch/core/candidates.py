@@ -89,23 +89,37 @@ class CandidateTree:
         ``_MIN_SPARE``, and a quarter of the rows kept (vias: ``spare_vias`` and one per
         two rows of room): a step or two before the next compaction. Tight on purpose:
         a service holds many idle trees, and a compaction costs about a microsecond.
+        The capacities are those of :func:`~livematch.core._tree_kernel.compact`; the
+        arrays are numpy's (:meth:`_compacted`).
         """
         live = self.hi - self.lo
         rows = max(spare_rows, 2 * live + _MIN_SPARE)
         vias = max(spare_vias, rows // 2)  # most states have no via; a tree sweep asks for more
-        self.ti, self.tf, self.tv, self.n, self.nv, self.lo = _t.compact(
-            self.ti, self.tf, self.tv, self.n, self.lo, self.hi, rows, vias)
+        kept, kept_v = _t.kept_rows(self.ti, self.n, self.lo, self.hi)
+        self._compacted(kept + max(kept // 4, rows), kept_v + max(kept_v // 4, vias))
         self.hi = self.lo + live
+
+    def _compacted(self, cap_rows: int, cap_vias: int) -> None:
+        """Compact into new numpy arrays of ``cap_rows`` rows and ``cap_vias`` vias.
+
+        Numpy allocates them and a compiled call fills them
+        (:func:`~livematch.core._tree_kernel.compact_into`): arrays allocated by compiled
+        code and handed back cost more memory to keep and more time to return.
+        """
+        ti = np.empty((cap_rows, _t.ROW_I), np.int32)
+        tf = np.empty((cap_rows, _t.ROW_F))
+        tv = np.empty(cap_vias, np.int32) if cap_vias else _NO_TV
+        self.n, self.nv, self.lo = _t.compact_into(self.ti, self.tf, self.tv, self.n, self.lo,
+                                                   self.hi, ti, tf, tv)
+        self.ti, self.tf, self.tv = ti, tf, tv
 
     def shrink(self) -> None:
         """Keep only the rows still needed, with no room to spare (an idle tree)."""
         if self.n == 0:
             return
-        ti, tf, tv, n, nv, lo = _t.compact(self.ti, self.tf, self.tv, self.n, self.lo,
-                                           self.hi, 0, 0)
         live = self.hi - self.lo
-        self.ti, self.tf, self.tv = ti[:n].copy(), tf[:n].copy(), _tight_vias(tv[:nv])
-        self.n, self.nv, self.lo, self.hi = n, nv, lo, lo + live
+        self._compacted(*_t.kept_rows(self.ti, self.n, self.lo, self.hi))
+        self.hi = self.lo + live
 
     def _make_room(self, rows: int, vias: int) -> None:
         if self.n + rows > len(self.ti) or self.nv + vias > len(self.tv):
@@ -344,11 +358,14 @@ class CandidateTree:
                               npt.NDArray[np.int32], int]:
         """The rows still needed, tight, and the live count (the live block is last).
 
-        Copies; the tree itself is not changed.
+        New arrays, exactly as long as needed; the tree itself is not changed.
         """
-        ti, tf, tv, n, nv, _ = _t.compact(self.ti, self.tf, self.tv, self.n, self.lo,
-                                          self.hi, 0, 0)
-        return ti[:n], tf[:n], tv[:nv], self.hi - self.lo
+        rows, vias = _t.kept_rows(self.ti, self.n, self.lo, self.hi)
+        ti = np.empty((rows, _t.ROW_I), np.int32)
+        tf = np.empty((rows, _t.ROW_F))
+        tv = np.empty(vias, np.int32)
+        _t.compact_into(self.ti, self.tf, self.tv, self.n, self.lo, self.hi, ti, tf, tv)
+        return ti, tf, tv, self.hi - self.lo
 
     @classmethod
     def unpacked(cls, ti: npt.NDArray[np.int32], tf: npt.NDArray[np.float64],
@@ -389,11 +406,6 @@ def _point(view: NetworkView, seg: int, pos: float) -> tuple[float, float]:
     ax = view.vx[a]
     ay = view.vy[a]
     return ax + pos * (view.vx[b] - ax), ay + pos * (view.vy[b] - ay)
-
-
-def _tight_vias(tv: npt.NDArray[np.int32]) -> npt.NDArray[np.int32]:
-    """A copy of ``tv``; the shared empty array when there are no vias (most trees)."""
-    return tv.copy() if len(tv) else _NO_TV
 
 
 def warm_up() -> None:
