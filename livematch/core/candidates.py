@@ -89,14 +89,16 @@ class CandidateTree:
         ``_MIN_SPARE``, and a quarter of the rows kept (vias: ``spare_vias`` and one per
         two rows of room): a step or two before the next compaction. Tight on purpose:
         a service holds many idle trees, and a compaction costs about a microsecond.
-        The capacities are those of :func:`~livematch.core._tree_kernel.compact`; the
-        arrays are numpy's (:meth:`_compacted`).
+
+        The new arrays come from compiled code (one call; two calls and numpy's arrays,
+        as :meth:`shrink` does, cost about 2 µs more a compaction, and a 1 Hz vehicle
+        compacts often), so each carries numba's memory-info object (about 130 bytes).
         """
         live = self.hi - self.lo
         rows = max(spare_rows, 2 * live + _MIN_SPARE)
         vias = max(spare_vias, rows // 2)  # most states have no via; a tree sweep asks for more
-        kept, kept_v = _t.kept_rows(self.ti, self.n, self.lo, self.hi)
-        self._compacted(kept + max(kept // 4, rows), kept_v + max(kept_v // 4, vias))
+        self.ti, self.tf, self.tv, self.n, self.nv, self.lo = _t.compact(
+            self.ti, self.tf, self.tv, self.n, self.lo, self.hi, rows, vias)
         self.hi = self.lo + live
 
     def _compacted(self, cap_rows: int, cap_vias: int) -> None:
@@ -104,7 +106,8 @@ class CandidateTree:
 
         Numpy allocates them and a compiled call fills them
         (:func:`~livematch.core._tree_kernel.compact_into`): arrays allocated by compiled
-        code and handed back cost more memory to keep and more time to return.
+        code and handed back cost about 130 bytes more each to keep, and an idle tree
+        is kept for long.
         """
         ti = np.empty((cap_rows, _t.ROW_I), np.int32)
         tf = np.empty((cap_rows, _t.ROW_F))
