@@ -482,18 +482,6 @@ ARENA_FULL = -2  # tree_sweep: the tree's arrays are too small for the new rows
 
 
 @numba.njit(cache=True, error_model="numpy")
-def network_sizes(netf: np.ndarray, neti: np.ndarray) -> tuple[int, int]:
-    """``(V, E)``, vertices and segments, from the lengths of ``netf`` and ``neti``.
-
-    ``netf`` holds 2 V + E values and ``neti`` 4 E + 2 V + 1 (module docstring), so
-    E = (len(neti) - len(netf) - 1) / 3 exactly. Lets a kernel that needs the geometry
-    take the two network arrays alone.
-    """
-    n_e = (neti.shape[0] - netf.shape[0] - 1) // 3
-    return (netf.shape[0] - n_e) // 2, n_e
-
-
-@numba.njit(cache=True, error_model="numpy")
 def tree_sweep(
     netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
     ctx: np.ndarray, ti: np.ndarray, tf: np.ndarray, tv: np.ndarray,

@@ -8,7 +8,9 @@ three arrays, rows in topological order (a parent's row always precedes its chil
 ``tf`` (float64, rows x 4): ``low, pos, cost, t``. The matched point (x, y) of a row is
     not stored: it is ``a + pos (b - a)`` on the row's segment, the very expression the
     sweep computed it with, so it is recomputed bit for bit where it is read (the live
-    score, the sweep's input, a row handed out as a node) from the network's arrays.
+    score, the sweep's input, a row handed out as a node) from the network's arrays
+    (``seg_geo`` of :class:`livematch.core.fastsweep.SweepArrays`: ax, ay, bx - ax,
+    by - ay per segment).
     A row is 52 bytes (20 + 32) instead of 68 with the point.
 ``tv`` (int32): the vias, one after another.
 
@@ -45,7 +47,6 @@ from livematch.core._sweep_kernel import (
     compact,
     compact_into,
     kept_rows,
-    network_sizes,
     tree_append,
     tree_sweep,
 )
@@ -89,42 +90,35 @@ def best_scored(ti: np.ndarray, score: np.ndarray, lo: int, hi: int, prefer: int
 
 @_jit
 def live_scores(
-    netf: np.ndarray, neti: np.ndarray, ti: np.ndarray, tf: np.ndarray, lo: int, hi: int,
-    fix_xy: np.ndarray, fix_seq0: int, first: int, inv_two_sigma2: float, inv_tau: float,
-    max_dt: float,
+    geo: np.ndarray, ti: np.ndarray, tf: np.ndarray, lo: int, hi: int, fix_xy: np.ndarray,
+    fix_seq0: int, first: int, inv_two_sigma2: float, inv_tau: float, max_dt: float,
 ) -> np.ndarray:
     """:func:`livematch.core.sweep.live_score` of every live row, in row order.
 
-    ``netf``, ``neti``: the network (``livematch.core._sweep_kernel``), for the matched
-    points. ``fix_xy[i]`` is the fix of sequence number ``fix_seq0 + i``; links to states
-    older than fix ``first`` are not walked.
+    ``geo``: per segment ``ax, ay, bx - ax, by - ay``
+    (:attr:`livematch.core.fastsweep.SweepArrays.seg_geo`), for the matched points.
+    ``fix_xy[i]`` is the fix of sequence number ``fix_seq0 + i``; links to states older
+    than fix ``first`` are not walked.
     """
     out = np.empty(hi - lo)
     n = fix_xy.shape[0]
-    n_v, n_e = network_sizes(netf, neti)
-    vx = netf[0:n_v]
-    vy = netf[n_v:2 * n_v]
-    sf = neti[0:n_e]
-    st = neti[n_e:2 * n_e]
     for r in range(lo, hi):
         score = tf[r, F_COST]
         cur = r
         # the matched points, as the sweep computed them (rows keep none): each row's is
         # computed once, and a link's parent is the next link's child
         pos = tf[cur, F_POS]
-        a = sf[ti[cur, I_SEG]]
-        b = st[ti[cur, I_SEG]]
-        cx = vx[a] + pos * (vx[b] - vx[a])
-        cy = vy[a] + pos * (vy[b] - vy[a])
+        g = ti[cur, I_SEG]
+        cx = geo[g, 0] + pos * geo[g, 2]
+        cy = geo[g, 1] + pos * geo[g, 3]
         while True:
             p = ti[cur, I_PARENT]
             if p < 0 or ti[p, I_SEQ] < first:
                 break
             pos = tf[p, F_POS]
-            a = sf[ti[p, I_SEG]]
-            b = st[ti[p, I_SEG]]
-            px = vx[a] + pos * (vx[b] - vx[a])
-            py = vy[a] + pos * (vy[b] - vy[a])
+            g = ti[p, I_SEG]
+            px = geo[g, 0] + pos * geo[g, 2]
+            py = geo[g, 1] + pos * geo[g, 3]
             i = ti[cur, I_SEQ] - fix_seq0
             j = ti[p, I_SEQ] - fix_seq0
             dt = tf[cur, F_T] - tf[p, F_T]
@@ -145,9 +139,9 @@ def live_scores(
 
 @_jit
 def live_answer(
-    netf: np.ndarray, neti: np.ndarray, ti: np.ndarray, tf: np.ndarray, tv: np.ndarray,
-    lo: int, hi: int, prefer: int, fix_xy: np.ndarray, fix_n: int, fix_seq0: int,
-    first: int, inv_two_sigma2: float, inv_tau: float, max_dt: float, margin: float,
+    geo: np.ndarray, ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, lo: int, hi: int,
+    prefer: int, fix_xy: np.ndarray, fix_n: int, fix_seq0: int, first: int,
+    inv_two_sigma2: float, inv_tau: float, max_dt: float, margin: float,
 ) -> tuple[int, int]:
     """The live answer's rows in one call: ``(best, split)``.
 
@@ -158,7 +152,7 @@ def live_answer(
     scoring itself, so the tracker asks for both rows at once.
     """
     if inv_tau > 0.0:
-        score = live_scores(netf, neti, ti, tf, lo, hi, fix_xy[:fix_n], fix_seq0, first,
+        score = live_scores(geo, ti, tf, lo, hi, fix_xy[:fix_n], fix_seq0, first,
                             inv_two_sigma2, inv_tau, max_dt)
     else:
         score = tf[lo:hi, F_COST].copy()

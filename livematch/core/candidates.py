@@ -235,7 +235,7 @@ class CandidateTree:
         b = view.st[seg]
         ax = view.vx[a]
         ay = view.vy[a]
-        # _point inlined (a chain of nodes is built at every commit)
+        # the matched point, as in point() (inlined: a chain of nodes is built per commit)
         return Node(seg, seq, t, pos, ax + pos * (view.vx[b] - ax), ay + pos * (view.vy[b] - ay),
                     parent, via, cost, low)
 
@@ -246,10 +246,13 @@ class CandidateTree:
         expression the sweep wrote it with (:func:`livematch.core.sweep._offer`, the
         sweep kernel), evaluated in the same order, so the same float64 comes out.
         """
-        seg = int(self.ti[row, _t.I_SEG])
-        pos = float(self.tf[row, _t.F_POS])
-        x, y = _point(view, seg, pos)
-        return seg, pos, x, y
+        seg: int = self.ti.item(row, _t.I_SEG)
+        pos: float = self.tf.item(row, _t.F_POS)
+        a = view.sf[seg]
+        b = view.st[seg]
+        ax = view.vx[a]
+        ay = view.vy[a]
+        return seg, pos, ax + pos * (view.vx[b] - ax), ay + pos * (view.vy[b] - ay)
 
     def seq_of(self, row: int) -> int:
         """The fix sequence number of row ``row``."""
@@ -273,8 +276,7 @@ class CandidateTree:
         ``view``: the network (for the matched points). ``fix_xy[i]`` is the fix of
         sequence number ``fix_seq0 + i``; states older than fix ``first`` are not looked at.
         """
-        arrays = sweep_arrays(view)
-        return _t.live_scores(arrays.netf, arrays.neti, self.ti, self.tf, self.lo, self.hi,
+        return _t.live_scores(sweep_arrays(view).seg_geo, self.ti, self.tf, self.lo, self.hi,
                               fix_xy, fix_seq0, first, inv_two_sigma2, 1.0 / tau_s, max_dt)
 
     def live_answer(self, view: NetworkView, prefer: int, fix_xy: npt.NDArray[np.float64],
@@ -285,8 +287,7 @@ class CandidateTree:
         Ranked by :meth:`live_scores` over ``fix_xy[:fix_n]`` when ``tau_s`` > 0, else by
         path cost; ``split`` is -1 when ``margin`` is not positive.
         """
-        arrays = sweep_arrays(view)
-        return _t.live_answer(arrays.netf, arrays.neti, self.ti, self.tf, self.tv, self.lo,
+        return _t.live_answer(sweep_arrays(view).seg_geo, self.ti, self.tf, self.tv, self.lo,
                               self.hi, prefer, fix_xy, fix_n, fix_seq0, first, inv_two_sigma2,
                               1.0 / tau_s if tau_s > 0.0 else 0.0, max_dt, margin)
 
@@ -400,15 +401,6 @@ class CandidateTree:
             p = int(self.ti[r, _t.I_PARENT])
             nodes.append(self.node(view, r, nodes[p] if p >= 0 else None))
         return nodes
-
-
-def _point(view: NetworkView, seg: int, pos: float) -> tuple[float, float]:
-    """The matched point at ``pos`` on ``seg``, bit for bit as the sweep computed it."""
-    a = view.sf[seg]
-    b = view.st[seg]
-    ax = view.vx[a]
-    ay = view.vy[a]
-    return ax + pos * (view.vx[b] - ax), ay + pos * (view.vy[b] - ay)
 
 
 def warm_up() -> None:
