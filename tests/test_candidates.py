@@ -196,6 +196,13 @@ def check_tree(tree: CandidateTree, tracker: Tracker,
             got = tree.commit_point(next_commit, newest)
             assert (got, ref_top) == (-1, None) or nodes[got] is ref_top
     top = tree.ancestor_at(best, seq - 3)
+    want_rows = _t.chain_rows(tree.ti, best, nodes[top].seq).tolist()
+    out = np.full(len(want_rows) - 1, -7, np.int64)  # one short: nothing written
+    assert _t.chain_into(tree.ti, best, nodes[top].seq, out) == -len(want_rows)
+    assert out.tolist() == [-7] * (len(want_rows) - 1)
+    out = np.empty(len(want_rows) + 3, np.int64)
+    assert _t.chain_into(tree.ti, best, nodes[top].seq, out) == len(want_rows) - 1
+    assert out[:len(want_rows)].tolist() == want_rows
     chain, before = tree.chain(view, best, nodes[top].seq)
     ref_chain = []
     cur: Node | None = nodes[best]

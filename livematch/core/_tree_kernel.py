@@ -53,8 +53,8 @@ from livematch.core._sweep_kernel import (
 
 __all__ = [
     "ARENA_FULL", "F_COST", "F_LOW", "F_POS", "F_T", "I_PARENT", "I_SEG", "I_SEQ", "I_VIA0",
-    "I_VIAN", "ROW_F", "ROW_I", "ancestor_at", "best_row", "best_scored",
-    "block_ancestor", "chain_rows", "commit_point", "compact", "compact_into", "descends_from",
+    "I_VIAN", "ROW_F", "ROW_I", "ancestor_at", "best_row", "best_scored", "block_ancestor",
+    "chain_into", "chain_rows", "commit_point", "compact", "compact_into", "descends_from",
     "driven_since", "junction_split", "kept_rows", "live_answer", "live_scores", "prune_live",
     "tree_append", "tree_sweep", "trim",
 ]
@@ -353,6 +353,30 @@ def chain_rows(ti: np.ndarray, top: int, min_seq: int) -> np.ndarray:
         out[j] = cur
         cur = ti[cur, I_PARENT]
     return out
+
+
+@_jit
+def chain_into(ti: np.ndarray, top: int, min_seq: int, out: np.ndarray) -> int:
+    """:func:`chain_rows` written into ``out``; returns the chain's length.
+
+    ``out[:length + 1]`` holds what :func:`chain_rows` returns. When ``out`` is too
+    short nothing is written and ``-(length + 1)`` comes back (the size needed):
+    returning an array from compiled code costs several microseconds, a scalar a
+    fraction of one, and a commit asks for its chain every time.
+    """
+    length = 0
+    cur = top
+    while cur >= 0 and ti[cur, I_SEQ] >= min_seq:
+        length += 1
+        cur = ti[cur, I_PARENT]
+    if length + 1 > out.shape[0]:
+        return -(length + 1)
+    out[length] = cur
+    cur = top
+    for j in range(length - 1, -1, -1):
+        out[j] = cur
+        cur = ti[cur, I_PARENT]
+    return length
 
 
 @_jit

@@ -334,7 +334,12 @@ class CandidateTree:
         The first node's parent is the node before (None at a root). ``view``: the
         network, for the matched points.
         """
-        rows = _t.chain_rows(self.ti, top, min_seq).tolist()
+        arrays = sweep_arrays(view)
+        length = _t.chain_into(self.ti, top, min_seq, arrays.chain)
+        if length < 0:  # the shared scratch is too short: grow it (rarely)
+            arrays.chain = np.empty(2 * -length, dtype=np.int64)
+            length = _t.chain_into(self.ti, top, min_seq, arrays.chain)
+        rows = arrays.chain[:length + 1].tolist()
         before = self.node(view, rows[-1]) if rows[-1] >= 0 else None
         chain: list[Node] = []
         parent = before
