@@ -33,7 +33,7 @@ from livematch.core.sweep import (
     sweep_step,
 )
 from livematch.core.tracker import Tracker
-from livematch.core.view import view_of
+from livematch.core.view import NetworkView, view_of
 from livematch.mapdata.netfile import open_network
 from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
 
@@ -55,6 +55,13 @@ def fields(n: Node) -> tuple[object, ...]:
     """A state's own fields, floats as hex (bit-exact)."""
     return (n.seg, n.seq, n.t.hex(), n.pos.hex(), n.x.hex(), n.y.hex(), n.cost.hex(),
             n.low.hex(), n.via)
+
+
+def point(view: NetworkView, seg: int, pos: float) -> tuple[float, float]:
+    """The point at ``pos`` on ``seg`` (``a + pos (b - a)``, the sweep's expression)."""
+    a, b = view.sf[seg], view.st[seg]
+    return (view.vx[a] + pos * (view.vx[b] - view.vx[a]),
+            view.vy[a] + pos * (view.vy[b] - view.vy[a]))
 
 
 def still_on(node: Node, ancestor: Node) -> bool:
@@ -124,7 +131,8 @@ def check_tree(tree: CandidateTree, tracker: Tracker,
     live score picked another state than the path cost (coverage).
     """
     splits = ancestors = reranked = 0
-    nodes = tree.rows()  # compacts: row r is nodes[r] from here on
+    view = view_of(tracker.network)
+    nodes = tree.rows(view)  # compacts: row r is nodes[r] from here on
     index_of = {id(n): r for r, n in enumerate(nodes)}
     live = nodes[tree.lo:tree.hi]
     live_dict = {n.seg: n for n in live}
@@ -152,7 +160,7 @@ def check_tree(tree: CandidateTree, tracker: Tracker,
     fixes = {tracker.fix_seq0 + i: (float(x), float(y))
              for i, (x, y) in enumerate(tracker.fix_xy[:tracker.fix_n])}
     for first in (tracker.next_commit - 1, seq - 3):
-        score = tree.live_scores(tracker.fix_xy[:tracker.fix_n], tracker.fix_seq0, first,
+        score = tree.live_scores(view, tracker.fix_xy[:tracker.fix_n], tracker.fix_seq0, first,
                                  1.0 / (2.0 * s.sigma_m ** 2), s.error_tau_s, s.gap_s)
         ref_score = [live_score(n, fixes, first, 1.0 / (2.0 * s.sigma_m ** 2), s.error_tau_s,
                                 s.gap_s) for n in live]
@@ -169,8 +177,8 @@ def check_tree(tree: CandidateTree, tracker: Tracker,
         for tau, ranked, costs in ((s.error_tau_s, scored, ref_score), (0.0, best, None)):
             for margin in (0.0, 3.0, 12.0):
                 got_best, got_split = tree.live_answer(
-                    tracker.last_seg, tracker.fix_xy, tracker.fix_n, tracker.fix_seq0, first,
-                    1.0 / (2.0 * s.sigma_m ** 2), tau, s.gap_s, margin)
+                    view, tracker.last_seg, tracker.fix_xy, tracker.fix_n, tracker.fix_seq0,
+                    first, 1.0 / (2.0 * s.sigma_m ** 2), tau, s.gap_s, margin)
                 assert got_best == ranked
                 ref = (junction_reference(live, nodes[ranked], margin, costs) if margin > 0.0
                        else None)
@@ -188,7 +196,14 @@ def check_tree(tree: CandidateTree, tracker: Tracker,
             got = tree.commit_point(next_commit, newest)
             assert (got, ref_top) == (-1, None) or nodes[got] is ref_top
     top = tree.ancestor_at(best, seq - 3)
-    chain, before = tree.chain(best, nodes[top].seq)
+    want_rows = _t.chain_rows(tree.ti, best, nodes[top].seq).tolist()
+    out = np.full(len(want_rows) - 1, -7, np.int64)  # one short: nothing written
+    assert _t.chain_into(tree.ti, best, nodes[top].seq, out) == -len(want_rows)
+    assert out.tolist() == [-7] * (len(want_rows) - 1)
+    out = np.empty(len(want_rows) + 3, np.int64)
+    assert _t.chain_into(tree.ti, best, nodes[top].seq, out) == len(want_rows) - 1
+    assert out[:len(want_rows)].tolist() == want_rows
+    chain, before = tree.chain(view, best, nodes[top].seq)
     ref_chain = []
     cur: Node | None = nodes[best]
     while cur is not None and cur.seq >= nodes[top].seq:
@@ -199,7 +214,7 @@ def check_tree(tree: CandidateTree, tracker: Tracker,
     if before is not None and cur is not None:
         assert fields(before) == fields(cur)
     # the live states handed to the Python steps (bridging), each with its parent
-    handed, rows = tree.live_nodes()
+    handed, rows = tree.live_nodes(view)
     assert [fields(n) for n in handed.values()] == [fields(n) for n in live]
     for n, ref_n in zip(handed.values(), live, strict=True):
         assert rows[id(n)] == index_of[id(ref_n)]
@@ -211,12 +226,12 @@ def check_tree(tree: CandidateTree, tracker: Tracker,
     step = np.array((ctx.eps, ctx.x0, ctx.y0, ctx.x1, ctx.y1, ctx.chord, ctx.inv_two_sigma2,
                      ctx.inv_beta, ctx.turn_back_cost, ctx.motion_cost))
     ref_new = sweep_step(live_dict, ctx)
-    copy_nodes = copy.rows()
+    copy_nodes = copy.rows(view)
     copy_live = copy_nodes[copy.lo:copy.hi]
     assert [fields(n) for n in copy_live] == [fields(n) for n in live]
     assert copy.sweep(view_of(tracker.network), step, ctx.seq, ctx.t) == bool(ref_new)
     if ref_new:
-        new_nodes = copy.rows()
+        new_nodes = copy.rows(view)
         new_live = new_nodes[copy.lo:copy.hi]
         assert [fields(n) for n in new_live] == [fields(n) for n in ref_new.values()]
         for got_node, ref_node in zip(new_live, ref_new.values(), strict=True):
@@ -227,7 +242,7 @@ def check_tree(tree: CandidateTree, tracker: Tracker,
     want = [fields(n) for n in live if descends_from(n, keep)]
     other = CandidateTree.from_nodes(live_dict)
     other.prune(other.ancestor_at(other.best(tracker.last_seg), seq - 2))
-    assert [fields(n) for n in other.rows()[other.lo:other.hi]] == want
+    assert [fields(n) for n in other.rows(view)[other.lo:other.hi]] == want
     return splits, ancestors, reranked
 
 
@@ -278,7 +293,7 @@ def test_candidate_tree_trim_and_compaction_keep_decisions() -> None:
 
 
 def test_compact_in_place_equals_compact_into_new_arrays() -> None:
-    """The sweep's compaction within a tree's own arrays keeps the rows a new-array one does."""
+    """In place, or into arrays numpy allocated, a compaction keeps the rows compact() keeps."""
     net = osm("Helsinki")
     tracker = Tracker(net, "v", MatchSettings())
     compared = moved = 0
@@ -297,6 +312,13 @@ def test_compact_in_place_equals_compact_into_new_arrays() -> None:
             assert tf2[:n].tobytes() == tf[:n].tobytes()
             assert tv2[:nv].tolist() == tv[:nv].tolist()
             assert kept_rows(tree.ti, tree.n, tree.lo, tree.hi) == (n, nv)
+            # into new numpy arrays of exactly that size (CandidateTree.compact, shrink)
+            ti3, tf3 = np.empty((n, _t.ROW_I), np.int32), np.empty((n, _t.ROW_F))
+            tv3 = np.empty(nv, np.int32)
+            assert _t.compact_into(tree.ti, tree.tf, tree.tv, tree.n, tree.lo, tree.hi, ti3,
+                                   tf3, tv3) == (n, nv, lo)
+            assert ti3.tobytes() == ti[:n].tobytes() and tf3.tobytes() == tf[:n].tobytes()
+            assert tv3.tobytes() == tv[:nv].tobytes()
             compared += 1
             moved += n < tree.n
     assert compared > 300 and moved > 100  # rows really move
@@ -308,11 +330,15 @@ def test_candidate_tree_empty_and_roots() -> None:
     assert len(tree) == 0
     tree.extend({}, {})
     assert len(tree) == 0
-    roots = {3: Node(3, 1, 1.0, 0.25, 1.0, 2.0, None, (), 0.5, 0.1),
-             9: Node(9, 1, 1.0, 0.75, 3.0, 4.0, None, (4, 5), 0.25, 0.0)}
+    # matched points on the segments, as the sweep computes them (rows keep no point)
+    view = view_of(osm("test"))
+    roots = {s: Node(s, 1, 1.0, pos, *point(view, s, pos), None, via, cost, low)
+             for s, pos, via, cost, low in ((3, 0.25, (), 0.5, 0.1),
+                                            (9, 0.75, (4, 5), 0.25, 0.0))}
     tree.extend(roots, {})
     assert len(tree) == 2
-    assert [fields(n) for n in tree.rows()] == [fields(n) for n in roots.values()]
+    assert [fields(n) for n in tree.rows(view)] == [fields(n) for n in roots.values()]
+    assert tree.point(view, 0) == (3, 0.25, roots[3].x, roots[3].y)
     assert tree.best(-1) == 1  # the cheaper root
     assert tree.common_ancestor(-1) == -1  # two roots share no ancestor
 
@@ -328,6 +354,8 @@ def test_tracker_keeps_sparse_vehicles_trees_tight() -> None:
         for level in tracker.levels:
             tree = level.tree
             assert len(tree.ti) == tree.n and len(tree.tv) == tree.nv
+            # numpy's own arrays, not ones handed back by compiled code (smaller to keep)
+            assert tree.ti.base is None and tree.tf.base is None and tree.tv.base is None
             if tree.n:
                 assert tree.hi == tree.n  # the live block is last
                 # the newest fix's states (read without rows(), which compacts with room

@@ -306,7 +306,7 @@ def test_tracker_reads_older_lmt1_state() -> None:
 
     tests/data/states/test-osm-bus7-fix120.lmt1: a tracker after 120 fixes of a simulated
     drive on the pyrosm test extract (© OpenStreetMap contributors, ODbL). Restored from
-    it, and restored again from its own LMT2 bytes, both continue identically.
+    it, and restored again from its own LMT3 bytes, both continue identically.
     """
     import importlib.resources
 
@@ -320,11 +320,47 @@ def test_tracker_reads_older_lmt1_state() -> None:
     assert old.seq == 118 and old.vehicle == "bus-7"  # 120 fixes, 2 filtered
     assert any(len(lv.tree) for lv in old.levels)
     new = Tracker.from_bytes(net, None, old.to_bytes())
-    assert old.to_bytes()[:4] == b"LMT2"
+    assert old.to_bytes()[:4] == b"LMT3"
     d = simulate_drive(net, np.random.default_rng([41, 77]), "bus-7", 1.7e9,
                        DriveSettings(duration_s=240.0), drivable_segments(net))
     fixes = [Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy) for o in observe(d, 1)]
     assert run(old, fixes[120:]) == run(new, fixes[120:])
+
+
+@pytest.mark.parametrize(("name", "every", "cut"), [
+    ("test-osm-bus7-fix120.lmt2", 1, 120), ("test-osm-bus7-10s-fix30.lmt2", 10, 30)])
+def test_tracker_reads_older_lmt2_state(name: str, every: int, cut: int) -> None:
+    """An LMT2 checkpoint (rows with their matched points) continues like a run never saved.
+
+    tests/data/states/*.lmt2 were written by the LMT2 code (commit df3bbc9) after ``cut``
+    fixes of a simulated drive on the pyrosm test extract (© OpenStreetMap contributors,
+    ODbL), one fix every ``every`` s; the 10 s one holds the spike test's copy of the
+    levels, and its next fix drops a spike. Restored here, the matched points are
+    recomputed from segment and position: the events from then on, and the LMT3 state
+    at the end, equal those of a tracker that took every fix without a restore.
+    """
+    import importlib.resources
+
+    from livematch.mapdata.netfile import open_network
+    from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
+
+    net = open_network(str(importlib.resources.files("pyrosm") / "data" / "test.osm.pbf"))
+    blob = (Path(__file__).parent / "data" / "states" / name).read_bytes()
+    assert blob[:4] == b"LMT2"
+    d = simulate_drive(net, np.random.default_rng([41, 77]), "bus-7", 1.7e9,
+                       DriveSettings(duration_s=240.0 if every == 1 else 900.0),
+                       drivable_segments(net))
+    fixes = [Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy) for o in observe(d, every)]
+    straight = Tracker(net, "bus-7")
+    run(straight, fixes[:cut], flush=False)
+    restored = Tracker.from_bytes(net, None, blob)
+    assert (restored.before is not None) == (every == 10)
+    assert restored.to_bytes() == straight.to_bytes()
+    after = run(restored, fixes[cut:])
+    assert after == run(straight, fixes[cut:])
+    assert any(e.kind == "filtered" and e.reason == "spike" for e in after) == (every == 10)
+    assert restored.to_bytes() == straight.to_bytes()
+    assert restored.to_bytes()[:4] == b"LMT3"
 
 
 def side_road_parallel() -> RoadNetwork:

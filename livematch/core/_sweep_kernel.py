@@ -475,11 +475,9 @@ I_VIAN = 4
 ROW_I = 5
 F_LOW = 0
 F_POS = 1
-F_X = 2
-F_Y = 3
-F_COST = 4
-F_T = 5
-ROW_F = 6
+F_COST = 2
+F_T = 3
+ROW_F = 4
 ARENA_FULL = -2  # tree_sweep: the tree's arrays are too small for the new rows
 
 
@@ -505,6 +503,12 @@ def tree_sweep(
     buffers are too small (nothing written either).
     """
     k = hi - lo
+    n_v = ibuf[0]
+    n_e = ibuf[1]
+    vx = netf[0:n_v]
+    vy = netf[n_v:2 * n_v]
+    sf = neti[0:n_e]
+    st = neti[n_e:2 * n_e]
     live = np.empty(N_CTX + LIVE_STRIDE * k)
     for j in range(N_CTX):
         live[j] = ctx[j]
@@ -512,12 +516,19 @@ def tree_sweep(
         r = lo + j
         b = N_CTX + LIVE_STRIDE * j
         seg = ti[r, I_SEG]
+        pos = tf[r, F_POS]
         live[b] = seg
         live[b + 1] = seg
         live[b + 2] = tf[r, F_LOW]
-        live[b + 3] = tf[r, F_POS]
-        live[b + 4] = tf[r, F_X]
-        live[b + 5] = tf[r, F_Y]
+        live[b + 3] = pos
+        # the matched point, not kept in the row: recomputed by the sweep's own expression
+        # (``mx = ax + pos * dx``), so bit for bit the value the sweep wrote
+        a = sf[seg]
+        e = st[seg]
+        ax = vx[a]
+        ay = vy[a]
+        live[b + 4] = ax + pos * (vx[e] - ax)
+        live[b + 5] = ay + pos * (vy[e] - ay)
         live[b + 6] = tf[r, F_COST]
     m, n_via = sweep_kernel(netf, neti, live, fbuf, ibuf)
     if m < 0:
@@ -653,6 +664,44 @@ def compact_in_place(
 
 
 @numba.njit(cache=True, error_model="numpy")
+def compact_into(
+    ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, n: int, lo: int, hi: int,
+    ti2: np.ndarray, tf2: np.ndarray, tv2: np.ndarray,
+) -> tuple[int, int, int]:
+    """:func:`compact_in_place`, writing into the arrays ``ti2``, ``tf2``, ``tv2``.
+
+    They must hold at least the rows and vias :func:`kept_rows` counts. The caller
+    allocates them with numpy: an array numba allocates and returns costs about 130
+    bytes more to keep (its memory-info object) and more time to hand back than numpy's.
+    The same loop as :func:`compact_in_place`, kept apart so that the in-place loop
+    reads and writes one set of arrays. Returns ``(n, nv, lo)``.
+    """
+    keep = kept_mask(ti, n, lo, hi)
+    new_index = np.full(n, -1, np.int64)
+    q = 0
+    nv = 0
+    for r in range(n):
+        if not keep[r]:
+            continue
+        new_index[r] = q
+        p = ti[r, I_PARENT]
+        v0 = ti[r, I_VIA0]
+        vn = ti[r, I_VIAN]
+        for j in range(vn):
+            tv2[nv + j] = tv[v0 + j]
+        ti2[q, I_SEG] = ti[r, I_SEG]
+        ti2[q, I_SEQ] = ti[r, I_SEQ]
+        ti2[q, I_PARENT] = new_index[p] if p >= 0 else -1
+        ti2[q, I_VIA0] = nv
+        ti2[q, I_VIAN] = vn
+        for c in range(ROW_F):
+            tf2[q, c] = tf[r, c]
+        nv += vn
+        q += 1
+    return q, nv, int(new_index[lo]) if hi > lo else q
+
+
+@numba.njit(cache=True, error_model="numpy")
 def tree_append(
     fbuf: np.ndarray, ibuf: np.ndarray, ti: np.ndarray, tf: np.ndarray, tv: np.ndarray,
     n: int, nv: int, lo: int, seq: int, t: float, m: int, n_via: int,
@@ -674,8 +723,10 @@ def tree_append(
         ti[r, I_PARENT] = lo + ibuf[oi + 1]
         ti[r, I_VIA0] = nv + ibuf[oi + 2]
         ti[r, I_VIAN] = ibuf[oi + 3]
-        for c in range(5):
-            tf[r, c] = fbuf[of + c]
+        # an output row is low, pos, x, y, cost: the matched point is not kept
+        tf[r, F_LOW] = fbuf[of]
+        tf[r, F_POS] = fbuf[of + 1]
+        tf[r, F_COST] = fbuf[of + 4]
         tf[r, F_T] = t
     vb = out_i0 + m * OUT_I_STRIDE
     for j in range(n_via):

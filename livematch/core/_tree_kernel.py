@@ -5,8 +5,13 @@ three arrays, rows in topological order (a parent's row always precedes its chil
 
 ``ti`` (int32, rows x 5): ``seg, seq, parent, via_start, via_len`` (``parent`` -1 for a
     root; the via of a row is ``tv[via_start:via_start + via_len]``).
-``tf`` (float64, rows x 6): ``low, pos, x, y, cost, t`` — the first five in the order of a
-    sweep kernel output row, so a live row is handed to the kernel without reordering.
+``tf`` (float64, rows x 4): ``low, pos, cost, t``. The matched point (x, y) of a row is
+    not stored: it is ``a + pos (b - a)`` on the row's segment, the very expression the
+    sweep computed it with, so it is recomputed bit for bit where it is read (the live
+    score, the sweep's input, a row handed out as a node) from the network's arrays
+    (``seg_geo`` of :class:`livematch.core.fastsweep.SweepArrays`: ax, ay, bx - ax,
+    by - ay per segment).
+    A row is 52 bytes (20 + 32) instead of 68 with the point.
 ``tv`` (int32): the vias, one after another.
 
 The live states are one contiguous block of rows ``[lo, hi)``, the newest fix's; they are
@@ -32,8 +37,6 @@ from livematch.core._sweep_kernel import (
     F_LOW,
     F_POS,
     F_T,
-    F_X,
-    F_Y,
     I_PARENT,
     I_SEG,
     I_SEQ,
@@ -42,16 +45,18 @@ from livematch.core._sweep_kernel import (
     ROW_F,
     ROW_I,
     compact,
+    compact_into,
+    kept_rows,
     tree_append,
     tree_sweep,
 )
 
 __all__ = [
-    "ARENA_FULL", "F_COST", "F_LOW", "F_POS", "F_T", "F_X", "F_Y", "I_PARENT", "I_SEG",
-    "I_SEQ", "I_VIA0", "I_VIAN", "ROW_F", "ROW_I", "ancestor_at", "best_row", "best_scored",
-    "block_ancestor", "chain_rows", "commit_point", "compact", "descends_from", "driven_since",
-    "junction_split", "live_answer", "live_scores", "prune_live", "tree_append", "tree_sweep",
-    "trim",
+    "ARENA_FULL", "F_COST", "F_LOW", "F_POS", "F_T", "I_PARENT", "I_SEG", "I_SEQ", "I_VIA0",
+    "I_VIAN", "ROW_F", "ROW_I", "ancestor_at", "best_row", "best_scored", "block_ancestor",
+    "chain_into", "chain_rows", "commit_point", "compact", "compact_into", "descends_from",
+    "driven_since", "junction_split", "kept_rows", "live_answer", "live_scores", "prune_live",
+    "tree_append", "tree_sweep", "trim",
 ]
 
 _jit = numba.njit(cache=True, error_model="numpy")
@@ -85,11 +90,13 @@ def best_scored(ti: np.ndarray, score: np.ndarray, lo: int, hi: int, prefer: int
 
 @_jit
 def live_scores(
-    ti: np.ndarray, tf: np.ndarray, lo: int, hi: int, fix_xy: np.ndarray, fix_seq0: int,
-    first: int, inv_two_sigma2: float, inv_tau: float, max_dt: float,
+    geo: np.ndarray, ti: np.ndarray, tf: np.ndarray, lo: int, hi: int, fix_xy: np.ndarray,
+    fix_seq0: int, first: int, inv_two_sigma2: float, inv_tau: float, max_dt: float,
 ) -> np.ndarray:
     """:func:`livematch.core.sweep.live_score` of every live row, in row order.
 
+    ``geo``: per segment ``ax, ay, bx - ax, by - ay``
+    (:attr:`livematch.core.fastsweep.SweepArrays.seg_geo`), for the matched points.
     ``fix_xy[i]`` is the fix of sequence number ``fix_seq0 + i``; links to states older
     than fix ``first`` are not walked.
     """
@@ -98,31 +105,43 @@ def live_scores(
     for r in range(lo, hi):
         score = tf[r, F_COST]
         cur = r
+        # the matched points, as the sweep computed them (rows keep none): each row's is
+        # computed once, and a link's parent is the next link's child
+        pos = tf[cur, F_POS]
+        g = ti[cur, I_SEG]
+        cx = geo[g, 0] + pos * geo[g, 2]
+        cy = geo[g, 1] + pos * geo[g, 3]
         while True:
             p = ti[cur, I_PARENT]
             if p < 0 or ti[p, I_SEQ] < first:
                 break
+            pos = tf[p, F_POS]
+            g = ti[p, I_SEG]
+            px = geo[g, 0] + pos * geo[g, 2]
+            py = geo[g, 1] + pos * geo[g, 3]
             i = ti[cur, I_SEQ] - fix_seq0
             j = ti[p, I_SEQ] - fix_seq0
             dt = tf[cur, F_T] - tf[p, F_T]
             if j >= 0 and i < n and 0.0 < dt <= max_dt:
-                ex = tf[cur, F_X] - fix_xy[i, 0]
-                ey = tf[cur, F_Y] - fix_xy[i, 1]
+                ex = cx - fix_xy[i, 0]
+                ey = cy - fix_xy[i, 1]
                 rho = math.exp(-dt * inv_tau)
-                wx = ex - rho * (tf[p, F_X] - fix_xy[j, 0])
-                wy = ey - rho * (tf[p, F_Y] - fix_xy[j, 1])
+                wx = ex - rho * (px - fix_xy[j, 0])
+                wy = ey - rho * (py - fix_xy[j, 1])
                 score += ((wx * wx + wy * wy) * inv_two_sigma2 / (1.0 - rho * rho)
                           - (ex * ex + ey * ey) * inv_two_sigma2)
             cur = p
+            cx = px
+            cy = py
         out[r - lo] = score
     return out
 
 
 @_jit
 def live_answer(
-    ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, lo: int, hi: int, prefer: int,
-    fix_xy: np.ndarray, fix_n: int, fix_seq0: int, first: int, inv_two_sigma2: float,
-    inv_tau: float, max_dt: float, margin: float,
+    geo: np.ndarray, ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, lo: int, hi: int,
+    prefer: int, fix_xy: np.ndarray, fix_n: int, fix_seq0: int, first: int,
+    inv_two_sigma2: float, inv_tau: float, max_dt: float, margin: float,
 ) -> tuple[int, int]:
     """The live answer's rows in one call: ``(best, split)``.
 
@@ -133,8 +152,8 @@ def live_answer(
     scoring itself, so the tracker asks for both rows at once.
     """
     if inv_tau > 0.0:
-        score = live_scores(ti, tf, lo, hi, fix_xy[:fix_n], fix_seq0, first, inv_two_sigma2,
-                            inv_tau, max_dt)
+        score = live_scores(geo, ti, tf, lo, hi, fix_xy[:fix_n], fix_seq0, first,
+                            inv_two_sigma2, inv_tau, max_dt)
     else:
         score = tf[lo:hi, F_COST].copy()
     best = best_scored(ti, score, lo, hi, prefer)
@@ -334,6 +353,30 @@ def chain_rows(ti: np.ndarray, top: int, min_seq: int) -> np.ndarray:
         out[j] = cur
         cur = ti[cur, I_PARENT]
     return out
+
+
+@_jit
+def chain_into(ti: np.ndarray, top: int, min_seq: int, out: np.ndarray) -> int:
+    """:func:`chain_rows` written into ``out``; returns the chain's length.
+
+    ``out[:length + 1]`` holds what :func:`chain_rows` returns. When ``out`` is too
+    short nothing is written and ``-(length + 1)`` comes back (the size needed):
+    returning an array from compiled code costs several microseconds, a scalar a
+    fraction of one, and a commit asks for its chain every time.
+    """
+    length = 0
+    cur = top
+    while cur >= 0 and ti[cur, I_SEQ] >= min_seq:
+        length += 1
+        cur = ti[cur, I_PARENT]
+    if length + 1 > out.shape[0]:
+        return -(length + 1)
+    out[length] = cur
+    cur = top
+    for j in range(length - 1, -1, -1):
+        out[j] = cur
+        cur = ti[cur, I_PARENT]
+    return length
 
 
 @_jit

@@ -28,8 +28,8 @@ Example (a vehicle on a straight one-way road; two fixes 10 m apart):
     >>> step = np.array([15.0, 20.0, 1.0, 30.0, 1.0, 10.0, 0.02, 0.2, 2.0, 0.2])
     >>> tree.sweep(view_of(net), step, 2, 2.0)
     True
-    >>> [(n.seg, round(n.pos, 2)) for n in tree.live_nodes()[0].values()]
-    [(0, 0.3)]
+    >>> [(n.seg, round(n.pos, 2), round(n.x, 2)) for n in tree.live_nodes(view_of(net))[0].values()]
+    [(0, 0.3, 30.0)]
     >>> tree.sweep(view_of(net), np.array([15.0, 30.0, 1.0, 30.0, 90.0, 89.0, 0.02, 0.2,
     ...                                     2.0, 0.2]), 3, 3.0)  # 89 m off the road: dies
     False
@@ -89,6 +89,10 @@ class CandidateTree:
         ``_MIN_SPARE``, and a quarter of the rows kept (vias: ``spare_vias`` and one per
         two rows of room): a step or two before the next compaction. Tight on purpose:
         a service holds many idle trees, and a compaction costs about a microsecond.
+
+        The new arrays come from compiled code (one call; two calls and numpy's arrays,
+        as :meth:`shrink` does, cost about 2 µs more a compaction, and a 1 Hz vehicle
+        compacts often), so each carries numba's memory-info object (about 130 bytes).
         """
         live = self.hi - self.lo
         rows = max(spare_rows, 2 * live + _MIN_SPARE)
@@ -97,15 +101,28 @@ class CandidateTree:
             self.ti, self.tf, self.tv, self.n, self.lo, self.hi, rows, vias)
         self.hi = self.lo + live
 
+    def _compacted(self, cap_rows: int, cap_vias: int) -> None:
+        """Compact into new numpy arrays of ``cap_rows`` rows and ``cap_vias`` vias.
+
+        Numpy allocates them and a compiled call fills them
+        (:func:`~livematch.core._tree_kernel.compact_into`): arrays allocated by compiled
+        code and handed back cost about 130 bytes more each to keep, and an idle tree
+        is kept for long.
+        """
+        ti = np.empty((cap_rows, _t.ROW_I), np.int32)
+        tf = np.empty((cap_rows, _t.ROW_F))
+        tv = np.empty(cap_vias, np.int32) if cap_vias else _NO_TV
+        self.n, self.nv, self.lo = _t.compact_into(self.ti, self.tf, self.tv, self.n, self.lo,
+                                                   self.hi, ti, tf, tv)
+        self.ti, self.tf, self.tv = ti, tf, tv
+
     def shrink(self) -> None:
         """Keep only the rows still needed, with no room to spare (an idle tree)."""
         if self.n == 0:
             return
-        ti, tf, tv, n, nv, lo = _t.compact(self.ti, self.tf, self.tv, self.n, self.lo,
-                                           self.hi, 0, 0)
         live = self.hi - self.lo
-        self.ti, self.tf, self.tv = ti[:n].copy(), tf[:n].copy(), tv[:nv].copy()
-        self.n, self.nv, self.lo, self.hi = n, nv, lo, lo + live
+        self._compacted(*_t.kept_rows(self.ti, self.n, self.lo, self.hi))
+        self.hi = self.lo + live
 
     def _make_room(self, rows: int, vias: int) -> None:
         if self.n + rows > len(self.ti) or self.nv + vias > len(self.tv):
@@ -141,11 +158,12 @@ class CandidateTree:
         self.nv += n_via
         return True
 
-    def live_nodes(self) -> tuple[dict[int, Node], dict[int, int]]:
+    def live_nodes(self, view: NetworkView) -> tuple[dict[int, Node], dict[int, int]]:
         """The live states as nodes (segment -> node), and node id -> row.
 
         Each node's parent is given too (as a parentless node), so the step that reached
-        a state is known (its route length and speed), not the path before it.
+        a state is known (its route length and speed), not the path before it. ``view``:
+        the network, for the matched points (:meth:`node`).
         """
         nodes: dict[int, Node] = {}
         rows: dict[int, int] = {}
@@ -156,8 +174,8 @@ class CandidateTree:
             if p >= 0:
                 parent = parents.get(p)
                 if parent is None:
-                    parent = parents[p] = self.node(p)
-            node = self.node(r, parent)
+                    parent = parents[p] = self.node(view, p)
+            node = self.node(view, r, parent)
             nodes[node.seg] = node
             rows[id(node)] = r
         return nodes, rows
@@ -176,7 +194,8 @@ class CandidateTree:
         for r, node in enumerate(new.values(), start=lo):
             parent = -1 if node.parent is None else rows[id(node.parent)] + shift
             self.ti[r] = (node.seg, node.seq, parent, self.nv, len(node.via))
-            self.tf[r] = (node.low, node.pos, node.x, node.y, node.cost, node.t)
+            # the matched point is not kept: it is node.x, node.y recomputed (see node)
+            self.tf[r] = (node.low, node.pos, node.cost, node.t)
             self.tv[self.nv:self.nv + len(node.via)] = node.via
             self.nv += len(node.via)
         self.lo = lo
@@ -204,12 +223,36 @@ class CandidateTree:
         return tree
 
     # ------------------------------------------------------------- questions
-    def node(self, row: int, parent: Node | None = None) -> Node:
-        """Row ``row`` as a :class:`Node` (with ``parent`` as its parent)."""
+    def node(self, view: NetworkView, row: int, parent: Node | None = None) -> Node:
+        """Row ``row`` as a :class:`Node` (with ``parent`` as its parent).
+
+        The matched point is recomputed on ``view``'s geometry (:meth:`point`).
+        """
         seg, seq, _, v0, vn = self.ti[row].tolist()
-        low, pos, x, y, cost, t = self.tf[row].tolist()
+        low, pos, cost, t = self.tf[row].tolist()
         via = tuple(self.tv[v0:v0 + vn].tolist()) if vn else ()
-        return Node(seg, seq, t, pos, x, y, parent, via, cost, low)
+        a = view.sf[seg]
+        b = view.st[seg]
+        ax = view.vx[a]
+        ay = view.vy[a]
+        # the matched point, as in point() (inlined: a chain of nodes is built per commit)
+        return Node(seg, seq, t, pos, ax + pos * (view.vx[b] - ax), ay + pos * (view.vy[b] - ay),
+                    parent, via, cost, low)
+
+    def point(self, view: NetworkView, row: int) -> tuple[int, float, float, float]:
+        """Row ``row``'s segment, position and matched point ``(seg, pos, x, y)``.
+
+        Rows keep no matched point: it is ``a + pos (b - a)`` on the segment (a, b), the
+        expression the sweep wrote it with (:func:`livematch.core.sweep._offer`, the
+        sweep kernel), evaluated in the same order, so the same float64 comes out.
+        """
+        seg: int = self.ti.item(row, _t.I_SEG)
+        pos: float = self.tf.item(row, _t.F_POS)
+        a = view.sf[seg]
+        b = view.st[seg]
+        ax = view.vx[a]
+        ay = view.vy[a]
+        return seg, pos, ax + pos * (view.vx[b] - ax), ay + pos * (view.vy[b] - ay)
 
     def seq_of(self, row: int) -> int:
         """The fix sequence number of row ``row``."""
@@ -225,27 +268,27 @@ class CandidateTree:
             return _t.best_row(self.ti, self.tf, self.lo, self.hi, prefer)
         return _t.best_scored(self.ti, score, self.lo, self.hi, prefer)
 
-    def live_scores(self, fix_xy: npt.NDArray[np.float64], fix_seq0: int, first: int,
-                    inv_two_sigma2: float, tau_s: float,
+    def live_scores(self, view: NetworkView, fix_xy: npt.NDArray[np.float64], fix_seq0: int,
+                    first: int, inv_two_sigma2: float, tau_s: float,
                     max_dt: float) -> npt.NDArray[np.float64]:
         """:func:`livematch.core.sweep.live_score` of every live state, in row order.
 
-        ``fix_xy[i]`` is the fix of sequence number ``fix_seq0 + i``; states older than
-        fix ``first`` are not looked at.
+        ``view``: the network (for the matched points). ``fix_xy[i]`` is the fix of
+        sequence number ``fix_seq0 + i``; states older than fix ``first`` are not looked at.
         """
-        return _t.live_scores(self.ti, self.tf, self.lo, self.hi, fix_xy, fix_seq0, first,
-                              inv_two_sigma2, 1.0 / tau_s, max_dt)
+        return _t.live_scores(sweep_arrays(view).seg_geo, self.ti, self.tf, self.lo, self.hi,
+                              fix_xy, fix_seq0, first, inv_two_sigma2, 1.0 / tau_s, max_dt)
 
-    def live_answer(self, prefer: int, fix_xy: npt.NDArray[np.float64], fix_n: int,
-                    fix_seq0: int, first: int, inv_two_sigma2: float, tau_s: float,
-                    max_dt: float, margin: float) -> tuple[int, int]:
+    def live_answer(self, view: NetworkView, prefer: int, fix_xy: npt.NDArray[np.float64],
+                    fix_n: int, fix_seq0: int, first: int, inv_two_sigma2: float,
+                    tau_s: float, max_dt: float, margin: float) -> tuple[int, int]:
         """:meth:`best` and :meth:`junction_split` in one compiled call: ``(best, split)``.
 
         Ranked by :meth:`live_scores` over ``fix_xy[:fix_n]`` when ``tau_s`` > 0, else by
         path cost; ``split`` is -1 when ``margin`` is not positive.
         """
-        return _t.live_answer(self.ti, self.tf, self.tv, self.lo, self.hi, prefer, fix_xy,
-                              fix_n, fix_seq0, first, inv_two_sigma2,
+        return _t.live_answer(sweep_arrays(view).seg_geo, self.ti, self.tf, self.tv, self.lo,
+                              self.hi, prefer, fix_xy, fix_n, fix_seq0, first, inv_two_sigma2,
                               1.0 / tau_s if tau_s > 0.0 else 0.0, max_dt, margin)
 
     def common_ancestor(self, floor: int) -> int:
@@ -284,17 +327,24 @@ class CandidateTree:
         """
         return float(_t.driven_since(self.ti, self.tf, self.tv, slen, row, anc))
 
-    def chain(self, top: int, min_seq: int) -> tuple[list[Node], Node | None]:
+    def chain(self, view: NetworkView, top: int,
+              min_seq: int) -> tuple[list[Node], Node | None]:
         """The path to ``top`` from fix ``min_seq`` on as linked nodes, and the node before.
 
-        The first node's parent is the node before (None at a root).
+        The first node's parent is the node before (None at a root). ``view``: the
+        network, for the matched points.
         """
-        rows = _t.chain_rows(self.ti, top, min_seq).tolist()
-        before = self.node(rows[-1]) if rows[-1] >= 0 else None
+        arrays = sweep_arrays(view)
+        length = _t.chain_into(self.ti, top, min_seq, arrays.chain)
+        if length < 0:  # the shared scratch is too short: grow it (rarely)
+            arrays.chain = np.empty(2 * -length, dtype=np.int64)
+            length = _t.chain_into(self.ti, top, min_seq, arrays.chain)
+        rows = arrays.chain[:length + 1].tolist()
+        before = self.node(view, rows[-1]) if rows[-1] >= 0 else None
         chain: list[Node] = []
         parent = before
         for r in rows[:-1]:
-            parent = self.node(r, parent)
+            parent = self.node(view, r, parent)
             chain.append(parent)
         return chain, before
 
@@ -317,32 +367,44 @@ class CandidateTree:
                               npt.NDArray[np.int32], int]:
         """The rows still needed, tight, and the live count (the live block is last).
 
-        Copies; the tree itself is not changed.
+        New arrays, exactly as long as needed; the tree itself is not changed.
         """
-        ti, tf, tv, n, nv, _ = _t.compact(self.ti, self.tf, self.tv, self.n, self.lo,
-                                          self.hi, 0, 0)
-        return ti[:n], tf[:n], tv[:nv], self.hi - self.lo
+        rows, vias = _t.kept_rows(self.ti, self.n, self.lo, self.hi)
+        ti = np.empty((rows, _t.ROW_I), np.int32)
+        tf = np.empty((rows, _t.ROW_F))
+        tv = np.empty(vias, np.int32)
+        _t.compact_into(self.ti, self.tf, self.tv, self.n, self.lo, self.hi, ti, tf, tv)
+        return ti, tf, tv, self.hi - self.lo
 
     @classmethod
     def unpacked(cls, ti: npt.NDArray[np.int32], tf: npt.NDArray[np.float64],
-                 tv: npt.NDArray[np.int32], live: int) -> CandidateTree:
-        """The tree :meth:`packed` gave (arrays copied, so read-only buffers will do)."""
+                 tv: npt.NDArray[np.int32], live: int, copy: bool = True) -> CandidateTree:
+        """The tree :meth:`packed` gave (arrays copied, so read-only buffers will do).
+
+        ``copy`` False: the tree takes the arrays as they are (they must be writable
+        and its own, such as :meth:`packed`'s). An empty tree, or one without vias,
+        shares the module's empty arrays instead of holding arrays of its own (about
+        120 bytes each): nothing is written into them before a compaction has given the
+        tree arrays with room.
+        """
         tree = cls()
-        tree.ti = np.array(ti, dtype=np.int32)
-        tree.tf = np.array(tf, dtype=np.float64)
-        tree.tv = np.array(tv, dtype=np.int32)
+        if len(ti):
+            tree.ti = np.array(ti, dtype=np.int32, copy=copy)
+            tree.tf = np.array(tf, dtype=np.float64, copy=copy)
+        if len(tv):
+            tree.tv = np.array(tv, dtype=np.int32, copy=copy)
         tree.n = tree.hi = len(ti)
         tree.nv = len(tv)
         tree.lo = tree.n - live
         return tree
 
-    def rows(self) -> list[Node]:
+    def rows(self, view: NetworkView) -> list[Node]:
         """Every row still needed (after a compaction), as linked nodes in row order."""
         self.compact()
         nodes: list[Node] = []
         for r in range(self.n):
             p = int(self.ti[r, _t.I_PARENT])
-            nodes.append(self.node(r, nodes[p] if p >= 0 else None))
+            nodes.append(self.node(view, r, nodes[p] if p >= 0 else None))
         return nodes
 
 
@@ -374,15 +436,15 @@ def warm_up() -> None:
     row = tree.ancestor_at(tree.best(-1), 0)
     # kernels a tracker calls from Python only at a junction hold, a forced lag commit or
     # a spike test (5-20 s between fixes): a service met them compiling mid-run
-    score = tree.live_scores(tracker.fix_xy[:tracker.fix_n], tracker.fix_seq0, 0, 0.02,
-                             30.0, 5.0)
+    score = tree.live_scores(view_of(net), tracker.fix_xy[:tracker.fix_n], tracker.fix_seq0,
+                             0, 0.02, 30.0, 5.0)
     best = tree.best(-1, score)
     tree.junction_split(best, 1.0, score)
     tree.driven_since(best, row, net.seg_len)
     tree.common_ancestor(0)
     tree.prune(row)
     # the sweep kernel on its own (the route monitor's step) is a compilation of its own
-    live, _ = tree.live_nodes()
+    live, _ = tree.live_nodes(view_of(net))
     ctx = StepContext.between(view_of(net), tracker.settings, 15.0, 110.0, 1.0, 120.0, 1.0,
                               tracker.seq + 1, 99.0)
     fast_sweep_step(live, ctx)

@@ -63,12 +63,14 @@ class SweepArrays:
 
     Attributes:
         netf, neti: the network (float64 and int64 parts, layout in ``_sweep_kernel``).
+        seg_geo: per segment (a, b) the row ``ax, ay, bx - ax, by - ay`` (metres).
         fbuf, ibuf: scratch and output buffers, grown by :meth:`grow`.
+        chain: scratch for the rows of a commit's chain (``CandidateTree.chain``).
         out_f0, out_i0: where the output rows start (the vias follow the int rows).
     """
 
-    __slots__ = ("cap_b", "cap_h", "cap_m", "cap_o", "fbuf", "ibuf", "n_e", "n_v", "netf",
-                 "neti", "out_f0", "out_i0")
+    __slots__ = ("cap_b", "cap_h", "cap_m", "cap_o", "chain", "fbuf", "ibuf", "n_e", "n_v",
+                 "netf", "neti", "out_f0", "out_i0", "seg_geo")
 
     def __init__(self, view: NetworkView) -> None:
         net = view.network
@@ -80,6 +82,17 @@ class SweepArrays:
         self.neti: npt.NDArray[np.int64] = np.concatenate(
             [np.asarray(a, dtype=np.int64) for a in (
                 view.sf, view.st, view.twin, net.out_seg, net.out_ptr, view.turn_back_ok)])
+        # per segment (a, b): ax, ay, bx - ax, by - ay, so that a matched point is
+        # ax + pos * (bx - ax) with the very operations the sweep uses (tree rows keep no
+        # point; livematch.core._tree_kernel.live_scores recomputes them from this)
+        vx = np.asarray(view.vx, dtype=np.float64)
+        vy = np.asarray(view.vy, dtype=np.float64)
+        sf = np.asarray(view.sf, dtype=np.int64)
+        st = np.asarray(view.st, dtype=np.int64)
+        self.seg_geo: npt.NDArray[np.float64] = np.ascontiguousarray(np.stack(
+            [vx[sf], vy[sf], vx[st] - vx[sf], vy[st] - vy[sf]], axis=1))
+        # the rows of a commit's chain (CandidateTree.chain), grown when too short
+        self.chain: npt.NDArray[np.int64] = np.empty(256, dtype=np.int64)
         self.fbuf: npt.NDArray[np.float64] = np.empty(0)
         self.ibuf: npt.NDArray[np.int64] = np.empty(0, dtype=np.int64)
         self.cap_h = self.cap_b = self.cap_m = self.cap_o = 0

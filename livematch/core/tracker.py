@@ -85,8 +85,12 @@ from livematch.core.sweep import Node, StepContext, advance
 from livematch.core.view import NetworkView, view_of
 from livematch.errors import BadStateError
 
-STATE_FORMAT = b"LMT2"
+STATE_FORMAT = b"LMT3"
+STATE_FORMAT_V2 = b"LMT2"  # as LMT3 with the matched point in every row; still read
 STATE_FORMAT_V1 = b"LMT1"  # JSON rows of linked nodes; still read
+# float64 columns of a tree row in LMT2 (low, pos, x, y, cost, t) and the ones LMT3 keeps
+_V2_ROW_F = 6
+_V2_KEPT = [0, 1, 4, 5]
 JUMP_TRUST_AFTER = 3
 # A road vehicle changes speed by at most about 3 m/s per second (ordinary braking and
 # acceleration; common practice, from memory).
@@ -347,7 +351,7 @@ class Tracker:
             # the window died (or the step is a gap): bridge, else start afresh
             ctx = StepContext.between(self._view, s, level.eps, x0, y0, fix.x, fix.y, seq,
                                       fix.t)
-            nodes, rows = tree.live_nodes()
+            nodes, rows = tree.live_nodes(self._view)
             new, how = advance(self.network, nodes, ctx, s, dt, gap=True)
             if how == "bridged":
                 tree.extend(new, rows)
@@ -492,8 +496,8 @@ class Tracker:
         tree = level.tree
         if s.error_tau_s <= 0.0 or len(tree) < 2:
             return None
-        return tree.live_scores(self.fix_xy[:self.fix_n], self.fix_seq0, self.next_commit - 1,
-                                self._weights[0], s.error_tau_s, s.gap_s)
+        return tree.live_scores(self._view, self.fix_xy[:self.fix_n], self.fix_seq0,
+                                self.next_commit - 1, self._weights[0], s.error_tau_s, s.gap_s)
 
     def _live_answer(self, level: Level, dt: float) -> tuple[int, int]:
         """The deciding level's best live row and the junction its near-best set split at.
@@ -512,8 +516,8 @@ class Tracker:
             # _hold_at_junction)
             rho = math.exp(-dt / s.error_tau_s)
             margin /= math.sqrt(1.0 - rho * rho)
-        return tree.live_answer(self.last_seg, self.fix_xy, self.fix_n, self.fix_seq0,
-                                self.next_commit - 1, self._weights[0],
+        return tree.live_answer(self._view, self.last_seg, self.fix_xy, self.fix_n,
+                                self.fix_seq0, self.next_commit - 1, self._weights[0],
                                 s.error_tau_s if scored else 0.0, s.gap_s, margin)
 
     def _hold_at_junction(
@@ -546,8 +550,7 @@ class Tracker:
             x, y = _point(self._view, seg, 1.0)
             if math.hypot(x - fix.x, y - fix.y) <= level.eps:
                 return seg, 1.0, x, y
-        _, pos, x, y, _, _ = tree.tf[best].tolist()
-        return int(tree.ti[best, 0]), pos, x, y
+        return tree.point(self._view, best)
 
     # ---------------------------------------------------------------- commits
     def _covering(self) -> list[Level]:
@@ -665,7 +668,7 @@ class Tracker:
         settle_all: bool = False,
     ) -> None:
         """Commit the path ending at row ``row`` for every fix from ``next_commit`` on."""
-        chain, before = tree.chain(row, self.next_commit)
+        chain, before = tree.chain(self._view, row, self.next_commit)
         if not chain:
             return
         top = chain[-1]
@@ -747,7 +750,7 @@ class Tracker:
             return entered[0] if entered else -1
         found = -1
         for row in range(tree.lo, tree.hi):
-            ahead, _ = tree.chain(row, first.seq)
+            ahead, _ = tree.chain(self._view, row, first.seq)
             if len(ahead) < 2 or ahead[0].seg != first.seg or ahead[0].seq != first.seq:
                 return -1
             entered = _steps(first.seg, ahead[1])
@@ -814,10 +817,13 @@ class Tracker:
     def to_bytes(self) -> bytes:
         """Versioned, compact serialisation of the whole state.
 
-        ``LMT2``: zlib over a 4-byte header length, a JSON header (the scalars, floats
+        ``LMT3``: zlib over a 4-byte header length, a JSON header (the scalars, floats
         written with ``repr`` precision) and each level's candidate tree as raw arrays,
-        compacted to the rows still needed. A restored tracker continues exactly as the
-        original would have. :meth:`from_bytes` also reads the older ``LMT1`` (JSON rows).
+        compacted to the rows still needed (layout in :mod:`livematch.core._tree_kernel`).
+        A restored tracker continues exactly as the original would have.
+        :meth:`from_bytes` also reads the older ``LMT2`` (the same with each row's
+        matched point, which is recomputed from the row's segment and position, bit for
+        bit) and ``LMT1`` (JSON rows).
         """
         arrays: list[bytes] = []
         levels = _pack_levels(self.levels, arrays)
@@ -855,9 +861,9 @@ class Tracker:
     def from_bytes(
         cls, network: RoadNetwork, settings: MatchSettings | None, data: bytes
     ) -> Tracker:
-        """Restore a tracker written by :meth:`to_bytes` (``LMT2``, or the older ``LMT1``)."""
+        """Restore a tracker written by :meth:`to_bytes` (``LMT3``; ``LMT2`` and ``LMT1`` too)."""
         fmt = data[:len(STATE_FORMAT)]
-        if fmt not in (STATE_FORMAT, STATE_FORMAT_V1):
+        if fmt not in (STATE_FORMAT, STATE_FORMAT_V2, STATE_FORMAT_V1):
             raise BadStateError(f"not a livematch tracker state (expected {STATE_FORMAT!r})")
         try:
             body = zlib.decompress(data[len(STATE_FORMAT):])
@@ -887,7 +893,8 @@ class Tracker:
                 lv.tree = CandidateTree.from_nodes({seg: nodes[i] for seg, i in live})
             tracker.fix_seq0 = state["seq"] + 1  # no fix positions: the score starts anew
         else:
-            at = _unpack_levels(tracker.levels, state["levels"], rest, 0)
+            v2 = fmt == STATE_FORMAT_V2
+            at = _unpack_levels(tracker.levels, state["levels"], rest, 0, v2)
             # absent in older states: no fix positions, the live score starts with
             # new fixes
             seq0, n = state.get("fixes", (state["seq"] + 1, 0))
@@ -902,7 +909,7 @@ class Tracker:
             if before is not None:
                 last, speed, last_seg, packed = before
                 levels = [Level(lv.eps) for lv in tracker.levels]
-                _unpack_levels(levels, packed, rest, at)
+                _unpack_levels(levels, packed, rest, at, v2)
                 tracker.before = _Before(tuple(last) if last else None, speed, last_seg,
                                          levels)
         tracker.seq = state["seq"]
@@ -931,27 +938,29 @@ def _pack_levels(levels: list[Level], arrays: list[bytes]) -> list[list[float | 
 
 
 def _unpack_levels(levels: list[Level], rows: list[list[float | int]], rest: bytes,
-                   at: int) -> int:
+                   at: int, v2: bool = False) -> int:
     """Fill ``levels`` from header ``rows`` and the arrays in ``rest`` from ``at`` on.
 
-    Returns where the next arrays start.
+    ``v2``: the rows are ``LMT2``'s, with the matched point (dropped here). Returns where
+    the next arrays start.
     """
+    row_f = _V2_ROW_F if v2 else ROW_F
     for lv, (_, tree_seq, cert_seq, cert_t, trim_seq, n_rows, n_vias, live) in zip(
             levels, rows, strict=True):
         lv.tree_seq, lv.cert_seq, lv.cert_t = int(tree_seq), int(cert_seq), float(cert_t)
         lv.trim_seq = int(trim_seq)
         nr, nv = int(n_rows), int(n_vias)
-        sizes = (nr * ROW_I * 4, nr * ROW_F * 8, nv * 4)
+        sizes = (nr * ROW_I * 4, nr * row_f * 8, nv * 4)
         parts = []
         for size in sizes:
             if at + size > len(rest):
                 raise BadStateError("corrupt tracker state: candidate tree cut short")
             parts.append(rest[at:at + size])
             at += size
+        tf = np.frombuffer(parts[1], np.float64).reshape(nr, row_f)
         lv.tree = CandidateTree.unpacked(
             np.frombuffer(parts[0], np.int32).reshape(nr, ROW_I),
-            np.frombuffer(parts[1], np.float64).reshape(nr, ROW_F),
-            np.frombuffer(parts[2], np.int32), int(live))
+            tf[:, _V2_KEPT] if v2 else tf, np.frombuffer(parts[2], np.int32), int(live))
     return at
 
 
@@ -1012,11 +1021,7 @@ def _copy_level(level: Level) -> Level:
     """A copy of ``level`` whose tree holds only the rows still needed."""
     out = Level(level.eps)
     ti, tf, tv, live = level.tree.packed()  # already copies: no second copy
-    tree = out.tree = CandidateTree()
-    tree.ti, tree.tf, tree.tv = ti, tf, tv
-    tree.n = tree.hi = len(ti)
-    tree.nv = len(tv)
-    tree.lo = tree.n - live
+    out.tree = CandidateTree.unpacked(ti, tf, tv, live, copy=False)
     out.tree_seq, out.cert_seq, out.cert_t = level.tree_seq, level.cert_seq, level.cert_t
     out.trim_seq = level.trim_seq
     return out
