@@ -645,7 +645,7 @@ class Tracker:
         before = tree.ancestor_at(row, self.next_commit - 1)
         if tree.seq_of(before) == last[2] and int(tree.ti[before, 0]) == last[0]:
             return False
-        chain, _ = tree.chain(row, self.next_commit)
+        chain, _ = tree.chain(self._view, row, self.next_commit)
         if not chain:
             return False
         first = chain[0]
