@@ -33,10 +33,22 @@ on this machine and loopback only:
 - a **subscriber** in this process (paho-mqtt, QoS 1) that only stores (receive time,
   payload); the payloads are decoded after the step.
 
-Before a step's clock starts the system is warmed up: 16 probe vehicles send fixes until
-each has had 3 answers (so the map is loaded, the worker group holds its shards, the
-compiled sweep kernel is loaded: its first call in a process takes most of a second).
-Probe outputs are not counted.
+Before a step's clock starts the system is warmed up. The bench compiles livematch's
+kernels once in its own process (``prepare_kernels``, written to numba's on-disk cache
+beside the sources), so no worker compiles them: after a checkout or a change to a kernel
+the cache is cold, and a cold start took 36 s CPU per worker (74 s wall at load average 5);
+two workers compiling at once took longer than the warm-up allowed, were stopped before
+their cache was written, and every later run compiled again ("0/16 probes"). Then every
+livematch worker's ``/readyz`` must answer 200 (connected, store reachable, first lease
+round done; up to ``START_TIMEOUT_S``; a worker that exits ends the step with its exit
+code), then 16 probe vehicles send fixes until each has had 3 answers (so the worker
+group holds its shards and every worker has run its first sweep step). Probe outputs are
+not counted; the start-up and warm-up seconds are reported per step.
+
+After the step the processes stop in dependency order: generators, then the system under
+test (SIGTERM; a livematch worker writes its final checkpoints, releases its leases and
+disconnects; up to ``STOP_TIMEOUT_S``, then SIGKILL), then Redis and the broker. The
+livematch workers' exit codes are reported per step (0: a clean shutdown).
 
 **Sustained** (all must hold):
 
@@ -89,6 +101,8 @@ GEN_TICK_S = 0.005  # a generator publishes every fix due in one batch per tick
 POOL_DRIVES = 200  # simulated drives shared by all vehicles
 POOL_SECONDS = 60  # vehicle i starts pool drive i % POOL_DRIVES at second i // POOL_DRIVES
 PROBES = 16  # warm-up vehicles
+START_TIMEOUT_S = 600.0  # a worker's start until /readyz answers 200 (a cold compile ~75 s)
+STOP_TIMEOUT_S = 60.0  # a stopped process's exit (a worker's final checkpoints), then SIGKILL
 WARM_FIXES = 3  # outputs each warm-up vehicle must have had
 CPROFILE_TO: Path | None = None  # --cprofile: run every livematch worker under cProfile
 GRACE_S = 5.0  # outputs arriving later than the step's end + this are missing
@@ -154,6 +168,49 @@ def cpu_split(pid: int) -> tuple[float, float]:
     except OSError:
         return 0.0, 0.0
     return int(fields[11]) / CLK_TCK, int(fields[12]) / CLK_TCK
+
+
+def wait_ready(ports: list[int], procs: list[subprocess.Popen[bytes]],
+               timeout: float = START_TIMEOUT_S) -> float:
+    """Wait until every livematch worker's ``/readyz`` answers 200; seconds it took.
+
+    ``ports[k]`` is the metrics port of ``procs[k]``. Raises when a worker exits first
+    (with its exit code) or when one is not ready within ``timeout``.
+    """
+    import urllib.error
+    import urllib.request
+
+    started = time.monotonic()
+    waiting = dict(zip(ports, procs, strict=True))
+    while waiting:
+        for port, proc in list(waiting.items()):
+            if proc.poll() is not None:
+                raise RuntimeError(f"livematch worker (metrics port {port}) exited with "
+                                   f"code {proc.returncode} before it was ready")
+            with contextlib.suppress(OSError, urllib.error.URLError), \
+                    urllib.request.urlopen(f"http://127.0.0.1:{port}/readyz", timeout=5) as r:
+                if r.status == 200:  # 503 (not ready) raises HTTPError, a URLError
+                    del waiting[port]
+        if waiting and time.monotonic() - started > timeout:
+            raise RuntimeError(f"{len(waiting)} livematch worker(s) not ready after "
+                               f"{timeout:.0f} s (metrics ports {sorted(waiting)})")
+        if waiting:
+            time.sleep(0.2)
+    return time.monotonic() - started
+
+
+def stop_all(procs: list[subprocess.Popen[bytes]], timeout: float = STOP_TIMEOUT_S) -> None:
+    """SIGTERM every process, wait for each (``timeout`` in all), SIGKILL what is left."""
+    for p in procs:
+        if p.poll() is None:
+            p.terminate()
+    end = time.monotonic() + timeout
+    for p in procs:
+        try:
+            p.wait(timeout=max(0.1, end - time.monotonic()))
+        except subprocess.TimeoutExpired:
+            p.kill()
+            p.wait(timeout=15)
 
 
 def scrape_published(port: int) -> dict[str, float]:
@@ -537,7 +594,19 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
     gens: list[subprocess.Popen[bytes]] = []
     sub: Subscriber | None = None
     shards = GROUP_SHARDS if system == "livematch-2s" else 0
-    metrics_ports: list[int] = []
+    metrics_ports: list[int] = []  # every livematch worker's /metrics and /readyz
+    ready_s = 0.0
+    exit_codes: list[int | None] = []
+    if system.startswith("livematch"):
+        # Compile (or load) the kernels here, once per bench process: with a cold cache
+        # the workers would each compile them while the step waits.
+        from livematch.pipeline import prepare_kernels
+
+        wall, cpu = time.monotonic(), time.process_time()
+        prepare_kernels()  # cached per process: later calls return at once
+        if time.monotonic() - wall > 1.0:
+            print(f"livematch kernels compiled in {time.monotonic() - wall:.1f} s "
+                  f"({time.process_time() - cpu:.1f} s CPU)", file=sys.stderr, flush=True)
     published0: list[dict[str, float]] = []
     published1: list[dict[str, float]] = []
     loadavg, pressure = load_average(), cpu_pressure()
@@ -561,11 +630,9 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                 store = f"redis://127.0.0.1:{rport}/0"
                 group = "" if system == "livematch-1r" else "load"
             for w in range(workers):
-                if count_publishes:
-                    metrics_ports.append(free_port())
+                metrics_ports.append(free_port())
                 cfg = daemon_config(folder, port, store, f"w{w}", group,
-                                    SHARD_TOPIC if shards else IN_TOPIC,
-                                    metrics_ports[-1] if count_publishes else 0)
+                                    SHARD_TOPIC if shards else IN_TOPIC, metrics_ports[-1])
                 cmd = [sys.executable, "-m", "livematch.cli"]
                 if CPROFILE_TO is not None:  # --cprofile: each worker's profile at its exit
                     cmd = [sys.executable, "-m", "cProfile", "-o",
@@ -579,6 +646,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                 sut.append(subprocess.Popen([*cmd, "run", "--config", str(cfg)], env=env))
         procs.extend(sut)
         sub = Subscriber(port, out_topic)
+        if metrics_ports:
+            ready_s = wait_ready(metrics_ports, sut)
         warm_s = warm_up(sub, pool, shards) if sut else 0.0
         for g in range(generators):
             gens.append(subprocess.Popen(
@@ -599,7 +668,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                                     "raw", "--duration", str(seconds + 1), "--output",
                                     str(probe_to / "py-spy.txt")],
                                    stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-        published0 = [scrape_published(mp) for mp in metrics_ports]
+        scraped = metrics_ports if count_publishes else []
+        published0 = [scrape_published(mp) for mp in scraped]
         window0 = time.time()
         cpu0 = {p.pid: cpu_seconds(p.pid) for p in procs}
         split0 = {p.pid: cpu_split(p.pid) for p in sut}
@@ -618,7 +688,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                                                      strict=True)) for p in sut}
         self_cpu = time.process_time() - self0
         window1 = time.time()
-        published1 = [scrape_published(mp) for mp in metrics_ports]
+        published1 = [scrape_published(mp) for mp in scraped]
         reports = []
         for gen in gens:
             out, _ = gen.communicate(timeout=60)
@@ -630,11 +700,13 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         if sub is not None:
             with contextlib.suppress(Exception):
                 sub.close()
-        for p in reversed(procs):
-            p.terminate()
-        for p in procs:
-            with contextlib.suppress(subprocess.TimeoutExpired):
-                p.wait(timeout=15)
+        # Dependency order: the workers write their final checkpoints into Redis and
+        # disconnect from the broker, so both must outlive them.
+        stop_all(gens)
+        stop_all(sut)
+        stop_all([p for p in reversed(procs) if p not in gens and p not in sut])
+        if metrics_ports:  # livematch workers: 0 is a clean shutdown
+            exit_codes = [p.returncode for p in sut]
         shutil.rmtree(folder, ignore_errors=True)
 
     third = seconds / 3.0
@@ -681,7 +753,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
     return {
         "system": system, "offered_per_s": rate, "seconds": seconds,
         "generators": generators, "loadavg_1m": loadavg, "cpu_pressure_10s": pressure,
-        "cpu_pressure_10s_after": cpu_pressure(), "warm_up_s": round(warm_s, 1),
+        "cpu_pressure_10s_after": cpu_pressure(), "start_s": round(ready_s, 1),
+        "warm_up_s": round(warm_s, 1), "worker_exit_codes": exit_codes,
         "generator_published": published,
         "generator_per_s": round(published / max(gen_span, 1e-9) if published else 0.0, 1),
         "generator_acked": sum(r["acked"] for r in reports),

@@ -405,3 +405,61 @@ async def test_worker_fenced_out_writes_nothing_and_recovers(
     for r in col.records("/out/match/"):
         windows.setdefault(r["time"], set()).add(r["window_fixes"])
     assert [windows[t] for t in sorted(windows)] == [{k} for k in range(1, 11)]
+
+
+async def test_group_worker_stop_writes_final_checkpoint_releases_and_leaves(
+        tmp_path: Path, mosquitto: Mosquitto, redis_server: RedisServer,
+        prefix: str) -> None:
+    """A group worker stopped while Redis is up writes every vehicle's checkpoint (none
+    was due before), releases its leases and leaves; a worker started afterwards, which
+    never received the first fixes, continues the vehicle's window from that checkpoint."""
+    config = write_config(tmp_path, prefix, broker=mosquitto.url, store=redis_server.url,
+                          metrics="", extra="[group]\nname = \"g\"\nshards = 8\nlease_s = 1.0\n")
+    text = config.read_text()  # no periodic checkpoint within the test: only the final one
+    config.write_text(text.replace("checkpoint_every_fixes = 5", "checkpoint_every_fixes = 1000")
+                      .replace("checkpoint_every_s = 1.0", "checkpoint_every_s = 3600.0"))
+    vehicle = "final-1"
+    shard = shard_of(vehicle, 8)
+    feed = drive(vehicle, 8)
+    client = aioredis.Redis.from_url(redis_server.url)
+    key = f"{prefix}:{{s:{shard}}}:vehicle:{vehicle}"
+
+    async def publish(lo: int, hi: int) -> None:
+        async with publisher(mosquitto.port) as pub:
+            for _, payload in feed[lo:hi]:
+                await pub.publish(f"{prefix}/fleet/{vehicle}/position", payload, qos=1)
+
+    try:
+        async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col:
+            a = group_daemon(config, "a")
+            task_a = asyncio.create_task(a.run())
+            try:
+                await wait_until(lambda: len(a._active) == 8, what="a holds all shards")
+                await publish(0, 7)
+                await wait_until(lambda: len(col.records("/out/match/")) == 7, what="answers")
+                assert await client.get(key) is None  # no checkpoint was due yet
+                assert await client.get(f"{prefix}:{{s:{shard}}}:lease") is not None
+                assert await client.zscore(f"{prefix}:group:g:members", "a") is not None
+            finally:
+                a.request_stop()
+                await asyncio.wait_for(task_a, 20)
+            assert await client.get(key) is not None  # written on the way out
+            for s in range(8):  # every lease released at once, not left to expire
+                assert await client.get(f"{prefix}:{{s:{s}}}:lease") is None
+            assert await client.zscore(f"{prefix}:group:g:members", "a") is None
+            b = group_daemon(config, "b")
+            task_b = asyncio.create_task(b.run())
+            try:
+                await wait_until(lambda: len(b._active) == 8, what="b holds all shards")
+                assert vehicle in b.pipeline.vehicles()  # restored, not heard from
+                await publish(7, 8)
+                await wait_until(lambda: len(col.records("/out/match/")) == 8,
+                                 what="last fix answered")
+            finally:
+                b.request_stop()
+                await asyncio.wait_for(task_b, 20)
+    finally:
+        await client.aclose()
+    windows = {r["time"]: r["window_fixes"] for r in col.records("/out/match/")}
+    # fix i (from 1) has a window of i fixes: the 8th continued the first 7 from Redis
+    assert [windows[t] for t, _ in feed] == list(range(1, 9))
