@@ -638,29 +638,7 @@ def compact_in_place(
     down (its new index is at most its old one, and so is its vias' start). Returns
     ``(n, nv, lo)``.
     """
-    keep = kept_mask(ti, n, lo, hi)
-    new_index = np.full(n, -1, np.int64)
-    q = 0
-    nv = 0
-    for r in range(n):
-        if not keep[r]:
-            continue
-        new_index[r] = q
-        p = ti[r, I_PARENT]
-        v0 = ti[r, I_VIA0]
-        vn = ti[r, I_VIAN]
-        for j in range(vn):
-            tv[nv + j] = tv[v0 + j]
-        ti[q, I_SEG] = ti[r, I_SEG]
-        ti[q, I_SEQ] = ti[r, I_SEQ]
-        ti[q, I_PARENT] = new_index[p] if p >= 0 else -1
-        ti[q, I_VIA0] = nv
-        ti[q, I_VIAN] = vn
-        for c in range(ROW_F):
-            tf[q, c] = tf[r, c]
-        nv += vn
-        q += 1
-    return q, nv, int(new_index[lo]) if hi > lo else q
+    return compact_into(ti, tf, tv, n, lo, hi, ti, tf, tv)
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -673,8 +651,8 @@ def compact_into(
     They must hold at least the rows and vias :func:`kept_rows` counts. The caller
     allocates them with numpy: an array numba allocates and returns costs about 130
     bytes more to keep (its memory-info object) and more time to hand back than numpy's.
-    The same loop as :func:`compact_in_place`, kept apart so that the in-place loop
-    reads and writes one set of arrays. Returns ``(n, nv, lo)``.
+    :func:`compact_in_place` passes its own arrays as the targets (safe: a row only ever
+    moves down). Returns ``(n, nv, lo)``.
     """
     keep = kept_mask(ti, n, lo, hi)
     new_index = np.full(n, -1, np.int64)
