@@ -534,6 +534,9 @@ def main(argv: list[str] | None = None) -> int:
             print(json.dumps({"extract": name, "sim": args.sim,
                               **drive_mix(network, drives, allowed)}))
         return 0
+    # The code measured is the code at the start (a run takes minutes; a commit or an edit
+    # made meanwhile must not be recorded as the code that produced these figures).
+    code_state = git_state()
     replay_ok, inproc_ok = livematch_available()
     do_replay = args.livematch in ("auto", "replay") and replay_ok
     do_inproc = args.livematch == "inproc" or (args.livematch == "auto" and inproc_ok)
@@ -629,7 +632,7 @@ def main(argv: list[str] | None = None) -> int:
                 if k not in ("sigma_z", "beta")},
         "tolerance_m": TOL_M, "elapsed_s": round(elapsed, 1), "notes": notes,
         "drive_mix": mix,
-        "work_dir": str(work) if args.keep else None, **git_state(),
+        "work_dir": str(work) if args.keep else None, **code_state,
     }
     if not args.keep:
         shutil.rmtree(work, ignore_errors=True)
@@ -657,14 +660,15 @@ def disagreements(rows: list[dict[str, Any]]) -> list[str]:
 
 
 def git_state() -> dict[str, Any]:
-    """The commit measured and whether livematch/ had uncommitted changes."""
+    """The commit measured and whether livematch/ or bench/*.py had uncommitted changes."""
     def git(*a: str) -> str:
         proc = subprocess.run(["git", *a], cwd=ROOT, capture_output=True, text=True,
                               check=False)
         return proc.stdout.strip()
 
     return {"git_commit": git("rev-parse", "HEAD"),
-            "livematch_dirty": bool(git("status", "--porcelain", "--", "livematch"))}
+            "livematch_dirty": bool(git("status", "--porcelain", "--", "livematch",
+                                        "bench/*.py"))}
 
 
 def _f(value: Any, fmt: str) -> str:
@@ -684,7 +688,7 @@ def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
         f"{meta['drive_settings']['outlier_p']:.0%}; drive model {meta['sim']}; "
         f"{meta['elapsed_s']} s in all). "
         f"Code: commit {meta['git_commit'][:12]}"
-        f"{' with uncommitted changes under livematch/' if meta['livematch_dirty'] else ''}.",
+        f"{' with uncommitted changes' if meta['livematch_dirty'] else ''}.",
         "",
         "road+dir: directed segment on the true path within 30 m (along the path) of the "
         "true position. RMF: route mismatch fraction (Newson & Krumm 2009), directed. "
