@@ -53,7 +53,9 @@ length. So a change of drive model is seen with the roads it moves the drives on
 mismatch (``rmf_parts`` in the JSON, metres pooled over drives): added and missed
 length, the part that is the wrong direction of a truly driven road, missed length on
 roads the truth drives both ways (out-and-back excursions, turn-rounds), on the first
-and last segment of the true path, and added/missed length per road class.
+and last segment of the true path, and added/missed length per road class. Final
+misses are also counted by road class and by what the vehicle truly did (``MOTIONS``:
+moving, stopped, dwelling, dwelling before a turn-round at a junction or mid-road).
 
 Usage::
 
@@ -317,6 +319,40 @@ def miss_class(i: int, n_fixes: int, passes: int) -> str:
     return "circling" if passes >= 3 else "interior"
 
 
+#: What the vehicle truly does at a fix (a diagnostic, in the JSON only): moving,
+#: standing still on the way (a junction stop, the start), dwelling at a trip's
+#: destination and going on, or dwelling and then leaving by the way it came (a
+#: turn-round) at a junction or dead end, or at a plain point in the middle of a road
+#: (a vertex of undirected degree 2, where the tracker's sweep allows no U-turn).
+MOTIONS = ("moving", "stopped", "dwell", "dwell_turn_junction", "dwell_turn_mid_road")
+
+
+def motion_states(network: RoadNetwork, drive: Drive) -> list[str]:
+    """The :data:`MOTIONS` class of every truth second of a drive."""
+    from livematch.core.view import view_of
+
+    turn_ok = view_of(network).turn_back_ok
+    pos = [p.path_pos_m for p in drive.truth]
+    lens = network.seg_len[np.asarray(drive.path, dtype=np.int64)]
+    start = np.concatenate([[0.0], np.cumsum(lens)])
+    ends = set(drive.trip_ends)
+    out = []
+    for i, p in enumerate(drive.truth):
+        still = (i > 0 and pos[i] == pos[i - 1]) or (i + 1 < len(pos) and pos[i + 1] == pos[i])
+        k = p.path_index
+        if not still:
+            out.append("moving")
+        elif k not in ends or pos[i] != float(start[k]):
+            out.append("stopped")
+        elif int(network.seg_twin[drive.path[k - 1]]) != drive.path[k]:
+            out.append("dwell")
+        elif turn_ok[int(network.seg_from[drive.path[k]])]:
+            out.append("dwell_turn_junction")
+        else:
+            out.append("dwell_turn_mid_road")
+    return out
+
+
 def score(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
           run: MethodRun) -> dict[str, Any]:
     n = live_ok = final_ok = exact = answered = 0
@@ -324,20 +360,25 @@ def score(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
     mismatch = true_len = 0.0
     misses = dict.fromkeys(MISS_CLASSES, 0)
     miss_roads: Counter[str] = Counter()
+    by_motion = dict.fromkeys(MOTIONS, 0)
+    miss_motion = dict.fromkeys(MOTIONS, 0)
     parts: dict[str, Any] = {}
     for drive, obs in fleet:
         match = run.matches[drive.vehicle]
         tp = TruePath(drive.path, network.seg_len)
         passes = Counter(drive.path)
+        motion = motion_states(network, drive)
         for i, o in enumerate(obs):
             p = drive.truth[o.truth_index]
             n += 1
+            by_motion[motion[o.truth_index]] += 1
             live, final = match.live[i], match.final[i]
             live_ok += live is not None and tp.near(live.segment, p.path_pos_m, TOL_M)
             ok = final is not None and tp.near(final.segment, p.path_pos_m, TOL_M)
             if not ok:
                 misses[miss_class(i, len(obs), passes[p.segment])] += 1
                 miss_roads[highway(network, p.segment)] += 1
+                miss_motion[motion[o.truth_index]] += 1
             if final is None:
                 continue
             answered += 1
@@ -372,6 +413,8 @@ def score(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
         "settled_by_flush": run.flushed,
         "final_misses_by_class": misses,
         "final_misses_by_road": dict(miss_roads.most_common()),
+        "fixes_by_motion": by_motion,
+        "final_misses_by_motion": miss_motion,
         "rmf_parts": {k: ({c: round(m, 1) for c, m in v.most_common()}
                           if isinstance(v, Counter) else round(v, 1))
                       for k, v in parts.items()} | {"true_length": round(true_len, 1)},
