@@ -42,7 +42,9 @@ drives a chain of trips between random destinations 0.5-4 km apart, each routed 
 least travel time, dwelling 10-90 s at each destination (``DriveSettings.trips``,
 ``livematch.sim.drive.trip_route``), with the 60 s lead-in/lead-out of ``lead``. The same
 drives and fixes go to every method (livematch, HMM, nearest); RMF's reference is the
-true path between the first and the last fix in every model.
+true path between the first and the last fix in every model. ``trips-junction`` is
+``trips`` whose vehicle never turns round at a stop in the middle of a road (it goes on
+to a junction or dead end first; ``DriveSettings.turn_round_mid_road``).
 
 What the drives drive, per extract (``drive_mix`` in the JSON, a table in the report;
 over the observed window of every drive): share of driven length per OpenStreetMap
@@ -112,6 +114,7 @@ SIM_MODELS: dict[str, dict[str, Any]] = {
     "lead": {"lead_s": REALISTIC["lead_s"]},
     "route": {"revisit_factor": REALISTIC["revisit_factor"]},
     "trips": dict(TRIPS),
+    "trips-junction": {**TRIPS, "turn_round_mid_road": False},
 }
 LIVEMATCH = ROOT / ".venv" / "bin" / "livematch"
 
@@ -545,7 +548,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--sim", choices=tuple(SIM_MODELS), default="plain",
                     help="drive model: plain (original), realistic (lead-in/out and a "
                          "route that does not circle), lead or route (one of the two), "
-                         "trips (routed trips with dwells, and lead-in/out); default plain")
+                         "trips (routed trips with dwells, and lead-in/out), trips-junction "
+                         "(trips that turn round only at junctions and dead ends); "
+                         "default plain")
     ap.add_argument("--mix-only", action="store_true",
                     help="only simulate the drives and print what they drive (road "
                          "classes, turn-rounds, dead ends, trips); writes nothing")

@@ -12,6 +12,7 @@ import numpy as np
 import pytest
 
 from livematch.core.network import RoadNetwork
+from livematch.errors import BadNetworkError
 from livematch.sim.drive import (
     Drive,
     DriveSettings,
@@ -194,3 +195,29 @@ def test_drive_settings_refuse_bad_trip_options():
         DriveSettings(trip_min_m=900.0, trip_max_m=500.0)
     with pytest.raises(ValueError, match=r"got \(5\.0, 1\.0\)"):
         DriveSettings(dwell_s=(5.0, 1.0))
+
+
+def test_trip_route_without_mid_road_turn_rounds():
+    """With turn_round_mid_road=False a trip leaves a stop in the middle of a road (a
+    vertex with two neighbours, counted with networkx) by the way it came only when no
+    other way leads on; the default model does turn round there."""
+    net = extract_network()
+    allowed = drivable_segments(net)
+    cost = travel_times(net)
+    undirected = nx.Graph(zip(net.seg_from.tolist(), net.seg_to.tolist(), strict=True))
+
+    def mid_road_turns(route: list[int], starts: list[int]) -> list[int]:
+        return [k for k in starts if net.seg_twin[route[k - 1]] == route[k]
+                and undirected.degree(int(net.seg_from[route[k]])) == 2]
+
+    route, starts = trip_route(net, np.random.default_rng(6), 30_000.0, allowed,
+                               turn_round_mid_road=False)
+    assert_connected(net, tuple(route))
+    assert len(starts) >= 10
+    for k in mid_road_turns(route, starts):
+        nxt = starts[starts.index(k) + 1] if k != starts[-1] else len(route)
+        with pytest.raises(BadNetworkError):
+            fastest_path(net, int(net.seg_from[route[k]]), int(net.seg_to[route[nxt - 1]]),
+                         cost, allowed, route[k])
+    default = trip_route(net, np.random.default_rng(6), 30_000.0, allowed)
+    assert mid_road_turns(*default)

@@ -108,6 +108,11 @@ class DriveSettings:
             range, seconds; the vehicle stands still at the destination vertex through
             the speed profile's stop mechanism, then leaves, turning round if the
             fastest way on is back the way it came.
+        turn_round_mid_road: whether a trip may leave a destination that is a plain
+            point in the middle of a road (a vertex joined to exactly two others) by the
+            way the vehicle came (True, the default of the trip model). With False it
+            goes on and turns round, if it must, at a junction or a dead end, as a bus
+            or a truck that cannot turn in the street does.
     """
 
     duration_s: float = 900.0
@@ -130,6 +135,7 @@ class DriveSettings:
     trip_min_m: float = 500.0
     trip_max_m: float = 4000.0
     dwell_s: tuple[float, float] = (10.0, 90.0)
+    turn_round_mid_road: bool = True
 
     def __post_init__(self) -> None:
         if not (self.lead_s >= 0.0 and math.isfinite(self.lead_s)):
@@ -413,7 +419,8 @@ def travel_times(network: RoadNetwork) -> FloatArray:
 
 
 def fastest_path(
-    network: RoadNetwork, source: int, target: int, cost: FloatArray, allowed: BoolArray
+    network: RoadNetwork, source: int, target: int, cost: FloatArray, allowed: BoolArray,
+    not_first: int = -1,
 ) -> list[int]:
     """The directed segments of a least-cost path from vertex ``source`` to ``target``.
 
@@ -421,7 +428,9 @@ def fastest_path(
     respected), each costing ``cost[segment]`` (>= 0; seconds with :func:`travel_times`).
     Ties go to the vertex with the lower index, so the answer is deterministic. A
     least-cost path never drives a segment and then its twin (costs are not negative and
-    a turn-round adds a cycle), so a trip turns round only at its ends.
+    a turn-round adds a cycle), so a trip turns round only at its ends. ``not_first``
+    (a segment index, -1 for none) may not be the first segment of the path; the path
+    then never passes ``source`` again either (the least-cost such path).
 
     Raises:
         BadNetworkError: when ``target`` cannot be reached from ``source``.
@@ -447,7 +456,7 @@ def fastest_path(
         done.add(v)
         for s in network.out_segments(v):
             s = int(s)
-            if not allowed[s]:
+            if not allowed[s] or (v == source and s == not_first):
                 continue
             w = int(network.seg_to[s])
             tw = t + float(cost[s])
@@ -468,6 +477,17 @@ def fastest_path(
     return path[::-1]
 
 
+def _undirected_degree(network: RoadNetwork) -> npt.NDArray[np.int64]:
+    """Number of distinct neighbouring vertices of each vertex, ignoring direction."""
+    a = np.concatenate([network.seg_from, network.seg_to]).astype(np.int64)
+    b = np.concatenate([network.seg_to, network.seg_from]).astype(np.int64)
+    keep = a != b
+    pairs = np.unique(a[keep] * network.n_vertices + b[keep])
+    out: npt.NDArray[np.int64] = np.bincount(pairs // network.n_vertices,
+                                             minlength=network.n_vertices)
+    return out
+
+
 def trip_route(
     network: RoadNetwork,
     rng: np.random.Generator,
@@ -475,6 +495,7 @@ def trip_route(
     allowed: BoolArray | None = None,
     trip_min_m: float = 500.0,
     trip_max_m: float = 4000.0,
+    turn_round_mid_road: bool = True,
 ) -> tuple[list[int], list[int]]:
     """A chain of trips, each routed by least travel time, at least ``min_length_m`` long.
 
@@ -502,6 +523,9 @@ def trip_route(
         allowed: segments the trips may use (default: :func:`drivable_segments`, where
             every vertex can reach every other).
         trip_min_m, trip_max_m: straight-line distance of a destination from its origin.
+        turn_round_mid_road: if False, a trip leaving a destination that is a plain
+            point of a road (joined to exactly two vertices) does not start back the
+            way the vehicle came, unless there is no other way to the next destination.
 
     Returns:
         (route, trip_starts): the directed segments in order, and the indices into the
@@ -531,6 +555,7 @@ def trip_route(
     ends = network.seg_to[candidates].astype(np.int64)
     end_xy = network.node_xy[ends]
     here = int(ends[rng.choice(len(candidates), p=weight)])
+    degree = _undirected_degree(network)
     route: list[int] = []
     starts: list[int] = []
     length = 0.0
@@ -544,7 +569,13 @@ def trip_route(
         p = np.where(ok, weight, 0.0)
         p = p / p.sum() if p.sum() > 0.0 else ok / ok.sum()
         dest = int(ends[rng.choice(len(candidates), p=p)])
-        leg = fastest_path(network, here, dest, cost, allowed)
+        ban = -1
+        if route and not turn_round_mid_road and degree[here] == 2:
+            ban = int(network.seg_twin[route[-1]])
+        try:
+            leg = fastest_path(network, here, dest, cost, allowed, ban)
+        except BadNetworkError:
+            leg = fastest_path(network, here, dest, cost, allowed)
         if route:
             starts.append(len(route))
         route.extend(leg)
@@ -635,7 +666,8 @@ def simulate_drive(
     trip_starts: list[int] = []
     if settings.trips:
         route, trip_starts = trip_route(network, rng, span * max_speed + 100.0, allowed,
-                                        settings.trip_min_m, settings.trip_max_m)
+                                        settings.trip_min_m, settings.trip_max_m,
+                                        settings.turn_round_mid_road)
     else:
         route = random_route(network, rng, span * max_speed + 100.0, allowed,
                              settings.straight_bias, settings.revisit_factor)
