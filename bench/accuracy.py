@@ -37,9 +37,27 @@ straight-biased random walk that may circle a short loop). ``realistic`` adds a 
 lead-in/lead-out (fixes only from the device's first to its last report, truth driven
 around them) and a walk that avoids already-driven directed segments
 (``livematch.sim.drive.REALISTIC``, see ``DriveSettings``); ``lead`` and ``route`` turn
-on only one of the two, to split the effect. The same drives and fixes go to every
-method (livematch, HMM, nearest); RMF's reference is the true path between the first
-and the last fix in every model.
+on only one of the two, to split the effect. ``trips`` is the fleet model: the vehicle
+drives a chain of trips between random destinations 0.5-4 km apart, each routed by
+least travel time, dwelling 10-90 s at each destination (``DriveSettings.trips``,
+``livematch.sim.drive.trip_route``), with the 60 s lead-in/lead-out of ``lead``. The same
+drives and fixes go to every method (livematch, HMM, nearest); RMF's reference is the
+true path between the first and the last fix in every model. ``trips-junction`` is
+``trips`` whose vehicle never turns round at a stop in the middle of a road (it goes on
+to a junction or dead end first; ``DriveSettings.turn_round_mid_road``).
+
+What the drives drive, per extract (``drive_mix`` in the JSON, a table in the report;
+over the observed window of every drive): share of driven length per OpenStreetMap
+``highway`` class, turn-rounds per hour away from a dwell (the walk's dead ends) and at
+a dwell, dead-end visits per hour, share of time standing still, trips and their mean
+length. So a change of drive model is seen with the roads it moves the drives onto.
+``--mix-only`` prints just that (seconds). Each livematch row also splits its route
+mismatch (``rmf_parts`` in the JSON, metres pooled over drives): added and missed
+length, the part that is the wrong direction of a truly driven road, missed length on
+roads the truth drives both ways (out-and-back excursions, turn-rounds), on the first
+and last segment of the true path, and added/missed length per road class. Final
+misses are also counted by road class and by what the vehicle truly did (``MOTIONS``:
+moving, stopped, dwelling, dwelling before a turn-round at a junction or mid-road).
 
 Usage::
 
@@ -75,6 +93,7 @@ from livematch.core.geometry import project_on_segment  # noqa: E402
 from livematch.core.network import RoadNetwork  # noqa: E402
 from livematch.sim.drive import (  # noqa: E402
     REALISTIC,
+    TRIPS,
     Drive,
     DriveSettings,
     Observation,
@@ -89,11 +108,13 @@ EXTRACTS = {"helsinki": "Helsinki.osm.pbf", "test": "test.osm.pbf"}
 START_TIME = 1_767_225_600.0  # 2026-01-01T00:00:00Z
 TOL_M = 30.0
 #: ``--sim`` drive models: DriveSettings fields on top of the command's other settings.
-SIM_MODELS: dict[str, dict[str, float]] = {
+SIM_MODELS: dict[str, dict[str, Any]] = {
     "plain": {},
     "realistic": dict(REALISTIC),
     "lead": {"lead_s": REALISTIC["lead_s"]},
     "route": {"revisit_factor": REALISTIC["revisit_factor"]},
+    "trips": dict(TRIPS),
+    "trips-junction": {**TRIPS, "turn_round_mid_road": False},
 }
 LIVEMATCH = ROOT / ".venv" / "bin" / "livematch"
 
@@ -301,24 +322,66 @@ def miss_class(i: int, n_fixes: int, passes: int) -> str:
     return "circling" if passes >= 3 else "interior"
 
 
+#: What the vehicle truly does at a fix (a diagnostic, in the JSON only): moving,
+#: standing still on the way (a junction stop, the start), dwelling at a trip's
+#: destination and going on, or dwelling and then leaving by the way it came (a
+#: turn-round) at a junction or dead end, or at a plain point in the middle of a road
+#: (a vertex of undirected degree 2, where the tracker's sweep allows no U-turn).
+MOTIONS = ("moving", "stopped", "dwell", "dwell_turn_junction", "dwell_turn_mid_road")
+
+
+def motion_states(network: RoadNetwork, drive: Drive) -> list[str]:
+    """The :data:`MOTIONS` class of every truth second of a drive."""
+    from livematch.core.view import view_of
+
+    turn_ok = view_of(network).turn_back_ok
+    pos = [p.path_pos_m for p in drive.truth]
+    lens = network.seg_len[np.asarray(drive.path, dtype=np.int64)]
+    start = np.concatenate([[0.0], np.cumsum(lens)])
+    ends = set(drive.trip_ends)
+    out = []
+    for i, p in enumerate(drive.truth):
+        still = (i > 0 and pos[i] == pos[i - 1]) or (i + 1 < len(pos) and pos[i + 1] == pos[i])
+        k = p.path_index
+        if not still:
+            out.append("moving")
+        elif k not in ends or pos[i] != float(start[k]):
+            out.append("stopped")
+        elif int(network.seg_twin[drive.path[k - 1]]) != drive.path[k]:
+            out.append("dwell")
+        elif turn_ok[int(network.seg_from[drive.path[k]])]:
+            out.append("dwell_turn_junction")
+        else:
+            out.append("dwell_turn_mid_road")
+    return out
+
+
 def score(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
           run: MethodRun) -> dict[str, Any]:
     n = live_ok = final_ok = exact = answered = 0
     errors: list[float] = []
     mismatch = true_len = 0.0
     misses = dict.fromkeys(MISS_CLASSES, 0)
+    miss_roads: Counter[str] = Counter()
+    by_motion = dict.fromkeys(MOTIONS, 0)
+    miss_motion = dict.fromkeys(MOTIONS, 0)
+    parts: dict[str, Any] = {}
     for drive, obs in fleet:
         match = run.matches[drive.vehicle]
         tp = TruePath(drive.path, network.seg_len)
         passes = Counter(drive.path)
+        motion = motion_states(network, drive)
         for i, o in enumerate(obs):
             p = drive.truth[o.truth_index]
             n += 1
+            by_motion[motion[o.truth_index]] += 1
             live, final = match.live[i], match.final[i]
             live_ok += live is not None and tp.near(live.segment, p.path_pos_m, TOL_M)
             ok = final is not None and tp.near(final.segment, p.path_pos_m, TOL_M)
             if not ok:
                 misses[miss_class(i, len(obs), passes[p.segment])] += 1
+                miss_roads[highway(network, p.segment)] += 1
+                miss_motion[motion[o.truth_index]] += 1
             if final is None:
                 continue
             answered += 1
@@ -333,6 +396,11 @@ def score(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
         if length > 0:
             mismatch += rmf * length
             true_len += length
+            for key, value in rmf_parts(network, true_path, match.path).items():
+                if isinstance(value, Counter):
+                    parts.setdefault(key, Counter()).update(value)
+                else:
+                    parts[key] = parts.get(key, 0.0) + value
     lag = np.asarray(run.commit_lag)
     return {
         "fixes": n,
@@ -347,9 +415,122 @@ def score(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
         "commit_lag_p95_s": float(np.percentile(lag, 95)) if len(lag) else None,
         "settled_by_flush": run.flushed,
         "final_misses_by_class": misses,
+        "final_misses_by_road": dict(miss_roads.most_common()),
+        "fixes_by_motion": by_motion,
+        "final_misses_by_motion": miss_motion,
+        "rmf_parts": {k: ({c: round(m, 1) for c, m in v.most_common()}
+                          if isinstance(v, Counter) else round(v, 1))
+                      for k, v in parts.items()} | {"true_length": round(true_len, 1)},
         "us_per_fix": 1e6 * run.seconds / n if n else math.nan,
         "timing": run.timing_note,
     }
+
+
+def highway(network: RoadNetwork, segment: int) -> str:
+    """The OpenStreetMap ``highway`` class of a segment's road (``?`` when untagged)."""
+    return str(network.roads[int(network.seg_road[segment])].get("highway", "?"))
+
+
+def dead_ends(network: RoadNetwork, allowed: np.ndarray) -> set[int]:
+    """Vertices whose only allowed way on is back along a single two-way road."""
+    out = set()
+    for v in np.unique(network.seg_to[allowed]).tolist():
+        outs = [int(s) for s in network.out_segments(v) if allowed[s]]
+        if len(outs) == 1 and network.seg_twin[outs[0]] >= 0 \
+                and allowed[network.seg_twin[outs[0]]]:
+            ins = [int(s) for s in network.in_segments(v) if allowed[s]]
+            if ins == [int(network.seg_twin[outs[0]])]:
+                out.add(v)
+    return out
+
+
+def drive_mix(network: RoadNetwork, drives: list[Drive],
+              allowed: np.ndarray) -> dict[str, Any]:
+    """What the drives drive over their observed windows (see the module docstring).
+
+    A turn-round is a path step onto the twin of the segment just driven; it is "at a
+    dwell" when a trip starts there. Trip lengths are those of trips begun and ended
+    inside the simulated drive (lead-in/out included), metres.
+    """
+    by_class: Counter[str] = Counter()
+    length = hours = still = 0.0
+    turns = turns_dwell = dead = dwells = 0
+    trip_lengths: list[float] = []
+    ends = dead_ends(network, allowed)
+    for d in drives:
+        first, last = d.observed or (0, len(d.truth) - 1)
+        a, b = d.truth[first], d.truth[last]
+        lens = network.seg_len[np.asarray(d.path, dtype=np.int64)]
+        start = np.concatenate([[0.0], np.cumsum(lens)])
+        for k in range(a.path_index, b.path_index + 1):
+            lo = max(float(start[k]), a.path_pos_m)
+            hi = min(float(start[k + 1]), b.path_pos_m)
+            if hi > lo:
+                by_class[highway(network, d.path[k])] += hi - lo
+        length += b.path_pos_m - a.path_pos_m
+        hours += (b.t - a.t) / 3600.0
+        still += sum(d.truth[i].path_pos_m == d.truth[i - 1].path_pos_m
+                     for i in range(first + 1, last + 1))
+        trip_set = set(d.trip_ends)
+        for k in range(a.path_index + 1, b.path_index + 1):
+            if int(network.seg_twin[d.path[k - 1]]) == d.path[k]:
+                if k in trip_set:
+                    turns_dwell += 1
+                else:
+                    turns += 1
+            dead += int(network.seg_to[d.path[k - 1]]) in ends
+            dwells += k in trip_set
+        for s, e in itertools.pairwise(d.trip_ends):
+            trip_lengths.append(float(start[e] - start[s]))
+    seconds = hours * 3600.0
+    return {
+        "drives": len(drives), "hours": round(hours, 3), "km": round(length / 1000.0, 3),
+        "class_share": {c: round(v / length, 4) for c, v in by_class.most_common()}
+        if length else {},
+        "uturns_per_h": round(turns / hours, 2) if hours else None,
+        "uturns_at_dwell_per_h": round(turns_dwell / hours, 2) if hours else None,
+        "dead_end_visits_per_h": round(dead / hours, 2) if hours else None,
+        "dwells_per_h": round(dwells / hours, 2) if hours else None,
+        "still_share": round(still / seconds, 4) if seconds else None,
+        "trips": len(trip_lengths),
+        "trip_mean_m": round(float(np.mean(trip_lengths)), 1) if trip_lengths else None,
+    }
+
+
+def rmf_parts(network: RoadNetwork, true_path: tuple[int, ...],
+              matched: list[int]) -> dict[str, Any]:
+    """The route mismatch of one drive split by kind, metres (see the module docstring).
+
+    Added and missed are the multiset differences of :func:`route_mismatch_fraction`
+    (livematch.sim.score); ``wrong_dir`` is the part of both whose twin is on the other
+    side (a road driven the wrong way counts in added and in missed, as in the measure).
+    """
+    true_count = Counter(true_path)
+    match_count = Counter(int(s) for s in matched)
+    added = {s: n - true_count[s] for s, n in match_count.items() if n > true_count[s]}
+    missed = {s: n - match_count[s] for s, n in true_count.items() if n > match_count[s]}
+    ends = {true_path[0], true_path[-1]} if true_path else set()
+    out: dict[str, Any] = {"added": 0.0, "missed": 0.0, "wrong_dir": 0.0,
+                           "missed_out_and_back": 0.0, "missed_first_last": 0.0,
+                           "added_by_class": Counter(), "missed_by_class": Counter()}
+    for s, n in added.items():
+        m = float(network.seg_len[s]) * n
+        out["added"] += m
+        out["added_by_class"][highway(network, s)] += m
+        if int(network.seg_twin[s]) in missed:
+            out["wrong_dir"] += m
+    for s, n in missed.items():
+        m = float(network.seg_len[s]) * n
+        out["missed"] += m
+        out["missed_by_class"][highway(network, s)] += m
+        twin = int(network.seg_twin[s])
+        if twin in added:
+            out["wrong_dir"] += m
+        elif s in ends:
+            out["missed_first_last"] += m
+        elif twin in true_count:
+            out["missed_out_and_back"] += m
+    return out
 
 
 # ---------------------------------------------------------------------------- main
@@ -366,8 +547,13 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--outliers", type=float, default=0.01, help="outlier probability")
     ap.add_argument("--sim", choices=tuple(SIM_MODELS), default="plain",
                     help="drive model: plain (original), realistic (lead-in/out and a "
-                         "route that does not circle), lead or route (one of the two); "
+                         "route that does not circle), lead or route (one of the two), "
+                         "trips (routed trips with dwells, and lead-in/out), trips-junction "
+                         "(trips that turn round only at junctions and dead ends); "
                          "default plain")
+    ap.add_argument("--mix-only", action="store_true",
+                    help="only simulate the drives and print what they drive (road "
+                         "classes, turn-rounds, dead ends, trips); writes nothing")
     ap.add_argument("--calibration-drives", type=int, default=8)
     ap.add_argument("--hmm-lag", type=int, default=5, help="HMM fixed lag, steps")
     ap.add_argument("--livematch", choices=("auto", "replay", "inproc", "skip"),
@@ -386,6 +572,19 @@ def main(argv: list[str] | None = None) -> int:
     settings = DriveSettings(duration_s=args.duration, sigma_m=args.sigma, tau_s=args.tau,
                              outlier_p=args.outliers, **SIM_MODELS[args.sim])
 
+    if args.mix_only:
+        for ei, name in enumerate(args.extract.split(",")):
+            network = load_network(extract_path(name))
+            allowed = drivable_segments(network)
+            drives = [simulate_drive(network, np.random.default_rng([args.seed, ei, i]),
+                                     f"sim-{i:03d}", START_TIME + 3.0 * i, settings, allowed)
+                      for i in range(args.drives)]
+            print(json.dumps({"extract": name, "sim": args.sim,
+                              **drive_mix(network, drives, allowed)}))
+        return 0
+    # The code measured is the code at the start (a run takes minutes; a commit or an edit
+    # made meanwhile must not be recorded as the code that produced these figures).
+    code_state = git_state()
     replay_ok, inproc_ok = livematch_available()
     do_replay = args.livematch in ("auto", "replay") and replay_ok
     do_inproc = args.livematch == "inproc" or (args.livematch == "auto" and inproc_ok)
@@ -403,6 +602,7 @@ def main(argv: list[str] | None = None) -> int:
     work = Path(args.keep) if args.keep else Path(tempfile.mkdtemp(prefix="lm-accuracy-"))
     work.mkdir(parents=True, exist_ok=True)
     rows: list[dict[str, Any]] = []
+    mix: dict[str, dict[str, Any]] = {}
     started = time.perf_counter()
     for ei, name in enumerate(args.extract.split(",")):
         net_path = extract_path(name)
@@ -414,6 +614,7 @@ def main(argv: list[str] | None = None) -> int:
         calib = [simulate_drive(network, np.random.default_rng([args.seed, ei, 10_000 + i]),
                                 f"cal-{i:03d}", START_TIME, settings, allowed)
                  for i in range(args.calibration_drives)]
+        mix[name] = drive_mix(network, drives, allowed)
         for k in intervals:
             fleet = [(d, observe(d, k)) for d in drives]
             records = replay_records(network, fleet)
@@ -478,7 +679,8 @@ def main(argv: list[str] | None = None) -> int:
         "hmm": {k: v for k, v in asdict(HmmSettings(lag=args.hmm_lag)).items()
                 if k not in ("sigma_z", "beta")},
         "tolerance_m": TOL_M, "elapsed_s": round(elapsed, 1), "notes": notes,
-        "work_dir": str(work) if args.keep else None, **git_state(),
+        "drive_mix": mix,
+        "work_dir": str(work) if args.keep else None, **code_state,
     }
     if not args.keep:
         shutil.rmtree(work, ignore_errors=True)
@@ -506,14 +708,15 @@ def disagreements(rows: list[dict[str, Any]]) -> list[str]:
 
 
 def git_state() -> dict[str, Any]:
-    """The commit measured and whether livematch/ had uncommitted changes."""
+    """The commit measured and whether livematch/ or bench/*.py had uncommitted changes."""
     def git(*a: str) -> str:
         proc = subprocess.run(["git", *a], cwd=ROOT, capture_output=True, text=True,
                               check=False)
         return proc.stdout.strip()
 
     return {"git_commit": git("rev-parse", "HEAD"),
-            "livematch_dirty": bool(git("status", "--porcelain", "--", "livematch"))}
+            "livematch_dirty": bool(git("status", "--porcelain", "--", "livematch",
+                                        "bench/*.py"))}
 
 
 def _f(value: Any, fmt: str) -> str:
@@ -533,7 +736,7 @@ def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
         f"{meta['drive_settings']['outlier_p']:.0%}; drive model {meta['sim']}; "
         f"{meta['elapsed_s']} s in all). "
         f"Code: commit {meta['git_commit'][:12]}"
-        f"{' with uncommitted changes under livematch/' if meta['livematch_dirty'] else ''}.",
+        f"{' with uncommitted changes' if meta['livematch_dirty'] else ''}.",
         "",
         "road+dir: directed segment on the true path within 30 m (along the path) of the "
         "true position. RMF: route mismatch fraction (Newson & Krumm 2009), directed. "
@@ -558,11 +761,34 @@ def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
             if r["method"] == "hmm":
                 lines.append(f"- {r['extract']} {r['interval_s']} s: sigma_z "
                              f"{r['hmm_sigma_z_m']} m, beta {r['hmm_beta_m']} m")
+    lines += mix_markdown(meta.get("drive_mix", {}))
     timings = sorted({f"{r['method']}: {r['timing']}" for r in rows})
     lines += ["", "µs/fix covers: " + "; ".join(timings) + "."]
     for note in meta["notes"]:
         lines.append(f"\nNote: {note}")
     return "\n".join(lines) + "\n"
+
+
+def mix_markdown(mix: dict[str, dict[str, Any]]) -> list[str]:
+    """The drive model's road mix and manoeuvres, one row per extract."""
+    if not mix:
+        return []
+    classes = sorted({c for m in mix.values() for c in m["class_share"]},
+                     key=lambda c: -max(m["class_share"].get(c, 0.0) for m in mix.values()))
+    lines = ["", "What the drives drive (observed windows; share of driven length per "
+             "highway class, per hour: turn-rounds away from / at a dwell, dead-end visits; "
+             "share of time standing still; mean length of whole trips):", "",
+             "| extract | km | " + " | ".join(classes) + " | U-turns/h | at dwell/h | "
+             "dead ends/h | still | trips | trip mean m |",
+             "|---|---:|" + "---:|" * (len(classes) + 6)]
+    for name, m in mix.items():
+        shares = " | ".join(f"{m['class_share'].get(c, 0.0):.3f}" for c in classes)
+        lines.append(f"| {name} | {m['km']:.0f} | {shares} | {_f(m['uturns_per_h'], '.1f')} | "
+                     f"{_f(m['uturns_at_dwell_per_h'], '.1f')} | "
+                     f"{_f(m['dead_end_visits_per_h'], '.1f')} | "
+                     f"{_f(m['still_share'], '.3f')} | {m['trips']} | "
+                     f"{_f(m['trip_mean_m'], '.0f')} |")
+    return lines
 
 
 if __name__ == "__main__":
