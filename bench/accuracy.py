@@ -102,7 +102,11 @@ from livematch.sim.drive import (  # noqa: E402
     simulate_drive,
 )
 from livematch.sim.logs import replay_records, truth_records, write_jsonl  # noqa: E402
-from livematch.sim.score import TruePath, route_mismatch_fraction  # noqa: E402
+from livematch.sim.score import (  # noqa: E402
+    TruePath,
+    path_snap_error,
+    route_mismatch_fraction,
+)
 
 EXTRACTS = {"helsinki": "Helsinki.osm.pbf", "test": "test.osm.pbf"}
 START_TIME = 1_767_225_600.0  # 2026-01-01T00:00:00Z
@@ -426,6 +430,22 @@ def score(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
     }
 
 
+def snap_floor(network: RoadNetwork,
+               fleet: list[tuple[Drive, list[Observation]]]) -> dict[str, float]:
+    """Median and p95 error of the path-snap oracle over every fix (outliers included,
+    as in the methods' err columns), metres."""
+    seg_start = network.node_xy[network.seg_from]
+    seg_end = network.node_xy[network.seg_to]
+    errors = []
+    for drive, obs in fleet:
+        for o in obs:
+            p = drive.truth[o.truth_index]
+            errors.append(path_snap_error(seg_start, seg_end, drive.path, p.path_index,
+                                          (p.x, p.y), (o.x, o.y)))
+    return {"err_median_m": round(float(np.median(errors)), 3),
+            "err_p95_m": round(float(np.percentile(errors, 95)), 3)}
+
+
 def highway(network: RoadNetwork, segment: int) -> str:
     """The OpenStreetMap ``highway`` class of a segment's road (``?`` when untagged)."""
     return str(network.roads[int(network.seg_road[segment])].get("highway", "?"))
@@ -452,7 +472,7 @@ def drive_mix(network: RoadNetwork, drives: list[Drive],
     dwell" when a trip starts there. Trip lengths are those of trips begun and ended
     inside the simulated drive (lead-in/out included), metres.
     """
-    by_class: Counter[str] = Counter()
+    by_class: defaultdict[str, float] = defaultdict(float)
     length = hours = still = 0.0
     turns = turns_dwell = dead = dwells = 0
     trip_lengths: list[float] = []
@@ -485,7 +505,8 @@ def drive_mix(network: RoadNetwork, drives: list[Drive],
     seconds = hours * 3600.0
     return {
         "drives": len(drives), "hours": round(hours, 3), "km": round(length / 1000.0, 3),
-        "class_share": {c: round(v / length, 4) for c, v in by_class.most_common()}
+        "class_share": {c: round(v / length, 4)
+                        for c, v in sorted(by_class.items(), key=lambda kv: -kv[1])}
         if length else {},
         "uturns_per_h": round(turns / hours, 2) if hours else None,
         "uturns_at_dwell_per_h": round(turns_dwell / hours, 2) if hours else None,
@@ -603,6 +624,7 @@ def main(argv: list[str] | None = None) -> int:
     work.mkdir(parents=True, exist_ok=True)
     rows: list[dict[str, Any]] = []
     mix: dict[str, dict[str, Any]] = {}
+    floors: dict[str, dict[str, float]] = {}
     started = time.perf_counter()
     for ei, name in enumerate(args.extract.split(",")):
         net_path = extract_path(name)
@@ -624,6 +646,7 @@ def main(argv: list[str] | None = None) -> int:
             write_jsonl(work / f"{tag}.truth.jsonl",
                         truth_records(network, fleet, k, settings, args.seed))
             xy = roundtrip_xy(network, records)
+            floors[f"{name} {k}"] = snap_floor(network, fleet)
             times = {d.vehicle: [o.t for o in obs] for d, obs in fleet}
             sigma_z, beta = calibrate(network, calib, k)
             hmm_settings = HmmSettings(sigma_z=sigma_z, beta=beta, lag=args.hmm_lag)
@@ -679,7 +702,7 @@ def main(argv: list[str] | None = None) -> int:
         "hmm": {k: v for k, v in asdict(HmmSettings(lag=args.hmm_lag)).items()
                 if k not in ("sigma_z", "beta")},
         "tolerance_m": TOL_M, "elapsed_s": round(elapsed, 1), "notes": notes,
-        "drive_mix": mix,
+        "drive_mix": mix, "path_snap_floor": floors,
         "work_dir": str(work) if args.keep else None, **code_state,
     }
     if not args.keep:
@@ -761,6 +784,13 @@ def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
             if r["method"] == "hmm":
                 lines.append(f"- {r['extract']} {r['interval_s']} s: sigma_z "
                              f"{r['hmm_sigma_z_m']} m, beta {r['hmm_beta_m']} m")
+    floors = meta.get("path_snap_floor", {})
+    if floors:
+        lines += ["", "Matched-position error of an oracle that knows the driven path and "
+                  "projects each fix onto it (`livematch.sim.score.path_snap_error`; what "
+                  "remains is the GPS error along the road, the floor for err med): "
+                  + "; ".join(f"{key} s median {v['err_median_m']:.1f} m, p95 "
+                              f"{v['err_p95_m']:.1f} m" for key, v in floors.items()) + "."]
     lines += mix_markdown(meta.get("drive_mix", {}))
     timings = sorted({f"{r['method']}: {r['timing']}" for r in rows})
     lines += ["", "µs/fix covers: " + "; ".join(timings) + "."]
