@@ -117,7 +117,10 @@ def patch(clock: Clock) -> list[tuple[Any, str, Any]]:
         undo.append((owner, name, original))
         setattr(owner, name, clock.wrap(stage, original, outer))
 
-    put(pipeline_module, "decode_position", "decode")
+    if hasattr(pipeline_module, "PositionReader"):  # decoding through one reader per pipeline
+        put(pipeline_module.PositionReader, "read", "decode")
+    else:  # an older checkout
+        put(pipeline_module, "decode_position", "decode")
     put(RecordBuilder, "record", "records")
     put(Tracker, "update", "tracker, Python", outer=True)
     for name in dir(_tree_kernel):
