@@ -1,13 +1,15 @@
-"""Published records of events (livematch.core.events): the exact rounding they use."""
+"""Events of the core (livematch.core.events): their constructors, and the exact rounding of
+the published records."""
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import random
 
 import pytest
 
-from livematch.core.events import rounded
+from livematch.core.events import Assignment, Commit, MatchedFix, rounded
 
 
 def test_rounded_equals_builtin_round_on_coordinates_and_metres():
@@ -39,3 +41,23 @@ def test_rounded_edge_values(x):
 def test_rounded_nan_stays_nan():
     """NaN in, NaN out, as the built-in."""
     assert math.isnan(rounded(math.nan, 1e7, 7)) and math.isnan(round(math.nan, 7))
+
+
+@pytest.mark.parametrize(("cls", "args"), [
+    (Assignment, ("bus17", 1.5, 7, 12.25, 10.0, -3.0, 15.0, 5, 4.0)),
+    (MatchedFix, (1.5, 7, 12.25, 10.0, -3.0)),
+    (Commit, ("bus17", (MatchedFix(1.5, 7, 0.0, 1.0, 2.0),), (7, 8))),
+])
+def test_event_init_equals_generated_dataclass(cls, args):
+    """The hand-written __init__ of the per-fix events stores what the standard library's
+    generated one would: same repr (kind included), fields, equality; frozen."""
+    # Reference: dataclasses.make_dataclass with the same fields and defaults.
+    spec = [(f.name, f.type, dataclasses.field(default=f.default, init=f.init))
+            for f in dataclasses.fields(cls)]
+    twin = dataclasses.make_dataclass(cls.__name__, spec, frozen=True)(*args)
+    event = cls(*args)
+    assert repr(event) == repr(twin)
+    assert dataclasses.astuple(event) == dataclasses.astuple(twin)
+    assert event == cls(*args) and event != twin
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        setattr(event, dataclasses.fields(cls)[0].name, None)
