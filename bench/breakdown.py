@@ -32,7 +32,9 @@ bench/breakdown.py --out /tmp/x``); a kernel module the checkout lacks counts no
 
 ``--clock cpu`` times with the thread's CPU time instead of elapsed time: on a busy
 machine the time another process holds the core is then not charged to whatever stage
-was running (each reading costs a little more than ``perf_counter_ns``).
+was running. Each reading costs more than ``perf_counter_ns``, so the wrappers' error
+(charged to the enclosing stage, mostly "pipeline glue" and "tracker, Python") grows;
+compare runs made with the same clock only.
 
 Reported as mean microseconds per message over the run (the minimum over ``--repeat``
 runs of each stage, so a scheduler hiccup does not land in one stage), next to the
@@ -84,9 +86,9 @@ STAGES = ["decode", "tracker, Python", "tracker, compiled calls", "route monitor
           "off-network and stale watch", "records", "pipeline glue"]
 
 
-#: The clocks ``--clock`` chooses from: elapsed time, or the CPU time of this thread
-#: (steadier on a busy machine: time while another process has the core is not counted;
-#: each reading costs more, so the wrappers' own error grows a little).
+#: The clocks ``--clock`` chooses from: elapsed time, or the CPU time of this thread (time
+#: while another process has the core is not counted; each reading costs more, so the
+#: wrappers' own error, charged to the stage around them, grows).
 CLOCKS = {"wall": time.perf_counter_ns, "cpu": time.thread_time_ns}
 
 
