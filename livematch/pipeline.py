@@ -85,7 +85,8 @@ from livematch.core.tracker import Tracker
 from livematch.errors import BadConfigError, BadMessageError, BadStateError, LivematchError
 from livematch.feed.decode import (
     FeedLimits,
-    decode_position,
+    PositionReader,
+    _filter_shape,
     known_vehicle,
     validate_vehicle,
     vehicle_from_topic,
@@ -121,7 +122,7 @@ CONTROL_TOPIC = "livematch/control/+/route"
 _DEFAULT_LIMITS = FeedLimits()
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, slots=True, init=False)
 class Output:
     """One thing to publish.
 
@@ -130,11 +131,25 @@ class Output:
         vehicle: the vehicle id; None only for a reject whose vehicle could not be read.
         record: the JSON contract record; for rejects ``at``, ``topic``, ``reason``,
             ``detail``, ``payload`` (the payload as text, at most 512 characters).
+
+    One or two are made per message: ``__init__`` stores through the slots (the frozen
+    dataclass's generated one goes through ``object.__setattr__`` by name, about twice
+    the cost); equality, ``repr`` and immutability are the dataclass's.
     """
 
     kind: str
     vehicle: str | None
     record: dict[str, Any]
+
+    def __init__(self, kind: str, vehicle: str | None, record: dict[str, Any]) -> None:
+        _set_kind(self, kind)
+        _set_vehicle(self, vehicle)
+        _set_record(self, record)
+
+
+_set_kind = Output.__dict__["kind"].__set__
+_set_vehicle = Output.__dict__["vehicle"].__set__
+_set_record = Output.__dict__["record"].__set__
 
 
 class UnknownVehicleError(LivematchError, KeyError):
@@ -296,6 +311,11 @@ class Pipeline:
         self.vehicle_routes = dict(vehicle_routes or {})
         self.vehicle_groups = {v: tuple(g) for v, g in (vehicle_groups or {}).items()}
         self.control_topic = control_topic
+        # what handle works out once per limits / control filter (rebuilt if either is
+        # replaced): the decoder, and the control filter's shape (_filter_shape)
+        self._reader = PositionReader(network.projection, limits)
+        self._control_for = control_topic
+        self._control_shape = _filter_shape(control_topic) if control_topic else None
         self._control: dict[str, str] = {}  # vehicle -> route id from control messages
         self._stale_due = math.inf  # no vehicle can turn stale before this receive time
         # No vehicle's newest fix is older than this (fix time): until now_fix_time - ttl
@@ -318,44 +338,73 @@ class Pipeline:
         ``duplicate`` counter. A message on the control topic assigns a route
         (:meth:`assign_route`).
         """
-        self.counters["messages"] += 1
-        if self.control_topic and vehicle_from_topic(topic, self.control_topic) is not None:
+        counters = self.counters
+        counters["messages"] += 1
+        if self.control_topic is not self._control_for:
+            self._control_for = self.control_topic
+            self._control_shape = (_filter_shape(self.control_topic) if self.control_topic
+                                   else None)
+        shape = self._control_shape
+        if shape is not None and (
+                not shape or (topic.startswith(shape[0]) and topic.endswith(shape[1])))\
+                and vehicle_from_topic(topic, self.control_topic) is not None:
             return self._control_message(topic, payload, at)
+        reader = self._reader
+        if reader.limits is not self.limits or reader.projection is not self.network.projection:
+            reader = self._reader = PositionReader(self.network.projection, self.limits)
         try:
-            fix = decode_position(topic, payload, self.network.projection, self.limits, at)
+            fix = reader.read(topic, payload, at)
         except BadMessageError as exc:
             return [self._reject(topic, payload, at, exc.reason, exc.detail,
                                  known_vehicle(topic, payload, self.limits))]
-        state = self._vehicles.get(fix.vehicle)
-        cap = self.limits.max_vehicles
-        if state is None and cap and len(self._vehicles) >= cap:
-            return [self._reject(topic, payload, at, "too_many_vehicles",
-                                 f"vehicle {fix.vehicle!r} is new and {cap} vehicles are "
-                                 f"held already (feed.max_vehicles)", fix.vehicle)]
+        vehicle = fix.vehicle
+        state = self._vehicles.get(vehicle)
+        limits = self.limits
         if state is None:
-            state = _VehicleState(Tracker(self.network, fix.vehicle, self.settings))
-            self._vehicles[fix.vehicle] = state
-            self.counters["vehicle:new"] += 1
-        if state.seen(fix.t):
-            self.counters["duplicate"] += 1
+            cap = limits.max_vehicles
+            if cap and len(self._vehicles) >= cap:
+                return [self._reject(topic, payload, at, "too_many_vehicles",
+                                     f"vehicle {vehicle!r} is new and {cap} vehicles are "
+                                     f"held already (feed.max_vehicles)", vehicle)]
+            state = _VehicleState(Tracker(self.network, vehicle, self.settings))
+            self._vehicles[vehicle] = state
+            counters["vehicle:new"] += 1
+        t = fix.t
+        recent = state.recent
+        newest = not recent or t > recent[-1]  # the usual case: no search
+        if not newest and state.seen(t):
+            counters["duplicate"] += 1
             return []
-        if not state.allow(at, fix.t, self.limits.max_rate_hz):
+        rate_hz = limits.max_rate_hz
+        if rate_hz > 0 and not state.allow(at, t, rate_hz):
             return [self._reject(topic, payload, at, "rate_limited",
-                                 f"vehicle {fix.vehicle!r} sent more than "
-                                 f"{self.limits.max_rate_hz:g} fixes per second", fix.vehicle)]
-        if self.limits.max_age_s > 0 and at - fix.t > self.limits.max_age_s:
-            self.counters["late"] += 1
-        state.remember(fix.t)
-        if fix.t < self._idle_floor:  # a first fix from long ago (late data)
-            self._idle_floor = fix.t
-        self.counters["fixes"] += 1
-        out = self._alert_outputs(state.alerts.seen(fix, at))
-        self._stale_due = min(self._stale_due, at + self.alert_settings.stale_s)
-        state.pending[fix.t] = fix
-        if len(state.pending) > DEDUPE_WINDOW:  # never reached: the tracker answers
-            del state.pending[min(state.pending)]  # every fix within its reorder window
-        out.extend(self._outputs(state.tracker.update(fix), state, topic, payload, at))
-        return out
+                                 f"vehicle {vehicle!r} sent more than "
+                                 f"{rate_hz:g} fixes per second", vehicle)]
+        if limits.max_age_s > 0 and at - t > limits.max_age_s:
+            counters["late"] += 1
+        if newest:
+            recent.append(t)  # in order: stays sorted
+            if len(recent) > DEDUPE_WINDOW:
+                del recent[0]
+        else:
+            state.remember(t)
+        if t < self._idle_floor:  # a first fix from long ago (late data)
+            self._idle_floor = t
+        counters["fixes"] += 1
+        seen = state.alerts.seen(fix, at)
+        out = self._outputs(seen) if seen else []
+        due = at + self.alert_settings.stale_s
+        if due < self._stale_due:
+            self._stale_due = due
+        pending = state.pending
+        pending[t] = fix
+        if len(pending) > DEDUPE_WINDOW:  # never reached: the tracker answers
+            del pending[min(pending)]  # every fix within its reorder window
+        events = state.tracker.update(fix)
+        if out:
+            out.extend(self._outputs(events, state, topic, payload, at))
+            return out
+        return self._outputs(events, state, topic, payload, at)
 
     def _reject(self, topic: str, payload: bytes, at: float, reason: str, detail: str,
                 vehicle: str | None) -> Output:
@@ -487,34 +536,43 @@ class Pipeline:
             out.extend(self._outputs(state.tracker.flush(), state, "", b"", 0.0))
         return out
 
-    def _outputs(self, events: list[Event], state: _VehicleState | None = None,
+    def _outputs(self, events: Sequence[Event], state: _VehicleState | None = None,
                  topic: str = "", payload: bytes = b"", at: float = 0.0) -> list[Output]:
         out: list[Output] = []
+        if not events:
+            if state is not None and not state.pending:
+                state.pending = {}
+            return out
+        counters = self.counters
+        record = self._records.record
         for event in events:
+            if isinstance(event, Assignment):
+                counters["assignments"] += 1
+                eps = event.eps_m
+                key = self._eps_keys.get(eps)
+                if key is None:
+                    key = self._eps_keys[eps] = f"eps_m:{float(eps)!r}"
+                counters[key] += 1
+                out.append(Output("assignment", event.vehicle, record(event)))
+                if state is not None:
+                    fix = state.pending.pop(event.t, None)
+                    if fix is not None:
+                        out.extend(self._monitor(state, fix, (event.x, event.y), True,
+                                                 topic, payload, at))
+                continue
             if isinstance(event, Filtered):
-                self.counters[f"filtered:{event.reason}"] += 1
+                counters[f"filtered:{event.reason}"] += 1
                 if state is not None:
                     fix = state.pending.pop(event.t, None)
                     if fix is not None and event.reason == "no_road_nearby":
                         out.extend(self._monitor(state, fix, None, False, topic, payload, at))
                 continue
-            if isinstance(event, Assignment):
-                self.counters["assignments"] += 1
-                key = self._eps_keys.get(event.eps_m)
-                if key is None:
-                    key = self._eps_keys[event.eps_m] = f"eps_m:{float(event.eps_m)!r}"
-                self.counters[key] += 1
-            elif isinstance(event, Commit):
-                self.counters["commits"] += 1
+            if isinstance(event, Commit):
+                counters["commits"] += 1
             elif isinstance(event, Alert):
-                self.counters["alerts"] += 1
-                self.counters[f"alert:{event.alert_kind}"] += 1
-            out.append(Output(event.kind, event.vehicle, self._records.record(event)))
-            if isinstance(event, Assignment) and state is not None:
-                fix = state.pending.pop(event.t, None)
-                if fix is not None:
-                    out.extend(self._monitor(state, fix, (event.x, event.y), True, topic,
-                                             payload, at))
+                counters["alerts"] += 1
+                counters[f"alert:{event.alert_kind}"] += 1
+            out.append(Output(event.kind, event.vehicle, record(event)))
         if state is not None and not state.pending:
             # a dict keeps its table when emptied; a new empty one has none (170 bytes
             # less for every vehicle between fixes)
@@ -523,14 +581,16 @@ class Pipeline:
 
     def _monitor(self, state: _VehicleState, fix: Fix, matched: tuple[float, float] | None,
                  has_road: bool, topic: str, payload: bytes, at: float) -> list[Output]:
-        out: list[Output] = []
-        reject = self._route_for(state, fix, topic, payload, at)
-        if reject is not None:
-            out.append(reject)
+        reject = self._route_for(state, fix, topic, payload, at) if self.routes is not None \
+            else None
         alerts = state.alerts.update(fix, matched, has_road, self.fences,
                                      self.vehicle_groups.get(fix.vehicle, ()),
                                      self.alert_settings)
-        out.extend(self._alert_outputs(alerts))
+        if reject is None:
+            return self._outputs(alerts) if alerts else []
+        out = [reject]
+        if alerts:
+            out.extend(self._outputs(alerts))
         return out
 
     def _alert_outputs(self, alerts: list[Alert]) -> list[Output]:

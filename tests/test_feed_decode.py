@@ -15,7 +15,9 @@ from livematch.core.geometry import Projection
 from livematch.errors import BadMessageError, LivematchError
 from livematch.feed.decode import (
     REASONS,
+    VALID_IDS_HELD,
     FeedLimits,
+    PositionReader,
     _vehicle_by_levels,
     decode_position,
     known_vehicle,
@@ -358,3 +360,49 @@ def test_feed_limits_validated():
         FeedLimits(topic_filter="+/+/position")
     assert FeedLimits().min_time == 946684800.0
     assert FeedLimits().max_time == 4133980800.0
+
+
+def _outcome(read, topic: str, payload: bytes, at: float | None) -> object:
+    """The Fix a read gives, or the (reason, detail) of its refusal."""
+    try:
+        return read(topic, payload, at)
+    except BadMessageError as exc:
+        return (exc.reason, exc.detail)
+
+
+def test_position_reader_shared_answers_as_a_fresh_decode():
+    """One reader for a whole stream (vehicle ids remembered once they pass) answers every
+    message as a fresh ``decode_position`` does, bad ids after good ones included."""
+    # '/', '+' and '#' are MQTT's level separator and wildcards (MQTT 3.1.1 §4.7): a topic
+    # level built from such an id would not be one level; DESIGN §7 refuses them.
+    stream = [
+        (TOPIC, good()), ("other", good(vehicle="van3")), (TOPIC, good(vehicle="bus17")),
+        (TOPIC, good(vehicle="van3")), ("other", good(vehicle="a/b")),
+        ("fleet/a+b/position", good()), ("fleet/a+b/position", good(vehicle="a+b")),
+        ("other", good(vehicle="van3 ")), ("other", good()), (TOPIC, good(lat=91)),
+        (TOPIC, good(time=T0 + 400)), (TOPIC, good(time="2025-12-01T08:00:00")),
+        (TOPIC, good(time="2025-12-01T08:00:00.250+02:00", heading=360, speed=0)),
+        ("fleet/" + "x" * 65 + "/position", good()), (TOPIC, b'{"time": NaN}'),
+        (TOPIC, b"[]"), ("other", good(vehicle="")), (TOPIC, good(time=0)),
+    ]
+    for limits in (FeedLimits(), FeedLimits(topic_filter="depot/+/#", max_future_s=0.0),
+                   FeedLimits(topic_filter="fleet/{shard}/+/position")):
+        reader = PositionReader(PROJ, limits)
+        for _ in range(2):  # the second pass meets every id remembered
+            for topic, body in stream:
+                payload = body if isinstance(body, bytes) else json.dumps(body).encode()
+                want = _outcome(lambda tp, pl, at, lim=limits: decode_position(
+                    tp, pl, PROJ, lim, at), topic, payload, T0)
+                assert _outcome(reader.read, topic, payload, T0) == want, (topic, payload)
+
+
+def test_position_reader_remembers_a_bounded_number_of_ids():
+    """The remembered ids start over after VALID_IDS_HELD, and a bad id is refused
+    whatever the reader remembers."""
+    reader = PositionReader(PROJ, FeedLimits())
+    for i in range(VALID_IDS_HELD + 10):
+        assert reader.read("other", json.dumps(good(vehicle=f"v{i}")).encode()).vehicle == f"v{i}"
+        assert len(reader._valid) <= VALID_IDS_HELD
+    with pytest.raises(BadMessageError) as info:
+        reader.read("other", json.dumps(good(vehicle="v#1")).encode())
+    assert info.value.reason == "bad_vehicle"

@@ -397,3 +397,34 @@ def test_record_builder_equals_to_record_on_osm_drives():
             assert json.dumps(got) == json.dumps(want)
             kinds.add(event.kind)
     assert {"assignment", "commit", "alert"} <= kinds
+
+
+def test_output_init_equals_generated_dataclass():
+    """Output stores what the standard library's generated dataclass __init__ would:
+    same fields, repr and equality; frozen."""
+    import dataclasses
+
+    # Reference: dataclasses.make_dataclass's generated __init__ for the same fields.
+    twin_cls = dataclasses.make_dataclass(
+        "Output", [(f.name, f.type) for f in dataclasses.fields(Output)], frozen=True)
+    out, twin = Output("reject", None, {"reason": "x"}), twin_cls("reject", None, {"reason": "x"})
+    assert repr(out) == repr(twin)
+    assert dataclasses.astuple(out) == dataclasses.astuple(twin)
+    assert out == Output(kind="reject", vehicle=None, record={"reason": "x"})
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        out.kind = "commit"  # type: ignore[misc]
+
+
+def test_pipeline_follows_replaced_limits_and_control_topic():
+    """What handle works out once (decoder, control filter) follows a replaced
+    ``limits`` or ``control_topic``."""
+    p = Pipeline(ROAD, MatchSettings())
+    assert p.handle("ops/bus1/route", b'{"route": "R"}', T0)[0].record["reason"] == "missing_field"
+    p.control_topic = "ops/+/route"
+    assert p.handle("ops/bus1/route", b'{"route": "R"}', T0) == []
+    assert p.counters["control"] == 1
+    (out,) = p.handle("fleet/bus1/position", message(ROAD, T0, 120.0, 2.0), at=T0 + 0.3)
+    assert out.kind == "assignment"
+    p.limits = FeedLimits(max_payload_bytes=10)
+    (out,) = p.handle("fleet/bus1/position", message(ROAD, T0 + 2, 140.0, 2.0), at=T0 + 2.3)
+    assert (out.kind, out.record["reason"]) == ("reject", "too_large")

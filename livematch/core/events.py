@@ -9,18 +9,24 @@ writes them, so both produce the same bytes for the same input.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from math import floor
 from typing import Any
 
 from livematch.core.network import RoadNetwork
 
 
-@dataclass(frozen=True, slots=True)
+@dataclass(frozen=True, slots=True, init=False)
 class Assignment:
     """The live road assignment of one accepted fix (provisional: ``committed`` false).
 
     ``eps_m`` with ``window_fixes`` / ``window_s`` is the certificate: the last
     ``window_fixes`` fixes (spanning ``window_s`` seconds) lie within Fréchet distance
     ``eps_m`` of a road path ending on ``segment``.
+
+    One is made per accepted fix, so ``__init__`` (as those of :class:`MatchedFix` and
+    :class:`Commit`) is written by hand: it stores each field through its slot, where the
+    frozen dataclass's generated one goes through ``object.__setattr__`` by name at about
+    twice the cost. Equality, ``repr`` and immutability are the dataclass's own.
     """
 
     vehicle: str
@@ -34,8 +40,21 @@ class Assignment:
     window_s: float
     kind: str = field(default="assignment", init=False)
 
+    def __init__(self, vehicle: str, t: float, segment: int, offset_m: float, x: float,
+                 y: float, eps_m: float, window_fixes: int, window_s: float) -> None:
+        _a_vehicle(self, vehicle)
+        _a_t(self, t)
+        _a_segment(self, segment)
+        _a_offset_m(self, offset_m)
+        _a_x(self, x)
+        _a_y(self, y)
+        _a_eps_m(self, eps_m)
+        _a_window_fixes(self, window_fixes)
+        _a_window_s(self, window_s)
+        _a_kind(self, "assignment")
 
-@dataclass(frozen=True, slots=True)
+
+@dataclass(frozen=True, slots=True, init=False)
 class MatchedFix:
     """The final answer for one fix inside a commit."""
 
@@ -45,8 +64,15 @@ class MatchedFix:
     x: float
     y: float
 
+    def __init__(self, t: float, segment: int, offset_m: float, x: float, y: float) -> None:
+        _m_t(self, t)
+        _m_segment(self, segment)
+        _m_offset_m(self, offset_m)
+        _m_x(self, x)
+        _m_y(self, y)
 
-@dataclass(frozen=True, slots=True)
+
+@dataclass(frozen=True, slots=True, init=False)
 class Commit:
     """A settled stretch: final answers for some fixes and the connected path driven."""
 
@@ -54,6 +80,25 @@ class Commit:
     fixes: tuple[MatchedFix, ...]
     path: tuple[int, ...]
     kind: str = field(default="commit", init=False)
+
+    def __init__(self, vehicle: str, fixes: tuple[MatchedFix, ...],
+                 path: tuple[int, ...]) -> None:
+        _c_vehicle(self, vehicle)
+        _c_fixes(self, fixes)
+        _c_path(self, path)
+        _c_kind(self, "commit")
+
+
+# The slots' own setters, for the hand-written __init__ methods above (they bypass the
+# frozen __setattr__, as the generated __init__ does).
+_a_vehicle, _a_t, _a_segment, _a_offset_m, _a_x, _a_y, _a_eps_m, _a_window_fixes, \
+    _a_window_s, _a_kind = (Assignment.__dict__[name].__set__ for name in (
+        "vehicle", "t", "segment", "offset_m", "x", "y", "eps_m", "window_fixes", "window_s",
+        "kind"))
+_m_t, _m_segment, _m_offset_m, _m_x, _m_y = (
+    MatchedFix.__dict__[name].__set__ for name in ("t", "segment", "offset_m", "x", "y"))
+_c_vehicle, _c_fixes, _c_path, _c_kind = (
+    Commit.__dict__[name].__set__ for name in ("vehicle", "fixes", "path", "kind"))
 
 
 @dataclass(frozen=True, slots=True)
@@ -133,6 +178,43 @@ def to_record(event: Event, network: RoadNetwork) -> dict[str, Any]:
     return {"vehicle": event.vehicle, "time": event.t, "reason": event.reason}
 
 
+#: Fast rounding only below this magnitude of ``x * 10**ndigits`` (2**31): there the
+#: product is within 2**-23 of the exact one, far inside the 1e-6 margin around ties.
+_FAST_ROUND_LIMIT = 2147483648.0
+
+
+def rounded(x: float, scale: float, ndigits: int) -> float:
+    """``round(x, ndigits)`` exactly, for less than the built-in costs on ordinary values.
+
+    ``scale`` is ``10.0 ** ndigits``; the result is the same double, sign of zero included.
+
+    The built-in rounds the exact decimal value of ``x`` half-to-even and returns the
+    double nearest to the result. Here the integer ``n`` nearest to ``x * scale`` is
+    found from the floating-point product, which differs from the exact product by at
+    most 2**-23 when it is below 2**31; when its fraction is more than 1e-6 away from
+    one half, ``n`` is certain, and ``n / scale`` (two exact doubles, one correctly
+    rounded division) is the double nearest to ``n / 10**ndigits``, as the built-in's.
+    Near a tie, for a zero result (whose sign the built-in keeps), and for huge or
+    non-finite values it calls the built-in.
+
+    Example (the last one is a near-tie, handed to the built-in):
+        >>> rounded(24.94123456789, 1e7, 7), rounded(-0.00000001, 1e7, 7), rounded(2.675, 1e2, 2)
+        (24.9412346, -0.0, 2.67)
+    """
+    r = x * scale
+    if -_FAST_ROUND_LIMIT < r < _FAST_ROUND_LIMIT:
+        n = floor(r)
+        frac = r - n
+        if frac < 0.499999:
+            if n:
+                return n / scale
+        elif frac > 0.500001:
+            n += 1
+            if n:
+                return n / scale
+    return round(x, ndigits)
+
+
 class RecordBuilder:
     """:func:`to_record` for one network, with the per-segment lookups cached.
 
@@ -172,41 +254,48 @@ class RecordBuilder:
         """The same dict as ``to_record(event, network)``."""
         if isinstance(event, Assignment):
             lon, lat = self._inverse(event.x, event.y)
-            way, from_node, to_node, road = self._segment(event.segment)
+            ids = self._segments.get(event.segment)
+            if ids is None:
+                ids = self._segment(event.segment)
             return {
                 "vehicle": event.vehicle,
                 "time": event.t,
-                "lat": round(lat, 7),
-                "lon": round(lon, 7),
-                "way": way,
-                "from_node": from_node,
-                "to_node": to_node,
-                "offset_m": round(event.offset_m, 3),
-                "road": road,
+                "lat": rounded(lat, 1e7, 7),
+                "lon": rounded(lon, 1e7, 7),
+                "way": ids[0],
+                "from_node": ids[1],
+                "to_node": ids[2],
+                "offset_m": rounded(event.offset_m, 1e3, 3),
+                "road": ids[3],
                 "eps_m": event.eps_m,
                 "window_fixes": event.window_fixes,
-                "window_s": round(event.window_s, 3),
+                "window_s": rounded(event.window_s, 1e3, 3),
                 "committed": False,
             }
         if isinstance(event, Commit):
             inverse = self._inverse
+            known = self._segments
             segment = self._segment
             fixes = []
             for f in event.fixes:
                 lon, lat = inverse(f.x, f.y)
-                way, from_node, to_node, _ = segment(f.segment)
+                ids = known.get(f.segment)
+                if ids is None:
+                    ids = segment(f.segment)
                 fixes.append({
                     "time": f.t,
-                    "lat": round(lat, 7),
-                    "lon": round(lon, 7),
-                    "way": way,
-                    "from_node": from_node,
-                    "to_node": to_node,
-                    "offset_m": round(f.offset_m, 3),
+                    "lat": rounded(lat, 1e7, 7),
+                    "lon": rounded(lon, 1e7, 7),
+                    "way": ids[0],
+                    "from_node": ids[1],
+                    "to_node": ids[2],
+                    "offset_m": rounded(f.offset_m, 1e3, 3),
                 })
             path = []
             for s in event.path:
-                way, from_node, to_node, _ = segment(s)
-                path.append({"way": way, "from_node": from_node, "to_node": to_node})
+                ids = known.get(s)
+                if ids is None:
+                    ids = segment(s)
+                path.append({"way": ids[0], "from_node": ids[1], "to_node": ids[2]})
             return {"vehicle": event.vehicle, "fixes": fixes, "path": path}
         return to_record(event, self.network)

@@ -45,6 +45,7 @@ __all__ = [
     "REASONS",
     "SHARD_LEVEL",
     "FeedLimits",
+    "PositionReader",
     "decode_position",
     "known_vehicle",
     "looks_like_position",
@@ -419,60 +420,138 @@ def decode_position(
         livematch.errors.BadMessageError: not_object: payload is not a JSON object: \
 Expected `object`, got `array`
     """
-    if len(payload) > limits.max_payload_bytes:
-        raise BadMessageError(
-            "too_large",
-            f"payload has {len(payload)} bytes, more than {limits.max_payload_bytes}")
-    try:
-        msg = _DECODER.decode(payload)
-    except msgspec.DecodeError as exc:
-        raise _decode_error(exc, payload) from exc
+    return PositionReader(projection, limits).read(topic, payload, at)
 
-    from_topic = vehicle_from_topic(topic, limits.topic_filter)
-    if from_topic is not None:
-        validate_vehicle(from_topic, limits, f"topic {topic!r}")
-    if msg.vehicle is not None and msg.vehicle != from_topic:
-        validate_vehicle(msg.vehicle, limits, "payload")
-        if from_topic is not None:
+
+#: How many validated vehicle ids a :class:`PositionReader` remembers before it starts
+#: over (a dict of short strings: about 100 bytes an id).
+VALID_IDS_HELD = 4096
+
+
+class PositionReader:
+    """:func:`decode_position` for one projection and one set of limits (one per worker).
+
+    The same checks in the same order with the same errors; what depends only on the
+    limits (the topic filter's shape, the first and last accepted fix times) is worked
+    out once here instead of on every message, and a vehicle id that passed
+    :func:`validate_vehicle` is remembered (up to :data:`VALID_IDS_HELD` ids, then the
+    memory starts over), so the ids of a fleet are checked once, not once per fix. The
+    remembered ids change no answer: an id is remembered only after it passed, and
+    passing depends on nothing but the id and the limits.
+
+    Example (the second message is refused exactly as ``decode_position`` refuses it):
+        >>> reader = PositionReader(Projection.local(24.94, 60.17), FeedLimits())
+        >>> reader.read("fleet/bus17/position", b'{"time": 1700000000, "lat": 60.17, '
+        ...             b'"lon": 24.94}').vehicle
+        'bus17'
+        >>> reader.read("fleet/bus17/position", b'{"time": 1700000000, "lat": 91, "lon": 0}')
+        Traceback (most recent call last):
+        ...
+        livematch.errors.BadMessageError: out_of_range: lat 91.0 is outside -90..90 degrees
+    """
+
+    __slots__ = ("_future_s", "_max_bytes", "_max_time", "_min_time", "_shape",
+                 "_to_xy", "_valid", "limits", "projection")
+
+    def __init__(self, projection: Projection, limits: FeedLimits = FeedLimits()) -> None:
+        self.projection = projection
+        self.limits = limits
+        self._to_xy = projection.point_to_xy
+        self._max_bytes = limits.max_payload_bytes
+        self._shape = _filter_shape(limits.topic_filter)
+        self._min_time = limits.min_time
+        self._max_time = limits.max_time
+        self._future_s = limits.max_future_s
+        self._valid: dict[str, None] = {}
+
+    def _check_vehicle(self, vehicle: str, where: str) -> None:
+        """:func:`validate_vehicle`, once per id (``where`` is only read on a refusal)."""
+        if vehicle in self._valid:
+            return
+        validate_vehicle(vehicle, self.limits, where)
+        if len(self._valid) >= VALID_IDS_HELD:
+            self._valid = {}
+        self._valid[vehicle] = None
+
+    def read(self, topic: str, payload: bytes, at: float | None = None) -> Fix:
+        """Decode and validate one position message (see :func:`decode_position`).
+
+        Raises:
+            BadMessageError: as :func:`decode_position` does, for the same bytes.
+        """
+        limits = self.limits
+        if len(payload) > self._max_bytes:
             raise BadMessageError(
-                "vehicle_mismatch",
-                f"payload vehicle {msg.vehicle!r} differs from topic vehicle {from_topic!r}")
-    vehicle = msg.vehicle if msg.vehicle is not None else from_topic
-    if vehicle is None:
-        raise BadMessageError(
-            "missing_field",
-            f"missing field `vehicle`, and topic {topic!r} does not match "
-            f"{limits.topic_filter!r}")
+                "too_large",
+                f"payload has {len(payload)} bytes, more than {limits.max_payload_bytes}")
+        try:
+            msg = _DECODER.decode(payload)
+        except msgspec.DecodeError as exc:
+            raise _decode_error(exc, payload) from exc
 
-    t = parse_time(msg.time)
-    if not limits.min_time <= t < limits.max_time:
-        hint = " (milliseconds sent as seconds?)" if t >= 1e11 else ""
-        raise BadMessageError(
-            "out_of_range",
-            f"time {msg.time!r} is outside the years {limits.min_year}..{limits.max_year}"
-            f"{hint}")
-    if at is not None and limits.max_future_s > 0 and t - at > limits.max_future_s:
-        raise BadMessageError(
-            "future_time",
-            f"time {msg.time!r} is {t - at:.0f} s ahead of its receive time {at!r}, more "
-            f"than {limits.max_future_s:g} s (is the device's clock wrong?)")
-    accuracy, speed, heading = msg.accuracy, msg.speed, msg.heading
-    # One chain of compares passes every valid message (NaN fails any compare, infinity
-    # the open upper bounds); whatever fails it is checked field by field, in order, for
-    # the reason and the message.
-    if not (-90.0 <= msg.lat <= 90.0 and -180.0 <= msg.lon <= 180.0
-            and (accuracy is None or 0.0 <= accuracy < math.inf)
-            and (speed is None or 0.0 <= speed < math.inf)
-            and (heading is None or 0.0 <= heading <= 360.0)):
-        _check_range("lat", msg.lat, -90.0, 90.0, "degrees")
-        _check_range("lon", msg.lon, -180.0, 180.0, "degrees")
-        _check_range("accuracy", accuracy, 0.0, math.inf, "metres")
-        _check_range("speed", speed, 0.0, math.inf, "m/s")
-        _check_range("heading", heading, 0.0, 360.0, "degrees")
+        shape = self._shape
+        from_topic: str | None = None
+        if shape:  # 'prefix/+/suffix': vehicle_from_topic's first case, inline
+            prefix, suffix = shape
+            if (len(topic) >= len(prefix) + len(suffix) and topic.startswith(prefix)
+                    and topic.endswith(suffix)):
+                level = topic[len(prefix):len(topic) - len(suffix)]
+                if "/" not in level:
+                    from_topic = level
+        elif shape is not None:
+            from_topic = _vehicle_by_levels(topic, limits.topic_filter)
+        valid = self._valid
+        if from_topic is not None and from_topic not in valid:
+            self._check_vehicle(from_topic, f"topic {topic!r}")
+        vehicle = msg.vehicle
+        if vehicle is not None and vehicle != from_topic:
+            if vehicle not in valid:
+                self._check_vehicle(vehicle, "payload")
+            if from_topic is not None:
+                raise BadMessageError(
+                    "vehicle_mismatch",
+                    f"payload vehicle {vehicle!r} differs from topic vehicle {from_topic!r}")
+        if vehicle is None:
+            vehicle = from_topic
+            if vehicle is None:
+                raise BadMessageError(
+                    "missing_field",
+                    f"missing field `vehicle`, and topic {topic!r} does not match "
+                    f"{limits.topic_filter!r}")
 
-    x, y = projection.point_to_xy(msg.lon, msg.lat)
-    # positional: a frozen dataclass takes keywords at about twice the cost
-    return Fix(vehicle, t, msg.lon, msg.lat, x, y, accuracy, speed, heading, msg.route)
+        # a number is the time itself (msgspec gives a float); -inf < t < inf is False
+        # for NaN and the infinities, which parse_time refuses with its own message
+        t = msg.time
+        if not (type(t) is float and -math.inf < t < math.inf):
+            t = parse_time(t)
+        if not self._min_time <= t < self._max_time:
+            hint = " (milliseconds sent as seconds?)" if t >= 1e11 else ""
+            raise BadMessageError(
+                "out_of_range",
+                f"time {msg.time!r} is outside the years {limits.min_year}..{limits.max_year}"
+                f"{hint}")
+        if at is not None and self._future_s > 0 and t - at > self._future_s:
+            raise BadMessageError(
+                "future_time",
+                f"time {msg.time!r} is {t - at:.0f} s ahead of its receive time {at!r}, more "
+                f"than {limits.max_future_s:g} s (is the device's clock wrong?)")
+        lat, lon = msg.lat, msg.lon
+        accuracy, speed, heading = msg.accuracy, msg.speed, msg.heading
+        # One chain of compares passes every valid message (NaN fails any compare, infinity
+        # the open upper bounds); whatever fails it is checked field by field, in order,
+        # for the reason and the message.
+        if not (-90.0 <= lat <= 90.0 and -180.0 <= lon <= 180.0
+                and (accuracy is None or 0.0 <= accuracy < math.inf)
+                and (speed is None or 0.0 <= speed < math.inf)
+                and (heading is None or 0.0 <= heading <= 360.0)):
+            _check_range("lat", lat, -90.0, 90.0, "degrees")
+            _check_range("lon", lon, -180.0, 180.0, "degrees")
+            _check_range("accuracy", accuracy, 0.0, math.inf, "metres")
+            _check_range("speed", speed, 0.0, math.inf, "m/s")
+            _check_range("heading", heading, 0.0, 360.0, "degrees")
+
+        x, y = self._to_xy(lon, lat)
+        return Fix(vehicle, t, lon, lat, x, y, accuracy, speed, heading, msg.route)
 
 
 def looks_like_position(payload: bytes, limits: FeedLimits = FeedLimits()) -> bool:
