@@ -244,12 +244,14 @@ def livematch_available() -> tuple[bool, bool]:
 
 
 def run_replay(network: RoadNetwork, net_path: Path, log: Path, out_dir: Path,
-               xy: XY, times: dict[str, list[float]]) -> MethodRun:
+               xy: XY, times: dict[str, list[float]], config: Path | None = None) -> MethodRun:
     if out_dir.exists():
         shutil.rmtree(out_dir)
     t0 = time.perf_counter()
+    extra = ["--config", str(config)] if config else []
     proc = subprocess.run([str(LIVEMATCH), "replay", str(log), "--network", str(net_path),
-                           "--out", str(out_dir)], capture_output=True, text=True, check=False)
+                           "--out", str(out_dir), *extra],
+                          capture_output=True, text=True, check=False)
     seconds = time.perf_counter() - t0
     if proc.returncode != 0:
         return MethodRun(skipped=f"livematch replay failed ({proc.returncode}): "
@@ -267,11 +269,11 @@ def run_replay(network: RoadNetwork, net_path: Path, log: Path, out_dir: Path,
 
 
 def run_inproc(network: RoadNetwork, records: list[dict[str, Any]],
-               xy: XY, times: dict[str, list[float]]) -> MethodRun:
+               xy: XY, times: dict[str, list[float]], street_turns: bool = False) -> MethodRun:
     from livematch.core.settings import MatchSettings
     from livematch.pipeline import Pipeline
 
-    pipeline = Pipeline(network, MatchSettings())
+    pipeline = Pipeline(network, MatchSettings(street_turns=street_turns))
     assignments: list[dict[str, Any]] = []
     commits: list[dict[str, Any]] = []
     lag: list[float] = []
@@ -575,6 +577,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--mix-only", action="store_true",
                     help="only simulate the drives and print what they drive (road "
                          "classes, turn-rounds, dead ends, trips); writes nothing")
+    ap.add_argument("--street-turns", action="store_true",
+                    help="livematch with [matcher] street_turns = true (U-turns anywhere "
+                         "in bridged steps)")
     ap.add_argument("--calibration-drives", type=int, default=8)
     ap.add_argument("--hmm-lag", type=int, default=5, help="HMM fixed lag, steps")
     ap.add_argument("--livematch", choices=("auto", "replay", "inproc", "skip"),
@@ -622,6 +627,10 @@ def main(argv: list[str] | None = None) -> int:
 
     work = Path(args.keep) if args.keep else Path(tempfile.mkdtemp(prefix="lm-accuracy-"))
     work.mkdir(parents=True, exist_ok=True)
+    config = None
+    if args.street_turns:
+        config = work / "matcher.toml"
+        config.write_text("[matcher]\nstreet_turns = true\n", encoding="utf-8")
     rows: list[dict[str, Any]] = []
     mix: dict[str, dict[str, Any]] = {}
     floors: dict[str, dict[str, float]] = {}
@@ -653,14 +662,15 @@ def main(argv: list[str] | None = None) -> int:
             runs: dict[str, MethodRun] = {}
             if do_replay:
                 runs["livematch"] = run_replay(network, net_path, log, work / f"{tag}.out",
-                                               xy, times)
+                                               xy, times, config)
                 if do_inproc and not runs["livematch"].skipped:
-                    inproc = run_inproc(network, records, xy, times)
+                    inproc = run_inproc(network, records, xy, times, args.street_turns)
                     runs["livematch"].commit_lag = inproc.commit_lag
                     runs["livematch"].flushed = inproc.flushed
                     runs["livematch (in-process)"] = inproc
             elif do_inproc:
-                runs["livematch"] = run_inproc(network, records, xy, times)
+                runs["livematch"] = run_inproc(network, records, xy, times,
+                                               args.street_turns)
             run = MethodRun(timing_note="in-process matching time")
             t0 = time.perf_counter()
             for d, _ in fleet:
@@ -697,6 +707,7 @@ def main(argv: list[str] | None = None) -> int:
     meta = {
         "command": command.strip(), "seed": args.seed, "drives": args.drives,
         "duration_s": args.duration, "intervals": intervals, "sim": args.sim,
+        "street_turns": args.street_turns,
         "extracts": args.extract,
         "drive_settings": asdict(settings),
         "hmm": {k: v for k, v in asdict(HmmSettings(lag=args.hmm_lag)).items()
@@ -756,7 +767,8 @@ def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
         f"{meta['duration_s']:.0f} s per extract, GPS error sigma "
         f"{meta['drive_settings']['sigma_m']} m per axis, tau "
         f"{meta['drive_settings']['tau_s']} s, outliers "
-        f"{meta['drive_settings']['outlier_p']:.0%}; drive model {meta['sim']}; "
+        f"{meta['drive_settings']['outlier_p']:.0%}; drive model {meta['sim']}"
+        f"{'; livematch with street_turns' if meta.get('street_turns') else ''}; "
         f"{meta['elapsed_s']} s in all). "
         f"Code: commit {meta['git_commit'][:12]}"
         f"{' with uncommitted changes' if meta['livematch_dirty'] else ''}.",

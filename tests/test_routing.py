@@ -57,10 +57,10 @@ def exact(answer: list[list[Arrival | None]]) -> list[list[object]]:
 
 
 def check_searches(view: NetworkView, searches: Sequence[Search], limit: float,
-                   ends: list[int]) -> list[list[Arrival | None]]:
+                   ends: list[int], anywhere: bool = False) -> list[list[Arrival | None]]:
     """Both implementations on the same request; assert identical answers; the reference's."""
-    ref = route_searches_reference(view, searches, limit, ends)
-    fast = route_searches(view, searches, limit, ends)
+    ref = route_searches_reference(view, searches, limit, ends, anywhere)
+    fast = route_searches(view, searches, limit, ends, anywhere)
     assert exact(fast) == exact(ref)
     for row in fast:
         for a in row:
@@ -88,8 +88,8 @@ def run_bridged(network: RoadNetwork, interval: int, eps: float, seed: int,
     live: dict[int, Node] = {}
 
     def recording(view: NetworkView, searches: Sequence[Search], limit: float,
-                  ends: list[int]) -> list[list[Arrival | None]]:
-        answer = check_searches(view, searches, limit, ends)
+                  ends: list[int], anywhere: bool = False) -> list[list[Arrival | None]]:
+        answer = check_searches(view, searches, limit, ends, anywhere)
         counts["searches"] += len(searches)
         counts["found"] += sum(a is not None for row in answer for a in row)
         counts["routes"] += sum(a is not None and len(a.segs) > 2 for row in answer for a in row)
@@ -347,3 +347,46 @@ def test_connect_compiled_equals_reference_on_osm() -> None:
         assert fast == ref
         kinds.add(fast is None)
     assert kinds == {True, False}
+
+
+def test_route_searches_street_turns_anywhere_match_networkx() -> None:
+    """With ``anywhere`` (MatchSettings.street_turns) a route may turn round at a shape
+    point in the middle of a road; both implementations agree with networkx's Dijkstra on
+    the full line graph (every U-turn kept), and without it with the graph that forbids
+    them (outside reference: networkx single_source_dijkstra_path_length)."""
+    net = network_from_roads([Road([(0.0, 0.0), (50.0, 0.0), (100.0, 0.0), (150.0, 0.0)],
+                                   way=1)])
+    view = view_of(net)
+    g = nx_graph(net)
+    east = next(s for s in range(net.n_segments)
+            if int(net.seg_from[s]) == 0)  # 0 -> 1, heading east
+    back = view.twin[east]                    # 1 -> 0
+    searches: list[Search] = [([(view.st[east], 0.0, 0, east)], None)]
+    ends = list(range(net.n_segments))
+    free = nx.DiGraph()
+    for (_, _, a), (_, _, b), _ in nx.line_graph(g).edges(keys=True):
+        free.add_edge(a, b, weight=view.slen[a])
+    for anywhere, graph in ((True, free), (False, nx_turn_graph(view, g))):
+        ref = route_searches_reference(view, searches, 1000.0, ends, anywhere)
+        fast = route_searches(view, searches, 1000.0, ends, anywhere)
+        assert exact(fast) == exact(ref)
+        lengths = nx.single_source_dijkstra_path_length(graph, east)
+        for seg, arrival in zip(ends, ref[0], strict=True):
+            if seg == east:
+                continue
+            assert arrival is not None
+            # a route's length to the segment's tail = networkx's length minus the
+            # source segment already driven (the search starts at its head)
+            assert arrival.dist == pytest.approx(lengths[seg] - view.slen[east], abs=1e-9)
+    # the way back: a U-turn at the shape point 50 m east, or 100 m on to the dead end
+    # and 150 m back
+    turned = route_searches(view, searches, 1000.0, [back], True)[0][0]
+    around = route_searches(view, searches, 1000.0, [back], False)[0][0]
+    assert turned is not None and turned.dist == 0.0 and turned.segs == ()
+    assert around is not None and around.dist == 200.0
+
+
+def test_match_settings_street_turns_must_be_bool() -> None:
+    """street_turns is a switch: anything but true/false is reported by key."""
+    assert MatchSettings(street_turns=True).problems() == []
+    assert MatchSettings(street_turns=1).problems()[0][0] == "street_turns"  # type: ignore[arg-type]

@@ -615,3 +615,27 @@ def test_tracker_first_fix_at_segment_end_reported_on_segment_entered(dt: float)
     path = committed_path(events)
     assert path == [1, 2]
     assert_connected(net, path)
+
+
+def test_tracker_street_turns_follow_a_turn_in_the_middle_of_a_road() -> None:
+    """15 s fixes east along a 2 km two-way road, a stop at a shape point 600 m in, then
+    back west: with street_turns the committed path is one connected route that turns
+    round at that point, and every fix is answered in its direction of travel."""
+    pts = [(0.0, 0.0), (300.0, 0.0), (600.0, 0.0), (2000.0, 0.0)]
+    net = network_from_roads([Road(pts, way=7)])
+    xs = [0.0, 150.0, 300.0, 450.0, 600.0, 600.0, 600.0, 450.0, 300.0, 150.0, 30.0]
+    tracker = Tracker(net, "van3", MatchSettings(street_turns=True))
+    events = []
+    for i, x in enumerate(xs):
+        events += tracker.update(Fix("van3", 15.0 * i, 0.0, 0.0, x, 2.0, 5.0))
+    events += tracker.flush()
+    path = committed_path(events)
+    mid = 2  # the shape point at x = 600 (vertex ids follow the road's points)
+    assert tuple(net.node_xy[mid]) == (600.0, 0.0)
+    assert_connected(net, path)
+    assert any(int(net.seg_twin[a]) == b and int(net.seg_to[a]) == mid
+               for a, b in itertools.pairwise(path))
+    final = {f.t: f.segment for e in events if isinstance(e, Commit) for f in e.fixes}
+    heading_east = [net.node_xy[net.seg_to[s], 0] > net.node_xy[net.seg_from[s], 0]
+                    for _, s in sorted(final.items())]
+    assert heading_east[:4] == [True] * 4 and heading_east[7:] == [False] * 4

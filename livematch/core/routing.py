@@ -21,9 +21,9 @@ passes some vertices twice, which a search settling each vertex once cannot rout
 from __future__ import annotations
 
 import heapq
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any, NamedTuple
+from typing import Any, NamedTuple, Protocol
 
 import numpy as np
 import numpy.typing as npt
@@ -55,6 +55,7 @@ def bounded_dijkstra(
     sources: list[tuple[int, float, int, int]],
     limit: float,
     offsets: list[float] | None = None,
+    anywhere: bool = False,
 ) -> dict[int, Reach]:
     """Multi-source Dijkstra over directed segments, stopping at route length ``limit`` m.
 
@@ -68,6 +69,9 @@ def bounded_dijkstra(
             counted against ``limit``: with a candidate's path cost converted to metres,
             every segment is labelled with the source minimising cost plus route length.
             ``Reach.dist`` then includes the offset.
+        anywhere: allow a U-turn at every vertex, shape points in the middle of a road
+            included (``MatchSettings.street_turns``: vehicles that turn round in the
+            street, as a delivery van at a stop does).
 
     Returns:
         The segments entered within ``limit`` (their tail vertex reached by a route of at
@@ -96,7 +100,8 @@ def bounded_dijkstra(
     # one segment: the same floating-point additions in the same order
     heap: list[tuple[float, int, int, int]] = []
     shift = offsets or [0.0] * (1 + max((s[2] for s in sources), default=0))
-    out, st, slen, twin, ok = view.out, view.st, view.slen, view.twin, view.turn_back_ok
+    out, st, slen, twin = view.out, view.st, view.slen, view.twin
+    ok = [True] * len(view.vx) if anywhere else view.turn_back_ok
     for vertex, length, tag, seg in sources:
         if length <= limit:
             back = twin[seg] if seg >= 0 and not ok[vertex] else -1
@@ -154,13 +159,19 @@ class Arrival(NamedTuple):
 # a bridged step builds about a hundred of them)
 _new_tuple = tuple.__new__
 
-RouteSearch = Callable[[NetworkView, Sequence[Search], float, list[int]],
-                       list[list[Arrival | None]]]
-"""The signature of :func:`route_searches` and :func:`route_searches_reference`."""
+
+class RouteSearch(Protocol):
+    """The signature of :func:`route_searches` and :func:`route_searches_reference`."""
+
+    def __call__(self, view: NetworkView, searches: Sequence[Search], limit: float,
+                 ends: list[int], anywhere: bool = False) -> list[list[Arrival | None]]:
+        """Per search, per end segment, how it was entered (None: not reached)."""
+        ...
 
 
 def route_searches_reference(
-    view: NetworkView, searches: Sequence[Search], limit: float, ends: list[int]
+    view: NetworkView, searches: Sequence[Search], limit: float, ends: list[int],
+    anywhere: bool = False,
 ) -> list[list[Arrival | None]]:
     """Run bounded searches and report how each of the segments ``ends`` was entered.
 
@@ -186,7 +197,7 @@ def route_searches_reference(
     """
     answer: list[list[Arrival | None]] = []
     for sources, offsets in searches:
-        reached = bounded_dijkstra(view, sources, limit, offsets)
+        reached = bounded_dijkstra(view, sources, limit, offsets, anywhere)
         row: list[Arrival | None] = []
         for seg in ends:
             r = reached.get(seg)
@@ -204,7 +215,8 @@ class RouteArrays:
     the sweep kernel; the daemon runs every tracker on one event loop).
     """
 
-    __slots__ = ("flag", "hf", "hi", "lab_f", "lab_i", "netf", "neti", "vias")
+    __slots__ = ("flag", "hf", "hi", "lab_f", "lab_i", "n_v", "netf", "neti", "neti_street",
+                 "vias")
 
     def __init__(self, view: NetworkView) -> None:
         from livematch.core.fastsweep import sweep_arrays  # imports sweep, which imports us
@@ -213,6 +225,8 @@ class RouteArrays:
         n_e = view.network.n_segments
         self.netf: npt.NDArray[np.float64] = arrays.netf
         self.neti: npt.NDArray[np.int64] = arrays.neti
+        self.n_v = view.network.n_vertices
+        self.neti_street: npt.NDArray[np.int64] | None = None
         self.flag: npt.NDArray[np.uint8] = np.zeros(n_e, dtype=np.uint8)
         self.lab_f: npt.NDArray[np.float64] = np.zeros(n_e, dtype=np.float64)
         self.lab_i: npt.NDArray[np.int32] = np.zeros(3 * n_e, dtype=np.int32)
@@ -220,6 +234,18 @@ class RouteArrays:
         self.hi: npt.NDArray[np.int64] = np.empty(0, dtype=np.int64)
         self.vias: npt.NDArray[np.int64] = np.empty(0, dtype=np.int64)
         self.resize(_START_ENTRIES, _START_VIA)
+
+    def street_neti(self) -> npt.NDArray[np.int64]:
+        """The network's int arrays with a U-turn allowed at every vertex (built once).
+
+        The layout ends with ``turn_back_ok[V]`` (``_sweep_kernel``), so the copy only
+        sets that tail to 1; the sweep itself keeps the network's own rule.
+        """
+        if self.neti_street is None:
+            street = self.neti.copy()
+            street[len(street) - self.n_v:] = 1
+            self.neti_street = street
+        return self.neti_street
 
     def resize(self, entries: int, vias: int) -> None:
         """Fresh heap scratch for ``entries`` entries and room for ``vias`` route segments.
@@ -253,7 +279,8 @@ def route_arrays(view: NetworkView) -> RouteArrays:
 
 
 def route_searches(
-    view: NetworkView, searches: Sequence[Search], limit: float, ends: list[int]
+    view: NetworkView, searches: Sequence[Search], limit: float, ends: list[int],
+    anywhere: bool = False,
 ) -> list[list[Arrival | None]]:
     """:func:`route_searches_reference`, compiled: same arguments, same answer.
 
@@ -279,7 +306,8 @@ def route_searches(
             req += (vertex, length, tag, seg, offsets[tag] if offsets else 0.0)
     packed = np.array(req, dtype=np.float64)
     while True:
-        dist, info, n_via = _rk.route_kernel(arrays.netf, arrays.neti, arrays.flag,
+        neti = arrays.street_neti() if anywhere else arrays.neti
+        dist, info, n_via = _rk.route_kernel(arrays.netf, neti, arrays.flag,
                                              arrays.lab_f, arrays.lab_i, packed, arrays.hf,
                                              arrays.hi, arrays.vias)
         if n_via >= 0:

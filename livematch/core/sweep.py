@@ -111,6 +111,7 @@ class StepContext:
     turn_back_cost: float
     motion_cost: float = 0.0
     pace_cost: float = 0.0
+    street_turns: bool = False
 
     @classmethod
     def between(
@@ -120,7 +121,8 @@ class StepContext:
         """The context of the step p0 -> p1 at one eps, with the cost weights of ``settings``."""
         return cls(view, eps, x0, y0, x1, y1, seq, t, math.hypot(x1 - x0, y1 - y0),
                    1.0 / (2.0 * settings.sigma_m * settings.sigma_m), 1.0 / settings.beta_m,
-                   settings.turn_back_cost, 1.0 / settings.motion_m, 1.0 / settings.pace_m)
+                   settings.turn_back_cost, 1.0 / settings.motion_m, 1.0 / settings.pace_m,
+                   settings.street_turns)
 
 
 def free_interval(
@@ -386,7 +388,7 @@ def bridge_step(
         searches.append(([sources[i]], own))
     # one call for every search, answering for the targets only (each entered by a route
     # that may turn into it: U-turns only where the network allows them)
-    found = search(view, searches, limit, targets)
+    found = search(view, searches, limit, targets, ctx.street_turns)
     paces = [pace(view, n, ctx.t) for n in nodes] if ctx.pace_cost > 0.0 else [-1.0] * len(nodes)
     new: dict[int, Node] = {}
     for k, seg in enumerate(targets):
