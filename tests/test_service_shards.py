@@ -84,6 +84,13 @@ async def managers(url: str, prefix: str, *names: str, lease_s: float = 1.0,
         await client.aclose()
 
 
+async def publish_feed(port: int, topic: str, feed: list[tuple[float, bytes]]) -> None:
+    """Publish one vehicle's fixes (QoS 1) on ``topic`` through a fresh client."""
+    async with publisher(port) as pub:
+        for _, payload in feed:
+            await pub.publish(topic, payload, qos=1)
+
+
 async def test_lease_exclusive_and_renewed(redis_url: str, prefix: str) -> None:
     """A held shard cannot be acquired by another; renewing extends its expiry."""
     async with managers(redis_url, prefix, "a", "b", lease_s=1.0) as (a, b):
@@ -376,9 +383,7 @@ async def test_worker_fenced_out_writes_nothing_and_recovers(
     key = f"{prefix}:{{s:{shard}}}:vehicle:{vehicle}"
 
     async def publish(lo: int, hi: int) -> None:
-        async with publisher(mosquitto.port) as pub:
-            for _, payload in feed[lo:hi]:
-                await pub.publish(f"{prefix}/fleet/{vehicle}/position", payload, qos=1)
+        await publish_feed(mosquitto.port, f"{prefix}/fleet/{vehicle}/position", feed[lo:hi])
 
     async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col:
         task = asyncio.create_task(a.run())
@@ -425,9 +430,7 @@ async def test_group_worker_stop_writes_final_checkpoint_releases_and_leaves(
     key = f"{prefix}:{{s:{shard}}}:vehicle:{vehicle}"
 
     async def publish(lo: int, hi: int) -> None:
-        async with publisher(mosquitto.port) as pub:
-            for _, payload in feed[lo:hi]:
-                await pub.publish(f"{prefix}/fleet/{vehicle}/position", payload, qos=1)
+        await publish_feed(mosquitto.port, f"{prefix}/fleet/{vehicle}/position", feed[lo:hi])
 
     try:
         async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col:
