@@ -1,0 +1,118 @@
+"""Interleaved A/B of the tracker's CPU per fix: two source trees, two processes, turn by turn.
+
+This virtual machine's speed drifts by a third within minutes, so two timing runs made
+one after the other compare the drift as much as the code. Here each tree runs in a
+worker process of its own (``PYTHONPATH`` = the tree) that simulates the same drives
+once, warms the compiled kernels, then waits; the parent asks both workers to match the
+same drive in turn, alternating which goes first, and each reports the process CPU time
+of ``Tracker.update`` over the drive's fixes plus ``flush`` (default settings). The
+figure to read is the median over drives of the per-drive ratio new / base, which drift
+between drives does not move; the pooled µs per fix are printed too (the first drive of
+a tree whose kernels were not cached includes their compile time).
+
+Usage::
+
+    git worktree add /tmp/base <rev>; ln -s "$PWD/.venv" /tmp/base/.venv
+    .venv/bin/python bench/ab.py --base /tmp/base --new . [--extract helsinki]
+        [--reps 6] [--drives 8] [--duration 600] [--every 1,15]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import statistics
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def worker(extract: str, drives: int, duration: float) -> None:
+    """Serve requests ``<drive> <every>`` on stdin with ``[cpu_s, fixes]`` on stdout."""
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from _drives import drive_fixes, load_extract
+
+    from livematch.core.candidates import warm_up
+    from livematch.core.settings import MatchSettings
+    from livematch.core.tracker import Tracker
+
+    net = load_extract(extract)
+    runs = drive_fixes(net, drives, duration, [2009, 5])
+    warm_up()
+    print("ready", flush=True)
+    for line in sys.stdin:
+        k, every = map(int, line.split())
+        fixes = runs[k][::every]
+        tracker = Tracker(net, fixes[0].vehicle, MatchSettings())
+        t0 = time.process_time()
+        for fix in fixes:
+            tracker.update(fix)
+        tracker.flush()
+        print(json.dumps([time.process_time() - t0, len(fixes)]), flush=True)
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("--base", required=True, help="source tree of the base (a checkout)")
+    ap.add_argument("--new", default=str(ROOT), help="source tree of the new code")
+    ap.add_argument("--extract", default="helsinki")
+    ap.add_argument("--reps", type=int, default=6, help="rounds over all drives")
+    ap.add_argument("--drives", type=int, default=8)
+    ap.add_argument("--duration", type=float, default=600.0, help="seconds per drive")
+    ap.add_argument("--every", default="1,15", help="seconds between fixes, comma list")
+    ap.add_argument("--worker", action="store_true", help=argparse.SUPPRESS)
+    args = ap.parse_args(argv)
+    if args.worker:
+        worker(args.extract, args.drives, args.duration)
+        return 0
+    me = [sys.executable, str(Path(__file__).resolve()), "--base", args.base, "--worker",
+          "--extract", args.extract, "--drives", str(args.drives),
+          "--duration", str(args.duration)]
+
+    def start(tree: str) -> subprocess.Popen[str]:
+        proc = subprocess.Popen(me, stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True,
+                                env={**os.environ, "PYTHONPATH": str(Path(tree).resolve())})
+        assert proc.stdout is not None and proc.stdout.readline().strip() == "ready"
+        return proc
+
+    base, new = start(args.base), start(args.new)
+
+    def ask(proc: subprocess.Popen[str], k: int, every: int) -> list[float]:
+        assert proc.stdin is not None and proc.stdout is not None
+        proc.stdin.write(f"{k} {every}\n")
+        proc.stdin.flush()
+        answer: list[float] = json.loads(proc.stdout.readline())
+        return answer
+
+    print(f"# bench/ab.py {' '.join(argv if argv is not None else sys.argv[1:])}; "
+          f"load average {os.getloadavg()[0]:.2f}")
+    for every in (int(e) for e in args.every.split(",")):
+        pairs = []
+        for rep in range(args.reps):
+            for k in range(args.drives):
+                if (rep + k) % 2 == 0:
+                    a, b = ask(base, k, every), ask(new, k, every)
+                else:
+                    b, a = ask(new, k, every), ask(base, k, every)
+                pairs.append((a, b))
+        fixes = sum(a[1] for a, _ in pairs)
+        ratio = statistics.median(b[0] / a[0] for a, b in pairs if a[0] > 0)
+        us_base = 1e6 * sum(a[0] for a, _ in pairs) / fixes
+        us_new = 1e6 * sum(b[0] for _, b in pairs) / fixes
+        print(f"{args.extract} every {every} s: base {us_base:.1f} µs/fix, new {us_new:.1f} "
+              f"µs/fix (pooled); "
+              f"median per-drive ratio new/base {ratio:.3f} ({len(pairs)} pairs)")
+    for proc in (base, new):
+        assert proc.stdin is not None
+        proc.stdin.close()
+        proc.wait()
+    print(f"# load average at the end {os.getloadavg()[0]:.2f}")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
