@@ -22,6 +22,7 @@ from livematch.errors import BadNetworkError
 from livematch.feed.decode import decode_position
 from livematch.mapdata.netfile import open_network
 from livematch.sim.drive import (
+    Drive,
     DriveSettings,
     drivable_segments,
     gauss_markov,
@@ -40,6 +41,17 @@ from livematch.sim.score import TruePath, path_snap_error, route_mismatch_fracti
 from tests.catalogue import grid, oneway_pair
 
 T0 = 1_767_225_600.0
+
+
+def drive_digest(d: Drive) -> str:
+    """SHA-256 of everything a drive is made of (path, truth, errors, the 15 s fixes)."""
+    h = hashlib.sha256()
+    h.update(repr(d.path).encode())
+    h.update(repr(d.truth).encode())
+    for a in (d.error_xy, d.outlier_xy, d.accuracy, d.delay):
+        h.update(a.tobytes())
+    h.update(repr(observe(d, 15)).encode())
+    return h.hexdigest()
 
 
 def osm_extract(name: str) -> str:
@@ -310,16 +322,10 @@ def test_simulate_drive_defaults_bit_identical_to_before_realistic_options():
     net = extract_network()
     d = simulate_drive(net, np.random.default_rng([2009, 1, 3]), "v", T0,
                        DriveSettings(duration_s=300.0), drivable_segments(net))
-    h = hashlib.sha256()
-    h.update(repr(d.path).encode())
-    h.update(repr(d.truth).encode())
-    for a in (d.error_xy, d.outlier_xy, d.accuracy, d.delay):
-        h.update(a.tobytes())
-    h.update(repr(observe(d, 15)).encode())
     assert d.observed is None and len(d.path) == 23 and len(d.truth) == 301
     # Digest computed with this same code on main at commit c1bf745, before the opt-in
     # lead-in/lead-out and revisit options were added: defaults must not change a drive.
-    assert h.hexdigest() == "dba4bf666f372ca8fc8b7795238726e5f0803ed93a306d1aaea72fb0b2d30a04"
+    assert drive_digest(d) == "dba4bf666f372ca8fc8b7795238726e5f0803ed93a306d1aaea72fb0b2d30a04"
 
 
 def test_simulate_drive_lead_in_out_observes_only_the_window():

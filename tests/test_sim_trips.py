@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import hashlib
 import itertools
 import math
 from collections import Counter
@@ -14,29 +13,24 @@ import pytest
 from livematch.core.network import RoadNetwork
 from livematch.errors import BadNetworkError
 from livematch.sim.drive import (
-    Drive,
     DriveSettings,
     drivable_segments,
     fastest_path,
-    observe,
     simulate_drive,
     travel_times,
     trip_route,
 )
 from tests.catalogue import oneway_pair
-from tests.test_sim import T0, _OnewayWays, assert_connected, extract_network, osm_extract
+from tests.test_sim import (
+    T0,
+    _OnewayWays,
+    assert_connected,
+    drive_digest,
+    extract_network,
+    osm_extract,
+)
 
 TRIPS = DriveSettings(duration_s=900.0, lead_s=60.0, trips=True)
-
-
-def drive_digest(d: Drive) -> str:
-    h = hashlib.sha256()
-    h.update(repr(d.path).encode())
-    h.update(repr(d.truth).encode())
-    for a in (d.error_xy, d.outlier_xy, d.accuracy, d.delay):
-        h.update(a.tobytes())
-    h.update(repr(observe(d, 15)).encode())
-    return h.hexdigest()
 
 
 def reference_graph(net: RoadNetwork, allowed: np.ndarray) -> nx.DiGraph:
