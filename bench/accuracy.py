@@ -269,11 +269,14 @@ def run_replay(network: RoadNetwork, net_path: Path, log: Path, out_dir: Path,
 
 
 def run_inproc(network: RoadNetwork, records: list[dict[str, Any]],
-               xy: XY, times: dict[str, list[float]], street_turns: bool = False) -> MethodRun:
+               xy: XY, times: dict[str, list[float]],
+               turns: dict[str, bool] | None = None) -> MethodRun:
     from livematch.core.settings import MatchSettings
     from livematch.pipeline import Pipeline
 
-    pipeline = Pipeline(network, MatchSettings(street_turns=street_turns))
+    turns = turns or {}
+    pipeline = Pipeline(network, MatchSettings(street_turns=turns.get("street_turns", False),
+                                               stop_turns=turns.get("stop_turns", False)))
     assignments: list[dict[str, Any]] = []
     commits: list[dict[str, Any]] = []
     lag: list[float] = []
@@ -580,6 +583,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--street-turns", action="store_true",
                     help="livematch with [matcher] street_turns = true (U-turns anywhere "
                          "in bridged steps)")
+    ap.add_argument("--stop-turns", action="store_true",
+                    help="livematch with [matcher] stop_turns = true (U-turns anywhere in "
+                         "a bridged step that leaves a stop)")
     ap.add_argument("--calibration-drives", type=int, default=8)
     ap.add_argument("--hmm-lag", type=int, default=5, help="HMM fixed lag, steps")
     ap.add_argument("--livematch", choices=("auto", "replay", "inproc", "skip"),
@@ -628,9 +634,12 @@ def main(argv: list[str] | None = None) -> int:
     work = Path(args.keep) if args.keep else Path(tempfile.mkdtemp(prefix="lm-accuracy-"))
     work.mkdir(parents=True, exist_ok=True)
     config = None
-    if args.street_turns:
+    turns = {k: True for k, on in (("street_turns", args.street_turns),
+                                   ("stop_turns", args.stop_turns)) if on}
+    if turns:
         config = work / "matcher.toml"
-        config.write_text("[matcher]\nstreet_turns = true\n", encoding="utf-8")
+        config.write_text("[matcher]\n" + "".join(f"{k} = true\n" for k in turns),
+                          encoding="utf-8")
     rows: list[dict[str, Any]] = []
     mix: dict[str, dict[str, Any]] = {}
     floors: dict[str, dict[str, float]] = {}
@@ -664,13 +673,12 @@ def main(argv: list[str] | None = None) -> int:
                 runs["livematch"] = run_replay(network, net_path, log, work / f"{tag}.out",
                                                xy, times, config)
                 if do_inproc and not runs["livematch"].skipped:
-                    inproc = run_inproc(network, records, xy, times, args.street_turns)
+                    inproc = run_inproc(network, records, xy, times, turns)
                     runs["livematch"].commit_lag = inproc.commit_lag
                     runs["livematch"].flushed = inproc.flushed
                     runs["livematch (in-process)"] = inproc
             elif do_inproc:
-                runs["livematch"] = run_inproc(network, records, xy, times,
-                                               args.street_turns)
+                runs["livematch"] = run_inproc(network, records, xy, times, turns)
             run = MethodRun(timing_note="in-process matching time")
             t0 = time.perf_counter()
             for d, _ in fleet:
@@ -707,7 +715,7 @@ def main(argv: list[str] | None = None) -> int:
     meta = {
         "command": command.strip(), "seed": args.seed, "drives": args.drives,
         "duration_s": args.duration, "intervals": intervals, "sim": args.sim,
-        "street_turns": args.street_turns,
+        "street_turns": args.street_turns, "stop_turns": args.stop_turns,
         "extracts": args.extract,
         "drive_settings": asdict(settings),
         "hmm": {k: v for k, v in asdict(HmmSettings(lag=args.hmm_lag)).items()
@@ -768,7 +776,8 @@ def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
         f"{meta['drive_settings']['sigma_m']} m per axis, tau "
         f"{meta['drive_settings']['tau_s']} s, outliers "
         f"{meta['drive_settings']['outlier_p']:.0%}; drive model {meta['sim']}"
-        f"{'; livematch with street_turns' if meta.get('street_turns') else ''}; "
+        f"{'; livematch with street_turns' if meta.get('street_turns') else ''}"
+        f"{'; livematch with stop_turns' if meta.get('stop_turns') else ''}; "
         f"{meta['elapsed_s']} s in all). "
         f"Code: commit {meta['git_commit'][:12]}"
         f"{' with uncommitted changes' if meta['livematch_dirty'] else ''}.",

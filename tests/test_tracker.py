@@ -617,25 +617,37 @@ def test_tracker_first_fix_at_segment_end_reported_on_segment_entered(dt: float)
     assert_connected(net, path)
 
 
-def test_tracker_street_turns_follow_a_turn_in_the_middle_of_a_road() -> None:
-    """15 s fixes east along a 2 km two-way road, a stop at a shape point 600 m in, then
-    back west: with street_turns the committed path is one connected route that turns
-    round at that point, and every fix is answered in its direction of travel."""
+def _turn_at_shape_point(settings: MatchSettings, xs: list[float]) -> tuple[list[int], list[bool]]:
+    """Fixes every 15 s at ``xs`` along a 2 km two-way road with shape points at x = 300
+    and 600 (a dead end 1.4 km beyond): the committed path and, per fix, whether its
+    final answer heads east."""
     pts = [(0.0, 0.0), (300.0, 0.0), (600.0, 0.0), (2000.0, 0.0)]
     net = network_from_roads([Road(pts, way=7)])
-    xs = [0.0, 150.0, 300.0, 450.0, 600.0, 600.0, 600.0, 450.0, 300.0, 150.0, 30.0]
-    tracker = Tracker(net, "van3", MatchSettings(street_turns=True))
+    assert tuple(net.node_xy[2]) == (600.0, 0.0)  # vertex ids follow the road's points
+    tracker = Tracker(net, "van3", settings)
     events = []
     for i, x in enumerate(xs):
         events += tracker.update(Fix("van3", 15.0 * i, 0.0, 0.0, x, 2.0, 5.0))
     events += tracker.flush()
     path = committed_path(events)
-    mid = 2  # the shape point at x = 600 (vertex ids follow the road's points)
-    assert tuple(net.node_xy[mid]) == (600.0, 0.0)
-    assert_connected(net, path)
-    assert any(int(net.seg_twin[a]) == b and int(net.seg_to[a]) == mid
-               for a, b in itertools.pairwise(path))
     final = {f.t: f.segment for e in events if isinstance(e, Commit) for f in e.fixes}
-    heading_east = [net.node_xy[net.seg_to[s], 0] > net.node_xy[net.seg_from[s], 0]
-                    for _, s in sorted(final.items())]
-    assert heading_east[:4] == [True] * 4 and heading_east[7:] == [False] * 4
+    return path, [bool(net.node_xy[net.seg_to[s], 0] > net.node_xy[net.seg_from[s], 0])
+                  for _, s in sorted(final.items())]
+
+
+STOP_THEN_BACK = [0.0, 150.0, 300.0, 450.0, 600.0, 600.0, 600.0, 450.0, 300.0, 150.0, 30.0]
+
+
+@pytest.mark.parametrize("settings", [MatchSettings(street_turns=True),
+                                      MatchSettings(stop_turns=True)])
+def test_tracker_street_turns_follow_a_turn_in_the_middle_of_a_road(
+        settings: MatchSettings) -> None:
+    """15 s fixes east along the road, a stop at the shape point 600 m in, then back west:
+    with street_turns, or stop_turns (the vehicle stood there), the tree goes on through
+    a U-turn at the shape point, so the last fix at the stop is already answered on the
+    way back; the defaults can only restart there and leave it heading east."""
+    path, east = _turn_at_shape_point(settings, STOP_THEN_BACK)
+    assert path == [0, 2, 3, 1]  # east to the shape point, turned there, back west
+    assert east[:4] == [True] * 4 and east[6:] == [False] * 5
+    _, east_default = _turn_at_shape_point(MatchSettings(), STOP_THEN_BACK)
+    assert east_default[6] is True and east_default[7:] == [False] * 4

@@ -104,6 +104,7 @@ class MatchSettings:
     error_tau_s: float = 30.0
     spike_cost: float = 30.0
     street_turns: bool = False
+    stop_turns: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -132,8 +133,9 @@ class MatchSettings:
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))
-        if not isinstance(self.street_turns, bool):
-            out.append(("street_turns", f"must be true or false, got {self.street_turns!r}"))
+        for name in ("street_turns", "stop_turns"):
+            if not isinstance(getattr(self, name), bool):
+                out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):
             out.append(("reorder_fixes", f"must be an integer 0..32, got {self.reorder_fixes!r}"))
         return out

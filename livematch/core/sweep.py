@@ -116,13 +116,18 @@ class StepContext:
     @classmethod
     def between(
         cls, view: NetworkView, settings: MatchSettings, eps: float,
-        x0: float, y0: float, x1: float, y1: float, seq: int, t: float,
+        x0: float, y0: float, x1: float, y1: float, seq: int, t: float, stood: bool = False,
     ) -> StepContext:
-        """The context of the step p0 -> p1 at one eps, with the cost weights of ``settings``."""
+        """The context of the step p0 -> p1 at one eps, with the cost weights of ``settings``.
+
+        ``stood``: the vehicle stood at p0 (its step into p0 was slower than
+        ``livematch.core.tracker.STOOD_MPS``); with ``settings.stop_turns`` a bridged
+        step may then turn round at any vertex, as with ``settings.street_turns``.
+        """
         return cls(view, eps, x0, y0, x1, y1, seq, t, math.hypot(x1 - x0, y1 - y0),
                    1.0 / (2.0 * settings.sigma_m * settings.sigma_m), 1.0 / settings.beta_m,
                    settings.turn_back_cost, 1.0 / settings.motion_m, 1.0 / settings.pace_m,
-                   settings.street_turns)
+                   settings.street_turns or (stood and settings.stop_turns))
 
 
 def free_interval(

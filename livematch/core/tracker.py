@@ -97,6 +97,10 @@ JUMP_TRUST_AFTER = 3
 ACCEL_MPS2 = 3.0
 # From this many seconds between fixes on, the trees are kept tight between fixes.
 SPARSE_S = 5.0
+# A step slower than this (m/s) means the vehicle stood at its end: at 15 s between
+# fixes 5 m of GPS drift is 0.3 m/s, a vehicle creeping off from a stop covers more
+# (chosen by judgement, not tuned). Read only with MatchSettings.stop_turns.
+STOOD_MPS = 1.0
 _NO_FIXES = np.empty((0, 2))  # shared by trackers that have seen no fix (never written)
 # A fix this many seconds after the fix before, from SPIKE_MIN_S to SPIKE_MAX_S, is kept
 # open to the spike test (MatchSettings.spike_cost). Closer fixes are left to the jump
@@ -290,10 +294,11 @@ class Tracker:
         self.times[seq] = fix.t
         self._log_fix(fix.x, fix.y)
         self.last = (fix.t, fix.x, fix.y)
+        stood = self.speed is not None and self.speed < STOOD_MPS
         if prev is not None and fix.t > prev[0]:
             self.speed = math.hypot(fix.x - prev[1], fix.y - prev[2]) / (fix.t - prev[0])
         dt = fix.t - prev[0] if prev is not None else 0.0
-        salvage = self._advance_levels(fix, prev, seq)
+        salvage = self._advance_levels(fix, prev, seq, stood)
         if self.before is not None and prev is not None:
             straight_from = self.before.last
             dropped = self._spike_test(fix, seq, broke, events)
@@ -326,11 +331,14 @@ class Tracker:
                 level.tree.shrink()
 
     def _advance_levels(
-        self, fix: Fix, prev: tuple[float, float, float] | None, seq: int
+        self, fix: Fix, prev: tuple[float, float, float] | None, seq: int,
+        stood: bool = False,
     ) -> list[tuple[Level, CandidateTree]]:
         """Move every level to ``fix`` (sequence number ``seq``) from the fix ``prev``.
 
         Sweep, else bridge, else start afresh (:func:`livematch.core.sweep.advance`).
+        ``stood``: the step into ``prev`` was slower than ``STOOD_MPS`` (the vehicle stood
+        there), which with ``stop_turns`` lets a bridged step turn round at any vertex.
         Returns the levels that started afresh with the trees they had before.
         """
         s = self.settings
@@ -350,7 +358,7 @@ class Tracker:
                     continue
             # the window died (or the step is a gap): bridge, else start afresh
             ctx = StepContext.between(self._view, s, level.eps, x0, y0, fix.x, fix.y, seq,
-                                      fix.t)
+                                      fix.t, stood)
             nodes, rows = tree.live_nodes(self._view)
             new, how = advance(self.network, nodes, ctx, s, dt, gap=True)
             if how == "bridged":
@@ -426,7 +434,8 @@ class Tracker:
         self.times[suspect] = fix.t
         t0, x0, y0 = before.last
         self.speed = math.hypot(fix.x - x0, fix.y - y0) / (fix.t - t0)
-        salvage = self._advance_levels(fix, before.last, suspect)
+        stood = before.speed is not None and before.speed < STOOD_MPS
+        salvage = self._advance_levels(fix, before.last, suspect, stood)
         drop: bool | None = None
         for i, (a, b) in enumerate(zip(through, self.levels, strict=True)):
             if _goes_on(a, suspect) and _goes_on(b, suspect):
