@@ -82,6 +82,12 @@ class MatchSettings:
             (``--sim trips``) it gains 1-2 points of final accuracy at 5-30 s and cuts the
             route mismatch at 15 s from about 5 % to about 1.3 %, but on random-walk drives
             that never turn in the street it costs up to 1.3 points at 30 s (README).
+        stop_turns: the same freedom only for a bridged step that leaves a stop (the step
+            before it was slower than ``livematch.core.tracker.STOOD_MPS``): a vehicle that
+            stood and then leaves the way it came. Off by default; on the routed-trip
+            drives it gains 1-2.4 points of final accuracy at 15-30 s (more than
+            ``street_turns`` at 30 s), on the random walk it costs 0.4 / 1.0 points at
+            Helsinki 15 / 30 s (README, "The fleet model").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
