@@ -224,20 +224,15 @@ def _plain_floats(value: Any) -> bool:
     """
     kind = type(value)
     if kind is dict:
-        # keys and values in one loop (a generator over the keys cost a resume per key)
-        for k, v in value.items():
+        for k in value:  # a plain loop: a generator over the keys costs a resume per key
             if type(k) is not str:
                 return False
-            t = type(v)
-            if t is float:
-                if not (v == 0.0 or 1e-4 <= v < 1e16 or -1e16 < v <= -1e-4):
-                    return False
-            elif t not in _SCALARS and not _plain_floats(v):
-                return False
-        return True
-    if kind is not list and kind is not tuple:
+        values = value.values()
+    elif kind is list or kind is tuple:
+        values = value
+    else:
         return False
-    for v in value:
+    for v in values:
         t = type(v)
         if t is float:
             if not (v == 0.0 or 1e-4 <= v < 1e16 or -1e16 < v <= -1e-4):
