@@ -712,6 +712,23 @@ def tree_append(
 
 
 @numba.njit(cache=True, error_model="numpy")
+def step_arc(slen: np.ndarray, ibuf: np.ndarray, via0: int, via_len: int,
+             pseg: int, ppos: float, seg: int, pos: float) -> float:
+    """Metres driven from ``ppos`` on ``pseg`` to ``pos`` on ``seg`` through vias.
+
+    The via segments are ``ibuf[via0:via0 + via_len]``; positions are parameters in
+    [0, 1]. Shared by the route windows here and in ``monitors._route_kernel`` (same sums in the
+    same order, so both give the same floats).
+    """
+    if via_len == 0 and seg == pseg:
+        return (pos - ppos) * slen[seg]
+    through = 0.0
+    for q in range(via_len):
+        through += slen[ibuf[via0 + q]]
+    return (1.0 - ppos) * slen[pseg] + through + pos * slen[seg]
+
+
+@numba.njit(cache=True, error_model="numpy")
 def window_step(
     netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
     ctx: np.ndarray, rows: np.ndarray, driven: np.ndarray,
@@ -754,13 +771,7 @@ def window_step(
         pos = fbuf[of + 1]
         pseg = int(rows[parent, 0])
         ppos = rows[parent, 2]
-        if via_len == 0 and seg == pseg:
-            arc = (pos - ppos) * slen[seg]
-        else:
-            through = 0.0
-            for q in range(via_len):
-                through += slen[ibuf[vb + via_start + q]]
-            arc = (1.0 - ppos) * slen[pseg] + through + pos * slen[seg]
+        arc = step_arc(slen, ibuf, vb + via_start, via_len, pseg, ppos, seg, pos)
         new_driven[j] = driven[parent] + arc
         out[j, 0] = seg
         out[j, 1] = fbuf[of]

@@ -117,13 +117,7 @@ def _advance(
                 pb = _k.N_CTX + _k.LIVE_STRIDE * parent
                 pseg = int(live[pb + _k.L_SEG])
                 ppos = live[pb + _k.L_POS]
-                if via_len == 0 and seg == pseg:
-                    arc = (pos - ppos) * slen[seg]
-                else:
-                    through = 0.0
-                    for q in range(via_len):
-                        through += slen[ibuf[vb + via_start + q]]
-                    arc = (1.0 - ppos) * slen[pseg] + through + pos * slen[seg]
+                arc = _k.step_arc(slen, ibuf, vb + via_start, via_len, pseg, ppos, seg, pos)
                 r = 1 + ROW * j
                 w[r] = seg
                 w[r + 1] = fbuf[of]
