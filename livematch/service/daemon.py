@@ -262,6 +262,10 @@ class Daemon:
             drives, so both produce the same records for the same messages).
         store: the state store; default from ``config.store.url``.
         metrics: the metrics; default a fresh registry of its own.
+        http: a health server already listening (``livematch run`` starts one before
+            it builds the pipeline, so ``/healthz`` answers while the kernels compile);
+            the daemon answers on it from :meth:`run` on and closes it at the end.
+            None: the daemon opens ``metrics.listen`` itself (if set).
 
     Example (what ``livematch run`` does)::
 
@@ -276,7 +280,8 @@ class Daemon:
     """
 
     def __init__(self, config: DaemonConfig, pipeline: PipelineLike, *,
-                 store: StateStore | None = None, metrics: Metrics | None = None) -> None:
+                 store: StateStore | None = None, metrics: Metrics | None = None,
+                 http: HealthServer | None = None) -> None:
         self.config = config
         self.pipeline = pipeline
         sc = config.store
@@ -285,7 +290,7 @@ class Daemon:
                                          username=sc.username or None,
                                          ca_file=sc.ca_file or None)
         self.metrics = metrics or Metrics()
-        self.http: HealthServer | None = None
+        self.http: HealthServer | None = http
         self.broker_connected = False
         self.store_ok = False
         self.restored = False
@@ -405,7 +410,9 @@ class Daemon:
 
     async def _run(self) -> None:
         listen = self.config.metrics.listen
-        if listen:
+        if self.http is not None:  # started before the pipeline was built: take it over
+            self.http.serve(render_metrics=self._render_metrics, readiness=self.readiness)
+        elif listen:
             host, port = parse_hostport(listen)
             self.http = HealthServer(host, port, render_metrics=self._render_metrics,
                                      readiness=self.readiness)
