@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import asyncio
+from typing import Any
 
 import aiomqtt
 from paho.mqtt.packettypes import PacketTypes
@@ -65,3 +66,36 @@ async def test_lean_receive_decodes_as_paho(mosquitto: Mosquitto, prefix: str) -
                             for t, p, q, props in sent]
     assert got["lean"] == [(t, p, q, False, "none" if props is None else "user")
                            for t, p, q, props in sent]
+
+
+async def test_lean_receive_puback_reason_codes_as_paho(mosquitto: Mosquitto,
+                                                        prefix: str) -> None:
+    """A PUBACK "No matching subscribers" (0x10, MQTT 5.0 section 3.4.2.1) completes the
+    publish with the same reason code as paho's decoding; read lean, without new objects."""
+    seen: dict[str, list[Any]] = {}
+    clients = {}
+    for name in ("plain", "lean"):
+        client = aiomqtt.Client("127.0.0.1", mosquitto.port,
+                                protocol=aiomqtt.ProtocolVersion.V5)
+        if name == "lean":
+            lean_receive(client)
+        paho = client._client
+        rows = seen.setdefault(name, [])
+
+        def on_publish(c: Any, u: Any, mid: int, reason: Any, props: Any, *,
+                       inner: Any = paho.on_publish, rows: list[Any] = rows) -> None:
+            rows.append((reason, props))
+            inner(c, u, mid, reason, props)
+
+        paho.on_publish = on_publish
+        clients[name] = client
+    async with clients["plain"], clients["lean"]:
+        for name, client in clients.items():
+            for k in range(2):  # nobody subscribes to this topic: mosquitto answers 0x10
+                await client.publish(f"{prefix}/nobody/{name}/{k}", b"{}", qos=1)
+    for name in ("plain", "lean"):
+        assert [(r.value, str(r)) for r, _ in seen[name]] == [
+            (0x10, "No matching subscribers")] * 2
+        assert all(len(p.json()) == 0 for _, p in seen[name])  # no properties
+    assert seen["lean"][0][0] is seen["lean"][1][0]  # one shared object: the lean path
+    assert seen["plain"][0][0] is not seen["plain"][1][0]

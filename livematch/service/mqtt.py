@@ -542,8 +542,12 @@ def lean_receive(client: aiomqtt.Client) -> None:
     QoS 0 or 1 PUBLISH with a topic name and no properties (a zero property length) is
     decoded here into the same ``MQTTMessage`` (``properties`` None) and handed to
     paho's own delivery (``_handle_on_message``); a PUBACK of two bytes (success, no
-    reason code or properties, MQTT 5.0 section 3.4.2.1) goes to paho's ``on_publish``
-    dispatch with shared success objects. Anything else takes paho's way. Relies on
+    reason code or properties, MQTT 5.0 section 3.4.2.1), or of three or four with a
+    reason code below 0x80 and no properties (mosquitto answers 0x10 "No matching
+    subscribers" to every publish on a topic nobody reads, a quarter of the daemon's
+    outputs in ``bench/load.py``), goes to paho's ``on_publish`` dispatch with one
+    shared ``ReasonCode`` per code and shared empty properties. Anything else (a
+    failure code, properties) takes paho's way. Relies on
     paho-mqtt 2.x internals (``_in_packet``, ``_handle_publish``,
     ``_handle_pubackcomp``, ``_do_on_publish``); the test compares with paho's decoding.
     Call before connecting.
@@ -551,7 +555,7 @@ def lean_receive(client: aiomqtt.Client) -> None:
     paho: Any = client._client
     plain_publish = paho._handle_publish
     plain_puback = paho._handle_pubackcomp
-    success = ReasonCode(PacketTypes.PUBACK)  # "Success"
+    reasons = {0: ReasonCode(PacketTypes.PUBACK)}  # "Success"; others added when seen
     no_properties = Properties(PacketTypes.PUBACK)
 
     def handle_publish() -> Any:
@@ -584,12 +588,24 @@ def lean_receive(client: aiomqtt.Client) -> None:
 
     def handle_puback(cmd: str) -> Any:
         packet = paho._in_packet["packet"]
-        if cmd != "PUBACK" or len(packet) != 2:
+        size = len(packet)
+        if cmd != "PUBACK" or not 2 <= size <= 4:
             return plain_puback(cmd)
+        code = packet[2] if size > 2 else 0
+        reason = reasons.get(code)
+        if reason is None:
+            if code >= 0x80:  # a failure (MQTT 5.0 section 3.4.2.1): paho's way
+                return plain_puback(cmd)
+            try:
+                reason = reasons[code] = ReasonCode(PacketTypes.PUBACK, identifier=code)
+            except (KeyError, ValueError):  # not a PUBACK reason code
+                return plain_puback(cmd)
+        if size == 4 and packet[3] != 0:
+            return plain_puback(cmd)  # properties
         mid = (packet[0] << 8) | packet[1]
         with paho._out_message_mutex:
             if mid in paho._out_messages:
-                return paho._do_on_publish(mid, success, no_properties)
+                return paho._do_on_publish(mid, reason, no_properties)
         return MQTTErrorCode.MQTT_ERR_SUCCESS
 
     paho._handle_publish = handle_publish
