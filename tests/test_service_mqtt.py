@@ -10,7 +10,7 @@ from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 from services import Collector, Mosquitto
 
-from livematch.service.mqtt import cap_inflight, lean_receive
+from livematch.service.mqtt import cap_inflight, lean_receive, publish_now
 
 pytest_plugins = ("fixtures_services",)
 
@@ -99,3 +99,66 @@ async def test_lean_receive_puback_reason_codes_as_paho(mosquitto: Mosquitto,
         assert all(len(p.json()) == 0 for _, p in seen[name])  # no properties
     assert seen["lean"][0][0] is seen["lean"][1][0]  # one shared object: the lean path
     assert seen["plain"][0][0] is not seen["plain"][1][0]
+
+
+class _NoSocket:
+    """Stands in for a connected socket that is never written to (closing does nothing)."""
+
+    def fileno(self) -> int:
+        return -1
+
+    def close(self) -> None:
+        return None
+
+
+async def test_publish_now_packets_equal_paho() -> None:
+    """QoS 1 PUBLISH packets and session entries of publish_now equal paho's own publish
+    (MQTT 5, no properties) across remaining-length sizes (1..4 bytes, MQTT 5.0
+    section 1.5.5), retain, and non-ASCII topics."""
+    rows: dict[str, list[tuple[int, bytes, int, int]]] = {"lean": [], "plain": []}
+    clients = {}
+    for name in rows:
+        client = aiomqtt.Client("127.0.0.1", 1, protocol=aiomqtt.ProtocolVersion.V5)
+        paho: Any = client._client
+        paho._sock = _NoSocket()  # "connected": packets are captured below, never written
+        paho._max_inflight_messages = 0  # no in-flight bound
+        paho._packet_queue = (lambda command, packet, mid, qos, info=None, *, into=rows[name]:
+                              into.append((command, bytes(packet), mid, qos)))
+        clients[name] = client
+    cases = [("a", b"", False), ("livematch/match/bus-17", b'{"x":1}', True),
+             ("fleet/\u00e9t\u00e9/position", b"x" * 100, False)]
+    cases += [("t", b"y" * n, False) for n in (119, 120, 121, 16_375, 16_376, 2_097_140,
+                                                2_097_145)]
+    for topic, payload, retain in cases:
+        publish_now(clients["lean"], topic, payload, qos=1, retain=retain)
+        clients["plain"]._client.publish(topic, payload, 1, retain)
+    assert len(rows["lean"]) == len(cases)
+    assert rows["lean"] == rows["plain"]
+    lean: Any = clients["lean"]._client
+    plain: Any = clients["plain"]._client
+    assert lean._inflight_messages == plain._inflight_messages == len(cases)
+    for mid, want in plain._out_messages.items():
+        got = lean._out_messages[mid]
+        assert [getattr(got, k) for k in ("mid", "topic", "payload", "qos", "retain", "dup",
+                                          "state", "properties")] == \
+            [getattr(want, k) for k in ("mid", "topic", "payload", "qos", "retain", "dup",
+                                        "state", "properties")]
+        assert got.info.is_published() is False
+        got.info._set_as_published()  # what paho calls when the PUBACK is read
+        assert got.info.is_published() is True
+
+
+async def test_publish_now_round_trip_through_broker(mosquitto: Mosquitto, prefix: str) -> None:
+    """Messages published with publish_now arrive unchanged (topic, payload, retain) and
+    every one is acknowledged (is_published), up to a 300 kB payload."""
+    client = aiomqtt.Client("127.0.0.1", mosquitto.port, protocol=aiomqtt.ProtocolVersion.V5)
+    lean_receive(client)
+    sent = [(f"{prefix}/rt/{k}", bytes([k % 256]) * size)
+            for k, size in enumerate((0, 1, 200, 20_000, 300_000))]
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/rt/#") as col, client:
+        infos = [publish_now(client, t, p, qos=1, retain=False) for t, p in sent]
+        async with asyncio.timeout(10):
+            while len(col.messages) < len(sent) or not all(i.is_published() for i in infos):
+                await asyncio.sleep(0.01)
+    got = {topic: payload for topic, payload, _retain in col.messages}
+    assert got == dict(sent)

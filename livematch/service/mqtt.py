@@ -38,7 +38,7 @@ from typing import Any, TypeVar
 from urllib.parse import urlsplit
 
 import aiomqtt
-from paho.mqtt.client import MQTTMessage
+from paho.mqtt.client import MQTTMessage, mqtt_ms_wait_for_puback
 from paho.mqtt.enums import MQTTErrorCode
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
@@ -518,17 +518,113 @@ def coalesce(paho: Any) -> int:
 
 
 def publish_now(client: aiomqtt.Client, topic: str, payload: bytes, *, qos: int,
-                retain: bool) -> object:
-    """Hand one message to paho now; return its ``MQTTMessageInfo`` (``is_published()``).
+                retain: bool) -> Any:
+    """Hand one message to paho now; return its message info (``is_published()``).
 
     aiomqtt's ``publish`` is a coroutine that needs a task per message to keep several in
     flight, plus an event and a wait per message; the daemon follows its window by
     polling the infos in order instead, woken by :func:`on_acknowledged`. Raises
     :class:`aiomqtt.MqttCodeError` when paho refuses the message, as aiomqtt does.
+
+    The daemon's usual case, a QoS 1 message with a topic name, bytes payload and no
+    properties on a connected MQTT 5 session with room in the in-flight window, is
+    queued by :func:`_publish_lean` (the same packet and the same entry in paho's
+    session state, without paho's per-message lock and logging); anything else goes
+    through paho's ``publish``.
     """
-    info = client._client.publish(topic, payload, qos, retain)
+    paho = client._client
+    info: Any = _publish_lean(paho, topic, payload, retain) if qos == 1 else None
+    if info is None:
+        info = paho.publish(topic, payload, qos, retain)
     if info.rc != 0:  # paho's MQTT_ERR_SUCCESS
         raise aiomqtt.MqttCodeError(info.rc, "Could not publish message")
+    return info
+
+
+class _Sent:
+    """The info of a message queued by :func:`_publish_lean`.
+
+    It has what paho and the daemon use of ``MQTTMessageInfo``: ``mid``, ``rc``,
+    ``is_published()`` and paho's ``_set_as_published()`` (called when the PUBACK is
+    read), without the ``threading.Condition`` paho builds for every message (about a
+    tenth of a publish): everything here runs in the event loop's thread.
+    """
+
+    __slots__ = ("_published", "mid", "rc")
+
+    def __init__(self, mid: int) -> None:
+        self.mid = mid
+        self.rc = MQTTErrorCode.MQTT_ERR_SUCCESS
+        self._published = False
+
+    def _set_as_published(self) -> None:
+        self._published = True
+
+    def is_published(self) -> bool:
+        return self._published
+
+
+_PUBLISH_QOS1 = _PUBLISH | 0x02  # first byte of a QoS 1 PUBLISH (MQTT 5.0 section 3.3.1)
+
+
+def _publish_lean(paho: Any, topic: str, payload: bytes, retain: bool) -> _Sent | None:
+    """Queue a QoS 1 PUBLISH as paho's ``publish`` would; None: leave it to paho.
+
+    The packet is MQTT 5.0 section 3.3: the first byte (QoS 1, RETAIN), the remaining
+    length (variable byte integer, section 1.5.5), the topic name (two-byte length and
+    UTF-8), the packet identifier, a property length of 0, the payload; the message is
+    entered in paho's ``_out_messages`` waiting for its PUBACK and counted in flight,
+    as paho does, then queued with paho's ``_packet_queue`` (which arranges the write).
+    None (paho decides, as before) when the session is not MQTT 5, not connected, has
+    no room in flight or a queue limit, or the topic or payload is unusual (wildcards,
+    empty, not bytes, too long). Relies on paho-mqtt 2.x internals; the test compares
+    its packets with paho's own.
+
+    Example (a degenerate case: not connected, so paho decides)::
+
+        >>> import paho.mqtt.client as paho_client
+        >>> c = paho_client.Client(paho_client.CallbackAPIVersion.VERSION2,
+        ...                        protocol=paho_client.MQTTv5)
+        >>> _publish_lean(c, "a/b", b"{}", False) is None
+        True
+    """
+    if (paho._sock is None or paho._protocol != 5 or type(payload) is not bytes
+            or paho._max_queued_messages > 0
+            or 0 < paho._max_inflight_messages <= paho._inflight_messages):
+        return None
+    name = topic.encode("utf-8")
+    size = len(name) + len(payload) + 5  # topic length 2, packet id 2, property length 1
+    if (not name or len(name) > 65_535 or size > 268_435_455
+            or b"+" in name or b"#" in name or b"\x00" in name):
+        return None
+    mid = paho._mid_generate()
+    if mid in paho._out_messages:
+        return None  # paho reports it (MQTT_ERR_QUEUE_SIZE)
+    length = bytearray()
+    while True:  # variable byte integer: 7 bits a byte, least significant first
+        digit, size = size & 0x7F, size >> 7
+        length.append(digit | 0x80 if size else digit)
+        if not size:
+            break
+    packet = b"".join((bytes((_PUBLISH_QOS1 | retain,)), length,
+                       len(name).to_bytes(2, "big"), name, mid.to_bytes(2, "big"), b"\x00",
+                       payload))
+    info = _Sent(mid)
+    message = MQTTMessage.__new__(MQTTMessage)  # the fields paho's publish sets
+    message.timestamp = time.monotonic()
+    message.state = mqtt_ms_wait_for_puback
+    message.dup = False
+    message.mid = mid
+    message._topic = name
+    message.payload = payload
+    message.qos = 1
+    message.retain = retain
+    message.info = info  # type: ignore[assignment]  # duck-typed MQTTMessageInfo
+    message.properties = None
+    with paho._out_message_mutex:
+        paho._out_messages[mid] = message
+        paho._inflight_messages += 1
+    paho._packet_queue(_PUBLISH, packet, mid, 1, info)
     return info
 
 
@@ -658,9 +754,23 @@ def on_acknowledged(client: aiomqtt.Client, callback: Callable[[], None]) -> Non
     paho.on_publish = on_publish
 
 
+_PUBACK = 0x40
+
+
 def ack(client: aiomqtt.Client, message: aiomqtt.Message) -> None:
-    """PUBACK ``message`` now (QoS 0 messages need none)."""
-    if message.qos > 0:
+    """PUBACK ``message`` now (QoS 0 messages need none).
+
+    A QoS 1 message's PUBACK (MQTT 5.0 section 3.4: packet type, remaining length 2, the
+    packet identifier; success needs no reason code) is queued with paho's
+    ``_packet_queue``, as paho's ``ack`` does but without its branches and logging;
+    QoS 2 takes paho's way.
+    """
+    if message.qos == 1:
+        paho = client._client
+        if paho._manual_ack:
+            mid = message.mid
+            paho._packet_queue(_PUBACK, bytes((_PUBACK, 2, mid >> 8, mid & 0xFF)), mid, 1)
+    elif message.qos > 1:
         client._client.ack(message.mid, message.qos)
 
 
