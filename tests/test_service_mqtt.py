@@ -18,13 +18,15 @@ pytest_plugins = ("fixtures_services",)
 async def test_cap_inflight_follows_broker_receive_maximum(mosquitto: Mosquitto,
                                                            prefix: str) -> None:
     """The in-flight bound is min(asked, the broker's Receive Maximum); 150 QoS 1
-    publishes at once then all arrive over one connection."""
+    publishes at once then all arrive over one connection (PUBACKs read by lean_receive,
+    which leaves the sending of queued ones to paho)."""
     # The test broker's config sets max_inflight_messages 100, which mosquitto sends as
     # its Receive Maximum (MQTT 5.0 section 3.2.2.3.3).
     for asked, want in ((500, 100), (50, 50)):
         client = aiomqtt.Client("127.0.0.1", mosquitto.port,
                                 protocol=aiomqtt.ProtocolVersion.V5)
         cap_inflight(client, asked)
+        lean_receive(client)
         assert client._client._max_inflight_messages == min(asked, 20)  # before CONNACK
         async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/cap/#") as col, client:
             assert client._client._max_inflight_messages == want
@@ -73,6 +75,7 @@ async def test_lean_receive_puback_reason_codes_as_paho(mosquitto: Mosquitto,
     """A PUBACK "No matching subscribers" (0x10, MQTT 5.0 section 3.4.2.1) completes the
     publish with the same reason code as paho's decoding; read lean, without new objects."""
     seen: dict[str, list[Any]] = {}
+    scans: dict[str, list[int]] = {}
     clients = {}
     for name in ("plain", "lean"):
         client = aiomqtt.Client("127.0.0.1", mosquitto.port,
@@ -88,6 +91,9 @@ async def test_lean_receive_puback_reason_codes_as_paho(mosquitto: Mosquitto,
             inner(c, u, mid, reason, props)
 
         paho.on_publish = on_publish
+        scans[name] = []  # paho's scan for queued messages after a PUBACK
+        paho._update_inflight = (lambda inner=paho._update_inflight, into=scans[name]:
+                                 into.append(1) or inner())
         clients[name] = client
     async with clients["plain"], clients["lean"]:
         for name, client in clients.items():
@@ -99,6 +105,7 @@ async def test_lean_receive_puback_reason_codes_as_paho(mosquitto: Mosquitto,
         assert all(len(p.json()) == 0 for _, p in seen[name])  # no properties
     assert seen["lean"][0][0] is seen["lean"][1][0]  # one shared object: the lean path
     assert seen["plain"][0][0] is not seen["plain"][1][0]
+    assert (len(scans["plain"]), len(scans["lean"])) == (2, 0)  # nothing queued: no scan
 
 
 class _NoSocket:

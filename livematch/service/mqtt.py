@@ -38,8 +38,13 @@ from typing import Any, TypeVar
 from urllib.parse import urlsplit
 
 import aiomqtt
-from paho.mqtt.client import MQTTMessage, mqtt_ms_wait_for_puback
-from paho.mqtt.enums import MQTTErrorCode
+from paho.mqtt.client import (
+    MQTT_LOG_ERR,
+    MQTTMessage,
+    mqtt_ms_invalid,
+    mqtt_ms_wait_for_puback,
+)
+from paho.mqtt.enums import CallbackAPIVersion, MQTTErrorCode
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 from paho.mqtt.reasoncodes import ReasonCode
@@ -637,7 +642,8 @@ def lean_receive(client: aiomqtt.Client) -> None:
     for every PUBACK, though nothing here reads them (the intake queue drops them). A
     QoS 0 or 1 PUBLISH with a topic name and no properties (a zero property length) is
     decoded here into the same ``MQTTMessage`` (``properties`` None) and handed to
-    paho's own delivery (``_handle_on_message``); a PUBACK of two bytes (success, no
+    the ``on_message`` callback as paho's ``_handle_on_message`` would (paho's own
+    dispatch when topic callbacks are registered); a PUBACK of two bytes (success, no
     reason code or properties, MQTT 5.0 section 3.4.2.1), or of three or four with a
     reason code below 0x80 and no properties (mosquitto answers 0x10 "No matching
     subscribers" to every publish on a topic nobody reads, a quarter of the daemon's
@@ -670,14 +676,30 @@ def lean_receive(client: aiomqtt.Client) -> None:
             start += 2
         if start == 2 or size <= start or packet[start] != 0:
             return plain_publish()  # no topic name (an alias), or properties
-        message = MQTTMessage(mid=mid, topic=bytes(packet[2:start - (2 if qos else 0)]))
+        # MQTTMessage's own __init__ also builds an MQTTMessageInfo (with a lock) that
+        # nothing reads for a received message: set the fields it would set instead.
+        message = MQTTMessage.__new__(MQTTMessage)
+        message.mid = mid
+        message._topic = bytes(packet[2:start - (2 if qos else 0)])
+        message.state = mqtt_ms_invalid
+        message.info = None  # type: ignore[assignment]  # only read for sent messages
         message.dup = bool(header & 0x08)
         message.qos = qos
         message.retain = bool(header & 0x01)
         message.properties = None
         message.payload = bytes(packet[start + 1:])
         message.timestamp = time.monotonic()
-        paho._handle_on_message(message)
+        on_message = paho.on_message
+        if paho._on_message_filtered._root._children or on_message is None:
+            paho._handle_on_message(message)  # topic callbacks: paho dispatches
+        else:  # what paho's dispatch comes to without topic callbacks
+            with paho._in_callback_mutex:
+                try:
+                    on_message(paho, paho._userdata, message)
+                except Exception as err:
+                    paho._easy_log(MQTT_LOG_ERR, "Caught exception in on_message: %s", err)
+                    if not paho.suppress_exceptions:
+                        raise
         if qos and not paho._manual_ack:
             return paho._send_puback(mid)
         return MQTTErrorCode.MQTT_ERR_SUCCESS
@@ -700,8 +722,28 @@ def lean_receive(client: aiomqtt.Client) -> None:
             return plain_puback(cmd)  # properties
         mid = (packet[0] << 8) | packet[1]
         with paho._out_message_mutex:
-            if mid in paho._out_messages:
+            out = paho._out_messages
+            if mid not in out:
+                return MQTTErrorCode.MQTT_ERR_SUCCESS
+            if (len(out) > paho._inflight_messages
+                    or paho._callback_api_version is not CallbackAPIVersion.VERSION2):
+                # messages wait for room in flight: paho sends the next ones
                 return paho._do_on_publish(mid, reason, no_properties)
+            # paho's _do_on_publish, less its scan of every message for queued ones to
+            # send (none here: every message held is in flight)
+            on_publish = paho.on_publish
+            if on_publish is not None:
+                with paho._in_callback_mutex:
+                    try:
+                        on_publish(paho, paho._userdata, mid, reason, no_properties)
+                    except Exception as err:
+                        paho._easy_log(MQTT_LOG_ERR, "Caught exception in on_publish: %s", err)
+                        if not paho.suppress_exceptions:
+                            raise
+            message = out.pop(mid)
+            message.info._set_as_published()
+            if message.qos > 0:
+                paho._inflight_messages -= 1
         return MQTTErrorCode.MQTT_ERR_SUCCESS
 
     paho._handle_publish = handle_publish
