@@ -76,6 +76,7 @@ from livematch.service.mqtt import (
     IntakeQueue,
     ack,
     backoff_delays,
+    buffered_reads,
     cap_inflight,
     drain,
     lean_receive,
@@ -1281,6 +1282,7 @@ class Daemon:
         write_soon(client)
         cap_inflight(client, _PUBLISH_WINDOW)
         lean_receive(client)
+        buffered_reads(client)
         cancelled = False
         try:
             async with client:

@@ -132,8 +132,10 @@ def drain(client: aiomqtt.Client, max_packets: int, budget_s: float = math.inf) 
             sock = paho.socket()
             if sock is None:
                 break
-            pending = getattr(sock, "pending", None)
-            if not (pending is not None and pending() > 0):
+            pending = getattr(sock, "pending", None)  # a TLS socket's decrypted bytes
+            leftover = getattr(sock, "leftover", None)  # buffered_reads' bytes
+            if not ((pending is not None and pending() > 0)
+                    or (leftover is not None and leftover() > 0)):
                 ready, _, _ = select.select([sock], [], [], 0)
                 if not ready:
                     break
@@ -146,6 +148,116 @@ def drain(client: aiomqtt.Client, max_packets: int, budget_s: float = math.inf) 
             paho.loop_read()
             read += max(1, per_call)
     return read
+
+
+# Bytes asked of the kernel per read of the broker's socket (buffered_reads).
+_READ_SIZE = 65_536
+
+
+class _BufferedSocket:
+    """paho's socket, read in pieces of up to ``_READ_SIZE`` bytes (see buffered_reads).
+
+    ``recv(n)`` returns up to ``n`` bytes of what an earlier read left over, else reads
+    up to ``max(n, _READ_SIZE)`` from the socket and keeps the rest; an empty read
+    (the broker closed) or an error (``BlockingIOError``, TLS "want read") is passed
+    through as the socket gave it. Everything else is the socket's own (``send``,
+    ``fileno``, ``close``, ``pending`` of a TLS socket...). ``on_leftover`` is called
+    whenever a ``recv`` leaves bytes behind, which the event loop would not report
+    (they are no longer in the kernel).
+
+    Example (a degenerate "socket" that has six bytes, then nothing)::
+
+        >>> class Six:
+        ...     data = [b"abcdef"]
+        ...     def recv(self, n):
+        ...         if not self.data:
+        ...             raise BlockingIOError
+        ...         return self.data.pop()
+        >>> s = _BufferedSocket(Six(), lambda: None)
+        >>> s.recv(1), s.recv(2), s.leftover(), s.recv(10)
+        (b'a', b'bc', 3, b'def')
+    """
+
+    __slots__ = ("_buf", "_on_leftover", "_pos", "_sock", "reads")
+
+    def __init__(self, sock: Any, on_leftover: Callable[[], None]) -> None:
+        self._sock = sock
+        self._on_leftover = on_leftover
+        self._buf = b""
+        self._pos = 0
+        self.reads = 0  # recv calls made on the socket itself
+
+    def recv(self, bufsize: int) -> bytes:
+        buf, pos = self._buf, self._pos
+        if pos < len(buf):
+            end = min(pos + bufsize, len(buf))
+            self._pos = end
+            if end < len(buf):
+                self._on_leftover()
+            return buf[pos:end]
+        self.reads += 1
+        data: bytes = self._sock.recv(max(bufsize, _READ_SIZE))
+        if len(data) <= bufsize:
+            return data
+        self._buf, self._pos = data, bufsize
+        self._on_leftover()
+        return data[:bufsize]
+
+    def leftover(self) -> int:
+        """Bytes read from the socket and not yet taken by ``recv``."""
+        return len(self._buf) - self._pos
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._sock, name)
+
+
+def buffered_reads(client: aiomqtt.Client) -> None:
+    """Read the broker's socket in large pieces, not one system call per packet part.
+
+    paho reads every packet with at least three ``recv`` calls (the first byte, the
+    remaining length a byte at a time, then the rest), each a system call: about seven
+    per matched fix (its PUBLISH and one or two PUBACKs; ``bench/load.py --cprofile``).
+    Here the socket paho opens is wrapped in a :class:`_BufferedSocket` that reads up
+    to 64 KiB at a time and hands paho the pieces it asks for. Bytes left in that buffer
+    are not seen by the event loop's readiness check, so whenever some are left a
+    callback is scheduled in the event loop that lets paho read on (``loop_read``: up
+    to one packet per message in flight, as aiomqtt's reader does per readable event),
+    again while bytes are left, one turn of the loop at a time. A read error there ends
+    the connection as aiomqtt's reader does. Call before connecting, in the event loop.
+    """
+    paho: Any = client._client
+    loop = asyncio.get_running_loop()
+    loop_thread = threading.get_ident()
+    inner_open = paho.on_socket_open
+    state = {"scheduled": False}
+
+    def read_on() -> None:
+        state["scheduled"] = False
+        sock = paho._sock
+        if not isinstance(sock, _BufferedSocket) or not sock.leftover():
+            return
+        try:
+            paho.loop_read()
+        except Exception as exc:  # as aiomqtt's reader: the connection broke
+            disconnected = getattr(client, "_disconnected", None)
+            if isinstance(disconnected, asyncio.Future) and not disconnected.done():
+                disconnected.set_exception(exc)
+
+    def on_leftover() -> None:
+        if not state["scheduled"]:
+            state["scheduled"] = True
+            if threading.get_ident() == loop_thread:
+                loop.call_soon(read_on)
+            else:
+                loop.call_soon_threadsafe(read_on)
+
+    def on_socket_open(c: Any, userdata: Any, sock: Any) -> None:
+        wrapped = _BufferedSocket(sock, on_leftover)
+        paho._sock = wrapped
+        if inner_open is not None:
+            inner_open(c, userdata, wrapped)
+
+    paho.on_socket_open = on_socket_open
 
 
 #: Intake key of messages that cannot be a position fix (shed before any fix).
