@@ -45,7 +45,7 @@ async def test_run_answers_healthz_while_compiling_then_ready(
     proc = start(cfg, tmp_path / "daemon.log")
     seen: list[tuple[int, str, int, str]] = []  # healthz and readyz, polled together
     try:
-        deadline = time.monotonic() + 120
+        deadline = time.monotonic() + 600  # a cold numba cache: a compile of 75-120 s
         while time.monotonic() < deadline:
             assert proc.poll() is None, f"daemon exited with {proc.returncode}"
             ready = await probe(port, "/readyz")
