@@ -105,6 +105,7 @@ START_TIMEOUT_S = 600.0  # a worker's start until /readyz answers 200 (a cold co
 STOP_TIMEOUT_S = 60.0  # a stopped process's exit (a worker's final checkpoints), then SIGKILL
 WARM_FIXES = 3  # outputs each warm-up vehicle must have had
 CPROFILE_TO: Path | None = None  # --cprofile: run every livematch worker under cProfile
+SPY_TO: Path | None = None  # --py-spy-to: sample the first livematch worker with py-spy
 GRACE_S = 5.0  # outputs arriving later than the step's end + this are missing
 MAX_P99_MS = 1000.0
 MAX_GROWTH_MS = 100.0
@@ -662,11 +663,14 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                 raise RuntimeError("a generator did not start")
         sub.got.clear()
         spy = None
-        if py_spy and probe_to is not None:
+        spy_out = (probe_to / "py-spy.txt" if py_spy and probe_to is not None else
+                   SPY_TO / f"{system}.{rate}.{time.time():.0f}.txt"
+                   if SPY_TO is not None and system.startswith("livematch") else None)
+        if spy_out is not None:
             spy = subprocess.Popen([str(Path(sys.executable).parent / "py-spy"), "record",
                                     "--pid", str(sut[0].pid), "--rate", "200", "--format",
                                     "raw", "--duration", str(seconds + 1), "--output",
-                                    str(probe_to / "py-spy.txt")],
+                                    str(spy_out)],
                                    stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
         scraped = metrics_ports if count_publishes else []
         published0 = [scrape_published(mp) for mp in scraped]
@@ -1275,6 +1279,11 @@ def main(argv: list[str] | None = None) -> int:
                          "writing <system>.<rate>.w<k>.<time>.prof into this folder (call "
                          "counts per fix; the profiler's own cost makes the CPU figures "
                          "unusable)")
+    ap.add_argument("--py-spy-to", default="",
+                    help="with --cpu-per-fix: sample the (first) livematch worker of each "
+                         "step with py-spy at 200 Hz, raw collapsed stacks into this folder "
+                         "as <system>.<rate>.<time>.txt (its CPU figures then include the "
+                         "sampling's own cost)")
     ap.add_argument("--no-probe", action="store_true",
                     help="with --cpu-per-fix: run livematch-1 without the probe (its "
                          "timers cost CPU the other systems do not pay; no pipeline split)")
@@ -1317,10 +1326,13 @@ def main(argv: list[str] | None = None) -> int:
                 args.inflight, args.py_spy, out, name)
         return 0
     if args.cpu_per_fix:
-        global CPROFILE_TO
+        global CPROFILE_TO, SPY_TO
         if args.cprofile:
             CPROFILE_TO = Path(args.cprofile)
             CPROFILE_TO.mkdir(parents=True, exist_ok=True)
+        if args.py_spy_to:
+            SPY_TO = Path(args.py_spy_to)
+            SPY_TO.mkdir(parents=True, exist_ok=True)
         out = Path(args.out)
         out.mkdir(parents=True, exist_ok=True)
         systems = (args.systems.split(",") if "--systems" in argv

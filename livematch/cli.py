@@ -20,6 +20,7 @@ COMMAND_MODULES = (
     "livematch.commands.network",
     "livematch.commands.replay",
     "livematch.commands.run",
+    "livematch.commands.warm",
     "livematch.commands.record",
     "livematch.commands.config",
     "livematch.commands.demo",

@@ -4,19 +4,38 @@ Settings come from ``--config FILE`` (TOML), then ``LIVEMATCH__SECTION__KEY``
 environment variables, then the flags below for the common ones (see
 :mod:`livematch.config`). SIGTERM or SIGINT stops it gracefully; the exit code is 0
 after a clean shutdown and 2 for a bad configuration or network.
+
+Start-up, in this order, so that an orchestrator's probes are answered throughout:
+
+1. the health port (``metrics.listen``) opens: ``/healthz`` answers 200 from here on,
+   ``/readyz`` 503 ``not ready: compiling``;
+2. in a thread of its own, the matcher's kernels are compiled or loaded from numba's
+   disk cache (a cold cache took 36 s of CPU, 74 s wall on 2 busy cores; ``livematch
+   warm`` fills the cache beforehand), then the road network, routes and fences are
+   read (``/readyz``: ``not ready: network``);
+3. the daemon connects to the store and the broker; ``/readyz`` says what is missing
+   (``broker``, ``store``, ``restore``) until it answers 200.
+
+A stop requested during 1-2 ends the process at once (exit code 0): nothing is held yet.
 """
 
 from __future__ import annotations
 
 import argparse
 import asyncio
+import contextlib
 import logging
 import signal
+import threading
+import time
+from collections.abc import Callable
 from typing import TYPE_CHECKING, Any
 
-from livematch.config import DaemonConfig, load_config, redact_url
+from livematch.config import DaemonConfig, load_config, parse_hostport, redact_url
 from livematch.errors import BadConfigError
+from livematch.service.http import HealthServer
 from livematch.service.logs import fields, setup_logging
+from livematch.service.metrics import Metrics
 
 log = logging.getLogger("livematch.run")
 
@@ -65,9 +84,8 @@ def _run(args: argparse.Namespace) -> int:
     config = load_config(args.config, overrides=overrides)
     setup_logging(config.log.level)
     tap = config.record.tap()
-    daemon = build_daemon(config, tap)
     try:
-        asyncio.run(_serve(daemon))
+        asyncio.run(_serve(config, tap))
     finally:
         if tap is not None:
             tap.close()
@@ -80,16 +98,36 @@ def build_daemon(config: DaemonConfig, tap: RecordingTap | None = None) -> Any:
     With a recording ``tap`` every message handed to the pipeline, rejects included, is
     also written to a replay log (``--record`` / ``[record]``); the caller closes it.
     """
+    from livematch.service.daemon import Daemon
+
+    return Daemon(config, build_pipeline(config, tap))
+
+
+def build_pipeline(config: DaemonConfig, tap: RecordingTap | None = None, *,
+                   stage: Callable[[str], None] | None = None) -> Any:
+    """Compile (or load) the kernels, open the network, build the daemon's pipeline.
+
+    ``stage`` is told each step as it begins (``compiling``, then ``network``), for
+    ``/readyz``; it runs in the caller's thread. Raises :class:`BadConfigError` when
+    ``config`` names no network, and what :func:`open_network` raises for a bad one.
+    """
     from livematch.lab.record import RecordingPipeline
     from livematch.mapdata.fences import read_fences
     from livematch.mapdata.netfile import open_network
     from livematch.mapdata.routes import load_routes
-    from livematch.pipeline import Pipeline
-    from livematch.service.daemon import Daemon
+    from livematch.pipeline import Pipeline, prepare_kernels
 
     if not config.inputs.network:
         raise BadConfigError(f"{config.source}: no road network: give --network PATH or "
                              "inputs.network in the configuration")
+    if stage is not None:
+        stage("compiling")
+    started, cpu = time.monotonic(), time.thread_time()
+    prepare_kernels()  # what Pipeline would do first; timed and logged on its own here
+    log.info("kernels ready", extra=fields(seconds=round(time.monotonic() - started, 1),
+                                           cpu_s=round(time.thread_time() - cpu, 1)))
+    if stage is not None:
+        stage("network")
     network = open_network(config.inputs.network)
     routes = load_routes(config.inputs.routes, network) if config.inputs.routes else None
     fences = (read_fences(config.inputs.fences, network.projection)
@@ -102,15 +140,107 @@ def build_daemon(config: DaemonConfig, tap: RecordingTap | None = None) -> Any:
                              control_topic=config.mqtt.control_topic)
     if tap is not None:
         pipeline = RecordingPipeline(pipeline, tap)
-    return Daemon(config, pipeline)
+    return pipeline
 
 
-async def _serve(daemon: Any) -> None:
+class _Start:
+    """What ``/readyz`` and ``/metrics`` say before the daemon exists (see the module).
+
+    ``stage`` is the start step under way (set from the build thread: one attribute
+    written there, read in the event loop); each step's wall time goes to
+    ``livematch_start_seconds{stage}`` as it ends.
+    """
+
+    def __init__(self, metrics: Metrics) -> None:
+        self.metrics = metrics
+        self.stage = "compiling"
+        self._since = time.monotonic()
+
+    def enter(self, stage: str) -> None:
+        now = time.monotonic()
+        if stage != self.stage:
+            self.metrics.start_seconds.labels(stage=self.stage).set(round(now - self._since, 3))
+            self.stage, self._since = stage, now
+
+    def readiness(self) -> list[str]:
+        return [self.stage]
+
+
+async def _serve(config: DaemonConfig, tap: RecordingTap | None) -> None:
+    """Open the health port, build the pipeline in a thread, then run the daemon."""
+    from livematch.service.daemon import Daemon
+
     loop = asyncio.get_running_loop()
+    stop = loop.create_future()
+
+    def request_stop() -> None:
+        if not stop.done():
+            stop.set_result(None)
+
+    for sig in (signal.SIGTERM, signal.SIGINT):
+        loop.add_signal_handler(sig, request_stop)
+    metrics = Metrics()
+    start = _Start(metrics)
+    http = None
+    if config.metrics.listen:
+        host, port = parse_hostport(config.metrics.listen)
+        http = HealthServer(host, port, render_metrics=metrics.render,
+                            readiness=start.readiness)
+        await http.start()
+        log.info("http listening", extra=fields(address=f"{host}:{http.port}"))
+    try:
+        built = await _in_thread(lambda: build_pipeline(config, tap, stage=start.enter), stop)
+    except BaseException:
+        if http is not None:
+            await http.close()
+        raise
+    if built is None:  # stopped while starting: nothing to save or release
+        log.info("stopped while starting", extra=fields(stage=start.stage))
+        if http is not None:
+            await http.close()
+        return
+    start.enter("connecting")
+    daemon = Daemon(config, built, metrics=metrics, http=http)
     for sig in (signal.SIGTERM, signal.SIGINT):
         loop.add_signal_handler(sig, daemon.request_stop)
-    cfg = daemon.config
-    log.info("starting", extra=fields(config=cfg.source, broker=redact_url(cfg.mqtt.url),
-                                      store=redact_url(cfg.store.url), topic=cfg.mqtt.topic,
-                                      group=cfg.group.name))
+    if stop.done():
+        daemon.request_stop()
+    log.info("starting", extra=fields(config=config.source, broker=redact_url(config.mqtt.url),
+                                      store=redact_url(config.store.url),
+                                      topic=config.mqtt.topic, group=config.group.name))
     await daemon.run()
+
+
+async def _in_thread(work: Callable[[], Any], stop: asyncio.Future[None]) -> Any:
+    """``work()`` in a daemon thread; its result, or None when ``stop`` comes first.
+
+    A daemon thread rather than ``asyncio.to_thread``: compiling cannot be interrupted,
+    and a stop during it must not wait for it (the executor's threads are joined at
+    exit; a daemon thread is not). numba writes each cache file under a temporary name
+    and renames it, so a compile abandoned this way leaves no broken cache entry.
+    Exceptions of ``work`` are raised here.
+    """
+    loop = asyncio.get_running_loop()
+    done: asyncio.Future[Any] = loop.create_future()
+
+    def settle(result: Any, error: BaseException | None) -> None:
+        if done.done():
+            return
+        if error is not None:
+            done.set_exception(error)
+        else:
+            done.set_result(result)
+
+    def run() -> None:
+        try:
+            result, error = work(), None
+        except BaseException as exc:  # handed to the event loop, raised there
+            result, error = None, exc
+        with contextlib.suppress(RuntimeError):  # the loop has closed: nobody waits
+            loop.call_soon_threadsafe(settle, result, error)
+
+    threading.Thread(target=run, name="livematch-start", daemon=True).start()
+    await asyncio.wait({done, stop}, return_when=asyncio.FIRST_COMPLETED)
+    if not done.done():
+        return None
+    return done.result()

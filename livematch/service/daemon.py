@@ -53,7 +53,7 @@ import time
 import zlib
 from collections import Counter, deque
 from collections.abc import Coroutine, Mapping
-from dataclasses import dataclass, replace
+from dataclasses import replace
 from typing import Any, Protocol
 
 import aiomqtt
@@ -76,6 +76,7 @@ from livematch.service.mqtt import (
     IntakeQueue,
     ack,
     backoff_delays,
+    buffered_reads,
     cap_inflight,
     drain,
     lean_receive,
@@ -242,15 +243,22 @@ def _plain_floats(value: Any) -> bool:
     return True
 
 
-@dataclass(frozen=True, slots=True)
 class _Pending:
-    """One output waiting for the broker."""
+    """One output waiting for the broker.
 
-    topic: str
-    payload: bytes
-    kind: str
-    retain: bool
-    fix_time: float | None
+    A plain slotted class: a frozen dataclass's ``__init__`` sets each field through
+    ``object.__setattr__``, and one is built per output.
+    """
+
+    __slots__ = ("fix_time", "kind", "payload", "retain", "topic")
+
+    def __init__(self, topic: str, payload: bytes, kind: str, retain: bool,
+                 fix_time: float | None) -> None:
+        self.topic = topic
+        self.payload = payload
+        self.kind = kind
+        self.retain = retain
+        self.fix_time = fix_time
 
 
 class Daemon:
@@ -262,6 +270,10 @@ class Daemon:
             drives, so both produce the same records for the same messages).
         store: the state store; default from ``config.store.url``.
         metrics: the metrics; default a fresh registry of its own.
+        http: a health server already listening (``livematch run`` starts one before
+            it builds the pipeline, so ``/healthz`` answers while the kernels compile);
+            the daemon answers on it from :meth:`run` on and closes it at the end.
+            None: the daemon opens ``metrics.listen`` itself (if set).
 
     Example (what ``livematch run`` does)::
 
@@ -276,7 +288,8 @@ class Daemon:
     """
 
     def __init__(self, config: DaemonConfig, pipeline: PipelineLike, *,
-                 store: StateStore | None = None, metrics: Metrics | None = None) -> None:
+                 store: StateStore | None = None, metrics: Metrics | None = None,
+                 http: HealthServer | None = None) -> None:
         self.config = config
         self.pipeline = pipeline
         sc = config.store
@@ -285,7 +298,7 @@ class Daemon:
                                          username=sc.username or None,
                                          ca_file=sc.ca_file or None)
         self.metrics = metrics or Metrics()
-        self.http: HealthServer | None = None
+        self.http: HealthServer | None = http
         self.broker_connected = False
         self.store_ok = False
         self.restored = False
@@ -309,6 +322,12 @@ class Daemon:
         self._latest_dirty: set[str] = set()
         self._last_published: dict[str, tuple[Any, float]] = {}
         self._seen_counters: Counter[str] = Counter()
+        # Counted here per message and output, carried into the metrics when they are
+        # rendered (_sync_counters): a prometheus_client increment takes a lock.
+        self._received = 0
+        self._published_n: Counter[str] = Counter()  # by kind
+        self._eps_n: Counter[Any] = Counter()  # assignments by eps_m value
+        self._synced: Counter[Any] = Counter()  # what _sync_counters has carried over
         self._newest_fix_t: float | None = None
         # Worker group (None: a standalone daemon, as without [group]).
         group = config.group
@@ -405,7 +424,9 @@ class Daemon:
 
     async def _run(self) -> None:
         listen = self.config.metrics.listen
-        if listen:
+        if self.http is not None:  # started before the pipeline was built: take it over
+            self.http.serve(render_metrics=self._render_metrics, readiness=self.readiness)
+        elif listen:
             host, port = parse_hostport(listen)
             self.http = HealthServer(host, port, render_metrics=self._render_metrics,
                                      readiness=self.readiness)
@@ -1261,6 +1282,7 @@ class Daemon:
         write_soon(client)
         cap_inflight(client, _PUBLISH_WINDOW)
         lean_receive(client)
+        buffered_reads(client)
         cancelled = False
         try:
             async with client:
@@ -1446,7 +1468,7 @@ class Daemon:
         arrived), which tells without decoding the payload again whether it can be a
         fix; None: decode it.
         """
-        self.metrics.received.inc()
+        self._received += 1
         payload = message.payload
         if not isinstance(payload, bytes | bytearray):
             payload = str(payload).encode()
@@ -1514,12 +1536,38 @@ class Daemon:
         return now - self._listening_since >= float(stale_s)
 
     def _sync_counters(self) -> None:
-        """Carry the pipeline's counters (fixes, filtered:<reason>) into the metrics.
+        """Carry the counts kept per message into the metrics.
 
+        The pipeline's counters (fixes, filtered:<reason>) and the daemon's own
+        (messages received, outputs published by kind, assignments by eps level).
         Called when the metrics are rendered, not per message: it walks every counter of
-        the pipeline (a few microseconds a message), and nothing else reads these
-        metrics.
+        the pipeline (a few microseconds a message), a prometheus_client increment takes
+        a lock, and nothing else reads these metrics.
         """
+        synced = self._synced
+        delta = self._received - synced["received"]
+        if delta > 0:
+            self.metrics.received.inc(delta)
+            synced["received"] = self._received
+        for kind, value in list(self._published_n.items()):
+            delta = value - synced["published", kind]
+            if delta > 0:
+                counter = self._published_counters.get(kind)
+                if counter is None:
+                    counter = self._published_counters[kind] = self.metrics.published.labels(
+                        kind=kind)
+                counter.inc(delta)
+                synced["published", kind] = value
+        for eps, value in list(self._eps_n.items()):
+            delta = value - synced["eps", eps]
+            if delta > 0:
+                label = f"{eps}"
+                counter = self._eps_counters.get(label)
+                if counter is None:
+                    counter = self._eps_counters[label] = self.metrics.eps_level.labels(
+                        eps_m=label)
+                counter.inc(delta)
+                synced["eps", eps] = value
         for key, value in self.pipeline.counters.items():
             delta = value - self._seen_counters[key]
             if delta <= 0:
@@ -1562,11 +1610,7 @@ class Daemon:
         payload = encode_record(record)
         fix_time = record.get("time")
         if out.kind == "assignment":
-            eps = f"{record.get('eps_m')}"
-            counter = self._eps_counters.get(eps)
-            if counter is None:
-                counter = self._eps_counters[eps] = self.metrics.eps_level.labels(eps_m=eps)
-            counter.inc()
+            self._eps_n[record.get("eps_m")] += 1
             self._latest[vehicle] = payload
             self._latest_dirty.add(vehicle)
             self._fixes_since[vehicle] += 1
@@ -1577,7 +1621,7 @@ class Daemon:
                 # make every other vehicle look idle: cap at the wall clock + 5 min.
                 clock = min(float(fix_time), time.time() + _CLOCK_AHEAD_S)
                 self._newest_fix_t = max(self._newest_fix_t or clock, clock)
-            if self._throttled(vehicle, record):
+            if self.config.publish.throttle_s > 0 and self._throttled(vehicle, record):
                 self.metrics.throttled.inc()
                 return
             topic = cfg.match_topic
@@ -1639,7 +1683,7 @@ class Daemon:
         sent = [0, 0]  # in flight from self._outbox, from self._reject_box (their heads)
         changed = self._outbox_changed
         on_acknowledged(client, changed.set)
-        published = self._published_counters
+        published = self._published_n
         while True:
             while len(inflight) < _PUBLISH_WINDOW:
                 if len(self._outbox) > sent[0]:
@@ -1661,11 +1705,7 @@ class Daemon:
                 else:
                     item = self._outbox.popleft()
                     self._acked += 1
-                counter = published.get(item.kind)
-                if counter is None:
-                    counter = published[item.kind] = self.metrics.published.labels(
-                        kind=item.kind)
-                counter.inc()
+                published[item.kind] += 1
                 if item.kind == "assignment" and item.fix_time is not None:
                     self.metrics.lag.observe(max(0.0, time.time() - item.fix_time))
             if retired:

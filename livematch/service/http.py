@@ -9,6 +9,11 @@ reads the daemon's state directly.
 - ``/healthz``: 200 while the process is alive and its event loop answers.
 - ``/readyz``: 200 when the broker and the state store are connected, 503 otherwise
   (the body names what is missing).
+
+``livematch run`` starts it before it loads the road network and compiles the matcher's
+kernels (tens of seconds on a cold numba cache), so ``/healthz`` answers during that
+time and ``/readyz`` says ``not ready: compiling``; the daemon then takes it over
+(:meth:`HealthServer.serve`).
 """
 
 from __future__ import annotations
@@ -56,6 +61,20 @@ class HealthServer:
             self._server.close()
             await self._server.wait_closed()
             self._server = None
+
+    def serve(self, *, render_metrics: Callable[[], bytes],
+              readiness: Callable[[], list[str]]) -> None:
+        """Answer from now on with these callables (the daemon takes over a started server).
+
+        Example::
+
+            http = HealthServer("127.0.0.1", 0, render_metrics=lambda: b"",
+                                readiness=lambda: ["compiling"])
+            await http.start()                  # /readyz: 503 "not ready: compiling"
+            http.serve(render_metrics=daemon_metrics, readiness=lambda: [])  # 200 "ready"
+        """
+        self._render_metrics = render_metrics
+        self._readiness = readiness
 
     async def _handle(self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
         try:

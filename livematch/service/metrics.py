@@ -28,6 +28,7 @@ livematch_shard_buffered_total                        fixes kept for a replay af
 livematch_shard_buffer_dropped_total                  kept fixes dropped (buffer full)
 livematch_shard_replayed_total                        kept fixes replayed after a takeover
 livematch_shard_buffer_messages                       fixes currently kept for replays
+livematch_start_seconds{stage}                        wall time of each start stage
 ====================================================  =======================================
 
 Example:
@@ -142,6 +143,11 @@ class Metrics:
                                   "by how long they took.", ["generation"],
                                   buckets=(0.001, 0.01, 0.05, 0.1, 0.25, 0.5, 1.0, 2.0, 5.0),
                                   registry=r)
+
+        self.start_seconds = Gauge("livematch_start_seconds",
+                                   "Wall time of each stage of the start (compiling: the "
+                                   "matcher's kernels, network: road map, routes, fences), "
+                                   "seconds.", ["stage"], registry=r)
 
     def render(self) -> bytes:
         """The registry in the Prometheus text exposition format."""

@@ -38,8 +38,13 @@ from typing import Any, TypeVar
 from urllib.parse import urlsplit
 
 import aiomqtt
-from paho.mqtt.client import MQTTMessage
-from paho.mqtt.enums import MQTTErrorCode
+from paho.mqtt.client import (
+    MQTT_LOG_ERR,
+    MQTTMessage,
+    mqtt_ms_invalid,
+    mqtt_ms_wait_for_puback,
+)
+from paho.mqtt.enums import CallbackAPIVersion, MQTTErrorCode
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 from paho.mqtt.reasoncodes import ReasonCode
@@ -127,8 +132,10 @@ def drain(client: aiomqtt.Client, max_packets: int, budget_s: float = math.inf) 
             sock = paho.socket()
             if sock is None:
                 break
-            pending = getattr(sock, "pending", None)
-            if not (pending is not None and pending() > 0):
+            pending = getattr(sock, "pending", None)  # a TLS socket's decrypted bytes
+            leftover = getattr(sock, "leftover", None)  # buffered_reads' bytes
+            if not ((pending is not None and pending() > 0)
+                    or (leftover is not None and leftover() > 0)):
                 ready, _, _ = select.select([sock], [], [], 0)
                 if not ready:
                     break
@@ -141,6 +148,116 @@ def drain(client: aiomqtt.Client, max_packets: int, budget_s: float = math.inf) 
             paho.loop_read()
             read += max(1, per_call)
     return read
+
+
+# Bytes asked of the kernel per read of the broker's socket (buffered_reads).
+_READ_SIZE = 65_536
+
+
+class _BufferedSocket:
+    """paho's socket, read in pieces of up to ``_READ_SIZE`` bytes (see buffered_reads).
+
+    ``recv(n)`` returns up to ``n`` bytes of what an earlier read left over, else reads
+    up to ``max(n, _READ_SIZE)`` from the socket and keeps the rest; an empty read
+    (the broker closed) or an error (``BlockingIOError``, TLS "want read") is passed
+    through as the socket gave it. Everything else is the socket's own (``send``,
+    ``fileno``, ``close``, ``pending`` of a TLS socket...). ``on_leftover`` is called
+    whenever a ``recv`` leaves bytes behind, which the event loop would not report
+    (they are no longer in the kernel).
+
+    Example (a degenerate "socket" that has six bytes, then nothing)::
+
+        >>> class Six:
+        ...     data = [b"abcdef"]
+        ...     def recv(self, n):
+        ...         if not self.data:
+        ...             raise BlockingIOError
+        ...         return self.data.pop()
+        >>> s = _BufferedSocket(Six(), lambda: None)
+        >>> s.recv(1), s.recv(2), s.leftover(), s.recv(10)
+        (b'a', b'bc', 3, b'def')
+    """
+
+    __slots__ = ("_buf", "_on_leftover", "_pos", "_sock", "reads")
+
+    def __init__(self, sock: Any, on_leftover: Callable[[], None]) -> None:
+        self._sock = sock
+        self._on_leftover = on_leftover
+        self._buf = b""
+        self._pos = 0
+        self.reads = 0  # recv calls made on the socket itself
+
+    def recv(self, bufsize: int) -> bytes:
+        buf, pos = self._buf, self._pos
+        if pos < len(buf):
+            end = min(pos + bufsize, len(buf))
+            self._pos = end
+            if end < len(buf):
+                self._on_leftover()
+            return buf[pos:end]
+        self.reads += 1
+        data: bytes = self._sock.recv(max(bufsize, _READ_SIZE))
+        if len(data) <= bufsize:
+            return data
+        self._buf, self._pos = data, bufsize
+        self._on_leftover()
+        return data[:bufsize]
+
+    def leftover(self) -> int:
+        """Bytes read from the socket and not yet taken by ``recv``."""
+        return len(self._buf) - self._pos
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._sock, name)
+
+
+def buffered_reads(client: aiomqtt.Client) -> None:
+    """Read the broker's socket in large pieces, not one system call per packet part.
+
+    paho reads every packet with at least three ``recv`` calls (the first byte, the
+    remaining length a byte at a time, then the rest), each a system call: about seven
+    per matched fix (its PUBLISH and one or two PUBACKs; ``bench/load.py --cprofile``).
+    Here the socket paho opens is wrapped in a :class:`_BufferedSocket` that reads up
+    to 64 KiB at a time and hands paho the pieces it asks for. Bytes left in that buffer
+    are not seen by the event loop's readiness check, so whenever some are left a
+    callback is scheduled in the event loop that lets paho read on (``loop_read``: up
+    to one packet per message in flight, as aiomqtt's reader does per readable event),
+    again while bytes are left, one turn of the loop at a time. A read error there ends
+    the connection as aiomqtt's reader does. Call before connecting, in the event loop.
+    """
+    paho: Any = client._client
+    loop = asyncio.get_running_loop()
+    loop_thread = threading.get_ident()
+    inner_open = paho.on_socket_open
+    state = {"scheduled": False}
+
+    def read_on() -> None:
+        state["scheduled"] = False
+        sock = paho._sock
+        if not isinstance(sock, _BufferedSocket) or not sock.leftover():
+            return
+        try:
+            paho.loop_read()
+        except Exception as exc:  # as aiomqtt's reader: the connection broke
+            disconnected = getattr(client, "_disconnected", None)
+            if isinstance(disconnected, asyncio.Future) and not disconnected.done():
+                disconnected.set_exception(exc)
+
+    def on_leftover() -> None:
+        if not state["scheduled"]:
+            state["scheduled"] = True
+            if threading.get_ident() == loop_thread:
+                loop.call_soon(read_on)
+            else:
+                loop.call_soon_threadsafe(read_on)
+
+    def on_socket_open(c: Any, userdata: Any, sock: Any) -> None:
+        wrapped = _BufferedSocket(sock, on_leftover)
+        paho._sock = wrapped
+        if inner_open is not None:
+            inner_open(c, userdata, wrapped)
+
+    paho.on_socket_open = on_socket_open
 
 
 #: Intake key of messages that cannot be a position fix (shed before any fix).
@@ -518,17 +635,113 @@ def coalesce(paho: Any) -> int:
 
 
 def publish_now(client: aiomqtt.Client, topic: str, payload: bytes, *, qos: int,
-                retain: bool) -> object:
-    """Hand one message to paho now; return its ``MQTTMessageInfo`` (``is_published()``).
+                retain: bool) -> Any:
+    """Hand one message to paho now; return its message info (``is_published()``).
 
     aiomqtt's ``publish`` is a coroutine that needs a task per message to keep several in
     flight, plus an event and a wait per message; the daemon follows its window by
     polling the infos in order instead, woken by :func:`on_acknowledged`. Raises
     :class:`aiomqtt.MqttCodeError` when paho refuses the message, as aiomqtt does.
+
+    The daemon's usual case, a QoS 1 message with a topic name, bytes payload and no
+    properties on a connected MQTT 5 session with room in the in-flight window, is
+    queued by :func:`_publish_lean` (the same packet and the same entry in paho's
+    session state, without paho's per-message lock and logging); anything else goes
+    through paho's ``publish``.
     """
-    info = client._client.publish(topic, payload, qos, retain)
+    paho = client._client
+    info: Any = _publish_lean(paho, topic, payload, retain) if qos == 1 else None
+    if info is None:
+        info = paho.publish(topic, payload, qos, retain)
     if info.rc != 0:  # paho's MQTT_ERR_SUCCESS
         raise aiomqtt.MqttCodeError(info.rc, "Could not publish message")
+    return info
+
+
+class _Sent:
+    """The info of a message queued by :func:`_publish_lean`.
+
+    It has what paho and the daemon use of ``MQTTMessageInfo``: ``mid``, ``rc``,
+    ``is_published()`` and paho's ``_set_as_published()`` (called when the PUBACK is
+    read), without the ``threading.Condition`` paho builds for every message (about a
+    tenth of a publish): everything here runs in the event loop's thread.
+    """
+
+    __slots__ = ("_published", "mid", "rc")
+
+    def __init__(self, mid: int) -> None:
+        self.mid = mid
+        self.rc = MQTTErrorCode.MQTT_ERR_SUCCESS
+        self._published = False
+
+    def _set_as_published(self) -> None:
+        self._published = True
+
+    def is_published(self) -> bool:
+        return self._published
+
+
+_PUBLISH_QOS1 = _PUBLISH | 0x02  # first byte of a QoS 1 PUBLISH (MQTT 5.0 section 3.3.1)
+
+
+def _publish_lean(paho: Any, topic: str, payload: bytes, retain: bool) -> _Sent | None:
+    """Queue a QoS 1 PUBLISH as paho's ``publish`` would; None: leave it to paho.
+
+    The packet is MQTT 5.0 section 3.3: the first byte (QoS 1, RETAIN), the remaining
+    length (variable byte integer, section 1.5.5), the topic name (two-byte length and
+    UTF-8), the packet identifier, a property length of 0, the payload; the message is
+    entered in paho's ``_out_messages`` waiting for its PUBACK and counted in flight,
+    as paho does, then queued with paho's ``_packet_queue`` (which arranges the write).
+    None (paho decides, as before) when the session is not MQTT 5, not connected, has
+    no room in flight or a queue limit, or the topic or payload is unusual (wildcards,
+    empty, not bytes, too long). Relies on paho-mqtt 2.x internals; the test compares
+    its packets with paho's own.
+
+    Example (a degenerate case: not connected, so paho decides)::
+
+        >>> import paho.mqtt.client as paho_client
+        >>> c = paho_client.Client(paho_client.CallbackAPIVersion.VERSION2,
+        ...                        protocol=paho_client.MQTTv5)
+        >>> _publish_lean(c, "a/b", b"{}", False) is None
+        True
+    """
+    if (paho._sock is None or paho._protocol != 5 or type(payload) is not bytes
+            or paho._max_queued_messages > 0
+            or 0 < paho._max_inflight_messages <= paho._inflight_messages):
+        return None
+    name = topic.encode("utf-8")
+    size = len(name) + len(payload) + 5  # topic length 2, packet id 2, property length 1
+    if (not name or len(name) > 65_535 or size > 268_435_455
+            or b"+" in name or b"#" in name or b"\x00" in name):
+        return None
+    mid = paho._mid_generate()
+    if mid in paho._out_messages:
+        return None  # paho reports it (MQTT_ERR_QUEUE_SIZE)
+    length = bytearray()
+    while True:  # variable byte integer: 7 bits a byte, least significant first
+        digit, size = size & 0x7F, size >> 7
+        length.append(digit | 0x80 if size else digit)
+        if not size:
+            break
+    packet = b"".join((bytes((_PUBLISH_QOS1 | retain,)), length,
+                       len(name).to_bytes(2, "big"), name, mid.to_bytes(2, "big"), b"\x00",
+                       payload))
+    info = _Sent(mid)
+    message = MQTTMessage.__new__(MQTTMessage)  # the fields paho's publish sets
+    message.timestamp = time.monotonic()
+    message.state = mqtt_ms_wait_for_puback
+    message.dup = False
+    message.mid = mid
+    message._topic = name
+    message.payload = payload
+    message.qos = 1
+    message.retain = retain
+    message.info = info  # type: ignore[assignment]  # duck-typed MQTTMessageInfo
+    message.properties = None
+    with paho._out_message_mutex:
+        paho._out_messages[mid] = message
+        paho._inflight_messages += 1
+    paho._packet_queue(_PUBLISH, packet, mid, 1, info)
     return info
 
 
@@ -541,9 +754,14 @@ def lean_receive(client: aiomqtt.Client) -> None:
     for every PUBACK, though nothing here reads them (the intake queue drops them). A
     QoS 0 or 1 PUBLISH with a topic name and no properties (a zero property length) is
     decoded here into the same ``MQTTMessage`` (``properties`` None) and handed to
-    paho's own delivery (``_handle_on_message``); a PUBACK of two bytes (success, no
-    reason code or properties, MQTT 5.0 section 3.4.2.1) goes to paho's ``on_publish``
-    dispatch with shared success objects. Anything else takes paho's way. Relies on
+    the ``on_message`` callback as paho's ``_handle_on_message`` would (paho's own
+    dispatch when topic callbacks are registered); a PUBACK of two bytes (success, no
+    reason code or properties, MQTT 5.0 section 3.4.2.1), or of three or four with a
+    reason code below 0x80 and no properties (mosquitto answers 0x10 "No matching
+    subscribers" to every publish on a topic nobody reads, a quarter of the daemon's
+    outputs in ``bench/load.py``), goes to paho's ``on_publish`` dispatch with one
+    shared ``ReasonCode`` per code and shared empty properties. Anything else (a
+    failure code, properties) takes paho's way. Relies on
     paho-mqtt 2.x internals (``_in_packet``, ``_handle_publish``,
     ``_handle_pubackcomp``, ``_do_on_publish``); the test compares with paho's decoding.
     Call before connecting.
@@ -551,7 +769,7 @@ def lean_receive(client: aiomqtt.Client) -> None:
     paho: Any = client._client
     plain_publish = paho._handle_publish
     plain_puback = paho._handle_pubackcomp
-    success = ReasonCode(PacketTypes.PUBACK)  # "Success"
+    reasons = {0: ReasonCode(PacketTypes.PUBACK)}  # "Success"; others added when seen
     no_properties = Properties(PacketTypes.PUBACK)
 
     def handle_publish() -> Any:
@@ -570,26 +788,74 @@ def lean_receive(client: aiomqtt.Client) -> None:
             start += 2
         if start == 2 or size <= start or packet[start] != 0:
             return plain_publish()  # no topic name (an alias), or properties
-        message = MQTTMessage(mid=mid, topic=bytes(packet[2:start - (2 if qos else 0)]))
+        # MQTTMessage's own __init__ also builds an MQTTMessageInfo (with a lock) that
+        # nothing reads for a received message: set the fields it would set instead.
+        message = MQTTMessage.__new__(MQTTMessage)
+        message.mid = mid
+        message._topic = bytes(packet[2:start - (2 if qos else 0)])
+        message.state = mqtt_ms_invalid
+        message.info = None  # type: ignore[assignment]  # only read for sent messages
         message.dup = bool(header & 0x08)
         message.qos = qos
         message.retain = bool(header & 0x01)
         message.properties = None
         message.payload = bytes(packet[start + 1:])
         message.timestamp = time.monotonic()
-        paho._handle_on_message(message)
+        on_message = paho.on_message
+        if paho._on_message_filtered._root._children or on_message is None:
+            paho._handle_on_message(message)  # topic callbacks: paho dispatches
+        else:  # what paho's dispatch comes to without topic callbacks
+            with paho._in_callback_mutex:
+                try:
+                    on_message(paho, paho._userdata, message)
+                except Exception as err:
+                    paho._easy_log(MQTT_LOG_ERR, "Caught exception in on_message: %s", err)
+                    if not paho.suppress_exceptions:
+                        raise
         if qos and not paho._manual_ack:
             return paho._send_puback(mid)
         return MQTTErrorCode.MQTT_ERR_SUCCESS
 
     def handle_puback(cmd: str) -> Any:
         packet = paho._in_packet["packet"]
-        if cmd != "PUBACK" or len(packet) != 2:
+        size = len(packet)
+        if cmd != "PUBACK" or not 2 <= size <= 4:
             return plain_puback(cmd)
+        code = packet[2] if size > 2 else 0
+        reason = reasons.get(code)
+        if reason is None:
+            if code >= 0x80:  # a failure (MQTT 5.0 section 3.4.2.1): paho's way
+                return plain_puback(cmd)
+            try:
+                reason = reasons[code] = ReasonCode(PacketTypes.PUBACK, identifier=code)
+            except (KeyError, ValueError):  # not a PUBACK reason code
+                return plain_puback(cmd)
+        if size == 4 and packet[3] != 0:
+            return plain_puback(cmd)  # properties
         mid = (packet[0] << 8) | packet[1]
         with paho._out_message_mutex:
-            if mid in paho._out_messages:
-                return paho._do_on_publish(mid, success, no_properties)
+            out = paho._out_messages
+            if mid not in out:
+                return MQTTErrorCode.MQTT_ERR_SUCCESS
+            if (len(out) > paho._inflight_messages
+                    or paho._callback_api_version is not CallbackAPIVersion.VERSION2):
+                # messages wait for room in flight: paho sends the next ones
+                return paho._do_on_publish(mid, reason, no_properties)
+            # paho's _do_on_publish, less its scan of every message for queued ones to
+            # send (none here: every message held is in flight)
+            on_publish = paho.on_publish
+            if on_publish is not None:
+                with paho._in_callback_mutex:
+                    try:
+                        on_publish(paho, paho._userdata, mid, reason, no_properties)
+                    except Exception as err:
+                        paho._easy_log(MQTT_LOG_ERR, "Caught exception in on_publish: %s", err)
+                        if not paho.suppress_exceptions:
+                            raise
+            message = out.pop(mid)
+            message.info._set_as_published()
+            if message.qos > 0:
+                paho._inflight_messages -= 1
         return MQTTErrorCode.MQTT_ERR_SUCCESS
 
     paho._handle_publish = handle_publish
@@ -642,9 +908,23 @@ def on_acknowledged(client: aiomqtt.Client, callback: Callable[[], None]) -> Non
     paho.on_publish = on_publish
 
 
+_PUBACK = 0x40
+
+
 def ack(client: aiomqtt.Client, message: aiomqtt.Message) -> None:
-    """PUBACK ``message`` now (QoS 0 messages need none)."""
-    if message.qos > 0:
+    """PUBACK ``message`` now (QoS 0 messages need none).
+
+    A QoS 1 message's PUBACK (MQTT 5.0 section 3.4: packet type, remaining length 2, the
+    packet identifier; success needs no reason code) is queued with paho's
+    ``_packet_queue``, as paho's ``ack`` does but without its branches and logging;
+    QoS 2 takes paho's way.
+    """
+    if message.qos == 1:
+        paho = client._client
+        if paho._manual_ack:
+            mid = message.mid
+            paho._packet_queue(_PUBACK, bytes((_PUBACK, 2, mid >> 8, mid & 0xFF)), mid, 1)
+    elif message.qos > 1:
         client._client.ack(message.mid, message.qos)
 
 
