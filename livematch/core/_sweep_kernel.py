@@ -791,6 +791,40 @@ def commit_point(ti: np.ndarray, lo: int, hi: int, next_commit: int, newest: int
 
 
 @numba.njit(cache=True, error_model="numpy")
+def cut_and_check(ti: np.ndarray, lo: int, hi: int, next_commit: int, newest: int,
+                  cut: bool) -> int:
+    """:func:`commit_point`, first cutting (``cut``) the links older than fix ``next_commit - 1``.
+
+    The cut is the part of ``livematch.core._tree_kernel.trim`` that ``Tracker._trim``
+    does after the commits of a fix (every back-pointer from the live block's paths to a
+    state older than fix ``next_commit - 1`` set to -1; no forced prune), done here
+    when a commit has just moved ``next_commit``, so that ``Tracker._trim`` finds the
+    level cut and makes no call of its own. It changes no commit point: the walk of
+    :func:`rows_ancestor` stops at fix ``next_commit - 1`` before it reads such a link
+    (a state's parent is always a state of the fix before), and the rows it cuts off are
+    read by no later commit (they are older than the last one).
+    """
+    if cut:
+        cut_links(ti, lo, hi, next_commit - 1)
+    return commit_point(ti, lo, hi, next_commit, newest)
+
+
+@numba.njit(cache=True, error_model="numpy")
+def cut_links(ti: np.ndarray, lo: int, hi: int, cut: int) -> None:
+    """Set to -1 the first back-pointer to a state older than fix ``cut`` on each live path."""
+    for r in range(lo, hi):
+        cur = r
+        while True:
+            p = ti[cur, I_PARENT]
+            if p < 0:
+                break
+            if ti[p, I_SEQ] < cut:
+                ti[cur, I_PARENT] = -1
+                break
+            cur = p
+
+
+@numba.njit(cache=True, error_model="numpy")
 def ancestor_at(ti: np.ndarray, row: int, seq: int) -> int:
     """The ancestor of ``row`` (itself included) with the largest seq <= ``seq``."""
     while ti[row, I_SEQ] > seq and ti[row, I_PARENT] >= 0:

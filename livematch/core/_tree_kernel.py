@@ -50,6 +50,8 @@ from livematch.core._sweep_kernel import (
     compact,
     compact_append,
     compact_into,
+    cut_and_check,
+    cut_links,
     kept_rows,
     rows_ancestor,
     tree_append,
@@ -60,7 +62,7 @@ __all__ = [
     "ARENA_FULL", "F_COST", "F_LOW", "F_POS", "F_T", "I_PARENT", "I_SEG", "I_SEQ", "I_VIA0",
     "I_VIAN", "ROW_F", "ROW_I", "ancestor_at", "best_row", "best_scored", "block_ancestor",
     "chain_into", "chain_rows", "commit_point", "compact", "compact_append", "compact_into",
-    "descends_from",
+    "cut_and_check", "cut_links", "descends_from",
     "driven_since", "junction_split", "kept_rows", "live_answer", "live_scores", "prune_live",
     "tree_append", "tree_sweep", "trim",
 ]
@@ -348,16 +350,7 @@ def trim(
     starts at and the seq of the state a forced prune kept (-1 if none).
     """
     cut = next_commit - 1
-    for r in range(lo, hi):
-        cur = r
-        while True:
-            p = ti[cur, I_PARENT]
-            if p < 0:
-                break
-            if ti[p, I_SEQ] < cut:
-                ti[cur, I_PARENT] = -1
-                break
-            cur = p
+    cut_links(ti, lo, hi, cut)
     if cut > trim_seq:
         trim_seq = cut
     if seq - trim_seq > 2 * max_lag:

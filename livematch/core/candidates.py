@@ -314,14 +314,16 @@ class CandidateTree:
         """The live states' deepest common ancestor, -1 if none at or above fix ``floor``."""
         return _t.block_ancestor(self.ti, self.lo, self.hi, floor)
 
-    def commit_point(self, next_commit: int, newest: int) -> int:
+    def commit_point(self, next_commit: int, newest: int, cut: bool = False) -> int:
         """The deepest common ancestor of the live states, taken back to fix ``newest``.
 
         -1 unless its fix lies in ``[next_commit, newest]``: :meth:`common_ancestor` above
         fix ``next_commit - 1``, then :meth:`ancestor_at` ``newest`` if it is newer, in one
-        compiled call.
+        compiled call. ``cut``: first cut the live paths' links to states older than fix
+        ``next_commit - 1`` (:meth:`trim`'s cut, without a forced prune; the answer is the
+        same either way).
         """
-        return _t.commit_point(self.ti, self.lo, self.hi, next_commit, newest)
+        return _t.cut_and_check(self.ti, self.lo, self.hi, next_commit, newest, cut)
 
     def ancestor_at(self, row: int, seq: int) -> int:
         """The ancestor of ``row`` (itself included) with the largest seq <= ``seq``."""

@@ -127,7 +127,8 @@ class Level:
         trim_seq: the last fix at which old history of the tree was cut.
         cut: no back-pointer of the tree leads from a state at or after fix ``cut`` to
             one before it (-1: not known; not serialised, a restored level walks once).
-            Lets :meth:`Tracker._trim` skip the walk while the cut stays where it was.
+            Lets :meth:`Tracker._trim` skip the walk while the cut stays where it was
+            (:meth:`Tracker._settle` cuts in its commit check after a commit).
     """
 
     __slots__ = ("cert_seq", "cert_t", "cut", "eps", "tree", "tree_seq", "trim_seq")
@@ -624,6 +625,11 @@ class Tracker:
                 if (known is not None and known[0] is tree and known[1] == self.next_commit
                         and known[2] == newest):
                     top = known[3]
+                elif self.next_commit - 1 > level.cut:
+                    # a commit moved the cut: the call also cuts the links _trim would
+                    # (the same answer), so _trim makes no call for this level
+                    top = tree.commit_point(self.next_commit, newest, cut=True)
+                    level.cut = self.next_commit - 1
                 else:
                     top = tree.commit_point(self.next_commit, newest)
                 if top >= 0 and not self._defers(level, top, covering):
@@ -836,7 +842,8 @@ class Tracker:
         the one the level's links already respect (``Level.cut``) or a forced prune is
         due: a new state's back-pointer leads to a state of the fix before, never to one
         older than a cut made since, so with the cut where it was the walk would change
-        nothing (same trees, same ``trim_seq``).
+        nothing (same trees, same ``trim_seq``). A level whose commit check ran after a
+        commit this fix was cut by that call (:meth:`_settle`), so it is usually skipped.
         """
         cut = self.next_commit - 1
         max_lag = self.settings.max_lag_fixes
