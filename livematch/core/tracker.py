@@ -223,6 +223,15 @@ class Tracker:
     def update(self, fix: Fix) -> list[Event]:
         """Take one fix; return the events it causes (possibly none)."""
         events: list[Event] = []
+        newest = self.last_released_t
+        if not self.buffer and not self.settings.reorder_fixes and (
+                newest is None or fix.t > newest):
+            # nothing held back and nothing to hold back: what _admit does with such a
+            # fix (release it at once), without its generator and sorted insert
+            self.last_released_t = fix.t
+            if self._passes(fix, events):
+                self._accept(fix, events)
+            return events
         for ready in self._admit(fix, events):
             self._accept(ready, events)
         return events
@@ -320,7 +329,11 @@ class Tracker:
                 if straight_from is not None:
                     dt = fix.t - straight_from[0]
         self.before = before
-        deciding = next((lv for lv in self.levels if len(lv.tree)), None)
+        deciding = None
+        for level in self.levels:
+            if level.tree.hi > level.tree.lo:
+                deciding = level
+                break
         if deciding is None:
             events.append(Filtered(fix.vehicle, fix.t, "no_road_nearby"))
         else:
@@ -364,8 +377,19 @@ class Tracker:
         chord = math.hypot(fix.x - x0, fix.y - y0)
         gap = prev is not None and (dt > s.gap_s or chord > s.gap_m)
         salvage: list[tuple[Level, CandidateTree]] = []
-        step = np.array((0.0, x0, y0, fix.x, fix.y, chord, *self._weights))
+        # the step scalars, written into the network's scratch (a new array costs more)
         arrays = sweep_arrays(self._view)
+        step = arrays.step
+        step[1] = x0
+        step[2] = y0
+        step[3] = fix.x
+        step[4] = fix.y
+        step[5] = chord
+        w = self._weights
+        step[6] = w[0]
+        step[7] = w[1]
+        step[8] = w[2]
+        step[9] = w[3]
         first = self.next_commit
         t = fix.t
         for level in self.levels:
@@ -655,7 +679,8 @@ class Tracker:
             floor = min(alive) if alive else seq + 1
             if floor > self.next_commit:
                 self.next_commit = floor  # fixes no tree covers any more stay unmatched
-        for stale in [k for k in self.times if k < self.next_commit - 1]:
+        oldest = self.next_commit - 1
+        for stale in [k for k in self.times if k < oldest]:
             del self.times[stale]
         self._trim(seq, t)
 
