@@ -210,15 +210,30 @@ class CandidateTree:
         self._make_room(len(new), vias)
         shift = self.lo - old_lo  # a compaction moves the live block, keeping its order
         lo = self.n
-        for r, node in enumerate(new.values(), start=lo):
-            parent = -1 if node.parent is None else rows[id(node.parent)] + shift
-            self.ti[r] = (node.seg, node.seq, parent, self.nv, len(node.via))
-            # the matched point is not kept: it is node.x, node.y recomputed (see node)
-            self.tf[r] = (node.low, node.pos, node.cost, node.t)
-            self.tv[self.nv:self.nv + len(node.via)] = node.via
-            self.nv += len(node.via)
+        k = len(new)
+        if k:
+            # the rows gathered first and written with one assignment per array (a
+            # bridged step brings tens to hundreds of states; a numpy write each costs)
+            ints: list[tuple[int, int, int, int, int]] = []
+            floats: list[tuple[float, float, float, float]] = []
+            flat: list[int] = []  # the vias, one after another
+            nv = self.nv
+            for node in new.values():
+                via = node.via
+                parent = -1 if node.parent is None else rows[id(node.parent)] + shift
+                ints.append((node.seg, node.seq, parent, nv, len(via)))
+                # the matched point is not kept: it is node.x, node.y recomputed (see node)
+                floats.append((node.low, node.pos, node.cost, node.t))
+                if via:
+                    flat.extend(via)
+                    nv += len(via)
+            self.ti[lo:lo + k] = ints
+            self.tf[lo:lo + k] = floats
+            if flat:
+                self.tv[self.nv:nv] = flat
+            self.nv = nv
         self.lo = lo
-        self.hi = self.n = lo + len(new)
+        self.hi = self.n = lo + k
 
     @classmethod
     def from_nodes(cls, live: dict[int, Node]) -> CandidateTree:
