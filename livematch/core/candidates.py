@@ -43,12 +43,14 @@ import numpy as np
 import numpy.typing as npt
 
 from livematch.core import _tree_kernel as _t
-from livematch.core._sweep_kernel import OVERFLOW, window_best, window_step
-from livematch.core.fastsweep import fast_sweep_step, sweep_arrays
+from livematch.core._sweep_kernel import window_best, window_step
+from livematch.core.fastsweep import SweepArrays, fast_sweep_step, sweep_arrays
 from livematch.core.sweep import Node
 from livematch.core.view import NetworkView
 
-__all__ = ["CandidateTree"]
+__all__ = ["DIED", "CandidateTree"]
+
+DIED = -2  # CandidateTree.step: the window died
 
 _MIN_SPARE = 8  # rows (and vias) of room left after a compaction, at least
 
@@ -135,28 +137,45 @@ class CandidateTree:
 
         Returns whether the window survived; if not, the tree is unchanged.
         """
-        arrays = sweep_arrays(view)
+        return self.step(sweep_arrays(view), ctx, seq, t) != DIED
+
+    def step(self, arrays: SweepArrays, ctx: npt.NDArray[np.float64], seq: int, t: float,
+             next_commit: int = 0, newest: int = -1) -> int:
+        """:meth:`sweep` and, with ``newest`` >= 0, :meth:`commit_point` in one compiled call.
+
+        ``arrays``: the network's :func:`~livematch.core.fastsweep.sweep_arrays`. Returns
+        ``DIED`` (-2) when the window died (the tree is unchanged), else the commit point
+        of the new live block for ``next_commit`` and ``newest`` (-1: none, or not asked).
+        """
         while True:
             # a tree whose arrays are full is compacted within them by the kernel
-            code, m, n_via, self.n, self.nv, self.lo = _t.tree_sweep(
+            code, m, n_via, n, nv, lo, top = _t.tree_sweep(
                 arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf, ctx, self.ti, self.tf,
-                self.tv, self.n, self.nv, self.lo, self.hi, seq, t)
-            if code == OVERFLOW:
-                arrays.grow()
-            elif code == _t.ARENA_FULL:
-                # the result waits in the kernel's buffers: make room, then append it
-                self.compact(m, n_via)
-                _t.tree_append(arrays.fbuf, arrays.ibuf, self.ti, self.tf, self.tv, self.n,
-                               self.nv, self.lo, seq, t, m, n_via)
+                self.tv, self.n, self.nv, self.lo, self.hi, seq, t, next_commit, newest)
+            if code == 0:
+                self.n, self.nv, self.lo = n, nv, lo
                 break
-            else:
+            if code == _t.ARENA_FULL:
+                # the result waits in the kernel's buffers: compact into new arrays with
+                # room (as compact() would size them; n, nv: the rows and vias kept) and
+                # append, in one call
+                rows = max(m, 2 * (self.hi - self.lo) + _MIN_SPARE)
+                vias = max(n_via, rows // 2)
+                ti = np.empty((n + max(n // 4, rows), _t.ROW_I), np.int32)
+                tf = np.empty((len(ti), _t.ROW_F))
+                tv = np.empty(nv + max(nv // 4, vias), np.int32)
+                self.n, self.nv, self.lo, top = _t.compact_append(
+                    self.ti, self.tf, self.tv, self.n, self.lo, self.hi, ti, tf, tv,
+                    arrays.fbuf, arrays.ibuf, seq, t, m, n_via, next_commit, newest)
+                self.ti, self.tf, self.tv = ti, tf, tv
                 break
+            arrays.grow()  # OVERFLOW: the kernel's buffers were too small
         if m == 0:
-            return False
+            return DIED
         self.lo = self.n
         self.hi = self.n = self.n + m
         self.nv += n_via
-        return True
+        return top
 
     def live_nodes(self, view: NetworkView) -> tuple[dict[int, Node], dict[int, int]]:
         """The live states as nodes (segment -> node), and node id -> row.
@@ -191,15 +210,30 @@ class CandidateTree:
         self._make_room(len(new), vias)
         shift = self.lo - old_lo  # a compaction moves the live block, keeping its order
         lo = self.n
-        for r, node in enumerate(new.values(), start=lo):
-            parent = -1 if node.parent is None else rows[id(node.parent)] + shift
-            self.ti[r] = (node.seg, node.seq, parent, self.nv, len(node.via))
-            # the matched point is not kept: it is node.x, node.y recomputed (see node)
-            self.tf[r] = (node.low, node.pos, node.cost, node.t)
-            self.tv[self.nv:self.nv + len(node.via)] = node.via
-            self.nv += len(node.via)
+        k = len(new)
+        if k:
+            # the rows gathered first and written with one assignment per array (a
+            # bridged step brings tens to hundreds of states; a numpy write each costs)
+            ints: list[tuple[int, int, int, int, int]] = []
+            floats: list[tuple[float, float, float, float]] = []
+            flat: list[int] = []  # the vias, one after another
+            nv = self.nv
+            for node in new.values():
+                via = node.via
+                parent = -1 if node.parent is None else rows[id(node.parent)] + shift
+                ints.append((node.seg, node.seq, parent, nv, len(via)))
+                # the matched point is not kept: it is node.x, node.y recomputed (see node)
+                floats.append((node.low, node.pos, node.cost, node.t))
+                if via:
+                    flat.extend(via)
+                    nv += len(via)
+            self.ti[lo:lo + k] = ints
+            self.tf[lo:lo + k] = floats
+            if flat:
+                self.tv[self.nv:nv] = flat
+            self.nv = nv
         self.lo = lo
-        self.hi = self.n = lo + len(new)
+        self.hi = self.n = lo + k
 
     @classmethod
     def from_nodes(cls, live: dict[int, Node]) -> CandidateTree:
@@ -295,14 +329,16 @@ class CandidateTree:
         """The live states' deepest common ancestor, -1 if none at or above fix ``floor``."""
         return _t.block_ancestor(self.ti, self.lo, self.hi, floor)
 
-    def commit_point(self, next_commit: int, newest: int) -> int:
+    def commit_point(self, next_commit: int, newest: int, cut: bool = False) -> int:
         """The deepest common ancestor of the live states, taken back to fix ``newest``.
 
         -1 unless its fix lies in ``[next_commit, newest]``: :meth:`common_ancestor` above
         fix ``next_commit - 1``, then :meth:`ancestor_at` ``newest`` if it is newer, in one
-        compiled call.
+        compiled call. ``cut``: first cut the live paths' links to states older than fix
+        ``next_commit - 1`` (:meth:`trim`'s cut, without a forced prune; the answer is the
+        same either way).
         """
-        return _t.commit_point(self.ti, self.lo, self.hi, next_commit, newest)
+        return _t.cut_and_check(self.ti, self.lo, self.hi, next_commit, newest, cut)
 
     def ancestor_at(self, row: int, seq: int) -> int:
         """The ancestor of ``row`` (itself included) with the largest seq <= ``seq``."""
@@ -448,10 +484,12 @@ def warm_up() -> None:
     ctx = StepContext.between(view_of(net), tracker.settings, 15.0, 110.0, 1.0, 120.0, 1.0,
                               tracker.seq + 1, 99.0)
     fast_sweep_step(live, ctx)
-    # the append after a compaction (nothing to append here), and the route monitor's step
+    # the compaction and append after a full tree (nothing to append here), and the
+    # route monitor's step
     arrays = sweep_arrays(view_of(net))
-    _t.tree_append(arrays.fbuf, arrays.ibuf, tree.ti, tree.tf, tree.tv, tree.n, tree.nv,
-                   tree.lo, 0, 0.0, 0, 0)
+    _t.compact_append(tree.ti, tree.tf, tree.tv, tree.n, tree.lo, tree.hi, tree.ti.copy(),
+                      tree.tf.copy(), tree.tv.copy(), arrays.fbuf, arrays.ibuf, 0, 0.0, 0, 0,
+                      0, -1)
     rows = np.array([(n.seg, n.low, n.pos, n.x, n.y, n.cost) for n in live.values()])
     _, rows, driven = window_step(
         arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf,

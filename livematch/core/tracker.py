@@ -75,8 +75,9 @@ from collections.abc import Iterator
 import numpy as np
 
 from livematch.core._tree_kernel import F_COST, ROW_F, ROW_I
-from livematch.core.candidates import CandidateTree
+from livematch.core.candidates import DIED, CandidateTree
 from livematch.core.events import Assignment, Commit, Event, Filtered, MatchedFix
+from livematch.core.fastsweep import sweep_arrays
 from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
 from livematch.core.routing import connect
@@ -126,7 +127,8 @@ class Level:
         trim_seq: the last fix at which old history of the tree was cut.
         cut: no back-pointer of the tree leads from a state at or after fix ``cut`` to
             one before it (-1: not known; not serialised, a restored level walks once).
-            Lets :meth:`Tracker._trim` skip the walk while the cut stays where it was.
+            Lets :meth:`Tracker._trim` skip the walk while the cut stays where it was
+            (:meth:`Tracker._settle` cuts in its commit check after a commit).
     """
 
     __slots__ = ("cert_seq", "cert_t", "cut", "eps", "tree", "tree_seq", "trim_seq")
@@ -140,6 +142,11 @@ class Level:
         self.trim_seq = 0
         self.cut = -1
 
+
+
+# commit points answered by the levels' steps of one fix: level -> (the tree asked,
+# next_commit, newest, row) (Tracker._advance_levels, read by Tracker._settle)
+_Tops = dict[Level, tuple[CandidateTree, int, int, int]]
 
 class Tracker:
     """Online map matching of one vehicle.
@@ -216,6 +223,15 @@ class Tracker:
     def update(self, fix: Fix) -> list[Event]:
         """Take one fix; return the events it causes (possibly none)."""
         events: list[Event] = []
+        newest = self.last_released_t
+        if not self.buffer and not self.settings.reorder_fixes and (
+                newest is None or fix.t > newest):
+            # nothing held back and nothing to hold back: what _admit does with such a
+            # fix (release it at once), without its generator and sorted insert
+            self.last_released_t = fix.t
+            if self._passes(fix, events):
+                self._accept(fix, events)
+            return events
         for ready in self._admit(fix, events):
             self._accept(ready, events)
         return events
@@ -298,7 +314,9 @@ class Tracker:
         if prev is not None and fix.t > prev[0]:
             self.speed = math.hypot(fix.x - prev[1], fix.y - prev[2]) / (fix.t - prev[0])
         dt = fix.t - prev[0] if prev is not None else 0.0
-        salvage = self._advance_levels(fix, prev, seq, stood)
+        tops: _Tops = {}
+        salvage = self._advance_levels(fix, prev, seq, stood,
+                                       seq - 1 if before is not None else seq, tops)
         if self.before is not None and prev is not None:
             straight_from = self.before.last
             dropped = self._spike_test(fix, seq, broke, events)
@@ -311,7 +329,11 @@ class Tracker:
                 if straight_from is not None:
                     dt = fix.t - straight_from[0]
         self.before = before
-        deciding = next((lv for lv in self.levels if len(lv.tree)), None)
+        deciding = None
+        for level in self.levels:
+            if level.tree.hi > level.tree.lo:
+                deciding = level
+                break
         if deciding is None:
             events.append(Filtered(fix.vehicle, fix.t, "no_road_nearby"))
         else:
@@ -323,7 +345,8 @@ class Tracker:
                 x, y, deciding.eps, seq - deciding.cert_seq + 1,
                 fix.t - deciding.cert_t,
             ))
-        self._settle(seq, fix.t, dt, salvage, events, hold_newest=before is not None)
+        self._settle(seq, fix.t, dt, salvage, events, hold_newest=before is not None,
+                     tops=tops)
         if prev is not None and fix.t - prev[0] >= SPARSE_S:
             # a vehicle reporting this rarely spends most of its time idle: keep its
             # trees without spare room (a compaction per level; decisions unchanged)
@@ -332,7 +355,7 @@ class Tracker:
 
     def _advance_levels(
         self, fix: Fix, prev: tuple[float, float, float] | None, seq: int,
-        stood: bool = False,
+        stood: bool = False, newest: int = -1, tops: _Tops | None = None,
     ) -> list[tuple[Level, CandidateTree]]:
         """Move every level to ``fix`` (sequence number ``seq``) from the fix ``prev``.
 
@@ -340,6 +363,11 @@ class Tracker:
         ``stood``: the step into ``prev`` was slower than ``STOOD_MPS`` (the vehicle stood
         there), which with ``stop_turns`` lets a bridged step turn round at any vertex.
         Returns the levels that started afresh with the trees they had before.
+
+        ``tops``: with ``newest`` >= 0, each swept level that covers fix ``next_commit``
+        gets its commit point (:meth:`CandidateTree.commit_point` for ``next_commit``
+        and ``newest``) from the same compiled call as its step, recorded here for
+        :meth:`_settle` (a commit check per covering level per fix, otherwise a call each).
         """
         s = self.settings
         if prev is None:
@@ -349,12 +377,32 @@ class Tracker:
         chord = math.hypot(fix.x - x0, fix.y - y0)
         gap = prev is not None and (dt > s.gap_s or chord > s.gap_m)
         salvage: list[tuple[Level, CandidateTree]] = []
-        step = np.array((0.0, x0, y0, fix.x, fix.y, chord, *self._weights))
+        # the step scalars, written into the network's scratch (a new array costs more)
+        arrays = sweep_arrays(self._view)
+        step = arrays.step
+        step[1] = x0
+        step[2] = y0
+        step[3] = fix.x
+        step[4] = fix.y
+        step[5] = chord
+        w = self._weights
+        step[6] = w[0]
+        step[7] = w[1]
+        step[8] = w[2]
+        step[9] = w[3]
+        first = self.next_commit
+        t = fix.t
         for level in self.levels:
             tree = level.tree
-            if len(tree) and not gap:
+            if tree.hi > tree.lo and not gap:
                 step[0] = level.eps
-                if tree.sweep(self._view, step, seq, fix.t):
+                # the commit check only for a level that covers the oldest pending fix
+                # (Tracker._covering: alive, its tree no newer than that fix)
+                ask = newest if tops is not None and level.tree_seq <= first else -1
+                top = tree.step(arrays, step, seq, t, first, ask)
+                if top != DIED:
+                    if tops is not None and ask >= 0:
+                        tops[level] = (tree, first, ask, top)
                     continue
             # the window died (or the step is a gap): bridge, else start afresh
             ctx = StepContext.between(self._view, s, level.eps, x0, y0, fix.x, fix.y, seq,
@@ -569,9 +617,13 @@ class Tracker:
 
     def _settle(
         self, seq: int, t: float, dt: float, salvage: list[tuple[Level, CandidateTree]],
-        events: list[Event], hold_newest: bool = False,
+        events: list[Event], hold_newest: bool = False, tops: _Tops | None = None,
     ) -> None:
-        """Commit what is settled. ``hold_newest``: not fix ``seq`` (the spike test may drop it)."""
+        """Commit what is settled. ``hold_newest``: not fix ``seq`` (the spike test may drop it).
+
+        ``tops``: commit points the levels' steps answered (:meth:`_advance_levels`), used
+        while the tree, ``next_commit`` and the newest fix are what they were asked for.
+        """
         s = self.settings
         newest = seq - 1 if hold_newest else seq
         # the covering levels change only with a commit: asked again after each one
@@ -593,7 +645,17 @@ class Tracker:
             for level in covering:
                 tree = level.tree
                 # the common ancestor, back to the newest fix that may be committed
-                top = tree.commit_point(self.next_commit, newest)
+                known = tops.get(level) if tops else None
+                if (known is not None and known[0] is tree and known[1] == self.next_commit
+                        and known[2] == newest):
+                    top = known[3]
+                elif self.next_commit - 1 > level.cut:
+                    # a commit moved the cut: the call also cuts the links _trim would
+                    # (the same answer), so _trim makes no call for this level
+                    top = tree.commit_point(self.next_commit, newest, cut=True)
+                    level.cut = self.next_commit - 1
+                else:
+                    top = tree.commit_point(self.next_commit, newest)
                 if top >= 0 and not self._defers(level, top, covering):
                     self._commit_chain(tree, top, events, prune=None)
                     covering = self._covering()
@@ -617,7 +679,8 @@ class Tracker:
             floor = min(alive) if alive else seq + 1
             if floor > self.next_commit:
                 self.next_commit = floor  # fixes no tree covers any more stay unmatched
-        for stale in [k for k in self.times if k < self.next_commit - 1]:
+        oldest = self.next_commit - 1
+        for stale in [k for k in self.times if k < oldest]:
             del self.times[stale]
         self._trim(seq, t)
 
@@ -804,7 +867,8 @@ class Tracker:
         the one the level's links already respect (``Level.cut``) or a forced prune is
         due: a new state's back-pointer leads to a state of the fix before, never to one
         older than a cut made since, so with the cut where it was the walk would change
-        nothing (same trees, same ``trim_seq``).
+        nothing (same trees, same ``trim_seq``). A level whose commit check ran after a
+        commit this fix was cut by that call (:meth:`_settle`), so it is usually skipped.
         """
         cut = self.next_commit - 1
         max_lag = self.settings.max_lag_fixes
