@@ -175,19 +175,24 @@ _BLOB_DECODER = msgspec.msgpack.Decoder(_Blob)
 class _VehicleState:
     """A vehicle's tracker, dedupe memory (sorted recent fix times) and alert monitors.
 
-    ``pending`` holds the fixes handed to the tracker that it has not answered yet.
+    ``pending`` holds the fixes handed to the tracker that it has not answered yet (None
+    while there are none: an empty dict costs 64 bytes for every vehicle between fixes).
+    The rate limit's bucket is three slots (``tokens`` None before the first fix) rather
+    than a tuple rebuilt at every fix.
     """
 
-    __slots__ = ("alerts", "bucket", "pending", "recent", "tracker")
+    __slots__ = ("alerts", "last_at", "last_t", "pending", "recent", "tokens", "tracker")
 
     def __init__(self, tracker: Tracker, recent: list[float] | None = None) -> None:
         self.tracker = tracker
         # unboxed doubles: 8 bytes a time instead of a float object and a pointer
         self.recent: array[float] = array("d", recent or ())
         self.alerts = VehicleAlerts()
-        self.pending: dict[float, Fix] = {}
-        # Rate limit: (tokens, receive time, newest fix time) after the last fix checked.
-        self.bucket: tuple[float, float, float] | None = None
+        self.pending: dict[float, Fix] | None = None
+        # Rate limit: tokens, receive time and newest fix time after the last fix checked.
+        self.tokens: float | None = None
+        self.last_at = 0.0
+        self.last_t = 0.0
 
     def allow(self, at: float, t: float, rate_hz: float) -> bool:
         """Token bucket of ``rate_hz`` fixes per second, burst ``max(1, rate_hz)``.
@@ -201,14 +206,17 @@ class _VehicleState:
         if rate_hz <= 0:
             return True
         cap = max(1.0, rate_hz)
-        if self.bucket is None:
+        tokens = self.tokens
+        if tokens is None:
             tokens, last_at, last_t = cap, at, t
         else:
-            tokens, last_at, last_t = self.bucket
+            last_at, last_t = self.last_at, self.last_t
             tokens = min(cap, tokens + max(at - last_at, t - last_t, 0.0) * rate_hz)
             last_at, last_t = max(at, last_at), max(t, last_t)
         ok = tokens >= 1.0
-        self.bucket = (tokens - 1.0 if ok else tokens, last_at, last_t)
+        self.tokens = tokens - 1.0 if ok else tokens
+        self.last_at = last_at
+        self.last_t = last_t
         return ok
 
     def seen(self, t: float) -> bool:
@@ -397,9 +405,12 @@ class Pipeline:
         if due < self._stale_due:
             self._stale_due = due
         pending = state.pending
-        pending[t] = fix
-        if len(pending) > DEDUPE_WINDOW:  # never reached: the tracker answers
-            del pending[min(pending)]  # every fix within its reorder window
+        if pending is None:
+            state.pending = {t: fix}
+        else:
+            pending[t] = fix
+            if len(pending) > DEDUPE_WINDOW:  # never reached: the tracker answers
+                del pending[min(pending)]  # every fix within its reorder window
         events = state.tracker.update(fix)
         if out:
             out.extend(self._outputs(events, state, topic, payload, at))
@@ -540,8 +551,6 @@ class Pipeline:
                  topic: str = "", payload: bytes = b"", at: float = 0.0) -> list[Output]:
         out: list[Output] = []
         if not events:
-            if state is not None and not state.pending:
-                state.pending = {}
             return out
         counters = self.counters
         record = self._records.record
@@ -554,7 +563,7 @@ class Pipeline:
                     key = self._eps_keys[eps] = f"eps_m:{float(eps)!r}"
                 counters[key] += 1
                 out.append(Output("assignment", event.vehicle, record(event)))
-                if state is not None:
+                if state is not None and state.pending is not None:
                     fix = state.pending.pop(event.t, None)
                     if fix is not None:
                         out.extend(self._monitor(state, fix, (event.x, event.y), True,
@@ -562,7 +571,7 @@ class Pipeline:
                 continue
             if isinstance(event, Filtered):
                 counters[f"filtered:{event.reason}"] += 1
-                if state is not None:
+                if state is not None and state.pending is not None:
                     fix = state.pending.pop(event.t, None)
                     if fix is not None and event.reason == "no_road_nearby":
                         out.extend(self._monitor(state, fix, None, False, topic, payload, at))
@@ -574,9 +583,7 @@ class Pipeline:
                 counters[f"alert:{event.alert_kind}"] += 1
             out.append(Output(event.kind, event.vehicle, record(event)))
         if state is not None and not state.pending:
-            # a dict keeps its table when emptied; a new empty one has none (170 bytes
-            # less for every vehicle between fixes)
-            state.pending = {}
+            state.pending = None  # every fix answered: no dict held between fixes
         return out
 
     def _monitor(self, state: _VehicleState, fix: Fix, matched: tuple[float, float] | None,
@@ -622,7 +629,7 @@ class Pipeline:
         extra = {
             "monitors": state.alerts.to_state(),
             "pending": [[f.vehicle, f.t, f.lon, f.lat, f.x, f.y, f.accuracy, f.speed,
-                         f.heading, f.route] for f in state.pending.values()],
+                         f.heading, f.route] for f in (state.pending or {}).values()],
             "control": self._control.get(vehicle),
         }
         alerts = zlib.compress(json.dumps(extra, separators=(",", ":")).encode())
@@ -667,7 +674,7 @@ class Pipeline:
                 extra = json.loads(zlib.decompress(data.alerts))
                 restored.alerts = VehicleAlerts.from_state(
                     extra["monitors"], self._chain_of, self.alert_settings)
-                restored.pending = {row[1]: Fix(*row) for row in extra["pending"]}
+                restored.pending = {row[1]: Fix(*row) for row in extra["pending"]} or None
                 control = extra["control"]
             except (zlib.error, ValueError, KeyError, TypeError) as exc:
                 raise BadStateError(f"checkpoint for vehicle {vehicle!r} has corrupt alert "

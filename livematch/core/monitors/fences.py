@@ -256,10 +256,14 @@ class FenceMonitor:
         return sorted(k for k, v in self.state.items() if v[0])
 
     def update(self, fences: FenceSet, fix: Fix, x: float, y: float,
-               groups: Iterable[str]) -> list[Alert]:
-        """Take one fix at position (x, y) (raw or matched, metres); return its alerts."""
+               groups: Iterable[str],
+               probe: tuple[list[int], list[bool]] | None = None) -> list[Alert]:
+        """Take one fix at position (x, y) (raw or matched, metres); return its alerts.
+
+        ``probe``: ``fences.probe(x, y)`` when the caller has it already.
+        """
         state = self.state
-        near, near_inner = fences.probe(x, y)
+        near, near_inner = probe if probe is not None else fences.probe(x, y)
         if not near and not state:
             return []  # near no fence and in none: most fixes of a fleet
         inner = dict(zip(near, near_inner, strict=True))  # fence -> point in its inner polygon

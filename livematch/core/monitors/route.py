@@ -168,6 +168,12 @@ class RouteChain:
 #: weights merely rank its candidates (:meth:`_Window.best` breaks ties by cost).
 _WINDOW_WEIGHTS = (0.02, 0.1, 0.0, 0.0)
 _START_ROWS = 4  # a new window's room for live states (grown when a step needs more)
+#: A window with room for more than this many states while it holds no more than half
+#: of that gives the room back (keeps this many): a fresh start beside many route
+#: segments grows a window to hundreds of rows, kilobytes per vehicle kept for good
+#: otherwise. Room changes no answer (a step that needs more grows it and runs again).
+_KEEP_ROWS = 16
+_SHRINK_LEN = 1 + _rk.ROW * _KEEP_ROWS
 
 
 def _step_scalars(eps: float, x0: float, y0: float, x1: float, y1: float,
@@ -258,6 +264,8 @@ class _Window:
         self.most = most
         self.best_seg = best_seg
         self.best_pos = best_pos
+        if len(self.w) > _SHRINK_LEN and 2 * k <= _KEEP_ROWS:
+            self.w = self.w[:1 + _rk.ROW * _KEEP_ROWS].copy()
         if fresh:
             self.start_t = t
             self.fixes = 1 if k else 0
@@ -290,7 +298,7 @@ class _Window:
         return w
 
 
-@dataclass
+@dataclass(slots=True)  # one per vehicle with a route: no instance dict
 class _Anchor:
     """The last on-route fix: time, projected and WGS84 position, progress (or None)."""
 
@@ -302,7 +310,7 @@ class _Anchor:
     progress: float | None
 
 
-@dataclass
+@dataclass(slots=True)  # one per vehicle with a route: no instance dict
 class RouteMonitor:
     """Route adherence of one vehicle on one route (see the module docstring).
 
