@@ -84,8 +84,10 @@ class VehicleAlerts:
             monitor = self.fences
             if monitor is None:
                 near = fences.probe(x, y)
-                if not near[0]:
-                    return alerts  # near no fence and in none: nothing to keep
+                if True not in near[1]:
+                    # in no fence and in no inner polygon: a fresh monitor would neither
+                    # alert nor keep anything (FenceMonitor.update)
+                    return alerts
                 monitor = FenceMonitor()
                 alerts.extend(monitor.update(fences, fix, x, y, groups, near))
             else:
