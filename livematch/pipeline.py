@@ -205,19 +205,34 @@ class _VehicleState:
         """
         if rate_hz <= 0:
             return True
-        cap = max(1.0, rate_hz)
+        cap = rate_hz if rate_hz > 1.0 else 1.0
         tokens = self.tokens
         if tokens is None:
-            tokens, last_at, last_t = cap, at, t
+            tokens = cap
+            self.last_at = at
+            self.last_t = t
         else:
-            last_at, last_t = self.last_at, self.last_t
-            tokens = min(cap, tokens + max(at - last_at, t - last_t, 0.0) * rate_hz)
-            last_at, last_t = max(at, last_at), max(t, last_t)
-        ok = tokens >= 1.0
-        self.tokens = tokens - 1.0 if ok else tokens
-        self.last_at = last_at
-        self.last_t = last_t
-        return ok
+            # min(cap, tokens + max(at - last_at, t - last_t, 0.0) * rate_hz), written out
+            # (the same floats; no calls)
+            last_at = self.last_at
+            last_t = self.last_t
+            gain = at - last_at
+            if t - last_t > gain:
+                gain = t - last_t
+            if gain < 0.0:
+                gain = 0.0
+            tokens = tokens + gain * rate_hz
+            if not tokens < cap:  # as min(cap, tokens) decides (NaN included)
+                tokens = cap
+            if not last_at > at:  # as max(at, last_at) decides
+                self.last_at = at
+            if not last_t > t:
+                self.last_t = t
+        if tokens >= 1.0:
+            self.tokens = tokens - 1.0
+            return True
+        self.tokens = tokens
+        return False
 
     def seen(self, t: float) -> bool:
         recent = self.recent
@@ -399,8 +414,13 @@ class Pipeline:
         if t < self._idle_floor:  # a first fix from long ago (late data)
             self._idle_floor = t
         counters["fixes"] += 1
-        seen = state.alerts.seen(fix, at)
-        out = self._outputs(seen) if seen else []
+        watch = state.alerts.watch
+        if watch is None:
+            state.alerts.seen(fix, at)  # the first fix: starts the watch, no alert
+            out: list[Output] = []
+        else:
+            seen = watch.seen(fix, at)
+            out = self._outputs(seen) if seen else []
         due = at + self.alert_settings.stale_s
         if due < self._stale_due:
             self._stale_due = due

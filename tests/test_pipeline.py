@@ -429,3 +429,30 @@ def test_pipeline_follows_replaced_limits_and_control_topic():
     p.limits = FeedLimits(max_payload_bytes=10)
     (out,) = p.handle("fleet/bus1/position", message(ROAD, T0 + 2, 140.0, 2.0), at=T0 + 2.3)
     assert (out.kind, out.record["reason"]) == ("reject", "too_large")
+
+
+def test_vehicle_state_allow_equals_min_max_bucket():
+    """The written-out token bucket gives the floats of its min/max statement, bit for bit,
+    on random receive and fix times (repeats, reordering, bursts, rates below 1 Hz)."""
+    from livematch.core.tracker import Tracker
+    from livematch.pipeline import _VehicleState
+
+    rng = np.random.default_rng(9)
+    for rate_hz in (0.5, 1.0, 2.0, 10.0):
+        state = _VehicleState(Tracker(ROAD, "v", MatchSettings()))
+        bucket = None
+        at, t = 1000.0, 990.0
+        for _ in range(2000):
+            at += float(rng.choice([0.0, 0.05, 0.3, 1.0, 7.5]))
+            t += float(rng.choice([-2.0, 0.0, 0.1, 1.0, 30.0]))
+            cap = max(1.0, rate_hz)
+            if bucket is None:
+                tokens, last_at, last_t = cap, at, t
+            else:
+                tokens, last_at, last_t = bucket
+                tokens = min(cap, tokens + max(at - last_at, t - last_t, 0.0) * rate_hz)
+                last_at, last_t = max(at, last_at), max(t, last_t)
+            ok = tokens >= 1.0
+            bucket = (tokens - 1.0 if ok else tokens, last_at, last_t)
+            assert state.allow(at, t, rate_hz) is ok
+            assert (state.tokens, state.last_at, state.last_t) == bucket
