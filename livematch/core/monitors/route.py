@@ -377,7 +377,7 @@ class RouteMonitor:
             rev.step(ba, scalars, self.seq, fix.t)
         self.trail_m += step_m  # reset at every on-route fix (the anchor)
         alerts: list[Alert] = []
-        if self.fwd.live:
+        if fwd.k > 0:  # fwd.live
             self._near(fix, alerts)
         else:
             self._far(fix, alerts)
@@ -396,21 +396,28 @@ class RouteMonitor:
                 or rev - fwd >= eps / 2.0)
 
     def _near(self, fix: Fix, alerts: list[Alert]) -> None:
+        # Runs at every fix on the route: the windows' fields are read directly (what
+        # best(), followed() and RouteChain.progress return), _backwards written out.
         s = self.settings
+        fwd = self.fwd
+        rev = self.rev
         self.near += 1
         self.dead_since = None
         self.dead_origin = None
         self.dead_far = 0.0
-        best = self.fwd.best()
-        assert best is not None
-        self.progress_m = self.chain.progress(best[0], best[1])
+        chain = self.chain
+        seg = fwd.best_seg  # fwd.best(): the window is live
+        self.progress_m = chain.cum_forward[seg] + fwd.best_pos * chain._len_forward[seg]
         if self.rejoin is None:
             self.rejoin = (fix.t, self.trail_m)
-        backwards = self._backwards()
-        backwards_now = (self.rev.followed() >= s.wrong_way_m
-                         and self.rev.fixes >= s.on_route_fixes
-                         and self.fwd.start_t > self.rev.start_t
-                         and self.fwd.followed() < s.eps_route_m / 2.0)
+        eps = s.eps_route_m
+        rev_m = rev.most
+        fwd_m = fwd.most
+        backwards = (fwd.start_t > rev.start_t and rev_m >= eps) or rev_m - fwd_m >= eps / 2.0
+        backwards_now = (rev_m >= s.wrong_way_m
+                         and rev.fixes >= s.on_route_fixes
+                         and fwd.start_t > rev.start_t
+                         and fwd_m < eps / 2.0)
         # Two fixes in a row, so one outlier landing on an earlier stretch of the route
         # cannot make it.
         confirmed, self.wrong_seen = backwards_now and self.wrong_seen, backwards_now
@@ -424,7 +431,7 @@ class RouteMonitor:
                 "backwards_m": _m(self.rev.followed()),
                 "lat": fix.lat, "lon": fix.lon,
             }))
-        elif self.wrong and self.fwd.followed() >= s.wrong_way_m:
+        elif self.wrong and fwd_m >= s.wrong_way_m:
             self.wrong = False
         if self.near >= s.on_route_fixes and not backwards:
             if self.state == "off" and self.anchor is not None:
