@@ -454,7 +454,11 @@ def report(r: dict[str, Any]) -> str:
             f"`gc.get_referents` from the pipeline, trackers not entered, minus what a "
             f"pipeline that handled nothing holds; `sys.getsizeof` each, which does not "
             f"move between runs as RSS does): {p['objects_per_vehicle']:.1f} objects, "
-            f"{p['objects_bytes_per_vehicle']:.0f} bytes."]),
+            f"{p['objects_bytes_per_vehicle']:.0f} bytes. This includes the record "
+            f"builder's ids of the segments matched so far (a per-segment cache, bounded "
+            f"by the map, not by the fleet) and leaves out the vehicle id strings (keys "
+            f"of dicts whose keys are all strings are not reported by "
+            f"`gc.get_referents`)."]),
         *driven_breakdown(t, p),
         "",
         "## 100,000 vehicles",
