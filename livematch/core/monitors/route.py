@@ -174,6 +174,10 @@ _START_ROWS = 4  # a new window's room for live states (grown when a step needs 
 #: otherwise. Room changes no answer (a step that needs more grows it and runs again).
 _KEEP_ROWS = 16
 _SHRINK_LEN = 1 + _rk.ROW * _KEEP_ROWS
+#: ... once it has followed the fixes this long: a window that dies and starts afresh
+#: every few fixes (fixes far apart) would grow again at its next start, an extra pass
+#: of the compiled start over the route each time.
+_SETTLED_FIXES = 16
 
 
 def _step_scalars(eps: float, x0: float, y0: float, x1: float, y1: float,
@@ -264,13 +268,14 @@ class _Window:
         self.most = most
         self.best_seg = best_seg
         self.best_pos = best_pos
-        if len(self.w) > _SHRINK_LEN and 2 * k <= _KEEP_ROWS:
-            self.w = self.w[:1 + _rk.ROW * _KEEP_ROWS].copy()
         if fresh:
             self.start_t = t
             self.fixes = 1 if k else 0
         else:
             self.fixes += 1
+            if (len(self.w) > _SHRINK_LEN and 2 * k <= _KEEP_ROWS
+                    and self.fixes >= _SETTLED_FIXES):
+                self.w = self.w[:1 + _rk.ROW * _KEEP_ROWS].copy()
         self.seq = seq
         self.t = t
 
