@@ -1,4 +1,4 @@
-"""Interleaved A/B of the tracker's CPU per fix: two source trees, two processes, turn by turn.
+"""Interleaved A/B of the tracker's (or the whole pipeline's) CPU per fix: two source trees.
 
 This virtual machine's speed drifts by a third within minutes, so two timing runs made
 one after the other compare the drift as much as the code. Here each tree runs in a
@@ -10,11 +10,18 @@ figure to read is the median over drives of the per-drive ratio new / base, whic
 between drives does not move; the pooled µs per fix are printed too (the first drive of
 a tree whose kernels were not cached includes their compile time).
 
+``--what pipeline`` times the whole per-message path instead: ``Pipeline.handle`` on the
+drive's JSON messages, set up as ``bench/speed.py`` and ``bench/breakdown.py`` set it up
+(each vehicle's own path as its route, 40 geofences near the drives; the same simulated
+drives as ``--what tracker``, seed 2009/5), a fresh pipeline per drive that shares the
+fleet's prepared routes, then ``flush``. The set-up is this script's own
+(``bench/speed.py`` beside it); each tree only supplies ``livematch``.
+
 Usage::
 
     git worktree add /tmp/base <rev>; ln -s "$PWD/.venv" /tmp/base/.venv
     .venv/bin/python bench/ab.py --base /tmp/base --new . [--extract helsinki]
-        [--reps 6] [--drives 8] [--duration 600] [--every 1,15]
+        [--reps 6] [--drives 8] [--duration 600] [--every 1,15] [--what pipeline]
 """
 
 from __future__ import annotations
@@ -31,9 +38,12 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 
 
-def worker(extract: str, drives: int, duration: float) -> None:
+def worker(extract: str, drives: int, duration: float, what: str = "tracker") -> None:
     """Serve requests ``<drive> <every>`` on stdin with ``[cpu_s, fixes]`` on stdout."""
     sys.path.insert(0, str(Path(__file__).resolve().parent))
+    if what == "pipeline":
+        pipeline_worker(extract, drives, duration)
+        return
     from _drives import drive_fixes, load_extract
 
     from livematch.core.candidates import warm_up
@@ -55,6 +65,38 @@ def worker(extract: str, drives: int, duration: float) -> None:
         print(json.dumps([time.process_time() - t0, len(fixes)]), flush=True)
 
 
+def pipeline_worker(extract: str, drives: int, duration: float) -> None:
+    """:func:`worker` for ``--what pipeline``: the CPU of ``Pipeline.handle`` per drive."""
+    from _drives import load_extract, simulate_drives
+    from speed import pipeline_setup
+
+    from livematch.core.settings import MatchSettings
+    from livematch.pipeline import Pipeline
+
+    net = load_extract(extract)
+    sims = simulate_drives(net, drives, duration, [2009, 5])
+    fleet, messages = pipeline_setup(sims, net)
+    by_drive = [[m for m in messages if m[1] == f"fleet/{d.vehicle}"] for d in sims]
+    for feed in by_drive:  # warm: kernels, every route's chain, caches
+        for t, topic, payload in feed[:30]:
+            fleet.handle(topic, payload, t + 0.5)
+    fences = fleet.fences.fences if fleet.fences is not None else None
+    chains = getattr(fleet, "_chains", None)  # prepared routes, shared (not timed)
+    print("ready", flush=True)
+    for line in sys.stdin:
+        k, every = map(int, line.split())
+        feed = by_drive[k][::every]
+        pipe = Pipeline(net, MatchSettings(), routes=fleet.routes, fences=fences,
+                        vehicle_routes=fleet.vehicle_routes)
+        if chains is not None:
+            pipe._chains = chains
+        t0 = time.process_time()
+        for t, topic, payload in feed:
+            pipe.handle(topic, payload, t + 0.5)
+        pipe.flush()
+        print(json.dumps([time.process_time() - t0, len(feed)]), flush=True)
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--base", required=True, help="source tree of the base (a checkout)")
@@ -64,14 +106,17 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--drives", type=int, default=8)
     ap.add_argument("--duration", type=float, default=600.0, help="seconds per drive")
     ap.add_argument("--every", default="1,15", help="seconds between fixes, comma list")
+    ap.add_argument("--what", choices=("tracker", "pipeline"), default="tracker",
+                    help="tracker: Tracker.update (default); pipeline: Pipeline.handle on "
+                    "JSON messages (decode, route monitor, fences, records)")
     ap.add_argument("--worker", action="store_true", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.worker:
-        worker(args.extract, args.drives, args.duration)
+        worker(args.extract, args.drives, args.duration, args.what)
         return 0
     me = [sys.executable, str(Path(__file__).resolve()), "--base", args.base, "--worker",
           "--extract", args.extract, "--drives", str(args.drives),
-          "--duration", str(args.duration)]
+          "--duration", str(args.duration), "--what", args.what]
 
     def start(tree: str) -> subprocess.Popen[str]:
         proc = subprocess.Popen(me, stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True,
@@ -103,8 +148,8 @@ def main(argv: list[str] | None = None) -> int:
         ratio = statistics.median(b[0] / a[0] for a, b in pairs if a[0] > 0)
         us_base = 1e6 * sum(a[0] for a, _ in pairs) / fixes
         us_new = 1e6 * sum(b[0] for _, b in pairs) / fixes
-        print(f"{args.extract} every {every} s: base {us_base:.1f} µs/fix, new {us_new:.1f} "
-              f"µs/fix (pooled); "
+        print(f"{args.extract} {args.what} every {every} s: base {us_base:.1f} µs/fix, "
+              f"new {us_new:.1f} µs/fix (pooled); "
               f"median per-drive ratio new/base {ratio:.3f} ({len(pairs)} pairs)")
     for proc in (base, new):
         assert proc.stdin is not None

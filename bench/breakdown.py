@@ -16,7 +16,8 @@ warm :class:`livematch.pipeline.Pipeline`. Each stage's entry point is wrapped w
   operations), dispatch included — numba checks each argument's type on every call, so
   a call with a dozen arrays and scalars costs a microsecond or two before any work;
 - route monitor: ``RouteMonitor.update`` (both sweep windows and the state machine);
-- fences: ``FenceMonitor.update``;
+- fences: ``FenceMonitor.update`` and ``FenceSet.probe`` (a vehicle in no fence has no
+  fence monitor: its fixes are probed by ``VehicleAlerts.update`` directly);
 - off-network and stale watch: ``OffNetworkMonitor.update``, ``StaleWatch.seen``;
 - records: ``RecordBuilder.record`` (the published JSON-ready dicts of ``to_record``,
   WGS84 conversion);
@@ -64,7 +65,7 @@ from speed import pipeline_setup
 import livematch.pipeline as pipeline_module
 from livematch.core import _tree_kernel
 from livematch.core.events import RecordBuilder
-from livematch.core.monitors.fences import FenceMonitor
+from livematch.core.monitors.fences import FenceMonitor, FenceSet
 from livematch.core.monitors.presence import OffNetworkMonitor, StaleWatch
 from livematch.core.monitors.route import RouteMonitor
 from livematch.core.tracker import Tracker
@@ -142,7 +143,10 @@ def patch(clock: Clock) -> list[tuple[Any, str, Any]]:
         if hasattr(getattr(_tree_kernel, name), "py_func"):  # a numba dispatcher
             put(_tree_kernel, name, "tracker, compiled calls")
     put(RouteMonitor, "update", "route monitor")
-    put(FenceMonitor, "update", "fences")
+    # outer: a probe inside it is timed by its own wrapper (a vehicle in no fence is
+    # probed without a monitor); FenceSet.probe times the same on older checkouts
+    put(FenceMonitor, "update", "fences", outer=True)
+    put(FenceSet, "probe", "fences")
     put(OffNetworkMonitor, "update", "off-network and stale watch")
     put(StaleWatch, "seen", "off-network and stale watch")
     return undo
@@ -182,6 +186,7 @@ def count_calls(drives: list[Any], network: Any) -> dict[str, float]:
 
     put(RouteMonitor, "update", monitor("route"))
     put(FenceMonitor, "update", monitor("fences"))
+    put(FenceSet, "probe", monitor("fences"))  # also called without a monitor
     for module_name in MONITOR_KERNELS:
         try:
             module = importlib.import_module(module_name)

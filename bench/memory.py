@@ -188,14 +188,15 @@ def per_vehicle(pool_path: str) -> dict[str, Any]:
             "fresh_tracker_bytes": fresh_bytes, "composition": composition(typical, other)}
 
 
-def reachable(root: object) -> dict[int, object]:
+def reachable(root: object, stop: tuple[type, ...] = ()) -> dict[int, object]:
     """Every object reachable from ``root`` by ``gc.get_referents`` (modules, types and
-    functions are not entered: they are code, not state)."""
+    functions are not entered: they are code, not state; nor are instances of ``stop``,
+    which are left out)."""
     import types
 
     seen: dict[int, object] = {}
     stack = [root]
-    skip = (types.ModuleType, type, types.FunctionType, types.BuiltinFunctionType)
+    skip = (types.ModuleType, type, types.FunctionType, types.BuiltinFunctionType, *stop)
     while stack:
         obj = stack.pop()
         if id(obj) in seen or isinstance(obj, skip):
@@ -313,6 +314,13 @@ def pipeline_run(how: str, vehicles: int, seconds: int, drives_count: int,
                                   "accuracy": f.accuracy}).encode()
             outputs += len(pipe.handle(f"fleet/v{i}/position", payload, t + 0.2))
         held = len(pipe.vehicles())
+        # The Python objects the pipeline holds besides the trackers (trackers not
+        # entered), minus what a pipeline that handled nothing holds (network, settings,
+        # compiled kernels): a count by introspection, which does not move between runs
+        # as RSS does. Objects shared between vehicles (small ints, True) count once.
+        fresh = reachable(Pipeline(network, settings), (Tracker,))
+        own = [obj for key, obj in reachable(pipe, (Tracker,)).items() if key not in fresh]
+        objects_bytes = sum(sys.getsizeof(obj) for obj in own)
     else:
         from livematch.core.fix import Fix
 
@@ -333,6 +341,9 @@ def pipeline_run(how: str, vehicles: int, seconds: int, drives_count: int,
            "kb_per_vehicle": round((rss1 - rss0) / held, 3),
            "kb_per_vehicle_trimmed": round((rss_trim - rss0) / held, 3),
            "us_per_fix": round(elapsed / len(feed) * 1e6, 1)}
+    if how == "pipeline":
+        out["objects_bytes_per_vehicle"] = round(objects_bytes / held, 1)
+        out["objects_per_vehicle"] = round(len(own) / held, 2)
     if how == "trackers":
         # the driven trackers' arrays as held (spare room and rows not yet compacted
         # away included), and the same trackers restored from their serialised state
@@ -437,6 +448,17 @@ def report(r: dict[str, Any]) -> str:
         f"Pipeline overhead: {r['pipeline']['overhead_kb']:.2f} KB per vehicle (dedupe memory "
         "of the last 64 fix times, rate-limit bucket, alert monitors without routes or "
         "fences, the dict entries).",
+        *([] if "objects_bytes_per_vehicle" not in p else [
+            "",
+            f"Python objects the pipeline holds per vehicle besides its tracker (found by "
+            f"`gc.get_referents` from the pipeline, trackers not entered, minus what a "
+            f"pipeline that handled nothing holds; `sys.getsizeof` each, which does not "
+            f"move between runs as RSS does): {p['objects_per_vehicle']:.1f} objects, "
+            f"{p['objects_bytes_per_vehicle']:.0f} bytes. This includes the record "
+            f"builder's ids of the segments matched so far (a per-segment cache, bounded "
+            f"by the map, not by the fleet) and leaves out the vehicle id strings (keys "
+            f"of dicts whose keys are all strings are not reported by "
+            f"`gc.get_referents`)."]),
         *driven_breakdown(t, p),
         "",
         "## 100,000 vehicles",

@@ -175,19 +175,24 @@ _BLOB_DECODER = msgspec.msgpack.Decoder(_Blob)
 class _VehicleState:
     """A vehicle's tracker, dedupe memory (sorted recent fix times) and alert monitors.
 
-    ``pending`` holds the fixes handed to the tracker that it has not answered yet.
+    ``pending`` holds the fixes handed to the tracker that it has not answered yet (None
+    while there are none: an empty dict costs 64 bytes for every vehicle between fixes).
+    The rate limit's bucket is three slots (``tokens`` None before the first fix) rather
+    than a tuple rebuilt at every fix.
     """
 
-    __slots__ = ("alerts", "bucket", "pending", "recent", "tracker")
+    __slots__ = ("alerts", "last_at", "last_t", "pending", "recent", "tokens", "tracker")
 
     def __init__(self, tracker: Tracker, recent: list[float] | None = None) -> None:
         self.tracker = tracker
         # unboxed doubles: 8 bytes a time instead of a float object and a pointer
         self.recent: array[float] = array("d", recent or ())
         self.alerts = VehicleAlerts()
-        self.pending: dict[float, Fix] = {}
-        # Rate limit: (tokens, receive time, newest fix time) after the last fix checked.
-        self.bucket: tuple[float, float, float] | None = None
+        self.pending: dict[float, Fix] | None = None
+        # Rate limit: tokens, receive time and newest fix time after the last fix checked.
+        self.tokens: float | None = None
+        self.last_at = 0.0
+        self.last_t = 0.0
 
     def allow(self, at: float, t: float, rate_hz: float) -> bool:
         """Token bucket of ``rate_hz`` fixes per second, burst ``max(1, rate_hz)``.
@@ -200,16 +205,34 @@ class _VehicleState:
         """
         if rate_hz <= 0:
             return True
-        cap = max(1.0, rate_hz)
-        if self.bucket is None:
-            tokens, last_at, last_t = cap, at, t
+        cap = rate_hz if rate_hz > 1.0 else 1.0
+        tokens = self.tokens
+        if tokens is None:
+            tokens = cap
+            self.last_at = at
+            self.last_t = t
         else:
-            tokens, last_at, last_t = self.bucket
-            tokens = min(cap, tokens + max(at - last_at, t - last_t, 0.0) * rate_hz)
-            last_at, last_t = max(at, last_at), max(t, last_t)
-        ok = tokens >= 1.0
-        self.bucket = (tokens - 1.0 if ok else tokens, last_at, last_t)
-        return ok
+            # min(cap, tokens + max(at - last_at, t - last_t, 0.0) * rate_hz), written out
+            # (the same floats; no calls)
+            last_at = self.last_at
+            last_t = self.last_t
+            gain = at - last_at
+            if t - last_t > gain:
+                gain = t - last_t
+            if gain < 0.0:
+                gain = 0.0
+            tokens = tokens + gain * rate_hz
+            if not tokens < cap:  # as min(cap, tokens) decides (NaN included)
+                tokens = cap
+            if not last_at > at:  # as max(at, last_at) decides
+                self.last_at = at
+            if not last_t > t:
+                self.last_t = t
+        if tokens >= 1.0:
+            self.tokens = tokens - 1.0
+            return True
+        self.tokens = tokens
+        return False
 
     def seen(self, t: float) -> bool:
         recent = self.recent
@@ -391,15 +414,23 @@ class Pipeline:
         if t < self._idle_floor:  # a first fix from long ago (late data)
             self._idle_floor = t
         counters["fixes"] += 1
-        seen = state.alerts.seen(fix, at)
-        out = self._outputs(seen) if seen else []
+        watch = state.alerts.watch
+        if watch is None:
+            state.alerts.seen(fix, at)  # the first fix: starts the watch, no alert
+            out: list[Output] = []
+        else:
+            seen = watch.seen(fix, at)
+            out = self._outputs(seen) if seen else []
         due = at + self.alert_settings.stale_s
         if due < self._stale_due:
             self._stale_due = due
         pending = state.pending
-        pending[t] = fix
-        if len(pending) > DEDUPE_WINDOW:  # never reached: the tracker answers
-            del pending[min(pending)]  # every fix within its reorder window
+        if pending is None:
+            state.pending = {t: fix}
+        else:
+            pending[t] = fix
+            if len(pending) > DEDUPE_WINDOW:  # never reached: the tracker answers
+                del pending[min(pending)]  # every fix within its reorder window
         events = state.tracker.update(fix)
         if out:
             out.extend(self._outputs(events, state, topic, payload, at))
@@ -540,13 +571,12 @@ class Pipeline:
                  topic: str = "", payload: bytes = b"", at: float = 0.0) -> list[Output]:
         out: list[Output] = []
         if not events:
-            if state is not None and not state.pending:
-                state.pending = {}
             return out
         counters = self.counters
         record = self._records.record
         for event in events:
-            if isinstance(event, Assignment):
+            # the event classes are final: a type test, cheaper than isinstance
+            if type(event) is Assignment:
                 counters["assignments"] += 1
                 eps = event.eps_m
                 key = self._eps_keys.get(eps)
@@ -555,28 +585,30 @@ class Pipeline:
                 counters[key] += 1
                 out.append(Output("assignment", event.vehicle, record(event)))
                 if state is not None:
-                    fix = state.pending.pop(event.t, None)
-                    if fix is not None:
-                        out.extend(self._monitor(state, fix, (event.x, event.y), True,
-                                                 topic, payload, at))
+                    pending = state.pending
+                    if pending is not None:
+                        fix = pending.pop(event.t, None)
+                        if fix is not None:
+                            out.extend(self._monitor(state, fix, (event.x, event.y), True,
+                                                     topic, payload, at))
                 continue
-            if isinstance(event, Filtered):
+            if type(event) is Commit:
+                counters["commits"] += 1
+                out.append(Output("commit", event.vehicle, record(event)))
+                continue
+            if type(event) is Filtered:
                 counters[f"filtered:{event.reason}"] += 1
-                if state is not None:
+                if state is not None and state.pending is not None:
                     fix = state.pending.pop(event.t, None)
                     if fix is not None and event.reason == "no_road_nearby":
                         out.extend(self._monitor(state, fix, None, False, topic, payload, at))
                 continue
-            if isinstance(event, Commit):
-                counters["commits"] += 1
-            elif isinstance(event, Alert):
+            if type(event) is Alert:
                 counters["alerts"] += 1
                 counters[f"alert:{event.alert_kind}"] += 1
             out.append(Output(event.kind, event.vehicle, record(event)))
         if state is not None and not state.pending:
-            # a dict keeps its table when emptied; a new empty one has none (170 bytes
-            # less for every vehicle between fixes)
-            state.pending = {}
+            state.pending = None  # every fix answered: no dict held between fixes
         return out
 
     def _monitor(self, state: _VehicleState, fix: Fix, matched: tuple[float, float] | None,
@@ -622,7 +654,7 @@ class Pipeline:
         extra = {
             "monitors": state.alerts.to_state(),
             "pending": [[f.vehicle, f.t, f.lon, f.lat, f.x, f.y, f.accuracy, f.speed,
-                         f.heading, f.route] for f in state.pending.values()],
+                         f.heading, f.route] for f in (state.pending or {}).values()],
             "control": self._control.get(vehicle),
         }
         alerts = zlib.compress(json.dumps(extra, separators=(",", ":")).encode())
@@ -667,7 +699,7 @@ class Pipeline:
                 extra = json.loads(zlib.decompress(data.alerts))
                 restored.alerts = VehicleAlerts.from_state(
                     extra["monitors"], self._chain_of, self.alert_settings)
-                restored.pending = {row[1]: Fix(*row) for row in extra["pending"]}
+                restored.pending = {row[1]: Fix(*row) for row in extra["pending"]} or None
                 control = extra["control"]
             except (zlib.error, ValueError, KeyError, TypeError) as exc:
                 raise BadStateError(f"checkpoint for vehicle {vehicle!r} has corrupt alert "

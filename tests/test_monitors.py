@@ -665,6 +665,58 @@ def test_route_window_best_equals_python_max() -> None:
 def test_vehicle_monitors_have_no_instance_dict():
     """The per-vehicle monitor objects use slots (one set per vehicle in a service)."""
     alerts = VehicleAlerts()
-    alerts.seen(Fix("v", 0.0, 24.94, 60.17, 0.0, 0.0), 1.0)
-    for obj in (alerts, alerts.fences, alerts.network, alerts.watch):
-        assert not hasattr(obj, "__dict__"), type(obj).__name__
+    fences = FenceSet([Fence("f", shapely.box(-100, -100, 100, 100))], SETTINGS)
+    alerts.set_route("r", chain(L_ROUTE), SETTINGS)
+    for t in range(10):  # on the route (an anchor) and entering the fence
+        alerts.seen(fix(t, 10.0 * t, 0.0), t + 0.5)
+        alerts.update(fix(t, 10.0 * t, 0.0), None, True, fences, (), SETTINGS)
+    assert alerts.route is not None and alerts.route.anchor is not None
+    for obj in (alerts, alerts.fences, alerts.network, alerts.watch, alerts.route,
+                alerts.route.anchor, alerts.route.fwd):
+        assert obj is not None and not hasattr(obj, "__dict__"), type(obj).__name__
+
+
+def test_route_window_gives_back_room_without_changing_answers(monkeypatch):
+    """A window grown for a fresh start beside many route parts gives its room back once
+    it holds few states, and every alert and state is the same as without giving back."""
+    from livematch.core.monitors import _route_kernel, route
+
+    comb = [(0.0, 0.0), (200.0, 0.0)] * 10  # one street driven back and forth 10 times
+    points = [*comb, (200.0, 500.0), (2000.0, 500.0)]
+    c = chain(points)
+    drive = along([(0.0, 3.0), (200.0, 3.0), (200.0, 500.0), (2000.0, 500.0)], 10.0)
+
+    def run() -> tuple[list[object], list[int]]:
+        m = RouteMonitor("r", c, SETTINGS)
+        seen, sizes = [], []
+        for i, (x, y) in enumerate(drive):
+            seen.append([(a.alert_kind, a.facts) for a in m.update(fix(i, x, y))])
+            seen.append(json.dumps(m.to_state()))
+            sizes.append(len(m.fwd.w))
+        return seen, sizes
+
+    given_back, sizes = run()
+    keep = 1 + _route_kernel.ROW * route._KEEP_ROWS
+    assert max(sizes) > keep  # the fresh start on the street needed more room
+    assert sizes[-1] == keep  # and gave it back on the single leg, once settled
+    monkeypatch.setattr(route, "_SHRINK_LEN", 10**9)  # never give room back
+    kept, sizes = run()
+    assert sizes[-1] > keep
+    assert given_back == kept
+
+
+def test_vehicle_alerts_fence_monitor_only_near_fences():
+    """A vehicle holds a fence monitor only while it is in a fence or entering one; the
+    alerts are those of a monitor kept all along."""
+    fences = FenceSet([Fence("f", shapely.box(0, 0, 100, 100))], SETTINGS)
+    a = VehicleAlerts()
+    kept = FenceMonitor()
+    held, got, want = [], [], []
+    for t, x in enumerate([-500.0, -300.0, 50.0, 50.0, 50.0, 400.0, 400.0, 400.0, 900.0]):
+        f = fix(t, x, 50.0)
+        got.extend(a.update(f, None, True, fences, (), SETTINGS))
+        want.extend(kept.update(fences, f, x, 50.0, ()))
+        held.append(a.fences is not None)
+    assert [w.alert_kind for w in want] == ["fence_enter", "fence_exit"]
+    assert got == want
+    assert held == [False, False, True, True, True, True, False, False, False]

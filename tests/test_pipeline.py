@@ -157,15 +157,16 @@ def test_pipeline_dedupe_memory_is_bounded():
 
 
 def test_pipeline_answered_fixes_leave_no_pending_table():
-    """Once the tracker has answered every fix, the vehicle's pending dict is a fresh one
-    (an emptied dict keeps its table: bytes every idle vehicle would carry)."""
-    import sys
-
+    """Once the tracker has answered every fix, the vehicle holds no pending dict at all
+    (an empty dict is 64 bytes every idle vehicle would carry)."""
     p = Pipeline(ROAD, MatchSettings())
     run(p, drive("bus1", 5, dt=1.0))
     state = p._vehicles["bus1"]
-    assert state.pending == {}
-    assert sys.getsizeof(state.pending) == sys.getsizeof({})
+    assert state.pending is None
+    blob = p.export_vehicle("bus1")
+    p.import_vehicle("bus1", blob)
+    assert p._vehicles["bus1"].pending is None
+    assert p.export_vehicle("bus1") == blob
 
 
 def test_pipeline_flush_commits_every_accepted_fix():
@@ -428,3 +429,30 @@ def test_pipeline_follows_replaced_limits_and_control_topic():
     p.limits = FeedLimits(max_payload_bytes=10)
     (out,) = p.handle("fleet/bus1/position", message(ROAD, T0 + 2, 140.0, 2.0), at=T0 + 2.3)
     assert (out.kind, out.record["reason"]) == ("reject", "too_large")
+
+
+def test_vehicle_state_allow_equals_min_max_bucket():
+    """The written-out token bucket gives the floats of its min/max statement, bit for bit,
+    on random receive and fix times (repeats, reordering, bursts, rates below 1 Hz)."""
+    from livematch.core.tracker import Tracker
+    from livematch.pipeline import _VehicleState
+
+    rng = np.random.default_rng(9)
+    for rate_hz in (0.5, 1.0, 2.0, 10.0):
+        state = _VehicleState(Tracker(ROAD, "v", MatchSettings()))
+        bucket = None
+        at, t = 1000.0, 990.0
+        for _ in range(2000):
+            at += float(rng.choice([0.0, 0.05, 0.3, 1.0, 7.5]))
+            t += float(rng.choice([-2.0, 0.0, 0.1, 1.0, 30.0]))
+            cap = max(1.0, rate_hz)
+            if bucket is None:
+                tokens, last_at, last_t = cap, at, t
+            else:
+                tokens, last_at, last_t = bucket
+                tokens = min(cap, tokens + max(at - last_at, t - last_t, 0.0) * rate_hz)
+                last_at, last_t = max(at, last_at), max(t, last_t)
+            ok = tokens >= 1.0
+            bucket = (tokens - 1.0 if ok else tokens, last_at, last_t)
+            assert state.allow(at, t, rate_hz) is ok
+            assert (state.tokens, state.last_at, state.last_t) == bucket

@@ -256,10 +256,14 @@ class FenceMonitor:
         return sorted(k for k, v in self.state.items() if v[0])
 
     def update(self, fences: FenceSet, fix: Fix, x: float, y: float,
-               groups: Iterable[str]) -> list[Alert]:
-        """Take one fix at position (x, y) (raw or matched, metres); return its alerts."""
+               groups: Iterable[str],
+               probe: tuple[list[int], list[bool]] | None = None) -> list[Alert]:
+        """Take one fix at position (x, y) (raw or matched, metres); return its alerts.
+
+        ``probe``: ``fences.probe(x, y)`` when the caller has it already.
+        """
         state = self.state
-        near, near_inner = fences.probe(x, y)
+        near, near_inner = probe if probe is not None else fences.probe(x, y)
         if not near and not state:
             return []  # near no fence and in none: most fixes of a fleet
         inner = dict(zip(near, near_inner, strict=True))  # fence -> point in its inner polygon
@@ -269,6 +273,7 @@ class FenceMonitor:
             outer: Collection[int] = set(near)
         else:
             outer = inner.keys()
+        todo = near
         if state:
             index = fences.index
             if not state.keys() <= index.keys():
@@ -276,57 +281,55 @@ class FenceMonitor:
                     del state[k]  # a fence no longer loaded
             # Fences near the point, and those the vehicle is in (to see it leave them).
             extra = [i for k in state if (i := index[k]) not in outer]
-            todo = sorted(near + extra) if extra else near  # near: sorted already
-        else:
-            todo = near
-        # Only a fence the vehicle is not inside asks for the inner polygon (entering);
-        # inside one, only the outer polygon counts (leaving). Each fence's state is its
-        # own, so this can be decided for all of them before any is updated. The probe
-        # answered for the fences near the point; one being entered (a run of fixes in its
-        # inner polygon under way) that the point is now outside asks shapely.
-        listed = fences.fences
-        rest = [i for i in todo if i not in inner
-                and not ((st := state.get(listed[i].id)) is not None and st[0])]
-        if rest:
-            inner = {**inner, **dict(zip(rest, fences.inside_inner_many(rest, x, y),
-                                         strict=True))}
+            if extra:
+                todo = sorted(near + extra)  # near: sorted already
+                # Only a fence the vehicle is not inside asks for the inner polygon
+                # (entering); inside one, only the outer polygon counts (leaving). Each
+                # fence's state is its own, so this can be decided for all of them before
+                # any is updated. The probe answered for the fences near the point (all
+                # of ``todo`` but ``extra``); one being entered (a run of fixes in its
+                # inner polygon under way) that the point is now outside asks shapely.
+                listed = fences.fences
+                rest = [i for i in extra if i not in inner
+                        and not ((st := state.get(listed[i].id)) is not None and st[0])]
+                if rest:
+                    inner = {**inner, **dict(zip(rest, fences.inside_inner_many(rest, x, y),
+                                                 strict=True))}
         alerts: list[Alert] = []
-        for i in todo:
-            alert = self._one(fences, i, fix, i in outer, inner.get(i, False))
-            if alert is not None:
-                alerts.append(alert)
-        return alerts
-
-    def _one(self, fences: FenceSet, i: int, fix: Fix, in_outer: bool,
-             in_inner: bool) -> Alert | None:
-        fence = fences.fences[i]
+        listed = fences.fences
         settings = fences.settings
-        st = self.state.get(fence.id)
-        if not (st and st[0]):  # not inside
-            if in_inner:
-                if st is None:
-                    st = self.state[fence.id] = [False, fix.t, False, 0]
-                if st[3] == 0:
-                    st[1] = fix.t
+        needed = settings.fence_fixes
+        t = fix.t
+        for i in todo:
+            # one fence's step (inline: it runs for every fence near every fix)
+            fence = listed[i]
+            st = state.get(fence.id)
+            if not (st and st[0]):  # not inside
+                if inner.get(i, False):
+                    if st is None:
+                        st = state[fence.id] = [False, t, False, 0]
+                    if st[3] == 0:
+                        st[1] = t
+                    st[3] += 1
+                    if st[3] >= needed:
+                        state[fence.id] = [True, st[1], False, 0]
+                        alerts.append(_alert(fence, fix, "fence_enter", None))
+                elif st is not None:
+                    del state[fence.id]
+                continue
+            if i not in outer:
                 st[3] += 1
-                if st[3] >= settings.fence_fixes:
-                    self.state[fence.id] = [True, st[1], False, 0]
-                    return _alert(fence, fix, "fence_enter", None)
-            elif st is not None:
-                del self.state[fence.id]
-            return None
-        if not in_outer:
-            st[3] += 1
-            if st[3] >= settings.fence_fixes:
-                del self.state[fence.id]
-                return _alert(fence, fix, "fence_exit", fix.t - st[1])
-            return None
-        st[3] = 0
-        dwell = fence.dwell_s if fence.dwell_s is not None else settings.fence_dwell_s
-        if not st[2] and fix.t - st[1] >= dwell:
-            st[2] = True
-            return _alert(fence, fix, "fence_dwell", fix.t - st[1])
-        return None
+                if st[3] >= needed:
+                    del state[fence.id]
+                    alerts.append(_alert(fence, fix, "fence_exit", t - st[1]))
+                continue
+            st[3] = 0
+            if not st[2]:
+                dwell = fence.dwell_s if fence.dwell_s is not None else settings.fence_dwell_s
+                if t - st[1] >= dwell:
+                    st[2] = True
+                    alerts.append(_alert(fence, fix, "fence_dwell", t - st[1]))
+        return alerts
 
     def to_state(self) -> dict[str, list[Any]]:
         """JSON-ready state."""

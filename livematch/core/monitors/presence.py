@@ -40,21 +40,23 @@ class OffNetworkMonitor:
     off: bool = False
     since: float | None = None  # first fix of the current run without a road nearby
     back: int = 0  # consecutive fixes with a road, while off
-    last_on: list[float] | None = None  # time, lat, lon of the last fix with a road
+    # time, lat, lon of the last fix with a road (a tuple: 16 bytes less than a list, and
+    # the same JSON in a checkpoint; one read back from a checkpoint is a list)
+    last_on: tuple[float, float, float] | list[float] | None = None
 
     def update(self, fix: Fix, has_road: bool, settings: AlertSettings) -> list[Alert]:
         """Take one accepted fix; ``has_road``: the matcher found a road near it."""
         if has_road:
             if not self.off:
                 self.since = None
-                self.last_on = [fix.t, fix.lat, fix.lon]
+                self.last_on = (fix.t, fix.lat, fix.lon)
                 return []
             self.back += 1
             if self.back < settings.on_network_fixes:
                 return []
             since = self.since if self.since is not None else fix.t
             self.off, self.back, self.since = False, 0, None
-            self.last_on = [fix.t, fix.lat, fix.lon]
+            self.last_on = (fix.t, fix.lat, fix.lon)
             return [Alert(fix.vehicle, fix.t, "on_network", {
                 "duration_s": round(fix.t - since, 1), "lat": fix.lat, "lon": fix.lon})]
         self.back = 0
@@ -72,8 +74,10 @@ class OffNetworkMonitor:
             "last_on_network_lon": last[2] if last else None})]
 
     def to_state(self) -> dict[str, Any]:
-        """JSON-ready state."""
-        return asdict(self)
+        """JSON-ready state (``last_on`` a list, as it always was)."""
+        last = self.last_on
+        return {"off": self.off, "since": self.since, "back": self.back,
+                "last_on": list(last) if last is not None else None}
 
     @classmethod
     def from_state(cls, state: dict[str, Any]) -> OffNetworkMonitor:

@@ -168,6 +168,16 @@ class RouteChain:
 #: weights merely rank its candidates (:meth:`_Window.best` breaks ties by cost).
 _WINDOW_WEIGHTS = (0.02, 0.1, 0.0, 0.0)
 _START_ROWS = 4  # a new window's room for live states (grown when a step needs more)
+#: A window with room for more than this many states while it holds no more than half
+#: of that gives the room back (keeps this many): a fresh start beside many route
+#: segments grows a window to hundreds of rows, kilobytes per vehicle kept for good
+#: otherwise. Room changes no answer (a step that needs more grows it and runs again).
+_KEEP_ROWS = 16
+_SHRINK_LEN = 1 + _rk.ROW * _KEEP_ROWS
+#: ... once it has followed the fixes this long: a window that dies and starts afresh
+#: every few fixes (fixes far apart) would grow again at its next start, an extra pass
+#: of the compiled start over the route each time.
+_SETTLED_FIXES = 16
 
 
 def _step_scalars(eps: float, x0: float, y0: float, x1: float, y1: float,
@@ -263,6 +273,9 @@ class _Window:
             self.fixes = 1 if k else 0
         else:
             self.fixes += 1
+            if (len(self.w) > _SHRINK_LEN and 2 * k <= _KEEP_ROWS
+                    and self.fixes >= _SETTLED_FIXES):
+                self.w = self.w[:1 + _rk.ROW * _KEEP_ROWS].copy()
         self.seq = seq
         self.t = t
 
@@ -290,7 +303,7 @@ class _Window:
         return w
 
 
-@dataclass
+@dataclass(slots=True)  # one per vehicle with a route: no instance dict
 class _Anchor:
     """The last on-route fix: time, projected and WGS84 position, progress (or None)."""
 
@@ -302,7 +315,7 @@ class _Anchor:
     progress: float | None
 
 
-@dataclass
+@dataclass(slots=True)  # one per vehicle with a route: no instance dict
 class RouteMonitor:
     """Route adherence of one vehicle on one route (see the module docstring).
 
@@ -369,7 +382,7 @@ class RouteMonitor:
             rev.step(ba, scalars, self.seq, fix.t)
         self.trail_m += step_m  # reset at every on-route fix (the anchor)
         alerts: list[Alert] = []
-        if self.fwd.live:
+        if fwd.k > 0:  # fwd.live
             self._near(fix, alerts)
         else:
             self._far(fix, alerts)
@@ -388,21 +401,28 @@ class RouteMonitor:
                 or rev - fwd >= eps / 2.0)
 
     def _near(self, fix: Fix, alerts: list[Alert]) -> None:
+        # Runs at every fix on the route: the windows' fields are read directly (what
+        # best(), followed() and RouteChain.progress return), _backwards written out.
         s = self.settings
+        fwd = self.fwd
+        rev = self.rev
         self.near += 1
         self.dead_since = None
         self.dead_origin = None
         self.dead_far = 0.0
-        best = self.fwd.best()
-        assert best is not None
-        self.progress_m = self.chain.progress(best[0], best[1])
+        chain = self.chain
+        seg = fwd.best_seg  # fwd.best(): the window is live
+        self.progress_m = chain.cum_forward[seg] + fwd.best_pos * chain._len_forward[seg]
         if self.rejoin is None:
             self.rejoin = (fix.t, self.trail_m)
-        backwards = self._backwards()
-        backwards_now = (self.rev.followed() >= s.wrong_way_m
-                         and self.rev.fixes >= s.on_route_fixes
-                         and self.fwd.start_t > self.rev.start_t
-                         and self.fwd.followed() < s.eps_route_m / 2.0)
+        eps = s.eps_route_m
+        rev_m = rev.most
+        fwd_m = fwd.most
+        backwards = (fwd.start_t > rev.start_t and rev_m >= eps) or rev_m - fwd_m >= eps / 2.0
+        backwards_now = (rev_m >= s.wrong_way_m
+                         and rev.fixes >= s.on_route_fixes
+                         and fwd.start_t > rev.start_t
+                         and fwd_m < eps / 2.0)
         # Two fixes in a row, so one outlier landing on an earlier stretch of the route
         # cannot make it.
         confirmed, self.wrong_seen = backwards_now and self.wrong_seen, backwards_now
@@ -416,7 +436,7 @@ class RouteMonitor:
                 "backwards_m": _m(self.rev.followed()),
                 "lat": fix.lat, "lon": fix.lon,
             }))
-        elif self.wrong and self.fwd.followed() >= s.wrong_way_m:
+        elif self.wrong and fwd_m >= s.wrong_way_m:
             self.wrong = False
         if self.near >= s.on_route_fixes and not backwards:
             if self.state == "off" and self.anchor is not None:

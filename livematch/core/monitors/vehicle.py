@@ -27,7 +27,8 @@ class VehicleAlerts:
     Attributes:
         route: the route monitor, None while the vehicle has no known route.
         requested: the route id last asked for (known or not), None for none.
-        fences: geofence state.
+        fences: geofence state; None while the vehicle is in no fence and about to
+            enter none (most vehicles, most of the time: no object held for them).
         network: off-network state.
         watch: last sign of life (None before the first fix).
 
@@ -43,7 +44,7 @@ class VehicleAlerts:
     def __init__(self) -> None:
         self.route: RouteMonitor | None = None
         self.requested: str | None = None
-        self.fences = FenceMonitor()
+        self.fences: FenceMonitor | None = None
         self.network = OffNetworkMonitor()
         self.watch: StaleWatch | None = None
 
@@ -80,7 +81,19 @@ class VehicleAlerts:
         if fences is not None:
             x, y = (matched if matched is not None and settings.fence_position == "matched"
                     else (fix.x, fix.y))
-            alerts.extend(self.fences.update(fences, fix, x, y, groups))
+            monitor = self.fences
+            if monitor is None:
+                near = fences.probe(x, y)
+                if True not in near[1]:
+                    # in no fence and in no inner polygon: a fresh monitor would neither
+                    # alert nor keep anything (FenceMonitor.update)
+                    return alerts
+                monitor = FenceMonitor()
+                alerts.extend(monitor.update(fences, fix, x, y, groups, near))
+            else:
+                alerts.extend(monitor.update(fences, fix, x, y, groups))
+            # a monitor with no state is a fresh one: none is kept until it has some
+            self.fences = monitor if monitor.state else None
         return alerts
 
     def seen(self, fix: Fix, at: float) -> list[Alert]:
@@ -96,7 +109,7 @@ class VehicleAlerts:
             "v": STATE_VERSION,
             "requested": self.requested,
             "route": self.route.to_state() if self.route is not None else None,
-            "fences": self.fences.to_state(),
+            "fences": self.fences.to_state() if self.fences is not None else {},
             "network": self.network.to_state(),
             "watch": self.watch.to_state() if self.watch is not None else None,
         }
@@ -118,7 +131,7 @@ class VehicleAlerts:
             chain = chain_of(route["route"])
             if chain is not None:
                 a.route = RouteMonitor.from_state(route, chain, settings)
-        a.fences = FenceMonitor.from_state(state["fences"])
+        a.fences = FenceMonitor.from_state(state["fences"]) if state["fences"] else None
         a.network = OffNetworkMonitor.from_state(state["network"])
         a.watch = StaleWatch.from_state(state["watch"]) if state["watch"] else None
         return a
