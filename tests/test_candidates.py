@@ -446,3 +446,33 @@ def test_tracker_keeps_sparse_vehicles_trees_tight() -> None:
                 # the newest fix's states (read without rows(), which compacts with room
                 # to spare: a filtered fix next would find the tree as the test left it)
                 assert tree.seq_of(tree.n - 1) == tracker.seq
+
+
+def test_tree_kernels_calling_the_sweep_kernel_are_keyed_on_its_code() -> None:
+    """Every tree kernel that calls a sweep-kernel function carries that file's code key.
+
+    numba's disk cache notices changes to a function's own file only (numba's caching
+    notes, from memory), so a kernel calling into ``_sweep_kernel`` must hold
+    ``code_key(_sweep_kernel)`` as a closure constant, which the cache keys on. Walks the
+    names each compiled function reads, so a new caller without the key fails here.
+    """
+    from livematch.core import _sweep_kernel as sk
+    from livematch.core import _tree_kernel as tk
+    from livematch.core._kernel_key import code_key
+
+    key = code_key(sk)
+    own = {name: value for name, value in vars(tk).items()
+           if hasattr(value, "py_func") and getattr(sk, name, None) is not value}
+    # a kernel needs the key if it calls a sweep-kernel function, or a kernel that does
+    callers: set[str] = set()
+    while True:
+        more = {name for name, value in own.items()
+                if any(hasattr(getattr(sk, n, None), "py_func") or n in callers
+                       for n in value.py_func.__code__.co_names)}
+        if more <= callers:
+            break
+        callers |= more
+    for name in callers:
+        closure = own[name].py_func.__closure__ or ()
+        assert key in [c.cell_contents for c in closure], name
+    assert sorted(callers) == ["junction_split", "live_answer", "trim"]

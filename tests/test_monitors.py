@@ -615,8 +615,8 @@ def test_route_window_advance_equals_python_reference() -> None:
     assert fresh_starts > 20 and sweeps > 100
 
 
-def test_route_kernel_code_key_follows_the_callee_code() -> None:
-    """The route kernel's cache key changes with a compiled callee's code or constants.
+def test_kernel_code_key_follows_the_callee_code() -> None:
+    """A kernel's cache key changes with a compiled callee's code or constants.
 
     numba's documentation (caching notes, from memory): the disk cache is not invalidated
     when a function called from another file changes; the key is what forces a new
@@ -626,7 +626,7 @@ def test_route_kernel_code_key_follows_the_callee_code() -> None:
 
     import numba
 
-    from livematch.core.monitors import _route_kernel as rk
+    from livematch.core._kernel_key import code_key
 
     def module(body: str, limit: int) -> types.ModuleType:
         m = types.ModuleType("probe_module")
@@ -635,11 +635,11 @@ def test_route_kernel_code_key_follows_the_callee_code() -> None:
         exec(f"@numba.njit\ndef f(x):\n    return {body}\n", m.__dict__)
         return m
 
-    base = rk.code_key(module("x + 1", 3))
-    assert rk.code_key(module("x + 1", 3)) == base  # stable: no addresses in it
-    assert rk.code_key(module("x + 2", 3)) != base
-    assert rk.code_key(module("x - 1", 3)) != base
-    assert rk.code_key(module("x + 1", 4)) != base
+    base = code_key(module("x + 1", 3))
+    assert code_key(module("x + 1", 3)) == base  # stable: no addresses in it
+    assert code_key(module("x + 2", 3)) != base
+    assert code_key(module("x - 1", 3)) != base
+    assert code_key(module("x + 1", 4)) != base
 
 
 def test_route_window_best_equals_python_max() -> None:

@@ -24,9 +24,13 @@ arrays makes the same decisions as one on objects (``tests/test_candidates.py``)
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 
 import numba
 import numpy as np
+
+from livematch.core import _sweep_kernel as _sk
+from livematch.core._kernel_key import code_key
 
 # The row layout, and the sweep step on a tree (``tree_sweep``), live in _sweep_kernel:
 # numba's disk cache only notices changes to a function's own file, and the step inlines
@@ -146,30 +150,6 @@ def live_scores(
 
 
 @_jit
-def live_answer(
-    geo: np.ndarray, ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, lo: int, hi: int,
-    prefer: int, fix_xy: np.ndarray, fix_n: int, fix_seq0: int, first: int,
-    inv_two_sigma2: float, inv_tau: float, max_dt: float, margin: float,
-) -> tuple[int, int]:
-    """The live answer's rows in one call: ``(best, split)``.
-
-    ``best``: :func:`best_scored` by :func:`live_scores` (over ``fix_xy[:fix_n]``) when
-    ``inv_tau`` > 0, else :func:`best_row` (path cost). ``split``: :func:`junction_split`
-    around ``best`` with the same ranking, -1 when ``margin`` is not positive. Each call
-    from Python costs a dispatch per argument and a returned array costs more than the
-    scoring itself, so the tracker asks for both rows at once.
-    """
-    if inv_tau > 0.0:
-        score = live_scores(geo, ti, tf, lo, hi, fix_xy[:fix_n], fix_seq0, first,
-                            inv_two_sigma2, inv_tau, max_dt)
-    else:
-        score = tf[lo:hi, F_COST].copy()
-    best = best_scored(ti, score, lo, hi, prefer)
-    split = junction_split(ti, tv, lo, hi, best, margin, score) if margin > 0.0 else -1
-    return best, split
-
-
-@_jit
 def _still_on(ti: np.ndarray, node: int, anc: int) -> bool:
     """Whether the path from ``anc`` to ``node`` never left ``anc``'s segment."""
     seg = ti[anc, I_SEG]
@@ -190,46 +170,6 @@ def _branch(ti: np.ndarray, tv: np.ndarray, node: int, anc: int) -> int:
     if ti[cur, I_VIAN] > 0:
         return tv[ti[cur, I_VIA0]]
     return ti[cur, I_SEG]
-
-
-@_jit
-def junction_split(
-    ti: np.ndarray, tv: np.ndarray, lo: int, hi: int, best: int, margin: float,
-    score: np.ndarray,
-) -> int:
-    """The junction the near-best candidates split at, or -1 to report ``best`` itself.
-
-    Near-best: a live row r with ``score[r - lo]`` within ``margin`` of the best one's.
-    Mirrors the decision of :meth:`livematch.core.tracker.Tracker._hold_at_junction`
-    up to (not including) its distance check.
-    """
-    limit = score[best - lo] + margin
-    close = np.empty(hi - lo, np.int64)
-    k = 0
-    varied = False
-    for r in range(lo, hi):
-        if score[r - lo] <= limit:
-            close[k] = r
-            k += 1
-            if ti[r, I_SEG] != ti[best, I_SEG]:
-                varied = True
-    if k < 2 or not varied:
-        return -1
-    walk = close[:k].copy()
-    split = rows_ancestor(ti, walk, k, -1)
-    if split < 0 or split == best or _still_on(ti, best, split):
-        return -1
-    first = -1
-    for j in range(k):
-        n = close[j]
-        if _still_on(ti, n, split):
-            continue
-        b = _branch(ti, tv, n, split)
-        if first < 0:
-            first = b
-        elif b != first:
-            return split
-    return -1
 
 
 @_jit
@@ -332,31 +272,132 @@ def chain_into(ti: np.ndarray, top: int, min_seq: int, out: np.ndarray) -> int:
     return length
 
 
-@_jit
-def trim(
-    ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, lo: int, hi: int, next_commit: int,
-    seq: int, trim_seq: int, max_lag: int, prefer: int,
-) -> tuple[int, int, int]:
-    """Cut the history no future commit needs; force-prune a tree that stopped committing.
+# Kernels that call into _sweep_kernel (another file) are made by factories with that
+# file's code_key as a closure constant: numba's disk cache keys on closure constants
+# but does not notice a change to a callee in another file (livematch.core._kernel_key).
+_SWEEP_KEY = code_key(_sk)
 
-    Commits only ever read states from fix ``next_commit - 1`` on, so every back-pointer
-    to an older state is cut (that state becomes unreachable, and the next compaction
-    drops it): a tree holds the live states and their paths back to the last commit,
-    never more. If the tree has not been cut for ``2 * max_lag`` fixes (commits stalled),
-    only the live states descending from the best one's ancestor ``max_lag`` fixes back
-    are kept.
 
-    Returns ``(hi, trim_seq, forced)``: the live block's new end, the fix the history now
-    starts at and the seq of the state a forced prune kept (-1 if none).
-    """
-    cut = next_commit - 1
-    cut_links(ti, lo, hi, cut)
-    if cut > trim_seq:
-        trim_seq = cut
-    if seq - trim_seq > 2 * max_lag:
-        keep = ancestor_at(ti, best_row(ti, tf, lo, hi, prefer), seq - max_lag)
-        kept = int(ti[keep, I_SEQ])
-        ti[keep, I_PARENT] = -1  # before pruning: ``keep`` may be a live row that moves
-        hi = prune_live(ti, tf, tv, lo, hi, keep)
-        return hi, kept, kept
-    return hi, trim_seq, -1
+def _keyed_junction_split(sweep_key: int) -> Callable[..., int]:
+    """``junction_split`` compiled with the sweep kernel's :func:`code_key` as a constant."""
+
+    @_jit
+    def junction_split(
+        ti: np.ndarray, tv: np.ndarray, lo: int, hi: int, best: int, margin: float,
+        score: np.ndarray,
+    ) -> int:
+        """The junction the near-best candidates split at, or -1 to report ``best`` itself.
+
+        Near-best: a live row r with ``score[r - lo]`` within ``margin`` of the best one's.
+        Mirrors the decision of :meth:`livematch.core.tracker.Tracker._hold_at_junction`
+        up to (not including) its distance check.
+        """
+        if sweep_key == -1:  # never: the key only has to be part of the function
+            return -1
+        limit = score[best - lo] + margin
+        close = np.empty(hi - lo, np.int64)
+        k = 0
+        varied = False
+        for r in range(lo, hi):
+            if score[r - lo] <= limit:
+                close[k] = r
+                k += 1
+                if ti[r, I_SEG] != ti[best, I_SEG]:
+                    varied = True
+        if k < 2 or not varied:
+            return -1
+        walk = close[:k].copy()
+        split = rows_ancestor(ti, walk, k, -1)
+        if split < 0 or split == best or _still_on(ti, best, split):
+            return -1
+        first = -1
+        for j in range(k):
+            n = close[j]
+            if _still_on(ti, n, split):
+                continue
+            b = _branch(ti, tv, n, split)
+            if first < 0:
+                first = b
+            elif b != first:
+                return split
+        return -1
+
+    return junction_split
+
+
+junction_split = _keyed_junction_split(_SWEEP_KEY)
+
+
+def _keyed_live_answer(sweep_key: int) -> Callable[..., tuple[int, int]]:
+    """``live_answer`` compiled with the sweep kernel's :func:`code_key` as a constant."""
+
+    @_jit
+    def live_answer(
+        geo: np.ndarray, ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, lo: int, hi: int,
+        prefer: int, fix_xy: np.ndarray, fix_n: int, fix_seq0: int, first: int,
+        inv_two_sigma2: float, inv_tau: float, max_dt: float, margin: float,
+    ) -> tuple[int, int]:
+        """The live answer's rows in one call: ``(best, split)``.
+
+        ``best``: :func:`best_scored` by :func:`live_scores` (over ``fix_xy[:fix_n]``) when
+        ``inv_tau`` > 0, else :func:`best_row` (path cost). ``split``: :func:`junction_split`
+        around ``best`` with the same ranking, -1 when ``margin`` is not positive. Each call
+        from Python costs a dispatch per argument and a returned array costs more than the
+        scoring itself, so the tracker asks for both rows at once.
+        """
+        if sweep_key == -1:  # never (see junction_split)
+            return -1, -1
+        if inv_tau > 0.0:
+            score = live_scores(geo, ti, tf, lo, hi, fix_xy[:fix_n], fix_seq0, first,
+                                inv_two_sigma2, inv_tau, max_dt)
+        else:
+            score = tf[lo:hi, F_COST].copy()
+        best = best_scored(ti, score, lo, hi, prefer)
+        split = junction_split(ti, tv, lo, hi, best, margin, score) if margin > 0.0 else -1
+        return best, split
+
+    return live_answer
+
+
+live_answer = _keyed_live_answer(_SWEEP_KEY)
+
+
+def _keyed_trim(sweep_key: int) -> Callable[..., tuple[int, int, int]]:
+    """``trim`` compiled with the sweep kernel's :func:`code_key` as a constant."""
+
+    @_jit
+    def trim(
+        ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, lo: int, hi: int, next_commit: int,
+        seq: int, trim_seq: int, max_lag: int, prefer: int,
+    ) -> tuple[int, int, int]:
+        """Cut the history no future commit needs; force-prune a tree that stopped committing.
+
+        Commits only ever read states from fix ``next_commit - 1`` on, so every back-pointer
+        to an older state is cut (that state becomes unreachable, and the next compaction
+        drops it): a tree holds the live states and their paths back to the last commit,
+        never more. If the tree has not been cut for ``2 * max_lag`` fixes (commits stalled),
+        only the live states descending from the best one's ancestor ``max_lag`` fixes back
+        are kept.
+
+        Returns ``(hi, trim_seq, forced)``: the live block's new end, the fix the history now
+        starts at and the seq of the state a forced prune kept (-1 if none).
+        """
+        if sweep_key == -1:  # never (see junction_split)
+            return hi, trim_seq, -1
+        cut = next_commit - 1
+        cut_links(ti, lo, hi, cut)
+        if cut > trim_seq:
+            trim_seq = cut
+        if seq - trim_seq > 2 * max_lag:
+            keep = ancestor_at(ti, best_row(ti, tf, lo, hi, prefer), seq - max_lag)
+            kept = int(ti[keep, I_SEQ])
+            ti[keep, I_PARENT] = -1  # before pruning: ``keep`` may be a live row that moves
+            hi = prune_live(ti, tf, tv, lo, hi, keep)
+            return hi, kept, kept
+        return hi, trim_seq, -1
+
+
+    return trim
+
+
+trim = _keyed_trim(_SWEEP_KEY)

@@ -34,7 +34,6 @@ last bits of a double, where GEOS's distance and the quadratic's rounding may di
 from __future__ import annotations
 
 import math
-import zlib
 from collections.abc import Callable
 from typing import Any
 
@@ -43,6 +42,7 @@ import numpy as np
 import numpy.typing as npt
 
 from livematch.core import _sweep_kernel as _k
+from livematch.core._kernel_key import code_key
 from livematch.core.network import RoadNetwork
 from livematch.core.sweep import Node, StepContext, fresh_start, step_route, sweep_step
 from livematch.core.view import NetworkView
@@ -190,38 +190,6 @@ def _advance(
     _rebase(w, count)
     j = _best(w, count)
     return count, 1, 0.0, int(w[1 + ROW * j]), w[1 + ROW * j + 2]
-
-
-_CodeType = type((lambda: 0).__code__)  # types.CodeType without the import (core layers)
-
-
-def _code_bytes(code: Any) -> bytes:
-    """A code object's bytecode, names and constants (nested code recursively), as bytes."""
-    parts = [code.co_code, repr(code.co_names).encode()]
-    for c in code.co_consts:
-        parts.append(_code_bytes(c) if isinstance(c, _CodeType) else repr(c).encode())
-    return b"\x00".join(parts)
-
-
-def code_key(module: Any) -> int:
-    """Checksum of a kernel module: its compiled functions' code and its number constants.
-
-    numba's disk cache notices a change to a cached function's own file only, not to a
-    compiled function it calls in another file (here: the sweep kernel). The entry points
-    below are made with this checksum of :mod:`livematch.core._sweep_kernel` as a closure
-    constant, which numba's cache does key on, so a changed sweep kernel means a new
-    compilation instead of a stale one. Computed from the loaded code (no file read).
-
-    >>> code_key(_k) == code_key(_k), isinstance(code_key(_k), int)
-    (True, True)
-    """
-    parts: list[bytes] = []
-    for name, value in sorted(vars(module).items()):
-        if hasattr(value, "py_func"):  # a numba dispatcher
-            parts.append(name.encode() + b"=" + _code_bytes(value.py_func.__code__))
-        elif isinstance(value, int | float) and not isinstance(value, bool):
-            parts.append(f"{name}={value!r}".encode())
-    return zlib.crc32(b"\x01".join(parts))
 
 
 def _entry_points(sweep_key: int) -> tuple[Callable[..., Any], Callable[..., Any]]:
