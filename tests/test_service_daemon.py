@@ -592,7 +592,13 @@ async def test_daemon_over_tls_with_own_ca(tmp_path: Path, prefix: str) -> None:
         cfg.write_text(cfg.read_text().replace(f'ca_file = "{broker.ca_file}"\n', ""))
         untrusting = make_daemon(cfg)
         task = asyncio.create_task(untrusting.run())
-        await asyncio.sleep(1.0)
+        # the store and the restore finish (a second or more on a busy machine); the
+        # broker never does: it stays the one thing missing
+        deadline = asyncio.get_running_loop().time() + 30.0
+        while untrusting.readiness() != ["broker"]:
+            assert asyncio.get_running_loop().time() < deadline, untrusting.readiness()
+            await asyncio.sleep(0.1)
+        await asyncio.sleep(1.0)  # several connection attempts later
         assert untrusting.readiness() == ["broker"]
         untrusting.request_stop()
         await asyncio.wait_for(task, timeout=30)
