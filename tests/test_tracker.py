@@ -689,3 +689,18 @@ def test_tracker_stand_then_back_is_not_committed_ahead_of_the_stand() -> None:
     net, done = _stand_and_turn_back(MatchSettings(stand_wait=False))
     ahead = [f.t for c in done for f in c.fixes if reach(net, f.segment) > 200.0]
     assert len(ahead) >= 60  # the stand (fixes 18-97) committed ahead
+
+
+def test_tracker_stop_turns_turn_round_where_a_1hz_vehicle_stood() -> None:
+    """With stop_turns, the stand itself is the evidence at 1 Hz: the smallest level dies
+    a few seconds after the vehicle set off back west, when the last step is fast, and is
+    bridged through a U-turn at the shape point where it stood. Every fix on the way back
+    is answered heading west and the committed path is one connected route (without the
+    stand's evidence the way back was committed heading east, standing at x = 146-150)."""
+    net, done = _stand_and_turn_back(MatchSettings(stop_turns=True))
+    path = [s for c in done for s in c.path]
+    assert_connected(net, path)
+    back = [f for c in done for f in c.fixes if f.t >= 100.0]
+    assert len(back) == 15
+    assert all(net.node_xy[net.seg_to[f.segment], 0] < net.node_xy[net.seg_from[f.segment], 0]
+               for f in back)

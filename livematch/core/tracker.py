@@ -181,8 +181,8 @@ class Tracker:
     # than a small candidate tree
     __slots__ = ("_view", "_weights", "before", "buffer", "fix_n", "fix_seq0", "fix_xy",
                  "jumps", "last", "last_commit", "last_released_t", "last_seg", "levels",
-                 "network", "next_commit", "seq", "settings", "skipped", "speed", "times",
-                 "vehicle")
+                 "network", "next_commit", "seq", "settings", "skipped", "speed", "stand_from",
+                 "stood_t", "times", "vehicle")
 
     def __init__(
         self, network: RoadNetwork, vehicle: str, settings: MatchSettings | None = None
@@ -218,6 +218,10 @@ class Tracker:
         self.fix_seq0 = 1
         self.fix_n = 0
         self.before: _Before | None = None  # the state before the newest fix (spike test)
+        # with stop_turns: the first fix (t, x, y) of the newest run of fixes within
+        # STAND_SIGMAS sigma_m of it, and the last time such a run spanned STAND_S
+        self.stand_from: tuple[float, float, float] | None = None
+        self.stood_t: float | None = None
 
     @property
     def last_time(self) -> float | None:
@@ -307,6 +311,9 @@ class Tracker:
         self._log_fix(fix.x, fix.y)
         self.last = (fix.t, fix.x, fix.y)
         stood = self.speed is not None and self.speed < STOOD_MPS
+        if s.stop_turns:
+            lately = self._stood_lately(fix, prev[0] if prev is not None else None)
+            stood = stood or lately
         if prev is not None and fix.t > prev[0]:
             self.speed = math.hypot(fix.x - prev[1], fix.y - prev[2]) / (fix.t - prev[0])
         dt = fix.t - prev[0] if prev is not None else 0.0
@@ -635,6 +642,42 @@ class Tracker:
             del self.times[stale]
         self._trim(seq, t)
 
+    def _stood_lately(self, fix: Fix, prev_t: float | None) -> bool:
+        """Whether the vehicle stood still until at most ``STAND_AFTER_S`` before ``prev_t``.
+
+        The evidence of a stand for ``MatchSettings.stop_turns`` beyond the last step's
+        speed: a run of accepted fixes spanning at least ``STAND_S`` seconds, all within
+        ``STAND_SIGMAS`` x ``sigma_m`` of the run's first fix, that went on until at most
+        ``STAND_AFTER_S`` seconds before the fix before ``fix`` (time ``prev_t``). Why: at
+        1-5 s between fixes a vehicle that stood and leaves the way it came is moving again when its
+        smallest level dies (a few seconds after it set off), so the speed of the last
+        step says nothing of the stand; the run does. Kept in two scalars
+        (``stand_from``, ``stood_t``, serialised) because the fixes of a stand may be
+        committed, and their times dropped, before the vehicle sets off. Then updates
+        them with ``fix``.
+
+        Example (fixes 1 s apart within 1 m for 11 s, then at 10 m/s: a stand from the
+        fix at 10 s, answered from the step after it until 10 s after the stand):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (500.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "v1", MatchSettings(stop_turns=True))
+            >>> xs = [50.0 + i % 2 for i in range(12)] + [65.0 + 10 * i for i in range(14)]
+            >>> [tracker._stood_lately(Fix("v1", float(t), 0.0, 0.0, x, 1.0),
+            ...                        float(t - 1) if t else None)
+            ...  for t, x in enumerate(xs)][9:]  # doctest: +NORMALIZE_WHITESPACE
+            [False, False, True, True, True, True, True, True, True, True, True, True, True,
+             True, False, False, False]
+        """
+        stood = self.stood_t is not None and prev_t is not None and (
+            prev_t - self.stood_t <= STAND_AFTER_S)
+        anchor = self.stand_from
+        if anchor is None or math.hypot(fix.x - anchor[1], fix.y - anchor[2]) > (
+                STAND_SIGMAS * self.settings.sigma_m):
+            self.stand_from = anchor = (fix.t, fix.x, fix.y)
+        if fix.t - anchor[0] >= STAND_S:
+            self.stood_t = fix.t
+        return stood
+
     def _standing(self, seq: int, t: float) -> bool:
         """Whether the vehicle stood still for ``STAND_S`` seconds, ending just before fix ``seq``.
 
@@ -925,6 +968,8 @@ class Tracker:
             "fixes": [self.fix_seq0 + skip, self.fix_n - skip],
             "before": before,
         }
+        if self.stand_from is not None:
+            state["stand"] = [self.stand_from, self.stood_t]
         header = json.dumps(state, separators=(",", ":")).encode()
         return STATE_FORMAT + zlib.compress(
             b"".join((len(header).to_bytes(4, "little"), header, *arrays)))
@@ -995,6 +1040,9 @@ class Tracker:
         tracker.skipped = list(state["skipped"])
         tracker.last_seg = state["last_seg"]
         tracker.last_commit = tuple(state["last_commit"]) if state["last_commit"] else None
+        stand = state.get("stand")  # written only with stop_turns (absent in older states)
+        if stand is not None:
+            tracker.stand_from, tracker.stood_t = tuple(stand[0]), stand[1]
         return tracker
 
 
