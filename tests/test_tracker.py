@@ -651,3 +651,56 @@ def test_tracker_street_turns_follow_a_turn_in_the_middle_of_a_road(
     assert east[:4] == [True] * 4 and east[6:] == [False] * 5
     _, east_default = _turn_at_shape_point(MatchSettings(), STOP_THEN_BACK)
     assert east_default[6] is True and east_default[7:] == [False] * 4
+
+
+def _stand_and_turn_back(settings: MatchSettings) -> tuple[RoadNetwork, list[Commit]]:
+    """1 Hz fixes on a 400 m two-way road with a shape point every 5 m: east from x = 30
+    to the shape point at x = 200 at 10 m/s, an 80 s stand there while the GNSS error
+    leans ahead (0.5 m/s up to 6 m, then held), then back west at 10 m/s."""
+    net = network_from_roads([Road([(float(x), 0.0) for x in range(0, 405, 5)], way=7)])
+    xs = ([30.0 + 10.0 * i for i in range(18)] + [200.0 + min(6.0, 0.5 * i) for i in range(80)]
+          + [200.0 - 10.0 * i for i in range(1, 18)])
+    tracker = Tracker(net, "van4", settings)
+    events = []
+    for i, x in enumerate(xs):
+        events += tracker.update(Fix("van4", float(i), 0.0, 0.0, x, 2.0, 5.0))
+    events += tracker.flush()
+    return net, commits(events)
+
+
+def test_tracker_stand_then_back_is_not_committed_ahead_of_the_stand() -> None:
+    """A vehicle that stands at 1 Hz longer than max_lag_fixes and then leaves the way it
+    came: with stand_wait (the default) no fix is committed on road beyond the stand,
+    where the vehicle never drove; without it the forced commit during the stand picks a
+    candidate the leaning error drew ahead, and the stand is committed there."""
+    shapely = pytest.importorskip("shapely")
+    road = shapely.LineString([(0.0, 0.0), (400.0, 0.0)])
+
+    def reach(net: RoadNetwork, seg: int) -> float:
+        # how far along the road the segment reaches, by shapely's linear referencing
+        ends = (net.node_xy[net.seg_from[seg]], net.node_xy[net.seg_to[seg]])
+        return max(road.project(shapely.Point(*xy)) for xy in ends)
+
+    net, done = _stand_and_turn_back(MatchSettings())
+    fixes = [f for c in done for f in c.fixes]
+    assert [f.t for f in fixes] == [float(i) for i in range(115)]
+    assert max(reach(net, f.segment) for f in fixes) <= 200.0
+    assert max(reach(net, s) for c in done for s in c.path) <= 200.0
+    net, done = _stand_and_turn_back(MatchSettings(stand_wait=False))
+    ahead = [f.t for c in done for f in c.fixes if reach(net, f.segment) > 200.0]
+    assert len(ahead) >= 60  # the stand (fixes 18-97) committed ahead
+
+
+def test_tracker_stop_turns_turn_round_where_a_1hz_vehicle_stood() -> None:
+    """With stop_turns, the stand itself is the evidence at 1 Hz: the smallest level dies
+    a few seconds after the vehicle set off back west, when the last step is fast, and is
+    bridged through a U-turn at the shape point where it stood. Every fix on the way back
+    is answered heading west and the committed path is one connected route (without the
+    stand's evidence the way back was committed heading east, standing at x = 146-150)."""
+    net, done = _stand_and_turn_back(MatchSettings(stop_turns=True))
+    path = [s for c in done for s in c.path]
+    assert_connected(net, path)
+    back = [f for c in done for f in c.fixes if f.t >= 100.0]
+    assert len(back) == 15
+    assert all(net.node_xy[net.seg_to[f.segment], 0] < net.node_xy[net.seg_from[f.segment], 0]
+               for f in back)

@@ -88,6 +88,13 @@ class MatchSettings:
             drives it gains 1-2.4 points of final accuracy at 15-30 s (more than
             ``street_turns`` at 30 s), on the random walk it costs 0.4 / 1.0 points at
             Helsinki 15 / 30 s (README, "The fleet model").
+        stand_wait: while the vehicle stands (its fixes of 10 s within 2 ``sigma_m`` of
+            each other, until 10 s after that; :meth:`livematch.core.tracker.Tracker.
+            _standing`), the fix-count lag (``max_lag_fixes``) does not force a commit;
+            ``max_lag_s`` still does (so it matters at about 1 Hz only). A commit forced
+            during a stand picks among candidates that the wandering GNSS error has spread
+            along the road around the stop, and a vehicle that then leaves the way it came
+            is committed on road ahead that it never drove.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -111,6 +118,7 @@ class MatchSettings:
     spike_cost: float = 30.0
     street_turns: bool = False
     stop_turns: bool = False
+    stand_wait: bool = True
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -139,7 +147,7 @@ class MatchSettings:
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))
-        for name in ("street_turns", "stop_turns"):
+        for name in ("street_turns", "stop_turns", "stand_wait"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):
