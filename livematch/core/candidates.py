@@ -479,6 +479,7 @@ def warm_up() -> None:
     tree.driven_since(best, row, net.seg_len)
     tree.common_ancestor(0)
     tree.prune(row)
+    tree.trim(0, tracker.seq, 0, 60, -1)  # a tracker's own trim is rare: the commit check cuts
     # the sweep kernel on its own (the route monitor's step) is a compilation of its own
     live, _ = tree.live_nodes(view_of(net))
     ctx = StepContext.between(view_of(net), tracker.settings, 15.0, 110.0, 1.0, 120.0, 1.0,
