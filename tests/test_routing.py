@@ -390,3 +390,11 @@ def test_match_settings_street_turns_must_be_bool() -> None:
     """street_turns is a switch: anything but true/false is reported by key."""
     assert MatchSettings(street_turns=True).problems() == []
     assert MatchSettings(street_turns=1).problems()[0][0] == "street_turns"  # type: ignore[arg-type]
+
+
+def test_match_settings_street_turn_cost_must_be_a_number_at_least_zero() -> None:
+    """street_turn_cost is a cost: a negative or non-finite one is reported by key."""
+    assert MatchSettings(street_turn_cost=2.0).problems() == []
+    assert MatchSettings(street_turn_cost=-1.0).problems() == [
+        ("street_turn_cost", "must be a number >= 0, got -1.0")]
+    assert MatchSettings(street_turn_cost=float("nan")).problems()[0][0] == "street_turn_cost"

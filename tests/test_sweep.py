@@ -171,3 +171,46 @@ def test_bridge_step_pace_prefers_the_candidate_keeping_its_speed() -> None:
     without = bridged(1e9)  # a pace term of 1e-7: the path so far decides
     assert without[3].cost - without[1].cost == pytest.approx(1.0, abs=1e-6)
     assert best_leaf(without).seg == 1
+
+
+def test_bridge_step_street_turn_cost_charges_turns_in_the_street_only() -> None:
+    """A U-turn at a shape point costs ``street_turn_cost`` more; one at a dead end does not.
+
+    A two-way road (0, 0) - (300, 0) - (600, 0) - (2000, 0): x = 600 is a shape point, the
+    ends are dead ends. A vehicle heading east at x = 450 that stood there (``stood``,
+    ``stop_turns``) is next seen at x = 520 heading west: the westbound segment is reached
+    only through a U-turn at the shape point (route 150 + 80 m; shapely's length of that
+    polyline is the outside check). The eastbound candidate turns nowhere and pays
+    nothing. At the west dead end (x = 0) the network has a U-turn: no extra charge.
+    """
+    net = network_from_roads([Road([(0.0, 0.0), (300.0, 0.0), (600.0, 0.0), (2000.0, 0.0)],
+                                   way=9)])
+    view = view_of(net)
+    east, west = 2, 3
+    assert net.segment_coords(east) == (300.0, 0.0, 600.0, 0.0)
+    assert net.segment_coords(west) == (600.0, 0.0, 300.0, 0.0)
+    assert not view.turn_back_ok[net.seg_to[east]] and view.turn_back_ok[net.seg_from[0]]
+    before = Node(0, 1, 0.0, 1.0, 300.0, 0.0, None, (), 0.0, 0.0)
+    here = Node(east, 2, 15.0, 0.5, 450.0, 0.0, before, (), 0.0, 0.0)
+
+    def bridged(street_turn_cost: float, stood: bool, live: dict[int, Node], x1: float,
+                x0: float = 450.0) -> dict[int, Node]:
+        settings = MatchSettings(stop_turns=True, street_turn_cost=street_turn_cost)
+        ctx = StepContext.between(view, settings, 15.0, x0, 2.0, x1, 2.0, 3, 30.0, stood)
+        return bridge_step(net, live, ctx, 400.0)
+
+    free = bridged(0.0, True, {east: here}, 520.0)
+    charged = bridged(3.0, True, {east: here}, 520.0)
+    assert sorted(free) == sorted(charged) == [east, west]
+    assert free[west].parent is here and free[west].via == ()
+    turn = shapely.LineString([(450.0, 0.0), (600.0, 0.0), (free[west].x, 0.0)]).length
+    assert turn == pytest.approx(230.0, abs=1e-9)  # shapely's length of the driven route
+    assert charged[west].cost - free[west].cost == pytest.approx(3.0, abs=1e-9)
+    assert charged[east].cost == free[east].cost
+    assert west not in bridged(0.0, False, {east: here}, 520.0)  # no stop: no turn there
+    # heading west at x = 100, next seen at x = 60 heading east: the turn is at the dead
+    # end x = 0, which the network allows, so street_turn_cost is not charged
+    start = Node(1, 1, 0.0, 0.0, 300.0, 0.0, None, (), 0.0, 0.0)
+    back = Node(1, 2, 15.0, 200.0 / 300.0, 100.0, 0.0, start, (), 0.0, 0.0)
+    at_end = [bridged(c, False, {1: back}, 60.0, 100.0)[0].cost for c in (0.0, 3.0)]
+    assert at_end[0] == at_end[1]

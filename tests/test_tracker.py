@@ -351,9 +351,11 @@ def test_tracker_reads_older_lmt2_state(name: str, every: int, cut: int) -> None
                        DriveSettings(duration_s=240.0 if every == 1 else 900.0),
                        drivable_segments(net))
     fixes = [Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy) for o in observe(d, every)]
-    straight = Tracker(net, "bus-7")
+    # the settings the states were written with (stop_turns was off by default then)
+    then = MatchSettings(stop_turns=False)
+    straight = Tracker(net, "bus-7", then)
     run(straight, fixes[:cut], flush=False)
-    restored = Tracker.from_bytes(net, None, blob)
+    restored = Tracker.from_bytes(net, then, blob)
     assert (restored.before is not None) == (every == 10)
     assert restored.to_bytes() == straight.to_bytes()
     after = run(restored, fixes[cut:])
@@ -638,18 +640,20 @@ def _turn_at_shape_point(settings: MatchSettings, xs: list[float]) -> tuple[list
 STOP_THEN_BACK = [0.0, 150.0, 300.0, 450.0, 600.0, 600.0, 600.0, 450.0, 300.0, 150.0, 30.0]
 
 
-@pytest.mark.parametrize("settings", [MatchSettings(street_turns=True),
-                                      MatchSettings(stop_turns=True)])
+@pytest.mark.parametrize("settings", [MatchSettings(street_turns=True, stop_turns=False),
+                                      MatchSettings(stop_turns=True, street_turn_cost=0.0),
+                                      MatchSettings()])
 def test_tracker_street_turns_follow_a_turn_in_the_middle_of_a_road(
         settings: MatchSettings) -> None:
     """15 s fixes east along the road, a stop at the shape point 600 m in, then back west:
     with street_turns, or stop_turns (the vehicle stood there), the tree goes on through
     a U-turn at the shape point, so the last fix at the stop is already answered on the
-    way back; the defaults can only restart there and leave it heading east."""
+    way back (stop_turns is on by default); without either the tracker can only restart
+    there and leave it heading east."""
     path, east = _turn_at_shape_point(settings, STOP_THEN_BACK)
     assert path == [0, 2, 3, 1]  # east to the shape point, turned there, back west
     assert east[:4] == [True] * 4 and east[6:] == [False] * 5
-    _, east_default = _turn_at_shape_point(MatchSettings(), STOP_THEN_BACK)
+    _, east_default = _turn_at_shape_point(MatchSettings(stop_turns=False), STOP_THEN_BACK)
     assert east_default[6] is True and east_default[7:] == [False] * 4
 
 

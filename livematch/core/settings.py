@@ -75,19 +75,35 @@ class MatchSettings:
             30 was chosen on simulated drives (bench/accuracy.py's simulator, seeds other
             than the bench's).
         street_turns: let a bridged step (a gap, or a window that died) turn round at
-            any vertex, shape points in the middle of a road included, at the usual
-            ``turn_back_cost``; the sweep itself keeps U-turns to dead ends and junctions.
+            any vertex, shape points in the middle of a road included, at
+            ``turn_back_cost`` plus ``street_turn_cost``; the sweep itself keeps U-turns to
+            dead ends and junctions.
             For fleets that turn round in the street (a delivery van leaving a stop the way
             it came). Off by default: on the accuracy harness's routed-trip drives
             (``--sim trips``) it gains 1-2 points of final accuracy at 5-30 s and cuts the
             route mismatch at 15 s from about 5 % to about 1.3 %, but on random-walk drives
-            that never turn in the street it costs up to 1.3 points at 30 s (README).
+            that never turn in the street it costs up to 1.3 points at 30 s (README;
+            measured before ``street_turn_cost``).
         stop_turns: the same freedom only for a bridged step that leaves a stop (the step
             before it was slower than ``livematch.core.tracker.STOOD_MPS``): a vehicle that
-            stood and then leaves the way it came. Off by default; on the routed-trip
-            drives it gains 1-2.4 points of final accuracy at 15-30 s (more than
-            ``street_turns`` at 30 s), on the random walk it costs 0.4 / 1.0 points at
-            Helsinki 15 / 30 s (README, "The fleet model").
+            stood and then leaves the way it came; with ``stand_wait``, also a bridged step
+            within 10 s of a stand (:meth:`livematch.core.tracker.Tracker._stood_lately`).
+            On by default, with
+            ``street_turn_cost`` 4: on bench/accuracy.py's drives (seeds 31 and 77, 80
+            drives) it gains 1.0-1.4 points of final accuracy at Helsinki 15 / 30 s and
+            1.9-2.3 on the test extract on routed trips (``--sim trips``), and costs the
+            random walk 0-0.16 points (without the charge 0.6 at Helsinki 15 / 30 s).
+        street_turn_cost: charged on top of ``turn_back_cost`` for each U-turn where the
+            network has none (a vertex in the middle of a road, which only ``street_turns``
+            and ``stop_turns`` open to bridged steps): a turn in the street is rarer than
+            one at a dead end or a junction, and a vehicle that stood at a traffic light
+            and drove on must not be read as one that turned round. 4 by default: with
+            ``stop_turns`` it takes back what the random walk lost to ``stop_turns``
+            alone (Helsinki 15 / 30 s, seed 31: 0.951 / 0.915 -> 0.957 / 0.921, as
+            without ``stop_turns``) and keeps the routed trips' gain; 2 kept less of the
+            first. Live accuracy on trips is 0.4-1.5 points below ``stop_turns`` alone
+            (the live answer believes a turn in the street a fix later), still above
+            ``stop_turns`` off.
         stand_wait: while the vehicle stands (its fixes of 10 s within 2 ``sigma_m`` of
             each other, until 10 s after that; :meth:`livematch.core.tracker.Tracker.
             _standing`), the fix-count lag (``max_lag_fixes``) does not force a commit;
@@ -117,7 +133,8 @@ class MatchSettings:
     error_tau_s: float = 30.0
     spike_cost: float = 30.0
     street_turns: bool = False
-    stop_turns: bool = False
+    stop_turns: bool = True
+    street_turn_cost: float = 4.0
     stand_wait: bool = True
 
     def __post_init__(self) -> None:
@@ -143,7 +160,7 @@ class MatchSettings:
         if not (isinstance(self.max_lag_fixes, int) and self.max_lag_fixes >= 2):
             out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
         for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s",
-                     "spike_cost"):
+                     "spike_cost", "street_turn_cost"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))

@@ -112,6 +112,7 @@ class StepContext:
     motion_cost: float = 0.0
     pace_cost: float = 0.0
     street_turns: bool = False
+    street_turn_cost: float = 0.0
 
     @classmethod
     def between(
@@ -127,7 +128,8 @@ class StepContext:
         return cls(view, eps, x0, y0, x1, y1, seq, t, math.hypot(x1 - x0, y1 - y0),
                    1.0 / (2.0 * settings.sigma_m * settings.sigma_m), 1.0 / settings.beta_m,
                    settings.turn_back_cost, 1.0 / settings.motion_m, 1.0 / settings.pace_m,
-                   settings.street_turns or (stood and settings.stop_turns))
+                   settings.street_turns or (stood and settings.stop_turns),
+                   settings.street_turn_cost)
 
 
 def free_interval(
@@ -194,14 +196,19 @@ def _offer(
             prev = parent.seg
             twin = view.twin
             turns = 0
-            for v in via:
+            ok = view.turn_back_ok
+            head = view.st
+            street = 0  # U-turns where the network has none (only bridged steps with
+            for v in via:  # ctx.street_turns make them)
                 route += slen[v]
                 if v == twin[prev]:
                     turns += 1
+                    street += not ok[head[prev]]
                 prev = v
             if seg == twin[prev]:
                 turns += 1
-            cost += turns * ctx.turn_back_cost
+                street += not ok[head[prev]]
+            cost += turns * ctx.turn_back_cost + street * ctx.street_turn_cost
         cost += parent.cost + abs(route - ctx.chord) * ctx.inv_beta
         if expect >= 0.0:
             cost += abs(route - expect) * ctx.pace_cost
