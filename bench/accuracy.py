@@ -268,15 +268,61 @@ def run_replay(network: RoadNetwork, net_path: Path, log: Path, out_dir: Path,
     return MethodRun(matches, seconds, "subprocess wall time incl. start-up and map load")
 
 
+def matcher_settings(pairs: list[str], street_turns: bool = False) -> dict[str, Any]:
+    """``--matcher KEY=VALUE`` options as settings (values read as TOML), checked.
+
+    >>> matcher_settings(["stop_turns=false", "street_turn_cost=2"])
+    {'stop_turns': False, 'street_turn_cost': 2}
+    >>> matcher_settings([], street_turns=True), matcher_settings([])
+    ({'street_turns': True}, {})
+    """
+    import tomllib
+
+    from livematch.core.settings import MatchSettings
+
+    known = MatchSettings.keys()
+    out: dict[str, Any] = {}
+    for pair in pairs:
+        key, sep, value = pair.partition("=")
+        if not sep or key.strip() not in known:
+            raise SystemExit(f"--matcher {pair!r}: expected KEY=VALUE with KEY one of "
+                             f"{', '.join(known)}")
+        try:
+            out[key.strip()] = tomllib.loads(f"v = {value.strip()}")["v"]
+        except tomllib.TOMLDecodeError as exc:
+            raise SystemExit(f"--matcher {pair!r}: the value is not TOML ({exc})") from exc
+    if street_turns:
+        out["street_turns"] = True
+    problems = MatchSettings(**out).problems()
+    if problems:
+        raise SystemExit("; ".join(f"--matcher {k}: {why}" for k, why in problems))
+    return out
+
+
+def _toml(value: Any) -> str:
+    """A setting's value as TOML (``True`` -> ``true``; numbers and lists as written)."""
+    return json.dumps(value)
+
+
+def _matcher_note(meta: dict[str, Any]) -> str:
+    """The report's words for the matcher settings that differ from the defaults."""
+    matcher = meta.get("matcher") or {}
+    for old in ("street_turns", "stop_turns"):  # result files written before --matcher
+        if meta.get(old):
+            matcher = {**matcher, old: True}
+    if not matcher:
+        return ""
+    return "; livematch with " + ", ".join(f"{k} = {_toml(v)}" for k, v in matcher.items())
+
+
 def run_inproc(network: RoadNetwork, records: list[dict[str, Any]],
                xy: XY, times: dict[str, list[float]],
-               turns: dict[str, bool] | None = None) -> MethodRun:
+               matcher: dict[str, Any] | None = None) -> MethodRun:
+    """livematch's pipeline in this process, with ``matcher`` over the built-in defaults."""
     from livematch.core.settings import MatchSettings
     from livematch.pipeline import Pipeline
 
-    turns = turns or {}
-    pipeline = Pipeline(network, MatchSettings(street_turns=turns.get("street_turns", False),
-                                               stop_turns=turns.get("stop_turns", False)))
+    pipeline = Pipeline(network, MatchSettings(**(matcher or {})))
     assignments: list[dict[str, Any]] = []
     commits: list[dict[str, Any]] = []
     lag: list[float] = []
@@ -580,12 +626,12 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--mix-only", action="store_true",
                     help="only simulate the drives and print what they drive (road "
                          "classes, turn-rounds, dead ends, trips); writes nothing")
+    ap.add_argument("--matcher", action="append", default=[], metavar="KEY=VALUE",
+                    help="a [matcher] setting for livematch (a TOML value: "
+                         "stop_turns=false, street_turn_cost=2); repeatable")
     ap.add_argument("--street-turns", action="store_true",
-                    help="livematch with [matcher] street_turns = true (U-turns anywhere "
-                         "in bridged steps)")
-    ap.add_argument("--stop-turns", action="store_true",
-                    help="livematch with [matcher] stop_turns = true (U-turns anywhere in "
-                         "a bridged step that leaves a stop)")
+                    help="the same as --matcher street_turns=true (U-turns anywhere in "
+                         "bridged steps)")
     ap.add_argument("--calibration-drives", type=int, default=8)
     ap.add_argument("--hmm-lag", type=int, default=5, help="HMM fixed lag, steps")
     ap.add_argument("--livematch", choices=("auto", "replay", "inproc", "skip"),
@@ -634,11 +680,11 @@ def main(argv: list[str] | None = None) -> int:
     work = Path(args.keep) if args.keep else Path(tempfile.mkdtemp(prefix="lm-accuracy-"))
     work.mkdir(parents=True, exist_ok=True)
     config = None
-    turns = {k: True for k, on in (("street_turns", args.street_turns),
-                                   ("stop_turns", args.stop_turns)) if on}
-    if turns:
+    matcher = matcher_settings(args.matcher, street_turns=args.street_turns)
+    if matcher:
         config = work / "matcher.toml"
-        config.write_text("[matcher]\n" + "".join(f"{k} = true\n" for k in turns),
+        config.write_text("[matcher]\n" + "".join(f"{k} = {_toml(v)}\n"
+                                                  for k, v in matcher.items()),
                           encoding="utf-8")
     rows: list[dict[str, Any]] = []
     mix: dict[str, dict[str, Any]] = {}
@@ -673,12 +719,12 @@ def main(argv: list[str] | None = None) -> int:
                 runs["livematch"] = run_replay(network, net_path, log, work / f"{tag}.out",
                                                xy, times, config)
                 if do_inproc and not runs["livematch"].skipped:
-                    inproc = run_inproc(network, records, xy, times, turns)
+                    inproc = run_inproc(network, records, xy, times, matcher)
                     runs["livematch"].commit_lag = inproc.commit_lag
                     runs["livematch"].flushed = inproc.flushed
                     runs["livematch (in-process)"] = inproc
             elif do_inproc:
-                runs["livematch"] = run_inproc(network, records, xy, times, turns)
+                runs["livematch"] = run_inproc(network, records, xy, times, matcher)
             run = MethodRun(timing_note="in-process matching time")
             t0 = time.perf_counter()
             for d, _ in fleet:
@@ -715,7 +761,7 @@ def main(argv: list[str] | None = None) -> int:
     meta = {
         "command": command.strip(), "seed": args.seed, "drives": args.drives,
         "duration_s": args.duration, "intervals": intervals, "sim": args.sim,
-        "street_turns": args.street_turns, "stop_turns": args.stop_turns,
+        "matcher": matcher,
         "extracts": args.extract,
         "drive_settings": asdict(settings),
         "hmm": {k: v for k, v in asdict(HmmSettings(lag=args.hmm_lag)).items()
@@ -776,8 +822,7 @@ def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
         f"{meta['drive_settings']['sigma_m']} m per axis, tau "
         f"{meta['drive_settings']['tau_s']} s, outliers "
         f"{meta['drive_settings']['outlier_p']:.0%}; drive model {meta['sim']}"
-        f"{'; livematch with street_turns' if meta.get('street_turns') else ''}"
-        f"{'; livematch with stop_turns' if meta.get('stop_turns') else ''}; "
+        f"{_matcher_note(meta)}; "
         f"{meta['elapsed_s']} s in all). "
         f"Code: commit {meta['git_commit'][:12]}"
         f"{' with uncommitted changes' if meta['livematch_dirty'] else ''}.",
