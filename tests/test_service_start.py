@@ -26,6 +26,17 @@ def start(config: Path, log_path: Path) -> subprocess.Popen[bytes]:
                                 stdout=log, stderr=log, env=subprocess_env())
 
 
+def start_on_town(mosquitto: Mosquitto, prefix: str,
+                  tmp_path: Path) -> tuple[subprocess.Popen[bytes], int]:
+    """``livematch run`` on the invented town's compiled map: (process, metrics port)."""
+    net = tmp_path / "town.lmnet"
+    save_network(town(), net)
+    port = free_port()
+    cfg = write_config(tmp_path, prefix, broker=mosquitto.url, network=str(net),
+                       metrics=f"127.0.0.1:{port}")
+    return start(cfg, tmp_path / "daemon.log"), port
+
+
 async def probe(port: int, path: str) -> tuple[int, str] | None:
     """(status, body) of one GET, None while nothing listens."""
     try:
@@ -37,12 +48,7 @@ async def probe(port: int, path: str) -> tuple[int, str] | None:
 async def test_run_answers_healthz_while_compiling_then_ready(
         mosquitto: Mosquitto, prefix: str, tmp_path: Path) -> None:
     """/healthz is 200 while /readyz still says "not ready: compiling"; /readyz turns 200."""
-    net = tmp_path / "town.lmnet"
-    save_network(town(), net)
-    port = free_port()
-    cfg = write_config(tmp_path, prefix, broker=mosquitto.url, network=str(net),
-                       metrics=f"127.0.0.1:{port}")
-    proc = start(cfg, tmp_path / "daemon.log")
+    proc, port = start_on_town(mosquitto, prefix, tmp_path)
     seen: list[tuple[int, str, int, str]] = []  # healthz and readyz, polled together
     try:
         deadline = time.monotonic() + 600  # a cold numba cache: a compile of 75-120 s
@@ -76,12 +82,7 @@ async def test_run_answers_healthz_while_compiling_then_ready(
 async def test_run_stopped_while_starting_exits_cleanly(
         mosquitto: Mosquitto, prefix: str, tmp_path: Path) -> None:
     """SIGTERM before the daemon is ready ends the process with exit code 0."""
-    net = tmp_path / "town.lmnet"
-    save_network(town(), net)
-    port = free_port()
-    cfg = write_config(tmp_path, prefix, broker=mosquitto.url, network=str(net),
-                       metrics=f"127.0.0.1:{port}")
-    proc = start(cfg, tmp_path / "daemon.log")
+    proc, port = start_on_town(mosquitto, prefix, tmp_path)
     try:
         deadline = time.monotonic() + 60
         while (await probe(port, "/healthz")) is None:

@@ -52,7 +52,7 @@ import socket
 import time
 import zlib
 from collections import Counter, deque
-from collections.abc import Coroutine, Mapping
+from collections.abc import Callable, Coroutine, Mapping
 from dataclasses import replace
 from typing import Any, Protocol
 
@@ -1535,6 +1535,24 @@ class Daemon:
         stale_s = getattr(settings, "stale_s", self.config.alerts.stale_s)
         return now - self._listening_since >= float(stale_s)
 
+    def _sync_labelled(self, tag: str, counts: Mapping[Any, int], cache: dict[Any, Any],
+                       make: Callable[[Any], Any]) -> None:
+        """Carry one family of per-label counts into its labelled metric (see below).
+
+        ``counts``: the running count per label value; ``cache``: the labelled children
+        made so far (``make(value)`` makes one); what was carried is kept in
+        ``self._synced`` under ``(tag, value)``.
+        """
+        synced = self._synced
+        for key, value in list(counts.items()):
+            delta = value - synced[tag, key]
+            if delta > 0:
+                counter = cache.get(key)
+                if counter is None:
+                    counter = cache[key] = make(key)
+                counter.inc(delta)
+                synced[tag, key] = value
+
     def _sync_counters(self) -> None:
         """Carry the counts kept per message into the metrics.
 
@@ -1549,25 +1567,10 @@ class Daemon:
         if delta > 0:
             self.metrics.received.inc(delta)
             synced["received"] = self._received
-        for kind, value in list(self._published_n.items()):
-            delta = value - synced["published", kind]
-            if delta > 0:
-                counter = self._published_counters.get(kind)
-                if counter is None:
-                    counter = self._published_counters[kind] = self.metrics.published.labels(
-                        kind=kind)
-                counter.inc(delta)
-                synced["published", kind] = value
-        for eps, value in list(self._eps_n.items()):
-            delta = value - synced["eps", eps]
-            if delta > 0:
-                label = f"{eps}"
-                counter = self._eps_counters.get(label)
-                if counter is None:
-                    counter = self._eps_counters[label] = self.metrics.eps_level.labels(
-                        eps_m=label)
-                counter.inc(delta)
-                synced["eps", eps] = value
+        self._sync_labelled("published", self._published_n, self._published_counters,
+                            lambda kind: self.metrics.published.labels(kind=kind))
+        self._sync_labelled("eps", self._eps_n, self._eps_counters,
+                            lambda eps: self.metrics.eps_level.labels(eps_m=f"{eps}"))
         for key, value in self.pipeline.counters.items():
             delta = value - self._seen_counters[key]
             if delta <= 0:
