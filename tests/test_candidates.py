@@ -199,7 +199,13 @@ def check_tree(tree: CandidateTree, tracker: Tracker,
             got = tree.commit_point(next_commit, newest)
             assert (got, ref_top) == (-1, None) or nodes[got] is ref_top
     top = tree.ancestor_at(best, seq - 3)
-    want_rows = _t.chain_rows(tree.ti, best, nodes[top].seq).tolist()
+    # reference: the back-pointers walked in Python, oldest first, then the row before
+    walked: list[int] = []
+    cur_row = best
+    while cur_row >= 0 and tree.ti[cur_row, _t.I_SEQ] >= nodes[top].seq:
+        walked.append(cur_row)
+        cur_row = int(tree.ti[cur_row, _t.I_PARENT])
+    want_rows = [*reversed(walked), cur_row]
     out = np.full(len(want_rows) - 1, -7, np.int64)  # one short: nothing written
     assert _t.chain_into(tree.ti, best, nodes[top].seq, out) == -len(want_rows)
     assert out.tolist() == [-7] * (len(want_rows) - 1)

@@ -65,7 +65,7 @@ from livematch.core._sweep_kernel import (
 __all__ = [
     "ARENA_FULL", "F_COST", "F_LOW", "F_POS", "F_T", "I_PARENT", "I_SEG", "I_SEQ", "I_VIA0",
     "I_VIAN", "ROW_F", "ROW_I", "ancestor_at", "best_row", "best_scored", "block_ancestor",
-    "chain_into", "chain_rows", "commit_point", "compact", "compact_append", "compact_into",
+    "chain_into", "commit_point", "compact", "compact_append", "compact_into",
     "cut_and_check", "cut_links", "descends_from",
     "driven_since", "junction_split", "kept_rows", "live_answer", "live_scores", "prune_live",
     "tree_append", "tree_sweep", "trim",
@@ -229,30 +229,11 @@ def prune_live(ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, lo: int, hi: int,
 
 
 @_jit
-def chain_rows(ti: np.ndarray, top: int, min_seq: int) -> np.ndarray:
-    """Rows from the oldest with seq >= ``min_seq`` up to ``top``, then the row before.
-
-    The last element is the parent of the first chain row (-1 if none).
-    """
-    length = 0
-    cur = top
-    while cur >= 0 and ti[cur, I_SEQ] >= min_seq:
-        length += 1
-        cur = ti[cur, I_PARENT]
-    out = np.empty(length + 1, np.int64)
-    out[length] = cur
-    cur = top
-    for j in range(length - 1, -1, -1):
-        out[j] = cur
-        cur = ti[cur, I_PARENT]
-    return out
-
-
-@_jit
 def chain_into(ti: np.ndarray, top: int, min_seq: int, out: np.ndarray) -> int:
-    """:func:`chain_rows` written into ``out``; returns the chain's length.
+    """The rows of ``top``'s chain back to fix ``min_seq``, into ``out``; returns its length.
 
-    ``out[:length + 1]`` holds what :func:`chain_rows` returns. When ``out`` is too
+    ``out[:length]`` are the rows from the oldest with seq >= ``min_seq`` up to ``top``,
+    ``out[length]`` the row before them (-1 if none). When ``out`` is too
     short nothing is written and ``-(length + 1)`` comes back (the size needed):
     returning an array from compiled code costs several microseconds, a scalar a
     fraction of one, and a commit asks for its chain every time.
