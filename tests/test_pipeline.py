@@ -194,7 +194,7 @@ def test_pipeline_export_import_round_trip():
     moved = Pipeline(ROAD, MatchSettings())
     for vehicle in stay.vehicles():
         blob = stay.export_vehicle(vehicle)
-        assert blob.startswith(b"LMPV\x02")
+        assert blob.startswith(b"LMPV\x03")
         moved.import_vehicle(vehicle, blob)
     assert moved.vehicles() == ["bus1", "bus2"]
     assert moved.counters["vehicle:imported"] == 2
@@ -223,7 +223,7 @@ def test_pipeline_import_refuses_bad_blobs():
     q = Pipeline(ROAD, MatchSettings())
     cases = [
         (b"XXXX" + blob[4:], "does not start with"),
-        (blob[:4] + b"\x03" + blob[5:], "has version 3"),
+        (blob[:4] + b"\x04" + blob[5:], "has version 4"),
         (blob[:4], "has version None"),
         (blob[: len(blob) // 2], "is corrupt"),
         (blob[:5] + b"\x00" + blob[6:], "is corrupt"),
