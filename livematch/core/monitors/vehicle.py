@@ -83,6 +83,8 @@ class VehicleAlerts:
                     else (fix.x, fix.y))
             monitor = self.fences
             if monitor is None:
+                if not fences.may_be_near(x, y):
+                    return alerts  # no fence can hold the point: no compiled probe
                 near = fences.probe(x, y)
                 if True not in near[1]:
                     # in no fence and in no inner polygon: a fresh monitor would neither
