@@ -605,8 +605,8 @@ class Pipeline:
                     if pending is not None:
                         fix = pending.pop(event.t, None)
                         if fix is not None:
-                            out.extend(self._monitor(state, fix, (event.x, event.y), True,
-                                                     topic, payload, at))
+                            self._monitor(out, state, fix, (event.x, event.y), True,
+                                          topic, payload, at)
                 continue
             if type(event) is Commit:
                 counters["commits"] += 1
@@ -617,7 +617,7 @@ class Pipeline:
                 if state is not None and state.pending is not None:
                     fix = state.pending.pop(event.t, None)
                     if fix is not None and event.reason == "no_road_nearby":
-                        out.extend(self._monitor(state, fix, None, False, topic, payload, at))
+                        self._monitor(out, state, fix, None, False, topic, payload, at)
                 continue
             if type(event) is Alert:
                 counters["alerts"] += 1
@@ -627,19 +627,21 @@ class Pipeline:
             state.pending = None  # every fix answered: no dict held between fixes
         return out
 
-    def _monitor(self, state: _VehicleState, fix: Fix, matched: tuple[float, float] | None,
-                 has_road: bool, topic: str, payload: bytes, at: float) -> list[Output]:
-        reject = self._route_for(state, fix, topic, payload, at) if self.routes is not None \
-            else None
-        alerts = state.alerts.update(fix, matched, has_road, self.fences,
-                                     self.vehicle_groups.get(fix.vehicle, ()),
-                                     self.alert_settings)
-        if reject is None:
-            return self._outputs(alerts) if alerts else []
-        out = [reject]
+    def _monitor(self, out: list[Output], state: _VehicleState, fix: Fix,
+                 matched: tuple[float, float] | None, has_road: bool, topic: str,
+                 payload: bytes, at: float) -> None:
+        """The vehicle's monitors on one answered fix; appends any reject and alerts."""
+        if self.routes is not None:
+            reject = self._route_for(state, fix, topic, payload, at)
+            if reject is not None:
+                out.append(reject)
+        fences = self.fences
+        alerts = state.alerts.update(
+            fix, matched, has_road, fences,
+            self.vehicle_groups.get(fix.vehicle, ()) if fences is not None else (),
+            self.alert_settings)
         if alerts:
             out.extend(self._outputs(alerts))
-        return out
 
     def _alert_outputs(self, alerts: list[Alert]) -> list[Output]:
         return self._outputs(list(alerts)) if alerts else []
