@@ -413,8 +413,8 @@ def test_record_builder_equals_to_record_on_osm_drives():
 
 def test_record_builder_reuses_only_the_same_point(monkeypatch):
     """A commit's fix takes the remembered position only of the very same projected
-    point; a zero coordinate (0.0 and -0.0 are equal keys) and a memory that starts over
-    change no record.
+    point; a zero coordinate (0.0 and -0.0 are equal keys) and a memory that drops its
+    older half change no record, and the memory stays bounded.
 
     Reference: ``to_record`` (projects every point) on a local azimuthal equidistant
     projection; the points at x = 0.0 and -0.0 lie on its central meridian.
@@ -425,7 +425,7 @@ def test_record_builder_reuses_only_the_same_point(monkeypatch):
 
     net = network_from_roads([Road([(-100.0, -100.0), (100.0, 100.0)], way=3)])
     builder = RecordBuilder(net)
-    monkeypatch.setattr(events, "POINTS_HELD", 3)
+    monkeypatch.setattr(events, "POINTS_HELD", 4)
     xy = [(0.0, 7.5), (-0.0, 7.5), (12.25, -3.5), (12.25, -3.5000000000000004), (40.0, 41.0),
           (-5.0, 0.0), (60.0, 61.0)]
     assigned = [Assignment("bus1", T0 + k, 0, 1.0, x, y, 15.0, 3, 2.0)
@@ -435,7 +435,17 @@ def test_record_builder_reuses_only_the_same_point(monkeypatch):
     for event in [*assigned, commit, commit]:
         got = builder.record(event)
         assert json.dumps(got) == json.dumps(to_record(event, net))
-    assert len(builder._points) <= 3
+        assert builder.points_held() <= 4
+    # the newest points are held: a commit of the last assignments projects nothing again
+    projected = []
+    builder._inverse = lambda x, y: projected.append((x, y)) or net.projection.point_to_lonlat(
+        x, y)
+    for event in assigned[-2:]:
+        builder.record(event)
+    assert builder.record(Commit("bus1", commit.fixes[:2], (0,))) == to_record(
+        Commit("bus1", commit.fixes[:2], (0,)), net)
+    # the two assignments; then (60, 61) is reused and (-5, 0), not kept, projected again
+    assert projected == [(-5.0, 0.0), (60.0, 61.0), (-5.0, 0.0)]
 
 
 def test_output_init_equals_generated_dataclass():

@@ -215,8 +215,8 @@ def rounded(x: float, scale: float, ndigits: int) -> float:
     return round(x, ndigits)
 
 
-#: How many matched points a :class:`RecordBuilder` remembers (about 200 bytes each)
-#: before it starts over.
+#: How many recent matched points a :class:`RecordBuilder` remembers at most (about 250
+#: bytes each): the newest half or more are always held (two generations of half this).
 POINTS_HELD = 4096
 
 
@@ -233,10 +233,13 @@ class RecordBuilder:
     A commit mostly repeats the matched points too: the final answer for a fix is the
     point its assignment had (four in five fixes on 1 Hz OSM drives). So the rounded
     WGS84 position of each assignment's point is kept, keyed by the projected point,
-    until a commit takes it (or :data:`POINTS_HELD` are held: the memory starts over);
-    a commit's fix at that very point reuses it instead of projecting it again. The
-    same point always gives the same position, so this changes no record (a point with
-    a zero coordinate is not kept: 0.0 and -0.0 are equal keys of different inputs).
+    until a commit takes it, in two generations: when the newer one holds half of
+    :data:`POINTS_HELD`, it becomes the older one and the older one is dropped (the
+    points of the last few thousand assignments of the whole fleet are held; memory
+    bounded, every operation O(1)). A commit's fix at such a point reuses the position
+    instead of projecting it again. The same point always gives the same position, so
+    this changes no record (a point with a zero coordinate is not kept: 0.0 and -0.0
+    are equal keys of different inputs).
 
     The records are equal to :func:`to_record`'s, key order included (tests compare the
     two on OSM drives), so the published bytes do not change. Pure: no clock, no I/O.
@@ -248,14 +251,20 @@ class RecordBuilder:
         {'vehicle': 'bus17', 'fixes': [], 'path': []}
     """
 
-    __slots__ = ("_inverse", "_points", "_segments", "network")
+    __slots__ = ("_inverse", "_older", "_points", "_segments", "network")
 
     def __init__(self, network: RoadNetwork) -> None:
         self.network = network
         self._inverse = network.projection.point_to_lonlat
         self._segments: dict[int, tuple[int, int, int, str | None]] = {}
-        # projected point of a recent assignment -> its rounded (lat, lon)
+        # projected point of a recent assignment -> its rounded (lat, lon): the newer
+        # and the older generation
         self._points: dict[tuple[float, float], tuple[float, float]] = {}
+        self._older: dict[tuple[float, float], tuple[float, float]] = {}
+
+    def points_held(self) -> int:
+        """How many assignment points are remembered now (at most :data:`POINTS_HELD`)."""
+        return len(self._points) + len(self._older)
 
     def _position(self, x: float, y: float) -> tuple[float, float]:
         """The rounded (lat, lon) of a projected point (not remembered)."""
@@ -280,10 +289,13 @@ class RecordBuilder:
             key = (x, y)
             at = points.get(key)
             if at is None:
-                at = self._position(x, y)
+                at = self._older.get(key)
+                if at is None:
+                    at = self._position(x, y)
                 if x and y:  # no zero coordinate (see the class docstring)
-                    if len(points) >= POINTS_HELD:
-                        points.clear()
+                    if 2 * len(points) >= POINTS_HELD:
+                        self._older = points
+                        points = self._points = {}
                     points[key] = at
             ids = self._segments.get(event.segment)
             if ids is None:
@@ -309,9 +321,12 @@ class RecordBuilder:
             taken = self._points.pop
             fixes = []
             for f in event.fixes:
-                at = taken((f.x, f.y), None)  # the point of its assignment, mostly
+                key = (f.x, f.y)
+                at = taken(key, None)  # the point of its assignment, mostly
                 if at is None:
-                    at = self._position(f.x, f.y)
+                    at = self._older.pop(key, None)
+                    if at is None:
+                        at = self._position(f.x, f.y)
                 ids = known.get(f.segment)
                 if ids is None:
                     ids = segment(f.segment)
