@@ -474,7 +474,7 @@ def report(r: dict[str, Any]) -> str:
             "",
             f"Not per vehicle, left out above: the record builder's memory of recent "
             f"matched points (the WGS84 position of each assignment's point, reused by the "
-            f"commit of that fix; at most 4,096 points for the whole pipeline), "
+            f"commit of that fix; at most 2,048 points for the whole pipeline), "
             f"{p['points_memory_bytes'] / 1024:.0f} KB at the end of the run."]),
         *driven_breakdown(t, p),
         "",

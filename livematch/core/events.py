@@ -215,9 +215,9 @@ def rounded(x: float, scale: float, ndigits: int) -> float:
     return round(x, ndigits)
 
 
-#: How many recent matched points a :class:`RecordBuilder` remembers at most (about 250
+#: How many recent matched points a :class:`RecordBuilder` remembers at most (about 200
 #: bytes each): the newest half or more are always held (two generations of half this).
-POINTS_HELD = 4096
+POINTS_HELD = 2048
 
 
 class RecordBuilder:
@@ -235,7 +235,7 @@ class RecordBuilder:
     WGS84 position of each assignment's point is kept, keyed by the projected point,
     until a commit takes it, in two generations: when the newer one holds half of
     :data:`POINTS_HELD`, it becomes the older one and the older one is dropped (the
-    points of the last few thousand assignments of the whole fleet are held; memory
+    points of the last thousand or more assignments of the whole fleet are held; memory
     bounded, every operation O(1)). A commit's fix at such a point reuses the position
     instead of projecting it again. The same point always gives the same position, so
     this changes no record (a point with a zero coordinate is not kept: 0.0 and -0.0
