@@ -18,7 +18,9 @@ warm :class:`livematch.pipeline.Pipeline`. Each stage's entry point is wrapped w
 - route monitor: ``RouteMonitor.update`` (both sweep windows and the state machine);
 - fences: ``FenceMonitor.update`` and ``FenceSet.probe`` (a vehicle in no fence has no
   fence monitor: its fixes are probed by ``VehicleAlerts.update`` directly);
-- off-network and stale watch: ``OffNetworkMonitor.update``, ``StaleWatch.seen``;
+- off-network and stale watch: ``OffNetworkMonitor.update``, ``StaleWatch.seen``
+  (``VehicleAlerts.update`` takes a fix on a road while on the network inline, without
+  ``OffNetworkMonitor.update``: that part is in "pipeline glue" from commit 2040903 on);
 - records: ``RecordBuilder.record`` (the published JSON-ready dicts of ``to_record``,
   WGS84 conversion);
 - pipeline glue: the rest of ``handle`` (dedupe, rate limit, counters, output objects);
