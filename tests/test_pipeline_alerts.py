@@ -249,6 +249,45 @@ def test_pipeline_version_1_checkpoint_still_read():
     assert q.route_status("bus1")["route"] == "R"
 
 
+def test_pipeline_version_2_checkpoint_still_read():
+    """A version-2 checkpoint (alert state as zlib-compressed JSON) restores the monitors
+    exactly: the vehicle then gives the same alerts as one that never moved."""
+    import zlib
+
+    import msgspec
+
+    pts = points([(0, 0), (400, 0), (400, 400), (800, 400), (800, 800)], 10.0)
+    msgs = messages("bus1", pts, route="R")
+    kw = {"routes": ROUTES, "fences": [Fence("f", shapely.box(350, 100, 450, 300))]}
+    stay = Pipeline(NET, MatchSettings(), **kw)
+    run(stay, msgs[:50], tick=True)
+    blob = stay.export_vehicle("bus1")
+    assert blob[:5] == b"LMPV\x03"
+    fields = msgspec.msgpack.decode(blob[5:])
+    extra = msgspec.msgpack.decode(fields[3])
+    fields[3] = zlib.compress(json.dumps(extra, separators=(",", ":")).encode())
+    old = b"LMPV\x02" + msgspec.msgpack.encode(fields)
+    moved = Pipeline(NET, MatchSettings(), **kw)
+    moved.import_vehicle("bus1", old)
+    assert moved.export_vehicle("bus1") == blob
+    assert run(moved, msgs[50:], tick=True) == run(stay, msgs[50:], tick=True)
+
+
+def test_pipeline_checkpoint_keeps_numpy_floats_and_refuses_other_objects():
+    """A numpy float in a monitor's state is written as the float it equals (as version
+    2's JSON wrote it); an object neither format can hold is refused."""
+    p = Pipeline(NET, MatchSettings(), routes=ROUTES)
+    run(p, messages("bus1", DETOUR[:10], route="R"))
+    watch = p._vehicles["bus1"].alerts.watch
+    assert watch is not None
+    plain = p.export_vehicle("bus1")
+    watch.lat = np.float64(watch.lat)
+    assert p.export_vehicle("bus1") == plain
+    watch.lat = object()
+    with pytest.raises(TypeError, match="cannot hold a value of type object"):
+        p.export_vehicle("bus1")
+
+
 def test_pipeline_invalid_alert_settings_and_fences():
     """Invalid alert settings or fences are BadConfigError naming the key or the fence."""
     with pytest.raises(BadConfigError, match=r"alerts\.stale_s must be a positive number"):

@@ -54,6 +54,12 @@ ROW = 7  # seg, low, pos, x, y, cost, driven
 SWEEP_OVERFLOW = -1  # the sweep kernel's buffers are too small: grow them, call again
 ROWS_OVERFLOW = -2  # ``w`` is too small: the second value says how many rows are needed
 SKIPPED = -3  # route_advance did not step the reversed window (the forward one overflowed)
+#: The window's cost weights, the last four step scalars (:class:`StepContext`'s order):
+#: 1 / (2 sigma^2) with sigma 5 m, 1 / beta with beta 10 m, no turn-back or motion cost.
+#: A window only asks whether the fixes follow the route, so the weights merely rank its
+#: candidates (:func:`best_row` breaks ties by cost).
+WINDOW_WEIGHTS = (0.02, 0.1, 0.0, 0.0)
+assert _k.C_CHORD + 1 + len(WINDOW_WEIGHTS) == _k.N_CTX
 #: Slack of the fresh start's bounding-box test (metres): it only has to keep every
 #: segment the free interval could accept; the free interval decides.
 BOX_SLACK_M = 1e-6
@@ -217,18 +223,30 @@ def _entry_points(sweep_key: int) -> tuple[Callable[..., Any], Callable[..., Any
     def route_advance(
         netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
         bnetf: np.ndarray, bneti: np.ndarray, bfbuf: np.ndarray, bibuf: np.ndarray,
-        ctx: np.ndarray, w: np.ndarray, bw: np.ndarray,
+        w: np.ndarray, bw: np.ndarray,
+        eps: float, x0: float, y0: float, x1: float, y1: float, chord: float,
     ) -> tuple[int, int, float, int, float, int, int, float, int, float]:
         """:func:`window_advance` of the forward window ``w``, then of the reversed ``bw``.
 
         One call per fix instead of two (each call from Python pays numba's dispatch).
-        The ten values are the two windows' five. The reversed window is stepped only
-        when the forward one succeeded (``k >= 0``); its ``k`` is ``SKIPPED`` otherwise,
-        and the caller finishes a window that reported an overflow with
-        :func:`window_advance`.
+        The step scalars come as numbers (``eps`` and the step from ``x0, y0`` to ``x1,
+        y1``, ``chord`` metres long; the weights are :data:`WINDOW_WEIGHTS`): a numpy
+        array built for them in Python cost more than the step's dispatch saves. The ten
+        values are the two windows' five. The reversed window is stepped only when the
+        forward one succeeded (``k >= 0``); its ``k`` is ``SKIPPED`` otherwise, and the
+        caller finishes a window that reported an overflow with :func:`window_advance`.
         """
         if sweep_key == -1:  # never (see window_advance)
             return SWEEP_OVERFLOW, 0, 0.0, -1, 0.0, SKIPPED, 0, 0.0, -1, 0.0
+        ctx = np.empty(_k.N_CTX)
+        ctx[_k.C_EPS] = eps
+        ctx[_k.C_X0] = x0
+        ctx[_k.C_Y0] = y0
+        ctx[_k.C_X1] = x1
+        ctx[_k.C_Y1] = y1
+        ctx[_k.C_CHORD] = chord
+        for j in range(len(WINDOW_WEIGHTS)):
+            ctx[_k.C_CHORD + 1 + j] = WINDOW_WEIGHTS[j]
         k, fresh, most, seg, pos = _advance(netf, neti, fbuf, ibuf, ctx, w)
         if k < 0:
             return k, fresh, most, seg, pos, SKIPPED, 0, 0.0, -1, 0.0
@@ -332,7 +350,7 @@ def warm_up() -> None:
     bw = np.zeros(1 + ROW * 4)
     a = (arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf)
     for x in (10.0, 20.0):
-        ctx = np.array((40.0, x - 10.0, 0.0, x, 0.0, 10.0, 0.02, 0.1, 0.0, 0.0))
+        ctx = np.array((40.0, x - 10.0, 0.0, x, 0.0, 10.0, *WINDOW_WEIGHTS))
         window_advance(*a, ctx, w)
-        route_advance(*a, *a, ctx, w, bw)
+        route_advance(*a, *a, w, bw, 40.0, x - 10.0, 0.0, x, 0.0, 10.0)
     assert math.isfinite(w[1])

@@ -142,6 +142,33 @@ class FenceSet:
         self._fi, self._ff = _fk.build_tables(list(zip(self.outer, self.inner, strict=True)),
                                               grid, self._everywhere)
         self._out = np.zeros(3 * max(1, len(self.fences)), dtype=np.int64)  # scratch
+        self.ids = [f.id for f in self.fences]  # fence index -> id (the monitors' keys)
+        # fences the probe tests at every point (too large for the grid, or in a cell the
+        # kernel cannot key): then no point can be ruled out by the grid alone
+        self._anywhere = bool(self._everywhere) or int(self._fi[2]) > 0
+
+    def may_be_near(self, x: float, y: float) -> bool:
+        """False when no fence can hold (x, y): :meth:`probe` would find none.
+
+        The grid cell and the outer bounding boxes listed there, looked up in Python: a
+        vehicle far from every fence (most fixes of a fleet) then costs no compiled call.
+        True means "ask :meth:`probe`" (a box holds the point, or a fence lies outside
+        the grid, or the point is not finite).
+
+        >>> fs = FenceSet([Fence("a", shapely.box(0, 0, 100, 100))], AlertSettings())
+        >>> fs.may_be_near(50.0, 50.0), fs.may_be_near(-20.0, 50.0), fs.may_be_near(900, 0)
+        (True, False, False)
+        """
+        if self._anywhere:
+            return True
+        try:
+            key = (math.floor(x / GRID_CELL_M), math.floor(y / GRID_CELL_M))
+        except (ValueError, OverflowError):  # NaN or infinite: the probe decides
+            return True
+        boxes = self._boxes.get(key)
+        if boxes is None:
+            return False
+        return any(x0 <= x <= x1 and y0 <= y <= y1 for _, x0, y0, x1, y1 in boxes)
 
     def probe(self, x: float, y: float) -> tuple[list[int], list[bool]]:
         """The fences whose outer polygon holds (x, y), and whether each inner one does.
@@ -159,7 +186,9 @@ class FenceSet:
         ([], [])
         """
         n = _fk.fence_probe(x, y, GRID_CELL_M, self._fi, self._ff, self._out)
-        if n >= 0:  # every answer certain (or no fence near)
+        if n == 0:
+            return [], []
+        if n > 0:  # every answer certain
             rows = self._out[:3 * n].tolist()
             return rows[0::3], [v == _fk.INSIDE for v in rows[2::3]]
         rows = self._out[:-3 * n].tolist()
@@ -266,65 +295,45 @@ class FenceMonitor:
         near, near_inner = probe if probe is not None else fences.probe(x, y)
         if not near and not state:
             return []  # near no fence and in none: most fixes of a fleet
-        inner = dict(zip(near, near_inner, strict=True))  # fence -> point in its inner polygon
-        if fences.filtered:
-            groups = tuple(groups)
-            near = [i for i in near if fences.fences[i].applies_to(fix.vehicle, groups)]
-            outer: Collection[int] = set(near)
-        else:
-            outer = inner.keys()
-        todo = near
-        if state:
-            index = fences.index
-            if not state.keys() <= index.keys():
-                for k in [k for k in state if k not in index]:
-                    del state[k]  # a fence no longer loaded
-            # Fences near the point, and those the vehicle is in (to see it leave them).
-            extra = [i for k in state if (i := index[k]) not in outer]
-            if extra:
-                todo = sorted(near + extra)  # near: sorted already
-                # Only a fence the vehicle is not inside asks for the inner polygon
-                # (entering); inside one, only the outer polygon counts (leaving). Each
-                # fence's state is its own, so this can be decided for all of them before
-                # any is updated. The probe answered for the fences near the point (all
-                # of ``todo`` but ``extra``); one being entered (a run of fixes in its
-                # inner polygon under way) that the point is now outside asks shapely.
-                listed = fences.fences
-                rest = [i for i in extra if i not in inner
-                        and not ((st := state.get(listed[i].id)) is not None and st[0])]
-                if rest:
-                    inner = {**inner, **dict(zip(rest, fences.inside_inner_many(rest, x, y),
-                                                 strict=True))}
+        # The fences to step, each with whether the point is in its inner polygon, and
+        # the fences whose outer polygon holds the point (None: every fence stepped).
+        # The usual case: every fence the vehicle has state for is near the point, and
+        # every fence watches every vehicle; then the probe's lists are the answer.
+        todo: Iterable[tuple[int, bool]] = zip(near, near_inner, strict=True)
+        outer: Collection[int] | None = None
+        if fences.filtered or (state and not _all_near(state, fences.index, near)):
+            todo, outer = _todo(state, fences, fix, x, y, groups, near, near_inner)
         alerts: list[Alert] = []
-        listed = fences.fences
+        ids = fences.ids
         settings = fences.settings
         needed = settings.fence_fixes
         t = fix.t
-        for i in todo:
+        for i, entering in todo:
             # one fence's step (inline: it runs for every fence near every fix)
-            fence = listed[i]
-            st = state.get(fence.id)
+            fid = ids[i]
+            st = state.get(fid)
             if not (st and st[0]):  # not inside
-                if inner.get(i, False):
+                if entering:
                     if st is None:
-                        st = state[fence.id] = [False, t, False, 0]
+                        st = state[fid] = [False, t, False, 0]
                     if st[3] == 0:
                         st[1] = t
                     st[3] += 1
                     if st[3] >= needed:
-                        state[fence.id] = [True, st[1], False, 0]
-                        alerts.append(_alert(fence, fix, "fence_enter", None))
+                        state[fid] = [True, st[1], False, 0]
+                        alerts.append(_alert(fences.fences[i], fix, "fence_enter", None))
                 elif st is not None:
-                    del state[fence.id]
+                    del state[fid]
                 continue
-            if i not in outer:
+            if outer is not None and i not in outer:
                 st[3] += 1
                 if st[3] >= needed:
-                    del state[fence.id]
-                    alerts.append(_alert(fence, fix, "fence_exit", t - st[1]))
+                    del state[fid]
+                    alerts.append(_alert(fences.fences[i], fix, "fence_exit", t - st[1]))
                 continue
             st[3] = 0
             if not st[2]:
+                fence = fences.fences[i]
                 dwell = fence.dwell_s if fence.dwell_s is not None else settings.fence_dwell_s
                 if t - st[1] >= dwell:
                     st[2] = True
@@ -341,6 +350,59 @@ class FenceMonitor:
         m = cls()
         m.state = {k: list(v) for k, v in state.items()}
         return m
+
+
+def _all_near(state: Mapping[str, list[Any]], index: Mapping[str, int],
+              near: list[int]) -> bool:
+    """Whether every fence of ``state`` is loaded and among the ``near`` ones."""
+    for k in state:
+        i = index.get(k)
+        if i is None or i not in near:
+            return False
+    return True
+
+
+def _todo(state: dict[str, list[Any]], fences: FenceSet, fix: Fix, x: float, y: float,
+          groups: Iterable[str], near: list[int], near_inner: list[bool],
+          ) -> tuple[list[tuple[int, bool]], Collection[int]]:
+    """:meth:`FenceMonitor.update`'s fences to step in the general case, and the outer set.
+
+    The fences near the point that watch the vehicle, and those the vehicle has state
+    for (to see it leave them), ascending, each with whether the point lies in its inner
+    polygon; and the fences whose outer polygon holds the point. Drops the state of
+    fences no longer loaded.
+    """
+    inner = dict(zip(near, near_inner, strict=True))  # fence -> point in its inner polygon
+    outer: Collection[int]
+    if fences.filtered:
+        groups = tuple(groups)
+        near = [i for i in near if fences.fences[i].applies_to(fix.vehicle, groups)]
+        outer = set(near)
+    else:
+        outer = inner.keys()
+    todo = near
+    if state:
+        index = fences.index
+        if not state.keys() <= index.keys():
+            for k in [k for k in state if k not in index]:
+                del state[k]  # a fence no longer loaded
+        # Fences near the point, and those the vehicle is in (to see it leave them).
+        extra = [i for k in state if (i := index[k]) not in outer]
+        if extra:
+            todo = sorted(near + extra)  # near: sorted already
+            # Only a fence the vehicle is not inside asks for the inner polygon
+            # (entering); inside one, only the outer polygon counts (leaving). Each
+            # fence's state is its own, so this can be decided for all of them before
+            # any is updated. The probe answered for the fences near the point (all
+            # of ``todo`` but ``extra``); one being entered (a run of fixes in its
+            # inner polygon under way) that the point is now outside asks shapely.
+            listed = fences.fences
+            rest = [i for i in extra if i not in inner
+                    and not ((st := state.get(listed[i].id)) is not None and st[0])]
+            if rest:
+                inner = {**inner, **dict(zip(rest, fences.inside_inner_many(rest, x, y),
+                                             strict=True))}
+    return [(i, inner.get(i, False)) for i in todo], outer
 
 
 def _alert(fence: Fence, fix: Fix, kind: str, duration_s: float | None) -> Alert:

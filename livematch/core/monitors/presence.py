@@ -14,7 +14,7 @@
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass
 from typing import Any
 
 from livematch.core.events import Alert
@@ -136,8 +136,9 @@ class StaleWatch:
             "lat": self.lat, "lon": self.lon})]
 
     def to_state(self) -> dict[str, Any]:
-        """JSON-ready state."""
-        return asdict(self)
+        """JSON-ready state (``dataclasses.asdict``'s dict, built without its deep copy)."""
+        return {"at": self.at, "t": self.t, "lat": self.lat, "lon": self.lon,
+                "stale": self.stale}
 
     @classmethod
     def from_state(cls, state: dict[str, Any]) -> StaleWatch:

@@ -163,10 +163,9 @@ class RouteChain:
         return float(shapely.get_x(p)), float(shapely.get_y(p))
 
 
-#: The window's cost weights: 1 / (2 sigma^2) with sigma 5 m, 1 / beta with beta 10 m, no
-#: turn-back or motion cost. A window only asks whether the fixes follow the route, so the
-#: weights merely rank its candidates (:meth:`_Window.best` breaks ties by cost).
-_WINDOW_WEIGHTS = (0.02, 0.1, 0.0, 0.0)
+#: The window's cost weights (1 / (2 sigma^2) with sigma 5 m, 1 / beta with beta 10 m, no
+#: turn-back or motion cost; :meth:`_Window.best` breaks ties by cost).
+_WINDOW_WEIGHTS = _rk.WINDOW_WEIGHTS
 _START_ROWS = 4  # a new window's room for live states (grown when a step needs more)
 #: A window with room for more than this many states while it holds no more than half
 #: of that gives the room back (keeps this many): a fresh start beside many route
@@ -356,12 +355,14 @@ class RouteMonitor:
 
     def update(self, fix: Fix) -> list[Alert]:
         """Take one accepted fix; return the alerts it causes (at most two)."""
-        s = self.settings
+        eps = self.settings.eps_route_m
         self.seq += 1
-        x0, y0 = self.last_xy if self.last_xy is not None else (fix.x, fix.y)
-        step_m = math.hypot(fix.x - x0, fix.y - y0)
-        self.last_xy = (fix.x, fix.y)
-        scalars = _step_scalars(s.eps_route_m, x0, y0, fix.x, fix.y, step_m)
+        x = fix.x
+        y = fix.y
+        last = self.last_xy
+        x0, y0 = last if last is not None else (x, y)
+        step_m = math.hypot(x - x0, y - y0)
+        self.last_xy = (x, y)
         chain = self.chain
         fa = chain.forward_arrays
         ba = chain.backward_arrays
@@ -369,17 +370,17 @@ class RouteMonitor:
         rev = self.rev
         k, fresh, most, seg, pos, bk, bfresh, bmost, bseg, bpos = _rk.route_advance(
             fa.netf, fa.neti, fa.fbuf, fa.ibuf, ba.netf, ba.neti, ba.fbuf, ba.ibuf,
-            scalars, fwd.w, rev.w)
+            fwd.w, rev.w, eps, x0, y0, x, y, step_m)
         if k >= 0:
             fwd.done(k, fresh, most, seg, pos, self.seq, fix.t)
-        else:  # an overflow: grow, then one window at a time
+        else:  # an overflow: grow, then one window at a time (the scalars as an array)
             fwd.grow(fa, k, fresh)
-            fwd.step(fa, scalars, self.seq, fix.t)
+            fwd.step(fa, _step_scalars(eps, x0, y0, x, y, step_m), self.seq, fix.t)
         if bk >= 0:
             rev.done(bk, bfresh, bmost, bseg, bpos, self.seq, fix.t)
         else:
             rev.grow(ba, bk, bfresh)
-            rev.step(ba, scalars, self.seq, fix.t)
+            rev.step(ba, _step_scalars(eps, x0, y0, x, y, step_m), self.seq, fix.t)
         self.trail_m += step_m  # reset at every on-route fix (the anchor)
         alerts: list[Alert] = []
         if fwd.k > 0:  # fwd.live

@@ -75,7 +75,15 @@ class VehicleAlerts:
             groups: the vehicle's group names (for fence filters).
             settings: the alert settings.
         """
-        alerts = self.network.update(fix, has_road, settings)
+        network = self.network
+        if has_road and not network.off:
+            # on a road and not off the network: OffNetworkMonitor.update's first case,
+            # inline (it runs for nearly every fix of every vehicle)
+            network.since = None
+            network.last_on = (fix.t, fix.lat, fix.lon)
+            alerts: list[Alert] = []
+        else:
+            alerts = network.update(fix, has_road, settings)
         if self.route is not None:
             alerts.extend(self.route.update(fix))
         if fences is not None:
@@ -83,6 +91,8 @@ class VehicleAlerts:
                     else (fix.x, fix.y))
             monitor = self.fences
             if monitor is None:
+                if not fences.may_be_near(x, y):
+                    return alerts  # no fence can hold the point: no compiled probe
                 near = fences.probe(x, y)
                 if True not in near[1]:
                     # in no fence and in no inner polygon: a fresh monitor would neither
