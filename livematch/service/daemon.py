@@ -139,6 +139,9 @@ _ACK_WAIT_S = 1.0
 # A takeover replays this many kept messages, then lets the event loop run (leases,
 # PUBACKs, keepalive) before the next ones.
 _REPLAY_CHUNK = 200
+# Most topics whose intake key part is remembered (then forgotten all at once): a
+# bound on memory under a flood of made-up topics (~0.2 KB each).
+_TOPIC_KEYS_MAX = 100_000
 
 
 class OutputLike(Protocol):
@@ -354,6 +357,7 @@ class Daemon:
         self._enqueued = 0  # outputs ever queued
         self._acked = 0  # outputs ever acknowledged by the broker (queue order)
         self._shard_cache: dict[str, int] = {}
+        self._topic_keys: dict[str, str] = {}  # topic -> what it says (_topic_key)
         # One shard write at a time: a hand-over's checkpoint must not be overtaken by
         # an older export of the periodic checkpoint (same fencing number, older state).
         self._write_lock = asyncio.Lock()
@@ -1281,7 +1285,7 @@ class Daemon:
                              intake=self._intake)
         write_soon(client)
         cap_inflight(client, _PUBLISH_WINDOW)
-        lean_receive(client)
+        lean_receive(client, deliver=self._intake.put_nowait)
         buffered_reads(client)
         cancelled = False
         try:
@@ -1406,7 +1410,10 @@ class Daemon:
                 kept_run = 0
                 matched_run = 0
                 await self._wait_for_room()
-                await asyncio.sleep(0)  # leases, PUBACKs and keepalive run between messages
+                if not intake.empty():
+                    # leases, PUBACKs and keepalive run between messages (with nothing
+                    # waiting, intake.wait() lets them run: no extra turn of the loop)
+                    await asyncio.sleep(0)
         finally:
             stop.cancel()
             if isinstance(closed, asyncio.Future):
@@ -1427,17 +1434,38 @@ class Daemon:
                 and len(self._outbox) < self.config.publish.queue_max)
 
     def _intake_key(self, topic: str, payload: bytes) -> str:
-        """The vehicle a received message is about, for shedding (cheap; topic first)."""
-        control = self._mqtt.control_topic
-        if control and vehicle_from_topic(topic, control) is not None:
-            return "c:" + topic
+        """The vehicle a received message is about, for shedding (cheap; topic first).
+
+        ``c:TOPIC`` for a control message, :data:`JUNK_KEY` for one that cannot be a
+        fix, else ``v:VEHICLE`` (from the topic, else the payload) or ``t:TOPIC``. What
+        the topic says is remembered per topic (:meth:`_topic_key`): a vehicle sends on
+        the same topic every time, and matching it against the filters costs more than
+        the rest of this (a few microseconds a message).
+        """
+        key = self._topic_key(topic)
+        if key.startswith("c:"):
+            return key
         if not looks_like_position(payload, self.config.feed):
             return JUNK_KEY  # shed before any fix
-        vehicle = vehicle_from_topic(topic, self._mqtt.topic)
-        if vehicle is not None:
-            return "v:" + vehicle
+        if key:
+            return key
         vehicle = known_vehicle(topic, payload, self.config.feed)
         return "v:" + vehicle if vehicle is not None else "t:" + topic
+
+    def _topic_key(self, topic: str) -> str:
+        """``c:TOPIC`` (control topic), ``v:VEHICLE`` (the feed topic's vehicle) or ""."""
+        key = self._topic_keys.get(topic)
+        if key is None:
+            control = self._mqtt.control_topic
+            if control and vehicle_from_topic(topic, control) is not None:
+                key = "c:" + topic
+            else:
+                vehicle = vehicle_from_topic(topic, self._mqtt.topic)
+                key = "v:" + vehicle if vehicle is not None else ""
+            if len(self._topic_keys) >= _TOPIC_KEYS_MAX:  # bound it against topic floods
+                self._topic_keys.clear()
+            self._topic_keys[topic] = key
+        return key
 
     def _count_shed(self, message: aiomqtt.Message) -> None:
         self.metrics.shed.inc()
