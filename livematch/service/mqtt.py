@@ -1057,8 +1057,12 @@ def cap_inflight(client: aiomqtt.Client, most: int) -> None:
     paho.on_connect = on_connect
 
 
-def on_acknowledged(client: aiomqtt.Client, callback: Callable[[], None]) -> None:
-    """Call ``callback`` (in the event loop) after every PUBACK, besides aiomqtt's own.
+def on_acknowledged(client: aiomqtt.Client, callback: Callable[[int], None]) -> None:
+    """Call ``callback(mid)`` (in the event loop) on every PUBACK, besides aiomqtt's own.
+
+    paho calls it just before it marks the message's info as published, so inside the
+    callback ``is_published()`` of that message (the packet identifier ``mid``) is
+    still False; of every message acknowledged before it, True.
 
     aiomqtt's own ``on_publish`` wakes the ``publish`` call waiting for that message:
     it looks the message up in its table of pending publishes, and for a message sent
@@ -1076,7 +1080,7 @@ def on_acknowledged(client: aiomqtt.Client, callback: Callable[[], None]) -> Non
     def on_publish(*args: Any) -> None:
         if inner is not None and (pending is None or args[2] in pending):
             inner(*args)
-        callback()
+        callback(args[2])
 
     paho.on_publish = on_publish
 
