@@ -778,6 +778,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                   "subscriber": round(self_cpu, 2)},
         "system_user_sys_s": [round(sum(split[p][0] for p in sut_pids), 2),
                               round(sum(split[p][1] for p in sut_pids), 2)],
+        "worker_cpu_s": [round(cpu[p.pid], 3) for p in sut],  # each process of the system
         "published_by_kind": {k: sum(b.get(k, 0.0) - a.get(k, 0.0)
                                      for a, b in zip(published0, published1, strict=True))
                               for k in sorted({k for d in published1 for k in d})}
@@ -863,6 +864,8 @@ def cpu_per_fix(rate: int, seconds: int, repeat: int, generators: int, systems: 
                 shutil.rmtree(probe_dir, ignore_errors=True)
                 row["ms_per_fix"] = {role: round(v * 1000 / fixes, 4)
                                      for role, v in row["cpu_s"].items()}
+                row["worker_ms_per_fix"] = [round(v * 1000 / fixes, 4)
+                                            for v in row["worker_cpu_s"]]
                 user, sys_s = row["system_user_sys_s"]
                 row["system_user_sys_ms_per_fix"] = [round(user * 1000 / fixes, 4),
                                                      round(sys_s * 1000 / fixes, 4)]
@@ -949,6 +952,7 @@ def render_cpu(r: dict[str, Any]) -> str:
     if shells:
         lines.append(f"livematch-1: pipeline {statistics.median(pipes):.3f} and shell "
                      f"{statistics.median(shells):.3f} CPU ms per fix (medians).")
+    lines += _two_worker_lines(r)
     if "relay" in systems:
         for s in systems:
             if s == "relay":
@@ -966,6 +970,45 @@ def render_cpu(r: dict[str, Any]) -> str:
                              f"throughput ratio is about the inverse, "
                              f"{1 / statistics.median(each):.2f}.")
     return "\n".join(lines) + "\n"
+
+
+def _two_worker_lines(r: dict[str, Any]) -> list[str]:
+    """What the CPU per fix of each worker predicts for two workers on two free cores.
+
+    At the same total rate, one worker (livematch-1) uses c1 CPU seconds per fix of
+    the feed; in a group of two each worker uses its own share of CPU per fix of the
+    *whole* feed (w0, w1: each receives every fix, matches its shards' and keeps the
+    others'). A worker that is CPU-bound on a core of its own handles at most
+    1 / c1 fixes/s alone; in the group the busier worker saturates first, at
+    1 / max(w0, w1) fixes/s of the whole feed. So two workers, each on a free core,
+    reach c1 / max(w0, w1) times one worker's throughput (the broker, the generators
+    and the store on other cores; both measured at the same offered rate, within one
+    round). A throughput search cannot show it on 2 cores that also run the broker
+    and the generators. Empty when the run has no livematch-1 or no two-worker system.
+    """
+    rows = r["steps"]
+    pairs = [s for s in r["systems"] if s in ("livematch-2", "livematch-2s")]
+    if "livematch-1" not in r["systems"] or not pairs:
+        return []
+    out = []
+    for s in pairs:
+        each = []
+        for k in range(1, r["repeat"] + 1):
+            one = [row for row in rows if row["repeat"] == k and row["system"] == "livematch-1"]
+            two = [row for row in rows if row["repeat"] == k and row["system"] == s]
+            if one and two and len(two[0].get("worker_ms_per_fix") or []) == 2:
+                w = two[0]["worker_ms_per_fix"]
+                each.append((one[0]["ms_per_fix"]["system"], w[0], w[1]))
+        if each:
+            ratios = [c1 / max(w0, w1) for c1, w0, w1 in each]
+            out.append(
+                f"{s}: CPU ms per fix of the whole feed, one worker vs each of the two, "
+                "per round: " + ", ".join(f"{c1:.3f} vs {w0:.3f} / {w1:.3f}"
+                                          for c1, w0, w1 in each)
+                + "; predicted throughput of two workers on two free cores, c1 / max(w0, "
+                f"w1): {', '.join(f'{x:.2f}' for x in ratios)} (median "
+                f"{statistics.median(ratios):.2f}) times one worker's (goal >= 1.6).")
+    return out
 
 
 # ---------------------------------------------------------------- the profile mode
