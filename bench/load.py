@@ -171,6 +171,43 @@ def cpu_split(pid: int) -> tuple[float, float]:
     return int(fields[11]) / CLK_TCK, int(fields[12]) / CLK_TCK
 
 
+def sleeps(pid: int) -> int:
+    """Voluntary context switches of a live process and its threads (0 when it is gone).
+
+    Each is a time the process blocked (waiting in ``epoll`` for the socket, mostly)
+    and had to be woken again: on this VM such a wake-up costs far more CPU than a turn
+    of the event loop that finds work waiting (``--loop-cost``).
+    """
+    total = 0
+    try:
+        for task in Path(f"/proc/{pid}/task").iterdir():
+            for line in (task / "status").read_text().splitlines():
+                if line.startswith("voluntary_ctxt_switches:"):
+                    total += int(line.split()[1])
+    except OSError:
+        return 0
+    return total
+
+
+def loop_cost(seconds: float = 3.0) -> dict[str, float]:
+    """CPU (user + system) per turn of an asyncio loop that blocks 1 ms, and of one that
+    never blocks, in this process: the price of waking up against the loop's own cost."""
+    async def turns(stop: float, period: float) -> int:
+        n = 0
+        while time.perf_counter() < stop:
+            await asyncio.sleep(period)
+            n += 1
+        return n
+
+    out: dict[str, float] = {"loadavg_1m": load_average()}
+    for name, period in (("blocking_us", 0.001), ("busy_us", 0.0)):
+        t0 = os.times()
+        n = asyncio.run(turns(time.perf_counter() + seconds, period))
+        t1 = os.times()
+        out[name] = round((t1.user - t0.user + t1.system - t0.system) / n * 1e6, 1)
+    return out
+
+
 def wait_ready(ports: list[int], procs: list[subprocess.Popen[bytes]],
                timeout: float = START_TIMEOUT_S) -> float:
     """Wait until every livematch worker's ``/readyz`` answers 200; seconds it took.
@@ -677,6 +714,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         window0 = time.time()
         cpu0 = {p.pid: cpu_seconds(p.pid) for p in procs}
         split0 = {p.pid: cpu_split(p.pid) for p in sut}
+        sleeps0 = {p.pid: sleeps(p.pid) for p in sut}
         self0 = time.process_time()
         t0 = time.time() + 0.3
         for gen in gens:
@@ -688,6 +726,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         while time.time() < deadline and len(sub.got) < expected:
             time.sleep(0.05)
         cpu = {p.pid: cpu_seconds(p.pid) - cpu0[p.pid] for p in procs}
+        woken = {p.pid: sleeps(p.pid) - sleeps0[p.pid] for p in sut}
         split = {p.pid: tuple(b - a for a, b in zip(split0[p.pid], cpu_split(p.pid),
                                                      strict=True)) for p in sut}
         self_cpu = time.process_time() - self0
@@ -779,6 +818,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         "system_user_sys_s": [round(sum(split[p][0] for p in sut_pids), 2),
                               round(sum(split[p][1] for p in sut_pids), 2)],
         "worker_cpu_s": [round(cpu[p.pid], 3) for p in sut],  # each process of the system
+        "system_sleeps": sum(woken.values()),  # voluntary context switches (wake-ups)
         "published_by_kind": {k: sum(b.get(k, 0.0) - a.get(k, 0.0)
                                      for a, b in zip(published0, published1, strict=True))
                               for k in sorted({k for d in published1 for k in d})}
@@ -866,6 +906,7 @@ def cpu_per_fix(rate: int, seconds: int, repeat: int, generators: int, systems: 
                                      for role, v in row["cpu_s"].items()}
                 row["worker_ms_per_fix"] = [round(v * 1000 / fixes, 4)
                                             for v in row["worker_cpu_s"]]
+                row["sleeps_per_fix"] = round(row["system_sleeps"] / fixes, 3)
                 user, sys_s = row["system_user_sys_s"]
                 row["system_user_sys_ms_per_fix"] = [round(user * 1000 / fixes, 4),
                                                      round(sys_s * 1000 / fixes, 4)]
@@ -875,6 +916,7 @@ def cpu_per_fix(rate: int, seconds: int, repeat: int, generators: int, systems: 
                 print(json.dumps(row), flush=True)
                 rows.append(row)
     result = {"command": sys.argv, "started_utc": started, "cpu_count": os.cpu_count(),
+              "loop_cost": loop_cost(),
               "rate": rate, "seconds": seconds, "repeat": repeat, "systems": systems,
               "broker_nodelay": BROKER_NODELAY, "git": git_state(), "note": note,
               "livematch_from": str(Path(livematch_file()).parent), "steps": rows}
@@ -903,7 +945,12 @@ def render_cpu(r: dict[str, Any]) -> str:
                                      if git["livematch_uncommitted"] else "") + "; "
         f"1-minute load average before the steps {min(loads)}-{max(loads)}; "
         f"{r['cpu_count']} cores shared with other people's work. livematch imported "
-        f"from `{r['livematch_from']}`." + (f" {r['note']}" if r.get("note") else ""),
+        f"from `{r['livematch_from']}`." + (f" {r['note']}" if r.get("note") else "")
+        + (f" Price of a wake-up on this machine (`--loop-cost`, load average "
+           f"{r['loop_cost']['loadavg_1m']}): {r['loop_cost']['blocking_us']} µs of CPU per "
+           "turn of an event loop that blocks 1 ms between turns, "
+           f"{r['loop_cost']['busy_us']} µs per turn of one that never blocks."
+           if r.get("loop_cost") else ""),
         "",
         f"Each step: {r['rate']} vehicles at 1 Hz for {r['seconds']} s "
         f"({r['rate'] * r['seconds']:,} fixes, QoS 1) through a fresh mosquitto; CPU seconds "
@@ -918,12 +965,15 @@ def render_cpu(r: dict[str, Any]) -> str:
         "under the probe of `--profile` (no py-spy), which sums the CPU time of its "
         "thread (`time.thread_time`) inside `Pipeline.handle`, `Pipeline.export_vehicle` "
         "(checkpoints) and `Pipeline.tick` during the step: *pipeline*; *shell* is the "
-        "rest of the daemon's CPU (MQTT client, event loop, queues, encoding, metrics).",
+        "rest of the daemon's CPU (MQTT client, event loop, queues, encoding, metrics). "
+        "Wake-ups per fix: voluntary context switches of the system's processes during "
+        "the step (/proc/<pid>/task/*/status), divided by the fixes: each time it blocked "
+        "waiting for the socket and was woken again.",
         "",
         "| round | system | load avg | delivered | p50 / p99 ms | publishes per fix | "
-        "CPU ms per fix: system (user + sys) | of which pipeline: handle + checkpoints "
-        "+ tick | shell | broker | generators | subscriber |",
-        "|---:|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|",
+        "wake-ups per fix | CPU ms per fix: system (user + sys) | of which pipeline: "
+        "handle + checkpoints + tick | shell | broker | generators | subscriber |",
+        "|---:|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|",
     ]
     for row in rows:
         m = row["ms_per_fix"]
@@ -938,7 +988,8 @@ def render_cpu(r: dict[str, Any]) -> str:
         lines.append(
             f"| {row['repeat']} | {row['system']} | {row['loadavg_1m']} | "
             f"{row['delivered_share']:.1%} | {fmt(row['p50_ms'])} / {fmt(row['p99_ms'])} | "
-            f"{row['publishes_per_fix']} | {m['system']:.3f} ({u:.3f} + {y:.3f}) | {split} | "
+            f"{row['publishes_per_fix']} | {fmt(row.get('sleeps_per_fix'))} | "
+            f"{m['system']:.3f} ({u:.3f} + {y:.3f}) | {split} | "
             f"{m['broker']:.3f} | {m['generators']:.3f} | {m['subscriber']:.3f} |")
     systems = r["systems"]
     med = {s: statistics.median(row["ms_per_fix"]["system"] for row in rows
@@ -1334,6 +1385,9 @@ def main(argv: list[str] | None = None) -> int:
                     help="with --cpu-per-fix: result file stem (default load.cpu-RATE)")
     ap.add_argument("--note", default="",
                     help="with --cpu-per-fix: a sentence for the report (which code ran)")
+    ap.add_argument("--loop-cost", action="store_true",
+                    help="only print the CPU per event-loop turn that blocks 1 ms vs one "
+                         "that never blocks (the price of a wake-up on this machine)")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     argv = sys.argv[1:] if argv is None else argv
     if argv[:1] == ["--render"]:  # re-render load.md from load.json (after a report fix)
@@ -1356,6 +1410,9 @@ def main(argv: list[str] | None = None) -> int:
             opts.add(flag)
         return probe(rest, argv[3], "--nodelay" in opts, "--freeze" in opts, inflight)
     args = ap.parse_args(argv)
+    if args.loop_cost:
+        print(json.dumps(loop_cost()))
+        return 0
     global BROKER_NODELAY
     BROKER_NODELAY = args.broker_nodelay
     if args.profile:
