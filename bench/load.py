@@ -171,6 +171,43 @@ def cpu_split(pid: int) -> tuple[float, float]:
     return int(fields[11]) / CLK_TCK, int(fields[12]) / CLK_TCK
 
 
+def sleeps(pid: int) -> int:
+    """Voluntary context switches of a live process and its threads (0 when it is gone).
+
+    Each is a time the process blocked (waiting in ``epoll`` for the socket, mostly)
+    and had to be woken again: on this VM such a wake-up costs far more CPU than a turn
+    of the event loop that finds work waiting (``--loop-cost``).
+    """
+    total = 0
+    try:
+        for task in Path(f"/proc/{pid}/task").iterdir():
+            for line in (task / "status").read_text().splitlines():
+                if line.startswith("voluntary_ctxt_switches:"):
+                    total += int(line.split()[1])
+    except OSError:
+        return 0
+    return total
+
+
+def loop_cost(seconds: float = 3.0) -> dict[str, float]:
+    """CPU (user + system) per turn of an asyncio loop that blocks 1 ms, and of one that
+    never blocks, in this process: the price of waking up against the loop's own cost."""
+    async def turns(stop: float, period: float) -> int:
+        n = 0
+        while time.perf_counter() < stop:
+            await asyncio.sleep(period)
+            n += 1
+        return n
+
+    out: dict[str, float] = {"loadavg_1m": load_average()}
+    for name, period in (("blocking_us", 0.001), ("busy_us", 0.0)):
+        t0 = os.times()
+        n = asyncio.run(turns(time.perf_counter() + seconds, period))
+        t1 = os.times()
+        out[name] = round((t1.user - t0.user + t1.system - t0.system) / n * 1e6, 1)
+    return out
+
+
 def wait_ready(ports: list[int], procs: list[subprocess.Popen[bytes]],
                timeout: float = START_TIMEOUT_S) -> float:
     """Wait until every livematch worker's ``/readyz`` answers 200; seconds it took.
@@ -677,6 +714,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         window0 = time.time()
         cpu0 = {p.pid: cpu_seconds(p.pid) for p in procs}
         split0 = {p.pid: cpu_split(p.pid) for p in sut}
+        sleeps0 = {p.pid: sleeps(p.pid) for p in sut}
         self0 = time.process_time()
         t0 = time.time() + 0.3
         for gen in gens:
@@ -688,6 +726,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         while time.time() < deadline and len(sub.got) < expected:
             time.sleep(0.05)
         cpu = {p.pid: cpu_seconds(p.pid) - cpu0[p.pid] for p in procs}
+        woken = {p.pid: sleeps(p.pid) - sleeps0[p.pid] for p in sut}
         split = {p.pid: tuple(b - a for a, b in zip(split0[p.pid], cpu_split(p.pid),
                                                      strict=True)) for p in sut}
         self_cpu = time.process_time() - self0
@@ -778,6 +817,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                   "subscriber": round(self_cpu, 2)},
         "system_user_sys_s": [round(sum(split[p][0] for p in sut_pids), 2),
                               round(sum(split[p][1] for p in sut_pids), 2)],
+        "worker_cpu_s": [round(cpu[p.pid], 3) for p in sut],  # each process of the system
+        "system_sleeps": sum(woken.values()),  # voluntary context switches (wake-ups)
         "published_by_kind": {k: sum(b.get(k, 0.0) - a.get(k, 0.0)
                                      for a, b in zip(published0, published1, strict=True))
                               for k in sorted({k for d in published1 for k in d})}
@@ -863,6 +904,9 @@ def cpu_per_fix(rate: int, seconds: int, repeat: int, generators: int, systems: 
                 shutil.rmtree(probe_dir, ignore_errors=True)
                 row["ms_per_fix"] = {role: round(v * 1000 / fixes, 4)
                                      for role, v in row["cpu_s"].items()}
+                row["worker_ms_per_fix"] = [round(v * 1000 / fixes, 4)
+                                            for v in row["worker_cpu_s"]]
+                row["sleeps_per_fix"] = round(row["system_sleeps"] / fixes, 3)
                 user, sys_s = row["system_user_sys_s"]
                 row["system_user_sys_ms_per_fix"] = [round(user * 1000 / fixes, 4),
                                                      round(sys_s * 1000 / fixes, 4)]
@@ -872,6 +916,7 @@ def cpu_per_fix(rate: int, seconds: int, repeat: int, generators: int, systems: 
                 print(json.dumps(row), flush=True)
                 rows.append(row)
     result = {"command": sys.argv, "started_utc": started, "cpu_count": os.cpu_count(),
+              "loop_cost": loop_cost(),
               "rate": rate, "seconds": seconds, "repeat": repeat, "systems": systems,
               "broker_nodelay": BROKER_NODELAY, "git": git_state(), "note": note,
               "livematch_from": str(Path(livematch_file()).parent), "steps": rows}
@@ -900,7 +945,12 @@ def render_cpu(r: dict[str, Any]) -> str:
                                      if git["livematch_uncommitted"] else "") + "; "
         f"1-minute load average before the steps {min(loads)}-{max(loads)}; "
         f"{r['cpu_count']} cores shared with other people's work. livematch imported "
-        f"from `{r['livematch_from']}`." + (f" {r['note']}" if r.get("note") else ""),
+        f"from `{r['livematch_from']}`." + (f" {r['note']}" if r.get("note") else "")
+        + (f" Price of a wake-up on this machine (`--loop-cost`, load average "
+           f"{r['loop_cost']['loadavg_1m']}): {r['loop_cost']['blocking_us']} µs of CPU per "
+           "turn of an event loop that blocks 1 ms between turns, "
+           f"{r['loop_cost']['busy_us']} µs per turn of one that never blocks."
+           if r.get("loop_cost") else ""),
         "",
         f"Each step: {r['rate']} vehicles at 1 Hz for {r['seconds']} s "
         f"({r['rate'] * r['seconds']:,} fixes, QoS 1) through a fresh mosquitto; CPU seconds "
@@ -915,12 +965,15 @@ def render_cpu(r: dict[str, Any]) -> str:
         "under the probe of `--profile` (no py-spy), which sums the CPU time of its "
         "thread (`time.thread_time`) inside `Pipeline.handle`, `Pipeline.export_vehicle` "
         "(checkpoints) and `Pipeline.tick` during the step: *pipeline*; *shell* is the "
-        "rest of the daemon's CPU (MQTT client, event loop, queues, encoding, metrics).",
+        "rest of the daemon's CPU (MQTT client, event loop, queues, encoding, metrics). "
+        "Wake-ups per fix: voluntary context switches of the system's processes during "
+        "the step (/proc/<pid>/task/*/status), divided by the fixes: each time it blocked "
+        "waiting for the socket and was woken again.",
         "",
         "| round | system | load avg | delivered | p50 / p99 ms | publishes per fix | "
-        "CPU ms per fix: system (user + sys) | of which pipeline: handle + checkpoints "
-        "+ tick | shell | broker | generators | subscriber |",
-        "|---:|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|",
+        "wake-ups per fix | CPU ms per fix: system (user + sys) | of which pipeline: "
+        "handle + checkpoints + tick | shell | broker | generators | subscriber |",
+        "|---:|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|",
     ]
     for row in rows:
         m = row["ms_per_fix"]
@@ -935,7 +988,8 @@ def render_cpu(r: dict[str, Any]) -> str:
         lines.append(
             f"| {row['repeat']} | {row['system']} | {row['loadavg_1m']} | "
             f"{row['delivered_share']:.1%} | {fmt(row['p50_ms'])} / {fmt(row['p99_ms'])} | "
-            f"{row['publishes_per_fix']} | {m['system']:.3f} ({u:.3f} + {y:.3f}) | {split} | "
+            f"{row['publishes_per_fix']} | {fmt(row.get('sleeps_per_fix'))} | "
+            f"{m['system']:.3f} ({u:.3f} + {y:.3f}) | {split} | "
             f"{m['broker']:.3f} | {m['generators']:.3f} | {m['subscriber']:.3f} |")
     systems = r["systems"]
     med = {s: statistics.median(row["ms_per_fix"]["system"] for row in rows
@@ -949,6 +1003,7 @@ def render_cpu(r: dict[str, Any]) -> str:
     if shells:
         lines.append(f"livematch-1: pipeline {statistics.median(pipes):.3f} and shell "
                      f"{statistics.median(shells):.3f} CPU ms per fix (medians).")
+    lines += _two_worker_lines(r)
     if "relay" in systems:
         for s in systems:
             if s == "relay":
@@ -966,6 +1021,45 @@ def render_cpu(r: dict[str, Any]) -> str:
                              f"throughput ratio is about the inverse, "
                              f"{1 / statistics.median(each):.2f}.")
     return "\n".join(lines) + "\n"
+
+
+def _two_worker_lines(r: dict[str, Any]) -> list[str]:
+    """What the CPU per fix of each worker predicts for two workers on two free cores.
+
+    At the same total rate, one worker (livematch-1) uses c1 CPU seconds per fix of
+    the feed; in a group of two each worker uses its own share of CPU per fix of the
+    *whole* feed (w0, w1: each receives every fix, matches its shards' and keeps the
+    others'). A worker that is CPU-bound on a core of its own handles at most
+    1 / c1 fixes/s alone; in the group the busier worker saturates first, at
+    1 / max(w0, w1) fixes/s of the whole feed. So two workers, each on a free core,
+    reach c1 / max(w0, w1) times one worker's throughput (the broker, the generators
+    and the store on other cores; both measured at the same offered rate, within one
+    round). A throughput search cannot show it on 2 cores that also run the broker
+    and the generators. Empty when the run has no livematch-1 or no two-worker system.
+    """
+    rows = r["steps"]
+    pairs = [s for s in r["systems"] if s in ("livematch-2", "livematch-2s")]
+    if "livematch-1" not in r["systems"] or not pairs:
+        return []
+    out = []
+    for s in pairs:
+        each = []
+        for k in range(1, r["repeat"] + 1):
+            one = [row for row in rows if row["repeat"] == k and row["system"] == "livematch-1"]
+            two = [row for row in rows if row["repeat"] == k and row["system"] == s]
+            if one and two and len(two[0].get("worker_ms_per_fix") or []) == 2:
+                w = two[0]["worker_ms_per_fix"]
+                each.append((one[0]["ms_per_fix"]["system"], w[0], w[1]))
+        if each:
+            ratios = [c1 / max(w0, w1) for c1, w0, w1 in each]
+            out.append(
+                f"{s}: CPU ms per fix of the whole feed, one worker vs each of the two, "
+                "per round: " + ", ".join(f"{c1:.3f} vs {w0:.3f} / {w1:.3f}"
+                                          for c1, w0, w1 in each)
+                + "; predicted throughput of two workers on two free cores, c1 / max(w0, "
+                f"w1): {', '.join(f'{x:.2f}' for x in ratios)} (median "
+                f"{statistics.median(ratios):.2f}) times one worker's (goal >= 1.6).")
+    return out
 
 
 # ---------------------------------------------------------------- the profile mode
@@ -1291,6 +1385,9 @@ def main(argv: list[str] | None = None) -> int:
                     help="with --cpu-per-fix: result file stem (default load.cpu-RATE)")
     ap.add_argument("--note", default="",
                     help="with --cpu-per-fix: a sentence for the report (which code ran)")
+    ap.add_argument("--loop-cost", action="store_true",
+                    help="only print the CPU per event-loop turn that blocks 1 ms vs one "
+                         "that never blocks (the price of a wake-up on this machine)")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     argv = sys.argv[1:] if argv is None else argv
     if argv[:1] == ["--render"]:  # re-render load.md from load.json (after a report fix)
@@ -1313,6 +1410,9 @@ def main(argv: list[str] | None = None) -> int:
             opts.add(flag)
         return probe(rest, argv[3], "--nodelay" in opts, "--freeze" in opts, inflight)
     args = ap.parse_args(argv)
+    if args.loop_cost:
+        print(json.dumps(loop_cost()))
+        return 0
     global BROKER_NODELAY
     BROKER_NODELAY = args.broker_nodelay
     if args.profile:

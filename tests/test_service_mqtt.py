@@ -6,11 +6,20 @@ import asyncio
 from typing import Any
 
 import aiomqtt
+import paho.mqtt.client as paho_client
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 from services import Collector, Mosquitto
 
-from livematch.service.mqtt import buffered_reads, cap_inflight, lean_receive, publish_now
+from livematch.service.mqtt import (
+    ReceivedTopic,
+    _BufferedSocket,
+    buffered_reads,
+    cap_inflight,
+    lean_receive,
+    on_acknowledged,
+    publish_now,
+)
 
 pytest_plugins = ("fixtures_services",)
 
@@ -41,6 +50,11 @@ async def test_lean_receive_decodes_as_paho(mosquitto: Mosquitto, prefix: str) -
     plain = aiomqtt.Client("127.0.0.1", mosquitto.port, protocol=aiomqtt.ProtocolVersion.V5)
     lean = aiomqtt.Client("127.0.0.1", mosquitto.port, protocol=aiomqtt.ProtocolVersion.V5)
     lean_receive(lean)
+    # handed to a callable directly (the daemon's intake queue), read from whole packets
+    # in the socket buffer (buffered_reads): the same messages as paho's decoding
+    direct = aiomqtt.Client("127.0.0.1", mosquitto.port, protocol=aiomqtt.ProtocolVersion.V5)
+    delivered: list[aiomqtt.Message] = []
+    lean_receive(direct, deliver=delivered.append)
     user = Properties(PacketTypes.PUBLISH)
     user.UserProperty = ("k", "v")
     sent = [(f"{prefix}/lean/a", b'{"x":1}', 0, None), (f"{prefix}/lean/b", b"", 1, None),
@@ -48,11 +62,17 @@ async def test_lean_receive_decodes_as_paho(mosquitto: Mosquitto, prefix: str) -
             (f"{prefix}/lean/p", b"with properties", 1, user),
             (f"{prefix}/lean/q", b"qos 0 with properties", 0, user)]
     got: dict[str, list[tuple[str, bytes, int, bool, str]]] = {}
-    async with plain, lean:
-        for client in (plain, lean):
+    async with plain, lean, direct:
+        buffered_reads(direct)  # wraps the socket opened from now on: none yet
+        for client in (plain, lean, direct):
             await client.subscribe(f"{prefix}/lean/#", qos=1)
         for topic, payload, qos, props in sent:  # from the lean client: PUBACKs read lean
             await lean.publish(topic, payload, qos=qos, properties=props)
+        async with asyncio.timeout(10):
+            while len(delivered) + direct._queue.qsize() < len(sent):
+                await asyncio.sleep(0.01)
+        while not direct._queue.empty():  # with properties: paho's way, aiomqtt's queue
+            delivered.append(direct._queue.get_nowait())
         for name, client in (("plain", plain), ("lean", lean)):
             rows = got.setdefault(name, [])
             async with asyncio.timeout(10):
@@ -68,6 +88,10 @@ async def test_lean_receive_decodes_as_paho(mosquitto: Mosquitto, prefix: str) -
                             for t, p, q, props in sent]
     assert got["lean"] == [(t, p, q, False, "none" if props is None else "user")
                            for t, p, q, props in sent]
+    rows = [(m.topic.value, m.payload, m.qos, m.retain, m.properties is None)
+            for m in delivered]
+    assert sorted(rows) == sorted((t, p, q, False, props is None) for t, p, q, props in sent)
+    assert {type(m.topic) for m in delivered if m.properties is None} == {ReceivedTopic}
 
 
 async def test_lean_receive_puback_reason_codes_as_paho(mosquitto: Mosquitto,
@@ -197,6 +221,133 @@ async def test_buffered_reads_deliver_a_burst_in_order_with_few_reads(
         reads = sock.reads
     assert got == sent
     assert reads < len(sent) // 4  # paho alone: at least 3 per PUBLISH (9 in a quiet run)
+
+
+class _Chunks:
+    """A socket whose ``recv`` returns the given pieces one by one, then would block."""
+
+    def __init__(self, pieces: list[bytes]) -> None:
+        self.pieces = list(reversed(pieces))
+
+    def recv(self, n: int) -> bytes:
+        if not self.pieces:
+            raise BlockingIOError
+        piece = self.pieces.pop()
+        if len(piece) > n:
+            self.pieces.append(piece[n:])
+        return piece[:n]
+
+    def fileno(self) -> int:
+        return -1
+
+    def close(self) -> None:
+        return None
+
+
+def _publish_packet(topic: str, payload: bytes, mid: int, qos: int) -> bytes:
+    """A PUBLISH as paho writes it (MQTT 5, no properties), for feeding a reader."""
+    packets: list[bytes] = []
+    client = aiomqtt.Client("127.0.0.1", 1, protocol=aiomqtt.ProtocolVersion.V5)
+    paho: Any = client._client
+    paho._sock = _NoSocket()
+    paho._max_inflight_messages = 0
+    paho._mid_generate = lambda: mid
+    paho._packet_queue = lambda command, packet, *_a, **_k: packets.append(bytes(packet))
+    paho.publish(topic, payload, qos, False)
+    return packets[0]
+
+
+async def test_buffered_reads_whole_packets_equal_paho_at_every_split() -> None:
+    """Packets read whole from the buffer give paho the same messages and PUBACK
+    dispatch as its own reader, however the stream is cut into reads: PUBLISH QoS 0 and
+    1 with remaining lengths of one to three bytes (MQTT 5.0 section 1.5.5), PUBACKs
+    with and without a reason code, cut at every byte of the first 300 and in odd
+    pieces after that."""
+    stream = [_publish_packet("fleet/v1/position", b'{"k":1}', 1, 1),
+              bytes((0x40, 2, 0, 7)),  # PUBACK of 7, success
+              _publish_packet("fleet/v\u00e9/position", b"x" * 200, 2, 1),
+              bytes((0x40, 3, 0, 8, 0x10)),  # PUBACK of 8, "No matching subscribers"
+              _publish_packet("a", b"", 0, 0),
+              _publish_packet("fleet/v2/position", b"y" * 20_000, 3, 1)]
+    data = b"".join(stream)
+    cuts = [[data[:k], data[k:]] for k in range(1, 300)]
+    cuts.append([data[k:k + 37] for k in range(0, len(data), 37)])
+    cuts.append([data])
+
+    def read(pieces: list[bytes], lean: bool) -> tuple[list[Any], list[Any]]:
+        client = aiomqtt.Client("127.0.0.1", 1, protocol=aiomqtt.ProtocolVersion.V5)
+        paho: Any = client._client
+        got: list[Any] = []
+        acked: list[Any] = []
+        if lean:
+            lean_receive(client, deliver=got.append)
+            buffered_reads(client)
+            paho.on_socket_open(paho, None, _Chunks(pieces))
+        else:
+            paho._sock = _Chunks(pieces)
+            paho.on_message = lambda _c, _u, m: got.append(m)
+        paho._protocol = 5
+        paho.on_publish = lambda _c, _u, mid, reason, _p: acked.append((mid, reason.value))
+        for mid in (7, 8):  # awaiting their PUBACK
+            message = paho_client.MQTTMessage(mid, b"out")
+            message.qos = 1
+            message.info = paho_client.MQTTMessageInfo(mid)
+            paho._out_messages[mid] = message
+            paho._inflight_messages += 1
+        for _ in range(len(pieces) + 10):
+            paho.loop_read()
+        return ([(m.topic if isinstance(m.topic, str) else m.topic.value, bytes(m.payload),
+                  m.qos, m.mid) for m in got], acked)
+
+    want = read([data], lean=False)
+    assert len(want[0]) == 4 and want[1] == [(7, 0), (8, 0x10)]
+    for pieces in cuts:
+        assert read(pieces, lean=True) == want
+
+
+async def test_on_acknowledged_wakes_aiomqtt_only_for_its_own_publishes(
+        mosquitto: Mosquitto, prefix: str) -> None:
+    """Every PUBACK calls the callback; aiomqtt's own handler (which raises and
+    swallows a KeyError for a message it does not wait for) is called only for
+    messages published through aiomqtt, whose publish calls still complete."""
+    client = aiomqtt.Client("127.0.0.1", mosquitto.port, protocol=aiomqtt.ProtocolVersion.V5)
+    lean_receive(client)
+    looked_up: list[int] = []
+
+    class Pending(dict[int, asyncio.Event]):
+        def pop(self, mid: int, *default: Any) -> asyncio.Event:
+            looked_up.append(mid)
+            return super().pop(mid, *default)
+
+    client._pending_publishes = Pending()
+    acked: list[int] = []
+    on_acknowledged(client, acked.append)
+    async with client:
+        infos = [publish_now(client, f"{prefix}/ack/{k}", b"{}", qos=1, retain=False)
+                 for k in range(5)]
+        await asyncio.wait_for(asyncio.gather(*(
+            client.publish(f"{prefix}/ack/a{k}", b"{}", qos=1) for k in range(3))), 10)
+        async with asyncio.timeout(10):
+            while not all(i.is_published() for i in infos):
+                await asyncio.sleep(0.01)
+    assert sorted(acked) == sorted({i.mid for i in infos} | set(looked_up))
+    assert len(acked) == 8
+    assert len(looked_up) == 3  # aiomqtt's three, each found (no KeyError)
+    assert not set(looked_up) & {i.mid for i in infos}
+
+
+async def test_buffered_socket_next_packet_leaves_a_malformed_length_to_paho() -> None:
+    """A remaining length of five bytes (MQTT 5.0 section 1.5.5 allows four) is not
+    taken from the buffer: paho's reader finds it and reports a protocol error."""
+    sock = _BufferedSocket(None, lambda: None)
+    sock._buf = bytes((0x30, 0xFF, 0xFF, 0xFF, 0xFF, 0x01)) + b"x" * 10
+    assert sock.next_packet() is None
+    assert sock.leftover() == 16
+    client = aiomqtt.Client("127.0.0.1", 1, protocol=aiomqtt.ProtocolVersion.V5)
+    buffered_reads(client)
+    paho: Any = client._client
+    paho.on_socket_open(paho, None, _Chunks([sock._buf]))
+    assert paho.loop_read() == paho_client.MQTT_ERR_PROTOCOL
 
 
 def _session(expiry: int) -> Properties:

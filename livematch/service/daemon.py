@@ -139,6 +139,9 @@ _ACK_WAIT_S = 1.0
 # A takeover replays this many kept messages, then lets the event loop run (leases,
 # PUBACKs, keepalive) before the next ones.
 _REPLAY_CHUNK = 200
+# Most topics whose intake key part is remembered (then forgotten all at once): a
+# bound on memory under a flood of made-up topics (~0.2 KB each).
+_TOPIC_KEYS_MAX = 100_000
 
 
 class OutputLike(Protocol):
@@ -312,6 +315,12 @@ class Daemon:
         self._outbox: deque[_Pending] = deque()  # assignments, commits, alerts
         self._reject_box: deque[_Pending] = deque()  # rejects: sent after the others
         self._outbox_changed = asyncio.Event()  # set on every append, pop and stop
+        # Wakes the publish loop: outputs it has yet to send, or stopping (not PUBACKs:
+        # those are retired where they are read, see _publish_loop).
+        self._send_due = asyncio.Event()
+        # The current connection's publisher: sends queued outputs now, as far as the
+        # window allows (None between connections); see _publish_loop.
+        self._send_now: Callable[[], None] | None = None
         self._pending_deletes: set[str] = set()
         self._full_logged_at = -math.inf
         self._listening_since: float | None = None  # wall time of the current connection
@@ -354,6 +363,7 @@ class Daemon:
         self._enqueued = 0  # outputs ever queued
         self._acked = 0  # outputs ever acknowledged by the broker (queue order)
         self._shard_cache: dict[str, int] = {}
+        self._topic_keys: dict[str, str] = {}  # topic -> what it says (_topic_key)
         # One shard write at a time: a hand-over's checkpoint must not be overtaken by
         # an older export of the periodic checkpoint (same fencing number, older state).
         self._write_lock = asyncio.Lock()
@@ -1281,7 +1291,7 @@ class Daemon:
                              intake=self._intake)
         write_soon(client)
         cap_inflight(client, _PUBLISH_WINDOW)
-        lean_receive(client)
+        lean_receive(client, deliver=self._intake.put_nowait)
         buffered_reads(client)
         cancelled = False
         try:
@@ -1406,7 +1416,10 @@ class Daemon:
                 kept_run = 0
                 matched_run = 0
                 await self._wait_for_room()
-                await asyncio.sleep(0)  # leases, PUBACKs and keepalive run between messages
+                if not intake.empty():
+                    # leases, PUBACKs and keepalive run between messages (with nothing
+                    # waiting, intake.wait() lets them run: no extra turn of the loop)
+                    await asyncio.sleep(0)
         finally:
             stop.cancel()
             if isinstance(closed, asyncio.Future):
@@ -1414,6 +1427,7 @@ class Daemon:
         self._intake_closed = True
         self._drain_deadline = time.monotonic() + self.config.publish.shutdown_grace_s
         self._outbox_changed.set()
+        self._send_due.set()
 
     def _run_on(self, matched_run: int, run_until: float, intake: IntakeQueue) -> bool:
         """Whether the receive loop matches another waiting message in the same turn.
@@ -1427,17 +1441,38 @@ class Daemon:
                 and len(self._outbox) < self.config.publish.queue_max)
 
     def _intake_key(self, topic: str, payload: bytes) -> str:
-        """The vehicle a received message is about, for shedding (cheap; topic first)."""
-        control = self._mqtt.control_topic
-        if control and vehicle_from_topic(topic, control) is not None:
-            return "c:" + topic
+        """The vehicle a received message is about, for shedding (cheap; topic first).
+
+        ``c:TOPIC`` for a control message, :data:`JUNK_KEY` for one that cannot be a
+        fix, else ``v:VEHICLE`` (from the topic, else the payload) or ``t:TOPIC``. What
+        the topic says is remembered per topic (:meth:`_topic_key`): a vehicle sends on
+        the same topic every time, and matching it against the filters costs more than
+        the rest of this (a few microseconds a message).
+        """
+        key = self._topic_key(topic)
+        if key.startswith("c:"):
+            return key
         if not looks_like_position(payload, self.config.feed):
             return JUNK_KEY  # shed before any fix
-        vehicle = vehicle_from_topic(topic, self._mqtt.topic)
-        if vehicle is not None:
-            return "v:" + vehicle
+        if key:
+            return key
         vehicle = known_vehicle(topic, payload, self.config.feed)
         return "v:" + vehicle if vehicle is not None else "t:" + topic
+
+    def _topic_key(self, topic: str) -> str:
+        """``c:TOPIC`` (control topic), ``v:VEHICLE`` (the feed topic's vehicle) or ""."""
+        key = self._topic_keys.get(topic)
+        if key is None:
+            control = self._mqtt.control_topic
+            if control and vehicle_from_topic(topic, control) is not None:
+                key = "c:" + topic
+            else:
+                vehicle = vehicle_from_topic(topic, self._mqtt.topic)
+                key = "v:" + vehicle if vehicle is not None else ""
+            if len(self._topic_keys) >= _TOPIC_KEYS_MAX:  # bound it against topic floods
+                self._topic_keys.clear()
+            self._topic_keys[topic] = key
+        return key
 
     def _count_shed(self, message: aiomqtt.Message) -> None:
         self.metrics.shed.inc()
@@ -1609,6 +1644,7 @@ class Daemon:
                 self._reject_box.append(_Pending(cfg.reject_topic, encode_record(record),
                                                  "reject", False, None))
                 self._outbox_changed.set()
+                self._send_soon()
             return
         payload = encode_record(record)
         fix_time = record.get("time")
@@ -1665,6 +1701,25 @@ class Daemon:
         self._outbox.append(item)
         self._enqueued += 1
         self._outbox_changed.set()
+        self._send_soon()
+
+    def _send_soon(self) -> None:
+        """Hand queued outputs to the broker connection now if the window has room.
+
+        Called as each output is queued, before the message it answers is acknowledged,
+        so both leave in one write at the end of the turn (``mqtt.write_soon``), without
+        a turn of the publish loop per message. Between connections, or when paho
+        refuses a message, the publish loop is woken instead (and meets the refusal
+        itself, which ends the connection as before).
+        """
+        send_now = self._send_now
+        if send_now is None:
+            self._send_due.set()
+            return
+        try:
+            send_now()
+        except Exception:  # the publish loop sends again and fails in its own task
+            self._send_due.set()
 
     async def _publish_loop(self, client: aiomqtt.Client) -> None:
         """Publish queued outputs oldest first; one leaves the queue once acknowledged.
@@ -1673,58 +1728,81 @@ class Daemon:
         only its own dead letters. Up to ``_PUBLISH_WINDOW`` publishes are in flight at
         once (each queue's in order; paho also respects the broker's Receive Maximum),
         so throughput is not bound by one round trip per output. Each is handed to paho
-        directly (:func:`~livematch.service.mqtt.publish_now`, no task per message) and
-        the loop wakes on every PUBACK (:func:`~livematch.service.mqtt.on_acknowledged`)
-        to retire the acknowledged head of the window. An acknowledgement is awaited
-        without a time limit: under a flood the broker's PUBACK queues behind the
-        messages it is sending us, and a dead connection is found by the MQTT keepalive
-        (the receive loop then ends the session). After a broken connection everything
-        not yet acknowledged is still queued and is sent again.
+        directly (:func:`~livematch.service.mqtt.publish_now`, no task per message): as
+        it is queued when the window has room (:meth:`_send_soon`), else by this loop
+        once a PUBACK made room. Every PUBACK retires the acknowledged head of the
+        window where it is read (:func:`~livematch.service.mqtt.on_acknowledged`, in the
+        event loop's thread), so the loop itself wakes only for outputs it has yet to
+        send and for stopping. An acknowledgement is awaited without a time limit: under
+        a flood the broker's PUBACK queues behind the messages it is sending us, and a
+        dead connection is found by the MQTT keepalive (the receive loop then ends the
+        session). After a broken connection everything not yet acknowledged is still
+        queued and is sent again.
         """
         qos = self.config.mqtt.qos
         inflight: deque[tuple[Any, bool]] = deque()  # (paho message info, is reject)
         sent = [0, 0]  # in flight from self._outbox, from self._reject_box (their heads)
-        changed = self._outbox_changed
-        on_acknowledged(client, changed.set)
+        outbox, rejects = self._outbox, self._reject_box
+        changed, due = self._outbox_changed, self._send_due
         published = self._published_n
-        while True:
+        lag = self.metrics.lag
+        active = [True]  # retire() does nothing once this connection's loop has ended
+
+        def send() -> None:
             while len(inflight) < _PUBLISH_WINDOW:
-                if len(self._outbox) > sent[0]:
-                    is_reject, item = False, self._outbox[sent[0]]
-                elif len(self._reject_box) > sent[1]:
-                    is_reject, item = True, self._reject_box[sent[1]]
+                if len(outbox) > sent[0]:
+                    is_reject, item = False, outbox[sent[0]]
+                elif len(rejects) > sent[1]:
+                    is_reject, item = True, rejects[sent[1]]
                 else:
-                    break
-                sent[is_reject] += 1
-                inflight.append((publish_now(client, item.topic, item.payload, qos=qos,
-                                             retain=item.retain), is_reject))
+                    return
+                info = publish_now(client, item.topic, item.payload, qos=qos,
+                                   retain=item.retain)
+                sent[is_reject] += 1  # only once paho took it (it may refuse: raises)
+                inflight.append((info, is_reject))
+
+        def retire(mid: int) -> None:
+            """Retire the acknowledged head of the window (``mid``: just acknowledged)."""
+            if not active[0]:
+                return
             retired = False
-            while inflight and inflight[0][0].is_published():
+            while inflight and (inflight[0][0].mid == mid or inflight[0][0].is_published()):
                 _info, is_reject = inflight.popleft()
                 sent[is_reject] -= 1
                 retired = True
                 if is_reject:
-                    item = self._reject_box.popleft()
+                    item = rejects.popleft()
                 else:
-                    item = self._outbox.popleft()
+                    item = outbox.popleft()
                     self._acked += 1
                 published[item.kind] += 1
                 if item.kind == "assignment" and item.fix_time is not None:
-                    self.metrics.lag.observe(max(0.0, time.time() - item.fix_time))
+                    lag.observe(max(0.0, time.time() - item.fix_time))
             if retired:
-                changed.set()  # room in the publish queue (_wait_for_room)
-                continue
-            if not inflight and self._intake_closed:
-                return  # stopping and drained
-            if self._intake_closed and time.monotonic() > self._drain_deadline:
-                return  # grace over: what is left is counted as dropped
-            changed.clear()
-            if self._intake_closed:
-                with contextlib.suppress(TimeoutError):
-                    await asyncio.wait_for(changed.wait(), max(
-                        0.001, self._drain_deadline - time.monotonic()))
-            else:
-                await changed.wait()  # a new output or a PUBACK
+                changed.set()  # room in the publish queue (_wait_for_room, _outputs_acked)
+                if self._intake_closed or len(outbox) > sent[0] or len(rejects) > sent[1]:
+                    due.set()  # outputs wait for room in the window, or stopping
+
+        on_acknowledged(client, retire)
+        self._send_now = send
+        try:
+            while True:
+                send()
+                if not inflight and self._intake_closed:
+                    return  # stopping and drained
+                if self._intake_closed and time.monotonic() > self._drain_deadline:
+                    return  # grace over: what is left is counted as dropped
+                due.clear()
+                if self._intake_closed:
+                    with contextlib.suppress(TimeoutError):
+                        await asyncio.wait_for(due.wait(), max(
+                            0.001, self._drain_deadline - time.monotonic()))
+                else:
+                    await due.wait()  # outputs the window had no room for, or stopping
+        finally:
+            active[0] = False
+            if self._send_now is send:
+                self._send_now = None
 
     # -- helpers -------------------------------------------------------------------
 

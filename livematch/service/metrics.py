@@ -40,7 +40,14 @@ Example:
 
 from __future__ import annotations
 
+import time
+from bisect import bisect_left
+from collections.abc import Iterator, Sequence
+
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, generate_latest
+from prometheus_client.core import HistogramMetricFamily, Metric
+from prometheus_client.registry import Collector
+from prometheus_client.utils import floatToGoString
 
 # Handling one message is sub-millisecond when things are well (common practice: cover
 # three decades around the expected value).
@@ -86,12 +93,15 @@ class Metrics:
         self.dropped = Counter("livematch_publish_dropped",
                                "Outputs never sent because the broker was away at shutdown.",
                                registry=r)
-        self.processing = Histogram("livematch_processing_seconds",
-                                    "Time to decode, validate and match one message.",
-                                    buckets=_PROCESSING_BUCKETS, registry=r)
-        self.lag = Histogram("livematch_fix_to_publish_lag_seconds",
-                             "Wall time from a fix's own time to the broker's acknowledgement "
-                             "of its assignment.", buckets=_LAG_BUCKETS, registry=r)
+        # Observed once per message and once per assignment: counted without a lock
+        # (PlainHistogram), the daemon observes and renders in its event loop only.
+        self.processing = PlainHistogram("livematch_processing_seconds",
+                                         "Time to decode, validate and match one message.",
+                                         _PROCESSING_BUCKETS, registry=r)
+        self.lag = PlainHistogram("livematch_fix_to_publish_lag_seconds",
+                                  "Wall time from a fix's own time to the broker's "
+                                  "acknowledgement of its assignment.", _LAG_BUCKETS,
+                                  registry=r)
         self.vehicles = Gauge("livematch_vehicles_live",
                               "Vehicles whose matcher state is held in memory.", registry=r)
         self.eps_level = Counter("livematch_eps_level_assignments",
@@ -152,3 +162,54 @@ class Metrics:
     def render(self) -> bytes:
         """The registry in the Prometheus text exposition format."""
         return generate_latest(self.registry)
+
+
+class PlainHistogram(Collector):
+    """A histogram without labels, counted in plain Python, for one thread only.
+
+    prometheus_client's ``Histogram.observe`` takes a lock twice (the sum and the
+    bucket) and walks the bounds in Python: about 1.3 µs, paid once per message and once
+    per assignment. Here a value is placed with ``bisect`` into a list of counts (a
+    value equal to a bound goes into that bound's bucket, as there) and the metric is
+    built when the registry is collected, with the same samples: ``_bucket`` per bound
+    (cumulative) and ``+Inf``, ``_count``, ``_sum`` and ``_created`` (the test compares
+    the rendered text with a ``Histogram`` fed the same values). Not thread-safe: the
+    daemon observes and renders in its event loop.
+
+    Example (one value on a bound, one above every bound)::
+
+        >>> r = CollectorRegistry()
+        >>> h = PlainHistogram("x_seconds", "Example.", (0.5, 1.0), registry=r)
+        >>> h.observe(0.5); h.observe(7.0)
+        >>> [(s.name, s.labels.get("le"), s.value) for s in list(r.collect())[0].samples][:5]
+        [('x_seconds_bucket', '0.5', 1.0), ('x_seconds_bucket', '1.0', 1.0), \
+('x_seconds_bucket', '+Inf', 2.0), ('x_seconds_count', None, 2.0), ('x_seconds_sum', None, 7.5)]
+    """
+
+    def __init__(self, name: str, documentation: str, buckets: Sequence[float], *,
+                 registry: CollectorRegistry) -> None:
+        self.name = name
+        self.documentation = documentation
+        self._bounds = tuple(float(b) for b in buckets)
+        self._le = [floatToGoString(b) for b in self._bounds] + ["+Inf"]
+        self._counts = [0] * (len(self._bounds) + 1)
+        self._sum = 0.0
+        self._created = time.time()
+        registry.register(self)
+
+    def observe(self, amount: float) -> None:
+        """Count one value (seconds)."""
+        self._counts[bisect_left(self._bounds, amount)] += 1
+        self._sum += amount
+
+    def collect(self) -> Iterator[Metric]:
+        """The histogram as prometheus_client's ``Histogram`` renders it."""
+        family = HistogramMetricFamily(self.name, self.documentation)
+        total = 0
+        for le, count in zip(self._le, self._counts, strict=True):
+            total += count
+            family.add_sample(f"{self.name}_bucket", {"le": le}, float(total))
+        family.add_sample(f"{self.name}_count", {}, float(total))
+        family.add_sample(f"{self.name}_sum", {}, self._sum)
+        family.add_sample(f"{self.name}_created", {}, self._created)
+        yield family

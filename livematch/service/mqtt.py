@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import dataclasses
 import logging
 import math
 import random
@@ -39,12 +40,15 @@ from urllib.parse import urlsplit
 
 import aiomqtt
 from paho.mqtt.client import (
+    MQTT_LOG_DEBUG,
     MQTT_LOG_ERR,
     MQTTMessage,
     mqtt_ms_invalid,
     mqtt_ms_wait_for_puback,
+    time_func,
 )
 from paho.mqtt.enums import CallbackAPIVersion, MQTTErrorCode
+from paho.mqtt.exception import MalformedPacket
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 from paho.mqtt.reasoncodes import ReasonCode
@@ -207,6 +211,51 @@ class _BufferedSocket:
         """Bytes read from the socket and not yet taken by ``recv``."""
         return len(self._buf) - self._pos
 
+    def fill(self) -> int:
+        """Read up to ``_READ_SIZE`` bytes from the socket into the (empty) buffer.
+
+        Returns how many (0: the peer closed the connection); the socket's errors
+        (``BlockingIOError``, TLS "want read"...) are raised as it raises them.
+        """
+        self.reads += 1
+        data: bytes = self._sock.recv(_READ_SIZE)
+        self._buf, self._pos = data, 0
+        return len(data)
+
+    def next_packet(self) -> tuple[int, bytes] | None:
+        r"""The next whole MQTT packet in the buffer as (first byte, rest), else None.
+
+        The rest is the variable header and payload, after the remaining length (a
+        variable byte integer of at most four bytes, MQTT 5.0 section 1.5.5). None,
+        taking nothing, when the buffer holds less than one whole packet or the
+        remaining length is malformed (paho's reader then reads it as before).
+
+        Example (a PUBACK of packet 1, then the first byte of another packet)::
+
+            >>> s = _BufferedSocket(None, lambda: None)
+            >>> s._buf = bytes((0x40, 2, 0, 1, 0x30))
+            >>> s.next_packet(), s.next_packet(), s.leftover()
+            ((64, b'\x00\x01'), None, 1)
+        """
+        buf, pos = self._buf, self._pos
+        end = len(buf)
+        at = pos + 1
+        size = 0
+        shift = 0
+        while True:
+            if at >= end or shift > 21:
+                return None  # incomplete, or more than four length bytes (malformed)
+            byte = buf[at]
+            size |= (byte & 0x7F) << shift
+            at += 1
+            if byte < 0x80:
+                break
+            shift += 7
+        if at + size > end:
+            return None
+        self._pos = at + size
+        return buf[pos], buf[at:at + size]
+
     def __getattr__(self, name: str) -> Any:
         return getattr(self._sock, name)
 
@@ -230,6 +279,13 @@ def buffered_reads(client: aiomqtt.Client) -> None:
     loop_thread = threading.get_ident()
     inner_open = paho.on_socket_open
     state = {"scheduled": False}
+    plain_loop_read = paho.loop_read
+
+    def loop_read(max_packets: int = 1) -> MQTTErrorCode:
+        sock = paho._sock
+        if type(sock) is not _BufferedSocket or paho._in_packet["command"]:
+            return plain_loop_read(max_packets)  # not wrapped, or a packet half read
+        return _read_packets(paho, sock, plain_loop_read)
 
     def read_on() -> None:
         state["scheduled"] = False
@@ -258,6 +314,68 @@ def buffered_reads(client: aiomqtt.Client) -> None:
             inner_open(c, userdata, wrapped)
 
     paho.on_socket_open = on_socket_open
+    paho.loop_read = loop_read
+
+
+def _read_packets(paho: Any, sock: _BufferedSocket,
+                  plain_loop_read: Callable[[int], MQTTErrorCode]) -> MQTTErrorCode:
+    """Read whole packets from a :class:`_BufferedSocket`'s buffer (paho's ``loop_read``).
+
+    paho reads a packet with three ``recv`` calls at least (the first byte, the
+    remaining length a byte at a time, the rest) and then tries once more until the
+    socket raises ``BlockingIOError``: a system call and an exception per readable
+    event. Here one ``recv`` of up to ``_READ_SIZE`` bytes is made when the buffer is
+    empty, and each whole packet in it is handed to paho's ``_packet_handle`` as paho's
+    reader does (the same ``_in_packet`` fields, reset afterwards, and the time of the
+    last bytes received, which paho's keepalive reads), up to paho's own bound of
+    packets per call (one per message in flight, at least one). A packet not yet whole
+    in the buffer is left to paho's reader (which reads the rest from the socket).
+    What the socket still holds is found by the event loop, which reports it readable
+    again; bytes left in the buffer are read on by the scheduled callback of
+    :func:`buffered_reads`. Errors end the connection as in paho (``_loop_rc_handle``).
+    Relies on paho-mqtt 2.x internals (``_in_packet``, ``_packet_handle``,
+    ``_loop_rc_handle``, ``_msgtime_mutex``); the test compares with paho's reading.
+    """
+    if not sock.leftover():
+        try:
+            if not sock.fill():
+                return paho._loop_rc_handle(MQTTErrorCode.MQTT_ERR_CONN_LOST)  # closed
+        except (BlockingIOError, ssl.SSLWantReadError):
+            return MQTTErrorCode.MQTT_ERR_SUCCESS
+        except ssl.SSLWantWriteError:
+            paho._call_socket_register_write()
+            return MQTTErrorCode.MQTT_ERR_SUCCESS
+        except OSError as err:
+            paho._easy_log(MQTT_LOG_ERR, "failed to receive on socket: %s", err)
+            return paho._loop_rc_handle(MQTTErrorCode.MQTT_ERR_CONN_LOST)
+    rc = MQTTErrorCode.MQTT_ERR_SUCCESS
+    for _ in range(max(1, len(paho._out_messages) + len(paho._in_messages))):
+        whole = sock.next_packet()
+        if whole is None:
+            if sock.leftover():  # part of a packet: paho reads the rest
+                return plain_loop_read(1)
+            break
+        command, body = whole
+        paho._in_packet = {"command": command, "have_remaining": 1, "remaining_count": [],
+                           "remaining_mult": 1, "remaining_length": len(body),
+                           "packet": body, "to_process": 0, "pos": 0}
+        try:
+            rc = paho._packet_handle()
+        except MalformedPacket as exc:
+            paho._easy_log(MQTT_LOG_DEBUG, "Received malformed packet: %s", exc)
+            rc = MQTTErrorCode.MQTT_ERR_PROTOCOL
+        paho._in_packet = {"command": 0, "have_remaining": 0, "remaining_count": [],
+                           "remaining_mult": 1, "remaining_length": 0,
+                           "packet": bytearray(b""), "to_process": 0, "pos": 0}
+        with paho._msgtime_mutex:
+            paho._last_bytes_received = time_func()
+        if rc > 0:
+            return paho._loop_rc_handle(rc)
+        if paho._sock is not sock:
+            return rc  # the handler closed the connection
+    if sock.leftover():
+        sock._on_leftover()  # the event loop does not see them: read on soon
+    return rc
 
 
 #: Intake key of messages that cannot be a position fix (shed before any fix).
@@ -745,7 +863,28 @@ def _publish_lean(paho: Any, topic: str, payload: bytes, retain: bool) -> _Sent 
     return info
 
 
-def lean_receive(client: aiomqtt.Client) -> None:
+@dataclasses.dataclass(frozen=True)
+class ReceivedTopic(aiomqtt.Topic):
+    """The topic name of a received PUBLISH, taken as the broker sent it.
+
+    aiomqtt checks every topic it wraps (not empty, no ``+`` or ``#``, at most 65,535
+    bytes); a topic name the broker delivers already holds to that (MQTT 5.0 section
+    4.7.3: the server refuses a PUBLISH whose topic name has a wildcard; the length is
+    a two-byte integer), so the check is left out here. Everything else is aiomqtt's
+    ``Topic`` (``value``, ``matches``).
+
+    Example (no check, as the broker already made it)::
+
+        >>> ReceivedTopic("fleet/bus-17/position").matches("fleet/+/position")
+        True
+    """
+
+    def __post_init__(self) -> None:
+        return None
+
+
+def lean_receive(client: aiomqtt.Client, *,
+                 deliver: Callable[[aiomqtt.Message], None] | None = None) -> None:
     """Decode the common incoming PUBLISH and PUBACK without paho's MQTT 5 objects.
 
     With MQTT 5 paho builds a ``Properties`` object for every PUBLISH it reads (two
@@ -765,6 +904,13 @@ def lean_receive(client: aiomqtt.Client) -> None:
     paho-mqtt 2.x internals (``_in_packet``, ``_handle_publish``,
     ``_handle_pubackcomp``, ``_do_on_publish``); the test compares with paho's decoding.
     Call before connecting.
+
+    With ``deliver`` (the daemon passes its :class:`IntakeQueue`'s ``put_nowait``) such
+    a PUBLISH becomes the ``aiomqtt.Message`` aiomqtt's ``on_message`` callback would
+    make (``properties`` None, its topic a :class:`ReceivedTopic`) and is handed to
+    ``deliver`` directly: no paho message, callback lock or aiomqtt callback in
+    between, and no check of the topic. A topic name that is not UTF-8 takes paho's
+    way (which fails as before). Without ``deliver`` it goes to ``on_message``.
     """
     paho: Any = client._client
     plain_publish = paho._handle_publish
@@ -788,6 +934,22 @@ def lean_receive(client: aiomqtt.Client) -> None:
             start += 2
         if start == 2 or size <= start or packet[start] != 0:
             return plain_publish()  # no topic name (an alias), or properties
+        if deliver is not None and not paho._on_message_filtered._root._children:
+            try:
+                topic = packet[2:start - (2 if qos else 0)].decode("utf-8")
+            except UnicodeDecodeError:
+                return plain_publish()  # paho's way: its topic property raises
+            received = aiomqtt.Message(ReceivedTopic(topic), bytes(packet[start + 1:]), qos,
+                                       bool(header & 0x01), mid, None)
+            try:
+                deliver(received)
+            except Exception as err:  # as paho's dispatch of on_message
+                paho._easy_log(MQTT_LOG_ERR, "Caught exception in on_message: %s", err)
+                if not paho.suppress_exceptions:
+                    raise
+            if qos and not paho._manual_ack:
+                return paho._send_puback(mid)
+            return MQTTErrorCode.MQTT_ERR_SUCCESS
         # MQTTMessage's own __init__ also builds an MQTTMessageInfo (with a lock) that
         # nothing reads for a received message: set the fields it would set instead.
         message = MQTTMessage.__new__(MQTTMessage)
@@ -895,15 +1057,30 @@ def cap_inflight(client: aiomqtt.Client, most: int) -> None:
     paho.on_connect = on_connect
 
 
-def on_acknowledged(client: aiomqtt.Client, callback: Callable[[], None]) -> None:
-    """Call ``callback`` (in the event loop) after every PUBACK, besides aiomqtt's own."""
+def on_acknowledged(client: aiomqtt.Client, callback: Callable[[int], None]) -> None:
+    """Call ``callback(mid)`` (in the event loop) on every PUBACK, besides aiomqtt's own.
+
+    paho calls it just before it marks the message's info as published, so inside the
+    callback ``is_published()`` of that message (the packet identifier ``mid``) is
+    still False; of every message acknowledged before it, True.
+
+    aiomqtt's own ``on_publish`` wakes the ``publish`` call waiting for that message:
+    it looks the message up in its table of pending publishes, and for a message sent
+    by :func:`publish_now` (never in it) raises and swallows a ``KeyError`` (about a
+    hundredth of the daemon's CPU). So it is called only for messages in that table,
+    or for every message when the table is not found where aiomqtt 2.x keeps it
+    (``_pending_publishes``); the test publishes both ways through a broker.
+    """
     paho = client._client
     inner = paho.on_publish
+    pending = getattr(client, "_pending_publishes", None)
+    if not isinstance(pending, dict):
+        pending = None
 
     def on_publish(*args: Any) -> None:
-        if inner is not None:
+        if inner is not None and (pending is None or args[2] in pending):
             inner(*args)
-        callback()
+        callback(args[2])
 
     paho.on_publish = on_publish
 
