@@ -74,7 +74,7 @@ from collections.abc import Iterator
 
 import numpy as np
 
-from livematch.core._tree_kernel import F_COST, I_PARENT, I_SEG, I_VIAN, ROW_F, ROW_I
+from livematch.core._tree_kernel import F_COST, I_PARENT, I_SEG, I_VIA0, I_VIAN, ROW_F, ROW_I
 from livematch.core.candidates import DIED, CandidateTree
 from livematch.core.events import Assignment, Commit, Event, Filtered, MatchedFix
 from livematch.core.fastsweep import sweep_arrays
@@ -722,15 +722,15 @@ class Tracker:
         held = tree.point(self._view, anc)
         view = self._view
         parent = int(tree.ti[anc, I_PARENT])
+        vias = int(tree.ti[anc, I_VIAN])
         if (parent >= 0 and held[1] * view.slen[held[0]] <= self.settings.sigma_m
-                and int(tree.ti[anc, I_VIAN]) == 0 and int(tree.ti[parent, I_SEG]) != held[0]
-                and tree.seq_of(parent) >= self.next_commit - 1):
+                and (vias or int(tree.ti[parent, I_SEG]) != held[0])):
             # the stand began just past a vertex: report that vertex, at the end of the
             # segment the path came in by (the branch beyond it is not yet known)
-            seg_in = int(tree.ti[parent, I_SEG])
+            seg_in = (int(tree.tv[tree.ti[anc, I_VIA0] + vias - 1]) if vias
+                      else int(tree.ti[parent, I_SEG]))
             x, y = _point(view, seg_in, 1.0)
             held = (seg_in, 1.0, x, y)
-            since = tree.seq_of(parent) + 1
         since = max(since, level.cert_seq)
         if since < self.fix_seq0 or since > seq:
             return None
