@@ -673,11 +673,20 @@ class Tracker:
         lo = max(seq0, self.next_commit - 1, 1)
         if seq - seq0 >= self.fix_n or seq <= lo:
             return 0, 0
-        xy = self.fix_xy[lo - seq0:seq - seq0 + 1]
-        d2 = ((xy - xy[-1]) ** 2).sum(axis=1)
+        xy = self.fix_xy
+        x = xy.item(seq - seq0, 0)
+        y = xy.item(seq - seq0, 1)
         radius = STAND_SIGMAS * self.settings.sigma_m
-        far = np.flatnonzero(d2 > radius * radius)
-        first = lo + (int(far[-1]) + 1 if len(far) else 0)
+        r2 = radius * radius
+        # back from the newest fix while within the radius (a moving vehicle leaves it
+        # within a few fixes: scalar steps, no array built per fix)
+        first = seq
+        while first > lo:
+            dx = xy.item(first - 1 - seq0, 0) - x
+            dy = xy.item(first - 1 - seq0, 1) - y
+            if dx * dx + dy * dy > r2:
+                break
+            first -= 1
         t_first = self.times.get(first)
         span = self.times[seq] - t_first if t_first is not None else -1.0
         if self.stand_seq and span >= STAND_KEEP_S:
