@@ -111,6 +111,16 @@ class MatchSettings:
             during a stand picks among candidates that the wandering GNSS error has spread
             along the road around the stop, and a vehicle that then leaves the way it came
             is committed on road ahead that it never drove.
+        stand_hold: while the vehicle stands now (its fixes of the last 3 s within 2
+            ``sigma_m`` of the newest one; :meth:`livematch.core.tracker.Tracker.
+            _stand_start`), the live assignment stays where the best candidate's path was
+            when the stand began (at the vertex it had just passed, if that is within
+            ``sigma_m``), as long as every fix since then lies within eps of that point,
+            so the certificate holds (:meth:`livematch.core.tracker.Tracker.
+            _hold_at_stand`). Without it the live answer follows the GNSS error as it
+            wanders along the road during the stand, past the stop onto road beyond it (a
+            branch not taken, or road never driven when the vehicle leaves the way it
+            came). Commits are unaffected.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -136,6 +146,7 @@ class MatchSettings:
     stop_turns: bool = True
     street_turn_cost: float = 4.0
     stand_wait: bool = True
+    stand_hold: bool = True
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -164,7 +175,7 @@ class MatchSettings:
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))
-        for name in ("street_turns", "stop_turns", "stand_wait"):
+        for name in ("street_turns", "stop_turns", "stand_wait", "stand_hold"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):
