@@ -121,6 +121,15 @@ class MatchSettings:
             wanders along the road during the stand, past the stop onto road beyond it (a
             branch not taken, or road never driven when the vehicle leaves the way it
             came). Commits are unaffected.
+        pace_reach: a bridged step also searches routes as long as a live candidate's own
+            pace predicts (its last step's speed times the time since), where that is
+            longer than ``detour_factor`` times the straight step plus ``gap_m``
+            (:func:`livematch.core.sweep.bridge_reach`); ``bridge_speed_mps`` still
+            bounds every route. The pace term (``pace_m``) already expects such a route,
+            so the detour bound must not rule it out: at 30 s between fixes a vehicle
+            that drove into a dead end and back, or round a block, was otherwise given
+            only wrong roads. On by default (bench/accuracy.py, 80 drives of seed 31,
+            random walk, 30 s: see docs or the report of this change for figures).
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -147,6 +156,7 @@ class MatchSettings:
     street_turn_cost: float = 4.0
     stand_wait: bool = True
     stand_hold: bool = True
+    pace_reach: bool = True
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -175,7 +185,8 @@ class MatchSettings:
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))
-        for name in ("street_turns", "stop_turns", "stand_wait", "stand_hold"):
+        for name in ("street_turns", "stop_turns", "stand_wait", "stand_hold",
+                     "pace_reach"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):
