@@ -68,7 +68,7 @@ class MatchSettings:
         spike_cost: the retroactive spike test's charge for dropping a fix (path cost
             units, see :mod:`livematch.core.sweep`; 0 disables), for a fix between two
             15 s steps and in proportion to the time the two steps span. One fix later, a
-            fix of a sparse vehicle (5-20 s after the fix before) is dropped as a
+            fix of a sparse vehicle (5-35 s after the fix before) is dropped as a
             ``spike`` when the path without it fits the next fix better by more than
             the charge (:meth:`livematch.core.tracker.Tracker._spike_test`). It catches
             the outliers that no speed bound can: 300 m off in 15 s is a plausible move.
