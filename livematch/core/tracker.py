@@ -130,9 +130,10 @@ _NO_FIXES = np.empty((0, 2))  # shared by trackers that have seen no fix (never 
 # fixes it lost more good fixes than it caught outliers (-0.2 to -0.8 points of final
 # accuracy, seeds other than the bench's); since bridged steps search and charge routes
 # by the candidate's own pace (MatchSettings.pace_m, pace_reach) it gains at 30 s:
-# bench/accuracy.py, seeds 31 and 77, 80 drives, both extracts, random walk and routed
-# trips: final accuracy +0.2 to +0.5 points, route mismatch -0.5 to -1.7 points (with
-# pace_reach). 35 s keeps a 30 s feed with late fixes in the test.
+# bench/accuracy.py at 30 s, seeds 31 and 77, 80 drives, both extracts, random walk and
+# routed trips, with pace_reach: final accuracy +0.1 to +0.9 points, route mismatch -0.4
+# to -1.8 points; alone, random walk seed 31 at 30 s: +0.2 / +0.5 points (Helsinki /
+# test). 35 s keeps a 30 s feed with late fixes in the test.
 SPIKE_MIN_S = 5.0
 SPIKE_MAX_S = 35.0
 # The time spanned by the two steps around a tested fix at which its charge is
