@@ -131,7 +131,7 @@ _NO_FIXES = np.empty((0, 2))  # shared by trackers that have seen no fix (never 
 # accuracy, seeds other than the bench's); since bridged steps search and charge routes
 # by the candidate's own pace (MatchSettings.pace_m, pace_reach) it gains at 30 s:
 # bench/accuracy.py at 30 s, seeds 31 and 77, 80 drives, both extracts, random walk and
-# routed trips, with pace_reach: final accuracy +0.1 to +0.9 points, route mismatch -0.4
+# routed trips, with pace_reach: final accuracy +0.1 to +0.9 points, route mismatch -0.6
 # to -1.8 points; alone, random walk seed 31 at 30 s: +0.2 / +0.5 points (Helsinki /
 # test). 35 s keeps a 30 s feed with late fixes in the test.
 SPIKE_MIN_S = 5.0
