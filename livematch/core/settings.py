@@ -131,7 +131,7 @@ class MatchSettings:
             only wrong roads. On by default: bench/accuracy.py, 30 s, 80 drives, random
             walk seed 31: final accuracy +0.4 points on both extracts (Helsinki 0.921 ->
             0.925, test 0.924 -> 0.928); seed 77 and routed trips -0.1 to +0.3; with the
-            spike test at 30 s (``livematch.core.tracker.SPIKE_MAX_S``) +0.1 to +0.8 and
+            spike test at 30 s (``livematch.core.tracker.SPIKE_MAX_S``) +0.1 to +0.9 and
             route mismatch -0.6 to -1.8 points on seeds 31 and 77, both drive models.
             1-15 s: unchanged on those drives.
     """
