@@ -13,6 +13,8 @@ import shapely
 
 from livematch import frechet_decide, frechet_distance
 from livematch.core.build import Road, network_from_roads
+from livematch.core.events import Commit
+from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
 from livematch.core.settings import MatchSettings
 from livematch.core.sweep import (
@@ -25,6 +27,7 @@ from livematch.core.sweep import (
     step_route,
     sweep_step,
 )
+from livematch.core.tracker import Tracker
 from livematch.core.view import view_of
 
 
@@ -214,3 +217,52 @@ def test_bridge_step_street_turn_cost_charges_turns_in_the_street_only() -> None
     back = Node(1, 2, 15.0, 200.0 / 300.0, 100.0, 0.0, start, (), 0.0, 0.0)
     at_end = [bridged(c, False, {1: back}, 60.0, 100.0)[0].cost for c in (0.0, 3.0)]
     assert at_end[0] == at_end[1]
+
+
+def test_tracker_pace_reach_follows_a_dead_end_driven_between_two_fixes() -> None:
+    """At 30 s a vehicle drives into a dead end and half back out: the bridge routes it.
+
+    A road west-east through J = (1500, 0) and a two-way dead-end spur north from J,
+    400 m long. One fix every 30 s at 20-27 m/s east; then, from (1400, 0), the vehicle
+    drives 100 m to J, up the spur to its end and 300 m back down: the fix at (1500, 100)
+    is on the spur heading south, 800 m of road later. Its pace predicts those 800 m;
+    the detour bound (2 x 141.4 + 150 m, plus twice the largest eps) stops every level's
+    search short of them, so without ``pace_reach`` the fix is taken for an outlier and
+    the committed path never comes back down the spur.
+    """
+    net = network_from_roads([Road([(0.0, 0.0), (1500.0, 0.0), (3000.0, 0.0)], way=1),
+                              Road([(1500.0, 0.0), (1500.0, 400.0)], way=2)])
+    north, south, east_after = 4, 5, 2
+    assert net.segment_coords(north) == (1500.0, 0.0, 1500.0, 400.0)
+    assert net.segment_coords(south) == (1500.0, 400.0, 1500.0, 0.0)
+    assert net.segment_coords(east_after) == (1500.0, 0.0, 3000.0, 0.0)
+    # the route driven between the fixes at 60 s and 90 s (shapely's length is the
+    # outside check) against the detour bound of the largest level (eps 60 m)
+    driven = shapely.LineString([(1400.0, 0.0), (1500.0, 0.0), (1500.0, 400.0),
+                                 (1500.0, 100.0)]).length
+    assert driven == pytest.approx(800.0, abs=1e-9)
+    settings = MatchSettings()
+    bound = (settings.detour_factor * shapely.Point(1400.0, 0.0).distance(
+        shapely.Point(1500.0, 100.0)) + settings.gap_m + 2.0 * max(settings.eps_levels))
+    assert bound < 700.0 < driven  # the part of the spur within eps of the fix is beyond
+    fixes = [(0.0, 0.0), (600.0, 0.0), (1400.0, 0.0), (1500.0, 100.0), (2300.0, 0.0),
+             (2900.0, 0.0)]
+
+    def final(**kw: bool) -> tuple[dict[float, tuple[int, float]], list[int]]:
+        tracker = Tracker(net, "v1", MatchSettings(**kw))
+        events = []
+        for k, (x, y) in enumerate(fixes):
+            events += tracker.update(Fix("v1", 1_000_000.0 + 30.0 * k, 0.0, 0.0, x, y, None))
+        events += tracker.flush()
+        commits = [e for e in events if isinstance(e, Commit)]
+        answers = {f.t - 1_000_000.0: (f.segment, f.offset_m) for c in commits for f in c.fixes}
+        return answers, [s for c in commits for s in c.path]
+
+    answers, path = final()
+    assert answers[90.0] == (south, pytest.approx(300.0, abs=1e-6))
+    assert path == [0, north, south, east_after]
+    answers, path = final(pace_reach=False)
+    # no route reaches the fix's road in the time: the spike test (30 s apart) drops it
+    # as an outlier and its answer is interpolated on the main road; no way back south
+    assert answers[90.0][0] == east_after
+    assert south not in path

@@ -492,18 +492,27 @@ def test_tracker_genuine_dead_end_detour_is_not_dropped() -> None:
     assert math.hypot(end.x - 500.0, end.y - 300.0) < 1e-6
 
 
-def test_tracker_spike_test_only_from_5_to_20_s() -> None:
-    """At 1 s between fixes (the jump filter's bound is tight) and at 30 s (the test lost
-    more good fixes than it caught spikes) the spike test never runs."""
+def test_tracker_spike_test_only_from_5_to_35_s() -> None:
+    """At 1 s between fixes (the jump filter's bound is tight) and at 40 s the spike test
+    never runs; at 30 s it drops a fix 150 m off between two good ones."""
     net = grid()
     dense = fixes_along(polyline_points(ROUTE, 10.0))
     assert (run(Tracker(net, "v1", MatchSettings(spike_cost=30.0)), dense)
             == run(Tracker(net, "v1", MatchSettings(spike_cost=0.0)), dense))
-    sparse = fixes_along([(50.0 + 300.0 * i, 201.0) for i in range(3)], dt=30.0)
-    sparse[1] = Fix("v1", sparse[1].t, 0.0, 0.0, 350.0, 350.0)  # 150 m off: not tested
-    events = run(Tracker(net, "v1", MatchSettings(spike_cost=30.0)), sparse)
-    assert not any(isinstance(e, Filtered) for e in events)
-    assert events == run(Tracker(net, "v1", MatchSettings(spike_cost=0.0)), sparse)
+    for dt in (30.0, 40.0):
+        sparse = fixes_along([(50.0 + 300.0 * i, 201.0) for i in range(3)], dt=dt)
+        sparse[1] = Fix("v1", sparse[1].t, 0.0, 0.0, 350.0, 350.0)  # 150 m off
+        events = run(Tracker(net, "v1", MatchSettings(spike_cost=30.0)), sparse)
+        dropped = [(e.t, e.reason) for e in events if isinstance(e, Filtered)]
+        final = {m.t: m for c in commits(events) for m in c.fixes}[sparse[1].t]
+        if dt == 40.0:
+            assert dropped == []
+            assert events == run(Tracker(net, "v1", MatchSettings(spike_cost=0.0)), sparse)
+            assert final.y != 200.0  # matched where the bad fix lies, off Row 1
+        else:
+            assert dropped == [(sparse[1].t, "spike")]
+            # interpolated halfway in time between x = 50 and 650 on Row 1 (y = 200)
+            assert abs(final.x - 350.0) < 2.0 and final.y == 200.0
 
 
 @pytest.mark.parametrize("cut", [2, 3, 4, 5])
