@@ -471,7 +471,7 @@ def warm_up() -> None:
     tree = tracker.levels[-1].tree
     row = tree.ancestor_at(tree.best(-1), 0)
     # kernels a tracker calls from Python only at a junction hold, a forced lag commit or
-    # a spike test (5-20 s between fixes): a service met them compiling mid-run
+    # a spike test (5-35 s between fixes): a service met them compiling mid-run
     score = tree.live_scores(view_of(net), tracker.fix_xy[:tracker.fix_n], tracker.fix_seq0,
                              0, 0.02, 30.0, 5.0)
     best = tree.best(-1, score)
