@@ -918,6 +918,18 @@ def lean_receive(client: aiomqtt.Client, *,
     reasons = {0: ReasonCode(PacketTypes.PUBACK)}  # "Success"; others added when seen
     no_properties = Properties(PacketTypes.PUBACK)
 
+    def guarded(callback: Callable[..., object], *args: object) -> None:
+        """Call a message callback as paho's dispatch of ``on_message`` does.
+
+        An exception is logged and swallowed, or re-raised unless paho suppresses them.
+        """
+        try:
+            callback(*args)
+        except Exception as err:
+            paho._easy_log(MQTT_LOG_ERR, "Caught exception in on_message: %s", err)
+            if not paho.suppress_exceptions:
+                raise
+
     def handle_publish() -> Any:
         header = paho._in_packet["command"]
         packet = paho._in_packet["packet"]
@@ -941,39 +953,27 @@ def lean_receive(client: aiomqtt.Client, *,
                 return plain_publish()  # paho's way: its topic property raises
             received = aiomqtt.Message(ReceivedTopic(topic), bytes(packet[start + 1:]), qos,
                                        bool(header & 0x01), mid, None)
-            try:
-                deliver(received)
-            except Exception as err:  # as paho's dispatch of on_message
-                paho._easy_log(MQTT_LOG_ERR, "Caught exception in on_message: %s", err)
-                if not paho.suppress_exceptions:
-                    raise
-            if qos and not paho._manual_ack:
-                return paho._send_puback(mid)
-            return MQTTErrorCode.MQTT_ERR_SUCCESS
-        # MQTTMessage's own __init__ also builds an MQTTMessageInfo (with a lock) that
-        # nothing reads for a received message: set the fields it would set instead.
-        message = MQTTMessage.__new__(MQTTMessage)
-        message.mid = mid
-        message._topic = bytes(packet[2:start - (2 if qos else 0)])
-        message.state = mqtt_ms_invalid
-        message.info = None  # type: ignore[assignment]  # only read for sent messages
-        message.dup = bool(header & 0x08)
-        message.qos = qos
-        message.retain = bool(header & 0x01)
-        message.properties = None
-        message.payload = bytes(packet[start + 1:])
-        message.timestamp = time.monotonic()
-        on_message = paho.on_message
-        if paho._on_message_filtered._root._children or on_message is None:
-            paho._handle_on_message(message)  # topic callbacks: paho dispatches
-        else:  # what paho's dispatch comes to without topic callbacks
-            with paho._in_callback_mutex:
-                try:
-                    on_message(paho, paho._userdata, message)
-                except Exception as err:
-                    paho._easy_log(MQTT_LOG_ERR, "Caught exception in on_message: %s", err)
-                    if not paho.suppress_exceptions:
-                        raise
+            guarded(deliver, received)
+        else:
+            # MQTTMessage's own __init__ also builds an MQTTMessageInfo (with a lock) that
+            # nothing reads for a received message: set the fields it would set instead.
+            message = MQTTMessage.__new__(MQTTMessage)
+            message.mid = mid
+            message._topic = bytes(packet[2:start - (2 if qos else 0)])
+            message.state = mqtt_ms_invalid
+            message.info = None  # type: ignore[assignment]  # only read for sent messages
+            message.dup = bool(header & 0x08)
+            message.qos = qos
+            message.retain = bool(header & 0x01)
+            message.properties = None
+            message.payload = bytes(packet[start + 1:])
+            message.timestamp = time.monotonic()
+            on_message = paho.on_message
+            if paho._on_message_filtered._root._children or on_message is None:
+                paho._handle_on_message(message)  # topic callbacks: paho dispatches
+            else:  # what paho's dispatch comes to without topic callbacks
+                with paho._in_callback_mutex:
+                    guarded(on_message, paho, paho._userdata, message)
         if qos and not paho._manual_ack:
             return paho._send_puback(mid)
         return MQTTErrorCode.MQTT_ERR_SUCCESS
