@@ -711,9 +711,8 @@ class Daemon:
         if len(buf) >= group.buffer_max:
             buf.popleft()
             self.metrics.buffer_dropped.inc()
-        self._kept_seq += 1
+        self._kept_seq += 1  # also the count of kept messages (_sync_counters)
         buf.append((self._kept_seq, at, topic, payload))
-        self.metrics.buffered.inc()
         return self._kept_seq
 
     def _prune_buffers(self, now: float) -> None:
@@ -1696,7 +1695,8 @@ class Daemon:
         """Carry the counts kept per message into the metrics.
 
         The pipeline's counters (fixes, filtered:<reason>) and the daemon's own
-        (messages received, outputs published by kind, assignments by eps level).
+        (messages received, fixes kept in a group, outputs published by kind,
+        assignments by eps level).
         Called when the metrics are rendered, not per message: it walks every counter of
         the pipeline (a few microseconds a message), a prometheus_client increment takes
         a lock, and nothing else reads these metrics.
@@ -1706,6 +1706,10 @@ class Daemon:
         if delta > 0:
             self.metrics.received.inc(delta)
             synced["received"] = self._received
+        delta = self._kept_seq - synced["kept"]
+        if delta > 0:
+            self.metrics.buffered.inc(delta)
+            synced["kept"] = self._kept_seq
         self._sync_labelled("published", self._published_n, self._published_counters,
                             lambda kind: self.metrics.published.labels(kind=kind))
         self._sync_labelled("eps", self._eps_n, self._eps_counters,
