@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import functools
 import hashlib
 import math
 import re
@@ -516,3 +517,8 @@ async def test_fix_of_another_shard_is_kept_and_acknowledged_on_arrival(
         assert not daemon._process(client, fix(3), intake.last_key, *intake.last_kept)
         assert daemon.pipeline.counters["messages"] == 1
         assert [e[3] for e in daemon._buffers[shard]] == [p for _, p in feed]
+        # a message aiomqtt itself puts (paho's decoding) takes the same way
+        intake.arrive = functools.partial(daemon._arrive, client, intake)
+        daemon._active.discard(shard)
+        intake.put_nowait(fix(3))  # a redelivery, say: kept again, not queued
+        assert intake.empty() and len(daemon._buffers[shard]) == 5

@@ -1308,7 +1308,9 @@ class Daemon:
                              intake=self._intake)
         write_soon(client)
         cap_inflight(client, _PUBLISH_WINDOW)
-        lean_receive(client, deliver=functools.partial(self._arrive, client, self._intake))
+        # every message received, whichever way paho decoded it, goes through _arrive
+        self._intake.arrive = functools.partial(self._arrive, client, self._intake)
+        lean_receive(client, deliver=self._intake.put_nowait)
         buffered_reads(client)
         cancelled = False
         try:
@@ -1467,7 +1469,7 @@ class Daemon:
 
     def _arrive(self, client: aiomqtt.Client, intake: IntakeQueue,
                 message: aiomqtt.Message) -> None:
-        """Take a message as it is read from the socket (``lean_receive``'s ``deliver``).
+        """Take a message as it is read from the socket (the intake queue's ``arrive``).
 
         Outside a group every message goes to the intake queue. In a group a possible
         fix (not junk, not a control message, not on a wrong ``{shard}`` topic) is kept

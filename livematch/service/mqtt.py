@@ -531,6 +531,9 @@ class IntakeQueue(asyncio.Queue[aiomqtt.Message]):
         self._waiter: asyncio.Future[None] | None = None
         self._interrupted = False
         self._given: tuple[str, int, int] | None = None  # put_keyed's key, kept, shard
+        # When set, every message put (put_nowait: aiomqtt's own on_message callback and
+        # lean_receive's deliver alike) goes to it instead; it queues with put_keyed.
+        self.arrive: Callable[[aiomqtt.Message], None] | None = None
 
     def _init(self, maxsize: int) -> None:
         self._queue = _Slots()
@@ -580,7 +583,14 @@ class IntakeQueue(asyncio.Queue[aiomqtt.Message]):
         return slots.last_kept
 
     def put_nowait(self, item: aiomqtt.Message) -> None:
-        """Queue ``item`` (shedding an older one when full) and wake :meth:`wait`."""
+        """Queue ``item`` (shedding an older one when full) and wake :meth:`wait`.
+
+        With :attr:`arrive` set, hand ``item`` to it instead (it queues what it does
+        not finish with :meth:`put_keyed` or :meth:`put_ack`).
+        """
+        if self.arrive is not None and self._given is None:
+            self.arrive(item)
+            return
         super().put_nowait(item)
         self._wake()
 
