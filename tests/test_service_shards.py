@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import functools
 import hashlib
 import math
 import re
@@ -11,6 +12,7 @@ import time
 from collections.abc import AsyncIterator, Iterator
 from pathlib import Path
 
+import aiomqtt
 import pytest
 import redis
 import redis.asyncio as aioredis
@@ -21,6 +23,7 @@ from livematch.config import load_config
 from livematch.errors import BadConfigError
 from livematch.pipeline import Pipeline
 from livematch.service.daemon import Daemon
+from livematch.service.mqtt import ACK_ONLY_KEY, IntakeQueue
 from livematch.service.shards import (
     LeaseManager,
     Renewal,
@@ -466,3 +469,56 @@ async def test_group_worker_stop_writes_final_checkpoint_releases_and_leaves(
     windows = {r["time"]: r["window_fixes"] for r in col.records("/out/match/")}
     # fix i (from 1) has a window of i fixes: the 8th continued the first 7 from Redis
     assert [windows[t] for t, _ in feed] == list(range(1, 9))
+
+
+async def test_fix_of_another_shard_is_kept_and_acknowledged_on_arrival(
+        group_config: Path, redis_url: str, prefix: str) -> None:
+    """A fix of a shard the worker does not match is kept as it arrives and never
+    queued for matching; its acknowledgement waits behind messages queued before it;
+    a fix kept while the shard was matched is matched from the queue, unless a replay
+    of the shard (lost and taken again meanwhile) already covered it."""
+    daemon = group_daemon(group_config, "a")
+    vehicle = "arrive-1"
+    shard = shard_of(vehicle, 8)
+    topic = f"{prefix}/fleet/{vehicle}/position"
+    feed = drive(vehicle, 4)
+    # QoS 0: nothing to acknowledge, so the client below is never used
+    client = aiomqtt.Client("127.0.0.1", 1)
+    intake = IntakeQueue(100, key_of=daemon._intake_key)
+
+    def fix(k: int) -> aiomqtt.Message:
+        return aiomqtt.Message(topic, feed[k][1], 0, False, k + 1, None)
+
+    async with managers(redis_url, prefix, "a", n_shards=8) as (leases,):
+        daemon.leases = leases
+        daemon._arrive(client, intake, fix(0))  # another worker's: kept, done with
+        assert intake.empty()
+        assert [e[3] for e in daemon._buffers[shard]] == [feed[0][1]]
+        intake.put_nowait(aiomqtt.Message(topic, b"not json", 0, False, 90, None))
+        daemon._arrive(client, intake, fix(1))  # behind a queued message: ack only
+        assert (intake.qsize(), intake.waiting) == (2, 1)
+        intake.get_nowait()
+        intake.get_nowait()
+        assert intake.last_key == ACK_ONLY_KEY
+        assert len(daemon._buffers[shard]) == 2
+        assert daemon.pipeline.counters["messages"] == 0  # nothing matched so far
+
+        daemon._active.add(shard)  # this worker matches the shard from now on
+        daemon._arrive(client, intake, fix(2))
+        intake.get_nowait()
+        kept, of = intake.last_kept
+        assert (kept, of) == (daemon._buffers[shard][-1][0], shard)
+        # lost and taken back while it waited: the replay covered it, so not again
+        daemon._replayed_upto[shard] = daemon._kept_seq
+        assert daemon._process(client, fix(2), intake.last_key, kept, of)
+        assert daemon.pipeline.counters["messages"] == 0
+        daemon._arrive(client, intake, fix(3))  # kept after the replay: matched
+        intake.get_nowait()
+        assert not daemon._process(client, fix(3), intake.last_key, *intake.last_kept)
+        assert daemon.pipeline.counters["messages"] == 1
+        assert [e[3] for e in daemon._buffers[shard]] == [p for _, p in feed]
+        # a message aiomqtt itself puts (paho's decoding) takes the same way
+        intake.arrive = functools.partial(daemon._arrive, client, intake)
+        daemon._active.discard(shard)
+        intake.put_nowait(fix(3))  # a redelivery, say: kept again, not queued
+        assert intake.empty() and len(daemon._buffers[shard]) == 5

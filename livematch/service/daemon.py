@@ -42,6 +42,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import functools
 import gc
 import json
 import logging
@@ -72,6 +73,7 @@ from livematch.service.http import HealthServer
 from livematch.service.logs import fields
 from livematch.service.metrics import Metrics
 from livematch.service.mqtt import (
+    ACK_ONLY_KEY,
     JUNK_KEY,
     IntakeQueue,
     ack,
@@ -350,6 +352,8 @@ class Daemon:
         # (sequence number, receive time, topic, payload) of every possible fix, by shard
         self._buffers: dict[int, deque[tuple[int, float, str, bytes]]] = {}
         self._kept_seq = 0
+        # shard -> the last sequence number its last replay covered (see _process)
+        self._replayed_upto: dict[int, int] = {}
         self._members: list[str] | None = None  # the group's live workers, last heartbeat
         self._rebalance_due = asyncio.Event()
         self._cap_logged_at = -math.inf
@@ -364,6 +368,9 @@ class Daemon:
         self._acked = 0  # outputs ever acknowledged by the broker (queue order)
         self._shard_cache: dict[str, int] = {}
         self._topic_keys: dict[str, str] = {}  # topic -> what it says (_topic_key)
+        # topic -> the shard its fixes are kept under, -1 for a wrong_shard topic
+        # (_kept_shard; only topics naming a valid vehicle id)
+        self._topic_shards: dict[str, int] = {}
         # One shard write at a time: a hand-over's checkpoint must not be overtaken by
         # an older export of the periodic checkpoint (same fencing number, older state).
         self._write_lock = asyncio.Lock()
@@ -683,27 +690,30 @@ class Daemon:
             return self._shard(vehicle)
         return self._topic_shard(topic) if self._sharded_topic else self._shard(topic)
 
-    def _keep(self, shard: int, at: float, topic: str, payload: bytes) -> None:
+    def _keep(self, shard: int, at: float, topic: str, payload: bytes) -> int:
         """Keep a possible fix for ``buffer_s`` (at most ``buffer_max`` per shard).
 
         Kept whoever holds the shard, and not consumed by a takeover: if this worker
         loses the shard and takes it again before a newer checkpoint was written, the
-        replay must again start from that checkpoint's fixes.
+        replay must again start from that checkpoint's fixes. Returns its sequence
+        number (increasing in the order of keeping), 0 when ``buffer_max`` is 0.
         """
         group = self.config.group
-        buf = self._buffers.setdefault(shard, deque())
+        buf = self._buffers.get(shard)
+        if buf is None:
+            buf = self._buffers[shard] = deque()
         horizon = at - group.buffer_s
         while buf and buf[0][1] < horizon:
             buf.popleft()
         if group.buffer_max == 0:
             self.metrics.buffer_dropped.inc()
-            return
+            return 0
         if len(buf) >= group.buffer_max:
             buf.popleft()
             self.metrics.buffer_dropped.inc()
-        self._kept_seq += 1
+        self._kept_seq += 1  # also the count of kept messages (_sync_counters)
         buf.append((self._kept_seq, at, topic, payload))
-        self.metrics.buffered.inc()
+        return self._kept_seq
 
     def _prune_buffers(self, now: float) -> None:
         horizon = now - self.config.group.buffer_s
@@ -969,6 +979,13 @@ class Daemon:
             return int(level)
         return self._shard(topic)
 
+    def _is_wrong_shard(self, topic: str, vehicle: str | None) -> bool:
+        """Whether a ``{shard}`` topic's level is not the shard of ``vehicle``."""
+        if not self._sharded_topic or vehicle is None:
+            return False
+        level = shard_from_topic(topic, self._mqtt.topic)
+        return level is not None and level != str(self._shard(vehicle))
+
     def _wrong_shard(self, topic: str, payload: bytes, at: float,
                      vehicle: str | None) -> Output | None:
         """A ``wrong_shard`` reject when the topic's shard is not the vehicle's, else None.
@@ -978,14 +995,11 @@ class Daemon:
         would otherwise have its fixes matched by a worker that does not hold the
         vehicle, or by none.
         """
-        if not self._sharded_topic:
+        if not self._is_wrong_shard(topic, vehicle):
             return None
-        level = shard_from_topic(topic, self._mqtt.topic)
-        if level is None or vehicle is None:
-            return None
+        assert vehicle is not None
+        level = shard_from_topic(topic, self._mqtt.topic) or ""
         expected = self._shard(vehicle)
-        if level == str(expected):
-            return None
         return Output("reject", vehicle, {
             "at": at, "topic": topic, "reason": "wrong_shard",
             "detail": f"topic shard level {level[:20]!r} is not shard {expected} of vehicle "
@@ -1039,7 +1053,10 @@ class Daemon:
             while True:
                 todo = [entry for entry in self._buffers.get(shard, ()) if entry[0] > done_seq]
                 if not todo:
-                    self._active.add(shard)  # caught up: matching from the next message
+                    # caught up: matching from the next message; a message kept before
+                    # now and still waiting in the intake queue was replayed (_process)
+                    self._replayed_upto[shard] = self._kept_seq
+                    self._active.add(shard)
                     return replayed
                 for k, (seq, at, topic, payload) in enumerate(todo, 1):
                     done_seq = seq
@@ -1291,6 +1308,8 @@ class Daemon:
                              intake=self._intake)
         write_soon(client)
         cap_inflight(client, _PUBLISH_WINDOW)
+        # every message received, whichever way paho decoded it, goes through _arrive
+        self._intake.arrive = functools.partial(self._arrive, client, self._intake)
         lean_receive(client, deliver=self._intake.put_nowait)
         buffered_reads(client)
         cancelled = False
@@ -1384,10 +1403,18 @@ class Daemon:
                         closed.done() and not closed.cancelled() else None
                     raise aiomqtt.MqttError("Disconnected during message iteration") from cause
                 message = intake.get_nowait()
-                if self._intake is not None and self._intake.was_shed(message):
+                key = intake.last_key
+                if key == ACK_ONLY_KEY:
+                    # kept on arrival for another worker's shard (_arrive): its PUBACK
+                    # only waited for the messages ahead of it; take the next one too
+                    ack(client, message)
+                    if not intake.empty():
+                        continue
+                elif self._intake is not None and self._intake.was_shed(message):
                     ack(client, message)  # shed on purpose (and counted): acknowledge
                 else:
-                    if (self._process(client, message, intake.last_key)
+                    kept, shard = intake.last_kept
+                    if (self._process(client, message, key, kept, shard)
                             and kept_run < _KEPT_RUN
                             and not intake.empty()):
                         # Another worker's fix, only kept (no output): take the next
@@ -1439,6 +1466,71 @@ class Daemon:
         return (not intake.empty() and matched_run + 1 < _MATCHED_RUN
                 and (matched_run == 0 or time.monotonic() < run_until)
                 and len(self._outbox) < self.config.publish.queue_max)
+
+    def _arrive(self, client: aiomqtt.Client, intake: IntakeQueue,
+                message: aiomqtt.Message) -> None:
+        """Take a message as it is read from the socket (the intake queue's ``arrive``).
+
+        Outside a group every message goes to the intake queue. In a group a possible
+        fix (not junk, not a control message, not on a wrong ``{shard}`` topic) is kept
+        here, in the order the messages arrive, whoever holds its shard. One of a
+        shard this worker does not match (another worker's, or one being replayed) is
+        then done with: acknowledged at once when nothing waits in the intake queue
+        (nothing ahead of it is unacknowledged: a message taken from the queue is
+        acknowledged before the loop reads the socket again), else given a place in
+        the queue that is only acknowledged (PUBACKs in arrival order, MQTT 5.0
+        section 4.6). So such a fix costs no turn of the receive loop, no decoding of
+        its payload beyond the type check, and no object beyond the kept entry. A fix
+        of a shard this worker matches goes to the queue with its place in the buffer
+        (:meth:`_process`).
+        """
+        topic = message.topic.value
+        payload = message.payload
+        if not isinstance(payload, bytes):
+            payload = bytes(payload) if isinstance(payload, bytearray) \
+                else str(payload).encode()
+            message.payload = payload
+        key = self._intake_key(topic, payload)
+        if (self.leases is None or key == JUNK_KEY or key.startswith("c:")
+                or self._stopping.is_set()):  # stopping: what is not taken is redelivered
+            intake.put_keyed(message, key)
+            return
+        shard = self._kept_shard(topic, payload, key)
+        if shard < 0:  # a wrong_shard reject: not kept (_process publishes it)
+            intake.put_keyed(message, key)
+            return
+        kept = self._keep(shard, time.time(), topic, payload)
+        if kept and shard not in self._active:
+            self._received += 1
+            if intake.empty():
+                ack(client, message)
+            else:
+                intake.put_ack(message)
+            return
+        intake.put_keyed(message, key, kept, shard)
+
+    def _kept_shard(self, topic: str, payload: bytes, key: str) -> int:
+        """The shard a possible fix is kept under, or -1 for a ``wrong_shard`` message.
+
+        As :meth:`_process` decides it (:func:`known_vehicle`, :meth:`_message_shard`),
+        remembered per topic when the topic names a valid vehicle id: then neither
+        depends on the payload.
+        """
+        shard = self._topic_shards.get(topic)
+        if shard is not None:
+            return shard
+        vehicle = known_vehicle(topic, payload, self.config.feed)
+        if self._is_wrong_shard(topic, vehicle):
+            shard = -1
+        else:
+            found = self._message_shard(topic, vehicle)
+            assert found is not None  # control messages are keyed "c:"
+            shard = found
+        if key.startswith("v:") and vehicle == key[2:]:  # the topic's vehicle, valid
+            if len(self._topic_shards) >= _TOPIC_KEYS_MAX:  # bound against topic floods
+                self._topic_shards.clear()
+            self._topic_shards[topic] = shard
+        return shard
 
     def _intake_key(self, topic: str, payload: bytes) -> str:
         """The vehicle a received message is about, for shedding (cheap; topic first).
@@ -1492,16 +1584,17 @@ class Daemon:
             await self._outbox_changed.wait()
 
     def _process(self, client: aiomqtt.Client, message: aiomqtt.Message,
-                 key: str | None = None) -> bool:
+                 key: str | None = None, kept: int = 0, shard: int = -1) -> bool:
         """Match one message, queue its outputs, then acknowledge it.
 
         Synchronous on purpose: nothing can interrupt it between matching and the
         acknowledgement, so a message is either fully handled (state, outputs, PUBACK)
-        or not at all (and redelivered). Returns True when the message was only kept
-        and acknowledged (another worker's shard), False when it was handled here.
+        or not at all (and redelivered). Returns True when the message was only
+        acknowledged (another worker's shard), False when it was handled here.
         ``key`` is the message's intake key (:meth:`_intake_key`, computed when it
         arrived), which tells without decoding the payload again whether it can be a
-        fix; None: decode it.
+        fix; None: decode it. ``kept`` is the message's sequence number in the buffer of
+        ``shard``, where :meth:`_arrive` kept it (0: not kept on arrival).
         """
         self._received += 1
         payload = message.payload
@@ -1510,6 +1603,17 @@ class Daemon:
         payload = bytes(payload)
         topic = message.topic.value
         at = time.time()
+        if kept and self.leases is not None:
+            # A possible fix of `shard`, kept when it arrived. Matched if this worker
+            # matches the shard, unless a replay of the shard (it was lost and taken
+            # again while the message waited here) has matched it already.
+            self._check_deadlines()
+            if shard not in self._active or kept <= self._replayed_upto.get(shard, 0):
+                ack(client, message)
+                return True
+            self._handle(topic, payload, at)
+            ack(client, message)
+            return False
         # read once for the shard checks below (it may decode the payload)
         vehicle = (known_vehicle(topic, payload, self.config.feed)
                    if self._sharded_topic or self.leases is not None else None)
@@ -1521,15 +1625,16 @@ class Daemon:
             return False
         if self.leases is not None:
             self._check_deadlines()
-            shard = self._message_shard(topic, vehicle)
-            if shard is not None:
+            of = self._message_shard(topic, vehicle)
+            if of is not None:
+                shard = of
                 # A possible fix is kept whoever holds the shard: replayed if this worker
                 # takes it (again) after its holder (or this worker, cut off from Redis)
                 # lost it. A message that cannot be a fix changes no state; it is only
                 # rejected, by the worker holding its shard now.
                 possible = (key != JUNK_KEY if key is not None and not key.startswith("c:")
                             else looks_like_position(payload, self.config.feed))
-                if possible:
+                if possible and key is None:  # else _arrive kept it (or buffer_max = 0)
                     self._keep(shard, at, topic, bytes(payload))
                 if not (shard in self._active or (shard in self._taking and not possible)):
                     ack(client, message)  # another worker's message (or being replayed)
@@ -1592,7 +1697,8 @@ class Daemon:
         """Carry the counts kept per message into the metrics.
 
         The pipeline's counters (fixes, filtered:<reason>) and the daemon's own
-        (messages received, outputs published by kind, assignments by eps level).
+        (messages received, fixes kept in a group, outputs published by kind,
+        assignments by eps level).
         Called when the metrics are rendered, not per message: it walks every counter of
         the pipeline (a few microseconds a message), a prometheus_client increment takes
         a lock, and nothing else reads these metrics.
@@ -1602,6 +1708,10 @@ class Daemon:
         if delta > 0:
             self.metrics.received.inc(delta)
             synced["received"] = self._received
+        delta = self._kept_seq - synced["kept"]
+        if delta > 0:
+            self.metrics.buffered.inc(delta)
+            synced["kept"] = self._kept_seq
         self._sync_labelled("published", self._published_n, self._published_counters,
                             lambda kind: self.metrics.published.labels(kind=kind))
         self._sync_labelled("eps", self._eps_n, self._eps_counters,

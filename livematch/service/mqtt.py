@@ -380,17 +380,26 @@ def _read_packets(paho: Any, sock: _BufferedSocket,
 
 #: Intake key of messages that cannot be a position fix (shed before any fix).
 JUNK_KEY = "junk"
+#: Intake key of a place held only for an acknowledgement (:meth:`IntakeQueue.put_ack`).
+ACK_ONLY_KEY = "ack"
 
 
 class _Slot:
-    """A place in the intake queue: the message, or None once shed (QoS 0)."""
+    """A place in the intake queue: the message, or None once shed (QoS 0).
 
-    __slots__ = ("key", "message", "shed")
+    ``kept`` and ``shard`` are what the receiver noted on arrival (0 and -1: nothing),
+    handed back with the message (:attr:`IntakeQueue.last_kept`).
+    """
 
-    def __init__(self, key: str, message: aiomqtt.Message) -> None:
+    __slots__ = ("kept", "key", "message", "shard", "shed")
+
+    def __init__(self, key: str, message: aiomqtt.Message, kept: int = 0,
+                 shard: int = -1) -> None:
         self.key = key
         self.message: aiomqtt.Message | None = message
         self.shed = False
+        self.kept = kept
+        self.shard = shard
 
 
 class _Slots:
@@ -407,6 +416,7 @@ class _Slots:
         self.live = 0  # messages waiting to be matched
         self.markers = 0  # shed QoS 1 messages waiting for their acknowledgement
         self.last_key = ""  # key of the message popped last
+        self.last_kept = (0, -1)  # (kept, shard) of the message popped last
 
     def __len__(self) -> int:
         return self.live + self.markers
@@ -431,10 +441,17 @@ class _Slots:
             del self.by_key[key]
         return slot
 
+    def append_marker(self, slot: _Slot) -> None:
+        """Append a place that is only acknowledged (never matched, never shed)."""
+        slot.shed = True
+        self.order.append(slot)
+        self.markers += 1
+
     def popleft(self) -> aiomqtt.Message:
         while True:
             slot = self.order.popleft()
             self.last_key = slot.key
+            self.last_kept = (slot.kept, slot.shard)
             if slot.shed:
                 if slot.message is None:
                     continue  # a shed QoS 0 message: nothing left to do
@@ -513,6 +530,10 @@ class IntakeQueue(asyncio.Queue[aiomqtt.Message]):
         self._shed_ids: set[int] = set()
         self._waiter: asyncio.Future[None] | None = None
         self._interrupted = False
+        self._given: tuple[str, int, int] | None = None  # put_keyed's key, kept, shard
+        # When set, every message put (put_nowait: aiomqtt's own on_message callback and
+        # lean_receive's deliver alike) goes to it instead; it queues with put_keyed.
+        self.arrive: Callable[[aiomqtt.Message], None] | None = None
 
     def _init(self, maxsize: int) -> None:
         self._queue = _Slots()
@@ -523,9 +544,14 @@ class IntakeQueue(asyncio.Queue[aiomqtt.Message]):
         # property names and types, a few KiB); nothing reads them here, and a backlog of
         # 100,000 waiting messages would otherwise hold hundreds of MiB.
         item.properties = None
-        payload = item.payload if isinstance(item.payload, bytes | bytearray) else b""
-        key = self.key_of(item.topic.value, bytes(payload))
-        slots.append(_Slot(key, item))
+        given = self._given
+        if given is not None:
+            self._given = None
+            key, kept, shard = given
+        else:
+            payload = item.payload if isinstance(item.payload, bytes | bytearray) else b""
+            key, kept, shard = self.key_of(item.topic.value, bytes(payload)), 0, -1
+        slots.append(_Slot(key, item, kept, shard))
         if slots.live > self.limit:
             shed = slots.shed_one(key)
             self.shed_total += 1
@@ -550,9 +576,64 @@ class IntakeQueue(asyncio.Queue[aiomqtt.Message]):
         slots: _Slots = self._queue
         return slots.last_key
 
+    @property
+    def last_kept(self) -> tuple[int, int]:
+        """(kept, shard) given to :meth:`put_keyed` for the message taken last, else (0, -1)."""
+        slots: _Slots = self._queue
+        return slots.last_kept
+
     def put_nowait(self, item: aiomqtt.Message) -> None:
-        """Queue ``item`` (shedding an older one when full) and wake :meth:`wait`."""
+        """Queue ``item`` (shedding an older one when full) and wake :meth:`wait`.
+
+        With :attr:`arrive` set, hand ``item`` to it instead (it queues what it does
+        not finish with :meth:`put_keyed` or :meth:`put_ack`).
+        """
+        if self.arrive is not None and self._given is None:
+            self.arrive(item)
+            return
         super().put_nowait(item)
+        self._wake()
+
+    def put_keyed(self, item: aiomqtt.Message, key: str, kept: int = 0,
+                  shard: int = -1) -> None:
+        """:meth:`put_nowait` with the key already known (``key_of`` is not called).
+
+        ``kept`` and ``shard`` are handed back by :attr:`last_kept` when the message is
+        taken (the daemon: the message's place in a shard's buffer, kept on arrival).
+
+        Example:
+            >>> q = IntakeQueue(2, key_of=lambda topic, payload: 1 / 0)  # never called
+            >>> q.put_keyed(aiomqtt.Message("a", b"x", 1, False, 7, None), "v:a", 5, 3)
+            >>> q.get_nowait().mid, q.last_key, q.last_kept
+            (7, 'v:a', (5, 3))
+        """
+        self._given = (key, kept, shard)
+        try:
+            self.put_nowait(item)
+        finally:
+            self._given = None
+
+    def put_ack(self, item: aiomqtt.Message) -> None:
+        """Queue a place that is only to be acknowledged, keyed :data:`ACK_ONLY_KEY`.
+
+        For a message handled on arrival but whose PUBACK must wait for the messages
+        ahead of it (MQTT 5.0 section 4.6: PUBACKs in the order the PUBLISH packets
+        arrived). It is never shed and not counted by :attr:`waiting`; its payload is
+        dropped.
+
+        Example:
+            >>> q = IntakeQueue(1, key_of=lambda topic, payload: topic)
+            >>> q.put_nowait(aiomqtt.Message("a", b"x", 1, False, 1, None))
+            >>> q.put_ack(aiomqtt.Message("b", b"y", 1, False, 2, None))
+            >>> q.waiting, q.qsize()
+            (1, 2)
+            >>> [(q.get_nowait().mid, q.last_key) for _ in range(2)]
+            [(1, 'a'), (2, 'ack')]
+        """
+        item.properties = None
+        item.payload = b""
+        slots: _Slots = self._queue
+        slots.append_marker(_Slot(ACK_ONLY_KEY, item))
         self._wake()
 
     def interrupt(self, _done: object = None) -> None:
