@@ -392,10 +392,13 @@ class Tracker:
                 self.stand_seq, recent = self._stand_start(seq)
                 if not recent and self._held is not None:
                     self._held = None
-            seg, pos, x, y = (self._hold_at_junction(deciding, best, split, fix)
-                              or self._hold_at_stand(deciding, best, seq, recent)
-                              or deciding.tree.point(self._view, best))
-            self.last_seg = int(deciding.tree.ti[best, 0])
+            # (each hold asked only when it can hold: most fixes have neither)
+            held = self._hold_at_junction(deciding, best, split, fix) if split >= 0 else None
+            if held is None and recent:
+                held = self._hold_at_stand(deciding, best, seq, recent)
+            tree = deciding.tree
+            seg, pos, x, y = held or tree.point(self._view, best)
+            self.last_seg = tree.ti.item(best, I_SEG)
             events.append(Assignment(
                 self.vehicle, fix.t, seg, pos * self._view.slen[seg],
                 x, y, deciding.eps, seq - deciding.cert_seq + 1,
@@ -699,35 +702,38 @@ class Tracker:
             ((1, 8), 1, 1)
         """
         seq0 = self.fix_seq0
+        row = seq - seq0
         lo = max(seq0, self.next_commit - 1, 1)
-        if seq - seq0 >= self.fix_n or seq <= lo:
+        if row >= self.fix_n or seq <= lo:
             return 0, 0
+        xy = self.fix_xy
+        x = xy.item(row, 0)
+        y = xy.item(row, 1)
+        radius = STAND_SIGMAS * self.settings.sigma_m
+        r2 = radius * radius
+        dx = xy.item(row - 1, 0) - x
+        dy = xy.item(row - 1, 1) - y
+        if dx * dx + dy * dy > r2:
+            return 0, 0  # the run is the newest fix alone (a moving vehicle, usually)
         times = self.times
         if lo not in times:
             # the spike test moved the commit point back below the oldest time kept
             # (_spike_test): the whole run, whose start may have no time (no stand then)
-            first = self._run_start(seq, seq)
+            first = self._run_start(seq, seq - 1)
         else:
             # every fix from lo to seq has a time (times are kept for a contiguous run
             # of sequence numbers up to the newest): stop as soon as the run spans both
             # bounds, which then hold for the whole run too
-            xy = self.fix_xy
-            x = xy.item(seq - seq0, 0)
-            y = xy.item(seq - seq0, 1)
-            radius = STAND_SIGMAS * self.settings.sigma_m
-            r2 = radius * radius
             enough = times[seq] - max(STAND_HOLD_S, STAND_KEEP_S)
             # back from the newest fix while within the radius (a moving vehicle leaves
             # it within a few fixes: scalar steps, no array built per fix)
-            first = seq
-            while first > lo:
+            first = seq - 1
+            while first > lo and times[first] > enough:
                 dx = xy.item(first - 1 - seq0, 0) - x
                 dy = xy.item(first - 1 - seq0, 1) - y
                 if dx * dx + dy * dy > r2:
                     break
                 first -= 1
-                if times[first] <= enough:
-                    break
         t_first = times.get(first)
         span = times[seq] - t_first if t_first is not None else -1.0
         if self.stand_seq and span >= STAND_KEEP_S:
@@ -920,9 +926,13 @@ class Tracker:
             floor = min(alive) if alive else seq + 1
             if floor > self.next_commit:
                 self.next_commit = floor  # fixes no tree covers any more stay unmatched
-        oldest = self.next_commit - 1
-        for stale in [k for k in self.times if k < oldest]:
-            del self.times[stale]
+        # the times kept are those of a contiguous run of fixes up to the newest: drop
+        # the ones before the oldest still needed downwards, not by a scan of them all
+        times = self.times
+        stale = self.next_commit - 2
+        while stale in times:
+            del times[stale]
+            stale -= 1
         self._trim(seq, t)
 
     def _stood_lately(self, fix: Fix, prev_t: float | None) -> bool:
