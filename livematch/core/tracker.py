@@ -622,8 +622,12 @@ class Tracker:
         score, or the path cost) and the near-best margin of :meth:`_hold_at_junction`,
         in one compiled call (:meth:`CandidateTree.live_answer`).
         """
-        s = self.settings
         tree = level.tree
+        if tree.hi - tree.lo == 1:
+            # one live state (a sixth to a half of fixes): it is the best, and no
+            # near-best set can split; what the compiled call answers, without the call
+            return tree.lo, -1
+        s = self.settings
         scored = s.error_tau_s > 0.0 and len(tree) >= 2
         margin = s.junction_hold
         if scored and 0.0 < dt <= s.gap_s:
