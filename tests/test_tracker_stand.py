@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+
 import pytest
 
 from livematch.core.build import Road, network_from_roads
@@ -114,3 +116,86 @@ def test_tracker_stand_hold_survives_a_restore_mid_stand(cut: int) -> None:
     assert after == [e for f in fixes[cut:] for e in straight.update(f)]
     assert restored.flush() == straight.flush()
     assert restored.to_bytes() == straight.to_bytes()
+
+
+def _reference_stand_start(tracker: Tracker, seq: int) -> tuple[int, int]:
+    """The stand test as first written: the whole run walked back on every fix.
+
+    Returns (first fix of the stand, first fix of the newest fix's run), (0, 0) if the
+    vehicle does not stand (the definition in Tracker._stand_start's docstring).
+    """
+    seq0 = tracker.fix_seq0
+    lo = max(seq0, tracker.next_commit - 1, 1)
+    if seq - seq0 >= tracker.fix_n or seq <= lo:
+        return 0, 0
+    xy = tracker.fix_xy
+    x, y = float(xy[seq - seq0, 0]), float(xy[seq - seq0, 1])
+    radius = 2.0 * tracker.settings.sigma_m
+    first = seq
+    while first > lo and math.hypot(float(xy[first - 1 - seq0, 0]) - x,
+                                    float(xy[first - 1 - seq0, 1]) - y) <= radius:
+        first -= 1
+    t_first = tracker.times.get(first)
+    span = tracker.times[seq] - t_first if t_first is not None else -1.0
+    if tracker.stand_seq and span >= 3.0:
+        return max(tracker.stand_seq, lo), first
+    return (first, first) if span >= 3.0 else (0, 0)
+
+
+def _fleet_fixes(every: int) -> tuple[RoadNetwork, list[list[Fix]]]:
+    """Simulated routed trips with dwells on the pyrosm test extract (© OpenStreetMap
+    contributors, ODbL): stands of 10-90 s, GNSS error and 1 % outliers."""
+    import importlib.resources
+
+    import numpy as np
+
+    from livematch.mapdata.netfile import open_network
+    from livematch.sim.drive import TRIPS, DriveSettings, drivable_segments, observe, simulate_drive
+
+    net = open_network(str(importlib.resources.files("pyrosm") / "data" / "test.osm.pbf"))
+    allowed = drivable_segments(net)
+    runs = []
+    for i in range(3):
+        drive = simulate_drive(net, np.random.default_rng([41, i]), f"v{i}", 1.7e9,
+                               DriveSettings(duration_s=900.0, **TRIPS), allowed)
+        runs.append([Fix(drive.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy)
+                     for o in observe(drive, every)])
+    return net, runs
+
+
+@pytest.mark.parametrize("every", [1, 5, 7])
+def test_tracker_stand_start_equals_the_whole_walk(every: int) -> None:
+    """The stand test that stops walking once the run spans the hold time gives, after
+    every fix of routed trips with dwells, the stand the whole walk gave, and the run
+    start it gave once completed (Tracker._run_start). At 5 and 7 s between fixes the
+    spike test runs and moves fixes (a dropped fix's successor takes its place)."""
+    net, runs = _fleet_fixes(every)
+    stands = spikes = 0
+    for fixes in runs:
+        tracker = Tracker(net, fixes[0].vehicle)
+        for fix in fixes:
+            spikes += sum(1 for e in tracker.update(fix) if getattr(e, "reason", "") == "spike")
+            seq = tracker.seq
+            want = _reference_stand_start(tracker, seq)
+            stand, reach = tracker._stand_start(seq)
+            got = (stand, tracker._run_start(seq, reach) if reach else 0)
+            assert got == want, (fixes[0].vehicle, fix.t)
+            stands += bool(stand)
+    assert stands > (300 // every)  # the drives do stand
+    if every > 1:
+        assert spikes > 0
+
+
+def test_tracker_stand_hold_cache_changes_no_answer() -> None:
+    """Tracker._held (which fixes lie within eps of a held point, remembered from the
+    fix before) changes nothing: a tracker whose cache is emptied before every fix
+    gives the same events on routed trips with dwells, at 1 and 5 s between fixes."""
+    for every in (1, 5):
+        net, runs = _fleet_fixes(every)
+        for fixes in runs:
+            cached = Tracker(net, fixes[0].vehicle)
+            fresh = Tracker(net, fixes[0].vehicle)
+            for fix in fixes:
+                fresh._held = None
+                assert fresh.update(fix) == cached.update(fix)
+            assert fresh.flush() == cached.flush()

@@ -74,7 +74,16 @@ from collections.abc import Iterator
 
 import numpy as np
 
-from livematch.core._tree_kernel import F_COST, I_PARENT, I_SEG, I_VIA0, I_VIAN, ROW_F, ROW_I
+from livematch.core._tree_kernel import (
+    F_COST,
+    I_PARENT,
+    I_SEG,
+    I_SEQ,
+    I_VIA0,
+    I_VIAN,
+    ROW_F,
+    ROW_I,
+)
 from livematch.core.candidates import DIED, CandidateTree
 from livematch.core.events import Assignment, Commit, Event, Filtered, MatchedFix
 from livematch.core.fastsweep import sweep_arrays
@@ -123,6 +132,8 @@ STAND_SIGMAS = 2.0
 # 0.941, off 0.902; the random walk 0.964, 0.962 at 10 / 3 s, off 0.954).
 STAND_HOLD_S = 3.0
 STAND_KEEP_S = 3.0
+# Entries of Tracker._held (usually one or two: the stand's anchor, the newest run's)
+_HELD_MEMO = 8
 _NO_FIXES = np.empty((0, 2))  # shared by trackers that have seen no fix (never written)
 # A fix this many seconds after the fix before, from SPIKE_MIN_S to SPIKE_MAX_S, is kept
 # open to the spike test (MatchSettings.spike_cost). Closer fixes are left to the jump
@@ -200,7 +211,7 @@ class Tracker:
 
     # slots: a service holds one tracker per vehicle, and an instance dict costs more
     # than a small candidate tree
-    __slots__ = ("_view", "_weights", "before", "buffer", "fix_n", "fix_seq0", "fix_xy",
+    __slots__ = ("_held", "_view", "_weights", "before", "buffer", "fix_n", "fix_seq0", "fix_xy",
                  "jumps", "last", "last_commit", "last_released_t", "last_seg", "levels",
                  "network", "next_commit", "seq", "settings", "skipped", "speed", "stand_from",
                  "stand_seq", "stood_t", "times", "vehicle")
@@ -245,6 +256,9 @@ class Tracker:
         self.stood_t: float | None = None
         # with stand_hold: the first fix of the stand the vehicle is in now (0: none)
         self.stand_seq = 0
+        # what _held_point found (held point and first fix -> (fix asked at, all within
+        # eps)); a cache, not serialised, dropped when the vehicle does not stand
+        self._held: dict[tuple[int, float, float, float], tuple[int, bool]] | None = None
 
     @property
     def last_time(self) -> float | None:
@@ -376,10 +390,15 @@ class Tracker:
             recent = 0
             if s.stand_hold:
                 self.stand_seq, recent = self._stand_start(seq)
-            seg, pos, x, y = (self._hold_at_junction(deciding, best, split, fix)
-                              or self._hold_at_stand(deciding, best, seq, recent)
-                              or deciding.tree.point(self._view, best))
-            self.last_seg = int(deciding.tree.ti[best, 0])
+                if not recent and self._held is not None:
+                    self._held = None
+            # (each hold asked only when it can hold: most fixes have neither)
+            held = self._hold_at_junction(deciding, best, split, fix) if split >= 0 else None
+            if held is None and recent:
+                held = self._hold_at_stand(deciding, best, seq, recent)
+            tree = deciding.tree
+            seg, pos, x, y = held or tree.point(self._view, best)
+            self.last_seg = tree.ti.item(best, I_SEG)
             events.append(Assignment(
                 self.vehicle, fix.t, seg, pos * self._view.slen[seg],
                 x, y, deciding.eps, seq - deciding.cert_seq + 1,
@@ -603,8 +622,12 @@ class Tracker:
         score, or the path cost) and the near-best margin of :meth:`_hold_at_junction`,
         in one compiled call (:meth:`CandidateTree.live_answer`).
         """
-        s = self.settings
         tree = level.tree
+        if tree.hi - tree.lo == 1:
+            # one live state (a sixth to a half of fixes): it is the best, and no
+            # near-best set can split; what the compiled call answers, without the call
+            return tree.lo, -1
+        s = self.settings
         scored = s.error_tau_s > 0.0 and len(tree) >= 2
         margin = s.junction_hold
         if scored and 0.0 < dt <= s.gap_s:
@@ -650,7 +673,7 @@ class Tracker:
         return None
 
     def _stand_start(self, seq: int) -> tuple[int, int]:
-        """The first fix of the stand that fix ``seq`` (the newest) belongs to, or 0.
+        """Whether fix ``seq`` (the newest) stands: ``(stand, reach)``, ``(0, 0)`` if not.
 
         The vehicle stands now when the accepted fixes of the last ``STAND_HOLD_S``
         seconds all lie within ``STAND_SIGMAS`` x ``sigma_m`` of the newest one. The
@@ -661,8 +684,16 @@ class Tracker:
         at (older positions may be gone): a stand that began before it begins, as far
         as this can tell, there.
 
+        ``stand``: the first fix of the stand. ``reach``: a fix of the run (every fix
+        from it to ``seq`` lies within the radius); :meth:`_run_start` finds from it
+        where the run begins. Why not that start itself: stand_wait holds commits off
+        during a stand, so the walk back to it grows with the stand (a fix each, on
+        every fix); it stops once the run spans ``STAND_HOLD_S`` and ``STAND_KEEP_S``,
+        and the start is looked for only when a held answer needs it
+        (:meth:`_hold_at_stand`), or when a new stand begins there.
+
         Example (one fix: no stand yet; fixes 1 s apart within 1 m for 10 s: a stand
-        from the first):
+        from the first, the run known back to the fix 3 s before the newest):
             >>> from livematch.core.build import Road, network_from_roads
             >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
             >>> tracker = Tracker(net, "v1")
@@ -671,32 +702,72 @@ class Tracker:
             (0, 0)
             >>> for i in range(1, 11):
             ...     _ = tracker.update(Fix("v1", float(i), 0.0, 0.0, 50.0 + i % 2, 1.0))
-            >>> tracker._stand_start(11), tracker.stand_seq
-            ((1, 1), 1)
+            >>> tracker._stand_start(11), tracker.stand_seq, tracker._run_start(11, 8)
+            ((1, 8), 1, 1)
+        """
+        seq0 = self.fix_seq0
+        row = seq - seq0
+        lo = max(seq0, self.next_commit - 1, 1)
+        if row >= self.fix_n or seq <= lo:
+            return 0, 0
+        xy = self.fix_xy
+        x = xy.item(row, 0)
+        y = xy.item(row, 1)
+        radius = STAND_SIGMAS * self.settings.sigma_m
+        r2 = radius * radius
+        dx = xy.item(row - 1, 0) - x
+        dy = xy.item(row - 1, 1) - y
+        if dx * dx + dy * dy > r2:
+            return 0, 0  # the run is the newest fix alone (a moving vehicle, usually)
+        times = self.times
+        if lo not in times:
+            # the spike test moved the commit point back below the oldest time kept
+            # (_spike_test): the whole run, whose start may have no time (no stand then)
+            first = self._run_start(seq, seq - 1)
+        else:
+            # every fix from lo to seq has a time (times are kept for a contiguous run
+            # of sequence numbers up to the newest): stop as soon as the run spans both
+            # bounds, which then hold for the whole run too
+            enough = times[seq] - max(STAND_HOLD_S, STAND_KEEP_S)
+            # back from the newest fix while within the radius (a moving vehicle leaves
+            # it within a few fixes: scalar steps, no array built per fix)
+            first = seq - 1
+            while first > lo and times[first] > enough:
+                dx = xy.item(first - 1 - seq0, 0) - x
+                dy = xy.item(first - 1 - seq0, 1) - y
+                if dx * dx + dy * dy > r2:
+                    break
+                first -= 1
+        t_first = times.get(first)
+        span = times[seq] - t_first if t_first is not None else -1.0
+        if self.stand_seq and span >= STAND_KEEP_S:
+            return max(self.stand_seq, lo), first
+        if span >= STAND_HOLD_S:
+            first = self._run_start(seq, first)
+            return first, first
+        return 0, 0
+
+    def _run_start(self, seq: int, reach: int) -> int:
+        """The oldest fix of fix ``seq``'s run (see :meth:`_stand_start`), from ``reach`` on.
+
+        The run: fixes back from ``seq`` that lie within ``STAND_SIGMAS`` x ``sigma_m`` of
+        it, not older than the last committed fix; ``reach`` must be one of them.
         """
         seq0 = self.fix_seq0
         lo = max(seq0, self.next_commit - 1, 1)
-        if seq - seq0 >= self.fix_n or seq <= lo:
-            return 0, 0
         xy = self.fix_xy
         x = xy.item(seq - seq0, 0)
         y = xy.item(seq - seq0, 1)
         radius = STAND_SIGMAS * self.settings.sigma_m
         r2 = radius * radius
-        # back from the newest fix while within the radius (a moving vehicle leaves it
-        # within a few fixes: scalar steps, no array built per fix)
-        first = seq
+        first = reach
         while first > lo:
             dx = xy.item(first - 1 - seq0, 0) - x
             dy = xy.item(first - 1 - seq0, 1) - y
             if dx * dx + dy * dy > r2:
                 break
             first -= 1
-        t_first = self.times.get(first)
-        span = self.times[seq] - t_first if t_first is not None else -1.0
-        if self.stand_seq and span >= STAND_KEEP_S:
-            return max(self.stand_seq, lo), first
-        return (first, first) if span >= STAND_HOLD_S else (0, 0)
+        return first
 
     def _hold_at_stand(
         self, level: Level, best: int, seq: int, recent: int
@@ -710,7 +781,8 @@ class Tracker:
         best candidate's own path had reached at the first fix of the stand (its
         ancestor there, or at the last commit if the stand began before it), as long as
         every fix since that point (or since the certificate window began, if later)
-        lies within eps of it.
+        lies within eps of it; failing that, the same from where the newest fix's own
+        run began (``recent``: a fix of that run, :meth:`_stand_start`'s ``reach``).
 
         The certificate still holds: the window's fixes up to the held point's fix lie
         within Fréchet distance eps of the path up to the held point (the sweep reached
@@ -719,40 +791,72 @@ class Tracker:
         convex), so the whole window lies within Fréchet distance eps of the path ending
         at the held point.
         """
-        for anchor in (self.stand_seq, recent):
-            if anchor:
-                held = self._held_point(level, best, anchor, seq)
-                if held is not None:
-                    return held
+        stand = self.stand_seq
+        if stand:
+            held = self._held_point(level, best, stand, seq)
+            if held is not None:
+                return held
+        if recent:
+            recent = self._run_start(seq, recent)
+            if recent != stand:  # the same anchor gives the same answer
+                return self._held_point(level, best, recent, seq)
         return None
 
     def _held_point(
         self, level: Level, best: int, anchor: int, seq: int
     ) -> tuple[int, float, float, float] | None:
-        """The point of :meth:`_hold_at_stand` for a stand that began at fix ``anchor``."""
+        """The point of :meth:`_hold_at_stand` for a stand that began at fix ``anchor``.
+
+        Whether the fixes from the held point's on lie within eps of it is remembered
+        (``_held``, not serialised) for the fix it was asked at: asked again with the
+        same point, from the same fix, at the next fix, only the newest fix is looked at
+        (the older ones are the same positions; the spike test rewrites only the newest
+        fix's position, and a fix that follows it has the same sequence number as the
+        one asked, so it is looked at in full). During a long stand the full check
+        would grow with it, on every fix.
+        """
         tree = level.tree
         anc = tree.ancestor_at(best, anchor)
-        since = tree.seq_of(anc)
-        held = tree.point(self._view, anc)
+        ti = tree.ti
+        seg = ti.item(anc, I_SEG)
+        since = ti.item(anc, I_SEQ)
+        parent = ti.item(anc, I_PARENT)
+        vias = ti.item(anc, I_VIAN)
         view = self._view
-        parent = int(tree.ti[anc, I_PARENT])
-        vias = int(tree.ti[anc, I_VIAN])
-        if (parent >= 0 and held[1] * view.slen[held[0]] <= self.settings.sigma_m
-                and (vias or int(tree.ti[parent, I_SEG]) != held[0])):
+        held = tree.point(view, anc)
+        if (parent >= 0 and held[1] * view.slen[seg] <= self.settings.sigma_m
+                and (vias or ti.item(parent, I_SEG) != seg)):
             # the stand began just past a vertex: report that vertex, at the end of the
             # segment the path came in by (the branch beyond it is not yet known)
-            seg_in = (int(tree.tv[tree.ti[anc, I_VIA0] + vias - 1]) if vias
-                      else int(tree.ti[parent, I_SEG]))
+            seg_in = (tree.tv.item(ti.item(anc, I_VIA0) + vias - 1) if vias
+                      else ti.item(parent, I_SEG))
             x, y = _point(view, seg_in, 1.0)
             held = (seg_in, 1.0, x, y)
-        since = max(since, level.cert_seq)
-        if since < self.fix_seq0 or since > seq:
+        if level.cert_seq > since:
+            since = level.cert_seq
+        seq0 = self.fix_seq0
+        if since < seq0 or since > seq:
             return None
-        xy = self.fix_xy[since - self.fix_seq0:seq - self.fix_seq0 + 1]
-        d2 = (xy[:, 0] - held[2]) ** 2 + (xy[:, 1] - held[3]) ** 2
-        if float(d2.max()) > level.eps * level.eps:
-            return None
-        return held
+        hx = held[2]
+        hy = held[3]
+        eps2 = level.eps * level.eps
+        key = (since, hx, hy, eps2)
+        memo = self._held
+        known = memo.get(key) if memo is not None else None
+        if known is not None and known[0] == seq - 1:
+            ok = known[1]
+            if ok:
+                dx = self.fix_xy.item(seq - seq0, 0) - hx
+                dy = self.fix_xy.item(seq - seq0, 1) - hy
+                ok = not dx * dx + dy * dy > eps2
+        else:
+            xy = self.fix_xy[since - seq0:seq - seq0 + 1]
+            d2 = (xy[:, 0] - hx) ** 2 + (xy[:, 1] - hy) ** 2
+            ok = not float(d2.max()) > eps2
+        if memo is None or len(memo) >= _HELD_MEMO:
+            memo = self._held = {}
+        memo[key] = (seq, ok)
+        return held if ok else None
 
     # ---------------------------------------------------------------- commits
     def _covering(self) -> list[Level]:
@@ -826,9 +930,13 @@ class Tracker:
             floor = min(alive) if alive else seq + 1
             if floor > self.next_commit:
                 self.next_commit = floor  # fixes no tree covers any more stay unmatched
-        oldest = self.next_commit - 1
-        for stale in [k for k in self.times if k < oldest]:
-            del self.times[stale]
+        # the times kept are those of a contiguous run of fixes up to the newest: drop
+        # the ones before the oldest still needed downwards, not by a scan of them all
+        times = self.times
+        stale = self.next_commit - 2
+        while stale in times:
+            del times[stale]
+            stale -= 1
         self._trim(seq, t)
 
     def _stood_lately(self, fix: Fix, prev_t: float | None) -> bool:
