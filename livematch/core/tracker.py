@@ -1138,7 +1138,7 @@ class Tracker:
         recomputed from the row's segment and position, bit for bit) and ``LMT1`` (JSON
         rows).
         """
-        arrays: list[bytes] = []
+        arrays: list[bytes | memoryview] = []
         levels = _pack_levels(self.levels, arrays)
         # the fix positions a live score may still read: from the last committed fix on
         skip = min(self.fix_n, max(0, self.next_commit - 1 - self.fix_seq0))
@@ -1269,18 +1269,19 @@ class Tracker:
         return tracker
 
 
-def _pack_levels(levels: list[Level], arrays: list[np.ndarray]) -> list[list[float | int]]:
+def _pack_levels(levels: list[Level],
+                 arrays: list[bytes | memoryview]) -> list[list[float | int]]:
     """The header rows of ``levels`` for :meth:`Tracker.to_bytes`; their arrays go to ``arrays``.
 
-    The arrays themselves (tight, C-ordered copies from :meth:`CandidateTree.packed`), not
-    copies of their bytes: ``bytes.join`` reads their buffers.
+    The arrays' buffers (tight, C-ordered copies from :meth:`CandidateTree.packed`), not
+    copies of their bytes: ``bytes.join`` reads them.
     """
     rows: list[list[float | int]] = []
     for lv in levels:
         ti, tf, tv, live = lv.tree.packed()
         rows.append([lv.eps, lv.tree_seq, lv.cert_seq, lv.cert_t, lv.trim_seq,
                      len(ti), len(tv), live])
-        arrays += (ti, tf, tv)
+        arrays += (ti.data, tf.data, tv.data)
     return rows
 
 
