@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import importlib.resources
+import json
 from pathlib import Path
 
 import numpy as np
@@ -64,14 +65,15 @@ def test_state_compressed_is_smaller_and_same_content() -> None:
 def test_state_reads_older_lmt3(name: str, every: int, cut: int) -> None:
     """An LMT3 checkpoint continues like a run never saved, and is rewritten as LMT4.
 
-    tests/data/states/*.lmt3 were written by the LMT3 code (commit fb7def4, default
-    settings) after ``cut`` fixes of the simulated drive; the 10 s one holds the spike
-    test's copy of the levels.
+    tests/data/states/*.lmt3 were written by the LMT3 code (commit fb7def4, its default
+    settings, kept in lmt3-settings.json) after ``cut`` fixes of the simulated drive; the
+    10 s one holds the spike test's copy of the levels.
     """
     net, fixes = _test_extract_drive(every)
     blob = (STATES / name).read_bytes()
     assert blob[:4] == b"LMT3"
-    settings = MatchSettings()
+    then = json.loads((STATES / "lmt3-settings.json").read_text(encoding="utf-8"))
+    settings = MatchSettings(**{**then, "eps_levels": tuple(then["eps_levels"])})
     straight = Tracker(net, "bus-7", settings)
     run(straight, fixes[:cut], flush=False)
     restored = Tracker.from_bytes(net, settings, blob)
