@@ -95,9 +95,11 @@ from livematch.core.sweep import Node, StepContext, advance
 from livematch.core.view import NetworkView, view_of
 from livematch.errors import BadStateError
 
-STATE_FORMAT = b"LMT3"
+STATE_FORMAT = b"LMT4"
+STATE_FORMAT_V3 = b"LMT3"  # as LMT4 without the flags byte, zlib-compressed; still read
 STATE_FORMAT_V2 = b"LMT2"  # as LMT3 with the matched point in every row; still read
 STATE_FORMAT_V1 = b"LMT1"  # JSON rows of linked nodes; still read
+_READABLE = (STATE_FORMAT, STATE_FORMAT_V3, STATE_FORMAT_V2, STATE_FORMAT_V1)
 # float64 columns of a tree row in LMT2 (low, pos, x, y, cost, t) and the ones LMT3 keeps
 _V2_ROW_F = 6
 _V2_KEPT = [0, 1, 4, 5]
@@ -1227,18 +1229,24 @@ class Tracker:
                 level.tree_seq = max(level.tree_seq, forced)
 
     # ---------------------------------------------------------- serialisation
-    def to_bytes(self) -> bytes:
-        """Versioned, compact serialisation of the whole state.
+    def to_bytes(self, compress: bool = False) -> bytes:
+        """Versioned serialisation of the whole state; a restored tracker continues exactly.
 
-        ``LMT3``: zlib over a 4-byte header length, a JSON header (the scalars, floats
-        written with ``repr`` precision) and each level's candidate tree as raw arrays,
-        compacted to the rows still needed (layout in :mod:`livematch.core._tree_kernel`).
-        A restored tracker continues exactly as the original would have.
-        :meth:`from_bytes` also reads the older ``LMT2`` (the same with each row's
-        matched point, which is recomputed from the row's segment and position, bit for
-        bit) and ``LMT1`` (JSON rows).
+        ``LMT4``: the 4-byte format, a flags byte (bit 0: what follows is zlib-compressed,
+        level 1, when ``compress``), then a 4-byte header length, a JSON header (the
+        scalars, floats written with ``repr`` precision; a dict, so a field added later is
+        one more key, read with a default) and the arrays' bytes as they are: each
+        level's candidate tree, compacted to the rows still needed (rows, then floats,
+        then vias; layout in :mod:`livematch.core._tree_kernel`), the fix positions, then
+        the spike test's copy of the levels. Uncompressed, a checkpoint costs a few tens
+        of microseconds, about a tenth of the zlib-compressed ``LMT3`` (``bench/
+        checkpoint.py``), and is about three times as long; ``compress`` trades the time
+        back for the size. :meth:`from_bytes` also reads ``LMT3`` (the same, zlib-
+        compressed at level 6, no flags byte), ``LMT2`` (each row with its matched point,
+        recomputed from the row's segment and position, bit for bit) and ``LMT1`` (JSON
+        rows).
         """
-        arrays: list[bytes] = []
+        arrays: list[bytes | memoryview] = []
         levels = _pack_levels(self.levels, arrays)
         # the fix positions a live score may still read: from the last committed fix on
         skip = min(self.fix_n, max(0, self.next_commit - 1 - self.fix_seq0))
@@ -1247,6 +1255,7 @@ class Tracker:
         if self.before is not None:
             b = self.before
             before = [b.last, b.speed, b.last_seg, _pack_levels(b.levels, arrays)]
+        times = self.times
         state = {
             "vehicle": self.vehicle,
             "n_segments": self.network.n_segments,
@@ -1255,40 +1264,57 @@ class Tracker:
             "last_released_t": self.last_released_t,
             "jumps": self.jumps,
             "speed": self.speed,
-            "buffer": [[f.vehicle, f.t, f.lon, f.lat, f.x, f.y, f.accuracy, f.speed,
-                        f.heading, f.route] for f in self.buffer],
-            "times": [[k, v] for k, v in self.times.items()],
+            "times": [list(times), list(times.values())],  # LMT3: [[seq, t], ...]
             "next_commit": self.next_commit,
             "last_commit": self.last_commit,
-            "skipped": self.skipped,
             "last_seg": self.last_seg,
             "levels": levels,
             "fixes": [self.fix_seq0 + skip, self.fix_n - skip],
-            "before": before,
         }
+        # written only when not empty (read with a default): most states have none
+        if self.buffer:
+            state["buffer"] = [[f.vehicle, f.t, f.lon, f.lat, f.x, f.y, f.accuracy, f.speed,
+                                f.heading, f.route] for f in self.buffer]
+        if self.skipped:
+            state["skipped"] = self.skipped
+        if before is not None:
+            state["before"] = before
         if self.stand_from is not None:
             state["stand"] = [self.stand_from, self.stood_t]
         if self.stand_seq:
             state["stand_seq"] = self.stand_seq
         header = json.dumps(state, separators=(",", ":")).encode()
-        return STATE_FORMAT + zlib.compress(
-            b"".join((len(header).to_bytes(4, "little"), header, *arrays)))
+        body = b"".join((len(header).to_bytes(4, "little"), header, *arrays))
+        if compress:
+            return STATE_FORMAT + b"\x01" + zlib.compress(body, 1)
+        return STATE_FORMAT + b"\x00" + body
 
     @classmethod
     def from_bytes(
         cls, network: RoadNetwork, settings: MatchSettings | None, data: bytes
     ) -> Tracker:
-        """Restore a tracker written by :meth:`to_bytes` (``LMT3``; ``LMT2`` and ``LMT1`` too)."""
+        """Restore a tracker written by :meth:`to_bytes` (``LMT4``; ``LMT3`` to ``LMT1`` too)."""
         fmt = data[:len(STATE_FORMAT)]
-        if fmt not in (STATE_FORMAT, STATE_FORMAT_V2, STATE_FORMAT_V1):
+        if fmt not in _READABLE:
             raise BadStateError(f"not a livematch tracker state (expected {STATE_FORMAT!r})")
         try:
-            body = zlib.decompress(data[len(STATE_FORMAT):])
+            if fmt == STATE_FORMAT:
+                flags = data[4] if len(data) > 4 else -1
+                if flags == 0:
+                    body = memoryview(data)[5:]
+                elif flags == 1:
+                    body = memoryview(zlib.decompress(memoryview(data)[5:]))
+                else:
+                    raise ValueError(f"unknown flags {flags}")
+            else:
+                body = memoryview(zlib.decompress(memoryview(data)[len(STATE_FORMAT):]))
             if fmt == STATE_FORMAT_V1:
-                state, rest = json.loads(body), b""
+                state, rest = json.loads(bytes(body)), body[:0]
             else:
                 size = int.from_bytes(body[:4], "little")
-                state, rest = json.loads(body[4:4 + size]), body[4 + size:]
+                if 4 + size > len(body):
+                    raise ValueError("header cut short")
+                state, rest = json.loads(bytes(body[4:4 + size])), body[4 + size:]
         except (zlib.error, ValueError) as exc:
             raise BadStateError(f"corrupt tracker state: {exc}") from exc
         if state["n_segments"] != network.n_segments:
@@ -1296,7 +1322,7 @@ class Tracker:
         tracker = cls(network, state["vehicle"], settings)
         if [lv[0] for lv in state["levels"]] != [lv.eps for lv in tracker.levels]:
             raise BadStateError("tracker state was written with a different eps ladder")
-        at = 0  # read position in the raw arrays after the header (LMT2)
+        at = 0  # read position in the raw arrays after the header (LMT2 on)
         if fmt == STATE_FORMAT_V1:
             nodes: list[Node] = []
             for seg, seq, t, pos, x, y, parent, via, cost, low in state["nodes"]:
@@ -1318,8 +1344,7 @@ class Tracker:
             if at + 16 * n > len(rest):
                 raise BadStateError("corrupt tracker state: fix positions cut short")
             if n:
-                tracker.fix_xy = np.frombuffer(rest[at:at + 16 * n], np.float64).reshape(
-                    n, 2).copy()
+                tracker.fix_xy = np.frombuffer(rest, np.float64, 2 * n, at).reshape(n, 2).copy()
             tracker.fix_seq0, tracker.fix_n = seq0, n
             at += 16 * n
             before = state.get("before")  # absent in states written before the spike test
@@ -1334,10 +1359,15 @@ class Tracker:
         tracker.last_released_t = state["last_released_t"]
         tracker.jumps = state["jumps"]
         tracker.speed = state.get("speed")  # absent in older states
-        tracker.buffer = [Fix(*row) for row in state["buffer"]]
-        tracker.times = {k: v for k, v in state["times"]}
+        # LMT4 leaves out an empty buffer and skipped list
+        tracker.buffer = [Fix(*row) for row in state.get("buffer", ())]
+        times = state["times"]
+        if fmt == STATE_FORMAT:
+            tracker.times = dict(zip(times[0], times[1], strict=True))
+        else:
+            tracker.times = {k: v for k, v in times}
         tracker.next_commit = state["next_commit"]
-        tracker.skipped = list(state["skipped"])
+        tracker.skipped = list(state.get("skipped", ()))
         tracker.last_seg = state["last_seg"]
         tracker.last_commit = tuple(state["last_commit"]) if state["last_commit"] else None
         stand = state.get("stand")  # written only with stop_turns (absent in older states)
@@ -1347,41 +1377,50 @@ class Tracker:
         return tracker
 
 
-def _pack_levels(levels: list[Level], arrays: list[bytes]) -> list[list[float | int]]:
-    """The header rows of ``levels`` for :meth:`Tracker.to_bytes`; their arrays go to ``arrays``."""
+def _pack_levels(levels: list[Level],
+                 arrays: list[bytes | memoryview]) -> list[list[float | int]]:
+    """The header rows of ``levels`` for :meth:`Tracker.to_bytes`; their arrays go to ``arrays``.
+
+    The arrays' buffers (tight, C-ordered copies from :meth:`CandidateTree.packed`), not
+    copies of their bytes: ``bytes.join`` reads them.
+    """
     rows: list[list[float | int]] = []
     for lv in levels:
         ti, tf, tv, live = lv.tree.packed()
         rows.append([lv.eps, lv.tree_seq, lv.cert_seq, lv.cert_t, lv.trim_seq,
                      len(ti), len(tv), live])
-        arrays += (ti.tobytes(), tf.tobytes(), tv.tobytes())
+        arrays += (ti.data, tf.data, tv.data)
     return rows
 
 
-def _unpack_levels(levels: list[Level], rows: list[list[float | int]], rest: bytes,
+def _unpack_levels(levels: list[Level], rows: list[list[float | int]], rest: memoryview,
                    at: int, v2: bool = False) -> int:
     """Fill ``levels`` from header ``rows`` and the arrays in ``rest`` from ``at`` on.
 
     ``v2``: the rows are ``LMT2``'s, with the matched point (dropped here). Returns where
-    the next arrays start.
+    the next arrays start. The trees get arrays of their own (copies: ``rest`` may be
+    read-only), none for an empty part (:meth:`CandidateTree.unpacked`).
     """
     row_f = _V2_ROW_F if v2 else ROW_F
+    end = len(rest)
     for lv, (_, tree_seq, cert_seq, cert_t, trim_seq, n_rows, n_vias, live) in zip(
             levels, rows, strict=True):
         lv.tree_seq, lv.cert_seq, lv.cert_t = int(tree_seq), int(cert_seq), float(cert_t)
         lv.trim_seq = int(trim_seq)
         nr, nv = int(n_rows), int(n_vias)
-        sizes = (nr * ROW_I * 4, nr * row_f * 8, nv * 4)
-        parts = []
-        for size in sizes:
-            if at + size > len(rest):
-                raise BadStateError("corrupt tracker state: candidate tree cut short")
-            parts.append(rest[at:at + size])
-            at += size
-        tf = np.frombuffer(parts[1], np.float64).reshape(nr, row_f)
-        lv.tree = CandidateTree.unpacked(
-            np.frombuffer(parts[0], np.int32).reshape(nr, ROW_I),
-            tf[:, _V2_KEPT] if v2 else tf, np.frombuffer(parts[2], np.int32), int(live))
+        at_f = at + nr * ROW_I * 4
+        at_v = at_f + nr * row_f * 8
+        nxt = at_v + nv * 4
+        if nr < 0 or nv < 0 or nxt > end:
+            raise BadStateError("corrupt tracker state: candidate tree cut short")
+        if nr:
+            ti = np.frombuffer(rest, np.int32, nr * ROW_I, at).reshape(nr, ROW_I)
+            tf = np.frombuffer(rest, np.float64, nr * row_f, at_f).reshape(nr, row_f)
+            tv = np.frombuffer(rest, np.int32, nv, at_v)
+            lv.tree = CandidateTree.unpacked(ti, tf[:, _V2_KEPT] if v2 else tf, tv, int(live))
+        else:
+            lv.tree = CandidateTree()
+        at = nxt
     return at
 
 

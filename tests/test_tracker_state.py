@@ -1,0 +1,109 @@
+"""The tracker's serialised state (``LMT4``): both encodings, older versions, corruption."""
+
+from __future__ import annotations
+
+import importlib.resources
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from livematch.core.fix import Fix
+from livematch.core.network import RoadNetwork
+from livematch.core.settings import MatchSettings
+from livematch.core.tracker import Tracker
+from livematch.errors import BadStateError
+from tests.test_tracker import noisy_drive, run
+
+STATES = Path(__file__).parent / "data" / "states"
+
+
+def _test_extract_drive(every: int) -> tuple[RoadNetwork, list[Fix]]:
+    """The simulated bus-7 drive the stored states were written on (pyrosm's test extract,
+    © OpenStreetMap contributors, ODbL), one fix every ``every`` s."""
+    from livematch.mapdata.netfile import open_network
+    from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
+
+    net = open_network(str(importlib.resources.files("pyrosm") / "data" / "test.osm.pbf"))
+    d = simulate_drive(net, np.random.default_rng([41, 77]), "bus-7", 1.7e9,
+                       DriveSettings(duration_s=240.0 if every == 1 else 900.0),
+                       drivable_segments(net))
+    return net, [Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy) for o in observe(d, every)]
+
+
+@pytest.mark.parametrize("compress", [False, True])
+@pytest.mark.parametrize("cut", [1, 9, 60])
+def test_state_round_trip_continues_identically(compress: bool, cut: int) -> None:
+    """Either encoding restores a tracker that continues exactly as one never saved."""
+    net, fixes = noisy_drive(seed=cut)
+    settings = MatchSettings(max_lag_fixes=20)
+    straight = Tracker(net, "v1", settings)
+    whole = run(straight, fixes)
+    first = Tracker(net, "v1", settings)
+    before = run(first, fixes[:cut], flush=False)
+    blob = first.to_bytes(compress=compress)
+    assert blob[:5] == b"LMT4" + (b"\x01" if compress else b"\x00")
+    restored = Tracker.from_bytes(net, settings, blob)
+    assert restored.to_bytes() == first.to_bytes()
+    assert before + run(restored, fixes[cut:]) == whole
+    assert restored.to_bytes() == straight.to_bytes()
+
+
+def test_state_compressed_is_smaller_and_same_content() -> None:
+    """The zlib form holds the same state as the plain one, in fewer bytes."""
+    net, fixes = noisy_drive(seed=5)
+    tracker = Tracker(net, "v1")
+    run(tracker, fixes[:80], flush=False)
+    plain, packed = tracker.to_bytes(), tracker.to_bytes(compress=True)
+    assert len(packed) < len(plain)
+    assert Tracker.from_bytes(net, None, packed).to_bytes() == plain
+
+
+@pytest.mark.parametrize(("name", "every", "cut"), [
+    ("test-osm-bus7-fix120.lmt3", 1, 120), ("test-osm-bus7-10s-fix30.lmt3", 10, 30)])
+def test_state_reads_older_lmt3(name: str, every: int, cut: int) -> None:
+    """An LMT3 checkpoint continues like a run never saved, and is rewritten as LMT4.
+
+    tests/data/states/*.lmt3 were written by the LMT3 code (commit fb7def4, its default
+    settings, kept in lmt3-settings.json) after ``cut`` fixes of the simulated drive; the
+    10 s one holds the spike test's copy of the levels.
+    """
+    net, fixes = _test_extract_drive(every)
+    blob = (STATES / name).read_bytes()
+    assert blob[:4] == b"LMT3"
+    then = json.loads((STATES / "lmt3-settings.json").read_text(encoding="utf-8"))
+    settings = MatchSettings(**{**then, "eps_levels": tuple(then["eps_levels"])})
+    straight = Tracker(net, "bus-7", settings)
+    run(straight, fixes[:cut], flush=False)
+    restored = Tracker.from_bytes(net, settings, blob)
+    assert (restored.before is not None) == (every == 10)
+    assert restored.to_bytes() == straight.to_bytes()
+    assert run(restored, fixes[cut:]) == run(straight, fixes[cut:])
+    assert restored.to_bytes() == straight.to_bytes()
+    assert restored.to_bytes()[:4] == b"LMT4"
+
+
+def test_state_corrupt_lmt4_is_a_bad_state() -> None:
+    """Unknown flags, a cut header, cut arrays or a broken zlib stream: BadStateError."""
+    net, fixes = noisy_drive(seed=3)
+    tracker = Tracker(net, "v1")
+    run(tracker, fixes[:40], flush=False)
+    plain, packed = tracker.to_bytes(), tracker.to_bytes(compress=True)
+    header = int.from_bytes(plain[5:9], "little")
+    assert len(plain) > 9 + header + 52  # a tree row at least follows the header
+    for bad in (plain[:4] + b"\x07" + plain[5:], plain[:4], plain[:9 + header // 2],
+                plain[:-20], packed[:-20], plain[:4] + b"\x01" + plain[5:]):
+        with pytest.raises(BadStateError):
+            Tracker.from_bytes(net, None, bad)
+
+
+def test_state_skips_empty_parts() -> None:
+    """A fresh tracker's state is small and restores to a tracker with shared empties."""
+    net, _ = noisy_drive(seed=1)
+    fresh = Tracker(net, "v1")
+    blob = fresh.to_bytes()
+    assert len(blob) < 400
+    back = Tracker.from_bytes(net, None, blob)
+    assert back.to_bytes() == blob
+    assert all(lv.tree.ti is fresh.levels[0].tree.ti for lv in back.levels)
