@@ -38,10 +38,10 @@ def _one_way_block() -> RoadNetwork:
     return network_from_roads(roads)
 
 
-def test_join_limit_default_is_the_speed_bound() -> None:
-    """Without ``join_detour`` the bound is bridge_speed_mps x dt + 2 x the largest eps, the
+def test_join_limit_without_join_detour_is_the_speed_bound() -> None:
+    """With ``join_detour`` 0 the bound is bridge_speed_mps x dt + 2 x the largest eps, the
     straight distance between the two points aside: 40 x 15 + 2 x 60 = 720 m."""
-    tracker = Tracker(grid(n=2, block=100.0, step=10.0), "v1")
+    tracker = Tracker(grid(n=2, block=100.0, step=10.0), "v1", MatchSettings(join_detour=0.0))
     assert tracker._join_limit(15.0, 20.0) == 720.0
     assert tracker._join_limit(15.0) == 720.0
 
@@ -59,7 +59,7 @@ def test_join_detour_refuses_a_loop_back_to_a_point_overshot() -> None:
     """On a 100 m square block of one-way streets, a stretch committed up to 50 m along the
     south side and a next stretch that begins 20 m behind it, 15 s later, are joined only
     round the whole block (380 m, networkx's shortest path): within the speed bound
-    (720 m), so by default the path re-drives the loop; with ``join_detour`` 2 the bound
+    (720 m), so with ``join_detour`` 0 the path re-drives the loop; with ``join_detour`` 2 the bound
     is 70 m and the path breaks instead, as it does where the vehicle jumped."""
     net = _one_way_block()
     view = view_of(net)
@@ -68,7 +68,8 @@ def test_join_detour_refuses_a_loop_back_to_a_point_overshot() -> None:
     last = (seg_from, 0.0, 7, 1_700_000_000.0)
     first = Node(seg_to, 8, 1_700_000_015.0, 0.0, 30.0, 0.0, None, (), 0.0, 0.0)
     route_default = connect(view, seg_from, 0.0, seg_to, 0.0,
-                            Tracker(net, "v1")._join_limit_to(last, first))
+                            Tracker(net, "v1", MatchSettings(join_detour=0.0))
+                            ._join_limit_to(last, first))
     assert route_default is not None
     loop = sum(float(net.seg_len[s]) for s in route_default) + 10.0  # + the rest of seg_from
     # outside check (networkx): the shortest route from x = 50 east round the block to x = 30

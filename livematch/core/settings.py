@@ -171,7 +171,7 @@ class MatchSettings:
     stand_wait: bool = True
     stand_hold: bool = True
     pace_reach: bool = True
-    join_detour: float = 0.0
+    join_detour: float = 2.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))

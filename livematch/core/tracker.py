@@ -954,7 +954,7 @@ class Tracker:
             return False
         first = chain[0]
         return connect(self._view, last[0], last[1], first.seg, first.pos,
-                       self._join_limit_to(last, first)) is None
+                       self._join_limit(first.t - last[3])) is None
 
     def _lag_target(self, seq: int, t: float) -> int:
         """Newest fix a forced commit may reach: half the lag behind the newest fix."""
