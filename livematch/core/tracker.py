@@ -51,7 +51,8 @@ How it decides
   committed up to half the lag and the candidates that
   disagree with it are dropped; so state stays bounded whatever the trip length.
   Consecutive committed stretches are joined by a shortest route no longer than the
-  vehicle could drive in the time between them (:meth:`Tracker._join_limit`), else the
+  vehicle could drive in the time between them nor (``join_detour``) than twice the
+  straight distance between them plus slack (:meth:`Tracker._join_limit`), else the
   committed path breaks there. A stretch
   (the trip's first, or one after a break) whose first fix matched the very end of a
   segment reports that fix at the start of the segment it enters next, the same point,
