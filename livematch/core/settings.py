@@ -134,6 +134,22 @@ class MatchSettings:
             spike test at 30 s (``livematch.core.tracker.SPIKE_MAX_S``) +0.1 to +0.9 and
             route mismatch -0.6 to -1.8 points on seeds 31 and 77, both drive models.
             1-15 s: unchanged on those drives.
+        join_detour: where one candidate tree's commit follows another's, the route
+            joining the two committed points is at most ``join_detour`` times the straight
+            distance between them plus twice the smallest eps, besides the speed bound
+            (:meth:`livematch.core.tracker.Tracker._join_limit`); a longer join breaks the
+            path there instead. 0 disables (only the speed bound). Why: when the last
+            stretch ended on a branch not taken, or a little past where the next one
+            begins, the shortest join goes round a loop back to that point, and the
+            committed path re-drives the loop (on bench/accuracy.py's drives, 150-600 m
+            loops at 5-30 s between fixes). 2 is the bridge's own detour factor (common
+            practice: a route much longer than the line between its ends is implausible).
+            Only the committed path changes, never a fix's answer (a level's deferral
+            still uses the speed bound alone). On by default: route mismatch on those
+            drives (80 per case, seeds 31 and 77) falls by 0.1-0.4 points at 5-30 s on the
+            random walk and by 0.6-0.8 on routed trips (Helsinki, seed 31); final and live
+            answers unchanged but for a fix or two whose stretch now starts at a break
+            (docs/measured.md, "Session 8: sparse15").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -161,6 +177,7 @@ class MatchSettings:
     stand_wait: bool = True
     stand_hold: bool = True
     pace_reach: bool = True
+    join_detour: float = 2.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -185,7 +202,7 @@ class MatchSettings:
         if not (isinstance(self.max_lag_fixes, int) and self.max_lag_fixes >= 2):
             out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
         for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s",
-                     "spike_cost", "street_turn_cost"):
+                     "spike_cost", "street_turn_cost", "join_detour"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))

@@ -51,7 +51,8 @@ How it decides
   committed up to half the lag and the candidates that
   disagree with it are dropped; so state stays bounded whatever the trip length.
   Consecutive committed stretches are joined by a shortest route no longer than the
-  vehicle could drive in the time between them (:meth:`Tracker._join_limit`), else the
+  vehicle could drive in the time between them nor (``join_detour``) than twice the
+  straight distance between them plus slack (:meth:`Tracker._join_limit`), else the
   committed path breaks there. A stretch
   (the trip's first, or one after a break) whose first fix matched the very end of a
   segment reports that fix at the start of the segment it enters next, the same point,
@@ -1097,7 +1098,7 @@ class Tracker:
             path.extend(_steps(last[0], first))
         else:
             route = connect(view, last[0], last[1], first.seg, first.pos,
-                            self._join_limit(first.t - last[3]))
+                            self._join_limit_to(last, first))
             if route is None:
                 starts = True
                 path.append(first.seg)  # a break: the vehicle left the network or jumped
@@ -1129,7 +1130,7 @@ class Tracker:
         if prune is not None:
             prune.tree.prune(row)
 
-    def _join_limit(self, dt: float) -> float:
+    def _join_limit(self, dt: float, straight: float = math.inf) -> float:
         """Longest route (metres) that may join two committed stretches ``dt`` seconds apart.
 
         The stretches meet where one tree's commit follows another's (a level that
@@ -1145,10 +1146,26 @@ class Tracker:
         loops it let through were 0.7 % (1 Hz) and 0.9 % (15 s) of the true length in
         route mismatch. Only the path between stretches changes, never a fix's answer.
 
+        With ``settings.join_detour`` > 0 the route is also at most ``join_detour`` times
+        ``straight`` (the distance between the two committed points, metres) plus twice
+        the smallest eps: a join much longer than the line between its ends goes round a
+        loop back to a point the last stretch overshot (it ended on a branch not taken,
+        or a little past where the next stretch begins), and re-drives the loop.
+
         Example: 1 s apart with the default ladder (15 / 30 / 60 m) and 40 m/s, a join
-        may be 40 + 120 = 160 m long; 0 s apart (two stretches at one fix) 120 m.
+        may be 40 + 120 = 160 m long; 0 s apart (two stretches at one fix) 120 m; with
+        ``join_detour`` 2, two points 20 m apart 15 s apart: 2 x 20 + 30 = 70 m.
         """
-        return self.settings.bridge_speed_mps * dt + 2.0 * max(self.settings.eps_levels)
+        s = self.settings
+        limit = s.bridge_speed_mps * dt + 2.0 * max(s.eps_levels)
+        if s.join_detour > 0.0:
+            limit = min(limit, s.join_detour * straight + 2.0 * s.eps_levels[0])
+        return limit
+
+    def _join_limit_to(self, last: tuple[int, float, int, float], first: Node) -> float:
+        """:meth:`_join_limit` for joining the committed point ``last`` to ``first``."""
+        x, y = _point(self._view, last[0], last[1])
+        return self._join_limit(first.t - last[3], math.hypot(first.x - x, first.y - y))
 
     def _entered_after(self, tree: CandidateTree, chain: list[Node]) -> int:
         """The segment the path enters right after the first node of ``chain``, or -1.
