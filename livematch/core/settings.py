@@ -161,6 +161,7 @@ class MatchSettings:
     stand_wait: bool = True
     stand_hold: bool = True
     pace_reach: bool = True
+    stand_loops: bool = True
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -190,7 +191,7 @@ class MatchSettings:
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))
         for name in ("street_turns", "stop_turns", "stand_wait", "stand_hold",
-                     "pace_reach"):
+                     "pace_reach", "stand_loops"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):
