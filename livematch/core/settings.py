@@ -134,6 +134,16 @@ class MatchSettings:
             spike test at 30 s (``livematch.core.tracker.SPIKE_MAX_S``) +0.1 to +0.9 and
             route mismatch -0.6 to -1.8 points on seeds 31 and 77, both drive models.
             1-15 s: unchanged on those drives.
+        stand_loops: a committed path that leaves a vertex and comes back to it by a
+            loop holding a U-turn, while the fixes matched inside the loop span at least
+            10 s and all lie within eps of that vertex, is committed as standing at the
+            vertex (:meth:`livematch.core.tracker.Tracker._close_stand_loops`; the
+            certificate still holds). While a vehicle stands at a junction its GNSS error
+            leans to one side for tens of seconds, and the path cost, which counts each
+            fix's error as independent, lets "into a short branch on that side, U-turn at
+            its end, back" beat standing at the junction; once the vehicle leaves, every
+            candidate descends from that detour. A loop the fixes do not show is no
+            evidence of movement. Live answers are unaffected.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)

@@ -50,6 +50,9 @@ How it decides
   ``SPARSE_S`` between fixes, else lowest path cost; see :mod:`livematch.core.sweep`) is
   committed up to half the lag and the candidates that
   disagree with it are dropped; so state stays bounded whatever the trip length.
+  With ``stand_loops``, a loop out of a vertex and back into it that the fixes inside it
+  do not show (a stand within eps of the vertex, :meth:`Tracker._close_stand_loops`) is
+  committed as standing at the vertex.
   Consecutive committed stretches are joined by a shortest route no longer than the
   vehicle could drive in the time between them (:meth:`Tracker._join_limit`), else the
   committed path breaks there. A stretch
@@ -1022,8 +1025,11 @@ class Tracker:
             prune.tree.prune(row)
 
     def _eps_of(self, tree: CandidateTree) -> float:
-        """The eps of the level whose tree ``tree`` is (the smallest eps for a tree no
-        level holds any more: a salvaged one; the smaller, the stricter its use)."""
+        """The eps of the level whose tree is ``tree``, in metres.
+
+        A tree no level holds any more (a salvaged one) gets the smallest eps: the
+        smaller the radius, the stricter :meth:`_close_stand_loops` is.
+        """
         for level in self.levels:
             if level.tree is tree:
                 return level.eps
