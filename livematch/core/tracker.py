@@ -804,7 +804,8 @@ class Tracker:
                     level.cut = self.next_commit - 1
                 else:
                     top = tree.commit_point(self.next_commit, newest)
-                if top >= 0 and not self._defers(level, top, covering):
+                if (top >= 0 and not self._defers(level, top, covering)
+                        and not self._into_stand(t)):
                     self._commit_chain(tree, top, events, prune=None)
                     covering = self._covering()
                     progressed = True
@@ -833,6 +834,20 @@ class Tracker:
         for stale in [k for k in self.times if k < oldest]:
             del self.times[stale]
         self._trim(seq, t)
+
+    def _into_stand(self, t: float) -> bool:
+        """Whether an agreed commit waits because the vehicle stood until lately.
+
+        With ``stand_loops`` (and ``stop_turns``, which keeps ``stood_t``, the last time
+        the fixes had stood within ``STAND_SIGMAS`` x ``sigma_m`` for ``STAND_S``
+        seconds), candidates that agree are not committed until ``STAND_AFTER_S``
+        seconds after a stand: while the vehicle stands, the candidates may all descend
+        from a state inside a short branch that the path comes back out of only when
+        the vehicle leaves, and :meth:`_close_stand_loops` can cut such a loop out only
+        when one commit holds the whole of it. Forced commits (``max_lag_*``) still go on.
+        """
+        return (self.settings.stand_loops and self.stood_t is not None
+                and t - self.stood_t <= STAND_AFTER_S)
 
     def _stood_lately(self, fix: Fix, prev_t: float | None) -> bool:
         """Whether the vehicle stood still until at most ``STAND_AFTER_S`` before ``prev_t``.
