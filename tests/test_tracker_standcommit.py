@@ -120,3 +120,30 @@ def test_tracker_stand_loops_survives_a_restore() -> None:
     assert [e for f in rest for e in restored.update(f)] == [e for f in rest
                                                              for e in straight.update(f)]
     assert restored.flush() == straight.flush()
+
+
+def test_tracker_stand_loops_waits_to_commit_until_after_a_stand() -> None:
+    """Candidates that agree while the vehicle stands are committed only once it has
+    moved off for 10 s (so that one commit holds any loop made during the stand); the
+    settled answers are the same here, where the van stands 30 s mid-road and drives on,
+    and without stand_loops the stand is committed as it goes."""
+    road = [(float(x), 0.0) for x in range(0, 605, 5)]
+    net = network_from_roads([Road(road, way=7)])
+    fixes = ([(30.0 + 10.0 * i, 2.0) for i in range(18)] + [(200.0, 2.0)] * 30
+             + [(200.0 + 10.0 * i, 2.0) for i in range(1, 30)])
+    emitted = []
+    for settings in (MatchSettings(), MatchSettings(stand_loops=False)):
+        tracker = Tracker(net, "van9", settings)
+        at: list[int] = []
+        done: list[Commit] = []
+        for i, (x, y) in enumerate(fixes):
+            new = [e for e in tracker.update(Fix("van9", float(i), 0.0, 0.0, x, y, 5.0))
+                   if isinstance(e, Commit)]
+            at += [i] * len(new)
+            done += new
+        emitted.append((at, _settled(done + [e for e in tracker.flush()
+                                              if isinstance(e, Commit)])))
+    # the stand: fixes 18-47 (the van stands from fix 17); it has stood 10 s from fix 27
+    assert not [i for i in emitted[0][0] if 28 <= i <= 57]
+    assert [i for i in emitted[1][0] if 28 <= i <= 57]
+    assert emitted[0][1] == emitted[1][1]
