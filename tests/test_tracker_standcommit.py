@@ -122,17 +122,17 @@ def test_tracker_stand_loops_survives_a_restore() -> None:
     assert restored.flush() == straight.flush()
 
 
-def test_tracker_stand_loops_waits_to_commit_until_after_a_stand() -> None:
-    """Candidates that agree while the vehicle stands are committed only once it has
-    moved off for 10 s (so that one commit holds any loop made during the stand); the
-    settled answers are the same here, where the van stands 30 s mid-road and drives on,
-    and without stand_loops the stand is committed as it goes."""
+def test_tracker_stand_commit_wait_waits_until_after_a_stand() -> None:
+    """With stand_commit_wait, candidates that agree while the vehicle stands are
+    committed only once it has moved off for 10 s (so that one commit holds any loop made
+    during the stand); the settled answers are the same here, where the van stands 30 s
+    mid-road and drives on, and by default the stand is committed as it goes."""
     road = [(float(x), 0.0) for x in range(0, 605, 5)]
     net = network_from_roads([Road(road, way=7)])
     fixes = ([(30.0 + 10.0 * i, 2.0) for i in range(18)] + [(200.0, 2.0)] * 30
              + [(200.0 + 10.0 * i, 2.0) for i in range(1, 30)])
     emitted = []
-    for settings in (MatchSettings(), MatchSettings(stand_loops=False)):
+    for settings in (MatchSettings(stand_commit_wait=True), MatchSettings()):
         tracker = Tracker(net, "van9", settings)
         at: list[int] = []
         done: list[Commit] = []

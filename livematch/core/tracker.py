@@ -838,7 +838,7 @@ class Tracker:
     def _into_stand(self, t: float) -> bool:
         """Whether an agreed commit waits because the vehicle stood until lately.
 
-        With ``stand_loops`` (and ``stop_turns``, which keeps ``stood_t``, the last time
+        With ``stand_commit_wait`` (and ``stop_turns``, which keeps ``stood_t``, the last time
         the fixes had stood within ``STAND_SIGMAS`` x ``sigma_m`` for ``STAND_S``
         seconds), candidates that agree are not committed until ``STAND_AFTER_S``
         seconds after a stand: while the vehicle stands, the candidates may all descend
@@ -846,7 +846,7 @@ class Tracker:
         the vehicle leaves, and :meth:`_close_stand_loops` can cut such a loop out only
         when one commit holds the whole of it. Forced commits (``max_lag_*``) still go on.
         """
-        return (self.settings.stand_loops and self.stood_t is not None
+        return (self.settings.stand_commit_wait and self.stood_t is not None
                 and t - self.stood_t <= STAND_AFTER_S)
 
     def _stood_lately(self, fix: Fix, prev_t: float | None) -> bool:
