@@ -1057,7 +1057,9 @@ class Tracker:
         back to it by a loop that holds a U-turn, and the fixes matched inside the loop
         (at least one) span at least ``STAND_S`` seconds and all lie within ``eps`` of
         V, those fixes are committed at V (the end of the segment the path came in by)
-        and the loop is left out of the path.
+        and the loop is left out of the path. Loops are taken innermost first (from the
+        latest earlier pass through V), and one that overlaps a loop already cut out is
+        left as it is, so the fixes go to the vertex nearest where the vehicle stood.
 
         Why: while a vehicle stands at a junction or a stop, its GNSS error leans to one
         side for tens of seconds. The path cost charges every fix its distance as if the
