@@ -150,6 +150,24 @@ class MatchSettings:
             random walk and by 0.6-0.8 on routed trips (Helsinki, seed 31); final and live
             answers unchanged but for a fix or two whose stretch now starts at a break
             (docs/measured.md, "Session 8: sparse15").
+        stand_loops: a committed path that leaves a vertex and comes back to it by a
+            loop holding a U-turn, while the fixes matched inside the loop span at least
+            10 s and all lie within eps of that vertex, is committed as standing at the
+            vertex (:meth:`livematch.core.tracker.Tracker._close_stand_loops`; the
+            certificate still holds). While a vehicle stands at a junction its GNSS error
+            leans to one side for tens of seconds, and the path cost, which counts each
+            fix's error as independent, lets "into a short branch on that side, U-turn at
+            its end, back" beat standing at the junction; once the vehicle leaves, every
+            candidate descends from that detour. A loop the fixes do not show is no
+            evidence of movement. Live answers are unaffected.
+        stand_commit_wait: candidates that agree are not committed until 10 s after the
+            vehicle last stood (needs ``stop_turns``; :meth:`livematch.core.tracker.
+            Tracker._into_stand`), so that one commit holds the whole of a loop made
+            during a stand and ``stand_loops`` can cut it out (a commit made mid-stand
+            can end inside the branch). Off by default: on 40 routed-trip drives at 1 s
+            (Helsinki, seeds 31 / 77) it added 0.45 / 0.25 points of final accuracy to
+            ``stand_loops`` but moved the live answer by -0.23 / +0.03 points (the live
+            score looks back to the last commit, which now lies further back).
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -178,6 +196,8 @@ class MatchSettings:
     stand_hold: bool = True
     pace_reach: bool = True
     join_detour: float = 2.0
+    stand_loops: bool = True
+    stand_commit_wait: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -207,7 +227,7 @@ class MatchSettings:
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))
         for name in ("street_turns", "stop_turns", "stand_wait", "stand_hold",
-                     "pace_reach"):
+                     "pace_reach", "stand_loops", "stand_commit_wait"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

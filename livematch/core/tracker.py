@@ -50,6 +50,9 @@ How it decides
   ``SPARSE_S`` between fixes, else lowest path cost; see :mod:`livematch.core.sweep`) is
   committed up to half the lag and the candidates that
   disagree with it are dropped; so state stays bounded whatever the trip length.
+  With ``stand_loops``, a loop out of a vertex and back into it that the fixes inside it
+  do not show (a stand within eps of the vertex, :meth:`Tracker._close_stand_loops`) is
+  committed as standing at the vertex.
   Consecutive committed stretches are joined by a shortest route no longer than the
   vehicle could drive in the time between them nor (``join_detour``) than twice the
   straight distance between them plus slack (:meth:`Tracker._join_limit`), else the
@@ -908,7 +911,8 @@ class Tracker:
                     level.cut = self.next_commit - 1
                 else:
                     top = tree.commit_point(self.next_commit, newest)
-                if top >= 0 and not self._defers(level, top, covering):
+                if (top >= 0 and not self._defers(level, top, covering)
+                        and not self._into_stand(t)):
                     self._commit_chain(tree, top, events, prune=None)
                     covering = self._covering()
                     progressed = True
@@ -941,6 +945,20 @@ class Tracker:
             del times[stale]
             stale -= 1
         self._trim(seq, t)
+
+    def _into_stand(self, t: float) -> bool:
+        """Whether an agreed commit waits because the vehicle stood until lately.
+
+        With ``stand_commit_wait`` (and ``stop_turns``, which keeps ``stood_t``, the last time
+        the fixes had stood within ``STAND_SIGMAS`` x ``sigma_m`` for ``STAND_S``
+        seconds), candidates that agree are not committed until ``STAND_AFTER_S``
+        seconds after a stand: while the vehicle stands, the candidates may all descend
+        from a state inside a short branch that the path comes back out of only when
+        the vehicle leaves, and :meth:`_close_stand_loops` can cut such a loop out only
+        when one commit holds the whole of it. Forced commits (``max_lag_*``) still go on.
+        """
+        return (self.settings.stand_commit_wait and self.stood_t is not None
+                and t - self.stood_t <= STAND_AFTER_S)
 
     def _stood_lately(self, fix: Fix, prev_t: float | None) -> bool:
         """Whether the vehicle stood still until at most ``STAND_AFTER_S`` before ``prev_t``.
@@ -1086,6 +1104,8 @@ class Tracker:
         chain, before = tree.chain(self._view, row, self.next_commit)
         if not chain:
             return
+        if self.settings.stand_loops and before is not None and len(chain) >= 2:
+            chain = self._close_stand_loops(chain, before, self._eps_of(tree))
         top = chain[-1]
         view = self._view
         first = chain[0]
@@ -1129,6 +1149,133 @@ class Tracker:
         self.last_commit = (top.seg, top.pos, top.seq, top.t)
         if prune is not None:
             prune.tree.prune(row)
+
+    def _eps_of(self, tree: CandidateTree) -> float:
+        """The eps of the level whose tree is ``tree``, in metres.
+
+        A tree no level holds any more (a salvaged one) gets the smallest eps: the
+        smaller the radius, the stricter :meth:`_close_stand_loops` is.
+        """
+        for level in self.levels:
+            if level.tree is tree:
+                return level.eps
+        return self.levels[0].eps
+
+    def _close_stand_loops(self, chain: list[Node], before: Node, eps: float) -> list[Node]:
+        """``chain`` with each out-and-back loop made while the vehicle stood cut out.
+
+        Rule (``MatchSettings.stand_loops``): where the path leaves a vertex V and comes
+        back to it by a loop that holds a U-turn, and the fixes matched inside the loop
+        (at least one) span at least ``STAND_S`` seconds and all lie within ``eps`` of
+        V, those fixes are committed at V (the end of the segment the path came in by)
+        and the loop is left out of the path. Loops are taken innermost first (from the
+        latest earlier pass through V), and one that overlaps a loop already cut out is
+        left as it is, so the fixes go to the vertex nearest where the vehicle stood.
+
+        Why: while a vehicle stands at a junction or a stop, its GNSS error leans to one
+        side for tens of seconds. The path cost charges every fix its distance as if the
+        errors were independent, so a short branch on that side ("in, U-turn at its end,
+        back": one U-turn, the same charge as turning round at V itself) beats standing
+        at V by about 1.6 per fix over a minute's stand, and once the vehicle leaves,
+        every candidate descends from the detour. Going into a branch and back needs
+        movement that fixes within eps of one point over ``STAND_S`` seconds do not show.
+
+        The certificate still holds: the path before V and after it are unchanged; the
+        trace piece that the original path matched up to V keeps that matching, and every
+        point of the trace from there until the path was back at V lies within eps of V
+        (the fixes inside the loop do, checked here, the points the original matching put
+        at V do, and a disc is convex), so it is matched to the point V.
+
+        Example (no U-turn in the path: the chain is returned as it is):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "v1")
+            >>> a = Node(0, 1, 0.0, 0.1, 10.0, 0.0, None, (), 0.0, 0.0)
+            >>> b = Node(0, 2, 1.0, 0.2, 20.0, 0.0, a, (), 0.0, 0.0)
+            >>> tracker._close_stand_loops([b], a, 15.0) == [b]
+            True
+        """
+        view = self._view
+        twin = view.twin
+        # the path as a list of segments; owner[i]: the chain index of the node whose
+        # step entered segs[i] (-1: the node before the chain)
+        segs = [before.seg]
+        owner = [-1]
+        turns = False
+        for k, node in enumerate(chain):
+            for seg in _steps(segs[-1], node):
+                turns = turns or seg == twin[segs[-1]]
+                segs.append(seg)
+                owner.append(k)
+        if not turns:
+            return chain
+        # at[k]: node k sits on segs[at[k]]
+        at = [0] * len(chain)
+        for i, k in enumerate(owner):
+            if k >= 0:
+                at[k] = i
+        for k in range(1, len(chain)):
+            at[k] = max(at[k], at[k - 1])
+        sf = view.sf
+        seq0 = self.fix_seq0
+        xy = self.fix_xy
+        radius2 = eps * eps
+        removed = [False] * len(segs)
+        moved: dict[int, int] = {}  # node -> the vertex it is now committed at
+        last_pass: dict[int, int] = {}  # vertex -> latest index of segs entered from it
+        free = 1  # loops begin at or after this index (none overlaps one closed before)
+        for j in range(1, len(segs)):
+            vertex = sf[segs[j]]
+            i = last_pass.get(vertex, -1)
+            last_pass[vertex] = j
+            # the innermost loop closing here: from the latest pass through this vertex
+            if i < free or owner[j] <= owner[i]:
+                continue
+            first, last = owner[i], owner[j]  # nodes first .. last - 1 lie inside
+            if chain[last - 1].t - chain[first].t < STAND_S:
+                continue
+            if not any(segs[m + 1] == twin[segs[m]] for m in range(i, j - 1)):
+                continue
+            vx = view.vx[vertex]
+            vy = view.vy[vertex]
+            inside = True
+            for k in range(first, last):
+                r = chain[k].seq - seq0
+                if not 0 <= r < self.fix_n:
+                    inside = False
+                    break
+                dx = xy.item(r, 0) - vx
+                dy = xy.item(r, 1) - vy
+                if dx * dx + dy * dy > radius2:
+                    inside = False
+                    break
+            if not inside:
+                continue
+            for m in range(i, j):
+                removed[m] = True
+            for k in range(first, last):
+                moved[k] = vertex
+                at[k] = i - 1
+            free = j
+        if not moved:
+            return chain
+        out: list[Node] = []
+        parent: Node | None = before
+        prev_at = 0
+        for k, node in enumerate(chain):
+            here = at[k]
+            via = tuple(segs[m] for m in range(prev_at + 1, here) if not removed[m])
+            if k in moved:
+                v = moved[k]
+                node = Node(segs[here], node.seq, node.t, 1.0, view.vx[v], view.vy[v],
+                            parent, via, node.cost, 1.0)
+            else:
+                node.parent = parent
+                node.via = via
+            out.append(node)
+            parent = node
+            prev_at = here
+        return out
 
     def _join_limit(self, dt: float, straight: float = math.inf) -> float:
         """Longest route (metres) that may join two committed stretches ``dt`` seconds apart.
