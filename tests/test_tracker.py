@@ -177,17 +177,21 @@ def noisy_drive(seed: int, n_legs: int = 8) -> tuple[RoadNetwork, list[Fix]]:
     return net, fixes_along([(x + dx, y + dy) for (x, y), (dx, dy) in zip(pts, noise, strict=True)])
 
 
+@pytest.mark.parametrize("compress", [False, True])
 @pytest.mark.parametrize("cut", [1, 7, 40, 95])
-def test_tracker_restore_mid_trip_gives_identical_outputs(cut: int) -> None:
-    """Serialise after `cut` fixes, restore, continue: the events equal an uninterrupted run."""
+def test_tracker_restore_mid_trip_gives_identical_outputs(cut: int, compress: bool) -> None:
+    """Serialise after `cut` fixes (either encoding), restore, continue: the events equal
+    an uninterrupted run."""
     net, fixes = noisy_drive(seed=cut)
     settings = MatchSettings(max_lag_fixes=20)
     straight = Tracker(net, "v1", settings)
     whole = run(straight, fixes)
     first = Tracker(net, "v1", settings)
     before = run(first, fixes[:cut], flush=False)
-    blob = first.to_bytes()
+    blob = first.to_bytes(compress=compress)
+    assert blob[:5] == b"LMT4" + (b"\x01" if compress else b"\x00")
     restored = Tracker.from_bytes(net, settings, blob)
+    assert restored.to_bytes() == first.to_bytes()
     after = run(restored, fixes[cut:])
     assert before + after == whole
     assert restored.to_bytes() == straight.to_bytes()
