@@ -128,9 +128,12 @@ class RouteChain:
         self.backward = _chain_network(self.points[::-1].copy(), self.closed, projection)
         self.forward_view: NetworkView = view_of(self.forward)
         self.backward_view: NetworkView = view_of(self.backward)
-        # the compiled window step's arrays (read-only chain, scratch grown on demand)
+        # the compiled window step's arrays (read-only chain, scratch grown on demand),
+        # the scratch started small (_CHAIN_SCRATCH)
         self.forward_arrays = sweep_arrays(self.forward_view)
         self.backward_arrays = sweep_arrays(self.backward_view)
+        self.forward_arrays.resize(*_CHAIN_SCRATCH)
+        self.backward_arrays.resize(*_CHAIN_SCRATCH)
         self.cum_forward: list[float] = _cumulative(self.forward.seg_len)
         self.cum_backward: list[float] = _cumulative(self.backward.seg_len)
         self._len_forward: list[float] = self.forward.seg_len.tolist()
@@ -163,6 +166,14 @@ class RouteChain:
         return float(shapely.get_x(p)), float(shapely.get_y(p))
 
 
+#: Starting capacities of a route chain's sweep scratch (heap entries, vias, output rows,
+#: offers; :meth:`~livematch.core.fastsweep.SweepArrays.resize`). The sweep kernel's
+#: defaults are sized for a city network's shared scratch (about 260 KB per network); a
+#: chain has two of its own per route, and a window holds a handful of states, so those
+#: defaults cost half a megabyte per loaded route and spread every step's few writes over
+#: dozens of memory pages. A step that needs more reports an overflow and the monitor
+#: grows the scratch and steps again (:meth:`_Window.grow`): room changes no answer.
+_CHAIN_SCRATCH = (64, 256, 64, 128)
 #: The window's cost weights (1 / (2 sigma^2) with sigma 5 m, 1 / beta with beta 10 m, no
 #: turn-back or motion cost; :meth:`_Window.best` breaks ties by cost).
 _WINDOW_WEIGHTS = _rk.WINDOW_WEIGHTS
@@ -272,11 +283,15 @@ class _Window:
             self.fixes = 1 if k else 0
         else:
             self.fixes += 1
-            if (len(self.w) > _SHRINK_LEN and 2 * k <= _KEEP_ROWS
-                    and self.fixes >= _SETTLED_FIXES):
-                self.w = self.w[:1 + _rk.ROW * _KEEP_ROWS].copy()
+            if len(self.w) > _SHRINK_LEN:
+                self.settle()
         self.seq = seq
         self.t = t
+
+    def settle(self) -> None:
+        """Give room back (keep :data:`_KEEP_ROWS`) once a grown window has settled."""
+        if 2 * self.k <= _KEEP_ROWS and self.fixes >= _SETTLED_FIXES:
+            self.w = self.w[:1 + _rk.ROW * _KEEP_ROWS].copy()
 
     def to_state(self) -> list[Any]:
         return [self.start_t if math.isfinite(self.start_t) else None, self.fixes,
@@ -371,16 +386,39 @@ class RouteMonitor:
         k, fresh, most, seg, pos, bk, bfresh, bmost, bseg, bpos = _rk.route_advance(
             fa.netf, fa.neti, fa.fbuf, fa.ibuf, ba.netf, ba.neti, ba.fbuf, ba.ibuf,
             fwd.w, rev.w, eps, x0, y0, x, y, step_m)
-        if k >= 0:
-            fwd.done(k, fresh, most, seg, pos, self.seq, fix.t)
-        else:  # an overflow: grow, then one window at a time (the scalars as an array)
-            fwd.grow(fa, k, fresh)
-            fwd.step(fa, _step_scalars(eps, x0, y0, x, y, step_m), self.seq, fix.t)
-        if bk >= 0:
-            rev.done(bk, bfresh, bmost, bseg, bpos, self.seq, fix.t)
+        seq = self.seq
+        t = fix.t
+        if k >= 0 and not fresh and bk >= 0 and not bfresh:
+            # both windows swept on (most fixes): _Window.done of each, written out
+            fwd.k = k
+            fwd.most = most
+            fwd.best_seg = seg
+            fwd.best_pos = pos
+            fwd.fixes += 1
+            if len(fwd.w) > _SHRINK_LEN:
+                fwd.settle()
+            fwd.seq = seq
+            fwd.t = t
+            rev.k = bk
+            rev.most = bmost
+            rev.best_seg = bseg
+            rev.best_pos = bpos
+            rev.fixes += 1
+            if len(rev.w) > _SHRINK_LEN:
+                rev.settle()
+            rev.seq = seq
+            rev.t = t
         else:
-            rev.grow(ba, bk, bfresh)
-            rev.step(ba, _step_scalars(eps, x0, y0, x, y, step_m), self.seq, fix.t)
+            if k >= 0:
+                fwd.done(k, fresh, most, seg, pos, seq, t)
+            else:  # an overflow: grow, then one window at a time (the scalars as an array)
+                fwd.grow(fa, k, fresh)
+                fwd.step(fa, _step_scalars(eps, x0, y0, x, y, step_m), seq, t)
+            if bk >= 0:
+                rev.done(bk, bfresh, bmost, bseg, bpos, seq, t)
+            else:
+                rev.grow(ba, bk, bfresh)
+                rev.step(ba, _step_scalars(eps, x0, y0, x, y, step_m), seq, t)
         self.trail_m += step_m  # reset at every on-route fix (the anchor)
         alerts: list[Alert] = []
         if fwd.k > 0:  # fwd.live
