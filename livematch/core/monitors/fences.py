@@ -67,6 +67,9 @@ class Fence:
         return self.groups is not None and not self.groups.isdisjoint(groups)
 
 
+#: ``code == INSIDE`` for a probe's location codes (a C call per fence, no Python frame).
+_IS_INSIDE = _fk.INSIDE.__eq__
+
 GRID_CELL_M = 250.0  # side of a cell of the fence grid, metres
 GRID_MAX_CELLS = 4096  # a fence covering more cells is tested at every fix instead
 
@@ -190,7 +193,7 @@ class FenceSet:
             return [], []
         if n > 0:  # every answer certain
             rows = self._out[:3 * n].tolist()
-            return rows[0::3], [v == _fk.INSIDE for v in rows[2::3]]
+            return rows[0::3], list(map(_IS_INSIDE, rows[2::3]))
         rows = self._out[:-3 * n].tolist()
         n = -n
         near: list[int] = []
@@ -301,7 +304,15 @@ class FenceMonitor:
         # every fence watches every vehicle; then the probe's lists are the answer.
         todo: Iterable[tuple[int, bool]] = zip(near, near_inner, strict=True)
         outer: Collection[int] | None = None
-        if fences.filtered or (state and not _all_near(state, fences.index, near)):
+        general = fences.filtered
+        if not general and state:
+            index = fences.index
+            for k in state:  # _all_near, written out (it runs at nearly every fix)
+                i = index.get(k)
+                if i is None or i not in near:
+                    general = True
+                    break
+        if general:
             todo, outer = _todo(state, fences, fix, x, y, groups, near, near_inner)
         alerts: list[Alert] = []
         ids = fences.ids
@@ -350,16 +361,6 @@ class FenceMonitor:
         m = cls()
         m.state = {k: list(v) for k, v in state.items()}
         return m
-
-
-def _all_near(state: Mapping[str, list[Any]], index: Mapping[str, int],
-              near: list[int]) -> bool:
-    """Whether every fence of ``state`` is loaded and among the ``near`` ones."""
-    for k in state:
-        i = index.get(k)
-        if i is None or i not in near:
-            return False
-    return True
 
 
 def _todo(state: dict[str, list[Any]], fences: FenceSet, fix: Fix, x: float, y: float,
