@@ -712,6 +712,43 @@ def test_route_window_gives_back_room_without_changing_answers(monkeypatch):
     assert given_back == kept
 
 
+def test_route_monitor_answers_do_not_depend_on_scratch_room():
+    """A route chain's sweep scratch starts small and grows on overflow; the answers are
+    those of scratch with the sweep kernel's default room (a city network's), alert for
+    alert and state for state, on a drive along a comb of parallel legs, backwards along
+    it (wrong direction), off the route and back on. Scratch of one slot each makes the
+    growth path run on the first sweep of each window (forward and reversed)."""
+    from livematch.core import fastsweep
+    from livematch.core.monitors import route
+
+    comb = [(0.0, 0.0), (300.0, 0.0), (300.0, 30.0), (0.0, 30.0), (0.0, 60.0), (300.0, 60.0)]
+    path = along(comb, 12.0)
+    detour = [(300.0, 60.0 + 10.0 * k) for k in range(1, 30)]  # 290 m away, 29 s
+    drive = [*path, *path[::-1], *detour, *detour[::-1], *path]
+    rng = np.random.default_rng(5)
+    drive = [(x + rng.normal(0.0, 4.0), y + rng.normal(0.0, 4.0)) for x, y in drive]
+
+    def run(caps: tuple[int, int, int, int]) -> tuple[list[object], RouteChain]:
+        c = chain(comb)
+        assert c.forward_arrays.cap_h == route._CHAIN_SCRATCH[0]  # starts small
+        c.forward_arrays.resize(*caps)
+        c.backward_arrays.resize(*caps)
+        m = RouteMonitor("r", c, SETTINGS)
+        seen: list[object] = []
+        for i, (x, y) in enumerate(drive):
+            seen.append([(a.alert_kind, a.facts) for a in m.update(fix(i, x, y))])
+            seen.append(json.dumps(m.to_state()))
+        return seen, c
+
+    roomy, _ = run((fastsweep._START_ENTRIES, fastsweep._START_VIA, fastsweep._START_ROWS,
+                    fastsweep._START_OFFERS))
+    tiny, c = run((1, 1, 1, 1))
+    assert c.forward_arrays.cap_h > 1 and c.backward_arrays.cap_h > 1  # both grew
+    kinds = {k for step in roomy[0::2] for k, _ in step}  # type: ignore[attr-defined]
+    assert {"wrong_direction", "off_route", "on_route"} <= kinds
+    assert tiny == roomy
+
+
 def test_vehicle_alerts_fence_monitor_only_near_fences():
     """A vehicle holds a fence monitor only while it is in a fence or entering one; the
     alerts are those of a monitor kept all along."""
