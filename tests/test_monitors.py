@@ -717,7 +717,7 @@ def test_route_monitor_answers_do_not_depend_on_scratch_room():
     those of scratch with the sweep kernel's default room (a city network's), alert for
     alert and state for state, on a drive along a comb of parallel legs, backwards along
     it (wrong direction), off the route and back on. Scratch of one slot each makes the
-    growth path run on the first sweep of each window (forward and reversed)."""
+    growth path run (both windows sweep in one scratch, shared again after it grew)."""
     from livematch.core import fastsweep
     from livematch.core.monitors import route
 
@@ -731,8 +731,9 @@ def test_route_monitor_answers_do_not_depend_on_scratch_room():
     def run(caps: tuple[int, int, int, int]) -> tuple[list[object], RouteChain]:
         c = chain(comb)
         assert c.forward_arrays.cap_h == route._CHAIN_SCRATCH[0]  # starts small
+        assert c.backward_arrays.ibuf is c.forward_arrays.ibuf  # one scratch for both
         c.forward_arrays.resize(*caps)
-        c.backward_arrays.resize(*caps)
+        c.share_scratch()
         m = RouteMonitor("r", c, SETTINGS)
         seen: list[object] = []
         for i, (x, y) in enumerate(drive):
@@ -743,7 +744,8 @@ def test_route_monitor_answers_do_not_depend_on_scratch_room():
     roomy, _ = run((fastsweep._START_ENTRIES, fastsweep._START_VIA, fastsweep._START_ROWS,
                     fastsweep._START_OFFERS))
     tiny, c = run((1, 1, 1, 1))
-    assert c.forward_arrays.cap_h > 1 and c.backward_arrays.cap_h > 1  # both grew
+    assert c.forward_arrays.cap_h > 1  # grew
+    assert c.backward_arrays.ibuf is c.forward_arrays.ibuf  # and shared again
     kinds = {k for step in roomy[0::2] for k, _ in step}  # type: ignore[attr-defined]
     assert {"wrong_direction", "off_route", "on_route"} <= kinds
     assert tiny == roomy

@@ -221,14 +221,18 @@ def _entry_points(sweep_key: int) -> tuple[Callable[..., Any], Callable[..., Any
 
     @numba.njit(cache=True, error_model="numpy")
     def route_advance(
-        netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
-        bnetf: np.ndarray, bneti: np.ndarray, bfbuf: np.ndarray, bibuf: np.ndarray,
-        w: np.ndarray, bw: np.ndarray,
+        netf: np.ndarray, neti: np.ndarray, bnetf: np.ndarray, bneti: np.ndarray,
+        fbuf: np.ndarray, ibuf: np.ndarray, w: np.ndarray, bw: np.ndarray,
         eps: float, x0: float, y0: float, x1: float, y1: float, chord: float,
     ) -> tuple[int, int, float, int, float, int, int, float, int, float]:
         """:func:`window_advance` of the forward window ``w``, then of the reversed ``bw``.
 
         One call per fix instead of two (each call from Python pays numba's dispatch).
+        ``netf, neti`` are the forward chain's, ``bnetf, bneti`` the reversed chain's;
+        both steps use the one scratch ``fbuf, ibuf``: the two chains have the same
+        numbers of vertices and segments, so the same layout, and the sweep kernel
+        leaves its scratch as it found it (:mod:`livematch.core._sweep_kernel`), the
+        forward window's answer being read before the reversed one is swept.
         The step scalars come as numbers (``eps`` and the step from ``x0, y0`` to ``x1,
         y1``, ``chord`` metres long; the weights are :data:`WINDOW_WEIGHTS`): a numpy
         array built for them in Python cost more than the step's dispatch saves. The ten
@@ -250,7 +254,7 @@ def _entry_points(sweep_key: int) -> tuple[Callable[..., Any], Callable[..., Any
         k, fresh, most, seg, pos = _advance(netf, neti, fbuf, ibuf, ctx, w)
         if k < 0:
             return k, fresh, most, seg, pos, SKIPPED, 0, 0.0, -1, 0.0
-        bk, bfresh, bmost, bseg, bpos = _advance(bnetf, bneti, bfbuf, bibuf, ctx, bw)
+        bk, bfresh, bmost, bseg, bpos = _advance(bnetf, bneti, fbuf, ibuf, ctx, bw)
         return k, fresh, most, seg, pos, bk, bfresh, bmost, bseg, bpos
 
     return window_advance, route_advance
@@ -352,5 +356,6 @@ def warm_up() -> None:
     for x in (10.0, 20.0):
         ctx = np.array((40.0, x - 10.0, 0.0, x, 0.0, 10.0, *WINDOW_WEIGHTS))
         window_advance(*a, ctx, w)
-        route_advance(*a, *a, w, bw, 40.0, x - 10.0, 0.0, x, 0.0, 10.0)
+        route_advance(arrays.netf, arrays.neti, *a, w, bw, 40.0, x - 10.0, 0.0, x, 0.0,
+                      10.0)
     assert math.isfinite(w[1])

@@ -134,6 +134,7 @@ class RouteChain:
         self.backward_arrays = sweep_arrays(self.backward_view)
         self.forward_arrays.resize(*_CHAIN_SCRATCH)
         self.backward_arrays.resize(*_CHAIN_SCRATCH)
+        self.share_scratch()
         self.cum_forward: list[float] = _cumulative(self.forward.seg_len)
         self.cum_backward: list[float] = _cumulative(self.backward.seg_len)
         self._len_forward: list[float] = self.forward.seg_len.tolist()
@@ -143,6 +144,24 @@ class RouteChain:
         self.line = shapely.LineString(ring)
         shapely.prepare(self.line)
         self.projection = projection
+
+    def share_scratch(self) -> None:
+        """Give both chains the larger of their two scratch buffers.
+
+        :func:`~livematch.core.monitors._route_kernel.route_advance` sweeps both windows
+        in the forward chain's scratch (the chains have the same numbers of vertices and
+        segments, so the same layout); the reversed chain's own is used only by
+        :meth:`_Window.step` after an overflow, and is then grown on its own. Sharing
+        changes no answer: the sweep kernel leaves its scratch as it found it.
+        """
+        fa = self.forward_arrays
+        ba = self.backward_arrays
+        src, dst = (fa, ba) if fa.cap_h >= ba.cap_h else (ba, fa)
+        dst.fbuf = src.fbuf
+        dst.ibuf = src.ibuf
+        dst.cap_h, dst.cap_b, dst.cap_m, dst.cap_o = src.cap_h, src.cap_b, src.cap_m, src.cap_o
+        dst.out_f0 = src.out_f0
+        dst.out_i0 = src.out_i0
 
     def progress(self, segment: int, pos: float, backward: bool = False) -> float:
         """Metres from the route's start of position ``pos`` on chain ``segment``.
@@ -384,8 +403,8 @@ class RouteMonitor:
         fwd = self.fwd
         rev = self.rev
         k, fresh, most, seg, pos, bk, bfresh, bmost, bseg, bpos = _rk.route_advance(
-            fa.netf, fa.neti, fa.fbuf, fa.ibuf, ba.netf, ba.neti, ba.fbuf, ba.ibuf,
-            fwd.w, rev.w, eps, x0, y0, x, y, step_m)
+            fa.netf, fa.neti, ba.netf, ba.neti, fa.fbuf, fa.ibuf, fwd.w, rev.w,
+            eps, x0, y0, x, y, step_m)
         seq = self.seq
         t = fix.t
         if k >= 0 and not fresh and bk >= 0 and not bfresh:
@@ -419,6 +438,8 @@ class RouteMonitor:
             else:
                 rev.grow(ba, bk, bfresh)
                 rev.step(ba, _step_scalars(eps, x0, y0, x, y, step_m), seq, t)
+            if k < 0 or bk < 0:
+                chain.share_scratch()  # one of them grew: both sweep in the larger again
         self.trail_m += step_m  # reset at every on-route fix (the anchor)
         alerts: list[Alert] = []
         if fwd.k > 0:  # fwd.live
