@@ -82,17 +82,23 @@ def _best(w: np.ndarray, k: int) -> int:
 @numba.njit(cache=True, error_model="numpy", inline="always")
 def _advance(
     netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
-    ctx: np.ndarray, w: np.ndarray,
+    ctx: np.ndarray, w: np.ndarray, buf: np.ndarray,
 ) -> tuple[int, int, float, int, float]:
-    """:func:`window_advance`, inlined into the compiled callers."""
+    """:func:`window_advance`, inlined into the compiled callers.
+
+    ``buf``: scratch of at least ``N_CTX + (LIVE_STRIDE + 1) * k`` values for the sweep
+    kernel's ``live`` array and the live states' driven metres (one array the caller
+    allocates for both windows; ``ctx`` may be its first ``N_CTX`` values).
+    """
     cap = (w.shape[0] - 1) // ROW
     k = int(w[0])
     n_v = ibuf[0]
     n_e = ibuf[1]
     slen = netf[2 * n_v:2 * n_v + n_e]
     if k > 0:
-        live = np.empty(_k.N_CTX + _k.LIVE_STRIDE * k)
-        driven = np.empty(k)
+        n_live = _k.N_CTX + _k.LIVE_STRIDE * k
+        live = buf[:n_live]  # views: the kernel reads the number of states from the length
+        driven = buf[n_live:n_live + k]
         for j in range(_k.N_CTX):
             live[j] = ctx[j]
         for j in range(k):
@@ -217,7 +223,8 @@ def _entry_points(sweep_key: int) -> tuple[Callable[..., Any], Callable[..., Any
         """
         if sweep_key == -1:  # never: the key only has to be part of the function
             return SWEEP_OVERFLOW, 0, 0.0, -1, 0.0
-        return _advance(netf, neti, fbuf, ibuf, ctx, w)
+        buf = np.empty(_k.N_CTX + (_k.LIVE_STRIDE + 1) * int(w[0]))
+        return _advance(netf, neti, fbuf, ibuf, ctx, w, buf)
 
     @numba.njit(cache=True, error_model="numpy")
     def route_advance(
@@ -242,7 +249,11 @@ def _entry_points(sweep_key: int) -> tuple[Callable[..., Any], Callable[..., Any
         """
         if sweep_key == -1:  # never (see window_advance)
             return SWEEP_OVERFLOW, 0, 0.0, -1, 0.0, SKIPPED, 0, 0.0, -1, 0.0
-        ctx = np.empty(_k.N_CTX)
+        # one allocation for both windows: the step scalars, then each window's live
+        # states and driven metres in turn (_advance)
+        most_k = max(int(w[0]), int(bw[0]))
+        buf = np.empty(_k.N_CTX + (_k.LIVE_STRIDE + 1) * most_k)
+        ctx = buf[:_k.N_CTX]
         ctx[_k.C_EPS] = eps
         ctx[_k.C_X0] = x0
         ctx[_k.C_Y0] = y0
@@ -251,10 +262,10 @@ def _entry_points(sweep_key: int) -> tuple[Callable[..., Any], Callable[..., Any
         ctx[_k.C_CHORD] = chord
         for j in range(len(WINDOW_WEIGHTS)):
             ctx[_k.C_CHORD + 1 + j] = WINDOW_WEIGHTS[j]
-        k, fresh, most, seg, pos = _advance(netf, neti, fbuf, ibuf, ctx, w)
+        k, fresh, most, seg, pos = _advance(netf, neti, fbuf, ibuf, ctx, w, buf)
         if k < 0:
             return k, fresh, most, seg, pos, SKIPPED, 0, 0.0, -1, 0.0
-        bk, bfresh, bmost, bseg, bpos = _advance(bnetf, bneti, fbuf, ibuf, ctx, bw)
+        bk, bfresh, bmost, bseg, bpos = _advance(bnetf, bneti, fbuf, ibuf, ctx, bw, buf)
         return k, fresh, most, seg, pos, bk, bfresh, bmost, bseg, bpos
 
     return window_advance, route_advance
