@@ -35,7 +35,8 @@ checkpoint of each vehicle after every 20 of its fixes (``store.checkpoint_every
 by default), its time the "checkpoints" stage. The per-message figures still divide by
 the messages, so "checkpoints" is the checkpoint cost per fix.
 
-Also counts per message, the same on a busy machine (a count does not move with load):
+Also reports the sweep scratch each prepared route holds (KB, both chains; a size, the
+same on a busy machine), and counts per message (a count does not move with load):
 the compiled calls the tracker makes (each call pays numba's dispatch before any work),
 and, from one more run with counting wrappers only, the compiled calls and the shapely
 calls (each pays shapely's own per-call overhead, several µs) made inside the route
@@ -252,7 +253,26 @@ def count_calls(drives: list[Any], network: Any, stream: str = "drives") -> dict
     finally:
         for owner, name, original in reversed(undo):
             setattr(owner, name, original)
-    return {label: tally[m, k] / len(messages) for label, m, k in COUNTS}
+    out = {label: tally[m, k] / len(messages) for label, m, k in COUNTS}
+    out[SCRATCH] = route_scratch_kb(pipeline)
+    return out
+
+
+#: The row of :func:`route_scratch_kb`.
+SCRATCH = "route chains' sweep scratch per route after the run (KB)"
+
+
+def route_scratch_kb(pipeline: Any) -> float:
+    """KB of sweep scratch (``fbuf`` and ``ibuf`` of both chains, each buffer counted
+    once) per route prepared by the pipeline: memory every loaded route holds, and
+    that the route monitor's compiled step touches at every fix."""
+    chains = list(getattr(pipeline, "_chains", {}).values())
+    held: dict[int, int] = {}
+    for chain in chains:
+        for arrays in (chain.forward_arrays, chain.backward_arrays):
+            for buf in (arrays.fbuf, arrays.ibuf):
+                held[id(buf)] = buf.nbytes
+    return sum(held.values()) / 1024.0 / len(chains) if chains else 0.0
 
 
 def run(drives: list[Any], network: Any, wrapped: bool, clock_name: str = "wall",
@@ -339,6 +359,8 @@ def main(argv: list[str] | None = None) -> int:
                  + " | ".join(f"{r['compiled calls']:.2f}" for r in rows) + " |")
     for label, _, _ in COUNTS:
         lines.append(f"| {label} | " + " | ".join(f"{r[label]:.3f}" for r in rows) + " |")
+    if not fleet:
+        lines.append(f"| {SCRATCH} | " + " | ".join(f"{r[SCRATCH]:.0f}" for r in rows) + " |")
     text = "\n".join(lines) + "\n"
     print(text)
     out = Path(args.out)
