@@ -515,12 +515,13 @@ def tree_sweep(
     netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
     ctx: np.ndarray, ti: np.ndarray, tf: np.ndarray, seq: int, t: float,
     next_commit: int, newest: int,
-) -> int:
+) -> tuple[int, int, int]:
     """One sweep step of the live block; the new states are appended as the new live block.
 
     ``ctx`` holds the kernel's ``N_CTX`` step scalars; the tree's counts are read from
-    and written to its header (no counts pass through the call). Returns, after a step
-    whose window survived, the commit check: with ``newest`` >= 0 the
+    and written to its header (no counts are passed in). Returns ``(top, lo, hi)``:
+    the live block after the call, and ``top``, after a step whose window survived, the
+    commit check: with ``newest`` >= 0 the
     :func:`commit_point` of the new live block for ``next_commit`` and ``newest`` (what
     ``Tracker._settle`` asks next), else -1. Otherwise a code, with the tree unchanged:
     ``DIED`` (no state left), ``TREE_OVERFLOW`` (the kernel's buffers are too small), or
@@ -570,9 +571,9 @@ def tree_sweep(
         live[b + 6] = tf[rf + F_COST]
     m, n_via = sweep_kernel(netf, neti, live, fbuf, ibuf)
     if m < 0:
-        return TREE_OVERFLOW
+        return TREE_OVERFLOW, lo, hi
     if m == 0:
-        return DIED
+        return DIED, lo, hi
     cap_rows = tf.shape[0] // ROW_F
     cap_vias = ti.shape[0] - HEAD - ROW_I * cap_rows
     if n + m > cap_rows or nv + n_via > cap_vias:
@@ -586,10 +587,11 @@ def tree_sweep(
             ti[H_NVIA] = n_via
             ti[H_CAP_ROWS] = cap
             ti[H_CAP_VIAS] = kept_v + max(kept_v // 4, max(n_via, spare // 2))
-            return ARENA_FULL
+            return ARENA_FULL, lo, hi
         compact_in_place(ti, tf)
     tree_append(fbuf, ibuf, ti, tf, seq, t, m, n_via)
-    return commit_point(ti, next_commit, newest) if newest >= 0 else -1
+    top = commit_point(ti, next_commit, newest) if newest >= 0 else -1
+    return top, ti[H_LO], ti[H_HI]
 
 
 @numba.njit(cache=True, error_model="numpy")

@@ -253,8 +253,8 @@ def descends_from(ti: np.ndarray, node: int, anc: int) -> bool:
 
 
 @_jit
-def prune_live(ti: np.ndarray, tf: np.ndarray, anc: int) -> None:
-    """Keep, in order, the live rows descending from ``anc`` (the header's end moves).
+def prune_live(ti: np.ndarray, tf: np.ndarray, anc: int) -> int:
+    """Keep, in order, the live rows descending from ``anc``; returns the block's new end.
 
     Live rows are leaves, so moving them within the block breaks no back-pointer.
     """
@@ -269,6 +269,7 @@ def prune_live(ti: np.ndarray, tf: np.ndarray, anc: int) -> None:
                     tf[ROW_F * w + c] = tf[ROW_F * r + c]
             w += 1
     ti[H_HI] = w
+    return w
 
 
 @_jit
@@ -389,14 +390,14 @@ def _keyed_live_answer(sweep_key: int) -> Callable[..., tuple[int, int]]:
 live_answer = _keyed_live_answer(_SWEEP_KEY)
 
 
-def _keyed_trim(sweep_key: int) -> Callable[..., tuple[int, int]]:
+def _keyed_trim(sweep_key: int) -> Callable[..., tuple[int, int, int]]:
     """``trim`` compiled with the sweep kernel's :func:`code_key` as a constant."""
 
     @_jit
     def trim(
         ti: np.ndarray, tf: np.ndarray, next_commit: int, seq: int, trim_seq: int,
         max_lag: int, prefer: int,
-    ) -> tuple[int, int]:
+    ) -> tuple[int, int, int]:
         """Cut the history no future commit needs; force-prune a tree that stopped committing.
 
         Commits only ever read states from fix ``next_commit - 1`` on, so every back-pointer
@@ -406,11 +407,12 @@ def _keyed_trim(sweep_key: int) -> Callable[..., tuple[int, int]]:
         only the live states descending from the best one's ancestor ``max_lag`` fixes back
         are kept.
 
-        Returns ``(trim_seq, forced)``: the fix the history now starts at and the seq of
-        the state a forced prune kept (-1 if none). The live block's end is in the header.
+        Returns ``(trim_seq, forced, hi)``: the fix the history now starts at, the seq of
+        the state a forced prune kept (-1 if none) and the live block's end (also in the
+        header).
         """
         if sweep_key == -1:  # never (see junction_split)
-            return trim_seq, -1
+            return trim_seq, -1, -1
         cut = next_commit - 1
         cut_links(ti, cut)
         if cut > trim_seq:
@@ -420,9 +422,9 @@ def _keyed_trim(sweep_key: int) -> Callable[..., tuple[int, int]]:
             kept = int(ti[ROW_I * keep + K_SEQ])
             # before pruning: ``keep`` may be a live row that moves
             ti[ROW_I * keep + K_PARENT] = -1
-            prune_live(ti, tf, keep)
-            return kept, kept
-        return trim_seq, -1
+            hi = prune_live(ti, tf, keep)
+            return kept, kept, hi
+        return trim_seq, -1, int(ti[H_HI])
 
     return trim
 

@@ -84,18 +84,23 @@ class CandidateTree:
         ti: the header (counts), the rows' ints and the vias (int32; layout in
             :mod:`livematch.core._tree_kernel`).
         tf: the rows' floats (float64).
+        lo, hi: the live block (the newest fix's states, in the reference's dict order):
+            a copy of the header's, which the tracker reads many times a fix (a slot
+            costs a tenth of an array read from Python); every call that moves the block
+            hands the new bounds back.
 
-    The counts live in the header of ``ti`` (:attr:`n`, :attr:`nv`, :attr:`lo`,
-    :attr:`hi`), so a compiled call reads and updates them in place.
+    The counts live in the header of ``ti`` (:attr:`n`, :attr:`nv` and the live
+    block), so a compiled call reads and updates them in place.
     """
 
-    __slots__ = ("tf", "ti")
+    __slots__ = ("hi", "lo", "tf", "ti")
 
     def __init__(self) -> None:
         # zero-size arrays shared by every empty tree (nothing can be written into them:
         # rows are written only after a compaction has made arrays of this tree's own)
         self.ti: npt.NDArray[np.int32] = _NO_TI
         self.tf: npt.NDArray[np.float64] = _NO_TF
+        self.lo = self.hi = 0
 
     @property
     def n(self) -> int:
@@ -107,20 +112,15 @@ class CandidateTree:
         """Vias in use."""
         return self.ti.item(H_NV)
 
-    @property
-    def lo(self) -> int:
-        """First row of the live block (the newest fix's states, in the reference's order)."""
-        return self.ti.item(H_LO)
-
-    @property
-    def hi(self) -> int:
-        """End of the live block."""
-        return self.ti.item(H_HI)
-
     def __len__(self) -> int:
         """The number of live states."""
+        return self.hi - self.lo
+
+    def _synced(self) -> None:
+        """Copy the live block's bounds from the header (after a compiled call moved it)."""
         ti = self.ti
-        return ti.item(H_HI) - ti.item(H_LO)
+        self.lo = ti.item(H_LO)
+        self.hi = ti.item(H_HI)
 
     @property
     def cap_rows(self) -> int:
@@ -151,6 +151,7 @@ class CandidateTree:
         rows = max(spare_rows, 2 * len(self) + _MIN_SPARE)
         vias = max(spare_vias, rows // 2)  # most states have no via; a tree sweep asks for more
         self.ti, self.tf = _t.compact(self.ti, self.tf, rows, vias)
+        self._synced()
 
     def _compacted(self, cap_rows: int, cap_vias: int) -> None:
         """Compact into new numpy arrays of ``cap_rows`` rows and ``cap_vias`` vias.
@@ -164,6 +165,7 @@ class CandidateTree:
         tf = np.empty(ROW_F * cap_rows)
         _t.compact_into(self.ti, self.tf, ti, tf)
         self.ti, self.tf = ti, tf
+        self._synced()
 
     def shrink(self) -> None:
         """Keep only the rows still needed, with no room to spare (an idle tree)."""
@@ -196,9 +198,11 @@ class CandidateTree:
             # a tree whose arrays are full is compacted within them by the kernel
             ti = self.ti
             tf = self.tf
-            top: int = _t.tree_sweep(arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf, ctx,
-                                     ti, tf, seq, t, next_commit, newest)
+            top, lo, hi = _t.tree_sweep(arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf,
+                                        ctx, ti, tf, seq, t, next_commit, newest)
             if top >= DIED:  # a commit point (>= -1), or the window died
+                self.lo = lo
+                self.hi = hi
                 return top
             if top == _t.ARENA_FULL:
                 # the result waits in the kernel's buffers: compact into new arrays with
@@ -210,6 +214,7 @@ class CandidateTree:
                 top = _t.compact_append(ti, tf, ti2, tf2, arrays.fbuf, arrays.ibuf, seq, t,
                                         next_commit, newest)
                 self.ti, self.tf = ti2, tf2
+                self._synced()
                 return top
             arrays.grow()  # TREE_OVERFLOW: the kernel's buffers were too small
 
@@ -274,6 +279,8 @@ class CandidateTree:
         if ti is not _NO_TI:
             ti[H_LO] = lo
             ti[H_HI] = ti[H_N] = lo + k
+        self.lo = lo
+        self.hi = lo + k
 
     @classmethod
     def from_nodes(cls, live: dict[int, Node]) -> CandidateTree:
@@ -455,7 +462,7 @@ class CandidateTree:
     # ---------------------------------------------------------------- cutting
     def prune(self, row: int) -> None:
         """Keep only the live states descending from ``row``."""
-        _t.prune_live(self.ti, self.tf, row)
+        self.hi = _t.prune_live(self.ti, self.tf, row)
 
     def trim(self, next_commit: int, seq: int, trim_seq: int, max_lag: int,
              prefer: int) -> tuple[int, int]:
@@ -463,8 +470,9 @@ class CandidateTree:
 
         Returns the new trim point and the seq of the state a forced prune kept (-1).
         """
-        return _t.trim(self.ti, self.tf, next_commit, seq, trim_seq,
-                       max_lag, prefer)
+        trim_seq, forced, self.hi = _t.trim(self.ti, self.tf, next_commit, seq, trim_seq,
+                                            max_lag, prefer)
+        return trim_seq, forced
 
     def packed(self) -> CandidateTree:
         """A copy holding the rows still needed, tight (the live block is last).
@@ -478,6 +486,7 @@ class CandidateTree:
             out.ti = np.empty(HEAD + ROW_I * rows + vias, np.int32)
             out.tf = np.empty(ROW_F * rows)
             _t.compact_into(self.ti, self.tf, out.ti, out.tf)
+            out._synced()
         return out
 
     def parts(self) -> tuple[memoryview, memoryview, memoryview]:
@@ -510,6 +519,8 @@ class CandidateTree:
             buf[HEAD + ROW_I * rows:] = tv
             buf[:HEAD] = (rows, nv, rows - live, rows, 0, 0, 0, 0)
             tree.ti = buf
+            tree.lo = rows - live
+            tree.hi = rows
             # numpy's own flat array (a reshaped copy would keep its 2-d base alive)
             tree.tf = np.empty(ROW_F * rows)
             tree.tf[:] = np.asarray(tf, dtype=np.float64).reshape(-1)
