@@ -489,3 +489,27 @@ def test_tree_kernels_calling_the_sweep_kernel_are_keyed_on_its_code() -> None:
         closure = own[name].py_func.__closure__ or ()
         assert key in [c.cell_contents for c in closure], name
     assert sorted(callers) == ["junction_split", "live_answer", "trim"]
+
+
+@pytest.mark.parametrize("every", [1, 10])
+def test_live_block_bounds_kept_in_slots_agree_with_the_header(every: int) -> None:
+    """The live block's bounds the tree keeps in slots are the header's after every fix.
+
+    The compiled calls update the header of ``ti``; the tracker reads the copies. Also
+    every count lies within the arrays' room.
+    """
+    net = osm("Helsinki")
+    tracker = Tracker(net, "v", MatchSettings())
+    checked = 0
+    for fix in drive(net, 11, every, 300.0):
+        tracker.update(fix)
+        trees = [lv.tree for lv in tracker.levels]
+        if tracker.before is not None:
+            trees += [lv.tree for lv in tracker.before.levels]
+        for tree in trees:
+            head = tree.ti[:_t.HEAD].tolist()
+            assert (tree.lo, tree.hi) == (head[_t.H_LO], head[_t.H_HI])
+            assert 0 <= tree.lo <= tree.hi <= tree.n <= tree.cap_rows
+            assert 0 <= tree.nv <= tree.cap_vias
+            checked += 1
+    assert checked > 100
