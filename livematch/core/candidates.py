@@ -3,7 +3,8 @@
 The tree of back-pointers (:mod:`livematch.core.sweep`) changes on every fix: each live
 state of the new fix is a new node. Kept as Python objects, building those nodes costs
 more than the compiled sweep that computes them, and each costs a few hundred bytes.
-:class:`CandidateTree` keeps the nodes as rows of three arrays instead (layout in
+:class:`CandidateTree` keeps the nodes as rows of two flat arrays instead, the ints (with
+the tree's counts in a header, and the vias) and the floats (layout in
 :mod:`livematch.core._tree_kernel`): the sweep kernel's output rows are appended as they
 are, the newest fix's states are one block of rows, and every operation the tracker needs
 on the tree (best leaf, deepest common ancestor, pruning, trimming, the chain a commit
