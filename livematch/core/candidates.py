@@ -76,6 +76,7 @@ _MIN_SPARE = MIN_SPARE  # rows (and vias) of room left after a compaction, at le
 # into it (rows are written only after a compaction has made arrays of the tree's own)
 _NO_TI: npt.NDArray[np.int32] = np.zeros(HEAD, np.int32)
 _NO_TF: npt.NDArray[np.float64] = np.empty(0)
+_NO_BYTES = memoryview(b"")
 
 
 class CandidateTree:
@@ -490,6 +491,21 @@ class CandidateTree:
             out._synced()
         return out
 
+    def packed_parts(self) -> tuple[int, int, int, tuple[memoryview, memoryview, memoryview]]:
+        """The state of :meth:`packed` without the tree: rows, vias, live states, :meth:`parts`.
+
+        (A checkpoint writes every level's tree this way: no tree object is made.)
+        """
+        if not self.ti.item(H_N):
+            return 0, 0, 0, (_NO_BYTES, _NO_BYTES, _NO_BYTES)
+        rows, vias = _t.kept_rows(self.ti)
+        ti = np.empty(HEAD + ROW_I * rows + vias, np.int32)
+        tf = np.empty(ROW_F * rows)
+        _t.compact_into(self.ti, self.tf, ti, tf)
+        flat = ti.data
+        end = HEAD + ROW_I * rows
+        return rows, vias, self.hi - self.lo, (flat[HEAD:end], tf.data, flat[end:])
+
     def parts(self) -> tuple[memoryview, memoryview, memoryview]:
         """The rows' ints, the rows' floats and the vias in use, as buffers.
 
@@ -505,26 +521,31 @@ class CandidateTree:
     @classmethod
     def unpacked(cls, ti: npt.NDArray[np.int32], tf: npt.NDArray[np.float64],
                  tv: npt.NDArray[np.int32], live: int) -> CandidateTree:
-        """The tree of rows ``ti`` (rows x ``ROW_I``), ``tf`` (rows x ``ROW_F``), vias ``tv``.
+        """The tree of ``rows`` rows: their ints ``ti``, floats ``tf`` and the vias ``tv``.
 
+        ``ti`` and ``tf`` flat (``ROW_I`` / ``ROW_F`` values a row) or one row a line.
         Copied into arrays of the tree's own (so read-only buffers will do), exactly as
         long as needed; the live block is the last ``live`` rows. An empty tree shares
         the module's empty header instead of holding arrays of its own.
         """
         tree = cls()
-        rows = len(ti)
+        rows = len(tf) if tf.ndim == 2 else len(tf) // ROW_F
         if rows:
             nv = len(tv)
-            buf = np.empty(HEAD + ROW_I * rows + nv, np.int32)
-            buf[HEAD:HEAD + ROW_I * rows] = ti.reshape(-1)
-            buf[HEAD + ROW_I * rows:] = tv
-            buf[:HEAD] = (rows, nv, rows - live, rows, 0, 0, 0, 0)
+            end = HEAD + ROW_I * rows
+            buf = np.zeros(end + nv, np.int32)  # the header's other slots 0
+            buf[HEAD:end] = ti.reshape(-1)
+            buf[end:] = tv
+            buf[H_N] = rows
+            buf[H_NV] = nv
+            buf[H_LO] = tree.lo = rows - live
+            buf[H_HI] = tree.hi = rows
             tree.ti = buf
-            tree.lo = rows - live
-            tree.hi = rows
-            # numpy's own flat array (a reshaped copy would keep its 2-d base alive)
-            tree.tf = np.empty(ROW_F * rows)
-            tree.tf[:] = np.asarray(tf, dtype=np.float64).reshape(-1)
+            if tf.ndim == 1:
+                tree.tf = np.array(tf, dtype=np.float64)
+            else:  # numpy's own flat array (a reshaped copy would keep its 2-d base alive)
+                tree.tf = np.empty(ROW_F * rows)
+                tree.tf[:] = tf.reshape(-1)
         return tree
 
     def rows(self, view: NetworkView) -> list[Node]:

@@ -1531,15 +1531,15 @@ def _pack_levels(levels: list[Level],
                  arrays: list[bytes | memoryview]) -> list[list[float | int]]:
     """The header rows of ``levels`` for :meth:`Tracker.to_bytes`; their arrays go to ``arrays``.
 
-    The arrays' buffers (the parts of tight copies from :meth:`CandidateTree.packed`),
-    not copies of their bytes: ``bytes.join`` reads them.
+    The arrays' buffers (the parts of tight copies,
+    :meth:`CandidateTree.packed_parts`), not copies of their bytes: ``bytes.join`` reads
+    them.
     """
     rows: list[list[float | int]] = []
     for lv in levels:
-        tree = lv.tree.packed()
-        rows.append([lv.eps, lv.tree_seq, lv.cert_seq, lv.cert_t, lv.trim_seq,
-                     tree.n, tree.nv, len(tree)])
-        arrays += tree.parts()
+        n, nv, live, parts = lv.tree.packed_parts()
+        rows.append([lv.eps, lv.tree_seq, lv.cert_seq, lv.cert_t, lv.trim_seq, n, nv, live])
+        arrays += parts
     return rows
 
 
@@ -1564,10 +1564,12 @@ def _unpack_levels(levels: list[Level], rows: list[list[float | int]], rest: mem
         if nr < 0 or nv < 0 or nxt > end:
             raise BadStateError("corrupt tracker state: candidate tree cut short")
         if nr:
-            ti = np.frombuffer(rest, np.int32, nr * ROW_I, at).reshape(nr, ROW_I)
-            tf = np.frombuffer(rest, np.float64, nr * row_f, at_f).reshape(nr, row_f)
+            ti = np.frombuffer(rest, np.int32, nr * ROW_I, at)
+            tf = np.frombuffer(rest, np.float64, nr * row_f, at_f)
             tv = np.frombuffer(rest, np.int32, nv, at_v)
-            lv.tree = CandidateTree.unpacked(ti, tf[:, _V2_KEPT] if v2 else tf, tv, int(live))
+            if v2:
+                tf = tf.reshape(nr, row_f)[:, _V2_KEPT]
+            lv.tree = CandidateTree.unpacked(ti, tf, tv, int(live))
         else:
             lv.tree = CandidateTree()
         at = nxt
