@@ -534,7 +534,7 @@ class CandidateTree:
             nv = len(tv)
             end = HEAD + ROW_I * rows
             buf = np.zeros(end + nv, np.int32)  # the header's other slots 0
-            buf[HEAD:end] = ti.reshape(-1)
+            buf[HEAD:end] = ti if ti.ndim == 1 else ti.reshape(-1)
             buf[end:] = tv
             buf[H_N] = rows
             buf[H_NV] = nv
