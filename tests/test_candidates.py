@@ -202,9 +202,9 @@ def check_tree(tree: CandidateTree, tracker: Tracker,
     # reference: the back-pointers walked in Python, oldest first, then the row before
     walked: list[int] = []
     cur_row = best
-    while cur_row >= 0 and tree.ti[cur_row, _t.I_SEQ] >= nodes[top].seq:
+    while cur_row >= 0 and tree.seq_of(cur_row) >= nodes[top].seq:
         walked.append(cur_row)
-        cur_row = int(tree.ti[cur_row, _t.I_PARENT])
+        cur_row = tree.row_ints(cur_row)[2]
     want_rows = [*reversed(walked), cur_row]
     out = np.full(len(want_rows) - 1, -7, np.int64)  # one short: nothing written
     assert _t.chain_into(tree.ti, best, nodes[top].seq, out) == -len(want_rows)
@@ -296,7 +296,7 @@ def test_candidate_tree_trim_and_compaction_keep_decisions() -> None:
         out_squeezed += squeezed.update(fix)
         for level in squeezed.levels:
             level.tree.compact()
-            assert level.tree.n <= len(level.tree.ti)
+            assert level.tree.n <= level.tree.cap_rows
     assert out_plain == out_squeezed
     assert plain.flush() == squeezed.flush()
 
@@ -312,30 +312,36 @@ def test_compact_in_place_equals_compact_into_new_arrays() -> None:
             tree = level.tree
             if tree.n == 0:
                 continue
-            ti, tf, tv, n, nv, lo = _t.compact(tree.ti, tree.tf, tree.tv, tree.n, tree.lo,
-                                               tree.hi, 0, 0)
-            ti2, tf2, tv2 = tree.ti.copy(), tree.tf.copy(), tree.tv.copy()
-            got = compact_in_place(ti2, tf2, tv2, tree.n, tree.lo, tree.hi)
-            assert got == (n, nv, lo)
-            assert ti2[:n].tolist() == ti[:n].tolist()
-            assert tf2[:n].tobytes() == tf[:n].tobytes()
-            assert tv2[:nv].tolist() == tv[:nv].tolist()
-            assert kept_rows(tree.ti, tree.n, tree.lo, tree.hi) == (n, nv)
-            # into new numpy arrays of exactly that size (CandidateTree.compact, shrink)
-            ti3, tf3 = np.empty((n, _t.ROW_I), np.int32), np.empty((n, _t.ROW_F))
-            tv3 = np.empty(nv, np.int32)
-            assert _t.compact_into(tree.ti, tree.tf, tree.tv, tree.n, tree.lo, tree.hi, ti3,
-                                   tf3, tv3) == (n, nv, lo)
-            assert ti3.tobytes() == ti[:n].tobytes() and tf3.tobytes() == tf[:n].tobytes()
-            assert tv3.tobytes() == tv[:nv].tobytes()
+            n_before, lo_before, live = tree.n, tree.lo, len(tree)
+            ti, tf = _t.compact(tree.ti, tree.tf, 0, 0)
+            n, nv, lo = (int(v) for v in ti[[_t.H_N, _t.H_NV, _t.H_LO]])
+            assert int(ti[_t.H_HI]) - lo == live
+            vb = _t.via_base(ti, tf)
+            ti2, tf2 = tree.ti.copy(), tree.tf.copy()
+            compact_in_place(ti2, tf2)
+            vb2 = _t.via_base(ti2, tf2)
+            assert ti2[:_t.HEAD].tolist() == ti[:_t.HEAD].tolist()
+            assert ti2[:_t.HEAD + _t.ROW_I * n].tolist() == ti[:_t.HEAD + _t.ROW_I * n].tolist()
+            assert tf2[:_t.ROW_F * n].tobytes() == tf[:_t.ROW_F * n].tobytes()
+            assert ti2[vb2:vb2 + nv].tolist() == ti[vb:vb + nv].tolist()
+            assert kept_rows(tree.ti) == (n, nv)
+            # into new numpy arrays of exactly that size (CandidateTree.shrink, packed)
+            ti3 = np.empty(_t.HEAD + _t.ROW_I * n + nv, np.int32)
+            tf3 = np.empty(_t.ROW_F * n)
+            _t.compact_into(tree.ti, tree.tf, ti3, tf3)
+            assert ti3[:_t.HEAD + _t.ROW_I * n].tobytes() == ti[:_t.HEAD + _t.ROW_I * n].tobytes()
+            assert tf3.tobytes() == tf[:_t.ROW_F * n].tobytes()
+            assert ti3[_t.HEAD + _t.ROW_I * n:].tobytes() == ti[vb:vb + nv].tobytes()
+            # the tree compacted is unchanged
+            assert (tree.n, tree.lo) == (n_before, lo_before)
             compared += 1
-            moved += n < tree.n
+            moved += n < n_before
     assert compared > 300 and moved > 100  # rows really move
 
 
 def copy_tree(tree: CandidateTree, room: bool) -> CandidateTree:
     """A copy of ``tree``: tight (a step must compact it into new arrays) or with room."""
-    out = CandidateTree.unpacked(*tree.packed())
+    out = tree.packed()
     if room:
         out.compact(64, 256)
     return out
@@ -363,16 +369,17 @@ def test_tree_step_answers_commit_point_and_compacts_like_compact(name: str,
             step[0] = level.eps
             for room in (False, True):
                 plain = copy_tree(level.tree, room)
-                plain_arrays = (plain.ti, plain.tf, plain.tv)
+                plain_arrays = (plain.ti, plain.tf)
                 if not plain.sweep(view, step, seq, nxt.t):
                     continue  # the window died: no commit check to compare
-                live, vias = len(plain), int(plain.ti[plain.lo:plain.hi, _t.I_VIAN].sum())
+                live = len(plain)
+                vias = sum(plain.row_ints(r)[4] for r in range(plain.lo, plain.hi))
                 if plain.ti is not plain_arrays[0]:
                     # compacted into new arrays: the sizes compact() gives for this step
                     ref = copy_tree(level.tree, room)
                     ref.compact(live, vias)
-                    assert (plain.ti.shape, plain.tv.shape) == (ref.ti.shape, ref.tv.shape)
-                    assert plain.ti.base is None and plain.tv.base is None  # numpy's own
+                    assert (plain.cap_rows, plain.cap_vias) == (ref.cap_rows, ref.cap_vias)
+                    assert plain.ti.base is None and plain.tf.base is None  # numpy's own
                     full += 1
                 for next_commit in (tracker.next_commit, seq - 2, seq):
                     for newest in (seq, seq - 1, -1):
@@ -380,8 +387,8 @@ def test_tree_step_answers_commit_point_and_compacts_like_compact(name: str,
                         top = tree.step(arrays, step, seq, nxt.t, next_commit, newest)
                         assert top != DIED
                         # the same rows as a plain sweep, and the answer commit_point gives
-                        assert [a.tobytes() for a in tree.packed()[:3]] == [
-                            a.tobytes() for a in plain.packed()[:3]]
+                        assert [bytes(a) for a in tree.packed().parts()] == [
+                            bytes(a) for a in plain.packed().parts()]
                         want = tree.commit_point(next_commit, newest) if newest >= 0 else -1
                         assert top == want
                         tops += top >= 0
@@ -444,9 +451,9 @@ def test_tracker_keeps_sparse_vehicles_trees_tight() -> None:
         tracker.update(fix)
         for level in tracker.levels:
             tree = level.tree
-            assert len(tree.ti) == tree.n and len(tree.tv) == tree.nv
+            assert tree.cap_rows == tree.n and tree.cap_vias == tree.nv
             # numpy's own arrays, not ones handed back by compiled code (smaller to keep)
-            assert tree.ti.base is None and tree.tf.base is None and tree.tv.base is None
+            assert tree.ti.base is None and tree.tf.base is None
             if tree.n:
                 assert tree.hi == tree.n  # the live block is last
                 # the newest fix's states (read without rows(), which compacts with room
@@ -482,3 +489,27 @@ def test_tree_kernels_calling_the_sweep_kernel_are_keyed_on_its_code() -> None:
         closure = own[name].py_func.__closure__ or ()
         assert key in [c.cell_contents for c in closure], name
     assert sorted(callers) == ["junction_split", "live_answer", "trim"]
+
+
+@pytest.mark.parametrize("every", [1, 10])
+def test_live_block_bounds_kept_in_slots_agree_with_the_header(every: int) -> None:
+    """The live block's bounds the tree keeps in slots are the header's after every fix.
+
+    The compiled calls update the header of ``ti``; the tracker reads the copies. Also
+    every count lies within the arrays' room.
+    """
+    net = osm("Helsinki")
+    tracker = Tracker(net, "v", MatchSettings())
+    checked = 0
+    for fix in drive(net, 11, every, 300.0):
+        tracker.update(fix)
+        trees = [lv.tree for lv in tracker.levels]
+        if tracker.before is not None:
+            trees += [lv.tree for lv in tracker.before.levels]
+        for tree in trees:
+            head = tree.ti[:_t.HEAD].tolist()
+            assert (tree.lo, tree.hi) == (head[_t.H_LO], head[_t.H_HI])
+            assert 0 <= tree.lo <= tree.hi <= tree.n <= tree.cap_rows
+            assert 0 <= tree.nv <= tree.cap_vias
+            checked += 1
+    assert checked > 100

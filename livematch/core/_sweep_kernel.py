@@ -464,9 +464,10 @@ def sweep_kernel(
 
 
 # ---------------------------------------------------------------------------
-# The sweep step on a candidate tree held in arrays (livematch.core.candidates; the row
-# layout is described in livematch.core._tree_kernel). Here, not there, so that numba's
-# disk cache of this function is invalidated whenever the kernel above changes.
+# The sweep step on a candidate tree held in one pair of flat arrays
+# (livematch.core.candidates; the layout is described in livematch.core._tree_kernel).
+# Here, not there, so that numba's disk cache of this function is invalidated whenever
+# the kernel above changes.
 I_SEG = 0
 I_SEQ = 1
 I_PARENT = 2
@@ -478,35 +479,67 @@ F_POS = 1
 F_COST = 2
 F_T = 3
 ROW_F = 4
-ARENA_FULL = -2  # tree_sweep: the tree's arrays are too small for the new rows
+# The header at the head of ``ti``: rows and vias in use, the live block [lo, hi), and
+# (after ARENA_FULL) what the step waiting in the kernel's buffers needs: its rows and
+# vias, and the capacities of the arrays to compact into.
+H_N = 0
+H_NV = 1
+H_LO = 2
+H_HI = 3
+H_M = 4
+H_NVIA = 5
+H_CAP_ROWS = 6
+H_CAP_VIAS = 7
+HEAD = 8
+# A row's int field ``I_x`` is ``ti[ROW_I * row + K_x]``.
+K_SEG = HEAD + I_SEG
+K_SEQ = HEAD + I_SEQ
+K_PARENT = HEAD + I_PARENT
+K_VIA0 = HEAD + I_VIA0
+K_VIAN = HEAD + I_VIAN
+# tree_sweep's answers other than a commit point (which is >= -1)
+DIED = -2  # the window died: the tree is unchanged
+ARENA_FULL = -3  # the tree's arrays are too small for the new rows (see tree_sweep)
+TREE_OVERFLOW = -4  # the kernel's buffers are too small: grow them and call again
+MIN_SPARE = 8  # rows of room a compaction leaves, at least (and twice the live block)
+
+
+@numba.njit(cache=True, error_model="numpy")
+def via_base(ti: np.ndarray, tf: np.ndarray) -> int:
+    """Where the vias start in ``ti``: after the header and the rows ``tf`` has room for."""
+    return HEAD + ROW_I * (tf.shape[0] // ROW_F)
 
 
 @numba.njit(cache=True, error_model="numpy")
 def tree_sweep(
     netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
-    ctx: np.ndarray, ti: np.ndarray, tf: np.ndarray, tv: np.ndarray,
-    n: int, nv: int, lo: int, hi: int, seq: int, t: float, next_commit: int, newest: int,
-) -> tuple[int, int, int, int, int, int, int]:
-    """One sweep step of the live block ``[lo, hi)``; the new states are appended as rows.
+    ctx: np.ndarray, ti: np.ndarray, tf: np.ndarray, seq: int, t: float,
+    next_commit: int, newest: int,
+) -> tuple[int, int, int]:
+    """One sweep step of the live block; the new states are appended as the new live block.
 
-    ``ctx`` holds the kernel's ``N_CTX`` step scalars. Returns ``(code, m, n_via, n, nv,
-    lo, top)``: code 0 with ``m`` new rows at ``[n, n + m)`` (the returned ``n`` is the
-    old one) and ``n_via`` vias at ``tv[nv:nv + n_via]``; ``m`` = 0 when the window died
-    (nothing written). When the new rows do not fit, the tree is first compacted in its
-    own arrays (:func:`compact_in_place`; ``n``, ``nv`` and ``lo`` then change: the
-    returned values are the tree's after it) if that makes room and the arrays are at
-    most one and a half times the size a compaction into new arrays would give them (so
-    a tree that shrank gives its memory back, and a tree holds about as many bytes as
-    with new arrays at every compaction). Else nothing is written: code ``ARENA_FULL``,
-    ``m`` and ``n_via`` say how much room the step needs, the ``n`` and ``nv`` slots
-    hold the rows and vias a compaction keeps (:func:`kept_rows`), and
-    :func:`compact_append` compacts into arrays the caller made and appends the result.
-    Code ``OVERFLOW``: the kernel's buffers are too small (nothing written either).
+    ``ctx`` holds the kernel's ``N_CTX`` step scalars; the tree's counts are read from
+    and written to its header (no counts are passed in). Returns ``(top, lo, hi)``:
+    the live block after the call, and ``top``, after a step whose window survived, the
+    commit check: with ``newest`` >= 0 the
+    :func:`commit_point` of the new live block for ``next_commit`` and ``newest`` (what
+    ``Tracker._settle`` asks next), else -1. Otherwise a code, with the tree unchanged:
+    ``DIED`` (no state left), ``TREE_OVERFLOW`` (the kernel's buffers are too small), or
+    ``ARENA_FULL``: the new rows do not fit, and the header's ``H_M``, ``H_NVIA`` say how
+    many rows and vias the step brings, ``H_CAP_ROWS``, ``H_CAP_VIAS`` the capacities
+    to compact into (:func:`compact_append` compacts into arrays the caller made and
+    appends the result, which waits in the kernel's buffers).
 
-    ``top``: with ``newest`` >= 0, the :func:`commit_point` of the new live block for
-    ``next_commit`` and ``newest`` (what ``Tracker._settle`` asks next; -1 otherwise and
-    on every code but 0), so a step and its commit check are one call.
+    A tree whose arrays are full is first compacted in its own arrays
+    (:func:`compact_in_place`) if that makes room and the arrays are at most one and a
+    half times the size a compaction into new arrays would give them (so a tree that
+    shrank gives its memory back, and a tree holds about as many bytes as with new
+    arrays at every compaction).
     """
+    n = ti[H_N]
+    nv = ti[H_NV]
+    lo = ti[H_LO]
+    hi = ti[H_HI]
     k = hi - lo
     n_v = ibuf[0]
     n_e = ibuf[1]
@@ -520,11 +553,12 @@ def tree_sweep(
     for j in range(k):
         r = lo + j
         b = N_CTX + LIVE_STRIDE * j
-        seg = ti[r, I_SEG]
-        pos = tf[r, F_POS]
+        seg = ti[ROW_I * r + K_SEG]
+        rf = ROW_F * r
+        pos = tf[rf + F_POS]
         live[b] = seg
         live[b + 1] = seg
-        live[b + 2] = tf[r, F_LOW]
+        live[b + 2] = tf[rf + F_LOW]
         live[b + 3] = pos
         # the matched point, not kept in the row: recomputed by the sweep's own expression
         # (``mx = ax + pos * dx``), so bit for bit the value the sweep wrote
@@ -534,56 +568,64 @@ def tree_sweep(
         ay = vy[a]
         live[b + 4] = ax + pos * (vx[e] - ax)
         live[b + 5] = ay + pos * (vy[e] - ay)
-        live[b + 6] = tf[r, F_COST]
+        live[b + 6] = tf[rf + F_COST]
     m, n_via = sweep_kernel(netf, neti, live, fbuf, ibuf)
     if m < 0:
-        return m, 0, 0, n, nv, lo, -1
+        return TREE_OVERFLOW, lo, hi
     if m == 0:
-        return 0, 0, 0, n, nv, lo, -1
-    if n + m > ti.shape[0] or nv + n_via > tv.shape[0]:
-        kept, kept_v = kept_rows(ti, n, lo, hi)
-        # the capacity CandidateTree.compact would give (spare: twice the live block + 8)
-        spare = 2 * k + 8
+        return DIED, lo, hi
+    cap_rows = tf.shape[0] // ROW_F
+    cap_vias = ti.shape[0] - HEAD - ROW_I * cap_rows
+    if n + m > cap_rows or nv + n_via > cap_vias:
+        kept, kept_v = kept_rows(ti)
+        # the capacities CandidateTree.compact gives (room: twice the live block + 8)
+        spare = max(m, 2 * k + MIN_SPARE)
         cap = kept + max(kept // 4, spare)
-        if (kept + m > ti.shape[0] or kept_v + n_via > tv.shape[0]
-                or 2 * ti.shape[0] > 3 * cap):
-            return ARENA_FULL, m, n_via, kept, kept_v, lo, -1
-        n, nv, lo = compact_in_place(ti, tf, tv, n, lo, hi)
-    tree_append(fbuf, ibuf, ti, tf, tv, n, nv, lo, seq, t, m, n_via)
-    top = commit_point(ti, n, n + m, next_commit, newest) if newest >= 0 else -1
-    return 0, m, n_via, n, nv, lo, top
+        if (kept + m > cap_rows or kept_v + n_via > cap_vias
+                or 2 * cap_rows > 3 * (kept + max(kept // 4, 2 * k + MIN_SPARE))):
+            ti[H_M] = m
+            ti[H_NVIA] = n_via
+            ti[H_CAP_ROWS] = cap
+            ti[H_CAP_VIAS] = kept_v + max(kept_v // 4, max(n_via, spare // 2))
+            return ARENA_FULL, lo, hi
+        compact_in_place(ti, tf)
+    tree_append(fbuf, ibuf, ti, tf, seq, t, m, n_via)
+    top = commit_point(ti, next_commit, newest) if newest >= 0 else -1
+    return top, ti[H_LO], ti[H_HI]
 
 
 @numba.njit(cache=True, error_model="numpy")
-def kept_mask(ti: np.ndarray, n: int, lo: int, hi: int) -> np.ndarray:
-    """Which of the first ``n`` rows a compaction keeps.
+def kept_mask(ti: np.ndarray) -> np.ndarray:
+    """Which of the tree's rows in use a compaction keeps.
 
-    The live block ``[lo, hi)`` and every ancestor of it (a parent's index is always
-    below its child's). Shared by :func:`compact` and :func:`compact_in_place`, kept in
-    this file with them (numba's disk cache only notices changes to a function's own file).
+    The live block and every ancestor of it (a parent's index is always below its
+    child's). Shared by :func:`compact` and :func:`compact_into`, kept in this file with
+    them (numba's disk cache only notices changes to a function's own file).
     """
+    n = ti[H_N]
     keep = np.zeros(n, np.bool_)
-    keep[lo:hi] = True
+    keep[ti[H_LO]:ti[H_HI]] = True
     for r in range(n - 1, -1, -1):
         if keep[r]:
-            p = ti[r, I_PARENT]
+            p = ti[ROW_I * r + K_PARENT]
             if p >= 0:
                 keep[p] = True
     return keep
 
 
 @numba.njit(cache=True, error_model="numpy")
-def kept_rows(ti: np.ndarray, n: int, lo: int, hi: int) -> tuple[int, int]:
-    """Rows and vias a compaction keeps: the live block ``[lo, hi)`` and its ancestors."""
+def kept_rows(ti: np.ndarray) -> tuple[int, int]:
+    """Rows and vias a compaction keeps: the live block and its ancestors."""
+    n = ti[H_N]
     keep = np.zeros(n, np.bool_)
-    keep[lo:hi] = True
+    keep[ti[H_LO]:ti[H_HI]] = True
     rows = 0
     vias = 0
     for r in range(n - 1, -1, -1):
         if keep[r]:
             rows += 1
-            vias += ti[r, I_VIAN]
-            p = ti[r, I_PARENT]
+            vias += ti[ROW_I * r + K_VIAN]
+            p = ti[ROW_I * r + K_PARENT]
             if p >= 0:
                 keep[p] = True
     return rows, vias
@@ -591,151 +633,142 @@ def kept_rows(ti: np.ndarray, n: int, lo: int, hi: int) -> tuple[int, int]:
 
 @numba.njit(cache=True, error_model="numpy")
 def compact(
-    ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, n: int, lo: int, hi: int,
-    spare_rows: int, spare_vias: int,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray, int, int, int]:
+    ti: np.ndarray, tf: np.ndarray, spare_rows: int, spare_vias: int,
+) -> tuple[np.ndarray, np.ndarray]:
     """Keep only the live block and its ancestors, in new arrays with room to spare.
 
     The room left is at least ``spare_rows`` rows (``spare_vias`` vias) and a quarter of
     those kept, so compactions get rarer as the tree grows (amortised O(1) per row).
-    Returns ``(ti, tf, tv, n, nv, lo)``; the live block keeps its order and length.
+    Returns the new ``(ti, tf)``; the live block keeps its order and length.
     """
-    keep = kept_mask(ti, n, lo, hi)
-    new_index = np.full(n, -1, np.int64)
-    rows = 0
-    vias = 0
-    for r in range(n):
-        if keep[r]:
-            new_index[r] = rows
-            rows += 1
-            vias += ti[r, I_VIAN]
+    rows, vias = kept_rows(ti)
     cap = rows + max(rows // 4, spare_rows)
-    ti2 = np.empty((cap, ROW_I), np.int32)
-    tf2 = np.empty((cap, ROW_F))
-    tv2 = np.empty(vias + max(vias // 4, spare_vias), np.int32)
-    nv = 0
-    for r in range(n):
-        q = new_index[r]
-        if q < 0:
-            continue
-        p = ti[r, I_PARENT]
-        ti2[q, I_SEG] = ti[r, I_SEG]
-        ti2[q, I_SEQ] = ti[r, I_SEQ]
-        ti2[q, I_PARENT] = new_index[p] if p >= 0 else -1
-        ti2[q, I_VIA0] = nv
-        ti2[q, I_VIAN] = ti[r, I_VIAN]
-        for j in range(ti[r, I_VIAN]):
-            tv2[nv + j] = tv[ti[r, I_VIA0] + j]
-        nv += ti[r, I_VIAN]
-        for c in range(ROW_F):
-            tf2[q, c] = tf[r, c]
-    return ti2, tf2, tv2, rows, nv, int(new_index[lo]) if hi > lo else rows
+    ti2 = np.empty(HEAD + ROW_I * cap + vias + max(vias // 4, spare_vias), np.int32)
+    tf2 = np.empty(ROW_F * cap)
+    compact_into(ti, tf, ti2, tf2)
+    return ti2, tf2
 
 
 @numba.njit(cache=True, error_model="numpy")
-def compact_in_place(
-    ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, n: int, lo: int, hi: int,
-) -> tuple[int, int, int]:
+def compact_in_place(ti: np.ndarray, tf: np.ndarray) -> None:
     """Keep only the live block and its ancestors, moved down within the same arrays.
 
-    The rows kept, and their vias, come out exactly as :func:`livematch.core._tree_kernel.compact`
-    writes them into new arrays (same order, same parents, vias one after another), so
-    a tree compacted either way holds the same rows. Safe in place: a row only ever moves
-    down (its new index is at most its old one, and so is its vias' start). Returns
-    ``(n, nv, lo)``.
+    The rows kept, and their vias, come out exactly as :func:`compact` writes them into
+    new arrays (same order, same parents, vias one after another), so a tree compacted
+    either way holds the same rows. Safe in place: a row only ever moves down (its new
+    index is at most its old one, and so is its vias' start).
     """
-    return compact_into(ti, tf, tv, n, lo, hi, ti, tf, tv)
+    compact_into(ti, tf, ti, tf)
 
 
 @numba.njit(cache=True, error_model="numpy")
-def compact_into(
-    ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, n: int, lo: int, hi: int,
-    ti2: np.ndarray, tf2: np.ndarray, tv2: np.ndarray,
-) -> tuple[int, int, int]:
-    """:func:`compact_in_place`, writing into the arrays ``ti2``, ``tf2``, ``tv2``.
+def compact_into(ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarray) -> None:
+    """:func:`compact_in_place`, writing into the arrays ``ti2``, ``tf2`` (header included).
 
     They must hold at least the rows and vias :func:`kept_rows` counts. The caller
     allocates them with numpy: an array numba allocates and returns costs about 130
     bytes more to keep (its memory-info object) and more time to hand back than numpy's.
     :func:`compact_in_place` passes its own arrays as the targets (safe: a row only ever
-    moves down). Returns ``(n, nv, lo)``.
+    moves down).
     """
-    keep = kept_mask(ti, n, lo, hi)
+    n = ti[H_N]
+    lo = ti[H_LO]
+    hi = ti[H_HI]
+    keep = kept_mask(ti)
     new_index = np.full(n, -1, np.int64)
+    vb = via_base(ti, tf)
+    vb2 = via_base(ti2, tf2)
     q = 0
     nv = 0
     for r in range(n):
         if not keep[r]:
             continue
         new_index[r] = q
-        p = ti[r, I_PARENT]
-        v0 = ti[r, I_VIA0]
-        vn = ti[r, I_VIAN]
+        ri = ROW_I * r
+        qi = ROW_I * q
+        p = ti[ri + K_PARENT]
+        v0 = ti[ri + K_VIA0]
+        vn = ti[ri + K_VIAN]
         for j in range(vn):
-            tv2[nv + j] = tv[v0 + j]
-        ti2[q, I_SEG] = ti[r, I_SEG]
-        ti2[q, I_SEQ] = ti[r, I_SEQ]
-        ti2[q, I_PARENT] = new_index[p] if p >= 0 else -1
-        ti2[q, I_VIA0] = nv
-        ti2[q, I_VIAN] = vn
+            ti2[vb2 + nv + j] = ti[vb + v0 + j]
+        ti2[qi + K_SEG] = ti[ri + K_SEG]
+        ti2[qi + K_SEQ] = ti[ri + K_SEQ]
+        ti2[qi + K_PARENT] = new_index[p] if p >= 0 else -1
+        ti2[qi + K_VIA0] = nv
+        ti2[qi + K_VIAN] = vn
         for c in range(ROW_F):
-            tf2[q, c] = tf[r, c]
+            tf2[ROW_F * q + c] = tf[ROW_F * r + c]
         nv += vn
         q += 1
-    return q, nv, int(new_index[lo]) if hi > lo else q
+    new_lo = new_index[lo] if hi > lo else q
+    ti2[H_N] = q
+    ti2[H_NV] = nv
+    ti2[H_LO] = new_lo
+    ti2[H_HI] = new_lo + (hi - lo)
+    for c in range(H_M, HEAD):
+        ti2[c] = 0
 
 
 @numba.njit(cache=True, error_model="numpy")
 def tree_append(
-    fbuf: np.ndarray, ibuf: np.ndarray, ti: np.ndarray, tf: np.ndarray, tv: np.ndarray,
-    n: int, nv: int, lo: int, seq: int, t: float, m: int, n_via: int,
+    fbuf: np.ndarray, ibuf: np.ndarray, ti: np.ndarray, tf: np.ndarray,
+    seq: int, t: float, m: int, n_via: int,
 ) -> None:
-    """Append the last kernel call's ``m`` output rows (and ``n_via`` vias) to a tree.
+    """Append the last kernel call's ``m`` output rows (and ``n_via`` vias) as the live block.
 
     The output stays in the scratch buffers until the next kernel call, so after an
     ``ARENA_FULL`` the caller makes room and appends without sweeping again. Parents
-    are rows of the live block starting at ``lo``.
+    are rows of the live block; the header is updated (the new rows are the live block).
     """
+    n = ti[H_N]
+    nv = ti[H_NV]
+    lo = ti[H_LO]
+    vb = via_base(ti, tf)
     _, _, out_f0, _, out_i0, _ = layout(ibuf[0], ibuf[1], ibuf[2], ibuf[3], ibuf[4],
                                            ibuf[5])
     for j in range(m):
         r = n + j
+        ri = ROW_I * r
+        rf = ROW_F * r
         oi = out_i0 + j * OUT_I_STRIDE
         of = out_f0 + j * OUT_F_STRIDE
-        ti[r, I_SEG] = ibuf[oi]
-        ti[r, I_SEQ] = seq
-        ti[r, I_PARENT] = lo + ibuf[oi + 1]
-        ti[r, I_VIA0] = nv + ibuf[oi + 2]
-        ti[r, I_VIAN] = ibuf[oi + 3]
+        ti[ri + K_SEG] = ibuf[oi]
+        ti[ri + K_SEQ] = seq
+        ti[ri + K_PARENT] = lo + ibuf[oi + 1]
+        ti[ri + K_VIA0] = nv + ibuf[oi + 2]
+        ti[ri + K_VIAN] = ibuf[oi + 3]
         # an output row is low, pos, x, y, cost: the matched point is not kept
-        tf[r, F_LOW] = fbuf[of]
-        tf[r, F_POS] = fbuf[of + 1]
-        tf[r, F_COST] = fbuf[of + 4]
-        tf[r, F_T] = t
-    vb = out_i0 + m * OUT_I_STRIDE
+        tf[rf + F_LOW] = fbuf[of]
+        tf[rf + F_POS] = fbuf[of + 1]
+        tf[rf + F_COST] = fbuf[of + 4]
+        tf[rf + F_T] = t
+    ob = out_i0 + m * OUT_I_STRIDE
     for j in range(n_via):
-        tv[nv + j] = ibuf[vb + j]
+        ti[vb + nv + j] = ibuf[ob + j]
+    ti[H_N] = n + m
+    ti[H_NV] = nv + n_via
+    ti[H_LO] = n
+    ti[H_HI] = n + m
 
 
 @numba.njit(cache=True, error_model="numpy")
 def compact_append(
-    ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, n: int, lo: int, hi: int,
-    ti2: np.ndarray, tf2: np.ndarray, tv2: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
-    seq: int, t: float, m: int, n_via: int, next_commit: int, newest: int,
-) -> tuple[int, int, int, int]:
+    ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarray, fbuf: np.ndarray,
+    ibuf: np.ndarray, seq: int, t: float, next_commit: int, newest: int,
+) -> int:
     """After ``ARENA_FULL``: :func:`compact_into` the new arrays, then :func:`tree_append`.
 
     One call instead of a compaction that returns new arrays and an append: an array
     numba allocates and hands back costs several microseconds to box (and about 130
-    bytes more to keep) than the caller's numpy arrays. ``ti2``, ``tf2``, ``tv2`` must
-    hold the rows and vias kept plus ``m`` rows and ``n_via`` vias. Returns ``(n, nv,
-    lo, top)``: the tree's rows, vias and live block start before the append, and the
-    commit check of :func:`tree_sweep`.
+    bytes more to keep) than the caller's numpy arrays. ``ti2``, ``tf2`` must hold the
+    rows and vias kept plus the step's (the header's ``H_M`` rows and ``H_NVIA`` vias,
+    which :func:`tree_sweep` wrote). Returns the commit check of :func:`tree_sweep`.
     """
-    n, nv, lo = compact_into(ti, tf, tv, n, lo, hi, ti2, tf2, tv2)
-    tree_append(fbuf, ibuf, ti2, tf2, tv2, n, nv, lo, seq, t, m, n_via)
-    top = commit_point(ti2, n, n + m, next_commit, newest) if newest >= 0 else -1
-    return n, nv, lo, top
+    m = ti[H_M]
+    n_via = ti[H_NVIA]
+    compact_into(ti, tf, ti2, tf2)
+    tree_append(fbuf, ibuf, ti2, tf2, seq, t, m, n_via)
+    return commit_point(ti2, next_commit, newest) if newest >= 0 else -1
 
 
 # The commit check on a tree's rows (``Tracker._settle``): here, beside the tree step,
@@ -747,11 +780,11 @@ def compact_append(
 def rows_ancestor(ti: np.ndarray, cur: np.ndarray, k: int, floor: int) -> int:
     """:func:`livematch.core.sweep.common_ancestor` of the ``k`` distinct rows ``cur``."""
     while k > 1:
-        if ti[cur[0], I_SEQ] <= floor:
+        if ti[ROW_I * cur[0] + K_SEQ] <= floor:
             return -1
         nk = 0
         for j in range(k):
-            p = ti[cur[j], I_PARENT]
+            p = ti[ROW_I * cur[j] + K_PARENT]
             if p < 0:
                 return -1
             seen = False
@@ -767,14 +800,16 @@ def rows_ancestor(ti: np.ndarray, cur: np.ndarray, k: int, floor: int) -> int:
 
 
 @numba.njit(cache=True, error_model="numpy")
-def block_ancestor(ti: np.ndarray, lo: int, hi: int, floor: int) -> int:
+def block_ancestor(ti: np.ndarray, floor: int) -> int:
     """The deepest common ancestor of the live block, or -1 (see :func:`rows_ancestor`)."""
+    lo = ti[H_LO]
+    hi = ti[H_HI]
     cur = np.arange(lo, hi)
     return rows_ancestor(ti, cur, hi - lo, floor)
 
 
 @numba.njit(cache=True, error_model="numpy")
-def commit_point(ti: np.ndarray, lo: int, hi: int, next_commit: int, newest: int) -> int:
+def commit_point(ti: np.ndarray, next_commit: int, newest: int) -> int:
     """The row a commit of the live block may settle up to, or -1.
 
     The live states' deepest common ancestor (:func:`block_ancestor` above fix
@@ -782,17 +817,16 @@ def commit_point(ti: np.ndarray, lo: int, hi: int, next_commit: int, newest: int
     (:func:`ancestor_at`); -1 unless its fix lies in ``[next_commit, newest]``. One call
     for what ``Tracker._settle`` asks of every covering level.
     """
-    top = block_ancestor(ti, lo, hi, next_commit - 1)
-    if top >= 0 and ti[top, I_SEQ] > newest:
+    top = block_ancestor(ti, next_commit - 1)
+    if top >= 0 and ti[ROW_I * top + K_SEQ] > newest:
         top = ancestor_at(ti, top, newest)
-    if top >= 0 and next_commit <= ti[top, I_SEQ] <= newest:
+    if top >= 0 and next_commit <= ti[ROW_I * top + K_SEQ] <= newest:
         return top
     return -1
 
 
 @numba.njit(cache=True, error_model="numpy")
-def cut_and_check(ti: np.ndarray, lo: int, hi: int, next_commit: int, newest: int,
-                  cut: bool) -> int:
+def cut_and_check(ti: np.ndarray, next_commit: int, newest: int, cut: bool) -> int:
     """:func:`commit_point`, first cutting (``cut``) the links older than fix ``next_commit - 1``.
 
     The cut is the part of ``livematch.core._tree_kernel.trim`` that ``Tracker._trim``
@@ -805,21 +839,21 @@ def cut_and_check(ti: np.ndarray, lo: int, hi: int, next_commit: int, newest: in
     read by no later commit (they are older than the last one).
     """
     if cut:
-        cut_links(ti, lo, hi, next_commit - 1)
-    return commit_point(ti, lo, hi, next_commit, newest)
+        cut_links(ti, next_commit - 1)
+    return commit_point(ti, next_commit, newest)
 
 
 @numba.njit(cache=True, error_model="numpy")
-def cut_links(ti: np.ndarray, lo: int, hi: int, cut: int) -> None:
+def cut_links(ti: np.ndarray, cut: int) -> None:
     """Set to -1 the first back-pointer to a state older than fix ``cut`` on each live path."""
-    for r in range(lo, hi):
+    for r in range(ti[H_LO], ti[H_HI]):
         cur = r
         while True:
-            p = ti[cur, I_PARENT]
+            p = ti[ROW_I * cur + K_PARENT]
             if p < 0:
                 break
-            if ti[p, I_SEQ] < cut:
-                ti[cur, I_PARENT] = -1
+            if ti[ROW_I * p + K_SEQ] < cut:
+                ti[ROW_I * cur + K_PARENT] = -1
                 break
             cur = p
 
@@ -827,8 +861,8 @@ def cut_links(ti: np.ndarray, lo: int, hi: int, cut: int) -> None:
 @numba.njit(cache=True, error_model="numpy")
 def ancestor_at(ti: np.ndarray, row: int, seq: int) -> int:
     """The ancestor of ``row`` (itself included) with the largest seq <= ``seq``."""
-    while ti[row, I_SEQ] > seq and ti[row, I_PARENT] >= 0:
-        row = ti[row, I_PARENT]
+    while ti[ROW_I * row + K_SEQ] > seq and ti[ROW_I * row + K_PARENT] >= 0:
+        row = ti[ROW_I * row + K_PARENT]
     return row
 
 

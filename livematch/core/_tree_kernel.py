@@ -1,24 +1,34 @@
 """Compiled operations on a candidate tree held in flat arrays (numba, CPU only).
 
 Private: :class:`livematch.core.candidates.CandidateTree` is the interface. A tree is
-three arrays, rows in topological order (a parent's row always precedes its children's):
+two flat arrays, rows in topological order (a parent's row always precedes its
+children's):
 
-``ti`` (int32, rows x 5): ``seg, seq, parent, via_start, via_len`` (``parent`` -1 for a
-    root; the via of a row is ``tv[via_start:via_start + via_len]``).
-``tf`` (float64, rows x 4): ``low, pos, cost, t``. The matched point (x, y) of a row is
-    not stored: it is ``a + pos (b - a)`` on the row's segment, the very expression the
-    sweep computed it with, so it is recomputed bit for bit where it is read (the live
-    score, the sweep's input, a row handed out as a node) from the network's arrays
-    (``seg_geo`` of :class:`livematch.core.fastsweep.SweepArrays`: ax, ay, bx - ax,
-    by - ay per segment).
-    A row is 52 bytes (20 + 32) instead of 68 with the point.
-``tv`` (int32): the vias, one after another.
+``ti`` (int32): a header of ``HEAD`` values (``H_N`` rows in use, ``H_NV`` vias in use,
+    the live block ``[H_LO, H_HI)``, and four slots a step that found the arrays full
+    leaves its sizes in), then room for ``len(tf) // ROW_F`` rows of ``ROW_I`` ints
+    ``seg, seq, parent, via_start, via_len`` (field ``I_x`` of row r at
+    ``ROW_I * r + K_x``; ``parent`` -1 for a root), then the vias, one after another,
+    from :func:`via_base` on (a row's via is ``via_len`` of them from ``via_start``).
+``tf`` (float64): per row ``ROW_F`` floats ``low, pos, cost, t`` (field ``F_x`` of row r
+    at ``ROW_F * r + F_x``). The matched point (x, y) of a row is not stored: it is
+    ``a + pos (b - a)`` on the row's segment, the very expression the sweep computed it
+    with, so it is recomputed bit for bit where it is read (the live score, the sweep's
+    input, a row handed out as a node) from the network's arrays (``seg_geo`` of
+    :class:`livematch.core.fastsweep.SweepArrays`: ax, ay, bx - ax, by - ay per segment).
+    A row is 52 bytes (20 + 32).
 
-The live states are one contiguous block of rows ``[lo, hi)``, the newest fix's; they are
-leaves (nothing points at them), so they can be filtered in place. Every function here
-mirrors a Python function of :mod:`livematch.core.sweep` or :mod:`livematch.core.tracker`
-on :class:`~livematch.core.sweep.Node` objects, step for step, so that a tracker on
-arrays makes the same decisions as one on objects (``tests/test_candidates.py``).
+Two arrays rather than one per row field, with the counts in the first: a tree idle
+between fixes costs two numpy objects (each about 150 bytes beyond its data) and a
+compiled call takes the tree as two arguments, its counts read from the header rather
+than passed in and handed back (each argument and each returned value costs the
+dispatcher time). Python reads a field with ``ndarray.item`` at a flat index.
+
+The live states are one contiguous block of rows, the newest fix's; they are leaves
+(nothing points at them), so they can be filtered in place. Every function here mirrors
+a Python function of :mod:`livematch.core.sweep` or :mod:`livematch.core.tracker` on
+:class:`~livematch.core.sweep.Node` objects, step for step, so that a tracker on arrays
+makes the same decisions as one on objects (``tests/test_candidates.py``).
 """
 
 from __future__ import annotations
@@ -37,22 +47,40 @@ from livematch.core._kernel_key import code_key
 # the sweep kernel.
 from livematch.core._sweep_kernel import (
     ARENA_FULL,
+    DIED,
     F_COST,
     F_LOW,
     F_POS,
     F_T,
+    H_CAP_ROWS,
+    H_CAP_VIAS,
+    H_HI,
+    H_LO,
+    H_M,
+    H_N,
+    H_NV,
+    H_NVIA,
+    HEAD,
     I_PARENT,
     I_SEG,
     I_SEQ,
     I_VIA0,
     I_VIAN,
+    K_PARENT,
+    K_SEG,
+    K_SEQ,
+    K_VIA0,
+    K_VIAN,
+    MIN_SPARE,
     ROW_F,
     ROW_I,
+    TREE_OVERFLOW,
     ancestor_at,
     block_ancestor,
     commit_point,
     compact,
     compact_append,
+    compact_in_place,
     compact_into,
     cut_and_check,
     cut_links,
@@ -60,29 +88,36 @@ from livematch.core._sweep_kernel import (
     rows_ancestor,
     tree_append,
     tree_sweep,
+    via_base,
 )
 
 __all__ = [
-    "ARENA_FULL", "F_COST", "F_LOW", "F_POS", "F_T", "I_PARENT", "I_SEG", "I_SEQ", "I_VIA0",
-    "I_VIAN", "ROW_F", "ROW_I", "ancestor_at", "best_row", "best_scored", "block_ancestor",
-    "chain_into", "commit_point", "compact", "compact_append", "compact_into",
-    "cut_and_check", "cut_links", "descends_from",
-    "driven_since", "junction_split", "kept_rows", "live_answer", "live_scores", "prune_live",
-    "tree_append", "tree_sweep", "trim",
+    "ARENA_FULL", "DIED", "F_COST", "F_LOW", "F_POS", "F_T", "HEAD", "H_CAP_ROWS",
+    "H_CAP_VIAS", "H_HI", "H_LO", "H_M", "H_N", "H_NV", "H_NVIA", "I_PARENT", "I_SEG",
+    "I_SEQ", "I_VIA0", "I_VIAN", "K_PARENT", "K_SEG", "K_SEQ", "K_VIA0", "K_VIAN",
+    "MIN_SPARE", "ROW_F", "ROW_I", "TREE_OVERFLOW", "ancestor_at", "best_row",
+    "best_scored", "block_ancestor", "chain_into", "commit_point", "compact",
+    "compact_append", "compact_in_place", "compact_into", "cut_and_check", "cut_links",
+    "descends_from", "driven_since", "junction_split", "kept_rows", "live_answer",
+    "live_scores", "prune_live", "tree_append", "tree_sweep", "trim", "via_base",
 ]
 
 _jit = numba.njit(cache=True, error_model="numpy")
 
 
 @_jit
-def best_row(ti: np.ndarray, tf: np.ndarray, lo: int, hi: int, prefer: int) -> int:
+def best_row(ti: np.ndarray, tf: np.ndarray, prefer: int) -> int:
     """:func:`livematch.core.sweep.best_leaf`: lowest (cost, seg != prefer, seg)."""
-    return best_scored(ti, tf[lo:hi, F_COST], lo, hi, prefer)
+    lo = ti[H_LO]
+    hi = ti[H_HI]
+    return best_scored(ti, tf[ROW_F * lo + F_COST:ROW_F * hi:ROW_F], prefer)
 
 
 @_jit
-def best_scored(ti: np.ndarray, score: np.ndarray, lo: int, hi: int, prefer: int) -> int:
+def best_scored(ti: np.ndarray, score: np.ndarray, prefer: int) -> int:
     """The live row with the lowest (score, seg != prefer, seg); ``score[r - lo]`` is row r's."""
+    lo = ti[H_LO]
+    hi = ti[H_HI]
     best = lo
     for r in range(lo + 1, hi):
         c, cb = score[r - lo], score[best - lo]
@@ -90,7 +125,7 @@ def best_scored(ti: np.ndarray, score: np.ndarray, lo: int, hi: int, prefer: int
             if c < cb:
                 best = r
             continue
-        s, sb = ti[r, I_SEG], ti[best, I_SEG]
+        s, sb = ti[ROW_I * r + K_SEG], ti[ROW_I * best + K_SEG]
         if (s != prefer) != (sb != prefer):
             if s == prefer:
                 best = r
@@ -102,7 +137,7 @@ def best_scored(ti: np.ndarray, score: np.ndarray, lo: int, hi: int, prefer: int
 
 @_jit
 def live_scores(
-    geo: np.ndarray, ti: np.ndarray, tf: np.ndarray, lo: int, hi: int, fix_xy: np.ndarray,
+    geo: np.ndarray, ti: np.ndarray, tf: np.ndarray, fix_xy: np.ndarray,
     fix_seq0: int, first: int, inv_two_sigma2: float, inv_tau: float, max_dt: float,
 ) -> np.ndarray:
     """:func:`livematch.core.sweep.live_score` of every live row, in row order.
@@ -112,28 +147,30 @@ def live_scores(
     ``fix_xy[i]`` is the fix of sequence number ``fix_seq0 + i``; links to states older
     than fix ``first`` are not walked.
     """
+    lo = ti[H_LO]
+    hi = ti[H_HI]
     out = np.empty(hi - lo)
     n = fix_xy.shape[0]
     for r in range(lo, hi):
-        score = tf[r, F_COST]
+        score = tf[ROW_F * r + F_COST]
         cur = r
         # the matched points, as the sweep computed them (rows keep none): each row's is
         # computed once, and a link's parent is the next link's child
-        pos = tf[cur, F_POS]
-        g = ti[cur, I_SEG]
+        pos = tf[ROW_F * cur + F_POS]
+        g = ti[ROW_I * cur + K_SEG]
         cx = geo[g, 0] + pos * geo[g, 2]
         cy = geo[g, 1] + pos * geo[g, 3]
         while True:
-            p = ti[cur, I_PARENT]
-            if p < 0 or ti[p, I_SEQ] < first:
+            p = ti[ROW_I * cur + K_PARENT]
+            if p < 0 or ti[ROW_I * p + K_SEQ] < first:
                 break
-            pos = tf[p, F_POS]
-            g = ti[p, I_SEG]
+            pos = tf[ROW_F * p + F_POS]
+            g = ti[ROW_I * p + K_SEG]
             px = geo[g, 0] + pos * geo[g, 2]
             py = geo[g, 1] + pos * geo[g, 3]
-            i = ti[cur, I_SEQ] - fix_seq0
-            j = ti[p, I_SEQ] - fix_seq0
-            dt = tf[cur, F_T] - tf[p, F_T]
+            i = ti[ROW_I * cur + K_SEQ] - fix_seq0
+            j = ti[ROW_I * p + K_SEQ] - fix_seq0
+            dt = tf[ROW_F * cur + F_T] - tf[ROW_F * p + F_T]
             if j >= 0 and i < n and 0.0 < dt <= max_dt:
                 ex = cx - fix_xy[i, 0]
                 ey = cy - fix_xy[i, 1]
@@ -152,28 +189,31 @@ def live_scores(
 @_jit
 def _still_on(ti: np.ndarray, node: int, anc: int) -> bool:
     """Whether the path from ``anc`` to ``node`` never left ``anc``'s segment."""
-    seg = ti[anc, I_SEG]
+    seg = ti[ROW_I * anc + K_SEG]
     cur = node
     while cur >= 0 and cur != anc:
-        if ti[cur, I_VIAN] > 0 or ti[cur, I_SEG] != seg:
+        if ti[ROW_I * cur + K_VIAN] > 0 or ti[ROW_I * cur + K_SEG] != seg:
             return False
-        cur = ti[cur, I_PARENT]
+        cur = ti[ROW_I * cur + K_PARENT]
     return True
 
 
 @_jit
-def _branch(ti: np.ndarray, tv: np.ndarray, node: int, anc: int) -> int:
-    """The first segment after ``anc``'s on the path from ``anc`` to ``node``."""
+def _branch(ti: np.ndarray, vb: int, node: int, anc: int) -> int:
+    """The first segment after ``anc``'s on the path from ``anc`` to ``node``.
+
+    ``vb``: where the vias start in ``ti`` (:func:`via_base`).
+    """
     cur = node
-    while ti[cur, I_PARENT] >= 0 and ti[cur, I_PARENT] != anc:
-        cur = ti[cur, I_PARENT]
-    if ti[cur, I_VIAN] > 0:
-        return tv[ti[cur, I_VIA0]]
-    return ti[cur, I_SEG]
+    while ti[ROW_I * cur + K_PARENT] >= 0 and ti[ROW_I * cur + K_PARENT] != anc:
+        cur = ti[ROW_I * cur + K_PARENT]
+    if ti[ROW_I * cur + K_VIAN] > 0:
+        return ti[vb + ti[ROW_I * cur + K_VIA0]]
+    return ti[ROW_I * cur + K_SEG]
 
 
 @_jit
-def driven_since(ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, slen: np.ndarray, node: int,
+def driven_since(ti: np.ndarray, tf: np.ndarray, slen: np.ndarray, node: int,
                  anc: int) -> float:
     """Metres driven along the path of row ``node`` since the head vertex of ``anc``'s segment.
 
@@ -181,50 +221,54 @@ def driven_since(ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, slen: np.ndarra
     sweep charged for it: along one segment, or out of the parent's segment, through the
     vias, into the child's.
     """
+    vb = HEAD + ROW_I * (tf.shape[0] // ROW_F)
     total = 0.0
     cur = node
     while cur != anc:
-        p = ti[cur, I_PARENT]
-        seg = ti[cur, I_SEG]
-        p_seg = ti[p, I_SEG]
-        if ti[cur, I_VIAN] == 0 and seg == p_seg:
-            total += (tf[cur, F_POS] - tf[p, F_POS]) * slen[seg]
+        ci = ROW_I * cur
+        p = ti[ci + K_PARENT]
+        seg = ti[ci + K_SEG]
+        p_seg = ti[ROW_I * p + K_SEG]
+        if ti[ci + K_VIAN] == 0 and seg == p_seg:
+            total += (tf[ROW_F * cur + F_POS] - tf[ROW_F * p + F_POS]) * slen[seg]
         else:
-            total += (1.0 - tf[p, F_POS]) * slen[p_seg] + tf[cur, F_POS] * slen[seg]
-            for j in range(ti[cur, I_VIA0], ti[cur, I_VIA0] + ti[cur, I_VIAN]):
-                total += slen[tv[j]]
+            total += ((1.0 - tf[ROW_F * p + F_POS]) * slen[p_seg]
+                      + tf[ROW_F * cur + F_POS] * slen[seg])
+            for j in range(ti[ci + K_VIA0], ti[ci + K_VIA0] + ti[ci + K_VIAN]):
+                total += slen[ti[vb + j]]
         cur = p
-    return total - (1.0 - tf[anc, F_POS]) * slen[ti[anc, I_SEG]]
+    return total - (1.0 - tf[ROW_F * anc + F_POS]) * slen[ti[ROW_I * anc + K_SEG]]
 
 
 @_jit
 def descends_from(ti: np.ndarray, node: int, anc: int) -> bool:
     """Whether row ``anc`` lies on the back-pointer chain of row ``node``."""
-    seq = ti[anc, I_SEQ]
+    seq = ti[ROW_I * anc + K_SEQ]
     cur = node
-    while cur >= 0 and ti[cur, I_SEQ] >= seq:
+    while cur >= 0 and ti[ROW_I * cur + K_SEQ] >= seq:
         if cur == anc:
             return True
-        cur = ti[cur, I_PARENT]
+        cur = ti[ROW_I * cur + K_PARENT]
     return False
 
 
 @_jit
-def prune_live(ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, lo: int, hi: int,
-               anc: int) -> int:
-    """Keep, in order, the live rows descending from ``anc``; returns the new ``hi``.
+def prune_live(ti: np.ndarray, tf: np.ndarray, anc: int) -> int:
+    """Keep, in order, the live rows descending from ``anc``; returns the block's new end.
 
     Live rows are leaves, so moving them within the block breaks no back-pointer.
     """
+    lo = ti[H_LO]
     w = lo
-    for r in range(lo, hi):
+    for r in range(lo, ti[H_HI]):
         if descends_from(ti, r, anc):
             if w != r:
                 for c in range(ROW_I):
-                    ti[w, c] = ti[r, c]
+                    ti[ROW_I * w + HEAD + c] = ti[ROW_I * r + HEAD + c]
                 for c in range(ROW_F):
-                    tf[w, c] = tf[r, c]
+                    tf[ROW_F * w + c] = tf[ROW_F * r + c]
             w += 1
+    ti[H_HI] = w
     return w
 
 
@@ -240,16 +284,16 @@ def chain_into(ti: np.ndarray, top: int, min_seq: int, out: np.ndarray) -> int:
     """
     length = 0
     cur = top
-    while cur >= 0 and ti[cur, I_SEQ] >= min_seq:
+    while cur >= 0 and ti[ROW_I * cur + K_SEQ] >= min_seq:
         length += 1
-        cur = ti[cur, I_PARENT]
+        cur = ti[ROW_I * cur + K_PARENT]
     if length + 1 > out.shape[0]:
         return -(length + 1)
     out[length] = cur
     cur = top
     for j in range(length - 1, -1, -1):
         out[j] = cur
-        cur = ti[cur, I_PARENT]
+        cur = ti[ROW_I * cur + K_PARENT]
     return length
 
 
@@ -264,8 +308,7 @@ def _keyed_junction_split(sweep_key: int) -> Callable[..., int]:
 
     @_jit
     def junction_split(
-        ti: np.ndarray, tv: np.ndarray, lo: int, hi: int, best: int, margin: float,
-        score: np.ndarray,
+        ti: np.ndarray, tf: np.ndarray, best: int, margin: float, score: np.ndarray,
     ) -> int:
         """The junction the near-best candidates split at, or -1 to report ``best`` itself.
 
@@ -275,15 +318,18 @@ def _keyed_junction_split(sweep_key: int) -> Callable[..., int]:
         """
         if sweep_key == -1:  # never: the key only has to be part of the function
             return -1
+        lo = ti[H_LO]
+        hi = ti[H_HI]
         limit = score[best - lo] + margin
         close = np.empty(hi - lo, np.int64)
         k = 0
         varied = False
+        best_seg = ti[ROW_I * best + K_SEG]
         for r in range(lo, hi):
             if score[r - lo] <= limit:
                 close[k] = r
                 k += 1
-                if ti[r, I_SEG] != ti[best, I_SEG]:
+                if ti[ROW_I * r + K_SEG] != best_seg:
                     varied = True
         if k < 2 or not varied:
             return -1
@@ -291,12 +337,13 @@ def _keyed_junction_split(sweep_key: int) -> Callable[..., int]:
         split = rows_ancestor(ti, walk, k, -1)
         if split < 0 or split == best or _still_on(ti, best, split):
             return -1
+        vb = via_base(ti, tf)
         first = -1
         for j in range(k):
             n = close[j]
             if _still_on(ti, n, split):
                 continue
-            b = _branch(ti, tv, n, split)
+            b = _branch(ti, vb, n, split)
             if first < 0:
                 first = b
             elif b != first:
@@ -314,9 +361,9 @@ def _keyed_live_answer(sweep_key: int) -> Callable[..., tuple[int, int]]:
 
     @_jit
     def live_answer(
-        geo: np.ndarray, ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, lo: int, hi: int,
-        prefer: int, fix_xy: np.ndarray, fix_n: int, fix_seq0: int, first: int,
-        inv_two_sigma2: float, inv_tau: float, max_dt: float, margin: float,
+        geo: np.ndarray, ti: np.ndarray, tf: np.ndarray, prefer: int, fix_xy: np.ndarray,
+        fix_n: int, fix_seq0: int, first: int, inv_two_sigma2: float, inv_tau: float,
+        max_dt: float, margin: float,
     ) -> tuple[int, int]:
         """The live answer's rows in one call: ``(best, split)``.
 
@@ -329,12 +376,12 @@ def _keyed_live_answer(sweep_key: int) -> Callable[..., tuple[int, int]]:
         if sweep_key == -1:  # never (see junction_split)
             return -1, -1
         if inv_tau > 0.0:
-            score = live_scores(geo, ti, tf, lo, hi, fix_xy[:fix_n], fix_seq0, first,
+            score = live_scores(geo, ti, tf, fix_xy[:fix_n], fix_seq0, first,
                                 inv_two_sigma2, inv_tau, max_dt)
         else:
-            score = tf[lo:hi, F_COST].copy()
-        best = best_scored(ti, score, lo, hi, prefer)
-        split = junction_split(ti, tv, lo, hi, best, margin, score) if margin > 0.0 else -1
+            score = tf[ROW_F * ti[H_LO] + F_COST:ROW_F * ti[H_HI]:ROW_F].copy()
+        best = best_scored(ti, score, prefer)
+        split = junction_split(ti, tf, best, margin, score) if margin > 0.0 else -1
         return best, split
 
     return live_answer
@@ -348,8 +395,8 @@ def _keyed_trim(sweep_key: int) -> Callable[..., tuple[int, int, int]]:
 
     @_jit
     def trim(
-        ti: np.ndarray, tf: np.ndarray, tv: np.ndarray, lo: int, hi: int, next_commit: int,
-        seq: int, trim_seq: int, max_lag: int, prefer: int,
+        ti: np.ndarray, tf: np.ndarray, next_commit: int, seq: int, trim_seq: int,
+        max_lag: int, prefer: int,
     ) -> tuple[int, int, int]:
         """Cut the history no future commit needs; force-prune a tree that stopped committing.
 
@@ -360,23 +407,24 @@ def _keyed_trim(sweep_key: int) -> Callable[..., tuple[int, int, int]]:
         only the live states descending from the best one's ancestor ``max_lag`` fixes back
         are kept.
 
-        Returns ``(hi, trim_seq, forced)``: the live block's new end, the fix the history now
-        starts at and the seq of the state a forced prune kept (-1 if none).
+        Returns ``(trim_seq, forced, hi)``: the fix the history now starts at, the seq of
+        the state a forced prune kept (-1 if none) and the live block's end (also in the
+        header).
         """
         if sweep_key == -1:  # never (see junction_split)
-            return hi, trim_seq, -1
+            return trim_seq, -1, -1
         cut = next_commit - 1
-        cut_links(ti, lo, hi, cut)
+        cut_links(ti, cut)
         if cut > trim_seq:
             trim_seq = cut
         if seq - trim_seq > 2 * max_lag:
-            keep = ancestor_at(ti, best_row(ti, tf, lo, hi, prefer), seq - max_lag)
-            kept = int(ti[keep, I_SEQ])
-            ti[keep, I_PARENT] = -1  # before pruning: ``keep`` may be a live row that moves
-            hi = prune_live(ti, tf, tv, lo, hi, keep)
-            return hi, kept, kept
-        return hi, trim_seq, -1
-
+            keep = ancestor_at(ti, best_row(ti, tf, prefer), seq - max_lag)
+            kept = int(ti[ROW_I * keep + K_SEQ])
+            # before pruning: ``keep`` may be a live row that moves
+            ti[ROW_I * keep + K_PARENT] = -1
+            hi = prune_live(ti, tf, keep)
+            return kept, kept, hi
+        return trim_seq, -1, int(ti[H_HI])
 
     return trim
 

@@ -3,7 +3,8 @@
 The tree of back-pointers (:mod:`livematch.core.sweep`) changes on every fix: each live
 state of the new fix is a new node. Kept as Python objects, building those nodes costs
 more than the compiled sweep that computes them, and each costs a few hundred bytes.
-:class:`CandidateTree` keeps the nodes as rows of three arrays instead (layout in
+:class:`CandidateTree` keeps the nodes as rows of two flat arrays instead, the ints (with
+the tree's counts in a header, and the vias) and the floats (layout in
 :mod:`livematch.core._tree_kernel`): the sweep kernel's output rows are appended as they
 are, the newest fix's states are one block of rows, and every operation the tracker needs
 on the tree (best leaf, deepest common ancestor, pruning, trimming, the chain a commit
@@ -44,44 +45,97 @@ import numpy.typing as npt
 
 from livematch.core import _tree_kernel as _t
 from livematch.core._sweep_kernel import window_best, window_step
+from livematch.core._tree_kernel import (
+    F_COST,
+    F_POS,
+    H_CAP_ROWS,
+    H_CAP_VIAS,
+    H_HI,
+    H_LO,
+    H_N,
+    H_NV,
+    HEAD,
+    K_PARENT,
+    K_SEG,
+    K_SEQ,
+    MIN_SPARE,
+    ROW_F,
+    ROW_I,
+)
 from livematch.core.fastsweep import SweepArrays, fast_sweep_step, sweep_arrays
 from livematch.core.sweep import Node
 from livematch.core.view import NetworkView
 
 __all__ = ["DIED", "CandidateTree"]
 
-DIED = -2  # CandidateTree.step: the window died
+DIED = _t.DIED  # CandidateTree.step: the window died
 
-_MIN_SPARE = 8  # rows (and vias) of room left after a compaction, at least
+_MIN_SPARE = MIN_SPARE  # rows (and vias) of room left after a compaction, at least
 
-
-_NO_TI: npt.NDArray[np.int32] = np.empty((0, _t.ROW_I), np.int32)
-_NO_TF: npt.NDArray[np.float64] = np.empty((0, _t.ROW_F))
-_NO_TV: npt.NDArray[np.int32] = np.empty(0, np.int32)
+# the header alone (no rows, no vias), shared by every empty tree: nothing is written
+# into it (rows are written only after a compaction has made arrays of the tree's own)
+_NO_TI: npt.NDArray[np.int32] = np.zeros(HEAD, np.int32)
+_NO_TF: npt.NDArray[np.float64] = np.empty(0)
+_NO_BYTES = memoryview(b"")
 
 
 class CandidateTree:
-    """The candidate tree of one level: rows, and the live block ``[lo, hi)``.
+    """The candidate tree of one level: rows, vias and counts in two flat arrays.
 
     Attributes:
-        ti, tf, tv: the rows (layout in :mod:`livematch.core._tree_kernel`).
-        n, nv: rows and vias in use.
-        lo, hi: the live block (the newest fix's states, in the reference's dict order).
+        ti: the header (counts), the rows' ints and the vias (int32; layout in
+            :mod:`livematch.core._tree_kernel`).
+        tf: the rows' floats (float64).
+        lo, hi: the live block (the newest fix's states, in the reference's dict order):
+            a copy of the header's, which the tracker reads many times a fix (a slot
+            costs a tenth of an array read from Python); every call that moves the block
+            hands the new bounds back.
+
+    The counts live in the header of ``ti`` (:attr:`n`, :attr:`nv` and the live
+    block), so a compiled call reads and updates them in place.
     """
 
-    __slots__ = ("hi", "lo", "n", "nv", "tf", "ti", "tv")
+    __slots__ = ("hi", "lo", "tf", "ti")
 
     def __init__(self) -> None:
         # zero-size arrays shared by every empty tree (nothing can be written into them:
         # rows are written only after a compaction has made arrays of this tree's own)
         self.ti: npt.NDArray[np.int32] = _NO_TI
         self.tf: npt.NDArray[np.float64] = _NO_TF
-        self.tv: npt.NDArray[np.int32] = _NO_TV
-        self.n = self.nv = self.lo = self.hi = 0
+        self.lo = self.hi = 0
+
+    @property
+    def n(self) -> int:
+        """Rows in use."""
+        return self.ti.item(H_N)
+
+    @property
+    def nv(self) -> int:
+        """Vias in use."""
+        return self.ti.item(H_NV)
 
     def __len__(self) -> int:
         """The number of live states."""
         return self.hi - self.lo
+
+    def _synced(self) -> None:
+        """Copy the live block's bounds from the header (after a compiled call moved it)."""
+        ti = self.ti
+        self.lo = ti.item(H_LO)
+        self.hi = ti.item(H_HI)
+
+    @property
+    def cap_rows(self) -> int:
+        """Rows the arrays have room for."""
+        return len(self.tf) // ROW_F
+
+    @property
+    def cap_vias(self) -> int:
+        """Vias the arrays have room for."""
+        return len(self.ti) - HEAD - ROW_I * self.cap_rows
+
+    def _via_base(self) -> int:
+        return HEAD + ROW_I * (len(self.tf) // ROW_F)
 
     # ----------------------------------------------------------------- growth
     def compact(self, spare_rows: int = 0, spare_vias: int = 0) -> None:
@@ -96,12 +150,10 @@ class CandidateTree:
         as :meth:`shrink` does, cost about 2 µs more a compaction, and a 1 Hz vehicle
         compacts often), so each carries numba's memory-info object (about 130 bytes).
         """
-        live = self.hi - self.lo
-        rows = max(spare_rows, 2 * live + _MIN_SPARE)
+        rows = max(spare_rows, 2 * len(self) + _MIN_SPARE)
         vias = max(spare_vias, rows // 2)  # most states have no via; a tree sweep asks for more
-        self.ti, self.tf, self.tv, self.n, self.nv, self.lo = _t.compact(
-            self.ti, self.tf, self.tv, self.n, self.lo, self.hi, rows, vias)
-        self.hi = self.lo + live
+        self.ti, self.tf = _t.compact(self.ti, self.tf, rows, vias)
+        self._synced()
 
     def _compacted(self, cap_rows: int, cap_vias: int) -> None:
         """Compact into new numpy arrays of ``cap_rows`` rows and ``cap_vias`` vias.
@@ -111,23 +163,20 @@ class CandidateTree:
         code and handed back cost about 130 bytes more each to keep, and an idle tree
         is kept for long.
         """
-        ti = np.empty((cap_rows, _t.ROW_I), np.int32)
-        tf = np.empty((cap_rows, _t.ROW_F))
-        tv = np.empty(cap_vias, np.int32) if cap_vias else _NO_TV
-        self.n, self.nv, self.lo = _t.compact_into(self.ti, self.tf, self.tv, self.n, self.lo,
-                                                   self.hi, ti, tf, tv)
-        self.ti, self.tf, self.tv = ti, tf, tv
+        ti = np.empty(HEAD + ROW_I * cap_rows + cap_vias, np.int32)
+        tf = np.empty(ROW_F * cap_rows)
+        _t.compact_into(self.ti, self.tf, ti, tf)
+        self.ti, self.tf = ti, tf
+        self._synced()
 
     def shrink(self) -> None:
         """Keep only the rows still needed, with no room to spare (an idle tree)."""
-        if self.n == 0:
+        if self.ti.item(H_N) == 0:
             return
-        live = self.hi - self.lo
-        self._compacted(*_t.kept_rows(self.ti, self.n, self.lo, self.hi))
-        self.hi = self.lo + live
+        self._compacted(*_t.kept_rows(self.ti))
 
     def _make_room(self, rows: int, vias: int) -> None:
-        if self.n + rows > len(self.ti) or self.nv + vias > len(self.tv):
+        if self.n + rows > self.cap_rows or self.nv + vias > self.cap_vias:
             self.compact(rows, vias)
 
     # ------------------------------------------------------------------ steps
@@ -149,33 +198,27 @@ class CandidateTree:
         """
         while True:
             # a tree whose arrays are full is compacted within them by the kernel
-            code, m, n_via, n, nv, lo, top = _t.tree_sweep(
-                arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf, ctx, self.ti, self.tf,
-                self.tv, self.n, self.nv, self.lo, self.hi, seq, t, next_commit, newest)
-            if code == 0:
-                self.n, self.nv, self.lo = n, nv, lo
-                break
-            if code == _t.ARENA_FULL:
+            ti = self.ti
+            tf = self.tf
+            top, lo, hi = _t.tree_sweep(arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf,
+                                        ctx, ti, tf, seq, t, next_commit, newest)
+            if top >= DIED:  # a commit point (>= -1), or the window died
+                self.lo = lo
+                self.hi = hi
+                return top
+            if top == _t.ARENA_FULL:
                 # the result waits in the kernel's buffers: compact into new arrays with
-                # room (as compact() would size them; n, nv: the rows and vias kept) and
+                # the room the kernel worked out (as compact() would size them) and
                 # append, in one call
-                rows = max(m, 2 * (self.hi - self.lo) + _MIN_SPARE)
-                vias = max(n_via, rows // 2)
-                ti = np.empty((n + max(n // 4, rows), _t.ROW_I), np.int32)
-                tf = np.empty((len(ti), _t.ROW_F))
-                tv = np.empty(nv + max(nv // 4, vias), np.int32)
-                self.n, self.nv, self.lo, top = _t.compact_append(
-                    self.ti, self.tf, self.tv, self.n, self.lo, self.hi, ti, tf, tv,
-                    arrays.fbuf, arrays.ibuf, seq, t, m, n_via, next_commit, newest)
-                self.ti, self.tf, self.tv = ti, tf, tv
-                break
-            arrays.grow()  # OVERFLOW: the kernel's buffers were too small
-        if m == 0:
-            return DIED
-        self.lo = self.n
-        self.hi = self.n = self.n + m
-        self.nv += n_via
-        return top
+                cap = ti.item(H_CAP_ROWS)
+                ti2 = np.empty(HEAD + ROW_I * cap + ti.item(H_CAP_VIAS), np.int32)
+                tf2 = np.empty(ROW_F * cap)
+                top = _t.compact_append(ti, tf, ti2, tf2, arrays.fbuf, arrays.ibuf, seq, t,
+                                        next_commit, newest)
+                self.ti, self.tf = ti2, tf2
+                self._synced()
+                return top
+            arrays.grow()  # TREE_OVERFLOW: the kernel's buffers were too small
 
     def live_nodes(self, view: NetworkView) -> tuple[dict[int, Node], dict[int, int]]:
         """The live states as nodes (segment -> node), and node id -> row.
@@ -187,8 +230,9 @@ class CandidateTree:
         nodes: dict[int, Node] = {}
         rows: dict[int, int] = {}
         parents: dict[int, Node] = {}
+        ti = self.ti
         for r in range(self.lo, self.hi):
-            p = int(self.ti[r, _t.I_PARENT])
+            p = ti.item(ROW_I * r + K_PARENT)
             parent = None
             if p >= 0:
                 parent = parents.get(p)
@@ -211,29 +255,34 @@ class CandidateTree:
         shift = self.lo - old_lo  # a compaction moves the live block, keeping its order
         lo = self.n
         k = len(new)
+        ti = self.ti
         if k:
             # the rows gathered first and written with one assignment per array (a
             # bridged step brings tens to hundreds of states; a numpy write each costs)
-            ints: list[tuple[int, int, int, int, int]] = []
-            floats: list[tuple[float, float, float, float]] = []
+            ints: list[int] = []
+            floats: list[float] = []
             flat: list[int] = []  # the vias, one after another
-            nv = self.nv
+            nv0 = nv = self.nv
             for node in new.values():
                 via = node.via
                 parent = -1 if node.parent is None else rows[id(node.parent)] + shift
-                ints.append((node.seg, node.seq, parent, nv, len(via)))
+                ints += (node.seg, node.seq, parent, nv, len(via))
                 # the matched point is not kept: it is node.x, node.y recomputed (see node)
-                floats.append((node.low, node.pos, node.cost, node.t))
+                floats += (node.low, node.pos, node.cost, node.t)
                 if via:
                     flat.extend(via)
                     nv += len(via)
-            self.ti[lo:lo + k] = ints
-            self.tf[lo:lo + k] = floats
+            ti[HEAD + ROW_I * lo:HEAD + ROW_I * (lo + k)] = ints
+            self.tf[ROW_F * lo:ROW_F * (lo + k)] = floats
             if flat:
-                self.tv[self.nv:nv] = flat
-            self.nv = nv
+                vb = self._via_base()
+                ti[vb + nv0:vb + nv] = flat
+            ti[H_NV] = nv
+        if ti is not _NO_TI:
+            ti[H_LO] = lo
+            ti[H_HI] = ti[H_N] = lo + k
         self.lo = lo
-        self.hi = self.n = lo + k
+        self.hi = lo + k
 
     @classmethod
     def from_nodes(cls, live: dict[int, Node]) -> CandidateTree:
@@ -262,9 +311,14 @@ class CandidateTree:
 
         The matched point is recomputed on ``view``'s geometry (:meth:`point`).
         """
-        seg, seq, _, v0, vn = self.ti[row].tolist()
-        low, pos, cost, t = self.tf[row].tolist()
-        via = tuple(self.tv[v0:v0 + vn].tolist()) if vn else ()
+        i = HEAD + ROW_I * row
+        seg, seq, _, v0, vn = self.ti[i:i + ROW_I].tolist()
+        low, pos, cost, t = self.tf[ROW_F * row:ROW_F * row + ROW_F].tolist()
+        if vn:
+            vb = self._via_base() + v0
+            via = tuple(self.ti[vb:vb + vn].tolist())
+        else:
+            via = ()
         a = view.sf[seg]
         b = view.st[seg]
         ax = view.vx[a]
@@ -280,17 +334,39 @@ class CandidateTree:
         expression the sweep wrote it with (:func:`livematch.core.sweep._offer`, the
         sweep kernel), evaluated in the same order, so the same float64 comes out.
         """
-        seg: int = self.ti.item(row, _t.I_SEG)
-        pos: float = self.tf.item(row, _t.F_POS)
+        seg: int = self.ti.item(ROW_I * row + K_SEG)
+        pos: float = self.tf.item(ROW_F * row + F_POS)
         a = view.sf[seg]
         b = view.st[seg]
         ax = view.vx[a]
         ay = view.vy[a]
         return seg, pos, ax + pos * (view.vx[b] - ax), ay + pos * (view.vy[b] - ay)
 
+    def seg_of(self, row: int) -> int:
+        """The segment of row ``row``."""
+        return self.ti.item(ROW_I * row + K_SEG)
+
     def seq_of(self, row: int) -> int:
         """The fix sequence number of row ``row``."""
-        return int(self.ti[row, _t.I_SEQ])
+        return self.ti.item(ROW_I * row + K_SEQ)
+
+    def row_ints(self, row: int) -> tuple[int, int, int, int, int]:
+        """Row ``row``'s ``seg, seq, parent, via_start, via_len``."""
+        i = HEAD + ROW_I * row
+        seg, seq, parent, v0, vn = self.ti[i:i + ROW_I].tolist()
+        return seg, seq, parent, v0, vn
+
+    def via(self, j: int) -> int:
+        """The ``j``-th via of the tree (a row's are ``via_len`` from its ``via_start``)."""
+        return self.ti.item(self._via_base() + j)
+
+    def costs(self) -> npt.NDArray[np.float64]:
+        """The live states' path costs, in row order (a view)."""
+        return self.tf[ROW_F * self.lo + F_COST:ROW_F * self.hi:ROW_F]
+
+    def best_cost(self) -> float:
+        """The lowest path cost among the live states (the tree must not be empty)."""
+        return float(self.costs().min())
 
     def best(self, prefer: int, score: npt.NDArray[np.float64] | None = None) -> int:
         """The row of the best live state (:func:`livematch.core.sweep.best_leaf`).
@@ -299,8 +375,8 @@ class CandidateTree:
         the lowest score wins instead of the lowest path cost; ties are broken alike.
         """
         if score is None:
-            return _t.best_row(self.ti, self.tf, self.lo, self.hi, prefer)
-        return _t.best_scored(self.ti, score, self.lo, self.hi, prefer)
+            return _t.best_row(self.ti, self.tf, prefer)
+        return _t.best_scored(self.ti, score, prefer)
 
     def live_scores(self, view: NetworkView, fix_xy: npt.NDArray[np.float64], fix_seq0: int,
                     first: int, inv_two_sigma2: float, tau_s: float,
@@ -310,7 +386,7 @@ class CandidateTree:
         ``view``: the network (for the matched points). ``fix_xy[i]`` is the fix of
         sequence number ``fix_seq0 + i``; states older than fix ``first`` are not looked at.
         """
-        return _t.live_scores(sweep_arrays(view).seg_geo, self.ti, self.tf, self.lo, self.hi,
+        return _t.live_scores(sweep_arrays(view).seg_geo, self.ti, self.tf,
                               fix_xy, fix_seq0, first, inv_two_sigma2, 1.0 / tau_s, max_dt)
 
     def live_answer(self, view: NetworkView, prefer: int, fix_xy: npt.NDArray[np.float64],
@@ -321,13 +397,13 @@ class CandidateTree:
         Ranked by :meth:`live_scores` over ``fix_xy[:fix_n]`` when ``tau_s`` > 0, else by
         path cost; ``split`` is -1 when ``margin`` is not positive.
         """
-        return _t.live_answer(sweep_arrays(view).seg_geo, self.ti, self.tf, self.tv, self.lo,
-                              self.hi, prefer, fix_xy, fix_n, fix_seq0, first, inv_two_sigma2,
+        return _t.live_answer(sweep_arrays(view).seg_geo, self.ti,
+                              self.tf, prefer, fix_xy, fix_n, fix_seq0, first, inv_two_sigma2,
                               1.0 / tau_s if tau_s > 0.0 else 0.0, max_dt, margin)
 
     def common_ancestor(self, floor: int) -> int:
         """The live states' deepest common ancestor, -1 if none at or above fix ``floor``."""
-        return _t.block_ancestor(self.ti, self.lo, self.hi, floor)
+        return _t.block_ancestor(self.ti, floor)
 
     def commit_point(self, next_commit: int, newest: int, cut: bool = False) -> int:
         """The deepest common ancestor of the live states, taken back to fix ``newest``.
@@ -338,7 +414,7 @@ class CandidateTree:
         ``next_commit - 1`` (:meth:`trim`'s cut, without a forced prune; the answer is the
         same either way).
         """
-        return _t.cut_and_check(self.ti, self.lo, self.hi, next_commit, newest, cut)
+        return _t.cut_and_check(self.ti, next_commit, newest, cut)
 
     def ancestor_at(self, row: int, seq: int) -> int:
         """The ancestor of ``row`` (itself included) with the largest seq <= ``seq``."""
@@ -352,8 +428,9 @@ class CandidateTree:
         (one value per live row, in row order).
         """
         if score is None:
-            score = self.tf[self.lo:self.hi, _t.F_COST]
-        return _t.junction_split(self.ti, self.tv, self.lo, self.hi, best, margin, score)
+            score = self.costs()
+        return _t.junction_split(self.ti, self.tf, best, margin,
+                                 score)
 
     def driven_since(self, row: int, anc: int, slen: npt.NDArray[np.float64]) -> float:
         """Metres driven on ``row``'s path since the end of ancestor ``anc``'s segment.
@@ -361,7 +438,7 @@ class CandidateTree:
         ``slen``: every segment's length (metres). Negative while ``row`` is still on
         ``anc``'s segment.
         """
-        return float(_t.driven_since(self.ti, self.tf, self.tv, slen, row, anc))
+        return float(_t.driven_since(self.ti, self.tf, slen, row, anc))
 
     def chain(self, view: NetworkView, top: int,
               min_seq: int) -> tuple[list[Node], Node | None]:
@@ -387,7 +464,7 @@ class CandidateTree:
     # ---------------------------------------------------------------- cutting
     def prune(self, row: int) -> None:
         """Keep only the live states descending from ``row``."""
-        self.hi = _t.prune_live(self.ti, self.tf, self.tv, self.lo, self.hi, row)
+        self.hi = _t.prune_live(self.ti, self.tf, row)
 
     def trim(self, next_commit: int, seq: int, trim_seq: int, max_lag: int,
              prefer: int) -> tuple[int, int]:
@@ -395,51 +472,89 @@ class CandidateTree:
 
         Returns the new trim point and the seq of the state a forced prune kept (-1).
         """
-        self.hi, trim_seq, forced = _t.trim(self.ti, self.tf, self.tv, self.lo, self.hi,
-                                            next_commit, seq, trim_seq, max_lag, prefer)
+        trim_seq, forced, self.hi = _t.trim(self.ti, self.tf, next_commit, seq, trim_seq,
+                                            max_lag, prefer)
         return trim_seq, forced
 
-    def packed(self) -> tuple[npt.NDArray[np.int32], npt.NDArray[np.float64],
-                              npt.NDArray[np.int32], int]:
-        """The rows still needed, tight, and the live count (the live block is last).
+    def packed(self) -> CandidateTree:
+        """A copy holding the rows still needed, tight (the live block is last).
 
-        New arrays, exactly as long as needed; the tree itself is not changed.
+        New arrays, exactly as long as needed; this tree is not changed. An empty tree
+        gives an empty tree (sharing the module's empty header).
         """
-        rows, vias = _t.kept_rows(self.ti, self.n, self.lo, self.hi)
-        ti = np.empty((rows, _t.ROW_I), np.int32)
-        tf = np.empty((rows, _t.ROW_F))
-        tv = np.empty(vias, np.int32)
-        _t.compact_into(self.ti, self.tf, self.tv, self.n, self.lo, self.hi, ti, tf, tv)
-        return ti, tf, tv, self.hi - self.lo
+        out = CandidateTree()
+        if self.ti.item(H_N):
+            rows, vias = _t.kept_rows(self.ti)
+            out.ti = np.empty(HEAD + ROW_I * rows + vias, np.int32)
+            out.tf = np.empty(ROW_F * rows)
+            _t.compact_into(self.ti, self.tf, out.ti, out.tf)
+            out._synced()
+        return out
+
+    def packed_parts(self) -> tuple[int, int, int, tuple[memoryview, memoryview, memoryview]]:
+        """The state of :meth:`packed` without the tree: rows, vias, live states, :meth:`parts`.
+
+        (A checkpoint writes every level's tree this way: no tree object is made.)
+        """
+        if not self.ti.item(H_N):
+            return 0, 0, 0, (_NO_BYTES, _NO_BYTES, _NO_BYTES)
+        rows, vias = _t.kept_rows(self.ti)
+        ti = np.empty(HEAD + ROW_I * rows + vias, np.int32)
+        tf = np.empty(ROW_F * rows)
+        _t.compact_into(self.ti, self.tf, ti, tf)
+        flat = ti.data
+        end = HEAD + ROW_I * rows
+        return rows, vias, self.hi - self.lo, (flat[HEAD:end], tf.data, flat[end:])
+
+    def parts(self) -> tuple[memoryview, memoryview, memoryview]:
+        """The rows' ints, the rows' floats and the vias in use, as buffers.
+
+        The bytes of a tight tree's (:meth:`packed`) three parts are what the tracker
+        state (``LMT4``) writes: ``n`` rows of ``ROW_I`` int32, ``n`` rows of ``ROW_F``
+        float64, ``nv`` int32 vias.
+        """
+        n = self.n
+        vb = self._via_base()
+        return (self.ti[HEAD:HEAD + ROW_I * n].data, self.tf[:ROW_F * n].data,
+                self.ti[vb:vb + self.nv].data)
 
     @classmethod
     def unpacked(cls, ti: npt.NDArray[np.int32], tf: npt.NDArray[np.float64],
-                 tv: npt.NDArray[np.int32], live: int, copy: bool = True) -> CandidateTree:
-        """The tree :meth:`packed` gave (arrays copied, so read-only buffers will do).
+                 tv: npt.NDArray[np.int32], live: int) -> CandidateTree:
+        """The tree of ``rows`` rows: their ints ``ti``, floats ``tf`` and the vias ``tv``.
 
-        ``copy`` False: the tree takes the arrays as they are (they must be writable
-        and its own, such as :meth:`packed`'s). An empty tree, or one without vias,
-        shares the module's empty arrays instead of holding arrays of its own (about
-        120 bytes each): nothing is written into them before a compaction has given the
-        tree arrays with room.
+        ``ti`` and ``tf`` flat (``ROW_I`` / ``ROW_F`` values a row) or one row a line.
+        Copied into arrays of the tree's own (so read-only buffers will do), exactly as
+        long as needed; the live block is the last ``live`` rows. An empty tree shares
+        the module's empty header instead of holding arrays of its own.
         """
         tree = cls()
-        if len(ti):
-            tree.ti = np.array(ti, dtype=np.int32, copy=copy)
-            tree.tf = np.array(tf, dtype=np.float64, copy=copy)
-        if len(tv):
-            tree.tv = np.array(tv, dtype=np.int32, copy=copy)
-        tree.n = tree.hi = len(ti)
-        tree.nv = len(tv)
-        tree.lo = tree.n - live
+        rows = len(tf) if tf.ndim == 2 else len(tf) // ROW_F
+        if rows:
+            nv = len(tv)
+            end = HEAD + ROW_I * rows
+            buf = np.zeros(end + nv, np.int32)  # the header's other slots 0
+            buf[HEAD:end] = ti if ti.ndim == 1 else ti.reshape(-1)
+            buf[end:] = tv
+            buf[H_N] = rows
+            buf[H_NV] = nv
+            buf[H_LO] = tree.lo = rows - live
+            buf[H_HI] = tree.hi = rows
+            tree.ti = buf
+            if tf.ndim == 1:
+                tree.tf = np.array(tf, dtype=np.float64)
+            else:  # numpy's own flat array (a reshaped copy would keep its 2-d base alive)
+                tree.tf = np.empty(ROW_F * rows)
+                tree.tf[:] = tf.reshape(-1)
         return tree
 
     def rows(self, view: NetworkView) -> list[Node]:
         """Every row still needed (after a compaction), as linked nodes in row order."""
         self.compact()
         nodes: list[Node] = []
+        ti = self.ti
         for r in range(self.n):
-            p = int(self.ti[r, _t.I_PARENT])
+            p = ti.item(ROW_I * r + K_PARENT)
             nodes.append(self.node(view, r, nodes[p] if p >= 0 else None))
         return nodes
 
@@ -488,9 +603,8 @@ def warm_up() -> None:
     # the compaction and append after a full tree (nothing to append here), and the
     # route monitor's step
     arrays = sweep_arrays(view_of(net))
-    _t.compact_append(tree.ti, tree.tf, tree.tv, tree.n, tree.lo, tree.hi, tree.ti.copy(),
-                      tree.tf.copy(), tree.tv.copy(), arrays.fbuf, arrays.ibuf, 0, 0.0, 0, 0,
-                      0, -1)
+    _t.compact_append(tree.ti, tree.tf, tree.ti.copy(), tree.tf.copy(), arrays.fbuf,
+                      arrays.ibuf, 0, 0.0, 0, -1)
     rows = np.array([(n.seg, n.low, n.pos, n.x, n.y, n.cost) for n in live.values()])
     _, rows, driven = window_step(
         arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf,

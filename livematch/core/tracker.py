@@ -78,16 +78,7 @@ from collections.abc import Iterator
 
 import numpy as np
 
-from livematch.core._tree_kernel import (
-    F_COST,
-    I_PARENT,
-    I_SEG,
-    I_SEQ,
-    I_VIA0,
-    I_VIAN,
-    ROW_F,
-    ROW_I,
-)
+from livematch.core._tree_kernel import ROW_F, ROW_I
 from livematch.core.candidates import DIED, CandidateTree
 from livematch.core.events import Assignment, Commit, Event, Filtered, MatchedFix
 from livematch.core.fastsweep import sweep_arrays
@@ -404,7 +395,7 @@ class Tracker:
                 held = self._hold_at_stand(deciding, best, seq, recent)
             tree = deciding.tree
             seg, pos, x, y = held or tree.point(self._view, best)
-            self.last_seg = tree.ti.item(best, I_SEG)
+            self.last_seg = tree.seg_of(best)
             events.append(Assignment(
                 self.vehicle, fix.t, seg, pos * self._view.slen[seg],
                 x, y, deciding.eps, seq - deciding.cert_seq + 1,
@@ -672,7 +663,7 @@ class Tracker:
         tree = level.tree
         s = self.settings
         if split >= 0 and tree.driven_since(best, split, self.network.seg_len) <= s.junction_hold_m:
-            seg = int(tree.ti[split, 0])
+            seg = tree.seg_of(split)
             x, y = _point(self._view, seg, 1.0)
             if math.hypot(x - fix.x, y - fix.y) <= level.eps:
                 return seg, 1.0, x, y
@@ -823,19 +814,14 @@ class Tracker:
         """
         tree = level.tree
         anc = tree.ancestor_at(best, anchor)
-        ti = tree.ti
-        seg = ti.item(anc, I_SEG)
-        since = ti.item(anc, I_SEQ)
-        parent = ti.item(anc, I_PARENT)
-        vias = ti.item(anc, I_VIAN)
+        seg, since, parent, via0, vias = tree.row_ints(anc)
         view = self._view
         held = tree.point(view, anc)
         if (parent >= 0 and held[1] * view.slen[seg] <= self.settings.sigma_m
-                and (vias or ti.item(parent, I_SEG) != seg)):
+                and (vias or tree.seg_of(parent) != seg)):
             # the stand began just past a vertex: report that vertex, at the end of the
             # segment the path came in by (the branch beyond it is not yet known)
-            seg_in = (tree.tv.item(ti.item(anc, I_VIA0) + vias - 1) if vias
-                      else ti.item(parent, I_SEG))
+            seg_in = tree.via(via0 + vias - 1) if vias else tree.seg_of(parent)
             x, y = _point(view, seg_in, 1.0)
             held = (seg_in, 1.0, x, y)
         if level.cert_seq > since:
@@ -1076,7 +1062,7 @@ class Tracker:
         # the state just before the stretch (a compiled walk; no nodes built for the
         # usual case, a stretch that goes on from the last committed state)
         before = tree.ancestor_at(row, self.next_commit - 1)
-        if tree.seq_of(before) == last[2] and int(tree.ti[before, 0]) == last[0]:
+        if tree.seq_of(before) == last[2] and tree.seg_of(before) == last[0]:
             return False
         chain, _ = tree.chain(self._view, row, self.next_commit)
         if not chain:
@@ -1545,15 +1531,15 @@ def _pack_levels(levels: list[Level],
                  arrays: list[bytes | memoryview]) -> list[list[float | int]]:
     """The header rows of ``levels`` for :meth:`Tracker.to_bytes`; their arrays go to ``arrays``.
 
-    The arrays' buffers (tight, C-ordered copies from :meth:`CandidateTree.packed`), not
-    copies of their bytes: ``bytes.join`` reads them.
+    The arrays' buffers (the parts of tight copies,
+    :meth:`CandidateTree.packed_parts`), not copies of their bytes: ``bytes.join`` reads
+    them.
     """
     rows: list[list[float | int]] = []
     for lv in levels:
-        ti, tf, tv, live = lv.tree.packed()
-        rows.append([lv.eps, lv.tree_seq, lv.cert_seq, lv.cert_t, lv.trim_seq,
-                     len(ti), len(tv), live])
-        arrays += (ti.data, tf.data, tv.data)
+        n, nv, live, parts = lv.tree.packed_parts()
+        rows.append([lv.eps, lv.tree_seq, lv.cert_seq, lv.cert_t, lv.trim_seq, n, nv, live])
+        arrays += parts
     return rows
 
 
@@ -1578,10 +1564,12 @@ def _unpack_levels(levels: list[Level], rows: list[list[float | int]], rest: mem
         if nr < 0 or nv < 0 or nxt > end:
             raise BadStateError("corrupt tracker state: candidate tree cut short")
         if nr:
-            ti = np.frombuffer(rest, np.int32, nr * ROW_I, at).reshape(nr, ROW_I)
-            tf = np.frombuffer(rest, np.float64, nr * row_f, at_f).reshape(nr, row_f)
+            ti = np.frombuffer(rest, np.int32, nr * ROW_I, at)
+            tf = np.frombuffer(rest, np.float64, nr * row_f, at_f)
             tv = np.frombuffer(rest, np.int32, nv, at_v)
-            lv.tree = CandidateTree.unpacked(ti, tf[:, _V2_KEPT] if v2 else tf, tv, int(live))
+            if v2:
+                tf = tf.reshape(nr, row_f)[:, _V2_KEPT]
+            lv.tree = CandidateTree.unpacked(ti, tf, tv, int(live))
         else:
             lv.tree = CandidateTree()
         at = nxt
@@ -1644,8 +1632,7 @@ class _Before:
 def _copy_level(level: Level) -> Level:
     """A copy of ``level`` whose tree holds only the rows still needed."""
     out = Level(level.eps)
-    ti, tf, tv, live = level.tree.packed()  # already copies: no second copy
-    out.tree = CandidateTree.unpacked(ti, tf, tv, live, copy=False)
+    out.tree = level.tree.packed()
     out.tree_seq, out.cert_seq, out.cert_t = level.tree_seq, level.cert_seq, level.cert_t
     out.trim_seq = level.trim_seq
     return out
@@ -1653,7 +1640,7 @@ def _copy_level(level: Level) -> Level:
 
 def _best_cost(tree: CandidateTree) -> float:
     """The lowest path cost among the live states of a non-empty tree."""
-    return float(tree.tf[tree.lo:tree.hi, F_COST].min())
+    return tree.best_cost()
 
 
 def _goes_on(level: Level, seq: int) -> bool:
