@@ -83,6 +83,7 @@ def test_load_config_eps_levels_not_increasing(tmp_path: Path) -> None:
     ("[matcher]\nerror_tau_s = -30\n", "matcher.error_tau_s must be a number >= 0, got -30"),
     ("[matcher]\njunction_hold_m = -5\n", "matcher.junction_hold_m must be a number >= 0, got -5"),
     ("[matcher]\nspeed = 3\n", "unknown key matcher.speed"),
+    ("[matcher]\nsparse_stand_wait = 1\n", "matcher.sparse_stand_wait must be true or false"),
     ("[daemon]\nx = 1\n", "unknown section [daemon]"),
     ("title = 'x'\n", "top-level key 'title' must be a [section] table"),
     ("[mqtt\n", "not valid TOML"),

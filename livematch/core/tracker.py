@@ -402,7 +402,7 @@ class Tracker:
                 fix.t - deciding.cert_t,
             ))
         self._settle(seq, fix.t, dt, salvage, events, hold_newest=before is not None,
-                     tops=tops)
+                     tops=tops, stood=stood)
         if prev is not None and fix.t - prev[0] >= SPARSE_S:
             # a vehicle reporting this rarely spends most of its time idle: keep its
             # trees without spare room (a compaction per level; decisions unchanged)
@@ -859,6 +859,7 @@ class Tracker:
     def _settle(
         self, seq: int, t: float, dt: float, salvage: list[tuple[Level, CandidateTree]],
         events: list[Event], hold_newest: bool = False, tops: _Tops | None = None,
+        stood: bool = False,
     ) -> None:
         """Commit what is settled. ``hold_newest``: not fix ``seq`` (the spike test may drop it).
 
@@ -898,7 +899,7 @@ class Tracker:
                 else:
                     top = tree.commit_point(self.next_commit, newest)
                 if (top >= 0 and not self._defers(level, top, covering)
-                        and not self._into_stand(t)):
+                        and not self._into_stand(t, dt, stood)):
                     self._commit_chain(tree, top, events, prune=None)
                     covering = self._covering()
                     progressed = True
@@ -932,7 +933,7 @@ class Tracker:
             stale -= 1
         self._trim(seq, t)
 
-    def _into_stand(self, t: float) -> bool:
+    def _into_stand(self, t: float, dt: float = 0.0, stood: bool = False) -> bool:
         """Whether an agreed commit waits because the vehicle stood until lately.
 
         With ``stand_commit_wait`` (and ``stop_turns``, which keeps ``stood_t``, the last time
@@ -942,8 +943,20 @@ class Tracker:
         from a state inside a short branch that the path comes back out of only when
         the vehicle leaves, and :meth:`_close_stand_loops` can cut such a loop out only
         when one commit holds the whole of it. Forced commits (``max_lag_*``) still go on.
+
+        With ``sparse_stand_wait``, at more than ``gap_s`` between fixes (``dt``, the step
+        into the newest fix, time ``t``), they also wait while that step or the step
+        before it (``stood``, as :meth:`_accept` computed it for the bridge) was slower
+        than ``STOOD_MPS``. Fixes 15-30 s apart show a stand as one or two slow steps, not
+        as ``STAND_S`` of fixes followed by ``STAND_AFTER_S`` of moving ones, and the
+        commit made at the fix leaving the stand ended inside the loop: the loop closes
+        in that very step (the way back enters the stand vertex again).
         """
-        return (self.settings.stand_commit_wait and self.stood_t is not None
+        s = self.settings
+        if s.sparse_stand_wait and dt > s.gap_s and (
+                stood or (self.speed is not None and self.speed < STOOD_MPS)):
+            return True
+        return (s.stand_commit_wait and self.stood_t is not None
                 and t - self.stood_t <= STAND_AFTER_S)
 
     def _stood_lately(self, fix: Fix, prev_t: float | None) -> bool:
