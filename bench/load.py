@@ -20,7 +20,10 @@ on this machine and loopback only:
   worker receives the whole feed and drops the other's vehicles) or ``livematch-2s``
   (the same group with the shard in the input topic, ``fleet/{shard}/+/position``, the
   generators publishing each vehicle on its shard's topic: each worker subscribes only
-  to the shards it holds or stands by for); for breaking the group's cost down,
+  to the shards it holds or stands by for, the standby ones at livematch's default
+  ``group.standby_qos`` = 0) or ``livematch-2s1`` (the same with ``standby_qos = 1``:
+  every shard topic at QoS 1, as before that option existed); for breaking the group's
+  cost down,
   ``livematch-1r`` (one worker, Redis store, no group) and ``livematch-1g`` (a group of
   one worker: it holds all shards, through Redis);
 - ``--generators`` **load generator** processes (paho-mqtt directly, QoS 1, up to 1,000
@@ -324,7 +327,11 @@ def stop_all(procs: list[subprocess.Popen[bytes]], timeout: float = STOP_TIMEOUT
 
 
 def scrape_published(port: int) -> dict[str, float]:
-    """``livematch_published_total`` by kind, read from a daemon's /metrics."""
+    """``livematch_published_total`` by kind, read from a daemon's /metrics.
+
+    Also, under the keys ``@held`` and ``@received``, ``livematch_shards_held`` and
+    ``livematch_messages_received_total`` (the shares of a worker group).
+    """
     import urllib.request
 
     with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=5) as r:
@@ -334,6 +341,10 @@ def scrape_published(port: int) -> dict[str, float]:
         if line.startswith("livematch_published_total{"):
             kind = line.split('kind="', 1)[1].split('"', 1)[0]
             out[kind] = float(line.rsplit(" ", 1)[1])
+        elif line.startswith("livematch_shards_held "):
+            out["@held"] = float(line.rsplit(" ", 1)[1])
+        elif line.startswith("livematch_messages_received_total "):
+            out["@received"] = float(line.rsplit(" ", 1)[1])
     return out
 
 
@@ -603,11 +614,17 @@ def probe(argv: list[str], out_path: str, nodelay: bool, freeze: bool, inflight:
 
 # --------------------------------------------------------------------------- one step
 def daemon_config(folder: Path, port: int, store: str, worker: str, group: str,
-                  topic: str = IN_TOPIC, metrics_port: int = 0) -> Path:
-    """A daemon configuration; ``metrics_port`` > 0 opens its /metrics on that port."""
+                  topic: str = IN_TOPIC, metrics_port: int = 0,
+                  standby_qos: int | None = None) -> Path:
+    """A daemon configuration; ``metrics_port`` > 0 opens its /metrics on that port.
+
+    ``standby_qos`` sets ``group.standby_qos`` (None: livematch's default).
+    """
     cfg = folder / f"{worker}.toml"
     listen = f"127.0.0.1:{metrics_port}" if metrics_port else ""
     group_lines = f'[group]\nname = "{group}"\nworker = "{worker}"\nlease_s = 5\n' if group else ""
+    if group and standby_qos is not None:
+        group_lines += f"standby_qos = {standby_qos}\n"
     cfg.write_text(f"""
 [inputs]
 network = "{NETWORK}"
@@ -703,7 +720,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
     sut: list[subprocess.Popen[bytes]] = []
     gens: list[subprocess.Popen[bytes]] = []
     sub: Subscriber | None = None
-    shards = GROUP_SHARDS if system == "livematch-2s" else 0
+    shards = GROUP_SHARDS if system.startswith("livematch-2s") else 0
+    standby_qos = 1 if system == "livematch-2s1" else None
     metrics_ports: list[int] = []  # every livematch worker's /metrics and /readyz
     ready_s = 0.0
     exit_codes: list[int | None] = []
@@ -742,7 +760,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
             for w in range(workers):
                 metrics_ports.append(free_port())
                 cfg = daemon_config(folder, port, store, f"w{w}", group,
-                                    SHARD_TOPIC if shards else IN_TOPIC, metrics_ports[-1])
+                                    SHARD_TOPIC if shards else IN_TOPIC, metrics_ports[-1],
+                                    standby_qos)
                 cmd = [sys.executable, "-m", "livematch.cli"]
                 if CPROFILE_TO is not None:  # --cprofile: each worker's profile at its exit
                     cmd = [sys.executable, "-m", "cProfile", "-o",
@@ -893,7 +912,13 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         "system_sleeps": sum(woken.values()),  # voluntary context switches (wake-ups)
         "published_by_kind": {k: sum(b.get(k, 0.0) - a.get(k, 0.0)
                                      for a, b in zip(published0, published1, strict=True))
-                              for k in sorted({k for d in published1 for k in d})}
+                              for k in sorted({k for d in published1 for k in d})
+                              if not k.startswith("@")}
+        if published1 else None,
+        # per worker: shards held at the end of the step, messages received during it
+        "worker_shards_held": [d.get("@held") for d in published1] if published1 else None,
+        "worker_received": [d.get("@received", 0.0) - a.get("@received", 0.0)
+                            for a, d in zip(published0, published1, strict=True)]
         if published1 else None,
         "cpu_window": [window0, window1],
         "sustained": sustained,
@@ -1110,18 +1135,24 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
     and the generators. Empty when the run has no livematch-1 or no two-worker system.
     """
     rows = r["steps"]
-    pairs = [s for s in r["systems"] if s in ("livematch-2", "livematch-2s")]
+    pairs = [s for s in r["systems"] if s in ("livematch-2", "livematch-2s", "livematch-2s1")]
     if "livematch-1" not in r["systems"] or not pairs:
         return []
     out = []
     for s in pairs:
         each = []
+        shares: list[str] = []
         for k in range(1, r["repeat"] + 1):
             one = [row for row in rows if row["repeat"] == k and row["system"] == "livematch-1"]
             two = [row for row in rows if row["repeat"] == k and row["system"] == s]
             if one and two and len(two[0].get("worker_ms_per_fix") or []) == 2:
                 w = two[0]["worker_ms_per_fix"]
                 each.append((one[0]["ms_per_fix"]["system"], w[0], w[1]))
+                held = two[0].get("worker_shards_held")
+                got = two[0].get("worker_received")
+                if held and got and None not in held:
+                    shares.append(f"{held[0]:.0f} / {held[1]:.0f} shards, "
+                                  f"{got[0]:.0f} / {got[1]:.0f} messages")
         if each:
             ratios = [c1 / max(w0, w1) for c1, w0, w1 in each]
             out.append(
@@ -1130,7 +1161,9 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
                                           for c1, w0, w1 in each)
                 + "; predicted throughput of two workers on two free cores, c1 / max(w0, "
                 f"w1): {', '.join(f'{x:.2f}' for x in ratios)} (median "
-                f"{statistics.median(ratios):.2f}) times one worker's (goal >= 1.6).")
+                f"{statistics.median(ratios):.2f}) times one worker's (goal >= 1.6)."
+                + (" Held at the end of the step and received during it, w0 / w1, per "
+                   "round: " + "; ".join(shares) + "." if shares else ""))
     return out
 
 

@@ -26,7 +26,7 @@ from test_faults_suite import metric_sum
 from test_service_shards_failover import checkpoint_times
 
 from livematch.mapdata.netfile import save_network
-from livematch.service.shards import rank_workers, shard_of
+from livematch.service.shards import assign_shards, shard_of
 
 pytest_plugins = ("fixtures_services",)
 
@@ -44,13 +44,9 @@ def start_worker(config: Path, worker: str, port: int, log: Path) -> subprocess.
 
 
 def ranked(workers: tuple[str, ...]) -> dict[str, tuple[set[int], set[int]]]:
-    """Each worker's (shards held, shards stood by for) by rendezvous ranking."""
-    out: dict[str, tuple[set[int], set[int]]] = {w: (set(), set()) for w in workers}
-    for shard in range(SHARDS):
-        first, second = rank_workers(shard, workers)[:2]
-        out[first][0].add(shard)
-        out[second][1].add(shard)
-    return out
+    """Each worker's (shards held, shards stood by for) by the bounded-load assignment."""
+    assignment = assign_shards(SHARDS, workers)
+    return {w: (assignment.held_by(w), assignment.standing_by(w)) for w in workers}
 
 
 async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
@@ -131,7 +127,7 @@ async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
                 await pub.publish(f"{prefix}/fleet/{wrong}/sv-0/position",
                                   drive("sv-0", 1, first=200)[0][1], qos=1)
             await col.wait_for("/out/rejects", 1)
-            victim = rank_workers(shard_of("sv-0", SHARDS), WORKERS)[0]
+            victim = assign_shards(SHARDS, WORKERS).holder[shard_of("sv-0", SHARDS)]
             procs[victim].send_signal(signal.SIGKILL)
             await asyncio.to_thread(procs[victim].wait, 10)
             survivors = tuple(w for w in WORKERS if w != victim)
