@@ -9,6 +9,8 @@ import sys
 import time
 from pathlib import Path
 
+import aiomqtt
+import pytest
 import redis.asyncio as aioredis
 from services import (
     Collector,
@@ -23,6 +25,7 @@ from services import (
     write_config,
 )
 from test_faults_suite import metric_sum
+from test_service_shards import group_daemon, wait_until
 from test_service_shards_failover import checkpoint_times
 
 from livematch.mapdata.netfile import save_network
@@ -51,10 +54,12 @@ def ranked(workers: tuple[str, ...]) -> dict[str, tuple[set[int], set[int]]]:
 
 async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
         mosquitto: Mosquitto, redis_server: RedisServer, prefix: str, tmp_path: Path) -> None:
-    """Three workers on ``{prefix}/fleet/{shard}/+/position``: each holds the shards it
-    ranks first for and receives only those and the ones it stands by for (exact
-    message counts); a fix on another shard's topic is a ``wrong_shard`` reject; after
-    a SIGKILL the standbys take the dead worker's shards: every fix is answered, no
+    """Three workers on ``{prefix}/fleet/{shard}/+/position``: each holds its share of
+    the bounded-load assignment (3 / 3 / 2 of 8) and receives only those shards and the
+    ones it stands by for (exact message counts); a fix on another shard's topic is a
+    ``wrong_shard`` reject; after a SIGKILL the standbys take the dead worker's shards
+    (and a shard whose holder lives moves once its new holder receives it): every fix
+    is answered, no
     checkpoint goes back, every vehicle's certificate window grows 1, 2, 3, ..."""
     net = tmp_path / "town.lmnet"
     save_network(town(), net)
@@ -154,3 +159,63 @@ async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
         for r in col.records(f"/out/match/{v}"):
             windows.setdefault(r["time"], set()).add(r["window_fixes"])
         assert [windows[t] for t in sorted(windows)] == [{k} for k in range(1, n_fixes + 1)], v
+
+
+async def test_shard_moves_only_once_its_new_holder_receives_it(
+        tmp_path: Path, mosquitto: Mosquitto, redis_server: RedisServer, prefix: str,
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    """A worker holding every shard sees a second member whose share is 4 of the 8: it
+    keeps matching those shards until the newcomer's record in Redis says it receives
+    their topics, then hands them over (released) and stands by for them: the broker
+    delivers their fixes at QoS 0 (the minimum of the publish QoS 1 and the
+    subscription's QoS 0, MQTT 5.0 section 3.8.4) and those of its own shards at QoS 1.
+    Its own record names every shard it receives."""
+    config = write_config(tmp_path, prefix, broker=mosquitto.url, store=redis_server.url,
+                          metrics="", topic="fleet/{shard}/+/position",
+                          extra='[group]\nname = "g"\nshards = 8\nlease_s = 1.0\n')
+    a = group_daemon(config, "a")
+    arrived: list[tuple[str, int]] = []
+    arrive = a._arrive
+
+    def spy(client: aiomqtt.Client, intake: object, message: aiomqtt.Message) -> None:
+        arrived.append((message.topic.value, message.qos))
+        arrive(client, intake, message)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(a, "_arrive", spy)
+    split = assign_shards(8, ["a", "b"])
+    theirs, ours = split.held_by("b"), split.held_by("a")
+    assert len(theirs) == len(ours) == 4
+    client = aioredis.Redis.from_url(redis_server.url)
+    task = asyncio.create_task(a.run())
+    try:
+        await wait_until(lambda: len(a._active) == 8, what="a holds all shards")
+        # "b" joins (a member entry that does not expire) but receives nothing yet
+        await client.zadd(f"{prefix}:group:g:members", {"b": 2 ** 50})
+        await asyncio.sleep(2.0)  # six rebalancing rounds (lease_s / 3)
+        assert len(a._active) == 8, "handed over before the new holder received the shard"
+        await client.hset(f"{prefix}:group:g:receives", "b",
+                          ",".join(str(s) for s in sorted(theirs)))
+        assert a.leases is not None
+        leases = a.leases
+        await wait_until(lambda: set(leases.held) == ours, what="b's shards handed over")
+        assert a._active == ours
+        for shard in theirs:
+            assert await client.get(f"{prefix}:{{s:{shard}}}:lease") is None  # released
+        await wait_until(lambda: a._subs == {s: 0 if s in theirs else 1 for s in range(8)},
+                         what="standby subscriptions at QoS 0")
+        assert await leases.receiving(["a"]) == {"a": set(range(8))}
+        vehicle = {s: next(f"q{i}" for i in range(1000) if shard_of(f"q{i}", 8) == s)
+                   for s in (min(theirs), min(ours))}
+        arrived.clear()
+        async with publisher(mosquitto.port) as pub:
+            for shard, v in vehicle.items():
+                await pub.publish(f"{prefix}/fleet/{shard}/{v}/position",
+                                  drive(v, 1)[0][1], qos=1)
+        await wait_until(lambda: len(arrived) == 2, what="both fixes received")
+        assert sorted(arrived) == sorted(
+            [(f"{prefix}/fleet/{min(theirs)}/{vehicle[min(theirs)]}/position", 0),
+             (f"{prefix}/fleet/{min(ours)}/{vehicle[min(ours)]}/position", 1)])
+    finally:
+        a.request_stop()
+        await asyncio.wait_for(task, 20)
+        await client.aclose()
