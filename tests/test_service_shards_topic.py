@@ -68,7 +68,8 @@ async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
                        topic="fleet/{shard}/+/position")
     ports = {w: free_port() for w in WORKERS}
     logs = {w: tmp_path / f"{w}.log" for w in WORKERS}
-    vehicles = [f"sv-{i}" for i in range(9)]
+    # sv-14 is on shard 6, which moves from w1 to w3 (both alive) when w2 is killed
+    vehicles = [f"sv-{i}" for i in (0, 1, 2, 3, 4, 14, 6, 7, 13)]
     n_fixes = 30
     feeds = {v: drive(v, n_fixes, start_x=100.0 + 400 * i) for i, v in enumerate(vehicles)}
     topic = {v: f"{prefix}/fleet/{shard_of(v, SHARDS)}/{v}/position" for v in vehicles}
@@ -136,6 +137,9 @@ async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
             procs[victim].send_signal(signal.SIGKILL)
             await asyncio.to_thread(procs[victim].wait, 10)
             survivors = tuple(w for w in WORKERS if w != victim)
+            moved = (assign_shards(SHARDS, WORKERS).holder[6],
+                     assign_shards(SHARDS, survivors).holder[6])
+            assert moved == ("w1", "w3")  # a hand-over between live workers (sv-14)
             await publish(15, n_fixes)
             await answered(n_fixes)
             await settle(survivors)
