@@ -22,8 +22,11 @@ on this machine and loopback only:
   generators publishing each vehicle on its shard's topic: each worker subscribes only
   to the shards it holds or stands by for, the standby ones at livematch's default
   ``group.standby_qos`` = 0) or ``livematch-2s1`` (the same with ``standby_qos = 1``:
-  every shard topic at QoS 1, as before that option existed); for breaking the group's
-  cost down,
+  every shard topic at QoS 1, as before that option existed) or ``livematch-2sk`` /
+  ``livematch-2sk1`` (the same two, but the generators send only vehicles of the shards
+  that worker w1 holds, the first ``rate`` vehicle ids whose shard it holds: w0 only
+  keeps every fix, so its CPU per fix is what a kept fix costs, through the broker,
+  and w1's what a matched one costs in a group); for breaking the group's cost down,
   ``livematch-1r`` (one worker, Redis store, no group) and ``livematch-1g`` (a group of
   one worker: it holds all shards, through Redis);
 - ``--generators`` **load generator** processes (paho-mqtt directly, QoS 1, up to 1,000
@@ -421,8 +424,11 @@ def feed_topic(vehicle: str, shards: int) -> str:
 
 
 def generate(port: int, pool_path: str, n: int, seconds: int, first: int, step: int,
-             shards: int) -> None:
+             shards: int, only_shards: str = "") -> None:
     """Publish vehicles first, first + step, ... < n at 1 Hz; print what was achieved.
+
+    With ``only_shards`` (comma-separated shard numbers) the n vehicles are the first n
+    ids ``v<i>`` whose shard is one of those, instead of v0 ... v(n-1).
 
     Protocol with the bench: prints ``ready`` once connected, reads ``go <epoch>`` (the
     start of second 0), publishes, waits for the acknowledgements and prints one JSON line.
@@ -430,9 +436,17 @@ def generate(port: int, pool_path: str, n: int, seconds: int, first: int, step: 
     import numpy as np
 
     pool = dict(np.load(pool_path))
-    mine = list(range(first, n, step))
+    ids = list(range(n))
+    if only_shards:
+        from livematch.service.shards import shard_of
+
+        wanted = {int(s) for s in only_shards.split(",")}
+        ids = [i for i in range(100 * n + 1000) if shard_of(f"v{i}", shards) in wanted][:n]
+    mine = ids[first::step]
     topics = {i: feed_topic(f"v{i}", shards) for i in mine}
-    plan = [(k + i / n, i, *position(pool, i, k)) for k in range(seconds) for i in mine]
+    slot = {i: j for j, i in enumerate(ids)}  # spread over each second by place, not id
+    plan = [(k + slot[i] / n, i, *position(pool, i, k)) for k in range(seconds)
+            for i in mine]
     acked = [0]
 
     def on_publish(*_a: Any) -> None:
@@ -481,6 +495,25 @@ def generate(port: int, pool_path: str, n: int, seconds: int, first: int, step: 
         "lag_p99_ms": round(lags[int(0.99 * (len(lags) - 1))] * 1000, 1) if lags else None,
         "lag_max_ms": round(lags[-1] * 1000, 1) if lags else None,
     }), flush=True)
+
+
+def py_spy_binary() -> str:
+    """py-spy beside this Python (``pip install py-spy`` in the venv), else on PATH."""
+    beside = Path(sys.executable).parent / "py-spy"
+    return str(beside) if beside.exists() else (shutil.which("py-spy") or str(beside))
+
+
+def shards_held(worker: str, workers: list[str], n_shards: int) -> set[int]:
+    """The shards ``worker`` holds with a ``{shard}`` topic, as the livematch imported
+    assigns them (bounded-load ``assign_shards``; before it, the first of
+    ``rank_workers``)."""
+    from livematch.service import shards
+
+    assign = getattr(shards, "assign_shards", None)
+    if assign is not None:
+        held: set[int] = assign(n_shards, workers).held_by(worker)
+        return held
+    return {s for s in range(n_shards) if shards.rank_workers(s, workers)[0] == worker}
 
 
 # ------------------------------------------------------------------- the relay role
@@ -721,7 +754,9 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
     gens: list[subprocess.Popen[bytes]] = []
     sub: Subscriber | None = None
     shards = GROUP_SHARDS if system.startswith("livematch-2s") else 0
-    standby_qos = 1 if system == "livematch-2s1" else None
+    standby_qos = 1 if system in ("livematch-2s1", "livematch-2sk1") else None
+    only = (",".join(str(s) for s in sorted(shards_held("w1", ["w0", "w1"], shards)))
+            if system.startswith("livematch-2sk") else "")
     metrics_ports: list[int] = []  # every livematch worker's /metrics and /readyz
     ready_s = 0.0
     exit_codes: list[int | None] = []
@@ -782,7 +817,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
             gens.append(subprocess.Popen(
                 [sys.executable, __file__, "--role", "generator", "--port", str(port),
                  "--pool", str(pool_path), "--n", str(rate), "--seconds", str(seconds),
-                 "--first", str(g), "--step", str(generators), "--shards", str(shards)],
+                 "--first", str(g), "--step", str(generators), "--shards", str(shards),
+                 "--only-shards", only],
                 env=env, stdin=subprocess.PIPE, stdout=subprocess.PIPE))
         procs.extend(gens)
         for gen in gens:
@@ -795,7 +831,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                    SPY_TO / f"{system}.{rate}.{time.time():.0f}.txt"
                    if SPY_TO is not None and system.startswith("livematch") else None)
         if spy_out is not None:
-            spy = subprocess.Popen([str(Path(sys.executable).parent / "py-spy"), "record",
+            spy = subprocess.Popen([py_spy_binary(), "record",
                                     "--pid", str(sut[0].pid), "--rate", "200", "--format",
                                     "raw", "--duration", str(seconds + 1), "--output",
                                     str(spy_out)],
@@ -1135,10 +1171,20 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
     and the generators. Empty when the run has no livematch-1 or no two-worker system.
     """
     rows = r["steps"]
+    out = []
+    for s in [s for s in r["systems"] if s.startswith("livematch-2sk")]:
+        each = [row["worker_ms_per_fix"] for row in rows if row["system"] == s
+                and len(row.get("worker_ms_per_fix") or []) == 2]
+        if each:
+            out.append(
+                f"{s} (every fix of a shard w1 holds, w0 only keeps them): CPU ms per fix "
+                "of w0 (kept) / w1 (matched), per round: "
+                + ", ".join(f"{k:.3f} / {m:.3f}" for k, m in each)
+                + f"; medians {statistics.median(k for k, _ in each):.3f} / "
+                f"{statistics.median(m for _, m in each):.3f}.")
     pairs = [s for s in r["systems"] if s in ("livematch-2", "livematch-2s", "livematch-2s1")]
     if "livematch-1" not in r["systems"] or not pairs:
-        return []
-    out = []
+        return out
     for s in pairs:
         each = []
         shares: list[str] = []
@@ -1447,6 +1493,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--first", type=int, default=0)
     ap.add_argument("--step", type=int, default=1)
     ap.add_argument("--shards", type=int, default=0)
+    ap.add_argument("--only-shards", default="")
     ap.add_argument("--rates", default="250,500,1000,2000,4000,8000,16000",
                     help="offered fixes/s to step through (= vehicles at 1 Hz)")
     ap.add_argument("--seconds", type=int, default=10, help="length of each step")
@@ -1554,7 +1601,7 @@ def main(argv: list[str] | None = None) -> int:
         return 0
     if args.role == "generator":
         generate(args.port, args.pool, args.n, args.seconds, args.first, args.step,
-                 args.shards)
+                 args.shards, args.only_shards)
         return 0
     if args.role == "relay":
         with contextlib.suppress(KeyboardInterrupt):

@@ -568,7 +568,8 @@ async def test_group_worker_stop_writes_final_checkpoint_releases_and_leaves(
 async def test_fix_of_another_shard_is_kept_and_acknowledged_on_arrival(
         group_config: Path, redis_url: str, prefix: str) -> None:
     """A fix of a shard the worker does not match is kept as it arrives and never
-    queued for matching; its acknowledgement waits behind messages queued before it;
+    queued for matching; its acknowledgement (QoS 1) waits behind messages queued
+    before it, and a QoS 0 one (a standby subscription) takes no place in the queue;
     a fix kept while the shard was matched is matched from the queue, unless a replay
     of the shard (lost and taken again meanwhile) already covered it."""
     daemon = group_daemon(group_config, "a")
@@ -576,12 +577,13 @@ async def test_fix_of_another_shard_is_kept_and_acknowledged_on_arrival(
     shard = shard_of(vehicle, 8)
     topic = f"{prefix}/fleet/{vehicle}/position"
     feed = drive(vehicle, 4)
-    # QoS 0: nothing to acknowledge, so the client below is never used
+    # QoS 0 (but one QoS 1 fix that only takes a place in the queue): nothing is
+    # acknowledged, so the client below is never used
     client = aiomqtt.Client("127.0.0.1", 1)
     intake = IntakeQueue(100, key_of=daemon._intake_key)
 
-    def fix(k: int) -> aiomqtt.Message:
-        return aiomqtt.Message(topic, feed[k][1], 0, False, k + 1, None)
+    def fix(k: int, qos: int = 0) -> aiomqtt.Message:
+        return aiomqtt.Message(topic, feed[k][1], qos, False, k + 1, None)
 
     async with managers(redis_url, prefix, "a", n_shards=8) as (leases,):
         daemon.leases = leases
@@ -589,12 +591,14 @@ async def test_fix_of_another_shard_is_kept_and_acknowledged_on_arrival(
         assert intake.empty()
         assert [e[3] for e in daemon._buffers[shard]] == [feed[0][1]]
         intake.put_nowait(aiomqtt.Message(topic, b"not json", 0, False, 90, None))
-        daemon._arrive(client, intake, fix(1))  # behind a queued message: ack only
+        daemon._arrive(client, intake, fix(1, qos=1))  # behind a queued message: ack only
+        assert (intake.qsize(), intake.waiting) == (2, 1)
+        daemon._arrive(client, intake, fix(1))  # QoS 0: no PUBACK, so no place either
         assert (intake.qsize(), intake.waiting) == (2, 1)
         intake.get_nowait()
         intake.get_nowait()
         assert intake.last_key == ACK_ONLY_KEY
-        assert len(daemon._buffers[shard]) == 2
+        assert len(daemon._buffers[shard]) == 3
         assert daemon.pipeline.counters["messages"] == 0  # nothing matched so far
 
         daemon._active.add(shard)  # this worker matches the shard from now on
@@ -610,9 +614,9 @@ async def test_fix_of_another_shard_is_kept_and_acknowledged_on_arrival(
         intake.get_nowait()
         assert not daemon._process(client, fix(3), intake.last_key, *intake.last_kept)
         assert daemon.pipeline.counters["messages"] == 1
-        assert [e[3] for e in daemon._buffers[shard]] == [p for _, p in feed]
+        assert [e[3] for e in daemon._buffers[shard]] == [feed[k][1] for k in (0, 1, 1, 2, 3)]
         # a message aiomqtt itself puts (paho's decoding) takes the same way
         intake.arrive = functools.partial(daemon._arrive, client, intake)
         daemon._active.discard(shard)
         intake.put_nowait(fix(3))  # a redelivery, say: kept again, not queued
-        assert intake.empty() and len(daemon._buffers[shard]) == 5
+        assert intake.empty() and len(daemon._buffers[shard]) == 6
