@@ -333,7 +333,8 @@ def scrape_published(port: int) -> dict[str, float]:
     """``livematch_published_total`` by kind, read from a daemon's /metrics.
 
     Also, under the keys ``@held`` and ``@received``, ``livematch_shards_held`` and
-    ``livematch_messages_received_total`` (the shares of a worker group).
+    ``livematch_messages_received_total`` (the shares of a worker group), and under
+    ``@gc`` the seconds its garbage collections took (``livematch_gc_pause_seconds``).
     """
     import urllib.request
 
@@ -348,6 +349,8 @@ def scrape_published(port: int) -> dict[str, float]:
             out["@held"] = float(line.rsplit(" ", 1)[1])
         elif line.startswith("livematch_messages_received_total "):
             out["@received"] = float(line.rsplit(" ", 1)[1])
+        elif line.startswith("livematch_gc_pause_seconds_sum{"):
+            out["@gc"] = out.get("@gc", 0.0) + float(line.rsplit(" ", 1)[1])
     return out
 
 
@@ -955,6 +958,9 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         "worker_shards_held": [d.get("@held") for d in published1] if published1 else None,
         "worker_received": [d.get("@received", 0.0) - a.get("@received", 0.0)
                             for a, d in zip(published0, published1, strict=True)]
+        if published1 else None,
+        "worker_gc_s": [round(d.get("@gc", 0.0) - a.get("@gc", 0.0), 4)
+                        for a, d in zip(published0, published1, strict=True)]
         if published1 else None,
         "cpu_window": [window0, window1],
         "sustained": sustained,

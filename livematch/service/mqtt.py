@@ -150,12 +150,16 @@ def drain(client: aiomqtt.Client, max_packets: int, budget_s: float = math.inf) 
             per_call = len(getattr(paho, "_out_messages", ())) + len(
                 getattr(paho, "_in_messages", ()))
             paho.loop_read()
-            read += max(1, per_call)
+            read += max(_READ_PACKETS_MIN, per_call)  # _read_packets' bound
     return read
 
 
 # Bytes asked of the kernel per read of the broker's socket (buffered_reads).
 _READ_SIZE = 65_536
+# Fewest whole packets handed to paho per read call (_read_packets; paho's own bound is
+# one per message in flight). A worker that publishes nothing (it only keeps fixes for
+# another worker, at QoS 0) would otherwise take one turn of the event loop per packet.
+_READ_PACKETS_MIN = 16
 
 
 class _BufferedSocket:
@@ -363,8 +367,9 @@ def _read_packets(paho: Any, sock: _BufferedSocket,
     empty, and each whole packet in it is handed to paho's ``_packet_handle`` as paho's
     reader does (the same ``_in_packet`` fields, reset afterwards, and the time of the
     last bytes received, which paho's keepalive reads), up to paho's own bound of
-    packets per call (one per message in flight, at least one). A packet not yet whole
-    in the buffer is left to paho's reader (which reads the rest from the socket).
+    packets per call (one per message in flight), but at least ``_READ_PACKETS_MIN``.
+    A packet not yet whole in the buffer is left to paho's reader (which reads the rest
+    from the socket).
     What the socket still holds is found by the event loop, which reports it readable
     again; bytes left in the buffer are read on by the scheduled callback of
     :func:`buffered_reads`. Errors end the connection as in paho (``_loop_rc_handle``).
@@ -384,7 +389,7 @@ def _read_packets(paho: Any, sock: _BufferedSocket,
             paho._easy_log(MQTT_LOG_ERR, "failed to receive on socket: %s", err)
             return paho._loop_rc_handle(MQTTErrorCode.MQTT_ERR_CONN_LOST)
     rc = MQTTErrorCode.MQTT_ERR_SUCCESS
-    for _ in range(max(1, len(paho._out_messages) + len(paho._in_messages))):
+    for _ in range(max(_READ_PACKETS_MIN, len(paho._out_messages) + len(paho._in_messages))):
         whole = sock.next_packet()
         if whole is None:
             if sock.leftover():  # part of a packet: paho reads the rest
