@@ -20,7 +20,13 @@ on this machine and loopback only:
   worker receives the whole feed and drops the other's vehicles) or ``livematch-2s``
   (the same group with the shard in the input topic, ``fleet/{shard}/+/position``, the
   generators publishing each vehicle on its shard's topic: each worker subscribes only
-  to the shards it holds or stands by for); for breaking the group's cost down,
+  to the shards it holds or stands by for, the standby ones at livematch's default
+  ``group.standby_qos`` = 0) or ``livematch-2s1`` (the same with ``standby_qos = 1``:
+  every shard topic at QoS 1, as before that option existed) or ``livematch-2sk`` /
+  ``livematch-2sk1`` (the same two, but the generators send only vehicles of the shards
+  that worker w1 holds, the first ``rate`` vehicle ids whose shard it holds: w0 only
+  keeps every fix, so its CPU per fix is what a kept fix costs, through the broker,
+  and w1's what a matched one costs in a group); for breaking the group's cost down,
   ``livematch-1r`` (one worker, Redis store, no group) and ``livematch-1g`` (a group of
   one worker: it holds all shards, through Redis);
 - ``--generators`` **load generator** processes (paho-mqtt directly, QoS 1, up to 1,000
@@ -324,7 +330,12 @@ def stop_all(procs: list[subprocess.Popen[bytes]], timeout: float = STOP_TIMEOUT
 
 
 def scrape_published(port: int) -> dict[str, float]:
-    """``livematch_published_total`` by kind, read from a daemon's /metrics."""
+    """``livematch_published_total`` by kind, read from a daemon's /metrics.
+
+    Also, under the keys ``@held`` and ``@received``, ``livematch_shards_held`` and
+    ``livematch_messages_received_total`` (the shares of a worker group), and under
+    ``@gc`` the seconds its garbage collections took (``livematch_gc_pause_seconds``).
+    """
     import urllib.request
 
     with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=5) as r:
@@ -334,6 +345,12 @@ def scrape_published(port: int) -> dict[str, float]:
         if line.startswith("livematch_published_total{"):
             kind = line.split('kind="', 1)[1].split('"', 1)[0]
             out[kind] = float(line.rsplit(" ", 1)[1])
+        elif line.startswith("livematch_shards_held "):
+            out["@held"] = float(line.rsplit(" ", 1)[1])
+        elif line.startswith("livematch_messages_received_total "):
+            out["@received"] = float(line.rsplit(" ", 1)[1])
+        elif line.startswith("livematch_gc_pause_seconds_sum{"):
+            out["@gc"] = out.get("@gc", 0.0) + float(line.rsplit(" ", 1)[1])
     return out
 
 
@@ -410,8 +427,11 @@ def feed_topic(vehicle: str, shards: int) -> str:
 
 
 def generate(port: int, pool_path: str, n: int, seconds: int, first: int, step: int,
-             shards: int) -> None:
+             shards: int, only_shards: str = "") -> None:
     """Publish vehicles first, first + step, ... < n at 1 Hz; print what was achieved.
+
+    With ``only_shards`` (comma-separated shard numbers) the n vehicles are the first n
+    ids ``v<i>`` whose shard is one of those, instead of v0 ... v(n-1).
 
     Protocol with the bench: prints ``ready`` once connected, reads ``go <epoch>`` (the
     start of second 0), publishes, waits for the acknowledgements and prints one JSON line.
@@ -419,9 +439,17 @@ def generate(port: int, pool_path: str, n: int, seconds: int, first: int, step: 
     import numpy as np
 
     pool = dict(np.load(pool_path))
-    mine = list(range(first, n, step))
+    ids = list(range(n))
+    if only_shards:
+        from livematch.service.shards import shard_of
+
+        wanted = {int(s) for s in only_shards.split(",")}
+        ids = [i for i in range(100 * n + 1000) if shard_of(f"v{i}", shards) in wanted][:n]
+    mine = ids[first::step]
     topics = {i: feed_topic(f"v{i}", shards) for i in mine}
-    plan = [(k + i / n, i, *position(pool, i, k)) for k in range(seconds) for i in mine]
+    slot = {i: j for j, i in enumerate(ids)}  # spread over each second by place, not id
+    plan = [(k + slot[i] / n, i, *position(pool, i, k)) for k in range(seconds)
+            for i in mine]
     acked = [0]
 
     def on_publish(*_a: Any) -> None:
@@ -470,6 +498,25 @@ def generate(port: int, pool_path: str, n: int, seconds: int, first: int, step: 
         "lag_p99_ms": round(lags[int(0.99 * (len(lags) - 1))] * 1000, 1) if lags else None,
         "lag_max_ms": round(lags[-1] * 1000, 1) if lags else None,
     }), flush=True)
+
+
+def py_spy_binary() -> str:
+    """py-spy beside this Python (``pip install py-spy`` in the venv), else on PATH."""
+    beside = Path(sys.executable).parent / "py-spy"
+    return str(beside) if beside.exists() else (shutil.which("py-spy") or str(beside))
+
+
+def shards_held(worker: str, workers: list[str], n_shards: int) -> set[int]:
+    """The shards ``worker`` holds with a ``{shard}`` topic, as the livematch imported
+    assigns them (bounded-load ``assign_shards``; before it, the first of
+    ``rank_workers``)."""
+    from livematch.service import shards
+
+    assign = getattr(shards, "assign_shards", None)
+    if assign is not None:
+        held: set[int] = assign(n_shards, workers).held_by(worker)
+        return held
+    return {s for s in range(n_shards) if shards.rank_workers(s, workers)[0] == worker}
 
 
 # ------------------------------------------------------------------- the relay role
@@ -603,11 +650,17 @@ def probe(argv: list[str], out_path: str, nodelay: bool, freeze: bool, inflight:
 
 # --------------------------------------------------------------------------- one step
 def daemon_config(folder: Path, port: int, store: str, worker: str, group: str,
-                  topic: str = IN_TOPIC, metrics_port: int = 0) -> Path:
-    """A daemon configuration; ``metrics_port`` > 0 opens its /metrics on that port."""
+                  topic: str = IN_TOPIC, metrics_port: int = 0,
+                  standby_qos: int | None = None) -> Path:
+    """A daemon configuration; ``metrics_port`` > 0 opens its /metrics on that port.
+
+    ``standby_qos`` sets ``group.standby_qos`` (None: livematch's default).
+    """
     cfg = folder / f"{worker}.toml"
     listen = f"127.0.0.1:{metrics_port}" if metrics_port else ""
     group_lines = f'[group]\nname = "{group}"\nworker = "{worker}"\nlease_s = 5\n' if group else ""
+    if group and standby_qos is not None:
+        group_lines += f"standby_qos = {standby_qos}\n"
     cfg.write_text(f"""
 [inputs]
 network = "{NETWORK}"
@@ -703,7 +756,10 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
     sut: list[subprocess.Popen[bytes]] = []
     gens: list[subprocess.Popen[bytes]] = []
     sub: Subscriber | None = None
-    shards = GROUP_SHARDS if system == "livematch-2s" else 0
+    shards = GROUP_SHARDS if system.startswith("livematch-2s") else 0
+    standby_qos = 1 if system in ("livematch-2s1", "livematch-2sk1") else None
+    only = (",".join(str(s) for s in sorted(shards_held("w1", ["w0", "w1"], shards)))
+            if system.startswith("livematch-2sk") else "")
     metrics_ports: list[int] = []  # every livematch worker's /metrics and /readyz
     ready_s = 0.0
     exit_codes: list[int | None] = []
@@ -742,7 +798,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
             for w in range(workers):
                 metrics_ports.append(free_port())
                 cfg = daemon_config(folder, port, store, f"w{w}", group,
-                                    SHARD_TOPIC if shards else IN_TOPIC, metrics_ports[-1])
+                                    SHARD_TOPIC if shards else IN_TOPIC, metrics_ports[-1],
+                                    standby_qos)
                 cmd = [sys.executable, "-m", "livematch.cli"]
                 if CPROFILE_TO is not None:  # --cprofile: each worker's profile at its exit
                     cmd = [sys.executable, "-m", "cProfile", "-o",
@@ -763,7 +820,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
             gens.append(subprocess.Popen(
                 [sys.executable, __file__, "--role", "generator", "--port", str(port),
                  "--pool", str(pool_path), "--n", str(rate), "--seconds", str(seconds),
-                 "--first", str(g), "--step", str(generators), "--shards", str(shards)],
+                 "--first", str(g), "--step", str(generators), "--shards", str(shards),
+                 "--only-shards", only],
                 env=env, stdin=subprocess.PIPE, stdout=subprocess.PIPE))
         procs.extend(gens)
         for gen in gens:
@@ -776,7 +834,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                    SPY_TO / f"{system}.{rate}.{time.time():.0f}.txt"
                    if SPY_TO is not None and system.startswith("livematch") else None)
         if spy_out is not None:
-            spy = subprocess.Popen([str(Path(sys.executable).parent / "py-spy"), "record",
+            spy = subprocess.Popen([py_spy_binary(), "record",
                                     "--pid", str(sut[0].pid), "--rate", "200", "--format",
                                     "raw", "--duration", str(seconds + 1), "--output",
                                     str(spy_out)],
@@ -893,7 +951,16 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         "system_sleeps": sum(woken.values()),  # voluntary context switches (wake-ups)
         "published_by_kind": {k: sum(b.get(k, 0.0) - a.get(k, 0.0)
                                      for a, b in zip(published0, published1, strict=True))
-                              for k in sorted({k for d in published1 for k in d})}
+                              for k in sorted({k for d in published1 for k in d})
+                              if not k.startswith("@")}
+        if published1 else None,
+        # per worker: shards held at the end of the step, messages received during it
+        "worker_shards_held": [d.get("@held") for d in published1] if published1 else None,
+        "worker_received": [d.get("@received", 0.0) - a.get("@received", 0.0)
+                            for a, d in zip(published0, published1, strict=True)]
+        if published1 else None,
+        "worker_gc_s": [round(d.get("@gc", 0.0) - a.get("@gc", 0.0), 4)
+                        for a, d in zip(published0, published1, strict=True)]
         if published1 else None,
         "cpu_window": [window0, window1],
         "sustained": sustained,
@@ -1110,18 +1177,34 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
     and the generators. Empty when the run has no livematch-1 or no two-worker system.
     """
     rows = r["steps"]
-    pairs = [s for s in r["systems"] if s in ("livematch-2", "livematch-2s")]
-    if "livematch-1" not in r["systems"] or not pairs:
-        return []
     out = []
+    for s in [s for s in r["systems"] if s.startswith("livematch-2sk")]:
+        each = [row["worker_ms_per_fix"] for row in rows if row["system"] == s
+                and len(row.get("worker_ms_per_fix") or []) == 2]
+        if each:
+            out.append(
+                f"{s} (every fix of a shard w1 holds, w0 only keeps them): CPU ms per fix "
+                "of w0 (kept) / w1 (matched), per round: "
+                + ", ".join(f"{k:.3f} / {m:.3f}" for k, m in each)
+                + f"; medians {statistics.median(k for k, _ in each):.3f} / "
+                f"{statistics.median(m for _, m in each):.3f}.")
+    pairs = [s for s in r["systems"] if s in ("livematch-2", "livematch-2s", "livematch-2s1")]
+    if "livematch-1" not in r["systems"] or not pairs:
+        return out
     for s in pairs:
         each = []
+        shares: list[str] = []
         for k in range(1, r["repeat"] + 1):
             one = [row for row in rows if row["repeat"] == k and row["system"] == "livematch-1"]
             two = [row for row in rows if row["repeat"] == k and row["system"] == s]
             if one and two and len(two[0].get("worker_ms_per_fix") or []) == 2:
                 w = two[0]["worker_ms_per_fix"]
                 each.append((one[0]["ms_per_fix"]["system"], w[0], w[1]))
+                held = two[0].get("worker_shards_held")
+                got = two[0].get("worker_received")
+                if held and got and None not in held:
+                    shares.append(f"{held[0]:.0f} / {held[1]:.0f} shards, "
+                                  f"{got[0]:.0f} / {got[1]:.0f} messages")
         if each:
             ratios = [c1 / max(w0, w1) for c1, w0, w1 in each]
             out.append(
@@ -1130,7 +1213,9 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
                                           for c1, w0, w1 in each)
                 + "; predicted throughput of two workers on two free cores, c1 / max(w0, "
                 f"w1): {', '.join(f'{x:.2f}' for x in ratios)} (median "
-                f"{statistics.median(ratios):.2f}) times one worker's (goal >= 1.6).")
+                f"{statistics.median(ratios):.2f}) times one worker's (goal >= 1.6)."
+                + (" Held at the end of the step and received during it, w0 / w1, per "
+                   "round: " + "; ".join(shares) + "." if shares else ""))
     return out
 
 
@@ -1414,6 +1499,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--first", type=int, default=0)
     ap.add_argument("--step", type=int, default=1)
     ap.add_argument("--shards", type=int, default=0)
+    ap.add_argument("--only-shards", default="")
     ap.add_argument("--rates", default="250,500,1000,2000,4000,8000,16000",
                     help="offered fixes/s to step through (= vehicles at 1 Hz)")
     ap.add_argument("--seconds", type=int, default=10, help="length of each step")
@@ -1521,7 +1607,7 @@ def main(argv: list[str] | None = None) -> int:
         return 0
     if args.role == "generator":
         generate(args.port, args.pool, args.n, args.seconds, args.first, args.step,
-                 args.shards)
+                 args.shards, args.only_shards)
         return 0
     if args.role == "relay":
         with contextlib.suppress(KeyboardInterrupt):

@@ -251,6 +251,10 @@ class GroupConfig:
     names this process in the group ("" = ``HOSTNAME-PID``); it is also appended to
     ``mqtt.client_id`` so that every worker has its own MQTT session. Needs a Redis
     store whose ``key_prefix`` holds no ``{}`` (the keys carry a shard hash tag).
+    ``standby_qos`` (0 or 1; only with a ``{shard}`` topic) is the QoS at which a worker
+    subscribes to the shards it stands by for: 0 spares it a PUBACK per kept fix, 1
+    keeps those fixes queued at the broker while its connection is down
+    (``docs/scale.md``).
     """
 
     name: str = ""
@@ -259,6 +263,7 @@ class GroupConfig:
     lease_s: float = 10.0
     buffer_s: float = 120.0
     buffer_max: int = 20_000
+    standby_qos: int = 0
 
     def problems(self) -> list[tuple[str, str]]:
         """Every invalid value as (key, expectation with the value found)."""
@@ -275,6 +280,8 @@ class GroupConfig:
             out.append(("buffer_s", f"must be >= 0 seconds, got {self.buffer_s}"))
         if self.buffer_max < 0:
             out.append(("buffer_max", f"must be >= 0, got {self.buffer_max}"))
+        if self.standby_qos not in (0, 1):
+            out.append(("standby_qos", f"must be 0 or 1, got {self.standby_qos}"))
         return out
 
 

@@ -7,6 +7,7 @@ import contextlib
 import functools
 import hashlib
 import math
+import random
 import re
 import time
 from collections.abc import AsyncIterator, Iterator
@@ -28,7 +29,9 @@ from livematch.service.shards import (
     LeaseManager,
     Renewal,
     RenewalThread,
+    assign_shards,
     preference,
+    rank_workers,
     shard_of,
     target_share,
 )
@@ -66,6 +69,77 @@ def test_target_share_covers_every_shard() -> None:
             assert (target_share(n, workers) - 1) * workers < n  # and no larger
     assert sorted(preference("w", 8)) == list(range(8))
     assert preference("a", 64) != preference("b", 64)
+
+
+def worker_sets() -> Iterator[tuple[int, list[str]]]:
+    """(shard count, live workers) cases: fixed ones and 200 random ones (seeded)."""
+    yield from [(8, ["w1", "w2", "w3"]), (64, ["w0", "w1"]), (64, ["w1", "w2", "w3"]),
+                (1, ["a", "b"]), (3, ["a", "b", "c", "d", "e"]), (64, ["solo"])]
+    rng = random.Random(20261202)
+    for _ in range(200):
+        n = rng.choice([1, 2, 5, 8, 17, 64, 100, 256])
+        names = {f"{rng.choice(['w', 'node-', 'host.'])}{rng.randrange(1000)}"
+                 for _ in range(rng.randint(1, 12))}
+        yield n, sorted(names)
+
+
+def blake2b_rank(shard: int, workers: list[str]) -> list[str]:
+    """Rendezvous ranking recomputed here from hashlib (RFC 7693 BLAKE2b, 8-byte digest
+    of ``worker NUL shard``), not through livematch's ranking."""
+    return sorted(workers, key=lambda w: hashlib.blake2b(
+        f"{w}\0{shard}".encode(), digest_size=8).digest())
+
+
+def test_assign_shards_even_shares_and_a_standby_for_every_failure() -> None:
+    """Bounded-load rendezvous hashing (consistent hashing with bounded loads, Mirrokni,
+    Thorup and Zadimoghaddam, SODA 2018; from memory), checked against its definition
+    for 206 worker sets: every shard has exactly one holder among the live workers;
+    shares differ by at most one (floor or ceil of shards / workers); each shard went
+    to the first worker in its BLAKE2b ranking that still had room when its turn came;
+    every shard's standby is another live worker, and is exactly the holder the same
+    assignment gives it when its holder has failed; the input order does not matter."""
+    for n, workers in worker_sets():
+        a = assign_shards(n, workers)
+        assert a == assign_shards(n, list(reversed(workers)))
+        assert a.workers == tuple(sorted(workers))
+        assert len(a.holder) == n and set(a.holder) <= set(workers)
+        shares = [len(a.held_by(w)) for w in workers]
+        assert sum(shares) == n
+        assert max(shares) - min(shares) <= 1, (n, workers, shares)
+        floor, extra = divmod(n, len(workers))
+        count = dict.fromkeys(workers, 0)
+        for shard, holder in enumerate(a.holder):
+            over = sum(1 for c in count.values() if c > floor)
+            for better in blake2b_rank(shard, workers):
+                if better == holder:
+                    break  # nobody ranked above it had room
+                assert count[better] > floor or (count[better] == floor and over == extra), \
+                    (n, workers, shard, better, holder)
+            count[holder] += 1
+        assert len(a.standby) == n
+        if len(workers) == 1:
+            assert a.standby == (None,) * n
+            continue
+        for shard, (holder, standby) in enumerate(zip(a.holder, a.standby, strict=True)):
+            assert standby in workers and standby != holder
+            after = assign_shards(n, [w for w in workers if w != holder])
+            assert after.holder[shard] == standby
+        for w in workers:
+            assert a.held_by(w).isdisjoint(a.standing_by(w))
+
+
+def test_assign_shards_evens_out_what_rendezvous_hashing_skews() -> None:
+    """The cases of docs/scale.md: rendezvous hashing alone gives w0 39 of 64 shards
+    against w1 (the bench's pair) and 5 / 3 / 0 for 8 on 3; bounded: 32 / 32, 3 / 3 / 2."""
+    first = [rank_workers(s, ["w0", "w1"])[0] for s in range(64)]
+    assert first.count("w0") == 39
+    a = assign_shards(64, ["w0", "w1"])
+    assert [len(a.held_by(w)) for w in ("w0", "w1")] == [32, 32]
+    assert a.standing_by("w0") == a.held_by("w1")  # two workers: each stands by for the other
+    trio = ["w1", "w2", "w3"]
+    assert sorted([rank_workers(s, trio)[0] for s in range(8)].count(w) for w in trio) \
+        == [0, 3, 5]
+    assert sorted(len(assign_shards(8, trio).held_by(w)) for w in trio) == [2, 3, 3]
 
 
 # -- leases ----------------------------------------------------------------------------
@@ -274,6 +348,23 @@ async def test_membership_expires_and_shard_count_is_checked(redis_url: str,
 # -- configuration ---------------------------------------------------------------------
 
 
+async def test_receiving_record_round_trip(redis_url: str, prefix: str) -> None:
+    """The record of shard topics received: written, read per worker (empty when a
+    worker has none), replaced, removed on leaving."""
+    async with managers(redis_url, prefix, "a", "b", n_shards=64) as (a, b):
+        assert await a.receiving(["a", "b"]) == {"a": set(), "b": set()}
+        await a.announce_receiving({11, 3, 40})
+        await b.announce_receiving(set())
+        assert await b.receiving(["a", "b"]) == {"a": {3, 11, 40}, "b": set()}
+        await a.announce_receiving({3})
+        assert await b.receiving(["a"]) == {"a": {3}}
+        await a.stop_receiving()
+        assert await b.receiving(["a"]) == {"a": set()}
+        assert await b.receiving([]) == {}
+        raw = await a.client.hgetall(f"{prefix}:group:g:receives")
+        assert raw == {b"b": b""}
+
+
 def test_config_group_needs_redis_and_plain_prefix(tmp_path: Path) -> None:
     """[group] name with memory:// or a prefix holding { } is refused, naming the key."""
     with pytest.raises(BadConfigError, match=re.escape("group.name 'g' needs a Redis store")):
@@ -284,6 +375,9 @@ def test_config_group_needs_redis_and_plain_prefix(tmp_path: Path) -> None:
                                "LIVEMATCH__STORE__KEY_PREFIX": "{fleet}:"})
     with pytest.raises(BadConfigError, match=re.escape("group.shards must be 1..16384, got 0")):
         load_config(None, env={"LIVEMATCH__GROUP__SHARDS": "0"})
+    with pytest.raises(BadConfigError, match=re.escape("group.standby_qos must be 0 or 1, got 2")):
+        load_config(None, env={"LIVEMATCH__GROUP__STANDBY_QOS": "2"})
+    assert load_config(None, env={}).group.standby_qos == 0
     cfg = load_config(None, env={"LIVEMATCH__STORE__URL": "redis://127.0.0.1:1/0"},
                       overrides={"group": "north", "shards": 16, "worker": "w1"})
     assert (cfg.group.name, cfg.group.shards, cfg.group.worker) == ("north", 16, "w1")
@@ -474,7 +568,8 @@ async def test_group_worker_stop_writes_final_checkpoint_releases_and_leaves(
 async def test_fix_of_another_shard_is_kept_and_acknowledged_on_arrival(
         group_config: Path, redis_url: str, prefix: str) -> None:
     """A fix of a shard the worker does not match is kept as it arrives and never
-    queued for matching; its acknowledgement waits behind messages queued before it;
+    queued for matching; its acknowledgement (QoS 1) waits behind messages queued
+    before it, and a QoS 0 one (a standby subscription) takes no place in the queue;
     a fix kept while the shard was matched is matched from the queue, unless a replay
     of the shard (lost and taken again meanwhile) already covered it."""
     daemon = group_daemon(group_config, "a")
@@ -482,12 +577,13 @@ async def test_fix_of_another_shard_is_kept_and_acknowledged_on_arrival(
     shard = shard_of(vehicle, 8)
     topic = f"{prefix}/fleet/{vehicle}/position"
     feed = drive(vehicle, 4)
-    # QoS 0: nothing to acknowledge, so the client below is never used
+    # QoS 0 (but one QoS 1 fix that only takes a place in the queue): nothing is
+    # acknowledged, so the client below is never used
     client = aiomqtt.Client("127.0.0.1", 1)
     intake = IntakeQueue(100, key_of=daemon._intake_key)
 
-    def fix(k: int) -> aiomqtt.Message:
-        return aiomqtt.Message(topic, feed[k][1], 0, False, k + 1, None)
+    def fix(k: int, qos: int = 0) -> aiomqtt.Message:
+        return aiomqtt.Message(topic, feed[k][1], qos, False, k + 1, None)
 
     async with managers(redis_url, prefix, "a", n_shards=8) as (leases,):
         daemon.leases = leases
@@ -495,12 +591,14 @@ async def test_fix_of_another_shard_is_kept_and_acknowledged_on_arrival(
         assert intake.empty()
         assert [e[3] for e in daemon._buffers[shard]] == [feed[0][1]]
         intake.put_nowait(aiomqtt.Message(topic, b"not json", 0, False, 90, None))
-        daemon._arrive(client, intake, fix(1))  # behind a queued message: ack only
+        daemon._arrive(client, intake, fix(1, qos=1))  # behind a queued message: ack only
+        assert (intake.qsize(), intake.waiting) == (2, 1)
+        daemon._arrive(client, intake, fix(1))  # QoS 0: no PUBACK, so no place either
         assert (intake.qsize(), intake.waiting) == (2, 1)
         intake.get_nowait()
         intake.get_nowait()
         assert intake.last_key == ACK_ONLY_KEY
-        assert len(daemon._buffers[shard]) == 2
+        assert len(daemon._buffers[shard]) == 3
         assert daemon.pipeline.counters["messages"] == 0  # nothing matched so far
 
         daemon._active.add(shard)  # this worker matches the shard from now on
@@ -516,9 +614,9 @@ async def test_fix_of_another_shard_is_kept_and_acknowledged_on_arrival(
         intake.get_nowait()
         assert not daemon._process(client, fix(3), intake.last_key, *intake.last_kept)
         assert daemon.pipeline.counters["messages"] == 1
-        assert [e[3] for e in daemon._buffers[shard]] == [p for _, p in feed]
+        assert [e[3] for e in daemon._buffers[shard]] == [feed[k][1] for k in (0, 1, 1, 2, 3)]
         # a message aiomqtt itself puts (paho's decoding) takes the same way
         intake.arrive = functools.partial(daemon._arrive, client, intake)
         daemon._active.discard(shard)
         intake.put_nowait(fix(3))  # a redelivery, say: kept again, not queued
-        assert intake.empty() and len(daemon._buffers[shard]) == 5
+        assert intake.empty() and len(daemon._buffers[shard]) == 6

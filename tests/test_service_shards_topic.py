@@ -9,6 +9,8 @@ import sys
 import time
 from pathlib import Path
 
+import aiomqtt
+import pytest
 import redis.asyncio as aioredis
 from services import (
     Collector,
@@ -23,10 +25,12 @@ from services import (
     write_config,
 )
 from test_faults_suite import metric_sum
+from test_service_shards import group_daemon, wait_until
 from test_service_shards_failover import checkpoint_times
 
 from livematch.mapdata.netfile import save_network
-from livematch.service.shards import rank_workers, shard_of
+from livematch.service.mqtt import buffered_reads, lean_receive
+from livematch.service.shards import assign_shards, shard_of
 
 pytest_plugins = ("fixtures_services",)
 
@@ -44,21 +48,19 @@ def start_worker(config: Path, worker: str, port: int, log: Path) -> subprocess.
 
 
 def ranked(workers: tuple[str, ...]) -> dict[str, tuple[set[int], set[int]]]:
-    """Each worker's (shards held, shards stood by for) by rendezvous ranking."""
-    out: dict[str, tuple[set[int], set[int]]] = {w: (set(), set()) for w in workers}
-    for shard in range(SHARDS):
-        first, second = rank_workers(shard, workers)[:2]
-        out[first][0].add(shard)
-        out[second][1].add(shard)
-    return out
+    """Each worker's (shards held, shards stood by for) by the bounded-load assignment."""
+    assignment = assign_shards(SHARDS, workers)
+    return {w: (assignment.held_by(w), assignment.standing_by(w)) for w in workers}
 
 
 async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
         mosquitto: Mosquitto, redis_server: RedisServer, prefix: str, tmp_path: Path) -> None:
-    """Three workers on ``{prefix}/fleet/{shard}/+/position``: each holds the shards it
-    ranks first for and receives only those and the ones it stands by for (exact
-    message counts); a fix on another shard's topic is a ``wrong_shard`` reject; after
-    a SIGKILL the standbys take the dead worker's shards: every fix is answered, no
+    """Three workers on ``{prefix}/fleet/{shard}/+/position``: each holds its share of
+    the bounded-load assignment (3 / 3 / 2 of 8) and receives only those shards and the
+    ones it stands by for (exact message counts); a fix on another shard's topic is a
+    ``wrong_shard`` reject; after a SIGKILL the standbys take the dead worker's shards
+    (and a shard whose holder lives moves once its new holder receives it): every fix
+    is answered, no
     checkpoint goes back, every vehicle's certificate window grows 1, 2, 3, ..."""
     net = tmp_path / "town.lmnet"
     save_network(town(), net)
@@ -67,7 +69,8 @@ async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
                        topic="fleet/{shard}/+/position")
     ports = {w: free_port() for w in WORKERS}
     logs = {w: tmp_path / f"{w}.log" for w in WORKERS}
-    vehicles = [f"sv-{i}" for i in range(9)]
+    # sv-14 is on shard 6, which moves from w1 to w3 (both alive) when w2 is killed
+    vehicles = [f"sv-{i}" for i in (0, 1, 2, 3, 4, 14, 6, 7, 13)]
     n_fixes = 30
     feeds = {v: drive(v, n_fixes, start_x=100.0 + 400 * i) for i, v in enumerate(vehicles)}
     topic = {v: f"{prefix}/fleet/{shard_of(v, SHARDS)}/{v}/position" for v in vehicles}
@@ -131,10 +134,13 @@ async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
                 await pub.publish(f"{prefix}/fleet/{wrong}/sv-0/position",
                                   drive("sv-0", 1, first=200)[0][1], qos=1)
             await col.wait_for("/out/rejects", 1)
-            victim = rank_workers(shard_of("sv-0", SHARDS), WORKERS)[0]
+            victim = assign_shards(SHARDS, WORKERS).holder[shard_of("sv-0", SHARDS)]
             procs[victim].send_signal(signal.SIGKILL)
             await asyncio.to_thread(procs[victim].wait, 10)
             survivors = tuple(w for w in WORKERS if w != victim)
+            moved = (assign_shards(SHARDS, WORKERS).holder[6],
+                     assign_shards(SHARDS, survivors).holder[6])
+            assert moved == ("w1", "w3")  # a hand-over between live workers (sv-14)
             await publish(15, n_fixes)
             await answered(n_fixes)
             await settle(survivors)
@@ -158,3 +164,107 @@ async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
         for r in col.records(f"/out/match/{v}"):
             windows.setdefault(r["time"], set()).add(r["window_fixes"])
         assert [windows[t] for t in sorted(windows)] == [{k} for k in range(1, n_fixes + 1)], v
+
+
+async def test_shard_moves_only_once_its_new_holder_receives_it(
+        tmp_path: Path, mosquitto: Mosquitto, redis_server: RedisServer, prefix: str,
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    """A worker holding every shard sees a second member whose share is 4 of the 8: it
+    keeps matching those shards until the newcomer's record in Redis says it receives
+    their topics, then hands them over (released) and stands by for them: the broker
+    delivers their fixes at QoS 0 (the minimum of the publish QoS 1 and the
+    subscription's QoS 0, MQTT 5.0 section 3.8.4) and those of its own shards at QoS 1.
+    Its own record names every shard it receives."""
+    config = write_config(tmp_path, prefix, broker=mosquitto.url, store=redis_server.url,
+                          metrics="", topic="fleet/{shard}/+/position",
+                          extra='[group]\nname = "g"\nshards = 8\nlease_s = 1.0\n')
+    a = group_daemon(config, "a")
+    arrived: list[tuple[str, int]] = []
+    arrive = a._arrive
+
+    def spy(client: aiomqtt.Client, intake: object, message: aiomqtt.Message) -> None:
+        arrived.append((message.topic.value, message.qos))
+        arrive(client, intake, message)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(a, "_arrive", spy)
+    split = assign_shards(8, ["a", "b"])
+    theirs, ours = split.held_by("b"), split.held_by("a")
+    assert len(theirs) == len(ours) == 4
+    client = aioredis.Redis.from_url(redis_server.url)
+    task = asyncio.create_task(a.run())
+    try:
+        await wait_until(lambda: len(a._active) == 8, what="a holds all shards")
+        # "b" joins (a member entry that does not expire) but receives nothing yet
+        await client.zadd(f"{prefix}:group:g:members", {"b": 2 ** 50})
+        await asyncio.sleep(2.0)  # six rebalancing rounds (lease_s / 3)
+        assert len(a._active) == 8, "handed over before the new holder received the shard"
+        await client.hset(f"{prefix}:group:g:receives", "b",
+                          ",".join(str(s) for s in sorted(theirs)))
+        assert a.leases is not None
+        leases = a.leases
+        await wait_until(lambda: set(leases.held) == ours, what="b's shards handed over")
+        assert a._active == ours
+        for shard in theirs:
+            assert await client.get(f"{prefix}:{{s:{shard}}}:lease") is None  # released
+        await wait_until(lambda: a._subs == {s: 0 if s in theirs else 1 for s in range(8)},
+                         what="standby subscriptions at QoS 0")
+        assert await leases.receiving(["a"]) == {"a": set(range(8))}
+        vehicle = {s: next(f"q{i}" for i in range(1000) if shard_of(f"q{i}", 8) == s)
+                   for s in (min(theirs), min(ours))}
+        arrived.clear()
+        async with publisher(mosquitto.port) as pub:
+            for shard, v in vehicle.items():
+                await pub.publish(f"{prefix}/fleet/{shard}/{v}/position",
+                                  drive(v, 1)[0][1], qos=1)
+        await wait_until(lambda: len(arrived) == 2, what="both fixes received")
+        assert sorted(arrived) == sorted(
+            [(f"{prefix}/fleet/{min(theirs)}/{vehicle[min(theirs)]}/position", 0),
+             (f"{prefix}/fleet/{min(ours)}/{vehicle[min(ours)]}/position", 1)])
+    finally:
+        a.request_stop()
+        await asyncio.wait_for(task, 20)
+        await client.aclose()
+
+
+async def test_read_pause_reads_what_arrives_meanwhile_in_one_piece(
+        mosquitto: Mosquitto, prefix: str) -> None:
+    """``buffered_reads(pause=...)`` (what a worker does after a read that brought only
+    fixes it keeps): after a read for which ``pause`` answers 0.4 s, messages published
+    during the next 0.4 s are delivered only then, all from one read of the socket;
+    once ``pause`` answers 0 a message is delivered as it comes."""
+    delivered: list[tuple[float, bytes]] = []
+    reader = aiomqtt.Client("127.0.0.1", mosquitto.port, protocol=aiomqtt.ProtocolVersion.V5)
+    lean_receive(reader, deliver=lambda m: delivered.append((time.monotonic(),
+                                                             bytes(m.payload))))
+    asked: list[int] = []
+
+    def pause() -> float:
+        asked.append(len(delivered))
+        return 0.4 if asked.count(1) == 1 and len(delivered) == 1 else 0.0
+
+    buffered_reads(reader, pause=pause)
+
+    async def until(n: int) -> None:
+        async with asyncio.timeout(10):
+            while len(delivered) < n:
+                await asyncio.sleep(0.005)
+
+    async with reader:
+        await reader.subscribe(f"{prefix}/pause/#", qos=0)
+        sock = reader._client._sock
+        async with aiomqtt.Client("127.0.0.1", mosquitto.port) as writer:
+            await writer.publish(f"{prefix}/pause/a", b"first", qos=0)
+            await until(1)
+            reads = sock.reads  # type: ignore[union-attr]
+            for k in range(5):
+                await writer.publish(f"{prefix}/pause/a", str(k).encode(), qos=0)
+                await asyncio.sleep(0.02)
+            await until(6)
+            assert sock.reads == reads + 1  # type: ignore[union-attr]  # one read for five
+            first = delivered[0][0]
+            assert all(at - first >= 0.35 for at, _ in delivered[1:]), delivered
+            sent = time.monotonic()
+            await writer.publish(f"{prefix}/pause/a", b"last", qos=0)
+            await until(7)
+            assert delivered[-1][0] - sent < 0.3  # not paused any more
+    assert [p for _, p in delivered] == [b"first", b"0", b"1", b"2", b"3", b"4", b"last"]

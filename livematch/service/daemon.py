@@ -89,11 +89,12 @@ from livematch.service.mqtt import (
     write_soon,
 )
 from livematch.service.shards import (
+    Assignment,
     LeaseManager,
     Renewal,
     RenewalThread,
+    assign_shards,
     preference,
-    rank_workers,
     shard_of,
     target_share,
 )
@@ -130,6 +131,11 @@ _KEPT_RUN = 16
 # leave in one write (mqtt.coalesce) instead of one per message.
 _MATCHED_RUN = 8
 _MATCHED_RUN_S = 0.002
+# After a read of the broker's socket that brought only fixes kept for another worker
+# (and left nothing to match), the socket is not watched for this long (seconds): what
+# arrives meanwhile is read in one wake-up instead of one each (mqtt.buffered_reads).
+# A fix to match that arrives meanwhile waits at most this long.
+_KEPT_READ_PAUSE_S = 0.005
 # Shortest interval between two "publish queue full" warnings (seconds).
 _FULL_LOG_EVERY_S = 10.0
 # How far ahead of the wall clock a fix time may push the eviction clock (seconds).
@@ -361,8 +367,11 @@ class Daemon:
         # A {shard} level in mqtt.topic: the feed is partitioned by shard at the source.
         self._sharded_topic = SHARD_LEVEL in config.mqtt.topic.split("/")
         self._client: aiomqtt.Client | None = None  # the current connection, if any
-        self._subs: set[int] = set()  # shard topics subscribed on this connection
-        self._want_subs: set[int] = set()  # shard topics this worker should receive
+        # shard -> QoS of its topic's subscription on this connection, and wanted
+        self._subs: dict[int, int] = {}
+        self._want_subs: dict[int, int] = {}
+        self._announced: set[int] | None = None  # shard topics recorded as received
+        self._assignment: Assignment | None = None  # the last one computed (cached)
         self._subs_lock = asyncio.Lock()
         self._enqueued = 0  # outputs ever queued
         self._acked = 0  # outputs ever acknowledged by the broker (queue order)
@@ -375,6 +384,7 @@ class Daemon:
         # an older export of the periodic checkpoint (same fencing number, older state).
         self._write_lock = asyncio.Lock()
         self._intake: IntakeQueue | None = None  # the current connection's intake queue
+        self._kept_read = False  # a fix only kept was read since the last _read_pause
         self._intake_peak = 0  # largest intake of the connections before the current one
         # Gauges read at scrape time rather than set on every message and output.
         self.metrics.queue_depth.set_function(
@@ -867,36 +877,58 @@ class Daemon:
                     self._lose(shard, "handover_failed")
             raise
 
-    def _ranked(self, members: list[str]) -> tuple[set[int], set[int]]:
-        """(shards this worker holds, shards it stands by for) by rendezvous ranking."""
+    async def _assign(self, members: list[str]) -> Assignment:
+        """The group's assignment for these members and this worker (cached per set).
+
+        Computed in a thread: for thousands of shards and hundreds of workers it takes
+        seconds (:func:`~livematch.service.shards.assign_shards`), and the event loop
+        keeps receiving meanwhile.
+        """
         assert self.leases is not None
-        live = sorted({*members, self.worker})
-        mine: set[int] = set()
-        standby: set[int] = set()
-        for shard in range(self.leases.n_shards):
-            ranked = rank_workers(shard, live)
-            if ranked[0] == self.worker:
-                mine.add(shard)
-            elif len(ranked) > 1 and ranked[1] == self.worker:
-                standby.add(shard)
-        return mine, standby
+        live = tuple(sorted({*members, self.worker}))
+        cached = self._assignment
+        if cached is None or cached.workers != live:
+            cached = self._assignment = await asyncio.to_thread(
+                assign_shards, self.leases.n_shards, live)
+        return cached
+
+    def _wanted(self, mine: set[int], standby: set[int]) -> dict[int, int]:
+        """The subscription QoS of each shard topic wanted.
+
+        ``mqtt.qos`` for the shards held or to be held, ``group.standby_qos`` (at most
+        ``mqtt.qos``) for those only stood by for.
+        """
+        assert self.leases is not None
+        qos = self._mqtt.qos
+        want = dict.fromkeys(standby, min(qos, self.config.group.standby_qos))
+        want.update(dict.fromkeys(mine | set(self.leases.held), qos))
+        return want
 
     async def _claim_round(self, members: list[str]) -> None:
         """A rebalancing round when the topic carries the shard (``{shard}``).
 
-        Each shard belongs to the live worker ranked first for it (rendezvous hashing),
-        and the second stands by: both receive its topic and keep its fixes. So when a
-        worker dies, each of its shards goes to the worker that has its fixes since the
-        last checkpoint; when one joins (it subscribes before it announces itself), the
-        holders hand over the shards it ranks first for, with a fenced checkpoint, and
-        it has received every fix since. Shares are even only on average (rendezvous
-        hashing; the plain topic keeps ``ceil(shards / workers)`` exactly).
+        The shares follow :func:`~livematch.service.shards.assign_shards` (bounded-load
+        rendezvous hashing: floor or ceil of shards / workers each), computed by every
+        worker from the same member list. A worker receives the topics of the shards it
+        holds and of those it stands by for (it would hold them if their holder
+        failed), and records in Redis which ones it receives. So when a worker dies,
+        each of its shards goes to the worker that has kept its fixes since the last
+        checkpoint. A shard that moves between live workers (a join, or a share that
+        changed) is handed over (fenced checkpoint) only once the new holder's record
+        names it: it then receives every fix after that checkpoint. A joining worker
+        subscribes and records before it announces itself.
         """
         leases = self.leases
         assert leases is not None
-        mine, standby = self._ranked(members)
-        await self._sync_subscriptions(mine | standby | set(leases.held))
-        await self._hand_over_all(sorted(s for s in leases.held if s not in mine))
+        assignment = await self._assign(members)
+        mine = assignment.held_by(self.worker)
+        standby = assignment.standing_by(self.worker)
+        await self._sync_subscriptions(self._wanted(mine, standby))
+        away = sorted(s for s in leases.held if s not in mine)
+        if away:
+            receiving = await leases.receiving({assignment.holder[s] for s in away})
+            await self._hand_over_all(
+                [s for s in away if s in receiving.get(assignment.holder[s], ())])
         for shard in sorted(mine - set(leases.held)):
             if self._stopping.is_set():
                 break
@@ -905,26 +937,27 @@ class Daemon:
             fence = await leases.acquire(shard)
             if fence is not None:
                 await self._take(shard, fence)
-        await self._sync_subscriptions(mine | standby | set(leases.held))
+        await self._sync_subscriptions(self._wanted(mine, standby))
 
     async def _subscribe_before_joining(self) -> None:
-        """With a ``{shard}`` topic, subscribe before announcing this worker.
+        """With a ``{shard}`` topic, subscribe (and record it) before announcing this worker.
 
-        The others hand over the shards it ranks first for as soon as they see it, and
-        it must have received every fix since their checkpoint.
+        The others hand over the shards it is to hold as soon as they see it and its
+        record, and it must have received every fix since their checkpoint.
         """
         leases = self.leases
         assert leases is not None
         while not self._stopping.is_set():
             try:
                 members = await leases.heartbeat(leave=True)  # read, not yet announced
+                assignment = await self._assign(members)
+                if await self._sync_subscriptions(self._wanted(
+                        assignment.held_by(self.worker),
+                        assignment.standing_by(self.worker))):
+                    return
             except StoreError as exc:
                 self.metrics.lease_failures.inc()
                 log.warning("reading the group failed; will retry", extra=fields(error=exc))
-            else:
-                mine, standby = self._ranked(members)
-                if await self._sync_subscriptions(mine | standby):
-                    return
             await self._sleep_unless_stopping(0.2)
 
     def _shard_filter(self, shard: int) -> str:
@@ -932,44 +965,62 @@ class Daemon:
         levels = self._mqtt.topic.split("/")
         return "/".join(str(shard) if level == SHARD_LEVEL else level for level in levels)
 
-    def _feed_filters(self, shards: set[int]) -> list[str]:
-        """What a new connection subscribes to for the feed.
+    def _feed_filters(self, shards: Mapping[int, int]) -> list[tuple[str, int]]:
+        """What a new connection subscribes to for the feed: (filter, QoS) pairs.
 
-        ``shards`` are the shard topics wanted, in a group with a ``{shard}`` topic.
+        ``shards`` maps the shard topics wanted to their QoS, in a group with a
+        ``{shard}`` topic.
         """
         topic = self._mqtt.topic
         if not self._sharded_topic:
-            return [topic]
+            return [(topic, self._mqtt.qos)]
         if self.leases is None:  # standalone: every shard
-            return [topic.replace(SHARD_LEVEL, "+")]
-        return [self._shard_filter(s) for s in sorted(shards)]
+            return [(topic.replace(SHARD_LEVEL, "+"), self._mqtt.qos)]
+        return [(self._shard_filter(s), shards[s]) for s in sorted(shards)]
 
-    async def _sync_subscriptions(self, want: set[int]) -> bool:
-        """Receive exactly the shard topics in ``want``.
+    async def _sync_subscriptions(self, want: Mapping[int, int]) -> bool:
+        """Receive exactly the shard topics in ``want`` (shard -> QoS), and record them.
 
-        False when not connected (the next connection subscribes to them) or when the
-        broker refused.
+        The record in Redis (:meth:`LeaseManager.announce_receiving`) names a shard only
+        while it is subscribed: it is shrunk before an unsubscription and grown after a
+        SUBACK. A subscription whose QoS changes is replaced by a new SUBSCRIBE (MQTT 5.0
+        section 3.8.4, MQTT-3.8.4-3 and -4: the broker replaces it, and no message is
+        lost by the replacement). False when not connected (the next connection subscribes to
+        them) or when the broker refused; raises :class:`StoreError` when the record
+        cannot be written.
         """
-        self._want_subs = set(want)
+        self._want_subs = dict(want)
         async with self._subs_lock:
             client = self._client
             if client is None or not self.broker_connected:
                 return False
-            qos = self._mqtt.qos
             try:
-                for shard in sorted(want - self._subs):
-                    await until_answered(client, client.subscribe(
-                        self._shard_filter(shard), qos=qos, timeout=math.inf))
-                    self._subs.add(shard)
-                for shard in sorted(self._subs - want):
+                staying = {s for s in self._subs if s in want}
+                if self._announced is not None and not self._announced <= staying:
+                    await self._announce(staying)
+                for shard in sorted(want):
+                    if self._subs.get(shard) != want[shard]:
+                        await until_answered(client, client.subscribe(
+                            self._shard_filter(shard), qos=want[shard], timeout=math.inf))
+                        self._subs[shard] = want[shard]
+                for shard in sorted(set(self._subs) - set(want)):
                     await until_answered(client, client.unsubscribe(
                         self._shard_filter(shard), timeout=math.inf))
-                    self._subs.discard(shard)
+                    del self._subs[shard]
             except aiomqtt.MqttError as exc:
                 log.warning("shard subscriptions not updated; will retry",
                             extra=fields(error=exc))
                 return False
+            if self._announced != set(self._subs):
+                await self._announce(set(self._subs))
         return True
+
+    async def _announce(self, shards: set[int]) -> None:
+        """Record in Redis that this worker receives the topics of ``shards``."""
+        assert self.leases is not None
+        self._announced = None  # unknown until written
+        await self.leases.announce_receiving(shards)
+        self._announced = set(shards)
 
     def _topic_shard(self, topic: str) -> int:
         """The shard named by a topic's ``{shard}`` level (else the topic's hash)."""
@@ -1252,6 +1303,8 @@ class Daemon:
                 await self._flush_shards(everything=True)
             for shard in sorted(leases.held):
                 await leases.release(shard)
+            if self._sharded_topic:
+                await leases.stop_receiving()
             await leases.heartbeat(leave=True)
             log.info("final checkpoint written; left the group",
                      extra=fields(vehicles=len(self.pipeline.vehicles())))
@@ -1311,7 +1364,7 @@ class Daemon:
         # every message received, whichever way paho decoded it, goes through _arrive
         self._intake.arrive = functools.partial(self._arrive, client, self._intake)
         lean_receive(client, deliver=self._intake.put_nowait)
-        buffered_reads(client)
+        buffered_reads(client, pause=self._read_pause if self.config.group.name else None)
         cancelled = False
         try:
             async with client:
@@ -1340,11 +1393,11 @@ class Daemon:
         """
         cfg = self._mqtt
         async with self._subs_lock:
-            self._subs = set()
-            wanted = set(self._want_subs)
-            for feed_filter in self._feed_filters(wanted):
+            self._subs = {}
+            wanted = dict(self._want_subs)
+            for feed_filter, qos in self._feed_filters(wanted):
                 await until_answered(client, client.subscribe(
-                    feed_filter, qos=cfg.qos, timeout=math.inf))
+                    feed_filter, qos=qos, timeout=math.inf))
             if self._sharded_topic and self.leases is not None:
                 self._subs = wanted
         if cfg.control_topic:
@@ -1502,12 +1555,23 @@ class Daemon:
         kept = self._keep(shard, time.time(), topic, payload)
         if kept and shard not in self._active:
             self._received += 1
-            if intake.empty():
+            self._kept_read = True
+            if intake.empty() or not message.qos:  # a QoS 0 one needs no PUBACK
                 ack(client, message)
             else:
                 intake.put_ack(message)
             return
         intake.put_keyed(message, key, kept, shard)
+
+    def _read_pause(self) -> float:
+        """How long to leave the broker's socket unwatched after a read (seconds).
+
+        :data:`_KEPT_READ_PAUSE_S` when the read brought fixes only kept for another
+        worker and nothing waits in the intake queue, else 0 (read on as before).
+        """
+        kept, self._kept_read = self._kept_read, False
+        intake = self._intake
+        return _KEPT_READ_PAUSE_S if kept and intake is not None and intake.empty() else 0.0
 
     def _kept_shard(self, topic: str, payload: bytes, key: str) -> int:
         """The shard a possible fix is kept under, or -1 for a ``wrong_shard`` message.

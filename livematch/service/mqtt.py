@@ -150,12 +150,16 @@ def drain(client: aiomqtt.Client, max_packets: int, budget_s: float = math.inf) 
             per_call = len(getattr(paho, "_out_messages", ())) + len(
                 getattr(paho, "_in_messages", ()))
             paho.loop_read()
-            read += max(1, per_call)
+            read += max(_READ_PACKETS_MIN, per_call)  # _read_packets' bound
     return read
 
 
 # Bytes asked of the kernel per read of the broker's socket (buffered_reads).
 _READ_SIZE = 65_536
+# Fewest whole packets handed to paho per read call (_read_packets; paho's own bound is
+# one per message in flight). A worker that publishes nothing (it only keeps fixes for
+# another worker, at QoS 0) would otherwise take one turn of the event loop per packet.
+_READ_PACKETS_MIN = 16
 
 
 class _BufferedSocket:
@@ -260,7 +264,8 @@ class _BufferedSocket:
         return getattr(self._sock, name)
 
 
-def buffered_reads(client: aiomqtt.Client) -> None:
+def buffered_reads(client: aiomqtt.Client, *,
+                   pause: Callable[[], float] | None = None) -> None:
     """Read the broker's socket in large pieces, not one system call per packet part.
 
     paho reads every packet with at least three ``recv`` calls (the first byte, the
@@ -273,19 +278,53 @@ def buffered_reads(client: aiomqtt.Client) -> None:
     to one packet per message in flight, as aiomqtt's reader does per readable event),
     again while bytes are left, one turn of the loop at a time. A read error there ends
     the connection as aiomqtt's reader does. Call before connecting, in the event loop.
+
+    ``pause`` is asked after every read: when it returns s > 0 the event loop stops
+    watching the socket for s seconds (what arrives meanwhile waits in the kernel and
+    is read in one piece afterwards). A process that is otherwise idle wakes up for
+    every readable event, and on this machine a wake-up costs far more CPU than reading
+    a message (``bench/load.py --loop-cost``); the daemon pauses after a read that
+    brought only fixes it keeps for another worker (``docs/scale.md``).
     """
     paho: Any = client._client
     loop = asyncio.get_running_loop()
     loop_thread = threading.get_ident()
     inner_open = paho.on_socket_open
-    state = {"scheduled": False}
+    state = {"scheduled": False, "paused": False}
     plain_loop_read = paho.loop_read
 
     def loop_read(max_packets: int = 1) -> MQTTErrorCode:
         sock = paho._sock
         if type(sock) is not _BufferedSocket or paho._in_packet["command"]:
             return plain_loop_read(max_packets)  # not wrapped, or a packet half read
-        return _read_packets(paho, sock, plain_loop_read)
+        rc = _read_packets(paho, sock, plain_loop_read)
+        if pause is not None and not state["paused"] and paho._sock is sock:
+            seconds = pause()
+            if seconds > 0:
+                stop_watching(sock, seconds)
+        return rc
+
+    def reader() -> None:
+        """What aiomqtt's reader callback does on a readable event (plain sockets)."""
+        try:
+            paho.loop_read()
+        except Exception as exc:  # the connection broke
+            disconnected = getattr(client, "_disconnected", None)
+            if isinstance(disconnected, asyncio.Future) and not disconnected.done():
+                disconnected.set_exception(exc)
+
+    def stop_watching(sock: _BufferedSocket, seconds: float) -> None:
+        fd = sock.fileno()
+        if fd < 0 or getattr(sock, "pending", None) is not None:
+            return  # closed, or TLS (decrypted bytes the event loop cannot see)
+        loop.remove_reader(fd)
+        state["paused"] = True
+        loop.call_later(seconds, watch_again, sock, fd)
+
+    def watch_again(sock: _BufferedSocket, fd: int) -> None:
+        state["paused"] = False
+        if paho._sock is sock and sock.fileno() == fd:  # still this connection
+            loop.add_reader(fd, reader)
 
     def read_on() -> None:
         state["scheduled"] = False
@@ -328,8 +367,9 @@ def _read_packets(paho: Any, sock: _BufferedSocket,
     empty, and each whole packet in it is handed to paho's ``_packet_handle`` as paho's
     reader does (the same ``_in_packet`` fields, reset afterwards, and the time of the
     last bytes received, which paho's keepalive reads), up to paho's own bound of
-    packets per call (one per message in flight, at least one). A packet not yet whole
-    in the buffer is left to paho's reader (which reads the rest from the socket).
+    packets per call (one per message in flight), but at least ``_READ_PACKETS_MIN``.
+    A packet not yet whole in the buffer is left to paho's reader (which reads the rest
+    from the socket).
     What the socket still holds is found by the event loop, which reports it readable
     again; bytes left in the buffer are read on by the scheduled callback of
     :func:`buffered_reads`. Errors end the connection as in paho (``_loop_rc_handle``).
@@ -349,7 +389,7 @@ def _read_packets(paho: Any, sock: _BufferedSocket,
             paho._easy_log(MQTT_LOG_ERR, "failed to receive on socket: %s", err)
             return paho._loop_rc_handle(MQTTErrorCode.MQTT_ERR_CONN_LOST)
     rc = MQTTErrorCode.MQTT_ERR_SUCCESS
-    for _ in range(max(1, len(paho._out_messages) + len(paho._in_messages))):
+    for _ in range(max(_READ_PACKETS_MIN, len(paho._out_messages) + len(paho._in_messages))):
         whole = sock.next_packet()
         if whole is None:
             if sock.leftover():  # part of a packet: paho reads the rest

@@ -14,6 +14,7 @@ Cluster slot and one Lua script may touch them together)::
     {prefix}{s:NN}:latest         hash: vehicle -> its latest assignment record (JSON)
     {prefix}group:NAME:members    sorted set: worker -> expiry time (ms, Redis clock)
     {prefix}group:NAME:shards     the group's shard count (all workers must agree)
+    {prefix}group:NAME:receives   hash: worker -> the shard topics it receives ("3,11")
 
 Safety rests on two rules:
 
@@ -90,9 +91,8 @@ def preference(worker: str, n_shards: int) -> list[int]:
 def rank_workers(shard: int, workers: Iterable[str]) -> list[str]:
     """The workers in the order they claim a shard (rendezvous hashing, as :func:`preference`).
 
-    With a ``{shard}`` topic the first one holds the shard and the second stands by
-    (receives its topic and keeps its fixes for a takeover). When a worker leaves, only
-    its shards move, each to its second: the worker that has been keeping its fixes.
+    With a ``{shard}`` topic :func:`assign_shards` gives each shard, in turn, to the
+    first of these with room below its share.
 
     Example:
         >>> rank_workers(3, ["w1", "w2"]) in (["w1", "w2"], ["w2", "w1"])
@@ -105,6 +105,100 @@ def rank_workers(shard: int, workers: Iterable[str]) -> list[str]:
 
 def _score(worker: str, shard: int) -> bytes:
     return hashlib.blake2b(f"{worker}\0{shard}".encode(), digest_size=8).digest()
+
+
+@dataclass(frozen=True, slots=True)
+class Assignment:
+    """Who holds each shard and who stands by for it, for one set of live workers.
+
+    Made by :func:`assign_shards`. ``holder[s]`` matches shard ``s``; ``standby[s]``
+    (None with a single worker) receives its topic and keeps its fixes, and is the
+    worker that holds ``s`` once ``holder[s]`` is gone.
+
+    Attributes:
+        workers: the live workers, sorted.
+        holder: per shard, the worker holding it.
+        standby: per shard, the worker that takes it if its holder fails, or None.
+    """
+
+    workers: tuple[str, ...]
+    holder: tuple[str, ...]
+    standby: tuple[str | None, ...]
+
+    def held_by(self, worker: str) -> set[int]:
+        """The shards ``worker`` holds."""
+        return {s for s, w in enumerate(self.holder) if w == worker}
+
+    def standing_by(self, worker: str) -> set[int]:
+        """The shards ``worker`` stands by for (never one it holds)."""
+        return {s for s, w in enumerate(self.standby) if w == worker}
+
+
+def _bounded_holders(ranked: Sequence[Sequence[str]], live: Sequence[str],
+                     without: str | None = None) -> list[str]:
+    """Bounded-load rendezvous: each shard, in shard order, to its best worker with room.
+
+    ``ranked[s]`` is :func:`rank_workers` of shard ``s`` over ``live``; ``without`` is
+    left out (as if it had failed). With n shards and W workers every worker ends with
+    floor(n / W) or ceil(n / W) shards: a worker has room below floor(n / W), or at it
+    while fewer than ``n mod W`` workers have gone above it. (A cap of ceil(n / W) alone
+    can leave the last worker short by more than one: 22 / 22 / 20 for 64 on 3.)
+    """
+    workers = [w for w in live if w != without]
+    if not workers:
+        return []
+    floor, extra = divmod(len(ranked), len(workers))
+    count = dict.fromkeys(workers, 0)
+    out: list[str] = []
+    for ranking in ranked:
+        for worker in ranking:
+            if worker == without:
+                continue
+            c = count[worker]
+            if c < floor or (c == floor and extra > 0):
+                if c == floor:
+                    extra -= 1
+                count[worker] = c + 1
+                out.append(worker)
+                break
+    return out
+
+
+def assign_shards(n_shards: int, workers: Iterable[str]) -> Assignment:
+    """Even shares by bounded-load rendezvous hashing, and a standby for every failure.
+
+    Deterministic given the set of live workers (every worker computes the same from
+    the group's member list). Shards are taken in order, each by the highest-ranked
+    worker (:func:`rank_workers`) that still has room below its share, so every worker
+    holds floor(n / W) or ceil(n / W) shards. A shard's standby is the worker that
+    would hold it if its holder failed: the same assignment computed without the
+    holder. So every single failure moves each of the failed worker's shards to the
+    worker that has been receiving its fixes. A failure (or a join) can also move a
+    few shards between live workers, because their shares change; those are handed
+    over (fenced checkpoint) by their live holder once the new holder receives their
+    topic (``docs/scale.md``).
+
+    Example (8 shards on 3 workers: rendezvous alone gives 5 / 3 / 0):
+        >>> a = assign_shards(8, ["w3", "w1", "w2"])
+        >>> a.workers, sorted(len(a.held_by(w)) for w in a.workers)
+        (('w1', 'w2', 'w3'), [2, 3, 3])
+        >>> all(h != s for h, s in zip(a.holder, a.standby))
+        True
+        >>> assign_shards(4, ["w1"]).standby
+        (None, None, None, None)
+        >>> assign_shards(4, []).holder
+        ()
+    """
+    live = sorted(set(workers))
+    if not live:
+        return Assignment((), (), ())
+    ranked = [rank_workers(shard, live) for shard in range(n_shards)]
+    holder = _bounded_holders(ranked, live)
+    if len(live) == 1:
+        return Assignment(tuple(live), tuple(holder), (None,) * n_shards)
+    after = {w: _bounded_holders(ranked, live, without=w) for w in set(holder)}
+    standby = [after[h][shard] for shard, h in enumerate(holder)]
+    return Assignment(tuple(live), tuple(holder), tuple(standby))
 
 
 def target_share(n_shards: int, n_workers: int) -> int:
@@ -319,6 +413,7 @@ class LeaseManager:
         self._deadline: dict[int, float] = {}
         self._earliest: float | None = None  # min of _deadline; None: to be recomputed
         self._members_key = f"{prefix}group:{group}:members"
+        self._receives_key = f"{prefix}group:{group}:receives"
         self._acquire = client.register_script(_ACQUIRE)
         self._renew = client.register_script(_RENEW)
         self._release = client.register_script(_RELEASE)
@@ -373,6 +468,41 @@ class LeaseManager:
         except (RedisError, OSError) as exc:
             raise self._fail("announcing the worker", exc) from exc
         return sorted(n.decode() if isinstance(n, bytes) else str(n) for n in names)
+
+    async def announce_receiving(self, shards: Iterable[int]) -> None:
+        """Record the shard topics this worker receives now (after their SUBACK).
+
+        With the shard in the topic, a live worker hands a shard over to its new holder
+        only once this record of the new holder names it: the new holder then has
+        every fix published after the hand-over's checkpoint.
+        """
+        value = ",".join(str(s) for s in sorted(shards))
+        try:
+            await self.client.hset(self._receives_key, self.worker, value)
+        except (RedisError, OSError) as exc:
+            raise self._fail("announcing the shard topics received", exc) from exc
+
+    async def receiving(self, workers: Iterable[str]) -> dict[str, set[int]]:
+        """The shard topics each of ``workers`` last recorded receiving (empty if none)."""
+        names = sorted(set(workers))
+        if not names:
+            return {}
+        try:
+            values = await self.client.hmget(self._receives_key, names)
+        except (RedisError, OSError) as exc:
+            raise self._fail("reading the shard topics received", exc) from exc
+        out: dict[str, set[int]] = {}
+        for name, value in zip(names, values, strict=True):
+            text = value.decode() if isinstance(value, bytes) else (value or "")
+            out[name] = {int(s) for s in text.split(",") if s}
+        return out
+
+    async def stop_receiving(self) -> None:
+        """Remove this worker's record of the shard topics it receives (on leaving)."""
+        try:
+            await self.client.hdel(self._receives_key, self.worker)
+        except (RedisError, OSError) as exc:
+            raise self._fail("removing the shard topics received", exc) from exc
 
     # -- leases ----------------------------------------------------------------------
 
