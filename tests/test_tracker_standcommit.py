@@ -133,7 +133,7 @@ def test_tracker_stand_commit_wait_waits_until_after_a_stand() -> None:
     fixes = ([(30.0 + 10.0 * i, 2.0) for i in range(18)] + [(200.0, 2.0)] * 30
              + [(200.0 + 10.0 * i, 2.0) for i in range(1, 30)])
     emitted = []
-    for settings in (MatchSettings(stand_commit_wait=True), MatchSettings()):
+    for settings in (MatchSettings(stand_commit_wait=True), MatchSettings(stand_commit_wait=False)):
         tracker = Tracker(net, "van9", settings)
         at: list[int] = []
         done: list[Commit] = []

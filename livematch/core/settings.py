@@ -197,7 +197,9 @@ class MatchSettings:
     pace_reach: bool = True
     join_detour: float = 2.0
     stand_loops: bool = True
-    stand_commit_wait: bool = False
+    stand_commit_wait: bool = True
+    stand_loops_outer: bool = True
+    vertex_in_segment: bool = True
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -227,7 +229,8 @@ class MatchSettings:
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))
         for name in ("street_turns", "stop_turns", "stand_wait", "stand_hold",
-                     "pace_reach", "stand_loops", "stand_commit_wait"):
+                     "pace_reach", "stand_loops", "stand_commit_wait", "stand_loops_outer",
+                     "vertex_in_segment"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):
