@@ -164,10 +164,26 @@ class MatchSettings:
             vehicle last stood (needs ``stop_turns``; :meth:`livematch.core.tracker.
             Tracker._into_stand`), so that one commit holds the whole of a loop made
             during a stand and ``stand_loops`` can cut it out (a commit made mid-stand
-            can end inside the branch). Off by default: on 40 routed-trip drives at 1 s
-            (Helsinki, seeds 31 / 77) it added 0.45 / 0.25 points of final accuracy to
-            ``stand_loops`` but moved the live answer by -0.23 / +0.03 points (the live
-            score looks back to the last commit, which now lies further back).
+            can end inside the branch). While it holds, the fix-count lag
+            (``max_lag_fixes``) forces no commit either (with ``stand_wait``), so a forced
+            commit cannot cut the loop in two; ``max_lag_s`` still forces. On by default
+            (session 9): on 40 routed-trip drives at 1 s (Helsinki, seeds 31 / 77) it
+            added 0.45 / 0.25 points of final accuracy to ``stand_loops`` (more with
+            ``stand_loops_outer`` and the lag held) but moved the live answer by -0.23 /
+            +0.03 points (the live score looks back to the last commit, which now lies
+            further back); docs/measured.md, "Session 9 (fleet1hz)".
+        stand_loops_outer: ``stand_loops`` closes the outermost loop first (from the
+            earliest pass through a vertex to the latest return there) instead of the
+            innermost: the stand is committed at the first vertex of the loops that the
+            path reached before them, on road it drove on the way in. The innermost loop's
+            vertex may lie inside a branch that only the wandering GNSS error entered (a
+            mid-road turn-round beside a side road). The cost: at a junction with a
+            stub, the stand may go to a shape point before the junction, within eps.
+        vertex_in_segment: an answer at the very start of a segment (position 0: the
+            vehicle has driven none of it) is reported at the end of the segment the
+            path came in by, the same point, live and final; not the first fix of a
+            stretch. At a stand just short of a branch the path later leaves by another
+            way; the segment it came in by is on the driven path either way.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
