@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import itertools
 import math
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -663,7 +664,10 @@ def test_tracker_street_turns_follow_a_turn_in_the_middle_of_a_road(
     a U-turn at the shape point, so the last fix at the stop is already answered on the
     way back (stop_turns is on by default); without either the tracker can only restart
     there and leave it heading east."""
-    path, east = _turn_at_shape_point(settings, STOP_THEN_BACK)
+    # vertex_in_segment off: at the shape point it would report the stop fixes as the end
+    # of the segment they came in by (east), the same point, whichever way the tree went on
+    path, east = _turn_at_shape_point(replace(settings, vertex_in_segment=False),
+                                      STOP_THEN_BACK)
     assert path == [0, 2, 3, 1]  # east to the shape point, turned there, back west
     assert east[:4] == [True] * 4 and east[6:] == [False] * 5
     _, east_default = _turn_at_shape_point(MatchSettings(stop_turns=False), STOP_THEN_BACK)

@@ -164,10 +164,14 @@ class MatchSettings:
             vehicle last stood (needs ``stop_turns``; :meth:`livematch.core.tracker.
             Tracker._into_stand`), so that one commit holds the whole of a loop made
             during a stand and ``stand_loops`` can cut it out (a commit made mid-stand
-            can end inside the branch). Off by default: on 40 routed-trip drives at 1 s
-            (Helsinki, seeds 31 / 77) it added 0.45 / 0.25 points of final accuracy to
-            ``stand_loops`` but moved the live answer by -0.23 / +0.03 points (the live
-            score looks back to the last commit, which now lies further back).
+            can end inside the branch). While it holds, the fix-count lag
+            (``max_lag_fixes``) forces no commit either (with ``stand_wait``), so a forced
+            commit cannot cut the loop in two; ``max_lag_s`` still forces. On by default
+            (session 9): on 40 routed-trip drives at 1 s (Helsinki, seeds 31 / 77) it
+            added 0.45 / 0.25 points of final accuracy to ``stand_loops`` (more with
+            ``stand_loops_outer`` and the lag held) but moved the live answer by -0.23 /
+            +0.03 points (the live score looks back to the last commit, which now lies
+            further back); docs/measured.md, "Session 9 (fleet1hz)".
         sparse_stand_wait: at more than ``gap_s`` between fixes, candidates that agree
             are not committed while the step into the newest fix or the step before it
             was slower than ``livematch.core.tracker.STOOD_MPS`` (the vehicle stood, or
@@ -182,6 +186,18 @@ class MatchSettings:
             0.966 / 0.966, at 30 s 0.936 / 0.945 -> 0.940 / 0.951; the random walk loses
             0.04-0.16 points (loops circled within one step read as slow steps); 1-10 s
             unchanged (docs/measured.md, "Session 9 (sparse)").
+        stand_loops_outer: ``stand_loops`` closes the outermost loop first (from the
+            earliest pass through a vertex to the latest return there) instead of the
+            innermost: the stand is committed at the first vertex of the loops that the
+            path reached before them, on road it drove on the way in. The innermost loop's
+            vertex may lie inside a branch that only the wandering GNSS error entered (a
+            mid-road turn-round beside a side road). The cost: at a junction with a
+            stub, the stand may go to a shape point before the junction, within eps.
+        vertex_in_segment: an answer at the very start of a segment (position 0: the
+            vehicle has driven none of it) is reported at the end of the segment the
+            path came in by, the same point, live and final; not the first fix of a
+            stretch. At a stand just short of a branch the path later leaves by another
+            way; the segment it came in by is on the driven path either way.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -211,8 +227,10 @@ class MatchSettings:
     pace_reach: bool = True
     join_detour: float = 2.0
     stand_loops: bool = True
-    stand_commit_wait: bool = False
+    stand_commit_wait: bool = True
     sparse_stand_wait: bool = True
+    stand_loops_outer: bool = True
+    vertex_in_segment: bool = True
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -242,7 +260,8 @@ class MatchSettings:
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))
         for name in ("street_turns", "stop_turns", "stand_wait", "stand_hold",
-                     "pace_reach", "stand_loops", "stand_commit_wait", "sparse_stand_wait"):
+                     "pace_reach", "stand_loops", "stand_commit_wait", "sparse_stand_wait",
+                     "stand_loops_outer", "vertex_in_segment"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

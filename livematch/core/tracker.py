@@ -395,6 +395,10 @@ class Tracker:
                 held = self._hold_at_stand(deciding, best, seq, recent)
             tree = deciding.tree
             seg, pos, x, y = held or tree.point(self._view, best)
+            if held is None and pos <= 0.0 and s.vertex_in_segment:
+                seg_in = self._came_in_by(tree, best)
+                if seg_in >= 0:
+                    seg, pos = seg_in, 1.0
             self.last_seg = tree.seg_of(best)
             events.append(Assignment(
                 self.vehicle, fix.t, seg, pos * self._view.slen[seg],
@@ -636,6 +640,24 @@ class Tracker:
         return tree.live_answer(self._view, self.last_seg, self.fix_xy, self.fix_n,
                                 self.fix_seq0, self.next_commit - 1, self._weights[0],
                                 s.error_tau_s if scored else 0.0, s.gap_s, margin)
+
+    def _came_in_by(self, tree: CandidateTree, row: int) -> int:
+        """The segment row ``row``'s path entered its segment from, or -1 if not known.
+
+        With ``vertex_in_segment``, an answer at the very start of a segment (position
+        0: the fix projects on or before the vertex, so the vehicle has driven none of
+        the segment) is reported at the end of this segment instead: the same point, on
+        road the candidate's path has driven. At a stop just before a branch the path
+        may later leave by another way; the segment it came in by is driven either way.
+        """
+        seg, _seq, parent, via0, vias = tree.row_ints(row)
+        if vias:
+            return tree.via(via0 + vias - 1)
+        if parent >= 0:
+            seg_in = tree.seg_of(parent)
+            if seg_in != seg:
+                return seg_in
+        return -1
 
     def _hold_at_junction(
         self, level: Level, best: int, split: int, fix: Fix
@@ -907,7 +929,8 @@ class Tracker:
         if self.next_commit <= seq:
             too_many = seq - self.next_commit + 1 > s.max_lag_fixes
             too_old = t - self.times[self.next_commit] > s.max_lag_s
-            if too_many and not too_old and s.stand_wait and self._standing(seq, t):
+            if too_many and not too_old and s.stand_wait and (
+                    self._standing(seq, t) or self._into_stand(t)):
                 too_many = False  # a stand: only the time bound forces (see _standing)
             if (too_many or too_old) and covering:
                 level = covering[0]
@@ -1111,10 +1134,12 @@ class Tracker:
         path: list[int] = []
         last = self.last_commit
         starts = last is None  # a new stretch: nothing committed before it joins on
+        goes_on = False  # the path goes on from the state before the chain
         if last is None:
             path.append(first.seg)
         elif before is not None and before.seq == last[2] and before.seg == last[0]:
             path.extend(_steps(last[0], first))
+            goes_on = True
         else:
             route = connect(view, last[0], last[1], first.seg, first.pos,
                             self._join_limit_to(last, first))
@@ -1128,6 +1153,17 @@ class Tracker:
         for a, b in itertools.pairwise(chain):
             path.extend(_steps(a.seg, b))
         fixes = [MatchedFix(n.t, n.seg, n.pos * view.slen[n.seg], n.x, n.y) for n in chain]
+        if self.settings.vertex_in_segment:
+            # an answer at the very start of a segment: at the end of the segment the
+            # path came in by (the same point; see _came_in_by)
+            prev = before
+            for k, n in enumerate(chain):
+                if n.pos <= 0.0 and (k or goes_on):
+                    seg_in = n.via[-1] if n.via else (
+                        prev.seg if prev is not None and prev.seg != n.seg else -1)
+                    if seg_in >= 0:
+                        fixes[k] = MatchedFix(n.t, seg_in, float(view.slen[seg_in]), n.x, n.y)
+                prev = n
         if starts and first.pos >= 1.0:
             # A stretch that starts at the very end of a segment drives none of it: report
             # its first fix at the start of the segment entered next (the same point) and
@@ -1221,41 +1257,59 @@ class Tracker:
         radius2 = eps * eps
         removed = [False] * len(segs)
         moved: dict[int, int] = {}  # node -> the vertex it is now committed at
-        last_pass: dict[int, int] = {}  # vertex -> latest index of segs entered from it
-        free = 1  # loops begin at or after this index (none overlaps one closed before)
-        for j in range(1, len(segs)):
-            vertex = sf[segs[j]]
-            i = last_pass.get(vertex, -1)
-            last_pass[vertex] = j
-            # the innermost loop closing here: from the latest pass through this vertex
-            if i < free or owner[j] <= owner[i]:
-                continue
+
+        def stood_in(i: int, j: int) -> bool:
+            """Whether segs[i:j] (entered from one vertex, back to it) is a stand loop."""
             first, last = owner[i], owner[j]  # nodes first .. last - 1 lie inside
-            if chain[last - 1].t - chain[first].t < STAND_S:
-                continue
+            if last <= first or chain[last - 1].t - chain[first].t < STAND_S:
+                return False
             if not any(segs[m + 1] == twin[segs[m]] for m in range(i, j - 1)):
-                continue
+                return False
+            vertex = sf[segs[i]]
             vx = view.vx[vertex]
             vy = view.vy[vertex]
-            inside = True
             for k in range(first, last):
                 r = chain[k].seq - seq0
                 if not 0 <= r < self.fix_n:
-                    inside = False
-                    break
+                    return False
                 dx = xy.item(r, 0) - vx
                 dy = xy.item(r, 1) - vy
                 if dx * dx + dy * dy > radius2:
-                    inside = False
-                    break
-            if not inside:
-                continue
+                    return False
+            return True
+
+        def close(i: int, j: int) -> None:
             for m in range(i, j):
                 removed[m] = True
-            for k in range(first, last):
-                moved[k] = vertex
+            for k in range(owner[i], owner[j]):
+                moved[k] = sf[segs[i]]
                 at[k] = i - 1
-            free = j
+
+        if self.settings.stand_loops_outer:
+            # the outermost loop first: from the earliest pass through a vertex to its
+            # latest return there (see the docstring)
+            i = 1
+            while i < len(segs):
+                vertex = sf[segs[i]]
+                for j in range(len(segs) - 1, i, -1):
+                    if sf[segs[j]] == vertex and stood_in(i, j):
+                        close(i, j)
+                        i = j
+                        break
+                else:
+                    i += 1
+        else:
+            last_pass: dict[int, int] = {}  # vertex -> latest index of segs entered from it
+            free = 1  # loops begin at or after this index (none overlaps one closed before)
+            for j in range(1, len(segs)):
+                vertex = sf[segs[j]]
+                i = last_pass.get(vertex, -1)
+                last_pass[vertex] = j
+                # the innermost loop closing here: from the latest pass through this vertex
+                if i < free or not stood_in(i, j):
+                    continue
+                close(i, j)
+                free = j
         if not moved:
             return chain
         out: list[Node] = []
