@@ -605,19 +605,8 @@ class Pipeline:
                     if pending is not None:
                         fix = pending.pop(event.t, None)
                         if fix is not None:
-                            # _monitor, written out (it runs for nearly every message)
-                            if self.routes is not None:
-                                reject = self._route_for(state, fix, topic, payload, at)
-                                if reject is not None:
-                                    out.append(reject)
-                            fences = self.fences
-                            alerts = state.alerts.update(
-                                fix, (event.x, event.y), True, fences,
-                                self.vehicle_groups.get(fix.vehicle, ())
-                                if fences is not None else (),
-                                self.alert_settings)
-                            if alerts:
-                                out.extend(self._outputs(alerts))
+                            self._monitor(out, state, fix, (event.x, event.y), True,
+                                          topic, payload, at)
                 continue
             if type(event) is Commit:
                 counters["commits"] += 1

@@ -407,39 +407,18 @@ class RouteMonitor:
             eps, x0, y0, x, y, step_m)
         seq = self.seq
         t = fix.t
-        if k >= 0 and not fresh and bk >= 0 and not bfresh:
-            # both windows swept on (most fixes): _Window.done of each, written out
-            fwd.k = k
-            fwd.most = most
-            fwd.best_seg = seg
-            fwd.best_pos = pos
-            fwd.fixes += 1
-            if len(fwd.w) > _SHRINK_LEN:
-                fwd.settle()
-            fwd.seq = seq
-            fwd.t = t
-            rev.k = bk
-            rev.most = bmost
-            rev.best_seg = bseg
-            rev.best_pos = bpos
-            rev.fixes += 1
-            if len(rev.w) > _SHRINK_LEN:
-                rev.settle()
-            rev.seq = seq
-            rev.t = t
+        if k >= 0:
+            fwd.done(k, fresh, most, seg, pos, seq, t)
+        else:  # an overflow: grow, then one window at a time (the scalars as an array)
+            fwd.grow(fa, k, fresh)
+            fwd.step(fa, _step_scalars(eps, x0, y0, x, y, step_m), seq, t)
+        if bk >= 0:
+            rev.done(bk, bfresh, bmost, bseg, bpos, seq, t)
         else:
-            if k >= 0:
-                fwd.done(k, fresh, most, seg, pos, seq, t)
-            else:  # an overflow: grow, then one window at a time (the scalars as an array)
-                fwd.grow(fa, k, fresh)
-                fwd.step(fa, _step_scalars(eps, x0, y0, x, y, step_m), seq, t)
-            if bk >= 0:
-                rev.done(bk, bfresh, bmost, bseg, bpos, seq, t)
-            else:
-                rev.grow(ba, bk, bfresh)
-                rev.step(ba, _step_scalars(eps, x0, y0, x, y, step_m), seq, t)
-            if k < 0 or bk < 0:
-                chain.share_scratch()  # one of them grew: both sweep in the larger again
+            rev.grow(ba, bk, bfresh)
+            rev.step(ba, _step_scalars(eps, x0, y0, x, y, step_m), seq, t)
+        if k < 0 or bk < 0:
+            chain.share_scratch()  # one of them grew: both sweep in the larger again
         self.trail_m += step_m  # reset at every on-route fix (the anchor)
         alerts: list[Alert] = []
         if fwd.k > 0:  # fwd.live
