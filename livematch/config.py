@@ -254,14 +254,16 @@ class GroupConfig:
     ``standby_qos`` (0 or 1; only with a ``{shard}`` topic) is the QoS at which a worker
     subscribes to the shards it stands by for: 0 spares it a PUBACK per kept fix, 1
     keeps those fixes queued at the broker while its connection is down
-    (``docs/scale.md``). ``standby`` (true by default; false needs a ``{shard}`` topic)
-    false runs without standbys: a worker subscribes only to the shards it holds (about
-    1 / W of the feed, not all of it on 2 workers) and a shard whose holder died is
-    restored from its last checkpoint only. The fixes published between that
-    checkpoint and the new holder's SUBACK are then lost (never matched, never
-    answered); the next fixes of those vehicles are matched from the restored state,
-    with a restart of the match if the gap needs one. Hand-overs between live workers
-    lose nothing either way (``docs/scale.md``).
+    (``docs/scale.md``). ``standby = false`` (default true; needs a ``{shard}`` topic)
+    runs without standbys: a worker subscribes only to the shards it holds (about 1 / W
+    of the feed, where with standbys each of 2 workers receives all of it), and a shard
+    whose holder died is restored from its checkpoints only. Per vehicle, the fixes
+    published after its last checkpoint and before the new holder's SUBACK are then
+    lost: those the dead holder matched (and answered) are missing from the restored
+    state, the later ones are never matched or answered. The next fixes of those
+    vehicles are matched from the restored state, bridging the gap or restarting the
+    match as for any gap in a feed. Hand-overs between live workers lose nothing either
+    way (``docs/scale.md``).
     """
 
     name: str = ""
@@ -666,20 +668,21 @@ def _group_problems(group: GroupConfig, store: StoreConfig, mqtt: MqttConfig,
     ``group.standby = false`` needs a ``{shard}`` topic: without one every worker
     receives the whole feed anyway, and the setting would silently do nothing.
     """
+    out: list[str] = []
     if not group.standby and "{shard}" not in mqtt.topic:
         origin = entries.get("standby", (None, "<defaults>"))[1]
-        return [f"{origin}: group.standby = false needs a {{shard}} level in mqtt.topic "
-                f"(fleet/{{shard}}/+/position), got {mqtt.topic!r}"]
+        out.append(f"{origin}: group.standby = false needs a {{shard}} level in mqtt.topic "
+                   f"(fleet/{{shard}}/+/position), got {mqtt.topic!r}")
     if not group.name:
-        return []
+        return out
     origin = entries.get("name", (None, "<defaults>"))[1]
     if store.url == "memory://":
-        return [f"{origin}: group.name {group.name!r} needs a Redis store (store.url), "
-                f"got memory://"]
+        return [*out, f"{origin}: group.name {group.name!r} needs a Redis store "
+                      f"(store.url), got memory://"]
     if "{" in store.key_prefix or "}" in store.key_prefix:
-        return [f"{origin}: group.name {group.name!r} needs a store.key_prefix without "
-                f"{{ }} (keys carry the shard as their hash tag), got {store.key_prefix!r}"]
-    return []
+        return [*out, f"{origin}: group.name {group.name!r} needs a store.key_prefix without "
+                      f"{{ }} (keys carry the shard as their hash tag), got {store.key_prefix!r}"]
+    return out
 
 
 def _credentials(
