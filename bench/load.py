@@ -22,7 +22,9 @@ on this machine and loopback only:
   generators publishing each vehicle on its shard's topic: each worker subscribes only
   to the shards it holds or stands by for, the standby ones at livematch's default
   ``group.standby_qos`` = 0) or ``livematch-2s1`` (the same with ``standby_qos = 1``:
-  every shard topic at QoS 1, as before that option existed) or ``livematch-2sk`` /
+  every shard topic at QoS 1, as before that option existed) or ``livematch-2s0`` (the
+  same with ``group.standby = false``: each worker subscribes only to the shards it
+  holds, about half the feed) or ``livematch-2sk`` /
   ``livematch-2sk1`` (the same two, but the generators send only vehicles of the shards
   that worker w1 holds, the first ``rate`` vehicle ids whose shard it holds: w0 only
   keeps every fix, so its CPU per fix is what a kept fix costs, through the broker,
@@ -651,16 +653,19 @@ def probe(argv: list[str], out_path: str, nodelay: bool, freeze: bool, inflight:
 # --------------------------------------------------------------------------- one step
 def daemon_config(folder: Path, port: int, store: str, worker: str, group: str,
                   topic: str = IN_TOPIC, metrics_port: int = 0,
-                  standby_qos: int | None = None) -> Path:
+                  standby_qos: int | None = None, standby: bool = True) -> Path:
     """A daemon configuration; ``metrics_port`` > 0 opens its /metrics on that port.
 
-    ``standby_qos`` sets ``group.standby_qos`` (None: livematch's default).
+    ``standby_qos`` sets ``group.standby_qos`` (None: livematch's default);
+    ``standby`` False writes ``group.standby = false``.
     """
     cfg = folder / f"{worker}.toml"
     listen = f"127.0.0.1:{metrics_port}" if metrics_port else ""
     group_lines = f'[group]\nname = "{group}"\nworker = "{worker}"\nlease_s = 5\n' if group else ""
     if group and standby_qos is not None:
         group_lines += f"standby_qos = {standby_qos}\n"
+    if group and not standby:
+        group_lines += "standby = false\n"
     cfg.write_text(f"""
 [inputs]
 network = "{NETWORK}"
@@ -799,7 +804,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                 metrics_ports.append(free_port())
                 cfg = daemon_config(folder, port, store, f"w{w}", group,
                                     SHARD_TOPIC if shards else IN_TOPIC, metrics_ports[-1],
-                                    standby_qos)
+                                    standby_qos, system != "livematch-2s0")
                 cmd = [sys.executable, "-m", "livematch.cli"]
                 if CPROFILE_TO is not None:  # --cprofile: each worker's profile at its exit
                     cmd = [sys.executable, "-m", "cProfile", "-o",
@@ -1188,7 +1193,8 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
                 + ", ".join(f"{k:.3f} / {m:.3f}" for k, m in each)
                 + f"; medians {statistics.median(k for k, _ in each):.3f} / "
                 f"{statistics.median(m for _, m in each):.3f}.")
-    pairs = [s for s in r["systems"] if s in ("livematch-2", "livematch-2s", "livematch-2s1")]
+    pairs = [s for s in r["systems"] if s in ("livematch-2", "livematch-2s", "livematch-2s1",
+                                                  "livematch-2s0")]
     if "livematch-1" not in r["systems"] or not pairs:
         return out
     for s in pairs:

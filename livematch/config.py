@@ -254,7 +254,16 @@ class GroupConfig:
     ``standby_qos`` (0 or 1; only with a ``{shard}`` topic) is the QoS at which a worker
     subscribes to the shards it stands by for: 0 spares it a PUBACK per kept fix, 1
     keeps those fixes queued at the broker while its connection is down
-    (``docs/scale.md``).
+    (``docs/scale.md``). ``standby = false`` (default true; needs a ``{shard}`` topic)
+    runs without standbys: a worker subscribes only to the shards it holds (about 1 / W
+    of the feed, where with standbys each of 2 workers receives all of it), and a shard
+    whose holder died is restored from its checkpoints only. Per vehicle, the fixes
+    published after its last checkpoint and before the new holder's SUBACK are then
+    lost: those the dead holder matched (and answered) are missing from the restored
+    state, the later ones are never matched or answered. The next fixes of those
+    vehicles are matched from the restored state, bridging the gap or restarting the
+    match as for any gap in a feed. Hand-overs between live workers lose nothing either
+    way (``docs/scale.md``).
     """
 
     name: str = ""
@@ -264,6 +273,7 @@ class GroupConfig:
     buffer_s: float = 120.0
     buffer_max: int = 20_000
     standby_qos: int = 0
+    standby: bool = True
 
     def problems(self) -> list[tuple[str, str]]:
         """Every invalid value as (key, expectation with the value found)."""
@@ -476,7 +486,8 @@ def load_config(
     problems.extend(found)
     feed, feed_problems = _build_feed(built["mqtt"], raw.get("feed", {}))
     problems.extend(feed_problems)
-    problems.extend(_group_problems(built["group"], built["store"], raw.get("group", {})))
+    problems.extend(_group_problems(built["group"], built["store"], built["mqtt"],
+                                    raw.get("group", {})))
     username, password, cred_problems = _credentials(built["mqtt"], env, raw.get("mqtt", {}))
     problems.extend(cred_problems)
     store_password, found = _store_password(built["store"], env, raw.get("store", {}))
@@ -650,19 +661,28 @@ def _build_feed(mqtt: MqttConfig, entries: Mapping[str, tuple[Any, str]]
     return limits, []
 
 
-def _group_problems(group: GroupConfig, store: StoreConfig,
+def _group_problems(group: GroupConfig, store: StoreConfig, mqtt: MqttConfig,
                     entries: Mapping[str, tuple[Any, str]]) -> list[str]:
-    """A worker group needs a Redis store and a key prefix free of hash tags."""
+    """A worker group needs a Redis store and a key prefix free of hash tags.
+
+    ``group.standby = false`` needs a ``{shard}`` topic: without one every worker
+    receives the whole feed anyway, and the setting would silently do nothing.
+    """
+    out: list[str] = []
+    if not group.standby and "{shard}" not in mqtt.topic:
+        origin = entries.get("standby", (None, "<defaults>"))[1]
+        out.append(f"{origin}: group.standby = false needs a {{shard}} level in mqtt.topic "
+                   f"(fleet/{{shard}}/+/position), got {mqtt.topic!r}")
     if not group.name:
-        return []
+        return out
     origin = entries.get("name", (None, "<defaults>"))[1]
     if store.url == "memory://":
-        return [f"{origin}: group.name {group.name!r} needs a Redis store (store.url), "
-                f"got memory://"]
+        return [*out, f"{origin}: group.name {group.name!r} needs a Redis store "
+                      f"(store.url), got memory://"]
     if "{" in store.key_prefix or "}" in store.key_prefix:
-        return [f"{origin}: group.name {group.name!r} needs a store.key_prefix without "
-                f"{{ }} (keys carry the shard as their hash tag), got {store.key_prefix!r}"]
-    return []
+        return [*out, f"{origin}: group.name {group.name!r} needs a store.key_prefix without "
+                      f"{{ }} (keys carry the shard as their hash tag), got {store.key_prefix!r}"]
+    return out
 
 
 def _credentials(

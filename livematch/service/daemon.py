@@ -896,11 +896,14 @@ class Daemon:
         """The subscription QoS of each shard topic wanted.
 
         ``mqtt.qos`` for the shards held or to be held, ``group.standby_qos`` (at most
-        ``mqtt.qos``) for those only stood by for.
+        ``mqtt.qos``) for those only stood by for; none of those with ``group.standby``
+        false (a takeover then restores the checkpoint only, see ``docs/scale.md``).
         """
         assert self.leases is not None
         qos = self._mqtt.qos
-        want = dict.fromkeys(standby, min(qos, self.config.group.standby_qos))
+        want: dict[int, int] = {}
+        if self.config.group.standby:
+            want = dict.fromkeys(standby, min(qos, self.config.group.standby_qos))
         want.update(dict.fromkeys(mine | set(self.leases.held), qos))
         return want
 
@@ -916,7 +919,11 @@ class Daemon:
         checkpoint. A shard that moves between live workers (a join, or a share that
         changed) is handed over (fenced checkpoint) only once the new holder's record
         names it: it then receives every fix after that checkpoint. A joining worker
-        subscribes and records before it announces itself.
+        subscribes and records before it announces itself. With ``group.standby``
+        false a worker receives only the shards it holds or is to hold: a dead holder's
+        shard is subscribed to once the assignment names this worker, and restored from
+        its checkpoint alone (the fixes published before that SUBACK and after the
+        checkpoint are lost); the hand-over between live workers is unchanged.
         """
         leases = self.leases
         assert leases is not None
