@@ -16,18 +16,20 @@ from services import (
     RedisServer,
     drive,
     end_group_run,
-    free_port,
-    publisher,
-    town,
-    write_config,
 )
 from test_faults_suite import metric_sum
 from test_service_shards_failover import checkpoint_times
-from test_service_shards_topic import SHARDS, start_worker
+from test_service_shards_topic import (
+    SHARDS,
+    publish_fixes,
+    settle_shares,
+    start_worker,
+    topic_group,
+    wait_answered,
+)
 
 from livematch.config import load_config
 from livematch.errors import BadConfigError
-from livematch.mapdata.netfile import save_network
 from livematch.service.shards import assign_shards, shard_of
 
 pytest_plugins = ("fixtures_services",)
@@ -63,13 +65,8 @@ async def test_without_standby_a_worker_receives_only_its_shards_and_takes_over(
     fixes sent, one worker is SIGKILLed: the other takes its shards from the
     checkpoints alone and answers every later fix; since no fix was published in the
     gap, every vehicle's certificate window grows 1, 2, 3, ... without a break."""
-    net = tmp_path / "town.lmnet"
-    save_network(town(), net)
-    cfg = write_config(tmp_path, prefix, broker=mosquitto.url, store=redis_server.url,
-                       network=str(net), extra="[group]\nlease_s = 2.0\nstandby = false\n",
-                       topic="fleet/{shard}/+/position")
-    ports = {w: free_port() for w in WORKERS}
-    logs = {w: tmp_path / f"{w}.log" for w in WORKERS}
+    cfg, ports, logs = topic_group(tmp_path, prefix, mosquitto, redis_server, WORKERS,
+                                   "standby = false\n")
     vehicles = [f"sv-{i}" for i in range(10)]
     assignment = assign_shards(SHARDS, WORKERS)
     held = {w: assignment.held_by(w) for w in WORKERS}
@@ -81,33 +78,9 @@ async def test_without_standby_a_worker_receives_only_its_shards_and_takes_over(
     topic = {v: f"{prefix}/fleet/{shard_of(v, SHARDS)}/{v}/position" for v in vehicles}
     client = aioredis.Redis.from_url(redis_server.url)
 
-    async def held_now(workers: tuple[str, ...]) -> list[float]:
-        return [await metric_sum(ports[w], "livematch_shards_held") for w in workers]
-
     async def settle(workers: tuple[str, ...]) -> None:
-        want = [float(len(assign_shards(SHARDS, workers).held_by(w))) for w in workers]
-        deadline = time.monotonic() + 60
-        while await held_now(workers) != want:
-            assert time.monotonic() < deadline, f"held {await held_now(workers)}, want {want}"
-            for w in workers:
-                assert procs[w].poll() is None, logs[w].read_text()
-            await asyncio.sleep(0.2)
-        await asyncio.sleep(1.5)  # the round's last step: unsubscribe what is not wanted
-
-    async def publish(lo: int, hi: int) -> None:
-        async with publisher(mosquitto.port) as pub:
-            for i in range(lo, hi):
-                for v in vehicles:
-                    await pub.publish(topic[v], feeds[v][i][1], qos=1)
-                await asyncio.sleep(0.05)
-
-    async def answered(hi: int) -> None:
-        want = {v: {t for t, _ in feeds[v][:hi]} for v in vehicles}
-        deadline = time.monotonic() + 60
-        while {v: {r["time"] for r in col.records(f"/out/match/{v}")} for v in vehicles} \
-                != want:
-            assert time.monotonic() < deadline, "fixes not answered"
-            await asyncio.sleep(0.1)
+        assignment = assign_shards(SHARDS, workers)
+        await settle_shares(ports, procs, logs, {w: len(assignment.held_by(w)) for w in workers})
 
     async def received(w: str) -> float:
         return await metric_sum(ports[w], "livematch_messages_received_total")
@@ -122,8 +95,8 @@ async def test_without_standby_a_worker_receives_only_its_shards_and_takes_over(
         async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col:
             await settle(WORKERS)
             before = {w: await received(w) for w in WORKERS}
-            await publish(0, half)
-            await answered(half)
+            await publish_fixes(mosquitto.port, topic, feeds, 0, half)
+            await wait_answered(col, feeds, half)
             for w in WORKERS:  # only the shards it holds reach a worker
                 expect = sum(half for v in vehicles if shard_of(v, SHARDS) in held[w])
                 assert await received(w) - before[w] == expect, (w, expect)
@@ -137,8 +110,8 @@ async def test_without_standby_a_worker_receives_only_its_shards_and_takes_over(
             await asyncio.to_thread(procs[victim].wait, 10)
             await settle((survivor,))  # it holds all 8 shards (and receives them)
             before_after = await received(survivor)
-            await publish(half, n_fixes)
-            await answered(n_fixes)
+            await publish_fixes(mosquitto.port, topic, feeds, half, n_fixes)
+            await wait_answered(col, feeds, n_fixes)
             assert await received(survivor) - before_after == len(vehicles) * half
             procs[survivor].send_signal(signal.SIGTERM)
             assert await asyncio.to_thread(procs[survivor].wait, 30) == 0, \

@@ -52,6 +52,56 @@ def ranked(workers: tuple[str, ...]) -> dict[str, tuple[set[int], set[int]]]:
     assignment = assign_shards(SHARDS, workers)
     return {w: (assignment.held_by(w), assignment.standing_by(w)) for w in workers}
 
+def topic_group(tmp_path: Path, prefix: str, mosquitto: Mosquitto, redis_server: RedisServer,
+                workers: tuple[str, ...], group_extra: str = ""
+                ) -> tuple[Path, dict[str, int], dict[str, Path]]:
+    """A worker group's files on ``{prefix}/fleet/{shard}/+/position``: its config (the
+    town network, Redis store, ``lease_s = 2``), a free health port and a log per worker."""
+    net = tmp_path / "town.lmnet"
+    save_network(town(), net)
+    cfg = write_config(tmp_path, prefix, broker=mosquitto.url, store=redis_server.url,
+                       network=str(net), extra="[group]\nlease_s = 2.0\n" + group_extra,
+                       topic="fleet/{shard}/+/position")
+    return cfg, {w: free_port() for w in workers}, {w: tmp_path / f"{w}.log" for w in workers}
+
+
+async def settle_shares(ports: dict[str, int], procs: dict[str, subprocess.Popen[bytes]],
+                        logs: dict[str, Path], want: dict[str, int]) -> None:
+    """Wait until each worker's ``livematch_shards_held`` is its share in ``want``."""
+    workers = tuple(want)
+
+    async def held() -> list[float]:
+        return [await metric_sum(ports[w], "livematch_shards_held") for w in workers]
+
+    deadline = time.monotonic() + 60
+    while await held() != [float(want[w]) for w in workers]:
+        assert time.monotonic() < deadline, f"held {await held()}, want {want}"
+        for w in workers:
+            assert procs[w].poll() is None, logs[w].read_text()
+        await asyncio.sleep(0.2)
+    await asyncio.sleep(1.5)  # the round's last step: unsubscribe what is not wanted
+
+
+async def publish_fixes(port: int, topic: dict[str, str],
+                        feeds: dict[str, list[tuple[float, bytes]]], lo: int, hi: int) -> None:
+    """Publish fixes ``lo..hi-1`` of every vehicle's feed on its topic, QoS 1."""
+    async with publisher(port) as pub:
+        for i in range(lo, hi):
+            for v, feed in feeds.items():
+                await pub.publish(topic[v], feed[i][1], qos=1)
+            await asyncio.sleep(0.05)
+
+
+async def wait_answered(col: Collector, feeds: dict[str, list[tuple[float, bytes]]],
+                        hi: int) -> None:
+    """Wait until every vehicle's first ``hi`` fixes have an assignment on the output."""
+    want = {v: {t for t, _ in feed[:hi]} for v, feed in feeds.items()}
+    deadline = time.monotonic() + 60
+    while {v: {r["time"] for r in col.records(f"/out/match/{v}")} for v in feeds} != want:
+        assert time.monotonic() < deadline, "fixes not answered"
+        await asyncio.sleep(0.1)
+
+
 
 async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
         mosquitto: Mosquitto, redis_server: RedisServer, prefix: str, tmp_path: Path) -> None:
@@ -62,13 +112,7 @@ async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
     (and a shard whose holder lives moves once its new holder receives it): every fix
     is answered, no
     checkpoint goes back, every vehicle's certificate window grows 1, 2, 3, ..."""
-    net = tmp_path / "town.lmnet"
-    save_network(town(), net)
-    cfg = write_config(tmp_path, prefix, broker=mosquitto.url, store=redis_server.url,
-                       network=str(net), extra="[group]\nlease_s = 2.0\n",
-                       topic="fleet/{shard}/+/position")
-    ports = {w: free_port() for w in WORKERS}
-    logs = {w: tmp_path / f"{w}.log" for w in WORKERS}
+    cfg, ports, logs = topic_group(tmp_path, prefix, mosquitto, redis_server, WORKERS)
     # sv-14 is on shard 6, which moves from w1 to w3 (both alive) when w2 is killed
     vehicles = [f"sv-{i}" for i in (0, 1, 2, 3, 4, 14, 6, 7, 13)]
     n_fixes = 30
@@ -86,33 +130,8 @@ async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
                 seen[v] = max(t, seen.get(v, t))
             await asyncio.sleep(0.05)
 
-    async def held(workers: tuple[str, ...]) -> list[float]:
-        return [await metric_sum(ports[w], "livematch_shards_held") for w in workers]
-
     async def settle(workers: tuple[str, ...]) -> None:
-        want = [float(len(ranked(workers)[w][0])) for w in workers]
-        deadline = time.monotonic() + 60
-        while await held(workers) != want:
-            assert time.monotonic() < deadline, f"held {await held(workers)}, want {want}"
-            for w in workers:
-                assert procs[w].poll() is None, logs[w].read_text()
-            await asyncio.sleep(0.2)
-        await asyncio.sleep(1.5)  # the round's last step: unsubscribe what is not wanted
-
-    async def publish(lo: int, hi: int) -> None:
-        async with publisher(mosquitto.port) as pub:
-            for i in range(lo, hi):
-                for v in vehicles:
-                    await pub.publish(topic[v], feeds[v][i][1], qos=1)
-                await asyncio.sleep(0.05)
-
-    async def answered(hi: int) -> None:
-        want = {v: {t for t, _ in feeds[v][:hi]} for v in vehicles}
-        deadline = time.monotonic() + 60
-        while {v: {r["time"] for r in col.records(f"/out/match/{v}")} for v in vehicles} \
-                != want:
-            assert time.monotonic() < deadline, "fixes not answered"
-            await asyncio.sleep(0.1)
+        await settle_shares(ports, procs, logs, {w: len(ranked(workers)[w][0]) for w in workers})
 
     procs = {w: start_worker(cfg, w, ports[w], logs[w]) for w in WORKERS}
     watcher = asyncio.create_task(watch_checkpoints())
@@ -121,8 +140,8 @@ async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
             await settle(WORKERS)
             before = {w: await metric_sum(ports[w], "livematch_messages_received_total")
                       for w in WORKERS}
-            await publish(0, 15)
-            await answered(15)
+            await publish_fixes(mosquitto.port, topic, feeds, 0, 15)
+            await wait_answered(col, feeds, 15)
             roles = ranked(WORKERS)
             for w in WORKERS:  # only the shards it holds or stands by for reach a worker
                 mine, standby = roles[w]
@@ -141,8 +160,8 @@ async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
             moved = (assign_shards(SHARDS, WORKERS).holder[6],
                      assign_shards(SHARDS, survivors).holder[6])
             assert moved == ("w1", "w3")  # a hand-over between live workers (sv-14)
-            await publish(15, n_fixes)
-            await answered(n_fixes)
+            await publish_fixes(mosquitto.port, topic, feeds, 15, n_fixes)
+            await wait_answered(col, feeds, n_fixes)
             await settle(survivors)
             deadline = time.monotonic() + 20
             while seen != {v: max(t for t, _ in feeds[v]) for v in vehicles}:
