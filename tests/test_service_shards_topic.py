@@ -29,7 +29,6 @@ from test_service_shards import group_daemon, wait_until
 from test_service_shards_failover import checkpoint_times
 
 from livematch.mapdata.netfile import save_network
-from livematch.service.mqtt import buffered_reads, lean_receive
 from livematch.service.shards import assign_shards, shard_of
 
 pytest_plugins = ("fixtures_services",)
@@ -243,47 +242,3 @@ async def test_shard_moves_only_once_its_new_holder_receives_it(
         a.request_stop()
         await asyncio.wait_for(task, 20)
         await client.aclose()
-
-
-async def test_read_pause_reads_what_arrives_meanwhile_in_one_piece(
-        mosquitto: Mosquitto, prefix: str) -> None:
-    """``buffered_reads(pause=...)`` (what a worker does after a read that brought only
-    fixes it keeps): after a read for which ``pause`` answers 0.4 s, messages published
-    during the next 0.4 s are delivered only then, all from one read of the socket;
-    once ``pause`` answers 0 a message is delivered as it comes."""
-    delivered: list[tuple[float, bytes]] = []
-    reader = aiomqtt.Client("127.0.0.1", mosquitto.port, protocol=aiomqtt.ProtocolVersion.V5)
-    lean_receive(reader, deliver=lambda m: delivered.append((time.monotonic(),
-                                                             bytes(m.payload))))
-    asked: list[int] = []
-
-    def pause() -> float:
-        asked.append(len(delivered))
-        return 0.4 if asked.count(1) == 1 and len(delivered) == 1 else 0.0
-
-    buffered_reads(reader, pause=pause)
-
-    async def until(n: int) -> None:
-        async with asyncio.timeout(10):
-            while len(delivered) < n:
-                await asyncio.sleep(0.005)
-
-    async with reader:
-        await reader.subscribe(f"{prefix}/pause/#", qos=0)
-        sock = reader._client._sock
-        async with aiomqtt.Client("127.0.0.1", mosquitto.port) as writer:
-            await writer.publish(f"{prefix}/pause/a", b"first", qos=0)
-            await until(1)
-            reads = sock.reads  # type: ignore[union-attr]
-            for k in range(5):
-                await writer.publish(f"{prefix}/pause/a", str(k).encode(), qos=0)
-                await asyncio.sleep(0.02)
-            await until(6)
-            assert sock.reads == reads + 1  # type: ignore[union-attr]  # one read for five
-            first = delivered[0][0]
-            assert all(at - first >= 0.35 for at, _ in delivered[1:]), delivered
-            sent = time.monotonic()
-            await writer.publish(f"{prefix}/pause/a", b"last", qos=0)
-            await until(7)
-            assert delivered[-1][0] - sent < 0.3  # not paused any more
-    assert [p for _, p in delivered] == [b"first", b"0", b"1", b"2", b"3", b"4", b"last"]

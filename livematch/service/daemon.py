@@ -131,11 +131,6 @@ _KEPT_RUN = 16
 # leave in one write (mqtt.coalesce) instead of one per message.
 _MATCHED_RUN = 8
 _MATCHED_RUN_S = 0.002
-# After a read of the broker's socket that brought only fixes kept for another worker
-# (and left nothing to match), the socket is not watched for this long (seconds): what
-# arrives meanwhile is read in one wake-up instead of one each (mqtt.buffered_reads).
-# A fix to match that arrives meanwhile waits at most this long.
-_KEPT_READ_PAUSE_S = 0.005
 # Shortest interval between two "publish queue full" warnings (seconds).
 _FULL_LOG_EVERY_S = 10.0
 # How far ahead of the wall clock a fix time may push the eviction clock (seconds).
@@ -384,7 +379,6 @@ class Daemon:
         # an older export of the periodic checkpoint (same fencing number, older state).
         self._write_lock = asyncio.Lock()
         self._intake: IntakeQueue | None = None  # the current connection's intake queue
-        self._kept_read = False  # a fix only kept was read since the last _read_pause
         self._intake_peak = 0  # largest intake of the connections before the current one
         # Gauges read at scrape time rather than set on every message and output.
         self.metrics.queue_depth.set_function(
@@ -1371,7 +1365,7 @@ class Daemon:
         # every message received, whichever way paho decoded it, goes through _arrive
         self._intake.arrive = functools.partial(self._arrive, client, self._intake)
         lean_receive(client, deliver=self._intake.put_nowait)
-        buffered_reads(client, pause=self._read_pause if self.config.group.name else None)
+        buffered_reads(client)
         cancelled = False
         try:
             async with client:
@@ -1562,23 +1556,12 @@ class Daemon:
         kept = self._keep(shard, time.time(), topic, payload)
         if kept and shard not in self._active:
             self._received += 1
-            self._kept_read = True
             if intake.empty() or not message.qos:  # a QoS 0 one needs no PUBACK
                 ack(client, message)
             else:
                 intake.put_ack(message)
             return
         intake.put_keyed(message, key, kept, shard)
-
-    def _read_pause(self) -> float:
-        """How long to leave the broker's socket unwatched after a read (seconds).
-
-        :data:`_KEPT_READ_PAUSE_S` when the read brought fixes only kept for another
-        worker and nothing waits in the intake queue, else 0 (read on as before).
-        """
-        kept, self._kept_read = self._kept_read, False
-        intake = self._intake
-        return _KEPT_READ_PAUSE_S if kept and intake is not None and intake.empty() else 0.0
 
     def _kept_shard(self, topic: str, payload: bytes, key: str) -> int:
         """The shard a possible fix is kept under, or -1 for a ``wrong_shard`` message.

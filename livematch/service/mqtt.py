@@ -264,8 +264,7 @@ class _BufferedSocket:
         return getattr(self._sock, name)
 
 
-def buffered_reads(client: aiomqtt.Client, *,
-                   pause: Callable[[], float] | None = None) -> None:
+def buffered_reads(client: aiomqtt.Client) -> None:
     """Read the broker's socket in large pieces, not one system call per packet part.
 
     paho reads every packet with at least three ``recv`` calls (the first byte, the
@@ -278,53 +277,19 @@ def buffered_reads(client: aiomqtt.Client, *,
     to one packet per message in flight, as aiomqtt's reader does per readable event),
     again while bytes are left, one turn of the loop at a time. A read error there ends
     the connection as aiomqtt's reader does. Call before connecting, in the event loop.
-
-    ``pause`` is asked after every read: when it returns s > 0 the event loop stops
-    watching the socket for s seconds (what arrives meanwhile waits in the kernel and
-    is read in one piece afterwards). A process that is otherwise idle wakes up for
-    every readable event, and on this machine a wake-up costs far more CPU than reading
-    a message (``bench/load.py --loop-cost``); the daemon pauses after a read that
-    brought only fixes it keeps for another worker (``docs/scale.md``).
     """
     paho: Any = client._client
     loop = asyncio.get_running_loop()
     loop_thread = threading.get_ident()
     inner_open = paho.on_socket_open
-    state = {"scheduled": False, "paused": False}
+    state = {"scheduled": False}
     plain_loop_read = paho.loop_read
 
     def loop_read(max_packets: int = 1) -> MQTTErrorCode:
         sock = paho._sock
         if type(sock) is not _BufferedSocket or paho._in_packet["command"]:
             return plain_loop_read(max_packets)  # not wrapped, or a packet half read
-        rc = _read_packets(paho, sock, plain_loop_read)
-        if pause is not None and not state["paused"] and paho._sock is sock:
-            seconds = pause()
-            if seconds > 0:
-                stop_watching(sock, seconds)
-        return rc
-
-    def reader() -> None:
-        """What aiomqtt's reader callback does on a readable event (plain sockets)."""
-        try:
-            paho.loop_read()
-        except Exception as exc:  # the connection broke
-            disconnected = getattr(client, "_disconnected", None)
-            if isinstance(disconnected, asyncio.Future) and not disconnected.done():
-                disconnected.set_exception(exc)
-
-    def stop_watching(sock: _BufferedSocket, seconds: float) -> None:
-        fd = sock.fileno()
-        if fd < 0 or getattr(sock, "pending", None) is not None:
-            return  # closed, or TLS (decrypted bytes the event loop cannot see)
-        loop.remove_reader(fd)
-        state["paused"] = True
-        loop.call_later(seconds, watch_again, sock, fd)
-
-    def watch_again(sock: _BufferedSocket, fd: int) -> None:
-        state["paused"] = False
-        if paho._sock is sock and sock.fileno() == fd:  # still this connection
-            loop.add_reader(fd, reader)
+        return _read_packets(paho, sock, plain_loop_read)
 
     def read_on() -> None:
         state["scheduled"] = False
