@@ -29,6 +29,7 @@ from livematch.service.shards import (
     LeaseManager,
     Renewal,
     RenewalThread,
+    ShardWrite,
     assign_shards,
     preference,
     rank_workers,
@@ -227,6 +228,30 @@ async def test_lease_expires_and_fence_refuses_stale_writer(redis_url: str,
         a.held[1] = 1
         assert await a.renew() == [1]
         assert await b.renew() == []
+
+
+async def test_save_many_is_fenced_per_shard_and_loads_a_flushed_script(
+        redis_url: str, prefix: str) -> None:
+    """Several shards' writes in one pipeline: each checked against its own fence (one
+    refused leaves the others written), and a script Redis no longer has cached
+    (SCRIPT FLUSH, documented to empty the script cache) is loaded and written."""
+    async with managers(redis_url, prefix, "a", "b", lease_s=5.0) as (a, b):
+        assert await a.acquire(0) == 1
+        assert await b.acquire(1) == 1
+        assert await a.acquire(2) == 1
+        writes = [ShardWrite(0, 1, {"v": b"0"}, {"v": b"{}"}, []),
+                  ShardWrite(1, 1, {"w": b"stale"}, {}, []),  # refused below
+                  ShardWrite(2, 1, {"x": b"2"}, {}, [])]
+        await a.client.incr(a.key(1, "fence"))  # shard 1 taken again since: fence 1 is stale
+        assert await a.save_many(writes, ttl_s=60) == [True, False, True]
+        assert await b.load(0) == {"v": b"0"}
+        assert await b.load(1) == {}
+        assert await b.load(2) == {"x": b"2"}
+        assert await b.client.hget(b.key(0, "latest"), "v") == b"{}"
+        await a.client.script_flush()
+        assert await a.save_many([ShardWrite(2, 1, {}, {}, ["x"])], ttl_s=60) == [True]
+        assert await b.load(2) == {}
+        assert await a.save_many([], ttl_s=60) == []
 
 
 async def test_renewal_thread_renews_while_event_loop_blocked(redis_url: str,

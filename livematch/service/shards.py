@@ -50,7 +50,7 @@ from typing import Any
 
 import redis
 import redis.asyncio as aioredis
-from redis.exceptions import RedisError
+from redis.exceptions import NoScriptError, RedisError
 
 from livematch.config import redact_url
 from livematch.service.store import StoreError
@@ -383,6 +383,25 @@ class RenewalThread:
                 return
 
 
+@dataclass(frozen=True)
+class ShardWrite:
+    """One shard's fenced write for :meth:`LeaseManager.save_many`.
+
+    ``fence`` is the fencing number the shard was taken with; ``blobs`` the
+    checkpoints to write, ``latest`` the latest records, ``deleted`` the vehicles
+    whose checkpoint, index entry and latest record are removed. ``cleaned`` is the
+    caller's (the daemon: the vehicles whose latest record counts as written once this
+    write succeeds); not sent.
+    """
+
+    shard: int
+    fence: int
+    blobs: Mapping[str, bytes]
+    latest: Mapping[str, bytes]
+    deleted: list[str]
+    cleaned: tuple[str, ...] = ()
+
+
 class LeaseManager:
     """One worker's leases, membership and fenced checkpoint writes in Redis.
 
@@ -658,21 +677,64 @@ class LeaseManager:
         Returns False (writing nothing) when ``fence`` is no longer the shard's current
         fencing number: another worker took the shard since.
         """
-        gone = list(deleted)
-        keys = [self.key(shard, "fence"), self.key(shard, "vehicles"), self.key(shard, "latest")]
-        keys += [self.vehicle_key(shard, v) for v in blobs]
-        keys += [self.vehicle_key(shard, v) for v in gone]
-        args: list[Any] = [fence, max(1, math.ceil(ttl_s * 1000)), len(blobs), len(latest),
-                           len(gone)]
-        for vehicle, blob in blobs.items():
-            args += [vehicle, blob]
-        for vehicle, record in latest.items():
-            args += [vehicle, record]
-        args += gone
+        keys, args = self._save_call(ShardWrite(shard, fence, blobs, latest, list(deleted)),
+                                     ttl_s)
         try:
             return bool(await self._save(keys=keys, args=args) == 1)
         except (RedisError, OSError) as exc:
             raise self._fail(f"saving shard {shard}", exc) from exc
+
+    def _save_call(self, write: ShardWrite, ttl_s: float) -> tuple[list[str], list[Any]]:
+        """The keys and arguments of the ``_SAVE`` script for one shard's write."""
+        shard, gone = write.shard, write.deleted
+        keys = [self.key(shard, "fence"), self.key(shard, "vehicles"), self.key(shard, "latest")]
+        keys += [self.vehicle_key(shard, v) for v in write.blobs]
+        keys += [self.vehicle_key(shard, v) for v in gone]
+        args: list[Any] = [write.fence, max(1, math.ceil(ttl_s * 1000)), len(write.blobs),
+                           len(write.latest), len(gone)]
+        for vehicle, blob in write.blobs.items():
+            args += [vehicle, blob]
+        for vehicle, record in write.latest.items():
+            args += [vehicle, record]
+        args += gone
+        return keys, args
+
+    async def save_many(self, writes: Sequence[ShardWrite], *, ttl_s: float) -> list[bool]:
+        """:meth:`save` for several shards in one round trip; whether each was written.
+
+        Each shard's write is the same fenced script as :meth:`save`, sent in order in
+        one pipeline (not a transaction: each is checked against its own shard's
+        fence, as one by one). One by one, every write cost the worker a request and a
+        reply through the asyncio client, about 160 µs of CPU, against about 40 µs
+        each in a pipeline of 32 (a throwaway measurement at load average 10); a
+        checkpoint round of a worker holding 32 shards writes most of them (the latest
+        records of every vehicle answered since the last round). A write whose script
+        Redis does not have cached (restarted, ``SCRIPT FLUSH``) is sent again through
+        :meth:`save`, which loads it. Raises :class:`StoreError` as :meth:`save` does;
+        the writes before the failing one may then have been made (each is fenced and
+        the caller writes them again, as after a failed :meth:`save`).
+        """
+        if not writes:
+            return []
+        try:
+            pipe = self.client.pipeline(transaction=False)
+            for write in writes:
+                keys, args = self._save_call(write, ttl_s)
+                pipe.evalsha(self._save.sha, len(keys), *keys, *args)
+            results = await pipe.execute(raise_on_error=False)
+        except (RedisError, OSError) as exc:
+            raise self._fail(f"saving {len(writes)} shard(s)", exc) from exc
+        out: list[bool] = []
+        for write, result in zip(writes, results, strict=True):
+            if isinstance(result, NoScriptError):
+                out.append(await self.save(write.shard, fence=write.fence, blobs=write.blobs,
+                                           latest=write.latest, deleted=write.deleted,
+                                           ttl_s=ttl_s))
+            elif isinstance(result, Exception):
+                raise self._fail(f"saving shard {write.shard}", result)
+            else:
+                out.append(result == 1)
+        return out
 
     async def load(self, shard: int) -> dict[str, bytes]:
         """Every checkpoint of a shard, by vehicle (expired ones are skipped)."""
