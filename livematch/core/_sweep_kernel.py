@@ -87,6 +87,8 @@ OVERFLOW = -1
 
 _WHITE = 1
 _DONE = 2
+_FLAGS = 3
+_PEND_SHIFT = 2  # vflag >> 2: 1 + the id of the vertex's cheapest waiting entry (0: none)
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -236,13 +238,19 @@ def sweep_kernel(
             vtouched[n_touched] = b
             n_touched += 1
         if white_lo[b] <= white_hi[b]:
+            cost = live[row + L_COST]
+            pend = (vflag[b] >> _PEND_SHIFT) - 1
+            if pend >= 0 and not (white_lo[b] < es[pend] or (
+                    white_lo[b] == es[pend] and cost < ec[pend])):
+                continue  # an entry for b already waits that pops first: this one is a no-op
             if n_entries >= cap_h:
                 overflow = True
                 break
             e = n_entries
             n_entries += 1
+            vflag[b] = (vflag[b] & _FLAGS) | ((e + 1) << _PEND_SHIFT)
             es[e] = white_lo[b]
-            ec[e] = live[row + L_COST]
+            ec[e] = cost
             k = e * ENTRY_STRIDE
             entry[k] = b
             entry[k + 1] = i
@@ -330,11 +338,15 @@ def sweep_kernel(
                 n_touched += 1
             sw = s if s > white_lo[w] else white_lo[w]
             if sw <= white_hi[w]:
+                pend = (vflag[w] >> _PEND_SHIFT) - 1
+                if pend >= 0 and not (sw < es[pend] or (sw == es[pend] and ec[e] < ec[pend])):
+                    continue  # an entry for w already waits that pops first
                 if n_entries >= cap_h or n_via + via_len + 1 > cap_b:
                     overflow = True
                     break
                 new_e = n_entries
                 n_entries += 1
+                vflag[w] = (vflag[w] & _FLAGS) | ((new_e + 1) << _PEND_SHIFT)
                 es[new_e] = sw
                 ec[new_e] = ec[e]  # parent.cost
                 q = new_e * ENTRY_STRIDE
@@ -392,6 +404,12 @@ def sweep_kernel(
         ex = mx - x1
         ey = my - y1
         cost = (ex * ex + ey * ey) * inv_two_sigma2
+        if slot >= 0 and cost + p_cost >= out_f[slot * OUT_F_STRIDE + 4]:
+            # the terms still to add are >= 0 and rounding is monotone, so the offer's
+            # cost is >= cost + p_cost: it cannot replace the row, only lower its low
+            if lo < out_f[slot * OUT_F_STRIDE]:
+                out_f[slot * OUT_F_STRIDE] = lo
+            continue
         if via_len == 0 and seg == p_seg:
             route = (pos - p_pos) * slen[seg]
         else:
@@ -408,6 +426,10 @@ def sweep_kernel(
                 turns += 1
             cost += turns * turn_back_cost
         cost += p_cost + abs(route - chord) * inv_beta
+        if slot >= 0 and cost >= out_f[slot * OUT_F_STRIDE + 4]:
+            if lo < out_f[slot * OUT_F_STRIDE]:
+                out_f[slot * OUT_F_STRIDE] = lo
+            continue  # the motion term is >= 0: as above
         if motion > 0.0:
             ux = (mx - live[prow + L_X]) - (x1 - x0)
             uy = (my - live[prow + L_Y]) - (y1 - y0)
