@@ -27,7 +27,9 @@ order give the same result.
     exact in a float64 far beyond any network size).
 ``fbuf`` (float64), per network, scratch and output:
     ``white_lo[V] | white_hi[V] | entry_s[H] | entry_cost[H] | offer_lo_hi[O * 2]
-    | out[M * 5]`` where an output row is ``low, pos, x, y, cost``.
+    | out[M * 5]`` where an output row is ``low, pos, x, y, cost``; it may go on with
+    room for :func:`tree_sweep`'s packed ``live`` array (``N_CTX + 7 M`` values; the
+    kernel itself never reads or writes past ``out``).
 ``ibuf`` (int64), per network, scratch and output: a header ``V, E, H, B, M, O``, then
     ``seg_slot[E] | vflag[V] | vtouched[V] | entry[H * 4] | heap[H] | via[B] | offer[O * 4]
     | out[M * 4 + B]``. An entry row (and an offer row) is ``vertex`` (``seg``),
@@ -569,7 +571,15 @@ def tree_sweep(
     vy = netf[n_v:2 * n_v]
     sf = neti[0:n_e]
     st = neti[n_e:2 * n_e]
-    live = np.empty(N_CTX + LIVE_STRIDE * k)
+    # the live block packed into the room after the kernel's output rows (SweepArrays
+    # leaves room for as many states as output rows), else into a new array
+    _, _, out_f0, entry0, _, _ = layout(n_v, n_e, ibuf[2], ibuf[3], ibuf[4], ibuf[5])
+    live0 = out_f0 + ibuf[4] * OUT_F_STRIDE
+    need = N_CTX + LIVE_STRIDE * k
+    if fbuf.shape[0] - live0 >= need:
+        live = fbuf[live0:live0 + need]
+    else:
+        live = np.empty(need)
     for j in range(N_CTX):
         live[j] = ctx[j]
     for j in range(k):
@@ -612,7 +622,19 @@ def tree_sweep(
             return ARENA_FULL, lo, hi
         compact_in_place(ti, tf)
     tree_append(fbuf, ibuf, ti, tf, seq, t, m, n_via)
-    top = commit_point(ti, next_commit, newest) if newest >= 0 else -1
+    if newest < 0:
+        return -1, ti[H_LO], ti[H_HI]
+    # the walk's scratch: the kernel's heap area, free once the kernel has returned
+    cap_h = ibuf[2]
+    if m <= cap_h:
+        heap0 = entry0 + cap_h * ENTRY_STRIDE
+        cur = ibuf[heap0:heap0 + m]
+        for j in range(m):
+            cur[j] = ti[H_LO] + j
+        top = commit_point_of(ti, next_commit, newest, rows_ancestor(ti, cur, m,
+                                                                     next_commit - 1))
+    else:
+        top = commit_point(ti, next_commit, newest)
     return top, ti[H_LO], ti[H_HI]
 
 
@@ -839,7 +861,12 @@ def commit_point(ti: np.ndarray, next_commit: int, newest: int) -> int:
     (:func:`ancestor_at`); -1 unless its fix lies in ``[next_commit, newest]``. One call
     for what ``Tracker._settle`` asks of every covering level.
     """
-    top = block_ancestor(ti, next_commit - 1)
+    return commit_point_of(ti, next_commit, newest, block_ancestor(ti, next_commit - 1))
+
+
+@numba.njit(cache=True, error_model="numpy")
+def commit_point_of(ti: np.ndarray, next_commit: int, newest: int, top: int) -> int:
+    """:func:`commit_point` from the live block's :func:`block_ancestor` ``top``."""
     if top >= 0 and ti[ROW_I * top + K_SEQ] > newest:
         top = ancestor_at(ti, top, newest)
     if top >= 0 and next_commit <= ti[ROW_I * top + K_SEQ] <= newest:
