@@ -576,10 +576,7 @@ def tree_sweep(
     _, _, out_f0, entry0, _, _ = layout(n_v, n_e, ibuf[2], ibuf[3], ibuf[4], ibuf[5])
     live0 = out_f0 + ibuf[4] * OUT_F_STRIDE
     need = N_CTX + LIVE_STRIDE * k
-    if fbuf.shape[0] - live0 >= need:
-        live = fbuf[live0:live0 + need]
-    else:
-        live = np.empty(need)
+    live = fbuf[live0:live0 + need] if fbuf.shape[0] - live0 >= need else np.empty(need)
     for j in range(N_CTX):
         live[j] = ctx[j]
     for j in range(k):
