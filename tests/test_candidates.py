@@ -396,6 +396,48 @@ def test_tree_step_answers_commit_point_and_compacts_like_compact(name: str,
     assert stepped > 100 and full > 50 and tops > 50  # the cases really occur
 
 
+def test_tree_step_with_tiny_kernel_buffers_gives_the_same_rows_and_commit_point() -> None:
+    """The tree step packs the live block into room after the kernel's output rows and
+    walks the commit check in the kernel's heap area; with buffers too small for either
+    it uses new arrays (and grows the buffers on overflow). Either way: the same rows and
+    the same answer as :meth:`CandidateTree.commit_point` after a plain step."""
+    net = osm("Helsinki")
+    view = view_of(net)
+    arrays = sweep_arrays(view)
+    tracker = Tracker(net, "v", MatchSettings())
+    checked = walk_in_new_array = 0
+    try:
+        for fix, nxt in itertools.pairwise(drive(net, 5, 1, 150.0)):
+            tracker.update(fix)
+            seq = tracker.seq + 1
+            step = np.array((0.0, fix.x, fix.y, nxt.x, nxt.y,
+                             math.hypot(nxt.x - fix.x, nxt.y - fix.y), *tracker._weights))
+            for level in tracker.levels:
+                if len(level.tree) < 2:
+                    continue
+                step[0] = level.eps
+                arrays.resize(1024, 4096, 512, 2048)  # the usual room
+                roomy = copy_tree(level.tree, True)
+                top = roomy.step(arrays, step, seq, nxt.t, tracker.next_commit, seq)
+                # room for a one-state live block (the block here has two or more), then
+                # a heap of one entry beside room for 64 output rows
+                for caps in ((1, 4096, 1, 2048), (1, 4096, 64, 2048)):
+                    arrays.resize(*caps)
+                    tight = copy_tree(level.tree, True)
+                    got = tight.step(arrays, step, seq, nxt.t, tracker.next_commit, seq)
+                    assert got == top
+                    if top == DIED:
+                        continue
+                    assert [bytes(a) for a in tight.packed().parts()] == [
+                        bytes(a) for a in roomy.packed().parts()]
+                    assert top == roomy.commit_point(tracker.next_commit, seq)
+                    checked += 1
+                    walk_in_new_array += len(tight) > arrays.cap_h
+    finally:
+        arrays.resize(1024, 4096, 512, 2048)
+    assert checked > 200 and walk_in_new_array > 20  # the cases really occur
+
+
 @pytest.mark.parametrize("name", ["test", "Helsinki"])
 def test_commit_check_with_cut_equals_trim_then_check(name: str) -> None:
     """Cutting in the commit check leaves the rows trim leaves and gives the same answer."""

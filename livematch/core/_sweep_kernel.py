@@ -27,7 +27,9 @@ order give the same result.
     exact in a float64 far beyond any network size).
 ``fbuf`` (float64), per network, scratch and output:
     ``white_lo[V] | white_hi[V] | entry_s[H] | entry_cost[H] | offer_lo_hi[O * 2]
-    | out[M * 5]`` where an output row is ``low, pos, x, y, cost``.
+    | out[M * 5]`` where an output row is ``low, pos, x, y, cost``; it may go on with
+    room for :func:`tree_sweep`'s packed ``live`` array (``N_CTX + 7 M`` values; the
+    kernel itself never reads or writes past ``out``).
 ``ibuf`` (int64), per network, scratch and output: a header ``V, E, H, B, M, O``, then
     ``seg_slot[E] | vflag[V] | vtouched[V] | entry[H * 4] | heap[H] | via[B] | offer[O * 4]
     | out[M * 4 + B]``. An entry row (and an offer row) is ``vertex`` (``seg``),
@@ -87,6 +89,8 @@ OVERFLOW = -1
 
 _WHITE = 1
 _DONE = 2
+_FLAGS = 3
+_PEND_SHIFT = 2  # vflag >> 2: 1 + the id of the vertex's cheapest waiting entry (0: none)
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -236,13 +240,19 @@ def sweep_kernel(
             vtouched[n_touched] = b
             n_touched += 1
         if white_lo[b] <= white_hi[b]:
+            cost = live[row + L_COST]
+            pend = (vflag[b] >> _PEND_SHIFT) - 1
+            if pend >= 0 and not (white_lo[b] < es[pend] or (
+                    white_lo[b] == es[pend] and cost < ec[pend])):
+                continue  # an entry for b already waits that pops first: this one is a no-op
             if n_entries >= cap_h:
                 overflow = True
                 break
             e = n_entries
             n_entries += 1
+            vflag[b] = (vflag[b] & _FLAGS) | ((e + 1) << _PEND_SHIFT)
             es[e] = white_lo[b]
-            ec[e] = live[row + L_COST]
+            ec[e] = cost
             k = e * ENTRY_STRIDE
             entry[k] = b
             entry[k + 1] = i
@@ -330,11 +340,15 @@ def sweep_kernel(
                 n_touched += 1
             sw = s if s > white_lo[w] else white_lo[w]
             if sw <= white_hi[w]:
+                pend = (vflag[w] >> _PEND_SHIFT) - 1
+                if pend >= 0 and not (sw < es[pend] or (sw == es[pend] and ec[e] < ec[pend])):
+                    continue  # an entry for w already waits that pops first
                 if n_entries >= cap_h or n_via + via_len + 1 > cap_b:
                     overflow = True
                     break
                 new_e = n_entries
                 n_entries += 1
+                vflag[w] = (vflag[w] & _FLAGS) | ((new_e + 1) << _PEND_SHIFT)
                 es[new_e] = sw
                 ec[new_e] = ec[e]  # parent.cost
                 q = new_e * ENTRY_STRIDE
@@ -392,6 +406,12 @@ def sweep_kernel(
         ex = mx - x1
         ey = my - y1
         cost = (ex * ex + ey * ey) * inv_two_sigma2
+        if slot >= 0 and cost + p_cost >= out_f[slot * OUT_F_STRIDE + 4]:
+            # the terms still to add are >= 0 and rounding is monotone, so the offer's
+            # cost is >= cost + p_cost: it cannot replace the row, only lower its low
+            if lo < out_f[slot * OUT_F_STRIDE]:
+                out_f[slot * OUT_F_STRIDE] = lo
+            continue
         if via_len == 0 and seg == p_seg:
             route = (pos - p_pos) * slen[seg]
         else:
@@ -408,6 +428,10 @@ def sweep_kernel(
                 turns += 1
             cost += turns * turn_back_cost
         cost += p_cost + abs(route - chord) * inv_beta
+        if slot >= 0 and cost >= out_f[slot * OUT_F_STRIDE + 4]:
+            if lo < out_f[slot * OUT_F_STRIDE]:
+                out_f[slot * OUT_F_STRIDE] = lo
+            continue  # the motion term is >= 0: as above
         if motion > 0.0:
             ux = (mx - live[prow + L_X]) - (x1 - x0)
             uy = (my - live[prow + L_Y]) - (y1 - y0)
@@ -547,7 +571,12 @@ def tree_sweep(
     vy = netf[n_v:2 * n_v]
     sf = neti[0:n_e]
     st = neti[n_e:2 * n_e]
-    live = np.empty(N_CTX + LIVE_STRIDE * k)
+    # the live block packed into the room after the kernel's output rows (SweepArrays
+    # leaves room for as many states as output rows), else into a new array
+    _, _, out_f0, entry0, _, _ = layout(n_v, n_e, ibuf[2], ibuf[3], ibuf[4], ibuf[5])
+    live0 = out_f0 + ibuf[4] * OUT_F_STRIDE
+    need = N_CTX + LIVE_STRIDE * k
+    live = fbuf[live0:live0 + need] if fbuf.shape[0] - live0 >= need else np.empty(need)
     for j in range(N_CTX):
         live[j] = ctx[j]
     for j in range(k):
@@ -590,7 +619,19 @@ def tree_sweep(
             return ARENA_FULL, lo, hi
         compact_in_place(ti, tf)
     tree_append(fbuf, ibuf, ti, tf, seq, t, m, n_via)
-    top = commit_point(ti, next_commit, newest) if newest >= 0 else -1
+    if newest < 0:
+        return -1, ti[H_LO], ti[H_HI]
+    # the walk's scratch: the kernel's heap area, free once the kernel has returned
+    cap_h = ibuf[2]
+    if m <= cap_h:
+        heap0 = entry0 + cap_h * ENTRY_STRIDE
+        cur = ibuf[heap0:heap0 + m]
+        for j in range(m):
+            cur[j] = ti[H_LO] + j
+        top = commit_point_of(ti, next_commit, newest, rows_ancestor(ti, cur, m,
+                                                                     next_commit - 1))
+    else:
+        top = commit_point(ti, next_commit, newest)
     return top, ti[H_LO], ti[H_HI]
 
 
@@ -817,7 +858,12 @@ def commit_point(ti: np.ndarray, next_commit: int, newest: int) -> int:
     (:func:`ancestor_at`); -1 unless its fix lies in ``[next_commit, newest]``. One call
     for what ``Tracker._settle`` asks of every covering level.
     """
-    top = block_ancestor(ti, next_commit - 1)
+    return commit_point_of(ti, next_commit, newest, block_ancestor(ti, next_commit - 1))
+
+
+@numba.njit(cache=True, error_model="numpy")
+def commit_point_of(ti: np.ndarray, next_commit: int, newest: int, top: int) -> int:
+    """:func:`commit_point` from the live block's :func:`block_ancestor` ``top``."""
     if top >= 0 and ti[ROW_I * top + K_SEQ] > newest:
         top = ancestor_at(ti, top, newest)
     if top >= 0 and next_commit <= ti[ROW_I * top + K_SEQ] <= newest:

@@ -110,7 +110,10 @@ class SweepArrays:
         self.cap_h, self.cap_b, self.cap_m, self.cap_o = cap_h, cap_b, cap_m, cap_o
         _, _, out_f0, _, out_i0, end = _k.layout(n_v, n_e, cap_h, cap_b, cap_m, cap_o)
         self.out_f0, self.out_i0 = out_f0, out_i0
-        self.fbuf = np.zeros(out_f0 + cap_m * _k.OUT_F_STRIDE)
+        # after the output rows, room for a tree step's packed live block (as many
+        # states as output rows: the block is the step before's output, mostly)
+        self.fbuf = np.zeros(out_f0 + cap_m * _k.OUT_F_STRIDE + _k.N_CTX
+                             + cap_m * _k.LIVE_STRIDE)
         ibuf = np.zeros(end, dtype=np.int64)
         ibuf[: _k.N_HEADER] = (n_v, n_e, cap_h, cap_b, cap_m, cap_o)
         ibuf[_k.N_HEADER:_k.N_HEADER + n_e] = -1  # seg_slot: no output row yet
