@@ -198,6 +198,23 @@ class MatchSettings:
             path came in by, the same point, live and final; not the first fix of a
             stretch. At a stand just short of a branch the path later leaves by another
             way; the segment it came in by is on the driven path either way.
+        reverse_turns: a gap step (more than ``gap_s`` between fixes) whose fixes went
+            back the way the step before came (both steps at least 20 m, turning by more
+            than 135 degrees; :meth:`livematch.core.tracker.Tracker._turned_round`) may
+            turn round in the street, as a step leaving a stop may (needs
+            ``stop_turns``; charged ``street_turn_cost`` the same way). A van that
+            dwells at a plain point of a road and leaves the way it came is seen by one
+            fix during the dwell, or none, at 15-30 s between fixes, so no step is slow
+            enough for ``stop_turns``; the bridge then took it on to the next junction
+            and back, and committed the dwell on road past it never driven. Off by
+            default: on bench/accuracy.py's routed trips (``--sim trips``, 80 drives,
+            seeds 31 / 77) final accuracy at 30 s rises 0.24-0.61 points (Helsinki
+            0.941 / 0.953 -> 0.947 / 0.955, test 0.967 / 0.967 -> 0.971 / 0.973) and
+            route mismatch falls 0.35-1.01 points; but on the random walk at 30 s route
+            mismatch rises 0.2-0.8 points and on the test extract final accuracy falls
+            0.24-0.36 points: a random walk reverses inside a dead end,
+            and a turn in the street short of its end is then the cheaper route
+            (docs/measured.md, "Session 10 (sparse30)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -231,6 +248,7 @@ class MatchSettings:
     sparse_stand_wait: bool = True
     stand_loops_outer: bool = True
     vertex_in_segment: bool = True
+    reverse_turns: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -261,7 +279,7 @@ class MatchSettings:
                 out.append((name, f"must be a number >= 0, got {value!r}"))
         for name in ("street_turns", "stop_turns", "stand_wait", "stand_hold",
                      "pace_reach", "stand_loops", "stand_commit_wait", "sparse_stand_wait",
-                     "stand_loops_outer", "vertex_in_segment"):
+                     "stand_loops_outer", "vertex_in_segment", "reverse_turns"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

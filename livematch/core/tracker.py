@@ -147,6 +147,14 @@ SPIKE_MAX_S = 35.0
 # The time spanned by the two steps around a tested fix at which its charge is
 # MatchSettings.spike_cost (it scales in proportion).
 SPIKE_SPAN_S = 30.0
+# With MatchSettings.reverse_turns, a gap step (more than gap_s between fixes) went back
+# the way the step before it came when both steps are at least REVERSE_MIN_M long and
+# turn by more than 135 degrees (cosine below REVERSE_COS). 20 m: four times sigma_m of
+# the default settings, well above the change of a correlated GNSS error over 15-30 s
+# (about 5 m per axis at a 45 s time constant); 135 degrees: a turn at a junction round
+# a block is 90 degrees, a U-turn 180 (chosen by judgement, not tuned).
+REVERSE_MIN_M = 20.0
+REVERSE_COS = -0.7
 
 
 class Level:
@@ -211,7 +219,7 @@ class Tracker:
     __slots__ = ("_held", "_view", "_weights", "before", "buffer", "fix_n", "fix_seq0", "fix_xy",
                  "jumps", "last", "last_commit", "last_released_t", "last_seg", "levels",
                  "network", "next_commit", "seq", "settings", "skipped", "speed", "stand_from",
-                 "stand_seq", "stood_t", "times", "vehicle")
+                 "stand_seq", "step_dir", "stood_t", "times", "vehicle")
 
     def __init__(
         self, network: RoadNetwork, vehicle: str, settings: MatchSettings | None = None
@@ -253,6 +261,9 @@ class Tracker:
         self.stood_t: float | None = None
         # with stand_hold: the first fix of the stand the vehicle is in now (0: none)
         self.stand_seq = 0
+        # with reverse_turns: the direction (radians) of the step into the last accepted
+        # fix when it was at least REVERSE_MIN_M long, else None (Tracker._turned_round)
+        self.step_dir: float | None = None
         # what _held_point found (held point and first fix -> (fix asked at, all within
         # eps)); a cache, not serialised, dropped when the vehicle does not stand
         self._held: dict[tuple[int, float, float, float], tuple[int, bool]] | None = None
@@ -360,8 +371,10 @@ class Tracker:
         if prev is not None and fix.t > prev[0]:
             self.speed = math.hypot(fix.x - prev[1], fix.y - prev[2]) / (fix.t - prev[0])
         dt = fix.t - prev[0] if prev is not None else 0.0
+        # (asked only with reverse_turns: a bridge may then turn in the street)
+        turned = s.reverse_turns and self._turned_round(fix, prev, dt)
         tops: _Tops = {}
-        salvage = self._advance_levels(fix, prev, seq, stood,
+        salvage = self._advance_levels(fix, prev, seq, stood or turned,
                                        seq - 1 if before is not None else seq, tops)
         if self.before is not None and prev is not None:
             straight_from = self.before.last
@@ -374,6 +387,8 @@ class Tracker:
                 before = None
                 if straight_from is not None:
                     dt = fix.t - straight_from[0]
+                    if s.reverse_turns:  # the step into this fix now starts there
+                        self.step_dir = _step_dir(straight_from, fix)
         self.before = before
         deciding = None
         for level in self.levels:
@@ -982,6 +997,44 @@ class Tracker:
         return (s.stand_commit_wait and self.stood_t is not None
                 and t - self.stood_t <= STAND_AFTER_S)
 
+    def _turned_round(
+        self, fix: Fix, prev: tuple[float, float, float] | None, dt: float
+    ) -> bool:
+        """Whether the fixes went back the way they came at the fix before ``fix``.
+
+        For ``MatchSettings.reverse_turns``: the step ``prev`` -> ``fix`` is a gap (more
+        than ``gap_s``) and it and the step into ``prev`` are both at least
+        ``REVERSE_MIN_M`` long and turn by more than 135 degrees. Then the bridged step
+        may turn round in the street, as one leaving a stop may (``stop_turns``). Why:
+        a delivery van that dwells at a plain point of a road and leaves the way it came
+        is seen at 15-30 s between fixes by one fix during the dwell or none, so no step
+        is slow enough to say it stood; without the turn the bridge must take it on to
+        the next junction or dead end and back, and the fix at the dwell is committed on
+        road past the dwell point that the van never drove. The reversal of the fixes
+        is the evidence the missing stand would have given. Then updates
+        ``step_dir`` with this step.
+
+        Example (east 100 m, then back west 80 m, 30 s apart; then on west):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (500.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "v1", MatchSettings(reverse_turns=True))
+            >>> fixes = [Fix("v1", 30.0 * i, 0.0, 0.0, x, 0.0)
+            ...          for i, x in enumerate((100.0, 200.0, 120.0, 40.0))]
+            >>> [tracker._turned_round(f, (p.t, p.x, p.y) if p else None, 30.0)
+            ...  for p, f in zip([None, *fixes], fixes)]
+            [False, False, True, False]
+        """
+        came = self.step_dir
+        self.step_dir = None
+        if prev is None:
+            return False
+        chord = math.hypot(fix.x - prev[1], fix.y - prev[2])
+        if chord < REVERSE_MIN_M:
+            return False
+        self.step_dir = _step_dir(prev, fix)
+        return (came is not None and dt > self.settings.gap_s
+                and math.cos(self.step_dir - came) < REVERSE_COS)
+
     def _stood_lately(self, fix: Fix, prev_t: float | None) -> bool:
         """Whether the vehicle stood still until at most ``STAND_AFTER_S`` before ``prev_t``.
 
@@ -1500,6 +1553,8 @@ class Tracker:
             state["stand"] = [self.stand_from, self.stood_t]
         if self.stand_seq:
             state["stand_seq"] = self.stand_seq
+        if self.step_dir is not None:  # with reverse_turns only
+            state["step_dir"] = self.step_dir
         header = json.dumps(state, separators=(",", ":")).encode()
         body = b"".join((len(header).to_bytes(4, "little"), header, *arrays))
         if compress:
@@ -1591,6 +1646,7 @@ class Tracker:
         if stand is not None:
             tracker.stand_from, tracker.stood_t = tuple(stand[0]), stand[1]
         tracker.stand_seq = state.get("stand_seq", 0)  # written only during a stand
+        tracker.step_dir = state.get("step_dir")  # written only with reverse_turns
         return tracker
 
 
@@ -1667,6 +1723,11 @@ def _point(view: NetworkView, seg: int, pos: float) -> tuple[float, float]:
     a, b = view.sf[seg], view.st[seg]
     return (view.vx[a] + pos * (view.vx[b] - view.vx[a]),
             view.vy[a] + pos * (view.vy[b] - view.vy[a]))
+
+
+def _step_dir(prev: tuple[float, float, float], fix: Fix) -> float:
+    """Direction (radians, from the x axis) of the step from ``prev`` (t, x, y) to ``fix``."""
+    return math.atan2(fix.y - prev[2], fix.x - prev[1])
 
 
 def _steps(prev_seg: int, node: Node) -> list[int]:
