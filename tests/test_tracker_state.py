@@ -89,3 +89,40 @@ def test_state_skips_empty_parts() -> None:
     back = Tracker.from_bytes(net, None, blob)
     assert back.to_bytes() == blob
     assert all(lv.tree.ti is fresh.levels[0].tree.ti for lv in back.levels)
+
+
+def test_state_restore_with_held_fix_and_pending_filtered_fix() -> None:
+    """A state taken while a late fix is held back (``reorder_fixes``) and a filtered fix
+    awaits its final answer restores to the same bytes and continues exactly (both are
+    kept as tuples, shared when empty)."""
+    net, fixes = noisy_drive(seed=5)
+    settings = MatchSettings(reorder_fixes=2, max_accuracy_m=50.0)
+    feed = list(fixes[:60])
+    feed[38] = Fix(feed[38].vehicle, feed[38].t, 0.0, 0.0, feed[38].x, feed[38].y, 80.0)
+    feed[40], feed[41] = feed[41], feed[40]  # one fix a place late
+    straight = Tracker(net, "v1", settings)
+    whole = run(straight, feed)
+    first = Tracker(net, "v1", settings)
+    before = run(first, feed[:41], flush=False)
+    assert first.buffer and first.skipped  # a fix held back, a filtered one pending
+    restored = Tracker.from_bytes(net, settings, first.to_bytes())
+    assert restored.buffer == first.buffer and restored.skipped == first.skipped
+    assert restored.to_bytes() == first.to_bytes()
+    assert before + run(restored, feed[41:]) == whole
+    assert restored.to_bytes() == straight.to_bytes()
+    assert straight.buffer == () and straight.skipped == ()
+
+
+def test_state_restore_shares_equal_numbers() -> None:
+    """A restored tracker holds one object per distinct fix time and sequence number, as
+    a tracker driven fix by fix does (the JSON header gives each occurrence its own)."""
+    net, fixes = noisy_drive(seed=7)
+    first = Tracker(net, "v1")
+    run(first, fixes[:50], flush=False)
+    restored = Tracker.from_bytes(net, None, first.to_bytes())
+    assert restored.last is not None and restored.last_released_t is not None
+    assert restored.last_released_t is restored.last[0]
+    assert restored.times[restored.seq] is restored.last[0]
+    seqs = {id(k) for k in restored.times if k > 256}
+    assert id(restored.seq) in seqs or restored.seq <= 256
+    assert restored.to_bytes() == first.to_bytes()

@@ -235,18 +235,19 @@ class Tracker:
         self.levels = [Level(e) for e in self.settings.eps_levels]
         s = self.settings
         # the sweep kernel's step scalars after eps, x0, y0, x1, y1, chord (StepContext)
-        self._weights = (1.0 / (2.0 * s.sigma_m * s.sigma_m), 1.0 / s.beta_m,
-                         s.turn_back_cost, 1.0 / s.motion_m)
+        self._weights = _weights_of(s)
         self.seq = 0
         self.last: tuple[float, float, float] | None = None  # t, x, y of the last accepted fix
         self.last_released_t: float | None = None
         self.jumps = 0
         self.speed: float | None = None  # implied speed of the last accepted step, m/s
-        self.buffer: list[Fix] = []
+        # held-back fixes, and times of filtered fixes awaiting a final answer: tuples,
+        # rarely not empty (the empty tuple is shared; an empty list is 56 bytes each)
+        self.buffer: tuple[Fix, ...] = ()
         self.times: dict[int, float] = {}
         self.next_commit = 1
         self.last_commit: tuple[int, float, int, float] | None = None  # seg, pos, seq, t
-        self.skipped: list[float] = []  # times of filtered fixes awaiting a final answer
+        self.skipped: tuple[float, ...] = ()
         self.last_seg = -1  # segment of the last assignment (breaks exact ties)
         # positions of the accepted fixes from fix_seq0 on (row i: fix fix_seq0 + i; the
         # first fix_n rows in use), for the live score; rows older than the last commit
@@ -293,8 +294,8 @@ class Tracker:
     def flush(self) -> list[Event]:
         """Release held-back fixes and commit every pending fix (end of a log, eviction)."""
         events: list[Event] = []
-        while self.buffer:
-            ready = self.buffer.pop(0)
+        held, self.buffer = self.buffer, ()
+        for ready in held:
             if self._passes(ready, events):
                 self._accept(ready, events)
         covering = self._covering()
@@ -313,9 +314,11 @@ class Tracker:
         if newest is not None and fix.t < newest:
             events.append(Filtered(fix.vehicle, fix.t, "out_of_order"))
             return
-        bisect.insort(self.buffer, fix, key=lambda f: f.t)
-        while len(self.buffer) > self.settings.reorder_fixes:
-            ready = self.buffer.pop(0)
+        buffer = list(self.buffer)
+        bisect.insort(buffer, fix, key=lambda f: f.t)
+        released = max(0, len(buffer) - self.settings.reorder_fixes)
+        self.buffer = tuple(buffer[released:])
+        for ready in buffer[:released]:
             self.last_released_t = ready.t
             if self._passes(ready, events):
                 yield ready
@@ -324,7 +327,7 @@ class Tracker:
         s = self.settings
         if fix.accuracy is not None and fix.accuracy > s.max_accuracy_m:
             events.append(Filtered(fix.vehicle, fix.t, "low_accuracy"))
-            self.skipped.append(fix.t)
+            self.skipped += (fix.t,)
             return False
         if self.last is not None:
             t0, x0, y0 = self.last
@@ -342,7 +345,7 @@ class Tracker:
                 self.jumps += 1
                 if self.jumps < JUMP_TRUST_AFTER:
                     events.append(Filtered(fix.vehicle, fix.t, "impossible_jump"))
-                    self.skipped.append(fix.t)
+                    self.skipped += (fix.t,)
                     return False
         self.jumps = 0
         return True
@@ -588,7 +591,9 @@ class Tracker:
         self.fix_xy[row, 1] = fix.y
         self.fix_n = row + 1
         events.append(Filtered(fix.vehicle, t_suspect, "spike"))
-        bisect.insort(self.skipped, t_suspect)
+        skipped = list(self.skipped)
+        bisect.insort(skipped, t_suspect)
+        self.skipped = tuple(skipped)
         self.next_commit = min(self.next_commit, suspect)
         self.last_seg = before.last_seg
         return suspect, salvage
@@ -1455,7 +1460,7 @@ class Tracker:
         due = [t for t in self.skipped if t < until]
         if not due:
             return fixes
-        self.skipped = [t for t in self.skipped if t >= until]
+        self.skipped = tuple(t for t in self.skipped if t >= until)
         links = [before, *chain] if before is not None else chain
         out = list(fixes)
         for t in due:
@@ -1632,14 +1637,14 @@ class Tracker:
         tracker.jumps = state["jumps"]
         tracker.speed = state.get("speed")  # absent in older states
         # LMT4 leaves out an empty buffer and skipped list
-        tracker.buffer = [Fix(*row) for row in state.get("buffer", ())]
+        tracker.buffer = tuple(Fix(*row) for row in state.get("buffer", ()))
         times = state["times"]
         if fmt == STATE_FORMAT:
             tracker.times = dict(zip(times[0], times[1], strict=True))
         else:
             tracker.times = {k: v for k, v in times}
         tracker.next_commit = state["next_commit"]
-        tracker.skipped = list(state.get("skipped", ()))
+        tracker.skipped = tuple(state.get("skipped", ()))
         tracker.last_seg = state["last_seg"]
         tracker.last_commit = tuple(state["last_commit"]) if state["last_commit"] else None
         stand = state.get("stand")  # written only with stop_turns (absent in older states)
@@ -1647,7 +1652,72 @@ class Tracker:
             tracker.stand_from, tracker.stood_t = tuple(stand[0]), stand[1]
         tracker.stand_seq = state.get("stand_seq", 0)  # written only during a stand
         tracker.step_dir = state.get("step_dir")  # written only with reverse_turns
+        _share_numbers(tracker)
         return tracker
+
+
+def _share_numbers(tracker: Tracker) -> None:
+    """Make equal numbers of a restored tracker one object each (memory only).
+
+    A tracker driven fix by fix holds one object for a fix's time and sequence number
+    wherever it keeps them (``times``, ``last``, the levels' windows, the last commit);
+    JSON gives each occurrence an object of its own (24 bytes a float, 28 an int above
+    256). Zero is left alone (0.0 and -0.0 are equal keys).
+    """
+    floats: dict[float, float] = {}
+    ints: dict[int, int] = {}
+
+    def fl(v: float) -> float:
+        return floats.setdefault(v, v) if v else v
+
+    def it(v: int) -> int:
+        return ints.setdefault(v, v)
+
+    t = tracker
+    t.seq = it(t.seq)
+    t.next_commit = it(t.next_commit)
+    t.fix_seq0 = it(t.fix_seq0)
+    t.last_seg = it(t.last_seg)
+    t.times = {it(k): fl(v) for k, v in t.times.items()}
+    if t.last is not None:
+        t.last = (fl(t.last[0]), t.last[1], t.last[2])
+    if t.last_released_t is not None:
+        t.last_released_t = fl(t.last_released_t)
+    if t.last_commit is not None:
+        seg, pos, seq, when = t.last_commit
+        t.last_commit = (it(seg), pos, it(seq), fl(when))
+    if t.stand_from is not None:
+        if t.last is not None and _same(t.stand_from, t.last):
+            t.stand_from = t.last  # a run of fixes that starts at the newest one
+        else:
+            t.stand_from = (fl(t.stand_from[0]), t.stand_from[1], t.stand_from[2])
+    if t.stood_t is not None:
+        t.stood_t = fl(t.stood_t)
+    levels = t.levels if t.before is None else [*t.levels, *t.before.levels]
+    for lv in levels:
+        lv.tree_seq = it(lv.tree_seq)
+        lv.cert_seq = it(lv.cert_seq)
+        lv.trim_seq = it(lv.trim_seq)
+        lv.cert_t = fl(lv.cert_t)
+    if t.before is not None and t.before.last is not None:
+        b = t.before.last
+        t.before.last = (fl(b[0]), b[1], b[2])
+
+
+def _same(a: tuple[float, ...], b: tuple[float, ...]) -> bool:
+    """Whether ``a`` and ``b`` hold the same floats (a zero's sign included)."""
+    return a == b and all(x != 0.0 or math.copysign(1.0, x) == math.copysign(1.0, y)
+                          for x, y in zip(a, b, strict=True))
+
+
+def _weights_of(s: MatchSettings) -> tuple[float, float, float, float]:
+    """The sweep kernel's step scalars after eps, x0, y0, x1, y1, chord (StepContext).
+
+    One tuple per tracker (about 140 bytes). A module-level memo would share one per
+    settings, but the core keeps no state outside its objects.
+    """
+    return (1.0 / (2.0 * s.sigma_m * s.sigma_m), 1.0 / s.beta_m, s.turn_back_cost,
+            1.0 / s.motion_m)
 
 
 def _pack_levels(levels: list[Level],
