@@ -198,6 +198,15 @@ class MatchSettings:
             path came in by, the same point, live and final; not the first fix of a
             stretch. At a stand just short of a branch the path later leaves by another
             way; the segment it came in by is on the driven path either way.
+        hold_filtered: a fix the filters refuse (``impossible_jump``, ``low_accuracy``)
+            gets a live answer too: the newest live answer again, at the refused fix's
+            time, with its certificate, while that answer is at most ``gap_s`` old
+            (:meth:`livematch.core.tracker.Tracker._say_held`). A refused fix says nothing
+            about where the vehicle is, but the vehicle is still there; without it the
+            fix had no live answer at all (about 1 % of fixes with the simulator's
+            outliers). Final answers are unchanged. On by default: ``assignments.jsonl``
+            then holds a line per fix with a live answer, refused fixes included (their
+            ``rejects.jsonl`` line stays); off, a line per accepted fix only, as before.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -231,6 +240,7 @@ class MatchSettings:
     sparse_stand_wait: bool = True
     stand_loops_outer: bool = True
     vertex_in_segment: bool = True
+    hold_filtered: bool = True
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -261,7 +271,7 @@ class MatchSettings:
                 out.append((name, f"must be a number >= 0, got {value!r}"))
         for name in ("street_turns", "stop_turns", "stand_wait", "stand_hold",
                      "pace_reach", "stand_loops", "stand_commit_wait", "sparse_stand_wait",
-                     "stand_loops_outer", "vertex_in_segment"):
+                     "stand_loops_outer", "vertex_in_segment", "hold_filtered"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):
