@@ -356,8 +356,9 @@ def test_tracker_reads_older_lmt2_state(name: str, every: int, cut: int) -> None
                        DriveSettings(duration_s=240.0 if every == 1 else 900.0),
                        drivable_segments(net))
     fixes = [Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy) for o in observe(d, every)]
-    # the settings the states were written with (stop_turns was off by default then)
-    then = MatchSettings(stop_turns=False)
+    # the settings the states were written with (stop_turns was off by default then;
+    # hold_filtered did not exist: such a state holds no answer to repeat)
+    then = MatchSettings(stop_turns=False, hold_filtered=False)
     straight = Tracker(net, "bus-7", then)
     run(straight, fixes[:cut], flush=False)
     restored = Tracker.from_bytes(net, then, blob)

@@ -215,6 +215,15 @@ class MatchSettings:
             0.24-0.36 points: a random walk reverses inside a dead end,
             and a turn in the street short of its end is then the cheaper route
             (docs/measured.md, "Session 10 (sparse30)").
+        hold_filtered: a fix the filters refuse (``impossible_jump``, ``low_accuracy``)
+            gets a live answer too: the newest live answer again, at the refused fix's
+            time, with its certificate, while that answer is at most ``gap_s`` old
+            (:meth:`livematch.core.tracker.Tracker._say_held`). A refused fix says nothing
+            about where the vehicle is, but the vehicle is still there; without it the
+            fix had no live answer at all (about 1 % of fixes with the simulator's
+            outliers). Final answers are unchanged. On by default: ``assignments.jsonl``
+            then holds a line per fix with a live answer, refused fixes included (their
+            ``rejects.jsonl`` line stays); off, a line per accepted fix only, as before.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -249,6 +258,7 @@ class MatchSettings:
     stand_loops_outer: bool = True
     vertex_in_segment: bool = True
     reverse_turns: bool = False
+    hold_filtered: bool = True
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -279,7 +289,8 @@ class MatchSettings:
                 out.append((name, f"must be a number >= 0, got {value!r}"))
         for name in ("street_turns", "stop_turns", "stand_wait", "stand_hold",
                      "pace_reach", "stand_loops", "stand_commit_wait", "sparse_stand_wait",
-                     "stand_loops_outer", "vertex_in_segment", "reverse_turns"):
+                     "stand_loops_outer", "vertex_in_segment", "reverse_turns",
+                     "hold_filtered"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

@@ -218,8 +218,8 @@ class Tracker:
     # than a small candidate tree
     __slots__ = ("_held", "_view", "_weights", "before", "buffer", "fix_n", "fix_seq0", "fix_xy",
                  "jumps", "last", "last_commit", "last_released_t", "last_seg", "levels",
-                 "network", "next_commit", "seq", "settings", "skipped", "speed", "stand_from",
-                 "stand_seq", "step_dir", "stood_t", "times", "vehicle")
+                 "network", "next_commit", "said", "seq", "settings", "skipped", "speed",
+                 "stand_from", "stand_seq", "step_dir", "stood_t", "times", "vehicle")
 
     def __init__(
         self, network: RoadNetwork, vehicle: str, settings: MatchSettings | None = None
@@ -265,6 +265,8 @@ class Tracker:
         # with reverse_turns: the direction (radians) of the step into the last accepted
         # fix when it was at least REVERSE_MIN_M long, else None (Tracker._turned_round)
         self.step_dir: float | None = None
+        # with hold_filtered: the newest live answer, repeated for a filtered fix
+        self.said: Assignment | None = None
         # what _held_point found (held point and first fix -> (fix asked at, all within
         # eps)); a cache, not serialised, dropped when the vehicle does not stand
         self._held: dict[tuple[int, float, float, float], tuple[int, bool]] | None = None
@@ -328,6 +330,8 @@ class Tracker:
         if fix.accuracy is not None and fix.accuracy > s.max_accuracy_m:
             events.append(Filtered(fix.vehicle, fix.t, "low_accuracy"))
             self.skipped += (fix.t,)
+            if s.hold_filtered:
+                self._say_held(fix.t, events)
             return False
         if self.last is not None:
             t0, x0, y0 = self.last
@@ -346,9 +350,34 @@ class Tracker:
                 if self.jumps < JUMP_TRUST_AFTER:
                     events.append(Filtered(fix.vehicle, fix.t, "impossible_jump"))
                     self.skipped += (fix.t,)
+                    if s.hold_filtered:
+                        self._say_held(fix.t, events)
                     return False
         self.jumps = 0
         return True
+
+    def _say_held(self, t: float, events: list[Event]) -> None:
+        """With ``hold_filtered``: the live answer for a fix the filters refused at time ``t``.
+
+        A refused fix (an impossible jump, a reported accuracy too poor) is no evidence of
+        where the vehicle is, but it says the vehicle is still reporting: what a dispatcher
+        expects at that moment is the vehicle where it was last matched, not no answer.
+        So the newest live answer is published again at the refused fix's time, the same
+        point on the same segment, with the same certificate (``eps_m``, ``window_fixes``,
+        ``window_s``): the fixes of that window, all accepted and none newer than the
+        answer, lie within Fréchet distance eps of a road path ending there; the refused
+        fix is in no window. Only while the answer is at most ``gap_s`` old (a longer time
+        is a gap, where the vehicle may be anywhere within the bridge's reach), and not
+        after a fix found no road nearby. The event follows the ``Filtered`` one, so a
+        consumer that pairs fixes with events (the pipeline's monitors) still treats the
+        fix as refused. The final answer of such a fix is unchanged
+        (:meth:`_fill_skipped`).
+        """
+        said = self.said
+        if said is None or not 0.0 < t - said.t <= self.settings.gap_s:
+            return
+        events.append(Assignment(self.vehicle, t, said.segment, said.offset_m, said.x,
+                                 said.y, said.eps_m, said.window_fixes, said.window_s))
 
     # ------------------------------------------------------------------ sweep
     def _accept(self, fix: Fix, events: list[Event]) -> None:
@@ -400,6 +429,7 @@ class Tracker:
                 break
         if deciding is None:
             events.append(Filtered(fix.vehicle, fix.t, "no_road_nearby"))
+            self.said = None  # off the network: no answer to repeat
         else:
             best, split = self._live_answer(deciding, dt)
             recent = 0
@@ -418,11 +448,14 @@ class Tracker:
                 if seg_in >= 0:
                     seg, pos = seg_in, 1.0
             self.last_seg = tree.seg_of(best)
-            events.append(Assignment(
+            said = Assignment(
                 self.vehicle, fix.t, seg, pos * self._view.slen[seg],
                 x, y, deciding.eps, seq - deciding.cert_seq + 1,
                 fix.t - deciding.cert_t,
-            ))
+            )
+            events.append(said)
+            if s.hold_filtered:
+                self.said = said
         self._settle(seq, fix.t, dt, salvage, events, hold_newest=before is not None,
                      tops=tops, stood=stood)
         if prev is not None and fix.t - prev[0] >= SPARSE_S:
@@ -1560,6 +1593,10 @@ class Tracker:
             state["stand_seq"] = self.stand_seq
         if self.step_dir is not None:  # with reverse_turns only
             state["step_dir"] = self.step_dir
+        if self.said is not None:  # only with hold_filtered
+            a = self.said
+            state["said"] = [a.t, a.segment, a.offset_m, a.x, a.y, a.eps_m, a.window_fixes,
+                             a.window_s]
         header = json.dumps(state, separators=(",", ":")).encode()
         body = b"".join((len(header).to_bytes(4, "little"), header, *arrays))
         if compress:
@@ -1652,6 +1689,9 @@ class Tracker:
             tracker.stand_from, tracker.stood_t = tuple(stand[0]), stand[1]
         tracker.stand_seq = state.get("stand_seq", 0)  # written only during a stand
         tracker.step_dir = state.get("step_dir")  # written only with reverse_turns
+        said = state.get("said")  # written only with hold_filtered (absent in older states)
+        if said is not None:
+            tracker.said = Assignment(tracker.vehicle, *said)
         _share_numbers(tracker)
         return tracker
 
