@@ -67,7 +67,15 @@ import msgspec
 
 from livematch.core import routing
 from livematch.core.candidates import warm_up
-from livematch.core.events import Alert, Assignment, Commit, Event, Filtered, RecordBuilder
+from livematch.core.events import (
+    Alert,
+    Assignment,
+    Commit,
+    Event,
+    Filtered,
+    HeldAssignment,
+    RecordBuilder,
+)
 from livematch.core.fix import Fix
 from livematch.core.monitors import (
     AlertSettings,
@@ -607,6 +615,10 @@ class Pipeline:
                         if fix is not None:
                             self._monitor(out, state, fix, (event.x, event.y), True,
                                           topic, payload, at)
+                continue
+            if type(event) is HeldAssignment:  # a refused fix's repeated answer
+                counters["assignments_held"] += 1
+                out.append(Output("assignment", event.vehicle, record(event)))
                 continue
             if type(event) is Commit:
                 counters["commits"] += 1

@@ -12,7 +12,7 @@ from __future__ import annotations
 
 from shapely import LineString, frechet_distance
 
-from livematch.core.events import Assignment, Filtered
+from livematch.core.events import Assignment, Filtered, HeldAssignment, to_record
 from livematch.core.fix import Fix
 from livematch.core.settings import MatchSettings
 from livematch.core.tracker import Tracker
@@ -59,7 +59,7 @@ def test_refused_outlier_repeats_the_newest_answer_with_its_certificate() -> Non
     assert (held.eps_m, held.window_fixes, held.window_s) == (
         last.eps_m, last.window_fixes, last.window_s)
     # after the refusal, so a consumer pairing fixes with events sees the refusal first
-    assert [type(e).__name__ for e in own] == ["Filtered", "Assignment"]
+    assert [type(e).__name__ for e in own] == ["Filtered", "HeldAssignment"]
     # the certificate: the window's fixes (accepted, ending at the fix before the refused
     # one) lie within eps of the road from the first window fix's foot to the held point
     window = fixes[20 - held.window_fixes:20]
@@ -128,3 +128,19 @@ def test_restore_mid_trip_continues_identically() -> None:
     for compress in (False, True):
         again = Tracker.from_bytes(net, HOLD, first.to_bytes(compress=compress))
         assert head + _feed(again, fixes[20:]) + again.flush() == expected
+
+
+def test_held_answer_is_marked_in_the_published_record() -> None:
+    """A repeated answer is published with ``"held": true``; an ordinary one has no such
+    key (the assignment contract's other fields are the same for both)."""
+    net = straight_road(2000.0)
+    fixes = _trip()
+    tracker = Tracker(net, "v1", HOLD)
+    events = _feed(tracker, fixes)
+    (held,) = _at(events, fixes[20].t)
+    (last,) = _at(events, fixes[19].t)
+    assert type(held) is HeldAssignment and type(last) is Assignment
+    rec_held, rec_last = to_record(held, net), to_record(last, net)
+    assert rec_held.pop("held") is True and "held" not in rec_last
+    assert rec_held.keys() == rec_last.keys()
+    assert (rec_held["lat"], rec_held["lon"]) == (rec_last["lat"], rec_last["lon"])

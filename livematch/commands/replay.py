@@ -234,6 +234,7 @@ def summarize(counters: Counter[str], settings: MatchSettings, vehicles: int
         "fixes_accepted": counters["fixes"] - sum(filtered.values()),
         "filtered": {"total": sum(filtered.values()), "by_reason": filtered},
         "assignments": assignments,
+        "assignments_held": counters["assignments_held"],
         "commits": counters["commits"],
         "alerts": counters["alerts"],
         "vehicles": vehicles,

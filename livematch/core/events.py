@@ -55,6 +55,18 @@ class Assignment:
 
 
 @dataclass(frozen=True, slots=True, init=False)
+class HeldAssignment(Assignment):
+    """The newest live answer repeated for a fix the filters refused (``hold_filtered``).
+
+    Same fields and certificate as the answer it repeats (the certificate's window ends
+    at the last accepted fix; the refused fix is in no window). Published with
+    ``"held": true`` so that a consumer can tell a repeated position from one this fix
+    supports: a dispatcher shown a held position should know the device's latest fix
+    was not believed.
+    """
+
+
+@dataclass(frozen=True, slots=True, init=False)
 class MatchedFix:
     """The final answer for one fix inside a commit."""
 
@@ -122,7 +134,7 @@ class Filtered:
     kind: str = field(default="filtered", init=False)
 
 
-Event = Assignment | Commit | Alert | Filtered
+Event = Assignment | HeldAssignment | Commit | Alert | Filtered
 
 
 def _segment_record(network: RoadNetwork, segment: int) -> dict[str, int]:
@@ -155,6 +167,7 @@ def to_record(event: Event, network: RoadNetwork) -> dict[str, Any]:
             "window_fixes": event.window_fixes,
             "window_s": round(event.window_s, 3),
             "committed": False,
+            **({"held": True} if type(event) is HeldAssignment else {}),
         }
     if isinstance(event, Commit):
         fixes = []
@@ -282,7 +295,7 @@ class RecordBuilder:
 
     def record(self, event: Event) -> dict[str, Any]:
         """The same dict as ``to_record(event, network)``."""
-        if type(event) is Assignment:  # the class is final: cheaper than isinstance
+        if type(event) is Assignment:  # exact type, cheaper than isinstance (HeldAssignment: below)
             x = event.x
             y = event.y
             points = self._points

@@ -80,7 +80,7 @@ import numpy as np
 
 from livematch.core._tree_kernel import ROW_F, ROW_I
 from livematch.core.candidates import DIED, CandidateTree
-from livematch.core.events import Assignment, Commit, Event, Filtered, MatchedFix
+from livematch.core.events import Assignment, Commit, Event, Filtered, HeldAssignment, MatchedFix
 from livematch.core.fastsweep import sweep_arrays
 from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
@@ -376,8 +376,8 @@ class Tracker:
         said = self.said
         if said is None or not 0.0 < t - said.t <= self.settings.gap_s:
             return
-        events.append(Assignment(self.vehicle, t, said.segment, said.offset_m, said.x,
-                                 said.y, said.eps_m, said.window_fixes, said.window_s))
+        events.append(HeldAssignment(self.vehicle, t, said.segment, said.offset_m, said.x,
+                                     said.y, said.eps_m, said.window_fixes, said.window_s))
 
     # ------------------------------------------------------------------ sweep
     def _accept(self, fix: Fix, events: list[Event]) -> None:
