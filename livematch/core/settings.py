@@ -222,8 +222,9 @@ class MatchSettings:
             about where the vehicle is, but the vehicle is still there; without it the
             fix had no live answer at all (about 1 % of fixes with the simulator's
             outliers). Final answers are unchanged. On by default: ``assignments.jsonl``
-            then holds a line per fix with a live answer, refused fixes included (their
-            ``rejects.jsonl`` line stays); off, a line per accepted fix only, as before.
+            then holds a line per fix with a live answer, refused fixes included (marked
+            ``"held": true``; the refusal is still counted by reason); off, a line per
+            accepted fix only, as before.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
