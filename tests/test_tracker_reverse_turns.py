@@ -27,14 +27,17 @@ LEANS = (3.0, 5.0, 7.0)
 
 
 def _run(settings: MatchSettings, lean: float, dt: float = 30.0,
-         restore_at: int = -1) -> tuple[RoadNetwork, list[Commit], list[object]]:
+         restore_at: int = -1, strip: bool = False,
+         ) -> tuple[RoadNetwork, list[Commit], list[object]]:
     net = network_from_roads([Road(ROAD, way=7)])
     xs = [20.0, 160.0, TURN_X + lean, 170.0, 30.0]
     tracker = Tracker(net, "van9", settings)
     events: list[object] = []
     for i, x in enumerate(xs):
         if i == restore_at:
-            tracker = Tracker.from_bytes(net, settings, tracker.to_bytes())
+            blob = tracker.to_bytes()
+            tracker = Tracker.from_bytes(net, settings,
+                                         _without_step_dir(blob) if strip else blob)
         events += tracker.update(Fix("van9", dt * i, 0.0, 0.0, x, 1.0, 5.0))
     events += tracker.flush()
     return net, [e for e in events if isinstance(e, Commit)], events
@@ -93,3 +96,81 @@ def test_reverse_turns_must_be_a_bool() -> None:
     assert MatchSettings(reverse_turns=False).problems() == []
     assert MatchSettings(reverse_turns=1).problems() == [  # type: ignore[arg-type]
         ("reverse_turns", "must be true or false, got 1")]
+
+
+# Plain data (made up for the test): a two-way road west-east, shape points every 100 m,
+# dead ends at x = -600 and x = 400. A vehicle drives east at 12 m/s without stopping,
+# turns round at the dead end x = 400 (t = 72.5 s) and drives back west; a fix every
+# 30 s. Its fixes reverse at x = 250 (t = 60 s) as a dwelling van's do, but it turned at
+# the dead end 150 m further on.
+WALK_ROAD = [(float(x), 0.0) for x in range(-600, 401, 100)]
+WALK_XS = (-470.0, -110.0, 250.0, 190.0, -170.0)
+
+
+def _walk(settings: MatchSettings, restore_at: int = -1,
+          strip: bool = False) -> tuple[RoadNetwork, list[Commit], list[object]]:
+    net = network_from_roads([Road(WALK_ROAD, way=8)])
+    tracker = Tracker(net, "car3", settings)
+    events: list[object] = []
+    for i, x in enumerate(WALK_XS):
+        if i == restore_at:
+            blob = tracker.to_bytes()
+            if strip:
+                blob = _without_step_dir(blob)
+            tracker = Tracker.from_bytes(net, settings, blob)
+        events += tracker.update(Fix("car3", 30.0 * i, 0.0, 0.0, x, 1.0, 5.0))
+    events += tracker.flush()
+    return net, [e for e in events if isinstance(e, Commit)], events
+
+
+def _without_step_dir(blob: bytes) -> bytes:
+    """An LMT4 state (uncompressed) with ``step_dir`` taken out of its JSON header, as a
+    state written before reverse_turns (or with it off) is."""
+    import json
+
+    assert blob[:4] == b"LMT4" and blob[4] == 0
+    size = int.from_bytes(blob[5:9], "little")
+    header = json.loads(blob[9:9 + size])
+    assert "step_dir" in header
+    del header["step_dir"]
+    text = json.dumps(header).encode()
+    return blob[:5] + len(text).to_bytes(4, "little") + text + blob[9 + size:]
+
+
+def test_tracker_reverse_turns_keeps_a_dead_ends_turn_at_its_end() -> None:
+    """A vehicle that went on to the dead end and back reverses its fixes too; the dead
+    end 150 m ahead of the reversing fix is within what the step into it drove in 30 s,
+    so no turn in the street is opened: the committed path is one connected route out to
+    x = 400 and back, as long as the road driven (shapely's lengths of the road's pieces).
+    With a turn in the street open at every vertex (street_turns) the same fixes are
+    matched with a turn short of the end: the case the rule keeps out."""
+    driven = (shapely.LineString(WALK_ROAD[1:]).length       # -500 -> 400
+              + shapely.LineString(WALK_ROAD[4:]).length)    # 400 -> -200
+    net, done, _ = _walk(MatchSettings(reverse_turns=True))
+    path = [s for c in done for s in c.path]
+    assert all(net.seg_to[a] == net.seg_from[b] for a, b in itertools.pairwise(path))
+    road = shapely.LineString(WALK_ROAD)
+    far = max(road.project(shapely.Point(*net.node_xy[net.seg_to[s]])) for s in path)
+    assert far == pytest.approx(road.length)  # out to the dead end x = 400
+    assert sum(float(net.seg_len[s]) for s in path) == pytest.approx(driven)
+    net, done, _ = _walk(MatchSettings(street_turns=True))
+    path = [s for c in done for s in c.path]
+    far = max(road.project(shapely.Point(*net.node_xy[net.seg_to[s]])) for s in path)
+    assert far < road.length
+
+
+@pytest.mark.parametrize("restore_at", [2, 3])
+def test_tracker_reverse_turns_rebuilds_step_dir_of_an_older_state(restore_at: int) -> None:
+    """A state without ``step_dir`` (written before reverse_turns or with it off) gets it
+    back from the fix log: read back just before the dwell fix or the step out of it, it
+    is the state as written, and the tracker continues exactly like one never stopped
+    (at 3, without the direction the reversal would go unseen)."""
+    settings = MatchSettings(reverse_turns=True)
+    assert _walk(settings, restore_at, strip=True)[2] == _walk(settings)[2]
+    assert _run(settings, 5.0, restore_at=restore_at, strip=True)[2] == _run(settings, 5.0)[2]
+    net = network_from_roads([Road(WALK_ROAD, way=8)])
+    tracker = Tracker(net, "car3", settings)
+    for i, x in enumerate(WALK_XS[:restore_at]):
+        tracker.update(Fix("car3", 30.0 * i, 0.0, 0.0, x, 1.0, 5.0))
+    blob = tracker.to_bytes()
+    assert Tracker.from_bytes(net, settings, _without_step_dir(blob)).to_bytes() == blob

@@ -206,15 +206,17 @@ class MatchSettings:
             dwells at a plain point of a road and leaves the way it came is seen by one
             fix during the dwell, or none, at 15-30 s between fixes, so no step is slow
             enough for ``stop_turns``; the bridge then took it on to the next junction
-            and back, and committed the dwell on road past it never driven. Off by
-            default: on bench/accuracy.py's routed trips (``--sim trips``, 80 drives,
-            seeds 31 / 77) final accuracy at 30 s rises 0.24-0.61 points (Helsinki
-            0.941 / 0.953 -> 0.947 / 0.955, test 0.967 / 0.967 -> 0.971 / 0.973) and
-            route mismatch falls 0.35-1.01 points; but on the random walk at 30 s route
-            mismatch rises 0.2-0.8 points and on the test extract final accuracy falls
-            0.24-0.36 points: a random walk reverses inside a dead end,
-            and a turn in the street short of its end is then the cheaper route
-            (docs/measured.md, "Session 10 (sparse30)").
+            and back, and committed the dwell on road past it never driven. Not when a
+            dead end lies ahead of the reversing fix within what the vehicle could have
+            driven to and back from in the step (:meth:`livematch.core.tracker.Tracker.
+            _dead_end_ahead`): then the reversal is taken for the dead end's own turn.
+            Off by default: on bench/accuracy.py's routed trips (``--sim trips``, 80
+            drives, seeds 31 / 77) it gains final accuracy and route mismatch at 30 s,
+            but on the random walk at 30 s (which reverses inside dead ends, and for which
+            a turn in the street short of the end is the cheaper route) route mismatch
+            still rises 0.2-0.35 points on seed 77 with the dead-end check (0.5-0.6
+            without it) (docs/measured.md, "Session 10 (sparse30)" and "Session 10
+            (reverse2)").
         hold_filtered: a fix the filters refuse (``impossible_jump``, ``low_accuracy``)
             gets a live answer too: the newest live answer again, at the refused fix's
             time, with its certificate, while that answer is at most ``gap_s`` old

@@ -70,6 +70,7 @@ How it decides
 from __future__ import annotations
 
 import bisect
+import heapq
 import itertools
 import json
 import math
@@ -155,6 +156,19 @@ SPIKE_SPAN_S = 30.0
 # a block is 90 degrees, a U-turn 180 (chosen by judgement, not tuned).
 REVERSE_MIN_M = 20.0
 REVERSE_COS = -0.7
+# A reversal is not taken for a turn in the street when a dead end lies ahead of the
+# reversing fix within half of what the vehicle could have driven in the step out of it
+# beyond that step's chord (Tracker._dead_end_ahead): the step's time at REVERSE_PACE
+# times the pace of the step into the fix (routes are longer than chords: corners,
+# curves), and at least REVERSE_FLOOR_MPS, a town speed (36 km/h; the chord of a step
+# round a corner into a dead end understates the pace). Chosen on bench/accuracy.py's
+# drives, seed 31, 30 drives, 30 s (docs/measured.md, "Session 10 (reverse2)"): the
+# pace alone (floor 0) or a floor of 6 m/s left the random walk on the test extract
+# 0.22 points of final accuracy below the rule off, 10 m/s left it unchanged, routed
+# trips kept their gain either way. REVERSE_SEARCH bounds the segments looked at.
+REVERSE_PACE = 1.5
+REVERSE_FLOOR_MPS = 10.0
+REVERSE_SEARCH = 256
 
 
 class Level:
@@ -396,6 +410,7 @@ class Tracker:
         self.times[seq] = fix.t
         self._log_fix(fix.x, fix.y)
         self.last = (fix.t, fix.x, fix.y)
+        came_speed = self.speed  # of the step into prev (reverse_turns reads it)
         stood = self.speed is not None and self.speed < STOOD_MPS
         if s.stop_turns:
             lately = self._stood_lately(fix, prev[0] if prev is not None else None)
@@ -404,7 +419,8 @@ class Tracker:
             self.speed = math.hypot(fix.x - prev[1], fix.y - prev[2]) / (fix.t - prev[0])
         dt = fix.t - prev[0] if prev is not None else 0.0
         # (asked only with reverse_turns: a bridge may then turn in the street)
-        turned = s.reverse_turns and self._turned_round(fix, prev, dt)
+        turned = (s.reverse_turns and self._turned_round(fix, prev, dt)
+                  and not self._dead_end_ahead(fix, prev, dt, came_speed))
         tops: _Tops = {}
         salvage = self._advance_levels(fix, prev, seq, stood or turned,
                                        seq - 1 if before is not None else seq, tops)
@@ -1073,6 +1089,78 @@ class Tracker:
         return (came is not None and dt > self.settings.gap_s
                 and math.cos(self.step_dir - came) < REVERSE_COS)
 
+    def _logged_step_dir(self) -> float | None:
+        """``step_dir`` as the last two accepted fixes in the fix log give it, or None.
+
+        For a state that does not hold it (written before ``reverse_turns``, or with it
+        off): the direction of the step between the last two accepted fixes when it is
+        at least ``REVERSE_MIN_M`` long, as :meth:`_turned_round` sets it. The log keeps
+        the fixes from the oldest pending one on (a dropped spike's row is overwritten by
+        the fix after it), so the two are there while a fix before the newest is
+        pending; otherwise None (unknown: the next step sets it afresh).
+        """
+        n = self.fix_n
+        if n < 2 or self.fix_seq0 + n - 1 != self.seq or self.last is None:
+            return None
+        (x0, y0), (x1, y1) = self.fix_xy[n - 2].tolist(), self.fix_xy[n - 1].tolist()
+        if math.hypot(x1 - x0, y1 - y0) < REVERSE_MIN_M:
+            return None
+        return math.atan2(y1 - y0, x1 - x0)
+
+    def _dead_end_ahead(
+        self, fix: Fix, prev: tuple[float, float, float] | None, dt: float,
+        came_speed: float | None,
+    ) -> bool:
+        """Whether a dead end ahead of the fix before ``fix`` explains its reversal.
+
+        For ``MatchSettings.reverse_turns``, asked once :meth:`_turned_round` said the
+        fixes went back at ``prev``. From ``prev``'s position on its live answer's
+        segment (``last_seg``), heading on without turning back, is there a dead end the
+        vehicle could have driven to and back from in the step: within half of the route
+        it could have driven in ``dt`` (at ``REVERSE_PACE`` times ``came_speed``, the pace
+        of the step into ``prev``, and at least ``REVERSE_FLOOR_MPS``) less the step's
+        chord? Then the reversal is taken for the dead end's own turn, which the network
+        already allows, and no turn in the street is opened. Why: a vehicle that drives
+        into a dead end and back between two fixes reverses its fixes as a van turning
+        at a dwell does, and a turn in the street short of the end is then the cheaper
+        route (the route term charges the length it saves) though the vehicle drove to
+        the end: on the random walk of bench/accuracy.py the rule without this check
+        cost up to 0.8 points of route mismatch at 30 s (docs/measured.md, "Session 10
+        (sparse30)"). A van that dwelt at a plain point of a road further from a dead
+        end than that keeps its turn in the street.
+        """
+        seg = self.last_seg
+        if prev is None or came_speed is None or seg < 0:
+            return False
+        chord = math.hypot(fix.x - prev[1], fix.y - prev[2])
+        reach = (max(REVERSE_PACE * came_speed, REVERSE_FLOOR_MPS) * dt - chord) / 2.0
+        if reach <= 0.0:
+            return False
+        view = self._view
+        a, b = view.sf[seg], view.st[seg]
+        ax, ay = view.vx[a], view.vy[a]
+        dx, dy = view.vx[b] - ax, view.vy[b] - ay
+        d2 = dx * dx + dy * dy
+        u = 0.0 if d2 <= 0.0 else ((prev[1] - ax) * dx + (prev[2] - ay) * dy) / d2
+        left = (1.0 - min(1.0, max(0.0, u))) * view.slen[seg]
+        # a search by route length from there, no turning back (bounded: a few
+        # segments within reach in a street grid)
+        heap = [(left, seg)]
+        seen = {seg}
+        while heap:
+            dist, here = heapq.heappop(heap)
+            if dist > reach:
+                return False
+            back = view.twin[here]
+            on = [o for o in view.out[view.st[here]] if o != back]
+            if not on:
+                return True  # a dead end (or a one-way's end) within reach
+            for o in on:
+                if o not in seen and len(seen) < REVERSE_SEARCH:
+                    seen.add(o)
+                    heapq.heappush(heap, (dist + view.slen[o], o))
+        return False
+
     def _stood_lately(self, fix: Fix, prev_t: float | None) -> bool:
         """Whether the vehicle stood still until at most ``STAND_AFTER_S`` before ``prev_t``.
 
@@ -1688,7 +1776,12 @@ class Tracker:
         if stand is not None:
             tracker.stand_from, tracker.stood_t = tuple(stand[0]), stand[1]
         tracker.stand_seq = state.get("stand_seq", 0)  # written only during a stand
-        tracker.step_dir = state.get("step_dir")  # written only with reverse_turns
+        # written only with reverse_turns, and only when set; absent (older states, or
+        # written with reverse_turns off), it is rebuilt from the fix log
+        if "step_dir" in state:
+            tracker.step_dir = state["step_dir"]
+        elif tracker.settings.reverse_turns:
+            tracker.step_dir = tracker._logged_step_dir()
         said = state.get("said")  # written only with hold_filtered (absent in older states)
         if said is not None:
             tracker.said = Assignment(tracker.vehicle, *said)
