@@ -83,7 +83,9 @@ async def test_demo_publishes_assignments_and_detour_alert(tmp_path: Path) -> No
 
     assignments = [r for t, r in seen if t.startswith("livematch/match/")]
     assert len(assignments) > 1000
-    assert all(set(r) == ASSIGNMENT_FIELDS for r in assignments)
+    # a refused fix's repeated answer adds "held": true (hold_filtered)
+    assert all(set(r) - {"held"} == ASSIGNMENT_FIELDS and r.get("held", True) is True
+               for r in assignments)
     assert {r["vehicle"] for r in assignments} == set(select_vehicles(
         build_scenario(duration_s=1.0, buses=LIVE_FLEET), None))
     off_route = [r for t, r in seen

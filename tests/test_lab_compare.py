@@ -136,8 +136,10 @@ def test_lab_json_numbers_equal_each_summary(lab):
         assert row["rejects"] == summary["rejects"]["total"]
         assert row["filtered_by_reason"] == {
             **dict.fromkeys(row["filtered_by_reason"], 0), **summary["filtered"]["by_reason"]}
-        assert row["assignments"] == summary["assignments"] == len(
-            _lines(folder / "assignments.jsonl"))
+        lines = _lines(folder / "assignments.jsonl")  # held answers: hold_filtered
+        assert row["assignments"] == summary["assignments"] == sum(
+            1 for r in lines if not r.get("held"))
+        assert len(lines) == summary["assignments"] + summary["assignments_held"]
         assert row["eps_share"] == {f"{e['eps_m']:g}": e["share"]
                                     for e in summary["eps_levels"]}
         alerts = _lines(folder / "alerts.jsonl")

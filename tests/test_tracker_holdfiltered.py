@@ -10,7 +10,7 @@ is widened by the step).
 
 from __future__ import annotations
 
-from shapely import LineString, frechet_distance
+from shapely import LineString, frechet_distance, segmentize
 
 from livematch.core.events import Assignment, Filtered, HeldAssignment, to_record
 from livematch.core.fix import Fix
@@ -66,11 +66,15 @@ def test_refused_outlier_repeats_the_newest_answer_with_its_certificate() -> Non
     assert len(window) == held.window_fixes >= 2
     curve = LineString([(f.x, f.y) for f in window])
     road = LineString([(window[0].x, 0.0), (held.x, held.y)])
-    assert frechet_distance(curve, road, densify=DENSIFY_M / road.length) \
+    # both curves densified to DENSIFY_M steps by shapely.segmentize, then shapely's
+    # discrete distance on their vertices (its own densify fraction is very slow this fine)
+    assert frechet_distance(segmentize(curve, DENSIFY_M), segmentize(road, DENSIFY_M)) \
         <= held.eps_m + DENSIFY_M
-    # the refused fix is in no window: it is nowhere near that road
-    assert frechet_distance(LineString([*curve.coords, (bad.x, bad.y)]), road,
-                            densify=DENSIFY_M / road.length) > held.eps_m
+    # the refused fix is in no window: it is nowhere near that road (10 m steps: the
+    # discrete distance exceeds the continuous one by at most the step)
+    outlier = LineString([*curve.coords, (bad.x, bad.y)])
+    assert frechet_distance(segmentize(outlier, 10.0), segmentize(road, 10.0)) \
+        > held.eps_m + 10.0
 
 
 def test_refused_low_accuracy_fix_is_held_too() -> None:
