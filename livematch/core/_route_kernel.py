@@ -30,9 +30,11 @@ them are popped: the answer for them is the reference's, the rest is never looke
 
 Arrays (the network's are those of :class:`livematch.core.fastsweep.SweepArrays`):
 
-``netf`` (float64), read-only: ``vx[V] | vy[V] | slen[E]``.
-``neti`` (int64), read-only: ``sf[E] | st[E] | twin[E] | out_seg[E] | out_ptr[V + 1]
-    | turn_back_ok[V]``.
+``netf`` (float64), read-only: a record of ``SEG_STRIDE`` values per segment
+    (``_sweep_kernel``), of which this kernel reads the length, head vertex and twin.
+``neti`` (int64), read-only: ``vptr[V + 1] | out_seg[E]``, the out-segments of vertex v
+    being ``out_seg[vptr[v] >> 1:vptr[v + 1] >> 1]`` and ``vptr[v] & 1`` its
+    ``turn_back_ok``.
 ``flag`` (uint8[E]), ``lab_f`` (float64[E]), ``lab_i`` (int32[3 E]): per-network scratch.
     ``flag`` bit 1: segment popped in this search; bit 2: segment is one of the ends.
     Every bit is cleared again before the kernel returns. ``lab_f`` holds a popped
@@ -65,6 +67,13 @@ import numba
 import numpy as np
 
 _jit = numba.njit(cache=True, error_model="numpy")
+
+# The segment record of ``netf`` (the same numbers as livematch.core._sweep_kernel's; kept
+# here as plain numbers so that numba's cache of this file sees them).
+SEG_STRIDE = 8
+S_LEN = 4
+S_TO = 5
+S_TWIN = 6
 
 _DONE = 1
 _END = 2
@@ -115,13 +124,8 @@ def route_kernel(
 ) -> tuple[np.ndarray, np.ndarray, int]:
     """Bounded multi-source edge-based Dijkstra searches and the routes to ``ends``."""
     n_e = flag.shape[0]
-    n_v = (netf.shape[0] - n_e) // 2
-    slen0 = 2 * n_v
-    st0 = n_e
-    twin0 = 2 * n_e
-    oseg0 = 3 * n_e
-    optr0 = 4 * n_e
-    ok0 = 4 * n_e + n_v + 1
+    n_v = neti.shape[0] - n_e - 1
+    oseg0 = n_v + 1  # neti: vptr[V + 1] | out_seg[E]; vptr[v] = 2 out_ptr[v] + turn_back_ok
     src0 = n_e  # lab_i: source tag of each popped segment
     pred0 = 2 * n_e  # lab_i: the segment before each popped one; lab_i[:n_e]: popped list
 
@@ -170,9 +174,11 @@ def route_kernel(
             pos += 5
             if not length <= limit or overflow:
                 continue
-            back = neti[twin0 + seg] if seg >= 0 and neti[ok0 + vertex] == 0 else -1
+            p_lo = neti[vertex]
+            back = (int(netf[SEG_STRIDE * seg + S_TWIN]) if seg >= 0 and p_lo & 1 == 0
+                    else -1)
             d = length + shift
-            for r in range(neti[optr0 + vertex], neti[optr0 + vertex + 1]):
+            for r in range(p_lo >> 1, neti[vertex + 1] >> 1):
                 f = neti[oseg0 + r]
                 if f == back:
                     continue
@@ -232,12 +238,14 @@ def route_kernel(
                 if remaining == 0:
                     break
             shift = e_sh[top]
-            nd = dist + netf[slen0 + g]
+            g8 = SEG_STRIDE * g
+            nd = dist + netf[g8 + S_LEN]
             if not nd <= limit + shift:
                 continue
-            v = neti[st0 + g]
-            back = neti[twin0 + g] if neti[ok0 + v] == 0 else -1
-            for r in range(neti[optr0 + v], neti[optr0 + v + 1]):
+            v = int(netf[g8 + S_TO])
+            p_lo = neti[v]
+            back = int(netf[g8 + S_TWIN]) if p_lo & 1 == 0 else -1
+            for r in range(p_lo >> 1, neti[v + 1] >> 1):
                 f = neti[oseg0 + r]
                 if f == back or flag[f] & _DONE:
                     continue

@@ -16,29 +16,35 @@ makes them but recorded in order and replayed in one place: an offer only writes
 states, and nothing the Dijkstra reads depends on them, so the same offers in the same
 order give the same result.
 
-``netf`` (float64), per network, read-only:
-    ``vx[V] | vy[V] | slen[E]``
-``neti`` (int64), per network, read-only:
-    ``sf[E] | st[E] | twin[E] | out_seg[E] | out_ptr[V + 1] | turn_back_ok[V]``
+``netf`` (float64), per network, read-only: one record of ``SEG_STRIDE`` (8) values per
+    segment, ``ax, ay, bx, by, len, to, twin, from`` (its end points' coordinates, its
+    length, its head vertex, its twin or -1, its tail vertex; ids are exact in a
+    float64 far beyond any network size), 64-byte aligned, so that everything a step
+    reads about a segment is one cache line (:func:`records`). A vertex's coordinates
+    are read from the record of a segment that ends (or starts) there: the same floats.
+``neti`` (int64), per network, read-only: ``vptr[V + 1] | out_seg[E]``: the segments
+    leaving vertex v are ``out_seg[vptr[v] >> 1:vptr[v + 1] >> 1]`` and ``vptr[v] & 1``
+    is its ``turn_back_ok`` flag (one read for both).
 ``live`` (float64), per call: ``N_CTX`` step scalars (see the ``C_*`` indices), then
     per live state seven values: its dict key, then its ``seg, low, pos, x, y, cost``
     (the reference reads the key where it iterates over the states and ``seg`` where it
     reads the parent; the two agree in every dict the matcher builds. Segment ids are
     exact in a float64 far beyond any network size).
 ``fbuf`` (float64), per network, scratch and output:
-    ``white_lo[V] | white_hi[V] | entry_s[H] | entry_cost[H] | offer_lo_hi[O * 2]
-    | out[M * 5]`` where an output row is ``low, pos, x, y, cost``; it may go on with
-    room for :func:`tree_sweep`'s packed ``live`` array (``N_CTX + 7 M`` values; the
-    kernel itself never reads or writes past ``out``).
+    ``vert[V * V_STRIDE] | entry_s[H] | entry_cost[H] | offer_lo_hi[O * 2] | out[M * 5]``
+    where a vertex's scratch record is ``white_lo, white_hi, flag`` (the flag word as
+    an exact integer value: bit 1 white interval cached, bit 2 vertex done, the rest
+    the vertex's cheapest waiting entry) and an output row is ``low, pos, x, y, cost``;
+    it may go on with room for :func:`tree_sweep`'s packed ``live`` array (``N_CTX +
+    7 M`` values; the kernel itself never reads or writes past ``out``).
 ``ibuf`` (int64), per network, scratch and output: a header ``V, E, H, B, M, O``, then
-    ``seg_slot[E] | vflag[V] | vtouched[V] | entry[H * 4] | heap[H] | via[B] | offer[O * 4]
+    ``seg_slot[E] | vtouched[V] | entry[H * 4] | heap[H] | via[B] | offer[O * 4]
     | out[M * 4 + B]``. An entry row (and an offer row) is ``vertex`` (``seg``),
     ``parent, via_start, via_len``, its via being ``via[via_start:via_start + via_len]``.
     The output is ``m`` rows ``seg, parent, via_start, via_len`` followed by the output
     states' vias one after another, ``via_start`` counting from the end of the rows: the
-    caller converts one slice. ``seg_slot`` (segment -> output row, -1) and ``vflag`` (bit 1:
-    white interval cached; bit 2: vertex done) are reset to -1 / 0 before the kernel
-    returns, on success and on overflow alike.
+    caller converts one slice. ``seg_slot`` (segment -> output row, -1) and the vertex
+    flags are reset to -1 / 0 before the kernel returns, on success and on overflow alike.
 
 The heap holds entry ids; an entry id is the reference's ``counter - 1``, so ordering by
 ``(entry_s, entry_cost, id)`` is exactly the reference's ordering of its heap tuples
@@ -84,6 +90,21 @@ OUT_F_STRIDE = 5
 OUT_I_STRIDE = 4
 ENTRY_STRIDE = 4
 N_HEADER = 6  # V, E, H, B, M, O at the head of ``ibuf``
+# A segment's record in ``netf``: SEG_STRIDE values, the fields at these offsets.
+SEG_STRIDE = 8
+S_AX = 0
+S_AY = 1
+S_BX = 2
+S_BY = 3
+S_LEN = 4
+S_TO = 5
+S_TWIN = 6
+S_FROM = 7
+# A vertex's scratch record at the head of ``fbuf``.
+V_STRIDE = 4
+W_LO = 0
+W_HI = 1
+W_FLAG = 2
 OFFER_STRIDE = 4
 OVERFLOW = -1
 
@@ -131,10 +152,10 @@ def layout(
     Returns (es, offer_lo_hi, out_f) in ``fbuf``, then (entry, out_i) in ``ibuf`` and
     the length of ``ibuf``; the other pieces follow from them (module docstring).
     """
-    es0 = 2 * n_v
+    es0 = V_STRIDE * n_v
     offer_f0 = es0 + 2 * cap_h
     out_f0 = offer_f0 + 2 * cap_o
-    entry0 = N_HEADER + n_e + 2 * n_v
+    entry0 = N_HEADER + n_e + n_v
     out_i0 = entry0 + cap_h * (ENTRY_STRIDE + 1) + cap_b + cap_o * OFFER_STRIDE
     end = out_i0 + cap_m * OUT_I_STRIDE + cap_b
     return es0, offer_f0, out_f0, entry0, out_i0, end
@@ -171,24 +192,15 @@ def sweep_kernel(
     cap_o = ibuf[5]
     es0, offer_f0, out_f0, entry0, out_i0, end = layout(n_v, n_e, cap_h, cap_b, cap_m,
                                                              cap_o)
-    vx = netf[0:n_v]
-    vy = netf[n_v:2 * n_v]
-    slen = netf[2 * n_v:2 * n_v + n_e]
-    sf = neti[0:n_e]
-    st = neti[n_e:2 * n_e]
-    twin = neti[2 * n_e:3 * n_e]
-    out_seg = neti[3 * n_e:4 * n_e]
-    out_ptr = neti[4 * n_e:4 * n_e + n_v + 1]
-    ok = neti[4 * n_e + n_v + 1:4 * n_e + 2 * n_v + 1]
-    white_lo = fbuf[0:n_v]
-    white_hi = fbuf[n_v:2 * n_v]
+    vptr = neti[0:n_v + 1]
+    out_seg = neti[n_v + 1:n_v + 1 + n_e]
+    vert = fbuf[0:V_STRIDE * n_v]
     es = fbuf[es0:es0 + cap_h]
     ec = fbuf[es0 + cap_h:es0 + 2 * cap_h]
     offer_f = fbuf[offer_f0:offer_f0 + 2 * cap_o]
     out_f = fbuf[out_f0:out_f0 + cap_m * OUT_F_STRIDE]
     seg_slot = ibuf[N_HEADER:N_HEADER + n_e]
-    vflag = ibuf[N_HEADER + n_e:N_HEADER + n_e + n_v]
-    vtouched = ibuf[N_HEADER + n_e + n_v:entry0]
+    vtouched = ibuf[N_HEADER + n_e:entry0]
     entry = ibuf[entry0:entry0 + cap_h * ENTRY_STRIDE]
     heap = ibuf[entry0 + cap_h * ENTRY_STRIDE:entry0 + cap_h * (ENTRY_STRIDE + 1)]
     via0 = entry0 + cap_h * (ENTRY_STRIDE + 1)
@@ -215,9 +227,11 @@ def sweep_kernel(
     for i in range(n_live):
         row = N_CTX + i * LIVE_STRIDE
         seg = int(live[row + L_KEY])
-        a = sf[seg]
-        b = st[seg]
-        lo, hi = free_interval(vx[a], vy[a], vx[b], vy[b], x1, y1, eps2)
+        s8 = SEG_STRIDE * seg
+        b = int(netf[s8 + S_TO])
+        bx = netf[s8 + S_BX]
+        by = netf[s8 + S_BY]
+        lo, hi = free_interval(netf[s8 + S_AX], netf[s8 + S_AY], bx, by, x1, y1, eps2)
         node_low = live[row + L_LOW]
         low = node_low if node_low > lo else lo
         if low <= hi:
@@ -232,26 +246,31 @@ def sweep_kernel(
             offer[k + 2] = 0
             offer[k + 3] = 0
             n_offers += 1
-        if vflag[b] == 0:
-            wl, wh = free_interval(x0, y0, x1, y1, vx[b], vy[b], eps2)
-            white_lo[b] = wl
-            white_hi[b] = wh
-            vflag[b] = _WHITE
+        vb = V_STRIDE * b
+        flag = int(vert[vb + W_FLAG])
+        if flag == 0:
+            wl, wh = free_interval(x0, y0, x1, y1, bx, by, eps2)
+            vert[vb + W_LO] = wl
+            vert[vb + W_HI] = wh
+            flag = _WHITE
+            vert[vb + W_FLAG] = _WHITE
             vtouched[n_touched] = b
             n_touched += 1
-        if white_lo[b] <= white_hi[b]:
+        else:
+            wl = vert[vb + W_LO]
+            wh = vert[vb + W_HI]
+        if wl <= wh:
             cost = live[row + L_COST]
-            pend = (vflag[b] >> _PEND_SHIFT) - 1
-            if pend >= 0 and not (white_lo[b] < es[pend] or (
-                    white_lo[b] == es[pend] and cost < ec[pend])):
+            pend = (flag >> _PEND_SHIFT) - 1
+            if pend >= 0 and not (wl < es[pend] or (wl == es[pend] and cost < ec[pend])):
                 continue  # an entry for b already waits that pops first: this one is a no-op
             if n_entries >= cap_h:
                 overflow = True
                 break
             e = n_entries
             n_entries += 1
-            vflag[b] = (vflag[b] & _FLAGS) | ((e + 1) << _PEND_SHIFT)
-            es[e] = white_lo[b]
+            vert[vb + W_FLAG] = (flag & _FLAGS) | ((e + 1) << _PEND_SHIFT)
+            es[e] = wl
             ec[e] = cost
             k = e * ENTRY_STRIDE
             entry[k] = b
@@ -304,19 +323,29 @@ def sweep_kernel(
         parent = entry[k + 1]
         via_start = entry[k + 2]
         via_len = entry[k + 3]
-        if vflag[v] & _DONE:
+        vv = V_STRIDE * v
+        flag = int(vert[vv + W_FLAG])
+        if flag & _DONE:
             continue
-        vflag[v] |= _DONE  # v was pushed, so its white interval is cached: already touched
+        # v was pushed, so its white interval is cached: already touched
+        vert[vv + W_FLAG] = flag | _DONE
         if via_len > 0:
-            back = twin[via[via_start + via_len - 1]]
+            back = int(netf[SEG_STRIDE * via[via_start + via_len - 1] + S_TWIN])
         else:
-            back = twin[int(live[N_CTX + parent * LIVE_STRIDE + L_SEG])]
-        for j in range(out_ptr[v], out_ptr[v + 1]):
+            back = int(netf[SEG_STRIDE * int(live[N_CTX + parent * LIVE_STRIDE + L_SEG])
+                            + S_TWIN])
+        p_lo = vptr[v]
+        turn_ok = p_lo & 1
+        for j in range(p_lo >> 1, vptr[v + 1] >> 1):
             f = out_seg[j]
-            if f == back and ok[v] == 0:
+            if f == back and turn_ok == 0:
                 continue
-            w = st[f]
-            lo, hi = free_interval(vx[v], vy[v], vx[w], vy[w], x1, y1, eps2)
+            f8 = SEG_STRIDE * f
+            w = int(netf[f8 + S_TO])
+            wx = netf[f8 + S_BX]
+            wy = netf[f8 + S_BY]
+            # the record's tail point is v's: the reference's (vx[v], vy[v])
+            lo, hi = free_interval(netf[f8 + S_AX], netf[f8 + S_AY], wx, wy, x1, y1, eps2)
             if lo <= hi:
                 if n_offers >= cap_o:
                     overflow = True
@@ -329,18 +358,24 @@ def sweep_kernel(
                 offer[q + 2] = via_start
                 offer[q + 3] = via_len
                 n_offers += 1
-            if vflag[w] & _DONE:
+            vw = V_STRIDE * w
+            wflag = int(vert[vw + W_FLAG])
+            if wflag & _DONE:
                 continue
-            if vflag[w] == 0:
-                wl, wh = free_interval(x0, y0, x1, y1, vx[w], vy[w], eps2)
-                white_lo[w] = wl
-                white_hi[w] = wh
-                vflag[w] = _WHITE
+            if wflag == 0:
+                wl, wh = free_interval(x0, y0, x1, y1, wx, wy, eps2)
+                vert[vw + W_LO] = wl
+                vert[vw + W_HI] = wh
+                wflag = _WHITE
+                vert[vw + W_FLAG] = _WHITE
                 vtouched[n_touched] = w
                 n_touched += 1
-            sw = s if s > white_lo[w] else white_lo[w]
-            if sw <= white_hi[w]:
-                pend = (vflag[w] >> _PEND_SHIFT) - 1
+            else:
+                wl = vert[vw + W_LO]
+                wh = vert[vw + W_HI]
+            sw = s if s > wl else wl
+            if sw <= wh:
+                pend = (wflag >> _PEND_SHIFT) - 1
                 if pend >= 0 and not (sw < es[pend] or (sw == es[pend] and ec[e] < ec[pend])):
                     continue  # an entry for w already waits that pops first
                 if n_entries >= cap_h or n_via + via_len + 1 > cap_b:
@@ -348,7 +383,7 @@ def sweep_kernel(
                     break
                 new_e = n_entries
                 n_entries += 1
-                vflag[w] = (vflag[w] & _FLAGS) | ((new_e + 1) << _PEND_SHIFT)
+                vert[vw + W_FLAG] = (wflag & _FLAGS) | ((new_e + 1) << _PEND_SHIFT)
                 es[new_e] = sw
                 ec[new_e] = ec[e]  # parent.cost
                 q = new_e * ENTRY_STRIDE
@@ -362,7 +397,7 @@ def sweep_kernel(
                 n_via += via_len + 1
 
     for r in range(n_touched):
-        vflag[vtouched[r]] = 0
+        vert[V_STRIDE * vtouched[r] + W_FLAG] = 0.0
     if overflow:
         return OVERFLOW, 0
 
@@ -391,12 +426,11 @@ def sweep_kernel(
             continue  # every term of the cost is >= 0: this way cannot do better
         p_seg = int(live[prow + L_SEG])
         p_pos = live[prow + L_POS]
-        a = sf[seg]
-        b = st[seg]
-        ax = vx[a]
-        ay = vy[a]
-        dx = vx[b] - ax
-        dy = vy[b] - ay
+        s8 = SEG_STRIDE * seg
+        ax = netf[s8 + S_AX]
+        ay = netf[s8 + S_AY]
+        dx = netf[s8 + S_BX] - ax
+        dy = netf[s8 + S_BY] - ay
         length2 = dx * dx + dy * dy
         pos = ((x1 - ax) * dx + (y1 - ay) * dy) / length2 if length2 > 0.0 else lo
         bottom = lo if lo > floor else (floor if floor < hi else hi)
@@ -413,18 +447,20 @@ def sweep_kernel(
                 out_f[slot * OUT_F_STRIDE] = lo
             continue
         if via_len == 0 and seg == p_seg:
-            route = (pos - p_pos) * slen[seg]
+            route = (pos - p_pos) * netf[s8 + S_LEN]
         else:
-            route = (1.0 - p_pos) * slen[p_seg] + pos * slen[seg]
-            prev = p_seg
+            p8 = SEG_STRIDE * p_seg
+            route = (1.0 - p_pos) * netf[p8 + S_LEN] + pos * netf[s8 + S_LEN]
+            prev_twin = netf[p8 + S_TWIN]
             turns = 0
             for r in range(via_start, via_start + via_len):
                 v = via[r]
-                route += slen[v]
-                if v == twin[prev]:
+                v8 = SEG_STRIDE * v
+                route += netf[v8 + S_LEN]
+                if v == prev_twin:
                     turns += 1
-                prev = v
-            if seg == twin[prev]:
+                prev_twin = netf[v8 + S_TWIN]
+            if seg == prev_twin:
                 turns += 1
             cost += turns * turn_back_cost
         cost += p_cost + abs(route - chord) * inv_beta
@@ -567,10 +603,6 @@ def tree_sweep(
     k = hi - lo
     n_v = ibuf[0]
     n_e = ibuf[1]
-    vx = netf[0:n_v]
-    vy = netf[n_v:2 * n_v]
-    sf = neti[0:n_e]
-    st = neti[n_e:2 * n_e]
     # the live block packed into the room after the kernel's output rows (SweepArrays
     # leaves room for as many states as output rows), else into a new array
     _, _, out_f0, entry0, _, _ = layout(n_v, n_e, ibuf[2], ibuf[3], ibuf[4], ibuf[5])
@@ -591,12 +623,11 @@ def tree_sweep(
         live[b + 3] = pos
         # the matched point, not kept in the row: recomputed by the sweep's own expression
         # (``mx = ax + pos * dx``), so bit for bit the value the sweep wrote
-        a = sf[seg]
-        e = st[seg]
-        ax = vx[a]
-        ay = vy[a]
-        live[b + 4] = ax + pos * (vx[e] - ax)
-        live[b + 5] = ay + pos * (vy[e] - ay)
+        s8 = SEG_STRIDE * seg
+        ax = netf[s8 + S_AX]
+        ay = netf[s8 + S_AY]
+        live[b + 4] = ax + pos * (netf[s8 + S_BX] - ax)
+        live[b + 5] = ay + pos * (netf[s8 + S_BY] - ay)
         live[b + 6] = tf[rf + F_COST]
     m, n_via = sweep_kernel(netf, neti, live, fbuf, ibuf)
     if m < 0:
@@ -913,7 +944,7 @@ def ancestor_at(ti: np.ndarray, row: int, seq: int) -> int:
 
 
 @numba.njit(cache=True, error_model="numpy")
-def step_arc(slen: np.ndarray, ibuf: np.ndarray, via0: int, via_len: int,
+def step_arc(netf: np.ndarray, ibuf: np.ndarray, via0: int, via_len: int,
              pseg: int, ppos: float, seg: int, pos: float) -> float:
     """Metres driven from ``ppos`` on ``pseg`` to ``pos`` on ``seg`` through vias.
 
@@ -922,11 +953,12 @@ def step_arc(slen: np.ndarray, ibuf: np.ndarray, via0: int, via_len: int,
     same order, so both give the same floats).
     """
     if via_len == 0 and seg == pseg:
-        return (pos - ppos) * slen[seg]
+        return (pos - ppos) * netf[SEG_STRIDE * seg + S_LEN]
     through = 0.0
     for q in range(via_len):
-        through += slen[ibuf[via0 + q]]
-    return (1.0 - ppos) * slen[pseg] + through + pos * slen[seg]
+        through += netf[SEG_STRIDE * ibuf[via0 + q] + S_LEN]
+    return ((1.0 - ppos) * netf[SEG_STRIDE * pseg + S_LEN] + through
+            + pos * netf[SEG_STRIDE * seg + S_LEN])
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -957,7 +989,6 @@ def window_step(
         return (OVERFLOW if m < 0 else 0), np.empty((0, 6)), np.empty(0)
     n_v = ibuf[0]
     n_e = ibuf[1]
-    slen = netf[2 * n_v:2 * n_v + n_e]
     _, _, out_f0, _, out_i0, _ = layout(n_v, n_e, ibuf[2], ibuf[3], ibuf[4], ibuf[5])
     vb = out_i0 + m * OUT_I_STRIDE
     out = np.empty((m, 6))
@@ -972,7 +1003,7 @@ def window_step(
         pos = fbuf[of + 1]
         pseg = int(rows[parent, 0])
         ppos = rows[parent, 2]
-        arc = step_arc(slen, ibuf, vb + via_start, via_len, pseg, ppos, seg, pos)
+        arc = step_arc(netf, ibuf, vb + via_start, via_len, pseg, ppos, seg, pos)
         new_driven[j] = driven[parent] + arc
         out[j, 0] = seg
         out[j, 1] = fbuf[of]

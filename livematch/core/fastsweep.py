@@ -58,11 +58,52 @@ _START_ROWS = 512
 _START_OFFERS = 2048
 
 
+def _aligned_empty(n: int, align: int = 64) -> npt.NDArray[np.float64]:
+    """``n`` float64 whose first one starts on an ``align``-byte boundary (a cache line)."""
+    raw = np.empty(n + align // 8, dtype=np.float64)
+    skip = (-raw.ctypes.data % align) // 8
+    return raw[skip:skip + n]
+
+
+def network_records(view: NetworkView) -> tuple[npt.NDArray[np.float64], npt.NDArray[np.int64]]:
+    """The kernels' network arrays ``(netf, neti)`` (layout in ``_sweep_kernel``).
+
+    ``netf``: one record of ``SEG_STRIDE`` float64 per segment, ``ax, ay, bx, by, len,
+    to, twin, from``, starting on a cache line, so that a step touches one line per
+    segment it reads instead of one per array (coordinates, ends, twin and length used
+    to sit in seven separate arrays). ``neti``: ``vptr[V + 1] | out_seg[E]`` with
+    ``vptr[v] = 2 out_ptr[v] + turn_back_ok[v]``. Every value is copied, not computed,
+    so the kernels read the very floats the reference reads.
+    """
+    net = view.network
+    n_v, n_e = net.n_vertices, net.n_segments
+    vx = np.asarray(view.vx, dtype=np.float64)
+    vy = np.asarray(view.vy, dtype=np.float64)
+    sf = np.asarray(view.sf, dtype=np.int64)
+    st = np.asarray(view.st, dtype=np.int64)
+    netf = _aligned_empty(_k.SEG_STRIDE * n_e)
+    rec = netf.reshape(n_e, _k.SEG_STRIDE)
+    rec[:, _k.S_AX] = vx[sf]
+    rec[:, _k.S_AY] = vy[sf]
+    rec[:, _k.S_BX] = vx[st]
+    rec[:, _k.S_BY] = vy[st]
+    rec[:, _k.S_LEN] = np.asarray(view.slen, dtype=np.float64)
+    rec[:, _k.S_TO] = st
+    rec[:, _k.S_TWIN] = np.asarray(view.twin, dtype=np.int64)
+    rec[:, _k.S_FROM] = sf
+    neti = np.empty(n_v + 1 + n_e, dtype=np.int64)
+    neti[:n_v + 1] = 2 * np.asarray(net.out_ptr, dtype=np.int64)
+    neti[:n_v] += np.asarray(view.turn_back_ok, dtype=np.int64) != 0
+    neti[n_v + 1:] = net.out_seg
+    return netf, neti
+
+
 class SweepArrays:
     """The kernel's arrays for one network: read-only network data plus scratch buffers.
 
     Attributes:
-        netf, neti: the network (float64 and int64 parts, layout in ``_sweep_kernel``).
+        netf, neti: the network: a record per segment and the adjacency
+            (:func:`network_records`, layout in ``_sweep_kernel``).
         seg_geo: per segment (a, b) the row ``ax, ay, bx - ax, by - ay`` (metres).
         fbuf, ibuf: scratch and output buffers, grown by :meth:`grow`.
         chain: scratch for the rows of a commit's chain (``CandidateTree.chain``).
@@ -77,12 +118,7 @@ class SweepArrays:
         net = view.network
         self.n_v = net.n_vertices
         self.n_e = net.n_segments
-        self.netf: npt.NDArray[np.float64] = np.concatenate(
-            [np.asarray(view.vx, dtype=np.float64), np.asarray(view.vy, dtype=np.float64),
-             np.asarray(view.slen, dtype=np.float64)])
-        self.neti: npt.NDArray[np.int64] = np.concatenate(
-            [np.asarray(a, dtype=np.int64) for a in (
-                view.sf, view.st, view.twin, net.out_seg, net.out_ptr, view.turn_back_ok)])
+        self.netf, self.neti = network_records(view)
         # per segment (a, b): ax, ay, bx - ax, by - ay, so that a matched point is
         # ax + pos * (bx - ax) with the very operations the sweep uses (tree rows keep no
         # point; livematch.core._tree_kernel.live_scores recomputes them from this)

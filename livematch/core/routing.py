@@ -238,12 +238,13 @@ class RouteArrays:
     def street_neti(self) -> npt.NDArray[np.int64]:
         """The network's int arrays with a U-turn allowed at every vertex (built once).
 
-        The layout ends with ``turn_back_ok[V]`` (``_sweep_kernel``), so the copy only
-        sets that tail to 1; the sweep itself keeps the network's own rule.
+        The layout starts with ``vptr[V + 1]``, whose low bit is ``turn_back_ok``
+        (``_sweep_kernel``), so the copy only sets that bit; the sweep itself keeps the
+        network's own rule.
         """
         if self.neti_street is None:
             street = self.neti.copy()
-            street[len(street) - self.n_v:] = 1
+            street[:self.n_v] |= 1
             self.neti_street = street
         return self.neti_street
 

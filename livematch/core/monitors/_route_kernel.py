@@ -94,7 +94,6 @@ def _advance(
     k = int(w[0])
     n_v = ibuf[0]
     n_e = ibuf[1]
-    slen = netf[2 * n_v:2 * n_v + n_e]
     if k > 0:
         n_live = _k.N_CTX + _k.LIVE_STRIDE * k
         live = buf[:n_live]  # views: the kernel reads the number of states from the length
@@ -129,7 +128,7 @@ def _advance(
                 pb = _k.N_CTX + _k.LIVE_STRIDE * parent
                 pseg = int(live[pb + _k.L_SEG])
                 ppos = live[pb + _k.L_POS]
-                arc = _k.step_arc(slen, ibuf, vb + via_start, via_len, pseg, ppos, seg, pos)
+                arc = _k.step_arc(netf, ibuf, vb + via_start, via_len, pseg, ppos, seg, pos)
                 r = 1 + ROW * j
                 w[r] = seg
                 w[r + 1] = fbuf[of]
@@ -152,10 +151,6 @@ def _advance(
     inv_two_sigma2 = ctx[_k.C_INV_TWO_SIGMA2]
     eps2 = eps * eps
     reach = eps + BOX_SLACK_M
-    vx = netf[:n_v]
-    vy = netf[n_v:2 * n_v]
-    sf = neti[:n_e]
-    st = neti[n_e:2 * n_e]
     count = 0
     for pass_ in range(2):  # count, then (when they fit) write
         if pass_ == 1:
@@ -163,12 +158,11 @@ def _advance(
                 return ROWS_OVERFLOW, count, 0.0, -1, 0.0
             count = 0
         for seg in range(n_e):
-            a = sf[seg]
-            b = st[seg]
-            ax = vx[a]
-            ay = vy[a]
-            bx = vx[b]
-            by = vy[b]
+            s8 = _k.SEG_STRIDE * seg  # the segment's record: its end points
+            ax = netf[s8 + _k.S_AX]
+            ay = netf[s8 + _k.S_AY]
+            bx = netf[s8 + _k.S_BX]
+            by = netf[s8 + _k.S_BY]
             if ((ax < x1 - reach and bx < x1 - reach) or (ax > x1 + reach and bx > x1 + reach)
                     or (ay < y1 - reach and by < y1 - reach)
                     or (ay > y1 + reach and by > y1 + reach)):
