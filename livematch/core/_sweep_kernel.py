@@ -16,35 +16,42 @@ makes them but recorded in order and replayed in one place: an offer only writes
 states, and nothing the Dijkstra reads depends on them, so the same offers in the same
 order give the same result.
 
-``netf`` (float64), per network, read-only: one record of ``SEG_STRIDE`` (8) values per
-    segment, ``ax, ay, bx, by, len, to, twin, from`` (its end points' coordinates, its
-    length, its head vertex, its twin or -1, its tail vertex; ids are exact in a
-    float64 far beyond any network size), 64-byte aligned, so that everything a step
-    reads about a segment is one cache line (:func:`records`). A vertex's coordinates
-    are read from the record of a segment that ends (or starts) there: the same floats.
+``netf`` (float64), per network: one record of ``SEG_STRIDE`` (8) values per segment,
+    ``ax, ay, bx, by, len, to, twin, slot`` (its end points' coordinates, its length, its
+    head vertex, its twin or -1, and scratch: its output row in this step or -1; ids are
+    exact in a float64 far beyond any network size), then one record of ``V_STRIDE``
+    (4) values per vertex, ``white_lo, white_hi, flag, adj``: scratch, the vertex's white
+    interval in this step and its flag word (bit 1 white interval cached, bit 2 vertex
+    done, the rest 1 + its cheapest waiting entry), and ``adj``, read-only, its
+    out-segments ``out_seg[adj >> ADJ_SHIFT:][:(adj >> 1) & ADJ_COUNT]`` and its
+    ``turn_back_ok`` (``adj & 1``). 64-byte aligned, so that what a step reads about a
+    segment is one cache line, about a vertex half of one (:func:`~livematch.core.
+    fastsweep.network_records`); the arrays they replaced put each field in an array of
+    its own, some ten cache lines per vertex settled. A vertex's coordinates are read
+    from the record of a segment that ends (or starts) there: the same floats. The
+    scratch fields are written only by this kernel and left as it found them (slots -1,
+    flags 0), on success and on overflow alike; a network's records therefore serve one
+    call at a time, as the scratch buffers do.
 ``neti`` (int64), per network, read-only: ``vptr[V + 1] | out_seg[E]``: the segments
     leaving vertex v are ``out_seg[vptr[v] >> 1:vptr[v + 1] >> 1]`` and ``vptr[v] & 1``
-    is its ``turn_back_ok`` flag (one read for both).
+    is its ``turn_back_ok`` flag (the router's adjacency; the sweep reads ``adj``).
 ``live`` (float64), per call: ``N_CTX`` step scalars (see the ``C_*`` indices), then
     per live state seven values: its dict key, then its ``seg, low, pos, x, y, cost``
     (the reference reads the key where it iterates over the states and ``seg`` where it
     reads the parent; the two agree in every dict the matcher builds. Segment ids are
     exact in a float64 far beyond any network size).
 ``fbuf`` (float64), per network, scratch and output:
-    ``vert[V * V_STRIDE] | entry_s[H] | entry_cost[H] | offer_lo_hi[O * 2] | out[M * 5]``
-    where a vertex's scratch record is ``white_lo, white_hi, flag`` (the flag word as
-    an exact integer value: bit 1 white interval cached, bit 2 vertex done, the rest
-    the vertex's cheapest waiting entry) and an output row is ``low, pos, x, y, cost``;
-    it may go on with room for :func:`tree_sweep`'s packed ``live`` array (``N_CTX +
-    7 M`` values; the kernel itself never reads or writes past ``out``).
+    ``entry_s[H] | entry_cost[H] | offer_lo_hi[O * 2] | out[M * 5]`` where an output row
+    is ``low, pos, x, y, cost``; it may go on with room for :func:`tree_sweep`'s packed
+    ``live`` array (``N_CTX + 7 M`` values; the kernel itself never reads or writes past
+    ``out``).
 ``ibuf`` (int64), per network, scratch and output: a header ``V, E, H, B, M, O``, then
-    ``seg_slot[E] | vtouched[V] | entry[H * 4] | heap[H] | via[B] | offer[O * 4]
-    | out[M * 4 + B]``. An entry row (and an offer row) is ``vertex`` (``seg``),
-    ``parent, via_start, via_len``, its via being ``via[via_start:via_start + via_len]``.
-    The output is ``m`` rows ``seg, parent, via_start, via_len`` followed by the output
-    states' vias one after another, ``via_start`` counting from the end of the rows: the
-    caller converts one slice. ``seg_slot`` (segment -> output row, -1) and the vertex
-    flags are reset to -1 / 0 before the kernel returns, on success and on overflow alike.
+    ``vtouched[V] | entry[H * 4] | heap[H] | via[B] | offer[O * 4] | out[M * 4 + B]``.
+    An entry row (and an offer row) is ``vertex`` (``seg``), ``parent, via_start,
+    via_len``, its via being ``via[via_start:via_start + via_len]``. The output is ``m``
+    rows ``seg, parent, via_start, via_len`` followed by the output states' vias one
+    after another, ``via_start`` counting from the end of the rows: the caller converts
+    one slice.
 
 The heap holds entry ids; an entry id is the reference's ``counter - 1``, so ordering by
 ``(entry_s, entry_cost, id)`` is exactly the reference's ordering of its heap tuples
@@ -99,12 +106,15 @@ S_BY = 3
 S_LEN = 4
 S_TO = 5
 S_TWIN = 6
-S_FROM = 7
-# A vertex's scratch record at the head of ``fbuf``.
+S_SLOT = 7  # scratch: the segment's output row in this step, -1
+# A vertex's record in ``netf``, after the segments' (see the module docstring).
 V_STRIDE = 4
 W_LO = 0
 W_HI = 1
 W_FLAG = 2
+W_ADJ = 3
+ADJ_SHIFT = 21  # W_ADJ = first out-segment << ADJ_SHIFT | their count << 1 | turn_back_ok
+ADJ_COUNT = (1 << (ADJ_SHIFT - 1)) - 1
 OFFER_STRIDE = 4
 OVERFLOW = -1
 
@@ -152,10 +162,10 @@ def layout(
     Returns (es, offer_lo_hi, out_f) in ``fbuf``, then (entry, out_i) in ``ibuf`` and
     the length of ``ibuf``; the other pieces follow from them (module docstring).
     """
-    es0 = V_STRIDE * n_v
+    es0 = 0
     offer_f0 = es0 + 2 * cap_h
     out_f0 = offer_f0 + 2 * cap_o
-    entry0 = N_HEADER + n_e + n_v
+    entry0 = N_HEADER + n_v
     out_i0 = entry0 + cap_h * (ENTRY_STRIDE + 1) + cap_b + cap_o * OFFER_STRIDE
     end = out_i0 + cap_m * OUT_I_STRIDE + cap_b
     return es0, offer_f0, out_f0, entry0, out_i0, end
@@ -192,15 +202,13 @@ def sweep_kernel(
     cap_o = ibuf[5]
     es0, offer_f0, out_f0, entry0, out_i0, end = layout(n_v, n_e, cap_h, cap_b, cap_m,
                                                              cap_o)
-    vptr = neti[0:n_v + 1]
     out_seg = neti[n_v + 1:n_v + 1 + n_e]
-    vert = fbuf[0:V_STRIDE * n_v]
+    vert = netf[SEG_STRIDE * n_e:SEG_STRIDE * n_e + V_STRIDE * n_v]
     es = fbuf[es0:es0 + cap_h]
     ec = fbuf[es0 + cap_h:es0 + 2 * cap_h]
     offer_f = fbuf[offer_f0:offer_f0 + 2 * cap_o]
     out_f = fbuf[out_f0:out_f0 + cap_m * OUT_F_STRIDE]
-    seg_slot = ibuf[N_HEADER:N_HEADER + n_e]
-    vtouched = ibuf[N_HEADER + n_e:entry0]
+    vtouched = ibuf[N_HEADER:entry0]
     entry = ibuf[entry0:entry0 + cap_h * ENTRY_STRIDE]
     heap = ibuf[entry0 + cap_h * ENTRY_STRIDE:entry0 + cap_h * (ENTRY_STRIDE + 1)]
     via0 = entry0 + cap_h * (ENTRY_STRIDE + 1)
@@ -334,9 +342,10 @@ def sweep_kernel(
         else:
             back = int(netf[SEG_STRIDE * int(live[N_CTX + parent * LIVE_STRIDE + L_SEG])
                             + S_TWIN])
-        p_lo = vptr[v]
-        turn_ok = p_lo & 1
-        for j in range(p_lo >> 1, vptr[v + 1] >> 1):
+        adj = int(vert[vv + W_ADJ])
+        turn_ok = adj & 1
+        j0 = adj >> ADJ_SHIFT
+        for j in range(j0, j0 + ((adj >> 1) & ADJ_COUNT)):
             f = out_seg[j]
             if f == back and turn_ok == 0:
                 continue
@@ -420,13 +429,13 @@ def sweep_kernel(
         via_len = offer[q + 3]
         prow = N_CTX + parent * LIVE_STRIDE
         p_cost = live[prow + L_COST]
-        slot = seg_slot[seg]
+        s8 = SEG_STRIDE * seg
+        slot = int(netf[s8 + S_SLOT])
         if slot >= 0 and lo >= out_f[slot * OUT_F_STRIDE] and p_cost >= out_f[
                 slot * OUT_F_STRIDE + 4]:
             continue  # every term of the cost is >= 0: this way cannot do better
         p_seg = int(live[prow + L_SEG])
         p_pos = live[prow + L_POS]
-        s8 = SEG_STRIDE * seg
         ax = netf[s8 + S_AX]
         ay = netf[s8 + S_AY]
         dx = netf[s8 + S_BX] - ax
@@ -476,7 +485,7 @@ def sweep_kernel(
             if m >= cap_m:
                 overflow = True
                 break
-            seg_slot[seg] = m
+            netf[s8 + S_SLOT] = m
             f = m * OUT_F_STRIDE
             out_f[f] = lo
             out_f[f + 1] = pos
@@ -506,7 +515,7 @@ def sweep_kernel(
     # 4. The output states' vias, one after another after the rows.
     total = 0
     for r in range(m):
-        seg_slot[out_i[r * OUT_I_STRIDE]] = -1
+        netf[SEG_STRIDE * out_i[r * OUT_I_STRIDE] + S_SLOT] = -1.0
         total += out_i[r * OUT_I_STRIDE + 3]
     if overflow or total > cap_b:
         return OVERFLOW, 0

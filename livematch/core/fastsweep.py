@@ -69,11 +69,14 @@ def network_records(view: NetworkView) -> tuple[npt.NDArray[np.float64], npt.NDA
     """The kernels' network arrays ``(netf, neti)`` (layout in ``_sweep_kernel``).
 
     ``netf``: one record of ``SEG_STRIDE`` float64 per segment, ``ax, ay, bx, by, len,
-    to, twin, from``, starting on a cache line, so that a step touches one line per
-    segment it reads instead of one per array (coordinates, ends, twin and length used
-    to sit in seven separate arrays). ``neti``: ``vptr[V + 1] | out_seg[E]`` with
-    ``vptr[v] = 2 out_ptr[v] + turn_back_ok[v]``. Every value is copied, not computed,
-    so the kernels read the very floats the reference reads.
+    to, twin, slot`` (``slot`` -1: the kernel's scratch), then one of ``V_STRIDE`` per
+    vertex, ``white_lo, white_hi, flag, adj`` (the first three the kernel's scratch,
+    ``adj`` its out-segments and ``turn_back_ok``), starting on a cache line, so that a
+    step touches one line per segment it reads instead of one per array (coordinates,
+    ends, twin, length, adjacency and the per-vertex scratch used to sit in twelve
+    separate arrays). ``neti``: ``vptr[V + 1] | out_seg[E]`` with ``vptr[v] = 2
+    out_ptr[v] + turn_back_ok[v]`` (the router's adjacency). Every coordinate and length
+    is copied, not computed, so the kernels read the very floats the reference reads.
     """
     net = view.network
     n_v, n_e = net.n_vertices, net.n_segments
@@ -81,8 +84,13 @@ def network_records(view: NetworkView) -> tuple[npt.NDArray[np.float64], npt.NDA
     vy = np.asarray(view.vy, dtype=np.float64)
     sf = np.asarray(view.sf, dtype=np.int64)
     st = np.asarray(view.st, dtype=np.int64)
-    netf = _aligned_empty(_k.SEG_STRIDE * n_e)
-    rec = netf.reshape(n_e, _k.SEG_STRIDE)
+    out_ptr = np.asarray(net.out_ptr, dtype=np.int64)
+    count = np.diff(out_ptr)
+    if n_e >= 1 << (52 - _k.ADJ_SHIFT) or (n_v and count.max() > _k.ADJ_COUNT):
+        raise ValueError("network too large for the sweep kernel's vertex records")
+    e0 = _k.SEG_STRIDE * n_e
+    netf = _aligned_empty(e0 + _k.V_STRIDE * n_v)
+    rec = netf[:e0].reshape(n_e, _k.SEG_STRIDE)
     rec[:, _k.S_AX] = vx[sf]
     rec[:, _k.S_AY] = vy[sf]
     rec[:, _k.S_BX] = vx[st]
@@ -90,10 +98,14 @@ def network_records(view: NetworkView) -> tuple[npt.NDArray[np.float64], npt.NDA
     rec[:, _k.S_LEN] = np.asarray(view.slen, dtype=np.float64)
     rec[:, _k.S_TO] = st
     rec[:, _k.S_TWIN] = np.asarray(view.twin, dtype=np.int64)
-    rec[:, _k.S_FROM] = sf
+    rec[:, _k.S_SLOT] = -1.0
+    ok = np.asarray(view.turn_back_ok, dtype=np.int64) != 0
+    vert = netf[e0:].reshape(n_v, _k.V_STRIDE)
+    vert[:, :_k.W_ADJ] = 0.0
+    vert[:, _k.W_ADJ] = (out_ptr[:-1] << _k.ADJ_SHIFT) | (count << 1) | ok
     neti = np.empty(n_v + 1 + n_e, dtype=np.int64)
-    neti[:n_v + 1] = 2 * np.asarray(net.out_ptr, dtype=np.int64)
-    neti[:n_v] += np.asarray(view.turn_back_ok, dtype=np.int64) != 0
+    neti[:n_v + 1] = 2 * out_ptr
+    neti[:n_v] += ok
     neti[n_v + 1:] = net.out_seg
     return netf, neti
 
@@ -152,7 +164,6 @@ class SweepArrays:
                              + cap_m * _k.LIVE_STRIDE)
         ibuf = np.zeros(end, dtype=np.int64)
         ibuf[: _k.N_HEADER] = (n_v, n_e, cap_h, cap_b, cap_m, cap_o)
-        ibuf[_k.N_HEADER:_k.N_HEADER + n_e] = -1  # seg_slot: no output row yet
         self.ibuf = ibuf
 
     def grow(self) -> None:
