@@ -5,18 +5,22 @@ two flat arrays, rows in topological order (a parent's row always precedes its
 children's):
 
 ``ti`` (int32): a header of ``HEAD`` values (``H_N`` rows in use, ``H_NV`` vias in use,
-    the live block ``[H_LO, H_HI)``, and four slots a step that found the arrays full
-    leaves its sizes in), then room for ``len(tf) // ROW_F`` rows of ``ROW_I`` ints
-    ``seg, seq, parent, via_start, via_len`` (field ``I_x`` of row r at
+    the live block ``[H_LO, H_HI)``, five slots a step that found the arrays full
+    leaves its sizes in, ``H_T0`` the sequence number of the first fix time kept and
+    ``H_RCAP`` the rows the arrays have room for), then room for ``H_RCAP`` rows of
+    ``ROW_I`` ints ``seg, seq, parent, via_start, via_len`` (field ``I_x`` of row r at
     ``ROW_I * r + K_x``; ``parent`` -1 for a root), then the vias, one after another,
     from :func:`via_base` on (a row's via is ``via_len`` of them from ``via_start``).
-``tf`` (float64): per row ``ROW_F`` floats ``low, pos, cost, t`` (field ``F_x`` of row r
-    at ``ROW_F * r + F_x``). The matched point (x, y) of a row is not stored: it is
+``tf`` (float64): per row ``ROW_F`` floats ``low, pos, cost`` (field ``F_x`` of row r
+    at ``ROW_F * r + F_x``), then from ``ROW_F * H_RCAP`` on the fix times: the time of
+    fix ``H_T0 + j`` at ``j`` (:func:`time_of`), one per fix from the oldest row's to
+    the newest, shared by the fix's rows (a fix has several candidates; the time was
+    a float in every row before). The matched point (x, y) of a row is not stored: it is
     ``a + pos (b - a)`` on the row's segment, the very expression the sweep computed it
     with, so it is recomputed bit for bit where it is read (the live score, the sweep's
     input, a row handed out as a node) from the network's arrays (``seg_geo`` of
     :class:`livematch.core.fastsweep.SweepArrays`: ax, ay, bx - ax, by - ay per segment).
-    A row is 52 bytes (20 + 32).
+    A row is 44 bytes (20 + 24), and 8 more a fix.
 
 Two arrays rather than one per row field, with the counts in the first: a tree idle
 between fixes costs two numpy objects (each about 150 bytes beyond its data) and a
@@ -51,8 +55,8 @@ from livematch.core._sweep_kernel import (
     F_COST,
     F_LOW,
     F_POS,
-    F_T,
     H_CAP_ROWS,
+    H_CAP_T,
     H_CAP_VIAS,
     H_HI,
     H_LO,
@@ -60,6 +64,8 @@ from livematch.core._sweep_kernel import (
     H_N,
     H_NV,
     H_NVIA,
+    H_RCAP,
+    H_T0,
     HEAD,
     I_PARENT,
     I_SEG,
@@ -74,6 +80,7 @@ from livematch.core._sweep_kernel import (
     MIN_SPARE,
     ROW_F,
     ROW_I,
+    T_SPARE,
     TREE_OVERFLOW,
     ancestor_at,
     block_ancestor,
@@ -86,20 +93,22 @@ from livematch.core._sweep_kernel import (
     cut_links,
     kept_rows,
     rows_ancestor,
+    time_of,
     tree_append,
     tree_sweep,
     via_base,
 )
 
 __all__ = [
-    "ARENA_FULL", "DIED", "F_COST", "F_LOW", "F_POS", "F_T", "HEAD", "H_CAP_ROWS",
-    "H_CAP_VIAS", "H_HI", "H_LO", "H_M", "H_N", "H_NV", "H_NVIA", "I_PARENT", "I_SEG",
-    "I_SEQ", "I_VIA0", "I_VIAN", "K_PARENT", "K_SEG", "K_SEQ", "K_VIA0", "K_VIAN",
-    "MIN_SPARE", "ROW_F", "ROW_I", "TREE_OVERFLOW", "ancestor_at", "best_row",
-    "best_scored", "block_ancestor", "chain_into", "commit_point", "compact",
-    "compact_append", "compact_in_place", "compact_into", "cut_and_check", "cut_links",
-    "descends_from", "driven_since", "junction_split", "kept_rows", "live_answer",
-    "live_scores", "prune_live", "tree_append", "tree_sweep", "trim", "via_base",
+    "ARENA_FULL", "DIED", "F_COST", "F_LOW", "F_POS", "HEAD", "H_CAP_ROWS", "H_CAP_T",
+    "H_CAP_VIAS", "H_HI", "H_LO", "H_M", "H_N", "H_NV", "H_NVIA", "H_RCAP", "H_T0",
+    "I_PARENT", "I_SEG", "I_SEQ", "I_VIA0", "I_VIAN", "K_PARENT", "K_SEG", "K_SEQ",
+    "K_VIA0", "K_VIAN", "MIN_SPARE", "ROW_F", "ROW_I", "TREE_OVERFLOW", "T_SPARE",
+    "ancestor_at", "best_row", "best_scored", "block_ancestor", "chain_into",
+    "commit_point", "compact", "compact_append", "compact_in_place", "compact_into",
+    "cut_and_check", "cut_links", "descends_from", "driven_since", "junction_split",
+    "kept_rows", "live_answer", "live_scores", "prune_live", "time_of", "tree_append",
+    "tree_sweep", "trim", "via_base"
 ]
 
 _jit = numba.njit(cache=True, error_model="numpy")
@@ -151,6 +160,9 @@ def live_scores(
     hi = ti[H_HI]
     out = np.empty(hi - lo)
     n = fix_xy.shape[0]
+    # the fix times (time_of, written out here: a call into _sweep_kernel would need
+    # its code key, see junction_split)
+    tb = ROW_F * ti[H_RCAP] - ti[H_T0]
     for r in range(lo, hi):
         score = tf[ROW_F * r + F_COST]
         cur = r
@@ -170,7 +182,7 @@ def live_scores(
             py = geo[g, 1] + pos * geo[g, 3]
             i = ti[ROW_I * cur + K_SEQ] - fix_seq0
             j = ti[ROW_I * p + K_SEQ] - fix_seq0
-            dt = tf[ROW_F * cur + F_T] - tf[ROW_F * p + F_T]
+            dt = tf[tb + ti[ROW_I * cur + K_SEQ]] - tf[tb + ti[ROW_I * p + K_SEQ]]
             if j >= 0 and i < n and 0.0 < dt <= max_dt:
                 ex = cx - fix_xy[i, 0]
                 ey = cy - fix_xy[i, 1]
@@ -221,7 +233,7 @@ def driven_since(ti: np.ndarray, tf: np.ndarray, slen: np.ndarray, node: int,
     sweep charged for it: along one segment, or out of the parent's segment, through the
     vias, into the child's.
     """
-    vb = HEAD + ROW_I * (tf.shape[0] // ROW_F)
+    vb = HEAD + ROW_I * ti[H_RCAP]  # via_base (see live_scores)
     total = 0.0
     cur = node
     while cur != anc:
@@ -337,7 +349,7 @@ def _keyed_junction_split(sweep_key: int) -> Callable[..., int]:
         split = rows_ancestor(ti, walk, k, -1)
         if split < 0 or split == best or _still_on(ti, best, split):
             return -1
-        vb = via_base(ti, tf)
+        vb = via_base(ti)
         first = -1
         for j in range(k):
             n = close[j]
