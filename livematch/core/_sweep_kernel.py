@@ -495,9 +495,8 @@ def sweep_kernel(
 I_SEG = 0
 I_SEQ = 1
 I_PARENT = 2
-I_VIA0 = 3
-I_VIAN = 4
-ROW_I = 5
+I_VIAE = 3  # where the row's vias end: they start where the row before's end (0 at row 0)
+ROW_I = 4
 F_LOW = 0
 F_POS = 1
 F_COST = 2
@@ -522,8 +521,7 @@ HEAD = 11
 K_SEG = HEAD + I_SEG
 K_SEQ = HEAD + I_SEQ
 K_PARENT = HEAD + I_PARENT
-K_VIA0 = HEAD + I_VIA0
-K_VIAN = HEAD + I_VIAN
+K_VIAE = HEAD + I_VIAE
 # tree_sweep's answers other than a commit point (which is >= -1)
 DIED = -2  # the window died: the tree is unchanged
 ARENA_FULL = -3  # the tree's arrays are too small for the new rows (see tree_sweep)
@@ -686,7 +684,7 @@ def kept_rows(ti: np.ndarray) -> tuple[int, int, int]:
     for r in range(n - 1, -1, -1):
         if keep[r]:
             rows += 1
-            vias += ti[ROW_I * r + K_VIAN]
+            vias += ti[ROW_I * r + K_VIAE] - (ti[ROW_I * r - ROW_I + K_VIAE] if r else 0)
             first = r
             if last < 0:
                 last = r
@@ -757,7 +755,10 @@ def compact_into(ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarra
     nv = 0
     first = -1
     last = -1
+    end_before = 0  # where the vias of row r - 1 end (read before row r - 1 is rewritten)
     for r in range(n):
+        v0 = end_before
+        end_before = ti[ROW_I * r + K_VIAE]
         if not keep[r]:
             continue
         if first < 0:
@@ -767,15 +768,13 @@ def compact_into(ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarra
         ri = ROW_I * r
         qi = ROW_I * q
         p = ti[ri + K_PARENT]
-        v0 = ti[ri + K_VIA0]
-        vn = ti[ri + K_VIAN]
+        vn = end_before - v0
         for j in range(vn):
             ti2[vb2 + nv + j] = ti[vb + v0 + j]
         ti2[qi + K_SEG] = ti[ri + K_SEG]
         ti2[qi + K_SEQ] = ti[ri + K_SEQ]
         ti2[qi + K_PARENT] = new_index[p] if p >= 0 else -1
-        ti2[qi + K_VIA0] = nv
-        ti2[qi + K_VIAN] = vn
+        ti2[qi + K_VIAE] = nv + vn
         for c in range(ROW_F):
             tf2[ROW_F * q + c] = tf[ROW_F * r + c]
         nv += vn
@@ -831,8 +830,8 @@ def tree_append(
         ti[ri + K_SEG] = ibuf[oi]
         ti[ri + K_SEQ] = seq
         ti[ri + K_PARENT] = lo + ibuf[oi + 1]
-        ti[ri + K_VIA0] = nv + ibuf[oi + 2]
-        ti[ri + K_VIAN] = ibuf[oi + 3]
+        # the kernel writes each output row's vias after the row before's
+        ti[ri + K_VIAE] = nv + ibuf[oi + 2] + ibuf[oi + 3]
         # an output row is low, pos, x, y, cost: the matched point is not kept
         tf[rf + F_LOW] = fbuf[of]
         tf[rf + F_POS] = fbuf[of + 1]

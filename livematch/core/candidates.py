@@ -58,6 +58,7 @@ from livematch.core._tree_kernel import (
     H_RCAP,
     H_T0,
     HEAD,
+    I_VIAE,
     K_PARENT,
     K_SEG,
     K_SEQ,
@@ -153,7 +154,7 @@ class CandidateTree:
     def _newest_seq(self) -> int:
         """The fix of the last row in use (the newest the tree has a time for), or -1."""
         n = self.ti.item(H_N)
-        return self.ti.item(HEAD + ROW_I * (n - 1) + 1) if n else -1
+        return self.ti.item(ROW_I * (n - 1) + K_SEQ) if n else -1
 
     # ----------------------------------------------------------------- growth
     def compact(self, spare_rows: int = 0, spare_vias: int = 0, spare_t: int = 0) -> None:
@@ -313,13 +314,13 @@ class CandidateTree:
             for node in new.values():
                 via = node.via
                 parent = -1 if node.parent is None else rows[id(node.parent)] + shift
-                ints += (node.seg, node.seq, parent, nv, len(via))
-                # the matched point is not kept: it is node.x, node.y recomputed (see node);
-                # the time is the fix's (above)
-                floats += (node.low, node.pos, node.cost)
                 if via:
                     flat.extend(via)
                     nv += len(via)
+                ints += (node.seg, node.seq, parent, nv)
+                # the matched point is not kept: it is node.x, node.y recomputed (see node);
+                # the time is the fix's (above)
+                floats += (node.low, node.pos, node.cost)
             ti[HEAD + ROW_I * lo:HEAD + ROW_I * (lo + k)] = ints
             self.tf[ROW_F * lo:ROW_F * (lo + k)] = floats
             if flat:
@@ -361,13 +362,18 @@ class CandidateTree:
 
         The matched point is recomputed on ``view``'s geometry (:meth:`point`).
         """
+        ti = self.ti
+        tf = self.tf
         i = HEAD + ROW_I * row
-        seg, seq, _, v0, vn = self.ti[i:i + ROW_I].tolist()
-        low, pos, cost = self.tf[ROW_F * row:ROW_F * row + ROW_F].tolist()
-        t = self.time_of(seq)
-        if vn:
-            vb = self._via_base() + v0
-            via = tuple(self.ti[vb:vb + vn].tolist())
+        seg, seq, _, v1 = ti[i:i + ROW_I].tolist()
+        low, pos, cost = tf[ROW_F * row:ROW_F * row + ROW_F].tolist()
+        cap = ti.item(H_RCAP)
+        t = tf.item(ROW_F * cap + seq - ti.item(H_T0))
+        # the row's vias run from where the row before's end (most rows have none)
+        v0 = ti.item(i - ROW_I + I_VIAE) if v1 and row else 0
+        if v1 > v0:
+            vb = HEAD + ROW_I * cap
+            via = tuple(ti[vb + v0:vb + v1].tolist())
         else:
             via = ()
         a = view.sf[seg]
@@ -404,8 +410,9 @@ class CandidateTree:
     def row_ints(self, row: int) -> tuple[int, int, int, int, int]:
         """Row ``row``'s ``seg, seq, parent, via_start, via_len``."""
         i = HEAD + ROW_I * row
-        seg, seq, parent, v0, vn = self.ti[i:i + ROW_I].tolist()
-        return seg, seq, parent, v0, vn
+        seg, seq, parent, v1 = self.ti[i:i + ROW_I].tolist()
+        v0 = self.ti.item(i - ROW_I + I_VIAE) if row else 0
+        return seg, seq, parent, v0, v1 - v0
 
     def via(self, j: int) -> int:
         """The ``j``-th via of the tree (a row's are ``via_len`` from its ``via_start``)."""

@@ -93,7 +93,7 @@ from livematch.core.view import NetworkView, view_of
 from livematch.errors import BadStateError
 
 STATE_FORMAT = b"LMT5"
-STATE_FORMAT_V4 = b"LMT4"  # as LMT5 with the fix's time in every row; still read
+STATE_FORMAT_V4 = b"LMT4"  # as LMT5 with the fix time, via start and length in every row; read
 STATE_FORMAT_V3 = b"LMT3"  # as LMT4 without the flags byte, zlib-compressed; still read
 STATE_FORMAT_V2 = b"LMT2"  # as LMT3 with the matched point in every row; still read
 STATE_FORMAT_V1 = b"LMT1"  # JSON rows of linked nodes; still read
@@ -103,6 +103,8 @@ _READABLE = (STATE_FORMAT, STATE_FORMAT_V4, STATE_FORMAT_V3, STATE_FORMAT_V2,
 # pos, cost, t), and the ones LMT3 and LMT4 keep of LMT2's
 _V2_ROW_F = 6
 _V4_ROW_F = 4
+# int32 columns of a tree row up to LMT4 (seg, seq, parent, via_start, via_len)
+_V4_ROW_I = 5
 _V2_KEPT = [0, 1, 4, 5]
 # Tracker.said: the fields of the newest live answer after its vehicle (t, segment,
 # offset_m, x, y, eps_m, window_fixes, window_s) packed into one bytes object (97 bytes;
@@ -1890,12 +1892,14 @@ def _unpack_levels(levels: list[Level], rows: list[list[float | int]], rest: mem
     """Fill ``levels`` from header ``rows`` and the arrays in ``rest`` from ``at`` on.
 
     ``old``: 0 for ``LMT5`` (rows' ints, floats, vias, then one time per fix); 1 for
-    ``LMT4`` and ``LMT3`` (each row with its fix's time, no list of times); 2 for
-    ``LMT2`` (each row also with its matched point, dropped here). Returns where the
+    ``LMT4`` and ``LMT3`` (each row with its fix's time, no list of times, and its vias'
+    start and length where LMT5 keeps their end); 2 for ``LMT2`` (each row also with
+    its matched point, dropped here). Returns where the
     next arrays start. The trees get arrays of their own (copies: ``rest`` may be
     read-only), none for an empty part (:meth:`CandidateTree.unpacked`).
     """
     row_f = ROW_F if not old else _V4_ROW_F if old == 1 else _V2_ROW_F
+    row_i = _V4_ROW_I if old else ROW_I
     end = len(rest)
     for lv, head in zip(levels, rows, strict=True):
         _, tree_seq, cert_seq, cert_t, trim_seq, n_rows, n_vias, live = head[:8]
@@ -1903,14 +1907,14 @@ def _unpack_levels(levels: list[Level], rows: list[list[float | int]], rest: mem
         lv.tree_seq, lv.cert_seq, lv.cert_t = int(tree_seq), int(cert_seq), float(cert_t)
         lv.trim_seq = int(trim_seq)
         nr, nv = int(n_rows), int(n_vias)
-        at_f = at + nr * ROW_I * 4
+        at_f = at + nr * row_i * 4
         at_v = at_f + nr * row_f * 8
         at_t = at_v + nv * 4
         nxt = at_t + n_times * 8
         if nr < 0 or nv < 0 or n_times < 0 or nxt > end:
             raise BadStateError("corrupt tracker state: candidate tree cut short")
         if nr:
-            ti = np.frombuffer(rest, np.int32, nr * ROW_I, at)
+            ti = np.frombuffer(rest, np.int32, nr * row_i, at)
             tf = np.frombuffer(rest, np.float64, nr * row_f, at_f)
             tv = np.frombuffer(rest, np.int32, nv, at_v)
             if not old:
@@ -1920,6 +1924,12 @@ def _unpack_levels(levels: list[Level], rows: list[list[float | int]], rest: mem
                 tf = tf.reshape(nr, row_f)
                 if old == 2:
                     tf = tf[:, _V2_KEPT]
+                # each row's vias ended where it says (start + length): rows were
+                # written tight, each row's vias after the row before's
+                ints = ti.reshape(nr, row_i)
+                ti = np.empty((nr, ROW_I), np.int32)
+                ti[:, :3] = ints[:, :3]
+                ti[:, 3] = ints[:, 3] + ints[:, 4]
                 lv.tree = CandidateTree.unpacked_timed(ti, tf, tv, int(live))
         else:
             lv.tree = CandidateTree()
