@@ -628,7 +628,9 @@ def tree_sweep(
             ti[H_NVIA] = n_via
             ti[H_CAP_ROWS] = cap
             ti[H_CAP_VIAS] = kept_v + max(kept_v // 4, max(n_via, spare // 2))
-            ti[H_CAP_T] = span_t + max(span_t // 4, T_SPARE)
+            # (as much room for fix times as for rows: a step adds a fix and a row at
+            # least, so the times do not fill up first)
+            ti[H_CAP_T] = span_t + max(span_t // 4, spare)
             return ARENA_FULL, lo, hi
         compact_in_place(ti, tf)
     tree_append(fbuf, ibuf, ti, tf, seq, t, m, n_via)
@@ -702,15 +704,15 @@ def compact(
 ) -> tuple[np.ndarray, np.ndarray]:
     """Keep only the live block and its ancestors, in new arrays with room to spare.
 
-    The room left is at least ``spare_rows`` rows (``spare_vias`` vias, ``spare_t`` fix
-    times after the newest kept) and a quarter of those kept, so compactions get rarer
-    as the tree grows (amortised O(1) per row). Returns the new ``(ti, tf)``; the live
-    block keeps its order and length.
+    The room left is at least ``spare_rows`` rows (``spare_vias`` vias; fix times: as
+    many as rows, and ``spare_t`` after the newest kept) and a quarter of those kept,
+    so compactions get rarer as the tree grows (amortised O(1) per row). Returns the
+    new ``(ti, tf)``; the live block keeps its order and length.
     """
     rows, vias, span = kept_rows(ti)
     cap = rows + max(rows // 4, spare_rows)
     ti2 = np.empty(HEAD + ROW_I * cap + vias + max(vias // 4, spare_vias), np.int32)
-    tf2 = np.empty(ROW_F * cap + span + max(span // 4, spare_t, T_SPARE))
+    tf2 = np.empty(ROW_F * cap + span + max(span // 4, spare_t, spare_rows, T_SPARE))
     compact_into(ti, tf, ti2, tf2, cap)
     return ti2, tf2
 

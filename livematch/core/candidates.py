@@ -164,7 +164,7 @@ class CandidateTree:
         ``_MIN_SPARE``, and a quarter of the rows kept (vias: ``spare_vias`` and one per
         two rows of room): a step or two before the next compaction. Tight on purpose:
         a service holds many idle trees, and a compaction costs about a microsecond.
-        Fix times: room for ``spare_t`` (at least ``_tree_kernel.T_SPARE``) after the newest kept.
+        Fix times: as many as rows, and room for ``spare_t`` after the newest kept.
 
         The new arrays come from compiled code (one call; two calls and numpy's arrays,
         as :meth:`shrink` does, cost about 2 µs more a compaction, and a 1 Hz vehicle
@@ -259,14 +259,18 @@ class CandidateTree:
         rows: dict[int, int] = {}
         parents: dict[int, Node] = {}
         ti = self.ti
+        tf = self.tf
+        cap = ti.item(H_RCAP)
+        tb = ROW_F * cap - ti.item(H_T0)
+        make = self._node
         for r in range(self.lo, self.hi):
             p = ti.item(ROW_I * r + K_PARENT)
             parent = None
             if p >= 0:
                 parent = parents.get(p)
                 if parent is None:
-                    parent = parents[p] = self.node(view, p)
-            node = self.node(view, r, parent)
+                    parent = parents[p] = make(view, p, None, ti, tf, cap, tb)
+            node = make(view, r, parent, ti, tf, cap, tb)
             nodes[node.seg] = node
             rows[id(node)] = r
         return nodes, rows
@@ -363,12 +367,19 @@ class CandidateTree:
         The matched point is recomputed on ``view``'s geometry (:meth:`point`).
         """
         ti = self.ti
-        tf = self.tf
+        cap = ti.item(H_RCAP)
+        return self._node(view, row, parent, ti, self.tf, cap, ROW_F * cap - ti.item(H_T0))
+
+    @staticmethod
+    def _node(view: NetworkView, row: int, parent: Node | None, ti: npt.NDArray[np.int32],
+              tf: npt.NDArray[np.float64], cap: int, tb: int) -> Node:
+        """:meth:`node` with the arrays, their row room and ``tb`` (fix seq's time at ``tb + seq``).
+
+        (A chain of nodes is built per commit: the header is read once for all of them.)
+        """
         i = HEAD + ROW_I * row
         seg, seq, _, v1 = ti[i:i + ROW_I].tolist()
         low, pos, cost = tf[ROW_F * row:ROW_F * row + ROW_F].tolist()
-        cap = ti.item(H_RCAP)
-        t = tf.item(ROW_F * cap + seq - ti.item(H_T0))
         # the row's vias run from where the row before's end (most rows have none)
         v0 = ti.item(i - ROW_I + I_VIAE) if v1 and row else 0
         if v1 > v0:
@@ -381,8 +392,8 @@ class CandidateTree:
         ax = view.vx[a]
         ay = view.vy[a]
         # the matched point, as in point() (inlined: a chain of nodes is built per commit)
-        return Node(seg, seq, t, pos, ax + pos * (view.vx[b] - ax), ay + pos * (view.vy[b] - ay),
-                    parent, via, cost, low)
+        return Node(seg, seq, tf.item(tb + seq), pos, ax + pos * (view.vx[b] - ax),
+                    ay + pos * (view.vy[b] - ay), parent, via, cost, low)
 
     def point(self, view: NetworkView, row: int) -> tuple[int, float, float, float]:
         """Row ``row``'s segment, position and matched point ``(seg, pos, x, y)``.
@@ -511,11 +522,16 @@ class CandidateTree:
             arrays.chain = np.empty(2 * -length, dtype=np.int64)
             length = _t.chain_into(self.ti, top, min_seq, arrays.chain)
         rows = arrays.chain[:length + 1].tolist()
-        before = self.node(view, rows[-1]) if rows[-1] >= 0 else None
+        ti = self.ti
+        tf = self.tf
+        cap = ti.item(H_RCAP)
+        tb = ROW_F * cap - ti.item(H_T0)
+        node = self._node
+        before = node(view, rows[-1], None, ti, tf, cap, tb) if rows[-1] >= 0 else None
         chain: list[Node] = []
         parent = before
         for r in rows[:-1]:
-            parent = self.node(view, r, parent)
+            parent = node(view, r, parent, ti, tf, cap, tb)
             chain.append(parent)
         return chain, before
 
