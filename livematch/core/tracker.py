@@ -106,9 +106,11 @@ _V4_ROW_F = 4
 # int32 columns of a tree row up to LMT4 (seg, seq, parent, via_start, via_len)
 _V4_ROW_I = 5
 _V2_KEPT = [0, 1, 4, 5]
-# Tracker.said: the fields of the newest live answer after its vehicle (t, segment,
-# offset_m, x, y, eps_m, window_fixes, window_s) packed into one bytes object (97 bytes;
-# as an Assignment with its own floats and segment number about 0.28 KB)
+# Tracker.said of a restored tracker: the fields of the newest live answer after its
+# vehicle (t, segment, offset_m, x, y, eps_m, window_fixes, window_s) packed into one bytes
+# object (97 bytes; as an Assignment with its own floats and segment number about 0.28 KB;
+# a driven tracker keeps the Assignment it made for the fix: packing it every fix cost
+# more than the memory is worth while the vehicle is moving)
 _SAID = struct.Struct("<dqddddqd")
 JUMP_TRUST_AFTER = 3
 # A road vehicle changes speed by at most about 3 m/s per second (ordinary braking and
@@ -290,9 +292,9 @@ class Tracker:
         # with reverse_turns: the direction (radians) of the step into the last accepted
         # fix when it was at least REVERSE_MIN_M long, else None (Tracker._turned_round)
         self.step_dir: float | None = None
-        # with hold_filtered: the newest live answer, repeated for a filtered fix (its
-        # fields after the vehicle, packed: _SAID)
-        self.said: bytes | None = None
+        # with hold_filtered: the newest live answer, repeated for a filtered fix (after
+        # a restore its fields after the vehicle, packed: _SAID)
+        self.said: Assignment | bytes | None = None
         # what _held_point found (held point and first fix -> (fix asked at, all within
         # eps)); a cache, not serialised, dropped when the vehicle does not stand
         self._held: dict[tuple[int, float, float, float], tuple[int, bool]] | None = None
@@ -399,9 +401,11 @@ class Tracker:
         fix as refused. The final answer of such a fix is unchanged
         (:meth:`_fill_skipped`).
         """
-        if self.said is None:
+        said = self.said
+        if said is None:
             return
-        said_t, seg, offset_m, x, y, eps_m, window_fixes, window_s = _SAID.unpack(self.said)
+        said_t, seg, offset_m, x, y, eps_m, window_fixes, window_s = (
+            _SAID.unpack(said) if isinstance(said, bytes) else _said_fields(said))
         if not 0.0 < t - said_t <= self.settings.gap_s:
             return
         events.append(HeldAssignment(self.vehicle, t, seg, offset_m, x, y, eps_m, window_fixes,
@@ -485,8 +489,7 @@ class Tracker:
             )
             events.append(said)
             if s.hold_filtered:
-                self.said = _SAID.pack(fix.t, seg, said.offset_m, x, y, deciding.eps,
-                                       said.window_fixes, said.window_s)
+                self.said = said
         self._settle(seq, fix.t, dt, salvage, events, hold_newest=before is not None,
                      tops=tops, stood=stood)
         if prev is not None and fix.t - prev[0] >= SPARSE_S:
@@ -1699,7 +1702,9 @@ class Tracker:
             state["step_dir"] = self.step_dir
         if self.said is not None:  # only with hold_filtered
             # t, segment, offset_m, x, y, eps_m, window_fixes, window_s
-            state["said"] = list(_SAID.unpack(self.said))
+            said = self.said
+            state["said"] = list(_SAID.unpack(said) if isinstance(said, bytes)
+                                 else _said_fields(said))
         header = json.dumps(state, separators=(",", ":")).encode()
         body = b"".join((len(header).to_bytes(4, "little"), header, *arrays))
         if compress:
@@ -1804,6 +1809,11 @@ class Tracker:
             tracker.said = _SAID.pack(*said)
         _share_numbers(tracker)
         return tracker
+
+
+def _said_fields(a: Assignment) -> tuple[float, int, float, float, float, float, int, float]:
+    """The fields of ``a`` after its vehicle, as :data:`_SAID` packs them."""
+    return (a.t, a.segment, a.offset_m, a.x, a.y, a.eps_m, a.window_fixes, a.window_s)
 
 
 def _share_numbers(tracker: Tracker) -> None:
