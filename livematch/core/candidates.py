@@ -624,10 +624,8 @@ class CandidateTree:
             buf[H_T0] = t0
             buf[H_RCAP] = rows
             tree.ti = buf
-            # numpy's own flat array (a reshaped copy would keep its 2-d base alive)
-            tree.tf = np.empty(ROW_F * rows + len(times))
-            tree.tf[:ROW_F * rows] = tf if tf.ndim == 1 else tf.reshape(-1)
-            tree.tf[ROW_F * rows:] = times
+            # numpy's own flat array, in one call (a restore makes three per tracker)
+            tree.tf = np.concatenate((tf if tf.ndim == 1 else tf.reshape(-1), times))
         return tree
 
     @classmethod
