@@ -313,24 +313,41 @@ def test_compact_in_place_equals_compact_into_new_arrays() -> None:
             if tree.n == 0:
                 continue
             n_before, lo_before, live = tree.n, tree.lo, len(tree)
-            ti, tf = _t.compact(tree.ti, tree.tf, 0, 0)
+            ti, tf = _t.compact(tree.ti, tree.tf, 0, 0, 0)
             n, nv, lo = (int(v) for v in ti[[_t.H_N, _t.H_NV, _t.H_LO]])
             assert int(ti[_t.H_HI]) - lo == live
-            vb = _t.via_base(ti, tf)
+            vb = _t.via_base(ti)
+            tb = _t.ROW_F * int(ti[_t.H_RCAP])
             ti2, tf2 = tree.ti.copy(), tree.tf.copy()
             compact_in_place(ti2, tf2)
-            vb2 = _t.via_base(ti2, tf2)
-            assert ti2[:_t.HEAD].tolist() == ti[:_t.HEAD].tolist()
-            assert ti2[:_t.HEAD + _t.ROW_I * n].tolist() == ti[:_t.HEAD + _t.ROW_I * n].tolist()
+            vb2 = _t.via_base(ti2)
+            tb2 = _t.ROW_F * int(ti2[_t.H_RCAP])
+            # the same header but for the room (H_RCAP: the in-place arrays keep theirs)
+            head = [c for c in range(_t.HEAD) if c != _t.H_RCAP]
+            assert ti2[head].tolist() == ti[head].tolist()
+            assert ti2[:_t.HEAD + _t.ROW_I * n].tolist()[_t.HEAD:] == \
+                ti[:_t.HEAD + _t.ROW_I * n].tolist()[_t.HEAD:]
             assert tf2[:_t.ROW_F * n].tobytes() == tf[:_t.ROW_F * n].tobytes()
             assert ti2[vb2:vb2 + nv].tolist() == ti[vb:vb + nv].tolist()
-            assert kept_rows(tree.ti) == (n, nv)
+            rows, vias, times = kept_rows(tree.ti)
+            assert (rows, vias) == (n, nv)
+            # one fix time per fix from the first kept row's to the last's, as they were
+            seqs = ti[_t.K_SEQ:_t.HEAD + _t.ROW_I * n:_t.ROW_I]
+            assert times == int(seqs.max()) - int(seqs.min()) + 1
+            assert int(ti[_t.H_T0]) == int(seqs.min())
+            assert tf2[tb2:tb2 + times].tobytes() == tf[tb:tb + times].tobytes()
+            for r in range(n):
+                assert _t.time_of(ti, tf, r) == tracker.times.get(int(seqs[r]),
+                                                                  _t.time_of(ti, tf, r))
             # into new numpy arrays of exactly that size (CandidateTree.shrink, packed)
             ti3 = np.empty(_t.HEAD + _t.ROW_I * n + nv, np.int32)
-            tf3 = np.empty(_t.ROW_F * n)
-            _t.compact_into(tree.ti, tree.tf, ti3, tf3)
-            assert ti3[:_t.HEAD + _t.ROW_I * n].tobytes() == ti[:_t.HEAD + _t.ROW_I * n].tobytes()
-            assert tf3.tobytes() == tf[:_t.ROW_F * n].tobytes()
+            tf3 = np.empty(_t.ROW_F * n + times)
+            _t.compact_into(tree.ti, tree.tf, ti3, tf3, n)
+            assert ti3[head].tolist() == ti[head].tolist()
+            assert ti3[_t.HEAD:_t.HEAD + _t.ROW_I * n].tobytes() == \
+                ti[_t.HEAD:_t.HEAD + _t.ROW_I * n].tobytes()
+            assert tf3[:_t.ROW_F * n].tobytes() == tf[:_t.ROW_F * n].tobytes()
+            assert tf3[_t.ROW_F * n:].tobytes() == tf[tb:tb + times].tobytes()
             assert ti3[_t.HEAD + _t.ROW_I * n:].tobytes() == ti[vb:vb + nv].tobytes()
             # the tree compacted is unchanged
             assert (tree.n, tree.lo) == (n_before, lo_before)

@@ -1,4 +1,4 @@
-"""The tracker's serialised state (``LMT4``): both encodings, older versions, corruption."""
+"""The tracker's serialised state (``LMT5``): both encodings, older versions, corruption."""
 
 from __future__ import annotations
 
@@ -45,7 +45,7 @@ def test_state_compressed_is_smaller_and_same_content() -> None:
 @pytest.mark.parametrize(("name", "every", "cut"), [
     ("test-osm-bus7-fix120.lmt3", 1, 120), ("test-osm-bus7-10s-fix30.lmt3", 10, 30)])
 def test_state_reads_older_lmt3(name: str, every: int, cut: int) -> None:
-    """An LMT3 checkpoint continues like a run never saved, and is rewritten as LMT4.
+    """An LMT3 checkpoint continues like a run never saved, and is rewritten as LMT5.
 
     tests/data/states/*.lmt3 were written by the LMT3 code (commit fb7def4, its default
     settings, kept in lmt3-settings.json) after ``cut`` fixes of the simulated drive; the
@@ -65,17 +65,51 @@ def test_state_reads_older_lmt3(name: str, every: int, cut: int) -> None:
     assert restored.to_bytes() == straight.to_bytes()
     assert run(restored, fixes[cut:]) == run(straight, fixes[cut:])
     assert restored.to_bytes() == straight.to_bytes()
-    assert restored.to_bytes()[:4] == b"LMT4"
+    assert restored.to_bytes()[:4] == b"LMT5"
 
 
-def test_state_corrupt_lmt4_is_a_bad_state() -> None:
+@pytest.mark.parametrize(("name", "every", "cut"), [
+    ("test-osm-bus7-fix120.lmt4", 1, 120), ("test-osm-bus7-10s-fix30.lmt4", 10, 30)])
+def test_state_reads_older_lmt4(name: str, every: int, cut: int) -> None:
+    """An LMT4 checkpoint (each tree row with its fix's time) continues like a run never
+    saved, and is rewritten as LMT5 (one time per fix).
+
+    tests/data/states/*.lmt4 were written by the LMT4 code (commit d5bf8d6, its default
+    settings, kept in lmt4-settings.json, ``hold_filtered`` on: the states hold an answer
+    to repeat) after ``cut`` fixes of the simulated drive; the 10 s one holds the spike
+    test's copy of the levels.
+    """
+    net, fixes = _test_extract_drive(every)
+    blob = (STATES / name).read_bytes()
+    assert blob[:4] == b"LMT4"
+    then = json.loads((STATES / "lmt4-settings.json").read_text(encoding="utf-8"))
+    settings = MatchSettings(**{**then, "eps_levels": tuple(then["eps_levels"])})
+    straight = Tracker(net, "bus-7", settings)
+    run(straight, fixes[:cut], flush=False)
+    restored = Tracker.from_bytes(net, settings, blob)
+    assert (restored.before is not None) == (every == 10)
+    assert restored.said is not None
+    assert restored.to_bytes() == straight.to_bytes()
+    # the trees give every row the time of its fix, as the fix log has it
+    for tree in [lv.tree for lv in restored.levels] + (
+            [lv.tree for lv in restored.before.levels] if restored.before else []):
+        for row in range(tree.n):
+            seq = tree.seq_of(row)
+            if seq in restored.times:
+                assert tree.time_of(seq) == restored.times[seq]
+    assert run(restored, fixes[cut:]) == run(straight, fixes[cut:])
+    assert restored.to_bytes() == straight.to_bytes()
+    assert restored.to_bytes()[:4] == b"LMT5"
+
+
+def test_state_corrupt_lmt5_is_a_bad_state() -> None:
     """Unknown flags, a cut header, cut arrays or a broken zlib stream: BadStateError."""
     net, fixes = noisy_drive(seed=3)
     tracker = Tracker(net, "v1")
     run(tracker, fixes[:40], flush=False)
     plain, packed = tracker.to_bytes(), tracker.to_bytes(compress=True)
     header = int.from_bytes(plain[5:9], "little")
-    assert len(plain) > 9 + header + 52  # a tree row at least follows the header
+    assert len(plain) > 9 + header + 44  # a tree row at least follows the header
     for bad in (plain[:4] + b"\x07" + plain[5:], plain[:4], plain[:9 + header // 2],
                 plain[:-20], packed[:-20], plain[:4] + b"\x01" + plain[5:]):
         with pytest.raises(BadStateError):

@@ -540,17 +540,16 @@ def sweep_kernel(
 I_SEG = 0
 I_SEQ = 1
 I_PARENT = 2
-I_VIA0 = 3
-I_VIAN = 4
-ROW_I = 5
+I_VIAE = 3  # where the row's vias end: they start where the row before's end (0 at row 0)
+ROW_I = 4
 F_LOW = 0
 F_POS = 1
 F_COST = 2
-F_T = 3
-ROW_F = 4
+ROW_F = 3
 # The header at the head of ``ti``: rows and vias in use, the live block [lo, hi), and
 # (after ARENA_FULL) what the step waiting in the kernel's buffers needs: its rows and
-# vias, and the capacities of the arrays to compact into.
+# vias, and the capacities of the arrays to compact into (rows, vias, fix times); then
+# the sequence number of the tree's first fix time and the rows the arrays have room for.
 H_N = 0
 H_NV = 1
 H_LO = 2
@@ -559,24 +558,33 @@ H_M = 4
 H_NVIA = 5
 H_CAP_ROWS = 6
 H_CAP_VIAS = 7
-HEAD = 8
+H_CAP_T = 8
+H_T0 = 9
+H_RCAP = 10
+HEAD = 11
 # A row's int field ``I_x`` is ``ti[ROW_I * row + K_x]``.
 K_SEG = HEAD + I_SEG
 K_SEQ = HEAD + I_SEQ
 K_PARENT = HEAD + I_PARENT
-K_VIA0 = HEAD + I_VIA0
-K_VIAN = HEAD + I_VIAN
+K_VIAE = HEAD + I_VIAE
 # tree_sweep's answers other than a commit point (which is >= -1)
 DIED = -2  # the window died: the tree is unchanged
 ARENA_FULL = -3  # the tree's arrays are too small for the new rows (see tree_sweep)
 TREE_OVERFLOW = -4  # the kernel's buffers are too small: grow them and call again
 MIN_SPARE = 8  # rows of room a compaction leaves, at least (and twice the live block)
+T_SPARE = 6  # fix times of room a compaction leaves, at least (a fix adds one)
 
 
 @numba.njit(cache=True, error_model="numpy")
-def via_base(ti: np.ndarray, tf: np.ndarray) -> int:
-    """Where the vias start in ``ti``: after the header and the rows ``tf`` has room for."""
-    return HEAD + ROW_I * (tf.shape[0] // ROW_F)
+def via_base(ti: np.ndarray) -> int:
+    """Where the vias start in ``ti``: after the header and the rows the arrays have room for."""
+    return HEAD + ROW_I * ti[H_RCAP]
+
+
+@numba.njit(cache=True, error_model="numpy")
+def time_of(ti: np.ndarray, tf: np.ndarray, row: int) -> float:
+    """The time of row ``row``'s fix (kept once per fix, after the rows' floats in ``tf``)."""
+    return tf[ROW_F * ti[H_RCAP] + ti[ROW_I * row + K_SEQ] - ti[H_T0]]
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -643,19 +651,26 @@ def tree_sweep(
         return TREE_OVERFLOW, lo, hi
     if m == 0:
         return DIED, lo, hi
-    cap_rows = tf.shape[0] // ROW_F
+    cap_rows = ti[H_RCAP]
     cap_vias = ti.shape[0] - HEAD - ROW_I * cap_rows
-    if n + m > cap_rows or nv + n_via > cap_vias:
-        kept, kept_v = kept_rows(ti)
+    cap_t = tf.shape[0] - ROW_F * cap_rows
+    if n + m > cap_rows or nv + n_via > cap_vias or seq - ti[H_T0] >= cap_t:
+        kept, kept_v, span = kept_rows(ti)
+        # the fix times kept run from the first kept row's fix to the live block's (the
+        # last kept row), and the new rows' fix comes after it
+        span_t = seq - (ti[ROW_I * (hi - 1) + K_SEQ] - span + 1) + 1
         # the capacities CandidateTree.compact gives (room: twice the live block + 8)
         spare = max(m, 2 * k + MIN_SPARE)
         cap = kept + max(kept // 4, spare)
-        if (kept + m > cap_rows or kept_v + n_via > cap_vias
+        if (kept + m > cap_rows or kept_v + n_via > cap_vias or span_t > cap_t
                 or 2 * cap_rows > 3 * (kept + max(kept // 4, 2 * k + MIN_SPARE))):
             ti[H_M] = m
             ti[H_NVIA] = n_via
             ti[H_CAP_ROWS] = cap
             ti[H_CAP_VIAS] = kept_v + max(kept_v // 4, max(n_via, spare // 2))
+            # (as much room for fix times as for rows: a step adds a fix and a row at
+            # least, so the times do not fill up first)
+            ti[H_CAP_T] = span_t + max(span_t // 4, spare)
             return ARENA_FULL, lo, hi
         compact_in_place(ti, tf)
     tree_append(fbuf, ibuf, ti, tf, seq, t, m, n_via)
@@ -695,38 +710,50 @@ def kept_mask(ti: np.ndarray) -> np.ndarray:
 
 
 @numba.njit(cache=True, error_model="numpy")
-def kept_rows(ti: np.ndarray) -> tuple[int, int]:
-    """Rows and vias a compaction keeps: the live block and its ancestors."""
+def kept_rows(ti: np.ndarray) -> tuple[int, int, int]:
+    """Rows, vias and fix times a compaction keeps: the live block and its ancestors.
+
+    The fix times: one per fix from the first kept row's to the last's (rows are in fix
+    order), 0 when no row is kept.
+    """
     n = ti[H_N]
     keep = np.zeros(n, np.bool_)
     keep[ti[H_LO]:ti[H_HI]] = True
     rows = 0
     vias = 0
+    first = -1
+    last = -1
     for r in range(n - 1, -1, -1):
         if keep[r]:
             rows += 1
-            vias += ti[ROW_I * r + K_VIAN]
+            vias += ti[ROW_I * r + K_VIAE] - (ti[ROW_I * r - ROW_I + K_VIAE] if r else 0)
+            first = r
+            if last < 0:
+                last = r
             p = ti[ROW_I * r + K_PARENT]
             if p >= 0:
                 keep[p] = True
-    return rows, vias
+    if first < 0:
+        return 0, 0, 0
+    return rows, vias, ti[ROW_I * last + K_SEQ] - ti[ROW_I * first + K_SEQ] + 1
 
 
 @numba.njit(cache=True, error_model="numpy")
 def compact(
-    ti: np.ndarray, tf: np.ndarray, spare_rows: int, spare_vias: int,
+    ti: np.ndarray, tf: np.ndarray, spare_rows: int, spare_vias: int, spare_t: int,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Keep only the live block and its ancestors, in new arrays with room to spare.
 
-    The room left is at least ``spare_rows`` rows (``spare_vias`` vias) and a quarter of
-    those kept, so compactions get rarer as the tree grows (amortised O(1) per row).
-    Returns the new ``(ti, tf)``; the live block keeps its order and length.
+    The room left is at least ``spare_rows`` rows (``spare_vias`` vias; fix times: as
+    many as rows, and ``spare_t`` after the newest kept) and a quarter of those kept,
+    so compactions get rarer as the tree grows (amortised O(1) per row). Returns the
+    new ``(ti, tf)``; the live block keeps its order and length.
     """
-    rows, vias = kept_rows(ti)
+    rows, vias, span = kept_rows(ti)
     cap = rows + max(rows // 4, spare_rows)
     ti2 = np.empty(HEAD + ROW_I * cap + vias + max(vias // 4, spare_vias), np.int32)
-    tf2 = np.empty(ROW_F * cap)
-    compact_into(ti, tf, ti2, tf2)
+    tf2 = np.empty(ROW_F * cap + span + max(span // 4, spare_t, spare_rows, T_SPARE))
+    compact_into(ti, tf, ti2, tf2, cap)
     return ti2, tf2
 
 
@@ -739,55 +766,73 @@ def compact_in_place(ti: np.ndarray, tf: np.ndarray) -> None:
     either way holds the same rows. Safe in place: a row only ever moves down (its new
     index is at most its old one, and so is its vias' start).
     """
-    compact_into(ti, tf, ti, tf)
+    compact_into(ti, tf, ti, tf, ti[H_RCAP])
 
 
 @numba.njit(cache=True, error_model="numpy")
-def compact_into(ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarray) -> None:
+def compact_into(ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarray,
+                 cap2: int) -> None:
     """:func:`compact_in_place`, writing into the arrays ``ti2``, ``tf2`` (header included).
 
-    They must hold at least the rows and vias :func:`kept_rows` counts. The caller
+    ``cap2``: the rows ``ti2``, ``tf2`` have room for (the rest of ``ti2`` is vias, of
+    ``tf2`` fix times). They must hold at least the rows, vias and fix times
+    :func:`kept_rows` counts. The caller
     allocates them with numpy: an array numba allocates and returns costs about 130
     bytes more to keep (its memory-info object) and more time to hand back than numpy's.
     :func:`compact_in_place` passes its own arrays as the targets (safe: a row only ever
-    moves down).
+    moves down, and so does a fix time).
     """
     n = ti[H_N]
     lo = ti[H_LO]
     hi = ti[H_HI]
+    t0 = ti[H_T0]
+    tb = ROW_F * ti[H_RCAP]
     keep = kept_mask(ti)
     new_index = np.full(n, -1, np.int64)
-    vb = via_base(ti, tf)
-    vb2 = via_base(ti2, tf2)
+    vb = via_base(ti)
+    ti2[H_RCAP] = cap2
+    vb2 = via_base(ti2)
+    tb2 = ROW_F * cap2
     q = 0
     nv = 0
+    first = -1
+    last = -1
+    end_before = 0  # where the vias of row r - 1 end (read before row r - 1 is rewritten)
     for r in range(n):
+        v0 = end_before
+        end_before = ti[ROW_I * r + K_VIAE]
         if not keep[r]:
             continue
+        if first < 0:
+            first = ti[ROW_I * r + K_SEQ]
+        last = ti[ROW_I * r + K_SEQ]
         new_index[r] = q
         ri = ROW_I * r
         qi = ROW_I * q
         p = ti[ri + K_PARENT]
-        v0 = ti[ri + K_VIA0]
-        vn = ti[ri + K_VIAN]
+        vn = end_before - v0
         for j in range(vn):
             ti2[vb2 + nv + j] = ti[vb + v0 + j]
         ti2[qi + K_SEG] = ti[ri + K_SEG]
         ti2[qi + K_SEQ] = ti[ri + K_SEQ]
         ti2[qi + K_PARENT] = new_index[p] if p >= 0 else -1
-        ti2[qi + K_VIA0] = nv
-        ti2[qi + K_VIAN] = vn
+        ti2[qi + K_VIAE] = nv + vn
         for c in range(ROW_F):
             tf2[ROW_F * q + c] = tf[ROW_F * r + c]
         nv += vn
         q += 1
+    # the fix times of the kept rows' fixes, from the first's on (moving down only)
+    if first >= 0:
+        for s in range(first, last + 1):
+            tf2[tb2 + s - first] = tf[tb + s - t0]
     new_lo = new_index[lo] if hi > lo else q
     ti2[H_N] = q
     ti2[H_NV] = nv
     ti2[H_LO] = new_lo
     ti2[H_HI] = new_lo + (hi - lo)
-    for c in range(H_M, HEAD):
+    for c in range(H_M, H_CAP_T + 1):
         ti2[c] = 0
+    ti2[H_T0] = first if first >= 0 else 0
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -804,7 +849,18 @@ def tree_append(
     n = ti[H_N]
     nv = ti[H_NV]
     lo = ti[H_LO]
-    vb = via_base(ti, tf)
+    vb = via_base(ti)
+    # the fix's time, once for all its rows (gaps in the run of fixes, if any, NaN)
+    tb = ROW_F * ti[H_RCAP]
+    if n == 0:
+        ti[H_T0] = seq
+        have = 0
+    else:
+        have = ti[ROW_I * (n - 1) + K_SEQ] - ti[H_T0] + 1
+    at = seq - ti[H_T0]
+    for j in range(have, at):
+        tf[tb + j] = np.nan
+    tf[tb + at] = t
     _, _, out_f0, _, out_i0, _ = layout(ibuf[0], ibuf[1], ibuf[2], ibuf[3], ibuf[4],
                                            ibuf[5])
     for j in range(m):
@@ -816,13 +872,12 @@ def tree_append(
         ti[ri + K_SEG] = ibuf[oi]
         ti[ri + K_SEQ] = seq
         ti[ri + K_PARENT] = lo + ibuf[oi + 1]
-        ti[ri + K_VIA0] = nv + ibuf[oi + 2]
-        ti[ri + K_VIAN] = ibuf[oi + 3]
+        # the kernel writes each output row's vias after the row before's
+        ti[ri + K_VIAE] = nv + ibuf[oi + 2] + ibuf[oi + 3]
         # an output row is low, pos, x, y, cost: the matched point is not kept
         tf[rf + F_LOW] = fbuf[of]
         tf[rf + F_POS] = fbuf[of + 1]
         tf[rf + F_COST] = fbuf[of + 4]
-        tf[rf + F_T] = t
     ob = out_i0 + m * OUT_I_STRIDE
     for j in range(n_via):
         ti[vb + nv + j] = ibuf[ob + j]
@@ -847,7 +902,7 @@ def compact_append(
     """
     m = ti[H_M]
     n_via = ti[H_NVIA]
-    compact_into(ti, tf, ti2, tf2)
+    compact_into(ti, tf, ti2, tf2, ti[H_CAP_ROWS])
     tree_append(fbuf, ibuf, ti2, tf2, seq, t, m, n_via)
     return commit_point(ti2, next_commit, newest) if newest >= 0 else -1
 

@@ -5,18 +5,23 @@ two flat arrays, rows in topological order (a parent's row always precedes its
 children's):
 
 ``ti`` (int32): a header of ``HEAD`` values (``H_N`` rows in use, ``H_NV`` vias in use,
-    the live block ``[H_LO, H_HI)``, and four slots a step that found the arrays full
-    leaves its sizes in), then room for ``len(tf) // ROW_F`` rows of ``ROW_I`` ints
-    ``seg, seq, parent, via_start, via_len`` (field ``I_x`` of row r at
-    ``ROW_I * r + K_x``; ``parent`` -1 for a root), then the vias, one after another,
-    from :func:`via_base` on (a row's via is ``via_len`` of them from ``via_start``).
-``tf`` (float64): per row ``ROW_F`` floats ``low, pos, cost, t`` (field ``F_x`` of row r
-    at ``ROW_F * r + F_x``). The matched point (x, y) of a row is not stored: it is
+    the live block ``[H_LO, H_HI)``, five slots a step that found the arrays full
+    leaves its sizes in, ``H_T0`` the sequence number of the first fix time kept and
+    ``H_RCAP`` the rows the arrays have room for), then room for ``H_RCAP`` rows of
+    ``ROW_I`` ints ``seg, seq, parent, via_end`` (field ``I_x`` of row r at
+    ``ROW_I * r + K_x``; ``parent`` -1 for a root), then the vias, one after another
+    in row order, from :func:`via_base` on (row r's vias run from row r - 1's
+    ``via_end``, 0 for row 0, to its own: most rows have none, and one int says so).
+``tf`` (float64): per row ``ROW_F`` floats ``low, pos, cost`` (field ``F_x`` of row r
+    at ``ROW_F * r + F_x``), then from ``ROW_F * H_RCAP`` on the fix times: the time of
+    fix ``H_T0 + j`` at ``j`` (:func:`time_of`), one per fix from the oldest row's to
+    the newest, shared by the fix's rows (a fix has several candidates; the time was
+    a float in every row before). The matched point (x, y) of a row is not stored: it is
     ``a + pos (b - a)`` on the row's segment, the very expression the sweep computed it
     with, so it is recomputed bit for bit where it is read (the live score, the sweep's
     input, a row handed out as a node) from the network's arrays (``seg_geo`` of
     :class:`livematch.core.fastsweep.SweepArrays`: ax, ay, bx - ax, by - ay per segment).
-    A row is 52 bytes (20 + 32).
+    A row is 40 bytes (16 + 24), and 8 more a fix.
 
 Two arrays rather than one per row field, with the counts in the first: a tree idle
 between fixes costs two numpy objects (each about 150 bytes beyond its data) and a
@@ -51,8 +56,8 @@ from livematch.core._sweep_kernel import (
     F_COST,
     F_LOW,
     F_POS,
-    F_T,
     H_CAP_ROWS,
+    H_CAP_T,
     H_CAP_VIAS,
     H_HI,
     H_LO,
@@ -60,20 +65,21 @@ from livematch.core._sweep_kernel import (
     H_N,
     H_NV,
     H_NVIA,
+    H_RCAP,
+    H_T0,
     HEAD,
     I_PARENT,
     I_SEG,
     I_SEQ,
-    I_VIA0,
-    I_VIAN,
+    I_VIAE,
     K_PARENT,
     K_SEG,
     K_SEQ,
-    K_VIA0,
-    K_VIAN,
+    K_VIAE,
     MIN_SPARE,
     ROW_F,
     ROW_I,
+    T_SPARE,
     TREE_OVERFLOW,
     ancestor_at,
     block_ancestor,
@@ -86,20 +92,22 @@ from livematch.core._sweep_kernel import (
     cut_links,
     kept_rows,
     rows_ancestor,
+    time_of,
     tree_append,
     tree_sweep,
     via_base,
 )
 
 __all__ = [
-    "ARENA_FULL", "DIED", "F_COST", "F_LOW", "F_POS", "F_T", "HEAD", "H_CAP_ROWS",
-    "H_CAP_VIAS", "H_HI", "H_LO", "H_M", "H_N", "H_NV", "H_NVIA", "I_PARENT", "I_SEG",
-    "I_SEQ", "I_VIA0", "I_VIAN", "K_PARENT", "K_SEG", "K_SEQ", "K_VIA0", "K_VIAN",
-    "MIN_SPARE", "ROW_F", "ROW_I", "TREE_OVERFLOW", "ancestor_at", "best_row",
-    "best_scored", "block_ancestor", "chain_into", "commit_point", "compact",
-    "compact_append", "compact_in_place", "compact_into", "cut_and_check", "cut_links",
-    "descends_from", "driven_since", "junction_split", "kept_rows", "live_answer",
-    "live_scores", "prune_live", "tree_append", "tree_sweep", "trim", "via_base",
+    "ARENA_FULL", "DIED", "F_COST", "F_LOW", "F_POS", "HEAD", "H_CAP_ROWS", "H_CAP_T",
+    "H_CAP_VIAS", "H_HI", "H_LO", "H_M", "H_N", "H_NV", "H_NVIA", "H_RCAP", "H_T0",
+    "I_PARENT", "I_SEG", "I_SEQ", "I_VIAE", "K_PARENT", "K_SEG", "K_SEQ", "K_VIAE",
+    "MIN_SPARE", "ROW_F", "ROW_I", "TREE_OVERFLOW", "T_SPARE",
+    "ancestor_at", "best_row", "best_scored", "block_ancestor", "chain_into",
+    "commit_point", "compact", "compact_append", "compact_in_place", "compact_into",
+    "cut_and_check", "cut_links", "descends_from", "driven_since", "junction_split",
+    "kept_rows", "live_answer", "live_scores", "prune_live", "time_of", "tree_append",
+    "tree_sweep", "trim", "via_base"
 ]
 
 _jit = numba.njit(cache=True, error_model="numpy")
@@ -151,6 +159,9 @@ def live_scores(
     hi = ti[H_HI]
     out = np.empty(hi - lo)
     n = fix_xy.shape[0]
+    # the fix times (time_of, written out here: a call into _sweep_kernel would need
+    # its code key, see junction_split)
+    tb = ROW_F * ti[H_RCAP] - ti[H_T0]
     for r in range(lo, hi):
         score = tf[ROW_F * r + F_COST]
         cur = r
@@ -170,7 +181,7 @@ def live_scores(
             py = geo[g, 1] + pos * geo[g, 3]
             i = ti[ROW_I * cur + K_SEQ] - fix_seq0
             j = ti[ROW_I * p + K_SEQ] - fix_seq0
-            dt = tf[ROW_F * cur + F_T] - tf[ROW_F * p + F_T]
+            dt = tf[tb + ti[ROW_I * cur + K_SEQ]] - tf[tb + ti[ROW_I * p + K_SEQ]]
             if j >= 0 and i < n and 0.0 < dt <= max_dt:
                 ex = cx - fix_xy[i, 0]
                 ey = cy - fix_xy[i, 1]
@@ -192,7 +203,9 @@ def _still_on(ti: np.ndarray, node: int, anc: int) -> bool:
     seg = ti[ROW_I * anc + K_SEG]
     cur = node
     while cur >= 0 and cur != anc:
-        if ti[ROW_I * cur + K_VIAN] > 0 or ti[ROW_I * cur + K_SEG] != seg:
+        # a via: the row's vias end after the row before's (its start; 0 at row 0)
+        if (ti[ROW_I * cur + K_VIAE] > (ti[ROW_I * cur - ROW_I + K_VIAE] if cur else 0)
+                or ti[ROW_I * cur + K_SEG] != seg):
             return False
         cur = ti[ROW_I * cur + K_PARENT]
     return True
@@ -207,8 +220,9 @@ def _branch(ti: np.ndarray, vb: int, node: int, anc: int) -> int:
     cur = node
     while ti[ROW_I * cur + K_PARENT] >= 0 and ti[ROW_I * cur + K_PARENT] != anc:
         cur = ti[ROW_I * cur + K_PARENT]
-    if ti[ROW_I * cur + K_VIAN] > 0:
-        return ti[vb + ti[ROW_I * cur + K_VIA0]]
+    v0 = ti[ROW_I * cur - ROW_I + K_VIAE] if cur else 0  # the row's first via
+    if ti[ROW_I * cur + K_VIAE] > v0:
+        return ti[vb + v0]
     return ti[ROW_I * cur + K_SEG]
 
 
@@ -221,7 +235,7 @@ def driven_since(ti: np.ndarray, tf: np.ndarray, slen: np.ndarray, node: int,
     sweep charged for it: along one segment, or out of the parent's segment, through the
     vias, into the child's.
     """
-    vb = HEAD + ROW_I * (tf.shape[0] // ROW_F)
+    vb = HEAD + ROW_I * ti[H_RCAP]  # via_base (see live_scores)
     total = 0.0
     cur = node
     while cur != anc:
@@ -229,12 +243,14 @@ def driven_since(ti: np.ndarray, tf: np.ndarray, slen: np.ndarray, node: int,
         p = ti[ci + K_PARENT]
         seg = ti[ci + K_SEG]
         p_seg = ti[ROW_I * p + K_SEG]
-        if ti[ci + K_VIAN] == 0 and seg == p_seg:
+        v0 = ti[ci - ROW_I + K_VIAE] if cur else 0  # the row's vias: v0 to its end
+        v1 = ti[ci + K_VIAE]
+        if v1 == v0 and seg == p_seg:
             total += (tf[ROW_F * cur + F_POS] - tf[ROW_F * p + F_POS]) * slen[seg]
         else:
             total += ((1.0 - tf[ROW_F * p + F_POS]) * slen[p_seg]
                       + tf[ROW_F * cur + F_POS] * slen[seg])
-            for j in range(ti[ci + K_VIA0], ti[ci + K_VIA0] + ti[ci + K_VIAN]):
+            for j in range(v0, v1):
                 total += slen[ti[vb + j]]
         cur = p
     return total - (1.0 - tf[ROW_F * anc + F_POS]) * slen[ti[ROW_I * anc + K_SEG]]
@@ -256,19 +272,32 @@ def descends_from(ti: np.ndarray, node: int, anc: int) -> bool:
 def prune_live(ti: np.ndarray, tf: np.ndarray, anc: int) -> int:
     """Keep, in order, the live rows descending from ``anc``; returns the block's new end.
 
-    Live rows are leaves, so moving them within the block breaks no back-pointer.
+    Live rows are leaves, so moving them within the block breaks no back-pointer. Their
+    vias move down with them (each row's vias start where the row before's end), and
+    the rows after the block are dropped (``H_N`` is the block's end).
     """
     lo = ti[H_LO]
+    vb = HEAD + ROW_I * ti[H_RCAP]  # via_base (see live_scores)
+    end_before = ti[ROW_I * lo - ROW_I + K_VIAE] if lo else 0
+    nv = end_before
     w = lo
     for r in range(lo, ti[H_HI]):
+        v0 = end_before
+        end_before = ti[ROW_I * r + K_VIAE]
         if descends_from(ti, r, anc):
+            for j in range(v0, end_before):
+                ti[vb + nv + j - v0] = ti[vb + j]
+            nv += end_before - v0
             if w != r:
                 for c in range(ROW_I):
                     ti[ROW_I * w + HEAD + c] = ti[ROW_I * r + HEAD + c]
                 for c in range(ROW_F):
                     tf[ROW_F * w + c] = tf[ROW_F * r + c]
+            ti[ROW_I * w + K_VIAE] = nv
             w += 1
     ti[H_HI] = w
+    ti[H_N] = w
+    ti[H_NV] = nv
     return w
 
 
@@ -337,7 +366,7 @@ def _keyed_junction_split(sweep_key: int) -> Callable[..., int]:
         split = rows_ancestor(ti, walk, k, -1)
         if split < 0 or split == best or _still_on(ti, best, split):
             return -1
-        vb = via_base(ti, tf)
+        vb = via_base(ti)
         first = -1
         for j in range(k):
             n = close[j]

@@ -49,12 +49,16 @@ from livematch.core._tree_kernel import (
     F_COST,
     F_POS,
     H_CAP_ROWS,
+    H_CAP_T,
     H_CAP_VIAS,
     H_HI,
     H_LO,
     H_N,
     H_NV,
+    H_RCAP,
+    H_T0,
     HEAD,
+    I_VIAE,
     K_PARENT,
     K_SEG,
     K_SEQ,
@@ -127,24 +131,40 @@ class CandidateTree:
     @property
     def cap_rows(self) -> int:
         """Rows the arrays have room for."""
-        return len(self.tf) // ROW_F
+        return self.ti.item(H_RCAP)
 
     @property
     def cap_vias(self) -> int:
         """Vias the arrays have room for."""
         return len(self.ti) - HEAD - ROW_I * self.cap_rows
 
+    @property
+    def cap_times(self) -> int:
+        """Fix times the arrays have room for (from the first kept, ``H_T0``, on)."""
+        return len(self.tf) - ROW_F * self.cap_rows
+
     def _via_base(self) -> int:
-        return HEAD + ROW_I * (len(self.tf) // ROW_F)
+        return HEAD + ROW_I * self.ti.item(H_RCAP)
+
+    def time_of(self, seq: int) -> float:
+        """The time of fix ``seq`` (a fix of one of the tree's rows)."""
+        ti = self.ti
+        return self.tf.item(ROW_F * ti.item(H_RCAP) + seq - ti.item(H_T0))
+
+    def _newest_seq(self) -> int:
+        """The fix of the last row in use (the newest the tree has a time for), or -1."""
+        n = self.ti.item(H_N)
+        return self.ti.item(ROW_I * (n - 1) + K_SEQ) if n else -1
 
     # ----------------------------------------------------------------- growth
-    def compact(self, spare_rows: int = 0, spare_vias: int = 0) -> None:
+    def compact(self, spare_rows: int = 0, spare_vias: int = 0, spare_t: int = 0) -> None:
         """Drop the rows no live state descends from; leave room for more rows.
 
         The room left is at least ``spare_rows``, twice the live block plus
         ``_MIN_SPARE``, and a quarter of the rows kept (vias: ``spare_vias`` and one per
         two rows of room): a step or two before the next compaction. Tight on purpose:
         a service holds many idle trees, and a compaction costs about a microsecond.
+        Fix times: as many as rows, and room for ``spare_t`` after the newest kept.
 
         The new arrays come from compiled code (one call; two calls and numpy's arrays,
         as :meth:`shrink` does, cost about 2 µs more a compaction, and a 1 Hz vehicle
@@ -152,11 +172,11 @@ class CandidateTree:
         """
         rows = max(spare_rows, 2 * len(self) + _MIN_SPARE)
         vias = max(spare_vias, rows // 2)  # most states have no via; a tree sweep asks for more
-        self.ti, self.tf = _t.compact(self.ti, self.tf, rows, vias)
+        self.ti, self.tf = _t.compact(self.ti, self.tf, rows, vias, spare_t)
         self._synced()
 
-    def _compacted(self, cap_rows: int, cap_vias: int) -> None:
-        """Compact into new numpy arrays of ``cap_rows`` rows and ``cap_vias`` vias.
+    def _compacted(self, cap_rows: int, cap_vias: int, cap_t: int) -> None:
+        """Compact into new numpy arrays of ``cap_rows`` rows, ``cap_vias`` vias, ``cap_t`` times.
 
         Numpy allocates them and a compiled call fills them
         (:func:`~livematch.core._tree_kernel.compact_into`): arrays allocated by compiled
@@ -164,8 +184,8 @@ class CandidateTree:
         is kept for long.
         """
         ti = np.empty(HEAD + ROW_I * cap_rows + cap_vias, np.int32)
-        tf = np.empty(ROW_F * cap_rows)
-        _t.compact_into(self.ti, self.tf, ti, tf)
+        tf = np.empty(ROW_F * cap_rows + cap_t)
+        _t.compact_into(self.ti, self.tf, ti, tf, cap_rows)
         self.ti, self.tf = ti, tf
         self._synced()
 
@@ -173,11 +193,19 @@ class CandidateTree:
         """Keep only the rows still needed, with no room to spare (an idle tree)."""
         if self.ti.item(H_N) == 0:
             return
-        self._compacted(*_t.kept_rows(self.ti))
+        self._compacted(*_t.kept_rows(self.ti))  # rows, vias, fix times
 
-    def _make_room(self, rows: int, vias: int) -> None:
-        if self.n + rows > self.cap_rows or self.nv + vias > self.cap_vias:
-            self.compact(rows, vias)
+    def _make_room(self, rows: int, vias: int, first: int, last: int) -> None:
+        """Room for ``rows`` rows and ``vias`` vias more, of fixes ``first`` to ``last``."""
+        newest = self._newest_seq()
+        if newest < 0:
+            newest = first - 1  # no row yet: the times will start at fix ``first``
+            t_end = last - first + 1
+        else:
+            t_end = last - self.ti.item(H_T0) + 1
+        if (self.n + rows > self.cap_rows or self.nv + vias > self.cap_vias
+                or t_end > self.cap_times):
+            self.compact(rows, vias, max(0, last - newest))
 
     # ------------------------------------------------------------------ steps
     def sweep(self, view: NetworkView, ctx: npt.NDArray[np.float64], seq: int,
@@ -212,7 +240,7 @@ class CandidateTree:
                 # append, in one call
                 cap = ti.item(H_CAP_ROWS)
                 ti2 = np.empty(HEAD + ROW_I * cap + ti.item(H_CAP_VIAS), np.int32)
-                tf2 = np.empty(ROW_F * cap)
+                tf2 = np.empty(ROW_F * cap + ti.item(H_CAP_T))
                 top = _t.compact_append(ti, tf, ti2, tf2, arrays.fbuf, arrays.ibuf, seq, t,
                                         next_commit, newest)
                 self.ti, self.tf = ti2, tf2
@@ -231,14 +259,18 @@ class CandidateTree:
         rows: dict[int, int] = {}
         parents: dict[int, Node] = {}
         ti = self.ti
+        tf = self.tf
+        cap = ti.item(H_RCAP)
+        tb = ROW_F * cap - ti.item(H_T0)
+        make = self._node
         for r in range(self.lo, self.hi):
             p = ti.item(ROW_I * r + K_PARENT)
             parent = None
             if p >= 0:
                 parent = parents.get(p)
                 if parent is None:
-                    parent = parents[p] = self.node(view, p)
-            node = self.node(view, r, parent)
+                    parent = parents[p] = make(view, p, None, ti, tf, cap, tb)
+            node = make(view, r, parent, ti, tf, cap, tb)
             nodes[node.seg] = node
             rows[id(node)] = r
         return nodes, rows
@@ -251,12 +283,32 @@ class CandidateTree:
         """
         vias = sum(len(n.via) for n in new.values())
         old_lo = self.lo
-        self._make_room(len(new), vias)
+        k = len(new)
+        if k:
+            seqs = [n.seq for n in new.values()]
+            first, last = min(seqs), max(seqs)
+            self._make_room(k, vias, first, last)
+        else:
+            self._make_room(0, 0, 0, -1)
         shift = self.lo - old_lo  # a compaction moves the live block, keeping its order
         lo = self.n
-        k = len(new)
         ti = self.ti
         if k:
+            # the fix times, one per fix (a gap in the run of fixes, if any, NaN)
+            tf = self.tf
+            tb = ROW_F * ti.item(H_RCAP)
+            if lo == 0:
+                ti[H_T0] = first
+                have = 0
+            else:
+                have = self._newest_seq() - ti.item(H_T0) + 1
+            t0 = ti.item(H_T0)
+            if first < t0:
+                raise ValueError(f"fix {first} is older than the tree's first fix {t0}")
+            if last - t0 + 1 > have:
+                tf[tb + have:tb + last - t0 + 1] = np.nan
+            for node in new.values():
+                tf[tb + node.seq - t0] = node.t
             # the rows gathered first and written with one assignment per array (a
             # bridged step brings tens to hundreds of states; a numpy write each costs)
             ints: list[int] = []
@@ -266,12 +318,13 @@ class CandidateTree:
             for node in new.values():
                 via = node.via
                 parent = -1 if node.parent is None else rows[id(node.parent)] + shift
-                ints += (node.seg, node.seq, parent, nv, len(via))
-                # the matched point is not kept: it is node.x, node.y recomputed (see node)
-                floats += (node.low, node.pos, node.cost, node.t)
                 if via:
                     flat.extend(via)
                     nv += len(via)
+                ints += (node.seg, node.seq, parent, nv)
+                # the matched point is not kept: it is node.x, node.y recomputed (see node);
+                # the time is the fix's (above)
+                floats += (node.low, node.pos, node.cost)
             ti[HEAD + ROW_I * lo:HEAD + ROW_I * (lo + k)] = ints
             self.tf[ROW_F * lo:ROW_F * (lo + k)] = floats
             if flat:
@@ -297,8 +350,10 @@ class CandidateTree:
         tree = cls()
         row_of: dict[int, int] = {}
         # room for every row at once: a compaction in between would drop older rows
-        tree._make_room(len(older) + len(live),
-                        sum(len(n.via) for n in (*older, *live.values())))
+        every = (*older, *live.values())
+        if every:
+            tree._make_room(len(every), sum(len(n.via) for n in every),
+                            min(n.seq for n in every), max(n.seq for n in every))
         for node in older:
             tree.extend({node.seg: node}, row_of)
             row_of[id(node)] = tree.lo
@@ -311,12 +366,25 @@ class CandidateTree:
 
         The matched point is recomputed on ``view``'s geometry (:meth:`point`).
         """
+        ti = self.ti
+        cap = ti.item(H_RCAP)
+        return self._node(view, row, parent, ti, self.tf, cap, ROW_F * cap - ti.item(H_T0))
+
+    @staticmethod
+    def _node(view: NetworkView, row: int, parent: Node | None, ti: npt.NDArray[np.int32],
+              tf: npt.NDArray[np.float64], cap: int, tb: int) -> Node:
+        """:meth:`node` with the arrays, their row room and ``tb`` (fix seq's time at ``tb + seq``).
+
+        (A chain of nodes is built per commit: the header is read once for all of them.)
+        """
         i = HEAD + ROW_I * row
-        seg, seq, _, v0, vn = self.ti[i:i + ROW_I].tolist()
-        low, pos, cost, t = self.tf[ROW_F * row:ROW_F * row + ROW_F].tolist()
-        if vn:
-            vb = self._via_base() + v0
-            via = tuple(self.ti[vb:vb + vn].tolist())
+        seg, seq, _, v1 = ti[i:i + ROW_I].tolist()
+        low, pos, cost = tf[ROW_F * row:ROW_F * row + ROW_F].tolist()
+        # the row's vias run from where the row before's end (most rows have none)
+        v0 = ti.item(i - ROW_I + I_VIAE) if v1 and row else 0
+        if v1 > v0:
+            vb = HEAD + ROW_I * cap
+            via = tuple(ti[vb + v0:vb + v1].tolist())
         else:
             via = ()
         a = view.sf[seg]
@@ -324,8 +392,8 @@ class CandidateTree:
         ax = view.vx[a]
         ay = view.vy[a]
         # the matched point, as in point() (inlined: a chain of nodes is built per commit)
-        return Node(seg, seq, t, pos, ax + pos * (view.vx[b] - ax), ay + pos * (view.vy[b] - ay),
-                    parent, via, cost, low)
+        return Node(seg, seq, tf.item(tb + seq), pos, ax + pos * (view.vx[b] - ax),
+                    ay + pos * (view.vy[b] - ay), parent, via, cost, low)
 
     def point(self, view: NetworkView, row: int) -> tuple[int, float, float, float]:
         """Row ``row``'s segment, position and matched point ``(seg, pos, x, y)``.
@@ -353,8 +421,9 @@ class CandidateTree:
     def row_ints(self, row: int) -> tuple[int, int, int, int, int]:
         """Row ``row``'s ``seg, seq, parent, via_start, via_len``."""
         i = HEAD + ROW_I * row
-        seg, seq, parent, v0, vn = self.ti[i:i + ROW_I].tolist()
-        return seg, seq, parent, v0, vn
+        seg, seq, parent, v1 = self.ti[i:i + ROW_I].tolist()
+        v0 = self.ti.item(i - ROW_I + I_VIAE) if row else 0
+        return seg, seq, parent, v0, v1 - v0
 
     def via(self, j: int) -> int:
         """The ``j``-th via of the tree (a row's are ``via_len`` from its ``via_start``)."""
@@ -453,11 +522,16 @@ class CandidateTree:
             arrays.chain = np.empty(2 * -length, dtype=np.int64)
             length = _t.chain_into(self.ti, top, min_seq, arrays.chain)
         rows = arrays.chain[:length + 1].tolist()
-        before = self.node(view, rows[-1]) if rows[-1] >= 0 else None
+        ti = self.ti
+        tf = self.tf
+        cap = ti.item(H_RCAP)
+        tb = ROW_F * cap - ti.item(H_T0)
+        node = self._node
+        before = node(view, rows[-1], None, ti, tf, cap, tb) if rows[-1] >= 0 else None
         chain: list[Node] = []
         parent = before
         for r in rows[:-1]:
-            parent = self.node(view, r, parent)
+            parent = node(view, r, parent, ti, tf, cap, tb)
             chain.append(parent)
         return chain, before
 
@@ -484,46 +558,53 @@ class CandidateTree:
         """
         out = CandidateTree()
         if self.ti.item(H_N):
-            rows, vias = _t.kept_rows(self.ti)
+            rows, vias, times = _t.kept_rows(self.ti)
             out.ti = np.empty(HEAD + ROW_I * rows + vias, np.int32)
-            out.tf = np.empty(ROW_F * rows)
-            _t.compact_into(self.ti, self.tf, out.ti, out.tf)
+            out.tf = np.empty(ROW_F * rows + times)
+            _t.compact_into(self.ti, self.tf, out.ti, out.tf, rows)
             out._synced()
         return out
 
-    def packed_parts(self) -> tuple[int, int, int, tuple[memoryview, memoryview, memoryview]]:
-        """The state of :meth:`packed` without the tree: rows, vias, live states, :meth:`parts`.
+    def packed_parts(self) -> tuple[int, int, int, int, tuple[memoryview, ...]]:
+        """The state of :meth:`packed` without the tree: rows, vias, live, first fix, :meth:`parts`.
 
         (A checkpoint writes every level's tree this way: no tree object is made.)
         """
         if not self.ti.item(H_N):
-            return 0, 0, 0, (_NO_BYTES, _NO_BYTES, _NO_BYTES)
-        rows, vias = _t.kept_rows(self.ti)
+            return 0, 0, 0, 0, (_NO_BYTES, _NO_BYTES, _NO_BYTES, _NO_BYTES)
+        rows, vias, times = _t.kept_rows(self.ti)
         ti = np.empty(HEAD + ROW_I * rows + vias, np.int32)
-        tf = np.empty(ROW_F * rows)
-        _t.compact_into(self.ti, self.tf, ti, tf)
+        tf = np.empty(ROW_F * rows + times)
+        _t.compact_into(self.ti, self.tf, ti, tf, rows)
         flat = ti.data
         end = HEAD + ROW_I * rows
-        return rows, vias, self.hi - self.lo, (flat[HEAD:end], tf.data, flat[end:])
+        floats = tf.data
+        return (rows, vias, self.hi - self.lo, ti.item(H_T0),
+                (flat[HEAD:end], floats[:ROW_F * rows], flat[end:], floats[ROW_F * rows:]))
 
-    def parts(self) -> tuple[memoryview, memoryview, memoryview]:
-        """The rows' ints, the rows' floats and the vias in use, as buffers.
+    def parts(self) -> tuple[memoryview, memoryview, memoryview, memoryview]:
+        """The rows' ints, the rows' floats, the vias and the fix times in use, as buffers.
 
-        The bytes of a tight tree's (:meth:`packed`) three parts are what the tracker
-        state (``LMT4``) writes: ``n`` rows of ``ROW_I`` int32, ``n`` rows of ``ROW_F``
-        float64, ``nv`` int32 vias.
+        The bytes of a tight tree's (:meth:`packed`) four parts are what the tracker
+        state (``LMT5``) writes: ``n`` rows of ``ROW_I`` int32, ``n`` rows of ``ROW_F``
+        float64, ``nv`` int32 vias, one float64 time per fix from ``H_T0`` to the
+        newest row's.
         """
         n = self.n
         vb = self._via_base()
+        tb = ROW_F * self.cap_rows
+        times = self._newest_seq() - self.ti.item(H_T0) + 1 if n else 0
         return (self.ti[HEAD:HEAD + ROW_I * n].data, self.tf[:ROW_F * n].data,
-                self.ti[vb:vb + self.nv].data)
+                self.ti[vb:vb + self.nv].data, self.tf[tb:tb + times].data)
 
     @classmethod
     def unpacked(cls, ti: npt.NDArray[np.int32], tf: npt.NDArray[np.float64],
-                 tv: npt.NDArray[np.int32], live: int) -> CandidateTree:
-        """The tree of ``rows`` rows: their ints ``ti``, floats ``tf`` and the vias ``tv``.
+                 tv: npt.NDArray[np.int32], live: int, times: npt.NDArray[np.float64],
+                 t0: int) -> CandidateTree:
+        """The tree of ``rows`` rows: ints ``ti``, floats ``tf``, vias ``tv``, fix times ``times``.
 
-        ``ti`` and ``tf`` flat (``ROW_I`` / ``ROW_F`` values a row) or one row a line.
+        ``ti`` and ``tf`` flat (``ROW_I`` / ``ROW_F`` values a row) or one row a line;
+        ``times[j]`` is the time of fix ``t0 + j`` (from the first row's fix to the last's).
         Copied into arrays of the tree's own (so read-only buffers will do), exactly as
         long as needed; the live block is the last ``live`` rows. An empty tree shares
         the module's empty header instead of holding arrays of its own.
@@ -540,13 +621,29 @@ class CandidateTree:
             buf[H_NV] = nv
             buf[H_LO] = tree.lo = rows - live
             buf[H_HI] = tree.hi = rows
+            buf[H_T0] = t0
+            buf[H_RCAP] = rows
             tree.ti = buf
-            if tf.ndim == 1:
-                tree.tf = np.array(tf, dtype=np.float64)
-            else:  # numpy's own flat array (a reshaped copy would keep its 2-d base alive)
-                tree.tf = np.empty(ROW_F * rows)
-                tree.tf[:] = tf.reshape(-1)
+            # numpy's own flat array, in one call (a restore makes three per tracker)
+            tree.tf = np.concatenate((tf if tf.ndim == 1 else tf.reshape(-1), times))
         return tree
+
+    @classmethod
+    def unpacked_timed(cls, ti: npt.NDArray[np.int32], tf: npt.NDArray[np.float64],
+                       tv: npt.NDArray[np.int32], live: int) -> CandidateTree:
+        """:meth:`unpacked` from rows that each carry their fix's time (states before LMT5).
+
+        ``tf``: one row a line, ``low, pos, cost, t``. Each fix's time is taken from its
+        rows (every row of a fix holds the same float).
+        """
+        rows = len(tf)
+        if not rows:
+            return cls()
+        seqs = (ti if ti.ndim == 2 else ti.reshape(rows, ROW_I))[:, 1]
+        t0 = int(seqs.min())
+        times = np.full(int(seqs.max()) - t0 + 1, np.nan)
+        times[seqs - t0] = tf[:, ROW_F]
+        return cls.unpacked(ti, tf[:, :ROW_F], tv, live, times, t0)
 
     def rows(self, view: NetworkView) -> list[Node]:
         """Every row still needed (after a compaction), as linked nodes in row order."""
@@ -603,8 +700,11 @@ def warm_up() -> None:
     # the compaction and append after a full tree (nothing to append here), and the
     # route monitor's step
     arrays = sweep_arrays(view_of(net))
-    _t.compact_append(tree.ti, tree.tf, tree.ti.copy(), tree.tf.copy(), arrays.fbuf,
-                      arrays.ibuf, 0, 0.0, 0, -1)
+    ti = tree.ti.copy()
+    ti[H_CAP_ROWS] = tree.cap_rows  # the sizes a full step leaves (these arrays' own)
+    ti[H_CAP_T] = tree.cap_times
+    _t.compact_append(ti, tree.tf, ti.copy(), tree.tf.copy(), arrays.fbuf, arrays.ibuf,
+                      tree.seq_of(tree.lo), tree.time_of(tree.seq_of(tree.lo)), 0, -1)
     rows = np.array([(n.seg, n.low, n.pos, n.x, n.y, n.cost) for n in live.values()])
     _, rows, driven = window_step(
         arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf,

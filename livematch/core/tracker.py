@@ -74,6 +74,7 @@ import heapq
 import itertools
 import json
 import math
+import struct
 import zlib
 from collections.abc import Iterator
 
@@ -91,14 +92,26 @@ from livematch.core.sweep import Node, StepContext, advance
 from livematch.core.view import NetworkView, view_of
 from livematch.errors import BadStateError
 
-STATE_FORMAT = b"LMT4"
+STATE_FORMAT = b"LMT5"
+STATE_FORMAT_V4 = b"LMT4"  # as LMT5 with the fix time, via start and length in every row; read
 STATE_FORMAT_V3 = b"LMT3"  # as LMT4 without the flags byte, zlib-compressed; still read
 STATE_FORMAT_V2 = b"LMT2"  # as LMT3 with the matched point in every row; still read
 STATE_FORMAT_V1 = b"LMT1"  # JSON rows of linked nodes; still read
-_READABLE = (STATE_FORMAT, STATE_FORMAT_V3, STATE_FORMAT_V2, STATE_FORMAT_V1)
-# float64 columns of a tree row in LMT2 (low, pos, x, y, cost, t) and the ones LMT3 keeps
+_READABLE = (STATE_FORMAT, STATE_FORMAT_V4, STATE_FORMAT_V3, STATE_FORMAT_V2,
+             STATE_FORMAT_V1)
+# float64 columns of a tree row in LMT2 (low, pos, x, y, cost, t), in LMT3 and LMT4 (low,
+# pos, cost, t), and the ones LMT3 and LMT4 keep of LMT2's
 _V2_ROW_F = 6
+_V4_ROW_F = 4
+# int32 columns of a tree row up to LMT4 (seg, seq, parent, via_start, via_len)
+_V4_ROW_I = 5
 _V2_KEPT = [0, 1, 4, 5]
+# Tracker.said of a restored tracker: the fields of the newest live answer after its
+# vehicle (t, segment, offset_m, x, y, eps_m, window_fixes, window_s) packed into one bytes
+# object (97 bytes; as an Assignment with its own floats and segment number about 0.28 KB;
+# a driven tracker keeps the Assignment it made for the fix: packing it every fix cost
+# more than the memory is worth while the vehicle is moving)
+_SAID = struct.Struct("<dqddddqd")
 JUMP_TRUST_AFTER = 3
 # A road vehicle changes speed by at most about 3 m/s per second (ordinary braking and
 # acceleration; common practice, from memory).
@@ -279,8 +292,9 @@ class Tracker:
         # with reverse_turns: the direction (radians) of the step into the last accepted
         # fix when it was at least REVERSE_MIN_M long, else None (Tracker._turned_round)
         self.step_dir: float | None = None
-        # with hold_filtered: the newest live answer, repeated for a filtered fix
-        self.said: Assignment | None = None
+        # with hold_filtered: the newest live answer, repeated for a filtered fix (after
+        # a restore its fields after the vehicle, packed: _SAID)
+        self.said: Assignment | bytes | None = None
         # what _held_point found (held point and first fix -> (fix asked at, all within
         # eps)); a cache, not serialised, dropped when the vehicle does not stand
         self._held: dict[tuple[int, float, float, float], tuple[int, bool]] | None = None
@@ -388,10 +402,14 @@ class Tracker:
         (:meth:`_fill_skipped`).
         """
         said = self.said
-        if said is None or not 0.0 < t - said.t <= self.settings.gap_s:
+        if said is None:
             return
-        events.append(HeldAssignment(self.vehicle, t, said.segment, said.offset_m, said.x,
-                                     said.y, said.eps_m, said.window_fixes, said.window_s))
+        said_t, seg, offset_m, x, y, eps_m, window_fixes, window_s = (
+            _SAID.unpack(said) if isinstance(said, bytes) else _said_fields(said))
+        if not 0.0 < t - said_t <= self.settings.gap_s:
+            return
+        events.append(HeldAssignment(self.vehicle, t, seg, offset_m, x, y, eps_m, window_fixes,
+                                     window_s))
 
     # ------------------------------------------------------------------ sweep
     def _accept(self, fix: Fix, events: list[Event]) -> None:
@@ -1628,19 +1646,20 @@ class Tracker:
     def to_bytes(self, compress: bool = False) -> bytes:
         """Versioned serialisation of the whole state; a restored tracker continues exactly.
 
-        ``LMT4``: the 4-byte format, a flags byte (bit 0: what follows is zlib-compressed,
+        ``LMT5``: the 4-byte format, a flags byte (bit 0: what follows is zlib-compressed,
         level 1, when ``compress``), then a 4-byte header length, a JSON header (the
         scalars, floats written with ``repr`` precision; a dict, so a field added later is
         one more key, read with a default) and the arrays' bytes as they are: each
-        level's candidate tree, compacted to the rows still needed (rows, then floats,
-        then vias; layout in :mod:`livematch.core._tree_kernel`), the fix positions, then
-        the spike test's copy of the levels. Uncompressed, a checkpoint costs a few tens
-        of microseconds, about a tenth of the zlib-compressed ``LMT3`` (``bench/
-        checkpoint.py``), and is about three times as long; ``compress`` trades the time
-        back for the size. :meth:`from_bytes` also reads ``LMT3`` (the same, zlib-
-        compressed at level 6, no flags byte), ``LMT2`` (each row with its matched point,
-        recomputed from the row's segment and position, bit for bit) and ``LMT1`` (JSON
-        rows).
+        level's candidate tree, compacted to the rows still needed (rows' ints, rows'
+        floats, vias, then one time per fix from the first row's fix on; layout in
+        :mod:`livematch.core._tree_kernel`), the fix positions, then the spike test's
+        copy of the levels. Uncompressed, a checkpoint costs a few tens of microseconds,
+        about a tenth of the zlib-compressed ``LMT3`` (``bench/checkpoint.py``), and is
+        about three times as long; ``compress`` trades the time back for the size.
+        :meth:`from_bytes` also reads ``LMT4`` (as ``LMT5`` with each row's fix time in
+        the row, no list of times), ``LMT3`` (as ``LMT4``, zlib-compressed at level 6, no
+        flags byte), ``LMT2`` (each row also with its matched point, recomputed from the
+        row's segment and position, bit for bit) and ``LMT1`` (JSON rows).
         """
         arrays: list[bytes | memoryview] = []
         levels = _pack_levels(self.levels, arrays)
@@ -1682,9 +1701,10 @@ class Tracker:
         if self.step_dir is not None:  # with reverse_turns only
             state["step_dir"] = self.step_dir
         if self.said is not None:  # only with hold_filtered
-            a = self.said
-            state["said"] = [a.t, a.segment, a.offset_m, a.x, a.y, a.eps_m, a.window_fixes,
-                             a.window_s]
+            # t, segment, offset_m, x, y, eps_m, window_fixes, window_s
+            said = self.said
+            state["said"] = list(_SAID.unpack(said) if isinstance(said, bytes)
+                                 else _said_fields(said))
         header = json.dumps(state, separators=(",", ":")).encode()
         body = b"".join((len(header).to_bytes(4, "little"), header, *arrays))
         if compress:
@@ -1695,12 +1715,12 @@ class Tracker:
     def from_bytes(
         cls, network: RoadNetwork, settings: MatchSettings | None, data: bytes
     ) -> Tracker:
-        """Restore a tracker written by :meth:`to_bytes` (``LMT4``; ``LMT3`` to ``LMT1`` too)."""
+        """Restore a tracker written by :meth:`to_bytes` (``LMT5``; ``LMT4`` to ``LMT1`` too)."""
         fmt = data[:len(STATE_FORMAT)]
         if fmt not in _READABLE:
             raise BadStateError(f"not a livematch tracker state (expected {STATE_FORMAT!r})")
         try:
-            if fmt == STATE_FORMAT:
+            if fmt in (STATE_FORMAT, STATE_FORMAT_V4):
                 flags = data[4] if len(data) > 4 else -1
                 if flags == 0:
                     body = memoryview(data)[5:]
@@ -1738,8 +1758,10 @@ class Tracker:
                 lv.tree = CandidateTree.from_nodes({seg: nodes[i] for seg, i in live})
             tracker.fix_seq0 = state["seq"] + 1  # no fix positions: the score starts anew
         else:
-            v2 = fmt == STATE_FORMAT_V2
-            at = _unpack_levels(tracker.levels, state["levels"], rest, 0, v2)
+            # the row layout: LMT5's, or rows with their fix's time (LMT4, LMT3), or also
+            # with the matched point (LMT2)
+            old = 0 if fmt == STATE_FORMAT else 2 if fmt == STATE_FORMAT_V2 else 1
+            at = _unpack_levels(tracker.levels, state["levels"], rest, 0, old)
             # absent in older states: no fix positions, the live score starts with
             # new fixes
             seq0, n = state.get("fixes", (state["seq"] + 1, 0))
@@ -1753,7 +1775,7 @@ class Tracker:
             if before is not None:
                 last, speed, last_seg, packed = before
                 levels = [Level(lv.eps) for lv in tracker.levels]
-                _unpack_levels(levels, packed, rest, at, v2)
+                _unpack_levels(levels, packed, rest, at, old)
                 tracker.before = _Before(tuple(last) if last else None, speed, last_seg,
                                          levels)
         tracker.seq = state["seq"]
@@ -1764,7 +1786,7 @@ class Tracker:
         # LMT4 leaves out an empty buffer and skipped list
         tracker.buffer = tuple(Fix(*row) for row in state.get("buffer", ()))
         times = state["times"]
-        if fmt == STATE_FORMAT:
+        if fmt in (STATE_FORMAT, STATE_FORMAT_V4):
             tracker.times = dict(zip(times[0], times[1], strict=True))
         else:
             tracker.times = {k: v for k, v in times}
@@ -1784,9 +1806,14 @@ class Tracker:
             tracker.step_dir = tracker._logged_step_dir()
         said = state.get("said")  # written only with hold_filtered (absent in older states)
         if said is not None:
-            tracker.said = Assignment(tracker.vehicle, *said)
+            tracker.said = _SAID.pack(*said)
         _share_numbers(tracker)
         return tracker
+
+
+def _said_fields(a: Assignment) -> tuple[float, int, float, float, float, float, int, float]:
+    """The fields of ``a`` after its vehicle, as :data:`_SAID` packs them."""
+    return (a.t, a.segment, a.offset_m, a.x, a.y, a.eps_m, a.window_fixes, a.window_s)
 
 
 def _share_numbers(tracker: Tracker) -> None:
@@ -1863,39 +1890,57 @@ def _pack_levels(levels: list[Level],
     """
     rows: list[list[float | int]] = []
     for lv in levels:
-        n, nv, live, parts = lv.tree.packed_parts()
-        rows.append([lv.eps, lv.tree_seq, lv.cert_seq, lv.cert_t, lv.trim_seq, n, nv, live])
+        n, nv, live, t0, parts = lv.tree.packed_parts()
+        rows.append([lv.eps, lv.tree_seq, lv.cert_seq, lv.cert_t, lv.trim_seq, n, nv, live,
+                     t0, parts[3].nbytes // 8])
         arrays += parts
     return rows
 
 
 def _unpack_levels(levels: list[Level], rows: list[list[float | int]], rest: memoryview,
-                   at: int, v2: bool = False) -> int:
+                   at: int, old: int = 0) -> int:
     """Fill ``levels`` from header ``rows`` and the arrays in ``rest`` from ``at`` on.
 
-    ``v2``: the rows are ``LMT2``'s, with the matched point (dropped here). Returns where
-    the next arrays start. The trees get arrays of their own (copies: ``rest`` may be
+    ``old``: 0 for ``LMT5`` (rows' ints, floats, vias, then one time per fix); 1 for
+    ``LMT4`` and ``LMT3`` (each row with its fix's time, no list of times, and its vias'
+    start and length where LMT5 keeps their end); 2 for ``LMT2`` (each row also with
+    its matched point, dropped here). Returns where the
+    next arrays start. The trees get arrays of their own (copies: ``rest`` may be
     read-only), none for an empty part (:meth:`CandidateTree.unpacked`).
     """
-    row_f = _V2_ROW_F if v2 else ROW_F
+    row_f = ROW_F if not old else _V4_ROW_F if old == 1 else _V2_ROW_F
+    row_i = _V4_ROW_I if old else ROW_I
     end = len(rest)
-    for lv, (_, tree_seq, cert_seq, cert_t, trim_seq, n_rows, n_vias, live) in zip(
-            levels, rows, strict=True):
+    for lv, head in zip(levels, rows, strict=True):
+        _, tree_seq, cert_seq, cert_t, trim_seq, n_rows, n_vias, live = head[:8]
+        t0, n_times = (int(head[8]), int(head[9])) if not old else (0, 0)
         lv.tree_seq, lv.cert_seq, lv.cert_t = int(tree_seq), int(cert_seq), float(cert_t)
         lv.trim_seq = int(trim_seq)
         nr, nv = int(n_rows), int(n_vias)
-        at_f = at + nr * ROW_I * 4
+        at_f = at + nr * row_i * 4
         at_v = at_f + nr * row_f * 8
-        nxt = at_v + nv * 4
-        if nr < 0 or nv < 0 or nxt > end:
+        at_t = at_v + nv * 4
+        nxt = at_t + n_times * 8
+        if nr < 0 or nv < 0 or n_times < 0 or nxt > end:
             raise BadStateError("corrupt tracker state: candidate tree cut short")
         if nr:
-            ti = np.frombuffer(rest, np.int32, nr * ROW_I, at)
+            ti = np.frombuffer(rest, np.int32, nr * row_i, at)
             tf = np.frombuffer(rest, np.float64, nr * row_f, at_f)
             tv = np.frombuffer(rest, np.int32, nv, at_v)
-            if v2:
-                tf = tf.reshape(nr, row_f)[:, _V2_KEPT]
-            lv.tree = CandidateTree.unpacked(ti, tf, tv, int(live))
+            if not old:
+                times = np.frombuffer(rest, np.float64, n_times, at_t)
+                lv.tree = CandidateTree.unpacked(ti, tf, tv, int(live), times, t0)
+            else:
+                tf = tf.reshape(nr, row_f)
+                if old == 2:
+                    tf = tf[:, _V2_KEPT]
+                # each row's vias ended where it says (start + length): rows were
+                # written tight, each row's vias after the row before's
+                ints = ti.reshape(nr, row_i)
+                ti = np.empty((nr, ROW_I), np.int32)
+                ti[:, :3] = ints[:, :3]
+                ti[:, 3] = ints[:, 3] + ints[:, 4]
+                lv.tree = CandidateTree.unpacked_timed(ti, tf, tv, int(live))
         else:
             lv.tree = CandidateTree()
         at = nxt
