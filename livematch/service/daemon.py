@@ -1403,8 +1403,10 @@ class Daemon:
         # every message received, whichever way paho decoded it, goes through _arrive
         self._intake.arrive = functools.partial(self._arrive, client, self._intake)
         lean_receive(client, deliver=self._intake.put_nowait)
-        # another worker's fixes are kept straight from the read buffer (_take_raw)
-        buffered_reads(client, take=functools.partial(self._take_raw, client, self._intake))
+        # in a group, another worker's fixes are kept straight from the read buffer
+        # (_take_raw); a standalone daemon keeps nothing, so its packets are not offered
+        buffered_reads(client, take=functools.partial(self._take_raw, client, self._intake)
+                       if self.config.group.name else None)
         cancelled = False
         try:
             async with client:
