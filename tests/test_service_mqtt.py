@@ -305,6 +305,86 @@ async def test_buffered_reads_whole_packets_equal_paho_at_every_split() -> None:
         assert read(pieces, lean=True) == want
 
 
+async def test_buffered_reads_take_sees_whole_publishes_and_leaves_the_rest_to_paho() -> None:
+    """A ``take`` hook is offered every whole PUBLISH (first byte and body, as paho
+    writes them) and nothing else; what it takes never reaches paho, what it leaves
+    reaches paho's dispatch exactly as paho's own reader gives it (checked against
+    paho's reading of the whole stream), at every cut of the stream; taken packets do
+    not count against the bound of packets per read call (one call reads 40 taken and
+    the 16 others)."""
+    kept = [_publish_packet(f"kept/{k % 3}", f'{{"k":{k}}}'.encode(), 0, 0) for k in range(40)]
+    other = [_publish_packet(f"fleet/v{k}/position", b"z" * (k * 13), k + 1, 1)
+             for k in range(14)]
+    stream = []
+    for k, packet in enumerate(kept):
+        stream.append(packet)
+        if k % 3 == 0 and other:
+            stream.append(other.pop())
+    stream[5:5] = [bytes((0x40, 2, 0, 7)), bytes((0x40, 3, 0, 8, 0x10))]  # PUBACKs
+    stream += other
+    data = b"".join(stream)
+
+    def read(pieces: list[bytes], take: bool, calls: int | None = None
+             ) -> tuple[list[Any], list[Any], list[tuple[int, bytes]]]:
+        client = aiomqtt.Client("127.0.0.1", 1, protocol=aiomqtt.ProtocolVersion.V5)
+        paho: Any = client._client
+        got: list[Any] = []
+        acked: list[Any] = []
+        offered: list[tuple[int, bytes]] = []
+        taken: list[tuple[int, bytes]] = []
+
+        def hook(command: int, body: bytes) -> bool:
+            offered.append((command, body))
+            if body[2:2 + ((body[0] << 8) | body[1])].startswith(b"kept/"):
+                taken.append((command, body))
+                return True
+            return False
+
+        if take:
+            lean_receive(client, deliver=got.append)
+            buffered_reads(client, take=hook)
+            paho.on_socket_open(paho, None, _Chunks(pieces))
+        else:
+            paho._sock = _Chunks(pieces)
+            paho.on_message = lambda _c, _u, m: got.append(m)
+        paho._protocol = 5
+        paho.on_publish = lambda _c, _u, mid, reason, _p: acked.append((mid, reason.value))
+        for mid in (7, 8):  # awaiting their PUBACK
+            message = paho_client.MQTTMessage(mid, b"out")
+            message.qos = 1
+            message.info = paho_client.MQTTMessageInfo(mid)
+            paho._out_messages[mid] = message
+            paho._inflight_messages += 1
+        for _ in range(calls if calls is not None else len(pieces) + 100):
+            paho.loop_read()
+        assert all(c & 0xF0 == 0x30 for c, _ in offered)  # PUBLISH packets only
+        return ([(m.topic if isinstance(m.topic, str) else m.topic.value, bytes(m.payload),
+                  m.qos, m.mid) for m in got], acked, taken)
+
+    paho_got, paho_acked, _ = read([data], take=False)
+    assert len(paho_got) == len(kept) + 14 and paho_acked == [(7, 0), (8, 0x10)]
+    want_kept = [(t, p) for t, p, _q, _m in paho_got if t.startswith("kept/")]
+    want_rest = [m for m in paho_got if not m[0].startswith("kept/")]
+    cuts = [[data[:k], data[k:]] for k in range(1, 200)]
+    cuts.append([data[:len(data) - len(b"".join(stream[-3:]))],  # between two packets
+                 b"".join(stream[-3:])])
+    cuts.append([data[k:k + 29] for k in range(0, len(data), 29)])
+    cuts.append([data])
+    for pieces in cuts:
+        got, acked, taken = read(pieces, take=True)
+        # a packet cut by the end of a read is left to paho's reader, taken or not
+        assert ([m for m in got if not m[0].startswith("kept/")], acked) == (
+            want_rest, paho_acked)
+        assert all(command == 0x30 for command, _ in taken)
+        seen = [(b[2:2 + ((b[0] << 8) | b[1])].decode(), b[3 + ((b[0] << 8) | b[1]):])
+                for _, b in taken] + [(t, p) for t, p, _q, _m in got if t.startswith("kept/")]
+        assert sorted(seen, key=want_kept.index) == want_kept  # each once, taken or not
+        if len(pieces) == 1 or len(pieces[0]) == len(data) - len(b"".join(stream[-3:])):
+            assert len(taken) == len(kept)
+    got, acked, taken = read([data], take=True, calls=1)  # one read call, one buffer
+    assert len(taken) == len(kept) and len(got) == 14 and len(acked) == 2
+
+
 async def test_on_acknowledged_wakes_aiomqtt_only_for_its_own_publishes(
         mosquitto: Mosquitto, prefix: str) -> None:
     """Every PUBACK calls the callback; aiomqtt's own handler (which raises and

@@ -242,3 +242,70 @@ async def test_shard_moves_only_once_its_new_holder_receives_it(
         a.request_stop()
         await asyncio.wait_for(task, 20)
         await client.aclose()
+
+
+async def test_standby_fixes_kept_from_the_read_buffer_and_replayed_on_takeover(
+        tmp_path: Path, mosquitto: Mosquitto, redis_server: RedisServer, prefix: str,
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    """A worker standing by for a shard (QoS 0 subscription) keeps that shard's fixes
+    straight from the read buffer (``Daemon._take_raw``) once their topic is known: the
+    first fix of a topic takes paho's way to ``_arrive``, the rest do not, and the kept
+    entries are the messages as published (topic, payload, order), each kept once. When
+    the shard's holder leaves the group without a checkpoint, the worker takes the shard
+    and replays them: every fix answered, the certificate window growing 1, 2, 3, ..."""
+    config = write_config(tmp_path, prefix, broker=mosquitto.url, store=redis_server.url,
+                          metrics="", topic="fleet/{shard}/+/position",
+                          extra='[group]\nname = "g"\nshards = 8\nlease_s = 1.0\n')
+    a = group_daemon(config, "a")
+    arrived: list[str] = []
+    taken: list[bytes] = []
+    arrive, take_raw = a._arrive, a._take_raw
+
+    def spy_arrive(client: aiomqtt.Client, intake: object, message: aiomqtt.Message) -> None:
+        arrived.append(message.topic.value)
+        arrive(client, intake, message)  # type: ignore[arg-type]
+
+    def spy_take(client: aiomqtt.Client, intake: object, command: int, body: bytes) -> bool:
+        took = take_raw(client, intake, command, body)  # type: ignore[arg-type]
+        if took:
+            taken.append(body)
+        return took
+
+    monkeypatch.setattr(a, "_arrive", spy_arrive)
+    monkeypatch.setattr(a, "_take_raw", spy_take)
+    theirs = assign_shards(8, ["a", "b"]).held_by("b")
+    shard = min(theirs)
+    vehicle = next(f"k{i}" for i in range(1000) if shard_of(f"k{i}", 8) == shard)
+    topic = f"{prefix}/fleet/{shard}/{vehicle}/position"
+    feed = drive(vehicle, 8)
+    client = aioredis.Redis.from_url(redis_server.url)
+    task = asyncio.create_task(a.run())
+    try:
+        async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col:
+            await wait_until(lambda: len(a._active) == 8, what="a holds all shards")
+            await client.zadd(f"{prefix}:group:g:members", {"b": 2 ** 50})
+            await client.hset(f"{prefix}:group:g:receives", "b",
+                              ",".join(str(s) for s in sorted(theirs)))
+            await wait_until(lambda: a._subs.get(shard) == 0, what="standing by at QoS 0")
+            assert shard not in a._active
+            arrived.clear()
+            async with publisher(mosquitto.port) as pub:
+                for _, payload in feed:
+                    await pub.publish(topic, payload, qos=1)
+            await wait_until(lambda: len(a._buffers.get(shard, ())) == len(feed),
+                             what="every fix kept")
+            assert [(e[2], e[3]) for e in a._buffers[shard]] == [(topic, p) for _, p in feed]
+            assert arrived == [topic]  # the first one: its topic's shard is learnt there
+            assert len(taken) == len(feed) - 1
+            assert col.records(f"/out/match/{vehicle}") == []  # kept, not matched
+            # "b" leaves without a checkpoint: "a" takes its shards and replays
+            await client.zrem(f"{prefix}:group:g:members", "b")
+            await client.hdel(f"{prefix}:group:g:receives", "b")
+            await wait_until(lambda: len(a._active) == 8, what="a takes b's shards")
+            await col.wait_for(f"/out/match/{vehicle}", len(feed))
+    finally:
+        a.request_stop()
+        await asyncio.wait_for(task, 20)
+        await client.aclose()
+    windows = {r["time"]: r["window_fixes"] for r in col.records(f"/out/match/{vehicle}")}
+    assert [windows[t] for t, _ in feed] == list(range(1, len(feed) + 1))

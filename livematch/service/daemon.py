@@ -77,6 +77,7 @@ from livematch.service.mqtt import (
     JUNK_KEY,
     IntakeQueue,
     ack,
+    ack_mid,
     backoff_delays,
     buffered_reads,
     cap_inflight,
@@ -146,6 +147,10 @@ _REPLAY_CHUNK = 200
 # Most topics whose intake key part is remembered (then forgotten all at once): a
 # bound on memory under a flood of made-up topics (~0.2 KB each).
 _TOPIC_KEYS_MAX = 100_000
+# First byte of a PUBLISH at QoS 0 and at QoS 1, no DUP or RETAIN flag (MQTT 5.0
+# section 3.3.1): what _take_raw takes (a QoS 1 one also with DUP).
+_PUBLISH_QOS0 = 0x30
+_PUBLISH_QOS1 = 0x32
 
 
 class OutputLike(Protocol):
@@ -376,6 +381,9 @@ class Daemon:
         # topic -> the shard its fixes are kept under, -1 for a wrong_shard topic
         # (_kept_shard; only topics naming a valid vehicle id)
         self._topic_shards: dict[str, int] = {}
+        # the same topics' UTF-8 bytes -> (shard, topic), for those kept under a shard
+        # (_take_raw)
+        self._raw_topics: dict[bytes, tuple[int, str]] = {}
         # One shard write at a time: a hand-over's checkpoint must not be overtaken by
         # an older export of the periodic checkpoint (same fencing number, older state).
         self._write_lock = asyncio.Lock()
@@ -1395,7 +1403,10 @@ class Daemon:
         # every message received, whichever way paho decoded it, goes through _arrive
         self._intake.arrive = functools.partial(self._arrive, client, self._intake)
         lean_receive(client, deliver=self._intake.put_nowait)
-        buffered_reads(client)
+        # in a group, another worker's fixes are kept straight from the read buffer
+        # (_take_raw); a standalone daemon keeps nothing, so its packets are not offered
+        buffered_reads(client, take=functools.partial(self._take_raw, client, self._intake)
+                       if self.config.group.name else None)
         cancelled = False
         try:
             async with client:
@@ -1613,8 +1624,60 @@ class Daemon:
         if key.startswith("v:") and vehicle == key[2:]:  # the topic's vehicle, valid
             if len(self._topic_shards) >= _TOPIC_KEYS_MAX:  # bound against topic floods
                 self._topic_shards.clear()
+                self._raw_topics.clear()
             self._topic_shards[topic] = shard
+            if shard >= 0:
+                self._raw_topics[topic.encode()] = (shard, topic)
         return shard
+
+    def _take_raw(self, client: aiomqtt.Client, intake: IntakeQueue, command: int,
+                  body: bytes) -> bool:
+        """Keep another worker's fix straight from the read buffer (``buffered_reads``).
+
+        ``command`` and ``body`` are a whole PUBLISH packet as read from the socket: its
+        first byte, then the variable header and payload (MQTT 5.0 section 3.3). Taken
+        here, and True, only when :meth:`_arrive` would come to the same end: a QoS 0
+        PUBLISH (a standby shard's, ``group.standby_qos``), or a QoS 1 one with nothing
+        waiting in the intake queue (its PUBACK is then next in arrival order), without
+        retain flag or properties, on a topic whose shard :meth:`_kept_shard` has
+        remembered (a valid vehicle id, not a ``wrong_shard`` topic), of a shard this
+        worker does not match (another worker's, or one being replayed), with a payload
+        that passes the type check, while not stopping and with ``buffer_max`` above 0.
+        It is then kept and acknowledged as there, without paho's decoding, an
+        ``aiomqtt.Message``, the topic's decoding or the intake key: a worker of a pair
+        with standbys reads half its feed this way. Anything else returns False and
+        takes paho's way to :meth:`_arrive`, unchanged.
+        """
+        if command != _PUBLISH_QOS0 and (command & 0xF7 != _PUBLISH_QOS1
+                                         or not intake.empty()):
+            return False  # QoS 2, retained, or a PUBACK that must wait its turn
+        size = len(body)
+        if size < 3:
+            return False
+        end = 2 + ((body[0] << 8) | body[1])  # after the topic name
+        known = self._raw_topics.get(body[2:end])
+        if known is None:
+            return False
+        shard, topic = known
+        if (shard in self._active or self._stopping.is_set()
+                or self.config.group.buffer_max == 0):
+            return False
+        mid = -1
+        if command != _PUBLISH_QOS0:
+            if size < end + 2:
+                return False
+            mid = (body[end] << 8) | body[end + 1]
+            end += 2
+        if size <= end or body[end] != 0:
+            return False  # properties: paho's way
+        payload = body[end + 1:]
+        if not looks_like_position(payload, self.config.feed):
+            return False  # junk: not kept (_arrive)
+        self._keep(shard, time.time(), topic, payload)
+        self._received += 1
+        if mid >= 0:
+            ack_mid(client, mid)
+        return True
 
     def _intake_key(self, topic: str, payload: bytes) -> str:
         """The vehicle a received message is about, for shedding (cheap; topic first).

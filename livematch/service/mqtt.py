@@ -264,7 +264,13 @@ class _BufferedSocket:
         return getattr(self._sock, name)
 
 
-def buffered_reads(client: aiomqtt.Client) -> None:
+#: A receiver's look at a whole PUBLISH before paho's (:func:`buffered_reads`): called with
+#: the packet's first byte and the rest (variable header and payload); True when it has
+#: taken the packet (paho does not see it), False to leave it to paho.
+RawTake = Callable[[int, bytes], bool]
+
+
+def buffered_reads(client: aiomqtt.Client, *, take: RawTake | None = None) -> None:
     """Read the broker's socket in large pieces, not one system call per packet part.
 
     paho reads every packet with at least three ``recv`` calls (the first byte, the
@@ -277,6 +283,13 @@ def buffered_reads(client: aiomqtt.Client) -> None:
     to one packet per message in flight, as aiomqtt's reader does per readable event),
     again while bytes are left, one turn of the loop at a time. A read error there ends
     the connection as aiomqtt's reader does. Call before connecting, in the event loop.
+
+    With ``take``, every whole PUBLISH packet found in the buffer is first offered to
+    it (:data:`RawTake`): a daemon of a worker group takes there, from the raw bytes,
+    the fixes it only keeps for another worker's shard, without paho's dispatch, a
+    message object or the intake queue (``Daemon._take_raw``). A packet taken is not
+    counted against the bound of packets per call: reading it costs about as much as
+    finding its end, and the 64 KiB buffer bounds the call.
     """
     paho: Any = client._client
     loop = asyncio.get_running_loop()
@@ -289,7 +302,7 @@ def buffered_reads(client: aiomqtt.Client) -> None:
         sock = paho._sock
         if type(sock) is not _BufferedSocket or paho._in_packet["command"]:
             return plain_loop_read(max_packets)  # not wrapped, or a packet half read
-        return _read_packets(paho, sock, plain_loop_read)
+        return _read_packets(paho, sock, plain_loop_read, take)
 
     def read_on() -> None:
         state["scheduled"] = False
@@ -322,7 +335,8 @@ def buffered_reads(client: aiomqtt.Client) -> None:
 
 
 def _read_packets(paho: Any, sock: _BufferedSocket,
-                  plain_loop_read: Callable[[int], MQTTErrorCode]) -> MQTTErrorCode:
+                  plain_loop_read: Callable[[int], MQTTErrorCode],
+                  take: RawTake | None = None) -> MQTTErrorCode:
     """Read whole packets from a :class:`_BufferedSocket`'s buffer (paho's ``loop_read``).
 
     paho reads a packet with three ``recv`` calls at least (the first byte, the
@@ -338,6 +352,8 @@ def _read_packets(paho: Any, sock: _BufferedSocket,
     What the socket still holds is found by the event loop, which reports it readable
     again; bytes left in the buffer are read on by the scheduled callback of
     :func:`buffered_reads`. Errors end the connection as in paho (``_loop_rc_handle``).
+    A PUBLISH that ``take`` takes (see :func:`buffered_reads`) is not handed to paho and
+    not counted against that bound.
     Relies on paho-mqtt 2.x internals (``_in_packet``, ``_packet_handle``,
     ``_loop_rc_handle``, ``_msgtime_mutex``); the test compares with paho's reading.
     """
@@ -354,13 +370,23 @@ def _read_packets(paho: Any, sock: _BufferedSocket,
             paho._easy_log(MQTT_LOG_ERR, "failed to receive on socket: %s", err)
             return paho._loop_rc_handle(MQTTErrorCode.MQTT_ERR_CONN_LOST)
     rc = MQTTErrorCode.MQTT_ERR_SUCCESS
-    for _ in range(max(_READ_PACKETS_MIN, len(paho._out_messages) + len(paho._in_messages))):
+    bound = max(_READ_PACKETS_MIN, len(paho._out_messages) + len(paho._in_messages))
+    handed = 0
+    taken = 0
+    while handed < bound:
         whole = sock.next_packet()
         if whole is None:
+            if taken:
+                with paho._msgtime_mutex:  # paho's keepalive reads it
+                    paho._last_bytes_received = time_func()
             if sock.leftover():  # part of a packet: paho reads the rest
                 return plain_loop_read(1)
             break
         command, body = whole
+        if take is not None and command & 0xF0 == _PUBLISH and take(command, body):
+            taken += 1
+            continue
+        handed += 1
         paho._in_packet = {"command": command, "have_remaining": 1, "remaining_count": [],
                            "remaining_mult": 1, "remaining_length": len(body),
                            "packet": body, "to_process": 0, "pos": 0}
@@ -1183,12 +1209,16 @@ def ack(client: aiomqtt.Client, message: aiomqtt.Message) -> None:
     QoS 2 takes paho's way.
     """
     if message.qos == 1:
-        paho = client._client
-        if paho._manual_ack:
-            mid = message.mid
-            paho._packet_queue(_PUBACK, bytes((_PUBACK, 2, mid >> 8, mid & 0xFF)), mid, 1)
+        ack_mid(client, message.mid)
     elif message.qos > 1:
         client._client.ack(message.mid, message.qos)
+
+
+def ack_mid(client: aiomqtt.Client, mid: int) -> None:
+    """PUBACK the QoS 1 message with packet identifier ``mid`` now (see :func:`ack`)."""
+    paho = client._client
+    if paho._manual_ack:
+        paho._packet_queue(_PUBACK, bytes((_PUBACK, 2, mid >> 8, mid & 0xFF)), mid, 1)
 
 
 def backoff_delays(min_s: float, max_s: float, *, rng: random.Random | None = None
