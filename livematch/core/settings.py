@@ -227,6 +227,18 @@ class MatchSettings:
             then holds a line per fix with a live answer, refused fixes included (marked
             ``"held": true``; the refusal is still counted by reason); off, a line per
             accepted fix only, as before.
+        stand_at_vertex: a committed stand just past a vertex is reported at the vertex:
+            where the path enters a segment from a vertex V and the fixes matched on that
+            segment from the entry on span at least 10 s and all lie within eps of V (as
+            does the fix before them), they are reported at V, as the end of the segment
+            the path came in by (:meth:`livematch.core.tracker.Tracker._stand_at_vertex`;
+            the path and the certificate are unchanged). While a vehicle stands its GNSS
+            error leans one way for tens of seconds and the best path follows it a few
+            metres onto the road beyond V; when the vehicle then leaves another way (the
+            way it came after a turn in the street, read as a trip round the block, or
+            the log ends during the stand), the stand was committed on a road it never
+            drove. ``stand_loops`` cuts such a stand out only when the path comes back
+            to V in the same commit. Final answers only; live answers are unaffected.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -262,6 +274,7 @@ class MatchSettings:
     vertex_in_segment: bool = True
     reverse_turns: bool = False
     hold_filtered: bool = True
+    stand_at_vertex: bool = True
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -293,7 +306,7 @@ class MatchSettings:
         for name in ("street_turns", "stop_turns", "stand_wait", "stand_hold",
                      "pace_reach", "stand_loops", "stand_commit_wait", "sparse_stand_wait",
                      "stand_loops_outer", "vertex_in_segment", "reverse_turns",
-                     "hold_filtered"):
+                     "hold_filtered", "stand_at_vertex"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):
