@@ -3,6 +3,7 @@ through Tracker.update and Tracker.flush, checked with shapely's distances."""
 
 from __future__ import annotations
 
+import itertools
 from dataclasses import replace
 
 import pytest
@@ -83,7 +84,7 @@ def test_reported_points_keep_the_certificate() -> None:
     fixes = APPROACH + LEAN
     new, _ = _settled(MatchSettings(), fixes)
     xs = [f.x for f in new]
-    assert all(b >= a - 1e-9 for a, b in zip(xs, xs[1:], strict=False))
+    assert all(b >= a - 1e-9 for a, b in itertools.pairwise(xs))
     answered = shapely.LineString([(f.x, f.y) for f in new])
     # densify 0.1: GEOS's discrete Fréchet took minutes at 0.05-0.07
     assert shapely.frechet_distance(shapely.LineString(fixes), answered, densify=0.1) <= 15.0
@@ -123,5 +124,5 @@ def test_the_key_is_validated() -> None:
                                          "a.toml").stand_at_vertex is False
     assert [k for k, _ in replace(MatchSettings(), stand_at_vertex=1).problems()] == [
         "stand_at_vertex"]
-    with pytest.raises(BadConfigError, match="matcher.stand_at_vertex"):
+    with pytest.raises(BadConfigError, match=r"matcher\.stand_at_vertex"):
         matcher_settings_from_mapping({"stand_at_vertex": "yes"}, "a.toml")
