@@ -21,13 +21,13 @@ shapely = pytest.importorskip("shapely")
 
 # A two-way road west-east with a shape point every 10 m (plain points in the middle of a
 # road). A van drives east at 10 m/s to the shape point at x = 200 (fix 17) and stands
-# there for 40 s while the GNSS error leans east, along the road, by up to 7 m (a slow,
+# there for 40 s while the GNSS error leans east, along the road, by up to 4 m (a slow,
 # correlated drift; invented data shaped like the simulator's): the best path follows it
 # onto the segment 200 -> 210, which the van never drives.
 V = 200.0
 STAND = range(18, 58)  # fix indices of the stand
 APPROACH = [(30.0 + 10.0 * i, 1.0) for i in range(18)]
-LEAN = [(V + min(7.0, 0.5 * i), 1.0) for i in range(1, 41)]
+LEAN = [(V + min(4.0, 0.3 * i), 1.0) for i in range(1, 41)]
 
 
 def _network() -> RoadNetwork:
@@ -95,7 +95,7 @@ def test_a_van_that_drives_on_keeps_the_road_it_drove() -> None:
     through x = 200, the stand is reported at the vertex on the segment before it (on the
     road driven either way), and the fixes after the stand keep their answers."""
     net = _network()
-    fixes = APPROACH + LEAN + [(V + 7.0 + 10.0 * i, 1.0) for i in range(1, 16)]
+    fixes = APPROACH + LEAN + [(V + 4.0 + 10.0 * i, 1.0) for i in range(1, 16)]
     old, old_path = _settled(MatchSettings(stand_at_vertex=False), fixes)
     new, new_path = _settled(MatchSettings(), fixes)
     assert new_path == old_path
@@ -126,3 +126,16 @@ def test_the_key_is_validated() -> None:
         "stand_at_vertex"]
     with pytest.raises(BadConfigError, match=r"matcher\.stand_at_vertex"):
         matcher_settings_from_mapping({"stand_at_vertex": "yes"}, "a.toml")
+
+
+def test_a_stand_nearer_the_next_vertex_stays_where_it_was() -> None:
+    """A van that stands 8 m past the shape point at x = 200 (2 m short of the one at
+    x = 210) is not moved back to x = 200: it is nearer the far end of its segment, where
+    it may have stood; the answers are the same with and without the rule, and each lies
+    within 3 m of x = 208 (shapely's Point.distance)."""
+    fixes = APPROACH[:-1] + [(198.0, 1.0)] + [(208.0, 1.0)] * 30
+    old = _settled(MatchSettings(stand_at_vertex=False), fixes)
+    new = _settled(MatchSettings(), fixes)
+    assert new == old
+    for f in new[0][len(APPROACH) + 1:]:
+        assert shapely.Point(f.x, f.y).distance(shapely.Point(208.0, 0.0)) <= 3.0

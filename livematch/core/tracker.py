@@ -1377,8 +1377,11 @@ class Tracker:
         from that entry on form a run whose fixes span at least ``STAND_S`` seconds and
         all lie within ``eps`` of V, as does the fix before the run, those fixes are
         reported at V, as the end of P. The path is unchanged (P and S are both on it).
-        The run stops at the first node that leaves S or whose fix lies farther than
-        ``eps`` from V; later nodes keep their answers.
+        The run stops at the first node that leaves S, lies nearer the far end of S than
+        V (the vehicle may have stood at that vertex instead) or whose fix lies farther
+        than ``eps`` from V; later nodes keep their answers. Not where P is the twin of
+        S (the path turned round at V: at the start of a stretch, P can be a segment
+        the vehicle never drove).
 
         Why: while a vehicle stands at V its GNSS error leans one way for tens of
         seconds, and the best path follows it a few metres onto the road beyond V. When
@@ -1429,7 +1432,8 @@ class Tracker:
             # an entry into n.seg from its start vertex, and the segment it came in by
             seg_in = n.via[-1] if n.via else (
                 prev.seg if prev is not None and prev.seg != n.seg else -1)
-            if seg_in < 0 or prev is None or view.st[seg_in] != view.sf[n.seg]:
+            if (seg_in < 0 or prev is None or view.st[seg_in] != view.sf[n.seg]
+                    or seg_in == view.twin[n.seg]):
                 k += 1
                 continue
             v = int(view.sf[n.seg])
@@ -1437,7 +1441,7 @@ class Tracker:
             vy = float(view.vy[v])
             m = k
             while (m < len(chain) and chain[m].seg == n.seg and (m == k or not chain[m].via)
-                   and near(chain[m], vx, vy)):
+                   and chain[m].pos <= 0.5 and near(chain[m], vx, vy)):
                 m += 1
             if m > k and chain[m - 1].t - n.t >= STAND_S and near(prev, vx, vy):
                 end = float(view.slen[seg_in])
