@@ -19,6 +19,8 @@ from livematch.pipeline import matcher_settings_from_mapping
 
 shapely = pytest.importorskip("shapely")
 
+ON = MatchSettings(stand_at_vertex=True)
+
 # A two-way road west-east with a shape point every 10 m (plain points in the middle of a
 # road). A van drives east at 10 m/s to the shape point at x = 200 (fix 17) and stands
 # there for 40 s while the GNSS error leans east, along the road, by up to 4 m (a slow,
@@ -54,14 +56,14 @@ def _line(net: RoadNetwork, seg: int) -> shapely.LineString:
 
 def test_a_stand_at_the_end_of_the_log_is_reported_at_the_vertex() -> None:
     """The log ends while the van stands (the flush commits it). Without the rule the
-    stand's later fixes are committed on 200 -> 210, beyond the vertex; with it (default)
+    stand's later fixes are committed on 200 -> 210, beyond the vertex; with it
     every fix of the stand is reported at x = 200 as the end of the segment 190 -> 200
     (shapely: the point lies on that segment's line, at its end), each within eps (15 m)
     of its fix (shapely's Point.distance), and the committed path is the same."""
     net = _network()
     fixes = APPROACH + LEAN
     old, old_path = _settled(MatchSettings(stand_at_vertex=False), fixes)
-    new, new_path = _settled(MatchSettings(), fixes)
+    new, new_path = _settled(ON, fixes)
     assert [f.t for f in old] == [f.t for f in new] == [float(i) for i in range(len(fixes))]
     assert new_path == old_path
     past = [f for f in old[STAND.start:] if float(net.node_xy[net.seg_from[f.segment], 0]) >= V]
@@ -82,7 +84,7 @@ def test_reported_points_keep_the_certificate() -> None:
     within Fréchet distance eps: shapely's frechet_distance (a discrete distance over the
     densified curves) of the two polylines is at most 15 m."""
     fixes = APPROACH + LEAN
-    new, _ = _settled(MatchSettings(), fixes)
+    new, _ = _settled(ON, fixes)
     xs = [f.x for f in new]
     assert all(b >= a - 1e-9 for a, b in itertools.pairwise(xs))
     answered = shapely.LineString([(f.x, f.y) for f in new])
@@ -97,7 +99,7 @@ def test_a_van_that_drives_on_keeps_the_road_it_drove() -> None:
     net = _network()
     fixes = APPROACH + LEAN + [(V + 4.0 + 10.0 * i, 1.0) for i in range(1, 16)]
     old, old_path = _settled(MatchSettings(stand_at_vertex=False), fixes)
-    new, new_path = _settled(MatchSettings(), fixes)
+    new, new_path = _settled(ON, fixes)
     assert new_path == old_path
     after = STAND.stop + 2
     assert new[after:] == old[after:]
@@ -115,7 +117,7 @@ def test_no_stand_no_change() -> None:
     short = APPROACH + LEAN[:6] + [(V + 3.0 + 10.0 * i, 1.0) for i in range(1, 15)]
     for fixes in (through, short):
         old = _settled(MatchSettings(stand_at_vertex=False), fixes)
-        assert _settled(MatchSettings(), fixes) == old
+        assert _settled(ON, fixes) == old
 
 
 def test_the_key_is_validated() -> None:
@@ -135,7 +137,7 @@ def test_a_stand_nearer_the_next_vertex_stays_where_it_was() -> None:
     within 3 m of x = 208 (shapely's Point.distance)."""
     fixes = APPROACH[:-1] + [(198.0, 1.0)] + [(208.0, 1.0)] * 30
     old = _settled(MatchSettings(stand_at_vertex=False), fixes)
-    new = _settled(MatchSettings(), fixes)
+    new = _settled(ON, fixes)
     assert new == old
     for f in new[0][len(APPROACH) + 1:]:
         assert shapely.Point(f.x, f.y).distance(shapely.Point(208.0, 0.0)) <= 3.0

@@ -239,6 +239,13 @@ class MatchSettings:
             the log ends during the stand), the stand was committed on a road it never
             drove. ``stand_loops`` cuts such a stand out only when the path comes back
             to V in the same commit. Final answers only; live answers are unaffected.
+            Off by default, for the lead to decide: on bench/accuracy.py's drives (80
+            per case, seeds 31 / 77, ``--intervals 1,5``, both extracts) final accuracy
+            rises on routed trips by 0.26-0.57 points (Helsinki 1 s 0.9737 / 0.9632 ->
+            0.9769 / 0.9658) and by -0.02 to +0.12 on the random walk, live and route mismatch
+            unchanged, but one cell loses 3 fixes (random walk, test extract, 5 s, seed
+            77: a stand at a drive's start moved onto the segment the first stretch
+            began on) (docs/measured.md, "Session 11 (fleetfinal)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -274,7 +281,7 @@ class MatchSettings:
     vertex_in_segment: bool = True
     reverse_turns: bool = False
     hold_filtered: bool = True
-    stand_at_vertex: bool = True
+    stand_at_vertex: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
