@@ -227,6 +227,25 @@ class MatchSettings:
             then holds a line per fix with a live answer, refused fixes included (marked
             ``"held": true``; the refusal is still counted by reason); off, a line per
             accepted fix only, as before.
+        stand_at_vertex: a committed stand just past a vertex is reported at the vertex:
+            where the path enters a segment from a vertex V and the fixes matched on that
+            segment from the entry on span at least 10 s and all lie within eps of V (as
+            does the fix before them), they are reported at V, as the end of the segment
+            the path came in by (:meth:`livematch.core.tracker.Tracker._stand_at_vertex`;
+            the path and the certificate are unchanged). While a vehicle stands its GNSS
+            error leans one way for tens of seconds and the best path follows it a few
+            metres onto the road beyond V; when the vehicle then leaves another way (the
+            way it came after a turn in the street, read as a trip round the block, or
+            the log ends during the stand), the stand was committed on a road it never
+            drove. ``stand_loops`` cuts such a stand out only when the path comes back
+            to V in the same commit. Final answers only; live answers are unaffected.
+            Off by default, for the lead to decide: on bench/accuracy.py's drives (80
+            per case, seeds 31 / 77, ``--intervals 1,5``, both extracts) final accuracy
+            rises on routed trips by 0.26-0.57 points (Helsinki 1 s 0.9737 / 0.9632 ->
+            0.9769 / 0.9658) and by -0.02 to +0.12 on the random walk, live and route mismatch
+            unchanged, but one cell loses 3 fixes (random walk, test extract, 5 s, seed
+            77: a stand at a drive's start moved onto the segment the first stretch
+            began on) (docs/measured.md, "Session 11 (fleetfinal)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -262,6 +281,7 @@ class MatchSettings:
     vertex_in_segment: bool = True
     reverse_turns: bool = False
     hold_filtered: bool = True
+    stand_at_vertex: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -293,7 +313,7 @@ class MatchSettings:
         for name in ("street_turns", "stop_turns", "stand_wait", "stand_hold",
                      "pace_reach", "stand_loops", "stand_commit_wait", "sparse_stand_wait",
                      "stand_loops_outer", "vertex_in_segment", "reverse_turns",
-                     "hold_filtered"):
+                     "hold_filtered", "stand_at_vertex"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

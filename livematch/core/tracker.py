@@ -1361,6 +1361,8 @@ class Tracker:
                     if seg_in >= 0:
                         fixes[k] = MatchedFix(n.t, seg_in, float(view.slen[seg_in]), n.x, n.y)
                 prev = n
+        if self.settings.stand_at_vertex and (goes_on or len(chain) >= 2):
+            self._stand_at_vertex(chain, before, goes_on, self._eps_of(tree), fixes)
         if starts and first.pos >= 1.0:
             # A stretch that starts at the very end of a segment drives none of it: report
             # its first fix at the start of the segment entered next (the same point) and
@@ -1381,6 +1383,89 @@ class Tracker:
         self.last_commit = (top.seg, top.pos, top.seq, top.t)
         if prune is not None:
             prune.tree.prune(row)
+
+    def _stand_at_vertex(
+        self, chain: list[Node], before: Node | None, goes_on: bool, eps: float,
+        fixes: list[MatchedFix],
+    ) -> None:
+        """Report a stand just past a vertex at the vertex, in ``fixes`` (in place).
+
+        Rule (``MatchSettings.stand_at_vertex``): where the committed path enters a
+        segment S from a vertex V (coming in by segment P) and the nodes matched on S
+        from that entry on form a run whose fixes span at least ``STAND_S`` seconds and
+        all lie within ``eps`` of V, as does the fix before the run, those fixes are
+        reported at V, as the end of P. The path is unchanged (P and S are both on it).
+        The run stops at the first node that leaves S, lies nearer the far end of S than
+        V (the vehicle may have stood at that vertex instead) or whose fix lies farther
+        than ``eps`` from V; later nodes keep their answers. Not where P is the twin of
+        S (the path turned round at V: at the start of a stretch, P can be a segment
+        the vehicle never drove).
+
+        Why: while a vehicle stands at V its GNSS error leans one way for tens of
+        seconds, and the best path follows it a few metres onto the road beyond V. When
+        the vehicle then leaves by another way (the way it came, after a turn in the
+        street, or round the block), S is a road it never drove, yet the stand was
+        committed on it; the path cost cannot tell, because it charges each fix's error
+        as independent. Fixes within eps of one point for ``STAND_S`` seconds show no
+        movement onto S; V is where the path was when they began, and P is on the
+        driven path whatever the vehicle did next. :meth:`_close_stand_loops` cuts such
+        a stand out when the path comes back to V within one commit; this covers the
+        stands whose path goes on from S (round a block, or the end of the log).
+
+        The certificate still holds: the fixes of the run and the fix before it lie
+        within eps of V, so the trace from that earlier fix to the run's last fix lies
+        within eps of V (a disc is convex) and is matched to V, the path's points
+        before V keeping their matching; after the run's last fix the path runs on
+        from V along S to where that fix was matched (one straight piece, both ends
+        within eps of the fix: the sweep matched it there) and on as before.
+
+        Example (no stand: nothing changes):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "v1")
+            >>> a = Node(0, 1, 0.0, 0.1, 10.0, 0.0, None, (), 0.0, 0.0)
+            >>> b = Node(0, 2, 1.0, 0.2, 20.0, 0.0, a, (), 0.0, 0.0)
+            >>> out = [MatchedFix(1.0, 0, 20.0, 20.0, 0.0)]
+            >>> tracker._stand_at_vertex([b], a, True, 15.0, out)
+            >>> out == [MatchedFix(1.0, 0, 20.0, 20.0, 0.0)]
+            True
+        """
+        view = self._view
+        seq0 = self.fix_seq0
+        xy = self.fix_xy
+        radius2 = eps * eps
+
+        def near(node: Node, vx: float, vy: float) -> bool:
+            r = node.seq - seq0
+            if not 0 <= r < self.fix_n:
+                return False
+            dx = xy.item(r, 0) - vx
+            dy = xy.item(r, 1) - vy
+            return dx * dx + dy * dy <= radius2
+
+        k = 0 if goes_on else 1
+        while k < len(chain):
+            n = chain[k]
+            prev = chain[k - 1] if k else before
+            # an entry into n.seg from its start vertex, and the segment it came in by
+            seg_in = n.via[-1] if n.via else (
+                prev.seg if prev is not None and prev.seg != n.seg else -1)
+            if (seg_in < 0 or prev is None or view.st[seg_in] != view.sf[n.seg]
+                    or seg_in == view.twin[n.seg]):
+                k += 1
+                continue
+            v = int(view.sf[n.seg])
+            vx = float(view.vx[v])
+            vy = float(view.vy[v])
+            m = k
+            while (m < len(chain) and chain[m].seg == n.seg and (m == k or not chain[m].via)
+                   and chain[m].pos <= 0.5 and near(chain[m], vx, vy)):
+                m += 1
+            if m > k and chain[m - 1].t - n.t >= STAND_S and near(prev, vx, vy):
+                end = float(view.slen[seg_in])
+                for j in range(k, m):
+                    fixes[j] = MatchedFix(chain[j].t, seg_in, end, vx, vy)
+            k = max(m, k + 1)
 
     def _eps_of(self, tree: CandidateTree) -> float:
         """The eps of the level whose tree is ``tree``, in metres.
