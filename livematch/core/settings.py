@@ -227,6 +227,17 @@ class MatchSettings:
             then holds a line per fix with a live answer, refused fixes included (marked
             ``"held": true``; the refusal is still counted by reason); off, a line per
             accepted fix only, as before.
+        live_keep: hysteresis of the live answer (score units, 0 disables): when a live
+            candidate of the deciding level lies on the segment of the previous live
+            answer and ranks within ``live_keep`` of the best one (live score, see
+            ``error_tau_s``; path cost when that is off), the live answer stays on it
+            (:meth:`livematch.core.tracker.Tracker._keep_segment`). GNSS error is
+            correlated in time: a lean of a few metres towards a side road, a parallel
+            road or the other carriageway makes the candidate there rank best by a small
+            margin for a few fixes, and without it the live answer jumps there and back.
+            Any live candidate of the deciding level carries the same certificate.
+            Commits and final answers are unaffected (the forced-commit tie-break reads
+            the live answer's segment, as before).
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -262,6 +273,7 @@ class MatchSettings:
     vertex_in_segment: bool = True
     reverse_turns: bool = False
     hold_filtered: bool = True
+    live_keep: float = 0.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -286,7 +298,7 @@ class MatchSettings:
         if not (isinstance(self.max_lag_fixes, int) and self.max_lag_fixes >= 2):
             out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
         for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s",
-                     "spike_cost", "street_turn_cost", "join_detour"):
+                     "spike_cost", "street_turn_cost", "join_detour", "live_keep"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))
