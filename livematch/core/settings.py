@@ -236,6 +236,11 @@ class MatchSettings:
             road or the other carriageway makes the candidate there rank best by a small
             margin for a few fixes, and without it the live answer jumps there and back.
             Any live candidate of the deciding level carries the same certificate.
+            Only while fixes come at most 5 s apart (``livematch.core.tracker.SPARSE_S``):
+            sparser, the vehicle passes several segments per step and staying on one
+            means standing or turning back. Off by default (no 80-drive decision run
+            yet); 15 was best of 3 / 8 / 15 / 30 / 60 on 20-drive throwaway runs (seeds
+            31 / 77, docs/measured.md "Session 11 (livemove)").
             Commits and final answers are unaffected (the forced-commit tie-break reads
             the live answer's segment, as before).
     """

@@ -709,7 +709,8 @@ class Tracker:
         best, split = tree.live_answer(self._view, self.last_seg, self.fix_xy, self.fix_n,
                                        self.fix_seq0, self.next_commit - 1, self._weights[0],
                                        s.error_tau_s if scored else 0.0, s.gap_s, margin)
-        if s.live_keep > 0.0 and self.last_seg >= 0 and tree.seg_of(best) != self.last_seg:
+        if (s.live_keep > 0.0 and 0.0 < dt <= SPARSE_S and self.last_seg >= 0
+                and tree.seg_of(best) != self.last_seg):
             kept = self._keep_segment(level, best, scored)
             if kept is not None:
                 best, score = kept
@@ -733,6 +734,12 @@ class Tracker:
         small hysteresis (an answer switches on evidence, not on every slight lean).
         Every live row of the deciding level has the same certificate (all are within
         Fréchet distance eps of the window), so the certificate is unchanged.
+
+        Only for fixes at most ``SPARSE_S`` apart (asked by :meth:`_live_answer`): at 15 s
+        between fixes a vehicle drives past several segments, and a candidate still on
+        the last answer's segment is one that stood or turned back (on 20 random-walk
+        drives at 15 s, seed 77, the rule without this bound cost 1.5 points of live
+        accuracy; an engineer's throwaway run, docs/measured.md "Session 11 (livemove)").
         """
         s = self.settings
         tree = level.tree
