@@ -20,7 +20,7 @@ from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
 from livematch.core.settings import MatchSettings
 from livematch.core.tracker import Tracker
-from tests.catalogue import fixes_along
+from tests.catalogue import dead_end, fixes_along
 
 DENSIFY_M = 0.5
 ROAD_A = [(float(x), 0.0) for x in range(0, 1001, 50)]
@@ -101,6 +101,28 @@ def test_evidence_still_moves_the_answer_within_a_segment() -> None:
     first = stuck.index(2)
     assert LEAN <= first <= LEAN + 5
     assert stuck[first:] == [2] * (len(fixes) - first)
+
+
+def test_a_turn_round_is_not_held_back() -> None:
+    """Up a 300 m cul-de-sac and back (fixes 2 m off its centre line): a candidate on the
+    reverse of the last answer's segment is never out-ranked by the rule, so even with a
+    margin no candidate can overcome the answer turns round at the same fix as without it
+    (held back, it said "northbound" a fix after the turn)."""
+    net = dead_end()
+    ys = list(range(10, 301, 10)) + list(range(290, 0, -10))
+    fixes = fixes_along([(502.0, float(y)) for y in ys])
+
+    def headings(keep: float) -> str:
+        out = []
+        for e in _run(net, fixes, keep):
+            if isinstance(e, Assignment):
+                a, b = net.seg_from[e.segment], net.seg_to[e.segment]
+                out.append("N" if net.node_xy[b][1] > net.node_xy[a][1] else "S")
+        return "".join(out)
+
+    plain = headings(0.0)
+    assert plain == "N" * 31 + "S" * 28  # the end is fix 29 (y = 300); "S" from fix 31
+    assert headings(1000.0) == plain
 
 
 def test_off_is_the_plain_ranking() -> None:
