@@ -238,9 +238,13 @@ class MatchSettings:
             Any live candidate of the deciding level carries the same certificate.
             Only while fixes come at most 5 s apart (``livematch.core.tracker.SPARSE_S``):
             sparser, the vehicle passes several segments per step and staying on one
-            means standing or turning back. Off by default (no 80-drive decision run
-            yet); 15 was best of 3 / 8 / 15 / 30 / 60 on 20-drive throwaway runs (seeds
-            31 / 77, docs/measured.md "Session 11 (livemove)").
+            means standing or turning back. Nor against a best candidate on the reverse
+            of that segment (a turn round is motion, not a lean). Off by default (no
+            80-drive decision run yet). 15 is the value tried: on 20-drive throwaway runs
+            (seeds 31 / 77, docs/measured.md "Session 11 (livemove)") it gained 0.2-1.2
+            points of live accuracy on the routed trips at 1-5 s and 0.5 on the random
+            walk at Helsinki 1 s, and lost 0.02-0.2 on two random-walk cells; larger
+            margins gained more on the trips at 1 s but less on the random walk.
             Commits and final answers are unaffected (the forced-commit tie-break reads
             the live answer's segment, as before).
     """
