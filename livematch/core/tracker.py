@@ -739,7 +739,7 @@ class Tracker:
         Not when the best row is on the reverse of the last answer's segment: a turn
         round shows in the fixes' motion, not in a lean (on 20 random-walk drives, test
         extract, 1 s, seed 31, the rule without this kept the old direction after dead-end
-        turns: 16 of its 33 new misses; throwaway run, as below).
+        turns: 16 of its 33 new misses while moving; throwaway run, as below).
 
         Only for fixes at most ``SPARSE_S`` apart (asked by :meth:`_live_answer`): at 15 s
         between fixes a vehicle drives past several segments, and a candidate still on
