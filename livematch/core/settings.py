@@ -239,12 +239,12 @@ class MatchSettings:
             Only while fixes come at most 5 s apart (``livematch.core.tracker.SPARSE_S``):
             sparser, the vehicle passes several segments per step and staying on one
             means standing or turning back. Nor against a best candidate on the reverse
-            of that segment (a turn round is motion, not a lean). Off by default (no
-            80-drive decision run yet). 15 is the value tried: on 20-drive throwaway runs
-            (seeds 31 / 77, docs/measured.md "Session 11 (livemove)") it gained 0.2-1.2
-            points of live accuracy on the routed trips at 1-5 s and 0.5 on the random
-            walk at Helsinki 1 s, and lost 0.02-0.2 on two random-walk cells; larger
-            margins gained more on the trips at 1 s but less on the random walk.
+            of that segment (a turn round is motion, not a lean). Off by default: with 15,
+            on bench/accuracy.py's 80-drive runs (seeds 31 / 77, both extracts) live
+            accuracy on the routed trips (``--sim trips``) rose 0.2-1.1 points at 1-5 s,
+            but on the random walk it fell 0.01-0.37 points; 15 s unchanged, final
+            answers and route mismatch identical (docs/measured.md "Session 11
+            (livemove)"). For fleets like the routed trips, 15.
             Commits and final answers are unaffected (the forced-commit tie-break reads
             the live answer's segment, as before).
     """
