@@ -246,6 +246,26 @@ class MatchSettings:
             unchanged, but one cell loses 3 fixes (random walk, test extract, 5 s, seed
             77: a stand at a drive's start moved onto the segment the first stretch
             began on) (docs/measured.md, "Session 11 (fleetfinal)").
+        live_keep: hysteresis of the live answer (score units, 0 disables): when a live
+            candidate of the deciding level lies on the segment of the previous live
+            answer and ranks within ``live_keep`` of the best one (live score, see
+            ``error_tau_s``; path cost when that is off), the live answer stays on it
+            (:meth:`livematch.core.tracker.Tracker._keep_segment`). GNSS error is
+            correlated in time: a lean of a few metres towards a side road, a parallel
+            road or the other carriageway makes the candidate there rank best by a small
+            margin for a few fixes, and without it the live answer jumps there and back.
+            Any live candidate of the deciding level carries the same certificate.
+            Only while fixes come at most 5 s apart (``livematch.core.tracker.SPARSE_S``):
+            sparser, the vehicle passes several segments per step and staying on one
+            means standing or turning back. Nor against a best candidate on the reverse
+            of that segment (a turn round is motion, not a lean). Off by default: with 15,
+            on bench/accuracy.py's 80-drive runs (seeds 31 / 77, both extracts) live
+            accuracy on the routed trips (``--sim trips``) rose 0.2-1.1 points at 1-5 s,
+            but on the random walk it fell 0.01-0.37 points; 15 s unchanged, final
+            answers and route mismatch identical (docs/measured.md "Session 11
+            (livemove)"). For fleets like the routed trips, 15.
+            Commits and final answers are unaffected (the forced-commit tie-break reads
+            the live answer's segment, as before).
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -282,6 +302,7 @@ class MatchSettings:
     reverse_turns: bool = False
     hold_filtered: bool = True
     stand_at_vertex: bool = False
+    live_keep: float = 0.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -306,7 +327,7 @@ class MatchSettings:
         if not (isinstance(self.max_lag_fixes, int) and self.max_lag_fixes >= 2):
             out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
         for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s",
-                     "spike_cost", "street_turn_cost", "join_detour"):
+                     "spike_cost", "street_turn_cost", "join_detour", "live_keep"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))
