@@ -78,9 +78,10 @@ def test_reverse_turns_near_leaves_dense_fixes_alone(lean: float) -> None:
 
 # Plain data (made up for the test): a two-way main road west-east from x = -400 to a dead
 # end at x = 1000, shape points at -300 .. 100 every 100 m and at x = 250, the junction
-# x = 350 with a side road north (300 m, a dead end). A car drives east at about 13 m/s, passes x = 150 at t = 30 s, turns round
-# at the junction x = 350 (where the network allows it) and is back at x = 120 at t = 60
-# s. Its fixes reverse at x = 150 as a dwelling van's do, but no vertex lies near that fix.
+# x = 350 with a side road north (300 m, a dead end). A car drives east at about 13 m/s,
+# passes x = 150 at t = 30 s, turns round at the junction x = 350 (where the network
+# allows it) and is back at x = 120 at t = 60 s. Its fixes reverse at x = 150 as a
+# dwelling van's do, but no vertex lies within eps of that fix ahead of it.
 MAIN = [(-400.0, 0.0), (-300.0, 0.0), (-200.0, 0.0), (-100.0, 0.0), (0.0, 0.0),
         (100.0, 0.0), (250.0, 0.0), (350.0, 0.0), (1000.0, 0.0)]
 SIDE = [(350.0, 0.0), (350.0, 300.0)]
