@@ -229,7 +229,13 @@ class MatchSettings:
             at any vertex of the street, which also gives a walk that came back round a
             block, or past the end of a dead end, a shorter route never driven (most
             reversals of the random walk are not turns; docs/measured.md, "Session 10
-            (reverse2)"). No effect with ``reverse_turns`` on (which opens more).
+            (reverse2)"). No effect with ``reverse_turns`` on (which opens more). Off by
+            default: on bench/accuracy.py's drives (80, seeds 31 / 77) the routed trips
+            gain at 30 s (final +0.16 to +0.61 points, route mismatch -0.2 to -0.9), but
+            the random walk still loses at 30 s (test extract final -0.20 / -0.08 points,
+            route mismatch +0.19 / +0.05; Helsinki seed 77 +0.31), about as with
+            ``reverse_turns``: its loss is turns at the reversing fix itself
+            (docs/measured.md, "Session 11 (sparse3)").
         hold_filtered: a fix the filters refuse (``impossible_jump``, ``low_accuracy``)
             gets a live answer too: the newest live answer again, at the refused fix's
             time, with its certificate, while that answer is at most ``gap_s`` old

@@ -418,7 +418,8 @@ class Tracker:
         if prev is not None and fix.t > prev[0]:
             self.speed = math.hypot(fix.x - prev[1], fix.y - prev[2]) / (fix.t - prev[0])
         dt = fix.t - prev[0] if prev is not None else 0.0
-        # (asked only with reverse_turns: a bridge may then turn in the street)
+        # (asked only with reverse_turns or reverse_turns_near: a bridge may then turn in
+        # the street, anywhere or only near prev)
         turned = ((s.reverse_turns or s.reverse_turns_near)
                   and self._turned_round(fix, prev, dt)
                   and not self._dead_end_ahead(fix, prev, dt, came_speed))
