@@ -217,6 +217,25 @@ class MatchSettings:
             still rises 0.2-0.35 points on seed 77 with the dead-end check (0.5-0.6
             without it) (docs/measured.md, "Session 10 (sparse30)" and "Session 10
             (reverse2)").
+        reverse_turns_near: ``reverse_turns``' evidence (a gap step whose fixes went back
+            the way the step before came, no dead end ahead within reach:
+            :meth:`livematch.core.tracker.Tracker._turned_round`, :meth:`livematch.core.
+            tracker.Tracker._dead_end_ahead`) opens a turn in the street at one place
+            only: the vertex where each live state's segment ends, when it lies within
+            eps of the reversing fix (:func:`livematch.core.sweep.bridge_step`; charged
+            ``turn_back_cost`` plus ``street_turn_cost`` where the network has no
+            U-turn). A van that dwelt at a plain point of a road and left the way it
+            came turned where its dwell fix was; ``reverse_turns`` lets the bridge turn
+            at any vertex of the street, which also gives a walk that came back round a
+            block, or past the end of a dead end, a shorter route never driven (most
+            reversals of the random walk are not turns; docs/measured.md, "Session 10
+            (reverse2)"). No effect with ``reverse_turns`` on (which opens more). Off by
+            default: on bench/accuracy.py's drives (80, seeds 31 / 77) the routed trips
+            gain at 30 s (final +0.16 to +0.61 points, route mismatch -0.2 to -0.9), but
+            the random walk still loses at 30 s (test extract final -0.20 / -0.08 points,
+            route mismatch +0.19 / +0.05; Helsinki seed 77 +0.31), about as with
+            ``reverse_turns``: its loss is turns at the reversing fix itself
+            (docs/measured.md, "Session 11 (sparse3)").
         hold_filtered: a fix the filters refuse (``impossible_jump``, ``low_accuracy``)
             gets a live answer too: the newest live answer again, at the refused fix's
             time, with its certificate, while that answer is at most ``gap_s`` old
@@ -300,6 +319,7 @@ class MatchSettings:
     stand_loops_outer: bool = True
     vertex_in_segment: bool = True
     reverse_turns: bool = False
+    reverse_turns_near: bool = False
     hold_filtered: bool = True
     stand_at_vertex: bool = False
     live_keep: float = 0.0
@@ -334,7 +354,7 @@ class MatchSettings:
         for name in ("street_turns", "stop_turns", "stand_wait", "stand_hold",
                      "pace_reach", "stand_loops", "stand_commit_wait", "sparse_stand_wait",
                      "stand_loops_outer", "vertex_in_segment", "reverse_turns",
-                     "hold_filtered", "stand_at_vertex"):
+                     "reverse_turns_near", "hold_filtered", "stand_at_vertex"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

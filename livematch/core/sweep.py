@@ -113,23 +113,28 @@ class StepContext:
     pace_cost: float = 0.0
     street_turns: bool = False
     street_turn_cost: float = 0.0
+    turn_near: bool = False
 
     @classmethod
     def between(
         cls, view: NetworkView, settings: MatchSettings, eps: float,
         x0: float, y0: float, x1: float, y1: float, seq: int, t: float, stood: bool = False,
+        turn_near: bool = False,
     ) -> StepContext:
         """The context of the step p0 -> p1 at one eps, with the cost weights of ``settings``.
 
         ``stood``: the vehicle stood at p0 (its step into p0 was slower than
         ``livematch.core.tracker.STOOD_MPS``); with ``settings.stop_turns`` a bridged
         step may then turn round at any vertex, as with ``settings.street_turns``.
+        ``turn_near``: a bridged step may turn round where each live state's segment
+        ends, when that vertex lies within eps of p0, and nowhere else in the street
+        (``settings.reverse_turns_near``; :func:`bridge_step`).
         """
         return cls(view, eps, x0, y0, x1, y1, seq, t, math.hypot(x1 - x0, y1 - y0),
                    1.0 / (2.0 * settings.sigma_m * settings.sigma_m), 1.0 / settings.beta_m,
                    settings.turn_back_cost, 1.0 / settings.motion_m, 1.0 / settings.pace_m,
                    settings.street_turns or (stood and settings.stop_turns),
-                   settings.street_turn_cost)
+                   settings.street_turn_cost, turn_near)
 
 
 def free_interval(
@@ -391,6 +396,13 @@ def bridge_step(
     sources = [
         (view.st[n.seg], (1.0 - n.pos) * view.slen[n.seg], i, n.seg) for i, n in enumerate(nodes)
     ]
+    if ctx.turn_near and not ctx.street_turns:
+        # a source entered by no segment may leave its vertex by any, the way back included
+        # (the turn is charged in _offer as every U-turn is, with street_turn_cost where
+        # the network has none): only at vertices within eps of p0
+        vx, vy = view.vx, view.vy
+        sources = [(v, length, i, -1 if (vx[v] - ctx.x0) ** 2 + (vy[v] - ctx.y0) ** 2 <= eps2
+                    else seg) for v, length, i, seg in sources]
     searches = [(sources, offsets)]
     # The multi-source search keeps one parent per vertex; the cheapest few states also
     # get a search of their own, so a target's parent is chosen on the full cost.

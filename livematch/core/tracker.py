@@ -436,12 +436,15 @@ class Tracker:
         if prev is not None and fix.t > prev[0]:
             self.speed = math.hypot(fix.x - prev[1], fix.y - prev[2]) / (fix.t - prev[0])
         dt = fix.t - prev[0] if prev is not None else 0.0
-        # (asked only with reverse_turns: a bridge may then turn in the street)
-        turned = (s.reverse_turns and self._turned_round(fix, prev, dt)
+        # (asked only with reverse_turns or reverse_turns_near: a bridge may then turn in
+        # the street, anywhere or only near prev)
+        turned = ((s.reverse_turns or s.reverse_turns_near)
+                  and self._turned_round(fix, prev, dt)
                   and not self._dead_end_ahead(fix, prev, dt, came_speed))
         tops: _Tops = {}
-        salvage = self._advance_levels(fix, prev, seq, stood or turned,
-                                       seq - 1 if before is not None else seq, tops)
+        salvage = self._advance_levels(fix, prev, seq, stood or (turned and s.reverse_turns),
+                                       seq - 1 if before is not None else seq, tops,
+                                       turned and not s.reverse_turns)
         if self.before is not None and prev is not None:
             straight_from = self.before.last
             dropped = self._spike_test(fix, seq, broke, events)
@@ -453,7 +456,7 @@ class Tracker:
                 before = None
                 if straight_from is not None:
                     dt = fix.t - straight_from[0]
-                    if s.reverse_turns:  # the step into this fix now starts there
+                    if s.reverse_turns or s.reverse_turns_near:  # the step now starts there
                         self.step_dir = _step_dir(straight_from, fix)
         self.before = before
         deciding = None
@@ -501,12 +504,15 @@ class Tracker:
     def _advance_levels(
         self, fix: Fix, prev: tuple[float, float, float] | None, seq: int,
         stood: bool = False, newest: int = -1, tops: _Tops | None = None,
+        turned: bool = False,
     ) -> list[tuple[Level, CandidateTree]]:
         """Move every level to ``fix`` (sequence number ``seq``) from the fix ``prev``.
 
         Sweep, else bridge, else start afresh (:func:`livematch.core.sweep.advance`).
         ``stood``: the step into ``prev`` was slower than ``STOOD_MPS`` (the vehicle stood
         there), which with ``stop_turns`` lets a bridged step turn round at any vertex.
+        ``turned``: with ``reverse_turns_near``, the fixes reversed at ``prev``: a bridged
+        step may turn round at the vertex ending each live state's segment near ``prev``.
         Returns the levels that started afresh with the trees they had before.
 
         ``tops``: with ``newest`` >= 0, each swept level that covers fix ``next_commit``
@@ -551,7 +557,7 @@ class Tracker:
                     continue
             # the window died (or the step is a gap): bridge, else start afresh
             ctx = StepContext.between(self._view, s, level.eps, x0, y0, fix.x, fix.y, seq,
-                                      fix.t, stood)
+                                      fix.t, stood, turned)
             nodes, rows = tree.live_nodes(self._view)
             new, how = advance(self.network, nodes, ctx, s, dt, gap=True)
             if how == "bridged":
@@ -1938,7 +1944,7 @@ class Tracker:
         # written with reverse_turns off), it is rebuilt from the fix log
         if "step_dir" in state:
             tracker.step_dir = state["step_dir"]
-        elif tracker.settings.reverse_turns:
+        elif tracker.settings.reverse_turns or tracker.settings.reverse_turns_near:
             tracker.step_dir = tracker._logged_step_dir()
         said = state.get("said")  # written only with hold_filtered (absent in older states)
         if said is not None:
