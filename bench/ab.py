@@ -30,7 +30,6 @@ import argparse
 import json
 import os
 import statistics
-import subprocess
 import sys
 import time
 from pathlib import Path
@@ -118,32 +117,17 @@ def main(argv: list[str] | None = None) -> int:
           "--extract", args.extract, "--drives", str(args.drives),
           "--duration", str(args.duration), "--what", args.what]
 
-    def start(tree: str) -> subprocess.Popen[str]:
-        proc = subprocess.Popen(me, stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True,
-                                env={**os.environ, "PYTHONPATH": str(Path(tree).resolve())})
-        assert proc.stdout is not None and proc.stdout.readline().strip() == "ready"
-        return proc
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from _pair import WorkerPair
 
-    base, new = start(args.base), start(args.new)
-
-    def ask(proc: subprocess.Popen[str], k: int, every: int) -> list[float]:
-        assert proc.stdin is not None and proc.stdout is not None
-        proc.stdin.write(f"{k} {every}\n")
-        proc.stdin.flush()
-        answer: list[float] = json.loads(proc.stdout.readline())
-        return answer
-
+    workers = WorkerPair(me, args.base, args.new)
     print(f"# bench/ab.py {' '.join(argv if argv is not None else sys.argv[1:])}; "
           f"load average {os.getloadavg()[0]:.2f}")
     for every in (int(e) for e in args.every.split(",")):
         pairs = []
         for rep in range(args.reps):
             for k in range(args.drives):
-                if (rep + k) % 2 == 0:
-                    a, b = ask(base, k, every), ask(new, k, every)
-                else:
-                    b, a = ask(new, k, every), ask(base, k, every)
-                pairs.append((a, b))
+                pairs.append(workers.ask_both(f"{k} {every}", (rep + k) % 2 == 0))
         fixes = sum(a[1] for a, _ in pairs)
         ratio = statistics.median(b[0] / a[0] for a, b in pairs if a[0] > 0)
         us_base = 1e6 * sum(a[0] for a, _ in pairs) / fixes
@@ -151,10 +135,7 @@ def main(argv: list[str] | None = None) -> int:
         print(f"{args.extract} {args.what} every {every} s: base {us_base:.1f} µs/fix, "
               f"new {us_new:.1f} µs/fix (pooled); "
               f"median per-drive ratio new/base {ratio:.3f} ({len(pairs)} pairs)")
-    for proc in (base, new):
-        assert proc.stdin is not None
-        proc.stdin.close()
-        proc.wait()
+    workers.close()
     print(f"# load average at the end {os.getloadavg()[0]:.2f}")
     return 0
 

@@ -25,7 +25,6 @@ import argparse
 import json
 import os
 import statistics
-import subprocess
 import sys
 import time
 from pathlib import Path
@@ -91,32 +90,17 @@ def main(argv: list[str] | None = None) -> int:
           "--extract", args.extract, "--drives", str(args.drives),
           "--duration", str(args.duration), "--seed", str(args.seed)]
 
-    def start(tree: str) -> subprocess.Popen[str]:
-        proc = subprocess.Popen(me, stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True,
-                                env={**os.environ, "PYTHONPATH": str(Path(tree).resolve())})
-        assert proc.stdout is not None and proc.stdout.readline().strip() == "ready"
-        return proc
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from _pair import WorkerPair
 
-    base, new = start(args.base), start(args.new)
-
-    def ask(proc: subprocess.Popen[str], k: int, j: int) -> float:
-        assert proc.stdin is not None and proc.stdout is not None
-        proc.stdin.write(f"{k} {j}\n")
-        proc.stdin.flush()
-        answer: float = json.loads(proc.stdout.readline())
-        return answer
-
+    workers = WorkerPair(me, args.base, args.new)
     print(f"# bench/kernel_ab.py {' '.join(argv if argv is not None else sys.argv[1:])}; "
           f"load average {' / '.join(f'{v:.2f}' for v in os.getloadavg())}")
     pairs: dict[int, list[tuple[float, float]]] = {j: [] for j in range(len(EPS_LEVELS))}
     for rep in range(args.reps):
         for k in range(args.drives):
             for j in range(len(EPS_LEVELS)):
-                if (rep + k + j) % 2 == 0:
-                    a, b = ask(base, k, j), ask(new, k, j)
-                else:
-                    b, a = ask(new, k, j), ask(base, k, j)
-                pairs[j].append((a, b))
+                pairs[j].append(workers.ask_both(f"{k} {j}", (rep + k + j) % 2 == 0))
     for j, eps in enumerate(EPS_LEVELS):
         got = [(a, b) for a, b in pairs[j] if a > 0]
         ratio = statistics.median(b / a for a, b in got)
@@ -124,10 +108,7 @@ def main(argv: list[str] | None = None) -> int:
               f"base {statistics.median(a for a, _ in got):.2f} µs, "
               f"new {statistics.median(b for _, b in got):.2f} µs; "
               f"median ratio new/base {ratio:.3f} ({len(got)} pairs)")
-    for proc in (base, new):
-        assert proc.stdin is not None
-        proc.stdin.close()
-        proc.wait()
+    workers.close()
     print(f"# load average at the end {' / '.join(f'{v:.2f}' for v in os.getloadavg())}")
     return 0
 

@@ -257,6 +257,37 @@ def _publish_packet(topic: str, payload: bytes, mid: int, qos: int) -> bytes:
     return packets[0]
 
 
+def _read_stream(pieces: list[bytes], lean: bool, take: Any = None,
+                 calls: int | None = None) -> tuple[list[Any], list[Any]]:
+    """Feed ``pieces`` to a paho client's reader, ours (``lean_receive`` and
+    ``buffered_reads``, with ``take`` as its hook) or paho's own, with PUBLISHes 7 and 8
+    awaiting their PUBACK: the messages delivered (topic, payload, QoS, id) and the
+    PUBACKs seen (id, reason code)."""
+    client = aiomqtt.Client("127.0.0.1", 1, protocol=aiomqtt.ProtocolVersion.V5)
+    paho: Any = client._client
+    got: list[Any] = []
+    acked: list[Any] = []
+    if lean:
+        lean_receive(client, deliver=got.append)
+        buffered_reads(client, take=take)
+        paho.on_socket_open(paho, None, _Chunks(pieces))
+    else:
+        paho._sock = _Chunks(pieces)
+        paho.on_message = lambda _c, _u, m: got.append(m)
+    paho._protocol = 5
+    paho.on_publish = lambda _c, _u, mid, reason, _p: acked.append((mid, reason.value))
+    for mid in (7, 8):  # awaiting their PUBACK
+        message = paho_client.MQTTMessage(mid, b"out")
+        message.qos = 1
+        message.info = paho_client.MQTTMessageInfo(mid)
+        paho._out_messages[mid] = message
+        paho._inflight_messages += 1
+    for _ in range(calls if calls is not None else len(pieces) + 100):
+        paho.loop_read()
+    return ([(m.topic if isinstance(m.topic, str) else m.topic.value, bytes(m.payload),
+              m.qos, m.mid) for m in got], acked)
+
+
 async def test_buffered_reads_whole_packets_equal_paho_at_every_split() -> None:
     """Packets read whole from the buffer give paho the same messages and PUBACK
     dispatch as its own reader, however the stream is cut into reads: PUBLISH QoS 0 and
@@ -275,29 +306,7 @@ async def test_buffered_reads_whole_packets_equal_paho_at_every_split() -> None:
     cuts.append([data])
 
     def read(pieces: list[bytes], lean: bool) -> tuple[list[Any], list[Any]]:
-        client = aiomqtt.Client("127.0.0.1", 1, protocol=aiomqtt.ProtocolVersion.V5)
-        paho: Any = client._client
-        got: list[Any] = []
-        acked: list[Any] = []
-        if lean:
-            lean_receive(client, deliver=got.append)
-            buffered_reads(client)
-            paho.on_socket_open(paho, None, _Chunks(pieces))
-        else:
-            paho._sock = _Chunks(pieces)
-            paho.on_message = lambda _c, _u, m: got.append(m)
-        paho._protocol = 5
-        paho.on_publish = lambda _c, _u, mid, reason, _p: acked.append((mid, reason.value))
-        for mid in (7, 8):  # awaiting their PUBACK
-            message = paho_client.MQTTMessage(mid, b"out")
-            message.qos = 1
-            message.info = paho_client.MQTTMessageInfo(mid)
-            paho._out_messages[mid] = message
-            paho._inflight_messages += 1
-        for _ in range(len(pieces) + 10):
-            paho.loop_read()
-        return ([(m.topic if isinstance(m.topic, str) else m.topic.value, bytes(m.payload),
-                  m.qos, m.mid) for m in got], acked)
+        return _read_stream(pieces, lean)
 
     want = read([data], lean=False)
     assert len(want[0]) == 4 and want[1] == [(7, 0), (8, 0x10)]
@@ -326,10 +335,6 @@ async def test_buffered_reads_take_sees_whole_publishes_and_leaves_the_rest_to_p
 
     def read(pieces: list[bytes], take: bool, calls: int | None = None
              ) -> tuple[list[Any], list[Any], list[tuple[int, bytes]]]:
-        client = aiomqtt.Client("127.0.0.1", 1, protocol=aiomqtt.ProtocolVersion.V5)
-        paho: Any = client._client
-        got: list[Any] = []
-        acked: list[Any] = []
         offered: list[tuple[int, bytes]] = []
         taken: list[tuple[int, bytes]] = []
 
@@ -340,26 +345,9 @@ async def test_buffered_reads_take_sees_whole_publishes_and_leaves_the_rest_to_p
                 return True
             return False
 
-        if take:
-            lean_receive(client, deliver=got.append)
-            buffered_reads(client, take=hook)
-            paho.on_socket_open(paho, None, _Chunks(pieces))
-        else:
-            paho._sock = _Chunks(pieces)
-            paho.on_message = lambda _c, _u, m: got.append(m)
-        paho._protocol = 5
-        paho.on_publish = lambda _c, _u, mid, reason, _p: acked.append((mid, reason.value))
-        for mid in (7, 8):  # awaiting their PUBACK
-            message = paho_client.MQTTMessage(mid, b"out")
-            message.qos = 1
-            message.info = paho_client.MQTTMessageInfo(mid)
-            paho._out_messages[mid] = message
-            paho._inflight_messages += 1
-        for _ in range(calls if calls is not None else len(pieces) + 100):
-            paho.loop_read()
+        got, acked = _read_stream(pieces, take, hook, calls)
         assert all(c & 0xF0 == 0x30 for c, _ in offered)  # PUBLISH packets only
-        return ([(m.topic if isinstance(m.topic, str) else m.topic.value, bytes(m.payload),
-                  m.qos, m.mid) for m in got], acked, taken)
+        return got, acked, taken
 
     paho_got, paho_acked, _ = read([data], take=False)
     assert len(paho_got) == len(kept) + 14 and paho_acked == [(7, 0), (8, 0x10)]
