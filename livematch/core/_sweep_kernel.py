@@ -153,22 +153,6 @@ def free_interval(
     return (lo if lo > 0.0 else 0.0), (hi if hi < 1.0 else 1.0)
 
 
-@numba.njit(cache=True, error_model="numpy", inline="always")
-def whiten(vert: np.ndarray, vb: int, x0: float, y0: float, x1: float, y1: float,
-           px: float, py: float, eps2: float) -> tuple[float, float]:
-    """A vertex's white interval on the new trace segment, kept in its scratch record.
-
-    Computed once per step the first time the sweep reaches the vertex (its flag 0) and
-    marked white, so that later offers into it read the record instead of computing it
-    again; the caller lists the vertex as touched so the flag is cleared after the step.
-    """
-    wl, wh = free_interval(x0, y0, x1, y1, px, py, eps2)
-    vert[vb + W_LO] = wl
-    vert[vb + W_HI] = wh
-    vert[vb + W_FLAG] = _WHITE
-    return wl, wh
-
-
 @numba.njit(cache=True, error_model="numpy")
 def layout(
     n_v: int, n_e: int, cap_h: int, cap_b: int, cap_m: int, cap_o: int
@@ -273,8 +257,11 @@ def sweep_kernel(
         vb = V_STRIDE * b
         flag = int(vert[vb + W_FLAG])
         if flag == 0:
-            wl, wh = whiten(vert, vb, x0, y0, x1, y1, bx, by, eps2)
+            wl, wh = free_interval(x0, y0, x1, y1, bx, by, eps2)
+            vert[vb + W_LO] = wl
+            vert[vb + W_HI] = wh
             flag = _WHITE
+            vert[vb + W_FLAG] = _WHITE
             vtouched[n_touched] = b
             n_touched += 1
         else:
@@ -385,8 +372,11 @@ def sweep_kernel(
             if wflag & _DONE:
                 continue
             if wflag == 0:
-                wl, wh = whiten(vert, vw, x0, y0, x1, y1, wx, wy, eps2)
+                wl, wh = free_interval(x0, y0, x1, y1, wx, wy, eps2)
+                vert[vw + W_LO] = wl
+                vert[vw + W_HI] = wh
                 wflag = _WHITE
+                vert[vw + W_FLAG] = _WHITE
                 vtouched[n_touched] = w
                 n_touched += 1
             else:
