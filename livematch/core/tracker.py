@@ -83,6 +83,7 @@ import numpy as np
 from livematch.core._tree_kernel import K_SEG, ROW_F, ROW_I
 from livematch.core.candidates import DIED, CandidateTree
 from livematch.core.events import Assignment, Commit, Event, Filtered, HeldAssignment, MatchedFix
+from livematch.core._sweep_kernel import ladder_sweep as _ladder_sweep
 from livematch.core.fastsweep import sweep_arrays
 from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
@@ -145,6 +146,9 @@ STAND_HOLD_S = 3.0
 STAND_KEEP_S = 3.0
 # Entries of Tracker._held (usually one or two: the stand's anchor, the newest run's)
 _HELD_MEMO = 8
+#: Step a three-level ladder's trees in one compiled call (``_advance_levels``); False
+#: steps each level with its own call (the same trees: tests compare the two).
+_ONE_CALL_LADDER = True
 _NO_FIXES = np.empty((0, 2))  # shared by trackers that have seen no fix (never written)
 # A fix this many seconds after the fix before, from SPIKE_MIN_S to SPIKE_MAX_S, is kept
 # open to the spike test (MatchSettings.spike_cost). Closer fixes are left to the jump
@@ -543,14 +547,39 @@ class Tracker:
         step[9] = w[3]
         first = self.next_commit
         t = fix.t
-        for level in self.levels:
+        levels = self.levels
+        # A ladder of three levels (the default) is stepped in one compiled call
+        # (_sweep_kernel.ladder_sweep: one dispatch instead of three); ``done``: the
+        # levels it finished, whose answers are in ``res``. A level it could not finish
+        # (a full or too small buffer) and the levels after it are stepped one by one.
+        done = 0
+        res: tuple[int, ...] = ()
+        if _ONE_CALL_LADDER and not gap and len(levels) == 3:
+            l0, l1, l2 = levels
+            t0, t1, t2 = l0.tree, l1.tree, l2.tree
+            go = (t0.hi > t0.lo) | (t1.hi > t1.lo) << 1 | (t2.hi > t2.lo) << 2
+            if go:
+                asking = tops is not None
+                res = _ladder_sweep(
+                    arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf, step,
+                    t0.ti, t0.tf, t1.ti, t1.tf, t2.ti, t2.tf, l0.eps, l1.eps, l2.eps, go,
+                    newest if asking and l0.tree_seq <= first else -1,
+                    newest if asking and l1.tree_seq <= first else -1,
+                    newest if asking and l2.tree_seq <= first else -1, seq, t, first)
+                done = res[0]
+        for j, level in enumerate(levels):
             tree = level.tree
             if tree.hi > tree.lo and not gap:
-                step[0] = level.eps
                 # the commit check only for a level that covers the oldest pending fix
                 # (Tracker._covering: alive, its tree no newer than that fix)
                 ask = newest if tops is not None and level.tree_seq <= first else -1
-                top = tree.step(arrays, step, seq, t, first, ask)
+                if j < done:
+                    top = res[1 + 3 * j]
+                    tree.lo = res[2 + 3 * j]  # what CandidateTree.step keeps
+                    tree.hi = res[3 + 3 * j]
+                else:
+                    step[0] = level.eps
+                    top = tree.step(arrays, step, seq, t, first, ask)
                 if top != DIED:
                     if tops is not None and ask >= 0:
                         tops[level] = (tree, first, ask, top)
