@@ -690,52 +690,6 @@ def tree_sweep(
     return top, ti[H_LO], ti[H_HI]
 
 
-
-@numba.njit(cache=True, error_model="numpy")
-def ladder_sweep(
-    netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
-    ctx: np.ndarray, ti0: np.ndarray, tf0: np.ndarray, ti1: np.ndarray, tf1: np.ndarray,
-    ti2: np.ndarray, tf2: np.ndarray, eps0: float, eps1: float, eps2: float, go: int,
-    ask0: int, ask1: int, ask2: int, seq: int, t: float, next_commit: int,
-) -> tuple[int, int, int, int, int, int, int, int, int, int]:
-    """:func:`tree_sweep` on up to three trees (an eps ladder's levels) in one call.
-
-    Level ``j`` (tree ``tij, tfj``) is stepped when bit ``j`` of ``go`` is set, with
-    ``ctx[0]`` set to ``epsj`` and ``askj`` as its ``newest``; the levels are stepped in
-    order, exactly as three calls of :func:`tree_sweep` would step them (the trees are
-    independent and the kernel leaves its scratch as it found it). A call from Python
-    pays numba's dispatch (a type check and an unboxing per argument), so one call for
-    the ladder instead of one per level saves two of them per fix.
-
-    Returns ``(stop, top0, lo0, hi0, top1, lo1, hi1, top2, lo2, hi2)``: each level's
-    :func:`tree_sweep` answer (``DIED`` for a level not stepped, with ``lo = hi = 0``).
-    ``stop`` is 3 when every level asked for was stepped; else the first level whose
-    step answered ``ARENA_FULL`` or ``TREE_OVERFLOW`` (its tree unchanged): that level
-    and the ones after it are not finished here, the caller steps them one by one.
-    """
-    top0 = top1 = top2 = DIED
-    lo0 = hi0 = lo1 = hi1 = lo2 = hi2 = 0
-    if go & 1:
-        ctx[0] = eps0
-        top0, lo0, hi0 = tree_sweep(netf, neti, fbuf, ibuf, ctx, ti0, tf0, seq, t,
-                                    next_commit, ask0)
-        if top0 == ARENA_FULL or top0 == TREE_OVERFLOW:
-            return 0, top0, lo0, hi0, top1, lo1, hi1, top2, lo2, hi2
-    if go & 2:
-        ctx[0] = eps1
-        top1, lo1, hi1 = tree_sweep(netf, neti, fbuf, ibuf, ctx, ti1, tf1, seq, t,
-                                    next_commit, ask1)
-        if top1 == ARENA_FULL or top1 == TREE_OVERFLOW:
-            return 1, top0, lo0, hi0, top1, lo1, hi1, top2, lo2, hi2
-    if go & 4:
-        ctx[0] = eps2
-        top2, lo2, hi2 = tree_sweep(netf, neti, fbuf, ibuf, ctx, ti2, tf2, seq, t,
-                                    next_commit, ask2)
-        if top2 == ARENA_FULL or top2 == TREE_OVERFLOW:
-            return 2, top0, lo0, hi0, top1, lo1, hi1, top2, lo2, hi2
-    return 3, top0, lo0, hi0, top1, lo1, hi1, top2, lo2, hi2
-
-
 @numba.njit(cache=True, error_model="numpy")
 def kept_mask(ti: np.ndarray) -> np.ndarray:
     """Which of the tree's rows in use a compaction keeps.

@@ -235,28 +235,18 @@ class CandidateTree:
                 self.hi = hi
                 return top
             if top == _t.ARENA_FULL:
-                return self.append_full(arrays, seq, t, next_commit, newest)
+                # the result waits in the kernel's buffers: compact into new arrays with
+                # the room the kernel worked out (as compact() would size them) and
+                # append, in one call
+                cap = ti.item(H_CAP_ROWS)
+                ti2 = np.empty(HEAD + ROW_I * cap + ti.item(H_CAP_VIAS), np.int32)
+                tf2 = np.empty(ROW_F * cap + ti.item(H_CAP_T))
+                top = _t.compact_append(ti, tf, ti2, tf2, arrays.fbuf, arrays.ibuf, seq, t,
+                                        next_commit, newest)
+                self.ti, self.tf = ti2, tf2
+                self._synced()
+                return top
             arrays.grow()  # TREE_OVERFLOW: the kernel's buffers were too small
-
-    def append_full(self, arrays: SweepArrays, seq: int, t: float, next_commit: int,
-                    newest: int) -> int:
-        """Finish a step whose compiled sweep answered ``ARENA_FULL``; its commit check.
-
-        The step's rows wait in the kernel's buffers: compact into new arrays with the
-        room the kernel worked out (as :meth:`compact` would size them) and append, in
-        one call. (:meth:`step`'s end, also called after the ladder's one-call step,
-        ``Tracker._advance_levels``.)
-        """
-        ti = self.ti
-        tf = self.tf
-        cap = ti.item(H_CAP_ROWS)
-        ti2 = np.empty(HEAD + ROW_I * cap + ti.item(H_CAP_VIAS), np.int32)
-        tf2 = np.empty(ROW_F * cap + ti.item(H_CAP_T))
-        top: int = _t.compact_append(ti, tf, ti2, tf2, arrays.fbuf, arrays.ibuf, seq, t,
-                                     next_commit, newest)
-        self.ti, self.tf = ti2, tf2
-        self._synced()
-        return top
 
     def live_nodes(self, view: NetworkView) -> tuple[dict[int, Node], dict[int, int]]:
         """The live states as nodes (segment -> node), and node id -> row.

@@ -83,9 +83,7 @@ import numpy as np
 from livematch.core._tree_kernel import K_SEG, ROW_F, ROW_I
 from livematch.core.candidates import DIED, CandidateTree
 from livematch.core.events import Assignment, Commit, Event, Filtered, HeldAssignment, MatchedFix
-from livematch.core._sweep_kernel import ARENA_FULL
-from livematch.core._sweep_kernel import ladder_sweep as _ladder_sweep
-from livematch.core.fastsweep import SweepArrays, sweep_arrays
+from livematch.core.fastsweep import sweep_arrays
 from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
 from livematch.core.routing import connect
@@ -147,9 +145,6 @@ STAND_HOLD_S = 3.0
 STAND_KEEP_S = 3.0
 # Entries of Tracker._held (usually one or two: the stand's anchor, the newest run's)
 _HELD_MEMO = 8
-#: Step a three-level ladder's trees in one compiled call (``_advance_levels``); False
-#: steps each level with its own call (the same trees: tests compare the two).
-_ONE_CALL_LADDER = True
 _NO_FIXES = np.empty((0, 2))  # shared by trackers that have seen no fix (never written)
 # A fix this many seconds after the fix before, from SPIKE_MIN_S to SPIKE_MAX_S, is kept
 # open to the spike test (MatchSettings.spike_cost). Closer fixes are left to the jump
@@ -548,26 +543,14 @@ class Tracker:
         step[9] = w[3]
         first = self.next_commit
         t = fix.t
-        levels = self.levels
-        # A ladder of three levels (the default) is stepped in one compiled call
-        # (_sweep_kernel.ladder_sweep: one dispatch instead of three); ``done``: the
-        # levels it finished, whose answers are in ``res``. A level it could not finish
-        # (a full or too small buffer) and the levels after it are stepped one by one.
-        answers: list[int] | None = None
-        if _ONE_CALL_LADDER and not gap and len(levels) == 3:
-            answers = self._step_ladder(levels, arrays, seq, t, first,
-                                        newest if tops is not None else -1)
-        for j, level in enumerate(levels):
+        for level in self.levels:
             tree = level.tree
-            if (tree.hi > tree.lo or answers is not None) and not gap:
+            if tree.hi > tree.lo and not gap:
+                step[0] = level.eps
                 # the commit check only for a level that covers the oldest pending fix
                 # (Tracker._covering: alive, its tree no newer than that fix)
                 ask = newest if tops is not None and level.tree_seq <= first else -1
-                if answers is not None:
-                    top = answers[j]
-                else:
-                    step[0] = level.eps
-                    top = tree.step(arrays, step, seq, t, first, ask)
+                top = tree.step(arrays, step, seq, t, first, ask)
                 if top != DIED:
                     if tops is not None and ask >= 0:
                         tops[level] = (tree, first, ask, top)
@@ -588,52 +571,6 @@ class Tracker:
                 level.tree_seq = level.trim_seq = level.cert_seq = seq
                 level.cert_t = fix.t
         return salvage
-
-    @staticmethod
-    def _step_ladder(levels: list[Level], arrays: SweepArrays, seq: int, t: float,
-                     first: int, newest: int) -> list[int]:
-        """Step the three levels' live trees as ``CandidateTree.step`` would; their answers.
-
-        One compiled call (``_sweep_kernel.ladder_sweep``) for the ladder instead of one
-        per level; a level whose step needs new tree arrays (``ARENA_FULL``) is finished
-        here (``CandidateTree.append_full``) and the ladder goes on from the next level in
-        another call. ``newest`` -1: no commit check; else each level covering fix
-        ``first`` is asked for its commit point, as ``_advance_levels`` asks. A level
-        with no live state answers ``DIED`` without a step (as a dead window would).
-        """
-        l0, l1, l2 = levels
-        t0, t1, t2 = l0.tree, l1.tree, l2.tree
-        go = (t0.hi > t0.lo) | (t1.hi > t1.lo) << 1 | (t2.hi > t2.lo) << 2
-        answers = [DIED, DIED, DIED]
-        if not go:
-            return answers
-        asks = (newest if newest >= 0 and l0.tree_seq <= first else -1,
-                newest if newest >= 0 and l1.tree_seq <= first else -1,
-                newest if newest >= 0 and l2.tree_seq <= first else -1)
-        step = arrays.step
-        while go:
-            res = _ladder_sweep(
-                arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf, step,
-                t0.ti, t0.tf, t1.ti, t1.tf, t2.ti, t2.tf, l0.eps, l1.eps, l2.eps, go,
-                asks[0], asks[1], asks[2], seq, t, first)
-            stop = res[0]
-            for j in range(min(stop, 3)):
-                if go >> j & 1:
-                    tree = levels[j].tree
-                    answers[j] = res[1 + 3 * j]
-                    tree.lo = res[2 + 3 * j]  # what CandidateTree.step keeps
-                    tree.hi = res[3 + 3 * j]
-            if stop == 3:
-                break
-            tree = levels[stop].tree
-            if res[1 + 3 * stop] == ARENA_FULL:
-                answers[stop] = tree.append_full(arrays, seq, t, first, asks[stop])
-            else:  # TREE_OVERFLOW: the kernel's buffers were too small
-                arrays.grow()
-                step[0] = levels[stop].eps
-                answers[stop] = tree.step(arrays, step, seq, t, first, asks[stop])
-            go &= ~((2 << stop) - 1)  # the levels after ``stop`` are left
-        return answers
 
     # ------------------------------------------------------------- spike test
     def _state_before(self) -> _Before:
