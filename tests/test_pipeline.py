@@ -448,6 +448,31 @@ def test_record_builder_reuses_only_the_same_point(monkeypatch):
     assert projected == [(-5.0, 0.0), (60.0, 61.0), (-5.0, 0.0)]
 
 
+
+def test_record_builders_on_one_network_share_the_segment_ids():
+    """Builders made for one network read each segment's ids once between them, and a
+    builder whose table another one filled still gives ``to_record``'s dicts.
+
+    Reference: ``to_record`` (reads the network's arrays for every segment).
+    """
+    from livematch.core.build import Road, network_from_roads
+    from livematch.core.events import Assignment, Commit, MatchedFix, RecordBuilder, to_record
+
+    net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0), (100.0, 80.0)], way=3,
+                                   name="Larkmoor Lane")])
+    other = network_from_roads([Road([(0.0, 0.0), (50.0, 0.0)], way=4)])
+    first, second = RecordBuilder(net), RecordBuilder(net)
+    events = [Assignment("bus1", T0, 0, 10.0, 10.0, 0.0, 15.0, 1, 0.0),
+              Assignment("bus1", T0 + 1, 1, 5.0, 100.0, 5.0, 15.0, 2, 1.0),
+              Commit("bus1", (MatchedFix(T0, 0, 10.0, 10.0, 0.0),
+                              MatchedFix(T0 + 1, 1, 5.0, 100.0, 5.0)), (0, 1))]
+    for event in events:
+        assert first.record(event) == to_record(event, net)
+    assert sorted(second._segments) == [0, 1]  # read by the first builder
+    for event in events:
+        assert json.dumps(second.record(event)) == json.dumps(to_record(event, net))
+    assert RecordBuilder(other)._segments == {}  # another network: a table of its own
+
 def test_output_init_equals_generated_dataclass():
     """Output stores what the standard library's generated dataclass __init__ would:
     same fields, repr and equality; frozen."""

@@ -233,6 +233,11 @@ def rounded(x: float, scale: float, ndigits: int) -> float:
 POINTS_HELD = 2048
 
 
+#: Where the segments' ``(way, from_node, to_node, road)`` read so far are kept on the
+#: :class:`~livematch.core.network.RoadNetwork` (as its view and sweep arrays are).
+_SEGMENT_IDS_ATTR = "_record_segment_ids"
+
+
 class RecordBuilder:
     """:func:`to_record` for one network, with the per-segment lookups cached.
 
@@ -241,7 +246,8 @@ class RecordBuilder:
     reads and a dict lookup per segment, a few microseconds). A commit repeats the
     segments of the assignments before it, so the builder keeps each segment's
     ``(way, from_node, to_node, road)`` once read: at most one small tuple per segment
-    of the network, and only for segments some vehicle was matched to.
+    of the network, and only for segments some vehicle was matched to. The table is
+    kept on the network, shared by every builder made for it (the ids never change).
 
     A commit mostly repeats the matched points too: the final answer for a fix is the
     point its assignment had (four in five fixes on 1 Hz OSM drives). So the rounded
@@ -269,7 +275,13 @@ class RecordBuilder:
     def __init__(self, network: RoadNetwork) -> None:
         self.network = network
         self._inverse = network.projection.point_to_lonlat
-        self._segments: dict[int, tuple[int, int, int, str | None]] = {}
+        # shared by every builder on this network (the ids never change; a process that
+        # makes several pipelines on one network reads each segment once)
+        segments = getattr(network, _SEGMENT_IDS_ATTR, None)
+        if segments is None:
+            segments = {}
+            setattr(network, _SEGMENT_IDS_ATTR, segments)
+        self._segments: dict[int, tuple[int, int, int, str | None]] = segments
         # projected point of a recent assignment -> its rounded (lat, lon): the newer
         # and the older generation
         self._points: dict[tuple[float, float], tuple[float, float]] = {}

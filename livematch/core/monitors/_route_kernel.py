@@ -243,10 +243,15 @@ def _entry_points(sweep_key: int) -> tuple[Callable[..., Any], Callable[..., Any
         """
         if sweep_key == -1:  # never (see window_advance)
             return SWEEP_OVERFLOW, 0, 0.0, -1, 0.0, SKIPPED, 0, 0.0, -1, 0.0
-        # one allocation for both windows: the step scalars, then each window's live
-        # states and driven metres in turn (_advance)
+        # one scratch for both windows: the step scalars, then each window's live states
+        # and driven metres in turn (_advance); in the room SweepArrays leaves after the
+        # kernel's output rows (as tree_sweep packs a tree's live block), else allocated
         most_k = max(int(w[0]), int(bw[0]))
-        buf = np.empty(_k.N_CTX + (_k.LIVE_STRIDE + 1) * most_k)
+        need = _k.N_CTX + (_k.LIVE_STRIDE + 1) * most_k
+        _, _, out_f0, _, _, _ = _k.layout(ibuf[0], ibuf[1], ibuf[2], ibuf[3], ibuf[4],
+                                          ibuf[5])
+        live0 = out_f0 + ibuf[4] * _k.OUT_F_STRIDE
+        buf = fbuf[live0:live0 + need] if fbuf.shape[0] - live0 >= need else np.empty(need)
         ctx = buf[:_k.N_CTX]
         ctx[_k.C_EPS] = eps
         ctx[_k.C_X0] = x0

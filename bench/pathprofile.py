@@ -1,0 +1,167 @@
+"""Where the whole per-message path's time goes, from a sampling profile (py-spy).
+
+Two modes:
+
+- ``bench/pathprofile.py run [--extract helsinki] [--reps 8]``: the workload of
+  ``bench/ab.py --what pipeline`` in one process (the same simulated drives, seed
+  2009/5, each vehicle's own path as its route, 40 geofences near the drives, a fresh
+  :class:`~livematch.pipeline.Pipeline` per drive sharing the prepared routes), ``--reps``
+  rounds over the drives after a warm-up, printing the CPU µs per fix. Run it under a
+  sampling profiler, e.g. (py-spy installed in a venv of its own)::
+
+      py-spy record -r 500 -f raw -o /tmp/path.raw -- \\
+          .venv/bin/python bench/pathprofile.py run --extract helsinki --reps 8
+
+- ``bench/pathprofile.py split /tmp/path.raw [--us 72]``: the samples taken inside
+  ``Pipeline.handle`` / ``flush`` during the timed rounds, split into stages by the
+  frames on each stack (the first stage whose function is on the stack wins, in the
+  order decode, route monitor, fences, records, route lookup, tracker; the rest is
+  "glue": ``handle``, ``_outputs``, the monitors' dispatch, event objects). A stage's
+  compiled call (the numba kernel, dispatch included) and the pyproj calls are split out
+  by the sampled line. ``--us``: a per-fix time to turn the shares into µs (e.g. the
+  pooled figure of an idle ``bench/ab.py`` run).
+
+A sampling profile without ``--native`` charges a compiled call's time to the Python
+line that makes it, which is what the split needs; it slows the Python a little less
+than cProfile does (no per-call hook), but the shares are still a profile's, not a
+timing's: read them as proportions.
+"""
+
+from __future__ import annotations
+
+import argparse
+import re
+import sys
+import time
+from collections import Counter
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+
+#: (stage, pattern of a frame on the stack): the first that matches names the sample.
+STAGES = [
+    ("decode", r"^PositionReader\.read "),
+    ("route monitor", r"^RouteMonitor\.update "),
+    ("fences", r"^(FenceMonitor\.update|FenceSet\.probe|FenceSet\.may_be_near) "),
+    ("records", r"^RecordBuilder\.record "),
+    ("route lookup", r"^Pipeline\._route_for "),
+    ("tracker", r"^Tracker\.(update|flush) "),
+]
+#: The sampled leaf frames split out of a stage: (stage, pattern of the leaf, new name).
+LEAVES = [
+    ("decode", r"^Projection\.point_to_xy ", "decode: projection (pyproj)"),
+    ("records", r"^Projection\.point_to_lonlat ", "records: projection (pyproj)"),
+]
+#: A stage's compiled call, found by its line: (stage, file, text on the line).
+CALLS = [
+    ("route monitor", "livematch/core/monitors/route.py", "_rk.route_advance("),
+    ("fences", "livematch/core/monitors/fences.py", "_fk.fence_probe("),
+]
+
+
+def run(extract: str, reps: int) -> None:
+    """The timed workload (see the module docstring)."""
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from _drives import load_extract, simulate_drives
+    from speed import pipeline_setup
+
+    from livematch.core.settings import MatchSettings
+    from livematch.pipeline import Pipeline
+
+    net = load_extract(extract)
+    sims = simulate_drives(net, 8, 600.0, [2009, 5])
+    fleet, messages = pipeline_setup(sims, net)
+    by_drive = [[m for m in messages if m[1] == f"fleet/{d.vehicle}"] for d in sims]
+    for feed in by_drive:  # warm: kernels, every route's chain, caches
+        for t, topic, payload in feed[:30]:
+            fleet.handle(topic, payload, t + 0.5)
+    fences = fleet.fences.fences if fleet.fences is not None else None
+    chains = getattr(fleet, "_chains", None)
+    cpu = 0.0
+    fixes = 0
+    for _ in range(reps):
+        for feed in by_drive:
+            pipe = Pipeline(net, MatchSettings(), routes=fleet.routes, fences=fences,
+                            vehicle_routes=fleet.vehicle_routes)
+            if chains is not None:
+                pipe._chains = chains
+            t0 = time.process_time()
+            timed_rounds(pipe, feed)
+            cpu += time.process_time() - t0
+            fixes += len(feed)
+    print(f"{extract}: {1e6 * cpu / fixes:.1f} µs CPU per fix over {fixes} fixes")
+
+
+def timed_rounds(pipe: object, feed: list[tuple[float, str, bytes]]) -> None:
+    """One drive through ``pipe`` (the frame ``split`` looks for)."""
+    for t, topic, payload in feed:
+        pipe.handle(topic, payload, t + 0.5)  # type: ignore[attr-defined]
+    pipe.flush()  # type: ignore[attr-defined]
+
+
+def lines_with(path: str, text: str) -> set[int]:
+    """The lines of ``path`` (in this tree) that hold ``text`` outside a comment."""
+    lines = (ROOT / path).read_text().splitlines()
+    return {k + 1 for k, line in enumerate(lines)
+            if text in line and not line.lstrip().startswith("#")}
+
+
+def split(path: str, us: float | None) -> None:
+    """Print each stage's share of the samples in the timed rounds (module docstring)."""
+    tree_lines = lines_with("livematch/core/candidates.py", "_t.")
+    calls = [(stage, Path(file).name, lines_with(file, text)) for stage, file, text in CALLS]
+    shares: Counter[str] = Counter()
+    total = 0
+    for line in Path(path).read_text().splitlines():
+        stack, _, count = line.rpartition(" ")
+        frames = stack.split(";")
+        if not any(f.startswith("timed_rounds ") for f in frames):
+            continue
+        n = int(count)
+        total += n
+        stage = "glue (handle, _outputs, monitors' dispatch, events)"
+        for name, pattern in STAGES:
+            if any(re.search(pattern, f) for f in frames):
+                stage = name
+                break
+        leaf = frames[-1]
+        if stage == "tracker":
+            m = re.match(r"CandidateTree\.\S+ \(.*candidates\.py:(\d+)\)$", leaf)
+            stage = ("tracker: compiled tree calls" if m and int(m.group(1)) in tree_lines
+                     else "tracker: Python")
+        for name, pattern, renamed in LEAVES:
+            if stage == name and re.search(pattern, leaf):
+                stage = renamed
+        for name, file, at in calls:
+            m = re.search(r"\((.*?):(\d+)\)$", leaf)
+            if stage == name and m and m.group(1).endswith(file) and int(m.group(2)) in at:
+                stage = f"{name}: compiled call"
+        shares[stage] += n
+    if not total:
+        print("no samples inside timed_rounds")
+        return
+    for stage, n in sorted(shares.items()):
+        extra = f"  {us * n / total:5.1f} µs" if us else ""
+        print(f"{100 * n / total:5.1f} %{extra}  {stage}")
+    print(f"({total} samples)")
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    sub = ap.add_subparsers(dest="mode", required=True)
+    r = sub.add_parser("run")
+    r.add_argument("--extract", default="helsinki")
+    r.add_argument("--reps", type=int, default=8)
+    s = sub.add_parser("split")
+    s.add_argument("raw")
+    s.add_argument("--us", type=float, default=None)
+    args = ap.parse_args(argv)
+    if args.mode == "run":
+        run(args.extract, args.reps)
+    else:
+        split(args.raw, args.us)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
