@@ -13,9 +13,12 @@ and metres. They are pure functions so that tests can check them on hand-made ca
 
 from __future__ import annotations
 
+import heapq
+import itertools
 import math
 from collections import Counter
 from collections.abc import Sequence
+from typing import NamedTuple
 
 import numpy as np
 import numpy.typing as npt
@@ -147,3 +150,155 @@ def path_snap_error(
         if d < best_d:
             best_d, best = d, (qx, qy)
     return math.hypot(best[0] - true_xy[0], best[1] - true_xy[1])
+
+
+def least_cost_route(
+    out: Sequence[Sequence[int]],
+    seg_to: Sequence[int],
+    seg_twin: Sequence[int],
+    seg_len: Sequence[float],
+    turn_ok: Sequence[bool],
+    start: tuple[int, float],
+    end: tuple[int, float],
+    limit: float = math.inf,
+) -> tuple[float, list[int]] | None:
+    """The shortest route from one point of the network to another, and its length.
+
+    A point is ``(segment, offset_m)``: ``offset_m`` metres along the directed segment.
+    The search is over directed segments (a state is the segment entered), so a route
+    may pass a vertex twice (into a dead end and out again); leaving a vertex on the
+    twin of the segment that entered it (a U-turn) is allowed only where
+    ``turn_ok[vertex]`` (the matcher's rule: ``NetworkView.turn_back_ok``, dead ends and
+    intersections). This is the route a matcher that bridges by least route length
+    would put between two fixes it knew exactly.
+
+    Args:
+        out: per vertex, the segments leaving it.
+        seg_to, seg_twin, seg_len: per segment, its head vertex, its opposite-direction
+            segment (-1: none) and its length in metres.
+        turn_ok: per vertex, whether a U-turn is allowed there.
+        start, end: the two points.
+        limit: the longest route considered, metres.
+
+    Returns:
+        ``(length_m, segments)`` with ``segments`` the route from ``start``'s segment to
+        ``end``'s, both included (one segment when ``end`` lies ahead on the same one),
+        or None when no route of at most ``limit`` metres exists.
+
+    Example (a 100 m road both ways, segments 0 east and 1 west, dead ends at both
+    ends: from 30 m along the way east to 20 m along the way back, via the dead end):
+        >>> out, to, twin, lens = [[0], [1]], [1, 0], [1, 0], [100.0, 100.0]
+        >>> least_cost_route(out, to, twin, lens, [True, True], (0, 30.0), (1, 20.0))
+        (90.0, [0, 1])
+        >>> least_cost_route(out, to, twin, lens, [True, True], (0, 30.0), (0, 50.0))
+        (20.0, [0])
+        >>> least_cost_route(out, to, twin, lens, [False, False], (0, 30.0), (1, 20.0))
+    """
+    a_seg, a_off = start
+    b_seg, b_off = end
+    if a_seg == b_seg and b_off >= a_off:
+        return (b_off - a_off, [a_seg]) if b_off - a_off <= limit else None
+    # entries: (route length to the tail of the segment entered, segment, segment before)
+    heap: list[tuple[float, int, int]] = []
+    head = float(seg_len[a_seg]) - a_off
+
+    def push(length: float, came: int) -> None:
+        v = int(seg_to[came])
+        back = int(seg_twin[came]) if not turn_ok[v] else -1
+        for f in out[v]:
+            if int(f) != back and int(f) not in pred:
+                heapq.heappush(heap, (length, int(f), came))
+
+    pred: dict[int, int] = {}
+    push(head, a_seg)
+    while heap:
+        dist, g, before = heapq.heappop(heap)
+        if g in pred:
+            continue
+        pred[g] = before
+        if g == b_seg:
+            if dist + b_off > limit:
+                return None
+            route, cur = [g], before
+            while cur != a_seg:
+                route.append(cur)
+                cur = pred[cur]
+            route.append(a_seg)
+            return dist + b_off, route[::-1]
+        nd = dist + float(seg_len[g])
+        if nd <= limit:
+            push(nd, g)
+    return None
+
+
+class GapRoute(NamedTuple):
+    """One gap between consecutive fixes: what was driven and the least-cost route.
+
+    ``driven_m`` is the length truly driven between the two true positions, ``least_m``
+    the length of the least-cost route between them (:func:`least_cost_route`), equal
+    to ``driven_m`` when no route within ``driven_m`` was found (the driven route breaks
+    the turn rule, e.g. a turn in the middle of a road; ``routed`` is then False).
+    ``route`` is the segments the oracle puts in the gap, from the earlier fix's true
+    segment to the later one's, both included.
+    """
+
+    driven_m: float
+    least_m: float
+    route: tuple[int, ...]
+    routed: bool
+
+
+def oracle_bridges(
+    out: Sequence[Sequence[int]],
+    seg_to: Sequence[int],
+    seg_twin: Sequence[int],
+    seg_len: Sequence[float],
+    turn_ok: Sequence[bool],
+    path: Sequence[int],
+    at: Sequence[tuple[int, float, float]],
+) -> tuple[list[int], list[GapRoute]]:
+    """An oracle's path: every fix's true position, each gap bridged by the least-cost route.
+
+    Also every gap's driven and least-cost length.
+
+    No matcher that puts a least-cost route between its (at best, exactly right) answers
+    can do better than this path on a gap the vehicle drove by a longer way (a lap of a
+    block, a spur in and out): the fixes at the two ends are all the oracle knows. Its
+    route mismatch fraction against the true path is the information limit of bridging.
+
+    Args:
+        out, seg_to, seg_twin, seg_len, turn_ok: the network, as in
+            :func:`least_cost_route`.
+        path: the directed segments truly driven, in order.
+        at: per fix, in time order, ``(path_index, offset_m, path_pos_m)`` of its true
+            position: the index in ``path`` of the segment driven, the metres along it,
+            the metres along the whole path.
+
+    Returns:
+        ``(oracle_path, gaps)``: the oracle's segments from the first fix's true segment
+        to the last one's (each gap's route after the first appended without its first
+        segment, which the gap before ended on), and one :class:`GapRoute` per gap.
+
+    Example (segments 0 -> 1 -> 2 -> 0 form a 30 m loop of 10 m segments; the
+    vehicle goes round once more between two fixes, which the oracle cannot see):
+        >>> out, to, twin = [[0], [1], [2]], [1, 2, 0], [-1, -1, -1]
+        >>> lens, ok = [10.0] * 3, [False] * 3
+        >>> path = [0, 1, 2, 0, 1, 2, 0, 1]
+        >>> p, gaps = oracle_bridges(out, to, twin, lens, ok, path, [(0, 5.0, 5.0), (7, 5.0, 75.0)])
+        >>> p, [(g.driven_m, g.least_m, g.routed) for g in gaps]
+        ([0, 1], [(70.0, 10.0, True)])
+    """
+    oracle: list[int] = [int(path[at[0][0]])] if at else []
+    gaps: list[GapRoute] = []
+    for (ia, oa, pa), (ib, ob, pb) in itertools.pairwise(at):
+        driven = pb - pa
+        found = least_cost_route(out, seg_to, seg_twin, seg_len, turn_ok,
+                                 (int(path[ia]), oa), (int(path[ib]), ob),
+                                 limit=driven + 1e-6)
+        if found is None:
+            gap = GapRoute(driven, driven, tuple(int(s) for s in path[ia:ib + 1]), False)
+        else:
+            gap = GapRoute(driven, min(driven, found[0]), tuple(found[1]), True)
+        gaps.append(gap)
+        oracle.extend(gap.route[1:])
+    return oracle, gaps
