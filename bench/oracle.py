@@ -65,7 +65,13 @@ from livematch.sim.drive import (  # noqa: E402
     simulate_drive,
 )
 from livematch.sim.logs import replay_records  # noqa: E402
-from livematch.sim.score import GapRoute, TruePath, oracle_bridges, route_mismatch_fraction  # noqa: E402
+from livematch.sim.score import (  # noqa: E402
+    GapRoute,
+    TruePath,
+    oracle_bridges,
+    point_oracle,
+    route_mismatch_fraction,
+)
 
 SLACK_M = 1.0
 
@@ -81,18 +87,24 @@ def is_detour(gap: GapRoute, x: float) -> bool:
     return gap.driven_m > gap.least_m * (1.0 + x) + SLACK_M
 
 
-def fleet_oracle(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
-                 ) -> dict[str, tuple[list[int], list[int], list[GapRoute]]]:
-    """Per vehicle: (true path between the first and last fix, oracle path, gaps)."""
+Oracle = tuple[list[int], list[int], list[GapRoute], list[int], list[int]]
+"""Per vehicle: the true path between the first and last fix, the directed oracle's path,
+its gaps, the point oracle's path and its segment at every fix."""
+
+
+def fleet_oracle(network: RoadNetwork,
+                 fleet: list[tuple[Drive, list[Observation]]]) -> dict[str, Oracle]:
+    """Both oracles for every drive (:func:`oracle_bridges`, :func:`point_oracle`)."""
     view = view_of(network)
     out = {}
     for drive, obs in fleet:
         at = [(drive.truth[o.truth_index].path_index, drive.truth[o.truth_index].offset_m,
                drive.truth[o.truth_index].path_pos_m) for o in obs]
-        path, gaps = oracle_bridges(view.out, view.st, view.twin, view.slen,
-                                    view.turn_back_ok, drive.path, at)
+        net = (view.out, view.st, view.twin, view.slen, view.turn_back_ok)
+        path, gaps = oracle_bridges(*net, drive.path, at)
+        point_path, point_segs = point_oracle(*net, drive.path, at)
         true_path = list(drive.path[at[0][0]:at[-1][0] + 1])
-        out[drive.vehicle] = (true_path, path, gaps)
+        out[drive.vehicle] = (true_path, path, gaps, point_path, point_segs)
     return out
 
 
@@ -112,7 +124,7 @@ def measure(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
             matcher: dict[str, Any]) -> dict[str, Any]:
     """The figures of one (extract, interval); see the module docstring."""
     oracle = fleet_oracle(network, fleet)
-    gaps = [g for _, _, gs in oracle.values() for g in gs]
+    gaps = [g for o in oracle.values() for g in o[2]]
     driven = sum(g.driven_m for g in gaps)
     row: dict[str, Any] = {
         "gaps": len(gaps),
@@ -123,8 +135,16 @@ def measure(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
                                 / driven if driven else 0.0 for x in detours},
         "detour_gap_share": {f"{x:g}": sum(is_detour(g, x) for g in gaps) / len(gaps)
                              if gaps else 0.0 for x in detours},
-        "oracle_rmf": pooled_rmf(network, [(t, p) for t, p, _ in oracle.values()]),
+        "oracle_rmf": pooled_rmf(network, [(o[0], o[1]) for o in oracle.values()]),
+        "point_oracle_rmf": pooled_rmf(network, [(o[0], o[3]) for o in oracle.values()]),
     }
+    n = point_ok = 0
+    for drive, obs in fleet:
+        tp = TruePath(drive.path, network.seg_len)
+        for o, seg in zip(obs, oracle[drive.vehicle][4], strict=True):
+            n += 1
+            point_ok += tp.near(seg, drive.truth[o.truth_index].path_pos_m, acc.TOL_M)
+    row["point_oracle_final"] = point_ok / n if n else math.nan
     if not livematch:
         return row
     records = replay_records(network, fleet)
@@ -138,9 +158,11 @@ def measure(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
     row["livematch_rmf_vs_oracle"] = _rmf_against(network, oracle, run)
     misses = {"between_least_cost": 0, "next_to_detour": 0, "first_or_last": 0}
     fixes = {"between_least_cost": 0, "next_to_detour": 0, "first_or_last": 0}
+    aliased = 0
     for drive, obs in fleet:
         tp = TruePath(drive.path, network.seg_len)
         gs = oracle[drive.vehicle][2]
+        point = oracle[drive.vehicle][4]
         final = run.matches[drive.vehicle].final
         for i, o in enumerate(obs):
             p = drive.truth[o.truth_index]
@@ -154,17 +176,18 @@ def measure(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
             f = final[i]
             if f is None or not tp.near(f.segment, p.path_pos_m, acc.TOL_M):
                 misses[key] += 1
+                aliased += not tp.near(point[i], p.path_pos_m, acc.TOL_M)
     row["fixes_by_place"] = fixes
     row["final_misses_by_place"] = misses
+    row["final_misses_point_oracle_misses_too"] = aliased
     return row
 
 
-def _rmf_against(network: RoadNetwork,
-                 oracle: dict[str, tuple[list[int], list[int], list[GapRoute]]],
+def _rmf_against(network: RoadNetwork, oracle: dict[str, Oracle],
                  run: acc.MethodRun) -> float:
     """livematch's final path against the oracle's path, over the true length (pooled)."""
     mismatch = total = 0.0
-    for v, (true_path, path, _) in oracle.items():
+    for v, (true_path, path, *_) in oracle.items():
         length = float(sum(network.seg_len[s] for s in true_path))
         ref = float(sum(network.seg_len[s] for s in path))
         if length > 0 and ref > 0:
@@ -187,14 +210,18 @@ def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
         "",
         "detour > x: share of the driven length on gaps driven by a way more than x longer "
         f"than the least-cost route (+{SLACK_M:g} m slack); extra: (driven - least-cost) / "
-        "driven. oracle RMF: true positions at the fixes, least-cost routes between them. "
+        "driven. oracle RMF: true positions (and directions) at the fixes, least-cost routes "
+        "between them. point oracle: true points, direction chosen by least total route "
+        "(final road+dir and RMF). "
         "lm vs oracle: livematch's path against the oracle's. misses: livematch's final "
         "misses at interior fixes between two least-cost gaps / next to a detour / first or "
-        "last fix (fixes in brackets). See bench/oracle.py.",
+        "last fix (fixes in brackets); of all of them, how many the point oracle misses too. "
+        "See bench/oracle.py.",
         "",
         "| extract | interval s | driven km | " + " | ".join(f"detour > {x:g}" for x in xs)
-        + " | extra | oracle RMF | lm final | lm RMF | lm vs oracle | misses (fixes) |",
-        "|---|---:|---:|" + "---:|" * len(xs) + "---:|---:|---:|---:|---:|---|",
+        + " | extra | oracle RMF | point final | point RMF | lm final | lm RMF | lm vs oracle "
+        "| misses (fixes) | point misses too |",
+        "|---|---:|---:|" + "---:|" * len(xs) + "---:|---:|---:|---:|---:|---:|---:|---|---:|",
     ]
     for r in rows:
         shares = " | ".join(f"{r['detour_length_share'][f'{x:g}']:.3f}" for x in xs)
@@ -204,11 +231,13 @@ def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
                   f"{r['livematch_rmf_vs_oracle']:.4f} | "
                   f"{m['between_least_cost']} ({f['between_least_cost']}) / "
                   f"{m['next_to_detour']} ({f['next_to_detour']}) / "
-                  f"{m['first_or_last']} ({f['first_or_last']})")
+                  f"{m['first_or_last']} ({f['first_or_last']}) | "
+                  f"{r['final_misses_point_oracle_misses_too']}")
         else:
-            lm = "– | – | – | –"
+            lm = "– | – | – | – | –"
         lines.append(f"| {r['extract']} | {r['interval_s']} | {r['driven_km']:.0f} | "
-                     f"{shares} | {r['extra_share']:.3f} | {r['oracle_rmf']:.4f} | {lm} |")
+                     f"{shares} | {r['extra_share']:.3f} | {r['oracle_rmf']:.4f} | "
+                     f"{r['point_oracle_final']:.4f} | {r['point_oracle_rmf']:.4f} | {lm} |")
     return "\n".join(lines) + "\n"
 
 

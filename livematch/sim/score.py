@@ -302,3 +302,85 @@ def oracle_bridges(
         gaps.append(gap)
         oracle.extend(gap.route[1:])
     return oracle, gaps
+
+
+def point_oracle(
+    out: Sequence[Sequence[int]],
+    seg_to: Sequence[int],
+    seg_twin: Sequence[int],
+    seg_len: Sequence[float],
+    turn_ok: Sequence[bool],
+    path: Sequence[int],
+    at: Sequence[tuple[int, float, float]],
+) -> tuple[list[int], list[int]]:
+    """An oracle that knows every fix's true point but not the direction of travel.
+
+    A fix says where the vehicle was, not which way it was heading: on a two-way road the
+    true segment and its twin pass through the same point. This oracle picks, for every
+    fix, the true segment or its twin (at the same point) so that the sum of the
+    least-cost routes between consecutive fixes is smallest (a Viterbi search over the
+    two states per fix), ties going to the truth, and every route no longer than the
+    one truly driven (longer alternatives are dropped, which can only help it). Where a
+    vehicle circles a loop of length ``C`` and covers ``d`` with ``C / 2 < d < C``
+    between fixes, going the other way round by ``C - d`` is the shorter reading of the
+    same points (the stroboscopic effect of sampling a periodic motion): no matcher that
+    sees only positions and prefers short routes can tell the two apart.
+
+    Args: as :func:`oracle_bridges`.
+
+    Returns:
+        ``(oracle_path, segments)``: the path as in :func:`oracle_bridges` and the
+        segment chosen at every fix.
+
+    Example (a two-way 100 m road with dead ends: the truth drives east 10 -> 60 m;
+    going west from the twin would need a turn at the dead end, so the truth wins):
+        >>> out, to, twin, lens = [[0], [1]], [1, 0], [1, 0], [100.0, 100.0]
+        >>> point_oracle(out, to, twin, lens, [True, True], [0], [(0, 10.0, 10.0), (0, 60.0, 60.0)])
+        ([0], [0, 0])
+    """
+    if not at:
+        return [], []
+    states: list[list[tuple[int, float]]] = []
+    for ia, off, _ in at:
+        seg = int(path[ia])
+        tw = int(seg_twin[seg])
+        states.append([(seg, off)] + ([(tw, float(seg_len[tw]) - off)] if tw >= 0 else []))
+    cost = [0.0] * len(states[0])
+    back: list[list[tuple[int, tuple[int, ...]]]] = []
+    for j in range(1, len(at)):
+        limit = at[j][2] - at[j - 1][2] + 1e-6
+        new_cost = [math.inf] * len(states[j])
+        new_back: list[tuple[int, tuple[int, ...]]] = [(-1, ())] * len(states[j])
+        for b, end in enumerate(states[j]):
+            for a, start in enumerate(states[j - 1]):
+                if math.isinf(cost[a]):
+                    continue
+                found = least_cost_route(out, seg_to, seg_twin, seg_len, turn_ok, start, end,
+                                         limit)
+                if found is None:
+                    continue
+                c = cost[a] + found[0]
+                # ties to the truth (state 0) and to the true predecessor
+                if c < new_cost[b] - 1e-6:
+                    new_cost[b], new_back[b] = c, (a, tuple(found[1]))
+        if all(math.isinf(c) for c in new_cost):
+            # nothing within the driven length (a turn the rule forbids): the truth
+            a = 0 if not math.isinf(cost[0]) else cost.index(min(cost))
+            new_cost[0] = cost[a]
+            new_back[0] = (a, tuple(int(s) for s in path[at[j - 1][0]:at[j][0] + 1]))
+        cost = new_cost
+        back.append(new_back)
+    best = min(range(len(cost)), key=lambda i: (cost[i] - (1e-6 if i == 0 else 0.0), i))
+    chosen = [best]
+    routes: list[tuple[int, ...]] = []
+    for j in range(len(at) - 1, 0, -1):
+        a, route = back[j - 1][chosen[-1]]
+        routes.append(route)
+        chosen.append(a)
+    chosen.reverse()
+    routes.reverse()
+    segs = [states[j][c][0] for j, c in enumerate(chosen)]
+    oracle = [segs[0]]
+    for route in routes:
+        oracle.extend(route[1:])
+    return oracle, segs
