@@ -19,9 +19,15 @@ import networkx as nx
 import numpy as np
 import pytest
 
+from livematch.core.network import RoadNetwork
 from livematch.core.view import view_of
 from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
-from livematch.sim.score import least_cost_route, oracle_bridges, route_mismatch_fraction
+from livematch.sim.score import (
+    least_cost_route,
+    oracle_bridges,
+    point_oracle,
+    route_mismatch_fraction,
+)
 from tests.catalogue import grid
 from tests.test_routing import nx_graph, nx_turn_graph, osm
 
@@ -141,3 +147,51 @@ def test_bench_oracle_measure_shares() -> None:
     assert 0.0 <= row["extra_share"] <= shares[0]
     assert 0.0 <= row["oracle_rmf"] < 1.0
     assert row["gaps"] == sum(len(observe(d, 15)) - 1 for d in drives)
+
+
+def ring_drive(step_m: float,
+               laps: int = 4) -> tuple[RoadNetwork, list[int], list[tuple[int, float, float]]]:
+    """A 100 m two-way ring of four 25 m sides, driven round ``laps`` times one way, with
+    a fix every ``step_m`` metres of driving (from 10 m in)."""
+    from livematch.core.build import Road, network_from_roads
+
+    net = network_from_roads([Road([(0.0, 0.0), (25.0, 0.0), (25.0, 25.0), (0.0, 25.0),
+                                    (0.0, 0.0)], way=1)])
+    view = view_of(net)
+    first = next(s for s in range(net.n_segments)
+                 if view.vx[view.sf[s]] == 0.0 and view.vy[view.sf[s]] == 0.0
+                 and view.vx[view.st[s]] == 25.0)
+    loop = [first]
+    while len(loop) < 4:
+        loop.append(next(s for s in view.out[view.st[loop[-1]]] if s != view.twin[loop[-1]]))
+    path = loop * laps
+    at = []
+    pos = 10.0
+    while pos < 25.0 * len(path):
+        at.append((int(pos // 25.0), pos % 25.0, pos))
+        pos += step_m
+    return net, path, at
+
+
+def test_point_oracle_reads_two_thirds_of_a_lap_backwards() -> None:
+    """Sampling a periodic motion: a vehicle going round a 100 m two-way ring 66 m per fix
+    is, by its points alone, better explained going the other way 34 m per fix (the
+    wagon-wheel effect; arithmetic: 100 - 66 = 34 < 66). The point oracle reads it
+    backwards (every fix on the twin, route mismatch above 1), the directed oracle
+    follows the truth (route mismatch 0); at 33 m per fix both follow the truth."""
+    net, path, at = ring_drive(66.0)
+    view = view_of(net)
+    args = (view.out, view.st, view.twin, view.slen, view.turn_back_ok, path)
+    true_path = list(path[at[0][0]:at[-1][0] + 1])
+    directed, _ = oracle_bridges(*args, at)
+    assert route_mismatch_fraction(true_path, directed, net.seg_len) == pytest.approx(0.0)
+    point, segs = point_oracle(*args, at)
+    assert all(s == view.twin[path[a[0]]] for s, a in zip(segs, at, strict=True))
+    assert route_mismatch_fraction(true_path, point, net.seg_len) > 1.0
+    net, path, at = ring_drive(33.0)
+    view = view_of(net)
+    point, segs = point_oracle(view.out, view.st, view.twin, view.slen, view.turn_back_ok,
+                               path, at)
+    assert segs == [path[a[0]] for a in at]
+    assert route_mismatch_fraction(list(path[at[0][0]:at[-1][0] + 1]), point,
+                                   net.seg_len) == pytest.approx(0.0)
