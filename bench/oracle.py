@@ -42,6 +42,7 @@ import json
 import math
 import sys
 import time
+from collections import Counter
 from dataclasses import asdict
 from pathlib import Path
 from typing import Any
@@ -156,6 +157,7 @@ def measure(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
     row["livematch_live"] = scored["road_dir_live"]
     row["livematch_rmf"] = scored["route_mismatch"]
     row["livematch_rmf_vs_oracle"] = _rmf_against(network, oracle, run)
+    row["livematch_vs_point_oracle"] = against_point(network, oracle, run)
     misses = {"between_least_cost": 0, "next_to_detour": 0, "first_or_last": 0}
     fixes = {"between_least_cost": 0, "next_to_detour": 0, "first_or_last": 0}
     aliased = 0
@@ -195,6 +197,33 @@ def _rmf_against(network: RoadNetwork, oracle: dict[str, Oracle],
                                                 network.seg_len) * ref
             total += length
     return mismatch / total if total else math.nan
+
+
+def against_point(network: RoadNetwork, oracle: dict[str, Oracle],
+                  run: acc.MethodRun) -> dict[str, float]:
+    """livematch's final path against the point oracle's, split, as shares of the true
+    length (pooled): length the oracle has and livematch misses, on segments the truth
+    drives 3 times or more (circling) or others; length livematch adds, on segments the
+    truth drives (more often than the oracle has them), on the twin of a driven segment,
+    or elsewhere. What a matcher that sees only positions could have got and did not."""
+    twin = network.seg_twin
+    parts = dict.fromkeys(("missed_circling", "missed_other", "added_on_truth",
+                           "added_twin_of_truth", "added_other"), 0.0)
+    total = 0.0
+    for v, (true_path, _, _, point_path, _) in oracle.items():
+        total += float(sum(network.seg_len[s] for s in true_path))
+        tc, oc = Counter(true_path), Counter(point_path)
+        lc = Counter(run.matches[v].path)
+        for s, c in oc.items():
+            if c > lc[s]:
+                key = "missed_circling" if tc[s] >= 3 else "missed_other"
+                parts[key] += float(network.seg_len[s]) * (c - lc[s])
+        for s, c in lc.items():
+            if c > oc[s]:
+                key = ("added_on_truth" if tc[s] else "added_twin_of_truth"
+                       if twin[s] >= 0 and tc[int(twin[s])] else "added_other")
+                parts[key] += float(network.seg_len[s]) * (c - oc[s])
+    return {k: v / total if total else math.nan for k, v in parts.items()}
 
 
 def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
@@ -238,6 +267,17 @@ def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
         lines.append(f"| {r['extract']} | {r['interval_s']} | {r['driven_km']:.0f} | "
                      f"{shares} | {r['extra_share']:.3f} | {r['oracle_rmf']:.4f} | "
                      f"{r['point_oracle_final']:.4f} | {r['point_oracle_rmf']:.4f} | {lm} |")
+    split = [r for r in rows if "livematch_vs_point_oracle" in r]
+    if split:
+        keys = list(split[0]["livematch_vs_point_oracle"])
+        lines += ["", "livematch's final path against the point oracle's (% of the true "
+                  "length): missed on segments driven 3+ times / other; added on driven "
+                  "segments / on the twin of a driven segment / elsewhere.", "",
+                  "| extract | interval s | " + " | ".join(keys) + " |",
+                  "|---|---:|" + "---:|" * len(keys)]
+        for r in split:
+            lines.append(f"| {r['extract']} | {r['interval_s']} | " + " | ".join(
+                f"{100 * r['livematch_vs_point_oracle'][k]:.2f}" for k in keys) + " |")
     return "\n".join(lines) + "\n"
 
 
