@@ -195,3 +195,11 @@ def test_point_oracle_reads_two_thirds_of_a_lap_backwards() -> None:
     assert segs == [path[a[0]] for a in at]
     assert route_mismatch_fraction(list(path[at[0][0]:at[-1][0] + 1]), point,
                                    net.seg_len) == pytest.approx(0.0)
+
+
+def test_bench_oracle_doctests() -> None:
+    """The docstring examples of bench/oracle.py hold (the detour threshold)."""
+    import doctest
+
+    result = doctest.testmod(bench_oracle())
+    assert result.attempted > 0 and result.failed == 0
