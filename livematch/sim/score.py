@@ -13,9 +13,12 @@ and metres. They are pure functions so that tests can check them on hand-made ca
 
 from __future__ import annotations
 
+import heapq
+import itertools
 import math
 from collections import Counter
 from collections.abc import Sequence
+from typing import NamedTuple
 
 import numpy as np
 import numpy.typing as npt
@@ -147,3 +150,237 @@ def path_snap_error(
         if d < best_d:
             best_d, best = d, (qx, qy)
     return math.hypot(best[0] - true_xy[0], best[1] - true_xy[1])
+
+
+def least_cost_route(
+    out: Sequence[Sequence[int]],
+    seg_to: Sequence[int],
+    seg_twin: Sequence[int],
+    seg_len: Sequence[float],
+    turn_ok: Sequence[bool],
+    start: tuple[int, float],
+    end: tuple[int, float],
+    limit: float = math.inf,
+) -> tuple[float, list[int]] | None:
+    """The shortest route from one point of the network to another, and its length.
+
+    A point is ``(segment, offset_m)``: ``offset_m`` metres along the directed segment.
+    The search is over directed segments (a state is the segment entered), so a route
+    may pass a vertex twice (into a dead end and out again); leaving a vertex on the
+    twin of the segment that entered it (a U-turn) is allowed only where
+    ``turn_ok[vertex]`` (the matcher's rule: ``NetworkView.turn_back_ok``, dead ends and
+    intersections). This is the route a matcher that bridges by least route length
+    would put between two fixes it knew exactly.
+
+    Args:
+        out: per vertex, the segments leaving it.
+        seg_to, seg_twin, seg_len: per segment, its head vertex, its opposite-direction
+            segment (-1: none) and its length in metres.
+        turn_ok: per vertex, whether a U-turn is allowed there.
+        start, end: the two points.
+        limit: the longest route considered, metres.
+
+    Returns:
+        ``(length_m, segments)`` with ``segments`` the route from ``start``'s segment to
+        ``end``'s, both included (one segment when ``end`` lies ahead on the same one),
+        or None when no route of at most ``limit`` metres exists.
+
+    Example (a 100 m road both ways, segments 0 east and 1 west, dead ends at both
+    ends: from 30 m along the way east to 20 m along the way back, via the dead end):
+        >>> out, to, twin, lens = [[0], [1]], [1, 0], [1, 0], [100.0, 100.0]
+        >>> least_cost_route(out, to, twin, lens, [True, True], (0, 30.0), (1, 20.0))
+        (90.0, [0, 1])
+        >>> least_cost_route(out, to, twin, lens, [True, True], (0, 30.0), (0, 50.0))
+        (20.0, [0])
+        >>> least_cost_route(out, to, twin, lens, [False, False], (0, 30.0), (1, 20.0))
+    """
+    a_seg, a_off = start
+    b_seg, b_off = end
+    if a_seg == b_seg and b_off >= a_off:
+        return (b_off - a_off, [a_seg]) if b_off - a_off <= limit else None
+    # entries: (route length to the tail of the segment entered, segment, segment before)
+    heap: list[tuple[float, int, int]] = []
+    head = float(seg_len[a_seg]) - a_off
+
+    def push(length: float, came: int) -> None:
+        v = int(seg_to[came])
+        back = int(seg_twin[came]) if not turn_ok[v] else -1
+        for f in out[v]:
+            if int(f) != back and int(f) not in pred:
+                heapq.heappush(heap, (length, int(f), came))
+
+    pred: dict[int, int] = {}
+    push(head, a_seg)
+    while heap:
+        dist, g, before = heapq.heappop(heap)
+        if g in pred:
+            continue
+        pred[g] = before
+        if g == b_seg:
+            if dist + b_off > limit:
+                return None
+            route, cur = [g], before
+            while cur != a_seg:
+                route.append(cur)
+                cur = pred[cur]
+            route.append(a_seg)
+            return dist + b_off, route[::-1]
+        nd = dist + float(seg_len[g])
+        if nd <= limit:
+            push(nd, g)
+    return None
+
+
+class GapRoute(NamedTuple):
+    """One gap between consecutive fixes: what was driven and the least-cost route.
+
+    ``driven_m`` is the length truly driven between the two true positions, ``least_m``
+    the length of the least-cost route between them (:func:`least_cost_route`), equal
+    to ``driven_m`` when no route within ``driven_m`` was found (the driven route breaks
+    the turn rule, e.g. a turn in the middle of a road; ``routed`` is then False).
+    ``route`` is the segments the oracle puts in the gap, from the earlier fix's true
+    segment to the later one's, both included.
+    """
+
+    driven_m: float
+    least_m: float
+    route: tuple[int, ...]
+    routed: bool
+
+
+def oracle_bridges(
+    out: Sequence[Sequence[int]],
+    seg_to: Sequence[int],
+    seg_twin: Sequence[int],
+    seg_len: Sequence[float],
+    turn_ok: Sequence[bool],
+    path: Sequence[int],
+    at: Sequence[tuple[int, float, float]],
+) -> tuple[list[int], list[GapRoute]]:
+    """An oracle's path: every fix's true position, each gap bridged by the least-cost route.
+
+    Also every gap's driven and least-cost length.
+
+    No matcher that puts a least-cost route between its (at best, exactly right) answers
+    can do better than this path on a gap the vehicle drove by a longer way (a lap of a
+    block, a spur in and out): the fixes at the two ends are all the oracle knows. Its
+    route mismatch fraction against the true path is the information limit of bridging.
+
+    Args:
+        out, seg_to, seg_twin, seg_len, turn_ok: the network, as in
+            :func:`least_cost_route`.
+        path: the directed segments truly driven, in order.
+        at: per fix, in time order, ``(path_index, offset_m, path_pos_m)`` of its true
+            position: the index in ``path`` of the segment driven, the metres along it,
+            the metres along the whole path.
+
+    Returns:
+        ``(oracle_path, gaps)``: the oracle's segments from the first fix's true segment
+        to the last one's (each gap's route after the first appended without its first
+        segment, which the gap before ended on), and one :class:`GapRoute` per gap.
+
+    Example (segments 0 -> 1 -> 2 -> 0 form a 30 m loop of 10 m segments; the
+    vehicle goes round once more between two fixes, which the oracle cannot see):
+        >>> out, to, twin = [[0], [1], [2]], [1, 2, 0], [-1, -1, -1]
+        >>> lens, ok = [10.0] * 3, [False] * 3
+        >>> path = [0, 1, 2, 0, 1, 2, 0, 1]
+        >>> p, gaps = oracle_bridges(out, to, twin, lens, ok, path, [(0, 5.0, 5.0), (7, 5.0, 75.0)])
+        >>> p, [(g.driven_m, g.least_m, g.routed) for g in gaps]
+        ([0, 1], [(70.0, 10.0, True)])
+    """
+    oracle: list[int] = [int(path[at[0][0]])] if at else []
+    gaps: list[GapRoute] = []
+    for (ia, oa, pa), (ib, ob, pb) in itertools.pairwise(at):
+        driven = pb - pa
+        found = least_cost_route(out, seg_to, seg_twin, seg_len, turn_ok,
+                                 (int(path[ia]), oa), (int(path[ib]), ob),
+                                 limit=driven + 1e-6)
+        if found is None:
+            gap = GapRoute(driven, driven, tuple(int(s) for s in path[ia:ib + 1]), False)
+        else:
+            gap = GapRoute(driven, min(driven, found[0]), tuple(found[1]), True)
+        gaps.append(gap)
+        oracle.extend(gap.route[1:])
+    return oracle, gaps
+
+
+def point_oracle(
+    out: Sequence[Sequence[int]],
+    seg_to: Sequence[int],
+    seg_twin: Sequence[int],
+    seg_len: Sequence[float],
+    turn_ok: Sequence[bool],
+    path: Sequence[int],
+    at: Sequence[tuple[int, float, float]],
+) -> tuple[list[int], list[int]]:
+    """An oracle that knows every fix's true point but not the direction of travel.
+
+    A fix says where the vehicle was, not which way it was heading: on a two-way road the
+    true segment and its twin pass through the same point. This oracle picks, for every
+    fix, the true segment or its twin (at the same point) so that the sum of the
+    least-cost routes between consecutive fixes is smallest (a Viterbi search over the
+    two states per fix), ties going to the truth, and every route no longer than the
+    one truly driven (longer alternatives are dropped, which can only help it). Where a
+    vehicle circles a loop of length ``C`` and covers ``d`` with ``C / 2 < d < C``
+    between fixes, going the other way round by ``C - d`` is the shorter reading of the
+    same points (the stroboscopic effect of sampling a periodic motion): no matcher that
+    sees only positions and prefers short routes can tell the two apart.
+
+    Args: as :func:`oracle_bridges`.
+
+    Returns:
+        ``(oracle_path, segments)``: the path as in :func:`oracle_bridges` and the
+        segment chosen at every fix.
+
+    Example (a two-way 100 m road with dead ends: the truth drives east 10 -> 60 m;
+    going west from the twin would need a turn at the dead end, so the truth wins):
+        >>> out, to, twin, lens = [[0], [1]], [1, 0], [1, 0], [100.0, 100.0]
+        >>> point_oracle(out, to, twin, lens, [True, True], [0], [(0, 10.0, 10.0), (0, 60.0, 60.0)])
+        ([0], [0, 0])
+    """
+    if not at:
+        return [], []
+    states: list[list[tuple[int, float]]] = []
+    for ia, off, _ in at:
+        seg = int(path[ia])
+        tw = int(seg_twin[seg])
+        states.append([(seg, off)] + ([(tw, float(seg_len[tw]) - off)] if tw >= 0 else []))
+    cost = [0.0] * len(states[0])
+    back: list[list[tuple[int, tuple[int, ...]]]] = []
+    for j in range(1, len(at)):
+        limit = at[j][2] - at[j - 1][2] + 1e-6
+        new_cost = [math.inf] * len(states[j])
+        new_back: list[tuple[int, tuple[int, ...]]] = [(-1, ())] * len(states[j])
+        for b, end in enumerate(states[j]):
+            for a, start in enumerate(states[j - 1]):
+                if math.isinf(cost[a]):
+                    continue
+                found = least_cost_route(out, seg_to, seg_twin, seg_len, turn_ok, start, end,
+                                         limit)
+                if found is None:
+                    continue
+                c = cost[a] + found[0]
+                # ties to the truth (state 0) and to the true predecessor
+                if c < new_cost[b] - 1e-6:
+                    new_cost[b], new_back[b] = c, (a, tuple(found[1]))
+        if all(math.isinf(c) for c in new_cost):
+            # nothing within the driven length (a turn the rule forbids): the truth
+            a = 0 if not math.isinf(cost[0]) else cost.index(min(cost))
+            new_cost[0] = cost[a]
+            new_back[0] = (a, tuple(int(s) for s in path[at[j - 1][0]:at[j][0] + 1]))
+        cost = new_cost
+        back.append(new_back)
+    best = min(range(len(cost)), key=lambda i: (cost[i] - (1e-6 if i == 0 else 0.0), i))
+    chosen = [best]
+    routes: list[tuple[int, ...]] = []
+    for j in range(len(at) - 1, 0, -1):
+        a, route = back[j - 1][chosen[-1]]
+        routes.append(route)
+        chosen.append(a)
+    chosen.reverse()
+    routes.reverse()
+    segs = [states[j][c][0] for j, c in enumerate(chosen)]
+    oracle = [segs[0]]
+    for route in routes:
+        oracle.extend(route[1:])
+    return oracle, segs
