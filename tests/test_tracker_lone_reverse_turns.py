@@ -66,7 +66,7 @@ def test_lone_reverse_turns_turns_at_the_first_dwell_only() -> None:
     (at x = 96, 60 s later, within REVERSE_APART_S) is not: no turn in the street at
     x = 100, where reverse_turns_near turns it. Off (the default), no turn at x = 300
     either: the dwell fix is taken for a spike and answered short of x = 300."""
-    assert 60.0 < REVERSE_APART_S
+    assert REVERSE_APART_S > 60.0
     net, done, _ = _run(XS, MatchSettings(lone_reverse_turns=True))
     fixes = [f for c in done for f in c.fixes]
     assert [f.t for f in fixes] == [30.0 * i for i in range(len(XS))]
