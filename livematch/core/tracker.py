@@ -1190,7 +1190,7 @@ class Tracker:
         at the reversing fix is the cheaper route never driven (the random walk of
         bench/accuracy.py: docs/measured.md, "Session 12 (sparse30)").
 
-        Example (reversals at 60 s and 120 s apart; only the first is lone):
+        Example (reversals at 60, 180 and 400 s: the one 120 s after another is not lone):
             >>> from livematch.core.build import Road, network_from_roads
             >>> net = network_from_roads([Road([(0.0, 0.0), (500.0, 0.0)], way=1)])
             >>> tracker = Tracker(net, "v1", MatchSettings(lone_reverse_turns=True))
