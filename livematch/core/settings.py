@@ -236,6 +236,16 @@ class MatchSettings:
             route mismatch +0.19 / +0.05; Helsinki seed 77 +0.31), about as with
             ``reverse_turns``: its loss is turns at the reversing fix itself
             (docs/measured.md, "Session 11 (sparse3)").
+        lone_reverse_turns: ``reverse_turns_near``'s turn at the reversing fix, opened
+            only for a lone reversal: the fixes did not go back the way they came at any
+            fix of the 180 s before (:meth:`livematch.core.tracker.Tracker.
+            _lone_reversal`). A van turns round in the street where it dwelt, trips
+            minutes apart; a vehicle whose fixes reverse again within minutes is
+            circling or looping round blocks and dead ends, where the turn at the
+            reversing fix is the cheaper route never driven (the random walk's loss
+            under ``reverse_turns_near``). No effect with ``reverse_turns`` or
+            ``reverse_turns_near`` on. Off by default (docs/measured.md, "Session 12
+            (sparse30)").
         hold_filtered: a fix the filters refuse (``impossible_jump``, ``low_accuracy``)
             gets a live answer too: the newest live answer again, at the refused fix's
             time, with its certificate, while that answer is at most ``gap_s`` old
@@ -320,6 +330,7 @@ class MatchSettings:
     vertex_in_segment: bool = True
     reverse_turns: bool = False
     reverse_turns_near: bool = False
+    lone_reverse_turns: bool = False
     hold_filtered: bool = True
     stand_at_vertex: bool = False
     live_keep: float = 0.0
@@ -354,7 +365,8 @@ class MatchSettings:
         for name in ("street_turns", "stop_turns", "stand_wait", "stand_hold",
                      "pace_reach", "stand_loops", "stand_commit_wait", "sparse_stand_wait",
                      "stand_loops_outer", "vertex_in_segment", "reverse_turns",
-                     "reverse_turns_near", "hold_filtered", "stand_at_vertex"):
+                     "reverse_turns_near", "lone_reverse_turns", "hold_filtered",
+                     "stand_at_vertex"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

@@ -182,6 +182,13 @@ REVERSE_COS = -0.7
 REVERSE_PACE = 1.5
 REVERSE_FLOOR_MPS = 10.0
 REVERSE_SEARCH = 256
+# With MatchSettings.lone_reverse_turns, a reversal of the fixes opens a turn in the
+# street only when the fixes did not reverse in the REVERSE_APART_S seconds before it
+# (Tracker._lone_reversal). 180 s: a delivery van's trips between dwells take minutes
+# (bench/accuracy.py's routed trips: 0.5-4 km); at 90 s the random walk of the bench
+# still lost at 30 s on the test extract (route mismatch +0.1 points, seed 31), at 180 s
+# and 300 s it was unchanged (docs/measured.md, "Session 12 (sparse30)").
+REVERSE_APART_S = 180.0
 
 
 class Level:
@@ -245,8 +252,8 @@ class Tracker:
     # than a small candidate tree
     __slots__ = ("_held", "_view", "_weights", "before", "buffer", "fix_n", "fix_seq0", "fix_xy",
                  "jumps", "last", "last_commit", "last_released_t", "last_seg", "levels",
-                 "network", "next_commit", "said", "seq", "settings", "skipped", "speed",
-                 "stand_from", "stand_seq", "step_dir", "stood_t", "times", "vehicle")
+                 "network", "next_commit", "rev_t", "said", "seq", "settings", "skipped",
+                 "speed", "stand_from", "stand_seq", "step_dir", "stood_t", "times", "vehicle")
 
     def __init__(
         self, network: RoadNetwork, vehicle: str, settings: MatchSettings | None = None
@@ -292,6 +299,9 @@ class Tracker:
         # with reverse_turns: the direction (radians) of the step into the last accepted
         # fix when it was at least REVERSE_MIN_M long, else None (Tracker._turned_round)
         self.step_dir: float | None = None
+        # with lone_reverse_turns: the time of the fix at which the fixes last went back
+        # the way they came (Tracker._lone_reversal), else None
+        self.rev_t: float | None = None
         # with hold_filtered: the newest live answer, repeated for a filtered fix (after
         # a restore its fields after the vehicle, packed: _SAID)
         self.said: Assignment | bytes | None = None
@@ -436,10 +446,11 @@ class Tracker:
         if prev is not None and fix.t > prev[0]:
             self.speed = math.hypot(fix.x - prev[1], fix.y - prev[2]) / (fix.t - prev[0])
         dt = fix.t - prev[0] if prev is not None else 0.0
-        # (asked only with reverse_turns or reverse_turns_near: a bridge may then turn in
-        # the street, anywhere or only near prev)
-        turned = ((s.reverse_turns or s.reverse_turns_near)
+        # (asked only with reverse_turns, reverse_turns_near or lone_reverse_turns: a
+        # bridge may then turn in the street, anywhere or only near prev)
+        turned = ((s.reverse_turns or s.reverse_turns_near or s.lone_reverse_turns)
                   and self._turned_round(fix, prev, dt)
+                  and self._lone_reversal(prev)
                   and not self._dead_end_ahead(fix, prev, dt, came_speed))
         tops: _Tops = {}
         salvage = self._advance_levels(fix, prev, seq, stood or (turned and s.reverse_turns),
@@ -456,7 +467,8 @@ class Tracker:
                 before = None
                 if straight_from is not None:
                     dt = fix.t - straight_from[0]
-                    if s.reverse_turns or s.reverse_turns_near:  # the step now starts there
+                    if s.reverse_turns or s.reverse_turns_near or s.lone_reverse_turns:
+                        # the step now starts there
                         self.step_dir = _step_dir(straight_from, fix)
         self.before = before
         deciding = None
@@ -1164,6 +1176,34 @@ class Tracker:
         return (came is not None and dt > self.settings.gap_s
                 and math.cos(self.step_dir - came) < REVERSE_COS)
 
+    def _lone_reversal(self, prev: tuple[float, float, float] | None) -> bool:
+        """Whether the reversal of the fixes at ``prev`` is the first for a while.
+
+        Asked once :meth:`_turned_round` said the fixes went back the way they came at
+        ``prev``. With ``MatchSettings.lone_reverse_turns`` alone (``reverse_turns`` and
+        ``reverse_turns_near`` off): true when the fixes did not reverse at any fix of
+        the ``REVERSE_APART_S`` seconds before ``prev``; with either of the other two on
+        (which open turns at every reversal) always true. Then records ``prev``'s time
+        as the last reversal. Why: a van turns round in the street where it dwelt, at
+        the end of a trip, minutes apart; fixes that reverse again within a few minutes
+        are a vehicle circling or looping round blocks and dead ends, and for it a turn
+        at the reversing fix is the cheaper route never driven (the random walk of
+        bench/accuracy.py: docs/measured.md, "Session 12 (sparse30)").
+
+        Example (reversals at 60, 180 and 400 s: the one 120 s after another is not lone):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (500.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "v1", MatchSettings(lone_reverse_turns=True))
+            >>> [tracker._lone_reversal((t, 0.0, 0.0)) for t in (60.0, 180.0, 400.0)]
+            [True, False, True]
+        """
+        s = self.settings
+        if prev is None or not s.lone_reverse_turns:
+            return True
+        last, self.rev_t = self.rev_t, prev[0]
+        return (s.reverse_turns or s.reverse_turns_near or last is None
+                or prev[0] - last > REVERSE_APART_S)
+
     def _logged_step_dir(self) -> float | None:
         """``step_dir`` as the last two accepted fixes in the fix log give it, or None.
 
@@ -1842,6 +1882,8 @@ class Tracker:
             state["stand_seq"] = self.stand_seq
         if self.step_dir is not None:  # with reverse_turns only
             state["step_dir"] = self.step_dir
+        if self.rev_t is not None:  # with lone_reverse_turns only
+            state["rev_t"] = self.rev_t
         if self.said is not None:  # only with hold_filtered
             # t, segment, offset_m, x, y, eps_m, window_fixes, window_s
             said = self.said
@@ -1944,8 +1986,12 @@ class Tracker:
         # written with reverse_turns off), it is rebuilt from the fix log
         if "step_dir" in state:
             tracker.step_dir = state["step_dir"]
-        elif tracker.settings.reverse_turns or tracker.settings.reverse_turns_near:
+        elif (tracker.settings.reverse_turns or tracker.settings.reverse_turns_near
+              or tracker.settings.lone_reverse_turns):
             tracker.step_dir = tracker._logged_step_dir()
+        # written only with lone_reverse_turns, and only when set; absent (older states),
+        # no reversal is known (the next one counts as lone)
+        tracker.rev_t = state.get("rev_t")
         said = state.get("said")  # written only with hold_filtered (absent in older states)
         if said is not None:
             tracker.said = _SAID.pack(*said)
