@@ -323,6 +323,7 @@ class MatchSettings:
     hold_filtered: bool = True
     stand_at_vertex: bool = False
     live_keep: float = 0.0
+    live_keep_stand_s: float = 0.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -347,7 +348,8 @@ class MatchSettings:
         if not (isinstance(self.max_lag_fixes, int) and self.max_lag_fixes >= 2):
             out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
         for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s",
-                     "spike_cost", "street_turn_cost", "join_detour", "live_keep"):
+                     "spike_cost", "street_turn_cost", "join_detour", "live_keep",
+                     "live_keep_stand_s"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))
