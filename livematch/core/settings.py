@@ -285,6 +285,17 @@ class MatchSettings:
             (livemove)"). For fleets like the routed trips, 15.
             Commits and final answers are unaffected (the forced-commit tie-break reads
             the live answer's segment, as before).
+        live_keep_stand_s: with ``live_keep``, hold the live answer only while the
+            vehicle stands: the accepted fixes of the last ``live_keep_stand_s`` seconds
+            all lie within 2 ``sigma_m`` of the newest one
+            (:meth:`livematch.core.tracker.Tracker._stood_for`); 0 (the default) holds it
+            while moving too. Why: the random walk's losses under ``live_keep`` are a
+            lag while moving (the answer kept on the old road after a true turn onto a
+            branch or a road alongside). Off by default: with 10 s and ``live_keep``
+            15 the random walk still lost live fixes in throwaway runs at 1 s (20
+            drives: -6 at Helsinki seed 77, -9 on the test extract seed 31) and the
+            fleet model kept about half of the gain (docs/measured.md "Session 12
+            (livepick)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
