@@ -292,10 +292,11 @@ class MatchSettings:
             while moving too. Why: the random walk's losses under ``live_keep`` are a
             lag while moving (the answer kept on the old road after a true turn onto a
             branch or a road alongside). Off by default: with 10 s and ``live_keep``
-            15 the random walk still lost live fixes in throwaway runs at 1 s (20
-            drives: -6 at Helsinki seed 77, -9 on the test extract seed 31) and the
-            fleet model kept about half of the gain (docs/measured.md "Session 12
-            (livepick)").
+            15, on bench/accuracy.py's 80-drive runs (seeds 31 / 77, both extracts,
+            1 and 5 s) the random walk still lost live fixes in three cells (-2 to
+            -16 fixes), the fleet model gained 0.05-0.37 points at Helsinki (under
+            half the unbounded gain) but lost 1-4 fixes on the test extract at 5 s
+            (docs/measured.md "Session 12 (livepick)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
