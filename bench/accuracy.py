@@ -634,6 +634,9 @@ def main(argv: list[str] | None = None) -> int:
                          "bridged steps)")
     ap.add_argument("--calibration-drives", type=int, default=8)
     ap.add_argument("--hmm-lag", type=int, default=5, help="HMM fixed lag, steps")
+    ap.add_argument("--skip-hmm", action="store_true",
+                    help="leave the HMM baseline out (most of a run's time; livematch's "
+                         "figures and the drives are the same with or without it)")
     ap.add_argument("--livematch", choices=("auto", "replay", "inproc", "skip"),
                     default="auto")
     ap.add_argument("--quick", action="store_true",
@@ -725,13 +728,14 @@ def main(argv: list[str] | None = None) -> int:
                     runs["livematch (in-process)"] = inproc
             elif do_inproc:
                 runs["livematch"] = run_inproc(network, records, xy, times, matcher)
-            run = MethodRun(timing_note="in-process matching time")
-            t0 = time.perf_counter()
-            for d, _ in fleet:
-                run.matches[d.vehicle] = match_hmm(network, xy[d.vehicle],
-                                                   hmm_settings, times[d.vehicle])
-            run.seconds = time.perf_counter() - t0
-            runs["hmm"] = run
+            if not args.skip_hmm:
+                run = MethodRun(timing_note="in-process matching time")
+                t0 = time.perf_counter()
+                for d, _ in fleet:
+                    run.matches[d.vehicle] = match_hmm(network, xy[d.vehicle],
+                                                       hmm_settings, times[d.vehicle])
+                run.seconds = time.perf_counter() - t0
+                runs["hmm"] = run
             run = MethodRun(timing_note="in-process matching time")
             t0 = time.perf_counter()
             for d, _ in fleet:

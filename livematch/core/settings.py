@@ -295,6 +295,18 @@ class MatchSettings:
             (livemove)"). For fleets like the routed trips, 15.
             Commits and final answers are unaffected (the forced-commit tie-break reads
             the live answer's segment, as before).
+        live_keep_stand_s: with ``live_keep``, hold the live answer only while the
+            vehicle stands: the accepted fixes of the last ``live_keep_stand_s`` seconds
+            all lie within 2 ``sigma_m`` of the newest one
+            (:meth:`livematch.core.tracker.Tracker._stood_for`); 0 (the default) holds it
+            while moving too. Why: the random walk's losses under ``live_keep`` are a
+            lag while moving (the answer kept on the old road after a true turn onto a
+            branch or a road alongside). Off by default: with 10 s and ``live_keep``
+            15, on bench/accuracy.py's 80-drive runs (seeds 31 / 77, both extracts,
+            1 and 5 s) the random walk still lost live fixes in three cells (-2 to
+            -16 fixes), the fleet model gained 0.05-0.37 points at Helsinki (under
+            half the unbounded gain) but lost 1-4 fixes on the test extract at 5 s
+            (docs/measured.md "Session 12 (livepick)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -334,6 +346,7 @@ class MatchSettings:
     hold_filtered: bool = True
     stand_at_vertex: bool = False
     live_keep: float = 0.0
+    live_keep_stand_s: float = 0.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -358,7 +371,8 @@ class MatchSettings:
         if not (isinstance(self.max_lag_fixes, int) and self.max_lag_fixes >= 2):
             out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
         for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s",
-                     "spike_cost", "street_turn_cost", "join_detour", "live_keep"):
+                     "spike_cost", "street_turn_cost", "join_detour", "live_keep",
+                     "live_keep_stand_s"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))

@@ -747,7 +747,8 @@ class Tracker:
                                        s.error_tau_s if scored else 0.0, s.gap_s, margin)
         if (s.live_keep > 0.0 and 0.0 < dt <= SPARSE_S and self.last_seg >= 0
                 and tree.seg_of(best) != self.last_seg
-                and tree.seg_of(best) != self.network.seg_twin.item(self.last_seg)):
+                and tree.seg_of(best) != self.network.seg_twin.item(self.last_seg)
+                and (s.live_keep_stand_s <= 0.0 or self._stood_for(s.live_keep_stand_s))):
             kept = self._keep_segment(level, best, scored)
             if kept is not None:
                 best, score = kept
@@ -796,6 +797,56 @@ class Tracker:
         if score[k] <= score[best - tree.lo] + s.live_keep:
             return tree.lo + k, score
         return None
+
+    def _stood_for(self, window_s: float) -> bool:
+        """Whether the accepted fixes of the last ``window_s`` seconds all lie near the newest.
+
+        True when the fix log holds the fixes back to one at least ``window_s`` seconds
+        before the newest, and every one of them from there on lies within
+        ``STAND_SIGMAS`` x ``sigma_m`` of the newest fix (the radius of
+        :meth:`_stand_start`): the vehicle stood that long, as far as GNSS noise lets
+        it be told. False when the log does not reach back that far (a fix older than
+        the last commit may be gone; the answer is then "not known to stand").
+
+        For ``live_keep_stand_s`` (asked by :meth:`_live_answer`): the hysteresis holds
+        the answer only while the vehicle stands. Why: on the random walk
+        (``bench/accuracy.py --sim plain``) the keep lost live accuracy while moving (a
+        lag at a true turn onto a branch or a road alongside, a kept point metres behind
+        the vehicle), and a bound on where the kept point lies did not separate those
+        losses from the gains (docs/measured.md "Session 12 (livepick)").
+
+        Example (fixes 1 s apart within 1 m for 20 s: stood 20 s, not 30 s):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "v1")
+            >>> for i in range(21):
+            ...     _ = tracker.update(Fix("v1", float(i), 0.0, 0.0, 50.0 + i % 2, 1.0))
+            >>> tracker._stood_for(20.0), tracker._stood_for(30.0)
+            (True, False)
+        """
+        seq = self.seq
+        times = self.times
+        row = seq - self.fix_seq0
+        if seq not in times or not 0 <= row < self.fix_n:
+            return False
+        xy = self.fix_xy
+        x = xy.item(row, 0)
+        y = xy.item(row, 1)
+        radius = STAND_SIGMAS * self.settings.sigma_m
+        r2 = radius * radius
+        since = times[seq] - window_s
+        back = seq
+        while True:
+            back -= 1
+            row -= 1
+            if row < 0 or back not in times:
+                return False
+            dx = xy.item(row, 0) - x
+            dy = xy.item(row, 1) - y
+            if dx * dx + dy * dy > r2:
+                return False
+            if times[back] <= since:
+                return True
 
     def _came_in_by(self, tree: CandidateTree, row: int) -> int:
         """The segment row ``row``'s path entered its segment from, or -1 if not known.
