@@ -53,6 +53,7 @@ from livematch.core._tree_kernel import (
     H_CAP_VIAS,
     H_HI,
     H_LO,
+    H_M,
     H_N,
     H_NV,
     H_RCAP,
@@ -65,6 +66,7 @@ from livematch.core._tree_kernel import (
     MIN_SPARE,
     ROW_F,
     ROW_I,
+    T_SPARE,
 )
 from livematch.core.fastsweep import SweepArrays, fast_sweep_step, sweep_arrays
 from livematch.core.sweep import Node
@@ -81,6 +83,45 @@ _MIN_SPARE = MIN_SPARE  # rows (and vias) of room left after a compaction, at le
 _NO_TI: npt.NDArray[np.int32] = np.zeros(HEAD, np.int32)
 _NO_TF: npt.NDArray[np.float64] = np.empty(0)
 _NO_BYTES = memoryview(b"")
+
+
+def _less_spare(total: int, spare: int) -> int:
+    """The ``x`` with ``x + max(x // 4, spare) == total``: what a tree step keeps.
+
+    The step sizes arrays as what it keeps plus a quarter of that or ``spare``, whichever
+    is more. ``x + max(x // 4, spare)`` grows by at least one with every step of ``x``, so there
+    is one such ``x`` for every ``total`` the step writes.
+    """
+    x = total - spare
+    if x // 4 <= spare:
+        return x
+    x = total * 4 // 5  # x + x // 4 == total, near total / 1.25
+    while x + x // 4 < total:
+        x += 1
+    while x + x // 4 > total:
+        x -= 1
+    return x
+
+
+def _times_room(cap_t: int, cap: int, m: int, k: int) -> int:
+    """Fix times the arrays a tree step compacts into hold: fewer than the kernel asks.
+
+    The step (``tree_sweep``, ``ARENA_FULL``) leaves as much room for fix times as for
+    rows (``cap_t``: the fix times kept and this step's, plus the rows' spare ``max(m,
+    2 k + MIN_SPARE)`` or a quarter, whichever is more). A fix adds one fix time but
+    ``m`` rows (the new live block; ``k`` the old one), so on a tree with several
+    states a fix the fix times would last several compactions: 8 bytes a slot never
+    used, most of a KB per 1 Hz vehicle (``bench/memory.py``). The room kept here is
+    the fixes the rows' room lasts at ``m`` rows a fix, and one more, at least
+    ``T_SPARE`` and a quarter of the times kept: the rows fill up first as before, the
+    kernel's decisions (which rows are kept, where) are the same.
+    """
+    spare = max(m, 2 * k + MIN_SPARE)
+    span_t = _less_spare(cap_t, spare)  # the fix times the compaction keeps
+    kept = _less_spare(cap, spare)  # the rows it keeps
+    lasts = (cap - kept - m) // max(m, 1) + 1  # fixes until the rows fill, and one
+    room = max(span_t // 4, T_SPARE, lasts)
+    return min(cap_t, span_t + room)
 
 
 class CandidateTree:
@@ -240,7 +281,8 @@ class CandidateTree:
                 # append, in one call
                 cap = ti.item(H_CAP_ROWS)
                 ti2 = np.empty(HEAD + ROW_I * cap + ti.item(H_CAP_VIAS), np.int32)
-                tf2 = np.empty(ROW_F * cap + ti.item(H_CAP_T))
+                tf2 = np.empty(ROW_F * cap + _times_room(
+                    ti.item(H_CAP_T), cap, ti.item(H_M), self.hi - self.lo))
                 top = _t.compact_append(ti, tf, ti2, tf2, arrays.fbuf, arrays.ibuf, seq, t,
                                         next_commit, newest)
                 self.ti, self.tf = ti2, tf2
