@@ -66,3 +66,33 @@ def test_trim_gives_freed_holes_back_to_the_system() -> None:
     after = _rss_kb()
     assert before - after > 50_000, (before, after)  # most of the ~112 MB freed
     assert len(kept) == 7_500
+
+
+def test_daemon_trims_once_a_period_and_logs_a_slow_trim(
+        tmp_path: Path, caplog: pytest.LogCaptureFixture) -> None:
+    """The checkpoint loop's hook: one trim per period, a warning when a trim stalls."""
+    import logging
+    import time
+
+    from services import town, write_config
+
+    from livematch.config import load_config
+    from livematch.pipeline import Pipeline
+    from livematch.service.daemon import _GC_LOG_S, Daemon
+
+    config = load_config(write_config(tmp_path, "trim", broker="mqtt://127.0.0.1:1"), env={})
+    daemon = Daemon(config, Pipeline(town(), config.matcher, limits=config.feed))
+    calls: list[int] = []
+
+    def slow(pad: int) -> int:
+        calls.append(pad)
+        time.sleep(_GC_LOG_S + 0.05)
+        return 1
+
+    daemon._trimmer = Trimmer(3600.0, trim=slow)
+    with caplog.at_level(logging.WARNING, logger="livematch"):
+        daemon._trim_memory()
+        daemon._trim_memory()  # within the period: no second trim
+    assert calls == [0]
+    assert [r.getMessage() for r in caplog.records].count(
+        "malloc_trim paused the event loop") == 1
