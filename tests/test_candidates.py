@@ -574,17 +574,26 @@ def test_live_block_bounds_kept_in_slots_agree_with_the_header(every: int) -> No
     assert checked > 100
 
 
-def test_less_spare_undoes_the_tree_steps_sizing() -> None:
-    """_less_spare(x + max(x // 4, spare), spare) == x: what the kernel kept, from its sizes.
+def test_times_room_never_below_what_the_step_keeps() -> None:
+    """The fix times a compaction keeps and the room after them always fit.
 
-    Checked by enumeration over every x and spare a tree can have here, not by the
-    formula it inverts.
+    By enumeration over the sizes the tree step writes (``span_t + max(span_t // 4,
+    spare)``), not by the formula: the compaction writes ``span_t`` fix times and the
+    step one more (counted in ``span_t``), so fewer than ``span_t + 1`` would write past
+    the array.
     """
-    from livematch.core.candidates import _less_spare
+    from livematch.core._tree_kernel import MIN_SPARE, T_SPARE
+    from livematch.core.candidates import _times_room
 
-    for spare in range(1, 130):
-        for x in range(0, 3000):
-            assert _less_spare(x + max(x // 4, spare), spare) == x
+    for k in range(0, 40):
+        for m in range(1, 90, 7):
+            spare = max(m, 2 * k + MIN_SPARE)
+            for span_t in range(1, 400, 3):
+                cap_t = span_t + max(span_t // 4, spare)
+                for kept in (m, 3 * m, 200):
+                    cap = kept + max(kept // 4, spare)
+                    got = _times_room(cap_t, cap, m, k)
+                    assert span_t + min(T_SPARE, spare) <= got <= cap_t
 
 
 @pytest.mark.parametrize(("name", "every"), [("Helsinki", 1), ("test", 1), ("Helsinki", 2),

@@ -85,43 +85,27 @@ _NO_TF: npt.NDArray[np.float64] = np.empty(0)
 _NO_BYTES = memoryview(b"")
 
 
-def _less_spare(total: int, spare: int) -> int:
-    """The ``x`` with ``x + max(x // 4, spare) == total``: what a tree step keeps.
-
-    The step sizes arrays as what it keeps plus a quarter of that or ``spare``, whichever
-    is more. ``x + max(x // 4, spare)`` grows by at least one with every step of ``x``, so there
-    is one such ``x`` for every ``total`` the step writes.
-    """
-    x = total - spare
-    if x // 4 <= spare:
-        return x
-    x = total * 4 // 5  # x + x // 4 == total, near total / 1.25
-    while x + x // 4 < total:
-        x += 1
-    while x + x // 4 > total:
-        x -= 1
-    return x
-
-
 def _times_room(cap_t: int, cap: int, m: int, k: int) -> int:
     """Fix times the arrays a tree step compacts into hold: fewer than the kernel asks.
 
-    The step (``tree_sweep``, ``ARENA_FULL``) leaves as much room for fix times as for
-    rows (``cap_t``: the fix times kept and this step's, plus the rows' spare ``max(m,
-    2 k + MIN_SPARE)`` or a quarter, whichever is more). A fix adds one fix time but
-    ``m`` rows (the new live block; ``k`` the old one), so on a tree with several
-    states a fix the fix times would last several compactions: 8 bytes a slot never
-    used, most of a KB per 1 Hz vehicle (``bench/memory.py``). The room kept here is
-    the fixes the rows' room lasts at ``m`` rows a fix, and one more, at least
-    ``T_SPARE`` and a quarter of the times kept: the rows fill up first as before, the
-    kernel's decisions (which rows are kept, where) are the same.
+    The step (``tree_sweep``, ``ARENA_FULL``) asks for as much room for fix times as for
+    rows: ``cap_t`` is the fix times kept and this step's, ``span_t``, plus ``max(span_t
+    // 4, spare)``, ``spare = max(m, 2 k + MIN_SPARE)`` the rows' least room (``m`` the
+    new live block's rows, ``k`` the old one's); ``cap`` rows are the rows kept plus
+    ``max(kept // 4, spare)``. A fix adds one fix time but ``m`` rows, so on a tree of
+    several states the fix times would last several compactions: 8 bytes a slot never
+    used, most of a KB per 1 Hz vehicle (``bench/memory.py``). The room kept here is the
+    fixes the rows' room lasts at ``m`` rows a fix, and one more, at least ``T_SPARE``:
+    ``spare`` slots fewer, that many more. The rows fill up first as before; what is
+    kept and where is unchanged, and never fewer than ``span_t`` + that room (``cap_t -
+    spare`` >= ``span_t``).
     """
     spare = max(m, 2 * k + MIN_SPARE)
-    span_t = _less_spare(cap_t, spare)  # the fix times the compaction keeps
-    kept = _less_spare(cap, spare)  # the rows it keeps
-    lasts = (cap - kept - m) // max(m, 1) + 1  # fixes until the rows fill, and one
-    room = max(span_t // 4, T_SPARE, lasts)
-    return min(cap_t, span_t + room)
+    rows_room = max(spare, cap // 5)  # about max(kept // 4, spare); only sizes the room
+    room = (rows_room - m) // max(m, 1) + 1  # fixes until the rows fill, and one
+    if room < T_SPARE:
+        room = T_SPARE
+    return cap_t - spare + room if room < spare else cap_t
 
 
 class CandidateTree:
