@@ -2,7 +2,8 @@
 
 Run: ``.venv/bin/python bench/memory.py [--counts 1000,10000,100000] [--drives 40]
 [--duration 600] [--states 30] [--copies 400] [--pipeline-vehicles 1000]
-[--pipeline-seconds 120]``
+[--pipeline-seconds 120] [--fleet-vehicles 10000] [--fleet-seconds 120]
+[--fleet-trim-every 60] [--out DIR]``
 
 Goal (issue 9): <= 4 KB for a typical live vehicle, 100,000 vehicles in <= 1 GB resident.
 
@@ -33,16 +34,27 @@ representation is. Steps, each measuring process a fresh subprocess:
    objects and once as MQTT-style JSON messages through ``livematch.pipeline.Pipeline
    .handle`` (decode, dedupe memory, rate-limit bucket, alert monitors without routes or
    fences, trackers). RSS growth per vehicle of each; the difference is the pipeline's
-   own overhead per vehicle. Vehicle i drives pool drive ``i % drives`` from second
-   ``7 * (i // drives)``. Where a driven tracker's memory goes: the data of the arrays
+   own overhead per vehicle. What every pipeline shares (its route, fence and bridging
+   kernels, decoder and record builder caches: about 10 MB) is loaded before the first
+   reading (:func:`warm_pipeline`); until session 12 it was counted per vehicle.
+   Vehicle i drives pool drive ``i % drives`` from second ``7 * (i // drives)``.
+   Where a driven tracker's memory goes: the data of the arrays
    reachable from each driven tracker (found by introspection, not by field names; the
    network's, which a fresh tracker reaches too, left out), the same after a round trip
    through ``to_bytes`` / ``from_bytes`` (the rows still needed, no spare room), and RSS
    after glibc's ``malloc_trim(0)`` (memory freed but kept by the allocator).
+5. **Fleet** (two subprocesses): ``--fleet-vehicles`` vehicles driven
+   ``--fleet-seconds`` s of 1 Hz fixes through one ``Pipeline.handle``, the messages
+   made as they are sent (no feed held in memory), once as they come and once with
+   glibc's ``malloc_trim(0)`` every ``--fleet-trim-every`` seconds of fixes (what the
+   daemon's shell does on its clock, :mod:`livematch.service.allocator`), each trim
+   timed. Whole-process RSS before and after; the figure for 100,000 driven vehicles is
+   the RSS before plus 100,000 x the growth per vehicle (measured, not extrapolated,
+   with ``--fleet-vehicles 100000``: about 30 minutes of CPU per run at idle).
 
-The estimate for 100,000 vehicles behind a pipeline: the step-3 growth at 100,000 plus
-100,000 x the step-4 overhead, plus the base RSS of step 3. Results:
-``bench/results/memory.md`` and ``memory.json``.
+The estimate for 100,000 restored vehicles behind a pipeline: the step-3 growth at
+100,000 plus 100,000 x the step-4 overhead, plus the base RSS of step 3. Results:
+``bench/results/memory.md`` and ``memory.json`` (or ``--out DIR``).
 """
 
 from __future__ import annotations
@@ -560,7 +572,8 @@ def report(r: dict[str, Any]) -> str:
         "",
         f"Pipeline overhead: {r['pipeline']['overhead_kb']:.2f} KB per vehicle (dedupe memory "
         "of the last 64 fix times, rate-limit bucket, alert monitors without routes or "
-        "fences, the dict entries).",
+        "fences, the dict entries; what every pipeline shares, its kernels and caches, is "
+        "loaded before the first reading).",
         *([] if "objects_bytes_per_vehicle" not in p else [
             "",
             f"Python objects the pipeline holds per vehicle besides its tracker (found by "
