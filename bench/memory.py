@@ -2,7 +2,8 @@
 
 Run: ``.venv/bin/python bench/memory.py [--counts 1000,10000,100000] [--drives 40]
 [--duration 600] [--states 30] [--copies 400] [--pipeline-vehicles 1000]
-[--pipeline-seconds 120]``
+[--pipeline-seconds 120] [--fleet-vehicles 10000] [--fleet-seconds 120]
+[--fleet-trim-every 60] [--out DIR]``
 
 Goal (issue 9): <= 4 KB for a typical live vehicle, 100,000 vehicles in <= 1 GB resident.
 
@@ -33,16 +34,27 @@ representation is. Steps, each measuring process a fresh subprocess:
    objects and once as MQTT-style JSON messages through ``livematch.pipeline.Pipeline
    .handle`` (decode, dedupe memory, rate-limit bucket, alert monitors without routes or
    fences, trackers). RSS growth per vehicle of each; the difference is the pipeline's
-   own overhead per vehicle. Vehicle i drives pool drive ``i % drives`` from second
-   ``7 * (i // drives)``. Where a driven tracker's memory goes: the data of the arrays
+   own overhead per vehicle. What every pipeline shares (its route, fence and bridging
+   kernels, decoder and record builder caches: about 10 MB) is loaded before the first
+   reading (:func:`warm_pipeline`); until session 12 it was counted per vehicle.
+   Vehicle i drives pool drive ``i % drives`` from second ``7 * (i // drives)``.
+   Where a driven tracker's memory goes: the data of the arrays
    reachable from each driven tracker (found by introspection, not by field names; the
    network's, which a fresh tracker reaches too, left out), the same after a round trip
    through ``to_bytes`` / ``from_bytes`` (the rows still needed, no spare room), and RSS
    after glibc's ``malloc_trim(0)`` (memory freed but kept by the allocator).
+5. **Fleet** (two subprocesses): ``--fleet-vehicles`` vehicles driven
+   ``--fleet-seconds`` s of 1 Hz fixes through one ``Pipeline.handle``, the messages
+   made as they are sent (no feed held in memory), once as they come and once with
+   glibc's ``malloc_trim(0)`` every ``--fleet-trim-every`` seconds of fixes (what the
+   daemon's shell does on its clock, :mod:`livematch.service.allocator`), each trim
+   timed. Whole-process RSS before and after; the figure for 100,000 driven vehicles is
+   the RSS before plus 100,000 x the growth per vehicle (measured, not extrapolated,
+   with ``--fleet-vehicles 100000``: about 30 minutes of CPU per run at idle).
 
-The estimate for 100,000 vehicles behind a pipeline: the step-3 growth at 100,000 plus
-100,000 x the step-4 overhead, plus the base RSS of step 3. Results:
-``bench/results/memory.md`` and ``memory.json``.
+The estimate for 100,000 restored vehicles behind a pipeline: the step-3 growth at
+100,000 plus 100,000 x the step-4 overhead, plus the base RSS of step 3. Results:
+``bench/results/memory.md`` and ``memory.json`` (or ``--out DIR``).
 """
 
 from __future__ import annotations
@@ -149,6 +161,33 @@ def warm(network: Any, settings: Any) -> None:
     tracker.flush()
     del tracker
     gc.collect()
+
+
+def warm_pipeline(network: Any, settings: Any) -> int:
+    """Build what every :class:`~livematch.pipeline.Pipeline` shares and drop the pipeline.
+
+    A pipeline compiles (or loads) the route, fence and bridging kernels when the first
+    one is made, and its decoder and record builder make their caches on first use:
+    costs of the process, not of a vehicle. One vehicle is driven through a throwaway
+    pipeline. Returns the RSS growth, KB (loading them; what the process pays once).
+    """
+    from _drives import drive_fixes
+
+    from livematch.pipeline import Pipeline
+
+    gc.collect()
+    before = rss_kb()
+    pipe = Pipeline(network, settings)
+    fixes = drive_fixes(network, 1, 30.0, [*SEED, 98])[0]
+    lon, lat = network.projection.to_lonlat([f.x for f in fixes], [f.y for f in fixes])
+    for f, lo, la in zip(fixes, lon.tolist(), lat.tolist(), strict=True):
+        payload = json.dumps({"vehicle": "warm-up", "time": f.t, "lat": la, "lon": lo,
+                              "accuracy": f.accuracy}).encode()
+        pipe.handle("fleet/warm-up/position", payload, f.t + 0.2)
+    pipe.flush()
+    del pipe
+    gc.collect()
+    return rss_kb() - before
 
 
 # ------------------------------------------------------------------ 2. per vehicle
@@ -303,6 +342,12 @@ def pipeline_run(how: str, vehicles: int, seconds: int, drives_count: int,
         for k, (f, lo, la) in enumerate(zip(part, lon.tolist(), lat.tolist(), strict=True)):
             feed.append((1.7e9 + k + i / vehicles, i, f, lo, la))
     feed.sort(key=lambda row: row[0])
+    if how == "pipeline":
+        # what every pipeline shares, paid once per process before the first reading:
+        # its kernels (route, fence, bridging: prepare_kernels), decoder and record
+        # builder, exercised on a throwaway vehicle (step 4 used to count them, about
+        # 15 MB, as 15 KB per vehicle of 1,000)
+        warm_pipeline(network, settings)
     gc.collect()
     rss0 = rss_kb()
     started = time.perf_counter()
@@ -368,6 +413,75 @@ def pipeline_run(how: str, vehicles: int, seconds: int, drives_count: int,
         out["array_kb_held"] = round(statistics.fmean(b for _, b in held_arrays) / 1024, 3)
         out["array_kb_restored"] = round(statistics.fmean(b for _, b in tight) / 1024, 3)
     return out
+
+
+# ------------------------------------------------------------------------ 5. fleet
+def fleet_run(vehicles: int, seconds: int, drives_count: int, duration: float,
+              trim_every: int) -> dict[str, Any]:
+    """``vehicles`` vehicles driven ``seconds`` s of 1 Hz fixes through one Pipeline.
+
+    The messages are made as they are sent (no feed held in memory: at 10,000 vehicles
+    it would be hundreds of MB next to what is measured): second k, every vehicle's fix
+    k, vehicle i driving pool drive ``i % drives`` from second ``7 * (i // drives)`` as
+    in step 4. With ``trim_every`` > 0, glibc's ``malloc_trim(0)`` every that many
+    seconds of fixes, as the daemon's shell does on its clock
+    (:mod:`livematch.service.allocator`); each call timed. RSS is read before the first
+    message (after the network, the kernels and a throwaway pipeline: see
+    :func:`warm_pipeline`), after the run, and after one more ``malloc_trim(0)``.
+    """
+    from livematch.core.settings import MatchSettings
+    from livematch.pipeline import Pipeline
+    from livematch.service.allocator import Trimmer
+
+    network, runs = drives(drives_count, duration)
+    settings = MatchSettings()
+    warm(network, settings)
+    pipeline_kb = warm_pipeline(network, settings)
+    # per drive: the WGS84 positions of its fixes (the messages are made from them)
+    lonlat = []
+    for fixes in runs:
+        lon, lat = network.projection.to_lonlat([f.x for f in fixes], [f.y for f in fixes])
+        lonlat.append((lon.tolist(), lat.tolist()))
+    starts = [(7 * (i // drives_count)) % max(1, len(runs[i % drives_count]) - seconds)
+              for i in range(vehicles)]
+    trimmer = Trimmer()
+    gc.collect()
+    rss0 = rss_kb()
+    pipe = Pipeline(network, settings)
+    trims: list[float] = []
+    outputs = 0
+    started = time.perf_counter()
+    for k in range(seconds):
+        for i in range(vehicles):
+            d = i % drives_count
+            j = starts[i] + k
+            f = runs[d][j]
+            t = 1.7e9 + k + i / vehicles
+            payload = json.dumps({"vehicle": f"v{i}", "time": t, "lat": lonlat[d][1][j],
+                                  "lon": lonlat[d][0][j], "accuracy": f.accuracy}).encode()
+            outputs += len(pipe.handle(f"fleet/v{i}/position", payload, t + 0.2))
+        if trim_every > 0 and (k + 1) % trim_every == 0:
+            t0 = time.perf_counter()
+            trimmer.trim()
+            trims.append(time.perf_counter() - t0)
+    elapsed = time.perf_counter() - started - sum(trims)
+    held = len(pipe.vehicles())
+    gc.collect()
+    rss1 = rss_kb()
+    t0 = time.perf_counter()
+    trimmer.trim()
+    last_trim = time.perf_counter() - t0
+    rss2 = rss_kb()
+    return {"vehicles": held, "seconds": seconds, "fixes": vehicles * seconds,
+            "outputs": outputs, "trim_every": trim_every, "trims": len(trims),
+            "trim_ms_max": round(max(trims, default=0.0) * 1e3, 2),
+            "trim_ms_mean": round(statistics.fmean(trims) * 1e3, 2) if trims else 0.0,
+            "last_trim_ms": round(last_trim * 1e3, 2), "trim_works": trimmer.available,
+            "pipeline_warm_kb": pipeline_kb,
+            "rss_before_kb": rss0, "rss_after_kb": rss1, "rss_trimmed_kb": rss2,
+            "kb_per_vehicle": round((rss1 - rss0) / held, 3),
+            "kb_per_vehicle_trimmed": round((rss2 - rss0) / held, 3),
+            "us_per_fix": round(elapsed / (vehicles * seconds) * 1e6, 1)}
 
 
 # ---------------------------------------------------------------------------- driver
@@ -458,7 +572,8 @@ def report(r: dict[str, Any]) -> str:
         "",
         f"Pipeline overhead: {r['pipeline']['overhead_kb']:.2f} KB per vehicle (dedupe memory "
         "of the last 64 fix times, rate-limit bucket, alert monitors without routes or "
-        "fences, the dict entries).",
+        "fences, the dict entries; what every pipeline shares, its kernels and caches, is "
+        "loaded before the first reading).",
         *([] if "objects_bytes_per_vehicle" not in p else [
             "",
             f"Python objects the pipeline holds per vehicle besides its tracker (found by "
@@ -477,28 +592,67 @@ def report(r: dict[str, Any]) -> str:
             f"commit of that fix; at most 2,048 points for the whole pipeline), "
             f"{p['points_memory_bytes'] / 1024:.0f} KB at the end of the run."]),
         *driven_breakdown(t, p),
+        *fleet_lines(r.get("fleet") or []),
         "",
         "## 100,000 vehicles",
         "",
     ]
     big = r.get("hundred_thousand")
     if big:
-        driven = big["base_mb"] + p["kb_per_vehicle"] * 100_000 / 1024
         lines += [
             f"Restored trackers: {big['trackers_mb']:.0f} MB more resident memory "
             f"({big['kb_per_vehicle']:.2f} KB per vehicle); with the pipeline's overhead "
             f"about {big['with_pipeline_mb']:.0f} MB; whole process (map, modules, "
-            f"trackers, overhead) about {big['process_mb']:.0f} MB. Vehicles that have "
-            f"been driven fix by fix cost more: {p['kb_per_vehicle']:.2f} KB each through "
-            f"the pipeline above after {p['fixes'] // p['vehicles']} fixes each (not broken "
-            f"down here; spare room kept in the arrays and memory freed but not returned "
-            f"by the allocator are the likely parts), about {driven:.0f} MB for the whole "
-            f"process at 100,000. Goal: <= 1 GB "
-            f"({'met' if max(big['process_mb'], driven) <= 1024 else 'not met'}).",
+            f"trackers, overhead) about {big['process_mb']:.0f} MB.",
         ]
     else:
-        lines.append("Not measured in this run (`--counts` without 100000).")
+        lines.append("Restored trackers: not measured in this run (`--counts` without "
+                     "100000).")
+    for row in r.get("fleet") or []:
+        est = fleet_estimate(row)
+        how = (f"`malloc_trim(0)` every {row['trim_every']} s" if row["trim_every"]
+               else "no trim")
+        lines += ["", f"Driven through `Pipeline.handle` ({how}): extrapolated from "
+                  f"{row['vehicles']:,} vehicles of step 5 (RSS growth per vehicle x "
+                  f"100,000, plus the RSS before the first message), {est:.0f} MB for the "
+                  f"whole process. Goal: <= 1 GB ({'met' if est <= 1024 else 'not met'})."]
     return "\n".join(lines) + "\n"
+
+
+def fleet_estimate(row: dict[str, Any]) -> float:
+    """Whole-process MB at 100,000 vehicles from a step-5 run: the RSS before the first
+    message (map, modules, kernels, a warmed pipeline) plus 100,000 x the growth per
+    vehicle (an extrapolation unless the run had 100,000 vehicles)."""
+    return float(row["rss_before_kb"] / 1024 + row["kb_per_vehicle"] * 100_000 / 1024)
+
+
+def fleet_lines(fleet: list[dict[str, Any]]) -> list[str]:
+    """Report lines of step 5 (absent in older runs)."""
+    if not fleet:
+        return []
+    first = fleet[0]
+    lines = [
+        "",
+        f"## A fleet through one pipeline ({first['vehicles']:,} vehicles x "
+        f"{first['seconds']} s of 1 Hz fixes, messages made as they are sent; RSS)",
+        "",
+        f"RSS before the first message includes the network, the compiled kernels and a "
+        f"warmed pipeline (loading the pipeline's own kernels and caches: "
+        f"{first['pipeline_warm_kb'] / 1024:.1f} MB once per process, which step 4 "
+        f"counted per vehicle before session 12).",
+        "",
+        "| malloc_trim | load avg | RSS before MB | RSS after MB | KB per vehicle | KB per "
+        "vehicle after one more trim | trims | trim ms mean / max | µs per fix |",
+        "|---|---:|---:|---:|---:|---:|---:|---:|---:|",
+    ]
+    for row in fleet:
+        every = f"every {row['trim_every']} s" if row["trim_every"] else "never"
+        lines.append(
+            f"| {every} | {row['loadavg_1m']} | {row['rss_before_kb'] / 1024:.0f} | "
+            f"{row['rss_after_kb'] / 1024:.0f} | {row['kb_per_vehicle']:.2f} | "
+            f"{row['kb_per_vehicle_trimmed']:.2f} | {row['trims']} | "
+            f"{row['trim_ms_mean']} / {row['trim_ms_max']} | {row['us_per_fix']} |")
+    return lines
 
 
 def driven_breakdown(t: dict[str, Any], p: dict[str, Any]) -> list[str]:
@@ -538,6 +692,11 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--copies", type=int, default=400, help="copies of each such state")
     ap.add_argument("--pipeline-vehicles", type=int, default=1000)
     ap.add_argument("--pipeline-seconds", type=int, default=120)
+    ap.add_argument("--fleet-vehicles", type=int, default=10_000,
+                    help="vehicles driven through one Pipeline in step 5 (0: skip)")
+    ap.add_argument("--fleet-seconds", type=int, default=120)
+    ap.add_argument("--fleet-trim-every", type=int, default=60,
+                    help="seconds of fixes between malloc_trim calls in step 5's second run")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     args = ap.parse_args(argv)
     if args.role:
@@ -546,6 +705,9 @@ def main(argv: list[str] | None = None) -> int:
             out = per_vehicle(rest[0])
         elif what == "per-state-rss":
             out = per_state_rss(rest[0], int(rest[1]), int(rest[2]))
+        elif what == "fleet":
+            out = fleet_run(int(rest[0]), int(rest[1]), int(rest[2]), float(rest[3]),
+                            int(rest[4]))
         elif what == "count":
             out = n_vehicles(rest[0], int(rest[1]))
         else:
@@ -579,6 +741,13 @@ def main(argv: list[str] | None = None) -> int:
                                str(args.pipeline_seconds), str(args.drives),
                                str(args.duration)])
             print(json.dumps(runs[how]), flush=True)
+        fleet = []
+        if args.fleet_vehicles > 0:
+            for every in (0, args.fleet_trim_every):
+                row = child(["fleet", str(args.fleet_vehicles), str(args.fleet_seconds),
+                             str(args.drives), str(args.duration), str(every)])
+                print(json.dumps(row), flush=True)
+                fleet.append(row)
     overhead = runs["pipeline"]["kb_per_vehicle"] - runs["trackers"]["kb_per_vehicle"]
     result: dict[str, Any] = {
         "command": " ".join(["bench/memory.py", *(sys.argv[1:] if argv is None else argv)]),
@@ -596,6 +765,7 @@ def main(argv: list[str] | None = None) -> int:
                         "composition": pv["composition"]},
         "counts": counts,
         "pipeline": {**runs, "overhead_kb": round(overhead, 3)},
+        "fleet": fleet,
     }
     big = next((c for c in counts if c["n"] == 100_000), None)
     if big:

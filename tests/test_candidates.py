@@ -35,7 +35,7 @@ from livematch.core.sweep import (
     live_score,
     sweep_step,
 )
-from livematch.core.tracker import Tracker
+from livematch.core.tracker import SPARSE_S, Tracker
 from livematch.core.view import NetworkView, view_of
 from livematch.mapdata.netfile import open_network
 from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
@@ -572,3 +572,67 @@ def test_live_block_bounds_kept_in_slots_agree_with_the_header(every: int) -> No
             assert 0 <= tree.nv <= tree.cap_vias
             checked += 1
     assert checked > 100
+
+
+def test_times_room_never_below_what_the_step_keeps() -> None:
+    """The fix times a compaction keeps and the room after them always fit.
+
+    By enumeration over the sizes the tree step writes (``span_t + max(span_t // 4,
+    spare)``), not by the formula: the compaction writes ``span_t`` fix times and the
+    step one more (counted in ``span_t``), so fewer than ``span_t + 1`` would write past
+    the array.
+    """
+    from livematch.core._tree_kernel import MIN_SPARE, T_SPARE
+    from livematch.core.candidates import _times_room
+
+    for k in range(0, 40):
+        for m in range(1, 90, 7):
+            spare = max(m, 2 * k + MIN_SPARE)
+            for span_t in range(1, 400, 3):
+                cap_t = span_t + max(span_t // 4, spare)
+                for kept in (m, 3 * m, 200):
+                    cap = kept + max(kept // 4, spare)
+                    got = _times_room(cap_t, cap, m, k)
+                    assert span_t + min(T_SPARE, spare) <= got <= cap_t
+
+
+@pytest.mark.parametrize(("name", "every"), [("Helsinki", 1), ("test", 1), ("Helsinki", 2),
+                                             ("Helsinki", 5)])
+def test_fewer_spare_fix_times_change_nothing_but_the_room(
+        name: str, every: int, monkeypatch: pytest.MonkeyPatch) -> None:
+    """Trees that keep fewer spare fix times give the same events, and hold fewer bytes.
+
+    The reference is the tree step's own sizing (as much room for fix times as for
+    rows), restored by replacing the room function with one that returns the kernel's.
+    """
+    import livematch.core.candidates as candidates
+
+    net = osm(name)
+    fixes = drive(net, 7, every, 400.0)
+
+    def run() -> tuple[list[object], int, int]:
+        tracker = Tracker(net, "v", MatchSettings())
+        events: list[object] = []
+        slots = spare = 0
+        for fix in fixes:
+            events += tracker.update(fix)
+            for level in tracker.levels:
+                tree = level.tree
+                slots += tree.cap_times
+                if tree.n:
+                    used = tree.seq_of(tree.n - 1) - tree.ti.item(_t.H_T0) + 1
+                    assert used <= tree.cap_times  # every row's fix has its time
+                    spare += tree.cap_times - used
+        events += tracker.flush()
+        return events, slots, spare
+
+    new_events, new_slots, new_spare = run()
+    monkeypatch.setattr(candidates, "_times_room", lambda cap_t, cap, m, k: cap_t)
+    old_events, old_slots, old_spare = run()
+    assert new_events == old_events
+    assert len(new_events) > len(fixes)
+    if every < SPARSE_S:
+        assert new_spare < 0.6 * old_spare, (new_spare, old_spare)
+        assert new_slots < old_slots
+    else:  # trees of vehicles this sparse are kept without room after every fix
+        assert (new_spare, new_slots) == (old_spare, old_slots)

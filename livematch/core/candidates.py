@@ -53,6 +53,7 @@ from livematch.core._tree_kernel import (
     H_CAP_VIAS,
     H_HI,
     H_LO,
+    H_M,
     H_N,
     H_NV,
     H_RCAP,
@@ -65,6 +66,7 @@ from livematch.core._tree_kernel import (
     MIN_SPARE,
     ROW_F,
     ROW_I,
+    T_SPARE,
 )
 from livematch.core.fastsweep import SweepArrays, fast_sweep_step, sweep_arrays
 from livematch.core.sweep import Node
@@ -81,6 +83,29 @@ _MIN_SPARE = MIN_SPARE  # rows (and vias) of room left after a compaction, at le
 _NO_TI: npt.NDArray[np.int32] = np.zeros(HEAD, np.int32)
 _NO_TF: npt.NDArray[np.float64] = np.empty(0)
 _NO_BYTES = memoryview(b"")
+
+
+def _times_room(cap_t: int, cap: int, m: int, k: int) -> int:
+    """Fix times the arrays a tree step compacts into hold: fewer than the kernel asks.
+
+    The step (``tree_sweep``, ``ARENA_FULL``) asks for as much room for fix times as for
+    rows: ``cap_t`` is the fix times kept and this step's, ``span_t``, plus ``max(span_t
+    // 4, spare)``, ``spare = max(m, 2 k + MIN_SPARE)`` the rows' least room (``m`` the
+    new live block's rows, ``k`` the old one's); ``cap`` rows are the rows kept plus
+    ``max(kept // 4, spare)``. A fix adds one fix time but ``m`` rows, so on a tree of
+    several states the fix times would last several compactions: 8 bytes a slot never
+    used, most of a KB per 1 Hz vehicle (``bench/memory.py``). The room kept here is the
+    fixes the rows' room lasts at ``m`` rows a fix, and one more, at least ``T_SPARE``:
+    ``spare`` slots fewer, that many more. The rows fill up first as before; what is
+    kept and where is unchanged, and never fewer than ``span_t`` + that room (``cap_t -
+    spare`` >= ``span_t``).
+    """
+    spare = max(m, 2 * k + MIN_SPARE)
+    rows_room = max(spare, cap // 5)  # about max(kept // 4, spare); only sizes the room
+    room = (rows_room - m) // max(m, 1) + 1  # fixes until the rows fill, and one
+    if room < T_SPARE:
+        room = T_SPARE
+    return cap_t - spare + room if room < spare else cap_t
 
 
 class CandidateTree:
@@ -240,7 +265,8 @@ class CandidateTree:
                 # append, in one call
                 cap = ti.item(H_CAP_ROWS)
                 ti2 = np.empty(HEAD + ROW_I * cap + ti.item(H_CAP_VIAS), np.int32)
-                tf2 = np.empty(ROW_F * cap + ti.item(H_CAP_T))
+                tf2 = np.empty(ROW_F * cap + _times_room(
+                    ti.item(H_CAP_T), cap, ti.item(H_M), self.hi - self.lo))
                 top = _t.compact_append(ti, tf, ti2, tf2, arrays.fbuf, arrays.ibuf, seq, t,
                                         next_commit, newest)
                 self.ti, self.tf = ti2, tf2

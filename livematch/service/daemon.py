@@ -69,6 +69,7 @@ from livematch.feed.decode import (
     vehicle_from_topic,
 )
 from livematch.pipeline import REJECT_PAYLOAD_CHARS, Output, UnknownVehicleError
+from livematch.service.allocator import Trimmer
 from livematch.service.http import HealthServer
 from livematch.service.logs import fields
 from livematch.service.metrics import Metrics
@@ -319,6 +320,9 @@ class Daemon:
         self._renewal_logged_at = -math.inf  # last "lease renewal failed" line
         self._renewal_failures = 0  # failed renewal rounds not yet in a log line
         self._renewer: RenewalThread | None = None  # group mode: renews the leases
+        # gives the C allocator's freed blocks back to the system now and then (the
+        # checkpoint loop; glibc only): see livematch.service.allocator
+        self._trimmer = Trimmer()
         self._intake_closed = False
         self._drain_deadline = 0.0
         self._outbox: deque[_Pending] = deque()  # assignments, commits, alerts
@@ -554,6 +558,7 @@ class Daemon:
                         self._route(out)
                 await self._flush_state(everything=False)
                 await self._evict_idle()
+                self._trim_memory()
                 if failed:
                     log.info("checkpoints written again", extra=fields(failed_rounds=failed))
                 failed = unlogged = 0
@@ -570,6 +575,15 @@ class Daemon:
             except Exception:  # a bug must not end checkpointing: log, count, go on
                 self.metrics.store_errors.inc()
                 log.exception("checkpoint loop error; will retry")
+
+    def _trim_memory(self) -> None:
+        """Every ``TRIM_EVERY_S``: ``malloc_trim(0)``, timed (it holds the event loop)."""
+        started = time.perf_counter()
+        if self._trimmer.maybe(time.monotonic()):
+            took = time.perf_counter() - started
+            if took >= _GC_LOG_S:
+                log.warning("malloc_trim paused the event loop",
+                            extra=fields(seconds=round(took, 3)))
 
     async def _flush_state(self, *, everything: bool) -> None:
         """Write due checkpoints (all with ``everything``) and changed latest records."""
