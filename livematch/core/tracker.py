@@ -1551,12 +1551,12 @@ class Tracker:
             k = max(m, k + 1)
 
     def _wandering_run(self, nodes: list[Node]) -> bool:
-        """Whether the fixes of ``nodes`` (in time order, all in the fix buffer) come
-        densely and wander, as :meth:`_stand_at_vertex` needs.
+        """Whether the fixes of ``nodes`` come densely and wander (:meth:`_stand_at_vertex`).
 
-        Dense: the median gap between consecutive fixes is at most ``SPARSE_S``. Wander:
-        the median step between consecutive fixes is at least ``STILL_M``. Medians, so
-        that one dropped fix or one jump does not decide.
+        ``nodes`` are in time order, their fixes all in the fix buffer. Dense: the median
+        gap between consecutive fixes is at most ``SPARSE_S``. Wander: the median step
+        between consecutive fixes is at least ``STILL_M``. Medians, so that one dropped
+        fix or one jump does not decide.
 
         Example (fixes 1 s apart, 1 m steps):
             >>> from livematch.core.build import Road, network_from_roads
