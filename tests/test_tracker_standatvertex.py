@@ -14,6 +14,7 @@ from livematch.core.events import Commit, Event, MatchedFix
 from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
 from livematch.core.settings import MatchSettings
+from livematch.core.sweep import Node
 from livematch.core.tracker import Tracker
 from livematch.errors import BadConfigError
 from livematch.pipeline import matcher_settings_from_mapping
@@ -203,3 +204,56 @@ def test_a_van_that_starts_standing_at_a_vertex_is_not_put_on_a_road_it_never_dr
     new, _ = _settled(ON, fixes)
     assert all(_segment_at(net, f) != (190.0, V) for f in new[1:])
 
+
+
+def test_a_loop_out_of_the_vertex_keeps_the_stand_where_it_was() -> None:
+    """A committed path that comes to the vertex V = (0, 0) from the west, runs round a
+    10 m block out of V and back (V -> (10, 0) -> (10, 10) -> (0, 10) -> V) and then
+    matches 12 s of wandering fixes on the road south of V: the segment the loop came
+    back by, (0, 10) -> V, is one a vehicle standing at V may never have driven (seen
+    in the bench's random walk and routed trips: a loop that stand_loops left), so
+    the stand keeps its answers on the road south; without the loop (the path coming
+    straight from the west) the same stand is reported at V as the end of (-10, 0) -> V.
+    Hand-built path nodes over fixes fed to the tracker (the fix buffer the rule reads);
+    the segment ends are checked against the coordinates given to network_from_roads."""
+    net = network_from_roads([Road([(-10.0, 0.0), (0.0, 0.0)], way=1),
+                              Road([(0.0, 0.0), (10.0, 0.0), (10.0, 10.0), (0.0, 10.0),
+                                    (0.0, 0.0)], way=2),
+                              Road([(0.0, 0.0), (0.0, -40.0)], way=3)])
+
+    def seg(a: tuple[float, float], b: tuple[float, float]) -> int:
+        for s in range(net.n_segments):
+            if (tuple(net.node_xy[net.seg_from[s]]) == a
+                    and tuple(net.node_xy[net.seg_to[s]]) == b):
+                return s
+        raise AssertionError((a, b))
+
+    west, south = seg((-10.0, 0.0), (0.0, 0.0)), seg((0.0, 0.0), (0.0, -40.0))
+    loop = (seg((0.0, 0.0), (10.0, 0.0)), seg((10.0, 0.0), (10.0, 10.0)),
+            seg((10.0, 10.0), (0.0, 10.0)))
+    back = seg((0.0, 10.0), (0.0, 0.0))
+    tracker = Tracker(net, "van9", ON)
+    wander = [(-2.0, 0.5)] + [(0.6 * math.sin(1.7 * i), -1.5 + 0.6 * math.cos(1.3 * i))
+                              for i in range(1, 14)]
+    for i, (x, y) in enumerate(wander):
+        tracker.update(Fix("van9", float(i), 0.0, 0.0, x, y, 5.0))
+    seq0 = tracker.fix_seq0
+    assert tracker.fix_n == len(wander)
+
+    def node(s: int, i: int, pos: float, via: tuple[int, ...] = ()) -> Node:
+        return Node(s, seq0 + i, float(i), pos, 0.0, 0.0, None, via, 0.0, 0.0)
+
+    def answers(first: list[Node]) -> list[MatchedFix]:
+        run = [node(south, i, 0.05)
+               for i in range(len(first), len(wander))]
+        chain = first + run
+        fixes = [MatchedFix(n.t, n.seg, n.pos * float(net.seg_len[n.seg]), n.x, n.y)
+                 for n in chain]
+        before = Node(west, seq0 - 1, -1.0, 0.5, 0.0, 0.0, None, (), 0.0, 0.0)
+        tracker._stand_at_vertex(chain, before, True, False, 15.0, fixes)
+        return fixes
+
+    looped = answers([node(west, 0, 0.8), node(back, 1, 0.5, loop)])
+    assert all(f.segment == south for f in looped[2:])
+    straight = answers([node(west, 0, 0.8)])
+    assert all(f.segment == west and (f.x, f.y) == (0.0, 0.0) for f in straight[1:])

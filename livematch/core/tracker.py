@@ -76,7 +76,7 @@ import json
 import math
 import struct
 import zlib
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 
 import numpy as np
 
@@ -1544,11 +1544,36 @@ class Tracker:
                    and chain[m].pos <= 0.5 and near(chain[m], vx, vy)):
                 m += 1
             if (m > k and chain[m - 1].t - n.t >= STAND_S and near(prev, vx, vy)
-                    and self._wandering_run([prev, *chain[k:m]])):
+                    and self._wandering_run([prev, *chain[k:m]])
+                    and not self._left_before(chain, k, v, vx, vy, near)):
                 end = float(view.slen[seg_in])
                 for j in range(k, m):
                     fixes[j] = MatchedFix(chain[j].t, seg_in, end, vx, vy)
             k = max(m, k + 1)
+
+    def _left_before(self, chain: list[Node], k: int, v: int, vx: float, vy: float,
+                     near: Callable[[Node, float, float], bool]) -> bool:
+        """Whether the path left vertex ``v`` near the run at ``chain[k]`` and came back.
+
+        The run starts at ``chain[k]``, where the path comes back into ``v``. Looks at the
+        steps from the nodes before it whose fixes lie within eps of ``v`` (back to the
+        first that does not) up to ``chain[k]``: a segment that starts at ``v`` among
+        them is a loop out of ``v`` and back that :meth:`_close_stand_loops` left in
+        place (a fix of it outside the eps disc, or its start in an earlier commit).
+        The segment the loop came back by is then one the vehicle standing at ``v`` may
+        never have driven, so the run stays where it was matched.
+        """
+        view = self._view
+        sf = view.sf
+        j = k
+        while True:
+            node = chain[j]
+            steps = node.via[:-1] if j == k else (*node.via, node.seg)
+            if any(int(sf[s]) == v for s in steps):
+                return True
+            if j == 0 or not near(chain[j - 1], vx, vy):
+                return False
+            j -= 1
 
     def _wandering_run(self, nodes: list[Node]) -> bool:
         """Whether the fixes of ``nodes`` come densely and wander (:meth:`_stand_at_vertex`).
