@@ -4,6 +4,7 @@ through Tracker.update and Tracker.flush, checked with shapely's distances."""
 from __future__ import annotations
 
 import itertools
+import math
 from dataclasses import replace
 
 import pytest
@@ -13,6 +14,7 @@ from livematch.core.events import Commit, Event, MatchedFix
 from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
 from livematch.core.settings import MatchSettings
+from livematch.core.sweep import Node
 from livematch.core.tracker import Tracker
 from livematch.errors import BadConfigError
 from livematch.pipeline import matcher_settings_from_mapping
@@ -24,25 +26,28 @@ ON = MatchSettings(stand_at_vertex=True)
 # A two-way road west-east with a shape point every 10 m (plain points in the middle of a
 # road). A van drives east at 10 m/s to the shape point at x = 200 (fix 17) and stands
 # there for 40 s while the GNSS error leans east, along the road, by up to 4 m (a slow,
-# correlated drift; invented data shaped like the simulator's): the best path follows it
-# onto the segment 200 -> 210, which the van never drives.
+# correlated drift) and wanders by about half a metre from one fix to the next (invented
+# data shaped like the simulator's Gauss-Markov error): the best path follows it onto
+# the segment 200 -> 210, which the van never drives.
 V = 200.0
 STAND = range(18, 58)  # fix indices of the stand
 APPROACH = [(30.0 + 10.0 * i, 1.0) for i in range(18)]
-LEAN = [(V + min(4.0, 0.3 * i), 1.0) for i in range(1, 41)]
+LEAN = [(V + min(4.0, 0.3 * i) + 0.4 * math.sin(1.7 * i), 1.0 + 0.4 * math.cos(1.3 * i))
+        for i in range(1, 41)]
 
 
 def _network() -> RoadNetwork:
     return network_from_roads([Road([(float(x), 0.0) for x in range(0, 410, 10)], way=7)])
 
 
-def _settled(settings: MatchSettings,
-             fixes: list[tuple[float, float]]) -> tuple[list[MatchedFix], list[int]]:
-    """Every fix's final answer, in time order, and the committed path."""
+def _settled(settings: MatchSettings, fixes: list[tuple[float, float]],
+             step: int = 1) -> tuple[list[MatchedFix], list[int]]:
+    """Every fix's final answer, in time order, and the committed path (fixes ``step``
+    seconds apart)."""
     tracker = Tracker(_network(), "van9", settings)
     events: list[Event] = []
     for i, (x, y) in enumerate(fixes):
-        events += tracker.update(Fix("van9", float(i), 0.0, 0.0, x, y, 5.0))
+        events += tracker.update(Fix("van9", float(step * i), 0.0, 0.0, x, y, 5.0))
     events += tracker.flush()
     commits = [e for e in events if isinstance(e, Commit)]
     settled = sorted((f for c in commits for f in c.fixes), key=lambda f: f.t)
@@ -141,3 +146,114 @@ def test_a_stand_nearer_the_next_vertex_stays_where_it_was() -> None:
     assert new == old
     for f in new[0][len(APPROACH) + 1:]:
         assert shapely.Point(f.x, f.y).distance(shapely.Point(208.0, 0.0)) <= 3.0
+
+
+def _segment_at(net: RoadNetwork, f: MatchedFix) -> tuple[float, float]:
+    """The (from x, to x) of the segment a final answer is on."""
+    return (float(net.node_xy[net.seg_from[f.segment], 0]),
+            float(net.node_xy[net.seg_to[f.segment], 0]))
+
+
+def test_a_van_that_holds_still_keeps_its_answers() -> None:
+    """Noise-free fixes (the receiver repeats its position): a van that stands on the
+    vertex at x = 200 for 20 s and then drives off east, and one that stands 3 m past
+    it to the end of the log. The fixes do not move, so they show no drift the path
+    could have followed: the answers are the same with and without the rule, and every
+    final answer lies within 2 m of its fix (shapely's Point.distance; the tolerance of
+    tests/test_tracker_osm.py's noise-free drives). The drive-off's first fixes (0.4-10
+    m past the vertex, like the simulator's 3 m/s/s start) would otherwise be in the
+    stand's run and be reported at the vertex."""
+    approach = [(30.0 + 10.0 * i, 0.0) for i in range(17)]
+    off = [(V + d, 0.0) for d in (0.36, 2.16, 5.46, 10.26, 16.5, 24.0, 33.0, 43.0, 53.0)]
+    at_v = approach + [(V, 0.0)] * 20 + off
+    past_v = approach + [(V, 0.0), (V + 3.0, 0.0)] + [(V + 3.0, 0.0)] * 25
+    for fixes in (at_v, past_v):
+        old = _settled(MatchSettings(stand_at_vertex=False), fixes)
+        new = _settled(ON, fixes)
+        assert new == old
+        for f, (x, y) in zip(new[0], fixes, strict=True):
+            assert shapely.Point(f.x, f.y).distance(shapely.Point(x, y)) < 2.0
+
+
+def test_sparse_fixes_are_left_alone() -> None:
+    """The same leaning stand, 90 s long, sampled every 15 s (the van slowing to x = 190
+    first): a run of 10 s is then one or two fixes, too few to tell a stand from a slow
+    step, and the rule does not act (the answers equal those without the rule);
+    sampled every 5 s it does (the stand's fixes are reported at x = 200)."""
+    net = _network()
+    for step, approach, acts in ((15, [50.0, 190.0], False),
+                                 (5, [50.0, 100.0, 150.0, 190.0], True)):
+        stand = [(V + min(4.0, 0.3 * i) + 0.4 * math.sin(1.7 * i),
+                  1.0 + 0.4 * math.cos(1.3 * i)) for i in range(step, 91, step)]
+        fixes = [(x, 1.0) for x in approach] + stand
+        old = _settled(MatchSettings(stand_at_vertex=False), fixes, step)
+        new = _settled(ON, fixes, step)
+        assert len(new[0]) == len(fixes)
+        moved = [f for f in new[0] if f.x == V and _segment_at(net, f) == (190.0, V)]
+        assert (new != old) is acts
+        assert (len(moved) >= 3) is acts
+
+
+def test_a_van_that_starts_standing_at_a_vertex_is_not_put_on_a_road_it_never_drove() -> None:
+    """A van switched on while standing at the vertex x = 200 (its first fix 1 m west
+    of it, the next ones leaning east and wandering), which then drives off east: the
+    stretch begins on the segment 190 -> 200, which the van never drove, so the stand is
+    not reported as that segment's end; no final answer after the first lies on it."""
+    net = _network()
+    fixes = [(V - 1.0, 1.0)] + LEAN[:20] + [(V + 4.0 + 10.0 * i, 1.0) for i in range(1, 16)]
+    new, _ = _settled(ON, fixes)
+    assert all(_segment_at(net, f) != (190.0, V) for f in new[1:])
+
+
+
+def test_a_loop_out_of_the_vertex_keeps_the_stand_where_it_was() -> None:
+    """A committed path that comes to the vertex V = (0, 0) from the west, runs round a
+    10 m block out of V and back (V -> (10, 0) -> (10, 10) -> (0, 10) -> V) and then
+    matches 12 s of wandering fixes on the road south of V: the segment the loop came
+    back by, (0, 10) -> V, is one a vehicle standing at V may never have driven (seen
+    in the bench's random walk and routed trips: a loop that stand_loops left), so
+    the stand keeps its answers on the road south; without the loop (the path coming
+    straight from the west) the same stand is reported at V as the end of (-10, 0) -> V.
+    Hand-built path nodes over fixes fed to the tracker (the fix buffer the rule reads);
+    the segment ends are checked against the coordinates given to network_from_roads."""
+    net = network_from_roads([Road([(-10.0, 0.0), (0.0, 0.0)], way=1),
+                              Road([(0.0, 0.0), (10.0, 0.0), (10.0, 10.0), (0.0, 10.0),
+                                    (0.0, 0.0)], way=2),
+                              Road([(0.0, 0.0), (0.0, -40.0)], way=3)])
+
+    def seg(a: tuple[float, float], b: tuple[float, float]) -> int:
+        for s in range(net.n_segments):
+            if (tuple(net.node_xy[net.seg_from[s]]) == a
+                    and tuple(net.node_xy[net.seg_to[s]]) == b):
+                return s
+        raise AssertionError((a, b))
+
+    west, south = seg((-10.0, 0.0), (0.0, 0.0)), seg((0.0, 0.0), (0.0, -40.0))
+    loop = (seg((0.0, 0.0), (10.0, 0.0)), seg((10.0, 0.0), (10.0, 10.0)),
+            seg((10.0, 10.0), (0.0, 10.0)))
+    back = seg((0.0, 10.0), (0.0, 0.0))
+    tracker = Tracker(net, "van9", ON)
+    wander = [(-2.0, 0.5)] + [(0.6 * math.sin(1.7 * i), -1.5 + 0.6 * math.cos(1.3 * i))
+                              for i in range(1, 14)]
+    for i, (x, y) in enumerate(wander):
+        tracker.update(Fix("van9", float(i), 0.0, 0.0, x, y, 5.0))
+    seq0 = tracker.fix_seq0
+    assert tracker.fix_n == len(wander)
+
+    def node(s: int, i: int, pos: float, via: tuple[int, ...] = ()) -> Node:
+        return Node(s, seq0 + i, float(i), pos, 0.0, 0.0, None, via, 0.0, 0.0)
+
+    def answers(first: list[Node]) -> list[MatchedFix]:
+        run = [node(south, i, 0.05)
+               for i in range(len(first), len(wander))]
+        chain = first + run
+        fixes = [MatchedFix(n.t, n.seg, n.pos * float(net.seg_len[n.seg]), n.x, n.y)
+                 for n in chain]
+        before = Node(west, seq0 - 1, -1.0, 0.5, 0.0, 0.0, None, (), 0.0, 0.0)
+        tracker._stand_at_vertex(chain, before, True, False, 15.0, fixes)
+        return fixes
+
+    looped = answers([node(west, 0, 0.8), node(back, 1, 0.5, loop)])
+    assert all(f.segment == south for f in looped[2:])
+    straight = answers([node(west, 0, 0.8)])
+    assert all(f.segment == west and (f.x, f.y) == (0.0, 0.0) for f in straight[1:])

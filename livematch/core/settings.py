@@ -268,13 +268,16 @@ class MatchSettings:
             the log ends during the stand), the stand was committed on a road it never
             drove. ``stand_loops`` cuts such a stand out only when the path comes back
             to V in the same commit. Final answers only; live answers are unaffected.
-            Off by default, for the lead to decide: on bench/accuracy.py's drives (80
-            per case, seeds 31 / 77, ``--intervals 1,5``, both extracts) final accuracy
-            rises on routed trips by 0.26-0.57 points (Helsinki 1 s 0.9737 / 0.9632 ->
-            0.9769 / 0.9658) and by -0.02 to +0.12 on the random walk, live and route mismatch
-            unchanged, but one cell loses 3 fixes (random walk, test extract, 5 s, seed
-            77: a stand at a drive's start moved onto the segment the first stretch
-            began on) (docs/measured.md, "Session 11 (fleetfinal)").
+            Only where the stand's fixes come at most 5 s apart (median gap;
+            ``livematch.core.tracker.SPARSE_S``) and wander (median step at least 0.1 m,
+            ``STILL_M``: fixes that repeat one position, as in a noise-free log, show no
+            drift for the path to have followed); never at the end of the segment a new
+            stretch began on, nor after a loop out of V and back into it. On by default:
+            on bench/accuracy.py's drives (80 per case, seeds 31 / 77, ``--intervals
+            1,5``, both extracts, routed trips and random walk) final accuracy rises on
+            routed trips by 0.3-0.6 points (Helsinki 1 s 0.9737 / 0.9632 -> 0.9772 /
+            0.9673) and falls in no case; live answers and route mismatch are unchanged;
+            at 15 and 30 s it cannot act (docs/measured.md, "Session 12 (standguard)").
         live_keep: hysteresis of the live answer (score units, 0 disables): when a live
             candidate of the deciding level lies on the segment of the previous live
             answer and ranks within ``live_keep`` of the best one (live score, see
@@ -344,7 +347,7 @@ class MatchSettings:
     reverse_turns_near: bool = False
     lone_reverse_turns: bool = False
     hold_filtered: bool = True
-    stand_at_vertex: bool = False
+    stand_at_vertex: bool = True
     live_keep: float = 0.0
     live_keep_stand_s: float = 0.0
 

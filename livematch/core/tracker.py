@@ -76,7 +76,7 @@ import json
 import math
 import struct
 import zlib
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 
 import numpy as np
 
@@ -134,6 +134,16 @@ STOOD_MPS = 1.0
 STAND_S = 10.0
 STAND_AFTER_S = 10.0
 STAND_SIGMAS = 2.0
+# With MatchSettings.stand_at_vertex, a run of fixes whose median step from one fix to
+# the next is shorter than this (metres) holds still: the receiver repeats its position
+# (a noise-free log, or a receiver's static hold), so the run shows no wandering error
+# that the path could have followed onto the road beyond a vertex, and
+# Tracker._stand_at_vertex leaves it where the sweep matched it. A GNSS error that
+# wanders moves a fix by about sigma sqrt(2 dt / tau) per axis each step: 1.05 m at 1 s
+# and 2.3 m at 5 s for the simulator's sigma 5 m and tau 45 s (livematch.sim.drive's
+# Gauss-Markov error). 0.1 m: far below that, far above rounding (chosen by judgement,
+# not tuned).
+STILL_M = 0.1
 # With MatchSettings.stand_hold, a vehicle whose fixes of the last STAND_HOLD_S seconds
 # all lie within STAND_SIGMAS sigma_m of the newest one stands now (Tracker._stand_start),
 # and keeps standing while those of the last STAND_KEEP_S seconds do. 3 s: 10 m in 3 s is
@@ -1510,7 +1520,7 @@ class Tracker:
                         fixes[k] = MatchedFix(n.t, seg_in, float(view.slen[seg_in]), n.x, n.y)
                 prev = n
         if self.settings.stand_at_vertex and (goes_on or len(chain) >= 2):
-            self._stand_at_vertex(chain, before, goes_on, self._eps_of(tree), fixes)
+            self._stand_at_vertex(chain, before, goes_on, starts, self._eps_of(tree), fixes)
         if starts and first.pos >= 1.0:
             # A stretch that starts at the very end of a segment drives none of it: report
             # its first fix at the start of the segment entered next (the same point) and
@@ -1533,8 +1543,8 @@ class Tracker:
             prune.tree.prune(row)
 
     def _stand_at_vertex(
-        self, chain: list[Node], before: Node | None, goes_on: bool, eps: float,
-        fixes: list[MatchedFix],
+        self, chain: list[Node], before: Node | None, goes_on: bool, starts: bool,
+        eps: float, fixes: list[MatchedFix],
     ) -> None:
         """Report a stand just past a vertex at the vertex, in ``fixes`` (in place).
 
@@ -1547,7 +1557,21 @@ class Tracker:
         V (the vehicle may have stood at that vertex instead) or whose fix lies farther
         than ``eps`` from V; later nodes keep their answers. Not where P is the twin of
         S (the path turned round at V: at the start of a stretch, P can be a segment
-        the vehicle never drove).
+        the vehicle never drove), nor where P is the segment a new stretch (``starts``)
+        began on and the path has been nowhere else before the run (a vehicle that
+        starts standing at V never drove P either; ``starts`` is the flag
+        :meth:`_commit_chain` computed for the chain). Two guards on the fixes from the
+        one before the run to the run's last (:meth:`_wandering_run`):
+
+        - they come at most ``SPARSE_S`` apart (their median gap): at 15 or 30 s
+          between fixes a run of ``STAND_S`` is one or two fixes, too few to tell a
+          stand from a slow step;
+        - they move: their median step from one fix to the next is at least
+          ``STILL_M``. A receiver that repeats its position gives no sign of a
+          wandering error for the path to have followed: a noise-free vehicle that
+          stands on V and then drives off along S has the first fixes of its
+          drive-off (0.4-10 m past V, within eps) in the run, and they are where
+          the vehicle was.
 
         Why: while a vehicle stands at V its GNSS error leans one way for tens of
         seconds, and the best path follows it a few metres onto the road beyond V. When
@@ -1574,7 +1598,7 @@ class Tracker:
             >>> a = Node(0, 1, 0.0, 0.1, 10.0, 0.0, None, (), 0.0, 0.0)
             >>> b = Node(0, 2, 1.0, 0.2, 20.0, 0.0, a, (), 0.0, 0.0)
             >>> out = [MatchedFix(1.0, 0, 20.0, 20.0, 0.0)]
-            >>> tracker._stand_at_vertex([b], a, True, 15.0, out)
+            >>> tracker._stand_at_vertex([b], a, True, False, 15.0, out)
             >>> out == [MatchedFix(1.0, 0, 20.0, 20.0, 0.0)]
             True
         """
@@ -1599,7 +1623,8 @@ class Tracker:
             seg_in = n.via[-1] if n.via else (
                 prev.seg if prev is not None and prev.seg != n.seg else -1)
             if (seg_in < 0 or prev is None or view.st[seg_in] != view.sf[n.seg]
-                    or seg_in == view.twin[n.seg]):
+                    or seg_in == view.twin[n.seg]
+                    or (starts and not n.via and all(c.seg == seg_in for c in chain[:k]))):
                 k += 1
                 continue
             v = int(view.sf[n.seg])
@@ -1609,11 +1634,66 @@ class Tracker:
             while (m < len(chain) and chain[m].seg == n.seg and (m == k or not chain[m].via)
                    and chain[m].pos <= 0.5 and near(chain[m], vx, vy)):
                 m += 1
-            if m > k and chain[m - 1].t - n.t >= STAND_S and near(prev, vx, vy):
+            if (m > k and chain[m - 1].t - n.t >= STAND_S and near(prev, vx, vy)
+                    and self._wandering_run([prev, *chain[k:m]])
+                    and not self._left_before(chain, k, v, vx, vy, near)):
                 end = float(view.slen[seg_in])
                 for j in range(k, m):
                     fixes[j] = MatchedFix(chain[j].t, seg_in, end, vx, vy)
             k = max(m, k + 1)
+
+    def _left_before(self, chain: list[Node], k: int, v: int, vx: float, vy: float,
+                     near: Callable[[Node, float, float], bool]) -> bool:
+        """Whether the path left vertex ``v`` near the run at ``chain[k]`` and came back.
+
+        The run starts at ``chain[k]``, where the path comes back into ``v``. Looks at the
+        steps from the nodes before it whose fixes lie within eps of ``v`` (back to the
+        first that does not) up to ``chain[k]``: a segment that starts at ``v`` among
+        them is a loop out of ``v`` and back that :meth:`_close_stand_loops` left in
+        place (a fix of it outside the eps disc, or its start in an earlier commit).
+        The segment the loop came back by is then one the vehicle standing at ``v`` may
+        never have driven, so the run stays where it was matched.
+        """
+        view = self._view
+        sf = view.sf
+        j = k
+        while True:
+            node = chain[j]
+            steps = node.via[:-1] if j == k else (*node.via, node.seg)
+            if any(int(sf[s]) == v for s in steps):
+                return True
+            if j == 0 or not near(chain[j - 1], vx, vy):
+                return False
+            j -= 1
+
+    def _wandering_run(self, nodes: list[Node]) -> bool:
+        """Whether the fixes of ``nodes`` come densely and wander (:meth:`_stand_at_vertex`).
+
+        ``nodes`` are in time order, their fixes all in the fix buffer. Dense: the median
+        gap between consecutive fixes is at most ``SPARSE_S``. Wander: the median step
+        between consecutive fixes is at least ``STILL_M``. Medians, so that one dropped
+        fix or one jump does not decide.
+
+        Example (fixes 1 s apart, 1 m steps):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "v1")
+            >>> for i in range(4):
+            ...     _ = tracker.update(Fix("v1", float(i), 0.0, 0.0, 50.0 + i, 1.0))
+            >>> nodes = [Node(0, tracker.fix_seq0 + i, float(i), 0.5, 0.0, 0.0, None, (),
+            ...               0.0, 0.0) for i in range(4)]
+            >>> tracker._wandering_run(nodes)
+            True
+        """
+        seq0 = self.fix_seq0
+        xy = self.fix_xy
+        gaps = sorted(b.t - a.t for a, b in itertools.pairwise(nodes))
+        if gaps[len(gaps) // 2] > SPARSE_S:
+            return False
+        pts = [(xy.item(n.seq - seq0, 0), xy.item(n.seq - seq0, 1)) for n in nodes]
+        steps = sorted(math.hypot(bx - ax, by - ay)
+                       for (ax, ay), (bx, by) in itertools.pairwise(pts))
+        return steps[len(steps) // 2] >= STILL_M
 
     def _eps_of(self, tree: CandidateTree) -> float:
         """The eps of the level whose tree is ``tree``, in metres.
