@@ -310,6 +310,17 @@ class MatchSettings:
             -16 fixes), the fleet model gained 0.05-0.37 points at Helsinki (under
             half the unbounded gain) but lost 1-4 fixes on the test extract at 5 s
             (docs/measured.md "Session 12 (livepick)").
+        motion_step: the motion term's scale shrinks with the time step as the error of
+            a fix-to-fix step does: ``motion_m`` times ``sqrt(2 (1 - rho))``, rho =
+            ``exp(-dt / error_tau_s)``, capped at ``motion_m`` (no change when
+            ``error_tau_s`` is 0). Why: GNSS error that is correlated in time
+            (first-order Gauss-Markov, variance sigma^2, autocorrelation rho) leaves a
+            step between two fixes with error variance 2 sigma^2 (1 - rho), far below
+            the fixes' own; a fixed ``motion_m`` weighs that accurate step like the
+            biased positions. On a small loop (85 m circled at 19 m per 5 s fix) the
+            distance term then reads a lap as standing or going round the other way
+            where the fixes lean 10 m to one side (docs/measured.md "Session 12
+            (laps5)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -350,6 +361,7 @@ class MatchSettings:
     stand_at_vertex: bool = True
     live_keep: float = 0.0
     live_keep_stand_s: float = 0.0
+    motion_step: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -383,7 +395,7 @@ class MatchSettings:
                      "pace_reach", "stand_loops", "stand_commit_wait", "sparse_stand_wait",
                      "stand_loops_outer", "vertex_in_segment", "reverse_turns",
                      "reverse_turns_near", "lone_reverse_turns", "hold_filtered",
-                     "stand_at_vertex"):
+                     "stand_at_vertex", "motion_step"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

@@ -70,6 +70,7 @@ How it decides
 from __future__ import annotations
 
 import bisect
+import dataclasses
 import heapq
 import itertools
 import json
@@ -563,6 +564,8 @@ class Tracker:
         step[7] = w[1]
         step[8] = w[2]
         step[9] = w[3]
+        if s.motion_step and dt > 0.0:
+            step[9] = w[3] * motion_gain(dt, s.error_tau_s)
         first = self.next_commit
         t = fix.t
         for level in self.levels:
@@ -580,6 +583,8 @@ class Tracker:
             # the window died (or the step is a gap): bridge, else start afresh
             ctx = StepContext.between(self._view, s, level.eps, x0, y0, fix.x, fix.y, seq,
                                       fix.t, stood, turned)
+            if step[9] != ctx.motion_cost:
+                ctx = dataclasses.replace(ctx, motion_cost=step[9])
             nodes, rows = tree.live_nodes(self._view)
             new, how = advance(self.network, nodes, ctx, s, dt, gap=True)
             if how == "bridged":
@@ -2197,6 +2202,27 @@ def _weights_of(s: MatchSettings) -> tuple[float, float, float, float]:
     """
     return (1.0 / (2.0 * s.sigma_m * s.sigma_m), 1.0 / s.beta_m, s.turn_back_cost,
             1.0 / s.motion_m)
+
+
+def motion_gain(dt: float, tau: float) -> float:
+    """How much more the motion term weighs a step ``dt`` s long (rule ``motion_step``).
+
+    ``1 / min(1, sqrt(2 (1 - exp(-dt / tau))))``: the inverse of the standard deviation of
+    the error of a fix-to-fix step, in units of the fixes' own (per axis), for GNSS error
+    that is first-order Gauss-Markov with time constant ``tau`` (variance of the
+    difference of two samples rho apart: 2 sigma^2 (1 - rho)). 1 for ``tau`` <= 0 (no
+    correlation assumed) and for steps long enough that the step is no better known than
+    a fix.
+
+        >>> round(motion_gain(5.0, 30.0), 2)
+        1.8
+        >>> motion_gain(60.0, 30.0), motion_gain(5.0, 0.0)
+        (1.0, 1.0)
+    """
+    if tau <= 0.0 or dt <= 0.0:
+        return 1.0
+    spread = math.sqrt(2.0 * -math.expm1(-dt / tau))
+    return 1.0 / spread if spread < 1.0 else 1.0
 
 
 def _pack_levels(levels: list[Level],
