@@ -1110,6 +1110,7 @@ class Tracker:
                     self._commit_chain(old, leaf, events, prune=None)
                     covering = self._covering()
                     break
+        waits: bool | None = None  # _into_stand(t, dt, stood), asked when a commit is due
         progressed = True
         while progressed:
             progressed = False
@@ -1127,9 +1128,18 @@ class Tracker:
                     level.cut = self.next_commit - 1
                 else:
                     top = tree.commit_point(self.next_commit, newest)
-                if (top >= 0 and not self._defers(level, top, covering)
-                        and not self._into_stand(t, dt, stood)):
-                    self._commit_chain(tree, top, events, prune=None)
+                if top < 0:
+                    continue
+                # (both checks read no state a commit changes: the stand's once a fix,
+                # first, as it needs no chain; the chain built once for the deferral
+                # check and the commit)
+                if waits is None:
+                    waits = self._into_stand(t, dt, stood)
+                if waits:
+                    continue
+                built = tree.chain(self._view, top, self.next_commit)
+                if not self._defers(level, top, covering, built):
+                    self._commit_chain(tree, top, events, prune=None, built=built)
                     covering = self._covering()
                     progressed = True
                     break
@@ -1412,7 +1422,8 @@ class Tracker:
             end -= 1
         return False
 
-    def _defers(self, level: Level, row: int, covering: list[Level]) -> bool:
+    def _defers(self, level: Level, row: int, covering: list[Level],
+                built: tuple[list[Node], Node | None] | None = None) -> bool:
         """Whether ``level`` leaves the commit up to row ``row`` to another covering level.
 
         It does when another covering level's tree is at least as old (it went on where
@@ -1436,16 +1447,28 @@ class Tracker:
             False
         """
         last = self.last_commit
-        if last is None or not any(lv is not level and lv.tree_seq <= level.tree_seq
-                                   for lv in covering):
+        if last is None:
+            return False
+        own = level.tree_seq
+        for lv in covering:
+            if lv is not level and lv.tree_seq <= own:
+                break
+        else:
             return False
         tree = level.tree
-        # the state just before the stretch (a compiled walk; no nodes built for the
-        # usual case, a stretch that goes on from the last committed state)
-        before = tree.ancestor_at(row, self.next_commit - 1)
-        if tree.seq_of(before) == last[2] and tree.seg_of(before) == last[0]:
-            return False
-        chain, _ = tree.chain(self._view, row, self.next_commit)
+        if built is not None:
+            # the chain the commit will use (``tree.chain(view, row, next_commit)``): its
+            # node before is the state just before the stretch
+            chain, node = built
+            if node is not None and node.seq == last[2] and node.seg == last[0]:
+                return False
+        else:
+            # the state just before the stretch (a compiled walk; no nodes built for
+            # the usual case, a stretch that goes on from the last committed state)
+            before = tree.ancestor_at(row, self.next_commit - 1)
+            if tree.seq_of(before) == last[2] and tree.seg_of(before) == last[0]:
+                return False
+            chain, _ = tree.chain(self._view, row, self.next_commit)
         if not chain:
             return False
         first = chain[0]
@@ -1465,10 +1488,14 @@ class Tracker:
 
     def _commit_chain(
         self, tree: CandidateTree, row: int, events: list[Event], prune: Level | None,
-        settle_all: bool = False,
+        settle_all: bool = False, built: tuple[list[Node], Node | None] | None = None,
     ) -> None:
-        """Commit the path ending at row ``row`` for every fix from ``next_commit`` on."""
-        chain, before = tree.chain(self._view, row, self.next_commit)
+        """Commit the path ending at row ``row`` for every fix from ``next_commit`` on.
+
+        ``built``: ``tree.chain(view, row, next_commit)`` if the caller has it already.
+        """
+        chain, before = built if built is not None else tree.chain(self._view, row,
+                                                                     self.next_commit)
         if not chain:
             return
         if self.settings.stand_loops and before is not None and len(chain) >= 2:
