@@ -80,7 +80,7 @@ from collections.abc import Iterator
 
 import numpy as np
 
-from livematch.core._tree_kernel import K_SEG, ROW_F, ROW_I
+from livematch.core._tree_kernel import K_SEG, ROW_F, ROW_I, tree_sweep
 from livematch.core.candidates import DIED, CandidateTree
 from livematch.core.events import Assignment, Commit, Event, Filtered, HeldAssignment, MatchedFix
 from livematch.core.fastsweep import sweep_arrays
@@ -555,6 +555,10 @@ class Tracker:
         step[9] = w[3]
         first = self.next_commit
         t = fix.t
+        # CandidateTree.step, its compiled call made here (a Python call fewer per
+        # level); the kernel's buffers are read again after a step that grew them
+        sweep = tree_sweep
+        netf, neti, fbuf, ibuf = arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf
         for level in self.levels:
             tree = level.tree
             if tree.hi > tree.lo and not gap:
@@ -562,7 +566,14 @@ class Tracker:
                 # the commit check only for a level that covers the oldest pending fix
                 # (Tracker._covering: alive, its tree no newer than that fix)
                 ask = newest if tops is not None and level.tree_seq <= first else -1
-                top = tree.step(arrays, step, seq, t, first, ask)
+                top, lo, hi = sweep(netf, neti, fbuf, ibuf, step, tree.ti, tree.tf, seq, t,
+                                    first, ask)
+                if top >= DIED:
+                    tree.lo = lo
+                    tree.hi = hi
+                else:
+                    top = tree.step_rest(arrays, step, seq, t, first, ask, top)
+                    netf, neti, fbuf, ibuf = arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf
                 if top != DIED:
                     if tops is not None and ask >= 0:
                         tops[level] = (tree, first, ask, top)
