@@ -80,7 +80,8 @@ from collections.abc import Iterator
 
 import numpy as np
 
-from livematch.core._tree_kernel import K_SEG, ROW_F, ROW_I, tree_sweep
+from livematch.core._tree_kernel import K_SEG, ROW_F, ROW_I, cut_and_check, tree_sweep
+from livematch.core._tree_kernel import live_answer as tree_live_answer
 from livematch.core.candidates import DIED, CandidateTree
 from livematch.core.events import Assignment, Commit, Event, Filtered, HeldAssignment, MatchedFix
 from livematch.core.fastsweep import sweep_arrays
@@ -491,12 +492,16 @@ class Tracker:
             if held is None and recent:
                 held = self._hold_at_stand(deciding, best, seq, recent)
             tree = deciding.tree
-            seg, pos, x, y = held or tree.point(self._view, best)
-            if held is None and pos <= 0.0 and s.vertex_in_segment:
-                seg_in = self._came_in_by(tree, best)
-                if seg_in >= 0:
-                    seg, pos = seg_in, 1.0
-            self.last_seg = tree.seg_of(best)
+            if held is None:
+                seg, pos, x, y = tree.point(self._view, best)
+                self.last_seg = seg  # the best row's own segment (before the swap below)
+                if pos <= 0.0 and s.vertex_in_segment:
+                    seg_in = self._came_in_by(tree, best)
+                    if seg_in >= 0:
+                        seg, pos = seg_in, 1.0
+            else:
+                seg, pos, x, y = held
+                self.last_seg = tree.seg_of(best)
             said = Assignment(
                 self.vehicle, fix.t, seg, pos * self._view.slen[seg],
                 x, y, deciding.eps, seq - deciding.cert_seq + 1,
@@ -753,9 +758,11 @@ class Tracker:
             # _hold_at_junction)
             rho = math.exp(-dt / s.error_tau_s)
             margin /= math.sqrt(1.0 - rho * rho)
-        best, split = tree.live_answer(self._view, self.last_seg, self.fix_xy, self.fix_n,
-                                       self.fix_seq0, self.next_commit - 1, self._weights[0],
-                                       s.error_tau_s if scored else 0.0, s.gap_s, margin)
+        # (CandidateTree.live_answer's compiled call, made here: a Python call fewer)
+        best, split = tree_live_answer(
+            sweep_arrays(self._view).seg_geo, tree.ti, tree.tf, self.last_seg, self.fix_xy,
+            self.fix_n, self.fix_seq0, self.next_commit - 1, self._weights[0],
+            1.0 / s.error_tau_s if scored else 0.0, s.gap_s, margin)
         if (s.live_keep > 0.0 and 0.0 < dt <= SPARSE_S and self.last_seg >= 0
                 and tree.seg_of(best) != self.last_seg
                 and tree.seg_of(best) != self.network.seg_twin.item(self.last_seg)
@@ -1109,7 +1116,9 @@ class Tracker:
         s = self.settings
         newest = seq - 1 if hold_newest else seq
         # the covering levels change only with a commit: asked again after each one
-        covering = self._covering()
+        # (this first time inline: _covering)
+        first = self.next_commit
+        covering = [lv for lv in self.levels if lv.tree.hi > lv.tree.lo and lv.tree_seq <= first]
         if not covering:
             # The trees that covered the oldest pending fixes died this step: their best
             # candidate is the final answer for them.
@@ -1135,10 +1144,12 @@ class Tracker:
                 elif self.next_commit - 1 > level.cut:
                     # a commit moved the cut: the call also cuts the links _trim would
                     # (the same answer), so _trim makes no call for this level
-                    top = tree.commit_point(self.next_commit, newest, cut=True)
+                    # (CandidateTree.commit_point's compiled call, made here: a Python
+                    # call fewer, up to three a commit)
+                    top = cut_and_check(tree.ti, self.next_commit, newest, True)
                     level.cut = self.next_commit - 1
                 else:
-                    top = tree.commit_point(self.next_commit, newest)
+                    top = cut_and_check(tree.ti, self.next_commit, newest, False)
                 if top < 0:
                     continue
                 # (both checks read no state a commit changes: the stand's once a fix,
