@@ -249,16 +249,26 @@ class CandidateTree:
         ``DIED`` (-2) when the window died (the tree is unchanged), else the commit point
         of the new live block for ``next_commit`` and ``newest`` (-1: none, or not asked).
         """
+        # a tree whose arrays are full is compacted within them by the kernel
+        top, lo, hi = _t.tree_sweep(arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf,
+                                    ctx, self.ti, self.tf, seq, t, next_commit, newest)
+        if top >= DIED:  # a commit point (>= -1), or the window died
+            self.lo = lo
+            self.hi = hi
+            return top
+        return self.step_rest(arrays, ctx, seq, t, next_commit, newest, top)
+
+    def step_rest(self, arrays: SweepArrays, ctx: npt.NDArray[np.float64], seq: int, t: float,
+                  next_commit: int, newest: int, top: int) -> int:
+        """The rest of :meth:`step` after its compiled call answered ``top`` < ``DIED``.
+
+        ``ARENA_FULL`` (new arrays, then append) or ``TREE_OVERFLOW`` (grow the kernel's
+        buffers, step again). A caller that makes the compiled call itself (the tracker,
+        three levels a fix: a Python call fewer each) hands the answer on here.
+        """
         while True:
-            # a tree whose arrays are full is compacted within them by the kernel
             ti = self.ti
             tf = self.tf
-            top, lo, hi = _t.tree_sweep(arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf,
-                                        ctx, ti, tf, seq, t, next_commit, newest)
-            if top >= DIED:  # a commit point (>= -1), or the window died
-                self.lo = lo
-                self.hi = hi
-                return top
             if top == _t.ARENA_FULL:
                 # the result waits in the kernel's buffers: compact into new arrays with
                 # the room the kernel worked out (as compact() would size them) and
@@ -273,6 +283,12 @@ class CandidateTree:
                 self._synced()
                 return top
             arrays.grow()  # TREE_OVERFLOW: the kernel's buffers were too small
+            top, lo, hi = _t.tree_sweep(arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf,
+                                        ctx, ti, tf, seq, t, next_commit, newest)
+            if top >= DIED:
+                self.lo = lo
+                self.hi = hi
+                return top
 
     def live_nodes(self, view: NetworkView) -> tuple[dict[int, Node], dict[int, int]]:
         """The live states as nodes (segment -> node), and node id -> row.

@@ -81,7 +81,8 @@ from collections.abc import Callable, Iterator
 
 import numpy as np
 
-from livematch.core._tree_kernel import K_SEG, ROW_F, ROW_I
+from livematch.core._tree_kernel import K_SEG, ROW_F, ROW_I, cut_and_check, tree_sweep
+from livematch.core._tree_kernel import live_answer as tree_live_answer
 from livematch.core.candidates import DIED, CandidateTree
 from livematch.core.events import Assignment, Commit, Event, Filtered, HeldAssignment, MatchedFix
 from livematch.core.fastsweep import sweep_arrays
@@ -502,12 +503,16 @@ class Tracker:
             if held is None and recent:
                 held = self._hold_at_stand(deciding, best, seq, recent)
             tree = deciding.tree
-            seg, pos, x, y = held or tree.point(self._view, best)
-            if held is None and pos <= 0.0 and s.vertex_in_segment:
-                seg_in = self._came_in_by(tree, best)
-                if seg_in >= 0:
-                    seg, pos = seg_in, 1.0
-            self.last_seg = tree.seg_of(best)
+            if held is None:
+                seg, pos, x, y = tree.point(self._view, best)
+                self.last_seg = seg  # the best row's own segment (before the swap below)
+                if pos <= 0.0 and s.vertex_in_segment:
+                    seg_in = self._came_in_by(tree, best)
+                    if seg_in >= 0:
+                        seg, pos = seg_in, 1.0
+            else:
+                seg, pos, x, y = held
+                self.last_seg = tree.seg_of(best)
             said = Assignment(
                 self.vehicle, fix.t, seg, pos * self._view.slen[seg],
                 x, y, deciding.eps, seq - deciding.cert_seq + 1,
@@ -568,6 +573,10 @@ class Tracker:
             step[9] = w[3] * motion_gain(dt, s.error_tau_s)
         first = self.next_commit
         t = fix.t
+        # CandidateTree.step, its compiled call made here (a Python call fewer per
+        # level); the kernel's buffers are read again after a step that grew them
+        sweep = tree_sweep
+        netf, neti, fbuf, ibuf = arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf
         for level in self.levels:
             tree = level.tree
             if tree.hi > tree.lo and not gap:
@@ -575,7 +584,14 @@ class Tracker:
                 # the commit check only for a level that covers the oldest pending fix
                 # (Tracker._covering: alive, its tree no newer than that fix)
                 ask = newest if tops is not None and level.tree_seq <= first else -1
-                top = tree.step(arrays, step, seq, t, first, ask)
+                top, lo, hi = sweep(netf, neti, fbuf, ibuf, step, tree.ti, tree.tf, seq, t,
+                                    first, ask)
+                if top >= DIED:
+                    tree.lo = lo
+                    tree.hi = hi
+                else:
+                    top = tree.step_rest(arrays, step, seq, t, first, ask, top)
+                    netf, neti, fbuf, ibuf = arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf
                 if top != DIED:
                     if tops is not None and ask >= 0:
                         tops[level] = (tree, first, ask, top)
@@ -757,9 +773,11 @@ class Tracker:
             # _hold_at_junction)
             rho = math.exp(-dt / s.error_tau_s)
             margin /= math.sqrt(1.0 - rho * rho)
-        best, split = tree.live_answer(self._view, self.last_seg, self.fix_xy, self.fix_n,
-                                       self.fix_seq0, self.next_commit - 1, self._weights[0],
-                                       s.error_tau_s if scored else 0.0, s.gap_s, margin)
+        # (CandidateTree.live_answer's compiled call, made here: a Python call fewer)
+        best, split = tree_live_answer(
+            sweep_arrays(self._view).seg_geo, tree.ti, tree.tf, self.last_seg, self.fix_xy,
+            self.fix_n, self.fix_seq0, self.next_commit - 1, self._weights[0],
+            1.0 / s.error_tau_s if scored else 0.0, s.gap_s, margin)
         if (s.live_keep > 0.0 and 0.0 < dt <= SPARSE_S and self.last_seg >= 0
                 and tree.seg_of(best) != self.last_seg
                 and tree.seg_of(best) != self.network.seg_twin.item(self.last_seg)
@@ -1113,7 +1131,9 @@ class Tracker:
         s = self.settings
         newest = seq - 1 if hold_newest else seq
         # the covering levels change only with a commit: asked again after each one
-        covering = self._covering()
+        # (this first time inline: _covering)
+        first = self.next_commit
+        covering = [lv for lv in self.levels if lv.tree.hi > lv.tree.lo and lv.tree_seq <= first]
         if not covering:
             # The trees that covered the oldest pending fixes died this step: their best
             # candidate is the final answer for them.
@@ -1125,6 +1145,7 @@ class Tracker:
                     self._commit_chain(old, leaf, events, prune=None)
                     covering = self._covering()
                     break
+        waits: bool | None = None  # _into_stand(t, dt, stood), asked when a commit is due
         progressed = True
         while progressed:
             progressed = False
@@ -1138,13 +1159,24 @@ class Tracker:
                 elif self.next_commit - 1 > level.cut:
                     # a commit moved the cut: the call also cuts the links _trim would
                     # (the same answer), so _trim makes no call for this level
-                    top = tree.commit_point(self.next_commit, newest, cut=True)
+                    # (CandidateTree.commit_point's compiled call, made here: a Python
+                    # call fewer, up to three a commit)
+                    top = cut_and_check(tree.ti, self.next_commit, newest, True)
                     level.cut = self.next_commit - 1
                 else:
-                    top = tree.commit_point(self.next_commit, newest)
-                if (top >= 0 and not self._defers(level, top, covering)
-                        and not self._into_stand(t, dt, stood)):
-                    self._commit_chain(tree, top, events, prune=None)
+                    top = cut_and_check(tree.ti, self.next_commit, newest, False)
+                if top < 0:
+                    continue
+                # (both checks read no state a commit changes: the stand's once a fix,
+                # first, as it needs no chain; the chain built once for the deferral
+                # check and the commit)
+                if waits is None:
+                    waits = self._into_stand(t, dt, stood)
+                if waits:
+                    continue
+                built = tree.chain(self._view, top, self.next_commit)
+                if not self._defers(level, top, covering, built):
+                    self._commit_chain(tree, top, events, prune=None, built=built)
                     covering = self._covering()
                     progressed = True
                     break
@@ -1427,7 +1459,8 @@ class Tracker:
             end -= 1
         return False
 
-    def _defers(self, level: Level, row: int, covering: list[Level]) -> bool:
+    def _defers(self, level: Level, row: int, covering: list[Level],
+                built: tuple[list[Node], Node | None] | None = None) -> bool:
         """Whether ``level`` leaves the commit up to row ``row`` to another covering level.
 
         It does when another covering level's tree is at least as old (it went on where
@@ -1451,16 +1484,28 @@ class Tracker:
             False
         """
         last = self.last_commit
-        if last is None or not any(lv is not level and lv.tree_seq <= level.tree_seq
-                                   for lv in covering):
+        if last is None:
+            return False
+        own = level.tree_seq
+        for lv in covering:
+            if lv is not level and lv.tree_seq <= own:
+                break
+        else:
             return False
         tree = level.tree
-        # the state just before the stretch (a compiled walk; no nodes built for the
-        # usual case, a stretch that goes on from the last committed state)
-        before = tree.ancestor_at(row, self.next_commit - 1)
-        if tree.seq_of(before) == last[2] and tree.seg_of(before) == last[0]:
-            return False
-        chain, _ = tree.chain(self._view, row, self.next_commit)
+        if built is not None:
+            # the chain the commit will use (``tree.chain(view, row, next_commit)``): its
+            # node before is the state just before the stretch
+            chain, node = built
+            if node is not None and node.seq == last[2] and node.seg == last[0]:
+                return False
+        else:
+            # the state just before the stretch (a compiled walk; no nodes built for
+            # the usual case, a stretch that goes on from the last committed state)
+            before = tree.ancestor_at(row, self.next_commit - 1)
+            if tree.seq_of(before) == last[2] and tree.seg_of(before) == last[0]:
+                return False
+            chain, _ = tree.chain(self._view, row, self.next_commit)
         if not chain:
             return False
         first = chain[0]
@@ -1480,10 +1525,14 @@ class Tracker:
 
     def _commit_chain(
         self, tree: CandidateTree, row: int, events: list[Event], prune: Level | None,
-        settle_all: bool = False,
+        settle_all: bool = False, built: tuple[list[Node], Node | None] | None = None,
     ) -> None:
-        """Commit the path ending at row ``row`` for every fix from ``next_commit`` on."""
-        chain, before = tree.chain(self._view, row, self.next_commit)
+        """Commit the path ending at row ``row`` for every fix from ``next_commit`` on.
+
+        ``built``: ``tree.chain(view, row, next_commit)`` if the caller has it already.
+        """
+        chain, before = built if built is not None else tree.chain(self._view, row,
+                                                                     self.next_commit)
         if not chain:
             return
         if self.settings.stand_loops and before is not None and len(chain) >= 2:
