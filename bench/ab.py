@@ -66,29 +66,14 @@ def worker(extract: str, drives: int, duration: float, what: str = "tracker") ->
 
 def pipeline_worker(extract: str, drives: int, duration: float) -> None:
     """:func:`worker` for ``--what pipeline``: the CPU of ``Pipeline.handle`` per drive."""
-    from _drives import load_extract, simulate_drives
-    from speed import pipeline_setup
+    from speed import warmed_feeds
 
-    from livematch.core.settings import MatchSettings
-    from livematch.pipeline import Pipeline
-
-    net = load_extract(extract)
-    sims = simulate_drives(net, drives, duration, [2009, 5])
-    fleet, messages = pipeline_setup(sims, net)
-    by_drive = [[m for m in messages if m[1] == f"fleet/{d.vehicle}"] for d in sims]
-    for feed in by_drive:  # warm: kernels, every route's chain, caches
-        for t, topic, payload in feed[:30]:
-            fleet.handle(topic, payload, t + 0.5)
-    fences = fleet.fences.fences if fleet.fences is not None else None
-    chains = getattr(fleet, "_chains", None)  # prepared routes, shared (not timed)
+    by_drive, fresh = warmed_feeds(extract, drives, duration)
     print("ready", flush=True)
     for line in sys.stdin:
         k, every = map(int, line.split())
         feed = by_drive[k][::every]
-        pipe = Pipeline(net, MatchSettings(), routes=fleet.routes, fences=fences,
-                        vehicle_routes=fleet.vehicle_routes)
-        if chains is not None:
-            pipe._chains = chains
+        pipe = fresh()
         t0 = time.process_time()
         for t, topic, payload in feed:
             pipe.handle(topic, payload, t + 0.5)

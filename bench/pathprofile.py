@@ -62,29 +62,14 @@ CALLS = [
 def run(extract: str, reps: int) -> None:
     """The timed workload (see the module docstring)."""
     sys.path.insert(0, str(Path(__file__).resolve().parent))
-    from _drives import load_extract, simulate_drives
-    from speed import pipeline_setup
+    from speed import warmed_feeds
 
-    from livematch.core.settings import MatchSettings
-    from livematch.pipeline import Pipeline
-
-    net = load_extract(extract)
-    sims = simulate_drives(net, 8, 600.0, [2009, 5])
-    fleet, messages = pipeline_setup(sims, net)
-    by_drive = [[m for m in messages if m[1] == f"fleet/{d.vehicle}"] for d in sims]
-    for feed in by_drive:  # warm: kernels, every route's chain, caches
-        for t, topic, payload in feed[:30]:
-            fleet.handle(topic, payload, t + 0.5)
-    fences = fleet.fences.fences if fleet.fences is not None else None
-    chains = getattr(fleet, "_chains", None)
+    by_drive, fresh = warmed_feeds(extract, 8, 600.0)
     cpu = 0.0
     fixes = 0
     for _ in range(reps):
         for feed in by_drive:
-            pipe = Pipeline(net, MatchSettings(), routes=fleet.routes, fences=fences,
-                            vehicle_routes=fleet.vehicle_routes)
-            if chains is not None:
-                pipe._chains = chains
+            pipe = fresh()
             t0 = time.process_time()
             timed_rounds(pipe, feed)
             cpu += time.process_time() - t0

@@ -35,6 +35,7 @@ import os
 import platform
 import statistics
 import time
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -119,6 +120,36 @@ def pipeline_setup(drives: list[Drive], network: RoadNetwork
             messages.append((o.t, f"fleet/{d.vehicle}", json.dumps(body).encode()))
     messages.sort(key=lambda m: m[0])
     return pipeline, messages
+
+
+def warmed_feeds(extract: str, drives: int, duration: float
+                 ) -> tuple[list[list[tuple[float, str, bytes]]], Callable[[], Pipeline]]:
+    """Each simulated drive's messages (seeds 2009, 5) and a maker of fresh pipelines.
+
+    The shared pipeline of :func:`pipeline_setup` is warmed on the first 30 messages of
+    every drive (kernels, every route's chain, caches), so a timed drive through a fresh
+    pipeline from the maker pays none of that: the pipelines share routes, fences and the
+    routes' prepared chains. Used by ``bench/ab.py --what pipeline`` and
+    ``bench/pathprofile.py``.
+    """
+    net = load_extract(extract)
+    sims = simulate_drives(net, drives, duration, [2009, 5])
+    fleet, messages = pipeline_setup(sims, net)
+    by_drive = [[m for m in messages if m[1] == f"fleet/{d.vehicle}"] for d in sims]
+    for feed in by_drive:
+        for t, topic, payload in feed[:30]:
+            fleet.handle(topic, payload, t + 0.5)
+    fences = fleet.fences.fences if fleet.fences is not None else None
+    chains = getattr(fleet, "_chains", None)  # prepared routes, shared (not timed)
+
+    def fresh() -> Pipeline:
+        pipe = Pipeline(net, MatchSettings(), routes=fleet.routes, fences=fences,
+                        vehicle_routes=fleet.vehicle_routes)
+        if chains is not None:
+            pipe._chains = chains
+        return pipe
+
+    return by_drive, fresh
 
 
 def measure_pipeline(drives: list[Drive], network: RoadNetwork) -> dict[str, Any]:

@@ -2,7 +2,11 @@
 
 from __future__ import annotations
 
+import importlib.util
 import itertools
+import sys
+from pathlib import Path
+from types import ModuleType
 
 import numpy as np
 
@@ -69,3 +73,16 @@ def polyline_points(coords: list[tuple[float, float]], spacing: float) -> list[t
         carry = d - length
     out.append(coords[-1])
     return out
+
+
+def bench_module(name: str) -> ModuleType:
+    """``bench/<name>.py`` loaded once as module ``bench_<name>`` (bench/ is no package)."""
+    key = f"bench_{name}"
+    if key not in sys.modules:
+        path = Path(__file__).resolve().parent.parent / "bench" / f"{name}.py"
+        spec = importlib.util.spec_from_file_location(key, path)
+        assert spec is not None and spec.loader is not None
+        module = importlib.util.module_from_spec(spec)
+        sys.modules[key] = module
+        spec.loader.exec_module(module)
+    return sys.modules[key]

@@ -2,9 +2,6 @@
 
 from __future__ import annotations
 
-import importlib.util
-import sys
-from pathlib import Path
 from types import ModuleType
 
 import networkx as nx
@@ -13,20 +10,14 @@ import pytest
 
 from livematch.sim.drive import DriveSettings, drivable_segments, simulate_drive
 from livematch.sim.score import route_mismatch_fraction
-from tests.catalogue import dead_end, grid
+from tests.catalogue import bench_module, dead_end, grid
 
 T0 = 1_767_225_600.0
 
 
 def bench_accuracy() -> ModuleType:
-    path = Path(__file__).resolve().parent.parent / "bench" / "accuracy.py"
-    if "bench_accuracy" not in sys.modules:
-        spec = importlib.util.spec_from_file_location("bench_accuracy", path)
-        assert spec is not None and spec.loader is not None
-        module = importlib.util.module_from_spec(spec)
-        sys.modules["bench_accuracy"] = module
-        spec.loader.exec_module(module)
-    return sys.modules["bench_accuracy"]
+    """``bench/accuracy.py`` as a module."""
+    return bench_module("accuracy")
 
 
 def test_dead_ends_are_the_pendant_vertices_of_a_two_way_network():

