@@ -68,6 +68,9 @@ CCW_ERRBOUND = (3.0 + 16.0 * 2.0 ** -53) * 2.0 ** -53
 N_HEAD = 10
 _KEY_BASE = 2 ** 31  # cell keys: cx * base + cy, |cx|, |cy| < 2^30 (cells of 250 m)
 KEY_LIMIT = 2 ** 30
+#: Metres taken off a computed clearance (:func:`fence_clearance`): far more than the
+#: rounding of a point-to-segment distance in projected metres (below a nanometre).
+CLEARANCE_SLACK_M = 1e-3
 
 
 def cell_key(cx: int, cy: int) -> int:
@@ -257,6 +260,122 @@ def fence_probe(x: float, y: float, cell_m: float, fi: np.ndarray, ff: np.ndarra
         if outer == UNDECIDED or inner == UNDECIDED:
             unsure = True
     return -n if unsure else n
+
+
+@numba.njit(cache=True, error_model="numpy", inline="always")
+def _segment_distance2(ax: float, ay: float, bx: float, by: float, x: float,
+                       y: float) -> float:
+    """Squared distance from (x, y) to the segment from (ax, ay) to (bx, by)."""
+    dx = bx - ax
+    dy = by - ay
+    length2 = dx * dx + dy * dy
+    t = 0.0
+    if length2 > 0.0:
+        t = ((x - ax) * dx + (y - ay) * dy) / length2
+        if t < 0.0:
+            t = 0.0
+        elif t > 1.0:
+            t = 1.0
+    px = ax + t * dx - x
+    py = ay + t * dy - y
+    return px * px + py * py
+
+
+@numba.njit(cache=True, error_model="numpy", inline="always")
+def _polygon_distance2(fi: np.ndarray, ff: np.ndarray, p: int, x: float, y: float) -> float:
+    """A lower bound of the squared distance from (x, y) to polygon ``p``'s boundary.
+
+    The distance to its bounding box when the point lies outside the box; else the
+    distance to the nearest of its edges (every band's edges: an edge listed in several
+    bands is measured again); 0 when the polygon is left to shapely (no bands).
+    """
+    b = 4 * p
+    x0 = ff[b]
+    y0 = ff[b + 1]
+    x1 = ff[b + 2]
+    y1 = ff[b + 3]
+    if not (x0 <= x <= x1 and y0 <= y <= y1):
+        ex = x0 - x if x < x0 else (x - x1 if x > x1 else 0.0)
+        ey = y0 - y if y < y0 else (y - y1 if y > y1 else 0.0)
+        return ex * ex + ey * ey
+    pband = fi[7]
+    band0 = fi[pband + p]
+    band1 = fi[pband + p + 1]
+    if band1 == band0:
+        return 0.0
+    bptr = fi[8]
+    bedge = fi[fi[9]:]
+    v0 = 10 * fi[0]
+    best = math.inf
+    for e in range(fi[bptr + band0], fi[bptr + band1]):
+        q = v0 + 2 * bedge[e]
+        d2 = _segment_distance2(ff[q], ff[q + 1], ff[q + 2], ff[q + 3], x, y)
+        if d2 < best:
+            best = d2
+    return best
+
+
+@numba.njit(cache=True, error_model="numpy")
+def fence_clearance(x: float, y: float, cell_m: float, fi: np.ndarray,
+                    ff: np.ndarray) -> float:
+    """Metres (x, y) can move without :func:`fence_probe`'s answer changing; 0: unknown.
+
+    A point closer to (x, y) than this lies in the same outer and inner polygons of
+    every fence: no polygon boundary is that close. The fences the probe lists for the
+    point's grid cell (and those tested everywhere) are measured (:func:`_polygon_distance2`);
+    every other fence's bounding box lies outside the cell, so farther than the cell's
+    edges, which bound the answer too. The exact distance is at most a micrometre
+    larger than the computed one for coordinates below 1e7 m; ``CLEARANCE_SLACK_M`` is
+    taken off, so the bound holds. 0 for a point that is not finite, in a cell the
+    probe cannot key, or inside the box of a polygon left to shapely.
+    """
+    if not (math.isfinite(x) and math.isfinite(y)):
+        return 0.0
+    cx = math.floor(x / cell_m)
+    cy = math.floor(y / cell_m)
+    if not (-KEY_LIMIT < cx < KEY_LIMIT and -KEY_LIMIT < cy < KEY_LIMIT):
+        return 0.0
+    d = x - cx * cell_m
+    d = min(d, (cx + 1) * cell_m - x, y - cy * cell_m, (cy + 1) * cell_m - y)
+    if not d > CLEARANCE_SLACK_M:
+        return 0.0
+    d2 = d * d
+    n_c = fi[1]
+    n_e = fi[2]
+    lo = 0
+    hi = 0
+    if n_c > 0:
+        keys = fi[fi[3]:fi[3] + n_c]
+        key = cx * _KEY_BASE + cy
+        c = np.searchsorted(keys, key)
+        if c < n_c and keys[c] == key:
+            ptr = fi[fi[4]:fi[4] + n_c + 1]
+            lo = ptr[c]
+            hi = ptr[c + 1]
+    ids = fi[fi[5]:fi[6]]
+    every = fi[fi[6]:fi[6] + n_e]
+    for j in range(hi - lo + n_e):  # the cell's fences, then those tested everywhere
+        i = ids[lo + j] if j < hi - lo else every[j - (hi - lo)]
+        for p in range(2 * i, 2 * i + 2):
+            g2 = _polygon_distance2(fi, ff, p, x, y)
+            if g2 < d2:
+                d2 = g2
+    clear = math.sqrt(d2) - CLEARANCE_SLACK_M
+    return clear if clear > 0.0 else 0.0
+
+
+@numba.njit(cache=True, error_model="numpy")
+def fence_probe_clear(x: float, y: float, cell_m: float, fi: np.ndarray, ff: np.ndarray,
+                      out: np.ndarray) -> tuple[int, float]:
+    """:func:`fence_probe` and, when its answer is certain, :func:`fence_clearance`.
+
+    One call for both (each call from Python pays numba's dispatch); the clearance is 0
+    when the probe's count is negative (an answer left to shapely).
+    """
+    n = fence_probe(x, y, cell_m, fi, ff, out)
+    if n < 0:
+        return n, 0.0
+    return n, fence_clearance(x, y, cell_m, fi, ff)
 
 
 def warm_up() -> None:

@@ -208,6 +208,31 @@ class FenceSet:
             inner.append(inside == _fk.INSIDE)
         return near, inner
 
+    def probe_clear(self, x: float, y: float) -> tuple[tuple[list[int], list[bool]], float]:
+        """:meth:`probe` and the squared metres (x, y) can move without it changing.
+
+        The second value is the square of
+        :func:`~livematch.core.monitors._fence_kernel.fence_clearance` (0 when unknown:
+        the probe's answer needed shapely, or the point is not finite): a point (x', y')
+        with ``(x' - x) ** 2 + (y' - y) ** 2`` below it gets the same answer, so a
+        vehicle that moves less than that between fixes needs no probe
+        (:meth:`~livematch.core.monitors.vehicle.VehicleAlerts.update`). One compiled
+        call for both (tests/test_monitors.py checks the bound against shapely's
+        distances and the answers at points inside it).
+
+        >>> fs = FenceSet([Fence("a", shapely.box(0, 0, 100, 100))], AlertSettings())
+        >>> (near, inner), r2 = fs.probe_clear(50.0, 50.0)   # 35 m from the inner edge
+        >>> near, inner, round(r2 ** 0.5, 3)
+        ([0], [True], 34.999)
+        """
+        n, clear = _fk.fence_probe_clear(x, y, GRID_CELL_M, self._fi, self._ff, self._out)
+        if n == 0:
+            return ([], []), clear * clear
+        if n > 0:
+            rows = self._out[:3 * n].tolist()
+            return (rows[0::3], list(map(_IS_INSIDE, rows[2::3]))), clear * clear
+        return self.probe(x, y), 0.0
+
     def near(self, x: float, y: float) -> list[int]:
         """Indices of the fences whose outer polygon holds (x, y) (boundary included).
 
@@ -278,10 +303,15 @@ class FenceMonitor:
         []
     """
 
-    __slots__ = ("state",)  # one per vehicle: no instance dict
+    __slots__ = ("calm", "state")  # one per vehicle in or near a fence: no instance dict
 
     def __init__(self) -> None:
         self.state: dict[str, list[Any]] = {}
+        # (probe, fence set, dwell watch) when the last update left every fence settled
+        # (see update), else None; not part of the checkpoint (a restored monitor takes
+        # the full path once)
+        self.calm: tuple[tuple[list[int], list[bool]], FenceSet,
+                         list[tuple[int, list[Any], float]]] | None = None
 
     def inside(self) -> list[str]:
         """Ids of the fences the vehicle is inside, sorted."""
@@ -293,8 +323,30 @@ class FenceMonitor:
         """Take one fix at position (x, y) (raw or matched, metres); return its alerts.
 
         ``probe``: ``fences.probe(x, y)`` when the caller has it already.
+
+        Settled: when an update leaves the vehicle inside each fence it has state for,
+        with no run of fixes under way (every count 0), every such fence near the point,
+        and no fence entered (each whose inner polygon holds the point is one it is
+        inside), on a fence set whose fences watch every vehicle, the next update with
+        the very same probe answer (the caller's object: ``VehicleAlerts`` passes it
+        again while the vehicle stays closer to the probed point than any fence's edge)
+        can only send dwell alerts: each fence's step would leave its state as it is.
+        That update checks the dwell times alone, in the full path's order.
         """
         state = self.state
+        calm = self.calm
+        if calm is not None:
+            if probe is calm[0] and fences is calm[1]:
+                alerts: list[Alert] = []
+                t = fix.t
+                for i, st, dwell in calm[2]:  # inside, dwell not sent yet, in fence order
+                    if t - st[1] >= dwell:
+                        st[2] = True
+                        alerts.append(_alert(fences.fences[i], fix, "fence_dwell", t - st[1]))
+                if alerts:
+                    self.calm = None  # the dwell watch changed: the full path next time
+                return alerts
+            self.calm = None
         near, near_inner = probe if probe is not None else fences.probe(x, y)
         if not near and not state:
             return []  # near no fence and in none: most fixes of a fleet
@@ -314,7 +366,7 @@ class FenceMonitor:
                     break
         if general:
             todo, outer = _todo(state, fences, fix, x, y, groups, near, near_inner)
-        alerts: list[Alert] = []
+        alerts = []
         ids = fences.ids
         settings = fences.settings
         needed = settings.fence_fixes
@@ -349,6 +401,8 @@ class FenceMonitor:
                 if t - st[1] >= dwell:
                     st[2] = True
                     alerts.append(_alert(fence, fix, "fence_dwell", t - st[1]))
+        if probe is not None and not general:
+            self.calm = _calm(state, fences, probe)
         return alerts
 
     def to_state(self) -> dict[str, list[Any]]:
@@ -361,6 +415,39 @@ class FenceMonitor:
         m = cls()
         m.state = {k: list(v) for k, v in state.items()}
         return m
+
+
+def _calm(state: dict[str, list[Any]], fences: FenceSet,
+          probe: tuple[list[int], list[bool]],
+          ) -> tuple[tuple[list[int], list[bool]], FenceSet,
+                     list[tuple[int, list[Any], float]]] | None:
+    """:attr:`FenceMonitor.calm` after a full update with ``probe`` (None: not settled).
+
+    Settled (:meth:`FenceMonitor.update`): every fence with state is one the vehicle is
+    inside, with a count of 0 and near the point; every near fence whose inner polygon
+    holds the point has such state; no fence filters vehicles (the caller checked). The
+    dwell watch lists the fences inside whose dwell alert is not sent yet, in fence
+    order, each with its state and dwell time.
+    """
+    near, near_inner = probe
+    index = fences.index
+    for k, st in state.items():
+        if not st[0] or st[3] or index.get(k) not in near:
+            return None
+    ids = fences.ids
+    listed = fences.fences
+    default = fences.settings.fence_dwell_s
+    watch: list[tuple[int, list[Any], float]] = []
+    for i, inner in zip(near, near_inner, strict=True):
+        st = state.get(ids[i])
+        if st is None:
+            if inner:
+                return None  # an entry would start
+            continue
+        if not st[2]:
+            dwell = listed[i].dwell_s
+            watch.append((i, st, dwell if dwell is not None else default))
+    return probe, fences, watch
 
 
 def _todo(state: dict[str, list[Any]], fences: FenceSet, fix: Fix, x: float, y: float,

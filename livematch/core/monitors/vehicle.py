@@ -39,7 +39,13 @@ class VehicleAlerts:
         []
     """
 
-    __slots__ = ("fences", "network", "requested", "route", "watch")  # one per vehicle
+    __slots__ = ("fence_memo", "fences", "network", "requested", "route", "watch")
+
+    #: ``(fence set, x, y, r2, probe)``: the last fence probe, at (x, y), and the squared
+    #: metres a point may be from there and get the same answer
+    #: (:meth:`~livematch.core.monitors.fences.FenceSet.probe_clear`); None when unknown.
+    #: Not part of the checkpoint: a restored vehicle probes afresh, with the same answer.
+    fence_memo: tuple[FenceSet, float, float, float, tuple[list[int], list[bool]]] | None
 
     def __init__(self) -> None:
         self.route: RouteMonitor | None = None
@@ -47,6 +53,7 @@ class VehicleAlerts:
         self.fences: FenceMonitor | None = None
         self.network = OffNetworkMonitor()
         self.watch: StaleWatch | None = None
+        self.fence_memo = None
 
     def set_route(self, route_id: str | None, chain: RouteChain | None,
                   settings: AlertSettings) -> bool:
@@ -90,18 +97,23 @@ class VehicleAlerts:
             x, y = (matched if matched is not None and settings.fence_position == "matched"
                     else (fix.x, fix.y))
             monitor = self.fences
-            if monitor is None:
-                if not fences.may_be_near(x, y):
+            memo = self.fence_memo
+            if memo is not None and memo[0] is fences and (
+                    (x - memo[1]) * (x - memo[1]) + (y - memo[2]) * (y - memo[2]) < memo[3]):
+                near = memo[4]  # closer to the last probed point than any fence's edge
+            else:
+                if monitor is None and not fences.may_be_near(x, y):
+                    self.fence_memo = None
                     return alerts  # no fence can hold the point: no compiled probe
-                near = fences.probe(x, y)
+                near, r2 = fences.probe_clear(x, y)
+                self.fence_memo = (fences, x, y, r2, near) if r2 > 0.0 else None
+            if monitor is None:
                 if True not in near[1]:
                     # in no fence and in no inner polygon: a fresh monitor would neither
                     # alert nor keep anything (FenceMonitor.update)
                     return alerts
                 monitor = FenceMonitor()
-                alerts.extend(monitor.update(fences, fix, x, y, groups, near))
-            else:
-                alerts.extend(monitor.update(fences, fix, x, y, groups))
+            alerts.extend(monitor.update(fences, fix, x, y, groups, near))
             # a monitor with no state is a fresh one: none is kept until it has some
             self.fences = monitor if monitor.state else None
         return alerts
