@@ -282,12 +282,17 @@ def _segment_distance2(ax: float, ay: float, bx: float, by: float, x: float,
 
 
 @numba.njit(cache=True, error_model="numpy", inline="always")
-def _polygon_distance2(fi: np.ndarray, ff: np.ndarray, p: int, x: float, y: float) -> float:
-    """A lower bound of the squared distance from (x, y) to polygon ``p``'s boundary.
+def _polygon_distance2(fi: np.ndarray, ff: np.ndarray, p: int, x: float, y: float,
+                       best: float) -> float:
+    """``best`` or, when smaller, a lower bound of the squared distance from (x, y) to
+    polygon ``p``'s boundary.
 
     The distance to its bounding box when the point lies outside the box; else the
-    distance to the nearest of its edges (every band's edges: an edge listed in several
-    bands is measured again); 0 when the polygon is left to shapely (no bands).
+    distance to the nearest of its edges, found by walking the horizontal bands outwards
+    from the point's band while a band can still hold a nearer edge (every edge is
+    listed in each band its height range meets, so an edge farther than a band's edge
+    is also listed in the bands between); 0 when the polygon is left to shapely (no
+    bands).
     """
     b = 4 * p
     x0 = ff[b]
@@ -297,21 +302,55 @@ def _polygon_distance2(fi: np.ndarray, ff: np.ndarray, p: int, x: float, y: floa
     if not (x0 <= x <= x1 and y0 <= y <= y1):
         ex = x0 - x if x < x0 else (x - x1 if x > x1 else 0.0)
         ey = y0 - y if y < y0 else (y - y1 if y > y1 else 0.0)
-        return ex * ex + ey * ey
+        d2 = ex * ex + ey * ey
+        return d2 if d2 < best else best
     pband = fi[7]
     band0 = fi[pband + p]
-    band1 = fi[pband + p + 1]
-    if band1 == band0:
+    n_bands = fi[pband + p + 1] - band0
+    if n_bands == 0:
         return 0.0
-    bptr = fi[8]
+    h = ff[8 * fi[0] + p]
+    k = math.floor((y - y0) / h)
+    if k > n_bands - 1:
+        k = n_bands - 1
+    if k < 0:
+        k = 0
+    bptr = fi[8] + band0
     bedge = fi[fi[9]:]
     v0 = 10 * fi[0]
-    best = math.inf
-    for e in range(fi[bptr + band0], fi[bptr + band1]):
-        q = v0 + 2 * bedge[e]
-        d2 = _segment_distance2(ff[q], ff[q + 1], ff[q + 2], ff[q + 3], x, y)
-        if d2 < best:
-            best = d2
+    down = True
+    up = True
+    off = 0
+    while down or up:
+        for side in range(2):
+            if side == 0:
+                if not down:
+                    continue
+                band = k - off
+                if band < 0:
+                    down = False
+                    continue
+                gap = y - (y0 + (band + 1) * h) if off > 0 else 0.0
+                if gap > 0.0 and gap * gap >= best:
+                    down = False
+                    continue
+            else:
+                if not up or off == 0:
+                    continue
+                band = k + off
+                if band > n_bands - 1:
+                    up = False
+                    continue
+                gap = (y0 + band * h) - y
+                if gap > 0.0 and gap * gap >= best:
+                    up = False
+                    continue
+            for e in range(fi[bptr + band], fi[bptr + band + 1]):
+                q = v0 + 2 * bedge[e]
+                d2 = _segment_distance2(ff[q], ff[q + 1], ff[q + 2], ff[q + 3], x, y)
+                if d2 < best:
+                    best = d2
+        off += 1
     return best
 
 
@@ -356,24 +395,24 @@ def fence_clearance(x: float, y: float, cell_m: float, fi: np.ndarray,
     every = fi[fi[6]:fi[6] + n_e]
     for j in range(hi - lo + n_e):  # the cell's fences, then those tested everywhere
         i = ids[lo + j] if j < hi - lo else every[j - (hi - lo)]
-        for p in range(2 * i, 2 * i + 2):
-            g2 = _polygon_distance2(fi, ff, p, x, y)
-            if g2 < d2:
-                d2 = g2
+        d2 = _polygon_distance2(fi, ff, 2 * i, x, y, d2)
+        d2 = _polygon_distance2(fi, ff, 2 * i + 1, x, y, d2)
+        if d2 == 0.0:
+            return 0.0
     clear = math.sqrt(d2) - CLEARANCE_SLACK_M
     return clear if clear > 0.0 else 0.0
 
 
 @numba.njit(cache=True, error_model="numpy")
 def fence_probe_clear(x: float, y: float, cell_m: float, fi: np.ndarray, ff: np.ndarray,
-                      out: np.ndarray) -> tuple[int, float]:
-    """:func:`fence_probe` and, when its answer is certain, :func:`fence_clearance`.
+                      out: np.ndarray, clear: bool) -> tuple[int, float]:
+    """:func:`fence_probe` and, when ``clear`` and its answer is certain,
+    :func:`fence_clearance` (else 0).
 
-    One call for both (each call from Python pays numba's dispatch); the clearance is 0
-    when the probe's count is negative (an answer left to shapely).
+    One call for both (each call from Python pays numba's dispatch).
     """
     n = fence_probe(x, y, cell_m, fi, ff, out)
-    if n < 0:
+    if n < 0 or not clear:
         return n, 0.0
     return n, fence_clearance(x, y, cell_m, fi, ff)
 
@@ -387,3 +426,4 @@ def warm_up() -> None:
     fi, ff = build_tables([(box, box)], {(0, 0): [0]}, [])
     out = np.zeros(3, dtype=np.int64)
     assert fence_probe(5.0, 5.0, 250.0, fi, ff, out) == 1 and out[1] == INSIDE
+    assert fence_probe_clear(5.0, 4.0, 250.0, fi, ff, out, True) == (1, 4.0 - CLEARANCE_SLACK_M)

@@ -208,12 +208,14 @@ class FenceSet:
             inner.append(inside == _fk.INSIDE)
         return near, inner
 
-    def probe_clear(self, x: float, y: float) -> tuple[tuple[list[int], list[bool]], float]:
+    def probe_clear(self, x: float, y: float, clear: bool = True,
+                    ) -> tuple[tuple[list[int], list[bool]], float]:
         """:meth:`probe` and the squared metres (x, y) can move without it changing.
 
         The second value is the square of
         :func:`~livematch.core.monitors._fence_kernel.fence_clearance` (0 when unknown:
-        the probe's answer needed shapely, or the point is not finite): a point (x', y')
+        not asked for (``clear`` false, which saves its measuring), the probe's answer
+        needed shapely, or the point is not finite): a point (x', y')
         with ``(x' - x) ** 2 + (y' - y) ** 2`` below it gets the same answer, so a
         vehicle that moves less than that between fixes needs no probe
         (:meth:`~livematch.core.monitors.vehicle.VehicleAlerts.update`). One compiled
@@ -225,12 +227,13 @@ class FenceSet:
         >>> near, inner, round(r2 ** 0.5, 3)
         ([0], [True], 34.999)
         """
-        n, clear = _fk.fence_probe_clear(x, y, GRID_CELL_M, self._fi, self._ff, self._out)
+        n, r = _fk.fence_probe_clear(x, y, GRID_CELL_M, self._fi, self._ff, self._out,
+                                     clear)
         if n == 0:
-            return ([], []), clear * clear
+            return ([], []), r * r
         if n > 0:
             rows = self._out[:3 * n].tolist()
-            return (rows[0::3], list(map(_IS_INSIDE, rows[2::3]))), clear * clear
+            return (rows[0::3], list(map(_IS_INSIDE, rows[2::3]))), r * r
         return self.probe(x, y), 0.0
 
     def near(self, x: float, y: float) -> list[int]:

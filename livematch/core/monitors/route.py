@@ -135,6 +135,15 @@ class RouteChain:
         self.forward_arrays.resize(*_CHAIN_SCRATCH)
         self.backward_arrays.resize(*_CHAIN_SCRATCH)
         self.share_scratch()
+        # both chains' records in one array of each type, the chains' own arrays views
+        # of it (no copy kept): route_advance takes two arrays instead of four
+        fa, ba = self.forward_arrays, self.backward_arrays
+        self.split_f = len(fa.netf)
+        self.split_i = len(fa.neti)
+        self.chainf = np.concatenate((fa.netf, ba.netf))
+        self.chaini = np.concatenate((fa.neti, ba.neti))
+        fa.netf, ba.netf = self.chainf[:self.split_f], self.chainf[self.split_f:]
+        fa.neti, ba.neti = self.chaini[:self.split_i], self.chaini[self.split_i:]
         self.cum_forward: list[float] = _cumulative(self.forward.seg_len)
         self.cum_backward: list[float] = _cumulative(self.backward.seg_len)
         self._len_forward: list[float] = self.forward.seg_len.tolist()
@@ -390,7 +399,7 @@ class RouteMonitor:
     def update(self, fix: Fix) -> list[Alert]:
         """Take one accepted fix; return the alerts it causes (at most two)."""
         eps = self.settings.eps_route_m
-        self.seq += 1
+        seq = self.seq = self.seq + 1
         x = fix.x
         y = fix.y
         last = self.last_xy
@@ -399,26 +408,46 @@ class RouteMonitor:
         self.last_xy = (x, y)
         chain = self.chain
         fa = chain.forward_arrays
-        ba = chain.backward_arrays
         fwd = self.fwd
         rev = self.rev
         k, fresh, most, seg, pos, bk, bfresh, bmost, bseg, bpos = _rk.route_advance(
-            fa.netf, fa.neti, ba.netf, ba.neti, fa.fbuf, fa.ibuf, fwd.w, rev.w,
-            eps, x0, y0, x, y, step_m)
-        seq = self.seq
+            chain.chainf, chain.chaini, chain.split_f, chain.split_i, fa.fbuf, fa.ibuf,
+            fwd.w, rev.w, eps, x0, y0, x, y, step_m)
         t = fix.t
-        if k >= 0:
-            fwd.done(k, fresh, most, seg, pos, seq, t)
-        else:  # an overflow: grow, then one window at a time (the scalars as an array)
-            fwd.grow(fa, k, fresh)
-            fwd.step(fa, _step_scalars(eps, x0, y0, x, y, step_m), seq, t)
-        if bk >= 0:
-            rev.done(bk, bfresh, bmost, bseg, bpos, seq, t)
+        if k >= 0 and bk >= 0 and not fresh and not bfresh:
+            # both windows swept (the usual fix): _Window.done of each, written out
+            fwd.k = k
+            fwd.most = most
+            fwd.best_seg = seg
+            fwd.best_pos = pos
+            fwd.fixes += 1
+            fwd.seq = seq
+            fwd.t = t
+            if len(fwd.w) > _SHRINK_LEN:
+                fwd.settle()
+            rev.k = bk
+            rev.most = bmost
+            rev.best_seg = bseg
+            rev.best_pos = bpos
+            rev.fixes += 1
+            rev.seq = seq
+            rev.t = t
+            if len(rev.w) > _SHRINK_LEN:
+                rev.settle()
         else:
-            rev.grow(ba, bk, bfresh)
-            rev.step(ba, _step_scalars(eps, x0, y0, x, y, step_m), seq, t)
-        if k < 0 or bk < 0:
-            chain.share_scratch()  # one of them grew: both sweep in the larger again
+            if k >= 0:
+                fwd.done(k, fresh, most, seg, pos, seq, t)
+            else:  # an overflow: grow, then one window at a time (the scalars as an array)
+                fwd.grow(fa, k, fresh)
+                fwd.step(fa, _step_scalars(eps, x0, y0, x, y, step_m), seq, t)
+            ba = chain.backward_arrays
+            if bk >= 0:
+                rev.done(bk, bfresh, bmost, bseg, bpos, seq, t)
+            else:
+                rev.grow(ba, bk, bfresh)
+                rev.step(ba, _step_scalars(eps, x0, y0, x, y, step_m), seq, t)
+            if k < 0 or bk < 0:
+                chain.share_scratch()  # one of them grew: both sweep in the larger again
         self.trail_m += step_m  # reset at every on-route fix (the anchor)
         alerts: list[Alert] = []
         if fwd.k > 0:  # fwd.live

@@ -8,6 +8,7 @@ It takes the route and fences as arguments instead of holding the fleet-wide dat
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable, Iterable
 from typing import Any
 
@@ -19,6 +20,12 @@ from livematch.core.monitors.route import RouteChain, RouteMonitor
 from livematch.core.monitors.settings import AlertSettings
 
 STATE_VERSION = 1
+#: A vehicle that moved less than this (squared metres, 8 m) since its last fence probe
+#: gets the probe's clearance measured (``FenceSet.probe_clear``), so that its next fixes
+#: can skip the probe; a faster one would rarely stay within it (the clearances of the
+#: probes of ``bench/ab.py --what pipeline``'s drives: median 3.4 m). A choice of cost
+#: only: the answers are the same either way.
+_SLOW_M2 = 64.0
 
 
 class VehicleAlerts:
@@ -43,7 +50,8 @@ class VehicleAlerts:
 
     #: ``(fence set, x, y, r2, probe)``: the last fence probe, at (x, y), and the squared
     #: metres a point may be from there and get the same answer
-    #: (:meth:`~livematch.core.monitors.fences.FenceSet.probe_clear`); None when unknown.
+    #: (:meth:`~livematch.core.monitors.fences.FenceSet.probe_clear`; 0 when unknown);
+    #: None while no fence is near.
     #: Not part of the checkpoint: a restored vehicle probes afresh, with the same answer.
     fence_memo: tuple[FenceSet, float, float, float, tuple[list[int], list[bool]]] | None
 
@@ -98,15 +106,21 @@ class VehicleAlerts:
                     else (fix.x, fix.y))
             monitor = self.fences
             memo = self.fence_memo
-            if memo is not None and memo[0] is fences and (
-                    (x - memo[1]) * (x - memo[1]) + (y - memo[2]) * (y - memo[2]) < memo[3]):
-                near = memo[4]  # closer to the last probed point than any fence's edge
-            else:
+            moved2 = math.inf
+            hit = False
+            if memo is not None and memo[0] is fences:
+                moved2 = (x - memo[1]) * (x - memo[1]) + (y - memo[2]) * (y - memo[2])
+                if moved2 < memo[3]:
+                    near = memo[4]  # nearer to the last probed point than any fence's edge
+                    hit = True
+            if not hit:
                 if monitor is None and not fences.may_be_near(x, y):
                     self.fence_memo = None
                     return alerts  # no fence can hold the point: no compiled probe
-                near, r2 = fences.probe_clear(x, y)
-                self.fence_memo = (fences, x, y, r2, near) if r2 > 0.0 else None
+                # the clearance is measured only for a vehicle that moved little since
+                # the last probe (one likely to stay within it)
+                near, r2 = fences.probe_clear(x, y, moved2 < _SLOW_M2)
+                self.fence_memo = (fences, x, y, r2, near)
             if monitor is None:
                 if True not in near[1]:
                     # in no fence and in no inner polygon: a fresh monitor would neither
