@@ -322,10 +322,14 @@ class FenceMonitor:
 
     def update(self, fences: FenceSet, fix: Fix, x: float, y: float,
                groups: Iterable[str],
-               probe: tuple[list[int], list[bool]] | None = None) -> list[Alert]:
+               probe: tuple[list[int], list[bool]] | None = None,
+               again: bool = False) -> list[Alert]:
         """Take one fix at position (x, y) (raw or matched, metres); return its alerts.
 
-        ``probe``: ``fences.probe(x, y)`` when the caller has it already.
+        ``probe``: ``fences.probe(x, y)`` when the caller has it already; ``again``: the
+        caller may pass that very object again at the next fix (then this update notes
+        whether it left the fences settled, below; measuring that costs about as much
+        as the update, so it is done only when it may pay).
 
         Settled: when an update leaves the vehicle inside each fence it has state for,
         with no run of fixes under way (every count 0), every such fence near the point,
@@ -404,7 +408,7 @@ class FenceMonitor:
                 if t - st[1] >= dwell:
                     st[2] = True
                     alerts.append(_alert(fence, fix, "fence_dwell", t - st[1]))
-        if probe is not None and not general:
+        if again and probe is not None and not general:
             self.calm = _calm(state, fences, probe)
         return alerts
 
@@ -428,10 +432,12 @@ def _calm(state: dict[str, list[Any]], fences: FenceSet,
 
     Settled (:meth:`FenceMonitor.update`): every fence with state is one the vehicle is
     inside, with a count of 0 and near the point; every near fence whose inner polygon
-    holds the point has such state; no fence filters vehicles (the caller checked). The
+    holds the point has such state; no fence filters vehicles. The
     dwell watch lists the fences inside whose dwell alert is not sent yet, in fence
     order, each with its state and dwell time.
     """
+    if fences.filtered:
+        return None
     near, near_inner = probe
     index = fences.index
     for k, st in state.items():
