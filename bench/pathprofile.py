@@ -42,7 +42,8 @@ ROOT = Path(__file__).resolve().parents[1]
 STAGES = [
     ("decode", r"^PositionReader\.read "),
     ("route monitor", r"^RouteMonitor\.update "),
-    ("fences", r"^(FenceMonitor\.update|FenceSet\.probe|FenceSet\.may_be_near) "),
+    ("fences", r"^(FenceMonitor\.update|FenceSet\.probe|FenceSet\.probe_clear"
+               r"|FenceSet\.may_be_near) "),
     ("records", r"^RecordBuilder\.record "),
     ("route lookup", r"^Pipeline\._route_for "),
     ("tracker", r"^Tracker\.(update|flush) "),
@@ -56,6 +57,7 @@ LEAVES = [
 CALLS = [
     ("route monitor", "livematch/core/monitors/route.py", "_rk.route_advance("),
     ("fences", "livematch/core/monitors/fences.py", "_fk.fence_probe("),
+    ("fences", "livematch/core/monitors/fences.py", "_fk.fence_probe_clear("),
 ]
 
 

@@ -166,3 +166,50 @@ def test_vehicle_alerts_fence_shortcuts_send_dwell_alerts_in_order() -> None:
         ("fence_enter", "a", 1.0), ("fence_enter", "b", 1.0), ("fence_enter", "c", 1.0),
         ("fence_dwell", "a", 10.0), ("fence_dwell", "b", 10.0), ("fence_dwell", "c", 25.0)]
     assert a.fences is not None and a.fences.calm is not None  # settled at the end
+
+
+def test_route_monitor_windows_equal_python_reference() -> None:
+    """Both windows of a ``RouteMonitor`` (one compiled call per fix on the packed chain
+    records, the usual step taken inline) hold, after every fix, the states the pure-
+    Python reference gives, and report its best candidate and followed metres.
+
+    Reference: ``_route_kernel.reference_advance`` (livematch.core.sweep.sweep_step and
+    fresh_start on nodes, pure Python) for the forward and the reversed chain, fed the
+    same fixes. A zig-zag route driven along, back (the forward window dies and the
+    reversed one follows), far away and along again, with GPS-like noise.
+    """
+    from test_monitors import chain
+
+    from livematch.core.monitors import RouteMonitor
+    from livematch.core.monitors import _route_kernel as rk
+    from livematch.core.sweep import StepContext
+
+    pts = [(0.0, 0.0)] + [(20.0 * i, 15.0 * (i % 2)) for i in range(1, 40)]
+    rng = np.random.default_rng(4)
+    trace = [(x + rng.normal(0, 6), y + rng.normal(0, 6)) for x, y in pts[::2]]
+    trace += [*trace[::-1], (5000.0, 5000.0), *trace]
+    ch = chain(pts)
+    assert ch.forward_arrays.netf.base is ch.chainf  # views of the packed records
+    settings = AlertSettings()
+    m = RouteMonitor("r", ch, settings)
+    eps = settings.eps_route_m
+    rows: dict[bool, list[list[float]]] = {False: [], True: []}
+    swept = fresh = 0
+    for seq, (x, y) in enumerate(trace, start=1):
+        x0, y0 = trace[seq - 2] if seq > 1 else (x, y)
+        m.update(fix(float(seq), x, y))
+        for backward in (False, True):
+            net, view = ((ch.backward, ch.backward_view) if backward
+                         else (ch.forward, ch.forward_view))
+            ctx = StepContext(view, eps, x0, y0, x, y, seq, float(seq),
+                              math.hypot(x - x0, y - y0), *rk.WINDOW_WEIGHTS[:3])
+            rows[backward], started = rk.reference_advance(net, view, ctx, rows[backward])
+            window = m.rev if backward else m.fwd
+            assert window.rows() == rows[backward], (seq, backward)
+            j = rk.best_row(rows[backward])
+            assert window.best() == ((int(rows[backward][j][0]), rows[backward][j][2])
+                                     if rows[backward] else None)
+            assert window.followed() == max((r[6] for r in rows[backward]), default=0.0)
+            fresh += started
+            swept += not started
+    assert fresh > 10 and swept > 50
