@@ -322,28 +322,25 @@ class FenceMonitor:
 
     def update(self, fences: FenceSet, fix: Fix, x: float, y: float,
                groups: Iterable[str],
-               probe: tuple[list[int], list[bool]] | None = None,
-               again: bool = False) -> list[Alert]:
+               probe: tuple[list[int], list[bool]] | None = None) -> list[Alert]:
         """Take one fix at position (x, y) (raw or matched, metres); return its alerts.
 
-        ``probe``: ``fences.probe(x, y)`` when the caller has it already; ``again``: the
-        caller may pass that very object again at the next fix (then this update notes
-        whether it left the fences settled, below; measuring that costs about as much
-        as the update, so it is done only when it may pay).
+        ``probe``: ``fences.probe(x, y)`` when the caller has it already.
 
-        Settled: when an update leaves the vehicle inside each fence it has state for,
-        with no run of fixes under way (every count 0), every such fence near the point,
-        and no fence entered (each whose inner polygon holds the point is one it is
-        inside), on a fence set whose fences watch every vehicle, the next update with
-        the very same probe answer (the caller's object: ``VehicleAlerts`` passes it
-        again while the vehicle stays closer to the probed point than any fence's edge)
-        can only send dwell alerts: each fence's step would leave its state as it is.
-        That update checks the dwell times alone, in the full path's order.
+        Settled: when an update with a probe from the caller leaves the vehicle inside
+        each fence it has state for, with no run of fixes under way (every count 0),
+        every such fence near the point, and no fence entered (each whose inner polygon
+        holds the point is one it is inside), on a fence set whose fences watch every
+        vehicle, the next update with an equal probe answer (the same fences near, the
+        same inner polygons holding the point: a vehicle moving inside one fence, most
+        fixes) can only send dwell alerts: each fence's step would leave its state as it
+        is. That update checks the dwell times alone, in the full path's order.
         """
         state = self.state
         calm = self.calm
         if calm is not None:
-            if probe is calm[0] and fences is calm[1]:
+            if fences is calm[1] and probe is not None and (
+                    probe is calm[0] or probe == calm[0]):
                 alerts: list[Alert] = []
                 t = fix.t
                 for i, st, dwell in calm[2]:  # inside, dwell not sent yet, in fence order
@@ -408,7 +405,7 @@ class FenceMonitor:
                 if t - st[1] >= dwell:
                     st[2] = True
                     alerts.append(_alert(fence, fix, "fence_dwell", t - st[1]))
-        if again and probe is not None and not general:
+        if probe is not None and not general:
             self.calm = _calm(state, fences, probe)
         return alerts
 

@@ -119,17 +119,19 @@ class VehicleAlerts:
                     return alerts  # no fence can hold the point: no compiled probe
                 # the clearance is measured only for a vehicle that moved little since
                 # the last probe (one likely to stay within it)
-                near, r2 = fences.probe_clear(x, y, moved2 < _SLOW_M2)
-                memo = self.fence_memo = (fences, x, y, r2, near)
+                if moved2 < _SLOW_M2:
+                    near, r2 = fences.probe_clear(x, y)
+                else:
+                    near = fences.probe(x, y)
+                    r2 = 0.0
+                self.fence_memo = (fences, x, y, r2, near)
             if monitor is None:
                 if True not in near[1]:
                     # in no fence and in no inner polygon: a fresh monitor would neither
                     # alert nor keep anything (FenceMonitor.update)
                     return alerts
                 monitor = FenceMonitor()
-            # again: the next fix may reuse this probe (it has a clearance)
-            alerts.extend(monitor.update(fences, fix, x, y, groups, near,
-                                         memo[3] > 0.0))  # type: ignore[index]
+            alerts.extend(monitor.update(fences, fix, x, y, groups, near))
             # a monitor with no state is a fresh one: none is kept until it has some
             self.fences = monitor if monitor.state else None
         return alerts
