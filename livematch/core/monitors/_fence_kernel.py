@@ -284,15 +284,14 @@ def _segment_distance2(ax: float, ay: float, bx: float, by: float, x: float,
 @numba.njit(cache=True, error_model="numpy", inline="always")
 def _polygon_distance2(fi: np.ndarray, ff: np.ndarray, p: int, x: float, y: float,
                        best: float) -> float:
-    """``best`` or, when smaller, a lower bound of the squared distance from (x, y) to
-    polygon ``p``'s boundary.
+    """The smaller of ``best`` and a bound below the squared distance to polygon ``p``.
 
-    The distance to its bounding box when the point lies outside the box; else the
-    distance to the nearest of its edges, found by walking the horizontal bands outwards
-    from the point's band while a band can still hold a nearer edge (every edge is
-    listed in each band its height range meets, so an edge farther than a band's edge
-    is also listed in the bands between); 0 when the polygon is left to shapely (no
-    bands).
+    The bound is of the distance from (x, y) to the polygon's boundary: the distance to
+    its bounding box when the point lies outside the box; else the distance to the
+    nearest of its edges, found by walking the horizontal bands outwards from the
+    point's band while a band can still hold a nearer edge (every edge is listed in
+    each band its height range meets, so an edge farther than a band's edge is also
+    listed in the bands between); 0 when the polygon is left to shapely (no bands).
     """
     b = 4 * p
     x0 = ff[b]
@@ -406,8 +405,9 @@ def fence_clearance(x: float, y: float, cell_m: float, fi: np.ndarray,
 @numba.njit(cache=True, error_model="numpy")
 def fence_probe_clear(x: float, y: float, cell_m: float, fi: np.ndarray, ff: np.ndarray,
                       out: np.ndarray, clear: bool) -> tuple[int, float]:
-    """:func:`fence_probe` and, when ``clear`` and its answer is certain,
-    :func:`fence_clearance` (else 0).
+    """:func:`fence_probe`, and :func:`fence_clearance` when ``clear`` (else 0).
+
+    The clearance is 0 too when the probe's answer is not certain (a negative count).
 
     One call for both (each call from Python pays numba's dispatch).
     """

@@ -343,10 +343,11 @@ class FenceMonitor:
                     probe is calm[0] or probe == calm[0]):
                 alerts: list[Alert] = []
                 t = fix.t
-                for i, st, dwell in calm[2]:  # inside, dwell not sent yet, in fence order
-                    if t - st[1] >= dwell:
-                        st[2] = True
-                        alerts.append(_alert(fences.fences[i], fix, "fence_dwell", t - st[1]))
+                for j, held, dwell in calm[2]:  # inside, dwell not sent yet, in fence order
+                    if t - held[1] >= dwell:
+                        held[2] = True
+                        alerts.append(_alert(fences.fences[j], fix, "fence_dwell",
+                                             t - held[1]))
                 if alerts:
                     self.calm = None  # the dwell watch changed: the full path next time
                 return alerts
@@ -445,14 +446,14 @@ def _calm(state: dict[str, list[Any]], fences: FenceSet,
     default = fences.settings.fence_dwell_s
     watch: list[tuple[int, list[Any], float]] = []
     for i, inner in zip(near, near_inner, strict=True):
-        st = state.get(ids[i])
-        if st is None:
+        held = state.get(ids[i])
+        if held is None:
             if inner:
                 return None  # an entry would start
             continue
-        if not st[2]:
+        if not held[2]:
             dwell = listed[i].dwell_s
-            watch.append((i, st, dwell if dwell is not None else default))
+            watch.append((i, held, dwell if dwell is not None else default))
     return probe, fences, watch
 
 
