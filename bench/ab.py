@@ -114,12 +114,13 @@ def main(argv: list[str] | None = None) -> int:
             for k in range(args.drives):
                 pairs.append(workers.ask_both(f"{k} {every}", (rep + k) % 2 == 0))
         fixes = sum(a[1] for a, _ in pairs)
-        ratio = statistics.median(b[0] / a[0] for a, b in pairs if a[0] > 0)
+        q1, ratio, q3 = statistics.quantiles([b[0] / a[0] for a, b in pairs if a[0] > 0], n=4)
         us_base = 1e6 * sum(a[0] for a, _ in pairs) / fixes
         us_new = 1e6 * sum(b[0] for _, b in pairs) / fixes
         print(f"{args.extract} {args.what} every {every} s: base {us_base:.1f} µs/fix, "
               f"new {us_new:.1f} µs/fix (pooled); "
-              f"median per-drive ratio new/base {ratio:.3f} ({len(pairs)} pairs)")
+              f"median per-drive ratio new/base {ratio:.3f} (quartiles {q1:.3f}-{q3:.3f}, "
+              f"{len(pairs)} pairs)")
     workers.close()
     print(f"# load average at the end {os.getloadavg()[0]:.2f}")
     return 0
