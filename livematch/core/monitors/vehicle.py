@@ -23,8 +23,8 @@ STATE_VERSION = 1
 #: A vehicle that moved less than this (squared metres, 8 m) since its last fence probe
 #: gets the probe's clearance measured (``FenceSet.probe_clear``), so that its next fixes
 #: can skip the probe; a faster one would rarely stay within it (the clearances of the
-#: probes of ``bench/ab.py --what pipeline``'s drives: median 3.4 m). A choice of cost
-#: only: the answers are the same either way.
+#: probes of ``bench/ab.py --what pipeline``'s drives: median 3.4 m, a throwaway
+#: count). A choice of cost only: the answers are the same either way.
 _SLOW_M2 = 64.0
 
 
