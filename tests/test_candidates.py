@@ -337,8 +337,8 @@ def test_compact_in_place_equals_compact_into_new_arrays() -> None:
             assert int(ti[_t.H_T0]) == int(seqs.min())
             assert tf2[tb2:tb2 + times].tobytes() == tf[tb:tb + times].tobytes()
             for r in range(n):
-                assert _t.time_of(ti, tf, r) == tracker.times.get(int(seqs[r]),
-                                                                  _t.time_of(ti, tf, r))
+                kept_t = tracker.fix_time(int(seqs[r]))
+                assert kept_t is None or _t.time_of(ti, tf, r) == kept_t
             # into new numpy arrays of exactly that size (CandidateTree.shrink, packed)
             ti3 = np.empty(_t.HEAD + _t.ROW_I * n + nv, np.int32)
             tf3 = np.empty(_t.ROW_F * n + times)
