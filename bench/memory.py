@@ -822,7 +822,9 @@ def fleet_steps(args: argparse.Namespace) -> list[dict[str, Any]]:
     """Step 5: as the fixes come, then with a trim every ``--fleet-trim-every`` s."""
     fleet = []
     if args.fleet_vehicles > 0:
-        for every in (0, args.fleet_trim_every):
+        # --fleet-trim-every 0: only as the fixes come (each run also reads the RSS after
+        # one trim at the end, which session 12 found equal to trimming every 60 s)
+        for every in (0, args.fleet_trim_every) if args.fleet_trim_every else (0,):
             row = child(["fleet", str(args.fleet_vehicles), str(args.fleet_seconds),
                          str(args.drives), str(args.duration), str(every)])
             print(json.dumps(row), flush=True)
