@@ -602,8 +602,7 @@ def fleet_breakdown(vehicles: int, seconds: int, drives_count: int, duration: fl
     traced1 = tracemalloc.get_traced_memory()[0]
     snapshot = tracemalloc.take_snapshot()
     own1 = tracemalloc.get_tracemalloc_memory()
-    tracemalloc.stop()  # its tables are freed: the trim below sees the fleet only
-    rss2 = trimmed_rss_kb()
+    tracemalloc.stop()
     held = len(pipe.vehicles())
     root = str(ROOT / "livematch")
     sites: dict[tuple[str, int, bool], list[int]] = {}
@@ -616,6 +615,9 @@ def fleet_breakdown(vehicles: int, seconds: int, drives_count: int, duration: fl
         row = sites.setdefault((*where, trace.domain == NUMPY_DOMAIN), [0, 0])
         row[0] += 1
         row[1] += trace.size
+    del snapshot, trace
+    gc.collect()
+    rss2 = trimmed_rss_kb()  # tracemalloc's tables and the snapshot freed: the fleet only
     top = sorted(sites.items(), key=lambda kv: -kv[1][1])
     lines = [{"file": f, "line": n, "numpy_data": d, "blocks": c, "bytes": b,
               "source": linecache.getline(str(ROOT / f), n).strip() if n else ""}
