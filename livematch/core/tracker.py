@@ -263,7 +263,7 @@ class Tracker:
 
     # slots: a service holds one tracker per vehicle, and an instance dict costs more
     # than a small candidate tree
-    __slots__ = ("_held", "_view", "_weights", "before", "buffer", "fix_n", "fix_seq0", "fix_xy",
+    __slots__ = ("_held", "_view", "before", "buffer", "fix_n", "fix_seq0", "fix_xy",
                  "jumps", "last", "last_commit", "last_released_t", "last_seg", "levels",
                  "network", "next_commit", "rev_t", "said", "seq", "settings", "skipped",
                  "speed", "stand_from", "stand_seq", "step_dir", "stood_t", "times", "times0",
@@ -281,9 +281,6 @@ class Tracker:
             raise ValueError(f"matcher.{key} {what}")
         self._view: NetworkView = view_of(network)
         self.levels = [Level(e) for e in self.settings.eps_levels]
-        s = self.settings
-        # the sweep kernel's step scalars after eps, x0, y0, x1, y1, chord (StepContext)
-        self._weights = _weights_of(s)
         self.seq = 0
         self.last: tuple[float, float, float] | None = None  # t, x, y of the last accepted fix
         self.last_released_t: float | None = None
@@ -583,13 +580,18 @@ class Tracker:
         step[3] = fix.x
         step[4] = fix.y
         step[5] = chord
-        w = self._weights
-        step[6] = w[0]
-        step[7] = w[1]
-        step[8] = w[2]
-        step[9] = w[3]
-        if s.motion_step and dt > 0.0:
-            step[9] = w[3] * motion_gain(dt, s.error_tau_s)
+        if arrays.step_for is not s:
+            # the weights (_weights_of), written when another tracker's settings wrote
+            # them last: none kept per tracker (a tuple and its floats, 144 bytes)
+            w = _weights_of(s)
+            step[6] = w[0]
+            step[7] = w[1]
+            step[8] = w[2]
+            step[9] = w[3]
+            arrays.step_for = s
+        if s.motion_step:  # step[9] moves with dt: written at every fix
+            inv_motion = 1.0 / s.motion_m  # (_weights_of's)
+            step[9] = inv_motion * motion_gain(dt, s.error_tau_s) if dt > 0.0 else inv_motion
         first = self.next_commit
         t = fix.t
         # CandidateTree.step, its compiled call made here (a Python call fewer per
@@ -770,7 +772,8 @@ class Tracker:
         if s.error_tau_s <= 0.0 or len(tree) < 2:
             return None
         return tree.live_scores(self._view, self.fix_xy[:self.fix_n], self.fix_seq0,
-                                self.next_commit - 1, self._weights[0], s.error_tau_s, s.gap_s)
+                                self.next_commit - 1, 1.0 / (2.0 * s.sigma_m * s.sigma_m),
+                                s.error_tau_s, s.gap_s)
 
     def _live_answer(self, level: Level, dt: float) -> tuple[int, int]:
         """The deciding level's best live row and the junction its near-best set split at.
@@ -796,8 +799,9 @@ class Tracker:
         # (CandidateTree.live_answer's compiled call, made here: a Python call fewer)
         best, split = tree_live_answer(
             sweep_arrays(self._view).seg_geo, tree.ti, tree.tf, self.last_seg, self.fix_xy,
-            self.fix_n, self.fix_seq0, self.next_commit - 1, self._weights[0],
-            1.0 / s.error_tau_s if scored else 0.0, s.gap_s, margin)
+            self.fix_n, self.fix_seq0, self.next_commit - 1,
+            1.0 / (2.0 * s.sigma_m * s.sigma_m), 1.0 / s.error_tau_s if scored else 0.0,
+            s.gap_s, margin)
         if (s.live_keep > 0.0 and 0.0 < dt <= SPARSE_S and self.last_seg >= 0
                 and tree.seg_of(best) != self.last_seg
                 and tree.seg_of(best) != self.network.seg_twin.item(self.last_seg)
@@ -2279,8 +2283,9 @@ def _same(a: tuple[float, ...], b: tuple[float, ...]) -> bool:
 def _weights_of(s: MatchSettings) -> tuple[float, float, float, float]:
     """The sweep kernel's step scalars after eps, x0, y0, x1, y1, chord (StepContext).
 
-    One tuple per tracker (about 140 bytes). A module-level memo would share one per
-    settings, but the core keeps no state outside its objects.
+    Written into the network's step scratch when another tracker's settings wrote it
+    last (``SweepArrays.step_for``): a tuple per tracker was about 140 bytes, and a
+    module-level memo would be state outside the core's objects.
     """
     return (1.0 / (2.0 * s.sigma_m * s.sigma_m), 1.0 / s.beta_m, s.turn_back_cost,
             1.0 / s.motion_m)

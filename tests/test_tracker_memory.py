@@ -1,8 +1,11 @@
-"""The tracker's fix times: one array of doubles for a run of fixes (memory, issue 9).
+"""What a tracker keeps per vehicle, made smaller in session 13 (memory, issue 9).
 
-Until session 13 the times were a dict of sequence number -> float object (about 0.7 KB
-a live vehicle more, ``bench/memory.py`` step 6). The checks here hold the array against
-the input itself, the fixes' own times, and against the state format, which is unchanged.
+The fix times are one array of doubles for a run of fixes: until session 13 a dict of
+sequence number -> float object (about 0.8 KB a live vehicle more, ``bench/memory.py``
+step 6). The checks here hold the array against the input itself, the fixes' own times,
+and against the state format, which is unchanged. The sweep's weights are no longer a
+tuple per tracker: they are written into the network's step scratch when another
+tracker's settings wrote it last.
 """
 
 from __future__ import annotations
@@ -11,9 +14,10 @@ import json
 
 import pytest
 
+from livematch.core.settings import MatchSettings
 from livematch.core.tracker import Tracker
 from livematch.errors import BadStateError
-from tests.test_tracker import noisy_drive
+from tests.test_tracker import noisy_drive, run
 
 
 def test_fix_times_are_the_accepted_fixes_times() -> None:
@@ -73,3 +77,21 @@ def test_fix_times_not_a_run_is_a_bad_state() -> None:
         bad = blob[:5] + len(header).to_bytes(4, "little") + header + blob[9 + size:]
         with pytest.raises(BadStateError, match="fix times"):
             Tracker.from_bytes(net, None, bad)
+
+
+def test_trackers_with_other_settings_interleaved_match_as_alone() -> None:
+    """Trackers of different settings on one network, updated in turn, give each the
+    events it gives alone (the step scratch's weights follow whose step it is)."""
+    net, fixes = noisy_drive(seed=14)
+    kinds = [MatchSettings(), MatchSettings(sigma_m=9.0, beta_m=4.0),
+             MatchSettings(motion_step=True)]
+    alone = [run(Tracker(net, "v", s), fixes) for s in kinds]
+    trackers = [Tracker(net, "v", s) for s in kinds]
+    together: list[list[object]] = [[] for _ in kinds]
+    for fix in fixes:
+        for events, tracker in zip(together, trackers, strict=True):
+            events.extend(tracker.update(fix))
+    for events, tracker in zip(together, trackers, strict=True):
+        events.extend(tracker.flush())
+    assert together == alone
+    assert alone[0] != alone[1]  # the settings do act on this drive
