@@ -856,7 +856,14 @@ def partial_run(args: argparse.Namespace, steps: set[int], started: str,
              f"Command: `.venv/bin/python {result['command']}`, started {started} UTC, "
              f"livematch at commit {commit}.",
              *fleet_lines(result["fleet"]), *breakdown_lines(result["breakdown"])]
+    b = result["breakdown"]
     for row in result["fleet"]:
+        if b and b["vehicles"] == row["vehicles"] and b["seconds"] == row["seconds"]:
+            live = b["traced_bytes"] / b["vehicles"] / 1024
+            lines += ["", f"Allocator's share (step 5's RSS growth minus step 6's live heap, "
+                      f"per vehicle): {row['kb_per_vehicle'] - live:.2f} KB as the fixes "
+                      f"come, {row['kb_per_vehicle_trimmed'] - live:.2f} KB after "
+                      "`malloc_trim(0)`."]
         how = f"trim every {row['trim_every']} s" if row["trim_every"] else "no trim"
         lines += ["", f"Extrapolated to 100,000 ({how}): {fleet_estimate(row):.0f} MB for "
                   "the whole process."]
@@ -881,14 +888,14 @@ def breakdown_lines(b: dict[str, Any] | None) -> list[str]:
         f"## Where a driven vehicle's bytes go ({v:,} vehicles x {b['seconds']} s of 1 Hz "
         "fixes through one pipeline, as step 5, under tracemalloc)",
         "",
-        "Per vehicle (KB): RSS growth minus tracemalloc's own tables "
-        f"{grow / v / 1024:.2f}; Python heap still allocated at the end (tracemalloc, numpy "
-        f"array data included) {traced / v / 1024:.2f}; arrays allocated by compiled code "
-        f"(not traced) {b['untraced_array_bytes'] / v / 1024:.2f}; RSS after "
-        f"`malloc_trim(0)` (tracemalloc stopped) "
-        f"{(b['rss_trimmed_kb'] - b['rss_before_kb']) / v:.2f}. Allocator overhead and "
-        "fragmentation (RSS growth minus live bytes): "
-        f"{(grow - traced - b['untraced_array_bytes']) / v / 1024:.2f}.",
+        f"Python heap still allocated at the end, per vehicle (tracemalloc; numpy array "
+        f"data included; what every pipeline shares, such as the record builder's bounded "
+        f"caches, divided among the vehicles too): {traced / v / 1024:.2f} KB; arrays "
+        f"allocated by compiled code (not traced): "
+        f"{b['untraced_array_bytes'] / v / 1024:.2f} KB. (This run's RSS is not a figure: "
+        f"tracemalloc's own tables, {b['tracemalloc_own_kb'] / 1024:.1f} MB, are allocated "
+        f"among the fleet's blocks; RSS growth minus them {grow / v / 1024:.2f} KB per "
+        f"vehicle. Step 5's RSS minus this live heap is the allocator's share.)",
         "",
         "Live heap by the newest livematch source line of each allocation (per vehicle):",
         "",
