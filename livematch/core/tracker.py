@@ -290,7 +290,7 @@ class Tracker:
         # rarely not empty (the empty tuple is shared; an empty list is 56 bytes each)
         self.buffer: tuple[Fix, ...] = ()
         # the times of a contiguous run of accepted fixes up to the newest: fix times0 + i
-        # at times[i] (unboxed doubles: a dict of float objects cost about 0.7 KB more a
+        # at times[i] (unboxed doubles: a dict of float objects cost about 0.8 KB more a
         # live vehicle, bench/memory.py step 6); read with fix_time, or inline
         self.times: array[float] = array("d")
         self.times0 = 1
@@ -1233,7 +1233,7 @@ class Tracker:
         # the ones before the oldest still needed downwards, not by a scan of them all
         times = self.times
         drop = self.next_commit - 1 - self.times0  # the times before fix next_commit - 1
-        if drop > 0 and drop <= len(times):  # (fix next_commit - 1 on stay)
+        if drop > 0 and drop <= len(times):  # (the fixes from next_commit - 1 on stay)
             del times[:drop]
             self.times0 += drop
         self._trim(seq, t)
