@@ -3,7 +3,8 @@
 Run: ``.venv/bin/python bench/memory.py [--counts 1000,10000,100000] [--drives 40]
 [--duration 600] [--states 30] [--copies 400] [--pipeline-vehicles 1000]
 [--pipeline-seconds 120] [--fleet-vehicles 10000] [--fleet-seconds 120]
-[--fleet-trim-every 60] [--out DIR]``
+[--fleet-trim-every 60] [--breakdown-vehicles 2000] [--breakdown-frames 1]
+[--steps 1,2,3,4,5,6] [--out DIR]``
 
 Goal (issue 9): <= 4 KB for a typical live vehicle, 100,000 vehicles in <= 1 GB resident.
 
@@ -51,6 +52,15 @@ representation is. Steps, each measuring process a fresh subprocess:
    timed. Whole-process RSS before and after; the figure for 100,000 driven vehicles is
    the RSS before plus 100,000 x the growth per vehicle (measured, not extrapolated,
    with ``--fleet-vehicles 100000``: about 30 minutes of CPU per run at idle).
+   ``--fleet-trim-every 0``: the untrimmed run only.
+6. **Where a driven vehicle's bytes go** (one subprocess, :func:`fleet_breakdown`):
+   step 5's load on ``--breakdown-vehicles`` vehicles under ``tracemalloc``: the live
+   Python heap at the end by source line, each vehicle's state by part (tracker fields,
+   the pipeline's per-vehicle fields) and each level's tree (room, rows in use, rows
+   still needed). Step 5's RSS minus this live heap is the allocator's share.
+
+``--steps 5``, ``--steps 6`` or ``--steps 5,6`` run only those (no pool, no report of
+steps 1-4): ``memory.partial.md`` / ``memory.partial.json`` in ``--out``.
 
 The estimate for 100,000 restored vehicles behind a pipeline: the step-3 growth at
 100,000 plus 100,000 x the step-4 overhead, plus the base RSS of step 3. Results:
