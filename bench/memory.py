@@ -3,7 +3,8 @@
 Run: ``.venv/bin/python bench/memory.py [--counts 1000,10000,100000] [--drives 40]
 [--duration 600] [--states 30] [--copies 400] [--pipeline-vehicles 1000]
 [--pipeline-seconds 120] [--fleet-vehicles 10000] [--fleet-seconds 120]
-[--fleet-trim-every 60] [--out DIR]``
+[--fleet-trim-every 60] [--breakdown-vehicles 2000] [--breakdown-frames 1]
+[--steps 1,2,3,4,5,6] [--out DIR]``
 
 Goal (issue 9): <= 4 KB for a typical live vehicle, 100,000 vehicles in <= 1 GB resident.
 
@@ -51,6 +52,15 @@ representation is. Steps, each measuring process a fresh subprocess:
    timed. Whole-process RSS before and after; the figure for 100,000 driven vehicles is
    the RSS before plus 100,000 x the growth per vehicle (measured, not extrapolated,
    with ``--fleet-vehicles 100000``: about 30 minutes of CPU per run at idle).
+   ``--fleet-trim-every 0``: the untrimmed run only.
+6. **Where a driven vehicle's bytes go** (one subprocess, :func:`fleet_breakdown`):
+   step 5's load on ``--breakdown-vehicles`` vehicles under ``tracemalloc``: the live
+   Python heap at the end by source line, each vehicle's state by part (tracker fields,
+   the pipeline's per-vehicle fields) and each level's tree (room, rows in use, rows
+   still needed). Step 5's RSS minus this live heap is the allocator's share.
+
+``--steps 5``, ``--steps 6`` or ``--steps 5,6`` run only those (no pool, no report of
+steps 1-4): ``memory.partial.md`` / ``memory.partial.json`` in ``--out``.
 
 The estimate for 100,000 restored vehicles behind a pipeline: the step-3 growth at
 100,000 plus 100,000 x the step-4 overhead, plus the base RSS of step 3. Results:
@@ -416,6 +426,45 @@ def pipeline_run(how: str, vehicles: int, seconds: int, drives_count: int,
 
 
 # ------------------------------------------------------------------------ 5. fleet
+def fleet_positions(network: Any, runs: list[Any]) -> list[tuple[list[float], list[float]]]:
+    """Per drive: the WGS84 positions of its fixes (the fleet's messages are made from them)."""
+    lonlat = []
+    for fixes in runs:
+        lon, lat = network.projection.to_lonlat([f.x for f in fixes], [f.y for f in fixes])
+        lonlat.append((lon.tolist(), lat.tolist()))
+    return lonlat
+
+
+def drive_fleet(pipe: Any, runs: list[Any], lonlat: list[tuple[list[float], list[float]]],
+                vehicles: int, seconds: int, trim: Any = None, trim_every: int = 0,
+                trims: list[float] | None = None) -> int:
+    """Second k: every vehicle's fix k through ``pipe.handle``; returns the outputs.
+
+    Vehicle i drives pool drive ``i % len(runs)`` from second ``7 * (i // len(runs))``
+    (as step 4); with ``trim_every`` > 0, ``trim()`` every that many seconds of fixes,
+    each call's duration appended to ``trims``.
+    """
+    count = len(runs)
+    starts = [(7 * (i // count)) % max(1, len(runs[i % count]) - seconds)
+              for i in range(vehicles)]
+    outputs = 0
+    for k in range(seconds):
+        for i in range(vehicles):
+            d = i % count
+            j = starts[i] + k
+            f = runs[d][j]
+            t = 1.7e9 + k + i / vehicles
+            payload = json.dumps({"vehicle": f"v{i}", "time": t, "lat": lonlat[d][1][j],
+                                  "lon": lonlat[d][0][j], "accuracy": f.accuracy}).encode()
+            outputs += len(pipe.handle(f"fleet/v{i}/position", payload, t + 0.2))
+        if trim is not None and trim_every > 0 and (k + 1) % trim_every == 0:
+            t0 = time.perf_counter()
+            trim()
+            if trims is not None:
+                trims.append(time.perf_counter() - t0)
+    return outputs
+
+
 def fleet_run(vehicles: int, seconds: int, drives_count: int, duration: float,
               trim_every: int) -> dict[str, Any]:
     """``vehicles`` vehicles driven ``seconds`` s of 1 Hz fixes through one Pipeline.
@@ -437,33 +486,15 @@ def fleet_run(vehicles: int, seconds: int, drives_count: int, duration: float,
     settings = MatchSettings()
     warm(network, settings)
     pipeline_kb = warm_pipeline(network, settings)
-    # per drive: the WGS84 positions of its fixes (the messages are made from them)
-    lonlat = []
-    for fixes in runs:
-        lon, lat = network.projection.to_lonlat([f.x for f in fixes], [f.y for f in fixes])
-        lonlat.append((lon.tolist(), lat.tolist()))
-    starts = [(7 * (i // drives_count)) % max(1, len(runs[i % drives_count]) - seconds)
-              for i in range(vehicles)]
+    lonlat = fleet_positions(network, runs)
     trimmer = Trimmer()
     gc.collect()
     rss0 = rss_kb()
     pipe = Pipeline(network, settings)
     trims: list[float] = []
-    outputs = 0
     started = time.perf_counter()
-    for k in range(seconds):
-        for i in range(vehicles):
-            d = i % drives_count
-            j = starts[i] + k
-            f = runs[d][j]
-            t = 1.7e9 + k + i / vehicles
-            payload = json.dumps({"vehicle": f"v{i}", "time": t, "lat": lonlat[d][1][j],
-                                  "lon": lonlat[d][0][j], "accuracy": f.accuracy}).encode()
-            outputs += len(pipe.handle(f"fleet/v{i}/position", payload, t + 0.2))
-        if trim_every > 0 and (k + 1) % trim_every == 0:
-            t0 = time.perf_counter()
-            trimmer.trim()
-            trims.append(time.perf_counter() - t0)
+    outputs = drive_fleet(pipe, runs, lonlat, vehicles, seconds, trimmer.trim,
+                          trim_every, trims)
     elapsed = time.perf_counter() - started - sum(trims)
     held = len(pipe.vehicles())
     gc.collect()
@@ -482,6 +513,178 @@ def fleet_run(vehicles: int, seconds: int, drives_count: int, duration: float,
             "kb_per_vehicle": round((rss1 - rss0) / held, 3),
             "kb_per_vehicle_trimmed": round((rss2 - rss0) / held, 3),
             "us_per_fix": round(elapsed / (vehicles * seconds) * 1e6, 1)}
+
+
+# ------------------------------------------------------------- 6. fleet breakdown
+NUMPY_DOMAIN = 389047  # tracemalloc domain of numpy's array data (numpy.lib.tracemalloc_domain)
+
+
+def owned_bytes(root: object, skip: set[int], counted: set[int]) -> tuple[int, int]:
+    """(objects, bytes) reachable from ``root`` through ``gc.get_referents`` and not in
+    ``skip`` (what a fresh tracker and pipeline reach) nor ``counted`` (already charged
+    to another part; updated). ``sys.getsizeof`` each; an array whose buffer numba
+    allocated is charged its data too (``getsizeof`` counts a numpy-owned buffer)."""
+    import types
+
+    objects = size = 0
+    stack = [root]
+    code = (types.ModuleType, type, types.FunctionType, types.BuiltinFunctionType)
+    while stack:
+        obj = stack.pop()
+        key = id(obj)
+        if key in skip or key in counted or isinstance(obj, code):
+            continue
+        counted.add(key)
+        objects += 1
+        size += sys.getsizeof(obj)
+        if type(obj).__name__ == "ndarray":
+            base = obj.base
+            if base is not None and type(base).__name__ != "ndarray":
+                size += obj.nbytes
+            if base is not None:
+                stack.append(base)
+        stack.extend(gc.get_referents(obj))
+    return objects, size
+
+
+def tree_room(tree: Any) -> dict[str, int]:
+    """One candidate tree's rows, vias and fix times: room, in use, still needed.
+
+    Needed: what a compaction now would keep (the live block and its ancestors;
+    ``kept_rows``), i.e. what a save and restore holds.
+    """
+    from livematch.core import _tree_kernel as tk
+
+    ti = tree.ti
+    if ti.item(tk.H_N) == 0:
+        return {"bytes": 0, "arrays": 0, "cap_rows": 0, "rows": 0, "need_rows": 0,
+                "cap_vias": 0, "vias": 0, "need_vias": 0, "cap_t": 0, "t": 0, "need_t": 0,
+                "live": 0}
+    need_rows, need_vias, need_t = tk.kept_rows(ti)
+    n = ti.item(tk.H_N)
+    t_used = ti.item(tk.ROW_I * (n - 1) + tk.K_SEQ) - ti.item(tk.H_T0) + 1
+    return {"bytes": ti.nbytes + tree.tf.nbytes, "arrays": 2, "cap_rows": tree.cap_rows,
+            "rows": n, "need_rows": need_rows, "cap_vias": tree.cap_vias, "vias": tree.nv,
+            "need_vias": need_vias, "cap_t": tree.cap_times, "t": t_used, "need_t": need_t,
+            "live": len(tree)}
+
+
+def fleet_breakdown(vehicles: int, seconds: int, drives_count: int, duration: float,
+                    frames: int) -> dict[str, Any]:
+    """Where a driven vehicle's bytes go: step 5's fleet under ``tracemalloc``.
+
+    The same load as step 5 (``vehicles`` x ``seconds`` s of 1 Hz fixes through one
+    ``Pipeline.handle``, no trim), traced with ``frames`` frames per allocation from
+    before the pipeline is made. Reported: RSS growth; the Python heap still allocated
+    at the end (tracemalloc), numpy array data apart, grouped by the newest livematch
+    source line on each allocation's traceback; what tracemalloc cannot see (arrays
+    allocated by compiled code, counted by introspection); RSS after ``malloc_trim(0)``;
+    the rest of the RSS growth is allocator overhead and fragmentation (chunk headers,
+    pymalloc pools partly used, holes glibc cannot give back). Then each vehicle's
+    state by part (the tracker's fields, the pipeline's per-vehicle fields: objects
+    reachable from each, charged to the first part that reaches them) and each level's
+    tree: room, rows in use, rows still needed. tracemalloc's own memory is subtracted
+    from the RSS figures.
+    """
+    import linecache
+    import tracemalloc
+
+    from livematch.core.settings import MatchSettings
+    from livematch.core.tracker import Tracker
+    from livematch.pipeline import Pipeline
+
+    network, runs = drives(drives_count, duration)
+    settings = MatchSettings()
+    warm(network, settings)
+    warm_pipeline(network, settings)
+    lonlat = fleet_positions(network, runs)
+    gc.collect()
+    tracemalloc.start(frames)
+    rss0 = rss_kb()
+    traced0 = tracemalloc.get_traced_memory()[0]
+    own0 = tracemalloc.get_tracemalloc_memory()
+    pipe = Pipeline(network, settings)
+    started = time.perf_counter()
+    outputs = drive_fleet(pipe, runs, lonlat, vehicles, seconds)
+    elapsed = time.perf_counter() - started
+    gc.collect()
+    rss1 = rss_kb()
+    traced1 = tracemalloc.get_traced_memory()[0]
+    snapshot = tracemalloc.take_snapshot()
+    own1 = tracemalloc.get_tracemalloc_memory()
+    tracemalloc.stop()
+    held = len(pipe.vehicles())
+    root = str(ROOT / "livematch")
+    sites: dict[tuple[str, int, bool], list[int]] = {}
+    for trace in snapshot.traces:
+        where = ("(outside livematch)", 0)
+        for frame in reversed(trace.traceback):  # the newest frame first
+            if frame.filename.startswith(root):
+                where = (frame.filename[len(str(ROOT)) + 1:], frame.lineno)
+                break
+        row = sites.setdefault((*where, trace.domain == NUMPY_DOMAIN), [0, 0])
+        row[0] += 1
+        row[1] += trace.size
+    del snapshot, trace
+    gc.collect()
+    rss2 = trimmed_rss_kb()  # tracemalloc's tables and the snapshot freed: the fleet only
+    top = sorted(sites.items(), key=lambda kv: -kv[1][1])
+    lines = [{"file": f, "line": n, "numpy_data": d, "blocks": c, "bytes": b,
+              "source": linecache.getline(str(ROOT / f), n).strip() if n else ""}
+             for (f, n, d), (c, b) in top[:30]]
+    # each vehicle's state by part
+    states = pipe._vehicles
+    fresh_tracker = Tracker(network, "fresh", settings)
+    skip = set(reachable(fresh_tracker))
+    skip |= set(reachable(Pipeline(network, settings), (Tracker,)))
+    parts: dict[str, list[int]] = {}
+    trees: dict[str, dict[str, int]] = {}
+    untraced = 0
+    for state in states.values():
+        counted: set[int] = set()
+        tracker = state.tracker
+        for name in ("levels", *sorted(set(type(tracker).__slots__) - {"levels"})):
+            if name in ("network", "settings", "_view"):
+                continue
+            value = getattr(tracker, name, None)
+            if name == "levels":
+                for level in value:
+                    room = tree_room(level.tree)
+                    row = trees.setdefault(f"{level.eps:g}", {})
+                    for key, v in room.items():
+                        row[key] = row.get(key, 0) + v
+                    ti, tf = level.tree.ti, level.tree.tf
+                    for arr in (ti, tf):
+                        if arr.base is not None and type(arr.base).__name__ != "ndarray":
+                            untraced += arr.nbytes
+            c, b = owned_bytes(value, skip, counted)
+            part = parts.setdefault(f"tracker.{name}", [0, 0])
+            part[0] += c
+            part[1] += b
+        c, b = owned_bytes(tracker, skip, counted)  # the object itself
+        part = parts.setdefault("tracker (object)", [0, 0])
+        part[0] += c
+        part[1] += b
+        for name in sorted(set(type(state).__slots__) - {"tracker"}):
+            c, b = owned_bytes(getattr(state, name), skip, counted)
+            part = parts.setdefault(f"pipeline.{name}", [0, 0])
+            part[0] += c
+            part[1] += b
+        c, b = owned_bytes(state, skip, counted)
+        part = parts.setdefault("pipeline (state object)", [0, 0])
+        part[0] += c
+        part[1] += b
+    key_bytes = sum(sys.getsizeof(k) for k in states)
+    parts["pipeline (vehicle id keys, dict slots)"] = [
+        len(states), key_bytes + sys.getsizeof(states)]
+    return {"vehicles": held, "seconds": seconds, "fixes": vehicles * seconds,
+            "outputs": outputs, "frames": frames,
+            "rss_before_kb": rss0, "rss_after_kb": rss1, "rss_trimmed_kb": rss2,
+            "tracemalloc_own_kb": round((own1 - own0) / 1024, 1),
+            "traced_bytes": traced1 - traced0, "untraced_array_bytes": untraced,
+            "sites": lines, "parts": {k: v for k, v in sorted(parts.items(),
+                                                               key=lambda kv: -kv[1][1])},
+            "trees": trees, "us_per_fix": round(elapsed / (vehicles * seconds) * 1e6, 1)}
 
 
 # ---------------------------------------------------------------------------- driver
@@ -593,6 +796,7 @@ def report(r: dict[str, Any]) -> str:
             f"{p['points_memory_bytes'] / 1024:.0f} KB at the end of the run."]),
         *driven_breakdown(t, p),
         *fleet_lines(r.get("fleet") or []),
+        *breakdown_lines(r.get("breakdown")),
         "",
         "## 100,000 vehicles",
         "",
@@ -624,6 +828,117 @@ def fleet_estimate(row: dict[str, Any]) -> float:
     message (map, modules, kernels, a warmed pipeline) plus 100,000 x the growth per
     vehicle (an extrapolation unless the run had 100,000 vehicles)."""
     return float(row["rss_before_kb"] / 1024 + row["kb_per_vehicle"] * 100_000 / 1024)
+
+
+def fleet_steps(args: argparse.Namespace) -> list[dict[str, Any]]:
+    """Step 5: as the fixes come, then with a trim every ``--fleet-trim-every`` s."""
+    fleet = []
+    if args.fleet_vehicles > 0:
+        # --fleet-trim-every 0: only as the fixes come (each run also reads the RSS after
+        # one trim at the end, which session 12 found equal to trimming every 60 s)
+        for every in (0, args.fleet_trim_every) if args.fleet_trim_every else (0,):
+            row = child(["fleet", str(args.fleet_vehicles), str(args.fleet_seconds),
+                         str(args.drives), str(args.duration), str(every)])
+            print(json.dumps(row), flush=True)
+            fleet.append(row)
+    return fleet
+
+
+def breakdown_step(args: argparse.Namespace) -> dict[str, Any] | None:
+    """Step 6: step 5's load on ``--breakdown-vehicles`` vehicles under tracemalloc."""
+    if args.breakdown_vehicles <= 0:
+        return None
+    row = child(["breakdown", str(args.breakdown_vehicles), str(args.fleet_seconds),
+                 str(args.drives), str(args.duration), str(args.breakdown_frames)])
+    print(json.dumps({k: v for k, v in row.items() if k not in ("sites", "parts", "trees")}),
+          flush=True)
+    return row
+
+
+def partial_run(args: argparse.Namespace, steps: set[int], started: str,
+                commit: str) -> int:
+    """Only steps 5 and/or 6 (``--steps 5,6``): no pool; ``memory.partial.md`` / ``.json``."""
+    result = {"command": " ".join(["bench/memory.py", *sys.argv[1:]]),
+              "started_utc": started, "commit": commit,
+              "fleet": fleet_steps(args) if 5 in steps else [],
+              "breakdown": breakdown_step(args) if 6 in steps else None}
+    lines = [f"# Resident memory per driven vehicle (steps {args.steps})", "",
+             f"Command: `.venv/bin/python {result['command']}`, started {started} UTC, "
+             f"livematch at commit {commit}.",
+             *fleet_lines(result["fleet"]), *breakdown_lines(result["breakdown"])]
+    b = result["breakdown"]
+    for row in result["fleet"]:
+        if b and b["vehicles"] == row["vehicles"] and b["seconds"] == row["seconds"]:
+            live = b["traced_bytes"] / b["vehicles"] / 1024
+            lines += ["", f"Allocator's share (step 5's RSS growth minus step 6's live heap, "
+                      f"per vehicle): {row['kb_per_vehicle'] - live:.2f} KB as the fixes "
+                      f"come, {row['kb_per_vehicle_trimmed'] - live:.2f} KB after "
+                      "`malloc_trim(0)`."]
+        how = f"trim every {row['trim_every']} s" if row["trim_every"] else "no trim"
+        lines += ["", f"Extrapolated to 100,000 ({how}): {fleet_estimate(row):.0f} MB for "
+                  "the whole process."]
+    text = "\n".join(lines) + "\n"
+    print(text)
+    out = Path(args.out)
+    out.mkdir(parents=True, exist_ok=True)
+    (out / "memory.partial.md").write_text(text, encoding="utf-8")
+    (out / "memory.partial.json").write_text(json.dumps(result, indent=1), encoding="utf-8")
+    return 0
+
+
+def breakdown_lines(b: dict[str, Any] | None) -> list[str]:
+    """Report lines of step 6 (absent in older runs)."""
+    if not b:
+        return []
+    v = b["vehicles"]
+    grow = (b["rss_after_kb"] - b["rss_before_kb"]) * 1024 - b["tracemalloc_own_kb"] * 1024
+    traced = b["traced_bytes"]
+    lines = [
+        "",
+        f"## Where a driven vehicle's bytes go ({v:,} vehicles x {b['seconds']} s of 1 Hz "
+        "fixes through one pipeline, as step 5, under tracemalloc)",
+        "",
+        f"Python heap still allocated at the end, per vehicle (tracemalloc; numpy array "
+        f"data included; what every pipeline shares, such as the record builder's bounded "
+        f"caches, divided among the vehicles too): {traced / v / 1024:.2f} KB; arrays "
+        f"allocated by compiled code (not traced): "
+        f"{b['untraced_array_bytes'] / v / 1024:.2f} KB. (This run's RSS is not a figure: "
+        f"tracemalloc's own tables, {b['tracemalloc_own_kb'] / 1024:.1f} MB, are allocated "
+        f"among the fleet's blocks; RSS growth minus them {grow / v / 1024:.2f} KB per "
+        f"vehicle. Step 5's RSS minus this live heap is the allocator's share.)",
+        "",
+        "Live heap by the newest livematch source line of each allocation (per vehicle):",
+        "",
+        "| bytes | blocks | numpy data | where | line |",
+        "|---:|---:|---|---|---|",
+        *(f"| {s['bytes'] / v:.0f} | {s['blocks'] / v:.2f} | "
+          f"{'yes' if s['numpy_data'] else ''} | {s['file']}:{s['line']} | "
+          f"`{s['source'][:60]}` |" for s in b["sites"][:18]),
+        "",
+        "Each vehicle's state by part (objects reachable from each field, charged to the "
+        "first part that reaches them; `sys.getsizeof`, arrays with their data; per "
+        "vehicle):",
+        "",
+        "| part | objects | bytes |",
+        "|---|---:|---:|",
+        *(f"| {name} | {c / v:.2f} | {size / v:.0f} |"
+          for name, (c, size) in b["parts"].items() if size),
+        "",
+        "Candidate trees by level (means per vehicle; rows of 40 bytes, vias of 4, fix "
+        "times of 8; needed: what a compaction now keeps, the live block and its "
+        "ancestors):",
+        "",
+        "| eps m | bytes | rows room / in use / needed | live | vias room / in use / "
+        "needed | fix times room / in use / needed |",
+        "|---:|---:|---|---:|---|---|",
+    ]
+    for eps, t in b["trees"].items():
+        lines.append(
+            f"| {eps} | {t['bytes'] / v:.0f} | {t['cap_rows'] / v:.1f} / {t['rows'] / v:.1f} / "
+            f"{t['need_rows'] / v:.1f} | {t['live'] / v:.1f} | {t['cap_vias'] / v:.1f} / "
+            f"{t['vias'] / v:.1f} / {t['need_vias'] / v:.1f} | {t['cap_t'] / v:.1f} / "
+            f"{t['t'] / v:.1f} / {t['need_t'] / v:.1f} |")
+    return lines
 
 
 def fleet_lines(fleet: list[dict[str, Any]]) -> list[str]:
@@ -697,6 +1012,12 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--fleet-seconds", type=int, default=120)
     ap.add_argument("--fleet-trim-every", type=int, default=60,
                     help="seconds of fixes between malloc_trim calls in step 5's second run")
+    ap.add_argument("--breakdown-vehicles", type=int, default=2000,
+                    help="vehicles of step 6 (step 5's load under tracemalloc; 0: skip)")
+    ap.add_argument("--breakdown-frames", type=int, default=1,
+                    help="traceback frames per allocation in step 6")
+    ap.add_argument("--steps", default="1,2,3,4,5,6",
+                    help="steps to run (the pool, step 1, is built when 2 or 3 is asked)")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     args = ap.parse_args(argv)
     if args.role:
@@ -708,6 +1029,9 @@ def main(argv: list[str] | None = None) -> int:
         elif what == "fleet":
             out = fleet_run(int(rest[0]), int(rest[1]), int(rest[2]), float(rest[3]),
                             int(rest[4]))
+        elif what == "breakdown":
+            out = fleet_breakdown(int(rest[0]), int(rest[1]), int(rest[2]), float(rest[3]),
+                                  int(rest[4]))
         elif what == "count":
             out = n_vehicles(rest[0], int(rest[1]))
         else:
@@ -721,6 +1045,9 @@ def main(argv: list[str] | None = None) -> int:
     commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=ROOT,
                             capture_output=True, text=True, check=False).stdout.strip()
     mem_total = int(Path("/proc/meminfo").read_text().split()[1])
+    steps = {int(v) for v in args.steps.split(",") if v.strip()}
+    if not steps >= {1, 2, 3, 4}:
+        return partial_run(args, steps, started, commit)
     with tempfile.TemporaryDirectory(prefix="lm-memory-") as tmp:
         pool_path = Path(tmp) / "pool.pickle"
         pool = build_pool(args.drives, args.duration)
@@ -741,13 +1068,8 @@ def main(argv: list[str] | None = None) -> int:
                                str(args.pipeline_seconds), str(args.drives),
                                str(args.duration)])
             print(json.dumps(runs[how]), flush=True)
-        fleet = []
-        if args.fleet_vehicles > 0:
-            for every in (0, args.fleet_trim_every):
-                row = child(["fleet", str(args.fleet_vehicles), str(args.fleet_seconds),
-                             str(args.drives), str(args.duration), str(every)])
-                print(json.dumps(row), flush=True)
-                fleet.append(row)
+        fleet = fleet_steps(args) if 5 in steps else []
+        breakdown = breakdown_step(args) if 6 in steps else None
     overhead = runs["pipeline"]["kb_per_vehicle"] - runs["trackers"]["kb_per_vehicle"]
     result: dict[str, Any] = {
         "command": " ".join(["bench/memory.py", *(sys.argv[1:] if argv is None else argv)]),
@@ -766,6 +1088,7 @@ def main(argv: list[str] | None = None) -> int:
         "counts": counts,
         "pipeline": {**runs, "overhead_kb": round(overhead, 3)},
         "fleet": fleet,
+        "breakdown": breakdown,
     }
     big = next((c for c in counts if c["n"] == 100_000), None)
     if big:

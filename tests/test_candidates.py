@@ -35,7 +35,7 @@ from livematch.core.sweep import (
     live_score,
     sweep_step,
 )
-from livematch.core.tracker import SPARSE_S, Tracker
+from livematch.core.tracker import SPARSE_S, Tracker, _weights_of
 from livematch.core.view import NetworkView, view_of
 from livematch.mapdata.netfile import open_network
 from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
@@ -337,8 +337,8 @@ def test_compact_in_place_equals_compact_into_new_arrays() -> None:
             assert int(ti[_t.H_T0]) == int(seqs.min())
             assert tf2[tb2:tb2 + times].tobytes() == tf[tb:tb + times].tobytes()
             for r in range(n):
-                assert _t.time_of(ti, tf, r) == tracker.times.get(int(seqs[r]),
-                                                                  _t.time_of(ti, tf, r))
+                kept_t = tracker.fix_time(int(seqs[r]))
+                assert kept_t is None or _t.time_of(ti, tf, r) == kept_t
             # into new numpy arrays of exactly that size (CandidateTree.shrink, packed)
             ti3 = np.empty(_t.HEAD + _t.ROW_I * n + nv, np.int32)
             tf3 = np.empty(_t.ROW_F * n + times)
@@ -379,7 +379,7 @@ def test_tree_step_answers_commit_point_and_compacts_like_compact(name: str,
         seq = tracker.seq + 1
         # the next fix's step from this one, as Tracker._advance_levels writes it
         step = np.array((0.0, fix.x, fix.y, nxt.x, nxt.y,
-                         math.hypot(nxt.x - fix.x, nxt.y - fix.y), *tracker._weights))
+                         math.hypot(nxt.x - fix.x, nxt.y - fix.y), *_weights_of(tracker.settings)))
         for level in tracker.levels:
             if len(level.tree) == 0:
                 continue
@@ -428,7 +428,8 @@ def test_tree_step_with_tiny_kernel_buffers_gives_the_same_rows_and_commit_point
             tracker.update(fix)
             seq = tracker.seq + 1
             step = np.array((0.0, fix.x, fix.y, nxt.x, nxt.y,
-                             math.hypot(nxt.x - fix.x, nxt.y - fix.y), *tracker._weights))
+                             math.hypot(nxt.x - fix.x, nxt.y - fix.y),
+                             *_weights_of(tracker.settings)))
             for level in tracker.levels:
                 if len(level.tree) < 2:
                     continue

@@ -9,7 +9,8 @@ CORE = Path(__file__).resolve().parent.parent / "livematch" / "core"
 ALLOWED_THIRD_PARTY = {"numpy", "shapely", "networkx", "pyproj", "numba"}
 ALLOWED_STDLIB = {"__future__", "bisect", "collections", "dataclasses", "functools", "heapq",
                   "itertools", "json", "math", "operator", "typing", "zlib", "enum", "re",
-                  "struct"}  # struct: bytes <-> numbers, no I/O (the tracker's kept answer)
+                  "struct",  # struct: bytes <-> numbers, no I/O (the tracker's kept answer)
+                  "array"}  # array: unboxed numbers, no I/O (the tracker's fix times)
 FORBIDDEN_CALLS = {"open", "print", "input"}
 
 

@@ -135,8 +135,10 @@ def _reference_stand_start(tracker: Tracker, seq: int) -> tuple[int, int]:
     while first > lo and math.hypot(float(xy[first - 1 - seq0, 0]) - x,
                                     float(xy[first - 1 - seq0, 1]) - y) <= radius:
         first -= 1
-    t_first = tracker.times.get(first)
-    span = tracker.times[seq] - t_first if t_first is not None else -1.0
+    t_first = tracker.fix_time(first)
+    t_seq = tracker.fix_time(seq)
+    assert t_seq is not None
+    span = t_seq - t_first if t_first is not None else -1.0
     if tracker.stand_seq and span >= 3.0:
         return max(tracker.stand_seq, lo), first
     return (first, first) if span >= 3.0 else (0, 0)

@@ -120,11 +120,13 @@ class SweepArrays:
         fbuf, ibuf: scratch and output buffers, grown by :meth:`grow`.
         chain: scratch for the rows of a commit's chain (``CandidateTree.chain``).
         step: scratch for a tree step's scalars (``N_CTX`` of them; ``Tracker``).
+        step_for: the settings whose weights ``step[6:9]`` hold (None: none yet), so a
+            tracker writes them only when another's settings wrote them last.
         out_f0, out_i0: where the output rows start (the vias follow the int rows).
     """
 
     __slots__ = ("cap_b", "cap_h", "cap_m", "cap_o", "chain", "fbuf", "ibuf", "n_e", "n_v",
-                 "netf", "neti", "out_f0", "out_i0", "seg_geo", "step")
+                 "netf", "neti", "out_f0", "out_i0", "seg_geo", "step", "step_for")
 
     def __init__(self, view: NetworkView) -> None:
         net = view.network
@@ -143,6 +145,7 @@ class SweepArrays:
         # the rows of a commit's chain (CandidateTree.chain), grown when too short
         self.chain: npt.NDArray[np.int64] = np.empty(256, dtype=np.int64)
         self.step: npt.NDArray[np.float64] = np.zeros(_k.N_CTX)
+        self.step_for: object = None
         self.fbuf: npt.NDArray[np.float64] = np.empty(0)
         self.ibuf: npt.NDArray[np.int64] = np.empty(0, dtype=np.int64)
         self.cap_h = self.cap_b = self.cap_m = self.cap_o = 0

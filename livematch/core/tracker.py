@@ -77,6 +77,7 @@ import json
 import math
 import struct
 import zlib
+from array import array
 from collections.abc import Callable, Iterator
 
 import numpy as np
@@ -262,10 +263,11 @@ class Tracker:
 
     # slots: a service holds one tracker per vehicle, and an instance dict costs more
     # than a small candidate tree
-    __slots__ = ("_held", "_view", "_weights", "before", "buffer", "fix_n", "fix_seq0", "fix_xy",
+    __slots__ = ("_held", "_view", "before", "buffer", "fix_n", "fix_seq0", "fix_xy",
                  "jumps", "last", "last_commit", "last_released_t", "last_seg", "levels",
                  "network", "next_commit", "rev_t", "said", "seq", "settings", "skipped",
-                 "speed", "stand_from", "stand_seq", "step_dir", "stood_t", "times", "vehicle")
+                 "speed", "stand_from", "stand_seq", "step_dir", "stood_t", "times", "times0",
+                 "vehicle")
 
     def __init__(
         self, network: RoadNetwork, vehicle: str, settings: MatchSettings | None = None
@@ -279,9 +281,6 @@ class Tracker:
             raise ValueError(f"matcher.{key} {what}")
         self._view: NetworkView = view_of(network)
         self.levels = [Level(e) for e in self.settings.eps_levels]
-        s = self.settings
-        # the sweep kernel's step scalars after eps, x0, y0, x1, y1, chord (StepContext)
-        self._weights = _weights_of(s)
         self.seq = 0
         self.last: tuple[float, float, float] | None = None  # t, x, y of the last accepted fix
         self.last_released_t: float | None = None
@@ -290,7 +289,11 @@ class Tracker:
         # held-back fixes, and times of filtered fixes awaiting a final answer: tuples,
         # rarely not empty (the empty tuple is shared; an empty list is 56 bytes each)
         self.buffer: tuple[Fix, ...] = ()
-        self.times: dict[int, float] = {}
+        # the times of a contiguous run of accepted fixes up to the newest: fix times0 + i
+        # at times[i] (unboxed doubles: a dict of float objects cost about 0.8 KB more a
+        # live vehicle, bench/memory.py step 6); read with fix_time, or inline
+        self.times: array[float] = array("d")
+        self.times0 = 1
         self.next_commit = 1
         self.last_commit: tuple[int, float, int, float] | None = None  # seg, pos, seq, t
         self.skipped: tuple[float, ...] = ()
@@ -320,6 +323,16 @@ class Tracker:
         # what _held_point found (held point and first fix -> (fix asked at, all within
         # eps)); a cache, not serialised, dropped when the vehicle does not stand
         self._held: dict[tuple[int, float, float, float], tuple[int, bool]] | None = None
+
+    def fix_time(self, seq: int) -> float | None:
+        """The time of accepted fix ``seq`` while it is kept (``times``), else None.
+
+        Kept: a contiguous run of fixes from one before the oldest not yet committed up
+        to the newest.
+        """
+        i = seq - self.times0
+        times = self.times
+        return times[i] if 0 <= i < len(times) else None
 
     @property
     def last_time(self) -> float | None:
@@ -447,7 +460,10 @@ class Tracker:
                                                      for lv in self.levels)
         self.seq += 1
         seq = self.seq
-        self.times[seq] = fix.t
+        times = self.times
+        if not times:
+            self.times0 = seq
+        times.append(fix.t)  # fix seq: the run of times is contiguous up to seq - 1
         self._log_fix(fix.x, fix.y)
         self.last = (fix.t, fix.x, fix.y)
         came_speed = self.speed  # of the step into prev (reverse_turns reads it)
@@ -564,13 +580,18 @@ class Tracker:
         step[3] = fix.x
         step[4] = fix.y
         step[5] = chord
-        w = self._weights
-        step[6] = w[0]
-        step[7] = w[1]
-        step[8] = w[2]
-        step[9] = w[3]
-        if s.motion_step and dt > 0.0:
-            step[9] = w[3] * motion_gain(dt, s.error_tau_s)
+        if arrays.step_for is not s:
+            # the weights (_weights_of), written when another tracker's settings wrote
+            # them last: none kept per tracker (a tuple and its floats, 144 bytes)
+            w = _weights_of(s)
+            step[6] = w[0]
+            step[7] = w[1]
+            step[8] = w[2]
+            step[9] = w[3]
+            arrays.step_for = s
+        if s.motion_step:  # step[9] moves with dt: written at every fix
+            inv_motion = 1.0 / s.motion_m  # (_weights_of's)
+            step[9] = inv_motion * motion_gain(dt, s.error_tau_s) if dt > 0.0 else inv_motion
         first = self.next_commit
         t = fix.t
         # CandidateTree.step, its compiled call made here (a Python call fewer per
@@ -669,11 +690,12 @@ class Tracker:
             rise = _best_cost(through[first].tree) - _best_cost(before.levels[first].tree)
             if rise <= charge:
                 return None  # the straight way cannot cost spike_cost less than this
-        kept = (self.speed, self.times[suspect])
+        times = self.times
+        kept = (self.speed, times[suspect - self.times0])
         self.levels = [_copy_level(lv) for lv in before.levels]
         self.seq = suspect
-        del self.times[seq]
-        self.times[suspect] = fix.t
+        del times[-1]  # fix seq's: this fix takes the suspect's number
+        times[suspect - self.times0] = fix.t
         t0, x0, y0 = before.last
         self.speed = math.hypot(fix.x - x0, fix.y - y0) / (fix.t - t0)
         stood = before.speed is not None and before.speed < STOOD_MPS
@@ -696,8 +718,8 @@ class Tracker:
         if not drop:
             self.levels = through
             self.seq = seq
-            self.speed, self.times[suspect] = kept
-            self.times[seq] = fix.t
+            self.speed, times[suspect - self.times0] = kept
+            times.append(fix.t)
             return None
         t_suspect = kept[1]
         # this fix takes the suspect's sequence number, so its position takes the
@@ -750,7 +772,8 @@ class Tracker:
         if s.error_tau_s <= 0.0 or len(tree) < 2:
             return None
         return tree.live_scores(self._view, self.fix_xy[:self.fix_n], self.fix_seq0,
-                                self.next_commit - 1, self._weights[0], s.error_tau_s, s.gap_s)
+                                self.next_commit - 1, 1.0 / (2.0 * s.sigma_m * s.sigma_m),
+                                s.error_tau_s, s.gap_s)
 
     def _live_answer(self, level: Level, dt: float) -> tuple[int, int]:
         """The deciding level's best live row and the junction its near-best set split at.
@@ -776,8 +799,9 @@ class Tracker:
         # (CandidateTree.live_answer's compiled call, made here: a Python call fewer)
         best, split = tree_live_answer(
             sweep_arrays(self._view).seg_geo, tree.ti, tree.tf, self.last_seg, self.fix_xy,
-            self.fix_n, self.fix_seq0, self.next_commit - 1, self._weights[0],
-            1.0 / s.error_tau_s if scored else 0.0, s.gap_s, margin)
+            self.fix_n, self.fix_seq0, self.next_commit - 1,
+            1.0 / (2.0 * s.sigma_m * s.sigma_m), 1.0 / s.error_tau_s if scored else 0.0,
+            s.gap_s, margin)
         if (s.live_keep > 0.0 and 0.0 < dt <= SPARSE_S and self.last_seg >= 0
                 and tree.seg_of(best) != self.last_seg
                 and tree.seg_of(best) != self.network.seg_twin.item(self.last_seg)
@@ -859,26 +883,26 @@ class Tracker:
         """
         seq = self.seq
         times = self.times
+        i = seq - self.times0  # fix seq's time at times[i] (if 0 <= i < len(times))
         row = seq - self.fix_seq0
-        if seq not in times or not 0 <= row < self.fix_n:
+        if not 0 <= i < len(times) or not 0 <= row < self.fix_n:
             return False
         xy = self.fix_xy
         x = xy.item(row, 0)
         y = xy.item(row, 1)
         radius = STAND_SIGMAS * self.settings.sigma_m
         r2 = radius * radius
-        since = times[seq] - window_s
-        back = seq
+        since = times[i] - window_s
         while True:
-            back -= 1
+            i -= 1
             row -= 1
-            if row < 0 or back not in times:
+            if row < 0 or i < 0:
                 return False
             dx = xy.item(row, 0) - x
             dy = xy.item(row, 1) - y
             if dx * dx + dy * dy > r2:
                 return False
-            if times[back] <= since:
+            if times[i] <= since:
                 return True
 
     def _came_in_by(self, tree: CandidateTree, row: int) -> int:
@@ -979,7 +1003,8 @@ class Tracker:
         if dx * dx + dy * dy > r2:
             return 0, 0  # the run is the newest fix alone (a moving vehicle, usually)
         times = self.times
-        if lo not in times:
+        t0 = self.times0  # fix k's time at times[k - t0]
+        if not t0 <= lo < t0 + len(times):
             # the spike test moved the commit point back below the oldest time kept
             # (_spike_test): the whole run, whose start may have no time (no stand then)
             first = self._run_start(seq, seq - 1)
@@ -987,18 +1012,18 @@ class Tracker:
             # every fix from lo to seq has a time (times are kept for a contiguous run
             # of sequence numbers up to the newest): stop as soon as the run spans both
             # bounds, which then hold for the whole run too
-            enough = times[seq] - max(STAND_HOLD_S, STAND_KEEP_S)
+            enough = times[seq - t0] - max(STAND_HOLD_S, STAND_KEEP_S)
             # back from the newest fix while within the radius (a moving vehicle leaves
             # it within a few fixes: scalar steps, no array built per fix)
             first = seq - 1
-            while first > lo and times[first] > enough:
+            while first > lo and times[first - t0] > enough:
                 dx = xy.item(first - 1 - seq0, 0) - x
                 dy = xy.item(first - 1 - seq0, 1) - y
                 if dx * dx + dy * dy > r2:
                     break
                 first -= 1
-        t_first = times.get(first)
-        span = times[seq] - t_first if t_first is not None else -1.0
+        t_first = self.fix_time(first)
+        span = times[seq - t0] - t_first if t_first is not None else -1.0
         if self.stand_seq and span >= STAND_KEEP_S:
             return max(self.stand_seq, lo), first
         if span >= STAND_HOLD_S:
@@ -1182,7 +1207,10 @@ class Tracker:
                     break
         if self.next_commit <= seq:
             too_many = seq - self.next_commit + 1 > s.max_lag_fixes
-            too_old = t - self.times[self.next_commit] > s.max_lag_s
+            i = self.next_commit - self.times0
+            if i < 0:  # never: the fixes not committed keep their times (no wrap-around)
+                raise KeyError(self.next_commit)
+            too_old = t - self.times[i] > s.max_lag_s
             if too_many and not too_old and s.stand_wait and (
                     self._standing(seq, t) or self._into_stand(t)):
                 too_many = False  # a stand: only the time bound forces (see _standing)
@@ -1204,10 +1232,10 @@ class Tracker:
         # the times kept are those of a contiguous run of fixes up to the newest: drop
         # the ones before the oldest still needed downwards, not by a scan of them all
         times = self.times
-        stale = self.next_commit - 2
-        while stale in times:
-            del times[stale]
-            stale -= 1
+        drop = self.next_commit - 1 - self.times0  # the times before fix next_commit - 1
+        if drop > 0 and drop <= len(times):  # (the fixes from next_commit - 1 on stay)
+            del times[:drop]
+            self.times0 += drop
         self._trim(seq, t)
 
     def _into_stand(self, t: float, dt: float = 0.0, stood: bool = False) -> bool:
@@ -1440,17 +1468,19 @@ class Tracker:
         """
         radius = STAND_SIGMAS * self.settings.sigma_m
         times = self.times
+        t0 = self.times0  # fix k's time at times[k - t0] while 0 <= k - t0 < n_t
+        n_t = len(times)
         xy = self.fix_xy
         seq0 = self.fix_seq0
         end = seq
         while end - seq0 < self.fix_n and end - seq0 > 0:
-            te = times.get(end)
+            te = times[end - t0] if 0 <= end - t0 < n_t else None
             if te is None or t - te > STAND_AFTER_S:
                 return False
             x, y = xy[end - seq0]
             k = end - 1
             while k >= seq0:
-                tk = times.get(k)
+                tk = times[k - t0] if 0 <= k - t0 < n_t else None
                 if tk is None or math.hypot(xy[k - seq0, 0] - x, xy[k - seq0, 1] - y) > radius:
                     break
                 if te - tk >= STAND_S:
@@ -1518,7 +1548,8 @@ class Tracker:
         target = seq - s.max_lag_fixes // 2
         half = t - s.max_lag_s / 2.0
         for k in range(self.next_commit, seq + 1):
-            if self.times.get(k, t) > half:
+            i = k - self.times0
+            if (self.times[i] if 0 <= i < len(self.times) else t) > half:
                 target = min(target, k - 1)
                 break
         return max(target, self.next_commit)
@@ -2038,6 +2069,7 @@ class Tracker:
             b = self.before
             before = [b.last, b.speed, b.last_seg, _pack_levels(b.levels, arrays)]
         times = self.times
+        t0 = self.times0
         state = {
             "vehicle": self.vehicle,
             "n_segments": self.network.n_segments,
@@ -2046,7 +2078,8 @@ class Tracker:
             "last_released_t": self.last_released_t,
             "jumps": self.jumps,
             "speed": self.speed,
-            "times": [list(times), list(times.values())],  # LMT3: [[seq, t], ...]
+            # (LMT3: [[seq, t], ...]); the same JSON as when they were a dict
+            "times": [list(range(t0, t0 + len(times))), times.tolist()],
             "next_commit": self.next_commit,
             "last_commit": self.last_commit,
             "last_seg": self.last_seg,
@@ -2155,10 +2188,14 @@ class Tracker:
         # LMT4 leaves out an empty buffer and skipped list
         tracker.buffer = tuple(Fix(*row) for row in state.get("buffer", ()))
         times = state["times"]
-        if fmt in (STATE_FORMAT, STATE_FORMAT_V4):
-            tracker.times = dict(zip(times[0], times[1], strict=True))
-        else:
-            tracker.times = {k: v for k, v in times}
+        seqs, ts = times if fmt in (STATE_FORMAT, STATE_FORMAT_V4) else (
+            [k for k, _ in times], [v for _, v in times])
+        if len(seqs) != len(ts) or seqs != list(range(seqs[0] if seqs else 1,
+                                                      (seqs[0] if seqs else 1) + len(seqs))):
+            # every writer kept a contiguous run in order (the tracker's only shape)
+            raise BadStateError("corrupt tracker state: fix times not a run of fixes")
+        tracker.times = array("d", ts)
+        tracker.times0 = seqs[0] if seqs else 1
         tracker.next_commit = state["next_commit"]
         tracker.skipped = tuple(state.get("skipped", ()))
         tracker.last_seg = state["last_seg"]
@@ -2211,7 +2248,7 @@ def _share_numbers(tracker: Tracker) -> None:
     t.next_commit = it(t.next_commit)
     t.fix_seq0 = it(t.fix_seq0)
     t.last_seg = it(t.last_seg)
-    t.times = {it(k): fl(v) for k, v in t.times.items()}
+    t.times0 = it(t.times0)  # (the times themselves are unboxed)
     if t.last is not None:
         t.last = (fl(t.last[0]), t.last[1], t.last[2])
     if t.last_released_t is not None:
@@ -2246,8 +2283,9 @@ def _same(a: tuple[float, ...], b: tuple[float, ...]) -> bool:
 def _weights_of(s: MatchSettings) -> tuple[float, float, float, float]:
     """The sweep kernel's step scalars after eps, x0, y0, x1, y1, chord (StepContext).
 
-    One tuple per tracker (about 140 bytes). A module-level memo would share one per
-    settings, but the core keeps no state outside its objects.
+    Written into the network's step scratch when another tracker's settings wrote it
+    last (``SweepArrays.step_for``): a tuple per tracker was about 140 bytes, and a
+    module-level memo would be state outside the core's objects.
     """
     return (1.0 / (2.0 * s.sigma_m * s.sigma_m), 1.0 / s.beta_m, s.turn_back_cost,
             1.0 / s.motion_m)
