@@ -66,7 +66,7 @@ def test_a_reversal_at_an_outlier_opens_no_turn(monkeypatch: pytest.MonkeyPatch)
     van, and the path turned round at x = -100 where the van never went."""
     into, out = (math.dist(SEEN[i], SEEN[i + 1]) / 15.0 for i in (OUTLIER - 1, OUTLIER))
     assert (into + out) / 2.0 > REVERSE_TURN_MPS  # 6 and 18 m/s
-    net, off = _run(MatchSettings())
+    net, off = _run(MatchSettings(lone_reverse_turns=False))
     assert any(isinstance(e, Filtered) and e.reason == "spike" and e.t == 15.0 * OUTLIER
                for e in off)
     assert _final_error(net, off) < 1.0
