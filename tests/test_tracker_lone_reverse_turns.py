@@ -78,7 +78,7 @@ def test_lone_reverse_turns_turns_at_the_first_dwell_only() -> None:
     fixes = [f for c in done for f in c.fixes]
     assert _reach(net, fixes[2].segment) == pytest.approx(FIRST_X)
     assert _turns_at(net, _path(done))[-1] == SECOND_X
-    net, done, _ = _run(XS, MatchSettings())
+    net, done, _ = _run(XS, MatchSettings(lone_reverse_turns=False))
     fixes = [f for c in done for f in c.fixes]
     assert _reach(net, fixes[2].segment) < FIRST_X
     assert FIRST_X not in _turns_at(net, _path(done))
@@ -87,7 +87,7 @@ def test_lone_reverse_turns_turns_at_the_first_dwell_only() -> None:
 def test_lone_reverse_turns_leaves_dense_fixes_alone() -> None:
     """At or below gap_s between fixes (5 s here) nothing changes: a rule for gap steps."""
     assert (_run(XS, MatchSettings(lone_reverse_turns=True), dt=5.0)[2]
-            == _run(XS, MatchSettings(), dt=5.0)[2])
+            == _run(XS, MatchSettings(lone_reverse_turns=False), dt=5.0)[2])
 
 
 @pytest.mark.parametrize("restore_at", [1, 2, 3, 4, 5, 6])

@@ -67,7 +67,7 @@ def test_tracker_reverse_turns_turns_at_the_dwell_point(lean: float) -> None:
     assert max(_reach(net, s) for s in path) <= TURN_X
     driven = 2.0 * shapely.LineString(ROAD[:4]).length  # 0 -> 300 -> 0
     assert sum(float(net.seg_len[s]) for s in path) == pytest.approx(driven)
-    net, done, _ = _run(MatchSettings(reverse_turns=False), lean)
+    net, done, _ = _run(MatchSettings(reverse_turns=False, lone_reverse_turns=False), lean)
     ahead = [f.t for c in done for f in c.fixes if _reach(net, f.segment) > TURN_X]
     assert ahead == [60.0]
 
@@ -77,7 +77,7 @@ def test_tracker_reverse_turns_leaves_dense_fixes_alone(lean: float) -> None:
     """At or below gap_s between fixes (here 5 s, the same positions) the setting changes
     nothing: it is a rule for gap steps only."""
     _, _, on = _run(MatchSettings(reverse_turns=True), lean, dt=5.0)
-    _, _, off = _run(MatchSettings(reverse_turns=False), lean, dt=5.0)
+    _, _, off = _run(MatchSettings(reverse_turns=False, lone_reverse_turns=False), lean, dt=5.0)
     assert on == off
 
 
@@ -93,7 +93,7 @@ def test_tracker_reverse_turns_survives_a_checkpoint(restore_at: int) -> None:
 
 def test_reverse_turns_must_be_a_bool() -> None:
     """Validated like the other switches (the config loader names the key)."""
-    assert MatchSettings(reverse_turns=False).problems() == []
+    assert MatchSettings(reverse_turns=False, lone_reverse_turns=False).problems() == []
     assert MatchSettings(reverse_turns=1).problems() == [  # type: ignore[arg-type]
         ("reverse_turns", "must be true or false, got 1")]
 

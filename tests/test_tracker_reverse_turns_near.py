@@ -62,7 +62,7 @@ def test_reverse_turns_near_turns_at_the_dwell_point(lean: float) -> None:
     assert max(_reach(ROAD, net, s) for s in path) <= TURN_X
     driven = 2.0 * shapely.LineString(ROAD[:4]).length
     assert sum(float(net.seg_len[s]) for s in path) == pytest.approx(driven)
-    done, _ = _commits(net, "van9", xs, MatchSettings())
+    done, _ = _commits(net, "van9", xs, MatchSettings(lone_reverse_turns=False))
     assert [f.t for c in done for f in c.fixes if _reach(ROAD, net, f.segment) > TURN_X] == [60.0]
 
 
@@ -72,7 +72,7 @@ def test_reverse_turns_near_leaves_dense_fixes_alone(lean: float) -> None:
     net = network_from_roads([Road(ROAD, way=7)])
     xs = [20.0, 160.0, TURN_X + lean, 170.0, 30.0]
     _, on = _commits(net, "van9", xs, MatchSettings(reverse_turns_near=True), dt=5.0)
-    _, off = _commits(net, "van9", xs, MatchSettings(), dt=5.0)
+    _, off = _commits(net, "van9", xs, MatchSettings(lone_reverse_turns=False), dt=5.0)
     assert on == off
 
 
