@@ -1,4 +1,4 @@
-"""``sparse_bridge_m``: at sparse fixes the deciding level bridges only to the roads close to the fix.
+"""``sparse_bridge_m``: at sparse fixes the deciding level bridges only to close roads.
 
 Invented data: two straight two-way roads 10 m apart (y = 0 and y = 10, 1 km long),
 joined at both ends; a vehicle drives along the lower one at 10 m/s. Distances of the
@@ -91,4 +91,5 @@ def test_dense_fixes_unchanged() -> None:
 def test_validation() -> None:
     assert ("sparse_bridge_m" in dict(MatchSettings(sparse_bridge_m=-1.0).problems()))
     assert not MatchSettings(sparse_bridge_m=10.0).problems()
-    assert "sparse_bridge_m" in MatchSettings.keys()
+    keys = MatchSettings.keys()
+    assert "sparse_bridge_m" in keys
