@@ -325,6 +325,18 @@ class MatchSettings:
             distance term then reads a lap as standing or going round the other way
             where the fixes lean 10 m to one side (docs/measured.md "Session 12
             (laps5)").
+        sparse_bridge_m: at more than ``gap_s`` between fixes, the smallest eps level
+            (the one that decides and commits) bridges each step only to the roads within
+            this many metres of the new fix while any of them is reachable from its live
+            candidates, else to those within its eps as without it (0 disables; only a
+            value below the smallest eps acts). The certificate is unchanged: the roads
+            offered lie within eps of the fix. Why: at 15-30 s between fixes every step
+            is bridged, and a level keeps as candidates whatever roads lie within its eps
+            of each fix; on bench/accuracy.py's drives (Helsinki, 15 s, seeds 31 / 77)
+            committing from the 30 m level instead of the 15 m one lost 0.4-0.6 points
+            of final accuracy: the wider the set of roads near a fix, the more wrong
+            paths (a close road, the other direction) win the path cost somewhere
+            (docs/measured.md, "Session 13 (walk15)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -366,6 +378,7 @@ class MatchSettings:
     live_keep: float = 0.0
     live_keep_stand_s: float = 0.0
     motion_step: bool = False
+    sparse_bridge_m: float = 0.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -391,7 +404,7 @@ class MatchSettings:
             out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
         for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s",
                      "spike_cost", "street_turn_cost", "join_detour", "live_keep",
-                     "live_keep_stand_s"):
+                     "live_keep_stand_s", "sparse_bridge_m"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))

@@ -91,7 +91,7 @@ from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
 from livematch.core.routing import connect
 from livematch.core.settings import MatchSettings
-from livematch.core.sweep import Node, StepContext, advance
+from livematch.core.sweep import Node, StepContext, advance, bridge_reach, bridge_step
 from livematch.core.view import NetworkView, view_of
 from livematch.errors import BadStateError
 
@@ -637,7 +637,18 @@ class Tracker:
             if step[9] != ctx.motion_cost:
                 ctx = dataclasses.replace(ctx, motion_cost=step[9])
             nodes, rows = tree.live_nodes(self._view)
-            new, how = advance(self.network, nodes, ctx, s, dt, gap=True)
+            how = ""
+            if (s.sparse_bridge_m > 0.0 and level is self.levels[0] and prev is not None
+                    and dt > s.gap_s and s.sparse_bridge_m < level.eps and nodes):
+                # rule sparse_bridge_m: the deciding level's bridge offers only the roads
+                # this close to the fix, while any is reachable (within eps: the
+                # certificate holds); else the level bridges as before
+                narrow = dataclasses.replace(ctx, eps=s.sparse_bridge_m)
+                limit = min(s.bridge_speed_mps * dt, bridge_reach(nodes, ctx, s)) + 2.0 * level.eps
+                new = bridge_step(self.network, nodes, narrow, limit)
+                how = "bridged" if new else ""
+            if not how:
+                new, how = advance(self.network, nodes, ctx, s, dt, gap=True)
             if how == "bridged":
                 tree.extend(new, rows)
                 level.cert_seq, level.cert_t = seq, fix.t
