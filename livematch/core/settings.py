@@ -321,6 +321,16 @@ class MatchSettings:
             distance term then reads a lap as standing or going round the other way
             where the fixes lean 10 m to one side (docs/measured.md "Session 12
             (laps5)").
+        stand_short_m: with ``stand_at_vertex``, the stand's run may reach past the
+            middle of a segment S shorter than this (metres; 0, the default, keeps the
+            middle-of-segment guard everywhere): its far end lies within this of V, so
+            "the vehicle stood at the far end instead" and "it stood at V" are both
+            within GNSS error of the fixes, and the best path, dragged by an error that
+            leans one way for tens of seconds, often ends the stand at the far end of a
+            short S that the vehicle never drove (it turned round at V or left by
+            another road; :meth:`livematch.core.tracker.Tracker._short_past_middle`).
+            Reported at V as the end of the road the path came in by, such a stand is on
+            the driven path whichever end the vehicle stood at.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -362,6 +372,7 @@ class MatchSettings:
     live_keep: float = 0.0
     live_keep_stand_s: float = 0.0
     motion_step: bool = False
+    stand_short_m: float = 0.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -387,7 +398,7 @@ class MatchSettings:
             out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
         for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s",
                      "spike_cost", "street_turn_cost", "join_detour", "live_keep",
-                     "live_keep_stand_s"):
+                     "live_keep_stand_s", "stand_short_m"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))

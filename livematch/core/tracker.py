@@ -1608,7 +1608,8 @@ class Tracker:
         all lie within ``eps`` of V, as does the fix before the run, those fixes are
         reported at V, as the end of P. The path is unchanged (P and S are both on it).
         The run stops at the first node that leaves S, lies nearer the far end of S than
-        V (the vehicle may have stood at that vertex instead) or whose fix lies farther
+        V (the vehicle may have stood at that vertex instead; not on a segment shorter
+        than ``stand_short_m``, :meth:`_short_past_middle`) or whose fix lies farther
         than ``eps`` from V; later nodes keep their answers. Not where P is the twin of
         S (the path turned round at V: at the start of a stretch, P can be a segment
         the vehicle never drove), nor where P is the segment a new stretch (``starts``)
@@ -1686,7 +1687,8 @@ class Tracker:
             vy = float(view.vy[v])
             m = k
             while (m < len(chain) and chain[m].seg == n.seg and (m == k or not chain[m].via)
-                   and chain[m].pos <= 0.5 and near(chain[m], vx, vy)):
+                   and (chain[m].pos <= 0.5 or self._short_past_middle(n.seg))
+                   and near(chain[m], vx, vy)):
                 m += 1
             if (m > k and chain[m - 1].t - n.t >= STAND_S and near(prev, vx, vy)
                     and self._wandering_run([prev, *chain[k:m]])
@@ -1695,6 +1697,28 @@ class Tracker:
                 for j in range(k, m):
                     fixes[j] = MatchedFix(chain[j].t, seg_in, end, vx, vy)
             k = max(m, k + 1)
+
+    def _short_past_middle(self, seg: int) -> bool:
+        """Whether a stand's run may reach past the middle of ``seg`` (``stand_short_m``).
+
+        :meth:`_stand_at_vertex` stops a run at a node nearer the far end W of S than
+        its start V: the vehicle may have stood at W. On a segment shorter than
+        ``MatchSettings.stand_short_m`` both ends lie within GNSS error of the stand's
+        fixes, which alone cannot tell V from W; the path dragged to W by an error
+        leaning that way is what the rule undoes. Reporting the stand at V as the end
+        of the road P the path came in by is on the driven path if the vehicle stood
+        at V and, as P leads to W through S, within a short S of it if the vehicle
+        stood at W.
+
+        Example (off by default; a 100 m segment is not short at 10 m):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+            >>> Tracker(net, "v1")._short_past_middle(0)
+            False
+            >>> Tracker(net, "v1", MatchSettings(stand_short_m=150.0))._short_past_middle(0)
+            True
+        """
+        return bool(self._view.slen[seg] < self.settings.stand_short_m)
 
     def _left_before(self, chain: list[Node], k: int, v: int, vx: float, vy: float,
                      near: Callable[[Node, float, float], bool]) -> bool:
