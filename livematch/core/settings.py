@@ -372,7 +372,7 @@ class MatchSettings:
     live_keep: float = 0.0
     live_keep_stand_s: float = 0.0
     motion_step: bool = False
-    stand_short_m: float = 0.0
+    stand_short_m: float = 5.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))

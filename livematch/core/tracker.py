@@ -1609,9 +1609,9 @@ class Tracker:
         reported at V, as the end of P. The path is unchanged (P and S are both on it).
         The run stops at the first node that leaves S, lies nearer the far end of S than
         V (the vehicle may have stood at that vertex instead; not on a segment shorter
-        than ``stand_short_m``, :meth:`_short_past_middle`) or whose fix lies farther
-        than ``eps`` from V; later nodes keep their answers. Not where P is the twin of
-        S (the path turned round at V: at the start of a stretch, P can be a segment
+        than ``stand_short_m`` while the run stands, :meth:`_short_run_end`) or whose fix
+        lies farther than ``eps`` from V; later nodes keep their answers. Not where P is
+        the twin of S (the path turned round at V: at the start of a stretch, P can be a segment
         the vehicle never drove), nor where P is the segment a new stretch (``starts``)
         began on and the path has been nowhere else before the run (a vehicle that
         starts standing at V never drove P either; ``starts`` is the flag
@@ -1687,9 +1687,9 @@ class Tracker:
             vy = float(view.vy[v])
             m = k
             while (m < len(chain) and chain[m].seg == n.seg and (m == k or not chain[m].via)
-                   and (chain[m].pos <= 0.5 or self._short_past_middle(n.seg))
-                   and near(chain[m], vx, vy)):
+                   and chain[m].pos <= 0.5 and near(chain[m], vx, vy)):
                 m += 1
+            m = self._short_run_end(chain, k, m, vx, vy, near)
             if (m > k and chain[m - 1].t - n.t >= STAND_S and near(prev, vx, vy)
                     and self._wandering_run([prev, *chain[k:m]])
                     and not self._left_before(chain, k, v, vx, vy, near)):
@@ -1697,6 +1697,40 @@ class Tracker:
                 for j in range(k, m):
                     fixes[j] = MatchedFix(chain[j].t, seg_in, end, vx, vy)
             k = max(m, k + 1)
+
+    def _short_run_end(self, chain: list[Node], k: int, m: int, vx: float, vy: float,
+                       near: Callable[[Node, float, float], bool]) -> int:
+        """The end of a stand's run at ``chain[k]`` past the middle of a short segment.
+
+        ``chain[k:m]`` is the run :meth:`_stand_at_vertex` found (up to the middle of S,
+        ``chain[k].seg``). On a short S (:meth:`_short_past_middle`) the run goes on
+        through the nodes on S whose fixes lie within eps of V = (``vx``, ``vy``), but
+        only if all the fixes of the longer run stand: within ``STAND_SIGMAS`` x
+        ``sigma_m`` of its last fix, as :meth:`_standing` reads a stand. Why: a vehicle
+        that circles a small loop (a turning circle of 2.9 m segments, 22 m across, in
+        the bench's random walk) keeps its fixes within eps of one vertex for 10 s while
+        it moves; its fixes spread over the loop, a standing vehicle's do not.
+        Returns ``m`` when the run is not longer, or does not stand.
+        """
+        seg = chain[k].seg
+        if not self._short_past_middle(seg):
+            return m
+        end = m
+        while (end < len(chain) and chain[end].seg == seg and (end == k or not chain[end].via)
+               and near(chain[end], vx, vy)):
+            end += 1
+        if end == m:
+            return m
+        radius = STAND_SIGMAS * self.settings.sigma_m
+        seq0 = self.fix_seq0
+        xy = self.fix_xy
+        r = chain[end - 1].seq - seq0
+        lx, ly = xy.item(r, 0), xy.item(r, 1)
+        for node in chain[k:end]:
+            r = node.seq - seq0
+            if math.hypot(xy.item(r, 0) - lx, xy.item(r, 1) - ly) > radius:
+                return m
+        return end
 
     def _short_past_middle(self, seg: int) -> bool:
         """Whether a stand's run may reach past the middle of ``seg`` (``stand_short_m``).
