@@ -90,21 +90,23 @@ def test_a_stand_dragged_past_the_middle_of_a_short_segment_goes_to_the_vertex()
 
 def test_a_segment_as_long_as_the_bound_keeps_the_guard() -> None:
     """The same stand beside a 10 m S, leaning up to 6 m east (past its middle): with
-    ``stand_short_m`` = 10 (a segment shorter than 10 m) and with the default (5 m) the
-    answers are those with the key off (0), where the middle-of-segment guard acts."""
+    ``stand_short_m`` = 10 (a segment shorter than 10 m) and with 5 m (``sigma_m``) the
+    answers are those with the key off (0, the default), where the middle-of-segment
+    guard acts."""
     net = _network(10.0)
     fixes = _fixes(6.0)
     off = _settled(net, OFF, fixes)
     assert _settled(net, MatchSettings(stand_short_m=10.0), fixes) == off
+    assert _settled(net, MatchSettings(stand_short_m=5.0), fixes) == off
     assert _settled(net, MatchSettings(), fixes) == off
 
 
-def test_the_default_acts_on_a_segment_shorter_than_sigma() -> None:
-    """The default bound is ``sigma_m`` (5 m): the 3 m S of the first test is short, so
-    the default's answers are those of ``stand_short_m`` = 10 there, not those of 0."""
+def test_five_metres_act_on_a_segment_shorter_than_sigma() -> None:
+    """At 5 m (``sigma_m``, the value of the decision runs) the 3 m S of the first test
+    is short, so the answers are those of ``stand_short_m`` = 10 there, not those of 0."""
     net = _network(3.0)
     fixes = _fixes(2.7)
-    on = _settled(net, MatchSettings(), fixes)
+    on = _settled(net, MatchSettings(stand_short_m=5.0), fixes)
     assert on == _settled(net, MatchSettings(stand_short_m=10.0), fixes)
     assert on != _settled(net, OFF, fixes)
 
@@ -135,8 +137,8 @@ def test_the_rule_needs_stand_at_vertex() -> None:
 
 
 def test_the_key_is_validated() -> None:
-    """stand_short_m is a number of metres >= 0 in [matcher], 5 by default (0: off)."""
-    assert MatchSettings().stand_short_m == 5.0
+    """stand_short_m is a number of metres >= 0 in [matcher], 0 (off) by default."""
+    assert MatchSettings().stand_short_m == 0.0
     assert matcher_settings_from_mapping({"stand_short_m": 10},
                                          "a.toml").stand_short_m == 10
     assert [k for k, _ in MatchSettings(stand_short_m=-1.0).problems()] == ["stand_short_m"]

@@ -328,9 +328,19 @@ class MatchSettings:
             within GNSS error of the fixes, and the best path, dragged by an error that
             leans one way for tens of seconds, often ends the stand at the far end of a
             short S that the vehicle never drove (it turned round at V or left by
-            another road; :meth:`livematch.core.tracker.Tracker._short_past_middle`).
+            another road; :meth:`livematch.core.tracker.Tracker._short_run_end`).
             Reported at V as the end of the road the path came in by, such a stand is on
-            the driven path whichever end the vehicle stood at.
+            the driven path whichever end the vehicle stood at. Only while the longer
+            run's fixes stand (within 2 ``sigma_m`` of its last): a vehicle circling a
+            small turning circle keeps its fixes within eps of one vertex while moving.
+            Off by default: at 5 m (``sigma_m``), on bench/fleetmiss.py's decision runs
+            (80 drives, seeds 31 / 77, both extracts, 1 and 5 s, routed trips and random
+            walk) final road+dir rises on routed trips at Helsinki (1 s 0.9772 / 0.9673
+            -> 0.9775 / 0.9683) and falls nowhere, live answers and route mismatch are
+            unchanged, but the error median rises by up to 0.02 m in six cells (the
+            stand reported at V where the vehicle stood at W); at 10 m the random walk
+            and a test-extract trips cell lose fixes (docs/measured.md "Session 13
+            (fleet1)"). For fleets that turn round at stops, 5.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -372,7 +382,7 @@ class MatchSettings:
     live_keep: float = 0.0
     live_keep_stand_s: float = 0.0
     motion_step: bool = False
-    stand_short_m: float = 5.0
+    stand_short_m: float = 0.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
