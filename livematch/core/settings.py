@@ -337,7 +337,7 @@ class MatchSettings:
             (80 drives, seeds 31 / 77, both extracts, 1 and 5 s, routed trips and random
             walk) final road+dir rises on routed trips at Helsinki (1 s 0.9772 / 0.9673
             -> 0.9775 / 0.9683) and falls nowhere, live answers and route mismatch are
-            unchanged, but the error median rises by up to 0.02 m in six cells (the
+            unchanged, but the error median rises by up to 0.023 m in seven cells (the
             stand reported at V where the vehicle stood at W); at 10 m the random walk
             and a test-extract trips cell lose fixes (docs/measured.md "Session 13
             (fleet1)"). For fleets that turn round at stops, 5.
