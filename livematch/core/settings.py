@@ -243,13 +243,9 @@ class MatchSettings:
             minutes apart; a vehicle whose fixes reverse again within minutes is
             circling or looping round blocks and dead ends, where the turn at the
             reversing fix is the cheaper route never driven (the random walk's loss
-            under ``reverse_turns_near``). And only when the mean speed of the two steps
-            round the reversing fix is at most ``REVERSE_TURN_MPS`` (7.5 m/s; :meth:`livematch.
-            core.tracker.Tracker._slow_reversal`): a vehicle slows or stops to turn round,
-            while an outlier fix also makes the fixes reverse, with two long, fast steps,
-            and a turn at it kept the outlier (docs/measured.md, "Session 13
-            (sparse30b)"). No effect with ``reverse_turns`` or ``reverse_turns_near`` on.
-            Off by default (docs/measured.md, "Session 12 (sparse30)").
+            under ``reverse_turns_near``). No effect with ``reverse_turns`` or
+            ``reverse_turns_near`` on. Off by default (docs/measured.md, "Session 12
+            (sparse30)").
         hold_filtered: a fix the filters refuse (``impossible_jump``, ``low_accuracy``)
             gets a live answer too: the newest live answer again, at the refused fix's
             time, with its certificate, while that answer is at most ``gap_s`` old
@@ -325,18 +321,26 @@ class MatchSettings:
             distance term then reads a lap as standing or going round the other way
             where the fixes lean 10 m to one side (docs/measured.md "Session 12
             (laps5)").
-        sparse_bridge_m: at more than ``gap_s`` between fixes, the smallest eps level
-            (the one that decides and commits) bridges each step only to the roads within
-            this many metres of the new fix while any of them is reachable from its live
-            candidates, else to those within its eps as without it (0 disables; only a
-            value below the smallest eps acts). The certificate is unchanged: the roads
-            offered lie within eps of the fix. Why: at 15-30 s between fixes every step
-            is bridged, and a level keeps as candidates whatever roads lie within its eps
-            of each fix; on bench/accuracy.py's drives (Helsinki, 15 s, seeds 31 / 77)
-            committing from the 30 m level instead of the 15 m one lost 0.4-0.6 points
-            of final accuracy: the wider the set of roads near a fix, the more wrong
-            paths (a close road, the other direction) win the path cost somewhere
-            (docs/measured.md, "Session 13 (walk15)").
+        stand_short_m: with ``stand_at_vertex``, the stand's run may reach past the
+            middle of a segment S shorter than this (metres; 0, the default, keeps the
+            middle-of-segment guard everywhere): its far end lies within this of V, so
+            "the vehicle stood at the far end instead" and "it stood at V" are both
+            within GNSS error of the fixes, and the best path, dragged by an error that
+            leans one way for tens of seconds, often ends the stand at the far end of a
+            short S that the vehicle never drove (it turned round at V or left by
+            another road; :meth:`livematch.core.tracker.Tracker._short_run_end`).
+            Reported at V as the end of the road the path came in by, such a stand is on
+            the driven path whichever end the vehicle stood at. Only while the longer
+            run's fixes stand (within 2 ``sigma_m`` of its last): a vehicle circling a
+            small turning circle keeps its fixes within eps of one vertex while moving.
+            Off by default: at 5 m (``sigma_m``), on bench/fleetmiss.py's decision runs
+            (80 drives, seeds 31 / 77, both extracts, 1 and 5 s, routed trips and random
+            walk) final road+dir rises on routed trips at Helsinki (1 s 0.9772 / 0.9673
+            -> 0.9775 / 0.9683) and falls nowhere, live answers and route mismatch are
+            unchanged, but the error median rises by up to 0.023 m in seven cells (the
+            stand reported at V where the vehicle stood at W); at 10 m the random walk
+            and a test-extract trips cell lose fixes (docs/measured.md "Session 13
+            (fleet1)"). For fleets that turn round at stops, 5.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -378,7 +382,7 @@ class MatchSettings:
     live_keep: float = 0.0
     live_keep_stand_s: float = 0.0
     motion_step: bool = False
-    sparse_bridge_m: float = 0.0
+    stand_short_m: float = 0.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -404,7 +408,7 @@ class MatchSettings:
             out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
         for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s",
                      "spike_cost", "street_turn_cost", "join_detour", "live_keep",
-                     "live_keep_stand_s", "sparse_bridge_m"):
+                     "live_keep_stand_s", "stand_short_m"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))

@@ -91,7 +91,7 @@ from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
 from livematch.core.routing import connect
 from livematch.core.settings import MatchSettings
-from livematch.core.sweep import Node, StepContext, advance, bridge_reach, bridge_step
+from livematch.core.sweep import Node, StepContext, advance
 from livematch.core.view import NetworkView, view_of
 from livematch.errors import BadStateError
 
@@ -637,18 +637,7 @@ class Tracker:
             if step[9] != ctx.motion_cost:
                 ctx = dataclasses.replace(ctx, motion_cost=step[9])
             nodes, rows = tree.live_nodes(self._view)
-            how = ""
-            if (s.sparse_bridge_m > 0.0 and level is self.levels[0] and prev is not None
-                    and dt > s.gap_s and s.sparse_bridge_m < level.eps and nodes):
-                # rule sparse_bridge_m: the deciding level's bridge offers only the roads
-                # this close to the fix, while any is reachable (within eps: the
-                # certificate holds); else the level bridges as before
-                narrow = dataclasses.replace(ctx, eps=s.sparse_bridge_m)
-                limit = min(s.bridge_speed_mps * dt, bridge_reach(nodes, ctx, s)) + 2.0 * level.eps
-                new = bridge_step(self.network, nodes, narrow, limit)
-                how = "bridged" if new else ""
-            if not how:
-                new, how = advance(self.network, nodes, ctx, s, dt, gap=True)
+            new, how = advance(self.network, nodes, ctx, s, dt, gap=True)
             if how == "bridged":
                 tree.extend(new, rows)
                 level.cert_seq, level.cert_t = seq, fix.t
@@ -1694,9 +1683,10 @@ class Tracker:
         all lie within ``eps`` of V, as does the fix before the run, those fixes are
         reported at V, as the end of P. The path is unchanged (P and S are both on it).
         The run stops at the first node that leaves S, lies nearer the far end of S than
-        V (the vehicle may have stood at that vertex instead) or whose fix lies farther
-        than ``eps`` from V; later nodes keep their answers. Not where P is the twin of
-        S (the path turned round at V: at the start of a stretch, P can be a segment
+        V (the vehicle may have stood at that vertex instead; not on a segment shorter
+        than ``stand_short_m`` while the run stands, :meth:`_short_run_end`) or whose fix
+        lies farther than ``eps`` from V; later nodes keep their answers. Not where P is
+        the twin of S (the path turned round at V: at the start of a stretch, P can be a segment
         the vehicle never drove), nor where P is the segment a new stretch (``starts``)
         began on and the path has been nowhere else before the run (a vehicle that
         starts standing at V never drove P either; ``starts`` is the flag
@@ -1774,6 +1764,7 @@ class Tracker:
             while (m < len(chain) and chain[m].seg == n.seg and (m == k or not chain[m].via)
                    and chain[m].pos <= 0.5 and near(chain[m], vx, vy)):
                 m += 1
+            m = self._short_run_end(chain, k, m, vx, vy, near)
             if (m > k and chain[m - 1].t - n.t >= STAND_S and near(prev, vx, vy)
                     and self._wandering_run([prev, *chain[k:m]])
                     and not self._left_before(chain, k, v, vx, vy, near)):
@@ -1781,6 +1772,62 @@ class Tracker:
                 for j in range(k, m):
                     fixes[j] = MatchedFix(chain[j].t, seg_in, end, vx, vy)
             k = max(m, k + 1)
+
+    def _short_run_end(self, chain: list[Node], k: int, m: int, vx: float, vy: float,
+                       near: Callable[[Node, float, float], bool]) -> int:
+        """The end of a stand's run at ``chain[k]`` past the middle of a short segment.
+
+        ``chain[k:m]`` is the run :meth:`_stand_at_vertex` found (up to the middle of S,
+        ``chain[k].seg``). On a short S (:meth:`_short_past_middle`) the run goes on
+        through the nodes on S whose fixes lie within eps of V = (``vx``, ``vy``), but
+        only if all the fixes of the longer run stand: within ``STAND_SIGMAS`` x
+        ``sigma_m`` of its last fix, as :meth:`_standing` reads a stand. Why: a vehicle
+        that circles a small loop (a turning circle of 2.9 m segments, 22 m across, in
+        the bench's random walk) keeps its fixes within eps of one vertex for 10 s while
+        it moves; its fixes spread over the loop, a standing vehicle's do not.
+        Returns ``m`` when the run is not longer, or does not stand.
+        """
+        seg = chain[k].seg
+        if not self._short_past_middle(seg):
+            return m
+        end = m
+        while (end < len(chain) and chain[end].seg == seg and (end == k or not chain[end].via)
+               and near(chain[end], vx, vy)):
+            end += 1
+        if end == m:
+            return m
+        radius = STAND_SIGMAS * self.settings.sigma_m
+        seq0 = self.fix_seq0
+        xy = self.fix_xy
+        r = chain[end - 1].seq - seq0
+        lx, ly = xy.item(r, 0), xy.item(r, 1)
+        for node in chain[k:end]:
+            r = node.seq - seq0
+            if math.hypot(xy.item(r, 0) - lx, xy.item(r, 1) - ly) > radius:
+                return m
+        return end
+
+    def _short_past_middle(self, seg: int) -> bool:
+        """Whether a stand's run may reach past the middle of ``seg`` (``stand_short_m``).
+
+        :meth:`_stand_at_vertex` stops a run at a node nearer the far end W of S than
+        its start V: the vehicle may have stood at W. On a segment shorter than
+        ``MatchSettings.stand_short_m`` both ends lie within GNSS error of the stand's
+        fixes, which alone cannot tell V from W; the path dragged to W by an error
+        leaning that way is what the rule undoes. Reporting the stand at V as the end
+        of the road P the path came in by is on the driven path if the vehicle stood
+        at V and, as P leads to W through S, within a short S of it if the vehicle
+        stood at W.
+
+        Example (off by default; a 100 m segment is not short at 10 m):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+            >>> Tracker(net, "v1")._short_past_middle(0)
+            False
+            >>> Tracker(net, "v1", MatchSettings(stand_short_m=150.0))._short_past_middle(0)
+            True
+        """
+        return bool(self._view.slen[seg] < self.settings.stand_short_m)
 
     def _left_before(self, chain: list[Node], k: int, v: int, vx: float, vy: float,
                      near: Callable[[Node, float, float], bool]) -> bool:
