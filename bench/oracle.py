@@ -395,7 +395,12 @@ def causes(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
         # fix by fix against the oracle
         for i in keys:
             fix_n += 1
-            fix_same += final[i] is not None and final[i].segment == point_segs[i]
+            f = final[i]
+            # the same segment, or the next one across a vertex (a fix at the vertex)
+            fix_same += f is not None and (
+                f.segment == point_segs[i]
+                or int(network.seg_to[f.segment]) == int(network.seg_from[point_segs[i]])
+                or int(network.seg_to[point_segs[i]]) == int(network.seg_from[f.segment]))
         split = mismatch_by_gap(truth, matched)
         nxt = dict(itertools.pairwise(keys))
         episodes: list[list[tuple[int, float, float]]] = []
@@ -537,7 +542,8 @@ def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
                   "length (added + missed; episodes, runs of gaps with a mismatch, in "
                   "brackets); join: the part on episodes with a gap that ends where a commit "
                   "begins. As oracle: fixes / gaps "
-                  "where livematch's final segment / piece equals the point oracle's.", "",
+                  "where livematch's final segment is the point oracle's or next to it across "
+                  "a vertex / where its piece equals the oracle's.", "",
                   "| extract | interval s | " + " | ".join(CAUSES) + " | join | forced "
                   "commits | as oracle |",
                   "|---|---:|" + "---:|" * (len(CAUSES) + 3)]
