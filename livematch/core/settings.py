@@ -321,6 +321,18 @@ class MatchSettings:
             distance term then reads a lap as standing or going round the other way
             where the fixes lean 10 m to one side (docs/measured.md "Session 12
             (laps5)").
+        break_rejoin: where a commit cannot be joined to the last committed point (no
+            route within the speed bound and ``join_detour``), and the tree committing
+            it has its own answer for that same last fix, the committed path goes on
+            from that answer by the tree's own route into the commit's first fix,
+            instead of starting afresh at the first fix's segment. The published path
+            still jumps there (from the last committed segment back to the tree's), but
+            the route the tree matched between the two fixes is no longer left out.
+            Why: a break is mostly another tree's last stretch that ended on a branch not
+            taken or a road alongside, not a vehicle that left the network; the tree
+            that goes on knows how it got to its first fix (docs/measured.md "Session 13
+            (rmf5)"). Only the committed path changes (and a commit that now goes on
+            no longer moves its first fix from a segment's very end to the next one).
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
