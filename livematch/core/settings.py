@@ -328,9 +328,10 @@ class MatchSettings:
             instead of starting afresh at the first fix's segment. The published path
             still jumps there (from the last committed segment back to the tree's), but
             the route the tree matched between the two fixes is no longer left out.
-            Why: a break is mostly another tree's last stretch that ended on a branch not
-            taken or a road alongside, not a vehicle that left the network; the tree
-            that goes on knows how it got to its first fix (docs/measured.md "Session 13
+            Why: at a break the route between the two fixes is lost from the committed
+            path even where the tree that goes on matched it (in the case looked at,
+            the last stretch ended 13 m into a branch not taken and the join round to
+            the next commit was over ``join_detour``; docs/measured.md "Session 13
             (rmf5)"). Only the committed path changes (and a commit that now goes on
             no longer moves its first fix from a segment's very end to the next one).
     """
