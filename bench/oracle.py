@@ -38,6 +38,8 @@ bench/results). © OpenStreetMap contributors, ODbL (the extracts shipped with p
 from __future__ import annotations
 
 import argparse
+import bisect
+import itertools
 import json
 import math
 import sys
@@ -69,7 +71,9 @@ from livematch.sim.logs import replay_records  # noqa: E402
 from livematch.sim.score import (  # noqa: E402
     GapRoute,
     TruePath,
+    mismatch_by_gap,
     oracle_bridges,
+    pieces_at_marks,
     point_oracle,
     route_mismatch_fraction,
 )
@@ -93,9 +97,12 @@ Oracle = tuple[list[int], list[int], list[GapRoute], list[int], list[int]]
 its gaps, the point oracle's path and its segment at every fix."""
 
 
-def fleet_oracle(network: RoadNetwork,
-                 fleet: list[tuple[Drive, list[Observation]]]) -> dict[str, Oracle]:
-    """Both oracles for every drive (:func:`oracle_bridges`, :func:`point_oracle`)."""
+def fleet_oracle(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
+                 point: bool = True) -> dict[str, Oracle]:
+    """Both oracles for every drive (:func:`oracle_bridges`, :func:`point_oracle`).
+
+    ``point`` False: the point oracle is not searched (its Viterbi is slow at 1 s, where
+    no gap is a detour); the directed oracle's path and true segments stand in for it."""
     view = view_of(network)
     out = {}
     for drive, obs in fleet:
@@ -103,7 +110,10 @@ def fleet_oracle(network: RoadNetwork,
                drive.truth[o.truth_index].path_pos_m) for o in obs]
         net = (view.out, view.st, view.twin, view.slen, view.turn_back_ok)
         path, gaps = oracle_bridges(*net, drive.path, at)
-        point_path, point_segs = point_oracle(*net, drive.path, at)
+        if point:
+            point_path, point_segs = point_oracle(*net, drive.path, at)
+        else:
+            point_path, point_segs = path, [int(drive.path[a[0]]) for a in at]
         true_path = list(drive.path[at[0][0]:at[-1][0] + 1])
         out[drive.vehicle] = (true_path, path, gaps, point_path, point_segs)
     return out
@@ -122,9 +132,10 @@ def pooled_rmf(network: RoadNetwork, pairs: list[tuple[list[int], list[int]]]) -
 
 def measure(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
             detours: list[float], livematch: bool,
-            matcher: dict[str, Any]) -> dict[str, Any]:
+            matcher: dict[str, Any], point: bool = True,
+            with_causes: bool = False) -> dict[str, Any]:
     """The figures of one (extract, interval); see the module docstring."""
-    oracle = fleet_oracle(network, fleet)
+    oracle = fleet_oracle(network, fleet, point)
     gaps = [g for o in oracle.values() for g in o[2]]
     driven = sum(g.driven_m for g in gaps)
     row: dict[str, Any] = {
@@ -151,7 +162,11 @@ def measure(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
     records = replay_records(network, fleet)
     xy = acc.roundtrip_xy(network, records)
     times = {d.vehicle: [o.t for o in obs] for d, obs in fleet}
-    run = acc.run_inproc(network, records, xy, times, matcher)
+    if with_causes:
+        run, commits, kinds = run_with_commits(network, records, xy, times, matcher)
+        row["causes"] = causes(network, fleet, oracle, run, commits, kinds)
+    else:
+        run = acc.run_inproc(network, records, xy, times, matcher)
     scored = acc.score(network, fleet, run)
     row["livematch_final"] = scored["road_dir_final"]
     row["livematch_live"] = scored["road_dir_live"]
@@ -226,6 +241,249 @@ def against_point(network: RoadNetwork, oracle: dict[str, Oracle],
     return {k: v / total if total else math.nan for k, v in parts.items()}
 
 
+#: Causes of route mismatch, in the order a gap is tested for them (see :func:`causes`).
+CAUSES = ("start", "end", "break", "as_oracle", "laps", "bridge_uturn", "bridge_loop",
+          "bridge_other", "fix_forced", "fix_twin", "fix_other")
+
+
+def run_with_commits(network: RoadNetwork, records: list[dict[str, Any]], xy: acc.XY,
+                     times: dict[str, list[float]], matcher: dict[str, Any]
+                     ) -> tuple[acc.MethodRun, list[dict[str, Any]], dict[tuple[str, float], str]]:
+    """``acc.run_inproc`` that also returns the commit records and each commit's kind.
+
+    Kind, by the vehicle and the time of the commit's first fix: ``forced`` (a commit at
+    ``max_lag_*``: the best candidate, the others dropped), ``flush`` (the end of the
+    drive) or ``agreed`` (the candidates' common prefix, or a dying tree's best). A
+    diagnostic: the tracker's ``_commit_chain`` and the bench's ``_collect`` are wrapped
+    for the run and restored after it.
+    """
+    from livematch.core.tracker import Tracker
+
+    kinds: dict[tuple[str, float], str] = {}
+    grabbed: list[dict[str, Any]] = []
+    original = Tracker._commit_chain
+    collect = acc._collect
+
+    def commit_chain(self: Tracker, tree: Any, row: int, events: list[Any], prune: Any,
+                     settle_all: bool = False, built: Any = None) -> None:
+        n = len(events)
+        original(self, tree, row, events, prune, settle_all, built)
+        if len(events) > n:
+            kind = "flush" if settle_all else "forced" if prune is not None else "agreed"
+            kinds[(self.vehicle, events[-1].fixes[0].t)] = kind
+
+    def keep(network: RoadNetwork, xy: acc.XY, times: dict[str, list[float]],
+             assignments: list[dict[str, Any]], commits: list[dict[str, Any]]) -> Any:
+        grabbed.extend(commits)
+        return collect(network, xy, times, assignments, commits)
+
+    Tracker._commit_chain = commit_chain  # type: ignore[method-assign]
+    acc._collect = keep  # type: ignore[assignment]
+    try:
+        run = acc.run_inproc(network, records, xy, times, matcher)
+    finally:
+        Tracker._commit_chain = original  # type: ignore[method-assign]
+        acc._collect = collect  # type: ignore[assignment]
+    return run, grabbed, kinds
+
+
+def _regroup(pieces: list[tuple[int, list[int]]], keys: list[int]) -> dict[int, list[int]]:
+    """Pieces keyed by fix, put together per gap between the fixes in ``keys`` (sorted);
+    a piece goes to the gap of the newest key at or before its own (-1 before the first)."""
+    out: dict[int, list[int]] = {}
+    for key, piece in pieces:
+        k = bisect.bisect_right(keys, key) - 1
+        out.setdefault(keys[k] if k >= 0 else -1, []).extend(piece)
+    return out
+
+
+def _mismatch_m(a: list[int], b: list[int], slen: np.ndarray) -> float:
+    """Length in one multiset of segments and not the other, both ways, metres."""
+    ca, cb = Counter(a), Counter(b)
+    return float(sum(slen[s] * n for s, n in ((ca - cb) + (cb - ca)).items()))
+
+
+def _vertices(network: RoadNetwork, segs: list[int]) -> list[int]:
+    """The vertices a run of segments passes, from the first one's tail on."""
+    if not segs:
+        return []
+    return [int(network.seg_from[segs[0]])] + [int(network.seg_to[s]) for s in segs]
+
+
+def causes(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
+           oracle: dict[str, Oracle], run: acc.MethodRun, commits: list[dict[str, Any]],
+           kinds: dict[tuple[str, float], str],
+           detail: list[dict[str, Any]] | None = None) -> dict[str, Any]:
+    """livematch's route mismatch put on the gaps between its committed fixes, by cause.
+
+    A gap runs from one committed fix to the next (by time); its matched segments are
+    the commit's path from the first fix's segment to the next one's (with the join to
+    the next commit, when the next fix starts one), its true segments the path driven
+    between the two true positions, split the same way. The mismatch of the whole drive
+    is put on gaps by :func:`mismatch_by_gap` (the gaps' metres add up to the measure).
+    A gap's cause, the first that applies: ``start`` / ``end`` (before the first
+    committed fix, after the last), ``break`` (the next commit does not join on),
+    ``as_oracle`` (the point oracle's piece misses at least 80 % as much as livematch's:
+    no bridging matcher would do much better), ``laps`` (the truth passes a vertex twice
+    in the episode, round a loop or a block, and more is missed than added: laps or a
+    spur not kept), then with the final answers at both ends right (road+dir):
+    ``bridge_uturn`` (the piece turns back onto a segment's twin where the truth does
+    not), ``bridge_loop`` (the piece has a segment twice, or is longer than both the
+    truth's and the oracle's by over 20 m), ``bridge_other`` (another route: a parallel
+    road, a shortcut); else a wrong final answer at an end: ``fix_forced`` (its commit
+    was forced at ``max_lag_*``), ``fix_twin`` (the twin of a segment driven near there:
+    the wrong direction), ``fix_other``. Every gap is also counted as ``join`` (the next
+    fix begins a commit) or ``inside`` a commit.
+    """
+    lookup = acc.segment_lookup(network)
+    slen, twin = network.seg_len, network.seg_twin
+    by_vehicle: dict[str, list[dict[str, Any]]] = {}
+    for rec in commits:
+        by_vehicle.setdefault(rec["vehicle"], []).append(rec)
+    table: dict[str, dict[str, float]] = {c: {"added_m": 0.0, "missed_m": 0.0, "gaps": 0,
+                                             "join_m": 0.0, "inside_m": 0.0}
+                                          for c in CAUSES}
+    fix_same = fix_n = gap_same = gap_n = 0
+    total = 0.0
+    for drive, obs in fleet:
+        v = drive.vehicle
+        true_path, _, _, point_path, point_segs = oracle[v]
+        total += float(sum(slen[s] for s in true_path))
+        index = {o.t: i for i, o in enumerate(obs)}
+        lo = drive.truth[obs[0].truth_index].path_index
+        tp = TruePath(drive.path, slen)
+        final = run.matches[v].final
+        ok = [f is not None and tp.near(f.segment, drive.truth[o.truth_index].path_pos_m,
+                                         acc.TOL_M) for f, o in zip(final, obs, strict=True)]
+        pieces: list[tuple[int, list[int]]] = []
+        kind_of: dict[int, str] = {}
+        starts: set[int] = set()
+        breaks: set[int] = set()
+        last_seg = -1
+        for rec in by_vehicle.get(v, []):
+            path = [lookup[(p["way"], p["from_node"], p["to_node"])] for p in rec["path"]]
+            marks = [(index[f["time"]], lookup[(f["way"], f["from_node"], f["to_node"])])
+                     for f in rec["fixes"] if f["time"] in index]
+            if not marks or not path:
+                continue
+            kind = kinds.get((v, rec["fixes"][0]["time"]), "agreed")
+            for i, _ in marks:
+                kind_of[i] = kind
+            starts.add(marks[0][0])
+            got = pieces_at_marks(path, marks)
+            if got and got[0][0] == -1:
+                # the join: on the gap before this commit's first fix
+                got[0] = (marks[0][0] - 1, got[0][1])
+            elif last_seg >= 0 and path[0] != last_seg and \
+                    int(network.seg_to[last_seg]) != int(network.seg_from[path[0]]):
+                breaks.add(marks[0][0])
+            pieces.extend(got)
+            last_seg = path[-1]
+        keys = sorted(kind_of)
+        if not keys:
+            continue
+        matched = _regroup(pieces, keys)
+        pi = [drive.truth[o.truth_index].path_index - lo for o in obs]
+        truth: dict[int, list[int]] = {}
+        if pi[keys[0]] > 0:
+            truth[-1] = list(true_path[:pi[keys[0]]])
+        for a, b in itertools.pairwise([*keys, len(obs)]):
+            end = pi[b] if b < len(obs) else len(true_path)
+            truth[a] = list(true_path[pi[a]:end])
+        marks_o = [(i, s) for i, s in enumerate(point_segs)]
+        ref = _regroup(pieces_at_marks(point_path, marks_o), keys)
+        # fix by fix against the oracle
+        for i in keys:
+            fix_n += 1
+            f = final[i]
+            # the same segment, or the next one across a vertex (a fix at the vertex)
+            fix_same += f is not None and (
+                f.segment == point_segs[i]
+                or int(network.seg_to[f.segment]) == int(network.seg_from[point_segs[i]])
+                or int(network.seg_to[point_segs[i]]) == int(network.seg_from[f.segment]))
+        split = mismatch_by_gap(truth, matched)
+        nxt = dict(itertools.pairwise(keys))
+        episodes: list[list[tuple[int, float, float]]] = []
+        for a in sorted(split):
+            added, missed = split[a]
+            gap_n += 1
+            gap_same += matched.get(a, []) == ref.get(a, [])
+            add_m = float(sum(slen[s] * n for s, n in added.items()))
+            mis_m = float(sum(slen[s] * n for s, n in missed.items()))
+            if add_m + mis_m <= 0.0:
+                continue
+            if episodes and nxt.get(episodes[-1][-1][0]) == a:
+                episodes[-1].append((a, add_m, mis_m))
+            else:
+                episodes.append([(a, add_m, mis_m)])
+        for ep in episodes:
+            gaps_in = [g[0] for g in ep]
+            a, b = gaps_in[0], nxt.get(gaps_in[-1])
+            fixes = [i for i in [*gaps_in, b] if i is not None and i >= 0]
+            piece = [x for g in gaps_in for x in matched.get(g, [])]
+            driven = [x for g in gaps_in for x in truth.get(g, [])]
+            best = [x for g in gaps_in for x in ref.get(g, [])]
+            add_m = sum(g[1] for g in ep)
+            mis_m = sum(g[2] for g in ep)
+            wrong = [i for i in fixes if not ok[i]]
+            if a == -1 or (a == keys[0] and a in wrong):
+                cause = "start"
+            elif b is None or (b == keys[-1] and b in wrong):
+                cause = "end"
+            elif any(nxt.get(g) in breaks for g in gaps_in):
+                cause = "break"
+            elif _mismatch_m(driven, best, slen) >= 0.8 * (add_m + mis_m):
+                cause = "as_oracle"
+            elif mis_m > add_m and len(set(visits := _vertices(network, driven))) < len(visits):
+                cause = "laps"
+            elif not wrong:
+                pairs = set(itertools.pairwise(driven))
+                turns = any(int(twin[x]) == y and (x, y) not in pairs
+                            for x, y in itertools.pairwise(piece))
+                long = sum(slen[x] for x in piece) > 20.0 + max(
+                    sum(slen[x] for x in driven), sum(slen[x] for x in best))
+                if turns:
+                    cause = "bridge_uturn"
+                elif long or (len(set(piece)) < len(piece)
+                              and len(set(driven)) == len(driven)):
+                    cause = "bridge_loop"
+                else:
+                    cause = "bridge_other"
+            elif any(kind_of.get(i) == "forced" for i in wrong):
+                cause = "fix_forced"
+            elif any(final[i] is not None and int(twin[final[i].segment]) >= 0 and
+                     tp.near(int(twin[final[i].segment]),
+                             drive.truth[obs[i].truth_index].path_pos_m, acc.TOL_M)
+                     for i in wrong):
+                cause = "fix_twin"
+            else:
+                cause = "fix_other"
+            if detail is not None:
+                detail.append({"vehicle": v, "gaps": gaps_in, "b": b, "cause": cause,
+                               "added_m": add_m, "missed_m": mis_m, "wrong": wrong,
+                               "kind": [kind_of.get(i) for i in fixes],
+                               "final": [final[i].segment if final[i] is not None else None
+                                         for i in fixes],
+                               "true_seg": [int(drive.path[drive.truth[obs[i].truth_index]
+                                                           .path_index]) for i in fixes],
+                               "piece": piece, "truth": driven, "oracle": best,
+                               "added": sorted(x for g in gaps_in
+                                               for x in split[g][0].elements()),
+                               "missed": sorted(x for g in gaps_in
+                                                for x in split[g][1].elements())})
+            row = table[cause]
+            row["added_m"] += add_m
+            row["missed_m"] += mis_m
+            row["gaps"] += 1
+            row["join_m" if any(nxt.get(g) in starts for g in gaps_in) else "inside_m"] += \
+                add_m + mis_m
+    forced = sum(k == "forced" for k in kinds.values())
+    return {"true_km": total / 1000.0, "by_cause": table,
+            "fixes_as_oracle": fix_same / fix_n if fix_n else math.nan,
+            "gaps_as_oracle": gap_same / gap_n if gap_n else math.nan,
+            "commits": len(kinds), "forced_commits": forced}
+
+
 def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
     xs = meta["detours"]
     lines = [
@@ -278,6 +536,27 @@ def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
         for r in split:
             lines.append(f"| {r['extract']} | {r['interval_s']} | " + " | ".join(
                 f"{100 * r['livematch_vs_point_oracle'][k]:.2f}" for k in keys) + " |")
+    with_causes = [r for r in rows if "causes" in r]
+    if with_causes:
+        lines += ["", "livematch's route mismatch by cause (see `causes()`), % of the true "
+                  "length (added + missed; episodes, runs of gaps with a mismatch, in "
+                  "brackets); join: the part on episodes with a gap that ends where a commit "
+                  "begins. As oracle: fixes / gaps "
+                  "where livematch's final segment is the point oracle's or next to it across "
+                  "a vertex / where its piece equals the oracle's.", "",
+                  "| extract | interval s | " + " | ".join(CAUSES) + " | join | forced "
+                  "commits | as oracle |",
+                  "|---|---:|" + "---:|" * (len(CAUSES) + 3)]
+        for r in with_causes:
+            c = r["causes"]
+            km = c["true_km"] * 1000.0
+            parts = [c["by_cause"][k] for k in CAUSES]
+            cells = " | ".join(f"{100 * (p['added_m'] + p['missed_m']) / km:.2f} ({p['gaps']})"
+                               for p in parts)
+            join = sum(v["join_m"] for v in c["by_cause"].values())
+            lines.append(f"| {r['extract']} | {r['interval_s']} | {cells} | "
+                         f"{100 * join / km:.2f} | {c['forced_commits']} / {c['commits']} | "
+                         f"{c['fixes_as_oracle']:.4f} / {c['gaps_as_oracle']:.4f} |")
     return "\n".join(lines) + "\n"
 
 
@@ -293,6 +572,12 @@ def main(argv: list[str] | None = None) -> int:
                     help="detour thresholds x (fractions of the least-cost length)")
     ap.add_argument("--livematch", choices=("inproc", "skip"), default="inproc")
     ap.add_argument("--matcher", action="append", default=[], metavar="KEY=VALUE")
+    ap.add_argument("--causes", action="store_true",
+                    help="also put livematch's route mismatch on the gaps between its "
+                         "committed fixes, by cause (see causes())")
+    ap.add_argument("--no-point", action="store_true",
+                    help="skip the point oracle (slow at 1 s): the directed oracle's path "
+                         "stands in for it")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     ap.add_argument("--tag", default="", help="result files oracle.TAG.md/.json")
     args = ap.parse_args(argv)
@@ -313,7 +598,8 @@ def main(argv: list[str] | None = None) -> int:
         for k in intervals:
             fleet = [(d, observe(d, k)) for d in drives]
             row = {"extract": name, "interval_s": k,
-                   **measure(network, fleet, detours, args.livematch == "inproc", matcher)}
+                   **measure(network, fleet, detours, args.livematch == "inproc", matcher,
+                                  not args.no_point, args.causes)}
             rows.append(row)
             print(json.dumps(row), file=sys.stderr)
     command = "bench/oracle.py " + " ".join(argv if argv is not None else sys.argv[1:])

@@ -341,6 +341,19 @@ class MatchSettings:
             stand reported at V where the vehicle stood at W); at 10 m the random walk
             and a test-extract trips cell lose fixes (docs/measured.md "Session 13
             (fleet1)"). For fleets that turn round at stops, 5.
+        break_rejoin: where a commit cannot be joined to the last committed point (no
+            route within the speed bound and ``join_detour``), and the tree committing
+            it has its own answer for that same last fix, the committed path goes on
+            from that answer by the tree's own route into the commit's first fix,
+            instead of starting afresh at the first fix's segment. The published path
+            still jumps there (from the last committed segment back to the tree's), but
+            the route the tree matched between the two fixes is no longer left out.
+            Why: at a break the route between the two fixes is lost from the committed
+            path even where the tree that goes on matched it (in the case looked at,
+            the last stretch ended 13 m into a branch not taken and the join round to
+            the next commit was over ``join_detour``; docs/measured.md "Session 13
+            (rmf5)"). Only the committed path changes (and a commit that now goes on
+            no longer moves its first fix from a segment's very end to the next one).
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -383,6 +396,7 @@ class MatchSettings:
     live_keep_stand_s: float = 0.0
     motion_step: bool = False
     stand_short_m: float = 0.0
+    break_rejoin: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -416,7 +430,7 @@ class MatchSettings:
                      "pace_reach", "stand_loops", "stand_commit_wait", "sparse_stand_wait",
                      "stand_loops_outer", "vertex_in_segment", "reverse_turns",
                      "reverse_turns_near", "lone_reverse_turns", "hold_filtered",
-                     "stand_at_vertex", "motion_step"):
+                     "stand_at_vertex", "motion_step", "break_rejoin"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

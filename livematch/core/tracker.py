@@ -1627,7 +1627,11 @@ class Tracker:
         else:
             route = connect(view, last[0], last[1], first.seg, first.pos,
                             self._join_limit_to(last, first))
-            if route is None:
+            if route is None and self.settings.break_rejoin and before is not None \
+                    and before.seq == last[2]:
+                # no join: go on from this tree's own answer for the last committed fix
+                path.extend(_steps(before.seg, first) or [first.seg])
+            elif route is None:
                 starts = True
                 path.append(first.seg)  # a break: the vehicle left the network or jumped
             else:

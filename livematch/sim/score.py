@@ -384,3 +384,83 @@ def point_oracle(
     for route in routes:
         oracle.extend(route[1:])
     return oracle, segs
+
+
+def pieces_at_marks(path: Sequence[int],
+                    marks: Sequence[tuple[int, int]]) -> list[tuple[int, list[int]]]:
+    """Split a path at the segments of the fixes it passes, in order.
+
+    ``marks`` is ``(key, segment)`` per fix, in time order (``key`` is the caller's, e.g.
+    the fix's index). Each mark is looked for from where the one before was found,
+    forwards (the first occurrence of its segment, so two fixes on one segment share
+    its occurrence, as two fixes a few metres apart do); a mark not found is skipped. Piece
+    ``key`` runs from its mark's segment up to (not including) the next found mark's
+    segment, the last one to the end of the path; segments before the first found mark
+    come first under key ``-1`` (only when there are any). So a fix's own segment is in
+    the piece that starts at that fix, and the pieces put together are ``path``.
+
+    >>> pieces_at_marks([5, 6, 7, 8, 9], [(0, 6), (1, 8)])
+    [(-1, [5]), (0, [6, 7]), (1, [8, 9])]
+    >>> pieces_at_marks([5, 6, 5, 6], [(0, 5), (1, 5), (2, 3)])   # 3 not on the path
+    [(0, []), (1, [5, 6, 5, 6])]
+    """
+    found: list[tuple[int, int]] = []
+    at = 0
+    for key, seg in marks:
+        for q in range(at, len(path)):
+            if int(path[q]) == int(seg):
+                found.append((key, q))
+                at = q
+                break
+    out: list[tuple[int, list[int]]] = []
+    first = found[0][1] if found else len(path)
+    if first > 0:
+        out.append((-1, [int(s) for s in path[:first]]))
+    for k, (key, q) in enumerate(found):
+        end = found[k + 1][1] if k + 1 < len(found) else len(path)
+        out.append((key, [int(s) for s in path[q:end]]))
+    return out
+
+
+def mismatch_by_gap(
+    truth: dict[int, list[int]], matched: dict[int, list[int]]
+) -> dict[int, tuple[Counter[int], Counter[int]]]:
+    """Put the route mismatch of a whole drive on the gaps between fixes.
+
+    ``truth`` and ``matched`` give, per gap key, the segments driven and the segments
+    matched there. The measure (:func:`route_mismatch_fraction`) compares the whole
+    paths as multisets: a segment added is one the matched path has more often than the
+    true path, over the whole drive. Each added occurrence is put on a gap whose own
+    matched count of that segment exceeds its own true count (there are always enough:
+    the excess over the drive is at most the sum of the gaps' excesses), missed ones
+    alike; so the gaps' added and missed lengths add up to the measure's. What a gap has
+    in excess that another gap makes up (a segment matched one gap early) is on no gap.
+
+    Returns ``{key: (added, missed)}`` with every key of either input.
+
+    >>> got = mismatch_by_gap({0: [1, 2], 1: [3]}, {0: [1], 1: [2, 4]})
+    >>> {k: (sorted(a.elements()), sorted(m.elements())) for k, (a, m) in got.items()}
+    {0: ([], []), 1: ([4], [3])}
+    """
+    keys = sorted(set(truth) | set(matched))
+    tc = {k: Counter(truth.get(k, ())) for k in keys}
+    mc = {k: Counter(matched.get(k, ())) for k in keys}
+    t_all: Counter[int] = Counter()
+    m_all: Counter[int] = Counter()
+    for k in keys:
+        t_all.update(tc[k])
+        m_all.update(mc[k])
+    out: dict[int, tuple[Counter[int], Counter[int]]] = {k: (Counter(), Counter())
+                                                         for k in keys}
+    for side, mine, other, total, ref in ((0, mc, tc, m_all, t_all), (1, tc, mc, t_all, m_all)):
+        for s, n in total.items():
+            left = n - ref[s]
+            for k in keys:
+                if left <= 0:
+                    break
+                extra = mine[k][s] - other[k][s]
+                if extra > 0:
+                    take = min(extra, left)
+                    out[k][side][s] += take
+                    left -= take
+    return out
