@@ -1380,16 +1380,19 @@ class Tracker:
         ``last_seg`` (the best row's own segment), except with ``lone_reverse_turns``
         alone (``reverse_turns`` and ``reverse_turns_near`` off) when the newest live
         answer (``said``, kept with ``hold_filtered``) is ``prev``'s: then that answer's
-        segment. The two differ where the best row sits at the very start of its
-        segment: ``vertex_in_segment`` then reports the answer at the end of the segment
-        its path came in by, the same junction. Searched on from the row's own segment,
-        the dead-end check sees only the one branch the row happens to lie on; searched
-        on from the segment driven into the junction, it sees every way on from there
-        but back. Why: on bench/accuracy.py's random walk (test extract, seed 31, 30 s,
-        drive sim-058) the walk went into a 50 m dead-end spur and back between two
-        fixes, the reversing fix's best row lay at the start of another road leaving
-        that junction, and the turn the rule opened there added 17.5 m of road never
-        driven (docs/measured.md, "Session 13 (spur058)").
+        segment. The two differ where the answer is held at a junction
+        (``junction_hold``: the candidates split there, the branch taken is not known,
+        so the answer stays at the end of the road they came in by) or reported there
+        (``vertex_in_segment``: the best row at the very start of its segment). Searched
+        on from the best row's own segment, the dead-end check sees only the branch that
+        row happens to lie on; searched on from the answer at the junction, it sees
+        every way on from there but back, as the vehicle could have taken any. Why: on
+        bench/accuracy.py's random walk (test extract, seed 31, 30 s, drive sim-058)
+        the walk went into a 50 m dead-end spur and back between two fixes, the
+        reversing fix's best row lay just past the start of another road leaving that
+        junction while its answer was held at the junction, and the turn the rule
+        opened on that road added 17.5 m never driven (docs/measured.md, "Session 13
+        (spur058)").
         """
         s = self.settings
         said = self.said
@@ -1426,7 +1429,7 @@ class Tracker:
 
         For ``MatchSettings.reverse_turns``, asked once :meth:`_turned_round` said the
         fixes went back at ``prev``. From ``prev``'s position on its live answer's
-        segment (``last_seg``), heading on without turning back, is there a dead end the
+        segment (:meth:`_said_segment`), heading on without turning back, is there a dead end the
         vehicle could have driven to and back from in the step: within half of the route
         it could have driven in ``dt`` (at ``REVERSE_PACE`` times ``came_speed``, the pace
         of the step into ``prev``, and at least ``REVERSE_FLOOR_MPS``) less the step's
