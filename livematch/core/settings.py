@@ -243,9 +243,17 @@ class MatchSettings:
             minutes apart; a vehicle whose fixes reverse again within minutes is
             circling or looping round blocks and dead ends, where the turn at the
             reversing fix is the cheaper route never driven (the random walk's loss
-            under ``reverse_turns_near``). No effect with ``reverse_turns`` or
-            ``reverse_turns_near`` on. Off by default (docs/measured.md, "Session 12
-            (sparse30)").
+            under ``reverse_turns_near``). And only when the mean speed of the two steps
+            round the reversing fix is at most ``REVERSE_TURN_MPS`` (7.5 m/s; :meth:`livematch.
+            core.tracker.Tracker._slow_reversal`): a vehicle slows or stops to turn round,
+            while an outlier fix also makes the fixes reverse, with two long, fast steps,
+            and a turn at it kept the outlier (docs/measured.md, "Session 13
+            (sparse30b)"). No effect with ``reverse_turns`` or ``reverse_turns_near`` on.
+            The dead-end check then searches on from the live answer (held at a junction
+            or not), so a dead-end spur off the junction where the answer sits counts
+            (:meth:`livematch.core.tracker.Tracker._said_segment`). On by default: on
+            bench/matcher_ab.py's decision runs it gains or leaves every cell unchanged
+            (docs/measured.md, "Session 13 (spur058)").
         hold_filtered: a fix the filters refuse (``impossible_jump``, ``low_accuracy``)
             gets a live answer too: the newest live answer again, at the refused fix's
             time, with its certificate, while that answer is at most ``gap_s`` old
@@ -389,7 +397,7 @@ class MatchSettings:
     vertex_in_segment: bool = True
     reverse_turns: bool = False
     reverse_turns_near: bool = False
-    lone_reverse_turns: bool = False
+    lone_reverse_turns: bool = True
     hold_filtered: bool = True
     stand_at_vertex: bool = True
     live_keep: float = 0.0

@@ -1374,6 +1374,35 @@ class Tracker:
             return False
         return (came_speed + self.speed) / 2.0 <= REVERSE_TURN_MPS
 
+    def _said_segment(self, prev: tuple[float, float, float] | None) -> int:
+        """The segment :meth:`_dead_end_ahead` searches on from for the fix ``prev``.
+
+        ``last_seg`` (the best row's own segment), except with ``lone_reverse_turns``
+        alone (``reverse_turns`` and ``reverse_turns_near`` off) when the newest live
+        answer (``said``, kept with ``hold_filtered``) is ``prev``'s: then that answer's
+        segment. The two differ where the answer is held at a junction
+        (``junction_hold``: the candidates split there, the branch taken is not known,
+        so the answer stays at the end of the road they came in by) or reported there
+        (``vertex_in_segment``: the best row at the very start of its segment). Searched
+        on from the best row's own segment, the dead-end check sees only the branch that
+        row happens to lie on; searched on from the answer at the junction, it sees
+        every way on from there but back, as the vehicle could have taken any. Why: on
+        bench/accuracy.py's random walk (test extract, seed 31, 30 s, drive sim-058)
+        the walk went into a 50 m dead-end spur and back between two fixes, the
+        reversing fix's best row lay just past the start of another road leaving that
+        junction while its answer was held at the junction, and the turn the rule
+        opened on that road added 17.5 m never driven (docs/measured.md, "Session 13
+        (spur058)").
+        """
+        s = self.settings
+        said = self.said
+        if (prev is None or said is None or not s.lone_reverse_turns
+                or s.reverse_turns or s.reverse_turns_near):
+            return self.last_seg
+        said_t, seg = (_SAID.unpack(said) if isinstance(said, bytes)
+                       else _said_fields(said))[:2]
+        return int(seg) if said_t == prev[0] else self.last_seg
+
     def _logged_step_dir(self) -> float | None:
         """``step_dir`` as the last two accepted fixes in the fix log give it, or None.
 
@@ -1400,7 +1429,7 @@ class Tracker:
 
         For ``MatchSettings.reverse_turns``, asked once :meth:`_turned_round` said the
         fixes went back at ``prev``. From ``prev``'s position on its live answer's
-        segment (``last_seg``), heading on without turning back, is there a dead end the
+        segment (:meth:`_said_segment`), heading on without turning back, is there a dead end the
         vehicle could have driven to and back from in the step: within half of the route
         it could have driven in ``dt`` (at ``REVERSE_PACE`` times ``came_speed``, the pace
         of the step into ``prev``, and at least ``REVERSE_FLOOR_MPS``) less the step's
@@ -1414,7 +1443,7 @@ class Tracker:
         (sparse30)"). A van that dwelt at a plain point of a road further from a dead
         end than that keeps its turn in the street.
         """
-        seg = self.last_seg
+        seg = self._said_segment(prev)
         if prev is None or came_speed is None or seg < 0:
             return False
         chord = math.hypot(fix.x - prev[1], fix.y - prev[2])
