@@ -396,6 +396,20 @@ def random_fences(rng: np.random.Generator, count: int, spread: float,
     return fences
 
 
+def odd_fences(rng: np.random.Generator) -> list[Fence]:
+    """Random discs and rotated boxes, a polygon with a hole, a multipolygon, a bow tie
+    (invalid: left to shapely) and a 3000-vertex disc (beyond the compiled test's size)."""
+    fences = random_fences(rng, 30, 1500.0, (30.0, 300.0), (30.0, 400.0))
+    ring = shapely.box(-300.0, -300.0, 300.0, 300.0)
+    fences.append(Fence("hole", ring.difference(shapely.box(-100.0, -100.0, 100.0, 100.0))))
+    fences.append(Fence("multi", shapely.MultiPolygon([
+        shapely.box(500.0, 500.0, 700.0, 700.0), shapely.box(720.0, 500.0, 900.0, 640.0)])))
+    fences.append(Fence("bowtie", shapely.Polygon([(-900.0, -900.0), (-600.0, -600.0),
+                                                   (-600.0, -900.0), (-900.0, -600.0)])))
+    fences.append(Fence("dense", shapely.Point(-500.0, 500.0).buffer(250.0, 750)))
+    return fences
+
+
 def test_fence_set_near_equals_strtree_query() -> None:
     """The fence grid finds exactly the fences shapely's STRtree ``intersects`` finds.
 
@@ -465,15 +479,8 @@ def test_fence_probe_equals_shapely_on_edges_vertices_and_holes() -> None:
     from livematch.core.monitors import _fence_kernel as fk
 
     rng = np.random.default_rng(21)
-    fences = random_fences(rng, 30, 1500.0, (30.0, 300.0), (30.0, 400.0))
-    ring = shapely.box(-300.0, -300.0, 300.0, 300.0)
-    fences.append(Fence("square", shapely.box(100.0, 100.0, 400.0, 250.0)))
-    fences.append(Fence("hole", ring.difference(shapely.box(-100.0, -100.0, 100.0, 100.0))))
-    fences.append(Fence("multi", shapely.MultiPolygon([
-        shapely.box(500.0, 500.0, 700.0, 700.0), shapely.box(720.0, 500.0, 900.0, 640.0)])))
-    fences.append(Fence("bowtie", shapely.Polygon([(-900.0, -900.0), (-600.0, -600.0),
-                                                   (-600.0, -900.0), (-900.0, -600.0)])))
-    fences.append(Fence("dense", shapely.Point(-500.0, 500.0).buffer(250.0, 750)))
+    fences = odd_fences(rng)  # 30 random shapes, then the odd ones; a square among them
+    fences.insert(30, Fence("square", shapely.box(100.0, 100.0, 400.0, 250.0)))
     fences.append(Fence("county", shapely.box(-40000.0, -40000.0, 40000.0, 40000.0)))
     for settings in (AlertSettings(), AlertSettings(fence_inner_m=0.0, fence_outer_m=0.0)):
         fs = FenceSet(fences, settings)

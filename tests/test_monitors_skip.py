@@ -12,7 +12,7 @@ import math
 
 import numpy as np
 import shapely
-from test_monitors import fix, random_fences
+from test_monitors import fix, odd_fences, random_fences
 
 from livematch.core.monitors import (
     AlertSettings,
@@ -22,20 +22,6 @@ from livematch.core.monitors import (
     VehicleAlerts,
 )
 from livematch.core.monitors import _fence_kernel as fk
-
-
-def odd_fences(rng: np.random.Generator) -> list[Fence]:
-    """Random discs and rotated boxes, a polygon with a hole, a multipolygon, a bow tie
-    (invalid: left to shapely) and a 3000-vertex disc (beyond the compiled test's size)."""
-    fences = random_fences(rng, 30, 1500.0, (30.0, 300.0), (30.0, 400.0))
-    ring = shapely.box(-300.0, -300.0, 300.0, 300.0)
-    fences.append(Fence("hole", ring.difference(shapely.box(-100.0, -100.0, 100.0, 100.0))))
-    fences.append(Fence("multi", shapely.MultiPolygon([
-        shapely.box(500.0, 500.0, 700.0, 700.0), shapely.box(720.0, 500.0, 900.0, 640.0)])))
-    fences.append(Fence("bowtie", shapely.Polygon([(-900.0, -900.0), (-600.0, -600.0),
-                                                   (-600.0, -900.0), (-900.0, -600.0)])))
-    fences.append(Fence("dense", shapely.Point(-500.0, 500.0).buffer(250.0, 750)))
-    return fences
 
 
 def test_fence_clearance_is_below_shapely_distance_and_keeps_the_answer() -> None:
