@@ -414,40 +414,19 @@ class RouteMonitor:
             chain.chainf, chain.chaini, chain.split_f, chain.split_i, fa.fbuf, fa.ibuf,
             fwd.w, rev.w, eps, x0, y0, x, y, step_m)
         t = fix.t
-        if k >= 0 and bk >= 0 and not fresh and not bfresh:
-            # both windows swept (the usual fix): _Window.done of each, written out
-            fwd.k = k
-            fwd.most = most
-            fwd.best_seg = seg
-            fwd.best_pos = pos
-            fwd.fixes += 1
-            fwd.seq = seq
-            fwd.t = t
-            if len(fwd.w) > _SHRINK_LEN:
-                fwd.settle()
-            rev.k = bk
-            rev.most = bmost
-            rev.best_seg = bseg
-            rev.best_pos = bpos
-            rev.fixes += 1
-            rev.seq = seq
-            rev.t = t
-            if len(rev.w) > _SHRINK_LEN:
-                rev.settle()
+        if k >= 0:
+            fwd.done(k, fresh, most, seg, pos, seq, t)
+        else:  # an overflow: grow, then one window at a time (the scalars as an array)
+            fwd.grow(fa, k, fresh)
+            fwd.step(fa, _step_scalars(eps, x0, y0, x, y, step_m), seq, t)
+        if bk >= 0:
+            rev.done(bk, bfresh, bmost, bseg, bpos, seq, t)
         else:
-            if k >= 0:
-                fwd.done(k, fresh, most, seg, pos, seq, t)
-            else:  # an overflow: grow, then one window at a time (the scalars as an array)
-                fwd.grow(fa, k, fresh)
-                fwd.step(fa, _step_scalars(eps, x0, y0, x, y, step_m), seq, t)
             ba = chain.backward_arrays
-            if bk >= 0:
-                rev.done(bk, bfresh, bmost, bseg, bpos, seq, t)
-            else:
-                rev.grow(ba, bk, bfresh)
-                rev.step(ba, _step_scalars(eps, x0, y0, x, y, step_m), seq, t)
-            if k < 0 or bk < 0:
-                chain.share_scratch()  # one of them grew: both sweep in the larger again
+            rev.grow(ba, bk, bfresh)
+            rev.step(ba, _step_scalars(eps, x0, y0, x, y, step_m), seq, t)
+        if k < 0 or bk < 0:
+            chain.share_scratch()  # one of them grew: both sweep in the larger again
         self.trail_m += step_m  # reset at every on-route fix (the anchor)
         alerts: list[Alert] = []
         if fwd.k > 0:  # fwd.live
