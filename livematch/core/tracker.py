@@ -82,6 +82,7 @@ from collections.abc import Callable, Iterator
 
 import numpy as np
 
+from livematch.core._direct import Direct
 from livematch.core._tree_kernel import K_SEG, ROW_F, ROW_I, cut_and_check, tree_sweep
 from livematch.core._tree_kernel import live_answer as tree_live_answer
 from livematch.core.candidates import DIED, CandidateTree
@@ -249,6 +250,12 @@ class Level:
 # commit points answered by the levels' steps of one fix: level -> (the tree asked,
 # next_commit, newest, row) (Tracker._advance_levels, read by Tracker._settle)
 _Tops = dict[Level, tuple[CandidateTree, int, int, int]]
+
+# the compiled calls the tracker makes on every fix (the tree step, the live answer, the
+# commit check), at their compiled code: the argument types never change, so the
+# dispatcher's per-call type look-up is skipped (livematch.core._direct)
+_CALLS = Direct(tree_sweep=tree_sweep, live_answer=tree_live_answer,
+                cut_and_check=cut_and_check)
 
 class Tracker:
     """Online map matching of one vehicle.
@@ -610,7 +617,7 @@ class Tracker:
         t = fix.t
         # CandidateTree.step, its compiled call made here (a Python call fewer per
         # level); the kernel's buffers are read again after a step that grew them
-        sweep = tree_sweep
+        sweep = _CALLS.tree_sweep
         netf, neti, fbuf, ibuf = arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf
         for level in self.levels:
             tree = level.tree
@@ -811,7 +818,7 @@ class Tracker:
             rho = math.exp(-dt / s.error_tau_s)
             margin /= math.sqrt(1.0 - rho * rho)
         # (CandidateTree.live_answer's compiled call, made here: a Python call fewer)
-        best, split = tree_live_answer(
+        best, split = _CALLS.live_answer(
             sweep_arrays(self._view).seg_geo, tree.ti, tree.tf, self.last_seg, self.fix_xy,
             self.fix_n, self.fix_seq0, self.next_commit - 1,
             1.0 / (2.0 * s.sigma_m * s.sigma_m), 1.0 / s.error_tau_s if scored else 0.0,
@@ -1200,10 +1207,10 @@ class Tracker:
                     # (the same answer), so _trim makes no call for this level
                     # (CandidateTree.commit_point's compiled call, made here: a Python
                     # call fewer, up to three a commit)
-                    top = cut_and_check(tree.ti, self.next_commit, newest, True)
+                    top = _CALLS.cut_and_check(tree.ti, self.next_commit, newest, True)
                     level.cut = self.next_commit - 1
                 else:
-                    top = cut_and_check(tree.ti, self.next_commit, newest, False)
+                    top = _CALLS.cut_and_check(tree.ti, self.next_commit, newest, False)
                 if top < 0:
                     continue
                 # (both checks read no state a commit changes: the stand's once a fix,

@@ -1,0 +1,105 @@
+"""Compiled kernels called straight at their compiled code, past numba's per-call type look-up.
+
+A call through a numba dispatcher works out the types of all its arguments on every call
+and looks the compiled version up by them; only then are the arguments unboxed and the
+machine code run. The tracker calls the same kernels with the same argument types on
+every fix (the tree step three times a fix, the live answer, the commit check), so that
+look-up is repeated work: on an 11-argument call about 0.4-0.7 µs of some 1.4-1.8
+(a throwaway loop over an empty 11-argument kernel, this machine, loaded).
+
+:class:`Direct` holds, per kernel, the compiled version's own entry point
+(``Dispatcher.compile(signature)`` answers it, compiling or loading numba's disk cache
+when needed): the same machine code the dispatcher would run, with the same unboxing of
+each argument. The signature is fixed once, at the first call: array arguments by their
+own numba type (dtype, dimensions, layout), numbers by the kernel's annotations
+(``int`` -> int64, ``float`` -> float64, ``bool`` -> boolean): an int passed for a
+``float`` parameter is converted, as the dispatcher's float64 version would convert it
+(a float passed for an ``int`` parameter would be truncated: the callers pass none).
+
+The entry point checks no types: a caller must pass arrays of the same dtype, number of
+dimensions and layout on every call (the tracker's arrays are all made by numpy with
+fixed dtypes, contiguous and writable: :func:`resolved` refuses a first call that is
+not, and the dispatcher then stays in use). Pure: no I/O; the one piece of state is the
+cache of resolved entry points, which changes no result.
+"""
+
+from __future__ import annotations
+
+import inspect
+from collections.abc import Callable
+from typing import Any
+
+import numba
+import numpy as np
+
+#: numba scalar types for the annotations the kernels use on their number arguments
+_SCALARS = {"int": numba.types.int64, "float": numba.types.float64,
+            "bool": numba.types.boolean}
+
+
+def signature(dispatcher: Any, args: tuple[Any, ...]) -> tuple[Any, ...] | None:
+    """The numba signature :class:`Direct` fixes for ``dispatcher`` called with ``args``.
+
+    None when a call with these arguments must keep going through the dispatcher: an
+    array that is not C-contiguous and writable, a number whose parameter has no
+    ``int`` / ``float`` / ``bool`` annotation, or another kind of argument.
+    """
+    params = list(inspect.signature(dispatcher.py_func).parameters.values())
+    if len(params) != len(args):
+        return None
+    sig: list[Any] = []
+    for p, a in zip(params, args, strict=True):
+        if isinstance(a, np.ndarray):
+            if not (a.flags.c_contiguous and a.flags.writeable):
+                return None
+            sig.append(numba.typeof(a))
+        elif isinstance(a, bool | int | float):
+            ann = p.annotation
+            kind = _SCALARS.get(ann if isinstance(ann, str) else getattr(ann, "__name__", ""))
+            if kind is None:
+                return None
+            sig.append(kind)
+        else:
+            return None
+    return tuple(sig)
+
+
+def resolved(dispatcher: Any, args: tuple[Any, ...]) -> Callable[..., Any] | None:
+    """The entry point of ``dispatcher``'s compiled version for ``args``' types, or None.
+
+    Compiles (or loads from numba's disk cache) that version if the dispatcher has not
+    got it yet. None when :func:`signature` refuses the arguments.
+    """
+    sig = signature(dispatcher, args)
+    if sig is None:
+        return None
+    entry: Callable[..., Any] = dispatcher.compile(sig)
+    return entry
+
+
+class Direct:
+    """Kernels by name, each called through the dispatcher once, then at its entry point.
+
+    ``Direct(tree_sweep=tree_sweep)``: ``calls.tree_sweep(...)`` makes the first call
+    through a resolver that fixes the signature (:func:`resolved`), replaces the
+    attribute by the entry point and calls it; later calls go straight there. A first
+    call whose arguments :func:`signature` refuses goes through the dispatcher, and the
+    next call tries again.
+    """
+
+    def __init__(self, **kernels: Any) -> None:
+        for name, dispatcher in kernels.items():
+            setattr(self, name, self._resolver(name, dispatcher))
+
+    def _resolver(self, name: str, dispatcher: Any) -> Callable[..., Any]:
+        def first(*args: Any) -> Any:
+            entry = resolved(dispatcher, args)
+            if entry is None:
+                return dispatcher(*args)
+            setattr(self, name, entry)
+            return entry(*args)
+
+        return first
+
+    def __getattr__(self, name: str) -> Any:  # (for mypy: the kernels are set at run time)
+        raise AttributeError(name)
