@@ -83,8 +83,8 @@ class Direct:
     ``Direct(tree_sweep=tree_sweep)``: ``calls.tree_sweep(...)`` makes the first call
     through a resolver that fixes the signature (:func:`resolved`), replaces the
     attribute by the entry point and calls it; later calls go straight there. A first
-    call whose arguments :func:`signature` refuses goes through the dispatcher, and the
-    next call tries again.
+    call whose arguments :func:`signature` refuses goes through the dispatcher, and so
+    do all later calls (no look-up is saved, none is repeated).
     """
 
     def __init__(self, **kernels: Any) -> None:
@@ -94,10 +94,9 @@ class Direct:
     def _resolver(self, name: str, dispatcher: Any) -> Callable[..., Any]:
         def first(*args: Any) -> Any:
             entry = resolved(dispatcher, args)
-            if entry is None:
-                return dispatcher(*args)
-            setattr(self, name, entry)
-            return entry(*args)
+            # (refused: the dispatcher from now on, which checks the types of every call)
+            setattr(self, name, dispatcher if entry is None else entry)
+            return dispatcher(*args) if entry is None else entry(*args)
 
         return first
 

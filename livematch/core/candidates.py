@@ -44,6 +44,7 @@ import numpy as np
 import numpy.typing as npt
 
 from livematch.core import _tree_kernel as _t
+from livematch.core._direct import Direct
 from livematch.core._sweep_kernel import window_best, window_step
 from livematch.core._tree_kernel import (
     F_COST,
@@ -71,6 +72,10 @@ from livematch.core._tree_kernel import (
 from livematch.core.fastsweep import SweepArrays, fast_sweep_step, sweep_arrays
 from livematch.core.sweep import Node
 from livematch.core.view import NetworkView
+
+# the compiled calls a tracker's trees make on most fixes (a step that needs new arrays,
+# a commit's chain), at their compiled code (livematch.core._direct): same types always
+_CALLS = Direct(compact_append=_t.compact_append, chain_into=_t.chain_into)
 
 __all__ = ["DIED", "CandidateTree"]
 
@@ -277,8 +282,8 @@ class CandidateTree:
                 ti2 = np.empty(HEAD + ROW_I * cap + ti.item(H_CAP_VIAS), np.int32)
                 tf2 = np.empty(ROW_F * cap + _times_room(
                     ti.item(H_CAP_T), cap, ti.item(H_M), self.hi - self.lo))
-                top = _t.compact_append(ti, tf, ti2, tf2, arrays.fbuf, arrays.ibuf, seq, t,
-                                        next_commit, newest)
+                top = _CALLS.compact_append(ti, tf, ti2, tf2, arrays.fbuf, arrays.ibuf, seq,
+                                            t, next_commit, newest)
                 self.ti, self.tf = ti2, tf2
                 self._synced()
                 return top
@@ -559,7 +564,7 @@ class CandidateTree:
         network, for the matched points.
         """
         arrays = sweep_arrays(view)
-        length = _t.chain_into(self.ti, top, min_seq, arrays.chain)
+        length = _CALLS.chain_into(self.ti, top, min_seq, arrays.chain)
         if length < 0:  # the shared scratch is too short: grow it (rarely)
             arrays.chain = np.empty(2 * -length, dtype=np.int64)
             length = _t.chain_into(self.ti, top, min_seq, arrays.chain)
