@@ -1,4 +1,4 @@
-"""Kernels called at their compiled entry point (livematch.core._direct) answer as numba's dispatcher does.
+"""Kernels called at their compiled entry point (livematch.core._direct) answer as numba does.
 
 The reference here is numba's own dispatcher (the library's documented call path): the
 entry point must give the same values for the same arguments, and must not be used for

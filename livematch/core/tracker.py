@@ -83,6 +83,7 @@ from collections.abc import Callable, Iterator
 import numpy as np
 
 from livematch.core._direct import Direct
+from livematch.core._fix_kernel import all_within
 from livematch.core._tree_kernel import K_SEG, ROW_F, ROW_I, cut_and_check, tree_sweep
 from livematch.core._tree_kernel import live_answer as tree_live_answer
 from livematch.core.candidates import DIED, CandidateTree
@@ -255,7 +256,7 @@ _Tops = dict[Level, tuple[CandidateTree, int, int, int]]
 # commit check), at their compiled code: the argument types never change, so the
 # dispatcher's per-call type look-up is skipped (livematch.core._direct)
 _CALLS = Direct(tree_sweep=tree_sweep, live_answer=tree_live_answer,
-                cut_and_check=cut_and_check)
+                cut_and_check=cut_and_check, all_within=all_within)
 
 class Tracker:
     """Online map matching of one vehicle.
@@ -1150,9 +1151,9 @@ class Tracker:
                 dy = self.fix_xy.item(seq - seq0, 1) - hy
                 ok = not dx * dx + dy * dy > eps2
         else:
-            xy = self.fix_xy[since - seq0:seq - seq0 + 1]
-            d2 = (xy[:, 0] - hx) ** 2 + (xy[:, 1] - hy) ** 2
-            ok = not float(d2.max()) > eps2
+            # (every fix from since to seq within eps of the held point: one compiled
+            # loop, not numpy's operations on a few rows)
+            ok = _CALLS.all_within(self.fix_xy, since - seq0, seq - seq0 + 1, hx, hy, eps2)
         if memo is None or len(memo) >= _HELD_MEMO:
             memo = self._held = {}
         memo[key] = (seq, ok)
