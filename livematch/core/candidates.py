@@ -44,6 +44,7 @@ import numpy as np
 import numpy.typing as npt
 
 from livematch.core import _tree_kernel as _t
+from livematch.core._chain_kernel import CHAIN_F, CHAIN_I, chain_rows
 from livematch.core._direct import Direct
 from livematch.core._sweep_kernel import window_best, window_step
 from livematch.core._tree_kernel import (
@@ -75,7 +76,8 @@ from livematch.core.view import NetworkView
 
 # the compiled calls a tracker's trees make on most fixes (a step that needs new arrays,
 # a commit's chain), at their compiled code (livematch.core._direct): same types always
-_CALLS = Direct(compact_append=_t.compact_append, chain_into=_t.chain_into)
+_CALLS = Direct(compact_append=_t.compact_append, chain_into=_t.chain_into,
+                chain_rows=chain_rows)
 
 __all__ = ["DIED", "CandidateTree"]
 
@@ -564,18 +566,54 @@ class CandidateTree:
         network, for the matched points.
         """
         arrays = sweep_arrays(view)
+        ti = self.ti
+        # the rows and their fields in one compiled call (livematch.core._chain_kernel):
+        # ints into the chain scratch, floats into the kernel's float buffer (free scratch
+        # between steps: a step's output is appended before anyone asks for a chain)
+        n = _CALLS.chain_rows(ti, self.tf, arrays.seg_geo, top, min_seq, arrays.chain,
+                              arrays.fbuf)
+        if n < 0 and CHAIN_I * -n > len(arrays.chain):  # the int scratch is too short
+            arrays.chain = np.empty(2 * CHAIN_I * -n, dtype=np.int64)
+            n = _CALLS.chain_rows(ti, self.tf, arrays.seg_geo, top, min_seq, arrays.chain,
+                                  arrays.fbuf)
+        if n >= 0:
+            ints = arrays.chain[:CHAIN_I * n + CHAIN_I].tolist()
+            fl = arrays.fbuf[:CHAIN_F * n + CHAIN_F].tolist()
+            parent = None
+            b = CHAIN_I * n
+            if ints[b] >= 0:
+                f = CHAIN_F * n
+                v0 = ints[b + 3]
+                v1 = ints[b + 4]
+                parent = Node(ints[b + 1], ints[b + 2], fl[f], fl[f + 1], fl[f + 2],
+                              fl[f + 3], None, tuple(ti[v0:v1].tolist()) if v1 > v0 else (),
+                              fl[f + 4], fl[f + 5])
+            before = parent
+            chain: list[Node] = []
+            for j in range(n):
+                b = CHAIN_I * j
+                f = CHAIN_F * j
+                v0 = ints[b + 3]
+                v1 = ints[b + 4]
+                parent = Node(ints[b + 1], ints[b + 2], fl[f], fl[f + 1], fl[f + 2],
+                              fl[f + 3], parent,
+                              tuple(ti[v0:v1].tolist()) if v1 > v0 else (),
+                              fl[f + 4], fl[f + 5])
+                chain.append(parent)
+            return chain, before
+        # the float buffer is too short (before the first step, or a long chain): the
+        # rows' walk, then each row read from Python
         length = _CALLS.chain_into(self.ti, top, min_seq, arrays.chain)
         if length < 0:  # the shared scratch is too short: grow it (rarely)
             arrays.chain = np.empty(2 * -length, dtype=np.int64)
             length = _t.chain_into(self.ti, top, min_seq, arrays.chain)
         rows = arrays.chain[:length + 1].tolist()
-        ti = self.ti
         tf = self.tf
         cap = ti.item(H_RCAP)
         tb = ROW_F * cap - ti.item(H_T0)
         node = self._node
         before = node(view, rows[-1], None, ti, tf, cap, tb) if rows[-1] >= 0 else None
-        chain: list[Node] = []
+        chain = []
         parent = before
         for r in rows[:-1]:
             parent = node(view, r, parent, ti, tf, cap, tb)

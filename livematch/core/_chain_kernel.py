@@ -1,0 +1,110 @@
+"""A commit's chain of tree rows gathered in one compiled call (numba, CPU only).
+
+Private: :meth:`livematch.core.candidates.CandidateTree.chain` builds the nodes of a
+commit's chain from what :func:`chain_rows` writes. Before, it walked the chain in a
+compiled call and then read each row's fields from Python (two slices, a via slice, the
+fix time, four list look-ups for the matched point): about half a commit's cost of
+building its chain. Here the walk and the fields are one call; Python only makes the
+nodes.
+
+Same values bit for bit: the fields are copied, and the matched point is the
+expression :meth:`CandidateTree.point` evaluates, ``ax + pos * (bx - ax)`` (``bx -
+ax`` as the network's ``seg_geo`` holds it, the difference Python takes), in the same
+order, without fast-math (``tests/test_candidates.py`` compares chains with the
+Python path's).
+
+The tree's layout constants come from :mod:`livematch.core._sweep_kernel`: the kernel
+is made by a factory that takes that file's :func:`~livematch.core._kernel_key.code_key`
+as a closure constant, so numba's disk cache recompiles it when the layout changes.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+import numba
+import numpy as np
+
+from livematch.core import _sweep_kernel as _sk
+from livematch.core._kernel_key import code_key
+from livematch.core._sweep_kernel import (
+    F_COST,
+    F_LOW,
+    F_POS,
+    H_RCAP,
+    H_T0,
+    HEAD,
+    K_PARENT,
+    K_SEG,
+    K_SEQ,
+    K_VIAE,
+    ROW_F,
+    ROW_I,
+)
+
+#: ints written per row: row, seg, seq, and the row's vias as ``ti[v0:v1]``
+CHAIN_I = 5
+#: floats written per row: fix time, pos, matched x, y, cost, low
+CHAIN_F = 6
+
+
+def _keyed_chain_rows(sweep_key: int) -> Callable[..., int]:
+    """``chain_rows`` compiled with the sweep kernel's code key as a constant."""
+
+    @numba.njit(cache=True, error_model="numpy")
+    def chain_rows(ti: np.ndarray, tf: np.ndarray, geo: np.ndarray, top: int, min_seq: int,
+                   oi: np.ndarray, of: np.ndarray) -> int:
+        """``top``'s chain back to fix ``min_seq`` and the row before it, with their fields.
+
+        Entry ``j`` < length is the j-th row from the oldest with seq >= ``min_seq`` up to
+        ``top`` (as ``chain_into`` orders them), entry ``length`` the row before them
+        (its row -1 when there is none; its other fields then unset). Ints at ``oi[CHAIN_I
+        * j:]``: row, seg, seq, v0, v1 (the row's vias are ``ti[v0:v1]``); floats at
+        ``of[CHAIN_F * j:]``: fix time, pos, x, y, cost, low. Returns the length, or
+        ``-(length + 1)`` with nothing written when ``oi`` or ``of`` is too short.
+        """
+        if sweep_key == -1:  # never: the key only keys numba's cache
+            return 0
+        length = 0
+        cur = top
+        while cur >= 0 and ti[ROW_I * cur + K_SEQ] >= min_seq:
+            length += 1
+            cur = ti[ROW_I * cur + K_PARENT]
+        if CHAIN_I * (length + 1) > oi.shape[0] or CHAIN_F * (length + 1) > of.shape[0]:
+            return -(length + 1)
+        cap = ti[H_RCAP]
+        tb = ROW_F * cap - ti[H_T0]
+        vb = HEAD + ROW_I * cap
+        before = cur  # the row before the chain (-1: none)
+        oi[CHAIN_I * length] = before
+        cur = top
+        for j in range(length, -1, -1):
+            r = before if j == length else cur
+            if r < 0:
+                continue  # no row before: only its row (-1) is written
+            seg = ti[ROW_I * r + K_SEG]
+            seq = ti[ROW_I * r + K_SEQ]
+            v1 = ti[ROW_I * r + K_VIAE]
+            v0 = ti[ROW_I * r - ROW_I + K_VIAE] if v1 != 0 and r != 0 else 0
+            b = CHAIN_I * j
+            oi[b] = r
+            oi[b + 1] = seg
+            oi[b + 2] = seq
+            oi[b + 3] = vb + v0
+            oi[b + 4] = vb + v1
+            pos = tf[ROW_F * r + F_POS]
+            f = CHAIN_F * j
+            of[f] = tf[tb + seq]
+            of[f + 1] = pos
+            of[f + 2] = geo[seg, 0] + pos * geo[seg, 2]
+            of[f + 3] = geo[seg, 1] + pos * geo[seg, 3]
+            of[f + 4] = tf[ROW_F * r + F_COST]
+            of[f + 5] = tf[ROW_F * r + F_LOW]
+            if j < length:
+                cur = ti[ROW_I * cur + K_PARENT]
+        return length
+
+    return chain_rows
+
+
+chain_rows = _keyed_chain_rows(code_key(_sk))
