@@ -27,6 +27,7 @@ import numpy as np
 import shapely
 from shapely.geometry.base import BaseGeometry
 
+from livematch.core._direct import Direct
 from livematch.core.events import Alert
 from livematch.core.fix import Fix
 from livematch.core.monitors import _fence_kernel as _fk
@@ -69,6 +70,8 @@ class Fence:
 
 #: ``code == INSIDE`` for a probe's location codes (a C call per fence, no Python frame).
 _IS_INSIDE = _fk.INSIDE.__eq__
+# the probes, once or twice a fix, at their compiled code (livematch.core._direct)
+_CALLS = Direct(fence_probe=_fk.fence_probe, fence_probe_clear=_fk.fence_probe_clear)
 
 GRID_CELL_M = 250.0  # side of a cell of the fence grid, metres
 GRID_MAX_CELLS = 4096  # a fence covering more cells is tested at every fix instead
@@ -188,7 +191,7 @@ class FenceSet:
         >>> fs.probe(-20.0, 50.0)   # beyond the outer margin
         ([], [])
         """
-        n = _fk.fence_probe(x, y, GRID_CELL_M, self._fi, self._ff, self._out)
+        n = _CALLS.fence_probe(x, y, GRID_CELL_M, self._fi, self._ff, self._out)
         if n == 0:
             return [], []
         if n > 0:  # every answer certain
@@ -227,8 +230,8 @@ class FenceSet:
         >>> near, inner, round(r2 ** 0.5, 3)
         ([0], [True], 34.999)
         """
-        n, r = _fk.fence_probe_clear(x, y, GRID_CELL_M, self._fi, self._ff, self._out,
-                                     clear)
+        n, r = _CALLS.fence_probe_clear(x, y, GRID_CELL_M, self._fi, self._ff, self._out,
+                                        clear)
         if n == 0:
             return ([], []), r * r
         if n > 0:

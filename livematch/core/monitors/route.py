@@ -45,6 +45,7 @@ import numpy as np
 import numpy.typing as npt
 import shapely
 
+from livematch.core._direct import Direct
 from livematch.core.events import Alert
 from livematch.core.fastsweep import SweepArrays, sweep_arrays
 from livematch.core.fix import Fix
@@ -205,6 +206,8 @@ _CHAIN_SCRATCH = (64, 256, 64, 128)
 #: The window's cost weights (1 / (2 sigma^2) with sigma 5 m, 1 / beta with beta 10 m, no
 #: turn-back or motion cost; :meth:`_Window.best` breaks ties by cost).
 _WINDOW_WEIGHTS = _rk.WINDOW_WEIGHTS
+# both windows' step, once a fix, at its compiled code (livematch.core._direct)
+_CALLS = Direct(route_advance=_rk.route_advance)
 _START_ROWS = 4  # a new window's room for live states (grown when a step needs more)
 #: A window with room for more than this many states while it holds no more than half
 #: of that gives the room back (keeps this many): a fresh start beside many route
@@ -410,7 +413,7 @@ class RouteMonitor:
         fa = chain.forward_arrays
         fwd = self.fwd
         rev = self.rev
-        k, fresh, most, seg, pos, bk, bfresh, bmost, bseg, bpos = _rk.route_advance(
+        k, fresh, most, seg, pos, bk, bfresh, bmost, bseg, bpos = _CALLS.route_advance(
             chain.chainf, chain.chaini, chain.split_f, chain.split_i, fa.fbuf, fa.ibuf,
             fwd.w, rev.w, eps, x0, y0, x, y, step_m)
         t = fix.t
