@@ -766,8 +766,14 @@ class Tracker:
             # then leave room for as many rows again as are kept
             drop = min(n, max(0, self.next_commit - 1 - self.fix_seq0))
             kept = self.fix_xy[drop:n]
-            self.fix_xy = np.empty((max(8, 2 * len(kept)), 2))
-            self.fix_xy[:len(kept)] = kept
+            size = max(8, 2 * len(kept))
+            if drop and size == n:
+                # the same size again (the usual case): the kept rows moved down in place,
+                # no new array (numpy copies overlapping slices as if through a buffer)
+                self.fix_xy[:n - drop] = kept
+            else:
+                self.fix_xy = np.empty((size, 2))
+                self.fix_xy[:len(kept)] = kept
             self.fix_seq0 += drop
             n = self.fix_n = len(kept)
         self.fix_xy[n, 0] = x
