@@ -25,7 +25,6 @@ cache of resolved entry points, which changes no result.
 
 from __future__ import annotations
 
-import inspect
 from collections.abc import Callable
 from typing import Any
 
@@ -44,17 +43,20 @@ def signature(dispatcher: Any, args: tuple[Any, ...]) -> tuple[Any, ...] | None:
     array that is not C-contiguous and writable, a number whose parameter has no
     ``int`` / ``float`` / ``bool`` annotation, or another kind of argument.
     """
-    params = list(inspect.signature(dispatcher.py_func).parameters.values())
-    if len(params) != len(args):
+    func = dispatcher.py_func
+    code = func.__code__
+    if code.co_argcount != len(args):
         return None
+    names = code.co_varnames[:code.co_argcount]  # the parameters, in order
+    notes = func.__annotations__
     sig: list[Any] = []
-    for p, a in zip(params, args, strict=True):
+    for name, a in zip(names, args, strict=True):
         if isinstance(a, np.ndarray):
             if not (a.flags.c_contiguous and a.flags.writeable):
                 return None
             sig.append(numba.typeof(a))
         elif isinstance(a, bool | int | float):
-            ann = p.annotation
+            ann = notes.get(name, "")
             kind = _SCALARS.get(ann if isinstance(ann, str) else getattr(ann, "__name__", ""))
             if kind is None:
                 return None
