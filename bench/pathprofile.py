@@ -18,7 +18,8 @@ Two modes:
   order decode, route monitor, fences, records, route lookup, tracker; the rest is
   "glue": ``handle``, ``_outputs``, the monitors' dispatch, event objects). A stage's
   compiled call (the numba kernel, dispatch included) and the pyproj calls are split out
-  by the sampled line. ``--us``: a per-fix time to turn the shares into µs (e.g. the
+  by the sampled line (the tracker's: the tree steps, the live answer, the commit
+checks, a commit's chain, new arrays). ``--us``: a per-fix time to turn the shares into µs (e.g. the
   pooled figure of an idle ``bench/ab.py`` run).
 
 A sampling profile without ``--native`` charges a compiled call's time to the Python
@@ -55,9 +56,17 @@ LEAVES = [
 ]
 #: A stage's compiled call, found by its line: (stage, file, text on the line).
 CALLS = [
-    ("route monitor", "livematch/core/monitors/route.py", "_rk.route_advance("),
-    ("fences", "livematch/core/monitors/fences.py", "_fk.fence_probe("),
-    ("fences", "livematch/core/monitors/fences.py", "_fk.fence_probe_clear("),
+    ("route monitor", "livematch/core/monitors/route.py", "route_advance("),
+    ("fences", "livematch/core/monitors/fences.py", "fence_probe("),
+    ("fences", "livematch/core/monitors/fences.py", "fence_probe_clear("),
+]
+#: The tracker's compiled calls, found by their lines: (file, texts on the line). Through
+#: the dispatcher (``_t.``, the tracker's own ``sweep(`` ...) or at the entry point
+#: (``_CALLS.``, livematch.core._direct), so that both an older and a newer tree split.
+TREE_CALLS = [
+    ("livematch/core/candidates.py", ("_t.", "_CALLS.")),
+    ("livematch/core/tracker.py", ("_CALLS.", "= sweep(", "tree_live_answer(",
+                                   "cut_and_check(")),
 ]
 
 
@@ -95,7 +104,8 @@ def lines_with(path: str, text: str) -> set[int]:
 
 def split(path: str, us: float | None) -> None:
     """Print each stage's share of the samples in the timed rounds (module docstring)."""
-    tree_lines = lines_with("livematch/core/candidates.py", "_t.")
+    tree_lines = {(Path(file).name, k) for file, texts in TREE_CALLS for text in texts
+                  for k in lines_with(file, text)}
     calls = [(stage, Path(file).name, lines_with(file, text)) for stage, file, text in CALLS]
     shares: Counter[str] = Counter()
     total = 0
@@ -113,8 +123,9 @@ def split(path: str, us: float | None) -> None:
                 break
         leaf = frames[-1]
         if stage == "tracker":
-            m = re.match(r"CandidateTree\.\S+ \(.*candidates\.py:(\d+)\)$", leaf)
-            stage = ("tracker: compiled tree calls" if m and int(m.group(1)) in tree_lines
+            m = re.search(r"\(.*?([a-z_]+\.py):(\d+)\)$", leaf)
+            stage = ("tracker: compiled calls"
+                     if m and (m.group(1), int(m.group(2))) in tree_lines
                      else "tracker: Python")
         for name, pattern, renamed in LEAVES:
             if stage == name and re.search(pattern, leaf):
