@@ -19,8 +19,8 @@ Two modes:
   "glue": ``handle``, ``_outputs``, the monitors' dispatch, event objects). A stage's
   compiled call (the numba kernel, dispatch included) and the pyproj calls are split out
   by the sampled line (the tracker's: the tree steps, the live answer, the commit
-checks, a commit's chain, new arrays). ``--us``: a per-fix time to turn the shares into µs (e.g. the
-  pooled figure of an idle ``bench/ab.py`` run).
+  checks, a commit's chain, new arrays). ``--us``: a per-fix time to turn the shares
+  into µs (e.g. the pooled figure of an idle ``bench/ab.py`` run).
 
 A sampling profile without ``--native`` charges a compiled call's time to the Python
 line that makes it, which is what the split needs; it slows the Python a little less
