@@ -753,6 +753,7 @@ def warm_up() -> None:
     Example:
         >>> warm_up()  # compiles (or loads) the kernels; nothing to return
     """
+    from livematch.core._fix_kernel import all_within
     from livematch.core.build import Road, network_from_roads
     from livematch.core.fix import Fix
     from livematch.core.sweep import StepContext
@@ -796,4 +797,7 @@ def warm_up() -> None:
         np.array((15.0, 110.0, 1.0, 120.0, 1.0, 10.0, 0.02, 0.1, 0.0, 0.0)), rows,
         np.zeros(len(rows)))
     window_best(rows, driven)
+    # the held point's check (a stand hold; livematch.core._fix_kernel): the types the
+    # tracker passes
+    all_within(tracker.fix_xy, 0, tracker.fix_n, 0.0, 0.0, 1.0)
     tracker.flush()
