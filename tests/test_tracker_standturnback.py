@@ -5,6 +5,7 @@ fixes, plain data)."""
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import pytest
@@ -103,7 +104,7 @@ def test_a_stand_whose_path_goes_round_a_ring_turns_back_at_the_vertex() -> None
     assert 3 in _ways(net, old_path)  # the ring, without the rule
     assert 3 not in _ways(net, new_path)
     assert _ways(net, new_path).count(2) == 4  # the stem in and out: two segments each way
-    for a, b in zip(new_path, new_path[1:], strict=False):
+    for a, b in itertools.pairwise(new_path):
         assert int(net.seg_to[a]) == int(net.seg_from[b])  # connected
     stand = range(len(_approach()) + 1, len(_approach()) + len(_stand()))
     for i in stand:
@@ -166,7 +167,7 @@ def test_a_one_way_stem_is_never_driven_back() -> None:
     for s in new_path:
         a, b = xy[net.seg_from[s]], xy[net.seg_to[s]]
         assert not (int(net.seg_way[s]) == 2 and float(b[0]) < float(a[0]))
-    for a, b in zip(new_path, new_path[1:], strict=False):
+    for a, b in itertools.pairwise(new_path):
         assert int(net.seg_to[a]) == int(net.seg_from[b])
     for f, fx in zip(new, fixes, strict=True):
         assert shapely.Point(fx).distance(shapely.Point(f.x, f.y)) <= EPS
