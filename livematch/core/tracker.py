@@ -2080,7 +2080,11 @@ class Tracker:
         their fixes project, and the path after A unchanged. Of the vertices that
         qualify, the one nearest the mean of its stand's fixes. Not where a segment of
         ``segs[i:p]`` is one-way (no twin), nor where the chain's last node is on the
-        loop (the next commit goes on from it).
+        loop (the next commit goes on from it), nor where the loop holds or is entered
+        by a U-turn (a step back over the same two vertices by another segment, a road
+        the map draws twice, counts as one: the loop is then no ring but a turn in
+        disguise, and on the Helsinki extract the stand moved off it onto the other
+        drawing of the road).
 
         Why: a road that forms a small ring (a turning loop at the end of a street, a
         short block) gives the path a way out of a stand and back to A without a
@@ -2116,10 +2120,15 @@ class Tracker:
         sf = view.sf
         segs = [before.seg]
         owner = [-1]  # owner[m]: the chain index of the node whose step entered segs[m]
-        turns = [0]  # turns[m]: U-turns among segs[1:m + 1]
+        st = view.st
+        # turns[m]: U-turns among segs[1:m + 1]; a step back over the same two vertices
+        # by another segment (a road the map draws twice) is a U-turn too
+        turns = [0]
         for k, node in enumerate(chain):
             for seg in _steps(segs[-1], node):
-                turns.append(turns[-1] + (seg == twin[segs[-1]]))
+                last = segs[-1]
+                turns.append(turns[-1] + (seg == twin[last] or (
+                    sf[seg] == st[last] and st[seg] == sf[last])))
                 segs.append(seg)
                 owner.append(k)
         if len(segs) < 3:
