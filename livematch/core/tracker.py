@@ -2070,15 +2070,29 @@ class Tracker:
         A the start of ``segs[i]`` and the end of ``segs[j - 1]``), and inside the loop
         the vehicle stood at a vertex V of it (V the start of ``segs[p]``, i <= p < j):
         the first nodes matched at or past V (from ``segs[p]`` on) have fixes within eps
-        of V that span at least ``STAND_S`` with the node before them, come densely and
-        wander (:meth:`_wandering_run`) and stand (within ``STAND_SIGMAS`` x ``sigma_m``
-        of the run's last fix) -- then, when every later node matched on the loop has a
+        of V that span at least ``STAND_S`` by themselves, come densely and wander
+        (:meth:`_wandering_run`, with the node before them), and begin with a stand
+        (their fixes of the first ``STAND_S`` within ``STAND_SIGMAS`` x ``sigma_m`` of
+        the last of those, as :meth:`_standing` reads one: a vehicle that stands when
+        its path reaches V, not one whose path went on round the loop while its fixes,
+        on a small loop, stayed within eps of V; the fix before the run within eps of
+        V too) -- then, when every later node matched on the loop has a
         fix within eps of the way back from V to A along the twins of ``segs[i:p]``
         (met in order, never going back along it), the loop is committed as
         "``segs[i:p]``, turn round at V, back to A along their twins": the stand's fixes
         at V (the end of the segment into V), the later ones on the way back where
-        their fixes project, and the path after A unchanged. Of the vertices that
-        qualify, the one nearest the mean of its stand's fixes. Not where a segment of
+        their fixes project, and the path after A unchanged; only while the way back
+        fits those later fixes no worse than the loop did by more than one U-turn's
+        charge (the path cost's distance term, squared distance over 2 ``sigma_m``^2,
+        summed: at most ``turn_back_cost``): a vehicle that stood at V and then drove
+        on round a ring whose far side lies within eps of the near one (an oval round
+        a narrow island) keeps the ring its fixes follow. Of the vertices that
+        qualify, the one nearest the mean of its stand's fixes. And only where the way
+        back (A -> V) is no longer than the rest of the loop (V -> A) it replaces, so
+        the turn asks the vehicle to drive no farther between the stand and the fixes
+        after the loop than the loop did: a vehicle that stops at A and goes on round a
+        ring whose stand the path matched a little before A, at the far end of the
+        ring, is no turn back. Not where a segment of
         ``segs[i:p]`` is one-way (no twin), nor where the chain's last node is on the
         loop (the next commit goes on from it), nor where the loop holds or is entered
         by a U-turn (a step back over the same two vertices by another segment, a road
@@ -2139,12 +2153,13 @@ class Tracker:
                 at[k] = m
         for k in range(1, len(chain)):
             at[k] = max(at[k], at[k - 1])
-        last_pass: dict[int, int] = {}
+        # the loop may begin on the segment before the chain (segs[0], committed before)
+        last_pass: dict[int, int] = {int(sf[segs[0]]): 0}
         for j in range(1, len(segs)):
             vertex = int(sf[segs[j]])
             i = last_pass.get(vertex, -1)
             last_pass[vertex] = j
-            if i < 1 or at[-1] < j or turns[j - 1] != turns[i - 1]:
+            if i < 0 or at[-1] < j or turns[j - 1] != turns[max(i - 1, 0)]:
                 continue  # no loop, its end in the next commit, or a U-turn in or into it
             found = self._turn_in_loop(chain, before, segs, at, i, j, eps)
             if found is not None:
@@ -2166,6 +2181,7 @@ class Tracker:
         xy = self.fix_xy
         radius2 = eps * eps
         still = STAND_SIGMAS * self.settings.sigma_m
+        inv_two_sigma2 = 0.5 / (self.settings.sigma_m * self.settings.sigma_m)
         loop_nodes = [k for k in range(len(chain)) if i <= at[k] < j]
 
         def fix_of(node: Node) -> tuple[float, float] | None:
@@ -2176,9 +2192,14 @@ class Tracker:
 
         best: tuple[float, tuple[int, int, list[tuple[int, float, float, float]]]] | None
         best = None
-        for p in range(i, j):
+        slen = view.slen
+        loop_m = sum(float(slen[s]) for s in segs[i:j])
+        for p in range(max(i, 1), j):
             if any(twin[s] < 0 for s in segs[i:p]):
                 break
+            way_m = sum(float(slen[s]) for s in segs[i:p])
+            if 2.0 * way_m > loop_m:
+                break  # the way back longer than the rest of the loop it replaces
             v = int(view.sf[segs[p]])
             vx, vy = float(view.vx[v]), float(view.vy[v])
             first = next((k for k in loop_nodes if at[k] >= p), -1)
@@ -2195,17 +2216,17 @@ class Tracker:
             prev = chain[first - 1] if first else before
             f0 = fix_of(prev)
             if (end == first or f0 is None or (f0[0] - vx) ** 2 + (f0[1] - vy) ** 2 > radius2
-                    or chain[end - 1].t - prev.t < STAND_S
+                    or chain[end - 1].t - chain[first].t < STAND_S
                     or not self._wandering_run([prev, *chain[first:end]])):
                 continue
-            lx, ly = pts[-1]
-            if any(math.hypot(x - lx, y - ly) > still for x, y in pts):
+            if not _stood_within(pts, [n.t for n in chain[first:end]], still):
                 continue
             # the way back from V to A, and the later loop nodes on it, in order
             way = [int(twin[s]) for s in reversed(segs[i:p])]
             back: list[tuple[int, float, float, float]] = []
             w, low = 0, 0.0
             ok = True
+            worse = 0.0  # how much worse the way back fits the later fixes than the loop
             for k in range(end, len(chain)):
                 if at[k] >= j:
                     break
@@ -2219,7 +2240,10 @@ class Tracker:
                     break
                 w, low = hit[0], hit[1]
                 back.append((w, low, hit[2], hit[3]))
-            if not ok:
+                node = chain[k]
+                worse += ((hit[2] - f[0]) ** 2 + (hit[3] - f[1]) ** 2
+                          - (node.x - f[0]) ** 2 - (node.y - f[1]) ** 2)
+            if not ok or worse * inv_two_sigma2 > self.settings.turn_back_cost:
                 continue
             mx = sum(x for x, _ in pts) / len(pts)
             my = sum(y for _, y in pts) / len(pts)
@@ -2747,6 +2771,26 @@ def _point(view: NetworkView, seg: int, pos: float) -> tuple[float, float]:
     a, b = view.sf[seg], view.st[seg]
     return (view.vx[a] + pos * (view.vx[b] - view.vx[a]),
             view.vy[a] + pos * (view.vy[b] - view.vy[a]))
+
+
+def _stood_within(pts: list[tuple[float, float]], times: list[float], radius: float) -> bool:
+    """Whether ``pts`` (fixes at ``times``) begin with a stand of ``STAND_S`` seconds.
+
+    A stand: the fixes from the first to the first one ``STAND_S`` or more after it all
+    lie within ``radius`` of that last one (as :meth:`Tracker._standing` reads one).
+
+    Example (10 s within a metre, then a walk at 3 m/s; and the walk first):
+        >>> pts = [(12.0, 0.5)] * 11 + [(12.0 + 3.0 * i, 0.0) for i in range(1, 5)]
+        >>> _stood_within(pts, [float(i) for i in range(15)], 10.0)
+        True
+        >>> _stood_within(pts[::-1], [float(i) for i in range(15)], 10.0)
+        False
+    """
+    for b, t in enumerate(times):
+        if t - times[0] >= STAND_S:
+            bx, by = pts[b]
+            return all(math.hypot(x - bx, y - by) <= radius for x, y in pts[:b])
+    return False
 
 
 def _project_on(view: NetworkView, way: list[int], w: int, low: float, x: float,
