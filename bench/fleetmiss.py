@@ -72,10 +72,12 @@ EPS_M = 15.0
 SETTLED: dict[tuple[str, float], str] = {}
 #: (vehicle, fix time) of fixes whose answer stand_at_vertex moved
 MOVED: set[tuple[str, float]] = set()
+#: (vehicle, fix time) of fixes whose node stand_turnback rebuilt (the stand and the way back)
+TURNED: set[tuple[str, float]] = set()
 
 
 def _instrument() -> None:
-    """Wrap the tracker's commit and stand_at_vertex to record what they did."""
+    """Wrap the tracker's commit, stand_at_vertex and stand_turnback to record what they did."""
     orig_commit = tracker_mod.Tracker._commit_chain
     orig_sav = tracker_mod.Tracker._stand_at_vertex
 
@@ -96,8 +98,19 @@ def _instrument() -> None:
             if a != b:
                 MOVED.add((self.vehicle, float(b.t)))
 
+    orig_turn = tracker_mod.Tracker._turn_back_at_stand
+
+    def turn(self: Any, chain: Any, before: Any, eps: float) -> Any:
+        out = orig_turn(self, chain, before, eps)
+        if out is not chain:
+            for a, b in zip(chain, out, strict=True):
+                if (a.seg, a.pos) != (b.seg, b.pos):
+                    TURNED.add((self.vehicle, float(b.t)))
+        return out
+
     tracker_mod.Tracker._commit_chain = commit  # type: ignore[method-assign]
     tracker_mod.Tracker._stand_at_vertex = sav  # type: ignore[method-assign]
+    tracker_mod.Tracker._turn_back_at_stand = turn  # type: ignore[method-assign]
 
 
 def roundabout(network: Any, seg: int) -> bool:
@@ -212,6 +225,7 @@ def _episode(network: Any, drive: Any, obs: list[Any], match: Any, motion: list[
             "live": None if lv is None else lv.segment,
             "how": SETTLED.get((drive.vehicle, float(o.t))),
             "sav": (drive.vehicle, float(o.t)) in MOVED,
+            "turned": (drive.vehicle, float(o.t)) in TURNED,
         })
     k0 = drive.truth[obs[idx[0]].truth_index].path_index
     return {"cell": cell, "vehicle": drive.vehicle, "cause": cause, "n": len(idx),
@@ -287,8 +301,10 @@ def main(argv: list[str] | None = None) -> int:
                             continue
                         SETTLED.clear()
                         MOVED.clear()
+                        TURNED.clear()
                         run = acc.run_inproc(network, records, xy, times, matcher)
                         row[label] = cell_metrics(network, fleet, run)
+                        row[label]["turned_fixes"] = len(TURNED)
                         causes: Counter[str] = Counter()
                         episodes: Counter[str] = Counter()
                         for d, obs in fleet:

@@ -362,6 +362,31 @@ class MatchSettings:
             the next commit was over ``join_detour``; docs/measured.md "Session 13
             (rmf5)"). Only the committed path changes (and a commit that now goes on
             no longer moves its first fix from a segment's very end to the next one).
+        stand_turnback: where the committed path leaves a vertex A and comes back into
+            it by a loop without a U-turn (a turning ring at a street's end, a short
+            block), and inside the loop the vehicle stood at a vertex V of it (the nodes
+            matched at or past V begin with a stand: fixes within eps of V for at least
+            10 s, dense, wandering, their first 10 s within 2 ``sigma_m`` of each other),
+            while every later fix matched on the loop lies within eps of the way back
+            from V to A along the twins of the segments A -> V (met in order), the loop
+            is committed as "to V, turn round, back to A": the stand's fixes at V, the
+            later ones on the way back, the path after A unchanged
+            (:meth:`livematch.core.tracker.Tracker._turn_back_at_stand`; the
+            certificate still holds). Why: going round the ring costs no U-turn while
+            turning round at V does, so a van that dwelt at V and left the way it came
+            was committed round the ring on roads it never drove; the fixes cannot tell
+            the two apart, and the stand shows where it was. Not over a one-way segment,
+            nor where the way back is longer than the rest of the loop or fits the later
+            fixes worse than the loop by more than ``turn_back_cost``, nor on a loop
+            over a road the map draws twice; not at 15-30 s between fixes (the stand's
+            fixes must come at most 5 s apart); final answers and the committed path
+            only. Off by default: on bench/fleetmiss.py's decision runs (80 drives,
+            seeds 31 / 77, both extracts, 1 and 5 s) routed trips gain in six cells and
+            lose in none (Helsinki 1 s final 0.9772 / 0.9673 -> 0.9779 / 0.9696, route
+            mismatch 2.19 / 2.57 % -> 2.16 / 2.53 %), but the random walk on Helsinki
+            loses a fix and 0.01-0.03 points of route mismatch at 5 s (a small oval it
+            circles with junction stops; docs/measured.md, "Session 14 (standv)").
+            For fleets that turn round at stops, true.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -405,6 +430,7 @@ class MatchSettings:
     motion_step: bool = False
     stand_short_m: float = 0.0
     break_rejoin: bool = False
+    stand_turnback: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -438,7 +464,7 @@ class MatchSettings:
                      "pace_reach", "stand_loops", "stand_commit_wait", "sparse_stand_wait",
                      "stand_loops_outer", "vertex_in_segment", "reverse_turns",
                      "reverse_turns_near", "lone_reverse_turns", "hold_filtered",
-                     "stand_at_vertex", "motion_step", "break_rejoin"):
+                     "stand_at_vertex", "motion_step", "break_rejoin", "stand_turnback"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

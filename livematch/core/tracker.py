@@ -1655,6 +1655,8 @@ class Tracker:
             return
         if self.settings.stand_loops and before is not None and len(chain) >= 2:
             chain = self._close_stand_loops(chain, before, self._eps_of(tree))
+        if self.settings.stand_turnback and before is not None and len(chain) >= 3:
+            chain = self._turn_back_at_stand(chain, before, self._eps_of(tree))
         top = chain[-1]
         view = self._view
         first = chain[0]
@@ -2069,6 +2071,237 @@ class Tracker:
             else:
                 node.parent = parent
                 node.via = via
+            out.append(node)
+            parent = node
+            prev_at = here
+        return out
+
+    def _turn_back_at_stand(self, chain: list[Node], before: Node, eps: float) -> list[Node]:
+        """``chain`` with a loop round a stand read as a turn back at the stand's vertex.
+
+        Rule (``MatchSettings.stand_turnback``): where the committed path leaves a vertex
+        A and comes back into A by a loop without a U-turn (segments L = ``segs[i:j]``,
+        A the start of ``segs[i]`` and the end of ``segs[j - 1]``), and inside the loop
+        the vehicle stood at a vertex V of it (V the start of ``segs[p]``, i <= p < j):
+        the first nodes matched at or past V (from ``segs[p]`` on) have fixes within eps
+        of V that span at least ``STAND_S`` by themselves, come densely and wander
+        (:meth:`_wandering_run`, with the node before them), and begin with a stand
+        (their fixes of the first ``STAND_S`` within ``STAND_SIGMAS`` x ``sigma_m`` of
+        the last of those, as :meth:`_standing` reads one: a vehicle that stands when
+        its path reaches V, not one whose path went on round the loop while its fixes,
+        on a small loop, stayed within eps of V; the fix before the run within eps of
+        V too) -- then, when every later node matched on the loop has a
+        fix within eps of the way back from V to A along the twins of ``segs[i:p]``
+        (met in order, never going back along it), the loop is committed as
+        "``segs[i:p]``, turn round at V, back to A along their twins": the stand's fixes
+        at V (the end of the segment into V), the later ones on the way back where
+        their fixes project, and the path after A unchanged; only while the way back
+        fits those later fixes no worse than the loop did by more than one U-turn's
+        charge (the path cost's distance term, squared distance over 2 ``sigma_m``^2,
+        summed: at most ``turn_back_cost``): a vehicle that stood at V and then drove
+        on round a ring whose far side lies within eps of the near one (an oval round
+        a narrow island) keeps the ring its fixes follow. Of the vertices that
+        qualify, the one nearest the mean of its stand's fixes. And only where the way
+        back (A -> V) is no longer than the rest of the loop (V -> A) it replaces, so
+        the turn asks the vehicle to drive no farther between the stand and the fixes
+        after the loop than the loop did: a vehicle that stops at A and goes on round a
+        ring whose stand the path matched a little before A, at the far end of the
+        ring, is no turn back. Not where a segment of
+        ``segs[i:p]`` is one-way (no twin), nor where the chain's last node is on the
+        loop (the next commit goes on from it), nor where the loop holds or is entered
+        by a U-turn (a step back over the same two vertices by another segment, a road
+        the map draws twice, counts as one: the loop is then no ring but a turn in
+        disguise, and on the Helsinki extract the stand moved off it onto the other
+        drawing of the road).
+
+        Why: a road that forms a small ring (a turning loop at the end of a street, a
+        short block) gives the path a way out of a stand and back to A without a
+        U-turn, which costs nothing, while turning round at V costs ``turn_back_cost``
+        (and ``street_turn_cost`` at a plain shape point, which only a bridged step may
+        use). A delivery van that dwells at V and leaves the way it came is then
+        committed round the ring, on roads it never drove; the fixes of a stand within
+        eps of V followed by fixes within eps of the way back cannot tell the two apart,
+        and the van stood at V: it turned round there, where the stand shows it was.
+        :meth:`_close_stand_loops` handles loops that hold a U-turn; this one handles
+        loops that do not (docs/measured.md, "Session 14 (standv)").
+
+        The certificate holds as for :meth:`_close_stand_loops`: the path up to V keeps
+        its matching; the trace from the fix before the stand to the stand's last fix
+        lies in the eps disc round V (a disc is convex) and is matched to V; after
+        that every fix lies within eps of its point on the way back, the points in
+        order along it; from the last of them on the path is unchanged (the node after
+        the loop is reached from the last such point along the way back and the
+        segments after A, as the sweep reached it from A).
+
+        Example (no loop in the path: the chain is returned as it is):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "v1")
+            >>> a = Node(0, 1, 0.0, 0.1, 10.0, 0.0, None, (), 0.0, 0.0)
+            >>> b = Node(0, 2, 1.0, 0.2, 20.0, 0.0, a, (), 0.0, 0.0)
+            >>> c = Node(0, 3, 2.0, 0.3, 30.0, 0.0, b, (), 0.0, 0.0)
+            >>> tracker._turn_back_at_stand([b, c], a, 15.0) == [b, c]
+            True
+        """
+        view = self._view
+        twin = view.twin
+        sf = view.sf
+        segs = [before.seg]
+        owner = [-1]  # owner[m]: the chain index of the node whose step entered segs[m]
+        st = view.st
+        # turns[m]: U-turns among segs[1:m + 1]; a step back over the same two vertices
+        # by another segment (a road the map draws twice) is a U-turn too
+        turns = [0]
+        for k, node in enumerate(chain):
+            for seg in _steps(segs[-1], node):
+                last = segs[-1]
+                turns.append(turns[-1] + (seg == twin[last] or (
+                    sf[seg] == st[last] and st[seg] == sf[last])))
+                segs.append(seg)
+                owner.append(k)
+        if len(segs) < 3:
+            return chain
+        at = [0] * len(chain)
+        for m, k in enumerate(owner):
+            if k >= 0:
+                at[k] = m
+        for k in range(1, len(chain)):
+            at[k] = max(at[k], at[k - 1])
+        # the loop may begin on the segment before the chain (segs[0], committed before)
+        last_pass: dict[int, int] = {int(sf[segs[0]]): 0}
+        for j in range(1, len(segs)):
+            vertex = int(sf[segs[j]])
+            i = last_pass.get(vertex, -1)
+            last_pass[vertex] = j
+            if i < 0 or at[-1] < j or turns[j - 1] != turns[max(i - 1, 0)]:
+                continue  # no loop, its end in the next commit, or a U-turn in or into it
+            found = self._turn_in_loop(chain, before, segs, at, i, j, eps)
+            if found is not None:
+                return self._rebuilt_turn(chain, before, segs, at, i, j, *found)
+        return chain
+
+    def _turn_in_loop(self, chain: list[Node], before: Node, segs: list[int], at: list[int],
+                      i: int, j: int, eps: float) -> tuple[int, int, list[tuple[int, float, float,
+                                                                      float]]] | None:
+        """The turn :meth:`_turn_back_at_stand` reads in the loop ``segs[i:j]``, or None.
+
+        Returns (p, end, back): V is the start of ``segs[p]``, the nodes before ``end``
+        (from the first at or past ``segs[p]``) are the stand, and ``back`` holds the
+        later loop nodes' points on the way back, (index into the way, pos, x, y) each.
+        """
+        view = self._view
+        twin = view.twin
+        seq0 = self.fix_seq0
+        xy = self.fix_xy
+        radius2 = eps * eps
+        still = STAND_SIGMAS * self.settings.sigma_m
+        inv_two_sigma2 = 0.5 / (self.settings.sigma_m * self.settings.sigma_m)
+        loop_nodes = [k for k in range(len(chain)) if i <= at[k] < j]
+
+        def fix_of(node: Node) -> tuple[float, float] | None:
+            r = node.seq - seq0
+            if not 0 <= r < self.fix_n:
+                return None
+            return xy.item(r, 0), xy.item(r, 1)
+
+        best: tuple[float, tuple[int, int, list[tuple[int, float, float, float]]]] | None
+        best = None
+        slen = view.slen
+        loop_m = sum(float(slen[s]) for s in segs[i:j])
+        for p in range(max(i, 1), j):
+            if any(twin[s] < 0 for s in segs[i:p]):
+                break
+            way_m = sum(float(slen[s]) for s in segs[i:p])
+            if 2.0 * way_m > loop_m:
+                break  # the way back longer than the rest of the loop it replaces
+            v = int(view.sf[segs[p]])
+            vx, vy = float(view.vx[v]), float(view.vy[v])
+            first = next((k for k in loop_nodes if at[k] >= p), -1)
+            if first < 0:
+                continue
+            end = first
+            pts: list[tuple[float, float]] = []
+            while end < len(chain) and at[end] < j:
+                f = fix_of(chain[end])
+                if f is None or (f[0] - vx) ** 2 + (f[1] - vy) ** 2 > radius2:
+                    break
+                pts.append(f)
+                end += 1
+            prev = chain[first - 1] if first else before
+            f0 = fix_of(prev)
+            if (end == first or f0 is None or (f0[0] - vx) ** 2 + (f0[1] - vy) ** 2 > radius2
+                    or chain[end - 1].t - chain[first].t < STAND_S
+                    or not self._wandering_run([prev, *chain[first:end]])):
+                continue
+            if not _stood_within(pts, [n.t for n in chain[first:end]], still):
+                continue
+            # the way back from V to A, and the later loop nodes on it, in order
+            way = [int(twin[s]) for s in reversed(segs[i:p])]
+            back: list[tuple[int, float, float, float]] = []
+            w, low = 0, 0.0
+            ok = True
+            worse = 0.0  # how much worse the way back fits the later fixes than the loop
+            for k in range(end, len(chain)):
+                if at[k] >= j:
+                    break
+                f = fix_of(chain[k])
+                if f is None or not way:
+                    ok = False
+                    break
+                hit = _project_on(view, way, w, low, f[0], f[1])
+                if hit is None or (hit[2] - f[0]) ** 2 + (hit[3] - f[1]) ** 2 > radius2:
+                    ok = False
+                    break
+                w, low = hit[0], hit[1]
+                back.append((w, low, hit[2], hit[3]))
+                node = chain[k]
+                worse += ((hit[2] - f[0]) ** 2 + (hit[3] - f[1]) ** 2
+                          - (node.x - f[0]) ** 2 - (node.y - f[1]) ** 2)
+            if not ok or worse * inv_two_sigma2 > self.settings.turn_back_cost:
+                continue
+            mx = sum(x for x, _ in pts) / len(pts)
+            my = sum(y for _, y in pts) / len(pts)
+            d = math.hypot(mx - vx, my - vy)
+            if best is None or d < best[0]:
+                best = (d, (p, end, back))
+        return None if best is None else best[1]
+
+    def _rebuilt_turn(self, chain: list[Node], before: Node, segs: list[int], at: list[int],
+                      i: int, j: int, p: int, end: int,
+                      back: list[tuple[int, float, float, float]]) -> list[Node]:
+        """``chain`` with the loop ``segs[i:j]`` replaced by the turn back at V.
+
+        ``p``, ``end`` and ``back`` as :meth:`_turn_in_loop` returns them (``back``'s
+        first item an index into the way back).
+        """
+        view = self._view
+        twin = view.twin
+        way = [int(twin[s]) for s in reversed(segs[i:p])]
+        new_segs = [*segs[:p], *way, *segs[j:]]
+        shift = p + len(way) - j  # index change of the segments from segs[j] on
+        v = int(view.sf[segs[p]])
+        vx, vy = float(view.vx[v]), float(view.vy[v])
+        out: list[Node] = []
+        parent: Node = before
+        prev_at = 0
+        n_back = 0
+        for k, node in enumerate(chain):
+            if at[k] < p:
+                here = at[k]
+            elif k < end:
+                here = p - 1  # the stand: at V, the end of the segment into V
+                seg = new_segs[here]
+                node = Node(seg, node.seq, node.t, 1.0, vx, vy, parent, (), node.cost, 1.0)
+            elif at[k] < j:
+                w, pos, x, y = back[n_back]
+                n_back += 1
+                here = p + w
+                node = Node(way[w], node.seq, node.t, pos, x, y, parent, (), node.cost,
+                            pos)
+            else:
+                here = at[k] + shift
+            node.parent = parent
+            node.via = tuple(new_segs[m] for m in range(prev_at + 1, here))
             out.append(node)
             parent = node
             prev_at = here
@@ -2552,6 +2785,50 @@ def _point(view: NetworkView, seg: int, pos: float) -> tuple[float, float]:
     a, b = view.sf[seg], view.st[seg]
     return (view.vx[a] + pos * (view.vx[b] - view.vx[a]),
             view.vy[a] + pos * (view.vy[b] - view.vy[a]))
+
+
+def _stood_within(pts: list[tuple[float, float]], times: list[float], radius: float) -> bool:
+    """Whether ``pts`` (fixes at ``times``) begin with a stand of ``STAND_S`` seconds.
+
+    A stand: the fixes from the first to the first one ``STAND_S`` or more after it all
+    lie within ``radius`` of that last one (as :meth:`Tracker._standing` reads one).
+
+    Example (10 s within a metre, then a walk at 3 m/s; and the walk first):
+        >>> pts = [(12.0, 0.5)] * 11 + [(12.0 + 3.0 * i, 0.0) for i in range(1, 5)]
+        >>> _stood_within(pts, [float(i) for i in range(15)], 10.0)
+        True
+        >>> _stood_within(pts[::-1], [float(i) for i in range(15)], 10.0)
+        False
+    """
+    for b, t in enumerate(times):
+        if t - times[0] >= STAND_S:
+            bx, by = pts[b]
+            return all(math.hypot(x - bx, y - by) <= radius for x, y in pts[:b])
+    return False
+
+
+def _project_on(view: NetworkView, way: list[int], w: int, low: float, x: float,
+                y: float) -> tuple[int, float, float, float] | None:
+    """The nearest point to (``x``, ``y``) on ``way`` at or after ``way[w]`` at ``low``.
+
+    Returns (index in ``way``, position on that segment, x, y), or None if ``way`` ends
+    before ``w``. Positions before ``low`` on ``way[w]`` are not taken: the points of
+    consecutive fixes go on along the way, never back.
+    """
+    best: tuple[float, tuple[int, float, float, float]] | None = None
+    for m in range(w, len(way)):
+        seg = way[m]
+        a, b = view.sf[seg], view.st[seg]
+        ax, ay = float(view.vx[a]), float(view.vy[a])
+        dx, dy = float(view.vx[b]) - ax, float(view.vy[b]) - ay
+        n2 = dx * dx + dy * dy
+        pos = ((x - ax) * dx + (y - ay) * dy) / n2 if n2 > 0.0 else 0.0
+        pos = min(1.0, max(low if m == w else 0.0, pos))
+        px, py = ax + pos * dx, ay + pos * dy
+        d = (px - x) ** 2 + (py - y) ** 2
+        if best is None or d < best[0]:
+            best = (d, (m, pos, px, py))
+    return None if best is None else best[1]
 
 
 def _step_dir(prev: tuple[float, float, float], fix: Fix) -> float:
