@@ -1973,12 +1973,12 @@ class Tracker:
         route explains ends the run. When it holds at least ``LAP_MIN_M``, the pieces of
         this commit are searched from the newest back for the shortest loop
         (:func:`livematch.core.routing.small_loop`: no U-turn but at a dead end, at most
-        ``lap_due`` long) that leaves a vertex the piece passes (the head of the segment it comes from or
-        of a segment it enters before the last; for a piece that stays on one segment,
-        from that segment's head: the path goes on from there whatever follows) and lies
-        wholly within the smallest eps of one of the piece's two fixes; ``floor(lap_due
-        / C)`` laps of the first one found (length ``C``) are put in there and taken off
-        the sum. A missing speed starts the sum afresh.
+        ``lap_due`` long) that leaves a vertex the piece passes (the head of the segment
+        it comes from or of a segment it enters before the last; for a piece that stays
+        on one segment, from that segment's head: the path goes on from there whatever
+        follows) and lies wholly within the smallest eps of one of the piece's two
+        fixes; ``floor(lap_due / C)`` laps of the first one found (length ``C``) are put
+        in there and taken off the sum. A missing speed starts the sum afresh.
 
         Example (no speeds known: the path is the pieces as they are):
             >>> from livematch.core.build import Road, network_from_roads
