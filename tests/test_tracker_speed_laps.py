@@ -281,3 +281,12 @@ def test_simulated_speed_is_the_true_speed_and_leaves_the_drive_alone() -> None:
     assert "speed" not in replay_records(net, [(plain, observe(plain, 5))])[0]["payload"]
     with pytest.raises(ValueError, match="speed_sigma_mps"):
         DriveSettings(speed_sigma_mps=-1.0)
+
+
+def test_sparse_fixes_get_no_laps() -> None:
+    """Fixes 15 s apart (more than gap_s): the sum starts afresh at every step, so the
+    path is the rule-off path even where the vehicle circled the ring."""
+    net = network_from_roads(ROADS)
+    for seed in range(3):
+        fixes, _ = ring_drive(8, seed, interval=15)
+        assert committed_path(net, fixes, True) == committed_path(net, fixes, False)

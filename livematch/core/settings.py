@@ -381,7 +381,8 @@ class MatchSettings:
             of the random walk at Helsinki 5 s is a 10 m dead-end stub driven in and
             out again and again); the distance driven is the evidence the positions
             lack, and a lap within eps of a fix keeps the certificate (the trace point
-            stays while the path goes round). Only the committed path changes; without
+            stays while the path goes round). Only between fixes at most ``gap_s``
+            apart (1-10 s with the defaults). Only the committed path changes; without
             reported speeds it does nothing.
     """
 

@@ -1978,7 +1978,12 @@ class Tracker:
         on one segment, from that segment's head: the path goes on from there whatever
         follows) and lies wholly within the smallest eps of one of the piece's two
         fixes; ``floor(lap_due / C)`` laps of the first one found (length ``C``) are put
-        in there and taken off the sum. A missing speed starts the sum afresh.
+        in there and taken off the sum. A missing speed, or fixes more than ``gap_s``
+        apart, start the sum afresh: over a sparse step the two speeds say little of what
+        was driven in between (a stop, a slower street), and the route between sparse
+        answers is itself a guess, so a shortfall there is no sign of laps (at 15 s on
+        the test extract such steps put laps round a small loop the vehicle passed but
+        never circled; docs/measured.md "Session 14 (rmfwalk)").
 
         Example (no speeds known: the path is the pieces as they are):
             >>> from livematch.core.build import Road, network_from_roads
@@ -1994,14 +1999,15 @@ class Tracker:
         slen = view.slen
         out = [list(p) for p in pieces]
         eps = self.settings.eps_levels[0]
+        gap = self.settings.gap_s
         for k, piece in enumerate(pieces):
             a, b = links[k], links[k + 1]
             va = speeds.get(a.t)
             vb = speeds.get(b.t)
-            if va is None or vb is None:
+            dt = b.t - a.t
+            if va is None or vb is None or dt > gap:
                 self.lap_due = 0.0
                 continue
-            dt = b.t - a.t
             if piece:
                 route = (1.0 - a.pos) * slen[a.seg] + b.pos * slen[b.seg]
                 for seg in piece[:-1]:
