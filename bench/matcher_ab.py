@@ -60,10 +60,14 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--sim", choices=tuple(acc.SIM_MODELS), default="plain")
     ap.add_argument("--matcher", action="append", default=[], metavar="KEY=VALUE")
     ap.add_argument("--out", default=None, help="append the JSON lines to this file")
+    ap.add_argument("--speed-sigma", type=float, default=None, metavar="MPS",
+                    help="fixes report their speed over ground with this error (m/s; "
+                         "DriveSettings.speed_sigma_mps); default: no speed, as before")
     args = ap.parse_args(argv)
     matcher = acc.matcher_settings(args.matcher)
     settings = DriveSettings(duration_s=args.duration, sigma_m=5.0, tau_s=45.0,
-                             outlier_p=0.01, **acc.SIM_MODELS[args.sim])
+                             outlier_p=0.01, speed_sigma_mps=args.speed_sigma,
+                             **acc.SIM_MODELS[args.sim])
     for ei, name in enumerate(args.extract.split(",")):
         network = acc.load_network(acc.extract_path(name))
         allowed = drivable_segments(network)
@@ -76,7 +80,8 @@ def main(argv: list[str] | None = None) -> int:
             xy = acc.roundtrip_xy(network, records)
             times = {d.vehicle: [o.t for o in obs] for d, obs in fleet}
             row: dict[str, Any] = {"sim": args.sim, "seed": args.seed, "extract": name,
-                                   "interval": k, "matcher": matcher}
+                                   "interval": k, "matcher": matcher,
+                                   "speed_sigma": args.speed_sigma}
             oks = {}
             for label, m in (("base", {}), ("new", matcher)):
                 run = acc.run_inproc(network, records, xy, times, m)

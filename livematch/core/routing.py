@@ -370,6 +370,80 @@ def connect(
     return [*best[2].segs, best[1]]
 
 
+def small_loop(
+    view: NetworkView, vertex: int, limit: float, centre: tuple[float, float], radius: float,
+    not_first: int = -1, not_last: int = -1,
+) -> tuple[list[int], float] | None:
+    """The shortest closed drive from ``vertex`` back to it inside a disc, or None.
+
+    A lap round a small loop (a turning circle, a ring of service road, a block, or in
+    and out of a short dead end): a non-empty run of directed segments that leaves
+    ``vertex`` and ends entering it, makes no U-turn (no segment followed by its own
+    twin) except at a dead end (where the twin is the only way on), never leaves the
+    disc of ``radius`` metres around ``centre`` (every vertex it passes lies inside; the
+    segments are straight, so the whole lap does) and is at most ``limit`` metres long.
+    Its first segment is not ``not_first`` (the twin of the segment driven into
+    ``vertex``: no U-turn onto the lap), its last one not ``not_last`` (the twin of the
+    segment the path goes on by). Returns the lap and its length. Edge-based Dijkstra,
+    as :func:`bounded_dijkstra`; the disc bounds the work.
+
+    Example (a 20 m square one-way ring, vertices 0-1-2-3, entered at vertex 0):
+        >>> from livematch.core.build import Road, network_from_roads
+        >>> from livematch.core.view import view_of
+        >>> ring = [(0.0, 0.0), (20.0, 0.0), (20.0, 20.0), (0.0, 20.0), (0.0, 0.0)]
+        >>> view = view_of(network_from_roads([Road(ring, way=1, oneway=True)]))
+        >>> lap, length = small_loop(view, view.sf[0], 100.0, (10.0, 10.0), 20.0)
+        >>> len(lap), length
+        (4, 80.0)
+        >>> small_loop(view, view.sf[0], 79.0, (10.0, 10.0), 20.0) is None
+        True
+        >>> small_loop(view, view.sf[0], 100.0, (10.0, 10.0), 10.0) is None
+        True
+    """
+    cx, cy = centre
+    r2 = radius * radius
+    vx, vy, st, twin, slen, out = view.vx, view.vy, view.st, view.twin, view.slen, view.out
+
+    def inside(v: int) -> bool:
+        dx = vx[v] - cx
+        dy = vy[v] - cy
+        return dx * dx + dy * dy <= r2
+
+    if not inside(vertex):
+        return None
+    best: dict[int, float] = {}
+    pred: dict[int, int] = {}
+    heap: list[tuple[float, int]] = []
+    for seg in out[vertex]:
+        if seg != not_first and slen[seg] <= limit and inside(st[seg]):
+            best[seg] = slen[seg]
+            pred[seg] = -1
+            heapq.heappush(heap, (slen[seg], seg))
+    while heap:
+        d, seg = heapq.heappop(heap)
+        if d > best[seg]:
+            continue
+        head = st[seg]
+        if head == vertex and seg != not_last:
+            lap = [seg]
+            while pred[lap[-1]] >= 0:
+                lap.append(pred[lap[-1]])
+            lap.reverse()
+            return lap, d
+        ways = out[head]
+        for nxt in ways:
+            nd = d + slen[nxt]
+            if (nxt == twin[seg] and len(ways) > 1) or nd > limit \
+                    or nd >= best.get(nxt, np.inf):
+                continue
+            if not inside(st[nxt]):
+                continue
+            best[nxt] = nd
+            pred[nxt] = seg
+            heapq.heappush(heap, (nd, nxt))
+    return None
+
+
 def warm_up() -> None:
     """Compile (or load) the search kernel now rather than at a vehicle's first bridged step.
 

@@ -387,6 +387,28 @@ class MatchSettings:
             loses a fix and 0.01-0.03 points of route mismatch at 5 s (a small oval it
             circles with junction stops; docs/measured.md, "Session 14 (standv)").
             For fleets that turn round at stops, true.
+        speed_laps: where the fixes report their speed over ground (the optional
+            ``speed`` of a position message), the committed path gets the laps of a
+            small loop that the fixes cannot show. Between two consecutive committed
+            fixes the vehicle drove about the mean of their two reported speeds times
+            the time between them; the path's route between the two answers may be
+            shorter. That shortfall, less a fifth of the distance as slack, is summed
+            from fix to fix while it lasts (as a one-sided CUSUM, Page 1954), and once
+            it holds a whole lap of the shortest loop that leaves a vertex of the route
+            and comes back to it (no U-turn but at a dead end, so in and out of a short
+            spur is a lap too), lying wholly within the smallest eps of one of the two
+            fixes, that many laps are put in the path there and taken off the sum
+            (``Tracker._with_laps``, :func:`livematch.core.routing.small_loop`). Why: a
+            vehicle going round a loop or in and out of a spur smaller than the GNSS
+            error sends fixes that a stand or a U-turn fits as well as the laps, and
+            the route between answers is the shortest, so the laps are lost from the
+            committed path (docs/measured.md "Session 13 (rmf5)": half the "laps" cause
+            of the random walk at Helsinki 5 s is a 10 m dead-end stub driven in and
+            out again and again); the distance driven is the evidence the positions
+            lack, and a lap within eps of a fix keeps the certificate (the trace point
+            stays while the path goes round). Only between fixes at most ``gap_s``
+            apart (1-10 s with the defaults). Only the committed path changes; without
+            reported speeds it does nothing.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -431,6 +453,7 @@ class MatchSettings:
     stand_short_m: float = 0.0
     break_rejoin: bool = False
     stand_turnback: bool = False
+    speed_laps: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -464,7 +487,8 @@ class MatchSettings:
                      "pace_reach", "stand_loops", "stand_commit_wait", "sparse_stand_wait",
                      "stand_loops_outer", "vertex_in_segment", "reverse_turns",
                      "reverse_turns_near", "lone_reverse_turns", "hold_filtered",
-                     "stand_at_vertex", "motion_step", "break_rejoin", "stand_turnback"):
+                     "stand_at_vertex", "motion_step", "break_rejoin", "stand_turnback",
+                     "speed_laps"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

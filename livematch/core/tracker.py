@@ -91,7 +91,7 @@ from livematch.core.events import Assignment, Commit, Event, Filtered, HeldAssig
 from livematch.core.fastsweep import sweep_arrays
 from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
-from livematch.core.routing import connect
+from livematch.core.routing import connect, small_loop
 from livematch.core.settings import MatchSettings
 from livematch.core.sweep import Node, StepContext, advance
 from livematch.core.view import NetworkView, view_of
@@ -217,6 +217,15 @@ REVERSE_APART_S = 180.0
 # them above 7.5 (chosen there, by judgement, not tuned further; from the same seeds that
 # decide, so the headline seed 2009 is the held-out check).
 REVERSE_TURN_MPS = 7.5
+# With MatchSettings.speed_laps (Tracker._with_laps): the share of the distance driven
+# between two fixes (by their reported speeds) that the CUSUM leaves as slack (the
+# trapezoid rule misses where the speed changes between fixes, and the answers err a few
+# metres along the road), the reported speed below which a fix counts as standing (a
+# receiver's Doppler speed errs by a few tenths of a m/s; common practice), and the
+# shortest lap ever put in (m).
+LAP_SLACK = 0.2
+LAP_STILL_MPS = 0.5
+LAP_MIN_M = 10.0
 
 
 class Level:
@@ -285,7 +294,8 @@ class Tracker:
     # slots: a service holds one tracker per vehicle, and an instance dict costs more
     # than a small candidate tree
     __slots__ = ("_held", "_view", "before", "buffer", "fix_n", "fix_seq0", "fix_xy",
-                 "jumps", "last", "last_commit", "last_released_t", "last_seg", "levels",
+                 "jumps", "lap_due", "lap_v", "last", "last_commit", "last_released_t",
+                 "last_seg", "levels",
                  "network", "next_commit", "rev_t", "said", "seq", "settings", "skipped",
                  "speed", "stand_from", "stand_seq", "step_dir", "stood_t", "times", "times0",
                  "vehicle")
@@ -344,6 +354,11 @@ class Tracker:
         # what _held_point found (held point and first fix -> (fix asked at, all within
         # eps)); a cache, not serialised, dropped when the vehicle does not stand
         self._held: dict[tuple[int, float, float, float], tuple[int, bool]] | None = None
+        # with speed_laps: the reported speed (m/s) of each accepted fix not yet
+        # committed, by fix time, and the distance driven that the committed path has
+        # not shown yet (m; Tracker._with_laps)
+        self.lap_v: dict[float, float] | None = None
+        self.lap_due = 0.0
 
     def fix_time(self, seq: int) -> float | None:
         """The time of accepted fix ``seq`` while it is kept (``times``), else None.
@@ -486,6 +501,10 @@ class Tracker:
             self.times0 = seq
         times.append(fix.t)  # fix seq: the run of times is contiguous up to seq - 1
         self._log_fix(fix.x, fix.y)
+        if s.speed_laps and fix.speed is not None:
+            if self.lap_v is None:
+                self.lap_v = {}
+            self.lap_v[fix.t] = fix.speed
         self.last = (fix.t, fix.x, fix.y)
         came_speed = self.speed  # of the step into prev (reverse_turns reads it)
         stood = self.speed is not None and self.speed < STOOD_MPS
@@ -1663,6 +1682,10 @@ class Tracker:
         path: list[int] = []
         last = self.last_commit
         starts = last is None  # a new stretch: nothing committed before it joins on
+        laps = self.settings.speed_laps and self.lap_v is not None
+        if laps and not (before is not None and last is not None and before.seq == last[2]
+                         and before.seg == last[0]):
+            self.lap_due = 0.0  # a new stretch or a join: the sum starts afresh
         goes_on = False  # the path goes on from the state before the chain
         if last is None:
             path.append(first.seg)
@@ -1685,6 +1708,10 @@ class Tracker:
                     path.append(first.seg)
         for a, b in itertools.pairwise(chain):
             path.extend(_steps(a.seg, b))
+        if laps:
+            links = [before, *chain] if goes_on and before is not None else chain
+            pieces = [_steps(a.seg, b) for a, b in itertools.pairwise(links)]
+            path[len(path) - sum(map(len, pieces)):] = self._with_laps(links, pieces)
         fixes = [MatchedFix(n.t, n.seg, n.pos * view.slen[n.seg], n.x, n.y) for n in chain]
         if self.settings.vertex_in_segment:
             # an answer at the very start of a segment: at the end of the segment the
@@ -1717,6 +1744,9 @@ class Tracker:
         events.append(Commit(self.vehicle, tuple(fixes), tuple(path)))
         self.next_commit = top.seq + 1
         self.last_commit = (top.seg, top.pos, top.seq, top.t)
+        if self.lap_v:
+            # the speeds a later commit can still read: from the fix committed last on
+            self.lap_v = {t: v for t, v in self.lap_v.items() if t >= top.t}
         if prune is not None:
             prune.tree.prune(row)
 
@@ -1941,6 +1971,112 @@ class Tracker:
             if level.tree is tree:
                 return level.eps
         return self.levels[0].eps
+
+    def _with_laps(
+        self, links: list[Node], pieces: list[list[int]]) -> list[int]:
+        """The path through ``links`` with the laps of a small loop it misses.
+
+        ``pieces[k]``: the segments entered from ``links[k]`` to ``links[k + 1]``.
+        Rule ``MatchSettings.speed_laps`` (see there for why). From one link to the next
+        the vehicle drove about ``D = (va + vb) / 2 * dt`` (the two fixes' reported
+        speeds, trapezoid rule; a speed below ``LAP_STILL_MPS`` counts as 0); the route
+        from one answer to the next is ``L`` long. ``lap_due``, the distance driven that
+        the committed path does not show, becomes ``lap_due + (1 - LAP_SLACK) * D - L``
+        while that step's shortfall ``(1 - LAP_SLACK) * D - L`` is positive, else 0:
+        shortfalls that recur from fix to fix add up (as in a one-sided CUSUM, Page,
+        Biometrika 1954), a step's noise (the answers' errors along the road, the
+        trapezoid's where the speed changes) is worn away by the slack, and a step the
+        route explains ends the run. When it holds at least ``LAP_MIN_M``, the pieces of
+        this commit are searched from the newest back for the shortest loop
+        (:func:`livematch.core.routing.small_loop`: no U-turn but at a dead end, at most
+        ``lap_due`` long) that leaves a vertex the piece passes (the head of the segment
+        it comes from or of a segment it enters before the last; for a piece that stays
+        on one segment, from that segment's head: the path goes on from there whatever
+        follows) and lies wholly within the smallest eps of one of the piece's two
+        fixes; ``floor(lap_due / C)`` laps of the first one found (length ``C``) are put
+        in there and taken off the sum. A missing speed, or fixes more than ``gap_s``
+        apart, start the sum afresh: over a sparse step the two speeds say little of what
+        was driven in between (a stop, a slower street), and the route between sparse
+        answers is itself a guess, so a shortfall there is no sign of laps (at 15 s on
+        the test extract such steps put laps round a small loop the vehicle passed but
+        never circled; docs/measured.md "Session 14 (rmfwalk)").
+
+        Example (no speeds known: the path is the pieces as they are):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "v1", MatchSettings(speed_laps=True))
+            >>> a = Node(0, 1, 0.0, 0.1, 10.0, 0.0, None, (), 0.0, 0.0)
+            >>> b = Node(0, 2, 5.0, 0.2, 20.0, 0.0, a, (), 0.0, 0.0)
+            >>> tracker._with_laps([a, b], [[]])
+            []
+        """
+        speeds = self.lap_v or {}
+        view = self._view
+        slen = view.slen
+        out = [list(p) for p in pieces]
+        eps = self.settings.eps_levels[0]
+        gap = self.settings.gap_s
+        for k, piece in enumerate(pieces):
+            a, b = links[k], links[k + 1]
+            va = speeds.get(a.t)
+            vb = speeds.get(b.t)
+            dt = b.t - a.t
+            if va is None or vb is None or dt > gap:
+                self.lap_due = 0.0
+                continue
+            if piece:
+                route = (1.0 - a.pos) * slen[a.seg] + b.pos * slen[b.seg]
+                for seg in piece[:-1]:
+                    route += slen[seg]
+            else:
+                route = max(0.0, b.pos - a.pos) * slen[a.seg]
+            driven = 0.5 * ((va if va >= LAP_STILL_MPS else 0.0)
+                            + (vb if vb >= LAP_STILL_MPS else 0.0)) * dt
+            step = (1.0 - LAP_SLACK) * driven - route
+            # a step the route explains ends the run: what went unexplained before is
+            # not carried on to a loop met later
+            due = self.lap_due = self.lap_due + step if step > 0.0 else 0.0
+            if due < LAP_MIN_M:
+                continue
+            for m in range(k, -1, -1):  # this piece first, then back through the commit
+                found = self._small_loop_in(links[m], links[m + 1], out[m], due, eps)
+                if found is not None:
+                    length, j, lap = found
+                    n = int(due // length)
+                    self.lap_due = due - n * length
+                    segs = [links[m].seg, *out[m]]
+                    out[m] = [*segs[1:j + 1], *(lap * n), *segs[j + 1:]]
+                    break
+        return [seg for piece in out for seg in piece]
+
+    def _small_loop_in(
+        self, a: Node, b: Node, piece: list[int], limit: float, eps: float
+    ) -> tuple[float, int, list[int]] | None:
+        """The shortest small loop a lap can take between ``a`` and ``b``, or None.
+
+        As (length, index in ``[a.seg, *piece]`` of the segment whose head it leaves,
+        its segments); see :meth:`_with_laps`.
+        """
+        view = self._view
+        twin = view.twin
+        centres = (self._fix_xy_of(a), self._fix_xy_of(b))
+        segs = [a.seg, *piece]
+        found: tuple[float, int, list[int]] | None = None
+        for j in range(max(1, len(piece))):
+            after = -1 if not piece else twin[segs[j + 1]]
+            for centre in centres:
+                got = small_loop(view, view.st[segs[j]], limit, centre, eps, twin[segs[j]],
+                                 after)
+                if got is not None and (found is None or got[1] < found[0]):
+                    found = (got[1], j, got[0])
+        return found
+
+    def _fix_xy_of(self, node: Node) -> tuple[float, float]:
+        """The position of the fix ``node`` answers (its matched point if not logged)."""
+        r = node.seq - self.fix_seq0
+        if 0 <= r < self.fix_n:
+            return self.fix_xy.item(r, 0), self.fix_xy.item(r, 1)
+        return node.x, node.y
 
     def _close_stand_loops(self, chain: list[Node], before: Node, eps: float) -> list[Node]:
         """``chain`` with each out-and-back loop made while the vehicle stood cut out.
@@ -2484,6 +2620,8 @@ class Tracker:
             state["step_dir"] = self.step_dir
         if self.rev_t is not None:  # with lone_reverse_turns only
             state["rev_t"] = self.rev_t
+        if self.lap_v:  # with speed_laps only, and only with reported speeds
+            state["lap_v"] = [list(self.lap_v), list(self.lap_v.values()), self.lap_due]
         if self.said is not None:  # only with hold_filtered
             # t, segment, offset_m, x, y, eps_m, window_fixes, window_s
             said = self.said
@@ -2596,6 +2734,10 @@ class Tracker:
         # written only with lone_reverse_turns, and only when set; absent (older states),
         # no reversal is known (the next one counts as lone)
         tracker.rev_t = state.get("rev_t")
+        lap = state.get("lap_v")  # written only with speed_laps (absent in older states)
+        if lap is not None:
+            tracker.lap_v = dict(zip(lap[0], lap[1], strict=True))
+            tracker.lap_due = lap[2]
         said = state.get("said")  # written only with hold_filtered (absent in older states)
         if said is not None:
             tracker.said = _SAID.pack(*said)

@@ -27,7 +27,7 @@ from __future__ import annotations
 
 import heapq
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import networkx as nx
 import numpy as np
@@ -113,6 +113,15 @@ class DriveSettings:
             way the vehicle came (True, the default of the trip model). With False it
             goes on and turns round, if it must, at a junction or a dead end, as a bus
             or a truck that cannot turn in the street does.
+        speed_sigma_mps: reported speed (opt-in; None sends none, as the drives always
+            did). With a value each fix carries the speed over ground a GNSS receiver
+            reports from the Doppler shift of the carriers (NMEA RMC's speed over
+            ground, a phone's location speed; common practice in vehicle feeds): the
+            true speed at that second plus white Gaussian error of this standard
+            deviation, clipped at 0. Receivers quote about 0.1-0.5 m/s for it, far
+            finer than a speed from two positions (from memory). Its errors are drawn
+            after every other draw of the drive, so the drive and its fixes are the
+            same with or without it.
     """
 
     duration_s: float = 900.0
@@ -136,6 +145,7 @@ class DriveSettings:
     trip_max_m: float = 4000.0
     dwell_s: tuple[float, float] = (10.0, 90.0)
     turn_round_mid_road: bool = True
+    speed_sigma_mps: float | None = None
 
     def __post_init__(self) -> None:
         if not (self.lead_s >= 0.0 and math.isfinite(self.lead_s)):
@@ -153,6 +163,10 @@ class DriveSettings:
         if not 0.0 <= self.dwell_s[0] <= self.dwell_s[1]:
             raise ValueError(f"DriveSettings.dwell_s must be (min, max) seconds with "
                              f"0 <= min <= max, got {self.dwell_s}")
+        if self.speed_sigma_mps is not None and not (
+                self.speed_sigma_mps >= 0.0 and math.isfinite(self.speed_sigma_mps)):
+            raise ValueError(f"DriveSettings.speed_sigma_mps must be None or >= 0 m/s, "
+                             f"got {self.speed_sigma_mps}")
 
 
 #: Realistic drive model for the accuracy harness: a 60 s lead-in and lead-out (two
@@ -199,6 +213,8 @@ class Observation:
         outlier: whether an outlier jump was added.
         truth_index: index of the matching sample in :attr:`Drive.truth`.
         delay_s: receive delay, seconds (the replay log's ``at`` is ``t + delay_s``).
+        speed: the reported speed over ground, m/s, or None (see
+            ``DriveSettings.speed_sigma_mps``).
     """
 
     t: float
@@ -208,6 +224,8 @@ class Observation:
     outlier: bool
     truth_index: int
     delay_s: float
+    # left out of the repr, which older digests of a drive's fixes hash (tests/test_sim.py)
+    speed: float | None = field(default=None, repr=False)
 
 
 @dataclass(frozen=True)
@@ -228,6 +246,8 @@ class Drive:
         trip_ends: with ``DriveSettings.trips``, the indices into :attr:`path` of the
             segments that start a new trip: the vehicle dwells at the start vertex of
             each (the previous trip's destination). Empty for the random walk.
+        speed: (n,) reported speed per second, m/s, or None (no speed reported; see
+            ``DriveSettings.speed_sigma_mps``).
     """
 
     vehicle: str
@@ -239,6 +259,7 @@ class Drive:
     delay: FloatArray
     observed: tuple[int, int] | None = None
     trip_ends: tuple[int, ...] = ()
+    speed: FloatArray | None = None
 
 
 def gauss_markov(
@@ -691,8 +712,16 @@ def simulate_drive(
     delay = np.round(rng.uniform(*settings.delay_s, n), 3)
     last = truth[-1].path_index if truth else 0
     observed = None if lead == 0 else (lead, n - 1 - lead)
+    speed = None
+    if settings.speed_sigma_mps is not None and n:
+        # the true speed at each second (central difference of the 1 Hz positions, one
+        # side at the ends), plus the receiver's error: drawn last, so nothing above moves
+        pos = np.asarray(positions[:n], dtype=float)
+        true_v = np.gradient(pos) if n > 1 else np.zeros(1)
+        speed = np.round(np.maximum(
+            0.0, true_v + rng.normal(0.0, settings.speed_sigma_mps, n)), 2)
     return Drive(vehicle, tuple(route[: last + 1]), truth, error, outlier, accuracy, delay,
-                 observed, tuple(k for k in trip_starts if k <= last))
+                 observed, tuple(k for k in trip_starts if k <= last), speed)
 
 
 def _integrate(
@@ -789,5 +818,6 @@ def observe(drive: Drive, interval_s: int) -> list[Observation]:
             t=p.t, x=p.x + float(ex), y=p.y + float(ey), accuracy=float(drive.accuracy[i]),
             outlier=bool(np.any(drive.outlier_xy[i] != 0.0)), truth_index=i,
             delay_s=float(drive.delay[i]),
+            speed=None if drive.speed is None else float(drive.speed[i]),
         ))
     return out

@@ -92,11 +92,14 @@ def replay_records(
     for drive, obs in fleet:
         coords = _lonlat(network, [o.x for o in obs], [o.y for o in obs])
         for o, (lon, lat) in zip(obs, coords, strict=True):
+            payload: dict[str, Any] = {"vehicle": drive.vehicle, "time": o.t, "lat": lat,
+                                       "lon": lon, "accuracy": o.accuracy}
+            if o.speed is not None:  # only when the drive reports speed
+                payload["speed"] = o.speed
             out.append({
                 "at": round(o.t + o.delay_s, 3),
                 "topic": topic.format(vehicle=drive.vehicle),
-                "payload": {"vehicle": drive.vehicle, "time": o.t, "lat": lat, "lon": lon,
-                            "accuracy": o.accuracy},
+                "payload": payload,
             })
     out.sort(key=lambda r: (r["at"], r["payload"]["vehicle"]))
     return out
