@@ -688,10 +688,19 @@ class Pipeline:
                  matched: tuple[float, float] | None, has_road: bool, topic: str,
                  payload: bytes, at: float) -> None:
         """The vehicle's monitors on one answered fix; appends any reject and alerts."""
-        if self.routes is not None:
-            reject = self._route_for(state, fix, topic, payload, at)
-            if reject is not None:
-                out.append(reject)
+        routes = self.routes
+        if routes is not None:
+            # _route_for's first test, inline: the route wanted is the one followed
+            # already on nearly every fix
+            vehicle = fix.vehicle
+            wanted = (self._control.get(vehicle) or fix.route
+                      or self.vehicle_routes.get(vehicle))
+            alerts = state.alerts
+            if not (wanted == alerts.requested and (alerts.route is None) == (
+                    (routes.get(wanted) if wanted is not None else None) is None)):
+                reject = self._route_for(state, fix, topic, payload, at)
+                if reject is not None:
+                    out.append(reject)
         fences = self.fences
         alerts = state.alerts.update(
             fix, matched, has_road, fences,
