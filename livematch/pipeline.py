@@ -695,8 +695,8 @@ class Pipeline:
             vehicle = fix.vehicle
             wanted = (self._control.get(vehicle) or fix.route
                       or self.vehicle_routes.get(vehicle))
-            alerts = state.alerts
-            if not (wanted == alerts.requested and (alerts.route is None) == (
+            monitors = state.alerts
+            if not (wanted == monitors.requested and (monitors.route is None) == (
                     (routes.get(wanted) if wanted is not None else None) is None)):
                 reject = self._route_for(state, fix, topic, payload, at)
                 if reject is not None:
