@@ -345,15 +345,7 @@ class Pipeline:
         self.network = network
         self.settings = settings
         self.limits = limits
-        self._counters: Counter[str] = Counter()
-        # the counts every fix moves, as plain ints until someone reads ``counters``
-        # (``counters`` property): a Counter's item assignment goes through a Python-level
-        # slot (Counter defines ``__delitem__``), several times a dict's or an attribute's
-        self._n_messages = 0
-        self._n_fixes = 0
-        self._n_assignments = 0
-        self._n_commits = 0
-        self._n_eps: dict[float, int] = {}  # eps level -> assignments not yet counted
+        self.counters: Counter[str] = Counter()
         self._records = RecordBuilder(network)
         self._eps_keys: dict[float, str] = {}  # eps level -> its counter name
         self._vehicles: dict[str, _VehicleState] = {}
@@ -378,42 +370,6 @@ class Pipeline:
         self._idle_floor = -math.inf
         prepare_kernels()  # compile the matcher's kernels before the first message
 
-    @property
-    def counters(self) -> Counter[str]:
-        """Every outcome counted so far (see the module docstring), up to date when read.
-
-        The same Counter object from read to read (until replaced); the per-fix counts
-        (``messages``, ``fixes``, ``assignments``, ``commits``, ``eps_m:<eps>``) are
-        added to it at each read, so hold the object only between reads of this attribute.
-        """
-        counters = self._counters
-        if self._n_messages:
-            counters["messages"] += self._n_messages
-            self._n_messages = 0
-        if self._n_fixes:
-            counters["fixes"] += self._n_fixes
-            self._n_fixes = 0
-        if self._n_assignments:
-            counters["assignments"] += self._n_assignments
-            self._n_assignments = 0
-        if self._n_commits:
-            counters["commits"] += self._n_commits
-            self._n_commits = 0
-        eps_n = self._n_eps
-        for eps, n in eps_n.items():
-            if n:
-                key = self._eps_keys.get(eps)
-                if key is None:
-                    key = self._eps_keys[eps] = f"eps_m:{float(eps)!r}"
-                counters[key] += n
-                eps_n[eps] = 0
-        return counters
-
-    @counters.setter
-    def counters(self, value: Counter[str]) -> None:
-        self.counters  # noqa: B018 -- the pending counts go to the Counter replaced
-        self._counters = value
-
     # ------------------------------------------------------------------ messages
     def handle(self, topic: str, payload: bytes, at: float) -> list[Output]:
         """Process one received message; return what to publish (possibly nothing).
@@ -429,8 +385,8 @@ class Pipeline:
         ``duplicate`` counter. A message on the control topic assigns a route
         (:meth:`assign_route`).
         """
-        counters = self._counters
-        self._n_messages += 1
+        counters = self.counters
+        counters["messages"] += 1
         if self.control_topic is not self._control_for:
             self._control_for = self.control_topic
             self._control_shape = (_filter_shape(self.control_topic) if self.control_topic
@@ -481,7 +437,7 @@ class Pipeline:
             state.remember(t)
         if t < self._idle_floor:  # a first fix from long ago (late data)
             self._idle_floor = t
-        self._n_fixes += 1
+        counters["fixes"] += 1
         watch = state.alerts.watch
         if watch is None:
             state.alerts.seen(fix, at)  # the first fix: starts the watch, no alert
@@ -507,7 +463,7 @@ class Pipeline:
 
     def _reject(self, topic: str, payload: bytes, at: float, reason: str, detail: str,
                 vehicle: str | None) -> Output:
-        self._counters[f"reject:{reason}"] += 1
+        self.counters[f"reject:{reason}"] += 1
         record = {
             "at": at,
             "topic": topic,
@@ -543,7 +499,7 @@ class Pipeline:
                 return [self._reject(topic, payload, at, "bad_type",
                                      f"control message route must be a non-empty string or "
                                      f"null, got {route!r}", vehicle)]
-        self._counters["control"] += 1
+        self.counters["control"] += 1
         return self.assign_route(vehicle, route, at=at)
 
     def assign_route(self, vehicle: str, route_id: str | None, *,
@@ -640,18 +596,17 @@ class Pipeline:
         out: list[Output] = []
         if not events:
             return out
-        counters = self._counters
+        counters = self.counters
         record = self._records.record
         for event in events:
             # the event classes are final: a type test, cheaper than isinstance
             if type(event) is Assignment:
-                self._n_assignments += 1
-                eps_n = self._n_eps
+                counters["assignments"] += 1
                 eps = event.eps_m
-                try:
-                    eps_n[eps] += 1
-                except KeyError:
-                    eps_n[eps] = 1
+                key = self._eps_keys.get(eps)
+                if key is None:
+                    key = self._eps_keys[eps] = f"eps_m:{float(eps)!r}"
+                counters[key] += 1
                 out.append(Output("assignment", event.vehicle, record(event)))
                 if state is not None:
                     pending = state.pending
@@ -666,7 +621,7 @@ class Pipeline:
                 out.append(Output("assignment", event.vehicle, record(event)))
                 continue
             if type(event) is Commit:
-                self._n_commits += 1
+                counters["commits"] += 1
                 out.append(Output("commit", event.vehicle, record(event)))
                 continue
             if type(event) is Filtered:
@@ -688,19 +643,10 @@ class Pipeline:
                  matched: tuple[float, float] | None, has_road: bool, topic: str,
                  payload: bytes, at: float) -> None:
         """The vehicle's monitors on one answered fix; appends any reject and alerts."""
-        routes = self.routes
-        if routes is not None:
-            # _route_for's first test, inline: the route wanted is the one followed
-            # already on nearly every fix
-            vehicle = fix.vehicle
-            wanted = (self._control.get(vehicle) or fix.route
-                      or self.vehicle_routes.get(vehicle))
-            monitors = state.alerts
-            if not (wanted == monitors.requested and (monitors.route is None) == (
-                    (routes.get(wanted) if wanted is not None else None) is None)):
-                reject = self._route_for(state, fix, topic, payload, at)
-                if reject is not None:
-                    out.append(reject)
+        if self.routes is not None:
+            reject = self._route_for(state, fix, topic, payload, at)
+            if reject is not None:
+                out.append(reject)
         fences = self.fences
         alerts = state.alerts.update(
             fix, matched, has_road, fences,
@@ -805,7 +751,7 @@ class Pipeline:
         newest = restored.newest
         if newest is not None:
             self._idle_floor = min(self._idle_floor, newest)
-        self._counters["vehicle:imported"] += 1
+        self.counters["vehicle:imported"] += 1
 
     def evict(self, vehicle: str) -> list[Output]:
         """Flush one vehicle (commit everything pending) and forget it.
@@ -816,7 +762,7 @@ class Pipeline:
         state = self._state(vehicle)
         out = self._outputs(state.tracker.flush())
         del self._vehicles[vehicle]
-        self._counters["vehicle:evicted"] += 1
+        self.counters["vehicle:evicted"] += 1
         return out
 
     def drop(self, vehicle: str) -> None:
@@ -825,7 +771,7 @@ class Pipeline:
         Dropping a vehicle not held does nothing.
         """
         if self._vehicles.pop(vehicle, None) is not None:
-            self._counters["vehicle:dropped"] += 1
+            self.counters["vehicle:dropped"] += 1
 
     def idle_vehicles(self, now_fix_time: float, ttl_s: float) -> list[str]:
         """Vehicles whose newest fix is more than ``ttl_s`` seconds before ``now_fix_time``.
