@@ -533,11 +533,12 @@ def test_vehicle_state_allow_equals_min_max_bucket():
 
 
 def test_pipeline_counters_read_between_messages():
-    """The per-fix counts kept as ints reach ``counters`` at every read, none twice.
+    """``counters`` is one live Counter: read after every message or only at the end.
 
     Checked against the outputs themselves: every assignment and commit published is
-    counted once, whether ``counters`` is read after each message or only at the end,
-    and a replaced Counter keeps what was counted before it was replaced.
+    counted once, whichever way it is read, and a replaced Counter keeps what was
+    counted before it was replaced (``lab/record.py`` replaces it). It guards any later
+    change that keeps the per-fix counts outside the Counter between reads.
     """
     msgs = drive("bus1", 40) + drive("bus2", 30, seed=1)
     often = Pipeline(ROAD, MatchSettings())
