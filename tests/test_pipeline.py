@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+from collections import Counter
 
 import numpy as np
 import pytest
@@ -529,3 +530,41 @@ def test_vehicle_state_allow_equals_min_max_bucket():
             bucket = (tokens - 1.0 if ok else tokens, last_at, last_t)
             assert state.allow(at, t, rate_hz) is ok
             assert (state.tokens, state.last_at, state.last_t) == bucket
+
+
+def test_pipeline_counters_read_between_messages():
+    """``counters`` is one live Counter: read after every message or only at the end.
+
+    Checked against the outputs themselves: every assignment and commit published is
+    counted once, whichever way it is read, and a replaced Counter keeps what was
+    counted before it was replaced (``lab/record.py`` replaces it). It guards any later
+    change that keeps the per-fix counts outside the Counter between reads.
+    """
+    msgs = drive("bus1", 40) + drive("bus2", 30, seed=1)
+    often = Pipeline(ROAD, MatchSettings())
+    seen = often.counters
+    out: list[Output] = []
+    for topic, payload, at in msgs:
+        out.extend(often.handle(topic, payload, at))
+        assert often.counters is seen  # the same object from read to read
+        assert seen["messages"] == msgs.index((topic, payload, at)) + 1
+    out.extend(often.flush())
+    once = Pipeline(ROAD, MatchSettings())
+    run(once, msgs)
+    once.flush()
+    assert often.counters == once.counters
+    kinds = [o.kind for o in out]
+    assert often.counters["assignments"] == kinds.count("assignment")
+    assert often.counters["commits"] == kinds.count("commit")
+    assert sum(v for k, v in often.counters.items() if k.startswith("eps_m:")) == \
+        kinds.count("assignment")
+    assert often.counters["messages"] == often.counters["fixes"] == len(msgs)
+    # replacing the Counter: the counts taken before stay in the old one
+    old = Pipeline(ROAD, MatchSettings())
+    run(old, msgs[:5])
+    before = old.counters
+    run(old, msgs[5:7])
+    old.counters = Counter()
+    assert before["messages"] == 7
+    run(old, msgs[7:8])
+    assert old.counters["messages"] == 1
