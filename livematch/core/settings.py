@@ -362,6 +362,17 @@ class MatchSettings:
             the next commit was over ``join_detour``; docs/measured.md "Session 13
             (rmf5)"). Only the committed path changes (and a commit that now goes on
             no longer moves its first fix from a segment's very end to the next one).
+        end_stand: at the end-of-log flush (and eviction), a vehicle whose last fixes
+            stand (span at least 10 s, all within 2 ``sigma_m`` of the last) is
+            reported on the segment the committed path had reached at the first fix of
+            that stand: each later fix at the point of that segment nearest it (never
+            behind the one before), and the path ends on that segment
+            (:meth:`livematch.core.tracker.Tracker._end_stand`). Why: while the vehicle
+            stands its GNSS error leans one way for tens of seconds and the best path
+            follows it past the vertex ahead onto a road not driven; in the middle of a
+            log the fixes after the stand tell which way the vehicle left, at the end
+            of the log nothing does, and the segment the stand began on is the one the
+            fixes show it on. Final answers and the committed path of the flush only.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -405,6 +416,7 @@ class MatchSettings:
     motion_step: bool = False
     stand_short_m: float = 0.0
     break_rejoin: bool = False
+    end_stand: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -438,7 +450,7 @@ class MatchSettings:
                      "pace_reach", "stand_loops", "stand_commit_wait", "sparse_stand_wait",
                      "stand_loops_outer", "vertex_in_segment", "reverse_turns",
                      "reverse_turns_near", "lone_reverse_turns", "hold_filtered",
-                     "stand_at_vertex", "motion_step", "break_rejoin"):
+                     "stand_at_vertex", "motion_step", "break_rejoin", "end_stand"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):
