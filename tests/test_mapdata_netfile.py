@@ -53,7 +53,7 @@ def test_save_load_round_trip_identical(tmp_path: Path) -> None:
 
 
 def test_save_network_writes_plain_npz(tmp_path: Path) -> None:
-    """The file is an .npz (zip of .npy) whose meta names the format and version 1."""
+    """The file is an .npz (zip of .npy) whose meta names the format and version 2."""
     network, _ = read_osm(DATA / "tiny_roads.osm")
     path = tmp_path / "tiny.lmnet"
     save_network(network, path)
@@ -64,7 +64,7 @@ def test_save_network_writes_plain_npz(tmp_path: Path) -> None:
                                  "seg_way", "seg_road"))
     with np.load(path, allow_pickle=False) as data:
         meta = json.loads(str(data["meta"][()]))
-    assert (meta["format"], meta["version"], meta["built_at"]) == ("livematch-network", 1, None)
+    assert (meta["format"], meta["version"], meta["built_at"]) == ("livematch-network", 2, None)
 
 
 def rewrite_meta(src: Path, dst: Path, **changes: object) -> None:
@@ -81,8 +81,8 @@ def test_load_network_refuses_other_version(tmp_path: Path) -> None:
     """A file of another format version is refused with a rebuild hint."""
     network, _ = read_osm(DATA / "tiny_roads.osm")
     save_network(network, tmp_path / "a.lmnet")
-    rewrite_meta(tmp_path / "a.lmnet", tmp_path / "b.lmnet", version=2)
-    with pytest.raises(BadNetworkError, match=r"b\.lmnet: network file format version 2"):
+    rewrite_meta(tmp_path / "a.lmnet", tmp_path / "b.lmnet", version=3)
+    with pytest.raises(BadNetworkError, match=r"b\.lmnet: network file format version 3"):
         load_network(tmp_path / "b.lmnet")
 
 

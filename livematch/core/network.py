@@ -11,6 +11,16 @@ start or restart a match, because the sweep takes its next candidates from adjac
 
 Building a network from a map file is the job of :mod:`livematch.mapdata`; saving and
 loading the compiled ``.lmnet`` file lives there too (I/O stays out of the core).
+
+**Coincident segments.** A map may draw two ways over the same nodes (OpenStreetMap has
+a service road or a second classification laid over a street's nodes). Each would give a
+directed segment joining the same two vertices along the same straight line: no fix can
+tell them apart, and a route driven on one would count the other as a road not driven.
+Every build therefore merges them (:func:`merge_coincident`, called by
+:func:`livematch.core.build.network_from_roads` and :func:`livematch.mapdata.build.assemble`):
+one segment per ordered vertex pair, reporting the way of the most important road class
+(:data:`ROAD_CLASS_ORDER`), then the lowest way id. Directions stay the union of the
+ways' directions, since each direction is its own ordered pair.
 """
 
 from __future__ import annotations
@@ -27,6 +37,18 @@ from livematch.core.geometry import Projection
 IntArray = npt.NDArray[np.int64]
 Int32Array = npt.NDArray[np.int32]
 FloatArray = npt.NDArray[np.float64]
+
+#: OpenStreetMap ``highway`` classes from the most to the least important, the order the
+#: OSM wiki's Key:highway page lists the road classes in (from memory); each ``*_link``
+#: is placed right after its parent class (our choice: a link is part of that road's
+#: network). A class not listed ranks after all of these. Used only to pick which way a
+#: merged coincident segment reports (:func:`merge_coincident`).
+ROAD_CLASS_ORDER: tuple[str, ...] = (
+    "motorway", "motorway_link", "trunk", "trunk_link", "primary", "primary_link",
+    "secondary", "secondary_link", "tertiary", "tertiary_link",
+    "unclassified", "residential", "living_street", "service", "road",
+)
+_CLASS_RANK = {name: rank for rank, name in enumerate(ROAD_CLASS_ORDER)}
 
 
 @dataclass(eq=False)
@@ -166,3 +188,78 @@ def _twins(seg_from: Int32Array, seg_to: Int32Array, n_v: int) -> Int32Array:
     found = key[order][pos] == rev
     twin[found] = order[pos[found]].astype(np.int32)
     return twin
+
+
+@dataclass(frozen=True)
+class CoincidentMerge:
+    """Which directed segments survive :func:`merge_coincident` and what they report.
+
+    Attributes:
+        keep: (E',) int64 indices of the surviving segments, ascending: for each ordered
+            vertex pair the first segment (lowest index) that joins it, so segment order
+            is kept and a network without coincident segments keeps every index.
+        report: (E',) int64: for each survivor, the segment whose ``seg_way`` and
+            ``seg_road`` it takes (the chosen way of its group).
+        merged: number of segments dropped (E - E').
+        pairs: number of ordered vertex pairs that had two segments or more.
+    """
+
+    keep: IntArray
+    report: IntArray
+    merged: int
+    pairs: int
+
+
+def road_class_rank(highway: object) -> int:
+    """Position of a ``highway`` class in :data:`ROAD_CLASS_ORDER` (lower = more important).
+
+    >>> road_class_rank("primary") < road_class_rank("unclassified") < road_class_rank("service")
+    True
+    >>> road_class_rank("bus_guideway") == len(ROAD_CLASS_ORDER)
+    True
+    """
+    return _CLASS_RANK.get(str(highway), len(ROAD_CLASS_ORDER))
+
+
+def merge_coincident(
+    seg_from: npt.ArrayLike, seg_to: npt.ArrayLike, seg_way: npt.ArrayLike,
+    seg_road: npt.ArrayLike, roads: list[dict[str, Any]],
+) -> CoincidentMerge:
+    """Group directed segments by their (from, to) vertices: one survivor per group.
+
+    Two segments with the same start and end vertex are the same straight line in the
+    same direction (a segment has no shape points of its own), so the merge needs no
+    geometry test. The survivor is the group's lowest index; it reports the way and road
+    of the group's member with the most important road class (:func:`road_class_rank` of
+    ``roads[seg_road]["highway"]``), ties going to the lowest way id, then to the lowest
+    index. That choice is deterministic (independent of the order ways come in) and keeps
+    the more important class, which is what the simulator's travel times and a reader of
+    the outputs expect of a road drawn twice. Pure; the caller applies the result.
+
+    >>> m = merge_coincident([0, 0, 1], [1, 1, 0], [29, 288, 29], [0, 1, 0],
+    ...                      [{"highway": "service"}, {"highway": "unclassified"}])
+    >>> m.keep.tolist(), m.report.tolist(), m.merged, m.pairs
+    ([0, 2], [1, 2], 1, 1)
+    """
+    f = np.asarray(seg_from, dtype=np.int64)
+    t = np.asarray(seg_to, dtype=np.int64)
+    way = np.asarray(seg_way, dtype=np.int64)
+    road = np.asarray(seg_road, dtype=np.int64)
+    n = len(f)
+    if n == 0:
+        empty = np.empty(0, dtype=np.int64)
+        return CoincidentMerge(empty, empty, 0, 0)
+    key = f * (int(max(f.max(), t.max())) + 1) + t
+    rank_of_road = np.array([road_class_rank(r.get("highway")) for r in roads] or [0],
+                            dtype=np.int64)
+    rank = rank_of_road[road]
+    idx = np.arange(n, dtype=np.int64)
+    order = np.lexsort((idx, way, rank, key))  # by key, then rank, way, index
+    sorted_key = key[order]
+    starts = np.flatnonzero(np.r_[True, sorted_key[1:] != sorted_key[:-1]])
+    report = order[starts]  # the best member of each group
+    keep = np.minimum.reduceat(order, starts)  # the first member of each group
+    by_index = np.argsort(keep, kind="stable")
+    sizes = np.diff(np.r_[starts, n])
+    return CoincidentMerge(keep[by_index], report[by_index], n - len(starts),
+                           int(np.count_nonzero(sizes > 1)))

@@ -409,6 +409,22 @@ class MatchSettings:
             stays while the path goes round). Only between fixes at most ``gap_s``
             apart (1-10 s with the defaults). Only the committed path changes; without
             reported speeds it does nothing.
+        end_stand: at the end-of-log flush (and eviction), a vehicle whose last fixes
+            stand (span at least 10 s, all within 2 ``sigma_m`` of the last) is
+            reported on the segment the committed path had reached at the first fix of
+            that stand: each later fix at the point of that segment nearest it (never
+            behind the one before), and the path ends on that segment
+            (:meth:`livematch.core.tracker.Tracker._end_stand`). Why: while the vehicle
+            stands its GNSS error leans one way for tens of seconds and the best path
+            follows it past the vertex ahead onto a road not driven; in the middle of a
+            log the fixes after the stand tell which way the vehicle left, at the end
+            of the log nothing does, and the segment the stand began on is the one the
+            fixes show it on. Final answers and the committed path of the flush only.
+            Off by default: on bench/fleetmiss.py's decision runs it gains final
+            road+dir at 1 and 5 s in every cell and loses no fix there, but the random
+            walk at Helsinki 15 and 30 s loses 3 fixes, route mismatch rises by 0.0001 in
+            six cells and the error median in three (docs/measured.md "Session 14
+            (dupways)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -454,6 +470,7 @@ class MatchSettings:
     break_rejoin: bool = False
     stand_turnback: bool = False
     speed_laps: bool = False
+    end_stand: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -488,7 +505,7 @@ class MatchSettings:
                      "stand_loops_outer", "vertex_in_segment", "reverse_turns",
                      "reverse_turns_near", "lone_reverse_turns", "hold_filtered",
                      "stand_at_vertex", "motion_step", "break_rejoin", "stand_turnback",
-                     "speed_laps"):
+                     "speed_laps", "end_stand"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

@@ -1676,6 +1676,8 @@ class Tracker:
             chain = self._close_stand_loops(chain, before, self._eps_of(tree))
         if self.settings.stand_turnback and before is not None and len(chain) >= 3:
             chain = self._turn_back_at_stand(chain, before, self._eps_of(tree))
+        if settle_all and self.settings.end_stand and len(chain) >= 2:
+            chain = self._end_stand(chain, before, self._eps_of(tree))
         top = chain[-1]
         view = self._view
         first = chain[0]
@@ -1749,6 +1751,97 @@ class Tracker:
             self.lap_v = {t: v for t, v in self.lap_v.items() if t >= top.t}
         if prune is not None:
             prune.tree.prune(row)
+
+    def _end_stand(self, chain: list[Node], before: Node | None, eps: float) -> list[Node]:
+        """``chain`` with a stand at its end kept on the segment the stand began on.
+
+        Rule (``MatchSettings.end_stand``; the end-of-log flush only): the stand is the
+        longest run of ``chain``'s last nodes whose fixes lie within ``STAND_SIGMAS`` x
+        ``sigma_m`` of the last fix, reaching back to ``before`` (the last committed
+        node, already published) when every node of the chain stands and its fix does
+        too; it must span at least ``STAND_S`` seconds. Its first node A is where the
+        path was when the vehicle stopped (as far as this commit can tell). Every later
+        node on
+        another segment is put back on A's segment: at the point of that segment nearest
+        its fix, never behind A or the node before it. If one such point lies farther
+        than ``eps`` from its fix the chain stays as it was (the fixes do not stand at
+        A's segment; the certificate would not hold). The path then ends on A's segment.
+
+        Why: while a vehicle stands its GNSS error leans one way for tens of seconds
+        (temporally correlated error), and the best path follows it past the vertex
+        ahead onto a road the vehicle never drove (the "road out of V" misses of
+        bench/fleetmiss.py). In the middle of a log the fixes after the stand show which
+        way the vehicle left, and :meth:`_stand_at_vertex` reads them; at the end of the
+        log there are none, and fixes that stand show no movement off A's segment.
+
+        Example (a stand whose fixes drift 6 m past the end of a road onto the next):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1),
+            ...                           Road([(100.0, 0.0), (100.0, 80.0)], way=2)])
+            >>> tracker = Tracker(net, "v1", MatchSettings(end_stand=True))
+            >>> chain = []
+            >>> for i in range(12):
+            ...     x, y = (98.0 + 0.2 * i, 0.0) if i < 6 else (100.0, 0.5 * i)
+            ...     _ = tracker.update(Fix("v1", float(i), 0.0, 0.0, x, y))
+            ...     seg = 0 if i < 6 else 2
+            ...     pos = x / 100.0 if i < 6 else y / 80.0
+            ...     chain.append(Node(seg, tracker.fix_seq0 + i, float(i), pos, x, y,
+            ...                       chain[-1] if chain else None, (), 0.0, 0.0))
+            >>> [(n.seg, round(n.pos, 3)) for n in tracker._end_stand(chain, None, 15.0)][-2:]
+            [(0, 1.0), (0, 1.0)]
+        """
+        seq0 = self.fix_seq0
+        xy = self.fix_xy
+        n = len(chain)
+        r = chain[-1].seq - seq0
+        if not 0 <= r < self.fix_n:
+            return chain
+        lx, ly = xy.item(r, 0), xy.item(r, 1)
+        radius2 = (STAND_SIGMAS * self.settings.sigma_m) ** 2
+        s = n - 1
+        while s > 0:
+            r = chain[s - 1].seq - seq0
+            if not 0 <= r < self.fix_n:
+                break
+            dx, dy = xy.item(r, 0) - lx, xy.item(r, 1) - ly
+            if dx * dx + dy * dy > radius2:
+                break
+            s -= 1
+        anchor = chain[s]
+        if s == 0 and before is not None:
+            r = before.seq - seq0
+            if 0 <= r < self.fix_n:
+                dx, dy = xy.item(r, 0) - lx, xy.item(r, 1) - ly
+                if dx * dx + dy * dy <= radius2:
+                    anchor = before
+                    s = -1
+        seg = anchor.seg
+        if chain[-1].t - anchor.t < STAND_S or all(c.seg == seg for c in chain[s + 1:]):
+            return chain
+        view = self._view
+        ax, ay = view.vx[view.sf[seg]], view.vy[view.sf[seg]]
+        ux, uy = view.vx[view.st[seg]] - ax, view.vy[view.st[seg]] - ay
+        length2 = ux * ux + uy * uy
+        out = chain[:s + 1]
+        pos = anchor.pos
+        for node in chain[s + 1:]:
+            parent = out[-1] if out else anchor
+            if node.seg == seg and node.pos >= pos and not node.via:
+                pos = node.pos
+                out.append(Node(seg, node.seq, node.t, pos, node.x, node.y, parent, (),
+                                node.cost, node.low))
+                continue
+            r = node.seq - seq0
+            fx, fy = xy.item(r, 0), xy.item(r, 1)
+            if length2 > 0.0:
+                proj = ((fx - ax) * ux + (fy - ay) * uy) / length2
+                pos = max(pos, min(1.0, proj))
+            px, py = ax + pos * ux, ay + pos * uy
+            if (px - fx) ** 2 + (py - fy) ** 2 > eps * eps:
+                return chain
+            out.append(Node(seg, node.seq, node.t, pos, px, py, parent, (), node.cost,
+                            node.low))
+        return out
 
     def _stand_at_vertex(
         self, chain: list[Node], before: Node | None, goes_on: bool, starts: bool,

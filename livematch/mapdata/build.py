@@ -6,7 +6,11 @@ may go. This module projects the vertices and lays out the directed segments.
 
 Segment order is deterministic: roads in source order; within a chain the forward
 segments in drawing order, then the backward ones in travel order (last point first), so
-consecutive segments along a direction of travel have consecutive indices.
+consecutive segments along a direction of travel have consecutive indices. Then, with
+:attr:`ImportOptions.merge_coincident` (the default), segments joining the same two
+vertices in the same direction are merged (:func:`livematch.core.network.merge_coincident`):
+the first of them keeps its place and reports the way of the most important road class,
+then the lowest way id; the later ones are dropped, so the indices after them move down.
 """
 
 from __future__ import annotations
@@ -19,9 +23,9 @@ import numpy as np
 import numpy.typing as npt
 
 from livematch.core.geometry import Projection
-from livematch.core.network import RoadNetwork
+from livematch.core.network import RoadNetwork, merge_coincident
 from livematch.errors import BadNetworkError
-from livematch.mapdata.options import ImportOptions
+from livematch.mapdata.options import ImportOptions, ImportStats
 
 IntArray = npt.NDArray[np.int64]
 FloatArray = npt.NDArray[np.float64]
@@ -72,6 +76,7 @@ def assemble(
     roads: list[dict[str, Any]],
     options: ImportOptions,
     source: str,
+    stats: ImportStats | None = None,
 ) -> RoadNetwork:
     """Build the network from chains and the positions of their nodes.
 
@@ -82,6 +87,7 @@ def assemble(
         roads: one dict per road, indexed by ``Chain.road``.
         options: projection choice.
         source: description stored on the network.
+        stats: when given, the merge of coincident segments is counted and noted in it.
 
     Raises:
         BadNetworkError: when there is no chain at all (nothing to drive on).
@@ -111,14 +117,29 @@ def assemble(
         n = (len(a) * (2 if chain.direction == BOTH else 1))
         ways.append(np.full(n, chain.way, dtype=np.int64))
         road_idx.append(np.full(n, chain.road, dtype=np.int64))
+    seg_from = np.concatenate(froms)
+    seg_to = np.concatenate(tos)
+    seg_way = np.concatenate(ways)
+    seg_road = np.concatenate(road_idx)
+    if options.merge_coincident:
+        merge = merge_coincident(seg_from, seg_to, seg_way, seg_road, roads)
+        if merge.merged:
+            seg_from, seg_to = seg_from[merge.keep], seg_to[merge.keep]
+            seg_way, seg_road = seg_way[merge.report], seg_road[merge.report]
+            if stats is not None:
+                stats.coincident_merged += merge.merged
+                stats.coincident_pairs += merge.pairs
+                stats.notes.append(
+                    f"{merge.merged} directed segments merged into another over the same "
+                    f"two nodes ({merge.pairs} node pairs drawn by more than one way)")
     return RoadNetwork(
         projection=projection,
         node_xy=np.column_stack([x, y]),
         node_id=used,
-        seg_from=np.concatenate(froms).astype(np.int32),
-        seg_to=np.concatenate(tos).astype(np.int32),
-        seg_way=np.concatenate(ways),
-        seg_road=np.concatenate(road_idx).astype(np.int32),
+        seg_from=seg_from.astype(np.int32),
+        seg_to=seg_to.astype(np.int32),
+        seg_way=seg_way,
+        seg_road=seg_road.astype(np.int32),
         roads=roads,
         source=source,
     )

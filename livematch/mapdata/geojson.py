@@ -153,7 +153,7 @@ def parse_geojson(
     coords = np.asarray(lonlat, dtype=np.float64)
     ids = np.arange(1, len(coords) + 1, dtype=np.int64)
     network = assemble(chains, ids, coords[:, 0], coords[:, 1], roads, options,
-                       f"GeoJSON {Path(where).name}")
+                       f"GeoJSON {Path(where).name}", stats)
     return network, stats
 
 

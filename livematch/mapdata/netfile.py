@@ -8,10 +8,19 @@ A ``.lmnet`` file is a numpy ``.npz`` archive (``np.savez``, read with
   the constructor arrays of :class:`~livematch.core.network.RoadNetwork`; the derived
   arrays (lengths, adjacency, twins) are recomputed on load;
 * ``meta``: a 0-d unicode array holding a JSON object with ``format``
-  (``"livematch-network"``), ``version`` (1), ``crs`` (the projection as given to
+  (``"livematch-network"``), ``version`` (2), ``crs`` (the projection as given to
   :class:`~livematch.core.geometry.Projection`), ``roads``, ``source``, ``options``
   (:class:`ImportOptions` or null), ``stats`` (:class:`ImportStats` or null) and
   ``built_at`` (whatever the caller passed, e.g. an ISO 8601 time; null when none).
+
+Version 2 (this one) is written by builds that merge coincident segments (two ways over
+the same nodes, :func:`livematch.core.network.merge_coincident`); the arrays are laid out
+as in version 1. A version 1 file is still read, and its coincident segments are merged
+on load, so it gives the network a fresh build of its source gives (the merge keeps the
+first segment of each group in place, which is what the build does). Segment indices of
+such a network move when anything was merged: a tracker checkpoint written against the
+unmerged network is then refused (its segment count differs) and the vehicle starts
+afresh, as after any change of map.
 
 :func:`open_network` takes either a map source (``.osm.pbf``, ``.osm``, ``.osm.bz2``,
 ``.osm.gz``, ``.geojson``, ``.json``) or a compiled file, decided by the file name and,
@@ -29,7 +38,7 @@ from pathlib import Path
 import numpy as np
 
 from livematch.core.geometry import Projection
-from livematch.core.network import RoadNetwork
+from livematch.core.network import RoadNetwork, merge_coincident
 from livematch.errors import BadNetworkError
 from livematch.mapdata.geojson import read_geojson
 from livematch.mapdata.options import ImportOptions, ImportStats
@@ -47,7 +56,9 @@ __all__ = [
 ]
 
 FORMAT_NAME = "livematch-network"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
+#: Versions :func:`load_network_detailed` reads (1: written before the coincident merge).
+READABLE_VERSIONS = (1, 2)
 _ARRAYS = ("node_xy", "node_id", "seg_from", "seg_to", "seg_way", "seg_road")
 _OSM_SUFFIXES = (".osm.pbf", ".pbf", ".osm", ".osm.bz2", ".osm.gz", ".o5m", ".opl")
 _GEOJSON_SUFFIXES = (".geojson", ".json")
@@ -132,16 +143,19 @@ def load_network_detailed(path: str | Path) -> OpenedNetwork:
             meta = json.loads(str(data["meta"][()]))
             if not isinstance(meta, dict) or meta.get("format") != FORMAT_NAME:
                 raise BadNetworkError(f"{path}: not a livematch network file")
-            if meta.get("version") != FORMAT_VERSION:
+            version = meta.get("version")
+            if version not in READABLE_VERSIONS:
                 raise BadNetworkError(
-                    f"{path}: network file format version {meta.get('version')!r}, this "
-                    f"livematch reads version {FORMAT_VERSION}; rebuild it with "
-                    "'livematch network build'"
+                    f"{path}: network file format version {version!r}, this "
+                    f"livematch reads versions {', '.join(map(str, READABLE_VERSIONS))}; "
+                    "rebuild it with 'livematch network build'"
                 )
             missing = [name for name in _ARRAYS if name not in data.files]
             if missing:
                 raise BadNetworkError(f"{path}: network file lacks arrays {missing}")
             arrays = {name: data[name] for name in _ARRAYS}
+            if version == 1:
+                _merge_v1(arrays, meta)
     except (OSError, ValueError, zipfile.BadZipFile, json.JSONDecodeError) as exc:
         raise BadNetworkError(f"{path}: not a livematch network file ({exc})") from exc
     try:
@@ -162,6 +176,31 @@ def load_network_detailed(path: str | Path) -> OpenedNetwork:
         options=ImportOptions.from_json(options) if isinstance(options, dict) else None,
         built_at=meta.get("built_at"),
     )
+
+
+def _merge_v1(arrays: dict[str, np.ndarray], meta: dict[str, object]) -> None:
+    """Merge the coincident segments of a version 1 file in place (as a build would)."""
+    roads = meta.get("roads")
+    if not isinstance(roads, list):
+        raise ValueError("roads missing")
+    try:
+        merge = merge_coincident(arrays["seg_from"], arrays["seg_to"], arrays["seg_way"],
+                                 arrays["seg_road"], roads)
+    except (AttributeError, IndexError, TypeError) as exc:  # damaged roads or arrays
+        raise ValueError(f"cannot merge coincident segments: {exc}") from exc
+    if merge.merged:
+        for name in ("seg_from", "seg_to"):
+            arrays[name] = arrays[name][merge.keep]
+        for name in ("seg_way", "seg_road"):
+            arrays[name] = arrays[name][merge.report]
+    stats = meta.get("stats")
+    if isinstance(stats, dict):
+        stats["coincident_merged"] = merge.merged
+        stats["coincident_pairs"] = merge.pairs
+        if merge.merged:
+            stats.setdefault("notes", []).append(
+                f"version 1 file: {merge.merged} directed segments merged on load into "
+                f"another over the same two nodes ({merge.pairs} node pairs)")
 
 
 def source_kind(path: str | Path) -> str:

@@ -37,6 +37,10 @@ class ImportOptions:
         projection: ``"local"`` (azimuthal equidistant about the bounding-box centre) or
             ``"utm"`` (the UTM zone of that centre).
         epsg: an EPSG code that wins over ``projection`` (it must be in metres).
+        merge_coincident: merge directed segments that join the same two vertices (a
+            road drawn twice over the same nodes) into one, reporting the way of the more
+            important road class (:func:`livematch.core.network.merge_coincident`).
+            On by default; False keeps the map as drawn (for comparisons).
 
     Example:
         >>> "service" in ImportOptions(include_service=False).kept_highways()
@@ -49,6 +53,7 @@ class ImportOptions:
     include_service: bool = True
     projection: str = "local"
     epsg: int | None = None
+    merge_coincident: bool = True
 
     def __post_init__(self) -> None:
         if self.projection not in PROJECTION_KINDS:
@@ -80,6 +85,9 @@ class ImportOptions:
             include_service=bool(data.get("include_service", True)),
             projection=str(data.get("projection", "local")),
             epsg=data.get("epsg"),
+            # files written before the option existed: their networks are merged on load
+            # (see livematch.mapdata.netfile), so the default describes them too
+            merge_coincident=bool(data.get("merge_coincident", True)),
         )
 
 
@@ -97,6 +105,10 @@ class ImportStats:
             extracts cut at a bounding box); only their parts between present nodes are kept.
         missing_node_refs: number of such missing node references.
         degenerate: ways/features with fewer than two distinct points (no segment).
+        coincident_merged: directed segments dropped because another segment joins the
+            same two vertices in the same direction (a road drawn twice; see
+            :attr:`ImportOptions.merge_coincident`).
+        coincident_pairs: ordered vertex pairs that had such duplicates.
     """
 
     source_format: str
@@ -107,6 +119,8 @@ class ImportStats:
     ways_clipped: int = 0
     missing_node_refs: int = 0
     degenerate: int = 0
+    coincident_merged: int = 0
+    coincident_pairs: int = 0
     notes: list[str] = field(default_factory=list)
 
     def to_json(self) -> dict[str, Any]:

@@ -215,7 +215,7 @@ def read_osm(
     ids = np.fromiter(sorted(found), dtype=np.int64, count=len(found))
     lon = np.fromiter((found[i][0] for i in ids.tolist()), dtype=np.float64, count=len(ids))
     lat = np.fromiter((found[i][1] for i in ids.tolist()), dtype=np.float64, count=len(ids))
-    network = assemble(chains, ids, lon, lat, roads, options, source)
+    network = assemble(chains, ids, lon, lat, roads, options, source, stats)
     return network, stats
 
 

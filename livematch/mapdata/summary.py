@@ -1,8 +1,9 @@
 """Facts about a network for people: counts, extent, road length by class, connectivity.
 
 Used by ``livematch network info``. Road length counts each physical piece of road once:
-a two-way road's segment pair (a->b and b->a of the same road) adds its length once, a
-one-way segment adds its length once.
+a two-way road's segment pair (a->b and b->a) adds its length once, a one-way segment
+adds its length once; after the build's merge of coincident segments a pair may report
+two ways (a one-way drawn over a two-way road), and it is still one piece.
 """
 
 from __future__ import annotations
@@ -22,8 +23,8 @@ FloatArray = npt.NDArray[np.float64]
 def physical_length_by_class(network: RoadNetwork) -> dict[str, float]:
     """Metres of road per highway class, each physical road piece counted once.
 
-    Two segments of the same road joining the same two vertices (either direction) are one
-    piece. Classes are sorted by name.
+    Segments joining the same two vertices (either direction) are one piece, counted in
+    the class of the lower-indexed one. Classes are sorted by name.
 
     Example: a 100 m two-way road gives ``{"road": 100.0}``; the same as one-way gives
     the same; an empty network gives ``{}``.
@@ -32,7 +33,7 @@ def physical_length_by_class(network: RoadNetwork) -> dict[str, float]:
         return {}
     lo = np.minimum(network.seg_from, network.seg_to).astype(np.int64)
     hi = np.maximum(network.seg_from, network.seg_to).astype(np.int64)
-    keys = np.stack([network.seg_road.astype(np.int64), lo, hi], axis=1)
+    keys = np.stack([lo, hi], axis=1)
     _, first = np.unique(keys, axis=0, return_index=True)
     totals: dict[str, float] = defaultdict(float)
     for s in first.tolist():
