@@ -547,11 +547,26 @@ def owned_bytes(root: object, skip: set[int], counted: set[int]) -> tuple[int, i
     return objects, size
 
 
+def row_bytes() -> int:
+    """Bytes of a candidate-tree row (its ints and the floats every row keeps)."""
+    from livematch.core import _tree_kernel as tk
+
+    return 4 * tk.ROW_I + 8 * tk.ROW_F
+
+
+def live_bytes() -> int:
+    """Bytes a tree keeps for each live row apart from the rows (0: every row keeps them)."""
+    from livematch.core import _tree_kernel as tk
+
+    return 8 * getattr(tk, "LIVE_F", 0)
+
+
 def tree_room(tree: Any) -> dict[str, int]:
     """One candidate tree's rows, vias and fix times: room, in use, still needed.
 
     Needed: what a compaction now would keep (the live block and its ancestors;
-    ``kept_rows``), i.e. what a save and restore holds.
+    ``kept_rows``), i.e. what a save and restore holds. ``cap_live``: the live rows the
+    tree has room for the floats of (``low, cost``; 0 where every row keeps its own).
     """
     from livematch.core import _tree_kernel as tk
 
@@ -559,14 +574,14 @@ def tree_room(tree: Any) -> dict[str, int]:
     if ti.item(tk.H_N) == 0:
         return {"bytes": 0, "arrays": 0, "cap_rows": 0, "rows": 0, "need_rows": 0,
                 "cap_vias": 0, "vias": 0, "need_vias": 0, "cap_t": 0, "t": 0, "need_t": 0,
-                "live": 0}
+                "live": 0, "cap_live": 0}
     need_rows, need_vias, need_t = tk.kept_rows(ti)
     n = ti.item(tk.H_N)
     t_used = ti.item(tk.ROW_I * (n - 1) + tk.K_SEQ) - ti.item(tk.H_T0) + 1
     return {"bytes": ti.nbytes + tree.tf.nbytes, "arrays": 2, "cap_rows": tree.cap_rows,
             "rows": n, "need_rows": need_rows, "cap_vias": tree.cap_vias, "vias": tree.nv,
             "need_vias": need_vias, "cap_t": tree.cap_times, "t": t_used, "need_t": need_t,
-            "live": len(tree)}
+            "live": len(tree), "cap_live": getattr(tree, "cap_live", 0)}
 
 
 def fleet_breakdown(vehicles: int, seconds: int, drives_count: int, duration: float,
@@ -924,18 +939,20 @@ def breakdown_lines(b: dict[str, Any] | None) -> list[str]:
         *(f"| {name} | {c / v:.2f} | {size / v:.0f} |"
           for name, (c, size) in b["parts"].items() if size),
         "",
-        "Candidate trees by level (means per vehicle; rows of 40 bytes, vias of 4, fix "
+        f"Candidate trees by level (means per vehicle; rows of {row_bytes()} bytes and "
+        f"{live_bytes()} more for each live row room, vias of 4, fix "
         "times of 8; needed: what a compaction now keeps, the live block and its "
         "ancestors):",
         "",
-        "| eps m | bytes | rows room / in use / needed | live | vias room / in use / "
-        "needed | fix times room / in use / needed |",
-        "|---:|---:|---|---:|---|---|",
+        "| eps m | bytes | rows room / in use / needed | live room / live | vias room / "
+        "in use / needed | fix times room / in use / needed |",
+        "|---:|---:|---|---|---|---|",
     ]
     for eps, t in b["trees"].items():
         lines.append(
             f"| {eps} | {t['bytes'] / v:.0f} | {t['cap_rows'] / v:.1f} / {t['rows'] / v:.1f} / "
-            f"{t['need_rows'] / v:.1f} | {t['live'] / v:.1f} | {t['cap_vias'] / v:.1f} / "
+            f"{t['need_rows'] / v:.1f} | {t.get('cap_live', 0) / v:.1f} / "
+            f"{t['live'] / v:.1f} | {t['cap_vias'] / v:.1f} / "
             f"{t['vias'] / v:.1f} / {t['need_vias'] / v:.1f} | {t['cap_t'] / v:.1f} / "
             f"{t['t'] / v:.1f} / {t['need_t'] / v:.1f} |")
     return lines

@@ -60,6 +60,11 @@ def fields(n: Node) -> tuple[object, ...]:
             n.low.hex(), n.via)
 
 
+def path_fields(n: Node) -> tuple[object, ...]:
+    """:func:`fields` without ``cost`` and ``low``, which a tree keeps for live rows only."""
+    return (n.seg, n.seq, n.t.hex(), n.pos.hex(), n.x.hex(), n.y.hex(), n.via)
+
+
 def point(view: NetworkView, seg: int, pos: float) -> tuple[float, float]:
     """The point at ``pos`` on ``seg`` (``a + pos (b - a)``, the sweep's expression)."""
     a, b = view.sf[seg], view.st[seg]
@@ -245,7 +250,9 @@ def check_tree(tree: CandidateTree, tracker: Tracker,
         assert [fields(n) for n in new_live] == [fields(n) for n in ref_new.values()]
         for got_node, ref_node in zip(new_live, ref_new.values(), strict=True):
             assert ref_node.parent is not None and got_node.parent is not None
-            assert fields(got_node.parent) == fields(ref_node.parent)
+            # the parent is no longer live: its path fields kept, cost and low not
+            assert path_fields(got_node.parent) == path_fields(ref_node.parent)
+            assert math.isnan(got_node.parent.cost) and math.isnan(got_node.parent.low)
     # pruning to the descendants of an ancestor
     keep = nodes[tree.ancestor_at(best, seq - 2)]
     want = [fields(n) for n in live if descends_from(n, keep)]
@@ -313,21 +320,29 @@ def test_compact_in_place_equals_compact_into_new_arrays() -> None:
             if tree.n == 0:
                 continue
             n_before, lo_before, live = tree.n, tree.lo, len(tree)
-            ti, tf = _t.compact(tree.ti, tree.tf, 0, 0, 0)
+            ti, tf = _t.compact(tree.ti, tree.tf, 0, 0, 0, 0)
             n, nv, lo = (int(v) for v in ti[[_t.H_N, _t.H_NV, _t.H_LO]])
             assert int(ti[_t.H_HI]) - lo == live
+            assert int(ti[_t.H_LCAP]) >= live
             vb = _t.via_base(ti)
-            tb = _t.ROW_F * int(ti[_t.H_RCAP])
+            lb = _t.live_base(ti)
+            tb = _t.time_base(ti)
             ti2, tf2 = tree.ti.copy(), tree.tf.copy()
             compact_in_place(ti2, tf2)
             vb2 = _t.via_base(ti2)
-            tb2 = _t.ROW_F * int(ti2[_t.H_RCAP])
-            # the same header but for the room (H_RCAP: the in-place arrays keep theirs)
-            head = [c for c in range(_t.HEAD) if c != _t.H_RCAP]
+            lb2 = _t.live_base(ti2)
+            tb2 = _t.time_base(ti2)
+            # the same header but for the room (the in-place arrays keep theirs)
+            head = [c for c in range(_t.HEAD) if c not in (_t.H_RCAP, _t.H_LCAP)]
             assert ti2[head].tolist() == ti[head].tolist()
             assert ti2[:_t.HEAD + _t.ROW_I * n].tolist()[_t.HEAD:] == \
                 ti[:_t.HEAD + _t.ROW_I * n].tolist()[_t.HEAD:]
             assert tf2[:_t.ROW_F * n].tobytes() == tf[:_t.ROW_F * n].tobytes()
+            # the live block's low and cost, as the tree had them
+            lf = _t.LIVE_F * live
+            old_lb = tree._live_base()
+            assert tf2[lb2:lb2 + lf].tobytes() == tf[lb:lb + lf].tobytes() == \
+                tree.tf[old_lb:old_lb + lf].tobytes()
             assert ti2[vb2:vb2 + nv].tolist() == ti[vb:vb + nv].tolist()
             rows, vias, times = kept_rows(tree.ti)
             assert (rows, vias) == (n, nv)
@@ -341,13 +356,14 @@ def test_compact_in_place_equals_compact_into_new_arrays() -> None:
                 assert kept_t is None or _t.time_of(ti, tf, r) == kept_t
             # into new numpy arrays of exactly that size (CandidateTree.shrink, packed)
             ti3 = np.empty(_t.HEAD + _t.ROW_I * n + nv, np.int32)
-            tf3 = np.empty(_t.ROW_F * n + times)
-            _t.compact_into(tree.ti, tree.tf, ti3, tf3, n)
+            tf3 = np.empty(_t.ROW_F * n + lf + times)
+            _t.compact_into(tree.ti, tree.tf, ti3, tf3, n, live)
             assert ti3[head].tolist() == ti[head].tolist()
             assert ti3[_t.HEAD:_t.HEAD + _t.ROW_I * n].tobytes() == \
                 ti[_t.HEAD:_t.HEAD + _t.ROW_I * n].tobytes()
             assert tf3[:_t.ROW_F * n].tobytes() == tf[:_t.ROW_F * n].tobytes()
-            assert tf3[_t.ROW_F * n:].tobytes() == tf[tb:tb + times].tobytes()
+            assert tf3[_t.ROW_F * n:_t.ROW_F * n + lf].tobytes() == tf[lb:lb + lf].tobytes()
+            assert tf3[_t.ROW_F * n + lf:].tobytes() == tf[tb:tb + times].tobytes()
             assert ti3[_t.HEAD + _t.ROW_I * n:].tobytes() == ti[vb:vb + nv].tobytes()
             # the tree compacted is unchanged
             assert (tree.n, tree.lo) == (n_before, lo_before)

@@ -190,7 +190,7 @@ def test_tracker_restore_mid_trip_gives_identical_outputs(cut: int, compress: bo
     first = Tracker(net, "v1", settings)
     before = run(first, fixes[:cut], flush=False)
     blob = first.to_bytes(compress=compress)
-    assert blob[:5] == b"LMT5" + (b"\x01" if compress else b"\x00")
+    assert blob[:5] == b"LMT6" + (b"\x01" if compress else b"\x00")
     restored = Tracker.from_bytes(net, settings, blob)
     assert restored.to_bytes() == first.to_bytes()
     after = run(restored, fixes[cut:])
@@ -325,7 +325,7 @@ def test_tracker_reads_older_lmt1_state() -> None:
     assert old.seq == 118 and old.vehicle == "bus-7"  # 120 fixes, 2 filtered
     assert any(len(lv.tree) for lv in old.levels)
     new = Tracker.from_bytes(net, None, old.to_bytes())
-    assert old.to_bytes()[:4] == b"LMT5"
+    assert old.to_bytes()[:4] == b"LMT6"
     d = simulate_drive(net, np.random.default_rng([41, 77]), "bus-7", 1.7e9,
                        DriveSettings(duration_s=240.0), drivable_segments(net))
     fixes = [Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy) for o in observe(d, 1)]
@@ -368,7 +368,7 @@ def test_tracker_reads_older_lmt2_state(name: str, every: int, cut: int) -> None
     assert after == run(straight, fixes[cut:])
     assert any(e.kind == "filtered" and e.reason == "spike" for e in after) == (every == 10)
     assert restored.to_bytes() == straight.to_bytes()
-    assert restored.to_bytes()[:4] == b"LMT5"
+    assert restored.to_bytes()[:4] == b"LMT6"
 
 
 def side_road_parallel() -> RoadNetwork:

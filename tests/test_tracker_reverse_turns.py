@@ -124,11 +124,11 @@ def _walk(settings: MatchSettings, restore_at: int = -1,
 
 
 def _without_step_dir(blob: bytes) -> bytes:
-    """An LMT5 state (uncompressed) with ``step_dir`` taken out of its JSON header, as a
+    """An LMT6 state (uncompressed) with ``step_dir`` taken out of its JSON header, as a
     state written before reverse_turns (or with it off) is."""
     import json
 
-    assert blob[:4] == b"LMT5" and blob[4] == 0
+    assert blob[:4] == b"LMT6" and blob[4] == 0
     size = int.from_bytes(blob[5:9], "little")
     header = json.loads(blob[9:9 + size])
     assert "step_dir" in header

@@ -1,4 +1,4 @@
-"""The tracker's serialised state (``LMT5``): both encodings, older versions, corruption."""
+"""The tracker's serialised state (``LMT6``): both encodings, older versions, corruption."""
 
 from __future__ import annotations
 
@@ -45,7 +45,7 @@ def test_state_compressed_is_smaller_and_same_content() -> None:
 @pytest.mark.parametrize(("name", "every", "cut"), [
     ("test-osm-bus7-fix120.lmt3", 1, 120), ("test-osm-bus7-10s-fix30.lmt3", 10, 30)])
 def test_state_reads_older_lmt3(name: str, every: int, cut: int) -> None:
-    """An LMT3 checkpoint continues like a run never saved, and is rewritten as LMT5.
+    """An LMT3 checkpoint continues like a run never saved, and is rewritten as LMT6.
 
     tests/data/states/*.lmt3 were written by the LMT3 code (commit fb7def4, its default
     settings, kept in lmt3-settings.json) after ``cut`` fixes of the simulated drive; the
@@ -65,14 +65,14 @@ def test_state_reads_older_lmt3(name: str, every: int, cut: int) -> None:
     assert restored.to_bytes() == straight.to_bytes()
     assert run(restored, fixes[cut:]) == run(straight, fixes[cut:])
     assert restored.to_bytes() == straight.to_bytes()
-    assert restored.to_bytes()[:4] == b"LMT5"
+    assert restored.to_bytes()[:4] == b"LMT6"
 
 
 @pytest.mark.parametrize(("name", "every", "cut"), [
     ("test-osm-bus7-fix120.lmt4", 1, 120), ("test-osm-bus7-10s-fix30.lmt4", 10, 30)])
 def test_state_reads_older_lmt4(name: str, every: int, cut: int) -> None:
     """An LMT4 checkpoint (each tree row with its fix's time) continues like a run never
-    saved, and is rewritten as LMT5 (one time per fix).
+    saved, and is rewritten as LMT6 (one time per fix).
 
     tests/data/states/*.lmt4 were written by the LMT4 code (commit d5bf8d6, its default
     settings, kept in lmt4-settings.json, ``hold_filtered`` on: the states hold an answer
@@ -100,7 +100,35 @@ def test_state_reads_older_lmt4(name: str, every: int, cut: int) -> None:
                 assert tree.time_of(seq) == t
     assert run(restored, fixes[cut:]) == run(straight, fixes[cut:])
     assert restored.to_bytes() == straight.to_bytes()
-    assert restored.to_bytes()[:4] == b"LMT5"
+    assert restored.to_bytes()[:4] == b"LMT6"
+
+
+@pytest.mark.parametrize(("name", "every", "cut"), [
+    ("test-osm-bus7-fix120.lmt5", 1, 120), ("test-osm-bus7-10s-fix30.lmt5", 10, 30)])
+def test_state_reads_older_lmt5(name: str, every: int, cut: int) -> None:
+    """An LMT5 checkpoint (low, pos and cost in every tree row) continues like a run never
+    saved, and is rewritten as LMT6 (low and cost of the live rows only).
+
+    tests/data/states/*.lmt5 were written by the LMT5 code (commit 2244400, its default
+    settings, kept in lmt5-settings.json) after ``cut`` fixes of the simulated drive;
+    the 10 s one holds the spike test's copy of the levels.
+    """
+    net, fixes = _test_extract_drive(every)
+    blob = (STATES / name).read_bytes()
+    assert blob[:4] == b"LMT5"
+    then = json.loads((STATES / "lmt5-settings.json").read_text(encoding="utf-8"))
+    settings = MatchSettings(**{**then, "eps_levels": tuple(then["eps_levels"])})
+    straight = Tracker(net, "bus-7", settings)
+    run(straight, fixes[:cut], flush=False)
+    restored = Tracker.from_bytes(net, settings, blob)
+    assert (restored.before is not None) == (every == 10)
+    assert restored.to_bytes() == straight.to_bytes()
+    assert restored.to_bytes()[:4] == b"LMT6"
+    # shorter: 16 bytes fewer for every row that is not live
+    rows = sum(lv.tree.n - len(lv.tree) for lv in restored.levels)
+    assert rows > 0 and len(restored.to_bytes()) < len(blob)
+    assert run(restored, fixes[cut:]) == run(straight, fixes[cut:])
+    assert restored.to_bytes() == straight.to_bytes()
 
 
 def test_state_corrupt_lmt5_is_a_bad_state() -> None:

@@ -28,9 +28,10 @@ import numpy as np
 from livematch.core import _sweep_kernel as _sk
 from livematch.core._kernel_key import code_key
 from livematch.core._sweep_kernel import (
-    F_COST,
-    F_LOW,
     F_POS,
+    H_HI,
+    H_LCAP,
+    H_LO,
     H_RCAP,
     H_T0,
     HEAD,
@@ -38,6 +39,9 @@ from livematch.core._sweep_kernel import (
     K_SEG,
     K_SEQ,
     K_VIAE,
+    LF_COST,
+    LF_LOW,
+    LIVE_F,
     ROW_F,
     ROW_I,
 )
@@ -60,7 +64,9 @@ def _keyed_chain_rows(sweep_key: int) -> Callable[..., int]:
         ``top`` (as ``chain_into`` orders them), entry ``length`` the row before them
         (its row -1 when there is none; its other fields then unset). Ints at ``oi[CHAIN_I
         * j:]``: row, seg, seq, v0, v1 (the row's vias are ``ti[v0:v1]``); floats at
-        ``of[CHAIN_F * j:]``: fix time, pos, x, y, cost, low. Returns the length, or
+        ``of[CHAIN_F * j:]``: fix time, pos, x, y, cost, low (cost and low NaN for a row
+        that is not live: the tree keeps them for the live block only). Returns the
+        length, or
         ``-(length + 1)`` with nothing written when ``oi`` or ``of`` is too short.
         """
         if sweep_key == -1:  # never: the key only keys numba's cache
@@ -73,7 +79,10 @@ def _keyed_chain_rows(sweep_key: int) -> Callable[..., int]:
         if CHAIN_I * (length + 1) > oi.shape[0] or CHAIN_F * (length + 1) > of.shape[0]:
             return -(length + 1)
         cap = ti[H_RCAP]
-        tb = ROW_F * cap - ti[H_T0]
+        lb = ROW_F * cap  # live_base
+        tb = lb + LIVE_F * ti[H_LCAP] - ti[H_T0]  # time_base - H_T0
+        lo = ti[H_LO]
+        hi = ti[H_HI]
         vb = HEAD + ROW_I * cap
         before = cur  # the row before the chain (-1: none)
         oi[CHAIN_I * length] = before
@@ -98,8 +107,12 @@ def _keyed_chain_rows(sweep_key: int) -> Callable[..., int]:
             of[f + 1] = pos
             of[f + 2] = geo[seg, 0] + pos * geo[seg, 2]
             of[f + 3] = geo[seg, 1] + pos * geo[seg, 3]
-            of[f + 4] = tf[ROW_F * r + F_COST]
-            of[f + 5] = tf[ROW_F * r + F_LOW]
+            if lo <= r < hi:
+                of[f + 4] = tf[lb + LIVE_F * (r - lo) + LF_COST]
+                of[f + 5] = tf[lb + LIVE_F * (r - lo) + LF_LOW]
+            else:
+                of[f + 4] = np.nan
+                of[f + 5] = np.nan
             if j < length:
                 cur = ti[ROW_I * cur + K_PARENT]
         return length

@@ -542,10 +542,14 @@ I_SEQ = 1
 I_PARENT = 2
 I_VIAE = 3  # where the row's vias end: they start where the row before's end (0 at row 0)
 ROW_I = 4
-F_LOW = 0
-F_POS = 1
-F_COST = 2
-ROW_F = 3
+F_POS = 0
+ROW_F = 1  # a row's floats: its position only (low and cost: live rows only, below)
+# The live block's own floats, ``LIVE_F`` a live row from ``live_base`` on (the live row
+# ``lo + j`` at ``live_base + LIVE_F * j``): only a live state's ``low`` and ``cost`` are
+# ever read (the next sweep step, the ranking); an ancestor's are not kept.
+LF_LOW = 0
+LF_COST = 1
+LIVE_F = 2
 # The header at the head of ``ti``: rows and vias in use, the live block [lo, hi), and
 # (after ARENA_FULL) what the step waiting in the kernel's buffers needs: its rows and
 # vias, and the capacities of the arrays to compact into (rows, vias, fix times); then
@@ -561,7 +565,9 @@ H_CAP_VIAS = 7
 H_CAP_T = 8
 H_T0 = 9
 H_RCAP = 10
-HEAD = 11
+H_LCAP = 11  # live rows the live floats' area has room for
+H_CAP_L = 12  # (after ARENA_FULL) the live rows the arrays to compact into have room for
+HEAD = 13
 # A row's int field ``I_x`` is ``ti[ROW_I * row + K_x]``.
 K_SEG = HEAD + I_SEG
 K_SEQ = HEAD + I_SEQ
@@ -573,6 +579,19 @@ ARENA_FULL = -3  # the tree's arrays are too small for the new rows (see tree_sw
 TREE_OVERFLOW = -4  # the kernel's buffers are too small: grow them and call again
 MIN_SPARE = 8  # rows of room a compaction leaves, at least (and twice the live block)
 T_SPARE = 6  # fix times of room a compaction leaves, at least (a fix adds one)
+L_SPARE = 4  # live rows of room for floats a compaction leaves, at least
+
+
+@numba.njit(cache=True, error_model="numpy")
+def live_room(m: int, k: int) -> int:
+    """Live rows the live floats' area of new arrays holds: ``m`` new ones, ``k`` before.
+
+    The larger of the two and half as many again (at least ``L_SPARE``): a live block
+    grows and shrinks by a few states a fix, and outgrowing the area costs new arrays.
+    16 bytes a live row, against 16 bytes of every row when each kept its low and cost.
+    """
+    big = m if m > k else k
+    return big + max(big // 2, L_SPARE)
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -582,9 +601,21 @@ def via_base(ti: np.ndarray) -> int:
 
 
 @numba.njit(cache=True, error_model="numpy")
+def live_base(ti: np.ndarray) -> int:
+    """Where the live block's floats start in ``tf``: after the rows the arrays have room for."""
+    return ROW_F * ti[H_RCAP]
+
+
+@numba.njit(cache=True, error_model="numpy")
+def time_base(ti: np.ndarray) -> int:
+    """Where the fix times start in ``tf``: after the rows' and the live block's floats."""
+    return ROW_F * ti[H_RCAP] + LIVE_F * ti[H_LCAP]
+
+
+@numba.njit(cache=True, error_model="numpy")
 def time_of(ti: np.ndarray, tf: np.ndarray, row: int) -> float:
-    """The time of row ``row``'s fix (kept once per fix, after the rows' floats in ``tf``)."""
-    return tf[ROW_F * ti[H_RCAP] + ti[ROW_I * row + K_SEQ] - ti[H_T0]]
+    """The time of row ``row``'s fix (kept once per fix, after the live floats in ``tf``)."""
+    return tf[time_base(ti) + ti[ROW_I * row + K_SEQ] - ti[H_T0]]
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -628,15 +659,16 @@ def tree_sweep(
     live = fbuf[live0:live0 + need] if fbuf.shape[0] - live0 >= need else np.empty(need)
     for j in range(N_CTX):
         live[j] = ctx[j]
+    lb = ROW_F * ti[H_RCAP]  # live_base
     for j in range(k):
         r = lo + j
         b = N_CTX + LIVE_STRIDE * j
         seg = ti[ROW_I * r + K_SEG]
-        rf = ROW_F * r
-        pos = tf[rf + F_POS]
+        pos = tf[ROW_F * r + F_POS]
+        lf = lb + LIVE_F * j
         live[b] = seg
         live[b + 1] = seg
-        live[b + 2] = tf[rf + F_LOW]
+        live[b + 2] = tf[lf + LF_LOW]
         live[b + 3] = pos
         # the matched point, not kept in the row: recomputed by the sweep's own expression
         # (``mx = ax + pos * dx``), so bit for bit the value the sweep wrote
@@ -645,7 +677,7 @@ def tree_sweep(
         ay = netf[s8 + S_AY]
         live[b + 4] = ax + pos * (netf[s8 + S_BX] - ax)
         live[b + 5] = ay + pos * (netf[s8 + S_BY] - ay)
-        live[b + 6] = tf[rf + F_COST]
+        live[b + 6] = tf[lf + LF_COST]
     m, n_via = sweep_kernel(netf, neti, live, fbuf, ibuf)
     if m < 0:
         return TREE_OVERFLOW, lo, hi
@@ -653,8 +685,9 @@ def tree_sweep(
         return DIED, lo, hi
     cap_rows = ti[H_RCAP]
     cap_vias = ti.shape[0] - HEAD - ROW_I * cap_rows
-    cap_t = tf.shape[0] - ROW_F * cap_rows
-    if n + m > cap_rows or nv + n_via > cap_vias or seq - ti[H_T0] >= cap_t:
+    cap_l = ti[H_LCAP]
+    cap_t = tf.shape[0] - ROW_F * cap_rows - LIVE_F * cap_l
+    if n + m > cap_rows or nv + n_via > cap_vias or seq - ti[H_T0] >= cap_t or m > cap_l:
         kept, kept_v, span = kept_rows(ti)
         # the fix times kept run from the first kept row's fix to the live block's (the
         # last kept row), and the new rows' fix comes after it
@@ -663,10 +696,12 @@ def tree_sweep(
         spare = max(m, 2 * k + MIN_SPARE)
         cap = kept + max(kept // 4, spare)
         if (kept + m > cap_rows or kept_v + n_via > cap_vias or span_t > cap_t
+                or m > cap_l
                 or 2 * cap_rows > 3 * (kept + max(kept // 4, 2 * k + MIN_SPARE))):
             ti[H_M] = m
             ti[H_NVIA] = n_via
             ti[H_CAP_ROWS] = cap
+            ti[H_CAP_L] = live_room(m, k)
             ti[H_CAP_VIAS] = kept_v + max(kept_v // 4, max(n_via, spare // 2))
             # (as much room for fix times as for rows: a step adds a fix and a row at
             # least, so the times do not fill up first)
@@ -741,19 +776,23 @@ def kept_rows(ti: np.ndarray) -> tuple[int, int, int]:
 @numba.njit(cache=True, error_model="numpy")
 def compact(
     ti: np.ndarray, tf: np.ndarray, spare_rows: int, spare_vias: int, spare_t: int,
+    spare_live: int,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Keep only the live block and its ancestors, in new arrays with room to spare.
 
     The room left is at least ``spare_rows`` rows (``spare_vias`` vias; fix times: as
     many as rows, and ``spare_t`` after the newest kept) and a quarter of those kept,
-    so compactions get rarer as the tree grows (amortised O(1) per row). Returns the
-    new ``(ti, tf)``; the live block keeps its order and length.
+    so compactions get rarer as the tree grows (amortised O(1) per row); room for the
+    floats of ``spare_live`` live rows at least (:func:`live_room`). Returns the new
+    ``(ti, tf)``; the live block keeps its order and length.
     """
     rows, vias, span = kept_rows(ti)
     cap = rows + max(rows // 4, spare_rows)
+    cap_l = max(spare_live, live_room(ti[H_HI] - ti[H_LO], 0))
     ti2 = np.empty(HEAD + ROW_I * cap + vias + max(vias // 4, spare_vias), np.int32)
-    tf2 = np.empty(ROW_F * cap + span + max(span // 4, spare_t, spare_rows, T_SPARE))
-    compact_into(ti, tf, ti2, tf2, cap)
+    tf2 = np.empty(ROW_F * cap + LIVE_F * cap_l + span
+                   + max(span // 4, spare_t, spare_rows, T_SPARE))
+    compact_into(ti, tf, ti2, tf2, cap, cap_l)
     return ti2, tf2
 
 
@@ -766,17 +805,18 @@ def compact_in_place(ti: np.ndarray, tf: np.ndarray) -> None:
     either way holds the same rows. Safe in place: a row only ever moves down (its new
     index is at most its old one, and so is its vias' start).
     """
-    compact_into(ti, tf, ti, tf, ti[H_RCAP])
+    compact_into(ti, tf, ti, tf, ti[H_RCAP], ti[H_LCAP])
 
 
 @numba.njit(cache=True, error_model="numpy")
 def compact_into(ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarray,
-                 cap2: int) -> None:
+                 cap2: int, cap_l2: int) -> None:
     """:func:`compact_in_place`, writing into the arrays ``ti2``, ``tf2`` (header included).
 
-    ``cap2``: the rows ``ti2``, ``tf2`` have room for (the rest of ``ti2`` is vias, of
-    ``tf2`` fix times). They must hold at least the rows, vias and fix times
-    :func:`kept_rows` counts. The caller
+    ``cap2``: the rows ``ti2``, ``tf2`` have room for (the rest of ``ti2`` is vias),
+    ``cap_l2`` the live rows ``tf2`` has floats for after them (the rest of ``tf2`` is
+    fix times). They must hold at least the rows, vias and fix times
+    :func:`kept_rows` counts and the live block. The caller
     allocates them with numpy: an array numba allocates and returns costs about 130
     bytes more to keep (its memory-info object) and more time to hand back than numpy's.
     :func:`compact_in_place` passes its own arrays as the targets (safe: a row only ever
@@ -786,13 +826,15 @@ def compact_into(ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarra
     lo = ti[H_LO]
     hi = ti[H_HI]
     t0 = ti[H_T0]
-    tb = ROW_F * ti[H_RCAP]
+    lb = ROW_F * ti[H_RCAP]  # live_base
+    tb = lb + LIVE_F * ti[H_LCAP]  # time_base
     keep = kept_mask(ti)
     new_index = np.full(n, -1, np.int64)
     vb = via_base(ti)
     ti2[H_RCAP] = cap2
     vb2 = via_base(ti2)
-    tb2 = ROW_F * cap2
+    lb2 = ROW_F * cap2
+    tb2 = lb2 + LIVE_F * cap_l2
     q = 0
     nv = 0
     first = -1
@@ -821,7 +863,11 @@ def compact_into(ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarra
             tf2[ROW_F * q + c] = tf[ROW_F * r + c]
         nv += vn
         q += 1
-    # the fix times of the kept rows' fixes, from the first's on (moving down only)
+    # the live block's floats (it keeps its order: the same place from the live base; in
+    # place, the same room, a copy onto itself), then the fix times of the kept rows'
+    # fixes, from the first's on (moving down only)
+    for j in range(LIVE_F * (hi - lo)):
+        tf2[lb2 + j] = tf[lb + j]
     if first >= 0:
         for s in range(first, last + 1):
             tf2[tb2 + s - first] = tf[tb + s - t0]
@@ -832,6 +878,8 @@ def compact_into(ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarra
     ti2[H_HI] = new_lo + (hi - lo)
     for c in range(H_M, H_CAP_T + 1):
         ti2[c] = 0
+    ti2[H_CAP_L] = 0
+    ti2[H_LCAP] = cap_l2
     ti2[H_T0] = first if first >= 0 else 0
 
 
@@ -851,7 +899,8 @@ def tree_append(
     lo = ti[H_LO]
     vb = via_base(ti)
     # the fix's time, once for all its rows (gaps in the run of fixes, if any, NaN)
-    tb = ROW_F * ti[H_RCAP]
+    lb = ROW_F * ti[H_RCAP]  # live_base
+    tb = lb + LIVE_F * ti[H_LCAP]  # time_base
     if n == 0:
         ti[H_T0] = seq
         have = 0
@@ -866,7 +915,6 @@ def tree_append(
     for j in range(m):
         r = n + j
         ri = ROW_I * r
-        rf = ROW_F * r
         oi = out_i0 + j * OUT_I_STRIDE
         of = out_f0 + j * OUT_F_STRIDE
         ti[ri + K_SEG] = ibuf[oi]
@@ -874,10 +922,12 @@ def tree_append(
         ti[ri + K_PARENT] = lo + ibuf[oi + 1]
         # the kernel writes each output row's vias after the row before's
         ti[ri + K_VIAE] = nv + ibuf[oi + 2] + ibuf[oi + 3]
-        # an output row is low, pos, x, y, cost: the matched point is not kept
-        tf[rf + F_LOW] = fbuf[of]
-        tf[rf + F_POS] = fbuf[of + 1]
-        tf[rf + F_COST] = fbuf[of + 4]
+        # an output row is low, pos, x, y, cost: the matched point is not kept, and low
+        # and cost only while the row is live (the old live block's are read: the step
+        # packed them into its input)
+        tf[ROW_F * r + F_POS] = fbuf[of + 1]
+        tf[lb + LIVE_F * j + LF_LOW] = fbuf[of]
+        tf[lb + LIVE_F * j + LF_COST] = fbuf[of + 4]
     ob = out_i0 + m * OUT_I_STRIDE
     for j in range(n_via):
         ti[vb + nv + j] = ibuf[ob + j]
@@ -902,7 +952,7 @@ def compact_append(
     """
     m = ti[H_M]
     n_via = ti[H_NVIA]
-    compact_into(ti, tf, ti2, tf2, ti[H_CAP_ROWS])
+    compact_into(ti, tf, ti2, tf2, ti[H_CAP_ROWS], ti[H_CAP_L])
     tree_append(fbuf, ibuf, ti2, tf2, seq, t, m, n_via)
     return commit_point(ti2, next_commit, newest) if newest >= 0 else -1
 

@@ -5,23 +5,30 @@ two flat arrays, rows in topological order (a parent's row always precedes its
 children's):
 
 ``ti`` (int32): a header of ``HEAD`` values (``H_N`` rows in use, ``H_NV`` vias in use,
-    the live block ``[H_LO, H_HI)``, five slots a step that found the arrays full
-    leaves its sizes in, ``H_T0`` the sequence number of the first fix time kept and
-    ``H_RCAP`` the rows the arrays have room for), then room for ``H_RCAP`` rows of
-    ``ROW_I`` ints ``seg, seq, parent, via_end`` (field ``I_x`` of row r at
-    ``ROW_I * r + K_x``; ``parent`` -1 for a root), then the vias, one after another
-    in row order, from :func:`via_base` on (row r's vias run from row r - 1's
-    ``via_end``, 0 for row 0, to its own: most rows have none, and one int says so).
-``tf`` (float64): per row ``ROW_F`` floats ``low, pos, cost`` (field ``F_x`` of row r
-    at ``ROW_F * r + F_x``), then from ``ROW_F * H_RCAP`` on the fix times: the time of
-    fix ``H_T0 + j`` at ``j`` (:func:`time_of`), one per fix from the oldest row's to
-    the newest, shared by the fix's rows (a fix has several candidates; the time was
-    a float in every row before). The matched point (x, y) of a row is not stored: it is
-    ``a + pos (b - a)`` on the row's segment, the very expression the sweep computed it
-    with, so it is recomputed bit for bit where it is read (the live score, the sweep's
-    input, a row handed out as a node) from the network's arrays (``seg_geo`` of
+    the live block ``[H_LO, H_HI)``, six slots a step that found the arrays full
+    leaves its sizes in, ``H_T0`` the sequence number of the first fix time kept,
+    ``H_RCAP`` the rows the arrays have room for and ``H_LCAP`` the live rows), then
+    room for ``H_RCAP`` rows of ``ROW_I`` ints ``seg, seq, parent, via_end`` (field
+    ``I_x`` of row r at ``ROW_I * r + K_x``; ``parent`` -1 for a root), then the vias,
+    one after another in row order, from :func:`via_base` on (row r's vias run from row
+    r - 1's ``via_end``, 0 for row 0, to its own: most rows have none, and one int says
+    so).
+``tf`` (float64): per row ``ROW_F`` (1) float, its ``pos`` (field ``F_POS`` of row r at
+    ``ROW_F * r + F_POS``); then from :func:`live_base` (``ROW_F * H_RCAP``) room for
+    ``H_LCAP`` live rows' ``LIVE_F`` floats ``low, cost`` (the live row ``lo + j`` at
+    ``live_base + LIVE_F * j + LF_x``); then from :func:`time_base` on the fix times: the
+    time of fix ``H_T0 + j`` at ``j`` (:func:`time_of`), one per fix from the oldest
+    row's to the newest, shared by the fix's rows (a fix has several candidates; the
+    time was a float in every row before). A state's ``low`` and ``cost`` are read only
+    while it is live (the next sweep step, the ranking of the live states): once a
+    step appends the next live block, the old one's are overwritten, and a row handed
+    out as a node when it is no longer live has NaN for both. The matched point (x, y)
+    of a row is not stored either: it is ``a + pos (b - a)`` on the row's segment, the
+    very expression the sweep computed it with, so it is recomputed bit for bit where
+    it is read (the live score, the sweep's input, a row handed out as a node) from the
+    network's arrays (``seg_geo`` of
     :class:`livematch.core.fastsweep.SweepArrays`: ax, ay, bx - ax, by - ay per segment).
-    A row is 40 bytes (16 + 24), and 8 more a fix.
+    A row is 24 bytes (16 + 8), 16 more while it is live, and 8 more a fix.
 
 Two arrays rather than one per row field, with the counts in the first: a tree idle
 between fixes costs two numpy objects (each about 150 bytes beyond its data) and a
@@ -53,13 +60,13 @@ from livematch.core._kernel_key import code_key
 from livematch.core._sweep_kernel import (
     ARENA_FULL,
     DIED,
-    F_COST,
-    F_LOW,
     F_POS,
+    H_CAP_L,
     H_CAP_ROWS,
     H_CAP_T,
     H_CAP_VIAS,
     H_HI,
+    H_LCAP,
     H_LO,
     H_M,
     H_N,
@@ -76,6 +83,10 @@ from livematch.core._sweep_kernel import (
     K_SEG,
     K_SEQ,
     K_VIAE,
+    L_SPARE,
+    LF_COST,
+    LF_LOW,
+    LIVE_F,
     MIN_SPARE,
     ROW_F,
     ROW_I,
@@ -91,7 +102,10 @@ from livematch.core._sweep_kernel import (
     cut_and_check,
     cut_links,
     kept_rows,
+    live_base,
+    live_room,
     rows_ancestor,
+    time_base,
     time_of,
     tree_append,
     tree_sweep,
@@ -99,15 +113,67 @@ from livematch.core._sweep_kernel import (
 )
 
 __all__ = [
-    "ARENA_FULL", "DIED", "F_COST", "F_LOW", "F_POS", "HEAD", "H_CAP_ROWS", "H_CAP_T",
-    "H_CAP_VIAS", "H_HI", "H_LO", "H_M", "H_N", "H_NV", "H_NVIA", "H_RCAP", "H_T0",
-    "I_PARENT", "I_SEG", "I_SEQ", "I_VIAE", "K_PARENT", "K_SEG", "K_SEQ", "K_VIAE",
-    "MIN_SPARE", "ROW_F", "ROW_I", "TREE_OVERFLOW", "T_SPARE",
-    "ancestor_at", "best_row", "best_scored", "block_ancestor", "chain_into",
-    "commit_point", "compact", "compact_append", "compact_in_place", "compact_into",
-    "cut_and_check", "cut_links", "descends_from", "driven_since", "junction_split",
-    "kept_rows", "live_answer", "live_scores", "prune_live", "time_of", "tree_append",
-    "tree_sweep", "trim", "via_base"
+    "ARENA_FULL",
+    "DIED",
+    "F_POS",
+    "HEAD",
+    "H_CAP_L",
+    "H_CAP_ROWS",
+    "H_CAP_T",
+    "H_CAP_VIAS",
+    "H_HI",
+    "H_LCAP",
+    "H_LO",
+    "H_M",
+    "H_N",
+    "H_NV",
+    "H_NVIA",
+    "H_RCAP",
+    "H_T0",
+    "I_PARENT",
+    "I_SEG",
+    "I_SEQ",
+    "I_VIAE",
+    "K_PARENT",
+    "K_SEG",
+    "K_SEQ",
+    "K_VIAE",
+    "LF_COST",
+    "LF_LOW",
+    "LIVE_F",
+    "L_SPARE",
+    "MIN_SPARE",
+    "ROW_F",
+    "ROW_I",
+    "TREE_OVERFLOW",
+    "T_SPARE",
+    "ancestor_at",
+    "best_row",
+    "best_scored",
+    "block_ancestor",
+    "chain_into",
+    "commit_point",
+    "compact",
+    "compact_append",
+    "compact_in_place",
+    "compact_into",
+    "cut_and_check",
+    "cut_links",
+    "descends_from",
+    "driven_since",
+    "junction_split",
+    "kept_rows",
+    "live_answer",
+    "live_base",
+    "live_room",
+    "live_scores",
+    "prune_live",
+    "time_base",
+    "time_of",
+    "tree_append",
+    "tree_sweep",
+    "trim",
+    "via_base"
 ]
 
 _jit = numba.njit(cache=True, error_model="numpy")
@@ -116,9 +182,9 @@ _jit = numba.njit(cache=True, error_model="numpy")
 @_jit
 def best_row(ti: np.ndarray, tf: np.ndarray, prefer: int) -> int:
     """:func:`livematch.core.sweep.best_leaf`: lowest (cost, seg != prefer, seg)."""
-    lo = ti[H_LO]
-    hi = ti[H_HI]
-    return best_scored(ti, tf[ROW_F * lo + F_COST:ROW_F * hi:ROW_F], prefer)
+    lb = ROW_F * ti[H_RCAP]  # live_base
+    k = ti[H_HI] - ti[H_LO]
+    return best_scored(ti, tf[lb + LF_COST:lb + LIVE_F * k:LIVE_F], prefer)
 
 
 @_jit
@@ -161,9 +227,10 @@ def live_scores(
     n = fix_xy.shape[0]
     # the fix times (time_of, written out here: a call into _sweep_kernel would need
     # its code key, see junction_split)
-    tb = ROW_F * ti[H_RCAP] - ti[H_T0]
+    lb = ROW_F * ti[H_RCAP]  # live_base
+    tb = lb + LIVE_F * ti[H_LCAP] - ti[H_T0]
     for r in range(lo, hi):
-        score = tf[ROW_F * r + F_COST]
+        score = tf[lb + LIVE_F * (r - lo) + LF_COST]
         cur = r
         # the matched points, as the sweep computed them (rows keep none): each row's is
         # computed once, and a link's parent is the next link's child
@@ -278,6 +345,7 @@ def prune_live(ti: np.ndarray, tf: np.ndarray, anc: int) -> int:
     """
     lo = ti[H_LO]
     vb = HEAD + ROW_I * ti[H_RCAP]  # via_base (see live_scores)
+    lb = ROW_F * ti[H_RCAP]  # live_base
     end_before = ti[ROW_I * lo - ROW_I + K_VIAE] if lo else 0
     nv = end_before
     w = lo
@@ -293,6 +361,8 @@ def prune_live(ti: np.ndarray, tf: np.ndarray, anc: int) -> int:
                     ti[ROW_I * w + HEAD + c] = ti[ROW_I * r + HEAD + c]
                 for c in range(ROW_F):
                     tf[ROW_F * w + c] = tf[ROW_F * r + c]
+                for c in range(LIVE_F):  # the live floats, as the rows: moving down
+                    tf[lb + LIVE_F * (w - lo) + c] = tf[lb + LIVE_F * (r - lo) + c]
             ti[ROW_I * w + K_VIAE] = nv
             w += 1
     ti[H_HI] = w
@@ -408,7 +478,8 @@ def _keyed_live_answer(sweep_key: int) -> Callable[..., tuple[int, int]]:
             score = live_scores(geo, ti, tf, fix_xy[:fix_n], fix_seq0, first,
                                 inv_two_sigma2, inv_tau, max_dt)
         else:
-            score = tf[ROW_F * ti[H_LO] + F_COST:ROW_F * ti[H_HI]:ROW_F].copy()
+            lb = ROW_F * ti[H_RCAP]  # live_base
+            score = tf[lb + LF_COST:lb + LIVE_F * (ti[H_HI] - ti[H_LO]):LIVE_F].copy()
         best = best_scored(ti, score, prefer)
         split = junction_split(ti, tf, best, margin, score) if margin > 0.0 else -1
         return best, split

@@ -40,6 +40,8 @@ Example (a vehicle on a straight one-way road; two fixes 10 m apart):
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import numpy.typing as npt
 
@@ -48,12 +50,13 @@ from livematch.core._chain_kernel import CHAIN_F, CHAIN_I, chain_rows
 from livematch.core._direct import Direct
 from livematch.core._sweep_kernel import window_best, window_step
 from livematch.core._tree_kernel import (
-    F_COST,
     F_POS,
+    H_CAP_L,
     H_CAP_ROWS,
     H_CAP_T,
     H_CAP_VIAS,
     H_HI,
+    H_LCAP,
     H_LO,
     H_M,
     H_N,
@@ -65,6 +68,9 @@ from livematch.core._tree_kernel import (
     K_PARENT,
     K_SEG,
     K_SEQ,
+    LF_COST,
+    LF_LOW,
+    LIVE_F,
     MIN_SPARE,
     ROW_F,
     ROW_I,
@@ -121,7 +127,8 @@ class CandidateTree:
     Attributes:
         ti: the header (counts), the rows' ints and the vias (int32; layout in
             :mod:`livematch.core._tree_kernel`).
-        tf: the rows' floats (float64).
+        tf: the rows' positions, the live rows' low and cost, the fix times (float64;
+            an older row keeps no low and cost: nothing reads them once it is not live).
         lo, hi: the live block (the newest fix's states, in the reference's dict order):
             a copy of the header's, which the tracker reads many times a fix (a slot
             costs a tenth of an array read from Python); every call that moves the block
@@ -171,17 +178,30 @@ class CandidateTree:
         return len(self.ti) - HEAD - ROW_I * self.cap_rows
 
     @property
+    def cap_live(self) -> int:
+        """Live rows the arrays have room for the floats (low, cost) of."""
+        return self.ti.item(H_LCAP)
+
+    @property
     def cap_times(self) -> int:
         """Fix times the arrays have room for (from the first kept, ``H_T0``, on)."""
-        return len(self.tf) - ROW_F * self.cap_rows
+        return len(self.tf) - self._time_base()
 
     def _via_base(self) -> int:
         return HEAD + ROW_I * self.ti.item(H_RCAP)
 
+    def _live_base(self) -> int:
+        """Where the live block's floats start in ``tf``."""
+        return ROW_F * self.ti.item(H_RCAP)
+
+    def _time_base(self) -> int:
+        """Where the fix times start in ``tf``."""
+        ti = self.ti
+        return ROW_F * ti.item(H_RCAP) + LIVE_F * ti.item(H_LCAP)
+
     def time_of(self, seq: int) -> float:
         """The time of fix ``seq`` (a fix of one of the tree's rows)."""
-        ti = self.ti
-        return self.tf.item(ROW_F * ti.item(H_RCAP) + seq - ti.item(H_T0))
+        return self.tf.item(self._time_base() + seq - self.ti.item(H_T0))
 
     def _newest_seq(self) -> int:
         """The fix of the last row in use (the newest the tree has a time for), or -1."""
@@ -189,7 +209,8 @@ class CandidateTree:
         return self.ti.item(ROW_I * (n - 1) + K_SEQ) if n else -1
 
     # ----------------------------------------------------------------- growth
-    def compact(self, spare_rows: int = 0, spare_vias: int = 0, spare_t: int = 0) -> None:
+    def compact(self, spare_rows: int = 0, spare_vias: int = 0, spare_t: int = 0,
+                spare_live: int = 0) -> None:
         """Drop the rows no live state descends from; leave room for more rows.
 
         The room left is at least ``spare_rows``, twice the live block plus
@@ -197,6 +218,7 @@ class CandidateTree:
         two rows of room): a step or two before the next compaction. Tight on purpose:
         a service holds many idle trees, and a compaction costs about a microsecond.
         Fix times: as many as rows, and room for ``spare_t`` after the newest kept.
+        Live floats: for ``spare_live`` live rows at least.
 
         The new arrays come from compiled code (one call; two calls and numpy's arrays,
         as :meth:`shrink` does, cost about 2 µs more a compaction, and a 1 Hz vehicle
@@ -204,20 +226,23 @@ class CandidateTree:
         """
         rows = max(spare_rows, 2 * len(self) + _MIN_SPARE)
         vias = max(spare_vias, rows // 2)  # most states have no via; a tree sweep asks for more
-        self.ti, self.tf = _t.compact(self.ti, self.tf, rows, vias, spare_t)
+        self.ti, self.tf = _t.compact(self.ti, self.tf, rows, vias, spare_t, spare_live)
         self._synced()
 
     def _compacted(self, cap_rows: int, cap_vias: int, cap_t: int) -> None:
         """Compact into new numpy arrays of ``cap_rows`` rows, ``cap_vias`` vias, ``cap_t`` times.
+
+        Live floats for the live block's rows exactly.
 
         Numpy allocates them and a compiled call fills them
         (:func:`~livematch.core._tree_kernel.compact_into`): arrays allocated by compiled
         code and handed back cost about 130 bytes more each to keep, and an idle tree
         is kept for long.
         """
+        live = self.hi - self.lo
         ti = np.empty(HEAD + ROW_I * cap_rows + cap_vias, np.int32)
-        tf = np.empty(ROW_F * cap_rows + cap_t)
-        _t.compact_into(self.ti, self.tf, ti, tf, cap_rows)
+        tf = np.empty(ROW_F * cap_rows + LIVE_F * live + cap_t)
+        _t.compact_into(self.ti, self.tf, ti, tf, cap_rows, live)
         self.ti, self.tf = ti, tf
         self._synced()
 
@@ -227,8 +252,11 @@ class CandidateTree:
             return
         self._compacted(*_t.kept_rows(self.ti))  # rows, vias, fix times
 
-    def _make_room(self, rows: int, vias: int, first: int, last: int) -> None:
-        """Room for ``rows`` rows and ``vias`` vias more, of fixes ``first`` to ``last``."""
+    def _make_room(self, rows: int, vias: int, first: int, last: int, live: int) -> None:
+        """Room for ``rows`` rows and ``vias`` vias more, of fixes ``first`` to ``last``.
+
+        ``live``: the new live block's rows (their floats).
+        """
         newest = self._newest_seq()
         if newest < 0:
             newest = first - 1  # no row yet: the times will start at fix ``first``
@@ -236,8 +264,8 @@ class CandidateTree:
         else:
             t_end = last - self.ti.item(H_T0) + 1
         if (self.n + rows > self.cap_rows or self.nv + vias > self.cap_vias
-                or t_end > self.cap_times):
-            self.compact(rows, vias, max(0, last - newest))
+                or t_end > self.cap_times or live > self.cap_live):
+            self.compact(rows, vias, max(0, last - newest), live)
 
     # ------------------------------------------------------------------ steps
     def sweep(self, view: NetworkView, ctx: npt.NDArray[np.float64], seq: int,
@@ -282,7 +310,7 @@ class CandidateTree:
                 # append, in one call
                 cap = ti.item(H_CAP_ROWS)
                 ti2 = np.empty(HEAD + ROW_I * cap + ti.item(H_CAP_VIAS), np.int32)
-                tf2 = np.empty(ROW_F * cap + _times_room(
+                tf2 = np.empty(ROW_F * cap + LIVE_F * ti.item(H_CAP_L) + _times_room(
                     ti.item(H_CAP_T), cap, ti.item(H_M), self.hi - self.lo))
                 top = _CALLS.compact_append(ti, tf, ti2, tf2, arrays.fbuf, arrays.ibuf, seq,
                                             t, next_commit, newest)
@@ -310,7 +338,7 @@ class CandidateTree:
         ti = self.ti
         tf = self.tf
         cap = ti.item(H_RCAP)
-        tb = ROW_F * cap - ti.item(H_T0)
+        tb = self._time_base() - ti.item(H_T0)
         make = self._node
         for r in range(self.lo, self.hi):
             p = ti.item(ROW_I * r + K_PARENT)
@@ -336,16 +364,16 @@ class CandidateTree:
         if k:
             seqs = [n.seq for n in new.values()]
             first, last = min(seqs), max(seqs)
-            self._make_room(k, vias, first, last)
+            self._make_room(k, vias, first, last, k)
         else:
-            self._make_room(0, 0, 0, -1)
+            self._make_room(0, 0, 0, -1, 0)
         shift = self.lo - old_lo  # a compaction moves the live block, keeping its order
         lo = self.n
         ti = self.ti
         if k:
             # the fix times, one per fix (a gap in the run of fixes, if any, NaN)
             tf = self.tf
-            tb = ROW_F * ti.item(H_RCAP)
+            tb = self._time_base()
             if lo == 0:
                 ti[H_T0] = first
                 have = 0
@@ -361,7 +389,8 @@ class CandidateTree:
             # the rows gathered first and written with one assignment per array (a
             # bridged step brings tens to hundreds of states; a numpy write each costs)
             ints: list[int] = []
-            floats: list[float] = []
+            floats: list[float] = []  # the rows' positions
+            live: list[float] = []  # the live block's low and cost
             flat: list[int] = []  # the vias, one after another
             nv0 = nv = self.nv
             for node in new.values():
@@ -372,10 +401,13 @@ class CandidateTree:
                     nv += len(via)
                 ints += (node.seg, node.seq, parent, nv)
                 # the matched point is not kept: it is node.x, node.y recomputed (see node);
-                # the time is the fix's (above)
-                floats += (node.low, node.pos, node.cost)
+                # the time is the fix's (above); low and cost while the row is live
+                floats.append(node.pos)
+                live += (node.low, node.cost)
             ti[HEAD + ROW_I * lo:HEAD + ROW_I * (lo + k)] = ints
-            self.tf[ROW_F * lo:ROW_F * (lo + k)] = floats
+            tf[ROW_F * lo:ROW_F * (lo + k)] = floats
+            lb = self._live_base()
+            tf[lb:lb + LIVE_F * k] = live
             if flat:
                 vb = self._via_base()
                 ti[vb + nv0:vb + nv] = flat
@@ -402,7 +434,8 @@ class CandidateTree:
         every = (*older, *live.values())
         if every:
             tree._make_room(len(every), sum(len(n.via) for n in every),
-                            min(n.seq for n in every), max(n.seq for n in every))
+                            min(n.seq for n in every), max(n.seq for n in every),
+                            max(len(live), 1))
         for node in older:
             tree.extend({node.seg: node}, row_of)
             row_of[id(node)] = tree.lo
@@ -417,7 +450,8 @@ class CandidateTree:
         """
         ti = self.ti
         cap = ti.item(H_RCAP)
-        return self._node(view, row, parent, ti, self.tf, cap, ROW_F * cap - ti.item(H_T0))
+        return self._node(view, row, parent, ti, self.tf, cap,
+                          self._time_base() - ti.item(H_T0))
 
     @staticmethod
     def _node(view: NetworkView, row: int, parent: Node | None, ti: npt.NDArray[np.int32],
@@ -425,10 +459,19 @@ class CandidateTree:
         """:meth:`node` with the arrays, their row room and ``tb`` (fix seq's time at ``tb + seq``).
 
         (A chain of nodes is built per commit: the header is read once for all of them.)
+        A row that is not live keeps no ``low`` and ``cost`` (nothing reads an older
+        state's): its node has NaN for both.
         """
         i = HEAD + ROW_I * row
         seg, seq, _, v1 = ti[i:i + ROW_I].tolist()
-        low, pos, cost = tf[ROW_F * row:ROW_F * row + ROW_F].tolist()
+        pos = tf.item(ROW_F * row + F_POS)
+        lo = ti.item(H_LO)
+        if lo <= row < ti.item(H_HI):
+            lf = ROW_F * cap + LIVE_F * (row - lo)
+            low = tf.item(lf + LF_LOW)
+            cost = tf.item(lf + LF_COST)
+        else:
+            low = cost = math.nan
         # the row's vias run from where the row before's end (most rows have none)
         v0 = ti.item(i - ROW_I + I_VIAE) if v1 and row else 0
         if v1 > v0:
@@ -480,7 +523,8 @@ class CandidateTree:
 
     def costs(self) -> npt.NDArray[np.float64]:
         """The live states' path costs, in row order (a view)."""
-        return self.tf[ROW_F * self.lo + F_COST:ROW_F * self.hi:ROW_F]
+        lb = self._live_base()
+        return self.tf[lb + LF_COST:lb + LIVE_F * (self.hi - self.lo):LIVE_F]
 
     def best_cost(self) -> float:
         """The lowest path cost among the live states (the tree must not be empty)."""
@@ -610,7 +654,7 @@ class CandidateTree:
         rows = arrays.chain[:length + 1].tolist()
         tf = self.tf
         cap = ti.item(H_RCAP)
-        tb = ROW_F * cap - ti.item(H_T0)
+        tb = self._time_base() - ti.item(H_T0)
         node = self._node
         before = node(view, rows[-1], None, ti, tf, cap, tb) if rows[-1] >= 0 else None
         chain = []
@@ -644,9 +688,10 @@ class CandidateTree:
         out = CandidateTree()
         if self.ti.item(H_N):
             rows, vias, times = _t.kept_rows(self.ti)
+            live = self.hi - self.lo
             out.ti = np.empty(HEAD + ROW_I * rows + vias, np.int32)
-            out.tf = np.empty(ROW_F * rows + times)
-            _t.compact_into(self.ti, self.tf, out.ti, out.tf, rows)
+            out.tf = np.empty(ROW_F * rows + LIVE_F * live + times)
+            _t.compact_into(self.ti, self.tf, out.ti, out.tf, rows, live)
             out._synced()
         return out
 
@@ -656,46 +701,52 @@ class CandidateTree:
         (A checkpoint writes every level's tree this way: no tree object is made.)
         """
         if not self.ti.item(H_N):
-            return 0, 0, 0, 0, (_NO_BYTES, _NO_BYTES, _NO_BYTES, _NO_BYTES)
+            return 0, 0, 0, 0, (_NO_BYTES,) * 5
         rows, vias, times = _t.kept_rows(self.ti)
+        live = self.hi - self.lo
         ti = np.empty(HEAD + ROW_I * rows + vias, np.int32)
-        tf = np.empty(ROW_F * rows + times)
-        _t.compact_into(self.ti, self.tf, ti, tf, rows)
+        tf = np.empty(ROW_F * rows + LIVE_F * live + times)
+        _t.compact_into(self.ti, self.tf, ti, tf, rows, live)
         flat = ti.data
         end = HEAD + ROW_I * rows
         floats = tf.data
-        return (rows, vias, self.hi - self.lo, ti.item(H_T0),
-                (flat[HEAD:end], floats[:ROW_F * rows], flat[end:], floats[ROW_F * rows:]))
+        lb = ROW_F * rows
+        tb = lb + LIVE_F * live
+        return (rows, vias, live, ti.item(H_T0),
+                (flat[HEAD:end], floats[:lb], floats[lb:tb], flat[end:], floats[tb:]))
 
-    def parts(self) -> tuple[memoryview, memoryview, memoryview, memoryview]:
-        """The rows' ints, the rows' floats, the vias and the fix times in use, as buffers.
+    def parts(self) -> tuple[memoryview, memoryview, memoryview, memoryview, memoryview]:
+        """The rows' ints, positions, the live floats, the vias and the fix times, as buffers.
 
-        The bytes of a tight tree's (:meth:`packed`) four parts are what the tracker
-        state (``LMT5``) writes: ``n`` rows of ``ROW_I`` int32, ``n`` rows of ``ROW_F``
-        float64, ``nv`` int32 vias, one float64 time per fix from ``H_T0`` to the
-        newest row's.
+        The bytes of a tight tree's (:meth:`packed`) five parts are what the tracker
+        state (``LMT6``) writes: ``n`` rows of ``ROW_I`` int32, ``n`` rows of ``ROW_F``
+        float64 (the position), ``LIVE_F`` float64 (low, cost) for each live row, ``nv``
+        int32 vias, one float64 time per fix from ``H_T0`` to the newest row's.
         """
         n = self.n
         vb = self._via_base()
-        tb = ROW_F * self.cap_rows
+        lb = self._live_base()
+        tb = self._time_base()
         times = self._newest_seq() - self.ti.item(H_T0) + 1 if n else 0
         return (self.ti[HEAD:HEAD + ROW_I * n].data, self.tf[:ROW_F * n].data,
+                self.tf[lb:lb + LIVE_F * (self.hi - self.lo)].data,
                 self.ti[vb:vb + self.nv].data, self.tf[tb:tb + times].data)
 
     @classmethod
-    def unpacked(cls, ti: npt.NDArray[np.int32], tf: npt.NDArray[np.float64],
-                 tv: npt.NDArray[np.int32], live: int, times: npt.NDArray[np.float64],
-                 t0: int) -> CandidateTree:
-        """The tree of ``rows`` rows: ints ``ti``, floats ``tf``, vias ``tv``, fix times ``times``.
+    def unpacked(cls, ti: npt.NDArray[np.int32], pos: npt.NDArray[np.float64],
+                 lf: npt.NDArray[np.float64], tv: npt.NDArray[np.int32], live: int,
+                 times: npt.NDArray[np.float64], t0: int) -> CandidateTree:
+        """The tree of ``rows`` rows: ints ``ti``, positions ``pos``, live floats ``lf``, ...
 
-        ``ti`` and ``tf`` flat (``ROW_I`` / ``ROW_F`` values a row) or one row a line;
-        ``times[j]`` is the time of fix ``t0 + j`` (from the first row's fix to the last's).
-        Copied into arrays of the tree's own (so read-only buffers will do), exactly as
-        long as needed; the live block is the last ``live`` rows. An empty tree shares
-        the module's empty header instead of holding arrays of its own.
+        ... vias ``tv``, fix times ``times``. ``ti`` flat (``ROW_I`` values a row) or one
+        row a line, ``pos`` one float a row, ``lf`` ``LIVE_F`` floats (low, cost) for each
+        of the last ``live`` rows (the live block); ``times[j]`` is the time of fix
+        ``t0 + j`` (from the first row's fix to the last's). Copied into arrays of the
+        tree's own (so read-only buffers will do), exactly as long as needed. An empty
+        tree shares the module's empty header instead of holding arrays of its own.
         """
         tree = cls()
-        rows = len(tf) if tf.ndim == 2 else len(tf) // ROW_F
+        rows = len(pos)
         if rows:
             nv = len(tv)
             end = HEAD + ROW_I * rows
@@ -708,10 +759,24 @@ class CandidateTree:
             buf[H_HI] = tree.hi = rows
             buf[H_T0] = t0
             buf[H_RCAP] = rows
+            buf[H_LCAP] = live
             tree.ti = buf
             # numpy's own flat array, in one call (a restore makes three per tracker)
-            tree.tf = np.concatenate((tf if tf.ndim == 1 else tf.reshape(-1), times))
+            tree.tf = np.concatenate((pos, lf, times))
         return tree
+
+    @classmethod
+    def unpacked_rows(cls, ti: npt.NDArray[np.int32], tf: npt.NDArray[np.float64],
+                      tv: npt.NDArray[np.int32], live: int, times: npt.NDArray[np.float64],
+                      t0: int) -> CandidateTree:
+        """:meth:`unpacked` from rows of three floats ``low, pos, cost`` (``LMT5`` states).
+
+        ``tf`` flat or one row a line. The rows' positions are kept, and the live
+        rows' low and cost (an older state's are read by nothing).
+        """
+        rows3 = tf.reshape(-1, 3)
+        live_f = rows3[len(rows3) - live:, 0::2]  # low, cost
+        return cls.unpacked(ti, rows3[:, 1], live_f.reshape(-1), tv, live, times, t0)
 
     @classmethod
     def unpacked_timed(cls, ti: npt.NDArray[np.int32], tf: npt.NDArray[np.float64],
@@ -727,8 +792,8 @@ class CandidateTree:
         seqs = (ti if ti.ndim == 2 else ti.reshape(rows, ROW_I))[:, 1]
         t0 = int(seqs.min())
         times = np.full(int(seqs.max()) - t0 + 1, np.nan)
-        times[seqs - t0] = tf[:, ROW_F]
-        return cls.unpacked(ti, tf[:, :ROW_F], tv, live, times, t0)
+        times[seqs - t0] = tf[:, 3]
+        return cls.unpacked_rows(ti, tf[:, :3], tv, live, times, t0)
 
     def rows(self, view: NetworkView) -> list[Node]:
         """Every row still needed (after a compaction), as linked nodes in row order."""
@@ -789,6 +854,7 @@ def warm_up() -> None:
     ti = tree.ti.copy()
     ti[H_CAP_ROWS] = tree.cap_rows  # the sizes a full step leaves (these arrays' own)
     ti[H_CAP_T] = tree.cap_times
+    ti[H_CAP_L] = tree.cap_live
     _t.compact_append(ti, tree.tf, ti.copy(), tree.tf.copy(), arrays.fbuf, arrays.ibuf,
                       tree.seq_of(tree.lo), tree.time_of(tree.seq_of(tree.lo)), 0, -1)
     rows = np.array([(n.seg, n.low, n.pos, n.x, n.y, n.cost) for n in live.values()])

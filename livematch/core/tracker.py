@@ -84,7 +84,14 @@ import numpy as np
 
 from livematch.core._direct import Direct
 from livematch.core._fix_kernel import all_within
-from livematch.core._tree_kernel import K_SEG, ROW_F, ROW_I, cut_and_check, tree_sweep
+from livematch.core._tree_kernel import (
+    K_SEG,
+    LIVE_F,
+    ROW_F,
+    ROW_I,
+    cut_and_check,
+    tree_sweep,
+)
 from livematch.core._tree_kernel import live_answer as tree_live_answer
 from livematch.core.candidates import DIED, CandidateTree
 from livematch.core.events import Assignment, Commit, Event, Filtered, HeldAssignment, MatchedFix
@@ -97,17 +104,19 @@ from livematch.core.sweep import Node, StepContext, advance
 from livematch.core.view import NetworkView, view_of
 from livematch.errors import BadStateError
 
-STATE_FORMAT = b"LMT5"
+STATE_FORMAT = b"LMT6"
+STATE_FORMAT_V5 = b"LMT5"  # as LMT6 with low, pos, cost in every row; still read
 STATE_FORMAT_V4 = b"LMT4"  # as LMT5 with the fix time, via start and length in every row; read
 STATE_FORMAT_V3 = b"LMT3"  # as LMT4 without the flags byte, zlib-compressed; still read
 STATE_FORMAT_V2 = b"LMT2"  # as LMT3 with the matched point in every row; still read
 STATE_FORMAT_V1 = b"LMT1"  # JSON rows of linked nodes; still read
-_READABLE = (STATE_FORMAT, STATE_FORMAT_V4, STATE_FORMAT_V3, STATE_FORMAT_V2,
-             STATE_FORMAT_V1)
+_READABLE = (STATE_FORMAT, STATE_FORMAT_V5, STATE_FORMAT_V4, STATE_FORMAT_V3,
+             STATE_FORMAT_V2, STATE_FORMAT_V1)
 # float64 columns of a tree row in LMT2 (low, pos, x, y, cost, t), in LMT3 and LMT4 (low,
-# pos, cost, t), and the ones LMT3 and LMT4 keep of LMT2's
+# pos, cost, t), in LMT5 (low, pos, cost), and the ones LMT3 and LMT4 keep of LMT2's
 _V2_ROW_F = 6
 _V4_ROW_F = 4
+_V5_ROW_F = 3
 # int32 columns of a tree row up to LMT4 (seg, seq, parent, via_start, via_len)
 _V4_ROW_I = 5
 _V2_KEPT = [0, 1, 4, 5]
@@ -2655,17 +2664,19 @@ class Tracker:
     def to_bytes(self, compress: bool = False) -> bytes:
         """Versioned serialisation of the whole state; a restored tracker continues exactly.
 
-        ``LMT5``: the 4-byte format, a flags byte (bit 0: what follows is zlib-compressed,
+        ``LMT6``: the 4-byte format, a flags byte (bit 0: what follows is zlib-compressed,
         level 1, when ``compress``), then a 4-byte header length, a JSON header (the
         scalars, floats written with ``repr`` precision; a dict, so a field added later is
         one more key, read with a default) and the arrays' bytes as they are: each
         level's candidate tree, compacted to the rows still needed (rows' ints, rows'
-        floats, vias, then one time per fix from the first row's fix on; layout in
-        :mod:`livematch.core._tree_kernel`), the fix positions, then the spike test's
-        copy of the levels. Uncompressed, a checkpoint costs a few tens of microseconds,
-        about a tenth of the zlib-compressed ``LMT3`` (``bench/checkpoint.py``), and is
-        about three times as long; ``compress`` trades the time back for the size.
-        :meth:`from_bytes` also reads ``LMT4`` (as ``LMT5`` with each row's fix time in
+        positions, the live rows' low and cost, vias, then one time per fix from the
+        first row's fix on; layout in :mod:`livematch.core._tree_kernel`), the fix
+        positions, then the spike test's copy of the levels. Uncompressed, a checkpoint
+        costs a few tens of microseconds, about a tenth of the zlib-compressed ``LMT3``
+        (``bench/checkpoint.py``), and is about three times as long; ``compress`` trades
+        the time back for the size. :meth:`from_bytes` also reads ``LMT5`` (as ``LMT6``
+        with low, pos and cost in every row and no live floats apart: an older row's
+        low and cost are dropped), ``LMT4`` (as ``LMT5`` with each row's fix time in
         the row, no list of times), ``LMT3`` (as ``LMT4``, zlib-compressed at level 6, no
         flags byte), ``LMT2`` (each row also with its matched point, recomputed from the
         row's segment and position, bit for bit) and ``LMT1`` (JSON rows).
@@ -2730,12 +2741,12 @@ class Tracker:
     def from_bytes(
         cls, network: RoadNetwork, settings: MatchSettings | None, data: bytes
     ) -> Tracker:
-        """Restore a tracker written by :meth:`to_bytes` (``LMT5``; ``LMT4`` to ``LMT1`` too)."""
+        """Restore a tracker written by :meth:`to_bytes` (``LMT6``; ``LMT5`` to ``LMT1`` too)."""
         fmt = data[:len(STATE_FORMAT)]
         if fmt not in _READABLE:
             raise BadStateError(f"not a livematch tracker state (expected {STATE_FORMAT!r})")
         try:
-            if fmt in (STATE_FORMAT, STATE_FORMAT_V4):
+            if fmt in (STATE_FORMAT, STATE_FORMAT_V5, STATE_FORMAT_V4):
                 flags = data[4] if len(data) > 4 else -1
                 if flags == 0:
                     body = memoryview(data)[5:]
@@ -2773,9 +2784,10 @@ class Tracker:
                 lv.tree = CandidateTree.from_nodes({seg: nodes[i] for seg, i in live})
             tracker.fix_seq0 = state["seq"] + 1  # no fix positions: the score starts anew
         else:
-            # the row layout: LMT5's, or rows with their fix's time (LMT4, LMT3), or also
-            # with the matched point (LMT2)
-            old = 0 if fmt == STATE_FORMAT else 2 if fmt == STATE_FORMAT_V2 else 1
+            # the row layout: LMT6's, or LMT5's (low, pos, cost in every row), or rows
+            # with their fix's time (LMT4, LMT3), or also with the matched point (LMT2)
+            old = (0 if fmt == STATE_FORMAT else 3 if fmt == STATE_FORMAT_V5
+                   else 2 if fmt == STATE_FORMAT_V2 else 1)
             at = _unpack_levels(tracker.levels, state["levels"], rest, 0, old)
             # absent in older states: no fix positions, the live score starts with
             # new fixes
@@ -2801,7 +2813,7 @@ class Tracker:
         # LMT4 leaves out an empty buffer and skipped list
         tracker.buffer = tuple(Fix(*row) for row in state.get("buffer", ()))
         times = state["times"]
-        seqs, ts = times if fmt in (STATE_FORMAT, STATE_FORMAT_V4) else (
+        seqs, ts = times if fmt in (STATE_FORMAT, STATE_FORMAT_V5, STATE_FORMAT_V4) else (
             [k for k, _ in times], [v for _, v in times])
         if len(seqs) != len(ts) or seqs != list(range(seqs[0] if seqs else 1,
                                                       (seqs[0] if seqs else 1) + len(seqs))):
@@ -2941,7 +2953,7 @@ def _pack_levels(levels: list[Level],
     for lv in levels:
         n, nv, live, t0, parts = lv.tree.packed_parts()
         rows.append([lv.eps, lv.tree_seq, lv.cert_seq, lv.cert_t, lv.trim_seq, n, nv, live,
-                     t0, parts[3].nbytes // 8])
+                     t0, parts[4].nbytes // 8])
         arrays += parts
     return rows
 
@@ -2950,27 +2962,30 @@ def _unpack_levels(levels: list[Level], rows: list[list[float | int]], rest: mem
                    at: int, old: int = 0) -> int:
     """Fill ``levels`` from header ``rows`` and the arrays in ``rest`` from ``at`` on.
 
-    ``old``: 0 for ``LMT5`` (rows' ints, floats, vias, then one time per fix); 1 for
-    ``LMT4`` and ``LMT3`` (each row with its fix's time, no list of times, and its vias'
-    start and length where LMT5 keeps their end); 2 for ``LMT2`` (each row also with
-    its matched point, dropped here). Returns where the
+    ``old``: 0 for ``LMT6`` (rows' ints, their positions, the live rows' low and cost,
+    vias, then one time per fix); 3 for ``LMT5`` (as LMT6 with low, pos, cost in every
+    row and no live floats); 1 for ``LMT4`` and ``LMT3`` (each row with its fix's time,
+    no list of times, and its vias' start and length where LMT5 keeps their end); 2 for
+    ``LMT2`` (each row also with its matched point, dropped here). Returns where the
     next arrays start. The trees get arrays of their own (copies: ``rest`` may be
     read-only), none for an empty part (:meth:`CandidateTree.unpacked`).
     """
-    row_f = ROW_F if not old else _V4_ROW_F if old == 1 else _V2_ROW_F
-    row_i = _V4_ROW_I if old else ROW_I
+    row_f = (ROW_F if not old else _V5_ROW_F if old == 3 else _V4_ROW_F if old == 1
+             else _V2_ROW_F)
+    row_i = _V4_ROW_I if old in (1, 2) else ROW_I
     end = len(rest)
     for lv, head in zip(levels, rows, strict=True):
         _, tree_seq, cert_seq, cert_t, trim_seq, n_rows, n_vias, live = head[:8]
-        t0, n_times = (int(head[8]), int(head[9])) if not old else (0, 0)
+        t0, n_times = (int(head[8]), int(head[9])) if old in (0, 3) else (0, 0)
         lv.tree_seq, lv.cert_seq, lv.cert_t = int(tree_seq), int(cert_seq), float(cert_t)
         lv.trim_seq = int(trim_seq)
-        nr, nv = int(n_rows), int(n_vias)
+        nr, nv, nl = int(n_rows), int(n_vias), int(live)
         at_f = at + nr * row_i * 4
-        at_v = at_f + nr * row_f * 8
+        at_l = at_f + nr * row_f * 8
+        at_v = at_l + (nl * LIVE_F * 8 if not old else 0)
         at_t = at_v + nv * 4
         nxt = at_t + n_times * 8
-        if nr < 0 or nv < 0 or n_times < 0 or nxt > end:
+        if nr < 0 or nv < 0 or n_times < 0 or not 0 <= nl <= nr or nxt > end:
             raise BadStateError("corrupt tracker state: candidate tree cut short")
         if nr:
             ti = np.frombuffer(rest, np.int32, nr * row_i, at)
@@ -2978,7 +2993,11 @@ def _unpack_levels(levels: list[Level], rows: list[list[float | int]], rest: mem
             tv = np.frombuffer(rest, np.int32, nv, at_v)
             if not old:
                 times = np.frombuffer(rest, np.float64, n_times, at_t)
-                lv.tree = CandidateTree.unpacked(ti, tf, tv, int(live), times, t0)
+                lf = np.frombuffer(rest, np.float64, nl * LIVE_F, at_l)
+                lv.tree = CandidateTree.unpacked(ti, tf, lf, tv, nl, times, t0)
+            elif old == 3:
+                times = np.frombuffer(rest, np.float64, n_times, at_t)
+                lv.tree = CandidateTree.unpacked_rows(ti, tf, tv, nl, times, t0)
             else:
                 tf = tf.reshape(nr, row_f)
                 if old == 2:
