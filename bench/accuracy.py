@@ -167,6 +167,16 @@ def roundtrip_xy(network: RoadNetwork, records: list[dict[str, Any]]) -> XY:
 
 
 # ---------------------------------------------------------------------------- calibration
+def simulate_drives(network: RoadNetwork, seed: int, extract_index: int, count: int,
+                    settings: DriveSettings, allowed: np.ndarray) -> list[Drive]:
+    """The bench's drives ``sim-000`` ... of one extract: drive ``i`` from the generator
+    seeded ``[seed, extract_index, i]``, starting 3 s after the one before, so every
+    script that calls this with the same arguments matches the very same drives."""
+    return [simulate_drive(network, np.random.default_rng([seed, extract_index, i]),
+                           f"sim-{i:03d}", START_TIME + 3.0 * i, settings, allowed)
+            for i in range(count)]
+
+
 def calibrate(network: RoadNetwork, drives: list[Drive], interval: int) -> tuple[float, float]:
     """sigma_z and beta by Newson & Krumm's estimators on calibration drives' truth."""
     dists: list[float] = []
@@ -657,9 +667,7 @@ def main(argv: list[str] | None = None) -> int:
         for ei, name in enumerate(args.extract.split(",")):
             network = load_network(extract_path(name))
             allowed = drivable_segments(network)
-            drives = [simulate_drive(network, np.random.default_rng([args.seed, ei, i]),
-                                     f"sim-{i:03d}", START_TIME + 3.0 * i, settings, allowed)
-                      for i in range(args.drives)]
+            drives = simulate_drives(network, args.seed, ei, args.drives, settings, allowed)
             print(json.dumps({"extract": name, "sim": args.sim,
                               **drive_mix(network, drives, allowed)}))
         return 0
@@ -697,9 +705,7 @@ def main(argv: list[str] | None = None) -> int:
         net_path = extract_path(name)
         network = load_network(net_path)
         allowed = drivable_segments(network)
-        drives = [simulate_drive(network, np.random.default_rng([args.seed, ei, i]),
-                                 f"sim-{i:03d}", START_TIME + 3.0 * i, settings, allowed)
-                  for i in range(args.drives)]
+        drives = simulate_drives(network, args.seed, ei, args.drives, settings, allowed)
         calib = [simulate_drive(network, np.random.default_rng([args.seed, ei, 10_000 + i]),
                                 f"cal-{i:03d}", START_TIME, settings, allowed)
                  for i in range(args.calibration_drives)]

@@ -48,7 +48,7 @@ from livematch.baselines import Matched, TraceMatch  # noqa: E402
 from livematch.core.network import RoadNetwork  # noqa: E402
 from livematch.mapdata.netfile import open_network  # noqa: E402
 from livematch.mapdata.options import ImportOptions  # noqa: E402
-from livematch.sim.drive import Drive, DriveSettings, observe, simulate_drive  # noqa: E402
+from livematch.sim.drive import Drive, DriveSettings, observe  # noqa: E402
 from livematch.sim.logs import replay_records  # noqa: E402
 
 
@@ -117,10 +117,7 @@ def main(argv: list[str] | None = None) -> int:
                                      outlier_p=0.01, **acc.SIM_MODELS[sim])
             for seed in [int(s) for s in args.seeds.split(",")]:
                 t_sim = time.perf_counter()
-                drives = [simulate_drive(raw, np.random.default_rng([seed, eidx, i]),
-                                         f"sim-{i:03d}", acc.START_TIME + 3.0 * i,
-                                         settings, allowed)
-                          for i in range(args.drives)]
+                drives = acc.simulate_drives(raw, seed, eidx, args.drives, settings, allowed)
                 t_sim = time.perf_counter() - t_sim
                 mapped = {d.vehicle: map_drive(d, to) for d in drives}
                 motions = {d.vehicle: acc.motion_states(raw, d) for d in drives}

@@ -52,8 +52,6 @@ from collections import Counter, defaultdict
 from pathlib import Path
 from typing import Any
 
-import numpy as np
-
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "bench"))
@@ -61,7 +59,7 @@ sys.path.insert(0, str(ROOT / "bench"))
 import accuracy as acc  # noqa: E402
 
 from livematch.core import tracker as tracker_mod  # noqa: E402
-from livematch.sim.drive import DriveSettings, observe, simulate_drive  # noqa: E402
+from livematch.sim.drive import DriveSettings, observe  # noqa: E402
 from livematch.sim.logs import replay_records  # noqa: E402
 from livematch.sim.score import TruePath  # noqa: E402
 
@@ -283,10 +281,8 @@ def main(argv: list[str] | None = None) -> int:
                 network = acc.load_network(acc.extract_path(name))
                 allowed = acc.drivable_segments(network)
                 t_sim = time.perf_counter()
-                drives = [simulate_drive(network, np.random.default_rng([seed, eidx, i]),
-                                         f"sim-{i:03d}", acc.START_TIME + 3.0 * i,
-                                         settings, allowed)
-                          for i in range(args.drives)]
+                drives = acc.simulate_drives(network, seed, eidx, args.drives, settings,
+                                             allowed)
                 t_sim = time.perf_counter() - t_sim
                 motions = {d.vehicle: acc.motion_states(network, d) for d in drives}
                 for k in [int(x) for x in args.intervals.split(",")]:

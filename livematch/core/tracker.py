@@ -2228,13 +2228,7 @@ class Tracker:
                 owner.append(k)
         if not turns:
             return chain
-        # at[k]: node k sits on segs[at[k]]
-        at = [0] * len(chain)
-        for i, k in enumerate(owner):
-            if k >= 0:
-                at[k] = i
-        for k in range(1, len(chain)):
-            at[k] = max(at[k], at[k - 1])
+        at = _node_at(owner, len(chain))  # node k sits on segs[at[k]]
         sf = view.sf
         seq0 = self.fix_seq0
         xy = self.fix_xy
@@ -2399,12 +2393,7 @@ class Tracker:
                 owner.append(k)
         if len(segs) < 3:
             return chain
-        at = [0] * len(chain)
-        for m, k in enumerate(owner):
-            if k >= 0:
-                at[k] = m
-        for k in range(1, len(chain)):
-            at[k] = max(at[k], at[k - 1])
+        at = _node_at(owner, len(chain))
         # the loop may begin on the segment before the chain (segs[0], committed before)
         last_pass: dict[int, int] = {int(sf[segs[0]]): 0}
         for j in range(1, len(segs)):
@@ -3134,3 +3123,19 @@ def _best_cost(tree: CandidateTree) -> float:
 def _goes_on(level: Level, seq: int) -> bool:
     """Whether ``level`` is alive with a tree that began before fix ``seq``."""
     return len(level.tree) > 0 and level.tree_seq < seq
+
+
+def _node_at(owner: list[int], n: int) -> list[int]:
+    """Per node of a chain of ``n`` nodes, the index of the step it sits on.
+
+    ``owner[i]`` is the node whose arrival made step ``i`` (-1: a step before the chain);
+    a node that made no step of its own (it stayed on its segment) sits on the step of
+    the node before it, so the answer never decreases.
+    """
+    at = [0] * n
+    for i, k in enumerate(owner):
+        if k >= 0:
+            at[k] = i
+    for k in range(1, n):
+        at[k] = max(at[k], at[k - 1])
+    return at
