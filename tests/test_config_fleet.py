@@ -5,6 +5,7 @@ from __future__ import annotations
 import tomllib
 from dataclasses import fields, replace
 from pathlib import Path
+from typing import Any
 
 import pytest
 
@@ -16,7 +17,7 @@ PROFILE = Path(__file__).resolve().parent.parent / "config" / "fleet.toml"
 
 #: The [matcher] keys the profile turns on, with the values measured in docs/measured.md,
 #: "Session 14 (fleetprofile)".
-FLEET_KEYS = {"stand_turnback": True, "end_stand": True, "stand_short_m": 5.0}
+FLEET_KEYS: dict[str, Any] = {"stand_turnback": True, "end_stand": True, "stand_short_m": 5.0}
 
 
 def test_fleet_profile_loads_and_validates() -> None:
