@@ -17,7 +17,8 @@ PROFILE = Path(__file__).resolve().parent.parent / "config" / "fleet.toml"
 
 #: The [matcher] keys the profile turns on, with the values measured in docs/measured.md,
 #: "Session 14 (fleetprofile)".
-FLEET_KEYS: dict[str, Any] = {"stand_turnback": True, "end_stand": True, "stand_short_m": 5.0}
+FLEET_KEYS: dict[str, Any] = {"stand_turnback": True, "end_stand": True, "stand_short_m": 5.0,
+                              "live_keep": 15.0}
 
 
 def test_fleet_profile_loads_and_validates() -> None:
