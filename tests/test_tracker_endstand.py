@@ -63,7 +63,7 @@ def test_without_the_rule_the_stand_ends_on_s() -> None:
 
 
 def test_end_stand_reports_the_stand_on_p() -> None:
-    """With the rule every stand fix is on P (shapely), within eps of its fix; no S."""
+    """With the rule every stand fix is on P (shapely), within eps of its fix; path kept."""
     events = drive(MatchSettings(end_stand=True), DRIFT)
     got = finals(events)
     line_p = shapely.LineString(P)
@@ -74,7 +74,8 @@ def test_end_stand_reports_the_stand_on_p() -> None:
         assert line_p.distance(point) == pytest.approx(0.0, abs=1e-9)  # shapely
         assert point.distance(shapely.Point(fx, fy)) <= EPS  # shapely
         assert offset == pytest.approx(line_p.project(point), abs=1e-6)  # shapely
-    assert path(events) == [0]
+    # only the answers move: the committed path is the one without the rule
+    assert path(events) == path(drive(MatchSettings(), DRIFT)) == [0, 2]
 
 
 def test_vehicle_that_drives_on_keeps_its_answers() -> None:
@@ -91,6 +92,38 @@ def test_short_stand_is_left_alone() -> None:
     short = DRIFT[:8]
     assert finals(drive(MatchSettings(end_stand=True), short)) == finals(
         drive(MatchSettings(), short))
+
+
+def finals_every(settings: MatchSettings, pts: list[tuple[float, float]],
+                 dt: float) -> dict[float, tuple[int, float, float, float]]:
+    """Final answers for fixes ``pts`` taken ``dt`` seconds apart, then the flush."""
+    tracker = Tracker(NET, "v", settings)
+    events: list[Event] = []
+    for i, (x, y) in enumerate(pts):
+        events += tracker.update(Fix("v", dt * i, 0.0, 0.0, x, y))
+    return finals(events + tracker.flush())
+
+
+# along P every 15 s, then two fixes 6-8 m north of V, 15 s apart: within 10 m of each
+# other and of the fix before on P, a "stand" of 30 s, but three fixes and two gaps of
+# 15 s, as much a slow step or a turning circle as a stand
+SPARSE = [(0.0, 1.0), (30.0, 1.0), (60.0, 1.0), (96.0, 1.0), (99.5, 6.0), (99.5, 8.0)]
+# a receiver that repeats one position 5 m up S for 20 s after a stop just before V
+STILL = [(10.0 * i, 1.0) for i in range(10)] + [(98.0, 1.0)] * 3 + [(100.0, 5.0)] * 20
+
+
+def test_sparse_stand_is_left_alone() -> None:
+    """Fixes 15 s apart: the rule does not act (without the dense-fix guard it would)."""
+    base = finals_every(MatchSettings(), SPARSE, 15.0)
+    assert base[75.0][0] == 2 and base[60.0][0] == 2  # on S without the rule
+    assert finals_every(MatchSettings(end_stand=True), SPARSE, 15.0) == base
+
+
+def test_repeated_position_is_left_alone() -> None:
+    """A receiver repeating one position shows no wandering error: answers kept."""
+    base = finals_every(MatchSettings(), STILL, 1.0)
+    assert {base[t][0] for t in (27.0, 32.0)} == {2}  # on S without the rule
+    assert finals_every(MatchSettings(end_stand=True), STILL, 1.0) == base
 
 
 def test_restore_mid_stand_gives_the_same_outputs() -> None:
