@@ -1777,8 +1777,14 @@ class Tracker:
         nearest its fix, never behind A or the node before it. If one such point lies
         farther than ``eps`` from its fix nothing changes (the fixes do not stand at
         A's segment). Only the reported answers change: the committed path, the chain
-        and the last commit point stay as they were (as :meth:`_stand_at_vertex` does),
-        and an answer that already lies on A's segment is kept.
+        and the last commit point stay as they were (as :meth:`_stand_at_vertex` does).
+        An answer another rule has placed off its node's segment (``stand_at_vertex``
+        at a vertex, ``vertex_in_segment`` at the end of the segment in) is kept, and
+        where A's own answer was so placed nothing changes: that rule has already
+        reported where the stand began (a stand at a vertex between two short segments
+        whose fixes wander over both: moving the later fixes onto A's segment would
+        undo that answer, the one fix the rule lost on the decision runs before this
+        guard).
 
         Why: while a vehicle stands its GNSS error leans one way for tens of seconds
         (temporally correlated error), and the best path follows it past the vertex
@@ -1839,6 +1845,7 @@ class Tracker:
                     s = -1
         seg = anchor.seg
         if (chain[-1].t - anchor.t < STAND_S or all(c.seg == seg for c in chain[s + 1:])
+                or (s >= 0 and fixes[s].segment != seg)
                 or not self._wandering_run([anchor, *chain[s + 1:]])):
             return
         view = self._view
@@ -1861,7 +1868,7 @@ class Tracker:
             px, py = ax + pos * ux, ay + pos * uy
             if (px - fx) ** 2 + (py - fy) ** 2 > eps * eps:
                 return
-            if fixes[k].segment != seg:
+            if fixes[k].segment == node.seg:
                 moved.append((k, MatchedFix(node.t, seg, pos * slen, float(px), float(py))))
         for k, answer in moved:
             fixes[k] = answer
