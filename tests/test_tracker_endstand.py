@@ -10,10 +10,10 @@ import pytest
 import shapely
 
 from livematch.core.build import Road, network_from_roads
-from livematch.core.events import Commit, Event
+from livematch.core.events import Commit, Event, MatchedFix
 from livematch.core.fix import Fix
 from livematch.core.settings import MatchSettings
-from livematch.core.tracker import Tracker
+from livematch.core.tracker import Node, Tracker
 
 # P runs east into V = (100, 0); S leaves V north (its first piece 10 m long, so a stand
 # drifting 8 m north is past its middle); T leaves V east.
@@ -136,3 +136,38 @@ def test_end_stand_validation() -> None:
     """end_stand must be a boolean."""
     assert ("end_stand", "must be true or false, got 'yes'") in MatchSettings(
         end_stand="yes").problems()  # type: ignore[arg-type]
+
+
+def _stand_chain() -> tuple[Tracker, list[Node], list[MatchedFix]]:
+    """Six fixes on P before V, then six drifting 0.5-5.5 m up S: nodes and answers."""
+    tracker = Tracker(NET, "v", MatchSettings(end_stand=True))
+    chain: list[Node] = []
+    for i in range(12):
+        x, y = (98.0 + 0.2 * i, 0.0) if i < 6 else (100.0, 0.5 * i)
+        _ = tracker.update(Fix("v", float(i), 0.0, 0.0, x, y))
+        seg, pos = (0, x / 100.0) if i < 6 else (2, y / 10.0)  # S's first piece, 10 m
+        chain.append(Node(seg, tracker.fix_seq0 + i, float(i), pos, x, y,
+                          chain[-1] if chain else None, (), 0.0, 0.0))
+    answers = [MatchedFix(n.t, n.seg, n.pos * float(NET.seg_len[n.seg]), n.x, n.y)
+               for n in chain]
+    return tracker, chain, answers
+
+
+def test_answers_another_rule_placed_are_kept() -> None:
+    """An answer already off its node's segment (at V, as the end of P) stays as it is;
+    where the stand's first answer was so placed nothing changes at all."""
+    tracker, chain, answers = _stand_chain()
+    plain = list(answers)
+    tracker._end_stand(chain, None, EPS, plain)
+    assert [f.segment for f in plain[6:]] == [0] * 6  # the rule acts on this stand
+    at_v = MatchedFix(8.0, 1, 0.0, 100.0, 0.0)  # placed elsewhere by another rule
+    kept = list(answers)
+    kept[8] = at_v
+    tracker._end_stand(chain, None, EPS, kept)
+    assert kept[8] == at_v and [f.segment for f in kept[6:8]] == [0, 0]
+    # the stand's first node (fix 0, on P) reported elsewhere: no answer changes
+    moved_first = list(answers)
+    moved_first[0] = MatchedFix(0.0, 1, 0.0, 98.0, 0.0)
+    expect = list(moved_first)
+    tracker._end_stand(chain, None, EPS, moved_first)
+    assert moved_first == expect
