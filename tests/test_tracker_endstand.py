@@ -56,7 +56,7 @@ DRIFT = [(99.0 + 0.1 * (i % 3), 1.0 + min(i, 14) * 0.5) for i in range(30)]
 
 def test_without_the_rule_the_stand_ends_on_s() -> None:
     """The case the rule is for: the flush commits the stand onto S (a road not driven)."""
-    events = drive(MatchSettings(), DRIFT)
+    events = drive(MatchSettings(end_stand=False), DRIFT)
     got = finals(events)
     assert {got[float(t)][0] for t in range(20, 40)} == {2}
     assert 2 in path(events)
@@ -75,13 +75,13 @@ def test_end_stand_reports_the_stand_on_p() -> None:
         assert point.distance(shapely.Point(fx, fy)) <= EPS  # shapely
         assert offset == pytest.approx(line_p.project(point), abs=1e-6)  # shapely
     # only the answers move: the committed path is the one without the rule
-    assert path(events) == path(drive(MatchSettings(), DRIFT)) == [0, 2]
+    assert path(events) == path(drive(MatchSettings(end_stand=False), DRIFT)) == [0, 2]
 
 
 def test_vehicle_that_drives_on_keeps_its_answers() -> None:
     """Fixes that move along S at the end of the log are not a stand: answers unchanged."""
     moving = [(100.5, 5.0 * i) for i in range(1, 15)]
-    base = finals(drive(MatchSettings(), moving))
+    base = finals(drive(MatchSettings(end_stand=False), moving))
     new = finals(drive(MatchSettings(end_stand=True), moving))
     assert new == base
     assert {base[float(t)][0] for t in range(15, 24)} == {4}  # S's second piece
@@ -91,7 +91,7 @@ def test_short_stand_is_left_alone() -> None:
     """A stand of less than 10 s at the end of the log keeps its answers."""
     short = DRIFT[:8]
     assert finals(drive(MatchSettings(end_stand=True), short)) == finals(
-        drive(MatchSettings(), short))
+        drive(MatchSettings(end_stand=False), short))
 
 
 def finals_every(settings: MatchSettings, pts: list[tuple[float, float]],
@@ -114,14 +114,14 @@ STILL = [(10.0 * i, 1.0) for i in range(10)] + [(98.0, 1.0)] * 3 + [(100.0, 5.0)
 
 def test_sparse_stand_is_left_alone() -> None:
     """Fixes 15 s apart: the rule does not act (without the dense-fix guard it would)."""
-    base = finals_every(MatchSettings(), SPARSE, 15.0)
+    base = finals_every(MatchSettings(end_stand=False), SPARSE, 15.0)
     assert base[75.0][0] == 2 and base[60.0][0] == 2  # on S without the rule
     assert finals_every(MatchSettings(end_stand=True), SPARSE, 15.0) == base
 
 
 def test_repeated_position_is_left_alone() -> None:
     """A receiver repeating one position shows no wandering error: answers kept."""
-    base = finals_every(MatchSettings(), STILL, 1.0)
+    base = finals_every(MatchSettings(end_stand=False), STILL, 1.0)
     assert {base[t][0] for t in (27.0, 32.0)} == {2}  # on S without the rule
     assert finals_every(MatchSettings(end_stand=True), STILL, 1.0) == base
 
