@@ -410,21 +410,22 @@ class MatchSettings:
             apart (1-10 s with the defaults). Only the committed path changes; without
             reported speeds it does nothing.
         end_stand: at the end-of-log flush (and eviction), a vehicle whose last fixes
-            stand (span at least 10 s, all within 2 ``sigma_m`` of the last) is
-            reported on the segment the committed path had reached at the first fix of
-            that stand: each later fix at the point of that segment nearest it (never
-            behind the one before), and the path ends on that segment
+            stand (span at least 10 s, all within 2 ``sigma_m`` of the last, fixes at
+            most 5 s apart and wandering: their median gap and step) is reported on the
+            segment the committed path had reached at the first fix of that stand: each
+            later fix at the point of that segment nearest it (never behind the one
+            before). Only the final answers move: the committed path is kept, and so is
+            an answer another rule placed off its node's segment
             (:meth:`livematch.core.tracker.Tracker._end_stand`). Why: while the vehicle
             stands its GNSS error leans one way for tens of seconds and the best path
             follows it past the vertex ahead onto a road not driven; in the middle of a
             log the fixes after the stand tell which way the vehicle left, at the end
             of the log nothing does, and the segment the stand began on is the one the
-            fixes show it on. Final answers and the committed path of the flush only.
-            Off by default: on bench/fleetmiss.py's decision runs it gains final
-            road+dir at 1 and 5 s in every cell and loses no fix there, but the random
-            walk at Helsinki 15 and 30 s loses 3 fixes, route mismatch rises by 0.0001 in
-            six cells and the error median in three (docs/measured.md "Session 14
-            (dupways)").
+            fixes show it on. At 15 or 30 s between fixes two fixes within 10 m are no
+            evidence of a stand (a turning circle, a slow step), so it never acts there.
+            On by default: on bench/fleetmiss.py's decision runs it gains final road+dir
+            at 1 and 5 s in every cell, loses no fix, and leaves live answers and route
+            mismatch unchanged (docs/measured.md "Session 14 (endstand2)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -470,7 +471,7 @@ class MatchSettings:
     break_rejoin: bool = False
     stand_turnback: bool = False
     speed_laps: bool = False
-    end_stand: bool = False
+    end_stand: bool = True
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))

@@ -1685,8 +1685,6 @@ class Tracker:
             chain = self._close_stand_loops(chain, before, self._eps_of(tree))
         if self.settings.stand_turnback and before is not None and len(chain) >= 3:
             chain = self._turn_back_at_stand(chain, before, self._eps_of(tree))
-        if settle_all and self.settings.end_stand and len(chain) >= 2:
-            chain = self._end_stand(chain, before, self._eps_of(tree))
         top = chain[-1]
         view = self._view
         first = chain[0]
@@ -1737,6 +1735,8 @@ class Tracker:
                 prev = n
         if self.settings.stand_at_vertex and (goes_on or len(chain) >= 2):
             self._stand_at_vertex(chain, before, goes_on, starts, self._eps_of(tree), fixes)
+        if settle_all and self.settings.end_stand and len(chain) >= 2:
+            self._end_stand(chain, before, self._eps_of(tree), fixes)
         if starts and first.pos >= 1.0:
             # A stretch that starts at the very end of a segment drives none of it: report
             # its first fix at the start of the segment entered next (the same point) and
@@ -1761,20 +1761,30 @@ class Tracker:
         if prune is not None:
             prune.tree.prune(row)
 
-    def _end_stand(self, chain: list[Node], before: Node | None, eps: float) -> list[Node]:
-        """``chain`` with a stand at its end kept on the segment the stand began on.
+    def _end_stand(self, chain: list[Node], before: Node | None, eps: float,
+                   fixes: list[MatchedFix]) -> None:
+        """Report a stand at the end of ``chain`` on the segment it began on, in ``fixes``.
 
         Rule (``MatchSettings.end_stand``; the end-of-log flush only): the stand is the
         longest run of ``chain``'s last nodes whose fixes lie within ``STAND_SIGMAS`` x
         ``sigma_m`` of the last fix, reaching back to ``before`` (the last committed
         node, already published) when every node of the chain stands and its fix does
-        too; it must span at least ``STAND_S`` seconds. Its first node A is where the
-        path was when the vehicle stopped (as far as this commit can tell). Every later
-        node on
-        another segment is put back on A's segment: at the point of that segment nearest
-        its fix, never behind A or the node before it. If one such point lies farther
-        than ``eps`` from its fix the chain stays as it was (the fixes do not stand at
-        A's segment; the certificate would not hold). The path then ends on A's segment.
+        too; it must span at least ``STAND_S`` seconds, and its fixes, from its first
+        node A on, must come densely and wander (:meth:`_wandering_run`: median gap at
+        most ``SPARSE_S``, median step at least ``STILL_M``). A is where the path was
+        when the vehicle stopped (as far as this commit can tell). Every later node on
+        another segment is reported on A's segment: at the point of that segment
+        nearest its fix, never behind A or the node before it. If one such point lies
+        farther than ``eps`` from its fix nothing changes (the fixes do not stand at
+        A's segment). Only the reported answers change: the committed path, the chain
+        and the last commit point stay as they were (as :meth:`_stand_at_vertex` does).
+        An answer another rule has placed off its node's segment (``stand_at_vertex``
+        at a vertex, ``vertex_in_segment`` at the end of the segment in) is kept, and
+        where A's own answer was so placed nothing changes: that rule has already
+        reported where the stand began (a stand at a vertex between two short segments
+        whose fixes wander over both: moving the later fixes onto A's segment would
+        undo that answer, the one fix the rule lost on the decision runs before this
+        guard).
 
         Why: while a vehicle stands its GNSS error leans one way for tens of seconds
         (temporally correlated error), and the best path follows it past the vertex
@@ -1782,6 +1792,13 @@ class Tracker:
         bench/fleetmiss.py). In the middle of a log the fixes after the stand show which
         way the vehicle left, and :meth:`_stand_at_vertex` reads them; at the end of the
         log there are none, and fixes that stand show no movement off A's segment.
+        Dense fixes: at 15 or 30 s between fixes a run of ``STAND_S`` is two fixes, and
+        two fixes within ``STAND_SIGMAS`` x ``sigma_m`` of each other 15-30 s apart are
+        as often a vehicle going round a small loop or a turning circle as a stand
+        (docs/measured.md "Session 14 (endstand2)": the only fixes the rule lost). The
+        path is kept because the truth of a vehicle standing at the vertex V at the end
+        of A's segment is the next segment at offset 0: a path that went on onto it
+        covered that truth, a path cut back to A's segment does not.
 
         Example (a stand whose fixes drift 6 m past the end of a road onto the next):
             >>> from livematch.core.build import Road, network_from_roads
@@ -1796,15 +1813,17 @@ class Tracker:
             ...     pos = x / 100.0 if i < 6 else y / 80.0
             ...     chain.append(Node(seg, tracker.fix_seq0 + i, float(i), pos, x, y,
             ...                       chain[-1] if chain else None, (), 0.0, 0.0))
-            >>> [(n.seg, round(n.pos, 3)) for n in tracker._end_stand(chain, None, 15.0)][-2:]
-            [(0, 1.0), (0, 1.0)]
+            >>> out = [MatchedFix(n.t, n.seg, n.pos * 80.0, n.x, n.y) for n in chain]
+            >>> tracker._end_stand(chain, None, 15.0, out)
+            >>> [(f.segment, round(f.offset_m, 3)) for f in out][-2:]
+            [(0, 100.0), (0, 100.0)]
         """
         seq0 = self.fix_seq0
         xy = self.fix_xy
         n = len(chain)
         r = chain[-1].seq - seq0
         if not 0 <= r < self.fix_n:
-            return chain
+            return
         lx, ly = xy.item(r, 0), xy.item(r, 1)
         radius2 = (STAND_SIGMAS * self.settings.sigma_m) ** 2
         s = n - 1
@@ -1825,20 +1844,21 @@ class Tracker:
                     anchor = before
                     s = -1
         seg = anchor.seg
-        if chain[-1].t - anchor.t < STAND_S or all(c.seg == seg for c in chain[s + 1:]):
-            return chain
+        if (chain[-1].t - anchor.t < STAND_S or all(c.seg == seg for c in chain[s + 1:])
+                or (s >= 0 and fixes[s].segment != seg)
+                or not self._wandering_run([anchor, *chain[s + 1:]])):
+            return
         view = self._view
         ax, ay = view.vx[view.sf[seg]], view.vy[view.sf[seg]]
         ux, uy = view.vx[view.st[seg]] - ax, view.vy[view.st[seg]] - ay
         length2 = ux * ux + uy * uy
-        out = chain[:s + 1]
+        slen = float(view.slen[seg])
+        moved: list[tuple[int, MatchedFix]] = []
         pos = anchor.pos
-        for node in chain[s + 1:]:
-            parent = out[-1] if out else anchor
+        for k in range(s + 1, n):
+            node = chain[k]
             if node.seg == seg and node.pos >= pos and not node.via:
                 pos = node.pos
-                out.append(Node(seg, node.seq, node.t, pos, node.x, node.y, parent, (),
-                                node.cost, node.low))
                 continue
             r = node.seq - seq0
             fx, fy = xy.item(r, 0), xy.item(r, 1)
@@ -1847,10 +1867,11 @@ class Tracker:
                 pos = max(pos, min(1.0, proj))
             px, py = ax + pos * ux, ay + pos * uy
             if (px - fx) ** 2 + (py - fy) ** 2 > eps * eps:
-                return chain
-            out.append(Node(seg, node.seq, node.t, pos, px, py, parent, (), node.cost,
-                            node.low))
-        return out
+                return
+            if fixes[k].segment == node.seg:
+                moved.append((k, MatchedFix(node.t, seg, pos * slen, float(px), float(py))))
+        for k, answer in moved:
+            fixes[k] = answer
 
     def _stand_at_vertex(
         self, chain: list[Node], before: Node | None, goes_on: bool, starts: bool,
