@@ -177,6 +177,17 @@ def simulate_drives(network: RoadNetwork, seed: int, extract_index: int, count: 
             for i in range(count)]
 
 
+def decision_args(ap: argparse.ArgumentParser, extract: str = "helsinki,test") -> None:
+    """The options every decision script shares: ``--drives`` (80), ``--duration`` (900 s),
+    ``--extract``, ``--seed`` (31, a decision seed; the headline's 2009 is left alone) and
+    ``--sim`` (``plain``), so that the same flags draw the same drives in each."""
+    ap.add_argument("--drives", type=int, default=80)
+    ap.add_argument("--duration", type=float, default=900.0)
+    ap.add_argument("--extract", default=extract)
+    ap.add_argument("--seed", type=int, default=31)
+    ap.add_argument("--sim", choices=tuple(SIM_MODELS), default="plain")
+
+
 def calibrate(network: RoadNetwork, drives: list[Drive], interval: int) -> tuple[float, float]:
     """sigma_z and beta by Newson & Krumm's estimators on calibration drives' truth."""
     dists: list[float] = []

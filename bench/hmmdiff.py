@@ -138,9 +138,7 @@ def run_cell(name: str, ei: int, args: argparse.Namespace, interval: int,
                              **acc.SIM_MODELS[args.sim])
     network = acc.load_network(acc.extract_path(name))
     allowed = drivable_segments(network)
-    drives = [simulate_drive(network, np.random.default_rng([args.seed, ei, i]),
-                             f"sim-{i:03d}", acc.START_TIME + 3.0 * i, settings, allowed)
-              for i in range(args.drives)]
+    drives = acc.simulate_drives(network, args.seed, ei, args.drives, settings, allowed)
     fleet = [(d, observe(d, interval)) for d in drives]
     records = replay_records(network, fleet)
     xy = acc.roundtrip_xy(network, records)
@@ -254,12 +252,8 @@ def summary(cell: dict[str, Any]) -> dict[str, Any]:
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    ap.add_argument("--drives", type=int, default=80)
-    ap.add_argument("--duration", type=float, default=900.0)
+    acc.decision_args(ap)
     ap.add_argument("--intervals", default="30")
-    ap.add_argument("--extract", default="helsinki,test")
-    ap.add_argument("--seed", type=int, default=31)
-    ap.add_argument("--sim", choices=tuple(acc.SIM_MODELS), default="plain")
     ap.add_argument("--matcher", action="append", default=[], metavar="KEY=VALUE")
     ap.add_argument("--calibration-drives", type=int, default=8)
     ap.add_argument("--skip-hmm", action="store_true")

@@ -25,15 +25,13 @@ import sys
 from pathlib import Path
 from typing import Any
 
-import numpy as np
-
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "bench"))
 
 import accuracy as acc  # noqa: E402
 
-from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive  # noqa: E402
+from livematch.sim.drive import DriveSettings, drivable_segments, observe  # noqa: E402
 from livematch.sim.logs import replay_records  # noqa: E402
 from livematch.sim.score import TruePath  # noqa: E402
 
@@ -52,12 +50,8 @@ def _oks(network: Any, fleet: list[Any], run: acc.MethodRun, final: bool) -> lis
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    ap.add_argument("--drives", type=int, default=80)
-    ap.add_argument("--duration", type=float, default=900.0)
+    acc.decision_args(ap)
     ap.add_argument("--intervals", default="15,30")
-    ap.add_argument("--extract", default="helsinki,test")
-    ap.add_argument("--seed", type=int, default=31)
-    ap.add_argument("--sim", choices=tuple(acc.SIM_MODELS), default="plain")
     ap.add_argument("--matcher", action="append", default=[], metavar="KEY=VALUE")
     ap.add_argument("--out", default=None, help="append the JSON lines to this file")
     ap.add_argument("--speed-sigma", type=float, default=None, metavar="MPS",
@@ -71,9 +65,7 @@ def main(argv: list[str] | None = None) -> int:
     for ei, name in enumerate(args.extract.split(",")):
         network = acc.load_network(acc.extract_path(name))
         allowed = drivable_segments(network)
-        drives = [simulate_drive(network, np.random.default_rng([args.seed, ei, i]),
-                                 f"sim-{i:03d}", acc.START_TIME + 3.0 * i, settings, allowed)
-                  for i in range(args.drives)]
+        drives = acc.simulate_drives(network, args.seed, ei, args.drives, settings, allowed)
         for k in (int(v) for v in args.intervals.split(",")):
             fleet = [(d, observe(d, k)) for d in drives]
             records = replay_records(network, fleet)

@@ -55,7 +55,7 @@ import accuracy as acc  # noqa: E402
 
 from livematch.core import tracker as tracker_mod  # noqa: E402
 from livematch.core.view import view_of  # noqa: E402
-from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive  # noqa: E402
+from livematch.sim.drive import DriveSettings, drivable_segments, observe  # noqa: E402
 from livematch.sim.logs import replay_records  # noqa: E402
 from livematch.sim.score import TruePath, point_oracle  # noqa: E402
 
@@ -217,12 +217,8 @@ def table(rows: list[dict[str, Any]], n: int) -> str:
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    ap.add_argument("--drives", type=int, default=80)
-    ap.add_argument("--duration", type=float, default=900.0)
+    acc.decision_args(ap, extract="helsinki")
     ap.add_argument("--interval", type=int, default=15)
-    ap.add_argument("--extract", default="helsinki")
-    ap.add_argument("--seed", type=int, default=31)
-    ap.add_argument("--sim", choices=tuple(acc.SIM_MODELS), default="plain")
     ap.add_argument("--matcher", action="append", default=[], metavar="KEY=VALUE")
     ap.add_argument("--json", default=None, help="write every miss here")
     args = ap.parse_args(argv)
@@ -232,9 +228,7 @@ def main(argv: list[str] | None = None) -> int:
     allowed = drivable_segments(network)
     settings = DriveSettings(duration_s=args.duration, sigma_m=5.0, tau_s=45.0,
                              outlier_p=0.01, **acc.SIM_MODELS[args.sim])
-    drives = [simulate_drive(network, np.random.default_rng([args.seed, ei, i]),
-                             f"sim-{i:03d}", acc.START_TIME + 3.0 * i, settings, allowed)
-              for i in range(args.drives)]
+    drives = acc.simulate_drives(network, args.seed, ei, args.drives, settings, allowed)
     fleet = [(d, observe(d, args.interval)) for d in drives]
     records = replay_records(network, fleet)
     xy = acc.roundtrip_xy(network, records)

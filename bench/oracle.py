@@ -65,7 +65,6 @@ from livematch.sim.drive import (  # noqa: E402
     Observation,
     drivable_segments,
     observe,
-    simulate_drive,
 )
 from livematch.sim.logs import replay_records  # noqa: E402
 from livematch.sim.score import (  # noqa: E402
@@ -562,12 +561,8 @@ def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    ap.add_argument("--drives", type=int, default=80)
-    ap.add_argument("--duration", type=float, default=900.0)
+    acc.decision_args(ap)
     ap.add_argument("--intervals", default="5,15,30")
-    ap.add_argument("--extract", default="helsinki,test")
-    ap.add_argument("--seed", type=int, default=31)
-    ap.add_argument("--sim", choices=sorted(acc.SIM_MODELS), default="plain")
     ap.add_argument("--detour", default="0,0.1,0.5",
                     help="detour thresholds x (fractions of the least-cost length)")
     ap.add_argument("--livematch", choices=("inproc", "skip"), default="inproc")
@@ -592,9 +587,7 @@ def main(argv: list[str] | None = None) -> int:
         network = acc.load_network(acc.extract_path(name))
         allowed = drivable_segments(network)
         # the same drives as bench/accuracy.py (same seeds, vehicles and start times)
-        drives = [simulate_drive(network, np.random.default_rng([args.seed, ei, i]),
-                                 f"sim-{i:03d}", acc.START_TIME + 3.0 * i, settings, allowed)
-                  for i in range(args.drives)]
+        drives = acc.simulate_drives(network, args.seed, ei, args.drives, settings, allowed)
         for k in intervals:
             fleet = [(d, observe(d, k)) for d in drives]
             row = {"extract": name, "interval_s": k,
