@@ -426,6 +426,23 @@ class MatchSettings:
             On by default: on bench/fleetmiss.py's decision runs it gains final road+dir
             at 1 and 5 s in every cell, loses no fix, and leaves live answers and route
             mismatch unchanged (docs/measured.md "Session 14 (endstand2)").
+        start_stand: at the first commit of a vehicle's log, a vehicle whose first fixes
+            stand (span at least 10 s, all within 2 ``sigma_m`` of the first, fixes at
+            most 5 s apart and wandering: their median gap and step) and whose commit
+            goes on past the stand is reported on the segment the committed path is on
+            at the last fix of that stand, the road it left by: each earlier fix at the
+            point of that segment nearest it (never ahead of the one after), and the
+            committed path begins on that segment
+            (:meth:`livematch.core.tracker.Tracker._start_stand`). Why: a log that begins
+            while the vehicle stands at a vertex has no road it came in by, and the GNSS
+            error, leaning one way for tens of seconds, draws the best path onto a short
+            road into or out of that vertex that the vehicle never drove; only the
+            departure shows where it was. Never at 15 or 30 s between fixes. On by
+            default: on bench/fleetmiss.py's decision runs (80 drives, seeds 31 / 77, both
+            models, both extracts, 1 and 5 s) it turns 2 to 73 fixes right in each routed
+            trips cell and 2 to 10 in two random-walk cells, loses no fix, leaves live
+            answers unchanged and route mismatch unchanged or lower (routed trips test
+            1 s seed 31 1.98 -> 1.87 %) (docs/measured.md "Session 15 (logstart)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -472,6 +489,7 @@ class MatchSettings:
     stand_turnback: bool = False
     speed_laps: bool = False
     end_stand: bool = True
+    start_stand: bool = True
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -506,7 +524,7 @@ class MatchSettings:
                      "stand_loops_outer", "vertex_in_segment", "reverse_turns",
                      "reverse_turns_near", "lone_reverse_turns", "hold_filtered",
                      "stand_at_vertex", "motion_step", "break_rejoin", "stand_turnback",
-                     "speed_laps", "end_stand"):
+                     "speed_laps", "end_stand", "start_stand"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

@@ -1737,7 +1737,9 @@ class Tracker:
             self._stand_at_vertex(chain, before, goes_on, starts, self._eps_of(tree), fixes)
         if settle_all and self.settings.end_stand and len(chain) >= 2:
             self._end_stand(chain, before, self._eps_of(tree), fixes)
-        if starts and first.pos >= 1.0:
+        began = (self.settings.start_stand and last is None and len(chain) >= 3
+                 and self._start_stand(chain, self._eps_of(tree), fixes, path))
+        if starts and first.pos >= 1.0 and not began:
             # A stretch that starts at the very end of a segment drives none of it: report
             # its first fix at the start of the segment entered next (the same point) and
             # begin the path there, so that the path claims no segment it never drove.
@@ -1872,6 +1874,111 @@ class Tracker:
                 moved.append((k, MatchedFix(node.t, seg, pos * slen, float(px), float(py))))
         for k, answer in moved:
             fixes[k] = answer
+
+    def _start_stand(self, chain: list[Node], eps: float, fixes: list[MatchedFix],
+                     path: list[int]) -> bool:
+        """Report a stand at the start of the log on the road it left by; True if moved.
+
+        Rule (``MatchSettings.start_stand``; the first commit of the log only, ``chain``
+        its nodes, ``fixes`` their answers and ``path`` the committed path, both changed
+        in place): the stand is the longest run of ``chain``'s first nodes whose fixes
+        lie within ``STAND_SIGMAS`` x ``sigma_m`` of the first fix; it must span at least
+        ``STAND_S`` seconds, its fixes must come densely and wander
+        (:meth:`_wandering_run`: median gap at most ``SPARSE_S``, median step at least
+        ``STILL_M``), and the chain must go on past it (the vehicle's departure is in
+        this commit: a commit forced mid-stand shows none). Its last node B is where
+        the path was when the vehicle began to move, on the road it left by. Every
+        node of the stand is reported on B's segment: a node already on it, not ahead
+        of the node after, at its own point; any other at the point of B's segment
+        nearest its fix, never ahead of the node after it (so never past B). If one
+        such point lies farther than ``eps`` from its fix nothing changes (the fixes do
+        not stand on B's segment). The committed path then begins at B's segment's
+        first occurrence in it: no answer lies on the segments before it any more.
+
+        Why: a log that begins while the vehicle stands at a vertex V (a dwell, a stop
+        at a junction) has no road that came in: the first state may be any segment
+        within eps, and while the vehicle stands its GNSS error leans one way for tens
+        of seconds (temporally correlated error), so the best path starts on a short
+        road into V from the side the error leans to (or out of V onto it) that the
+        vehicle never drove, and the vehicle then leaves by another. In the middle of a
+        log :meth:`_stand_at_vertex` reads such a stand from the road that came in; at
+        the start of the log only the departure shows where the vehicle was: fixes
+        that stand show no movement off the road it left by, and a vehicle standing at
+        V before it leaves by T is at T's start (the mirror of :meth:`_end_stand`).
+        Dense fixes: at 15 or 30 s between fixes a run of ``STAND_S`` is one or two
+        steps, as often a slow step or a turning circle as a stand.
+
+        Example (a stand at V = (100, 0) whose fixes lean onto a road into V from the
+        south, then the vehicle leaves east):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(100.0, -80.0), (100.0, 0.0)], way=1),
+            ...                           Road([(100.0, 0.0), (200.0, 0.0)], way=2)])
+            >>> tracker = Tracker(net, "v1", MatchSettings(start_stand=True))
+            >>> pts = [(100.5 - 0.1 * (i % 2), -4.0 + 0.1 * i) for i in range(12)]
+            >>> pts += [(108.0, 0.5), (118.0, 0.5)]
+            >>> chain: list[Node] = []
+            >>> for i, (x, y) in enumerate(pts):
+            ...     _ = tracker.update(Fix("v1", float(i), 0.0, 0.0, x, y))
+            ...     seg, pos = (0, (y + 80.0) / 80.0) if i < 12 else (2, (x - 100.0) / 100.0)
+            ...     chain.append(Node(seg, tracker.fix_seq0 + i, float(i), pos, x, y,
+            ...                       chain[-1] if chain else None, (), 0.0, 0.0))
+            >>> out = [MatchedFix(n.t, n.seg, 0.0, n.x, n.y) for n in chain]
+            >>> path = [0, 2]
+            >>> tracker._start_stand(chain, 15.0, out, path)
+            True
+            >>> [(f.segment, round(f.offset_m, 2)) for f in out][:2], path
+            ([(2, 0.4), (2, 0.4)], [2])
+        """
+        seq0 = self.fix_seq0
+        xy = self.fix_xy
+        n = len(chain)
+        r = chain[0].seq - seq0
+        if not 0 <= r < self.fix_n:
+            return False
+        x0, y0 = xy.item(r, 0), xy.item(r, 1)
+        radius2 = (STAND_SIGMAS * self.settings.sigma_m) ** 2
+        e = 0
+        while e + 1 < n:
+            r = chain[e + 1].seq - seq0
+            if not 0 <= r < self.fix_n:
+                break
+            dx, dy = xy.item(r, 0) - x0, xy.item(r, 1) - y0
+            if dx * dx + dy * dy > radius2:
+                break
+            e += 1
+        anchor = chain[e]
+        seg = anchor.seg
+        if (e + 1 >= n or anchor.t - chain[0].t < STAND_S
+                or all(c.seg == seg for c in chain[:e])
+                or not self._wandering_run(chain[:e + 1])):
+            return False
+        view = self._view
+        ax, ay = view.vx[view.sf[seg]], view.vy[view.sf[seg]]
+        ux, uy = view.vx[view.st[seg]] - ax, view.vy[view.st[seg]] - ay
+        length2 = ux * ux + uy * uy
+        slen = float(view.slen[seg])
+        moved = [MatchedFix(anchor.t, seg, anchor.pos * slen, anchor.x, anchor.y)]
+        pos = anchor.pos
+        for k in range(e - 1, -1, -1):
+            node = chain[k]
+            if node.seg == seg and node.pos <= pos and not chain[k + 1].via:
+                pos = node.pos
+                moved.append(MatchedFix(node.t, seg, pos * slen, node.x, node.y))
+                continue
+            r = node.seq - seq0
+            fx, fy = xy.item(r, 0), xy.item(r, 1)
+            if length2 > 0.0:
+                proj = ((fx - ax) * ux + (fy - ay) * uy) / length2
+                pos = min(pos, max(0.0, proj))
+            px, py = ax + pos * ux, ay + pos * uy
+            if (px - fx) ** 2 + (py - fy) ** 2 > eps * eps:
+                return False
+            moved.append(MatchedFix(node.t, seg, pos * slen, float(px), float(py)))
+        for k, answer in enumerate(reversed(moved)):
+            fixes[k] = answer
+        if seg in path:
+            del path[:path.index(seg)]
+        return True
 
     def _stand_at_vertex(
         self, chain: list[Node], before: Node | None, goes_on: bool, starts: bool,
