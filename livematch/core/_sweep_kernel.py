@@ -122,6 +122,7 @@ _WHITE = 1
 _DONE = 2
 _FLAGS = 3
 _PEND_SHIFT = 2  # vflag >> 2: 1 + the id of the vertex's cheapest waiting entry (0: none)
+_CACHED = -2.0  # a slot <= this in phases 1-2: the segment's interval at offer _CACHED - slot
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -246,13 +247,17 @@ def sweep_kernel(
             if n_offers >= cap_o:
                 overflow = True
                 break
-            offer_f[2 * n_offers] = low
+            # the segment's own interval (lo, not low: phase 3 applies the state's low to
+            # these first offers), which phase 2 reads back for the segment instead of
+            # computing it again (the same call on the same floats); the slot marks it
+            offer_f[2 * n_offers] = lo
             offer_f[2 * n_offers + 1] = hi
             k = n_offers * OFFER_STRIDE
             offer[k] = seg
             offer[k + 1] = i
             offer[k + 2] = 0
             offer[k + 3] = 0
+            netf[s8 + S_SLOT] = _CACHED - n_offers
             n_offers += 1
         vb = V_STRIDE * b
         flag = int(vert[vb + W_FLAG])
@@ -285,6 +290,8 @@ def sweep_kernel(
             entry[k + 1] = i
             entry[k + 2] = 0
             entry[k + 3] = 0
+
+    n_first = n_offers  # phase 1's offers (their segments' slots mark cached intervals)
 
     # 2. Through vertices in order of s (offers recorded).
     while not overflow:
@@ -353,8 +360,15 @@ def sweep_kernel(
             w = int(netf[f8 + S_TO])
             wx = netf[f8 + S_BX]
             wy = netf[f8 + S_BY]
-            # the record's tail point is v's: the reference's (vx[v], vy[v])
-            lo, hi = free_interval(netf[f8 + S_AX], netf[f8 + S_AY], wx, wy, x1, y1, eps2)
+            cached = netf[f8 + S_SLOT]
+            if cached <= _CACHED:  # a live state's segment: phase 1 computed its interval
+                c1 = 2 * int(_CACHED - cached)
+                lo = offer_f[c1]
+                hi = offer_f[c1 + 1]
+            else:
+                # the record's tail point is v's: the reference's (vx[v], vy[v])
+                lo, hi = free_interval(netf[f8 + S_AX], netf[f8 + S_AY], wx, wy, x1, y1,
+                                       eps2)
             if lo <= hi:
                 if n_offers >= cap_o:
                     overflow = True
@@ -407,6 +421,8 @@ def sweep_kernel(
 
     for r in range(n_touched):
         vert[V_STRIDE * vtouched[r] + W_FLAG] = 0.0
+    for o in range(n_first):
+        netf[SEG_STRIDE * offer[o * OFFER_STRIDE] + S_SLOT] = -1.0
     if overflow:
         return OVERFLOW, 0
 
@@ -428,6 +444,9 @@ def sweep_kernel(
         via_start = offer[q + 2]
         via_len = offer[q + 3]
         prow = N_CTX + parent * LIVE_STRIDE
+        if o < n_first:  # the reference's low: the state's own low if later (phase 1)
+            node_low = live[prow + L_LOW]
+            lo = node_low if node_low > lo else lo
         p_cost = live[prow + L_COST]
         s8 = SEG_STRIDE * seg
         slot = int(netf[s8 + S_SLOT])
