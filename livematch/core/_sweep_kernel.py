@@ -95,7 +95,8 @@ L_Y = 5
 L_COST = 6
 OUT_F_STRIDE = 5
 OUT_I_STRIDE = 4
-ENTRY_STRIDE = 4
+ENTRY_STRIDE = 5
+E_HPOS = 4  # an entry's place in the heap (or _IN_WAIT, _GONE)
 N_HEADER = 6  # V, E, H, B, M, O at the head of ``ibuf``
 # A segment's record in ``netf``: SEG_STRIDE values, the fields at these offsets.
 SEG_STRIDE = 8
@@ -122,6 +123,8 @@ _WHITE = 1
 _DONE = 2
 _FLAGS = 3
 _PEND_SHIFT = 2  # vflag >> 2: 1 + the id of the vertex's cheapest waiting entry (0: none)
+_IN_WAIT = -1  # an entry's heap position while it waits to be sifted into the heap
+_GONE = -2  # ... once an entry for its vertex that pops first has replaced it
 _CACHED = -2.0  # a slot <= this in phases 1-2: the segment's interval at offer _CACHED - slot
 
 
@@ -282,6 +285,8 @@ def sweep_kernel(
                 break
             e = n_entries
             n_entries += 1
+            if pend >= 0:  # (none is in the heap yet) the waiting one would pop for nothing
+                entry[pend * ENTRY_STRIDE + E_HPOS] = _GONE
             vert[vb + W_FLAG] = (flag & _FLAGS) | ((e + 1) << _PEND_SHIFT)
             es[e] = wl
             ec[e] = cost
@@ -290,6 +295,7 @@ def sweep_kernel(
             entry[k + 1] = i
             entry[k + 2] = 0
             entry[k + 3] = 0
+            entry[k + E_HPOS] = _IN_WAIT
 
     n_first = n_offers  # phase 1's offers (their segments' slots mark cached intervals)
 
@@ -298,6 +304,8 @@ def sweep_kernel(
         while n_pushed < n_entries:  # sift the new entries up into the heap
             e = n_pushed
             n_pushed += 1
+            if entry[e * ENTRY_STRIDE + E_HPOS] != _IN_WAIT:
+                continue  # replaced by a later entry for its vertex, or already placed
             h = n_heap
             n_heap += 1
             while h > 0:
@@ -305,10 +313,12 @@ def sweep_kernel(
                 u = heap[up]
                 if _before(es[e], ec[e], e, es[u], ec[u], u):
                     heap[h] = u
+                    entry[u * ENTRY_STRIDE + E_HPOS] = h
                     h = up
                 else:
                     break
             heap[h] = e
+            entry[e * ENTRY_STRIDE + E_HPOS] = h
         if n_heap == 0:
             break
         e = heap[0]  # pop the smallest entry
@@ -326,11 +336,13 @@ def sweep_kernel(
             c = heap[child]
             if _before(es[c], ec[c], c, es[last], ec[last], last):
                 heap[h] = c
+                entry[c * ENTRY_STRIDE + E_HPOS] = h
                 h = child
             else:
                 break
         if n_heap > 0:
             heap[h] = last
+            entry[last * ENTRY_STRIDE + E_HPOS] = h
 
         s = es[e]
         k = e * ENTRY_STRIDE
@@ -414,6 +426,24 @@ def sweep_kernel(
                 entry[q + 1] = parent
                 entry[q + 2] = n_via
                 entry[q + 3] = via_len + 1
+                entry[q + E_HPOS] = _IN_WAIT
+                if pend >= 0:
+                    # the waiting entry for w would pop after this one, for nothing: this
+                    # one takes its place (a smaller key: sifted up from there)
+                    h = entry[pend * ENTRY_STRIDE + E_HPOS]
+                    entry[pend * ENTRY_STRIDE + E_HPOS] = _GONE
+                    if h >= 0:
+                        while h > 0:
+                            up = (h - 1) >> 1
+                            u = heap[up]
+                            if _before(sw, ec[e], new_e, es[u], ec[u], u):
+                                heap[h] = u
+                                entry[u * ENTRY_STRIDE + E_HPOS] = h
+                                h = up
+                            else:
+                                break
+                        heap[h] = new_e
+                        entry[q + E_HPOS] = h
                 for r in range(via_len):
                     via[n_via + r] = via[via_start + r]
                 via[n_via + via_len] = f
