@@ -760,15 +760,16 @@ def tree_sweep(
     tree_append(fbuf, ibuf, ti, tf, seq, t, m, n_via)
     if newest < 0:
         return -1, ti[H_LO], ti[H_HI]
-    # the walk's scratch: the kernel's heap area, free once the kernel has returned
+    # the walk's scratch: the kernel's heap area and its entries' (marks), free once the
+    # kernel has returned
     cap_h = ibuf[2]
     if m <= cap_h:
         heap0 = entry0 + cap_h * ENTRY_STRIDE
         cur = ibuf[heap0:heap0 + m]
         for j in range(m):
             cur[j] = ti[H_LO] + j
-        top = commit_point_of(ti, next_commit, newest, rows_ancestor(ti, cur, m,
-                                                                     next_commit - 1))
+        top = commit_point_of(ti, next_commit, newest, rows_ancestor_marked(
+            ti, cur, m, next_commit - 1, ibuf[entry0:heap0]))
     else:
         top = commit_point(ti, next_commit, newest)
     return top, ti[H_LO], ti[H_HI]
@@ -1030,6 +1031,59 @@ def rows_ancestor(ti: np.ndarray, cur: np.ndarray, k: int, floor: int) -> int:
             if not seen:
                 cur[nk] = p  # nk <= j: rows still to read are not overwritten
                 nk += 1
+        k = nk
+    return cur[0] if k == 1 else -1
+
+
+@numba.njit(cache=True, error_model="numpy")
+def rows_ancestor_marked(ti: np.ndarray, cur: np.ndarray, k: int, floor: int,
+                         mark: np.ndarray) -> int:
+    """:func:`rows_ancestor`, the distinct parents found with a mark per row (same answer).
+
+    :func:`rows_ancestor` looks each parent up among those already kept: about k^2 / 2
+    reads a level, 0.6 µs of a 60 m step's 5 (27 live rows). The rows of a level are
+    all of one fix, and so are their parents, which therefore lie close together: a
+    level's parents are marked in ``mark`` (scratch, at least as long as their span of
+    row numbers; a longer span is looked up as :func:`rows_ancestor` does). Keeps the
+    first of each parent in the order :func:`rows_ancestor` keeps them, so ``cur``
+    ends the same too.
+    """
+    room = mark.shape[0]
+    while k > 1:
+        if ti[ROW_I * cur[0] + K_SEQ] <= floor:
+            return -1
+        p_min = cur[0]  # a bound: a parent's row is below its child's
+        p_max = -1
+        for j in range(k):
+            p = ti[ROW_I * cur[j] + K_PARENT]
+            if p < 0:
+                return -1
+            cur[j] = p
+            if p < p_min:
+                p_min = p
+            if p > p_max:
+                p_max = p
+        nk = 0
+        if p_max - p_min < room:
+            for q in range(p_max - p_min + 1):
+                mark[q] = 0
+            for j in range(k):
+                p = cur[j]
+                if mark[p - p_min] == 0:
+                    mark[p - p_min] = 1
+                    cur[nk] = p  # nk <= j: parents still to read are not overwritten
+                    nk += 1
+        else:
+            for j in range(k):
+                p = cur[j]
+                seen = False
+                for q in range(nk):
+                    if cur[q] == p:
+                        seen = True
+                        break
+                if not seen:
+                    cur[nk] = p
+                    nk += 1
         k = nk
     return cur[0] if k == 1 else -1
 
