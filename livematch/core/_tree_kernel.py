@@ -104,6 +104,7 @@ from livematch.core._sweep_kernel import (
     kept_rows,
     live_base,
     live_room,
+    row_spare,
     rows_ancestor,
     time_base,
     time_of,

@@ -90,6 +90,8 @@ __all__ = ["DIED", "CandidateTree"]
 DIED = _t.DIED  # CandidateTree.step: the window died
 
 _MIN_SPARE = MIN_SPARE  # rows (and vias) of room left after a compaction, at least
+# the kernel's row room (_sweep_kernel.row_spare) as plain Python: no dispatch per call
+_ROW_SPARE = _t.row_spare.py_func
 
 # the header alone (no rows, no vias), shared by every empty tree: nothing is written
 # into it (rows are written only after a compaction has made arrays of the tree's own)
@@ -103,7 +105,7 @@ def _times_room(cap_t: int, cap: int, m: int, k: int) -> int:
 
     The step (``tree_sweep``, ``ARENA_FULL``) asks for as much room for fix times as for
     rows: ``cap_t`` is the fix times kept and this step's, ``span_t``, plus ``max(span_t
-    // 4, spare)``, ``spare = max(m, 2 k + MIN_SPARE)`` the rows' least room (``m`` the
+    // 4, spare)``, ``spare = row_spare(m, k)`` the rows' least room (``m`` the
     new live block's rows, ``k`` the old one's); ``cap`` rows are the rows kept plus
     ``max(kept // 4, spare)``. A fix adds one fix time but ``m`` rows, so on a tree of
     several states the fix times would last several compactions: 8 bytes a slot never
@@ -113,7 +115,7 @@ def _times_room(cap_t: int, cap: int, m: int, k: int) -> int:
     kept and where is unchanged, and never fewer than ``span_t`` + that room (``cap_t -
     spare`` >= ``span_t``).
     """
-    spare = max(m, 2 * k + MIN_SPARE)
+    spare = _ROW_SPARE(m, k)
     rows_room = max(spare, cap // 5)  # about max(kept // 4, spare); only sizes the room
     room = (rows_room - m) // max(m, 1) + 1  # fixes until the rows fill, and one
     if room < T_SPARE:
