@@ -169,6 +169,7 @@ __all__ = [
     "live_room",
     "live_scores",
     "prune_live",
+    "row_spare",
     "time_base",
     "time_of",
     "tree_append",
