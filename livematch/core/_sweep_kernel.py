@@ -797,8 +797,9 @@ def compact(
 ) -> tuple[np.ndarray, np.ndarray]:
     """Keep only the live block and its ancestors, in new arrays with room to spare.
 
-    The room left is at least ``spare_rows`` rows (``spare_vias`` vias; fix times: as
-    many as rows, and ``spare_t`` after the newest kept) and a quarter of those kept,
+    The room left is at least ``spare_rows`` rows (``spare_vias`` vias, and half those
+    kept; fix times: as many as rows, and ``spare_t`` after the newest kept) and a
+    quarter of the rows kept,
     so compactions get rarer as the tree grows (amortised O(1) per row); room for the
     floats of ``spare_live`` live rows at least (:func:`live_room`). Returns the new
     ``(ti, tf)``; the live block keeps its order and length.
@@ -806,7 +807,7 @@ def compact(
     rows, vias, span = kept_rows(ti)
     cap = rows + max(rows // 4, spare_rows)
     cap_l = max(spare_live, live_room(ti[H_HI] - ti[H_LO], 0))
-    ti2 = np.empty(HEAD + ROW_I * cap + vias + max(vias // 4, spare_vias), np.int32)
+    ti2 = np.empty(HEAD + ROW_I * cap + vias + max(vias // 2, spare_vias), np.int32)
     tf2 = np.empty(ROW_F * cap + LIVE_F * cap_l + span
                    + max(span // 4, spare_t, spare_rows, T_SPARE))
     compact_into(ti, tf, ti2, tf2, cap, cap_l)

@@ -215,9 +215,11 @@ class CandidateTree:
                 spare_live: int = 0) -> None:
         """Drop the rows no live state descends from; leave room for more rows.
 
-        The room left is at least ``spare_rows``, twice the live block plus
-        ``_MIN_SPARE``, and a quarter of the rows kept (vias: ``spare_vias`` and one per
-        two rows of room): a step or two before the next compaction. Tight on purpose:
+        The room left is at least ``spare_rows``, one and a half live blocks plus
+        ``_MIN_SPARE`` (:func:`~livematch.core._tree_kernel.row_spare`), and a quarter of
+        the rows kept (vias: ``spare_vias``, two per row of room and half the vias kept):
+        a step or two before the next compaction, as a tree step that finds its arrays
+        full leaves. Tight on purpose:
         a service holds many idle trees, and a compaction costs about a microsecond.
         Fix times: as many as rows, and room for ``spare_t`` after the newest kept.
         Live floats: for ``spare_live`` live rows at least.
@@ -226,8 +228,8 @@ class CandidateTree:
         as :meth:`shrink` does, cost about 2 µs more a compaction, and a 1 Hz vehicle
         compacts often), so each carries numba's memory-info object (about 130 bytes).
         """
-        rows = max(spare_rows, 2 * len(self) + _MIN_SPARE)
-        vias = max(spare_vias, rows // 2)  # most states have no via; a tree sweep asks for more
+        rows = _ROW_SPARE(spare_rows, len(self))
+        vias = max(spare_vias, 2 * rows)  # a step's vias vary more than its rows
         self.ti, self.tf = _t.compact(self.ti, self.tf, rows, vias, spare_t, spare_live)
         self._synced()
 
