@@ -4,7 +4,7 @@ Run: ``.venv/bin/python bench/memory.py [--counts 1000,10000,100000] [--drives 4
 [--duration 600] [--states 30] [--copies 400] [--pipeline-vehicles 1000]
 [--pipeline-seconds 120] [--fleet-vehicles 10000] [--fleet-seconds 120]
 [--fleet-trim-every 60] [--breakdown-vehicles 2000] [--breakdown-frames 1]
-[--steps 1,2,3,4,5,6] [--out DIR]``
+[--room-drives 6] [--steps 1,2,3,4,5,6] [--out DIR]``
 
 Goal (issue 9): <= 4 KB for a typical live vehicle, 100,000 vehicles in <= 1 GB resident.
 
@@ -59,8 +59,16 @@ representation is. Steps, each measuring process a fresh subprocess:
    the pipeline's per-vehicle fields) and each level's tree (room, rows in use, rows
    still needed). Step 5's RSS minus this live heap is the allocator's share.
 
-``--steps 5``, ``--steps 6`` or ``--steps 5,6`` run only those (no pool, no report of
-steps 1-4): ``memory.partial.md`` / ``memory.partial.json`` in ``--out``.
+7. **Tree room and compactions** (one subprocess, :func:`tree_room_run`; not in the
+   default ``--steps``): ``--room-drives`` of the pool's drives, each through a bare
+   ``Tracker``; every 10 fixes each level's tree (bytes, rows room / in use / needed,
+   vias, live floats, fix times) is read, and every fix whether a tree step compacted
+   into new arrays (:meth:`CandidateTree.step_rest` after ``ARENA_FULL``, counted by a
+   wrapper) or within its arrays (the same arrays, fewer rows than before plus the new
+   live block). What the room policy trades: bytes against compactions.
+
+``--steps 5``, ``--steps 6``, ``--steps 7`` or a mix of them run only those (no pool, no
+report of steps 1-4): ``memory.partial.md`` / ``memory.partial.json`` in ``--out``.
 
 The estimate for 100,000 restored vehicles behind a pipeline: the step-3 growth at
 100,000 plus 100,000 x the step-4 overhead, plus the base RSS of step 3. Results:
@@ -702,6 +710,89 @@ def fleet_breakdown(vehicles: int, seconds: int, drives_count: int, duration: fl
             "trees": trees, "us_per_fix": round(elapsed / (vehicles * seconds) * 1e6, 1)}
 
 
+def tree_room_run(drives_count: int, duration: float) -> dict[str, Any]:
+    """Step 7: what the trees' room policy trades, bytes against compactions.
+
+    ``drives_count`` drives of the pool (1 Hz, ``duration`` s), each through a bare
+    ``Tracker``. Every 10 fixes (from fix 5) each level's tree is read with
+    :func:`tree_room`; every fix each level's step is classed: new arrays (the step
+    found its arrays full and :meth:`CandidateTree.step_rest` compacted into new ones:
+    a wrapper counts them) or a compaction within its arrays (the same arrays, and fewer
+    rows in use than before plus the new live block; a prune or trim in the same fix
+    counts too, rarely). Process CPU per fix is the tracker's, for orientation only
+    (``bench/ab.py`` is the timing).
+    """
+    from livematch.core import _tree_kernel as tk
+    from livematch.core.candidates import CandidateTree
+    from livematch.core.settings import MatchSettings
+    from livematch.core.tracker import Tracker
+
+    network, runs = drives(drives_count, duration)
+    warm(network, MatchSettings())
+    new_arrays = [0]
+    step_rest = CandidateTree.step_rest
+
+    def counted(self: Any, *args: Any) -> int:
+        if args[-1] == tk.ARENA_FULL:
+            new_arrays[0] += 1
+        return step_rest(self, *args)
+
+    CandidateTree.step_rest = counted  # type: ignore[method-assign]
+    fixes = samples = in_place = 0
+    cpu = 0.0
+    trees: dict[str, dict[str, int]] = {}
+    try:
+        for run in runs:
+            tracker = Tracker(network, run[0].vehicle, MatchSettings())
+            for i, fix in enumerate(run):
+                before = [(lv.tree.ti, lv.tree.n) for lv in tracker.levels]
+                t0 = time.process_time()
+                tracker.update(fix)
+                cpu += time.process_time() - t0
+                fixes += 1
+                for (ti, n), level in zip(before, tracker.levels, strict=True):
+                    tree = level.tree
+                    if tree.ti is ti and 0 < tree.n < n + len(tree) and n:
+                        in_place += 1
+                if i % 10 == 5:
+                    samples += 1
+                    for level in tracker.levels:
+                        row = trees.setdefault(f"{level.eps:g}", {})
+                        for key, v in tree_room(level.tree).items():
+                            row[key] = row.get(key, 0) + v
+            tracker.flush()
+    finally:
+        CandidateTree.step_rest = step_rest  # type: ignore[method-assign]
+    return {"drives": drives_count, "duration_s": duration, "fixes": fixes,
+            "samples": samples, "trees": trees, "new_arrays": new_arrays[0],
+            "in_place": in_place, "us_per_fix": round(cpu / fixes * 1e6, 1)}
+
+
+def tree_room_lines(r: dict[str, Any] | None) -> list[str]:
+    """Report lines of step 7."""
+    if not r:
+        return []
+    s = r["samples"]
+    total = sum(t["bytes"] for t in r["trees"].values()) / s
+    lines = [
+        "", f"## Tree room and compactions ({r['drives']} drives x {r['duration_s']:g} s at "
+        "1 Hz, bare trackers; trees read every 10 fixes)", "",
+        f"Tree array data per tracker {total:,.0f} B; per fix (all levels): "
+        f"{r['new_arrays'] / r['fixes']:.3f} compactions into new arrays, "
+        f"{r['in_place'] / r['fixes']:.3f} within the arrays; tracker CPU "
+        f"{r['us_per_fix']} µs per fix (orientation only; `bench/ab.py` times).", "",
+        "| eps m | bytes | rows room / in use / needed | live room / live | vias room / "
+        "in use / needed | fix times room / in use / needed |",
+        "|---:|---:|---|---|---|---|"]
+    for eps, t in r["trees"].items():
+        lines.append(
+            f"| {eps} | {t['bytes'] / s:.0f} | {t['cap_rows'] / s:.1f} / {t['rows'] / s:.1f}"
+            f" / {t['need_rows'] / s:.1f} | {t['cap_live'] / s:.1f} / {t['live'] / s:.1f} | "
+            f"{t['cap_vias'] / s:.1f} / {t['vias'] / s:.1f} / {t['need_vias'] / s:.1f} | "
+            f"{t['cap_t'] / s:.1f} / {t['t'] / s:.1f} / {t['need_t'] / s:.1f} |")
+    return lines
+
+
 # ---------------------------------------------------------------------------- driver
 def child(args: list[str]) -> dict[str, Any]:
     """Run one measurement in a fresh interpreter; its last stdout line is the result."""
@@ -872,15 +963,18 @@ def breakdown_step(args: argparse.Namespace) -> dict[str, Any] | None:
 
 def partial_run(args: argparse.Namespace, steps: set[int], started: str,
                 commit: str) -> int:
-    """Only steps 5 and/or 6 (``--steps 5,6``): no pool; ``memory.partial.md`` / ``.json``."""
+    """Only steps 5, 6 and/or 7 (``--steps 5,6``): no pool; ``memory.partial.md`` / ``.json``."""
     result = {"command": " ".join(["bench/memory.py", *sys.argv[1:]]),
               "started_utc": started, "commit": commit,
               "fleet": fleet_steps(args) if 5 in steps else [],
-              "breakdown": breakdown_step(args) if 6 in steps else None}
+              "breakdown": breakdown_step(args) if 6 in steps else None,
+              "tree_room": child(["tree-room", str(args.room_drives), str(args.duration)])
+              if 7 in steps else None}
     lines = [f"# Resident memory per driven vehicle (steps {args.steps})", "",
              f"Command: `.venv/bin/python {result['command']}`, started {started} UTC, "
              f"livematch at commit {commit}.",
-             *fleet_lines(result["fleet"]), *breakdown_lines(result["breakdown"])]
+             *fleet_lines(result["fleet"]), *breakdown_lines(result["breakdown"]),
+             *tree_room_lines(result["tree_room"])]
     b = result["breakdown"]
     for row in result["fleet"]:
         if b and b["vehicles"] == row["vehicles"] and b["seconds"] == row["seconds"]:
@@ -1033,6 +1127,8 @@ def main(argv: list[str] | None = None) -> int:
                     help="vehicles of step 6 (step 5's load under tracemalloc; 0: skip)")
     ap.add_argument("--breakdown-frames", type=int, default=1,
                     help="traceback frames per allocation in step 6")
+    ap.add_argument("--room-drives", type=int, default=6,
+                    help="step 7: drives through bare trackers")
     ap.add_argument("--steps", default="1,2,3,4,5,6",
                     help="steps to run (the pool, step 1, is built when 2 or 3 is asked)")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
@@ -1049,6 +1145,8 @@ def main(argv: list[str] | None = None) -> int:
         elif what == "breakdown":
             out = fleet_breakdown(int(rest[0]), int(rest[1]), int(rest[2]), float(rest[3]),
                                   int(rest[4]))
+        elif what == "tree-room":
+            out = tree_room_run(int(rest[0]), float(rest[1]))
         elif what == "count":
             out = n_vehicles(rest[0], int(rest[1]))
         else:

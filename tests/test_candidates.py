@@ -599,12 +599,12 @@ def test_times_room_never_below_what_the_step_keeps() -> None:
     step one more (counted in ``span_t``), so fewer than ``span_t + 1`` would write past
     the array.
     """
-    from livematch.core._tree_kernel import MIN_SPARE, T_SPARE
+    from livematch.core._tree_kernel import T_SPARE, row_spare
     from livematch.core.candidates import _times_room
 
     for k in range(0, 40):
         for m in range(1, 90, 7):
-            spare = max(m, 2 * k + MIN_SPARE)
+            spare = row_spare(m, k)
             for span_t in range(1, 400, 3):
                 cap_t = span_t + max(span_t // 4, spare)
                 for kept in (m, 3 * m, 200):

@@ -635,12 +635,27 @@ L_SPARE = 4  # live rows of room for floats a compaction leaves, at least
 def live_room(m: int, k: int) -> int:
     """Live rows the live floats' area of new arrays holds: ``m`` new ones, ``k`` before.
 
-    The larger of the two and half as many again (at least ``L_SPARE``): a live block
-    grows and shrinks by a few states a fix, and outgrowing the area costs new arrays.
-    16 bytes a live row, against 16 bytes of every row when each kept its low and cost.
+    The larger of the two and a quarter as many again (at least ``L_SPARE``): a live
+    block grows and shrinks by a few states a fix, and outgrowing the area costs new
+    arrays. 16 bytes a live row, against 16 bytes of every row when each kept its low
+    and cost. (Half as many again until session 15: a third of the area never written,
+    and no fewer new arrays than with a quarter; ``bench/memory.py``, docs/measured.md.)
     """
     big = m if m > k else k
-    return big + max(big // 2, L_SPARE)
+    return big + max(big // 4, L_SPARE)
+
+
+@numba.njit(cache=True, error_model="numpy")
+def row_spare(m: int, k: int) -> int:
+    """The least room for rows a compaction into new arrays leaves (``ARENA_FULL``).
+
+    ``m`` the step's new live block, ``k`` the old one: one and a half live blocks and
+    ``MIN_SPARE`` (twice the live block until session 15: a 1 Hz tree compacts about
+    every second fix either way, and the room of half a live block was 24 bytes a row
+    never written). The vias get twice this (4 bytes each; a step's vias vary more
+    than its rows, and running out of them was most of the new arrays a tree made).
+    """
+    return max(m, k + k // 2 + MIN_SPARE)
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -741,9 +756,11 @@ def tree_sweep(
         # the fix times kept run from the first kept row's fix to the live block's (the
         # last kept row), and the new rows' fix comes after it
         span_t = seq - (ti[ROW_I * (hi - 1) + K_SEQ] - span + 1) + 1
-        # the capacities CandidateTree.compact gives (room: twice the live block + 8)
-        spare = max(m, 2 * k + MIN_SPARE)
+        # the room of new arrays (rows: row_spare; vias: twice that, or half those kept)
+        spare = row_spare(m, k)
         cap = kept + max(kept // 4, spare)
+        # (arrays over one and a half times the rows a compaction into new arrays gave
+        # before session 15, twice the live block + 8, are replaced: that bound is kept)
         if (kept + m > cap_rows or kept_v + n_via > cap_vias or span_t > cap_t
                 or m > cap_l
                 or 2 * cap_rows > 3 * (kept + max(kept // 4, 2 * k + MIN_SPARE))):
@@ -751,7 +768,7 @@ def tree_sweep(
             ti[H_NVIA] = n_via
             ti[H_CAP_ROWS] = cap
             ti[H_CAP_L] = live_room(m, k)
-            ti[H_CAP_VIAS] = kept_v + max(kept_v // 4, max(n_via, spare // 2))
+            ti[H_CAP_VIAS] = kept_v + max(kept_v // 2, max(n_via, 2 * spare))
             # (as much room for fix times as for rows: a step adds a fix and a row at
             # least, so the times do not fill up first)
             ti[H_CAP_T] = span_t + max(span_t // 4, spare)
@@ -830,8 +847,9 @@ def compact(
 ) -> tuple[np.ndarray, np.ndarray]:
     """Keep only the live block and its ancestors, in new arrays with room to spare.
 
-    The room left is at least ``spare_rows`` rows (``spare_vias`` vias; fix times: as
-    many as rows, and ``spare_t`` after the newest kept) and a quarter of those kept,
+    The room left is at least ``spare_rows`` rows (``spare_vias`` vias, and half those
+    kept; fix times: as many as rows, and ``spare_t`` after the newest kept) and a
+    quarter of the rows kept,
     so compactions get rarer as the tree grows (amortised O(1) per row); room for the
     floats of ``spare_live`` live rows at least (:func:`live_room`). Returns the new
     ``(ti, tf)``; the live block keeps its order and length.
@@ -839,7 +857,7 @@ def compact(
     rows, vias, span = kept_rows(ti)
     cap = rows + max(rows // 4, spare_rows)
     cap_l = max(spare_live, live_room(ti[H_HI] - ti[H_LO], 0))
-    ti2 = np.empty(HEAD + ROW_I * cap + vias + max(vias // 4, spare_vias), np.int32)
+    ti2 = np.empty(HEAD + ROW_I * cap + vias + max(vias // 2, spare_vias), np.int32)
     tf2 = np.empty(ROW_F * cap + LIVE_F * cap_l + span
                    + max(span // 4, spare_t, spare_rows, T_SPARE))
     compact_into(ti, tf, ti2, tf2, cap, cap_l)

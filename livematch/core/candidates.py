@@ -90,6 +90,8 @@ __all__ = ["DIED", "CandidateTree"]
 DIED = _t.DIED  # CandidateTree.step: the window died
 
 _MIN_SPARE = MIN_SPARE  # rows (and vias) of room left after a compaction, at least
+# the kernel's row room (_sweep_kernel.row_spare) as plain Python: no dispatch per call
+_ROW_SPARE = _t.row_spare.py_func
 
 # the header alone (no rows, no vias), shared by every empty tree: nothing is written
 # into it (rows are written only after a compaction has made arrays of the tree's own)
@@ -103,7 +105,7 @@ def _times_room(cap_t: int, cap: int, m: int, k: int) -> int:
 
     The step (``tree_sweep``, ``ARENA_FULL``) asks for as much room for fix times as for
     rows: ``cap_t`` is the fix times kept and this step's, ``span_t``, plus ``max(span_t
-    // 4, spare)``, ``spare = max(m, 2 k + MIN_SPARE)`` the rows' least room (``m`` the
+    // 4, spare)``, ``spare = row_spare(m, k)`` the rows' least room (``m`` the
     new live block's rows, ``k`` the old one's); ``cap`` rows are the rows kept plus
     ``max(kept // 4, spare)``. A fix adds one fix time but ``m`` rows, so on a tree of
     several states the fix times would last several compactions: 8 bytes a slot never
@@ -113,7 +115,7 @@ def _times_room(cap_t: int, cap: int, m: int, k: int) -> int:
     kept and where is unchanged, and never fewer than ``span_t`` + that room (``cap_t -
     spare`` >= ``span_t``).
     """
-    spare = max(m, 2 * k + MIN_SPARE)
+    spare = _ROW_SPARE(m, k)
     rows_room = max(spare, cap // 5)  # about max(kept // 4, spare); only sizes the room
     room = (rows_room - m) // max(m, 1) + 1  # fixes until the rows fill, and one
     if room < T_SPARE:
@@ -213,9 +215,11 @@ class CandidateTree:
                 spare_live: int = 0) -> None:
         """Drop the rows no live state descends from; leave room for more rows.
 
-        The room left is at least ``spare_rows``, twice the live block plus
-        ``_MIN_SPARE``, and a quarter of the rows kept (vias: ``spare_vias`` and one per
-        two rows of room): a step or two before the next compaction. Tight on purpose:
+        The room left is at least ``spare_rows``, one and a half live blocks plus
+        ``_MIN_SPARE`` (:func:`~livematch.core._tree_kernel.row_spare`), and a quarter of
+        the rows kept (vias: ``spare_vias``, two per row of room and half the vias kept):
+        a step or two before the next compaction, as a tree step that finds its arrays
+        full leaves. Tight on purpose:
         a service holds many idle trees, and a compaction costs about a microsecond.
         Fix times: as many as rows, and room for ``spare_t`` after the newest kept.
         Live floats: for ``spare_live`` live rows at least.
@@ -224,8 +228,8 @@ class CandidateTree:
         as :meth:`shrink` does, cost about 2 µs more a compaction, and a 1 Hz vehicle
         compacts often), so each carries numba's memory-info object (about 130 bytes).
         """
-        rows = max(spare_rows, 2 * len(self) + _MIN_SPARE)
-        vias = max(spare_vias, rows // 2)  # most states have no via; a tree sweep asks for more
+        rows = _ROW_SPARE(spare_rows, len(self))
+        vias = max(spare_vias, 2 * rows)  # a step's vias vary more than its rows
         self.ti, self.tf = _t.compact(self.ti, self.tf, rows, vias, spare_t, spare_live)
         self._synced()
 
