@@ -24,7 +24,7 @@ from livematch.pipeline import matcher_settings_from_mapping
 shapely = pytest.importorskip("shapely")
 
 ON = MatchSettings(stand_turnback=True)
-OFF = MatchSettings()
+OFF = MatchSettings(stand_turnback=False)
 EPS = 15.0
 J = (0.0, 0.0)  # the junction where the stem leaves the approach road
 V = (6.0, 0.0)  # the end of the stem, where the ring begins and the van stands
@@ -120,13 +120,15 @@ def test_a_stand_whose_path_goes_round_a_ring_turns_back_at_the_vertex() -> None
     assert new[:len(_approach()) - 3] == old[:len(_approach()) - 3]
 
 
-def test_the_key_off_is_the_default() -> None:
-    """The default settings give the answers of ``stand_turnback`` = false."""
-    assert MatchSettings().stand_turnback is False
+def test_the_key_on_is_the_default() -> None:
+    """The default settings give the answers of ``stand_turnback`` = true (on since
+    session 15), which differ from the key off on the ring."""
+    assert MatchSettings().stand_turnback is True
     net = _network(SMALL_RING)
     fixes = _approach() + _stand() + _back_west()
-    assert _settled(net, MatchSettings(), fixes) == _settled(
-        net, MatchSettings(stand_turnback=False), fixes)
+    default = _settled(net, MatchSettings(), fixes)
+    assert default == _settled(net, MatchSettings(stand_turnback=True), fixes)
+    assert default != _settled(net, MatchSettings(stand_turnback=False), fixes)
 
 
 def test_a_van_that_drives_round_the_ring_without_standing_keeps_it() -> None:
