@@ -36,10 +36,11 @@ def test_fleet_profile_matcher_is_defaults_plus_the_fleet_keys() -> None:
     changed = {f.name for f in fields(MatchSettings)
                if getattr(matcher, f.name) != getattr(MatchSettings(), f.name)}
     # eps_levels restates the default; a fleet key that has since become a default
-    # (end_stand, on since session 14's endstand2) is still written out, and unchanged
+    # (end_stand, on since session 14's endstand2; stand_turnback, on since session 15)
+    # is still written out, and unchanged
     off_by_default = {k for k, v in FLEET_KEYS.items() if getattr(MatchSettings(), k) != v}
     assert changed == off_by_default
-    assert off_by_default <= set(FLEET_KEYS) and "stand_turnback" in off_by_default
+    assert off_by_default <= set(FLEET_KEYS) and "stand_short_m" in off_by_default
 
 
 def test_fleet_profile_matcher_table_as_any_toml_reader_sees_it() -> None:

@@ -378,15 +378,16 @@ class MatchSettings:
             the two apart, and the stand shows where it was. Not over a one-way segment,
             nor where the way back is longer than the rest of the loop or fits the later
             fixes worse than the loop by more than ``turn_back_cost``, nor on a loop
-            over a road the map draws twice; not at 15-30 s between fixes (the stand's
-            fixes must come at most 5 s apart); final answers and the committed path
-            only. Off by default: on bench/fleetmiss.py's decision runs (80 drives,
-            seeds 31 / 77, both extracts, 1 and 5 s) routed trips gain in six cells and
-            lose in none (Helsinki 1 s final 0.9772 / 0.9673 -> 0.9779 / 0.9696, route
-            mismatch 2.19 / 2.57 % -> 2.16 / 2.53 %), but the random walk on Helsinki
-            loses a fix and 0.01-0.03 points of route mismatch at 5 s (a small oval it
-            circles with junction stops; docs/measured.md, "Session 14 (standv)").
-            For fleets that turn round at stops, true.
+            over a road the map draws twice; only where the loop's fixes come at most
+            2 s apart (median; ``livematch.core.tracker.TURNBACK_GAP_S``: at 5 s a stop
+            at a corner of a ring round a narrow island, then on round it, read as a
+            turn back); final answers and the committed path only. On by default
+            (session 15): on bench/fleetmiss.py's decision runs (80 drives, seeds 31 /
+            77, both extracts, routed trips and random walk, 1 and 5 s) final road+dir
+            rises in six of eight 1 s cells (test extract routed trips 0.9872 / 0.9906
+            -> 0.9879 / 0.9918) and falls in none, route mismatch falls or stays, live
+            answers are unchanged, and the 5 s cells are unchanged (docs/measured.md,
+            "Session 14 (standv)" and "Session 15 (ringv)").
         speed_laps: where the fixes report their speed over ground (the optional
             ``speed`` of a position message), the committed path gets the laps of a
             small loop that the fixes cannot show. Between two consecutive committed
@@ -486,7 +487,7 @@ class MatchSettings:
     motion_step: bool = False
     stand_short_m: float = 0.0
     break_rejoin: bool = False
-    stand_turnback: bool = False
+    stand_turnback: bool = True
     speed_laps: bool = False
     end_stand: bool = True
     start_stand: bool = True

@@ -158,6 +158,16 @@ STAND_SIGMAS = 2.0
 # Gauss-Markov error). 0.1 m: far below that, far above rounding (chosen by judgement,
 # not tuned).
 STILL_M = 0.1
+# MatchSettings.stand_turnback reads a turn back at a stand only where the fixes of the
+# loop (the node before it on) come at most this many seconds apart (median gap). At 5 s
+# between fixes a vehicle that stops at a corner of a ring round a narrow island (a
+# 30 x 16 m block of service roads on the Helsinki extract) and drives on round it
+# leaves one or two fixes on the far side, which lies within eps of the way back; the
+# stand, the fit and the first metres of the drive-off read like a turn back, and the
+# random walk lost final fixes and route length there (docs/measured.md, "Session 15
+# (ringv)"). At 1 s the fixes along the far side show the ring. 2 s: chosen by
+# judgement between the two intervals measured.
+TURNBACK_GAP_S = 2.0
 # With MatchSettings.stand_hold, a vehicle whose fixes of the last STAND_HOLD_S seconds
 # all lie within STAND_SIGMAS sigma_m of the newest one stands now (Tracker._stand_start),
 # and keeps standing while those of the last STAND_KEEP_S seconds do. 3 s: 10 m in 3 s is
@@ -2552,6 +2562,13 @@ class Tracker:
         still = STAND_SIGMAS * self.settings.sigma_m
         inv_two_sigma2 = 0.5 / (self.settings.sigma_m * self.settings.sigma_m)
         loop_nodes = [k for k in range(len(chain)) if i <= at[k] < j]
+        if not loop_nodes:
+            return None
+        run = [chain[loop_nodes[0] - 1] if loop_nodes[0] else before,
+               *(chain[k] for k in loop_nodes)]
+        gaps = sorted(b.t - a.t for a, b in itertools.pairwise(run))
+        if gaps[len(gaps) // 2] > TURNBACK_GAP_S:
+            return None  # sparse fixes: see TURNBACK_GAP_S
 
         def fix_of(node: Node) -> tuple[float, float] | None:
             r = node.seq - seq0
