@@ -138,3 +138,51 @@ def test_start_stand_validation() -> None:
         start_stand="yes").problems()  # type: ignore[arg-type]
     known = MatchSettings.keys()
     assert "start_stand" in known
+
+
+def test_stand_run_into_the_drive_off_ends_on_a_road_the_fixes_fit() -> None:
+    """The run reaches past short segments out of V: B is moved back to one within eps.
+
+    The stand run ("within 2 sigma_m of the first fix") ends a few seconds into the
+    drive-off when the first fix lies on the far side of the stand from the way out; its
+    last node is then on W3, whose start is farther than eps from the first fix (16.0 m,
+    shapely), so the rule with that node refused. The latest node of the run on whose
+    segment every earlier stand fix lies within eps is on W2 (start 12.0 m from it).
+    """
+    w = [(100.0, 0.0), (104.0, 0.0), (108.0, 0.0), (300.0, 0.0)]
+    net = network_from_roads([Road(Q, way=1), Road(w, way=2)])
+    seg_of = {}
+    for seg in range(net.segment_count):
+        ax, ay, bx, by = net.segment_coords(seg)
+        seg_of[(ax, ay, bx, by)] = seg
+    seg_q = seg_of[(*Q[0], *Q[1])]
+    seg_w = [seg_of[(*a, *b)] for a, b in zip(w, w[1:], strict=False)]
+    first = (92.0, -1.0)
+    assert shapely.Point(first).distance(shapely.Point(w[2])) > EPS  # shapely: 16.03 m
+    assert shapely.Point(first).distance(shapely.Point(w[1])) <= EPS  # shapely: 12.04 m
+    stand = [first] + [(100.0 - 0.4 * (i % 3), -1.0 - 0.1 * i) for i in range(11)]
+    # the drive-off: the fixes lag behind the path (within 10 m of the first fix), then leave
+    drive = [(101.0, 0.3), (101.5, 0.4), (112.0, 0.5), (120.0, 0.5)]
+    tracker = Tracker(net, "v1", MatchSettings(start_stand=True))
+    for i, (x, y) in enumerate(stand + drive):
+        tracker.update(Fix("v1", float(i), 0.0, 0.0, x, y))
+    # the path the commit read: Q for the stand, then W1, W2, W3 (B), W3
+    at = [(seg_q, 1.0 - 1.0 / 80.0)] * len(stand) + [
+        (seg_w[0], 0.5), (seg_w[1], 0.5), (seg_w[2], 0.1), (seg_w[2], 0.2)]
+    chain: list[Node] = []
+    for i, ((x, y), (seg, pos)) in enumerate(zip(stand + drive, at, strict=True)):
+        chain.append(Node(seg, tracker.fix_seq0 + i, float(i), pos, x, y,
+                          chain[-1] if chain else None, (), 0.0, 0.0))
+    out = [MatchedFix(n.t, n.seg, n.pos, n.x, n.y) for n in chain]
+    route = [seg_q, *seg_w]
+    assert tracker._start_stand(chain, EPS, out, route)
+    b = len(stand) + 1  # the node on W2
+    line = shapely.LineString(w[1:3])
+    for k in range(b + 1):
+        assert out[k].segment == seg_w[1]
+        point = shapely.Point(out[k].x, out[k].y)
+        assert line.distance(point) == pytest.approx(0.0, abs=1e-9)  # shapely
+        fx, fy = (stand + drive)[k]
+        assert point.distance(shapely.Point(fx, fy)) <= EPS  # shapely
+    assert [f.segment for f in out[b + 1:]] == [seg_w[2], seg_w[2]]  # after B: unchanged
+    assert route == seg_w[1:]

@@ -1956,12 +1956,39 @@ class Tracker:
             if dx * dx + dy * dy > radius2:
                 break
             e += 1
-        anchor = chain[e]
-        seg = anchor.seg
-        if (e + 1 >= n or anchor.t - chain[0].t < STAND_S
-                or all(c.seg == seg for c in chain[:e])
+        if (e + 1 >= n or chain[e].t - chain[0].t < STAND_S
                 or not self._wandering_run(chain[:e + 1])):
             return False
+        # B: the latest node of the run, at least STAND_S after the first, on whose
+        # segment every earlier stand fix lies within eps (the run can reach a few
+        # seconds into the drive-off, past the segment the vehicle left by)
+        for b in range(e, 0, -1):
+            if chain[b].t - chain[0].t < STAND_S:
+                return False
+            seg = chain[b].seg
+            if all(c.seg == seg for c in chain[:b]):
+                return False  # the stand is on B's segment already: nothing to move
+            moved = self._stand_on(chain, b, eps)
+            if moved is not None:
+                for k, answer in enumerate(moved):
+                    fixes[k] = answer
+                if seg in path:
+                    del path[:path.index(seg)]
+                return True
+        return False
+
+    def _stand_on(self, chain: list[Node], b: int, eps: float) -> list[MatchedFix] | None:
+        """``chain[:b + 1]``'s answers on ``chain[b]``'s segment; None if one is past eps.
+
+        For :meth:`_start_stand`: a node already on the segment, not ahead of the node
+        after it, keeps its own point; any other is put at the point of the segment
+        nearest its fix, never ahead of the node after it. None when such a point lies
+        farther than ``eps`` from its fix (the fixes do not stand on that segment).
+        """
+        seq0 = self.fix_seq0
+        xy = self.fix_xy
+        anchor = chain[b]
+        seg = anchor.seg
         view = self._view
         ax, ay = view.vx[view.sf[seg]], view.vy[view.sf[seg]]
         ux, uy = view.vx[view.st[seg]] - ax, view.vy[view.st[seg]] - ay
@@ -1969,7 +1996,7 @@ class Tracker:
         slen = float(view.slen[seg])
         moved = [MatchedFix(anchor.t, seg, anchor.pos * slen, anchor.x, anchor.y)]
         pos = anchor.pos
-        for k in range(e - 1, -1, -1):
+        for k in range(b - 1, -1, -1):
             node = chain[k]
             if node.seg == seg and node.pos <= pos and not chain[k + 1].via:
                 pos = node.pos
@@ -1982,13 +2009,10 @@ class Tracker:
                 pos = min(pos, max(0.0, proj))
             px, py = ax + pos * ux, ay + pos * uy
             if (px - fx) ** 2 + (py - fy) ** 2 > eps * eps:
-                return False
+                return None
             moved.append(MatchedFix(node.t, seg, pos * slen, float(px), float(py)))
-        for k, answer in enumerate(reversed(moved)):
-            fixes[k] = answer
-        if seg in path:
-            del path[:path.index(seg)]
-        return True
+        moved.reverse()
+        return moved
 
     def _stand_at_vertex(
         self, chain: list[Node], before: Node | None, goes_on: bool, starts: bool,
