@@ -6,13 +6,16 @@ measures it against its fix.
 
 from __future__ import annotations
 
+import itertools
+
 import pytest
 import shapely
 
 from livematch.core.build import Road, network_from_roads
-from livematch.core.events import Commit, Event
+from livematch.core.events import Commit, Event, MatchedFix
 from livematch.core.fix import Fix
 from livematch.core.settings import MatchSettings
+from livematch.core.sweep import Node
 from livematch.core.tracker import Tracker
 
 # Q comes north into V = (100, 0); T leaves V east. A vehicle stands at V when its log
@@ -152,11 +155,11 @@ def test_stand_run_into_the_drive_off_ends_on_a_road_the_fixes_fit() -> None:
     w = [(100.0, 0.0), (104.0, 0.0), (108.0, 0.0), (300.0, 0.0)]
     net = network_from_roads([Road(Q, way=1), Road(w, way=2)])
     seg_of = {}
-    for seg in range(net.segment_count):
+    for seg in range(net.n_segments):
         ax, ay, bx, by = net.segment_coords(seg)
         seg_of[(ax, ay, bx, by)] = seg
     seg_q = seg_of[(*Q[0], *Q[1])]
-    seg_w = [seg_of[(*a, *b)] for a, b in zip(w, w[1:], strict=False)]
+    seg_w = [seg_of[(*a, *b)] for a, b in itertools.pairwise(w)]
     first = (92.0, -1.0)
     assert shapely.Point(first).distance(shapely.Point(w[2])) > EPS  # shapely: 16.03 m
     assert shapely.Point(first).distance(shapely.Point(w[1])) <= EPS  # shapely: 12.04 m
@@ -166,17 +169,19 @@ def test_stand_run_into_the_drive_off_ends_on_a_road_the_fixes_fit() -> None:
     tracker = Tracker(net, "v1", MatchSettings(start_stand=True))
     for i, (x, y) in enumerate(stand + drive):
         tracker.update(Fix("v1", float(i), 0.0, 0.0, x, y))
-    # the path the commit read: Q for the stand, then W1, W2, W3 (B), W3
+    # the path the commit read: Q for the stand, then W2, W3 (the run's last node), W3
     at = [(seg_q, 1.0 - 1.0 / 80.0)] * len(stand) + [
-        (seg_w[0], 0.5), (seg_w[1], 0.5), (seg_w[2], 0.1), (seg_w[2], 0.2)]
+        (seg_w[1], 0.5), (seg_w[2], 0.005), (seg_w[2], 0.02), (seg_w[2], 0.06)]
     chain: list[Node] = []
-    for i, ((x, y), (seg, pos)) in enumerate(zip(stand + drive, at, strict=True)):
+    for i, (seg, pos) in enumerate(at):
+        ax, ay, bx, by = net.segment_coords(seg)  # a node's x, y: its point on the segment
+        x, y = ax + pos * (bx - ax), ay + pos * (by - ay)
         chain.append(Node(seg, tracker.fix_seq0 + i, float(i), pos, x, y,
                           chain[-1] if chain else None, (), 0.0, 0.0))
     out = [MatchedFix(n.t, n.seg, n.pos, n.x, n.y) for n in chain]
     route = [seg_q, *seg_w]
     assert tracker._start_stand(chain, EPS, out, route)
-    b = len(stand) + 1  # the node on W2
+    b = len(stand)  # the node on W2
     line = shapely.LineString(w[1:3])
     for k in range(b + 1):
         assert out[k].segment == seg_w[1]
@@ -184,5 +189,5 @@ def test_stand_run_into_the_drive_off_ends_on_a_road_the_fixes_fit() -> None:
         assert line.distance(point) == pytest.approx(0.0, abs=1e-9)  # shapely
         fx, fy = (stand + drive)[k]
         assert point.distance(shapely.Point(fx, fy)) <= EPS  # shapely
-    assert [f.segment for f in out[b + 1:]] == [seg_w[2], seg_w[2]]  # after B: unchanged
+    assert [f.segment for f in out[b + 1:]] == [seg_w[2]] * 3  # after B: unchanged
     assert route == seg_w[1:]
