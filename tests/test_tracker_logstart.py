@@ -143,51 +143,79 @@ def test_start_stand_validation() -> None:
     assert "start_stand" in known
 
 
-def test_stand_run_into_the_drive_off_ends_on_a_road_the_fixes_fit() -> None:
-    """The run reaches past short segments out of V: B is moved back to one within eps.
+# W leaves V = (100, 0) east in three segments: W1 and W2 4 m long, then W3
+W = [(100.0, 0.0), (104.0, 0.0), (108.0, 0.0), (300.0, 0.0)]
+NET_W = network_from_roads([Road(Q, way=1), Road(W, way=2)])
+# the first fix lies on the far side of the stand from the way out
+FIRST = (92.0, -1.0)
+STAND_W = [FIRST] + [(100.0 - 0.4 * (i % 3), -1.0 - 0.1 * i) for i in range(11)]
+# the drive-off: the first two fixes lag behind the path (within 2 sigma_m = 10 m of the
+# first fix, so the stand run reaches them), then the vehicle is away
+DRIVE_W = [(101.0, 0.3), (101.5, 0.4), (112.0, 0.5), (120.0, 0.5)]
 
-    The stand run ("within 2 sigma_m of the first fix") ends a few seconds into the
-    drive-off when the first fix lies on the far side of the stand from the way out; its
-    last node is then on W3, whose start is farther than eps from the first fix (16.0 m,
-    shapely), so the rule with that node refused. The latest node of the run on whose
-    segment every earlier stand fix lies within eps is on W2 (start 12.0 m from it).
+
+def drive_off_case(via: tuple[int, ...]) -> tuple[bool, list[MatchedFix], list[int], list[int]]:
+    """``_start_stand`` on a chain: Q for the stand, then W2 (``via`` before it), W3, W3.
+
+    Returns what it returned, the answers and path it left, and W's segments.
     """
-    w = [(100.0, 0.0), (104.0, 0.0), (108.0, 0.0), (300.0, 0.0)]
-    net = network_from_roads([Road(Q, way=1), Road(w, way=2)])
     seg_of = {}
-    for seg in range(net.n_segments):
-        ax, ay, bx, by = net.segment_coords(seg)
-        seg_of[(ax, ay, bx, by)] = seg
+    for seg in range(NET_W.n_segments):
+        seg_of[NET_W.segment_coords(seg)] = seg
     seg_q = seg_of[(*Q[0], *Q[1])]
-    seg_w = [seg_of[(*a, *b)] for a, b in itertools.pairwise(w)]
-    first = (92.0, -1.0)
-    assert shapely.Point(first).distance(shapely.Point(w[2])) > EPS  # shapely: 16.03 m
-    assert shapely.Point(first).distance(shapely.Point(w[1])) <= EPS  # shapely: 12.04 m
-    stand = [first] + [(100.0 - 0.4 * (i % 3), -1.0 - 0.1 * i) for i in range(11)]
-    # the drive-off: the fixes lag behind the path (within 10 m of the first fix), then leave
-    drive = [(101.0, 0.3), (101.5, 0.4), (112.0, 0.5), (120.0, 0.5)]
-    tracker = Tracker(net, "v1", MatchSettings(start_stand=True))
-    for i, (x, y) in enumerate(stand + drive):
+    seg_w = [seg_of[(*a, *b)] for a, b in itertools.pairwise(W)]
+    tracker = Tracker(NET_W, "v1", MatchSettings(start_stand=True))
+    for i, (x, y) in enumerate(STAND_W + DRIVE_W):
         tracker.update(Fix("v1", float(i), 0.0, 0.0, x, y))
-    # the path the commit read: Q for the stand, then W2, W3 (the run's last node), W3
-    at = [(seg_q, 1.0 - 1.0 / 80.0)] * len(stand) + [
+    # the run's last node (the 14th) is on W3, whose start lies farther than eps from
+    # the first fix
+    at = [(seg_q, 1.0 - 1.0 / 80.0)] * len(STAND_W) + [
         (seg_w[1], 0.5), (seg_w[2], 0.005), (seg_w[2], 0.02), (seg_w[2], 0.06)]
     chain: list[Node] = []
     for i, (seg, pos) in enumerate(at):
-        ax, ay, bx, by = net.segment_coords(seg)  # a node's x, y: its point on the segment
+        ax, ay, bx, by = NET_W.segment_coords(seg)  # a node's x, y: its point on seg
         x, y = ax + pos * (bx - ax), ay + pos * (by - ay)
         chain.append(Node(seg, tracker.fix_seq0 + i, float(i), pos, x, y,
-                          chain[-1] if chain else None, (), 0.0, 0.0))
+                          chain[-1] if chain else None,
+                          tuple(seg_w[s] for s in via) if i == len(STAND_W) else (),
+                          0.0, 0.0))
     out = [MatchedFix(n.t, n.seg, n.pos, n.x, n.y) for n in chain]
     route = [seg_q, *seg_w]
-    assert tracker._start_stand(chain, EPS, out, route)
-    b = len(stand)  # the node on W2
-    line = shapely.LineString(w[1:3])
-    for k in range(b + 1):
-        assert out[k].segment == seg_w[1]
+    done = tracker._start_stand(chain, EPS, out, route)
+    return done, out, route, seg_w
+
+
+def check_on(out: list[MatchedFix], upto: int, seg: int, line: list[tuple[float, float]]) -> None:
+    """Answers 0..upto-1 lie on ``seg``'s line (shapely) within eps of their fixes."""
+    shape = shapely.LineString(line)
+    for k in range(upto):
+        assert out[k].segment == seg
         point = shapely.Point(out[k].x, out[k].y)
-        assert line.distance(point) == pytest.approx(0.0, abs=1e-9)  # shapely
-        fx, fy = (stand + drive)[k]
-        assert point.distance(shapely.Point(fx, fy)) <= EPS  # shapely
-    assert [f.segment for f in out[b + 1:]] == [seg_w[2]] * 3  # after B: unchanged
+        assert shape.distance(point) == pytest.approx(0.0, abs=1e-9)  # shapely
+        assert point.distance(shapely.Point(*(STAND_W + DRIVE_W)[k])) <= EPS  # shapely
+
+
+def test_stand_run_into_the_drive_off_ends_on_a_road_the_fixes_fit() -> None:
+    """The run reaches past short segments out of V: the stand goes on one within eps.
+
+    The run's last node is on W3, whose start is 16.0 m from the first fix (shapely),
+    more than eps: the rule with that node alone refused. W2 starts 12.0 m from it.
+    """
+    assert shapely.Point(FIRST).distance(shapely.Point(W[2])) > EPS  # shapely: 16.03 m
+    assert shapely.Point(FIRST).distance(shapely.Point(W[1])) <= EPS  # shapely: 12.04 m
+    done, out, route, seg_w = drive_off_case(())
+    assert done
+    b = len(STAND_W)  # the node on W2
+    check_on(out, b + 1, seg_w[1], W[1:3])
+    assert [f.segment for f in out[b + 1:]] == [seg_w[2]] * 3  # after it: unchanged
     assert route == seg_w[1:]
+
+
+def test_stand_goes_on_the_first_road_out_of_the_stand_that_fits() -> None:
+    """W1 driven between the stand and W2 (no fix on it): the stand goes on W1, at V."""
+    done, out, route, seg_w = drive_off_case((0,))
+    assert done
+    b = len(STAND_W)
+    check_on(out, b, seg_w[0], W[0:2])
+    assert [f.segment for f in out[b:]] == [seg_w[1]] + [seg_w[2]] * 3  # unchanged
+    assert route == seg_w

@@ -1964,43 +1964,61 @@ class Tracker:
         if (e + 1 >= n or chain[e].t - chain[0].t < STAND_S
                 or not self._wandering_run(chain[:e + 1])):
             return False
-        # B: the latest node of the run, at least STAND_S after the first, on whose
-        # segment every earlier stand fix lies within eps (the run can reach a few
-        # seconds into the drive-off, past the segment the vehicle left by)
-        for b in range(e, 0, -1):
-            if chain[b].t - chain[0].t < STAND_S:
-                return False
-            seg = chain[b].seg
-            if all(c.seg == seg for c in chain[:b]):
-                return False  # the stand is on B's segment already: nothing to move
-            moved = self._stand_on(chain, b, eps)
-            if moved is not None:
-                for k, answer in enumerate(moved):
-                    fixes[k] = answer
-                if seg in path:
-                    del path[:path.index(seg)]
-                return True
+        # B: the run's last node; when the stand's fixes do not fit B's segment (the
+        # run reached a few seconds into the drive-off, past short segments out of V),
+        # the first segment along the path after the stand's first one that they fit
+        t0 = chain[0].t
+        view = self._view
+        anchor = chain[e]
+        if all(c.seg == anchor.seg for c in chain[:e]):
+            return False  # the stand is on B's segment already: nothing to move
+        cands: list[tuple[int, int, bool]] = [(anchor.seg, e, True)]
+        k = 1
+        while k <= e:
+            node = chain[k]
+            if chain[k - 1].t - t0 >= STAND_S:
+                cands.extend((seg, k, False) for seg in node.via)
+            if node.via or node.seg != chain[k - 1].seg:
+                b = k  # the last node of this visit of node.seg within the run
+                while b < e and chain[b + 1].seg == node.seg and not chain[b + 1].via:
+                    b += 1
+                if chain[b].t - t0 >= STAND_S and b < e:
+                    cands.append((node.seg, b, True))
+                k = b
+            k += 1
+        for seg, b, own in cands:
+            got = self._stand_on(chain, b, seg, chain[b].pos if own else 1.0, eps)
+            if got is None:
+                continue
+            if own:
+                got.append(MatchedFix(chain[b].t, seg, chain[b].pos * float(view.slen[seg]),
+                                      chain[b].x, chain[b].y))
+            for k, answer in enumerate(got):
+                fixes[k] = answer
+            if seg in path:
+                del path[:path.index(seg)]
+            return True
         return False
 
-    def _stand_on(self, chain: list[Node], b: int, eps: float) -> list[MatchedFix] | None:
-        """``chain[:b + 1]``'s answers on ``chain[b]``'s segment; None if one is past eps.
+    def _stand_on(self, chain: list[Node], b: int, seg: int, pos: float,
+                  eps: float) -> list[MatchedFix] | None:
+        """``chain[:b]``'s answers on segment ``seg``, up to ``pos``; None if one is past eps.
 
-        For :meth:`_start_stand`: a node already on the segment, not ahead of the node
-        after it, keeps its own point; any other is put at the point of the segment
-        nearest its fix, never ahead of the node after it. None when such a point lies
-        farther than ``eps`` from its fix (the fixes do not stand on that segment).
+        For :meth:`_start_stand`: ``pos`` is where the path is on ``seg`` at
+        ``chain[b]`` (1.0 where ``seg`` is a segment driven before ``chain[b]``'s own). A
+        node already on ``seg``, not ahead of the node after it, keeps its own point;
+        any other is put at the point of ``seg`` nearest its fix, never ahead of the
+        node after it. None when such a point lies farther than ``eps`` from its fix
+        (the fixes do not stand on that segment).
         """
         seq0 = self.fix_seq0
         xy = self.fix_xy
-        anchor = chain[b]
-        seg = anchor.seg
         view = self._view
         ax, ay = view.vx[view.sf[seg]], view.vy[view.sf[seg]]
         ux, uy = view.vx[view.st[seg]] - ax, view.vy[view.st[seg]] - ay
         length2 = ux * ux + uy * uy
         slen = float(view.slen[seg])
-        moved = [MatchedFix(anchor.t, seg, anchor.pos * slen, anchor.x, anchor.y)]
-        pos = anchor.pos
+        moved: list[MatchedFix] = []
         for k in range(b - 1, -1, -1):
             node = chain[k]
             if node.seg == seg and node.pos <= pos and not chain[k + 1].via:
