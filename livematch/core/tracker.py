@@ -1896,19 +1896,29 @@ class Tracker:
         ``STAND_S`` seconds, its fixes must come densely and wander
         (:meth:`_wandering_run`: median gap at most ``SPARSE_S``, median step at least
         ``STILL_M``), and the chain must go on past it (the vehicle's departure is in
-        this commit: a commit forced mid-stand shows none). B, where the path was when
-        the vehicle began to move, on the road it left by, is the latest node of the
-        run, at least ``STAND_S`` after its first, on whose segment every earlier node
-        can be reported (:meth:`_stand_on`): a node already on it, not ahead of the
-        node after, at its own point; any other at the point of B's segment nearest its
-        fix, never ahead of the node after it (so never past B), within ``eps`` of its
-        fix. The latest, not simply the run's last node: when the first fix lies on the
-        far side of the stand from the way out, the run reaches a few seconds into the
-        drive-off, its last node past short segments out of V whose starts lie farther
-        than eps from the first fixes. The nodes up to B are reported so; if no such B
-        precedes a node already on its segment all along, nothing changes. The
-        committed path then begins at B's segment's first occurrence in it: no answer
-        lies on the segments before it any more.
+        this commit: a commit forced mid-stand shows none). The stand is reported on
+        the first of these candidates that every earlier node fits (:meth:`_stand_on`:
+        a node already on the segment, not ahead of the node after, at its own point;
+        any other at the point of the segment nearest its fix, never ahead of the node
+        after it, within ``eps`` of its fix):
+
+        - the segment of the run's last node B (B keeps its answer), where the path was
+          when the vehicle began to move, on the road it left by;
+        - else, along the path from the stand's first segment on, each segment driven
+          between two nodes of the run (the nodes before the second go on it, after at
+          least ``STAND_S``) and each later segment of the run (the last node of its
+          visit keeps its answer, at least ``STAND_S`` after the first): when the first
+          fix lies on the far side of the stand from the way out, the run reaches a few
+          seconds into the drive-off and B lies past short segments out of V whose
+          starts lie farther than eps from the first fixes;
+        - when every node of the run is on one segment: the segments the path drives
+          between two fixes where it first leaves that segment (the nodes before go on
+          them): the road out of V, passed between two fixes at the drive-off.
+
+        If none fits (or the run is all on one segment that the path leaves with no
+        segment between two fixes) nothing changes. The committed path then begins at
+        the chosen segment's first occurrence in it: no answer lies on the segments
+        before it any more.
 
         Why: a log that begins while the vehicle stands at a vertex V (a dwell, a stop
         at a junction) has no road that came in: the first state may be any segment
