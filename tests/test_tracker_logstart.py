@@ -154,13 +154,10 @@ STAND_W = [FIRST] + [(100.0 - 0.4 * (i % 3), -1.0 - 0.1 * i) for i in range(11)]
 DRIVE_W = [(101.0, 0.3), (101.5, 0.4), (112.0, 0.5), (120.0, 0.5)]
 
 
-def drive_off_case(via: tuple[int, ...], all_on_q: bool = False,
-                   ) -> tuple[bool, list[MatchedFix], list[int], list[int]]:
+def drive_off_case(via: tuple[int, ...]) -> tuple[bool, list[MatchedFix], list[int], list[int]]:
     """``_start_stand`` on a chain: Q for the stand, then W2 (``via`` before it), W3, W3.
 
-    ``all_on_q``: the chain stays on Q (at V) through the drive-off's first two fixes
-    and goes on W3 (``via`` of W's indices before it) at the third. Returns what it
-    returned, the answers and path it left, and W's segments.
+    Returns what it returned, the answers and path it left, and W's segments.
     """
     seg_of = {}
     for seg in range(NET_W.n_segments):
@@ -174,18 +171,13 @@ def drive_off_case(via: tuple[int, ...], all_on_q: bool = False,
     # the first fix
     at = [(seg_q, 1.0 - 1.0 / 80.0)] * len(STAND_W) + [
         (seg_w[1], 0.5), (seg_w[2], 0.005), (seg_w[2], 0.02), (seg_w[2], 0.06)]
-    at_via = len(STAND_W)
-    if all_on_q:
-        at = [(seg_q, 1.0 - 1.0 / 80.0)] * len(STAND_W) + [(seg_q, 1.0)] * 2 + [
-            (seg_w[2], 0.02), (seg_w[2], 0.06)]
-        at_via += 2
     chain: list[Node] = []
     for i, (seg, pos) in enumerate(at):
         ax, ay, bx, by = NET_W.segment_coords(seg)  # a node's x, y: its point on seg
         x, y = ax + pos * (bx - ax), ay + pos * (by - ay)
         chain.append(Node(seg, tracker.fix_seq0 + i, float(i), pos, x, y,
                           chain[-1] if chain else None,
-                          tuple(seg_w[s] for s in via) if i == at_via else (),
+                          tuple(seg_w[s] for s in via) if i == len(STAND_W) else (),
                           0.0, 0.0))
     out = [MatchedFix(n.t, n.seg, n.pos, n.x, n.y) for n in chain]
     route = [seg_q, *seg_w]
@@ -227,17 +219,3 @@ def test_stand_goes_on_the_first_road_out_of_the_stand_that_fits() -> None:
     check_on(out, b, seg_w[0], W[0:2])
     assert [f.segment for f in out[b:]] == [seg_w[1]] + [seg_w[2]] * 3  # unchanged
     assert route == seg_w
-
-
-def test_stand_run_all_on_q_goes_on_the_road_driven_out_of_v() -> None:
-    """The whole run on Q; the path leaves Q by W1 and W2 between two fixes: stand on W1."""
-    done, out, route, seg_w = drive_off_case((0, 1), all_on_q=True)
-    assert done
-    b = len(STAND_W) + 2  # the first node off Q, on W3
-    check_on(out, b, seg_w[0], W[0:2])
-    assert [f.segment for f in out[b:]] == [seg_w[2]] * 2  # unchanged
-    assert route == seg_w
-    # without a segment driven between the fixes (Q straight to W3: no road out of V
-    # to read) nothing moves
-    done, out, route, seg_w = drive_off_case((), all_on_q=True)
-    assert not done

@@ -1910,15 +1910,11 @@ class Tracker:
           visit keeps its answer, at least ``STAND_S`` after the first): when the first
           fix lies on the far side of the stand from the way out, the run reaches a few
           seconds into the drive-off and B lies past short segments out of V whose
-          starts lie farther than eps from the first fixes;
-        - when every node of the run is on one segment: the segments the path drives
-          between two fixes where it first leaves that segment (the nodes before go on
-          them): the road out of V, passed between two fixes at the drive-off.
+          starts lie farther than eps from the first fixes.
 
-        If none fits (or the run is all on one segment that the path leaves with no
-        segment between two fixes) nothing changes. The committed path then begins at
-        the chosen segment's first occurrence in it: no answer lies on the segments
-        before it any more.
+        If none fits, or every node of the run is on B's segment already, nothing
+        changes. The committed path then begins at the chosen segment's first
+        occurrence in it: no answer lies on the segments before it any more.
 
         Why: a log that begins while the vehicle stands at a vertex V (a dwell, a stop
         at a junction) has no road that came in: the first state may be any segment
@@ -1978,17 +1974,10 @@ class Tracker:
         # run reached a few seconds into the drive-off, past short segments out of V),
         # the first segment along the path after the stand's first one that they fit
         t0 = chain[0].t
+        view = self._view
         anchor = chain[e]
         if all(c.seg == anchor.seg for c in chain[:e]):
-            # the whole run on one segment: if the path leaves it through segments
-            # driven between two fixes, the first of them that the fixes up to there fit
-            k = e + 1
-            while k < n and chain[k].seg == anchor.seg and not chain[k].via:
-                k += 1
-            if k == n or not chain[k].via:
-                return False  # the stand is on the road it left by already
-            return self._stand_to(chain, [(seg, k, False) for seg in chain[k].via], eps,
-                                  fixes, path)
+            return False  # the stand is on B's segment already: nothing to move
         cands: list[tuple[int, int, bool]] = [(anchor.seg, e, True)]
         k = 1
         while k <= e:
@@ -2003,17 +1992,6 @@ class Tracker:
                     cands.append((node.seg, b, True))
                 k = b
             k += 1
-        return self._stand_to(chain, cands, eps, fixes, path)
-
-    def _stand_to(self, chain: list[Node], cands: list[tuple[int, int, bool]], eps: float,
-                  fixes: list[MatchedFix], path: list[int]) -> bool:
-        """Report the stand on the first candidate it fits (:meth:`_start_stand`).
-
-        ``cands``: (segment, b, own) in order; own: ``chain[b]`` is on the segment and
-        keeps its answer, the nodes before it go on the segment; else the nodes before
-        ``chain[b]`` go on the segment, driven before ``chain[b]``'s own.
-        """
-        view = self._view
         for seg, b, own in cands:
             got = self._stand_on(chain, b, seg, chain[b].pos if own else 1.0, eps)
             if got is None:
