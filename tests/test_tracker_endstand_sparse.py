@@ -23,7 +23,7 @@ NET = network_from_roads([Road(P, way=1), Road(S, way=2), Road(T, way=3)])
 EPS = 15.0
 DT = 30.0
 ON = MatchSettings(end_stand_sparse=True)
-OFF = MatchSettings()
+OFF = MatchSettings(end_stand_sparse=False)
 
 
 def seg_of(a: tuple[float, float], b: tuple[float, float]) -> int:
@@ -163,7 +163,7 @@ def test_restore_mid_stand_gives_the_same_outputs() -> None:
 
 
 def test_end_stand_sparse_validation() -> None:
-    """end_stand_sparse must be a boolean, and is off by default."""
-    assert not MatchSettings().end_stand_sparse
+    """end_stand_sparse must be a boolean, and is on by default."""
+    assert MatchSettings().end_stand_sparse
     assert ("end_stand_sparse", "must be true or false, got 1") in MatchSettings(
         end_stand_sparse=1).problems()  # type: ignore[arg-type]
