@@ -422,7 +422,8 @@ class MatchSettings:
             log the fixes after the stand tell which way the vehicle left, at the end
             of the log nothing does, and the segment the stand began on is the one the
             fixes show it on. At 15 or 30 s between fixes two fixes within 10 m are no
-            evidence of a stand (a turning circle, a slow step), so it never acts there.
+            evidence of a stand (a turning circle, a slow step), so it acts there only
+            with ``end_stand_sparse``.
             On by default: on bench/fleetmiss.py's decision runs it gains final road+dir
             at 1 and 5 s in every cell, loses no fix, and leaves live answers and route
             mismatch unchanged (docs/measured.md "Session 14 (endstand2)").

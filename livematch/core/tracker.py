@@ -1795,7 +1795,9 @@ class Tracker:
         Dense fixes: at 15 or 30 s between fixes a run of ``STAND_S`` is two fixes, and
         two fixes within ``STAND_SIGMAS`` x ``sigma_m`` of each other 15-30 s apart are
         as often a vehicle going round a small loop or a turning circle as a stand
-        (docs/measured.md "Session 14 (endstand2)": the only fixes the rule lost). The
+        (docs/measured.md "Session 14 (endstand2)": the only fixes the rule lost); with
+        ``end_stand_sparse`` such a stand counts when the committed path's own route over
+        it is short (:meth:`_short_sparse_stand`: the path went round no loop). The
         path is kept because the truth of a vehicle standing at the vertex V at the end
         of A's segment is the next segment at offset 0: a path that went on onto it
         covered that truth, a path cut back to A's segment does not.
