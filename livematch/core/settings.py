@@ -472,6 +472,7 @@ class MatchSettings:
     stand_turnback: bool = False
     speed_laps: bool = False
     end_stand: bool = True
+    bridge_error_corr: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -506,7 +507,7 @@ class MatchSettings:
                      "stand_loops_outer", "vertex_in_segment", "reverse_turns",
                      "reverse_turns_near", "lone_reverse_turns", "hold_filtered",
                      "stand_at_vertex", "motion_step", "break_rejoin", "stand_turnback",
-                     "speed_laps", "end_stand"):
+                     "speed_laps", "end_stand", "bridge_error_corr"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):
