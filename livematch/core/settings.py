@@ -426,6 +426,19 @@ class MatchSettings:
             On by default: on bench/fleetmiss.py's decision runs it gains final road+dir
             at 1 and 5 s in every cell, loses no fix, and leaves live answers and route
             mismatch unchanged (docs/measured.md "Session 14 (endstand2)").
+        bridge_error_corr: in a bridged step over more than ``gap_s`` seconds, the
+            distance term charges the part of the fix's offset from the matched point
+            that the parent's offset at the fix before does not explain:
+            |e1 - rho e0|^2 / (2 sigma^2 (1 - rho^2)), rho = exp(-dt / ``error_tau_s``),
+            the conditional density of first-order Gauss-Markov error (no change when
+            ``error_tau_s`` is 0; :func:`livematch.core.sweep._offer`). Why: the path
+            cost counts fixes 15-30 s apart as independent, while GNSS error wanders over
+            tens of seconds (Ranacher et al., IJGIS 2016): an error leaning towards a road
+            alongside the driven one for minutes makes that road cheaper at every fix,
+            and switching onto it costs only its short link. Under the conditional term
+            the switch costs the sudden change of offset. Steps of at most ``gap_s`` (the
+            sweep) are unchanged; so is the live score's own rescoring.
+            Off by default (docs/measured.md "Session 15 (walk15)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
