@@ -462,6 +462,19 @@ class MatchSettings:
             both models, both extracts, 15 and 30 s) it turned 1-8 final answers right
             per routed-trip cell and none wrong, live answers and route mismatch
             identical; at 1-5 s it cannot act.
+        bridge_error_corr: in a bridged step over more than ``gap_s`` seconds, the
+            distance term charges the part of the fix's offset from the matched point
+            that the parent's offset at the fix before does not explain:
+            |e1 - rho e0|^2 / (2 sigma^2 (1 - rho^2)), rho = exp(-dt / ``error_tau_s``),
+            the conditional density of first-order Gauss-Markov error (no change when
+            ``error_tau_s`` is 0; :func:`livematch.core.sweep._offer`). Why: the path
+            cost counts fixes 15-30 s apart as independent, while GNSS error wanders over
+            tens of seconds (Ranacher et al., IJGIS 2016): an error leaning towards a road
+            alongside the driven one for minutes makes that road cheaper at every fix,
+            and switching onto it costs only its short link. Under the conditional term
+            the switch costs the sudden change of offset. Steps of at most ``gap_s`` (the
+            sweep) are unchanged; so is the live score's own rescoring.
+            Off by default (docs/measured.md "Session 15 (walk15)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -510,6 +523,7 @@ class MatchSettings:
     end_stand: bool = True
     start_stand: bool = True
     end_stand_sparse: bool = True
+    bridge_error_corr: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -545,7 +559,7 @@ class MatchSettings:
                      "reverse_turns_near", "lone_reverse_turns", "hold_filtered",
                      "stand_at_vertex", "motion_step", "break_rejoin", "stand_turnback",
                      "speed_laps", "end_stand", "start_stand",
-                     "end_stand_sparse"):
+                     "end_stand_sparse", "bridge_error_corr"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):
