@@ -10,10 +10,13 @@ import pytest
 import shapely
 
 from livematch.core.build import Road, network_from_roads
-from livematch.core.events import Commit, Event, MatchedFix
+from livematch.core.events import Event, MatchedFix
 from livematch.core.fix import Fix
 from livematch.core.settings import MatchSettings
 from livematch.core.tracker import Node, Tracker
+from tests.catalogue import committed_path as path
+from tests.catalogue import final_answers as finals
+from tests.catalogue import track_points
 
 # P runs east into V = (100, 0); S leaves V north to a dead end 80 m on; T leaves V east.
 P = [(-1000.0, 0.0), (100.0, 0.0)]
@@ -49,26 +52,7 @@ STAND = [(-800.0, 1.0), (-500.0, -1.0), (-200.0, 1.0), (97.0, 1.0), (99.5, 5.5)]
 def run(settings: MatchSettings, pts: list[tuple[float, float]],
         restore_at: int | None = None) -> list[Event]:
     """Fixes ``pts`` 30 s apart, then the end-of-log flush."""
-    tracker = Tracker(NET, "v", settings)
-    events: list[Event] = []
-    for i, (x, y) in enumerate(pts):
-        if i == restore_at:
-            tracker = Tracker.from_bytes(NET, settings, tracker.to_bytes())
-        events += tracker.update(Fix("v", DT * i, 0.0, 0.0, x, y))
-    return events + tracker.flush()
-
-
-def finals(events: list[Event]) -> dict[float, tuple[int, float, float, float]]:
-    out = {}
-    for e in events:
-        if isinstance(e, Commit):
-            for f in e.fixes:
-                out[f.t] = (f.segment, f.offset_m, f.x, f.y)
-    return out
-
-
-def path(events: list[Event]) -> list[int]:
-    return [s for e in events if isinstance(e, Commit) for s in e.path]
+    return track_points(NET, settings, pts, DT, restore_at)
 
 
 def test_without_the_rule_the_last_fix_ends_on_s() -> None:
