@@ -286,6 +286,20 @@ _Tops = dict[Level, tuple[CandidateTree, int, int, int]]
 _CALLS = Direct(tree_sweep=tree_sweep, live_answer=tree_live_answer,
                 cut_and_check=cut_and_check, all_within=all_within)
 
+
+def _slide(fx: float, fy: float, ax: float, ay: float, ux: float, uy: float, length2: float,
+           pos: float, ahead: bool) -> tuple[float, float, float]:
+    """The point of a segment nearest a fix, not behind (or not ahead of) ``pos``: (t, x, y).
+
+    The segment is (ax, ay) + t (ux, uy), t in [0, 1]; ``ahead`` keeps t >= ``pos``, else
+    t <= ``pos``. The end-of-log and start-of-log stand rules move a stand's answers along
+    one segment this way, so the answers stay monotone in time.
+    """
+    if length2 > 0.0:
+        proj = ((fx - ax) * ux + (fy - ay) * uy) / length2
+        pos = max(pos, min(1.0, proj)) if ahead else min(pos, max(0.0, proj))
+    return pos, ax + pos * ux, ay + pos * uy
+
 class Tracker:
     """Online map matching of one vehicle.
 
@@ -1877,10 +1891,7 @@ class Tracker:
                 continue
             r = node.seq - seq0
             fx, fy = xy.item(r, 0), xy.item(r, 1)
-            if length2 > 0.0:
-                proj = ((fx - ax) * ux + (fy - ay) * uy) / length2
-                pos = max(pos, min(1.0, proj))
-            px, py = ax + pos * ux, ay + pos * uy
+            pos, px, py = _slide(fx, fy, ax, ay, ux, uy, length2, pos, ahead=True)
             if (px - fx) ** 2 + (py - fy) ** 2 > eps * eps:
                 return
             if fixes[k].segment == node.seg:
@@ -1980,10 +1991,7 @@ class Tracker:
                 continue
             r = node.seq - seq0
             fx, fy = xy.item(r, 0), xy.item(r, 1)
-            if length2 > 0.0:
-                proj = ((fx - ax) * ux + (fy - ay) * uy) / length2
-                pos = min(pos, max(0.0, proj))
-            px, py = ax + pos * ux, ay + pos * uy
+            pos, px, py = _slide(fx, fy, ax, ay, ux, uy, length2, pos, ahead=False)
             if (px - fx) ** 2 + (py - fy) ** 2 > eps * eps:
                 return False
             moved.append(MatchedFix(node.t, seg, pos * slen, float(px), float(py)))
