@@ -62,7 +62,8 @@ def main(argv: list[str] | None = None) -> int:
     settings = DriveSettings(duration_s=args.duration, sigma_m=5.0, tau_s=45.0,
                              outlier_p=0.01, speed_sigma_mps=args.speed_sigma,
                              **acc.SIM_MODELS[args.sim])
-    for ei, name in enumerate(args.extract.split(",")):
+    for name in args.extract.split(","):
+        ei = {"helsinki": 0, "test": 1}.get(name, 0)  # the drives of --extract helsinki,test
         network = acc.load_network(acc.extract_path(name))
         allowed = drivable_segments(network)
         drives = acc.simulate_drives(network, args.seed, ei, args.drives, settings, allowed)

@@ -99,7 +99,7 @@ def _instrument() -> None:
                 SETTLED[self.vehicle][f.t] = {
                     "kind": kind, "eps": level.eps if level is not None else None,
                     "alive": alive, "tree_seq": tree_seq, "seq_now": self.seq,
-                    "tree_t": self.times.get(tree_seq) if tree_seq > 0 else None,
+                    "tree_t": _time_of(self, tree_seq),
                 }
 
     def upd(self: Any, fix: Any) -> list[Any]:
@@ -109,6 +109,14 @@ def _instrument() -> None:
 
     Tracker._commit_chain = commit_chain  # type: ignore[method-assign]
     Tracker.update = upd  # type: ignore[method-assign]
+
+
+def _time_of(tracker: Any, seq: int) -> float | None:
+    """The time of fix ``seq`` from the tracker's window of fix times, None if not held."""
+    k = seq - tracker.times0
+    if seq <= 0 or not 0 <= k < len(tracker.times):
+        return None
+    return float(tracker.times[k])
 
 
 def _uturn_near(drive: Any, k0: int, k1: int, twin: np.ndarray) -> bool:

@@ -11,8 +11,11 @@ from types import ModuleType
 import numpy as np
 
 from livematch.core.build import Road, network_from_roads
+from livematch.core.events import Commit, Event
 from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
+from livematch.core.settings import MatchSettings
+from livematch.core.tracker import Tracker
 
 
 def straight_road(length: float = 1000.0, step: float = 50.0, oneway: bool = False) -> RoadNetwork:
@@ -86,3 +89,31 @@ def bench_module(name: str) -> ModuleType:
         sys.modules[key] = module
         spec.loader.exec_module(module)
     return sys.modules[key]
+
+
+def track_points(net: RoadNetwork, settings: MatchSettings, pts: list[tuple[float, float]],
+                 dt: float = 1.0, restore_at: int | None = None) -> list[Event]:
+    """Vehicle "v" fed ``pts`` (metres) ``dt`` seconds apart from t = 0, then the
+    end-of-log flush; at fix ``restore_at`` the tracker is checkpointed and restored."""
+    tracker = Tracker(net, "v", settings)
+    events: list[Event] = []
+    for i, (x, y) in enumerate(pts):
+        if i == restore_at:
+            tracker = Tracker.from_bytes(net, settings, tracker.to_bytes())
+        events += tracker.update(Fix("v", dt * i, 0.0, 0.0, x, y))
+    return events + tracker.flush()
+
+
+def final_answers(events: list[Event]) -> dict[float, tuple[int, float, float, float]]:
+    """Each committed fix's final answer by fix time: (segment, offset_m, x, y)."""
+    out = {}
+    for e in events:
+        if isinstance(e, Commit):
+            for f in e.fixes:
+                out[f.t] = (f.segment, f.offset_m, f.x, f.y)
+    return out
+
+
+def committed_path(events: list[Event]) -> list[int]:
+    """The committed path's segments, all commits in order."""
+    return [s for e in events if isinstance(e, Commit) for s in e.path]

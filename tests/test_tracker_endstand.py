@@ -10,10 +10,13 @@ import pytest
 import shapely
 
 from livematch.core.build import Road, network_from_roads
-from livematch.core.events import Commit, Event, MatchedFix
+from livematch.core.events import Event, MatchedFix
 from livematch.core.fix import Fix
 from livematch.core.settings import MatchSettings
 from livematch.core.tracker import Node, Tracker
+from tests.catalogue import committed_path as path
+from tests.catalogue import final_answers as finals
+from tests.catalogue import track_points
 
 # P runs east into V = (100, 0); S leaves V north (its first piece 10 m long, so a stand
 # drifting 8 m north is past its middle); T leaves V east.
@@ -27,27 +30,8 @@ EPS = 15.0
 def drive(settings: MatchSettings, stand: list[tuple[float, float]],
           restore_at: int | None = None) -> list[Event]:
     """Ten fixes along P at 10 m/s, then ``stand``, one a second, then the flush."""
-    tracker = Tracker(NET, "v", settings)
-    events: list[Event] = []
-    fixes = [(10.0 * i, 1.0) for i in range(10)] + stand
-    for i, (x, y) in enumerate(fixes):
-        if i == restore_at:
-            tracker = Tracker.from_bytes(NET, settings, tracker.to_bytes())
-        events += tracker.update(Fix("v", float(i), 0.0, 0.0, x, y))
-    return events + tracker.flush()
-
-
-def finals(events: list[Event]) -> dict[float, tuple[int, float, float, float]]:
-    out = {}
-    for e in events:
-        if isinstance(e, Commit):
-            for f in e.fixes:
-                out[f.t] = (f.segment, f.offset_m, f.x, f.y)
-    return out
-
-
-def path(events: list[Event]) -> list[int]:
-    return [s for e in events if isinstance(e, Commit) for s in e.path]
+    return track_points(NET, settings, [(10.0 * i, 1.0) for i in range(10)] + stand,
+                        restore_at=restore_at)
 
 
 # standing at V for 30 s while the error drifts 7 m north (a correlated lean)

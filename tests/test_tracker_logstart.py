@@ -12,11 +12,14 @@ import pytest
 import shapely
 
 from livematch.core.build import Road, network_from_roads
-from livematch.core.events import Commit, Event, MatchedFix
+from livematch.core.events import Event, MatchedFix
 from livematch.core.fix import Fix
 from livematch.core.settings import MatchSettings
 from livematch.core.sweep import Node
 from livematch.core.tracker import Tracker
+from tests.catalogue import committed_path as path
+from tests.catalogue import final_answers as finals
+from tests.catalogue import track_points
 
 # Q comes north into V = (100, 0); T leaves V east. A vehicle stands at V when its log
 # begins, its fixes leaning 4-7 m south (onto Q, a road it never drove), then it drives
@@ -35,26 +38,7 @@ DRIVE = [(100.0 + 8.0 * i, 0.5) for i in range(1, 16)]
 def run(settings: MatchSettings, pts: list[tuple[float, float]], dt: float = 1.0,
         restore_at: int | None = None) -> list[Event]:
     """Fixes ``pts`` ``dt`` seconds apart, then the flush; optionally restored mid-way."""
-    tracker = Tracker(NET, "v", settings)
-    events: list[Event] = []
-    for i, (x, y) in enumerate(pts):
-        if i == restore_at:
-            tracker = Tracker.from_bytes(NET, settings, tracker.to_bytes())
-        events += tracker.update(Fix("v", dt * i, 0.0, 0.0, x, y))
-    return events + tracker.flush()
-
-
-def finals(events: list[Event]) -> dict[float, tuple[int, float, float, float]]:
-    out = {}
-    for e in events:
-        if isinstance(e, Commit):
-            for f in e.fixes:
-                out[f.t] = (f.segment, f.offset_m, f.x, f.y)
-    return out
-
-
-def path(events: list[Event]) -> list[int]:
-    return [s for e in events if isinstance(e, Commit) for s in e.path]
+    return track_points(NET, settings, pts, dt, restore_at)
 
 
 def test_segments_of_the_network_are_as_assumed() -> None:

@@ -423,7 +423,8 @@ class MatchSettings:
             log the fixes after the stand tell which way the vehicle left, at the end
             of the log nothing does, and the segment the stand began on is the one the
             fixes show it on. At 15 or 30 s between fixes two fixes within 10 m are no
-            evidence of a stand (a turning circle, a slow step), so it never acts there.
+            evidence of a stand (a turning circle, a slow step), so it acts there only
+            with ``end_stand_sparse``.
             On by default: on bench/fleetmiss.py's decision runs it gains final road+dir
             at 1 and 5 s in every cell, loses no fix, and leaves live answers and route
             mismatch unchanged (docs/measured.md "Session 14 (endstand2)").
@@ -444,6 +445,36 @@ class MatchSettings:
             trips cell and 2 to 10 in two random-walk cells, loses no fix, leaves live
             answers unchanged and route mismatch unchanged or lower (routed trips test
             1 s seed 31 1.98 -> 1.87 %) (docs/measured.md "Session 15 (logstart)").
+        end_stand_sparse: ``end_stand`` also where the stand's fixes come more than 5 s
+            apart (their median gap; 15-30 s feeds), but only when the committed path
+            itself barely moved over the stand: its route from the stand's first fix to
+            the last is at most 2 ``sigma_m`` long (:meth:`livematch.core.tracker.
+            Tracker._short_sparse_stand`). Two fixes 15-30 s apart within 10 m of each
+            other are as often a vehicle that went round a small loop or a turning circle
+            between them as one that stood; the best path tells the two apart, as it goes
+            round the loop in the first case and steps a few metres past the vertex in
+            the second (the GNSS lean that ``end_stand`` undoes). Why: at 30 s between
+            fixes the HMM peer (which takes a fix within 2 sigma of the one before as no
+            new step) is right at the last fix of a log that ends in a stand where
+            livematch's flush answers the road past the stand's vertex (docs/measured.md
+            "Session 15 (hmm30)"). Needs ``end_stand``. Final answers only. On by
+            default: on bench/matcher_ab.py's decision runs (80 drives, seeds 31 / 77,
+            both models, both extracts, 15 and 30 s) it turned 1-8 final answers right
+            per routed-trip cell and none wrong, live answers and route mismatch
+            identical; at 1-5 s it cannot act.
+        bridge_error_corr: in a bridged step over more than ``gap_s`` seconds, the
+            distance term charges the part of the fix's offset from the matched point
+            that the parent's offset at the fix before does not explain:
+            |e1 - rho e0|^2 / (2 sigma^2 (1 - rho^2)), rho = exp(-dt / ``error_tau_s``),
+            the conditional density of first-order Gauss-Markov error (no change when
+            ``error_tau_s`` is 0; :func:`livematch.core.sweep._offer`). Why: the path
+            cost counts fixes 15-30 s apart as independent, while GNSS error wanders over
+            tens of seconds (Ranacher et al., IJGIS 2016): an error leaning towards a road
+            alongside the driven one for minutes makes that road cheaper at every fix,
+            and switching onto it costs only its short link. Under the conditional term
+            the switch costs the sudden change of offset. Steps of at most ``gap_s`` (the
+            sweep) are unchanged; so is the live score's own rescoring.
+            Off by default (docs/measured.md "Session 15 (walk15)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -491,6 +522,8 @@ class MatchSettings:
     speed_laps: bool = False
     end_stand: bool = True
     start_stand: bool = True
+    end_stand_sparse: bool = True
+    bridge_error_corr: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -525,7 +558,8 @@ class MatchSettings:
                      "stand_loops_outer", "vertex_in_segment", "reverse_turns",
                      "reverse_turns_near", "lone_reverse_turns", "hold_filtered",
                      "stand_at_vertex", "motion_step", "break_rejoin", "stand_turnback",
-                     "speed_laps", "end_stand", "start_stand"):
+                     "speed_laps", "end_stand", "start_stand",
+                     "end_stand_sparse", "bridge_error_corr"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

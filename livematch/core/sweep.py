@@ -48,7 +48,7 @@ from __future__ import annotations
 import heapq
 import math
 from collections.abc import Callable, Iterable, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 from livematch.core.network import RoadNetwork
 from livematch.core.routing import RouteSearch, route_searches
@@ -114,6 +114,7 @@ class StepContext:
     street_turns: bool = False
     street_turn_cost: float = 0.0
     turn_near: bool = False
+    error_rho: float = 0.0
 
     @classmethod
     def between(
@@ -190,7 +191,15 @@ def _offer(
     my = ay + pos * dy
     ex = mx - ctx.x1
     ey = my - ctx.y1
-    cost = (ex * ex + ey * ey) * ctx.inv_two_sigma2
+    rho = ctx.error_rho
+    if rho > 0.0 and parent is not None:
+        # correlated error (settings.bridge_error_corr): charge the part of this offset
+        # that the parent's offset at p0 does not explain (AR(1), rho = exp(-dt / tau))
+        ex -= rho * (parent.x - ctx.x0)
+        ey -= rho * (parent.y - ctx.y0)
+        cost = (ex * ex + ey * ey) * ctx.inv_two_sigma2 / (1.0 - rho * rho)
+    else:
+        cost = (ex * ex + ey * ey) * ctx.inv_two_sigma2
     if parent is not None:
         slen = view.slen
         if not via and seg == parent.seg:
@@ -501,6 +510,8 @@ def advance(
     if live:
         limit = min(settings.bridge_speed_mps * dt, bridge_reach(live, ctx, settings)) \
             + 2.0 * ctx.eps
+        if settings.bridge_error_corr and settings.error_tau_s > 0.0 and dt > settings.gap_s:
+            ctx = replace(ctx, error_rho=math.exp(-dt / settings.error_tau_s))
         new = bridge_step(network, live, ctx, limit)
         if new:
             return new, "bridged"

@@ -286,6 +286,20 @@ _Tops = dict[Level, tuple[CandidateTree, int, int, int]]
 _CALLS = Direct(tree_sweep=tree_sweep, live_answer=tree_live_answer,
                 cut_and_check=cut_and_check, all_within=all_within)
 
+
+def _slide(fx: float, fy: float, ax: float, ay: float, ux: float, uy: float, length2: float,
+           pos: float, ahead: bool) -> tuple[float, float, float]:
+    """The point of a segment nearest a fix, not behind (or not ahead of) ``pos``: (t, x, y).
+
+    The segment is (ax, ay) + t (ux, uy), t in [0, 1]; ``ahead`` keeps t >= ``pos``, else
+    t <= ``pos``. The end-of-log and start-of-log stand rules move a stand's answers along
+    one segment this way, so the answers stay monotone in time.
+    """
+    if length2 > 0.0:
+        proj = ((fx - ax) * ux + (fy - ay) * uy) / length2
+        pos = max(pos, min(1.0, proj)) if ahead else min(pos, max(0.0, proj))
+    return pos, ax + pos * ux, ay + pos * uy
+
 class Tracker:
     """Online map matching of one vehicle.
 
@@ -1807,7 +1821,9 @@ class Tracker:
         Dense fixes: at 15 or 30 s between fixes a run of ``STAND_S`` is two fixes, and
         two fixes within ``STAND_SIGMAS`` x ``sigma_m`` of each other 15-30 s apart are
         as often a vehicle going round a small loop or a turning circle as a stand
-        (docs/measured.md "Session 14 (endstand2)": the only fixes the rule lost). The
+        (docs/measured.md "Session 14 (endstand2)": the only fixes the rule lost); with
+        ``end_stand_sparse`` such a stand counts when the committed path's own route over
+        it is short (:meth:`_short_sparse_stand`: the path went round no loop). The
         path is kept because the truth of a vehicle standing at the vertex V at the end
         of A's segment is the next segment at offset 0: a path that went on onto it
         covered that truth, a path cut back to A's segment does not.
@@ -1856,9 +1872,10 @@ class Tracker:
                     anchor = before
                     s = -1
         seg = anchor.seg
+        run = [anchor, *chain[s + 1:]]
         if (chain[-1].t - anchor.t < STAND_S or all(c.seg == seg for c in chain[s + 1:])
                 or (s >= 0 and fixes[s].segment != seg)
-                or not self._wandering_run([anchor, *chain[s + 1:]])):
+                or not (self._wandering_run(run) or self._short_sparse_stand(run))):
             return
         view = self._view
         ax, ay = view.vx[view.sf[seg]], view.vy[view.sf[seg]]
@@ -1874,10 +1891,7 @@ class Tracker:
                 continue
             r = node.seq - seq0
             fx, fy = xy.item(r, 0), xy.item(r, 1)
-            if length2 > 0.0:
-                proj = ((fx - ax) * ux + (fy - ay) * uy) / length2
-                pos = max(pos, min(1.0, proj))
-            px, py = ax + pos * ux, ay + pos * uy
+            pos, px, py = _slide(fx, fy, ax, ay, ux, uy, length2, pos, ahead=True)
             if (px - fx) ** 2 + (py - fy) ** 2 > eps * eps:
                 return
             if fixes[k].segment == node.seg:
@@ -2033,15 +2047,51 @@ class Tracker:
                 continue
             r = node.seq - seq0
             fx, fy = xy.item(r, 0), xy.item(r, 1)
-            if length2 > 0.0:
-                proj = ((fx - ax) * ux + (fy - ay) * uy) / length2
-                pos = min(pos, max(0.0, proj))
-            px, py = ax + pos * ux, ay + pos * uy
+            pos, px, py = _slide(fx, fy, ax, ay, ux, uy, length2, pos, ahead=False)
             if (px - fx) ** 2 + (py - fy) ** 2 > eps * eps:
                 return None
             moved.append(MatchedFix(node.t, seg, pos * slen, float(px), float(py)))
         moved.reverse()
         return moved
+
+    def _short_sparse_stand(self, nodes: list[Node]) -> bool:
+        """Whether a sparse stand at the end of the log is one by the path too.
+
+        With ``MatchSettings.end_stand_sparse``, for :meth:`_end_stand`: ``nodes`` (the
+        stand's first node, then the chain's later nodes, in order, each linked to the
+        one before it) come more than ``SPARSE_S`` apart (median gap) and the committed
+        path's route from the first to the last is at most ``STAND_SIGMAS`` x
+        ``sigma_m`` long. Why: at 15-30 s between fixes a stand is two or three fixes,
+        and two fixes within 2 ``sigma_m`` of each other are as often a vehicle that went
+        round a small loop or a turning circle between them (the path then goes round
+        it: its route is the loop's length) as one that stood (the path steps a few
+        metres on, past the vertex ahead, as the GNSS error leans: the step this rule
+        takes back). The dense case is :meth:`_wandering_run`'s.
+
+        Example (fixes 30 s apart; the path steps 4 m, then goes 40 m round a loop):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "v1", MatchSettings(end_stand_sparse=True))
+            >>> a = Node(0, 1, 0.0, 0.50, 50.0, 0.0, None, (), 0.0, 0.0)
+            >>> b = Node(0, 2, 30.0, 0.54, 54.0, 0.0, a, (), 0.0, 0.0)
+            >>> c = Node(0, 3, 60.0, 0.94, 94.0, 0.0, b, (), 0.0, 0.0)
+            >>> tracker._short_sparse_stand([a, b]), tracker._short_sparse_stand([a, b, c])
+            (True, False)
+        """
+        if not self.settings.end_stand_sparse:
+            return False
+        gaps = sorted(b.t - a.t for a, b in itertools.pairwise(nodes))
+        if gaps[len(gaps) // 2] <= SPARSE_S:
+            return False
+        slen = self._view.slen
+        route = 0.0
+        for a, b in itertools.pairwise(nodes):
+            if b.seg == a.seg and not b.via:
+                route += abs(b.pos - a.pos) * slen[a.seg]
+            else:
+                route += ((1.0 - a.pos) * slen[a.seg] + sum(float(slen[v]) for v in b.via)
+                          + b.pos * slen[b.seg])
+        return route <= STAND_SIGMAS * self.settings.sigma_m
 
     def _stand_at_vertex(
         self, chain: list[Node], before: Node | None, goes_on: bool, starts: bool,
