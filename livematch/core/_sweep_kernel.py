@@ -185,6 +185,30 @@ def _before(s_a: float, c_a: float, a: int, s_b: float, c_b: float, b: int) -> b
     return a < b
 
 
+@numba.njit(cache=True, error_model="numpy", inline="always")
+def _sift_up(heap: np.ndarray, entry: np.ndarray, es: np.ndarray, ec: np.ndarray,
+             h: int, e: int) -> None:
+    """Sift entry ``e`` up the heap from position ``h``.
+
+    ``h`` is a free slot or the slot of an entry with a larger key that ``e`` replaces;
+    every entry moved keeps its ``E_HPOS`` current. Both places that add to the heap (a
+    new entry, and one that replaces its vertex's waiting entry) use it.
+    """
+    se = es[e]
+    ce = ec[e]
+    while h > 0:
+        up = (h - 1) >> 1
+        u = heap[up]
+        if _before(se, ce, e, es[u], ec[u], u):
+            heap[h] = u
+            entry[u * ENTRY_STRIDE + E_HPOS] = h
+            h = up
+        else:
+            break
+    heap[h] = e
+    entry[e * ENTRY_STRIDE + E_HPOS] = h
+
+
 @numba.njit(cache=True, error_model="numpy")
 def sweep_kernel(
     netf: np.ndarray, neti: np.ndarray, live: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray
@@ -306,19 +330,8 @@ def sweep_kernel(
             n_pushed += 1
             if entry[e * ENTRY_STRIDE + E_HPOS] != _IN_WAIT:
                 continue  # replaced by a later entry for its vertex, or already placed
-            h = n_heap
+            _sift_up(heap, entry, es, ec, n_heap, e)
             n_heap += 1
-            while h > 0:
-                up = (h - 1) >> 1
-                u = heap[up]
-                if _before(es[e], ec[e], e, es[u], ec[u], u):
-                    heap[h] = u
-                    entry[u * ENTRY_STRIDE + E_HPOS] = h
-                    h = up
-                else:
-                    break
-            heap[h] = e
-            entry[e * ENTRY_STRIDE + E_HPOS] = h
         if n_heap == 0:
             break
         e = heap[0]  # pop the smallest entry
@@ -433,17 +446,7 @@ def sweep_kernel(
                     h = entry[pend * ENTRY_STRIDE + E_HPOS]
                     entry[pend * ENTRY_STRIDE + E_HPOS] = _GONE
                     if h >= 0:
-                        while h > 0:
-                            up = (h - 1) >> 1
-                            u = heap[up]
-                            if _before(sw, ec[e], new_e, es[u], ec[u], u):
-                                heap[h] = u
-                                entry[u * ENTRY_STRIDE + E_HPOS] = h
-                                h = up
-                            else:
-                                break
-                        heap[h] = new_e
-                        entry[q + E_HPOS] = h
+                        _sift_up(heap, entry, es, ec, h, new_e)
                 for r in range(via_len):
                     via[n_via + r] = via[via_start + r]
                 via[n_via + via_len] = f
