@@ -136,8 +136,8 @@ def test_no_stand_no_change() -> None:
     assert final_answers(new_ev) == final_answers(old_ev)
 
 
-def test_the_key_is_off_by_default() -> None:
-    assert MatchSettings().stand_way_out is False
+def test_the_key_is_on_by_default() -> None:
+    assert MatchSettings().stand_way_out is True
     assert MatchSettings(stand_way_out=1).problems() == [  # type: ignore[arg-type]
         ("stand_way_out", "must be true or false, got 1")]
 
