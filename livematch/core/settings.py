@@ -475,6 +475,27 @@ class MatchSettings:
             the switch costs the sudden change of offset. Steps of at most ``gap_s`` (the
             sweep) are unchanged; so is the live score's own rescoring.
             Off by default (docs/measured.md "Session 15 (walk15)").
+        stand_way_out: where the committed path leaves a vertex V by a segment S, the
+            vehicle stood at V (the first fixes matched past V within eps of V for a
+            stand: 10 s, dense, wandering, their first 10 s within 2 ``sigma_m`` of each
+            other; the fix before them within eps of V) and the path reaches a later
+            vertex B within 120 m, another way from V to B that does not begin with S
+            is taken where it fits the fixes after the stand up to B better than the path
+            by more than one unit of the path cost's distance term; every fix from the
+            stand to B is then committed on that way where it projects (in order, each
+            within eps), the path before V and after B unchanged
+            (:mod:`livematch.core.wayout`; the certificate still holds). Why: a stand's
+            error leans as a whole for tens of seconds, and the path cost, which charges
+            each fix as independent, takes a side road out of V that the lean follows
+            and that joins the driven street again a few metres on; the stand's fixes
+            show where the vehicle was, not which road it left by, the fixes after it
+            do. Final answers and the committed path only; it cannot act where the
+            stand's fixes come more than 5 s apart (median). On by default (session
+            16): on bench/fleetmiss.py's decision runs (80 drives, seeds 31 / 77, both
+            extracts, routed trips and random walk, 1 and 5 s) it changes one cell,
+            routed trips Helsinki 1 s seed 77 (final road+dir 0.9804 -> 0.9814, +70 / -0
+            fixes, route mismatch 2.247 -> 2.207 %), and leaves the other fifteen as they
+            were (docs/measured.md "Session 16 (outofv)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -524,6 +545,7 @@ class MatchSettings:
     start_stand: bool = True
     end_stand_sparse: bool = True
     bridge_error_corr: bool = False
+    stand_way_out: bool = True
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -559,7 +581,7 @@ class MatchSettings:
                      "reverse_turns_near", "lone_reverse_turns", "hold_filtered",
                      "stand_at_vertex", "motion_step", "break_rejoin", "stand_turnback",
                      "speed_laps", "end_stand", "start_stand",
-                     "end_stand_sparse", "bridge_error_corr"):
+                     "end_stand_sparse", "bridge_error_corr", "stand_way_out"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

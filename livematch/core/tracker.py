@@ -102,6 +102,7 @@ from livematch.core.routing import connect, small_loop
 from livematch.core.settings import MatchSettings
 from livematch.core.sweep import Node, StepContext, advance
 from livematch.core.view import NetworkView, view_of
+from livematch.core.wayout import way_out_of_stand
 from livematch.errors import BadStateError
 
 STATE_FORMAT = b"LMT6"
@@ -1709,6 +1710,8 @@ class Tracker:
             chain = self._close_stand_loops(chain, before, self._eps_of(tree))
         if self.settings.stand_turnback and before is not None and len(chain) >= 3:
             chain = self._turn_back_at_stand(chain, before, self._eps_of(tree))
+        if self.settings.stand_way_out and before is not None and len(chain) >= 2:
+            chain = self._way_out_of_stand(chain, before, self._eps_of(tree))
         top = chain[-1]
         view = self._view
         first = chain[0]
@@ -2781,6 +2784,34 @@ class Tracker:
             parent = node
             prev_at = here
         return out
+
+    def _way_out_of_stand(self, chain: list[Node], before: Node, eps: float) -> list[Node]:
+        """``chain`` with the road out of a stand's vertex read from the drive-off.
+
+        Rule ``MatchSettings.stand_way_out``, :func:`livematch.core.wayout.way_out_of_stand`
+        (the rule, why, and the certificate are in that module). The tracker gives it the
+        fixes and its reading of a stand: nodes whose fixes span at least ``STAND_S``,
+        come densely and wander with the node before them (:meth:`_wandering_run`), and
+        begin with a stand (:func:`_stood_within`, ``STAND_SIGMAS`` x ``sigma_m``), as
+        :meth:`_turn_in_loop` reads one.
+        """
+        still = STAND_SIGMAS * self.settings.sigma_m
+
+        def stands(prev: Node, nodes: list[Node]) -> bool:
+            if nodes[-1].t - nodes[0].t < STAND_S or not self._wandering_run([prev, *nodes]):
+                return False
+            pts = [self._fix_xy_of(n) for n in nodes]
+            return _stood_within(pts, [n.t for n in nodes], still)
+
+        return way_out_of_stand(self._view, chain, before, eps, self.settings.sigma_m,
+                                self._logged_fix_of, stands)
+
+    def _logged_fix_of(self, node: Node) -> tuple[float, float] | None:
+        """The fix ``node`` answers, or None if it is no longer in the fix buffer."""
+        r = node.seq - self.fix_seq0
+        if 0 <= r < self.fix_n:
+            return self.fix_xy.item(r, 0), self.fix_xy.item(r, 1)
+        return None
 
     def _join_limit(self, dt: float, straight: float = math.inf) -> float:
         """Longest route (metres) that may join two committed stretches ``dt`` seconds apart.
