@@ -475,6 +475,19 @@ class MatchSettings:
             the switch costs the sudden change of offset. Steps of at most ``gap_s`` (the
             sweep) are unchanged; so is the live score's own rescoring.
             Off by default (docs/measured.md "Session 15 (walk15)").
+        stand_pace: a bridged step over more than ``gap_s`` seconds drops the pace term
+            (:func:`livematch.core.sweep.pace`) where the fixes show the vehicle standing:
+            the step itself is slower than ``livematch.core.tracker.STOOD_MPS`` (two fixes
+            30 s apart within 30 m), or the step into its first fix was (the vehicle sets
+            off from a stand). The search still reaches as far as without it; only the
+            charge goes. Why: the pace term expects each candidate to go on at the speed of
+            its own last step, so a vehicle that arrives, dwells and leaves the way it
+            came is charged twice for the dwell (once for stopping, once for setting off)
+            while a path that drives on to the next junction or dead end and back during
+            the dwell keeps its speed and is not; the bridge then prefers that path, and
+            the dwell's fixes are committed on road the vehicle never drove. The fixes
+            themselves say the vehicle stood, which the candidate's own speed cannot know
+            (docs/measured.md "Session 16 (dwell30)"). Off by default.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -524,6 +537,7 @@ class MatchSettings:
     start_stand: bool = True
     end_stand_sparse: bool = True
     bridge_error_corr: bool = False
+    stand_pace: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -559,7 +573,7 @@ class MatchSettings:
                      "reverse_turns_near", "lone_reverse_turns", "hold_filtered",
                      "stand_at_vertex", "motion_step", "break_rejoin", "stand_turnback",
                      "speed_laps", "end_stand", "start_stand",
-                     "end_stand_sparse", "bridge_error_corr"):
+                     "end_stand_sparse", "bridge_error_corr", "stand_pace"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

@@ -632,6 +632,8 @@ class Tracker:
         ``turned``: with ``reverse_turns_near``, the fixes reversed at ``prev``: a bridged
         step may turn round at the vertex ending each live state's segment near ``prev``.
         Returns the levels that started afresh with the trees they had before.
+        With ``stand_pace``, a bridged step that :func:`stand_step` calls a stand charges
+        no pace term.
 
         ``tops``: with ``newest`` >= 0, each swept level that covers fix ``next_commit``
         gets its commit point (:meth:`CandidateTree.commit_point` for ``next_commit``
@@ -646,6 +648,7 @@ class Tracker:
         chord = math.hypot(fix.x - x0, fix.y - y0)
         gap = prev is not None and (dt > s.gap_s or chord > s.gap_m)
         salvage: list[tuple[Level, CandidateTree]] = []
+        still = s.stand_pace and gap and stand_step(dt, chord, stood, s.gap_s)
         # the step scalars, written into the network's scratch (a new array costs more)
         arrays = sweep_arrays(self._view)
         step = arrays.step
@@ -696,6 +699,8 @@ class Tracker:
                                       fix.t, stood, turned)
             if step[9] != ctx.motion_cost:
                 ctx = dataclasses.replace(ctx, motion_cost=step[9])
+            if still:
+                ctx = dataclasses.replace(ctx, pace_free=True)
             nodes, rows = tree.live_nodes(self._view)
             new, how = advance(self.network, nodes, ctx, s, dt, gap=True)
             if how == "bridged":
@@ -3320,6 +3325,25 @@ def _project_on(view: NetworkView, way: list[int], w: int, low: float, x: float,
         if best is None or d < best[0]:
             best = (d, (m, pos, px, py))
     return None if best is None else best[1]
+
+
+def stand_step(dt: float, chord: float, stood: bool, gap_s: float) -> bool:
+    """Whether a step of ``dt`` seconds and ``chord`` metres shows a stand (``stand_pace``).
+
+    True for a step longer than ``gap_s`` (a sparse feed's step, always bridged) that is
+    itself slower than ``STOOD_MPS`` (the vehicle stood through it, or turned round where
+    it stood and came back a little) or that leaves a stand (``stood``: the step into its
+    first fix was that slow). Then no candidate's own last speed says how far it went:
+    the fixes say it stood. At 1-10 s between fixes a stand is seen fix by fix and the
+    step is not bridged unless its window died, so only gaps count there.
+
+    Example (30 s steps: 12 m is a stand, 200 m is not, unless it leaves a stand):
+        >>> stand_step(30.0, 12.0, False, 10.0), stand_step(30.0, 200.0, False, 10.0)
+        (True, False)
+        >>> stand_step(30.0, 200.0, True, 10.0), stand_step(5.0, 1.0, True, 10.0)
+        (True, False)
+    """
+    return dt > gap_s and (stood or chord < STOOD_MPS * dt)
 
 
 def _step_dir(prev: tuple[float, float, float], fix: Fix) -> float:
