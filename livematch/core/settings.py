@@ -480,14 +480,17 @@ class MatchSettings:
             the step itself is slower than ``livematch.core.tracker.STOOD_MPS`` (two fixes
             30 s apart within 30 m), or the step into its first fix was (the vehicle sets
             off from a stand). The search still reaches as far as without it; only the
-            charge goes. Why: the pace term expects each candidate to go on at the speed of
-            its own last step, so a vehicle that arrives, dwells and leaves the way it
-            came is charged twice for the dwell (once for stopping, once for setting off)
-            while a path that drives on to the next junction or dead end and back during
-            the dwell keeps its speed and is not; the bridge then prefers that path, and
-            the dwell's fixes are committed on road the vehicle never drove. The fixes
-            themselves say the vehicle stood, which the candidate's own speed cannot know
-            (docs/measured.md "Session 16 (dwell30)"). Off by default.
+            charge goes. A step slower than that may also turn round at any vertex (with
+            ``stop_turns``, charged ``street_turn_cost`` where the network has no U-turn),
+            as the step out of a stand already may: a van turns round where it dwelt,
+            while it stands. Why: the pace term expects each candidate to go on at the
+            speed of its own last step, so a vehicle that arrives, dwells and leaves the
+            way it came is charged twice for the dwell (once for stopping, once for
+            setting off) while a path that drives on to the next junction or dead end and
+            back during the dwell keeps its speed and is not; the bridge then prefers
+            that path, and the dwell's fixes are committed on road the vehicle never
+            drove. The fixes themselves say the vehicle stood, which the candidate's own
+            speed cannot know (docs/measured.md "Session 16 (dwell30)"). Off by default.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)

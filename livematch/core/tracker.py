@@ -633,7 +633,7 @@ class Tracker:
         step may turn round at the vertex ending each live state's segment near ``prev``.
         Returns the levels that started afresh with the trees they had before.
         With ``stand_pace``, a bridged step that :func:`stand_step` calls a stand charges
-        no pace term.
+        no pace term and may turn round at any vertex as ``stood`` lets it.
 
         ``tops``: with ``newest`` >= 0, each swept level that covers fix ``next_commit``
         gets its commit point (:meth:`CandidateTree.commit_point` for ``next_commit``
@@ -696,11 +696,13 @@ class Tracker:
                     continue
             # the window died (or the step is a gap): bridge, else start afresh
             ctx = StepContext.between(self._view, s, level.eps, x0, y0, fix.x, fix.y, seq,
-                                      fix.t, stood, turned)
+                                      fix.t, stood or still, turned)
             if step[9] != ctx.motion_cost:
                 ctx = dataclasses.replace(ctx, motion_cost=step[9])
             if still:
-                ctx = dataclasses.replace(ctx, pace_free=True)
+                # (a step that itself stood turns round where it stood at no extra charge)
+                ctx = dataclasses.replace(ctx, pace_free=True, street_turn_cost=(
+                    0.0 if chord < STOOD_MPS * dt else ctx.street_turn_cost))
             nodes, rows = tree.live_nodes(self._view)
             new, how = advance(self.network, nodes, ctx, s, dt, gap=True)
             if how == "bridged":
