@@ -475,22 +475,23 @@ class MatchSettings:
             the switch costs the sudden change of offset. Steps of at most ``gap_s`` (the
             sweep) are unchanged; so is the live score's own rescoring.
             Off by default (docs/measured.md "Session 15 (walk15)").
-        stand_pace: a bridged step over more than ``gap_s`` seconds drops the pace term
-            (:func:`livematch.core.sweep.pace`) where the fixes show the vehicle standing:
-            the step itself is slower than ``livematch.core.tracker.STOOD_MPS`` (two fixes
-            30 s apart within 30 m), or the step into its first fix was (the vehicle sets
-            off from a stand). The search still reaches as far as without it; only the
-            charge goes. A step slower than that may also turn round at any vertex (with
-            ``stop_turns``, charged ``street_turn_cost`` where the network has no U-turn),
-            as the step out of a stand already may: a van turns round where it dwelt,
-            while it stands. Why: the pace term expects each candidate to go on at the
-            speed of its own last step, so a vehicle that arrives, dwells and leaves the
-            way it came is charged twice for the dwell (once for stopping, once for
-            setting off) while a path that drives on to the next junction or dead end and
-            back during the dwell keeps its speed and is not; the bridge then prefers
-            that path, and the dwell's fixes are committed on road the vehicle never
-            drove. The fixes themselves say the vehicle stood, which the candidate's own
-            speed cannot know (docs/measured.md "Session 16 (dwell30)"). Off by default.
+        stand_pace: in a bridged step over more than ``gap_s`` seconds whose two fixes
+            lie within 2 ``sigma_m`` of each other (the vehicle stood through the step;
+            :func:`livematch.core.tracker.stand_step`), the pace term
+            (:func:`livematch.core.sweep.pace`) charges nothing (the search still reaches
+            as far as without it), and the step may turn round at a vertex within eps
+            of its first fix, charged ``turn_back_cost`` only, without
+            ``street_turn_cost`` (where ``stop_turns`` has not already opened every
+            vertex, which keeps its charge). Why: at 30 s between fixes a van that
+            arrives, dwells in the middle of a road and leaves the way it came is
+            committed as driving on to the next junction or dead end and back during the
+            dwell, on road it never drove: the pace term expects each candidate to go on
+            at its own last speed (so standing costs and the trip does not), and no turn
+            is open where it stood until the step after a slow one. The HMM peer, which
+            charges no U-turn and no pace, has those fixes right (docs/measured.md
+            "Session 15 (hmm30)"). Off by default: on the decision runs it gained on one
+            routed-trips seed and lost on the other (docs/measured.md "Session 16
+            (dwell30)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)

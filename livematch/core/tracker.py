@@ -633,7 +633,8 @@ class Tracker:
         step may turn round at the vertex ending each live state's segment near ``prev``.
         Returns the levels that started afresh with the trees they had before.
         With ``stand_pace``, a bridged step that :func:`stand_step` calls a stand charges
-        no pace term and may turn round at any vertex as ``stood`` lets it.
+        no pace term and may turn round at a vertex within eps of ``prev`` without the
+        street charge (unless ``stood`` opened every vertex already).
 
         ``tops``: with ``newest`` >= 0, each swept level that covers fix ``next_commit``
         gets its commit point (:meth:`CandidateTree.commit_point` for ``next_commit``
@@ -648,7 +649,8 @@ class Tracker:
         chord = math.hypot(fix.x - x0, fix.y - y0)
         gap = prev is not None and (dt > s.gap_s or chord > s.gap_m)
         salvage: list[tuple[Level, CandidateTree]] = []
-        still = s.stand_pace and gap and stand_step(dt, chord, stood, s.gap_s)
+        still = s.stand_pace and gap and stand_step(dt, chord, s.gap_s,
+                                                    STAND_SIGMAS * s.sigma_m)
         # the step scalars, written into the network's scratch (a new array costs more)
         arrays = sweep_arrays(self._view)
         step = arrays.step
@@ -696,13 +698,16 @@ class Tracker:
                     continue
             # the window died (or the step is a gap): bridge, else start afresh
             ctx = StepContext.between(self._view, s, level.eps, x0, y0, fix.x, fix.y, seq,
-                                      fix.t, stood or still, turned)
+                                      fix.t, stood, turned)
             if step[9] != ctx.motion_cost:
                 ctx = dataclasses.replace(ctx, motion_cost=step[9])
-            if still:
-                # (a step that itself stood turns round where it stood at no extra charge)
-                ctx = dataclasses.replace(ctx, pace_free=True, street_turn_cost=(
-                    0.0 if chord < STOOD_MPS * dt else ctx.street_turn_cost))
+            if still and not ctx.street_turns:
+                # a step that stood may turn round where it stood (at a vertex within eps
+                # of its first fix, as turn_near opens) with no street charge
+                ctx = dataclasses.replace(ctx, pace_free=True, turn_near=True,
+                                          street_turn_cost=0.0)
+            elif still:
+                ctx = dataclasses.replace(ctx, pace_free=True)
             nodes, rows = tree.live_nodes(self._view)
             new, how = advance(self.network, nodes, ctx, s, dt, gap=True)
             if how == "bridged":
@@ -3329,23 +3334,22 @@ def _project_on(view: NetworkView, way: list[int], w: int, low: float, x: float,
     return None if best is None else best[1]
 
 
-def stand_step(dt: float, chord: float, stood: bool, gap_s: float) -> bool:
+def stand_step(dt: float, chord: float, gap_s: float, radius: float) -> bool:
     """Whether a step of ``dt`` seconds and ``chord`` metres shows a stand (``stand_pace``).
 
-    True for a step longer than ``gap_s`` (a sparse feed's step, always bridged) that is
-    itself slower than ``STOOD_MPS`` (the vehicle stood through it, or turned round where
-    it stood and came back a little) or that leaves a stand (``stood``: the step into its
-    first fix was that slow). Then no candidate's own last speed says how far it went:
-    the fixes say it stood. At 1-10 s between fixes a stand is seen fix by fix and the
-    step is not bridged unless its window died, so only gaps count there.
+    True for a step longer than ``gap_s`` (a sparse feed's step, always bridged) whose
+    two fixes lie within ``radius`` of each other (2 ``sigma_m``: within GNSS noise; the
+    vehicle stood through the step, or turned round where it stood). At 1-10 s between
+    fixes a stand is seen fix by fix and the step is not bridged unless its window died,
+    so only gaps count there.
 
-    Example (30 s steps: 12 m is a stand, 200 m is not, unless it leaves a stand):
-        >>> stand_step(30.0, 12.0, False, 10.0), stand_step(30.0, 200.0, False, 10.0)
+    Example (30 s steps: 8 m is a stand, 25 m is not; nor is a 5 s step):
+        >>> stand_step(30.0, 8.0, 10.0, 10.0), stand_step(30.0, 25.0, 10.0, 10.0)
         (True, False)
-        >>> stand_step(30.0, 200.0, True, 10.0), stand_step(5.0, 1.0, True, 10.0)
-        (True, False)
+        >>> stand_step(5.0, 1.0, 10.0, 10.0)
+        False
     """
-    return dt > gap_s and (stood or chord < STOOD_MPS * dt)
+    return dt > gap_s and chord <= radius
 
 
 def _step_dir(prev: tuple[float, float, float], fix: Fix) -> float:
