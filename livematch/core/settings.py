@@ -496,6 +496,23 @@ class MatchSettings:
             routed trips Helsinki 1 s seed 77 (final road+dir 0.9804 -> 0.9814, +70 / -0
             fixes, route mismatch 2.247 -> 2.207 %), and leaves the other fifteen as they
             were (docs/measured.md "Session 16 (outofv)").
+        stand_pace: in a bridged step over more than ``gap_s`` seconds whose two fixes
+            lie within 2 ``sigma_m`` of each other (the vehicle stood through the step;
+            :func:`livematch.core.tracker.stand_step`), the pace term
+            (:func:`livematch.core.sweep.pace`) charges nothing (the search still reaches
+            as far as without it), and the step may turn round at a vertex within eps
+            of its first fix, charged ``turn_back_cost`` only, without
+            ``street_turn_cost`` (where ``stop_turns`` has not already opened every
+            vertex, which keeps its charge). Why: at 30 s between fixes a van that
+            arrives, dwells in the middle of a road and leaves the way it came is
+            committed as driving on to the next junction or dead end and back during the
+            dwell, on road it never drove: the pace term expects each candidate to go on
+            at its own last speed (so standing costs and the trip does not), and no turn
+            is open where it stood until the step after a slow one. The HMM peer, which
+            charges no U-turn and no pace, has those fixes right (docs/measured.md
+            "Session 15 (hmm30)"). Off by default: on the decision runs it gained on one
+            routed-trips seed and lost on the other (docs/measured.md "Session 16
+            (dwell30)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -546,6 +563,7 @@ class MatchSettings:
     end_stand_sparse: bool = True
     bridge_error_corr: bool = False
     stand_way_out: bool = True
+    stand_pace: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -581,7 +599,8 @@ class MatchSettings:
                      "reverse_turns_near", "lone_reverse_turns", "hold_filtered",
                      "stand_at_vertex", "motion_step", "break_rejoin", "stand_turnback",
                      "speed_laps", "end_stand", "start_stand",
-                     "end_stand_sparse", "bridge_error_corr", "stand_way_out"):
+                     "end_stand_sparse", "bridge_error_corr", "stand_way_out",
+                     "stand_pace"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

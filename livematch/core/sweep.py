@@ -115,6 +115,9 @@ class StepContext:
     street_turn_cost: float = 0.0
     turn_near: bool = False
     error_rho: float = 0.0
+    # the pace term charges nothing in this step (MatchSettings.stand_pace: the fixes
+    # show a stand); pace_cost still sets how far the search reaches (bridge_reach)
+    pace_free: bool = False
 
     @classmethod
     def between(
@@ -422,7 +425,8 @@ def bridge_step(
     # one call for every search, answering for the targets only (each entered by a route
     # that may turn into it: U-turns only where the network allows them)
     found = search(view, searches, limit, targets, ctx.street_turns)
-    paces = [pace(view, n, ctx.t) for n in nodes] if ctx.pace_cost > 0.0 else [-1.0] * len(nodes)
+    paced = ctx.pace_cost > 0.0 and not ctx.pace_free
+    paces = [pace(view, n, ctx.t) for n in nodes] if paced else [-1.0] * len(nodes)
     new: dict[int, Node] = {}
     for k, seg in enumerate(targets):
         a = view.sf[seg]
@@ -434,7 +438,7 @@ def bridge_step(
         same = live.get(seg)
         if same is not None and hi >= same.pos:
             _offer(new, ctx, seg, max(lo, same.pos), hi, same, (), same.pos,
-                   pace(view, same, ctx.t) if ctx.pace_cost > 0.0 else -1.0)
+                   pace(view, same, ctx.t) if paced else -1.0)
         for arrivals, (_, shift) in zip(found, searches, strict=True):
             r = arrivals[k]
             if r is None or r.dist - shift[r.source] + lo * view.slen[seg] > limit:

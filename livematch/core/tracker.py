@@ -633,6 +633,9 @@ class Tracker:
         ``turned``: with ``reverse_turns_near``, the fixes reversed at ``prev``: a bridged
         step may turn round at the vertex ending each live state's segment near ``prev``.
         Returns the levels that started afresh with the trees they had before.
+        With ``stand_pace``, a bridged step that :func:`stand_step` calls a stand charges
+        no pace term and may turn round at a vertex within eps of ``prev`` without the
+        street charge (unless ``stood`` opened every vertex already).
 
         ``tops``: with ``newest`` >= 0, each swept level that covers fix ``next_commit``
         gets its commit point (:meth:`CandidateTree.commit_point` for ``next_commit``
@@ -647,6 +650,8 @@ class Tracker:
         chord = math.hypot(fix.x - x0, fix.y - y0)
         gap = prev is not None and (dt > s.gap_s or chord > s.gap_m)
         salvage: list[tuple[Level, CandidateTree]] = []
+        still = s.stand_pace and gap and stand_step(dt, chord, s.gap_s,
+                                                    STAND_SIGMAS * s.sigma_m)
         # the step scalars, written into the network's scratch (a new array costs more)
         arrays = sweep_arrays(self._view)
         step = arrays.step
@@ -697,6 +702,13 @@ class Tracker:
                                       fix.t, stood, turned)
             if step[9] != ctx.motion_cost:
                 ctx = dataclasses.replace(ctx, motion_cost=step[9])
+            if still and not ctx.street_turns:
+                # a step that stood may turn round where it stood (at a vertex within eps
+                # of its first fix, as turn_near opens) with no street charge
+                ctx = dataclasses.replace(ctx, pace_free=True, turn_near=True,
+                                          street_turn_cost=0.0)
+            elif still:
+                ctx = dataclasses.replace(ctx, pace_free=True)
             nodes, rows = tree.live_nodes(self._view)
             new, how = advance(self.network, nodes, ctx, s, dt, gap=True)
             if how == "bridged":
@@ -3351,6 +3363,24 @@ def _project_on(view: NetworkView, way: list[int], w: int, low: float, x: float,
         if best is None or d < best[0]:
             best = (d, (m, pos, px, py))
     return None if best is None else best[1]
+
+
+def stand_step(dt: float, chord: float, gap_s: float, radius: float) -> bool:
+    """Whether a step of ``dt`` seconds and ``chord`` metres shows a stand (``stand_pace``).
+
+    True for a step longer than ``gap_s`` (a sparse feed's step, always bridged) whose
+    two fixes lie within ``radius`` of each other (2 ``sigma_m``: within GNSS noise; the
+    vehicle stood through the step, or turned round where it stood). At 1-10 s between
+    fixes a stand is seen fix by fix and the step is not bridged unless its window died,
+    so only gaps count there.
+
+    Example (30 s steps: 8 m is a stand, 25 m is not; nor is a 5 s step):
+        >>> stand_step(30.0, 8.0, 10.0, 10.0), stand_step(30.0, 25.0, 10.0, 10.0)
+        (True, False)
+        >>> stand_step(5.0, 1.0, 10.0, 10.0)
+        False
+    """
+    return dt > gap_s and chord <= radius
 
 
 def _step_dir(prev: tuple[float, float, float], fix: Fix) -> float:
