@@ -475,6 +475,16 @@ class MatchSettings:
             the switch costs the sudden change of offset. Steps of at most ``gap_s`` (the
             sweep) are unchanged; so is the live score's own rescoring.
             Off by default (docs/measured.md "Session 15 (walk15)").
+        bridge_error_cross: as ``bridge_error_corr``, but the offsets are correlated
+            across the road only: the new offset's part across its segment is charged
+            given the parent's offset across the parent's own segment, and its part
+            along the segment (where a clamped matched point sits off the fix's
+            projection, at a junction) keeps the independent term
+            (:func:`livematch.core.sweep._cross_term`). Why: near a vertex the 2-D offset
+            of ``bridge_error_corr`` is a distance to the vertex, so the term reshuffled
+            junction answers both ways; the lean towards a road alongside is across the
+            road. Takes precedence over ``bridge_error_corr``. Off by default
+            (docs/measured.md "Session 16 (walkloop)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -524,6 +534,7 @@ class MatchSettings:
     start_stand: bool = True
     end_stand_sparse: bool = True
     bridge_error_corr: bool = False
+    bridge_error_cross: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -559,7 +570,7 @@ class MatchSettings:
                      "reverse_turns_near", "lone_reverse_turns", "hold_filtered",
                      "stand_at_vertex", "motion_step", "break_rejoin", "stand_turnback",
                      "speed_laps", "end_stand", "start_stand",
-                     "end_stand_sparse", "bridge_error_corr"):
+                     "end_stand_sparse", "bridge_error_corr", "bridge_error_cross"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

@@ -115,6 +115,7 @@ class StepContext:
     street_turn_cost: float = 0.0
     turn_near: bool = False
     error_rho: float = 0.0
+    error_cross: bool = False
 
     @classmethod
     def between(
@@ -192,7 +193,9 @@ def _offer(
     ex = mx - ctx.x1
     ey = my - ctx.y1
     rho = ctx.error_rho
-    if rho > 0.0 and parent is not None:
+    if rho > 0.0 and parent is not None and ctx.error_cross:
+        cost = _cross_term(view, ctx, parent, ex, ey, dx, dy, length2)
+    elif rho > 0.0 and parent is not None:
         # correlated error (settings.bridge_error_corr): charge the part of this offset
         # that the parent's offset at p0 does not explain (AR(1), rho = exp(-dt / tau))
         ex -= rho * (parent.x - ctx.x0)
@@ -245,6 +248,50 @@ def _offer(
         node.parent = parent
         node.via = via
         node.cost = cost
+
+
+def _cross_term(
+    view: NetworkView, ctx: StepContext, parent: Node, ex: float, ey: float,
+    dx: float, dy: float, length2: float,
+) -> float:
+    """The distance term of ``settings.bridge_error_cross``: correlated across the road only.
+
+    The offset e1 = (ex, ey) of the matched point from the new fix splits into its part
+    across the new segment (c1, along the segment's left normal) and along it (a1,
+    non-zero only where the matched point is clamped to an end or to the reachable part).
+    The parent's offset at p0 counts only by its part across the parent's own segment
+    (c0 n0): that is the GNSS lean a road alongside would exploit, while where along
+    the road, or where on a junction, the parent's matched point sat is the path's own
+    choice, not the error's. Projected on the new segment's normal that vector is
+    k c0 with k = t0 . t1 (rotating both unit tangents by 90 degrees keeps their dot
+    product; a twin parent has k = -1, its left side being the new segment's right).
+    The parent's part along its own segment is treated as unobserved, of variance
+    sigma^2, so under first-order Gauss-Markov error with correlation rho the part
+    across the new segment given c0 is normal with mean rho k c0 and variance
+    sigma^2 (1 - rho^2 k^2). The term is (a1^2 + (c1 - rho k c0)^2 / (1 - rho^2 k^2))
+    / (2 sigma^2): the full conditional between parallel segments, the independent
+    term between perpendicular ones, and the independent term along the road. A
+    segment of no length keeps the independent term.
+    """
+    rho = ctx.error_rho
+    a0 = view.sf[parent.seg]
+    b0 = view.st[parent.seg]
+    px = view.vx[b0] - view.vx[a0]
+    py = view.vy[b0] - view.vy[a0]
+    l0 = math.sqrt(px * px + py * py)
+    if length2 <= 0.0 or l0 <= 0.0:
+        return (ex * ex + ey * ey) * ctx.inv_two_sigma2
+    l1 = math.sqrt(length2)
+    t1x = dx / l1
+    t1y = dy / l1
+    t0x = px / l0
+    t0y = py / l0
+    c1 = ey * t1x - ex * t1y
+    a1 = ex * t1x + ey * t1y
+    c0 = (parent.y - ctx.y0) * t0x - (parent.x - ctx.x0) * t0y
+    k = t0x * t1x + t0y * t1y
+    w = c1 - rho * k * c0
+    return (a1 * a1 + w * w / (1.0 - rho * rho * k * k)) * ctx.inv_two_sigma2
 
 
 def sweep_step(live: dict[int, Node], ctx: StepContext) -> dict[int, Node]:
@@ -510,8 +557,10 @@ def advance(
     if live:
         limit = min(settings.bridge_speed_mps * dt, bridge_reach(live, ctx, settings)) \
             + 2.0 * ctx.eps
-        if settings.bridge_error_corr and settings.error_tau_s > 0.0 and dt > settings.gap_s:
-            ctx = replace(ctx, error_rho=math.exp(-dt / settings.error_tau_s))
+        if ((settings.bridge_error_corr or settings.bridge_error_cross)
+                and settings.error_tau_s > 0.0 and dt > settings.gap_s):
+            ctx = replace(ctx, error_rho=math.exp(-dt / settings.error_tau_s),
+                          error_cross=settings.bridge_error_cross)
         new = bridge_step(network, live, ctx, limit)
         if new:
             return new, "bridged"
