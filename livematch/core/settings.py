@@ -485,6 +485,19 @@ class MatchSettings:
             junction answers both ways; the lean towards a road alongside is across the
             road. Takes precedence over ``bridge_error_corr``. Off by default
             (docs/measured.md "Session 16 (walkloop)").
+        speed_pace_m: where the new fix reports its speed over ground (the optional
+            ``speed`` of a position message) and the step from the fix before is longer
+            than ``gap_s``, the bridged step's pace term expects, for every candidate,
+            the route that speed drives in the step (speed times the time between the
+            fixes) instead of the candidate's own last speed, and charges the difference
+            at one unit per this many metres (0, the default, leaves the pace term as it
+            is). Why: at 15 s between fixes a vehicle circling a small loop of perimeter
+            P at d metres per step, P/2 < d < P, puts its fixes where the other
+            direction round the loop puts them at P - d per step, a shorter route the
+            route-against-chord term prefers at every step; each candidate's own pace is
+            self-consistent either way, so only a speed that does not come from the
+            path can tell the two apart (docs/measured.md "Session 16 (walkloop)").
+            The detour bound of the step is raised to that route where it is longer.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -535,6 +548,7 @@ class MatchSettings:
     end_stand_sparse: bool = True
     bridge_error_corr: bool = False
     bridge_error_cross: bool = False
+    speed_pace_m: float = 0.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -560,7 +574,7 @@ class MatchSettings:
             out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
         for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s",
                      "spike_cost", "street_turn_cost", "join_detour", "live_keep",
-                     "live_keep_stand_s", "stand_short_m"):
+                     "live_keep_stand_s", "stand_short_m", "speed_pace_m"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))

@@ -116,6 +116,7 @@ class StepContext:
     turn_near: bool = False
     error_rho: float = 0.0
     error_cross: bool = False
+    speed_route: float = -1.0
 
     @classmethod
     def between(
@@ -469,7 +470,14 @@ def bridge_step(
     # one call for every search, answering for the targets only (each entered by a route
     # that may turn into it: U-turns only where the network allows them)
     found = search(view, searches, limit, targets, ctx.street_turns)
-    paces = [pace(view, n, ctx.t) for n in nodes] if ctx.pace_cost > 0.0 else [-1.0] * len(nodes)
+    if ctx.speed_route >= 0.0:
+        # the fixes' own speed over ground (settings.speed_pace_m): one expected route
+        # for every candidate, whatever speed its own path implies
+        paces = [ctx.speed_route] * len(nodes)
+    elif ctx.pace_cost > 0.0:
+        paces = [pace(view, n, ctx.t) for n in nodes]
+    else:
+        paces = [-1.0] * len(nodes)
     new: dict[int, Node] = {}
     for k, seg in enumerate(targets):
         a = view.sf[seg]
@@ -481,7 +489,8 @@ def bridge_step(
         same = live.get(seg)
         if same is not None and hi >= same.pos:
             _offer(new, ctx, seg, max(lo, same.pos), hi, same, (), same.pos,
-                   pace(view, same, ctx.t) if ctx.pace_cost > 0.0 else -1.0)
+                   ctx.speed_route if ctx.speed_route >= 0.0
+                   else pace(view, same, ctx.t) if ctx.pace_cost > 0.0 else -1.0)
         for arrivals, (_, shift) in zip(found, searches, strict=True):
             r = arrivals[k]
             if r is None or r.dist - shift[r.source] + lo * view.slen[seg] > limit:
@@ -523,6 +532,8 @@ def bridge_reach(live: dict[int, Node], ctx: StepContext, settings: MatchSetting
         250.0
     """
     detour = settings.detour_factor * ctx.chord + settings.gap_m
+    if ctx.speed_route > detour:  # settings.speed_pace_m: the route the speed predicts
+        detour = ctx.speed_route
     if settings.pace_reach and ctx.pace_cost > 0.0:
         for node in live.values():
             expect = pace(ctx.view, node, ctx.t)

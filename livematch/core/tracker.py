@@ -696,6 +696,10 @@ class Tracker:
                                       fix.t, stood, turned)
             if step[9] != ctx.motion_cost:
                 ctx = dataclasses.replace(ctx, motion_cost=step[9])
+            if s.speed_pace_m > 0.0 and fix.speed is not None and dt > s.gap_s:
+                # the distance driven from the reported speed (MatchSettings.speed_pace_m)
+                ctx = dataclasses.replace(ctx, speed_route=fix.speed * dt,
+                                          pace_cost=1.0 / s.speed_pace_m)
             nodes, rows = tree.live_nodes(self._view)
             new, how = advance(self.network, nodes, ctx, s, dt, gap=True)
             if how == "bridged":
