@@ -491,8 +491,11 @@ class MatchSettings:
             the route that speed drives in the step (speed times the time between the
             fixes) instead of the candidate's own last speed, and charges the difference
             at one unit per this many metres (0, the default, leaves the pace term as it
-            is). Why: at 15 s between fixes a vehicle circling a small loop of perimeter
-            P at d metres per step, P/2 < d < P, puts its fixes where the other
+            is). The route is the mean of the two fixes' speeds times the time between
+            them (the trapezoid rule) where the fix before reported one too, else the new
+            fix's speed alone (also in the spike test's step that leaves a fix out).
+            Why: at 15 s between fixes a vehicle circling a small loop of perimeter P at
+            d metres per step, P/2 < d < P, puts its fixes where the other
             direction round the loop puts them at P - d per step, a shorter route the
             route-against-chord term prefers at every step; each candidate's own pace is
             self-consistent either way, so only a speed that does not come from the
