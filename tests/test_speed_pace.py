@@ -1,5 +1,5 @@
-"""``speed_pace_m``: a bridged step's pace term expects the route the fix's reported
-speed over ground drives in the step.
+"""``speed_pace_m``: a bridged step's route is charged for falling short of the least
+distance the fixes' reported speeds over ground say was driven.
 
 Invented data: a two-way rectangular ring 29 m by 16 m (90 m round) joined at its
 corner (0, 0) to a two-way approach road from the west. A vehicle comes east at 5 m/s,
@@ -103,8 +103,9 @@ def _reverse_on_ring(finals: list[MatchedFix], on_ring: list[bool]) -> int:
 @pytest.mark.parametrize("seed", [1, 2, 3])
 def test_reported_speed_tells_the_way_round(seed: int) -> None:
     """Without the rule most ring fixes are answered going round the other way (measured:
-    all 20 of 20 with seeds 1-3); with it (5 m a unit) at most a few are (measured: none).
-    The default pace term at 5 m a unit, fed each candidate's own speed, does not help."""
+    all 20 of 20 with seeds 1-3); with it (5 m a unit) at most a few are (measured: 0, 1,
+    0). The default pace term at 5 m a unit, fed each candidate's own speed, does not
+    help; nor does the rule at 10 m a unit (``beta_m``: the two terms cancel)."""
     fixes, on_ring = _drive(15.0, seed)
     plain = _finals(MatchSettings(), fixes)
     rule = _finals(MatchSettings(speed_pace_m=5.0), fixes)

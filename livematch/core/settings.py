@@ -487,13 +487,16 @@ class MatchSettings:
             (docs/measured.md "Session 16 (walkloop)").
         speed_pace_m: where the new fix reports its speed over ground (the optional
             ``speed`` of a position message) and the step from the fix before is longer
-            than ``gap_s``, the bridged step's pace term expects, for every candidate,
-            the route that speed drives in the step (speed times the time between the
-            fixes) instead of the candidate's own last speed, and charges the difference
-            at one unit per this many metres (0, the default, leaves the pace term as it
-            is). The route is the mean of the two fixes' speeds times the time between
-            them (the trapezoid rule) where the fix before reported one too, else the new
-            fix's speed alone (also in the spike test's step that leaves a fix out).
+            than ``gap_s``, the bridged step's pace term, for every candidate, charges a
+            route only for falling short of the least distance the speeds say was driven
+            (0.8 times the slower of the two fixes' speeds times the time between them;
+            the new fix's speed where the fix before reported none, and in the spike
+            test's step that leaves a fix out), at one unit per this many metres, instead
+            of comparing the route with the candidate's own last speed (0, the default,
+            leaves the pace term as it is). One-sided and from the slower end: a vehicle
+            that stopped or slowed within the step drove less than either speed says,
+            and must not be pulled round a block (the two-sided trapezoid lost up to 4
+            points at 30 s).
             Why: at 15 s between fixes a vehicle circling a small loop of perimeter P at
             d metres per step, P/2 < d < P, puts its fixes where the other
             direction round the loop puts them at P - d per step, a shorter route the

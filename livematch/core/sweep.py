@@ -228,7 +228,12 @@ def _offer(
                 street += not ok[head[prev]]
             cost += turns * ctx.turn_back_cost + street * ctx.street_turn_cost
         cost += parent.cost + abs(route - ctx.chord) * ctx.inv_beta
-        if expect >= 0.0:
+        if ctx.speed_route >= 0.0:
+            # settings.speed_pace_m: only a route shorter than the reported speeds'
+            # least distance driven is charged
+            if route < expect:
+                cost += (expect - route) * ctx.pace_cost
+        elif expect >= 0.0:
             cost += abs(route - expect) * ctx.pace_cost
         if ctx.motion_cost > 0.0:
             # The matched point should move as the fixes moved: consecutive GNSS errors
@@ -471,7 +476,7 @@ def bridge_step(
     # that may turn into it: U-turns only where the network allows them)
     found = search(view, searches, limit, targets, ctx.street_turns)
     if ctx.speed_route >= 0.0:
-        # the fixes' own speed over ground (settings.speed_pace_m): one expected route
+        # the fixes' own speed over ground (settings.speed_pace_m): one least route
         # for every candidate, whatever speed its own path implies
         paces = [ctx.speed_route] * len(nodes)
     elif ctx.pace_cost > 0.0:

@@ -191,6 +191,11 @@ _NO_FIXES = np.empty((0, 2))  # shared by trackers that have seen no fix (never 
 # to -1.8 points; alone, random walk seed 31 at 30 s: +0.2 / +0.5 points (Helsinki /
 # test). 35 s keeps a 30 s feed with late fixes in the test.
 SPIKE_MIN_S = 5.0
+# With MatchSettings.speed_pace_m, a bridged step's route is charged for falling short of
+# this share of the slower end's reported speed times the step's time: a fifth of slack
+# for the speed changing over the step and the answers' error along the road (as
+# speed_laps' shortfall, LAP_SLACK; chosen by judgement, not tuned).
+SPEED_FLOOR_SHARE = 0.8
 SPIKE_MAX_S = 35.0
 # The time spanned by the two steps around a tested fix at which its charge is
 # MatchSettings.spike_cost (it scales in proportion).
@@ -704,10 +709,10 @@ class Tracker:
             if step[9] != ctx.motion_cost:
                 ctx = dataclasses.replace(ctx, motion_cost=step[9])
             if s.speed_pace_m > 0.0 and fix.speed is not None and dt > s.gap_s:
-                # the distance driven from the reported speeds (MatchSettings.speed_pace_m):
-                # the trapezoid rule over the step where both ends report one
-                v = fix.speed if came_v is None else 0.5 * (fix.speed + came_v)
-                ctx = dataclasses.replace(ctx, speed_route=v * dt,
+                # the least distance driven from the reported speeds
+                # (MatchSettings.speed_pace_m): the slower end's speed, less slack
+                v = fix.speed if came_v is None else min(fix.speed, came_v)
+                ctx = dataclasses.replace(ctx, speed_route=SPEED_FLOOR_SHARE * v * dt,
                                           pace_cost=1.0 / s.speed_pace_m)
             nodes, rows = tree.live_nodes(self._view)
             new, how = advance(self.network, nodes, ctx, s, dt, gap=True)
