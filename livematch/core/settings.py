@@ -496,7 +496,9 @@ class MatchSettings:
             leaves the pace term as it is). One-sided and from the slower end: a vehicle
             that stopped or slowed within the step drove less than either speed says,
             and must not be pulled round a block (the two-sided trapezoid lost up to 4
-            points at 30 s).
+            points at 30 s). Off by default: on the decision runs (speeds reported with
+            0.2 m/s error) it gains every random-walk 15 s cell run but loses at 30 s and
+            on routed trips at Helsinki 15 s (docs/measured.md "Session 16 (walkloop)").
             Why: at 15 s between fixes a vehicle circling a small loop of perimeter P at
             d metres per step, P/2 < d < P, puts its fixes where the other
             direction round the loop puts them at P - d per step, a shorter route the
