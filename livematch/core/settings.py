@@ -513,6 +513,37 @@ class MatchSettings:
             "Session 15 (hmm30)"). Off by default: on the decision runs it gained on one
             routed-trips seed and lost on the other (docs/measured.md "Session 16
             (dwell30)").
+        bridge_error_cross: as ``bridge_error_corr``, but the offsets are correlated
+            across the road only: the new offset's part across its segment is charged
+            given the parent's offset across the parent's own segment, and its part
+            along the segment (where a clamped matched point sits off the fix's
+            projection, at a junction) keeps the independent term
+            (:func:`livematch.core.sweep._cross_term`). Why: near a vertex the 2-D offset
+            of ``bridge_error_corr`` is a distance to the vertex, so the term reshuffled
+            junction answers both ways; the lean towards a road alongside is across the
+            road. Takes precedence over ``bridge_error_corr``. Off by default
+            (docs/measured.md "Session 16 (walkloop)").
+        speed_pace_m: where the new fix reports its speed over ground (the optional
+            ``speed`` of a position message) and the step from the fix before is longer
+            than ``gap_s``, the bridged step's pace term, for every candidate, charges a
+            route only for falling short of the least distance the speeds say was driven
+            (0.8 times the slower of the two fixes' speeds times the time between them;
+            the new fix's speed where the fix before reported none, and in the spike
+            test's step that leaves a fix out), at one unit per this many metres, instead
+            of comparing the route with the candidate's own last speed (0, the default,
+            leaves the pace term as it is). One-sided and from the slower end: a vehicle
+            that stopped or slowed within the step drove less than either speed says,
+            and must not be pulled round a block (the two-sided trapezoid lost up to 4
+            points at 30 s). Off by default: on the decision runs (speeds reported with
+            0.2 m/s error) it gains every random-walk 15 s cell run but loses at 30 s and
+            on routed trips at Helsinki 15 s (docs/measured.md "Session 16 (walkloop)").
+            Why: at 15 s between fixes a vehicle circling a small loop of perimeter P at
+            d metres per step, P/2 < d < P, puts its fixes where the other
+            direction round the loop puts them at P - d per step, a shorter route the
+            route-against-chord term prefers at every step; each candidate's own pace is
+            self-consistent either way, so only a speed that does not come from the
+            path can tell the two apart (docs/measured.md "Session 16 (walkloop)").
+            The detour bound of the step is raised to that route where it is longer.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -564,6 +595,8 @@ class MatchSettings:
     bridge_error_corr: bool = False
     stand_way_out: bool = True
     stand_pace: bool = False
+    bridge_error_cross: bool = False
+    speed_pace_m: float = 0.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -589,7 +622,7 @@ class MatchSettings:
             out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
         for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s",
                      "spike_cost", "street_turn_cost", "join_detour", "live_keep",
-                     "live_keep_stand_s", "stand_short_m"):
+                     "live_keep_stand_s", "stand_short_m", "speed_pace_m"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))
@@ -600,7 +633,7 @@ class MatchSettings:
                      "stand_at_vertex", "motion_step", "break_rejoin", "stand_turnback",
                      "speed_laps", "end_stand", "start_stand",
                      "end_stand_sparse", "bridge_error_corr", "stand_way_out",
-                     "stand_pace"):
+                     "stand_pace", "bridge_error_cross"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

@@ -118,6 +118,8 @@ class StepContext:
     # the pace term charges nothing in this step (MatchSettings.stand_pace: the fixes
     # show a stand); pace_cost still sets how far the search reaches (bridge_reach)
     pace_free: bool = False
+    error_cross: bool = False
+    speed_route: float = -1.0
 
     @classmethod
     def between(
@@ -195,7 +197,9 @@ def _offer(
     ex = mx - ctx.x1
     ey = my - ctx.y1
     rho = ctx.error_rho
-    if rho > 0.0 and parent is not None:
+    if rho > 0.0 and parent is not None and ctx.error_cross:
+        cost = _cross_term(view, ctx, parent, ex, ey, dx, dy, length2)
+    elif rho > 0.0 and parent is not None:
         # correlated error (settings.bridge_error_corr): charge the part of this offset
         # that the parent's offset at p0 does not explain (AR(1), rho = exp(-dt / tau))
         ex -= rho * (parent.x - ctx.x0)
@@ -227,7 +231,12 @@ def _offer(
                 street += not ok[head[prev]]
             cost += turns * ctx.turn_back_cost + street * ctx.street_turn_cost
         cost += parent.cost + abs(route - ctx.chord) * ctx.inv_beta
-        if expect >= 0.0:
+        if ctx.speed_route >= 0.0:
+            # settings.speed_pace_m: only a route shorter than the reported speeds'
+            # least distance driven is charged
+            if route < expect:
+                cost += (expect - route) * ctx.pace_cost
+        elif expect >= 0.0:
             cost += abs(route - expect) * ctx.pace_cost
         if ctx.motion_cost > 0.0:
             # The matched point should move as the fixes moved: consecutive GNSS errors
@@ -248,6 +257,50 @@ def _offer(
         node.parent = parent
         node.via = via
         node.cost = cost
+
+
+def _cross_term(
+    view: NetworkView, ctx: StepContext, parent: Node, ex: float, ey: float,
+    dx: float, dy: float, length2: float,
+) -> float:
+    """The distance term of ``settings.bridge_error_cross``: correlated across the road only.
+
+    The offset e1 = (ex, ey) of the matched point from the new fix splits into its part
+    across the new segment (c1, along the segment's left normal) and along it (a1,
+    non-zero only where the matched point is clamped to an end or to the reachable part).
+    The parent's offset at p0 counts only by its part across the parent's own segment
+    (c0 n0): that is the GNSS lean a road alongside would exploit, while where along
+    the road, or where on a junction, the parent's matched point sat is the path's own
+    choice, not the error's. Projected on the new segment's normal that vector is
+    k c0 with k = t0 . t1 (rotating both unit tangents by 90 degrees keeps their dot
+    product; a twin parent has k = -1, its left side being the new segment's right).
+    The parent's part along its own segment is treated as unobserved, of variance
+    sigma^2, so under first-order Gauss-Markov error with correlation rho the part
+    across the new segment given c0 is normal with mean rho k c0 and variance
+    sigma^2 (1 - rho^2 k^2). The term is (a1^2 + (c1 - rho k c0)^2 / (1 - rho^2 k^2))
+    / (2 sigma^2): the full conditional between parallel segments, the independent
+    term between perpendicular ones, and the independent term along the road. A
+    segment of no length keeps the independent term.
+    """
+    rho = ctx.error_rho
+    a0 = view.sf[parent.seg]
+    b0 = view.st[parent.seg]
+    px = view.vx[b0] - view.vx[a0]
+    py = view.vy[b0] - view.vy[a0]
+    l0 = math.sqrt(px * px + py * py)
+    if length2 <= 0.0 or l0 <= 0.0:
+        return (ex * ex + ey * ey) * ctx.inv_two_sigma2
+    l1 = math.sqrt(length2)
+    t1x = dx / l1
+    t1y = dy / l1
+    t0x = px / l0
+    t0y = py / l0
+    c1 = ey * t1x - ex * t1y
+    a1 = ex * t1x + ey * t1y
+    c0 = (parent.y - ctx.y0) * t0x - (parent.x - ctx.x0) * t0y
+    k = t0x * t1x + t0y * t1y
+    w = c1 - rho * k * c0
+    return (a1 * a1 + w * w / (1.0 - rho * rho * k * k)) * ctx.inv_two_sigma2
 
 
 def sweep_step(live: dict[int, Node], ctx: StepContext) -> dict[int, Node]:
@@ -426,7 +479,14 @@ def bridge_step(
     # that may turn into it: U-turns only where the network allows them)
     found = search(view, searches, limit, targets, ctx.street_turns)
     paced = ctx.pace_cost > 0.0 and not ctx.pace_free
-    paces = [pace(view, n, ctx.t) for n in nodes] if paced else [-1.0] * len(nodes)
+    if paced and ctx.speed_route >= 0.0:
+        # the fixes' own speed over ground (settings.speed_pace_m): one least route
+        # for every candidate, whatever speed its own path implies
+        paces = [ctx.speed_route] * len(nodes)
+    elif paced:
+        paces = [pace(view, n, ctx.t) for n in nodes]
+    else:
+        paces = [-1.0] * len(nodes)
     new: dict[int, Node] = {}
     for k, seg in enumerate(targets):
         a = view.sf[seg]
@@ -438,7 +498,8 @@ def bridge_step(
         same = live.get(seg)
         if same is not None and hi >= same.pos:
             _offer(new, ctx, seg, max(lo, same.pos), hi, same, (), same.pos,
-                   pace(view, same, ctx.t) if paced else -1.0)
+                   (ctx.speed_route if ctx.speed_route >= 0.0
+                    else pace(view, same, ctx.t)) if paced else -1.0)
         for arrivals, (_, shift) in zip(found, searches, strict=True):
             r = arrivals[k]
             if r is None or r.dist - shift[r.source] + lo * view.slen[seg] > limit:
@@ -480,6 +541,8 @@ def bridge_reach(live: dict[int, Node], ctx: StepContext, settings: MatchSetting
         250.0
     """
     detour = settings.detour_factor * ctx.chord + settings.gap_m
+    if ctx.speed_route > detour:  # settings.speed_pace_m: the route the speed predicts
+        detour = ctx.speed_route
     if settings.pace_reach and ctx.pace_cost > 0.0:
         for node in live.values():
             expect = pace(ctx.view, node, ctx.t)
@@ -514,8 +577,10 @@ def advance(
     if live:
         limit = min(settings.bridge_speed_mps * dt, bridge_reach(live, ctx, settings)) \
             + 2.0 * ctx.eps
-        if settings.bridge_error_corr and settings.error_tau_s > 0.0 and dt > settings.gap_s:
-            ctx = replace(ctx, error_rho=math.exp(-dt / settings.error_tau_s))
+        if ((settings.bridge_error_corr or settings.bridge_error_cross)
+                and settings.error_tau_s > 0.0 and dt > settings.gap_s):
+            ctx = replace(ctx, error_rho=math.exp(-dt / settings.error_tau_s),
+                          error_cross=settings.bridge_error_cross)
         new = bridge_step(network, live, ctx, limit)
         if new:
             return new, "bridged"

@@ -192,6 +192,11 @@ _NO_FIXES = np.empty((0, 2))  # shared by trackers that have seen no fix (never 
 # to -1.8 points; alone, random walk seed 31 at 30 s: +0.2 / +0.5 points (Helsinki /
 # test). 35 s keeps a 30 s feed with late fixes in the test.
 SPIKE_MIN_S = 5.0
+# With MatchSettings.speed_pace_m, a bridged step's route is charged for falling short of
+# this share of the slower end's reported speed times the step's time: a fifth of slack
+# for the speed changing over the step and the answers' error along the road (as
+# speed_laps' shortfall, LAP_SLACK; chosen by judgement, not tuned).
+SPEED_FLOOR_SHARE = 0.8
 SPIKE_MAX_S = 35.0
 # The time spanned by the two steps around a tested fix at which its charge is
 # MatchSettings.spike_cost (it scales in proportion).
@@ -329,7 +334,7 @@ class Tracker:
     # than a small candidate tree
     __slots__ = ("_held", "_view", "before", "buffer", "fix_n", "fix_seq0", "fix_xy",
                  "jumps", "lap_due", "lap_v", "last", "last_commit", "last_released_t",
-                 "last_seg", "levels",
+                 "last_seg", "last_v", "levels",
                  "network", "next_commit", "rev_t", "said", "seq", "settings", "skipped",
                  "speed", "stand_from", "stand_seq", "step_dir", "stood_t", "times", "times0",
                  "vehicle")
@@ -393,6 +398,8 @@ class Tracker:
         # not shown yet (m; Tracker._with_laps)
         self.lap_v: dict[float, float] | None = None
         self.lap_due = 0.0
+        # with speed_pace_m: the reported speed of the last accepted fix (m/s), if any
+        self.last_v: float | None = None
 
     def fix_time(self, seq: int) -> float | None:
         """The time of accepted fix ``seq`` while it is kept (``times``), else None.
@@ -540,6 +547,9 @@ class Tracker:
                 self.lap_v = {}
             self.lap_v[fix.t] = fix.speed
         self.last = (fix.t, fix.x, fix.y)
+        came_v = self.last_v  # reported speed at prev (speed_pace_m reads it)
+        if s.speed_pace_m > 0.0:
+            self.last_v = fix.speed
         came_speed = self.speed  # of the step into prev (reverse_turns reads it)
         stood = self.speed is not None and self.speed < STOOD_MPS
         if s.stop_turns:
@@ -558,7 +568,7 @@ class Tracker:
         tops: _Tops = {}
         salvage = self._advance_levels(fix, prev, seq, stood or (turned and s.reverse_turns),
                                        seq - 1 if before is not None else seq, tops,
-                                       turned and not s.reverse_turns)
+                                       turned and not s.reverse_turns, came_v)
         if self.before is not None and prev is not None:
             straight_from = self.before.last
             dropped = self._spike_test(fix, seq, broke, events)
@@ -623,7 +633,7 @@ class Tracker:
     def _advance_levels(
         self, fix: Fix, prev: tuple[float, float, float] | None, seq: int,
         stood: bool = False, newest: int = -1, tops: _Tops | None = None,
-        turned: bool = False,
+        turned: bool = False, came_v: float | None = None,
     ) -> list[tuple[Level, CandidateTree]]:
         """Move every level to ``fix`` (sequence number ``seq``) from the fix ``prev``.
 
@@ -632,6 +642,8 @@ class Tracker:
         there), which with ``stop_turns`` lets a bridged step turn round at any vertex.
         ``turned``: with ``reverse_turns_near``, the fixes reversed at ``prev``: a bridged
         step may turn round at the vertex ending each live state's segment near ``prev``.
+        ``came_v``: the reported speed at ``prev`` (with ``speed_pace_m``; None when
+        unknown, and then the new fix's speed alone sets the distance driven).
         Returns the levels that started afresh with the trees they had before.
         With ``stand_pace``, a bridged step that :func:`stand_step` calls a stand charges
         no pace term and may turn round at a vertex within eps of ``prev`` without the
@@ -709,6 +721,12 @@ class Tracker:
                                           street_turn_cost=0.0)
             elif still:
                 ctx = dataclasses.replace(ctx, pace_free=True)
+            if s.speed_pace_m > 0.0 and fix.speed is not None and dt > s.gap_s:
+                # the least distance driven from the reported speeds
+                # (MatchSettings.speed_pace_m): the slower end's speed, less slack
+                v = fix.speed if came_v is None else min(fix.speed, came_v)
+                ctx = dataclasses.replace(ctx, speed_route=SPEED_FLOOR_SHARE * v * dt,
+                                          pace_cost=1.0 / s.speed_pace_m)
             nodes, rows = tree.live_nodes(self._view)
             new, how = advance(self.network, nodes, ctx, s, dt, gap=True)
             if how == "bridged":
@@ -3004,6 +3022,8 @@ class Tracker:
             state["step_dir"] = self.step_dir
         if self.rev_t is not None:  # with lone_reverse_turns only
             state["rev_t"] = self.rev_t
+        if self.last_v is not None:  # with speed_pace_m only, and only with reported speeds
+            state["last_v"] = self.last_v
         if self.lap_v:  # with speed_laps only, and only with reported speeds
             state["lap_v"] = [list(self.lap_v), list(self.lap_v.values()), self.lap_due]
         if self.said is not None:  # only with hold_filtered
@@ -3119,6 +3139,7 @@ class Tracker:
         # written only with lone_reverse_turns, and only when set; absent (older states),
         # no reversal is known (the next one counts as lone)
         tracker.rev_t = state.get("rev_t")
+        tracker.last_v = state.get("last_v")  # written only with speed_pace_m (and a speed)
         lap = state.get("lap_v")  # written only with speed_laps (absent in older states)
         if lap is not None:
             tracker.lap_v = dict(zip(lap[0], lap[1], strict=True))
