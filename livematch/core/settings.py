@@ -475,6 +475,17 @@ class MatchSettings:
             the switch costs the sudden change of offset. Steps of at most ``gap_s`` (the
             sweep) are unchanged; so is the live score's own rescoring.
             Off by default (docs/measured.md "Session 15 (walk15)").
+        smallest_commits: an agreed commit of a level stops before the first fix that a
+            smaller live level's younger tree covers (the smaller level commits the rest
+            when its own candidates agree), so each fix is settled by the smallest level
+            that covers it, as the ladder intends (:meth:`livematch.core.tracker.
+            Tracker._smallest_top`). Why: when the small levels die at a U-turn or a
+            stand and restart, the 60 m level alone covers the oldest fixes; its best
+            path need not turn round at all (every fix of a 40 m out-and-back lies within
+            60 m of where it came in) and, once its candidates agree, its commit settled
+            every fix up to their common ancestor, also the ones the 15 m level's new tree
+            answers within 15 m: answers 40-55 m from their fixes (docs/measured.md
+            "Session 16 (fleet5)"). Off by default until the decision runs say on.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -524,6 +535,7 @@ class MatchSettings:
     start_stand: bool = True
     end_stand_sparse: bool = True
     bridge_error_corr: bool = False
+    smallest_commits: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -559,7 +571,7 @@ class MatchSettings:
                      "reverse_turns_near", "lone_reverse_turns", "hold_filtered",
                      "stand_at_vertex", "motion_step", "break_rejoin", "stand_turnback",
                      "speed_laps", "end_stand", "start_stand",
-                     "end_stand_sparse", "bridge_error_corr"):
+                     "end_stand_sparse", "bridge_error_corr", "smallest_commits"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

@@ -1246,7 +1246,9 @@ class Tracker:
                 if level.tree_seq != seq:
                     continue
                 leaf = old.best(self.last_seg)
-                if old.seq_of(leaf) >= self.next_commit:
+                if s.smallest_commits:
+                    leaf = self._smallest_top(level.eps, old, leaf)
+                if leaf >= 0 and old.seq_of(leaf) >= self.next_commit:
                     self._commit_chain(old, leaf, events, prune=None)
                     covering = self._covering()
                     break
@@ -1270,6 +1272,8 @@ class Tracker:
                     level.cut = self.next_commit - 1
                 else:
                     top = _CALLS.cut_and_check(tree.ti, self.next_commit, newest, False)
+                if top >= 0 and s.smallest_commits:
+                    top = self._smallest_top(level.eps, tree, top)
                 if top < 0:
                     continue
                 # (both checks read no state a commit changes: the stand's once a fix,
@@ -1317,6 +1321,42 @@ class Tracker:
             del times[:drop]
             self.times0 += drop
         self._trim(seq, t)
+
+    def _smallest_top(self, eps: float, tree: CandidateTree, top: int) -> int:
+        """``top`` taken back to before the fixes a smaller live level covers (-1: none left).
+
+        Rule (``MatchSettings.smallest_commits``): a commit of row ``top`` of ``tree``
+        (the tree of the level of ``eps``: its agreed commit point, or the best leaf of
+        a tree that died, which :meth:`_settle` salvages) settles fixes
+        ``next_commit`` .. its fix; a smaller level (a lower eps)
+        whose tree is alive and began after ``next_commit`` covers the fixes from its
+        ``tree_seq`` on, and by the ladder's rule those are its to settle. So the commit
+        stops at the ancestor of ``top`` at the fix before the earliest such
+        ``tree_seq`` (still a common ancestor of every live candidate: an ancestor of
+        theirs); if that lies before ``next_commit``, this level commits nothing now.
+        Trees of smaller levels that began at or before ``next_commit`` cover the oldest
+        fix themselves and come earlier in the covering order, so they are not limits.
+
+        Example (one level: nothing to yield to, ``top`` as it is):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "v1", MatchSettings(eps_levels=(15.0,)))
+            >>> level = tracker.levels[0]
+            >>> tracker._smallest_top(level.eps, level.tree, 7)
+            7
+        """
+        first = self.next_commit
+        limit = min((lv.tree_seq for lv in self.levels
+                     if lv.eps < eps and lv.tree.hi > lv.tree.lo and lv.tree_seq > first),
+                    default=-1)
+        if limit < 0:
+            return top
+        if tree.seq_of(top) < limit:
+            return top
+        if limit - 1 < first:
+            return -1
+        row = tree.ancestor_at(top, limit - 1)
+        return row if first <= tree.seq_of(row) <= limit - 1 else -1
 
     def _into_stand(self, t: float, dt: float = 0.0, stood: bool = False) -> bool:
         """Whether an agreed commit waits because the vehicle stood until lately.
