@@ -475,17 +475,19 @@ class MatchSettings:
             the switch costs the sudden change of offset. Steps of at most ``gap_s`` (the
             sweep) are unchanged; so is the live score's own rescoring.
             Off by default (docs/measured.md "Session 15 (walk15)").
-        smallest_commits: an agreed commit of a level stops before the first fix that a
-            smaller live level's younger tree covers (the smaller level commits the rest
-            when its own candidates agree), so each fix is settled by the smallest level
-            that covers it, as the ladder intends (:meth:`livematch.core.tracker.
-            Tracker._smallest_top`). Why: when the small levels die at a U-turn or a
-            stand and restart, the 60 m level alone covers the oldest fixes; its best
-            path need not turn round at all (every fix of a 40 m out-and-back lies within
-            60 m of where it came in) and, once its candidates agree, its commit settled
-            every fix up to their common ancestor, also the ones the 15 m level's new tree
-            answers within 15 m: answers 40-55 m from their fixes (docs/measured.md
-            "Session 16 (fleet5)"). Off by default until the decision runs say on.
+        smallest_commits: when the trees that covered the oldest pending fixes died and
+            their best candidate is committed (a salvage), the commit stops before the
+            first fix that a smaller live level's younger tree covers; that level settles
+            the rest when its own candidates agree, so each fix is settled by the
+            smallest level whose tree covers it, as the ladder intends
+            (:meth:`livematch.core.tracker.Tracker._smallest_top`). Why: when the small
+            levels die at a stand or a turn and restart, the 60 m level alone covers the
+            oldest fixes; its best path need not turn round at all (every fix of a 40 m
+            out-and-back lies within 60 m of where it came in), and when that tree dies
+            too its salvage settled every fix up to its best leaf, also the ones the
+            15 m level's new tree answers within 15 m: answers 37-55 m from their fixes
+            (docs/measured.md "Session 16 (fleet5)"). Off by default until the
+            decision runs say on.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)

@@ -1272,8 +1272,6 @@ class Tracker:
                     level.cut = self.next_commit - 1
                 else:
                     top = _CALLS.cut_and_check(tree.ti, self.next_commit, newest, False)
-                if top >= 0 and s.smallest_commits:
-                    top = self._smallest_top(level.eps, tree, top)
                 if top < 0:
                     continue
                 # (both checks read no state a commit changes: the stand's once a fix,
@@ -1325,17 +1323,17 @@ class Tracker:
     def _smallest_top(self, eps: float, tree: CandidateTree, top: int) -> int:
         """``top`` taken back to before the fixes a smaller live level covers (-1: none left).
 
-        Rule (``MatchSettings.smallest_commits``): a commit of row ``top`` of ``tree``
-        (the tree of the level of ``eps``: its agreed commit point, or the best leaf of
-        a tree that died, which :meth:`_settle` salvages) settles fixes
-        ``next_commit`` .. its fix; a smaller level (a lower eps)
-        whose tree is alive and began after ``next_commit`` covers the fixes from its
-        ``tree_seq`` on, and by the ladder's rule those are its to settle. So the commit
-        stops at the ancestor of ``top`` at the fix before the earliest such
-        ``tree_seq`` (still a common ancestor of every live candidate: an ancestor of
-        theirs); if that lies before ``next_commit``, this level commits nothing now.
-        Trees of smaller levels that began at or before ``next_commit`` cover the oldest
-        fix themselves and come earlier in the covering order, so they are not limits.
+        Rule (``MatchSettings.smallest_commits``): when the trees that covered the oldest
+        pending fixes died, :meth:`_settle` commits the best leaf ``top`` of such a dead
+        ``tree`` (of the level of ``eps``): fixes ``next_commit`` .. its fix. A smaller
+        level (a lower eps) whose tree is alive began after ``next_commit`` and covers
+        the fixes from its ``tree_seq`` on; by the ladder's rule (each fix settled by the
+        smallest level whose tree covers it) those are its to settle, and a dead tree
+        covers nothing any more. So the salvage stops at the ancestor of ``top`` at the
+        fix before the earliest such ``tree_seq``; if that lies before ``next_commit``,
+        nothing is salvaged. Agreed commits of live levels are left as they are (tried:
+        yielding there too loses stands that the older tree's chain holds whole,
+        docs/measured.md "Session 16 (fleet5)").
 
         Example (one level: nothing to yield to, ``top`` as it is):
             >>> from livematch.core.build import Road, network_from_roads
