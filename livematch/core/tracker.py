@@ -1351,8 +1351,6 @@ class Tracker:
             return top
         if tree.seq_of(top) < limit:
             return top
-        if limit - 1 < first:
-            return -1
         row = tree.ancestor_at(top, limit - 1)
         return row if first <= tree.seq_of(row) <= limit - 1 else -1
 
