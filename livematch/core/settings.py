@@ -544,6 +544,19 @@ class MatchSettings:
             self-consistent either way, so only a speed that does not come from the
             path can tell the two apart (docs/measured.md "Session 16 (walkloop)").
             The detour bound of the step is raised to that route where it is longer.
+        smallest_commits: when the trees that covered the oldest pending fixes died and
+            their best candidate is committed (a salvage), the commit stops before the
+            first fix that a smaller live level's younger tree covers; that level settles
+            the rest when its own candidates agree, so each fix is settled by the
+            smallest level whose tree covers it, as the ladder intends
+            (:meth:`livematch.core.tracker.Tracker._smallest_top`). Why: when the small
+            levels die at a stand or a turn and restart, the 60 m level alone covers the
+            oldest fixes; its best path need not turn round at all (every fix of a 40 m
+            out-and-back lies within 60 m of where it came in), and when that tree dies
+            too its salvage settled every fix up to its best leaf, also the ones the
+            15 m level's new tree answers within 15 m: answers 37-55 m from their fixes
+            (docs/measured.md "Session 16 (fleet5)"). Off by default until the
+            decision runs say on.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -597,6 +610,7 @@ class MatchSettings:
     stand_pace: bool = False
     bridge_error_cross: bool = False
     speed_pace_m: float = 0.0
+    smallest_commits: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -633,7 +647,7 @@ class MatchSettings:
                      "stand_at_vertex", "motion_step", "break_rejoin", "stand_turnback",
                      "speed_laps", "end_stand", "start_stand",
                      "end_stand_sparse", "bridge_error_corr", "stand_way_out",
-                     "stand_pace", "bridge_error_cross"):
+                     "stand_pace", "bridge_error_cross", "smallest_commits"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

@@ -1277,7 +1277,9 @@ class Tracker:
                 if level.tree_seq != seq:
                     continue
                 leaf = old.best(self.last_seg)
-                if old.seq_of(leaf) >= self.next_commit:
+                if s.smallest_commits:
+                    leaf = self._smallest_top(level.eps, old, leaf)
+                if leaf >= 0 and old.seq_of(leaf) >= self.next_commit:
                     self._commit_chain(old, leaf, events, prune=None)
                     covering = self._covering()
                     break
@@ -1348,6 +1350,40 @@ class Tracker:
             del times[:drop]
             self.times0 += drop
         self._trim(seq, t)
+
+    def _smallest_top(self, eps: float, tree: CandidateTree, top: int) -> int:
+        """``top`` taken back to before the fixes a smaller live level covers (-1: none left).
+
+        Rule (``MatchSettings.smallest_commits``): when the trees that covered the oldest
+        pending fixes died, :meth:`_settle` commits the best leaf ``top`` of such a dead
+        ``tree`` (of the level of ``eps``): fixes ``next_commit`` .. its fix. A smaller
+        level (a lower eps) whose tree is alive began after ``next_commit`` and covers
+        the fixes from its ``tree_seq`` on; by the ladder's rule (each fix settled by the
+        smallest level whose tree covers it) those are its to settle, and a dead tree
+        covers nothing any more. So the salvage stops at the ancestor of ``top`` at the
+        fix before the earliest such ``tree_seq``; if that lies before ``next_commit``,
+        nothing is salvaged. Agreed commits of live levels are left as they are (tried:
+        yielding there too loses stands that the older tree's chain holds whole,
+        docs/measured.md "Session 16 (fleet5)").
+
+        Example (one level: nothing to yield to, ``top`` as it is):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "v1", MatchSettings(eps_levels=(15.0,)))
+            >>> level = tracker.levels[0]
+            >>> tracker._smallest_top(level.eps, level.tree, 7)
+            7
+        """
+        first = self.next_commit
+        limit = min((lv.tree_seq for lv in self.levels
+                     if lv.eps < eps and lv.tree.hi > lv.tree.lo and lv.tree_seq > first),
+                    default=-1)
+        if limit < 0:
+            return top
+        if tree.seq_of(top) < limit:
+            return top
+        row = tree.ancestor_at(top, limit - 1)
+        return row if first <= tree.seq_of(row) <= limit - 1 else -1
 
     def _into_stand(self, t: float, dt: float = 0.0, stood: bool = False) -> bool:
         """Whether an agreed commit waits because the vehicle stood until lately.
