@@ -475,6 +475,17 @@ class MatchSettings:
             the switch costs the sudden change of offset. Steps of at most ``gap_s`` (the
             sweep) are unchanged; so is the live score's own rescoring.
             Off by default (docs/measured.md "Session 15 (walk15)").
+        start_roots: at the first commit of a vehicle's log (its stretch beginning at a
+            root of the candidate tree), the stretch is swept again from each segment
+            within eps of the first fix alone, and when another root reaches the
+            committed end segment with a better score than the committed root (the
+            forced commit's rule: live score while fixes come less than 5 s apart, else
+            path cost) the stretch is committed from that root
+            (:mod:`livematch.core.startroots`). Why: a log that begins while the vehicle
+            drives beside a parallel road has both roads as roots, and the sweep's one
+            back-pointer per segment can leave every candidate descended from the wrong
+            root by the first commit. Final answers and the start of the committed path
+            only. Off by default.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -524,6 +535,7 @@ class MatchSettings:
     start_stand: bool = True
     end_stand_sparse: bool = True
     bridge_error_corr: bool = False
+    start_roots: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -559,7 +571,7 @@ class MatchSettings:
                      "reverse_turns_near", "lone_reverse_turns", "hold_filtered",
                      "stand_at_vertex", "motion_step", "break_rejoin", "stand_turnback",
                      "speed_laps", "end_stand", "start_stand",
-                     "end_stand_sparse", "bridge_error_corr"):
+                     "end_stand_sparse", "bridge_error_corr", "start_roots"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

@@ -1,0 +1,127 @@
+"""The first commit of a log, re-decided root by root (rule ``start_roots``).
+
+Why: a log that begins while the vehicle is already moving has no history, and at its
+first fix every segment within eps is a root of the candidate tree. Where two roads run
+side by side a few metres apart (a road drawn twice, a carriageway beside a service road)
+both roots stay alive. The sweep keeps one state per segment, with one back-pointer: when
+the cheapest way onto the road actually driven goes from the other root through a link
+between the two roads, every later state on the right road descends from the wrong root.
+By the time the candidates merge (or a forced commit comes), they all share that wrong
+root, and the first commit fixes the wrong road for the log's first fixes.
+
+The sweep's union of all roots is also not a superset of what each root reaches alone:
+a vertex is settled by the first entry that reaches it (earliest along the fix step, then
+cheapest), and the segments out of it that entry's incoming road forbids (a turn back)
+are then closed to every other entry. Seen on Helsinki (seed 31, drive 36): the root on
+the road driven, swept alone, is still within eps at the fix where the union died and
+bridged.
+
+The rule, pure and deterministic, asked by the tracker when the log's first commit is
+due: replay the tree's fixes once per root, with only that root alive (the reference
+sweep of :mod:`livematch.core.sweep`); rank the roots whose replay is alive at the
+newest fix by the rule that picks the best candidate of a forced commit (the live
+score, which weighs GNSS error that is correlated in time, while fixes come less than
+``sparse_s`` apart; the path cost otherwise), each by its best live state; when the
+winner is not the root of the tree's best candidate, the tracker rebuilds the tree
+from the winner's states alone and decides the commit on it.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import itertools
+import math
+import statistics
+from collections.abc import Sequence
+
+from livematch.core.network import RoadNetwork
+from livematch.core.settings import MatchSettings
+from livematch.core.sweep import Node, StepContext, fresh_start, live_score, sweep_step
+from livematch.core.view import view_of
+
+
+def _motion_gain(dt: float, tau: float) -> float:
+    """The ``motion_step`` weight of a step ``dt`` long (as ``tracker.motion_gain``)."""
+    if tau <= 0.0 or dt <= 0.0:
+        return 1.0
+    spread = math.sqrt(2.0 * -math.expm1(-dt / tau))
+    return 1.0 / spread if spread < 1.0 else 1.0
+
+
+def replay(
+    network: RoadNetwork, settings: MatchSettings, eps: float, root: Node,
+    fixes: Sequence[tuple[int, float, float, float]],
+) -> dict[int, Node]:
+    """The states at the last of ``fixes`` swept from ``root`` alone (empty if it died).
+
+    ``fixes``: (seq, t, x, y) of each fix from the root's own on, in order. Each step is
+    the reference sweep (:func:`livematch.core.sweep.sweep_step`) at ``eps``; a step
+    whose window dies ends the replay (no bridging: a root that needs a bridge to go
+    on is not one the rule compares).
+    """
+    view = view_of(network)
+    live = {root.seg: root}
+    inv_motion = 1.0 / settings.motion_m
+    for (_, t0, x0, y0), (seq, t, x, y) in itertools.pairwise(fixes):
+        ctx = StepContext.between(view, settings, eps, x0, y0, x, y, seq, t)
+        if settings.motion_step:
+            dt = t - t0
+            gain = _motion_gain(dt, settings.error_tau_s) if dt > 0.0 else 1.0
+            ctx = dataclasses.replace(ctx, motion_cost=inv_motion * gain)
+        live = sweep_step(live, ctx)
+        if not live:
+            return {}
+    return live
+
+
+def best_root(
+    network: RoadNetwork, settings: MatchSettings, eps: float, current: int,
+    fixes: Sequence[tuple[int, float, float, float]], sparse_s: float,
+) -> dict[int, Node] | None:
+    """The live states of the root that ranks best, when it is not ``current``; else None.
+
+    Args:
+        network: the road network.
+        settings: the cost weights, ``sigma_m``, ``error_tau_s``, ``gap_s``.
+        eps: the level's eps (metres).
+        current: the root segment of the tree's best live candidate.
+        fixes: (seq, t, x, y) of every fix of the tree, from its root fix to the newest.
+        sparse_s: below this median gap between fixes the roots are ranked by live
+            score (:func:`livematch.core.sweep.live_score`), else by path cost.
+
+    Each segment within eps of the first fix is a root; each is replayed alone
+    (:func:`replay`) and scored by its best live state at the newest fix. Returns that
+    root's live states (linked back to it) when its score is strictly lower than every
+    other root's and the root is not ``current``; None when ``current`` wins, on a
+    tie, or when no root's replay reaches the newest fix. When ``current``'s own
+    replay dies (the tree bridged a step) any root whose replay lives ranks before it:
+    its path stays within eps of every fix by sweeping alone.
+    """
+    if len(fixes) < 2:
+        return None
+    view = view_of(network)
+    seq0, t0, x0, y0 = fixes[0]
+    ctx0 = StepContext.between(view, settings, eps, x0, y0, x0, y0, seq0, t0)
+    roots = fresh_start(network, ctx0)
+    if len(roots) < 2 or current not in roots:
+        return None
+    gaps = [b[1] - a[1] for a, b in itertools.pairwise(fixes)]
+    by_live = settings.error_tau_s > 0.0 and statistics.median(gaps) < sparse_s
+    positions = {seq: (x, y) for seq, _, x, y in fixes}
+    inv_two_sigma2 = 1.0 / (2.0 * settings.sigma_m * settings.sigma_m)
+    ranked: list[tuple[float, int, dict[int, Node]]] = []
+    for seg in sorted(roots):
+        live = replay(network, settings, eps, roots[seg], fixes)
+        if not live:
+            continue
+        score = min((live_score(n, positions, seq0, inv_two_sigma2, settings.error_tau_s,
+                                settings.gap_s) if by_live else n.cost)
+                    for n in live.values())
+        ranked.append((score, seg, live))
+    if not ranked:
+        return None
+    ranked.sort(key=lambda r: (r[0], r[1] != current, r[1]))
+    best = ranked[0]
+    if best[1] == current or (len(ranked) > 1 and best[0] == ranked[1][0]):
+        return None
+    return best[2]
