@@ -475,17 +475,18 @@ class MatchSettings:
             the switch costs the sudden change of offset. Steps of at most ``gap_s`` (the
             sweep) are unchanged; so is the live score's own rescoring.
             Off by default (docs/measured.md "Session 15 (walk15)").
-        start_roots: at the first commit of a vehicle's log (its stretch beginning at a
-            root of the candidate tree), the stretch is swept again from each segment
-            within eps of the first fix alone, and when another root reaches the
-            committed end segment with a better score than the committed root (the
-            forced commit's rule: live score while fixes come less than 5 s apart, else
-            path cost) the stretch is committed from that root
-            (:mod:`livematch.core.startroots`). Why: a log that begins while the vehicle
-            drives beside a parallel road has both roads as roots, and the sweep's one
-            back-pointer per segment can leave every candidate descended from the wrong
-            root by the first commit. Final answers and the start of the committed path
-            only. Off by default.
+        start_roots: when the first commit of a vehicle's log is due (its tree started
+            at the oldest fix not committed), the fixes are swept again from each
+            segment within eps of the first fix alone; when the root of the best
+            candidate does not get through that way (the tree bridged a step) and other
+            roots do, the best of those (the forced commit's rule: live score while
+            fixes come less than 5 s apart, else path cost) becomes the tree's only
+            root and the commit is decided on it (:mod:`livematch.core.startroots`).
+            Why: a log that begins beside a parallel road has both roads as roots, and
+            the sweep's one state per segment can leave every candidate descended from
+            the wrong root, on a lineage that needs a bridge where the road driven,
+            swept alone, stays within eps. Final answers, the start of the committed
+            path, and the live answers after the rebuild. Off by default.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)

@@ -19,12 +19,15 @@ the union died and bridged (Helsinki, seed 31, drive 36).
 
 The rule, pure and deterministic, asked by the tracker when the log's first commit is
 due: replay the tree's fixes once per root, with only that root alive (the reference
-sweep of :mod:`livematch.core.sweep`); rank the roots whose replay is alive at the
-newest fix by the rule that picks the best candidate of a forced commit (the live
-score, which weighs GNSS error that is correlated in time, while fixes come less than
-``sparse_s`` apart; the path cost otherwise), each by its best live state; when the
-winner is not the root of the tree's best candidate, the tracker rebuilds the tree
-from the winner's states alone and decides the commit on it.
+sweep of :mod:`livematch.core.sweep`). When the root of the tree's best candidate does
+not reach the newest fix that way (the tree bridged where that root alone cannot go on)
+but other roots do, rank those by the rule that picks the best candidate of a forced
+commit (the live score, which weighs GNSS error that is correlated in time, while fixes
+come less than ``sparse_s`` apart; the path cost otherwise), each by its best live
+state; the tracker rebuilds the tree from the winner's states alone and decides the
+commit on it. A path that stays within eps of every fix by sweeping is preferred to one
+that needed a bridge, as the tracker itself does when it bridges only where every
+sweep died.
 """
 
 from __future__ import annotations
@@ -91,12 +94,13 @@ def best_root(
             score (:func:`livematch.core.sweep.live_score`), else by path cost.
 
     Each segment within eps of the first fix is a root; each is replayed alone
-    (:func:`replay`) and scored by its best live state at the newest fix. Returns that
-    root's live states (linked back to it) when its score is strictly lower than every
-    other root's and the root is not ``current``; None when ``current`` wins, on a
-    tie, or when no root's replay reaches the newest fix. When ``current``'s own
-    replay dies (the tree bridged a step) any root whose replay lives ranks before it:
-    its path stays within eps of every fix by sweeping alone.
+    (:func:`replay`). Only when ``current``'s own replay does not reach the newest fix
+    (the tree had to bridge a step its best candidate's root cannot sweep through
+    alone) are the roots whose replay lives ranked, each by its best live state at the
+    newest fix; the winner's live states (linked back to it) are returned, None on a
+    tie. When ``current``'s replay lives, None: the tree's commit stands. (Ranking
+    every root against a live ``current`` by score alone was tried and lost fixes:
+    docs/measured.md, "Session 16 (movestart)".)
     """
     if len(fixes) < 2:
         return None
@@ -119,10 +123,9 @@ def best_root(
                                 settings.gap_s) if by_live else n.cost)
                     for n in live.values())
         ranked.append((score, seg, live))
-    if not ranked:
+    if not ranked or any(r[1] == current for r in ranked):
+        return None  # the tree's own root gets there by sweeping: its commit stands
+    ranked.sort(key=lambda r: (r[0], r[1]))
+    if len(ranked) > 1 and ranked[0][0] == ranked[1][0]:
         return None
-    ranked.sort(key=lambda r: (r[0], r[1] != current, r[1]))
-    best = ranked[0]
-    if best[1] == current or (len(ranked) > 1 and best[0] == ranked[1][0]):
-        return None
-    return best[2]
+    return ranked[0][2]

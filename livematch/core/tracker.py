@@ -1803,15 +1803,17 @@ class Tracker:
         Rule (``MatchSettings.start_roots``; only while nothing is committed, asked
         when a commit of ``level`` is due; ``dt``: the last step, s):
         :func:`livematch.core.startroots.best_root` sweeps the tree's fixes again
-        from each segment within eps of the first fix alone and ranks the roots by
-        the forced commit's rule (live score while fixes come less than ``SPARSE_S``
-        apart, else path cost, over each root's live states). When a root other than
-        the best live candidate's ranks strictly best, the level's tree becomes that
-        root's states and their paths, and the commit is decided on it. Why: the
-        sweep keeps one back-pointer per segment, so where a log begins beside a
-        parallel road the cheapest way onto the road driven can go from the other
-        road's root through a link, and every candidate then descends from the wrong
-        root by the time they agree (docs/measured.md, "Session 15 (logstart)").
+        from each segment within eps of the first fix alone; when the root of the
+        best live candidate does not reach the newest fix that way (the tree bridged)
+        but others do, they are ranked by the forced commit's rule (live score while
+        fixes come less than ``SPARSE_S`` apart, else path cost, over each root's live
+        states), and the level's tree becomes the winner's states and their paths;
+        the commit is decided on it. Why: the sweep keeps one state per segment and
+        settles a vertex from the entry that reaches it first, so where a log begins
+        beside a parallel road every candidate can descend from the other road's
+        root by the time they agree, and that lineage may need a bridge where the
+        road driven, swept alone, stays within eps (docs/measured.md, "Session 15
+        (logstart)" and "Session 16 (movestart)").
         Returns whether the tree was rebuilt.
         """
         tree = level.tree
