@@ -479,9 +479,10 @@ class MatchSettings:
             at the oldest fix not committed), the fixes are swept again from each
             segment within eps of the first fix alone; when the root of the best
             candidate does not get through that way (the tree bridged a step) and other
-            roots do, the best of those (the forced commit's rule: live score while
-            fixes come less than 5 s apart, else path cost) becomes the tree's only
-            root and the commit is decided on it (:mod:`livematch.core.startroots`).
+            roots do, the best of those by live score (the forced commit's rule at
+            such fixes) becomes the tree's only root and the commit is decided on it
+            (:mod:`livematch.core.startroots`). Only while fixes come less than 5 s
+            apart (median): at 15 or 30 s a tree bridges as a matter of course.
             Why: a log that begins beside a parallel road has both roads as roots, and
             the sweep's one state per segment can leave every candidate descended from
             the wrong root, on a lineage that needs a bridge where the road driven,

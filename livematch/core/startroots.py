@@ -22,10 +22,12 @@ due: replay the tree's fixes once per root, with only that root alive (the refer
 sweep of :mod:`livematch.core.sweep`). When the root of the tree's best candidate does
 not reach the newest fix that way (the tree bridged where that root alone cannot go on)
 but other roots do, rank those by the rule that picks the best candidate of a forced
-commit (the live score, which weighs GNSS error that is correlated in time, while fixes
-come less than ``sparse_s`` apart; the path cost otherwise), each by its best live
-state; the tracker rebuilds the tree from the winner's states alone and decides the
-commit on it. A path that stays within eps of every fix by sweeping is preferred to one
+commit at dense fixes (the live score, which weighs GNSS error that is correlated in
+time), each by its best live state; the tracker rebuilds the tree from the winner's
+states alone and decides the commit on it. Only while fixes come less than
+``sparse_s`` apart (median): at 15 or 30 s between fixes the window dies and the tree
+bridges as a matter of course, and there the rule lost fixes on the decision runs.
+A path that stays within eps of every fix by sweeping is preferred to one
 that needed a bridge, as the tracker itself does when it bridges only where every
 sweep died.
 """
@@ -90,8 +92,10 @@ def best_root(
         eps: the level's eps (metres).
         current: the root segment of the tree's best live candidate.
         fixes: (seq, t, x, y) of every fix of the tree, from its root fix to the newest.
-        sparse_s: below this median gap between fixes the roots are ranked by live
-            score (:func:`livematch.core.sweep.live_score`), else by path cost.
+        sparse_s: the rule acts only while the median gap between fixes is below
+            this; the roots are then ranked by live score
+            (:func:`livematch.core.sweep.live_score`; path cost with ``error_tau_s``
+            0), as a forced commit ranks candidates at such fixes.
 
     Each segment within eps of the first fix is a root; each is replayed alone
     (:func:`replay`). Only when ``current``'s own replay does not reach the newest fix
@@ -111,7 +115,8 @@ def best_root(
     if len(roots) < 2 or current not in roots:
         return None
     gaps = [b[1] - a[1] for a, b in itertools.pairwise(fixes)]
-    by_live = settings.error_tau_s > 0.0 and statistics.median(gaps) < sparse_s
+    if statistics.median(gaps) >= sparse_s:
+        return None  # sparse fixes: a bridge is the common case there, no sign of a loss
     positions = {seq: (x, y) for seq, _, x, y in fixes}
     inv_two_sigma2 = 1.0 / (2.0 * settings.sigma_m * settings.sigma_m)
     ranked: list[tuple[float, int, dict[int, Node]]] = []
@@ -120,7 +125,7 @@ def best_root(
         if not live:
             continue
         score = min((live_score(n, positions, seq0, inv_two_sigma2, settings.error_tau_s,
-                                settings.gap_s) if by_live else n.cost)
+                                settings.gap_s) if settings.error_tau_s > 0.0 else n.cost)
                     for n in live.values())
         ranked.append((score, seg, live))
     if not ranked or any(r[1] == current for r in ranked):

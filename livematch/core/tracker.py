@@ -1805,8 +1805,8 @@ class Tracker:
         :func:`livematch.core.startroots.best_root` sweeps the tree's fixes again
         from each segment within eps of the first fix alone; when the root of the
         best live candidate does not reach the newest fix that way (the tree bridged)
-        but others do, they are ranked by the forced commit's rule (live score while
-        fixes come less than ``SPARSE_S`` apart, else path cost, over each root's live
+        but others do (fixes less than ``SPARSE_S`` apart, median), they are ranked
+        by the forced commit's rule at such fixes (live score, over each root's live
         states), and the level's tree becomes the winner's states and their paths;
         the commit is decided on it. Why: the sweep keeps one state per segment and
         settles a vertex from the entry that reaches it first, so where a log begins
