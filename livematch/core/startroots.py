@@ -37,7 +37,6 @@ from __future__ import annotations
 import dataclasses
 import itertools
 import math
-import statistics
 from collections.abc import Sequence
 
 from livematch.core.network import RoadNetwork
@@ -114,8 +113,10 @@ def best_root(
     roots = fresh_start(network, ctx0)
     if len(roots) < 2 or current not in roots:
         return None
-    gaps = [b[1] - a[1] for a, b in itertools.pairwise(fixes)]
-    if statistics.median(gaps) >= sparse_s:
+    gaps = sorted(b[1] - a[1] for a, b in itertools.pairwise(fixes))
+    half = len(gaps) // 2
+    median = gaps[half] if len(gaps) % 2 else 0.5 * (gaps[half - 1] + gaps[half])
+    if median >= sparse_s:
         return None  # sparse fixes: a bridge is the common case there, no sign of a loss
     positions = {seq: (x, y) for seq, _, x, y in fixes}
     inv_two_sigma2 = 1.0 / (2.0 * settings.sigma_m * settings.sigma_m)
