@@ -29,8 +29,8 @@ def _tracker_after(n: int) -> Tracker:
     return tracker
 
 
-def test_the_key_is_off_by_default() -> None:
-    assert MatchSettings().smallest_commits is False
+def test_the_key_is_on_by_default() -> None:
+    assert MatchSettings().smallest_commits is True  # on since session 16
     keys = MatchSettings.keys()
     assert "smallest_commits" in keys
     assert MatchSettings(smallest_commits=1).problems()  # type: ignore[arg-type]

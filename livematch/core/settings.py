@@ -555,8 +555,30 @@ class MatchSettings:
             out-and-back lies within 60 m of where it came in), and when that tree dies
             too its salvage settled every fix up to its best leaf, also the ones the
             15 m level's new tree answers within 15 m: answers 37-55 m from their fixes
-            (docs/measured.md "Session 16 (fleet5)"). Off by default until the
-            decision runs say on.
+            (docs/measured.md "Session 16 (fleet5)"). On by default (session 16): on
+            bench/fleetmiss.py's decision runs (80 drives, seeds 31 / 77, both
+            extracts, routed trips and random walk, 1, 5 and 15 s) live answers are
+            identical everywhere and final answers change in four cells, none for the
+            worse: routed trips Helsinki 5 s (+12 / -0 and +2 / -0 fixes), test 5 s
+            seed 31 (+1 / -0) and test 1 s seed 77 (+18 / -0; route mismatch 1.456 ->
+            1.444 %).
+        start_roots: when the first commit of a vehicle's log is due (its tree started
+            at the oldest fix not committed), the fixes are swept again from each
+            segment within eps of the first fix alone; when the root of the best
+            candidate does not get through that way (the tree bridged a step) and other
+            roots do, the best of those by live score (the forced commit's rule at
+            such fixes) becomes the tree's only root and the commit is decided on it
+            (:mod:`livematch.core.startroots`). Only while fixes come less than 5 s
+            apart (median): at 15 or 30 s a tree bridges as a matter of course.
+            Why: a log that begins beside a parallel road has both roads as roots, and
+            the sweep's one state per segment can leave every candidate descended from
+            the wrong root, on a lineage that needs a bridge where the road driven,
+            swept alone, stays within eps. Final answers, the start of the committed
+            path, and the live answers after the rebuild. On by default: on
+            bench/fleetmiss.py's decision runs (80 drives, seeds 31 / 77, both models,
+            both extracts, 1 / 5 / 15 / 30 s) it turned 87 fixes right in routed trips
+            Helsinki 1 s seed 31 and none wrong; every other cell unchanged
+            (docs/measured.md "Session 16 (movestart)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -610,7 +632,8 @@ class MatchSettings:
     stand_pace: bool = False
     bridge_error_cross: bool = False
     speed_pace_m: float = 0.0
-    smallest_commits: bool = False
+    smallest_commits: bool = True
+    start_roots: bool = True
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -647,7 +670,8 @@ class MatchSettings:
                      "stand_at_vertex", "motion_step", "break_rejoin", "stand_turnback",
                      "speed_laps", "end_stand", "start_stand",
                      "end_stand_sparse", "bridge_error_corr", "stand_way_out",
-                     "stand_pace", "bridge_error_cross", "smallest_commits"):
+                     "stand_pace", "bridge_error_cross", "smallest_commits",
+                     "start_roots"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

@@ -100,6 +100,7 @@ from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
 from livematch.core.routing import connect, small_loop
 from livematch.core.settings import MatchSettings
+from livematch.core.startroots import best_root
 from livematch.core.sweep import Node, StepContext, advance
 from livematch.core.view import NetworkView, view_of
 from livematch.core.wayout import way_out_of_stand
@@ -1305,6 +1306,13 @@ class Tracker:
                     top = _CALLS.cut_and_check(tree.ti, self.next_commit, newest, False)
                 if top < 0:
                     continue
+                if s.start_roots and self.last_commit is None \
+                        and self._start_roots(level, dt):
+                    # the tree now grows from another root: is a commit still due?
+                    tree = level.tree
+                    top = _CALLS.cut_and_check(tree.ti, self.next_commit, newest, False)
+                    if top < 0:
+                        continue
                 # (both checks read no state a commit changes: the stand's once a fix,
                 # first, as it needs no chain; the chain built once for the deferral
                 # check and the commit)
@@ -1329,6 +1337,8 @@ class Tracker:
                 too_many = False  # a stand: only the time bound forces (see _standing)
             if (too_many or too_old) and covering:
                 level = covering[0]
+                if s.start_roots and self.last_commit is None:
+                    self._start_roots(level, dt)
                 tree = level.tree
                 keep = min(self._lag_target(seq, t), newest)
                 # fixes this dense: the best candidate by live score (see _live_scores)
@@ -1855,6 +1865,42 @@ class Tracker:
             self.lap_v = {t: v for t, v in self.lap_v.items() if t >= top.t}
         if prune is not None:
             prune.tree.prune(row)
+
+    def _start_roots(self, level: Level, dt: float) -> bool:
+        """Before the log's first commit: rebuild ``level``'s tree from its best root alone.
+
+        Rule (``MatchSettings.start_roots``; only while nothing is committed, asked
+        when a commit of ``level`` is due; ``dt``: the last step, s):
+        :func:`livematch.core.startroots.best_root` sweeps the tree's fixes again
+        from each segment within eps of the first fix alone; when the root of the
+        best live candidate does not reach the newest fix that way (the tree bridged)
+        but others do (fixes less than ``SPARSE_S`` apart, median), they are ranked
+        by the forced commit's rule at such fixes (live score, over each root's live
+        states), and the level's tree becomes the winner's states and their paths;
+        the commit is decided on it. Why: the sweep keeps one state per segment and
+        settles a vertex from the entry that reaches it first, so where a log begins
+        beside a parallel road every candidate can descend from the other road's
+        root by the time they agree, and that lineage may need a bridge where the
+        road driven, swept alone, stays within eps (docs/measured.md, "Session 15
+        (logstart)" and "Session 16 (movestart)").
+        Returns whether the tree was rebuilt.
+        """
+        tree = level.tree
+        if level.tree_seq != self.next_commit or tree.hi <= tree.lo:
+            return False  # the tree did not start at the oldest fix not committed
+        scores = self._live_scores(level) if dt < SPARSE_S else None
+        chain, before = tree.chain(self._view, tree.best(self.last_seg, scores),
+                                   self.next_commit)
+        if before is not None or not chain or chain[0].seq != level.tree_seq:
+            return False
+        fixes = [(n.seq, n.t, *self._fix_xy_of(n)) for n in chain]
+        live = best_root(self.network, self.settings, level.eps, chain[0].seg, fixes,
+                         SPARSE_S)
+        if live is None:
+            return False
+        level.tree = CandidateTree.from_nodes(live)
+        level.cut = -1
+        return True
 
     def _end_stand(self, chain: list[Node], before: Node | None, eps: float,
                    fixes: list[MatchedFix]) -> None:
