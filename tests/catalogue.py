@@ -117,3 +117,18 @@ def final_answers(events: list[Event]) -> dict[float, tuple[int, float, float, f
 def committed_path(events: list[Event]) -> list[int]:
     """The committed path's segments, all commits in order."""
     return [s for e in events if isinstance(e, Commit) for s in e.path]
+
+
+def path_ways(net: RoadNetwork, path: list[int]) -> list[int]:
+    """The OpenStreetMap-style way id of each directed segment of ``path``."""
+    return [int(net.seg_way[s]) for s in path]
+
+
+def path_line(net: RoadNetwork, path: list[int]) -> object:
+    """The committed path as one shapely line (each segment's end is the next one's start)."""
+    import shapely  # only the tests that compare geometry need it
+
+    xy = net.node_xy
+    pts = [tuple(map(float, xy[net.seg_from[path[0]]]))]
+    pts += [tuple(map(float, xy[net.seg_to[s]])) for s in path]
+    return shapely.LineString(pts)

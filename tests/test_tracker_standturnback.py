@@ -20,6 +20,7 @@ from livematch.core.settings import MatchSettings
 from livematch.core.tracker import Tracker
 from livematch.errors import BadConfigError
 from livematch.pipeline import matcher_settings_from_mapping
+from tests.catalogue import path_line, path_ways
 
 shapely = pytest.importorskip("shapely")
 
@@ -80,18 +81,6 @@ def _settled(net: RoadNetwork, settings: MatchSettings, fixes: list[tuple[float,
     return settled, [s for c in commits for s in c.path]
 
 
-def _ways(net: RoadNetwork, path: list[int]) -> list[int]:
-    return [int(net.seg_way[s]) for s in path]
-
-
-def _line(net: RoadNetwork, path: list[int]) -> object:
-    """The committed path as one shapely line (each segment's end is the next one's start)."""
-    xy = net.node_xy
-    pts = [tuple(map(float, xy[net.seg_from[path[0]]]))]
-    pts += [tuple(map(float, xy[net.seg_to[s]])) for s in path]
-    return shapely.LineString(pts)
-
-
 def test_a_stand_whose_path_goes_round_a_ring_turns_back_at_the_vertex() -> None:
     """The van comes in by the stem, stands 40 s at V and leaves the way it came. Off,
     the committed path drives the ring back to J (no U-turn to charge); on, it turns
@@ -103,9 +92,9 @@ def test_a_stand_whose_path_goes_round_a_ring_turns_back_at_the_vertex() -> None
     fixes = _approach() + _stand() + _back_west()
     old, old_path = _settled(net, OFF, fixes)
     new, new_path = _settled(net, ON, fixes)
-    assert 3 in _ways(net, old_path)  # the ring, without the rule
-    assert 3 not in _ways(net, new_path)
-    assert _ways(net, new_path).count(2) == 4  # the stem in and out: two segments each way
+    assert 3 in path_ways(net, old_path)  # the ring, without the rule
+    assert 3 not in path_ways(net, new_path)
+    assert path_ways(net, new_path).count(2) == 4  # the stem in and out: two segments each way
     for a, b in itertools.pairwise(new_path):
         assert int(net.seg_to[a]) == int(net.seg_from[b])  # connected
     stand = range(len(_approach()) + 1, len(_approach()) + len(_stand()))
@@ -115,7 +104,7 @@ def test_a_stand_whose_path_goes_round_a_ring_turns_back_at_the_vertex() -> None
                                                                                  abs=1e-9)
         assert shapely.Point(fixes[i]).distance(shapely.Point(f.x, f.y)) <= EPS
     trace = shapely.LineString(fixes)
-    assert shapely.frechet_distance(trace, _line(net, new_path), densify=0.5) <= EPS
+    assert shapely.frechet_distance(trace, path_line(net, new_path), densify=0.5) <= EPS
     # the approach keeps its answers
     assert new[:len(_approach()) - 3] == old[:len(_approach()) - 3]
 
@@ -139,7 +128,7 @@ def test_a_van_that_drives_round_the_ring_without_standing_keeps_it() -> None:
     fixes = _approach() + [tuple(map(float, ring.interpolate(3.0 * i).coords[0]))
                            for i in range(1, int(ring.length / 3.0))] + _back_west()
     off = _settled(net, OFF, fixes)
-    assert 3 in _ways(net, off[1])
+    assert 3 in path_ways(net, off[1])
     assert _settled(net, ON, fixes) == off
 
 
@@ -153,7 +142,7 @@ def test_fixes_that_follow_a_large_ring_keep_it() -> None:
                                       for i in range(1, int(ring.length / 4.0))]
     fixes += [(-10.0 - 10.0 * i, 1.0) for i in range(10)]
     off = _settled(net, OFF, fixes)
-    assert 3 in _ways(net, off[1])
+    assert 3 in path_ways(net, off[1])
     assert _settled(net, ON, fixes) == off
 
 
@@ -165,7 +154,7 @@ def test_a_one_way_stem_is_never_driven_back() -> None:
     net = _network(SMALL_RING, one_way_stem=True)
     fixes = _approach() + _stand() + _back_west()
     off = _settled(net, OFF, fixes)
-    assert 3 in _ways(net, off[1])
+    assert 3 in path_ways(net, off[1])
     new, new_path = _settled(net, ON, fixes)
     xy = net.node_xy
     for s in new_path:
@@ -221,7 +210,7 @@ def test_a_stop_at_a_corner_of_a_narrow_block_at_5_s_keeps_the_block() -> None:
         _, path = _settled(net, ON, sparse, every=float(every))
         assert _settled(net, ON, sparse, every=float(every)) == _settled(net, OFF, sparse,
                                                                         every=float(every))
-        line = _line(net, path)
+        line = path_line(net, path)
         # the true route from where the committed path begins to where it ends
         route = shapely.LineString([line.coords[0], *block, line.coords[-1]])
         assert line.hausdorff_distance(route) == pytest.approx(0.0, abs=1e-6)
@@ -232,4 +221,4 @@ def test_a_stop_at_a_corner_of_a_narrow_block_at_5_s_keeps_the_block() -> None:
         _, path = _settled(net, ON, fixes[::5], every=5.0)
     finally:
         lifted.undo()
-    assert _line(net, path).hausdorff_distance(route) > 5.0  # a side of the block left out
+    assert path_line(net, path).hausdorff_distance(route) > 5.0  # a side of the block left out

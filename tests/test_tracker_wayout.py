@@ -14,7 +14,7 @@ from livematch.core.build import Road, network_from_roads
 from livematch.core.network import RoadNetwork
 from livematch.core.settings import MatchSettings
 from livematch.core.wayout import way_out_of_stand
-from tests.catalogue import committed_path, final_answers, track_points
+from tests.catalogue import committed_path, final_answers, path_line, path_ways, track_points
 
 shapely = pytest.importorskip("shapely")
 
@@ -66,18 +66,6 @@ def _north(lane: bool = False) -> list[tuple[float, float]]:
     return out + [(0.3, 40.0 + 10.0 * i) for i in range(1, 13)]
 
 
-def _ways(net: RoadNetwork, path: list[int]) -> list[int]:
-    return [int(net.seg_way[s]) for s in path]
-
-
-def _line(net: RoadNetwork, path: list[int]) -> object:
-    """The committed path as one shapely line (each segment's end is the next one's start)."""
-    xy = net.node_xy
-    pts = [tuple(map(float, xy[net.seg_from[path[0]]]))]
-    pts += [tuple(map(float, xy[net.seg_to[s]])) for s in path]
-    return shapely.LineString(pts)
-
-
 def test_a_stand_that_leaned_into_a_side_lane_leaves_by_the_street_it_drove() -> None:
     """The van stands 30 s at V with its error leaning towards the lane, then drives
     north along the street. Off, the stand draws the committed path into the lane (V to
@@ -91,13 +79,13 @@ def test_a_stand_that_leaned_into_a_side_lane_leaves_by_the_street_it_drove() ->
     old_ev = track_points(net, OFF, fixes)
     new_ev = track_points(net, ON, fixes)
     old_path, new_path = committed_path(old_ev), committed_path(new_ev)
-    assert LANE in _ways(net, old_path)  # the lane, without the rule
-    assert LANE not in _ways(net, new_path)
+    assert LANE in path_ways(net, old_path)  # the lane, without the rule
+    assert LANE not in path_ways(net, new_path)
     for a, b in itertools.pairwise(new_path):
         assert int(net.seg_to[a]) == int(net.seg_from[b])  # connected
     street = shapely.LineString([(0.0, -200.0), (0.0, 200.0)])
-    assert street.buffer(1e-6).covers(_line(net, new_path))  # the path lies on the street
-    assert _line(net, new_path).buffer(1e-6).covers(shapely.LineString([(0.0, 0.0), B]))
+    assert street.buffer(1e-6).covers(path_line(net, new_path))  # the path lies on the street
+    assert path_line(net, new_path).buffer(1e-6).covers(shapely.LineString([(0.0, 0.0), B]))
     new = final_answers(new_ev)
     for i, (x, y) in enumerate(fixes):
         seg, _, ax, ay = new[float(i)]
@@ -105,7 +93,7 @@ def test_a_stand_that_leaned_into_a_side_lane_leaves_by_the_street_it_drove() ->
         if i >= len(_approach()):
             assert int(net.seg_way[seg]) == STREET
     trace = shapely.LineString(fixes)
-    assert shapely.frechet_distance(trace, _line(net, new_path), densify=0.5) <= EPS
+    assert shapely.frechet_distance(trace, path_line(net, new_path), densify=0.5) <= EPS
     # the approach keeps its answers
     old = final_answers(old_ev)
     assert [new[float(i)] for i in range(10)] == [old[float(i)] for i in range(10)]
@@ -118,7 +106,7 @@ def test_a_van_that_leaves_by_the_lane_keeps_the_lane() -> None:
     fixes = _approach() + _stand() + _north(lane=True)
     old_ev = track_points(net, OFF, fixes)
     new_ev = track_points(net, ON, fixes)
-    assert LANE in _ways(net, committed_path(new_ev))
+    assert LANE in path_ways(net, committed_path(new_ev))
     assert committed_path(new_ev) == committed_path(old_ev)
     assert final_answers(new_ev) == final_answers(old_ev)
 
