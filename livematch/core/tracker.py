@@ -1888,6 +1888,15 @@ class Tracker:
         tree = level.tree
         if level.tree_seq != self.next_commit or tree.hi <= tree.lo:
             return False  # the tree did not start at the oldest fix not committed
+        if level.cert_seq <= level.tree_seq:
+            # the tree never bridged: its best candidate is a chain of sweep steps from
+            # its root to the newest fix, and what a sweep step reaches from a state
+            # does not depend on which parent the state keeps, so that root swept alone
+            # reaches the newest fix too and the replay would change nothing. Skipping
+            # it keeps the rule's cost to trees that bridged: asked at every fix while
+            # the first commit is due and deferred, the replay of every root made whole
+            # logs 1.6x slower (docs/measured.md, "Session 16 (lead)")
+            return False
         scores = self._live_scores(level) if dt < SPARSE_S else None
         chain, before = tree.chain(self._view, tree.best(self.last_seg, scores),
                                    self.next_commit)
