@@ -2916,6 +2916,11 @@ class Tracker:
         begin with a stand (:func:`_stood_within`, ``STAND_SIGMAS`` x ``sigma_m``), as
         :meth:`_turn_in_loop` reads one.
         """
+        if len(chain) < 2 or chain[-1].t - chain[0].t < STAND_S:
+            # no stand fits (it spans STAND_S and has a node after it): most commits at
+            # dense fixes are this short, and the scan of the path's vertices cost the
+            # whole path about 3.6 % at Helsinki (docs/measured.md, "Session 16 (lead)")
+            return chain
         still = STAND_SIGMAS * self.settings.sigma_m
 
         def stands(prev: Node, nodes: list[Node]) -> bool:
