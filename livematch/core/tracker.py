@@ -103,7 +103,7 @@ from livematch.core.settings import MatchSettings
 from livematch.core.startroots import best_root
 from livematch.core.sweep import Node, StepContext, advance
 from livematch.core.view import NetworkView, view_of
-from livematch.core.wayout import way_out_of_stand
+from livematch.core.wayout import relink, way_out_of_stand
 from livematch.errors import BadStateError
 
 STATE_FORMAT = b"LMT6"
@@ -2880,9 +2880,7 @@ class Tracker:
         shift = p + len(way) - j  # index change of the segments from segs[j] on
         v = int(view.sf[segs[p]])
         vx, vy = float(view.vx[v]), float(view.vy[v])
-        out: list[Node] = []
-        parent: Node = before
-        prev_at = 0
+        placed: list[tuple[Node, int]] = []
         n_back = 0
         for k, node in enumerate(chain):
             if at[k] < p:
@@ -2890,21 +2888,16 @@ class Tracker:
             elif k < end:
                 here = p - 1  # the stand: at V, the end of the segment into V
                 seg = new_segs[here]
-                node = Node(seg, node.seq, node.t, 1.0, vx, vy, parent, (), node.cost, 1.0)
+                node = Node(seg, node.seq, node.t, 1.0, vx, vy, None, (), node.cost, 1.0)
             elif at[k] < j:
                 w, pos, x, y = back[n_back]
                 n_back += 1
                 here = p + w
-                node = Node(way[w], node.seq, node.t, pos, x, y, parent, (), node.cost,
-                            pos)
+                node = Node(way[w], node.seq, node.t, pos, x, y, None, (), node.cost, pos)
             else:
                 here = at[k] + shift
-            node.parent = parent
-            node.via = tuple(new_segs[m] for m in range(prev_at + 1, here))
-            out.append(node)
-            parent = node
-            prev_at = here
-        return out
+            placed.append((node, here))
+        return relink(placed, before, new_segs)
 
     def _way_out_of_stand(self, chain: list[Node], before: Node, eps: float) -> list[Node]:
         """``chain`` with the road out of a stand's vertex read from the drive-off.

@@ -153,18 +153,33 @@ def way_out_of_stand(view: NetworkView, chain: list[Node], before: Node, eps: fl
     _, p, q, first, way, pts = best
     new_segs = [*segs[:p], *way, *segs[q + 1:]]
     shift = p + len(way) - (q + 1)  # index change of the segments from segs[q + 1] on
-    out: list[Node] = []
-    parent = before
-    prev_at = 0
+    placed: list[tuple[Node, int]] = []
     for k, node in enumerate(chain):
         if k < first:
             here = at[k]
         elif k < first + len(pts):
             w, pos, x, y = pts[k - first]
             here = p + w
-            node = Node(way[w], node.seq, node.t, pos, x, y, parent, (), node.cost, pos)
+            node = Node(way[w], node.seq, node.t, pos, x, y, None, (), node.cost, pos)
         else:
             here = at[k] + shift
+        placed.append((node, here))
+    return relink(placed, before, new_segs)
+
+
+def relink(placed: list[tuple[Node, int]], before: Node, new_segs: list[int]) -> list[Node]:
+    """Chain nodes onto a rewritten path: each node's parent and the segments between.
+
+    ``placed``: each node in order with the index in ``new_segs`` of the segment it sits
+    on (the path starts at ``before``'s segment, index 0). Each node gets the one before
+    it as parent and the path's segments strictly between the two as ``via``. Shared by
+    the rules that rewrite a committed chain round a stand (this module's, and
+    ``Tracker._rebuilt_turn``).
+    """
+    out: list[Node] = []
+    parent = before
+    prev_at = 0
+    for node, here in placed:
         node.parent = parent
         node.via = tuple(new_segs[m] for m in range(prev_at + 1, here))
         out.append(node)
