@@ -103,7 +103,7 @@ from livematch.core.settings import MatchSettings
 from livematch.core.startroots import best_root
 from livematch.core.sweep import Node, StepContext, advance
 from livematch.core.view import NetworkView, view_of
-from livematch.core.wayout import relink, way_out_of_stand
+from livematch.core.wayout import project_on, relink, way_out_of_stand
 from livematch.errors import BadStateError
 
 STATE_FORMAT = b"LMT6"
@@ -2847,7 +2847,7 @@ class Tracker:
                 if f is None or not way:
                     ok = False
                     break
-                hit = _project_on(view, way, w, low, f[0], f[1])
+                hit = project_on(view, way, w, low, f[0], f[1])
                 if hit is None or (hit[2] - f[0]) ** 2 + (hit[3] - f[1]) ** 2 > radius2:
                     ok = False
                     break
@@ -3449,30 +3449,6 @@ def _stood_within(pts: list[tuple[float, float]], times: list[float], radius: fl
             bx, by = pts[b]
             return all(math.hypot(x - bx, y - by) <= radius for x, y in pts[:b])
     return False
-
-
-def _project_on(view: NetworkView, way: list[int], w: int, low: float, x: float,
-                y: float) -> tuple[int, float, float, float] | None:
-    """The nearest point to (``x``, ``y``) on ``way`` at or after ``way[w]`` at ``low``.
-
-    Returns (index in ``way``, position on that segment, x, y), or None if ``way`` ends
-    before ``w``. Positions before ``low`` on ``way[w]`` are not taken: the points of
-    consecutive fixes go on along the way, never back.
-    """
-    best: tuple[float, tuple[int, float, float, float]] | None = None
-    for m in range(w, len(way)):
-        seg = way[m]
-        a, b = view.sf[seg], view.st[seg]
-        ax, ay = float(view.vx[a]), float(view.vy[a])
-        dx, dy = float(view.vx[b]) - ax, float(view.vy[b]) - ay
-        n2 = dx * dx + dy * dy
-        pos = ((x - ax) * dx + (y - ay) * dy) / n2 if n2 > 0.0 else 0.0
-        pos = min(1.0, max(low if m == w else 0.0, pos))
-        px, py = ax + pos * dx, ay + pos * dy
-        d = (px - x) ** 2 + (py - y) ** 2
-        if best is None or d < best[0]:
-            best = (d, (m, pos, px, py))
-    return None if best is None else best[1]
 
 
 def stand_step(dt: float, chord: float, gap_s: float, radius: float) -> bool:

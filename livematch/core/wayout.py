@@ -229,21 +229,34 @@ def _fit(view: NetworkView, way: list[int], fixes: list[tuple[float, float] | No
         if f is None:
             return None
         x, y = f
-        hit: tuple[float, tuple[int, float, float, float]] | None = None
-        for m in range(w, len(way)):
-            seg = way[m]
-            a, b = view.sf[seg], view.st[seg]
-            ax, ay = view.vx[a], view.vy[a]
-            dx, dy = view.vx[b] - ax, view.vy[b] - ay
-            n2 = dx * dx + dy * dy
-            pos = ((x - ax) * dx + (y - ay) * dy) / n2 if n2 > 0.0 else 0.0
-            pos = min(1.0, max(low if m == w else 0.0, pos))
-            px, py = ax + pos * dx, ay + pos * dy
-            d = (px - x) ** 2 + (py - y) ** 2
-            if hit is None or d < hit[0]:
-                hit = (d, (m, pos, px, py))
-        if hit is None or hit[0] > radius2:
+        hit = project_on(view, way, w, low, x, y)
+        if hit is None or (hit[2] - x) ** 2 + (hit[3] - y) ** 2 > radius2:
             return None
-        w, low = hit[1][0], hit[1][1]
-        out.append(hit[1])
+        w, low = hit[0], hit[1]
+        out.append(hit)
     return out
+
+
+def project_on(view: NetworkView, way: list[int], w: int, low: float, x: float,
+                y: float) -> tuple[int, float, float, float] | None:
+    """The nearest point to (``x``, ``y``) on ``way`` at or after ``way[w]`` at ``low``.
+
+    Returns (index in ``way``, position on that segment, x, y), or None if ``way`` ends
+    before ``w``. Positions before ``low`` on ``way[w]`` are not taken: the points of
+    consecutive fixes go on along the way, never back. Shared by the rules that move a
+    stand's fixes onto a new way (this module's and ``stand_turnback``'s).
+    """
+    best: tuple[float, tuple[int, float, float, float]] | None = None
+    for m in range(w, len(way)):
+        seg = way[m]
+        a, b = view.sf[seg], view.st[seg]
+        ax, ay = float(view.vx[a]), float(view.vy[a])
+        dx, dy = float(view.vx[b]) - ax, float(view.vy[b]) - ay
+        n2 = dx * dx + dy * dy
+        pos = ((x - ax) * dx + (y - ay) * dy) / n2 if n2 > 0.0 else 0.0
+        pos = min(1.0, max(low if m == w else 0.0, pos))
+        px, py = ax + pos * dx, ay + pos * dy
+        d = (px - x) ** 2 + (py - y) ** 2
+        if best is None or d < best[0]:
+            best = (d, (m, pos, px, py))
+    return None if best is None else best[1]
