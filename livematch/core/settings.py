@@ -523,19 +523,6 @@ class MatchSettings:
             junction answers both ways; the lean towards a road alongside is across the
             road. Takes precedence over ``bridge_error_corr``. Off by default
             (docs/measured.md "Session 16 (walkloop)").
-        pace_detour: in a bridged step over more than ``gap_s`` seconds, the route term
-            charges a candidate's route for its difference from the straight step or
-            from the length the candidate's own last speed predicts (the pace term's
-            expectation, :func:`livematch.core.sweep.pace`), whichever is smaller,
-            instead of from the straight step alone (:func:`livematch.core.sweep._offer`).
-            Why: at 30 s between fixes a vehicle going round a loop shorter than one
-            step's drive puts its fixes where the other way round puts them at a crawl
-            (a 194 m turning loop at 5 m/s: 148 m per step one way, 45 m the other); the
-            route-against-chord term (Newson & Krumm 2009) charges the true way about 10
-            units per fix for a route three times its chord, and the pace term charges
-            the crawl only where it begins and ends, so the wrong way wins a whole visit
-            (docs/measured.md "Session 17 (sparse30)"). A route as long as the
-            candidate's own speed predicts is not a detour. Off by default.
         speed_pace_m: where the new fix reports its speed over ground (the optional
             ``speed`` of a position message) and the step from the fix before is longer
             than ``gap_s``, the bridged step's pace term, for every candidate, charges a
@@ -647,7 +634,6 @@ class MatchSettings:
     speed_pace_m: float = 0.0
     smallest_commits: bool = True
     start_roots: bool = True
-    pace_detour: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -685,7 +671,7 @@ class MatchSettings:
                      "speed_laps", "end_stand", "start_stand",
                      "end_stand_sparse", "bridge_error_corr", "stand_way_out",
                      "stand_pace", "bridge_error_cross", "smallest_commits",
-                     "start_roots", "pace_detour"):
+                     "start_roots"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

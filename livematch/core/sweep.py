@@ -120,9 +120,6 @@ class StepContext:
     pace_free: bool = False
     error_cross: bool = False
     speed_route: float = -1.0
-    # the route term measures a route against the pace term's expectation too, and
-    # charges the smaller difference (MatchSettings.pace_detour)
-    pace_detour: bool = False
 
     @classmethod
     def between(
@@ -233,14 +230,7 @@ def _offer(
                 turns += 1
                 street += not ok[head[prev]]
             cost += turns * ctx.turn_back_cost + street * ctx.street_turn_cost
-        detour = abs(route - ctx.chord)
-        if ctx.pace_detour and expect >= 0.0 and ctx.speed_route < 0.0:
-            # settings.pace_detour: a route as long as the candidate's own speed
-            # predicts is no detour
-            ahead = abs(route - expect)
-            if ahead < detour:
-                detour = ahead
-        cost += parent.cost + detour * ctx.inv_beta
+        cost += parent.cost + abs(route - ctx.chord) * ctx.inv_beta
         if ctx.speed_route >= 0.0:
             # settings.speed_pace_m: only a route shorter than the reported speeds'
             # least distance driven is charged
@@ -591,8 +581,6 @@ def advance(
                 and settings.error_tau_s > 0.0 and dt > settings.gap_s):
             ctx = replace(ctx, error_rho=math.exp(-dt / settings.error_tau_s),
                           error_cross=settings.bridge_error_cross)
-        if settings.pace_detour and dt > settings.gap_s:
-            ctx = replace(ctx, pace_detour=True)
         new = bridge_step(network, live, ctx, limit)
         if new:
             return new, "bridged"
