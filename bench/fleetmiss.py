@@ -13,8 +13,9 @@ order (a diagnostic of the harness, read from the truth and from what the tracke
 
 - ``unanswered``: a fix without a final answer;
 - ``coincident way``: for most fixes of the episode the answered segment joins the same
-  two vertices, with the same length within 1 m, as a segment of the true path within
-  two of the truth's (the map has two ways over one road; no fix can tell them apart);
+  two vertices, with the same length within 1 m, as another segment of the true path
+  within two of the truth's (the map has two ways over one road; no fix can tell them
+  apart; the answered segment itself on the path nearby is not one);
 - ``start``: the episode begins in the first 30 s of the drive's log;
 - ``end``: it ends in the last 30 s (settled by the end-of-log flush or just before);
 - stands (most of the episode's fixes are at truth seconds where the vehicle does not
@@ -28,7 +29,9 @@ order (a diagnostic of the harness, read from the truth and from what the tracke
   driven), ``stand: other``;
 - moving: ``outlier`` (an outlier fix within two fixes of the episode), ``forced
   commit`` (a fix of the episode was settled by a forced commit, ``max_lag_*``),
-  ``wrong direction`` (twin of the true segment), ``roundabout`` (the true or the
+  ``turn between fixes`` (the truth turns round, a segment then its twin, between the
+  fix before and the fix after one of the episode's: at 15-30 s mostly in and out of a
+  dead end), ``wrong direction`` (twin of the true segment), ``roundabout`` (the true or the
   answered road is tagged junction=roundabout/circular), ``on path, > 30 m`` (the answer
   is on the true path but out of the tolerance), ``junction`` (the answered segment
   shares a vertex with the true segment or the one before or after it on the path),
@@ -158,7 +161,8 @@ def _cause(network: Any, drive: Any, obs: list[Any], match: Any, motion: list[st
     dup = 0
     for p, f in zip(truths, finals, strict=True):
         near = drive.path[max(0, p.path_index - 2):p.path_index + 3]
-        dup += any(int(sf[s]) == int(sf[f.segment]) and int(st[s]) == int(st[f.segment])
+        dup += any(s != f.segment and int(sf[s]) == int(sf[f.segment])
+                   and int(st[s]) == int(st[f.segment])
                    and abs(float(network.seg_len[s]) - float(network.seg_len[f.segment])) < 1.0
                    for s in near)
     if 2 * dup >= len(idx):
@@ -188,6 +192,8 @@ def _cause(network: Any, drive: Any, obs: list[Any], match: Any, motion: list[st
     if any(SETTLED.get((v, float(obs[i].t))) == "forced" for i in idx):
         return "forced commit"
     pairs = list(zip(truths, finals, strict=True))
+    if any(_turns_between(drive, obs, i, twin) for i in idx):
+        return "turn between fixes"
     if any(int(twin[p.segment]) == f.segment for p, f in pairs):
         return "wrong direction"
     if any(roundabout(network, p.segment) or roundabout(network, f.segment) for p, f in pairs):
@@ -203,6 +209,13 @@ def _cause(network: Any, drive: Any, obs: list[Any], match: Any, motion: list[st
     if min(math.hypot(f.x - p.x, f.y - p.y) for p, f in pairs) <= 20.0:
         return "parallel/close"
     return "other"
+
+
+def _turns_between(drive: Any, obs: list[Any], i: int, twin: Any) -> bool:
+    """Whether the truth turns round (a segment, then its twin) between fix i-1 and i+1."""
+    a = drive.truth[obs[max(0, i - 1)].truth_index].path_index
+    b = drive.truth[obs[min(len(obs) - 1, i + 1)].truth_index].path_index
+    return any(int(twin[drive.path[j]]) == drive.path[j + 1] for j in range(a, b))
 
 
 def _episode(network: Any, drive: Any, obs: list[Any], match: Any, motion: list[str],
