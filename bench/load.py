@@ -24,7 +24,10 @@ on this machine and loopback only:
   ``group.standby_qos`` = 0) or ``livematch-2s1`` (the same with ``standby_qos = 1``:
   every shard topic at QoS 1, as before that option existed) or ``livematch-2s0`` (the
   same with ``group.standby = false``: each worker subscribes only to the shards it
-  holds, about half the feed) or ``livematch-2sk`` /
+  holds, about half the feed) or ``livematch-2sm`` (a mixed pair: w0 as in
+  ``livematch-2s``, w1 as in ``livematch-2s0``; next to ``livematch-2s0`` in the same
+  round, w0's CPU over w1's in the two steps gives what standing by costs a worker,
+  with the machine's drift between steps cancelled within each step) or ``livematch-2sk`` /
   ``livematch-2sk1`` (the same two, but the generators send only vehicles of the shards
   that worker w1 holds, the first ``rate`` vehicle ids whose shard it holds: w0 only
   keeps every fix, so its CPU per fix is what a kept fix costs, through the broker,
@@ -114,7 +117,8 @@ START_TIMEOUT_S = 600.0  # a worker's start until /readyz answers 200 (a cold co
 STOP_TIMEOUT_S = 60.0  # a stopped process's exit (a worker's final checkpoints), then SIGKILL
 WARM_FIXES = 3  # outputs each warm-up vehicle must have had
 CPROFILE_TO: Path | None = None  # --cprofile: run every livematch worker under cProfile
-SPY_TO: Path | None = None  # --py-spy-to: sample the first livematch worker with py-spy
+SPY_TO: Path | None = None  # --py-spy-to: sample every livematch worker with py-spy
+SPY_RATE = 200  # --py-spy-rate: samples a second
 GRACE_S = 5.0  # outputs arriving later than the step's end + this are missing
 MAX_P99_MS = 1000.0
 MAX_GROWTH_MS = 100.0
@@ -875,7 +879,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                 metrics_ports.append(free_port())
                 cfg = daemon_config(folder, port, store, f"w{w}", group,
                                     SHARD_TOPIC if shards else IN_TOPIC, metrics_ports[-1],
-                                    standby_qos, system != "livematch-2s0")
+                                    standby_qos, system != "livematch-2s0"
+                                    and not (system == "livematch-2sm" and w == 1))
                 cmd = [sys.executable, "-m", "livematch.cli"]
                 if CPROFILE_TO is not None:  # --cprofile: each worker's profile at its exit
                     cmd = [sys.executable, "-m", "cProfile", "-o",
@@ -905,16 +910,22 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
             if gen.stdout.readline().strip() != b"ready":
                 raise RuntimeError("a generator did not start")
         sub.got.clear()
-        spy = None
-        spy_out = (probe_to / "py-spy.txt" if py_spy and probe_to is not None else
-                   SPY_TO / f"{system}.{rate}.{time.time():.0f}.txt"
-                   if SPY_TO is not None and system.startswith("livematch") else None)
-        if spy_out is not None:
-            spy = subprocess.Popen([py_spy_binary(), "record",
-                                    "--pid", str(sut[0].pid), "--rate", "200", "--format",
-                                    "raw", "--duration", str(seconds + 1), "--output",
-                                    str(spy_out)],
-                                   stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        spies: list[subprocess.Popen[bytes]] = []
+        stamp = f"{time.time():.0f}"
+        spy_outs = ([(sut[0].pid, probe_to / "py-spy.txt")] if py_spy and probe_to is not None
+                    else [(p.pid, SPY_TO / f"{system}.{rate}.w{k}.{stamp}.txt")
+                          for k, p in enumerate(sut)]
+                    if SPY_TO is not None and system.startswith("livematch") else [])
+        for pid, spy_out in spy_outs:
+            # --py-spy-to: only the thread holding the GIL is sampled, without stopping
+            # the process (a thread waiting on a lock or queue, or the loop in epoll,
+            # is not counted as busy, and the workers are not paused 200 times a second)
+            spies.append(subprocess.Popen(
+                [py_spy_binary(), "record", "--pid", str(pid), "--rate",
+                 str(SPY_RATE if SPY_TO is not None else 200), "--format", "raw",
+                 "--duration", str(seconds + 1), "--output", str(spy_out)]
+                + (["--gil", "--nonblocking"] if SPY_TO is not None else []),
+                stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL))
         scraped = metrics_ports if count_publishes else []
         published0 = [scrape_published(mp) for mp in scraped]
         window0 = time.time()
@@ -943,7 +954,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
             out, _ = gen.communicate(timeout=60)
             reports.append(json.loads(out.decode().strip().splitlines()[-1]))
         got = list(sub.got)
-        if spy is not None:
+        for spy in spies:
             spy.wait(timeout=60)
     finally:
         if sub is not None:
@@ -1264,6 +1275,7 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
                 + ", ".join(f"{k:.3f} / {m:.3f}" for k, m in each)
                 + f"; medians {statistics.median(k for k, _ in each):.3f} / "
                 f"{statistics.median(m for _, m in each):.3f}.")
+    out += _standby_cost_lines(r)
     pairs = [s for s in r["systems"] if s in ("livematch-2", "livematch-2s", "livematch-2s1",
                                                   "livematch-2s0")]
     if "livematch-1" not in r["systems"] or not pairs:
@@ -1294,6 +1306,45 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
                 + (" Held at the end of the step and received during it, w0 / w1, per "
                    "round: " + "; ".join(shares) + "." if shares else ""))
     return out
+
+
+def _standby_cost_lines(r: dict[str, Any]) -> list[str]:
+    """What standing by costs a worker, from ``livematch-2sm`` next to ``livematch-2s0``.
+
+    In ``livematch-2sm`` w0 stands by for w1's shards and w1 for none; in
+    ``livematch-2s0`` neither does. Both steps match the same vehicles on the same
+    workers, so w0 / w1 in ``livematch-2s0`` is the pair's own imbalance (w0 holds a few
+    more vehicles), and (w0 / w1 in ``livematch-2sm``) / (w0 / w1 in ``livematch-2s0``)
+    - 1 is what standing by adds to w0's CPU: each ratio is taken within one step, so
+    the machine's drift between steps cancels (both workers share it), unlike
+    ``livematch-2s`` against ``livematch-2s0``, whose steps run a minute apart. The added
+    CPU per fix of the whole feed is w0 - w1 x (w0 / w1 without standbys), from the
+    ``livematch-2sm`` step. Empty without both systems.
+    """
+    if not {"livematch-2sm", "livematch-2s0"} <= set(r["systems"]):
+        return []
+    each = []
+    for k in range(1, r["repeat"] + 1):
+        got = {}
+        for row in r["steps"]:
+            w = row.get("worker_ms_per_fix") or []
+            if row["repeat"] == k and row["system"] in ("livematch-2sm", "livematch-2s0") \
+                    and len(w) == 2 and min(w) > 0:
+                got[row["system"]] = w
+        if len(got) == 2:
+            (m0, m1), (z0, z1) = got["livematch-2sm"], got["livematch-2s0"]
+            base = z0 / z1
+            each.append(((m0 / m1) / base - 1, m0 - m1 * base))
+    if not each:
+        return []
+    return [
+        "livematch-2sm against livematch-2s0 (w0 stands by for w1's shards in the first, "
+        "neither in the second): what standing by adds to w0's CPU, "
+        "(w0 / w1 with) / (w0 / w1 without) - 1, per round: "
+        + ", ".join(f"{x:+.1%}" for x, _ in each)
+        + f" (median {statistics.median(x for x, _ in each):+.1%}); in CPU ms per fix of "
+        "the whole feed: " + ", ".join(f"{d:+.3f}" for _, d in each)
+        + f" (median {statistics.median(d for _, d in each):+.3f})."]
 
 
 # ---------------------------------------------------------------- the profile mode
@@ -1609,10 +1660,13 @@ def main(argv: list[str] | None = None) -> int:
                          "counts per fix; the profiler's own cost makes the CPU figures "
                          "unusable)")
     ap.add_argument("--py-spy-to", default="",
-                    help="with --cpu-per-fix: sample the (first) livematch worker of each "
-                         "step with py-spy at 200 Hz, raw collapsed stacks into this folder "
-                         "as <system>.<rate>.<time>.txt (its CPU figures then include the "
-                         "sampling's own cost)")
+                    help="with --cpu-per-fix: sample every livematch worker of each step "
+                         "with py-spy (the thread holding the GIL, without pausing the "
+                         "process), raw collapsed stacks into this folder as "
+                         "<system>.<rate>.w<k>.<time>.txt (its CPU figures then include "
+                         "the sampling's own cost; bench/spyshares.py sums them)")
+    ap.add_argument("--py-spy-rate", type=int, default=200,
+                    help="with --py-spy-to: samples a second")
     ap.add_argument("--no-probe", action="store_true",
                     help="with --cpu-per-fix: run livematch-1 without the probe (its "
                          "timers cost CPU the other systems do not pay; no pipeline split)")
@@ -1667,13 +1721,14 @@ def main(argv: list[str] | None = None) -> int:
                 args.inflight, args.py_spy, out, name)
         return 0
     if args.cpu_per_fix:
-        global CPROFILE_TO, SPY_TO
+        global CPROFILE_TO, SPY_TO, SPY_RATE
         if args.cprofile:
             CPROFILE_TO = Path(args.cprofile)
             CPROFILE_TO.mkdir(parents=True, exist_ok=True)
         if args.py_spy_to:
             SPY_TO = Path(args.py_spy_to)
             SPY_TO.mkdir(parents=True, exist_ok=True)
+            SPY_RATE = args.py_spy_rate
         out = Path(args.out)
         out.mkdir(parents=True, exist_ok=True)
         systems = (args.systems.split(",") if "--systems" in argv
