@@ -19,7 +19,9 @@ parking aisles side by side, a bus station's lanes) at a distance no larger than
 GNSS error (sigma 5 m per axis in the bench's drives, correlated over ``tau`` = 45 s):
 the fixes alone cannot tell the two apart, and the score counts the answer as a road
 not driven. The separation reported is the distance from the answered point to the
-nearest driven segment (buckets up to 3, 5 and ``--within`` m).
+nearest driven segment (buckets up to 3, 5 and ``--within`` m); the commit that settled
+each such fix is counted as the dump records it (``agreed``, or ``forced``: a commit at
+the lag bound or the end-of-log flush, which ``bench/fleetmiss.py`` records alike).
 
 Usage::
 
@@ -138,6 +140,7 @@ def main(argv: list[str] | None = None) -> int:
         kinds: Counter[str] = Counter()
         seps: Counter[str] = Counter()
         by_cause: Counter[str] = Counter()
+        by_commit: Counter[str] = Counter()
         listed = []
         for e in eps:
             v = e["vehicle"]
@@ -165,6 +168,7 @@ def main(argv: list[str] | None = None) -> int:
                     n_along += 1
                     seps[bucket(sep, args.within)] += 1
                     by_cause[e["cause"]] += 1
+                    by_commit[str(r.get("how"))] += 1
                     sep_e.append(sep)
             if n_along:
                 listed.append({"vehicle": v, "fix": e["fixes"][0]["i"], "n": e["n"],
@@ -176,6 +180,7 @@ def main(argv: list[str] | None = None) -> int:
                "missed_fixes": misses, "kind": dict(kinds.most_common()),
                "alongside_by_separation": dict(sorted(seps.items())),
                "alongside_by_fleetmiss_cause": dict(by_cause.most_common()),
+               "alongside_by_commit": dict(by_commit.most_common()),
                "episodes": listed}
         out.append(row)
         print(json.dumps({**row, "episodes": listed[:args.top]}), flush=True)
