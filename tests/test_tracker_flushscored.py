@@ -12,21 +12,22 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import shapely
-from catalogue import final_answers, track_points
 from scipy.stats import multivariate_normal
 
 from livematch.core.build import Road, network_from_roads
-from livematch.core.events import Commit
+from livematch.core.events import Commit, Event
 from livematch.core.fix import Fix
+from livematch.core.network import RoadNetwork
 from livematch.core.settings import MatchSettings
 from livematch.core.tracker import Tracker
+from tests.catalogue import final_answers, track_points
 
 LEAN_M = 6.0
 MAIN, SIDE = 1, 2
 SIGMA_M, TAU_S = 5.0, 30.0
 
 
-def _fork() -> object:
+def _fork() -> RoadNetwork:
     main = Road([(float(x), 0.0) for x in range(0, 601, 50)], way=MAIN, name="Main")
     side = Road([(200.0, 0.0), (215.0, LEAN_M)]
                 + [(float(x), LEAN_M) for x in range(250, 601, 50)], way=SIDE, name="Side")
@@ -37,9 +38,9 @@ def _pts(n: int = 36, step: float = 10.0) -> list[tuple[float, float]]:
     return [(step * i, LEAN_M) for i in range(n)]
 
 
-def _ways(net: object, events: list[object]) -> list[int]:
+def _ways(net: RoadNetwork, events: list[Event]) -> list[int]:
     answers = final_answers(events)
-    return [int(net.seg_way[answers[t][0]]) for t in sorted(answers)]  # type: ignore[attr-defined]
+    return [int(net.seg_way[answers[t][0]]) for t in sorted(answers)]
 
 
 def _log_density(offsets: np.ndarray, times: np.ndarray, correlated: bool) -> float:
@@ -99,10 +100,10 @@ def test_flush_scored_leaves_sparse_fixes_and_the_commits_before_the_flush() -> 
     assert track_points(net, MatchSettings(), sparse, dt=5.0) == \
         track_points(net, MatchSettings(flush_scored=True), sparse, dt=5.0)
     pts = _pts()
-    before = []
+    before: list[list[Event]] = []
     for on in (False, True):
-        tracker = Tracker(net, "v", MatchSettings(flush_scored=on))  # type: ignore[arg-type]
-        events = []
+        tracker = Tracker(net, "v", MatchSettings(flush_scored=on))
+        events: list[Event] = []
         for i, (x, y) in enumerate(pts):
             events += tracker.update(Fix("v", float(i), 0.0, 0.0, x, y))
         before.append(events)
