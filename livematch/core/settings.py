@@ -579,6 +579,16 @@ class MatchSettings:
             both extracts, 1 / 5 / 15 / 30 s) it turned 87 fixes right in routed trips
             Helsinki 1 s seed 31 and none wrong; every other cell unchanged
             (docs/measured.md "Session 16 (movestart)").
+        flush_scored: the end-of-log flush (and eviction) commits the candidate with the
+            lowest live score (see ``error_tau_s``), as a forced commit does, instead of
+            the lowest path cost, while the pending fixes come less than 5 s apart (their
+            median step; :meth:`livematch.core.tracker.Tracker._flush_scores`). Why: at
+            the end of a log nothing can make the candidates agree any more, and the path
+            cost, which counts each fix's error as independent, commits the branch a GNSS
+            error leaning one way over the last tens of seconds favours (a road out of
+            the junction where the vehicle stands, a road alongside), where the live
+            answer, ranked by the live score, was on the road driven. Final answers of
+            the flushed fixes and the end of the committed path only. Off by default.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -634,6 +644,7 @@ class MatchSettings:
     speed_pace_m: float = 0.0
     smallest_commits: bool = True
     start_roots: bool = True
+    flush_scored: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -671,7 +682,7 @@ class MatchSettings:
                      "speed_laps", "end_stand", "start_stand",
                      "end_stand_sparse", "bridge_error_corr", "stand_way_out",
                      "stand_pace", "bridge_error_cross", "smallest_commits",
-                     "start_roots"):
+                     "start_roots", "flush_scored"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

@@ -443,11 +443,42 @@ class Tracker:
                 self._accept(ready, events)
         covering = self._covering()
         if covering:
-            tree = covering[0].tree
-            self._commit_chain(tree, tree.best(self.last_seg), events, prune=covering[0],
+            level = covering[0]
+            tree = level.tree
+            score = self._flush_scores(level) if self.settings.flush_scored else None
+            self._commit_chain(tree, tree.best(self.last_seg, score), events, prune=level,
                                settle_all=True)
         self.before = None  # what is committed stays: no fix is dropped after this
         return events
+
+    def _flush_scores(self, level: Level) -> np.ndarray | None:
+        """The live scores that rank the flush's candidates, or None (rank by path cost).
+
+        Rule (``MatchSettings.flush_scored``): while the pending fixes come less than
+        ``SPARSE_S`` apart (the median step of the fix times kept, which run from the
+        last committed fix to the newest), the end-of-log flush commits the candidate
+        with the lowest live score (:meth:`_live_scores`), as a forced commit does at
+        such fixes, instead of the lowest path cost. Why: nothing after the last fix
+        can make the candidates agree, and the path cost, which charges each fix's
+        error as independent, picks the branch that a GNSS error leaning one way for
+        the last tens of seconds favours (a road out of the junction the vehicle
+        stands at, a road alongside); the live score charges the changes of a
+        candidate's offset from the fixes, not the offset itself.
+
+        Example (no fix yet: nothing to rank):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "v1", MatchSettings(flush_scored=True))
+            >>> tracker._flush_scores(tracker.levels[0]) is None
+            True
+        """
+        times = self.times
+        if len(times) < 2:
+            return None
+        gaps = sorted(b - a for a, b in itertools.pairwise(times))
+        if gaps[len(gaps) // 2] >= SPARSE_S:
+            return None
+        return self._live_scores(level)
 
     def _admit(self, fix: Fix, events: list[Event]) -> Iterator[Fix]:
         newest = self.last_released_t
