@@ -55,7 +55,8 @@ checkpoint bytes (:meth:`Pipeline.export_vehicle`, about 2 KB) instead of its li
 tracker and monitors (about 13 KB driven), and restored when its next message arrives or
 anything else needs it (a stale check that is due, eviction, the end-of-log flush). The
 shell says when: :meth:`Pipeline.park_idle` with its receive clock (``livematch replay``
-after every message with that message's ``at``, the daemon twice a second). A restored
+after every message with that message's ``at``; the daemon a few vehicles after every
+message and in each round of its checkpoint loop, on its wall clock). A restored
 tracker goes on exactly as one never stopped, so parking changes no output; it trades
 the CPU of a save and a restore per parked interval for the memory of a live vehicle.
 """
