@@ -755,7 +755,8 @@ class Pipeline:
             now: the shell's receive clock (epoch s): the daemon's wall clock, the replay
                 log's ``at``. The same clock as the ``at`` given to :meth:`handle`.
             limit: park at most this many (None: all that are due). Parking one costs a
-                checkpoint (about 0.1-0.3 ms): the daemon parks a few after each message
+                checkpoint (about 1 ms at 15-30 s between fixes on a loaded machine,
+                ``bench/memory.py`` step 8): the daemon parks a few after each message
                 rather than thousands in one turn of its event loop.
 
         Returns the number of vehicles parked; 0 at once while parking is off. Vehicles

@@ -140,8 +140,9 @@ _FULL_LOG_EVERY_S = 10.0
 _CLOCK_AHEAD_S = 300.0
 # Vehicles parked ([store] park_after_s) after each message handled, and in each round
 # of the checkpoint loop (when few messages come). Parking one costs a checkpoint (about
-# 0.1-0.3 ms): two a message keep up with the vehicles a message can make live, and
-# spread that cost instead of parking thousands in one turn of the event loop.
+# 1 ms at 15-30 s between fixes on a loaded machine: bench/memory.py step 8): two a
+# message keep up with the vehicles a message can make live, and spread that cost
+# instead of parking thousands in one turn of the event loop.
 _PARK_PER_MESSAGE = 2
 _PARK_PER_ROUND = 200
 # Garbage collections at least this long are logged (seconds).
