@@ -4,7 +4,6 @@ fixes give exactly the outputs of vehicles kept live, through the pipeline and r
 from __future__ import annotations
 
 import importlib.resources
-import itertools
 import json
 import math
 import tomllib
@@ -13,12 +12,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 import shapely
+from test_pipeline_alerts import NET, PROJ, ROUTES, T0, points
 
 from livematch.commands.replay import OUTPUT_FILES, load_park_after, replay
 from livematch.config import StoreConfig, load_config
-from livematch.core.build import Road, network_from_roads
-from livematch.core.geometry import Projection
-from livematch.core.monitors import AlertSettings, Fence, Route
+from livematch.core.monitors import AlertSettings, Fence
 from livematch.core.settings import MatchSettings
 from livematch.errors import BadConfigError
 from livematch.feed.decode import FeedLimits
@@ -32,38 +30,10 @@ from livematch.sim.logs import replay_records
 
 ROOT = Path(__file__).resolve().parent.parent
 SAMPLES = ROOT / "replay_logs"
-T0 = 1_764_576_000.0
-PROJ = Projection.local(24.94, 60.17)
-
-
-def _grid() -> object:
-    """A 5 x 5 grid of two-way streets 200 m apart (0..800 m), shape points every 50 m."""
-    roads = []
-    for i in range(5):
-        pts = [float(v) for v in range(0, 801, 50)]
-        roads.append(Road([(x, 200.0 * i) for x in pts], way=10 + i))
-        roads.append(Road([(200.0 * i, y) for y in pts], way=20 + i))
-    return network_from_roads(roads, PROJ)
-
-
-GRID = _grid()
-ROUTES = {
-    "R": Route("R", np.array([[0.0, 0.0], [800.0, 0.0], [800.0, 800.0]])),
-    "N": Route("N", np.array([[400.0, 0.0], [400.0, 800.0]])),
-}
 
 
 def _fence() -> Fence:
     return Fence("yard", shapely.box(350.0, -60.0, 450.0, 260.0), "Yard")
-
-
-def _points(corners: list[tuple[float, float]], step: float) -> list[tuple[float, float]]:
-    out: list[tuple[float, float]] = []
-    for (ax, ay), (bx, by) in itertools.pairwise(corners):
-        n = max(1, round(math.hypot(bx - ax, by - ay) / step))
-        out.extend((ax + (bx - ax) * k / n, ay + (by - ay) * k / n) for k in range(n))
-    out.append(corners[-1])
-    return out
 
 
 def _fix(vehicle: str, t: float, x: float, y: float, at: float, **extra: object
@@ -82,16 +52,16 @@ def _grid_feed() -> list[tuple[float, str, bytes]]:
     refuses, and gets a route by control message while parked, later cleared.
     """
     msgs: list[tuple[float, str, bytes]] = []
-    bus = _points([(0, 0), (400, 0), (400, 600)], 10.0)
+    bus = points([(0, 0), (400, 0), (400, 600)], 10.0)
     for i, (x, y) in enumerate(bus):
         t = T0 + i + (150.0 if i >= 40 else 0.0)  # silent for 150 s after fix 39
         msgs.append(_fix("bus1", t, x, y + (1.5 if i % 2 else -1.5), t + 0.4, route="R"))
-    van = _points([(0, 200), (400, 200), (400, 0), (800, 0)], 40.0)
+    van = points([(0, 200), (400, 200), (400, 0), (800, 0)], 40.0)
     for i, (x, y) in enumerate(van):
         stay = 6 if 10 <= i < 16 else 0  # near the fence corner: stands a while
         t = T0 + 15.0 * i + stay
         msgs.append(_fix("van1", t, x, y, t + 0.7, accuracy=8.0))
-    car = _points([(800, 800), (800, 400), (0, 400)], 12.0)
+    car = points([(800, 800), (800, 400), (0, 400)], 12.0)
     for i, (x, y) in enumerate(car):
         t = T0 + 3.0 * i
         msgs.append(_fix("car1", t, x, y - 1.0, t + 0.2))
@@ -112,7 +82,7 @@ def _grid_feed() -> list[tuple[float, str, bytes]]:
 
 
 def _pipeline(park_after_s: float) -> Pipeline:
-    return Pipeline(GRID, MatchSettings(), routes=ROUTES, fences=[_fence()],
+    return Pipeline(NET, MatchSettings(), routes=ROUTES, fences=[_fence()],
                     alerts=AlertSettings(stale_s=60.0, fence_fixes=1),
                     limits=FeedLimits(max_rate_hz=2.0), park_after_s=park_after_s)
 
@@ -151,10 +121,10 @@ def test_pipeline_park_keeps_the_rate_limit_bucket():
     its rate-limit bucket (not in a checkpoint): the same fixes are refused as when it
     stays live."""
     def run(park_after_s: float) -> list[object]:
-        p = Pipeline(GRID, MatchSettings(), limits=FeedLimits(max_rate_hz=0.25),
+        p = Pipeline(NET, MatchSettings(), limits=FeedLimits(max_rate_hz=0.25),
                      park_after_s=park_after_s)
         out: list[object] = []
-        pts = _points([(0, 0), (800, 0)], 20.0)
+        pts = points([(0, 0), (800, 0)], 20.0)
         for i, (x, y) in enumerate(pts):
             at, topic, payload = _fix("car2", T0 + 3.0 * i, x, y, T0 + 3.0 * i + 0.3)
             out += p.handle(topic, payload, at)

@@ -3,48 +3,17 @@
 from __future__ import annotations
 
 import asyncio
-import contextlib
-import json
 import time
-from collections.abc import AsyncIterator
 from pathlib import Path
 
 from prometheus_client.parser import text_string_to_metric_families
-from services import (
-    PROJECTION,
-    Collector,
-    Mosquitto,
-    drive,
-    http_get,
-    position,
-    publisher,
-    town,
-    write_config,
-)
+from services import Collector, Mosquitto, http_get, publisher
+from test_service_daemon import routes_fences_config, routes_fences_feed, running
 
 from livematch.commands.run import build_daemon
 from livematch.config import load_config
-from livematch.mapdata.netfile import save_network
-from livematch.service.daemon import Daemon
 
 pytest_plugins = ("fixtures_services",)
-
-
-@contextlib.asynccontextmanager
-async def running(daemon: Daemon) -> AsyncIterator[asyncio.Task[None]]:
-    """Run the daemon as a task until the block ends, then stop it cleanly."""
-    task = asyncio.create_task(daemon.run(), name="daemon")
-    try:
-        for _ in range(400):
-            if not daemon.readiness() or task.done():
-                break
-            await asyncio.sleep(0.025)
-        assert not task.done(), task.exception()
-        assert daemon.readiness() == []
-        yield task
-    finally:
-        daemon.request_stop()
-        await asyncio.wait_for(task, timeout=30)
 
 
 async def test_daemon_parking_publishes_what_a_live_pipeline_gives(
@@ -53,32 +22,11 @@ async def test_daemon_parking_publishes_what_a_live_pipeline_gives(
     apart each with park_after_s 0.03: the daemon parks and restores the vehicles
     between fixes (counted in its metrics) and publishes the same assignments, commits
     and alerts as a pipeline that keeps them live."""
-    net = tmp_path / "town.lmnet"
-    save_network(town(), net)
-    (tmp_path / "routes.geojson").write_text(json.dumps({"type": "FeatureCollection",
-        "features": [{"type": "Feature", "id": "R-side", "properties": {"ways": [2]},
-                      "geometry": None},
-                     {"type": "Feature", "id": "R-main", "properties": {"ways": [1]},
-                      "geometry": None}]}))
-    corners = [PROJECTION.to_lonlat(x, y) for x, y in
-               ((1500, -60), (1700, -60), (1700, 60), (1500, 60), (1500, -60))]
-    (tmp_path / "fences.geojson").write_text(json.dumps({"type": "FeatureCollection",
-        "features": [{"type": "Feature", "id": "depot", "properties": {"name": "Depot"},
-                      "geometry": {"type": "Polygon", "coordinates": [
-                          [[float(lon), float(lat)] for lon, lat in corners]]}}]}))
-    cfg = write_config(tmp_path, prefix, broker=mosquitto.url, network=str(net))
-    text = cfg.read_text().replace(
-        "[inputs]\n", '[inputs]\nroutes = "routes.geojson"\nfences = "fences.geojson"\n')
-    text = text.replace("[mqtt]\n", f'[mqtt]\ncontrol_topic = "{prefix}/control/+/route"\n')
-    cfg.write_text(text.replace("[store]\n", "[store]\npark_after_s = 0.03\n"))
+    cfg = routes_fences_config(tmp_path, prefix, mosquitto.url)
+    cfg.write_text(cfg.read_text().replace("[store]\n", "[store]\npark_after_s = 0.03\n"))
     config = load_config(cfg, env={})
     assert config.store.park_after_s == 0.03
-    control = (f"{prefix}/control/bus-1/route", b'{"route": "R-side"}')
-    bus1 = drive("bus-1", 60)  # on Main Street while assigned Side Street: off route
-    bus2 = [(t, position("bus-2", t, 1300.0 + i * 12.0, 0.0, route="R-main"))
-            for i, (t, _) in enumerate(drive("bus-2", 60, start_x=1300.0))]
-    fixes = [(f"{prefix}/fleet/bus-{k}/position", feed[i][1])
-             for i in range(60) for k, feed in ((1, bus1), (2, bus2))]
+    control, fixes = routes_fences_feed(prefix)
     live = build_daemon(config).pipeline
     live.park_after_s = 0.0  # the reference keeps every vehicle live
     want = [o for topic, payload in [control, *fixes]
