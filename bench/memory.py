@@ -4,7 +4,8 @@ Run: ``.venv/bin/python bench/memory.py [--counts 1000,10000,100000] [--drives 4
 [--duration 600] [--states 30] [--copies 400] [--pipeline-vehicles 1000]
 [--pipeline-seconds 120] [--fleet-vehicles 10000] [--fleet-seconds 120]
 [--fleet-trim-every 60] [--breakdown-vehicles 2000] [--breakdown-frames 1]
-[--room-drives 6] [--steps 1,2,3,4,5,6] [--out DIR]``
+[--room-drives 6] [--park-vehicles 2000] [--park-seconds 600] [--park-intervals 15,30]
+[--park-after 5] [--steps 1,2,3,4,5,6] [--out DIR]``
 
 Goal (issue 9): <= 4 KB for a typical live vehicle, 100,000 vehicles in <= 1 GB resident.
 
@@ -67,8 +68,26 @@ representation is. Steps, each measuring process a fresh subprocess:
    wrapper) or within its arrays (the same arrays, fewer rows than before plus the new
    live block). What the room policy trades: bytes against compactions.
 
-``--steps 5``, ``--steps 6``, ``--steps 7`` or a mix of them run only those (no pool, no
-report of steps 1-4): ``memory.partial.md`` / ``memory.partial.json`` in ``--out``.
+8. **Parking** (one subprocess per cell, :func:`park_run`; not in the default
+   ``--steps``): ``--park-vehicles`` vehicles reporting every 15 or 30 s
+   (``--park-intervals``) for ``--park-seconds`` s through one ``Pipeline``, their
+   reports spread evenly over each interval (vehicle i reports at ``i / N`` of it),
+   each message followed by ``tick`` and ``park_idle`` at its receive time as
+   ``livematch replay`` does; once with parking off and once with ``park_after_s`` =
+   ``--park-after``. Vehicle i drives pool drive ``i % drives`` from second ``i //
+   drives``, sampled every interval. Reported per cell: RSS growth per vehicle before
+   and after ``malloc_trim(0)``; the live heap per vehicle at the end by introspection
+   (each vehicle's state, live or parked, walked as step 6 walks it: ``sys.getsizeof`` of
+   every object it alone reaches, array data included, plus the pipeline's per-vehicle
+   tables; tracemalloc would slow the run about twentyfold); process CPU per fix of the
+   whole loop (``handle``, ``tick``, ``park_idle``) and wall time in each part. At the
+   end of a run with parking, the vehicles silent for more than ``--park-after`` s are
+   parked (about 1 - after / interval of them), held as their checkpoint bytes (mean
+   bytes reported).
+
+``--steps 5``, ``--steps 6``, ``--steps 7``, ``--steps 8`` or a mix of them run only those
+(no pool, no report of steps 1-4): ``memory.partial.md`` / ``memory.partial.json`` in
+``--out``.
 
 The estimate for 100,000 restored vehicles behind a pipeline: the step-3 growth at
 100,000 plus 100,000 x the step-4 overhead, plus the base RSS of step 3. Results:
@@ -710,6 +729,134 @@ def fleet_breakdown(vehicles: int, seconds: int, drives_count: int, duration: fl
             "trees": trees, "us_per_fix": round(elapsed / (vehicles * seconds) * 1e6, 1)}
 
 
+# ---------------------------------------------------------------------- 8. parking
+def park_run(vehicles: int, seconds: int, interval: int, park_after: float,
+             drives_count: int) -> dict[str, Any]:
+    """Step 8: ``vehicles`` vehicles reporting every ``interval`` s through one Pipeline.
+
+    Vehicle i sends fix k at ``T + k * interval + interval * i / vehicles`` (received 0.3 s
+    later): its drive's second ``i // drives_count + k * interval``. After every message
+    ``tick`` and ``park_idle`` at its receive time (as ``livematch replay``). Parking is on
+    when ``park_after`` > 0. RSS growth per vehicle, process CPU per fix, and the live
+    heap per vehicle by introspection (:func:`owned_bytes` of each vehicle's state, what
+    a fresh tracker and pipeline reach left out, plus the pipeline's per-vehicle tables).
+    """
+    from livematch.core.settings import MatchSettings
+    from livematch.core.tracker import Tracker
+    from livematch.pipeline import Pipeline
+    from livematch.service.allocator import Trimmer
+
+    network, runs = drives(drives_count, float(seconds + interval))
+    settings = MatchSettings()
+    warm(network, settings)
+    warm_pipeline(network, settings)
+    lonlat = fleet_positions(network, runs)
+    count = len(runs)
+    fixes = seconds // interval
+    gc.collect()
+    rss0 = rss_kb()
+    pipe = Pipeline(network, settings, park_after_s=park_after)
+    outputs = 0
+    t_handle = t_park = 0.0
+    cpu0 = time.process_time()
+    for k in range(fixes):
+        for i in range(vehicles):
+            d = i % count
+            j = i // count % interval + k * interval
+            t = 1.7e9 + k * interval + interval * i / vehicles
+            at = t + 0.3
+            payload = json.dumps({"vehicle": f"v{i}", "time": t, "lat": lonlat[d][1][j],
+                                  "lon": lonlat[d][0][j],
+                                  "accuracy": runs[d][j].accuracy}).encode()
+            p0 = time.perf_counter()
+            outputs += len(pipe.handle(f"fleet/v{i}/position", payload, at))
+            outputs += len(pipe.tick(at))
+            p1 = time.perf_counter()
+            pipe.park_idle(at)
+            t_park += time.perf_counter() - p1
+            t_handle += p1 - p0
+    cpu = time.process_time() - cpu0
+    gc.collect()
+    rss1 = rss_kb()
+    Trimmer().trim()
+    rss2 = rss_kb()
+    blobs = [len(p.blob) for p in pipe._parked.values()]
+    skip = set(reachable(Tracker(network, "fresh", settings)))
+    skip |= set(reachable(Pipeline(network, settings), (Tracker,)))
+    live_b = parked_b = 0
+    for state in pipe._vehicles.values():
+        live_b += owned_bytes(state, skip, set())[1]
+    for held_state in pipe._parked.values():
+        parked_b += owned_bytes(held_state, skip, set())[1]
+    tables = sum(sys.getsizeof(t) for t in (pipe._vehicles, pipe._parked, pipe._arrived))
+    tables += sum(sys.getsizeof(v) for v in pipe.vehicles())
+    held = len(pipe.vehicles())
+    n_fixes = fixes * vehicles
+    return {"vehicles": held, "interval_s": interval, "seconds": seconds,
+            "park_after_s": park_after, "fixes": n_fixes,
+            "outputs": outputs, "parked_at_end": len(blobs),
+            "parked_blob_bytes_mean": round(statistics.fmean(blobs), 1) if blobs else 0.0,
+            "parks": pipe.counters["vehicle:parked"],
+            "unparks": pipe.counters["vehicle:unparked"],
+            "rss_before_kb": rss0, "rss_after_kb": rss1, "rss_trimmed_kb": rss2,
+            "kb_per_vehicle": round((rss1 - rss0) / held, 3),
+            "kb_per_vehicle_trimmed": round((rss2 - rss0) / held, 3),
+            "heap_kb_per_vehicle": round((live_b + parked_b + tables) / held / 1024, 3),
+            "live_state_kb_mean": round(live_b / max(1, held - len(blobs)) / 1024, 3),
+            "parked_state_kb_mean": round(parked_b / len(blobs) / 1024, 3) if blobs else 0.0,
+            "tables_kb_per_vehicle": round(tables / held / 1024, 3),
+            "cpu_us_per_fix": round(cpu / n_fixes * 1e6, 1),
+            "handle_us_per_fix": round(t_handle / n_fixes * 1e6, 1),
+            "park_us_per_fix": round(t_park / n_fixes * 1e6, 1)}
+
+
+def park_steps(args: argparse.Namespace) -> list[dict[str, Any]]:
+    """Step 8: every ``--park-intervals`` cell with parking off and on, each run in its
+    own subprocess."""
+    rows = []
+    for interval in (int(v) for v in args.park_intervals.split(",") if v.strip()):
+        for after in (0.0, args.park_after):
+            row = child(["park", str(args.park_vehicles), str(args.park_seconds),
+                         str(interval), str(after), str(args.drives)])
+            print(json.dumps(row), flush=True)
+            rows.append(row)
+    return rows
+
+
+def park_lines(rows: list[dict[str, Any]]) -> list[str]:
+    """Report lines of step 8."""
+    if not rows:
+        return []
+    first = rows[0]
+    lines = [
+        "",
+        f"## Parking ({first['vehicles']:,} vehicles x {first['seconds']} s through one "
+        f"pipeline; reports spread over each interval)",
+        "",
+        "RSS growth per vehicle (the whole process's, all vehicles); live heap per "
+        "vehicle by introspection (states live and parked, and the pipeline's tables), "
+        "and its mean per live and per parked vehicle. CPU: process time of the whole "
+        "loop (handle, tick, park_idle) per fix; handle / park: wall time per fix in "
+        "each.",
+        "",
+        "| every | park after | load avg | RSS KB per vehicle | after trim | live heap KB "
+        "| a live one KB | a parked one KB | parked at end | parked bytes mean "
+        "| CPU µs per fix | handle µs | park µs |",
+        "|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|",
+    ]
+    for row in rows:
+        after = row["park_after_s"]
+        lines.append(
+            f"| {row['interval_s']} s | {f'{after:g} s' if after else 'off'} | "
+            f"{row['loadavg_1m']} | {row['kb_per_vehicle']:.2f} | "
+            f"{row['kb_per_vehicle_trimmed']:.2f} | {row['heap_kb_per_vehicle']:.2f} | "
+            f"{row['live_state_kb_mean']:.2f} | {row['parked_state_kb_mean']:.2f} | "
+            f"{row['parked_at_end']} | {row['parked_blob_bytes_mean']:.0f} | "
+            f"{row['cpu_us_per_fix']} | {row['handle_us_per_fix']} | "
+            f"{row['park_us_per_fix']} |")
+    return lines
+
+
 def tree_room_run(drives_count: int, duration: float) -> dict[str, Any]:
     """Step 7: what the trees' room policy trades, bytes against compactions.
 
@@ -963,18 +1110,20 @@ def breakdown_step(args: argparse.Namespace) -> dict[str, Any] | None:
 
 def partial_run(args: argparse.Namespace, steps: set[int], started: str,
                 commit: str) -> int:
-    """Only steps 5, 6 and/or 7 (``--steps 5,6``): no pool; ``memory.partial.md`` / ``.json``."""
+    """Only steps 5, 6, 7 and/or 8 (``--steps 5,6``): no pool; ``memory.partial.md`` /
+    ``.json``."""
     result = {"command": " ".join(["bench/memory.py", *sys.argv[1:]]),
               "started_utc": started, "commit": commit,
               "fleet": fleet_steps(args) if 5 in steps else [],
               "breakdown": breakdown_step(args) if 6 in steps else None,
               "tree_room": child(["tree-room", str(args.room_drives), str(args.duration)])
-              if 7 in steps else None}
+              if 7 in steps else None,
+              "park": park_steps(args) if 8 in steps else []}
     lines = [f"# Resident memory per driven vehicle (steps {args.steps})", "",
              f"Command: `.venv/bin/python {result['command']}`, started {started} UTC, "
              f"livematch at commit {commit}.",
              *fleet_lines(result["fleet"]), *breakdown_lines(result["breakdown"]),
-             *tree_room_lines(result["tree_room"])]
+             *tree_room_lines(result["tree_room"]), *park_lines(result["park"])]
     b = result["breakdown"]
     for row in result["fleet"]:
         if b and b["vehicles"] == row["vehicles"] and b["seconds"] == row["seconds"]:
@@ -1129,6 +1278,14 @@ def main(argv: list[str] | None = None) -> int:
                     help="traceback frames per allocation in step 6")
     ap.add_argument("--room-drives", type=int, default=6,
                     help="step 7: drives through bare trackers")
+    ap.add_argument("--park-vehicles", type=int, default=2000,
+                    help="step 8: vehicles through one pipeline")
+    ap.add_argument("--park-seconds", type=int, default=600,
+                    help="step 8: seconds of reports per vehicle")
+    ap.add_argument("--park-intervals", default="15,30",
+                    help="step 8: seconds between a vehicle's reports, one cell each")
+    ap.add_argument("--park-after", type=float, default=5.0,
+                    help="step 8: park_after_s of the runs with parking")
     ap.add_argument("--steps", default="1,2,3,4,5,6",
                     help="steps to run (the pool, step 1, is built when 2 or 3 is asked)")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
@@ -1147,6 +1304,9 @@ def main(argv: list[str] | None = None) -> int:
                                   int(rest[4]))
         elif what == "tree-room":
             out = tree_room_run(int(rest[0]), float(rest[1]))
+        elif what == "park":
+            out = park_run(int(rest[0]), int(rest[1]), int(rest[2]), float(rest[3]),
+                           int(rest[4]))
         elif what == "count":
             out = n_vehicles(rest[0], int(rest[1]))
         else:

@@ -202,6 +202,9 @@ class StoreConfig:
     (``rediss://`` for TLS). A vehicle is checkpointed after ``checkpoint_every_fixes``
     fixes or ``checkpoint_every_s`` seconds, whichever comes first, and on shutdown; one
     idle for ``idle_ttl_s`` (fix time, and wall-clock key expiry in Redis) is dropped.
+    ``park_after_s`` > 0 keeps a vehicle from which nothing arrived for longer than that
+    (receive time) as its checkpoint bytes in memory until its next fix (``0``, the
+    default: every vehicle stays live; see :meth:`livematch.pipeline.Pipeline.park_idle`).
     Redis AUTH: the password comes from ``LIVEMATCH_REDIS_PASSWORD``, else from
     ``password_file`` (the file holds only the password), else from the URL (allowed,
     but it is then in the config; logs show it as ``***``); ``username`` names a Redis
@@ -214,6 +217,7 @@ class StoreConfig:
     checkpoint_every_fixes: int = 20
     checkpoint_every_s: float = 10.0
     idle_ttl_s: float = 3600.0
+    park_after_s: float = 0.0
     username: str = ""
     password_file: str = ""
     ca_file: str = ""
@@ -235,6 +239,9 @@ class StoreConfig:
             value = getattr(self, key)
             if not (math.isfinite(value) and value > 0):
                 out.append((key, f"must be a positive number of seconds, got {value}"))
+        if not (math.isfinite(self.park_after_s) and self.park_after_s >= 0):
+            out.append(("park_after_s", f"must be 0 (off) or a positive number of seconds, "
+                                        f"got {self.park_after_s}"))
         return out
 
 

@@ -45,20 +45,33 @@ Bad input never raises: a message that cannot be decoded becomes an
 ``alerts`` ``alert:<kind>``
 ``control``                       control messages taken (route assignments)
 ``eps_m:<eps>``                   assignments certified at that eps level (e.g. ``eps_m:15.0``)
-``vehicle:new`` ``vehicle:...``   trackers created, ``imported``, ``evicted``, ``dropped``
+``vehicle:new`` ``vehicle:...``   trackers created, ``imported``, ``evicted``, ``dropped``,
+                                  ``parked``, ``unparked``
 ================================  ==========================================================
+
+Parking (``park_after_s`` > 0, the ``[store] park_after_s`` setting): a vehicle from which
+no message arrived for more than ``park_after_s`` seconds of receive time is kept as its
+checkpoint bytes (:meth:`Pipeline.export_vehicle`, about 2 KB) instead of its live
+tracker and monitors (about 13 KB driven), and restored when its next message arrives or
+anything else needs it (a stale check that is due, eviction, the end-of-log flush). The
+shell says when: :meth:`Pipeline.park_idle` with its receive clock (``livematch replay``
+after every message with that message's ``at``; the daemon a few vehicles after every
+message and in each round of its checkpoint loop, on its wall clock). A restored
+tracker goes on exactly as one never stopped, so parking changes no output; it trades
+the CPU of a save and a restore per parked interval for the memory of a live vehicle.
 """
 
 from __future__ import annotations
 
 import bisect
 import functools
+import itertools
 import json
 import math
 import typing
 import zlib
 from array import array
-from collections import Counter
+from collections import Counter, OrderedDict
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, fields
 from typing import Any
@@ -279,6 +292,30 @@ class _VehicleState:
         return self.recent[-1] if self.recent else None
 
 
+class _Parked:
+    """A parked vehicle: its checkpoint bytes and what the pipeline reads without them.
+
+    ``blob`` is :meth:`Pipeline.export_vehicle`'s output at parking time; ``newest`` its
+    newest fix time (idle eviction); ``watch_at`` the stale watch's receive time while
+    the vehicle is not stale (None: no watch yet, or stale already), so that
+    :meth:`Pipeline.tick` restores it only when the watch would fire; ``tokens``,
+    ``last_at`` and ``last_t`` the rate limit's bucket, which a checkpoint does not
+    carry (a vehicle restored on another worker starts with a full bucket; a parked one
+    must go on with its own).
+    """
+
+    __slots__ = ("blob", "last_at", "last_t", "newest", "tokens", "watch_at")
+
+    def __init__(self, blob: bytes, state: _VehicleState) -> None:
+        self.blob = blob
+        self.newest = state.newest
+        watch = state.alerts.watch
+        self.watch_at = watch.at if watch is not None and not watch.stale else None
+        self.tokens = state.tokens
+        self.last_at = state.last_at
+        self.last_t = state.last_t
+
+
 
 @functools.cache
 def prepare_kernels() -> None:
@@ -310,10 +347,13 @@ class Pipeline:
         vehicle_groups: vehicle id -> group names, for fences that watch groups.
         control_topic: topic filter of route control messages (its ``+`` level is the
             vehicle); "" turns control messages off.
+        park_after_s: keep a vehicle from which nothing arrived for more than this many
+            seconds of receive time as its checkpoint bytes (:meth:`park_idle`); 0 (the
+            default) keeps every vehicle live.
 
     Raises:
-        BadConfigError: when ``settings`` or ``alerts`` has an invalid value, or two
-            fences share an id.
+        BadConfigError: when ``settings`` or ``alerts`` has an invalid value, two
+            fences share an id, or ``park_after_s`` is negative or not finite.
 
     Example (a degenerate run: one message that is not JSON)::
 
@@ -334,7 +374,11 @@ class Pipeline:
                  alerts: AlertSettings | None = None,
                  vehicle_routes: Mapping[str, str] | None = None,
                  vehicle_groups: Mapping[str, Iterable[str]] | None = None,
-                 control_topic: str = CONTROL_TOPIC) -> None:
+                 control_topic: str = CONTROL_TOPIC,
+                 park_after_s: float = 0.0) -> None:
+        if not (math.isfinite(park_after_s) and park_after_s >= 0):
+            raise BadConfigError(f"store.park_after_s must be a number of seconds >= 0, "
+                                 f"got {park_after_s}")
         problems = settings.problems()
         if problems:
             raise BadConfigError("; ".join(f"matcher.{key} {what}" for key, what in problems))
@@ -368,6 +412,11 @@ class Pipeline:
         # No vehicle's newest fix is older than this (fix time): until now_fix_time - ttl
         # passes it, no vehicle is idle and idle_vehicles need not look at each one.
         self._idle_floor = -math.inf
+        self.park_after_s = float(park_after_s)
+        self._parked: dict[str, _Parked] = {}
+        # Live vehicles by the receive time of their last message, oldest first (kept
+        # only while parking is on): park_idle takes them from the front.
+        self._arrived: OrderedDict[str, float] = OrderedDict()
         prepare_kernels()  # compile the matcher's kernels before the first message
 
     # ------------------------------------------------------------------ messages
@@ -407,15 +456,21 @@ class Pipeline:
         vehicle = fix.vehicle
         state = self._vehicles.get(vehicle)
         limits = self.limits
+        if state is None and vehicle in self._parked:
+            state = self._unpark(vehicle)
         if state is None:
             cap = limits.max_vehicles
-            if cap and len(self._vehicles) >= cap:
+            if cap and len(self._vehicles) + len(self._parked) >= cap:
                 return [self._reject(topic, payload, at, "too_many_vehicles",
                                      f"vehicle {vehicle!r} is new and {cap} vehicles are "
                                      f"held already (feed.max_vehicles)", vehicle)]
             state = _VehicleState(Tracker(self.network, vehicle, self.settings))
             self._vehicles[vehicle] = state
             counters["vehicle:new"] += 1
+        if self.park_after_s > 0:
+            arrived = self._arrived
+            arrived[vehicle] = at
+            arrived.move_to_end(vehicle)
         t = fix.t
         recent = state.recent
         newest = not recent or t > recent[-1]  # the usual case: no search
@@ -571,12 +626,26 @@ class Pipeline:
             return []
         out: list[Output] = []
         due = math.inf
-        for vehicle in sorted(self._vehicles):
-            watch = self._vehicles[vehicle].alerts.watch
+        settings = self.alert_settings
+        parked = self._parked
+        for vehicle in sorted([*self._vehicles, *parked] if parked else self._vehicles):
+            state = self._vehicles.get(vehicle)
+            if state is None:
+                # parked: restored only when its watch fires (StaleWatch.check's test);
+                # otherwise its due time is StaleWatch.due's
+                watch_at = parked[vehicle].watch_at
+                if watch_at is None:
+                    continue
+                if not now - watch_at > settings.stale_s:
+                    due = min(due, watch_at + settings.stale_s)
+                    continue
+                state = self._unpark(vehicle)
+                self._touch(vehicle, now)
+            watch = state.alerts.watch
             if watch is None:
                 continue
-            out.extend(self._alert_outputs(watch.check(vehicle, now, self.alert_settings)))
-            due = min(due, watch.due(self.alert_settings))
+            out.extend(self._alert_outputs(watch.check(vehicle, now, settings)))
+            due = min(due, watch.due(settings))
         self._stale_due = due
         return out
 
@@ -586,8 +655,8 @@ class Pipeline:
         The trackers stay; fixes handled afterwards continue where they left off.
         """
         out: list[Output] = []
-        for vehicle in sorted(self._vehicles):
-            state = self._vehicles[vehicle]
+        for vehicle in self.vehicles():
+            state = self._vehicles.get(vehicle) or self._unpark(vehicle)
             out.extend(self._outputs(state.tracker.flush(), state, "", b"", 0.0))
         return out
 
@@ -660,14 +729,91 @@ class Pipeline:
 
     # ------------------------------------------------------------------ vehicles
     def vehicles(self) -> list[str]:
-        """The vehicles held, sorted."""
+        """The vehicles held (live or parked), sorted."""
+        if self._parked:
+            return sorted([*self._vehicles, *self._parked])
         return sorted(self._vehicles)
 
+    def parked(self) -> int:
+        """How many of the vehicles held are parked (kept as their checkpoint bytes)."""
+        return len(self._parked)
+
     def _state(self, vehicle: str) -> _VehicleState:
-        try:
-            return self._vehicles[vehicle]
-        except KeyError:
-            raise UnknownVehicleError(f"no state held for vehicle {vehicle!r}") from None
+        """The vehicle's live state (a parked vehicle is restored)."""
+        state = self._vehicles.get(vehicle)
+        if state is not None:
+            return state
+        if vehicle in self._parked:
+            return self._unpark(vehicle)
+        raise UnknownVehicleError(f"no state held for vehicle {vehicle!r}")
+
+    # ------------------------------------------------------------------ parking
+    def park_idle(self, now: float, limit: int | None = None) -> int:
+        """Park every live vehicle silent for more than ``park_after_s`` at ``now``.
+
+        Args:
+            now: the shell's receive clock (epoch s): the daemon's wall clock, the replay
+                log's ``at``. The same clock as the ``at`` given to :meth:`handle`.
+            limit: park at most this many (None: all that are due). Parking one costs a
+                checkpoint (about 1 ms at 15-30 s between fixes on a loaded machine,
+                ``bench/memory.py`` step 8): the daemon parks a few after each message
+                rather than thousands in one turn of its event loop.
+
+        Returns the number of vehicles parked; 0 at once while parking is off. Vehicles
+        are looked at in the order their last messages arrived and the look stops at the
+        first one not silent long enough, so a call costs nothing while no vehicle is
+        due (a message handled with an ``at`` older than an earlier one's can delay its
+        vehicle's parking, never an output). A vehicle restored or imported without a
+        message is due at once.
+        """
+        after = self.park_after_s
+        arrived = self._arrived
+        if after <= 0:
+            if arrived:
+                arrived.clear()
+            return 0
+        parked = 0
+        while arrived and (limit is None or parked < limit):
+            vehicle, at = next(iter(arrived.items()))
+            if not now - at > after:
+                break
+            del arrived[vehicle]
+            if vehicle in self._vehicles:
+                self._park(vehicle)
+                parked += 1
+        return parked
+
+    def _touch(self, vehicle: str, at: float) -> None:
+        """Mark a live vehicle as active at receive time ``at`` (while parking is on)."""
+        if self.park_after_s > 0:
+            arrived = self._arrived
+            arrived[vehicle] = at
+            arrived.move_to_end(vehicle)
+
+    def _park(self, vehicle: str) -> None:
+        """Keep a live vehicle as its checkpoint bytes (see :class:`_Parked`)."""
+        state = self._vehicles[vehicle]
+        blob = self._export(vehicle, state)
+        self._parked[vehicle] = _Parked(blob, state)
+        del self._vehicles[vehicle]
+        self.counters["vehicle:parked"] += 1
+
+    def _unpark(self, vehicle: str) -> _VehicleState:
+        """Restore a parked vehicle as it was when parked; return its live state.
+
+        The route from control messages stays the pipeline's (one that came while the
+        vehicle was parked is not overwritten by the one in the bytes); the rate limit's
+        bucket comes from the parked record. Not counted as an import.
+        """
+        held = self._parked.pop(vehicle)
+        state = self._restore(vehicle, held.blob)[0]
+        state.tokens = held.tokens
+        state.last_at = held.last_at
+        state.last_t = held.last_t
+        self._vehicles[vehicle] = state
+        self._touch(vehicle, -math.inf)  # parked again when due (handle moves it on)
+        self.counters["vehicle:unparked"] += 1
+        return state
 
     def export_vehicle(self, vehicle: str) -> bytes:
         """Checkpoint one vehicle: its tracker and the dedupe memory, as a compact blob.
@@ -679,10 +825,33 @@ class Pipeline:
         answer) and ``control`` (the control-message route); version 2 held the same
         map as zlib-compressed JSON, and :meth:`import_vehicle` still reads it.
 
+        A parked vehicle's bytes are those it was parked as (with the route from control
+        messages as it is now), without restoring it.
+
         Raises:
             UnknownVehicleError: when the vehicle is not held.
         """
-        state = self._state(vehicle)
+        held = self._parked.get(vehicle)
+        if held is not None:
+            return self._parked_blob(vehicle, held.blob)
+        state = self._vehicles.get(vehicle)
+        if state is None:
+            raise UnknownVehicleError(f"no state held for vehicle {vehicle!r}")
+        return self._export(vehicle, state)
+
+    def _parked_blob(self, vehicle: str, blob: bytes) -> bytes:
+        """A parked vehicle's bytes with its control-message route as it is now."""
+        control = self._control.get(vehicle)
+        data = _BLOB_DECODER.decode(blob[len(STATE_MAGIC) + 1:])
+        extra = _ALERTS_DECODER.decode(data.alerts)
+        if extra["control"] == control:
+            return blob
+        extra["control"] = control
+        fresh = _Blob(data.vehicle, data.recent, data.tracker, _ALERTS_ENCODER.encode(extra))
+        return STATE_MAGIC + bytes([STATE_VERSION]) + _BLOB_ENCODER.encode(fresh)
+
+    def _export(self, vehicle: str, state: _VehicleState) -> bytes:
+        """The checkpoint bytes of a live vehicle (see :meth:`export_vehicle`)."""
         extra = {
             "monitors": state.alerts.to_state(),
             "pending": [[f.vehicle, f.t, f.lon, f.lat, f.x, f.y, f.accuracy, f.speed,
@@ -703,6 +872,27 @@ class Pipeline:
             BadStateError: the blob is not a checkpoint, has another version, is
                 truncated, belongs to another vehicle, or was written for another network
                 or eps ladder.
+        """
+        restored, control = self._restore(vehicle, blob)
+        if control is not None:
+            self._control[vehicle] = control
+        watch = restored.alerts.watch
+        if watch is not None:
+            self._stale_due = min(self._stale_due, watch.due(self.alert_settings))
+        self._parked.pop(vehicle, None)
+        self._vehicles[vehicle] = restored
+        # parked at the next park_idle (a restored vehicle has no receive time here)
+        self._touch(vehicle, -math.inf)
+        newest = restored.newest
+        if newest is not None:
+            self._idle_floor = min(self._idle_floor, newest)
+        self.counters["vehicle:imported"] += 1
+
+    def _restore(self, vehicle: str, blob: bytes) -> tuple[_VehicleState, str | None]:
+        """A vehicle's state and control-message route from its checkpoint bytes.
+
+        Raises:
+            BadStateError: as :meth:`import_vehicle`.
         """
         head = len(STATE_MAGIC)
         if blob[:head] != STATE_MAGIC:
@@ -729,6 +919,7 @@ class Pipeline:
                 f"checkpoint for vehicle {vehicle!r} holds a tracker of {tracker.vehicle!r}")
         recent = sorted(data.recent)[-DEDUPE_WINDOW:]
         restored = _VehicleState(tracker, recent)
+        control = None
         if data.alerts:
             try:
                 if blob[head] == 2:
@@ -742,16 +933,7 @@ class Pipeline:
             except (zlib.error, msgspec.DecodeError, ValueError, KeyError, TypeError) as exc:
                 raise BadStateError(f"checkpoint for vehicle {vehicle!r} has corrupt alert "
                                     f"state: {exc}") from exc
-            if control is not None:
-                self._control[vehicle] = control
-        watch = restored.alerts.watch
-        if watch is not None:
-            self._stale_due = min(self._stale_due, watch.due(self.alert_settings))
-        self._vehicles[vehicle] = restored
-        newest = restored.newest
-        if newest is not None:
-            self._idle_floor = min(self._idle_floor, newest)
-        self.counters["vehicle:imported"] += 1
+        return restored, control
 
     def evict(self, vehicle: str) -> list[Output]:
         """Flush one vehicle (commit everything pending) and forget it.
@@ -762,6 +944,7 @@ class Pipeline:
         state = self._state(vehicle)
         out = self._outputs(state.tracker.flush())
         del self._vehicles[vehicle]
+        self._arrived.pop(vehicle, None)
         self.counters["vehicle:evicted"] += 1
         return out
 
@@ -770,7 +953,9 @@ class Pipeline:
 
         Dropping a vehicle not held does nothing.
         """
-        if self._vehicles.pop(vehicle, None) is not None:
+        self._arrived.pop(vehicle, None)
+        if (self._vehicles.pop(vehicle, None) is not None
+                or self._parked.pop(vehicle, None) is not None):
             self.counters["vehicle:dropped"] += 1
 
     def idle_vehicles(self, now_fix_time: float, ttl_s: float) -> list[str]:
@@ -786,8 +971,9 @@ class Pipeline:
             return []
         idle: list[str] = []
         floor = math.inf
-        for vehicle, state in self._vehicles.items():
-            newest = state.newest
+        for vehicle, newest in itertools.chain(
+                ((v, s.newest) for v, s in self._vehicles.items()),
+                ((v, p.newest) for v, p in self._parked.items())):
             if newest is None:
                 continue
             floor = min(floor, newest)

@@ -519,10 +519,9 @@ async def test_daemon_vehicle_from_payload_when_topic_has_none(mosquitto: Mosqui
     assert [r["reason"] for r in col.records("/out/rejects")] == ["missing_field"]
 
 
-async def test_daemon_routes_fences_and_control_alerts_equal_pipeline(
-        mosquitto: Mosquitto, prefix: str, tmp_path: Path) -> None:
-    """Routes and fences from files, a retained route control message: the daemon's
-    alerts (off route, fence enter/exit) equal the same messages through the Pipeline."""
+def routes_fences_config(tmp_path: Path, prefix: str, broker: str) -> Path:
+    """A config with two routes (R-side on way 2, R-main on way 1), a depot fence on Main
+    Street at x 1500-1700 m and a control topic under ``prefix``."""
     net = tmp_path / "town.lmnet"
     save_network(town(), net)
     (tmp_path / "routes.geojson").write_text(json.dumps({"type": "FeatureCollection",
@@ -536,19 +535,32 @@ async def test_daemon_routes_fences_and_control_alerts_equal_pipeline(
         "features": [{"type": "Feature", "id": "depot", "properties": {"name": "Depot"},
                       "geometry": {"type": "Polygon", "coordinates": [
                           [[float(lon), float(lat)] for lon, lat in corners]]}}]}))
-    cfg = write_config(tmp_path, prefix, broker=mosquitto.url, network=str(net))
+    cfg = write_config(tmp_path, prefix, broker=broker, network=str(net))
     text = cfg.read_text().replace(
         "[inputs]\n", '[inputs]\nroutes = "routes.geojson"\nfences = "fences.geojson"\n')
     cfg.write_text(text.replace(
         "[mqtt]\n", f'[mqtt]\ncontrol_topic = "{prefix}/control/+/route"\n'))
-    config = load_config(cfg, env={})
+    return cfg
+
+
+def routes_fences_feed(prefix: str) -> tuple[tuple[str, bytes], list[tuple[str, bytes]]]:
+    """For :func:`routes_fences_config`: a control message giving bus-1 route R-side and
+    60 fixes each of bus-1 (on Main Street: off its route) and bus-2 (R-main in its
+    fixes; through the depot), interleaved."""
     control = (f"{prefix}/control/bus-1/route", b'{"route": "R-side"}')
-    bus1 = drive("bus-1", 60)  # on Main Street while assigned Side Street: off route
-    bus2 = drive("bus-2", 60, start_x=1300.0)  # R-main in its fixes; through the depot
+    bus1 = drive("bus-1", 60)
     bus2 = [(t, position("bus-2", t, 1300.0 + i * 12.0, 0.0, route="R-main"))
-            for i, (t, _) in enumerate(bus2)]
-    fixes = [(f"{prefix}/fleet/bus-{k}/position", feed[i][1])
-             for i in range(60) for k, feed in ((1, bus1), (2, bus2))]
+            for i, (t, _) in enumerate(drive("bus-2", 60, start_x=1300.0))]
+    return control, [(f"{prefix}/fleet/bus-{k}/position", feed[i][1])
+                     for i in range(60) for k, feed in ((1, bus1), (2, bus2))]
+
+
+async def test_daemon_routes_fences_and_control_alerts_equal_pipeline(
+        mosquitto: Mosquitto, prefix: str, tmp_path: Path) -> None:
+    """Routes and fences from files, a retained route control message: the daemon's
+    alerts (off route, fence enter/exit) equal the same messages through the Pipeline."""
+    config = load_config(routes_fences_config(tmp_path, prefix, mosquitto.url), env={})
+    control, fixes = routes_fences_feed(prefix)
     expected = build_daemon(config).pipeline
     direct_out = [o for topic, payload in [control, *fixes]
                   for o in expected.handle(topic, payload, at=time.time())]

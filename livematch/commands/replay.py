@@ -18,13 +18,18 @@ the end of the log, and writes into DIR:
   with its clock;
 * ``summary.json``: counts (see :func:`summarize`).
 
+With ``[store] park_after_s`` > 0 in ``--config``, a vehicle silent for longer than that
+(the log's receive times) is parked as its checkpoint bytes after every message
+(:meth:`~livematch.pipeline.Pipeline.park_idle`), as the daemon parks it; the output files
+are the same byte for byte as without parking, and the summary gains ``parking``.
+
 Records keep the field order of the contract and are written compactly, one per line.
 The files depend only on the inputs, so two runs give byte-identical files; the run
 time therefore goes to stderr, never into ``summary.json``.
 
 ``--config`` takes the daemon's TOML file; its ``[matcher]`` section (and the topic
 filter, control topic and limits of ``[mqtt]``/``[feed]``, the ``[alerts]`` section and
-the ``inputs.routes`` / ``inputs.fences`` files) apply.
+the ``inputs.routes`` / ``inputs.fences`` files, and ``store.park_after_s``) apply.
 ``--routes`` (GeoJSON lines or a GTFS feed, :mod:`livematch.mapdata.routes`) and
 ``--fences`` (GeoJSON polygons, :mod:`livematch.mapdata.fences`) override the files of
 the config. Environment overrides
@@ -56,8 +61,8 @@ from livematch.feed.replaylog import read_replay_log
 from livematch.lab.cli import add_lab_arguments, lab_wanted
 from livematch.pipeline import CONTROL_TOPIC, Output, Pipeline, matcher_settings_from_mapping
 
-__all__ = ["OUTPUT_FILES", "load_alert_config", "load_control_topic", "load_replay_config",
-           "register", "replay", "summarize"]
+__all__ = ["OUTPUT_FILES", "load_alert_config", "load_control_topic", "load_park_after",
+           "load_replay_config", "register", "replay", "summarize"]
 
 #: The files ``replay`` writes, by output kind (plus ``summary.json``).
 OUTPUT_FILES = {
@@ -152,6 +157,21 @@ def load_control_topic(path: str | None) -> str:
     return topic if isinstance(topic, str) else CONTROL_TOPIC
 
 
+def load_park_after(path: str | None) -> float:
+    """``store.park_after_s`` of a config (0, parking off, without a file or key)."""
+    if path is None:
+        return 0.0
+    try:
+        config = importlib.import_module("livematch.config")
+    except ModuleNotFoundError as exc:
+        if exc.name != "livematch.config":
+            raise
+        return 0.0
+    store = getattr(config.load_config(path, env={}), "store", None)
+    value = getattr(store, "park_after_s", 0.0)
+    return float(value) if isinstance(value, int | float) else 0.0
+
+
 def _matcher_only(path: Path) -> MatchSettings:
     try:
         doc = tomllib.loads(path.read_text(encoding="utf-8"))
@@ -185,6 +205,7 @@ def replay(log: str | Path, pipeline: Pipeline, out_dir: str | Path) -> dict[str
         for entry in read_replay_log(log):
             _write(streams, pipeline.handle(entry.topic, entry.payload, entry.at))
             _write(streams, pipeline.tick(entry.at))
+            pipeline.park_idle(entry.at)  # nothing while parking is off
         _write(streams, pipeline.flush())
     finally:
         for stream in streams.values():
@@ -211,7 +232,9 @@ def summarize(counters: Counter[str], settings: MatchSettings, vehicles: int
     (vehicle, time) pairs dropped); ``fixes`` (handed to the matcher), ``fixes_accepted``
     (not filtered), ``filtered`` (total and ``by_reason``); ``assignments``,
     ``commits``, ``alerts``; ``vehicles``; ``eps_levels``: per ladder level, the
-    assignments certified at it and their share of all assignments (6 decimals).
+    assignments certified at it and their share of all assignments (6 decimals); only
+    when vehicles were parked (``store.park_after_s``), ``parking``: ``parked`` and
+    ``unparked`` (restored), in counts.
 
     Example (degenerate: nothing handled):
         >>> s = summarize(Counter(), MatchSettings(eps_levels=(20.0,)), 0)
@@ -226,7 +249,7 @@ def summarize(counters: Counter[str], settings: MatchSettings, vehicles: int
     assignments = counters["assignments"]
     levels = list(settings.eps_levels)
     levels += sorted(e for e in (float(k) for k in by_prefix("eps_m:")) if e not in levels)
-    return {
+    summary = {
         "messages": counters["messages"],
         "rejects": {"total": sum(rejects.values()), "by_reason": rejects},
         "duplicates": counters["duplicate"],
@@ -245,6 +268,10 @@ def summarize(counters: Counter[str], settings: MatchSettings, vehicles: int
             for eps in levels
         ],
     }
+    if counters["vehicle:parked"]:
+        summary["parking"] = {"parked": counters["vehicle:parked"],
+                              "unparked": counters["vehicle:unparked"]}
+    return summary
 
 
 def _need_file(path: str | None, flag: str) -> None:
@@ -284,7 +311,8 @@ def _run(args: argparse.Namespace) -> int:
     fences = read_fences(fences_path, network.projection) if fences_path else None
     loaded = time.perf_counter()
     pipeline = Pipeline(network, settings, limits=limits, routes=routes, fences=fences,
-                        alerts=alert_settings, control_topic=load_control_topic(args.config))
+                        alerts=alert_settings, control_topic=load_control_topic(args.config),
+                        park_after_s=load_park_after(args.config))
     summary = replay(args.log, pipeline, args.out)
     done = time.perf_counter()
     rate = summary["messages"] / (done - loaded) if done > loaded else 0.0

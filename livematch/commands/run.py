@@ -137,7 +137,8 @@ def build_pipeline(config: DaemonConfig, tap: RecordingTap | None = None, *,
         routes=len(routes or {}), fences=len(fences or [])))
     pipeline: Any = Pipeline(network, config.matcher, limits=config.feed, routes=routes,
                              fences=fences, alerts=config.alerts,
-                             control_topic=config.mqtt.control_topic)
+                             control_topic=config.mqtt.control_topic,
+                             park_after_s=config.store.park_after_s)
     if tap is not None:
         pipeline = RecordingPipeline(pipeline, tap)
     return pipeline

@@ -375,5 +375,13 @@ class RecordingPipeline:
         """See :meth:`Pipeline.evict_idle`."""
         return self.pipeline.evict_idle(now_fix_time, ttl_s, into=into)
 
+    def park_idle(self, now: float, limit: int | None = None) -> int:
+        """See :meth:`Pipeline.park_idle`."""
+        return self.pipeline.park_idle(now, limit)
+
+    def parked(self) -> int:
+        """See :meth:`Pipeline.parked`."""
+        return self.pipeline.parked()
+
     def __getattr__(self, name: str) -> Any:
         return getattr(self.pipeline, name)

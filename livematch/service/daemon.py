@@ -138,6 +138,13 @@ _MATCHED_RUN_S = 0.002
 _FULL_LOG_EVERY_S = 10.0
 # How far ahead of the wall clock a fix time may push the eviction clock (seconds).
 _CLOCK_AHEAD_S = 300.0
+# Vehicles parked ([store] park_after_s) after each message handled, and in each round
+# of the checkpoint loop (when few messages come). Parking one costs a checkpoint (about
+# 1 ms at 15-30 s between fixes on a loaded machine: bench/memory.py step 8): two a
+# message keep up with the vehicles a message can make live, and spread that cost
+# instead of parking thousands in one turn of the event loop.
+_PARK_PER_MESSAGE = 2
+_PARK_PER_ROUND = 200
 # Garbage collections at least this long are logged (seconds).
 _GC_LOG_S = 0.25
 # Longest wait for the outputs of a checkpoint's fixes to be acknowledged (seconds).
@@ -196,6 +203,12 @@ class PipelineLike(Protocol):
 
     def drop(self, vehicle: str) -> None:
         """Forget a vehicle without flushing (another worker holds its shard now)."""
+
+    def park_idle(self, now: float, limit: int | None = None) -> int:
+        """Keep vehicles silent for ``park_after_s`` (receive time) as their bytes."""
+
+    def parked(self) -> int:
+        """How many of the vehicles held are parked."""
 
 
 _ENCODER = msgspec.json.Encoder()
@@ -292,7 +305,8 @@ class Daemon:
 
         config = load_config("config/live.toml")
         pipeline = Pipeline(open_network(config.inputs.network), config.matcher,
-                            limits=config.feed, alerts=config.alerts)
+                            limits=config.feed, alerts=config.alerts,
+                            park_after_s=config.store.park_after_s)
         daemon = Daemon(config, pipeline)
         asyncio.run(daemon.run())        # until daemon.request_stop() (SIGTERM)
 
@@ -556,6 +570,7 @@ class Daemon:
                 if self._may_tick(now):  # a silent vehicle goes stale on the clock
                     for out in self.pipeline.tick(now):
                         self._route(out)
+                self.pipeline.park_idle(now, _PARK_PER_ROUND)
                 await self._flush_state(everything=False)
                 await self._evict_idle()
                 await self._trim_memory()
@@ -1818,6 +1833,10 @@ class Daemon:
         except Exception as exc:  # a bug must not stop the feed: reject, log, go on
             log.exception("pipeline error", extra=fields(topic=topic))
             outputs = [_internal_reject(topic, bytes(payload), exc)]
+        try:
+            self.pipeline.park_idle(at, _PARK_PER_MESSAGE)  # nothing while parking is off
+        except Exception:  # the message's outputs stand; the vehicle stays live
+            log.exception("parking error")
         self.metrics.processing.observe(time.perf_counter() - started)
         for out in outputs:
             if self.leases is None or self._answers(self._shard(out.vehicle or topic)):
@@ -1894,6 +1913,10 @@ class Daemon:
                 self._filtered("duplicate").inc(delta)
             elif key.startswith("filtered:"):
                 self._filtered(key.split(":", 1)[1]).inc(delta)
+            elif key == "vehicle:parked":  # [store] park_after_s
+                self.metrics.parks.inc(delta)
+            elif key == "vehicle:unparked":
+                self.metrics.unparks.inc(delta)
 
     def _filtered(self, reason: str) -> Any:
         """The ``livematch_fixes_filtered`` child of ``reason`` (looked up once)."""
@@ -2104,6 +2127,7 @@ class Daemon:
     def _render_metrics(self) -> bytes:
         self._sync_counters()
         self.metrics.vehicles.set(len(self.pipeline.vehicles()))
+        self.metrics.parked.set(self.pipeline.parked())
         self.metrics.memory.set(_resident_bytes())
         return self.metrics.render()
 

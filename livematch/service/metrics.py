@@ -14,6 +14,9 @@ livematch_publish_dropped_total                       outputs never sent (broker
 livematch_processing_seconds                          time to handle one message (histogram)
 livematch_fix_to_publish_lag_seconds                  fix time to broker acknowledgement
 livematch_vehicles_live                               vehicles with state in memory
+livematch_vehicles_parked                             of them, parked ([store] park_after_s)
+livematch_vehicle_parks_total                         vehicles parked (kept as their bytes)
+livematch_vehicle_unparks_total                       parked vehicles restored
 livematch_eps_level_assignments_total{eps_m}          assignments per eps level of the ladder
 livematch_store_errors_total                          failed state-store operations
 livematch_broker_reconnects_total                     lost broker connections
@@ -104,6 +107,16 @@ class Metrics:
                                   registry=r)
         self.vehicles = Gauge("livematch_vehicles_live",
                               "Vehicles whose matcher state is held in memory.", registry=r)
+        self.parked = Gauge("livematch_vehicles_parked",
+                            "Vehicles held as their checkpoint bytes until their next fix "
+                            "([store] park_after_s); counted in livematch_vehicles_live too.",
+                            registry=r)
+        self.parks = Counter("livematch_vehicle_parks",
+                             "Vehicles parked: kept as their checkpoint bytes after "
+                             "[store] park_after_s without a message.", registry=r)
+        self.unparks = Counter("livematch_vehicle_unparks",
+                               "Parked vehicles restored (a fix came, a stale check, "
+                               "eviction).", registry=r)
         self.eps_level = Counter("livematch_eps_level_assignments",
                                  "Assignments by the eps level (metres) that certified them.",
                                  ["eps_m"], registry=r)
