@@ -555,6 +555,15 @@ def routes_fences_feed(prefix: str) -> tuple[tuple[str, bytes], list[tuple[str, 
                      for i in range(60) for k, feed in ((1, bus1), (2, bus2))]
 
 
+async def publish_control(pub: Any, daemon: Any, control: tuple[str, bytes]) -> None:
+    """Publish the retained route control message and wait until the daemon has taken it."""
+    await pub.publish(*control, qos=1, retain=True)
+    for _ in range(200):
+        if daemon.pipeline.counters["control"] == 1:
+            return
+        await asyncio.sleep(0.02)
+
+
 async def test_daemon_routes_fences_and_control_alerts_equal_pipeline(
         mosquitto: Mosquitto, prefix: str, tmp_path: Path) -> None:
     """Routes and fences from files, a retained route control message: the daemon's
@@ -570,11 +579,7 @@ async def test_daemon_routes_fences_and_control_alerts_equal_pipeline(
     daemon = build_daemon(config)
     async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col, \
             running(daemon), publisher(mosquitto.port) as pub:
-        await pub.publish(*control, qos=1, retain=True)
-        for _ in range(200):
-            if daemon.pipeline.counters["control"] == 1:
-                break
-            await asyncio.sleep(0.02)
+        await publish_control(pub, daemon, control)
         for topic, payload in fixes:
             await pub.publish(topic, payload, qos=1)
         await col.wait_for("/out/alert/", len(want_alerts))

@@ -8,7 +8,12 @@ from pathlib import Path
 
 from prometheus_client.parser import text_string_to_metric_families
 from services import Collector, Mosquitto, http_get, publisher
-from test_service_daemon import routes_fences_config, routes_fences_feed, running
+from test_service_daemon import (
+    publish_control,
+    routes_fences_config,
+    routes_fences_feed,
+    running,
+)
 
 from livematch.commands.run import build_daemon
 from livematch.config import load_config
@@ -36,11 +41,7 @@ async def test_daemon_parking_publishes_what_a_live_pipeline_gives(
     daemon = build_daemon(config)
     async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col, \
             running(daemon), publisher(mosquitto.port) as pub:
-        await pub.publish(*control, qos=1, retain=True)
-        for _ in range(200):
-            if daemon.pipeline.counters["control"] == 1:
-                break
-            await asyncio.sleep(0.02)
+        await publish_control(pub, daemon, control)
         for topic, payload in fixes:
             await pub.publish(topic, payload, qos=1)
             await asyncio.sleep(0.03)
