@@ -488,11 +488,17 @@ def bridge_step(
     else:
         paces = [-1.0] * len(nodes)
     new: dict[int, Node] = {}
+    sf, st, vx, vy, slen = view.sf, view.st, view.vx, view.vy, view.slen
+    x1, y1 = ctx.x1, ctx.y1
+    rows = list(zip(found, [shift for _, shift in searches], strict=True))
+    # The offers from the searches are _offer's, inlined (see _bridge_offers) unless the
+    # error terms need the parent (ctx.error_rho > 0): a bridged step makes a hundred or
+    # more of them, most of which change nothing.
+    inline = not ctx.error_rho > 0.0
     for k, seg in enumerate(targets):
-        a = view.sf[seg]
-        b = view.st[seg]
-        lo, hi = free_interval(view.vx[a], view.vy[a], view.vx[b], view.vy[b],
-                               ctx.x1, ctx.y1, eps2)
+        a = sf[seg]
+        b = st[seg]
+        lo, hi = free_interval(vx[a], vy[a], vx[b], vy[b], x1, y1, eps2)
         if lo > hi:
             continue
         same = live.get(seg)
@@ -500,12 +506,125 @@ def bridge_step(
             _offer(new, ctx, seg, max(lo, same.pos), hi, same, (), same.pos,
                    (ctx.speed_route if ctx.speed_route >= 0.0
                     else pace(view, same, ctx.t)) if paced else -1.0)
-        for arrivals, (_, shift) in zip(found, searches, strict=True):
-            r = arrivals[k]
-            if r is None or r.dist - shift[r.source] + lo * view.slen[seg] > limit:
-                continue
-            _offer(new, ctx, seg, lo, hi, nodes[r.source], r.segs, -1.0, paces[r.source])
+        lo_len = lo * slen[seg]
+        offers = [(nodes[r.source], r.segs, paces[r.source]) for arrivals, shift in rows
+                  if (r := arrivals[k]) is not None
+                  and not r.dist - shift[r.source] + lo_len > limit]
+        if not offers:
+            continue
+        if inline:
+            _bridge_offers(new, ctx, seg, lo, hi, offers)
+        else:
+            for parent, via, expect in offers:
+                _offer(new, ctx, seg, lo, hi, parent, via, -1.0, expect)
     return new
+
+
+def _bridge_offers(
+    new: dict[int, Node], ctx: StepContext, seg: int, lo: float, hi: float,
+    offers: list[tuple[Node, tuple[int, ...], float]],
+) -> None:
+    """:func:`_offer` of ``seg`` on [lo, hi] from each ``(parent, via, expect)``, in order.
+
+    The same arithmetic in the same order (the same float64 comes out), for the offers of
+    :func:`bridge_step` from its searches: no floor and no error correlation
+    (``ctx.error_rho`` is 0), so the matched point and its distance term are the same for
+    every parent and are computed once. Two kinds of offer that :func:`_offer` would
+    compute in full only to change nothing are cut short: one whose parent's cost plus
+    that distance term already reaches the segment's best cost (every other term is
+    >= 0 when the weights are, and float addition is monotone), and a repeat of an offer
+    made before (the multi-source search and a source's own search often find the same
+    route).
+    """
+    view = ctx.view
+    slen = view.slen
+    a = view.sf[seg]
+    b = view.st[seg]
+    ax = view.vx[a]
+    ay = view.vy[a]
+    dx = view.vx[b] - ax
+    dy = view.vy[b] - ay
+    x1 = ctx.x1
+    y1 = ctx.y1
+    length2 = dx * dx + dy * dy
+    pos = ((x1 - ax) * dx + (y1 - ay) * dy) / length2 if length2 > 0.0 else lo
+    bottom = lo if lo > -1.0 else (-1.0 if hi > -1.0 else hi)
+    pos = bottom if pos < bottom else (hi if pos > hi else pos)
+    mx = ax + pos * dx
+    my = ay + pos * dy
+    ex = mx - x1
+    ey = my - y1
+    dist = (ex * ex + ey * ey) * ctx.inv_two_sigma2
+    tail = pos * slen[seg]
+    twin = view.twin
+    ok = view.turn_back_ok
+    head = view.st
+    turn_back_cost = ctx.turn_back_cost
+    street_turn_cost = ctx.street_turn_cost
+    chord = ctx.chord
+    inv_beta = ctx.inv_beta
+    pace_cost = ctx.pace_cost
+    speed_route = ctx.speed_route
+    motion_cost = ctx.motion_cost
+    sx = x1 - ctx.x0
+    sy = y1 - ctx.y0
+    bound = (dist >= 0.0 and turn_back_cost >= 0.0 and street_turn_cost >= 0.0
+             and inv_beta >= 0.0 and pace_cost >= 0.0 and motion_cost >= 0.0)
+    done: set[tuple[int, tuple[int, ...], float]] = set()
+    node = new.get(seg)
+    for parent, via, expect in offers:
+        if node is not None:
+            if lo >= node.low and parent.cost >= node.cost:
+                continue  # every term of the cost is >= 0: this way cannot do better
+            if bound and dist + parent.cost >= node.cost:
+                if lo < node.low:
+                    node.low = lo
+                continue
+        key = (id(parent), via, expect)
+        if key in done:
+            continue  # the same offer again: it cannot change the state it made
+        done.add(key)
+        cost = dist
+        if not via and seg == parent.seg:
+            route = (pos - parent.pos) * slen[seg]
+        else:
+            prev = parent.seg
+            route = (1.0 - parent.pos) * slen[prev] + tail
+            turns = 0
+            street = 0
+            for v in via:
+                route += slen[v]
+                if v == twin[prev]:
+                    turns += 1
+                    street += not ok[head[prev]]
+                prev = v
+            if seg == twin[prev]:
+                turns += 1
+                street += not ok[head[prev]]
+            cost += turns * turn_back_cost + street * street_turn_cost
+        cost += parent.cost + abs(route - chord) * inv_beta
+        if speed_route >= 0.0:
+            if route < expect:
+                cost += (expect - route) * pace_cost
+        elif expect >= 0.0:
+            cost += abs(route - expect) * pace_cost
+        if motion_cost > 0.0:
+            ux = (mx - parent.x) - sx
+            uy = (my - parent.y) - sy
+            cost += math.sqrt(ux * ux + uy * uy) * motion_cost
+        if node is None:
+            node = Node(seg, ctx.seq, ctx.t, pos, mx, my, parent, via, cost, lo)
+            new[seg] = node
+            continue
+        if lo < node.low:
+            node.low = lo
+        if cost < node.cost:
+            node.pos = pos
+            node.x = mx
+            node.y = my
+            node.parent = parent
+            node.via = via
+            node.cost = cost
 
 
 def bridge_reach(live: dict[int, Node], ctx: StepContext, settings: MatchSettings) -> float:
