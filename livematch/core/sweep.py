@@ -491,6 +491,9 @@ def bridge_step(
     sf, st, vx, vy, slen = view.sf, view.st, view.vx, view.vy, view.slen
     x1, y1 = ctx.x1, ctx.y1
     rows = list(zip(found, [shift for _, shift in searches], strict=True))
+    # how far a route length the search added up (offset included, then taken off) may
+    # be from _offer's own sum of the same segments: rounding only, far below this
+    slack = 1e-6 + 1e-9 * (abs(limit) + max(abs(o) for o in offsets))
     # The offers from the searches are _offer's, inlined (see _bridge_offers) unless the
     # error terms need the parent (ctx.error_rho > 0): a bridged step makes a hundred or
     # more of them, most of which change nothing.
@@ -507,22 +510,23 @@ def bridge_step(
                    (ctx.speed_route if ctx.speed_route >= 0.0
                     else pace(view, same, ctx.t)) if paced else -1.0)
         lo_len = lo * slen[seg]
-        offers = [(nodes[r.source], r.segs, paces[r.source]) for arrivals, shift in rows
+        # (parent, route, expected route, route length to seg's tail as the search added it)
+        offers = [(nodes[r.source], r.segs, paces[r.source], d) for arrivals, shift in rows
                   if (r := arrivals[k]) is not None
-                  and not r.dist - shift[r.source] + lo_len > limit]
+                  and not (d := r.dist - shift[r.source]) + lo_len > limit]
         if not offers:
             continue
         if inline:
-            _bridge_offers(new, ctx, seg, lo, hi, offers)
+            _bridge_offers(new, ctx, seg, lo, hi, offers, slack)
         else:
-            for parent, via, expect in offers:
+            for parent, via, expect, _ in offers:
                 _offer(new, ctx, seg, lo, hi, parent, via, -1.0, expect)
     return new
 
 
 def _bridge_offers(
     new: dict[int, Node], ctx: StepContext, seg: int, lo: float, hi: float,
-    offers: list[tuple[Node, tuple[int, ...], float]],
+    offers: list[tuple[Node, tuple[int, ...], float, float]], slack: float,
 ) -> None:
     """:func:`_offer` of ``seg`` on [lo, hi] from each ``(parent, via, expect)``, in order.
 
@@ -534,7 +538,11 @@ def _bridge_offers(
     that distance term already reaches the segment's best cost (every other term is
     >= 0 when the weights are, and float addition is monotone), and a repeat of an offer
     made before (the multi-source search and a source's own search often find the same
-    route).
+    route). Most offers are neither, and would walk their whole route (16 segments on
+    average at 15-30 s between fixes) only to lose: the search's own length of the route
+    (each offer's last item, the route up to ``seg``'s tail, within ``slack`` metres of
+    _offer's sum) gives a lower bound of the cost, and an offer whose bound is above the
+    segment's best cost by more than rounding could explain changes nothing either.
     """
     view = ctx.view
     slen = view.slen
@@ -572,14 +580,34 @@ def _bridge_offers(
              and inv_beta >= 0.0 and pace_cost >= 0.0 and motion_cost >= 0.0)
     done: set[tuple[int, tuple[int, ...], float]] = set()
     node = new.get(seg)
-    for parent, via, expect in offers:
+    for parent, via, expect, before in offers:
+        if motion_cost > 0.0:
+            ux = (mx - parent.x) - sx
+            uy = (my - parent.y) - sy
+            motion = math.sqrt(ux * ux + uy * uy) * motion_cost
         if node is not None:
             if lo >= node.low and parent.cost >= node.cost:
                 continue  # every term of the cost is >= 0: this way cannot do better
-            if bound and dist + parent.cost >= node.cost:
-                if lo < node.low:
-                    node.low = lo
-                continue
+            if bound and (via or seg != parent.seg):
+                least = dist + parent.cost
+                if least < node.cost:
+                    # the route and pace terms at the route length the search found,
+                    # less the slack, and the motion term: all >= 0
+                    route = before + tail
+                    gap = abs(route - chord) - slack
+                    if gap > 0.0:
+                        least += gap * inv_beta
+                    gap = (expect - route - slack if speed_route >= 0.0
+                           else abs(route - expect) - slack if expect >= 0.0 else 0.0)
+                    if gap > 0.0:
+                        least += gap * pace_cost
+                    if motion_cost > 0.0:
+                        least += motion
+                    least -= 1e-9 * least + 1e-9  # float rounding of the cost's own sum
+                if least >= node.cost:
+                    if lo < node.low:
+                        node.low = lo
+                    continue
         key = (id(parent), via, expect)
         if key in done:
             continue  # the same offer again: it cannot change the state it made
@@ -609,9 +637,7 @@ def _bridge_offers(
         elif expect >= 0.0:
             cost += abs(route - expect) * pace_cost
         if motion_cost > 0.0:
-            ux = (mx - parent.x) - sx
-            uy = (my - parent.y) - sy
-            cost += math.sqrt(ux * ux + uy * uy) * motion_cost
+            cost += motion
         if node is None:
             node = Node(seg, ctx.seq, ctx.t, pos, mx, my, parent, via, cost, lo)
             new[seg] = node
