@@ -430,7 +430,7 @@ BRIDGE_OWN_SEARCHES = 8  # on the simulated drives more than 8 changed nothing (
 
 def bridge_step(
     network: RoadNetwork, live: dict[int, Node], ctx: StepContext, limit: float,
-    search: RouteSearch = route_searches,
+    search: RouteSearch = route_searches, paces: list[float] | None = None,
 ) -> dict[int, Node]:
     """Reach the segments within eps of p1 from ``live`` by routes of at most ``limit`` m.
 
@@ -448,6 +448,8 @@ def bridge_step(
     is what gets a vehicle out of a dead end it drove into and back out of between two
     fixes 15-30 s apart. ``search`` runs the searches: the compiled
     :func:`~livematch.core.routing.route_searches` or its pure-Python reference.
+    ``paces``: :func:`pace` of each live state at ``ctx.t``, in ``live``'s order, when
+    the caller has them already (:func:`advance`, from :func:`bridge_reach`).
     """
     view = ctx.view
     eps2 = ctx.eps * ctx.eps
@@ -484,13 +486,16 @@ def bridge_step(
         # for every candidate, whatever speed its own path implies
         paces = [ctx.speed_route] * len(nodes)
     elif paced:
-        paces = [pace(view, n, ctx.t) for n in nodes]
+        if paces is None:
+            paces = [pace(view, n, ctx.t) for n in nodes]
     else:
         paces = [-1.0] * len(nodes)
+    expects = paces
     new: dict[int, Node] = {}
     sf, st, vx, vy, slen = view.sf, view.st, view.vx, view.vy, view.slen
     x1, y1 = ctx.x1, ctx.y1
     rows = list(zip(found, [shift for _, shift in searches], strict=True))
+    index = {seg: i for i, seg in enumerate(live)}
     # how far a route length the search added up (offset included, then taken off) may
     # be from _offer's own sum of the same segments: rounding only, far below this
     slack = 1e-6 + 1e-9 * (abs(limit) + max(abs(o) for o in offsets))
@@ -507,11 +512,10 @@ def bridge_step(
         same = live.get(seg)
         if same is not None and hi >= same.pos:
             _offer(new, ctx, seg, max(lo, same.pos), hi, same, (), same.pos,
-                   (ctx.speed_route if ctx.speed_route >= 0.0
-                    else pace(view, same, ctx.t)) if paced else -1.0)
+                   expects[index[seg]])
         lo_len = lo * slen[seg]
         # (parent, route, expected route, route length to seg's tail as the search added it)
-        offers = [(nodes[r.source], r.segs, paces[r.source], d) for arrivals, shift in rows
+        offers = [(nodes[r.source], r.segs, expects[r.source], d) for arrivals, shift in rows
                   if (r := arrivals[k]) is not None
                   and not (d := r.dist - shift[r.source]) + lo_len > limit]
         if not offers:
@@ -653,7 +657,8 @@ def _bridge_offers(
             node.cost = cost
 
 
-def bridge_reach(live: dict[int, Node], ctx: StepContext, settings: MatchSettings) -> float:
+def bridge_reach(live: dict[int, Node], ctx: StepContext, settings: MatchSettings,
+                 paces: list[float] | None = None) -> float:
     """The detour bound of a bridged step (metres): the longest route it searches.
 
     Before the speed bound and the eps slack (:func:`advance`): ``detour_factor`` times
@@ -668,7 +673,8 @@ def bridge_reach(live: dict[int, Node], ctx: StepContext, settings: MatchSetting
     (test) of the steps of bench/accuracy.py's random-walk drives (seed 31), and the
     bridge then had only wrong roads to offer. At 1-15 s a pace longer than the bound is
     rare (more than 150 m in one step, with fixes close together); the speed bound
-    (``bridge_speed_mps``) still caps every route.
+    (``bridge_speed_mps``) still caps every route. ``paces``: :func:`pace` of each live
+    state at ``ctx.t`` in ``live``'s order, when the caller has them.
 
     Example (a candidate that drove 100 m in the 10 s before: 300 m in the next 30 s;
     a 50 m straight step bounds routes at 2 x 50 + 150 = 250 m without ``pace_reach``):
@@ -689,8 +695,8 @@ def bridge_reach(live: dict[int, Node], ctx: StepContext, settings: MatchSetting
     if ctx.speed_route > detour:  # settings.speed_pace_m: the route the speed predicts
         detour = ctx.speed_route
     if settings.pace_reach and ctx.pace_cost > 0.0:
-        for node in live.values():
-            expect = pace(ctx.view, node, ctx.t)
+        for expect in (paces if paces is not None
+                       else [pace(ctx.view, node, ctx.t) for node in live.values()]):
             if expect > detour:
                 detour = expect
     return detour
@@ -720,13 +726,16 @@ def advance(
         if new:
             return new, "swept"
     if live:
-        limit = min(settings.bridge_speed_mps * dt, bridge_reach(live, ctx, settings)) \
+        # each live state's pace, for the reach and the bridge's pace term alike
+        paces = ([pace(ctx.view, n, ctx.t) for n in live.values()] if ctx.pace_cost > 0.0
+                 else None)
+        limit = min(settings.bridge_speed_mps * dt, bridge_reach(live, ctx, settings, paces)) \
             + 2.0 * ctx.eps
         if ((settings.bridge_error_corr or settings.bridge_error_cross)
                 and settings.error_tau_s > 0.0 and dt > settings.gap_s):
             ctx = replace(ctx, error_rho=math.exp(-dt / settings.error_tau_s),
                           error_cross=settings.bridge_error_cross)
-        new = bridge_step(network, live, ctx, limit)
+        new = bridge_step(network, live, ctx, limit, paces=paces)
         if new:
             return new, "bridged"
     return fresh_start(network, ctx), "fresh"
