@@ -585,10 +585,7 @@ def _bridge_offers(
     done: set[tuple[int, tuple[int, ...], float]] = set()
     node = new.get(seg)
     for parent, via, expect, before in offers:
-        if motion_cost > 0.0:
-            ux = (mx - parent.x) - sx
-            uy = (my - parent.y) - sy
-            motion = math.sqrt(ux * ux + uy * uy) * motion_cost
+        motion = -1.0  # the motion term, once computed (it is >= 0)
         if node is not None:
             if lo >= node.low and parent.cost >= node.cost:
                 continue  # every term of the cost is >= 0: this way cannot do better
@@ -605,7 +602,10 @@ def _bridge_offers(
                            else abs(route - expect) - slack if expect >= 0.0 else 0.0)
                     if gap > 0.0:
                         least += gap * pace_cost
-                    if motion_cost > 0.0:
+                    if motion_cost > 0.0 and least - 1e-9 * least - 1e-9 < node.cost:
+                        ux = (mx - parent.x) - sx
+                        uy = (my - parent.y) - sy
+                        motion = math.sqrt(ux * ux + uy * uy) * motion_cost
                         least += motion
                     least -= 1e-9 * least + 1e-9  # float rounding of the cost's own sum
                 if least >= node.cost:
@@ -641,6 +641,10 @@ def _bridge_offers(
         elif expect >= 0.0:
             cost += abs(route - expect) * pace_cost
         if motion_cost > 0.0:
+            if not motion >= 0.0:
+                ux = (mx - parent.x) - sx
+                uy = (my - parent.y) - sy
+                motion = math.sqrt(ux * ux + uy * uy) * motion_cost
             cost += motion
         if node is None:
             node = Node(seg, ctx.seq, ctx.t, pos, mx, my, parent, via, cost, lo)
