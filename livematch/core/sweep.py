@@ -430,7 +430,7 @@ BRIDGE_OWN_SEARCHES = 8  # on the simulated drives more than 8 changed nothing (
 
 def bridge_step(
     network: RoadNetwork, live: dict[int, Node], ctx: StepContext, limit: float,
-    search: RouteSearch = route_searches,
+    search: RouteSearch = route_searches, paces: list[float] | None = None,
 ) -> dict[int, Node]:
     """Reach the segments within eps of p1 from ``live`` by routes of at most ``limit`` m.
 
@@ -448,6 +448,8 @@ def bridge_step(
     is what gets a vehicle out of a dead end it drove into and back out of between two
     fixes 15-30 s apart. ``search`` runs the searches: the compiled
     :func:`~livematch.core.routing.route_searches` or its pure-Python reference.
+    ``paces``: :func:`pace` of each live state at ``ctx.t``, in ``live``'s order, when
+    the caller has them already (:func:`advance`, from :func:`bridge_reach`).
     """
     view = ctx.view
     eps2 = ctx.eps * ctx.eps
@@ -484,31 +486,183 @@ def bridge_step(
         # for every candidate, whatever speed its own path implies
         paces = [ctx.speed_route] * len(nodes)
     elif paced:
-        paces = [pace(view, n, ctx.t) for n in nodes]
+        if paces is None:
+            paces = [pace(view, n, ctx.t) for n in nodes]
     else:
         paces = [-1.0] * len(nodes)
+    expects = paces
     new: dict[int, Node] = {}
+    sf, st, vx, vy, slen = view.sf, view.st, view.vx, view.vy, view.slen
+    x1, y1 = ctx.x1, ctx.y1
+    rows = list(zip(found, [shift for _, shift in searches], strict=True))
+    index = {seg: i for i, seg in enumerate(live)}
+    # how far a route length the search added up (offset included, then taken off) may
+    # be from _offer's own sum of the same segments: rounding only, far below this
+    slack = 1e-6 + 1e-9 * (abs(limit) + max(abs(o) for o in offsets))
+    # The offers from the searches are _offer's, inlined (see _bridge_offers) unless the
+    # error terms need the parent (ctx.error_rho > 0): a bridged step makes a hundred or
+    # more of them, most of which change nothing.
+    inline = not ctx.error_rho > 0.0
     for k, seg in enumerate(targets):
-        a = view.sf[seg]
-        b = view.st[seg]
-        lo, hi = free_interval(view.vx[a], view.vy[a], view.vx[b], view.vy[b],
-                               ctx.x1, ctx.y1, eps2)
+        a = sf[seg]
+        b = st[seg]
+        lo, hi = free_interval(vx[a], vy[a], vx[b], vy[b], x1, y1, eps2)
         if lo > hi:
             continue
         same = live.get(seg)
         if same is not None and hi >= same.pos:
             _offer(new, ctx, seg, max(lo, same.pos), hi, same, (), same.pos,
-                   (ctx.speed_route if ctx.speed_route >= 0.0
-                    else pace(view, same, ctx.t)) if paced else -1.0)
-        for arrivals, (_, shift) in zip(found, searches, strict=True):
-            r = arrivals[k]
-            if r is None or r.dist - shift[r.source] + lo * view.slen[seg] > limit:
-                continue
-            _offer(new, ctx, seg, lo, hi, nodes[r.source], r.segs, -1.0, paces[r.source])
+                   expects[index[seg]])
+        lo_len = lo * slen[seg]
+        # (parent, route, expected route, route length to seg's tail as the search added it)
+        offers = [(nodes[r.source], r.segs, expects[r.source], d) for arrivals, shift in rows
+                  if (r := arrivals[k]) is not None
+                  and not (d := r.dist - shift[r.source]) + lo_len > limit]
+        if not offers:
+            continue
+        if inline:
+            _bridge_offers(new, ctx, seg, lo, hi, offers, slack)
+        else:
+            for parent, via, expect, _ in offers:
+                _offer(new, ctx, seg, lo, hi, parent, via, -1.0, expect)
     return new
 
 
-def bridge_reach(live: dict[int, Node], ctx: StepContext, settings: MatchSettings) -> float:
+def _bridge_offers(
+    new: dict[int, Node], ctx: StepContext, seg: int, lo: float, hi: float,
+    offers: list[tuple[Node, tuple[int, ...], float, float]], slack: float,
+) -> None:
+    """:func:`_offer` of ``seg`` on [lo, hi] from each ``(parent, via, expect)``, in order.
+
+    The same arithmetic in the same order (the same float64 comes out), for the offers of
+    :func:`bridge_step` from its searches: no floor and no error correlation
+    (``ctx.error_rho`` is 0), so the matched point and its distance term are the same for
+    every parent and are computed once. Two kinds of offer that :func:`_offer` would
+    compute in full only to change nothing are cut short: one whose parent's cost plus
+    that distance term already reaches the segment's best cost (every other term is
+    >= 0 when the weights are, and float addition is monotone), and a repeat of an offer
+    made before (the multi-source search and a source's own search often find the same
+    route). Most offers are neither, and would walk their whole route (16 segments on
+    average at 15-30 s between fixes) only to lose: the search's own length of the route
+    (each offer's last item, the route up to ``seg``'s tail, within ``slack`` metres of
+    _offer's sum) gives a lower bound of the cost, and an offer whose bound is above the
+    segment's best cost by more than rounding could explain changes nothing either.
+    """
+    view = ctx.view
+    slen = view.slen
+    a = view.sf[seg]
+    b = view.st[seg]
+    ax = view.vx[a]
+    ay = view.vy[a]
+    dx = view.vx[b] - ax
+    dy = view.vy[b] - ay
+    x1 = ctx.x1
+    y1 = ctx.y1
+    length2 = dx * dx + dy * dy
+    pos = ((x1 - ax) * dx + (y1 - ay) * dy) / length2 if length2 > 0.0 else lo
+    bottom = lo if lo > -1.0 else (-1.0 if hi > -1.0 else hi)
+    pos = bottom if pos < bottom else (hi if pos > hi else pos)
+    mx = ax + pos * dx
+    my = ay + pos * dy
+    ex = mx - x1
+    ey = my - y1
+    dist = (ex * ex + ey * ey) * ctx.inv_two_sigma2
+    tail = pos * slen[seg]
+    twin = view.twin
+    ok = view.turn_back_ok
+    head = view.st
+    turn_back_cost = ctx.turn_back_cost
+    street_turn_cost = ctx.street_turn_cost
+    chord = ctx.chord
+    inv_beta = ctx.inv_beta
+    pace_cost = ctx.pace_cost
+    speed_route = ctx.speed_route
+    motion_cost = ctx.motion_cost
+    sx = x1 - ctx.x0
+    sy = y1 - ctx.y0
+    bound = (dist >= 0.0 and turn_back_cost >= 0.0 and street_turn_cost >= 0.0
+             and inv_beta >= 0.0 and pace_cost >= 0.0 and motion_cost >= 0.0)
+    done: set[tuple[int, tuple[int, ...], float]] = set()
+    node = new.get(seg)
+    for parent, via, expect, before in offers:
+        motion = -1.0  # the motion term, once computed (it is >= 0)
+        if node is not None:
+            if lo >= node.low and parent.cost >= node.cost:
+                continue  # every term of the cost is >= 0: this way cannot do better
+            if bound and (via or seg != parent.seg):
+                least = dist + parent.cost
+                if least < node.cost:
+                    # the route and pace terms at the route length the search found,
+                    # less the slack, and the motion term: all >= 0
+                    route = before + tail
+                    gap = abs(route - chord) - slack
+                    if gap > 0.0:
+                        least += gap * inv_beta
+                    gap = (expect - route - slack if speed_route >= 0.0
+                           else abs(route - expect) - slack if expect >= 0.0 else 0.0)
+                    if gap > 0.0:
+                        least += gap * pace_cost
+                    if motion_cost > 0.0 and least - 1e-9 * least - 1e-9 < node.cost:
+                        ux = (mx - parent.x) - sx
+                        uy = (my - parent.y) - sy
+                        motion = math.sqrt(ux * ux + uy * uy) * motion_cost
+                        least += motion
+                    least -= 1e-9 * least + 1e-9  # float rounding of the cost's own sum
+                if least >= node.cost:
+                    if lo < node.low:
+                        node.low = lo
+                    continue
+        key = (id(parent), via, expect)
+        if key in done:
+            continue  # the same offer again: it cannot change the state it made
+        done.add(key)
+        cost = dist
+        if not via and seg == parent.seg:
+            route = (pos - parent.pos) * slen[seg]
+        else:
+            prev = parent.seg
+            route = (1.0 - parent.pos) * slen[prev] + tail
+            turns = 0
+            street = 0
+            for v in via:
+                route += slen[v]
+                if v == twin[prev]:
+                    turns += 1
+                    street += not ok[head[prev]]
+                prev = v
+            if seg == twin[prev]:
+                turns += 1
+                street += not ok[head[prev]]
+            cost += turns * turn_back_cost + street * street_turn_cost
+        cost += parent.cost + abs(route - chord) * inv_beta
+        if speed_route >= 0.0:
+            if route < expect:
+                cost += (expect - route) * pace_cost
+        elif expect >= 0.0:
+            cost += abs(route - expect) * pace_cost
+        if motion_cost > 0.0:
+            if not motion >= 0.0:
+                ux = (mx - parent.x) - sx
+                uy = (my - parent.y) - sy
+                motion = math.sqrt(ux * ux + uy * uy) * motion_cost
+            cost += motion
+        if node is None:
+            node = Node(seg, ctx.seq, ctx.t, pos, mx, my, parent, via, cost, lo)
+            new[seg] = node
+            continue
+        if lo < node.low:
+            node.low = lo
+        if cost < node.cost:
+            node.pos = pos
+            node.x = mx
+            node.y = my
+            node.parent = parent
+            node.via = via
+            node.cost = cost
+
+
+def bridge_reach(live: dict[int, Node], ctx: StepContext, settings: MatchSettings,
+                 paces: list[float] | None = None) -> float:
     """The detour bound of a bridged step (metres): the longest route it searches.
 
     Before the speed bound and the eps slack (:func:`advance`): ``detour_factor`` times
@@ -523,7 +677,8 @@ def bridge_reach(live: dict[int, Node], ctx: StepContext, settings: MatchSetting
     (test) of the steps of bench/accuracy.py's random-walk drives (seed 31), and the
     bridge then had only wrong roads to offer. At 1-15 s a pace longer than the bound is
     rare (more than 150 m in one step, with fixes close together); the speed bound
-    (``bridge_speed_mps``) still caps every route.
+    (``bridge_speed_mps``) still caps every route. ``paces``: :func:`pace` of each live
+    state at ``ctx.t`` in ``live``'s order, when the caller has them.
 
     Example (a candidate that drove 100 m in the 10 s before: 300 m in the next 30 s;
     a 50 m straight step bounds routes at 2 x 50 + 150 = 250 m without ``pace_reach``):
@@ -544,8 +699,8 @@ def bridge_reach(live: dict[int, Node], ctx: StepContext, settings: MatchSetting
     if ctx.speed_route > detour:  # settings.speed_pace_m: the route the speed predicts
         detour = ctx.speed_route
     if settings.pace_reach and ctx.pace_cost > 0.0:
-        for node in live.values():
-            expect = pace(ctx.view, node, ctx.t)
+        for expect in (paces if paces is not None
+                       else [pace(ctx.view, node, ctx.t) for node in live.values()]):
             if expect > detour:
                 detour = expect
     return detour
@@ -575,13 +730,16 @@ def advance(
         if new:
             return new, "swept"
     if live:
-        limit = min(settings.bridge_speed_mps * dt, bridge_reach(live, ctx, settings)) \
+        # each live state's pace, for the reach and the bridge's pace term alike
+        paces = ([pace(ctx.view, n, ctx.t) for n in live.values()] if ctx.pace_cost > 0.0
+                 else None)
+        limit = min(settings.bridge_speed_mps * dt, bridge_reach(live, ctx, settings, paces)) \
             + 2.0 * ctx.eps
         if ((settings.bridge_error_corr or settings.bridge_error_cross)
                 and settings.error_tau_s > 0.0 and dt > settings.gap_s):
             ctx = replace(ctx, error_rho=math.exp(-dt / settings.error_tau_s),
                           error_cross=settings.bridge_error_cross)
-        new = bridge_step(network, live, ctx, limit)
+        new = bridge_step(network, live, ctx, limit, paces=paces)
         if new:
             return new, "bridged"
     return fresh_start(network, ctx), "fresh"
