@@ -213,22 +213,8 @@ def _offer(
             # signed: rolling back along a segment counts against the step, not for it
             route = (pos - parent.pos) * slen[seg]
         else:
-            route = (1.0 - parent.pos) * slen[parent.seg] + pos * slen[seg]
-            prev = parent.seg
-            twin = view.twin
-            turns = 0
-            ok = view.turn_back_ok
-            head = view.st
-            street = 0  # U-turns where the network has none (only bridged steps with
-            for v in via:  # ctx.street_turns make them)
-                route += slen[v]
-                if v == twin[prev]:
-                    turns += 1
-                    street += not ok[head[prev]]
-                prev = v
-            if seg == twin[prev]:
-                turns += 1
-                street += not ok[head[prev]]
+            route, turns, street = _route_turns(
+                view, parent, via, seg, (1.0 - parent.pos) * slen[parent.seg] + pos * slen[seg])
             cost += turns * ctx.turn_back_cost + street * ctx.street_turn_cost
         cost += parent.cost + abs(route - ctx.chord) * ctx.inv_beta
         if ctx.speed_route >= 0.0:
@@ -245,9 +231,51 @@ def _offer(
             ux = (mx - parent.x) - (ctx.x1 - ctx.x0)
             uy = (my - parent.y) - (ctx.y1 - ctx.y0)
             cost += math.sqrt(ux * ux + uy * uy) * ctx.motion_cost
+    _keep(new, node, ctx, seg, pos, mx, my, parent, via, cost, lo)
+
+
+def _route_turns(
+    view: NetworkView, parent: Node, via: tuple[int, ...], seg: int, route: float,
+) -> tuple[float, int, int]:
+    """The route from ``parent`` through ``via`` into ``seg``, and its U-turns.
+
+    ``route`` holds the parent's rest of its segment plus the part of ``seg`` driven; the
+    vias' lengths are added in order (the same float sum wherever it is called). Returns
+    (route, U-turns, U-turns where the network has none: only bridged steps with
+    ``ctx.street_turns`` make those).
+    """
+    slen = view.slen
+    twin = view.twin
+    ok = view.turn_back_ok
+    head = view.st
+    prev = parent.seg
+    turns = 0
+    street = 0
+    for v in via:
+        route += slen[v]
+        if v == twin[prev]:
+            turns += 1
+            street += not ok[head[prev]]
+        prev = v
+    if seg == twin[prev]:
+        turns += 1
+        street += not ok[head[prev]]
+    return route, turns, street
+
+
+def _keep(
+    new: dict[int, Node], node: Node | None, ctx: StepContext, seg: int, pos: float,
+    mx: float, my: float, parent: Node | None, via: tuple[int, ...], cost: float, lo: float,
+) -> Node:
+    """Record an offer of ``seg`` (reachable from ``lo``; at ``pos`` for ``cost``).
+
+    A new state, or the existing ``node`` with the lowest ``low`` and, when the offer is
+    cheaper, the offer's position, parent, via and cost. Returns the state.
+    """
     if node is None:
-        new[seg] = Node(seg, ctx.seq, ctx.t, pos, mx, my, parent, via, cost, lo)
-        return
+        node = Node(seg, ctx.seq, ctx.t, pos, mx, my, parent, via, cost, lo)
+        new[seg] = node
+        return node
     if lo < node.low:
         node.low = lo
     if cost < node.cost:
@@ -257,6 +285,7 @@ def _offer(
         node.parent = parent
         node.via = via
         node.cost = cost
+    return node
 
 
 def _cross_term(
@@ -568,9 +597,6 @@ def _bridge_offers(
     ey = my - y1
     dist = (ex * ex + ey * ey) * ctx.inv_two_sigma2
     tail = pos * slen[seg]
-    twin = view.twin
-    ok = view.turn_back_ok
-    head = view.st
     turn_back_cost = ctx.turn_back_cost
     street_turn_cost = ctx.street_turn_cost
     chord = ctx.chord
@@ -620,19 +646,8 @@ def _bridge_offers(
         if not via and seg == parent.seg:
             route = (pos - parent.pos) * slen[seg]
         else:
-            prev = parent.seg
-            route = (1.0 - parent.pos) * slen[prev] + tail
-            turns = 0
-            street = 0
-            for v in via:
-                route += slen[v]
-                if v == twin[prev]:
-                    turns += 1
-                    street += not ok[head[prev]]
-                prev = v
-            if seg == twin[prev]:
-                turns += 1
-                street += not ok[head[prev]]
+            route, turns, street = _route_turns(
+                view, parent, via, seg, (1.0 - parent.pos) * slen[parent.seg] + tail)
             cost += turns * turn_back_cost + street * street_turn_cost
         cost += parent.cost + abs(route - chord) * inv_beta
         if speed_route >= 0.0:
@@ -646,19 +661,7 @@ def _bridge_offers(
                 uy = (my - parent.y) - sy
                 motion = math.sqrt(ux * ux + uy * uy) * motion_cost
             cost += motion
-        if node is None:
-            node = Node(seg, ctx.seq, ctx.t, pos, mx, my, parent, via, cost, lo)
-            new[seg] = node
-            continue
-        if lo < node.low:
-            node.low = lo
-        if cost < node.cost:
-            node.pos = pos
-            node.x = mx
-            node.y = my
-            node.parent = parent
-            node.via = via
-            node.cost = cost
+        node = _keep(new, node, ctx, seg, pos, mx, my, parent, via, cost, lo)
 
 
 def bridge_reach(live: dict[int, Node], ctx: StepContext, settings: MatchSettings,
