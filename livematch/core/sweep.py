@@ -182,12 +182,7 @@ def _offer(
     node = new.get(seg)
     if node is not None and lo >= node.low and parent is not None and parent.cost >= node.cost:
         return  # every term of the cost is >= 0: this way cannot do better
-    a = view.sf[seg]
-    b = view.st[seg]
-    ax = view.vx[a]
-    ay = view.vy[a]
-    dx = view.vx[b] - ax
-    dy = view.vy[b] - ay
+    ax, ay, dx, dy = _frame(view, seg)
     length2 = dx * dx + dy * dy
     pos = ((ctx.x1 - ax) * dx + (ctx.y1 - ay) * dy) / length2 if length2 > 0.0 else lo
     bottom = lo if lo > floor else (floor if floor < hi else hi)
@@ -232,6 +227,15 @@ def _offer(
             uy = (my - parent.y) - (ctx.y1 - ctx.y0)
             cost += math.sqrt(ux * ux + uy * uy) * ctx.motion_cost
     _keep(new, node, ctx, seg, pos, mx, my, parent, via, cost, lo)
+
+
+def _frame(view: NetworkView, seg: int) -> tuple[float, float, float, float]:
+    """Segment ``seg``'s tail (x, y) and its vector to the head, in metres."""
+    a = view.sf[seg]
+    b = view.st[seg]
+    ax = view.vx[a]
+    ay = view.vy[a]
+    return ax, ay, view.vx[b] - ax, view.vy[b] - ay
 
 
 def _route_turns(
@@ -579,12 +583,7 @@ def _bridge_offers(
     """
     view = ctx.view
     slen = view.slen
-    a = view.sf[seg]
-    b = view.st[seg]
-    ax = view.vx[a]
-    ay = view.vy[a]
-    dx = view.vx[b] - ax
-    dy = view.vy[b] - ay
+    ax, ay, dx, dy = _frame(view, seg)
     x1 = ctx.x1
     y1 = ctx.y1
     length2 = dx * dx + dy * dy
