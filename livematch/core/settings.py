@@ -589,6 +589,14 @@ class MatchSettings:
             the junction where the vehicle stands, a road alongside), where the live
             answer, ranked by the live score, was on the road driven. Final answers of
             the flushed fixes and the end of the committed path only. Off by default.
+        end_stand_centre: with ``end_stand``, the stand at the end of the log is the
+            longest run of the last fixes within 2 ``sigma_m`` of the run's centre (the
+            median of the fixes), not of the last fix, where those fixes come at most
+            5 s apart (median) and wander
+            (:meth:`livematch.core.tracker.Tracker._stand_from_centre`). Why: the last
+            fix of a stand lies anywhere in its scatter, and measured from it one fix on
+            the far side ends the stand early, on the road past the vertex that the drift
+            led onto. Final answers of the flushed fixes only. Off by default.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -645,6 +653,7 @@ class MatchSettings:
     smallest_commits: bool = True
     start_roots: bool = True
     flush_scored: bool = False
+    end_stand_centre: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -682,7 +691,7 @@ class MatchSettings:
                      "speed_laps", "end_stand", "start_stand",
                      "end_stand_sparse", "bridge_error_corr", "stand_way_out",
                      "stand_pace", "bridge_error_cross", "smallest_commits",
-                     "start_roots", "flush_scored"):
+                     "start_roots", "flush_scored", "end_stand_centre"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

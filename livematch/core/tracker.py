@@ -75,6 +75,7 @@ import heapq
 import itertools
 import json
 import math
+import statistics
 import struct
 import zlib
 from array import array
@@ -2018,6 +2019,8 @@ class Tracker:
             if dx * dx + dy * dy > radius2:
                 break
             s -= 1
+        if self.settings.end_stand_centre and s > 0:
+            s = self._stand_from_centre(chain, s)
         anchor = chain[s]
         if s == 0 and before is not None:
             r = before.seq - seq0
@@ -2053,6 +2056,57 @@ class Tracker:
                 moved.append((k, MatchedFix(node.t, seg, pos * slen, float(px), float(py))))
         for k, answer in moved:
             fixes[k] = answer
+
+    def _stand_from_centre(self, chain: list[Node], s: int) -> int:
+        """Where the stand at the end of ``chain`` begins, read about the stand's centre.
+
+        Rule (``MatchSettings.end_stand_centre``, for :meth:`_end_stand`): ``s`` is the
+        first node of the run that :meth:`_end_stand` found, the last nodes whose fixes
+        lie within ``STAND_SIGMAS`` x ``sigma_m`` of the last fix. Going back from the
+        last node, the run grows while every fix of it lies within that radius of the
+        run's centre (the median of its fixes' x and of their y), and stops at the first
+        node that breaks this. The earlier start is taken only where the fixes of the
+        longer run come densely and wander (:meth:`_wandering_run`); else ``s`` is
+        returned. Why: a standing vehicle's fixes scatter about where it stands, and the
+        last fix is one of them, as likely at the scatter's edge as anywhere: measured
+        from it, one fix on the far side of the scatter (2 ``sigma_m`` from the last,
+        about 1.4 ``sigma_m`` from the centre) ends the stand early, often on the road
+        the drift led onto past the vertex (docs/measured.md "Session 18 (fleet5c)").
+        The median is the centre because an outlier among the fixes does not move it.
+
+        Example (the last fix at the scatter's edge, 11 m from the first):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "v1", MatchSettings(end_stand_centre=True))
+            >>> pts = [(44.0, 2.0), (50.0, 1.0), (49.0, -1.0), (51.0, 2.0), (55.0, 1.0)]
+            >>> chain = []
+            >>> for i, (x, y) in enumerate(pts):
+            ...     _ = tracker.update(Fix("v1", float(i), 0.0, 0.0, x, y))
+            ...     chain.append(Node(0, tracker.fix_seq0 + i, float(i), x / 100.0, x, 0.0,
+            ...                       chain[-1] if chain else None, (), 0.0, 0.0))
+            >>> tracker._stand_from_centre(chain, 1)
+            0
+        """
+        seq0 = self.fix_seq0
+        xy = self.fix_xy
+        radius2 = (STAND_SIGMAS * self.settings.sigma_m) ** 2
+        pts: list[tuple[float, float]] = []
+        for node in chain[::-1]:
+            r = node.seq - seq0
+            if not 0 <= r < self.fix_n:
+                break
+            pts.append((xy.item(r, 0), xy.item(r, 1)))
+        start = len(chain) - 1
+        for m in range(2, len(pts) + 1):
+            run = pts[:m]
+            cx = statistics.median(p[0] for p in run)
+            cy = statistics.median(p[1] for p in run)
+            if any((x - cx) ** 2 + (y - cy) ** 2 > radius2 for x, y in run):
+                break
+            start = len(chain) - m
+        if start < s and self._wandering_run(chain[start:]):
+            return start
+        return s
 
     def _start_stand(self, chain: list[Node], eps: float, fixes: list[MatchedFix],
                      path: list[int]) -> bool:
