@@ -116,8 +116,8 @@ def test_rule_does_nothing_where_the_stand_is_read_from_the_last_fix_alike() -> 
     assert run(ON, tight) == run(OFF, tight)
 
 
-def test_end_stand_centre_is_off_by_default_and_validated() -> None:
-    """end_stand_centre must be a boolean and is off by default."""
-    assert MatchSettings().end_stand_centre is False
+def test_end_stand_centre_is_on_by_default_and_validated() -> None:
+    """end_stand_centre must be a boolean and is on by default."""
+    assert MatchSettings().end_stand_centre is True
     problems = MatchSettings(end_stand_centre=1).problems()  # type: ignore[arg-type]
     assert ("end_stand_centre", "must be true or false, got 1") in problems
