@@ -3,10 +3,14 @@
 Outside reference: shapely places each reported point on the road line it names and
 measures it against its fix; numpy's median and distances check that the fixture's
 stand is the case the rule is for (its fixes within 2 sigma_m of their median, one of
-them farther than that from the last fix).
+them farther than that from the last fix); Python's statistics.median checks the
+tracker's own median.
 """
 
 from __future__ import annotations
+
+import random
+import statistics
 
 import numpy as np
 import pytest
@@ -15,6 +19,7 @@ import shapely
 from livematch.core.build import Road, network_from_roads
 from livematch.core.events import Event
 from livematch.core.settings import MatchSettings
+from livematch.core.tracker import _median
 from tests.catalogue import committed_path as path
 from tests.catalogue import final_answers as finals
 from tests.catalogue import track_points
@@ -121,3 +126,11 @@ def test_end_stand_centre_is_on_by_default_and_validated() -> None:
     assert MatchSettings().end_stand_centre is True
     problems = MatchSettings(end_stand_centre=1).problems()  # type: ignore[arg-type]
     assert ("end_stand_centre", "must be true or false, got 1") in problems
+
+
+def test_median_is_the_standard_librarys() -> None:
+    """The rule's centre uses the same median as Python's statistics.median (outside reference)."""
+    rng = random.Random(7)
+    for n in range(1, 40):
+        values = [rng.uniform(-500.0, 500.0) for _ in range(n)]
+        assert _median(values) == statistics.median(values)  # exactly: the same formula

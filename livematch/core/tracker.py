@@ -75,7 +75,6 @@ import heapq
 import itertools
 import json
 import math
-import statistics
 import struct
 import zlib
 from array import array
@@ -2099,8 +2098,8 @@ class Tracker:
         start = len(chain) - 1
         for m in range(2, len(pts) + 1):
             run = pts[:m]
-            cx = statistics.median(p[0] for p in run)
-            cy = statistics.median(p[1] for p in run)
+            cx = _median([p[0] for p in run])
+            cy = _median([p[1] for p in run])
             if any((x - cx) ** 2 + (y - cy) ** 2 > radius2 for x, y in run):
                 break
             start = len(chain) - m
@@ -3584,6 +3583,21 @@ class _Before:
         self.speed = speed
         self.last_seg = last_seg
         self.levels = levels
+
+
+def _median(values: list[float]) -> float:
+    """The median of ``values`` (not empty): the middle one, or the mean of the two middle.
+
+    The same value as the standard library's ``statistics.median`` (a module the core
+    does not import).
+
+    >>> _median([3.0, 1.0, 2.0]), _median([4.0, 1.0, 2.0, 3.0]), _median([5.0])
+    (2.0, 2.5, 5.0)
+    """
+    ordered = sorted(values)
+    n = len(ordered)
+    mid = n // 2
+    return ordered[mid] if n % 2 else (ordered[mid - 1] + ordered[mid]) / 2
 
 
 def _copy_level(level: Level) -> Level:
