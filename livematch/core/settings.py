@@ -589,6 +589,28 @@ class MatchSettings:
             the junction where the vehicle stands, a road alongside), where the live
             answer, ranked by the live score, was on the road driven. Final answers of
             the flushed fixes and the end of the committed path only. Off by default.
+        heading_cost: where a fix reports its heading (the optional ``heading`` of a
+            position message: a receiver's course over ground, a phone's bearing,
+            GTFS-realtime's ``bearing``; degrees clockwise from true north), every
+            candidate state at that fix is charged for its directed segment pointing
+            away from it: this many units (the same units as the other terms) times
+            ``1 - exp(-d^2 / (2 s^2))``, ``d`` the angle between the segment and the
+            heading compared in the network's grid (the heading turned by the meridian
+            convergence at the fix), ``s`` = :data:`livematch.core.heading.HEADING_SPREAD_DEG`
+            (:mod:`livematch.core.heading`). 0, the default, is off: outputs are those of
+            a tracker without the rule, with or without headings. The charge depends on
+            the state's segment and the fix alone, so it is the same for every way of
+            reaching a state: it changes no back-pointer of the step that adds it, and
+            never what is reachable (the Fréchet decision and its certificate); it
+            orders the candidates the decision keeps, in every later ranking (best
+            candidate, live score, forced and flushed commits, the parents a later
+            step, swept or bridged, keeps). A heading is ignored where the fix also
+            reports a speed below :data:`livematch.core.heading.HEADING_MIN_MPS`
+            (a course at a stand is noise). Why: the direction of travel is what
+            positions cannot give where the two directions of one road fit the fixes
+            alike: a drive into a dead end and out between two fixes, a turning loop
+            read the wrong way round, the first fix of a log (docs/measured.md
+            "Session 18 (heading)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -645,6 +667,7 @@ class MatchSettings:
     smallest_commits: bool = True
     start_roots: bool = True
     flush_scored: bool = False
+    heading_cost: float = 0.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -670,7 +693,7 @@ class MatchSettings:
             out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
         for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s",
                      "spike_cost", "street_turn_cost", "join_detour", "live_keep",
-                     "live_keep_stand_s", "stand_short_m", "speed_pace_m"):
+                     "live_keep_stand_s", "stand_short_m", "speed_pace_m", "heading_cost"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))
