@@ -721,6 +721,8 @@ class Tracker:
         head = (grid_heading(self.network.projection, fix.x, fix.y, fix.heading)
                 if s.heading_cost > 0.0 and fix.heading is not None
                 and (fix.speed is None or fix.speed >= HEADING_MIN_MPS) else None)
+        if head is not None and not (math.isfinite(head[0]) and math.isfinite(head[1])):
+            head = None  # a point the projection cannot turn (far outside its area)
         first = self.next_commit
         t = fix.t
         # CandidateTree.step, its compiled call made here (a Python call fewer per
