@@ -664,6 +664,11 @@ def main(argv: list[str] | None = None) -> int:
                     help="smoke run: 3 drives of 5 min, intervals 1 and 15, helsinki")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"),
                     help="where accuracy.md / accuracy.json go")
+    ap.add_argument("--heading-sigma", type=float, default=None, metavar="DEG",
+                    help="fixes report their course over ground with this error (degrees; "
+                         "DriveSettings.heading_sigma_deg; livematch reads it with "
+                         "--matcher heading_cost=..., the HMM peer never does); default: "
+                         "no heading, as before")
     ap.add_argument("--keep", default=None,
                     help="keep replay logs, truth files and replay outputs in this dir")
     args = ap.parse_args(argv)
@@ -672,7 +677,8 @@ def main(argv: list[str] | None = None) -> int:
         args.extract, args.calibration_drives = "helsinki", 3
     intervals = [int(k) for k in args.intervals.split(",")]
     settings = DriveSettings(duration_s=args.duration, sigma_m=args.sigma, tau_s=args.tau,
-                             outlier_p=args.outliers, **SIM_MODELS[args.sim])
+                             outlier_p=args.outliers, heading_sigma_deg=args.heading_sigma,
+                             **SIM_MODELS[args.sim])
 
     if args.mix_only:
         for ei, name in enumerate(args.extract.split(",")):
@@ -834,6 +840,15 @@ def _f(value: Any, fmt: str) -> str:
     return format(value, fmt)
 
 
+def _heading_note(meta: dict[str, Any]) -> str:
+    """The report's words for fixes that report a heading (nothing when they do not)."""
+    sigma = meta["drive_settings"].get("heading_sigma_deg")
+    if sigma is None:
+        return ""
+    return (f"; fixes report their heading (error {sigma} degrees, "
+            "DriveSettings.heading_sigma_deg; the HMM peer does not read it)")
+
+
 def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
     lines = [
         "# Map-matching accuracy on simulated drives",
@@ -843,6 +858,7 @@ def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
         f"{meta['drive_settings']['sigma_m']} m per axis, tau "
         f"{meta['drive_settings']['tau_s']} s, outliers "
         f"{meta['drive_settings']['outlier_p']:.0%}; drive model {meta['sim']}"
+        f"{_heading_note(meta)}"
         f"{_matcher_note(meta)}; "
         f"{meta['elapsed_s']} s in all). "
         f"Code: commit {meta['git_commit'][:12]}"

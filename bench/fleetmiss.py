@@ -278,6 +278,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--dump", default=None,
                     help="write every base-run episode (fixes, truth, answers) here, "
                          "one JSON line each")
+    ap.add_argument("--heading-sigma", type=float, default=None, metavar="DEG",
+                    help="fixes report their course over ground with this error (degrees; "
+                         "DriveSettings.heading_sigma_deg); default: no heading, as before")
     args = ap.parse_args(argv)
     _instrument()
     base = acc.matcher_settings(args.base)
@@ -286,7 +289,8 @@ def main(argv: list[str] | None = None) -> int:
     dump = open(args.dump, "w", encoding="utf-8") if args.dump else None  # noqa: SIM115
     for sim in args.sim.split(","):
         settings = DriveSettings(duration_s=args.duration, sigma_m=5.0, tau_s=45.0,
-                                 outlier_p=0.01, **acc.SIM_MODELS[sim])
+                                 outlier_p=0.01, heading_sigma_deg=args.heading_sigma,
+                                 **acc.SIM_MODELS[sim])
         for seed in [int(s) for s in args.seeds.split(",")]:
             for ei, name in enumerate(args.extract.split(",")):
                 # the extract's index as in bench/accuracy.py (helsinki 0, test 1)

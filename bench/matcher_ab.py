@@ -57,10 +57,14 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--speed-sigma", type=float, default=None, metavar="MPS",
                     help="fixes report their speed over ground with this error (m/s; "
                          "DriveSettings.speed_sigma_mps); default: no speed, as before")
+    ap.add_argument("--heading-sigma", type=float, default=None, metavar="DEG",
+                    help="fixes report their course over ground with this error (degrees; "
+                         "DriveSettings.heading_sigma_deg); default: no heading, as before")
     args = ap.parse_args(argv)
     matcher = acc.matcher_settings(args.matcher)
     settings = DriveSettings(duration_s=args.duration, sigma_m=5.0, tau_s=45.0,
                              outlier_p=0.01, speed_sigma_mps=args.speed_sigma,
+                             heading_sigma_deg=args.heading_sigma,
                              **acc.SIM_MODELS[args.sim])
     for name in args.extract.split(","):
         ei = {"helsinki": 0, "test": 1}.get(name, 0)  # the drives of --extract helsinki,test
@@ -75,6 +79,8 @@ def main(argv: list[str] | None = None) -> int:
             row: dict[str, Any] = {"sim": args.sim, "seed": args.seed, "extract": name,
                                    "interval": k, "matcher": matcher,
                                    "speed_sigma": args.speed_sigma}
+            if args.heading_sigma is not None:
+                row["heading_sigma"] = args.heading_sigma
             oks = {}
             for label, m in (("base", {}), ("new", matcher)):
                 run = acc.run_inproc(network, records, xy, times, m)

@@ -601,6 +601,33 @@ class MatchSettings:
             and random walk, Helsinki and test extracts, 1 and 5 s; it cannot act at 15
             or 30 s) it turned 105 fixes right and none wrong, live answers and route
             mismatch unchanged in every cell (docs/measured.md "Session 18 (fleet5c)").
+        heading_cost: where a fix reports its heading (the optional ``heading`` of a
+            position message: a receiver's course over ground, a phone's bearing,
+            GTFS-realtime's ``bearing``; degrees clockwise from true north), every
+            candidate state at that fix is charged for its directed segment pointing
+            away from it: this many units (the same units as the other terms) times
+            ``1 - exp(-d^2 / (2 s^2))``, ``d`` the angle between the segment and the
+            heading compared in the network's grid (the heading turned by the meridian
+            convergence at the fix), ``s`` = :data:`livematch.core.heading.HEADING_SPREAD_DEG`
+            (:mod:`livematch.core.heading`). 0, the default, is off: outputs are those of
+            a tracker without the rule, with or without headings. The charge depends on
+            the state's segment and the fix alone, so it is the same for every way of
+            reaching a state: it changes no back-pointer of the step that adds it, and
+            never what is reachable (the Fréchet decision and its certificate); it
+            orders the candidates the decision keeps, in every later ranking (best
+            candidate, live score, forced and flushed commits, the parents a later
+            step, swept or bridged, keeps). A heading is ignored where the fix also
+            reports a speed below :data:`livematch.core.heading.HEADING_MIN_MPS`
+            (a course at a stand is noise). Why: the direction of travel is what
+            positions cannot give where the two directions of one road fit the fixes
+            alike: a drive into a dead end and out between two fixes, a turning loop
+            read the wrong way round, the first fix of a log (docs/measured.md
+            "Session 18 (heading)"). Off by default: on the decision runs (80 drives,
+            seeds 31 / 77, both models, both extracts, 1 / 5 / 15 / 30 s, headings
+            simulated with 5 degrees of error) 5 gains live, final and route mismatch
+            in 29 of 32 cells (random walk Helsinki 15 s final 0.9195 -> 0.9592) but
+            routed trips on the test extract at 1-5 s lose route mismatch in three
+            (up to 1.64 -> 1.76 %) and final in one (0.9922 -> 0.9918).
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -658,6 +685,7 @@ class MatchSettings:
     start_roots: bool = True
     flush_scored: bool = False
     end_stand_centre: bool = True
+    heading_cost: float = 0.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -683,7 +711,7 @@ class MatchSettings:
             out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
         for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s",
                      "spike_cost", "street_turn_cost", "join_detour", "live_keep",
-                     "live_keep_stand_s", "stand_short_m", "speed_pace_m"):
+                     "live_keep_stand_s", "stand_short_m", "speed_pace_m", "heading_cost"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))

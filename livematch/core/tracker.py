@@ -95,8 +95,9 @@ from livematch.core._tree_kernel import (
 from livematch.core._tree_kernel import live_answer as tree_live_answer
 from livematch.core.candidates import DIED, CandidateTree
 from livematch.core.events import Assignment, Commit, Event, Filtered, HeldAssignment, MatchedFix
-from livematch.core.fastsweep import sweep_arrays
+from livematch.core.fastsweep import SweepArrays, sweep_arrays
 from livematch.core.fix import Fix
+from livematch.core.heading import HEADING_MIN_MPS, grid_heading, heading_charges
 from livematch.core.network import RoadNetwork
 from livematch.core.routing import connect, small_loop
 from livematch.core.settings import MatchSettings
@@ -716,6 +717,12 @@ class Tracker:
         if s.motion_step:  # step[9] moves with dt: written at every fix
             inv_motion = 1.0 / s.motion_m  # (_weights_of's)
             step[9] = inv_motion * motion_gain(dt, s.error_tau_s) if dt > 0.0 else inv_motion
+        # MatchSettings.heading_cost: the fix's heading in the grid, when it counts
+        head = (grid_heading(self.network.projection, fix.x, fix.y, fix.heading)
+                if s.heading_cost > 0.0 and fix.heading is not None
+                and (fix.speed is None or fix.speed >= HEADING_MIN_MPS) else None)
+        if head is not None and not (math.isfinite(head[0]) and math.isfinite(head[1])):
+            head = None  # a point the projection cannot turn (far outside its area)
         first = self.next_commit
         t = fix.t
         # CandidateTree.step, its compiled call made here (a Python call fewer per
@@ -740,6 +747,8 @@ class Tracker:
                 if top != DIED:
                     if tops is not None and ask >= 0:
                         tops[level] = (tree, first, ask, top)
+                    if head is not None:
+                        _charge_heading(tree, arrays, head, s.heading_cost)
                     continue
             # the window died (or the step is a gap): bridge, else start afresh
             ctx = StepContext.between(self._view, s, level.eps, x0, y0, fix.x, fix.y, seq,
@@ -771,6 +780,8 @@ class Tracker:
                 level.tree.extend(new, {})
                 level.tree_seq = level.trim_seq = level.cert_seq = seq
                 level.cert_t = fix.t
+            if head is not None:
+                _charge_heading(level.tree, arrays, head, s.heading_cost)
         return salvage
 
     # ------------------------------------------------------------- spike test
@@ -3598,6 +3609,26 @@ def _median(values: list[float]) -> float:
     n = len(ordered)
     mid = n // 2
     return ordered[mid] if n % 2 else (ordered[mid - 1] + ordered[mid]) / 2
+
+
+def _charge_heading(tree: CandidateTree, arrays: SweepArrays, head: tuple[float, float],
+                    cost: float) -> None:
+    """Add the heading charge (``MatchSettings.heading_cost``) to the new live states' costs.
+
+    ``head``: the fix's heading as a unit vector in the grid. The charge depends on a
+    state's segment and the fix alone (:func:`livematch.core.heading.heading_charges`),
+    so adding it after the step equals adding it to every offer the step made: no
+    back-pointer and no reachable position changes, only the costs later rankings read.
+    The commit point the step's compiled call answered is the live states' deepest
+    common ancestor, which no cost enters.
+    """
+    lo = tree.lo
+    hi = tree.hi
+    if hi <= lo:
+        return
+    segs = tree.ti[K_SEG + ROW_I * lo:K_SEG + ROW_I * hi:ROW_I]
+    costs = tree.costs()
+    costs += heading_charges(arrays.seg_geo, segs, head[0], head[1], cost)
 
 
 def _copy_level(level: Level) -> Level:

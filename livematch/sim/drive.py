@@ -122,6 +122,23 @@ class DriveSettings:
             finer than a speed from two positions (from memory). Its errors are drawn
             after every other draw of the drive, so the drive and its fixes are the
             same with or without it.
+        heading_sigma_deg: reported heading (opt-in; None sends none, as the drives
+            always did). With a value each fix carries the course over ground a receiver
+            reports (NMEA RMC's course, a phone's location bearing, GTFS-realtime's
+            ``bearing``; degrees clockwise from true north): the true direction of
+            travel (the driven segment's, turned from the grid to true north by the
+            meridian convergence, :meth:`~livematch.core.geometry.Projection.north_bearing`)
+            plus Gaussian error, reported only while the true speed is at least
+            :data:`HEADING_MIN_MPS` (a receiver's course is noise at a stand: common
+            practice to leave it out or flag it invalid there). The error has two tails
+            of its own, chosen by judgement: a course is computed from the velocity, so
+            its error grows as the speed falls, about the velocity's error over the
+            speed (standard deviation ``sqrt(sigma^2 + atan(HEADING_SPEED_SIGMA_MPS /
+            v)^2)``; 0.3 m/s, from memory, the order of the Doppler speed's error), and
+            a share :data:`HEADING_OUTLIER_P` of the reported courses is any direction at
+            all (multipath, a receiver's glitch; 1 %, as the positions' outliers). Drawn
+            after every other draw (the speed's included), so the drive, its fixes and
+            its speeds are the same with or without it.
     """
 
     duration_s: float = 900.0
@@ -146,6 +163,7 @@ class DriveSettings:
     dwell_s: tuple[float, float] = (10.0, 90.0)
     turn_round_mid_road: bool = True
     speed_sigma_mps: float | None = None
+    heading_sigma_deg: float | None = None
 
     def __post_init__(self) -> None:
         if not (self.lead_s >= 0.0 and math.isfinite(self.lead_s)):
@@ -167,6 +185,20 @@ class DriveSettings:
                 self.speed_sigma_mps >= 0.0 and math.isfinite(self.speed_sigma_mps)):
             raise ValueError(f"DriveSettings.speed_sigma_mps must be None or >= 0 m/s, "
                              f"got {self.speed_sigma_mps}")
+        if self.heading_sigma_deg is not None and not (
+                self.heading_sigma_deg >= 0.0 and math.isfinite(self.heading_sigma_deg)):
+            raise ValueError(f"DriveSettings.heading_sigma_deg must be None or >= 0 degrees, "
+                             f"got {self.heading_sigma_deg}")
+
+
+#: The simulated receiver reports a course only at this true speed or faster, m/s
+#: (``DriveSettings.heading_sigma_deg``; a course at a stand is noise, from memory).
+HEADING_MIN_MPS = 1.0
+#: The velocity error behind a simulated course, m/s: the course errs by about
+#: ``atan(this / speed)`` more at low speed (from memory, as ``speed_sigma_mps``'s order).
+HEADING_SPEED_SIGMA_MPS = 0.3
+#: The share of simulated courses that point anywhere at all (judgement: as ``outlier_p``).
+HEADING_OUTLIER_P = 0.01
 
 
 #: Realistic drive model for the accuracy harness: a 60 s lead-in and lead-out (two
@@ -215,6 +247,8 @@ class Observation:
         delay_s: receive delay, seconds (the replay log's ``at`` is ``t + delay_s``).
         speed: the reported speed over ground, m/s, or None (see
             ``DriveSettings.speed_sigma_mps``).
+        heading: the reported course, degrees clockwise from true north in [0, 360),
+            or None (none reported: see ``DriveSettings.heading_sigma_deg``).
     """
 
     t: float
@@ -226,6 +260,7 @@ class Observation:
     delay_s: float
     # left out of the repr, which older digests of a drive's fixes hash (tests/test_sim.py)
     speed: float | None = field(default=None, repr=False)
+    heading: float | None = field(default=None, repr=False)
 
 
 @dataclass(frozen=True)
@@ -248,6 +283,11 @@ class Drive:
             each (the previous trip's destination). Empty for the random walk.
         speed: (n,) reported speed per second, m/s, or None (no speed reported; see
             ``DriveSettings.speed_sigma_mps``).
+        heading: (n,) reported course per second, degrees from true north, NaN where
+            none is reported (too slow), or None (no course at all; see
+            ``DriveSettings.heading_sigma_deg``).
+        true_heading: (n,) the true direction of travel per second, degrees from true
+            north in [0, 360) (with ``heading`` only, else None).
     """
 
     vehicle: str
@@ -260,6 +300,8 @@ class Drive:
     observed: tuple[int, int] | None = None
     trip_ends: tuple[int, ...] = ()
     speed: FloatArray | None = None
+    heading: FloatArray | None = None
+    true_heading: FloatArray | None = None
 
 
 def gauss_markov(
@@ -720,8 +762,37 @@ def simulate_drive(
         true_v = np.gradient(pos) if n > 1 else np.zeros(1)
         speed = np.round(np.maximum(
             0.0, true_v + rng.normal(0.0, settings.speed_sigma_mps, n)), 2)
+    heading = true_heading = None
+    if settings.heading_sigma_deg is not None and n:
+        # drawn last of all (after the speed's errors), so nothing above moves
+        true_heading = _true_heading(network, truth)
+        pos = np.asarray(positions[:n], dtype=float)
+        true_v = np.gradient(pos) if n > 1 else np.zeros(1)
+        slow = np.degrees(np.arctan(HEADING_SPEED_SIGMA_MPS / np.maximum(true_v, 1e-9)))
+        sigma = np.sqrt(settings.heading_sigma_deg ** 2 + slow * slow)
+        noisy = true_heading + rng.normal(0.0, 1.0, n) * sigma
+        wild = rng.random(n) < HEADING_OUTLIER_P
+        noisy = np.where(wild, rng.uniform(0.0, 360.0, n), noisy)
+        heading = np.where(true_v >= HEADING_MIN_MPS, np.round(noisy % 360.0, 1) % 360.0,
+                           np.nan)
     return Drive(vehicle, tuple(route[: last + 1]), truth, error, outlier, accuracy, delay,
-                 observed, tuple(k for k in trip_starts if k <= last), speed)
+                 observed, tuple(k for k in trip_starts if k <= last), speed, heading,
+                 true_heading)
+
+
+def _true_heading(network: RoadNetwork, truth: tuple[TruthPoint, ...]) -> FloatArray:
+    """The direction of the segment driven at each truth second, degrees from true north.
+
+    The segment's grid bearing less the grid bearing of true north at the point (the
+    meridian convergence, :meth:`~livematch.core.geometry.Projection.north_bearing`).
+    """
+    segs = np.array([p.segment for p in truth], dtype=np.int64)
+    a = network.node_xy[network.seg_from[segs]]
+    b = network.node_xy[network.seg_to[segs]]
+    grid = np.arctan2(b[:, 0] - a[:, 0], b[:, 1] - a[:, 1])
+    north = network.projection.north_bearing([p.x for p in truth], [p.y for p in truth])
+    out: FloatArray = np.degrees(grid - north) % 360.0
+    return out
 
 
 def _integrate(
@@ -819,5 +890,7 @@ def observe(drive: Drive, interval_s: int) -> list[Observation]:
             outlier=bool(np.any(drive.outlier_xy[i] != 0.0)), truth_index=i,
             delay_s=float(drive.delay[i]),
             speed=None if drive.speed is None else float(drive.speed[i]),
+            heading=(None if drive.heading is None or math.isnan(drive.heading[i])
+                     else float(drive.heading[i])),
         ))
     return out

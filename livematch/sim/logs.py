@@ -96,6 +96,8 @@ def replay_records(
                                        "lon": lon, "accuracy": o.accuracy}
             if o.speed is not None:  # only when the drive reports speed
                 payload["speed"] = o.speed
+            if o.heading is not None:  # only when the drive reports a course, and moves
+                payload["heading"] = o.heading
             out.append({
                 "at": round(o.t + o.delay_s, 3),
                 "topic": topic.format(vehicle=drive.vehicle),
