@@ -589,6 +589,15 @@ class MatchSettings:
             the junction where the vehicle stands, a road alongside), where the live
             answer, ranked by the live score, was on the road driven. Final answers of
             the flushed fixes and the end of the committed path only. Off by default.
+        start_way_out: at the first commit of a vehicle's log, a first fix answered on
+            a segment the path leaves before the next fix, short of that segment's end
+            vertex V, with V within eps of the fix, is reported at V on the segment the
+            path enters there, and the committed path begins on that segment
+            (:meth:`livematch.core.tracker.Tracker._start_way_out`). Why: nothing before
+            the first fix shows how the vehicle came to V; the segment out of V is driven
+            either way, the one into it only if the vehicle came in by it rather than
+            standing at V when its log began. Final answer of the first fix and the
+            start of the committed path only. Off by default.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -645,6 +654,7 @@ class MatchSettings:
     smallest_commits: bool = True
     start_roots: bool = True
     flush_scored: bool = False
+    start_way_out: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -682,7 +692,7 @@ class MatchSettings:
                      "speed_laps", "end_stand", "start_stand",
                      "end_stand_sparse", "bridge_error_corr", "stand_way_out",
                      "stand_pace", "bridge_error_cross", "smallest_commits",
-                     "start_roots", "flush_scored"):
+                     "start_roots", "flush_scored", "start_way_out"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

@@ -1886,6 +1886,18 @@ class Tracker:
                 if len(chain) == 1:
                     top = Node(entered, first.seq, first.t, 0.0, first.x, first.y,
                                first.parent, (), first.cost, 0.0)
+        elif (self.settings.start_way_out and last is None and not began
+                and first.pos < 1.0):
+            entered = self._start_way_out(tree, chain, self._eps_of(tree))
+            if entered >= 0:
+                v = view.sf[entered]
+                fixes[0] = MatchedFix(first.t, entered, 0.0, view.vx[v], view.vy[v])
+                path[0] = entered
+                if path[1:2] == [entered]:
+                    del path[0]
+                if len(chain) == 1:
+                    top = Node(entered, first.seq, first.t, 0.0, view.vx[v], view.vy[v],
+                               first.parent, (), first.cost, 0.0)
         if self.skipped:
             fixes = self._fill_skipped(chain, before, math.inf if settle_all else top.t, fixes)
         events.append(Commit(self.vehicle, tuple(fixes), tuple(path)))
@@ -2999,6 +3011,55 @@ class Tracker:
         """:meth:`_join_limit` for joining the committed point ``last`` to ``first``."""
         x, y = _point(self._view, last[0], last[1])
         return self._join_limit(first.t - last[3], math.hypot(first.x - x, first.y - y))
+
+    def _start_way_out(self, tree: CandidateTree, chain: list[Node], eps: float) -> int:
+        """The segment the log's first fix is reported on at its start vertex, or -1.
+
+        Rule (``MatchSettings.start_way_out``; the first commit of the log only): the
+        first node of ``chain`` lies on a segment A that the path leaves before the next
+        node (:meth:`_entered_after`, which also asks the tree's live candidates when
+        the chain is that node alone), and the vertex V where A ends lies within
+        ``eps`` of the first fix. Then the first fix is reported at V, at the start of
+        the segment B the path enters there (the caller moves it and begins the
+        committed path at B), and -1 leaves the commit as it was.
+
+        Why: nothing before the log's first fix shows how the vehicle came to V. A is
+        on the path only because that one fix lies a few metres short of V, well within
+        the GNSS error (a fix whose error leans back along A makes A's start the
+        cheaper root: the route from it is longer by those metres, as the chord of a
+        first step often is). B is driven after the first fix either way; A only if the
+        vehicle came in by it, and not if it stood at V when the log began (a tracker
+        switched on in a parked vehicle). V is in the free space of the first fix (the
+        eps check): the sweep could have started at B's start as well. The answer at V
+        on B is the one that holds whichever way the vehicle came, and the committed
+        path then claims no segment that no fix shows driven (as for a stretch that
+        starts at the very end of a segment, ``pos`` 1). Mid-log the segment that came
+        in is shown by the fixes before; this rule never acts there.
+
+        Example (A runs (0, 0) -> (100, 0), B (100, 0) -> (200, 0); the first fix
+        lies 6 m short of V = (100, 0), the second well along B):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1),
+            ...                           Road([(100.0, 0.0), (200.0, 0.0)], way=2)])
+            >>> tracker = Tracker(net, "v1", MatchSettings(start_way_out=True))
+            >>> _ = tracker.update(Fix("v1", 0.0, 0.0, 0.0, 94.0, 1.0))
+            >>> a = Node(0, tracker.fix_seq0, 0.0, 0.94, 94.0, 0.0, None, (), 0.0, 0.94)
+            >>> b = Node(2, tracker.fix_seq0 + 1, 15.0, 0.6, 160.0, 0.0, a, (), 1.0, 0.6)
+            >>> tree = tracker.levels[0].tree
+            >>> tracker._start_way_out(tree, [a, b], 15.0), tracker._start_way_out(tree, [a, b], 5.0)
+            (2, -1)
+        """
+        first = chain[0]
+        view = self._view
+        r = first.seq - self.fix_seq0
+        if not 0 <= r < self.fix_n:
+            return -1
+        v = view.st[first.seg]
+        dx = view.vx[v] - self.fix_xy.item(r, 0)
+        dy = view.vy[v] - self.fix_xy.item(r, 1)
+        if dx * dx + dy * dy > eps * eps:
+            return -1
+        return self._entered_after(tree, chain)
 
     def _entered_after(self, tree: CandidateTree, chain: list[Node]) -> int:
         """The segment the path enters right after the first node of ``chain``, or -1.
