@@ -591,13 +591,13 @@ class MatchSettings:
             the flushed fixes and the end of the committed path only. Off by default.
         start_way_out: at the first commit of a vehicle's log, a first fix answered on
             a segment the path leaves before the next fix, short of that segment's end
-            vertex V, with V within eps of the fix, is reported at V on the segment the
-            path enters there, and the committed path begins on that segment
-            (:meth:`livematch.core.tracker.Tracker._start_way_out`). Why: nothing before
-            the first fix shows how the vehicle came to V; the segment out of V is driven
-            either way, the one into it only if the vehicle came in by it rather than
-            standing at V when its log began. Final answer of the first fix and the
-            start of the committed path only. Off by default.
+            vertex V, with V within eps of the fix and the next fix 5 s or more later, is
+            reported at V on the segment the path enters there; the committed path is
+            left as it was (:meth:`livematch.core.tracker.Tracker._start_way_out`). Why:
+            nothing before the first fix shows how the vehicle came to V; the segment
+            out of V is driven either way, the one into it only if the vehicle came in
+            by it rather than standing at V when its log began. The final answer of the
+            first fix only. Off by default.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)

@@ -1890,14 +1890,10 @@ class Tracker:
                 and first.pos < 1.0):
             entered = self._start_way_out(tree, chain, self._eps_of(tree))
             if entered >= 0:
+                # the answer only: the path and the state the next commit goes on from
+                # keep A (see _start_way_out)
                 v = view.sf[entered]
                 fixes[0] = MatchedFix(first.t, entered, 0.0, view.vx[v], view.vy[v])
-                path[0] = entered
-                if path[1:2] == [entered]:
-                    del path[0]
-                if len(chain) == 1:
-                    top = Node(entered, first.seq, first.t, 0.0, view.vx[v], view.vy[v],
-                               first.parent, (), first.cost, 0.0)
         if self.skipped:
             fixes = self._fill_skipped(chain, before, math.inf if settle_all else top.t, fixes)
         events.append(Commit(self.vehicle, tuple(fixes), tuple(path)))
@@ -3018,10 +3014,13 @@ class Tracker:
         Rule (``MatchSettings.start_way_out``; the first commit of the log only): the
         first node of ``chain`` lies on a segment A that the path leaves before the next
         node (:meth:`_entered_after`, which also asks the tree's live candidates when
-        the chain is that node alone), and the vertex V where A ends lies within
-        ``eps`` of the first fix. Then the first fix is reported at V, at the start of
-        the segment B the path enters there (the caller moves it and begins the
-        committed path at B), and -1 leaves the commit as it was.
+        the chain is that node alone), the vertex V where A ends lies within ``eps``
+        of the first fix, and the next fix comes ``SPARSE_S`` or more after the first
+        (at denser fixes the fixes that follow show a stand at V, :meth:`_start_stand`'s
+        case, or a vehicle moving through V, which came in by A). Then the first fix is
+        reported at V, at the start of the segment B the path enters there (the caller
+        moves that answer; the committed path is left as it was, beginning with A), and
+        -1 leaves the commit as it was.
 
         Why: nothing before the log's first fix shows how the vehicle came to V. A is
         on the path only because that one fix lies a few metres short of V, well within
@@ -3031,9 +3030,12 @@ class Tracker:
         vehicle came in by it, and not if it stood at V when the log began (a tracker
         switched on in a parked vehicle). V is in the free space of the first fix (the
         eps check): the sweep could have started at B's start as well. The answer at V
-        on B is the one that holds whichever way the vehicle came, and the committed
-        path then claims no segment that no fix shows driven (as for a stretch that
-        starts at the very end of a segment, ``pos`` 1). Mid-log the segment that came
+        on B is the one that holds whichever way the vehicle came. The path keeps A:
+        it is the matcher's reading of how the vehicle came to V, which no fix shows
+        or refutes, and dropping it (as for a stretch that starts at the very end of a
+        segment, ``pos`` 1) loses route mismatch wherever logs begin mid-trip (routed
+        trips with a lead-in) for what it gains where they begin at a stand (the random
+        walk); docs/measured.md "Session 18 (logstart)". Mid-log the segment that came
         in is shown by the fixes before; this rule never acts there.
 
         Example (A runs (0, 0) -> (100, 0), B (100, 0) -> (200, 0); the first fix
@@ -3046,13 +3048,16 @@ class Tracker:
             >>> a = Node(0, tracker.fix_seq0, 0.0, 0.94, 94.0, 0.0, None, (), 0.0, 0.94)
             >>> b = Node(2, tracker.fix_seq0 + 1, 15.0, 0.6, 160.0, 0.0, a, (), 1.0, 0.6)
             >>> tree = tracker.levels[0].tree
-            >>> tracker._start_way_out(tree, [a, b], 15.0), tracker._start_way_out(tree, [a, b], 5.0)
-            (2, -1)
+            >>> tracker._start_way_out(tree, [a, b], 15.0)
+            2
+            >>> tracker._start_way_out(tree, [a, b], 5.0)   # V 6.1 m from the fix
+            -1
         """
         first = chain[0]
         view = self._view
         r = first.seq - self.fix_seq0
-        if not 0 <= r < self.fix_n:
+        after = chain[1].t if len(chain) > 1 else self.fix_time(first.seq + 1)
+        if not 0 <= r < self.fix_n or after is None or after - first.t < SPARSE_S:
             return -1
         v = view.st[first.seg]
         dx = view.vx[v] - self.fix_xy.item(r, 0)
