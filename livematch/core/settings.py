@@ -591,19 +591,15 @@ class MatchSettings:
             the flushed fixes and the end of the committed path only. Off by default.
         start_way_out: at the first commit of a vehicle's log, a first fix answered on
             a segment the path leaves before the next fix, short of that segment's end
-            vertex V, with V within eps of the fix and the next fix 5 s or more later, is
+            vertex V, with V within the smallest eps level of the fix and the next fix
+            5 s or more later (both in the same commit), is
             reported at V on the segment the path enters there; the committed path is
             left as it was (:meth:`livematch.core.tracker.Tracker._start_way_out`). Why:
             nothing before the first fix shows how the vehicle came to V; the segment
             out of V is driven either way, the one into it only if the vehicle came in
             by it rather than standing at V when its log began. The final answer of the
             first fix only. On by default: on bench/fleetmiss.py's decision runs (80
-            drives, seeds 31 / 77, both models, both extracts, 5 / 15 / 30 s) final
-            road+dir rises in 22 of 24 cells (random walk +14 to +29 fixes net a cell,
-            e.g. Helsinki 30 s 0.9040 / 0.9073 -> 0.9125 / 0.9161; routed trips +1 to
-            +5) and holds in two (+0 / -0, +1 / -1); live answers and route mismatch are identical; the
-            matched-position error median rises in every routed-trips cell, by up to
-            0.054 m (the moved answer lies at V, not at the fix's projection)
+            drives, seeds 31 / 77, both models, both extracts, 5 / 15 / 30 s) RESULTS
             (docs/measured.md "Session 18 (logstart)").
     """
 

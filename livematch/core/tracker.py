@@ -1890,10 +1890,13 @@ class Tracker:
                 and first.pos < 1.0):
             entered = self._start_way_out(tree, chain, self._eps_of(tree))
             if entered >= 0:
-                # the answer only: the path and the state the next commit goes on from
-                # keep A (see _start_way_out)
+                # the answer only: the path keeps A (see _start_way_out)
                 v = view.sf[entered]
                 fixes[0] = MatchedFix(first.t, entered, 0.0, view.vx[v], view.vy[v])
+                if len(chain) == 1:
+                    path.append(entered)
+                    top = Node(entered, first.seq, first.t, 0.0, view.vx[v], view.vy[v],
+                               first.parent, (), first.cost, 0.0)
         if self.skipped:
             fixes = self._fill_skipped(chain, before, math.inf if settle_all else top.t, fixes)
         events.append(Commit(self.vehicle, tuple(fixes), tuple(path)))
@@ -3013,14 +3016,16 @@ class Tracker:
 
         Rule (``MatchSettings.start_way_out``; the first commit of the log only): the
         first node of ``chain`` lies on a segment A that the path leaves before the next
-        node (:meth:`_entered_after`, which also asks the tree's live candidates when
-        the chain is that node alone), the vertex V where A ends lies within ``eps``
-        of the first fix, and the next fix comes ``SPARSE_S`` or more after the first
-        (at denser fixes the fixes that follow show a stand at V, :meth:`_start_stand`'s
+        fix (:meth:`_entered_after`, which asks the tree's live candidates when the
+        chain is that node alone: all of them must enter the same segment after it),
+        the vertex V where A ends lies within the smallest eps level (and ``eps``) of
+        the first fix, and the next fix comes ``SPARSE_S`` or more after the first (at
+        denser fixes the fixes that follow show a stand at V, :meth:`_start_stand`'s
         case, or a vehicle moving through V, which came in by A). Then the first fix is
-        reported at V, at the start of the segment B the path enters there (the caller
-        moves that answer; the committed path is left as it was, beginning with A), and
-        -1 leaves the commit as it was.
+        reported at V, at the start of the segment B the path enters there, and -1
+        leaves the commit as it was. The caller moves that answer only: the committed
+        path still begins with A, B (a commit of that node alone commits B too, and the
+        next commit goes on from V on B, so no later commit can leave A another way).
 
         Why: nothing before the log's first fix shows how the vehicle came to V. A is
         on the path only because that one fix lies a few metres short of V, well within
@@ -3028,8 +3033,10 @@ class Tracker:
         cheaper root: the route from it is longer by those metres, as the chord of a
         first step often is). B is driven after the first fix either way; A only if the
         vehicle came in by it, and not if it stood at V when the log began (a tracker
-        switched on in a parked vehicle). V is in the free space of the first fix (the
-        eps check): the sweep could have started at B's start as well. The answer at V
+        switched on in a parked vehicle). V is in the free space of the first fix at
+        the smallest level (the radius check): that level's sweep could have started at
+        B's start as well; a wider level's eps (30 or 60 m) would move the answer by
+        more than the GNSS error explains. The answer at V
         on B is the one that holds whichever way the vehicle came. The path keeps A:
         it is the matcher's reading of how the vehicle came to V, which no fix shows
         or refutes, and dropping it (as for a stretch that starts at the very end of a
@@ -3054,15 +3061,18 @@ class Tracker:
             -1
         """
         first = chain[0]
+        after = chain[1].t if len(chain) > 1 else self.fix_time(first.seq + 1)
+        if after is None or after - first.t < SPARSE_S:
+            return -1
         view = self._view
         r = first.seq - self.fix_seq0
-        after = chain[1].t if len(chain) > 1 else self.fix_time(first.seq + 1)
-        if not 0 <= r < self.fix_n or after is None or after - first.t < SPARSE_S:
+        if not 0 <= r < self.fix_n:
             return -1
         v = view.st[first.seg]
         dx = view.vx[v] - self.fix_xy.item(r, 0)
         dy = view.vy[v] - self.fix_xy.item(r, 1)
-        if dx * dx + dy * dy > eps * eps:
+        radius = min(eps, self.settings.eps_levels[0])
+        if dx * dx + dy * dy > radius * radius:
             return -1
         return self._entered_after(tree, chain)
 
