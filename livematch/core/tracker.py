@@ -1835,6 +1835,13 @@ class Tracker:
         elif before is not None and before.seq == last[2] and before.seg == last[0]:
             path.extend(_steps(last[0], first))
             goes_on = True
+        elif (self.settings.start_way_out and not laps and before is not None
+                and before.seq == last[2] and last[1] == 0.0 and before.pos < 1.0
+                and _steps(before.seg, first)[:1] == [last[0]]):
+            # start_way_out reported the log's first fix at V on B (the path has A, B);
+            # this chain goes on from that fix's node on A through B, as it was built
+            path.extend(_steps(before.seg, first)[1:])
+            goes_on = True
         else:
             route = connect(view, last[0], last[1], first.seg, first.pos,
                             self._join_limit_to(last, first))
