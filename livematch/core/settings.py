@@ -592,15 +592,20 @@ class MatchSettings:
         start_way_out: at the first commit of a vehicle's log, a first fix answered on
             a segment the path leaves before the next fix, short of that segment's end
             vertex V, with V within the smallest eps level of the fix and the next fix
-            5 s or more later (both in the same commit), is
-            reported at V on the segment the path enters there; the committed path is
-            left as it was (:meth:`livematch.core.tracker.Tracker._start_way_out`). Why:
+            5 s or more later, is reported at V on the segment the path enters there;
+            the committed path keeps the segment into V
+            (:meth:`livematch.core.tracker.Tracker._start_way_out`). Why:
             nothing before the first fix shows how the vehicle came to V; the segment
             out of V is driven either way, the one into it only if the vehicle came in
             by it rather than standing at V when its log began. The final answer of the
-            first fix only. On by default: on bench/fleetmiss.py's decision runs (80
-            drives, seeds 31 / 77, both models, both extracts, 5 / 15 / 30 s) RESULTS
-            (docs/measured.md "Session 18 (logstart)").
+            first fix only. Off by default: on bench/fleetmiss.py's decision runs (80
+            drives, seeds 31 / 77, both models, both extracts, 5 / 15 / 30 s) it turns
+            13 to 29 fixes right net in every random-walk cell (Helsinki 30 s 0.9040 /
+            0.9073 -> 0.9125 / 0.9161) and 0 to 5 in routed trips, live answers
+            identical, route mismatch identical but in routed trips test 5 s seed 31
+            (1.637 -> 1.642 %, one drive whose second fix is an outlier), which keeps
+            it off by the rule for defaults; the error median rises in every
+            routed-trips cell, by up to 0.054 m (docs/measured.md "Session 18 (logstart)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -657,7 +662,7 @@ class MatchSettings:
     smallest_commits: bool = True
     start_roots: bool = True
     flush_scored: bool = False
-    start_way_out: bool = True
+    start_way_out: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
