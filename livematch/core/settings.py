@@ -604,8 +604,9 @@ class MatchSettings:
             0.9073 -> 0.9125 / 0.9161) and 0 to 5 in routed trips, live answers
             identical, route mismatch identical but in routed trips test 5 s seed 31
             (1.637 -> 1.642 %, one drive whose second fix is an outlier), which keeps
-            it off by the rule for defaults; the error median rises in every
-            routed-trips cell, by up to 0.054 m (docs/measured.md "Session 18 (logstart)").
+            it off by the rule for defaults; the error median rises in 11 of the 12
+            routed-trips cells, by up to 0.054 m (docs/measured.md "Session 18
+            (logstart)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)

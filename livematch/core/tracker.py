@@ -3031,8 +3031,11 @@ class Tracker:
         case, or a vehicle moving through V, which came in by A). Then the first fix is
         reported at V, at the start of the segment B the path enters there, and -1
         leaves the commit as it was. The caller moves that answer only: the committed
-        path still begins with A, B (a commit of that node alone commits B too, and the
-        next commit goes on from V on B, so no later commit can leave A another way).
+        path still begins with A, B (a commit of that node alone commits B too; the
+        next commit goes on from A through B where its chain does, as the tree built
+        it, and otherwise joins from V on B: once, with an outlier as the second fix,
+        the later commits left A another way; docs/measured.md "Session 18
+        (logstart)").
 
         Why: nothing before the log's first fix shows how the vehicle came to V. A is
         on the path only because that one fix lies a few metres short of V, well within
@@ -3043,8 +3046,8 @@ class Tracker:
         switched on in a parked vehicle). V is in the free space of the first fix at
         the smallest level (the radius check): that level's sweep could have started at
         B's start as well; a wider level's eps (30 or 60 m) would move the answer by
-        more than the GNSS error explains. The answer at V
-        on B is the one that holds whichever way the vehicle came. The path keeps A:
+        more than the GNSS error explains. The answer at V on B is the one that holds
+        whichever way the vehicle came. The path keeps A:
         it is the matcher's reading of how the vehicle came to V, which no fix shows
         or refutes, and dropping it (as for a stretch that starts at the very end of a
         segment, ``pos`` 1) loses route mismatch wherever logs begin mid-trip (routed
