@@ -628,6 +628,24 @@ class MatchSettings:
             in 29 of 32 cells (random walk Helsinki 15 s final 0.9195 -> 0.9592) but
             routed trips on the test extract at 1-5 s lose route mismatch in three
             (up to 1.64 -> 1.76 %) and final in one (0.9922 -> 0.9918).
+        start_way_out: at the first commit of a vehicle's log, a first fix answered on
+            a segment the path leaves before the next fix, short of that segment's end
+            vertex V, with V within the smallest eps level of the fix and the next fix
+            5 s or more later, is reported at V on the segment the path enters there;
+            the committed path keeps the segment into V
+            (:meth:`livematch.core.tracker.Tracker._start_way_out`). Why:
+            nothing before the first fix shows how the vehicle came to V; the segment
+            out of V is driven either way, the one into it only if the vehicle came in
+            by it rather than standing at V when its log began. The final answer of the
+            first fix only. Off by default: on bench/fleetmiss.py's decision runs (80
+            drives, seeds 31 / 77, both models, both extracts, 5 / 15 / 30 s) it turns
+            13 to 29 fixes right net in every random-walk cell (Helsinki 30 s 0.9040 /
+            0.9073 -> 0.9125 / 0.9161) and 0 to 5 in routed trips, live answers
+            identical, route mismatch identical but in routed trips test 5 s seed 31
+            (1.637 -> 1.642 %, one drive whose second fix is an outlier), which keeps
+            it off by the rule for defaults; the error median rises in 11 of the 12
+            routed-trips cells, by up to 0.054 m (docs/measured.md "Session 18
+            (logstart)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -686,6 +704,7 @@ class MatchSettings:
     flush_scored: bool = False
     end_stand_centre: bool = True
     heading_cost: float = 0.0
+    start_way_out: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -723,7 +742,8 @@ class MatchSettings:
                      "speed_laps", "end_stand", "start_stand",
                      "end_stand_sparse", "bridge_error_corr", "stand_way_out",
                      "stand_pace", "bridge_error_cross", "smallest_commits",
-                     "start_roots", "flush_scored", "end_stand_centre"):
+                     "start_roots", "flush_scored", "end_stand_centre",
+                     "start_way_out"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

@@ -1846,6 +1846,13 @@ class Tracker:
         elif before is not None and before.seq == last[2] and before.seg == last[0]:
             path.extend(_steps(last[0], first))
             goes_on = True
+        elif (self.settings.start_way_out and not laps and before is not None
+                and before.seq == last[2] and last[1] == 0.0 and before.pos < 1.0
+                and _steps(before.seg, first)[:1] == [last[0]]):
+            # start_way_out reported the log's first fix at V on B (the path has A, B);
+            # this chain goes on from that fix's node on A through B, as it was built
+            path.extend(_steps(before.seg, first)[1:])
+            goes_on = True
         else:
             route = connect(view, last[0], last[1], first.seg, first.pos,
                             self._join_limit_to(last, first))
@@ -1896,6 +1903,17 @@ class Tracker:
                     del path[0]
                 if len(chain) == 1:
                     top = Node(entered, first.seq, first.t, 0.0, first.x, first.y,
+                               first.parent, (), first.cost, 0.0)
+        elif (self.settings.start_way_out and last is None and not began
+                and first.pos < 1.0):
+            entered = self._start_way_out(tree, chain, self._eps_of(tree))
+            if entered >= 0:
+                # the answer only: the path keeps A (see _start_way_out)
+                v = view.sf[entered]
+                fixes[0] = MatchedFix(first.t, entered, 0.0, view.vx[v], view.vy[v])
+                if len(chain) == 1:
+                    path.append(entered)
+                    top = Node(entered, first.seq, first.t, 0.0, view.vx[v], view.vy[v],
                                first.parent, (), first.cost, 0.0)
         if self.skipped:
             fixes = self._fill_skipped(chain, before, math.inf if settle_all else top.t, fixes)
@@ -3063,6 +3081,74 @@ class Tracker:
         """:meth:`_join_limit` for joining the committed point ``last`` to ``first``."""
         x, y = _point(self._view, last[0], last[1])
         return self._join_limit(first.t - last[3], math.hypot(first.x - x, first.y - y))
+
+    def _start_way_out(self, tree: CandidateTree, chain: list[Node], eps: float) -> int:
+        """The segment the log's first fix is reported on at its start vertex, or -1.
+
+        Rule (``MatchSettings.start_way_out``; the first commit of the log only): the
+        first node of ``chain`` lies on a segment A that the path leaves before the next
+        fix (:meth:`_entered_after`, which asks the tree's live candidates when the
+        chain is that node alone: all of them must enter the same segment after it),
+        the vertex V where A ends lies within the smallest eps level (and ``eps``) of
+        the first fix, and the next fix comes ``SPARSE_S`` or more after the first (at
+        denser fixes the fixes that follow show a stand at V, :meth:`_start_stand`'s
+        case, or a vehicle moving through V, which came in by A). Then the first fix is
+        reported at V, at the start of the segment B the path enters there, and -1
+        leaves the commit as it was. The caller moves that answer only: the committed
+        path still begins with A, B (a commit of that node alone commits B too; the
+        next commit goes on from A through B where its chain does, as the tree built
+        it, and otherwise joins from V on B: once, with an outlier as the second fix,
+        the later commits left A another way; docs/measured.md "Session 18
+        (logstart)").
+
+        Why: nothing before the log's first fix shows how the vehicle came to V. A is
+        on the path only because that one fix lies a few metres short of V, well within
+        the GNSS error (a fix whose error leans back along A makes A's start the
+        cheaper root: the route from it is longer by those metres, as the chord of a
+        first step often is). B is driven after the first fix either way; A only if the
+        vehicle came in by it, and not if it stood at V when the log began (a tracker
+        switched on in a parked vehicle). V is in the free space of the first fix at
+        the smallest level (the radius check): that level's sweep could have started at
+        B's start as well; a wider level's eps (30 or 60 m) would move the answer by
+        more than the GNSS error explains. The answer at V on B is the one that holds
+        whichever way the vehicle came. The path keeps A:
+        it is the matcher's reading of how the vehicle came to V, which no fix shows
+        or refutes, and dropping it (as for a stretch that starts at the very end of a
+        segment, ``pos`` 1) loses route mismatch wherever logs begin mid-trip (routed
+        trips with a lead-in) for what it gains where they begin at a stand (the random
+        walk); docs/measured.md "Session 18 (logstart)". Mid-log the segment that came
+        in is shown by the fixes before; this rule never acts there.
+
+        Example (A runs (0, 0) -> (100, 0), B (100, 0) -> (200, 0); the first fix
+        lies 6 m short of V = (100, 0), the second well along B):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1),
+            ...                           Road([(100.0, 0.0), (200.0, 0.0)], way=2)])
+            >>> tracker = Tracker(net, "v1", MatchSettings(start_way_out=True))
+            >>> _ = tracker.update(Fix("v1", 0.0, 0.0, 0.0, 94.0, 1.0))
+            >>> a = Node(0, tracker.fix_seq0, 0.0, 0.94, 94.0, 0.0, None, (), 0.0, 0.94)
+            >>> b = Node(2, tracker.fix_seq0 + 1, 15.0, 0.6, 160.0, 0.0, a, (), 1.0, 0.6)
+            >>> tree = tracker.levels[0].tree
+            >>> tracker._start_way_out(tree, [a, b], 15.0)
+            2
+            >>> tracker._start_way_out(tree, [a, b], 5.0)   # V 6.1 m from the fix
+            -1
+        """
+        first = chain[0]
+        after = chain[1].t if len(chain) > 1 else self.fix_time(first.seq + 1)
+        if after is None or after - first.t < SPARSE_S:
+            return -1
+        view = self._view
+        r = first.seq - self.fix_seq0
+        if not 0 <= r < self.fix_n:
+            return -1
+        v = view.st[first.seg]
+        dx = view.vx[v] - self.fix_xy.item(r, 0)
+        dy = view.vy[v] - self.fix_xy.item(r, 1)
+        radius = min(eps, self.settings.eps_levels[0])
+        if dx * dx + dy * dy > radius * radius:
+            return -1
+        return self._entered_after(tree, chain)
 
     def _entered_after(self, tree: CandidateTree, chain: list[Node]) -> int:
         """The segment the path enters right after the first node of ``chain``, or -1.
