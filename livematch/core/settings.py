@@ -589,6 +589,21 @@ class MatchSettings:
             the junction where the vehicle stands, a road alongside), where the live
             answer, ranked by the live score, was on the road driven. Final answers of
             the flushed fixes and the end of the committed path only. Off by default.
+        stand_loops_sparse: ``stand_loops`` also for a loop whose fixes span less than
+            10 s, where fixes come more than 5 s apart (``livematch.core.tracker.
+            SPARSE_S``, the median gap from the node before the loop) and the whole loop
+            lies within eps of its vertex (every vertex of it does; a disc is convex), so
+            that no fix could show the detour. Why: at 15-30 s a van that stands in the
+            middle of a road and turns round shows one or two fixes at the turning point;
+            the sweep may turn round only at a junction or a dead end (and at a plain
+            point only in the step after a slow one, at a charge), so the path drives on
+            to the next such vertex and back, and the stand's fix lands on the road past
+            the turn, a road not driven. Newson & Krumm's transition (route length
+            against the distance between the fixes, a U-turn anywhere for free) turns at
+            the fix. What the rule gives up: a vehicle that drove into a branch shorter
+            than eps and back between two fixes is committed as turning at its mouth
+            (route mismatch only: every fix still lies within eps of its point).
+            Commits only (final answers and the path); off by default.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -645,6 +660,7 @@ class MatchSettings:
     smallest_commits: bool = True
     start_roots: bool = True
     flush_scored: bool = False
+    stand_loops_sparse: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -682,7 +698,7 @@ class MatchSettings:
                      "speed_laps", "end_stand", "start_stand",
                      "end_stand_sparse", "bridge_error_corr", "stand_way_out",
                      "stand_pace", "bridge_error_cross", "smallest_commits",
-                     "start_roots", "flush_scored"):
+                     "start_roots", "flush_scored", "stand_loops_sparse"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):
