@@ -591,9 +591,12 @@ class MatchSettings:
             the flushed fixes and the end of the committed path only. Off by default.
         stand_loops_sparse: ``stand_loops`` also for a loop whose fixes span less than
             10 s, where fixes come more than 5 s apart (``livematch.core.tracker.
-            SPARSE_S``, the median gap from the node before the loop) and the whole loop
+            SPARSE_S``, the median gap from the node before the loop), the whole loop
             lies within eps of its vertex (every vertex of it does; a disc is convex), so
-            that no fix could show the detour. Why: at 15-30 s a van that stands in the
+            that no fix could show the detour, and the step into the loop's first fix or
+            out of its last is slower than ``livematch.core.tracker.STOOD_MPS`` (a stand,
+            as sparse fixes show one; a vehicle that drove through at speed shows none).
+            Why: at 15-30 s a van that stands in the
             middle of a road and turns round shows one or two fixes at the turning point;
             the sweep may turn round only at a junction or a dead end (and at a plain
             point only in the step after a slow one, at a charge), so the path drives on

@@ -2719,10 +2719,17 @@ class Tracker:
         from the node before the loop on come more than ``SPARSE_S`` apart (median gap)
         and every vertex of the loop's segments ``loop`` lies within eps of the loop's
         vertex (``radius2`` = eps squared), so the whole loop lies in that disc (it is
-        convex) together with the loop's fixes (checked by the caller). A vehicle that
-        turned round at the vertex and one that drove the loop between two fixes leave
-        the same fixes; the loop exists because the sweep turns round only at junctions
-        and dead ends (docs/measured.md, "Session 18 (fleet30)").
+        convex) together with the loop's fixes (checked by the caller); and the vehicle
+        stood, as fixes this sparse show a stand: the step into the loop's first fix or
+        the step out of its last fix (``chain[last]``, the node after the loop) is
+        slower than ``STOOD_MPS`` in a straight line. A vehicle that turned round at the
+        vertex and one that drove the loop between two fixes leave the same fixes; the
+        loop exists because the sweep turns round only at junctions and dead ends. A
+        vehicle that drove through the loop at speed (a random walk turning at a
+        junction within eps) shows no slow step (docs/measured.md, "Session 18
+        (fleet30)").
+
+        ``chain[last]`` must exist (the caller's loop ends inside the chain).
 
         Example (fixes 1 s apart: dense, never such a loop):
             >>> from livematch.core.build import Road, network_from_roads
@@ -2733,9 +2740,21 @@ class Tracker:
             >>> tracker._unseen_loop([b], a, 0, 1, [0], 0.0, 0.0, 225.0)
             False
         """
-        run = [chain[first - 1] if first else before, *chain[first:last]]
+        prev = chain[first - 1] if first else before
+        run = [prev, *chain[first:last]]
         gaps = sorted(b.t - a.t for a, b in itertools.pairwise(run))
         if gaps[len(gaps) // 2] <= SPARSE_S:
+            return False
+        # a stand, as sparse fixes show one: the step into the loop's first fix or the
+        # step out of its last fix slower than STOOD_MPS (straight line over time)
+        slow = False
+        for a, b in ((prev, chain[first]), (chain[last - 1], chain[last])):
+            pa = self._logged_fix_of(a)
+            pb = self._logged_fix_of(b)
+            if pa is not None and pb is not None and b.t > a.t and math.hypot(
+                    pb[0] - pa[0], pb[1] - pa[1]) < STOOD_MPS * (b.t - a.t):
+                slow = True
+        if not slow:
             return False
         view = self._view
         st = view.st
