@@ -107,6 +107,16 @@ def test_a_turning_vertex_beyond_eps_is_kept() -> None:
     assert run(ON, DWELL, net=FAR) == run(OFF, DWELL, net=FAR)
 
 
+def test_a_turn_at_speed_keeps_the_loop() -> None:
+    """A vehicle that drives on to W, turns round there and comes back at speed (steps of
+    140-145 m in 30 s on both sides of the fix past V: no stand) keeps the loop to W."""
+    pts = [(1.0, 80.0), (-1.0, 220.0), (1.0, 360.0), (2.0, 505.0), (-1.0, 365.0),
+           (1.0, 225.0)]
+    events = run(ON, pts)
+    assert events == run(OFF, pts)
+    assert path(events) == [IN, ON_PAST_V, BACK_TO_V, OUT]
+
+
 def test_dense_fixes_are_left_alone() -> None:
     """At 5 s between fixes the rule never acts: the same stand, one fix every 5 s,
     gives the same events with and without it."""
