@@ -32,9 +32,9 @@ EPS = 15.0
 DT = 30.0
 ON = MatchSettings(stand_loops_sparse=True)
 OFF = MatchSettings(stand_loops_sparse=False)
-# a fix every 30 s; at the stand the first fix leans 5 m past V (a GNSS lean), the next
-# 3 m short of it (the van has turned); then back south at about 5 m/s
-DWELL = [(1.0, 80.0), (-1.0, 220.0), (1.0, 360.0), (2.0, 505.0), (-2.0, 497.0),
+# a fix every 30 s; at the stand the first fix leans 4 m past V (a GNSS lean; nearer V
+# than W), the next 3 m short of it (the van has turned); then back south at about 5 m/s
+DWELL = [(1.0, 80.0), (-1.0, 220.0), (1.0, 360.0), (2.0, 504.0), (-2.0, 497.0),
          (1.0, 340.0), (-1.0, 180.0)]
 
 
@@ -112,6 +112,15 @@ def test_a_turn_at_speed_keeps_the_loop() -> None:
     140-145 m in 30 s on both sides of the fix past V: no stand) keeps the loop to W."""
     pts = [(1.0, 80.0), (-1.0, 220.0), (1.0, 360.0), (2.0, 505.0), (-1.0, 365.0),
            (1.0, 225.0)]
+    events = run(ON, pts)
+    assert events == run(OFF, pts)
+    assert path(events) == [IN, ON_PAST_V, BACK_TO_V, OUT]
+
+
+def test_a_stand_nearer_the_junction_keeps_the_loop() -> None:
+    """A van whose stand fix lies 7 m past V, nearer W (10 m past V) than V, stood at W:
+    the loop to W and back is kept, as without the rule."""
+    pts = [*DWELL[:3], (2.0, 507.0), *DWELL[4:]]
     events = run(ON, pts)
     assert events == run(OFF, pts)
     assert path(events) == [IN, ON_PAST_V, BACK_TO_V, OUT]

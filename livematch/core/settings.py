@@ -595,7 +595,9 @@ class MatchSettings:
             lies within eps of its vertex (every vertex of it does; a disc is convex), so
             that no fix could show the detour, and the step into the loop's first fix or
             out of its last is slower than ``livematch.core.tracker.STOOD_MPS`` (a stand,
-            as sparse fixes show one; a vehicle that drove through at speed shows none).
+            as sparse fixes show one; a vehicle that drove through at speed shows none),
+            and every fix of the loop lies nearer its vertex than the vertex where the
+            loop turns round (a van that stood there did drive there).
             Why: at 15-30 s a van that stands in the
             middle of a road and turns round shows one or two fixes at the turning point;
             the sweep may turn round only at a junction or a dead end (and at a plain

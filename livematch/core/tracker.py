@@ -2726,8 +2726,10 @@ class Tracker:
         vertex and one that drove the loop between two fixes leave the same fixes; the
         loop exists because the sweep turns round only at junctions and dead ends. A
         vehicle that drove through the loop at speed (a random walk turning at a
-        junction within eps) shows no slow step (docs/measured.md, "Session 18
-        (fleet30)").
+        junction within eps) shows no slow step. And every fix of the loop lies nearer
+        the vertex than any vertex where the loop turns round: a van that stood at the
+        loop's far end (its stop a few metres past the vertex) did drive there
+        (docs/measured.md, "Session 18 (fleet30)").
 
         ``chain[last]`` must exist (the caller's loop ends inside the chain).
 
@@ -2764,6 +2766,18 @@ class Tracker:
             dy = view.vy[w] - vy
             if dx * dx + dy * dy > radius2:
                 return False
+        # where the loop turns round (W): each fix of the loop lies nearer the vertex than
+        # W, so the fixes put the vehicle at the vertex, not at the loop's far end
+        twin = view.twin
+        turns = [st[a] for a, b in itertools.pairwise(loop) if b == twin[a]]
+        for node in chain[first:last]:
+            f = self._logged_fix_of(node)
+            if f is None:
+                return False
+            near = (f[0] - vx) ** 2 + (f[1] - vy) ** 2
+            for w in turns:
+                if (f[0] - view.vx[w]) ** 2 + (f[1] - view.vy[w]) ** 2 <= near:
+                    return False
         return True
 
     def _turn_back_at_stand(self, chain: list[Node], before: Node, eps: float) -> list[Node]:
