@@ -15,9 +15,9 @@ from livematch.core.build import Road, network_from_roads
 from livematch.core.events import Assignment, Event
 from livematch.core.network import RoadNetwork
 from livematch.core.settings import MatchSettings
+from tests.catalogue import assert_answers_on_road, path_line, track_points
 from tests.catalogue import committed_path as path
 from tests.catalogue import final_answers as finals
-from tests.catalogue import track_points
 
 # A road north from S = (0, 0) through V = (0, 500), a plain point of the road (a vertex
 # of degree two: the sweep turns round there only in the street, at a charge), to W =
@@ -59,9 +59,9 @@ def run(settings: MatchSettings, pts: list[tuple[float, float]], dt: float = DT,
 
 def route_length(segs: list[int]) -> float:
     """The length of a committed route as shapely measures its polyline."""
-    coords = [tuple(NET.node_xy[NET.seg_from[segs[0]]])]
-    coords += [tuple(NET.node_xy[NET.seg_to[s]]) for s in segs]
-    return float(shapely.LineString(coords).length)
+    line = path_line(NET, segs)
+    assert isinstance(line, shapely.LineString)
+    return float(line.length)
 
 
 def test_without_the_rule_the_stand_is_committed_past_v() -> None:
@@ -81,13 +81,7 @@ def test_rule_turns_round_where_the_van_stood() -> None:
     assert path(events) == [IN, OUT]
     assert route_length(path(events)) == pytest.approx(1000.0)  # shapely
     assert [got[i * DT][0] for i in range(len(DWELL))] == [IN] * 4 + [OUT] * 3
-    road = shapely.LineString([S, V])
-    for i, (fx, fy) in enumerate(DWELL):
-        _, offset, x, y = got[i * DT]
-        point = shapely.Point(x, y)
-        assert road.distance(point) == pytest.approx(0.0, abs=1e-9)  # shapely
-        assert point.distance(shapely.Point(fx, fy)) <= EPS  # shapely
-        assert 0.0 <= offset <= road.length + 1e-9
+    assert_answers_on_road(got, DWELL, DT, [S, V], EPS)  # shapely
     # the stand's fix is reported at V, the end of the road in
     assert (got[3 * DT][2], got[3 * DT][3]) == pytest.approx(V)
 
