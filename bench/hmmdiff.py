@@ -4,7 +4,8 @@ On the drives, fixes, HMM calibration and scores of ``bench/accuracy.py`` (its o
 functions: ``simulate_drive``, ``observe``, ``replay_records``, ``calibrate``,
 ``run_inproc``, ``match_hmm``, ``motion_states``), every fix whose final answer is right
 (road+dir within 30 m along the true path) for one matcher and wrong for the other is
-put in one class, the first that applies in this order:
+put in one class, the first that applies in this order (each of livematch's misses also
+carries ``miss_class``, the cause of its episode by ``bench/fleetmiss.py``):
 
 - ``first/last``: the first or last fix of a drive (the random walk's cut path);
 - ``outlier``: the fix carries a simulated outlier jump;
@@ -56,6 +57,7 @@ sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "bench"))
 
 import accuracy as acc  # noqa: E402
+import fleetmiss  # noqa: E402
 
 from livematch.baselines import HmmSettings, match_hmm  # noqa: E402
 from livematch.core import tracker as trk  # noqa: E402
@@ -155,6 +157,9 @@ def run_cell(name: str, ei: int, args: argparse.Namespace, interval: int,
         return events
 
     trk.Tracker.update = upd  # type: ignore[method-assign]
+    fleetmiss.SETTLED.clear()
+    fleetmiss.MOVED.clear()
+    fleetmiss.TURNED.clear()
     t0 = time.perf_counter()
     lm = acc.run_inproc(network, records, xy, times, matcher)
     trk.Tracker.update = update  # type: ignore[method-assign]
@@ -183,6 +188,9 @@ def run_cell(name: str, ei: int, args: argparse.Namespace, interval: int,
         lmm = lm.matches[drive.vehicle]
         hm = hmm.matches[drive.vehicle] if hmm else None
         log = LOG.get(drive.vehicle, {})
+        # livematch's misses by bench/fleetmiss.py's episode causes
+        miss_class = {i: cause for cause, idx in fleetmiss.classify(network, drive, obs, lmm,
+                                                                      motion) for i in idx}
         for i, o in enumerate(obs):
             p = drive.truth[o.truth_index]
             f = lmm.final[i]
@@ -207,6 +215,7 @@ def run_cell(name: str, ei: int, args: argparse.Namespace, interval: int,
                 "turn": truth_turns(network, drive, lo, hi, turn_ok, view.out),
                 "step": rec.get("step", ""), "next_step": nxt.get("step", ""),
                 "commit": rec.get("commit", ""), "filtered": rec.get("filtered", ""),
+                "miss_class": miss_class.get(i, ""),
             })
     return {"extract": name, "interval": interval, "lm": lm_score, "lm_s": lm_s,
             "hmm_s": hmm_s, "fixes": fixes,
@@ -246,6 +255,8 @@ def summary(cell: dict[str, Any]) -> dict[str, Any]:
             "hmm_final": round(cell["hmm_final"], 4) if cell["hmm_final"] else None,
             "fixes": len(fx), "hmm_right_lm_wrong": dict(hmm_only.most_common()),
             "lm_right_hmm_wrong": dict(lm_only.most_common()),
+            "hmm_right_lm_wrong_by_miss_class": dict(Counter(
+                f["miss_class"] for f in fx if f["hmm_ok"] and not f["lm_ok"]).most_common()),
             "commits": dict(commits), "lm_s": round(cell["lm_s"], 1),
             "hmm_s": round(cell["hmm_s"], 1)}
 
@@ -262,6 +273,7 @@ def main(argv: list[str] | None = None) -> int:
     args = ap.parse_args(argv)
     matcher = acc.matcher_settings(args.matcher)
     _instrument()
+    fleetmiss._instrument()
     cells = []
     for ei, name in enumerate(args.extract.split(",")):
         for k in (int(v) for v in args.intervals.split(",")):

@@ -114,6 +114,22 @@ def final_answers(events: list[Event]) -> dict[float, tuple[int, float, float, f
     return out
 
 
+def assert_answers_on_road(answers: dict[float, tuple[int, float, float, float]],
+                           pts: list[tuple[float, float]], dt: float,
+                           road: list[tuple[float, float]], eps: float) -> None:
+    """Each fix ``pts[i]`` (at ``i * dt`` s) has its final answer on the line ``road``
+    (shapely distance 0), within ``eps`` of the fix (shapely), at an offset inside it."""
+    import shapely  # only the tests that compare geometry need it
+
+    line = shapely.LineString(road)
+    for i, (fx, fy) in enumerate(pts):
+        _, offset, x, y = answers[i * dt]
+        point = shapely.Point(x, y)
+        assert line.distance(point) <= 1e-9  # shapely
+        assert point.distance(shapely.Point(fx, fy)) <= eps  # shapely
+        assert 0.0 <= offset <= line.length + 1e-9
+
+
 def committed_path(events: list[Event]) -> list[int]:
     """The committed path's segments, all commits in order."""
     return [s for e in events if isinstance(e, Commit) for s in e.path]

@@ -14,9 +14,9 @@ from livematch.core.build import Road, network_from_roads
 from livematch.core.events import Event
 from livematch.core.settings import MatchSettings
 from livematch.core.tracker import stand_step
+from tests.catalogue import assert_answers_on_road, track_points
 from tests.catalogue import committed_path as path
 from tests.catalogue import final_answers as finals
-from tests.catalogue import track_points
 
 # A road north from S = (0, 0) through V = (0, 500), a plain point of the road (a vertex
 # of degree two: no U-turn there but in the street), to W = (0, 530), a junction with a
@@ -79,13 +79,7 @@ def test_rule_turns_round_where_the_van_stood() -> None:
     assert path(events) == [IN, OUT]
     assert route_length(path(events)) == pytest.approx(1000.0)  # shapely
     assert [got[i * DT][0] for i in range(len(DWELL))] == [IN] * 4 + [OUT] * 3
-    road = shapely.LineString([S, V])
-    for i, (fx, fy) in enumerate(DWELL):
-        _, offset, x, y = got[i * DT]
-        point = shapely.Point(x, y)
-        assert road.distance(point) == pytest.approx(0.0, abs=1e-9)  # shapely
-        assert point.distance(shapely.Point(fx, fy)) <= EPS  # shapely
-        assert 0.0 <= offset <= road.length + 1e-9
+    assert_answers_on_road(got, DWELL, DT, [S, V], EPS)  # shapely
 
 
 def test_a_loop_between_fixes_far_apart_is_kept() -> None:

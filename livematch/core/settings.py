@@ -646,6 +646,26 @@ class MatchSettings:
             it off by the rule for defaults; the error median rises in 11 of the 12
             routed-trips cells, by up to 0.054 m (docs/measured.md "Session 18
             (logstart)").
+        stand_loops_sparse: ``stand_loops`` also for a loop whose fixes span less than
+            10 s, where fixes come more than 5 s apart (``livematch.core.tracker.
+            SPARSE_S``, the median gap from the node before the loop), the whole loop
+            lies within eps of its vertex (every vertex of it does; a disc is convex), so
+            that no fix could show the detour, and the step into the loop's first fix or
+            out of its last is slower than ``livematch.core.tracker.STOOD_MPS`` (a stand,
+            as sparse fixes show one; a vehicle that drove through at speed shows none),
+            and every fix of the loop lies nearer its vertex than the vertex where the
+            loop turns round (a van that stood there did drive there).
+            Why: at 15-30 s a van that stands in the
+            middle of a road and turns round shows one or two fixes at the turning point;
+            the sweep may turn round only at a junction or a dead end (and at a plain
+            point only in the step after a slow one, at a charge), so the path drives on
+            to the next such vertex and back, and the stand's fix lands on the road past
+            the turn, a road not driven. Newson & Krumm's transition (route length
+            against the distance between the fixes, a U-turn anywhere for free) turns at
+            the fix. What the rule gives up: a vehicle that drove into a branch shorter
+            than eps and back between two fixes is committed as turning at its mouth
+            (route mismatch only: every fix still lies within eps of its point).
+            Commits only (final answers and the path); off by default.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -705,6 +725,7 @@ class MatchSettings:
     end_stand_centre: bool = True
     heading_cost: float = 0.0
     start_way_out: bool = False
+    stand_loops_sparse: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -743,7 +764,7 @@ class MatchSettings:
                      "end_stand_sparse", "bridge_error_corr", "stand_way_out",
                      "stand_pace", "bridge_error_cross", "smallest_commits",
                      "start_roots", "flush_scored", "end_stand_centre",
-                     "start_way_out"):
+                     "start_way_out", "stand_loops_sparse"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

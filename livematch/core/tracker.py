@@ -2714,16 +2714,22 @@ class Tracker:
         removed = [False] * len(segs)
         moved: dict[int, int] = {}  # node -> the vertex it is now committed at
 
+        sparse = self.settings.stand_loops_sparse
+
         def stood_in(i: int, j: int) -> bool:
             """Whether segs[i:j] (entered from one vertex, back to it) is a stand loop."""
             first, last = owner[i], owner[j]  # nodes first .. last - 1 lie inside
-            if last <= first or chain[last - 1].t - chain[first].t < STAND_S:
+            if last <= first:
                 return False
             if not any(segs[m + 1] == twin[segs[m]] for m in range(i, j - 1)):
                 return False
             vertex = sf[segs[i]]
             vx = view.vx[vertex]
             vy = view.vy[vertex]
+            if chain[last - 1].t - chain[first].t < STAND_S and not (
+                    sparse and self._unseen_loop(chain, before, first, last, segs[i:j],
+                                                 vx, vy, radius2)):
+                return False
             for k in range(first, last):
                 r = chain[k].seq - seq0
                 if not 0 <= r < self.fix_n:
@@ -2785,6 +2791,76 @@ class Tracker:
             parent = node
             prev_at = here
         return out
+
+    def _unseen_loop(self, chain: list[Node], before: Node, first: int, last: int,
+                     loop: list[int], vx: float, vy: float, radius2: float) -> bool:
+        """Whether a loop out of a vertex at (vx, vy) is one that sparse fixes cannot show.
+
+        For ``MatchSettings.stand_loops_sparse`` (asked by :meth:`_close_stand_loops` for
+        a loop whose fixes, ``chain[first:last]``, span less than ``STAND_S``): the fixes
+        from the node before the loop on come more than ``SPARSE_S`` apart (median gap)
+        and every vertex of the loop's segments ``loop`` lies within eps of the loop's
+        vertex (``radius2`` = eps squared), so the whole loop lies in that disc (it is
+        convex) together with the loop's fixes (checked by the caller); and the vehicle
+        stood, as fixes this sparse show a stand: the step into the loop's first fix or
+        the step out of its last fix (``chain[last]``, the node after the loop) is
+        slower than ``STOOD_MPS`` in a straight line. A vehicle that turned round at the
+        vertex and one that drove the loop between two fixes leave the same fixes; the
+        loop exists because the sweep turns round only at junctions and dead ends. A
+        vehicle that drove through the loop at speed (a random walk turning at a
+        junction within eps) shows no slow step. And every fix of the loop lies nearer
+        the vertex than any vertex where the loop turns round: a van that stood at the
+        loop's far end (its stop a few metres past the vertex) did drive there
+        (docs/measured.md, "Session 18 (fleet30)").
+
+        ``chain[last]`` must exist (the caller's loop ends inside the chain).
+
+        Example (fixes 1 s apart: dense, never such a loop):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "v1")
+            >>> a = Node(0, 1, 0.0, 0.1, 10.0, 0.0, None, (), 0.0, 0.0)
+            >>> b = Node(0, 2, 1.0, 0.2, 20.0, 0.0, a, (), 0.0, 0.0)
+            >>> tracker._unseen_loop([b], a, 0, 1, [0], 0.0, 0.0, 225.0)
+            False
+        """
+        prev = chain[first - 1] if first else before
+        run = [prev, *chain[first:last]]
+        gaps = sorted(b.t - a.t for a, b in itertools.pairwise(run))
+        if gaps[len(gaps) // 2] <= SPARSE_S:
+            return False
+        # a stand, as sparse fixes show one: the step into the loop's first fix or the
+        # step out of its last fix slower than STOOD_MPS (straight line over time)
+        slow = False
+        for a, b in ((prev, chain[first]), (chain[last - 1], chain[last])):
+            pa = self._logged_fix_of(a)
+            pb = self._logged_fix_of(b)
+            if pa is not None and pb is not None and b.t > a.t and math.hypot(
+                    pb[0] - pa[0], pb[1] - pa[1]) < STOOD_MPS * (b.t - a.t):
+                slow = True
+        if not slow:
+            return False
+        view = self._view
+        st = view.st
+        for seg in loop:
+            w = st[seg]
+            dx = view.vx[w] - vx
+            dy = view.vy[w] - vy
+            if dx * dx + dy * dy > radius2:
+                return False
+        # where the loop turns round (W): each fix of the loop lies nearer the vertex than
+        # W, so the fixes put the vehicle at the vertex, not at the loop's far end
+        twin = view.twin
+        turns = [st[a] for a, b in itertools.pairwise(loop) if b == twin[a]]
+        for node in chain[first:last]:
+            f = self._logged_fix_of(node)
+            if f is None:
+                return False
+            near = (f[0] - vx) ** 2 + (f[1] - vy) ** 2
+            for w in turns:
+                if (f[0] - view.vx[w]) ** 2 + (f[1] - view.vy[w]) ** 2 <= near:
+                    return False
+        return True
 
     def _turn_back_at_stand(self, chain: list[Node], before: Node, eps: float) -> list[Node]:
         """``chain`` with a loop round a stand read as a turn back at the stand's vertex.
