@@ -16,7 +16,9 @@ import signal
 import time
 from collections import deque
 from pathlib import Path
+from typing import Any
 
+import aiomqtt
 import pytest
 import redis.asyncio as aioredis
 from services import Collector, Mosquitto, RedisServer, drive, publisher, write_config
@@ -28,6 +30,7 @@ from test_service_shards_topic import (
     topic_group,
 )
 
+import livematch.service.daemon as daemon_module
 from livematch.config import BadConfigError, load_config
 from livematch.service.daemon import Kept, merge_moved
 from livematch.service.shards import assign_shards, shard_of
@@ -139,24 +142,34 @@ async def test_standby_link_keeps_fixes_and_takeover_while_fixes_arrive(
     (QoS 0), its own shards on the main one only. The fixes of a standby shard are kept
     exactly as published, in order, and not matched. Then, while fixes keep arriving
     every 20 ms, the member leaves without a checkpoint: the worker moves the shard back
-    to its main connection (both connections receive it for a moment), takes it and
-    replays: every fix published is answered once, the certificate window growing
-    1, 2, 3, ... (a fix replayed out of publish order would be refused as out of
-    order and go unanswered)."""
+    to its main connection (both connections receive its fixes for 0.4 s, the standby
+    one read late), merges the two, takes the shard and replays: every fix published
+    is answered once, the certificate window growing 1, 2, 3, ... (a fix replayed out
+    of publish order would be refused as out of order and go unanswered)."""
     config = write_config(tmp_path, prefix, broker=mosquitto.url, store=redis_server.url,
                           metrics="", topic="fleet/{shard}/+/position",
                           extra='[group]\nname = "g"\nshards = 8\nlease_s = 1.0\n'
                                 'standby_connection = true\n')
     a = group_daemon(config, "a")
-    merges: list[tuple[int, bool]] = []
+    merges: list[tuple[int, bool, int]] = []
     real_merge = merge_moved
 
     def spy_merge(kept: deque[Kept], start: int, via: set[int], to_main: bool) -> deque[Kept]:
-        if kept and kept[-1][0] > start:
-            merges.append((len(via), to_main))
-        return real_merge(kept, start, via, to_main)
+        merged = real_merge(kept, start, via, to_main)
+        merges.append((len(via), to_main, len(kept) - len(merged)))
+        return merged
 
     monkeypatch.setattr("livematch.service.daemon.merge_moved", spy_merge)
+    real_until = daemon_module.until_answered
+
+    async def slow_unsubscribe(client: aiomqtt.Client, request: Any) -> Any:
+        # the standby connection is left 0.4 s after the main one's SUBACK: about 20
+        # fixes of the shard reach both connections meanwhile
+        if client is a._standby_client and a._moving.get(shard, (0, False))[1]:
+            await asyncio.sleep(0.4)  # the shard moves to the main connection: leaving
+        return await real_until(client, request)
+
+    monkeypatch.setattr(daemon_module, "until_answered", slow_unsubscribe)
     split = assign_shards(8, ["a", "b"])
     theirs, ours = split.held_by("b"), split.held_by("a")
     shard = min(theirs)
@@ -210,7 +223,8 @@ async def test_standby_link_keeps_fixes_and_takeover_while_fixes_arrive(
         a.request_stop()
         await asyncio.wait_for(task, 20)
         await client.aclose()
-    assert any(to_main for _, to_main in merges)  # the shard came back through a merge
+    # the shard came back through a merge of both connections' fixes, each kept once
+    assert any(via and to_main and twice for via, to_main, twice in merges), merges
     for v in (vehicle, own):
         records = col.records(f"/out/match/{v}")
         assert sorted(r["time"] for r in records) == [t for t, _ in feeds[v]], v
