@@ -1244,7 +1244,8 @@ class Daemon:
         try:
             yield
         finally:
-            loop.remove_reader(fd)
+            if paho.socket() is sock:  # else closed, its reader removed (the number reused)
+                loop.remove_reader(fd)
 
     async def _announce(self, shards: set[int]) -> None:
         """Record in Redis that this worker receives the topics of ``shards``."""
