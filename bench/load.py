@@ -27,7 +27,10 @@ on this machine and loopback only:
   holds, about half the feed) or ``livematch-2sm`` (a mixed pair: w0 as in
   ``livematch-2s``, w1 as in ``livematch-2s0``; next to ``livematch-2s0`` in the same
   round, w0's CPU over w1's in the two steps gives what standing by costs a worker,
-  with the machine's drift between steps cancelled within each step) or ``livematch-2sk`` /
+  with the machine's drift between steps cancelled within each step) or
+  ``livematch-2sc`` / ``livematch-2smc`` (``livematch-2s`` / ``livematch-2sm`` with
+  ``group.standby_connection = true``: the standby shards on a second MQTT connection of
+  their own, read when the worker is awake anyway) or ``livematch-2sk`` /
   ``livematch-2sk1`` (the same two, but the generators send only vehicles of the shards
   that worker w1 holds, the first ``rate`` vehicle ids whose shard it holds: w0 only
   keeps every fix, so its CPU per fix is what a kept fix costs, through the broker,
@@ -728,11 +731,13 @@ def probe(argv: list[str], out_path: str, nodelay: bool, freeze: bool, inflight:
 # --------------------------------------------------------------------------- one step
 def daemon_config(folder: Path, port: int, store: str, worker: str, group: str,
                   topic: str = IN_TOPIC, metrics_port: int = 0,
-                  standby_qos: int | None = None, standby: bool = True) -> Path:
+                  standby_qos: int | None = None, standby: bool = True,
+                  standby_connection: bool = False) -> Path:
     """A daemon configuration; ``metrics_port`` > 0 opens its /metrics on that port.
 
     ``standby_qos`` sets ``group.standby_qos`` (None: livematch's default);
-    ``standby`` False writes ``group.standby = false``.
+    ``standby`` False writes ``group.standby = false``; ``standby_connection`` True
+    writes ``group.standby_connection = true``.
     """
     cfg = folder / f"{worker}.toml"
     listen = f"127.0.0.1:{metrics_port}" if metrics_port else ""
@@ -741,6 +746,8 @@ def daemon_config(folder: Path, port: int, store: str, worker: str, group: str,
         group_lines += f"standby_qos = {standby_qos}\n"
     if group and not standby:
         group_lines += "standby = false\n"
+    if group and standby and standby_connection:
+        group_lines += "standby_connection = true\n"
     cfg.write_text(f"""
 [inputs]
 network = "{NETWORK}"
@@ -880,7 +887,9 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                 cfg = daemon_config(folder, port, store, f"w{w}", group,
                                     SHARD_TOPIC if shards else IN_TOPIC, metrics_ports[-1],
                                     standby_qos, system != "livematch-2s0"
-                                    and not (system == "livematch-2sm" and w == 1))
+                                    and not (system in ("livematch-2sm", "livematch-2smc")
+                                             and w == 1),
+                                    system in ("livematch-2sc", "livematch-2smc"))
                 cmd = [sys.executable, "-m", "livematch.cli"]
                 if CPROFILE_TO is not None:  # --cprofile: each worker's profile at its exit
                     cmd = [sys.executable, "-m", "cProfile", "-o",
@@ -1277,7 +1286,7 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
                 f"{statistics.median(m for _, m in each):.3f}.")
     out += _standby_cost_lines(r)
     pairs = [s for s in r["systems"] if s in ("livematch-2", "livematch-2s", "livematch-2s1",
-                                                  "livematch-2s0")]
+                                                  "livematch-2s0", "livematch-2sc")]
     if "livematch-1" not in r["systems"] or not pairs:
         return out
     for s in pairs:
@@ -1319,32 +1328,37 @@ def _standby_cost_lines(r: dict[str, Any]) -> list[str]:
     the machine's drift between steps cancels (both workers share it), unlike
     ``livematch-2s`` against ``livematch-2s0``, whose steps run a minute apart. The added
     CPU per fix of the whole feed is w0 - w1 x (w0 / w1 without standbys), from the
-    ``livematch-2sm`` step. Empty without both systems.
+    ``livematch-2sm`` step. The same for ``livematch-2smc`` (w0 stands by on a second
+    connection, ``group.standby_connection``). Empty without ``livematch-2s0``.
     """
-    if not {"livematch-2sm", "livematch-2s0"} <= set(r["systems"]):
-        return []
-    each = []
-    for k in range(1, r["repeat"] + 1):
-        got = {}
-        for row in r["steps"]:
-            w = row.get("worker_ms_per_fix") or []
-            if row["repeat"] == k and row["system"] in ("livematch-2sm", "livematch-2s0") \
-                    and len(w) == 2 and min(w) > 0:
-                got[row["system"]] = w
-        if len(got) == 2:
-            (m0, m1), (z0, z1) = got["livematch-2sm"], got["livematch-2s0"]
-            base = z0 / z1
-            each.append(((m0 / m1) / base - 1, m0 - m1 * base))
-    if not each:
-        return []
-    return [
-        "livematch-2sm against livematch-2s0 (w0 stands by for w1's shards in the first, "
-        "neither in the second): what standing by adds to w0's CPU, "
-        "(w0 / w1 with) / (w0 / w1 without) - 1, per round: "
-        + ", ".join(f"{x:+.1%}" for x, _ in each)
-        + f" (median {statistics.median(x for x, _ in each):+.1%}); in CPU ms per fix of "
-        "the whole feed: " + ", ".join(f"{d:+.3f}" for _, d in each)
-        + f" (median {statistics.median(d for _, d in each):+.3f})."]
+    out: list[str] = []
+    for mixed in ("livematch-2sm", "livematch-2smc"):
+        if not {mixed, "livematch-2s0"} <= set(r["systems"]):
+            continue
+        each = []
+        for k in range(1, r["repeat"] + 1):
+            got = {}
+            for row in r["steps"]:
+                w = row.get("worker_ms_per_fix") or []
+                if row["repeat"] == k and row["system"] in (mixed, "livematch-2s0") \
+                        and len(w) == 2 and min(w) > 0:
+                    got[row["system"]] = w
+            if len(got) == 2:
+                (m0, m1), (z0, z1) = got[mixed], got["livematch-2s0"]
+                base = z0 / z1
+                each.append(((m0 / m1) / base - 1, m0 - m1 * base))
+        if not each:
+            continue
+        how = " on a second connection" if mixed.endswith("c") else ""
+        out.append(
+            f"{mixed} against livematch-2s0 (w0 stands by for w1's shards{how} in the "
+            "first, neither in the second): what standing by adds to w0's CPU, "
+            "(w0 / w1 with) / (w0 / w1 without) - 1, per round: "
+            + ", ".join(f"{x:+.1%}" for x, _ in each)
+            + f" (median {statistics.median(x for x, _ in each):+.1%}); in CPU ms per fix "
+            "of the whole feed: " + ", ".join(f"{d:+.3f}" for _, d in each)
+            + f" (median {statistics.median(d for _, d in each):+.3f}).")
+    return out
 
 
 # ---------------------------------------------------------------- the profile mode

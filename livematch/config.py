@@ -270,7 +270,11 @@ class GroupConfig:
     state, the later ones are never matched or answered. The next fixes of those
     vehicles are matched from the restored state, bridging the gap or restarting the
     match as for any gap in a feed. Hand-overs between live workers lose nothing either
-    way (``docs/scale.md``).
+    way (``docs/scale.md``). ``standby_connection = true`` (default false; needs a
+    ``{shard}`` topic, standbys and ``standby_qos = 0``) receives the standby shards on
+    a second MQTT connection of their own, read when the worker is awake for its own
+    shards anyway, so their packets neither wake it nor split the batches of the feed
+    it matches; a takeover merges the two connections' fixes in publish order.
     """
 
     name: str = ""
@@ -281,6 +285,7 @@ class GroupConfig:
     buffer_max: int = 20_000
     standby_qos: int = 0
     standby: bool = True
+    standby_connection: bool = False
 
     def problems(self) -> list[tuple[str, str]]:
         """Every invalid value as (key, expectation with the value found)."""
@@ -680,6 +685,11 @@ def _group_problems(group: GroupConfig, store: StoreConfig, mqtt: MqttConfig,
         origin = entries.get("standby", (None, "<defaults>"))[1]
         out.append(f"{origin}: group.standby = false needs a {{shard}} level in mqtt.topic "
                    f"(fleet/{{shard}}/+/position), got {mqtt.topic!r}")
+    if group.standby_connection and not (group.standby and group.standby_qos == 0
+                                         and "{shard}" in mqtt.topic):
+        origin = entries.get("standby_connection", (None, "<defaults>"))[1]
+        out.append(f"{origin}: group.standby_connection = true needs a {{shard}} level in "
+                   f"mqtt.topic, group.standby = true and group.standby_qos = 0")
     if not group.name:
         return out
     origin = entries.get("name", (None, "<defaults>"))[1]

@@ -159,6 +159,88 @@ _TOPIC_KEYS_MAX = 100_000
 # section 3.3.1): what _take_raw takes (a QoS 1 one also with DUP).
 _PUBLISH_QOS0 = 0x30
 _PUBLISH_QOS1 = 0x32
+# The standby connection (group.standby_connection) is read when the receive loop runs
+# anyway and at least this long after its last read (seconds), else by a timer this
+# long after it (a worker with nothing of its own to match).
+_STANDBY_EVERY_S = 0.05
+_STANDBY_LATE_S = 0.25
+# Most packets read from the standby connection per read (they are kept, not matched).
+_STANDBY_PACKETS = 20_000
+
+#: An entry of a shard's buffer of kept fixes: (sequence number, receive time, topic,
+#: payload).
+Kept = tuple[int, float, str, bytes]
+
+
+def merge_moved(kept: deque[Kept], start: int, via_standby: set[int],
+                to_main: bool) -> deque[Kept]:
+    """A shard's kept fixes after its subscription moved between the two connections.
+
+    With ``group.standby_connection`` a worker receives the shards it stands by for on
+    a connection of their own (QoS 0) and those it holds on the main one (``mqtt.qos``).
+    A shard moves by subscribing on the new connection, then, after the SUBACK,
+    unsubscribing on the old one: every fix published meanwhile reaches both, and
+    the two copies arrive in no particular order with respect to each other. The
+    entries after sequence number ``start`` (the move's start) are those of either
+    connection, ``via_standby`` the sequence numbers of the standby connection's.
+
+    Each connection delivers one topic's messages in the order they were published
+    (MQTT 5.0 section 4.6, Ordered Topic: per topic and QoS, per subscription), and a
+    vehicle's fixes come from one sender on one topic. So per topic each connection's
+    entries are a run of the published sequence; the two runs overlap where both were
+    subscribed. The main connection's run is complete from its first entry (QoS 1, a
+    persistent session; a fix shed under overload is kept on arrival), the standby
+    connection's may miss messages (QoS 0: the broker may drop them for a slow
+    subscriber). So per topic: moving to the main connection, the standby's run up to
+    its first entry that the main run also has, then the whole main run; moving to the
+    standby connection, the whole main run, then the standby's run after its last entry
+    that the main run also has. An entry is the same message when topic and payload
+    are the same bytes (a sender that publishes the very same bytes twice on one topic
+    within a move's round trip sends a duplicate fix: the pipeline drops it by
+    (vehicle, time) anyway). Entries before ``start`` stay as they are; the merged
+    entries take the sequence numbers of the entries they replace, smallest first (so
+    the buffer stays in increasing order; the order across topics is one connection's,
+    then the other's).
+
+    Example (topic "a" moving to the main connection, whose run starts at "3"; the
+    standby connection's run missed "3")::
+
+        >>> kept = deque([(1, 0.0, "a", b"1"), (2, 0.1, "a", b"2"), (3, 0.2, "a", b"4"),
+        ...               (4, 0.2, "a", b"3"), (5, 0.3, "a", b"4")])
+        >>> [(e[0], e[3]) for e in merge_moved(kept, 1, {2, 3}, to_main=True)]
+        [(1, b'1'), (2, b'2'), (3, b'3'), (4, b'4')]
+    """
+    head = [e for e in kept if e[0] <= start]
+    tail = [e for e in kept if e[0] > start]
+    if not tail:
+        return kept
+    side = [e for e in tail if e[0] in via_standby]
+    main = [e for e in tail if e[0] not in via_standby]
+    if not side or not main:
+        return kept  # one connection's run only: nothing overlaps
+    shared: dict[str, set[bytes]] = {}
+    for e in main:
+        shared.setdefault(e[2], set()).add(e[3])
+    if to_main:
+        cut: set[str] = set()
+        before: list[Kept] = []
+        for e in side:
+            if e[2] in cut:
+                continue
+            if e[3] in shared.get(e[2], ()):
+                cut.add(e[2])
+                continue
+            before.append(e)
+        merged = before + main
+    else:
+        last: dict[str, int] = {}
+        for k, e in enumerate(side):
+            if e[3] in shared.get(e[2], ()):
+                last[e[2]] = k
+        merged = main + [e for k, e in enumerate(side) if k > last.get(e[2], -1)]
+    seqs = sorted(e[0] for e in tail)
+    return deque(head + [(seq, e[1], e[2], e[3])
+                         for seq, e in zip(seqs[:len(merged)], merged, strict=True)])
 
 
 class OutputLike(Protocol):
@@ -375,7 +457,7 @@ class Daemon:
         self._active: set[int] = set()  # shards whose vehicles this worker matches
         self._taking: set[int] = set()  # shards whose kept fixes are being replayed
         # (sequence number, receive time, topic, payload) of every possible fix, by shard
-        self._buffers: dict[int, deque[tuple[int, float, str, bytes]]] = {}
+        self._buffers: dict[int, deque[Kept]] = {}
         self._kept_seq = 0
         # shard -> the last sequence number its last replay covered (see _process)
         self._replayed_upto: dict[int, int] = {}
@@ -392,6 +474,18 @@ class Daemon:
         self._announced: set[int] | None = None  # shard topics recorded as received
         self._assignment: Assignment | None = None  # the last one computed (cached)
         self._subs_lock = asyncio.Lock()
+        # group.standby_connection: the standby shards on a second connection of their
+        # own (_standby_loop), read when the worker is awake anyway (_read_standby)
+        self._standby_link = bool(group.name and group.standby_connection
+                                  and self._sharded_topic)
+        self._standby_client: aiomqtt.Client | None = None  # that connection, when up
+        self._standby_intake: IntakeQueue | None = None  # its queue (stays empty)
+        self._standby_subs: set[int] = set()  # shard topics subscribed on it (QoS 0)
+        self._standby_read_at = 0.0  # monotonic time its next read is due
+        # shard -> (kept sequence number at the move's start, moving to the main
+        # connection) while it is subscribed on both (merge_moved)
+        self._moving: dict[int, tuple[int, bool]] = {}
+        self._via_standby: dict[int, set[int]] = {}  # kept from the standby one meanwhile
         self._enqueued = 0  # outputs ever queued
         self._acked = 0  # outputs ever acknowledged by the broker (queue order)
         self._shard_cache: dict[str, int] = {}
@@ -491,6 +585,8 @@ class Daemon:
                     if self.leases is not None:
                         tg.create_task(self._lease_loop(), name="leases")
                         tg.create_task(self._shard_loop(), name="shards")
+                    if self._standby_link:
+                        tg.create_task(self._standby_loop(), name="mqtt-standby")
             finally:
                 await self._final_checkpoint()
                 with contextlib.suppress(Exception):
@@ -943,6 +1039,17 @@ class Daemon:
         want.update(dict.fromkeys(mine | set(self.leases.held), qos))
         return want
 
+    def _apart(self, mine: set[int], standby: set[int]) -> set[int]:
+        """The shard topics received on the standby connection (``standby_connection``).
+
+        Those only stood by for; the shards held or to be held are always on the main
+        connection. Empty without the setting.
+        """
+        if not self._standby_link:
+            return set()
+        assert self.leases is not None
+        return set(standby) - mine - set(self.leases.held)
+
     async def _claim_round(self, members: list[str]) -> None:
         """A rebalancing round when the topic carries the shard (``{shard}``).
 
@@ -966,7 +1073,7 @@ class Daemon:
         assignment = await self._assign(members)
         mine = assignment.held_by(self.worker)
         standby = assignment.standing_by(self.worker)
-        await self._sync_subscriptions(self._wanted(mine, standby))
+        await self._sync_subscriptions(self._wanted(mine, standby), self._apart(mine, standby))
         away = sorted(s for s in leases.held if s not in mine)
         if away:
             receiving = await leases.receiving({assignment.holder[s] for s in away})
@@ -975,12 +1082,12 @@ class Daemon:
         for shard in sorted(mine - set(leases.held)):
             if self._stopping.is_set():
                 break
-            if shard not in self._subs:
-                continue  # its fixes would not reach this worker yet
+            if shard not in self._subs or shard in self._moving:
+                continue  # its fixes would not reach this worker yet (or not in order)
             fence = await leases.acquire(shard)
             if fence is not None:
                 await self._take(shard, fence)
-        await self._sync_subscriptions(self._wanted(mine, standby))
+        await self._sync_subscriptions(self._wanted(mine, standby), self._apart(mine, standby))
 
     async def _subscribe_before_joining(self) -> None:
         """With a ``{shard}`` topic, subscribe (and record it) before announcing this worker.
@@ -994,9 +1101,10 @@ class Daemon:
             try:
                 members = await leases.heartbeat(leave=True)  # read, not yet announced
                 assignment = await self._assign(members)
-                if await self._sync_subscriptions(self._wanted(
-                        assignment.held_by(self.worker),
-                        assignment.standing_by(self.worker))):
+                mine = assignment.held_by(self.worker)
+                standby = assignment.standing_by(self.worker)
+                if await self._sync_subscriptions(self._wanted(mine, standby),
+                                                  self._apart(mine, standby)):
                     return
             except StoreError as exc:
                 self.metrics.lease_failures.inc()
@@ -1021,7 +1129,8 @@ class Daemon:
             return [(topic.replace(SHARD_LEVEL, "+"), self._mqtt.qos)]
         return [(self._shard_filter(s), shards[s]) for s in sorted(shards)]
 
-    async def _sync_subscriptions(self, want: Mapping[int, int]) -> bool:
+    async def _sync_subscriptions(self, want: Mapping[int, int],
+                                  apart: set[int] | None = None) -> bool:
         """Receive exactly the shard topics in ``want`` (shard -> QoS), and record them.
 
         The record in Redis (:meth:`LeaseManager.announce_receiving`) names a shard only
@@ -1031,32 +1140,112 @@ class Daemon:
         lost by the replacement). False when not connected (the next connection subscribes to
         them) or when the broker refused; raises :class:`StoreError` when the record
         cannot be written.
+
+        ``apart`` (``group.standby_connection``): the shards of ``want`` received on the
+        standby connection (QoS 0) while it is up; on the main connection at their QoS
+        in ``want`` while it is not. A shard that changes connection is subscribed on
+        the new one first and unsubscribed from the old one after the SUBACK, so no
+        fix is missed; the fixes both received meanwhile are merged once the old one's
+        UNSUBACK is in (:func:`merge_moved`; the standby connection is read as it
+        comes meanwhile, so every fix it sent before the UNSUBACK is kept by then).
         """
-        self._want_subs = dict(want)
         async with self._subs_lock:
+            side = self._standby_client if apart else None
+            main = {s: q for s, q in want.items() if side is None or s not in (apart or ())}
+            side_want = set(want) - set(main)
+            self._want_subs = main
             client = self._client
             if client is None or not self.broker_connected:
                 return False
             try:
-                staying = {s for s in self._subs if s in want}
+                received = set(self._subs) | self._standby_subs
+                staying = {s for s in received if s in want}
                 if self._announced is not None and not self._announced <= staying:
                     await self._announce(staying)
-                for shard in sorted(want):
-                    if self._subs.get(shard) != want[shard]:
+                for shard in sorted(main):  # the new places first
+                    if self._subs.get(shard) != main[shard]:
+                        if shard in self._standby_subs:
+                            self._moving.setdefault(shard, (self._kept_seq, True))
                         await until_answered(client, client.subscribe(
-                            self._shard_filter(shard), qos=want[shard], timeout=math.inf))
-                        self._subs[shard] = want[shard]
-                for shard in sorted(set(self._subs) - set(want)):
+                            self._shard_filter(shard), qos=main[shard], timeout=math.inf))
+                        self._subs[shard] = main[shard]
+                for shard in sorted(side_want - self._standby_subs):
+                    assert side is not None
+                    if shard in self._subs:
+                        self._moving.setdefault(shard, (self._kept_seq, False))
+                    with self._loud(side):
+                        await until_answered(side, side.subscribe(
+                            self._shard_filter(shard), qos=0, timeout=math.inf))
+                    if self._standby_client is not side:
+                        raise aiomqtt.MqttError("standby connection lost")
+                    self._standby_subs.add(shard)
+                for shard in sorted(set(self._subs) - set(main)):  # then leave the old
                     await until_answered(client, client.unsubscribe(
                         self._shard_filter(shard), timeout=math.inf))
                     del self._subs[shard]
+                gone = self._standby_subs - side_want
+                if gone and self._standby_client is not None:
+                    side = self._standby_client
+                    for shard in sorted(gone):
+                        with self._loud(side):
+                            await until_answered(side, side.unsubscribe(
+                                self._shard_filter(shard), timeout=math.inf))
+                        self._standby_subs.discard(shard)
             except aiomqtt.MqttError as exc:
                 log.warning("shard subscriptions not updated; will retry",
                             extra=fields(error=exc))
                 return False
-            if self._announced != set(self._subs):
-                await self._announce(set(self._subs))
+            finally:
+                self._settle_moves()
+            if self._announced != set(self._subs) | self._standby_subs:
+                await self._announce(set(self._subs) | self._standby_subs)
         return True
+
+    def _settle_moves(self) -> None:
+        """Merge the kept fixes of every shard now received on one connection only.
+
+        Called where no subscription request is under way (:meth:`_sync_subscriptions`
+        holds the lock, or a connection is gone). See :func:`merge_moved`.
+        """
+        for shard, (start, to_main) in list(self._moving.items()):
+            if shard in self._subs and shard in self._standby_subs:
+                continue  # still on both: the old one is left next round
+            del self._moving[shard]
+            via = self._via_standby.pop(shard, set())
+            kept = self._buffers.get(shard)
+            if kept:
+                self._buffers[shard] = merge_moved(kept, start, via, to_main)
+
+    @contextlib.contextmanager
+    def _loud(self, client: aiomqtt.Client) -> Any:
+        """Read the standby connection as soon as it has bytes, while a request waits.
+
+        Otherwise it is read only when the worker is awake anyway
+        (:meth:`_read_standby`); the answer to a request, and every fix the broker
+        sent before it, are taken as they come.
+        """
+        paho: Any = client._client
+        sock = paho.socket()
+        if sock is None:
+            yield
+            return
+        fd = sock.fileno()
+        loop = asyncio.get_running_loop()
+        closed = getattr(client, "_disconnected", None)
+
+        def read() -> None:  # as aiomqtt's own reader
+            try:
+                paho.loop_read()
+            except Exception as exc:  # the connection broke
+                if isinstance(closed, asyncio.Future) and not closed.done():
+                    closed.set_exception(exc)
+
+        loop.add_reader(fd, read)
+        try:
+            yield
+        finally:
+            if paho.socket() is sock:  # else closed, its reader removed (the number reused)
+                loop.remove_reader(fd)
 
     async def _announce(self, shards: set[int]) -> None:
         """Record in Redis that this worker receives the topics of ``shards``."""
@@ -1469,7 +1658,11 @@ class Daemon:
         cfg = self._mqtt
         async with self._subs_lock:
             self._subs = {}
+            self._settle_moves()  # a move to the standby connection: the old place is gone
             wanted = dict(self._want_subs)
+            for shard in wanted:
+                if shard in self._standby_subs:  # a move that the lost connection began
+                    self._moving.setdefault(shard, (self._kept_seq, True))
             for feed_filter, qos in self._feed_filters(wanted):
                 await until_answered(client, client.subscribe(
                     feed_filter, qos=qos, timeout=math.inf))
@@ -1522,6 +1715,9 @@ class Daemon:
         run_until = 0.0  # monotonic time after which this turn takes no further message
         try:
             while True:
+                side = self._standby_client
+                if side is not None and time.monotonic() >= self._standby_read_at:
+                    self._read_standby(side)  # awake anyway: no wake-up of its own
                 await intake.wait()
                 if self._stopping.is_set():
                     break  # what was not taken is redelivered next session
@@ -1706,11 +1902,108 @@ class Daemon:
         payload = body[end + 1:]
         if not looks_like_position(payload, self.config.feed):
             return False  # junk: not kept (_arrive)
-        self._keep(shard, time.time(), topic, payload)
+        kept = self._keep(shard, time.time(), topic, payload)
         self._received += 1
         if mid >= 0:
             ack_mid(client, mid)
+        if self._moving and shard in self._moving and intake is self._standby_intake:
+            self._via_standby.setdefault(shard, set()).add(kept)
         return True
+
+    def _arrive_standby(self, message: aiomqtt.Message) -> None:
+        """Take a message of the standby connection that :meth:`_take_raw` left to paho.
+
+        The first fix of each topic (its shard is learnt here), and anything unusual.
+        A possible fix is kept as :meth:`_arrive` keeps it; nothing from this
+        connection is matched (only shards stood by for are subscribed on it) or
+        acknowledged (QoS 0), and junk and ``wrong_shard`` messages are left to the
+        holder of their shard, which receives them too and publishes their rejects.
+        """
+        self._received += 1
+        topic = message.topic.value
+        payload = message.payload
+        if not isinstance(payload, bytes):
+            payload = bytes(payload) if isinstance(payload, bytearray) \
+                else str(payload).encode()
+        key = self._intake_key(topic, payload)
+        if key == JUNK_KEY or key.startswith("c:") or self._stopping.is_set():
+            return
+        shard = self._kept_shard(topic, payload, key)
+        if shard < 0:
+            return
+        kept = self._keep(shard, time.time(), topic, payload)
+        if self._moving and shard in self._moving:
+            self._via_standby.setdefault(shard, set()).add(kept)
+
+    async def _standby_loop(self) -> None:
+        """Keep the standby connection up (``group.standby_connection``), reconnecting.
+
+        While it is down the standby shards are received on the main connection, as
+        without the setting (:meth:`_sync_subscriptions`); every change of it starts a
+        rebalancing round, which moves them.
+        """
+        cfg = self._mqtt
+        backoff = backoff_delays(cfg.reconnect_min_s, cfg.reconnect_max_s)
+        while not self._stopping.is_set():
+            try:
+                await self._standby_session(backoff)
+            except (aiomqtt.MqttError, OSError) as exc:
+                log.warning("standby connection lost; reconnecting",
+                            extra=fields(broker=redact_url(cfg.url), error=exc))
+            except Exception as exc:  # a bug: log, reconnect
+                log.error("standby connection failed", exc_info=exc)
+            if not self._stopping.is_set():
+                await self._sleep_unless_stopping(backoff.next())
+
+    async def _standby_session(self, backoff: Any) -> None:
+        """One standby connection: read it quietly until it breaks or the daemon stops.
+
+        Its own client id (``mqtt.client_id`` + ``-standby``) and no session kept after
+        it (QoS 0 fixes are not queued for an absent subscriber anyway). aiomqtt's
+        reader of its socket is removed once connected: the socket is read by the
+        receive loop's turns (:meth:`_read_standby`), by a timer when those are far
+        apart, and as it comes while a request waits (:meth:`_loud`).
+        """
+        cfg = replace(self._mqtt, client_id=f"{self._mqtt.client_id}-standby",
+                      session_expiry_s=0)
+        intake = IntakeQueue(1, key_of=self._intake_key)  # nothing is ever queued
+        intake.arrive = self._arrive_standby
+        client = make_client(cfg, username=self.config.username,
+                             password=self.config.password, intake=intake)
+        lean_receive(client, deliver=intake.put_nowait)
+        buffered_reads(client, take=functools.partial(self._take_raw, client, intake))
+        async with client:
+            closed = getattr(client, "_disconnected", None)
+            paho: Any = client._client
+            sock = paho.socket()
+            if sock is not None:
+                asyncio.get_running_loop().remove_reader(sock.fileno())
+            backoff.reset()
+            self._standby_intake = intake
+            self._standby_client = client
+            self._standby_read_at = time.monotonic() + _STANDBY_EVERY_S
+            self._rebalance_due.set()  # move the standby shards onto it
+            log.info("standby connection up", extra=fields(client_id=cfg.client_id))
+            try:
+                while not self._stopping.is_set():
+                    if isinstance(closed, asyncio.Future) and closed.done():
+                        raise aiomqtt.MqttError("standby connection closed")
+                    late = self._standby_read_at - _STANDBY_EVERY_S + _STANDBY_LATE_S
+                    if time.monotonic() >= late:
+                        self._read_standby(client)
+                        continue
+                    await self._sleep_unless_stopping(late - time.monotonic())
+            finally:
+                self._standby_client = None
+                self._standby_intake = None
+                self._standby_subs.clear()
+                self._settle_moves()
+                self._rebalance_due.set()  # its shards back on the main connection
+
+    def _read_standby(self, client: aiomqtt.Client) -> None:
+        """Read what the standby connection has (kept fixes, answers, PINGRESP)."""
+        self._standby_read_at = time.monotonic() + _STANDBY_EVERY_S
+        drain(client, _STANDBY_PACKETS, _DRAIN_BUDGET_S)
 
     def _intake_key(self, topic: str, payload: bytes) -> str:
         """The vehicle a received message is about, for shedding (cheap; topic first).
