@@ -51,7 +51,7 @@ from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, replace
 
 from livematch.core.network import RoadNetwork
-from livematch.core.routing import RouteSearch, route_searches
+from livematch.core.routing import RouteSearch, RouteTable, route_searches, route_table
 from livematch.core.settings import MatchSettings
 from livematch.core.view import NetworkView
 
@@ -512,7 +512,11 @@ def bridge_step(
         searches.append(([sources[i]], own))
     # one call for every search, answering for the targets only (each entered by a route
     # that may turn into it: U-turns only where the network allows them)
-    found = search(view, searches, limit, targets, ctx.street_turns)
+    if search is route_searches:
+        table = route_table(view, searches, limit, targets, ctx.street_turns)
+    else:
+        table = RouteTable.of_arrivals(
+            search(view, searches, limit, targets, ctx.street_turns), len(targets))
     paced = ctx.pace_cost > 0.0 and not ctx.pace_free
     if paced and ctx.speed_route >= 0.0:
         # the fixes' own speed over ground (settings.speed_pace_m): one least route
@@ -527,7 +531,31 @@ def bridge_step(
     new: dict[int, Node] = {}
     sf, st, vx, vy, slen = view.sf, view.st, view.vx, view.vy, view.slen
     x1, y1 = ctx.x1, ctx.y1
-    rows = list(zip(found, [shift for _, shift in searches], strict=True))
+    # each target's free interval at p1 and the length of its part before it, or None
+    frees: list[tuple[float, float, float] | None] = []
+    for seg in targets:
+        a = sf[seg]
+        b = st[seg]
+        lo, hi = free_interval(vx[a], vy[a], vx[b], vy[b], x1, y1, eps2)
+        frees.append((lo, hi, lo * slen[seg]) if lo <= hi else None)
+    # The arrivals each target is offered, in the order of the searches: (parent, route,
+    # expected route, route length to the target's tail as the search added it, its
+    # offset taken off). Read off the table in one pass; an arrival whose route is too
+    # long for the target's free interval is dropped before its route is sliced out.
+    n_t = len(targets)
+    kept: list[list[tuple[Node, tuple[int, ...], float, float]]] = [[] for _ in targets]
+    vias = table.vias
+    it = iter(table.info)  # four ints per arrival: row, source, via_start, via_len
+    for d, row, source, start, n in zip(table.dist, it, it, it, it, strict=False):
+        if row < n_t:
+            k = row
+            d -= offsets[source]  # the multi-source search's (the own searches': 0.0)
+        else:
+            k = row % n_t
+        f = frees[k]
+        if f is None or d + f[2] > limit:
+            continue
+        kept[k].append((nodes[source], vias[start:start + n], expects[source], d))
     index = {seg: i for i, seg in enumerate(live)}
     # how far a route length the search added up (offset included, then taken off) may
     # be from _offer's own sum of the same segments: rounding only, far below this
@@ -537,20 +565,15 @@ def bridge_step(
     # more of them, most of which change nothing.
     inline = not ctx.error_rho > 0.0
     for k, seg in enumerate(targets):
-        a = sf[seg]
-        b = st[seg]
-        lo, hi = free_interval(vx[a], vy[a], vx[b], vy[b], x1, y1, eps2)
-        if lo > hi:
+        f = frees[k]
+        if f is None:
             continue
+        lo, hi, _ = f
         same = live.get(seg)
         if same is not None and hi >= same.pos:
             _offer(new, ctx, seg, max(lo, same.pos), hi, same, (), same.pos,
                    expects[index[seg]])
-        lo_len = lo * slen[seg]
-        # (parent, route, expected route, route length to seg's tail as the search added it)
-        offers = [(nodes[r.source], r.segs, expects[r.source], d) for arrivals, shift in rows
-                  if (r := arrivals[k]) is not None
-                  and not (d := r.dist - shift[r.source]) + lo_len > limit]
+        offers = kept[k]
         if not offers:
             continue
         if inline:
