@@ -78,7 +78,8 @@ def test_live_nodes_match_node_by_row(name: str, settings: MatchSettings,
                                       monkeypatch: pytest.MonkeyPatch) -> None:
     """``CandidateTree.live_nodes`` (the live block read with one slice per array) hands
     out the nodes of ``CandidateTree.node`` row by row: the same fields, the same float64s,
-    parents shared the same way, the same rows."""
+    parents shared the same way, the same rows. And each node's ``step_route`` is the
+    sum it was defined by."""
     shipped = CandidateTree.live_nodes
     seen = [0, 0, 0]
 
@@ -92,6 +93,14 @@ def test_live_nodes_match_node_by_row(name: str, settings: MatchSettings,
         # one parent node per parent row, as the definition
         assert (len({id(n.parent) for n in fast.values() if n.parent is not None})
                 == len({id(n.parent) for n in ref.values() if n.parent is not None}))
+        # step_route (the pace's route length) sums the vias through map(): the same float
+        # as the sum over a generator it replaced
+        for n in fast.values():
+            if n.parent is not None and (n.via or n.seg != n.parent.seg):
+                slen = view.slen
+                want = ((1.0 - n.parent.pos) * slen[n.parent.seg] + sum(slen[v] for v in n.via)
+                        + n.pos * slen[n.seg])
+                assert sweep.step_route(view, n).hex() == want.hex()
         seen[0] += 1
         seen[1] += len(fast)
         seen[2] += sum(bool(n.via) for n in fast.values())

@@ -430,7 +430,9 @@ def step_route(view: NetworkView, node: Node) -> float:
     slen = view.slen
     if not node.via and node.seg == parent.seg:
         return (node.pos - parent.pos) * slen[node.seg]
-    return ((1.0 - parent.pos) * slen[parent.seg] + sum(slen[v] for v in node.via)
+    # sum() over map: the same builtin summing the same floats in the same order as over
+    # a generator (so the same float64), without a generator frame per segment
+    return ((1.0 - parent.pos) * slen[parent.seg] + sum(map(slen.__getitem__, node.via))
             + node.pos * slen[node.seg])
 
 
