@@ -24,13 +24,14 @@ from livematch.core._tree_kernel import H_RCAP, H_T0
 from livematch.core.candidates import CandidateTree
 from livematch.core.fix import Fix
 from livematch.core.network import RoadNetwork
-from livematch.core.routing import RouteTable, route_searches_reference
+from livematch.core.routing import RouteTable, route_searches_reference, route_table
 from livematch.core.settings import MatchSettings
 from livematch.core.sweep import Node
 from livematch.core.tracker import Tracker
-from livematch.core.view import NetworkView
+from livematch.core.view import NetworkView, view_of
 from livematch.mapdata.netfile import open_network
 from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
+from tests.catalogue import grid
 
 EXTRACTS = ["test.osm.pbf", "Helsinki.osm.pbf"]
 SETTINGS = [
@@ -149,6 +150,8 @@ def test_bridge_step_offers_as_from_arrivals(name: str, settings: MatchSettings,
 
         monkeypatch.setattr(sweep, "route_table", table)
         monkeypatch.setattr(sweep, "_bridge_offers", offers_of)
+        # every search run here (the reuse across levels: test_shared_searches_change_no_state)
+        kw.pop("shared", None)
         try:
             out = shipped(network, live, ctx, limit, **kw)
         finally:
@@ -190,3 +193,123 @@ def test_bridge_step_offers_as_from_arrivals(name: str, settings: MatchSettings,
     assert seen[0] >= 20
     assert seen[1] >= 10 * seen[0]
     assert seen[2] >= seen[0]
+
+
+def states(new: dict[int, Node]) -> list[tuple[object, ...]]:
+    """Every state of a step, floats as hex, the parent by identity."""
+    return [(n.seg, n.seq, n.t.hex(), n.pos.hex(), n.x.hex(), n.y.hex(), n.cost.hex(),
+             n.low.hex(), n.via, id(n.parent)) for n in new.values()]
+
+
+@pytest.mark.parametrize("name", EXTRACTS)
+@pytest.mark.parametrize("settings", SETTINGS, ids=SETTINGS_IDS)
+def test_shared_searches_change_no_state(name: str, settings: MatchSettings,
+                                         monkeypatch: pytest.MonkeyPatch) -> None:
+    """The levels of one fix bridge from the largest eps down and reuse each other's own
+    searches (``SharedSearches``): every bridged step's states are those of the same step
+    with every search run afresh (``shared`` None), field for field and bit for bit. The
+    reuse happens (most repeats are answered) and a reused answer is the one the search
+    itself gives (each hit checked against a fresh compiled search)."""
+    shipped = sweep.bridge_step
+    real_run = sweep.SharedSearches.run
+    seen = {"steps": 0, "own": 0, "hits": 0}
+
+    def run(self: sweep.SharedSearches, view: NetworkView, searches: Any, limit: float,
+            targets: list[int], anywhere: bool) -> Any:
+        table, hits = real_run(self, view, searches, limit, targets, anywhere)
+        seen["own"] += len(searches) - 1
+        seen["hits"] += len(hits)
+        for j, tag, found in hits:
+            fresh = route_table(view, [searches[j]], limit, targets, anywhere)
+            it = iter(fresh.info)
+            want = {targets[row]: (d.hex(), fresh.vias[start:start + n])
+                    for d, row, _, start, n in zip(fresh.dist, it, it, it, it, strict=False)}
+            got = {seg: (a[0].hex(), a[1]) for seg, a in found.items() if a[0] <= limit
+                   and seg in set(targets)}
+            assert got == want
+            assert tag == searches[j][0][0][2]
+        return table, hits
+
+    real_offers = sweep._bridge_offers
+    made: list[tuple[object, ...]] = []
+
+    def offers_of(new: dict[int, Node], c: sweep.StepContext, seg: int, lo: float,
+                  hi: float, offers: list[tuple[Node, tuple[int, ...], float, float]],
+                  slack: float) -> None:
+        made.append((seg, [(id(p), via, e.hex(), d.hex()) for p, via, e, d in offers]))
+        real_offers(new, c, seg, lo, hi, offers, slack)
+
+    def both(network: RoadNetwork, live: dict[int, Node], ctx: sweep.StepContext,
+             limit: float, **kw: Any) -> dict[int, Node]:
+        made.clear()
+        fast = shipped(network, live, ctx, limit, **kw)
+        if kw.get("shared") is not None:
+            offered = list(made)
+            made.clear()
+            ref = shipped(network, live, ctx, limit, paces=kw.get("paces"))
+            assert list(fast) == list(ref)
+            assert states(fast) == states(ref)
+            # the same offers in the same order (a reused search read at its place)
+            assert offered == made
+            seen["steps"] += 1
+        return fast
+
+    monkeypatch.setattr(sweep, "_bridge_offers", offers_of)
+    monkeypatch.setattr(sweep.SharedSearches, "run", run)
+    monkeypatch.setattr(sweep, "bridge_step", both)
+    drive_trackers(name, settings, seeds=1)
+    # many steps with shared searches, most own searches answered from another level
+    assert seen["steps"] >= 40
+    assert seen["hits"] >= seen["own"] // 4 > 0
+
+
+def test_shared_searches_answer_only_what_they_cover() -> None:
+    """``SharedSearches`` answers an own search from an earlier one only when that one
+    was bounded at least as far, asked about every target, from the same source on the
+    same turn rule; the answer is then a fresh search's, bit for bit (the routes and
+    lengths a search of the smaller bound finds). On a 5 x 5 grid of 200 m blocks with
+    50 m segments (``tests.catalogue.grid``), from its centre."""
+    net = grid()
+    view = view_of(net)
+    centre = next(v for v in range(net.n_vertices)
+                  if view.vx[v] == 400.0 and view.vy[v] == 400.0)
+    into = next(g for g in range(net.n_segments) if view.st[g] == centre)
+    source = (centre, 10.0, 0, into)
+    searches = [([source, (view.sf[into], 60.0, 1, -1)], [0.0, 5.0]), ([source], [0.0, 0.0])]
+    every = list(range(0, net.n_segments, 3))
+    some = every[::2]
+
+    def fresh(limit: float, targets: list[int], anywhere: bool = False) -> dict[int, object]:
+        t = route_table(view, [searches[1]], limit, targets, anywhere)
+        it = iter(t.info)
+        return {targets[row]: (d.hex(), t.vias[s:s + n])
+                for d, row, _, s, n in zip(t.dist, it, it, it, it, strict=False)}
+
+    def answered(hits: list[Any], limit: float, targets: list[int]) -> dict[int, object]:
+        (j, tag, found), = hits
+        assert (j, tag) == (1, 0)
+        return {seg: (a[0].hex(), a[1]) for seg, a in found.items()
+                if a[0] <= limit and seg in set(targets)}
+
+    shared = sweep.SharedSearches()
+    table, hits = shared.run(view, searches, 500.0, every)
+    assert hits == [] and len({row // len(every) for row in table.info[::4]}) == 2
+    # a smaller bound, fewer targets: answered, as a search of its own would
+    table, hits = shared.run(view, searches, 300.0, some)
+    assert {row // len(some) for row in table.info[::4]} == {0}  # the own search not run
+    want = fresh(300.0, some)
+    assert answered(hits, 300.0, some) == want and len(want) >= 5
+    # not covered: a larger bound, a target not asked about, the other turn rule
+    assert shared.run(view, searches, 600.0, some)[1] == []
+    assert shared.run(view, searches, 300.0, [*some, 1])[1] == []
+    assert shared.run(view, searches, 300.0, some, True)[1] == []
+    # a search that covers the one kept replaces it (one that does not, above, does not)
+    assert shared.run(view, searches, 550.0, some)[1] == []
+    shared.run(view, searches, 600.0, every)
+    table, hits = shared.run(view, searches, 550.0, some)
+    assert answered(hits, 550.0, some) == fresh(550.0, some)
+    # nothing kept when told not to
+    quiet = sweep.SharedSearches()
+    quiet.keep = False
+    quiet.run(view, searches, 500.0, every)
+    assert quiet.found == {}

@@ -47,11 +47,17 @@ from __future__ import annotations
 
 import heapq
 import math
-from collections.abc import Callable, Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, replace
 
 from livematch.core.network import RoadNetwork
-from livematch.core.routing import RouteSearch, RouteTable, route_searches, route_table
+from livematch.core.routing import (
+    RouteSearch,
+    RouteTable,
+    Search,
+    route_searches,
+    route_table,
+)
 from livematch.core.settings import MatchSettings
 from livematch.core.view import NetworkView
 
@@ -466,6 +472,7 @@ BRIDGE_OWN_SEARCHES = 8  # on the simulated drives more than 8 changed nothing (
 def bridge_step(
     network: RoadNetwork, live: dict[int, Node], ctx: StepContext, limit: float,
     search: RouteSearch = route_searches, paces: list[float] | None = None,
+    shared: SharedSearches | None = None,
 ) -> dict[int, Node]:
     """Reach the segments within eps of p1 from ``live`` by routes of at most ``limit`` m.
 
@@ -485,6 +492,8 @@ def bridge_step(
     :func:`~livematch.core.routing.route_searches` or its pure-Python reference.
     ``paces``: :func:`pace` of each live state at ``ctx.t``, in ``live``'s order, when
     the caller has them already (:func:`advance`, from :func:`bridge_reach`).
+    ``shared``: the own searches other levels made for the same fix
+    (:class:`SharedSearches`); an own search one of them answers is not run again.
     """
     view = ctx.view
     eps2 = ctx.eps * ctx.eps
@@ -514,11 +523,16 @@ def bridge_step(
         searches.append(([sources[i]], own))
     # one call for every search, answering for the targets only (each entered by a route
     # that may turn into it: U-turns only where the network allows them)
-    if search is route_searches:
-        table = route_table(view, searches, limit, targets, ctx.street_turns)
-    else:
+    # hits: the own searches another level answered (search index, source index, their
+    # arrivals), in order; ``runs``: the original index of each search the table answers
+    hits: list[tuple[int, int, dict[int, tuple[float, tuple[int, ...]]]]] = []
+    if search is not route_searches:
         table = RouteTable.of_arrivals(
             search(view, searches, limit, targets, ctx.street_turns), len(targets))
+    elif shared is None:
+        table = route_table(view, searches, limit, targets, ctx.street_turns)
+    else:
+        table, hits = shared.run(view, searches, limit, targets, ctx.street_turns)
     paced = ctx.pace_cost > 0.0 and not ctx.pace_free
     if paced and ctx.speed_route >= 0.0:
         # the fixes' own speed over ground (settings.speed_pace_m): one least route
@@ -548,16 +562,37 @@ def bridge_step(
     kept: list[list[tuple[Node, tuple[int, ...], float, float]]] = [[] for _ in targets]
     vias = table.vias
     it = iter(table.info)  # four ints per arrival: row, source, via_start, via_len
-    for d, row, source, start, n in zip(table.dist, it, it, it, it, strict=False):
-        if row < n_t:
-            k = row
-            d -= offsets[source]  # the multi-source search's (the own searches': 0.0)
-        else:
-            k = row % n_t
-        f = frees[k]
-        if f is None or d + f[2] > limit:
-            continue
-        kept[k].append((nodes[source], vias[start:start + n], expects[source], d))
+    if not hits:
+        for d, row, source, start, n in zip(table.dist, it, it, it, it, strict=False):
+            if row < n_t:
+                k = row
+                d -= offsets[source]  # the multi-source search's (the own searches': 0.0)
+            else:
+                k = row % n_t
+            f = frees[k]
+            if f is None or d + f[2] > limit:
+                continue
+            kept[k].append((nodes[source], vias[start:start + n], expects[source], d))
+    else:
+        # the table answers the searches not in ``hits``, in order: the searches the hits
+        # stand for are read in between, at their place in the order of the searches
+        h = 0
+        for d, row, source, start, n in zip(table.dist, it, it, it, it, strict=False):
+            j = row // n_t
+            while h < len(hits) and hits[h][0] <= j + h:
+                _shared_offers(kept, hits[h], targets, frees, nodes, expects, limit)
+                h += 1
+            if row < n_t:
+                k = row
+                d -= offsets[source]
+            else:
+                k = row - j * n_t
+            f = frees[k]
+            if f is None or d + f[2] > limit:
+                continue
+            kept[k].append((nodes[source], vias[start:start + n], expects[source], d))
+        for hit in hits[h:]:
+            _shared_offers(kept, hit, targets, frees, nodes, expects, limit)
     index = {seg: i for i, seg in enumerate(live)}
     # how far a route length the search added up (offset included, then taken off) may
     # be from _offer's own sum of the same segments: rounding only, far below this
@@ -584,6 +619,109 @@ def bridge_step(
             for parent, via, expect, _ in offers:
                 _offer(new, ctx, seg, lo, hi, parent, via, -1.0, expect)
     return new
+
+
+class SharedSearches:
+    """The own searches of one fix's bridged steps, kept for the other levels to reuse.
+
+    At 15-30 s between fixes every eps level bridges every step, and most of the states
+    that get an own search (:data:`BRIDGE_OWN_SEARCHES`) are live at more than one level:
+    the same segment at the same position, so the same source (on the Helsinki drives of
+    ``bench/sparseprofile.py`` six in ten own searches repeated one of an earlier level
+    at the same fix). A search from one source with no offset settles segments in the
+    order of their keys (route length, segment, segment before; its one tag decides
+    nothing), and a search bounded at ``limit`` pushes only entries whose length is at
+    most ``limit``: so its pops are those of a search bounded at a larger limit, up to
+    the first entry longer than ``limit``, and it enters a segment exactly when the
+    larger one entered it by a route no longer than ``limit``, by the same route. A
+    search that answered for a superset of the targets, bounded at least as far, from
+    the same source on the same turn rule, therefore answers this one: the same
+    arrivals, bit for bit. The tracker bridges the levels from the largest eps down
+    (largest targets and reach first), one :class:`SharedSearches` per fix.
+
+    Attributes:
+        found: per source ``(vertex, initial length, entering segment, anywhere)``, the
+            limit and targets it was searched for and the route length and route of each
+            target it entered.
+        keep: record the own searches run (off for the last level of a fix).
+    """
+
+    __slots__ = ("found", "keep")
+
+    def __init__(self) -> None:
+        self.found: dict[tuple[int, float, int, bool],
+                         tuple[float, frozenset[int],
+                               dict[int, tuple[float, tuple[int, ...]]]]] = {}
+        self.keep = True
+
+    def run(self, view: NetworkView, searches: Sequence[Search], limit: float,
+            targets: list[int], anywhere: bool = False,
+            ) -> tuple[RouteTable, list[tuple[int, int, dict[int, tuple[float, tuple[int, ...]]]]]]:
+        """:func:`route_table` of the searches no earlier search answers, and the others.
+
+        ``searches``: :func:`bridge_step`'s, the multi-source search first, then the own
+        searches (one source each, no offset). Returns the table of the searches run, in
+        order, and for each own search answered from before its index in ``searches``,
+        its source's tag and the arrivals found then (segment -> route length, route).
+        """
+        hits: list[tuple[int, int, dict[int, tuple[float, tuple[int, ...]]]]] = []
+        run: list[Search] = [searches[0]]
+        keys: list[tuple[int, float, int, bool]] = []
+        wanted = frozenset(targets)
+        found = self.found
+        for j in range(1, len(searches)):
+            (vertex, length, tag, seg), = searches[j][0]
+            key = (vertex, length, seg, anywhere)
+            got = found.get(key)
+            if got is not None and got[0] >= limit and wanted <= got[1]:
+                hits.append((j, tag, got[2]))
+            else:
+                run.append(searches[j])
+                keys.append(key)
+        table = route_table(view, run, limit, targets, anywhere)
+        if self.keep and keys:
+            n_t = len(targets)
+            answers: list[dict[int, tuple[float, tuple[int, ...]]]] = [{} for _ in keys]
+            vias = table.vias
+            it = iter(table.info)
+            for d, row, _, start, n in zip(table.dist, it, it, it, it, strict=False):
+                if row >= n_t:
+                    j = row // n_t
+                    answers[j - 1][targets[row - j * n_t]] = (d, vias[start:start + n])
+            for key, answer in zip(keys, answers, strict=True):
+                old = found.get(key)
+                if old is None or (limit >= old[0] and wanted >= old[1]):
+                    found[key] = (limit, wanted, answer)
+        return table, hits
+
+
+def _shared_offers(
+    kept: list[list[tuple[Node, tuple[int, ...], float, float]]],
+    hit: tuple[int, int, dict[int, tuple[float, tuple[int, ...]]]], targets: list[int],
+    frees: list[tuple[float, float, float] | None], nodes: list[Node], expects: list[float],
+    limit: float,
+) -> None:
+    """Add an own search answered by :class:`SharedSearches` to each target's offers.
+
+    As :func:`bridge_step` reads an arrival of its own table: a target is entered by a
+    search bounded at ``limit`` when the route length to its tail is at most ``limit``
+    (no offset: the length is the label itself), and offered when that length plus the
+    target's part before its free interval is within ``limit`` too.
+    """
+    _, i, found = hit
+    parent = nodes[i]
+    expect = expects[i]
+    for k, seg in enumerate(targets):
+        a = found.get(seg)
+        if a is None:
+            continue
+        d = a[0]
+        if not d <= limit:
+            continue  # a search bounded at limit does not enter it
+        f = frees[k]
+        if f is None or d + f[2] > limit:
+            continue
+        kept[k].append((parent, a[1], expect, d))
 
 
 def _bridge_offers(
@@ -737,6 +875,7 @@ def advance(
     network: RoadNetwork, live: dict[int, Node], ctx: StepContext, settings: MatchSettings,
     dt: float, *, gap: bool = False,
     step: Callable[[dict[int, Node], StepContext], dict[int, Node]] = sweep_step,
+    shared: SharedSearches | None = None,
 ) -> tuple[dict[int, Node], str]:
     """One level, one fix: sweep, else bridge, else start afresh.
 
@@ -746,6 +885,8 @@ def advance(
         dt: seconds since the previous fix.
         gap: the step is a gap: skip the sweep, bridge at once.
         step: the sweep implementation (the compiled one in the tracker).
+        shared: the own searches of the fix's other bridged levels
+            (:class:`SharedSearches`; :func:`bridge_step`).
 
     Returns:
         The new states and how they were reached: ``"swept"`` (the Fréchet window goes
@@ -766,7 +907,7 @@ def advance(
                 and settings.error_tau_s > 0.0 and dt > settings.gap_s):
             ctx = replace(ctx, error_rho=math.exp(-dt / settings.error_tau_s),
                           error_cross=settings.bridge_error_cross)
-        new = bridge_step(network, live, ctx, limit, paces=paces)
+        new = bridge_step(network, live, ctx, limit, paces=paces, shared=shared)
         if new:
             return new, "bridged"
     return fresh_start(network, ctx), "fresh"
