@@ -224,8 +224,8 @@ def test_shared_searches_change_no_state(name: str, settings: MatchSettings,
             it = iter(fresh.info)
             want = {targets[row]: (d.hex(), fresh.vias[start:start + n])
                     for d, row, _, start, n in zip(fresh.dist, it, it, it, it, strict=False)}
-            got = {seg: (a[0].hex(), a[1]) for seg, a in found.items() if a[0] <= limit
-                   and seg in set(targets)}
+            got = {seg: (a[0].hex(), a[1]) for seg, a in found.arrivals().items()
+                   if a[0] <= limit and seg in set(targets)}
             assert got == want
             assert tag == searches[j][0][0][2]
         return table, hits
@@ -288,7 +288,7 @@ def test_shared_searches_answer_only_what_they_cover() -> None:
     def answered(hits: list[Any], limit: float, targets: list[int]) -> dict[int, object]:
         (j, tag, found), = hits
         assert (j, tag) == (1, 0)
-        return {seg: (a[0].hex(), a[1]) for seg, a in found.items()
+        return {seg: (a[0].hex(), a[1]) for seg, a in found.arrivals().items()
                 if a[0] <= limit and seg in set(targets)}
 
     shared = sweep.SharedSearches()

@@ -281,6 +281,9 @@ def route_arrays(view: NetworkView) -> RouteArrays:
     return arrays
 
 
+INFO_STRIDE = _rk.INFO_STRIDE  # RouteTable.info: ints per entry (row, source, start, length)
+
+
 class RouteTable(NamedTuple):
     """What route searches found for their end segments, the routes left packed.
 

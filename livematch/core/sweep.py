@@ -47,11 +47,14 @@ from __future__ import annotations
 
 import heapq
 import math
+from bisect import bisect_left
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, replace
+from typing import NamedTuple
 
 from livematch.core.network import RoadNetwork
 from livematch.core.routing import (
+    INFO_STRIDE,
     RouteSearch,
     RouteTable,
     Search,
@@ -525,7 +528,7 @@ def bridge_step(
     # that may turn into it: U-turns only where the network allows them)
     # hits: the own searches another level answered (search index, source index, their
     # arrivals), in order; ``runs``: the original index of each search the table answers
-    hits: list[tuple[int, int, dict[int, tuple[float, tuple[int, ...]]]]] = []
+    hits: list[tuple[int, int, SharedSearch]] = []
     if search is not route_searches:
         table = RouteTable.of_arrivals(
             search(view, searches, limit, targets, ctx.street_turns), len(targets))
@@ -577,10 +580,11 @@ def bridge_step(
         # the table answers the searches not in ``hits``, in order: the searches the hits
         # stand for are read in between, at their place in the order of the searches
         h = 0
+        at = {seg: k for k, seg in enumerate(targets)}
         for d, row, source, start, n in zip(table.dist, it, it, it, it, strict=False):
             j = row // n_t
             while h < len(hits) and hits[h][0] <= j + h:
-                _shared_offers(kept, hits[h], targets, frees, nodes, expects, limit)
+                _shared_offers(kept, hits[h], at, frees, nodes, expects, limit)
                 h += 1
             if row < n_t:
                 k = row
@@ -592,7 +596,7 @@ def bridge_step(
                 continue
             kept[k].append((nodes[source], vias[start:start + n], expects[source], d))
         for hit in hits[h:]:
-            _shared_offers(kept, hit, targets, frees, nodes, expects, limit)
+            _shared_offers(kept, hit, at, frees, nodes, expects, limit)
     index = {seg: i for i, seg in enumerate(live)}
     # how far a route length the search added up (offset included, then taken off) may
     # be from _offer's own sum of the same segments: rounding only, far below this
@@ -641,30 +645,27 @@ class SharedSearches:
 
     Attributes:
         found: per source ``(vertex, initial length, entering segment, anywhere)``, the
-            limit and targets it was searched for and the route length and route of each
-            target it entered.
+            search that answers for it (:class:`SharedSearch`).
         keep: record the own searches run (off for the last level of a fix).
     """
 
     __slots__ = ("found", "keep")
 
     def __init__(self) -> None:
-        self.found: dict[tuple[int, float, int, bool],
-                         tuple[float, frozenset[int],
-                               dict[int, tuple[float, tuple[int, ...]]]]] = {}
+        self.found: dict[tuple[int, float, int, bool], SharedSearch] = {}
         self.keep = True
 
     def run(self, view: NetworkView, searches: Sequence[Search], limit: float,
             targets: list[int], anywhere: bool = False,
-            ) -> tuple[RouteTable, list[tuple[int, int, dict[int, tuple[float, tuple[int, ...]]]]]]:
+            ) -> tuple[RouteTable, list[tuple[int, int, SharedSearch]]]:
         """:func:`route_table` of the searches no earlier search answers, and the others.
 
         ``searches``: :func:`bridge_step`'s, the multi-source search first, then the own
         searches (one source each, no offset). Returns the table of the searches run, in
-        order, and for each own search answered from before its index in ``searches``,
-        its source's tag and the arrivals found then (segment -> route length, route).
+        order, and for each own search answered from before: its index in ``searches``,
+        its source's tag, and the search that answers it.
         """
-        hits: list[tuple[int, int, dict[int, tuple[float, tuple[int, ...]]]]] = []
+        hits: list[tuple[int, int, SharedSearch]] = []
         run: list[Search] = [searches[0]]
         keys: list[tuple[int, float, int, bool]] = []
         wanted = frozenset(targets)
@@ -673,55 +674,100 @@ class SharedSearches:
             (vertex, length, tag, seg), = searches[j][0]
             key = (vertex, length, seg, anywhere)
             got = found.get(key)
-            if got is not None and got[0] >= limit and wanted <= got[1]:
-                hits.append((j, tag, got[2]))
+            if got is not None and got.limit >= limit and wanted <= got.wanted:
+                hits.append((j, tag, got))
             else:
                 run.append(searches[j])
                 keys.append(key)
         table = route_table(view, run, limit, targets, anywhere)
-        if self.keep and keys:
-            n_t = len(targets)
-            answers: list[dict[int, tuple[float, tuple[int, ...]]]] = [{} for _ in keys]
-            vias = table.vias
-            it = iter(table.info)
-            for d, row, _, start, n in zip(table.dist, it, it, it, it, strict=False):
-                if row >= n_t:
-                    j = row // n_t
-                    answers[j - 1][targets[row - j * n_t]] = (d, vias[start:start + n])
-            for key, answer in zip(keys, answers, strict=True):
+        if self.keep:
+            for j, key in enumerate(keys, start=1):
                 old = found.get(key)
-                if old is None or (limit >= old[0] and wanted >= old[1]):
-                    found[key] = (limit, wanted, answer)
+                if old is None or (limit >= old.limit and wanted >= old.wanted):
+                    found[key] = SharedSearch(limit, wanted, table, targets, j)
         return table, hits
+
+
+class SharedSearch(NamedTuple):
+    """One own search kept by :class:`SharedSearches`: search ``search`` of ``table``.
+
+    Attributes:
+        limit: its bound (metres).
+        wanted: the targets it answered for (``targets``, as a set).
+        table: the answer of the call it ran in (:func:`route_table`).
+        targets: that call's end segments.
+        search: its index among that call's searches.
+    """
+
+    limit: float
+    wanted: frozenset[int]
+    table: RouteTable
+    targets: list[int]
+    search: int
+
+    def entries(self) -> range:
+        """The indices of its arrivals in the table (a search's are consecutive)."""
+        rows = self.table.info[::INFO_STRIDE]
+        n_t = len(self.targets)
+        return range(bisect_left(rows, self.search * n_t),
+                     bisect_left(rows, (self.search + 1) * n_t))
+
+    def arrivals(self) -> dict[int, tuple[float, tuple[int, ...]]]:
+        """Each target it entered: the route length to the target's tail and the route.
+
+        Example (a 100 m road both ways; from its tail, its way back is entered at
+        100 m, after the U-turn at the dead end):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> from livematch.core.view import view_of
+            >>> view = view_of(network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)]))
+            >>> source = ([(0, 0.0, 0, -1)], [0.0])
+            >>> table = route_table(view, [source, source], 150.0, [0, 1])
+            >>> SharedSearch(150.0, frozenset([0, 1]), table, [0, 1], 1).arrivals()
+            {0: (0.0, ()), 1: (100.0, (0,))}
+        """
+        info = self.table.info
+        base = self.search * len(self.targets)
+        return {self.targets[info[INFO_STRIDE * e] - base]:
+                (self.table.dist[e], self.table.vias[info[INFO_STRIDE * e + 2]:
+                                                     info[INFO_STRIDE * e + 2]
+                                                     + info[INFO_STRIDE * e + 3]])
+                for e in self.entries()}
 
 
 def _shared_offers(
     kept: list[list[tuple[Node, tuple[int, ...], float, float]]],
-    hit: tuple[int, int, dict[int, tuple[float, tuple[int, ...]]]], targets: list[int],
+    hit: tuple[int, int, SharedSearch], index: dict[int, int],
     frees: list[tuple[float, float, float] | None], nodes: list[Node], expects: list[float],
     limit: float,
 ) -> None:
     """Add an own search answered by :class:`SharedSearches` to each target's offers.
 
-    As :func:`bridge_step` reads an arrival of its own table: a target is entered by a
-    search bounded at ``limit`` when the route length to its tail is at most ``limit``
-    (no offset: the length is the label itself), and offered when that length plus the
-    target's part before its free interval is within ``limit`` too.
+    As :func:`bridge_step` reads an arrival of its own table: a target (``index``: its
+    position among this step's targets) is entered by a search bounded at ``limit`` when
+    the route length to its tail is at most ``limit`` (no offset: the length is the label
+    itself), and offered when that length plus the target's part before its free
+    interval is within ``limit`` too. Routes are sliced out for the offers only.
     """
-    _, i, found = hit
+    _, i, shared = hit
     parent = nodes[i]
     expect = expects[i]
-    for k, seg in enumerate(targets):
-        a = found.get(seg)
-        if a is None:
-            continue
-        d = a[0]
+    table = shared.table
+    dist, info, vias = table.dist, table.info, table.vias
+    targets = shared.targets
+    base = shared.search * len(targets)
+    for e in shared.entries():
+        q = INFO_STRIDE * e
+        k = index.get(targets[info[q] - base])
+        if k is None:
+            continue  # not a target of this step
+        d = dist[e]
         if not d <= limit:
             continue  # a search bounded at limit does not enter it
         f = frees[k]
         if f is None or d + f[2] > limit:
             continue
-        kept[k].append((parent, a[1], expect, d))
+        start = info[q + 2]
+        kept[k].append((parent, vias[start:start + info[q + 3]], expect, d))
 
 
 def _bridge_offers(
