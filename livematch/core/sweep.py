@@ -526,8 +526,8 @@ def bridge_step(
         searches.append(([sources[i]], own))
     # one call for every search, answering for the targets only (each entered by a route
     # that may turn into it: U-turns only where the network allows them)
-    # hits: the own searches another level answered (search index, source index, their
-    # arrivals), in order; ``runs``: the original index of each search the table answers
+    # hits: the own searches another level's search answers (index in ``searches``, source
+    # tag, that search), in order; the table answers the others, in order
     hits: list[tuple[int, int, SharedSearch]] = []
     if search is not route_searches:
         table = RouteTable.of_arrivals(
