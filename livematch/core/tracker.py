@@ -730,7 +730,6 @@ class Tracker:
         sweep = _CALLS.tree_sweep
         netf, neti, fbuf, ibuf = arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf
         bridged: list[Level] = []  # the levels whose window died (or every one, at a gap)
-        salvaged: dict[int, CandidateTree] = {}
         for level in self.levels:
             tree = level.tree
             if tree.hi > tree.lo and not gap:
@@ -754,12 +753,15 @@ class Tracker:
                     continue
             # the window died (or the step is a gap): bridge, else start afresh (below)
             bridged.append(level)
+        if not bridged:
+            return salvage  # (every level swept, as nearly always at 1 s between fixes)
         # The levels bridge after the sweeps, from the largest eps down, sharing their own
         # searches (sweep.SharedSearches: the largest eps asks about the most targets and
         # reaches furthest, so the smaller levels' repeats are answered). A level's step
         # reads and writes only its own tree and fields, so the order changes nothing
         # else; the levels that started afresh are listed in the ladder's order still.
         shared = SharedSearches() if len(bridged) > 1 else None
+        salvaged: dict[int, CandidateTree] = {}
         for n_done, level in enumerate(reversed(bridged), start=1):
             if shared is not None:
                 shared.keep = n_done < len(bridged)
