@@ -23,6 +23,7 @@ import pstats
 import sys
 import time
 from pathlib import Path
+from typing import Any
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
@@ -82,7 +83,40 @@ def main(argv: list[str] | None = None) -> int:
         for label, calls, own, incl in ranked[:args.top]:
             value = incl if inclusive else own
             print(f"  {100 * value / total:5.1f} %  {calls:8d} calls  {label}")
+    shared_counts(network, runs, every)
     return 0
+
+
+def shared_counts(network: RoadNetwork, runs: list[list[Fix]], every: list[int]) -> None:
+    """Print how many own searches the fix's other levels answered (``SharedSearches``).
+
+    Counted over one more pass of the drives, in the fixes where two levels or more
+    bridge (one :class:`~livematch.core.sweep.SharedSearches` each); nothing when the
+    tree has no such class (a checkout from before it).
+    """
+    from livematch.core import sweep
+
+    shared = getattr(sweep, "SharedSearches", None)
+    if shared is None:
+        return
+    run = shared.run
+    counts = [0, 0, 0]  # calls, own searches asked, answered from another level's
+
+    def counting(self: Any, view: Any, searches: list[Any], *rest: Any) -> Any:
+        answer = run(self, view, searches, *rest)
+        counts[0] += 1
+        counts[1] += len(searches) - 1  # the multi-source search is never shared
+        counts[2] += len(answer[1])
+        return answer
+
+    shared.run = counting
+    try:
+        match_all(network, runs, every)
+    finally:
+        shared.run = run
+    print(f"\nshared searches: {counts[0]} bridged steps with another level at their fix, "
+          f"{counts[1]} own searches, {counts[2]} answered by another level's "
+          f"({100 * counts[2] / max(counts[1], 1):.0f} %)")
 
 
 if __name__ == "__main__":

@@ -28,12 +28,14 @@ from livematch.core.build import Road, network_from_roads
 from livematch.core.network import RoadNetwork
 from livematch.core.routing import (
     Arrival,
+    RouteTable,
     Search,
     bounded_dijkstra,
     connect,
     route_arrays,
     route_searches,
     route_searches_reference,
+    route_table,
 )
 from livematch.core.settings import MatchSettings
 from livematch.core.sweep import Node, StepContext, bridge_step, fresh_start
@@ -62,6 +64,12 @@ def check_searches(view: NetworkView, searches: Sequence[Search], limit: float,
     ref = route_searches_reference(view, searches, limit, ends, anywhere)
     fast = route_searches(view, searches, limit, ends, anywhere)
     assert exact(fast) == exact(ref)
+    # the packed table bridge_step reads: the reference's answer packed is the same table
+    table = route_table(view, searches, limit, ends, anywhere)
+    packed = RouteTable.of_arrivals(ref, len(ends))
+    assert [d.hex() for d in table.dist] == [d.hex() for d in packed.dist]
+    assert (table.n_ends, table.info, table.vias) == (packed.n_ends, packed.info, packed.vias)
+    assert exact(table.arrivals(len(searches))) == exact(ref)
     for row in fast:
         for a in row:
             assert a is None or (type(a.source) is int and type(a.segs) is tuple

@@ -64,6 +64,9 @@ from livematch.core._tree_kernel import (
     H_RCAP,
     H_T0,
     HEAD,
+    I_PARENT,
+    I_SEG,
+    I_SEQ,
     I_VIAE,
     K_PARENT,
     K_SEG,
@@ -335,14 +338,77 @@ class CandidateTree:
         Each node's parent is given too (as a parentless node), so the step that reached
         a state is known (its route length and speed), not the path before it. ``view``:
         the network, for the matched points (:meth:`node`).
+
+        Every node is :meth:`node`'s of its row, field for field (the same float64s:
+        the matched point is the same expression on the same numbers). The live block's
+        rows, positions, floats and vias are read with one slice each rather than row by
+        row: at 15-30 s between fixes every step of every level is bridged, and this ran
+        once per level and fix for tens of live states (``bench/sparseprofile.py``).
         """
+        nodes: dict[int, Node] = {}
+        rows: dict[int, int] = {}
+        ti = self.ti
+        lo, hi = self.lo, self.hi
+        if hi <= lo:
+            return nodes, rows
+        cap = ti.item(H_RCAP)
+        tb = self._time_base() - ti.item(H_T0)
+        if lo != ti.item(H_LO) or hi != ti.item(H_HI):  # not the header's live block
+            return self._live_nodes_by_row(view, cap, tb)
+        tf = self.tf
+        k = hi - lo
+        ints = ti[HEAD + ROW_I * lo:HEAD + ROW_I * hi].tolist()
+        poss = tf[ROW_F * lo + F_POS:ROW_F * hi:ROW_F].tolist()
+        lb = ROW_F * cap
+        lives = tf[lb:lb + LIVE_F * k].tolist()
+        seqs = ints[I_SEQ::ROW_I]
+        t0 = min(seqs)
+        times = tf[tb + t0:tb + max(seqs) + 1].tolist()  # the fix times, by seq - t0
+        # the vias of the whole block: a row's run from where the row before's end
+        ends = ints[I_VIAE::ROW_I]
+        before = ti.item(HEAD + ROW_I * (lo - 1) + I_VIAE) if lo else 0
+        base = min(before, *ends)
+        top = max(before, *ends)
+        vb = HEAD + ROW_I * cap
+        flat = ti[vb + base:vb + top].tolist() if top > base else []
+        parents: dict[int, Node] = {}
+        make = self._node
+        sf, st, vx, vy = view.sf, view.st, view.vx, view.vy
+        v0 = before
+        for i in range(k):
+            j = ROW_I * i
+            seg = ints[j + I_SEG]
+            seq = ints[j + I_SEQ]
+            p = ints[j + I_PARENT]
+            v1 = ints[j + I_VIAE]
+            parent = None
+            if p >= 0:
+                parent = parents.get(p)
+                if parent is None:
+                    parent = parents[p] = make(view, p, None, ti, tf, cap, tb)
+            # as _node: no vias when the row's end is 0 (or not past the row before's)
+            via = tuple(flat[v0 - base:v1 - base]) if v1 and v1 > v0 else ()
+            v0 = v1
+            pos = poss[i]
+            a = sf[seg]
+            b = st[seg]
+            ax = vx[a]
+            ay = vy[a]
+            node = Node(seg, seq, times[seq - t0], pos, ax + pos * (vx[b] - ax),
+                        ay + pos * (vy[b] - ay), parent, via, lives[LIVE_F * i + LF_COST],
+                        lives[LIVE_F * i + LF_LOW])
+            nodes[seg] = node
+            rows[id(node)] = lo + i
+        return nodes, rows
+
+    def _live_nodes_by_row(self, view: NetworkView, cap: int,
+                           tb: int) -> tuple[dict[int, Node], dict[int, int]]:
+        """:meth:`live_nodes`, one :meth:`node` per row (the definition)."""
         nodes: dict[int, Node] = {}
         rows: dict[int, int] = {}
         parents: dict[int, Node] = {}
         ti = self.ti
         tf = self.tf
-        cap = ti.item(H_RCAP)
-        tb = self._time_base() - ti.item(H_T0)
         make = self._node
         for r in range(self.lo, self.hi):
             p = ti.item(ROW_I * r + K_PARENT)

@@ -12,6 +12,8 @@ same searches compiled (``_route_kernel``, numba) and answers only for the few s
 the caller asks about, with bit-identical distances, the same source and the same route
 (``tests/test_routing.py`` compares the two on the OpenStreetMap extracts).
 :func:`route_searches_reference` is the same interface on the pure-Python routines.
+:func:`route_table` is the compiled answer before it is unpacked (a :class:`RouteTable`):
+the bridged step reads it directly and slices out only the routes it offers.
 
 The searches are edge-based (a state is the directed segment entered), not vertex-based:
 a vehicle that drives into a dead end or a short spur and back out between two fixes
@@ -279,26 +281,89 @@ def route_arrays(view: NetworkView) -> RouteArrays:
     return arrays
 
 
-def route_searches(
+INFO_STRIDE = _rk.INFO_STRIDE  # RouteTable.info: ints per entry (row, source, start, length)
+
+
+class RouteTable(NamedTuple):
+    """What route searches found for their end segments, the routes left packed.
+
+    One entry per (search, end segment) the search entered, in the order of the searches
+    and, within one, of the ends. :meth:`arrivals` unpacks it into the answer of
+    :func:`route_searches`; a caller that looks at a few entries only (``bridge_step``
+    drops every arrival too long for its target) reads the lists and slices the routes
+    it keeps, instead of having an :class:`Arrival` and a route tuple built for each.
+
+    Attributes:
+        n_ends: the number of end segments asked about.
+        dist: per entry, :attr:`Arrival.dist` (the source's offset included).
+        info: four ints per entry: ``row`` (``j * n_ends + k`` for search ``j`` and end
+            ``k``), the source's tag, and where the route starts in ``vias`` and its
+            number of segments.
+        vias: every entry's route, one after another: the route of an entry is
+            ``vias[start:start + n]`` (:attr:`Arrival.segs`).
+    """
+
+    n_ends: int
+    dist: list[float]
+    info: list[int]
+    vias: tuple[int, ...]
+
+    def arrivals(self, n_searches: int) -> list[list[Arrival | None]]:
+        """Per search, per end segment, its :class:`Arrival` or None (not entered).
+
+        Example (one search entering end 0 by a route of two segments; end 1 missed):
+            >>> RouteTable(2, [50.0], [0, 3, 0, 2], (4, 5)).arrivals(1)
+            [[Arrival(dist=50.0, source=3, segs=(4, 5)), None]]
+        """
+        n_ends = self.n_ends
+        flat: list[Arrival | None] = [None] * (n_searches * n_ends)
+        segs = self.vias  # a slice of a tuple is the route's tuple: one allocation
+        it = iter(self.info)  # four ints per reached end: row, source, via_start, via_len
+        for d, row, source, start, n in zip(self.dist, it, it, it, it, strict=False):
+            flat[row] = _new_tuple(Arrival, (d, source, segs[start:start + n]))
+        return [flat[j * n_ends:(j + 1) * n_ends] for j in range(n_searches)]
+
+    @classmethod
+    def of_arrivals(cls, answer: list[list[Arrival | None]], n_ends: int) -> RouteTable:
+        """The table of an answer of :data:`RouteSearch` (the inverse of :meth:`arrivals`).
+
+        Example (the answer of the example above):
+            >>> RouteTable.of_arrivals([[Arrival(50.0, 3, (4, 5)), None]], 2)
+            RouteTable(n_ends=2, dist=[50.0], info=[0, 3, 0, 2], vias=(4, 5))
+        """
+        dist: list[float] = []
+        info: list[int] = []
+        vias: list[int] = []
+        for j, row in enumerate(answer):
+            for k, a in enumerate(row):
+                if a is not None:
+                    dist.append(a.dist)
+                    info += (j * n_ends + k, a.source, len(vias), len(a.segs))
+                    vias.extend(a.segs)
+        return cls(n_ends, dist, info, tuple(vias))
+
+
+def route_table(
     view: NetworkView, searches: Sequence[Search], limit: float, ends: list[int],
     anywhere: bool = False,
-) -> list[list[Arrival | None]]:
-    """:func:`route_searches_reference`, compiled: same arguments, same answer.
+) -> RouteTable:
+    """:func:`route_searches`' searches, compiled, answered as a :class:`RouteTable`.
 
     All the searches run in one call of the kernel, each stopping as soon as every end
     segment is settled (their labels are final then; see ``_route_kernel``).
 
-    Example (as for the reference):
+    Example (as for :func:`route_searches_reference`: the way back of a 100 m road, entered
+    after a U-turn at the dead end, by a route of one segment; nothing from no source):
         >>> from livematch.core.build import Road, network_from_roads
         >>> from livematch.core.view import view_of
         >>> view = view_of(network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)]))
-        >>> route_searches(view, [([(0, 0.0, 0, -1)], None), ([], None)], 150.0, [1])
-        [[Arrival(dist=100.0, source=0, segs=(0,))], [None]]
-        >>> route_searches(view, [], 150.0, [1])
-        []
+        >>> route_table(view, [([(0, 0.0, 0, -1)], None), ([], None)], 150.0, [1])
+        RouteTable(n_ends=1, dist=[100.0], info=[0, 0, 0, 1], vias=(0,))
+        >>> route_table(view, [], 150.0, [1])
+        RouteTable(n_ends=1, dist=[], info=[], vias=())
     """
     if not searches:
-        return []
+        return RouteTable(len(ends), [], [], ())
     arrays = route_arrays(view)
     req: list[float] = [limit, len(ends), *ends, len(searches)]
     for sources, offsets in searches:
@@ -314,14 +379,28 @@ def route_searches(
         if n_via >= 0:
             break
         arrays.grow()
-    n_ends = len(ends)
-    flat: list[Arrival | None] = [None] * (len(searches) * n_ends)
-    # a slice of a tuple is the route's tuple: one allocation
-    segs = tuple(arrays.vias[:n_via].tolist())
-    it = iter(info.tolist())  # four ints per reached end: row, source, via_start, via_len
-    for d, row, source, start, n in zip(dist.tolist(), it, it, it, it, strict=False):
-        flat[row] = _new_tuple(Arrival, (d, source, segs[start:start + n]))
-    return [flat[j * n_ends:(j + 1) * n_ends] for j in range(len(searches))]
+    return RouteTable(len(ends), dist.tolist(), info.tolist(),
+                      tuple(arrays.vias[:n_via].tolist()))
+
+
+def route_searches(
+    view: NetworkView, searches: Sequence[Search], limit: float, ends: list[int],
+    anywhere: bool = False,
+) -> list[list[Arrival | None]]:
+    """:func:`route_searches_reference`, compiled: same arguments, same answer.
+
+    :func:`route_table`, unpacked (:meth:`RouteTable.arrivals`).
+
+    Example (as for the reference):
+        >>> from livematch.core.build import Road, network_from_roads
+        >>> from livematch.core.view import view_of
+        >>> view = view_of(network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)]))
+        >>> route_searches(view, [([(0, 0.0, 0, -1)], None), ([], None)], 150.0, [1])
+        [[Arrival(dist=100.0, source=0, segs=(0,))], [None]]
+        >>> route_searches(view, [], 150.0, [1])
+        []
+    """
+    return route_table(view, searches, limit, ends, anywhere).arrivals(len(searches))
 
 
 def connect(

@@ -47,11 +47,20 @@ from __future__ import annotations
 
 import heapq
 import math
-from collections.abc import Callable, Iterable, Mapping
+from bisect import bisect_left
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, replace
+from typing import NamedTuple
 
 from livematch.core.network import RoadNetwork
-from livematch.core.routing import RouteSearch, route_searches
+from livematch.core.routing import (
+    INFO_STRIDE,
+    RouteSearch,
+    RouteTable,
+    Search,
+    route_searches,
+    route_table,
+)
 from livematch.core.settings import MatchSettings
 from livematch.core.view import NetworkView
 
@@ -430,7 +439,9 @@ def step_route(view: NetworkView, node: Node) -> float:
     slen = view.slen
     if not node.via and node.seg == parent.seg:
         return (node.pos - parent.pos) * slen[node.seg]
-    return ((1.0 - parent.pos) * slen[parent.seg] + sum(slen[v] for v in node.via)
+    # sum() over map: the same builtin summing the same floats in the same order as over
+    # a generator (so the same float64), without a generator frame per segment
+    return ((1.0 - parent.pos) * slen[parent.seg] + sum(map(slen.__getitem__, node.via))
             + node.pos * slen[node.seg])
 
 
@@ -464,6 +475,7 @@ BRIDGE_OWN_SEARCHES = 8  # on the simulated drives more than 8 changed nothing (
 def bridge_step(
     network: RoadNetwork, live: dict[int, Node], ctx: StepContext, limit: float,
     search: RouteSearch = route_searches, paces: list[float] | None = None,
+    shared: SharedSearches | None = None,
 ) -> dict[int, Node]:
     """Reach the segments within eps of p1 from ``live`` by routes of at most ``limit`` m.
 
@@ -483,6 +495,8 @@ def bridge_step(
     :func:`~livematch.core.routing.route_searches` or its pure-Python reference.
     ``paces``: :func:`pace` of each live state at ``ctx.t``, in ``live``'s order, when
     the caller has them already (:func:`advance`, from :func:`bridge_reach`).
+    ``shared``: the own searches other levels made for the same fix
+    (:class:`SharedSearches`); an own search one of them answers is not run again.
     """
     view = ctx.view
     eps2 = ctx.eps * ctx.eps
@@ -512,7 +526,16 @@ def bridge_step(
         searches.append(([sources[i]], own))
     # one call for every search, answering for the targets only (each entered by a route
     # that may turn into it: U-turns only where the network allows them)
-    found = search(view, searches, limit, targets, ctx.street_turns)
+    # hits: the own searches another level's search answers (index in ``searches``, source
+    # tag, that search), in order; the table answers the others, in order
+    hits: list[tuple[int, int, SharedSearch]] = []
+    if search is not route_searches:
+        table = RouteTable.of_arrivals(
+            search(view, searches, limit, targets, ctx.street_turns), len(targets))
+    elif shared is None:
+        table = route_table(view, searches, limit, targets, ctx.street_turns)
+    else:
+        table, hits = shared.run(view, searches, limit, targets, ctx.street_turns)
     paced = ctx.pace_cost > 0.0 and not ctx.pace_free
     if paced and ctx.speed_route >= 0.0:
         # the fixes' own speed over ground (settings.speed_pace_m): one least route
@@ -527,7 +550,53 @@ def bridge_step(
     new: dict[int, Node] = {}
     sf, st, vx, vy, slen = view.sf, view.st, view.vx, view.vy, view.slen
     x1, y1 = ctx.x1, ctx.y1
-    rows = list(zip(found, [shift for _, shift in searches], strict=True))
+    # each target's free interval at p1 and the length of its part before it, or None
+    frees: list[tuple[float, float, float] | None] = []
+    for seg in targets:
+        a = sf[seg]
+        b = st[seg]
+        lo, hi = free_interval(vx[a], vy[a], vx[b], vy[b], x1, y1, eps2)
+        frees.append((lo, hi, lo * slen[seg]) if lo <= hi else None)
+    # The arrivals each target is offered, in the order of the searches: (parent, route,
+    # expected route, route length to the target's tail as the search added it, its
+    # offset taken off). Read off the table in one pass; an arrival whose route is too
+    # long for the target's free interval is dropped before its route is sliced out.
+    n_t = len(targets)
+    kept: list[list[tuple[Node, tuple[int, ...], float, float]]] = [[] for _ in targets]
+    vias = table.vias
+    it = iter(table.info)  # four ints per arrival: row, source, via_start, via_len
+    if not hits:
+        for d, row, source, start, n in zip(table.dist, it, it, it, it, strict=False):
+            if row < n_t:
+                k = row
+                d -= offsets[source]  # the multi-source search's (the own searches': 0.0)
+            else:
+                k = row % n_t
+            f = frees[k]
+            if f is None or d + f[2] > limit:
+                continue
+            kept[k].append((nodes[source], vias[start:start + n], expects[source], d))
+    else:
+        # the table answers the searches not in ``hits``, in order: the searches the hits
+        # stand for are read in between, at their place in the order of the searches
+        h = 0
+        at = {seg: k for k, seg in enumerate(targets)}
+        for d, row, source, start, n in zip(table.dist, it, it, it, it, strict=False):
+            j = row // n_t
+            while h < len(hits) and hits[h][0] <= j + h:
+                _shared_offers(kept, hits[h], at, frees, nodes, expects, limit)
+                h += 1
+            if row < n_t:
+                k = row
+                d -= offsets[source]
+            else:
+                k = row - j * n_t
+            f = frees[k]
+            if f is None or d + f[2] > limit:
+                continue
+            kept[k].append((nodes[source], vias[start:start + n], expects[source], d))
+        for hit in hits[h:]:
+            _shared_offers(kept, hit, at, frees, nodes, expects, limit)
     index = {seg: i for i, seg in enumerate(live)}
     # how far a route length the search added up (offset included, then taken off) may
     # be from _offer's own sum of the same segments: rounding only, far below this
@@ -537,20 +606,15 @@ def bridge_step(
     # more of them, most of which change nothing.
     inline = not ctx.error_rho > 0.0
     for k, seg in enumerate(targets):
-        a = sf[seg]
-        b = st[seg]
-        lo, hi = free_interval(vx[a], vy[a], vx[b], vy[b], x1, y1, eps2)
-        if lo > hi:
+        f = frees[k]
+        if f is None:
             continue
+        lo, hi, _ = f
         same = live.get(seg)
         if same is not None and hi >= same.pos:
             _offer(new, ctx, seg, max(lo, same.pos), hi, same, (), same.pos,
                    expects[index[seg]])
-        lo_len = lo * slen[seg]
-        # (parent, route, expected route, route length to seg's tail as the search added it)
-        offers = [(nodes[r.source], r.segs, expects[r.source], d) for arrivals, shift in rows
-                  if (r := arrivals[k]) is not None
-                  and not (d := r.dist - shift[r.source]) + lo_len > limit]
+        offers = kept[k]
         if not offers:
             continue
         if inline:
@@ -559,6 +623,151 @@ def bridge_step(
             for parent, via, expect, _ in offers:
                 _offer(new, ctx, seg, lo, hi, parent, via, -1.0, expect)
     return new
+
+
+class SharedSearches:
+    """The own searches of one fix's bridged steps, kept for the other levels to reuse.
+
+    At 15-30 s between fixes every eps level bridges every step, and most of the states
+    that get an own search (:data:`BRIDGE_OWN_SEARCHES`) are live at more than one level:
+    the same segment at the same position, so the same source (on the Helsinki drives of
+    ``bench/sparseprofile.py`` six in ten own searches repeated one of an earlier level
+    at the same fix). A search from one source with no offset settles segments in the
+    order of their keys (route length, segment, segment before; its one tag decides
+    nothing), and a search bounded at ``limit`` pushes only entries whose length is at
+    most ``limit``: so its pops are those of a search bounded at a larger limit, up to
+    the first entry longer than ``limit``, and it enters a segment exactly when the
+    larger one entered it by a route no longer than ``limit``, by the same route. A
+    search that answered for a superset of the targets, bounded at least as far, from
+    the same source on the same turn rule, therefore answers this one: the same
+    arrivals, bit for bit. The tracker bridges the levels from the largest eps down
+    (largest targets and reach first), one :class:`SharedSearches` per fix.
+
+    Attributes:
+        found: per source ``(vertex, initial length, entering segment, anywhere)``, the
+            search that answers for it (:class:`SharedSearch`).
+        keep: record the own searches run (off for the last level of a fix).
+    """
+
+    __slots__ = ("found", "keep")
+
+    def __init__(self) -> None:
+        self.found: dict[tuple[int, float, int, bool], SharedSearch] = {}
+        self.keep = True
+
+    def run(self, view: NetworkView, searches: Sequence[Search], limit: float,
+            targets: list[int], anywhere: bool = False,
+            ) -> tuple[RouteTable, list[tuple[int, int, SharedSearch]]]:
+        """:func:`route_table` of the searches no earlier search answers, and the others.
+
+        ``searches``: :func:`bridge_step`'s, the multi-source search first, then the own
+        searches (one source each, no offset). Returns the table of the searches run, in
+        order, and for each own search answered from before: its index in ``searches``,
+        its source's tag, and the search that answers it.
+        """
+        hits: list[tuple[int, int, SharedSearch]] = []
+        run: list[Search] = [searches[0]]
+        keys: list[tuple[int, float, int, bool]] = []
+        wanted = frozenset(targets)
+        found = self.found
+        for j in range(1, len(searches)):
+            (vertex, length, tag, seg), = searches[j][0]
+            key = (vertex, length, seg, anywhere)
+            got = found.get(key)
+            if got is not None and got.limit >= limit and wanted <= got.wanted:
+                hits.append((j, tag, got))
+            else:
+                run.append(searches[j])
+                keys.append(key)
+        table = route_table(view, run, limit, targets, anywhere)
+        if self.keep:
+            for j, key in enumerate(keys, start=1):
+                old = found.get(key)
+                if old is None or (limit >= old.limit and wanted >= old.wanted):
+                    found[key] = SharedSearch(limit, wanted, table, targets, j)
+        return table, hits
+
+
+class SharedSearch(NamedTuple):
+    """One own search kept by :class:`SharedSearches`: search ``search`` of ``table``.
+
+    Attributes:
+        limit: its bound (metres).
+        wanted: the targets it answered for (``targets``, as a set).
+        table: the answer of the call it ran in (:func:`route_table`).
+        targets: that call's end segments.
+        search: its index among that call's searches.
+    """
+
+    limit: float
+    wanted: frozenset[int]
+    table: RouteTable
+    targets: list[int]
+    search: int
+
+    def entries(self) -> range:
+        """The indices of its arrivals in the table (a search's are consecutive)."""
+        rows = self.table.info[::INFO_STRIDE]
+        n_t = len(self.targets)
+        return range(bisect_left(rows, self.search * n_t),
+                     bisect_left(rows, (self.search + 1) * n_t))
+
+    def arrivals(self) -> dict[int, tuple[float, tuple[int, ...]]]:
+        """Each target it entered: the route length to the target's tail and the route.
+
+        Example (a 100 m road both ways; from its tail, its way back is entered at
+        100 m, after the U-turn at the dead end):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> from livematch.core.view import view_of
+            >>> view = view_of(network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)]))
+            >>> source = ([(0, 0.0, 0, -1)], [0.0])
+            >>> table = route_table(view, [source, source], 150.0, [0, 1])
+            >>> SharedSearch(150.0, frozenset([0, 1]), table, [0, 1], 1).arrivals()
+            {0: (0.0, ()), 1: (100.0, (0,))}
+        """
+        info = self.table.info
+        base = self.search * len(self.targets)
+        return {self.targets[info[INFO_STRIDE * e] - base]:
+                (self.table.dist[e], self.table.vias[info[INFO_STRIDE * e + 2]:
+                                                     info[INFO_STRIDE * e + 2]
+                                                     + info[INFO_STRIDE * e + 3]])
+                for e in self.entries()}
+
+
+def _shared_offers(
+    kept: list[list[tuple[Node, tuple[int, ...], float, float]]],
+    hit: tuple[int, int, SharedSearch], index: dict[int, int],
+    frees: list[tuple[float, float, float] | None], nodes: list[Node], expects: list[float],
+    limit: float,
+) -> None:
+    """Add an own search answered by :class:`SharedSearches` to each target's offers.
+
+    As :func:`bridge_step` reads an arrival of its own table: a target (``index``: its
+    position among this step's targets) is entered by a search bounded at ``limit`` when
+    the route length to its tail is at most ``limit`` (no offset: the length is the label
+    itself), and offered when that length plus the target's part before its free
+    interval is within ``limit`` too. Routes are sliced out for the offers only.
+    """
+    _, i, shared = hit
+    parent = nodes[i]
+    expect = expects[i]
+    table = shared.table
+    dist, info, vias = table.dist, table.info, table.vias
+    targets = shared.targets
+    base = shared.search * len(targets)
+    for e in shared.entries():
+        q = INFO_STRIDE * e
+        k = index.get(targets[info[q] - base])
+        if k is None:
+            continue  # not a target of this step
+        d = dist[e]
+        if not d <= limit:
+            continue  # a search bounded at limit does not enter it
+        f = frees[k]
+        if f is None or d + f[2] > limit:
+            continue
+        start = info[q + 2]
+        kept[k].append((parent, vias[start:start + info[q + 3]], expect, d))
 
 
 def _bridge_offers(
@@ -712,6 +921,7 @@ def advance(
     network: RoadNetwork, live: dict[int, Node], ctx: StepContext, settings: MatchSettings,
     dt: float, *, gap: bool = False,
     step: Callable[[dict[int, Node], StepContext], dict[int, Node]] = sweep_step,
+    shared: SharedSearches | None = None,
 ) -> tuple[dict[int, Node], str]:
     """One level, one fix: sweep, else bridge, else start afresh.
 
@@ -721,6 +931,8 @@ def advance(
         dt: seconds since the previous fix.
         gap: the step is a gap: skip the sweep, bridge at once.
         step: the sweep implementation (the compiled one in the tracker).
+        shared: the own searches of the fix's other bridged levels
+            (:class:`SharedSearches`; :func:`bridge_step`).
 
     Returns:
         The new states and how they were reached: ``"swept"`` (the Fréchet window goes
@@ -741,7 +953,7 @@ def advance(
                 and settings.error_tau_s > 0.0 and dt > settings.gap_s):
             ctx = replace(ctx, error_rho=math.exp(-dt / settings.error_tau_s),
                           error_cross=settings.bridge_error_cross)
-        new = bridge_step(network, live, ctx, limit, paces=paces)
+        new = bridge_step(network, live, ctx, limit, paces=paces, shared=shared)
         if new:
             return new, "bridged"
     return fresh_start(network, ctx), "fresh"

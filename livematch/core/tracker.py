@@ -102,7 +102,7 @@ from livematch.core.network import RoadNetwork
 from livematch.core.routing import connect, small_loop
 from livematch.core.settings import MatchSettings
 from livematch.core.startroots import best_root
-from livematch.core.sweep import Node, StepContext, advance
+from livematch.core.sweep import Node, SharedSearches, StepContext, advance
 from livematch.core.view import NetworkView, view_of
 from livematch.core.wayout import project_on, relink, way_out_of_stand
 from livematch.errors import BadStateError
@@ -729,6 +729,7 @@ class Tracker:
         # level); the kernel's buffers are read again after a step that grew them
         sweep = _CALLS.tree_sweep
         netf, neti, fbuf, ibuf = arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf
+        bridged: list[Level] = []  # the levels whose window died (or every one, at a gap)
         for level in self.levels:
             tree = level.tree
             if tree.hi > tree.lo and not gap:
@@ -750,7 +751,21 @@ class Tracker:
                     if head is not None:
                         _charge_heading(tree, arrays, head, s.heading_cost)
                     continue
-            # the window died (or the step is a gap): bridge, else start afresh
+            # the window died (or the step is a gap): bridge, else start afresh (below)
+            bridged.append(level)
+        if not bridged:
+            return salvage  # (every level swept, as nearly always at 1 s between fixes)
+        # The levels bridge after the sweeps, from the largest eps down, sharing their own
+        # searches (sweep.SharedSearches: the largest eps asks about the most targets and
+        # reaches furthest, so the smaller levels' repeats are answered). A level's step
+        # reads and writes only its own tree and fields, so the order changes nothing
+        # else; the levels that started afresh are listed in the ladder's order still.
+        shared = SharedSearches() if len(bridged) > 1 else None
+        salvaged: dict[int, CandidateTree] = {}
+        for n_done, level in enumerate(reversed(bridged), start=1):
+            if shared is not None:
+                shared.keep = n_done < len(bridged)
+            tree = level.tree
             ctx = StepContext.between(self._view, s, level.eps, x0, y0, fix.x, fix.y, seq,
                                       fix.t, stood, turned)
             if step[9] != ctx.motion_cost:
@@ -769,19 +784,22 @@ class Tracker:
                 ctx = dataclasses.replace(ctx, speed_route=SPEED_FLOOR_SHARE * v * dt,
                                           pace_cost=1.0 / s.speed_pace_m)
             nodes, rows = tree.live_nodes(self._view)
-            new, how = advance(self.network, nodes, ctx, s, dt, gap=True)
+            new, how = advance(self.network, nodes, ctx, s, dt, gap=True, shared=shared)
             if how == "bridged":
                 tree.extend(new, rows)
                 level.cert_seq, level.cert_t = seq, fix.t
             else:
                 if len(tree):
-                    salvage.append((level, tree))
+                    salvaged[id(level)] = tree
                 level.tree = CandidateTree()
                 level.tree.extend(new, {})
                 level.tree_seq = level.trim_seq = level.cert_seq = seq
                 level.cert_t = fix.t
             if head is not None:
                 _charge_heading(level.tree, arrays, head, s.heading_cost)
+        for level in bridged:
+            if id(level) in salvaged:
+                salvage.append((level, salvaged[id(level)]))
         return salvage
 
     # ------------------------------------------------------------- spike test
