@@ -3176,9 +3176,13 @@ class Tracker:
         leaves the commit as it was. The caller moves that answer only: the committed
         path still begins with A, B (a commit of that node alone commits B too; the
         next commit goes on from A through B where its chain does, as the tree built
-        it, and otherwise joins from V on B: once, with an outlier as the second fix,
-        the later commits left A another way; docs/measured.md "Session 18
-        (logstart)").
+        it, and otherwise joins from V on B; docs/measured.md "Session 18
+        (logstart)"). The way out is never read from a fix the spike test has not
+        judged yet: when the chain is that node alone and the fix after it is the
+        newest, held back for the spike test, -1 (and :meth:`_settle` defers such a
+        first commit by one fix, :meth:`_way_out_pending`; an outlier there drew every
+        candidate out of V by the road towards it, docs/measured.md "Session 19
+        (logstart2)").
 
         Why: nothing before the log's first fix shows how the vehicle came to V. A is
         on the path only because that one fix lies a few metres short of V, well within
@@ -3247,6 +3251,10 @@ class Tracker:
     def _way_out_at_start(self, tree: CandidateTree, chain: list[Node], eps: float) -> int:
         """:meth:`_start_way_out` without asking whether the fix after is still held."""
         first = chain[0]
+        if first.pos <= 0.0:
+            # at A's start vertex: A is itself the road the path leaves that vertex by,
+            # the answer that holds whichever way the vehicle came; nothing to move
+            return -1
         after = chain[1].t if len(chain) > 1 else self.fix_time(first.seq + 1)
         if after is None or after - first.t < SPARSE_S:
             return -1
