@@ -14,6 +14,7 @@ from livematch.core.build import Road, network_from_roads
 from livematch.core.events import Commit, Event, Filtered
 from livematch.core.fix import Fix
 from livematch.core.settings import MatchSettings
+from livematch.core.sweep import Node
 from livematch.core.tracker import Tracker
 from tests.catalogue import committed_path as path
 from tests.catalogue import final_answers as finals
@@ -193,3 +194,29 @@ def test_the_first_commit_waits_one_fix_only_while_the_second_is_held() -> None:
     assert first_commit_at == 2
     off = track_points(NET, MatchSettings(start_way_out=False), clean, 5.0)
     assert finals(off)[0.0][0] == SEG_A
+
+
+def test_a_first_node_at_its_segments_start_vertex_is_left_alone() -> None:
+    """A first node at the very start of its segment (``pos`` 0: at the vertex where A
+    begins) is already at a vertex on the road the path leaves it by; the rule moves
+    nothing (the same node 6 m short of V is moved: the radius and the way out hold).
+    Hand-made nodes, as in the method's docstring example; V's distance from the fix
+    is checked with shapely."""
+    net = network_from_roads([Road([(0.0, 0.0), (10.0, 0.0)], way=1),
+                              Road([(10.0, 0.0), (200.0, 0.0)], way=2)])
+    tracker = Tracker(net, "v", MatchSettings(start_way_out=True))
+    tracker.update(Fix("v", 0.0, 0.0, 0.0, 4.0, 1.0))
+    assert shapely.Point(4.0, 1.0).distance(shapely.Point(10.0, 0.0)) <= EPS
+    tree = tracker.levels[0].tree
+    seq0 = tracker.fix_seq0
+    for pos, want in ((0.0, -1), (0.4, 2)):
+        a = Node(0, seq0, 0.0, pos, 10.0 * pos, 0.0, None, (), 0.0, pos)
+        b = Node(2, seq0 + 1, 15.0, 0.5, 105.0, 0.0, a, (), 1.0, 0.5)
+        assert tracker._start_way_out(tree, [a, b], EPS) == want
+
+
+def test_start_way_out_is_on_by_default() -> None:
+    """On since session 19 (decision runs: docs/measured.md "Session 19 (logstart2)");
+    the default tracker reports the first fix at V on B."""
+    assert MatchSettings().start_way_out is True
+    assert finals(run(MatchSettings(), [FIRST, *DRIVE]))[0.0][:2] == (SEG_B, 0.0)
