@@ -11,8 +11,11 @@ import pytest
 import shapely
 
 from livematch.core.build import Road, network_from_roads
-from livematch.core.events import Event
+from livematch.core.events import Commit, Event, Filtered
+from livematch.core.fix import Fix
 from livematch.core.settings import MatchSettings
+from livematch.core.sweep import Node
+from livematch.core.tracker import Tracker
 from tests.catalogue import committed_path as path
 from tests.catalogue import final_answers as finals
 from tests.catalogue import track_points
@@ -150,3 +153,70 @@ def test_start_way_out_must_be_a_bool() -> None:
     assert ("start_way_out", "must be true or false, got 'yes'") in \
         MatchSettings(start_way_out="yes").problems()  # type: ignore[arg-type]
 
+
+
+# An outlier as the second fix, 5 s after the first, 150 m up C (30 m/s: within the
+# jump filter's 60 m/s bound for a first step), then the vehicle drives off along B at
+# 10 m/s, a fix every 5 s. The spike test drops the outlier one fix late.
+OUTLIER_LOG = [FIRST, (102.0, 150.0)] + [(100.0 + 50.0 * i, (-1.0) ** i) for i in range(1, 14)]
+
+
+def test_an_outlier_second_fix_does_not_send_the_first_answer_out_by_its_road() -> None:
+    """Before the spike test judges the second fix, every candidate leaves V by C towards
+    it; the rule waits for that test and then reads the way out from the fixes that
+    count: the first answer is at V on B, never on C, and the committed path is the one
+    without the rule (A, B; shapely: the first answer on B's line, within eps)."""
+    on = track_points(NET, MatchSettings(start_way_out=True), OUTLIER_LOG, 5.0)
+    off = track_points(NET, MatchSettings(start_way_out=False), OUTLIER_LOG, 5.0)
+    assert any(isinstance(e, Filtered) and e.t == 5.0 and e.reason == "spike" for e in on)
+    seg, offset, x, y = finals(on)[0.0]
+    assert (seg, offset) == (SEG_B, 0.0)
+    assert shapely.LineString(B).distance(shapely.Point(x, y)) == 0.0
+    assert shapely.Point(FIRST).distance(shapely.Point(x, y)) <= EPS
+    assert finals(off)[0.0][0] == SEG_A
+    assert path(on) == path(off) == [SEG_A, SEG_B]
+    assert {t: a for t, a in finals(on).items() if t > 0.0} == \
+        {t: a for t, a in finals(off).items() if t > 0.0}
+
+
+def test_the_first_commit_waits_one_fix_only_while_the_second_is_held() -> None:
+    """The same log without the outlier (the second fix on B): the first answer still
+    moves to V on B, committed once the third fix has come (the spike test has judged
+    the second); at 15 s as in the other tests it moves too."""
+    clean = [FIRST] + [(100.0 + 50.0 * i, (-1.0) ** i) for i in range(1, 14)]
+    tracker = Tracker(NET, "v", MatchSettings(start_way_out=True))
+    first_commit_at = None
+    for i, (x, y) in enumerate(clean):
+        got = tracker.update(Fix("v", 5.0 * i, 0.0, 0.0, x, y))
+        if first_commit_at is None and any(isinstance(e, Commit) for e in got):
+            first_commit_at = i
+            assert finals(got)[0.0][:2] == (SEG_B, 0.0)
+    assert first_commit_at == 2
+    off = track_points(NET, MatchSettings(start_way_out=False), clean, 5.0)
+    assert finals(off)[0.0][0] == SEG_A
+
+
+def test_a_first_node_at_its_segments_start_vertex_is_left_alone() -> None:
+    """A first node at the very start of its segment (``pos`` 0: at the vertex where A
+    begins) is already at a vertex on the road the path leaves it by; the rule moves
+    nothing (the same node 6 m short of V is moved: the radius and the way out hold).
+    Hand-made nodes, as in the method's docstring example; V's distance from the fix
+    is checked with shapely."""
+    net = network_from_roads([Road([(0.0, 0.0), (10.0, 0.0)], way=1),
+                              Road([(10.0, 0.0), (200.0, 0.0)], way=2)])
+    tracker = Tracker(net, "v", MatchSettings(start_way_out=True))
+    tracker.update(Fix("v", 0.0, 0.0, 0.0, 4.0, 1.0))
+    assert shapely.Point(4.0, 1.0).distance(shapely.Point(10.0, 0.0)) <= EPS
+    tree = tracker.levels[0].tree
+    seq0 = tracker.fix_seq0
+    for pos, want in ((0.0, -1), (0.4, 2)):
+        a = Node(0, seq0, 0.0, pos, 10.0 * pos, 0.0, None, (), 0.0, pos)
+        b = Node(2, seq0 + 1, 15.0, 0.5, 105.0, 0.0, a, (), 1.0, 0.5)
+        assert tracker._start_way_out(tree, [a, b], EPS) == want
+
+
+def test_start_way_out_is_on_by_default() -> None:
+    """On since session 19 (decision runs: docs/measured.md "Session 19 (logstart2)");
+    the default tracker reports the first fix at V on B."""
+    assert MatchSettings().start_way_out is True
+    assert finals(run(MatchSettings(), [FIRST, *DRIVE]))[0.0][:2] == (SEG_B, 0.0)

@@ -630,22 +630,25 @@ class MatchSettings:
             (up to 1.64 -> 1.76 %) and final in one (0.9922 -> 0.9918).
         start_way_out: at the first commit of a vehicle's log, a first fix answered on
             a segment the path leaves before the next fix, short of that segment's end
-            vertex V, with V within the smallest eps level of the fix and the next fix
-            5 s or more later, is reported at V on the segment the path enters there;
-            the committed path keeps the segment into V
-            (:meth:`livematch.core.tracker.Tracker._start_way_out`). Why:
-            nothing before the first fix shows how the vehicle came to V; the segment
-            out of V is driven either way, the one into it only if the vehicle came in
-            by it rather than standing at V when its log began. The final answer of the
-            first fix only. Off by default: on bench/fleetmiss.py's decision runs (80
-            drives, seeds 31 / 77, both models, both extracts, 5 / 15 / 30 s) it turns
-            13 to 29 fixes right net in every random-walk cell (Helsinki 30 s 0.9040 /
-            0.9073 -> 0.9125 / 0.9161) and 0 to 5 in routed trips, live answers
-            identical, route mismatch identical but in routed trips test 5 s seed 31
-            (1.637 -> 1.642 %, one drive whose second fix is an outlier), which keeps
-            it off by the rule for defaults; the error median rises in 11 of the 12
-            routed-trips cells, by up to 0.054 m (docs/measured.md "Session 18
-            (logstart)").
+            vertex V (not at its start vertex), with V within the smallest eps level of
+            the fix and the next fix 5 s or more later, is reported at V on the segment
+            the path enters there; the committed path keeps the segment into V
+            (:meth:`livematch.core.tracker.Tracker._start_way_out`). The way out is never
+            read from a fix the spike test has not judged: a first commit that would
+            read it from such a fix alone waits one fix. Why: nothing before the first
+            fix shows how the vehicle came to V; the segment out of V is driven either
+            way, the one into it only if the vehicle came in by it rather than standing
+            at V when its log began; an outlier as the second fix draws every candidate
+            out of V towards it. The final answer of the first fix only. On since
+            session 19: on bench/fleetmiss.py's decision runs (80 drives, seeds 31 / 77,
+            both models, both extracts, 5 / 15 / 30 s) it turns 12 to 28 fixes right net
+            in every random-walk cell (Helsinki 15 s 0.9195 / 0.9334 -> 0.9248 / 0.9373,
+            30 s 0.9040 / 0.9073 -> 0.9117 / 0.9161; test 30 s 0.9286 / 0.9407 ->
+            0.9339 / 0.9492) and 0 to 5 in routed trips, none net wrong; live answers
+            and route mismatch identical in all 24 cells. The matched-position error
+            median moves by -0.044 to +0.053 m (the answer at V, not the fix's
+            projection on A; no target at 5-30 s). docs/measured.md "Session 18
+            (logstart)" and "Session 19 (logstart2)".
         stand_loops_sparse: ``stand_loops`` also for a loop whose fixes span less than
             10 s, where fixes come more than 5 s apart (``livematch.core.tracker.
             SPARSE_S``, the median gap from the node before the loop), the whole loop
@@ -724,7 +727,7 @@ class MatchSettings:
     flush_scored: bool = False
     end_stand_centre: bool = True
     heading_cost: float = 0.0
-    start_way_out: bool = False
+    start_way_out: bool = True
     stand_loops_sparse: bool = False
 
     def __post_init__(self) -> None:

@@ -1381,6 +1381,9 @@ class Tracker:
                 if waits:
                     continue
                 built = tree.chain(self._view, top, self.next_commit)
+                if (hold_newest and s.start_way_out and self.last_commit is None
+                        and self._way_out_pending(tree, built[0])):
+                    break  # the log's first commit waits for the spike test (see there)
                 if not self._defers(level, top, covering, built):
                     self._commit_chain(tree, top, events, prune=None, built=built)
                     covering = self._covering()
@@ -3191,9 +3194,13 @@ class Tracker:
         leaves the commit as it was. The caller moves that answer only: the committed
         path still begins with A, B (a commit of that node alone commits B too; the
         next commit goes on from A through B where its chain does, as the tree built
-        it, and otherwise joins from V on B: once, with an outlier as the second fix,
-        the later commits left A another way; docs/measured.md "Session 18
-        (logstart)").
+        it, and otherwise joins from V on B; docs/measured.md "Session 18
+        (logstart)"). The way out is never read from a fix the spike test has not
+        judged yet: when the chain is that node alone and the fix after it is the
+        newest, held back for the spike test, -1 (and :meth:`_settle` defers such a
+        first commit by one fix, :meth:`_way_out_pending`; an outlier there drew every
+        candidate out of V by the road towards it, docs/measured.md "Session 19
+        (logstart2)").
 
         Why: nothing before the log's first fix shows how the vehicle came to V. A is
         on the path only because that one fix lies a few metres short of V, well within
@@ -3228,7 +3235,44 @@ class Tracker:
             >>> tracker._start_way_out(tree, [a, b], 5.0)   # V 6.1 m from the fix
             -1
         """
+        if self._lone_before_held(chain):
+            return -1  # the way out is read from a fix the spike test has not judged
+        return self._way_out_at_start(tree, chain, eps)
+
+    def _lone_before_held(self, chain: list[Node]) -> bool:
+        """Whether ``chain`` is one node and the fix after it is the newest, held back.
+
+        Held back for the spike test, which may still drop it (``self.before`` is kept
+        while it may: :meth:`_spike_test`).
+        """
+        return (len(chain) == 1 and self.before is not None
+                and self.seq == chain[0].seq + 1)
+
+    def _way_out_pending(self, tree: CandidateTree, chain: list[Node]) -> bool:
+        """Whether the log's first commit, ``chain``, is to wait for the next fix.
+
+        It is when ``start_way_out`` would move its answer (:meth:`_way_out_at_start`)
+        on the word of the fix after it alone (the chain is one node, and the tree's
+        live candidates, whose way out of that node the rule reads, reach no fix but the
+        newest), and the spike test has not judged that fix yet. Why: such a fix is
+        held back from commits because it may be an outlier, and an outlier draws every
+        candidate out by whatever road leads towards it; the rule would then report the
+        first fix on a road the path never takes (routed trips test 5 s seed 31 sim-059:
+        a 214 m outlier at the second fix, 5 s later; docs/measured.md "Session 19
+        (logstart2)"). One fix later the spike test has judged it (dropped: the
+        candidates go on from the fixes without it), and the commit is decided on fixes
+        that count as evidence. Only the first fix's commit waits, by one fix.
+        """
+        return (self._lone_before_held(chain) and chain[0].pos < 1.0
+                and self._way_out_at_start(tree, chain, self._eps_of(tree)) >= 0)
+
+    def _way_out_at_start(self, tree: CandidateTree, chain: list[Node], eps: float) -> int:
+        """:meth:`_start_way_out` without asking whether the fix after is still held."""
         first = chain[0]
+        if first.pos <= 0.0:
+            # at A's start vertex: A is itself the road the path leaves that vertex by,
+            # the answer that holds whichever way the vehicle came; nothing to move
+            return -1
         after = chain[1].t if len(chain) > 1 else self.fix_time(first.seq + 1)
         if after is None or after - first.t < SPARSE_S:
             return -1
