@@ -64,6 +64,8 @@ from livematch.core._tree_kernel import (
     H_RCAP,
     H_T0,
     HEAD,
+    I_PARENT,
+    I_SEG,
     I_VIAE,
     K_PARENT,
     K_SEG,
@@ -524,6 +526,50 @@ class CandidateTree:
     def via(self, j: int) -> int:
         """The ``j``-th via of the tree (a row's are ``via_len`` from its ``via_start``)."""
         return self.ti.item(self._via_base() + j)
+
+    def live_along(self, slen: npt.NDArray[np.float64]) -> npt.NDArray[np.float64]:
+        """The live states' distances from their segments' starts (metres), in row order.
+
+        ``slen``: every segment's length (metres).
+        """
+        lo, hi = self.lo, self.hi
+        segs = self.ti[HEAD + ROW_I * lo + I_SEG:HEAD + ROW_I * hi:ROW_I]
+        pos = self.tf[ROW_F * lo + F_POS:ROW_F * hi:ROW_F]
+        out: npt.NDArray[np.float64] = pos * slen[segs]
+        return out
+
+    def live_before(self) -> npt.NDArray[np.int64]:
+        """Per live state (row order), the segment its route drove just before its own.
+
+        The last via of the step that reached the row, else (a step that stayed on its
+        segment) the same asked of its parent, up the tree; -1 where the tree keeps no
+        such segment (a root, or ancestors trimmed away). As
+        :func:`livematch.core.heading.node_before` on nodes.
+        """
+        ti = self.ti
+        lo, hi = self.lo, self.hi
+        rows = np.arange(lo, hi, dtype=np.int64)
+        own = ti[HEAD + ROW_I * rows + I_SEG].astype(np.int64)
+        out = np.full(len(rows), -1, np.int64)
+        todo = np.arange(len(rows))
+        at = rows.copy()
+        vb = self._via_base()
+        while len(todo):
+            r = at[todo]
+            end = ti[HEAD + ROW_I * r + I_VIAE].astype(np.int64)
+            start = np.where(r > 0, ti[HEAD + ROW_I * np.maximum(r - 1, 0) + I_VIAE], 0)
+            vias = end > start
+            out[todo[vias]] = ti[vb + end[vias] - 1]
+            rest = todo[~vias]
+            parent = ti[HEAD + ROW_I * r[~vias] + I_PARENT].astype(np.int64)
+            alive = parent >= 0
+            rest, parent = rest[alive], parent[alive]
+            pseg = ti[HEAD + ROW_I * parent + I_SEG]
+            other = pseg != own[rest]
+            out[rest[other]] = pseg[other]
+            todo = rest[~other]
+            at[todo] = parent[~other]
+        return out
 
     def costs(self) -> npt.NDArray[np.float64]:
         """The live states' path costs, in row order (a view)."""
