@@ -26,7 +26,6 @@ the meridian convergence at the fix (:meth:`~livematch.core.geometry.Projection.
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
 
 import numpy as np
 import numpy.typing as npt
@@ -108,7 +107,7 @@ def heading_charges(seg_geo: npt.NDArray[np.float64], segs: npt.NDArray[np.int32
     return out
 
 
-def state_charges(seg_geo: npt.NDArray[np.float64], slen: Sequence[float],
+def state_charges(seg_geo: npt.NDArray[np.float64],
                   segs: npt.NDArray[np.int32], along: npt.NDArray[np.float64],
                   before: npt.NDArray[np.int64], hx: float, hy: float, cost: float,
                   reach: float) -> npt.NDArray[np.float64]:
@@ -116,7 +115,6 @@ def state_charges(seg_geo: npt.NDArray[np.float64], slen: Sequence[float],
 
     Args:
         seg_geo: per segment ``ax, ay, bx - ax, by - ay`` (:func:`heading_charges`).
-        slen: per segment, its length (metres).
         segs: each state's segment.
         along: each state's distance from its segment's start (metres).
         before: each state's segment before its own on its route (the last one it
@@ -144,7 +142,7 @@ def state_charges(seg_geo: npt.NDArray[np.float64], slen: Sequence[float],
     Example (a heading east; states on a segment east, one west 3 m into its segment
     after a segment east, and one west 30 m in; reach 10 m):
         >>> geo = np.array([[0, 0, 50.0, 0], [50, 0, -50.0, 0]])
-        >>> c = state_charges(geo, [50.0, 50.0], np.array([0, 1, 1], np.int32),
+        >>> c = state_charges(geo, np.array([0, 1, 1], np.int32),
         ...                   np.array([20.0, 3.0, 30.0]), np.array([-1, 0, 0]),
         ...                   1.0, 0.0, 5.0, 10.0)
         >>> [round(float(v), 3) for v in c]
