@@ -19,6 +19,14 @@ receiver's course error at speed (a few degrees, from memory) because the road d
 straight segments: a vehicle on a curve, or turning at a junction between two fixes'
 segments, points some way off the segment it is matched to.
 
+Two corrections make it a ranking of the states at one fix rather than a verdict on
+each (:func:`state_charges`; docs/measured.md, "Session 19 (headingon)"): a state less
+than :data:`HEADING_REACH_SIGMAS` ``sigma_m`` into its segment pays the lesser of its own
+segment's charge and that of the segment its route came by (the fix's error along the
+road puts states past a corner the vehicle has not turned yet), and the charges are
+taken less the least of them (a heading that no state goes along, as after a turn round
+where the sweep has no U-turn, is no evidence for any one of them).
+
 Bearings are compared in the network's grid: the heading (from true north) is turned by
 the meridian convergence at the fix (:meth:`~livematch.core.geometry.Projection.north_bearing`).
 """

@@ -3787,10 +3787,10 @@ def _charge_heading(tree: CandidateTree, arrays: SweepArrays, slen: npt.NDArray[
     length. A state pays at most ``s.heading_cost``; the vehicle may be
     ``HEADING_REACH_SIGMAS * s.sigma_m`` along the road from it.
     The charge depends on a state's segment, its position and the segment its route came
-    by, all fixed when the step made the state, and on the fix
-    (:func:`livematch.core.heading.state_charges`), so adding it after the step equals
-    adding it to every offer the step made: no back-pointer and no reachable position
-    changes, only the costs later rankings read. The commit point the step's compiled
+    by, as the step made it (the parent it kept chosen without the charge), and on the
+    fix (:func:`livematch.core.heading.state_charges`): added after the step, it moves
+    no back-pointer of that step and no reachable position, only the costs later
+    rankings read (the parents later steps keep among them). The commit point the step's compiled
     call answered is the live states' deepest common ancestor, which no cost enters.
     """
     if tree.hi <= tree.lo:
