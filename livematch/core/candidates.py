@@ -538,8 +538,10 @@ class CandidateTree:
         out: npt.NDArray[np.float64] = pos * slen[segs]
         return out
 
-    def live_before(self) -> npt.NDArray[np.int64]:
+    def live_before(self, which: npt.NDArray[np.int64] | None = None) -> npt.NDArray[np.int64]:
         """Per live state (row order), the segment its route drove just before its own.
+
+        ``which``: only these live states (indices into the live block), in that order.
 
         The last via of the step that reached the row, else (a step that stayed on its
         segment) the same asked of its parent, up the tree; -1 where the tree keeps no
@@ -549,6 +551,8 @@ class CandidateTree:
         ti = self.ti
         lo, hi = self.lo, self.hi
         rows = np.arange(lo, hi, dtype=np.int64)
+        if which is not None:
+            rows = rows[which]
         own = ti[HEAD + ROW_I * rows + I_SEG].astype(np.int64)
         out = np.full(len(rows), -1, np.int64)
         todo = np.arange(len(rows))

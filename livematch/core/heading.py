@@ -34,6 +34,7 @@ the meridian convergence at the fix (:meth:`~livematch.core.geometry.Projection.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 
 import numpy as np
 import numpy.typing as npt
@@ -117,7 +118,9 @@ def heading_charges(seg_geo: npt.NDArray[np.float64], segs: npt.NDArray[np.int32
 
 def state_charges(seg_geo: npt.NDArray[np.float64],
                   segs: npt.NDArray[np.int32], along: npt.NDArray[np.float64],
-                  before: npt.NDArray[np.int64], hx: float, hy: float, cost: float,
+                  before: npt.NDArray[np.int64] | Callable[[npt.NDArray[np.int64]],
+                                                           npt.NDArray[np.int64]],
+                  hx: float, hy: float, cost: float,
                   reach: float) -> npt.NDArray[np.float64]:
     """The heading charge of each candidate state at one fix, relative to the best.
 
@@ -126,7 +129,9 @@ def state_charges(seg_geo: npt.NDArray[np.float64],
         segs: each state's segment.
         along: each state's distance from its segment's start (metres).
         before: each state's segment before its own on its route (the last one it
-            drove onto its segment from), -1 where none is known.
+            drove onto its segment from), -1 where none is known; or a function that
+            gives it for the states at the indices it is passed (asked only for the
+            states less than ``reach`` into their segments: walking a tree up is dear).
         hx, hy: the heading's unit vector in the grid.
         cost: ``MatchSettings.heading_cost``.
         reach: how far along the road the vehicle may be from a state (metres;
@@ -159,9 +164,12 @@ def state_charges(seg_geo: npt.NDArray[np.float64],
     out = heading_charges(seg_geo, segs, hx, hy, cost)
     if len(out) == 0:
         return out
-    near = np.nonzero((along < reach) & (before >= 0))[0]
+    near = np.nonzero(along < reach)[0]
     if len(near):
-        alt = heading_charges(seg_geo, before[near].astype(np.int32), hx, hy, cost)
+        prev = before(near) if callable(before) else before[near]
+        known = prev >= 0
+        near, prev = near[known], prev[known]
+        alt = heading_charges(seg_geo, prev.astype(np.int32), hx, hy, cost)
         out[near] = np.minimum(out[near], alt)
     out -= out.min()
     return out

@@ -3798,7 +3798,7 @@ def _charge_heading(tree: CandidateTree, arrays: SweepArrays, slen: npt.NDArray[
     segs = tree.ti[K_SEG + ROW_I * tree.lo:K_SEG + ROW_I * tree.hi:ROW_I]
     costs = tree.costs()
     costs += state_charges(arrays.seg_geo, segs, tree.live_along(slen),
-                           tree.live_before(), head[0], head[1], s.heading_cost,
+                           tree.live_before, head[0], head[1], s.heading_cost,
                            HEADING_REACH_SIGMAS * s.sigma_m)
 
 
