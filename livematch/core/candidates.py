@@ -549,30 +549,25 @@ class CandidateTree:
         :func:`livematch.core.heading.node_before` on nodes.
         """
         ti = self.ti
-        lo, hi = self.lo, self.hi
-        rows = np.arange(lo, hi, dtype=np.int64)
-        if which is not None:
-            rows = rows[which]
-        own = ti[HEAD + ROW_I * rows + I_SEG].astype(np.int64)
-        out = np.full(len(rows), -1, np.int64)
-        todo = np.arange(len(rows))
-        at = rows.copy()
+        lo = self.lo
+        idx = range(self.hi - lo) if which is None else which.tolist()
         vb = self._via_base()
-        while len(todo):
-            r = at[todo]
-            end = ti[HEAD + ROW_I * r + I_VIAE].astype(np.int64)
-            start = np.where(r > 0, ti[HEAD + ROW_I * np.maximum(r - 1, 0) + I_VIAE], 0)
-            vias = end > start
-            out[todo[vias]] = ti[vb + end[vias] - 1]
-            rest = todo[~vias]
-            parent = ti[HEAD + ROW_I * r[~vias] + I_PARENT].astype(np.int64)
-            alive = parent >= 0
-            rest, parent = rest[alive], parent[alive]
-            pseg = ti[HEAD + ROW_I * parent + I_SEG]
-            other = pseg != own[rest]
-            out[rest[other]] = pseg[other]
-            todo = rest[~other]
-            at[todo] = parent[~other]
+        out = np.full(len(idx), -1, np.int64)
+        for j, k in enumerate(idx):
+            r = lo + k
+            own = ti.item(HEAD + ROW_I * r + I_SEG)
+            while True:  # a plain loop: a few rows, each a few steps up (numpy per row costs more)
+                end = ti.item(HEAD + ROW_I * r + I_VIAE)
+                if end > (ti.item(HEAD + ROW_I * (r - 1) + I_VIAE) if r > 0 else 0):
+                    out[j] = ti.item(vb + end - 1)
+                    break
+                r = ti.item(HEAD + ROW_I * r + I_PARENT)
+                if r < 0:
+                    break
+                seg = ti.item(HEAD + ROW_I * r + I_SEG)
+                if seg != own:
+                    out[j] = seg
+                    break
         return out
 
     def costs(self) -> npt.NDArray[np.float64]:
