@@ -34,19 +34,24 @@ def load_extract(name: str) -> RoadNetwork:
 
 
 def simulate_drives(network: RoadNetwork, drives: int, duration_s: float,
-                    seed: list[int]) -> list[Drive]:
-    """``drives`` simulated drives of ``duration_s`` seconds (vehicles ``sim-000``, ...)."""
+                    seed: list[int], heading_sigma_deg: float | None = None) -> list[Drive]:
+    """``drives`` simulated drives of ``duration_s`` seconds (vehicles ``sim-000``, ...);
+    with ``heading_sigma_deg`` their fixes report a course (``DriveSettings``'s, drawn
+    after everything else: the drives and fixes are the same)."""
     allowed = drivable_segments(network)
     return [simulate_drive(network, np.random.default_rng([*seed, i]), f"sim-{i:03d}", 1.7e9,
-                           DriveSettings(duration_s=duration_s), allowed)
+                           DriveSettings(duration_s=duration_s,
+                                         heading_sigma_deg=heading_sigma_deg), allowed)
             for i in range(drives)]
 
 
 def drive_fixes(network: RoadNetwork, drives: int, duration_s: float,
-                seed: list[int]) -> list[list[Fix]]:
-    """``drives`` simulated drives of ``duration_s`` seconds, as 1 Hz fixes each."""
-    return [[Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy) for o in observe(d, 1)]
-            for d in simulate_drives(network, drives, duration_s, seed)]
+                seed: list[int], heading_sigma_deg: float | None = None) -> list[list[Fix]]:
+    """``drives`` simulated drives of ``duration_s`` seconds, as 1 Hz fixes each (with a
+    reported course where ``heading_sigma_deg`` is given and the vehicle moves)."""
+    return [[Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy, None, o.heading)
+             for o in observe(d, 1)]
+            for d in simulate_drives(network, drives, duration_s, seed, heading_sigma_deg)]
 
 
 def write_report(out_dir: str, stem: str, text: str, data: Any) -> None:

@@ -17,6 +17,11 @@ drives as ``--what tracker``, seed 2009/5), a fresh pipeline per drive that shar
 fleet's prepared routes, then ``flush``. The set-up is this script's own
 (``bench/speed.py`` beside it); each tree only supplies ``livematch``.
 
+``--heading-sigma DEG`` (``--what tracker``): the drives' fixes report a course over
+ground (``DriveSettings.heading_sigma_deg``); a setting such as ``heading_cost`` is then
+compared by giving the two trees different defaults (a throwaway checkout with the
+default changed).
+
 Usage::
 
     git worktree add /tmp/base <rev>; ln -s "$PWD/.venv" /tmp/base/.venv
@@ -37,7 +42,8 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 
 
-def worker(extract: str, drives: int, duration: float, what: str = "tracker") -> None:
+def worker(extract: str, drives: int, duration: float, what: str = "tracker",
+           heading_sigma: float | None = None) -> None:
     """Serve requests ``<drive> <every>`` on stdin with ``[cpu_s, fixes]`` on stdout."""
     sys.path.insert(0, str(Path(__file__).resolve().parent))
     if what == "pipeline":
@@ -50,7 +56,7 @@ def worker(extract: str, drives: int, duration: float, what: str = "tracker") ->
     from livematch.core.tracker import Tracker
 
     net = load_extract(extract)
-    runs = drive_fixes(net, drives, duration, [2009, 5])
+    runs = drive_fixes(net, drives, duration, [2009, 5], heading_sigma)
     warm_up()
     print("ready", flush=True)
     for line in sys.stdin:
@@ -93,14 +99,20 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--what", choices=("tracker", "pipeline"), default="tracker",
                     help="tracker: Tracker.update (default); pipeline: Pipeline.handle on "
                     "JSON messages (decode, route monitor, fences, records)")
+    ap.add_argument("--heading-sigma", type=float, default=None, metavar="DEG",
+                    help="--what tracker: fixes report their course over ground with this "
+                    "error (degrees; DriveSettings.heading_sigma_deg; both trees' settings "
+                    "decide whether it is read); default: no heading, as before")
     ap.add_argument("--worker", action="store_true", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.worker:
-        worker(args.extract, args.drives, args.duration, args.what)
+        worker(args.extract, args.drives, args.duration, args.what, args.heading_sigma)
         return 0
     me = [sys.executable, str(Path(__file__).resolve()), "--base", args.base, "--worker",
           "--extract", args.extract, "--drives", str(args.drives),
           "--duration", str(args.duration), "--what", args.what]
+    if args.heading_sigma is not None:
+        me += ["--heading-sigma", str(args.heading_sigma)]
 
     sys.path.insert(0, str(Path(__file__).resolve().parent))
     from _pair import WorkerPair

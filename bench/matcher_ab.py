@@ -60,6 +60,10 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--heading-sigma", type=float, default=None, metavar="DEG",
                     help="fixes report their course over ground with this error (degrees; "
                          "DriveSettings.heading_sigma_deg); default: no heading, as before")
+    ap.add_argument("--skip-base", action="store_true",
+                    help="match with --matcher only (the base run of the defaults left out, "
+                         "e.g. when its figures are already published for these drives): "
+                         "no won/lost counts")
     args = ap.parse_args(argv)
     matcher = acc.matcher_settings(args.matcher)
     settings = DriveSettings(duration_s=args.duration, sigma_m=5.0, tau_s=45.0,
@@ -83,6 +87,8 @@ def main(argv: list[str] | None = None) -> int:
                 row["heading_sigma"] = args.heading_sigma
             oks = {}
             for label, m in (("base", {}), ("new", matcher)):
+                if label == "base" and args.skip_base:
+                    continue
                 run = acc.run_inproc(network, records, xy, times, m)
                 sc = acc.score(network, fleet, run)
                 row[label] = {"live": round(sc["road_dir_live"], 4),
@@ -90,7 +96,7 @@ def main(argv: list[str] | None = None) -> int:
                               "rmf": round(100 * sc["route_mismatch"], 2),
                               "lag_p95": sc["commit_lag_p95_s"]}
                 oks[label] = (_oks(network, fleet, run, True), _oks(network, fleet, run, False))
-            for j, what in enumerate(("final", "live")):
+            for j, what in enumerate(("final", "live") if "base" in oks else ()):
                 a, b = oks["base"][j], oks["new"][j]
                 row[f"{what}_won"] = sum(1 for x, y in zip(a, b, strict=True) if y and not x)
                 row[f"{what}_lost"] = sum(1 for x, y in zip(a, b, strict=True) if x and not y)

@@ -591,6 +591,49 @@ class CandidateTree:
         """The ``j``-th via of the tree (a row's are ``via_len`` from its ``via_start``)."""
         return self.ti.item(self._via_base() + j)
 
+    def live_along(self, slen: npt.NDArray[np.float64]) -> npt.NDArray[np.float64]:
+        """The live states' distances from their segments' starts (metres), in row order.
+
+        ``slen``: every segment's length (metres).
+        """
+        lo, hi = self.lo, self.hi
+        segs = self.ti[HEAD + ROW_I * lo + I_SEG:HEAD + ROW_I * hi:ROW_I]
+        pos = self.tf[ROW_F * lo + F_POS:ROW_F * hi:ROW_F]
+        out: npt.NDArray[np.float64] = pos * slen[segs]
+        return out
+
+    def live_before(self, which: npt.NDArray[np.int64] | None = None) -> npt.NDArray[np.int64]:
+        """Per live state (row order), the segment its route drove just before its own.
+
+        ``which``: only these live states (indices into the live block), in that order.
+
+        The last via of the step that reached the row, else (a step that stayed on its
+        segment) the same asked of its parent, up the tree; -1 where the tree keeps no
+        such segment (a root, or ancestors trimmed away). As
+        :func:`livematch.core.heading.node_before` on nodes.
+        """
+        ti = self.ti
+        lo = self.lo
+        idx = range(self.hi - lo) if which is None else which.tolist()
+        vb = self._via_base()
+        out = np.full(len(idx), -1, np.int64)
+        for j, k in enumerate(idx):
+            r = lo + k
+            own = ti.item(HEAD + ROW_I * r + I_SEG)
+            while True:  # a plain loop: a few rows, each a few steps up (numpy per row costs more)
+                end = ti.item(HEAD + ROW_I * r + I_VIAE)
+                if end > (ti.item(HEAD + ROW_I * (r - 1) + I_VIAE) if r > 0 else 0):
+                    out[j] = ti.item(vb + end - 1)
+                    break
+                r = ti.item(HEAD + ROW_I * r + I_PARENT)
+                if r < 0:
+                    break
+                seg = ti.item(HEAD + ROW_I * r + I_SEG)
+                if seg != own:
+                    out[j] = seg
+                    break
+        return out
+
     def costs(self) -> npt.NDArray[np.float64]:
         """The live states' path costs, in row order (a view)."""
         lb = self._live_base()

@@ -19,6 +19,14 @@ receiver's course error at speed (a few degrees, from memory) because the road d
 straight segments: a vehicle on a curve, or turning at a junction between two fixes'
 segments, points some way off the segment it is matched to.
 
+Two corrections make it a ranking of the states at one fix rather than a verdict on
+each (:func:`state_charges`; docs/measured.md, "Session 19 (headingon)"): a state less
+than :data:`HEADING_REACH_SIGMAS` ``sigma_m`` into its segment pays the lesser of its own
+segment's charge and that of the segment its route came by (the fix's error along the
+road puts states past a corner the vehicle has not turned yet), and the charges are
+taken less the least of them (a heading that no state goes along, as after a turn round
+where the sweep has no U-turn, is no evidence for any one of them).
+
 Bearings are compared in the network's grid: the heading (from true north) is turned by
 the meridian convergence at the fix (:meth:`~livematch.core.geometry.Projection.north_bearing`).
 """
@@ -26,13 +34,16 @@ the meridian convergence at the fix (:meth:`~livematch.core.geometry.Projection.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 
 import numpy as np
 import numpy.typing as npt
 
 from livematch.core.geometry import Projection
+from livematch.core.sweep import Node
 
-__all__ = ["HEADING_MIN_MPS", "HEADING_SPREAD_DEG", "grid_heading", "heading_charges"]
+__all__ = ["HEADING_MIN_MPS", "HEADING_REACH_SIGMAS", "HEADING_SPREAD_DEG", "grid_heading",
+           "heading_charges", "node_before", "state_charges"]
 
 #: Width of the charge's well, degrees (judgement: road geometry and corners, not the
 #: receiver, set it; see the module's docstring).
@@ -41,6 +52,11 @@ HEADING_SPREAD_DEG = 20.0
 #: A heading is ignored where the same fix reports a speed below this, m/s: a receiver's
 #: course at a stand is noise (common practice to leave it out; the value from memory).
 HEADING_MIN_MPS = 1.0
+
+#: How far along the road from a state the vehicle may be when the state's fix was
+#: taken, in units of ``MatchSettings.sigma_m``: a fix's error along the road is that of
+#: one axis, and two standard deviations hold about 95 % of it (common practice).
+HEADING_REACH_SIGMAS = 2.0
 
 
 def grid_heading(projection: Projection, x: float, y: float,
@@ -98,3 +114,80 @@ def heading_charges(seg_geo: npt.NDArray[np.float64], segs: npt.NDArray[np.int32
     spread = math.radians(spread_deg)
     out: npt.NDArray[np.float64] = cost * -np.expm1(-angle * angle / (2.0 * spread * spread))
     return out
+
+
+def state_charges(seg_geo: npt.NDArray[np.float64],
+                  segs: npt.NDArray[np.int32], along: npt.NDArray[np.float64],
+                  before: npt.NDArray[np.int64] | Callable[[npt.NDArray[np.int64]],
+                                                           npt.NDArray[np.int64]],
+                  hx: float, hy: float, cost: float,
+                  reach: float) -> npt.NDArray[np.float64]:
+    """The heading charge of each candidate state at one fix, relative to the best.
+
+    Args:
+        seg_geo: per segment ``ax, ay, bx - ax, by - ay`` (:func:`heading_charges`).
+        segs: each state's segment.
+        along: each state's distance from its segment's start (metres).
+        before: each state's segment before its own on its route (the last one it
+            drove onto its segment from), -1 where none is known; or a function that
+            gives it for the states at the indices it is passed (asked only for the
+            states less than ``reach`` into their segments: walking a tree up is dear).
+        hx, hy: the heading's unit vector in the grid.
+        cost: ``MatchSettings.heading_cost``.
+        reach: how far along the road the vehicle may be from a state (metres;
+            ``HEADING_REACH_SIGMAS * sigma_m``).
+
+    Two corrections to :func:`heading_charges` of the state's own segment, each a
+    case where that charge is evidence against the wrong thing (docs/measured.md,
+    "Session 19 (headingon)"):
+
+    - A state less than ``reach`` into its segment may be a vehicle still on the
+      segment its route came by (the fix's error along the road puts the state past a
+      corner the vehicle has not turned yet): it pays the lesser of the two charges.
+      Charged for its own segment alone, the state that turned the corner on time paid
+      the whole charge at the fix before the turn, and a path that drove on past the
+      corner onto a short segment and turned round there came out cheaper.
+    - The charges are taken relative to the least of them: the heading ranks the
+      states, and where none of them goes its way (the vehicle turned round where the
+      sweep allows no U-turn, or drives a road the tree does not hold) it is no
+      evidence for any one of them.
+
+    Example (a heading east; states on a segment east, one west 3 m into its segment
+    after a segment east, and one west 30 m in; reach 10 m):
+        >>> geo = np.array([[0, 0, 50.0, 0], [50, 0, -50.0, 0]])
+        >>> c = state_charges(geo, np.array([0, 1, 1], np.int32),
+        ...                   np.array([20.0, 3.0, 30.0]), np.array([-1, 0, 0]),
+        ...                   1.0, 0.0, 5.0, 10.0)
+        >>> [round(float(v), 3) for v in c]
+        [0.0, 0.0, 5.0]
+    """
+    out = heading_charges(seg_geo, segs, hx, hy, cost)
+    if len(out) == 0:
+        return out
+    near = np.nonzero(along < reach)[0]
+    if len(near):
+        prev = before(near) if callable(before) else before[near]
+        known = prev >= 0
+        near, prev = near[known], prev[known]
+        alt = heading_charges(seg_geo, prev.astype(np.int32), hx, hy, cost)
+        out[near] = np.minimum(out[near], alt)
+    out -= out.min()
+    return out
+
+
+def node_before(node: Node) -> int:
+    """The segment ``node``'s route drove just before its own, -1 if none is known.
+
+    The last segment driven between its parent and it, else the segment of the nearest
+    ancestor on another segment.
+    """
+    if node.via:
+        return node.via[-1]
+    p = node.parent
+    while p is not None:
+        if p.seg != node.seg:
+            return p.seg
+        if p.via:
+            return p.via[-1]
+        p = p.parent
+    return -1

@@ -609,11 +609,15 @@ class MatchSettings:
             ``1 - exp(-d^2 / (2 s^2))``, ``d`` the angle between the segment and the
             heading compared in the network's grid (the heading turned by the meridian
             convergence at the fix), ``s`` = :data:`livematch.core.heading.HEADING_SPREAD_DEG`
-            (:mod:`livematch.core.heading`). 0, the default, is off: outputs are those of
-            a tracker without the rule, with or without headings. The charge depends on
-            the state's segment and the fix alone, so it is the same for every way of
-            reaching a state: it changes no back-pointer of the step that adds it, and
-            never what is reachable (the Fréchet decision and its certificate); it
+            (:mod:`livematch.core.heading`); a state less than 2 ``sigma_m`` into its
+            segment pays the lesser of that and the charge of the segment its route
+            came by, and every charge is taken less the least one at the fix
+            (:func:`livematch.core.heading.state_charges`). 0, the default, is off:
+            outputs are those of a tracker without the rule, with or without headings.
+            The charge is added after the step, to the states as the step made them
+            (segment, position, and the route in of the parent each kept): it changes
+            no back-pointer of the step that adds it, and never what is reachable (the
+            Fréchet decision and its certificate); it
             orders the candidates the decision keeps, in every later ranking (best
             candidate, live score, forced and flushed commits, the parents a later
             step, swept or bridged, keeps). A heading is ignored where the fix also

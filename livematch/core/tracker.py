@@ -81,6 +81,7 @@ from array import array
 from collections.abc import Callable, Iterator
 
 import numpy as np
+import numpy.typing as npt
 
 from livematch.core._direct import Direct
 from livematch.core._fix_kernel import all_within
@@ -97,7 +98,12 @@ from livematch.core.candidates import DIED, CandidateTree
 from livematch.core.events import Assignment, Commit, Event, Filtered, HeldAssignment, MatchedFix
 from livematch.core.fastsweep import SweepArrays, sweep_arrays
 from livematch.core.fix import Fix
-from livematch.core.heading import HEADING_MIN_MPS, grid_heading, heading_charges
+from livematch.core.heading import (
+    HEADING_MIN_MPS,
+    HEADING_REACH_SIGMAS,
+    grid_heading,
+    state_charges,
+)
 from livematch.core.network import RoadNetwork
 from livematch.core.routing import connect, small_loop
 from livematch.core.settings import MatchSettings
@@ -749,7 +755,7 @@ class Tracker:
                     if tops is not None and ask >= 0:
                         tops[level] = (tree, first, ask, top)
                     if head is not None:
-                        _charge_heading(tree, arrays, head, s.heading_cost)
+                        _charge_heading(tree, arrays, self.network.seg_len, head, s)
                     continue
             # the window died (or the step is a gap): bridge, else start afresh (below)
             bridged.append(level)
@@ -796,7 +802,7 @@ class Tracker:
                 level.tree_seq = level.trim_seq = level.cert_seq = seq
                 level.cert_t = fix.t
             if head is not None:
-                _charge_heading(level.tree, arrays, head, s.heading_cost)
+                _charge_heading(level.tree, arrays, self.network.seg_len, head, s)
         for level in bridged:
             if id(level) in salvaged:
                 salvage.append((level, salvaged[id(level)]))
@@ -3835,24 +3841,27 @@ def _median(values: list[float]) -> float:
     return ordered[mid] if n % 2 else (ordered[mid - 1] + ordered[mid]) / 2
 
 
-def _charge_heading(tree: CandidateTree, arrays: SweepArrays, head: tuple[float, float],
-                    cost: float) -> None:
+def _charge_heading(tree: CandidateTree, arrays: SweepArrays, slen: npt.NDArray[np.float64],
+                    head: tuple[float, float], s: MatchSettings) -> None:
     """Add the heading charge (``MatchSettings.heading_cost``) to the new live states' costs.
 
-    ``head``: the fix's heading as a unit vector in the grid. The charge depends on a
-    state's segment and the fix alone (:func:`livematch.core.heading.heading_charges`),
-    so adding it after the step equals adding it to every offer the step made: no
-    back-pointer and no reachable position changes, only the costs later rankings read.
-    The commit point the step's compiled call answered is the live states' deepest
-    common ancestor, which no cost enters.
+    ``head``: the fix's heading as a unit vector in the grid; ``slen``: every segment's
+    length. A state pays at most ``s.heading_cost``; the vehicle may be
+    ``HEADING_REACH_SIGMAS * s.sigma_m`` along the road from it.
+    The charge depends on a state's segment, its position and the segment its route came
+    by, as the step made it (the parent it kept chosen without the charge), and on the
+    fix (:func:`livematch.core.heading.state_charges`): added after the step, it moves
+    no back-pointer of that step and no reachable position, only the costs later
+    rankings read (the parents later steps keep among them). The commit point the step's compiled
+    call answered is the live states' deepest common ancestor, which no cost enters.
     """
-    lo = tree.lo
-    hi = tree.hi
-    if hi <= lo:
+    if tree.hi <= tree.lo:
         return
-    segs = tree.ti[K_SEG + ROW_I * lo:K_SEG + ROW_I * hi:ROW_I]
+    segs = tree.ti[K_SEG + ROW_I * tree.lo:K_SEG + ROW_I * tree.hi:ROW_I]
     costs = tree.costs()
-    costs += heading_charges(arrays.seg_geo, segs, head[0], head[1], cost)
+    costs += state_charges(arrays.seg_geo, segs, tree.live_along(slen),
+                           tree.live_before, head[0], head[1], s.heading_cost,
+                           HEADING_REACH_SIGMAS * s.sigma_m)
 
 
 def _copy_level(level: Level) -> Level:
