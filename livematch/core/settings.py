@@ -666,6 +666,20 @@ class MatchSettings:
             than eps and back between two fixes is committed as turning at its mouth
             (route mismatch only: every fix still lies within eps of its point).
             Commits only (final answers and the path); off by default.
+        no_roll_back: in a sweep step (fixes at most ``gap_s`` apart), a candidate that
+            stays on its segment is reported no earlier on it than its parent: the
+            fix's projection is clamped into the reachable part of the free interval
+            from the parent's position on (``floor`` of
+            :func:`livematch.core.sweep._offer`); what is reachable, and so the
+            Fréchet decision and its certificate, is unchanged. Why: over a stand at
+            the end of a road the whole segment stays reachable, and the drive back
+            along its twin afterwards lies on the same line; a lineage that never
+            turns round answers it by sliding back along the segment it came in by,
+            pays no U-turn charge, and so is the cheaper, until the fixes leave eps
+            and the next commit does not join on (docs/measured.md "Session 18
+            (fleet5c)", "on path, > 30 m"). Held at its parent's position, such a
+            lineage pays the distance term for the drive back and the one that
+            turned round wins. Off by default.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -726,6 +740,7 @@ class MatchSettings:
     heading_cost: float = 0.0
     start_way_out: bool = False
     stand_loops_sparse: bool = False
+    no_roll_back: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -764,7 +779,7 @@ class MatchSettings:
                      "end_stand_sparse", "bridge_error_corr", "stand_way_out",
                      "stand_pace", "bridge_error_cross", "smallest_commits",
                      "start_roots", "flush_scored", "end_stand_centre",
-                     "start_way_out", "stand_loops_sparse"):
+                     "start_way_out", "stand_loops_sparse", "no_roll_back"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

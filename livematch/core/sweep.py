@@ -120,6 +120,9 @@ class StepContext:
     pace_free: bool = False
     error_cross: bool = False
     speed_route: float = -1.0
+    # a state that stays on its segment is reported no earlier on it than its parent
+    # (MatchSettings.no_roll_back; the sweep only, see sweep_step)
+    no_roll_back: bool = False
 
     @classmethod
     def between(
@@ -140,7 +143,8 @@ class StepContext:
                    1.0 / (2.0 * settings.sigma_m * settings.sigma_m), 1.0 / settings.beta_m,
                    settings.turn_back_cost, 1.0 / settings.motion_m, 1.0 / settings.pace_m,
                    settings.street_turns or (stood and settings.stop_turns),
-                   settings.street_turn_cost, turn_near)
+                   settings.street_turn_cost, turn_near,
+                   no_roll_back=settings.no_roll_back)
 
 
 def free_interval(
@@ -341,6 +345,12 @@ def sweep_step(live: dict[int, Node], ctx: StepContext) -> dict[int, Node]:
 
     Returns the states at p1; empty when the window is no longer within eps (the
     decision at this level has died).
+
+    With ``ctx.no_roll_back`` (``MatchSettings.no_roll_back``) a state offered along its
+    own segment is reported no earlier on it than the state it comes from (``_offer``'s
+    ``floor``, the parent's position; the reachable part and ``low`` are unchanged, so
+    the decision is the same): a lineage that never turns round can no longer answer a
+    drive back along the twin on the way in, a twin's geometry being the same line.
     """
     view = ctx.view
     vx, vy, sf, st, out, twin, ok = (
@@ -357,7 +367,7 @@ def sweep_step(live: dict[int, Node], ctx: StepContext) -> dict[int, Node]:
         lo, hi = free_interval(vx[a], vy[a], vx[b], vy[b], x1, y1, eps2)
         low = node.low if node.low > lo else lo
         if low <= hi:
-            _offer(new, ctx, seg, low, hi, node, ())
+            _offer(new, ctx, seg, low, hi, node, (), node.pos if ctx.no_roll_back else -1.0)
         w = white.get(b)
         if w is None:
             w = free_interval(x0, y0, x1, y1, vx[b], vy[b], eps2)
