@@ -97,7 +97,7 @@ def pack(live: dict[int, Node], ctx: StepContext) -> np.ndarray:
     """The kernel's ``live`` array, as fast_sweep_step builds it."""
     flat: list[float] = [ctx.eps, ctx.x0, ctx.y0, ctx.x1, ctx.y1, ctx.chord,
                          ctx.inv_two_sigma2, ctx.inv_beta, ctx.turn_back_cost, ctx.motion_cost,
-                         float(ctx.no_roll_back)]
+                         ctx.roll_back]
     for seg, n in live.items():
         flat += (seg, n.seg, n.low, n.pos, n.x, n.y, n.cost)
     return np.array(flat, dtype=np.float64)

@@ -280,14 +280,16 @@ def test_fast_sweep_step_reads_keys_and_seg_like_the_reference() -> None:
     assert east in new
 
 
+@pytest.mark.parametrize("slack", [0.0, 3.0])
 @pytest.mark.parametrize("eps", EPS_LEVELS)
-def test_fast_sweep_step_no_roll_back(eps: float) -> None:
+def test_fast_sweep_step_no_roll_back(eps: float, slack: float) -> None:
     """MatchSettings.no_roll_back: the compiled step equals the reference bit for bit,
     on a stand near the end of a dead end with the drive back down it, a noisy grid and
     an OSM drive; the rule moves some reported position (so it is exercised), and a
-    state that stays on its segment is never behind its parent but where the parent's
-    position lies past the reachable part (then at its top: ``free_interval``)."""
-    on = MatchSettings(no_roll_back=True)
+    state that stays on its segment is never more than ``roll_back_slack_m`` behind its
+    parent but where that lies past the reachable part (then at its top:
+    ``free_interval``)."""
+    on = MatchSettings(no_roll_back=True, roll_back_slack_m=slack)
     net = dead_end()
     rng = np.random.default_rng(5)
     # up the cul-de-sac, a 20 s stand near its end with scatter, back down and on
@@ -301,7 +303,7 @@ def test_fast_sweep_step_no_roll_back(eps: float) -> None:
     for live in with_rule:
         for n in live.values():
             if n.parent is not None and not n.via and n.parent.seg == n.seg \
-                    and n.pos < n.parent.pos:
+                    and n.pos < n.parent.pos - slack / float(net.seg_len[n.seg]):
                 (ax, ay), (bx, by) = xy[sf[n.seg]], xy[st[n.seg]]
                 px, py = pts[n.seq - 1]
                 assert n.pos == free_interval(ax, ay, bx, by, px, py, eps * eps)[1]

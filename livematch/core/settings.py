@@ -741,6 +741,7 @@ class MatchSettings:
     start_way_out: bool = False
     stand_loops_sparse: bool = False
     no_roll_back: bool = False
+    roll_back_slack_m: float = 0.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -766,7 +767,8 @@ class MatchSettings:
             out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
         for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s",
                      "spike_cost", "street_turn_cost", "join_detour", "live_keep",
-                     "live_keep_stand_s", "stand_short_m", "speed_pace_m", "heading_cost"):
+                     "live_keep_stand_s", "stand_short_m", "speed_pace_m", "heading_cost",
+                     "roll_back_slack_m"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))

@@ -3560,14 +3560,14 @@ def _same(a: tuple[float, ...], b: tuple[float, ...]) -> bool:
 def _weights_of(s: MatchSettings) -> tuple[float, float, float, float, float]:
     """The sweep kernel's step scalars after eps, x0, y0, x1, y1, chord (StepContext).
 
-    The weights of the cost terms, then ``no_roll_back`` as 1.0 or 0.0.
+    The weights of the cost terms, then ``StepContext.roll_back`` (-1: the rule off).
 
     Written into the network's step scratch when another tracker's settings wrote it
     last (``SweepArrays.step_for``): a tuple per tracker was about 140 bytes, and a
     module-level memo would be state outside the core's objects.
     """
     return (1.0 / (2.0 * s.sigma_m * s.sigma_m), 1.0 / s.beta_m, s.turn_back_cost,
-            1.0 / s.motion_m, 1.0 if s.no_roll_back else 0.0)
+            1.0 / s.motion_m, s.roll_back_slack_m if s.no_roll_back else -1.0)
 
 
 def motion_gain(dt: float, tau: float) -> float:
