@@ -681,17 +681,17 @@ class MatchSettings:
             lineage pays the distance term for the drive back and the one that
             turned round wins. Off by default: on bench/fleetmiss.py's decision runs
             (80 drives, seeds 31 / 77, both models, both extracts, 1 and 5 s) live
-            road+dir rises in 13 of 16 cells and the error median falls in all 16 (by
-            0.03-0.30 m: a stand's answers held at the end of the segment into its
-            vertex), but final road+dir falls in 10 and route mismatch rises in 8, the
-            roads the map draws alongside the driven one taken the other way
-            (docs/measured.md "Session 19 (fleet1hz)"). At 15 and 30 s every step is
-            bridged and the rule cannot act.
+            road+dir rises in 12 of 16 cells and the matched-position error median
+            falls in all 16 (by 0.03-0.29 m), but final road+dir falls in 11 and route
+            mismatch rises in 10; the largest losses are roads the map draws alongside
+            the driven one, taken the other way (docs/measured.md "Session 19
+            (fleet1hz)"). At 15 and 30 s every step is bridged and the rule cannot
+            act.
         roll_back_slack_m: with ``no_roll_back``, a candidate may be reported up to this
             many metres behind its parent on the same segment (0, the default: not at
             all). At 3 m the rule barely acts (docs/measured.md "Session 19
-            (fleet1hz)"): what it changes at 0 is the fix-to-fix jitter, not the drive
-            back.
+            (fleet1hz)"): what it changes at 0 is mostly the fix-to-fix jitter, not the
+            drive back.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
