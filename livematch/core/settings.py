@@ -692,6 +692,15 @@ class MatchSettings:
             all). At 3 m the rule barely acts (docs/measured.md "Session 19
             (fleet1hz)"): what it changes at 0 is mostly the fix-to-fix jitter, not the
             drive back.
+        smallest_agrees: a level whose candidates agree leaves the commit to a smaller
+            level that covers the same pending fixes (``Tracker._defers``), whether or
+            not its own stretch would join the committed path; the smallest covering
+            level commits when its own candidates agree, or by a forced commit
+            (``max_lag_*``). Why: at 1 s, after a turn round at a dead end, a 30 m tree
+            left with one candidate (a lineage that never turned, held at its lowest
+            reachable point on the way in) agrees with itself at once and settles the
+            fixes 8-29 m from them, where the 15 m level's candidates follow the fixes
+            (docs/measured.md "Session 19 (fleet1hz)"). Off by default.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -754,6 +763,7 @@ class MatchSettings:
     stand_loops_sparse: bool = False
     no_roll_back: bool = False
     roll_back_slack_m: float = 0.0
+    smallest_agrees: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -793,7 +803,8 @@ class MatchSettings:
                      "end_stand_sparse", "bridge_error_corr", "stand_way_out",
                      "stand_pace", "bridge_error_cross", "smallest_commits",
                      "start_roots", "flush_scored", "end_stand_centre",
-                     "start_way_out", "stand_loops_sparse", "no_roll_back"):
+                     "start_way_out", "stand_loops_sparse", "no_roll_back",
+                     "smallest_agrees"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

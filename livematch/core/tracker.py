@@ -1772,6 +1772,9 @@ class Tracker:
             >>> tracker._defers(tracker.levels[0], 0, tracker.levels)
             False
         """
+        if self.settings.smallest_agrees and any(
+                lv.eps < level.eps for lv in covering if lv is not level):
+            return True  # MatchSettings.smallest_agrees: the smallest covering level decides
         last = self.last_commit
         if last is None:
             return False
