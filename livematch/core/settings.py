@@ -682,7 +682,7 @@ class MatchSettings:
             turned round wins. Off by default: on bench/fleetmiss.py's decision runs
             (80 drives, seeds 31 / 77, both models, both extracts, 1 and 5 s) live
             road+dir rises in 12 of 16 cells and the matched-position error median
-            falls in all 16 (by 0.03-0.29 m), but final road+dir falls in 11 and route
+            falls in all 16 (by 0.03-0.30 m), but final road+dir falls in 11 and route
             mismatch rises in 10; the largest losses are roads the map draws alongside
             the driven one, taken the other way (docs/measured.md "Session 19
             (fleet1hz)"). At 15 and 30 s every step is bridged and the rule cannot
