@@ -96,7 +96,8 @@ def record_steps(network: RoadNetwork, points: list[tuple[float, float]], eps: f
 def pack(live: dict[int, Node], ctx: StepContext) -> np.ndarray:
     """The kernel's ``live`` array, as fast_sweep_step builds it."""
     flat: list[float] = [ctx.eps, ctx.x0, ctx.y0, ctx.x1, ctx.y1, ctx.chord,
-                         ctx.inv_two_sigma2, ctx.inv_beta, ctx.turn_back_cost, ctx.motion_cost]
+                         ctx.inv_two_sigma2, ctx.inv_beta, ctx.turn_back_cost, ctx.motion_cost,
+                         ctx.roll_back]
     for seg, n in live.items():
         flat += (seg, n.seg, n.low, n.pos, n.x, n.y, n.cost)
     return np.array(flat, dtype=np.float64)

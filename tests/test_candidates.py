@@ -238,7 +238,7 @@ def check_tree(tree: CandidateTree, tracker: Tracker,
     # the sweep: a copy of the tree against sweep_step on the same states
     copy = CandidateTree.from_nodes(live_dict)
     step = np.array((ctx.eps, ctx.x0, ctx.y0, ctx.x1, ctx.y1, ctx.chord, ctx.inv_two_sigma2,
-                     ctx.inv_beta, ctx.turn_back_cost, ctx.motion_cost))
+                     ctx.inv_beta, ctx.turn_back_cost, ctx.motion_cost, ctx.roll_back))
     ref_new = sweep_step(live_dict, ctx)
     copy_nodes = copy.rows(view)
     copy_live = copy_nodes[copy.lo:copy.hi]

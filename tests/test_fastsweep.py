@@ -25,7 +25,7 @@ from livematch.core.fastsweep import fast_sweep_step, sweep_arrays
 from livematch.core.geometry import Projection
 from livematch.core.network import RoadNetwork
 from livematch.core.settings import MatchSettings
-from livematch.core.sweep import Node, StepContext, advance, sweep_step
+from livematch.core.sweep import Node, StepContext, advance, free_interval, sweep_step
 from livematch.core.view import view_of
 from livematch.mapdata.netfile import open_network
 from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
@@ -278,3 +278,41 @@ def test_fast_sweep_step_reads_keys_and_seg_like_the_reference() -> None:
     ctx = StepContext(view, 15.0, 110.0, 2.0, 120.0, 1.0, 2, 2.0, 10.0, 0.02, 0.1, 2.0, 0.2)
     new = check_step(live, ctx)
     assert east in new
+
+
+@pytest.mark.parametrize("slack", [0.0, 3.0])
+@pytest.mark.parametrize("eps", EPS_LEVELS)
+def test_fast_sweep_step_no_roll_back(eps: float, slack: float) -> None:
+    """MatchSettings.no_roll_back: the compiled step equals the reference bit for bit,
+    on a stand near the end of a dead end with the drive back down it, a noisy grid and
+    an OSM drive; the rule moves some reported position (so it is exercised), and a
+    state that stays on its segment is never more than ``roll_back_slack_m`` behind its
+    parent but where that lies past the reachable part (then at its top:
+    ``free_interval``)."""
+    on = MatchSettings(no_roll_back=True, roll_back_slack_m=slack)
+    net = dead_end()
+    rng = np.random.default_rng(5)
+    # up the cul-de-sac, a 20 s stand near its end with scatter, back down and on
+    pts = polyline_points([(200.0, 2.0), (500.0, 2.0), (502.0, 280.0)], 9.0)
+    pts += [(502.0 + rng.normal(0, 3.0), 280.0 + rng.normal(0, 3.0)) for _ in range(20)]
+    pts += polyline_points([(502.0, 280.0), (498.0, 0.0), (900.0, -2.0)], 9.0)
+    with_rule = run_trace(net, pts, eps, on)
+    without = run_trace(net, pts, eps)
+    xy = net.node_xy.tolist()
+    sf, st = net.seg_from.tolist(), net.seg_to.tolist()
+    for live in with_rule:
+        for n in live.values():
+            if n.parent is not None and not n.via and n.parent.seg == n.seg \
+                    and n.pos < n.parent.pos - slack / float(net.seg_len[n.seg]):
+                (ax, ay), (bx, by) = xy[sf[n.seg]], xy[st[n.seg]]
+                px, py = pts[n.seq - 1]
+                assert n.pos == free_interval(ax, ay, bx, by, px, py, eps * eps)[1]
+    assert any(a.keys() != b.keys() or any(a[k].pos != b[k].pos for k in a)
+               for a, b in zip(with_rule, without, strict=True))
+    noisy = [(x + rng.normal(0, 6.0), y + rng.normal(0, 6.0)) for x, y in polyline_points(
+        [(0.0, 0.0), (400.0, 0.0), (400.0, 600.0), (800.0, 600.0), (800.0, 200.0)], 11.0)]
+    run_trace(grid(), noisy, eps, on)
+    osm_net = osm("test.osm.pbf")
+    drive = simulate_drive(osm_net, np.random.default_rng([29, 0]), "v0", 1.7e9,
+                           DriveSettings(duration_s=150.0), drivable_segments(osm_net))
+    run_trace(osm_net, [(o.x, o.y) for o in observe(drive, 1)], eps, on)

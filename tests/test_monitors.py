@@ -545,7 +545,8 @@ def test_route_window_step_equals_node_reference() -> None:
                                     r[1]) for r in rows.tolist()}
             before = dict(zip(live, driven.tolist(), strict=True))
             ref = sweep_step(live, ctx)
-            scalars = np.array((ctx.eps, x0, y0, x1, y1, ctx.chord, 0.02, 0.1, 0.0, 0.0))
+            scalars = np.array((ctx.eps, x0, y0, x1, y1, ctx.chord, 0.02, 0.1, 0.0, 0.0,
+                                -1.0))
             code, got, got_driven = k.window_step(arrays.netf, arrays.neti, arrays.fbuf,
                                                   arrays.ibuf, scalars, rows, driven)
             assert code == 0

@@ -83,7 +83,8 @@ C_INV_TWO_SIGMA2 = 6
 C_INV_BETA = 7
 C_TURN_BACK_COST = 8
 C_MOTION_COST = 9
-N_CTX = 10
+C_ROLL_BACK = 10  # >= 0: metres a state along its own segment may lie behind its parent
+N_CTX = 11
 LIVE_STRIDE = 7
 # Offsets within a row of ``live``.
 L_KEY = 0
@@ -460,13 +461,14 @@ def sweep_kernel(
         return OVERFLOW, 0
 
     # 3. The offers, in the reference's order: the reference's ``_offer`` with a parent
-    # and ``floor`` -1, expression by expression.
+    # and ``floor`` -1 (phase 1's offers with ``C_ROLL_BACK`` >= 0: the reference's
+    # ``_roll_floor``), expression by expression.
     inv_two_sigma2 = live[C_INV_TWO_SIGMA2]
     turn_back_cost = live[C_TURN_BACK_COST]
     chord = live[C_CHORD]
     inv_beta = live[C_INV_BETA]
     motion = live[C_MOTION_COST]
-    floor = -1.0
+    roll_back = live[C_ROLL_BACK]
     m = 0
     for o in range(n_offers):
         lo = offer_f[2 * o]
@@ -488,6 +490,10 @@ def sweep_kernel(
             continue  # every term of the cost is >= 0: this way cannot do better
         p_seg = int(live[prow + L_SEG])
         p_pos = live[prow + L_POS]
+        floor = -1.0
+        if roll_back >= 0.0 and o < n_first:  # (seg is p_seg: phase 1)
+            s_len = netf[s8 + S_LEN]
+            floor = p_pos - roll_back / s_len if s_len > 0.0 else p_pos
         ax = netf[s8 + S_AX]
         ay = netf[s8 + S_AY]
         dx = netf[s8 + S_BX] - ax

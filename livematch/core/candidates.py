@@ -26,13 +26,13 @@ Example (a vehicle on a straight one-way road; two fixes 10 m apart):
     ...                   0.02, 0.2, 2.0)
     >>> tree = CandidateTree()
     >>> tree.extend(fresh_start(net, ctx), {})
-    >>> step = np.array([15.0, 20.0, 1.0, 30.0, 1.0, 10.0, 0.02, 0.2, 2.0, 0.2])
+    >>> step = np.array([15.0, 20.0, 1.0, 30.0, 1.0, 10.0, 0.02, 0.2, 2.0, 0.2, -1.0])
     >>> tree.sweep(view_of(net), step, 2, 2.0)
     True
     >>> [(n.seg, round(n.pos, 2), round(n.x, 2)) for n in tree.live_nodes(view_of(net))[0].values()]
     [(0, 0.3, 30.0)]
     >>> tree.sweep(view_of(net), np.array([15.0, 30.0, 1.0, 30.0, 90.0, 89.0, 0.02, 0.2,
-    ...                                     2.0, 0.2]), 3, 3.0)  # 89 m off the road: dies
+    ...                                     2.0, 0.2, -1.0]), 3, 3.0)  # 89 m off the road: dies
     False
     >>> len(tree)  # a step that dies leaves the tree as it was
     1
@@ -973,7 +973,7 @@ def warm_up() -> None:
     rows = np.array([(n.seg, n.low, n.pos, n.x, n.y, n.cost) for n in live.values()])
     _, rows, driven = window_step(
         arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf,
-        np.array((15.0, 110.0, 1.0, 120.0, 1.0, 10.0, 0.02, 0.1, 0.0, 0.0)), rows,
+        np.array((15.0, 110.0, 1.0, 120.0, 1.0, 10.0, 0.02, 0.1, 0.0, 0.0, -1.0)), rows,
         np.zeros(len(rows)))
     window_best(rows, driven)
     # the held point's check (a stand hold; livematch.core._fix_kernel): the types the

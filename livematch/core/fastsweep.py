@@ -195,7 +195,7 @@ def fast_sweep_step(live: dict[int, Node], ctx: StepContext) -> dict[int, Node]:
     arrays = sweep_arrays(ctx.view)
     nodes = list(live.values())
     flat = [ctx.eps, ctx.x0, ctx.y0, ctx.x1, ctx.y1, ctx.chord, ctx.inv_two_sigma2,
-            ctx.inv_beta, ctx.turn_back_cost, ctx.motion_cost]
+            ctx.inv_beta, ctx.turn_back_cost, ctx.motion_cost, ctx.roll_back]
     for seg, n in live.items():
         flat.append(seg)
         flat += _packed_fields(n)

@@ -673,6 +673,46 @@ class MatchSettings:
             than eps and back between two fixes is committed as turning at its mouth
             (route mismatch only: every fix still lies within eps of its point).
             Commits only (final answers and the path); off by default.
+        no_roll_back: in a sweep step (fixes at most ``gap_s`` apart), a candidate that
+            stays on its segment is reported no earlier on it than its parent: the
+            fix's projection is clamped into the reachable part of the free interval
+            from the parent's position on (``floor`` of
+            :func:`livematch.core.sweep._offer`); what is reachable, and so the
+            Fréchet decision and its certificate, is unchanged. Why: over a stand at
+            the end of a road the whole segment stays reachable, and the drive back
+            along its twin afterwards lies on the same line; a lineage that never
+            turns round answers it by sliding back along the segment it came in by,
+            pays no U-turn charge, and so is the cheaper, until the fixes leave eps
+            and the next commit does not join on (docs/measured.md "Session 18
+            (fleet5c)", "on path, > 30 m"). Held at its parent's position, such a
+            lineage pays the distance term for the drive back and the one that
+            turned round wins. Off by default: on bench/fleetmiss.py's decision runs
+            (80 drives, seeds 31 / 77, both models, both extracts, 1 and 5 s) live
+            road+dir rises in 12 of 16 cells and the matched-position error median
+            falls in all 16 (by 0.03-0.30 m), but final road+dir falls in 11 and route
+            mismatch rises in 10; the largest losses are roads the map draws alongside
+            the driven one, taken the other way (docs/measured.md "Session 19
+            (fleet1hz)"). At 15 and 30 s every step is bridged and the rule cannot
+            act.
+        roll_back_slack_m: with ``no_roll_back``, a candidate may be reported up to this
+            many metres behind its parent on the same segment (0, the default: not at
+            all). At 3 m the rule barely acts (docs/measured.md "Session 19
+            (fleet1hz)"): what it changes at 0 is mostly the fix-to-fix jitter, not the
+            drive back.
+        smallest_agrees: a level whose candidates agree leaves the commit to a smaller
+            level that covers the same pending fixes (``Tracker._defers``), whether or
+            not its own stretch would join the committed path; the smallest covering
+            level commits when its own candidates agree, or by a forced commit
+            (``max_lag_*``). Why: at 1 s, after a turn round at a dead end, a 30 m tree
+            left with one candidate (a lineage that never turned, held at its lowest
+            reachable point on the way in) agrees with itself at once and settles the
+            fixes 8-29 m from them, where the 15 m level's candidates follow the fixes
+            (docs/measured.md "Session 19 (fleet1hz)"). Off by default: on the decision
+            runs (80 drives, seeds 31 / 77, both models, both extracts, 1-30 s) it
+            raises final road+dir and lowers route mismatch in all eight routed-trips
+            cells at 1 and 5 s (Helsinki 1 s 2.93 / 2.21 -> 2.34 / 1.61 %), but live
+            road+dir falls in two 1 s cells (by 20 and 7 fixes) and at 15-30 s final or
+            route mismatch is slightly worse in eight cells.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -733,6 +773,9 @@ class MatchSettings:
     heading_cost: float = 0.0
     start_way_out: bool = True
     stand_loops_sparse: bool = False
+    no_roll_back: bool = False
+    roll_back_slack_m: float = 0.0
+    smallest_agrees: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -758,7 +801,8 @@ class MatchSettings:
             out.append(("max_lag_fixes", f"must be an integer >= 2, got {self.max_lag_fixes!r}"))
         for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s",
                      "spike_cost", "street_turn_cost", "join_detour", "live_keep",
-                     "live_keep_stand_s", "stand_short_m", "speed_pace_m", "heading_cost"):
+                     "live_keep_stand_s", "stand_short_m", "speed_pace_m", "heading_cost",
+                     "roll_back_slack_m"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))
@@ -771,7 +815,8 @@ class MatchSettings:
                      "end_stand_sparse", "bridge_error_corr", "stand_way_out",
                      "stand_pace", "bridge_error_cross", "smallest_commits",
                      "start_roots", "flush_scored", "end_stand_centre",
-                     "start_way_out", "stand_loops_sparse"):
+                     "start_way_out", "stand_loops_sparse", "no_roll_back",
+                     "smallest_agrees"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

@@ -129,6 +129,10 @@ class StepContext:
     pace_free: bool = False
     error_cross: bool = False
     speed_route: float = -1.0
+    # metres a state that stays on its segment may be reported behind its parent
+    # (MatchSettings.no_roll_back, roll_back_slack_m; the sweep only, see sweep_step);
+    # negative: no limit (the rule off)
+    roll_back: float = -1.0
 
     @classmethod
     def between(
@@ -149,7 +153,8 @@ class StepContext:
                    1.0 / (2.0 * settings.sigma_m * settings.sigma_m), 1.0 / settings.beta_m,
                    settings.turn_back_cost, 1.0 / settings.motion_m, 1.0 / settings.pace_m,
                    settings.street_turns or (stood and settings.stop_turns),
-                   settings.street_turn_cost, turn_near)
+                   settings.street_turn_cost, turn_near,
+                   roll_back=settings.roll_back_slack_m if settings.no_roll_back else -1.0)
 
 
 def free_interval(
@@ -345,11 +350,29 @@ def _cross_term(
     return (a1 * a1 + w * w / (1.0 - rho * rho * k * k)) * ctx.inv_two_sigma2
 
 
+def _roll_floor(view: NetworkView, ctx: StepContext, node: Node) -> float:
+    """``_offer``'s ``floor`` for ``node`` going on along its own segment (``ctx.roll_back``).
+
+    ``node.pos`` less ``ctx.roll_back`` metres (as a parameter of the segment; the
+    position itself on a segment of no length); -1 (no floor) with the rule off.
+    """
+    if ctx.roll_back < 0.0:
+        return -1.0
+    length = view.slen[node.seg]
+    return node.pos - ctx.roll_back / length if length > 0.0 else node.pos
+
+
 def sweep_step(live: dict[int, Node], ctx: StepContext) -> dict[int, Node]:
     """Advance the states ``live`` (at fix p0) by the trace segment p0 -> p1.
 
     Returns the states at p1; empty when the window is no longer within eps (the
     decision at this level has died).
+
+    With ``ctx.roll_back`` >= 0 (``MatchSettings.no_roll_back``) a state offered along
+    its own segment is reported no more than that many metres behind the state it comes
+    from (``_offer``'s ``floor``; the reachable part and ``low`` are unchanged, so the
+    decision is the same): a lineage that never turns round can no longer answer a
+    drive back along the twin on the way in, a twin's geometry being the same line.
     """
     view = ctx.view
     vx, vy, sf, st, out, twin, ok = (
@@ -366,7 +389,7 @@ def sweep_step(live: dict[int, Node], ctx: StepContext) -> dict[int, Node]:
         lo, hi = free_interval(vx[a], vy[a], vx[b], vy[b], x1, y1, eps2)
         low = node.low if node.low > lo else lo
         if low <= hi:
-            _offer(new, ctx, seg, low, hi, node, ())
+            _offer(new, ctx, seg, low, hi, node, (), _roll_floor(view, ctx, node))
         w = white.get(b)
         if w is None:
             w = free_interval(x0, y0, x1, y1, vx[b], vy[b], eps2)

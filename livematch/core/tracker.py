@@ -719,6 +719,7 @@ class Tracker:
             step[7] = w[1]
             step[8] = w[2]
             step[9] = w[3]
+            step[10] = w[4]
             arrays.step_for = s
         if s.motion_step:  # step[9] moves with dt: written at every fix
             inv_motion = 1.0 / s.motion_m  # (_weights_of's)
@@ -1798,6 +1799,9 @@ class Tracker:
             >>> tracker._defers(tracker.levels[0], 0, tracker.levels)
             False
         """
+        if self.settings.smallest_agrees and any(
+                lv.eps < level.eps for lv in covering if lv is not level):
+            return True  # MatchSettings.smallest_agrees: the smallest covering level decides
         last = self.last_commit
         if last is None:
             return False
@@ -3624,15 +3628,17 @@ def _same(a: tuple[float, ...], b: tuple[float, ...]) -> bool:
                           for x, y in zip(a, b, strict=True))
 
 
-def _weights_of(s: MatchSettings) -> tuple[float, float, float, float]:
+def _weights_of(s: MatchSettings) -> tuple[float, float, float, float, float]:
     """The sweep kernel's step scalars after eps, x0, y0, x1, y1, chord (StepContext).
+
+    The weights of the cost terms, then ``StepContext.roll_back`` (-1: the rule off).
 
     Written into the network's step scratch when another tracker's settings wrote it
     last (``SweepArrays.step_for``): a tuple per tracker was about 140 bytes, and a
     module-level memo would be state outside the core's objects.
     """
     return (1.0 / (2.0 * s.sigma_m * s.sigma_m), 1.0 / s.beta_m, s.turn_back_cost,
-            1.0 / s.motion_m)
+            1.0 / s.motion_m, s.roll_back_slack_m if s.no_roll_back else -1.0)
 
 
 def motion_gain(dt: float, tau: float) -> float:

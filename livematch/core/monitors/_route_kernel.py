@@ -54,11 +54,12 @@ ROW = 7  # seg, low, pos, x, y, cost, driven
 SWEEP_OVERFLOW = -1  # the sweep kernel's buffers are too small: grow them, call again
 ROWS_OVERFLOW = -2  # ``w`` is too small: the second value says how many rows are needed
 SKIPPED = -3  # route_advance did not step the reversed window (the forward one overflowed)
-#: The window's cost weights, the last four step scalars (:class:`StepContext`'s order):
-#: 1 / (2 sigma^2) with sigma 5 m, 1 / beta with beta 10 m, no turn-back or motion cost.
+#: The window's cost weights, the last five step scalars (:class:`StepContext`'s order):
+#: 1 / (2 sigma^2) with sigma 5 m, 1 / beta with beta 10 m, no turn-back or motion cost,
+#: no limit on rolling back (``StepContext.roll_back`` -1).
 #: A window only asks whether the fixes follow the route, so the weights merely rank its
 #: candidates (:func:`best_row` breaks ties by cost).
-WINDOW_WEIGHTS = (0.02, 0.1, 0.0, 0.0)
+WINDOW_WEIGHTS = (0.02, 0.1, 0.0, 0.0, -1.0)
 assert _k.C_CHORD + 1 + len(WINDOW_WEIGHTS) == _k.N_CTX
 #: Slack of the fresh start's bounding-box test (metres): it only has to keep every
 #: segment the free interval could accept; the free interval decides.
