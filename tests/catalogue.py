@@ -148,3 +148,12 @@ def path_line(net: RoadNetwork, path: list[int]) -> object:
     pts = [tuple(map(float, xy[net.seg_from[path[0]]]))]
     pts += [tuple(map(float, xy[net.seg_to[s]])) for s in path]
     return shapely.LineString(pts)
+
+
+def seg_of(net: RoadNetwork, a: tuple[float, float], b: tuple[float, float]) -> int:
+    """The directed segment of ``net`` from node ``a`` to node ``b`` (exact coordinates)."""
+    for s in range(net.n_segments):
+        if (tuple(net.node_xy[net.seg_from[s]]) == a
+                and tuple(net.node_xy[net.seg_to[s]]) == b):
+            return s
+    raise LookupError((a, b))

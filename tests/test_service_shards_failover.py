@@ -71,6 +71,18 @@ async def checkpoint_times(client: aioredis.Redis, prefix: str) -> dict[str, flo
     return out
 
 
+async def watch_checkpoints(client: aioredis.Redis, prefix: str, seen: dict[str, float],
+                            backwards: list[str]) -> None:
+    """Poll every vehicle's checkpoint time until cancelled; note in ``backwards`` each
+    that went back (a restored state older than one already written)."""
+    while True:
+        for v, t in (await checkpoint_times(client, prefix)).items():
+            if t < seen.get(v, t):
+                backwards.append(f"{v}: {seen[v]} -> {t}")
+            seen[v] = max(t, seen.get(v, t))
+        await asyncio.sleep(0.05)
+
+
 async def test_sigkill_one_worker_every_fix_answered_no_state_backwards(
         mosquitto: Mosquitto, redis_server: RedisServer, prefix: str, tmp_path: Path) -> None:
     """Two workers share 8 shards; one is SIGKILLed mid-feed. The other takes its shards
@@ -111,19 +123,11 @@ async def scenario(mosquitto: Mosquitto, redis_server: RedisServer, prefix: str,
     backwards: list[str] = []
     seen: dict[str, float] = {}
 
-    async def watch_checkpoints() -> None:
-        while True:
-            for v, t in (await checkpoint_times(client, prefix)).items():
-                if t < seen.get(v, t):
-                    backwards.append(f"{v}: {seen[v]} -> {t}")
-                seen[v] = max(t, seen.get(v, t))
-            await asyncio.sleep(0.05)
-
     async def held() -> list[float]:
         return [await metric(p, "livematch_shards_held") for p in ports.values()]
 
     procs = {w: start_worker(cfg, w, ports[w], logs[w]) for w in ports}
-    watcher = asyncio.create_task(watch_checkpoints())
+    watcher = asyncio.create_task(watch_checkpoints(client, prefix, seen, backwards))
     try:
         async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col:
             deadline = time.monotonic() + 60

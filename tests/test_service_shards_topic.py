@@ -26,7 +26,7 @@ from services import (
 )
 from test_faults_suite import metric_sum
 from test_service_shards import group_daemon, wait_until
-from test_service_shards_failover import checkpoint_times
+from test_service_shards_failover import watch_checkpoints
 
 from livematch.mapdata.netfile import save_network
 from livematch.service.shards import assign_shards, shard_of
@@ -121,19 +121,11 @@ async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
     backwards: list[str] = []
     seen: dict[str, float] = {}
 
-    async def watch_checkpoints() -> None:
-        while True:
-            for v, t in (await checkpoint_times(client, prefix)).items():
-                if t < seen.get(v, t):
-                    backwards.append(f"{v}: {seen[v]} -> {t}")
-                seen[v] = max(t, seen.get(v, t))
-            await asyncio.sleep(0.05)
-
     async def settle(workers: tuple[str, ...]) -> None:
         await settle_shares(ports, procs, logs, {w: len(ranked(workers)[w][0]) for w in workers})
 
     procs = {w: start_worker(cfg, w, ports[w], logs[w]) for w in WORKERS}
-    watcher = asyncio.create_task(watch_checkpoints())
+    watcher = asyncio.create_task(watch_checkpoints(client, prefix, seen, backwards))
     try:
         async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col:
             await settle(WORKERS)

@@ -23,7 +23,7 @@ import pytest
 import redis.asyncio as aioredis
 from services import Collector, Mosquitto, RedisServer, drive, publisher, write_config
 from test_service_shards import group_daemon, wait_until
-from test_service_shards_failover import checkpoint_times
+from test_service_shards_failover import watch_checkpoints
 from test_service_shards_topic import (
     settle_shares,
     start_worker,
@@ -253,16 +253,8 @@ async def test_sigkill_holder_while_fixes_arrive_standby_connection(
     backwards: list[str] = []
     seen: dict[str, float] = {}
 
-    async def watch_checkpoints() -> None:
-        while True:
-            for v, t in (await checkpoint_times(client, prefix)).items():
-                if t < seen.get(v, t):
-                    backwards.append(f"{v}: {seen[v]} -> {t}")
-                seen[v] = max(t, seen.get(v, t))
-            await asyncio.sleep(0.05)
-
     procs = {w: start_worker(cfg, w, ports[w], logs[w]) for w in workers}
-    watcher = asyncio.create_task(watch_checkpoints())
+    watcher = asyncio.create_task(watch_checkpoints(client, prefix, seen, backwards))
     try:
         async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col:
             await settle_shares(ports, procs, logs, {"w1": 4, "w2": 4})

@@ -22,7 +22,7 @@ from livematch.core.settings import MatchSettings
 from livematch.core.tracker import _median
 from tests.catalogue import committed_path as path
 from tests.catalogue import final_answers as finals
-from tests.catalogue import track_points
+from tests.catalogue import seg_of, track_points
 
 # P runs east into the junction V = (100, 0); T goes on east from V (a way of its own,
 # as the map draws a street past a junction), S leaves V north.
@@ -36,17 +36,7 @@ ON = MatchSettings(end_stand_centre=True)
 OFF = MatchSettings(end_stand_centre=False)
 
 
-def seg_of(a: tuple[float, float], b: tuple[float, float]) -> int:
-    """The directed segment from ``a`` to ``b``."""
-    for s in range(NET.n_segments):
-        ax, ay = NET.node_xy[NET.seg_from[s]]
-        bx, by = NET.node_xy[NET.seg_to[s]]
-        if (ax, ay) == a and (bx, by) == b:
-            return s
-    raise LookupError((a, b))
-
-
-P_EAST = seg_of(P[0], P[1])
+P_EAST = seg_of(NET, P[0], P[1])
 
 # a van at 10 m/s along P, a fix every 5 s; it stops at V and the log ends while it
 # stands (60 s). Its fixes scatter about V: one lies 5.5 m past V on T, the last 4.5 m

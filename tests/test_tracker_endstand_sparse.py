@@ -16,7 +16,7 @@ from livematch.core.settings import MatchSettings
 from livematch.core.tracker import Node, Tracker
 from tests.catalogue import committed_path as path
 from tests.catalogue import final_answers as finals
-from tests.catalogue import track_points
+from tests.catalogue import seg_of, track_points
 
 # P runs east into V = (100, 0); S leaves V north to a dead end 80 m on; T leaves V east.
 P = [(-1000.0, 0.0), (100.0, 0.0)]
@@ -29,19 +29,9 @@ ON = MatchSettings(end_stand_sparse=True)
 OFF = MatchSettings(end_stand_sparse=False)
 
 
-def seg_of(a: tuple[float, float], b: tuple[float, float]) -> int:
-    """The directed segment from ``a`` to ``b``."""
-    for s in range(NET.n_segments):
-        ax, ay = NET.node_xy[NET.seg_from[s]]
-        bx, by = NET.node_xy[NET.seg_to[s]]
-        if (ax, ay) == a and (bx, by) == b:
-            return s
-    raise LookupError((a, b))
-
-
-P_EAST = seg_of(P[0], P[1])
-S_NORTH, S_SOUTH = seg_of(S[0], S[1]), seg_of(S[1], S[0])
-T_EAST = seg_of(T[0], T[1])
+P_EAST = seg_of(NET, P[0], P[1])
+S_NORTH, S_SOUTH = seg_of(NET, S[0], S[1]), seg_of(NET, S[1], S[0])
+T_EAST = seg_of(NET, T[0], T[1])
 
 # a van at 10 m/s along P, a fix every 30 s; it stops 3 m short of V and the log ends
 # while it stands, its last fix leaning 5.5 m north (up S: a GNSS lean, as the

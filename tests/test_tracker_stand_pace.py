@@ -14,7 +14,7 @@ from livematch.core.build import Road, network_from_roads
 from livematch.core.events import Event
 from livematch.core.settings import MatchSettings
 from livematch.core.tracker import stand_step
-from tests.catalogue import assert_answers_on_road, track_points
+from tests.catalogue import assert_answers_on_road, seg_of, track_points
 from tests.catalogue import committed_path as path
 from tests.catalogue import final_answers as finals
 
@@ -35,17 +35,8 @@ DWELL = [(1.0, 80.0), (-1.0, 220.0), (1.0, 360.0), (2.0, 505.0), (-2.0, 497.0),
          (1.0, 340.0), (-1.0, 180.0)]
 
 
-def seg_of(a: tuple[float, float], b: tuple[float, float]) -> int:
-    """The directed segment from ``a`` to ``b``."""
-    for s in range(NET.n_segments):
-        if (tuple(NET.node_xy[NET.seg_from[s]]) == a
-                and tuple(NET.node_xy[NET.seg_to[s]]) == b):
-            return s
-    raise LookupError((a, b))
-
-
-IN, OUT = seg_of(S, V), seg_of(V, S)
-ON_PAST_V, BACK_TO_V = seg_of(V, W), seg_of(W, V)
+IN, OUT = seg_of(NET, S, V), seg_of(NET, V, S)
+ON_PAST_V, BACK_TO_V = seg_of(NET, V, W), seg_of(NET, W, V)
 
 
 def run(settings: MatchSettings, pts: list[tuple[float, float]], dt: float = DT,

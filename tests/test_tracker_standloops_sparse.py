@@ -15,7 +15,7 @@ from livematch.core.build import Road, network_from_roads
 from livematch.core.events import Assignment, Event
 from livematch.core.network import RoadNetwork
 from livematch.core.settings import MatchSettings
-from tests.catalogue import assert_answers_on_road, path_line, track_points
+from tests.catalogue import assert_answers_on_road, path_line, seg_of, track_points
 from tests.catalogue import committed_path as path
 from tests.catalogue import final_answers as finals
 
@@ -36,15 +36,6 @@ OFF = MatchSettings(stand_loops_sparse=False)
 # than W), the next 3 m short of it (the van has turned); then back south at about 5 m/s
 DWELL = [(1.0, 80.0), (-1.0, 220.0), (1.0, 360.0), (2.0, 504.0), (-2.0, 497.0),
          (1.0, 340.0), (-1.0, 180.0)]
-
-
-def seg_of(net: RoadNetwork, a: tuple[float, float], b: tuple[float, float]) -> int:
-    """The directed segment from ``a`` to ``b``."""
-    for s in range(net.n_segments):
-        if (tuple(net.node_xy[net.seg_from[s]]) == a
-                and tuple(net.node_xy[net.seg_to[s]]) == b):
-            return s
-    raise LookupError((a, b))
 
 
 IN, OUT = seg_of(NET, S, V), seg_of(NET, V, S)
