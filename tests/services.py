@@ -284,6 +284,15 @@ class Collector:
         """Decoded payloads of the messages whose topic contains ``topic_part``."""
         return [json.loads(p) for t, p, _ in self.messages if topic_part in t]
 
+    def windows(self, topic_part: str) -> list[set[int]]:
+        """The ``window_fixes`` of the assignments on ``topic_part``, one set per fix time
+        in time order: ``[{1}, {2}, ...]`` when every fix was answered once, or by two
+        workers that agreed, and each window grew by one fix."""
+        seen: dict[float, set[int]] = {}
+        for r in self.records(topic_part):
+            seen.setdefault(r["time"], set()).add(r["window_fixes"])
+        return [seen[t] for t in sorted(seen)]
+
     async def wait_for(self, topic_part: str, count: int, timeout: float = 30.0) -> None:
         """Wait until at least ``count`` messages with ``topic_part`` arrived."""
         deadline = time.monotonic() + timeout

@@ -110,10 +110,8 @@ async def test_group_redis_restart_answers_every_fix_and_state_continues(
             daemon.request_stop()
             await asyncio.wait_for(task, 30)
     for v in vehicles:
-        windows: dict[float, set[int]] = {}
-        for r in col.records(f"/out/match/{v}"):
-            windows.setdefault(r["time"], set()).add(r["window_fixes"])
-        assert [windows[t] for t in sorted(windows)] == [{k} for k in range(1, 21)]
+        windows = col.windows(f"/out/match/{v}")
+        assert windows == [{k} for k in range(1, 21)]
     lost = daemon.metrics.shards_lost.labels(why="expired")._value.get()
     assert lost == 4
     assert daemon.metrics.takeovers._value.get() == 8
@@ -168,9 +166,7 @@ async def test_group_broker_restart_keeps_shards_and_state(
             daemon.request_stop()
             await asyncio.wait_for(task, 30)
     for v in vehicles:
-        windows: dict[float, set[int]] = {}
-        for r in col.records(f"/out/match/{v}"):
-            windows.setdefault(r["time"], set()).add(r["window_fixes"])
-        assert [windows[t] for t in sorted(windows)] == [{k} for k in range(1, 21)]
+        windows = col.windows(f"/out/match/{v}")
+        assert windows == [{k} for k in range(1, 21)]
     assert daemon.metrics.shards_lost.labels(why="expired")._value.get() == 0
     assert daemon.metrics.takeovers._value.get() == 4
