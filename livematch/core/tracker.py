@@ -2422,6 +2422,24 @@ class Tracker:
             >>> out == [MatchedFix(1.0, 0, 20.0, 20.0, 0.0)]
             True
         """
+        if chain[-1].t - chain[0].t < STAND_S:
+            # no run spans STAND_S (a run's nodes lie within the chain, in time order):
+            # most commits at 1 s between fixes hold one to three fixes, and the scan
+            # built a closure and walked the chain for nothing (docs/measured.md,
+            # "Session 21 (path1hz)"); tests/test_commit_prechecks.py checks the
+            # answer against _stand_at_vertex_scan
+            return
+        self._stand_at_vertex_scan(chain, before, goes_on, starts, eps, fixes)
+
+    def _stand_at_vertex_scan(
+        self, chain: list[Node], before: Node | None, goes_on: bool, starts: bool,
+        eps: float, fixes: list[MatchedFix],
+    ) -> None:
+        """:meth:`_stand_at_vertex` without its check of the chain's span: the full scan.
+
+        The rule itself (every entry into a segment looked at, whatever the chain's
+        span); kept as the reference the early return is tested against.
+        """
         view = self._view
         seq0 = self.fix_seq0
         xy = self.fix_xy
@@ -2723,6 +2741,20 @@ class Tracker:
             >>> tracker._close_stand_loops([b], a, 15.0) == [b]
             True
         """
+        if chain[-1].t - chain[0].t < STAND_S and not self.settings.stand_loops_sparse:
+            # no loop's fixes span STAND_S (they are nodes of the chain, in time order),
+            # and only stand_loops_sparse closes a shorter one: the chain as it is,
+            # without building its segments (tests/test_commit_prechecks.py checks the
+            # answer against _close_stand_loops_scan)
+            return chain
+        return self._close_stand_loops_scan(chain, before, eps)
+
+    def _close_stand_loops_scan(self, chain: list[Node], before: Node,
+                                eps: float) -> list[Node]:
+        """:meth:`_close_stand_loops` without its check of the chain's span: the full scan.
+
+        The rule itself; kept as the reference the early return is tested against.
+        """
         view = self._view
         twin = view.twin
         # the path as a list of segments; owner[i]: the chain index of the node whose
@@ -2960,6 +2992,20 @@ class Tracker:
             >>> tracker._turn_back_at_stand([b, c], a, 15.0) == [b, c]
             True
         """
+        if chain[-1].t - chain[0].t < STAND_S:
+            # no stand's fixes span STAND_S (they are nodes of the chain, in time
+            # order): the chain as it is, without building its segments
+            # (tests/test_commit_prechecks.py checks the answer against
+            # _turn_back_at_stand_scan)
+            return chain
+        return self._turn_back_at_stand_scan(chain, before, eps)
+
+    def _turn_back_at_stand_scan(self, chain: list[Node], before: Node,
+                                 eps: float) -> list[Node]:
+        """:meth:`_turn_back_at_stand` without its check of the chain's span: the full scan.
+
+        The rule itself; kept as the reference the early return is tested against.
+        """
         view = self._view
         twin = view.twin
         sf = view.sf
@@ -3132,8 +3178,17 @@ class Tracker:
         if len(chain) < 2 or chain[-1].t - chain[0].t < STAND_S:
             # no stand fits (it spans STAND_S and has a node after it): most commits at
             # dense fixes are this short, and the scan of the path's vertices cost the
-            # whole path about 3.6 % at Helsinki (docs/measured.md, "Session 16 (lead)")
+            # whole path about 3.6 % at Helsinki (docs/measured.md, "Session 16 (lead)");
+            # tests/test_commit_prechecks.py checks the answer against the scan
             return chain
+        return self._way_out_of_stand_scan(chain, before, eps)
+
+    def _way_out_of_stand_scan(self, chain: list[Node], before: Node,
+                               eps: float) -> list[Node]:
+        """:meth:`_way_out_of_stand` without its check of the chain: the full scan.
+
+        The rule itself; kept as the reference the early return is tested against.
+        """
         still = STAND_SIGMAS * self.settings.sigma_m
 
         def stands(prev: Node, nodes: list[Node]) -> bool:
