@@ -1855,12 +1855,13 @@ class Tracker:
                                                                      self.next_commit)
         if not chain:
             return
+        eps = self._eps_of(tree)  # (the stand rules' radius: looked up once a commit)
         if self.settings.stand_loops and before is not None and len(chain) >= 2:
-            chain = self._close_stand_loops(chain, before, self._eps_of(tree))
+            chain = self._close_stand_loops(chain, before, eps)
         if self.settings.stand_turnback and before is not None and len(chain) >= 3:
-            chain = self._turn_back_at_stand(chain, before, self._eps_of(tree))
+            chain = self._turn_back_at_stand(chain, before, eps)
         if self.settings.stand_way_out and before is not None and len(chain) >= 2:
-            chain = self._way_out_of_stand(chain, before, self._eps_of(tree))
+            chain = self._way_out_of_stand(chain, before, eps)
         top = chain[-1]
         view = self._view
         first = chain[0]
@@ -1917,11 +1918,11 @@ class Tracker:
                         fixes[k] = MatchedFix(n.t, seg_in, float(view.slen[seg_in]), n.x, n.y)
                 prev = n
         if self.settings.stand_at_vertex and (goes_on or len(chain) >= 2):
-            self._stand_at_vertex(chain, before, goes_on, starts, self._eps_of(tree), fixes)
+            self._stand_at_vertex(chain, before, goes_on, starts, eps, fixes)
         if settle_all and self.settings.end_stand and len(chain) >= 2:
-            self._end_stand(chain, before, self._eps_of(tree), fixes)
+            self._end_stand(chain, before, eps, fixes)
         began = (self.settings.start_stand and last is None and len(chain) >= 3
-                 and self._start_stand(chain, self._eps_of(tree), fixes, path))
+                 and self._start_stand(chain, eps, fixes, path))
         if starts and first.pos >= 1.0 and not began:
             # A stretch that starts at the very end of a segment drives none of it: report
             # its first fix at the start of the segment entered next (the same point) and
@@ -1937,7 +1938,7 @@ class Tracker:
                                first.parent, (), first.cost, 0.0)
         elif (self.settings.start_way_out and last is None and not began
                 and first.pos < 1.0):
-            entered = self._start_way_out(tree, chain, self._eps_of(tree))
+            entered = self._start_way_out(tree, chain, eps)
             if entered >= 0:
                 # the answer only: the path keeps A (see _start_way_out)
                 v = view.sf[entered]
