@@ -20,7 +20,9 @@ Two modes:
   compiled call (the numba kernel, dispatch included) and the pyproj calls are split out
   by the sampled line (the tracker's: the tree steps, the live answer, the commit
   checks, a commit's chain, new arrays). ``--us``: a per-fix time to turn the shares
-  into µs (e.g. the pooled figure of an idle ``bench/ab.py`` run).
+  into µs (e.g. the pooled figure of an idle ``bench/ab.py`` run). ``--functions N``
+  also prints the N functions with the largest inclusive share of those samples (which
+  rule or helper is hot inside a stage).
 
 A sampling profile without ``--native`` charges a compiled call's time to the Python
 line that makes it, which is what the split needs; it slows the Python a little less
@@ -144,6 +146,32 @@ def split(path: str, us: float | None) -> None:
     print(f"({total} samples)")
 
 
+def functions(path: str, top: int) -> None:
+    """Print the ``top`` functions with the largest inclusive share of the timed samples.
+
+    A function counts once per sample however often it is on the stack (recursion),
+    named as py-spy names it (``Class.method``); for reading which rule or helper is
+    hot inside a stage.
+    """
+    incl: Counter[str] = Counter()
+    total = 0
+    for line in Path(path).read_text().splitlines():
+        stack, _, count = line.rpartition(" ")
+        frames = stack.split(";")
+        if not any(f.startswith("timed_rounds ") for f in frames):
+            continue
+        n = int(count)
+        total += n
+        for name in {f.split(" (")[0] for f in frames}:
+            incl[name] += n
+    if not total:
+        print("no samples inside timed_rounds")
+        return
+    for name, n in incl.most_common(top):
+        print(f"{100 * n / total:5.1f} %  {name}")
+    print(f"({total} samples)")
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     sub = ap.add_subparsers(dest="mode", required=True)
@@ -153,11 +181,15 @@ def main(argv: list[str] | None = None) -> int:
     s = sub.add_parser("split")
     s.add_argument("raw")
     s.add_argument("--us", type=float, default=None)
+    s.add_argument("--functions", type=int, default=0, metavar="N",
+                   help="also the N functions with the largest inclusive share")
     args = ap.parse_args(argv)
     if args.mode == "run":
         run(args.extract, args.reps)
     else:
         split(args.raw, args.us)
+        if args.functions:
+            functions(args.raw, args.functions)
     return 0
 
 
