@@ -1400,7 +1400,8 @@ class Tracker:
                     waits = self._into_stand(t, dt, stood)
                 if waits:
                     continue
-                if s.smallest_agrees and self._leaves_to_smaller(level, top, covering):
+                if s.smallest_agrees and self._leaves_to_smaller(level, top, covering,
+                                                                 newest, t):
                     # (the commit it would have made bounds the live window: _live_from)
                     self.agreed_seq = max(self.agreed_seq, tree.seq_of(top))
                     continue
@@ -1846,16 +1847,23 @@ class Tracker:
         return connect(self._view, last[0], last[1], first.seg, first.pos,
                        self._join_limit(first.t - last[3])) is None
 
-    def _leaves_to_smaller(self, level: Level, top: int, covering: list[Level]) -> bool:
+    def _leaves_to_smaller(self, level: Level, top: int, covering: list[Level],
+                           newest: int = 0, t: float = 0.0) -> bool:
         """Rule ``smallest_agrees``: whether ``level``, agreed up to row ``top``, leaves the commit.
 
         It does when a smaller covering level (a lower eps) has a tree that began before
         the last committed fix, and the fixes from the last committed one to ``top``'s
-        are at most ``SPARSE_S`` apart; that level then commits when its own candidates
-        agree, or by a forced commit (``max_lag_*``, counted from ``agreed_seq``:
-        :meth:`_lag_from`). Why: at 1 s, after a turn round at a dead end, a 30 m tree
-        left with one candidate (a lineage that never turned, held at its lowest
-        reachable point on the way in) agrees with itself at once and settles the fixes
+        are at most ``SPARSE_S`` apart, and the fixes not committed (to ``newest``, the
+        newest one at time ``t``) are within the lag (``max_lag_fixes``, ``max_lag_s``);
+        the smaller level then commits when its own candidates agree, or by a forced
+        commit (counted from ``agreed_seq``: :meth:`_lag_from`). Past the lag the larger
+        level commits as it would without the rule, so the smaller level's tree is never
+        force-pruned for the deferral and its fixes are never left unmatched (the trees
+        covering them pruned away) where they would have been committed.
+
+        Why: at 1 s, after a turn round at a dead end, a 30 m tree left with one
+        candidate (a lineage that never turned, held at its lowest reachable point on
+        the way in) agrees with itself at once and settles the fixes
         8-29 m from them, where the 15 m level's candidates still follow the fixes
         (docs/measured.md "Session 19 (fleet1hz)"). The two bounds keep it to where it
         helped: a smaller tree that began since the last commit (it restarted: it lost
@@ -1876,8 +1884,13 @@ class Tracker:
         if last is None or not any(lv.eps < level.eps and lv.tree_seq < last[2]
                                    for lv in covering if lv is not level):
             return False
+        s = self.settings
         times = self.times
         t0 = self.times0
+        i = self.next_commit - t0
+        if newest - self.next_commit + 1 > s.max_lag_fixes or (
+                0 <= i < len(times) and t - times[i] > s.max_lag_s):
+            return False
         k = max(self.next_commit - 1, t0)
         end = min(level.tree.seq_of(top), t0 + len(times) - 1)
         while k < end:
@@ -3447,10 +3460,15 @@ class Tracker:
         """
         cut = self.next_commit - 1
         max_lag = self.settings.max_lag_fixes
+        # (smallest_agrees: a commit deferred up to agreed_seq starts the forced prune's
+        # count there, as the commit would have; cut_links still cuts at cut)
+        floor = self._live_from() - 1
         for level in self.levels:
             tree = level.tree
             if tree.hi == tree.lo:
                 continue
+            if level.trim_seq < floor:
+                level.trim_seq = floor
             trim_seq = level.trim_seq if level.trim_seq > cut else cut
             if cut <= level.cut and seq - trim_seq <= 2 * max_lag:
                 level.trim_seq = trim_seq  # what the walk would have returned
