@@ -1400,20 +1400,21 @@ class Tracker:
                     waits = self._into_stand(t, dt, stood)
                 if waits:
                     continue
-                if s.smallest_agrees and self._leaves_to_smaller(level, top, covering,
-                                                                 newest, t):
-                    # (the commit it would have made bounds the live window: _live_from)
-                    self.agreed_seq = max(self.agreed_seq, tree.seq_of(top))
-                    continue
                 built = tree.chain(self._view, top, self.next_commit)
                 if (hold_newest and s.start_way_out and self.last_commit is None
                         and self._way_out_pending(tree, built[0])):
                     break  # the log's first commit waits for the spike test (see there)
-                if not self._defers(level, top, covering, built):
-                    self._commit_chain(tree, top, events, prune=None, built=built)
-                    covering = self._covering()
-                    progressed = True
-                    break
+                if self._defers(level, top, covering, built):
+                    continue
+                if s.smallest_agrees and self._leaves_to_smaller(level, top, covering,
+                                                                 newest, t):
+                    # the commit it would have made bounds the live window (_live_from)
+                    self.agreed_seq = max(self.agreed_seq, tree.seq_of(top))
+                    continue
+                self._commit_chain(tree, top, events, prune=None, built=built)
+                covering = self._covering()
+                progressed = True
+                break
         lag_first = self._lag_from(seq, t)  # next_commit, unless smallest_agrees deferred
         if lag_first <= seq:
             too_many = seq - lag_first + 1 > s.max_lag_fixes
