@@ -1294,6 +1294,9 @@ class Tracker:
         tree = level.tree
         anc = tree.ancestor_at(best, anchor)
         seg, since, parent, via0, vias = tree.row_ints(anc)
+        if parent >= 0 and self.agreed_seq >= self.next_commit \
+                and tree.seq_of(parent) < self.agreed_seq:
+            parent = -1  # smallest_agrees: the link the deferred commit would have cut
         view = self._view
         held = tree.point(view, anc)
         if (parent >= 0 and held[1] * view.slen[seg] <= self.settings.sigma_m
