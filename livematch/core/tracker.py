@@ -3466,7 +3466,7 @@ class Tracker:
         max_lag = self.settings.max_lag_fixes
         # (smallest_agrees: a commit deferred up to agreed_seq starts the forced prune's
         # count there, as the commit would have; cut_links still cuts at cut)
-        floor = self._live_from() - 1
+        floor = self.agreed_seq if self.agreed_seq >= self.next_commit else -1
         for level in self.levels:
             tree = level.tree
             if tree.hi == tree.lo:
