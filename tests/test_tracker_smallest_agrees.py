@@ -32,7 +32,7 @@ NET = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0), (300.0, 0.0)], way=1),
                           Road([(100.0, 27.0), (200.0, 27.0)], way=3)])
 SMALLEST_EPS = 15.0  # MatchSettings' default ladder (15, 30, 60)
 ON = MatchSettings(smallest_agrees=True)
-OFF = MatchSettings()
+OFF = MatchSettings(smallest_agrees=False)
 SEEDS = range(36, 60)
 
 
@@ -163,7 +163,7 @@ def test_sparse_logs_unchanged(dt: float, monkeypatch: pytest.MonkeyPatch) -> No
 
 
 def test_smallest_agrees_validation() -> None:
-    assert MatchSettings().smallest_agrees is False
+    assert MatchSettings().smallest_agrees is True  # on by default since session 21
     assert ("smallest_agrees", "must be true or false, got 1") in MatchSettings(
         smallest_agrees=1).problems()  # type: ignore[arg-type]
     assert ON.problems() == []

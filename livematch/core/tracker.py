@@ -1156,8 +1156,9 @@ class Tracker:
         else where the stand of the fix before began (``stand_seq``): the GNSS error
         wanders over a long stand, so a run counted back from the newest fix alone
         would begin ever later. Only fixes from the last committed one on are looked
-        at (older positions may be gone): a stand that began before it begins, as far
-        as this can tell, there.
+        at (older positions may be gone; with ``smallest_agrees``, from the fix a
+        deferred commit would have settled, :meth:`_live_from`): a stand that began
+        before it begins, as far as this can tell, there.
 
         ``stand``: the first fix of the stand. ``reach``: a fix of the run (every fix
         from it to ``seq`` lies within the radius); :meth:`_run_start` finds from it
