@@ -1856,26 +1856,28 @@ class Tracker:
                            newest: int = 0, t: float = 0.0) -> bool:
         """Rule ``smallest_agrees``: whether ``level``, agreed up to row ``top``, leaves the commit.
 
-        It does when a smaller covering level (a lower eps) has a tree that began before
-        the last committed fix, and the fixes from the last committed one to ``top``'s
-        are at most ``SPARSE_S`` apart, and the fixes not committed (to ``newest``, the
-        newest one at time ``t``) are within the lag (``max_lag_fixes``, ``max_lag_s``);
-        the smaller level then commits when its own candidates agree, or by a forced
-        commit (counted from ``agreed_seq``: :meth:`_lag_from`). Past the lag the larger
-        level commits as it would without the rule, so the smaller level's tree is never
-        force-pruned for the deferral and its fixes are never left unmatched (the trees
-        covering them pruned away) where they would have been committed.
+        Asked by :meth:`_settle` only where ``level`` would otherwise commit (its
+        candidates agree and :meth:`_defers` lets it). It does when a smaller covering
+        level (a lower eps) has a tree that began before the last committed fix, the
+        fixes from the last committed one to ``top``'s are at most ``SPARSE_S`` apart,
+        and the fixes not committed (to ``newest``, the newest one at time ``t``) are
+        within the lag (``max_lag_fixes``, ``max_lag_s``). The smaller level then
+        commits when its own candidates agree, or by a forced commit (counted from
+        ``agreed_seq``: :meth:`_lag_from`). Past the lag the larger level commits as it
+        would without the rule.
 
         Why: at 1 s, after a turn round at a dead end, a 30 m tree left with one
         candidate (a lineage that never turned, held at its lowest reachable point on
-        the way in) agrees with itself at once and settles the fixes
-        8-29 m from them, where the 15 m level's candidates still follow the fixes
-        (docs/measured.md "Session 19 (fleet1hz)"). The two bounds keep it to where it
+        the way in) agrees with itself at once and settles the fixes 8-29 m from them,
+        where the 15 m level's candidates still follow the fixes (docs/measured.md
+        "Session 19 (fleet1hz)"). The bounds keep it to where it
         helped: a smaller tree that began since the last commit (it restarted: it lost
-        the road) is no better judge than the larger one; and at 15-30 s between fixes
-        every step is bridged, the larger level's one candidate is no lineage that lost a
-        turn, and the unbounded rule lost final answers there (docs/measured.md
-        "Session 21 (agrees5)").
+        the road) is no better judge than the larger one; at 15-30 s between fixes every
+        step is bridged, the larger level's one candidate is no lineage that lost a
+        turn, and the unbounded rule lost final answers there; and a deferral held
+        through a long stand left fixes unmatched once the trees covering them were
+        force-pruned (a first build without the lag bound: docs/measured.md "Session 21
+        (agrees5)").
 
         Example (one level: no smaller level to leave it to):
             >>> from livematch.core.build import Road, network_from_roads
@@ -1909,6 +1911,7 @@ class Tracker:
 
         ``next_commit``, or the fix after ``agreed_seq`` when ``smallest_agrees``
         deferred a commit up to there.
+
         A deferred commit leaves the smaller level's tree as it was; read from here, the
         live score and the stand checks see the window the commit would have left them,
         so that the rule changes final answers, not live ones.
