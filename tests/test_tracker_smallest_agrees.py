@@ -10,9 +10,19 @@ import numpy as np
 import pytest
 import shapely
 
+import livematch.core.tracker as tracker_module
 from livematch.core.build import Road, network_from_roads
+from livematch.core.events import Assignment, Event, HeldAssignment
+from livematch.core.fix import Fix
 from livematch.core.settings import MatchSettings
-from tests.catalogue import committed_path, final_answers, polyline_points, track_points
+from livematch.core.tracker import Tracker
+from tests.catalogue import (
+    committed_path,
+    final_answers,
+    grid,
+    polyline_points,
+    track_points,
+)
 
 # a main road east; at (100, 0) a 27 m street north whose end (100, 27) is a junction
 # with a service road east: the van drives up the short street, turns round at its end,
@@ -22,7 +32,7 @@ NET = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0), (300.0, 0.0)], way=1),
                           Road([(100.0, 27.0), (200.0, 27.0)], way=3)])
 SMALLEST_EPS = 15.0  # MatchSettings' default ladder (15, 30, 60)
 ON = MatchSettings(smallest_agrees=True)
-OFF = MatchSettings()
+OFF = MatchSettings(smallest_agrees=False)
 SEEDS = range(36, 60)
 
 
@@ -84,8 +94,76 @@ def test_no_change_where_the_levels_agree(seed: int) -> None:
     assert track_points(NET, ON, pts) == track_points(NET, OFF, pts)
 
 
+def live(events: list[Event]) -> list[Event]:
+    return [e for e in events if isinstance(e, (Assignment, HeldAssignment))]
+
+
+def test_live_answers_as_without_the_rule() -> None:
+    """The rule moves final answers only: every seed's live answers are the same with
+    the key on and off, while the final answers differ in several seeds."""
+    changed = 0
+    for seed in SEEDS:
+        pts = trace(seed)
+        on, off = track_points(NET, ON, pts), track_points(NET, OFF, pts)
+        assert live(on) == live(off), seed
+        changed += final_answers(on) != final_answers(off)
+    assert changed >= 5
+
+
+def test_checkpoint_mid_deferral_continues_exactly() -> None:
+    """Checkpointed and restored at every fix of a seed the rule changes, the events are
+    those of the tracker that ran through; some checkpoints hold a deferred commit
+    (``agreed_seq`` ahead of ``next_commit``), so the field's round trip is exercised."""
+    deferred = 0
+    for seed in SEEDS:
+        pts = trace(seed)
+        whole = track_points(NET, ON, pts)
+        if final_answers(whole) == final_answers(track_points(NET, OFF, pts)):
+            continue
+        tracker = Tracker(NET, "v", ON)
+        for i, (x, y) in enumerate(pts):
+            tracker = Tracker.from_bytes(NET, ON, tracker.to_bytes())
+            deferred += tracker.agreed_seq >= tracker.next_commit
+            tracker.update(Fix("v", float(i), 0.0, 0.0, x, y))
+        for k in range(3, len(pts), 4):
+            assert track_points(NET, ON, pts, restore_at=k) == whole, (seed, k)
+    assert deferred >= 3
+
+
+GRID = grid(5, 200.0, 50.0)
+
+
+def sparse_trace(seed: int, dt: float) -> list[tuple[float, float]]:
+    """A drive round the catalogue's grid at 10 m/s, a fix every ``dt`` seconds, with
+    first-order autoregressive error (coefficient 0.7 a fix, innovation 6 m per axis)."""
+    rng = np.random.default_rng(seed)
+    route = [(0.0, 0.0), (400.0, 0.0), (400.0, 200.0), (200.0, 200.0), (200.0, 600.0),
+             (800.0, 600.0), (800.0, 200.0), (600.0, 200.0), (600.0, 800.0)]
+    ex = ey = 0.0
+    out = []
+    for x, y in polyline_points(route, 10.0 * dt):
+        ex = 0.7 * ex + rng.normal(0.0, 6.0)
+        ey = 0.7 * ey + rng.normal(0.0, 6.0)
+        out.append((x + ex, y + ey))
+    return out
+
+
+@pytest.mark.parametrize("dt", [15.0, 30.0])
+def test_sparse_logs_unchanged(dt: float, monkeypatch: pytest.MonkeyPatch) -> None:
+    """At 15 and 30 s between fixes the rule does not act: the same events with the key
+    on and off. Not by chance: with the bound on the step (``SPARSE_S``) lifted, some
+    of the same logs do change."""
+    seeds = range(20)
+    for seed in seeds:
+        pts = sparse_trace(seed, dt)
+        assert track_points(GRID, ON, pts, dt) == track_points(GRID, OFF, pts, dt), seed
+    monkeypatch.setattr(tracker_module, "SPARSE_S", 100.0)
+    assert any(track_points(GRID, ON, sparse_trace(seed, dt), dt)
+               != track_points(GRID, OFF, sparse_trace(seed, dt), dt) for seed in seeds)
+
+
 def test_smallest_agrees_validation() -> None:
-    assert MatchSettings().smallest_agrees is False
+    assert MatchSettings().smallest_agrees is True  # on by default since session 21
     assert ("smallest_agrees", "must be true or false, got 1") in MatchSettings(
         smallest_agrees=1).problems()  # type: ignore[arg-type]
     assert ON.problems() == []

@@ -125,7 +125,9 @@ def _reference_stand_start(tracker: Tracker, seq: int) -> tuple[int, int]:
     vehicle does not stand (the definition in Tracker._stand_start's docstring).
     """
     seq0 = tracker.fix_seq0
-    lo = max(seq0, tracker.next_commit - 1, 1)
+    # from the last committed fix on, or (smallest_agrees) from the fix a deferred
+    # commit would have settled
+    lo = max(seq0, max(tracker.next_commit, tracker.agreed_seq + 1) - 1, 1)
     if seq - seq0 >= tracker.fix_n or seq <= lo:
         return 0, 0
     xy = tracker.fix_xy

@@ -700,19 +700,25 @@ class MatchSettings:
             (fleet1hz)"): what it changes at 0 is mostly the fix-to-fix jitter, not the
             drive back.
         smallest_agrees: a level whose candidates agree leaves the commit to a smaller
-            level that covers the same pending fixes (``Tracker._defers``), whether or
-            not its own stretch would join the committed path; the smallest covering
-            level commits when its own candidates agree, or by a forced commit
-            (``max_lag_*``). Why: at 1 s, after a turn round at a dead end, a 30 m tree
-            left with one candidate (a lineage that never turned, held at its lowest
-            reachable point on the way in) agrees with itself at once and settles the
-            fixes 8-29 m from them, where the 15 m level's candidates follow the fixes
-            (docs/measured.md "Session 19 (fleet1hz)"). Off by default: on the decision
-            runs (80 drives, seeds 31 / 77, both models, both extracts, 1-30 s) it
-            raises final road+dir and lowers route mismatch in all eight routed-trips
-            cells at 1 and 5 s (Helsinki 1 s 2.93 / 2.21 -> 2.34 / 1.61 %), but live
-            road+dir falls in two 1 s cells (by 20 and 7 fixes) and at 15-30 s final or
-            route mismatch is slightly worse in eight cells.
+            covering level (``Tracker._leaves_to_smaller``) where the larger level would
+            otherwise commit, when three things hold: the smaller level's tree began
+            before the last committed fix (it did not just restart), the fixes from the
+            last committed one on are at most 5 s apart (``SPARSE_S``), and the fixes not
+            committed are within the lag (``max_lag_*``). The smaller level then commits
+            when its own candidates agree, or by a forced commit. Why: at 1 s, after a
+            turn round at a dead end, a 30 m tree left with one candidate (a lineage
+            that never turned, held at its lowest reachable point on the way in) agrees
+            with itself at once and settles the fixes 8-29 m from them, where the 15 m
+            level's candidates follow the fixes (docs/measured.md "Session 19
+            (fleet1hz)"). Live answers are kept as without the rule: the deferred commit
+            is remembered (``Tracker.agreed_seq``, checkpointed) and bounds the live
+            score's window, the stand checks and the forced commit's lag as the commit
+            would have. At 15-30 s it cannot act. On by default since session 21: on
+            the decision runs (80 drives, seeds 31 / 77, both models, both extracts,
+            1 / 5 / 15 / 30 s) live road+dir is the same in all 32 cells, final
+            road+dir rises or stays in all 32 and route mismatch falls or stays in all
+            32 (routed trips Helsinki 1 s 2.93 / 2.21 -> 2.34 / 1.80 %; the 15 and 30 s
+            cells identical); docs/measured.md "Session 21 (agrees5)".
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -775,7 +781,7 @@ class MatchSettings:
     stand_loops_sparse: bool = False
     no_roll_back: bool = False
     roll_back_slack_m: float = 0.0
-    smallest_agrees: bool = False
+    smallest_agrees: bool = True
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))

@@ -340,7 +340,7 @@ class Tracker:
 
     # slots: a service holds one tracker per vehicle, and an instance dict costs more
     # than a small candidate tree
-    __slots__ = ("_held", "_view", "before", "buffer", "fix_n", "fix_seq0", "fix_xy",
+    __slots__ = ("_held", "_view", "agreed_seq", "before", "buffer", "fix_n", "fix_seq0", "fix_xy",
                  "jumps", "lap_due", "lap_v", "last", "last_commit", "last_released_t",
                  "last_seg", "last_v", "levels",
                  "network", "next_commit", "rev_t", "said", "seq", "settings", "skipped",
@@ -389,6 +389,10 @@ class Tracker:
         self.stood_t: float | None = None
         # with stand_hold: the first fix of the stand the vehicle is in now (0: none)
         self.stand_seq = 0
+        # with smallest_agrees: the newest fix a larger level's agreed commit would have
+        # settled, had it not left the commit to a smaller level (-1: none); the live
+        # answer reads the fixes from there on, as it would after that commit
+        self.agreed_seq = -1
         # with reverse_turns: the direction (radians) of the step into the last accepted
         # fix when it was at least REVERSE_MIN_M long, else None (Tracker._turned_round)
         self.step_dir: float | None = None
@@ -906,6 +910,7 @@ class Tracker:
         bisect.insort(skipped, t_suspect)
         self.skipped = tuple(skipped)
         self.next_commit = min(self.next_commit, suspect)
+        self.agreed_seq = min(self.agreed_seq, suspect - 1)
         self.last_seg = before.last_seg
         return suspect, salvage
 
@@ -951,7 +956,7 @@ class Tracker:
         if s.error_tau_s <= 0.0 or len(tree) < 2:
             return None
         return tree.live_scores(self._view, self.fix_xy[:self.fix_n], self.fix_seq0,
-                                self.next_commit - 1, 1.0 / (2.0 * s.sigma_m * s.sigma_m),
+                                self._live_from() - 1, 1.0 / (2.0 * s.sigma_m * s.sigma_m),
                                 s.error_tau_s, s.gap_s)
 
     def _live_answer(self, level: Level, dt: float) -> tuple[int, int]:
@@ -978,9 +983,14 @@ class Tracker:
         # (CandidateTree.live_answer's compiled call, made here: a Python call fewer)
         best, split = _CALLS.live_answer(
             sweep_arrays(self._view).seg_geo, tree.ti, tree.tf, self.last_seg, self.fix_xy,
-            self.fix_n, self.fix_seq0, self.next_commit - 1,
+            self.fix_n, self.fix_seq0, self._live_from() - 1,
             1.0 / (2.0 * s.sigma_m * s.sigma_m), 1.0 / s.error_tau_s if scored else 0.0,
             s.gap_s, margin)
+        if split >= 0 and self.agreed_seq >= self.next_commit \
+                and tree.seq_of(split) < self.agreed_seq:
+            # smallest_agrees deferred a commit: the links older than the agreed fix,
+            # which that commit would have cut, do not join the near-best set either
+            split = -1
         if (s.live_keep > 0.0 and 0.0 < dt <= SPARSE_S and self.last_seg >= 0
                 and tree.seg_of(best) != self.last_seg
                 and tree.seg_of(best) != self.network.seg_twin.item(self.last_seg)
@@ -1072,10 +1082,13 @@ class Tracker:
         radius = STAND_SIGMAS * self.settings.sigma_m
         r2 = radius * radius
         since = times[i] - window_s
+        # (the times kept reach back to the last committed fix; with smallest_agrees,
+        # no further than the fix a deferred commit would have settled)
+        i_min = max(0, self._live_from() - 1 - self.times0)
         while True:
             i -= 1
             row -= 1
-            if row < 0 or i < 0:
+            if row < 0 or i < i_min:
                 return False
             dx = xy.item(row, 0) - x
             dy = xy.item(row, 1) - y
@@ -1143,8 +1156,9 @@ class Tracker:
         else where the stand of the fix before began (``stand_seq``): the GNSS error
         wanders over a long stand, so a run counted back from the newest fix alone
         would begin ever later. Only fixes from the last committed one on are looked
-        at (older positions may be gone): a stand that began before it begins, as far
-        as this can tell, there.
+        at (older positions may be gone; with ``smallest_agrees``, from the fix a
+        deferred commit would have settled, :meth:`_live_from`): a stand that began
+        before it begins, as far as this can tell, there.
 
         ``stand``: the first fix of the stand. ``reach``: a fix of the run (every fix
         from it to ``seq`` lies within the radius); :meth:`_run_start` finds from it
@@ -1169,7 +1183,7 @@ class Tracker:
         """
         seq0 = self.fix_seq0
         row = seq - seq0
-        lo = max(seq0, self.next_commit - 1, 1)
+        lo = max(seq0, self._live_from() - 1, 1)
         if row >= self.fix_n or seq <= lo:
             return 0, 0
         xy = self.fix_xy
@@ -1217,7 +1231,7 @@ class Tracker:
         it, not older than the last committed fix; ``reach`` must be one of them.
         """
         seq0 = self.fix_seq0
-        lo = max(seq0, self.next_commit - 1, 1)
+        lo = max(seq0, self._live_from() - 1, 1)
         xy = self.fix_xy
         x = xy.item(seq - seq0, 0)
         y = xy.item(seq - seq0, 1)
@@ -1281,6 +1295,9 @@ class Tracker:
         tree = level.tree
         anc = tree.ancestor_at(best, anchor)
         seg, since, parent, via0, vias = tree.row_ints(anc)
+        if parent >= 0 and self.agreed_seq >= self.next_commit \
+                and tree.seq_of(parent) < self.agreed_seq:
+            parent = -1  # smallest_agrees: the link the deferred commit would have cut
         view = self._view
         held = tree.point(view, anc)
         if (parent >= 0 and held[1] * view.slen[seg] <= self.settings.sigma_m
@@ -1391,16 +1408,23 @@ class Tracker:
                 if (hold_newest and s.start_way_out and self.last_commit is None
                         and self._way_out_pending(tree, built[0])):
                     break  # the log's first commit waits for the spike test (see there)
-                if not self._defers(level, top, covering, built):
-                    self._commit_chain(tree, top, events, prune=None, built=built)
-                    covering = self._covering()
-                    progressed = True
-                    break
-        if self.next_commit <= seq:
-            too_many = seq - self.next_commit + 1 > s.max_lag_fixes
-            i = self.next_commit - self.times0
+                if self._defers(level, top, covering, built):
+                    continue
+                if s.smallest_agrees and self._leaves_to_smaller(level, top, covering,
+                                                                 newest, t):
+                    # the commit it would have made bounds the live window (_live_from)
+                    self.agreed_seq = max(self.agreed_seq, tree.seq_of(top))
+                    continue
+                self._commit_chain(tree, top, events, prune=None, built=built)
+                covering = self._covering()
+                progressed = True
+                break
+        lag_first = self._lag_from(seq, t)  # next_commit, unless smallest_agrees deferred
+        if lag_first <= seq:
+            too_many = seq - lag_first + 1 > s.max_lag_fixes
+            i = lag_first - self.times0
             if i < 0:  # never: the fixes not committed keep their times (no wrap-around)
-                raise KeyError(self.next_commit)
+                raise KeyError(lag_first)
             too_old = t - self.times[i] > s.max_lag_s
             if too_many and not too_old and s.stand_wait and (
                     self._standing(seq, t) or self._into_stand(t)):
@@ -1410,7 +1434,7 @@ class Tracker:
                 if s.start_roots and self.last_commit is None:
                     self._start_roots(level, dt)
                 tree = level.tree
-                keep = min(self._lag_target(seq, t), newest)
+                keep = min(max(self._lag_target(seq, t), lag_first), newest)
                 # fixes this dense: the best candidate by live score (see _live_scores)
                 score = self._live_scores(level) if dt < SPARSE_S else None
                 node = tree.ancestor_at(tree.best(self.last_seg, score), keep)
@@ -1799,9 +1823,6 @@ class Tracker:
             >>> tracker._defers(tracker.levels[0], 0, tracker.levels)
             False
         """
-        if self.settings.smallest_agrees and any(
-                lv.eps < level.eps for lv in covering if lv is not level):
-            return True  # MatchSettings.smallest_agrees: the smallest covering level decides
         last = self.last_commit
         if last is None:
             return False
@@ -1830,6 +1851,91 @@ class Tracker:
         first = chain[0]
         return connect(self._view, last[0], last[1], first.seg, first.pos,
                        self._join_limit(first.t - last[3])) is None
+
+    def _leaves_to_smaller(self, level: Level, top: int, covering: list[Level],
+                           newest: int = 0, t: float = 0.0) -> bool:
+        """Rule ``smallest_agrees``: whether ``level``, agreed up to row ``top``, leaves the commit.
+
+        Asked by :meth:`_settle` only where ``level`` would otherwise commit (its
+        candidates agree and :meth:`_defers` lets it). It does when a smaller covering
+        level (a lower eps) has a tree that began before the last committed fix, the
+        fixes from the last committed one to ``top``'s are at most ``SPARSE_S`` apart,
+        and the fixes not committed (to ``newest``, the newest one at time ``t``) are
+        within the lag (``max_lag_fixes``, ``max_lag_s``). The smaller level then
+        commits when its own candidates agree, or by a forced commit (counted from
+        ``agreed_seq``: :meth:`_lag_from`). Past the lag the larger level commits as it
+        would without the rule.
+
+        Why: at 1 s, after a turn round at a dead end, a 30 m tree left with one
+        candidate (a lineage that never turned, held at its lowest reachable point on
+        the way in) agrees with itself at once and settles the fixes 8-29 m from them,
+        where the 15 m level's candidates still follow the fixes (docs/measured.md
+        "Session 19 (fleet1hz)"). The bounds keep it to where it
+        helped: a smaller tree that began since the last commit (it restarted: it lost
+        the road) is no better judge than the larger one; at 15-30 s between fixes every
+        step is bridged, the larger level's one candidate is no lineage that lost a
+        turn, and the unbounded rule lost final answers there; and a deferral held
+        through a long stand left fixes unmatched once the trees covering them were
+        force-pruned (a first build without the lag bound: docs/measured.md "Session 21
+        (agrees5)").
+
+        Example (one level: no smaller level to leave it to):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "v1", MatchSettings(eps_levels=(15.0,)))
+            >>> level = tracker.levels[0]
+            >>> tracker._leaves_to_smaller(level, 0, [level])
+            False
+        """
+        last = self.last_commit
+        if last is None or not any(lv.eps < level.eps and lv.tree_seq < last[2]
+                                   for lv in covering if lv is not level):
+            return False
+        s = self.settings
+        times = self.times
+        t0 = self.times0
+        i = self.next_commit - t0
+        if newest - self.next_commit + 1 > s.max_lag_fixes or (
+                0 <= i < len(times) and t - times[i] > s.max_lag_s):
+            return False
+        k = max(self.next_commit - 1, t0)
+        end = min(level.tree.seq_of(top), t0 + len(times) - 1)
+        while k < end:
+            if times[k + 1 - t0] - times[k - t0] > SPARSE_S:
+                return False
+            k += 1
+        return True
+
+    def _live_from(self) -> int:
+        """The oldest fix not settled, as the live answer reads it.
+
+        ``next_commit``, or the fix after ``agreed_seq`` when ``smallest_agrees``
+        deferred a commit up to there.
+
+        A deferred commit leaves the smaller level's tree as it was; read from here, the
+        live score and the stand checks see the window the commit would have left them,
+        so that the rule changes final answers, not live ones.
+        """
+        return self.agreed_seq + 1 if self.agreed_seq >= self.next_commit else self.next_commit
+
+    def _lag_from(self, seq: int, t: float) -> int:
+        """The first fix a forced commit's lag counts from: :meth:`_live_from`, within bounds.
+
+        With a commit deferred by ``smallest_agrees``, the lag (``max_lag_*``) counts from
+        the fix after the agreed one, as it would had the commit been made, so that no
+        forced commit prunes the smaller level's tree sooner than it would have; but
+        never more than twice the lag behind the oldest fix not committed, so the state
+        stays bounded.
+        """
+        first = self.next_commit
+        if self.agreed_seq < first:
+            return first
+        s = self.settings
+        i = first - self.times0
+        if (seq - first + 1 > 2 * s.max_lag_fixes
+                or (0 <= i < len(self.times) and t - self.times[i] > 2.0 * s.max_lag_s)):
+            return first
+        return self.agreed_seq + 1
 
     def _lag_target(self, seq: int, t: float) -> int:
         """Newest fix a forced commit may reach: half the lag behind the newest fix."""
@@ -3418,10 +3524,15 @@ class Tracker:
         """
         cut = self.next_commit - 1
         max_lag = self.settings.max_lag_fixes
+        # (smallest_agrees: a commit deferred up to agreed_seq starts the forced prune's
+        # count there, as the commit would have; cut_links still cuts at cut)
+        floor = self.agreed_seq if self.agreed_seq >= self.next_commit else -1
         for level in self.levels:
             tree = level.tree
             if tree.hi == tree.lo:
                 continue
+            if level.trim_seq < floor:
+                level.trim_seq = floor
             trim_seq = level.trim_seq if level.trim_seq > cut else cut
             if cut <= level.cut and seq - trim_seq <= 2 * max_lag:
                 level.trim_seq = trim_seq  # what the walk would have returned
@@ -3492,6 +3603,9 @@ class Tracker:
             state["stand"] = [self.stand_from, self.stood_t]
         if self.stand_seq:
             state["stand_seq"] = self.stand_seq
+        if self.agreed_seq >= self.next_commit:
+            # written only while it bounds the live window (absent: -1, as in older states)
+            state["agreed_seq"] = self.agreed_seq
         if self.step_dir is not None:  # with reverse_turns only
             state["step_dir"] = self.step_dir
         if self.rev_t is not None:  # with lone_reverse_turns only
@@ -3603,6 +3717,8 @@ class Tracker:
         if stand is not None:
             tracker.stand_from, tracker.stood_t = tuple(stand[0]), stand[1]
         tracker.stand_seq = state.get("stand_seq", 0)  # written only during a stand
+        # written only with smallest_agrees, while it bounds the live window
+        tracker.agreed_seq = state.get("agreed_seq", -1)
         # written only with reverse_turns, and only when set; absent (older states, or
         # written with reverse_turns off), it is rebuilt from the fix log
         if "step_dir" in state:
