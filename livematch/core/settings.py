@@ -713,6 +713,18 @@ class MatchSettings:
             cells at 1 and 5 s (Helsinki 1 s 2.93 / 2.21 -> 2.34 / 1.61 %), but live
             road+dir falls in two 1 s cells (by 20 and 7 fixes) and at 15-30 s final or
             route mismatch is slightly worse in eight cells.
+        monotone_final: a commit's final answers never go back along the committed path:
+            read as distances along it (from the previous commit's last answer on,
+            when the path joins on to it), they are replaced by their least-squares
+            non-decreasing fit (pool adjacent violators,
+            :func:`livematch.core.isotonic.isotonic_fit`), bounded below by the
+            previous commit's last answer, and each fitted distance is clamped into
+            its own answer's segment: which road every answer is on, the path and the
+            live answers are unchanged, only the offsets and points of final answers
+            move (:meth:`livematch.core.tracker.Tracker._monotone_final`). Why: a
+            vehicle's true position only moves forward along the road it drives; the
+            fit pools the jitter of a standing or slowly driving vehicle (the most
+            likely monotone sequence under Gaussian error). Off by default.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -776,6 +788,7 @@ class MatchSettings:
     no_roll_back: bool = False
     roll_back_slack_m: float = 0.0
     smallest_agrees: bool = False
+    monotone_final: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -816,7 +829,7 @@ class MatchSettings:
                      "stand_pace", "bridge_error_cross", "smallest_commits",
                      "start_roots", "flush_scored", "end_stand_centre",
                      "start_way_out", "stand_loops_sparse", "no_roll_back",
-                     "smallest_agrees"):
+                     "smallest_agrees", "monotone_final"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):
