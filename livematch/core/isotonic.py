@@ -14,7 +14,8 @@ import numpy as np
 import numpy.typing as npt
 
 
-def isotonic_fit(values: npt.ArrayLike, lower: float = -np.inf) -> npt.NDArray[np.float64]:
+def isotonic_fit(values: npt.ArrayLike, lower: float = -np.inf,
+                 weights: npt.ArrayLike | None = None) -> npt.NDArray[np.float64]:
     """The non-decreasing sequence nearest ``values`` in least squares, none below ``lower``.
 
     Pool adjacent violators: walk the values keeping a stack of blocks (sum, count);
@@ -30,6 +31,7 @@ def isotonic_fit(values: npt.ArrayLike, lower: float = -np.inf) -> npt.NDArray[n
     Args:
         values: the observations in order (metres along a path); any length.
         lower: no fitted value below this (``-inf``: no bound).
+        weights: a positive weight per value (``None``: all 1).
 
     Returns:
         The fitted values, as float64, the same length as ``values``.
@@ -44,17 +46,21 @@ def isotonic_fit(values: npt.ArrayLike, lower: float = -np.inf) -> npt.NDArray[n
     """
     y = np.asarray(values, dtype=np.float64).ravel()
     n = len(y)
-    sums: list[float] = []
+    w = [1.0] * n if weights is None else np.asarray(weights, dtype=np.float64).tolist()
+    sums: list[float] = []  # per block: weighted sum, total weight, values
+    totals: list[float] = []
     counts: list[int] = []
-    for v in y.tolist():
-        s, c = v, 1
+    for v, wv in zip(y.tolist(), w, strict=True):
+        s, tw, c = v * wv, wv, 1
         # merge while the new block's mean lies below the previous block's mean
-        while sums and s * counts[-1] < sums[-1] * c:
+        while sums and s * totals[-1] < sums[-1] * tw:
             s += sums.pop()
+            tw += totals.pop()
             c += counts.pop()
         sums.append(s)
+        totals.append(tw)
         counts.append(c)
-    out = np.repeat(np.asarray([s / c for s, c in zip(sums, counts, strict=True)],
+    out = np.repeat(np.asarray([s / tw for s, tw in zip(sums, totals, strict=True)],
                                dtype=np.float64), np.asarray(counts, dtype=np.int64))
     if n and lower > -np.inf:
         np.maximum(out, lower, out=out)

@@ -725,6 +725,13 @@ class MatchSettings:
             vehicle's true position only moves forward along the road it drives; the
             fit pools the jitter of a standing or slowly driving vehicle (the most
             likely monotone sequence under Gaussian error). Off by default.
+        monotone_pool: with ``monotone_final``, no bound from the previous commit: the
+            last block of its fit (mean and count) is pooled into the next commit's fit
+            as one weighted value, so that the answers of a stand committed one or two
+            fixes at a time (as at 1 Hz) are the running mean of the stand rather than
+            ratcheted forward by the bound to the most forward jitter so far; answers
+            may then go back across a commit boundary (by less than without the
+            rule). Off by default.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -789,6 +796,7 @@ class MatchSettings:
     roll_back_slack_m: float = 0.0
     smallest_agrees: bool = False
     monotone_final: bool = False
+    monotone_pool: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -829,7 +837,7 @@ class MatchSettings:
                      "stand_pace", "bridge_error_cross", "smallest_commits",
                      "start_roots", "flush_scored", "end_stand_centre",
                      "start_way_out", "stand_loops_sparse", "no_roll_back",
-                     "smallest_agrees", "monotone_final"):
+                     "smallest_agrees", "monotone_final", "monotone_pool"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

@@ -410,8 +410,10 @@ class Tracker:
         # with speed_pace_m: the reported speed of the last accepted fix (m/s), if any
         self.last_v: float | None = None
         # with monotone_final: the final answer (segment, offset_m) of the fix committed
-        # last, the bound the next commit's answers along the path must not fall below
-        self.along_last: tuple[int, float] | None = None
+        # last, the bound the next commit's answers along the path must not fall below,
+        # then the last block of that commit's fit (its mean along the path, from the
+        # start of that segment, and its weight; 0: none) for monotone_pool
+        self.along_last: tuple[int, float, float, float] | None = None
 
     def fix_time(self, seq: int) -> float | None:
         """The time of accepted fix ``seq`` while it is kept (``times``), else None.
@@ -3422,7 +3424,12 @@ class Tracker:
         replaced by their least-squares non-decreasing fit (:func:`isotonic_fit`), no
         lower than the previous commit's last answer, and each fitted distance is
         clamped into its own answer's segment: the segment of every answer stays as it
-        was, only its offset and point move (``MatchSettings.monotone_final``).
+        was, only its offset and point move (``MatchSettings.monotone_final``). With
+        ``monotone_pool`` there is no such bound: the last block of the previous
+        commit's fit (its mean along the path and how many answers it pooled, kept in
+        ``along_last``) takes part in this fit as one weighted value, so that a stand
+        committed a fix or two at a time is pooled across commits instead of ratcheted
+        forward; an answer may then lie behind the previous commit's last one.
 
         A path is directed (a turn round enters the twin segment), so distance along it
         grows through U-turns; segments bridged between fixes count their whole length.
@@ -3474,11 +3481,30 @@ class Tracker:
             else:
                 at.append(-1)
         out = list(fixes)
+        pool = self.settings.monotone_pool
+        block: tuple[int, float, float] | None = None  # segment, mean from its start, weight
         for run in sorted({runs[k] for k in at if k >= 0}):
             idx = [i for i, k in enumerate(at) if k >= 0 and runs[k] == run]
             along = [starts_m[at[i]] + fixes[i].offset_m for i in idx]
-            lower = prev[1] if prev is not None and run == 0 else -math.inf
-            fitted = isotonic_fit(along, lower)
+            weights = [1.0] * len(along)
+            lower = -math.inf
+            carried = 0
+            if prev is not None and run == 0:
+                if not pool:
+                    lower = prev[1]
+                elif prev[3] > 0.0:
+                    along.insert(0, prev[2])
+                    weights.insert(0, prev[3])
+                    carried = 1
+            free = isotonic_fit(along, weights=weights)
+            fitted = np.maximum(free, lower)[carried:]
+            # the last block of the fit: the values fitted to the last value's mean
+            tail = len(free) - 1
+            while tail > 0 and free[tail - 1] == free[-1]:
+                tail -= 1
+            last_i = idx[-1]
+            block = (fixes[last_i].segment, float(free[-1]) - starts_m[at[last_i]],
+                     float(sum(weights[tail:])))
             for i, value in zip(idx, fitted.tolist(), strict=True):
                 f = fixes[i]
                 length = float(slen[f.segment])
@@ -3487,7 +3513,10 @@ class Tracker:
                     x, y = _point(view, f.segment, off / length if length > 0.0 else 0.0)
                     out[i] = MatchedFix(f.t, f.segment, off, x, y)
         last = out[-1]
-        self.along_last = (last.segment, last.offset_m)
+        if block is not None and block[0] == last.segment and at[-1] >= 0:
+            self.along_last = (last.segment, last.offset_m, block[1], block[2])
+        else:
+            self.along_last = (last.segment, last.offset_m, 0.0, 0.0)
         return out
 
     def _trim(self, seq: int, t: float) -> None:
@@ -3706,7 +3735,8 @@ class Tracker:
             tracker.lap_due = lap[2]
         along = state.get("along")  # written only with monotone_final (absent in older states)
         if along is not None:
-            tracker.along_last = (int(along[0]), float(along[1]))
+            tracker.along_last = (int(along[0]), float(along[1]), float(along[2]),
+                                  float(along[3]))
         said = state.get("said")  # written only with hold_filtered (absent in older states)
         if said is not None:
             tracker.said = _SAID.pack(*said)
