@@ -178,30 +178,6 @@ def test_monotone_final_off_by_default_and_validated() -> None:
     """Off unless set; a value other than true or false is refused."""
     assert MatchSettings().monotone_final is False
     assert MatchSettings().monotone_pool is False
-    assert MatchSettings().monotone_cross is False
-    assert "monotone_cross" in dict(MatchSettings(monotone_cross=0).problems())  # type: ignore[arg-type]
     assert "monotone_final" in dict(MatchSettings(monotone_final=1).problems())  # type: ignore[arg-type]
     assert "monotone_pool" in dict(MatchSettings(monotone_pool="yes").problems())  # type: ignore[arg-type]
     assert not POOL.problems()
-
-
-@pytest.mark.parametrize("seed", [1, 2])
-def test_monotone_cross_moves_answers_only_along_the_path(seed: int) -> None:
-    """With ``monotone_cross`` a fitted distance past its answer's segment moves the
-    answer onto the next path segment: the answers never go back along the road
-    (shapely), each lies on a segment of the unchanged committed path, on its line."""
-    _, pts = stand_drive(seed)
-    net = straight_road()
-    cross = MatchSettings(monotone_final=True, monotone_cross=True)
-    on_events = track_points(net, cross, pts)
-    off_events = track_points(net, OFF, pts)
-    on = final_answers(on_events)
-    path = committed_path(on_events)
-    assert path == committed_path(off_events)
-    assert all(b >= a - 1e-3 for a, b in itertools.pairwise(_along(on)))
-    xy = net.node_xy
-    for seg, offset, x, y in on.values():
-        assert seg in path
-        line = shapely.LineString([xy[net.seg_from[seg]], xy[net.seg_to[seg]]])
-        assert abs(line.project(shapely.Point(x, y)) - offset) <= 1e-6  # shapely
-        assert line.distance(shapely.Point(x, y)) <= 1e-6  # shapely

@@ -732,11 +732,6 @@ class MatchSettings:
             ratcheted forward by the bound to the most forward jitter so far; answers
             may then go back across a commit boundary (by less than without the
             rule). Off by default.
-        monotone_cross: with ``monotone_final``, a fitted distance that lies past its
-            own answer's segment moves the answer onto the path segment it lies on
-            (the path is unchanged; the segment of an answer may change to the one
-            before or after it on the path) instead of being clamped at the end of its
-            own segment. Off by default.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -802,7 +797,6 @@ class MatchSettings:
     smallest_agrees: bool = False
     monotone_final: bool = False
     monotone_pool: bool = False
-    monotone_cross: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -843,8 +837,7 @@ class MatchSettings:
                      "stand_pace", "bridge_error_cross", "smallest_commits",
                      "start_roots", "flush_scored", "end_stand_centre",
                      "start_way_out", "stand_loops_sparse", "no_roll_back",
-                     "smallest_agrees", "monotone_final", "monotone_pool",
-                     "monotone_cross"):
+                     "smallest_agrees", "monotone_final", "monotone_pool"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

@@ -3482,10 +3482,7 @@ class Tracker:
                 at.append(-1)
         out = list(fixes)
         pool = self.settings.monotone_pool
-        cross = self.settings.monotone_cross
-        # the last block of the last run's fit: the last answer's segment, the block's
-        # mean along the path from that segment's start, its weight
-        block: tuple[int, float, float] | None = None
+        block: tuple[int, float, float] | None = None  # segment, mean from its start, weight
         for run in sorted({runs[k] for k in at if k >= 0}):
             idx = [i for i, k in enumerate(at) if k >= 0 and runs[k] == run]
             along = [starts_m[at[i]] + fixes[i].offset_m for i in idx]
@@ -3505,26 +3502,16 @@ class Tracker:
             tail = len(free) - 1
             while tail > 0 and free[tail - 1] == free[-1]:
                 tail -= 1
-            block_w = float(sum(weights[tail:]))
-            first_k = runs.index(run)
-            last_k = len(runs) - 1 - runs[::-1].index(run)
+            last_i = idx[-1]
+            block = (fixes[last_i].segment, float(free[-1]) - starts_m[at[last_i]],
+                     float(sum(weights[tail:])))
             for i, value in zip(idx, fitted.tolist(), strict=True):
                 f = fixes[i]
-                k = at[i]
-                if cross:
-                    # the path segment the fitted distance lies on (its own if on it)
-                    while k < last_k and value > starts_m[k] + float(slen[local[k]]):
-                        k += 1
-                    while k > first_k and value < starts_m[k]:
-                        k -= 1
-                seg = local[k]
-                if i == idx[-1]:
-                    block = (seg, float(free[-1]) - starts_m[k], block_w)
-                length = float(slen[seg])
-                off = min(max(value - starts_m[k], 0.0), length)
-                if off != f.offset_m or seg != f.segment:
-                    x, y = _point(view, seg, off / length if length > 0.0 else 0.0)
-                    out[i] = MatchedFix(f.t, seg, off, x, y)
+                length = float(slen[f.segment])
+                off = min(max(value - starts_m[at[i]], 0.0), length)
+                if off != f.offset_m:
+                    x, y = _point(view, f.segment, off / length if length > 0.0 else 0.0)
+                    out[i] = MatchedFix(f.t, f.segment, off, x, y)
         last = out[-1]
         if block is not None and block[0] == last.segment and at[-1] >= 0:
             self.along_last = (last.segment, last.offset_m, block[1], block[2])
