@@ -174,6 +174,24 @@ def test_monotone_final_survives_a_checkpoint(restore_at: int, settings: MatchSe
                         restore_at=restore_at) == whole
 
 
+def test_monotone_final_state_carries_the_bound() -> None:
+    """After a commit the state holds the last answer under ``along`` (only with the key),
+    and a restored tracker has it back."""
+    from livematch.core.fix import Fix
+    from livematch.core.tracker import Tracker
+
+    _, pts = stand_drive(7)
+    net = straight_road()
+    on, off = Tracker(net, "v", ON), Tracker(net, "v", OFF)
+    for i, (x, y) in enumerate(pts[:120]):
+        on.update(Fix("v", float(i), 0.0, 0.0, x, y))
+        off.update(Fix("v", float(i), 0.0, 0.0, x, y))
+    assert on.along_last is not None and b'"along"' in on.to_bytes()
+    assert off.along_last is None and b'"along"' not in off.to_bytes()
+    restored = Tracker.from_bytes(net, ON, on.to_bytes())
+    assert restored.along_last == on.along_last
+
+
 def test_monotone_final_off_by_default_and_validated() -> None:
     """Off unless set; a value other than true or false is refused."""
     assert MatchSettings().monotone_final is False
