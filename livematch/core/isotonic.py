@@ -23,10 +23,10 @@ def isotonic_fit(values: npt.ArrayLike, lower: float = -np.inf,
     merging goes on while the merged mean lies below the block before. Every block's
     fitted value is its mean. O(n): each value is pushed once and merged at most once.
 
-    The constant lower bound is met by clipping the unconstrained fit (for the L2 fit
-    with equal weights, clipping a monotone fit at a constant gives the constrained
-    optimum: the blocks below the bound all move to it, which no other monotone choice
-    above the bound beats, term by term).
+    The constant lower bound is met by clipping the unconstrained fit: for the weighted
+    L2 fit, clipping the isotonic fit at a constant is the isotonic fit under that
+    bound (the blocks whose mean lies below the bound all move to it; checked against
+    SciPy in ``tests/test_isotonic.py``).
 
     Args:
         values: the observations in order (metres along a path); any length.
