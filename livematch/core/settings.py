@@ -719,6 +719,25 @@ class MatchSettings:
             road+dir rises or stays in all 32 and route mismatch falls or stays in all
             32 (routed trips Helsinki 1 s 2.93 / 2.21 -> 2.34 / 1.80 %; the 15 and 30 s
             cells identical); docs/measured.md "Session 21 (agrees5)".
+        monotone_final: a commit's final answers never go back along the committed path:
+            read as distances along it (from the previous commit's last answer on,
+            when the path joins on to it), they are replaced by their least-squares
+            non-decreasing fit (pool adjacent violators,
+            :func:`livematch.core.isotonic.isotonic_fit`), bounded below by the
+            previous commit's last answer, and each fitted distance is clamped into
+            its own answer's segment: which road every answer is on, the path and the
+            live answers are unchanged, only the offsets and points of final answers
+            move (:meth:`livematch.core.tracker.Tracker._monotone_final`). Why: a
+            vehicle's true position only moves forward along the road it drives; the
+            fit pools the jitter of a standing or slowly driving vehicle (the most
+            likely monotone sequence under Gaussian error). Off by default.
+        monotone_pool: with ``monotone_final``, no bound from the previous commit: the
+            last block of its fit (mean and count) is pooled into the next commit's fit
+            as one weighted value, so that the answers of a stand committed one or two
+            fixes at a time (as at 1 Hz) are the running mean of the stand rather than
+            ratcheted forward by the bound to the most forward jitter so far; answers
+            may then go back across a commit boundary (by less than without the
+            rule). Off by default.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -782,6 +801,8 @@ class MatchSettings:
     no_roll_back: bool = False
     roll_back_slack_m: float = 0.0
     smallest_agrees: bool = True
+    monotone_final: bool = False
+    monotone_pool: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -822,7 +843,7 @@ class MatchSettings:
                      "stand_pace", "bridge_error_cross", "smallest_commits",
                      "start_roots", "flush_scored", "end_stand_centre",
                      "start_way_out", "stand_loops_sparse", "no_roll_back",
-                     "smallest_agrees"):
+                     "smallest_agrees", "monotone_final", "monotone_pool"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):

@@ -104,6 +104,7 @@ from livematch.core.heading import (
     grid_heading,
     state_charges,
 )
+from livematch.core.isotonic import isotonic_fit
 from livematch.core.network import RoadNetwork
 from livematch.core.routing import connect, small_loop
 from livematch.core.settings import MatchSettings
@@ -340,9 +341,9 @@ class Tracker:
 
     # slots: a service holds one tracker per vehicle, and an instance dict costs more
     # than a small candidate tree
-    __slots__ = ("_held", "_view", "agreed_seq", "before", "buffer", "fix_n", "fix_seq0", "fix_xy",
-                 "jumps", "lap_due", "lap_v", "last", "last_commit", "last_released_t",
-                 "last_seg", "last_v", "levels",
+    __slots__ = ("_held", "_view", "agreed_seq", "along_last", "before", "buffer", "fix_n",
+                 "fix_seq0", "fix_xy", "jumps", "lap_due", "lap_v", "last", "last_commit",
+                 "last_released_t", "last_seg", "last_v", "levels",
                  "network", "next_commit", "rev_t", "said", "seq", "settings", "skipped",
                  "speed", "stand_from", "stand_seq", "step_dir", "stood_t", "times", "times0",
                  "vehicle")
@@ -412,6 +413,11 @@ class Tracker:
         self.lap_due = 0.0
         # with speed_pace_m: the reported speed of the last accepted fix (m/s), if any
         self.last_v: float | None = None
+        # with monotone_final: the final answer (segment, offset_m) of the fix committed
+        # last, the bound the next commit's answers along the path must not fall below,
+        # then the last block of that commit's fit (its mean along the path, from the
+        # start of that segment, and its weight; 0: none) for monotone_pool
+        self.along_last: tuple[int, float, float, float] | None = None
 
     def fix_time(self, seq: int) -> float | None:
         """The time of accepted fix ``seq`` while it is kept (``times``), else None.
@@ -2053,6 +2059,8 @@ class Tracker:
                     path.append(entered)
                     top = Node(entered, first.seq, first.t, 0.0, view.vx[v], view.vy[v],
                                first.parent, (), first.cost, 0.0)
+        if self.settings.monotone_final:
+            fixes = self._monotone_final(fixes, path, starts)
         if self.skipped:
             fixes = self._fill_skipped(chain, before, math.inf if settle_all else top.t, fixes)
         events.append(Commit(self.vehicle, tuple(fixes), tuple(path)))
@@ -3512,6 +3520,111 @@ class Tracker:
         out.sort(key=lambda m: m.t)
         return out
 
+    def _monotone_final(
+        self, fixes: list[MatchedFix], path: list[int], starts: bool
+    ) -> list[MatchedFix]:
+        """The commit's final answers moved so that they never go back along its path.
+
+        Each answer is read as a distance along the committed path (from the previous
+        commit's last answer on, when the path joins on to it); the distances are
+        replaced by their least-squares non-decreasing fit (:func:`isotonic_fit`), no
+        lower than the previous commit's last answer, and each fitted distance is
+        clamped into its own answer's segment: the segment of every answer stays as it
+        was, only its offset and point move (``MatchSettings.monotone_final``). With
+        ``monotone_pool`` there is no such bound: the last block of the previous
+        commit's fit (its mean along the path and how many answers it pooled, kept in
+        ``along_last``) takes part in this fit as one weighted value, so that a stand
+        committed a fix or two at a time is pooled across commits instead of ratcheted
+        forward; an answer may then lie behind the previous commit's last one.
+
+        A path is directed (a turn round enters the twin segment), so distance along it
+        grows through U-turns; segments bridged between fixes count their whole length.
+        The path is cut where a segment's head is not the next one's tail (a break): the
+        pieces are fitted apart, and only the first one is bounded by the previous
+        commit. An answer whose segment the walk along the path does not find is left
+        as it is (and takes no part in the fit).
+
+        Example (a vehicle standing at 50 m on a 100 m road, its answers jittering):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "van", MatchSettings(monotone_final=True))
+            >>> fixes = [MatchedFix(float(t), 0, off, off, 0.0)
+            ...          for t, off in enumerate((50.0, 53.0, 47.0, 50.0))]
+            >>> [f.offset_m for f in tracker._monotone_final(fixes, [0], True)]
+            [50.0, 50.0, 50.0, 50.0]
+        """
+        view = self._view
+        slen = view.slen
+        prev = None if starts else self.along_last
+        local = list(path)
+        if prev is not None and self.last_commit is not None:
+            top_seg = self.last_commit[0]
+            local[:0] = [prev[0]] if prev[0] == top_seg else [prev[0], top_seg]
+        else:
+            prev = None
+        if not local:
+            return fixes
+        # run of each path index (a new run where the path does not connect), and the
+        # distance along its run to the start of each segment
+        runs = [0] * len(local)
+        starts_m = [0.0] * len(local)
+        for j in range(1, len(local)):
+            a, b = local[j - 1], local[j]
+            if view.st[a] == view.sf[b]:
+                runs[j] = runs[j - 1]
+                starts_m[j] = starts_m[j - 1] + float(slen[a])
+            else:
+                runs[j] = runs[j - 1] + 1
+        at: list[int] = []  # path index of each answer (-1: not found)
+        j = 0
+        for f in fixes:
+            k = j
+            while k < len(local) and local[k] != f.segment:
+                k += 1
+            if k < len(local):
+                at.append(k)
+                j = k
+            else:
+                at.append(-1)
+        out = list(fixes)
+        pool = self.settings.monotone_pool
+        block: tuple[int, float, float] | None = None  # segment, mean from its start, weight
+        for run in sorted({runs[k] for k in at if k >= 0}):
+            idx = [i for i, k in enumerate(at) if k >= 0 and runs[k] == run]
+            along = [starts_m[at[i]] + fixes[i].offset_m for i in idx]
+            weights = [1.0] * len(along)
+            lower = -math.inf
+            carried = 0
+            if prev is not None and run == 0:
+                if not pool:
+                    lower = prev[1]
+                elif prev[3] > 0.0:
+                    along.insert(0, prev[2])
+                    weights.insert(0, prev[3])
+                    carried = 1
+            free = isotonic_fit(along, weights=weights)
+            fitted = np.maximum(free, lower)[carried:]
+            # the last block of the fit: the values fitted to the last value's mean
+            tail = len(free) - 1
+            while tail > 0 and free[tail - 1] == free[-1]:
+                tail -= 1
+            last_i = idx[-1]
+            block = (fixes[last_i].segment, float(free[-1]) - starts_m[at[last_i]],
+                     float(sum(weights[tail:])))
+            for i, value in zip(idx, fitted.tolist(), strict=True):
+                f = fixes[i]
+                length = float(slen[f.segment])
+                off = min(max(value - starts_m[at[i]], 0.0), length)
+                if off != f.offset_m:
+                    x, y = _point(view, f.segment, off / length if length > 0.0 else 0.0)
+                    out[i] = MatchedFix(f.t, f.segment, off, x, y)
+        last = out[-1]
+        if block is not None and block[0] == last.segment and at[-1] >= 0:
+            self.along_last = (last.segment, last.offset_m, block[1], block[2])
+        else:
+            self.along_last = (last.segment, last.offset_m, 0.0, 0.0)
+        return out
+
     def _trim(self, seq: int, t: float) -> None:
         """Cut history no future commit needs; force-prune trees deeper than the lag.
 
@@ -3614,6 +3727,8 @@ class Tracker:
             state["last_v"] = self.last_v
         if self.lap_v:  # with speed_laps only, and only with reported speeds
             state["lap_v"] = [list(self.lap_v), list(self.lap_v.values()), self.lap_due]
+        if self.along_last is not None:  # with monotone_final only
+            state["along"] = self.along_last
         if self.said is not None:  # only with hold_filtered
             # t, segment, offset_m, x, y, eps_m, window_fixes, window_s
             said = self.said
@@ -3734,6 +3849,10 @@ class Tracker:
         if lap is not None:
             tracker.lap_v = dict(zip(lap[0], lap[1], strict=True))
             tracker.lap_due = lap[2]
+        along = state.get("along")  # written only with monotone_final (absent in older states)
+        if along is not None:
+            tracker.along_last = (int(along[0]), float(along[1]), float(along[2]),
+                                  float(along[3]))
         said = state.get("said")  # written only with hold_filtered (absent in older states)
         if said is not None:
             tracker.said = _SAID.pack(*said)
