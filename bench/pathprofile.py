@@ -37,6 +37,7 @@ import re
 import sys
 import time
 from collections import Counter
+from collections.abc import Iterator
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -104,6 +105,16 @@ def lines_with(path: str, text: str) -> set[int]:
             if text in line and not line.lstrip().startswith("#")}
 
 
+def timed_stacks(path: str) -> Iterator[tuple[list[str], int]]:
+    """The stacks of a py-spy raw profile (``frame;frame;... count`` per line) taken
+    inside ``timed_rounds``, with their sample counts: the part both readings share."""
+    for line in Path(path).read_text().splitlines():
+        stack, _, count = line.rpartition(" ")
+        frames = stack.split(";")
+        if any(f.startswith("timed_rounds ") for f in frames):
+            yield frames, int(count)
+
+
 def split(path: str, us: float | None) -> None:
     """Print each stage's share of the samples in the timed rounds (module docstring)."""
     tree_lines = {(Path(file).name, k) for file, texts in TREE_CALLS for text in texts
@@ -111,12 +122,7 @@ def split(path: str, us: float | None) -> None:
     calls = [(stage, Path(file).name, lines_with(file, text)) for stage, file, text in CALLS]
     shares: Counter[str] = Counter()
     total = 0
-    for line in Path(path).read_text().splitlines():
-        stack, _, count = line.rpartition(" ")
-        frames = stack.split(";")
-        if not any(f.startswith("timed_rounds ") for f in frames):
-            continue
-        n = int(count)
+    for frames, n in timed_stacks(path):
         total += n
         stage = "glue (handle, _outputs, monitors' dispatch, events)"
         for name, pattern in STAGES:
@@ -155,14 +161,9 @@ def functions(path: str, top: int) -> None:
     """
     incl: Counter[str] = Counter()
     total = 0
-    for line in Path(path).read_text().splitlines():
-        stack, _, count = line.rpartition(" ")
-        frames = stack.split(";")
-        if not any(f.startswith("timed_rounds ") for f in frames):
-            continue
-        n = int(count)
+    for frames, n in timed_stacks(path):
         total += n
-        for name in {f.split(" (")[0] for f in frames}:
+        for name in sorted({f.split(" (")[0] for f in frames}):
             incl[name] += n
     if not total:
         print("no samples inside timed_rounds")
