@@ -132,8 +132,11 @@ def pooled_rmf(network: RoadNetwork, pairs: list[tuple[list[int], list[int]]]) -
 def measure(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
             detours: list[float], livematch: bool,
             matcher: dict[str, Any], point: bool = True,
-            with_causes: bool = False) -> dict[str, Any]:
-    """The figures of one (extract, interval); see the module docstring."""
+            with_causes: bool = False,
+            detail: list[dict[str, Any]] | None = None) -> dict[str, Any]:
+    """The figures of one (extract, interval); see the module docstring. With
+    ``with_causes``, every mismatch episode of :func:`causes` is appended to ``detail``
+    (when given)."""
     oracle = fleet_oracle(network, fleet, point)
     gaps = [g for o in oracle.values() for g in o[2]]
     driven = sum(g.driven_m for g in gaps)
@@ -163,7 +166,7 @@ def measure(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
     times = {d.vehicle: [o.t for o in obs] for d, obs in fleet}
     if with_causes:
         run, commits, kinds = run_with_commits(network, records, xy, times, matcher)
-        row["causes"] = causes(network, fleet, oracle, run, commits, kinds)
+        row["causes"] = causes(network, fleet, oracle, run, commits, kinds, detail)
     else:
         run = acc.run_inproc(network, records, xy, times, matcher)
     scored = acc.score(network, fleet, run)
@@ -573,6 +576,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--no-point", action="store_true",
                     help="skip the point oracle (slow at 1 s): the directed oracle's path "
                          "stands in for it")
+    ap.add_argument("--detail", default=None,
+                    help="with --causes: write every mismatch episode here, one JSON line "
+                         "each (vehicle, gaps, cause, added_m, missed_m, segments)")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     ap.add_argument("--tag", default="", help="result files oracle.TAG.md/.json")
     args = ap.parse_args(argv)
@@ -583,6 +589,7 @@ def main(argv: list[str] | None = None) -> int:
     code_state = acc.git_state()
     started = time.perf_counter()
     rows = []
+    episodes: list[dict[str, Any]] = []
     for ei, name in enumerate(args.extract.split(",")):
         network = acc.load_network(acc.extract_path(name))
         allowed = drivable_segments(network)
@@ -590,9 +597,11 @@ def main(argv: list[str] | None = None) -> int:
         drives = acc.simulate_drives(network, args.seed, ei, args.drives, settings, allowed)
         for k in intervals:
             fleet = [(d, observe(d, k)) for d in drives]
+            got: list[dict[str, Any]] = []
             row = {"extract": name, "interval_s": k,
                    **measure(network, fleet, detours, args.livematch == "inproc", matcher,
-                                  not args.no_point, args.causes)}
+                             not args.no_point, args.causes, got)}
+            episodes.extend({"extract": name, "interval_s": k, **e} for e in got)
             rows.append(row)
             print(json.dumps(row), file=sys.stderr)
     command = "bench/oracle.py " + " ".join(argv if argv is not None else sys.argv[1:])
@@ -608,6 +617,9 @@ def main(argv: list[str] | None = None) -> int:
     (out / f"{stem}.md").write_text(table, encoding="utf-8")
     (out / f"{stem}.json").write_text(json.dumps({"meta": meta, "rows": rows}, indent=1),
                                       encoding="utf-8")
+    if args.detail:
+        Path(args.detail).write_text("".join(json.dumps(e) + "\n" for e in episodes),
+                                     encoding="utf-8")
     return 0
 
 
