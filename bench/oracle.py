@@ -486,6 +486,52 @@ def causes(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
             "commits": len(kinds), "forced_commits": forced}
 
 
+def episode_class(network: RoadNetwork, ep: dict[str, Any]) -> str:
+    """A finer class of one ``--detail`` episode: its cause, refined where it says more.
+
+    ``fix_*``: ``/junction`` when a wrong final answer's segment shares a vertex with the
+    true segment of its fix or that segment's twin (answered on the road just before or
+    after a junction), ``/service`` when the wrong answer or the truth is on a
+    ``highway=service`` road (a parking aisle or a lane beside the road), ``/road``
+    else. ``laps``: ``/dead_end`` when a missed segment ends at a dead end (a vertex
+    left only by the segment's twin), ``/ring`` else. Other causes are kept as they are.
+    """
+    cause = str(ep["cause"])
+    if cause.startswith("fix_"):
+        fixes = [i for i in [*ep["gaps"], ep["b"]] if i is not None and i >= 0]
+        sub = "road"
+        for i, f, t in zip(fixes, ep["final"], ep["true_seg"], strict=True):
+            if i not in ep["wrong"] or f is None:
+                continue
+            ends = {int(network.seg_from[t]), int(network.seg_to[t])}
+            if ends & {int(network.seg_from[f]), int(network.seg_to[f])}:
+                return cause + "/junction"
+            if "service" in (acc.highway(network, f), acc.highway(network, t)):
+                sub = "service"
+        return f"{cause}/{sub}"
+    if cause == "laps":
+        leaving: Counter[int] = Counter(int(v) for v in network.seg_from)
+        for s in ep["missed"]:
+            head = int(network.seg_to[s])
+            if leaving[head] == 1 and int(network.seg_twin[s]) >= 0:
+                return "laps/dead_end"
+        return "laps/ring"
+    return cause
+
+
+def summary(network: RoadNetwork, episodes: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """The ``--detail`` episodes' mismatch metres (added + missed) per
+    :func:`episode_class`, largest first: metres, share of all, episodes, the largest."""
+    by: dict[str, list[float]] = {}
+    for ep in episodes:
+        by.setdefault(episode_class(network, ep), []).append(ep["added_m"] + ep["missed_m"])
+    total = sum(sum(v) for v in by.values())
+    rows = [{"class": k, "metres": round(sum(v), 1),
+             "share": round(sum(v) / total, 4) if total else math.nan,
+             "episodes": len(v), "largest_m": round(max(v), 1)} for k, v in by.items()]
+    return sorted(rows, key=lambda r: -r["metres"])
+
+
 def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
     xs = meta["detours"]
     lines = [
@@ -579,9 +625,23 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--detail", default=None,
                     help="with --causes: write every mismatch episode here, one JSON line "
                          "each (vehicle, gaps, cause, added_m, missed_m, segments)")
+    ap.add_argument("--summary", nargs="+", default=None, metavar="DETAIL",
+                    help="print the mismatch of these --detail files by episode_class() "
+                         "(one table per file; --extract names their extract) and exit")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     ap.add_argument("--tag", default="", help="result files oracle.TAG.md/.json")
     args = ap.parse_args(argv)
+    if args.summary:
+        network = acc.load_network(acc.extract_path(args.extract.split(",")[0]))
+        for name in args.summary:
+            lines = Path(name).read_text(encoding="utf-8").splitlines()
+            got = summary(network, [json.loads(x) for x in lines if x.strip()])
+            print(f"\n{name}\n\n| class | metres | share | episodes | largest m |\n"
+                  "|---|---:|---:|---:|---:|")
+            for r in got:
+                print(f"| {r['class']} | {r['metres']:.0f} | {100 * r['share']:.1f} % | "
+                      f"{r['episodes']} | {r['largest_m']:.0f} |")
+        return 0
     intervals = [int(k) for k in args.intervals.split(",")]
     detours = [float(x) for x in args.detour.split(",")]
     settings = DriveSettings(duration_s=args.duration, **acc.SIM_MODELS[args.sim])
