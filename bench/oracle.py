@@ -510,10 +510,10 @@ def episode_class(network: RoadNetwork, ep: dict[str, Any]) -> str:
                 sub = "service"
         return f"{cause}/{sub}"
     if cause == "laps":
-        leaving: Counter[int] = Counter(int(v) for v in network.seg_from)
+        leaving = np.bincount(network.seg_from, minlength=len(network.node_xy))
         for s in ep["missed"]:
             head = int(network.seg_to[s])
-            if leaving[head] == 1 and int(network.seg_twin[s]) >= 0:
+            if int(leaving[head]) == 1 and int(network.seg_twin[s]) >= 0:
                 return "laps/dead_end"
         return "laps/ring"
     return cause
