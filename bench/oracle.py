@@ -486,8 +486,14 @@ def causes(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
             "commits": len(kinds), "forced_commits": forced}
 
 
-def episode_class(network: RoadNetwork, ep: dict[str, Any]) -> str:
+def episode_class(network: RoadNetwork, ep: dict[str, Any],
+                  misses: dict[tuple[str, int], str] | None = None) -> str:
     """A finer class of one ``--detail`` episode: its cause, refined where it says more.
+
+    With ``misses`` (bench/fleetmiss.py's cause of each final miss, by vehicle and fix
+    index: :func:`fleetmiss_causes`), a ``fix_*`` episode is ``fix:<cause>``, the cause
+    most of its wrong fixes have (ties: the first wrong fix's), ``?`` for none known.
+    Without it:
 
     ``fix_*``: ``/junction`` when a wrong final answer's segment shares a vertex with the
     true segment of its fix or that segment's twin (answered on the road just before or
@@ -497,6 +503,9 @@ def episode_class(network: RoadNetwork, ep: dict[str, Any]) -> str:
     left only by the segment's twin), ``/ring`` else. Other causes are kept as they are.
     """
     cause = str(ep["cause"])
+    if cause.startswith("fix_") and misses is not None:
+        known = [misses.get((ep["vehicle"], int(i)), "?") for i in ep["wrong"]]
+        return "fix:" + (Counter(known).most_common(1)[0][0] if known else "?")
     if cause.startswith("fix_"):
         fixes = [i for i in [*ep["gaps"], ep["b"]] if i is not None and i >= 0]
         sub = "road"
@@ -519,12 +528,23 @@ def episode_class(network: RoadNetwork, ep: dict[str, Any]) -> str:
     return cause
 
 
-def summary(network: RoadNetwork, episodes: list[dict[str, Any]]) -> list[dict[str, Any]]:
+def fleetmiss_causes(dump: list[dict[str, Any]], cell: list[Any]
+                     ) -> dict[tuple[str, int], str]:
+    """From a ``bench/fleetmiss.py --dump`` (one dict per episode of final misses), the
+    cause of every missed fix of one cell (``[sim, seed, extract, interval_s]``), by
+    vehicle and fix index."""
+    return {(d["vehicle"], int(f["i"])): str(d["cause"]) for d in dump
+            if list(d["cell"]) == list(cell) for f in d["fixes"] if f["miss"]}
+
+
+def summary(network: RoadNetwork, episodes: list[dict[str, Any]],
+            misses: dict[tuple[str, int], str] | None = None) -> list[dict[str, Any]]:
     """The ``--detail`` episodes' mismatch metres (added + missed) per
     :func:`episode_class`, largest first: metres, share of all, episodes, the largest."""
     by: dict[str, list[float]] = {}
     for ep in episodes:
-        by.setdefault(episode_class(network, ep), []).append(ep["added_m"] + ep["missed_m"])
+        by.setdefault(episode_class(network, ep, misses), []).append(
+            ep["added_m"] + ep["missed_m"])
     total = sum(sum(v) for v in by.values())
     rows = [{"class": k, "metres": round(sum(v), 1),
              "share": round(sum(v) / total, 4) if total else math.nan,
@@ -628,14 +648,25 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--summary", nargs="+", default=None, metavar="DETAIL",
                     help="print the mismatch of these --detail files by episode_class() "
                          "(one table per file; --extract names their extract) and exit")
+    ap.add_argument("--fleetmiss", default=None, metavar="DUMP",
+                    help="with --summary: class fix_* episodes by bench/fleetmiss.py's "
+                         "cause of their wrong fixes, from this --dump file (its cell "
+                         "given by --sim, --seed, --extract, --intervals)")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     ap.add_argument("--tag", default="", help="result files oracle.TAG.md/.json")
     args = ap.parse_args(argv)
     if args.summary:
-        network = acc.load_network(acc.extract_path(args.extract.split(",")[0]))
+        extract = args.extract.split(",")[0]
+        network = acc.load_network(acc.extract_path(extract))
+        misses = None
+        if args.fleetmiss:
+            dump = [json.loads(x) for x in
+                    Path(args.fleetmiss).read_text(encoding="utf-8").splitlines() if x.strip()]
+            misses = fleetmiss_causes(dump, [args.sim, args.seed, extract,
+                                             int(args.intervals.split(",")[0])])
         for name in args.summary:
             lines = Path(name).read_text(encoding="utf-8").splitlines()
-            got = summary(network, [json.loads(x) for x in lines if x.strip()])
+            got = summary(network, [json.loads(x) for x in lines if x.strip()], misses)
             print(f"\n{name}\n\n| class | metres | share | episodes | largest m |\n"
                   "|---|---:|---:|---:|---:|")
             for r in got:
