@@ -99,3 +99,26 @@ def test_summary_adds_up() -> None:
     assert math.isclose(math.fsum(r["metres"] for r in rows), total, abs_tol=0.05 * len(rows))
     assert math.isclose(math.fsum(r["share"] for r in rows), 1.0, abs_tol=1e-3)
     assert rows[1]["largest_m"] == 15.0
+
+
+def test_fix_episodes_by_fleetmiss_cause() -> None:
+    """With a bench/fleetmiss.py dump, a fix_* episode takes the cause most of its wrong
+    fixes have there, only from the dump's own cell; other causes keep their class; a
+    wrong fix the dump does not hold is ``?``."""
+    oracle = bench_oracle()
+    net = _street_with_lane()
+    dump = [
+        {"cell": ["trips", 31, "helsinki", 1], "vehicle": "v", "cause": "junction",
+         "fixes": [{"i": 5, "miss": True}, {"i": 6, "miss": True}, {"i": 7, "miss": False}]},
+        {"cell": ["trips", 31, "helsinki", 1], "vehicle": "v", "cause": "outlier",
+         "fixes": [{"i": 9, "miss": True}]},
+        {"cell": ["trips", 77, "helsinki", 1], "vehicle": "v", "cause": "end",
+         "fixes": [{"i": 9, "miss": True}, {"i": 10, "miss": True}]},
+    ]
+    misses = oracle.fleetmiss_causes(dump, ["trips", 31, "helsinki", 1])
+    assert misses == {("v", 5): "junction", ("v", 6): "junction", ("v", 9): "outlier"}
+    ep = {"vehicle": "v", "cause": "fix_other", "wrong": [5, 6, 9], "added_m": 1.0,
+          "missed_m": 0.0}
+    assert oracle.episode_class(net, ep, misses) == "fix:junction"
+    assert oracle.episode_class(net, {**ep, "wrong": [10]}, misses) == "fix:?"
+    assert oracle.episode_class(net, {**ep, "cause": "end"}, misses) == "end"
