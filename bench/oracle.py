@@ -486,6 +486,30 @@ def causes(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
             "commits": len(kinds), "forced_commits": forced}
 
 
+#: A dead-end spur at most this long (m) is a stub: driven in and out between two fixes
+#: it keeps every fix within the GNSS error of its mouth (sigma 5 m per axis).
+STUB_M = 15.0
+
+
+def _spur_m(network: RoadNetwork, seg: int, leaving: np.ndarray) -> float:
+    """Length of the dead-end spur that ``seg`` ends (into the dead end): ``seg`` and the
+    segments before it, back while their tail vertex is left by two segments only (a road
+    with no junction) and entered by one other."""
+    total, seen = 0.0, set()
+    while seg not in seen:
+        seen.add(seg)
+        total += float(network.seg_len[seg])
+        tail = int(network.seg_from[seg])
+        if int(leaving[tail]) != 2:
+            break
+        into = [int(x) for x in np.flatnonzero(network.seg_to == tail)
+                if int(network.seg_twin[x]) != seg]
+        if len(into) != 1:
+            break
+        seg = into[0]
+    return total
+
+
 def episode_class(network: RoadNetwork, ep: dict[str, Any],
                   misses: dict[tuple[str, int], str] | None = None) -> str:
     """A finer class of one ``--detail`` episode: its cause, refined where it says more.
@@ -500,7 +524,9 @@ def episode_class(network: RoadNetwork, ep: dict[str, Any],
     after a junction), ``/service`` when the wrong answer or the truth is on a
     ``highway=service`` road (a parking aisle or a lane beside the road), ``/road``
     else. ``laps``: ``/dead_end`` when a missed segment ends at a dead end (a vertex
-    left only by the segment's twin), ``/ring`` else. Other causes are kept as they are.
+    left only by the segment's twin), ``/ring`` else; a dead end whose spur (walked back
+    from it while the road has no junction) is at most :data:`STUB_M` long is
+    ``laps/stub``. Other causes are kept as they are.
     """
     cause = str(ep["cause"])
     if cause.startswith("fix_") and misses is not None:
@@ -520,11 +546,11 @@ def episode_class(network: RoadNetwork, ep: dict[str, Any],
         return f"{cause}/{sub}"
     if cause == "laps":
         leaving = np.bincount(network.seg_from, minlength=len(network.node_xy))
-        for s in ep["missed"]:
-            head = int(network.seg_to[s])
-            if int(leaving[head]) == 1 and int(network.seg_twin[s]) >= 0:
-                return "laps/dead_end"
-        return "laps/ring"
+        spurs = [_spur_m(network, s, leaving) for s in ep["missed"]
+                 if int(leaving[int(network.seg_to[s])]) == 1 and int(network.seg_twin[s]) >= 0]
+        if not spurs:
+            return "laps/ring"
+        return "laps/stub" if max(spurs) <= STUB_M else "laps/dead_end"
     return cause
 
 
@@ -540,15 +566,22 @@ def fleetmiss_causes(dump: list[dict[str, Any]], cell: list[Any]
 def summary(network: RoadNetwork, episodes: list[dict[str, Any]],
             misses: dict[tuple[str, int], str] | None = None) -> list[dict[str, Any]]:
     """The ``--detail`` episodes' mismatch metres (added + missed) per
-    :func:`episode_class`, largest first: metres, share of all, episodes, the largest."""
+    :func:`episode_class`, largest first: metres, share of all, episodes, the largest,
+    and the source way with the most of the class's added and missed segment metres
+    (``[way, metres]``)."""
     by: dict[str, list[float]] = {}
+    ways: dict[str, Counter[int]] = {}
     for ep in episodes:
-        by.setdefault(episode_class(network, ep, misses), []).append(
-            ep["added_m"] + ep["missed_m"])
+        k = episode_class(network, ep, misses)
+        by.setdefault(k, []).append(ep["added_m"] + ep["missed_m"])
+        for s in [*ep.get("added", []), *ep.get("missed", [])]:
+            ways.setdefault(k, Counter())[int(network.seg_way[s])] += float(network.seg_len[s])
     total = sum(sum(v) for v in by.values())
     rows = [{"class": k, "metres": round(sum(v), 1),
              "share": round(sum(v) / total, 4) if total else math.nan,
-             "episodes": len(v), "largest_m": round(max(v), 1)} for k, v in by.items()]
+             "episodes": len(v), "largest_m": round(max(v), 1),
+             "top_way": list(ways[k].most_common(1)[0]) if ways.get(k) else None}
+            for k, v in by.items()]
     return sorted(rows, key=lambda r: -r["metres"])
 
 
@@ -667,11 +700,12 @@ def main(argv: list[str] | None = None) -> int:
         for name in args.summary:
             lines = Path(name).read_text(encoding="utf-8").splitlines()
             got = summary(network, [json.loads(x) for x in lines if x.strip()], misses)
-            print(f"\n{name}\n\n| class | metres | share | episodes | largest m |\n"
-                  "|---|---:|---:|---:|---:|")
+            print(f"\n{name}\n\n| class | metres | share | episodes | largest m | "
+                  "top way (m) |\n|---|---:|---:|---:|---:|---|")
             for r in got:
+                top = f"{r['top_way'][0]} ({r['top_way'][1]:.0f})" if r["top_way"] else ""
                 print(f"| {r['class']} | {r['metres']:.0f} | {100 * r['share']:.1f} % | "
-                      f"{r['episodes']} | {r['largest_m']:.0f} |")
+                      f"{r['episodes']} | {r['largest_m']:.0f} | {top} |")
         return 0
     intervals = [int(k) for k in args.intervals.split(",")]
     detours = [float(x) for x in args.detour.split(",")]

@@ -11,6 +11,9 @@ from __future__ import annotations
 import math
 from typing import Any
 
+import numpy as np
+import shapely
+
 from livematch.core.build import Road, network_from_roads
 from livematch.core.network import RoadNetwork
 from tests.catalogue import dead_end, grid, seg_of
@@ -122,3 +125,28 @@ def test_fix_episodes_by_fleetmiss_cause() -> None:
     assert oracle.episode_class(net, ep, misses) == "fix:junction"
     assert oracle.episode_class(net, {**ep, "wrong": [10]}, misses) == "fix:?"
     assert oracle.episode_class(net, {**ep, "cause": "end"}, misses) == "end"
+
+
+def test_laps_into_a_stub_shorter_than_the_gnss_error() -> None:
+    """A 10 m two-way stub (6 m + 4 m, as the Helsinki one of Session 14) off a street:
+    its spur length is the stub's drawn length (shapely), so missed laps into it are
+    ``laps/stub``; a 40 m one drawn the same way is ``laps/dead_end``; the summary names
+    the stub's way as the one holding the class's metres."""
+    oracle = bench_oracle()
+    stub = [(100.0, 0.0), (100.0, 6.0), (100.0, 10.0)]
+    longer = [(300.0, 0.0), (300.0, 20.0), (300.0, 40.0)]
+    net = network_from_roads([
+        Road([(0.0, 0.0), (100.0, 0.0), (200.0, 0.0), (300.0, 0.0), (400.0, 0.0)], way=1),
+        Road(stub, way=7), Road(longer, way=8)])
+    leaving = np.bincount(net.seg_from, minlength=len(net.node_xy))
+    into = seg_of(net, (100.0, 6.0), (100.0, 10.0))
+    assert math.isclose(oracle._spur_m(net, into, leaving), shapely.LineString(stub).length)
+    ep = {"cause": "laps", "added_m": 0.0, "missed_m": 20.0, "added": [],
+          "missed": [seg_of(net, (100.0, 0.0), (100.0, 6.0)), into,
+                     seg_of(net, (100.0, 10.0), (100.0, 6.0)),
+                     seg_of(net, (100.0, 6.0), (100.0, 0.0))]}
+    assert oracle.episode_class(net, ep) == "laps/stub"
+    far = {**ep, "missed": [seg_of(net, (300.0, 20.0), (300.0, 40.0))]}
+    assert oracle.episode_class(net, far) == "laps/dead_end"
+    rows = oracle.summary(net, [ep, far])
+    assert rows[0]["class"] == "laps/stub" and rows[0]["top_way"] == [7, 20.0]
