@@ -132,8 +132,11 @@ def pooled_rmf(network: RoadNetwork, pairs: list[tuple[list[int], list[int]]]) -
 def measure(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
             detours: list[float], livematch: bool,
             matcher: dict[str, Any], point: bool = True,
-            with_causes: bool = False) -> dict[str, Any]:
-    """The figures of one (extract, interval); see the module docstring."""
+            with_causes: bool = False,
+            detail: list[dict[str, Any]] | None = None) -> dict[str, Any]:
+    """The figures of one (extract, interval); see the module docstring. With
+    ``with_causes``, every mismatch episode of :func:`causes` is appended to ``detail``
+    (when given)."""
     oracle = fleet_oracle(network, fleet, point)
     gaps = [g for o in oracle.values() for g in o[2]]
     driven = sum(g.driven_m for g in gaps)
@@ -163,7 +166,7 @@ def measure(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
     times = {d.vehicle: [o.t for o in obs] for d, obs in fleet}
     if with_causes:
         run, commits, kinds = run_with_commits(network, records, xy, times, matcher)
-        row["causes"] = causes(network, fleet, oracle, run, commits, kinds)
+        row["causes"] = causes(network, fleet, oracle, run, commits, kinds, detail)
     else:
         run = acc.run_inproc(network, records, xy, times, matcher)
     scored = acc.score(network, fleet, run)
@@ -483,6 +486,105 @@ def causes(network: RoadNetwork, fleet: list[tuple[Drive, list[Observation]]],
             "commits": len(kinds), "forced_commits": forced}
 
 
+#: A dead-end spur at most this long (m) is a stub: driven in and out between two fixes
+#: it keeps every fix within the GNSS error of its mouth (sigma 5 m per axis).
+STUB_M = 15.0
+
+
+def _spur_m(network: RoadNetwork, seg: int, leaving: np.ndarray) -> float:
+    """Length of the dead-end spur that ``seg`` ends (into the dead end): ``seg`` and the
+    segments before it, back while their tail vertex is left by two segments only (a road
+    with no junction) and entered by one other."""
+    total, seen = 0.0, set()
+    while seg not in seen:
+        seen.add(seg)
+        total += float(network.seg_len[seg])
+        tail = int(network.seg_from[seg])
+        if int(leaving[tail]) != 2:
+            break
+        into = [int(x) for x in np.flatnonzero(network.seg_to == tail)
+                if int(network.seg_twin[x]) != seg]
+        if len(into) != 1:
+            break
+        seg = into[0]
+    return total
+
+
+def episode_class(network: RoadNetwork, ep: dict[str, Any],
+                  misses: dict[tuple[str, int], str] | None = None) -> str:
+    """A finer class of one ``--detail`` episode: its cause, refined where it says more.
+
+    With ``misses`` (bench/fleetmiss.py's cause of each final miss, by vehicle and fix
+    index: :func:`fleetmiss_causes`), a ``fix_*`` episode is ``fix:<cause>``, the cause
+    most of its wrong fixes have (ties: the first wrong fix's), ``?`` for none known.
+    Without it:
+
+    ``fix_*``: ``/junction`` when a wrong final answer's segment shares a vertex with the
+    true segment of its fix or that segment's twin (answered on the road just before or
+    after a junction), ``/service`` when the wrong answer or the truth is on a
+    ``highway=service`` road (a parking aisle or a lane beside the road), ``/road``
+    else. ``laps``: ``/dead_end`` when a missed segment ends at a dead end (a vertex
+    left only by the segment's twin), ``/ring`` else; a dead end whose spur (walked back
+    from it while the road has no junction) is at most :data:`STUB_M` long is
+    ``laps/stub``. Other causes are kept as they are.
+    """
+    cause = str(ep["cause"])
+    if cause.startswith("fix_") and misses is not None:
+        known = [misses.get((ep["vehicle"], int(i)), "?") for i in ep["wrong"]]
+        return "fix:" + (Counter(known).most_common(1)[0][0] if known else "?")
+    if cause.startswith("fix_"):
+        fixes = [i for i in [*ep["gaps"], ep["b"]] if i is not None and i >= 0]
+        sub = "road"
+        for i, f, t in zip(fixes, ep["final"], ep["true_seg"], strict=True):
+            if i not in ep["wrong"] or f is None:
+                continue
+            ends = {int(network.seg_from[t]), int(network.seg_to[t])}
+            if ends & {int(network.seg_from[f]), int(network.seg_to[f])}:
+                return cause + "/junction"
+            if "service" in (acc.highway(network, f), acc.highway(network, t)):
+                sub = "service"
+        return f"{cause}/{sub}"
+    if cause == "laps":
+        leaving = np.bincount(network.seg_from, minlength=len(network.node_xy))
+        spurs = [_spur_m(network, s, leaving) for s in ep["missed"]
+                 if int(leaving[int(network.seg_to[s])]) == 1 and int(network.seg_twin[s]) >= 0]
+        if not spurs:
+            return "laps/ring"
+        return "laps/stub" if max(spurs) <= STUB_M else "laps/dead_end"
+    return cause
+
+
+def fleetmiss_causes(dump: list[dict[str, Any]], cell: list[Any]
+                     ) -> dict[tuple[str, int], str]:
+    """From a ``bench/fleetmiss.py --dump`` (one dict per episode of final misses), the
+    cause of every missed fix of one cell (``[sim, seed, extract, interval_s]``), by
+    vehicle and fix index."""
+    return {(d["vehicle"], int(f["i"])): str(d["cause"]) for d in dump
+            if list(d["cell"]) == list(cell) for f in d["fixes"] if f["miss"]}
+
+
+def summary(network: RoadNetwork, episodes: list[dict[str, Any]],
+            misses: dict[tuple[str, int], str] | None = None) -> list[dict[str, Any]]:
+    """The ``--detail`` episodes' mismatch metres (added + missed) per
+    :func:`episode_class`, largest first: metres, share of all, episodes, the largest,
+    and the source way with the most of the class's added and missed segment metres
+    (``[way, metres]``)."""
+    by: dict[str, list[float]] = {}
+    ways: dict[str, Counter[int]] = {}
+    for ep in episodes:
+        k = episode_class(network, ep, misses)
+        by.setdefault(k, []).append(ep["added_m"] + ep["missed_m"])
+        for s in [*ep.get("added", []), *ep.get("missed", [])]:
+            ways.setdefault(k, Counter())[int(network.seg_way[s])] += float(network.seg_len[s])
+    total = sum(sum(v) for v in by.values())
+    rows = [{"class": k, "metres": round(sum(v), 1),
+             "share": round(sum(v) / total, 4) if total else math.nan,
+             "episodes": len(v), "largest_m": round(max(v), 1),
+             "top_way": list(ways[k].most_common(1)[0]) if ways.get(k) else None}
+            for k, v in by.items()]
+    return sorted(rows, key=lambda r: -r["metres"])
+
+
 def markdown(rows: list[dict[str, Any]], meta: dict[str, Any]) -> str:
     xs = meta["detours"]
     lines = [
@@ -573,9 +675,38 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--no-point", action="store_true",
                     help="skip the point oracle (slow at 1 s): the directed oracle's path "
                          "stands in for it")
+    ap.add_argument("--detail", default=None,
+                    help="with --causes: write every mismatch episode here, one JSON line "
+                         "each (vehicle, gaps, cause, added_m, missed_m, segments)")
+    ap.add_argument("--summary", nargs="+", default=None, metavar="DETAIL",
+                    help="print the mismatch of these --detail files by episode_class() "
+                         "(one table per file; --extract names their extract) and exit")
+    ap.add_argument("--fleetmiss", default=None, metavar="DUMP",
+                    help="with --summary: class fix_* episodes by bench/fleetmiss.py's "
+                         "cause of their wrong fixes, from this --dump file (its cell "
+                         "given by --sim, --seed, --extract, --intervals)")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     ap.add_argument("--tag", default="", help="result files oracle.TAG.md/.json")
     args = ap.parse_args(argv)
+    if args.summary:
+        extract = args.extract.split(",")[0]
+        network = acc.load_network(acc.extract_path(extract))
+        misses = None
+        if args.fleetmiss:
+            dump = [json.loads(x) for x in
+                    Path(args.fleetmiss).read_text(encoding="utf-8").splitlines() if x.strip()]
+            misses = fleetmiss_causes(dump, [args.sim, args.seed, extract,
+                                             int(args.intervals.split(",")[0])])
+        for name in args.summary:
+            lines = Path(name).read_text(encoding="utf-8").splitlines()
+            got = summary(network, [json.loads(x) for x in lines if x.strip()], misses)
+            print(f"\n{name}\n\n| class | metres | share | episodes | largest m | "
+                  "top way (m) |\n|---|---:|---:|---:|---:|---|")
+            for r in got:
+                top = f"{r['top_way'][0]} ({r['top_way'][1]:.0f})" if r["top_way"] else ""
+                print(f"| {r['class']} | {r['metres']:.0f} | {100 * r['share']:.1f} % | "
+                      f"{r['episodes']} | {r['largest_m']:.0f} | {top} |")
+        return 0
     intervals = [int(k) for k in args.intervals.split(",")]
     detours = [float(x) for x in args.detour.split(",")]
     settings = DriveSettings(duration_s=args.duration, **acc.SIM_MODELS[args.sim])
@@ -583,6 +714,7 @@ def main(argv: list[str] | None = None) -> int:
     code_state = acc.git_state()
     started = time.perf_counter()
     rows = []
+    episodes: list[dict[str, Any]] = []
     for ei, name in enumerate(args.extract.split(",")):
         network = acc.load_network(acc.extract_path(name))
         allowed = drivable_segments(network)
@@ -590,9 +722,11 @@ def main(argv: list[str] | None = None) -> int:
         drives = acc.simulate_drives(network, args.seed, ei, args.drives, settings, allowed)
         for k in intervals:
             fleet = [(d, observe(d, k)) for d in drives]
+            got: list[dict[str, Any]] = []
             row = {"extract": name, "interval_s": k,
                    **measure(network, fleet, detours, args.livematch == "inproc", matcher,
-                                  not args.no_point, args.causes)}
+                             not args.no_point, args.causes, got)}
+            episodes.extend({"extract": name, "interval_s": k, **e} for e in got)
             rows.append(row)
             print(json.dumps(row), file=sys.stderr)
     command = "bench/oracle.py " + " ".join(argv if argv is not None else sys.argv[1:])
@@ -608,6 +742,9 @@ def main(argv: list[str] | None = None) -> int:
     (out / f"{stem}.md").write_text(table, encoding="utf-8")
     (out / f"{stem}.json").write_text(json.dumps({"meta": meta, "rows": rows}, indent=1),
                                       encoding="utf-8")
+    if args.detail:
+        Path(args.detail).write_text("".join(json.dumps(e) + "\n" for e in episodes),
+                                     encoding="utf-8")
     return 0
 
 
