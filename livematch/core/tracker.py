@@ -992,8 +992,7 @@ class Tracker:
             self.fix_n, self.fix_seq0, self._live_from() - 1,
             1.0 / (2.0 * s.sigma_m * s.sigma_m), 1.0 / s.error_tau_s if scored else 0.0,
             s.gap_s, margin)
-        if split >= 0 and self.agreed_seq >= self.next_commit \
-                and tree.seq_of(split) < self.agreed_seq:
+        if split >= 0 and self._cut_by_deferral(tree, split):
             # smallest_agrees deferred a commit: the links older than the agreed fix,
             # which that commit would have cut, do not join the near-best set either
             split = -1
@@ -1301,8 +1300,7 @@ class Tracker:
         tree = level.tree
         anc = tree.ancestor_at(best, anchor)
         seg, since, parent, via0, vias = tree.row_ints(anc)
-        if parent >= 0 and self.agreed_seq >= self.next_commit \
-                and tree.seq_of(parent) < self.agreed_seq:
+        if parent >= 0 and self._cut_by_deferral(tree, parent):
             parent = -1  # smallest_agrees: the link the deferred commit would have cut
         view = self._view
         held = tree.point(view, anc)
@@ -1897,13 +1895,10 @@ class Tracker:
         if last is None or not any(lv.eps < level.eps and lv.tree_seq < last[2]
                                    for lv in covering if lv is not level):
             return False
-        s = self.settings
+        if self._beyond_lag(newest, t, 1):
+            return False
         times = self.times
         t0 = self.times0
-        i = self.next_commit - t0
-        if newest - self.next_commit + 1 > s.max_lag_fixes or (
-                0 <= i < len(times) and t - times[i] > s.max_lag_s):
-            return False
         k = max(self.next_commit - 1, t0)
         end = min(level.tree.seq_of(top), t0 + len(times) - 1)
         while k < end:
@@ -1934,14 +1929,31 @@ class Tracker:
         stays bounded.
         """
         first = self.next_commit
-        if self.agreed_seq < first:
-            return first
-        s = self.settings
-        i = first - self.times0
-        if (seq - first + 1 > 2 * s.max_lag_fixes
-                or (0 <= i < len(self.times) and t - self.times[i] > 2.0 * s.max_lag_s)):
+        if self.agreed_seq < first or self._beyond_lag(seq, t, 2):
             return first
         return self.agreed_seq + 1
+
+    def _beyond_lag(self, seq: int, t: float, times_lag: int) -> bool:
+        """Whether the fixes not committed, to ``seq`` at ``t``, exceed ``times_lag`` lags.
+
+        The lag is ``max_lag_fixes`` fixes or ``max_lag_s`` seconds; ``smallest_agrees``
+        bounds its deferrals by it (:meth:`_leaves_to_smaller` at once, :meth:`_lag_from`
+        at twice).
+        """
+        s = self.settings
+        first = self.next_commit
+        i = first - self.times0
+        return (seq - first + 1 > times_lag * s.max_lag_fixes
+                or (0 <= i < len(self.times)
+                    and t - self.times[i] > times_lag * s.max_lag_s))
+
+    def _cut_by_deferral(self, tree: CandidateTree, row: int) -> bool:
+        """Whether a commit deferred by ``smallest_agrees`` would have cut the link to ``row``.
+
+        It would where ``row``'s fix is older than the agreed one; the live answer reads
+        such a link as cut, as it would after that commit.
+        """
+        return self.agreed_seq >= self.next_commit and tree.seq_of(row) < self.agreed_seq
 
     def _lag_target(self, seq: int, t: float) -> int:
         """Newest fix a forced commit may reach: half the lag behind the newest fix."""
