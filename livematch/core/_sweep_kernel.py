@@ -186,30 +186,6 @@ def _before(s_a: float, c_a: float, a: int, s_b: float, c_b: float, b: int) -> b
     return a < b
 
 
-@numba.njit(cache=True, error_model="numpy", inline="always")
-def _sift_up(heap: np.ndarray, entry: np.ndarray, es: np.ndarray, ec: np.ndarray,
-             h: int, e: int) -> None:
-    """Sift entry ``e`` up the heap from position ``h``.
-
-    ``h`` is a free slot or the slot of an entry with a larger key that ``e`` replaces;
-    every entry moved keeps its ``E_HPOS`` current. Both places that add to the heap (a
-    new entry, and one that replaces its vertex's waiting entry) use it.
-    """
-    se = es[e]
-    ce = ec[e]
-    while h > 0:
-        up = (h - 1) >> 1
-        u = heap[up]
-        if _before(se, ce, e, es[u], ec[u], u):
-            heap[h] = u
-            entry[u * ENTRY_STRIDE + E_HPOS] = h
-            h = up
-        else:
-            break
-    heap[h] = e
-    entry[e * ENTRY_STRIDE + E_HPOS] = h
-
-
 @numba.njit(cache=True, error_model="numpy")
 def sweep_kernel(
     netf: np.ndarray, neti: np.ndarray, live: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray
@@ -331,7 +307,24 @@ def sweep_kernel(
             n_pushed += 1
             if entry[e * ENTRY_STRIDE + E_HPOS] != _IN_WAIT:
                 continue  # replaced by a later entry for its vertex, or already placed
-            _sift_up(heap, entry, es, ec, n_heap, e)
+            # sift e up from the free slot n_heap (every entry moved keeps its E_HPOS
+            # current). Written out here and below, not a helper: the helper's four
+            # array arguments cost eight atomic reference-count updates a call even
+            # inlined (numba's inliner binds them to new variables), some 140 a step
+            se = es[e]
+            ce = ec[e]
+            h = n_heap
+            while h > 0:
+                up = (h - 1) >> 1
+                u = heap[up]
+                if _before(se, ce, e, es[u], ec[u], u):
+                    heap[h] = u
+                    entry[u * ENTRY_STRIDE + E_HPOS] = h
+                    h = up
+                else:
+                    break
+            heap[h] = e
+            entry[e * ENTRY_STRIDE + E_HPOS] = h
             n_heap += 1
         if n_heap == 0:
             break
@@ -447,7 +440,20 @@ def sweep_kernel(
                     h = entry[pend * ENTRY_STRIDE + E_HPOS]
                     entry[pend * ENTRY_STRIDE + E_HPOS] = _GONE
                     if h >= 0:
-                        _sift_up(heap, entry, es, ec, h, new_e)
+                        # sift new_e up from h, the slot it takes over (as above)
+                        se = es[new_e]
+                        ce = ec[new_e]
+                        while h > 0:
+                            up = (h - 1) >> 1
+                            u = heap[up]
+                            if _before(se, ce, new_e, es[u], ec[u], u):
+                                heap[h] = u
+                                entry[u * ENTRY_STRIDE + E_HPOS] = h
+                                h = up
+                            else:
+                                break
+                        heap[h] = new_e
+                        entry[new_e * ENTRY_STRIDE + E_HPOS] = h
                 for r in range(via_len):
                     via[n_via + r] = via[via_start + r]
                 via[n_via + via_len] = f
