@@ -2314,7 +2314,8 @@ class Tracker:
                 return
         end = float(view.slen[seg_in])
         for j in range(k, n):
-            fixes[j] = MatchedFix(chain[j].t, seg_in, end, vx, vy)
+            if fixes[j].segment == seg:
+                fixes[j] = MatchedFix(chain[j].t, seg_in, end, vx, vy)
 
     def _stand_from_centre(self, chain: list[Node], s: int) -> int:
         """Where the stand at the end of ``chain`` begins, read about the stand's centre.
