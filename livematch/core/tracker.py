@@ -2312,6 +2312,14 @@ class Tracker:
                     or not 0 <= r < self.fix_n
                     or (xy.item(r, 0) - vx) ** 2 + (xy.item(r, 1) - vy) ** 2 > eps * eps):
                 return
+        if n - k < 2:
+            # one fix near V is no stand: a vehicle driving through V onto S sends one
+            # too, and then S is as likely the road driven as P (the road in may be
+            # the one the path guessed); the fix before must stand at V as well
+            r = prev.seq - seq0
+            if (not 0 <= r < self.fix_n
+                    or (xy.item(r, 0) - vx) ** 2 + (xy.item(r, 1) - vy) ** 2 > eps * eps):
+                return
         end = float(view.slen[seg_in])
         for j in range(k, n):
             if fixes[j].segment == seg:
