@@ -32,11 +32,14 @@ P_EAST = seg_of(NET, P[0], P[1])
 S_NORTH, S_SOUTH = seg_of(NET, S[0], S[1]), seg_of(NET, S[1], S[0])
 T_EAST = seg_of(NET, T[0], T[1])
 
-# a van at 10 m/s along P, a fix every 30 s; it reaches V as the log ends (it will turn
-# round there, or stand), its last fix leaning 6 m north of V, up S (a GNSS lean, as
-# the simulator's correlated error makes)
+# a van at 10 m/s along P, a fix every 30 s; it reaches V and stands there as the log
+# ends (it will turn round there, or drive on later), its fix 4 m short of V, then its
+# last fix leaning 6 m north of V, up S (a GNSS lean, as the simulator's correlated
+# error makes)
 DRIVE = [(-800.0, 1.0), (-500.0, -1.0), (-200.0, 1.0)]
+NEAR = (96.0, 1.0)
 LAST = (101.0, 6.0)
+STAND = [*DRIVE, NEAR, LAST]
 
 
 def run(settings: MatchSettings, pts: list[tuple[float, float]], dt: float = DT,
@@ -47,16 +50,16 @@ def run(settings: MatchSettings, pts: list[tuple[float, float]], dt: float = DT,
 
 def test_without_the_rule_the_last_fix_ends_on_s() -> None:
     """The case the rule is for: the flush commits the last fix onto S, never driven."""
-    got = finals(run(OFF, [*DRIVE, LAST]))
-    assert got[2 * DT][0] == P_EAST
-    assert got[3 * DT][0] == S_NORTH
+    got = finals(run(OFF, STAND))
+    assert got[3 * DT][0] == P_EAST
+    assert got[4 * DT][0] == S_NORTH
 
 
 def test_rule_reports_the_last_fix_at_v_on_p() -> None:
     """With the rule the last fix is at V, the end of P (shapely), within eps of its fix."""
-    events = run(ON, [*DRIVE, LAST])
+    events = run(ON, STAND)
     got = finals(events)
-    seg, offset, x, y = got[3 * DT]
+    seg, offset, x, y = got[4 * DT]
     assert seg == P_EAST
     line_p = shapely.LineString(P)
     point = shapely.Point(x, y)
@@ -64,11 +67,18 @@ def test_rule_reports_the_last_fix_at_v_on_p() -> None:
     assert offset == pytest.approx(line_p.length, abs=1e-6)  # shapely: P's end
     assert point.distance(shapely.Point(LAST)) <= EPS  # shapely
     # only that answer moves: the path (on into S) and every other answer are kept
-    base = run(OFF, [*DRIVE, LAST])
+    base = run(OFF, STAND)
     assert path(events) == path(base)
     assert S_NORTH in path(events)
-    assert {t: a for t, a in got.items() if t != 3 * DT} == {
-        t: a for t, a in finals(base).items() if t != 3 * DT}
+    assert {t: a for t, a in got.items() if t != 4 * DT} == {
+        t: a for t, a in finals(base).items() if t != 4 * DT}
+
+
+def test_one_last_fix_after_a_drive_is_kept() -> None:
+    """One fix past V after a fix 300 m back is no stand: it stays on S."""
+    got = finals(run(ON, [*DRIVE, LAST]))
+    assert got[3 * DT][0] == S_NORTH
+    assert got == finals(run(OFF, [*DRIVE, LAST]))
 
 
 def test_two_last_fixes_past_v_both_move() -> None:
@@ -84,9 +94,9 @@ def test_a_last_fix_beyond_eps_of_v_is_kept() -> None:
     """A last fix 25 m up S (beyond eps of V, shapely) keeps its answer on S."""
     far = (101.0, 25.0)
     assert shapely.Point(far).distance(shapely.Point(S[0])) > EPS  # shapely
-    got = finals(run(ON, [*DRIVE, far]))
-    assert got[3 * DT][0] == S_NORTH
-    assert got == finals(run(OFF, [*DRIVE, far]))
+    got = finals(run(ON, [*DRIVE, NEAR, far]))
+    assert got[4 * DT][0] == S_NORTH
+    assert got == finals(run(OFF, [*DRIVE, NEAR, far]))
 
 
 def test_dense_fixes_are_left_alone() -> None:
@@ -105,11 +115,11 @@ def test_driving_on_along_t_is_left_alone() -> None:
 def test_a_turn_round_at_v_is_left_alone() -> None:
     """A run entered from S's twin (a U-turn at V) is kept: P would be a road left."""
     tracker = Tracker(NET, "v", ON)
-    for i, (x, y) in enumerate([(100.0, 60.0), (101.0, 4.0)]):
+    for i, (x, y) in enumerate([(100.0, 60.0), (100.0, 10.0), (101.0, 4.0)]):
         tracker.update(Fix("v", DT * i, 0.0, 0.0, x, y))
-    seq = tracker.fix_seq0
-    a = Node(S_SOUTH, seq, 0.0, 20.0 / 80.0, 100.0, 60.0, None, (), 0.0, 0.0)
-    b = Node(S_NORTH, seq + 1, DT, 4.0 / 80.0, 100.0, 4.0, a, (S_SOUTH,), 0.0, 0.0)
+    seq = tracker.fix_seq0 + 1
+    a = Node(S_SOUTH, seq, DT, 70.0 / 80.0, 100.0, 10.0, None, (), 0.0, 0.0)
+    b = Node(S_NORTH, seq + 1, 2 * DT, 4.0 / 80.0, 100.0, 4.0, a, (S_SOUTH,), 0.0, 0.0)
     answers = [MatchedFix(n.t, n.seg, n.pos * 80.0, n.x, n.y) for n in (a, b)]
     kept = list(answers)
     tracker._end_at_vertex([a, b], None, EPS, kept)
@@ -123,7 +133,7 @@ def test_a_turn_round_at_v_is_left_alone() -> None:
 
 def test_restore_before_the_last_fix_gives_the_same_outputs() -> None:
     """Checkpoint and restore at the last fix, then the flush: the same events."""
-    assert run(ON, [*DRIVE, LAST], restore_at=3) == run(ON, [*DRIVE, LAST])
+    assert run(ON, STAND, restore_at=4) == run(ON, STAND)
 
 
 def test_end_at_vertex_validation() -> None:

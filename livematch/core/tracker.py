@@ -2258,7 +2258,12 @@ class Tracker:
         the half of S nearer V and have its fix within ``eps`` of V, and its answer
         must still be on its node's segment or at V on P (no other rule placed it). The fixes
         from the one before the run to the last must come more than ``SPARSE_S`` apart
-        (median gap). Then the run's fixes are reported at V as the end of P. The
+        (median gap), and a run of one node needs the fix before it within ``eps`` of V
+        too: the vehicle stood at V for one gap at least (one fix near V is also what a
+        vehicle driving through V onto S sends, and then the road in P, which the path
+        may have guessed between two sparse fixes, is no better than S: the random
+        walk's two lost fixes on the decision runs). Then the run's fixes are reported
+        at V as the end of P. The
         committed path, the chain and the last commit point stay as they were.
 
         Why: at 15-30 s between fixes a vehicle that reaches V and stands or turns round
@@ -2271,14 +2276,14 @@ class Tracker:
         The certificate holds: each fix of the run lies within eps of V, where it is
         reported, and the path runs through V.
 
-        Example (a last fix 3 m past the corner, 30 s after the one before):
+        Example (a last fix 3 m past the corner, 30 s after one 4 m short of it):
             >>> from livematch.core.build import Road, network_from_roads
             >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1),
             ...                           Road([(100.0, 0.0), (100.0, 80.0)], way=2)])
             >>> tracker = Tracker(net, "v1", MatchSettings(end_at_vertex=True))
-            >>> for i, (x, y) in enumerate([(40.0, 0.0), (100.0, 3.0)]):
+            >>> for i, (x, y) in enumerate([(96.0, 0.0), (100.0, 3.0)]):
             ...     _ = tracker.update(Fix("v1", 30.0 * i, 0.0, 0.0, x, y))
-            >>> a = Node(0, tracker.fix_seq0, 0.0, 0.4, 40.0, 0.0, None, (), 0.0, 0.0)
+            >>> a = Node(0, tracker.fix_seq0, 0.0, 0.96, 96.0, 0.0, None, (), 0.0, 0.0)
             >>> b = Node(2, tracker.fix_seq0 + 1, 30.0, 3.0 / 80.0, 100.0, 3.0, a, (), 0.0, 0.0)
             >>> out = [MatchedFix(0.0, 0, 40.0, 40.0, 0.0), MatchedFix(30.0, 2, 3.0, 100.0, 3.0)]
             >>> tracker._end_at_vertex([a, b], None, 15.0, out)
