@@ -137,7 +137,7 @@ def test_restore_before_the_last_fix_gives_the_same_outputs() -> None:
 
 
 def test_end_at_vertex_validation() -> None:
-    """end_at_vertex must be a boolean, and is off by default."""
-    assert not MatchSettings().end_at_vertex
+    """end_at_vertex must be a boolean, and is on by default."""
+    assert MatchSettings().end_at_vertex
     assert ("end_at_vertex", "must be true or false, got 1") in MatchSettings(
         end_at_vertex=1).problems()  # type: ignore[arg-type]
