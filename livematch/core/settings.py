@@ -758,7 +758,7 @@ class MatchSettings:
             the segment the stand began on; this rule acts on the road into V. It
             cannot act where the fixes come at most 5 s apart. On by default: on
             bench/fleetmiss.py's decision runs (80 drives, seeds 31 / 77, both models,
-            both extracts, 1 / 5 / 15 / 30 s) it turns 2-16 final answers right in six
+            both extracts, 1 / 5 / 15 / 30 s) it turns 2-16 final answers right in seven
             of the eight routed-trips cells at 15-30 s and 2 in one random-walk cell,
             loses none in net (one random-walk cell +1 / -1), and leaves live answers
             and route mismatch identical in all 32 cells.
