@@ -738,6 +738,30 @@ class MatchSettings:
             ratcheted forward by the bound to the most forward jitter so far; answers
             may then go back across a commit boundary (by less than without the
             rule). Off by default.
+        end_at_vertex: at the end-of-log flush (and eviction), where the fixes come more
+            than 5 s apart (their median gap over the log's last fixes: 15-30 s feeds),
+            the last fixes of the log that the committed path matched just past a vertex
+            V, on the segment S it entered from V last (coming in by P, not S's twin),
+            each fix within eps of V and matched nearer V than S's far end, are reported
+            at V as the end of P (:meth:`livematch.core.tracker.Tracker._end_at_vertex`).
+            Only those final answers move: the path (which goes on onto S), the live
+            answers and every answer another rule placed are kept. Why: at 30 s between
+            fixes a vehicle that reaches V and stands there, or turns round there, after
+            the log ends sends its last one or two fixes near V, and the GNSS error leans
+            them a few metres onto one of V's roads out; with no later fix nothing tells
+            which road out, or whether any, while P is on the driven path either way
+            (docs/measured.md "Session 22 (test30)": the "end" misses of the routed trips
+            at 30 s that the HMM peer has right). Two fixes near V are needed (the run's
+            own, or its one fix and the fix before it): one fix near V is also what a
+            vehicle driving through V sends, and then P, guessed between two sparse
+            fixes, is no better than S. ``end_stand`` needs a stand of 10 s and acts on
+            the segment the stand began on; this rule acts on the road into V. It
+            cannot act where the fixes come at most 5 s apart. On by default: on
+            bench/fleetmiss.py's decision runs (80 drives, seeds 31 / 77, both models,
+            both extracts, 1 / 5 / 15 / 30 s) it turns 2-16 final answers right in seven
+            of the eight routed-trips cells at 15-30 s and 2 in one random-walk cell,
+            loses none in net (one random-walk cell +1 / -1), and leaves live answers
+            and route mismatch identical in all 32 cells.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -803,6 +827,7 @@ class MatchSettings:
     smallest_agrees: bool = True
     monotone_final: bool = False
     monotone_pool: bool = False
+    end_at_vertex: bool = True
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -843,7 +868,7 @@ class MatchSettings:
                      "stand_pace", "bridge_error_cross", "smallest_commits",
                      "start_roots", "flush_scored", "end_stand_centre",
                      "start_way_out", "stand_loops_sparse", "no_roll_back",
-                     "smallest_agrees", "monotone_final", "monotone_pool"):
+                     "smallest_agrees", "monotone_final", "monotone_pool", "end_at_vertex"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):
