@@ -744,7 +744,7 @@ class MatchSettings:
             is committed as a turn at the stub's end: the stub's segments there and
             back go into the path between the way into V and the way back
             (``Tracker._turns_in_stubs``), unless the fixes next to the turn that lie
-            within ``STAND_SIGMAS`` x ``sigma_m`` of V span ``STAND_S`` seconds (the
+            within eps of V span ``STAND_S`` seconds (``stand_loops``' test: the
             vehicle stood there and may have turned where it stood). Answers, live or
             final, do not move. Why: a stub no deeper than the GNSS error keeps every
             fix taken in it within that error of its mouth, so the fixes cannot show

@@ -2030,11 +2030,8 @@ class Tracker:
             pieces = [_steps(a.seg, b) for a, b in itertools.pairwise(links)]
             path[len(path) - sum(map(len, pieces)):] = self._with_laps(links, pieces)
         if self.settings.stub_turn_m > 0.0:
-            links = [before, *chain] if goes_on and before is not None else chain
-            pieces = [_steps(a.seg, b) for a, b in itertools.pairwise(links)]
-            size = sum(map(len, pieces))
-            if size:
-                path[len(path) - size:] = self._turns_in_stubs(links, pieces)
+            self._stub_turns_into(path, [before, *chain] if goes_on and before is not None
+                                  else chain, eps)
         fixes = [MatchedFix(n.t, n.seg, n.pos * view.slen[n.seg], n.x, n.y) for n in chain]
         if self.settings.vertex_in_segment:
             # an answer at the very start of a segment: at the end of the segment the
@@ -2811,7 +2808,22 @@ class Tracker:
                     break
         return [seg for piece in out for seg in piece]
 
-    def _turns_in_stubs(self, links: list[Node], pieces: list[list[int]]) -> list[int]:
+    def _stub_turns_into(self, path: list[int], links: list[Node], eps: float) -> None:
+        """Apply :meth:`_turns_in_stubs` to the end of ``path`` the steps entered.
+
+        The steps between ``links``, or from the chain's first node on when the path
+        does not end with the step from the node before the chain (a start, a join).
+        """
+        for start in range(2 if len(links) > 1 else 1):
+            pieces = [_steps(a.seg, b) for a, b in itertools.pairwise(links[start:])]
+            size = sum(map(len, pieces))
+            if size and size <= len(path) and path[len(path) - size:] == [
+                    seg for piece in pieces for seg in piece]:
+                path[len(path) - size:] = self._turns_in_stubs(links[start:], pieces, eps)
+                return
+
+    def _turns_in_stubs(self, links: list[Node], pieces: list[list[int]],
+                        eps: float) -> list[int]:
         """The path through ``links`` with each U-turn at a stub's mouth taken in the stub.
 
         ``pieces[k]``: the segments entered from ``links[k]`` to ``links[k + 1]``. Rule
@@ -2821,9 +2833,9 @@ class Tracker:
         through plain shape points to a dead end, at most ``stub_turn_m`` long), the
         stub's segments there and back are put in between the two, unless the
         vehicle stood at V: the fixes of the links next to the turn that lie within
-        ``STAND_SIGMAS`` x ``sigma_m`` of V span ``STAND_S`` seconds or more (a vehicle
-        that stood may turn round where it stood, as ``stop_turns`` reads it). Only
-        the committed path changes: answers, live or final, do not.
+        ``eps`` of V span ``STAND_S`` seconds or more (``stand_loops``' test of a stand
+        at a vertex: a vehicle that stood may turn round where it stood). Only the
+        committed path changes: answers, live or final, do not.
 
         Example (a straight road, no U-turn: the path is the pieces as they are):
             >>> from livematch.core.build import Road, network_from_roads
@@ -2831,7 +2843,7 @@ class Tracker:
             >>> tracker = Tracker(net, "v1", MatchSettings(stub_turn_m=15.0))
             >>> a = Node(0, 1, 0.0, 0.1, 10.0, 0.0, None, (), 0.0, 0.0)
             >>> b = Node(0, 2, 5.0, 0.2, 20.0, 0.0, a, (), 0.0, 0.0)
-            >>> tracker._turns_in_stubs([a, b], [[]])
+            >>> tracker._turns_in_stubs([a, b], [[]], 15.0)
             []
         """
         view = self._view
@@ -2842,7 +2854,7 @@ class Tracker:
             for seg in piece:
                 if seg == twin[prev] and seg >= 0:
                     stub = self._stub_at(view.st[prev], seg)
-                    if stub and not self._stood_near(links, k, view.st[prev]):
+                    if stub and not self._stood_near(links, k, view.st[prev], eps):
                         out.extend(stub)
                         out.extend(twin[s] for s in reversed(stub))
                 out.append(seg)
@@ -2850,8 +2862,10 @@ class Tracker:
         return out
 
     def _stub_at(self, vertex: int, way_back: int) -> list[int]:
-        """The one stub (see :func:`_stub_from`) out of ``vertex`` other than
-        ``way_back``, or [] when there is none or more than one."""
+        """The one stub (:func:`_stub_from`) out of ``vertex`` but ``way_back``.
+
+        [] when there is none or more than one, or ``vertex`` is a dead end.
+        """
         view = self._view
         if len(view.out[vertex]) < 2:
             return []  # a dead end: the turn is where the road ends
@@ -2863,15 +2877,16 @@ class Tracker:
                     found.append(stub)
         return found[0] if len(found) == 1 else []
 
-    def _stood_near(self, links: list[Node], k: int, vertex: int) -> bool:
-        """Whether the fixes of the links next to step ``k`` (from ``links[k]`` to
-        ``links[k + 1]``) that lie within ``STAND_SIGMAS`` x ``sigma_m`` of ``vertex``
-        span ``STAND_S`` seconds or more: the run of such links that holds
-        ``links[k]`` or ``links[k + 1]``."""
+    def _stood_near(self, links: list[Node], k: int, vertex: int, radius: float) -> bool:
+        """Whether the vehicle stood at ``vertex`` around step ``k``.
+
+        The run of links that holds ``links[k]`` or ``links[k + 1]`` (the step's two
+        ends) and whose fixes all lie within ``radius`` of ``vertex`` spans
+        ``STAND_S`` seconds or more.
+        """
         view = self._view
         vx = view.vx[vertex]
         vy = view.vy[vertex]
-        radius = STAND_SIGMAS * self.settings.sigma_m
 
         def near(node: Node) -> bool:
             x, y = self._fix_xy_of(node)
