@@ -744,8 +744,10 @@ class MatchSettings:
             is committed as a turn at the stub's end: the stub's segments there and
             back go into the path between the way into V and the way back
             (``Tracker._turns_in_stubs``), unless the fixes next to the turn that lie
-            within eps of V span ``STAND_S`` seconds (``stand_loops``' test: the
-            vehicle stood there and may have turned where it stood). Answers, live or
+            within eps plus ``STAND_SIGMAS`` x ``sigma_m`` of V span ``STAND_S``
+            seconds (``stand_loops``' test of a stand at a vertex, the radius widened
+            by a stand's own spread: the vehicle stood there and may have turned where
+            it stood, as the routed trips' vans do at a stop). Answers, live or
             final, do not move. Why: a stub no deeper than the GNSS error keeps every
             fix taken in it within that error of its mouth, so the fixes cannot show
             it (docs/measured.md "Session 21 (rmf)": in and out of such stubs holds a

@@ -2030,8 +2030,7 @@ class Tracker:
             pieces = [_steps(a.seg, b) for a, b in itertools.pairwise(links)]
             path[len(path) - sum(map(len, pieces)):] = self._with_laps(links, pieces)
         if self.settings.stub_turn_m > 0.0:
-            self._stub_turns_into(path, [before, *chain] if goes_on and before is not None
-                                  else chain, eps)
+            self._stub_turns_into(path, chain, before, eps)
         fixes = [MatchedFix(n.t, n.seg, n.pos * view.slen[n.seg], n.x, n.y) for n in chain]
         if self.settings.vertex_in_segment:
             # an answer at the very start of a segment: at the end of the segment the
@@ -2808,22 +2807,24 @@ class Tracker:
                     break
         return [seg for piece in out for seg in piece]
 
-    def _stub_turns_into(self, path: list[int], links: list[Node], eps: float) -> None:
-        """Apply :meth:`_turns_in_stubs` to the end of ``path`` the steps entered.
+    def _stub_turns_into(self, path: list[int], chain: list[Node], before: Node | None,
+                         eps: float) -> None:
+        """Apply :meth:`_turns_in_stubs` to the end of ``path`` that the chain's steps entered.
 
-        The steps between ``links``, or from the chain's first node on when the path
-        does not end with the step from the node before the chain (a start, a join).
+        From ``before`` (the last node committed) on when the path ends with the step
+        from it to the chain, else from the chain's first node (a start, a join).
         """
-        for start in range(2 if len(links) > 1 else 1):
-            pieces = [_steps(a.seg, b) for a, b in itertools.pairwise(links[start:])]
+        for links in ([before, *chain], chain) if before is not None else (chain,):
+            pieces = [_steps(a.seg, b) for a, b in itertools.pairwise(links)]
             size = sum(map(len, pieces))
             if size and size <= len(path) and path[len(path) - size:] == [
                     seg for piece in pieces for seg in piece]:
-                path[len(path) - size:] = self._turns_in_stubs(links[start:], pieces, eps)
+                lead = before if links is chain else None
+                path[len(path) - size:] = self._turns_in_stubs(links, pieces, eps, lead)
                 return
 
-    def _turns_in_stubs(self, links: list[Node], pieces: list[list[int]],
-                        eps: float) -> list[int]:
+    def _turns_in_stubs(self, links: list[Node], pieces: list[list[int]], eps: float,
+                        lead: Node | None = None) -> list[int]:
         """The path through ``links`` with each U-turn at a stub's mouth taken in the stub.
 
         ``pieces[k]``: the segments entered from ``links[k]`` to ``links[k + 1]``. Rule
@@ -2832,10 +2833,10 @@ class Tracker:
         exactly one other way out of V is a stub (:func:`_stub_from`: two-way segments
         through plain shape points to a dead end, at most ``stub_turn_m`` long), the
         stub's segments there and back are put in between the two, unless the
-        vehicle stood at V: the fixes of the links next to the turn that lie within
-        ``eps`` of V span ``STAND_S`` seconds or more (``stand_loops``' test of a stand
-        at a vertex: a vehicle that stood may turn round where it stood). Only the
-        committed path changes: answers, live or final, do not.
+        vehicle stood at V (:meth:`_stood_near`, over ``lead``, a node committed
+        before ``links`` if given, and ``links``): a vehicle that stood may turn round
+        where it stood. Only the committed path changes: answers, live or final, do
+        not.
 
         Example (a straight road, no U-turn: the path is the pieces as they are):
             >>> from livematch.core.build import Road, network_from_roads
@@ -2848,13 +2849,16 @@ class Tracker:
         """
         view = self._view
         twin = view.twin
+        seen = [lead, *links] if lead is not None else links
+        shift = 1 if lead is not None else 0
+        radius = eps + STAND_SIGMAS * self.settings.sigma_m
         out: list[int] = []
         for k, piece in enumerate(pieces):
             prev = links[k].seg
             for seg in piece:
                 if seg == twin[prev] and seg >= 0:
                     stub = self._stub_at(view.st[prev], seg)
-                    if stub and not self._stood_near(links, k, view.st[prev], eps):
+                    if stub and not self._stood_near(seen, k + shift, view.st[prev], radius):
                         out.extend(stub)
                         out.extend(twin[s] for s in reversed(stub))
                 out.append(seg)
@@ -2878,11 +2882,22 @@ class Tracker:
         return found[0] if len(found) == 1 else []
 
     def _stood_near(self, links: list[Node], k: int, vertex: int, radius: float) -> bool:
-        """Whether the vehicle stood at ``vertex`` around step ``k``.
+        """Whether the vehicle stood at ``vertex`` around step ``k`` of ``links``.
 
         The run of links that holds ``links[k]`` or ``links[k + 1]`` (the step's two
-        ends) and whose fixes all lie within ``radius`` of ``vertex`` spans
-        ``STAND_S`` seconds or more.
+        ends) and whose fixes all lie within ``radius`` of ``vertex`` spans ``STAND_S``
+        seconds or more (the test ``stand_loops`` makes of a stand at a vertex, with
+        :meth:`_turns_in_stubs`' radius: eps, plus ``STAND_SIGMAS`` x ``sigma_m`` for
+        the spread of a stand's fixes about the point they gather round).
+
+        Example (two fixes 15 s apart, 4 m and 9 m from the vertex at the origin):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "v1")
+            >>> a = Node(0, 1, 0.0, 0.04, 4.0, 0.0, None, (), 0.0, 0.0)
+            >>> b = Node(0, 2, 15.0, 0.09, 9.0, 0.0, a, (), 0.0, 0.0)
+            >>> tracker._stood_near([a, b], 0, 0, 25.0), tracker._stood_near([a, b], 0, 0, 5.0)
+            (True, False)
         """
         view = self._view
         vx = view.vx[vertex]
