@@ -4,7 +4,8 @@ Two readings, on the drives, fixes and in-process matching of ``bench/accuracy.p
 own functions, so the figures lie beside the headline tables):
 
 - ``--detail FILE...`` (``bench/oracle.py --causes --detail`` episodes): the metres of
-  segments that run into or out of a dead end, livematch's path *added* (drove a lap the
+  segments of dead-end spurs (from the last junction to the dead end, both ways; the
+  spur as ``bench/oracle.py``'s ``_spur_m`` walks it), livematch's path *added* (drove a lap the
   truth did not) against *missed* (left out a lap the truth drove), split into stubs
   (a dead-end spur at most ``bench/oracle.py``'s ``STUB_M``, 15 m) and deeper dead ends;
   and each episode that misses a dead end by where its fixes were: a fix truly inside
@@ -62,9 +63,16 @@ class DeadEnds:
         self.twin = network.seg_twin
         # mouth vertex -> the stubs out of it (each a list of segments to the dead end)
         self.mouths: dict[int, list[list[int]]] = {}
+        # every segment of a dead-end spur (both ways) -> the spur's length
+        self.spur_m: dict[int, float] = {}
+        for seg in range(len(network.seg_from)):
+            if self.into_dead_end(seg):
+                length, segs = self.spur(seg)
+                for s in segs:
+                    self.spur_m[s] = length
         for v in range(len(network.node_xy)):
-            if self.leaving[v] < 2:
-                continue
+            if self.leaving[v] < 3:
+                continue  # a mouth is a junction (a stub as bench/oracle.py measures it)
             for s in network.out_segments(v):
                 stub = self.stub_from(int(s))
                 if stub:
@@ -145,12 +153,8 @@ def read_detail(ends: DeadEnds, episodes: list[dict[str, Any]]) -> dict[str, Any
         total += ep["added_m"] + ep["missed_m"]
         for key in ("added", "missed"):
             for s in ep[key]:
-                twin = int(ends.twin[s])
-                if ends.into_dead_end(s):
-                    length = ends.spur(s)[0]
-                elif twin >= 0 and ends.into_dead_end(twin):
-                    length = ends.spur(twin)[0]
-                else:
+                length = ends.spur_m.get(s)
+                if length is None:
                     continue
                 kind = "stub" if length <= ends.stub_m else "dead end"
                 metres[f"{key} {kind}"] += float(net.seg_len[s])
