@@ -762,6 +762,22 @@ class MatchSettings:
             of the eight routed-trips cells at 15-30 s and 2 in one random-walk cell,
             loses none in net (one random-walk cell +1 / -1), and leaves live answers
             and route mismatch identical in all 32 cells.
+        stub_turn_m: a U-turn the committed path makes at a vertex V that is not a
+            dead end, where exactly one other way out of V is a stub (two-way segments
+            through plain shape points to a dead end, at most this many metres in all),
+            is committed as a turn at the stub's end: the stub's segments there and
+            back go into the path between the way into V and the way back
+            (``Tracker._turns_in_stubs``), unless the fixes next to the turn that lie
+            within eps plus ``STAND_SIGMAS`` x ``sigma_m`` of V span ``STAND_S``
+            seconds (``stand_loops``' test of a stand at a vertex, the radius widened
+            by a stand's own spread: the vehicle stood there and may have turned where
+            it stood, as the routed trips' vans do at a stop). Answers, live or
+            final, do not move. Why: a stub no deeper than the GNSS error keeps every
+            fix taken in it within that error of its mouth, so the fixes cannot show
+            it (docs/measured.md "Session 21 (rmf)": in and out of such stubs holds a
+            quarter of the random walk's route mismatch at Helsinki 5 s), while a
+            vehicle moving through a junction turns round there by the room the stub
+            gives it, not in the junction. 0 (the default) is off.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -828,6 +844,7 @@ class MatchSettings:
     monotone_final: bool = False
     monotone_pool: bool = False
     end_at_vertex: bool = True
+    stub_turn_m: float = 0.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -854,7 +871,7 @@ class MatchSettings:
         for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s",
                      "spike_cost", "street_turn_cost", "join_detour", "live_keep",
                      "live_keep_stand_s", "stand_short_m", "speed_pace_m", "heading_cost",
-                     "roll_back_slack_m"):
+                     "roll_back_slack_m", "stub_turn_m"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))

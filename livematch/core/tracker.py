@@ -2029,6 +2029,8 @@ class Tracker:
             links = [before, *chain] if goes_on and before is not None else chain
             pieces = [_steps(a.seg, b) for a, b in itertools.pairwise(links)]
             path[len(path) - sum(map(len, pieces)):] = self._with_laps(links, pieces)
+        if self.settings.stub_turn_m > 0.0:
+            self._stub_turns_into(path, chain, before, eps)
         fixes = [MatchedFix(n.t, n.seg, n.pos * view.slen[n.seg], n.x, n.y) for n in chain]
         if self.settings.vertex_in_segment:
             # an answer at the very start of a segment: at the end of the segment the
@@ -2891,6 +2893,116 @@ class Tracker:
                     out[m] = [*segs[1:j + 1], *(lap * n), *segs[j + 1:]]
                     break
         return [seg for piece in out for seg in piece]
+
+    def _stub_turns_into(self, path: list[int], chain: list[Node], before: Node | None,
+                         eps: float) -> None:
+        """Apply :meth:`_turns_in_stubs` to the end of ``path`` that the chain's steps entered.
+
+        From ``before`` (the last node committed) on when the path ends with the step
+        from it to the chain, else from the chain's first node (a start, a join).
+        """
+        for links in ([before, *chain], chain) if before is not None else (chain,):
+            pieces = [_steps(a.seg, b) for a, b in itertools.pairwise(links)]
+            size = sum(map(len, pieces))
+            if size and size <= len(path) and path[len(path) - size:] == [
+                    seg for piece in pieces for seg in piece]:
+                lead = before if links is chain else None
+                path[len(path) - size:] = self._turns_in_stubs(links, pieces, eps, lead)
+                return
+
+    def _turns_in_stubs(self, links: list[Node], pieces: list[list[int]], eps: float,
+                        lead: Node | None = None) -> list[int]:
+        """The path through ``links`` with each U-turn at a stub's mouth taken in the stub.
+
+        ``pieces[k]``: the segments entered from ``links[k]`` to ``links[k + 1]``. Rule
+        ``MatchSettings.stub_turn_m`` (see there for why): where the path turns round
+        at a vertex V (a segment into V, then its twin) that is not a dead end, and
+        exactly one other way out of V is a stub (:func:`_stub_from`: two-way segments
+        through plain shape points to a dead end, at most ``stub_turn_m`` long), the
+        stub's segments there and back are put in between the two, unless the
+        vehicle stood at V (:meth:`_stood_near`, over ``lead``, a node committed
+        before ``links`` if given, and ``links``): a vehicle that stood may turn round
+        where it stood. Only the committed path changes: answers, live or final, do
+        not.
+
+        Example (a straight road, no U-turn: the path is the pieces as they are):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "v1", MatchSettings(stub_turn_m=15.0))
+            >>> a = Node(0, 1, 0.0, 0.1, 10.0, 0.0, None, (), 0.0, 0.0)
+            >>> b = Node(0, 2, 5.0, 0.2, 20.0, 0.0, a, (), 0.0, 0.0)
+            >>> tracker._turns_in_stubs([a, b], [[]], 15.0)
+            []
+        """
+        view = self._view
+        twin = view.twin
+        seen = [lead, *links] if lead is not None else links
+        shift = 1 if lead is not None else 0
+        radius = eps + STAND_SIGMAS * self.settings.sigma_m
+        out: list[int] = []
+        for k, piece in enumerate(pieces):
+            prev = links[k].seg
+            for seg in piece:
+                if seg == twin[prev] and seg >= 0:
+                    stub = self._stub_at(view.st[prev], seg)
+                    if stub and not self._stood_near(seen, k + shift, view.st[prev], radius):
+                        out.extend(stub)
+                        out.extend(twin[s] for s in reversed(stub))
+                out.append(seg)
+                prev = seg
+        return out
+
+    def _stub_at(self, vertex: int, way_back: int) -> list[int]:
+        """The one stub (:func:`_stub_from`) out of ``vertex`` but ``way_back``.
+
+        [] when there is none or more than one, or ``vertex`` is a dead end.
+        """
+        view = self._view
+        if len(view.out[vertex]) < 2:
+            return []  # a dead end: the turn is where the road ends
+        found: list[list[int]] = []
+        for seg in view.out[vertex]:
+            if seg != way_back:
+                stub = _stub_from(view, seg, self.settings.stub_turn_m)
+                if stub:
+                    found.append(stub)
+        return found[0] if len(found) == 1 else []
+
+    def _stood_near(self, links: list[Node], k: int, vertex: int, radius: float) -> bool:
+        """Whether the vehicle stood at ``vertex`` around step ``k`` of ``links``.
+
+        The run of links that holds ``links[k]`` or ``links[k + 1]`` (the step's two
+        ends) and whose fixes all lie within ``radius`` of ``vertex`` spans ``STAND_S``
+        seconds or more (the test ``stand_loops`` makes of a stand at a vertex, with
+        :meth:`_turns_in_stubs`' radius: eps, plus ``STAND_SIGMAS`` x ``sigma_m`` for
+        the spread of a stand's fixes about the point they gather round).
+
+        Example (two fixes 15 s apart, 4 m and 9 m from the vertex at the origin):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "v1")
+            >>> a = Node(0, 1, 0.0, 0.04, 4.0, 0.0, None, (), 0.0, 0.0)
+            >>> b = Node(0, 2, 15.0, 0.09, 9.0, 0.0, a, (), 0.0, 0.0)
+            >>> tracker._stood_near([a, b], 0, 0, 25.0), tracker._stood_near([a, b], 0, 0, 5.0)
+            (True, False)
+        """
+        view = self._view
+        vx = view.vx[vertex]
+        vy = view.vy[vertex]
+
+        def near(node: Node) -> bool:
+            x, y = self._fix_xy_of(node)
+            return math.hypot(x - vx, y - vy) <= radius
+
+        lo = k if near(links[k]) else k + 1
+        hi = k + 1 if near(links[k + 1]) else k
+        if hi < lo:
+            return False
+        while lo > 0 and near(links[lo - 1]):
+            lo -= 1
+        while hi + 1 < len(links) and near(links[hi + 1]):
+            hi += 1
+        return links[hi].t - links[lo].t >= STAND_S
 
     def _small_loop_in(
         self, a: Node, b: Node, piece: list[int], limit: float, eps: float
@@ -4193,6 +4305,40 @@ def stand_step(dt: float, chord: float, gap_s: float, radius: float) -> bool:
 def _step_dir(prev: tuple[float, float, float], fix: Fix) -> float:
     """Direction (radians, from the x axis) of the step from ``prev`` (t, x, y) to ``fix``."""
     return math.atan2(fix.y - prev[2], fix.x - prev[1])
+
+
+def _stub_from(view: NetworkView, seg: int, limit_m: float) -> list[int]:
+    """The segments of the stub ``seg`` begins, or [] when it begins none.
+
+    A stub: ``seg`` and the segments after it, all two-way, through vertices where the
+    road goes on one way only (a vertex left by the way back and one other segment),
+    to a dead end (a vertex left only by the way back), at most ``limit_m`` long in all.
+
+    Example (a 10 m two-way road from a junction to a dead end is a stub of one
+    segment; the same road with a 50 m limit of 5 m is none):
+        >>> from livematch.core.build import Road, network_from_roads
+        >>> net = network_from_roads([Road([(0.0, 0.0), (10.0, 0.0)], way=1)])
+        >>> v = view_of(net)
+        >>> [_stub_from(v, s, 15.0) for s in range(2)], _stub_from(v, 0, 5.0)
+        ([[0], [1]], [])
+    """
+    twin = view.twin
+    out = view.out
+    total = 0.0
+    segs: list[int] = []
+    while True:
+        if twin[seg] < 0 or seg in segs:
+            return []
+        total += view.slen[seg]
+        if total > limit_m:
+            return []
+        segs.append(seg)
+        ways = [s for s in out[view.st[seg]] if s != twin[seg]]
+        if not ways:
+            return segs
+        if len(ways) != 1:
+            return []
+        seg = ways[0]
 
 
 def _steps(prev_seg: int, node: Node) -> list[int]:
