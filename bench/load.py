@@ -21,7 +21,9 @@ on this machine and loopback only:
   (the same group with the shard in the input topic, ``fleet/{shard}/+/position``, the
   generators publishing each vehicle on its shard's topic: each worker subscribes only
   to the shards it holds or stands by for, the standby ones at livematch's default
-  ``group.standby_qos`` = 0) or ``livematch-2s1`` (the same with ``standby_qos = 1``:
+  ``group.standby_qos`` = 0, on the worker's one connection:
+  ``group.standby_connection = false``, written out since that default became true)
+  or ``livematch-2s1`` (the same with ``standby_qos = 1``:
   every shard topic at QoS 1, as before that option existed) or ``livematch-2s0`` (the
   same with ``group.standby = false``: each worker subscribes only to the shards it
   holds, about half the feed) or ``livematch-2sm`` (a mixed pair: w0 as in
@@ -736,8 +738,9 @@ def daemon_config(folder: Path, port: int, store: str, worker: str, group: str,
     """A daemon configuration; ``metrics_port`` > 0 opens its /metrics on that port.
 
     ``standby_qos`` sets ``group.standby_qos`` (None: livematch's default);
-    ``standby`` False writes ``group.standby = false``; ``standby_connection`` True
-    writes ``group.standby_connection = true``.
+    ``standby`` False writes ``group.standby = false``; with standbys
+    ``group.standby_connection`` is written as given (livematch's default is true from
+    session 22 on; the systems without ``c`` in their name keep one connection).
     """
     cfg = folder / f"{worker}.toml"
     listen = f"127.0.0.1:{metrics_port}" if metrics_port else ""
@@ -746,8 +749,8 @@ def daemon_config(folder: Path, port: int, store: str, worker: str, group: str,
         group_lines += f"standby_qos = {standby_qos}\n"
     if group and not standby:
         group_lines += "standby = false\n"
-    if group and standby and standby_connection:
-        group_lines += "standby_connection = true\n"
+    if group and standby:
+        group_lines += f"standby_connection = {'true' if standby_connection else 'false'}\n"
     cfg.write_text(f"""
 [inputs]
 network = "{NETWORK}"

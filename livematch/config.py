@@ -270,11 +270,15 @@ class GroupConfig:
     state, the later ones are never matched or answered. The next fixes of those
     vehicles are matched from the restored state, bridging the gap or restarting the
     match as for any gap in a feed. Hand-overs between live workers lose nothing either
-    way (``docs/scale.md``). ``standby_connection = true`` (default false; needs a
-    ``{shard}`` topic, standbys and ``standby_qos = 0``) receives the standby shards on
-    a second MQTT connection of their own, read when the worker is awake for its own
-    shards anyway, so their packets neither wake it nor split the batches of the feed
-    it matches; a takeover merges the two connections' fixes in publish order.
+    way (``docs/scale.md``). ``standby_connection`` (default true; it applies with a
+    ``{shard}`` topic, standbys and ``standby_qos = 0``, see :meth:`standby_link`)
+    receives the standby shards on a second MQTT connection of their own, read when the
+    worker is awake for its own shards anyway, so their packets neither wake it nor
+    split the batches of the feed it matches; a takeover merges the two connections'
+    fixes in publish order. Why on: idle, it halves what standing by adds to a
+    worker's CPU (+9.9 % -> +5.0 % within one step) and two workers read 1.59 times one
+    against 1.48 (``bench/load.py``, docs/measured.md "Session 22 (lead)"). Where it
+    cannot apply the default is silently inert; an explicit ``true`` there is refused.
     """
 
     name: str = ""
@@ -285,7 +289,26 @@ class GroupConfig:
     buffer_max: int = 20_000
     standby_qos: int = 0
     standby: bool = True
-    standby_connection: bool = False
+    standby_connection: bool = True
+
+    def standby_link(self, topic: str) -> bool:
+        """Whether a worker of this group receives its standby shards on a second connection.
+
+        Only in a group (``name``), with standbys, at ``standby_qos = 0`` and with a
+        ``{shard}`` level in the feed's ``topic``: without the level every worker
+        receives the whole feed on one subscription anyway, and at QoS 1 the standby
+        subscription would need the session the main connection keeps.
+
+        Example:
+            >>> GroupConfig(name="g").standby_link("fleet/{shard}/+/position")
+            True
+            >>> GroupConfig(name="g").standby_link("fleet/+/position")
+            False
+            >>> GroupConfig(name="g", standby_qos=1).standby_link("fleet/{shard}/+/position")
+            False
+        """
+        return bool(self.name and self.standby_connection and self.standby
+                    and self.standby_qos == 0 and "{shard}" in topic.split("/"))
 
     def problems(self) -> list[tuple[str, str]]:
         """Every invalid value as (key, expectation with the value found)."""
@@ -685,9 +708,9 @@ def _group_problems(group: GroupConfig, store: StoreConfig, mqtt: MqttConfig,
         origin = entries.get("standby", (None, "<defaults>"))[1]
         out.append(f"{origin}: group.standby = false needs a {{shard}} level in mqtt.topic "
                    f"(fleet/{{shard}}/+/position), got {mqtt.topic!r}")
-    if group.standby_connection and not (group.standby and group.standby_qos == 0
-                                         and "{shard}" in mqtt.topic):
-        origin = entries.get("standby_connection", (None, "<defaults>"))[1]
+    if (group.standby_connection and "standby_connection" in entries
+            and not (group.standby and group.standby_qos == 0 and "{shard}" in mqtt.topic)):
+        origin = entries["standby_connection"][1]
         out.append(f"{origin}: group.standby_connection = true needs a {{shard}} level in "
                    f"mqtt.topic, group.standby = true and group.standby_qos = 0")
     if not group.name:

@@ -102,16 +102,22 @@ async def wait_answered(col: Collector, feeds: dict[str, list[tuple[float, bytes
 
 
 
+@pytest.mark.parametrize("link", [True, False], ids=["standby-connection", "one-connection"])
 async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
-        mosquitto: Mosquitto, redis_server: RedisServer, prefix: str, tmp_path: Path) -> None:
+        mosquitto: Mosquitto, redis_server: RedisServer, prefix: str, tmp_path: Path,
+        link: bool) -> None:
     """Three workers on ``{prefix}/fleet/{shard}/+/position``: each holds its share of
     the bounded-load assignment (3 / 3 / 2 of 8) and receives only those shards and the
     ones it stands by for (exact message counts); a fix on another shard's topic is a
     ``wrong_shard`` reject; after a SIGKILL the standbys take the dead worker's shards
     (and a shard whose holder lives moves once its new holder receives it): every fix
     is answered, no
-    checkpoint goes back, every vehicle's certificate window grows 1, 2, 3, ..."""
-    cfg, ports, logs = topic_group(tmp_path, prefix, mosquitto, redis_server, WORKERS)
+    checkpoint goes back, every vehicle's certificate window grows 1, 2, 3, ... Both
+    ways of receiving the standby shards: on a second connection (the default) and on
+    the worker's one connection. The standby connection is read when the worker is
+    awake anyway (at the latest every quarter second), so its counts are awaited."""
+    cfg, ports, logs = topic_group(tmp_path, prefix, mosquitto, redis_server, WORKERS,
+                                   f"standby_connection = {'true' if link else 'false'}\n")
     # sv-14 is on shard 6, which moves from w1 to w3 (both alive) when w2 is killed
     vehicles = [f"sv-{i}" for i in (0, 1, 2, 3, 4, 14, 6, 7, 13)]
     n_fixes = 30
@@ -137,7 +143,11 @@ async def test_topic_with_shard_partitions_feed_and_survives_sigkill(
             for w in WORKERS:  # only the shards it holds or stands by for reach a worker
                 mine, standby = roles[w]
                 expect = sum(15 for v in vehicles if shard_of(v, SHARDS) in mine | standby)
+                deadline = time.monotonic() + 10
                 got = await metric_sum(ports[w], "livematch_messages_received_total")
+                while got - before[w] != expect and time.monotonic() < deadline:
+                    await asyncio.sleep(0.1)
+                    got = await metric_sum(ports[w], "livematch_messages_received_total")
                 assert got - before[w] == expect, (w, got - before[w], expect)
             wrong = (shard_of("sv-0", SHARDS) + 1) % SHARDS
             async with publisher(mosquitto.port) as pub:
@@ -185,7 +195,8 @@ async def test_shard_moves_only_once_its_new_holder_receives_it(
     Its own record names every shard it receives."""
     config = write_config(tmp_path, prefix, broker=mosquitto.url, store=redis_server.url,
                           metrics="", topic="fleet/{shard}/+/position",
-                          extra='[group]\nname = "g"\nshards = 8\nlease_s = 1.0\n')
+                          extra='[group]\nname = "g"\nshards = 8\nlease_s = 1.0\n'
+                                'standby_connection = false\n')  # the one-connection path
     a = group_daemon(config, "a")
     arrived: list[tuple[str, int]] = []
     arrive = a._arrive
@@ -245,7 +256,8 @@ async def test_standby_fixes_kept_from_the_read_buffer_and_replayed_on_takeover(
     and replays them: every fix answered, the certificate window growing 1, 2, 3, ..."""
     config = write_config(tmp_path, prefix, broker=mosquitto.url, store=redis_server.url,
                           metrics="", topic="fleet/{shard}/+/position",
-                          extra='[group]\nname = "g"\nshards = 8\nlease_s = 1.0\n')
+                          extra='[group]\nname = "g"\nshards = 8\nlease_s = 1.0\n'
+                                'standby_connection = false\n')  # the one-connection path
     a = group_daemon(config, "a")
     arrived: list[str] = []
     taken: list[bytes] = []

@@ -15,6 +15,7 @@ import re
 import signal
 import time
 from collections import deque
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
@@ -116,14 +117,25 @@ def test_merge_moved_gives_each_topic_in_publish_order(to_main: bool) -> None:
 
 
 def test_standby_connection_setting_needs_shard_topic_and_qos0(tmp_path: Path) -> None:
-    """``group.standby_connection`` is refused where it could not apply (no ``{shard}``
-    level, no standbys, standbys at QoS 1), and is off by default."""
+    """An explicit ``group.standby_connection = true`` is refused where it could not
+    apply (no ``{shard}`` level, no standbys, standbys at QoS 1); the default (true) is
+    accepted everywhere and applies only where it can (``GroupConfig.standby_link``)."""
     def config(extra: str, topic: str = "fleet/{shard}/+/position") -> Path:
         return write_config(tmp_path, "p", broker="mqtt://127.0.0.1:1", topic=topic,
                             extra="[group]\n" + extra)
-    assert load_config(config(""), env={}).group.standby_connection is False
-    assert load_config(config("standby_connection = true\n"), env={}
-                       ).group.standby_connection is True
+    sharded, flat = "fleet/{shard}/+/position", "fleet/+/position"
+    assert load_config(config(""), env={}).group.standby_connection is True
+    assert load_config(config("standby_connection = false\n"), env={}
+                       ).group.standby_connection is False
+    # the default where it cannot apply: accepted, and inert
+    for extra, topic in (("", flat), ("standby = false\n", sharded),
+                         ("standby_qos = 1\n", sharded)):
+        group = replace(load_config(config(extra, topic), env={}).group, name="g")
+        assert group.standby_connection is True
+        assert group.standby_link(topic) is False
+    assert replace(load_config(config(""), env={}).group, name="g").standby_link(sharded)
+    assert not replace(load_config(config("standby_connection = false\n"), env={}).group,
+                       name="g").standby_link(sharded)
     for extra, topic in (("standby_connection = true\n", "fleet/+/position"),
                          ("standby_connection = true\nstandby = false\n",
                           "fleet/{shard}/+/position"),

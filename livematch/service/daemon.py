@@ -476,8 +476,7 @@ class Daemon:
         self._subs_lock = asyncio.Lock()
         # group.standby_connection: the standby shards on a second connection of their
         # own (_standby_loop), read when the worker is awake anyway (_read_standby)
-        self._standby_link = bool(group.name and group.standby_connection
-                                  and self._sharded_topic)
+        self._standby_link = group.standby_link(config.mqtt.topic)
         self._standby_client: aiomqtt.Client | None = None  # that connection, when up
         self._standby_intake: IntakeQueue | None = None  # its queue (stays empty)
         self._standby_subs: set[int] = set()  # shard topics subscribed on it (QoS 0)
