@@ -157,3 +157,20 @@ def seg_of(net: RoadNetwork, a: tuple[float, float], b: tuple[float, float]) -> 
                 and tuple(net.node_xy[net.seg_to[s]]) == b):
             return s
     raise LookupError((a, b))
+
+
+Line = list[tuple[float, float]]
+
+
+def corner() -> tuple[Line, Line, Line, RoadNetwork, int, int, int, int]:
+    """A corner for the end-of-log rules at sparse fixes, and its directed segments.
+
+    P runs east into V = (100, 0); S leaves V north to a dead end 80 m on; T leaves V
+    east (ways 1, 2, 3). Returns ``P, S, T, net, P east, S north, S south, T east``.
+    """
+    p = [(-1000.0, 0.0), (100.0, 0.0)]
+    s = [(100.0, 0.0), (100.0, 80.0)]
+    t = [(100.0, 0.0), (400.0, 0.0)]
+    net = network_from_roads([Road(p, way=1), Road(s, way=2), Road(t, way=3)])
+    return (p, s, t, net, seg_of(net, p[0], p[1]), seg_of(net, s[0], s[1]),
+            seg_of(net, s[1], s[0]), seg_of(net, t[0], t[1]))

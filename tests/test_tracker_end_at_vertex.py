@@ -9,28 +9,21 @@ from __future__ import annotations
 import pytest
 import shapely
 
-from livematch.core.build import Road, network_from_roads
 from livematch.core.events import Event, MatchedFix
 from livematch.core.fix import Fix
 from livematch.core.settings import MatchSettings
 from livematch.core.tracker import Node, Tracker
 from tests.catalogue import committed_path as path
+from tests.catalogue import corner, track_points
 from tests.catalogue import final_answers as finals
-from tests.catalogue import seg_of, track_points
 
 # P runs east into V = (100, 0); S leaves V north to a dead end 80 m on; T leaves V east.
-P = [(-1000.0, 0.0), (100.0, 0.0)]
-S = [(100.0, 0.0), (100.0, 80.0)]
-T = [(100.0, 0.0), (400.0, 0.0)]
-NET = network_from_roads([Road(P, way=1), Road(S, way=2), Road(T, way=3)])
+P, S, T, NET, P_EAST, S_NORTH, S_SOUTH, T_EAST = corner()
 EPS = 15.0
 DT = 30.0
 ON = MatchSettings(end_at_vertex=True)
 OFF = MatchSettings(end_at_vertex=False)
 
-P_EAST = seg_of(NET, P[0], P[1])
-S_NORTH, S_SOUTH = seg_of(NET, S[0], S[1]), seg_of(NET, S[1], S[0])
-T_EAST = seg_of(NET, T[0], T[1])
 
 # a van at 10 m/s along P, a fix every 30 s; it reaches V and stands there as the log
 # ends (it will turn round there, or drive on later), its fix 4 m short of V, then its
