@@ -2312,21 +2312,22 @@ class Tracker:
             return
         v = int(view.sf[seg])
         vx, vy = float(view.vx[v]), float(view.vy[v])
-        for j in range(k, n):
-            node = chain[j]
+
+        def near_v(node: Node) -> bool:
+            """Whether the node's logged fix lies within eps of V (not logged: no)."""
             r = node.seq - seq0
-            if (node.pos > 0.5 or fixes[j].segment not in (seg, seg_in)
-                    or not 0 <= r < self.fix_n
-                    or (xy.item(r, 0) - vx) ** 2 + (xy.item(r, 1) - vy) ** 2 > eps * eps):
+            return (0 <= r < self.fix_n
+                    and (xy.item(r, 0) - vx) ** 2 + (xy.item(r, 1) - vy) ** 2 <= eps * eps)
+
+        for j in range(k, n):
+            if (chain[j].pos > 0.5 or fixes[j].segment not in (seg, seg_in)
+                    or not near_v(chain[j])):
                 return
-        if n - k < 2:
-            # one fix near V is no stand: a vehicle driving through V onto S sends one
-            # too, and then S is as likely the road driven as P (the road in may be
-            # the one the path guessed); the fix before must stand at V as well
-            r = prev.seq - seq0
-            if (not 0 <= r < self.fix_n
-                    or (xy.item(r, 0) - vx) ** 2 + (xy.item(r, 1) - vy) ** 2 > eps * eps):
-                return
+        # one fix near V is no stand: a vehicle driving through V onto S sends one too,
+        # and then S is as likely the road driven as P (the road in may be the one the
+        # path guessed); the fix before must stand at V as well
+        if n - k < 2 and not near_v(prev):
+            return
         end = float(view.slen[seg_in])
         for j in range(k, n):
             if fixes[j].segment == seg:
