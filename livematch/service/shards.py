@@ -164,7 +164,51 @@ def _bounded_holders(ranked: Sequence[Sequence[str]], live: Sequence[str],
     return out
 
 
-def assign_shards(n_shards: int, workers: Iterable[str]) -> Assignment:
+def _balanced(holder: Sequence[str], weights: Sequence[int],
+              workers: Sequence[str]) -> list[str]:
+    """``holder`` with shards moved from the busiest worker to the lightest while that helps.
+
+    ``weights[s]`` is shard ``s``'s load (its vehicles). Each step takes the busiest
+    and the lightest worker (by summed weight, ties by name) and moves one shard of
+    the busiest whose weight ``w`` satisfies ``0 < w < gap`` (``gap`` = busiest minus
+    lightest), the one whose ``w`` is nearest ``gap / 2`` (ties: the lowest shard), to
+    the lightest. Every such move lowers the sum of squared loads (by
+    ``2 w (gap - w)``), so the steps end; at the end the busiest holds no shard
+    lighter than ``gap`` but above 0, so busiest - lightest <= the largest shard
+    weight, and the busiest carries at most that much above the even share.
+    Starting from the count-balanced assignment, the moves are few: none when the
+    counts already balance the load (equal weights, or no vehicle at all).
+
+    Example (two workers, 3 shards each; shard 0 is heavy):
+        >>> _balanced(["a", "a", "a", "b", "b", "b"], [9, 1, 1, 1, 1, 1], ["a", "b"])
+        ['a', 'b', 'b', 'b', 'b', 'b']
+        >>> _balanced(["a", "b"], [0, 0], ["a", "b"])
+        ['a', 'b']
+    """
+    out = list(holder)
+    load = dict.fromkeys(workers, 0)
+    held: dict[str, set[int]] = {w: set() for w in workers}
+    for shard, worker in enumerate(out):
+        load[worker] += weights[shard]
+        held[worker].add(shard)
+    for _ in range(len(out) * max(1, len(workers))):  # a bound; the loop ends sooner
+        busiest = max(workers, key=lambda w: (load[w], w))
+        lightest = min(workers, key=lambda w: (load[w], w))
+        gap = load[busiest] - load[lightest]
+        movable = [s for s in held[busiest] if 0 < weights[s] < gap]
+        if not movable:
+            break
+        shard = min(movable, key=lambda s: (abs(gap - 2 * weights[s]), s))
+        held[busiest].discard(shard)
+        held[lightest].add(shard)
+        load[busiest] -= weights[shard]
+        load[lightest] += weights[shard]
+        out[shard] = lightest
+    return out
+
+
+def assign_shards(n_shards: int, workers: Iterable[str],
+                  weights: Sequence[int] | None = None) -> Assignment:
     """Even shares by bounded-load rendezvous hashing, and a standby for every failure.
 
     Deterministic given the set of live workers (every worker computes the same from
@@ -178,6 +222,13 @@ def assign_shards(n_shards: int, workers: Iterable[str]) -> Assignment:
     over (fenced checkpoint) by their live holder once the new holder receives their
     topic (``docs/scale.md``).
 
+    ``weights`` (``group.balance_load``): per shard, its load (the vehicles in its
+    checkpoint index, one snapshot every worker reads from Redis). The count-balanced
+    assignment is then evened out by load (:func:`_balanced`): every worker carries at
+    most the largest shard weight above the even share (total / W). The standby is
+    still the holder after the holder's failure, with the same weights; without
+    weights (None) the assignment is exactly the unweighted one.
+
     Example (8 shards on 3 workers: rendezvous alone gives 5 / 3 / 0):
         >>> a = assign_shards(8, ["w3", "w1", "w2"])
         >>> a.workers, sorted(len(a.held_by(w)) for w in a.workers)
@@ -188,15 +239,27 @@ def assign_shards(n_shards: int, workers: Iterable[str]) -> Assignment:
         (None, None, None, None)
         >>> assign_shards(4, []).holder
         ()
+        >>> assign_shards(8, ["w1", "w2", "w3"], [1] * 8) == a   # even weights: no move
+        True
     """
     live = sorted(set(workers))
     if not live:
         return Assignment((), (), ())
+    if weights is not None and (len(weights) != n_shards or min(weights, default=0) < 0):
+        raise ValueError(f"weights must be {n_shards} counts >= 0, got {len(weights)} "
+                         f"(smallest {min(weights, default=0)})")
     ranked = [rank_workers(shard, live) for shard in range(n_shards)]
-    holder = _bounded_holders(ranked, live)
+
+    def holders(without: str | None = None) -> list[str]:
+        out = _bounded_holders(ranked, live, without)
+        if weights is None:
+            return out
+        return _balanced(out, weights, [w for w in live if w != without])
+
+    holder = holders()
     if len(live) == 1:
         return Assignment(tuple(live), tuple(holder), (None,) * n_shards)
-    after = {w: _bounded_holders(ranked, live, without=w) for w in set(holder)}
+    after = {w: holders(without=w) for w in set(holder)}
     standby = [after[h][shard] for shard, h in enumerate(holder)]
     return Assignment(tuple(live), tuple(holder), tuple(standby))
 
