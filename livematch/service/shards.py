@@ -15,6 +15,7 @@ Cluster slot and one Lua script may touch them together)::
     {prefix}group:NAME:members    sorted set: worker -> expiry time (ms, Redis clock)
     {prefix}group:NAME:shards     the group's shard count (all workers must agree)
     {prefix}group:NAME:receives   hash: worker -> the shard topics it receives ("3,11")
+    {prefix}group:NAME:load       hash: version -> n, weights -> per-shard vehicles ("7,9,..")
 
 Safety rests on two rules:
 
@@ -264,6 +265,26 @@ def assign_shards(n_shards: int, workers: Iterable[str],
     return Assignment(tuple(live), tuple(holder), tuple(standby))
 
 
+def _int_or_zero(value: object) -> int:
+    """A Redis reply as an int (bytes or str of digits), 0 when missing or not a number."""
+    text = value.decode() if isinstance(value, bytes) else str(value or "")
+    return int(text) if text.isdigit() else 0
+
+
+def _parse_weights(value: object, n_shards: int) -> list[int] | None:
+    """``"7,9,0"`` as ``[7, 9, 0]``; None unless exactly ``n_shards`` counts >= 0.
+
+    Example:
+        >>> _parse_weights(b"7,9,0", 3), _parse_weights("7,9", 3), _parse_weights(None, 3)
+        ([7, 9, 0], None, None)
+    """
+    text = value.decode() if isinstance(value, bytes) else str(value or "")
+    parts = text.split(",") if text else []
+    if len(parts) != n_shards or not all(p.isdigit() for p in parts):
+        return None
+    return [int(p) for p in parts]
+
+
 def target_share(n_shards: int, n_workers: int) -> int:
     """How many shards one worker aims at: ceil(shards / live workers).
 
@@ -338,6 +359,16 @@ return redis.call('ZRANGE', KEYS[1], 0, -1)
 """
 
 
+# KEYS: load. ARGV: the version the writer read, the new version, the weights.
+# Compare-and-set: 1 when written, 0 when another writer got there first.
+_WRITE_LOAD = """
+local v = redis.call('HGET', KEYS[1], 'version') or '0'
+if v ~= ARGV[1] then return 0 end
+redis.call('HSET', KEYS[1], 'version', ARGV[2], 'weights', ARGV[3])
+return 1
+"""
+
+
 #: Seconds between renewal attempts while they fail (at most the renewal period).
 _RETRY_S = 0.1
 
@@ -353,6 +384,8 @@ class Renewal:
         results: per shard of ``sent``, in order: 1 when extended, 0 when lost.
         members: the group's live workers, sorted; None when the round failed.
         error: why the round failed, else None.
+        load_version: the version of the group's load snapshot (``group.balance_load``;
+            0 when there is none or it was not read).
     """
 
     sent: dict[int, int]
@@ -360,6 +393,7 @@ class Renewal:
     results: list[object]
     members: list[str] | None
     error: StoreError | None
+    load_version: int = 0
 
 
 class RenewalThread:
@@ -476,14 +510,17 @@ class LeaseManager:
         worker: this worker's name (unique within the group).
         n_shards: the number of shards (the same in every worker of the group).
         lease_s: lease duration, seconds.
+        balance: read the group's load snapshot version with every renewal round
+            (``group.balance_load`` above 0 with a ``{shard}`` topic).
 
     ``held`` maps each shard held to its fencing number. Every method that talks to
     Redis raises :class:`StoreError` when Redis cannot be reached.
     """
 
     def __init__(self, client: aioredis.Redis, *, url: str, prefix: str, group: str,
-                 worker: str, n_shards: int, lease_s: float) -> None:
+                 worker: str, n_shards: int, lease_s: float, balance: bool = False) -> None:
         self.client = client
+        self.balance = balance
         self.url = url
         self.prefix = prefix
         self.group = group
@@ -496,11 +533,13 @@ class LeaseManager:
         self._earliest: float | None = None  # min of _deadline; None: to be recomputed
         self._members_key = f"{prefix}group:{group}:members"
         self._receives_key = f"{prefix}group:{group}:receives"
+        self._load_key = f"{prefix}group:{group}:load"
         self._acquire = client.register_script(_ACQUIRE)
         self._renew = client.register_script(_RENEW)
         self._release = client.register_script(_RELEASE)
         self._save = client.register_script(_SAVE)
         self._members = client.register_script(_MEMBERS)
+        self._write_load = client.register_script(_WRITE_LOAD)
 
     # -- keys ------------------------------------------------------------------------
 
@@ -586,6 +625,55 @@ class LeaseManager:
         except (RedisError, OSError) as exc:
             raise self._fail("removing the shard topics received", exc) from exc
 
+    # -- load snapshot (group.balance_load) --------------------------------------------
+
+    async def shard_sizes(self) -> list[int]:
+        """Per shard, the vehicles in its checkpoint index (one pipeline of ``SCARD``).
+
+        A vehicle enters the index with its first checkpoint and leaves it when it is
+        dropped after ``store.idle_ttl_s`` idle, so the count follows the fleet with a
+        delay of one checkpoint interval.
+        """
+        try:
+            async with self.client.pipeline(transaction=False) as pipe:
+                for shard in range(self.n_shards):
+                    pipe.scard(self.key(shard, "vehicles"))
+                values = await pipe.execute()
+        except (RedisError, OSError) as exc:
+            raise self._fail("counting the shards' vehicles", exc) from exc
+        return [int(v) for v in values]
+
+    async def read_load(self) -> tuple[int, list[int] | None]:
+        """The group's load snapshot: (version, per-shard weights); (0, None) when none.
+
+        Weights of another shard count (not one per shard) are returned as None: the
+        snapshot is then not used (the group's shard count is checked at join anyway).
+        """
+        try:
+            version, text = await self.client.hmget(self._load_key, ["version", "weights"])
+        except (RedisError, OSError) as exc:
+            raise self._fail("reading the load snapshot", exc) from exc
+        weights = _parse_weights(text, self.n_shards)
+        return _int_or_zero(version), weights
+
+    async def write_load(self, read_version: int,
+                         weights: Sequence[int] | None) -> int | None:
+        """Write a new load snapshot over version ``read_version``; the new version.
+
+        ``weights`` None writes a snapshot without weights (the assignment by count).
+        None when the snapshot is no longer ``read_version`` (another worker wrote one
+        since: compare-and-set, so two writers never interleave their weights).
+        """
+        new = read_version + 1
+        try:
+            done = await self._write_load(
+                keys=[self._load_key],
+                args=[str(read_version), str(new),
+                      ",".join(str(int(w)) for w in weights or ())])
+        except (RedisError, OSError) as exc:
+            raise self._fail("writing the load snapshot", exc) from exc
+        return new if done == 1 else None
+
     # -- leases ----------------------------------------------------------------------
 
     async def owners(self) -> dict[int, str | None]:
@@ -652,13 +740,18 @@ class LeaseManager:
                 pipe.eval(_RENEW, 1, self.key(shard, "lease"), f"{self.token}:{fence}",
                           self._ttl_ms)
             pipe.eval(_MEMBERS, 1, self._members_key, self.worker, str(self._ttl_ms))
+            if self.balance:
+                pipe.hget(self._load_key, "version")
             results = pipe.execute()
         except (RedisError, OSError) as exc:
             return Renewal(sent, started, [], None, self._fail(
                 f"renewing {len(sent)} lease(s) and announcing the worker", exc))
+        version = 0
+        if self.balance:
+            version = _int_or_zero(results.pop())
         members = sorted(n.decode() if isinstance(n, bytes) else str(n)
                          for n in results[-1])
-        return Renewal(sent, started, list(results[:-1]), members, None)
+        return Renewal(sent, started, list(results[:-1]), members, None, version)
 
     def apply(self, renewal: Renewal) -> list[int]:
         """Apply a :meth:`renewal_round` (in the event loop's thread); the shards lost.
