@@ -279,14 +279,14 @@ class GroupConfig:
     worker's CPU (+9.9 % -> +5.0 % within one step) and two workers read 1.59 times one
     against 1.48 (``bench/load.py``, docs/measured.md "Session 22 (lead)"). Where it
     cannot apply the default is silently inert; an explicit ``true`` there is refused.
-    ``balance_load`` (a fraction 0..1, default 0.02; it applies with a ``{shard}``
-    topic, see :meth:`balances`, and an explicit value above 0 is refused anywhere
-    else) evens the workers' load by vehicles, not only their shard counts: the first
-    worker of the group's sorted member list counts each shard's vehicles (its
-    checkpoint index) and, when the busiest worker carries more than ``balance_load``
-    times the even share above it, writes the counts to Redis as a new snapshot
-    (at most every ``6 * lease_s``); every worker reads the snapshot's version with
-    its heartbeat and computes the same weighted assignment
+    ``balance_load`` (a fraction 0..1, default 0.02; it applies in a group with a
+    ``{shard}`` topic, and an explicit value above 0 is refused without one) evens the
+    workers' load by vehicles, not only their shard counts: the first worker of the
+    group's sorted member list counts each shard's vehicles (its checkpoint index)
+    and, when the busiest worker carries more than ``balance_load`` times the even
+    share above it, writes the counts to Redis as a new snapshot (at most every
+    ``6 * lease_s`` while the fleet keeps its size); every worker reads the snapshot's
+    version with its heartbeat and computes the same weighted assignment
     (:func:`~livematch.service.shards.assign_shards`). 0 turns it off (the first
     worker then clears a snapshot left by an earlier setting).
     """
@@ -301,22 +301,6 @@ class GroupConfig:
     standby: bool = True
     standby_connection: bool = True
     balance_load: float = 0.02
-
-    def balances(self, topic: str) -> bool:
-        """Whether this group's first worker writes load snapshots (``balance_load``).
-
-        Only in a group with a ``{shard}`` level in the feed's ``topic``: without it
-        every worker receives the whole feed and takes free shards by count.
-
-        Example:
-            >>> GroupConfig(name="g").balances("fleet/{shard}/+/position")
-            True
-            >>> GroupConfig(name="g", balance_load=0).balances("fleet/{shard}/+/position")
-            False
-            >>> GroupConfig(name="g").balances("fleet/+/position")
-            False
-        """
-        return bool(self.name and self.balance_load > 0 and "{shard}" in topic.split("/"))
 
     def standby_link(self, topic: str) -> bool:
         """Whether a worker of this group receives its standby shards on a second connection.

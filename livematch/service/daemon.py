@@ -1053,7 +1053,9 @@ class Daemon:
         at most f / 2 since the last check: the indexes fill during the first checkpoint
         interval of a fleet) and no snapshot was written in the last ``6 * lease_s``
         (hysteresis: a move costs a hand-over, and the counts drift by a vehicle or two
-        all the time). Every worker reads the version with its heartbeat and computes
+        all the time) unless the fleet's size changed by more than f since the snapshot
+        in force (one written while a fleet was starting, from its first few vehicles,
+        says little about the whole). Every worker reads the version with its heartbeat and computes
         the weighted assignment from the same snapshot (:meth:`_assign`). With f = 0
         a snapshot left by an earlier setting is cleared (an empty one), so the group
         returns to the assignment by count.
@@ -1074,9 +1076,12 @@ class Daemon:
         sizes = await leases.shard_sizes()
         total, last = sum(sizes), self._balance_total
         self._balance_total = total
-        if (total == 0 or last is None or abs(total - last) > group.balance_load / 2 * total
-                or now < self._balance_hold_until):
+        if total == 0 or last is None or abs(total - last) > group.balance_load / 2 * total:
             return
+        held_total = sum(self._weights or ())
+        if (now < self._balance_hold_until
+                and abs(total - held_total) <= group.balance_load * held_total):
+            return  # held: the fleet is about the size the snapshot in force counted
         current = await self._assign(members)
         even = total / len(current.workers)
         before = max(sum(sizes[s] for s in current.held_by(w)) for w in current.workers)
