@@ -427,6 +427,7 @@ def scrape_published(port: int) -> dict[str, float]:
 
     Also, under the keys ``@held`` and ``@received``, ``livematch_shards_held`` and
     ``livematch_messages_received_total`` (the shares of a worker group), under
+    ``@matched`` ``livematch_fixes_processed_total`` (the fixes it matched), under
     ``@takeovers`` and ``@snapshots`` ``livematch_shard_takeovers_total`` and
     ``livematch_load_snapshots_total`` (shards moving, ``group.balance_load``), and under
     ``@gc`` the seconds its garbage collections took (``livematch_gc_pause_seconds``).
@@ -444,6 +445,8 @@ def scrape_published(port: int) -> dict[str, float]:
             out["@held"] = float(line.rsplit(" ", 1)[1])
         elif line.startswith("livematch_messages_received_total "):
             out["@received"] = float(line.rsplit(" ", 1)[1])
+        elif line.startswith("livematch_fixes_processed_total "):
+            out["@matched"] = float(line.rsplit(" ", 1)[1])
         elif line.startswith("livematch_shard_takeovers_total "):
             out["@takeovers"] = float(line.rsplit(" ", 1)[1])
         elif line.startswith("livematch_load_snapshots_total "):
@@ -1110,6 +1113,9 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         # --warm-feed: messages each worker received during it, shards held when the
         # clock started; shards taken over while it ran (a move in the measured window);
         # load snapshots written from the start of the feed to the end of the step
+        "worker_matched": [d.get("@matched", 0.0) - a.get("@matched", 0.0)
+                           for a, d in zip(published0, published1, strict=True)]
+        if published1 else None,
         "worker_received_warm": [b.get("@received", 0.0) - a.get("@received", 0.0)
                                  for a, b in zip(warm0, published0, strict=True)]
         if warm0 else None,
@@ -1373,8 +1379,10 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
                 if held and got and None not in held:
                     warm = two[0].get("worker_received_warm")
                     moved = two[0].get("worker_takeovers")
+                    matched = two[0].get("worker_matched") or [0.0, 0.0]
                     shares.append(f"{held[0]:.0f} / {held[1]:.0f} shards, "
-                                  f"{got[0]:.0f} / {got[1]:.0f} messages"
+                                  f"{got[0]:.0f} / {got[1]:.0f} messages, "
+                                  f"{matched[0]:.0f} / {matched[1]:.0f} matched"
                                   + (f" (warm feed: {warm[0]:.0f} / {warm[1]:.0f} messages, "
                                      f"{two[0].get('load_snapshots') or 0:.0f} load "
                                      f"snapshot(s); shards taken over in the window "
@@ -1389,7 +1397,7 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
                 + "; predicted throughput of two workers on two free cores, c1 / max(w0, "
                 f"w1): {', '.join(f'{x:.2f}' for x in ratios)} (median "
                 f"{statistics.median(ratios):.2f}) times one worker's (goal >= 1.6)."
-                + (" Held at the end of the step and received during it, w0 / w1, per "
+                + (" Held at the end of the step, received and matched during it, w0 / w1, per "
                    "round: " + "; ".join(shares) + "." if shares else ""))
     return out
 
