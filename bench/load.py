@@ -32,7 +32,9 @@ on this machine and loopback only:
   with the machine's drift between steps cancelled within each step) or
   ``livematch-2sc`` / ``livematch-2smc`` (``livematch-2s`` / ``livematch-2sm`` with
   ``group.standby_connection = true``: the standby shards on a second MQTT connection of
-  their own, read when the worker is awake anyway) or ``livematch-2sk`` /
+  their own, read when the worker is awake anyway) or ``livematch-2scu`` (``livematch-2sc``
+  with ``group.balance_load = 0``: shards assigned by count only, as before session 23;
+  the other systems leave ``balance_load`` at livematch's default) or ``livematch-2sk`` /
   ``livematch-2sk1`` (the same two, but the generators send only vehicles of the shards
   that worker w1 holds, the first ``rate`` vehicle ids whose shard it holds: w0 only
   keeps every fix, so its CPU per fix is what a kept fix costs, through the broker,
@@ -59,7 +61,15 @@ livematch worker's ``/readyz`` must answer 200 (connected, store reachable, firs
 round done; up to ``START_TIMEOUT_S``; a worker that exits ends the step with its exit
 code), then 16 probe vehicles send fixes until each has had 3 answers (so the worker
 group holds its shards and every worker has run its first sweep step). Probe outputs are
-not counted; the start-up and warm-up seconds are reported per step.
+not counted; the start-up and warm-up seconds are reported per step. With
+``--warm-feed S`` the step's own vehicles are then fed for S seconds before its clock
+starts (the generators run S + ``--seconds`` seconds, the vehicles driving on), in every
+system alike: a worker group counts its shards' vehicles once their first checkpoints
+are written and moves a shard or two to even the load (``group.balance_load``), and
+that move, its hand-over and replay, fall into those S seconds. Nothing of them is
+counted in the step's CPU, latency or deliveries (only fixes stamped after the clock
+started); the messages each worker received during the warm feed, the load snapshots
+written and the shards taken over while the clock ran are reported per step.
 
 After the step the processes stop in dependency order: generators, then the system under
 test (SIGTERM; a livematch worker writes its final checkpoints, releases its leases and
@@ -128,6 +138,7 @@ GRACE_S = 5.0  # outputs arriving later than the step's end + this are missing
 MAX_P99_MS = 1000.0
 MAX_GROWTH_MS = 100.0
 CLK_TCK = os.sysconf("SC_CLK_TCK")
+WARM_FEED_S = 0  # --warm-feed: seconds the step's vehicles are fed before its clock starts
 BROKER_NODELAY = False  # --broker-nodelay: mosquitto's set_tcp_nodelay (off by default)
 
 
@@ -415,7 +426,10 @@ def scrape_published(port: int) -> dict[str, float]:
     """``livematch_published_total`` by kind, read from a daemon's /metrics.
 
     Also, under the keys ``@held`` and ``@received``, ``livematch_shards_held`` and
-    ``livematch_messages_received_total`` (the shares of a worker group), and under
+    ``livematch_messages_received_total`` (the shares of a worker group), under
+    ``@matched`` ``livematch_fixes_processed_total`` (the fixes it matched), under
+    ``@takeovers`` and ``@snapshots`` ``livematch_shard_takeovers_total`` and
+    ``livematch_load_snapshots_total`` (shards moving, ``group.balance_load``), and under
     ``@gc`` the seconds its garbage collections took (``livematch_gc_pause_seconds``).
     """
     import urllib.request
@@ -431,6 +445,12 @@ def scrape_published(port: int) -> dict[str, float]:
             out["@held"] = float(line.rsplit(" ", 1)[1])
         elif line.startswith("livematch_messages_received_total "):
             out["@received"] = float(line.rsplit(" ", 1)[1])
+        elif line.startswith("livematch_fixes_processed_total "):
+            out["@matched"] = float(line.rsplit(" ", 1)[1])
+        elif line.startswith("livematch_shard_takeovers_total "):
+            out["@takeovers"] = float(line.rsplit(" ", 1)[1])
+        elif line.startswith("livematch_load_snapshots_total "):
+            out["@snapshots"] = float(line.rsplit(" ", 1)[1])
         elif line.startswith("livematch_gc_pause_seconds_sum{"):
             out["@gc"] = out.get("@gc", 0.0) + float(line.rsplit(" ", 1)[1])
     return out
@@ -734,13 +754,15 @@ def probe(argv: list[str], out_path: str, nodelay: bool, freeze: bool, inflight:
 def daemon_config(folder: Path, port: int, store: str, worker: str, group: str,
                   topic: str = IN_TOPIC, metrics_port: int = 0,
                   standby_qos: int | None = None, standby: bool = True,
-                  standby_connection: bool = False) -> Path:
+                  standby_connection: bool = False,
+                  balance_load: float | None = None) -> Path:
     """A daemon configuration; ``metrics_port`` > 0 opens its /metrics on that port.
 
     ``standby_qos`` sets ``group.standby_qos`` (None: livematch's default);
     ``standby`` False writes ``group.standby = false``; with standbys
     ``group.standby_connection`` is written as given (livematch's default is true from
     session 22 on; the systems without ``c`` in their name keep one connection).
+    ``balance_load`` sets ``group.balance_load`` (None: livematch's default).
     """
     cfg = folder / f"{worker}.toml"
     listen = f"127.0.0.1:{metrics_port}" if metrics_port else ""
@@ -751,6 +773,8 @@ def daemon_config(folder: Path, port: int, store: str, worker: str, group: str,
         group_lines += "standby = false\n"
     if group and standby:
         group_lines += f"standby_connection = {'true' if standby_connection else 'false'}\n"
+    if group and balance_load is not None:
+        group_lines += f"balance_load = {balance_load}\n"
     cfg.write_text(f"""
 [inputs]
 network = "{NETWORK}"
@@ -825,6 +849,12 @@ def percentile(values: list[float], q: float) -> float | None:
     return round(values[int(q * (len(values) - 1))] * 1000, 1) if values else None
 
 
+def _measured(got: list[tuple[float, bytes]], t0: float) -> int:
+    """How many outputs in ``got`` answer fixes stamped at or after ``t0``."""
+    return sum(1 for _at, payload in list(got)
+               if float(json.loads(payload).get("time", 0.0)) >= t0)
+
+
 def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: Path,
              probe_to: Path | None = None, nodelay: bool = False, freeze: bool = False,
              inflight: int = 0, py_spy: bool = False, count_publishes: bool = False
@@ -892,7 +922,9 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                                     standby_qos, system != "livematch-2s0"
                                     and not (system in ("livematch-2sm", "livematch-2smc")
                                              and w == 1),
-                                    system in ("livematch-2sc", "livematch-2smc"))
+                                    system in ("livematch-2sc", "livematch-2smc",
+                                               "livematch-2scu"),
+                                    0.0 if system == "livematch-2scu" else None)
                 cmd = [sys.executable, "-m", "livematch.cli"]
                 if CPROFILE_TO is not None:  # --cprofile: each worker's profile at its exit
                     cmd = [sys.executable, "-m", "cProfile", "-o",
@@ -912,7 +944,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         for g in range(generators):
             gens.append(subprocess.Popen(
                 [sys.executable, __file__, "--role", "generator", "--port", str(port),
-                 "--pool", str(pool_path), "--n", str(rate), "--seconds", str(seconds),
+                 "--pool", str(pool_path), "--n", str(rate),
+                 "--seconds", str(WARM_FEED_S + seconds),
                  "--first", str(g), "--step", str(generators), "--shards", str(shards),
                  "--only-shards", only],
                 env=env, stdin=subprocess.PIPE, stdout=subprocess.PIPE))
@@ -939,21 +972,36 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                 + (["--gil", "--nonblocking"] if SPY_TO is not None else []),
                 stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL))
         scraped = metrics_ports if count_publishes else []
+        warm0: list[dict[str, float]] = []
+        if WARM_FEED_S:  # --warm-feed: the vehicles run first, the clock starts later
+            warm0 = [scrape_published(mp) for mp in scraped]
+            t_feed = time.time() + 0.3
+            for gen in gens:
+                assert gen.stdin is not None
+                gen.stdin.write(f"go {t_feed}\n".encode())
+                gen.stdin.flush()
+            time.sleep(max(0.0, t_feed + WARM_FEED_S - time.time()))
+            sub.got.clear()
         published0 = [scrape_published(mp) for mp in scraped]
         window0 = time.time()
         cpu0 = {p.pid: cpu_seconds(p.pid) for p in procs}
         split0 = {p.pid: cpu_split(p.pid) for p in sut}
         sleeps0 = {p.pid: sleeps(p.pid) for p in sut}
         self0 = time.process_time()
-        t0 = time.time() + 0.3
-        for gen in gens:
-            assert gen.stdin is not None
-            gen.stdin.write(f"go {t0}\n".encode())
-            gen.stdin.flush()
+        if WARM_FEED_S:
+            t0 = t_feed + WARM_FEED_S
+        else:
+            t0 = time.time() + 0.3
+            for gen in gens:
+                assert gen.stdin is not None
+                gen.stdin.write(f"go {t0}\n".encode())
+                gen.stdin.flush()
         expected = rate * seconds
         deadline = t0 + seconds + GRACE_S
         while time.time() < deadline and len(sub.got) < expected:
             time.sleep(0.05)
+        while WARM_FEED_S and time.time() < deadline and _measured(sub.got, t0) < expected:
+            time.sleep(0.05)  # outputs of warm-feed fixes arrived after the clock started
         cpu = {p.pid: cpu_seconds(p.pid) - cpu0[p.pid] for p in procs}
         woken = {p.pid: sleeps(p.pid) - sleeps0[p.pid] for p in sut}
         split = {p.pid: tuple(b - a for a, b in zip(split0[p.pid], cpu_split(p.pid),
@@ -993,6 +1041,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         if not vehicle.startswith("v"):
             continue
         fix_t = float(record["time"])
+        if fix_t < t0:
+            continue  # a fix of the warm feed (--warm-feed)
         if (vehicle, fix_t) in seen:
             continue  # a redelivered output counts once
         seen.add((vehicle, fix_t))
@@ -1013,7 +1063,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         values.sort()
     published = sum(r["published"] for r in reports)
     gen_span = max(r["last_at"] for r in reports) - t0
-    gen_ok = published >= 0.99 * expected and gen_span <= seconds + 1.0
+    gen_ok = (published >= 0.99 * rate * (WARM_FEED_S + seconds)
+              and gen_span <= seconds + 1.0)
     share = len(lat_all) / expected if expected else 0.0
     p50_first, p50_last = percentile(lat_first, 0.5), percentile(lat_last, 0.5)
     growth = (p50_last - p50_first) if p50_first is not None and p50_last is not None else None
@@ -1026,7 +1077,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         "system": system, "offered_per_s": rate, "seconds": seconds,
         "generators": generators, "loadavg_1m": loadavg, "cpu_pressure_10s": pressure,
         "cpu_pressure_10s_after": cpu_pressure(), "start_s": round(ready_s, 1),
-        "warm_up_s": round(warm_s, 1), "worker_exit_codes": exit_codes,
+        "warm_up_s": round(warm_s, 1), "warm_feed_s": WARM_FEED_S,
+        "worker_exit_codes": exit_codes,
         "generator_published": published,
         "generator_per_s": round(published / max(gen_span, 1e-9) if published else 0.0, 1),
         "generator_acked": sum(r["acked"] for r in reports),
@@ -1057,6 +1109,22 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         "worker_shards_held": [d.get("@held") for d in published1] if published1 else None,
         "worker_received": [d.get("@received", 0.0) - a.get("@received", 0.0)
                             for a, d in zip(published0, published1, strict=True)]
+        if published1 else None,
+        # --warm-feed: messages each worker received during it, shards held when the
+        # clock started; shards taken over while it ran (a move in the measured window);
+        # load snapshots written from the start of the feed to the end of the step
+        "worker_matched": [d.get("@matched", 0.0) - a.get("@matched", 0.0)
+                           for a, d in zip(published0, published1, strict=True)]
+        if published1 else None,
+        "worker_received_warm": [b.get("@received", 0.0) - a.get("@received", 0.0)
+                                 for a, b in zip(warm0, published0, strict=True)]
+        if warm0 else None,
+        "worker_shards_held_start": [d.get("@held") for d in published0]
+        if published0 else None,
+        "worker_takeovers": [d.get("@takeovers", 0.0) - a.get("@takeovers", 0.0)
+                             for a, d in zip(published0, published1, strict=True)]
+        if published1 else None,
+        "load_snapshots": sum(d.get("@snapshots", 0.0) for d in published1)
         if published1 else None,
         "worker_gc_s": [round(d.get("@gc", 0.0) - a.get("@gc", 0.0), 4)
                         for a, d in zip(published0, published1, strict=True)]
@@ -1194,7 +1262,11 @@ def render_cpu(r: dict[str, Any]) -> str:
         f"({r['rate'] * r['seconds']:,} fixes, QoS 1) through a fresh mosquitto; CPU seconds "
         "(user + system, /proc/<pid>/stat) of each process from the start of the step "
         "until its outputs arrived (at most the step + 5 s), divided by the fixes whose "
-        "output arrived by then. Warm-up (16 probe vehicles) is excluded. A step with "
+        "output arrived by then. Warm-up (16 probe vehicles) is excluded"
+        + (f"; so is a warm feed of {rows[0].get('warm_feed_s')} s (`--warm-feed`): the "
+           "step's vehicles driving before its clock started, while a worker group moved "
+           "shards to even its load (reported per step below)"
+           if rows and rows[0].get("warm_feed_s") else "") + ". A step with "
         "less than 99 % delivered did not keep up (the machine was too busy): its "
         "figures are less comparable. Publishes per fix: the relay publishes one message per fix; "
         "livematch's count is its own `livematch_published_total` during the step "
@@ -1289,7 +1361,8 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
                 f"{statistics.median(m for _, m in each):.3f}.")
     out += _standby_cost_lines(r)
     pairs = [s for s in r["systems"] if s in ("livematch-2", "livematch-2s", "livematch-2s1",
-                                                  "livematch-2s0", "livematch-2sc")]
+                                                  "livematch-2s0", "livematch-2sc",
+                                                  "livematch-2scu")]
     if "livematch-1" not in r["systems"] or not pairs:
         return out
     for s in pairs:
@@ -1304,8 +1377,17 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
                 held = two[0].get("worker_shards_held")
                 got = two[0].get("worker_received")
                 if held and got and None not in held:
+                    warm = two[0].get("worker_received_warm")
+                    moved = two[0].get("worker_takeovers")
+                    matched = two[0].get("worker_matched") or [0.0, 0.0]
                     shares.append(f"{held[0]:.0f} / {held[1]:.0f} shards, "
-                                  f"{got[0]:.0f} / {got[1]:.0f} messages")
+                                  f"{got[0]:.0f} / {got[1]:.0f} messages, "
+                                  f"{matched[0]:.0f} / {matched[1]:.0f} matched"
+                                  + (f" (warm feed: {warm[0]:.0f} / {warm[1]:.0f} messages, "
+                                     f"{two[0].get('load_snapshots') or 0:.0f} load "
+                                     f"snapshot(s); shards taken over in the window "
+                                     f"{moved[0]:.0f} / {moved[1]:.0f})"
+                                     if warm and moved else ""))
         if each:
             ratios = [c1 / max(w0, w1) for c1, w0, w1 in each]
             out.append(
@@ -1315,7 +1397,7 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
                 + "; predicted throughput of two workers on two free cores, c1 / max(w0, "
                 f"w1): {', '.join(f'{x:.2f}' for x in ratios)} (median "
                 f"{statistics.median(ratios):.2f}) times one worker's (goal >= 1.6)."
-                + (" Held at the end of the step and received during it, w0 / w1, per "
+                + (" Held at the end of the step, received and matched during it, w0 / w1, per "
                    "round: " + "; ".join(shares) + "." if shares else ""))
     return out
 
@@ -1697,6 +1779,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--kept-cost", action="store_true",
                     help="only print the thread CPU per message a group worker only keeps "
                          "(another worker's shard), without broker or socket")
+    ap.add_argument("--warm-feed", type=int, default=0, metavar="S",
+                    help="feed each step's vehicles S seconds before its clock starts "
+                         "(a worker group settles its load snapshot meanwhile)")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     argv = sys.argv[1:] if argv is None else argv
     if argv[:1] == ["--render"]:  # re-render load.md from load.json (after a report fix)
@@ -1725,8 +1810,12 @@ def main(argv: list[str] | None = None) -> int:
     if args.kept_cost:
         print(json.dumps(kept_cost()))
         return 0
-    global BROKER_NODELAY
+    global BROKER_NODELAY, WARM_FEED_S
     BROKER_NODELAY = args.broker_nodelay
+    WARM_FEED_S = args.warm_feed
+    if WARM_FEED_S and WARM_FEED_S + args.seconds > 70:
+        ap.error("--warm-feed + --seconds must be at most 70 (the pool's drives are "
+                 f"{POOL_SECONDS} + 70 s, a vehicle starts up to {POOL_SECONDS - 1} s in)")
     if args.profile:
         out = Path(args.out)
         out.mkdir(parents=True, exist_ok=True)

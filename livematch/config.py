@@ -279,6 +279,16 @@ class GroupConfig:
     worker's CPU (+9.9 % -> +5.0 % within one step) and two workers read 1.59 times one
     against 1.48 (``bench/load.py``, docs/measured.md "Session 22 (lead)"). Where it
     cannot apply the default is silently inert; an explicit ``true`` there is refused.
+    ``balance_load`` (a fraction 0..1, default 0.02; it applies in a group with a
+    ``{shard}`` topic, and an explicit value above 0 is refused without one) evens the
+    workers' load by vehicles, not only their shard counts: the first worker of the
+    group's sorted member list counts each shard's vehicles (its checkpoint index)
+    and, when the busiest worker carries more than ``balance_load`` times the even
+    share above it, writes the counts to Redis as a new snapshot (at most every
+    ``6 * lease_s`` while the fleet keeps its size); every worker reads the snapshot's
+    version with its heartbeat and computes the same weighted assignment
+    (:func:`~livematch.service.shards.assign_shards`). 0 turns it off (the first
+    worker then clears a snapshot left by an earlier setting).
     """
 
     name: str = ""
@@ -290,6 +300,7 @@ class GroupConfig:
     standby_qos: int = 0
     standby: bool = True
     standby_connection: bool = True
+    balance_load: float = 0.02
 
     def standby_link(self, topic: str) -> bool:
         """Whether a worker of this group receives its standby shards on a second connection.
@@ -327,6 +338,9 @@ class GroupConfig:
             out.append(("buffer_max", f"must be >= 0, got {self.buffer_max}"))
         if self.standby_qos not in (0, 1):
             out.append(("standby_qos", f"must be 0 or 1, got {self.standby_qos}"))
+        if not (math.isfinite(self.balance_load) and 0.0 <= self.balance_load <= 1.0):
+            out.append(("balance_load", f"must be a fraction 0..1 (0: off), "
+                                        f"got {self.balance_load}"))
         return out
 
 
@@ -713,6 +727,10 @@ def _group_problems(group: GroupConfig, store: StoreConfig, mqtt: MqttConfig,
         origin = entries["standby_connection"][1]
         out.append(f"{origin}: group.standby_connection = true needs a {{shard}} level in "
                    f"mqtt.topic, group.standby = true and group.standby_qos = 0")
+    if group.balance_load > 0 and "balance_load" in entries and "{shard}" not in mqtt.topic:
+        origin = entries["balance_load"][1]
+        out.append(f"{origin}: group.balance_load = {group.balance_load} needs a {{shard}} "
+                   f"level in mqtt.topic (0 turns it off), got {mqtt.topic!r}")
     if not group.name:
         return out
     origin = entries.get("name", (None, "<defaults>"))[1]

@@ -473,6 +473,15 @@ class Daemon:
         self._want_subs: dict[int, int] = {}
         self._announced: set[int] | None = None  # shard topics recorded as received
         self._assignment: Assignment | None = None  # the last one computed (cached)
+        # group.balance_load: the group's load snapshot (read by every worker of a group
+        # with a {shard} topic, written by the first of the sorted member list)
+        self._load_version = 0  # the newest version seen (heartbeat), 0: none
+        self._weights: list[int] | None = None  # the weights of _weights_version
+        self._weights_version = 0
+        self._assigned_version = 0  # the snapshot version _assignment was computed with
+        self._balance_check_at = 0.0  # monotonic: the next check of the load (first worker)
+        self._balance_hold_until = 0.0  # monotonic: no new snapshot before this
+        self._balance_total: int | None = None  # vehicles counted at the last check
         self._subs_lock = asyncio.Lock()
         # group.standby_connection: the standby shards on a second connection of their
         # own (_standby_loop), read when the worker is awake anyway (_read_standby)
@@ -802,7 +811,7 @@ class Daemon:
             self.leases = LeaseManager(client, url=self.config.store.url,
                                        prefix=self.config.store.key_prefix, group=group.name,
                                        worker=self.worker, n_shards=group.shards,
-                                       lease_s=group.lease_s)
+                                       lease_s=group.lease_s, balance=self._sharded_topic)
         await self.leases.join()
         log.info("joined worker group", extra=fields(group=group.name, worker=self.worker,
                                                      shards=group.shards,
@@ -930,6 +939,7 @@ class Daemon:
             for shard in leases.apply(renewal):  # first: the deadlines depend on it
                 self._lose(shard, "taken")
             self._members = renewal.members
+            self._load_version = renewal.load_version
             self._rebalance_due.set()
         except Exception:  # a bug must not end the leases: log, count, go on
             self.metrics.lease_failures.inc()
@@ -1015,13 +1025,83 @@ class Daemon:
         seconds (:func:`~livematch.service.shards.assign_shards`), and the event loop
         keeps receiving meanwhile.
         """
-        assert self.leases is not None
+        leases = self.leases
+        assert leases is not None
         live = tuple(sorted({*members, self.worker}))
+        version = self._load_version
+        if version != self._weights_version:
+            version, weights = await leases.read_load()
+            self._load_version = max(self._load_version, version)
+            self._weights, self._weights_version = weights, version
         cached = self._assignment
-        if cached is None or cached.workers != live:
+        if (cached is None or cached.workers != live
+                or self._assigned_version != self._weights_version):
             cached = self._assignment = await asyncio.to_thread(
-                assign_shards, self.leases.n_shards, live)
+                assign_shards, leases.n_shards, live, self._weights)
+            self._assigned_version = self._weights_version
         return cached
+
+    async def _check_balance(self, members: list[str]) -> None:
+        """On the group's first worker: write a new load snapshot when the load is uneven.
+
+        ``group.balance_load`` (fraction f). Every ``lease_s`` the first worker of the
+        sorted member list counts each shard's vehicles (:meth:`LeaseManager.shard_sizes`,
+        the checkpoint indexes). It writes those counts as the group's new load
+        snapshot (compare-and-set on its version) when, under the assignment in force,
+        the busiest worker carries more than f times the even share above it, the
+        weighted assignment would lower that, the count is steady (the total changed by
+        at most f / 2 since the last check: the indexes fill during the first checkpoint
+        interval of a fleet) and no snapshot was written in the last ``6 * lease_s``
+        (hysteresis: a move costs a hand-over, and the counts drift by a vehicle or two
+        all the time) unless the fleet's size changed by more than f since the snapshot
+        in force (one written while a fleet was starting, from its first few vehicles,
+        says little about the whole). Every worker reads the version with its heartbeat and computes
+        the weighted assignment from the same snapshot (:meth:`_assign`). With f = 0
+        a snapshot left by an earlier setting is cleared (an empty one), so the group
+        returns to the assignment by count.
+        """
+        leases = self.leases
+        assert leases is not None
+        group = self.config.group
+        now = time.monotonic()
+        if self.worker != min({*members, self.worker}) or now < self._balance_check_at:
+            return
+        self._balance_check_at = now + group.lease_s
+        await self._assign(members)  # the snapshot in force, read
+        if group.balance_load <= 0:
+            if self._weights is not None and await leases.write_load(
+                    self._weights_version, None) is not None:
+                log.info("load snapshot cleared (group.balance_load = 0)")
+            return
+        sizes = await leases.shard_sizes()
+        total, last = sum(sizes), self._balance_total
+        self._balance_total = total
+        if total == 0 or last is None or abs(total - last) > group.balance_load / 2 * total:
+            return
+        held_total = sum(self._weights or ())
+        if (now < self._balance_hold_until
+                and abs(total - held_total) <= group.balance_load * held_total):
+            return  # held: the fleet is about the size the snapshot in force counted
+        current = await self._assign(members)
+        even = total / len(current.workers)
+        before = max(sum(sizes[s] for s in current.held_by(w)) for w in current.workers)
+        if before - even <= group.balance_load * even:
+            return
+        proposal = await asyncio.to_thread(assign_shards, leases.n_shards, current.workers,
+                                           sizes)
+        after = max(sum(sizes[s] for s in proposal.held_by(w)) for w in proposal.workers)
+        if after >= before:
+            return
+        version = await leases.write_load(self._weights_version, sizes)
+        if version is None:
+            return  # another worker wrote one meanwhile: the heartbeat brings it
+        self._balance_hold_until = now + 6 * group.lease_s
+        self._load_version = version
+        self.metrics.load_snapshots.inc()
+        moved = sum(a != b for a, b in zip(current.holder, proposal.holder, strict=True))
+        log.info("load snapshot written", extra=fields(
+            version=version, vehicles=total, busiest_before=before, busiest_after=after,
+            even=round(even, 1), shards_moved=moved))
 
     def _wanted(self, mine: set[int], standby: set[int]) -> dict[int, int]:
         """The subscription QoS of each shard topic wanted.
@@ -1069,6 +1149,7 @@ class Daemon:
         """
         leases = self.leases
         assert leases is not None
+        await self._check_balance(members)
         assignment = await self._assign(members)
         mine = assignment.held_by(self.worker)
         standby = assignment.standing_by(self.worker)
@@ -1099,6 +1180,7 @@ class Daemon:
         while not self._stopping.is_set():
             try:
                 members = await leases.heartbeat(leave=True)  # read, not yet announced
+                self._load_version = (await leases.read_load())[0]
                 assignment = await self._assign(members)
                 mine = assignment.held_by(self.worker)
                 standby = assignment.standing_by(self.worker)

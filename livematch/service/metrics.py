@@ -26,6 +26,7 @@ livematch_shards_held                                 shards this worker holds (
 livematch_lease_renew_failures_total                  lease rounds that could not reach Redis
 livematch_shard_takeovers_total                       shards acquired (restored and replayed)
 livematch_shards_lost_total{why}                      shards lost (expired, taken, fenced, ...)
+livematch_load_snapshots_total                        load snapshots written (group.balance_load)
 livematch_checkpoints_fenced_total                    checkpoint writes refused by fencing
 livematch_shard_buffered_total                        fixes kept for a replay after a takeover
 livematch_shard_buffer_dropped_total                  kept fixes dropped (buffer full)
@@ -137,6 +138,9 @@ class Metrics:
         self.takeovers = Counter("livematch_shard_takeovers",
                                  "Shards acquired: vehicles restored, kept fixes replayed.",
                                  registry=r)
+        self.load_snapshots = Counter("livematch_load_snapshots",
+                                      "Load snapshots this worker wrote for the group "
+                                      "(group.balance_load).", registry=r)
         self.shards_lost = Counter("livematch_shards_lost",
                                    "Shards lost without a hand-over, by why.", ["why"],
                                    registry=r)

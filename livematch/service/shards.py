@@ -15,6 +15,7 @@ Cluster slot and one Lua script may touch them together)::
     {prefix}group:NAME:members    sorted set: worker -> expiry time (ms, Redis clock)
     {prefix}group:NAME:shards     the group's shard count (all workers must agree)
     {prefix}group:NAME:receives   hash: worker -> the shard topics it receives ("3,11")
+    {prefix}group:NAME:load       hash: version -> n, weights -> per-shard vehicles ("7,9,..")
 
 Safety rests on two rules:
 
@@ -164,7 +165,51 @@ def _bounded_holders(ranked: Sequence[Sequence[str]], live: Sequence[str],
     return out
 
 
-def assign_shards(n_shards: int, workers: Iterable[str]) -> Assignment:
+def _balanced(holder: Sequence[str], weights: Sequence[int],
+              workers: Sequence[str]) -> list[str]:
+    """``holder`` with shards moved from the busiest worker to the lightest while that helps.
+
+    ``weights[s]`` is shard ``s``'s load (its vehicles). Each step takes the busiest
+    and the lightest worker (by summed weight, ties by name) and moves one shard of
+    the busiest whose weight ``w`` satisfies ``0 < w < gap`` (``gap`` = busiest minus
+    lightest), the one whose ``w`` is nearest ``gap / 2`` (ties: the lowest shard), to
+    the lightest. Every such move lowers the sum of squared loads (by
+    ``2 w (gap - w)``), so the steps end; at the end the busiest holds no shard
+    lighter than ``gap`` but above 0, so busiest - lightest <= the largest shard
+    weight, and the busiest carries at most that much above the even share.
+    Starting from the count-balanced assignment, the moves are few: none when the
+    counts already balance the load (equal weights, or no vehicle at all).
+
+    Example (two workers, 3 shards each; shard 0 is heavy):
+        >>> _balanced(["a", "a", "a", "b", "b", "b"], [9, 1, 1, 1, 1, 1], ["a", "b"])
+        ['a', 'b', 'b', 'b', 'b', 'b']
+        >>> _balanced(["a", "b"], [0, 0], ["a", "b"])
+        ['a', 'b']
+    """
+    out = list(holder)
+    load = dict.fromkeys(workers, 0)
+    held: dict[str, set[int]] = {w: set() for w in workers}
+    for shard, worker in enumerate(out):
+        load[worker] += weights[shard]
+        held[worker].add(shard)
+    for _ in range(len(out) * max(1, len(workers))):  # a bound; the loop ends sooner
+        busiest = max(workers, key=lambda w: (load[w], w))
+        lightest = min(workers, key=lambda w: (load[w], w))
+        gap = load[busiest] - load[lightest]
+        movable = [s for s in held[busiest] if 0 < weights[s] < gap]
+        if not movable:
+            break
+        shard = min(movable, key=lambda s: (abs(gap - 2 * weights[s]), s))
+        held[busiest].discard(shard)
+        held[lightest].add(shard)
+        load[busiest] -= weights[shard]
+        load[lightest] += weights[shard]
+        out[shard] = lightest
+    return out
+
+
+def assign_shards(n_shards: int, workers: Iterable[str],
+                  weights: Sequence[int] | None = None) -> Assignment:
     """Even shares by bounded-load rendezvous hashing, and a standby for every failure.
 
     Deterministic given the set of live workers (every worker computes the same from
@@ -178,6 +223,13 @@ def assign_shards(n_shards: int, workers: Iterable[str]) -> Assignment:
     over (fenced checkpoint) by their live holder once the new holder receives their
     topic (``docs/scale.md``).
 
+    ``weights`` (``group.balance_load``): per shard, its load (the vehicles in its
+    checkpoint index, one snapshot every worker reads from Redis). The count-balanced
+    assignment is then evened out by load (:func:`_balanced`): every worker carries at
+    most the largest shard weight above the even share (total / W). The standby is
+    still the holder after the holder's failure, with the same weights; without
+    weights (None) the assignment is exactly the unweighted one.
+
     Example (8 shards on 3 workers: rendezvous alone gives 5 / 3 / 0):
         >>> a = assign_shards(8, ["w3", "w1", "w2"])
         >>> a.workers, sorted(len(a.held_by(w)) for w in a.workers)
@@ -188,17 +240,49 @@ def assign_shards(n_shards: int, workers: Iterable[str]) -> Assignment:
         (None, None, None, None)
         >>> assign_shards(4, []).holder
         ()
+        >>> assign_shards(8, ["w1", "w2", "w3"], [1] * 8) == a   # even weights: no move
+        True
     """
     live = sorted(set(workers))
     if not live:
         return Assignment((), (), ())
+    if weights is not None and (len(weights) != n_shards or min(weights, default=0) < 0):
+        raise ValueError(f"weights must be {n_shards} counts >= 0, got {len(weights)} "
+                         f"(smallest {min(weights, default=0)})")
     ranked = [rank_workers(shard, live) for shard in range(n_shards)]
-    holder = _bounded_holders(ranked, live)
+
+    def holders(without: str | None = None) -> list[str]:
+        out = _bounded_holders(ranked, live, without)
+        if weights is None:
+            return out
+        return _balanced(out, weights, [w for w in live if w != without])
+
+    holder = holders()
     if len(live) == 1:
         return Assignment(tuple(live), tuple(holder), (None,) * n_shards)
-    after = {w: _bounded_holders(ranked, live, without=w) for w in set(holder)}
+    after = {w: holders(without=w) for w in set(holder)}
     standby = [after[h][shard] for shard, h in enumerate(holder)]
     return Assignment(tuple(live), tuple(holder), tuple(standby))
+
+
+def _int_or_zero(value: object) -> int:
+    """A Redis reply as an int (bytes or str of digits), 0 when missing or not a number."""
+    text = value.decode() if isinstance(value, bytes) else str(value or "")
+    return int(text) if text.isdigit() else 0
+
+
+def _parse_weights(value: object, n_shards: int) -> list[int] | None:
+    """``"7,9,0"`` as ``[7, 9, 0]``; None unless exactly ``n_shards`` counts >= 0.
+
+    Example:
+        >>> _parse_weights(b"7,9,0", 3), _parse_weights("7,9", 3), _parse_weights(None, 3)
+        ([7, 9, 0], None, None)
+    """
+    text = value.decode() if isinstance(value, bytes) else str(value or "")
+    parts = text.split(",") if text else []
+    if len(parts) != n_shards or not all(p.isdigit() for p in parts):
+        return None
+    return [int(p) for p in parts]
 
 
 def target_share(n_shards: int, n_workers: int) -> int:
@@ -275,6 +359,16 @@ return redis.call('ZRANGE', KEYS[1], 0, -1)
 """
 
 
+# KEYS: load. ARGV: the version the writer read, the new version, the weights.
+# Compare-and-set: 1 when written, 0 when another writer got there first.
+_WRITE_LOAD = """
+local v = redis.call('HGET', KEYS[1], 'version') or '0'
+if v ~= ARGV[1] then return 0 end
+redis.call('HSET', KEYS[1], 'version', ARGV[2], 'weights', ARGV[3])
+return 1
+"""
+
+
 #: Seconds between renewal attempts while they fail (at most the renewal period).
 _RETRY_S = 0.1
 
@@ -290,6 +384,8 @@ class Renewal:
         results: per shard of ``sent``, in order: 1 when extended, 0 when lost.
         members: the group's live workers, sorted; None when the round failed.
         error: why the round failed, else None.
+        load_version: the version of the group's load snapshot (``group.balance_load``;
+            0 when there is none or it was not read).
     """
 
     sent: dict[int, int]
@@ -297,6 +393,7 @@ class Renewal:
     results: list[object]
     members: list[str] | None
     error: StoreError | None
+    load_version: int = 0
 
 
 class RenewalThread:
@@ -413,14 +510,17 @@ class LeaseManager:
         worker: this worker's name (unique within the group).
         n_shards: the number of shards (the same in every worker of the group).
         lease_s: lease duration, seconds.
+        balance: read the group's load snapshot version with every renewal round
+            (``group.balance_load`` above 0 with a ``{shard}`` topic).
 
     ``held`` maps each shard held to its fencing number. Every method that talks to
     Redis raises :class:`StoreError` when Redis cannot be reached.
     """
 
     def __init__(self, client: aioredis.Redis, *, url: str, prefix: str, group: str,
-                 worker: str, n_shards: int, lease_s: float) -> None:
+                 worker: str, n_shards: int, lease_s: float, balance: bool = False) -> None:
         self.client = client
+        self.balance = balance
         self.url = url
         self.prefix = prefix
         self.group = group
@@ -433,11 +533,13 @@ class LeaseManager:
         self._earliest: float | None = None  # min of _deadline; None: to be recomputed
         self._members_key = f"{prefix}group:{group}:members"
         self._receives_key = f"{prefix}group:{group}:receives"
+        self._load_key = f"{prefix}group:{group}:load"
         self._acquire = client.register_script(_ACQUIRE)
         self._renew = client.register_script(_RENEW)
         self._release = client.register_script(_RELEASE)
         self._save = client.register_script(_SAVE)
         self._members = client.register_script(_MEMBERS)
+        self._write_load = client.register_script(_WRITE_LOAD)
 
     # -- keys ------------------------------------------------------------------------
 
@@ -523,6 +625,55 @@ class LeaseManager:
         except (RedisError, OSError) as exc:
             raise self._fail("removing the shard topics received", exc) from exc
 
+    # -- load snapshot (group.balance_load) --------------------------------------------
+
+    async def shard_sizes(self) -> list[int]:
+        """Per shard, the vehicles in its checkpoint index (one pipeline of ``SCARD``).
+
+        A vehicle enters the index with its first checkpoint and leaves it when it is
+        dropped after ``store.idle_ttl_s`` idle, so the count follows the fleet with a
+        delay of one checkpoint interval.
+        """
+        try:
+            async with self.client.pipeline(transaction=False) as pipe:
+                for shard in range(self.n_shards):
+                    pipe.scard(self.key(shard, "vehicles"))
+                values = await pipe.execute()
+        except (RedisError, OSError) as exc:
+            raise self._fail("counting the shards' vehicles", exc) from exc
+        return [int(v) for v in values]
+
+    async def read_load(self) -> tuple[int, list[int] | None]:
+        """The group's load snapshot: (version, per-shard weights); (0, None) when none.
+
+        Weights of another shard count (not one per shard) are returned as None: the
+        snapshot is then not used (the group's shard count is checked at join anyway).
+        """
+        try:
+            version, text = await self.client.hmget(self._load_key, ["version", "weights"])
+        except (RedisError, OSError) as exc:
+            raise self._fail("reading the load snapshot", exc) from exc
+        weights = _parse_weights(text, self.n_shards)
+        return _int_or_zero(version), weights
+
+    async def write_load(self, read_version: int,
+                         weights: Sequence[int] | None) -> int | None:
+        """Write a new load snapshot over version ``read_version``; the new version.
+
+        ``weights`` None writes a snapshot without weights (the assignment by count).
+        None when the snapshot is no longer ``read_version`` (another worker wrote one
+        since: compare-and-set, so two writers never interleave their weights).
+        """
+        new = read_version + 1
+        try:
+            done = await self._write_load(
+                keys=[self._load_key],
+                args=[str(read_version), str(new),
+                      ",".join(str(int(w)) for w in weights or ())])
+        except (RedisError, OSError) as exc:
+            raise self._fail("writing the load snapshot", exc) from exc
+        return new if done == 1 else None
+
     # -- leases ----------------------------------------------------------------------
 
     async def owners(self) -> dict[int, str | None]:
@@ -589,13 +740,18 @@ class LeaseManager:
                 pipe.eval(_RENEW, 1, self.key(shard, "lease"), f"{self.token}:{fence}",
                           self._ttl_ms)
             pipe.eval(_MEMBERS, 1, self._members_key, self.worker, str(self._ttl_ms))
+            if self.balance:
+                pipe.hget(self._load_key, "version")
             results = pipe.execute()
         except (RedisError, OSError) as exc:
             return Renewal(sent, started, [], None, self._fail(
                 f"renewing {len(sent)} lease(s) and announcing the worker", exc))
+        version = 0
+        if self.balance:
+            version = _int_or_zero(results.pop())
         members = sorted(n.decode() if isinstance(n, bytes) else str(n)
                          for n in results[-1])
-        return Renewal(sent, started, list(results[:-1]), members, None)
+        return Renewal(sent, started, list(results[:-1]), members, None, version)
 
     def apply(self, renewal: Renewal) -> list[int]:
         """Apply a :meth:`renewal_round` (in the event loop's thread); the shards lost.
