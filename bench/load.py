@@ -240,7 +240,10 @@ def kept_cost(rounds: int = 20, vehicles: int = 500) -> dict[str, Any]:
     MQTT 5 PUBLISH packets, from the bytes the socket gives (``_read_packets``, 64 KiB
     reads) to the kept entry: *read_kept_us_per_message*, by ``Daemon._take_raw``
     where the livematch on ``PYTHONPATH`` has it, else paho's decoding and
-    ``Daemon._arrive``. And the payload type check alone
+    ``Daemon._arrive``; *standby_read_kept_us_per_message* the same as read from the
+    standby connection (``group.standby_connection``), where the livematch has it. In
+    both, the first message of each vehicle's topic takes paho's way where that
+    livematch sends it there (one in ``rounds``). And the payload type check alone
     (``looks_like_position``, which a matched fix's payload gets besides the pipeline's
     own decoding).
     """
@@ -327,8 +330,10 @@ def kept_cost(rounds: int = 20, vehicles: int = 500) -> dict[str, Any]:
         def close(self) -> None:
             return None
 
-    async def run_read() -> float:
-        """As run(), from the bytes read from the socket (``_read_packets`` onwards)."""
+    async def run_read(standby: bool = False) -> float:
+        """As run(), from the bytes read from the socket (``_read_packets`` onwards);
+        with ``standby``, as read from the standby connection
+        (``group.standby_connection``: its queue, ``Daemon._arrive_standby``)."""
         import inspect
 
         from livematch.service import mqtt
@@ -339,7 +344,11 @@ def kept_cost(rounds: int = 20, vehicles: int = 500) -> dict[str, Any]:
         daemon.leases = LeaseManager(redis, url="redis://127.0.0.1:1/0", prefix="load:",
                                      group="kept", worker="w0", n_shards=64, lease_s=5.0)
         intake = IntakeQueue(len(feed) + 1, key_of=daemon._intake_key)
-        intake.arrive = functools.partial(daemon._arrive, client, intake)
+        if standby:
+            intake.arrive = daemon._arrive_standby
+            daemon._standby_intake = intake
+        else:
+            intake.arrive = functools.partial(daemon._arrive, client, intake)
         mqtt.lean_receive(client, deliver=intake.put_nowait)
         paho = client._client
         sock = paho._sock = mqtt._BufferedSocket(Socket(), lambda: None)
@@ -360,11 +369,14 @@ def kept_cost(rounds: int = 20, vehicles: int = 500) -> dict[str, Any]:
 
     best = min(asyncio.run(run()) for _ in range(3))
     read = min(asyncio.run(run_read()) for _ in range(3))
-    return {"loadavg_1m": load_average(), "messages": len(feed),
+    standby = (round(min(asyncio.run(run_read(standby=True)) for _ in range(3)), 2)
+               if hasattr(Daemon, "_arrive_standby") else None)
+    return {"loadavg_1m": load_average(), "messages": len(feed), "rounds": rounds,
             "path": "_arrive" if hasattr(Daemon, "_arrive") else "queue + _process",
             "kept_us_per_message": round(best, 2),
             "read_path": "_take_raw" if hasattr(Daemon, "_take_raw") else "paho + _arrive",
             "read_kept_us_per_message": round(read, 2),
+            "standby_read_kept_us_per_message": standby,
             "type_check_us": round(min(type_check() for _ in range(3)), 2)}
 
 
@@ -1047,6 +1059,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         "system_user_sys_s": [round(sum(split[p][0] for p in sut_pids), 2),
                               round(sum(split[p][1] for p in sut_pids), 2)],
         "worker_cpu_s": [round(cpu[p.pid], 3) for p in sut],  # each process of the system
+        "worker_user_sys_s": [[round(v, 2) for v in split[p.pid]] for p in sut],
+        "worker_sleeps": [woken[p.pid] for p in sut],  # wake-ups of each process
         "system_sleeps": sum(woken.values()),  # voluntary context switches (wake-ups)
         "published_by_kind": {k: sum(b.get(k, 0.0) - a.get(k, 0.0)
                                      for a, b in zip(published0, published1, strict=True))
@@ -1697,6 +1711,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--kept-cost", action="store_true",
                     help="only print the thread CPU per message a group worker only keeps "
                          "(another worker's shard), without broker or socket")
+    ap.add_argument("--kept-rounds", type=int, default=20,
+                    help="with --kept-cost: messages per vehicle (the first of each "
+                         "vehicle's topic takes the slower way; 10 as in a 10 s step)")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     argv = sys.argv[1:] if argv is None else argv
     if argv[:1] == ["--render"]:  # re-render load.md from load.json (after a report fix)
@@ -1723,7 +1740,7 @@ def main(argv: list[str] | None = None) -> int:
         print(json.dumps(loop_cost()))
         return 0
     if args.kept_cost:
-        print(json.dumps(kept_cost()))
+        print(json.dumps(kept_cost(rounds=args.kept_rounds)))
         return 0
     global BROKER_NODELAY
     BROKER_NODELAY = args.broker_nodelay
