@@ -87,6 +87,7 @@ from livematch.service.mqtt import (
     make_client,
     on_acknowledged,
     publish_now,
+    read_now,
     until_answered,
     write_soon,
 )
@@ -164,8 +165,9 @@ _PUBLISH_QOS1 = 0x32
 # long after it (a worker with nothing of its own to match).
 _STANDBY_EVERY_S = 0.05
 _STANDBY_LATE_S = 0.25
-# Most packets read from the standby connection per read (they are kept, not matched).
-_STANDBY_PACKETS = 20_000
+# Most reads of up to 64 KiB from the standby connection per turn (its fixes are kept,
+# not matched; _DRAIN_BUDGET_S bounds the turn too).
+_STANDBY_READS = 256
 
 #: An entry of a shard's buffer of kept fixes: (sequence number, receive time, topic,
 #: payload).
@@ -2051,7 +2053,7 @@ class Daemon:
         comes first (a worker with nothing of its own to match).
         """
         self._standby_read_at = time.monotonic() + _STANDBY_EVERY_S
-        drain(client, _STANDBY_PACKETS, _DRAIN_BUDGET_S)
+        read_now(client, _STANDBY_READS, _DRAIN_BUDGET_S)
         if self._standby_timer is not None:
             self._standby_timer.cancel()
         self._standby_timer = asyncio.get_running_loop().call_later(
