@@ -927,14 +927,21 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                 cmd = [sys.executable, "-m", "livematch.cli"]
                 if CPROFILE_TO is not None:  # --cprofile: each worker's profile at its exit
                     cmd = [sys.executable, "-m", "cProfile", "-o",
-                           str(CPROFILE_TO / f"{system}.{rate}.w{w}.{time.time():.0f}.prof"),
+                           str(CPROFILE_TO.resolve()
+                               / f"{system}.{rate}.w{w}.{time.time():.0f}.prof"),
                            "-m", "livematch.cli"]
                 if probe_to is not None:
-                    cmd = [sys.executable, __file__, "--role", "probe", "--probe-out",
+                    cmd = [sys.executable, str(Path(__file__).resolve()), "--role", "probe",
+                           "--probe-out",
                            str(probe_to / "probe.json")] + (["--nodelay"] if nodelay else []) \
                         + (["--freeze"] if freeze else []) \
                         + (["--inflight", str(inflight)] if inflight else [])
-                sut.append(subprocess.Popen([*cmd, "run", "--config", str(cfg)], env=env))
+                # started in the step's folder: ``python -m`` puts the working directory
+                # first on sys.path, so a run from a checkout would import that
+                # checkout's livematch whatever PYTHONPATH says (an A/B against another
+                # tree would then compare a tree with itself)
+                sut.append(subprocess.Popen([*cmd, "run", "--config", str(cfg)], env=env,
+                                            cwd=folder))
         procs.extend(sut)
         sub = Subscriber(port, out_topic)
         if metrics_ports:
