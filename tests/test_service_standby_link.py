@@ -378,7 +378,7 @@ async def test_standby_connection_takes_first_fixes_raw_and_reads_when_idle(
         want = {shard_of(v, 8): [(topic[v], p) for _, p in feeds[v]] for v in vehicles}
         await wait_until(lambda: all(len(a._buffers.get(s, ())) == len(w)
                                      for s, w in want.items()), what="every fix kept")
-        await asyncio.sleep(0.6)  # idle: the timer reads it
+        await asyncio.sleep(1.0)  # idle: the timer reads it
     finally:
         a.request_stop()
         await asyncio.wait_for(task, 20)
