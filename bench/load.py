@@ -200,6 +200,25 @@ def cpu_split(pid: int) -> tuple[float, float]:
     return int(fields[11]) / CLK_TCK, int(fields[12]) / CLK_TCK
 
 
+def run_ns(pid: int) -> int:
+    """CPU time of a live process's threads in nanoseconds (0 when it is gone).
+
+    The sum of the first field of ``/proc/PID/task/*/schedstat`` (the scheduler's run
+    time of each thread). ``/proc/PID/stat`` gives user and system time in clock ticks
+    (10 ms here): a worker's 0.8-0.9 s of a step is then read to about 1 %, as large as
+    the difference the within-step comparison looks for. A thread that ended during the
+    step is left out (the daemon's threads live as long as it does).
+    """
+    total = 0
+    try:
+        for task in Path(f"/proc/{pid}/task").iterdir():
+            with contextlib.suppress(OSError):
+                total += int((task / "schedstat").read_text().split()[0])
+    except OSError:
+        return 0
+    return total
+
+
 def sleeps(pid: int) -> int:
     """Voluntary context switches of a live process and its threads (0 when it is gone).
 
@@ -251,7 +270,10 @@ def kept_cost(rounds: int = 20, vehicles: int = 500) -> dict[str, Any]:
     MQTT 5 PUBLISH packets, from the bytes the socket gives (``_read_packets``, 64 KiB
     reads) to the kept entry: *read_kept_us_per_message*, by ``Daemon._take_raw``
     where the livematch on ``PYTHONPATH`` has it, else paho's decoding and
-    ``Daemon._arrive``. And the payload type check alone
+    ``Daemon._arrive``; *standby_read_kept_us_per_message* the same as read from the
+    standby connection (``group.standby_connection``), where the livematch has it. In
+    both, the first message of each vehicle's topic takes paho's way where that
+    livematch sends it there (one in ``rounds``). And the payload type check alone
     (``looks_like_position``, which a matched fix's payload gets besides the pipeline's
     own decoding).
     """
@@ -338,8 +360,10 @@ def kept_cost(rounds: int = 20, vehicles: int = 500) -> dict[str, Any]:
         def close(self) -> None:
             return None
 
-    async def run_read() -> float:
-        """As run(), from the bytes read from the socket (``_read_packets`` onwards)."""
+    async def run_read(standby: bool = False) -> float:
+        """As run(), from the bytes read from the socket (``_read_packets`` onwards);
+        with ``standby``, as read from the standby connection
+        (``group.standby_connection``: its queue, ``Daemon._arrive_standby``)."""
         import inspect
 
         from livematch.service import mqtt
@@ -350,7 +374,11 @@ def kept_cost(rounds: int = 20, vehicles: int = 500) -> dict[str, Any]:
         daemon.leases = LeaseManager(redis, url="redis://127.0.0.1:1/0", prefix="load:",
                                      group="kept", worker="w0", n_shards=64, lease_s=5.0)
         intake = IntakeQueue(len(feed) + 1, key_of=daemon._intake_key)
-        intake.arrive = functools.partial(daemon._arrive, client, intake)
+        if standby:
+            intake.arrive = daemon._arrive_standby
+            daemon._standby_intake = intake
+        else:
+            intake.arrive = functools.partial(daemon._arrive, client, intake)
         mqtt.lean_receive(client, deliver=intake.put_nowait)
         paho = client._client
         sock = paho._sock = mqtt._BufferedSocket(Socket(), lambda: None)
@@ -371,11 +399,14 @@ def kept_cost(rounds: int = 20, vehicles: int = 500) -> dict[str, Any]:
 
     best = min(asyncio.run(run()) for _ in range(3))
     read = min(asyncio.run(run_read()) for _ in range(3))
-    return {"loadavg_1m": load_average(), "messages": len(feed),
+    standby = (round(min(asyncio.run(run_read(standby=True)) for _ in range(3)), 2)
+               if hasattr(Daemon, "_arrive_standby") else None)
+    return {"loadavg_1m": load_average(), "messages": len(feed), "rounds": rounds,
             "path": "_arrive" if hasattr(Daemon, "_arrive") else "queue + _process",
             "kept_us_per_message": round(best, 2),
             "read_path": "_take_raw" if hasattr(Daemon, "_take_raw") else "paho + _arrive",
             "read_kept_us_per_message": round(read, 2),
+            "standby_read_kept_us_per_message": standby,
             "type_check_us": round(min(type_check() for _ in range(3)), 2)}
 
 
@@ -928,14 +959,21 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                 cmd = [sys.executable, "-m", "livematch.cli"]
                 if CPROFILE_TO is not None:  # --cprofile: each worker's profile at its exit
                     cmd = [sys.executable, "-m", "cProfile", "-o",
-                           str(CPROFILE_TO / f"{system}.{rate}.w{w}.{time.time():.0f}.prof"),
+                           str(CPROFILE_TO.resolve()
+                               / f"{system}.{rate}.w{w}.{time.time():.0f}.prof"),
                            "-m", "livematch.cli"]
                 if probe_to is not None:
-                    cmd = [sys.executable, __file__, "--role", "probe", "--probe-out",
+                    cmd = [sys.executable, str(Path(__file__).resolve()), "--role", "probe",
+                           "--probe-out",
                            str(probe_to / "probe.json")] + (["--nodelay"] if nodelay else []) \
                         + (["--freeze"] if freeze else []) \
                         + (["--inflight", str(inflight)] if inflight else [])
-                sut.append(subprocess.Popen([*cmd, "run", "--config", str(cfg)], env=env))
+                # started in the step's folder: ``python -m`` puts the working directory
+                # first on sys.path, so a run from a checkout would import that
+                # checkout's livematch whatever PYTHONPATH says (an A/B against another
+                # tree would then compare a tree with itself)
+                sut.append(subprocess.Popen([*cmd, "run", "--config", str(cfg)], env=env,
+                                            cwd=folder))
         procs.extend(sut)
         sub = Subscriber(port, out_topic)
         if metrics_ports:
@@ -987,6 +1025,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         cpu0 = {p.pid: cpu_seconds(p.pid) for p in procs}
         split0 = {p.pid: cpu_split(p.pid) for p in sut}
         sleeps0 = {p.pid: sleeps(p.pid) for p in sut}
+        run0 = {p.pid: run_ns(p.pid) for p in sut}
         self0 = time.process_time()
         if WARM_FEED_S:
             t0 = t_feed + WARM_FEED_S
@@ -1004,6 +1043,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
             time.sleep(0.05)  # outputs of warm-feed fixes arrived after the clock started
         cpu = {p.pid: cpu_seconds(p.pid) - cpu0[p.pid] for p in procs}
         woken = {p.pid: sleeps(p.pid) - sleeps0[p.pid] for p in sut}
+        ran = {p.pid: run_ns(p.pid) - run0[p.pid] for p in sut}
         split = {p.pid: tuple(b - a for a, b in zip(split0[p.pid], cpu_split(p.pid),
                                                      strict=True)) for p in sut}
         self_cpu = time.process_time() - self0
@@ -1099,6 +1139,9 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         "system_user_sys_s": [round(sum(split[p][0] for p in sut_pids), 2),
                               round(sum(split[p][1] for p in sut_pids), 2)],
         "worker_cpu_s": [round(cpu[p.pid], 3) for p in sut],  # each process of the system
+        "worker_user_sys_s": [[round(v, 2) for v in split[p.pid]] for p in sut],
+        "worker_sleeps": [woken[p.pid] for p in sut],  # wake-ups of each process
+        "worker_run_s": [round(ran[p.pid] / 1e9, 6) for p in sut],  # schedstat, ns
         "system_sleeps": sum(woken.values()),  # voluntary context switches (wake-ups)
         "published_by_kind": {k: sum(b.get(k, 0.0) - a.get(k, 0.0)
                                      for a, b in zip(published0, published1, strict=True))
@@ -1212,6 +1255,8 @@ def cpu_per_fix(rate: int, seconds: int, repeat: int, generators: int, systems: 
                                      for role, v in row["cpu_s"].items()}
                 row["worker_ms_per_fix"] = [round(v * 1000 / fixes, 4)
                                             for v in row["worker_cpu_s"]]
+                row["worker_run_ms_per_fix"] = [round(v * 1000 / fixes, 5)
+                                                for v in row["worker_run_s"]]
                 row["sleeps_per_fix"] = round(row["system_sleeps"] / fixes, 3)
                 user, sys_s = row["system_user_sys_s"]
                 row["system_user_sys_ms_per_fix"] = [round(user * 1000 / fixes, 4),
@@ -1417,14 +1462,15 @@ def _standby_cost_lines(r: dict[str, Any]) -> list[str]:
     connection, ``group.standby_connection``). Empty without ``livematch-2s0``.
     """
     out: list[str] = []
-    for mixed in ("livematch-2sm", "livematch-2smc"):
+    for (mixed, field) in [(m, f) for m in ("livematch-2sm", "livematch-2smc")
+                           for f in ("worker_ms_per_fix", "worker_run_ms_per_fix")]:
         if not {mixed, "livematch-2s0"} <= set(r["systems"]):
             continue
         each = []
         for k in range(1, r["repeat"] + 1):
             got = {}
             for row in r["steps"]:
-                w = row.get("worker_ms_per_fix") or []
+                w = row.get(field) or []
                 if row["repeat"] == k and row["system"] in (mixed, "livematch-2s0") \
                         and len(w) == 2 and min(w) > 0:
                     got[row["system"]] = w
@@ -1435,9 +1481,12 @@ def _standby_cost_lines(r: dict[str, Any]) -> list[str]:
         if not each:
             continue
         how = " on a second connection" if mixed.endswith("c") else ""
+        clock = (" (the scheduler's run time of each worker's threads, ns, "
+                 "`/proc/PID/task/*/schedstat`)" if field == "worker_run_ms_per_fix"
+                 else "")
         out.append(
             f"{mixed} against livematch-2s0 (w0 stands by for w1's shards{how} in the "
-            "first, neither in the second): what standing by adds to w0's CPU, "
+            f"first, neither in the second): what standing by adds to w0's CPU{clock}, "
             "(w0 / w1 with) / (w0 / w1 without) - 1, per round: "
             + ", ".join(f"{x:+.1%}" for x, _ in each)
             + f" (median {statistics.median(x for x, _ in each):+.1%}); in CPU ms per fix "
@@ -1782,6 +1831,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--warm-feed", type=int, default=0, metavar="S",
                     help="feed each step's vehicles S seconds before its clock starts "
                          "(a worker group settles its load snapshot meanwhile)")
+    ap.add_argument("--kept-rounds", type=int, default=20,
+                    help="with --kept-cost: messages per vehicle (the first of each "
+                         "vehicle's topic takes the slower way; 10 as in a 10 s step)")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     argv = sys.argv[1:] if argv is None else argv
     if argv[:1] == ["--render"]:  # re-render load.md from load.json (after a report fix)
@@ -1808,7 +1860,7 @@ def main(argv: list[str] | None = None) -> int:
         print(json.dumps(loop_cost()))
         return 0
     if args.kept_cost:
-        print(json.dumps(kept_cost()))
+        print(json.dumps(kept_cost(rounds=args.kept_rounds)))
         return 0
     global BROKER_NODELAY, WARM_FEED_S
     BROKER_NODELAY = args.broker_nodelay

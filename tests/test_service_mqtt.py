@@ -19,6 +19,7 @@ from livematch.service.mqtt import (
     lean_receive,
     on_acknowledged,
     publish_now,
+    read_now,
 )
 
 pytest_plugins = ("fixtures_services",)
@@ -422,3 +423,65 @@ def _session(expiry: int) -> Properties:
     props = Properties(PacketTypes.CONNECT)
     props.SessionExpiryInterval = expiry
     return props
+
+
+class _Kernel:
+    """A socket holding ``data`` now (as a kernel's receive buffer): ``recv(n)`` returns
+    up to ``n`` bytes of it, then would block; counts the calls."""
+
+    def __init__(self, data: bytes) -> None:
+        self.data = data
+        self.calls = 0
+
+    def recv(self, n: int) -> bytes:
+        self.calls += 1
+        if not self.data:
+            raise BlockingIOError
+        piece, self.data = self.data[:n], self.data[n:]
+        return piece
+
+    def fileno(self) -> int:
+        return -1
+
+    def close(self) -> None:
+        return None
+
+
+async def test_read_now_reads_what_is_there_with_one_recv_per_piece() -> None:
+    """``read_now`` (the standby connection's read) gives paho's dispatch every packet
+    the socket holds, as paho's own reader gives them (PUBLISHes of every size, cut
+    across reads of 64 KiB), asking the socket once per 64 KiB piece and once more only
+    when the last piece was full: 3 KiB waiting is one ``recv``; 180 KiB three (two
+    full pieces, then the rest); nothing waiting, one that finds nothing. ``max_reads``
+    bounds the calls of the reader, and what is left is read by the next call."""
+    packets = [_publish_packet(f"fleet/v{k % 7}/position", b"p" * (k * 37 % 900), 0, 0)
+               for k in range(400)]
+    for data, want_calls in ((b"".join(packets[:20]), 1), (b"".join(packets), None),
+                             (b"", 1)):
+        want, _ = _read_stream([data], lean=False, calls=2000)  # paho's own reader
+        client = aiomqtt.Client("127.0.0.1", 1, protocol=aiomqtt.ProtocolVersion.V5)
+        paho: Any = client._client
+        got: list[Any] = []
+        lean_receive(client, deliver=got.append)
+        buffered_reads(client)
+        kernel = _Kernel(data)
+        paho.on_socket_open(paho, None, kernel)
+        paho._protocol = 5
+        read_now(client, 1000)
+        full = len(data) // 65_536
+        assert kernel.calls == (want_calls if want_calls is not None else full + 1)
+        assert [(m.topic.value, bytes(m.payload)) for m in got] == \
+            [(m[0], m[1]) for m in want]
+    assert len(b"".join(packets)) > 2 * 65_536  # the second case has full pieces
+    client = aiomqtt.Client("127.0.0.1", 1, protocol=aiomqtt.ProtocolVersion.V5)
+    paho = client._client
+    got = []
+    lean_receive(client, deliver=got.append)
+    buffered_reads(client)
+    kernel = _Kernel(b"".join(packets))
+    paho.on_socket_open(paho, None, kernel)
+    paho._protocol = 5
+    # two calls of the reader: a recv and up to 16 packets each (none taken here)
+    assert read_now(client, 2) == 2 and kernel.calls <= 2 and 0 < len(got) <= 32
+    read_now(client, 1000)
+    assert len(got) == len(packets)

@@ -299,3 +299,98 @@ async def test_sigkill_holder_while_fixes_arrive_standby_connection(
     for v in vehicles:
         windows = col.windows(f"/out/match/{v}")
         assert windows == [{k} for k in range(1, n_fixes + 1)], v
+
+
+async def test_standby_connection_takes_first_fixes_raw_and_reads_when_idle(
+        tmp_path: Path, mosquitto: Mosquitto, redis_server: RedisServer, prefix: str,
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    """On the standby connection the first fix of every topic is kept from the raw
+    bytes too (``Daemon._take_first_standby``): paho's way (``_arrive_standby``) sees
+    only the unusual packets, here those carrying a user property (MQTT 5.0 section
+    3.3.2.3.7), and those are kept in their place. For three vehicles of the standby
+    shards, interleaved, each shard's buffer holds exactly the fixes published, in
+    publish order; junk on a vehicle's topic and a fix on another shard's topic
+    (``wrong_shard``) are not kept (junk takes paho's way, as before). Nothing of its
+    own arrives meanwhile, so the
+    connection is read only by the timer of ``_read_standby``, which fires only once no
+    read came for ``_STANDBY_LATE_S``."""
+    from paho.mqtt.packettypes import PacketTypes
+    from paho.mqtt.properties import Properties
+
+    config = write_config(tmp_path, prefix, broker=mosquitto.url, store=redis_server.url,
+                          metrics="", topic="fleet/{shard}/+/position",
+                          extra='[group]\nname = "g"\nshards = 8\nlease_s = 1.0\n'
+                                'standby_connection = true\n')
+    a = group_daemon(config, "a")
+    paho_way: list[tuple[str, bytes]] = []
+    reads: list[tuple[float, bool]] = []  # (monotonic time, by the timer)
+    arrive_standby, read_standby, late = a._arrive_standby, a._read_standby, a._standby_late
+
+    def spy_arrive(message: aiomqtt.Message) -> None:
+        paho_way.append((message.topic.value, bytes(message.payload)))  # type: ignore[arg-type]
+        arrive_standby(message)
+
+    def spy_read(client: aiomqtt.Client) -> None:
+        reads.append((time.monotonic(), False))
+        read_standby(client)
+
+    def spy_late(client: aiomqtt.Client) -> None:
+        reads.append((time.monotonic(), True))
+        late(client)
+
+    monkeypatch.setattr(a, "_read_standby", spy_read)
+    monkeypatch.setattr(a, "_standby_late", spy_late)
+    split = assign_shards(8, ["a", "b"])
+    theirs = sorted(split.held_by("b"))
+    vehicles = [next(f"k{i}" for i in range(1000) if shard_of(f"k{i}", 8) == s)
+                for s in theirs[:3]]
+    topic = {v: f"{prefix}/fleet/{shard_of(v, 8)}/{v}/position" for v in vehicles}
+    feeds = {v: drive(v, 12, start_x=100.0 + 300 * i) for i, v in enumerate(vehicles)}
+    client = aioredis.Redis.from_url(redis_server.url)
+    task = asyncio.create_task(a.run())
+    try:
+        await wait_until(lambda: len(a._active) == 8 and a._standby_client is not None,
+                         what="a holds all shards, standby connection up")
+        monkeypatch.setattr(a, "_arrive_standby", spy_arrive)
+        a._standby_intake.arrive = spy_arrive  # type: ignore[union-attr]
+        await client.zadd(f"{prefix}:group:g:members", {"b": 2 ** 50})
+        await client.hset(f"{prefix}:group:g:receives", "b",
+                          ",".join(str(s) for s in theirs))
+        await wait_until(lambda: a._standby_subs == set(theirs),
+                         what="b's shards on the standby connection")
+        with_property = Properties(PacketTypes.PUBLISH)
+        with_property.UserProperty = ("k", "v")
+        flagged: set[tuple[str, bytes]] = set()
+        wrong = f"{prefix}/fleet/{theirs[1]}/{vehicles[0]}/position"  # not its shard
+        async with aiomqtt.Client("127.0.0.1", mosquitto.port,
+                                  protocol=aiomqtt.ProtocolVersion.V5) as pub:
+            for i in range(12):
+                for v in vehicles:
+                    payload = feeds[v][i][1]
+                    if i % 5 == 3:  # now and then a packet that takes paho's way
+                        flagged.add((topic[v], payload))
+                        await pub.publish(topic[v], payload, qos=1, properties=with_property)
+                    else:
+                        await pub.publish(topic[v], payload, qos=1)
+                if i == 4:
+                    await pub.publish(topic[vehicles[1]], b"junk", qos=1)
+                    await pub.publish(wrong, feeds[vehicles[0]][0][1], qos=1)
+        want = {shard_of(v, 8): [(topic[v], p) for _, p in feeds[v]] for v in vehicles}
+        await wait_until(lambda: all(len(a._buffers.get(s, ())) == len(w)
+                                     for s, w in want.items()), what="every fix kept")
+        await asyncio.sleep(1.0)  # idle: the timer reads it
+    finally:
+        a.request_stop()
+        await asyncio.wait_for(task, 20)
+        await client.aclose()
+    for s, w in want.items():
+        assert [(e[2], e[3]) for e in a._buffers[s]] == w, s
+    # paho's way: the packets with a property, and the junk (its topic is known, its
+    # payload fails the raw path's type check; dropped there, as before)
+    assert sorted(paho_way) == sorted(flagged | {(topic[vehicles[1]], b"junk")})
+    assert len(flagged) == 6
+    assert not any(s in a._buffers for s in theirs[3:])
+    timer_reads = [k for k, (_, by_timer) in enumerate(reads) if by_timer]
+    assert len(timer_reads) >= 2  # idle, so read by the timer
+    for k in timer_reads:  # each only after _STANDBY_LATE_S without a read
+        assert k > 0 and reads[k][0] - reads[k - 1][0] >= daemon_module._STANDBY_LATE_S - 0.01

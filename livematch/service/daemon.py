@@ -87,6 +87,7 @@ from livematch.service.mqtt import (
     make_client,
     on_acknowledged,
     publish_now,
+    read_now,
     until_answered,
     write_soon,
 )
@@ -164,8 +165,9 @@ _PUBLISH_QOS1 = 0x32
 # long after it (a worker with nothing of its own to match).
 _STANDBY_EVERY_S = 0.05
 _STANDBY_LATE_S = 0.25
-# Most packets read from the standby connection per read (they are kept, not matched).
-_STANDBY_PACKETS = 20_000
+# Most reads of up to 64 KiB from the standby connection per turn (its fixes are kept,
+# not matched; _DRAIN_BUDGET_S bounds the turn too).
+_STANDBY_READS = 256
 
 #: An entry of a shard's buffer of kept fixes: (sequence number, receive time, topic,
 #: payload).
@@ -490,6 +492,7 @@ class Daemon:
         self._standby_intake: IntakeQueue | None = None  # its queue (stays empty)
         self._standby_subs: set[int] = set()  # shard topics subscribed on it (QoS 0)
         self._standby_read_at = 0.0  # monotonic time its next read is due
+        self._standby_timer: asyncio.TimerHandle | None = None  # its read when none came
         # shard -> (kept sequence number at the move's start, moving to the main
         # connection) while it is subscribed on both (merge_moved)
         self._moving: dict[int, tuple[int, bool]] = {}
@@ -1956,7 +1959,10 @@ class Daemon:
         It is then kept and acknowledged as there, without paho's decoding, an
         ``aiomqtt.Message``, the topic's decoding or the intake key: a worker of a pair
         with standbys reads half its feed this way. Anything else returns False and
-        takes paho's way to :meth:`_arrive`, unchanged.
+        takes paho's way to :meth:`_arrive`, unchanged. On the standby connection
+        (``intake`` its queue) a QoS 0 PUBLISH is kept whether this worker matches its
+        shard or not (as :meth:`_arrive_standby`), and one whose topic is not known yet
+        is taken by :meth:`_take_first_standby`.
         """
         if command != _PUBLISH_QOS0 and (command & 0xF7 != _PUBLISH_QOS1
                                          or not intake.empty()):
@@ -1966,12 +1972,15 @@ class Daemon:
             return False
         end = 2 + ((body[0] << 8) | body[1])  # after the topic name
         known = self._raw_topics.get(body[2:end])
+        standby = intake is self._standby_intake
         if known is None:
+            if standby and command == _PUBLISH_QOS0:
+                return self._take_first_standby(body, end)
             return False
         shard, topic = known
-        if (shard in self._active or self._stopping.is_set()
+        if ((shard in self._active and not standby) or self._stopping.is_set()
                 or self.config.group.buffer_max == 0):
-            return False
+            return False  # (the standby connection's fixes are kept, never matched)
         mid = -1
         if command != _PUBLISH_QOS0:
             if size < end + 2:
@@ -1987,25 +1996,53 @@ class Daemon:
         self._received += 1
         if mid >= 0:
             ack_mid(client, mid)
-        if self._moving and shard in self._moving and intake is self._standby_intake:
+        if self._moving and shard in self._moving and standby:
             self._via_standby.setdefault(shard, set()).add(kept)
+        return True
+
+    def _take_first_standby(self, body: bytes, end: int) -> bool:
+        """Take a QoS 0 PUBLISH of the standby connection whose topic is not known yet.
+
+        ``body`` and ``end`` as in :meth:`_take_raw` (``end``: just after the topic
+        name). The first fix of each topic, and a topic that names no valid vehicle:
+        what :meth:`_arrive_standby` does with the message paho would make of it, from
+        the raw bytes (paho's decoding and an ``aiomqtt.Message`` cost about five times
+        the raw path, for every topic's first fix on every standby connection). Left to
+        paho (False), as :func:`~livematch.service.mqtt.lean_receive` leaves it, when
+        the packet has no topic name (an alias), properties or a topic name that is not
+        UTF-8.
+        """
+        if end == 2 or len(body) <= end or body[end] != 0:
+            return False
+        try:
+            topic = body[2:end].decode("utf-8")
+        except UnicodeDecodeError:
+            return False
+        self._keep_standby(topic, body[end + 1:])
         return True
 
     def _arrive_standby(self, message: aiomqtt.Message) -> None:
         """Take a message of the standby connection that :meth:`_take_raw` left to paho.
 
-        The first fix of each topic (its shard is learnt here), and anything unusual.
-        A possible fix is kept as :meth:`_arrive` keeps it; nothing from this
-        connection is matched (only shards stood by for are subscribed on it) or
-        acknowledged (QoS 0), and junk and ``wrong_shard`` messages are left to the
-        holder of their shard, which receives them too and publishes their rejects.
+        Anything unusual (properties, a topic alias, a retained or QoS 1 message):
+        kept by :meth:`_keep_standby`.
         """
-        self._received += 1
-        topic = message.topic.value
         payload = message.payload
         if not isinstance(payload, bytes):
             payload = bytes(payload) if isinstance(payload, bytearray) \
                 else str(payload).encode()
+        self._keep_standby(message.topic.value, payload)
+
+    def _keep_standby(self, topic: str, payload: bytes) -> None:
+        """Keep a message of the standby connection (shards stood by for only).
+
+        A possible fix is kept as :meth:`_arrive` keeps it (its topic's shard is learnt
+        here); nothing from this connection is matched (only shards stood by for are
+        subscribed on it) or acknowledged (QoS 0), and junk and ``wrong_shard`` messages
+        are left to the holder of their shard, which receives them too and publishes
+        their rejects.
+        """
+        self._received += 1
         key = self._intake_key(topic, payload)
         if key == JUNK_KEY or key.startswith("c:") or self._stopping.is_set():
             return
@@ -2043,7 +2080,10 @@ class Daemon:
         it (QoS 0 fixes are not queued for an absent subscriber anyway). aiomqtt's
         reader of its socket is removed once connected: the socket is read by the
         receive loop's turns (:meth:`_read_standby`), by a timer when those are far
-        apart, and as it comes while a request waits (:meth:`_loud`).
+        apart, and as it comes while a request waits (:meth:`_loud`). The timer is set
+        again at every read, so it fires only when no read came for ``_STANDBY_LATE_S``
+        (a task that slept until then and looked woke the worker 4-5 times a second
+        while the receive loop read the connection anyway).
         """
         cfg = replace(self._mqtt, client_id=f"{self._mqtt.client_id}-standby",
                       session_expiry_s=0)
@@ -2065,16 +2105,23 @@ class Daemon:
             self._standby_read_at = time.monotonic() + _STANDBY_EVERY_S
             self._rebalance_due.set()  # move the standby shards onto it
             log.info("standby connection up", extra=fields(client_id=cfg.client_id))
+            loop = asyncio.get_running_loop()
+            waiter: asyncio.Future[None] = loop.create_future()
+            self._sleepers.add(waiter)  # woken by request_stop
+            if isinstance(closed, asyncio.Future):
+                closed.add_done_callback(lambda _f: _wake(waiter))
             try:
-                while not self._stopping.is_set():
-                    if isinstance(closed, asyncio.Future) and closed.done():
-                        raise aiomqtt.MqttError("standby connection closed")
-                    late = self._standby_read_at - _STANDBY_EVERY_S + _STANDBY_LATE_S
-                    if time.monotonic() >= late:
-                        self._read_standby(client)
-                        continue
-                    await self._sleep_unless_stopping(late - time.monotonic())
+                self._read_standby(client)  # sets the timer
+                if not self._stopping.is_set():
+                    await waiter
+                if (not self._stopping.is_set() and isinstance(closed, asyncio.Future)
+                        and closed.done()):
+                    raise aiomqtt.MqttError("standby connection closed")
             finally:
+                self._sleepers.discard(waiter)
+                if self._standby_timer is not None:
+                    self._standby_timer.cancel()
+                    self._standby_timer = None
                 self._standby_client = None
                 self._standby_intake = None
                 self._standby_subs.clear()
@@ -2082,9 +2129,23 @@ class Daemon:
                 self._rebalance_due.set()  # its shards back on the main connection
 
     def _read_standby(self, client: aiomqtt.Client) -> None:
-        """Read what the standby connection has (kept fixes, answers, PINGRESP)."""
+        """Read what the standby connection has (kept fixes, answers, PINGRESP).
+
+        Then set the timer that reads it ``_STANDBY_LATE_S`` from now unless a read
+        comes first (a worker with nothing of its own to match).
+        """
         self._standby_read_at = time.monotonic() + _STANDBY_EVERY_S
-        drain(client, _STANDBY_PACKETS, _DRAIN_BUDGET_S)
+        read_now(client, _STANDBY_READS, _DRAIN_BUDGET_S)
+        if self._standby_timer is not None:
+            self._standby_timer.cancel()
+        self._standby_timer = asyncio.get_running_loop().call_later(
+            _STANDBY_LATE_S, self._standby_late, client)
+
+    def _standby_late(self, client: aiomqtt.Client) -> None:
+        """The timer of :meth:`_read_standby`: no read came for ``_STANDBY_LATE_S``."""
+        self._standby_timer = None
+        if self._standby_client is client and not self._stopping.is_set():
+            self._read_standby(client)
 
     def _intake_key(self, topic: str, payload: bytes) -> str:
         """The vehicle a received message is about, for shedding (cheap; topic first).

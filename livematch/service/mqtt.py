@@ -154,6 +154,40 @@ def drain(client: aiomqtt.Client, max_packets: int, budget_s: float = math.inf) 
     return read
 
 
+def read_now(client: aiomqtt.Client, max_reads: int, budget_s: float = math.inf) -> int:
+    """Read what a socket the event loop does not watch holds now; return the calls.
+
+    For the daemon's standby connection (``group.standby_connection``), read when the
+    worker is awake anyway: through :func:`buffered_reads`' reader, one ``recv`` of up
+    to ``_READ_SIZE`` bytes at a time, again only while the last one filled the whole
+    piece (the kernel may hold more), whole packets are left in the buffer or a TLS
+    socket has decrypted bytes pending; at most ``max_reads`` calls of that reader (each
+    makes one ``recv`` at most and hands paho up to its bound of packets not taken) or
+    ``budget_s`` seconds. :func:`drain` asks ``select`` before every read and once more after the
+    last: three system calls for the usual few KiB, here one (or one that finds
+    nothing). A socket not wrapped by :func:`buffered_reads` is left to :func:`drain`.
+    Errors are left for the connection's own checks, as in :func:`drain`.
+    """
+    paho: Any = client._client
+    sock = paho.socket()
+    if not isinstance(sock, _BufferedSocket):
+        return drain(client, max_reads * _READ_PACKETS_MIN, budget_s)
+    reads = 0
+    until = time.monotonic() + budget_s
+    with contextlib.suppress(Exception):
+        while reads < max_reads:
+            sock.got = 0
+            paho.loop_read()
+            reads += 1
+            if paho.socket() is not sock or time.monotonic() >= until:
+                break
+            pending = getattr(sock, "pending", None)  # a TLS socket's decrypted bytes
+            if not (sock.got >= _READ_SIZE or sock.leftover()
+                    or (pending is not None and pending() > 0)):
+                break
+    return reads
+
+
 # Bytes asked of the kernel per read of the broker's socket (buffered_reads).
 _READ_SIZE = 65_536
 # Fewest whole packets handed to paho per read call (_read_packets; paho's own bound is
@@ -186,7 +220,7 @@ class _BufferedSocket:
         (b'a', b'bc', 3, b'def')
     """
 
-    __slots__ = ("_buf", "_on_leftover", "_pos", "_sock", "reads")
+    __slots__ = ("_buf", "_on_leftover", "_pos", "_sock", "got", "reads")
 
     def __init__(self, sock: Any, on_leftover: Callable[[], None]) -> None:
         self._sock = sock
@@ -194,6 +228,7 @@ class _BufferedSocket:
         self._buf = b""
         self._pos = 0
         self.reads = 0  # recv calls made on the socket itself
+        self.got = 0  # bytes its last one returned
 
     def recv(self, bufsize: int) -> bytes:
         buf, pos = self._buf, self._pos
@@ -205,6 +240,7 @@ class _BufferedSocket:
             return buf[pos:end]
         self.reads += 1
         data: bytes = self._sock.recv(max(bufsize, _READ_SIZE))
+        self.got = len(data)
         if len(data) <= bufsize:
             return data
         self._buf, self._pos = data, bufsize
@@ -224,6 +260,7 @@ class _BufferedSocket:
         self.reads += 1
         data: bytes = self._sock.recv(_READ_SIZE)
         self._buf, self._pos = data, 0
+        self.got = len(data)
         return len(data)
 
     def next_packet(self) -> tuple[int, bytes] | None:
