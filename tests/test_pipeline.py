@@ -157,6 +157,61 @@ def test_pipeline_dedupe_memory_is_bounded():
     assert p.counters["filtered:out_of_order"] == 1
 
 
+def _window_reference(times: list[float]) -> list[float]:
+    """The dedupe memory as a plain sorted list (the rule stated with :mod:`bisect`)."""
+    import bisect
+
+    recent: list[float] = []
+    for t in times:
+        i = bisect.bisect_left(recent, t)
+        if i < len(recent) and recent[i] == t:
+            continue  # a duplicate: not remembered twice
+        recent.insert(i, t)
+        del recent[:-DEDUPE_WINDOW]
+    return recent
+
+
+@pytest.mark.parametrize("kind", ["whole_s", "ms", "decimal", "sparse", "shuffled", "odd"])
+def test_vehicle_state_dedupe_memory_matches_a_sorted_list(kind):
+    """The step-coded dedupe memory holds exactly the times a sorted list of the newest
+    DEDUPE_WINDOW would, bit for bit, and answers ``seen`` as that list does."""
+    from livematch.core.tracker import Tracker
+    from livematch.pipeline import _VehicleState
+
+    rng = np.random.default_rng(7)
+    if kind == "whole_s":
+        times = [T0 + i for i in range(200)]
+    elif kind == "ms":  # millisecond times, 0.2-1.8 s apart
+        times = list(T0 + np.cumsum(rng.integers(200, 1800, 200)) / 1000.0)
+    elif kind == "decimal":  # times written with a decimal fraction, as JSON carries them
+        times = [float(f"{T0 + 0.1 * i:.1f}") for i in range(200)]
+    elif kind == "sparse":  # 30 s to 3 min apart, some of them no whole millisecond
+        times = list(T0 + np.cumsum(rng.uniform(30.0, 180.0, 200)))
+    elif kind == "odd":  # small times in thirds of a second, and gaps of an hour
+        times = [i / 3 + 3600.0 * (i // 50) for i in range(200)]
+    else:  # late and repeated times among new ones
+        times = [T0 + i for i in range(150)]
+        for i in range(40, 150, 7):
+            times[i], times[i - 3] = times[i - 3], times[i]
+        times += [T0 + 100.0, T0 + 3.0, T0 + 149.0, T0 + 149.5]
+    state = _VehicleState(Tracker(ROAD, "v"))
+    seen = []
+    for t in times:
+        seen.append(state.seen(t))
+        if not seen[-1]:
+            state.remember(t)
+    want = _window_reference(times)
+    assert [t.hex() for t in state.recent] == [t.hex() for t in want]
+    assert state.newest == want[-1]
+    probe = [*want, *times[:20], T0 - 1.0, T0 + 0.5]
+    assert [state.seen(t) for t in probe] == [t in want for t in probe]
+    # what a restore rebuilds from the checkpoint's list holds the same times
+    again = _VehicleState(Tracker(ROAD, "v"), list(state.recent))
+    assert [t.hex() for t in again.recent] == [t.hex() for t in want]
+    # epoch times less than 1024 s apart are all steps; the small thirds are not
+    assert (state.odd is None) == (kind != "odd")
+
+
 def test_pipeline_answered_fixes_leave_no_pending_table():
     """Once the tracker has answered every fix, the vehicle holds no pending dict at all
     (an empty dict is 64 bytes every idle vehicle would carry)."""
