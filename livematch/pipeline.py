@@ -130,15 +130,14 @@ __all__ = [
 #: the longest reorder window (32), so a redelivered fix the tracker could still take is
 #: always recognised; an even older one is refused by the tracker as out of order.
 DEDUPE_WINDOW = 64
-# _VehicleState's dedupe memory: the steps between times in units of 2**-22 s (the
-# spacing of doubles from 2**30 to 2**31 s, epoch seconds of 2004-2038, so any step
-# between two such times is a whole number of units: multiplying by a power of two is
-# exact), unsigned 32 bits; _ODD marks a time kept whole (a step of 1024 s or more, or
-# one no whole number of units gives back)
-_PER_S = 4194304.0  # 2**22
-_UNIT_S = 1.0 / _PER_S
-_ODD = 0xFFFFFFFF
-_STEP_MAX_S = _ODD * _UNIT_S
+# _VehicleState's dedupe memory: the steps between times as whole numbers of units, a
+# unit 2**-10 s in two bytes ("H") while every step is one, else 2**-22 s in four bytes
+# ("I"): 2**-22 is the spacing of doubles from 2**30 to 2**31 s (epoch seconds of
+# 2004-2038), so any step between two such times is a whole number of those units
+# (dividing by a power of two is exact). The largest value of each marks a time kept
+# whole (a step too long for the array, or one no whole number of units gives back).
+_PER_S = {"H": 1024.0, "I": 4194304.0}  # units per second
+_ODD = {"H": 0xFFFF, "I": 0xFFFFFFFF}
 #: A reject record keeps at most this many characters of the payload.
 REJECT_PAYLOAD_CHARS = 512
 #: Checkpoint blobs start with this and a version byte.
@@ -228,25 +227,33 @@ class _VehicleState:
 
     The dedupe memory (:attr:`recent`, at most ``DEDUPE_WINDOW`` times, sorted) is held
     as its oldest time ``first``, its newest ``top`` and the ``steps`` from each time to
-    the next in units of 2**-22 s (``array("I")``, four bytes): a step ``k`` is kept
-    only where ``previous + k * 2**-22`` gives the next time back bit for bit (checked
-    when it is written, and read back with the same expression), else it is ``_ODD``
-    and the time itself is the next one of ``odd``. Between two epoch times of
-    2004-2038 less than 1024 s apart that always holds (their difference is exact and a
-    whole number of units), whatever the fraction of a second the times carry. A 1 Hz
-    vehicle's 64 times take about 0.3 KB instead of 0.6 (``bench/memory.py`` step 6);
-    every question the memory answers, and every time a checkpoint writes, is the same.
+    the next as whole numbers of units: 2**-10 s in two bytes (``array("H")``, up to
+    64 s) while every step is one, such as whole seconds, else 2**-22 s in four bytes
+    (``array("I")``, up to 1024 s; the steps so far are converted once). A step ``k`` is
+    kept only where ``previous + k / units_per_s`` gives the next time back bit for bit
+    (checked when it is written, and read back with the same expression), else it is
+    the array's largest value and the time itself is the next one of ``odd``. Between
+    two epoch times of 2004-2038 less than 1024 s apart the four-byte step always
+    holds, whatever fraction of a second the times carry. A 1 Hz vehicle's 64 times
+    take about 0.2-0.3 KB instead of 0.6 (``bench/memory.py`` step 6); every question
+    the memory answers, and every time a checkpoint writes, is the same.
 
-    Example (times a second apart, then one a third of a second later, which no whole
-    number of units gives back at this small a time, then a gap of an hour):
+    Example (epoch times a second apart, then one with milliseconds, then an hour on):
         >>> from livematch.core.build import Road, network_from_roads
         >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
-        >>> times = [10.0, 11.0, 12.0, 12.0 + 1 / 3, 3612.0]
-        >>> state = _VehicleState(Tracker(net, "v1"), times)
-        >>> list(state.steps), list(state.odd or ())
-        ([4194304, 4194304, 4294967295, 4294967295], [12.333333333333334, 3612.0])
-        >>> state.recent == times, state.seen(11.0), state.seen(11.5)
-        (True, True, False)
+        >>> state = _VehicleState(Tracker(net, "v1"), [1764576000.0, 1764576001.0])
+        >>> state.steps  # a whole second: 1024 units of 2**-10 s
+        array('H', [1024])
+        >>> state.append(1764576001.123)
+        >>> state.steps  # 0.123 s is no whole number of them: all in units of 2**-22 s
+        array('I', [4194304, 515899])
+        >>> state.append(1764579601.123)
+        >>> state.steps, state.odd  # 3600 s: too long a step, kept whole
+        (array('I', [4194304, 515899, 4294967295]), array('d', [1764579601.123]))
+        >>> state.recent == [1764576000.0, 1764576001.0, 1764576001.123, 1764579601.123]
+        True
+        >>> state.seen(1764576001.0), state.seen(1764576001.5)
+        (True, False)
         >>> _VehicleState(Tracker(net, "v1")).recent  # nothing yet
         []
     """
@@ -258,7 +265,7 @@ class _VehicleState:
         self.tracker = tracker
         self.first: float | None = None  # the oldest time remembered (None: none yet)
         self.top: float | None = None  # the newest
-        self.steps: array[int] = array("I")
+        self.steps: array[int] = array("H")
         self.odd: array[float] | None = None  # the times a step could not give back
         if recent:
             self._keep(recent)
@@ -276,16 +283,19 @@ class _VehicleState:
         if t is None:
             return []
         times = [t]
+        steps = self.steps
+        per_s = _PER_S[steps.typecode]
+        whole = _ODD[steps.typecode]
         odd = iter(self.odd or ())
-        for k in self.steps:
-            t = next(odd) if k == _ODD else t + k * _UNIT_S
+        for k in steps:
+            t = next(odd) if k == whole else t + k / per_s
             times.append(t)
         return times
 
     def _keep(self, times: list[float]) -> None:
         """Remember ``times`` (sorted, distinct, at most ``DEDUPE_WINDOW``) instead."""
         self.first = self.top = None
-        self.steps = array("I")
+        self.steps = array("H")
         self.odd = None
         for t in times:
             self.append(t)
@@ -298,33 +308,52 @@ class _VehicleState:
             self.first = t
             return
         steps = self.steps
-        d = t - top
-        n = d * _PER_S
-        k = int(n) if 0.0 <= d < _STEP_MAX_S else _ODD
-        if k == n and top + k * _UNIT_S == t:
-            steps.append(k)
+        code = steps.typecode
+        per_s = _PER_S[code]
+        n = (t - top) * per_s
+        if 0.0 <= n < _ODD[code] and n == int(n) and top + n / per_s == t:
+            steps.append(int(n))
         else:
-            steps.append(_ODD)
-            odd = self.odd
-            if odd is None:
-                self.odd = array("d", (t,))
-            else:
-                odd.append(t)
-        if len(steps) >= DEDUPE_WINDOW:
+            self._append_odd(t, top)  # may hold the steps in a new array
+        if len(self.steps) >= DEDUPE_WINDOW:
             self._forget_first()
+
+    def _append_odd(self, t: float, top: float) -> None:
+        """:meth:`append`'s step from ``top`` to ``t`` where the array's units cannot hold it.
+
+        In four-byte units if it fits them (the steps so far converted), else ``t``
+        itself.
+        """
+        steps = self.steps
+        n = (t - top) * _PER_S["I"]
+        if 0.0 <= n < _ODD["I"] and n == int(n) and top + n / _PER_S["I"] == t:
+            if steps.typecode == "H":
+                scale = int(_PER_S["I"] / _PER_S["H"])
+                whole = _ODD["H"]
+                steps = self.steps = array(
+                    "I", [_ODD["I"] if k == whole else k * scale for k in steps])
+            steps.append(int(n))
+            return
+        steps.append(_ODD[steps.typecode])
+        odd = self.odd
+        if odd is None:
+            self.odd = array("d", (t,))
+        else:
+            odd.append(t)
 
     def _forget_first(self) -> None:
         """Forget the oldest time remembered (there are at least two)."""
-        k = self.steps.pop(0)
+        steps = self.steps
+        k = steps.pop(0)
         odd = self.odd
-        if k == _ODD:
+        if k == _ODD[steps.typecode]:
             assert odd is not None
             self.first = odd.pop(0)
             if not odd:
                 self.odd = None
         else:
             assert self.first is not None
-            self.first = self.first + k * _UNIT_S
+            self.first = self.first + k / _PER_S[steps.typecode]
 
     def allow(self, at: float, t: float, rate_hz: float) -> bool:
         """Token bucket of ``rate_hz`` fixes per second, burst ``max(1, rate_hz)``.

@@ -208,8 +208,10 @@ def test_vehicle_state_dedupe_memory_matches_a_sorted_list(kind):
     # what a restore rebuilds from the checkpoint's list holds the same times
     again = _VehicleState(Tracker(ROAD, "v"), list(state.recent))
     assert [t.hex() for t in again.recent] == [t.hex() for t in want]
-    # epoch times less than 1024 s apart are all steps; the small thirds are not
+    # epoch times less than 1024 s apart are all steps (whole seconds in two bytes); the
+    # small thirds are not
     assert (state.odd is None) == (kind != "odd")
+    assert state.steps.typecode == ("I" if kind in ("ms", "decimal", "sparse") else "H")
 
 
 def test_pipeline_answered_fixes_leave_no_pending_table():
