@@ -138,6 +138,11 @@ DEDUPE_WINDOW = 64
 # whole (a step too long for the array, or one no whole number of units gives back).
 _PER_S = {"H": 1024.0, "I": 4194304.0}  # units per second
 _ODD = {"H": 0xFFFF, "I": 0xFFFFFFFF}
+_H_PER_S = _PER_S["H"]
+_H_ODD = float(_ODD["H"])
+# steps held beyond the window's before the oldest are forgotten together (one at a
+# time cost a call and a shift at every fix)
+_SLACK = 16
 #: A reject record keeps at most this many characters of the payload.
 REJECT_PAYLOAD_CHARS = 512
 #: Checkpoint blobs start with this and a version byte.
@@ -232,7 +237,9 @@ class _VehicleState:
     (``array("I")``, up to 1024 s; the steps so far are converted once). A step ``k`` is
     kept only where ``previous + k / units_per_s`` gives the next time back bit for bit
     (checked when it is written, and read back with the same expression), else it is
-    the array's largest value and the time itself is the next one of ``odd``. Between
+    the array's largest value and the time itself is the next one of ``odd``. Up to
+    ``_SLACK`` times older than the window are held until they are forgotten together;
+    :attr:`recent` and :meth:`seen` read the newest ``DEDUPE_WINDOW`` only. Between
     two epoch times of 2004-2038 less than 1024 s apart the four-byte step always
     holds, whatever fraction of a second the times carry. A 1 Hz vehicle's 64 times
     take about 0.2-0.3 KB instead of 0.6 (``bench/memory.py`` step 6); every question
@@ -279,6 +286,10 @@ class _VehicleState:
     @property
     def recent(self) -> list[float]:
         """The times remembered for dedupe, oldest first (at most ``DEDUPE_WINDOW``)."""
+        return self._times()[-DEDUPE_WINDOW:]
+
+    def _times(self) -> list[float]:
+        """Every time held, oldest first (up to ``_SLACK`` more than the window)."""
         t = self.first
         if t is None:
             return []
@@ -301,32 +312,35 @@ class _VehicleState:
             self.append(t)
 
     def append(self, t: float) -> None:
-        """Remember ``t``, newer than every time remembered; forget the oldest beyond the window."""
+        """Remember ``t``, newer than every time remembered."""
         top = self.top
         self.top = t
         if top is None:
             self.first = t
             return
         steps = self.steps
-        code = steps.typecode
-        per_s = _PER_S[code]
-        n = (t - top) * per_s
-        if 0.0 <= n < _ODD[code] and n == int(n) and top + n / per_s == t:
-            steps.append(int(n))
-        else:
-            self._append_odd(t, top)  # may hold the steps in a new array
-        if len(self.steps) >= DEDUPE_WINDOW:
-            self._forget_first()
+        if steps.typecode == "H":  # (the usual case: whole seconds, or halves...)
+            n = (t - top) * _H_PER_S
+            if 0.0 <= n < _H_ODD:
+                k = int(n)
+                if k == n and top + k / _H_PER_S == t:
+                    steps.append(k)
+                    if len(steps) >= DEDUPE_WINDOW + _SLACK:
+                        self._forget()
+                    return
+        self._append_wide(t, top)
+        if len(self.steps) >= DEDUPE_WINDOW + _SLACK:
+            self._forget()
 
-    def _append_odd(self, t: float, top: float) -> None:
-        """:meth:`append`'s step from ``top`` to ``t`` where the array's units cannot hold it.
+    def _append_wide(self, t: float, top: float) -> None:
+        """:meth:`append`'s step from ``top`` to ``t`` where two-byte units cannot hold it.
 
         In four-byte units if it fits them (the steps so far converted), else ``t``
         itself.
         """
         steps = self.steps
         n = (t - top) * _PER_S["I"]
-        if 0.0 <= n < _ODD["I"] and n == int(n) and top + n / _PER_S["I"] == t:
+        if 0.0 <= n < _ODD["I"] and n == int(n) and top + int(n) / _PER_S["I"] == t:
             if steps.typecode == "H":
                 scale = int(_PER_S["I"] / _PER_S["H"])
                 whole = _ODD["H"]
@@ -341,19 +355,53 @@ class _VehicleState:
         else:
             odd.append(t)
 
-    def _forget_first(self) -> None:
-        """Forget the oldest time remembered (there are at least two)."""
+    def _forget(self) -> None:
+        """Forget the times older than the newest ``DEDUPE_WINDOW``."""
         steps = self.steps
-        k = steps.pop(0)
+        drop = len(steps) + 1 - DEDUPE_WINDOW
+        if drop <= 0:
+            return
+        per_s = _PER_S[steps.typecode]
+        whole = _ODD[steps.typecode]
+        t = self.first
+        assert t is not None
         odd = self.odd
-        if k == _ODD[steps.typecode]:
+        used = 0
+        for k in steps[:drop]:
+            if k == whole:
+                assert odd is not None
+                t = odd[used]
+                used += 1
+            else:
+                t = t + k / per_s
+        self.first = t
+        del steps[:drop]
+        if used:
             assert odd is not None
-            self.first = odd.pop(0)
+            del odd[:used]
             if not odd:
                 self.odd = None
+
+    def seen(self, t: float) -> bool:
+        top = self.top
+        if top is None or t > top:
+            return False  # newer than every time held: the usual case, no search
+        recent = self.recent
+        i = bisect.bisect_left(recent, t)
+        return i < len(recent) and recent[i] == t
+
+    def remember(self, t: float) -> None:
+        top = self.top
+        if top is not None and t <= top:
+            recent = self.recent
+            bisect.insort(recent, t)
+            self._keep(recent[-DEDUPE_WINDOW:])
         else:
-            assert self.first is not None
-            self.first = self.first + k / _PER_S[steps.typecode]
+            self.append(t)  # in order: stays sorted
+
+    @property
+    def newest(self) -> float | None:
+        return self.top
 
     def allow(self, at: float, t: float, rate_hz: float) -> bool:
         """Token bucket of ``rate_hz`` fixes per second, burst ``max(1, rate_hz)``.
@@ -394,27 +442,6 @@ class _VehicleState:
             return True
         self.tokens = tokens
         return False
-
-    def seen(self, t: float) -> bool:
-        top = self.top
-        if top is None or t > top:
-            return False  # newer than every time held: the usual case, no search
-        recent = self.recent
-        i = bisect.bisect_left(recent, t)
-        return i < len(recent) and recent[i] == t
-
-    def remember(self, t: float) -> None:
-        top = self.top
-        if top is not None and t <= top:
-            recent = self.recent
-            bisect.insort(recent, t)
-            self._keep(recent[-DEDUPE_WINDOW:])
-        else:
-            self.append(t)  # in order: stays sorted
-
-    @property
-    def newest(self) -> float | None:
-        return self.top
 
 
 class _Parked:
