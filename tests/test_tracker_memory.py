@@ -151,3 +151,26 @@ def test_fix_log_room_follows_the_rows_kept() -> None:
         assert [tuple(r) for r in log[:n].tolist()] == logged[seq0 - 1:]
         # until session 23 the room was as many rows again as were kept (40 for 20)
         assert len(log) <= n + max(FIX_LOG_ROOM, n // 2)
+
+
+def test_stand_run_of_a_moving_vehicle_shares_the_last_fix_tuple() -> None:
+    """While the vehicle moves, each fix starts a new run of the stand rule: its anchor is
+    the very tuple ``last`` holds for that fix (one object, not two equal ones), with
+    the fix's own time and position; a vehicle standing keeps the run's first fix."""
+    from livematch.core.fix import Fix
+
+    net, _ = noisy_drive(seed=2)
+    tracker = Tracker(net, "v1", MatchSettings(stop_turns=True))
+    xs = [10.0 + 25.0 * i for i in range(20)] + [500.0 + 0.5 * (i % 2) for i in range(20)]
+    shared = 0
+    for i, x in enumerate(xs):
+        fix = Fix("v1", 1000.0 + i, 0.0, 0.0, x, 0.0)
+        tracker.update(fix)
+        anchor = tracker.stand_from
+        assert anchor is not None
+        if i < 20 or i == 20:  # moving (and the first fix of the stand): a new run
+            assert anchor == (fix.t, fix.x, fix.y)
+            shared += anchor is tracker.last
+        else:  # standing within a metre: the run still starts at the stand's first fix
+            assert anchor == (1020.0, 500.0, 0.0)
+    assert shared == 21

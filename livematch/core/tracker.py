@@ -1752,7 +1752,13 @@ class Tracker:
         anchor = self.stand_from
         if anchor is None or math.hypot(fix.x - anchor[1], fix.y - anchor[2]) > (
                 STAND_SIGMAS * self.settings.sigma_m):
-            self.stand_from = anchor = (fix.t, fix.x, fix.y)
+            anchor = self.last
+            if anchor is None or not (
+                    anchor[0] is fix.t and anchor[1] is fix.x and anchor[2] is fix.y):
+                anchor = (fix.t, fix.x, fix.y)
+            # (a moving vehicle's run starts at every fix: the tuple of ``last``, which
+            # _accept made of the same floats just before, not a second one: 64 bytes)
+            self.stand_from = anchor
         if fix.t - anchor[0] >= STAND_S:
             self.stood_t = fix.t
         return stood
