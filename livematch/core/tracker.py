@@ -135,6 +135,8 @@ _V2_KEPT = [0, 1, 4, 5]
 # the Assignment itself, with its own floats and segment number, kept 0.33 KB a driven
 # vehicle, bench/memory.py step 6; packing it costs about 0.1 µs a fix)
 _SAID = struct.Struct("<dqddddqd")
+# Tracker.last_commit, packed: seg, pos, seq, t
+_COMMIT_AT = struct.Struct("<qdqd")
 JUMP_TRUST_AFTER = 3
 # A road vehicle changes speed by at most about 3 m/s per second (ordinary braking and
 # acceleration; common practice, from memory).
@@ -342,12 +344,11 @@ class Tracker:
 
     # slots: a service holds one tracker per vehicle, and an instance dict costs more
     # than a small candidate tree
-    __slots__ = ("_held", "_view", "agreed_seq", "along_last", "before", "buffer", "fix_n",
-                 "fix_seq0", "fix_xy", "jumps", "lap_due", "lap_v", "last", "last_commit",
-                 "last_released_t", "last_seg", "last_v", "levels",
-                 "network", "next_commit", "rev_t", "said", "seq", "settings", "skipped",
-                 "speed", "stand_from", "stand_seq", "step_dir", "stood_t", "times", "times0",
-                 "vehicle")
+    __slots__ = ("_commit_at", "_held", "_view", "agreed_seq", "along_last", "before", "buffer",
+                 "fix_n", "fix_seq0", "fix_xy", "jumps", "lap_due", "lap_v", "last",
+                 "last_released_t", "last_seg", "last_v", "levels", "network", "next_commit",
+                 "rev_t", "said", "seq", "settings", "skipped", "speed", "stand_from", "stand_seq",
+                 "step_dir", "stood_t", "times", "times0", "vehicle")
 
     def __init__(
         self, network: RoadNetwork, vehicle: str, settings: MatchSettings | None = None
@@ -375,7 +376,9 @@ class Tracker:
         self.times: array[float] = array("d")
         self.times0 = 1
         self.next_commit = 1
-        self.last_commit: tuple[int, float, int, float] | None = None  # seg, pos, seq, t
+        # the state the last commit ended at: seg, pos, seq, t packed (_COMMIT_AT; read
+        # as last_commit)
+        self._commit_at: bytes | None = None
         self.skipped: tuple[float, ...] = ()
         self.last_seg = -1  # segment of the last assignment (breaks exact ties)
         # positions of the accepted fixes from fix_seq0 on (row i: fix fix_seq0 + i; the
@@ -429,6 +432,20 @@ class Tracker:
         i = seq - self.times0
         times = self.times
         return times[i] if 0 <= i < len(times) else None
+
+    @property
+    def last_commit(self) -> tuple[int, float, int, float] | None:
+        """The state the last commit ended at: ``(seg, pos, seq, t)``, None before the first.
+
+        Kept packed (65 bytes; a tuple of its own four numbers was 0.15-0.18 KB a
+        vehicle, ``bench/memory.py`` step 6): it is read a few times a commit.
+        """
+        at = self._commit_at
+        return None if at is None else _COMMIT_AT.unpack(at)
+
+    @last_commit.setter
+    def last_commit(self, state: tuple[int, float, int, float] | None) -> None:
+        self._commit_at = None if state is None else _COMMIT_AT.pack(*state)
 
     @property
     def last_time(self) -> float | None:
@@ -1398,7 +1415,7 @@ class Tracker:
                     top = _CALLS.cut_and_check(tree.ti, self.next_commit, newest, False)
                 if top < 0:
                     continue
-                if s.start_roots and self.last_commit is None \
+                if s.start_roots and self._commit_at is None \
                         and self._start_roots(level, dt):
                     # the tree now grows from another root: is a commit still due?
                     tree = level.tree
@@ -1413,7 +1430,7 @@ class Tracker:
                 if waits:
                     continue
                 built = tree.chain(self._view, top, self.next_commit)
-                if (hold_newest and s.start_way_out and self.last_commit is None
+                if (hold_newest and s.start_way_out and self._commit_at is None
                         and self._way_out_pending(tree, built[0])):
                     break  # the log's first commit waits for the spike test (see there)
                 if self._defers(level, top, covering, built):
@@ -1439,7 +1456,7 @@ class Tracker:
                 too_many = False  # a stand: only the time bound forces (see _standing)
             if (too_many or too_old) and covering:
                 level = covering[0]
-                if s.start_roots and self.last_commit is None:
+                if s.start_roots and self._commit_at is None:
                     self._start_roots(level, dt)
                 tree = level.tree
                 keep = min(max(self._lag_target(seq, t), lag_first), newest)
@@ -3778,8 +3795,8 @@ class Tracker:
         slen = view.slen
         prev = None if starts else self.along_last
         local = list(path)
-        if prev is not None and self.last_commit is not None:
-            top_seg = self.last_commit[0]
+        if prev is not None and self._commit_at is not None:
+            top_seg = _COMMIT_AT.unpack(self._commit_at)[0]
             local[:0] = [prev[0]] if prev[0] == top_seg else [prev[0], top_seg]
         else:
             prev = None
@@ -4107,9 +4124,6 @@ def _share_numbers(tracker: Tracker) -> None:
         t.last = (fl(t.last[0]), t.last[1], t.last[2])
     if t.last_released_t is not None:
         t.last_released_t = fl(t.last_released_t)
-    if t.last_commit is not None:
-        seg, pos, seq, when = t.last_commit
-        t.last_commit = (it(seg), pos, it(seq), fl(when))
     if t.stand_from is not None:
         if t.last is not None and _same(t.stand_from, t.last):
             t.stand_from = t.last  # a run of fixes that starts at the newest one
