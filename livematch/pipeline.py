@@ -143,6 +143,7 @@ _H_ODD = float(_ODD["H"])
 # steps held beyond the window's before the oldest are forgotten together (one at a
 # time cost a call and a shift at every fix)
 _SLACK = 16
+_STEPS_FULL = DEDUPE_WINDOW + _SLACK - 1  # steps held before a step forgets the oldest
 #: A reject record keeps at most this many characters of the payload.
 REJECT_PAYLOAD_CHARS = 512
 #: Checkpoint blobs start with this and a version byte.
@@ -325,11 +326,11 @@ class _VehicleState:
                 k = int(n)
                 if k == n and top + k / _H_PER_S == t:
                     steps.append(k)
-                    if len(steps) >= DEDUPE_WINDOW + _SLACK:
+                    if len(steps) > _STEPS_FULL:
                         self._forget()
                     return
         self._append_wide(t, top)
-        if len(self.steps) >= DEDUPE_WINDOW + _SLACK:
+        if len(self.steps) > _STEPS_FULL:
             self._forget()
 
     def _append_wide(self, t: float, top: float) -> None:
@@ -637,7 +638,21 @@ class Pipeline:
         if limits.max_age_s > 0 and at - t > limits.max_age_s:
             counters["late"] += 1
         if newest:
-            state.append(t)  # in order: stays sorted
+            # _VehicleState.append's usual case written out (a call fewer a fix): a
+            # whole number of two-byte units after the newest time, the window not full
+            steps = state.steps
+            k = -1
+            if top is not None and steps.typecode == "H" and len(steps) < _STEPS_FULL:
+                n = (t - top) * _H_PER_S
+                if n < _H_ODD:
+                    k = int(n)
+                    if k != n or top + k / _H_PER_S != t:
+                        k = -1
+            if k >= 0:
+                steps.append(k)
+                state.top = t
+            else:
+                state.append(t)  # in order: stays sorted
         else:
             state.remember(t)
         if t < self._idle_floor:  # a first fix from long ago (late data)

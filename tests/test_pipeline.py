@@ -146,12 +146,14 @@ def test_pipeline_older_fix_goes_to_tracker():
     assert p.counters["fixes"] == 6
 
 
-def test_pipeline_dedupe_memory_is_bounded():
+@pytest.mark.parametrize("n", [DEDUPE_WINDOW + 5, 3 * DEDUPE_WINDOW + 7])
+def test_pipeline_dedupe_memory_is_bounded(n):
     """Only the newest DEDUPE_WINDOW times are remembered; an older resend is out of order."""
     p = Pipeline(ROAD, MatchSettings())
-    msgs = drive("bus1", DEDUPE_WINDOW + 5, dt=1.0)
+    msgs = drive("bus1", n, dt=1.0)
     run(p, msgs)
-    run(p, [msgs[0]])                 # forgotten by dedupe, refused by the tracker
+    assert p._vehicles["bus1"].recent == [T0 + i for i in range(n - DEDUPE_WINDOW, n)]
+    run(p, [msgs[-DEDUPE_WINDOW - 1]])  # forgotten by dedupe, refused by the tracker
     run(p, [msgs[-DEDUPE_WINDOW]])    # still remembered
     assert p.counters["duplicate"] == 1
     assert p.counters["filtered:out_of_order"] == 1

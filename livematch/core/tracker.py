@@ -438,7 +438,8 @@ class Tracker:
         """The state the last commit ended at: ``(seg, pos, seq, t)``, None before the first.
 
         Kept packed (65 bytes; a tuple of its own four numbers was 0.15-0.18 KB a
-        vehicle, ``bench/memory.py`` step 6): it is read a few times a commit.
+        vehicle, ``bench/memory.py`` step 6); the tracker's own readers (a few a
+        commit) unpack ``_commit_at`` where they need it.
         """
         at = self._commit_at
         return None if at is None else _COMMIT_AT.unpack(at)
@@ -1853,8 +1854,8 @@ class Tracker:
             >>> tracker._defers(tracker.levels[0], 0, tracker.levels)
             False
         """
-        last = self.last_commit
-        if last is None:
+        at = self._commit_at
+        if at is None:
             return False
         own = level.tree_seq
         for lv in covering:
@@ -1862,6 +1863,7 @@ class Tracker:
                 break
         else:
             return False
+        last = _COMMIT_AT.unpack(at)
         tree = level.tree
         if built is not None:
             # the chain the commit will use (``tree.chain(view, row, next_commit)``): its
@@ -1917,9 +1919,12 @@ class Tracker:
             >>> tracker._leaves_to_smaller(level, 0, [level])
             False
         """
-        last = self.last_commit
-        if last is None or not any(lv.eps < level.eps and lv.tree_seq < last[2]
-                                   for lv in covering if lv is not level):
+        at = self._commit_at
+        if at is None:
+            return False
+        last_seq = _COMMIT_AT.unpack(at)[2]
+        if not any(lv.eps < level.eps and lv.tree_seq < last_seq
+                   for lv in covering if lv is not level):
             return False
         if self._beyond_lag(newest, t, 1):
             return False
@@ -2016,7 +2021,8 @@ class Tracker:
         view = self._view
         first = chain[0]
         path: list[int] = []
-        last = self.last_commit
+        at = self._commit_at
+        last = None if at is None else _COMMIT_AT.unpack(at)
         starts = last is None  # a new stretch: nothing committed before it joins on
         laps = self.settings.speed_laps and self.lap_v is not None
         if laps and not (before is not None and last is not None and before.seq == last[2]
@@ -2107,7 +2113,7 @@ class Tracker:
             fixes = self._fill_skipped(chain, before, math.inf if settle_all else top.t, fixes)
         events.append(Commit(self.vehicle, tuple(fixes), tuple(path)))
         self.next_commit = top.seq + 1
-        self.last_commit = (top.seg, top.pos, top.seq, top.t)
+        self._commit_at = _COMMIT_AT.pack(top.seg, top.pos, top.seq, top.t)
         if self.lap_v:
             # the speeds a later commit can still read: from the fix committed last on
             self.lap_v = {t: v for t, v in self.lap_v.items() if t >= top.t}
