@@ -621,7 +621,8 @@ class Tracker:
         came_speed = self.speed  # of the step into prev (reverse_turns reads it)
         stood = self.speed is not None and self.speed < STOOD_MPS
         if s.stop_turns:
-            lately = self._stood_lately(fix, prev[0] if prev is not None else None)
+            lately = self._stood_lately(fix, prev[0] if prev is not None else None,
+                                        self.last)
             stood = stood or lately
         if prev is not None and fix.t > prev[0]:
             self.speed = math.hypot(fix.x - prev[1], fix.y - prev[2]) / (fix.t - prev[0])
@@ -1739,7 +1740,8 @@ class Tracker:
                     heapq.heappush(heap, (dist + view.slen[o], o))
         return False
 
-    def _stood_lately(self, fix: Fix, prev_t: float | None) -> bool:
+    def _stood_lately(self, fix: Fix, prev_t: float | None,
+                      here: tuple[float, float, float] | None = None) -> bool:
         """Whether the vehicle stood still until at most ``STAND_AFTER_S`` before ``prev_t``.
 
         The evidence of a stand for ``MatchSettings.stop_turns`` beyond the last step's
@@ -1751,7 +1753,8 @@ class Tracker:
         step says nothing of the stand; the run does. Kept in two scalars
         (``stand_from``, ``stood_t``, serialised) because the fixes of a stand may be
         committed, and their times dropped, before the vehicle sets off. Then updates
-        them with ``fix``.
+        them with ``fix``; ``here``: ``(fix.t, fix.x, fix.y)`` as the caller holds it
+        (``last``), kept as it is when a run starts at ``fix``.
 
         Example (fixes 1 s apart within 1 m for 11 s, then at 10 m/s: a stand from the
         fix at 10 s, answered from the step after it until 10 s after the stand):
@@ -1770,13 +1773,9 @@ class Tracker:
         anchor = self.stand_from
         if anchor is None or math.hypot(fix.x - anchor[1], fix.y - anchor[2]) > (
                 STAND_SIGMAS * self.settings.sigma_m):
-            anchor = self.last
-            if anchor is None or not (
-                    anchor[0] is fix.t and anchor[1] is fix.x and anchor[2] is fix.y):
-                anchor = (fix.t, fix.x, fix.y)
-            # (a moving vehicle's run starts at every fix: the tuple of ``last``, which
-            # _accept made of the same floats just before, not a second one: 64 bytes)
-            self.stand_from = anchor
+            # (a moving vehicle's run starts at every fix: the caller's tuple of it,
+            # ``last``, rather than a second one: 64 bytes)
+            self.stand_from = anchor = here if here is not None else (fix.t, fix.x, fix.y)
         if fix.t - anchor[0] >= STAND_S:
             self.stood_t = fix.t
         return stood
