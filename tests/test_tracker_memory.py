@@ -177,24 +177,3 @@ def test_stand_run_of_a_moving_vehicle_shares_the_last_fix_tuple() -> None:
             assert anchor == (1020.0, 500.0, 0.0)
     assert shared == 21
 
-
-def test_last_commit_kept_packed_reads_back_bit_for_bit() -> None:
-    """The last commit's state, kept packed, reads back as the same four numbers (bit
-    for bit, a sequence number beyond 32 bits too), and after a drive it is the state
-    the last commit ended at."""
-    net, fixes = noisy_drive(seed=3)
-    tracker = Tracker(net, "v1")
-    assert tracker.last_commit is None
-    state = (70_000, 0.1 + 0.2, 2**40 + 3, 1_764_576_000.0 + 1 / 3)
-    tracker.last_commit = state
-    back = tracker.last_commit
-    assert back == state and [type(v) for v in back] == [int, float, int, float]
-    assert back[1].hex() == state[1].hex() and back[3].hex() == state[3].hex()
-    tracker.last_commit = None
-    assert tracker.last_commit is None
-    events = run(tracker, fixes[:60], flush=False)
-    commit = [e for e in events if e.kind == "commit"][-1]
-    seg, _, seq, t = tracker.last_commit
-    assert seq == tracker.next_commit - 1
-    assert t == commit.fixes[-1].t  # the newest fix the last commit settled
-    assert 0 <= seg < net.n_segments

@@ -135,8 +135,6 @@ _V2_KEPT = [0, 1, 4, 5]
 # the Assignment itself, with its own floats and segment number, kept 0.33 KB a driven
 # vehicle, bench/memory.py step 6; packing it costs about 0.1 µs a fix)
 _SAID = struct.Struct("<dqddddqd")
-# Tracker.last_commit, packed: seg, pos, seq, t
-_COMMIT_AT = struct.Struct("<qdqd")
 JUMP_TRUST_AFTER = 3
 # A road vehicle changes speed by at most about 3 m/s per second (ordinary braking and
 # acceleration; common practice, from memory).
@@ -345,11 +343,12 @@ class Tracker:
 
     # slots: a service holds one tracker per vehicle, and an instance dict costs more
     # than a small candidate tree
-    __slots__ = ("_commit_at", "_held", "_view", "agreed_seq", "along_last", "before", "buffer",
-                 "fix_n", "fix_seq0", "fix_xy", "jumps", "lap_due", "lap_v", "last",
-                 "last_released_t", "last_seg", "last_v", "levels", "network", "next_commit",
-                 "rev_t", "said", "seq", "settings", "skipped", "speed", "stand_from", "stand_seq",
-                 "step_dir", "stood_t", "times", "times0", "vehicle")
+    __slots__ = ("_held", "_view", "agreed_seq", "along_last", "before", "buffer", "fix_n",
+                 "fix_seq0", "fix_xy", "jumps", "lap_due", "lap_v", "last", "last_commit",
+                 "last_released_t", "last_seg", "last_v", "levels",
+                 "network", "next_commit", "rev_t", "said", "seq", "settings", "skipped",
+                 "speed", "stand_from", "stand_seq", "step_dir", "stood_t", "times", "times0",
+                 "vehicle")
 
     def __init__(
         self, network: RoadNetwork, vehicle: str, settings: MatchSettings | None = None
@@ -377,9 +376,7 @@ class Tracker:
         self.times: array[float] = array("d")
         self.times0 = 1
         self.next_commit = 1
-        # the state the last commit ended at: seg, pos, seq, t packed (_COMMIT_AT; read
-        # as last_commit)
-        self._commit_at: bytes | None = None
+        self.last_commit: tuple[int, float, int, float] | None = None  # seg, pos, seq, t
         self.skipped: tuple[float, ...] = ()
         self.last_seg = -1  # segment of the last assignment (breaks exact ties)
         # positions of the accepted fixes from fix_seq0 on (row i: fix fix_seq0 + i; the
@@ -433,21 +430,6 @@ class Tracker:
         i = seq - self.times0
         times = self.times
         return times[i] if 0 <= i < len(times) else None
-
-    @property
-    def last_commit(self) -> tuple[int, float, int, float] | None:
-        """The state the last commit ended at: ``(seg, pos, seq, t)``, None before the first.
-
-        Kept packed (65 bytes; a tuple of its own four numbers was 0.15-0.18 KB a
-        vehicle, ``bench/memory.py`` step 6); the tracker's own readers (a few a
-        commit) unpack ``_commit_at`` where they need it.
-        """
-        at = self._commit_at
-        return None if at is None else _COMMIT_AT.unpack(at)
-
-    @last_commit.setter
-    def last_commit(self, state: tuple[int, float, int, float] | None) -> None:
-        self._commit_at = None if state is None else _COMMIT_AT.pack(*state)
 
     @property
     def last_time(self) -> float | None:
@@ -1419,7 +1401,7 @@ class Tracker:
                     top = _CALLS.cut_and_check(tree.ti, self.next_commit, newest, False)
                 if top < 0:
                     continue
-                if s.start_roots and self._commit_at is None \
+                if s.start_roots and self.last_commit is None \
                         and self._start_roots(level, dt):
                     # the tree now grows from another root: is a commit still due?
                     tree = level.tree
@@ -1434,7 +1416,7 @@ class Tracker:
                 if waits:
                     continue
                 built = tree.chain(self._view, top, self.next_commit)
-                if (hold_newest and s.start_way_out and self._commit_at is None
+                if (hold_newest and s.start_way_out and self.last_commit is None
                         and self._way_out_pending(tree, built[0])):
                     break  # the log's first commit waits for the spike test (see there)
                 if self._defers(level, top, covering, built):
@@ -1460,7 +1442,7 @@ class Tracker:
                 too_many = False  # a stand: only the time bound forces (see _standing)
             if (too_many or too_old) and covering:
                 level = covering[0]
-                if s.start_roots and self._commit_at is None:
+                if s.start_roots and self.last_commit is None:
                     self._start_roots(level, dt)
                 tree = level.tree
                 keep = min(max(self._lag_target(seq, t), lag_first), newest)
@@ -1855,8 +1837,8 @@ class Tracker:
             >>> tracker._defers(tracker.levels[0], 0, tracker.levels)
             False
         """
-        at = self._commit_at
-        if at is None:
+        last = self.last_commit
+        if last is None:
             return False
         own = level.tree_seq
         for lv in covering:
@@ -1864,7 +1846,6 @@ class Tracker:
                 break
         else:
             return False
-        last = _COMMIT_AT.unpack(at)
         tree = level.tree
         if built is not None:
             # the chain the commit will use (``tree.chain(view, row, next_commit)``): its
@@ -1920,12 +1901,9 @@ class Tracker:
             >>> tracker._leaves_to_smaller(level, 0, [level])
             False
         """
-        at = self._commit_at
-        if at is None:
-            return False
-        last_seq = _COMMIT_AT.unpack(at)[2]
-        if not any(lv.eps < level.eps and lv.tree_seq < last_seq
-                   for lv in covering if lv is not level):
+        last = self.last_commit
+        if last is None or not any(lv.eps < level.eps and lv.tree_seq < last[2]
+                                   for lv in covering if lv is not level):
             return False
         if self._beyond_lag(newest, t, 1):
             return False
@@ -2022,8 +2000,7 @@ class Tracker:
         view = self._view
         first = chain[0]
         path: list[int] = []
-        at = self._commit_at
-        last = None if at is None else _COMMIT_AT.unpack(at)
+        last = self.last_commit
         starts = last is None  # a new stretch: nothing committed before it joins on
         laps = self.settings.speed_laps and self.lap_v is not None
         if laps and not (before is not None and last is not None and before.seq == last[2]
@@ -2114,7 +2091,7 @@ class Tracker:
             fixes = self._fill_skipped(chain, before, math.inf if settle_all else top.t, fixes)
         events.append(Commit(self.vehicle, tuple(fixes), tuple(path)))
         self.next_commit = top.seq + 1
-        self._commit_at = _COMMIT_AT.pack(top.seg, top.pos, top.seq, top.t)
+        self.last_commit = (top.seg, top.pos, top.seq, top.t)
         if self.lap_v:
             # the speeds a later commit can still read: from the fix committed last on
             self.lap_v = {t: v for t, v in self.lap_v.items() if t >= top.t}
@@ -3802,8 +3779,8 @@ class Tracker:
         slen = view.slen
         prev = None if starts else self.along_last
         local = list(path)
-        if prev is not None and self._commit_at is not None:
-            top_seg = _COMMIT_AT.unpack(self._commit_at)[0]
+        if prev is not None and self.last_commit is not None:
+            top_seg = self.last_commit[0]
             local[:0] = [prev[0]] if prev[0] == top_seg else [prev[0], top_seg]
         else:
             prev = None
@@ -4131,6 +4108,9 @@ def _share_numbers(tracker: Tracker) -> None:
         t.last = (fl(t.last[0]), t.last[1], t.last[2])
     if t.last_released_t is not None:
         t.last_released_t = fl(t.last_released_t)
+    if t.last_commit is not None:
+        seg, pos, seq, when = t.last_commit
+        t.last_commit = (it(seg), pos, it(seq), fl(when))
     if t.stand_from is not None:
         if t.last is not None and _same(t.stand_from, t.last):
             t.stand_from = t.last  # a run of fixes that starts at the newest one
