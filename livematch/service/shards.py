@@ -634,14 +634,23 @@ class LeaseManager:
         dropped after ``store.idle_ttl_s`` idle, so the count follows the fleet with a
         delay of one checkpoint interval.
         """
+        values = await self._each_shard(lambda pipe, shard: pipe.scard(self.key(shard, "vehicles")),
+                                        "counting the shards' vehicles")
+        return [int(v) for v in values]
+
+    async def _each_shard(self, command: Callable[[Any, int], object], what: str) -> list[Any]:
+        """One command per shard in one pipeline round trip; the replies in shard order.
+
+        ``command(pipe, shard)`` queues the shard's command; ``what`` names the step in
+        the :class:`StoreError` raised when Redis cannot be reached.
+        """
         try:
             async with self.client.pipeline(transaction=False) as pipe:
                 for shard in range(self.n_shards):
-                    pipe.scard(self.key(shard, "vehicles"))
-                values = await pipe.execute()
+                    command(pipe, shard)
+                return list(await pipe.execute())
         except (RedisError, OSError) as exc:
-            raise self._fail("counting the shards' vehicles", exc) from exc
-        return [int(v) for v in values]
+            raise self._fail(what, exc) from exc
 
     async def read_load(self) -> tuple[int, list[int] | None]:
         """The group's load snapshot: (version, per-shard weights); (0, None) when none.
@@ -678,13 +687,8 @@ class LeaseManager:
 
     async def owners(self) -> dict[int, str | None]:
         """Every shard's lease value (``worker-token:fence``), None when free."""
-        try:
-            async with self.client.pipeline(transaction=False) as pipe:
-                for shard in range(self.n_shards):
-                    pipe.get(self.key(shard, "lease"))
-                values = await pipe.execute()
-        except (RedisError, OSError) as exc:
-            raise self._fail("reading the leases", exc) from exc
+        values = await self._each_shard(lambda pipe, shard: pipe.get(self.key(shard, "lease")),
+                                        "reading the leases")
         return {s: (v.decode() if isinstance(v, bytes) else v) for s, v in enumerate(values)}
 
     async def acquire(self, shard: int) -> int | None:
