@@ -130,11 +130,10 @@ _V5_ROW_F = 3
 # int32 columns of a tree row up to LMT4 (seg, seq, parent, via_start, via_len)
 _V4_ROW_I = 5
 _V2_KEPT = [0, 1, 4, 5]
-# Tracker.said of a restored tracker: the fields of the newest live answer after its
-# vehicle (t, segment, offset_m, x, y, eps_m, window_fixes, window_s) packed into one bytes
-# object (97 bytes; as an Assignment with its own floats and segment number about 0.28 KB;
-# a driven tracker keeps the Assignment it made for the fix: packing it every fix cost
-# more than the memory is worth while the vehicle is moving)
+# Tracker.said: the fields of the newest live answer after its vehicle (t, segment,
+# offset_m, x, y, eps_m, window_fixes, window_s) packed into one bytes object (97 bytes;
+# the Assignment itself, with its own floats and segment number, kept 0.33 KB a driven
+# vehicle, bench/memory.py step 6; packing it costs about 0.1 µs a fix)
 _SAID = struct.Struct("<dqddddqd")
 JUMP_TRUST_AFTER = 3
 # A road vehicle changes speed by at most about 3 m/s per second (ordinary braking and
@@ -400,9 +399,9 @@ class Tracker:
         # with lone_reverse_turns: the time of the fix at which the fixes last went back
         # the way they came (Tracker._lone_reversal), else None
         self.rev_t: float | None = None
-        # with hold_filtered: the newest live answer, repeated for a filtered fix (after
-        # a restore its fields after the vehicle, packed: _SAID)
-        self.said: Assignment | bytes | None = None
+        # with hold_filtered: the newest live answer, repeated for a filtered fix (its
+        # fields after the vehicle, packed: _SAID)
+        self.said: bytes | None = None
         # what _held_point found (held point and first fix -> (fix asked at, all within
         # eps)); a cache, not serialised, dropped when the vehicle does not stand
         self._held: dict[tuple[int, float, float, float], tuple[int, bool]] | None = None
@@ -565,8 +564,7 @@ class Tracker:
         said = self.said
         if said is None:
             return
-        said_t, seg, offset_m, x, y, eps_m, window_fixes, window_s = (
-            _SAID.unpack(said) if isinstance(said, bytes) else _said_fields(said))
+        said_t, seg, offset_m, x, y, eps_m, window_fixes, window_s = _SAID.unpack(said)
         if not 0.0 < t - said_t <= self.settings.gap_s:
             return
         events.append(HeldAssignment(self.vehicle, t, seg, offset_m, x, y, eps_m, window_fixes,
@@ -663,14 +661,15 @@ class Tracker:
             else:
                 seg, pos, x, y = held
                 self.last_seg = tree.seg_of(best)
-            said = Assignment(
-                self.vehicle, fix.t, seg, pos * self._view.slen[seg],
-                x, y, deciding.eps, seq - deciding.cert_seq + 1,
-                fix.t - deciding.cert_t,
-            )
-            events.append(said)
+            t = fix.t
+            offset_m = pos * self._view.slen[seg]
+            window_fixes = seq - deciding.cert_seq + 1
+            window_s = t - deciding.cert_t
+            events.append(Assignment(self.vehicle, t, seg, offset_m, x, y, deciding.eps,
+                                     window_fixes, window_s))
             if s.hold_filtered:
-                self.said = said
+                self.said = _SAID.pack(t, seg, offset_m, x, y, deciding.eps, window_fixes,
+                                       window_s)
         self._settle(seq, fix.t, dt, salvage, events, hold_newest=before is not None,
                      tops=tops, stood=stood)
         if prev is not None and fix.t - prev[0] >= SPARSE_S:
@@ -1640,8 +1639,7 @@ class Tracker:
         if (prev is None or said is None or not s.lone_reverse_turns
                 or s.reverse_turns or s.reverse_turns_near):
             return self.last_seg
-        said_t, seg = (_SAID.unpack(said) if isinstance(said, bytes)
-                       else _said_fields(said))[:2]
+        said_t, seg = _SAID.unpack(said)[:2]
         return int(seg) if said_t == prev[0] else self.last_seg
 
     def _logged_step_dir(self) -> float | None:
@@ -3944,8 +3942,7 @@ class Tracker:
         if self.said is not None:  # only with hold_filtered
             # t, segment, offset_m, x, y, eps_m, window_fixes, window_s
             said = self.said
-            state["said"] = list(_SAID.unpack(said) if isinstance(said, bytes)
-                                 else _said_fields(said))
+            state["said"] = list(_SAID.unpack(said))
         header = json.dumps(state, separators=(",", ":")).encode()
         body = b"".join((len(header).to_bytes(4, "little"), header, *arrays))
         if compress:
@@ -4070,11 +4067,6 @@ class Tracker:
             tracker.said = _SAID.pack(*said)
         _share_numbers(tracker)
         return tracker
-
-
-def _said_fields(a: Assignment) -> tuple[float, int, float, float, float, float, int, float]:
-    """The fields of ``a`` after its vehicle, as :data:`_SAID` packs them."""
-    return (a.t, a.segment, a.offset_m, a.x, a.y, a.eps_m, a.window_fixes, a.window_s)
 
 
 def _share_numbers(tracker: Tracker) -> None:
