@@ -95,3 +95,59 @@ def test_trackers_with_other_settings_interleaved_match_as_alone() -> None:
         events.extend(tracker.flush())
     assert together == alone
     assert alone[0] != alone[1]  # the settings do act on this drive
+
+
+def test_fix_log_holds_the_accepted_fixes_with_bounded_room() -> None:
+    """After every fix the fix log's rows in use are the accepted fixes' own positions
+    (the input), from at most the fix before the last commit on; its room is never more
+    than half the rows in use again, or FIX_LOG_ROOM rows."""
+    from livematch.core.tracker import FIX_LOG_ROOM
+
+    net, fixes = noisy_drive(seed=5, n_legs=20)
+    tracker = Tracker(net, "v1", MatchSettings(max_lag_fixes=20))
+    accepted: dict[int, tuple[float, float]] = {}  # seq -> the input fix's position
+    for fix in fixes:
+        seq = tracker.seq
+        tracker.update(fix)
+        if tracker.seq == seq + 1:
+            accepted[tracker.seq] = (fix.x, fix.y)
+        n, seq0, log = tracker.fix_n, tracker.fix_seq0, tracker.fix_xy
+        assert seq0 + n - 1 == tracker.seq
+        assert seq0 <= max(1, tracker.next_commit - 1)
+        for k in range(seq0, tracker.seq + 1):
+            if k in accepted:  # (a spike-dropped fix's number goes to the next fix)
+                assert tuple(log[k - seq0].tolist()) == accepted[k]
+        # sized when it last filled up, for at most the rows in use now (until session
+        # 23 twice the rows kept: 40 rows for 20)
+        assert len(log) <= n + max(FIX_LOG_ROOM, n // 2)
+    assert len(accepted) > 300
+
+
+def test_fix_log_room_follows_the_rows_kept() -> None:
+    """The fix log on its own, against a plain list of the positions logged: with the
+    last commit lagging 0-40 fixes behind, the rows in use are always the positions from
+    at most the fix before that commit on, in order, and the log is never longer than
+    the rows in use plus half as many again (at least FIX_LOG_ROOM)."""
+    import numpy as np
+
+    from livematch.core.tracker import FIX_LOG_ROOM
+
+    net, _ = noisy_drive(seed=1)
+    tracker = Tracker(net, "v1")
+    rng = np.random.default_rng(4)
+    logged: list[tuple[float, float]] = []
+    lag = 0
+    for seq in range(1, 600):
+        if seq % 25 == 0:
+            lag = int(rng.integers(0, 41))
+        tracker.seq = seq
+        tracker.next_commit = max(tracker.next_commit, seq - lag)  # commits only advance
+        xy = (float(rng.normal(0.0, 100.0)), float(rng.normal(0.0, 100.0)))
+        tracker._log_fix(*xy)
+        logged.append(xy)
+        n, seq0, log = tracker.fix_n, tracker.fix_seq0, tracker.fix_xy
+        assert seq0 + n - 1 == seq
+        assert seq0 <= max(1, tracker.next_commit - 1)
+        assert [tuple(r) for r in log[:n].tolist()] == logged[seq0 - 1:]
+        # until session 23 the room was as many rows again as were kept (40 for 20)
+        assert len(log) <= n + max(FIX_LOG_ROOM, n // 2)

@@ -139,6 +139,8 @@ JUMP_TRUST_AFTER = 3
 # A road vehicle changes speed by at most about 3 m/s per second (ordinary braking and
 # acceleration; common practice, from memory).
 ACCEL_MPS2 = 3.0
+# The fix log's room (Tracker._log_fix): rows left free when it fills up, at least.
+FIX_LOG_ROOM = 8
 # From this many seconds between fixes on, the trees are kept tight between fixes.
 SPARSE_S = 5.0
 # A step slower than this (m/s) means the vehicle stood at its end: at 15 s between
@@ -924,13 +926,16 @@ class Tracker:
         n = self.fix_n
         if n == len(self.fix_xy):
             # full: drop what no live score reads any more (older than the last commit),
-            # then leave room for as many rows again as are kept
+            # then leave room for half as many rows again as are kept, at least
+            # FIX_LOG_ROOM (room for as many again was most of the log's bytes at 1 Hz:
+            # bench/memory.py step 6)
             drop = min(n, max(0, self.next_commit - 1 - self.fix_seq0))
             kept = self.fix_xy[drop:n]
-            size = max(8, 2 * len(kept))
-            if drop and size == n:
-                # the same size again (the usual case): the kept rows moved down in place,
-                # no new array (numpy copies overlapping slices as if through a buffer)
+            size = len(kept) + max(FIX_LOG_ROOM, len(kept) // 2)
+            if drop and size - FIX_LOG_ROOM // 2 <= n <= size:
+                # about that size already (the usual case): the kept rows moved down in
+                # place, no new array (numpy copies overlapping slices as if through a
+                # buffer)
                 self.fix_xy[:n - drop] = kept
             else:
                 self.fix_xy = np.empty((size, 2))
