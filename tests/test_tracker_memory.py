@@ -99,8 +99,9 @@ def test_trackers_with_other_settings_interleaved_match_as_alone() -> None:
 
 def test_fix_log_holds_the_accepted_fixes_with_bounded_room() -> None:
     """After every fix the fix log's rows in use are the accepted fixes' own positions
-    (the input), from at most the fix before the last commit on; its room is never more
-    than half the rows in use again, or FIX_LOG_ROOM rows."""
+    (the input), from at most the fix before the last commit on; its length is at most
+    the larger of FIX_LOG_ROOM and the rows in use plus half as many again (at least
+    FIX_LOG_ROOM // 2 more)."""
     from livematch.core.tracker import FIX_LOG_ROOM
 
     net, fixes = noisy_drive(seed=5, n_legs=20)
@@ -119,15 +120,16 @@ def test_fix_log_holds_the_accepted_fixes_with_bounded_room() -> None:
                 assert tuple(log[k - seq0].tolist()) == accepted[k]
         # sized when it last filled up, for at most the rows in use now (until session
         # 23 twice the rows kept: 40 rows for 20)
-        assert len(log) <= n + max(FIX_LOG_ROOM, n // 2)
+        assert len(log) <= max(FIX_LOG_ROOM, n + max(FIX_LOG_ROOM // 2, n // 2))
     assert len(accepted) > 300
 
 
 def test_fix_log_room_follows_the_rows_kept() -> None:
     """The fix log on its own, against a plain list of the positions logged: with the
     last commit lagging 0-40 fixes behind, the rows in use are always the positions from
-    at most the fix before that commit on, in order, and the log is never longer than
-    the rows in use plus half as many again (at least FIX_LOG_ROOM)."""
+    at most the fix before that commit on, in order, and the log's length is at most the
+    larger of FIX_LOG_ROOM and the rows in use plus half as many again (at least
+    FIX_LOG_ROOM // 2 more)."""
     import numpy as np
 
     from livematch.core.tracker import FIX_LOG_ROOM
@@ -150,4 +152,4 @@ def test_fix_log_room_follows_the_rows_kept() -> None:
         assert seq0 <= max(1, tracker.next_commit - 1)
         assert [tuple(r) for r in log[:n].tolist()] == logged[seq0 - 1:]
         # until session 23 the room was as many rows again as were kept (40 for 20)
-        assert len(log) <= n + max(FIX_LOG_ROOM, n // 2)
+        assert len(log) <= max(FIX_LOG_ROOM, n + max(FIX_LOG_ROOM // 2, n // 2))

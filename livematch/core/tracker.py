@@ -139,7 +139,8 @@ JUMP_TRUST_AFTER = 3
 # A road vehicle changes speed by at most about 3 m/s per second (ordinary braking and
 # acceleration; common practice, from memory).
 ACCEL_MPS2 = 3.0
-# The fix log's room (Tracker._log_fix): rows left free when it fills up, at least.
+# The fix log's least size (Tracker._log_fix); it leaves half that many rows free at
+# least when it fills up.
 FIX_LOG_ROOM = 8
 # From this many seconds between fixes on, the trees are kept tight between fixes.
 SPARSE_S = 5.0
@@ -926,13 +927,14 @@ class Tracker:
         n = self.fix_n
         if n == len(self.fix_xy):
             # full: drop what no live score reads any more (older than the last commit),
-            # then leave room for half as many rows again as are kept, at least
-            # FIX_LOG_ROOM (room for as many again was most of the log's bytes at 1 Hz:
-            # bench/memory.py step 6)
+            # then leave room for half as many rows again as are kept (at least half
+            # FIX_LOG_ROOM; FIX_LOG_ROOM rows at least: as many again, the room until
+            # session 23, was most of the log's bytes at 1 Hz, bench/memory.py step 6)
             drop = min(n, max(0, self.next_commit - 1 - self.fix_seq0))
             kept = self.fix_xy[drop:n]
-            size = len(kept) + max(FIX_LOG_ROOM, len(kept) // 2)
-            if drop and size - FIX_LOG_ROOM // 2 <= n <= size:
+            least = FIX_LOG_ROOM // 2
+            size = max(FIX_LOG_ROOM, len(kept) + max(least, len(kept) // 2))
+            if drop and len(kept) + least <= n <= size:
                 # about that size already (the usual case): the kept rows moved down in
                 # place, no new array (numpy copies overlapping slices as if through a
                 # buffer)
