@@ -71,6 +71,10 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
+# The breakdown wraps methods of the tracker and the monitors: it times them from source
+# (a compiled class cannot be wrapped), so its stages are those of the pure build.
+os.environ.setdefault("LIVEMATCH_PURE_PYTHON", "1")
+
 import shapely
 from _drives import load_extract, simulate_drives
 from speed import pipeline_setup

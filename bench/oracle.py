@@ -42,6 +42,7 @@ import bisect
 import itertools
 import json
 import math
+import os
 import sys
 import time
 from collections import Counter
@@ -54,6 +55,9 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "bench"))
+# --causes wraps Tracker._commit_chain: the tracker must be the one from source (a
+# compiled class cannot be patched; outputs are the same either way)
+os.environ.setdefault("LIVEMATCH_PURE_PYTHON", "1")
 
 import accuracy as acc  # noqa: E402
 

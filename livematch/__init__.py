@@ -5,9 +5,22 @@ metres::
 
     from livematch import frechet_decide, frechet_distance
     from livematch import discrete_frechet_distance, hausdorff_distance
+
+The per-fix modules run compiled when the install compiled them (mypyc, ``setup.py``).
+With ``LIVEMATCH_PURE_PYTHON=1`` in the environment of a process, that process imports
+every livematch module from its ``.py`` source instead (same outputs, slower): for a
+debugger, a profiler that reads Python frames, or a test that replaces a function
+inside a compiled module (``livematch.native``).
 """
 
 from __future__ import annotations
+
+import os
+
+if os.environ.get("LIVEMATCH_PURE_PYTHON", "") not in ("", "0"):
+    from livematch.native import prefer_source
+
+    prefer_source()
 
 from livematch.core.frechet import (
     discrete_frechet_distance,

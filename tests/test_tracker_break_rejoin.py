@@ -9,6 +9,7 @@ segment (``shapely`` geometry, not the project's).
 
 from __future__ import annotations
 
+import pytest
 from shapely.geometry import LineString, MultiLineString
 from shapely.ops import linemerge
 
@@ -51,6 +52,7 @@ def commit_after_lost_join(rejoin: bool) -> tuple[RoadNetwork, Commit]:
     return net, commit
 
 
+@pytest.mark.pure_python
 def test_rejoin_goes_on_from_the_trees_own_answer() -> None:
     """On: the path is the tree's route from its answer at fix 4 (s0) into fix 5 (s1, s2),
     one line from x = 100 to x = 300 by shapely; the fix's answer is the same either way."""
@@ -68,6 +70,7 @@ def test_rejoin_goes_on_from_the_trees_own_answer() -> None:
     assert merged.coords[0] == (100.0, 0.0) and merged.coords[-1] == (300.0, 0.0)
 
 
+@pytest.mark.pure_python
 def test_rejoin_needs_the_trees_answer_for_that_fix() -> None:
     """A tree with no answer for the last committed fix (its node before is older) breaks
     as before."""

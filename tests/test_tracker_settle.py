@@ -71,6 +71,7 @@ def test_tracker_steps_through_tiny_kernel_buffers_alike(name: str) -> None:
     assert events == roomy
 
 
+@pytest.mark.pure_python
 @pytest.mark.parametrize("name", ["test", "Helsinki"])
 def test_defers_with_the_commit_chain_answers_as_without(
         name: str, monkeypatch: pytest.MonkeyPatch) -> None:

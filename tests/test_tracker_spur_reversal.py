@@ -58,6 +58,7 @@ def _added_m(net: RoadNetwork, path: list[int]) -> float:
     return added
 
 
+@pytest.mark.pure_python
 def test_a_reversal_in_a_spur_opens_no_turn_on_another_branch(
         monkeypatch: pytest.MonkeyPatch) -> None:
     """With the rule on, the dead-end check searches on from the live answer at J (the

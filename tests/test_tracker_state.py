@@ -178,6 +178,7 @@ def test_state_restore_with_held_fix_and_pending_filtered_fix() -> None:
     assert straight.buffer == () and straight.skipped == ()
 
 
+@pytest.mark.pure_python
 def test_state_restore_shares_equal_numbers() -> None:
     """A restored tracker holds one object per distinct fix time and sequence number, as
     a tracker driven fix by fix does (the JSON header gives each occurrence its own)."""

@@ -1,0 +1,124 @@
+"""Which of livematch's modules run compiled (mypyc), and whether any is stale.
+
+``setup.py`` compiles the per-fix modules with mypyc and writes the list, with a hash of
+each module's source as compiled, to ``livematch/core/_native_build.json``. A compiled
+module is loaded instead of its ``.py`` whatever the ``.py`` says now, so an edited
+module in a checkout keeps running the code it was compiled from until it is rebuilt:
+:func:`stale` names such modules, the test suite refuses to run with any, and
+``python -m livematch.native`` prints the state (exit status 1 when stale)::
+
+    $ .venv/bin/python -m livematch.native
+    compiled (mypyc): 14 modules, none stale
+
+Rebuild after editing a compiled module: ``.venv/bin/pip install -e .`` (what
+``scripts/test`` does) or, in a checkout that is not the installed one,
+``scripts/build-native``.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import importlib
+import importlib.abc
+import importlib.machinery
+import importlib.util
+import json
+import sys
+from collections.abc import Sequence
+from pathlib import Path
+from types import ModuleType
+
+_PACKAGE = Path(__file__).resolve().parent
+#: Written by setup.py when it compiles: {"modules": {dotted name: sha256 of the source}}.
+MANIFEST = _PACKAGE / "core" / "_native_build.json"
+
+
+def source_hash(path: Path) -> str:
+    """The sha256 of a module's source file (what the manifest records at build time)."""
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def built() -> dict[str, str]:
+    """The modules the last build compiled, with their sources' hashes (empty: pure)."""
+    try:
+        data = json.loads(MANIFEST.read_text())
+    except FileNotFoundError:
+        return {}
+    modules = data.get("modules", {})
+    return {str(k): str(v) for k, v in modules.items()}
+
+
+def compiled() -> list[str]:
+    """The modules of the last build that are loaded from a compiled extension."""
+    out = []
+    for name in built():
+        module = importlib.import_module(name)
+        origin = getattr(module, "__file__", None) or ""
+        if origin.endswith(tuple(importlib.machinery.EXTENSION_SUFFIXES)):
+            out.append(name)
+    return out
+
+
+def stale() -> list[str]:
+    """Compiled modules whose ``.py`` has changed since they were compiled.
+
+    Each would run the old code: rebuild (module docstring). Pure modules are never stale.
+    """
+    out = []
+    for name, digest in built().items():
+        path = _PACKAGE.parent / (name.replace(".", "/") + ".py")
+        if not path.exists() or source_hash(path) != digest:
+            out.append(name)
+    return out
+
+
+class _SourceFirst(importlib.abc.MetaPathFinder):
+    """Find ``livematch.*`` modules as their ``.py`` source even where a compiled one lies."""
+
+    def find_spec(self, fullname: str, path: Sequence[str] | None,
+                  target: ModuleType | None = None) -> importlib.machinery.ModuleSpec | None:
+        """The source file's spec for a livematch module (None: not ours, or a package)."""
+        if not fullname.startswith("livematch.") or not path:
+            return None
+        leaf = fullname.rpartition(".")[2]
+        for folder in path:
+            source = Path(folder) / (leaf + ".py")
+            if source.is_file():
+                return importlib.util.spec_from_file_location(fullname, source)
+            if (Path(folder) / leaf / "__init__.py").is_file():
+                return None  # a package: the usual finders
+        return None
+
+
+def prefer_source() -> None:
+    """From now on, import livematch's modules from their ``.py`` files (pure Python).
+
+    Called by ``livematch/__init__.py`` when ``LIVEMATCH_PURE_PYTHON`` is set, before any
+    compiled module is imported; modules imported already stay as they are.
+    """
+    if not any(isinstance(f, _SourceFirst) for f in sys.meta_path):
+        sys.meta_path.insert(0, _SourceFirst())
+
+
+def pure_process() -> bool:
+    """Whether this process imports livematch from source (``LIVEMATCH_PURE_PYTHON``)."""
+    return any(isinstance(f, _SourceFirst) for f in sys.meta_path)
+
+
+def main() -> int:
+    """Print whether livematch runs compiled, and which modules are stale."""
+    names = compiled()
+    old = stale()
+    if pure_process():
+        print("pure Python (LIVEMATCH_PURE_PYTHON is set"
+              + (f"; the install has {len(built())} compiled modules)" if built() else ")"))
+    elif not names:
+        print("pure Python (no compiled modules)")
+    else:
+        print(f"compiled (mypyc): {len(names)} modules, "
+              + (f"stale: {', '.join(old)}" if old else "none stale"))
+    return 1 if old else 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

