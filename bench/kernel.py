@@ -57,6 +57,7 @@ from livematch.core.settings import MatchSettings
 from livematch.core.sweep import Node, StepContext, advance, sweep_step
 from livematch.core.tracker import _CALLS
 from livematch.core.view import view_of
+from livematch.native import describe
 
 ROOT = Path(__file__).resolve().parent.parent
 EPS_LEVELS = (15.0, 30.0, 60.0)
@@ -231,7 +232,8 @@ def main(argv: list[str] | None = None) -> int:
             steps = [st for pts in drives for st in record_steps(network, pts, eps, settings)]
             measure(steps[:50])  # warm-up: compile or load the kernels, caches
             rows.append({"extract": name, "eps": eps, **measure(steps)})
-    machine = f"{platform.machine()}, Python {platform.python_version()}, numba {numba.__version__}"
+    machine = (f"{platform.machine()}, Python {platform.python_version()}, "
+               f"numba {numba.__version__}, {describe()}")
     lines = [
         "# Sweep step: pure-Python reference against the compiled kernel (1 Hz drives)",
         "",

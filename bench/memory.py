@@ -113,6 +113,13 @@ from typing import Any
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
+def describe() -> str:
+    """How livematch runs here (compiled or pure), for the report's header."""
+    from livematch.native import describe as native_describe
+
+    return native_describe()
+
+
 SNAPSHOT_FROM = 60  # first snapshot after this many fixes (a live vehicle, not a new one)
 SNAPSHOT_EVERY = 30  # fixes between snapshots of one drive
 SEED = [2026, 9]
@@ -965,7 +972,8 @@ def report(r: dict[str, Any]) -> str:
         "",
         f"Command: `.venv/bin/python {r['command']}`, started {r['started_utc']} UTC, "
         f"livematch at commit {r['commit']}. Machine: {os.cpu_count()} cores, "
-        f"{r['mem_total_gb']} GB RAM, Python {sys.version.split()[0]}, shared with other "
+        f"{r['mem_total_gb']} GB RAM, Python {sys.version.split()[0]}, "
+        f"{r.get('build', 'livematch build not recorded')}, shared with other "
         "work (1-minute load average at each measurement below; memory figures do not "
         "depend on load, times do).",
         "",
@@ -1113,7 +1121,7 @@ def partial_run(args: argparse.Namespace, steps: set[int], started: str,
     """Only steps 5, 6, 7 and/or 8 (``--steps 5,6``): no pool; ``memory.partial.md`` /
     ``.json``."""
     result = {"command": " ".join(["bench/memory.py", *sys.argv[1:]]),
-              "started_utc": started, "commit": commit,
+              "started_utc": started, "commit": commit, "build": describe(),
               "fleet": fleet_steps(args) if 5 in steps else [],
               "breakdown": breakdown_step(args) if 6 in steps else None,
               "tree_room": child(["tree-room", str(args.room_drives), str(args.duration)])
@@ -1121,7 +1129,7 @@ def partial_run(args: argparse.Namespace, steps: set[int], started: str,
               "park": park_steps(args) if 8 in steps else []}
     lines = [f"# Resident memory per driven vehicle (steps {args.steps})", "",
              f"Command: `.venv/bin/python {result['command']}`, started {started} UTC, "
-             f"livematch at commit {commit}.",
+             f"livematch at commit {commit}, {result['build']}.",
              *fleet_lines(result["fleet"]), *breakdown_lines(result["breakdown"]),
              *tree_room_lines(result["tree_room"]), *park_lines(result["park"])]
     b = result["breakdown"]
@@ -1348,7 +1356,8 @@ def main(argv: list[str] | None = None) -> int:
     overhead = runs["pipeline"]["kb_per_vehicle"] - runs["trackers"]["kb_per_vehicle"]
     result: dict[str, Any] = {
         "command": " ".join(["bench/memory.py", *(sys.argv[1:] if argv is None else argv)]),
-        "started_utc": started, "commit": commit, "cpu_count": os.cpu_count(),
+        "started_utc": started, "commit": commit, "build": describe(),
+        "cpu_count": os.cpu_count(),
         "mem_total_gb": round(mem_total / 2**20, 1),
         "pool": {"snapshots": len(pool["snapshots"]), "drives": args.drives,
                  "duration_s": args.duration, "segments": pool["segments"],

@@ -50,6 +50,7 @@ from livematch.core.network import RoadNetwork
 from livematch.core.routing import RouteSearch, route_searches, route_searches_reference
 from livematch.core.settings import MatchSettings
 from livematch.core.tracker import Tracker
+from livematch.native import describe
 from livematch.pipeline import Pipeline
 from livematch.sim.drive import Drive, observe
 
@@ -240,7 +241,7 @@ def main_sparse(args: argparse.Namespace) -> int:
         for interval in intervals:
             measure_sparse(sims[:1], interval, network)  # warm-up: kernels, view, caches
             rows += [{"extract": name, **r} for r in measure_sparse(sims, interval, network)]
-    machine = f"{platform.machine()}, Python {platform.python_version()}"
+    machine = f"{platform.machine()}, Python {platform.python_version()}, {describe()}"
     load = " / ".join(f"{v:.2f}" for v in loads)
     end = " / ".join(f"{v:.2f}" for v in os.getloadavg())
     lines = [
@@ -303,7 +304,7 @@ def main(argv: list[str] | None = None) -> int:
             rows.append({"extract": name, "config": label, **measure(drives, settings, network)})
         measure_pipeline(sims[:2], network)  # warm-up: decode, monitors
         rows.append({"extract": name, "config": PIPELINE, **measure_pipeline(sims, network)})
-    machine = f"{platform.machine()}, Python {platform.python_version()}"
+    machine = f"{platform.machine()}, Python {platform.python_version()}, {describe()}"
     load = " / ".join(f"{v:.2f}" for v in loads)
     lines = [
         "# Tracker time per fix (1 Hz simulated drives)",

@@ -105,6 +105,16 @@ def pure_process() -> bool:
     return any(isinstance(f, _SourceFirst) for f in sys.meta_path)
 
 
+def describe() -> str:
+    """One line for a benchmark's header: how this process runs livematch."""
+    if pure_process():
+        return "livematch from source (LIVEMATCH_PURE_PYTHON)"
+    names = compiled()
+    if not names:
+        return "livematch pure Python"
+    return f"livematch compiled (mypyc, {len(names)} modules)"
+
+
 def main() -> int:
     """Print whether livematch runs compiled, and which modules are stale."""
     names = compiled()
