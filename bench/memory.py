@@ -120,6 +120,11 @@ def describe() -> str:
     return native_describe()
 
 
+def fields_of(cls: type) -> tuple[str, ...]:
+    """A class's instance fields: its ``__slots__``, or a mypyc native class's attributes."""
+    return tuple(getattr(cls, "__slots__", None) or getattr(cls, "__mypyc_attrs__", ()))
+
+
 SNAPSHOT_FROM = 60  # first snapshot after this many fixes (a live vehicle, not a new one)
 SNAPSHOT_EVERY = 30  # fixes between snapshots of one drive
 SEED = [2026, 9]
@@ -692,7 +697,7 @@ def fleet_breakdown(vehicles: int, seconds: int, drives_count: int, duration: fl
     for state in states.values():
         counted: set[int] = set()
         tracker = state.tracker
-        for name in ("levels", *sorted(set(type(tracker).__slots__) - {"levels"})):
+        for name in ("levels", *sorted(set(fields_of(type(tracker))) - {"levels"})):
             if name in ("network", "settings", "_view"):
                 continue
             value = getattr(tracker, name, None)
@@ -714,7 +719,7 @@ def fleet_breakdown(vehicles: int, seconds: int, drives_count: int, duration: fl
         part = parts.setdefault("tracker (object)", [0, 0])
         part[0] += c
         part[1] += b
-        for name in sorted(set(type(state).__slots__) - {"tracker"}):
+        for name in sorted(set(fields_of(type(state))) - {"tracker"}):
             c, b = owned_bytes(getattr(state, name), skip, counted)
             part = parts.setdefault(f"pipeline.{name}", [0, 0])
             part[0] += c
