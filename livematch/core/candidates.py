@@ -41,6 +41,7 @@ Example (a vehicle on a straight one-way road; two fixes 10 m apart):
 from __future__ import annotations
 
 import math
+from typing import Final
 
 import numpy as np
 import numpy.typing as npt
@@ -50,6 +51,7 @@ from livematch.core._chain_kernel import CHAIN_F, CHAIN_I, chain_rows
 from livematch.core._direct import Direct
 from livematch.core._sweep_kernel import window_best, window_step
 from livematch.core._tree_kernel import (
+    DIED,  # CandidateTree.step: the window died
     F_POS,
     H_CAP_L,
     H_CAP_ROWS,
@@ -85,22 +87,20 @@ from livematch.core.view import NetworkView
 
 # the compiled calls a tracker's trees make on most fixes (a step that needs new arrays,
 # a commit's chain), at their compiled code (livematch.core._direct): same types always
-_CALLS = Direct(compact_append=_t.compact_append, chain_into=_t.chain_into,
-                chain_rows=chain_rows)
+_CALLS: Final = Direct(compact_append=_t.compact_append, chain_into=_t.chain_into,
+                       chain_rows=chain_rows)
 
 __all__ = ["DIED", "CandidateTree"]
 
-DIED = _t.DIED  # CandidateTree.step: the window died
-
-_MIN_SPARE = MIN_SPARE  # rows (and vias) of room left after a compaction, at least
+_MIN_SPARE: Final = MIN_SPARE  # rows (and vias) of room left after a compaction, at least
 # the kernel's row room (_sweep_kernel.row_spare) as plain Python: no dispatch per call
-_ROW_SPARE = _t.row_spare.py_func
+_ROW_SPARE: Final = _t.row_spare.py_func
 
 # the header alone (no rows, no vias), shared by every empty tree: nothing is written
 # into it (rows are written only after a compaction has made arrays of the tree's own)
-_NO_TI: npt.NDArray[np.int32] = np.zeros(HEAD, np.int32)
-_NO_TF: npt.NDArray[np.float64] = np.empty(0)
-_NO_BYTES = memoryview(b"")
+_NO_TI: Final[npt.NDArray[np.int32]] = np.zeros(HEAD, np.int32)
+_NO_TF: Final[npt.NDArray[np.float64]] = np.empty(0)
+_NO_BYTES: Final = memoryview(b"")
 
 
 def _times_room(cap_t: int, cap: int, m: int, k: int) -> int:

@@ -21,7 +21,7 @@ import math
 from collections.abc import Collection, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from itertools import compress
-from typing import Any
+from typing import Any, Final
 
 import numpy as np
 import shapely
@@ -69,12 +69,12 @@ class Fence:
 
 
 #: ``code == INSIDE`` for a probe's location codes (a C call per fence, no Python frame).
-_IS_INSIDE = _fk.INSIDE.__eq__
+_IS_INSIDE: Final = _fk.INSIDE.__eq__
 # the probes, once or twice a fix, at their compiled code (livematch.core._direct)
-_CALLS = Direct(fence_probe=_fk.fence_probe, fence_probe_clear=_fk.fence_probe_clear)
+_CALLS: Final = Direct(fence_probe=_fk.fence_probe, fence_probe_clear=_fk.fence_probe_clear)
 
-GRID_CELL_M = 250.0  # side of a cell of the fence grid, metres
-GRID_MAX_CELLS = 4096  # a fence covering more cells is tested at every fix instead
+GRID_CELL_M: Final = 250.0  # side of a cell of the fence grid, metres
+GRID_MAX_CELLS: Final = 4096  # a fence covering more cells is tested at every fix instead
 
 
 class FenceSet:
