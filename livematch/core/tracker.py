@@ -748,7 +748,8 @@ class Tracker:
         t = fix.t
         # CandidateTree.step, its compiled call made here (a Python call fewer per
         # level); the kernel's buffers are read again after a step that grew them
-        sweep = _CALLS.tree_sweep
+        # (its answer typed: compiled, a tuple of known items unpacks without iterating)
+        sweep: Callable[..., tuple[int, int, int]] = _CALLS.tree_sweep
         netf, neti, fbuf, ibuf = arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf
         bridged: list[Level] = []  # the levels whose window died (or every one, at a gap)
         for level in self.levels:
@@ -995,11 +996,12 @@ class Tracker:
             rho = math.exp(-dt / s.error_tau_s)
             margin /= math.sqrt(1.0 - rho * rho)
         # (CandidateTree.live_answer's compiled call, made here: a Python call fewer)
-        best, split = _CALLS.live_answer(
+        answer: tuple[int, int] = _CALLS.live_answer(
             sweep_arrays(self._view).seg_geo, tree.ti, tree.tf, self.last_seg, self.fix_xy,
             self.fix_n, self.fix_seq0, self._live_from() - 1,
             1.0 / (2.0 * s.sigma_m * s.sigma_m), 1.0 / s.error_tau_s if scored else 0.0,
             s.gap_s, margin)
+        best, split = answer
         if split >= 0 and self._cut_by_deferral(tree, split):
             # smallest_agrees deferred a commit: the links older than the agreed fix,
             # which that commit would have cut, do not join the near-best set either
@@ -1196,16 +1198,16 @@ class Tracker:
         """
         seq0 = self.fix_seq0
         row = seq - seq0
-        lo = max(seq0, self._live_from() - 1, 1)
+        lo = max(max(seq0, self._live_from() - 1), 1)
         if row >= self.fix_n or seq <= lo:
             return 0, 0
         xy = self.fix_xy
-        x = xy.item(row, 0)
-        y = xy.item(row, 1)
+        x: float = xy.item(row, 0)
+        y: float = xy.item(row, 1)
         radius = STAND_SIGMAS * self.settings.sigma_m
         r2 = radius * radius
-        dx = xy.item(row - 1, 0) - x
-        dy = xy.item(row - 1, 1) - y
+        dx: float = xy.item(row - 1, 0) - x
+        dy: float = xy.item(row - 1, 1) - y
         if dx * dx + dy * dy > r2:
             return 0, 0  # the run is the newest fix alone (a moving vehicle, usually)
         times = self.times

@@ -209,6 +209,9 @@ _CHAIN_SCRATCH: Final = (64, 256, 64, 128)
 _WINDOW_WEIGHTS: Final[tuple[float, ...]] = _rk.WINDOW_WEIGHTS
 # both windows' step, once a fix, at its compiled code (livematch.core._direct)
 _CALLS: Final = Direct(route_advance=_rk.route_advance)
+# its answer, each window's (k, fresh, most, seg, pos): typed, so that the compiled
+# module unpacks it without iterating
+_Advanced = tuple[int, int, float, int, float, int, int, float, int, float]
 _START_ROWS: Final = 4  # a new window's room for live states (grown when a step needs more)
 #: A window with room for more than this many states while it holds no more than half
 #: of that gives the room back (keeps this many): a fresh start beside many route
@@ -414,9 +417,10 @@ class RouteMonitor:
         fa = chain.forward_arrays
         fwd = self.fwd
         rev = self.rev
-        k, fresh, most, seg, pos, bk, bfresh, bmost, bseg, bpos = _CALLS.route_advance(
+        answer: _Advanced = _CALLS.route_advance(
             chain.chainf, chain.chaini, chain.split_f, chain.split_i, fa.fbuf, fa.ibuf,
             fwd.w, rev.w, eps, x0, y0, x, y, step_m)
+        k, fresh, most, seg, pos, bk, bfresh, bmost, bseg, bpos = answer
         t = fix.t
         if k >= 0:
             fwd.done(k, fresh, most, seg, pos, seq, t)
