@@ -734,8 +734,9 @@ class CandidateTree:
             n = _CALLS.chain_rows(ti, self.tf, arrays.seg_geo, top, min_seq, arrays.chain,
                                   arrays.fbuf)
         if n >= 0:
-            ints = arrays.chain[:CHAIN_I * n + CHAIN_I].tolist()
-            fl = arrays.fbuf[:CHAIN_F * n + CHAIN_F].tolist()
+            # (typed: compiled, the reads below are list reads, not generic ones)
+            ints: list[int] = arrays.chain[:CHAIN_I * n + CHAIN_I].tolist()
+            fl: list[float] = arrays.fbuf[:CHAIN_F * n + CHAIN_F].tolist()
             parent = None
             b = CHAIN_I * n
             if ints[b] >= 0:

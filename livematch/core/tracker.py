@@ -2315,7 +2315,7 @@ class Tracker:
             return
         seq0 = self.fix_seq0
         xy = self.fix_xy
-        times = [prev.t, *(c.t for c in chain[k:])]
+        times = [prev.t] + [c.t for c in chain[k:]]
         gaps = sorted(b - a for a, b in itertools.pairwise(times))
         if gaps[len(gaps) // 2] <= SPARSE_S:
             return
@@ -3393,8 +3393,8 @@ class Tracker:
         loop_nodes = [k for k in range(len(chain)) if i <= at[k] < j]
         if not loop_nodes:
             return None
-        run = [chain[loop_nodes[0] - 1] if loop_nodes[0] else before,
-               *(chain[k] for k in loop_nodes)]
+        run = [chain[loop_nodes[0] - 1] if loop_nodes[0] else before]
+        run += [chain[k] for k in loop_nodes]
         gaps = sorted(b.t - a.t for a, b in itertools.pairwise(run))
         if gaps[len(gaps) // 2] > TURNBACK_GAP_S:
             return None  # sparse fixes: see TURNBACK_GAP_S
