@@ -85,16 +85,16 @@ from livematch.core.fastsweep import SweepArrays, fast_sweep_step, sweep_arrays
 from livematch.core.sweep import Node
 from livematch.core.view import NetworkView
 
-# the compiled calls a tracker's trees make on most fixes (a step that needs new arrays,
-# a commit's chain), at their compiled code (livematch.core._direct): same types always
+# the compiled calls a tracker's trees make on most fixes (a step that needs new arrays
+# and its room, a commit's chain, the junction hold's distance), at their compiled code
+# (livematch.core._direct): same types always
 _CALLS: Final = Direct(compact_append=_t.compact_append, chain_into=_t.chain_into,
-                       chain_rows=chain_rows)
+                       chain_rows=chain_rows, row_spare=_t.row_spare,
+                       driven_since=_t.driven_since)
 
 __all__ = ["DIED", "CandidateTree"]
 
 _MIN_SPARE: Final = MIN_SPARE  # rows (and vias) of room left after a compaction, at least
-# the kernel's row room (_sweep_kernel.row_spare) as plain Python: no dispatch per call
-_ROW_SPARE: Final = _t.row_spare.py_func
 
 # the header alone (no rows, no vias), shared by every empty tree: nothing is written
 # into it (rows are written only after a compaction has made arrays of the tree's own)
@@ -118,7 +118,7 @@ def _times_room(cap_t: int, cap: int, m: int, k: int) -> int:
     kept and where is unchanged, and never fewer than ``span_t`` + that room (``cap_t -
     spare`` >= ``span_t``).
     """
-    spare = _ROW_SPARE(m, k)
+    spare: int = _CALLS.row_spare(m, k)
     rows_room = max(spare, cap // 5)  # about max(kept // 4, spare); only sizes the room
     room = (rows_room - m) // max(m, 1) + 1  # fixes until the rows fill, and one
     if room < T_SPARE:
@@ -231,7 +231,7 @@ class CandidateTree:
         as :meth:`shrink` does, cost about 2 µs more a compaction, and a 1 Hz vehicle
         compacts often), so each carries numba's memory-info object (about 130 bytes).
         """
-        rows = _ROW_SPARE(spare_rows, len(self))
+        rows: int = _CALLS.row_spare(spare_rows, len(self))
         vias = max(spare_vias, 2 * rows)  # a step's vias vary more than its rows
         self.ti, self.tf = _t.compact(self.ti, self.tf, rows, vias, spare_t, spare_live)
         self._synced()
@@ -713,7 +713,7 @@ class CandidateTree:
         ``slen``: every segment's length (metres). Negative while ``row`` is still on
         ``anc``'s segment.
         """
-        return float(_t.driven_since(self.ti, self.tf, slen, row, anc))
+        return float(_CALLS.driven_since(self.ti, self.tf, slen, row, anc))
 
     def chain(self, view: NetworkView, top: int,
               min_seq: int) -> tuple[list[Node], Node | None]:
