@@ -58,6 +58,7 @@ def _turns(net: RoadNetwork, events: list[object]) -> list[float]:
             if int(net.seg_twin[a]) == b]
 
 
+@pytest.mark.pure_python  # lifts a Final constant (inlined when compiled)
 def test_a_reversal_at_an_outlier_opens_no_turn(monkeypatch: pytest.MonkeyPatch) -> None:
     """With the rule on, the outlier is dropped by the spike test and its final answer
     is where the van was (interpolated), exactly as with the rule off. Without the speed

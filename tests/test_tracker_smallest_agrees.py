@@ -148,6 +148,7 @@ def sparse_trace(seed: int, dt: float) -> list[tuple[float, float]]:
     return out
 
 
+@pytest.mark.pure_python  # lifts a Final constant (inlined when compiled)
 @pytest.mark.parametrize("dt", [15.0, 30.0])
 def test_sparse_logs_unchanged(dt: float, monkeypatch: pytest.MonkeyPatch) -> None:
     """At 15 and 30 s between fixes the rule does not act: the same events with the key

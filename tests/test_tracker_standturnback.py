@@ -182,6 +182,7 @@ def test_validation() -> None:
         matcher_settings_from_mapping({"stand_turnback": "yes"}, "a.toml")
 
 
+@pytest.mark.pure_python  # lifts a Final constant (inlined when compiled)
 def test_a_stop_at_a_corner_of_a_narrow_block_at_5_s_keeps_the_block() -> None:
     """A ring round a narrow island (30 x 7 m, a block of service roads, entered and left
     at its corner J): the vehicle stops 30 s at the far corner and drives on round the

@@ -21,6 +21,7 @@ as a closure constant, so numba's disk cache recompiles it when the layout chang
 from __future__ import annotations
 
 from collections.abc import Callable
+from typing import Final
 
 import numba
 import numpy as np
@@ -47,9 +48,9 @@ from livematch.core._sweep_kernel import (
 )
 
 #: ints written per row: row, seg, seq, and the row's vias as ``ti[v0:v1]``
-CHAIN_I = 5
+CHAIN_I: Final = 5
 #: floats written per row: fix time, pos, matched x, y, cost, low
-CHAIN_F = 6
+CHAIN_F: Final = 6
 
 
 def _keyed_chain_rows(sweep_key: int) -> Callable[..., int]:

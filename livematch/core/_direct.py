@@ -26,7 +26,7 @@ cache of resolved entry points, which changes no result.
 from __future__ import annotations
 
 from collections.abc import Callable
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numba
 import numpy as np
@@ -102,5 +102,7 @@ class Direct:
 
         return first
 
-    def __getattr__(self, name: str) -> Any:  # (for mypy: the kernels are set at run time)
-        raise AttributeError(name)
+    if TYPE_CHECKING:  # (for mypy: the kernels are set at run time)
+        # Only for the type checker: a class with ``__getattr__`` has every attribute
+        # looked up through a slower hook (``slot_tp_getattr_hook``), kernels included.
+        def __getattr__(self, name: str) -> Any: ...

@@ -68,65 +68,67 @@ next call reads).
 from __future__ import annotations
 
 import math
+from typing import Final
 
 import numba
 import numpy as np
 
 # Indices of the step scalars at the head of ``live``.
-C_EPS = 0
-C_X0 = 1
-C_Y0 = 2
-C_X1 = 3
-C_Y1 = 4
-C_CHORD = 5
-C_INV_TWO_SIGMA2 = 6
-C_INV_BETA = 7
-C_TURN_BACK_COST = 8
-C_MOTION_COST = 9
-C_ROLL_BACK = 10  # >= 0: metres a state along its own segment may lie behind its parent
-N_CTX = 11
-LIVE_STRIDE = 7
+C_EPS: Final = 0
+C_X0: Final = 1
+C_Y0: Final = 2
+C_X1: Final = 3
+C_Y1: Final = 4
+C_CHORD: Final = 5
+C_INV_TWO_SIGMA2: Final = 6
+C_INV_BETA: Final = 7
+C_TURN_BACK_COST: Final = 8
+C_MOTION_COST: Final = 9
+C_ROLL_BACK: Final = 10  # >= 0: metres a state along its own segment may lie behind its parent
+N_CTX: Final = 11
+LIVE_STRIDE: Final = 7
 # Offsets within a row of ``live``.
-L_KEY = 0
-L_SEG = 1
-L_LOW = 2
-L_POS = 3
-L_X = 4
-L_Y = 5
-L_COST = 6
-OUT_F_STRIDE = 5
-OUT_I_STRIDE = 4
-ENTRY_STRIDE = 5
-E_HPOS = 4  # an entry's place in the heap (or _IN_WAIT, _GONE)
-N_HEADER = 6  # V, E, H, B, M, O at the head of ``ibuf``
+L_KEY: Final = 0
+L_SEG: Final = 1
+L_LOW: Final = 2
+L_POS: Final = 3
+L_X: Final = 4
+L_Y: Final = 5
+L_COST: Final = 6
+OUT_F_STRIDE: Final = 5
+OUT_I_STRIDE: Final = 4
+ENTRY_STRIDE: Final = 5
+E_HPOS: Final = 4  # an entry's place in the heap (or _IN_WAIT, _GONE)
+N_HEADER: Final = 6  # V, E, H, B, M, O at the head of ``ibuf``
 # A segment's record in ``netf``: SEG_STRIDE values, the fields at these offsets.
-SEG_STRIDE = 8
-S_AX = 0
-S_AY = 1
-S_BX = 2
-S_BY = 3
-S_LEN = 4
-S_TO = 5
-S_TWIN = 6
-S_SLOT = 7  # scratch: the segment's output row in this step, -1
+SEG_STRIDE: Final = 8
+S_AX: Final = 0
+S_AY: Final = 1
+S_BX: Final = 2
+S_BY: Final = 3
+S_LEN: Final = 4
+S_TO: Final = 5
+S_TWIN: Final = 6
+S_SLOT: Final = 7  # scratch: the segment's output row in this step, -1
 # A vertex's record in ``netf``, after the segments' (see the module docstring).
-V_STRIDE = 4
-W_LO = 0
-W_HI = 1
-W_FLAG = 2
-W_ADJ = 3
-ADJ_SHIFT = 21  # W_ADJ = first out-segment << ADJ_SHIFT | their count << 1 | turn_back_ok
-ADJ_COUNT = (1 << (ADJ_SHIFT - 1)) - 1
-OFFER_STRIDE = 4
-OVERFLOW = -1
+V_STRIDE: Final = 4
+W_LO: Final = 0
+W_HI: Final = 1
+W_FLAG: Final = 2
+W_ADJ: Final = 3
+ADJ_SHIFT: Final = 21  # W_ADJ = first out-segment << ADJ_SHIFT | their count << 1 | turn_back_ok
+ADJ_COUNT: Final = (1 << (ADJ_SHIFT - 1)) - 1
+OFFER_STRIDE: Final = 4
+OVERFLOW: Final = -1
 
-_WHITE = 1
-_DONE = 2
-_FLAGS = 3
-_PEND_SHIFT = 2  # vflag >> 2: 1 + the id of the vertex's cheapest waiting entry (0: none)
-_IN_WAIT = -1  # an entry's heap position while it waits to be sifted into the heap
-_GONE = -2  # ... once an entry for its vertex that pops first has replaced it
-_CACHED = -2.0  # a slot <= this in phases 1-2: the segment's interval at offer _CACHED - slot
+_WHITE: Final = 1
+_DONE: Final = 2
+_FLAGS: Final = 3
+_PEND_SHIFT: Final = 2  # vflag >> 2: 1 + the id of the vertex's cheapest waiting entry (0: none)
+_IN_WAIT: Final = -1  # an entry's heap position while it waits to be sifted into the heap
+_GONE: Final = -2  # ... once an entry for its vertex that pops first has replaced it
+# a slot <= _CACHED in phases 1-2: the segment's interval at offer _CACHED - slot
+_CACHED: Final = -2.0
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -601,49 +603,49 @@ def sweep_kernel(
 # (livematch.core.candidates; the layout is described in livematch.core._tree_kernel).
 # Here, not there, so that numba's disk cache of this function is invalidated whenever
 # the kernel above changes.
-I_SEG = 0
-I_SEQ = 1
-I_PARENT = 2
-I_VIAE = 3  # where the row's vias end: they start where the row before's end (0 at row 0)
-ROW_I = 4
-F_POS = 0
-ROW_F = 1  # a row's floats: its position only (low and cost: live rows only, below)
+I_SEG: Final = 0
+I_SEQ: Final = 1
+I_PARENT: Final = 2
+I_VIAE: Final = 3  # where the row's vias end: they start where the row before's end (0 at row 0)
+ROW_I: Final = 4
+F_POS: Final = 0
+ROW_F: Final = 1  # a row's floats: its position only (low and cost: live rows only, below)
 # The live block's own floats, ``LIVE_F`` a live row from ``live_base`` on (the live row
 # ``lo + j`` at ``live_base + LIVE_F * j``): only a live state's ``low`` and ``cost`` are
 # ever read (the next sweep step, the ranking); an ancestor's are not kept.
-LF_LOW = 0
-LF_COST = 1
-LIVE_F = 2
+LF_LOW: Final = 0
+LF_COST: Final = 1
+LIVE_F: Final = 2
 # The header at the head of ``ti``: rows and vias in use, the live block [lo, hi), and
 # (after ARENA_FULL) what the step waiting in the kernel's buffers needs: its rows and
 # vias, and the capacities of the arrays to compact into (rows, vias, fix times); then
 # the sequence number of the tree's first fix time and the rows the arrays have room for.
-H_N = 0
-H_NV = 1
-H_LO = 2
-H_HI = 3
-H_M = 4
-H_NVIA = 5
-H_CAP_ROWS = 6
-H_CAP_VIAS = 7
-H_CAP_T = 8
-H_T0 = 9
-H_RCAP = 10
-H_LCAP = 11  # live rows the live floats' area has room for
-H_CAP_L = 12  # (after ARENA_FULL) the live rows the arrays to compact into have room for
-HEAD = 13
+H_N: Final = 0
+H_NV: Final = 1
+H_LO: Final = 2
+H_HI: Final = 3
+H_M: Final = 4
+H_NVIA: Final = 5
+H_CAP_ROWS: Final = 6
+H_CAP_VIAS: Final = 7
+H_CAP_T: Final = 8
+H_T0: Final = 9
+H_RCAP: Final = 10
+H_LCAP: Final = 11  # live rows the live floats' area has room for
+H_CAP_L: Final = 12  # (after ARENA_FULL) the live rows the arrays to compact into have room for
+HEAD: Final = 13
 # A row's int field ``I_x`` is ``ti[ROW_I * row + K_x]``.
-K_SEG = HEAD + I_SEG
-K_SEQ = HEAD + I_SEQ
-K_PARENT = HEAD + I_PARENT
-K_VIAE = HEAD + I_VIAE
+K_SEG: Final = HEAD + I_SEG
+K_SEQ: Final = HEAD + I_SEQ
+K_PARENT: Final = HEAD + I_PARENT
+K_VIAE: Final = HEAD + I_VIAE
 # tree_sweep's answers other than a commit point (which is >= -1)
-DIED = -2  # the window died: the tree is unchanged
-ARENA_FULL = -3  # the tree's arrays are too small for the new rows (see tree_sweep)
-TREE_OVERFLOW = -4  # the kernel's buffers are too small: grow them and call again
-MIN_SPARE = 8  # rows of room a compaction leaves, at least (and twice the live block)
-T_SPARE = 6  # fix times of room a compaction leaves, at least (a fix adds one)
-L_SPARE = 4  # live rows of room for floats a compaction leaves, at least
+DIED: Final = -2  # the window died: the tree is unchanged
+ARENA_FULL: Final = -3  # the tree's arrays are too small for the new rows (see tree_sweep)
+TREE_OVERFLOW: Final = -4  # the kernel's buffers are too small: grow them and call again
+MIN_SPARE: Final = 8  # rows of room a compaction leaves, at least (and twice the live block)
+T_SPARE: Final = 6  # fix times of room a compaction leaves, at least (a fix adds one)
+L_SPARE: Final = 4  # live rows of room for floats a compaction leaves, at least
 
 
 @numba.njit(cache=True, error_model="numpy")

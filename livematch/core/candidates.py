@@ -41,6 +41,7 @@ Example (a vehicle on a straight one-way road; two fixes 10 m apart):
 from __future__ import annotations
 
 import math
+from typing import Final
 
 import numpy as np
 import numpy.typing as npt
@@ -50,6 +51,7 @@ from livematch.core._chain_kernel import CHAIN_F, CHAIN_I, chain_rows
 from livematch.core._direct import Direct
 from livematch.core._sweep_kernel import window_best, window_step
 from livematch.core._tree_kernel import (
+    DIED,  # CandidateTree.step: the window died
     F_POS,
     H_CAP_L,
     H_CAP_ROWS,
@@ -83,24 +85,22 @@ from livematch.core.fastsweep import SweepArrays, fast_sweep_step, sweep_arrays
 from livematch.core.sweep import Node
 from livematch.core.view import NetworkView
 
-# the compiled calls a tracker's trees make on most fixes (a step that needs new arrays,
-# a commit's chain), at their compiled code (livematch.core._direct): same types always
-_CALLS = Direct(compact_append=_t.compact_append, chain_into=_t.chain_into,
-                chain_rows=chain_rows)
+# the compiled calls a tracker's trees make on most fixes (a step that needs new arrays
+# and its room, a commit's chain, the junction hold's distance), at their compiled code
+# (livematch.core._direct): same types always
+_CALLS: Final = Direct(compact_append=_t.compact_append, chain_into=_t.chain_into,
+                       chain_rows=chain_rows, row_spare=_t.row_spare,
+                       driven_since=_t.driven_since)
 
 __all__ = ["DIED", "CandidateTree"]
 
-DIED = _t.DIED  # CandidateTree.step: the window died
-
-_MIN_SPARE = MIN_SPARE  # rows (and vias) of room left after a compaction, at least
-# the kernel's row room (_sweep_kernel.row_spare) as plain Python: no dispatch per call
-_ROW_SPARE = _t.row_spare.py_func
+_MIN_SPARE: Final = MIN_SPARE  # rows (and vias) of room left after a compaction, at least
 
 # the header alone (no rows, no vias), shared by every empty tree: nothing is written
 # into it (rows are written only after a compaction has made arrays of the tree's own)
-_NO_TI: npt.NDArray[np.int32] = np.zeros(HEAD, np.int32)
-_NO_TF: npt.NDArray[np.float64] = np.empty(0)
-_NO_BYTES = memoryview(b"")
+_NO_TI: Final[npt.NDArray[np.int32]] = np.zeros(HEAD, np.int32)
+_NO_TF: Final[npt.NDArray[np.float64]] = np.empty(0)
+_NO_BYTES: Final = memoryview(b"")
 
 
 def _times_room(cap_t: int, cap: int, m: int, k: int) -> int:
@@ -118,7 +118,7 @@ def _times_room(cap_t: int, cap: int, m: int, k: int) -> int:
     kept and where is unchanged, and never fewer than ``span_t`` + that room (``cap_t -
     spare`` >= ``span_t``).
     """
-    spare = _ROW_SPARE(m, k)
+    spare: int = _CALLS.row_spare(m, k)
     rows_room = max(spare, cap // 5)  # about max(kept // 4, spare); only sizes the room
     room = (rows_room - m) // max(m, 1) + 1  # fixes until the rows fill, and one
     if room < T_SPARE:
@@ -231,7 +231,7 @@ class CandidateTree:
         as :meth:`shrink` does, cost about 2 µs more a compaction, and a 1 Hz vehicle
         compacts often), so each carries numba's memory-info object (about 130 bytes).
         """
-        rows = _ROW_SPARE(spare_rows, len(self))
+        rows: int = _CALLS.row_spare(spare_rows, len(self))
         vias = max(spare_vias, 2 * rows)  # a step's vias vary more than its rows
         self.ti, self.tf = _t.compact(self.ti, self.tf, rows, vias, spare_t, spare_live)
         self._synced()
@@ -713,7 +713,7 @@ class CandidateTree:
         ``slen``: every segment's length (metres). Negative while ``row`` is still on
         ``anc``'s segment.
         """
-        return float(_t.driven_since(self.ti, self.tf, slen, row, anc))
+        return float(_CALLS.driven_since(self.ti, self.tf, slen, row, anc))
 
     def chain(self, view: NetworkView, top: int,
               min_seq: int) -> tuple[list[Node], Node | None]:
@@ -734,8 +734,9 @@ class CandidateTree:
             n = _CALLS.chain_rows(ti, self.tf, arrays.seg_geo, top, min_seq, arrays.chain,
                                   arrays.fbuf)
         if n >= 0:
-            ints = arrays.chain[:CHAIN_I * n + CHAIN_I].tolist()
-            fl = arrays.fbuf[:CHAIN_F * n + CHAIN_F].tolist()
+            # (typed: compiled, the reads below are list reads, not generic ones)
+            ints: list[int] = arrays.chain[:CHAIN_I * n + CHAIN_I].tolist()
+            fl: list[float] = arrays.fbuf[:CHAIN_F * n + CHAIN_F].tolist()
             parent = None
             b = CHAIN_I * n
             if ints[b] >= 0:

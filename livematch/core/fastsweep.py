@@ -35,6 +35,7 @@ Example (a vehicle moving 10 m along a straight road; no live states gives no st
 from __future__ import annotations
 
 import operator
+from typing import Final
 
 import numpy as np
 import numpy.typing as npt
@@ -46,16 +47,16 @@ from livematch.core.view import NetworkView
 
 __all__ = ["SweepArrays", "fast_sweep_step", "sweep_arrays"]
 
-_ATTR = "_sweep_arrays"  # where the per-network arrays live on the RoadNetwork object
+_ATTR: Final = "_sweep_arrays"  # where the per-network arrays live on the RoadNetwork object
 # The fields of a live state the kernel reads, in the order of a row of its ``live`` array.
 _packed_fields = operator.attrgetter("seg", "low", "pos", "x", "y", "cost")
 
 # Initial buffer capacities (heap entries, via slots, output rows, offers); doubled on
 # overflow. A 1 Hz step on a city network makes a few dozen entries and offers.
-_START_ENTRIES = 1024
-_START_VIA = 4096
-_START_ROWS = 512
-_START_OFFERS = 2048
+_START_ENTRIES: Final = 1024
+_START_VIA: Final = 4096
+_START_ROWS: Final = 512
+_START_OFFERS: Final = 2048
 
 
 def _aligned_empty(n: int, align: int = 64) -> npt.NDArray[np.float64]:

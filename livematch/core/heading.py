@@ -35,6 +35,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
+from typing import Final
 
 import numpy as np
 import numpy.typing as npt
@@ -47,16 +48,16 @@ __all__ = ["HEADING_MIN_MPS", "HEADING_REACH_SIGMAS", "HEADING_SPREAD_DEG", "gri
 
 #: Width of the charge's well, degrees (judgement: road geometry and corners, not the
 #: receiver, set it; see the module's docstring).
-HEADING_SPREAD_DEG = 20.0
+HEADING_SPREAD_DEG: Final = 20.0
 
 #: A heading is ignored where the same fix reports a speed below this, m/s: a receiver's
 #: course at a stand is noise (common practice to leave it out; the value from memory).
-HEADING_MIN_MPS = 1.0
+HEADING_MIN_MPS: Final = 1.0
 
 #: How far along the road from a state the vehicle may be when the state's fix was
 #: taken, in units of ``MatchSettings.sigma_m``: a fix's error along the road is that of
 #: one axis, and two standard deviations hold about 95 % of it (common practice).
-HEADING_REACH_SIGMAS = 2.0
+HEADING_REACH_SIGMAS: Final = 2.0
 
 
 def grid_heading(projection: Projection, x: float, y: float,

@@ -25,7 +25,7 @@ from __future__ import annotations
 import heapq
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any, NamedTuple, Protocol
+from typing import Any, Final, NamedTuple, Protocol
 
 import numpy as np
 import numpy.typing as npt
@@ -264,11 +264,11 @@ class RouteArrays:
         self.resize(len(self.hf), 2 * len(self.vias))
 
 
-_ATTR = "_route_arrays"  # where the per-network arrays live on the RoadNetwork object
+_ATTR: Final = "_route_arrays"  # where the per-network arrays live on the RoadNetwork object
 # Initial capacities (heap entries, route segments), doubled on overflow. A bridged step
 # at 15-30 s on a city network settles a few hundred segments per search.
-_START_ENTRIES = 4096
-_START_VIA = 8192
+_START_ENTRIES: Final = 4096
+_START_VIA: Final = 8192
 
 
 def route_arrays(view: NetworkView) -> RouteArrays:
@@ -281,7 +281,7 @@ def route_arrays(view: NetworkView) -> RouteArrays:
     return arrays
 
 
-INFO_STRIDE = _rk.INFO_STRIDE  # RouteTable.info: ints per entry (row, source, start, length)
+INFO_STRIDE: Final = _rk.INFO_STRIDE  # RouteTable.info: ints per entry (row, source, start, length)
 
 
 class RouteTable(NamedTuple):

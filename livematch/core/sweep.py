@@ -50,7 +50,7 @@ import math
 from bisect import bisect_left
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, replace
-from typing import NamedTuple
+from typing import Final, NamedTuple
 
 from livematch.core.network import RoadNetwork
 from livematch.core.routing import (
@@ -492,7 +492,8 @@ def pace(view: NetworkView, node: Node, t: float) -> float:
     return (route if route > 0.0 else 0.0) * (t - node.t) / (node.t - parent.t)
 
 
-BRIDGE_OWN_SEARCHES = 8  # on the simulated drives more than 8 changed nothing (bench/accuracy.py)
+# on the simulated drives more than 8 changed nothing (bench/accuracy.py)
+BRIDGE_OWN_SEARCHES: Final = 8
 
 
 def bridge_step(

@@ -79,6 +79,7 @@ import struct
 import zlib
 from array import array
 from collections.abc import Callable, Iterator
+from typing import Final
 
 import numpy as np
 import numpy.typing as npt
@@ -114,40 +115,41 @@ from livematch.core.view import NetworkView, view_of
 from livematch.core.wayout import project_on, relink, way_out_of_stand
 from livematch.errors import BadStateError
 
-STATE_FORMAT = b"LMT6"
-STATE_FORMAT_V5 = b"LMT5"  # as LMT6 with low, pos, cost in every row; still read
-STATE_FORMAT_V4 = b"LMT4"  # as LMT5 with the fix time, via start and length in every row; read
-STATE_FORMAT_V3 = b"LMT3"  # as LMT4 without the flags byte, zlib-compressed; still read
-STATE_FORMAT_V2 = b"LMT2"  # as LMT3 with the matched point in every row; still read
-STATE_FORMAT_V1 = b"LMT1"  # JSON rows of linked nodes; still read
-_READABLE = (STATE_FORMAT, STATE_FORMAT_V5, STATE_FORMAT_V4, STATE_FORMAT_V3,
-             STATE_FORMAT_V2, STATE_FORMAT_V1)
+STATE_FORMAT: Final = b"LMT6"
+STATE_FORMAT_V5: Final = b"LMT5"  # as LMT6 with low, pos, cost in every row; still read
+# as LMT5 with the fix time, via start and length in every row; read
+STATE_FORMAT_V4: Final = b"LMT4"
+STATE_FORMAT_V3: Final = b"LMT3"  # as LMT4 without the flags byte, zlib-compressed; still read
+STATE_FORMAT_V2: Final = b"LMT2"  # as LMT3 with the matched point in every row; still read
+STATE_FORMAT_V1: Final = b"LMT1"  # JSON rows of linked nodes; still read
+_READABLE: Final = (STATE_FORMAT, STATE_FORMAT_V5, STATE_FORMAT_V4, STATE_FORMAT_V3,
+                   STATE_FORMAT_V2, STATE_FORMAT_V1)
 # float64 columns of a tree row in LMT2 (low, pos, x, y, cost, t), in LMT3 and LMT4 (low,
 # pos, cost, t), in LMT5 (low, pos, cost), and the ones LMT3 and LMT4 keep of LMT2's
-_V2_ROW_F = 6
-_V4_ROW_F = 4
-_V5_ROW_F = 3
+_V2_ROW_F: Final = 6
+_V4_ROW_F: Final = 4
+_V5_ROW_F: Final = 3
 # int32 columns of a tree row up to LMT4 (seg, seq, parent, via_start, via_len)
-_V4_ROW_I = 5
-_V2_KEPT = [0, 1, 4, 5]
+_V4_ROW_I: Final = 5
+_V2_KEPT: Final = [0, 1, 4, 5]
 # Tracker.said: the fields of the newest live answer after its vehicle (t, segment,
 # offset_m, x, y, eps_m, window_fixes, window_s) packed into one bytes object (97 bytes;
 # the Assignment itself, with its own floats and segment number, kept 0.33 KB a driven
 # vehicle, bench/memory.py step 6; packing it costs about 0.1 µs a fix)
-_SAID = struct.Struct("<dqddddqd")
-JUMP_TRUST_AFTER = 3
+_SAID: Final = struct.Struct("<dqddddqd")
+JUMP_TRUST_AFTER: Final = 3
 # A road vehicle changes speed by at most about 3 m/s per second (ordinary braking and
 # acceleration; common practice, from memory).
-ACCEL_MPS2 = 3.0
+ACCEL_MPS2: Final = 3.0
 # The fix log's least size (Tracker._log_fix); it leaves half that many rows free at
 # least when it fills up.
-FIX_LOG_ROOM = 8
+FIX_LOG_ROOM: Final = 8
 # From this many seconds between fixes on, the trees are kept tight between fixes.
-SPARSE_S = 5.0
+SPARSE_S: Final = 5.0
 # A step slower than this (m/s) means the vehicle stood at its end: at 15 s between
 # fixes 5 m of GPS drift is 0.3 m/s, a vehicle creeping off from a stop covers more
 # (chosen by judgement, not tuned). Read only with MatchSettings.stop_turns.
-STOOD_MPS = 1.0
+STOOD_MPS: Final = 1.0
 # A vehicle whose accepted fixes of STAND_S seconds all lie within STAND_SIGMAS times
 # sigma_m of the last of them stood still (Tracker._standing); with
 # MatchSettings.stand_wait its candidates wait, until STAND_AFTER_S seconds after the
@@ -157,9 +159,9 @@ STOOD_MPS = 1.0
 # 3 sqrt(2) sigma_m, the jump filter's bound, a random walk circling a small loop
 # counted as standing and lost 0.4 points of final accuracy on 20 seeded drives; at
 # 2 sigma_m none, with the same gain on routed trips). Chosen on seed 31's drives.
-STAND_S = 10.0
-STAND_AFTER_S = 10.0
-STAND_SIGMAS = 2.0
+STAND_S: Final = 10.0
+STAND_AFTER_S: Final = 10.0
+STAND_SIGMAS: Final = 2.0
 # With MatchSettings.stand_at_vertex, a run of fixes whose median step from one fix to
 # the next is shorter than this (metres) holds still: the receiver repeats its position
 # (a noise-free log, or a receiver's static hold), so the run shows no wandering error
@@ -169,7 +171,7 @@ STAND_SIGMAS = 2.0
 # and 2.3 m at 5 s for the simulator's sigma 5 m and tau 45 s (livematch.sim.drive's
 # Gauss-Markov error). 0.1 m: far below that, far above rounding (chosen by judgement,
 # not tuned).
-STILL_M = 0.1
+STILL_M: Final = 0.1
 # MatchSettings.stand_turnback reads a turn back at a stand only where the fixes of the
 # loop (the node before it on) come at most this many seconds apart (median gap). At 5 s
 # between fixes a vehicle that stops at a corner of a ring round a narrow island (a
@@ -179,7 +181,7 @@ STILL_M = 0.1
 # random walk lost final fixes and route length there (docs/measured.md, "Session 15
 # (ringv)"). At 1 s the fixes along the far side show the ring. 2 s: chosen by
 # judgement between the two intervals measured.
-TURNBACK_GAP_S = 2.0
+TURNBACK_GAP_S: Final = 2.0
 # With MatchSettings.stand_hold, a vehicle whose fixes of the last STAND_HOLD_S seconds
 # all lie within STAND_SIGMAS sigma_m of the newest one stands now (Tracker._stand_start),
 # and keeps standing while those of the last STAND_KEEP_S seconds do. 3 s: 10 m in 3 s is
@@ -187,11 +189,11 @@ TURNBACK_GAP_S = 2.0
 # second of a stop on (chosen on seed 31's routed-trip drives at 1 s between fixes,
 # Helsinki: 3 / 3 s gave live road+dir 0.951, 5 / 3 s 0.945, 10 / 3 s 0.943, 10 / 10 s
 # 0.941, off 0.902; the random walk 0.964, 0.962 at 10 / 3 s, off 0.954).
-STAND_HOLD_S = 3.0
-STAND_KEEP_S = 3.0
+STAND_HOLD_S: Final = 3.0
+STAND_KEEP_S: Final = 3.0
 # Entries of Tracker._held (usually one or two: the stand's anchor, the newest run's)
-_HELD_MEMO = 8
-_NO_FIXES = np.empty((0, 2))  # shared by trackers that have seen no fix (never written)
+_HELD_MEMO: Final = 8
+_NO_FIXES: Final = np.empty((0, 2))  # shared by trackers that have seen no fix (never written)
 # A fix this many seconds after the fix before, from SPIKE_MIN_S to SPIKE_MAX_S, is kept
 # open to the spike test (MatchSettings.spike_cost). Closer fixes are left to the jump
 # filter, whose bound is tight at short steps. It stopped at 20 s while at 30 s between
@@ -202,24 +204,24 @@ _NO_FIXES = np.empty((0, 2))  # shared by trackers that have seen no fix (never 
 # routed trips, with pace_reach: final accuracy +0.1 to +0.9 points, route mismatch -0.6
 # to -1.8 points; alone, random walk seed 31 at 30 s: +0.2 / +0.5 points (Helsinki /
 # test). 35 s keeps a 30 s feed with late fixes in the test.
-SPIKE_MIN_S = 5.0
+SPIKE_MIN_S: Final = 5.0
 # With MatchSettings.speed_pace_m, a bridged step's route is charged for falling short of
 # this share of the slower end's reported speed times the step's time: a fifth of slack
 # for the speed changing over the step and the answers' error along the road (as
 # speed_laps' shortfall, LAP_SLACK; chosen by judgement, not tuned).
-SPEED_FLOOR_SHARE = 0.8
-SPIKE_MAX_S = 35.0
+SPEED_FLOOR_SHARE: Final = 0.8
+SPIKE_MAX_S: Final = 35.0
 # The time spanned by the two steps around a tested fix at which its charge is
 # MatchSettings.spike_cost (it scales in proportion).
-SPIKE_SPAN_S = 30.0
+SPIKE_SPAN_S: Final = 30.0
 # With MatchSettings.reverse_turns, a gap step (more than gap_s between fixes) went back
 # the way the step before it came when both steps are at least REVERSE_MIN_M long and
 # turn by more than 135 degrees (cosine below REVERSE_COS). 20 m: four times sigma_m of
 # the default settings, well above the change of a correlated GNSS error over 15-30 s
 # (about 5 m per axis at a 45 s time constant); 135 degrees: a turn at a junction round
 # a block is 90 degrees, a U-turn 180 (chosen by judgement, not tuned).
-REVERSE_MIN_M = 20.0
-REVERSE_COS = -0.7
+REVERSE_MIN_M: Final = 20.0
+REVERSE_COS: Final = -0.7
 # A reversal is not taken for a turn in the street when a dead end lies ahead of the
 # reversing fix within half of what the vehicle could have driven in the step out of it
 # beyond that step's chord (Tracker._dead_end_ahead): the step's time at REVERSE_PACE
@@ -230,16 +232,16 @@ REVERSE_COS = -0.7
 # pace alone (floor 0) or a floor of 6 m/s left the random walk on the test extract
 # 0.22 points of final accuracy below the rule off, 10 m/s left it unchanged, routed
 # trips kept their gain either way. REVERSE_SEARCH bounds the segments looked at.
-REVERSE_PACE = 1.5
-REVERSE_FLOOR_MPS = 10.0
-REVERSE_SEARCH = 256
+REVERSE_PACE: Final = 1.5
+REVERSE_FLOOR_MPS: Final = 10.0
+REVERSE_SEARCH: Final = 256
 # With MatchSettings.lone_reverse_turns, a reversal of the fixes opens a turn in the
 # street only when the fixes did not reverse in the REVERSE_APART_S seconds before it
 # (Tracker._lone_reversal). 180 s: a delivery van's trips between dwells take minutes
 # (bench/accuracy.py's routed trips: 0.5-4 km); at 90 s the random walk of the bench
 # still lost at 30 s on the test extract (route mismatch +0.1 points, seed 31), at 180 s
 # and 300 s it was unchanged (docs/measured.md, "Session 12 (sparse30)").
-REVERSE_APART_S = 180.0
+REVERSE_APART_S: Final = 180.0
 # With MatchSettings.lone_reverse_turns, a lone reversal opens a turn in the street only
 # when the mean of the speeds of the two steps around the reversing fix is at most
 # REVERSE_TURN_MPS (Tracker._slow_reversal): a vehicle that turns round in the street
@@ -252,16 +254,16 @@ REVERSE_APART_S = 180.0
 # went at 1.1-7.2 m/s by that mean, the 102 at an outlier fix at 2.9-25.7 m/s, 85 of
 # them above 7.5 (chosen there, by judgement, not tuned further; from the same seeds that
 # decide, so the headline seed 2009 is the held-out check).
-REVERSE_TURN_MPS = 7.5
+REVERSE_TURN_MPS: Final = 7.5
 # With MatchSettings.speed_laps (Tracker._with_laps): the share of the distance driven
 # between two fixes (by their reported speeds) that the CUSUM leaves as slack (the
 # trapezoid rule misses where the speed changes between fixes, and the answers err a few
 # metres along the road), the reported speed below which a fix counts as standing (a
 # receiver's Doppler speed errs by a few tenths of a m/s; common practice), and the
 # shortest lap ever put in (m).
-LAP_SLACK = 0.2
-LAP_STILL_MPS = 0.5
-LAP_MIN_M = 10.0
+LAP_SLACK: Final = 0.2
+LAP_STILL_MPS: Final = 0.5
+LAP_MIN_M: Final = 10.0
 
 
 class Level:
@@ -300,8 +302,8 @@ _Tops = dict[Level, tuple[CandidateTree, int, int, int]]
 # the compiled calls the tracker makes on every fix (the tree step, the live answer, the
 # commit check), at their compiled code: the argument types never change, so the
 # dispatcher's per-call type look-up is skipped (livematch.core._direct)
-_CALLS = Direct(tree_sweep=tree_sweep, live_answer=tree_live_answer,
-                cut_and_check=cut_and_check, all_within=all_within)
+_CALLS: Final = Direct(tree_sweep=tree_sweep, live_answer=tree_live_answer,
+                       cut_and_check=cut_and_check, all_within=all_within)
 
 
 def _slide(fx: float, fy: float, ax: float, ay: float, ux: float, uy: float, length2: float,
@@ -746,7 +748,8 @@ class Tracker:
         t = fix.t
         # CandidateTree.step, its compiled call made here (a Python call fewer per
         # level); the kernel's buffers are read again after a step that grew them
-        sweep = _CALLS.tree_sweep
+        # (its answer typed: compiled, a tuple of known items unpacks without iterating)
+        sweep: Callable[..., tuple[int, int, int]] = _CALLS.tree_sweep
         netf, neti, fbuf, ibuf = arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf
         bridged: list[Level] = []  # the levels whose window died (or every one, at a gap)
         for level in self.levels:
@@ -993,11 +996,12 @@ class Tracker:
             rho = math.exp(-dt / s.error_tau_s)
             margin /= math.sqrt(1.0 - rho * rho)
         # (CandidateTree.live_answer's compiled call, made here: a Python call fewer)
-        best, split = _CALLS.live_answer(
+        answer: tuple[int, int] = _CALLS.live_answer(
             sweep_arrays(self._view).seg_geo, tree.ti, tree.tf, self.last_seg, self.fix_xy,
             self.fix_n, self.fix_seq0, self._live_from() - 1,
             1.0 / (2.0 * s.sigma_m * s.sigma_m), 1.0 / s.error_tau_s if scored else 0.0,
             s.gap_s, margin)
+        best, split = answer
         if split >= 0 and self._cut_by_deferral(tree, split):
             # smallest_agrees deferred a commit: the links older than the agreed fix,
             # which that commit would have cut, do not join the near-best set either
@@ -1194,16 +1198,16 @@ class Tracker:
         """
         seq0 = self.fix_seq0
         row = seq - seq0
-        lo = max(seq0, self._live_from() - 1, 1)
+        lo = max(max(seq0, self._live_from() - 1), 1)
         if row >= self.fix_n or seq <= lo:
             return 0, 0
         xy = self.fix_xy
-        x = xy.item(row, 0)
-        y = xy.item(row, 1)
+        x: float = xy.item(row, 0)
+        y: float = xy.item(row, 1)
         radius = STAND_SIGMAS * self.settings.sigma_m
         r2 = radius * radius
-        dx = xy.item(row - 1, 0) - x
-        dy = xy.item(row - 1, 1) - y
+        dx: float = xy.item(row - 1, 0) - x
+        dy: float = xy.item(row - 1, 1) - y
         if dx * dx + dy * dy > r2:
             return 0, 0  # the run is the newest fix alone (a moving vehicle, usually)
         times = self.times
@@ -2311,7 +2315,7 @@ class Tracker:
             return
         seq0 = self.fix_seq0
         xy = self.fix_xy
-        times = [prev.t, *(c.t for c in chain[k:])]
+        times = [prev.t] + [c.t for c in chain[k:]]
         gaps = sorted(b - a for a, b in itertools.pairwise(times))
         if gaps[len(gaps) // 2] <= SPARSE_S:
             return
@@ -3389,8 +3393,8 @@ class Tracker:
         loop_nodes = [k for k in range(len(chain)) if i <= at[k] < j]
         if not loop_nodes:
             return None
-        run = [chain[loop_nodes[0] - 1] if loop_nodes[0] else before,
-               *(chain[k] for k in loop_nodes)]
+        run = [chain[loop_nodes[0] - 1] if loop_nodes[0] else before]
+        run += [chain[k] for k in loop_nodes]
         gaps = sorted(b.t - a.t for a, b in itertools.pairwise(run))
         if gaps[len(gaps) // 2] > TURNBACK_GAP_S:
             return None  # sparse fixes: see TURNBACK_GAP_S

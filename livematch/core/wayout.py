@@ -31,6 +31,7 @@ Pure: reads the network view and the nodes it is given, returns new nodes.
 from __future__ import annotations
 
 from collections.abc import Callable, Iterator
+from typing import Final
 
 from livematch.core.sweep import Node
 from livematch.core.view import NetworkView
@@ -39,13 +40,13 @@ from livematch.core.view import NetworkView
 # (the path cost's distance term, summed over those fixes). One unit: a vehicle that
 # stood at V and left by S, with fixes that happen to lie a little nearer another way,
 # keeps S unless the fixes say so clearly (chosen by judgement, not tuned).
-WAY_OUT_MARGIN = 1.0
+WAY_OUT_MARGIN: Final = 1.0
 # The later vertex B where the ways join again lies at most this far along the path from
 # V (metres): a diamond at a junction, not a second route across the district.
-WAY_OUT_REACH_M = 120.0
+WAY_OUT_REACH_M: Final = 120.0
 # At most this many segments in the other way, and this many ways looked at per B.
-WAY_OUT_SEGS = 10
-WAY_OUT_WAYS = 32
+WAY_OUT_SEGS: Final = 10
+WAY_OUT_WAYS: Final = 32
 
 FixOf = Callable[[Node], "tuple[float, float] | None"]
 Stands = Callable[[Node, list[Node]], bool]

@@ -48,6 +48,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
+from typing import Final
 
 import numba
 import numpy as np
@@ -55,9 +56,9 @@ import numpy.typing as npt
 import shapely
 from shapely.geometry.base import BaseGeometry
 
-OUTSIDE = 0
-INSIDE = 1
-UNDECIDED = 2
+OUTSIDE: Final = 0
+INSIDE: Final = 1
+UNDECIDED: Final = 2
 #: A polygon with more vertices is left to shapely (GEOS indexes its edges).
 MAX_VERTICES = 2048
 #: Edges per horizontal band of a polygon's edge index (a disc of 64 edges: 16 bands).

@@ -21,7 +21,7 @@ import math
 from collections.abc import Collection, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from itertools import compress
-from typing import Any
+from typing import Any, Final
 
 import numpy as np
 import shapely
@@ -68,13 +68,11 @@ class Fence:
         return self.groups is not None and not self.groups.isdisjoint(groups)
 
 
-#: ``code == INSIDE`` for a probe's location codes (a C call per fence, no Python frame).
-_IS_INSIDE = _fk.INSIDE.__eq__
 # the probes, once or twice a fix, at their compiled code (livematch.core._direct)
-_CALLS = Direct(fence_probe=_fk.fence_probe, fence_probe_clear=_fk.fence_probe_clear)
+_CALLS: Final = Direct(fence_probe=_fk.fence_probe, fence_probe_clear=_fk.fence_probe_clear)
 
-GRID_CELL_M = 250.0  # side of a cell of the fence grid, metres
-GRID_MAX_CELLS = 4096  # a fence covering more cells is tested at every fix instead
+GRID_CELL_M: Final = 250.0  # side of a cell of the fence grid, metres
+GRID_MAX_CELLS: Final = 4096  # a fence covering more cells is tested at every fix instead
 
 
 class FenceSet:
@@ -195,8 +193,8 @@ class FenceSet:
         if n == 0:
             return [], []
         if n > 0:  # every answer certain
-            rows = self._out[:3 * n].tolist()
-            return rows[0::3], list(map(_IS_INSIDE, rows[2::3]))
+            rows: list[int] = self._out[:3 * n].tolist()
+            return rows[0::3], [code == _fk.INSIDE for code in rows[2::3]]
         rows = self._out[:-3 * n].tolist()
         n = -n
         near: list[int] = []
@@ -235,8 +233,8 @@ class FenceSet:
         if n == 0:
             return ([], []), r * r
         if n > 0:
-            rows = self._out[:3 * n].tolist()
-            return (rows[0::3], list(map(_IS_INSIDE, rows[2::3]))), r * r
+            rows: list[int] = self._out[:3 * n].tolist()
+            return (rows[0::3], [code == _fk.INSIDE for code in rows[2::3]]), r * r
         return self.probe(x, y), 0.0
 
     def near(self, x: float, y: float) -> list[int]:

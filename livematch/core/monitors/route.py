@@ -39,7 +39,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, Final
 
 import numpy as np
 import numpy.typing as npt
@@ -58,7 +58,7 @@ from livematch.core.view import NetworkView, view_of
 FloatArray = npt.NDArray[np.float64]
 
 #: Two route ends closer than this (metres) make the route a closed loop.
-CLOSE_LOOP_M = 1.0
+CLOSE_LOOP_M: Final = 1.0
 
 
 @dataclass(frozen=True, eq=False)
@@ -202,23 +202,27 @@ class RouteChain:
 #: defaults cost half a megabyte per loaded route and spread every step's few writes over
 #: dozens of memory pages. A step that needs more reports an overflow and the monitor
 #: grows the scratch and steps again (:meth:`_Window.grow`): room changes no answer.
-_CHAIN_SCRATCH = (64, 256, 64, 128)
+_CHAIN_SCRATCH: Final = (64, 256, 64, 128)
 #: The window's cost weights (1 / (2 sigma^2) with sigma 5 m, 1 / beta with beta 10 m, no
 #: turn-back or motion cost; :meth:`_Window.best` breaks ties by cost).
-_WINDOW_WEIGHTS = _rk.WINDOW_WEIGHTS
+# (a tuple of any length: mypyc 2.4 reads a Final tuple of floats as never set)
+_WINDOW_WEIGHTS: Final[tuple[float, ...]] = _rk.WINDOW_WEIGHTS
 # both windows' step, once a fix, at its compiled code (livematch.core._direct)
-_CALLS = Direct(route_advance=_rk.route_advance)
-_START_ROWS = 4  # a new window's room for live states (grown when a step needs more)
+_CALLS: Final = Direct(route_advance=_rk.route_advance)
+# its answer, each window's (k, fresh, most, seg, pos): typed, so that the compiled
+# module unpacks it without iterating
+_Advanced = tuple[int, int, float, int, float, int, int, float, int, float]
+_START_ROWS: Final = 4  # a new window's room for live states (grown when a step needs more)
 #: A window with room for more than this many states while it holds no more than half
 #: of that gives the room back (keeps this many): a fresh start beside many route
 #: segments grows a window to hundreds of rows, kilobytes per vehicle kept for good
 #: otherwise. Room changes no answer (a step that needs more grows it and runs again).
-_KEEP_ROWS = 16
-_SHRINK_LEN = 1 + _rk.ROW * _KEEP_ROWS
+_KEEP_ROWS: Final = 16
+_SHRINK_LEN: Final = 1 + _rk.ROW * _KEEP_ROWS
 #: ... once it has followed the fixes this long: a window that dies and starts afresh
 #: every few fixes (fixes far apart) would grow again at its next start, an extra pass
 #: of the compiled start over the route each time.
-_SETTLED_FIXES = 16
+_SETTLED_FIXES: Final = 16
 
 
 def _step_scalars(eps: float, x0: float, y0: float, x1: float, y1: float,
@@ -413,9 +417,10 @@ class RouteMonitor:
         fa = chain.forward_arrays
         fwd = self.fwd
         rev = self.rev
-        k, fresh, most, seg, pos, bk, bfresh, bmost, bseg, bpos = _CALLS.route_advance(
+        answer: _Advanced = _CALLS.route_advance(
             chain.chainf, chain.chaini, chain.split_f, chain.split_i, fa.fbuf, fa.ibuf,
             fwd.w, rev.w, eps, x0, y0, x, y, step_m)
+        k, fresh, most, seg, pos, bk, bfresh, bmost, bseg, bpos = answer
         t = fix.t
         if k >= 0:
             fwd.done(k, fresh, most, seg, pos, seq, t)

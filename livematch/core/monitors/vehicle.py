@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable, Iterable
-from typing import Any
+from typing import Any, Final
 
 from livematch.core.events import Alert
 from livematch.core.fix import Fix
@@ -19,13 +19,13 @@ from livematch.core.monitors.presence import OffNetworkMonitor, StaleWatch
 from livematch.core.monitors.route import RouteChain, RouteMonitor
 from livematch.core.monitors.settings import AlertSettings
 
-STATE_VERSION = 1
+STATE_VERSION: Final = 1
 #: A vehicle that moved less than this (squared metres, 8 m) since its last fence probe
 #: gets the probe's clearance measured (``FenceSet.probe_clear``), so that its next fixes
 #: can skip the probe; a faster one would rarely stay within it (the clearances of the
 #: probes of ``bench/ab.py --what pipeline``'s drives: median 3.4 m, a throwaway
 #: count). A choice of cost only: the answers are the same either way.
-_SLOW_M2 = 64.0
+_SLOW_M2: Final = 64.0
 
 
 class VehicleAlerts:
