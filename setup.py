@@ -46,6 +46,11 @@ NATIVE = [
     "livematch/core/monitors/route.py",
     "livematch/core/monitors/vehicle.py",
     "livematch/core/monitors/presence.py",
+    "livematch/core/fix.py",
+    "livematch/core/events.py",
+    "livematch/core/geometry.py",
+    "livematch/feed/decode.py",
+    "livematch/pipeline.py",
 ]
 
 #: The shared library the compiled modules link against, inside the package (a name

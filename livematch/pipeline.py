@@ -103,7 +103,12 @@ from livematch.core.monitors.vehicle import VehicleAlerts
 from livematch.core.network import RoadNetwork
 from livematch.core.settings import MatchSettings
 from livematch.core.tracker import Tracker
-from livematch.errors import BadConfigError, BadMessageError, BadStateError, LivematchError
+from livematch.errors import (
+    BadConfigError,
+    BadMessageError,
+    BadStateError,
+    UnknownVehicleError,
+)
 from livematch.feed.decode import (
     FeedLimits,
     PositionReader,
@@ -112,6 +117,7 @@ from livematch.feed.decode import (
     validate_vehicle,
     vehicle_from_topic,
 )
+from livematch.wire import Blob as _Blob
 
 __all__ = [
     "CONTROL_TOPIC",
@@ -145,7 +151,7 @@ CONTROL_TOPIC = "livematch/control/+/route"
 _DEFAULT_LIMITS = FeedLimits()
 
 
-@dataclass(frozen=True, slots=True, init=False)
+@dataclass(frozen=True, slots=True)
 class Output:
     """One thing to publish.
 
@@ -155,40 +161,22 @@ class Output:
         record: the JSON contract record; for rejects ``at``, ``topic``, ``reason``,
             ``detail``, ``payload`` (the payload as text, at most 512 characters).
 
-    One or two are made per message: ``__init__`` stores through the slots (the frozen
-    dataclass's generated one goes through ``object.__setattr__`` by name, about twice
-    the cost); equality, ``repr`` and immutability are the dataclass's.
+    One or two are made per message: the compiled build (setup.py's ``NATIVE``) makes it
+    a native class whose generated ``__init__`` stores each field directly; equality,
+    ``repr`` and immutability are the dataclass's.
     """
 
     kind: str
     vehicle: str | None
     record: dict[str, Any]
 
-    def __init__(self, kind: str, vehicle: str | None, record: dict[str, Any]) -> None:
-        _set_kind(self, kind)
-        _set_vehicle(self, vehicle)
-        _set_record(self, record)
+    def __reduce__(self) -> tuple[type[Output], tuple[object, ...]]:
+        """Pickle as a call of the constructor.
 
-
-_set_kind = Output.__dict__["kind"].__set__
-_set_vehicle = Output.__dict__["vehicle"].__set__
-_set_record = Output.__dict__["record"].__set__
-
-
-class UnknownVehicleError(LivematchError, KeyError):
-    """The pipeline holds no state for the vehicle asked about."""
-
-    def __str__(self) -> str:
-        return str(self.args[0]) if self.args else ""
-
-
-class _Blob(msgspec.Struct, array_like=True, frozen=True):
-    """Checkpoint layout after the magic and version byte (msgpack array)."""
-
-    vehicle: str
-    recent: list[float]
-    tracker: bytes
-    alerts: bytes = b""  # the monitors' state: v3 msgpack, v2 zlib-compressed JSON
+        See :meth:`livematch.core.events.Assignment.__reduce__`: compiled, the frozen class
+        refuses to be restored field by field.
+        """
+        return type(self), (self.kind, self.vehicle, self.record)
 
 
 def _plain_number(value: Any) -> float:

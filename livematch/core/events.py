@@ -15,7 +15,7 @@ from typing import Any
 from livematch.core.network import RoadNetwork
 
 
-@dataclass(frozen=True, slots=True, init=False)
+@dataclass(frozen=True, slots=True)
 class Assignment:
     """The live road assignment of one accepted fix (provisional: ``committed`` false).
 
@@ -23,10 +23,9 @@ class Assignment:
     ``window_fixes`` fixes (spanning ``window_s`` seconds) lie within Fréchet distance
     ``eps_m`` of a road path ending on ``segment``.
 
-    One is made per accepted fix, so ``__init__`` (as those of :class:`MatchedFix` and
-    :class:`Commit`) is written by hand: it stores each field through its slot, where the
-    frozen dataclass's generated one goes through ``object.__setattr__`` by name at about
-    twice the cost. Equality, ``repr`` and immutability are the dataclass's own.
+    One is made per accepted fix: the compiled build (setup.py's ``NATIVE``) makes this
+    and the other event classes native classes whose generated ``__init__`` stores each
+    field directly. Equality, ``repr`` and immutability are the dataclass's own.
     """
 
     vehicle: str
@@ -40,21 +39,17 @@ class Assignment:
     window_s: float
     kind: str = field(default="assignment", init=False)
 
-    def __init__(self, vehicle: str, t: float, segment: int, offset_m: float, x: float,
-                 y: float, eps_m: float, window_fixes: int, window_s: float) -> None:
-        _a_vehicle(self, vehicle)
-        _a_t(self, t)
-        _a_segment(self, segment)
-        _a_offset_m(self, offset_m)
-        _a_x(self, x)
-        _a_y(self, y)
-        _a_eps_m(self, eps_m)
-        _a_window_fixes(self, window_fixes)
-        _a_window_s(self, window_s)
-        _a_kind(self, "assignment")
+    def __reduce__(self) -> tuple[type[Assignment], tuple[object, ...]]:
+        """Pickle as a call of the constructor.
+
+        The compiled class (setup.py ``NATIVE``) cannot be restored field by field as
+        pickle would: its frozen ``__setattr__`` refuses.
+        """
+        return type(self), (self.vehicle, self.t, self.segment, self.offset_m, self.x,
+                            self.y, self.eps_m, self.window_fixes, self.window_s)
 
 
-@dataclass(frozen=True, slots=True, init=False)
+@dataclass(frozen=True, slots=True)
 class HeldAssignment(Assignment):
     """The newest live answer repeated for a fix the filters refused (``hold_filtered``).
 
@@ -66,7 +61,7 @@ class HeldAssignment(Assignment):
     """
 
 
-@dataclass(frozen=True, slots=True, init=False)
+@dataclass(frozen=True, slots=True)
 class MatchedFix:
     """The final answer for one fix inside a commit."""
 
@@ -76,15 +71,12 @@ class MatchedFix:
     x: float
     y: float
 
-    def __init__(self, t: float, segment: int, offset_m: float, x: float, y: float) -> None:
-        _m_t(self, t)
-        _m_segment(self, segment)
-        _m_offset_m(self, offset_m)
-        _m_x(self, x)
-        _m_y(self, y)
+    def __reduce__(self) -> tuple[type[MatchedFix], tuple[object, ...]]:
+        """Pickle as a call of the constructor (see :meth:`Assignment.__reduce__`)."""
+        return type(self), (self.t, self.segment, self.offset_m, self.x, self.y)
 
 
-@dataclass(frozen=True, slots=True, init=False)
+@dataclass(frozen=True, slots=True)
 class Commit:
     """A settled stretch: final answers for some fixes and the connected path driven."""
 
@@ -93,24 +85,9 @@ class Commit:
     path: tuple[int, ...]
     kind: str = field(default="commit", init=False)
 
-    def __init__(self, vehicle: str, fixes: tuple[MatchedFix, ...],
-                 path: tuple[int, ...]) -> None:
-        _c_vehicle(self, vehicle)
-        _c_fixes(self, fixes)
-        _c_path(self, path)
-        _c_kind(self, "commit")
-
-
-# The slots' own setters, for the hand-written __init__ methods above (they bypass the
-# frozen __setattr__, as the generated __init__ does).
-_a_vehicle, _a_t, _a_segment, _a_offset_m, _a_x, _a_y, _a_eps_m, _a_window_fixes, \
-    _a_window_s, _a_kind = (Assignment.__dict__[name].__set__ for name in (
-        "vehicle", "t", "segment", "offset_m", "x", "y", "eps_m", "window_fixes", "window_s",
-        "kind"))
-_m_t, _m_segment, _m_offset_m, _m_x, _m_y = (
-    MatchedFix.__dict__[name].__set__ for name in ("t", "segment", "offset_m", "x", "y"))
-_c_vehicle, _c_fixes, _c_path, _c_kind = (
-    Commit.__dict__[name].__set__ for name in ("vehicle", "fixes", "path", "kind"))
+    def __reduce__(self) -> tuple[type[Commit], tuple[object, ...]]:
+        """Pickle as a call of the constructor (see :meth:`Assignment.__reduce__`)."""
+        return type(self), (self.vehicle, self.fixes, self.path)
 
 
 @dataclass(frozen=True, slots=True)
@@ -123,6 +100,10 @@ class Alert:
     facts: dict[str, Any]
     kind: str = field(default="alert", init=False)
 
+    def __reduce__(self) -> tuple[type[Alert], tuple[object, ...]]:
+        """Pickle as a call of the constructor (see :meth:`Assignment.__reduce__`)."""
+        return type(self), (self.vehicle, self.t, self.alert_kind, self.facts)
+
 
 @dataclass(frozen=True, slots=True)
 class Filtered:
@@ -132,6 +113,10 @@ class Filtered:
     t: float
     reason: str
     kind: str = field(default="filtered", init=False)
+
+    def __reduce__(self) -> tuple[type[Filtered], tuple[object, ...]]:
+        """Pickle as a call of the constructor (see :meth:`Assignment.__reduce__`)."""
+        return type(self), (self.vehicle, self.t, self.reason)
 
 
 Event = Assignment | HeldAssignment | Commit | Alert | Filtered

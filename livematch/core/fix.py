@@ -5,7 +5,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 
-@dataclass(frozen=True, slots=True, init=False)
+@dataclass(frozen=True, slots=True)
 class Fix:
     """One vehicle position, already projected to the network's metres.
 
@@ -19,10 +19,9 @@ class Fix:
         heading: reported heading in degrees clockwise from north, if any.
         route: assigned route id carried by the message, if any.
 
-    One is made per message, so ``__init__`` is written by hand: it stores each field
-    through its slot (the frozen dataclass's generated ``__init__`` goes through
-    ``object.__setattr__`` by name, about twice the cost). Equality, ``repr`` and the
-    refusal to assign a field afterwards are the dataclass's own.
+    One is made per message: the compiled build (setup.py's ``NATIVE``) makes it a
+    native class whose generated ``__init__`` stores each field directly; equality,
+    ``repr`` and the refusal to assign a field afterwards are the dataclass's own.
 
     Example (a fix with none of the optional fields):
         >>> Fix("bus17", 1700000000.0, 24.94, 60.17, 0.0, 0.0)
@@ -41,29 +40,11 @@ accuracy=None, speed=None, heading=None, route=None)
     heading: float | None = None
     route: str | None = None
 
-    def __init__(self, vehicle: str, t: float, lon: float, lat: float, x: float, y: float,
-                 accuracy: float | None = None, speed: float | None = None,
-                 heading: float | None = None, route: str | None = None) -> None:
-        _set_vehicle(self, vehicle)
-        _set_t(self, t)
-        _set_lon(self, lon)
-        _set_lat(self, lat)
-        _set_x(self, x)
-        _set_y(self, y)
-        _set_accuracy(self, accuracy)
-        _set_speed(self, speed)
-        _set_heading(self, heading)
-        _set_route(self, route)
+    def __reduce__(self) -> tuple[type[Fix], tuple[object, ...]]:
+        """Pickle as a call of the constructor.
 
-
-# The slots' own setters (bypass the frozen __setattr__, as the generated __init__ does).
-_set_vehicle = Fix.__dict__["vehicle"].__set__
-_set_t = Fix.__dict__["t"].__set__
-_set_lon = Fix.__dict__["lon"].__set__
-_set_lat = Fix.__dict__["lat"].__set__
-_set_x = Fix.__dict__["x"].__set__
-_set_y = Fix.__dict__["y"].__set__
-_set_accuracy = Fix.__dict__["accuracy"].__set__
-_set_speed = Fix.__dict__["speed"].__set__
-_set_heading = Fix.__dict__["heading"].__set__
-_set_route = Fix.__dict__["route"].__set__
+        The compiled class (setup.py ``NATIVE``) cannot be restored field by field as
+        pickle would: its frozen ``__setattr__`` refuses.
+        """
+        return type(self), (self.vehicle, self.t, self.lon, self.lat, self.x, self.y,
+                            self.accuracy, self.speed, self.heading, self.route)
