@@ -149,9 +149,11 @@ _READABLE_VERSIONS = (1, 2, 3)
 #: Default topic filter of the route control messages; its ``+`` level is the vehicle.
 CONTROL_TOPIC = "livematch/control/+/route"
 _DEFAULT_LIMITS = FeedLimits()
+#: Whether this module runs compiled (mypyc): see ``livematch.core.fix._COMPILED``.
+_COMPILED: typing.Final = not __file__.endswith(".py")
 
 
-@dataclass(frozen=True, slots=True)
+@dataclass(frozen=True, slots=True, init=False)
 class Output:
     """One thing to publish.
 
@@ -161,14 +163,25 @@ class Output:
         record: the JSON contract record; for rejects ``at``, ``topic``, ``reason``,
             ``detail``, ``payload`` (the payload as text, at most 512 characters).
 
-    One or two are made per message: the compiled build (setup.py's ``NATIVE``) makes it
-    a native class whose generated ``__init__`` stores each field directly; equality,
-    ``repr`` and immutability are the dataclass's.
+    One or two are made per message, so ``__init__`` is written by hand as
+    :class:`~livematch.core.fix.Fix`'s is (compiled: direct stores; as Python: through
+    the slots); equality, ``repr`` and immutability are the dataclass's.
     """
 
     kind: str
     vehicle: str | None
     record: dict[str, Any]
+
+    def __init__(self, kind: str, vehicle: str | None, record: dict[str, Any]) -> None:
+        if _COMPILED:  # native object: direct stores (its frozen __setattr__ is not called)
+            self.kind = kind  # type: ignore[misc]
+            self.vehicle = vehicle  # type: ignore[misc]
+            self.record = record  # type: ignore[misc]
+            return
+        # pure Python: through the slots' own setters, as the generated __init__ does
+        _set_kind(self, kind)
+        _set_vehicle(self, vehicle)
+        _set_record(self, record)
 
     def __reduce__(self) -> tuple[type[Output], tuple[object, ...]]:
         """Pickle as a call of the constructor.
@@ -177,6 +190,11 @@ class Output:
         refuses to be restored field by field.
         """
         return type(self), (self.kind, self.vehicle, self.record)
+
+
+_set_kind = vars(Output)["kind"].__set__
+_set_vehicle = vars(Output)["vehicle"].__set__
+_set_record = vars(Output)["record"].__set__
 
 
 def _plain_number(value: Any) -> float:

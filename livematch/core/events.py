@@ -10,12 +10,18 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from math import floor
-from typing import Any
+from typing import Any, Final
 
 from livematch.core.network import RoadNetwork
 
+#: Whether this module runs compiled (mypyc, setup.py ``NATIVE``): the hand-written
+#: ``__init__`` methods below then store each field directly into the native object, a
+#: few nanoseconds; as Python they go through the slots' own setters (the frozen
+#: ``__setattr__`` would refuse a plain assignment).
+_COMPILED: Final = not __file__.endswith(".py")
 
-@dataclass(frozen=True, slots=True)
+
+@dataclass(frozen=True, slots=True, init=False)
 class Assignment:
     """The live road assignment of one accepted fix (provisional: ``committed`` false).
 
@@ -23,9 +29,12 @@ class Assignment:
     ``window_fixes`` fixes (spanning ``window_s`` seconds) lie within Fréchet distance
     ``eps_m`` of a road path ending on ``segment``.
 
-    One is made per accepted fix: the compiled build (setup.py's ``NATIVE``) makes this
-    and the other event classes native classes whose generated ``__init__`` stores each
-    field directly. Equality, ``repr`` and immutability are the dataclass's own.
+    One is made per accepted fix, so ``__init__`` (as those of :class:`MatchedFix` and
+    :class:`Commit`) is written by hand: compiled (mypyc) it stores each field straight
+    into the native object (the dataclass's generated ``__init__``, Python even in a
+    compiled class, sets each field by name); as Python it stores through the slots (the generated
+    one goes through ``object.__setattr__`` by name, about twice the cost). Equality,
+    ``repr`` and immutability are the dataclass's own.
     """
 
     vehicle: str
@@ -39,6 +48,32 @@ class Assignment:
     window_s: float
     kind: str = field(default="assignment", init=False)
 
+    def __init__(self, vehicle: str, t: float, segment: int, offset_m: float, x: float,
+                 y: float, eps_m: float, window_fixes: int, window_s: float) -> None:
+        if _COMPILED:  # native object: direct stores (its frozen __setattr__ is not called)
+            self.vehicle = vehicle  # type: ignore[misc]
+            self.t = t  # type: ignore[misc]
+            self.segment = segment  # type: ignore[misc]
+            self.offset_m = offset_m  # type: ignore[misc]
+            self.x = x  # type: ignore[misc]
+            self.y = y  # type: ignore[misc]
+            self.eps_m = eps_m  # type: ignore[misc]
+            self.window_fixes = window_fixes  # type: ignore[misc]
+            self.window_s = window_s  # type: ignore[misc]
+            self.kind = "assignment"  # type: ignore[misc]
+            return
+        # pure Python: through the slots' own setters, as the generated __init__ does
+        _a_vehicle(self, vehicle)
+        _a_t(self, t)
+        _a_segment(self, segment)
+        _a_offset_m(self, offset_m)
+        _a_x(self, x)
+        _a_y(self, y)
+        _a_eps_m(self, eps_m)
+        _a_window_fixes(self, window_fixes)
+        _a_window_s(self, window_s)
+        _a_kind(self, "assignment")
+
     def __reduce__(self) -> tuple[type[Assignment], tuple[object, ...]]:
         """Pickle as a call of the constructor.
 
@@ -49,7 +84,7 @@ class Assignment:
                             self.y, self.eps_m, self.window_fixes, self.window_s)
 
 
-@dataclass(frozen=True, slots=True)
+@dataclass(frozen=True, slots=True, init=False)
 class HeldAssignment(Assignment):
     """The newest live answer repeated for a fix the filters refused (``hold_filtered``).
 
@@ -61,7 +96,7 @@ class HeldAssignment(Assignment):
     """
 
 
-@dataclass(frozen=True, slots=True)
+@dataclass(frozen=True, slots=True, init=False)
 class MatchedFix:
     """The final answer for one fix inside a commit."""
 
@@ -71,12 +106,27 @@ class MatchedFix:
     x: float
     y: float
 
+    def __init__(self, t: float, segment: int, offset_m: float, x: float, y: float) -> None:
+        if _COMPILED:  # native object: direct stores (its frozen __setattr__ is not called)
+            self.t = t  # type: ignore[misc]
+            self.segment = segment  # type: ignore[misc]
+            self.offset_m = offset_m  # type: ignore[misc]
+            self.x = x  # type: ignore[misc]
+            self.y = y  # type: ignore[misc]
+            return
+        # pure Python: through the slots' own setters, as the generated __init__ does
+        _m_t(self, t)
+        _m_segment(self, segment)
+        _m_offset_m(self, offset_m)
+        _m_x(self, x)
+        _m_y(self, y)
+
     def __reduce__(self) -> tuple[type[MatchedFix], tuple[object, ...]]:
         """Pickle as a call of the constructor (see :meth:`Assignment.__reduce__`)."""
         return type(self), (self.t, self.segment, self.offset_m, self.x, self.y)
 
 
-@dataclass(frozen=True, slots=True)
+@dataclass(frozen=True, slots=True, init=False)
 class Commit:
     """A settled stretch: final answers for some fixes and the connected path driven."""
 
@@ -85,9 +135,35 @@ class Commit:
     path: tuple[int, ...]
     kind: str = field(default="commit", init=False)
 
+    def __init__(self, vehicle: str, fixes: tuple[MatchedFix, ...],
+                 path: tuple[int, ...]) -> None:
+        if _COMPILED:  # native object: direct stores (its frozen __setattr__ is not called)
+            self.vehicle = vehicle  # type: ignore[misc]
+            self.fixes = fixes  # type: ignore[misc]
+            self.path = path  # type: ignore[misc]
+            self.kind = "commit"  # type: ignore[misc]
+            return
+        # pure Python: through the slots' own setters, as the generated __init__ does
+        _c_vehicle(self, vehicle)
+        _c_fixes(self, fixes)
+        _c_path(self, path)
+        _c_kind(self, "commit")
+
     def __reduce__(self) -> tuple[type[Commit], tuple[object, ...]]:
         """Pickle as a call of the constructor (see :meth:`Assignment.__reduce__`)."""
         return type(self), (self.vehicle, self.fixes, self.path)
+
+
+# The slots' own setters, for the hand-written __init__ methods above when they run as
+# Python (they bypass the frozen __setattr__, as the generated __init__ does).
+_a_vehicle, _a_t, _a_segment, _a_offset_m, _a_x, _a_y, _a_eps_m, _a_window_fixes, \
+    _a_window_s, _a_kind = (vars(Assignment)[name].__set__ for name in (
+        "vehicle", "t", "segment", "offset_m", "x", "y", "eps_m", "window_fixes", "window_s",
+        "kind"))
+_m_t, _m_segment, _m_offset_m, _m_x, _m_y = (
+    vars(MatchedFix)[name].__set__ for name in ("t", "segment", "offset_m", "x", "y"))
+_c_vehicle, _c_fixes, _c_path, _c_kind = (
+    vars(Commit)[name].__set__ for name in ("vehicle", "fixes", "path", "kind"))
 
 
 @dataclass(frozen=True, slots=True)
