@@ -29,8 +29,10 @@ from setuptools import setup
 
 HERE = Path(__file__).resolve().parent
 
-#: The modules compiled with mypyc: the tracker and what it calls on every fix. A module
-#: with numba kernels cannot be listed (numba compiles Python functions, not C ones).
+#: The modules compiled with mypyc: the tracker and what it calls on every fix, and the
+#: rest of the per-message path around it (the fix and event classes, the projection,
+#: the decoder, the pipeline). A module with numba kernels cannot be listed (numba
+#: compiles Python functions, not C ones).
 NATIVE = [
     "livematch/core/tracker.py",
     "livematch/core/candidates.py",
