@@ -9,16 +9,18 @@ writes them, so both produce the same bytes for the same input.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from importlib.machinery import EXTENSION_SUFFIXES
 from math import floor
 from typing import Any, Final
 
 from livematch.core.network import RoadNetwork
 
-#: Whether this module runs compiled (mypyc, setup.py ``NATIVE``): the hand-written
-#: ``__init__`` methods below then store each field directly into the native object, a
-#: few nanoseconds; as Python they go through the slots' own setters (the frozen
-#: ``__setattr__`` would refuse a plain assignment).
-_COMPILED: Final = not __file__.endswith(".py")
+#: Whether this module runs compiled (mypyc, setup.py ``NATIVE``: loaded from an
+#: extension module, not from a ``.py`` or ``.pyc``): the hand-written ``__init__``
+#: methods below then store each field directly into the native object; as Python they
+#: go through the slots' own setters (the frozen ``__setattr__`` would refuse a plain
+#: assignment).
+_COMPILED: Final = __file__.endswith(tuple(EXTENSION_SUFFIXES))
 
 
 @dataclass(frozen=True, slots=True, init=False)
