@@ -74,7 +74,6 @@ from array import array
 from collections import Counter, OrderedDict
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, fields
-from importlib.machinery import EXTENSION_SUFFIXES
 from typing import Any
 
 import msgspec
@@ -151,7 +150,7 @@ _READABLE_VERSIONS = (1, 2, 3)
 CONTROL_TOPIC = "livematch/control/+/route"
 _DEFAULT_LIMITS = FeedLimits()
 #: Whether this module runs compiled (mypyc): see ``livematch.core.fix._COMPILED``.
-_COMPILED: typing.Final = __file__.endswith(tuple(EXTENSION_SUFFIXES))
+_COMPILED: typing.Final = not __file__.endswith((".py", ".pyc"))
 
 
 @dataclass(frozen=True, slots=True, init=False)

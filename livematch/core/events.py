@@ -9,7 +9,6 @@ writes them, so both produce the same bytes for the same input.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from importlib.machinery import EXTENSION_SUFFIXES
 from math import floor
 from typing import Any, Final
 
@@ -20,7 +19,7 @@ from livematch.core.network import RoadNetwork
 #: methods below then store each field directly into the native object; as Python they
 #: go through the slots' own setters (the frozen ``__setattr__`` would refuse a plain
 #: assignment).
-_COMPILED: Final = __file__.endswith(tuple(EXTENSION_SUFFIXES))
+_COMPILED: Final = not __file__.endswith((".py", ".pyc"))
 
 
 @dataclass(frozen=True, slots=True, init=False)

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
-from importlib.machinery import EXTENSION_SUFFIXES
 from typing import Final
 
 #: Whether this module runs compiled (mypyc, setup.py ``NATIVE``: loaded from an
@@ -11,7 +10,7 @@ from typing import Final
 #: methods below then store each field directly into the native object; as Python they
 #: go through the slots' own setters (the frozen ``__setattr__`` would refuse a plain
 #: assignment).
-_COMPILED: Final = __file__.endswith(tuple(EXTENSION_SUFFIXES))
+_COMPILED: Final = not __file__.endswith((".py", ".pyc"))
 
 
 @dataclass(frozen=True, slots=True, init=False)
