@@ -29,8 +29,10 @@ from setuptools import setup
 
 HERE = Path(__file__).resolve().parent
 
-#: The modules compiled with mypyc: the tracker and what it calls on every fix. A module
-#: with numba kernels cannot be listed (numba compiles Python functions, not C ones).
+#: The modules compiled with mypyc: the tracker and what it calls on every fix, and the
+#: rest of the per-message path around it (the fix and event classes, the projection,
+#: the decoder, the pipeline). A module with numba kernels cannot be listed (numba
+#: compiles Python functions, not C ones).
 NATIVE = [
     "livematch/core/tracker.py",
     "livematch/core/candidates.py",
@@ -46,6 +48,11 @@ NATIVE = [
     "livematch/core/monitors/route.py",
     "livematch/core/monitors/vehicle.py",
     "livematch/core/monitors/presence.py",
+    "livematch/core/fix.py",
+    "livematch/core/events.py",
+    "livematch/core/geometry.py",
+    "livematch/feed/decode.py",
+    "livematch/pipeline.py",
 ]
 
 #: The shared library the compiled modules link against, inside the package (a name

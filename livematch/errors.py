@@ -40,3 +40,15 @@ class BadStateError(LivematchError):
 
 class UnknownRouteError(LivematchError):
     """A vehicle refers to a route id that is not loaded."""
+
+
+class UnknownVehicleError(LivematchError, KeyError):
+    """The pipeline holds no state for the vehicle asked about.
+
+    Defined here rather than in :mod:`livematch.pipeline` (which exports it too): that
+    module is compiled with mypyc (setup.py ``NATIVE``), which cannot compile a subclass
+    of a built-in exception such as :class:`KeyError` as a native class.
+    """
+
+    def __str__(self) -> str:
+        return str(self.args[0]) if self.args else ""

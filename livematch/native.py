@@ -8,7 +8,7 @@ module in a checkout keeps running the code it was compiled from until it is reb
 ``python -m livematch.native`` prints the state (exit status 1 when stale)::
 
     $ .venv/bin/python -m livematch.native
-    compiled (mypyc): 14 modules, none stale
+    compiled (mypyc): 19 modules, none stale
 
 Rebuild after editing a compiled module: ``.venv/bin/pip install -e .`` (what
 ``scripts/test`` does) or, in a checkout that is not the installed one,

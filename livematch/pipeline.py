@@ -103,7 +103,12 @@ from livematch.core.monitors.vehicle import VehicleAlerts
 from livematch.core.network import RoadNetwork
 from livematch.core.settings import MatchSettings
 from livematch.core.tracker import Tracker
-from livematch.errors import BadConfigError, BadMessageError, BadStateError, LivematchError
+from livematch.errors import (
+    BadConfigError,
+    BadMessageError,
+    BadStateError,
+    UnknownVehicleError,
+)
 from livematch.feed.decode import (
     FeedLimits,
     PositionReader,
@@ -112,6 +117,7 @@ from livematch.feed.decode import (
     validate_vehicle,
     vehicle_from_topic,
 )
+from livematch.wire import Blob as _Blob
 
 __all__ = [
     "CONTROL_TOPIC",
@@ -143,6 +149,8 @@ _READABLE_VERSIONS = (1, 2, 3)
 #: Default topic filter of the route control messages; its ``+`` level is the vehicle.
 CONTROL_TOPIC = "livematch/control/+/route"
 _DEFAULT_LIMITS = FeedLimits()
+#: Whether this module runs compiled (mypyc): see ``livematch.core.fix._COMPILED``.
+_COMPILED: typing.Final = not __file__.endswith((".py", ".pyc"))
 
 
 @dataclass(frozen=True, slots=True, init=False)
@@ -155,9 +163,9 @@ class Output:
         record: the JSON contract record; for rejects ``at``, ``topic``, ``reason``,
             ``detail``, ``payload`` (the payload as text, at most 512 characters).
 
-    One or two are made per message: ``__init__`` stores through the slots (the frozen
-    dataclass's generated one goes through ``object.__setattr__`` by name, about twice
-    the cost); equality, ``repr`` and immutability are the dataclass's.
+    One or two are made per message, so ``__init__`` is written by hand as
+    :class:`~livematch.core.fix.Fix`'s is (compiled: direct stores; as Python: through
+    the slots); equality, ``repr`` and immutability are the dataclass's.
     """
 
     kind: str
@@ -165,30 +173,28 @@ class Output:
     record: dict[str, Any]
 
     def __init__(self, kind: str, vehicle: str | None, record: dict[str, Any]) -> None:
+        if _COMPILED:  # native object: direct stores (its frozen __setattr__ is not called)
+            self.kind = kind  # type: ignore[misc]
+            self.vehicle = vehicle  # type: ignore[misc]
+            self.record = record  # type: ignore[misc]
+            return
+        # pure Python: through the slots' own setters, as the generated __init__ does
         _set_kind(self, kind)
         _set_vehicle(self, vehicle)
         _set_record(self, record)
 
+    def __reduce__(self) -> tuple[type[Output], tuple[object, ...]]:
+        """Pickle as a call of the constructor.
 
-_set_kind = Output.__dict__["kind"].__set__
-_set_vehicle = Output.__dict__["vehicle"].__set__
-_set_record = Output.__dict__["record"].__set__
-
-
-class UnknownVehicleError(LivematchError, KeyError):
-    """The pipeline holds no state for the vehicle asked about."""
-
-    def __str__(self) -> str:
-        return str(self.args[0]) if self.args else ""
+        See :meth:`livematch.core.events.Assignment.__reduce__`: compiled, the frozen class
+        refuses to be restored field by field.
+        """
+        return type(self), (self.kind, self.vehicle, self.record)
 
 
-class _Blob(msgspec.Struct, array_like=True, frozen=True):
-    """Checkpoint layout after the magic and version byte (msgpack array)."""
-
-    vehicle: str
-    recent: list[float]
-    tracker: bytes
-    alerts: bytes = b""  # the monitors' state: v3 msgpack, v2 zlib-compressed JSON
+_set_kind = vars(Output)["kind"].__set__
+_set_vehicle = vars(Output)["vehicle"].__set__
+_set_record = vars(Output)["record"].__set__
 
 
 def _plain_number(value: Any) -> float:

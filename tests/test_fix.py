@@ -1,4 +1,4 @@
-"""The position fix (livematch.core.fix): a frozen dataclass with a hand-written __init__."""
+"""The position fix (livematch.core.fix): a frozen slotted dataclass (compiled with mypyc)."""
 
 from __future__ import annotations
 

@@ -108,3 +108,28 @@ def test_checkpoint_crosses_builds() -> None:
     assert rest_a == rest_b
     c = tracker_module.Tracker.from_bytes(net, settings, b.to_bytes())
     assert c.to_bytes() == b.to_bytes()
+
+
+def test_hand_written_inits_know_how_they_run() -> None:
+    """``_COMPILED`` (which way the hand-written ``__init__`` of the per-fix classes
+    stores) is true exactly where the module was loaded from an extension module, and
+    either way the classes stay frozen and equal to their keyword-built twins."""
+    import dataclasses
+
+    from livematch import pipeline
+    from livematch.core import events, fix
+
+    for module in (fix, events, pipeline):
+        loaded = module.__file__ or ""
+        compiled = module._COMPILED  # type: ignore[attr-defined]
+        assert compiled == loaded.endswith(tuple(importlib.machinery.EXTENSION_SUFFIXES))
+    a = events.Assignment("v", 1.0, 2, 3.0, 4.0, 5.0, 15.0, 3, 2.0)
+    assert a == events.Assignment(vehicle="v", t=1.0, segment=2, offset_m=3.0, x=4.0, y=5.0,
+                                  eps_m=15.0, window_fixes=3, window_s=2.0)
+    assert a.kind == "assignment" and events.Commit("v", (), ()).kind == "commit"
+    out = pipeline.Output("assignment", "v", {"k": 1})
+    assert (out.kind, out.vehicle, out.record) == ("assignment", "v", {"k": 1})
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        a.t = 2.0  # type: ignore[misc]
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        out.kind = "commit"  # type: ignore[misc]

@@ -5,6 +5,7 @@ from __future__ import annotations
 import asyncio
 import time
 from pathlib import Path
+from typing import Any
 
 import aiomqtt
 import paho.mqtt.client as mqtt
@@ -20,14 +21,24 @@ from livematch.service.mqtt import JUNK_KEY, IntakeQueue
 pytest_plugins = ("fixtures_services",)
 
 
-class SlowPipeline(Pipeline):
-    """The real pipeline, made slower than the feed by sleeping in every message."""
+class SlowPipeline:
+    """The real pipeline, made slower than the feed by sleeping in every message.
+
+    It wraps a :class:`Pipeline` rather than subclassing it: the compiled class (mypyc,
+    setup.py ``NATIVE``) cannot be subclassed from Python.
+    """
 
     delay_s = 0.004
 
+    def __init__(self, *args: Any, **kwargs: Any) -> None:
+        self.inner = Pipeline(*args, **kwargs)
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self.inner, name)
+
     def handle(self, topic: str, payload: bytes, at: float) -> list[Output]:
         time.sleep(self.delay_s)  # blocks the event loop, as a heavy fix would
-        return super().handle(topic, payload, at)
+        return self.inner.handle(topic, payload, at)
 
 
 def publish_all(port: int, messages: list[tuple[str, bytes]], qos: int) -> None:

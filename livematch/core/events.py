@@ -10,9 +10,16 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from math import floor
-from typing import Any
+from typing import Any, Final
 
 from livematch.core.network import RoadNetwork
+
+#: Whether this module runs compiled (mypyc, setup.py ``NATIVE``: loaded from an
+#: extension module, not from a ``.py`` or ``.pyc``): the hand-written ``__init__``
+#: methods below then store each field directly into the native object; as Python they
+#: go through the slots' own setters (the frozen ``__setattr__`` would refuse a plain
+#: assignment).
+_COMPILED: Final = not __file__.endswith((".py", ".pyc"))
 
 
 @dataclass(frozen=True, slots=True, init=False)
@@ -24,9 +31,11 @@ class Assignment:
     ``eps_m`` of a road path ending on ``segment``.
 
     One is made per accepted fix, so ``__init__`` (as those of :class:`MatchedFix` and
-    :class:`Commit`) is written by hand: it stores each field through its slot, where the
-    frozen dataclass's generated one goes through ``object.__setattr__`` by name at about
-    twice the cost. Equality, ``repr`` and immutability are the dataclass's own.
+    :class:`Commit`) is written by hand: compiled (mypyc) it stores each field straight
+    into the native object (the dataclass's generated ``__init__``, Python even in a
+    compiled class, sets each field by name); as Python it stores through the slots (the generated
+    one goes through ``object.__setattr__`` by name, about twice the cost). Equality,
+    ``repr`` and immutability are the dataclass's own.
     """
 
     vehicle: str
@@ -42,6 +51,19 @@ class Assignment:
 
     def __init__(self, vehicle: str, t: float, segment: int, offset_m: float, x: float,
                  y: float, eps_m: float, window_fixes: int, window_s: float) -> None:
+        if _COMPILED:  # native object: direct stores (its frozen __setattr__ is not called)
+            self.vehicle = vehicle  # type: ignore[misc]
+            self.t = t  # type: ignore[misc]
+            self.segment = segment  # type: ignore[misc]
+            self.offset_m = offset_m  # type: ignore[misc]
+            self.x = x  # type: ignore[misc]
+            self.y = y  # type: ignore[misc]
+            self.eps_m = eps_m  # type: ignore[misc]
+            self.window_fixes = window_fixes  # type: ignore[misc]
+            self.window_s = window_s  # type: ignore[misc]
+            self.kind = "assignment"  # type: ignore[misc]
+            return
+        # pure Python: through the slots' own setters, as the generated __init__ does
         _a_vehicle(self, vehicle)
         _a_t(self, t)
         _a_segment(self, segment)
@@ -52,6 +74,15 @@ class Assignment:
         _a_window_fixes(self, window_fixes)
         _a_window_s(self, window_s)
         _a_kind(self, "assignment")
+
+    def __reduce__(self) -> tuple[type[Assignment], tuple[object, ...]]:
+        """Pickle as a call of the constructor.
+
+        The compiled class (setup.py ``NATIVE``) cannot be restored field by field as
+        pickle would: its frozen ``__setattr__`` refuses.
+        """
+        return type(self), (self.vehicle, self.t, self.segment, self.offset_m, self.x,
+                            self.y, self.eps_m, self.window_fixes, self.window_s)
 
 
 @dataclass(frozen=True, slots=True, init=False)
@@ -77,11 +108,23 @@ class MatchedFix:
     y: float
 
     def __init__(self, t: float, segment: int, offset_m: float, x: float, y: float) -> None:
+        if _COMPILED:  # native object: direct stores (its frozen __setattr__ is not called)
+            self.t = t  # type: ignore[misc]
+            self.segment = segment  # type: ignore[misc]
+            self.offset_m = offset_m  # type: ignore[misc]
+            self.x = x  # type: ignore[misc]
+            self.y = y  # type: ignore[misc]
+            return
+        # pure Python: through the slots' own setters, as the generated __init__ does
         _m_t(self, t)
         _m_segment(self, segment)
         _m_offset_m(self, offset_m)
         _m_x(self, x)
         _m_y(self, y)
+
+    def __reduce__(self) -> tuple[type[MatchedFix], tuple[object, ...]]:
+        """Pickle as a call of the constructor (see :meth:`Assignment.__reduce__`)."""
+        return type(self), (self.t, self.segment, self.offset_m, self.x, self.y)
 
 
 @dataclass(frozen=True, slots=True, init=False)
@@ -95,22 +138,33 @@ class Commit:
 
     def __init__(self, vehicle: str, fixes: tuple[MatchedFix, ...],
                  path: tuple[int, ...]) -> None:
+        if _COMPILED:  # native object: direct stores (its frozen __setattr__ is not called)
+            self.vehicle = vehicle  # type: ignore[misc]
+            self.fixes = fixes  # type: ignore[misc]
+            self.path = path  # type: ignore[misc]
+            self.kind = "commit"  # type: ignore[misc]
+            return
+        # pure Python: through the slots' own setters, as the generated __init__ does
         _c_vehicle(self, vehicle)
         _c_fixes(self, fixes)
         _c_path(self, path)
         _c_kind(self, "commit")
 
+    def __reduce__(self) -> tuple[type[Commit], tuple[object, ...]]:
+        """Pickle as a call of the constructor (see :meth:`Assignment.__reduce__`)."""
+        return type(self), (self.vehicle, self.fixes, self.path)
 
-# The slots' own setters, for the hand-written __init__ methods above (they bypass the
-# frozen __setattr__, as the generated __init__ does).
+
+# The slots' own setters, for the hand-written __init__ methods above when they run as
+# Python (they bypass the frozen __setattr__, as the generated __init__ does).
 _a_vehicle, _a_t, _a_segment, _a_offset_m, _a_x, _a_y, _a_eps_m, _a_window_fixes, \
-    _a_window_s, _a_kind = (Assignment.__dict__[name].__set__ for name in (
+    _a_window_s, _a_kind = (vars(Assignment)[name].__set__ for name in (
         "vehicle", "t", "segment", "offset_m", "x", "y", "eps_m", "window_fixes", "window_s",
         "kind"))
 _m_t, _m_segment, _m_offset_m, _m_x, _m_y = (
-    MatchedFix.__dict__[name].__set__ for name in ("t", "segment", "offset_m", "x", "y"))
+    vars(MatchedFix)[name].__set__ for name in ("t", "segment", "offset_m", "x", "y"))
 _c_vehicle, _c_fixes, _c_path, _c_kind = (
-    Commit.__dict__[name].__set__ for name in ("vehicle", "fixes", "path", "kind"))
+    vars(Commit)[name].__set__ for name in ("vehicle", "fixes", "path", "kind"))
 
 
 @dataclass(frozen=True, slots=True)
@@ -123,6 +177,10 @@ class Alert:
     facts: dict[str, Any]
     kind: str = field(default="alert", init=False)
 
+    def __reduce__(self) -> tuple[type[Alert], tuple[object, ...]]:
+        """Pickle as a call of the constructor (see :meth:`Assignment.__reduce__`)."""
+        return type(self), (self.vehicle, self.t, self.alert_kind, self.facts)
+
 
 @dataclass(frozen=True, slots=True)
 class Filtered:
@@ -132,6 +190,10 @@ class Filtered:
     t: float
     reason: str
     kind: str = field(default="filtered", init=False)
+
+    def __reduce__(self) -> tuple[type[Filtered], tuple[object, ...]]:
+        """Pickle as a call of the constructor (see :meth:`Assignment.__reduce__`)."""
+        return type(self), (self.vehicle, self.t, self.reason)
 
 
 Event = Assignment | HeldAssignment | Commit | Alert | Filtered

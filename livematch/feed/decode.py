@@ -40,6 +40,7 @@ import msgspec
 from livematch.core.fix import Fix
 from livematch.core.geometry import Projection
 from livematch.errors import BadMessageError
+from livematch.wire import Message as _Message
 
 __all__ = [
     "REASONS",
@@ -162,19 +163,6 @@ class FeedLimits:
 @functools.lru_cache(maxsize=64)
 def _year_start(year: int) -> float:
     return datetime(year, 1, 1, tzinfo=UTC).timestamp()
-
-
-class _Message(msgspec.Struct, frozen=True):
-    """The wire form; types are enforced by msgspec while parsing, ranges afterwards."""
-
-    time: str | float
-    lat: float
-    lon: float
-    vehicle: str | None = None
-    accuracy: float | None = None
-    speed: float | None = None
-    heading: float | None = None
-    route: str | None = None
 
 
 _DECODER = msgspec.json.Decoder(_Message)
