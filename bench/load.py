@@ -774,7 +774,10 @@ def probe(argv: list[str], out_path: str, nodelay: bool, freeze: bool, inflight:
     asyncio.run = run  # type: ignore[assignment]
 
     def dump() -> None:
+        from livematch.native import describe
+
         rec["objects_at_exit"] = [len(gc.get_objects()), gc.get_freeze_count()]
+        rec["native"] = describe()  # which build ran: compiled or from source
         Path(out_path).write_text(json.dumps(rec), encoding="utf-8")
 
     atexit.register(dump)
@@ -1250,6 +1253,20 @@ def cpu_per_fix(rate: int, seconds: int, repeat: int, generators: int, systems: 
                     row["pipeline_ms_per_fix"] = {
                         name: round(sum(r[2] for r in rec[name] if a <= r[0] <= b)
                                     / fixes, 4) for name in ("handle", "export", "tick")}
+                    # the handle calls' CPU one by one: mean and median (µs), and the
+                    # collections during the window (their pauses fall inside handle)
+                    calls = sorted(r[2] for r in rec["handle"] if a <= r[0] <= b)
+                    row["handle_us"] = {
+                        "calls": len(calls),
+                        "mean": round(statistics.fmean(calls) * 1000, 1) if calls else None,
+                        "median": round(statistics.median(calls) * 1000, 1)
+                        if calls else None}
+                    row["gc_in_window"] = {
+                        str(g): [sum(1 for r in rec["gc"] if a <= r[0] <= b and r[1] == g),
+                                 round(sum(r[2] for r in rec["gc"]
+                                           if a <= r[0] <= b and r[1] == g), 1)]
+                        for g in (0, 1, 2)}
+                    row["probe_native"] = rec.get("native")
                 shutil.rmtree(probe_dir, ignore_errors=True)
                 row["ms_per_fix"] = {role: round(v * 1000 / fixes, 4)
                                      for role, v in row["cpu_s"].items()}
@@ -1358,6 +1375,16 @@ def render_cpu(r: dict[str, Any]) -> str:
     if shells:
         lines.append(f"livematch-1: pipeline {statistics.median(pipes):.3f} and shell "
                      f"{statistics.median(shells):.3f} CPU ms per fix (medians).")
+    for row in rows:
+        calls = row.get("handle_us")
+        if calls and calls["calls"]:
+            collected = row.get("gc_in_window", {})
+            lines.append(
+                f"Round {row['repeat']}, {row['system']} ({row.get('probe_native')}): "
+                f"`Pipeline.handle` CPU per call mean {calls['mean']} µs, median "
+                f"{calls['median']} µs over {calls['calls']:,} calls; collections "
+                "during the step, generation 0 / 1 / 2: " + " / ".join(
+                    f"{n} ({ms} ms)" for n, ms in collected.values()) + ".")
     lines += _two_worker_lines(r)
     if "relay" in systems:
         for s in systems:
