@@ -46,9 +46,9 @@ from typing import Any
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-import load  # noqa: E402  (bench/load.py: the pool, its positions, the daemon's config)
+import load  # bench/load.py: the pool, its positions, the daemon's configuration
 
-from livematch.native import describe  # noqa: E402
+from livematch.native import describe
 
 ROOT = Path(__file__).resolve().parent.parent
 T0 = 1_800_000_000.0  # the epoch second the feed starts (any recent time)
@@ -215,9 +215,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--name", default="loadpath")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     args = ap.parse_args(argv)
-    if args.warm_feed + args.seconds > load.POOL_SECONDS + 70 - load.POOL_SECONDS:
-        pass  # positions past the pool's end repeat its last one, as in the load bench
-    load_avg = "%.2f" % os.getloadavg()[0]
+    if args.warm_feed + args.seconds > 70:
+        ap.error("--warm-feed + --seconds must be at most 70 (as in bench/load.py)")
+    load_avg = f"{os.getloadavg()[0]:.2f}"
     with tempfile.TemporaryDirectory(prefix="lm-loadpath-") as tmp:
         folder = Path(tmp)
         pool_path = folder / "pool.npz"
