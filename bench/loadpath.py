@@ -161,6 +161,8 @@ def one_round(folder: Path, pool: Any, args: argparse.Namespace,
 
 def render(args: argparse.Namespace, rounds: list[dict[str, Any]], load_avg: str) -> str:
     cmd = " ".join(["bench/loadpath.py", *sys.argv[1:]])
+    pure = os.environ.get("LIVEMATCH_PURE_PYTHON", "")
+    env = f"LIVEMATCH_PURE_PYTHON={pure} " if pure else ""
 
     def med(key: str) -> float:
         return statistics.median(r[key] for r in rounds)
@@ -168,12 +170,13 @@ def render(args: argparse.Namespace, rounds: list[dict[str, Any]], load_avg: str
     lines = [
         f"# The daemon's Pipeline.handle on the load bench's feed ({describe()})",
         "",
-        f"Command: `PYTHONPATH=$PWD .venv/bin/python {cmd}`; load average {load_avg}; "
+        f"Command: `{env}PYTHONPATH=$PWD .venv/bin/python {cmd}`; load average {load_avg}; "
         f"{len(rounds)} rounds, each a fresh pipeline; {args.vehicles} vehicles at 1 Hz, "
         f"{args.warm_feed} s warm feed (untimed), {args.seconds} s timed "
         f"({rounds[0]['fixes']:,} fixes); collector {'off' if args.no_gc else 'on'}"
-        + (f"; {args.pollute} KB of other memory read before every "
-           f"{args.pollute_every}th call (untimed)" if args.pollute else "") + ".",
+        + (f"; {args.pollute} KB of other memory read (untimed) before "
+           + ("every call" if args.pollute_every <= 1 else
+              f"one call in {args.pollute_every}") if args.pollute else "") + ".",
         "",
         "| round | CPU µs per fix: mean | median | p99 | top 1 % of fixes' share | "
         "wall mean | outputs per fix | gc gen0 / gen1 / gen2: count (µs per fix) |",
