@@ -104,6 +104,7 @@ import argparse
 import asyncio
 import contextlib
 import functools
+import itertools
 import json
 import os
 import shutil
@@ -139,6 +140,7 @@ MAX_P99_MS = 1000.0
 MAX_GROWTH_MS = 100.0
 CLK_TCK = os.sysconf("SC_CLK_TCK")
 WARM_FEED_S = 0  # --warm-feed: seconds the step's vehicles are fed before its clock starts
+GAP_S = 0.001  # a handle call this long after the previous one ended counts as "after a gap"
 BROKER_NODELAY = False  # --broker-nodelay: mosquitto's set_tcp_nodelay (off by default)
 
 
@@ -774,7 +776,10 @@ def probe(argv: list[str], out_path: str, nodelay: bool, freeze: bool, inflight:
     asyncio.run = run  # type: ignore[assignment]
 
     def dump() -> None:
+        from livematch.native import describe
+
         rec["objects_at_exit"] = [len(gc.get_objects()), gc.get_freeze_count()]
+        rec["native"] = describe()  # which build ran: compiled or from source
         Path(out_path).write_text(json.dumps(rec), encoding="utf-8")
 
     atexit.register(dump)
@@ -1250,6 +1255,32 @@ def cpu_per_fix(rate: int, seconds: int, repeat: int, generators: int, systems: 
                     row["pipeline_ms_per_fix"] = {
                         name: round(sum(r[2] for r in rec[name] if a <= r[0] <= b)
                                     / fixes, 4) for name in ("handle", "export", "tick")}
+                    # the handle calls' CPU one by one: mean and median (µs), and the
+                    # collections during the window (their pauses fall inside handle)
+                    calls = sorted(r[2] for r in rec["handle"] if a <= r[0] <= b)
+                    row["handle_us"] = {
+                        "calls": len(calls),
+                        "mean": round(statistics.fmean(calls) * 1000, 1) if calls else None,
+                        "median": round(statistics.median(calls) * 1000, 1)
+                        if calls else None}
+                    # split by the time since the previous call ended: a call soon after
+                    # another finds the tracker's code and data still in the caches
+                    timed_calls = sorted((r[0] - r[1] / 1000, r[0], r[2]) for r in rec["handle"]
+                                         if a <= r[0] <= b)
+                    soon: list[float] = []
+                    late: list[float] = []
+                    for (_s0, end0, _c0), (start, _e, cpu) in itertools.pairwise(timed_calls):
+                        (soon if start - end0 < GAP_S else late).append(cpu * 1000)
+                    row["handle_us_by_gap"] = {
+                        name: [len(v), round(statistics.fmean(v), 1) if v else None,
+                               round(statistics.median(v), 1) if v else None]
+                        for name, v in (("soon", soon), ("after_gap", late))}
+                    row["gc_in_window"] = {
+                        str(g): [sum(1 for r in rec["gc"] if a <= r[0] <= b and r[1] == g),
+                                 round(sum(r[2] for r in rec["gc"]
+                                           if a <= r[0] <= b and r[1] == g), 1)]
+                        for g in (0, 1, 2)}
+                    row["probe_native"] = rec.get("native")
                 shutil.rmtree(probe_dir, ignore_errors=True)
                 row["ms_per_fix"] = {role: round(v * 1000 / fixes, 4)
                                      for role, v in row["cpu_s"].items()}
@@ -1358,6 +1389,23 @@ def render_cpu(r: dict[str, Any]) -> str:
     if shells:
         lines.append(f"livematch-1: pipeline {statistics.median(pipes):.3f} and shell "
                      f"{statistics.median(shells):.3f} CPU ms per fix (medians).")
+    for row in rows:
+        calls = row.get("handle_us")
+        if calls and calls["calls"]:
+            collected = row.get("gc_in_window", {})
+            lines.append(
+                f"Round {row['repeat']}, {row['system']} ({row.get('probe_native')}): "
+                f"`Pipeline.handle` CPU per call mean {calls['mean']} µs, median "
+                f"{calls['median']} µs over {calls['calls']:,} calls; collections "
+                "during the step, generation 0 / 1 / 2: " + " / ".join(
+                    f"{n} ({ms} ms)" for n, ms in collected.values()) + ".")
+            gaps = row.get("handle_us_by_gap")
+            if gaps:
+                lines.append(
+                    f"  By the time since the previous call ended: within "
+                    f"{GAP_S * 1000:g} ms {gaps['soon'][0]:,} calls, mean {gaps['soon'][1]} / "
+                    f"median {gaps['soon'][2]} µs; later {gaps['after_gap'][0]:,} calls, "
+                    f"mean {gaps['after_gap'][1]} / median {gaps['after_gap'][2]} µs.")
     lines += _two_worker_lines(r)
     if "relay" in systems:
         for s in systems:
