@@ -3,6 +3,9 @@
 from __future__ import annotations
 
 import asyncio
+import select
+import socket
+import ssl
 from typing import Any
 
 import aiomqtt
@@ -417,6 +420,32 @@ async def test_buffered_socket_next_packet_leaves_a_malformed_length_to_paho() -
     paho: Any = client._client
     paho.on_socket_open(paho, None, _Chunks([sock._buf]))
     assert paho.loop_read() == paho_client.MQTT_ERR_PROTOCOL
+
+
+def test_buffered_socket_has_the_sockets_fileno_and_tls_pending() -> None:
+    """``fileno`` and a TLS socket's ``pending`` are the socket's own, looked up without
+    ``__getattr__`` (``drain`` asks for both after every matched message): ``select``
+    sees the wrapper readable when the kernel holds bytes for the socket, a plain socket
+    has no ``pending`` (None, as ``getattr`` with a default gives for it) and an
+    ``ssl.SSLSocket`` (Python's ssl module) its own bound method."""
+    near, far = socket.socketpair()
+    tls = ssl.create_default_context().wrap_socket(socket.socket(), server_hostname="x",
+                                                   do_handshake_on_connect=False)
+    try:
+        wrapped = _BufferedSocket(near, lambda: None)
+        assert wrapped.fileno() == near.fileno()
+        assert wrapped.pending is None and getattr(near, "pending", None) is None
+        assert select.select([wrapped], [], [], 0)[0] == []
+        far.send(b"\x40\x02\x00\x01")
+        assert select.select([wrapped], [], [], 1.0)[0] == [wrapped]
+        over_tls = _BufferedSocket(tls, lambda: None)
+        assert over_tls.pending == tls.pending
+        assert over_tls.pending is not None and over_tls.pending() == tls.pending() == 0
+        assert over_tls.fileno() == tls.fileno()
+    finally:
+        near.close()
+        far.close()
+        tls.close()
 
 
 def _session(expiry: int) -> Properties:
