@@ -412,8 +412,10 @@ def kept_cost(rounds: int = 20, vehicles: int = 500) -> dict[str, Any]:
             "type_check_us": round(min(type_check() for _ in range(3)), 2)}
 
 
-def drain_cost(calls: int = 200_000) -> dict[str, Any]:
-    """Thread CPU of one ``mqtt.drain`` call that finds nothing to read, in µs.
+def shell_cost(calls: int = 200_000, rounds: int = 2_000) -> dict[str, Any]:
+    """Two fixed costs of the daemon's shell, in µs, without broker (``--shell-cost``).
+
+    *drain*: thread CPU of one ``mqtt.drain`` call that finds nothing to read.
 
     The receive loop drains the broker's socket after every matched message (to shed a
     backlog in the intake queue, not at the broker); at 500 fixes/s the socket is
@@ -422,6 +424,12 @@ def drain_cost(calls: int = 200_000) -> dict[str, Any]:
     socket (``mqtt._BufferedSocket``), with an unconnected paho client of the
     livematch on ``PYTHONPATH`` whose socket is that wrapper: best of five passes of
     ``calls`` calls. The same with the plain socket unwrapped beside it.
+
+    *trim step*: process CPU (all threads) of the checkpoint round's trim step when no
+    trim is due (every round but one a minute, twice a second): an
+    ``asyncio.to_thread`` of ``Trimmer.maybe`` (a round trip through the thread pool,
+    as the daemon did) against ``Trimmer.due`` in the event loop; ``rounds`` awaits in
+    one event loop, best of five.
     """
     import aiomqtt
 
@@ -450,8 +458,25 @@ def drain_cost(calls: int = 200_000) -> dict[str, Any]:
     paho._sock = None
     near.close()
     far.close()
+
+    from livematch.service.allocator import Trimmer
+
+    async def trim_steps(thread: bool) -> float:
+        trimmer = Trimmer(3600.0, trim=lambda pad: 1)
+        trimmer.maybe(time.monotonic())  # trimmed just now: none due for an hour
+        t0 = time.process_time()
+        for _ in range(rounds):
+            if thread:
+                await asyncio.to_thread(trimmer.maybe, time.monotonic())
+            else:
+                trimmer.due(time.monotonic())
+        return (time.process_time() - t0) / rounds * 1e6
+
+    via_thread = min(asyncio.run(trim_steps(True)) for _ in range(5))
+    in_loop = min(asyncio.run(trim_steps(False)) for _ in range(5))
     return {"loadavg_1m": load_average(), "calls": calls,
-            "drain_idle_us_buffered": round(wrapped, 3), "drain_idle_us_plain": round(plain, 3)}
+            "drain_idle_us_buffered": round(wrapped, 3), "drain_idle_us_plain": round(plain, 3),
+            "trim_step_us_thread": round(via_thread, 2), "trim_step_us_check": round(in_loop, 3)}
 
 
 def wait_ready(ports: list[int], procs: list[subprocess.Popen[bytes]],
@@ -1918,9 +1943,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--kept-cost", action="store_true",
                     help="only print the thread CPU per message a group worker only keeps "
                          "(another worker's shard), without broker or socket")
-    ap.add_argument("--drain-cost", action="store_true",
-                    help="only print the thread CPU of a drain of the broker's socket that "
-                         "finds nothing (after every matched message), without broker")
+    ap.add_argument("--shell-cost", action="store_true",
+                    help="only print two fixed costs of the daemon's shell (a drain that "
+                         "finds nothing, the trim step of a round), without broker")
     ap.add_argument("--warm-feed", type=int, default=0, metavar="S",
                     help="feed each step's vehicles S seconds before its clock starts "
                          "(a worker group settles its load snapshot meanwhile)")
@@ -1955,8 +1980,8 @@ def main(argv: list[str] | None = None) -> int:
     if args.kept_cost:
         print(json.dumps(kept_cost(rounds=args.kept_rounds)))
         return 0
-    if args.drain_cost:
-        print(json.dumps(drain_cost()))
+    if args.shell_cost:
+        print(json.dumps(shell_cost()))
         return 0
     global BROKER_NODELAY, WARM_FEED_S
     BROKER_NODELAY = args.broker_nodelay
