@@ -412,6 +412,74 @@ def kept_cost(rounds: int = 20, vehicles: int = 500) -> dict[str, Any]:
             "type_check_us": round(min(type_check() for _ in range(3)), 2)}
 
 
+def shell_cost(calls: int = 200_000, rounds: int = 2_000) -> dict[str, Any]:
+    """Two fixed costs of the daemon's shell, in µs, without broker (``--shell-cost``).
+
+    *drain*: thread CPU of one ``mqtt.drain`` call that finds nothing to read.
+
+    The receive loop drains the broker's socket after every matched message (to shed a
+    backlog in the intake queue, not at the broker); at 500 fixes/s the socket is
+    usually empty then, so the call is its own overhead and one ``select``. Measured
+    on a connected pair of local sockets wrapped as ``buffered_reads`` wraps paho's
+    socket (``mqtt._BufferedSocket``), with an unconnected paho client of the
+    livematch on ``PYTHONPATH`` whose socket is that wrapper: best of five passes of
+    ``calls`` calls. The same with the plain socket unwrapped beside it.
+
+    *trim step*: process CPU (all threads) of the checkpoint round's trim step when no
+    trim is due (every round but one a minute, twice a second): an
+    ``asyncio.to_thread`` of ``Trimmer.maybe`` (a round trip through the thread pool,
+    as the daemon did) against ``Trimmer.due`` in the event loop; ``rounds`` awaits in
+    one event loop, best of five.
+    """
+    import aiomqtt
+
+    from livematch.service import mqtt
+
+    near, far = socket.socketpair()
+    near.setblocking(False)
+
+    async def make() -> Any:  # aiomqtt wants a running loop
+        return aiomqtt.Client("127.0.0.1", 1)
+    client = asyncio.run(make())
+    paho = client._client
+
+    def best(sock: Any) -> float:
+        paho._sock = sock
+        times = []
+        for _ in range(5):
+            t0 = time.thread_time()
+            for _ in range(calls):
+                mqtt.drain(client, 100, 0.005)
+            times.append(time.thread_time() - t0)
+        return min(times) / calls * 1e6
+
+    wrapped = best(mqtt._BufferedSocket(near, lambda: None))
+    plain = best(near)
+    paho._sock = None
+    near.close()
+    far.close()
+
+    from livematch.service.allocator import Trimmer
+
+    async def trim_steps(thread: bool) -> float:
+        trimmer = Trimmer(3600.0, trim=lambda pad: 1)
+        trimmer.maybe(time.monotonic())  # trimmed just now: none due for an hour
+        t0 = time.process_time()
+        for _ in range(rounds):
+            if thread:
+                await asyncio.to_thread(trimmer.maybe, time.monotonic())
+            else:
+                trimmer.due(time.monotonic())
+        return (time.process_time() - t0) / rounds * 1e6
+
+    via_thread = min(asyncio.run(trim_steps(True)) for _ in range(5))
+    in_loop = (round(min(asyncio.run(trim_steps(False)) for _ in range(5)), 3)
+               if hasattr(Trimmer, "due") else None)  # before session 25: no check
+    return {"loadavg_1m": load_average(), "calls": calls,
+            "drain_idle_us_buffered": round(wrapped, 3), "drain_idle_us_plain": round(plain, 3),
+            "trim_step_us_thread": round(via_thread, 2), "trim_step_us_check": in_loop}
+
+
 def wait_ready(ports: list[int], procs: list[subprocess.Popen[bytes]],
                timeout: float = START_TIMEOUT_S) -> float:
     """Wait until every livematch worker's ``/readyz`` answers 200; seconds it took.
@@ -1876,6 +1944,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--kept-cost", action="store_true",
                     help="only print the thread CPU per message a group worker only keeps "
                          "(another worker's shard), without broker or socket")
+    ap.add_argument("--shell-cost", action="store_true",
+                    help="only print two fixed costs of the daemon's shell (a drain that "
+                         "finds nothing, the trim step of a round), without broker")
     ap.add_argument("--warm-feed", type=int, default=0, metavar="S",
                     help="feed each step's vehicles S seconds before its clock starts "
                          "(a worker group settles its load snapshot meanwhile)")
@@ -1909,6 +1980,9 @@ def main(argv: list[str] | None = None) -> int:
         return 0
     if args.kept_cost:
         print(json.dumps(kept_cost(rounds=args.kept_rounds)))
+        return 0
+    if args.shell_cost:
+        print(json.dumps(shell_cost()))
         return 0
     global BROKER_NODELAY, WARM_FEED_S
     BROKER_NODELAY = args.broker_nodelay

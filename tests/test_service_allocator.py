@@ -113,3 +113,54 @@ def test_daemon_trims_once_a_period_and_logs_a_slow_trim(
     assert calls == [0]
     assert ticks >= 5, ticks  # the loop ran on during the 0.3 s trim
     assert [r.getMessage() for r in caplog.records].count("malloc_trim was slow") == 1
+
+
+def test_due_says_what_maybe_would_do() -> None:
+    """``due`` answers as ``maybe`` then acts, at every step of a clock (the fake trim
+    counts the calls), and never calls the trim itself."""
+    calls: list[int] = []
+    t = Trimmer(10.0, trim=lambda pad: calls.append(pad) or 1)
+    for now in (0.0, 3.0, 9.99, 10.0, 10.5, 19.0, 20.0, 45.0, 45.1):
+        before = len(calls)
+        said = t.due(now)
+        assert len(calls) == before  # asking trims nothing
+        assert t.maybe(now) == said
+    assert len(calls) == 4  # 0, 10, 20, 45
+    none = Trimmer()
+    none._trim = None  # as on a C library without malloc_trim: never due
+    assert not none.due(1e9)
+
+
+def test_daemon_hands_only_due_trims_to_a_thread(tmp_path: Path,
+                                                 monkeypatch: pytest.MonkeyPatch) -> None:
+    """The checkpoint loop's trim step goes through the thread pool only when a trim is
+    due: ten rounds within one period make one thread call (the trim), not ten."""
+    import asyncio
+
+    from services import town, write_config
+
+    from livematch.config import load_config
+    from livematch.pipeline import Pipeline
+    from livematch.service import daemon as daemon_module
+
+    config = load_config(write_config(tmp_path, "trim2", broker="mqtt://127.0.0.1:1"),
+                         env={})
+    daemon = daemon_module.Daemon(config, Pipeline(town(), config.matcher, limits=config.feed))
+    calls: list[int] = []
+    daemon._trimmer = Trimmer(3600.0, trim=lambda pad: calls.append(pad) or 1)
+    handed: list[object] = []
+    real = asyncio.to_thread
+
+    async def counting(func: object, /, *args: object) -> object:
+        handed.append(func)
+        return await real(func, *args)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(daemon_module.asyncio, "to_thread", counting)
+
+    async def rounds() -> None:
+        for _ in range(10):
+            await daemon._trim_memory()
+
+    asyncio.run(rounds())
+    assert calls == [0]
+    assert len(handed) == 1

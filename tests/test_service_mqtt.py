@@ -3,6 +3,9 @@
 from __future__ import annotations
 
 import asyncio
+import select
+import socket
+import ssl
 from typing import Any
 
 import aiomqtt
@@ -417,6 +420,35 @@ async def test_buffered_socket_next_packet_leaves_a_malformed_length_to_paho() -
     paho: Any = client._client
     paho.on_socket_open(paho, None, _Chunks([sock._buf]))
     assert paho.loop_read() == paho_client.MQTT_ERR_PROTOCOL
+
+
+def test_buffered_socket_has_the_sockets_fileno_and_tls_pending() -> None:
+    """``fileno`` and a TLS socket's ``pending`` are the socket's own, the latter also
+    looked up once as ``tls_pending`` (``drain`` asks for both after every matched
+    message): ``select`` sees the wrapper readable when the kernel holds bytes for the
+    socket; a plain socket has no ``pending`` (``hasattr`` False, as aiomqtt's reader
+    asks to tell TLS; ``tls_pending`` None) and an ``ssl.SSLSocket`` (Python's ssl
+    module) its own bound method."""
+    near, far = socket.socketpair()
+    tls = ssl.create_default_context().wrap_socket(socket.socket(), server_hostname="x",
+                                                   do_handshake_on_connect=False)
+    try:
+        wrapped = _BufferedSocket(near, lambda: None)
+        assert wrapped.fileno() == near.fileno()
+        assert not hasattr(wrapped, "pending") and not hasattr(near, "pending")
+        assert wrapped.tls_pending is None
+        assert select.select([wrapped], [], [], 0)[0] == []
+        far.send(b"\x40\x02\x00\x01")
+        assert select.select([wrapped], [], [], 1.0)[0] == [wrapped]
+        over_tls = _BufferedSocket(tls, lambda: None)
+        assert hasattr(over_tls, "pending") and over_tls.pending == tls.pending
+        assert over_tls.tls_pending == tls.pending
+        assert over_tls.tls_pending is not None and over_tls.tls_pending() == tls.pending() == 0
+        assert over_tls.fileno() == tls.fileno()
+    finally:
+        near.close()
+        far.close()
+        tls.close()
 
 
 def _session(expiry: int) -> Properties:

@@ -51,6 +51,8 @@ class Trimmer:
         >>> t = Trimmer(60.0, trim=lambda pad: calls.append(pad) or 1)
         >>> [t.maybe(now) for now in (0.0, 30.0, 61.0, 100.0, 121.0)]
         [True, False, True, False, True]
+        >>> t.due(150.0), t.due(181.0)
+        (False, True)
         >>> calls
         [0, 0, 0]
     """
@@ -73,6 +75,15 @@ class Trimmer:
             return False
         self.trims += 1
         return bool(self._trim(0))
+
+    def due(self, now: float) -> bool:
+        """Whether :meth:`maybe` would trim at ``now`` (a check only, nothing called).
+
+        The daemon asks this in its event loop every checkpoint round and hands only a
+        due trim to a thread: a round trip through the thread pool cost more CPU than
+        the check it carried, twice a second in every worker.
+        """
+        return self._trim is not None and now - self._last >= self.every_s
 
     def maybe(self, now: float) -> bool:
         """Trim if ``every_s`` has passed since the last trim; returns whether it did.

@@ -705,8 +705,11 @@ class Daemon:
         with more), and ctypes releases the GIL for the call, so the event loop goes on
         serving fixes meanwhile; a trim over ``_GC_LOG_S`` is still logged.
         """
+        now = time.monotonic()
+        if not self._trimmer.due(now):
+            return  # checked here: no round trip through a thread for nothing
         started = time.perf_counter()
-        if await asyncio.to_thread(self._trimmer.maybe, time.monotonic()):
+        if await asyncio.to_thread(self._trimmer.maybe, now):
             took = time.perf_counter() - started
             if took >= _GC_LOG_S:
                 log.warning("malloc_trim was slow", extra=fields(seconds=round(took, 3)))
