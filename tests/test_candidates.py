@@ -613,6 +613,28 @@ def test_times_room_never_below_what_the_step_keeps() -> None:
                     assert span_t + min(T_SPARE, spare) <= got <= cap_t
 
 
+def test_times_room_spare_is_the_kernels_row_spare() -> None:
+    """``_times_room`` works the rows' least room out itself: it must be ``row_spare``'s.
+
+    The reference is the compiled kernel's ``row_spare`` (what the step sized the rows
+    with); the room is recomputed from it as the rule in ``_times_room``'s docstring says,
+    over the sizes a step writes.
+    """
+    from livematch.core._tree_kernel import T_SPARE, row_spare
+    from livematch.core.candidates import _times_room
+
+    for k in range(0, 60):
+        for m in range(1, 120, 3):
+            spare = row_spare(m, k)
+            for span_t in (1, 5, 9, 40):
+                cap_t = span_t + max(span_t // 4, spare)
+                for kept in (m, 2 * m + 3, 150):
+                    cap = kept + max(kept // 4, spare)
+                    room = max(T_SPARE, (max(spare, cap // 5) - m) // m + 1)
+                    want = cap_t - spare + room if room < spare else cap_t
+                    assert _times_room(cap_t, cap, m, k) == want
+
+
 @pytest.mark.pure_python
 @pytest.mark.parametrize(("name", "every"), [("Helsinki", 1), ("test", 1), ("Helsinki", 2),
                                              ("Helsinki", 5)])

@@ -118,7 +118,9 @@ def _times_room(cap_t: int, cap: int, m: int, k: int) -> int:
     kept and where is unchanged, and never fewer than ``span_t`` + that room (``cap_t -
     spare`` >= ``span_t``).
     """
-    spare: int = _CALLS.row_spare(m, k)
+    # row_spare's rule, here rather than a compiled call (one call fewer each time a
+    # tree makes new arrays, about every second fix at 1 Hz)
+    spare = max(m, k + k // 2 + _MIN_SPARE)
     rows_room = max(spare, cap // 5)  # about max(kept // 4, spare); only sizes the room
     room = (rows_room - m) // max(m, 1) + 1  # fixes until the rows fill, and one
     if room < T_SPARE:
