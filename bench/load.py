@@ -115,6 +115,7 @@ import sys
 import tempfile
 import threading
 import time
+from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
@@ -1625,16 +1626,20 @@ def _spans(rows: list[tuple[float, float]], gap_ms: float) -> list[tuple[float, 
     return out
 
 
+def collapsed_stacks(path: Path) -> Iterator[tuple[str, int]]:
+    """The (stack, samples) lines of a py-spy collapsed (``--format raw``) file."""
+    for line in path.read_text(encoding="utf-8").splitlines():
+        stack, _, count = line.rpartition(" ")
+        if stack:
+            yield stack, int(count)
+
+
 def _stack_table(path: Path, top: int) -> dict[str, list[tuple[str, float]]]:
     """py-spy collapsed stacks: the functions with most samples, self and inclusive."""
     own: dict[str, int] = {}
     incl: dict[str, int] = {}
     total = 0
-    for line in path.read_text(encoding="utf-8").splitlines():
-        stack, _, count = line.rpartition(" ")
-        if not stack:
-            continue
-        n = int(count)
+    for stack, n in collapsed_stacks(path):
         total += n
         frames = [f.split(" (")[0] + " (" + f.split(" (")[-1].split(":")[0].split("/")[-1]
                   + ")" if " (" in f else f for f in stack.split(";")[1:]]

@@ -26,6 +26,8 @@ import argparse
 import collections
 from pathlib import Path
 
+from load import collapsed_stacks
+
 #: (part, a substring of one frame's "function (file:line)"), first match wins.
 RULES: tuple[tuple[str, str], ...] = (
     ("route: encode", "encode_record"),
@@ -64,11 +66,7 @@ def categorise(path: Path) -> tuple[collections.Counter[str], int]:
     """Samples per part of one py-spy raw file, and the samples in all."""
     parts: collections.Counter[str] = collections.Counter()
     total = 0
-    for line in path.read_text(encoding="utf-8").splitlines():
-        stack, _, count = line.rpartition(" ")
-        if not stack:
-            continue
-        n = int(count)
+    for stack, n in collapsed_stacks(path):
         total += n
         for part, needle in RULES:
             if needle in stack:
