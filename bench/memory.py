@@ -5,7 +5,7 @@ Run: ``.venv/bin/python bench/memory.py [--counts 1000,10000,100000] [--drives 4
 [--pipeline-seconds 120] [--fleet-vehicles 10000] [--fleet-seconds 120]
 [--fleet-trim-every 60] [--breakdown-vehicles 2000] [--breakdown-frames 1]
 [--room-drives 6] [--park-vehicles 2000] [--park-seconds 600] [--park-intervals 15,30]
-[--park-after 5] [--steps 1,2,3,4,5,6] [--out DIR]``
+[--park-after 5] [--steps 1,2,3,4,5,6] [--matcher KEY=VALUE ...] [--out DIR]``
 
 Goal (issue 9): <= 4 KB for a typical live vehicle, 100,000 vehicles in <= 1 GB resident.
 
@@ -130,6 +130,24 @@ SNAPSHOT_EVERY = 30  # fixes between snapshots of one drive
 SEED = [2026, 9]
 
 
+MATCHER_ENV = "LIVEMATCH_BENCH_MATCHER"  # --matcher's settings, for the step subprocesses
+
+
+def bench_settings() -> Any:
+    """The tracker settings every step uses: the defaults, or ``--matcher``'s changes.
+
+    ``--matcher KEY=VALUE`` (values read as TOML, checked as ``bench/accuracy.py`` checks
+    them) is handed to each step's subprocess in the environment variable
+    ``LIVEMATCH_BENCH_MATCHER`` (JSON), so that a setting's memory (a shorter commit lag,
+    a ladder of two levels) is measured with the same steps as the defaults'.
+    """
+    from livematch.core.settings import MatchSettings
+
+    changes = json.loads(os.environ.get(MATCHER_ENV, "") or "{}")
+    return MatchSettings(**{k: tuple(v) if isinstance(v, list) else v
+                            for k, v in changes.items()})
+
+
 def rss_kb() -> int:
     """Resident set size of this process, KB (VmRSS)."""
     for line in Path("/proc/self/status").read_text().splitlines():
@@ -182,13 +200,12 @@ def drives(count: int, duration: float) -> Any:
 
 # ------------------------------------------------------------------------- 1. the pool
 def build_pool(count: int, duration: float) -> dict[str, Any]:
-    from livematch.core.settings import MatchSettings
     from livematch.core.tracker import Tracker
 
     network, runs = drives(count, duration)
     snapshots: list[bytes] = []
     for fixes in runs:
-        tracker = Tracker(network, fixes[0].vehicle, MatchSettings())
+        tracker = Tracker(network, fixes[0].vehicle, bench_settings())
         for i, fix in enumerate(fixes, 1):
             tracker.update(fix)
             if i >= SNAPSHOT_FROM and (i - SNAPSHOT_FROM) % SNAPSHOT_EVERY == 0:
@@ -245,11 +262,10 @@ def per_vehicle(pool_path: str) -> dict[str, Any]:
 
     from _drives import load_extract
 
-    from livematch.core.settings import MatchSettings
     from livematch.core.tracker import Tracker
 
     snapshots: list[bytes] = pickle.loads(Path(pool_path).read_bytes())["snapshots"]
-    network, settings = load_extract("helsinki"), MatchSettings()
+    network, settings = load_extract("helsinki"), bench_settings()
     warm(network, settings)
     Tracker.from_bytes(network, settings, snapshots[0])  # first-use caches, if any
     gc.collect()
@@ -324,11 +340,10 @@ def per_state_rss(pool_path: str, states: int, copies: int) -> dict[str, Any]:
     same unit as step 3, allocator overhead and compiled-code allocations included."""
     from _drives import load_extract
 
-    from livematch.core.settings import MatchSettings
     from livematch.core.tracker import Tracker
 
     snapshots: list[bytes] = pickle.loads(Path(pool_path).read_bytes())["snapshots"]
-    network, settings = load_extract("helsinki"), MatchSettings()
+    network, settings = load_extract("helsinki"), bench_settings()
     warm(network, settings)
     step = max(1, len(snapshots) // states)
     kept = []
@@ -346,11 +361,10 @@ def per_state_rss(pool_path: str, states: int, copies: int) -> dict[str, Any]:
 def n_vehicles(pool_path: str, n: int) -> dict[str, Any]:
     from _drives import load_extract
 
-    from livematch.core.settings import MatchSettings
     from livematch.core.tracker import Tracker
 
     snapshots: list[bytes] = pickle.loads(Path(pool_path).read_bytes())["snapshots"]
-    network, settings = load_extract("helsinki"), MatchSettings()
+    network, settings = load_extract("helsinki"), bench_settings()
     warm(network, settings)
     gc.collect()
     rss0 = rss_kb()
@@ -373,12 +387,11 @@ def n_vehicles(pool_path: str, n: int) -> dict[str, Any]:
 # ---------------------------------------------------------------------- 4. pipeline
 def pipeline_run(how: str, vehicles: int, seconds: int, drives_count: int,
                  duration: float) -> dict[str, Any]:
-    from livematch.core.settings import MatchSettings
     from livematch.core.tracker import Tracker
     from livematch.pipeline import Pipeline
 
     network, runs = drives(drives_count, duration)
-    settings = MatchSettings()
+    settings = bench_settings()
     warm(network, settings)
     # vehicle i: drive i % drives from second 7 * (i // drives), fix times shifted so
     # that every vehicle's fix k arrives at second k
@@ -517,12 +530,11 @@ def fleet_run(vehicles: int, seconds: int, drives_count: int, duration: float,
     message (after the network, the kernels and a throwaway pipeline: see
     :func:`warm_pipeline`), after the run, and after one more ``malloc_trim(0)``.
     """
-    from livematch.core.settings import MatchSettings
     from livematch.pipeline import Pipeline
     from livematch.service.allocator import Trimmer
 
     network, runs = drives(drives_count, duration)
-    settings = MatchSettings()
+    settings = bench_settings()
     warm(network, settings)
     pipeline_kb = warm_pipeline(network, settings)
     lonlat = fleet_positions(network, runs)
@@ -643,12 +655,11 @@ def fleet_breakdown(vehicles: int, seconds: int, drives_count: int, duration: fl
     import linecache
     import tracemalloc
 
-    from livematch.core.settings import MatchSettings
     from livematch.core.tracker import Tracker
     from livematch.pipeline import Pipeline
 
     network, runs = drives(drives_count, duration)
-    settings = MatchSettings()
+    settings = bench_settings()
     warm(network, settings)
     warm_pipeline(network, settings)
     lonlat = fleet_positions(network, runs)
@@ -753,13 +764,12 @@ def park_run(vehicles: int, seconds: int, interval: int, park_after: float,
     heap per vehicle by introspection (:func:`owned_bytes` of each vehicle's state, what
     a fresh tracker and pipeline reach left out, plus the pipeline's per-vehicle tables).
     """
-    from livematch.core.settings import MatchSettings
     from livematch.core.tracker import Tracker
     from livematch.pipeline import Pipeline
     from livematch.service.allocator import Trimmer
 
     network, runs = drives(drives_count, float(seconds + interval))
-    settings = MatchSettings()
+    settings = bench_settings()
     warm(network, settings)
     warm_pipeline(network, settings)
     lonlat = fleet_positions(network, runs)
@@ -887,11 +897,10 @@ def tree_room_run(drives_count: int, duration: float) -> dict[str, Any]:
     """
     from livematch.core import _tree_kernel as tk
     from livematch.core.candidates import CandidateTree
-    from livematch.core.settings import MatchSettings
     from livematch.core.tracker import Tracker
 
     network, runs = drives(drives_count, duration)
-    warm(network, MatchSettings())
+    warm(network, bench_settings())
     new_arrays = [0]
     step_rest = CandidateTree.step_rest
 
@@ -906,7 +915,7 @@ def tree_room_run(drives_count: int, duration: float) -> dict[str, Any]:
     trees: dict[str, dict[str, int]] = {}
     try:
         for run in runs:
-            tracker = Tracker(network, run[0].vehicle, MatchSettings())
+            tracker = Tracker(network, run[0].vehicle, bench_settings())
             for i, fix in enumerate(run):
                 before = [(lv.tree.ti, lv.tree.n) for lv in tracker.levels]
                 t0 = time.process_time()
@@ -1307,6 +1316,9 @@ def main(argv: list[str] | None = None) -> int:
                     help="step 8: seconds between a vehicle's reports, one cell each")
     ap.add_argument("--park-after", type=float, default=5.0,
                     help="step 8: park_after_s of the runs with parking")
+    ap.add_argument("--matcher", action="append", default=[], metavar="KEY=VALUE",
+                    help="run every step with these tracker settings changed (as "
+                         "bench/matcher_ab.py --matcher); the report's header names them")
     ap.add_argument("--steps", default="1,2,3,4,5,6",
                     help="steps to run (the pool, step 1, is built when 2 or 3 is asked)")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
@@ -1337,6 +1349,10 @@ def main(argv: list[str] | None = None) -> int:
         print(json.dumps(out))
         return 0
 
+    if args.matcher:
+        from accuracy import matcher_settings
+
+        os.environ[MATCHER_ENV] = json.dumps(matcher_settings(args.matcher))
     started = time.strftime("%Y-%m-%d %H:%M", time.gmtime())
     commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=ROOT,
                             capture_output=True, text=True, check=False).stdout.strip()
