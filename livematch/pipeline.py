@@ -40,7 +40,9 @@ Bad input never raises: a message that cannot be decoded becomes an
 ``duplicate``                     same (vehicle, time) as a fix already taken: dropped
 ``late``                          fixes taken although more than ``max_age_s`` behind ``at``
 ``fixes``                         fixes handed to a tracker
-``filtered:<reason>``             refused by the tracker's filters (out_of_order...)
+``filtered:<reason>``             refused by the tracker's filters (out_of_order...) or
+                                  matched by no eps level (``no_road_nearby``,
+                                  ``road_beyond_eps``)
 ``assignments`` ``commits``       published events, by kind
 ``alerts`` ``alert:<kind>``
 ``control``                       control messages taken (route assignments)
@@ -703,8 +705,14 @@ class Pipeline:
                 counters[f"filtered:{event.reason}"] += 1
                 if state is not None and state.pending is not None:
                     fix = state.pending.pop(event.t, None)
-                    if fix is not None and event.reason == "no_road_nearby":
-                        self._monitor(out, state, fix, None, False, topic, payload, at)
+                    if fix is not None:
+                        # the matcher took the fix but no level matched it: off the
+                        # network (no road within the off-network radius), or on it
+                        # with a road beyond the ladder (MatchSettings.off_network_m)
+                        reason = event.reason
+                        if reason == "no_road_nearby" or reason == "road_beyond_eps":
+                            self._monitor(out, state, fix, None,
+                                          reason == "road_beyond_eps", topic, payload, at)
                 continue
             if type(event) is Alert:
                 counters["alerts"] += 1

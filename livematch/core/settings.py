@@ -778,6 +778,27 @@ class MatchSettings:
             quarter of the random walk's route mismatch at Helsinki 5 s), while a
             vehicle moving through a junction turns round there by the room the stub
             gives it, not in the junction. 0 (the default) is off.
+        off_network_m: the off-network radius, metres. A fix that no level of the ladder
+            matches (every level's window died and no road lies within the largest eps
+            to start afresh on) is filtered as ``no_road_nearby``, and the off-network
+            monitor (``alerts.off_network_s``) counts from it, only when no road lies
+            within this radius of it either; with a road within it, the fix is filtered
+            as ``road_beyond_eps`` instead and is on the network (it has no answer, but
+            it does not count toward ``off_network``). 0 (the default) is the largest
+            eps: today's radius, and no query of its own. Otherwise at least the largest
+            eps (a smaller radius would need a query at every matched fix). Why: the
+            ladder's largest level is a matching radius, and a ladder without its 60 m
+            level (less memory and CPU per vehicle, docs/measured.md "Session 25
+            (lead)") would otherwise also shrink the off-network radius to 30 m; the
+            extra query runs only for a fix every level refused (rare), so it costs
+            nothing per matched fix.
+        join_margin_m: the margin of the join limit, metres: where one candidate tree's
+            commit follows another's, the route joining the two committed points is at
+            most ``bridge_speed_mps`` x the time between them plus this
+            (:meth:`livematch.core.tracker.Tracker._join_limit`); a longer join breaks the
+            path there. 0 (the default) is twice the largest eps (each committed point
+            may lie up to its level's eps ahead of or behind the vehicle: 120 m with the
+            default ladder). Lets a ladder without its largest level keep the margin.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -845,6 +866,8 @@ class MatchSettings:
     monotone_pool: bool = False
     end_at_vertex: bool = True
     stub_turn_m: float = 0.0
+    off_network_m: float = 0.0
+    join_margin_m: float = 0.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -871,7 +894,7 @@ class MatchSettings:
         for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s",
                      "spike_cost", "street_turn_cost", "join_detour", "live_keep",
                      "live_keep_stand_s", "stand_short_m", "speed_pace_m", "heading_cost",
-                     "roll_back_slack_m", "stub_turn_m"):
+                     "roll_back_slack_m", "stub_turn_m", "join_margin_m"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))
@@ -888,9 +911,35 @@ class MatchSettings:
                      "smallest_agrees", "monotone_final", "monotone_pool", "end_at_vertex"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
+        radius = self.off_network_m
+        if not (isinstance(radius, int | float) and math.isfinite(radius) and radius >= 0):
+            out.append(("off_network_m", f"must be a number >= 0, got {radius!r}"))
+        elif radius > 0 and eps and radius < max(eps):
+            out.append(("off_network_m", "must be 0 (the largest eps) or at least the largest "
+                        f"eps level ({max(eps):g}), got {radius!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):
             out.append(("reorder_fixes", f"must be an integer 0..32, got {self.reorder_fixes!r}"))
         return out
+
+    def off_network_radius(self) -> float:
+        """The off-network radius in metres: ``off_network_m``, 0 meaning the largest eps.
+
+        Example:
+            >>> MatchSettings().off_network_radius()
+            60.0
+            >>> MatchSettings(eps_levels=(15.0, 30.0), off_network_m=60.0).off_network_radius()
+            60.0
+        """
+        return self.off_network_m if self.off_network_m > 0.0 else max(self.eps_levels)
+
+    def join_margin(self) -> float:
+        """The join limit's margin in metres: ``join_margin_m``, 0 meaning twice the largest eps.
+
+        Example:
+            >>> MatchSettings().join_margin(), MatchSettings(eps_levels=(15.0, 30.0)).join_margin()
+            (120.0, 60.0)
+        """
+        return self.join_margin_m if self.join_margin_m > 0.0 else 2.0 * max(self.eps_levels)
 
     @classmethod
     def keys(cls) -> tuple[str, ...]:

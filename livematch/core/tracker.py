@@ -23,7 +23,9 @@ How it decides
 * **The eps ladder**: one sweep (:mod:`livematch.core.sweep`) per level. The smallest
   level alive decides, and every assignment carries its certificate: ``eps_m`` and the
   window (``window_fixes``, ``window_s``) of fixes that lie within Fréchet distance
-  ``eps_m`` of the reported road path.
+  ``eps_m`` of the reported road path. A fix no level matches (no road within the
+  largest eps) is filtered as ``no_road_nearby``, or as ``road_beyond_eps`` when a road
+  lies within ``off_network_m`` (:meth:`Tracker._refused_reason`).
 * **The live answer**: the deciding level's candidate with the lowest live score
   (:func:`livematch.core.sweep.live_score`: the path cost with its distance terms
   rescored for GNSS error that is correlated in time, ``error_tau_s``), unless candidates
@@ -642,8 +644,8 @@ class Tracker:
                 deciding = level
                 break
         if deciding is None:
-            events.append(Filtered(fix.vehicle, fix.t, "no_road_nearby"))
-            self.said = None  # off the network: no answer to repeat
+            events.append(Filtered(fix.vehicle, fix.t, self._refused_reason(fix)))
+            self.said = None  # every level refused it: no answer to repeat
         else:
             best, split = self._live_answer(deciding, dt)
             recent = 0
@@ -682,6 +684,33 @@ class Tracker:
             # trees without spare room (a compaction per level; decisions unchanged)
             for level in self.levels:
                 level.tree.shrink()
+
+    def _refused_reason(self, fix: Fix) -> str:
+        """Why no level matched ``fix``: ``no_road_nearby`` or ``road_beyond_eps``.
+
+        Every level's window died at ``fix`` and no road lies within the largest eps of
+        it (the largest level found none to start afresh on). With ``off_network_m``
+        above the largest eps, a road within that radius makes the fix
+        ``road_beyond_eps`` (not off the network: the shell's off-network monitor does
+        not count it); otherwise, and always with the default radius (no query of its
+        own), ``no_road_nearby``. The spatial index is asked only here, at a fix every
+        level refused, which is rare.
+
+        Example (one road along y = 0; a fix 40 m off it, ladder 15 / 30 m):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (500.0, 0.0)], way=1)])
+            >>> fix = Fix("v", 0.0, 0.0, 0.0, 100.0, 40.0)
+            >>> Tracker(net, "v", MatchSettings(eps_levels=(15.0, 30.0)))._refused_reason(fix)
+            'no_road_nearby'
+            >>> Tracker(net, "v", MatchSettings(eps_levels=(15.0, 30.0), off_network_m=60.0)
+            ...         )._refused_reason(fix)
+            'road_beyond_eps'
+        """
+        radius = self.settings.off_network_m
+        if radius > self.levels[-1].eps and len(self.network.segments_near(fix.x, fix.y,
+                                                                             radius)):
+            return "road_beyond_eps"
+        return "no_road_nearby"
 
     def _advance_levels(
         self, fix: Fix, prev: tuple[float, float, float] | None, seq: int,
@@ -3549,9 +3578,10 @@ class Tracker:
         The stretches meet where one tree's commit follows another's (a level that
         restarted, a tree that died): the join is the route the vehicle drove between the
         two committed points. It can be at most what the vehicle covers at the plausible
-        speed (``bridge_speed_mps`` x ``dt``) plus twice the largest eps, because each of
-        the two points lies within its level's eps of its fix and may be that far ahead of
-        or behind the vehicle along the road. A longer shortest route is no join but a
+        speed (``bridge_speed_mps`` x ``dt``) plus a margin (``join_margin_m``; 0, the
+        default, is twice the largest eps), because each of the two points lies within its
+        level's eps of its fix and may be that far ahead of or behind the vehicle along
+        the road. A longer shortest route is no join but a
         guess: typically the two stretches lie on two parallel roads and the route
         between them goes round the block. Then the path breaks instead (the vehicle
         jumped, as far as the committed path can tell). An older bound added 100 m more;
@@ -3570,7 +3600,7 @@ class Tracker:
         ``join_detour`` 2, two points 20 m apart 15 s apart: 2 x 20 + 30 = 70 m.
         """
         s = self.settings
-        limit = s.bridge_speed_mps * dt + 2.0 * max(s.eps_levels)
+        limit = s.bridge_speed_mps * dt + s.join_margin()
         if s.join_detour > 0.0:
             limit = min(limit, s.join_detour * straight + 2.0 * s.eps_levels[0])
         return limit

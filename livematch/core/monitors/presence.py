@@ -1,10 +1,12 @@
 """Presence alerts: off the road network, and silent (stale) vehicles.
 
 * :class:`OffNetworkMonitor`: fed with every fix the matcher accepted and whether the
-  matcher found a road within its largest eps (an assignment) or not (its
-  ``no_road_nearby`` verdict). ``off_network`` fires once the fixes have had no road
-  nearby for ``off_network_s`` seconds (from the first such fix); ``on_network`` once
-  ``on_network_fixes`` consecutive fixes have a road again.
+  matcher found a road within its off-network radius (an assignment, or a
+  ``road_beyond_eps`` verdict: a road beyond the ladder but within
+  ``matcher.off_network_m``) or not (its ``no_road_nearby`` verdict). ``off_network``
+  fires once the fixes have had no road nearby for ``off_network_s`` seconds (from the
+  first such fix); ``on_network`` once ``on_network_fixes`` consecutive fixes have a road
+  again.
 * :class:`StaleWatch`: the core has no clock, so staleness is judged against a time the
   shell passes in: the *receive* time of each message (``at``) and the receive time
   ``now`` of a :meth:`StaleWatch.check`. Both come from the receiver's clock, so a

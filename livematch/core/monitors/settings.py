@@ -40,8 +40,9 @@ class AlertSettings:
             backwards for this many metres while the forward sweep could not follow them.
             It must exceed 2 x ``eps_route_m``: a vehicle standing still, jittering,
             never moves backwards that far.
-        off_network_s: off-network when no road lies within the matcher's largest eps of
-            the fixes for this long (from the first such fix).
+        off_network_s: off-network when no road lies within the matcher's off-network
+            radius (``matcher.off_network_m``; by default its largest eps) of the fixes
+            for this long (from the first such fix).
         on_network_fixes: back on the network after this many consecutive fixes with a
             road nearby.
         fence_inner_m, fence_outer_m: a vehicle enters a fence only once it is this far

@@ -85,7 +85,8 @@ class VehicleAlerts:
         Args:
             fix: the fix.
             matched: the matched point (metres) of its assignment, None without one.
-            has_road: the matcher found a road within its largest eps.
+            has_road: the matcher found a road within its off-network radius (its
+                largest eps, or ``MatchSettings.off_network_m``).
             fences: the fleet's fences, if any.
             groups: the vehicle's group names (for fence filters).
             settings: the alert settings.
