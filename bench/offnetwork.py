@@ -22,7 +22,9 @@ Measures per setting, with each departure put in a band of its spot's true dista
 - *false* ``off_network`` alerts: at a time in no departure (leaving to 60 s after the
   return), per vehicle-hour;
 - fixes refused by reason (``filtered:no_road_nearby``, ``filtered:road_beyond_eps``);
-- per setting against the defaults, the departures whose alert verdict differs.
+- per setting against the defaults, the departures whose alert verdict differs, and
+  whether its ``off_network`` / ``on_network`` alerts are the defaults' exactly
+  (vehicle, time and kind).
 
 The off-network radius decides: a spot further than it from every road should be
 alerted, one nearer should not (GPS error blurs the band's edges).
@@ -148,9 +150,10 @@ def departing_fixes(tree: shapely.STRtree, drive: Any, rng: np.random.Generator,
 
 
 def run_setting(network: RoadNetwork, fleets: list[tuple[str, list[tuple[float, float, float]]]],
-                settings: MatchSettings) -> tuple[list[tuple[str, float]], dict[str, int]]:
-    """(vehicle, time) of every off_network alert, and the pipeline's filtered counters."""
-    alerts: list[tuple[str, float]] = []
+                settings: MatchSettings) -> tuple[list[tuple[str, float, str]], dict[str, int]]:
+    """(vehicle, time, kind) of every off_network / on_network alert, and the pipeline's
+    filtered counters."""
+    alerts: list[tuple[str, float, str]] = []
     counts: dict[str, int] = {}
     proj = network.projection
     for vehicle, fixes in fleets:
@@ -162,8 +165,8 @@ def run_setting(network: RoadNetwork, fleets: list[tuple[str, list[tuple[float, 
         for (t, _, _), lo, la in zip(fixes, lon.tolist(), lat.tolist(), strict=True):
             body = json.dumps({"time": t, "lat": round(la, 7), "lon": round(lo, 7)}).encode()
             for o in p.handle(topic, body, t + 0.5):
-                if o.kind == "alert" and o.record["kind"] == "off_network":
-                    alerts.append((vehicle, o.record["time"]))
+                if o.kind == "alert" and o.record["kind"] in ("off_network", "on_network"):
+                    alerts.append((vehicle, o.record["time"], o.record["kind"]))
         p.flush()
         for k, v in p.counters.items():
             if k.startswith("filtered:") or k in ("fixes", "assignments"):
@@ -235,15 +238,18 @@ def main(argv: list[str] | None = None) -> int:
         hours = sum(len(f) for _, f in fleets) / 3600.0
         rows: dict[str, Any] = {}
         base_verdicts: list[bool] = []
+        base_alerts: list[tuple[str, float, str]] = []
         for label, values in named:
             alerts, counts = run_setting(network, fleets, MatchSettings(**values))
-            row, verdicts = score(deps, alerts, hours)
+            row, verdicts = score(deps, [(v, t) for v, t, k in alerts if k == "off_network"],
+                                  hours)
             row["filtered"] = {k: v for k, v in sorted(counts.items())
                                if k.startswith("filtered:")}
             row["fixes"] = counts.get("fixes", 0)
-            if not base_verdicts:
-                base_verdicts = verdicts
+            if label == "defaults":
+                base_verdicts, base_alerts = verdicts, alerts
             else:
+                row["alerts_as_defaults"] = alerts == base_alerts
                 row["verdicts_differing_from_defaults"] = sum(
                     a != b for a, b in zip(base_verdicts, verdicts, strict=True))
             rows[label] = row
