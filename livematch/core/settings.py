@@ -778,6 +778,23 @@ class MatchSettings:
             quarter of the random walk's route mismatch at Helsinki 5 s), while a
             vehicle moving through a junction turns round there by the room the stub
             gives it, not in the junction. 0 (the default) is off.
+        filtered_pace: the final answer of a filtered fix (a spike, an impossible jump,
+            poor reported accuracy) is placed along the committed path between its
+            matched neighbours a and b by the distance a smooth drive covers by its
+            time, not in proportion to time: a cubic Hermite curve of the distance along
+            the path against time, from a at the speed of the committed step into a to
+            b at the speed of the step out of b (each the route length over the step's
+            time; where the commit holds no such step, the mean speed from a to b), the
+            end speeds limited so that the curve never goes back (Fritsch & Carlson,
+            SIAM J. Numer. Anal. 1980) (:func:`livematch.core.tracker._paced_share`).
+            Only those final answers move; the path, the live answers and every other
+            answer are unchanged. Why: such a fix's position is no evidence, only its
+            time is, and at 15 s between fixes a dropped fix lies 30 s between its
+            neighbours, over which the random walk and the routed trips slow down to
+            stops and speed up again; with the true neighbours, proportional time put
+            22-31 % of the fixes 30 m or more from the truth along the path, end speeds
+            from the neighbouring steps 15-17 % (docs/measured.md "Session 26
+            (walk26)"). Off by default.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -845,6 +862,7 @@ class MatchSettings:
     monotone_pool: bool = False
     end_at_vertex: bool = True
     stub_turn_m: float = 0.0
+    filtered_pace: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -885,7 +903,8 @@ class MatchSettings:
                      "stand_pace", "bridge_error_cross", "smallest_commits",
                      "start_roots", "flush_scored", "end_stand_centre",
                      "start_way_out", "stand_loops_sparse", "no_roll_back",
-                     "smallest_agrees", "monotone_final", "monotone_pool", "end_at_vertex"):
+                     "smallest_agrees", "monotone_final", "monotone_pool", "end_at_vertex",
+                     "filtered_pace"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):
