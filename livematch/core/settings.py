@@ -791,10 +791,15 @@ class MatchSettings:
             answer are unchanged. Why: such a fix's position is no evidence, only its
             time is, and at 15 s between fixes a dropped fix lies 30 s between its
             neighbours, over which the random walk and the routed trips slow down to
-            stops and speed up again; with the true neighbours, proportional time put
-            22-31 % of the fixes 30 m or more from the truth along the path, end speeds
-            from the neighbouring steps 15-17 % (docs/measured.md "Session 26
-            (walk26)"). Off by default.
+            stops and speed up again. Placed between its *true* neighbours at 15 s
+            (``bench/spikefate.py --pace-oracle``, seeds 31 / 77, Helsinki, both drive
+            models), proportional time puts 22-31 % of fixes 30 m or more from the
+            truth along the path, this curve 15-17 %; at 30 s (60 s between the
+            neighbours, speeds read over 30 s steps) it helps the routed trips (64 ->
+            55 %) and not the random walk (50-54 -> 51-56 %). Off by default: on the
+            decision runs the random walk at Helsinki 15 s gained 4 fixes on seed 31
+            and lost 1 on seed 77, Helsinki 30 s seed 77 lost 3 (docs/measured.md
+            "Session 26 (walk26)"); filtered fixes are about 1 % of a feed's.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
