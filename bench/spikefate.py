@@ -21,7 +21,10 @@ jump of 50-300 m) and whether its final answer is right (``bench/accuracy.py``'s
 road+dir: on the true path within 30 m). Outliers are split further by where their
 fate came from (first or last fix of the log, after a dropped fix), and for dropped
 outliers whose final answer misses, how far the interpolated answer lies from the truth.
-It also prints the gate's rise (best path cost after the two steps less before them, in
+With ``--matcher filtered_pace=true`` it also counts, over the filtered fixes placed by
+that rule, where their end speeds came from: the commit's own step next to the neighbour,
+or the mean speed where the commit begins at the earlier neighbour or ends at the later
+one. It also prints the gate's rise (best path cost after the two steps less before them, in
 units of the charge) for outliers and for other fixes, binned.
 
 ``--pace-oracle`` reads no matcher: for every fix of the drives with two fixes on either
@@ -74,6 +77,8 @@ from livematch.sim.score import TruePath  # noqa: E402
 
 #: (vehicle, suspect's fix time) -> (gate rise / charge or None, dropped)
 JUDGED: dict[tuple[str, float], tuple[float | None, bool]] = {}
+#: with [matcher] filtered_pace: where the placed fixes' end speeds came from
+PACED: Counter[str] = Counter()
 #: bins of the gate's rise, in units of the charge
 RISE_BINS = (0.0, 0.5, 2 / 3, 5 / 6, 1.0, 4 / 3, 2.0)
 
@@ -100,6 +105,18 @@ def _instrument() -> None:
         return out
 
     tracker_mod.Tracker._spike_test = spike_test  # type: ignore[method-assign]
+
+    paced = tracker_mod._paced_along
+
+    def paced_along(view: Any, links: list[Any], k: int, share: float) -> float:
+        PACED["placed"] += 1
+        PACED["speed into the earlier neighbour from the commit" if k >= 2
+              else "speed into the earlier neighbour: the mean (commit begins there)"] += 1
+        PACED["speed out of the later neighbour from the commit" if k + 1 < len(links)
+              else "speed out of the later neighbour: the mean (commit ends there)"] += 1
+        return paced(view, links, k, share)
+
+    tracker_mod._paced_along = paced_along
 
 
 def fate(judged: tuple[float | None, bool] | None) -> str:
@@ -220,6 +237,7 @@ def main(argv: list[str] | None = None) -> int:
         xy = acc.roundtrip_xy(network, records)
         times = {d.vehicle: [o.t for o in obs] for d, obs in fleet}
         JUDGED.clear()
+        PACED.clear()
         run = acc.run_inproc(network, records, xy, times, matcher)
         table: Counter[str] = Counter()
         where: Counter[str] = Counter()
@@ -256,6 +274,7 @@ def main(argv: list[str] | None = None) -> int:
                "road_dir_final": score["road_dir_final"], "fixes": score["fixes"],
                "fate": dict(sorted(table.items())), "missed_outliers": dict(where),
                "dropped_missed_m": sorted(round(x, 1) for x in far),
+               "filtered_pace_speeds": dict(PACED),
                "gate_rise_per_charge": {k: dict(sorted(v.items())) for k, v in rises.items()}}
         out.append(row)
         print(json.dumps(row), flush=True)
