@@ -78,7 +78,21 @@ TURNED: set[tuple[str, float]] = set()
 
 
 def _instrument() -> None:
-    """Wrap the tracker's commit, stand_at_vertex and stand_turnback to record what they did."""
+    """Wrap the tracker's commit, stand_at_vertex and stand_turnback to record what they did.
+
+    Only a tracker that runs as Python can be wrapped: a compiled one (mypyc, session 24)
+    calls its own methods directly, so the wrappers see nothing and the causes read from
+    them (``forced commit``, ``stand: stand_at_vertex, wrong approach``) and the dump's
+    ``how`` / ``sav`` / ``turned`` stay empty; the other classes are unaffected. A warning
+    says so; run from a copy of the tree that was never built for those.
+    """
+    from livematch import native
+
+    if "livematch.core.tracker" in native.compiled():
+        print("bench/fleetmiss.py: the tracker is compiled here, so forced commits, "
+              "stand_at_vertex's wrong approaches and the dump's how / sav / turned are "
+              "not recorded (their episodes fall in later classes); run from a copy of "
+              "the tree that was never built for them", file=sys.stderr)
     orig_commit = tracker_mod.Tracker._commit_chain
     orig_sav = tracker_mod.Tracker._stand_at_vertex
 

@@ -799,6 +799,28 @@ class MatchSettings:
             path there. 0 (the default) is twice the largest eps (each committed point
             may lie up to its level's eps ahead of or behind the vehicle: 120 m with the
             default ladder). Lets a ladder without its largest level keep the margin.
+        filtered_pace: the final answer of a filtered fix (a spike, an impossible jump,
+            poor reported accuracy) is placed along the committed path between its
+            matched neighbours a and b by the distance a smooth drive covers by its
+            time, not in proportion to time: a cubic Hermite curve of the distance along
+            the path against time, from a at the speed of the committed step into a to
+            b at the speed of the step out of b (each the route length over the step's
+            time; where the commit holds no such step, the mean speed from a to b), the
+            end speeds limited so that the curve never goes back (Fritsch & Carlson,
+            SIAM J. Numer. Anal. 1980) (:func:`livematch.core.tracker._paced_share`).
+            Only those final answers move; the path, the live answers and every other
+            answer are unchanged. Why: such a fix's position is no evidence, only its
+            time is, and at 15 s between fixes a dropped fix lies 30 s between its
+            neighbours, over which the random walk and the routed trips slow down to
+            stops and speed up again. Placed between its *true* neighbours at 15 s
+            (``bench/spikefate.py --pace-oracle``, seeds 31 / 77, Helsinki, both drive
+            models), proportional time puts 22-31 % of fixes 30 m or more from the
+            truth along the path, this curve 15-17 %; at 30 s (60 s between the
+            neighbours, speeds read over 30 s steps) it helps the routed trips (64 ->
+            55 %) and not the random walk (50-54 -> 51-56 %). Off by default: on the
+            decision runs the random walk at Helsinki 15 s gained 4 fixes on seed 31
+            and lost 1 on seed 77, Helsinki 30 s seed 77 lost 3 (docs/measured.md
+            "Session 26 (walk26)"); filtered fixes are about 1 % of a feed's.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -868,6 +890,7 @@ class MatchSettings:
     stub_turn_m: float = 0.0
     off_network_m: float = 0.0
     join_margin_m: float = 0.0
+    filtered_pace: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -908,7 +931,8 @@ class MatchSettings:
                      "stand_pace", "bridge_error_cross", "smallest_commits",
                      "start_roots", "flush_scored", "end_stand_centre",
                      "start_way_out", "stand_loops_sparse", "no_roll_back",
-                     "smallest_agrees", "monotone_final", "monotone_pool", "end_at_vertex"):
+                     "smallest_agrees", "monotone_final", "monotone_pool", "end_at_vertex",
+                     "filtered_pace"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         radius = self.off_network_m

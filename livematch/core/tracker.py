@@ -3765,7 +3765,10 @@ class Tracker:
                 seg, pos = links[-1].seg, links[-1].pos
             else:
                 a, b = links[k - 1], links[k]
-                seg, pos = _along(self._view, a, b, (t - a.t) / (b.t - a.t))
+                share = (t - a.t) / (b.t - a.t)
+                if self.settings.filtered_pace:
+                    share = _paced_along(self._view, links, k, share)
+                seg, pos = _along(self._view, a, b, share)
             x, y = _point(self._view, seg, pos)
             out.append(MatchedFix(t, seg, pos * self._view.slen[seg], x, y))
         out.sort(key=lambda m: m.t)
@@ -4289,6 +4292,64 @@ def _along(view: NetworkView, a: Node, b: Node, frac: float) -> tuple[int, float
             return s, lo + want / view.slen[s]
         want -= length
     return b.seg, b.pos
+
+
+def _route_m(view: NetworkView, a: Node, b: Node) -> float:
+    """The length in metres of the route a -> b, read as :func:`_along` reads it."""
+    if not b.via and b.seg == a.seg:
+        return max(0.0, b.pos - a.pos) * view.slen[a.seg]
+    total = (1.0 - a.pos) * view.slen[a.seg] + b.pos * view.slen[b.seg]
+    for s in b.via:
+        total += view.slen[s]
+    return total
+
+
+def _paced_along(view: NetworkView, links: list[Node], k: int, share: float) -> float:
+    """The share of the route links[k-1] -> links[k] driven by a time ``share`` of the way.
+
+    ``MatchSettings.filtered_pace``: the speeds at the two ends are those of the steps
+    next to them (links[k-2] -> links[k-1], links[k] -> links[k+1]), the mean speed of the
+    route where there is no such step (or it takes no time), and :func:`_paced_share`
+    joins them smoothly. A route of no length: ``share`` unchanged.
+    """
+    a, b = links[k - 1], links[k]
+    dist = _route_m(view, a, b)
+    if dist <= 0.0 or b.t <= a.t:
+        return share
+    mean = dist / (b.t - a.t)
+    v0 = mean
+    if k >= 2 and a.t > links[k - 2].t:
+        v0 = _route_m(view, links[k - 2], a) / (a.t - links[k - 2].t)
+    v1 = mean
+    if k + 1 < len(links) and links[k + 1].t > b.t:
+        v1 = _route_m(view, b, links[k + 1]) / (links[k + 1].t - b.t)
+    return _paced_share(share, v0 / mean, v1 / mean)
+
+
+def _paced_share(u: float, alpha: float, beta: float) -> float:
+    """The cubic Hermite curve through (0, 0) and (1, 1) with end slopes alpha, beta, at u.
+
+    The distance along a route against time, both as shares of the whole: slopes are
+    speeds as multiples of the mean speed. Slopes are limited as Fritsch & Carlson (SIAM
+    J. Numer. Anal. 17, 1980) show keeps the curve monotone: each at least 0 and, where
+    alpha^2 + beta^2 > 9, both scaled down onto that circle. Equal slopes of 1 give the
+    straight line (distance in proportion to time).
+
+    Example (a stop at the far end: more of the way is driven early on):
+        >>> _paced_share(0.5, 1.0, 1.0), _paced_share(0.5, 2.0, 0.0), _paced_share(0.0, 3.0, 3.0)
+        (0.5, 0.75, 0.0)
+    """
+    alpha = max(0.0, alpha)
+    beta = max(0.0, beta)
+    r = alpha * alpha + beta * beta
+    if r > 9.0:
+        f = 3.0 / math.sqrt(r)
+        alpha *= f
+        beta *= f
+    u2 = u * u
+    u3 = u2 * u
+    y = (-2.0 * u3 + 3.0 * u2) + alpha * (u3 - 2.0 * u2 + u) + beta * (u3 - u2)
+    return min(1.0, max(0.0, y))
 
 
 def _point(view: NetworkView, seg: int, pos: float) -> tuple[float, float]:
