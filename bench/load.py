@@ -414,7 +414,7 @@ def kept_cost(rounds: int = 20, vehicles: int = 500) -> dict[str, Any]:
 
 
 def shell_cost(calls: int = 200_000, rounds: int = 2_000) -> dict[str, Any]:
-    """Two fixed costs of the daemon's shell, in µs, without broker (``--shell-cost``).
+    """Fixed costs of the daemon's shell, in µs, without broker (``--shell-cost``).
 
     *drain*: thread CPU of one ``mqtt.drain`` call that finds nothing to read.
 
@@ -431,6 +431,8 @@ def shell_cost(calls: int = 200_000, rounds: int = 2_000) -> dict[str, Any]:
     ``asyncio.to_thread`` of ``Trimmer.maybe`` (a round trip through the thread pool,
     as the daemon did) against ``Trimmer.due`` in the event loop; ``rounds`` awaits in
     one event loop, best of five.
+
+    *encode*: ``encode_record`` per published record (:func:`encode_cost`).
     """
     import aiomqtt
 
@@ -478,7 +480,77 @@ def shell_cost(calls: int = 200_000, rounds: int = 2_000) -> dict[str, Any]:
                if hasattr(Trimmer, "due") else None)  # before session 25: no check
     return {"loadavg_1m": load_average(), "calls": calls,
             "drain_idle_us_buffered": round(wrapped, 3), "drain_idle_us_plain": round(plain, 3),
-            "trim_step_us_thread": round(via_thread, 2), "trim_step_us_check": in_loop}
+            "trim_step_us_thread": round(via_thread, 2), "trim_step_us_check": in_loop,
+            "encode_us": encode_cost()}
+
+
+def encode_cost(vehicles: int = 20, seconds: int = 60, calls: int = 100_000) -> dict[str, Any]:
+    """Thread CPU of ``encode_record`` per published record, by kind, in µs.
+
+    The records are the pipeline's own: ``vehicles`` simulated drives of ``seconds`` s on
+    the demo town (as the generators' pool, seed 77), one fix a second each, sent as the
+    generators send them through a ``Pipeline`` of the livematch on ``PYTHONPATH``;
+    every assignment and commit it answers is kept. Then, for each kind, ``calls``
+    encodings cycling through its records, best of five passes: *all*
+    (``encode_record``), *check* (the float check that decides msgspec or
+    ``json.dumps``: ``livematch.core.events.plain_json`` where that livematch has it,
+    else ``daemon._plain_floats``) and *msgspec* (the daemon's encoder alone).
+    """
+    import numpy as np
+
+    from livematch.config import load_config
+    from livematch.mapdata.netfile import open_network
+    from livematch.pipeline import Pipeline
+    from livematch.service import daemon
+    from livematch.sim.drive import DriveSettings, drivable_segments, simulate_drive
+
+    folder = Path(tempfile.mkdtemp(prefix="lm-encode-"))
+    config = load_config(daemon_config(folder, free_port(), "memory://", "w0", ""), env={})
+    net = open_network(str(NETWORK))
+    pipeline = Pipeline(net, config.matcher, limits=config.feed, alerts=config.alerts)
+    allowed = drivable_segments(net)
+    messages: list[tuple[float, str, bytes]] = []
+    for i in range(vehicles):
+        d = simulate_drive(net, np.random.default_rng([77, i]), f"v{i}", 0.0,
+                           DriveSettings(duration_s=float(seconds)), allowed)
+        xs = [p.x + e[0] for p, e in zip(d.truth, d.error_xy, strict=False)]
+        ys = [p.y + e[1] for p, e in zip(d.truth, d.error_xy, strict=False)]
+        lon, lat = net.projection.to_lonlat(xs, ys)
+        for k in range(len(lon)):
+            t = 1.8e9 + k + i / vehicles
+            messages.append((t, f"fleet/v{i}/position",
+                             f'{{"vehicle":"v{i}","time":{t:.3f},"lat":{lat[k]:.7f},'
+                             f'"lon":{lon[k]:.7f},"accuracy":5.0}}'.encode()))
+    messages.sort()
+    by_kind: dict[str, list[Any]] = {"assignment": [], "commit": []}
+    for t, topic, payload in messages:
+        for out in pipeline.handle(topic, payload, t):
+            if out.kind in by_kind:
+                by_kind[out.kind].append(out.record)
+    shutil.rmtree(folder, ignore_errors=True)
+    try:
+        from livematch.core.events import plain_json as check  # session 26 on
+    except ImportError:
+        check = daemon._plain_floats  # type: ignore[attr-defined]
+    encoder = daemon._ENCODER
+
+    def best(fn: Any, records: list[Any]) -> float:
+        batch = list(itertools.islice(itertools.cycle(records), calls))
+        times = []
+        for _ in range(5):
+            t0 = time.thread_time()
+            for record in batch:
+                fn(record)
+            times.append(time.thread_time() - t0)
+        return round(min(times) / calls * 1e6, 3)
+
+    out: dict[str, Any] = {}
+    for kind, records in by_kind.items():
+        out[kind] = {"records": len(records),
+                     "all": best(daemon.encode_record, records),
+                     "check": best(check, records),
+                     "msgspec": best(encoder.encode, records)}
+    return out
 
 
 def wait_ready(ports: list[int], procs: list[subprocess.Popen[bytes]],
@@ -1950,8 +2022,9 @@ def main(argv: list[str] | None = None) -> int:
                     help="only print the thread CPU per message a group worker only keeps "
                          "(another worker's shard), without broker or socket")
     ap.add_argument("--shell-cost", action="store_true",
-                    help="only print two fixed costs of the daemon's shell (a drain that "
-                         "finds nothing, the trim step of a round), without broker")
+                    help="only print fixed costs of the daemon's shell (a drain that finds "
+                         "nothing, the trim step of a round, encoding a record), "
+                         "without broker")
     ap.add_argument("--warm-feed", type=int, default=0, metavar="S",
                     help="feed each step's vehicles S seconds before its clock starts "
                          "(a worker group settles its load snapshot meanwhile)")
