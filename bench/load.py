@@ -577,13 +577,16 @@ def checkpoint_cost(rounds: int = 200, shards: int = 32, latest: int = 4,
     pipeline's own records and checkpoints (:func:`pipeline_records`). *round*: thread
     CPU per ``save_many``, median of the rounds and best of three passes of them (the
     event loop's thread does the packing, the sending and the reply's parsing; Redis is
-    another process). *pack*: the client connection's packing of the same commands
-    alone (``Connection.pack_commands``), best of three. *hiredis*: whether redis-py
-    found the ``hiredis`` package (its C packer and reply parser).
+    another process). *pack*: the packing of the same commands alone, best of three:
+    ``livematch.service.shards.resp_command`` where that livematch has it (session 26
+    on), else redis-py's (``Connection.pack_commands``, what its pipeline calls).
+    *packer* says which. *hiredis*: whether redis-py found the ``hiredis`` package (its
+    C packer and reply parser).
     """
     import redis.asyncio as aioredis
     from redis.utils import HIREDIS_AVAILABLE
 
+    from livematch.service import shards as shards_module
     from livematch.service.daemon import encode_record
     from livematch.service.shards import LeaseManager, ShardWrite
 
@@ -624,11 +627,21 @@ def checkpoint_cost(rounds: int = 200, shards: int = 32, latest: int = 4,
             keys, args = leases._save_call(write, 3600.0)
             commands.append(("EVALSHA", leases._save.sha, len(keys), *keys, *args))
         connection = aioredis.Connection()
+        packer = getattr(shards_module, "resp_command", None)  # session 26 on: its own packer
+
+        def pack() -> None:
+            if packer is None:
+                connection.pack_commands(commands)
+                return
+            out: list[bytes] = []
+            for command in commands:
+                packer(out, command, connection.encoder)
+            b"".join(out)
         packs = []
         for _ in range(3):
             t0 = time.thread_time()
             for _ in range(rounds):
-                connection.pack_commands(commands)
+                pack()
             packs.append((time.thread_time() - t0) / rounds)
         size = sum(len(b) for b in connection.pack_commands(commands))
         await client.aclose()
@@ -642,7 +655,8 @@ def checkpoint_cost(rounds: int = 200, shards: int = 32, latest: int = 4,
         shutil.rmtree(folder, ignore_errors=True)
     return {"loadavg_1m": load_average(), "hiredis": HIREDIS_AVAILABLE, "rounds": rounds,
             "shards": shards, "latest_per_shard": latest, "blobs": blobs,
-            "request_bytes": size, "round_us": round(round_us, 1), "pack_us": round(pack_us, 1)}
+            "request_bytes": size, "round_us": round(round_us, 1), "pack_us": round(pack_us, 1),
+            "packer": "resp_command" if hasattr(shards_module, "resp_command") else "redis-py"}
 
 
 def wait_ready(ports: list[int], procs: list[subprocess.Popen[bytes]],
