@@ -322,6 +322,7 @@ async def test_save_many_cancelled_leaves_the_pool_usable(
         await send(self, *args, **kw)  # type: ignore[arg-type]
         connections.append(self)
         sent.set()
+        await asyncio.sleep(0.5)  # sent, not yet read: the cancellation lands here
 
     async with managers(redis_url, prefix, "a", lease_s=5.0) as (a,):
         assert await a.acquire(0) == 1

@@ -947,16 +947,16 @@ class LeaseManager:
         conn = await pool.get_connection()
 
         async def once() -> list[Any]:
-            await conn.send_packed_command(request)
             out: list[Any] = []
             try:
+                await conn.send_packed_command(request)
                 for _ in range(replies):
                     try:
                         out.append(await conn.read_response())
                     except ResponseError as exc:
                         out.append(exc)
             except BaseException:
-                await conn.disconnect(nowait=True)  # replies left unread on the socket
+                await conn.disconnect(nowait=True)  # the request or its replies half done
                 raise
             return out
 
