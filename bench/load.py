@@ -414,7 +414,7 @@ def kept_cost(rounds: int = 20, vehicles: int = 500) -> dict[str, Any]:
 
 
 def shell_cost(calls: int = 200_000, rounds: int = 2_000) -> dict[str, Any]:
-    """Two fixed costs of the daemon's shell, in µs, without broker (``--shell-cost``).
+    """Fixed costs of the daemon's shell, in µs, without broker (``--shell-cost``).
 
     *drain*: thread CPU of one ``mqtt.drain`` call that finds nothing to read.
 
@@ -431,6 +431,8 @@ def shell_cost(calls: int = 200_000, rounds: int = 2_000) -> dict[str, Any]:
     ``asyncio.to_thread`` of ``Trimmer.maybe`` (a round trip through the thread pool,
     as the daemon did) against ``Trimmer.due`` in the event loop; ``rounds`` awaits in
     one event loop, best of five.
+
+    *encode*: ``encode_record`` per published record (:func:`encode_cost`).
     """
     import aiomqtt
 
@@ -478,7 +480,183 @@ def shell_cost(calls: int = 200_000, rounds: int = 2_000) -> dict[str, Any]:
                if hasattr(Trimmer, "due") else None)  # before session 25: no check
     return {"loadavg_1m": load_average(), "calls": calls,
             "drain_idle_us_buffered": round(wrapped, 3), "drain_idle_us_plain": round(plain, 3),
-            "trim_step_us_thread": round(via_thread, 2), "trim_step_us_check": in_loop}
+            "trim_step_us_thread": round(via_thread, 2), "trim_step_us_check": in_loop,
+            "encode_us": encode_cost()}
+
+
+def encode_cost(vehicles: int = 20, seconds: int = 60, calls: int = 100_000) -> dict[str, Any]:
+    """Thread CPU of ``encode_record`` per published record, by kind, in µs.
+
+    The records are the pipeline's own (:func:`pipeline_records`). Then, for each kind, ``calls``
+    encodings cycling through its records, best of five passes: *all*
+    (``encode_record``), *check* (the float check that decides msgspec or
+    ``json.dumps``: ``livematch.core.events.plain_json`` where that livematch has it,
+    else ``daemon._plain_floats``) and *msgspec* (the daemon's encoder alone).
+    """
+    from livematch.service import daemon
+
+    _, by_kind = pipeline_records(vehicles, seconds)
+    try:
+        from livematch.core.events import plain_json as check  # session 26 on
+    except ImportError:
+        check = daemon._plain_floats  # type: ignore[attr-defined]
+    encoder = daemon._ENCODER
+
+    def best(fn: Any, records: list[Any]) -> float:
+        batch = list(itertools.islice(itertools.cycle(records), calls))
+        times = []
+        for _ in range(5):
+            t0 = time.thread_time()
+            for record in batch:
+                fn(record)
+            times.append(time.thread_time() - t0)
+        return round(min(times) / calls * 1e6, 3)
+
+    out: dict[str, Any] = {}
+    for kind, records in by_kind.items():
+        out[kind] = {"records": len(records),
+                     "all": best(daemon.encode_record, records),
+                     "check": best(check, records),
+                     "msgspec": best(encoder.encode, records)}
+    return out
+
+
+def pipeline_records(vehicles: int, seconds: int) -> tuple[Any, dict[str, list[Any]]]:
+    """The pipeline and its assignment and commit records for simulated drives.
+
+    ``vehicles`` drives of ``seconds`` s on the demo town (as the generators' pool, seed
+    77), one fix a second each, sent as the generators send them through a ``Pipeline``
+    of the livematch on ``PYTHONPATH`` (which then holds the vehicles).
+    """
+    import numpy as np
+
+    from livematch.config import load_config
+    from livematch.mapdata.netfile import open_network
+    from livematch.pipeline import Pipeline
+    from livematch.sim.drive import DriveSettings, drivable_segments, simulate_drive
+
+    folder = Path(tempfile.mkdtemp(prefix="lm-records-"))
+    config = load_config(daemon_config(folder, free_port(), "memory://", "w0", ""), env={})
+    shutil.rmtree(folder, ignore_errors=True)
+    net = open_network(str(NETWORK))
+    pipeline = Pipeline(net, config.matcher, limits=config.feed, alerts=config.alerts)
+    allowed = drivable_segments(net)
+    messages: list[tuple[float, str, bytes]] = []
+    for i in range(vehicles):
+        d = simulate_drive(net, np.random.default_rng([77, i]), f"v{i}", 0.0,
+                           DriveSettings(duration_s=float(seconds)), allowed)
+        xs = [p.x + e[0] for p, e in zip(d.truth, d.error_xy, strict=False)]
+        ys = [p.y + e[1] for p, e in zip(d.truth, d.error_xy, strict=False)]
+        lon, lat = net.projection.to_lonlat(xs, ys)
+        for k in range(len(lon)):
+            t = 1.8e9 + k + i / vehicles
+            messages.append((t, f"fleet/v{i}/position",
+                             f'{{"vehicle":"v{i}","time":{t:.3f},"lat":{lat[k]:.7f},'
+                             f'"lon":{lon[k]:.7f},"accuracy":5.0}}'.encode()))
+    messages.sort()
+    by_kind: dict[str, list[Any]] = {"assignment": [], "commit": []}
+    for t, topic, payload in messages:
+        for out in pipeline.handle(topic, payload, t):
+            if out.kind in by_kind:
+                by_kind[out.kind].append(out.record)
+    return pipeline, by_kind
+
+
+def checkpoint_cost(rounds: int = 200, shards: int = 32, latest: int = 4,
+                    blobs: int = 6) -> dict[str, Any]:
+    """Thread CPU of one checkpoint round's Redis write in a group worker, in µs.
+
+    A worker of a two-worker group at 500 fixes/s matches about 250 a second and holds
+    32 shards; its checkpoint round (twice a second) writes each shard's dirty latest
+    records (about four), the blobs of the vehicles due (one every
+    ``checkpoint_every_fixes`` = 20 fixes: about six a round) and no deletions, in one
+    pipeline of ``EVALSHA`` commands (``LeaseManager.save_many``). Here, in this process
+    with a fresh ``redis-server``: a ``LeaseManager`` of the livematch on ``PYTHONPATH``
+    that acquires ``shards`` shards, then ``rounds`` rounds of ``save_many`` with
+    ``latest`` latest records per shard and ``blobs`` blobs on the first shards, the
+    pipeline's own records and checkpoints (:func:`pipeline_records`). *round*: thread
+    CPU per ``save_many``, median of the rounds and best of three passes of them (the
+    event loop's thread does the packing, the sending and the reply's parsing; Redis is
+    another process). *pack*: the packing of the same commands alone, best of three:
+    ``livematch.service.shards.resp_command`` where that livematch has it (session 26
+    on), else redis-py's (``Connection.pack_commands``, what its pipeline calls).
+    *packer* says which. *hiredis*: whether redis-py found the ``hiredis`` package (its
+    C packer and reply parser).
+    """
+    import redis.asyncio as aioredis
+    from redis.utils import HIREDIS_AVAILABLE
+
+    from livematch.service import shards as shards_module
+    from livematch.service.daemon import encode_record
+    from livematch.service.shards import LeaseManager, ShardWrite
+
+    pipeline, by_kind = pipeline_records(20, 60)
+    records = [encode_record(r) for r in by_kind["assignment"]]
+    checkpoints = [pipeline.export_vehicle(v) for v in sorted(pipeline.vehicles())]
+    folder = Path(tempfile.mkdtemp(prefix="lm-ckpt-"))
+    proc, port = start_redis(folder)
+    url = f"redis://127.0.0.1:{port}/0"
+
+    async def run() -> tuple[float, float, float]:
+        client = aioredis.Redis.from_url(url)
+        leases = LeaseManager(client, url=url, prefix="ckpt:", group="g", worker="w0",
+                              n_shards=64, lease_s=60.0)
+        for shard in range(shards):
+            assert await leases.acquire(shard) is not None
+        writes = []
+        k = 0
+        for shard in range(shards):
+            mine = {}
+            for _ in range(latest):
+                mine[f"v{k}"] = records[k % len(records)]
+                k += 1
+            kept = ({f"v{k}": checkpoints[shard % len(checkpoints)]} if shard < blobs else {})
+            writes.append(ShardWrite(shard, leases.held[shard], kept, mine, []))
+        await leases.save_many(writes, ttl_s=3600.0)  # the script loaded, the connection made
+        passes = []
+        for _ in range(3):
+            spent = []
+            for _ in range(rounds):
+                t0 = time.thread_time()
+                oks = await leases.save_many(writes, ttl_s=3600.0)
+                spent.append(time.thread_time() - t0)
+                assert all(oks)
+            passes.append(statistics.median(spent))
+        commands = []
+        for write in writes:
+            keys, args = leases._save_call(write, 3600.0)
+            commands.append(("EVALSHA", leases._save.sha, len(keys), *keys, *args))
+        connection = aioredis.Connection()
+        packer = getattr(shards_module, "resp_command", None)  # session 26 on: its own packer
+
+        def pack() -> None:
+            if packer is None:
+                connection.pack_commands(commands)
+                return
+            out: list[bytes] = []
+            for command in commands:
+                packer(out, command, connection.encoder)
+            b"".join(out)
+        packs = []
+        for _ in range(3):
+            t0 = time.thread_time()
+            for _ in range(rounds):
+                pack()
+            packs.append((time.thread_time() - t0) / rounds)
+        size = sum(len(b) for b in connection.pack_commands(commands))
+        await client.aclose()
+        return min(passes) * 1e6, min(packs) * 1e6, size
+
+    try:
+        round_us, pack_us, size = asyncio.run(run())
+    finally:
+        proc.terminate()
+        proc.wait()
+        shutil.rmtree(folder, ignore_errors=True)
+    return {"loadavg_1m": load_average(), "hiredis": HIREDIS_AVAILABLE, "rounds": rounds,
+            "shards": shards, "latest_per_shard": latest, "blobs": blobs,
+            "request_bytes": size, "round_us": round(round_us, 1), "pack_us": round(pack_us, 1),
+            "packer": "resp_command" if hasattr(shards_module, "resp_command") else "redis-py"}
 
 
 def wait_ready(ports: list[int], procs: list[subprocess.Popen[bytes]],
@@ -1950,8 +2128,12 @@ def main(argv: list[str] | None = None) -> int:
                     help="only print the thread CPU per message a group worker only keeps "
                          "(another worker's shard), without broker or socket")
     ap.add_argument("--shell-cost", action="store_true",
-                    help="only print two fixed costs of the daemon's shell (a drain that "
-                         "finds nothing, the trim step of a round), without broker")
+                    help="only print fixed costs of the daemon's shell (a drain that finds "
+                         "nothing, the trim step of a round, encoding a record), "
+                         "without broker")
+    ap.add_argument("--checkpoint-cost", action="store_true",
+                    help="only print the thread CPU of a group worker's checkpoint round "
+                         "(32 shards through Redis) and of its packing, without broker")
     ap.add_argument("--warm-feed", type=int, default=0, metavar="S",
                     help="feed each step's vehicles S seconds before its clock starts "
                          "(a worker group settles its load snapshot meanwhile)")
@@ -1988,6 +2170,9 @@ def main(argv: list[str] | None = None) -> int:
         return 0
     if args.shell_cost:
         print(json.dumps(shell_cost()))
+        return 0
+    if args.checkpoint_cost:
+        print(json.dumps(checkpoint_cost()))
         return 0
     global BROKER_NODELAY, WARM_FEED_S
     BROKER_NODELAY = args.broker_nodelay

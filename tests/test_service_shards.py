@@ -33,6 +33,7 @@ from livematch.service.shards import (
     assign_shards,
     preference,
     rank_workers,
+    resp_command,
     shard_of,
     target_share,
 )
@@ -252,6 +253,91 @@ async def test_save_many_is_fenced_per_shard_and_loads_a_flushed_script(
         assert await a.save_many([ShardWrite(2, 1, {}, {}, ["x"])], ttl_s=60) == [True]
         assert await b.load(2) == {}
         assert await a.save_many([], ttl_s=60) == []
+
+
+@pytest.mark.parametrize("args", [
+    ("EVALSHA", "ab" * 20, 3, "p:{s:01}:fence", "p:{s:01}:vehicle:bus 17", 7, -1, 0),
+    ("SET", "ключ 🚌", b"\x00\r\n\xff" * 3, 2**70, 1.5, 1e-07),
+    ("HSET", "k", "v", b"x" * 20_000),  # above redis-py's buffer cut-off
+    ("PING",),
+])
+def test_resp_command_packs_what_redis_py_packs(args: tuple[object, ...]) -> None:
+    """The checkpoint request's packer against redis-py's own (its asyncio Connection's
+    ``pack_commands``, the bytes a pipeline sends); a bool refused as redis-py refuses it."""
+    connection = aioredis.Connection()
+    out: list[bytes] = []
+    resp_command(out, args, connection.encoder)  # type: ignore[arg-type]
+    assert b"".join(out) == b"".join(connection.pack_commands([args]))
+    with pytest.raises(redis.exceptions.DataError):
+        connection.pack_commands([("SET", "k", True)])
+    with pytest.raises(redis.exceptions.DataError):
+        resp_command([], ("SET", "k", True), connection.encoder)  # type: ignore[arg-type]
+
+
+async def test_save_many_error_reply_keeps_the_connection_in_step(
+        redis_url: str, prefix: str) -> None:
+    """An error reply in the middle of a round (a shard's key of the wrong type: WRONGTYPE)
+    fails the round as a StoreError naming that shard, the writes around it made, and the
+    replies after it are read: the next commands on the client get their own answers."""
+    async with managers(redis_url, prefix, "a", lease_s=5.0) as (a,):
+        for shard in range(3):
+            assert await a.acquire(shard) == 1
+        await a.client.set(a.key(1, "vehicles"), "not a set")  # SADD on it: WRONGTYPE
+        writes = [ShardWrite(s, 1, {f"v{s}": b"%d" % s}, {}, []) for s in range(3)]
+        with pytest.raises(StoreError, match="saving shard 1"):
+            await a.save_many(writes, ttl_s=60)
+        assert await a.load(0) == {"v0": b"0"}
+        assert await a.load(2) == {"v2": b"2"}
+        assert await a.client.get(a.key(1, "vehicles")) == b"not a set"
+        assert await a.client.ping() is True
+        await a.client.delete(a.key(1, "vehicles"))
+        assert await a.save_many(writes, ttl_s=60) == [True, True, True]
+
+
+async def test_save_many_survives_a_dropped_connection(redis_url: str, prefix: str) -> None:
+    """The pooled connection killed by the server between two rounds (CLIENT KILL): the
+    next round reconnects under the client's retry policy and writes, as a redis-py
+    pipeline does."""
+    async with managers(redis_url, prefix, "a", lease_s=5.0) as (a,):
+        assert await a.acquire(0) == 1
+        assert await a.save_many([ShardWrite(0, 1, {"v": b"1"}, {}, [])], ttl_s=60) == [True]
+        other = aioredis.Redis.from_url(redis_url)
+        try:
+            assert await other.client_kill_filter(_type="normal", skipme=True) >= 1
+        finally:
+            await other.aclose()
+        assert await a.save_many([ShardWrite(0, 1, {"v": b"2"}, {}, [])], ttl_s=60) == [True]
+        assert await a.load(0) == {"v": b"2"}
+
+
+async def test_save_many_cancelled_leaves_the_pool_usable(
+        redis_url: str, prefix: str, monkeypatch: pytest.MonkeyPatch) -> None:
+    """A round cancelled once its request is sent, its replies outstanding (a shutdown),
+    drops that connection: the next command does not read the cancelled round's replies."""
+    sent = asyncio.Event()
+    connections: list[aioredis.Connection] = []
+    send = aioredis.Connection.send_packed_command
+
+    async def send_then_tell(self: aioredis.Connection, *args: object, **kw: object) -> None:
+        await send(self, *args, **kw)  # type: ignore[arg-type]
+        connections.append(self)
+        sent.set()
+        await asyncio.sleep(0.5)  # sent, not yet read: the cancellation lands here
+
+    async with managers(redis_url, prefix, "a", lease_s=5.0) as (a,):
+        assert await a.acquire(0) == 1
+        writes = [ShardWrite(0, 1, {f"v{k}": b"x" * 1000}, {}, []) for k in range(200)]
+        monkeypatch.setattr(aioredis.Connection, "send_packed_command", send_then_tell)
+        task = asyncio.create_task(a.save_many(writes, ttl_s=60))
+        await sent.wait()
+        task.cancel()
+        with contextlib.suppress(asyncio.CancelledError):
+            await task
+        monkeypatch.undo()
+        assert task.cancelled()
+        assert not connections[0].is_connected  # dropped, not handed back mid-reply
+        assert await a.client.get(a.key(0, "fence")) == b"1"
+        assert await a.client.ping() is True
 
 
 async def test_renewal_thread_renews_while_event_loop_blocked(redis_url: str,

@@ -434,3 +434,50 @@ class RecordBuilder:
                 path.append({"way": ids[0], "from_node": ids[1], "to_node": ids[2]})
             return {"vehicle": event.vehicle, "fixes": fixes, "path": path}
         return to_record(event, self.network)
+
+
+def plain_json(value: Any) -> bool:
+    """Whether msgspec's JSON encoder writes ``value`` byte for byte as ``json.dumps`` does.
+
+    True for a dict with str keys, or a list or tuple, whose values are str, int, bool,
+    None, floats that are finite and that Python writes without an exponent, or again
+    such dicts, lists and tuples (exact types: a subclass, a numpy scalar, anything else
+    gives False). The two encoders differ only in a float's exponent form (Python:
+    ``1e-05``, ``1e+16``; msgspec: ``0.00001``, ``1e16``; Python uses it for a non-zero
+    float below 1e-4 or at least 1e16 in absolute value) and in NaN and infinity (Python
+    with ``allow_nan=False`` refuses them, msgspec writes ``null``). The daemon
+    (``livematch.service.daemon.encode_record``) encodes every published record with
+    msgspec when this is True and through ``json.dumps`` otherwise, so no NaN or
+    infinity is ever published and the bytes are those ``livematch replay`` writes.
+
+    It lives in this compiled module (setup.py ``NATIVE``) because it runs on every
+    output: compiled, the type tests are pointer comparisons and a float's test is on
+    the C double. One loop per container; a call only for a nested container.
+
+    Example:
+        >>> plain_json({"vehicle": "v", "offset_m": 12.5, "fixes": [{"time": 1.0}]})
+        True
+        >>> plain_json({"offset_m": 0.00001}), plain_json({"eps_m": float("nan")})
+        (False, False)
+    """
+    if type(value) is dict:
+        for k, v in value.items():
+            if type(k) is not str:
+                return False
+            if type(v) is float:
+                if not (v == 0.0 or 1e-4 <= v < 1e16 or -1e16 < v <= -1e-4):
+                    return False  # NaN fails every comparison, infinity the bounds
+            elif not (type(v) is str or type(v) is int or v is None or type(v) is bool
+                      or plain_json(v)):
+                return False
+        return True
+    if type(value) is list or type(value) is tuple:
+        for v in value:
+            if type(v) is float:
+                if not (v == 0.0 or 1e-4 <= v < 1e16 or -1e16 < v <= -1e-4):
+                    return False
+            elif not (type(v) is str or type(v) is int or v is None or type(v) is bool
+                      or plain_json(v)):
+                return False
+        return True
+    return False

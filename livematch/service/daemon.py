@@ -61,6 +61,7 @@ import aiomqtt
 import msgspec
 
 from livematch.config import DaemonConfig, MqttConfig, parse_hostport, redact_url
+from livematch.core.events import plain_json
 from livematch.feed.decode import (
     SHARD_LEVEL,
     known_vehicle,
@@ -308,7 +309,8 @@ def encode_record(record: Mapping[str, Any]) -> bytes:
     ``0.00001``, ``1e16``) and in NaN and infinity (Python refuses them here, msgspec
     writes null), so a record holding a float Python would write in exponent form
     (non-zero and below 1e-4, or at least 1e16, in absolute value) or a non-finite one
-    goes through ``json.dumps`` as before.
+    goes through ``json.dumps`` as before (:func:`livematch.core.events.plain_json`
+    tells, compiled: it runs on every output).
 
     Example:
         >>> encode_record({"vehicle": "bus 17", "eps_m": 15.0, "road": None})
@@ -316,41 +318,10 @@ def encode_record(record: Mapping[str, Any]) -> bytes:
         >>> encode_record({"vehicle": "v", "offset_m": 0.00001})  # exponent form kept
         b'{"vehicle":"v","offset_m":1e-05}'
     """
-    if type(record) is dict and _plain_floats(record):
+    if plain_json(record):
         return _ENCODER.encode(record)
     return json.dumps(record, separators=(",", ":"), ensure_ascii=False,
                       allow_nan=False).encode("utf-8")
-
-
-_SCALARS = frozenset((str, int, bool, type(None)))
-
-
-def _plain_floats(value: Any) -> bool:
-    """Whether msgspec writes ``value`` exactly as ``json.dumps`` does (see above).
-
-    True for a dict with str keys, or a list or tuple, whose values are str, int,
-    bool, None, floats that are finite and printed without an exponent, or again such
-    dicts, lists and tuples. False for anything else (``json.dumps`` then decides, as
-    before). One loop per container, no call per value: it runs on every output.
-    """
-    kind = type(value)
-    if kind is dict:
-        for k in value:  # a plain loop: a generator over the keys costs a resume per key
-            if type(k) is not str:
-                return False
-        values = value.values()
-    elif kind is list or kind is tuple:
-        values = value
-    else:
-        return False
-    for v in values:
-        t = type(v)
-        if t is float:
-            if not (v == 0.0 or 1e-4 <= v < 1e16 or -1e16 < v <= -1e-4):
-                return False
-        elif t not in _SCALARS and not _plain_floats(v):
-            return False
-    return True
 
 
 class _Pending:

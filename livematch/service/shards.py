@@ -51,7 +51,7 @@ from typing import Any
 
 import redis
 import redis.asyncio as aioredis
-from redis.exceptions import NoScriptError, RedisError
+from redis.exceptions import NoScriptError, RedisError, ResponseError
 
 from livematch.config import redact_url
 from livematch.service.store import StoreError
@@ -480,6 +480,35 @@ class RenewalThread:
                 return
 
 
+def resp_command(out: list[bytes], args: Sequence[bytes | str | int], encoder: Any) -> None:
+    """Append one command to ``out`` in the Redis protocol: an array of bulk strings.
+
+    The bytes redis-py's own packer sends for the same arguments (``tests`` compare the
+    two): ``*N``, then ``$LEN`` and the bytes of each argument, each line ending in CRLF
+    (the same in RESP2 and RESP3 for a request). bytes go as they are, an int as its
+    decimal digits, a str encoded as the client's ``encoder`` encodes it (UTF-8 by
+    default); anything else through ``encoder.encode``, as redis-py packs it (a float
+    as its ``repr``, a bool refused with redis-py's ``DataError``). Written out because
+    redis-py's per-argument encoding and buffer growth cost about 10 µs a command of
+    twenty arguments in a checkpoint round (``bench/load.py --checkpoint-cost``).
+    """
+    out.append(b"*%d\r\n" % len(args))
+    encoding, errors = encoder.encoding, encoder.encoding_errors
+    for arg in args:
+        data: bytes
+        if type(arg) is bytes:
+            data = arg
+        elif type(arg) is str:
+            data = arg.encode(encoding, errors)
+        elif type(arg) is int:
+            data = b"%d" % arg
+        else:
+            data = encoder.encode(arg)
+        out.append(b"$%d\r\n" % len(data))
+        out.append(data)
+        out.append(b"\r\n")
+
+
 @dataclass(frozen=True)
 class ShardWrite:
     """One shard's fenced write for :meth:`LeaseManager.save_many`.
@@ -863,25 +892,32 @@ class LeaseManager:
         """:meth:`save` for several shards in one round trip; whether each was written.
 
         Each shard's write is the same fenced script as :meth:`save`, sent in order in
-        one pipeline (not a transaction: each is checked against its own shard's
-        fence, as one by one). One by one, every write cost the worker a request and a
-        reply through the asyncio client, about 160 µs of CPU, against about 40 µs
-        each in a pipeline of 32 (a throwaway measurement at load average 10); a
+        one request (not a transaction: each is checked against its own shard's fence,
+        as one by one). One by one, every write cost the worker a request and a reply
+        through the asyncio client, about 160 µs of CPU, against about 40 µs each in a
+        redis-py pipeline of 32 (a throwaway measurement at load average 10); a
         checkpoint round of a worker holding 32 shards writes most of them (the latest
-        records of every vehicle answered since the last round). A write whose script
-        Redis does not have cached (restarted, ``SCRIPT FLUSH``) is sent again through
-        :meth:`save`, which loads it. Raises :class:`StoreError` as :meth:`save` does;
-        the writes before the failing one may then have been made (each is fenced and
-        the caller writes them again, as after a failed :meth:`save`).
+        records of every vehicle answered since the last round). The request is packed
+        here (:func:`resp_command`) and sent on a connection of the client's pool
+        (:meth:`_exchange`), not through a redis-py pipeline, whose per-argument
+        encoding and packing cost most of the round: about 0.8 against 0.5 ms of CPU a
+        round of 32 shards (``bench/load.py --checkpoint-cost``; docs/measured.md
+        "Session 26 (shell26)"). A write whose script Redis does not have cached
+        (restarted, ``SCRIPT FLUSH``) is sent again through :meth:`save`, which loads
+        it. Raises :class:`StoreError` as :meth:`save` does; the writes before the
+        failing one may then have been made (each is fenced and the caller writes them
+        again, as after a failed :meth:`save`).
         """
         if not writes:
             return []
         try:
-            pipe = self.client.pipeline(transaction=False)
+            encoder = self.client.connection_pool.get_encoder()
+            sha = self._save.sha
+            request: list[bytes] = []
             for write in writes:
                 keys, args = self._save_call(write, ttl_s)
-                pipe.evalsha(self._save.sha, len(keys), *keys, *args)
-            results = await pipe.execute(raise_on_error=False)
+                resp_command(request, ("EVALSHA", sha, len(keys), *keys, *args), encoder)
+            results = await self._exchange(b"".join(request), len(writes))
         except (RedisError, OSError) as exc:
             raise self._fail(f"saving {len(writes)} shard(s)", exc) from exc
         out: list[bool] = []
@@ -895,6 +931,42 @@ class LeaseManager:
             else:
                 out.append(result == 1)
         return out
+
+    async def _exchange(self, request: bytes, replies: int) -> list[Any]:
+        """Send packed commands on a connection of the client's pool; their replies.
+
+        What a redis-py pipeline's ``execute`` does with the request it packs: one
+        connection from the pool, the whole request written at once, every reply read
+        (an error reply is kept in its place as the exception, the rest still read, so
+        the connection stays in step), the connection dropped if reading stops early
+        (cancelled, or a broken connection), and a connection error or timeout retried
+        under the client's retry policy (the connection closed, a new one made). The
+        connection goes back to the pool in every case.
+        """
+        pool = self.client.connection_pool
+        conn = await pool.get_connection()
+
+        async def once() -> list[Any]:
+            out: list[Any] = []
+            try:
+                await conn.send_packed_command(request)
+                for _ in range(replies):
+                    try:
+                        out.append(await conn.read_response())
+                    except ResponseError as exc:
+                        out.append(exc)
+            except BaseException:
+                await conn.disconnect(nowait=True)  # the request or its replies half done
+                raise
+            return out
+
+        async def failed(error: Exception) -> None:
+            await conn.disconnect()
+
+        try:
+            return await conn.retry.call_with_retry(once, failed)
+        finally:
+            await pool.release(conn)
 
     async def load(self, shard: int) -> dict[str, bytes]:
         """Every checkpoint of a shard, by vehicle (expired ones are skipped)."""
