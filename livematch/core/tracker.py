@@ -1785,16 +1785,7 @@ class Tracker:
         anchor = self.stand_from
         if anchor is None or math.hypot(fix.x - anchor[1], fix.y - anchor[2]) > (
                 STAND_SIGMAS * self.settings.sigma_m):
-            # a run that starts at the fix just accepted: its tuple is ``last``'s
-            # (_accept sets it first), shared rather than built again (136 bytes a moving
-            # vehicle, bench/memory.py step 6)
-            last = self.last
-            if last is not None and last[0] == fix.t and last[1] == fix.x and (
-                    last[2] == fix.y):
-                anchor = last
-            else:
-                anchor = (fix.t, fix.x, fix.y)
-            self.stand_from = anchor
+            self.stand_from = anchor = (fix.t, fix.x, fix.y)
         if fix.t - anchor[0] >= STAND_S:
             self.stood_t = fix.t
         return stood
