@@ -538,6 +538,7 @@ def test_vehicle_state_allow_equals_min_max_bucket():
             bucket = (tokens - 1.0 if ok else tokens, last_at, last_t)
             assert state.allow(at, t, rate_hz) is ok
             assert (state.tokens, state.last_at, state.last_t) == bucket
+            assert state.tokens >= 0.0  # what the -1.0 before the first fix relies on
 
 
 def test_pipeline_counters_read_between_messages():
