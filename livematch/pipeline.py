@@ -220,22 +220,35 @@ _ALERTS_DECODER = msgspec.msgpack.Decoder()
 class _VehicleState:
     """A vehicle's tracker, dedupe memory (sorted recent fix times) and alert monitors.
 
+    The dedupe memory holds each time as ``base + recent[i]``: float32 offsets from
+    ``base`` (4 bytes a time) while every time is exactly that sum, as it is for the
+    whole-second or binary-fraction times of most feeds; otherwise doubles with ``base``
+    0.0 (:meth:`keep`). Every time held is exactly ``base + recent[i]`` (double
+    addition), and the sum rises with the offset, so the offsets are sorted as the
+    times are and the answers are those of a window of doubles.
+
     ``pending`` holds the fixes handed to the tracker that it has not answered yet (None
     while there are none: an empty dict costs 64 bytes for every vehicle between fixes).
-    The rate limit's bucket is three slots (``tokens`` None before the first fix) rather
-    than a tuple rebuilt at every fix.
+    The rate limit's bucket is three slots (``tokens`` -1.0 before the first fix: it is
+    never below 0.0 after, see :meth:`allow`) rather than a tuple rebuilt at every fix;
+    an unboxed double, not a float object (24 bytes a vehicle, one made at every fix).
     """
 
-    __slots__ = ("alerts", "last_at", "last_t", "pending", "recent", "tokens", "tracker")
+    __slots__ = ("alerts", "base", "last_at", "last_t", "pending", "recent", "tokens",
+                 "tracker")
 
     def __init__(self, tracker: Tracker, recent: list[float] | None = None) -> None:
         self.tracker = tracker
-        # unboxed doubles: 8 bytes a time instead of a float object and a pointer
-        self.recent: array[float] = array("d", recent or ())
+        # unboxed: float32 offsets from base (4 bytes a time; doubles were 8 and about
+        # 280 bytes more a driven vehicle, bench/memory.py step 6), or doubles (keep)
+        self.base = 0.0
+        self.recent: array[float] = array("f")
+        if recent:
+            self.keep(recent)
         self.alerts = VehicleAlerts()
         self.pending: dict[float, Fix] | None = None
         # Rate limit: tokens, receive time and newest fix time after the last fix checked.
-        self.tokens: float | None = None
+        self.tokens = -1.0
         self.last_at = 0.0
         self.last_t = 0.0
 
@@ -252,7 +265,7 @@ class _VehicleState:
             return True
         cap = rate_hz if rate_hz > 1.0 else 1.0
         tokens = self.tokens
-        if tokens is None:
+        if tokens < 0.0:  # the first fix (the bucket stays within [0, cap] after it)
             tokens = cap
             self.last_at = at
             self.last_t = t
@@ -279,25 +292,60 @@ class _VehicleState:
         self.tokens = tokens
         return False
 
+    def keep(self, times: list[float]) -> None:
+        """Hold ``times`` (sorted, at most ``DEDUPE_WINDOW``) as the dedupe memory.
+
+        As float32 offsets from the oldest when each one plus it gives the time back
+        exactly, else as doubles (``base`` 0.0, where ``0.0 + t == t`` for every time).
+        """
+        base = times[0] if times else 0.0
+        offsets = array("f", [x - base for x in times])
+        if all(base + o == x for o, x in zip(offsets, times, strict=True)):
+            self.base = base
+            self.recent = offsets
+        else:
+            self.base = 0.0
+            self.recent = array("d", times)
+
+    def times(self) -> list[float]:
+        """The fix times held, oldest first."""
+        base = self.base
+        return [base + o for o in self.recent]
+
+    def add_newest(self, t: float) -> None:
+        """Hold ``t``, newer than every time held (the usual case: one append)."""
+        recent = self.recent
+        if not recent:
+            self.keep([t])
+            return
+        base = self.base
+        recent.append(t - base)
+        if base + recent[-1] != t:  # not exact as a float32 offset from base
+            self.keep(([base + o for o in recent[:-1]] + [t])[-DEDUPE_WINDOW:])
+        elif len(recent) > DEDUPE_WINDOW:
+            del recent[0]
+
     def seen(self, t: float) -> bool:
         recent = self.recent
-        if not recent or t > recent[-1]:
+        base = self.base
+        if not recent or t > base + recent[-1]:
             return False  # newer than every time held: the usual case, no search
-        i = bisect.bisect_left(recent, t)
-        return i < len(recent) and recent[i] == t
+        times = self.times()
+        i = bisect.bisect_left(times, t)
+        return i < len(times) and times[i] == t
 
     def remember(self, t: float) -> None:
         recent = self.recent
-        if recent and t <= recent[-1]:
-            bisect.insort(recent, t)
-        else:
-            recent.append(t)  # in order: stays sorted
-        if len(recent) > DEDUPE_WINDOW:
-            del recent[0]
+        if not recent or t > self.base + recent[-1]:
+            self.add_newest(t)
+            return
+        times = self.times()  # an older time (rare): the window built again
+        bisect.insort(times, t)
+        self.keep(times[-DEDUPE_WINDOW:])
 
     @property
     def newest(self) -> float | None:
-        return self.recent[-1] if self.recent else None
+        return self.base + self.recent[-1] if self.recent else None
 
 
 class _Parked:
@@ -481,7 +529,7 @@ class Pipeline:
             arrived.move_to_end(vehicle)
         t = fix.t
         recent = state.recent
-        newest = not recent or t > recent[-1]  # the usual case: no search
+        newest = not recent or t > state.base + recent[-1]  # the usual case: no search
         if not newest and state.seen(t):
             counters["duplicate"] += 1
             return []
@@ -493,9 +541,7 @@ class Pipeline:
         if limits.max_age_s > 0 and at - t > limits.max_age_s:
             counters["late"] += 1
         if newest:
-            recent.append(t)  # in order: stays sorted
-            if len(recent) > DEDUPE_WINDOW:
-                del recent[0]
+            state.add_newest(t)  # in order: stays sorted
         else:
             state.remember(t)
         if t < self._idle_floor:  # a first fix from long ago (late data)
@@ -875,7 +921,7 @@ class Pipeline:
         alerts = _ALERTS_ENCODER.encode(extra)
         # compressed (zlib level 1): about the size of the older LMT3 states at 0.6 x
         # their cost; uncompressed would be 3-5 x longer in the store (bench/checkpoint.py)
-        blob = _Blob(vehicle, list(state.recent), state.tracker.to_bytes(compress=True),
+        blob = _Blob(vehicle, state.times(), state.tracker.to_bytes(compress=True),
                      alerts)
         return STATE_MAGIC + bytes([STATE_VERSION]) + _BLOB_ENCODER.encode(blob)
 

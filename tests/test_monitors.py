@@ -325,6 +325,22 @@ def test_off_network_after_persistence_and_back():
     assert out[1][2]["duration_s"] == 52.0
 
 
+def test_off_network_state_as_written_before_reads_back():
+    """A monitor state with ``last_on`` as a list (as every checkpoint so far wrote it)
+    restores to the same state, and its last fix on a road is the one the next
+    off_network alert names (session 26 keeps it as three fields, not a tuple)."""
+    written = {"off": False, "since": None, "back": 0, "last_on": [9.0, 60.17, 24.94]}
+    m = OffNetworkMonitor.from_state(json.loads(json.dumps(written)))
+    assert m.to_state() == written and m.last_on == (9.0, 60.17, 24.94)
+    out = [a for t in range(10, 41) for a in m.update(fix(t, 0, 0), False, SETTINGS)]
+    assert [a.alert_kind for a in out] == ["off_network"]
+    facts = out[0].facts
+    assert (facts["last_on_network_time"], facts["last_on_network_lat"],
+            facts["last_on_network_lon"]) == (9.0, 60.17, 24.94)
+    assert OffNetworkMonitor().to_state()["last_on"] is None
+    assert OffNetworkMonitor.from_state(OffNetworkMonitor().to_state()).last_on is None
+
+
 def test_stale_watch_once_per_silence():
     """One stale per silence (judged on receive time), one fresh when fixes resume."""
     w = StaleWatch(at=10.0, t=9.0, lat=60.0, lon=24.0)

@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import bisect
 import json
+import random
 from collections import Counter
 
 import numpy as np
@@ -10,6 +12,7 @@ import pytest
 from catalogue import grid, straight_road
 
 from livematch.core.settings import MatchSettings
+from livematch.core.tracker import Tracker
 from livematch.errors import BadConfigError, BadStateError, LivematchError
 from livematch.feed.decode import FeedLimits
 from livematch.pipeline import (
@@ -18,6 +21,7 @@ from livematch.pipeline import (
     Output,
     Pipeline,
     UnknownVehicleError,
+    _VehicleState,
     matcher_settings_from_mapping,
 )
 
@@ -291,7 +295,7 @@ def test_pipeline_idle_vehicles_after_late_data_and_restores():
     assert p.idle_vehicles(T0 + 160, 60.0) == ["parked"]
     for now in (T0 + 100, T0 + 168, T0 + 169):
         full = sorted(v for v in p.vehicles()
-                      if now - max(p._vehicles[v].recent) > 60.0)
+                      if now - max(p._vehicles[v].times()) > 60.0)
         assert p.idle_vehicles(now, 60.0) == full
 
 
@@ -534,6 +538,7 @@ def test_vehicle_state_allow_equals_min_max_bucket():
             bucket = (tokens - 1.0 if ok else tokens, last_at, last_t)
             assert state.allow(at, t, rate_hz) is ok
             assert (state.tokens, state.last_at, state.last_t) == bucket
+            assert state.tokens >= 0.0  # what the -1.0 before the first fix relies on
 
 
 def test_pipeline_counters_read_between_messages():
@@ -572,3 +577,37 @@ def test_pipeline_counters_read_between_messages():
     assert before["messages"] == 7
     run(old, msgs[7:8])
     assert old.counters["messages"] == 1
+
+
+def test_dedupe_window_answers_as_a_window_of_doubles():
+    """The dedupe memory (float32 offsets from a base while every time is exact, else
+    doubles) answers as a plain sorted list of the newest DEDUPE_WINDOW times does (the
+    model: Python floats and the standard bisect module), for whole-second times,
+    millisecond times, a millisecond time among whole seconds, and whole seconds whose
+    spread passes float32's 2**24 whole numbers; in order, out of order and repeated."""
+    rng = random.Random(26)
+    for kind in ("whole", "ms", "mixed", "wide"):
+        state = _VehicleState(Tracker(ROAD, "v"))
+        model: list[float] = []
+        for k in range(600):
+            step = 300_001.0 if kind == "wide" else 1.0
+            t = T0 + step * (k - rng.choice([0, 0, 0, 0, 0, 0, 1, 3, 40, 70]))
+            if kind == "ms" or (kind == "mixed" and k == 300):
+                t += rng.randrange(1, 1000) / 1000.0
+            held = t in model
+            assert state.seen(t) is held, (kind, k)
+            if not held:
+                newest = not state.recent or t > state.base + state.recent[-1]
+                assert newest is (not model or t > model[-1])
+                if newest:
+                    state.add_newest(t)
+                else:
+                    state.remember(t)
+                bisect.insort(model, t)
+                del model[:-DEDUPE_WINDOW]
+            assert state.times() == model and state.newest == model[-1], (kind, k)
+            if kind == "whole" or (kind == "mixed" and k < 300):
+                assert state.recent.typecode == "f", (kind, k)  # 4 bytes a time
+        restored = _VehicleState(Tracker(ROAD, "v"), model)
+        assert restored.times() == model
+        assert restored.recent.typecode == ("d" if kind in ("ms", "wide") else "f"), kind

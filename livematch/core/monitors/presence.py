@@ -42,23 +42,40 @@ class OffNetworkMonitor:
     off: bool = False
     since: float | None = None  # first fix of the current run without a road nearby
     back: int = 0  # consecutive fixes with a road, while off
-    # time, lat, lon of the last fix with a road (a tuple: 16 bytes less than a list, and
-    # the same JSON in a checkpoint; one read back from a checkpoint is a list)
-    last_on: tuple[float, float, float] | list[float] | None = None
+    # time, lat, lon of the last fix with a road (``on``: there was one), as three
+    # fields rather than a tuple: unboxed doubles in the compiled build, where the tuple
+    # and its three float objects were 136 bytes a vehicle, built again on every fix
+    # (bench/memory.py step 6); read together as :attr:`last_on`
+    on: bool = False
+    on_t: float = 0.0
+    on_lat: float = 0.0
+    on_lon: float = 0.0
+
+    @property
+    def last_on(self) -> tuple[float, float, float] | None:
+        """Time, lat, lon of the last fix with a road nearby, None before the first."""
+        return (self.on_t, self.on_lat, self.on_lon) if self.on else None
+
+    def on_road(self, fix: Fix) -> None:
+        """Keep ``fix`` as the last fix with a road nearby."""
+        self.on = True
+        self.on_t = fix.t
+        self.on_lat = fix.lat
+        self.on_lon = fix.lon
 
     def update(self, fix: Fix, has_road: bool, settings: AlertSettings) -> list[Alert]:
         """Take one accepted fix; ``has_road``: the matcher found a road near it."""
         if has_road:
             if not self.off:
                 self.since = None
-                self.last_on = (fix.t, fix.lat, fix.lon)
+                self.on_road(fix)
                 return []
             self.back += 1
             if self.back < settings.on_network_fixes:
                 return []
             since = self.since if self.since is not None else fix.t
             self.off, self.back, self.since = False, 0, None
-            self.last_on = (fix.t, fix.lat, fix.lon)
+            self.on_road(fix)
             return [Alert(fix.vehicle, fix.t, "on_network", {
                 "duration_s": round(fix.t - since, 1), "lat": fix.lat, "lon": fix.lon})]
         self.back = 0
@@ -77,14 +94,18 @@ class OffNetworkMonitor:
 
     def to_state(self) -> dict[str, Any]:
         """JSON-ready state (``last_on`` a list, as it always was)."""
-        last = self.last_on
         return {"off": self.off, "since": self.since, "back": self.back,
-                "last_on": list(last) if last is not None else None}
+                "last_on": [self.on_t, self.on_lat, self.on_lon] if self.on else None}
 
     @classmethod
     def from_state(cls, state: dict[str, Any]) -> OffNetworkMonitor:
         """Restore a monitor written by :meth:`to_state`."""
-        return cls(**state)
+        m = cls(off=state["off"], since=state["since"], back=state["back"])
+        last = state["last_on"]
+        if last is not None:
+            m.on = True
+            m.on_t, m.on_lat, m.on_lon = last
+        return m
 
 
 @dataclass(slots=True)  # one per vehicle: no instance dict

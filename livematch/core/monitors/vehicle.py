@@ -96,7 +96,10 @@ class VehicleAlerts:
             # on a road and not off the network: OffNetworkMonitor.update's first case,
             # inline (it runs for nearly every fix of every vehicle)
             network.since = None
-            network.last_on = (fix.t, fix.lat, fix.lon)
+            network.on = True
+            network.on_t = fix.t
+            network.on_lat = fix.lat
+            network.on_lon = fix.lon
             alerts: list[Alert] = []
         else:
             alerts = network.update(fix, has_road, settings)
