@@ -521,6 +521,24 @@ def encode_cost(vehicles: int = 20, seconds: int = 60, calls: int = 100_000) -> 
     return out
 
 
+def pool_drive(net: Any, allowed: Any, i: int, seconds: int) -> tuple[Any, Any]:
+    """Drive ``i`` of the generators' pool (seed 77): its fixes' lon and lat arrays.
+
+    ``seconds`` s of one fix a second on ``net`` over the ``allowed`` segments, GPS
+    error included (``livematch.sim.drive`` defaults), as :func:`make_pool` and
+    :func:`pipeline_records` both make them.
+    """
+    import numpy as np
+
+    from livematch.sim.drive import DriveSettings, simulate_drive
+
+    d = simulate_drive(net, np.random.default_rng([77, i]), f"v{i}", 0.0,
+                       DriveSettings(duration_s=float(seconds)), allowed)
+    xs = [p.x + e[0] for p, e in zip(d.truth, d.error_xy, strict=False)]
+    ys = [p.y + e[1] for p, e in zip(d.truth, d.error_xy, strict=False)]
+    return net.projection.to_lonlat(xs, ys)
+
+
 def pipeline_records(vehicles: int, seconds: int) -> tuple[Any, dict[str, list[Any]]]:
     """The pipeline and its assignment and commit records for simulated drives.
 
@@ -528,12 +546,11 @@ def pipeline_records(vehicles: int, seconds: int) -> tuple[Any, dict[str, list[A
     77), one fix a second each, sent as the generators send them through a ``Pipeline``
     of the livematch on ``PYTHONPATH`` (which then holds the vehicles).
     """
-    import numpy as np
 
     from livematch.config import load_config
     from livematch.mapdata.netfile import open_network
     from livematch.pipeline import Pipeline
-    from livematch.sim.drive import DriveSettings, drivable_segments, simulate_drive
+    from livematch.sim.drive import drivable_segments
 
     folder = Path(tempfile.mkdtemp(prefix="lm-records-"))
     config = load_config(daemon_config(folder, free_port(), "memory://", "w0", ""), env={})
@@ -543,11 +560,7 @@ def pipeline_records(vehicles: int, seconds: int) -> tuple[Any, dict[str, list[A
     allowed = drivable_segments(net)
     messages: list[tuple[float, str, bytes]] = []
     for i in range(vehicles):
-        d = simulate_drive(net, np.random.default_rng([77, i]), f"v{i}", 0.0,
-                           DriveSettings(duration_s=float(seconds)), allowed)
-        xs = [p.x + e[0] for p, e in zip(d.truth, d.error_xy, strict=False)]
-        ys = [p.y + e[1] for p, e in zip(d.truth, d.error_xy, strict=False)]
-        lon, lat = net.projection.to_lonlat(xs, ys)
+        lon, lat = pool_drive(net, allowed, i, seconds)
         for k in range(len(lon)):
             t = 1.8e9 + k + i / vehicles
             messages.append((t, f"fleet/v{i}/position",
@@ -772,7 +785,7 @@ def make_pool(path: Path) -> None:
     import numpy as np
 
     from livematch.mapdata.netfile import open_network
-    from livematch.sim.drive import DriveSettings, drivable_segments, simulate_drive
+    from livematch.sim.drive import drivable_segments
 
     net = open_network(str(NETWORK))
     allowed = drivable_segments(net)
@@ -780,11 +793,7 @@ def make_pool(path: Path) -> None:
     lon = np.empty((POOL_DRIVES, seconds))
     lat = np.empty((POOL_DRIVES, seconds))
     for i in range(POOL_DRIVES):
-        d = simulate_drive(net, np.random.default_rng([77, i]), f"v{i}", 0.0,
-                           DriveSettings(duration_s=float(seconds)), allowed)
-        xs = [p.x + e[0] for p, e in zip(d.truth, d.error_xy, strict=False)]
-        ys = [p.y + e[1] for p, e in zip(d.truth, d.error_xy, strict=False)]
-        lo, la = net.projection.to_lonlat(xs, ys)
+        lo, la = pool_drive(net, allowed, i, seconds)
         k = min(seconds, len(lo))
         lon[i, :k], lat[i, :k] = lo[:k], la[:k]
         lon[i, k:], lat[i, k:] = lo[k - 1], la[k - 1]

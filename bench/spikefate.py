@@ -60,6 +60,7 @@ import json
 import math
 import sys
 from collections import Counter
+from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
@@ -175,17 +176,35 @@ def placement_misses(pos: list[float], dt: float) -> tuple[int, int, int]:
     return n, by_time, paced
 
 
-def pace_oracle(args: argparse.Namespace) -> int:
-    """``--pace-oracle``: placement_misses over the drives of each seed, one JSON line."""
+def seeded_drives(args: argparse.Namespace) -> tuple[Any, Iterator[tuple[int, list[Any]]]]:
+    """The extract's network, and each seed of ``--seeds`` with its simulated drives.
+
+    The accuracy harness's drives (``bench/accuracy.py``'s simulator and error model:
+    sigma 5 m, tau 45 s, 1 % outliers) for ``--sim``, ``--extract``, ``--drives`` and
+    ``--duration``, as every mode of this script reads them; a seed's drives are made
+    when the loop reaches it.
+    """
     settings = DriveSettings(duration_s=args.duration, sigma_m=5.0, tau_s=45.0,
                              outlier_p=0.01, **acc.SIM_MODELS[args.sim])
     name = args.extract
     eidx = list(acc.EXTRACTS).index(name) if name in acc.EXTRACTS else 0
     network = acc.load_network(acc.extract_path(name))
     allowed = acc.drivable_segments(network)
+
+    def each() -> Iterator[tuple[int, list[Any]]]:
+        for seed in [int(s) for s in args.seeds.split(",")]:
+            yield seed, acc.simulate_drives(network, seed, eidx, args.drives, settings,
+                                            allowed)
+
+    return network, each()
+
+
+def pace_oracle(args: argparse.Namespace) -> int:
+    """``--pace-oracle``: placement_misses over the drives of each seed, one JSON line."""
+    name = args.extract
     out = []
-    for seed in [int(s) for s in args.seeds.split(",")]:
-        drives = acc.simulate_drives(network, seed, eidx, args.drives, settings, allowed)
+    _, drives_by_seed = seeded_drives(args)
+    for seed, drives in drives_by_seed:
         n = by_time = paced = 0
         for d in drives:
             obs = observe(d, args.interval)
@@ -223,15 +242,10 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     _instrument()
     matcher = acc.matcher_settings(args.matcher)
-    settings = DriveSettings(duration_s=args.duration, sigma_m=5.0, tau_s=45.0,
-                             outlier_p=0.01, **acc.SIM_MODELS[args.sim])
     name = args.extract
-    eidx = list(acc.EXTRACTS).index(name) if name in acc.EXTRACTS else 0
-    network = acc.load_network(acc.extract_path(name))
-    allowed = acc.drivable_segments(network)
     out: list[dict[str, Any]] = []
-    for seed in [int(s) for s in args.seeds.split(",")]:
-        drives = acc.simulate_drives(network, seed, eidx, args.drives, settings, allowed)
+    network, drives_by_seed = seeded_drives(args)
+    for seed, drives in drives_by_seed:
         fleet = [(d, observe(d, args.interval)) for d in drives]
         records = replay_records(network, fleet)
         xy = acc.roundtrip_xy(network, records)

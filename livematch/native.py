@@ -105,6 +105,25 @@ def pure_process() -> bool:
     return any(isinstance(f, _SourceFirst) for f in sys.meta_path)
 
 
+def source_module(relative: str, name: str) -> ModuleType:
+    """A livematch module's ``.py`` file loaded once more, as a plain module ``name``.
+
+    ``relative`` is the file's path inside the package (``"core/tracker.py"``). The
+    copy runs as Python whatever is installed, so a test can hold a compiled module's
+    behaviour against its own source. Registered in ``sys.modules`` under ``name``
+    first: dataclasses and pickling look classes' modules up by name. Not cached: the
+    caller keeps the module.
+    """
+    path = Path(__file__).parent / relative
+    spec = importlib.util.spec_from_file_location(name, path)
+    if spec is None or spec.loader is None:
+        raise ImportError(f"cannot load {path} as a module")
+    module = importlib.util.module_from_spec(spec)
+    sys.modules[name] = module
+    spec.loader.exec_module(module)
+    return module
+
+
 def describe() -> str:
     """One line for a benchmark's header: how this process runs livematch."""
     if pure_process():

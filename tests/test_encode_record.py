@@ -11,12 +11,9 @@ bytes for the same value.
 
 from __future__ import annotations
 
-import importlib.util
 import json
 import math
-import sys
 from functools import cache
-from pathlib import Path
 from types import ModuleType
 from typing import Any
 
@@ -34,13 +31,7 @@ from livematch.service.daemon import encode_record
 @cache
 def pure_events() -> ModuleType:
     """``livematch/core/events.py`` loaded from its source, as a module of its own."""
-    path = Path(native.__file__).parent / "core" / "events.py"
-    spec = importlib.util.spec_from_file_location("_pure_livematch_events", path)
-    assert spec is not None and spec.loader is not None
-    module = importlib.util.module_from_spec(spec)
-    sys.modules[spec.name] = module  # dataclasses look modules up by name
-    spec.loader.exec_module(module)
-    return module
+    return native.source_module("core/events.py", "_pure_livematch_events")
 
 
 def python_bytes(record: Any) -> bytes:

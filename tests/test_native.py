@@ -13,9 +13,7 @@ from __future__ import annotations
 
 import importlib.machinery
 import importlib.util
-import sys
 from functools import cache
-from pathlib import Path
 from types import ModuleType
 
 import pytest
@@ -30,13 +28,7 @@ from tests.test_candidates import drive, osm
 @cache
 def pure_tracker() -> ModuleType:
     """``livematch/core/tracker.py`` loaded from its source, as a module of its own."""
-    path = Path(native.__file__).parent / "core" / "tracker.py"
-    spec = importlib.util.spec_from_file_location("_pure_livematch_tracker", path)
-    assert spec is not None and spec.loader is not None
-    module = importlib.util.module_from_spec(spec)
-    sys.modules[spec.name] = module  # dataclasses and pickling look modules up by name
-    spec.loader.exec_module(module)
-    return module
+    return native.source_module("core/tracker.py", "_pure_livematch_tracker")
 
 
 def test_pure_copy_is_python() -> None:
