@@ -174,8 +174,8 @@ class CandidateTree:
     """The candidate tree of one level: rows, vias and counts in two flat arrays.
 
     Attributes:
-        ti: the header (counts), the rows' ints and the vias (int32; layout in
-            :mod:`livematch.core._tree_kernel`).
+        ti: the header (counts), the rows' ints, the vias and each fix's first row
+            (int32; layout in :mod:`livematch.core._tree_kernel`).
         tf: the rows' positions, the live rows' low and cost, the fix times (float64;
             an older row keeps no low and cost: nothing reads them once it is not live).
         lo, hi: the live block (the newest fix's states, in the reference's dict order):
