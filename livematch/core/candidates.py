@@ -1034,6 +1034,7 @@ def warm_up() -> None:
     tree.junction_split(best, 1.0, score)
     tree.driven_since(best, row, net.seg_len)
     tree.common_ancestor(0)
+    _t.seq_at(tree.ti, 0)  # a row's fix, when it lies more than a few fixes back
     tree.prune(row)
     tree.trim(0, tracker.seq, 0, 60, -1)  # a tracker's own trim is rare: the commit check cuts
     # the sweep kernel on its own (the route monitor's step) is a compilation of its own
