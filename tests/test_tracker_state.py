@@ -177,6 +177,12 @@ def test_state_corrupt_lmt5_is_a_bad_state() -> None:
                 plain[:-20], packed[:-20], plain[:4] + b"\x01" + plain[5:]):
         with pytest.raises(BadStateError):
             Tracker.from_bytes(net, None, bad)
+    # a tree's first row (seg, seq, parent, via_end) given a fix after the others': the
+    # rows are no longer in fix order, which the trees rely on (each fix's first row)
+    at = 9 + header + 4
+    late = (2**30).to_bytes(4, "little")
+    with pytest.raises(BadStateError, match="fix order"):
+        Tracker.from_bytes(net, None, plain[:at] + late + plain[at + 4:])
 
 
 def test_state_skips_empty_parts() -> None:

@@ -4254,7 +4254,10 @@ def _unpack_levels(levels: list[Level], rows: list[list[float | int]], rest: mem
             if not old:
                 times = np.frombuffer(rest, np.float64, n_times, at_t)
                 lf = np.frombuffer(rest, np.float64, nl * LIVE_F, at_l)
-                lv.tree = CandidateTree.unpacked(ti, tf, lf, tv, nl, times, t0)
+                try:  # rows out of fix order (the tree keeps each fix's first row)
+                    lv.tree = CandidateTree.unpacked(ti, tf, lf, tv, nl, times, t0)
+                except ValueError as exc:
+                    raise BadStateError(f"corrupt tracker state: {exc}") from exc
             elif old == 3:
                 times = np.frombuffer(rest, np.float64, n_times, at_t)
                 lv.tree = CandidateTree.unpacked_rows(ti, tf, tv, nl, times, t0)
