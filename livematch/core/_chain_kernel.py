@@ -33,6 +33,7 @@ from livematch.core._sweep_kernel import (
     H_HI,
     H_LCAP,
     H_LO,
+    H_N,
     H_NF,
     H_RCAP,
     H_T0,
@@ -46,7 +47,6 @@ from livematch.core._sweep_kernel import (
     LIVE_F,
     ROW_F,
     ROW_I,
-    row_from,
     seq_at,
 )
 
@@ -77,7 +77,11 @@ def _keyed_chain_rows(sweep_key: int) -> Callable[..., int]:
             return 0
         length = 0
         cur = top
-        bound = row_from(ti, min_seq)  # a row below it is of a fix older than min_seq
+        # a row below ``bound`` is of a fix older than min_seq: row_from written out (a
+        # call that takes an array costs two atomic reference-count updates)
+        j = min_seq - ti[H_T0]
+        bound = (0 if j <= 0 else ti[H_N] if j >= ti[H_NF]
+                 else ti[ti.shape[0] - ti[H_TCAP] + j])
         while cur >= bound and cur >= 0:
             length += 1
             cur = ti[ROW_I * cur + K_PARENT]

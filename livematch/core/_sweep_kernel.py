@@ -1108,7 +1108,10 @@ def compact_append(
 @numba.njit(cache=True, error_model="numpy")
 def rows_ancestor(ti: np.ndarray, cur: np.ndarray, k: int, floor: int) -> int:
     """:func:`livematch.core.sweep.common_ancestor` of the ``k`` distinct rows ``cur``."""
-    bound = row_from(ti, floor + 1)  # a row below it is of fix <= floor
+    # a row below ``bound`` is of fix <= floor: row_from(ti, floor + 1) written out (a
+    # call that takes an array costs two atomic reference-count updates; every fix)
+    j = floor + 1 - ti[H_T0]
+    bound = 0 if j <= 0 else ti[H_N] if j >= ti[H_NF] else ti[ti.shape[0] - ti[H_TCAP] + j]
     while k > 1:
         if cur[0] < bound:
             return -1
@@ -1143,7 +1146,10 @@ def rows_ancestor_marked(ti: np.ndarray, cur: np.ndarray, k: int, floor: int,
     ends the same too.
     """
     room = mark.shape[0]
-    bound = row_from(ti, floor + 1)  # a row below it is of fix <= floor
+    # a row below ``bound`` is of fix <= floor: row_from(ti, floor + 1), written out (see
+    # rows_ancestor)
+    j = floor + 1 - ti[H_T0]
+    bound = 0 if j <= 0 else ti[H_N] if j >= ti[H_NF] else ti[ti.shape[0] - ti[H_TCAP] + j]
     while k > 1:
         if cur[0] < bound:
             return -1
@@ -1207,10 +1213,18 @@ def commit_point(ti: np.ndarray, next_commit: int, newest: int) -> int:
 @numba.njit(cache=True, error_model="numpy")
 def commit_point_of(ti: np.ndarray, next_commit: int, newest: int, top: int) -> int:
     """:func:`commit_point` from the live block's :func:`block_ancestor` ``top``."""
-    after = row_from(ti, newest + 1)  # rows from here on are of fixes after newest
+    # rows from ``after`` on are of fixes after newest, from ``start`` on of next_commit
+    # or later: row_from written out (see rows_ancestor)
+    t0 = ti[H_T0]
+    nf = ti[H_NF]
+    fb = ti.shape[0] - ti[H_TCAP]
+    j = newest + 1 - t0
+    after = 0 if j <= 0 else ti[H_N] if j >= nf else ti[fb + j]
     if top >= after:
         top = ancestor_at(ti, top, newest)
-    if top >= 0 and row_from(ti, next_commit) <= top < after:
+    j = next_commit - t0
+    start = 0 if j <= 0 else ti[H_N] if j >= nf else ti[fb + j]
+    if top >= 0 and start <= top < after:
         return top
     return -1
 
@@ -1236,7 +1250,10 @@ def cut_and_check(ti: np.ndarray, next_commit: int, newest: int, cut: bool) -> i
 @numba.njit(cache=True, error_model="numpy")
 def cut_links(ti: np.ndarray, cut: int) -> None:
     """Set to -1 the first back-pointer to a state older than fix ``cut`` on each live path."""
-    bound = row_from(ti, cut)  # a row below it is of a fix older than cut
+    # a row below ``bound`` is of a fix older than cut: row_from(ti, cut), written out
+    # (see rows_ancestor)
+    j = cut - ti[H_T0]
+    bound = 0 if j <= 0 else ti[H_N] if j >= ti[H_NF] else ti[ti.shape[0] - ti[H_TCAP] + j]
     for r in range(ti[H_LO], ti[H_HI]):
         cur = r
         while True:
@@ -1252,7 +1269,10 @@ def cut_links(ti: np.ndarray, cut: int) -> None:
 @numba.njit(cache=True, error_model="numpy")
 def ancestor_at(ti: np.ndarray, row: int, seq: int) -> int:
     """The ancestor of ``row`` (itself included) with the largest seq <= ``seq``."""
-    after = row_from(ti, seq + 1)  # rows from here on are of fixes after seq
+    # rows from ``after`` on are of fixes after seq: row_from(ti, seq + 1), written out
+    # (see rows_ancestor)
+    j = seq + 1 - ti[H_T0]
+    after = 0 if j <= 0 else ti[H_N] if j >= ti[H_NF] else ti[ti.shape[0] - ti[H_TCAP] + j]
     while row >= after and ti[ROW_I * row + K_PARENT] >= 0:
         row = ti[ROW_I * row + K_PARENT]
     return row

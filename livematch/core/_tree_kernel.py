@@ -282,7 +282,10 @@ def live_scores(
     fb = ti.shape[0] - ti[H_TCAP]  # fix_base
     t0 = ti[H_T0]
     nf = ti[H_NF]
-    bound = own_row_from(ti, first)  # a row below it is of a fix older than first
+    # a row below ``bound`` is of a fix older than first: own_row_from written out (a call
+    # that takes an array costs two atomic reference-count updates; every fix)
+    jf = first - t0
+    bound = 0 if jf <= 0 else ti[H_N] if jf >= nf else ti[fb + jf]
     for r in range(lo, hi):
         score = tf[lb + LIVE_F * (r - lo) + LF_COST]
         cur = r
