@@ -893,7 +893,19 @@ def kept_rows(ti: np.ndarray) -> tuple[int, int, int]:
                 keep[p] = True
     if first < 0:
         return 0, 0, 0
-    return rows, vias, seq_at(ti, last) - seq_at(ti, first) + 1
+    # the two rows' fix slots (seq_at written out: a call that takes the array costs two
+    # atomic reference-count updates, and a full tree asks this about twice a fix): the
+    # last row kept is the live block's, of the newest fix or one just before; the
+    # first kept is of an old fix, a few slots up from the oldest
+    fb = ti.shape[0] - ti[H_TCAP]
+    nf = ti[H_NF]
+    j_last = nf - 1
+    while ti[fb + j_last] > last:
+        j_last -= 1
+    j_first = 0
+    while j_first + 1 < nf and ti[fb + j_first + 1] <= first:
+        j_first += 1
+    return rows, vias, j_last - j_first + 1
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -969,12 +981,14 @@ def compact_into(ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarra
     first = -1  # the fix slots (from H_T0) of the first and last rows kept
     last = -1
     fix = 0  # row r's fix slot: the last with first row <= r
+    nxt = ti[fb + 1] if nf > 1 else n  # the first row of slot fix + 1 (n: no such slot)
     end_before = 0  # where the vias of row r - 1 end (read before row r - 1 is rewritten)
     for r in range(n):
         v0 = end_before
         end_before = ti[ROW_I * r + K_VIAE]
-        while fix + 1 < nf and ti[fb + fix + 1] <= r:
+        while r >= nxt:
             fix += 1
+            nxt = ti[fb + fix + 1] if fix + 1 < nf else n
         if not keep[r]:
             continue
         if first < 0:
