@@ -605,6 +605,13 @@ def row_bytes() -> int:
     return 4 * tk.ROW_I + 8 * tk.ROW_F
 
 
+def fix_bytes() -> int:
+    """Bytes a tree keeps a fix of room: its time (and its first row: rows keep no fix)."""
+    from livematch.core import _tree_kernel as tk
+
+    return 8 + (4 if hasattr(tk, "H_NF") else 0)
+
+
 def live_bytes() -> int:
     """Bytes a tree keeps for each live row apart from the rows (0: every row keeps them)."""
     from livematch.core import _tree_kernel as tk
@@ -628,7 +635,10 @@ def tree_room(tree: Any) -> dict[str, int]:
                 "live": 0, "cap_live": 0}
     need_rows, need_vias, need_t = tk.kept_rows(ti)
     n = ti.item(tk.H_N)
-    t_used = ti.item(tk.ROW_I * (n - 1) + tk.K_SEQ) - ti.item(tk.H_T0) + 1
+    if hasattr(tk, "H_NF"):  # rows keep no fix: the tree counts its fixes
+        t_used = ti.item(tk.H_NF)
+    else:
+        t_used = ti.item(tk.ROW_I * (n - 1) + tk.K_SEQ) - ti.item(tk.H_T0) + 1
     return {"bytes": ti.nbytes + tree.tf.nbytes, "arrays": 2, "cap_rows": tree.cap_rows,
             "rows": n, "need_rows": need_rows, "cap_vias": tree.cap_vias, "vias": tree.nv,
             "need_vias": need_vias, "cap_t": tree.cap_times, "t": t_used, "need_t": need_t,
@@ -1214,7 +1224,7 @@ def breakdown_lines(b: dict[str, Any] | None) -> list[str]:
         "",
         f"Candidate trees by level (means per vehicle; rows of {row_bytes()} bytes and "
         f"{live_bytes()} more for each live row room, vias of 4, fix "
-        "times of 8; needed: what a compaction now keeps, the live block and its "
+        f"times of {fix_bytes()}; needed: what a compaction now keeps, the live block and its "
         "ancestors):",
         "",
         "| eps m | bytes | rows room / in use / needed | live room / live | vias room / "

@@ -19,7 +19,7 @@ import numpy as np
 import pytest
 
 from livematch.core import _tree_kernel as _t
-from livematch.core._sweep_kernel import compact_in_place, kept_rows
+from livematch.core._sweep_kernel import compact_in_place, kept_mask, kept_rows
 from livematch.core.candidates import DIED, CandidateTree
 from livematch.core.fastsweep import sweep_arrays
 from livematch.core.fix import Fix
@@ -333,7 +333,7 @@ def test_compact_in_place_equals_compact_into_new_arrays() -> None:
             lb2 = _t.live_base(ti2)
             tb2 = _t.time_base(ti2)
             # the same header but for the room (the in-place arrays keep theirs)
-            head = [c for c in range(_t.HEAD) if c not in (_t.H_RCAP, _t.H_LCAP)]
+            head = [c for c in range(_t.HEAD) if c not in (_t.H_RCAP, _t.H_LCAP, _t.H_TCAP)]
             assert ti2[head].tolist() == ti[head].tolist()
             assert ti2[:_t.HEAD + _t.ROW_I * n].tolist()[_t.HEAD:] == \
                 ti[:_t.HEAD + _t.ROW_I * n].tolist()[_t.HEAD:]
@@ -346,8 +346,20 @@ def test_compact_in_place_equals_compact_into_new_arrays() -> None:
             assert ti2[vb2:vb2 + nv].tolist() == ti[vb:vb + nv].tolist()
             rows, vias, times = kept_rows(tree.ti)
             assert (rows, vias) == (n, nv)
+            # each kept row's fix, as the tree had it (rows keep none: each fix's first
+            # row does), the same in place and in new arrays
+            kept = np.flatnonzero(kept_mask(tree.ti)).tolist()
+            seqs = np.array([_t.seq_at(ti, r) for r in range(n)])
+            assert seqs.tolist() == [tree.seq_of(r) for r in kept]
+            assert [_t.seq_at(ti2, r) for r in range(n)] == seqs.tolist()
+            # _tree_kernel's own copies of the look-ups answer as _sweep_kernel's
+            assert [_t.own_seq_at(ti, r) for r in range(n)] == seqs.tolist()
+            for s in range(int(seqs.min()) - 1, int(seqs.max()) + 2):
+                assert _t.own_row_from(ti, s) == _t.row_from(ti, s) == \
+                    next((r for r in range(n) if seqs[r] >= s), n)
+            fb, fb2 = _t.fix_base(ti), _t.fix_base(ti2)
+            assert ti2[fb2:fb2 + times].tolist() == ti[fb:fb + times].tolist()
             # one fix time per fix from the first kept row's to the last's, as they were
-            seqs = ti[_t.K_SEQ:_t.HEAD + _t.ROW_I * n:_t.ROW_I]
             assert times == int(seqs.max()) - int(seqs.min()) + 1
             assert int(ti[_t.H_T0]) == int(seqs.min())
             assert tf2[tb2:tb2 + times].tobytes() == tf[tb:tb + times].tobytes()
@@ -355,7 +367,7 @@ def test_compact_in_place_equals_compact_into_new_arrays() -> None:
                 kept_t = tracker.fix_time(int(seqs[r]))
                 assert kept_t is None or _t.time_of(ti, tf, r) == kept_t
             # into new numpy arrays of exactly that size (CandidateTree.shrink, packed)
-            ti3 = np.empty(_t.HEAD + _t.ROW_I * n + nv, np.int32)
+            ti3 = np.empty(_t.HEAD + _t.ROW_I * n + nv + times, np.int32)
             tf3 = np.empty(_t.ROW_F * n + lf + times)
             _t.compact_into(tree.ti, tree.tf, ti3, tf3, n, live)
             assert ti3[head].tolist() == ti[head].tolist()
@@ -364,7 +376,8 @@ def test_compact_in_place_equals_compact_into_new_arrays() -> None:
             assert tf3[:_t.ROW_F * n].tobytes() == tf[:_t.ROW_F * n].tobytes()
             assert tf3[_t.ROW_F * n:_t.ROW_F * n + lf].tobytes() == tf[lb:lb + lf].tobytes()
             assert tf3[_t.ROW_F * n + lf:].tobytes() == tf[tb:tb + times].tobytes()
-            assert ti3[_t.HEAD + _t.ROW_I * n:].tobytes() == ti[vb:vb + nv].tobytes()
+            assert ti3[_t.HEAD + _t.ROW_I * n:-times].tobytes() == ti[vb:vb + nv].tobytes()
+            assert ti3[-times:].tolist() == ti[fb:fb + times].tolist()
             # the tree compacted is unchanged
             assert (tree.n, tree.lo) == (n_before, lo_before)
             compared += 1

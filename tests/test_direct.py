@@ -17,15 +17,17 @@ from livematch.core._sweep_kernel import ROW_I, commit_point
 def _chain_tree() -> np.ndarray:
     """A tree header and rows: a chain of 6 rows (fixes 1..6), each the parent of the next."""
     n = 6
-    ti = np.zeros(_t.HEAD + ROW_I * n + 4, np.int32)
+    ti = np.zeros(_t.HEAD + ROW_I * n + 4 + n, np.int32)  # ... 4 vias, n fixes' first rows
     ti[_t.H_N] = n
     ti[_t.H_LO] = n - 1
     ti[_t.H_HI] = n
     ti[_t.H_RCAP] = n
+    ti[_t.H_T0] = 1
+    ti[_t.H_NF] = ti[_t.H_TCAP] = n
     for r in range(n):
         ti[_t.HEAD + ROW_I * r + _t.I_SEG] = 10 + r
-        ti[_t.HEAD + ROW_I * r + _t.I_SEQ] = r + 1
         ti[_t.HEAD + ROW_I * r + _t.I_PARENT] = r - 1
+        ti[len(ti) - n + r] = r  # fix r + 1 starts at row r
     return ti
 
 

@@ -131,6 +131,40 @@ def test_state_reads_older_lmt5(name: str, every: int, cut: int) -> None:
     assert restored.to_bytes() == straight.to_bytes()
 
 
+@pytest.mark.parametrize(("name", "every", "cut"), [
+    ("test-osm-bus7-fix120.lmt6", 1, 120), ("test-osm-bus7-10s-fix30.lmt6", 10, 30)])
+def test_state_lmt6_bytes_as_before_rows_kept_their_fix(name: str, every: int,
+                                                      cut: int) -> None:
+    """LMT6 is written byte for byte as before the trees' rows stopped keeping their fix.
+
+    tests/data/states/*.lmt6 were written by the code before (main 20862f2, its default
+    settings, kept in lmt6-settings.json: each row of a state's trees ``seg, seq,
+    parent, via_end``) after ``cut`` fixes of the simulated drive; this code, rows of
+    ``seg, parent, via_end`` and each fix's first row, writes the same bytes after the
+    same fixes, reads them back into the same trees, and goes on as a run never saved.
+    """
+    net, fixes = _test_extract_drive(every)
+    blob = (STATES / name).read_bytes()
+    assert blob[:4] == b"LMT6"
+    then = json.loads((STATES / "lmt6-settings.json").read_text(encoding="utf-8"))
+    settings = MatchSettings(**{**then, "eps_levels": tuple(then["eps_levels"])})
+    straight = Tracker(net, "bus-7", settings)
+    run(straight, fixes[:cut], flush=False)
+    assert straight.to_bytes() == blob
+    restored = Tracker.from_bytes(net, settings, blob)
+    assert (restored.before is not None) == (every == 10)
+    assert restored.to_bytes() == blob
+    # every row of the restored trees has its fix's time, as the fix log has it
+    for tree in [lv.tree for lv in restored.levels] + (
+            [lv.tree for lv in restored.before.levels] if restored.before else []):
+        for row in range(tree.n):
+            t = restored.fix_time(tree.seq_of(row))
+            if t is not None:
+                assert tree.time_of(tree.seq_of(row)) == t
+    assert run(restored, fixes[cut:]) == run(straight, fixes[cut:])
+    assert restored.to_bytes() == straight.to_bytes()
+
+
 def test_state_corrupt_lmt5_is_a_bad_state() -> None:
     """Unknown flags, a cut header, cut arrays or a broken zlib stream: BadStateError."""
     net, fixes = noisy_drive(seed=3)
@@ -143,6 +177,12 @@ def test_state_corrupt_lmt5_is_a_bad_state() -> None:
                 plain[:-20], packed[:-20], plain[:4] + b"\x01" + plain[5:]):
         with pytest.raises(BadStateError):
             Tracker.from_bytes(net, None, bad)
+    # a tree's first row (seg, seq, parent, via_end) given a fix after the others': the
+    # rows are no longer in fix order, which the trees rely on (each fix's first row)
+    at = 9 + header + 4
+    late = (2**30).to_bytes(4, "little")
+    with pytest.raises(BadStateError, match="fix order"):
+        Tracker.from_bytes(net, None, plain[:at] + late + plain[at + 4:])
 
 
 def test_state_skips_empty_parts() -> None:

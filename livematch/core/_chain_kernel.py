@@ -33,18 +33,21 @@ from livematch.core._sweep_kernel import (
     H_HI,
     H_LCAP,
     H_LO,
+    H_N,
+    H_NF,
     H_RCAP,
     H_T0,
+    H_TCAP,
     HEAD,
     K_PARENT,
     K_SEG,
-    K_SEQ,
     K_VIAE,
     LF_COST,
     LF_LOW,
     LIVE_F,
     ROW_F,
     ROW_I,
+    seq_at,
 )
 
 #: ints written per row: row, seg, seq, and the row's vias as ``ti[v0:v1]``
@@ -74,26 +77,39 @@ def _keyed_chain_rows(sweep_key: int) -> Callable[..., int]:
             return 0
         length = 0
         cur = top
-        while cur >= 0 and ti[ROW_I * cur + K_SEQ] >= min_seq:
+        # a row below ``bound`` is of a fix older than min_seq: row_from written out (a
+        # call that takes an array costs two atomic reference-count updates)
+        j = min_seq - ti[H_T0]
+        bound = (0 if j <= 0 else ti[H_N] if j >= ti[H_NF]
+                 else ti[ti.shape[0] - ti[H_TCAP] + j])
+        while cur >= bound and cur >= 0:
             length += 1
             cur = ti[ROW_I * cur + K_PARENT]
         if CHAIN_I * (length + 1) > oi.shape[0] or CHAIN_F * (length + 1) > of.shape[0]:
             return -(length + 1)
         cap = ti[H_RCAP]
         lb = ROW_F * cap  # live_base
-        tb = lb + LIVE_F * ti[H_LCAP] - ti[H_T0]  # time_base - H_T0
+        tb = lb + LIVE_F * ti[H_LCAP]  # time_base: fix slot s's time at tb + s
         lo = ti[H_LO]
         hi = ti[H_HI]
         vb = HEAD + ROW_I * cap
+        fb = ti.shape[0] - ti[H_TCAP]  # fix_base: fix slot s's first row at fb + s
+        t0 = ti[H_T0]
         before = cur  # the row before the chain (-1: none)
         oi[CHAIN_I * length] = before
         cur = top
+        slot = ti[H_NF] - 1  # the chain's rows' fix slots, found going down
         for j in range(length, -1, -1):
             r = before if j == length else cur
             if r < 0:
                 continue  # no row before: only its row (-1) is written
             seg = ti[ROW_I * r + K_SEG]
-            seq = ti[ROW_I * r + K_SEQ]
+            if j == length:
+                seq = seq_at(ti, r)
+            else:
+                while ti[fb + slot] > r:
+                    slot -= 1
+                seq = t0 + slot
             v1 = ti[ROW_I * r + K_VIAE]
             v0 = ti[ROW_I * r - ROW_I + K_VIAE] if v1 != 0 and r != 0 else 0
             b = CHAIN_I * j
@@ -104,7 +120,7 @@ def _keyed_chain_rows(sweep_key: int) -> Callable[..., int]:
             oi[b + 4] = vb + v1
             pos = tf[ROW_F * r + F_POS]
             f = CHAIN_F * j
-            of[f] = tf[tb + seq]
+            of[f] = tf[tb + seq - t0]
             of[f + 1] = pos
             of[f + 2] = geo[seg, 0] + pos * geo[seg, 2]
             of[f + 3] = geo[seg, 1] + pos * geo[seg, 3]

@@ -604,10 +604,9 @@ def sweep_kernel(
 # Here, not there, so that numba's disk cache of this function is invalidated whenever
 # the kernel above changes.
 I_SEG: Final = 0
-I_SEQ: Final = 1
-I_PARENT: Final = 2
-I_VIAE: Final = 3  # where the row's vias end: they start where the row before's end (0 at row 0)
-ROW_I: Final = 4
+I_PARENT: Final = 1
+I_VIAE: Final = 2  # where the row's vias end: they start where the row before's end (0 at row 0)
+ROW_I: Final = 3  # (a row's fix is not a field: rows are in fix order, see fix_row)
 F_POS: Final = 0
 ROW_F: Final = 1  # a row's floats: its position only (low and cost: live rows only, below)
 # The live block's own floats, ``LIVE_F`` a live row from ``live_base`` on (the live row
@@ -633,10 +632,11 @@ H_T0: Final = 9
 H_RCAP: Final = 10
 H_LCAP: Final = 11  # live rows the live floats' area has room for
 H_CAP_L: Final = 12  # (after ARENA_FULL) the live rows the arrays to compact into have room for
-HEAD: Final = 13
+H_NF: Final = 13  # fixes in use, from H_T0 on (0: no row); the newest is H_T0 + H_NF - 1
+H_TCAP: Final = 14  # fixes the arrays have room for: their first rows (ti's tail), times (tf's)
+HEAD: Final = 15
 # A row's int field ``I_x`` is ``ti[ROW_I * row + K_x]``.
 K_SEG: Final = HEAD + I_SEG
-K_SEQ: Final = HEAD + I_SEQ
 K_PARENT: Final = HEAD + I_PARENT
 K_VIAE: Final = HEAD + I_VIAE
 # tree_sweep's answers other than a commit point (which is >= -1)
@@ -694,9 +694,46 @@ def time_base(ti: np.ndarray) -> int:
 
 
 @numba.njit(cache=True, error_model="numpy")
+def fix_base(ti: np.ndarray) -> int:
+    """Where the fixes' first rows start in ``ti``: its last ``H_TCAP`` values."""
+    return ti.shape[0] - ti[H_TCAP]
+
+
+@numba.njit(cache=True, error_model="numpy")
+def row_from(ti: np.ndarray, seq: int) -> int:
+    """The first row whose fix is ``seq`` or later (``H_N`` if none).
+
+    Rows are in fix order, so ``seq_at(ti, r) >= seq`` exactly when ``r >= row_from(ti,
+    seq)``: a walk that compares rows' fixes with a bound compares row numbers with this
+    instead (one look-up, not one a row).
+    """
+    j = seq - ti[H_T0]
+    if j <= 0:
+        return 0
+    if j >= ti[H_NF]:
+        return ti[H_N]
+    return ti[ti.shape[0] - ti[H_TCAP] + j]
+
+
+@numba.njit(cache=True, error_model="numpy")
+def seq_at(ti: np.ndarray, row: int) -> int:
+    """The fix (sequence number) of row ``row``: the last fix whose first row is <= it."""
+    fb = ti.shape[0] - ti[H_TCAP]
+    lo = 0
+    hi = ti[H_NF] - 1
+    while lo < hi:  # the last j in [lo, hi] with first row <= row (the first fix's is 0)
+        mid = (lo + hi + 1) >> 1
+        if ti[fb + mid] <= row:
+            lo = mid
+        else:
+            hi = mid - 1
+    return ti[H_T0] + lo
+
+
+@numba.njit(cache=True, error_model="numpy")
 def time_of(ti: np.ndarray, tf: np.ndarray, row: int) -> float:
     """The time of row ``row``'s fix (kept once per fix, after the live floats in ``tf``)."""
-    return tf[time_base(ti) + ti[ROW_I * row + K_SEQ] - ti[H_T0]]
+    return tf[time_base(ti) + seq_at(ti, row) - ti[H_T0]]
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -765,14 +802,14 @@ def tree_sweep(
     if m == 0:
         return DIED, lo, hi
     cap_rows = ti[H_RCAP]
-    cap_vias = ti.shape[0] - HEAD - ROW_I * cap_rows
+    cap_vias = ti.shape[0] - HEAD - ROW_I * cap_rows - ti[H_TCAP]
     cap_l = ti[H_LCAP]
     cap_t = tf.shape[0] - ROW_F * cap_rows - LIVE_F * cap_l
     if n + m > cap_rows or nv + n_via > cap_vias or seq - ti[H_T0] >= cap_t or m > cap_l:
         kept, kept_v, span = kept_rows(ti)
         # the fix times kept run from the first kept row's fix to the live block's (the
         # last kept row), and the new rows' fix comes after it
-        span_t = seq - (ti[ROW_I * (hi - 1) + K_SEQ] - span + 1) + 1
+        span_t = seq - (ti[H_T0] + ti[H_NF] - 1 - span + 1) + 1
         # the room of new arrays (rows: row_spare; vias: twice that, or half those kept)
         spare = row_spare(m, k)
         cap = kept + max(kept // 4, spare)
@@ -856,7 +893,19 @@ def kept_rows(ti: np.ndarray) -> tuple[int, int, int]:
                 keep[p] = True
     if first < 0:
         return 0, 0, 0
-    return rows, vias, ti[ROW_I * last + K_SEQ] - ti[ROW_I * first + K_SEQ] + 1
+    # the two rows' fix slots (seq_at written out: a call that takes the array costs two
+    # atomic reference-count updates, and a full tree asks this about twice a fix): the
+    # last row kept is the live block's, of the newest fix or one just before; the
+    # first kept is of an old fix, a few slots up from the oldest
+    fb = ti.shape[0] - ti[H_TCAP]
+    nf = ti[H_NF]
+    j_last = nf - 1
+    while ti[fb + j_last] > last:
+        j_last -= 1
+    j_first = 0
+    while j_first + 1 < nf and ti[fb + j_first + 1] <= first:
+        j_first += 1
+    return rows, vias, j_last - j_first + 1
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -876,9 +925,9 @@ def compact(
     rows, vias, span = kept_rows(ti)
     cap = rows + max(rows // 4, spare_rows)
     cap_l = max(spare_live, live_room(ti[H_HI] - ti[H_LO], 0))
-    ti2 = np.empty(HEAD + ROW_I * cap + vias + max(vias // 2, spare_vias), np.int32)
-    tf2 = np.empty(ROW_F * cap + LIVE_F * cap_l + span
-                   + max(span // 4, spare_t, spare_rows, T_SPARE))
+    cap_t = span + max(span // 4, spare_t, spare_rows, T_SPARE)
+    ti2 = np.empty(HEAD + ROW_I * cap + vias + max(vias // 2, spare_vias) + cap_t, np.int32)
+    tf2 = np.empty(ROW_F * cap + LIVE_F * cap_l + cap_t)
     compact_into(ti, tf, ti2, tf2, cap, cap_l)
     return ti2, tf2
 
@@ -900,9 +949,10 @@ def compact_into(ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarra
                  cap2: int, cap_l2: int) -> None:
     """:func:`compact_in_place`, writing into the arrays ``ti2``, ``tf2`` (header included).
 
-    ``cap2``: the rows ``ti2``, ``tf2`` have room for (the rest of ``ti2`` is vias),
-    ``cap_l2`` the live rows ``tf2`` has floats for after them (the rest of ``tf2`` is
-    fix times). They must hold at least the rows, vias and fix times
+    ``cap2``: the rows ``ti2``, ``tf2`` have room for, ``cap_l2`` the live rows ``tf2``
+    has floats for after them; the rest of ``tf2`` is fix times, and ``ti2`` ends with
+    as many fixes' first rows (the rest of it is vias). They must hold at least the
+    rows, vias and fix times
     :func:`kept_rows` counts and the live block. The caller
     allocates them with numpy: an array numba allocates and returns costs about 130
     bytes more to keep (its memory-info object) and more time to hand back than numpy's.
@@ -918,23 +968,38 @@ def compact_into(ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarra
     keep = kept_mask(ti)
     new_index = np.full(n, -1, np.int64)
     vb = via_base(ti)
+    fb = ti.shape[0] - ti[H_TCAP]  # fix_base
+    nf = ti[H_NF]
     ti2[H_RCAP] = cap2
     vb2 = via_base(ti2)
     lb2 = ROW_F * cap2
     tb2 = lb2 + LIVE_F * cap_l2
+    tcap2 = tf2.shape[0] - tb2
+    fb2 = ti2.shape[0] - tcap2
     q = 0
     nv = 0
-    first = -1
+    first = -1  # the fix slots (from H_T0) of the first and last rows kept
     last = -1
+    fix = 0  # row r's fix slot: the last with first row <= r
+    nxt = ti[fb + 1] if nf > 1 else n  # the first row of slot fix + 1 (n: no such slot)
     end_before = 0  # where the vias of row r - 1 end (read before row r - 1 is rewritten)
     for r in range(n):
         v0 = end_before
         end_before = ti[ROW_I * r + K_VIAE]
+        while r >= nxt:
+            fix += 1
+            nxt = ti[fb + fix + 1] if fix + 1 < nf else n
         if not keep[r]:
             continue
         if first < 0:
-            first = ti[ROW_I * r + K_SEQ]
-        last = ti[ROW_I * r + K_SEQ]
+            first = fix
+        # the first row of each fix from the last row kept's (exclusive) to this row's:
+        # this one (a fix none of whose rows is kept starts where the next kept one
+        # does). Written below where it is read, in place too: slot fix - first <= fix
+        while last < fix:
+            last += 1
+            if last >= first:
+                ti2[fb2 + last - first] = q
         new_index[r] = q
         ri = ROW_I * r
         qi = ROW_I * q
@@ -943,7 +1008,6 @@ def compact_into(ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarra
         for j in range(vn):
             ti2[vb2 + nv + j] = ti[vb + v0 + j]
         ti2[qi + K_SEG] = ti[ri + K_SEG]
-        ti2[qi + K_SEQ] = ti[ri + K_SEQ]
         ti2[qi + K_PARENT] = new_index[p] if p >= 0 else -1
         ti2[qi + K_VIAE] = nv + vn
         for c in range(ROW_F):
@@ -957,7 +1021,7 @@ def compact_into(ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarra
         tf2[lb2 + j] = tf[lb + j]
     if first >= 0:
         for s in range(first, last + 1):
-            tf2[tb2 + s - first] = tf[tb + s - t0]
+            tf2[tb2 + s - first] = tf[tb + s]
     new_lo = new_index[lo] if hi > lo else q
     ti2[H_N] = q
     ti2[H_NV] = nv
@@ -967,7 +1031,9 @@ def compact_into(ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarra
         ti2[c] = 0
     ti2[H_CAP_L] = 0
     ti2[H_LCAP] = cap_l2
-    ti2[H_T0] = first if first >= 0 else 0
+    ti2[H_T0] = t0 + first if first >= 0 else 0
+    ti2[H_NF] = last - first + 1 if first >= 0 else 0
+    ti2[H_TCAP] = tcap2
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -992,11 +1058,16 @@ def tree_append(
         ti[H_T0] = seq
         have = 0
     else:
-        have = ti[ROW_I * (n - 1) + K_SEQ] - ti[H_T0] + 1
+        have = ti[H_NF]
     at = seq - ti[H_T0]
+    fb = ti.shape[0] - ti[H_TCAP]  # fix_base
     for j in range(have, at):
         tf[tb + j] = np.nan
+        ti[fb + j] = n  # a fix with no rows: its rows would start where the next's do
     tf[tb + at] = t
+    if at >= have:
+        ti[fb + at] = n
+        ti[H_NF] = at + 1
     _, _, out_f0, _, out_i0, _ = layout(ibuf[0], ibuf[1], ibuf[2], ibuf[3], ibuf[4],
                                            ibuf[5])
     for j in range(m):
@@ -1005,7 +1076,6 @@ def tree_append(
         oi = out_i0 + j * OUT_I_STRIDE
         of = out_f0 + j * OUT_F_STRIDE
         ti[ri + K_SEG] = ibuf[oi]
-        ti[ri + K_SEQ] = seq
         ti[ri + K_PARENT] = lo + ibuf[oi + 1]
         # the kernel writes each output row's vias after the row before's
         ti[ri + K_VIAE] = nv + ibuf[oi + 2] + ibuf[oi + 3]
@@ -1052,8 +1122,12 @@ def compact_append(
 @numba.njit(cache=True, error_model="numpy")
 def rows_ancestor(ti: np.ndarray, cur: np.ndarray, k: int, floor: int) -> int:
     """:func:`livematch.core.sweep.common_ancestor` of the ``k`` distinct rows ``cur``."""
+    # a row below ``bound`` is of fix <= floor: row_from(ti, floor + 1) written out (a
+    # call that takes an array costs two atomic reference-count updates; every fix)
+    j = floor + 1 - ti[H_T0]
+    bound = 0 if j <= 0 else ti[H_N] if j >= ti[H_NF] else ti[ti.shape[0] - ti[H_TCAP] + j]
     while k > 1:
-        if ti[ROW_I * cur[0] + K_SEQ] <= floor:
+        if cur[0] < bound:
             return -1
         nk = 0
         for j in range(k):
@@ -1086,8 +1160,12 @@ def rows_ancestor_marked(ti: np.ndarray, cur: np.ndarray, k: int, floor: int,
     ends the same too.
     """
     room = mark.shape[0]
+    # a row below ``bound`` is of fix <= floor: row_from(ti, floor + 1), written out (see
+    # rows_ancestor)
+    j = floor + 1 - ti[H_T0]
+    bound = 0 if j <= 0 else ti[H_N] if j >= ti[H_NF] else ti[ti.shape[0] - ti[H_TCAP] + j]
     while k > 1:
-        if ti[ROW_I * cur[0] + K_SEQ] <= floor:
+        if cur[0] < bound:
             return -1
         p_min = cur[0]  # a bound: a parent's row is below its child's
         p_max = -1
@@ -1149,9 +1227,18 @@ def commit_point(ti: np.ndarray, next_commit: int, newest: int) -> int:
 @numba.njit(cache=True, error_model="numpy")
 def commit_point_of(ti: np.ndarray, next_commit: int, newest: int, top: int) -> int:
     """:func:`commit_point` from the live block's :func:`block_ancestor` ``top``."""
-    if top >= 0 and ti[ROW_I * top + K_SEQ] > newest:
+    # rows from ``after`` on are of fixes after newest, from ``start`` on of next_commit
+    # or later: row_from written out (see rows_ancestor)
+    t0 = ti[H_T0]
+    nf = ti[H_NF]
+    fb = ti.shape[0] - ti[H_TCAP]
+    j = newest + 1 - t0
+    after = 0 if j <= 0 else ti[H_N] if j >= nf else ti[fb + j]
+    if top >= after:
         top = ancestor_at(ti, top, newest)
-    if top >= 0 and next_commit <= ti[ROW_I * top + K_SEQ] <= newest:
+    j = next_commit - t0
+    start = 0 if j <= 0 else ti[H_N] if j >= nf else ti[fb + j]
+    if top >= 0 and start <= top < after:
         return top
     return -1
 
@@ -1177,13 +1264,17 @@ def cut_and_check(ti: np.ndarray, next_commit: int, newest: int, cut: bool) -> i
 @numba.njit(cache=True, error_model="numpy")
 def cut_links(ti: np.ndarray, cut: int) -> None:
     """Set to -1 the first back-pointer to a state older than fix ``cut`` on each live path."""
+    # a row below ``bound`` is of a fix older than cut: row_from(ti, cut), written out
+    # (see rows_ancestor)
+    j = cut - ti[H_T0]
+    bound = 0 if j <= 0 else ti[H_N] if j >= ti[H_NF] else ti[ti.shape[0] - ti[H_TCAP] + j]
     for r in range(ti[H_LO], ti[H_HI]):
         cur = r
         while True:
             p = ti[ROW_I * cur + K_PARENT]
             if p < 0:
                 break
-            if ti[ROW_I * p + K_SEQ] < cut:
+            if p < bound:
                 ti[ROW_I * cur + K_PARENT] = -1
                 break
             cur = p
@@ -1192,7 +1283,11 @@ def cut_links(ti: np.ndarray, cut: int) -> None:
 @numba.njit(cache=True, error_model="numpy")
 def ancestor_at(ti: np.ndarray, row: int, seq: int) -> int:
     """The ancestor of ``row`` (itself included) with the largest seq <= ``seq``."""
-    while ti[ROW_I * row + K_SEQ] > seq and ti[ROW_I * row + K_PARENT] >= 0:
+    # rows from ``after`` on are of fixes after seq: row_from(ti, seq + 1), written out
+    # (see rows_ancestor)
+    j = seq + 1 - ti[H_T0]
+    after = 0 if j <= 0 else ti[H_N] if j >= ti[H_NF] else ti[ti.shape[0] - ti[H_TCAP] + j]
+    while row >= after and ti[ROW_I * row + K_PARENT] >= 0:
         row = ti[ROW_I * row + K_PARENT]
     return row
 

@@ -7,12 +7,20 @@ children's):
 ``ti`` (int32): a header of ``HEAD`` values (``H_N`` rows in use, ``H_NV`` vias in use,
     the live block ``[H_LO, H_HI)``, six slots a step that found the arrays full
     leaves its sizes in, ``H_T0`` the sequence number of the first fix time kept,
-    ``H_RCAP`` the rows the arrays have room for and ``H_LCAP`` the live rows), then
-    room for ``H_RCAP`` rows of ``ROW_I`` ints ``seg, seq, parent, via_end`` (field
-    ``I_x`` of row r at ``ROW_I * r + K_x``; ``parent`` -1 for a root), then the vias,
-    one after another in row order, from :func:`via_base` on (row r's vias run from row
-    r - 1's ``via_end``, 0 for row 0, to its own: most rows have none, and one int says
-    so).
+    ``H_RCAP`` the rows the arrays have room for, ``H_LCAP`` the live rows, ``H_NF``
+    the fixes in use from ``H_T0`` on and ``H_TCAP`` the fixes the arrays have room
+    for), then room for ``H_RCAP`` rows of ``ROW_I`` ints ``seg, parent, via_end``
+    (field ``I_x`` of row r at ``ROW_I * r + K_x``; ``parent`` -1 for a root), then the
+    vias, one after another in row order, from :func:`via_base` on (row r's vias run
+    from row r - 1's ``via_end``, 0 for row 0, to its own: most rows have none, and one
+    int says so), and last, in the array's final ``H_TCAP`` values (from
+    :func:`fix_base`), each fix's first row: fix ``H_T0 + j``'s at ``j`` (a fix with no
+    rows, a gap in the run of fixes, has the next one's). A row keeps no fix of its own:
+    rows are in fix order (a step appends its fix's rows after the older ones, and a
+    compaction keeps the order), so row r's fix is the last whose first row is <= r
+    (:func:`seq_at`), and a walk that compares rows' fixes with a bound compares row
+    numbers with :func:`row_from` of the bound instead. 4 bytes a fix instead of 4 a row
+    (since session 27; a tree keeps several rows a fix).
 ``tf`` (float64): per row ``ROW_F`` (1) float, its ``pos`` (field ``F_POS`` of row r at
     ``ROW_F * r + F_POS``); then from :func:`live_base` (``ROW_F * H_RCAP``) room for
     ``H_LCAP`` live rows' ``LIVE_F`` floats ``low, cost`` (the live row ``lo + j`` at
@@ -28,7 +36,8 @@ children's):
     it is read (the live score, the sweep's input, a row handed out as a node) from the
     network's arrays (``seg_geo`` of
     :class:`livematch.core.fastsweep.SweepArrays`: ax, ay, bx - ax, by - ay per segment).
-    A row is 24 bytes (16 + 8), 16 more while it is live, and 8 more a fix.
+    A row is 20 bytes (12 + 8), 16 more while it is live, and 12 more a fix (its time
+    and its first row).
 
 Two arrays rather than one per row field, with the counts in the first: a tree idle
 between fixes costs two numpy objects (each about 150 bytes beyond its data) and a
@@ -70,18 +79,18 @@ from livematch.core._sweep_kernel import (
     H_LO,
     H_M,
     H_N,
+    H_NF,
     H_NV,
     H_NVIA,
     H_RCAP,
     H_T0,
+    H_TCAP,
     HEAD,
     I_PARENT,
     I_SEG,
-    I_SEQ,
     I_VIAE,
     K_PARENT,
     K_SEG,
-    K_SEQ,
     K_VIAE,
     L_SPARE,
     LF_COST,
@@ -101,11 +110,14 @@ from livematch.core._sweep_kernel import (
     compact_into,
     cut_and_check,
     cut_links,
+    fix_base,
     kept_rows,
     live_base,
     live_room,
+    row_from,
     row_spare,
     rows_ancestor,
+    seq_at,
     time_base,
     time_of,
     tree_append,
@@ -127,17 +139,17 @@ __all__ = [
     "H_LO",
     "H_M",
     "H_N",
+    "H_NF",
     "H_NV",
     "H_NVIA",
     "H_RCAP",
     "H_T0",
+    "H_TCAP",
     "I_PARENT",
     "I_SEG",
-    "I_SEQ",
     "I_VIAE",
     "K_PARENT",
     "K_SEG",
-    "K_SEQ",
     "K_VIAE",
     "LF_COST",
     "LF_LOW",
@@ -162,6 +174,7 @@ __all__ = [
     "cut_links",
     "descends_from",
     "driven_since",
+    "fix_base",
     "junction_split",
     "kept_rows",
     "live_answer",
@@ -169,7 +182,9 @@ __all__ = [
     "live_room",
     "live_scores",
     "prune_live",
+    "row_from",
     "row_spare",
+    "seq_at",
     "time_base",
     "time_of",
     "tree_append",
@@ -179,6 +194,37 @@ __all__ = [
 ]
 
 _jit = numba.njit(cache=True, error_model="numpy")
+
+
+@_jit
+def own_row_from(ti: np.ndarray, seq: int) -> int:
+    """:func:`~livematch.core._sweep_kernel.row_from`, this file's own copy.
+
+    (A function here that called into _sweep_kernel would need that file's code key to
+    keep numba's disk cache right; see junction_split. ``tests/test_candidates.py``
+    checks that the copies agree.)
+    """
+    j = seq - ti[H_T0]
+    if j <= 0:
+        return 0
+    if j >= ti[H_NF]:
+        return ti[H_N]
+    return ti[ti.shape[0] - ti[H_TCAP] + j]
+
+
+@_jit
+def own_seq_at(ti: np.ndarray, row: int) -> int:
+    """:func:`~livematch.core._sweep_kernel.seq_at`, this file's own copy (as above)."""
+    fb = ti.shape[0] - ti[H_TCAP]
+    lo = 0
+    hi = ti[H_NF] - 1
+    while lo < hi:
+        mid = (lo + hi + 1) >> 1
+        if ti[fb + mid] <= row:
+            lo = mid
+        else:
+            hi = mid - 1
+    return ti[H_T0] + lo
 
 
 @_jit
@@ -230,10 +276,22 @@ def live_scores(
     # the fix times (time_of, written out here: a call into _sweep_kernel would need
     # its code key, see junction_split)
     lb = ROW_F * ti[H_RCAP]  # live_base
-    tb = lb + LIVE_F * ti[H_LCAP] - ti[H_T0]
+    tb = lb + LIVE_F * ti[H_LCAP]  # time_base: fix slot j's time at tb + j
+    # a row's fix slot: the last whose first row (ti[fb + slot]) is <= the row; found
+    # going down from the child's, as a link's parent is of an older fix
+    fb = ti.shape[0] - ti[H_TCAP]  # fix_base
+    t0 = ti[H_T0]
+    nf = ti[H_NF]
+    # a row below ``bound`` is of a fix older than first: own_row_from written out (a call
+    # that takes an array costs two atomic reference-count updates; every fix)
+    jf = first - t0
+    bound = 0 if jf <= 0 else ti[H_N] if jf >= nf else ti[fb + jf]
     for r in range(lo, hi):
         score = tf[lb + LIVE_F * (r - lo) + LF_COST]
         cur = r
+        sc = nf - 1
+        while ti[fb + sc] > cur:
+            sc -= 1
         # the matched points, as the sweep computed them (rows keep none): each row's is
         # computed once, and a link's parent is the next link's child
         pos = tf[ROW_F * cur + F_POS]
@@ -242,15 +300,18 @@ def live_scores(
         cy = geo[g, 1] + pos * geo[g, 3]
         while True:
             p = ti[ROW_I * cur + K_PARENT]
-            if p < 0 or ti[ROW_I * p + K_SEQ] < first:
+            if p < bound:  # (-1 too)
                 break
+            sp = sc
+            while ti[fb + sp] > p:
+                sp -= 1
             pos = tf[ROW_F * p + F_POS]
             g = ti[ROW_I * p + K_SEG]
             px = geo[g, 0] + pos * geo[g, 2]
             py = geo[g, 1] + pos * geo[g, 3]
-            i = ti[ROW_I * cur + K_SEQ] - fix_seq0
-            j = ti[ROW_I * p + K_SEQ] - fix_seq0
-            dt = tf[tb + ti[ROW_I * cur + K_SEQ]] - tf[tb + ti[ROW_I * p + K_SEQ]]
+            i = t0 + sc - fix_seq0
+            j = t0 + sp - fix_seq0
+            dt = tf[tb + sc] - tf[tb + sp]
             if j >= 0 and i < n and 0.0 < dt <= max_dt:
                 ex = cx - fix_xy[i, 0]
                 ey = cy - fix_xy[i, 1]
@@ -260,6 +321,7 @@ def live_scores(
                 score += ((wx * wx + wy * wy) * inv_two_sigma2 / (1.0 - rho * rho)
                           - (ex * ex + ey * ey) * inv_two_sigma2)
             cur = p
+            sc = sp
             cx = px
             cy = py
         out[r - lo] = score
@@ -328,9 +390,9 @@ def driven_since(ti: np.ndarray, tf: np.ndarray, slen: np.ndarray, node: int,
 @_jit
 def descends_from(ti: np.ndarray, node: int, anc: int) -> bool:
     """Whether row ``anc`` lies on the back-pointer chain of row ``node``."""
-    seq = ti[ROW_I * anc + K_SEQ]
+    bound = own_row_from(ti, own_seq_at(ti, anc))  # a row below it: a fix older than anc's
     cur = node
-    while cur >= 0 and ti[ROW_I * cur + K_SEQ] >= seq:
+    while cur >= bound:
         if cur == anc:
             return True
         cur = ti[ROW_I * cur + K_PARENT]
@@ -385,7 +447,8 @@ def chain_into(ti: np.ndarray, top: int, min_seq: int, out: np.ndarray) -> int:
     """
     length = 0
     cur = top
-    while cur >= 0 and ti[ROW_I * cur + K_SEQ] >= min_seq:
+    bound = own_row_from(ti, min_seq)  # a row below it is of a fix older than min_seq
+    while cur >= bound and cur >= 0:
         length += 1
         cur = ti[ROW_I * cur + K_PARENT]
     if length + 1 > out.shape[0]:
@@ -521,7 +584,7 @@ def _keyed_trim(sweep_key: int) -> Callable[..., tuple[int, int, int]]:
             trim_seq = cut
         if seq - trim_seq > 2 * max_lag:
             keep = ancestor_at(ti, best_row(ti, tf, prefer), seq - max_lag)
-            kept = int(ti[ROW_I * keep + K_SEQ])
+            kept = own_seq_at(ti, keep)
             # before pruning: ``keep`` may be a live row that moves
             ti[ROW_I * keep + K_PARENT] = -1
             hi = prune_live(ti, tf, keep)

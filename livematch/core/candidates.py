@@ -62,17 +62,17 @@ from livematch.core._tree_kernel import (
     H_LO,
     H_M,
     H_N,
+    H_NF,
     H_NV,
     H_RCAP,
     H_T0,
+    H_TCAP,
     HEAD,
     I_PARENT,
     I_SEG,
-    I_SEQ,
     I_VIAE,
     K_PARENT,
     K_SEG,
-    K_SEQ,
     LF_COST,
     LF_LOW,
     LIVE_F,
@@ -92,7 +92,10 @@ _CALLS: Final = Direct(compact_append=_t.compact_append, chain_into=_t.chain_int
                        chain_rows=chain_rows, row_spare=_t.row_spare,
                        driven_since=_t.driven_since)
 
-__all__ = ["DIED", "CandidateTree"]
+__all__ = ["DIED", "STATE_ROW_I", "CandidateTree"]
+
+#: int32 values a row of a tree in a tracker state (``LMT6``): seg, seq, parent, via_end
+STATE_ROW_I: Final = 4
 
 _MIN_SPARE: Final = MIN_SPARE  # rows (and vias) of room left after a compaction, at least
 
@@ -101,6 +104,45 @@ _MIN_SPARE: Final = MIN_SPARE  # rows (and vias) of room left after a compaction
 _NO_TI: Final[npt.NDArray[np.int32]] = np.zeros(HEAD, np.int32)
 _NO_TF: Final[npt.NDArray[np.float64]] = np.empty(0)
 _NO_BYTES: Final = memoryview(b"")
+
+
+def _state_ints(ti: npt.NDArray[np.int32], n: int) -> npt.NDArray[np.int32]:
+    """The first ``n`` rows' ints as a tracker state keeps them: ``seg, seq, parent, via_end``.
+
+    The tree keeps no fix in a row (each fix's first row instead, ``H_NF`` of them at the
+    end of ``ti``); the state's rows (``LMT6``, ``STATE_ROW_I`` int32 a row) have it.
+    """
+    out = np.empty((n, STATE_ROW_I), np.int32)
+    mine = ti[HEAD:HEAD + ROW_I * n].reshape(n, ROW_I)
+    out[:, 0] = mine[:, I_SEG]
+    out[:, 2] = mine[:, I_PARENT]
+    out[:, 3] = mine[:, I_VIAE]
+    nf = ti.item(H_NF)
+    fb = len(ti) - ti.item(H_TCAP)
+    t0 = ti.item(H_T0)
+    firsts = np.minimum(ti[fb:fb + nf], n)
+    out[:, 1] = np.repeat(np.arange(t0, t0 + nf, dtype=np.int32),
+                          np.diff(firsts, append=n))
+    return out
+
+
+def _seq_in(ti: npt.NDArray[np.int32], row: int) -> int:
+    """The fix of row ``row`` of the tree ``ti`` (:func:`~livematch.core._tree_kernel.seq_at`).
+
+    Rows are in fix order and the tree keeps each fix's first row (the last ``H_TCAP``
+    values of ``ti``): the row's fix is the last whose first row is <= it. Asked about
+    rows of the last few fixes (a commit's, the live block's), so the search goes down
+    from the newest fix, a few steps, before it hands a longer one to the compiled
+    binary search.
+    """
+    fb = len(ti) - ti.item(H_TCAP)
+    j = ti.item(H_NF) - 1
+    for _ in range(4):
+        if ti.item(fb + j) <= row:
+            return ti.item(H_T0) + j
+        j -= 1
+    seq: int = _t.seq_at(ti, row)
+    return seq
 
 
 def _times_room(cap_t: int, cap: int, m: int, k: int) -> int:
@@ -132,8 +174,8 @@ class CandidateTree:
     """The candidate tree of one level: rows, vias and counts in two flat arrays.
 
     Attributes:
-        ti: the header (counts), the rows' ints and the vias (int32; layout in
-            :mod:`livematch.core._tree_kernel`).
+        ti: the header (counts), the rows' ints, the vias and each fix's first row
+            (int32; layout in :mod:`livematch.core._tree_kernel`).
         tf: the rows' positions, the live rows' low and cost, the fix times (float64;
             an older row keeps no low and cost: nothing reads them once it is not live).
         lo, hi: the live block (the newest fix's states, in the reference's dict order):
@@ -182,7 +224,7 @@ class CandidateTree:
     @property
     def cap_vias(self) -> int:
         """Vias the arrays have room for."""
-        return len(self.ti) - HEAD - ROW_I * self.cap_rows
+        return len(self.ti) - HEAD - ROW_I * self.cap_rows - self.ti.item(H_TCAP)
 
     @property
     def cap_live(self) -> int:
@@ -212,8 +254,8 @@ class CandidateTree:
 
     def _newest_seq(self) -> int:
         """The fix of the last row in use (the newest the tree has a time for), or -1."""
-        n = self.ti.item(H_N)
-        return self.ti.item(ROW_I * (n - 1) + K_SEQ) if n else -1
+        ti = self.ti
+        return ti.item(H_T0) + ti.item(H_NF) - 1 if ti.item(H_N) else -1
 
     # ----------------------------------------------------------------- growth
     def compact(self, spare_rows: int = 0, spare_vias: int = 0, spare_t: int = 0,
@@ -249,7 +291,7 @@ class CandidateTree:
         is kept for long.
         """
         live = self.hi - self.lo
-        ti = np.empty(HEAD + ROW_I * cap_rows + cap_vias, np.int32)
+        ti = np.empty(HEAD + ROW_I * cap_rows + cap_vias + cap_t, np.int32)
         tf = np.empty(ROW_F * cap_rows + LIVE_F * live + cap_t)
         _t.compact_into(self.ti, self.tf, ti, tf, cap_rows, live)
         self.ti, self.tf = ti, tf
@@ -318,9 +360,9 @@ class CandidateTree:
                 # the room the kernel worked out (as compact() would size them) and
                 # append, in one call
                 cap = ti.item(H_CAP_ROWS)
-                ti2 = np.empty(HEAD + ROW_I * cap + ti.item(H_CAP_VIAS), np.int32)
-                tf2 = np.empty(ROW_F * cap + LIVE_F * ti.item(H_CAP_L) + _times_room(
-                    ti.item(H_CAP_T), cap, ti.item(H_M), self.hi - self.lo))
+                cap_t = _times_room(ti.item(H_CAP_T), cap, ti.item(H_M), self.hi - self.lo)
+                ti2 = np.empty(HEAD + ROW_I * cap + ti.item(H_CAP_VIAS) + cap_t, np.int32)
+                tf2 = np.empty(ROW_F * cap + LIVE_F * ti.item(H_CAP_L) + cap_t)
                 top = _CALLS.compact_append(ti, tf, ti2, tf2, arrays.fbuf, arrays.ibuf, seq,
                                             t, next_commit, newest)
                 self.ti, self.tf = ti2, tf2
@@ -363,9 +405,11 @@ class CandidateTree:
         poss = tf[ROW_F * lo + F_POS:ROW_F * hi:ROW_F].tolist()
         lb = ROW_F * cap
         lives = tf[lb:lb + LIVE_F * k].tolist()
-        seqs = ints[I_SEQ::ROW_I]
-        t0 = min(seqs)
-        times = tf[tb + t0:tb + max(seqs) + 1].tolist()  # the fix times, by seq - t0
+        t0 = self.seq_of(lo)
+        t1 = self.seq_of(hi - 1)
+        # each row's fix (one fix for the whole block, unless the block was made so)
+        seqs = [t0] * k if t0 == t1 else [self.seq_of(r) for r in range(lo, hi)]
+        times = tf[tb + t0:tb + t1 + 1].tolist()  # the fix times, by seq - t0
         # the vias of the whole block: a row's run from where the row before's end
         ends = ints[I_VIAE::ROW_I]
         before = ti.item(HEAD + ROW_I * (lo - 1) + I_VIAE) if lo else 0
@@ -380,7 +424,7 @@ class CandidateTree:
         for i in range(k):
             j = ROW_I * i
             seg = ints[j + I_SEG]
-            seq = ints[j + I_SEQ]
+            seq = seqs[i]
             p = ints[j + I_PARENT]
             v1 = ints[j + I_VIAE]
             parent = None
@@ -450,14 +494,28 @@ class CandidateTree:
                 ti[H_T0] = first
                 have = 0
             else:
-                have = self._newest_seq() - ti.item(H_T0) + 1
+                have = ti.item(H_NF)
             t0 = ti.item(H_T0)
-            if first < t0:
-                raise ValueError(f"fix {first} is older than the tree's first fix {t0}")
+            if first < t0 + have - 1 if have else first < t0:
+                raise ValueError(f"fix {first} is older than the tree's newest fix "
+                                 f"{t0 + have - 1}: rows are kept in fix order")
             if last - t0 + 1 > have:
                 tf[tb + have:tb + last - t0 + 1] = np.nan
+            # each fix's first row (a fix with no rows: where the next one's start); the
+            # new rows in fix order
+            fb = len(ti) - ti.item(H_TCAP)
+            nf = have
+            at = lo
             for node in new.values():
                 tf[tb + node.seq - t0] = node.t
+                j = node.seq - t0
+                if j >= nf:
+                    ti[fb + nf:fb + j + 1] = at
+                    nf = j + 1
+                elif j < nf - 1:
+                    raise ValueError("a fix's states must come in fix order")
+                at += 1
+            ti[H_NF] = nf
             # the rows gathered first and written with one assignment per array (a
             # bridged step brings tens to hundreds of states; a numpy write each costs)
             ints: list[int] = []
@@ -471,7 +529,7 @@ class CandidateTree:
                 if via:
                     flat.extend(via)
                     nv += len(via)
-                ints += (node.seg, node.seq, parent, nv)
+                ints += (node.seg, parent, nv)
                 # the matched point is not kept: it is node.x, node.y recomputed (see node);
                 # the time is the fix's (above); low and cost while the row is live
                 floats.append(node.pos)
@@ -535,7 +593,8 @@ class CandidateTree:
         state's): its node has NaN for both.
         """
         i = HEAD + ROW_I * row
-        seg, seq, _, v1 = ti[i:i + ROW_I].tolist()
+        seg, _, v1 = ti[i:i + ROW_I].tolist()
+        seq = _seq_in(ti, row)
         pos = tf.item(ROW_F * row + F_POS)
         lo = ti.item(H_LO)
         if lo <= row < ti.item(H_HI):
@@ -580,14 +639,14 @@ class CandidateTree:
 
     def seq_of(self, row: int) -> int:
         """The fix sequence number of row ``row``."""
-        return self.ti.item(ROW_I * row + K_SEQ)
+        return _seq_in(self.ti, row)
 
     def row_ints(self, row: int) -> tuple[int, int, int, int, int]:
         """Row ``row``'s ``seg, seq, parent, via_start, via_len``."""
         i = HEAD + ROW_I * row
-        seg, seq, parent, v1 = self.ti[i:i + ROW_I].tolist()
+        seg, parent, v1 = self.ti[i:i + ROW_I].tolist()
         v0 = self.ti.item(i - ROW_I + I_VIAE) if row else 0
-        return seg, seq, parent, v0, v1 - v0
+        return seg, _seq_in(self.ti, row), parent, v0, v1 - v0
 
     def via(self, j: int) -> int:
         """The ``j``-th via of the tree (a row's are ``via_len`` from its ``via_start``)."""
@@ -805,7 +864,7 @@ class CandidateTree:
         if self.ti.item(H_N):
             rows, vias, times = _t.kept_rows(self.ti)
             live = self.hi - self.lo
-            out.ti = np.empty(HEAD + ROW_I * rows + vias, np.int32)
+            out.ti = np.empty(HEAD + ROW_I * rows + vias + times, np.int32)
             out.tf = np.empty(ROW_F * rows + LIVE_F * live + times)
             _t.compact_into(self.ti, self.tf, out.ti, out.tf, rows, live)
             out._synced()
@@ -820,7 +879,7 @@ class CandidateTree:
             return 0, 0, 0, 0, (_NO_BYTES,) * 5
         rows, vias, times = _t.kept_rows(self.ti)
         live = self.hi - self.lo
-        ti = np.empty(HEAD + ROW_I * rows + vias, np.int32)
+        ti = np.empty(HEAD + ROW_I * rows + vias + times, np.int32)
         tf = np.empty(ROW_F * rows + LIVE_F * live + times)
         _t.compact_into(self.ti, self.tf, ti, tf, rows, live)
         flat = ti.data
@@ -829,22 +888,25 @@ class CandidateTree:
         lb = ROW_F * rows
         tb = lb + LIVE_F * live
         return (rows, vias, live, ti.item(H_T0),
-                (flat[HEAD:end], floats[:lb], floats[lb:tb], flat[end:], floats[tb:]))
+                (_state_ints(ti, rows).data, floats[:lb], floats[lb:tb],
+                 flat[end:end + vias], floats[tb:]))
 
     def parts(self) -> tuple[memoryview, memoryview, memoryview, memoryview, memoryview]:
         """The rows' ints, positions, the live floats, the vias and the fix times, as buffers.
 
         The bytes of a tight tree's (:meth:`packed`) five parts are what the tracker
-        state (``LMT6``) writes: ``n`` rows of ``ROW_I`` int32, ``n`` rows of ``ROW_F``
-        float64 (the position), ``LIVE_F`` float64 (low, cost) for each live row, ``nv``
-        int32 vias, one float64 time per fix from ``H_T0`` to the newest row's.
+        state (``LMT6``) writes: ``n`` rows of ``STATE_ROW_I`` int32 (``seg, seq,
+        parent, via_end``: each row's fix written out, :func:`_state_ints`), ``n`` rows
+        of ``ROW_F`` float64 (the position), ``LIVE_F`` float64 (low, cost) for each live
+        row, ``nv`` int32 vias, one float64 time per fix from ``H_T0`` to the newest
+        row's.
         """
         n = self.n
         vb = self._via_base()
         lb = self._live_base()
         tb = self._time_base()
         times = self._newest_seq() - self.ti.item(H_T0) + 1 if n else 0
-        return (self.ti[HEAD:HEAD + ROW_I * n].data, self.tf[:ROW_F * n].data,
+        return (_state_ints(self.ti, n).data, self.tf[:ROW_F * n].data,
                 self.tf[lb:lb + LIVE_F * (self.hi - self.lo)].data,
                 self.ti[vb:vb + self.nv].data, self.tf[tb:tb + times].data)
 
@@ -854,21 +916,35 @@ class CandidateTree:
                  times: npt.NDArray[np.float64], t0: int) -> CandidateTree:
         """The tree of ``rows`` rows: ints ``ti``, positions ``pos``, live floats ``lf``, ...
 
-        ... vias ``tv``, fix times ``times``. ``ti`` flat (``ROW_I`` values a row) or one
-        row a line, ``pos`` one float a row, ``lf`` ``LIVE_F`` floats (low, cost) for each
-        of the last ``live`` rows (the live block); ``times[j]`` is the time of fix
-        ``t0 + j`` (from the first row's fix to the last's). Copied into arrays of the
-        tree's own (so read-only buffers will do), exactly as long as needed. An empty
-        tree shares the module's empty header instead of holding arrays of its own.
+        ... vias ``tv``, fix times ``times``. ``ti`` as a state holds them: flat
+        (``STATE_ROW_I`` values a row, ``seg, seq, parent, via_end``) or one row a
+        line, the rows in fix order, ``pos`` one float a row, ``lf`` ``LIVE_F`` floats
+        (low, cost) for each of the last ``live`` rows (the live block); ``times[j]``
+        is the time of fix ``t0 + j`` (from the first row's fix to the last's). Copied
+        into arrays of the tree's own (so read-only buffers will do), exactly as long as
+        needed. An empty tree shares the module's empty header instead of holding arrays
+        of its own.
         """
         tree = cls()
         rows = len(pos)
         if rows:
             nv = len(tv)
+            nf = len(times)
             end = HEAD + ROW_I * rows
-            buf = np.zeros(end + nv, np.int32)  # the header's other slots 0
-            buf[HEAD:end] = ti if ti.ndim == 1 else ti.reshape(-1)
-            buf[end:] = tv
+            buf = np.zeros(end + nv + nf, np.int32)  # the header's other slots 0
+            state = ti.reshape(rows, STATE_ROW_I)
+            mine = buf[HEAD:end].reshape(rows, ROW_I)
+            mine[:, I_SEG] = state[:, 0]
+            mine[:, I_PARENT] = state[:, 2]
+            mine[:, I_VIAE] = state[:, 3]
+            buf[end:end + nv] = tv
+            # each fix's first row (a fix with no rows: where the next one's start)
+            seqs = state[:, 1]
+            if (rows > 1 and bool((seqs[1:] < seqs[:-1]).any())) or int(seqs[0]) != t0 \
+                    or int(seqs[-1]) != t0 + nf - 1:
+                raise ValueError("a tree's rows must be in fix order, from fix t0 to its "
+                                 "last time's")
+            buf[end + nv:] = np.searchsorted(seqs, np.arange(t0, t0 + nf), "left")
             buf[H_N] = rows
             buf[H_NV] = nv
             buf[H_LO] = tree.lo = rows - live
@@ -876,6 +952,7 @@ class CandidateTree:
             buf[H_T0] = t0
             buf[H_RCAP] = rows
             buf[H_LCAP] = live
+            buf[H_NF] = buf[H_TCAP] = nf
             tree.ti = buf
             # numpy's own flat array, in one call (a restore makes three per tracker)
             tree.tf = np.concatenate((pos, lf, times))
@@ -905,7 +982,7 @@ class CandidateTree:
         rows = len(tf)
         if not rows:
             return cls()
-        seqs = (ti if ti.ndim == 2 else ti.reshape(rows, ROW_I))[:, 1]
+        seqs = (ti if ti.ndim == 2 else ti.reshape(rows, STATE_ROW_I))[:, 1]
         t0 = int(seqs.min())
         times = np.full(int(seqs.max()) - t0 + 1, np.nan)
         times[seqs - t0] = tf[:, 3]
@@ -957,6 +1034,7 @@ def warm_up() -> None:
     tree.junction_split(best, 1.0, score)
     tree.driven_since(best, row, net.seg_len)
     tree.common_ancestor(0)
+    _t.seq_at(tree.ti, 0)  # a row's fix, when it lies more than a few fixes back
     tree.prune(row)
     tree.trim(0, tracker.seq, 0, 60, -1)  # a tracker's own trim is rare: the commit check cuts
     # the sweep kernel on its own (the route monitor's step) is a compilation of its own

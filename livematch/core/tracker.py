@@ -97,7 +97,7 @@ from livematch.core._tree_kernel import (
     tree_sweep,
 )
 from livematch.core._tree_kernel import live_answer as tree_live_answer
-from livematch.core.candidates import DIED, CandidateTree
+from livematch.core.candidates import DIED, STATE_ROW_I, CandidateTree
 from livematch.core.events import Assignment, Commit, Event, Filtered, HeldAssignment, MatchedFix
 from livematch.core.fastsweep import SweepArrays, sweep_arrays
 from livematch.core.fix import Fix
@@ -4232,7 +4232,7 @@ def _unpack_levels(levels: list[Level], rows: list[list[float | int]], rest: mem
     """
     row_f = (ROW_F if not old else _V5_ROW_F if old == 3 else _V4_ROW_F if old == 1
              else _V2_ROW_F)
-    row_i = _V4_ROW_I if old in (1, 2) else ROW_I
+    row_i = _V4_ROW_I if old in (1, 2) else STATE_ROW_I
     end = len(rest)
     for lv, head in zip(levels, rows, strict=True):
         _, tree_seq, cert_seq, cert_t, trim_seq, n_rows, n_vias, live = head[:8]
@@ -4254,7 +4254,10 @@ def _unpack_levels(levels: list[Level], rows: list[list[float | int]], rest: mem
             if not old:
                 times = np.frombuffer(rest, np.float64, n_times, at_t)
                 lf = np.frombuffer(rest, np.float64, nl * LIVE_F, at_l)
-                lv.tree = CandidateTree.unpacked(ti, tf, lf, tv, nl, times, t0)
+                try:  # rows out of fix order (the tree keeps each fix's first row)
+                    lv.tree = CandidateTree.unpacked(ti, tf, lf, tv, nl, times, t0)
+                except ValueError as exc:
+                    raise BadStateError(f"corrupt tracker state: {exc}") from exc
             elif old == 3:
                 times = np.frombuffer(rest, np.float64, n_times, at_t)
                 lv.tree = CandidateTree.unpacked_rows(ti, tf, tv, nl, times, t0)
@@ -4265,7 +4268,7 @@ def _unpack_levels(levels: list[Level], rows: list[list[float | int]], rest: mem
                 # each row's vias ended where it says (start + length): rows were
                 # written tight, each row's vias after the row before's
                 ints = ti.reshape(nr, row_i)
-                ti = np.empty((nr, ROW_I), np.int32)
+                ti = np.empty((nr, STATE_ROW_I), np.int32)
                 ti[:, :3] = ints[:, :3]
                 ti[:, 3] = ints[:, 3] + ints[:, 4]
                 lv.tree = CandidateTree.unpacked_timed(ti, tf, tv, int(live))
