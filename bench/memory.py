@@ -5,7 +5,7 @@ Run: ``.venv/bin/python bench/memory.py [--counts 1000,10000,100000] [--drives 4
 [--pipeline-seconds 120] [--fleet-vehicles 10000] [--fleet-seconds 120]
 [--fleet-trim-every 60] [--breakdown-vehicles 2000] [--breakdown-frames 1]
 [--room-drives 6] [--park-vehicles 2000] [--park-seconds 600] [--park-intervals 15,30]
-[--park-after 5] [--steps 1,2,3,4,5,6] [--matcher KEY=VALUE ...] [--out DIR]``
+[--park-after 5] [--park-warm] [--steps 1,2,3,4,5,6] [--matcher KEY=VALUE ...] [--out DIR]``
 
 Goal (issue 9): <= 4 KB for a typical live vehicle, 100,000 vehicles in <= 1 GB resident.
 
@@ -83,7 +83,13 @@ representation is. Steps, each measuring process a fresh subprocess:
    whole loop (``handle``, ``tick``, ``park_idle``) and wall time in each part. At the
    end of a run with parking, the vehicles silent for more than ``--park-after`` s are
    parked (about 1 - after / interval of them), held as their checkpoint bytes (mean
-   bytes reported).
+   bytes reported). ``--park-warm``: before the RSS is first read, one vehicle per pool
+   drive through a throwaway pipeline at the cell's interval and parking, then dropped;
+   it fills what every vehicle shares and the network bounds (the network's table of
+   segment ids for records, the bridging searches' scratch arrays, which double when a
+   search outgrows them), which otherwise grows during the run and is charged to the
+   vehicles. Each row also gives the whole process at 100,000 vehicles: the RSS before
+   the first message plus 100,000 x the trimmed growth per vehicle.
 
 ``--steps 5``, ``--steps 6``, ``--steps 7``, ``--steps 8`` or a mix of them run only those
 (no pool, no report of steps 1-4): ``memory.partial.md`` / ``memory.partial.json`` in
@@ -754,7 +760,7 @@ def fleet_breakdown(vehicles: int, seconds: int, drives_count: int, duration: fl
 
 # ---------------------------------------------------------------------- 8. parking
 def park_run(vehicles: int, seconds: int, interval: int, park_after: float,
-             drives_count: int) -> dict[str, Any]:
+             drives_count: int, warm_fleet: bool = False) -> dict[str, Any]:
     """Step 8: ``vehicles`` vehicles reporting every ``interval`` s through one Pipeline.
 
     Vehicle i sends fix k at ``T + k * interval + interval * i / vehicles`` (received 0.3 s
@@ -763,6 +769,8 @@ def park_run(vehicles: int, seconds: int, interval: int, park_after: float,
     when ``park_after`` > 0. RSS growth per vehicle, process CPU per fix, and the live
     heap per vehicle by introspection (:func:`owned_bytes` of each vehicle's state, what
     a fresh tracker and pipeline reach left out, plus the pipeline's per-vehicle tables).
+    ``warm_fleet``: first one vehicle per drive through a throwaway pipeline
+    (``--park-warm``).
     """
     from livematch.core.tracker import Tracker
     from livematch.pipeline import Pipeline
@@ -775,6 +783,19 @@ def park_run(vehicles: int, seconds: int, interval: int, park_after: float,
     lonlat = fleet_positions(network, runs)
     count = len(runs)
     fixes = seconds // interval
+    if warm_fleet:
+        pipe = Pipeline(network, settings, park_after_s=park_after)
+        for k in range(fixes):
+            for d in range(count):
+                t = 1.7e9 + k * interval + interval * d / count
+                payload = json.dumps({"vehicle": f"w{d}", "time": t,
+                                      "lat": lonlat[d][1][k * interval],
+                                      "lon": lonlat[d][0][k * interval],
+                                      "accuracy": runs[d][k * interval].accuracy}).encode()
+                pipe.handle(f"fleet/w{d}/position", payload, t + 0.3)
+                pipe.tick(t + 0.3)
+                pipe.park_idle(t + 0.3)
+        del pipe
     gc.collect()
     rss0 = rss_kb()
     pipe = Pipeline(network, settings, park_after_s=park_after)
@@ -823,6 +844,8 @@ def park_run(vehicles: int, seconds: int, interval: int, park_after: float,
             "rss_before_kb": rss0, "rss_after_kb": rss1, "rss_trimmed_kb": rss2,
             "kb_per_vehicle": round((rss1 - rss0) / held, 3),
             "kb_per_vehicle_trimmed": round((rss2 - rss0) / held, 3),
+            "warm_fleet": warm_fleet,
+            "mb_at_100k": round((rss0 + 100_000 * (rss2 - rss0) / held) / 1024, 1),
             "heap_kb_per_vehicle": round((live_b + parked_b + tables) / held / 1024, 3),
             "live_state_kb_mean": round(live_b / max(1, held - len(blobs)) / 1024, 3),
             "parked_state_kb_mean": round(parked_b / len(blobs) / 1024, 3) if blobs else 0.0,
@@ -839,7 +862,8 @@ def park_steps(args: argparse.Namespace) -> list[dict[str, Any]]:
     for interval in (int(v) for v in args.park_intervals.split(",") if v.strip()):
         for after in (0.0, args.park_after):
             row = child(["park", str(args.park_vehicles), str(args.park_seconds),
-                         str(interval), str(after), str(args.drives)])
+                         str(interval), str(after), str(args.drives),
+                         str(int(args.park_warm))])
             print(json.dumps(row), flush=True)
             rows.append(row)
     return rows
@@ -859,12 +883,15 @@ def park_lines(rows: list[dict[str, Any]]) -> list[str]:
         "vehicle by introspection (states live and parked, and the pipeline's tables), "
         "and its mean per live and per parked vehicle. CPU: process time of the whole "
         "loop (handle, tick, park_idle) per fix; handle / park: wall time per fix in "
-        "each.",
+        "each. At 100,000: the RSS before the first message plus 100,000 x the trimmed "
+        "growth per vehicle (MB of 1,024 KB)"
+        + ("; shared caches filled first (`--park-warm`)." if first.get("warm_fleet")
+           else "."),
         "",
         "| every | park after | load avg | RSS KB per vehicle | after trim | live heap KB "
         "| a live one KB | a parked one KB | parked at end | parked bytes mean "
-        "| CPU µs per fix | handle µs | park µs |",
-        "|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|",
+        "| CPU µs per fix | handle µs | park µs | RSS before MB | at 100,000 MB |",
+        "|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|",
     ]
     for row in rows:
         after = row["park_after_s"]
@@ -875,7 +902,8 @@ def park_lines(rows: list[dict[str, Any]]) -> list[str]:
             f"{row['live_state_kb_mean']:.2f} | {row['parked_state_kb_mean']:.2f} | "
             f"{row['parked_at_end']} | {row['parked_blob_bytes_mean']:.0f} | "
             f"{row['cpu_us_per_fix']} | {row['handle_us_per_fix']} | "
-            f"{row['park_us_per_fix']} |")
+            f"{row['park_us_per_fix']} | {row['rss_before_kb'] / 1024:.1f} | "
+            f"{row.get('mb_at_100k', '-')} |")
     return lines
 
 
@@ -1316,6 +1344,9 @@ def main(argv: list[str] | None = None) -> int:
                     help="step 8: seconds between a vehicle's reports, one cell each")
     ap.add_argument("--park-after", type=float, default=5.0,
                     help="step 8: park_after_s of the runs with parking")
+    ap.add_argument("--park-warm", action="store_true",
+                    help="step 8: fill the shared caches with one vehicle per drive "
+                         "before the RSS is first read")
     ap.add_argument("--matcher", action="append", default=[], metavar="KEY=VALUE",
                     help="run every step with these tracker settings changed (as "
                          "bench/matcher_ab.py --matcher); the report's header names them")
@@ -1339,7 +1370,7 @@ def main(argv: list[str] | None = None) -> int:
             out = tree_room_run(int(rest[0]), float(rest[1]))
         elif what == "park":
             out = park_run(int(rest[0]), int(rest[1]), int(rest[2]), float(rest[3]),
-                           int(rest[4]))
+                           int(rest[4]), rest[5:] == ["1"])
         elif what == "count":
             out = n_vehicles(rest[0], int(rest[1]))
         else:
