@@ -5,7 +5,8 @@ Run: ``.venv/bin/python bench/memory.py [--counts 1000,10000,100000] [--drives 4
 [--pipeline-seconds 120] [--fleet-vehicles 10000] [--fleet-seconds 120]
 [--fleet-trim-every 60] [--breakdown-vehicles 2000] [--breakdown-frames 1]
 [--room-drives 6] [--park-vehicles 2000] [--park-seconds 600] [--park-intervals 15,30]
-[--park-after 5] [--park-warm] [--steps 1,2,3,4,5,6] [--matcher KEY=VALUE ...] [--out DIR]``
+[--park-after 5] [--park-warm] [--park-slope] [--steps 1,2,3,4,5,6]
+[--matcher KEY=VALUE ...] [--out DIR]``
 
 Goal (issue 9): <= 4 KB for a typical live vehicle, 100,000 vehicles in <= 1 GB resident.
 
@@ -88,8 +89,16 @@ representation is. Steps, each measuring process a fresh subprocess:
    it fills what every vehicle shares and the network bounds (the network's table of
    segment ids for records, the bridging searches' scratch arrays, which double when a
    search outgrows them), which otherwise grows during the run and is charged to the
-   vehicles. Each row also gives the whole process at 100,000 vehicles: the RSS before
-   the first message plus 100,000 x the trimmed growth per vehicle.
+   vehicles; but it also leaves freed room that the run reuses, so with a few thousand
+   vehicles it understates the growth per vehicle (read ``--park-slope``). Each row
+   also gives the whole process at 100,000 vehicles: the RSS before the first message
+   plus 100,000 x the trimmed growth per vehicle. ``--park-slope``:
+   each cell with parking also run with twice the vehicles (the same drives; vehicle i
+   starts at second ``i // drives`` modulo the interval, so the second thousand repeat
+   the first's starts), and the growth of the second N read as the cost of a vehicle:
+   ``(trimmed RSS growth at 2N - at N) / N``, in which whatever the process holds once
+   (filled caches, freed room the first vehicles leave behind) cancels; at 100,000 the
+   2N run's trimmed RSS plus (100,000 - 2N) x that.
 
 ``--steps 5``, ``--steps 6``, ``--steps 7``, ``--steps 8`` or a mix of them run only those
 (no pool, no report of steps 1-4): ``memory.partial.md`` / ``memory.partial.json`` in
@@ -857,7 +866,8 @@ def park_run(vehicles: int, seconds: int, interval: int, park_after: float,
 
 def park_steps(args: argparse.Namespace) -> list[dict[str, Any]]:
     """Step 8: every ``--park-intervals`` cell with parking off and on, each run in its
-    own subprocess."""
+    own subprocess (``--park-slope``: the cells with parking also with twice the
+    vehicles)."""
     rows = []
     for interval in (int(v) for v in args.park_intervals.split(",") if v.strip()):
         for after in (0.0, args.park_after):
@@ -865,6 +875,22 @@ def park_steps(args: argparse.Namespace) -> list[dict[str, Any]]:
                          str(interval), str(after), str(args.drives),
                          str(int(args.park_warm))])
             print(json.dumps(row), flush=True)
+            if args.park_slope and after > 0:
+                n = row["vehicles"]
+                big = child(["park", str(2 * args.park_vehicles), str(args.park_seconds),
+                             str(interval), str(after), str(args.drives),
+                             str(int(args.park_warm))])
+                print(json.dumps(big), flush=True)
+                grow = big["rss_trimmed_kb"] - big["rss_before_kb"]
+                first = row["rss_trimmed_kb"] - row["rss_before_kb"]
+                marginal = (grow - first) / (big["vehicles"] - n)
+                row["slope"] = {
+                    "vehicles": big["vehicles"], "kb_per_vehicle_trimmed":
+                    big["kb_per_vehicle_trimmed"], "heap_kb_per_vehicle":
+                    big["heap_kb_per_vehicle"], "marginal_kb_trimmed": round(marginal, 3),
+                    "mb_at_100k": round((big["rss_trimmed_kb"]
+                                         + (100_000 - big["vehicles"]) * marginal) / 1024, 1),
+                    "loadavg_1m": big["loadavg_1m"]}
             rows.append(row)
     return rows
 
@@ -904,6 +930,25 @@ def park_lines(rows: list[dict[str, Any]]) -> list[str]:
             f"{row['cpu_us_per_fix']} | {row['handle_us_per_fix']} | "
             f"{row['park_us_per_fix']} | {row['rss_before_kb'] / 1024:.1f} | "
             f"{row.get('mb_at_100k', '-')} |")
+    slopes = [row for row in rows if row.get("slope")]
+    if slopes:
+        lines += [
+            "",
+            "The cells with parking again with twice the vehicles (`--park-slope`): the "
+            "trimmed RSS growth of the second N vehicles per vehicle, and the whole "
+            "process at 100,000 from it (the 2N run's trimmed RSS plus (100,000 - 2N) x "
+            "that).",
+            "",
+            "| every | park after | vehicles | load avg | after trim KB per vehicle "
+            "| live heap KB | second N: KB per vehicle | at 100,000 MB |",
+            "|---:|---:|---:|---:|---:|---:|---:|---:|"]
+        for row in slopes:
+            sl = row["slope"]
+            lines.append(
+                f"| {row['interval_s']} s | {row['park_after_s']:g} s | {sl['vehicles']:,} | "
+                f"{sl['loadavg_1m']} | {sl['kb_per_vehicle_trimmed']:.2f} | "
+                f"{sl['heap_kb_per_vehicle']:.2f} | {sl['marginal_kb_trimmed']:.2f} | "
+                f"{sl['mb_at_100k']} |")
     return lines
 
 
@@ -1344,6 +1389,9 @@ def main(argv: list[str] | None = None) -> int:
                     help="step 8: seconds between a vehicle's reports, one cell each")
     ap.add_argument("--park-after", type=float, default=5.0,
                     help="step 8: park_after_s of the runs with parking")
+    ap.add_argument("--park-slope", action="store_true",
+                    help="step 8: the cells with parking also with twice the vehicles; "
+                         "the second N's growth per vehicle")
     ap.add_argument("--park-warm", action="store_true",
                     help="step 8: fill the shared caches with one vehicle per drive "
                          "before the RSS is first read")
