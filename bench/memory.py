@@ -1435,6 +1435,11 @@ def main(argv: list[str] | None = None) -> int:
     started = time.strftime("%Y-%m-%d %H:%M", time.gmtime())
     commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=ROOT,
                             capture_output=True, text=True, check=False).stdout.strip()
+    import livematch
+
+    tree = Path(livematch.__file__).resolve().parents[1]
+    if tree != ROOT:  # PYTHONPATH at another tree: say which livematch ran
+        commit += f" (this script's checkout; livematch imported from {tree})"
     mem_total = int(Path("/proc/meminfo").read_text().split()[1])
     steps = {int(v) for v in args.steps.split(",") if v.strip()}
     if not steps >= {1, 2, 3, 4}:
