@@ -806,6 +806,7 @@ def park_run(vehicles: int, seconds: int, interval: int, park_after: float,
                 pipe.park_idle(t + 0.3)
         del pipe
     gc.collect()
+    shared0 = shared_cache_bytes(network)
     rss0 = rss_kb()
     pipe = Pipeline(network, settings, park_after_s=park_after)
     outputs = 0
@@ -859,9 +860,24 @@ def park_run(vehicles: int, seconds: int, interval: int, park_after: float,
             "live_state_kb_mean": round(live_b / max(1, held - len(blobs)) / 1024, 3),
             "parked_state_kb_mean": round(parked_b / len(blobs) / 1024, 3) if blobs else 0.0,
             "tables_kb_per_vehicle": round(tables / held / 1024, 3),
+            "shared_caches_kb": [round(shared0 / 1024, 1),
+                                 round(shared_cache_bytes(network) / 1024, 1)],
             "cpu_us_per_fix": round(cpu / n_fixes * 1e6, 1),
             "handle_us_per_fix": round(t_handle / n_fixes * 1e6, 1),
             "park_us_per_fix": round(t_park / n_fixes * 1e6, 1)}
+
+
+def shared_cache_bytes(network: Any) -> int:
+    """Bytes (:func:`owned_bytes`) of what the network keeps for every vehicle and fills
+    as vehicles need it: the bridging searches' scratch arrays (``routing.route_arrays``,
+    doubled when a search outgrows them) and the records' table of segment ids
+    (``events.RecordBuilder``). Bounded by the network, not by the vehicles."""
+    total = 0
+    for name in ("_route_arrays", "_record_segment_ids"):
+        held = getattr(network, name, None)
+        if held is not None:
+            total += owned_bytes(held, {id(network), id(network._view)}, set())[1]
+    return total
 
 
 def park_steps(args: argparse.Namespace) -> list[dict[str, Any]]:
@@ -910,14 +926,17 @@ def park_lines(rows: list[dict[str, Any]]) -> list[str]:
         "and its mean per live and per parked vehicle. CPU: process time of the whole "
         "loop (handle, tick, park_idle) per fix; handle / park: wall time per fix in "
         "each. At 100,000: the RSS before the first message plus 100,000 x the trimmed "
-        "growth per vehicle (MB of 1,024 KB)"
+        "growth per vehicle (MB of 1,024 KB). Shared caches: what the network keeps for "
+        "every vehicle and fills as they need it (:func:`shared_cache_bytes`), KB at the "
+        "first RSS reading and at the end, charged to the vehicles by the RSS growth"
         + ("; shared caches filled first (`--park-warm`)." if first.get("warm_fleet")
            else "."),
         "",
         "| every | park after | load avg | RSS KB per vehicle | after trim | live heap KB "
         "| a live one KB | a parked one KB | parked at end | parked bytes mean "
-        "| CPU µs per fix | handle µs | park µs | RSS before MB | at 100,000 MB |",
-        "|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|",
+        "| CPU µs per fix | handle µs | park µs | RSS before MB | at 100,000 MB "
+        "| shared caches KB |",
+        "|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|",
     ]
     for row in rows:
         after = row["park_after_s"]
@@ -929,7 +948,8 @@ def park_lines(rows: list[dict[str, Any]]) -> list[str]:
             f"{row['parked_at_end']} | {row['parked_blob_bytes_mean']:.0f} | "
             f"{row['cpu_us_per_fix']} | {row['handle_us_per_fix']} | "
             f"{row['park_us_per_fix']} | {row['rss_before_kb'] / 1024:.1f} | "
-            f"{row.get('mb_at_100k', '-')} |")
+            f"{row.get('mb_at_100k', '-')} | "
+            f"{' -> '.join(map(str, row.get('shared_caches_kb', ['-'])))} |")
     slopes = [row for row in rows if row.get("slope")]
     if slopes:
         lines += [
