@@ -5,7 +5,8 @@ Run: ``.venv/bin/python bench/memory.py [--counts 1000,10000,100000] [--drives 4
 [--pipeline-seconds 120] [--fleet-vehicles 10000] [--fleet-seconds 120]
 [--fleet-trim-every 60] [--breakdown-vehicles 2000] [--breakdown-frames 1]
 [--room-drives 6] [--park-vehicles 2000] [--park-seconds 600] [--park-intervals 15,30]
-[--park-after 5] [--steps 1,2,3,4,5,6] [--matcher KEY=VALUE ...] [--out DIR]``
+[--park-after 5] [--park-warm] [--park-slope] [--steps 1,2,3,4,5,6]
+[--matcher KEY=VALUE ...] [--out DIR]``
 
 Goal (issue 9): <= 4 KB for a typical live vehicle, 100,000 vehicles in <= 1 GB resident.
 
@@ -83,7 +84,21 @@ representation is. Steps, each measuring process a fresh subprocess:
    whole loop (``handle``, ``tick``, ``park_idle``) and wall time in each part. At the
    end of a run with parking, the vehicles silent for more than ``--park-after`` s are
    parked (about 1 - after / interval of them), held as their checkpoint bytes (mean
-   bytes reported).
+   bytes reported). ``--park-warm``: before the RSS is first read, one vehicle per pool
+   drive through a throwaway pipeline at the cell's interval and parking, then dropped;
+   it fills what every vehicle shares and the network bounds (the network's table of
+   segment ids for records, the bridging searches' scratch arrays, which double when a
+   search outgrows them), which otherwise grows during the run and is charged to the
+   vehicles; but it also leaves freed room that the run reuses, so with a few thousand
+   vehicles it understates the growth per vehicle (read ``--park-slope``). Each row
+   also gives the whole process at 100,000 vehicles: the RSS before the first message
+   plus 100,000 x the trimmed growth per vehicle. ``--park-slope``:
+   each cell with parking also run with twice the vehicles (the same drives; vehicle i
+   starts at second ``i // drives`` modulo the interval, so the second thousand repeat
+   the first's starts), and the growth of the second N read as the cost of a vehicle:
+   ``(trimmed RSS growth at 2N - at N) / N``, in which whatever the process holds once
+   (filled caches, freed room the first vehicles leave behind) cancels; at 100,000 the
+   2N run's trimmed RSS plus (100,000 - 2N) x that.
 
 ``--steps 5``, ``--steps 6``, ``--steps 7``, ``--steps 8`` or a mix of them run only those
 (no pool, no report of steps 1-4): ``memory.partial.md`` / ``memory.partial.json`` in
@@ -764,7 +779,7 @@ def fleet_breakdown(vehicles: int, seconds: int, drives_count: int, duration: fl
 
 # ---------------------------------------------------------------------- 8. parking
 def park_run(vehicles: int, seconds: int, interval: int, park_after: float,
-             drives_count: int) -> dict[str, Any]:
+             drives_count: int, warm_fleet: bool = False) -> dict[str, Any]:
     """Step 8: ``vehicles`` vehicles reporting every ``interval`` s through one Pipeline.
 
     Vehicle i sends fix k at ``T + k * interval + interval * i / vehicles`` (received 0.3 s
@@ -773,6 +788,8 @@ def park_run(vehicles: int, seconds: int, interval: int, park_after: float,
     when ``park_after`` > 0. RSS growth per vehicle, process CPU per fix, and the live
     heap per vehicle by introspection (:func:`owned_bytes` of each vehicle's state, what
     a fresh tracker and pipeline reach left out, plus the pipeline's per-vehicle tables).
+    ``warm_fleet``: first one vehicle per drive through a throwaway pipeline
+    (``--park-warm``).
     """
     from livematch.core.tracker import Tracker
     from livematch.pipeline import Pipeline
@@ -785,7 +802,21 @@ def park_run(vehicles: int, seconds: int, interval: int, park_after: float,
     lonlat = fleet_positions(network, runs)
     count = len(runs)
     fixes = seconds // interval
+    if warm_fleet:
+        pipe = Pipeline(network, settings, park_after_s=park_after)
+        for k in range(fixes):
+            for d in range(count):
+                t = 1.7e9 + k * interval + interval * d / count
+                payload = json.dumps({"vehicle": f"w{d}", "time": t,
+                                      "lat": lonlat[d][1][k * interval],
+                                      "lon": lonlat[d][0][k * interval],
+                                      "accuracy": runs[d][k * interval].accuracy}).encode()
+                pipe.handle(f"fleet/w{d}/position", payload, t + 0.3)
+                pipe.tick(t + 0.3)
+                pipe.park_idle(t + 0.3)
+        del pipe
     gc.collect()
+    shared0 = shared_cache_bytes(network)
     rss0 = rss_kb()
     pipe = Pipeline(network, settings, park_after_s=park_after)
     outputs = 0
@@ -833,24 +864,59 @@ def park_run(vehicles: int, seconds: int, interval: int, park_after: float,
             "rss_before_kb": rss0, "rss_after_kb": rss1, "rss_trimmed_kb": rss2,
             "kb_per_vehicle": round((rss1 - rss0) / held, 3),
             "kb_per_vehicle_trimmed": round((rss2 - rss0) / held, 3),
+            "warm_fleet": warm_fleet,
+            "mb_at_100k": round((rss0 + 100_000 * (rss2 - rss0) / held) / 1024, 1),
             "heap_kb_per_vehicle": round((live_b + parked_b + tables) / held / 1024, 3),
             "live_state_kb_mean": round(live_b / max(1, held - len(blobs)) / 1024, 3),
             "parked_state_kb_mean": round(parked_b / len(blobs) / 1024, 3) if blobs else 0.0,
             "tables_kb_per_vehicle": round(tables / held / 1024, 3),
+            "shared_caches_kb": [round(shared0 / 1024, 1),
+                                 round(shared_cache_bytes(network) / 1024, 1)],
             "cpu_us_per_fix": round(cpu / n_fixes * 1e6, 1),
             "handle_us_per_fix": round(t_handle / n_fixes * 1e6, 1),
             "park_us_per_fix": round(t_park / n_fixes * 1e6, 1)}
 
 
+def shared_cache_bytes(network: Any) -> int:
+    """Bytes (:func:`owned_bytes`) of what the network keeps for every vehicle and fills
+    as vehicles need it: the bridging searches' scratch arrays (``routing.route_arrays``,
+    doubled when a search outgrows them) and the records' table of segment ids
+    (``events.RecordBuilder``). Bounded by the network, not by the vehicles."""
+    total = 0
+    for name in ("_route_arrays", "_record_segment_ids"):
+        held = getattr(network, name, None)
+        if held is not None:
+            total += owned_bytes(held, {id(network), id(network._view)}, set())[1]
+    return total
+
+
 def park_steps(args: argparse.Namespace) -> list[dict[str, Any]]:
     """Step 8: every ``--park-intervals`` cell with parking off and on, each run in its
-    own subprocess."""
+    own subprocess (``--park-slope``: the cells with parking also with twice the
+    vehicles)."""
     rows = []
     for interval in (int(v) for v in args.park_intervals.split(",") if v.strip()):
         for after in (0.0, args.park_after):
             row = child(["park", str(args.park_vehicles), str(args.park_seconds),
-                         str(interval), str(after), str(args.drives)])
+                         str(interval), str(after), str(args.drives),
+                         str(int(args.park_warm))])
             print(json.dumps(row), flush=True)
+            if args.park_slope and after > 0:
+                n = row["vehicles"]
+                big = child(["park", str(2 * args.park_vehicles), str(args.park_seconds),
+                             str(interval), str(after), str(args.drives),
+                             str(int(args.park_warm))])
+                print(json.dumps(big), flush=True)
+                grow = big["rss_trimmed_kb"] - big["rss_before_kb"]
+                first = row["rss_trimmed_kb"] - row["rss_before_kb"]
+                marginal = (grow - first) / (big["vehicles"] - n)
+                row["slope"] = {
+                    "vehicles": big["vehicles"], "kb_per_vehicle_trimmed":
+                    big["kb_per_vehicle_trimmed"], "heap_kb_per_vehicle":
+                    big["heap_kb_per_vehicle"], "marginal_kb_trimmed": round(marginal, 3),
+                    "mb_at_100k": round((big["rss_trimmed_kb"]
+                                         + (100_000 - big["vehicles"]) * marginal) / 1024, 1),
+                    "loadavg_1m": big["loadavg_1m"]}
             rows.append(row)
     return rows
 
@@ -869,12 +935,18 @@ def park_lines(rows: list[dict[str, Any]]) -> list[str]:
         "vehicle by introspection (states live and parked, and the pipeline's tables), "
         "and its mean per live and per parked vehicle. CPU: process time of the whole "
         "loop (handle, tick, park_idle) per fix; handle / park: wall time per fix in "
-        "each.",
+        "each. At 100,000: the RSS before the first message plus 100,000 x the trimmed "
+        "growth per vehicle (MB of 1,024 KB). Shared caches: what the network keeps for "
+        "every vehicle and fills as they need it (:func:`shared_cache_bytes`), KB at the "
+        "first RSS reading and at the end, charged to the vehicles by the RSS growth"
+        + ("; shared caches filled first (`--park-warm`)." if first.get("warm_fleet")
+           else "."),
         "",
         "| every | park after | load avg | RSS KB per vehicle | after trim | live heap KB "
         "| a live one KB | a parked one KB | parked at end | parked bytes mean "
-        "| CPU µs per fix | handle µs | park µs |",
-        "|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|",
+        "| CPU µs per fix | handle µs | park µs | RSS before MB | at 100,000 MB "
+        "| shared caches KB |",
+        "|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|",
     ]
     for row in rows:
         after = row["park_after_s"]
@@ -885,7 +957,28 @@ def park_lines(rows: list[dict[str, Any]]) -> list[str]:
             f"{row['live_state_kb_mean']:.2f} | {row['parked_state_kb_mean']:.2f} | "
             f"{row['parked_at_end']} | {row['parked_blob_bytes_mean']:.0f} | "
             f"{row['cpu_us_per_fix']} | {row['handle_us_per_fix']} | "
-            f"{row['park_us_per_fix']} |")
+            f"{row['park_us_per_fix']} | {row['rss_before_kb'] / 1024:.1f} | "
+            f"{row.get('mb_at_100k', '-')} | "
+            f"{' -> '.join(map(str, row.get('shared_caches_kb', ['-'])))} |")
+    slopes = [row for row in rows if row.get("slope")]
+    if slopes:
+        lines += [
+            "",
+            "The cells with parking again with twice the vehicles (`--park-slope`): the "
+            "trimmed RSS growth of the second N vehicles per vehicle, and the whole "
+            "process at 100,000 from it (the 2N run's trimmed RSS plus (100,000 - 2N) x "
+            "that).",
+            "",
+            "| every | park after | vehicles | load avg | after trim KB per vehicle "
+            "| live heap KB | second N: KB per vehicle | at 100,000 MB |",
+            "|---:|---:|---:|---:|---:|---:|---:|---:|"]
+        for row in slopes:
+            sl = row["slope"]
+            lines.append(
+                f"| {row['interval_s']} s | {row['park_after_s']:g} s | {sl['vehicles']:,} | "
+                f"{sl['loadavg_1m']} | {sl['kb_per_vehicle_trimmed']:.2f} | "
+                f"{sl['heap_kb_per_vehicle']:.2f} | {sl['marginal_kb_trimmed']:.2f} | "
+                f"{sl['mb_at_100k']} |")
     return lines
 
 
@@ -1326,6 +1419,12 @@ def main(argv: list[str] | None = None) -> int:
                     help="step 8: seconds between a vehicle's reports, one cell each")
     ap.add_argument("--park-after", type=float, default=5.0,
                     help="step 8: park_after_s of the runs with parking")
+    ap.add_argument("--park-slope", action="store_true",
+                    help="step 8: the cells with parking also with twice the vehicles; "
+                         "the second N's growth per vehicle")
+    ap.add_argument("--park-warm", action="store_true",
+                    help="step 8: fill the shared caches with one vehicle per drive "
+                         "before the RSS is first read")
     ap.add_argument("--matcher", action="append", default=[], metavar="KEY=VALUE",
                     help="run every step with these tracker settings changed (as "
                          "bench/matcher_ab.py --matcher); the report's header names them")
@@ -1349,7 +1448,7 @@ def main(argv: list[str] | None = None) -> int:
             out = tree_room_run(int(rest[0]), float(rest[1]))
         elif what == "park":
             out = park_run(int(rest[0]), int(rest[1]), int(rest[2]), float(rest[3]),
-                           int(rest[4]))
+                           int(rest[4]), rest[5:] == ["1"])
         elif what == "count":
             out = n_vehicles(rest[0], int(rest[1]))
         else:
@@ -1366,6 +1465,11 @@ def main(argv: list[str] | None = None) -> int:
     started = time.strftime("%Y-%m-%d %H:%M", time.gmtime())
     commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=ROOT,
                             capture_output=True, text=True, check=False).stdout.strip()
+    import livematch
+
+    tree = Path(livematch.__file__).resolve().parents[1]
+    if tree != ROOT:  # PYTHONPATH at another tree: say which livematch ran
+        commit += f" (this script's checkout; livematch imported from {tree})"
     mem_total = int(Path("/proc/meminfo").read_text().split()[1])
     steps = {int(v) for v in args.steps.split(",") if v.strip()}
     if not steps >= {1, 2, 3, 4}:

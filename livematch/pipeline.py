@@ -53,14 +53,16 @@ Bad input never raises: a message that cannot be decoded becomes an
 
 Parking (``park_after_s`` > 0, the ``[store] park_after_s`` setting): a vehicle from which
 no message arrived for more than ``park_after_s`` seconds of receive time is kept as its
-checkpoint bytes (:meth:`Pipeline.export_vehicle`, about 2 KB) instead of its live
-tracker and monitors (about 13 KB driven), and restored when its next message arrives or
-anything else needs it (a stale check that is due, eviction, the end-of-log flush). The
-shell says when: :meth:`Pipeline.park_idle` with its receive clock (``livematch replay``
-after every message with that message's ``at``; the daemon a few vehicles after every
-message and in each round of its checkpoint loop, on its wall clock). A restored
-tracker goes on exactly as one never stopped, so parking changes no output; it trades
-the CPU of a save and a restore per parked interval for the memory of a live vehicle.
+checkpoint bytes (:meth:`Pipeline.export_vehicle`'s, deflated as a whole against a preset
+dictionary: about 2.9 KB at 15-30 s between fixes, 0.85 of the checkpoint) instead of its
+live tracker and monitors (16-22 KB at those intervals), and restored when its next
+message arrives or anything else needs it (a stale check that is due, eviction, the
+end-of-log flush). The shell says when: :meth:`Pipeline.park_idle` with its receive
+clock (``livematch replay`` after every message with that message's ``at``; the daemon a
+few vehicles after every message and in each round of its checkpoint loop, on its wall
+clock). A restored tracker goes on exactly as one never stopped, so parking changes no
+output; it trades the CPU of a save and a restore per parked interval for the memory of
+a live vehicle.
 """
 
 from __future__ import annotations
@@ -151,6 +153,17 @@ _READABLE_VERSIONS = (1, 2, 3)
 #: Default topic filter of the route control messages; its ``+`` level is the vehicle.
 CONTROL_TOPIC = "livematch/control/+/route"
 _DEFAULT_LIMITS = FeedLimits()
+#: zlib level of a parked vehicle's bytes (:meth:`Pipeline._park`). Level 4 against the
+#: preset dictionary: 0.78 of the checkpoint's size for about 40 µs more per park than
+#: the checkpoint's own level-1 tracker state (``bench/parkbytes.py``, docs/measured.md
+#: "Session 27 (park27)"); level 6 is 0.74 for about three times that.
+PARK_LEVEL: typing.Final = 4
+#: A parked vehicle's uncompressed bytes at least this long become the pipeline's preset
+#: dictionary (its last :data:`_ZDICT_MAX` bytes), if it has none yet: a state with
+#: trees and routes in it, whose names, layout and numbers recur in every other one.
+_PARK_DICT_MIN: typing.Final = 8192
+#: deflate refers back at most 32 KB: a longer dictionary's start is never read
+_ZDICT_MAX: typing.Final = 32768
 #: Whether this module runs compiled (mypyc): see ``livematch.core.fix._COMPILED``.
 _COMPILED: typing.Final = not __file__.endswith((".py", ".pyc"))
 
@@ -351,19 +364,22 @@ class _VehicleState:
 class _Parked:
     """A parked vehicle: its checkpoint bytes and what the pipeline reads without them.
 
-    ``blob`` is :meth:`Pipeline.export_vehicle`'s output at parking time; ``newest`` its
-    newest fix time (idle eviction); ``watch_at`` the stale watch's receive time while
-    the vehicle is not stale (None: no watch yet, or stale already), so that
-    :meth:`Pipeline.tick` restores it only when the watch would fire; ``tokens``,
-    ``last_at`` and ``last_t`` the rate limit's bucket, which a checkpoint does not
-    carry (a vehicle restored on another worker starts with a full bucket; a parked one
-    must go on with its own).
+    ``blob`` is :meth:`Pipeline.export_vehicle`'s msgpack array at parking time with the
+    tracker state left uncompressed, deflated as a whole (raw deflate, zlib level
+    :data:`PARK_LEVEL`) against the pipeline's preset dictionary when ``zdict`` (see
+    :meth:`Pipeline._park`); ``newest`` its newest fix time (idle eviction); ``watch_at``
+    the stale watch's receive time while the vehicle is not stale (None: no watch yet,
+    or stale already), so that :meth:`Pipeline.tick` restores it only when the watch
+    would fire; ``tokens``, ``last_at`` and ``last_t`` the rate limit's bucket, which a
+    checkpoint does not carry (a vehicle restored on another worker starts with a full
+    bucket; a parked one must go on with its own).
     """
 
-    __slots__ = ("blob", "last_at", "last_t", "newest", "tokens", "watch_at")
+    __slots__ = ("blob", "last_at", "last_t", "newest", "tokens", "watch_at", "zdict")
 
-    def __init__(self, blob: bytes, state: _VehicleState) -> None:
+    def __init__(self, blob: bytes, zdict: bool, state: _VehicleState) -> None:
         self.blob = blob
+        self.zdict = zdict
         self.newest = state.newest
         watch = state.alerts.watch
         self.watch_at = watch.at if watch is not None and not watch.stale else None
@@ -470,6 +486,8 @@ class Pipeline:
         self._idle_floor = -math.inf
         self.park_after_s = float(park_after_s)
         self._parked: dict[str, _Parked] = {}
+        # the preset dictionary of parked vehicles' bytes (b"": none chosen yet; _park)
+        self._park_zdict = b""
         # Live vehicles by the receive time of their last message, oldest first (kept
         # only while parking is on): park_idle takes them from the front.
         self._arrived: OrderedDict[str, float] = OrderedDict()
@@ -851,10 +869,28 @@ class Pipeline:
             arrived.move_to_end(vehicle)
 
     def _park(self, vehicle: str) -> None:
-        """Keep a live vehicle as its checkpoint bytes (see :class:`_Parked`)."""
+        """Keep a live vehicle as its checkpoint bytes (see :class:`_Parked`).
+
+        The checkpoint's msgpack array is made with the tracker state uncompressed
+        (``Tracker.to_bytes()``) and deflated once as a whole, against a preset
+        dictionary: the first such array of at least :data:`_PARK_DICT_MIN` bytes
+        parked by this pipeline, kept for its life. Every checkpoint repeats the
+        header's names, the arrays' layout and the epoch's leading digits, which the
+        dictionary holds; a tracker state deflated on its own (the checkpoint's) cannot
+        refer to them, nor to the alert state beside it.
+        """
         state = self._vehicles[vehicle]
-        blob = self._export(vehicle, state)
-        self._parked[vehicle] = _Parked(blob, state)
+        raw = self._frame(vehicle, state, False)
+        zdict = self._park_zdict
+        if not zdict and len(raw) >= _PARK_DICT_MIN:
+            zdict = self._park_zdict = raw[-_ZDICT_MAX:]
+        if zdict:
+            packer = zlib.compressobj(PARK_LEVEL, zlib.DEFLATED, -15, 8,
+                                      zlib.Z_DEFAULT_STRATEGY, zdict)
+        else:
+            packer = zlib.compressobj(PARK_LEVEL, zlib.DEFLATED, -15)
+        packed = packer.compress(raw) + packer.flush()
+        self._parked[vehicle] = _Parked(packed, bool(zdict), state)
         del self._vehicles[vehicle]
         self.counters["vehicle:parked"] += 1
 
@@ -866,7 +902,7 @@ class Pipeline:
         bucket comes from the parked record. Not counted as an import.
         """
         held = self._parked.pop(vehicle)
-        state = self._restore(vehicle, held.blob)[0]
+        state = self._restore(vehicle, self._unpacked(held))[0]
         state.tokens = held.tokens
         state.last_at = held.last_at
         state.last_t = held.last_t
@@ -893,25 +929,47 @@ class Pipeline:
         """
         held = self._parked.get(vehicle)
         if held is not None:
-            return self._parked_blob(vehicle, held.blob)
+            return self._parked_blob(vehicle, held)
         state = self._vehicles.get(vehicle)
         if state is None:
             raise UnknownVehicleError(f"no state held for vehicle {vehicle!r}")
         return self._export(vehicle, state)
 
-    def _parked_blob(self, vehicle: str, blob: bytes) -> bytes:
-        """A parked vehicle's bytes with its control-message route as it is now."""
-        control = self._control.get(vehicle)
-        data = _BLOB_DECODER.decode(blob[len(STATE_MAGIC) + 1:])
+    def _unpacked(self, held: _Parked) -> bytes:
+        """A parked vehicle's checkpoint, its tracker state uncompressed (see :meth:`_park`)."""
+        if held.zdict:
+            unpacker = zlib.decompressobj(-15, self._park_zdict)
+        else:
+            unpacker = zlib.decompressobj(-15)
+        return (STATE_MAGIC + bytes([STATE_VERSION]) + unpacker.decompress(held.blob)
+                + unpacker.flush())
+
+    def _parked_blob(self, vehicle: str, held: _Parked) -> bytes:
+        """A parked vehicle's checkpoint, with its control-message route as it is now.
+
+        The bytes :meth:`_export` wrote when it was parked (the same tracker state
+        compressed the same way), the route from control messages replaced.
+        """
+        data = _BLOB_DECODER.decode(memoryview(self._unpacked(held))[len(STATE_MAGIC) + 1:])
         extra = _ALERTS_DECODER.decode(data.alerts)
-        if extra["control"] == control:
-            return blob
-        extra["control"] = control
-        fresh = _Blob(data.vehicle, data.recent, data.tracker, _ALERTS_ENCODER.encode(extra))
+        control = self._control.get(vehicle)
+        alerts = data.alerts
+        if extra["control"] != control:
+            extra["control"] = control
+            alerts = _ALERTS_ENCODER.encode(extra)
+        fresh = _Blob(data.vehicle, data.recent, Tracker.compressed_state(data.tracker),
+                      alerts)
         return STATE_MAGIC + bytes([STATE_VERSION]) + _BLOB_ENCODER.encode(fresh)
 
     def _export(self, vehicle: str, state: _VehicleState) -> bytes:
         """The checkpoint bytes of a live vehicle (see :meth:`export_vehicle`)."""
+        return STATE_MAGIC + bytes([STATE_VERSION]) + self._frame(vehicle, state, True)
+
+    def _frame(self, vehicle: str, state: _VehicleState, compress: bool) -> bytes:
+        """The msgpack array of a live vehicle's checkpoint (after the magic and version).
+
+        ``compress``: the tracker state zlib-compressed, as a checkpoint holds it.
+        """
         extra = {
             "monitors": state.alerts.to_state(),
             "pending": [[f.vehicle, f.t, f.lon, f.lat, f.x, f.y, f.accuracy, f.speed,
@@ -921,9 +979,9 @@ class Pipeline:
         alerts = _ALERTS_ENCODER.encode(extra)
         # compressed (zlib level 1): about the size of the older LMT3 states at 0.6 x
         # their cost; uncompressed would be 3-5 x longer in the store (bench/checkpoint.py)
-        blob = _Blob(vehicle, state.times(), state.tracker.to_bytes(compress=True),
+        blob = _Blob(vehicle, state.times(), state.tracker.to_bytes(compress=compress),
                      alerts)
-        return STATE_MAGIC + bytes([STATE_VERSION]) + _BLOB_ENCODER.encode(blob)
+        return _BLOB_ENCODER.encode(blob)
 
     def import_vehicle(self, vehicle: str, blob: bytes) -> None:
         """Restore a vehicle from :meth:`export_vehicle` output, replacing any state held.

@@ -7,8 +7,10 @@ import importlib.resources
 import json
 import math
 import tomllib
+import zlib
 from pathlib import Path
 
+import msgspec
 import numpy as np
 import pytest
 import shapely
@@ -20,11 +22,11 @@ from livematch.core.monitors import AlertSettings, Fence
 from livematch.core.settings import MatchSettings
 from livematch.errors import BadConfigError
 from livematch.feed.decode import FeedLimits
-from livematch.feed.replaylog import ReplayLogWriter
+from livematch.feed.replaylog import ReplayLogWriter, read_replay_log
 from livematch.mapdata.fences import read_fences
 from livematch.mapdata.netfile import open_network
 from livematch.mapdata.routes import load_routes
-from livematch.pipeline import Pipeline, matcher_settings_from_mapping
+from livematch.pipeline import STATE_MAGIC, Pipeline, matcher_settings_from_mapping
 from livematch.sim.drive import DriveSettings, drivable_segments, observe, simulate_drive
 from livematch.sim.logs import replay_records
 
@@ -254,3 +256,53 @@ def test_replay_park_sample_town_identical(tmp_path: Path):
     assert {"stale", "fresh", "off_route"} <= kinds
     assert on.pop("parking")["parked"] > 3000
     assert on == off
+
+
+def test_pipeline_parked_bytes_inflate_to_the_checkpoint(tmp_path: Path):
+    """A parked vehicle's bytes are one raw deflate stream: zlib's own ``decompressobj``
+    (with the pipeline's preset dictionary where one was used) gives back the msgpack
+    array of the checkpoint ``export_vehicle`` gave just before parking, with the
+    tracker state uncompressed; zlib's ``compress`` at level 1 of that state's body is
+    the checkpoint's tracker state, byte for byte, and the parked vehicle exports that
+    checkpoint. The bytes are shorter than the checkpoints, and vehicles parked before
+    and after the dictionary was chosen go on alike (outputs compared with a pipeline
+    that never parks)."""
+    log = tmp_path / "sparse.jsonl"
+    _sparse_log(log, 15, 23)
+    network = open_network(str(importlib.resources.files("pyrosm") / "data" / "test.osm.pbf"))
+    live, parking = Pipeline(network, MatchSettings()), Pipeline(network, MatchSettings(),
+                                                                  park_after_s=5.0)
+    head = len(STATE_MAGIC) + 1
+    seen = {True: 0, False: 0}
+    packed = exported = 0
+    for entry in read_replay_log(log):
+        assert (parking.handle(entry.topic, entry.payload, entry.at)
+                == live.handle(entry.topic, entry.payload, entry.at))
+        checkpoints = {v: parking.export_vehicle(v) for v in parking._vehicles}
+        parking.park_idle(entry.at)
+        for vehicle, checkpoint in checkpoints.items():
+            held = parking._parked.get(vehicle)
+            if held is None:
+                continue  # not due yet
+            # zlib's own inflate (outside reference: the zlib library), not the pipeline's
+            if held.zdict:
+                unpacker = zlib.decompressobj(-15, zdict=parking._park_zdict)
+            else:
+                unpacker = zlib.decompressobj(-15)
+            frame = unpacker.decompress(held.blob) + unpacker.flush()
+            assert unpacker.eof
+            data = msgspec.msgpack.decode(frame)
+            want = msgspec.msgpack.decode(checkpoint[head:])
+            assert data[0] == want[0] == vehicle
+            assert data[1] == want[1] and data[3] == want[3]
+            raw, stored = data[2], want[2]
+            assert raw[:5] == stored[:4] + b"\x00" and stored[4:5] == b"\x01"
+            assert zlib.compress(raw[5:], 1) == stored[5:]
+            assert parking.export_vehicle(vehicle) == checkpoint
+            seen[held.zdict] += 1
+            packed += len(held.blob)
+            exported += len(checkpoint)
+    assert seen[True] > 50 and seen[False] > 0
+    assert 0 < len(parking._park_zdict) <= 32768
+    assert packed < 0.9 * exported
+    assert parking.flush() == live.flush()

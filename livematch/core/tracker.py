@@ -3993,6 +3993,20 @@ class Tracker:
             return STATE_FORMAT + b"\x01" + zlib.compress(body, 1)
         return STATE_FORMAT + b"\x00" + body
 
+    @staticmethod
+    def compressed_state(data: bytes) -> bytes:
+        """``to_bytes(compress=True)`` of the tracker whose ``to_bytes()`` is ``data``.
+
+        The same bytes as the tracker would write compressed (the body deflated at zlib
+        level 1 behind the flags byte 1), made without the tracker: a pipeline keeps a
+        parked vehicle's state uncompressed inside bytes deflated as a whole, and gives
+        out the checkpoint it would have written when asked. ``data`` already
+        compressed, or of an older format, is returned as it is.
+        """
+        if data[:len(STATE_FORMAT)] != STATE_FORMAT or data[4:5] != b"\x00":
+            return data
+        return STATE_FORMAT + b"\x01" + zlib.compress(memoryview(data)[5:], 1)
+
     @classmethod
     def from_bytes(
         cls, network: RoadNetwork, settings: MatchSettings | None, data: bytes
