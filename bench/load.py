@@ -40,12 +40,7 @@ on this machine and loopback only:
   keeps every fix, so its CPU per fix is what a kept fix costs, through the broker,
   and w1's what a matched one costs in a group); for breaking the group's cost down,
   ``livematch-1r`` (one worker, Redis store, no group) and ``livematch-1g`` (a group of
-  one worker: it holds all shards, through Redis); and for telling a group worker's
-  costs from those of half a feed, ``livematch-1h`` (one worker, memory store, no group,
-  fed only the vehicles among the step's that w1 of a two-worker group matches: 240 of
-  500) and ``livematch-1p`` (two such lone workers side by side, w1 fed those vehicles
-  on a topic of its own, ``fleetb/+/position``, w0 the others: a pair of processes as
-  in a group, without the group);
+  one worker: it holds all shards, through Redis);
 - ``--generators`` **load generator** processes (paho-mqtt directly, QoS 1, up to 1,000
   publishes in flight each, every fix due in a 5 ms tick published as one batch), vehicle
   i in generator ``i % generators``, the N vehicles spread evenly over each second;
@@ -128,7 +123,6 @@ ROOT = Path(__file__).resolve().parent.parent
 NETWORK = ROOT / "replay_logs" / "larkmoor.geojson"
 IN_TOPIC = "fleet/+/position"
 SHARD_TOPIC = "fleet/{shard}/+/position"  # livematch-2s: the feed partitioned by shard
-SPLIT_TOPIC = "fleetb/+/position"  # livematch-1p: the second lone worker's half of the feed
 GROUP_SHARDS = 64  # livematch's default group.shards
 RELAY_IN_FLIGHT = 256  # the relay's QoS 1 publishes awaiting their PUBACK at once
 GEN_IN_FLIGHT = 1000  # each generator's QoS 1 publishes awaiting their PUBACK at once
@@ -813,17 +807,10 @@ def position(pool: Any, i: int, k: int) -> tuple[float, float]:
 
 
 # ------------------------------------------------------------------ the generator role
-def feed_topic(vehicle: str, shards: int, split: frozenset[int] = frozenset()) -> str:
+def feed_topic(vehicle: str, shards: int) -> str:
     """The input topic of a vehicle: ``fleet/<vehicle>/position``, or with ``shards`` > 0
-    ``fleet/<shard>/<vehicle>/position`` (livematch's ``{shard}`` topic level). With
-    ``split`` (and no ``shards``), a vehicle whose shard of ``GROUP_SHARDS`` is in it
-    sends on ``fleetb/<vehicle>/position`` (``SPLIT_TOPIC``, ``livematch-1p``)."""
+    ``fleet/<shard>/<vehicle>/position`` (livematch's ``{shard}`` topic level)."""
     if shards <= 0:
-        if split:
-            from livematch.service.shards import shard_of
-
-            if shard_of(vehicle, GROUP_SHARDS) in split:
-                return f"fleetb/{vehicle}/position"
         return f"fleet/{vehicle}/position"
     from livematch.service.shards import shard_of
 
@@ -831,16 +818,13 @@ def feed_topic(vehicle: str, shards: int, split: frozenset[int] = frozenset()) -
 
 
 def generate(port: int, pool_path: str, n: int, seconds: int, first: int, step: int,
-             shards: int, only_shards: str = "", among: bool = False,
-             split: bool = False) -> None:
+             shards: int, only_shards: str = "", among: bool = False) -> None:
     """Publish vehicles first, first + step, ... < n at 1 Hz; print what was achieved.
 
     With ``only_shards`` (comma-separated shard numbers) the n vehicles are the first n
     ids ``v<i>`` whose shard is one of those, instead of v0 ... v(n-1); with ``among``
     too, only those of v0 ... v(n-1) whose shard (of ``GROUP_SHARDS``) is one of them
     (``livematch-1h``: the vehicles w1 of a two-worker group matches, fed to one worker).
-    With ``split`` instead, v0 ... v(n-1) all, those of the ``only_shards`` on
-    ``SPLIT_TOPIC`` (``livematch-1p``).
 
     Protocol with the bench: prints ``ready`` once connected, reads ``go <epoch>`` (the
     start of second 0), publishes, waits for the acknowledgements and prints one JSON line.
@@ -849,10 +833,7 @@ def generate(port: int, pool_path: str, n: int, seconds: int, first: int, step: 
 
     pool = dict(np.load(pool_path))
     ids = list(range(n))
-    cut: frozenset[int] = frozenset()
-    if only_shards and split:
-        cut = frozenset(int(s) for s in only_shards.split(","))
-    elif only_shards:
+    if only_shards:
         from livematch.service.shards import shard_of
 
         wanted = {int(s) for s in only_shards.split(",")}
@@ -862,7 +843,7 @@ def generate(port: int, pool_path: str, n: int, seconds: int, first: int, step: 
             ids = [i for i in range(100 * n + 1000)
                    if shard_of(f"v{i}", shards) in wanted][:n]
     mine = ids[first::step]
-    topics = {i: feed_topic(f"v{i}", shards, cut) for i in mine}
+    topics = {i: feed_topic(f"v{i}", shards) for i in mine}
     slot = {i: j for j, i in enumerate(ids)}  # spread over each second by place, not id
     plan = [(k + slot[i] / len(ids), i, *position(pool, i, k)) for k in range(seconds)
             for i in mine]
@@ -1134,8 +1115,7 @@ class Subscriber:
         self.client.disconnect()
 
 
-def warm_up(sub: Subscriber, pool: Any, shards: int, timeout: float = 60.0,
-            split: frozenset[int] = frozenset()) -> float:
+def warm_up(sub: Subscriber, pool: Any, shards: int, timeout: float = 60.0) -> float:
     """Send probe fixes until every probe vehicle has had 3 outputs; seconds it took.
 
     Three, not one: a vehicle's first fix is answered without a sweep step, and the first
@@ -1149,7 +1129,7 @@ def warm_up(sub: Subscriber, pool: Any, shards: int, timeout: float = 60.0,
             raise RuntimeError(f"system not answering: {len(answered)}/{PROBES} probes")
         for p in range(PROBES):
             lon, lat = position(pool, POOL_DRIVES - 1 - p, k % 60)
-            sub.client.publish(feed_topic(f"probe{p}", shards, split), json.dumps(
+            sub.client.publish(feed_topic(f"probe{p}", shards), json.dumps(
                 {"vehicle": f"probe{p}", "time": round(time.time(), 3), "lat": lat,
                  "lon": lon, "accuracy": 5.0}), qos=1)
         k += 1
@@ -1200,12 +1180,6 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
     only = (",".join(str(s) for s in sorted(shards_held("w1", ["w0", "w1"], shards)))
             if system.startswith("livematch-2sk") else "")
     among = system == "livematch-1h"  # one worker fed only the vehicles w1 would match
-    # livematch-1p: two lone workers side by side (memory store, no group), w1 fed the
-    # vehicles w1 of a group would match (on SPLIT_TOPIC), w0 the others
-    split = (frozenset(shards_held("w1", ["w0", "w1"], GROUP_SHARDS))
-             if system == "livematch-1p" else frozenset())
-    if split:
-        only = ",".join(str(s) for s in sorted(split))
     vehicles = rate
     if among:
         held = shards_held("w1", ["w0", "w1"], GROUP_SHARDS)
@@ -1241,7 +1215,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                                          "--port", str(port)], env=env))
         else:
             out_topic = "livematch/match/#"
-            workers = 2 if system.startswith("livematch-2") or split else 1
+            workers = 2 if system.startswith("livematch-2") else 1
             store, group = "memory://", ""
             if workers == 2 or system in ("livematch-1r", "livematch-1g"):
                 redis, rport = start_redis(folder)
@@ -1251,9 +1225,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
             for w in range(workers):
                 metrics_ports.append(free_port())
                 cfg = daemon_config(folder, port, store, f"w{w}", group,
-                                    SHARD_TOPIC if shards else
-                                    SPLIT_TOPIC if split and w == 1 else IN_TOPIC,
-                                    metrics_ports[-1],
+                                    SHARD_TOPIC if shards else IN_TOPIC, metrics_ports[-1],
                                     standby_qos, system != "livematch-2s0"
                                     and not (system in ("livematch-2sm", "livematch-2smc")
                                              and w == 1),
@@ -1282,15 +1254,14 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         sub = Subscriber(port, out_topic)
         if metrics_ports:
             ready_s = wait_ready(metrics_ports, sut)
-        warm_s = warm_up(sub, pool, shards, split=split) if sut else 0.0
+        warm_s = warm_up(sub, pool, shards) if sut else 0.0
         for g in range(generators):
             gens.append(subprocess.Popen(
                 [sys.executable, __file__, "--role", "generator", "--port", str(port),
                  "--pool", str(pool_path), "--n", str(rate),
                  "--seconds", str(WARM_FEED_S + seconds),
                  "--first", str(g), "--step", str(generators), "--shards", str(shards),
-                 "--only-shards", only] + (["--among"] if among else [])
-                + (["--split"] if split else []),
+                 "--only-shards", only] + (["--among"] if among else []),
                 env=env, stdin=subprocess.PIPE, stdout=subprocess.PIPE))
         procs.extend(gens)
         for gen in gens:
@@ -1791,7 +1762,7 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
     out += _standby_cost_lines(r)
     pairs = [s for s in r["systems"] if s in ("livematch-2", "livematch-2s", "livematch-2s1",
                                                   "livematch-2s0", "livematch-2sc",
-                                                  "livematch-2scu", "livematch-1p")]
+                                                  "livematch-2scu")]
     if "livematch-1" not in r["systems"] or not pairs:
         return out
     for s in pairs:
@@ -2206,7 +2177,6 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--shards", type=int, default=0)
     ap.add_argument("--only-shards", default="")
     ap.add_argument("--among", action="store_true")
-    ap.add_argument("--split", action="store_true")
     ap.add_argument("--rates", default="250,500,1000,2000,4000,8000,16000",
                     help="offered fixes/s to step through (= vehicles at 1 Hz)")
     ap.add_argument("--seconds", type=int, default=10, help="length of each step")
@@ -2345,7 +2315,7 @@ def main(argv: list[str] | None = None) -> int:
         return 0
     if args.role == "generator":
         generate(args.port, args.pool, args.n, args.seconds, args.first, args.step,
-                 args.shards, args.only_shards, args.among, args.split)
+                 args.shards, args.only_shards, args.among)
         return 0
     if args.role == "relay":
         with contextlib.suppress(KeyboardInterrupt):
