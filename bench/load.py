@@ -1126,7 +1126,10 @@ def warm_up(sub: Subscriber, pool: Any, shards: int, timeout: float = 60.0) -> f
     k = 0
     while len(answered) < PROBES or min(answered.values()) < WARM_FIXES:
         if time.time() - started > timeout:
-            raise RuntimeError(f"system not answering: {len(answered)}/{PROBES} probes")
+            missing = [f"probe{p}" for p in range(PROBES)
+                       if answered.get(f"probe{p}", 0) < WARM_FIXES]
+            raise RuntimeError(f"system not answering: {len(answered)}/{PROBES} probes "
+                               f"(short of {WARM_FIXES} answers: {', '.join(missing)})")
         for p in range(PROBES):
             lon, lat = position(pool, POOL_DRIVES - 1 - p, k % 60)
             sub.client.publish(feed_topic(f"probe{p}", shards), json.dumps(
