@@ -40,7 +40,12 @@ on this machine and loopback only:
   keeps every fix, so its CPU per fix is what a kept fix costs, through the broker,
   and w1's what a matched one costs in a group); for breaking the group's cost down,
   ``livematch-1r`` (one worker, Redis store, no group) and ``livematch-1g`` (a group of
-  one worker: it holds all shards, through Redis);
+  one worker: it holds all shards, through Redis); ``livematch-1h`` (one worker, memory
+  store, no group, fed only the vehicles among the step's that w1 of a two-worker group
+  matches: 240 of 500, against which w1's costs in a group tell the group's own from
+  those of half a feed); ``livematch-1n`` (``livematch-1`` never under the probe: with
+  ``--cpu-per-fix`` livematch-1 runs under it, whose timers and 10 ms heartbeat cost
+  CPU the group's workers do not pay, unless ``--probe-groups``);
 - ``--generators`` **load generator** processes (paho-mqtt directly, QoS 1, up to 1,000
   publishes in flight each, every fix due in a 5 ms tick published as one batch), vehicle
   i in generator ``i % generators``, the N vehicles spread evenly over each second;
@@ -1766,14 +1771,14 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
     pairs = [s for s in r["systems"] if s in ("livematch-2", "livematch-2s", "livematch-2s1",
                                                   "livematch-2s0", "livematch-2sc",
                                                   "livematch-2scu")]
-    if "livematch-1" not in r["systems"] or not pairs:
-        return out
-    for s in pairs:
+    # livematch-1 runs under the probe (unless --no-probe); livematch-1n never does
+    ones = [s for s in ("livematch-1", "livematch-1n") if s in r["systems"]]
+    for single, s in [(o, s) for o in ones for s in pairs]:
         each = []
         each_run = []  # the same from schedstat run time (ns), not 10 ms clock ticks
         shares: list[str] = []
         for k in range(1, r["repeat"] + 1):
-            one = [row for row in rows if row["repeat"] == k and row["system"] == "livematch-1"]
+            one = [row for row in rows if row["repeat"] == k and row["system"] == single]
             two = [row for row in rows if row["repeat"] == k and row["system"] == s]
             if one and two and len(two[0].get("worker_ms_per_fix") or []) == 2:
                 w = two[0]["worker_ms_per_fix"]
@@ -1799,8 +1804,8 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
         if each:
             ratios = [c1 / max(w0, w1) for c1, w0, w1 in each]
             out.append(
-                f"{s}: CPU ms per fix of the whole feed, one worker vs each of the two, "
-                "per round: " + ", ".join(f"{c1:.3f} vs {w0:.3f} / {w1:.3f}"
+                f"{s}: CPU ms per fix of the whole feed, one worker ({single}) vs each of "
+                "the two, per round: " + ", ".join(f"{c1:.3f} vs {w0:.3f} / {w1:.3f}"
                                           for c1, w0, w1 in each)
                 + "; predicted throughput of two workers on two free cores, c1 / max(w0, "
                 f"w1): {', '.join(f'{x:.2f}' for x in ratios)} (median "
@@ -1810,7 +1815,8 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
         if each_run:
             ratios = [c1 / max(w0, w1) for c1, w0, w1 in each_run]
             out.append(
-                f"{s}, the same from the scheduler's run time of each process's threads "
+                f"{s} against {single}, the same from the scheduler's run time of each "
+                "process's threads "
                 "(ns, `/proc/PID/task/*/schedstat`; not quantized to 10 ms ticks): CPU ms "
                 "per fix, one worker vs each of the two, per round: "
                 + ", ".join(f"{c1:.4f} vs {w0:.4f} / {w1:.4f}" for c1, w0, w1 in each_run)
