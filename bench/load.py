@@ -45,7 +45,10 @@ on this machine and loopback only:
   matches: 240 of 500, against which w1's costs in a group tell the group's own from
   those of half a feed); ``livematch-1n`` (``livematch-1`` never under the probe: with
   ``--cpu-per-fix`` livematch-1 runs under it, whose timers and 10 ms heartbeat cost
-  CPU the group's workers do not pay, unless ``--probe-groups``);
+  CPU the group's workers do not pay, unless ``--probe-groups``); with ``--cpu-per-fix``
+  a system written ``SYSTEM*K`` runs at K times the rate (``livematch-2sc*2``: each
+  worker of the group matches as many fixes a second as one worker does at the rate, and
+  the two-worker ratio is then taken at equal work per worker, not equal offered load);
 - ``--generators`` **load generator** processes (paho-mqtt directly, QoS 1, up to 1,000
   publishes in flight each, every fix due in a 5 ms tick published as one batch), vehicle
   i in generator ``i % generators``, the N vehicles spread evenly over each second;
@@ -1550,9 +1553,13 @@ def cpu_per_fix(rate: int, seconds: int, repeat: int, generators: int, systems: 
                 probe_dir = Path(tempfile.mkdtemp(prefix="lm-cpu-"))
                 probed = probe and (system == "livematch-1" or (
                     probe_all and system.startswith("livematch")))
-                row = run_step(system, rate, seconds, generators, pool,
+                # SYSTEM*K: that system at K times the rate (a group of two at 2 x: each
+                # worker matches as many fixes a second as one worker at the rate)
+                base, _, times = system.partition("*")
+                row = run_step(base, rate * int(times or 1), seconds, generators, pool,
                                probe_to=probe_dir if probed else None,
                                count_publishes=system.startswith("livematch"))
+                row["system"] = system
                 row["repeat"] = k
                 # fixes whose output arrived while the CPU was counted (all of them when
                 # the system kept up; then the same for every system)
@@ -1768,9 +1775,9 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
                 + f"; medians {statistics.median(k for k, _ in each):.3f} / "
                 f"{statistics.median(m for _, m in each):.3f}.")
     out += _standby_cost_lines(r)
-    pairs = [s for s in r["systems"] if s in ("livematch-2", "livematch-2s", "livematch-2s1",
-                                                  "livematch-2s0", "livematch-2sc",
-                                                  "livematch-2scu")]
+    pairs = [s for s in r["systems"] if s.partition("*")[0] in (
+        "livematch-2", "livematch-2s", "livematch-2s1", "livematch-2s0", "livematch-2sc",
+        "livematch-2scu")]
     # livematch-1 runs under the probe (unless --no-probe); livematch-1n never does
     ones = [s for s in ("livematch-1", "livematch-1n") if s in r["systems"]]
     for single, s in [(o, s) for o in ones for s in pairs]:
