@@ -40,7 +40,15 @@ on this machine and loopback only:
   keeps every fix, so its CPU per fix is what a kept fix costs, through the broker,
   and w1's what a matched one costs in a group); for breaking the group's cost down,
   ``livematch-1r`` (one worker, Redis store, no group) and ``livematch-1g`` (a group of
-  one worker: it holds all shards, through Redis);
+  one worker: it holds all shards, through Redis); ``livematch-1h`` (one worker, memory
+  store, no group, fed only the vehicles among the step's that w1 of a two-worker group
+  matches: 240 of 500, against which w1's costs in a group tell the group's own from
+  those of half a feed); ``livematch-1n`` (``livematch-1`` never under the probe: with
+  ``--cpu-per-fix`` livematch-1 runs under it, whose timers and 10 ms heartbeat cost
+  CPU the group's workers do not pay, unless ``--probe-groups``); with ``--cpu-per-fix``
+  a system written ``SYSTEM*K`` runs at K times the rate (``livematch-2sc*2``: each
+  worker of the group matches as many fixes a second as one worker does at the rate, and
+  the two-worker ratio is then taken at equal work per worker, not equal offered load);
 - ``--generators`` **load generator** processes (paho-mqtt directly, QoS 1, up to 1,000
   publishes in flight each, every fix due in a 5 ms tick published as one batch), vehicle
   i in generator ``i % generators``, the N vehicles spread evenly over each second;
@@ -818,11 +826,13 @@ def feed_topic(vehicle: str, shards: int) -> str:
 
 
 def generate(port: int, pool_path: str, n: int, seconds: int, first: int, step: int,
-             shards: int, only_shards: str = "") -> None:
+             shards: int, only_shards: str = "", among: bool = False) -> None:
     """Publish vehicles first, first + step, ... < n at 1 Hz; print what was achieved.
 
     With ``only_shards`` (comma-separated shard numbers) the n vehicles are the first n
-    ids ``v<i>`` whose shard is one of those, instead of v0 ... v(n-1).
+    ids ``v<i>`` whose shard is one of those, instead of v0 ... v(n-1); with ``among``
+    too, only those of v0 ... v(n-1) whose shard (of ``GROUP_SHARDS``) is one of them
+    (``livematch-1h``: the vehicles w1 of a two-worker group matches, fed to one worker).
 
     Protocol with the bench: prints ``ready`` once connected, reads ``go <epoch>`` (the
     start of second 0), publishes, waits for the acknowledgements and prints one JSON line.
@@ -835,11 +845,15 @@ def generate(port: int, pool_path: str, n: int, seconds: int, first: int, step: 
         from livematch.service.shards import shard_of
 
         wanted = {int(s) for s in only_shards.split(",")}
-        ids = [i for i in range(100 * n + 1000) if shard_of(f"v{i}", shards) in wanted][:n]
+        if among:
+            ids = [i for i in ids if shard_of(f"v{i}", GROUP_SHARDS) in wanted]
+        else:
+            ids = [i for i in range(100 * n + 1000)
+                   if shard_of(f"v{i}", shards) in wanted][:n]
     mine = ids[first::step]
     topics = {i: feed_topic(f"v{i}", shards) for i in mine}
     slot = {i: j for j, i in enumerate(ids)}  # spread over each second by place, not id
-    plan = [(k + slot[i] / n, i, *position(pool, i, k)) for k in range(seconds)
+    plan = [(k + slot[i] / len(ids), i, *position(pool, i, k)) for k in range(seconds)
             for i in mine]
     acked = [0]
 
@@ -1120,7 +1134,10 @@ def warm_up(sub: Subscriber, pool: Any, shards: int, timeout: float = 60.0) -> f
     k = 0
     while len(answered) < PROBES or min(answered.values()) < WARM_FIXES:
         if time.time() - started > timeout:
-            raise RuntimeError(f"system not answering: {len(answered)}/{PROBES} probes")
+            missing = [f"probe{p}" for p in range(PROBES)
+                       if answered.get(f"probe{p}", 0) < WARM_FIXES]
+            raise RuntimeError(f"system not answering: {len(answered)}/{PROBES} probes "
+                               f"(short of {WARM_FIXES} answers: {', '.join(missing)})")
         for p in range(PROBES):
             lon, lat = position(pool, POOL_DRIVES - 1 - p, k % 60)
             sub.client.publish(feed_topic(f"probe{p}", shards), json.dumps(
@@ -1156,9 +1173,10 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
     With ``count_publishes`` (livematch only) the daemon's /metrics is opened and its
     publishes by kind during the step are reported (``published_by_kind``).
 
-    With ``probe_to`` (livematch-1 only) the daemon runs under :func:`probe` (and with
-    ``py_spy`` is sampled by py-spy while the step runs); the probe records, py-spy's
-    collapsed stacks and every fix's (fix time, latency) land in that folder.
+    With ``probe_to`` every livematch worker runs under :func:`probe` (worker k's records
+    in ``probe.w<k>.json``; with ``py_spy`` the first is sampled by py-spy while the step
+    runs); the probe records, py-spy's collapsed stacks and every fix's (fix time,
+    latency) land in that folder.
     """
     import numpy as np
 
@@ -1172,6 +1190,14 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
     standby_qos = 1 if system in ("livematch-2s1", "livematch-2sk1") else None
     only = (",".join(str(s) for s in sorted(shards_held("w1", ["w0", "w1"], shards)))
             if system.startswith("livematch-2sk") else "")
+    among = system == "livematch-1h"  # one worker fed only the vehicles w1 would match
+    vehicles = rate
+    if among:
+        held = shards_held("w1", ["w0", "w1"], GROUP_SHARDS)
+        only = ",".join(str(s) for s in sorted(held))
+        from livematch.service.shards import shard_of
+
+        vehicles = sum(1 for i in range(rate) if shard_of(f"v{i}", GROUP_SHARDS) in held)
     metrics_ports: list[int] = []  # every livematch worker's /metrics and /readyz
     ready_s = 0.0
     exit_codes: list[int | None] = []
@@ -1225,8 +1251,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                            "-m", "livematch.cli"]
                 if probe_to is not None:
                     cmd = [sys.executable, str(Path(__file__).resolve()), "--role", "probe",
-                           "--probe-out",
-                           str(probe_to / "probe.json")] + (["--nodelay"] if nodelay else []) \
+                           "--probe-out", str(probe_to / f"probe.w{w}.json")] \
+                        + (["--nodelay"] if nodelay else []) \
                         + (["--freeze"] if freeze else []) \
                         + (["--inflight", str(inflight)] if inflight else [])
                 # started in the step's folder: ``python -m`` puts the working directory
@@ -1246,7 +1272,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                  "--pool", str(pool_path), "--n", str(rate),
                  "--seconds", str(WARM_FEED_S + seconds),
                  "--first", str(g), "--step", str(generators), "--shards", str(shards),
-                 "--only-shards", only],
+                 "--only-shards", only] + (["--among"] if among else []),
                 env=env, stdin=subprocess.PIPE, stdout=subprocess.PIPE))
         procs.extend(gens)
         for gen in gens:
@@ -1296,7 +1322,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                 assert gen.stdin is not None
                 gen.stdin.write(f"go {t0}\n".encode())
                 gen.stdin.flush()
-        expected = rate * seconds
+        expected = vehicles * seconds
         deadline = t0 + seconds + GRACE_S
         while time.time() < deadline and len(sub.got) < expected:
             time.sleep(0.05)
@@ -1364,7 +1390,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         values.sort()
     published = sum(r["published"] for r in reports)
     gen_span = max(r["last_at"] for r in reports) - t0
-    gen_ok = (published >= 0.99 * rate * (WARM_FEED_S + seconds)
+    gen_ok = (published >= 0.99 * vehicles * (WARM_FEED_S + seconds)
               and gen_span <= seconds + 1.0)
     share = len(lat_all) / expected if expected else 0.0
     p50_first, p50_last = percentile(lat_first, 0.5), percentile(lat_last, 0.5)
@@ -1375,7 +1401,7 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
     broker_pid, sut_pids = procs[0].pid, {p.pid for p in sut}
     gen_pids = {p.pid for p in gens}
     return {
-        "system": system, "offered_per_s": rate, "seconds": seconds,
+        "system": system, "offered_per_s": vehicles, "seconds": seconds,
         "generators": generators, "loadavg_1m": loadavg, "cpu_pressure_10s": pressure,
         "cpu_pressure_10s_after": cpu_pressure(), "start_s": round(ready_s, 1),
         "warm_up_s": round(warm_s, 1), "warm_feed_s": WARM_FEED_S,
@@ -1478,15 +1504,44 @@ def ceiling(system: str, rates: list[int], refine: int, seconds: int, generators
 
 
 # ------------------------------------------------------------ the CPU-per-fix mode
+def handle_stats(rec: dict[str, Any], a: float, b: float) -> dict[str, Any]:
+    """One probed worker's ``Pipeline.handle`` calls that ended within [a, b].
+
+    ``calls``; ``ms``: their summed thread CPU; ``mean`` / ``median`` µs per call; and the
+    same split by the time since the worker's previous ``handle`` call ended (``soon``:
+    within ``GAP_S``, the tracker's code and data likely still in the caches;
+    ``after_gap``: later), each ``[calls, mean µs, median µs]``. A worker that matches
+    fewer fixes a second, or reads others' fixes between its own, has more calls after
+    a gap: comparing the two classes across systems tells a dearer call from a colder one.
+    """
+    rows = sorted((r[0] - r[1] / 1000, r[0], r[2]) for r in rec["handle"] if a <= r[0] <= b)
+    calls = [r[2] * 1000 for r in rows]
+    soon: list[float] = []
+    late: list[float] = []
+    for (_s0, end0, _c0), (start, _e, cpu) in itertools.pairwise(rows):
+        (soon if start - end0 < GAP_S else late).append(cpu * 1000)
+
+    def three(v: list[float]) -> list[Any]:
+        return [len(v), round(statistics.fmean(v), 1) if v else None,
+                round(statistics.median(v), 1) if v else None]
+
+    return {"calls": len(calls), "ms": round(sum(calls) / 1000, 2),
+            "mean": three(calls)[1], "median": three(calls)[2],
+            "soon": three(soon), "after_gap": three(late)}
+
+
 def cpu_per_fix(rate: int, seconds: int, repeat: int, generators: int, systems: list[str],
-                out: Path, name: str, note: str = "", probe: bool = True) -> dict[str, Any]:
+                out: Path, name: str, note: str = "", probe: bool = True,
+                probe_all: bool = False) -> dict[str, Any]:
     """CPU time per fix of each process, the systems in turn at one fixed rate.
 
     Robust to a shared machine in a way the ceiling search is not: each system handles
     the same fixes (``rate`` x ``seconds``) at the same offered rate, and CPU seconds
     (user + system, /proc/<pid>/stat) count only work done, not time spent waiting for a
     core that someone else holds. The systems alternate, ``repeat`` rounds, so a change
-    in the machine's load hits both alike; the ratio is taken within each round.
+    in the machine's load hits both alike; the ratio is taken within each round. With
+    ``probe_all`` every livematch worker runs under the probe, not only livematch-1's,
+    and each worker's ``Pipeline.handle`` calls are reported (:func:`handle_stats`).
     """
     started = time.strftime("%Y-%m-%d %H:%M", time.gmtime())
     rows: list[dict[str, Any]] = []
@@ -1496,17 +1551,27 @@ def cpu_per_fix(rate: int, seconds: int, repeat: int, generators: int, systems: 
         for k in range(1, repeat + 1):
             for system in systems:
                 probe_dir = Path(tempfile.mkdtemp(prefix="lm-cpu-"))
-                probed = probe and system == "livematch-1"
-                row = run_step(system, rate, seconds, generators, pool,
+                probed = probe and (system == "livematch-1" or (
+                    probe_all and system.startswith("livematch")))
+                # SYSTEM*K: that system at K times the rate (a group of two at 2 x: each
+                # worker matches as many fixes a second as one worker at the rate)
+                base, _, times = system.partition("*")
+                row = run_step(base, rate * int(times or 1), seconds, generators, pool,
                                probe_to=probe_dir if probed else None,
                                count_publishes=system.startswith("livematch"))
+                row["system"] = system
                 row["repeat"] = k
                 # fixes whose output arrived while the CPU was counted (all of them when
                 # the system kept up; then the same for every system)
                 fixes = max(1, row["delivered"])
                 row["pipeline_ms_per_fix"] = None
                 if probed:
-                    rec = json.loads((probe_dir / "probe.json").read_text(encoding="utf-8"))
+                    recs = [json.loads(f.read_text(encoding="utf-8"))
+                            for f in sorted(probe_dir.glob("probe.w*.json"))]
+                    row["worker_handle"] = [handle_stats(r, *row["cpu_window"])
+                                            for r in recs]
+                if probed and system == "livematch-1":
+                    rec = recs[0]
                     a, b = row["cpu_window"]
                     row["pipeline_ms_per_fix"] = {
                         name: round(sum(r[2] for r in rec[name] if a <= r[0] <= b)
@@ -1663,6 +1728,7 @@ def render_cpu(r: dict[str, Any]) -> str:
                     f"median {gaps['soon'][2]} µs; later {gaps['after_gap'][0]:,} calls, "
                     f"mean {gaps['after_gap'][1]} / median {gaps['after_gap'][2]} µs.")
     lines += _two_worker_lines(r)
+    lines += _handle_lines(r)
     if "relay" in systems:
         for s in systems:
             if s == "relay":
@@ -1709,20 +1775,25 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
                 + f"; medians {statistics.median(k for k, _ in each):.3f} / "
                 f"{statistics.median(m for _, m in each):.3f}.")
     out += _standby_cost_lines(r)
-    pairs = [s for s in r["systems"] if s in ("livematch-2", "livematch-2s", "livematch-2s1",
-                                                  "livematch-2s0", "livematch-2sc",
-                                                  "livematch-2scu")]
-    if "livematch-1" not in r["systems"] or not pairs:
-        return out
-    for s in pairs:
+    pairs = [s for s in r["systems"] if s.partition("*")[0] in (
+        "livematch-2", "livematch-2s", "livematch-2s1", "livematch-2s0", "livematch-2sc",
+        "livematch-2scu")]
+    # livematch-1 runs under the probe (unless --no-probe); livematch-1n never does
+    ones = [s for s in ("livematch-1", "livematch-1n") if s in r["systems"]]
+    for single, s in [(o, s) for o in ones for s in pairs]:
         each = []
+        each_run = []  # the same from schedstat run time (ns), not 10 ms clock ticks
         shares: list[str] = []
         for k in range(1, r["repeat"] + 1):
-            one = [row for row in rows if row["repeat"] == k and row["system"] == "livematch-1"]
+            one = [row for row in rows if row["repeat"] == k and row["system"] == single]
             two = [row for row in rows if row["repeat"] == k and row["system"] == s]
             if one and two and len(two[0].get("worker_ms_per_fix") or []) == 2:
                 w = two[0]["worker_ms_per_fix"]
                 each.append((one[0]["ms_per_fix"]["system"], w[0], w[1]))
+                run1 = one[0].get("worker_run_ms_per_fix") or []
+                run2 = two[0].get("worker_run_ms_per_fix") or []
+                if run1 and len(run2) == 2 and min(run2) > 0:
+                    each_run.append((sum(run1), run2[0], run2[1]))
                 held = two[0].get("worker_shards_held")
                 got = two[0].get("worker_received")
                 if held and got and None not in held:
@@ -1740,15 +1811,52 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
         if each:
             ratios = [c1 / max(w0, w1) for c1, w0, w1 in each]
             out.append(
-                f"{s}: CPU ms per fix of the whole feed, one worker vs each of the two, "
-                "per round: " + ", ".join(f"{c1:.3f} vs {w0:.3f} / {w1:.3f}"
+                f"{s}: CPU ms per fix of the whole feed, one worker ({single}) vs each of "
+                "the two, per round: " + ", ".join(f"{c1:.3f} vs {w0:.3f} / {w1:.3f}"
                                           for c1, w0, w1 in each)
                 + "; predicted throughput of two workers on two free cores, c1 / max(w0, "
                 f"w1): {', '.join(f'{x:.2f}' for x in ratios)} (median "
                 f"{statistics.median(ratios):.2f}) times one worker's (goal >= 1.6)."
                 + (" Held at the end of the step, received and matched during it, w0 / w1, per "
                    "round: " + "; ".join(shares) + "." if shares else ""))
+        if each_run:
+            ratios = [c1 / max(w0, w1) for c1, w0, w1 in each_run]
+            out.append(
+                f"{s} against {single}, the same from the scheduler's run time of each "
+                "process's threads "
+                "(ns, `/proc/PID/task/*/schedstat`; not quantized to 10 ms ticks): CPU ms "
+                "per fix, one worker vs each of the two, per round: "
+                + ", ".join(f"{c1:.4f} vs {w0:.4f} / {w1:.4f}" for c1, w0, w1 in each_run)
+                + f"; c1 / max(w0, w1): {', '.join(f'{x:.3f}' for x in ratios)} (median "
+                f"{statistics.median(ratios):.3f}).")
     return out
+
+
+def _handle_lines(r: dict[str, Any]) -> list[str]:
+    """Each probed worker's ``Pipeline.handle`` calls (``--probe-groups``), per step.
+
+    µs of thread CPU per call, all calls and split by the gap since that worker's
+    previous call (``handle_stats``), and ``handle`` CPU per fix the worker matched.
+    """
+    out = []
+    for row in r["steps"]:
+        for k, h in enumerate(row.get("worker_handle") or []):
+            if not h["calls"]:
+                continue
+            soon, late = h["soon"], h["after_gap"]
+            out.append(
+                f"| {row['repeat']} | {row['system']} | w{k} | {row['loadavg_1m']} | "
+                f"{h['calls']:,} | {h['ms'] / h['calls'] * 1000:.1f} / {fmt(h['median'])} | "
+                f"{soon[0] / max(1, soon[0] + late[0]):.1%} | {fmt(soon[1])} / "
+                f"{fmt(soon[2])} | {fmt(late[1])} / {fmt(late[2])} |")
+    if not out:
+        return []
+    return ["", "`Pipeline.handle` in every probed worker (`--probe-groups`): thread CPU "
+            f"per call; *soon*: within {GAP_S * 1000:g} ms of the worker's previous call's "
+            "end; *after a gap*: later.", "",
+            "| round | system | worker | load avg | calls | µs per call mean / median | "
+            "soon | soon: mean / median µs | after a gap: mean / median µs |",
+            "|---:|---|---|---:|---:|---:|---:|---:|---:|", *out, ""]
 
 
 def _standby_cost_lines(r: dict[str, Any]) -> list[str]:
@@ -1850,7 +1958,7 @@ def profile(rate: int, seconds: int, generators: int, nodelay: bool, freeze: boo
         make_pool(pool)
         row = run_step("livematch-1", rate, seconds, generators, pool, probe_to=folder,
                        nodelay=nodelay, freeze=freeze, inflight=inflight, py_spy=py_spy)
-        rec = json.loads((folder / "probe.json").read_text(encoding="utf-8"))
+        rec = json.loads((folder / "probe.w0.json").read_text(encoding="utf-8"))
         fixes = json.loads((folder / "fixes.json").read_text(encoding="utf-8"))
         stacks = (_stack_table(folder / "py-spy.txt", 25)
                   if (folder / "py-spy.txt").exists() else None)
@@ -2084,6 +2192,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--step", type=int, default=1)
     ap.add_argument("--shards", type=int, default=0)
     ap.add_argument("--only-shards", default="")
+    ap.add_argument("--among", action="store_true")
     ap.add_argument("--rates", default="250,500,1000,2000,4000,8000,16000",
                     help="offered fixes/s to step through (= vehicles at 1 Hz)")
     ap.add_argument("--seconds", type=int, default=10, help="length of each step")
@@ -2126,6 +2235,10 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--no-probe", action="store_true",
                     help="with --cpu-per-fix: run livematch-1 without the probe (its "
                          "timers cost CPU the other systems do not pay; no pipeline split)")
+    ap.add_argument("--probe-groups", action="store_true",
+                    help="with --cpu-per-fix: every livematch worker under the probe, not "
+                         "only livematch-1's; each worker's Pipeline.handle calls reported "
+                         "(CPU per call, split by the gap since the previous call)")
     ap.add_argument("--name", default="",
                     help="with --cpu-per-fix: result file stem (default load.cpu-RATE)")
     ap.add_argument("--note", default="",
@@ -2214,11 +2327,11 @@ def main(argv: list[str] | None = None) -> int:
                    else ["relay", "livematch-1"])
         cpu_per_fix(args.cpu_per_fix, args.seconds, args.repeat, args.generators, systems,
                     out, args.name or f"load.cpu-{args.cpu_per_fix}", args.note,
-                    probe=not args.no_probe)
+                    probe=not args.no_probe, probe_all=args.probe_groups)
         return 0
     if args.role == "generator":
         generate(args.port, args.pool, args.n, args.seconds, args.first, args.step,
-                 args.shards, args.only_shards)
+                 args.shards, args.only_shards, args.among)
         return 0
     if args.role == "relay":
         with contextlib.suppress(KeyboardInterrupt):
