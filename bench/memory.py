@@ -502,6 +502,15 @@ def fleet_positions(network: Any, runs: list[Any]) -> list[tuple[list[float], li
     return lonlat
 
 
+def fleet_message(name: str, lonlat: list[tuple[list[float], list[float]]], runs: list[Any],
+                  d: int, j: int, t: float) -> tuple[str, bytes]:
+    """Topic and payload of vehicle ``name``'s fix at time ``t``: pool drive ``d``'s fix ``j``
+    (its WGS84 position from :func:`fleet_positions` and its reported accuracy)."""
+    payload = json.dumps({"vehicle": name, "time": t, "lat": lonlat[d][1][j],
+                          "lon": lonlat[d][0][j], "accuracy": runs[d][j].accuracy}).encode()
+    return f"fleet/{name}/position", payload
+
+
 def drive_fleet(pipe: Any, runs: list[Any], lonlat: list[tuple[list[float], list[float]]],
                 vehicles: int, seconds: int, trim: Any = None, trim_every: int = 0,
                 trims: list[float] | None = None) -> int:
@@ -519,11 +528,8 @@ def drive_fleet(pipe: Any, runs: list[Any], lonlat: list[tuple[list[float], list
         for i in range(vehicles):
             d = i % count
             j = starts[i] + k
-            f = runs[d][j]
             t = 1.7e9 + k + i / vehicles
-            payload = json.dumps({"vehicle": f"v{i}", "time": t, "lat": lonlat[d][1][j],
-                                  "lon": lonlat[d][0][j], "accuracy": f.accuracy}).encode()
-            outputs += len(pipe.handle(f"fleet/v{i}/position", payload, t + 0.2))
+            outputs += len(pipe.handle(*fleet_message(f"v{i}", lonlat, runs, d, j, t), t + 0.2))
         if trim is not None and trim_every > 0 and (k + 1) % trim_every == 0:
             t0 = time.perf_counter()
             trim()
@@ -807,11 +813,7 @@ def park_run(vehicles: int, seconds: int, interval: int, park_after: float,
         for k in range(fixes):
             for d in range(count):
                 t = 1.7e9 + k * interval + interval * d / count
-                payload = json.dumps({"vehicle": f"w{d}", "time": t,
-                                      "lat": lonlat[d][1][k * interval],
-                                      "lon": lonlat[d][0][k * interval],
-                                      "accuracy": runs[d][k * interval].accuracy}).encode()
-                pipe.handle(f"fleet/w{d}/position", payload, t + 0.3)
+                pipe.handle(*fleet_message(f"w{d}", lonlat, runs, d, k * interval, t), t + 0.3)
                 pipe.tick(t + 0.3)
                 pipe.park_idle(t + 0.3)
         del pipe
@@ -828,11 +830,9 @@ def park_run(vehicles: int, seconds: int, interval: int, park_after: float,
             j = i // count % interval + k * interval
             t = 1.7e9 + k * interval + interval * i / vehicles
             at = t + 0.3
-            payload = json.dumps({"vehicle": f"v{i}", "time": t, "lat": lonlat[d][1][j],
-                                  "lon": lonlat[d][0][j],
-                                  "accuracy": runs[d][j].accuracy}).encode()
+            topic, payload = fleet_message(f"v{i}", lonlat, runs, d, j, t)
             p0 = time.perf_counter()
-            outputs += len(pipe.handle(f"fleet/v{i}/position", payload, at))
+            outputs += len(pipe.handle(topic, payload, at))
             outputs += len(pipe.tick(at))
             p1 = time.perf_counter()
             pipe.park_idle(at)

@@ -46,7 +46,7 @@ from typing import Any
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from memory import bench_settings, drives, fleet_positions, load_average, warm
+from memory import bench_settings, drives, fleet_message, fleet_positions, load_average, warm
 
 
 def fleet_blobs(vehicles: int, seconds: int, interval: int, park_after: float,
@@ -67,10 +67,7 @@ def fleet_blobs(vehicles: int, seconds: int, interval: int, park_after: float,
             j = i // count % interval + k * interval
             t = 1.7e9 + k * interval + interval * i / vehicles
             at = t + 0.3
-            payload = json.dumps({"vehicle": f"v{i}", "time": t, "lat": lonlat[d][1][j],
-                                  "lon": lonlat[d][0][j],
-                                  "accuracy": runs[d][j].accuracy}).encode()
-            pipe.handle(f"fleet/v{i}/position", payload, at)
+            pipe.handle(*fleet_message(f"v{i}", lonlat, runs, d, j, t), at)
             pipe.tick(at)
             pipe.park_idle(at)
     held = [len(p.blob) for p in pipe._parked.values()]
