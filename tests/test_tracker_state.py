@@ -32,6 +32,17 @@ def _test_extract_drive(every: int) -> tuple[RoadNetwork, list[Fix]]:
     return net, [Fix(d.vehicle, o.t, 0.0, 0.0, o.x, o.y, o.accuracy) for o in observe(d, every)]
 
 
+def _stored_state(name: str, every: int, magic: str
+                  ) -> tuple[RoadNetwork, list[Fix], bytes, MatchSettings]:
+    """A state kept in tests/data/states (its drive, its bytes, checked to start with
+    ``magic``, and the settings it was written with, from ``<magic>-settings.json``)."""
+    net, fixes = _test_extract_drive(every)
+    blob = (STATES / name).read_bytes()
+    assert blob[:4] == magic.encode()
+    then = json.loads((STATES / f"{magic.lower()}-settings.json").read_text(encoding="utf-8"))
+    return net, fixes, blob, MatchSettings(**{**then, "eps_levels": tuple(then["eps_levels"])})
+
+
 def test_state_compressed_is_smaller_and_same_content() -> None:
     """The zlib form holds the same state as the plain one, in fewer bytes."""
     net, fixes = noisy_drive(seed=5)
@@ -79,11 +90,7 @@ def test_state_reads_older_lmt4(name: str, every: int, cut: int) -> None:
     to repeat) after ``cut`` fixes of the simulated drive; the 10 s one holds the spike
     test's copy of the levels.
     """
-    net, fixes = _test_extract_drive(every)
-    blob = (STATES / name).read_bytes()
-    assert blob[:4] == b"LMT4"
-    then = json.loads((STATES / "lmt4-settings.json").read_text(encoding="utf-8"))
-    settings = MatchSettings(**{**then, "eps_levels": tuple(then["eps_levels"])})
+    net, fixes, blob, settings = _stored_state(name, every, "LMT4")
     straight = Tracker(net, "bus-7", settings)
     run(straight, fixes[:cut], flush=False)
     restored = Tracker.from_bytes(net, settings, blob)
@@ -113,11 +120,7 @@ def test_state_reads_older_lmt5(name: str, every: int, cut: int) -> None:
     settings, kept in lmt5-settings.json) after ``cut`` fixes of the simulated drive;
     the 10 s one holds the spike test's copy of the levels.
     """
-    net, fixes = _test_extract_drive(every)
-    blob = (STATES / name).read_bytes()
-    assert blob[:4] == b"LMT5"
-    then = json.loads((STATES / "lmt5-settings.json").read_text(encoding="utf-8"))
-    settings = MatchSettings(**{**then, "eps_levels": tuple(then["eps_levels"])})
+    net, fixes, blob, settings = _stored_state(name, every, "LMT5")
     straight = Tracker(net, "bus-7", settings)
     run(straight, fixes[:cut], flush=False)
     restored = Tracker.from_bytes(net, settings, blob)
@@ -143,11 +146,7 @@ def test_state_lmt6_bytes_as_before_rows_kept_their_fix(name: str, every: int,
     ``seg, parent, via_end`` and each fix's first row, writes the same bytes after the
     same fixes, reads them back into the same trees, and goes on as a run never saved.
     """
-    net, fixes = _test_extract_drive(every)
-    blob = (STATES / name).read_bytes()
-    assert blob[:4] == b"LMT6"
-    then = json.loads((STATES / "lmt6-settings.json").read_text(encoding="utf-8"))
-    settings = MatchSettings(**{**then, "eps_levels": tuple(then["eps_levels"])})
+    net, fixes, blob, settings = _stored_state(name, every, "LMT6")
     straight = Tracker(net, "bus-7", settings)
     run(straight, fixes[:cut], flush=False)
     assert straight.to_bytes() == blob
