@@ -49,6 +49,9 @@ on this machine and loopback only:
   a system written ``SYSTEM*K`` runs at K times the rate (``livematch-2sc*2``: each
   worker of the group matches as many fixes a second as one worker does at the rate, and
   the two-worker ratio is then taken at equal work per worker, not equal offered load);
+  and ``SYSTEM@G`` (also ``SYSTEM*K@G``) runs every worker of a livematch system with
+  ``mqtt.gather_s`` = G milliseconds (``livematch-1n@5,livematch-2sc@5``: the two-worker
+  ratio is then taken against the single worker with the same G);
 - ``--generators`` **load generator** processes (paho-mqtt directly, QoS 1, up to 1,000
   publishes in flight each, every fix due in a 5 ms tick published as one batch), vehicle
   i in generator ``i % generators``, the N vehicles spread evenly over each second;
@@ -1061,7 +1064,7 @@ def daemon_config(folder: Path, port: int, store: str, worker: str, group: str,
                   topic: str = IN_TOPIC, metrics_port: int = 0,
                   standby_qos: int | None = None, standby: bool = True,
                   standby_connection: bool = False,
-                  balance_load: float | None = None) -> Path:
+                  balance_load: float | None = None, gather_s: float = 0.0) -> Path:
     """A daemon configuration; ``metrics_port`` > 0 opens its /metrics on that port.
 
     ``standby_qos`` sets ``group.standby_qos`` (None: livematch's default);
@@ -1069,6 +1072,7 @@ def daemon_config(folder: Path, port: int, store: str, worker: str, group: str,
     ``group.standby_connection`` is written as given (livematch's default is true from
     session 22 on; the systems without ``c`` in their name keep one connection).
     ``balance_load`` sets ``group.balance_load`` (None: livematch's default).
+    ``gather_s`` above 0 sets ``mqtt.gather_s`` (0: livematch's default, off).
     """
     cfg = folder / f"{worker}.toml"
     listen = f"127.0.0.1:{metrics_port}" if metrics_port else ""
@@ -1081,6 +1085,7 @@ def daemon_config(folder: Path, port: int, store: str, worker: str, group: str,
         group_lines += f"standby_connection = {'true' if standby_connection else 'false'}\n"
     if group and balance_load is not None:
         group_lines += f"balance_load = {balance_load}\n"
+    gather_line = f"gather_s = {gather_s!r}\n" if gather_s > 0 else ""
     cfg.write_text(f"""
 [inputs]
 network = "{NETWORK}"
@@ -1090,7 +1095,7 @@ url = "mqtt://127.0.0.1:{port}"
 topic = "{topic}"
 client_id = "load-{worker}"
 control_topic = ""
-
+{gather_line}
 [store]
 url = "{store}"
 key_prefix = "load:"
@@ -1166,8 +1171,8 @@ def _measured(got: list[tuple[float, bytes]], t0: float) -> int:
 
 def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: Path,
              probe_to: Path | None = None, nodelay: bool = False, freeze: bool = False,
-             inflight: int = 0, py_spy: bool = False, count_publishes: bool = False
-             ) -> dict[str, Any]:
+             inflight: int = 0, py_spy: bool = False, count_publishes: bool = False,
+             gather_s: float = 0.0) -> dict[str, Any]:
     """One step: ``rate`` vehicles at 1 Hz for ``seconds`` through ``system``.
 
     With ``count_publishes`` (livematch only) the daemon's /metrics is opened and its
@@ -1176,7 +1181,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
     With ``probe_to`` every livematch worker runs under :func:`probe` (worker k's records
     in ``probe.w<k>.json``; with ``py_spy`` the first is sampled by py-spy while the step
     runs); the probe records, py-spy's collapsed stacks and every fix's (fix time,
-    latency) land in that folder.
+    latency) land in that folder. ``gather_s`` sets every livematch worker's
+    ``mqtt.gather_s``.
     """
     import numpy as np
 
@@ -1242,7 +1248,8 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                                              and w == 1),
                                     system in ("livematch-2sc", "livematch-2smc",
                                                "livematch-2scu"),
-                                    0.0 if system == "livematch-2scu" else None)
+                                    0.0 if system == "livematch-2scu" else None,
+                                    gather_s)
                 cmd = [sys.executable, "-m", "livematch.cli"]
                 if CPROFILE_TO is not None:  # --cprofile: each worker's profile at its exit
                     cmd = [sys.executable, "-m", "cProfile", "-o",
@@ -1555,10 +1562,13 @@ def cpu_per_fix(rate: int, seconds: int, repeat: int, generators: int, systems: 
                     probe_all and system.startswith("livematch")))
                 # SYSTEM*K: that system at K times the rate (a group of two at 2 x: each
                 # worker matches as many fixes a second as one worker at the rate)
-                base, _, times = system.partition("*")
+                # SYSTEM@G: every worker with mqtt.gather_s = G ms
+                named, _, gather_ms = system.partition("@")
+                base, _, times = named.partition("*")
                 row = run_step(base, rate * int(times or 1), seconds, generators, pool,
                                probe_to=probe_dir if probed else None,
-                               count_publishes=system.startswith("livematch"))
+                               count_publishes=system.startswith("livematch"),
+                               gather_s=float(gather_ms or 0) / 1000)
                 row["system"] = system
                 row["repeat"] = k
                 # fixes whose output arrived while the CPU was counted (all of them when
@@ -1775,12 +1785,14 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
                 + f"; medians {statistics.median(k for k, _ in each):.3f} / "
                 f"{statistics.median(m for _, m in each):.3f}.")
     out += _standby_cost_lines(r)
-    pairs = [s for s in r["systems"] if s.partition("*")[0] in (
+    pairs = [s for s in r["systems"] if s.partition("@")[0].partition("*")[0] in (
         "livematch-2", "livematch-2s", "livematch-2s1", "livematch-2s0", "livematch-2sc",
         "livematch-2scu")]
-    # livematch-1 runs under the probe (unless --no-probe); livematch-1n never does
-    ones = [s for s in ("livematch-1", "livematch-1n") if s in r["systems"]]
-    for single, s in [(o, s) for o in ones for s in pairs]:
+    # livematch-1 runs under the probe (unless --no-probe); livematch-1n never does;
+    # SYSTEM@G is compared with the single worker of the same G only (like for like)
+    ones = [s for s in r["systems"] if s.partition("@")[0] in ("livematch-1", "livematch-1n")]
+    for single, s in [(o, s) for o in ones for s in pairs
+                      if o.partition("@")[2] == s.partition("@")[2]]:
         each = []
         each_run = []  # the same from schedstat run time (ns), not 10 ms clock ticks
         shares: list[str] = []

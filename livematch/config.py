@@ -56,6 +56,8 @@ REDIS_PASSWORD_ENV = "LIVEMATCH_REDIS_PASSWORD"
 # pattern, so "all vehicles under the prefix" is an exact query.
 _PREFIX_RE = re.compile(r"^[A-Za-z0-9:_.{}\-]*$")
 _GROUP_NAME_RE = re.compile(r"^[A-Za-z0-9._\-]{0,64}$")
+# Longest mqtt.gather_s: every matched fix may wait this long on top of its matching.
+_GATHER_MAX_S = 0.1
 _LEVELS = ("debug", "info", "warning", "error")
 # Keys holding file paths: relative ones in a file are relative to that file's folder.
 _PATH_KEYS = {("inputs", "network"), ("inputs", "routes"), ("inputs", "fences"),
@@ -95,6 +97,10 @@ class MqttConfig:
     ``intake_max`` bounds the messages received and waiting to be matched; beyond it the
     oldest waiting message of a vehicle with a newer one waiting is shed
     (:class:`livematch.service.mqtt.IntakeQueue`).
+    ``gather_s`` (0 = off): once a message wakes a worker that was waiting for one, it
+    leaves the broker's socket unwatched for this long before reading what has come,
+    then matches all of it back to back: fewer wake-ups and warmer caches per fix, at
+    up to ``gather_s`` more latency (``docs/measured.md`` "Session 28 (two28)").
     """
 
     url: str = "mqtt://127.0.0.1:1883"
@@ -115,12 +121,16 @@ class MqttConfig:
     reconnect_min_s: float = 0.5
     reconnect_max_s: float = 30.0
     intake_max: int = 10_000
+    gather_s: float = 0.0
 
     def problems(self) -> list[tuple[str, str]]:
         """Every invalid value as (key, expectation with the value found)."""
         out: list[tuple[str, str]] = []
         if self.intake_max < 1:
             out.append(("intake_max", f"must be >= 1, got {self.intake_max}"))
+        if not (math.isfinite(self.gather_s) and 0.0 <= self.gather_s <= _GATHER_MAX_S):
+            out.append(("gather_s", f"must be 0..{_GATHER_MAX_S:g} seconds (0: off), "
+                                    f"got {self.gather_s}"))
         parts = urlsplit(self.url)
         if parts.scheme not in ("mqtt", "mqtts") or not parts.hostname:
             out.append(("url", f"must be mqtt://HOST[:PORT] or mqtts://HOST[:PORT], "

@@ -845,3 +845,60 @@ async def test_daemon_disconnect_error_is_retrieved_when_nobody_waits(
             own_mosquitto.start()
     finally:
         loop.set_exception_handler(None)
+
+
+class _Timed:
+    """A Pipeline wrapped to record when each ``handle`` call starts (monotonic seconds)."""
+
+    def __init__(self, inner: Pipeline) -> None:
+        self.inner = inner
+        self.starts: list[tuple[float, str]] = []
+
+    def handle(self, topic: str, payload: bytes, at: float) -> list[Any]:
+        self.starts.append((time.monotonic(), topic))
+        return self.inner.handle(topic, payload, at)
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self.inner, name)
+
+
+async def test_daemon_gathering_keeps_outputs_and_matches_back_to_back(
+        mosquitto: Mosquitto, prefix: str, tmp_path: Path) -> None:
+    """``mqtt.gather_s``: the same records out as the Pipeline run directly; three fixes
+    sent 40 ms apart to an idle daemon are matched together no sooner than ``gather_s``
+    after the first was sent (the socket is read once the time has passed), not as each
+    arrives (without the setting their calls lie about 80 ms apart)."""
+    gather_s = 0.1
+    cfg = write_config(tmp_path, prefix, broker=mosquitto.url)
+    config = load_config(cfg, env={"LIVEMATCH__MQTT__GATHER_S": str(gather_s)})
+    assert config.mqtt.gather_s == gather_s
+    feeds = [drive(f"bus-{k}", 12, start_x=200.0 + 700 * k) for k in range(3)]
+    messages = [(f"{prefix}/fleet/bus-{k}/position", feeds[k][i][1])
+                for i in range(12) for k in range(3)]
+    expected = direct(messages, cfg)
+    timed = _Timed(Pipeline(town(), config.matcher, limits=config.feed,
+                            alerts=config.alerts, control_topic=config.mqtt.control_topic))
+    daemon = Daemon(config, timed)
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col, \
+            running(daemon):
+        async with publisher(mosquitto.port) as pub:
+            for topic, payload in messages[:-3]:  # warm: every vehicle matched once
+                await pub.publish(topic, payload, qos=1)
+            await col.wait_for("/out/match/", len(messages) - 3)
+            await asyncio.sleep(0.3)  # idle: the receive loop waits for a message
+            sent = time.monotonic()
+            for topic, payload in messages[-3:]:
+                await pub.publish(topic, payload, qos=1)
+                await asyncio.sleep(0.04)
+        await col.wait_for("/out/", len(expected))
+        await asyncio.sleep(0.3)  # nothing more may come
+        assert len(col.messages) == len(expected)
+        for k in range(3):
+            vehicle = f"bus-{k}"
+            for kind, part in (("assignment", "/out/match/"), ("commit", "/out/commit/")):
+                want = [o.record for o in expected if o.kind == kind and o.vehicle == vehicle]
+                assert col.records(f"{part}{vehicle}") == want
+    last = [start for start, _ in timed.starts[-3:]]
+    assert [topic for _, topic in timed.starts[-3:]] == [t for t, _ in messages[-3:]]
+    assert last[0] >= sent + gather_s
+    assert last[2] - last[0] < 0.04  # together, not 40 ms apart as they came

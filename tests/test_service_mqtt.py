@@ -19,6 +19,7 @@ from livematch.service.mqtt import (
     _BufferedSocket,
     buffered_reads,
     cap_inflight,
+    hold_reads,
     lean_receive,
     on_acknowledged,
     publish_now,
@@ -517,3 +518,60 @@ async def test_read_now_reads_what_is_there_with_one_recv_per_piece() -> None:
     assert read_now(client, 2) == 2 and kernel.calls <= 2 and 0 < len(got) <= 32
     read_now(client, 1000)
     assert len(got) == len(packets)
+
+
+class _SockClient:
+    """What :func:`hold_reads` reads of an aiomqtt client: ``_client.socket()``."""
+
+    def __init__(self, sock: socket.socket | None) -> None:
+        self._client = self
+        self.sock = sock
+
+    def socket(self) -> socket.socket | None:
+        return self.sock
+
+
+async def test_hold_reads_keeps_the_reader_off_until_resumed() -> None:
+    """While held, bytes arriving on the socket run no reader (asyncio's selector does not
+    watch it); resumed, the same reader with its arguments runs for the bytes held, and
+    a second resume registers nothing more. A socket replaced while held is not watched
+    again (its reader went with it); no socket or no reader: nothing held."""
+    loop = asyncio.get_running_loop()
+    ours, theirs = socket.socketpair()
+    ours.setblocking(False)
+    got: list[tuple[str, bytes]] = []
+
+    def read(tag: str) -> None:
+        got.append((tag, ours.recv(100)))
+
+    try:
+        loop.add_reader(ours.fileno(), read, "aiomqtt")
+        client: Any = _SockClient(ours)
+        resume = hold_reads(client)
+        theirs.send(b"fix")
+        await asyncio.sleep(0.05)
+        assert got == []  # held: the bytes wait in the kernel
+        resume()
+        resume()  # twice: registered once
+        for _ in range(100):
+            if got:
+                break
+            await asyncio.sleep(0.01)
+        assert got == [("aiomqtt", b"fix")]
+        # replaced while held: the old socket's reader is not registered again
+        resume = hold_reads(client)
+        client.sock = theirs
+        resume()
+        theirs.send(b"late")
+        await asyncio.sleep(0.05)
+        assert got == [("aiomqtt", b"fix")]
+        assert select.select([ours], [], [], 0)[0]  # the bytes are there, unread
+        assert not loop.remove_reader(ours.fileno())  # nothing was registered
+        # no reader, no socket: nothing held, nothing registered on resume
+        hold_reads(_SockClient(ours))()  # type: ignore[arg-type]
+        assert not loop.remove_reader(ours.fileno())
+        hold_reads(_SockClient(None))()  # type: ignore[arg-type]
+    finally:
+        loop.remove_reader(ours.fileno())
+        ours.close()
+        theirs.close()

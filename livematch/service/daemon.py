@@ -84,6 +84,7 @@ from livematch.service.mqtt import (
     buffered_reads,
     cap_inflight,
     drain,
+    hold_reads,
     lean_receive,
     make_client,
     on_acknowledged,
@@ -1771,12 +1772,16 @@ class Daemon:
         kept_run = 0  # messages only kept (another worker's shard) since the last turn
         matched_run = 0  # messages matched in this turn of the loop
         run_until = 0.0  # monotonic time after which this turn takes no further message
+        gather_s = self.config.mqtt.gather_s
         try:
             while True:
                 side = self._standby_client
                 if side is not None and time.monotonic() >= self._standby_read_at:
                     self._read_standby(side)  # awake anyway: no wake-up of its own
+                idle = intake.empty()
                 await intake.wait()
+                if gather_s > 0.0 and idle:
+                    await self._gather(client, intake, gather_s)
                 if self._stopping.is_set():
                     break  # what was not taken is redelivered next session
                 if _disconnected(client) or intake.empty():
@@ -1837,6 +1842,28 @@ class Daemon:
         self._drain_deadline = time.monotonic() + self.config.publish.shutdown_grace_s
         self._outbox_changed.set()
         self._send_due.set()
+
+    async def _gather(self, client: aiomqtt.Client, intake: IntakeQueue,
+                      gather_s: float) -> None:
+        """Let ``gather_s`` pass after a wake-up, then read what came (``mqtt.gather_s``).
+
+        Called when a message woke the receive loop from waiting. The broker's socket is
+        not watched meanwhile (:func:`~livematch.service.mqtt.hold_reads`), so the fixes
+        arriving in that time wake nobody; they are read in one go afterwards
+        (:func:`~livematch.service.mqtt.drain`, bounded as after every matched message)
+        and matched back to back in the turns that follow, without waiting in between.
+        Leases renew in their own thread and the publish loop keeps its timers: only the
+        main connection's reads wait. Nothing is gathered when stopping or disconnected.
+        """
+        if self._stopping.is_set() or intake.empty() or _disconnected(client):
+            return
+        resume = hold_reads(client)
+        try:
+            await asyncio.sleep(gather_s)
+        finally:
+            resume()
+        if not _disconnected(client):
+            drain(client, _DRAIN_PACKETS, _DRAIN_BUDGET_S)
 
     def _run_on(self, matched_run: int, run_until: float, intake: IntakeQueue) -> bool:
         """Whether the receive loop matches another waiting message in the same turn.

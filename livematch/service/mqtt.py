@@ -190,6 +190,54 @@ def read_now(client: aiomqtt.Client, max_reads: int, budget_s: float = math.inf)
     return reads
 
 
+def hold_reads(client: aiomqtt.Client) -> Callable[[], None]:
+    """Stop the event loop watching the broker's socket; return what watches it again.
+
+    For ``mqtt.gather_s``: while a worker gathers fixes, bytes that arrive must not wake
+    its event loop (each wake-up costs tens of microseconds of CPU, ``bench/load.py
+    --loop-cost``); the kernel holds them and :func:`drain` reads them afterwards. The
+    reader registered for the socket (aiomqtt's) is taken from the loop's selector and
+    registered again, unchanged, by the function returned; that function does nothing
+    when the socket was closed or replaced meanwhile (its reader went with it), and
+    calling it twice registers once. Nothing is held, and the function returned does
+    nothing, when the socket is not open or no reader watches it.
+
+    Example:
+        >>> class _Paho:
+        ...     def socket(self): return None
+        >>> class _Client:
+        ...     _client = _Paho()
+        >>> hold_reads(_Client())()  # degenerate: no socket, nothing held or resumed
+    """
+    paho: Any = client._client
+    sock = paho.socket()
+    if sock is None:
+        return _nothing
+    loop: Any = asyncio.get_running_loop()
+    fd = sock.fileno()
+    try:
+        reader = loop._selector.get_key(fd).data[0]  # the loop's Handle, or None
+    except (AttributeError, KeyError, ValueError):
+        return _nothing
+    if reader is None or reader.cancelled():
+        return _nothing
+    callback, args = reader._callback, reader._args
+    loop.remove_reader(fd)
+    held = [True]
+
+    def resume() -> None:
+        if held[0]:
+            held[0] = False
+            if paho.socket() is sock:
+                loop.add_reader(fd, callback, *args)
+
+    return resume
+
+
+def _nothing() -> None:
+    """What :func:`hold_reads` returns when it held nothing."""
+
+
 # Bytes asked of the kernel per read of the broker's socket (buffered_reads).
 _READ_SIZE = 65_536
 # Fewest whole packets handed to paho per read call (_read_packets; paho's own bound is
