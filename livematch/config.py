@@ -99,8 +99,10 @@ class MqttConfig:
     (:class:`livematch.service.mqtt.IntakeQueue`).
     ``gather_s`` (0 = off): once a message wakes a worker that was waiting for one, it
     leaves the broker's socket unwatched for this long before reading what has come,
-    then matches all of it back to back: fewer wake-ups and warmer caches per fix, at
-    up to ``gather_s`` more latency (``docs/measured.md`` "Session 28 (two28)").
+    then matches all of it back to back, and while fixes keep coming reads again every
+    ``gather_s`` (one timer wake-up each) instead of as each arrives: fewer wake-ups and
+    warmer caches per fix, at up to ``gather_s`` more latency (``docs/measured.md``
+    "Session 28 (two28)").
     """
 
     url: str = "mqtt://127.0.0.1:1883"

@@ -1773,15 +1773,24 @@ class Daemon:
         matched_run = 0  # messages matched in this turn of the loop
         run_until = 0.0  # monotonic time after which this turn takes no further message
         gather_s = self.config.mqtt.gather_s
+        flowing = False  # the last gather found fixes (mqtt.gather_s)
         try:
             while True:
                 side = self._standby_client
                 if side is not None and time.monotonic() >= self._standby_read_at:
                     self._read_standby(side)  # awake anyway: no wake-up of its own
-                idle = intake.empty()
+                while gather_s > 0.0 and intake.empty():
+                    # mqtt.gather_s: while fixes keep coming, one timer wake-up per
+                    # gather_s takes all that came; after a quiet gather, the next
+                    # message wakes the loop and starts the next gather
+                    if not flowing:
+                        await intake.wait()
+                        if intake.empty():
+                            break  # interrupted: stopping or disconnected (below)
+                    if not await self._gather(client, gather_s):
+                        break
+                    flowing = not intake.empty()
                 await intake.wait()
-                if gather_s > 0.0 and idle:
-                    await self._gather(client, intake, gather_s)
                 if self._stopping.is_set():
                     break  # what was not taken is redelivered next session
                 if _disconnected(client) or intake.empty():
@@ -1843,27 +1852,29 @@ class Daemon:
         self._outbox_changed.set()
         self._send_due.set()
 
-    async def _gather(self, client: aiomqtt.Client, intake: IntakeQueue,
-                      gather_s: float) -> None:
-        """Let ``gather_s`` pass after a wake-up, then read what came (``mqtt.gather_s``).
+    async def _gather(self, client: aiomqtt.Client, gather_s: float) -> bool:
+        """Let ``gather_s`` pass, then read what came (``mqtt.gather_s``); False: not done.
 
-        Called when a message woke the receive loop from waiting. The broker's socket is
-        not watched meanwhile (:func:`~livematch.service.mqtt.hold_reads`), so the fixes
-        arriving in that time wake nobody; they are read in one go afterwards
+        The broker's socket is not watched meanwhile
+        (:func:`~livematch.service.mqtt.hold_reads`), so the fixes arriving in that time
+        wake nobody; they are read in one go afterwards
         (:func:`~livematch.service.mqtt.drain`, bounded as after every matched message)
         and matched back to back in the turns that follow, without waiting in between.
         Leases renew in their own thread and the publish loop keeps its timers: only the
-        main connection's reads wait. Nothing is gathered when stopping or disconnected.
+        main connection's reads wait. Nothing is gathered (False) when stopping or
+        disconnected.
         """
-        if self._stopping.is_set() or intake.empty() or _disconnected(client):
-            return
+        if self._stopping.is_set() or _disconnected(client):
+            return False
         resume = hold_reads(client)
         try:
             await asyncio.sleep(gather_s)
         finally:
             resume()
-        if not _disconnected(client):
-            drain(client, _DRAIN_PACKETS, _DRAIN_BUDGET_S)
+        if self._stopping.is_set() or _disconnected(client):
+            return False
+        drain(client, _DRAIN_PACKETS, _DRAIN_BUDGET_S)
+        return True
 
     def _run_on(self, matched_run: int, run_until: float, intake: IntakeQueue) -> bool:
         """Whether the receive loop matches another waiting message in the same turn.
