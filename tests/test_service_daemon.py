@@ -81,6 +81,18 @@ def direct(messages: list[tuple[str, bytes]], config_path: Path) -> list[Any]:
     return out
 
 
+async def same_outputs(col: Collector, expected: list[Any], buses: int) -> None:
+    """Every expected output arrives, nothing more, each bus's records equal and in order."""
+    await col.wait_for("/out/", len(expected))
+    await asyncio.sleep(0.3)  # nothing more may come
+    assert len(col.messages) == len(expected)
+    for k in range(buses):
+        vehicle = f"bus-{k}"
+        for kind, part in (("assignment", "/out/match/"), ("commit", "/out/commit/")):
+            want = [o.record for o in expected if o.kind == kind and o.vehicle == vehicle]
+            assert col.records(f"{part}{vehicle}") == want
+
+
 def metric_values(text: str) -> dict[tuple[str, tuple[tuple[str, str], ...]], float]:
     """Samples of a /metrics page, keyed by (sample name, sorted labels)."""
     out = {}
@@ -104,15 +116,7 @@ async def test_daemon_outputs_equal_direct_pipeline(mosquitto: Mosquitto, prefix
         async with publisher(mosquitto.port) as pub:
             for topic, payload in messages:
                 await pub.publish(topic, payload, qos=1)
-        await col.wait_for("/out/", len(expected))
-        await asyncio.sleep(0.3)  # nothing more may come
-        assert len(col.messages) == len(expected)
-        for k in range(3):
-            vehicle = f"bus-{k}"
-            for kind, part in (("assignment", "/out/match/"), ("commit", "/out/commit/")):
-                want = [o.record for o in expected if o.kind == kind and o.vehicle == vehicle]
-                got = col.records(f"{part}{vehicle}")
-                assert got == want
+        await same_outputs(col, expected, 3)
         assignments = col.records("/out/match/")
         assert len(assignments) == 75
         # a refused fix's repeated answer adds "held": true (hold_filtered)
@@ -890,14 +894,7 @@ async def test_daemon_gathering_keeps_outputs_and_matches_back_to_back(
             for topic, payload in messages[-3:]:
                 await pub.publish(topic, payload, qos=1)
                 await asyncio.sleep(0.04)
-        await col.wait_for("/out/", len(expected))
-        await asyncio.sleep(0.3)  # nothing more may come
-        assert len(col.messages) == len(expected)
-        for k in range(3):
-            vehicle = f"bus-{k}"
-            for kind, part in (("assignment", "/out/match/"), ("commit", "/out/commit/")):
-                want = [o.record for o in expected if o.kind == kind and o.vehicle == vehicle]
-                assert col.records(f"{part}{vehicle}") == want
+        await same_outputs(col, expected, 3)
     last = [start for start, _ in timed.starts[-3:]]
     assert [topic for _, topic in timed.starts[-3:]] == [t for t, _ in messages[-3:]]
     assert last[0] >= sent + gather_s
