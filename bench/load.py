@@ -49,6 +49,9 @@ on this machine and loopback only:
   a system written ``SYSTEM*K`` runs at K times the rate (``livematch-2sc*2``: each
   worker of the group matches as many fixes a second as one worker does at the rate, and
   the two-worker ratio is then taken at equal work per worker, not equal offered load);
+  and ``livematch-1p`` (two lone workers side by side, memory store, no group, w1 fed
+  the vehicles w1 of a group would match on a topic of its own, ``fleetb/+/position``,
+  w0 the others: a pair of processes as in a group, without the group);
 - ``--generators`` **load generator** processes (paho-mqtt directly, QoS 1, up to 1,000
   publishes in flight each, every fix due in a 5 ms tick published as one batch), vehicle
   i in generator ``i % generators``, the N vehicles spread evenly over each second;
@@ -131,6 +134,7 @@ ROOT = Path(__file__).resolve().parent.parent
 NETWORK = ROOT / "replay_logs" / "larkmoor.geojson"
 IN_TOPIC = "fleet/+/position"
 SHARD_TOPIC = "fleet/{shard}/+/position"  # livematch-2s: the feed partitioned by shard
+SPLIT_TOPIC = "fleetb/+/position"  # livematch-1p: the second lone worker's half of the feed
 GROUP_SHARDS = 64  # livematch's default group.shards
 RELAY_IN_FLIGHT = 256  # the relay's QoS 1 publishes awaiting their PUBACK at once
 GEN_IN_FLIGHT = 1000  # each generator's QoS 1 publishes awaiting their PUBACK at once
@@ -815,10 +819,17 @@ def position(pool: Any, i: int, k: int) -> tuple[float, float]:
 
 
 # ------------------------------------------------------------------ the generator role
-def feed_topic(vehicle: str, shards: int) -> str:
+def feed_topic(vehicle: str, shards: int, split: frozenset[int] = frozenset()) -> str:
     """The input topic of a vehicle: ``fleet/<vehicle>/position``, or with ``shards`` > 0
-    ``fleet/<shard>/<vehicle>/position`` (livematch's ``{shard}`` topic level)."""
+    ``fleet/<shard>/<vehicle>/position`` (livematch's ``{shard}`` topic level). With
+    ``split`` (and no ``shards``), a vehicle whose shard of ``GROUP_SHARDS`` is in it
+    sends on ``fleetb/<vehicle>/position`` (``SPLIT_TOPIC``, ``livematch-1p``)."""
     if shards <= 0:
+        if split:
+            from livematch.service.shards import shard_of
+
+            if shard_of(vehicle, GROUP_SHARDS) in split:
+                return SPLIT_TOPIC.replace("+", vehicle)
         return f"fleet/{vehicle}/position"
     from livematch.service.shards import shard_of
 
@@ -826,13 +837,16 @@ def feed_topic(vehicle: str, shards: int) -> str:
 
 
 def generate(port: int, pool_path: str, n: int, seconds: int, first: int, step: int,
-             shards: int, only_shards: str = "", among: bool = False) -> None:
+             shards: int, only_shards: str = "", among: bool = False,
+             split: bool = False) -> None:
     """Publish vehicles first, first + step, ... < n at 1 Hz; print what was achieved.
 
     With ``only_shards`` (comma-separated shard numbers) the n vehicles are the first n
     ids ``v<i>`` whose shard is one of those, instead of v0 ... v(n-1); with ``among``
     too, only those of v0 ... v(n-1) whose shard (of ``GROUP_SHARDS``) is one of them
     (``livematch-1h``: the vehicles w1 of a two-worker group matches, fed to one worker).
+    With ``split`` instead, v0 ... v(n-1) all, those of the ``only_shards`` on
+    ``SPLIT_TOPIC`` (``livematch-1p``).
 
     Protocol with the bench: prints ``ready`` once connected, reads ``go <epoch>`` (the
     start of second 0), publishes, waits for the acknowledgements and prints one JSON line.
@@ -841,7 +855,10 @@ def generate(port: int, pool_path: str, n: int, seconds: int, first: int, step: 
 
     pool = dict(np.load(pool_path))
     ids = list(range(n))
-    if only_shards:
+    cut: frozenset[int] = frozenset()
+    if only_shards and split:
+        cut = frozenset(int(s) for s in only_shards.split(","))
+    elif only_shards:
         from livematch.service.shards import shard_of
 
         wanted = {int(s) for s in only_shards.split(",")}
@@ -851,7 +868,7 @@ def generate(port: int, pool_path: str, n: int, seconds: int, first: int, step: 
             ids = [i for i in range(100 * n + 1000)
                    if shard_of(f"v{i}", shards) in wanted][:n]
     mine = ids[first::step]
-    topics = {i: feed_topic(f"v{i}", shards) for i in mine}
+    topics = {i: feed_topic(f"v{i}", shards, cut) for i in mine}
     slot = {i: j for j, i in enumerate(ids)}  # spread over each second by place, not id
     plan = [(k + slot[i] / len(ids), i, *position(pool, i, k)) for k in range(seconds)
             for i in mine]
@@ -922,6 +939,32 @@ def shards_held(worker: str, workers: list[str], n_shards: int) -> set[int]:
         held: set[int] = assign(n_shards, workers).held_by(worker)
         return held
     return {s for s in range(n_shards) if shards.rank_workers(s, workers)[0] == worker}
+
+
+def worker_layout(system: str) -> tuple[int, bool, str]:
+    """A livematch system's workers: how many, whether on Redis, their group ("": none).
+
+    ``livematch-2*`` is a group of two on Redis; ``livematch-1r`` one worker on Redis
+    without a group, ``livematch-1g`` a group of one; ``livematch-1p`` two lone workers
+    on the memory store, each fed its own part of the feed. Those two must not form a
+    group: with the plain topic a group gives each shard to whichever worker wins its
+    lease (not to the worker fed its vehicles), and a fix reaching a worker that does
+    not hold its shard is kept for a takeover, never matched (docs/scale.md, "Which
+    worker answers"); session 27's ``livematch-1p`` did, and its warm-up never ended.
+
+    Example:
+        >>> worker_layout("livematch-1p"), worker_layout("livematch-2sc")
+        ((2, False, ''), (2, True, 'load'))
+        >>> worker_layout("livematch-1"), worker_layout("livematch-1r")
+        ((1, False, ''), (1, True, ''))
+    """
+    if system.startswith("livematch-2"):
+        return 2, True, "load"
+    if system == "livematch-1p":
+        return 2, False, ""
+    if system in ("livematch-1r", "livematch-1g"):
+        return 1, True, "" if system == "livematch-1r" else "load"
+    return 1, False, ""
 
 
 # ------------------------------------------------------------------- the relay role
@@ -1123,7 +1166,8 @@ class Subscriber:
         self.client.disconnect()
 
 
-def warm_up(sub: Subscriber, pool: Any, shards: int, timeout: float = 60.0) -> float:
+def warm_up(sub: Subscriber, pool: Any, shards: int, timeout: float = 60.0,
+            split: frozenset[int] = frozenset()) -> float:
     """Send probe fixes until every probe vehicle has had 3 outputs; seconds it took.
 
     Three, not one: a vehicle's first fix is answered without a sweep step, and the first
@@ -1140,7 +1184,7 @@ def warm_up(sub: Subscriber, pool: Any, shards: int, timeout: float = 60.0) -> f
                                f"(short of {WARM_FIXES} answers: {', '.join(missing)})")
         for p in range(PROBES):
             lon, lat = position(pool, POOL_DRIVES - 1 - p, k % 60)
-            sub.client.publish(feed_topic(f"probe{p}", shards), json.dumps(
+            sub.client.publish(feed_topic(f"probe{p}", shards, split), json.dumps(
                 {"vehicle": f"probe{p}", "time": round(time.time(), 3), "lat": lat,
                  "lon": lon, "accuracy": 5.0}), qos=1)
         k += 1
@@ -1191,6 +1235,12 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
     only = (",".join(str(s) for s in sorted(shards_held("w1", ["w0", "w1"], shards)))
             if system.startswith("livematch-2sk") else "")
     among = system == "livematch-1h"  # one worker fed only the vehicles w1 would match
+    # livematch-1p: two lone workers side by side (memory store, no group), w1 fed the
+    # vehicles w1 of a group would match (on SPLIT_TOPIC), w0 the others
+    fed_w1 = (frozenset(shards_held("w1", ["w0", "w1"], GROUP_SHARDS))
+              if system == "livematch-1p" else frozenset())
+    if fed_w1:
+        only = ",".join(str(s) for s in sorted(fed_w1))
     vehicles = rate
     if among:
         held = shards_held("w1", ["w0", "w1"], GROUP_SHARDS)
@@ -1226,17 +1276,18 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
                                          "--port", str(port)], env=env))
         else:
             out_topic = "livematch/match/#"
-            workers = 2 if system.startswith("livematch-2") else 1
-            store, group = "memory://", ""
-            if workers == 2 or system in ("livematch-1r", "livematch-1g"):
+            workers, on_redis, group = worker_layout(system)
+            store = "memory://"
+            if on_redis:
                 redis, rport = start_redis(folder)
                 procs.append(redis)
                 store = f"redis://127.0.0.1:{rport}/0"
-                group = "" if system == "livematch-1r" else "load"
             for w in range(workers):
                 metrics_ports.append(free_port())
                 cfg = daemon_config(folder, port, store, f"w{w}", group,
-                                    SHARD_TOPIC if shards else IN_TOPIC, metrics_ports[-1],
+                                    SHARD_TOPIC if shards else
+                                    SPLIT_TOPIC if fed_w1 and w == 1 else IN_TOPIC,
+                                    metrics_ports[-1],
                                     standby_qos, system != "livematch-2s0"
                                     and not (system in ("livematch-2sm", "livematch-2smc")
                                              and w == 1),
@@ -1265,14 +1316,15 @@ def run_step(system: str, rate: int, seconds: int, generators: int, pool_path: P
         sub = Subscriber(port, out_topic)
         if metrics_ports:
             ready_s = wait_ready(metrics_ports, sut)
-        warm_s = warm_up(sub, pool, shards) if sut else 0.0
+        warm_s = warm_up(sub, pool, shards, split=fed_w1) if sut else 0.0
         for g in range(generators):
             gens.append(subprocess.Popen(
                 [sys.executable, __file__, "--role", "generator", "--port", str(port),
                  "--pool", str(pool_path), "--n", str(rate),
                  "--seconds", str(WARM_FEED_S + seconds),
                  "--first", str(g), "--step", str(generators), "--shards", str(shards),
-                 "--only-shards", only] + (["--among"] if among else []),
+                 "--only-shards", only] + (["--among"] if among else [])
+                + (["--split"] if fed_w1 else []),
                 env=env, stdin=subprocess.PIPE, stdout=subprocess.PIPE))
         procs.extend(gens)
         for gen in gens:
@@ -1777,7 +1829,7 @@ def _two_worker_lines(r: dict[str, Any]) -> list[str]:
     out += _standby_cost_lines(r)
     pairs = [s for s in r["systems"] if s.partition("*")[0] in (
         "livematch-2", "livematch-2s", "livematch-2s1", "livematch-2s0", "livematch-2sc",
-        "livematch-2scu")]
+        "livematch-2scu", "livematch-1p")]
     # livematch-1 runs under the probe (unless --no-probe); livematch-1n never does
     ones = [s for s in ("livematch-1", "livematch-1n") if s in r["systems"]]
     for single, s in [(o, s) for o in ones for s in pairs]:
@@ -2193,6 +2245,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--shards", type=int, default=0)
     ap.add_argument("--only-shards", default="")
     ap.add_argument("--among", action="store_true")
+    ap.add_argument("--split", action="store_true")
     ap.add_argument("--rates", default="250,500,1000,2000,4000,8000,16000",
                     help="offered fixes/s to step through (= vehicles at 1 Hz)")
     ap.add_argument("--seconds", type=int, default=10, help="length of each step")
@@ -2331,7 +2384,7 @@ def main(argv: list[str] | None = None) -> int:
         return 0
     if args.role == "generator":
         generate(args.port, args.pool, args.n, args.seconds, args.first, args.step,
-                 args.shards, args.only_shards, args.among)
+                 args.shards, args.only_shards, args.among, args.split)
         return 0
     if args.role == "relay":
         with contextlib.suppress(KeyboardInterrupt):

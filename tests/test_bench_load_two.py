@@ -10,8 +10,13 @@ step records' fields.
 from __future__ import annotations
 
 import statistics
+from pathlib import Path
 from typing import Any
 
+from paho.mqtt.client import topic_matches_sub
+
+from livematch.config import load_config
+from livematch.service.shards import shard_of
 from tests.catalogue import bench_module
 
 
@@ -62,3 +67,37 @@ def test_two_worker_ratio_from_both_clocks() -> None:
     assert f"{0.200 / 0.130:.2f}" in text         # clock ticks, against livematch-1
     assert f"{0.1802 / 0.0902:.3f}" in text       # the group at twice the rate
     assert text.count("schedstat") == 4           # two groups x two single workers
+
+
+def test_pair_is_two_lone_workers_each_fed_its_own_vehicles(tmp_path: Path) -> None:
+    """``livematch-1p`` starts two workers without a group on the memory store (session
+    27's ran them as a group on Redis, whose leases then went to the worker not fed the
+    vehicles), and every vehicle's topic reaches exactly one of them: w1's those of the
+    shards w1 of a group holds, w0's the others.
+
+    The outside reference for "reaches": paho-mqtt's ``topic_matches_sub`` (MQTT 3.1.1
+    section 4.7 topic filter matching) against each worker's ``mqtt.topic`` as
+    livematch's own config loader reads it from the file the bench writes."""
+    load = bench_module("load")
+    assert load.worker_layout("livematch-1p") == (2, False, "")
+    for system in ("livematch-2", "livematch-2s", "livematch-2sc", "livematch-2s0"):
+        assert load.worker_layout(system) == (2, True, "load")
+    assert load.worker_layout("livematch-1g") == (1, True, "load")
+    assert load.worker_layout("livematch-1r") == (1, True, "")
+    for system in ("livematch-1", "livematch-1n", "livematch-1h"):
+        assert load.worker_layout(system) == (1, False, "")
+    split = frozenset(load.shards_held("w1", ["w0", "w1"], load.GROUP_SHARDS))
+    configs = [load_config(load.daemon_config(tmp_path, 1883, "memory://", f"w{w}", "",
+                                              load.SPLIT_TOPIC if w else load.IN_TOPIC),
+                           env={}) for w in range(2)]
+    assert [c.group.name for c in configs] == ["", ""]
+    assert [c.store.url for c in configs] == ["memory://", "memory://"]
+    assert configs[0].mqtt.client_id != configs[1].mqtt.client_id
+    to_w1 = 0
+    for vehicle in [f"v{i}" for i in range(500)] + [f"probe{p}" for p in range(load.PROBES)]:
+        topic = load.feed_topic(vehicle, 0, split)
+        reached = [w for w, c in enumerate(configs) if topic_matches_sub(c.mqtt.topic, topic)]
+        in_split = shard_of(vehicle, load.GROUP_SHARDS) in split
+        assert reached == ([1] if in_split else [0]), (vehicle, topic)
+        to_w1 += in_split and vehicle.startswith("v")
+    assert 0 < to_w1 < 500

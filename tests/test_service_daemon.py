@@ -845,3 +845,49 @@ async def test_daemon_disconnect_error_is_retrieved_when_nobody_waits(
             own_mosquitto.start()
     finally:
         loop.set_exception_handler(None)
+
+
+async def test_daemon_two_lone_workers_on_one_broker_each_answer_their_feed(
+        mosquitto: Mosquitto, prefix: str, tmp_path: Path) -> None:
+    """Two lone daemons (memory store, no group) on one broker, with their own client ids
+    and feed topics (w1 on ``fleetb/+/position``) and the same output topics, as
+    bench/load.py's ``livematch-1p``: every vehicle of each is answered, fix for fix, with
+    the records its Pipeline alone gives; neither receives or answers the other's.
+
+    Session 27 saw this set-up leave probe vehicles unanswered; the cause was the bench
+    running the two as a worker group (docs/measured.md, "Session 28 (lone28)")."""
+    cfgs = []
+    for w, topic in enumerate(("fleet/+/position", "fleetb/+/position")):
+        folder = tmp_path / f"w{w}"
+        folder.mkdir()
+        cfg = write_config(folder, prefix, broker=mosquitto.url, topic=topic)
+        text = cfg.read_text().replace(f'client_id = "livematch-{prefix}"',
+                                       f'client_id = "livematch-{prefix}-w{w}"')
+        cfg.write_text(text)
+        cfgs.append(cfg)
+    vehicles = [f"p{k}" for k in range(8)]
+    feed_of = {v: "fleetb" if k % 2 else "fleet" for k, v in enumerate(vehicles)}
+    feeds = {v: drive(v, 6, start_x=100.0 + 550 * k) for k, v in enumerate(vehicles)}
+    messages = [(f"{prefix}/{feed_of[v]}/{v}/position", feeds[v][i][1])
+                for i in range(6) for v in vehicles]
+    expected = {w: direct([m for m in messages if m[0].split("/")[1] == part], cfgs[w])
+                for w, part in enumerate(("fleet", "fleetb"))}
+    w0, w1 = make_daemon(cfgs[0]), make_daemon(cfgs[1])
+    async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col, \
+            running(w0), running(w1):
+        async with publisher(mosquitto.port) as pub:
+            for topic, payload in messages:
+                await pub.publish(topic, payload, qos=1)
+        await col.wait_for("/out/", len(expected[0]) + len(expected[1]))
+        await asyncio.sleep(0.3)  # nothing more may come
+        pages = [await http_get(d.http.port, "/metrics")  # type: ignore[union-attr]
+                 for d in (w0, w1)]
+    assert len(col.messages) == len(expected[0]) + len(expected[1])
+    for w, part in enumerate(("fleet", "fleetb")):
+        for v in (v for v in vehicles if feed_of[v] == part):
+            want = [o.record for o in expected[w] if o.kind == "assignment" and o.vehicle == v]
+            assert len(want) == 6
+            assert col.records(f"/out/match/{v}") == want
+        values = metric_values(pages[w][1])
+        assert values[("livematch_messages_received_total", ())] == 24
+        assert values[("livematch_fixes_processed_total", ())] == 24
