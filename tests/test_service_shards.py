@@ -456,6 +456,30 @@ async def test_membership_expires_and_shard_count_is_checked(redis_url: str,
             await other.join()
 
 
+async def test_worker_fed_another_topic_is_refused(redis_url: str, prefix: str) -> None:
+    """The first worker records the group's feed topic; a worker configured with another
+    topic is refused (a fix fed only to a worker not holding its shard would never be
+    answered); the same topic joins; a manager given no topic is not checked."""
+    client = aioredis.Redis.from_url(redis_url)
+
+    def manager(worker: str, topic: str | None) -> LeaseManager:
+        return LeaseManager(client, url=redis_url, prefix=f"{prefix}:", group="g",
+                            worker=worker, n_shards=4, lease_s=1.0, topic=topic)
+
+    try:
+        await manager("a", "fleet/+/position").join()
+        await manager("b", "fleet/+/position").join()
+        await manager("c", None).join()
+        with pytest.raises(StoreError) as caught:
+            await manager("d", "fleetb/+/position").join()
+        text = str(caught.value)
+        assert "'fleet/+/position'" in text and "'fleetb/+/position'" in text
+        assert f"{prefix}:group:g:topic" in text  # names the key to clear
+        assert await client.get(f"{prefix}:group:g:topic") == b"fleet/+/position"
+    finally:
+        await client.aclose()
+
+
 # -- configuration ---------------------------------------------------------------------
 
 

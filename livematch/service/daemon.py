@@ -779,7 +779,7 @@ class Daemon:
     # -- worker group --------------------------------------------------------------
 
     async def _join_group(self) -> None:
-        """Create the lease manager (own Redis connection) and check the shard count."""
+        """Create the lease manager (own Redis connection); check the shard count and topic."""
         group = self.config.group
         if self.leases is None:
             sc = self.config.store
@@ -788,7 +788,8 @@ class Daemon:
             self.leases = LeaseManager(client, url=self.config.store.url,
                                        prefix=self.config.store.key_prefix, group=group.name,
                                        worker=self.worker, n_shards=group.shards,
-                                       lease_s=group.lease_s, balance=self._sharded_topic)
+                                       lease_s=group.lease_s, balance=self._sharded_topic,
+                                       topic=self.config.mqtt.topic)
         await self.leases.join()
         log.info("joined worker group", extra=fields(group=group.name, worker=self.worker,
                                                      shards=group.shards,

@@ -14,6 +14,7 @@ Cluster slot and one Lua script may touch them together)::
     {prefix}{s:NN}:latest         hash: vehicle -> its latest assignment record (JSON)
     {prefix}group:NAME:members    sorted set: worker -> expiry time (ms, Redis clock)
     {prefix}group:NAME:shards     the group's shard count (all workers must agree)
+    {prefix}group:NAME:topic      the group's feed topic, mqtt.topic (all workers must agree)
     {prefix}group:NAME:receives   hash: worker -> the shard topics it receives ("3,11")
     {prefix}group:NAME:load       hash: version -> n, weights -> per-shard vehicles ("7,9,..")
 
@@ -547,8 +548,10 @@ class LeaseManager:
     """
 
     def __init__(self, client: aioredis.Redis, *, url: str, prefix: str, group: str,
-                 worker: str, n_shards: int, lease_s: float, balance: bool = False) -> None:
+                 worker: str, n_shards: int, lease_s: float, balance: bool = False,
+                 topic: str | None = None) -> None:
         self.client = client
+        self.topic = topic
         self.balance = balance
         self.url = url
         self.prefix = prefix
@@ -590,21 +593,45 @@ class LeaseManager:
     # -- membership ------------------------------------------------------------------
 
     async def join(self) -> None:
-        """Check that the group's shard count is ours (the first worker records it).
+        """Check that the group's shard count and feed topic are ours (the first records them).
+
+        Which worker matches a vehicle is decided by the race for its shard's lease, not
+        by what the worker is fed, so every worker of a group must receive the same feed:
+        a fix that reaches only a worker not holding its shard is acknowledged, kept for
+        a takeover and never answered, silently (docs/scale.md, "Which worker answers").
+        A worker configured with another ``mqtt.topic`` is therefore refused at the
+        start, like one with another shard count. The topic is checked only when the
+        manager was given one (``topic``). To change either for a whole group, stop its
+        workers and delete the key named in the error.
 
         Raises:
-            StoreError: Redis is unreachable, or the group runs with another count.
+            StoreError: Redis is unreachable, or the group runs with another shard count
+                or another topic.
         """
         key = f"{self.prefix}group:{self.group}:shards"
+        topic_key = f"{self.prefix}group:{self.group}:topic"
         try:
             await self.client.set(key, self.n_shards, nx=True)
             found = await self.client.get(key)
+            if self.topic is not None:
+                await self.client.set(topic_key, self.topic, nx=True)
+                found_topic = await self.client.get(topic_key)
+            else:
+                found_topic = None
         except (RedisError, OSError) as exc:
             raise self._fail("joining the group", exc) from exc
         if found is not None and int(found) != self.n_shards:
             raise StoreError(f"group {self.group!r} under prefix {self.prefix!r} runs with "
                              f"{int(found)} shards, this worker has group.shards = "
                              f"{self.n_shards}")
+        if found_topic is not None:
+            text = found_topic.decode() if isinstance(found_topic, bytes) else str(found_topic)
+            if text != self.topic:
+                raise StoreError(
+                    f"group {self.group!r} under prefix {self.prefix!r} is fed topic "
+                    f"{text!r}, this worker has mqtt.topic = {self.topic!r}: every worker "
+                    f"of a group must receive the same feed (to change it, stop the "
+                    f"group's workers and delete the Redis key {topic_key!r})")
 
     async def heartbeat(self, *, leave: bool = False) -> list[str]:
         """Announce this worker for one lease period (or leave); the live members, sorted.
