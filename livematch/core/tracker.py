@@ -34,6 +34,10 @@ How it decides
   ``junction_hold_m`` past it (:meth:`Tracker._hold_at_junction`). Commits where the
   candidates merge need no ranking; a forced commit (below) picks the best candidate by
   the live score too while fixes come less than ``SPARSE_S`` apart, else by path cost.
+  Both rankings start from the path cost, which with ``class_cost_m`` also charges each
+  state on a minor road class at every fix where a state of its level is on a more
+  important one (:func:`_charge_class`: a prior for the street over a service road drawn
+  beside it; off by default).
 * **When a level's window dies** (or a step is a gap: longer than ``gap_s`` / ``gap_m``),
   the step is bridged by routing from the live states to the segments within eps of the
   new fix, bounded by ``bridge_speed_mps`` times the time step: the candidate tree goes
