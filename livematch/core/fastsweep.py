@@ -41,7 +41,7 @@ import numpy as np
 import numpy.typing as npt
 
 from livematch.core import _sweep_kernel as _k
-from livematch.core.network import RoadNetwork
+from livematch.core.network import RoadNetwork, minor_segments
 from livematch.core.sweep import Node, StepContext
 from livematch.core.view import NetworkView
 
@@ -118,6 +118,8 @@ class SweepArrays:
         netf, neti: the network: a record per segment and the adjacency
             (:func:`network_records`, layout in ``_sweep_kernel``).
         seg_geo: per segment (a, b) the row ``ax, ay, bx - ax, by - ay`` (metres).
+        seg_minor: per segment 1.0 where its road class is minor, else 0.0
+            (:func:`livematch.core.network.minor_segments`; the tracker's class charge).
         fbuf, ibuf: scratch and output buffers, grown by :meth:`grow`.
         chain: scratch for the rows of a commit's chain (``CandidateTree.chain``).
         step: scratch for a tree step's scalars (``N_CTX`` of them; ``Tracker``).
@@ -127,7 +129,8 @@ class SweepArrays:
     """
 
     __slots__ = ("cap_b", "cap_h", "cap_m", "cap_o", "chain", "fbuf", "ibuf", "n_e", "n_v",
-                 "netf", "neti", "out_f0", "out_i0", "seg_geo", "step", "step_for")
+                 "netf", "neti", "out_f0", "out_i0", "seg_geo", "seg_minor", "step",
+                 "step_for")
 
     def __init__(self, view: NetworkView) -> None:
         net = view.network
@@ -143,6 +146,7 @@ class SweepArrays:
         st = np.asarray(view.st, dtype=np.int64)
         self.seg_geo: npt.NDArray[np.float64] = np.ascontiguousarray(np.stack(
             [vx[sf], vy[sf], vx[st] - vx[sf], vy[st] - vy[sf]], axis=1))
+        self.seg_minor: npt.NDArray[np.float64] = minor_segments(net)
         # the rows of a commit's chain (CandidateTree.chain), grown when too short
         self.chain: npt.NDArray[np.int64] = np.empty(256, dtype=np.int64)
         self.step: npt.NDArray[np.float64] = np.zeros(_k.N_CTX)

@@ -41,8 +41,9 @@ FloatArray = npt.NDArray[np.float64]
 #: OpenStreetMap ``highway`` classes from the most to the least important, the order the
 #: OSM wiki's Key:highway page lists the road classes in (from memory); each ``*_link``
 #: is placed right after its parent class (our choice: a link is part of that road's
-#: network). A class not listed ranks after all of these. Used only to pick which way a
-#: merged coincident segment reports (:func:`merge_coincident`).
+#: network). A class not listed ranks after all of these. Used to pick which way a merged
+#: coincident segment reports (:func:`merge_coincident`) and which classes the matcher's
+#: class charge counts as minor (:func:`minor_segments`).
 ROAD_CLASS_ORDER: tuple[str, ...] = (
     "motorway", "motorway_link", "trunk", "trunk_link", "primary", "primary_link",
     "secondary", "secondary_link", "tertiary", "tertiary_link",
@@ -224,6 +225,35 @@ def road_class_rank(highway: object) -> int:
     True
     """
     return _CLASS_RANK.get(str(highway), len(ROAD_CLASS_ORDER))
+
+
+#: The least important class that is not *minor*: ``MatchSettings.class_cost_m`` charges
+#: the classes ranked after it (``living_street``, ``service``, ``road`` and every class
+#: not listed, such as ``track``). Our choice: the streets a through trip uses end here.
+MINOR_AFTER: str = "residential"
+
+
+def minor_segments(network: RoadNetwork) -> FloatArray:
+    """Per segment 1.0 if its road's class is minor (ranked after :data:`MINOR_AFTER`), else 0.0.
+
+    Read by the tracker's class charge (``MatchSettings.class_cost_m``), which multiplies
+    it by the charge; float so that the product needs no conversion.
+
+    Example (a residential street, a service road and a road with no class):
+        >>> from livematch.core.build import Road, network_from_roads
+        >>> net = network_from_roads([
+        ...     Road([(0.0, 0.0), (100.0, 0.0)], way=1, oneway=True, highway="residential"),
+        ...     Road([(0.0, 3.0), (100.0, 3.0)], way=2, oneway=True, highway="service"),
+        ...     Road([(0.0, 9.0), (100.0, 9.0)], way=3, oneway=True, highway="")])
+        >>> minor_segments(net).tolist()
+        [0.0, 1.0, 1.0]
+        >>> minor_segments(network_from_roads([])).tolist()
+        []
+    """
+    limit = road_class_rank(MINOR_AFTER)
+    per_road = np.array([1.0 if road_class_rank(r.get("highway")) > limit else 0.0
+                         for r in network.roads] or [0.0], dtype=np.float64)
+    return np.ascontiguousarray(per_road[network.seg_road], dtype=np.float64)
 
 
 def merge_coincident(

@@ -821,6 +821,31 @@ class MatchSettings:
             decision runs the random walk at Helsinki 15 s gained 4 fixes on seed 31
             and lost 1 on seed 77, Helsinki 30 s seed 77 lost 3 (docs/measured.md
             "Session 26 (walk26)"); filtered fixes are about 1 % of a feed's.
+        class_cost_m: a prior for the more important road where two roads fit the
+            fixes alike: at every fix, each candidate state on a segment of a minor road
+            class (ranked after ``residential`` in OpenStreetMap's highway order:
+            ``living_street``, ``service``, ``road``, unlisted classes such as
+            ``track``; :func:`livematch.core.network.minor_segments`) pays
+            ``class_cost_m / beta_m``, the route term's charge for this many metres of
+            route mismatch, unless every live state of its level at that fix is on a
+            minor road (the charge is a ranking among the states, not a verdict on
+            each; :func:`livematch.core.tracker._charge_class`). It is added after the
+            step, like the heading charge: no back-pointer of that step moves and
+            nothing reachable changes (the Fréchet decision and its certificate), so
+            every answer still lies within eps of its fix; the parents later steps keep,
+            the best candidate, the live score and every commit read it through the
+            path cost. Why: a map draws a service road or a parking aisle a few metres
+            beside a street (docs/measured.md, "Session 17 (fleet1hz)"); both stay within
+            eps for minutes and the lean of the correlated GNSS error picks one. That
+            vehicles spend more of their time on through roads than on service ways is
+            a prior (common practice in map matching, not measured here). 0, the
+            default, is off: outputs are those of a tracker without the rule. Off by
+            default: the simulated drives pick their roads without regard to class, and
+            on bench/fleetmiss.py's decision runs at 3 m it turned fixes right where the
+            street was driven and wrong where the service road beside it was (routed
+            trips Helsinki 1 s seed 31 final 0.9800 -> 0.9807, seed 77 0.9832 ->
+            0.9821; the random walk Helsinki 1 s 0.9864 -> 0.9852 and 0.9884 -> 0.9871;
+            docs/measured.md, "Session 28 (class28)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -891,6 +916,7 @@ class MatchSettings:
     off_network_m: float = 0.0
     join_margin_m: float = 0.0
     filtered_pace: bool = False
+    class_cost_m: float = 0.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -917,7 +943,7 @@ class MatchSettings:
         for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s",
                      "spike_cost", "street_turn_cost", "join_detour", "live_keep",
                      "live_keep_stand_s", "stand_short_m", "speed_pace_m", "heading_cost",
-                     "roll_back_slack_m", "stub_turn_m", "join_margin_m"):
+                     "roll_back_slack_m", "stub_turn_m", "join_margin_m", "class_cost_m"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))

@@ -34,6 +34,10 @@ How it decides
   ``junction_hold_m`` past it (:meth:`Tracker._hold_at_junction`). Commits where the
   candidates merge need no ranking; a forced commit (below) picks the best candidate by
   the live score too while fixes come less than ``SPARSE_S`` apart, else by path cost.
+  Both rankings start from the path cost, which with ``class_cost_m`` also charges each
+  state on a minor road class at every fix where a state of its level is on a more
+  important one (:func:`_charge_class`: a prior for the street over a service road drawn
+  beside it; off by default).
 * **When a level's window dies** (or a step is a gap: longer than ``gap_s`` / ``gap_m``),
   the step is bridged by routing from the live states to the segments within eps of the
   new fix, bounded by ``bridge_speed_mps`` times the time step: the candidate tree goes
@@ -773,6 +777,8 @@ class Tracker:
                 and (fix.speed is None or fix.speed >= HEADING_MIN_MPS) else None)
         if head is not None and not (math.isfinite(head[0]) and math.isfinite(head[1])):
             head = None  # a point the projection cannot turn (far outside its area)
+        # MatchSettings.class_cost_m: the charge of a state on a minor road, per fix
+        minor = s.class_cost_m / s.beta_m
         first = self.next_commit
         t = fix.t
         # CandidateTree.step, its compiled call made here (a Python call fewer per
@@ -799,6 +805,8 @@ class Tracker:
                 if top != DIED:
                     if tops is not None and ask >= 0:
                         tops[level] = (tree, first, ask, top)
+                    if minor > 0.0:
+                        _charge_class(tree, arrays, minor)
                     if head is not None:
                         _charge_heading(tree, arrays, self.network.seg_len, head, s)
                     continue
@@ -846,6 +854,8 @@ class Tracker:
                 level.tree.extend(new, {})
                 level.tree_seq = level.trim_seq = level.cert_seq = seq
                 level.cert_t = fix.t
+            if minor > 0.0:
+                _charge_class(level.tree, arrays, minor)
             if head is not None:
                 _charge_heading(level.tree, arrays, self.network.seg_len, head, s)
         for level in bridged:
@@ -4516,6 +4526,42 @@ def _charge_heading(tree: CandidateTree, arrays: SweepArrays, slen: npt.NDArray[
     costs += state_charges(arrays.seg_geo, segs, tree.live_along(slen),
                            tree.live_before, head[0], head[1], s.heading_cost,
                            HEADING_REACH_SIGMAS * s.sigma_m)
+
+
+def _charge_class(tree: CandidateTree, arrays: SweepArrays, charge: float) -> None:
+    """Add the class charge (``MatchSettings.class_cost_m``) to the new live states' costs.
+
+    ``charge``: ``class_cost_m / beta_m``, paid by each live state whose segment is on a
+    minor road (``arrays.seg_minor``), unless every live state is: the charges are taken
+    less the least of them, as the heading charge's are, so a level whose candidates
+    are all service aisles (a car park) pays nothing and its costs stay those of a
+    tracker without the rule. Added after the step (:func:`_charge_heading` says what
+    that leaves alone): the step that adds it keeps the parents it chose without it,
+    every later step, ranking and commit sees it through the path cost.
+
+    Example (a residential street and a service road 3 m beside it, a state on each):
+        >>> from livematch.core.build import Road, network_from_roads
+        >>> from livematch.core.fastsweep import sweep_arrays
+        >>> from livematch.core.view import view_of
+        >>> net = network_from_roads([
+        ...     Road([(0.0, 0.0), (100.0, 0.0)], way=1, oneway=True, highway="residential"),
+        ...     Road([(0.0, 3.0), (100.0, 3.0)], way=2, oneway=True, highway="service")])
+        >>> tree = CandidateTree()
+        >>> tree.extend({s: Node(s, 1, 0.0, 0.5, 50.0, 3.0 * s, None, (), 1.0, 0.0)
+        ...              for s in (0, 1)}, {})
+        >>> _charge_class(tree, sweep_arrays(view_of(net)), 0.25)
+        >>> tree.costs().tolist()
+        [1.0, 1.25]
+        >>> _charge_class(CandidateTree(), sweep_arrays(view_of(net)), 0.25)  # no state
+    """
+    if tree.hi <= tree.lo:
+        return
+    segs = tree.ti[K_SEG + ROW_I * tree.lo:K_SEG + ROW_I * tree.hi:ROW_I]
+    minor = arrays.seg_minor[segs]
+    if minor.min() > 0.0:
+        return  # every state on a minor road: no state ranks better for it
+    costs = tree.costs()
+    costs += minor * charge
 
 
 def _copy_level(level: Level) -> Level:
