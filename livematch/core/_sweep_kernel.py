@@ -652,11 +652,13 @@ L_SPARE: Final = 2  # live rows of room for floats a compaction leaves, at least
 def live_room(m: int, k: int) -> int:
     """Live rows the live floats' area of new arrays holds: ``m`` new ones, ``k`` before.
 
-    The larger of the two and a quarter as many again (at least ``L_SPARE``): a live
+    The larger of the two and an eighth as many again (at least ``L_SPARE``): a live
     block grows and shrinks by a few states a fix, and outgrowing the area costs new
     arrays. 16 bytes a live row, against 16 bytes of every row when each kept its low
     and cost. (Half as many again until session 15: a third of the area never written,
-    and no fewer new arrays than with a quarter; ``bench/memory.py``, docs/measured.md.)
+    and no fewer new arrays than with a quarter; a quarter, at least 4, until session
+    28: about 95 B more a 1 Hz tracker for 0.05 fewer new arrays a fix;
+    ``bench/memory.py --steps 7``, docs/measured.md.)
     """
     big = m if m > k else k
     return big + max(big // 8, L_SPARE)
@@ -757,10 +759,10 @@ def tree_sweep(
     appends the result, which waits in the kernel's buffers).
 
     A tree whose arrays are full is first compacted in its own arrays
-    (:func:`compact_in_place`) if that makes room and the arrays are at most a quarter
-    larger than a compaction into new arrays would make them (so a tree that shrank
-    gives its memory back, and a tree holds about as many bytes as with new arrays at
-    every compaction).
+    (:func:`compact_in_place`) if that makes room and the arrays have room for at most a
+    quarter more rows, and half as many vias again, as a compaction into new arrays would
+    give them (so a tree that shrank gives its memory back, and a tree holds about as
+    many bytes as with new arrays at every compaction).
     """
     n = ti[H_N]
     nv = ti[H_NV]
@@ -814,10 +816,12 @@ def tree_sweep(
         spare = row_spare(m, k)
         cap = kept + max(kept // 4, spare)
         cap_v = kept_v + max(kept_v // 2, max(n_via, 2 * spare))
-        # (arrays over a quarter more than the rows a compaction into new arrays gave
-        # before session 15, twice the live block + 8, are replaced: one and a half
-        # times until session 25, which held 0.35 KB more a 1 Hz tracker for 0.08 fewer
-        # compactions into new arrays a fix; bench/memory.py --steps 7)
+        # (arrays with room for over a quarter more rows than new arrays would get,
+        # ``cap``, or half as many vias again as ``cap_v``, are replaced: until session
+        # 28 the rows were held against what new arrays got before session 15, twice
+        # the live block + 8, and the vias not at all, which kept about 0.2 KB more a
+        # 1 Hz tracker for 0.12 fewer new arrays a fix; one and a half times the rows
+        # until session 25, 0.35 KB more for 0.08 fewer; bench/memory.py --steps 7)
         if (kept + m > cap_rows or kept_v + n_via > cap_vias or span_t > cap_t
                 or m > cap_l
                 or 4 * cap_rows > 5 * cap
