@@ -645,21 +645,23 @@ ARENA_FULL: Final = -3  # the tree's arrays are too small for the new rows (see 
 TREE_OVERFLOW: Final = -4  # the kernel's buffers are too small: grow them and call again
 MIN_SPARE: Final = 8  # rows of room a compaction leaves, at least (and twice the live block)
 T_SPARE: Final = 6  # fix times of room a compaction leaves, at least (a fix adds one)
-L_SPARE: Final = 4  # live rows of room for floats a compaction leaves, at least
+L_SPARE: Final = 2  # live rows of room for floats a compaction leaves, at least
 
 
 @numba.njit(cache=True, error_model="numpy")
 def live_room(m: int, k: int) -> int:
     """Live rows the live floats' area of new arrays holds: ``m`` new ones, ``k`` before.
 
-    The larger of the two and a quarter as many again (at least ``L_SPARE``): a live
+    The larger of the two and an eighth as many again (at least ``L_SPARE``): a live
     block grows and shrinks by a few states a fix, and outgrowing the area costs new
     arrays. 16 bytes a live row, against 16 bytes of every row when each kept its low
     and cost. (Half as many again until session 15: a third of the area never written,
-    and no fewer new arrays than with a quarter; ``bench/memory.py``, docs/measured.md.)
+    and no fewer new arrays than with a quarter; a quarter, at least 4, until session
+    28: about 95 B more a 1 Hz tracker for 0.05 fewer new arrays a fix;
+    ``bench/memory.py --steps 7``, docs/measured.md.)
     """
     big = m if m > k else k
-    return big + max(big // 4, L_SPARE)
+    return big + max(big // 8, L_SPARE)
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -757,10 +759,10 @@ def tree_sweep(
     appends the result, which waits in the kernel's buffers).
 
     A tree whose arrays are full is first compacted in its own arrays
-    (:func:`compact_in_place`) if that makes room and the arrays are at most a quarter
-    larger than a compaction into new arrays would make them (so a tree that shrank
-    gives its memory back, and a tree holds about as many bytes as with new arrays at
-    every compaction).
+    (:func:`compact_in_place`) if that makes room and the arrays have room for at most a
+    quarter more rows, and half as many vias again, as a compaction into new arrays would
+    give them (so a tree that shrank gives its memory back, and a tree holds about as
+    many bytes as with new arrays at every compaction).
     """
     n = ti[H_N]
     nv = ti[H_NV]
@@ -813,18 +815,22 @@ def tree_sweep(
         # the room of new arrays (rows: row_spare; vias: twice that, or half those kept)
         spare = row_spare(m, k)
         cap = kept + max(kept // 4, spare)
-        # (arrays over a quarter more than the rows a compaction into new arrays gave
-        # before session 15, twice the live block + 8, are replaced: one and a half
-        # times until session 25, which held 0.35 KB more a 1 Hz tracker for 0.08 fewer
-        # compactions into new arrays a fix; bench/memory.py --steps 7)
+        cap_v = kept_v + max(kept_v // 2, max(n_via, 2 * spare))
+        # (arrays with room for over a quarter more rows than new arrays would get,
+        # ``cap``, or half as many vias again as ``cap_v``, are replaced: until session
+        # 28 the rows were held against what new arrays got before session 15, twice
+        # the live block + 8, and the vias not at all, which kept about 0.2 KB more a
+        # 1 Hz tracker for 0.12 fewer new arrays a fix; one and a half times the rows
+        # until session 25, 0.35 KB more for 0.08 fewer; bench/memory.py --steps 7)
         if (kept + m > cap_rows or kept_v + n_via > cap_vias or span_t > cap_t
                 or m > cap_l
-                or 4 * cap_rows > 5 * (kept + max(kept // 4, 2 * k + MIN_SPARE))):
+                or 4 * cap_rows > 5 * cap
+                or 2 * cap_vias > 3 * cap_v):
             ti[H_M] = m
             ti[H_NVIA] = n_via
             ti[H_CAP_ROWS] = cap
             ti[H_CAP_L] = live_room(m, k)
-            ti[H_CAP_VIAS] = kept_v + max(kept_v // 2, max(n_via, 2 * spare))
+            ti[H_CAP_VIAS] = cap_v
             # (as much room for fix times as for rows: a step adds a fix and a row at
             # least, so the times do not fill up first)
             ti[H_CAP_T] = span_t + max(span_t // 4, spare)
