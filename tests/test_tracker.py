@@ -541,6 +541,34 @@ def test_tracker_restore_around_spike_gives_identical_outputs(cut: int) -> None:
     assert before + after == whole
 
 
+def test_tracker_checkpoint_every_fix_around_an_unmatched_spike_is_canonical() -> None:
+    """A spike no level matches (100 m from every road), dropped one fix late: a tracker
+    checkpointed and restored at every fix holds the same state, byte for byte, and says
+    the same as one never stopped.
+
+    The unmatched fix moves the commit point past itself (no tree covers it); dropping it
+    one fix later takes the commit point back to it, and the live score may then read
+    the position of the fix before it. A checkpoint written in between has to keep that
+    position too (it once kept only what the moved commit point needed, so a restored
+    tracker rescored one link fewer than a tracker never stopped).
+    """
+    net = grid()
+    fixes = fixes_along(SPARSE_PTS, dt=15.0)
+    fixes[3] = Fix("v1", fixes[3].t, 0.0, 0.0, 500.0, 300.0)  # the middle of a block
+    settings = MatchSettings(spike_cost=30.0)
+    straight = Tracker(net, "v1", settings)
+    chained = Tracker(net, "v1", settings)
+    reasons = []
+    for f in fixes:
+        chained = Tracker.from_bytes(net, settings, chained.to_bytes())
+        said = straight.update(f)
+        assert chained.update(f) == said
+        assert chained.to_bytes() == straight.to_bytes()
+        reasons += [e.reason for e in said if isinstance(e, Filtered)]
+    assert reasons == ["no_road_nearby", "spike"]  # the case this test is about
+    assert chained.flush() == straight.flush()
+
+
 def test_tracker_spike_cost_validated() -> None:
     """spike_cost is a number >= 0 (0 turns the spike test off); a negative one is refused."""
     assert MatchSettings(spike_cost=0.0).problems() == []

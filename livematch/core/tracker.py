@@ -964,15 +964,34 @@ class Tracker:
         self.last_seg = before.last_seg
         return suspect, salvage
 
+    def _fix_floor(self, suspect: int) -> int:
+        """The oldest fix whose position a live score may still read.
+
+        The last committed fix (``next_commit - 1``): a live score walks the candidates'
+        links back to it. While the spike test of fix ``suspect`` is pending (``before``
+        kept), the fix before ``suspect`` if ``suspect`` is already past the commit point
+        (a fix no tree covers moves the commit point past itself): dropping it as a spike
+        takes the commit point back to it (:meth:`_spike_test`), and the fix before it is
+        then the last committed one again. The fix log and the checkpoint both keep from
+        here, so a restored tracker reads what one never stopped reads, whatever the
+        log's room.
+        """
+        floor = self.next_commit
+        if self.before is not None and suspect < floor:
+            floor = suspect
+        return floor - 1
+
     def _log_fix(self, x: float, y: float) -> None:
         """Keep the position of the fix just accepted (sequence number ``self.seq``)."""
         n = self.fix_n
         if n == len(self.fix_xy):
-            # full: drop what no live score reads any more (older than the last commit),
+            # full: drop what no live score reads any more (older than _fix_floor),
             # then leave room for half as many rows again as are kept (at least half
             # FIX_LOG_ROOM; FIX_LOG_ROOM rows at least: as many again, the room until
             # session 23, was most of the log's bytes at 1 Hz, bench/memory.py step 6)
-            drop = min(n, max(0, self.next_commit - 1 - self.fix_seq0))
+            # (the fix just accepted is self.seq: the pending spike test is its
+            # predecessor's)
+            drop = min(n, max(0, self._fix_floor(self.seq - 1) - self.fix_seq0))
             kept = self.fix_xy[drop:n]
             least = FIX_LOG_ROOM // 2
             size = max(FIX_LOG_ROOM, len(kept) + max(least, len(kept) // 2))
@@ -3943,8 +3962,8 @@ class Tracker:
         """
         arrays: list[bytes | memoryview] = []
         levels = _pack_levels(self.levels, arrays)
-        # the fix positions a live score may still read: from the last committed fix on
-        skip = min(self.fix_n, max(0, self.next_commit - 1 - self.fix_seq0))
+        # the fix positions a live score may still read (_fix_floor on)
+        skip = min(self.fix_n, max(0, self._fix_floor(self.seq) - self.fix_seq0))
         arrays.append(self.fix_xy[skip:self.fix_n].tobytes())
         before = None
         if self.before is not None:
