@@ -91,16 +91,8 @@ def kept(ti: np.ndarray) -> list[int]:
 
 def fixes_of(ti: np.ndarray, rows: list[int]) -> tuple[int, int]:
     """The first and last fix slot (``j`` from ``H_T0``) that the kept rows span."""
-    fb = ti.shape[0] - int(ti[tk.H_TCAP])
-    nf = int(ti[tk.H_NF])
-    first, last = rows[0], rows[-1]
-    j_last = nf - 1
-    while ti[fb + j_last] > last:
-        j_last -= 1
-    j_first = 0
-    while j_first + 1 < nf and ti[fb + j_first + 1] <= first:
-        j_first += 1
-    return j_first, j_last
+    t0 = int(ti[tk.H_T0])
+    return int(tk.seq_at(ti, rows[0])) - t0, int(tk.seq_at(ti, rows[-1])) - t0
 
 
 def price(ti: np.ndarray, tf: np.ndarray) -> dict[str, int]:
