@@ -12,7 +12,9 @@ test (5-35 s) keeps the state before the newest fix, and bridged steps start tre
 afresh. Nothing is timed.
 
 Run: ``.venv/bin/python bench/restorecheck.py [--extract test,helsinki] [--drives 6]
-[--duration 900] [--intervals 1,15,30] [--seed 23]``; exit status 1 if anything differs.
+[--duration 900] [--intervals 1,15,30] [--seed 23] [--config FILE]``; ``--config``: a
+livematch configuration whose ``[matcher]`` settings both trackers run with (e.g.
+``config/fleet.toml``); exit status 1 if anything differs.
 """
 
 from __future__ import annotations
@@ -25,6 +27,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 from _drives import drive_fixes, load_extract
 
+from livematch.commands.replay import load_replay_config
 from livematch.core.settings import MatchSettings
 from livematch.core.tracker import Tracker
 
@@ -64,8 +67,9 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--duration", type=float, default=900.0)
     parser.add_argument("--intervals", default="1,15,30")
     parser.add_argument("--seed", type=int, default=23)
+    parser.add_argument("--config", default=None, help="[matcher] settings from this file")
     args = parser.parse_args(argv)
-    settings = MatchSettings()
+    settings = load_replay_config(args.config)[0] if args.config else MatchSettings()
     bad = False
     for extract in args.extract.split(","):
         for interval in (int(v) for v in args.intervals.split(",")):
