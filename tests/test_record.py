@@ -11,7 +11,16 @@ import sys
 import time
 
 import pytest
-from services import T0, Collector, drive, publisher, subprocess_env, town, write_config
+from services import (
+    T0,
+    Collector,
+    drive,
+    publisher,
+    subprocess_env,
+    town,
+    wait_until,
+    write_config,
+)
 
 from livematch.cli import main
 from livematch.commands.record import _mqtt_config, record_feed
@@ -295,10 +304,7 @@ async def test_daemon_with_recording_pipeline_replays_to_what_it_published(
     messages.insert(4, (f"{prefix}/fleet/car-1/position", b"lat=1;lon=2"))
     async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col:
         task = asyncio.create_task(daemon.run())
-        for _ in range(400):
-            if not daemon.readiness():
-                break
-            await asyncio.sleep(0.025)
+        await wait_until(lambda: not daemon.readiness(), "the daemon ready")
         async with publisher(mosquitto.port) as pub:
             for topic, payload in messages:
                 await pub.publish(topic, payload, qos=1)
