@@ -13,8 +13,10 @@ from pathlib import Path
 from typing import Any
 
 import aiomqtt
+import anyio
 import pytest
 import redis
+from moat.lib.mqtt.async_broker import AsyncMQTTBroker, MQTTAuthorizer
 from prometheus_client.parser import text_string_to_metric_families
 from services import (
     PROJECTION,
@@ -877,3 +879,59 @@ async def test_daemon_two_lone_workers_on_one_broker_each_answer_their_feed(
         values = metric_values(pages[w][1])
         assert values[("livematch_messages_received_total", ())] == 24
         assert values[("livematch_fixes_processed_total", ())] == 24
+
+
+class HeldSubscriptions(MQTTAuthorizer):
+    """A broker hook that holds back one client's SUBSCRIBE (so its SUBACK) until released."""
+
+    def __init__(self, client_id: str) -> None:
+        self.client_id = client_id
+        self.asked = asyncio.Event()
+        self.release = asyncio.Event()
+
+    async def authorize_publish(self, topic: str, client_id: str, username: str | None,
+                                stream: Any) -> None:
+        return None
+
+    async def authorize_subscribe(self, pattern: Any, client_id: str, username: str | None,
+                                  stream: Any) -> None:
+        if client_id == self.client_id:
+            self.asked.set()
+            await self.release.wait()
+        return None
+
+
+async def test_daemon_not_ready_until_its_subscription_is_acknowledged(
+        prefix: str, tmp_path: Path) -> None:
+    """Connected, with the broker holding back its SUBACK: not ready (/readyz names the
+    broker); ready once the SUBACK is in, and a fix published then is matched.
+
+    A fleet that publishes as soon as the daemon is ready must not lose fixes to a
+    subscription the broker has not taken yet (MQTT 5.0, 3.8.4: the SUBACK follows the
+    subscription's processing). The broker is moat-lib-mqtt's (the demo's), whose
+    authorizer hook can delay a SUBSCRIBE.
+    """
+    hold = HeldSubscriptions(f"livematch-{prefix}")
+    broker = AsyncMQTTBroker(bind_address=("127.0.0.1", 0), authorizers=[hold])
+    async with anyio.create_task_group() as tg:
+        port = await tg.start(broker.serve)
+        daemon = make_daemon(write_config(tmp_path, prefix, broker=f"mqtt://127.0.0.1:{port}"))
+        task = asyncio.create_task(daemon.run())
+        try:
+            await wait_until(hold.asked.is_set, "the daemon's SUBSCRIBE")
+            assert daemon.broker_connected  # connected, subscription not acknowledged
+            assert daemon.readiness() == ["broker"]
+            assert await http_get(daemon.http.port, "/readyz") == (  # type: ignore[union-attr]
+                503, "not ready: broker\n")
+            hold.release.set()
+            await wait_until(lambda: daemon.readiness() == [], "ready after the SUBACK")
+            async with aiomqtt.Client("127.0.0.1", port, identifier=f"pub-{prefix}",
+                                      protocol=aiomqtt.ProtocolVersion.V5) as pub:
+                await pub.publish(f"{prefix}/fleet/bus-s/position", drive("bus-s", 1)[0][1],
+                                  qos=1)
+            await wait_until(lambda: daemon.pipeline.counters["fixes"] == 1, "the fix matched")
+        finally:
+            hold.release.set()
+            daemon.request_stop()
+            await asyncio.wait_for(task, timeout=30)
+            tg.cancel_scope.cancel()
