@@ -279,7 +279,7 @@ class Collector:
 
     async def __aenter__(self) -> Collector:
         self._task = asyncio.create_task(self._run(), name="collector")
-        await asyncio.wait_for(self.subscribed.wait(), timeout=10)
+        await asyncio.wait_for(self.subscribed.wait(), timeout=WAIT_S)
         return self
 
     async def __aexit__(self, *exc: object) -> None:
