@@ -674,8 +674,10 @@ class LiveDemo:
                     daemon.request_stop()
                     with contextlib.suppress(Exception):
                         await asyncio.wait_for(asyncio.shield(daemon_task), timeout=30)
-                    # what it published while stopping (its last outputs) reaches the board
-                    await self._until(lambda: self._board_has(daemon), self._board_seen)
+                    if not _failed(daemon_task):
+                        # what it published while stopping (its last outputs) reaches the
+                        # board
+                        await self._until(lambda: self._board_has(daemon), self._board_seen)
                     for task in (watch_task, tick_task):
                         task.cancel()
                     await asyncio.gather(watch_task, tick_task, return_exceptions=True)
@@ -690,7 +692,7 @@ class LiveDemo:
                     await asyncio.wait_for(daemon_task, timeout=30)
             for stream in live_streams.values():
                 stream.close()
-        if daemon_task.done() and not daemon_task.cancelled() and daemon_task.exception():
+        if _failed(daemon_task):
             raise DemoError(f"the daemon failed: {daemon_task.exception()}") \
                 from daemon_task.exception()
         last_at = self.messages[published - 1].at if published else None
@@ -832,6 +834,11 @@ def _first_os_error(exc: BaseException) -> OSError | None:
             if found is not None:
                 return found
     return None
+
+
+def _failed(task: asyncio.Task[None]) -> bool:
+    """Whether ``task`` ended with an exception (not: still running, cancelled, returned)."""
+    return task.done() and not task.cancelled() and task.exception() is not None
 
 
 def _with_broker(config: DaemonConfig, url: str) -> DaemonConfig:
