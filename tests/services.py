@@ -11,7 +11,9 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import getpass
+import inspect
 import json
+import logging
 import os
 import random
 import shutil
@@ -21,7 +23,7 @@ import ssl
 import subprocess
 import time
 import uuid
-from collections.abc import AsyncIterator
+from collections.abc import AsyncIterator, Callable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -37,6 +39,12 @@ from livematch.core.network import RoadNetwork
 MOSQUITTO = shutil.which("mosquitto") or "/usr/sbin/mosquitto"
 MOSQUITTO_PASSWD = shutil.which("mosquitto_passwd") or "/usr/bin/mosquitto_passwd"
 REDIS_SERVER = shutil.which("redis-server") or "/usr/bin/redis-server"
+
+#: Upper bound of a wait for something a test expects to happen (a daemon ready, a
+#: message seen, a log line written). Generous on purpose: CI's 2-core machine may be
+#: busy (load 6-13 made 1.5-10 s waits fail, docs/measured.md "Session 29 (flaky29)"),
+#: and a wait ends as soon as its condition holds, so a passing test never waits it out.
+WAIT_S = 120.0
 
 
 def _ephemeral_range() -> tuple[int, int]:
@@ -271,7 +279,7 @@ class Collector:
 
     async def __aenter__(self) -> Collector:
         self._task = asyncio.create_task(self._run(), name="collector")
-        await asyncio.wait_for(self.subscribed.wait(), timeout=10)
+        await asyncio.wait_for(self.subscribed.wait(), timeout=WAIT_S)
         return self
 
     async def __aexit__(self, *exc: object) -> None:
@@ -293,7 +301,7 @@ class Collector:
             seen.setdefault(r["time"], set()).add(r["window_fixes"])
         return [seen[t] for t in sorted(seen)]
 
-    async def wait_for(self, topic_part: str, count: int, timeout: float = 30.0) -> None:
+    async def wait_for(self, topic_part: str, count: int, timeout: float = WAIT_S) -> None:
         """Wait until at least ``count`` messages with ``topic_part`` arrived."""
         deadline = time.monotonic() + timeout
         while len(self.records(topic_part)) < count:
@@ -301,6 +309,33 @@ class Collector:
                 raise AssertionError(f"only {len(self.records(topic_part))} of {count} "
                                      f"messages on *{topic_part}* after {timeout} s")
             await asyncio.sleep(0.05)
+
+
+async def wait_until(cond: Callable[[], object], what: str, timeout: float = WAIT_S,
+                     poll_s: float = 0.05) -> None:
+    """Wait until ``cond()`` is true (awaiting it when it returns an awaitable).
+
+    Raises AssertionError naming ``what`` after ``timeout`` seconds. Use it instead of a
+    fixed sleep before an assertion: the test then waits for the event itself (a
+    readiness change, a log line, a counter), as long as a loaded machine needs and no
+    longer.
+    """
+    deadline = time.monotonic() + timeout
+    while True:
+        got = cond()
+        if inspect.isawaitable(got):
+            got = await got
+        if got:
+            return
+        if time.monotonic() > deadline:
+            raise AssertionError(f"timed out after {timeout:g} s waiting for {what}")
+        await asyncio.sleep(poll_s)
+
+
+def logged(records: Sequence[logging.LogRecord], message: str) -> int:
+    """How many of ``records`` have exactly ``message`` (a log line's text before its
+    ``key=value`` fields)."""
+    return sum(1 for r in records if r.getMessage() == message)
 
 
 @contextlib.asynccontextmanager

@@ -17,6 +17,7 @@ from services import (
     publisher,
     town,
     wait_listening,
+    wait_until,
     write_config,
 )
 
@@ -48,13 +49,6 @@ def aof_redis(tmp_path: Path) -> Iterator[PersistentRedis]:
     server.start()
     yield server
     server.stop()
-
-
-async def wait_until(cond: object, timeout: float = 20.0, what: str = "") -> None:
-    deadline = asyncio.get_running_loop().time() + timeout
-    while not cond():  # type: ignore[operator]
-        assert asyncio.get_running_loop().time() < deadline, f"timed out: {what}"
-        await asyncio.sleep(0.05)
 
 
 async def test_group_redis_restart_answers_every_fix_and_state_continues(

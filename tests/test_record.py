@@ -11,7 +11,17 @@ import sys
 import time
 
 import pytest
-from services import T0, Collector, drive, publisher, subprocess_env, town, write_config
+from services import (
+    T0,
+    WAIT_S,
+    Collector,
+    drive,
+    publisher,
+    subprocess_env,
+    town,
+    wait_until,
+    write_config,
+)
 
 from livematch.cli import main
 from livematch.commands.record import _mqtt_config, record_feed
@@ -182,12 +192,12 @@ async def test_record_feed_writes_every_message_in_order(mosquitto, prefix, tmp_
     subscribed = asyncio.Event()
     task = asyncio.create_task(record_feed(config, tap, count=len(msgs),
                                            subscribed=subscribed))
-    await asyncio.wait_for(subscribed.wait(), timeout=10)
+    await asyncio.wait_for(subscribed.wait(), timeout=WAIT_S)
     async with publisher(mosquitto.port) as pub:
         await pub.publish(f"{prefix}/other/topic", b"not recorded", qos=1)
         for topic, payload in msgs:
             await pub.publish(topic, payload, qos=1)
-    recorded = await asyncio.wait_for(task, timeout=20)
+    recorded = await asyncio.wait_for(task, timeout=WAIT_S)
     tap.close()
     assert recorded == len(msgs)
     entries = list(read_replay_log(path))
@@ -206,11 +216,11 @@ async def test_record_feed_takes_several_topic_filters(mosquitto, prefix, tmp_pa
     task = asyncio.create_task(record_feed(
         config, tap, count=len(msgs), subscribed=subscribed,
         more_topics=[f"{prefix}/livematch/control/+/route"]))
-    await asyncio.wait_for(subscribed.wait(), timeout=10)
+    await asyncio.wait_for(subscribed.wait(), timeout=WAIT_S)
     async with publisher(mosquitto.port) as pub:
         for topic, payload in msgs:
             await pub.publish(topic, payload, qos=1)
-    assert await asyncio.wait_for(task, timeout=20) == len(msgs)
+    assert await asyncio.wait_for(task, timeout=WAIT_S) == len(msgs)
     tap.close()
     assert [(e.topic, e.payload) for e in read_replay_log(tap.files[0])] == msgs
 
@@ -221,9 +231,9 @@ async def test_record_feed_stops_when_asked(mosquitto, prefix, tmp_path):
     tap = RecordingTap(tmp_path / "feed.jsonl")
     stop, subscribed = asyncio.Event(), asyncio.Event()
     task = asyncio.create_task(record_feed(config, tap, stop=stop, subscribed=subscribed))
-    await asyncio.wait_for(subscribed.wait(), timeout=10)
+    await asyncio.wait_for(subscribed.wait(), timeout=WAIT_S)
     stop.set()
-    assert await asyncio.wait_for(task, timeout=5) == 0
+    assert await asyncio.wait_for(task, timeout=WAIT_S) == 0  # without a message
     assert tap.files == []
 
 
@@ -238,7 +248,8 @@ def test_record_command_stops_on_sigterm_with_a_whole_gzip(mosquitto, prefix, tm
 
     async def feed() -> None:
         async with publisher(mosquitto.port) as pub:
-            deadline = time.monotonic() + 20
+            # until the recorder (a new process: imports, connection) has written 40
+            deadline = time.monotonic() + WAIT_S
             while time.monotonic() < deadline:
                 payload = b'{"n": %d}' % len(sent)
                 await pub.publish(f"{prefix}/fleet/v1/position", payload, qos=1)
@@ -249,7 +260,7 @@ def test_record_command_stops_on_sigterm_with_a_whole_gzip(mosquitto, prefix, tm
 
     asyncio.run(feed())
     proc.send_signal(signal.SIGTERM)
-    _, err = proc.communicate(timeout=20)
+    _, err = proc.communicate(timeout=WAIT_S)
     assert proc.returncode == 0, err
     got = [e.payload for e in read_replay_log(path)]  # raises on a truncated gzip
     assert got and got == sent[sent.index(got[0]):sent.index(got[0]) + len(got)]
@@ -262,7 +273,7 @@ def test_record_command_stops_after_duration(mosquitto, prefix, tmp_path):
     proc = subprocess.run(
         [sys.executable, "-m", "livematch.cli", "record", "--broker", mosquitto.url,
          "--out", str(tmp_path / "x.jsonl"), "--topic", f"{prefix}/#", "--duration", "1"],
-        env=subprocess_env(), capture_output=True, text=True, timeout=30, check=False)
+        env=subprocess_env(), capture_output=True, text=True, timeout=WAIT_S, check=False)
     assert proc.returncode == 0, proc.stderr
     assert time.monotonic() - started >= 1.0
     assert "recorded 0 messages" in proc.stderr
@@ -295,10 +306,7 @@ async def test_daemon_with_recording_pipeline_replays_to_what_it_published(
     messages.insert(4, (f"{prefix}/fleet/car-1/position", b"lat=1;lon=2"))
     async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/out/#") as col:
         task = asyncio.create_task(daemon.run())
-        for _ in range(400):
-            if not daemon.readiness():
-                break
-            await asyncio.sleep(0.025)
+        await wait_until(lambda: not daemon.readiness(), "the daemon ready")
         async with publisher(mosquitto.port) as pub:
             for topic, payload in messages:
                 await pub.publish(topic, payload, qos=1)

@@ -12,7 +12,7 @@ import aiomqtt
 import paho.mqtt.client as paho_client
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
-from services import Collector, Mosquitto
+from services import WAIT_S, Collector, Mosquitto
 
 from livematch.service.mqtt import (
     ReceivedTopic,
@@ -72,14 +72,14 @@ async def test_lean_receive_decodes_as_paho(mosquitto: Mosquitto, prefix: str) -
             await client.subscribe(f"{prefix}/lean/#", qos=1)
         for topic, payload, qos, props in sent:  # from the lean client: PUBACKs read lean
             await lean.publish(topic, payload, qos=qos, properties=props)
-        async with asyncio.timeout(10):
+        async with asyncio.timeout(WAIT_S):
             while len(delivered) + direct._queue.qsize() < len(sent):
                 await asyncio.sleep(0.01)
         while not direct._queue.empty():  # with properties: paho's way, aiomqtt's queue
             delivered.append(direct._queue.get_nowait())
         for name, client in (("plain", plain), ("lean", lean)):
             rows = got.setdefault(name, [])
-            async with asyncio.timeout(10):
+            async with asyncio.timeout(WAIT_S):
                 async for m in client.messages:
                     kind = ("none" if m.properties is None else "user"
                             if hasattr(m.properties, "UserProperty") else "empty")
@@ -192,7 +192,7 @@ async def test_publish_now_round_trip_through_broker(mosquitto: Mosquitto, prefi
             for k, size in enumerate((0, 1, 200, 20_000, 300_000))]
     async with Collector("127.0.0.1", mosquitto.port, f"{prefix}/rt/#") as col, client:
         infos = [publish_now(client, t, p, qos=1, retain=False) for t, p in sent]
-        async with asyncio.timeout(10):
+        async with asyncio.timeout(WAIT_S):
             while len(col.messages) < len(sent) or not all(i.is_published() for i in infos):
                 await asyncio.sleep(0.01)
     got = {topic: payload for topic, payload, _retain in col.messages}
@@ -398,8 +398,8 @@ async def test_on_acknowledged_wakes_aiomqtt_only_for_its_own_publishes(
         infos = [publish_now(client, f"{prefix}/ack/{k}", b"{}", qos=1, retain=False)
                  for k in range(5)]
         await asyncio.wait_for(asyncio.gather(*(
-            client.publish(f"{prefix}/ack/a{k}", b"{}", qos=1) for k in range(3))), 10)
-        async with asyncio.timeout(10):
+            client.publish(f"{prefix}/ack/a{k}", b"{}", qos=1) for k in range(3))), WAIT_S)
+        async with asyncio.timeout(WAIT_S):
             while not all(i.is_published() for i in infos):
                 await asyncio.sleep(0.01)
     assert sorted(acked) == sorted({i.mid for i in infos} | set(looked_up))

@@ -8,7 +8,16 @@ from pathlib import Path
 
 import pytest
 import redis
-from services import Mosquitto, RedisServer, drive, publisher, town, write_config
+from services import (
+    Mosquitto,
+    RedisServer,
+    drive,
+    logged,
+    publisher,
+    town,
+    wait_until,
+    write_config,
+)
 from test_service_daemon import running
 
 from livematch.config import load_config
@@ -49,18 +58,19 @@ async def test_daemon_redis_password_from_env_never_logged(
     async with running(daemon), publisher(mosquitto.port) as pub:
         for _, payload in drive("sec-1", 6):
             await pub.publish(f"{prefix}/fleet/sec-1/position", payload, qos=1)
-        for _ in range(200):
-            if daemon.pipeline.counters["fixes"] == 6:
-                break
-            await asyncio.sleep(0.05)
+        await wait_until(lambda: daemon.pipeline.counters["fixes"] == 6, "6 fixes matched")
     raw = redis.Redis.from_url(auth_redis.url, password=SECRET)
     assert raw.exists(f"{prefix}:vehicle:sec-1") == 1
     with pytest.raises(redis.AuthenticationError):
         redis.Redis.from_url(auth_redis.url).ping()  # the server really needs AUTH
     wrong = load_config(cfg, env={"LIVEMATCH_REDIS_PASSWORD": "wrong-redis-pass-9"})
     daemon = Daemon(wrong, Pipeline(daemon.pipeline.network, wrong.matcher))
+    seen = len(caplog.records)
     task = asyncio.create_task(daemon.run())
-    await asyncio.sleep(1.5)
+    # refused, and refused again on the retry: not a slow first attempt
+    await wait_until(lambda: task.done() or logged(
+        caplog.records[seen:], "store unavailable") >= 2, "two refused store connections")
+    assert not task.done(), task.exception()
     assert "store" in daemon.readiness()
     daemon.request_stop()
     await asyncio.wait_for(task, timeout=30)

@@ -18,7 +18,16 @@ import pytest
 import redis
 import redis.asyncio as aioredis
 from scipy.stats import chisquare
-from services import Collector, Mosquitto, RedisServer, drive, publisher, town, write_config
+from services import (
+    Collector,
+    Mosquitto,
+    RedisServer,
+    drive,
+    publisher,
+    town,
+    wait_until,
+    write_config,
+)
 
 from livematch.config import load_config
 from livematch.errors import BadConfigError
@@ -361,10 +370,7 @@ async def test_renewal_thread_renews_while_event_loop_blocked(redis_url: str,
             assert await b.acquire(1) is None  # still a's in Redis
             await a.client.delete(a.key(1, "lease"))
             got.clear()
-            for _ in range(100):
-                if got:
-                    break
-                await asyncio.sleep(0.02)
+            await wait_until(lambda: got, "a renewal delivered")
             assert a.apply(got[0]) == [1]
             assert a.held == {}
         finally:
@@ -392,10 +398,7 @@ async def test_renewal_thread_lets_leases_lapse_when_event_loop_stuck(redis_url:
             rounds = len(got)
             assert rounds <= 5  # about stall_s / period rounds, then none (1 s / 0.33 s)
             thread.applied()  # the loop runs again and confirms
-            for _ in range(100):
-                if len(got) > rounds:
-                    break
-                await asyncio.sleep(0.02)
+            await wait_until(lambda: len(got) > rounds, "a renewal after the confirmation")
             assert not thread.stalled
             assert a.apply(got[-1]) == [1]  # a learns that it lost the shard
         finally:
@@ -527,13 +530,6 @@ def group_daemon(config_path: Path, worker: str) -> Daemon:
     return Daemon(config, Pipeline(town(), config.matcher, limits=config.feed,
                                    alerts=config.alerts,
                                    control_topic=config.mqtt.control_topic))
-
-
-async def wait_until(cond: object, timeout: float = 20.0, what: str = "") -> None:
-    deadline = asyncio.get_running_loop().time() + timeout
-    while not cond():  # type: ignore[operator]
-        assert asyncio.get_running_loop().time() < deadline, f"timed out: {what}"
-        await asyncio.sleep(0.05)
 
 
 @pytest.fixture

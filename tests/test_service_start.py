@@ -9,7 +9,15 @@ import sys
 import time
 from pathlib import Path
 
-from services import Mosquitto, free_port, http_get, subprocess_env, town, write_config
+from services import (
+    WAIT_S,
+    Mosquitto,
+    free_port,
+    http_get,
+    subprocess_env,
+    town,
+    write_config,
+)
 
 from livematch.mapdata.netfile import save_network
 
@@ -102,7 +110,7 @@ def test_run_without_network_fails_with_one_line(tmp_path: Path) -> None:
     cfg = write_config(tmp_path, "nonet", broker="mqtt://127.0.0.1:1",
                        metrics=f"127.0.0.1:{port}")
     done = subprocess.run([sys.executable, "-m", "livematch.cli", "run", "--config", str(cfg)],
-                          capture_output=True, text=True, env=subprocess_env(), timeout=60)
+                          capture_output=True, text=True, env=subprocess_env(), timeout=WAIT_S)
     assert done.returncode == 2
     errors = [line for line in done.stderr.splitlines() if line.startswith("livematch: error:")]
     assert len(errors) == 1 and "no road network" in errors[0]

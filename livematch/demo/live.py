@@ -51,6 +51,7 @@ from livematch.demo.scenario import Message, Scenario
 from livematch.errors import LivematchError
 from livematch.feed.replaylog import ReplayLogWriter
 from livematch.pipeline import prepare_kernels
+from livematch.service.logs import fields
 
 __all__ = [
     "DEMO_ORDER",
@@ -80,6 +81,17 @@ DEMO_ORDER = ("bus-21", "van-3", "bus-31", "bus-11", "bus-41", "van-1", "bus-22"
 WATCH_FILTER = "livematch/#"
 #: How many alerts the board keeps for its "recent alerts" list.
 RECENT_ALERTS = 6
+#: Most messages the fleet publishes at once (then waits for their acknowledgements). A
+#: publisher that fell behind its pace finds many messages due; published all at once,
+#: the last acknowledgement waits behind all of them, which on a busy machine outlasted
+#: the client's time limit. Messages due together are one per vehicle: far fewer.
+PUBLISH_BATCH = 100
+#: Longest wait for the daemon to get ready (s): a first start on a busy machine can
+#: take many seconds; the kernels are compiled before this wait begins.
+READY_S = 120.0
+#: A wait for the daemon or the board to catch up gives up after this many seconds in
+#: which nothing moved (s); while messages are taken or outputs arrive it goes on.
+STALL_S = 60.0
 
 
 class DemoError(LivematchError):
@@ -328,7 +340,9 @@ async def publish_feed(
 
     The first message goes out at once; message ``m`` is due ``(m.at - first.at) /
     speedup`` wall seconds later. Messages due together are published concurrently and
-    each is acknowledged by the broker before the next batch. Messages with ``at`` after
+    each is acknowledged by the broker before the next batch (at most
+    :data:`PUBLISH_BATCH` at once: one that fell behind catches up in several batches,
+    back to back). Messages with ``at`` after
     ``until_at`` are not sent. ``on_publish(message, payload)`` runs for every message
     the broker acknowledged (the demo writes the replay log there).
 
@@ -366,10 +380,10 @@ async def publish_feed(
         batch = [messages[i]]
         i += 1
         while (i < len(messages) and messages[i].at <= until_at
-               and messages[i].at <= now_at):
+               and messages[i].at <= now_at and len(batch) < PUBLISH_BATCH):
             batch.append(messages[i])
             i += 1
-        payloads = [encode_payload(m.payload) for m in batch]
+        payloads = [encode_payload(m.payload) for m in batch]  # at most PUBLISH_BATCH
         await asyncio.gather(*(client.publish(m.topic, p, qos=1)
                                for m, p in zip(batch, payloads, strict=True)))
         sent += len(batch)
@@ -423,7 +437,6 @@ class Board:
     rows: dict[str, VehicleRow] = field(default_factory=dict)
     alerts: deque[dict[str, Any]] = field(default_factory=lambda: deque(maxlen=RECENT_ALERTS))
     all_alerts: list[dict[str, Any]] = field(default_factory=list)
-    last_seen: float = 0.0
 
     def __post_init__(self) -> None:
         self.rows = {v: VehicleRow(v) for v in self.vehicles}
@@ -624,10 +637,15 @@ class LiveDemo:
         with contextlib.suppress(NotImplementedError, RuntimeError):  # not main thread
             loop.add_signal_handler(signal.SIGINT, self.request_stop)
         try:
-            if self.on_broker is not None:
-                self.on_broker(url)
+            # Build the daemon (read the map, routes, fences: seconds of CPU that block
+            # this event loop, and the broker with it) before the broker is announced: a
+            # watcher that connects on the announcement is then answered at once, where
+            # on a busy machine its CONNECT waited behind the build past its client's
+            # time limit ("Operation timed out").
             config = _with_broker(self.config, url)
             daemon = build_demo_daemon(config, self.files)
+            if self.on_broker is not None:
+                self.on_broker(url)
             return await self._run_with(daemon, url, wall0)
         finally:
             with contextlib.suppress(NotImplementedError, RuntimeError):
@@ -656,7 +674,10 @@ class LiveDemo:
                     daemon.request_stop()
                     with contextlib.suppress(Exception):
                         await asyncio.wait_for(asyncio.shield(daemon_task), timeout=30)
-                    await self._quiet(0.3, 3.0)
+                    if not _failed(daemon_task):
+                        # what it published while stopping (its last outputs) reaches the
+                        # board
+                        await self._until(lambda: self._board_has(daemon), self._board_seen)
                     for task in (watch_task, tick_task):
                         task.cancel()
                     await asyncio.gather(watch_task, tick_task, return_exceptions=True)
@@ -671,7 +692,7 @@ class LiveDemo:
                     await asyncio.wait_for(daemon_task, timeout=30)
             for stream in live_streams.values():
                 stream.close()
-        if daemon_task.done() and not daemon_task.cancelled() and daemon_task.exception():
+        if _failed(daemon_task):
             raise DemoError(f"the daemon failed: {daemon_task.exception()}") \
                 from daemon_task.exception()
         last_at = self.messages[published - 1].at if published else None
@@ -683,16 +704,19 @@ class LiveDemo:
                           time.monotonic() - wall0, self._first_at, last_at)
 
     async def _wait_ready(self, daemon: Any, task: asyncio.Task[None]) -> None:
-        """Until the daemon is connected, subscribed and restored (at most 30 s)."""
-        deadline = time.monotonic() + 30.0
+        """Until the daemon is connected, subscribed and restored (at most ``READY_S``).
+
+        Ready includes the broker's SUBACK (:meth:`Daemon.readiness`), so the fleet's
+        first messages cannot reach the broker before the daemon's subscription.
+        """
+        deadline = time.monotonic() + READY_S
         while daemon.readiness():
             if task.done():
                 raise DemoError(f"the daemon stopped while starting: {_outcome(task)}")
             if time.monotonic() > deadline:
-                raise DemoError(f"the daemon did not get ready in 30 s: missing "
+                raise DemoError(f"the daemon did not get ready in {READY_S:g} s: missing "
                                 f"{', '.join(daemon.readiness())}")
             await asyncio.sleep(0.02)
-        await asyncio.sleep(0.2)  # its SUBSCRIBE is sent right after it reports connected
 
     async def _publish(self, fleet: aiomqtt.Client, daemon_task: asyncio.Task[None]) -> int:
         if self._first_at is None:
@@ -723,17 +747,50 @@ class LiveDemo:
 
     async def _drain(self, daemon: Any, daemon_task: asyncio.Task[None], published: int
                      ) -> None:
-        """Until the daemon took every published message and its outputs stopped coming."""
-        deadline = time.monotonic() + 30.0
-        while (daemon.pipeline.counters["messages"] < published and not daemon_task.done()
-               and time.monotonic() < deadline):
-            await asyncio.sleep(0.05)
-        await self._quiet(0.5, 15.0)
+        """Until the daemon took every published message and the board has every output.
 
-    async def _quiet(self, quiet_s: float, limit_s: float) -> None:
-        """Until nothing arrived at the board for ``quiet_s`` (at most ``limit_s``)."""
-        deadline = time.monotonic() + limit_s
-        while time.monotonic() < deadline and time.monotonic() - self.board.last_seen < quiet_s:
+        Waited for as events (the daemon's message count, its queue of outputs, what the
+        broker acknowledged against what the board received), not for a fixed time: on
+        a busy machine the daemon may trail the fleet by many seconds, and stopping it
+        early would drop the fixes it had not taken yet (bus-21's detour among them).
+        Only a wait with no progress at all for ``STALL_S`` gives up.
+        """
+        def done() -> bool:
+            return daemon_task.done() or (
+                daemon.pipeline.counters["messages"] >= published and self._board_has(daemon))
+
+        def progress() -> tuple[int, int]:
+            return daemon.pipeline.counters["messages"], self._board_seen()
+
+        await self._until(done, progress)
+
+    def _board_seen(self) -> int:
+        """How many outputs the board has received (every kind)."""
+        return sum(self.board.counts.values())
+
+    def _board_has(self, daemon: Any) -> bool:
+        """Whether the board has every output: none waiting, each one acknowledged seen.
+
+        Counted by kind: the board received at least as many of each kind as the broker
+        acknowledged to the daemon.
+        """
+        if daemon.outputs_waiting():
+            return False
+        counts = self.board.counts
+        return all(counts[kind] >= n for kind, n in daemon.published_counts().items())
+
+    async def _until(self, done: Callable[[], bool], progress: Callable[[], object]) -> None:
+        """Until ``done()``, or ``STALL_S`` without a change in ``progress()`` (logged)."""
+        last = progress()
+        moved = time.monotonic()
+        while not done():
+            now = progress()
+            if now != last:
+                last, moved = now, time.monotonic()
+            elif time.monotonic() - moved > STALL_S:
+                log.warning("gave up waiting: no progress",
+                            extra=fields(seconds=STALL_S, progress=last))
+                return
             await asyncio.sleep(0.05)
 
     async def _watch(self, watcher: aiomqtt.Client, streams: Mapping[str, Any]) -> None:
@@ -741,7 +798,6 @@ class LiveDemo:
             payload = message.payload
             if not isinstance(payload, bytes | bytearray):
                 payload = str(payload).encode()
-            self.board.last_seen = time.monotonic()
             kind = self.board.observe(message.topic.value, bytes(payload))
             if kind is not None:
                 streams[kind].write(bytes(payload) + b"\n")
@@ -778,6 +834,11 @@ def _first_os_error(exc: BaseException) -> OSError | None:
             if found is not None:
                 return found
     return None
+
+
+def _failed(task: asyncio.Task[None]) -> bool:
+    """Whether ``task`` ended with an exception (not: still running, cancelled, returned)."""
+    return task.done() and not task.cancelled() and task.exception() is not None
 
 
 def _with_broker(config: DaemonConfig, url: str) -> DaemonConfig:

@@ -382,6 +382,10 @@ class Daemon:
         self.metrics = metrics or Metrics()
         self.http: HealthServer | None = http
         self.broker_connected = False
+        # True once the current connection's SUBACKs are in: until then a fix published
+        # by a fleet that saw the daemon ready could reach the broker before the
+        # subscription and be dropped (a new session has nothing to queue it in)
+        self.subscribed = False
         self.store_ok = False
         self.restored = False
         self._stopping = asyncio.Event()
@@ -507,15 +511,33 @@ class Daemon:
             _wake(waiter)
 
     def readiness(self) -> list[str]:
-        """What is not ready (empty when ready): ``broker``, ``store``, ``restore``."""
+        """What is not ready (empty when ready): ``broker``, ``store``, ``restore``.
+
+        ``broker`` stays missing until the connection is subscribed (every SUBACK in),
+        not only connected: ready means a fix published now is received.
+        """
         missing = []
-        if not self.broker_connected:
+        if not (self.broker_connected and self.subscribed):
             missing.append("broker")
         if not self.store_ok:
             missing.append("store")
         if not self.restored:
             missing.append("restore")
         return missing
+
+    def published_counts(self) -> Counter[str]:
+        """Outputs the broker acknowledged so far, by kind; a copy.
+
+        Kinds: ``assignment``, ``commit``, ``alert``, ``reject``.
+
+        A subscriber that has received this many of each kind has received everything
+        published so far (the demo's drain waits for its board to get there).
+        """
+        return Counter(self._published_n)
+
+    def outputs_waiting(self) -> int:
+        """Outputs queued or in flight, not yet acknowledged by the broker."""
+        return len(self._outbox) + len(self._reject_box)
 
     async def run(self) -> None:
         """Run until :meth:`request_stop`; returns after a clean shutdown."""
@@ -1650,6 +1672,7 @@ class Daemon:
                 self._session_failed(exc)
             finally:
                 self.broker_connected = False
+                self.subscribed = False
             if not self._stopping.is_set():
                 await self._sleep_unless_stopping(backoff.next())
         left = len(self._outbox) + len(self._reject_box)
@@ -1730,6 +1753,7 @@ class Daemon:
         if cfg.control_topic:
             await until_answered(client, client.subscribe(
                 cfg.control_topic, qos=cfg.qos, timeout=math.inf))
+        self.subscribed = True
         log.info("connected and subscribed",
                  extra=fields(broker=redact_url(cfg.url), topic=cfg.topic,
                               control_topic=cfg.control_topic,

@@ -7,8 +7,9 @@ reads the daemon's state directly.
 
 - ``/metrics``: the daemon's registry in the Prometheus text format.
 - ``/healthz``: 200 while the process is alive and its event loop answers.
-- ``/readyz``: 200 when the broker and the state store are connected, 503 otherwise
-  (the body names what is missing).
+- ``/readyz``: 200 when the daemon is subscribed at the broker (connected, every
+  SUBACK in) and the state store is connected, 503 otherwise (the body names what is
+  missing).
 
 ``livematch run`` starts it before it loads the road network and compiles the matcher's
 kernels (tens of seconds on a cold numba cache), so ``/healthz`` answers during that
