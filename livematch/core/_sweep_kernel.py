@@ -671,8 +671,9 @@ def row_spare(m: int, k: int) -> int:
     ``m`` the step's new live block, ``k`` the old one: one and a half live blocks and
     ``MIN_SPARE`` (twice the live block until session 15: a 1 Hz tree compacts about
     every second fix either way, and the room of half a live block was 24 bytes a row
-    never written). The vias get twice this (4 bytes each; a step's vias vary more
-    than its rows, and running out of them was most of the new arrays a tree made).
+    never written). The vias get as many (4 bytes each; twice as many until session
+    29: about 0.2 KB more a 1 Hz tracker for about 0.1 fewer new arrays a fix,
+    ``bench/memory.py --steps 7``, docs/measured.md).
     """
     return max(m, k + k // 2 + MIN_SPARE)
 
@@ -812,10 +813,10 @@ def tree_sweep(
         # the fix times kept run from the first kept row's fix to the live block's (the
         # last kept row), and the new rows' fix comes after it
         span_t = seq - (ti[H_T0] + ti[H_NF] - 1 - span + 1) + 1
-        # the room of new arrays (rows: row_spare; vias: twice that, or half those kept)
+        # the room of new arrays (rows: row_spare; vias: as many, or half those kept)
         spare = row_spare(m, k)
         cap = kept + max(kept // 4, spare)
-        cap_v = kept_v + max(kept_v // 2, max(n_via, 2 * spare))
+        cap_v = kept_v + max(kept_v // 2, max(n_via, spare))
         # (arrays with room for over a quarter more rows than new arrays would get,
         # ``cap``, or half as many vias again as ``cap_v``, are replaced: until session
         # 28 the rows were held against what new arrays got before session 15, twice

@@ -264,7 +264,7 @@ class CandidateTree:
 
         The room left is at least ``spare_rows``, one and a half live blocks plus
         ``_MIN_SPARE`` (:func:`~livematch.core._tree_kernel.row_spare`), and a quarter of
-        the rows kept (vias: ``spare_vias``, two per row of room and half the vias kept):
+        the rows kept (vias: ``spare_vias``, one per row of room and half the vias kept):
         a step or two before the next compaction, as a tree step that finds its arrays
         full leaves. Tight on purpose:
         a service holds many idle trees, and a compaction costs about a microsecond.
@@ -276,7 +276,7 @@ class CandidateTree:
         compacts often), so each carries numba's memory-info object (about 130 bytes).
         """
         rows: int = _CALLS.row_spare(spare_rows, len(self))
-        vias = max(spare_vias, 2 * rows)  # a step's vias vary more than its rows
+        vias = max(spare_vias, rows)
         self.ti, self.tf = _t.compact(self.ti, self.tf, rows, vias, spare_t, spare_live)
         self._synced()
 
