@@ -200,6 +200,7 @@ STAND_KEEP_S: Final = 3.0
 # Entries of Tracker._held (usually one or two: the stand's anchor, the newest run's)
 _HELD_MEMO: Final = 8
 _NO_FIXES: Final = np.empty((0, 2))  # shared by trackers that have seen no fix (never written)
+_NAN: Final = math.nan  # the time of a fix not there (Tracker._last, _stand)
 # A fix this many seconds after the fix before, from SPIKE_MIN_S to SPIKE_MAX_S, is kept
 # open to the spike test (MatchSettings.spike_cost). Closer fixes are left to the jump
 # filter, whose bound is tight at short steps. It stopped at 20 s while at 30 s between
@@ -351,11 +352,11 @@ class Tracker:
 
     # slots: a service holds one tracker per vehicle, and an instance dict costs more
     # than a small candidate tree
-    __slots__ = ("_held", "_view", "agreed_seq", "along_last", "before", "buffer", "fix_n",
-                 "fix_seq0", "fix_xy", "jumps", "lap_due", "lap_v", "last", "last_commit",
-                 "last_released_t", "last_seg", "last_v", "levels",
+    __slots__ = ("_commit", "_held", "_last", "_stand", "_view", "agreed_seq", "along_last",
+                 "before", "buffer", "fix_n", "fix_seq0", "fix_xy", "jumps", "lap_due",
+                 "lap_v", "last_released_t", "last_seg", "last_v", "levels",
                  "network", "next_commit", "rev_t", "said", "seq", "settings", "skipped",
-                 "speed", "stand_from", "stand_seq", "step_dir", "stood_t", "times", "times0",
+                 "speed", "stand_seq", "step_dir", "stood_t", "times", "times0",
                  "vehicle")
 
     def __init__(
@@ -371,7 +372,11 @@ class Tracker:
         self._view: NetworkView = view_of(network)
         self.levels = [Level(e) for e in self.settings.eps_levels]
         self.seq = 0
-        self.last: tuple[float, float, float] | None = None  # t, x, y of the last accepted fix
+        # t, x, y of the last accepted fix (t NaN: none yet; read as ``last``). A tuple of
+        # three floats, not an optional one: compiled, the three doubles are stored in the
+        # tracker itself (24 bytes) rather than as a tuple and three float objects (136
+        # bytes a vehicle; bench/memory.py step 6). The same for _stand and _commit.
+        self._last: tuple[float, float, float] = (_NAN, _NAN, _NAN)
         self.last_released_t: float | None = None
         self.jumps = 0
         self.speed: float | None = None  # implied speed of the last accepted step, m/s
@@ -384,7 +389,9 @@ class Tracker:
         self.times: array[float] = array("d")
         self.times0 = 1
         self.next_commit = 1
-        self.last_commit: tuple[int, float, int, float] | None = None  # seg, pos, seq, t
+        # seg, pos, seq, t of the last commit's final state (seq -1: none yet; read as
+        # ``last_commit``)
+        self._commit: tuple[int, float, int, float] = (-1, 0.0, -1, 0.0)
         self.skipped: tuple[float, ...] = ()
         self.last_seg = -1  # segment of the last assignment (breaks exact ties)
         # positions of the accepted fixes from fix_seq0 on (row i: fix fix_seq0 + i; the
@@ -395,8 +402,9 @@ class Tracker:
         self.fix_n = 0
         self.before: _Before | None = None  # the state before the newest fix (spike test)
         # with stop_turns: the first fix (t, x, y) of the newest run of fixes within
-        # STAND_SIGMAS sigma_m of it, and the last time such a run spanned STAND_S
-        self.stand_from: tuple[float, float, float] | None = None
+        # STAND_SIGMAS sigma_m of it (t NaN: none; read as ``stand_from``), and the last
+        # time such a run spanned STAND_S
+        self._stand: tuple[float, float, float] = (_NAN, _NAN, _NAN)
         self.stood_t: float | None = None
         # with stand_hold: the first fix of the stand the vehicle is in now (0: none)
         self.stand_seq = 0
@@ -440,9 +448,40 @@ class Tracker:
         return times[i] if 0 <= i < len(times) else None
 
     @property
+    def last(self) -> tuple[float, float, float] | None:
+        """(t, x, y) of the newest accepted fix, or None before the first."""
+        last = self._last
+        return None if math.isnan(last[0]) else last
+
+    @last.setter
+    def last(self, value: tuple[float, float, float] | None) -> None:
+        self._last = (_NAN, _NAN, _NAN) if value is None else value
+
+    @property
+    def last_commit(self) -> tuple[int, float, int, float] | None:
+        """(seg, pos, seq, t) of the last commit's final state, or None before the first."""
+        last = self._commit
+        return None if last[2] < 0 else last
+
+    @last_commit.setter
+    def last_commit(self, value: tuple[int, float, int, float] | None) -> None:
+        self._commit = (-1, 0.0, -1, 0.0) if value is None else value
+
+    @property
+    def stand_from(self) -> tuple[float, float, float] | None:
+        """With ``stop_turns``: (t, x, y) of the first fix of the newest stand run, or None."""
+        stand = self._stand
+        return None if math.isnan(stand[0]) else stand
+
+    @stand_from.setter
+    def stand_from(self, value: tuple[float, float, float] | None) -> None:
+        self._stand = (_NAN, _NAN, _NAN) if value is None else value
+
+    @property
     def last_time(self) -> float | None:
         """Time of the newest accepted fix, or None before the first."""
-        return self.last[0] if self.last else None
+        t = self._last[0]
+        return None if math.isnan(t) else t
 
     # ----------------------------------------------------------------- intake
     def update(self, fix: Fix) -> list[Event]:
@@ -532,8 +571,8 @@ class Tracker:
             if s.hold_filtered:
                 self._say_held(fix.t, events)
             return False
-        if self.last is not None:
-            t0, x0, y0 = self.last
+        t0, x0, y0 = self._last
+        if not math.isnan(t0):
             dt = fix.t - t0
             if dt <= 0:
                 events.append(Filtered(fix.vehicle, fix.t, "out_of_order"))
@@ -604,7 +643,7 @@ class Tracker:
             if self.lap_v is None:
                 self.lap_v = {}
             self.lap_v[fix.t] = fix.speed
-        self.last = (fix.t, fix.x, fix.y)
+        self._last = (fix.t, fix.x, fix.y)
         came_v = self.last_v  # reported speed at prev (speed_pace_m reads it)
         if s.speed_pace_m > 0.0:
             self.last_v = fix.speed
@@ -1443,7 +1482,7 @@ class Tracker:
                     top = _CALLS.cut_and_check(tree.ti, self.next_commit, newest, False)
                 if top < 0:
                     continue
-                if s.start_roots and self.last_commit is None \
+                if s.start_roots and self._commit[2] < 0 \
                         and self._start_roots(level, dt):
                     # the tree now grows from another root: is a commit still due?
                     tree = level.tree
@@ -1458,7 +1497,7 @@ class Tracker:
                 if waits:
                     continue
                 built = tree.chain(self._view, top, self.next_commit)
-                if (hold_newest and s.start_way_out and self.last_commit is None
+                if (hold_newest and s.start_way_out and self._commit[2] < 0
                         and self._way_out_pending(tree, built[0])):
                     break  # the log's first commit waits for the spike test (see there)
                 if self._defers(level, top, covering, built):
@@ -1484,7 +1523,7 @@ class Tracker:
                 too_many = False  # a stand: only the time bound forces (see _standing)
             if (too_many or too_old) and covering:
                 level = covering[0]
-                if s.start_roots and self.last_commit is None:
+                if s.start_roots and self._commit[2] < 0:
                     self._start_roots(level, dt)
                 tree = level.tree
                 keep = min(max(self._lag_target(seq, t), lag_first), newest)
@@ -1792,10 +1831,10 @@ class Tracker:
         """
         stood = self.stood_t is not None and prev_t is not None and (
             prev_t - self.stood_t <= STAND_AFTER_S)
-        anchor = self.stand_from
-        if anchor is None or math.hypot(fix.x - anchor[1], fix.y - anchor[2]) > (
+        anchor = self._stand
+        if math.isnan(anchor[0]) or math.hypot(fix.x - anchor[1], fix.y - anchor[2]) > (
                 STAND_SIGMAS * self.settings.sigma_m):
-            self.stand_from = anchor = (fix.t, fix.x, fix.y)
+            self._stand = anchor = (fix.t, fix.x, fix.y)
         if fix.t - anchor[0] >= STAND_S:
             self.stood_t = fix.t
         return stood
@@ -2129,7 +2168,7 @@ class Tracker:
             fixes = self._fill_skipped(chain, before, math.inf if settle_all else top.t, fixes)
         events.append(Commit(self.vehicle, tuple(fixes), tuple(path)))
         self.next_commit = top.seq + 1
-        self.last_commit = (top.seg, top.pos, top.seq, top.t)
+        self._commit = (top.seg, top.pos, top.seq, top.t)
         if self.lap_v:
             # the speeds a later commit can still read: from the fix committed last on
             self.lap_v = {t: v for t, v in self.lap_v.items() if t >= top.t}
