@@ -644,7 +644,7 @@ DIED: Final = -2  # the window died: the tree is unchanged
 ARENA_FULL: Final = -3  # the tree's arrays are too small for the new rows (see tree_sweep)
 TREE_OVERFLOW: Final = -4  # the kernel's buffers are too small: grow them and call again
 MIN_SPARE: Final = 8  # rows of room a compaction leaves, at least (and twice the live block)
-T_SPARE: Final = 3  # fix times of room a compaction leaves, at least (a fix adds one; 6 until session 29)
+T_SPARE: Final = 3  # fix times of room a compaction leaves, at least (a fix adds one; was 6)
 L_SPARE: Final = 2  # live rows of room for floats a compaction leaves, at least
 
 
@@ -671,9 +671,9 @@ def row_spare(m: int, k: int) -> int:
     ``m`` the step's new live block, ``k`` the old one: a live block and a quarter and
     ``MIN_SPARE`` (and a half until session 29; twice the live block until session 15:
     a 1 Hz tree compacts about every second fix either way, and the room of half a live
-    block was 24 bytes a row never written). The vias get as many (4 bytes each; twice as many until session
-    29: about 0.2 KB more a 1 Hz tracker for about 0.1 fewer new arrays a fix,
-    ``bench/memory.py --steps 7``, docs/measured.md).
+    block was 24 bytes a row never written). The vias get as many (4 bytes each; twice
+    as many until session 29: about 0.2 KB more a 1 Hz tracker for about 0.1 fewer new
+    arrays a fix, ``bench/memory.py --steps 7``, docs/measured.md).
     """
     return max(m, k + k // 4 + MIN_SPARE)
 
