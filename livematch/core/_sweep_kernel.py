@@ -669,11 +669,12 @@ def row_spare(m: int, k: int) -> int:
     """The least room for rows a compaction into new arrays leaves (``ARENA_FULL``).
 
     ``m`` the step's new live block, ``k`` the old one: a live block and a quarter and
-    ``MIN_SPARE`` (and a half until session 29; twice the live block until session 15:
-    a 1 Hz tree compacts about every second fix either way, and the room of half a live
-    block was 24 bytes a row never written). The vias get as many (4 bytes each; twice
-    as many until session 29: about 0.2 KB more a 1 Hz tracker for about 0.1 fewer new
-    arrays a fix, ``bench/memory.py --steps 7``, docs/measured.md).
+    ``MIN_SPARE`` (and a half until session 29: 0.33 KB more a 1 Hz tracker for 0.14
+    fewer new arrays a fix; twice the live block until session 15: a 1 Hz tree compacts
+    about every second fix either way, and the room of half a live block was 24 bytes a
+    row never written). The vias get as many (4 bytes each; twice as many until session
+    29: 0.21 KB more a 1 Hz tracker for 0.13 fewer new arrays a fix; both measured by
+    ``bench/memory.py --steps 7``, docs/measured.md "Session 29 (mem29)").
     """
     return max(m, k + k // 4 + MIN_SPARE)
 
