@@ -352,12 +352,11 @@ class Tracker:
 
     # slots: a service holds one tracker per vehicle, and an instance dict costs more
     # than a small candidate tree
-    __slots__ = ("_commit", "_held", "_last", "_stand", "_view", "agreed_seq", "along_last",
-                 "before", "buffer", "fix_n", "fix_seq0", "fix_xy", "jumps", "lap_due",
-                 "lap_v", "last_released_t", "last_seg", "last_v", "levels",
-                 "network", "next_commit", "rev_t", "said", "seq", "settings", "skipped",
-                 "speed", "stand_seq", "step_dir", "stood_t", "times", "times0",
-                 "vehicle")
+    __slots__ = ("_commit", "_held", "_last", "_released", "_speed", "_stand", "_stood",
+                 "_view", "agreed_seq", "along_last", "before", "buffer", "fix_n",
+                 "fix_seq0", "fix_xy", "jumps", "lap_due", "lap_v", "last_seg", "last_v",
+                 "levels", "network", "next_commit", "rev_t", "said", "seq", "settings",
+                 "skipped", "stand_seq", "step_dir", "times", "times0", "vehicle")
 
     def __init__(
         self, network: RoadNetwork, vehicle: str, settings: MatchSettings | None = None
@@ -377,9 +376,12 @@ class Tracker:
         # tracker itself (24 bytes) rather than as a tuple and three float objects (136
         # bytes a vehicle; bench/memory.py step 6). The same for _stand and _commit.
         self._last: tuple[float, float, float] = (_NAN, _NAN, _NAN)
-        self.last_released_t: float | None = None
+        # the time of the newest fix released to the filters (NaN: none yet; read as
+        # ``last_released_t``); floats, not optional ones: unboxed in the compiled
+        # tracker, as _speed and _stood (24 bytes a float object each)
+        self._released = _NAN
         self.jumps = 0
-        self.speed: float | None = None  # implied speed of the last accepted step, m/s
+        self._speed = _NAN  # implied speed of the last accepted step, m/s (NaN: none; ``speed``)
         # held-back fixes, and times of filtered fixes awaiting a final answer: tuples,
         # rarely not empty (the empty tuple is shared; an empty list is 56 bytes each)
         self.buffer: tuple[Fix, ...] = ()
@@ -405,7 +407,7 @@ class Tracker:
         # STAND_SIGMAS sigma_m of it (t NaN: none; read as ``stand_from``), and the last
         # time such a run spanned STAND_S
         self._stand: tuple[float, float, float] = (_NAN, _NAN, _NAN)
-        self.stood_t: float | None = None
+        self._stood = _NAN  # (NaN: none; read as ``stood_t``)
         # with stand_hold: the first fix of the stand the vehicle is in now (0: none)
         self.stand_seq = 0
         # with smallest_agrees: the newest fix a larger level's agreed commit would have
@@ -478,6 +480,36 @@ class Tracker:
         self._stand = (_NAN, _NAN, _NAN) if value is None else value
 
     @property
+    def last_released_t(self) -> float | None:
+        """The time of the newest fix released to the filters, or None before the first."""
+        t = self._released
+        return None if math.isnan(t) else t
+
+    @last_released_t.setter
+    def last_released_t(self, value: float | None) -> None:
+        self._released = _NAN if value is None else value
+
+    @property
+    def speed(self) -> float | None:
+        """The implied speed of the last accepted step (m/s), or None before the second fix."""
+        v = self._speed
+        return None if math.isnan(v) else v
+
+    @speed.setter
+    def speed(self, value: float | None) -> None:
+        self._speed = _NAN if value is None else value
+
+    @property
+    def stood_t(self) -> float | None:
+        """With ``stop_turns``: the last time a run of fixes spanned ``STAND_S``, or None."""
+        t = self._stood
+        return None if math.isnan(t) else t
+
+    @stood_t.setter
+    def stood_t(self, value: float | None) -> None:
+        self._stood = _NAN if value is None else value
+
+    @property
     def last_time(self) -> float | None:
         """Time of the newest accepted fix, or None before the first."""
         t = self._last[0]
@@ -487,12 +519,12 @@ class Tracker:
     def update(self, fix: Fix) -> list[Event]:
         """Take one fix; return the events it causes (possibly none)."""
         events: list[Event] = []
-        newest = self.last_released_t
+        newest = self._released
         if not self.buffer and not self.settings.reorder_fixes and (
-                newest is None or fix.t > newest):
+                math.isnan(newest) or fix.t > newest):
             # nothing held back and nothing to hold back: what _admit does with such a
             # fix (release it at once), without its generator and sorted insert
-            self.last_released_t = fix.t
+            self._released = fix.t
             if self._passes(fix, events):
                 self._accept(fix, events)
             return events
@@ -578,10 +610,11 @@ class Tracker:
                 events.append(Filtered(fix.vehicle, fix.t, "out_of_order"))
                 return False
             limit = s.max_speed_mps
-            if self.speed is not None:
+            speed = self._speed
+            if not math.isnan(speed):
                 # the speed of the last step, changed by at most ACCEL_MPS2, plus three
                 # standard deviations of the error of a difference of two fixes
-                limit = min(limit, self.speed + ACCEL_MPS2 * dt
+                limit = min(limit, speed + ACCEL_MPS2 * dt
                             + 3.0 * math.sqrt(2.0) * s.sigma_m / dt)
             if math.hypot(fix.x - x0, fix.y - y0) > limit * dt:
                 self.jumps += 1
@@ -648,12 +681,12 @@ class Tracker:
         if s.speed_pace_m > 0.0:
             self.last_v = fix.speed
         came_speed = self.speed  # of the step into prev (reverse_turns reads it)
-        stood = self.speed is not None and self.speed < STOOD_MPS
+        stood = self._speed < STOOD_MPS  # (False while NaN: no step yet)
         if s.stop_turns:
             lately = self._stood_lately(fix, prev[0] if prev is not None else None)
             stood = stood or lately
         if prev is not None and fix.t > prev[0]:
-            self.speed = math.hypot(fix.x - prev[1], fix.y - prev[2]) / (fix.t - prev[0])
+            self._speed = math.hypot(fix.x - prev[1], fix.y - prev[2]) / (fix.t - prev[0])
         dt = fix.t - prev[0] if prev is not None else 0.0
         # (asked only with reverse_turns, reverse_turns_near or lone_reverse_turns: a
         # bridge may then turn in the street, anywhere or only near prev)
@@ -1604,8 +1637,7 @@ class Tracker:
         if s.sparse_stand_wait and dt > s.gap_s and (
                 stood or (self.speed is not None and self.speed < STOOD_MPS)):
             return True
-        return (s.stand_commit_wait and self.stood_t is not None
-                and t - self.stood_t <= STAND_AFTER_S)
+        return s.stand_commit_wait and t - self._stood <= STAND_AFTER_S  # (False while NaN)
 
     def _turned_round(
         self, fix: Fix, prev: tuple[float, float, float] | None, dt: float
@@ -1829,14 +1861,13 @@ class Tracker:
             [False, False, True, True, True, True, True, True, True, True, True, True, True,
              True, False, False, False]
         """
-        stood = self.stood_t is not None and prev_t is not None and (
-            prev_t - self.stood_t <= STAND_AFTER_S)
+        stood = prev_t is not None and prev_t - self._stood <= STAND_AFTER_S  # (NaN: False)
         anchor = self._stand
         if math.isnan(anchor[0]) or math.hypot(fix.x - anchor[1], fix.y - anchor[2]) > (
                 STAND_SIGMAS * self.settings.sigma_m):
             self._stand = anchor = (fix.t, fix.x, fix.y)
         if fix.t - anchor[0] >= STAND_S:
-            self.stood_t = fix.t
+            self._stood = fix.t
         return stood
 
     def _standing(self, seq: int, t: float) -> bool:
