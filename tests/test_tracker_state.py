@@ -230,3 +230,31 @@ def test_state_restore_shares_equal_numbers() -> None:
     assert restored.fix_time(restored.seq) == restored.last[0]
     assert restored.times0 == first.times0 and restored.times == first.times
     assert restored.to_bytes() == first.to_bytes()
+
+
+def test_fields_kept_unboxed_read_none_until_set() -> None:
+    """The fields kept as plain tuples and floats (none: a NaN or a -1) read None until set.
+
+    ``last``, ``last_commit``, ``stand_from``, ``speed``, ``last_released_t`` and
+    ``stood_t`` are stored without ``None`` so that the compiled tracker keeps them
+    unboxed; each is read and written through a property that turns the stored "none"
+    into ``None`` and back. A state round trip keeps them (the stored states themselves
+    are checked byte for byte above).
+    """
+    net, fixes = noisy_drive(seed=7)
+    tracker = Tracker(net, "v1", MatchSettings(stop_turns=True))
+    names = ("last", "last_commit", "stand_from", "speed", "last_released_t", "stood_t")
+    assert [getattr(tracker, n) for n in names] == [None] * len(names)
+    assert tracker.last_time is None
+    run(tracker, fixes[:60], flush=False)
+    last = fixes[59]
+    assert tracker.last == (last.t, last.x, last.y)
+    assert tracker.last_time == last.t == tracker.last_released_t
+    assert tracker.last_commit is not None and tracker.last_commit[2] >= 1
+    assert tracker.stand_from is not None and tracker.speed is not None
+    restored = Tracker.from_bytes(net, None, tracker.to_bytes())
+    assert [getattr(restored, n) for n in names] == [getattr(tracker, n) for n in names]
+    for n in names:
+        setattr(restored, n, None)
+        assert getattr(restored, n) is None
+    assert restored.last_time is None

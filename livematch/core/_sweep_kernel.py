@@ -644,7 +644,7 @@ DIED: Final = -2  # the window died: the tree is unchanged
 ARENA_FULL: Final = -3  # the tree's arrays are too small for the new rows (see tree_sweep)
 TREE_OVERFLOW: Final = -4  # the kernel's buffers are too small: grow them and call again
 MIN_SPARE: Final = 8  # rows of room a compaction leaves, at least (and twice the live block)
-T_SPARE: Final = 6  # fix times of room a compaction leaves, at least (a fix adds one)
+T_SPARE: Final = 3  # fix times of room a compaction leaves, at least (a fix adds one; was 6)
 L_SPARE: Final = 2  # live rows of room for floats a compaction leaves, at least
 
 
@@ -668,13 +668,15 @@ def live_room(m: int, k: int) -> int:
 def row_spare(m: int, k: int) -> int:
     """The least room for rows a compaction into new arrays leaves (``ARENA_FULL``).
 
-    ``m`` the step's new live block, ``k`` the old one: one and a half live blocks and
-    ``MIN_SPARE`` (twice the live block until session 15: a 1 Hz tree compacts about
-    every second fix either way, and the room of half a live block was 24 bytes a row
-    never written). The vias get twice this (4 bytes each; a step's vias vary more
-    than its rows, and running out of them was most of the new arrays a tree made).
+    ``m`` the step's new live block, ``k`` the old one: a live block and a quarter and
+    ``MIN_SPARE`` (and a half until session 29: 0.33 KB more a 1 Hz tracker for 0.14
+    fewer new arrays a fix; twice the live block until session 15: a 1 Hz tree compacts
+    about every second fix either way, and the room of half a live block was 24 bytes a
+    row never written). The vias get as many (4 bytes each; twice as many until session
+    29: 0.21 KB more a 1 Hz tracker for 0.13 fewer new arrays a fix; both measured by
+    ``bench/memory.py --steps 7``, docs/measured.md "Session 29 (mem29)").
     """
-    return max(m, k + k // 2 + MIN_SPARE)
+    return max(m, k + k // 4 + MIN_SPARE)
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -812,10 +814,10 @@ def tree_sweep(
         # the fix times kept run from the first kept row's fix to the live block's (the
         # last kept row), and the new rows' fix comes after it
         span_t = seq - (ti[H_T0] + ti[H_NF] - 1 - span + 1) + 1
-        # the room of new arrays (rows: row_spare; vias: twice that, or half those kept)
+        # the room of new arrays (rows: row_spare; vias: as many, or half those kept)
         spare = row_spare(m, k)
         cap = kept + max(kept // 4, spare)
-        cap_v = kept_v + max(kept_v // 2, max(n_via, 2 * spare))
+        cap_v = kept_v + max(kept_v // 2, max(n_via, spare))
         # (arrays with room for over a quarter more rows than new arrays would get,
         # ``cap``, or half as many vias again as ``cap_v``, are replaced: until session
         # 28 the rows were held against what new arrays got before session 15, twice

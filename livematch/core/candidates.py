@@ -162,7 +162,7 @@ def _times_room(cap_t: int, cap: int, m: int, k: int) -> int:
     """
     # row_spare's rule, here rather than a compiled call (one call fewer each time a
     # tree makes new arrays, about every second fix at 1 Hz)
-    spare = max(m, k + k // 2 + _MIN_SPARE)
+    spare = max(m, k + k // 4 + _MIN_SPARE)
     rows_room = max(spare, cap // 5)  # about max(kept // 4, spare); only sizes the room
     room = (rows_room - m) // max(m, 1) + 1  # fixes until the rows fill, and one
     if room < T_SPARE:
@@ -262,9 +262,9 @@ class CandidateTree:
                 spare_live: int = 0) -> None:
         """Drop the rows no live state descends from; leave room for more rows.
 
-        The room left is at least ``spare_rows``, one and a half live blocks plus
+        The room left is at least ``spare_rows``, a live block and a quarter plus
         ``_MIN_SPARE`` (:func:`~livematch.core._tree_kernel.row_spare`), and a quarter of
-        the rows kept (vias: ``spare_vias``, two per row of room and half the vias kept):
+        the rows kept (vias: ``spare_vias``, one per row of room and half the vias kept):
         a step or two before the next compaction, as a tree step that finds its arrays
         full leaves. Tight on purpose:
         a service holds many idle trees, and a compaction costs about a microsecond.
@@ -276,7 +276,7 @@ class CandidateTree:
         compacts often), so each carries numba's memory-info object (about 130 bytes).
         """
         rows: int = _CALLS.row_spare(spare_rows, len(self))
-        vias = max(spare_vias, 2 * rows)  # a step's vias vary more than its rows
+        vias = max(spare_vias, rows)
         self.ti, self.tf = _t.compact(self.ti, self.tf, rows, vias, spare_t, spare_live)
         self._synced()
 

@@ -200,6 +200,7 @@ STAND_KEEP_S: Final = 3.0
 # Entries of Tracker._held (usually one or two: the stand's anchor, the newest run's)
 _HELD_MEMO: Final = 8
 _NO_FIXES: Final = np.empty((0, 2))  # shared by trackers that have seen no fix (never written)
+_NAN: Final = math.nan  # the time of a fix not there (Tracker._last, _stand)
 # A fix this many seconds after the fix before, from SPIKE_MIN_S to SPIKE_MAX_S, is kept
 # open to the spike test (MatchSettings.spike_cost). Closer fixes are left to the jump
 # filter, whose bound is tight at short steps. It stopped at 20 s while at 30 s between
@@ -351,12 +352,11 @@ class Tracker:
 
     # slots: a service holds one tracker per vehicle, and an instance dict costs more
     # than a small candidate tree
-    __slots__ = ("_held", "_view", "agreed_seq", "along_last", "before", "buffer", "fix_n",
-                 "fix_seq0", "fix_xy", "jumps", "lap_due", "lap_v", "last", "last_commit",
-                 "last_released_t", "last_seg", "last_v", "levels",
-                 "network", "next_commit", "rev_t", "said", "seq", "settings", "skipped",
-                 "speed", "stand_from", "stand_seq", "step_dir", "stood_t", "times", "times0",
-                 "vehicle")
+    __slots__ = ("_commit", "_held", "_last", "_released", "_speed", "_stand", "_stood",
+                 "_view", "agreed_seq", "along_last", "before", "buffer", "fix_n",
+                 "fix_seq0", "fix_xy", "jumps", "lap_due", "lap_v", "last_seg", "last_v",
+                 "levels", "network", "next_commit", "rev_t", "said", "seq", "settings",
+                 "skipped", "stand_seq", "step_dir", "times", "times0", "vehicle")
 
     def __init__(
         self, network: RoadNetwork, vehicle: str, settings: MatchSettings | None = None
@@ -371,10 +371,17 @@ class Tracker:
         self._view: NetworkView = view_of(network)
         self.levels = [Level(e) for e in self.settings.eps_levels]
         self.seq = 0
-        self.last: tuple[float, float, float] | None = None  # t, x, y of the last accepted fix
-        self.last_released_t: float | None = None
+        # t, x, y of the last accepted fix (t NaN: none yet; read as ``last``). A tuple of
+        # three floats, not an optional one: compiled, the three doubles are stored in the
+        # tracker itself (24 bytes) rather than as a tuple and three float objects (136
+        # bytes a vehicle; bench/memory.py step 6). The same for _stand and _commit.
+        self._last: tuple[float, float, float] = (_NAN, _NAN, _NAN)
+        # the time of the newest fix released to the filters (NaN: none yet; read as
+        # ``last_released_t``); floats, not optional ones: unboxed in the compiled
+        # tracker, as _speed and _stood (24 bytes a float object each)
+        self._released = _NAN
         self.jumps = 0
-        self.speed: float | None = None  # implied speed of the last accepted step, m/s
+        self._speed = _NAN  # implied speed of the last accepted step, m/s (NaN: none; ``speed``)
         # held-back fixes, and times of filtered fixes awaiting a final answer: tuples,
         # rarely not empty (the empty tuple is shared; an empty list is 56 bytes each)
         self.buffer: tuple[Fix, ...] = ()
@@ -384,7 +391,9 @@ class Tracker:
         self.times: array[float] = array("d")
         self.times0 = 1
         self.next_commit = 1
-        self.last_commit: tuple[int, float, int, float] | None = None  # seg, pos, seq, t
+        # seg, pos, seq, t of the last commit's final state (seq -1: none yet; read as
+        # ``last_commit``)
+        self._commit: tuple[int, float, int, float] = (-1, 0.0, -1, 0.0)
         self.skipped: tuple[float, ...] = ()
         self.last_seg = -1  # segment of the last assignment (breaks exact ties)
         # positions of the accepted fixes from fix_seq0 on (row i: fix fix_seq0 + i; the
@@ -395,9 +404,10 @@ class Tracker:
         self.fix_n = 0
         self.before: _Before | None = None  # the state before the newest fix (spike test)
         # with stop_turns: the first fix (t, x, y) of the newest run of fixes within
-        # STAND_SIGMAS sigma_m of it, and the last time such a run spanned STAND_S
-        self.stand_from: tuple[float, float, float] | None = None
-        self.stood_t: float | None = None
+        # STAND_SIGMAS sigma_m of it (t NaN: none; read as ``stand_from``), and the last
+        # time such a run spanned STAND_S
+        self._stand: tuple[float, float, float] = (_NAN, _NAN, _NAN)
+        self._stood = _NAN  # (NaN: none; read as ``stood_t``)
         # with stand_hold: the first fix of the stand the vehicle is in now (0: none)
         self.stand_seq = 0
         # with smallest_agrees: the newest fix a larger level's agreed commit would have
@@ -440,20 +450,81 @@ class Tracker:
         return times[i] if 0 <= i < len(times) else None
 
     @property
+    def last(self) -> tuple[float, float, float] | None:
+        """(t, x, y) of the newest accepted fix, or None before the first."""
+        last = self._last
+        return None if math.isnan(last[0]) else last
+
+    @last.setter
+    def last(self, value: tuple[float, float, float] | None) -> None:
+        self._last = (_NAN, _NAN, _NAN) if value is None else value
+
+    @property
+    def last_commit(self) -> tuple[int, float, int, float] | None:
+        """(seg, pos, seq, t) of the last commit's final state, or None before the first."""
+        last = self._commit
+        return None if last[2] < 0 else last
+
+    @last_commit.setter
+    def last_commit(self, value: tuple[int, float, int, float] | None) -> None:
+        self._commit = (-1, 0.0, -1, 0.0) if value is None else value
+
+    @property
+    def stand_from(self) -> tuple[float, float, float] | None:
+        """With ``stop_turns``: (t, x, y) of the first fix of the newest stand run, or None."""
+        stand = self._stand
+        return None if math.isnan(stand[0]) else stand
+
+    @stand_from.setter
+    def stand_from(self, value: tuple[float, float, float] | None) -> None:
+        self._stand = (_NAN, _NAN, _NAN) if value is None else value
+
+    @property
+    def last_released_t(self) -> float | None:
+        """The time of the newest fix released to the filters, or None before the first."""
+        t = self._released
+        return None if math.isnan(t) else t
+
+    @last_released_t.setter
+    def last_released_t(self, value: float | None) -> None:
+        self._released = _NAN if value is None else value
+
+    @property
+    def speed(self) -> float | None:
+        """The implied speed of the last accepted step (m/s), or None before the second fix."""
+        v = self._speed
+        return None if math.isnan(v) else v
+
+    @speed.setter
+    def speed(self, value: float | None) -> None:
+        self._speed = _NAN if value is None else value
+
+    @property
+    def stood_t(self) -> float | None:
+        """With ``stop_turns``: the last time a run of fixes spanned ``STAND_S``, or None."""
+        t = self._stood
+        return None if math.isnan(t) else t
+
+    @stood_t.setter
+    def stood_t(self, value: float | None) -> None:
+        self._stood = _NAN if value is None else value
+
+    @property
     def last_time(self) -> float | None:
         """Time of the newest accepted fix, or None before the first."""
-        return self.last[0] if self.last else None
+        t = self._last[0]
+        return None if math.isnan(t) else t
 
     # ----------------------------------------------------------------- intake
     def update(self, fix: Fix) -> list[Event]:
         """Take one fix; return the events it causes (possibly none)."""
         events: list[Event] = []
-        newest = self.last_released_t
+        newest = self._released
         if not self.buffer and not self.settings.reorder_fixes and (
-                newest is None or fix.t > newest):
+                math.isnan(newest) or fix.t > newest):
             # nothing held back and nothing to hold back: what _admit does with such a
             # fix (release it at once), without its generator and sorted insert
-            self.last_released_t = fix.t
+            self._released = fix.t
             if self._passes(fix, events):
                 self._accept(fix, events)
             return events
@@ -532,17 +603,18 @@ class Tracker:
             if s.hold_filtered:
                 self._say_held(fix.t, events)
             return False
-        if self.last is not None:
-            t0, x0, y0 = self.last
+        t0, x0, y0 = self._last
+        if not math.isnan(t0):
             dt = fix.t - t0
             if dt <= 0:
                 events.append(Filtered(fix.vehicle, fix.t, "out_of_order"))
                 return False
             limit = s.max_speed_mps
-            if self.speed is not None:
+            speed = self._speed
+            if not math.isnan(speed):
                 # the speed of the last step, changed by at most ACCEL_MPS2, plus three
                 # standard deviations of the error of a difference of two fixes
-                limit = min(limit, self.speed + ACCEL_MPS2 * dt
+                limit = min(limit, speed + ACCEL_MPS2 * dt
                             + 3.0 * math.sqrt(2.0) * s.sigma_m / dt)
             if math.hypot(fix.x - x0, fix.y - y0) > limit * dt:
                 self.jumps += 1
@@ -604,17 +676,17 @@ class Tracker:
             if self.lap_v is None:
                 self.lap_v = {}
             self.lap_v[fix.t] = fix.speed
-        self.last = (fix.t, fix.x, fix.y)
+        self._last = (fix.t, fix.x, fix.y)
         came_v = self.last_v  # reported speed at prev (speed_pace_m reads it)
         if s.speed_pace_m > 0.0:
             self.last_v = fix.speed
         came_speed = self.speed  # of the step into prev (reverse_turns reads it)
-        stood = self.speed is not None and self.speed < STOOD_MPS
+        stood = self._speed < STOOD_MPS  # (False while NaN: no step yet)
         if s.stop_turns:
             lately = self._stood_lately(fix, prev[0] if prev is not None else None)
             stood = stood or lately
         if prev is not None and fix.t > prev[0]:
-            self.speed = math.hypot(fix.x - prev[1], fix.y - prev[2]) / (fix.t - prev[0])
+            self._speed = math.hypot(fix.x - prev[1], fix.y - prev[2]) / (fix.t - prev[0])
         dt = fix.t - prev[0] if prev is not None else 0.0
         # (asked only with reverse_turns, reverse_turns_near or lone_reverse_turns: a
         # bridge may then turn in the street, anywhere or only near prev)
@@ -1462,7 +1534,7 @@ class Tracker:
                     top = _CALLS.cut_and_check(tree.ti, self.next_commit, newest, False)
                 if top < 0:
                     continue
-                if s.start_roots and self.last_commit is None \
+                if s.start_roots and self._commit[2] < 0 \
                         and self._start_roots(level, dt):
                     # the tree now grows from another root: is a commit still due?
                     tree = level.tree
@@ -1477,7 +1549,7 @@ class Tracker:
                 if waits:
                     continue
                 built = tree.chain(self._view, top, self.next_commit)
-                if (hold_newest and s.start_way_out and self.last_commit is None
+                if (hold_newest and s.start_way_out and self._commit[2] < 0
                         and self._way_out_pending(tree, built[0])):
                     break  # the log's first commit waits for the spike test (see there)
                 if self._defers(level, top, covering, built):
@@ -1503,7 +1575,7 @@ class Tracker:
                 too_many = False  # a stand: only the time bound forces (see _standing)
             if (too_many or too_old) and covering:
                 level = covering[0]
-                if s.start_roots and self.last_commit is None:
+                if s.start_roots and self._commit[2] < 0:
                     self._start_roots(level, dt)
                 tree = level.tree
                 keep = min(max(self._lag_target(seq, t), lag_first), newest)
@@ -1584,8 +1656,7 @@ class Tracker:
         if s.sparse_stand_wait and dt > s.gap_s and (
                 stood or (self.speed is not None and self.speed < STOOD_MPS)):
             return True
-        return (s.stand_commit_wait and self.stood_t is not None
-                and t - self.stood_t <= STAND_AFTER_S)
+        return s.stand_commit_wait and t - self._stood <= STAND_AFTER_S  # (False while NaN)
 
     def _turned_round(
         self, fix: Fix, prev: tuple[float, float, float] | None, dt: float
@@ -1809,14 +1880,13 @@ class Tracker:
             [False, False, True, True, True, True, True, True, True, True, True, True, True,
              True, False, False, False]
         """
-        stood = self.stood_t is not None and prev_t is not None and (
-            prev_t - self.stood_t <= STAND_AFTER_S)
-        anchor = self.stand_from
-        if anchor is None or math.hypot(fix.x - anchor[1], fix.y - anchor[2]) > (
+        stood = prev_t is not None and prev_t - self._stood <= STAND_AFTER_S  # (NaN: False)
+        anchor = self._stand
+        if math.isnan(anchor[0]) or math.hypot(fix.x - anchor[1], fix.y - anchor[2]) > (
                 STAND_SIGMAS * self.settings.sigma_m):
-            self.stand_from = anchor = (fix.t, fix.x, fix.y)
+            self._stand = anchor = (fix.t, fix.x, fix.y)
         if fix.t - anchor[0] >= STAND_S:
-            self.stood_t = fix.t
+            self._stood = fix.t
         return stood
 
     def _standing(self, seq: int, t: float) -> bool:
@@ -2148,7 +2218,7 @@ class Tracker:
             fixes = self._fill_skipped(chain, before, math.inf if settle_all else top.t, fixes)
         events.append(Commit(self.vehicle, tuple(fixes), tuple(path)))
         self.next_commit = top.seq + 1
-        self.last_commit = (top.seg, top.pos, top.seq, top.t)
+        self._commit = (top.seg, top.pos, top.seq, top.t)
         if self.lap_v:
             # the speeds a later commit can still read: from the fix committed last on
             self.lap_v = {t: v for t, v in self.lap_v.items() if t >= top.t}
