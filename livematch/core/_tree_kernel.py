@@ -75,6 +75,7 @@ from livematch.core._sweep_kernel import (
     H_CAP_T,
     H_CAP_VIAS,
     H_HI,
+    H_IEND,
     H_LCAP,
     H_LO,
     H_M,
@@ -111,6 +112,7 @@ from livematch.core._sweep_kernel import (
     cut_and_check,
     cut_links,
     fix_base,
+    floats,
     kept_rows,
     live_base,
     live_room,
@@ -135,6 +137,7 @@ __all__ = [
     "H_CAP_T",
     "H_CAP_VIAS",
     "H_HI",
+    "H_IEND",
     "H_LCAP",
     "H_LO",
     "H_M",
@@ -175,6 +178,7 @@ __all__ = [
     "descends_from",
     "driven_since",
     "fix_base",
+    "floats",
     "junction_split",
     "kept_rows",
     "live_answer",
@@ -209,13 +213,13 @@ def own_row_from(ti: np.ndarray, seq: int) -> int:
         return 0
     if j >= ti[H_NF]:
         return ti[H_N]
-    return ti[ti.shape[0] - ti[H_TCAP] + j]
+    return ti[ti[H_IEND] - ti[H_TCAP] + j]
 
 
 @_jit
 def own_seq_at(ti: np.ndarray, row: int) -> int:
     """:func:`~livematch.core._sweep_kernel.seq_at`, this file's own copy (as above)."""
-    fb = ti.shape[0] - ti[H_TCAP]
+    fb = ti[H_IEND] - ti[H_TCAP]
     lo = 0
     hi = ti[H_NF] - 1
     while lo < hi:
@@ -228,8 +232,9 @@ def own_seq_at(ti: np.ndarray, row: int) -> int:
 
 
 @_jit
-def best_row(ti: np.ndarray, tf: np.ndarray, prefer: int) -> int:
+def best_row(ti: np.ndarray, prefer: int) -> int:
     """:func:`livematch.core.sweep.best_leaf`: lowest (cost, seg != prefer, seg)."""
+    tf = ti[ti[H_IEND] + (ti[H_IEND] & 1):].view(np.float64)  # floats(), written out
     lb = ROW_F * ti[H_RCAP]  # live_base
     k = ti[H_HI] - ti[H_LO]
     return best_scored(ti, tf[lb + LF_COST:lb + LIVE_F * k:LIVE_F], prefer)
@@ -259,7 +264,7 @@ def best_scored(ti: np.ndarray, score: np.ndarray, prefer: int) -> int:
 
 @_jit
 def live_scores(
-    geo: np.ndarray, ti: np.ndarray, tf: np.ndarray, fix_xy: np.ndarray,
+    geo: np.ndarray, ti: np.ndarray, fix_xy: np.ndarray,
     fix_seq0: int, first: int, inv_two_sigma2: float, inv_tau: float, max_dt: float,
 ) -> np.ndarray:
     """:func:`livematch.core.sweep.live_score` of every live row, in row order.
@@ -269,6 +274,7 @@ def live_scores(
     ``fix_xy[i]`` is the fix of sequence number ``fix_seq0 + i``; links to states older
     than fix ``first`` are not walked.
     """
+    tf = ti[ti[H_IEND] + (ti[H_IEND] & 1):].view(np.float64)  # floats(), written out
     lo = ti[H_LO]
     hi = ti[H_HI]
     out = np.empty(hi - lo)
@@ -279,7 +285,7 @@ def live_scores(
     tb = lb + LIVE_F * ti[H_LCAP]  # time_base: fix slot j's time at tb + j
     # a row's fix slot: the last whose first row (ti[fb + slot]) is <= the row; found
     # going down from the child's, as a link's parent is of an older fix
-    fb = ti.shape[0] - ti[H_TCAP]  # fix_base
+    fb = ti[H_IEND] - ti[H_TCAP]  # fix_base
     t0 = ti[H_T0]
     nf = ti[H_NF]
     # a row below ``bound`` is of a fix older than first: own_row_from written out (a call
@@ -358,14 +364,14 @@ def _branch(ti: np.ndarray, vb: int, node: int, anc: int) -> int:
 
 
 @_jit
-def driven_since(ti: np.ndarray, tf: np.ndarray, slen: np.ndarray, node: int,
-                 anc: int) -> float:
+def driven_since(ti: np.ndarray, slen: np.ndarray, node: int, anc: int) -> float:
     """Metres driven along the path of row ``node`` since the head vertex of ``anc``'s segment.
 
     ``anc`` must lie on ``node``'s back-pointer chain. Each link's length is the route the
     sweep charged for it: along one segment, or out of the parent's segment, through the
     vias, into the child's.
     """
+    tf = ti[ti[H_IEND] + (ti[H_IEND] & 1):].view(np.float64)  # floats(), written out
     vb = HEAD + ROW_I * ti[H_RCAP]  # via_base (see live_scores)
     total = 0.0
     cur = node
@@ -400,13 +406,14 @@ def descends_from(ti: np.ndarray, node: int, anc: int) -> bool:
 
 
 @_jit
-def prune_live(ti: np.ndarray, tf: np.ndarray, anc: int) -> int:
+def prune_live(ti: np.ndarray, anc: int) -> int:
     """Keep, in order, the live rows descending from ``anc``; returns the block's new end.
 
     Live rows are leaves, so moving them within the block breaks no back-pointer. Their
     vias move down with them (each row's vias start where the row before's end), and
     the rows after the block are dropped (``H_N`` is the block's end).
     """
+    tf = ti[ti[H_IEND] + (ti[H_IEND] & 1):].view(np.float64)  # floats(), written out
     lo = ti[H_LO]
     vb = HEAD + ROW_I * ti[H_RCAP]  # via_base (see live_scores)
     lb = ROW_F * ti[H_RCAP]  # live_base
@@ -472,7 +479,7 @@ def _keyed_junction_split(sweep_key: int) -> Callable[..., int]:
 
     @_jit
     def junction_split(
-        ti: np.ndarray, tf: np.ndarray, best: int, margin: float, score: np.ndarray,
+        ti: np.ndarray, best: int, margin: float, score: np.ndarray,
     ) -> int:
         """The junction the near-best candidates split at, or -1 to report ``best`` itself.
 
@@ -525,7 +532,7 @@ def _keyed_live_answer(sweep_key: int) -> Callable[..., tuple[int, int]]:
 
     @_jit
     def live_answer(
-        geo: np.ndarray, ti: np.ndarray, tf: np.ndarray, prefer: int, fix_xy: np.ndarray,
+        geo: np.ndarray, ti: np.ndarray, prefer: int, fix_xy: np.ndarray,
         fix_n: int, fix_seq0: int, first: int, inv_two_sigma2: float, inv_tau: float,
         max_dt: float, margin: float,
     ) -> tuple[int, int]:
@@ -540,13 +547,14 @@ def _keyed_live_answer(sweep_key: int) -> Callable[..., tuple[int, int]]:
         if sweep_key == -1:  # never (see junction_split)
             return -1, -1
         if inv_tau > 0.0:
-            score = live_scores(geo, ti, tf, fix_xy[:fix_n], fix_seq0, first,
+            score = live_scores(geo, ti, fix_xy[:fix_n], fix_seq0, first,
                                 inv_two_sigma2, inv_tau, max_dt)
         else:
             lb = ROW_F * ti[H_RCAP]  # live_base
+            tf = ti[ti[H_IEND] + (ti[H_IEND] & 1):].view(np.float64)  # floats(), written out
             score = tf[lb + LF_COST:lb + LIVE_F * (ti[H_HI] - ti[H_LO]):LIVE_F].copy()
         best = best_scored(ti, score, prefer)
-        split = junction_split(ti, tf, best, margin, score) if margin > 0.0 else -1
+        split = junction_split(ti, best, margin, score) if margin > 0.0 else -1
         return best, split
 
     return live_answer
@@ -560,8 +568,8 @@ def _keyed_trim(sweep_key: int) -> Callable[..., tuple[int, int, int]]:
 
     @_jit
     def trim(
-        ti: np.ndarray, tf: np.ndarray, next_commit: int, seq: int, trim_seq: int,
-        max_lag: int, prefer: int,
+        ti: np.ndarray, next_commit: int, seq: int, trim_seq: int, max_lag: int,
+        prefer: int,
     ) -> tuple[int, int, int]:
         """Cut the history no future commit needs; force-prune a tree that stopped committing.
 
@@ -583,11 +591,11 @@ def _keyed_trim(sweep_key: int) -> Callable[..., tuple[int, int, int]]:
         if cut > trim_seq:
             trim_seq = cut
         if seq - trim_seq > 2 * max_lag:
-            keep = ancestor_at(ti, best_row(ti, tf, prefer), seq - max_lag)
+            keep = ancestor_at(ti, best_row(ti, prefer), seq - max_lag)
             kept = own_seq_at(ti, keep)
             # before pruning: ``keep`` may be a live row that moves
             ti[ROW_I * keep + K_PARENT] = -1
-            hi = prune_live(ti, tf, keep)
+            hi = prune_live(ti, keep)
             return kept, kept, hi
         return trim_seq, -1, int(ti[H_HI])
 
