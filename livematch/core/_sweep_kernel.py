@@ -599,7 +599,7 @@ def sweep_kernel(
 
 
 # ---------------------------------------------------------------------------
-# The sweep step on a candidate tree held in one pair of flat arrays
+# The sweep step on a candidate tree held in one flat array (ints, then floats)
 # (livematch.core.candidates; the layout is described in livematch.core._tree_kernel).
 # Here, not there, so that numba's disk cache of this function is invalidated whenever
 # the kernel above changes.
@@ -1058,6 +1058,8 @@ def compact_into(ti: np.ndarray, ti2: np.ndarray, cap2: int, cap_l2: int) -> Non
     ti2[H_T0] = t0 + first if first >= 0 else 0
     ti2[H_NF] = last - first + 1 if first >= 0 else 0
     ti2[H_TCAP] = tcap2
+    if ti2[H_IEND] & 1:  # the pad before the floats: written, so a tight tree's bytes are set
+        ti2[ti2[H_IEND]] = 0
 
 
 @numba.njit(cache=True, error_model="numpy")
