@@ -1,15 +1,16 @@
-"""One eps level's tree of candidate paths, held in flat arrays.
+"""One eps level's tree of candidate paths, held in one flat array.
 
 The tree of back-pointers (:mod:`livematch.core.sweep`) changes on every fix: each live
 state of the new fix is a new node. Kept as Python objects, building those nodes costs
 more than the compiled sweep that computes them, and each costs a few hundred bytes.
-:class:`CandidateTree` keeps the nodes as rows of two flat arrays instead, the ints (with
-the tree's counts in a header, and the vias) and the floats (layout in
-:mod:`livematch.core._tree_kernel`): the sweep kernel's output rows are appended as they
-are, the newest fix's states are one block of rows, and every operation the tracker needs
-on the tree (best leaf, deepest common ancestor, pruning, trimming, the chain a commit
-settles) is a compiled function on those arrays. Rows no live state descends from are
-dropped when the arrays fill up (:func:`~livematch.core._tree_kernel.compact`).
+:class:`CandidateTree` keeps the nodes as rows of one flat int32 array instead, the ints
+first (with the tree's counts in a header, and the vias), then the floats, viewed as
+float64 (layout in :mod:`livematch.core._tree_kernel`): the sweep kernel's output rows
+are appended as they are, the newest fix's states are one block of rows, and every
+operation the tracker needs on the tree (best leaf, deepest common ancestor, pruning,
+trimming, the chain a commit settles) is a compiled function on that array. Rows no live
+state descends from are dropped when the array fills up
+(:func:`~livematch.core._tree_kernel.compact`).
 
 Rare steps (bridging a gap, starting afresh) still run the pure-Python code of
 :mod:`livematch.core.sweep` on :class:`~livematch.core.sweep.Node` objects:
@@ -260,22 +261,22 @@ class CandidateTree:
 
     @property
     def cap_rows(self) -> int:
-        """Rows the arrays have room for."""
+        """Rows the array has room for."""
         return self.ti.item(H_RCAP)
 
     @property
     def cap_vias(self) -> int:
-        """Vias the arrays have room for."""
+        """Vias the array has room for."""
         return self.ti.item(H_IEND) - HEAD - ROW_I * self.cap_rows - self.ti.item(H_TCAP)
 
     @property
     def cap_live(self) -> int:
-        """Live rows the arrays have room for the floats (low, cost) of."""
+        """Live rows the array has room for the floats (low, cost) of."""
         return self.ti.item(H_LCAP)
 
     @property
     def cap_times(self) -> int:
-        """Fix times the arrays have room for (from the first kept, ``H_T0``, on)."""
+        """Fix times the array has room for (from the first kept, ``H_T0``, on)."""
         ti = self.ti
         return (len(ti) >> 1) - ((ti.item(H_IEND) + 1) >> 1) - self._time_base()
 
