@@ -6,40 +6,39 @@ even index at or after ``H_IEND``, viewed as float64: :func:`floats`), rows in
 topological order (a parent's row always precedes its children's):
 
 ``ti``'s ints: a header of ``HEAD`` values (``H_N`` rows in use, ``H_NV`` vias in use,
-    the live block ``[H_LO, H_HI)``, six slots a step that found the arrays full
-    leaves its sizes in, ``H_T0`` the sequence number of the first fix time kept,
-    ``H_RCAP`` the rows the arrays have room for, ``H_LCAP`` the live rows, ``H_NF``
-    the fixes in use from ``H_T0`` on and ``H_TCAP`` the fixes the arrays have room
-    for, ``H_IEND`` where the ints end), then room for ``H_RCAP`` rows of ``ROW_I``
-    ints ``seg, parent, via_end`` (field ``I_x`` of row r at ``ROW_I * r + K_x``;
-    ``parent`` -1 for a root), then the
-    vias, one after another in row order, from :func:`via_base` on (row r's vias run
-    from row r - 1's ``via_end``, 0 for row 0, to its own: most rows have none, and one
-    int says so), and last, in the ints' final ``H_TCAP`` values (from
-    :func:`fix_base` to ``H_IEND``), each fix's first row: fix ``H_T0 + j``'s at
-    ``j`` (a fix with no rows, a gap in the run of fixes, has the next one's). A row keeps no fix of its own:
-    rows are in fix order (a step appends its fix's rows after the older ones, and a
-    compaction keeps the order), so row r's fix is the last whose first row is <= r
-    (:func:`seq_at`), and a walk that compares rows' fixes with a bound compares row
-    numbers with :func:`row_from` of the bound instead. 4 bytes a fix instead of 4 a row
-    (since session 27; a tree keeps several rows a fix).
-``tf`` (float64, the rest of the array): per row ``ROW_F`` (1) float, its ``pos``
-    (field ``F_POS`` of row r at ``ROW_F * r + F_POS``); then from :func:`live_base` (``ROW_F * H_RCAP``) room for
-    ``H_LCAP`` live rows' ``LIVE_F`` floats ``low, cost`` (the live row ``lo + j`` at
-    ``live_base + LIVE_F * j + LF_x``); then from :func:`time_base` on the fix times: the
-    time of fix ``H_T0 + j`` at ``j`` (:func:`time_of`), one per fix from the oldest
-    row's to the newest, shared by the fix's rows (a fix has several candidates; the
-    time was a float in every row before). A state's ``low`` and ``cost`` are read only
-    while it is live (the next sweep step, the ranking of the live states): once a
-    step appends the next live block, the old one's are overwritten, and a row handed
-    out as a node when it is no longer live has NaN for both. The matched point (x, y)
-    of a row is not stored either: it is ``a + pos (b - a)`` on the row's segment, the
-    very expression the sweep computed it with, so it is recomputed bit for bit where
-    it is read (the live score, the sweep's input, a row handed out as a node) from the
-    network's arrays (``seg_geo`` of
-    :class:`livematch.core.fastsweep.SweepArrays`: ax, ay, bx - ax, by - ay per segment).
-    A row is 20 bytes (12 + 8), 16 more while it is live, and 12 more a fix (its time
-    and its first row).
+    the live block ``[H_LO, H_HI)``, six slots a step that found the arrays full leaves
+    its sizes in, ``H_T0`` the sequence number of the first fix time kept, ``H_RCAP``
+    the rows the arrays have room for, ``H_LCAP`` the live rows, ``H_NF`` the fixes in
+    use from ``H_T0`` on and ``H_TCAP`` the fixes the arrays have room for, ``H_IEND``
+    where the ints end), then room for ``H_RCAP`` rows of ``ROW_I`` ints ``seg, parent,
+    via_end`` (field ``I_x`` of row r at ``ROW_I * r + K_x``; ``parent`` -1 for a root),
+    then the vias, one after another in row order, from :func:`via_base` on (row r's
+    vias run from row r - 1's ``via_end``, 0 for row 0, to its own: most rows have none,
+    and one int says so), and last, in the ints' final ``H_TCAP`` values (from
+    :func:`fix_base` to ``H_IEND``), each fix's first row: fix ``H_T0 + j``'s at ``j``
+    (a fix with no rows, a gap in the run of fixes, has the next one's). A row keeps no
+    fix of its own: rows are in fix order (a step appends its fix's rows after the older
+    ones, and a compaction keeps the order), so row r's fix is the last whose first row
+    is <= r (:func:`seq_at`), and a walk that compares rows' fixes with a bound compares
+    row numbers with :func:`row_from` of the bound instead. 4 bytes a fix instead of 4 a
+    row (since session 27; a tree keeps several rows a fix).
+``tf`` (float64, the rest of the array): per row ``ROW_F`` (1) float, its ``pos`` (field
+    ``F_POS`` of row r at ``ROW_F * r + F_POS``); then from :func:`live_base` (``ROW_F *
+    H_RCAP``) room for ``H_LCAP`` live rows' ``LIVE_F`` floats ``low, cost`` (the live
+    row ``lo + j`` at ``live_base + LIVE_F * j + LF_x``); then from :func:`time_base` on
+    the fix times: the time of fix ``H_T0 + j`` at ``j`` (:func:`time_of`), one per fix
+    from the oldest row's to the newest, shared by the fix's rows (a fix has several
+    candidates; the time was a float in every row before). A state's ``low`` and
+    ``cost`` are read only while it is live (the next sweep step, the ranking of the
+    live states): once a step appends the next live block, the old one's are
+    overwritten, and a row handed out as a node when it is no longer live has NaN for
+    both. The matched point (x, y) of a row is not stored either: it is ``a + pos (b -
+    a)`` on the row's segment, the very expression the sweep computed it with, so it is
+    recomputed bit for bit where it is read (the live score, the sweep's input, a row
+    handed out as a node) from the network's arrays (``seg_geo`` of
+    :class:`livematch.core.fastsweep.SweepArrays`: ax, ay, bx - ax, by - ay per
+    segment). A row is 20 bytes (12 + 8), 16 more while it is live, and 12 more a fix
+    (its time and its first row).
 
 One array rather than one per row field, with the counts in its header: a tree idle
 between fixes costs one numpy object (about 120 bytes beyond its data; two arrays, ints
