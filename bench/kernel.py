@@ -120,8 +120,8 @@ def direct_call(tree: CandidateTree, net4: tuple[np.ndarray, ...], arrays: Any,
                 scalars: np.ndarray, seq: int, t: float) -> int:
     """``CandidateTree.step`` (check one fix back) as ``Tracker._advance_levels`` makes it."""
     netf, neti, fbuf, ibuf = net4
-    top, lo, hi = _CALLS.tree_sweep(netf, neti, fbuf, ibuf, scalars, tree.ti, tree.tf, seq, t,
-                                    seq - 1, seq)
+    top, lo, hi = _CALLS.tree_sweep(netf, neti, fbuf, ibuf, scalars, tree.ti, seq, t, seq - 1,
+                                    seq)
     if top >= DIED:
         tree.lo = lo
         tree.hi = hi

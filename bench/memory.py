@@ -660,7 +660,10 @@ def tree_room(tree: Any) -> dict[str, int]:
         t_used = ti.item(tk.H_NF)
     else:
         t_used = ti.item(tk.ROW_I * (n - 1) + tk.K_SEQ) - ti.item(tk.H_T0) + 1
-    return {"bytes": ti.nbytes + tree.tf.nbytes, "arrays": 2, "cap_rows": tree.cap_rows,
+    tf = tree.tf
+    one = tf.base is ti  # one array, its floats a view (since session 30), or two
+    return {"bytes": ti.nbytes + (0 if one else tf.nbytes), "arrays": 1 if one else 2,
+            "cap_rows": tree.cap_rows,
             "rows": n, "need_rows": need_rows, "cap_vias": tree.cap_vias, "vias": tree.nv,
             "need_vias": need_vias, "cap_t": tree.cap_times, "t": t_used, "need_t": need_t,
             "live": len(tree), "cap_live": getattr(tree, "cap_live", 0)}

@@ -134,7 +134,7 @@ def price(ti: np.ndarray, tf: np.ndarray) -> dict[str, int]:
                              f"against {counts[:2]}")
     j_first, j_last = fixes_of(ti, rows)
     n_fixes = j_last - j_first + 1
-    fb = ti.shape[0] - int(ti[tk.H_TCAP])
+    fb = int(tk.fix_base(ti))
     tb = int(tk.time_base(ti))
     fix_bytes = 8 + varint(0)  # the first fix's time and first row
     for j in range(j_first + 1, j_last + 1):
@@ -149,8 +149,9 @@ def price(ti: np.ndarray, tf: np.ndarray) -> dict[str, int]:
              + 4 * vias + n_fixes * (4 + 8))
     packed = header + packed_ancestors + live * live_row + fix_bytes
     ancestors = len(rows) - live
+    held = ti.nbytes + (0 if tf.base is ti else tf.nbytes)  # one array since session 30
     return {"rows": len(rows), "live": live, "vias": vias, "fixes": n_fixes,
-            "held": int(ti.nbytes + tf.nbytes), "today": today, "packed": packed,
+            "held": int(held), "today": today, "packed": packed,
             "packed_f32": packed - 4 * ancestors}
 
 

@@ -320,20 +320,23 @@ def test_compact_in_place_equals_compact_into_new_arrays() -> None:
             if tree.n == 0:
                 continue
             n_before, lo_before, live = tree.n, tree.lo, len(tree)
-            ti, tf = _t.compact(tree.ti, tree.tf, 0, 0, 0, 0)
+            ti = _t.compact(tree.ti, 0, 0, 0, 0)  # one array: ints, then the floats
+            tf = _t.floats(ti)
             n, nv, lo = (int(v) for v in ti[[_t.H_N, _t.H_NV, _t.H_LO]])
             assert int(ti[_t.H_HI]) - lo == live
             assert int(ti[_t.H_LCAP]) >= live
             vb = _t.via_base(ti)
             lb = _t.live_base(ti)
             tb = _t.time_base(ti)
-            ti2, tf2 = tree.ti.copy(), tree.tf.copy()
-            compact_in_place(ti2, tf2)
+            ti2 = tree.ti.copy()
+            compact_in_place(ti2)
+            tf2 = _t.floats(ti2)
             vb2 = _t.via_base(ti2)
             lb2 = _t.live_base(ti2)
             tb2 = _t.time_base(ti2)
             # the same header but for the room (the in-place arrays keep theirs)
-            head = [c for c in range(_t.HEAD) if c not in (_t.H_RCAP, _t.H_LCAP, _t.H_TCAP)]
+            head = [c for c in range(_t.HEAD)
+                    if c not in (_t.H_RCAP, _t.H_LCAP, _t.H_TCAP, _t.H_IEND)]
             assert ti2[head].tolist() == ti[head].tolist()
             assert ti2[:_t.HEAD + _t.ROW_I * n].tolist()[_t.HEAD:] == \
                 ti[:_t.HEAD + _t.ROW_I * n].tolist()[_t.HEAD:]
@@ -365,19 +368,23 @@ def test_compact_in_place_equals_compact_into_new_arrays() -> None:
             assert tf2[tb2:tb2 + times].tobytes() == tf[tb:tb + times].tobytes()
             for r in range(n):
                 kept_t = tracker.fix_time(int(seqs[r]))
-                assert kept_t is None or _t.time_of(ti, tf, r) == kept_t
+                assert kept_t is None or _t.time_of(ti, r) == kept_t
             # into new numpy arrays of exactly that size (CandidateTree.shrink, packed)
-            ti3 = np.empty(_t.HEAD + _t.ROW_I * n + nv + times, np.int32)
-            tf3 = np.empty(_t.ROW_F * n + lf + times)
-            _t.compact_into(tree.ti, tree.tf, ti3, tf3, n, live)
+            ints = _t.HEAD + _t.ROW_I * n + nv + times
+            ti3 = np.empty(ints + ints % 2 + 2 * (_t.ROW_F * n + lf + times), np.int32)
+            ti3[_t.H_IEND] = ints
+            _t.compact_into(tree.ti, ti3, n, live)
+            tf3 = _t.floats(ti3)
+            assert len(tf3) == _t.ROW_F * n + lf + times
             assert ti3[head].tolist() == ti[head].tolist()
             assert ti3[_t.HEAD:_t.HEAD + _t.ROW_I * n].tobytes() == \
                 ti[_t.HEAD:_t.HEAD + _t.ROW_I * n].tobytes()
             assert tf3[:_t.ROW_F * n].tobytes() == tf[:_t.ROW_F * n].tobytes()
             assert tf3[_t.ROW_F * n:_t.ROW_F * n + lf].tobytes() == tf[lb:lb + lf].tobytes()
             assert tf3[_t.ROW_F * n + lf:].tobytes() == tf[tb:tb + times].tobytes()
-            assert ti3[_t.HEAD + _t.ROW_I * n:-times].tobytes() == ti[vb:vb + nv].tobytes()
-            assert ti3[-times:].tolist() == ti[fb:fb + times].tolist()
+            assert ti3[_t.HEAD + _t.ROW_I * n:ints - times].tobytes() == \
+                ti[vb:vb + nv].tobytes()
+            assert ti3[ints - times:ints].tolist() == ti[fb:fb + times].tolist()
             # the tree compacted is unchanged
             assert (tree.n, tree.lo) == (n_before, lo_before)
             compared += 1
@@ -425,7 +432,7 @@ def test_tree_step_answers_commit_point_and_compacts_like_compact(name: str,
                     ref = copy_tree(level.tree, room)
                     ref.compact(live, vias)
                     assert (plain.cap_rows, plain.cap_vias) == (ref.cap_rows, ref.cap_vias)
-                    assert plain.ti.base is None and plain.tf.base is None  # numpy's own
+                    assert plain.ti.base is None and plain.tf.base is plain.ti  # numpy's own
                     full += 1
                 for next_commit in (tracker.next_commit, seq - 2, seq):
                     for newest in (seq, seq - 1, -1):
@@ -542,7 +549,7 @@ def test_tracker_keeps_sparse_vehicles_trees_tight() -> None:
             tree = level.tree
             assert tree.cap_rows == tree.n and tree.cap_vias == tree.nv
             # numpy's own arrays, not ones handed back by compiled code (smaller to keep)
-            assert tree.ti.base is None and tree.tf.base is None
+            assert tree.ti.base is None and tree.tf.base is tree.ti
             if tree.n:
                 assert tree.hi == tree.n  # the live block is last
                 # the newest fix's states (read without rows(), which compacts with room

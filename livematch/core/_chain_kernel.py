@@ -31,6 +31,7 @@ from livematch.core._kernel_key import code_key
 from livematch.core._sweep_kernel import (
     F_POS,
     H_HI,
+    H_IEND,
     H_LCAP,
     H_LO,
     H_N,
@@ -60,8 +61,8 @@ def _keyed_chain_rows(sweep_key: int) -> Callable[..., int]:
     """``chain_rows`` compiled with the sweep kernel's code key as a constant."""
 
     @numba.njit(cache=True, error_model="numpy")
-    def chain_rows(ti: np.ndarray, tf: np.ndarray, geo: np.ndarray, top: int, min_seq: int,
-                   oi: np.ndarray, of: np.ndarray) -> int:
+    def chain_rows(ti: np.ndarray, geo: np.ndarray, top: int, min_seq: int, oi: np.ndarray,
+                   of: np.ndarray) -> int:
         """``top``'s chain back to fix ``min_seq`` and the row before it, with their fields.
 
         Entry ``j`` < length is the j-th row from the oldest with seq >= ``min_seq`` up to
@@ -75,13 +76,14 @@ def _keyed_chain_rows(sweep_key: int) -> Callable[..., int]:
         """
         if sweep_key == -1:  # never: the key only keys numba's cache
             return 0
+        tf = ti[ti[H_IEND] + (ti[H_IEND] & 1):].view(np.float64)  # _sweep_kernel.floats
         length = 0
         cur = top
         # a row below ``bound`` is of a fix older than min_seq: row_from written out (a
         # call that takes an array costs two atomic reference-count updates)
         j = min_seq - ti[H_T0]
         bound = (0 if j <= 0 else ti[H_N] if j >= ti[H_NF]
-                 else ti[ti.shape[0] - ti[H_TCAP] + j])
+                 else ti[ti[H_IEND] - ti[H_TCAP] + j])
         while cur >= bound and cur >= 0:
             length += 1
             cur = ti[ROW_I * cur + K_PARENT]
@@ -93,7 +95,7 @@ def _keyed_chain_rows(sweep_key: int) -> Callable[..., int]:
         lo = ti[H_LO]
         hi = ti[H_HI]
         vb = HEAD + ROW_I * cap
-        fb = ti.shape[0] - ti[H_TCAP]  # fix_base: fix slot s's first row at fb + s
+        fb = ti[H_IEND] - ti[H_TCAP]  # fix_base: fix slot s's first row at fb + s
         t0 = ti[H_T0]
         before = cur  # the row before the chain (-1: none)
         oi[CHAIN_I * length] = before

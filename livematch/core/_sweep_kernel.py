@@ -599,7 +599,7 @@ def sweep_kernel(
 
 
 # ---------------------------------------------------------------------------
-# The sweep step on a candidate tree held in one pair of flat arrays
+# The sweep step on a candidate tree held in one flat array (ints, then floats)
 # (livematch.core.candidates; the layout is described in livematch.core._tree_kernel).
 # Here, not there, so that numba's disk cache of this function is invalidated whenever
 # the kernel above changes.
@@ -633,8 +633,9 @@ H_RCAP: Final = 10
 H_LCAP: Final = 11  # live rows the live floats' area has room for
 H_CAP_L: Final = 12  # (after ARENA_FULL) the live rows the arrays to compact into have room for
 H_NF: Final = 13  # fixes in use, from H_T0 on (0: no row); the newest is H_T0 + H_NF - 1
-H_TCAP: Final = 14  # fixes the arrays have room for: their first rows (ti's tail), times (tf's)
-HEAD: Final = 15
+H_TCAP: Final = 14  # fixes the arrays have room for: their first rows, times (tf's tail)
+H_IEND: Final = 15  # where the ints end; the floats start there, rounded up to even
+HEAD: Final = 16
 # A row's int field ``I_x`` is ``ti[ROW_I * row + K_x]``.
 K_SEG: Final = HEAD + I_SEG
 K_PARENT: Final = HEAD + I_PARENT
@@ -680,6 +681,17 @@ def row_spare(m: int, k: int) -> int:
 
 
 @numba.njit(cache=True, error_model="numpy")
+def floats(ti: np.ndarray) -> np.ndarray:
+    """The tree's floats ``tf``: the rest of its one array after the ints, as float64.
+
+    A view (no copy): a tree is one int32 array, its ints ending at ``H_IEND`` and its
+    floats starting at the next even index (8-byte aligned: numpy's data is).
+    """
+    e = ti[H_IEND]
+    return ti[e + (e & 1):].view(np.float64)
+
+
+@numba.njit(cache=True, error_model="numpy")
 def via_base(ti: np.ndarray) -> int:
     """Where the vias start in ``ti``: after the header and the rows the arrays have room for."""
     return HEAD + ROW_I * ti[H_RCAP]
@@ -699,8 +711,8 @@ def time_base(ti: np.ndarray) -> int:
 
 @numba.njit(cache=True, error_model="numpy")
 def fix_base(ti: np.ndarray) -> int:
-    """Where the fixes' first rows start in ``ti``: its last ``H_TCAP`` values."""
-    return ti.shape[0] - ti[H_TCAP]
+    """Where the fixes' first rows start in ``ti``: its last ``H_TCAP`` ints (before ``H_IEND``)."""
+    return ti[H_IEND] - ti[H_TCAP]
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -716,13 +728,13 @@ def row_from(ti: np.ndarray, seq: int) -> int:
         return 0
     if j >= ti[H_NF]:
         return ti[H_N]
-    return ti[ti.shape[0] - ti[H_TCAP] + j]
+    return ti[ti[H_IEND] - ti[H_TCAP] + j]
 
 
 @numba.njit(cache=True, error_model="numpy")
 def seq_at(ti: np.ndarray, row: int) -> int:
     """The fix (sequence number) of row ``row``: the last fix whose first row is <= it."""
-    fb = ti.shape[0] - ti[H_TCAP]
+    fb = ti[H_IEND] - ti[H_TCAP]
     lo = 0
     hi = ti[H_NF] - 1
     while lo < hi:  # the last j in [lo, hi] with first row <= row (the first fix's is 0)
@@ -735,15 +747,15 @@ def seq_at(ti: np.ndarray, row: int) -> int:
 
 
 @numba.njit(cache=True, error_model="numpy")
-def time_of(ti: np.ndarray, tf: np.ndarray, row: int) -> float:
+def time_of(ti: np.ndarray, row: int) -> float:
     """The time of row ``row``'s fix (kept once per fix, after the live floats in ``tf``)."""
-    return tf[time_base(ti) + seq_at(ti, row) - ti[H_T0]]
+    return floats(ti)[time_base(ti) + seq_at(ti, row) - ti[H_T0]]
 
 
 @numba.njit(cache=True, error_model="numpy")
 def tree_sweep(
     netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
-    ctx: np.ndarray, ti: np.ndarray, tf: np.ndarray, seq: int, t: float,
+    ctx: np.ndarray, ti: np.ndarray, seq: int, t: float,
     next_commit: int, newest: int,
 ) -> tuple[int, int, int]:
     """One sweep step of the live block; the new states are appended as the new live block.
@@ -766,6 +778,7 @@ def tree_sweep(
     give them (so a tree that shrank gives its memory back, and a tree holds about as
     many bytes as with new arrays at every compaction).
     """
+    tf = floats(ti)
     n = ti[H_N]
     nv = ti[H_NV]
     lo = ti[H_LO]
@@ -806,7 +819,7 @@ def tree_sweep(
     if m == 0:
         return DIED, lo, hi
     cap_rows = ti[H_RCAP]
-    cap_vias = ti.shape[0] - HEAD - ROW_I * cap_rows - ti[H_TCAP]
+    cap_vias = ti[H_IEND] - HEAD - ROW_I * cap_rows - ti[H_TCAP]
     cap_l = ti[H_LCAP]
     cap_t = tf.shape[0] - ROW_F * cap_rows - LIVE_F * cap_l
     if n + m > cap_rows or nv + n_via > cap_vias or seq - ti[H_T0] >= cap_t or m > cap_l:
@@ -837,7 +850,7 @@ def tree_sweep(
             # least, so the times do not fill up first)
             ti[H_CAP_T] = span_t + max(span_t // 4, spare)
             return ARENA_FULL, lo, hi
-        compact_in_place(ti, tf)
+        compact_in_place(ti)
     tree_append(fbuf, ibuf, ti, tf, seq, t, m, n_via)
     if newest < 0:
         return -1, ti[H_LO], ti[H_HI]
@@ -905,7 +918,7 @@ def kept_rows(ti: np.ndarray) -> tuple[int, int, int]:
     # atomic reference-count updates, and a full tree asks this about twice a fix): the
     # last row kept is the live block's, of the newest fix or one just before; the
     # first kept is of an old fix, a few slots up from the oldest
-    fb = ti.shape[0] - ti[H_TCAP]
+    fb = ti[H_IEND] - ti[H_TCAP]
     nf = ti[H_NF]
     j_last = nf - 1
     while ti[fb + j_last] > last:
@@ -918,9 +931,8 @@ def kept_rows(ti: np.ndarray) -> tuple[int, int, int]:
 
 @numba.njit(cache=True, error_model="numpy")
 def compact(
-    ti: np.ndarray, tf: np.ndarray, spare_rows: int, spare_vias: int, spare_t: int,
-    spare_live: int,
-) -> tuple[np.ndarray, np.ndarray]:
+    ti: np.ndarray, spare_rows: int, spare_vias: int, spare_t: int, spare_live: int,
+) -> np.ndarray:
     """Keep only the live block and its ancestors, in new arrays with room to spare.
 
     The room left is at least ``spare_rows`` rows (``spare_vias`` vias, and half those
@@ -928,20 +940,21 @@ def compact(
     quarter of the rows kept,
     so compactions get rarer as the tree grows (amortised O(1) per row); room for the
     floats of ``spare_live`` live rows at least (:func:`live_room`). Returns the new
-    ``(ti, tf)``; the live block keeps its order and length.
+    tree (one array); the live block keeps its order and length.
     """
     rows, vias, span = kept_rows(ti)
     cap = rows + max(rows // 4, spare_rows)
     cap_l = max(spare_live, live_room(ti[H_HI] - ti[H_LO], 0))
     cap_t = span + max(span // 4, spare_t, spare_rows, T_SPARE)
-    ti2 = np.empty(HEAD + ROW_I * cap + vias + max(vias // 2, spare_vias) + cap_t, np.int32)
-    tf2 = np.empty(ROW_F * cap + LIVE_F * cap_l + cap_t)
-    compact_into(ti, tf, ti2, tf2, cap, cap_l)
-    return ti2, tf2
+    iend = HEAD + ROW_I * cap + vias + max(vias // 2, spare_vias) + cap_t
+    ti2 = np.empty(iend + (iend & 1) + 2 * (ROW_F * cap + LIVE_F * cap_l + cap_t), np.int32)
+    ti2[H_IEND] = iend
+    compact_into(ti, ti2, cap, cap_l)
+    return ti2
 
 
 @numba.njit(cache=True, error_model="numpy")
-def compact_in_place(ti: np.ndarray, tf: np.ndarray) -> None:
+def compact_in_place(ti: np.ndarray) -> None:
     """Keep only the live block and its ancestors, moved down within the same arrays.
 
     The rows kept, and their vias, come out exactly as :func:`compact` writes them into
@@ -949,17 +962,18 @@ def compact_in_place(ti: np.ndarray, tf: np.ndarray) -> None:
     either way holds the same rows. Safe in place: a row only ever moves down (its new
     index is at most its old one, and so is its vias' start).
     """
-    compact_into(ti, tf, ti, tf, ti[H_RCAP], ti[H_LCAP])
+    compact_into(ti, ti, ti[H_RCAP], ti[H_LCAP])
 
 
 @numba.njit(cache=True, error_model="numpy")
-def compact_into(ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarray,
-                 cap2: int, cap_l2: int) -> None:
-    """:func:`compact_in_place`, writing into the arrays ``ti2``, ``tf2`` (header included).
+def compact_into(ti: np.ndarray, ti2: np.ndarray, cap2: int, cap_l2: int) -> None:
+    """:func:`compact_in_place`, writing into the array ``ti2`` (header included).
 
-    ``cap2``: the rows ``ti2``, ``tf2`` have room for, ``cap_l2`` the live rows ``tf2``
-    has floats for after them; the rest of ``tf2`` is fix times, and ``ti2`` ends with
-    as many fixes' first rows (the rest of it is vias). They must hold at least the
+    ``ti2``'s ``H_IEND`` must be set: its ints end there and its floats ``tf2``
+    (:func:`floats`) fill the rest. ``cap2``: the rows ``ti2`` has room
+    for, ``cap_l2`` the live rows ``tf2`` has floats for after them; the rest of
+    ``tf2`` is fix times, and ``ti2``'s ints end with as many fixes' first rows (the
+    rest of them is vias). They must hold at least the
     rows, vias and fix times
     :func:`kept_rows` counts and the live block. The caller
     allocates them with numpy: an array numba allocates and returns costs about 130
@@ -967,6 +981,8 @@ def compact_into(ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarra
     :func:`compact_in_place` passes its own arrays as the targets (safe: a row only ever
     moves down, and so does a fix time).
     """
+    tf = floats(ti)
+    tf2 = floats(ti2)
     n = ti[H_N]
     lo = ti[H_LO]
     hi = ti[H_HI]
@@ -976,14 +992,14 @@ def compact_into(ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarra
     keep = kept_mask(ti)
     new_index = np.full(n, -1, np.int64)
     vb = via_base(ti)
-    fb = ti.shape[0] - ti[H_TCAP]  # fix_base
+    fb = ti[H_IEND] - ti[H_TCAP]  # fix_base
     nf = ti[H_NF]
     ti2[H_RCAP] = cap2
     vb2 = via_base(ti2)
     lb2 = ROW_F * cap2
     tb2 = lb2 + LIVE_F * cap_l2
     tcap2 = tf2.shape[0] - tb2
-    fb2 = ti2.shape[0] - tcap2
+    fb2 = ti2[H_IEND] - tcap2
     q = 0
     nv = 0
     first = -1  # the fix slots (from H_T0) of the first and last rows kept
@@ -1042,6 +1058,8 @@ def compact_into(ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarra
     ti2[H_T0] = t0 + first if first >= 0 else 0
     ti2[H_NF] = last - first + 1 if first >= 0 else 0
     ti2[H_TCAP] = tcap2
+    if ti2[H_IEND] & 1:  # the pad before the floats: written, so a tight tree's bytes are set
+        ti2[ti2[H_IEND]] = 0
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -1068,7 +1086,7 @@ def tree_append(
     else:
         have = ti[H_NF]
     at = seq - ti[H_T0]
-    fb = ti.shape[0] - ti[H_TCAP]  # fix_base
+    fb = ti[H_IEND] - ti[H_TCAP]  # fix_base
     for j in range(have, at):
         tf[tb + j] = np.nan
         ti[fb + j] = n  # a fix with no rows: its rows would start where the next's do
@@ -1104,21 +1122,23 @@ def tree_append(
 
 @numba.njit(cache=True, error_model="numpy")
 def compact_append(
-    ti: np.ndarray, tf: np.ndarray, ti2: np.ndarray, tf2: np.ndarray, fbuf: np.ndarray,
-    ibuf: np.ndarray, seq: int, t: float, next_commit: int, newest: int,
+    ti: np.ndarray, ti2: np.ndarray, iend2: int, fbuf: np.ndarray, ibuf: np.ndarray,
+    seq: int, t: float, next_commit: int, newest: int,
 ) -> int:
     """After ``ARENA_FULL``: :func:`compact_into` the new arrays, then :func:`tree_append`.
 
     One call instead of a compaction that returns new arrays and an append: an array
     numba allocates and hands back costs several microseconds to box (and about 130
-    bytes more to keep) than the caller's numpy arrays. ``ti2``, ``tf2`` must hold the
+    bytes more to keep) than the caller's numpy array. ``ti2`` (its ints ending at ``iend2``,
+    written into its header here, its floats from the next even index) must hold the
     rows and vias kept plus the step's (the header's ``H_M`` rows and ``H_NVIA`` vias,
     which :func:`tree_sweep` wrote). Returns the commit check of :func:`tree_sweep`.
     """
     m = ti[H_M]
     n_via = ti[H_NVIA]
-    compact_into(ti, tf, ti2, tf2, ti[H_CAP_ROWS], ti[H_CAP_L])
-    tree_append(fbuf, ibuf, ti2, tf2, seq, t, m, n_via)
+    ti2[H_IEND] = iend2
+    compact_into(ti, ti2, ti[H_CAP_ROWS], ti[H_CAP_L])
+    tree_append(fbuf, ibuf, ti2, floats(ti2), seq, t, m, n_via)
     return commit_point(ti2, next_commit, newest) if newest >= 0 else -1
 
 
@@ -1133,7 +1153,7 @@ def rows_ancestor(ti: np.ndarray, cur: np.ndarray, k: int, floor: int) -> int:
     # a row below ``bound`` is of fix <= floor: row_from(ti, floor + 1) written out (a
     # call that takes an array costs two atomic reference-count updates; every fix)
     j = floor + 1 - ti[H_T0]
-    bound = 0 if j <= 0 else ti[H_N] if j >= ti[H_NF] else ti[ti.shape[0] - ti[H_TCAP] + j]
+    bound = 0 if j <= 0 else ti[H_N] if j >= ti[H_NF] else ti[ti[H_IEND] - ti[H_TCAP] + j]
     while k > 1:
         if cur[0] < bound:
             return -1
@@ -1171,7 +1191,7 @@ def rows_ancestor_marked(ti: np.ndarray, cur: np.ndarray, k: int, floor: int,
     # a row below ``bound`` is of fix <= floor: row_from(ti, floor + 1), written out (see
     # rows_ancestor)
     j = floor + 1 - ti[H_T0]
-    bound = 0 if j <= 0 else ti[H_N] if j >= ti[H_NF] else ti[ti.shape[0] - ti[H_TCAP] + j]
+    bound = 0 if j <= 0 else ti[H_N] if j >= ti[H_NF] else ti[ti[H_IEND] - ti[H_TCAP] + j]
     while k > 1:
         if cur[0] < bound:
             return -1
@@ -1239,7 +1259,7 @@ def commit_point_of(ti: np.ndarray, next_commit: int, newest: int, top: int) -> 
     # or later: row_from written out (see rows_ancestor)
     t0 = ti[H_T0]
     nf = ti[H_NF]
-    fb = ti.shape[0] - ti[H_TCAP]
+    fb = ti[H_IEND] - ti[H_TCAP]
     j = newest + 1 - t0
     after = 0 if j <= 0 else ti[H_N] if j >= nf else ti[fb + j]
     if top >= after:
@@ -1275,7 +1295,7 @@ def cut_links(ti: np.ndarray, cut: int) -> None:
     # a row below ``bound`` is of a fix older than cut: row_from(ti, cut), written out
     # (see rows_ancestor)
     j = cut - ti[H_T0]
-    bound = 0 if j <= 0 else ti[H_N] if j >= ti[H_NF] else ti[ti.shape[0] - ti[H_TCAP] + j]
+    bound = 0 if j <= 0 else ti[H_N] if j >= ti[H_NF] else ti[ti[H_IEND] - ti[H_TCAP] + j]
     for r in range(ti[H_LO], ti[H_HI]):
         cur = r
         while True:
@@ -1294,7 +1314,7 @@ def ancestor_at(ti: np.ndarray, row: int, seq: int) -> int:
     # rows from ``after`` on are of fixes after seq: row_from(ti, seq + 1), written out
     # (see rows_ancestor)
     j = seq + 1 - ti[H_T0]
-    after = 0 if j <= 0 else ti[H_N] if j >= ti[H_NF] else ti[ti.shape[0] - ti[H_TCAP] + j]
+    after = 0 if j <= 0 else ti[H_N] if j >= ti[H_NF] else ti[ti[H_IEND] - ti[H_TCAP] + j]
     while row >= after and ti[ROW_I * row + K_PARENT] >= 0:
         row = ti[ROW_I * row + K_PARENT]
     return row

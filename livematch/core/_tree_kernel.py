@@ -1,49 +1,53 @@
 """Compiled operations on a candidate tree held in flat arrays (numba, CPU only).
 
 Private: :class:`livematch.core.candidates.CandidateTree` is the interface. A tree is
-two flat arrays, rows in topological order (a parent's row always precedes its
-children's):
+one flat int32 array ``ti``, its ints first and its floats ``tf`` after them (from the
+even index at or after ``H_IEND``, viewed as float64: :func:`floats`), rows in
+topological order (a parent's row always precedes its children's):
 
-``ti`` (int32): a header of ``HEAD`` values (``H_N`` rows in use, ``H_NV`` vias in use,
-    the live block ``[H_LO, H_HI)``, six slots a step that found the arrays full
-    leaves its sizes in, ``H_T0`` the sequence number of the first fix time kept,
-    ``H_RCAP`` the rows the arrays have room for, ``H_LCAP`` the live rows, ``H_NF``
-    the fixes in use from ``H_T0`` on and ``H_TCAP`` the fixes the arrays have room
-    for), then room for ``H_RCAP`` rows of ``ROW_I`` ints ``seg, parent, via_end``
-    (field ``I_x`` of row r at ``ROW_I * r + K_x``; ``parent`` -1 for a root), then the
-    vias, one after another in row order, from :func:`via_base` on (row r's vias run
-    from row r - 1's ``via_end``, 0 for row 0, to its own: most rows have none, and one
-    int says so), and last, in the array's final ``H_TCAP`` values (from
-    :func:`fix_base`), each fix's first row: fix ``H_T0 + j``'s at ``j`` (a fix with no
-    rows, a gap in the run of fixes, has the next one's). A row keeps no fix of its own:
-    rows are in fix order (a step appends its fix's rows after the older ones, and a
-    compaction keeps the order), so row r's fix is the last whose first row is <= r
-    (:func:`seq_at`), and a walk that compares rows' fixes with a bound compares row
-    numbers with :func:`row_from` of the bound instead. 4 bytes a fix instead of 4 a row
-    (since session 27; a tree keeps several rows a fix).
-``tf`` (float64): per row ``ROW_F`` (1) float, its ``pos`` (field ``F_POS`` of row r at
-    ``ROW_F * r + F_POS``); then from :func:`live_base` (``ROW_F * H_RCAP``) room for
-    ``H_LCAP`` live rows' ``LIVE_F`` floats ``low, cost`` (the live row ``lo + j`` at
-    ``live_base + LIVE_F * j + LF_x``); then from :func:`time_base` on the fix times: the
-    time of fix ``H_T0 + j`` at ``j`` (:func:`time_of`), one per fix from the oldest
-    row's to the newest, shared by the fix's rows (a fix has several candidates; the
-    time was a float in every row before). A state's ``low`` and ``cost`` are read only
-    while it is live (the next sweep step, the ranking of the live states): once a
-    step appends the next live block, the old one's are overwritten, and a row handed
-    out as a node when it is no longer live has NaN for both. The matched point (x, y)
-    of a row is not stored either: it is ``a + pos (b - a)`` on the row's segment, the
-    very expression the sweep computed it with, so it is recomputed bit for bit where
-    it is read (the live score, the sweep's input, a row handed out as a node) from the
-    network's arrays (``seg_geo`` of
-    :class:`livematch.core.fastsweep.SweepArrays`: ax, ay, bx - ax, by - ay per segment).
-    A row is 20 bytes (12 + 8), 16 more while it is live, and 12 more a fix (its time
-    and its first row).
+``ti``'s ints: a header of ``HEAD`` values (``H_N`` rows in use, ``H_NV`` vias in use,
+    the live block ``[H_LO, H_HI)``, six slots a step that found the arrays full leaves
+    its sizes in, ``H_T0`` the sequence number of the first fix time kept, ``H_RCAP``
+    the rows the arrays have room for, ``H_LCAP`` the live rows, ``H_NF`` the fixes in
+    use from ``H_T0`` on and ``H_TCAP`` the fixes the arrays have room for, ``H_IEND``
+    where the ints end), then room for ``H_RCAP`` rows of ``ROW_I`` ints ``seg, parent,
+    via_end`` (field ``I_x`` of row r at ``ROW_I * r + K_x``; ``parent`` -1 for a root),
+    then the vias, one after another in row order, from :func:`via_base` on (row r's
+    vias run from row r - 1's ``via_end``, 0 for row 0, to its own: most rows have none,
+    and one int says so), and last, in the ints' final ``H_TCAP`` values (from
+    :func:`fix_base` to ``H_IEND``), each fix's first row: fix ``H_T0 + j``'s at ``j``
+    (a fix with no rows, a gap in the run of fixes, has the next one's). A row keeps no
+    fix of its own: rows are in fix order (a step appends its fix's rows after the older
+    ones, and a compaction keeps the order), so row r's fix is the last whose first row
+    is <= r (:func:`seq_at`), and a walk that compares rows' fixes with a bound compares
+    row numbers with :func:`row_from` of the bound instead. 4 bytes a fix instead of 4 a
+    row (since session 27; a tree keeps several rows a fix).
+``tf`` (float64, the rest of the array): per row ``ROW_F`` (1) float, its ``pos`` (field
+    ``F_POS`` of row r at ``ROW_F * r + F_POS``); then from :func:`live_base` (``ROW_F *
+    H_RCAP``) room for ``H_LCAP`` live rows' ``LIVE_F`` floats ``low, cost`` (the live
+    row ``lo + j`` at ``live_base + LIVE_F * j + LF_x``); then from :func:`time_base` on
+    the fix times: the time of fix ``H_T0 + j`` at ``j`` (:func:`time_of`), one per fix
+    from the oldest row's to the newest, shared by the fix's rows (a fix has several
+    candidates; the time was a float in every row before). A state's ``low`` and
+    ``cost`` are read only while it is live (the next sweep step, the ranking of the
+    live states): once a step appends the next live block, the old one's are
+    overwritten, and a row handed out as a node when it is no longer live has NaN for
+    both. The matched point (x, y) of a row is not stored either: it is ``a + pos (b -
+    a)`` on the row's segment, the very expression the sweep computed it with, so it is
+    recomputed bit for bit where it is read (the live score, the sweep's input, a row
+    handed out as a node) from the network's arrays (``seg_geo`` of
+    :class:`livematch.core.fastsweep.SweepArrays`: ax, ay, bx - ax, by - ay per
+    segment). A row is 20 bytes (12 + 8), 16 more while it is live, and 12 more a fix
+    (its time and its first row).
 
-Two arrays rather than one per row field, with the counts in the first: a tree idle
-between fixes costs two numpy objects (each about 150 bytes beyond its data) and a
-compiled call takes the tree as two arguments, its counts read from the header rather
-than passed in and handed back (each argument and each returned value costs the
-dispatcher time). Python reads a field with ``ndarray.item`` at a flat index.
+One array rather than one per row field, with the counts in its header: a tree idle
+between fixes costs one numpy object (about 120 bytes beyond its data; two arrays, ints
+and floats, until session 30) and a compiled call takes the tree as one argument, its
+counts read from the header rather than passed in and handed back (each argument and
+each returned value costs the dispatcher time), and views its floats itself (a view
+in compiled code allocates nothing). Python reads an int with ``ndarray.item`` at a
+flat index, a float through a view of the array
+(:attr:`~livematch.core.candidates.CandidateTree.tf`).
 
 The live states are one contiguous block of rows, the newest fix's; they are leaves
 (nothing points at them), so they can be filtered in place. Every function here mirrors
@@ -75,6 +79,7 @@ from livematch.core._sweep_kernel import (
     H_CAP_T,
     H_CAP_VIAS,
     H_HI,
+    H_IEND,
     H_LCAP,
     H_LO,
     H_M,
@@ -111,6 +116,7 @@ from livematch.core._sweep_kernel import (
     cut_and_check,
     cut_links,
     fix_base,
+    floats,
     kept_rows,
     live_base,
     live_room,
@@ -135,6 +141,7 @@ __all__ = [
     "H_CAP_T",
     "H_CAP_VIAS",
     "H_HI",
+    "H_IEND",
     "H_LCAP",
     "H_LO",
     "H_M",
@@ -175,6 +182,7 @@ __all__ = [
     "descends_from",
     "driven_since",
     "fix_base",
+    "floats",
     "junction_split",
     "kept_rows",
     "live_answer",
@@ -209,13 +217,13 @@ def own_row_from(ti: np.ndarray, seq: int) -> int:
         return 0
     if j >= ti[H_NF]:
         return ti[H_N]
-    return ti[ti.shape[0] - ti[H_TCAP] + j]
+    return ti[ti[H_IEND] - ti[H_TCAP] + j]
 
 
 @_jit
 def own_seq_at(ti: np.ndarray, row: int) -> int:
     """:func:`~livematch.core._sweep_kernel.seq_at`, this file's own copy (as above)."""
-    fb = ti.shape[0] - ti[H_TCAP]
+    fb = ti[H_IEND] - ti[H_TCAP]
     lo = 0
     hi = ti[H_NF] - 1
     while lo < hi:
@@ -228,8 +236,9 @@ def own_seq_at(ti: np.ndarray, row: int) -> int:
 
 
 @_jit
-def best_row(ti: np.ndarray, tf: np.ndarray, prefer: int) -> int:
+def best_row(ti: np.ndarray, prefer: int) -> int:
     """:func:`livematch.core.sweep.best_leaf`: lowest (cost, seg != prefer, seg)."""
+    tf = ti[ti[H_IEND] + (ti[H_IEND] & 1):].view(np.float64)  # floats(), written out
     lb = ROW_F * ti[H_RCAP]  # live_base
     k = ti[H_HI] - ti[H_LO]
     return best_scored(ti, tf[lb + LF_COST:lb + LIVE_F * k:LIVE_F], prefer)
@@ -259,7 +268,7 @@ def best_scored(ti: np.ndarray, score: np.ndarray, prefer: int) -> int:
 
 @_jit
 def live_scores(
-    geo: np.ndarray, ti: np.ndarray, tf: np.ndarray, fix_xy: np.ndarray,
+    geo: np.ndarray, ti: np.ndarray, fix_xy: np.ndarray,
     fix_seq0: int, first: int, inv_two_sigma2: float, inv_tau: float, max_dt: float,
 ) -> np.ndarray:
     """:func:`livematch.core.sweep.live_score` of every live row, in row order.
@@ -269,6 +278,7 @@ def live_scores(
     ``fix_xy[i]`` is the fix of sequence number ``fix_seq0 + i``; links to states older
     than fix ``first`` are not walked.
     """
+    tf = ti[ti[H_IEND] + (ti[H_IEND] & 1):].view(np.float64)  # floats(), written out
     lo = ti[H_LO]
     hi = ti[H_HI]
     out = np.empty(hi - lo)
@@ -279,7 +289,7 @@ def live_scores(
     tb = lb + LIVE_F * ti[H_LCAP]  # time_base: fix slot j's time at tb + j
     # a row's fix slot: the last whose first row (ti[fb + slot]) is <= the row; found
     # going down from the child's, as a link's parent is of an older fix
-    fb = ti.shape[0] - ti[H_TCAP]  # fix_base
+    fb = ti[H_IEND] - ti[H_TCAP]  # fix_base
     t0 = ti[H_T0]
     nf = ti[H_NF]
     # a row below ``bound`` is of a fix older than first: own_row_from written out (a call
@@ -358,14 +368,14 @@ def _branch(ti: np.ndarray, vb: int, node: int, anc: int) -> int:
 
 
 @_jit
-def driven_since(ti: np.ndarray, tf: np.ndarray, slen: np.ndarray, node: int,
-                 anc: int) -> float:
+def driven_since(ti: np.ndarray, slen: np.ndarray, node: int, anc: int) -> float:
     """Metres driven along the path of row ``node`` since the head vertex of ``anc``'s segment.
 
     ``anc`` must lie on ``node``'s back-pointer chain. Each link's length is the route the
     sweep charged for it: along one segment, or out of the parent's segment, through the
     vias, into the child's.
     """
+    tf = ti[ti[H_IEND] + (ti[H_IEND] & 1):].view(np.float64)  # floats(), written out
     vb = HEAD + ROW_I * ti[H_RCAP]  # via_base (see live_scores)
     total = 0.0
     cur = node
@@ -400,13 +410,14 @@ def descends_from(ti: np.ndarray, node: int, anc: int) -> bool:
 
 
 @_jit
-def prune_live(ti: np.ndarray, tf: np.ndarray, anc: int) -> int:
+def prune_live(ti: np.ndarray, anc: int) -> int:
     """Keep, in order, the live rows descending from ``anc``; returns the block's new end.
 
     Live rows are leaves, so moving them within the block breaks no back-pointer. Their
     vias move down with them (each row's vias start where the row before's end), and
     the rows after the block are dropped (``H_N`` is the block's end).
     """
+    tf = ti[ti[H_IEND] + (ti[H_IEND] & 1):].view(np.float64)  # floats(), written out
     lo = ti[H_LO]
     vb = HEAD + ROW_I * ti[H_RCAP]  # via_base (see live_scores)
     lb = ROW_F * ti[H_RCAP]  # live_base
@@ -472,7 +483,7 @@ def _keyed_junction_split(sweep_key: int) -> Callable[..., int]:
 
     @_jit
     def junction_split(
-        ti: np.ndarray, tf: np.ndarray, best: int, margin: float, score: np.ndarray,
+        ti: np.ndarray, best: int, margin: float, score: np.ndarray,
     ) -> int:
         """The junction the near-best candidates split at, or -1 to report ``best`` itself.
 
@@ -525,7 +536,7 @@ def _keyed_live_answer(sweep_key: int) -> Callable[..., tuple[int, int]]:
 
     @_jit
     def live_answer(
-        geo: np.ndarray, ti: np.ndarray, tf: np.ndarray, prefer: int, fix_xy: np.ndarray,
+        geo: np.ndarray, ti: np.ndarray, prefer: int, fix_xy: np.ndarray,
         fix_n: int, fix_seq0: int, first: int, inv_two_sigma2: float, inv_tau: float,
         max_dt: float, margin: float,
     ) -> tuple[int, int]:
@@ -540,13 +551,14 @@ def _keyed_live_answer(sweep_key: int) -> Callable[..., tuple[int, int]]:
         if sweep_key == -1:  # never (see junction_split)
             return -1, -1
         if inv_tau > 0.0:
-            score = live_scores(geo, ti, tf, fix_xy[:fix_n], fix_seq0, first,
+            score = live_scores(geo, ti, fix_xy[:fix_n], fix_seq0, first,
                                 inv_two_sigma2, inv_tau, max_dt)
         else:
             lb = ROW_F * ti[H_RCAP]  # live_base
+            tf = ti[ti[H_IEND] + (ti[H_IEND] & 1):].view(np.float64)  # floats(), written out
             score = tf[lb + LF_COST:lb + LIVE_F * (ti[H_HI] - ti[H_LO]):LIVE_F].copy()
         best = best_scored(ti, score, prefer)
-        split = junction_split(ti, tf, best, margin, score) if margin > 0.0 else -1
+        split = junction_split(ti, best, margin, score) if margin > 0.0 else -1
         return best, split
 
     return live_answer
@@ -560,8 +572,8 @@ def _keyed_trim(sweep_key: int) -> Callable[..., tuple[int, int, int]]:
 
     @_jit
     def trim(
-        ti: np.ndarray, tf: np.ndarray, next_commit: int, seq: int, trim_seq: int,
-        max_lag: int, prefer: int,
+        ti: np.ndarray, next_commit: int, seq: int, trim_seq: int, max_lag: int,
+        prefer: int,
     ) -> tuple[int, int, int]:
         """Cut the history no future commit needs; force-prune a tree that stopped committing.
 
@@ -583,11 +595,11 @@ def _keyed_trim(sweep_key: int) -> Callable[..., tuple[int, int, int]]:
         if cut > trim_seq:
             trim_seq = cut
         if seq - trim_seq > 2 * max_lag:
-            keep = ancestor_at(ti, best_row(ti, tf, prefer), seq - max_lag)
+            keep = ancestor_at(ti, best_row(ti, prefer), seq - max_lag)
             kept = own_seq_at(ti, keep)
             # before pruning: ``keep`` may be a live row that moves
             ti[ROW_I * keep + K_PARENT] = -1
-            hi = prune_live(ti, tf, keep)
+            hi = prune_live(ti, keep)
             return kept, kept, hi
         return trim_seq, -1, int(ti[H_HI])
 

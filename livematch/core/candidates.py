@@ -1,15 +1,16 @@
-"""One eps level's tree of candidate paths, held in flat arrays.
+"""One eps level's tree of candidate paths, held in one flat array.
 
 The tree of back-pointers (:mod:`livematch.core.sweep`) changes on every fix: each live
 state of the new fix is a new node. Kept as Python objects, building those nodes costs
 more than the compiled sweep that computes them, and each costs a few hundred bytes.
-:class:`CandidateTree` keeps the nodes as rows of two flat arrays instead, the ints (with
-the tree's counts in a header, and the vias) and the floats (layout in
-:mod:`livematch.core._tree_kernel`): the sweep kernel's output rows are appended as they
-are, the newest fix's states are one block of rows, and every operation the tracker needs
-on the tree (best leaf, deepest common ancestor, pruning, trimming, the chain a commit
-settles) is a compiled function on those arrays. Rows no live state descends from are
-dropped when the arrays fill up (:func:`~livematch.core._tree_kernel.compact`).
+:class:`CandidateTree` keeps the nodes as rows of one flat int32 array instead, the ints
+first (with the tree's counts in a header, and the vias), then the floats, viewed as
+float64 (layout in :mod:`livematch.core._tree_kernel`): the sweep kernel's output rows
+are appended as they are, the newest fix's states are one block of rows, and every
+operation the tracker needs on the tree (best leaf, deepest common ancestor, pruning,
+trimming, the chain a commit settles) is a compiled function on that array. Rows no live
+state descends from are dropped when the array fills up
+(:func:`~livematch.core._tree_kernel.compact`).
 
 Rare steps (bridging a gap, starting afresh) still run the pure-Python code of
 :mod:`livematch.core.sweep` on :class:`~livematch.core.sweep.Node` objects:
@@ -41,6 +42,7 @@ Example (a vehicle on a straight one-way road; two fixes 10 m apart):
 from __future__ import annotations
 
 import math
+import struct
 from typing import Final
 
 import numpy as np
@@ -58,6 +60,7 @@ from livematch.core._tree_kernel import (
     H_CAP_T,
     H_CAP_VIAS,
     H_HI,
+    H_IEND,
     H_LCAP,
     H_LO,
     H_M,
@@ -99,11 +102,30 @@ STATE_ROW_I: Final = 4
 
 _MIN_SPARE: Final = MIN_SPARE  # rows (and vias) of room left after a compaction, at least
 
-# the header alone (no rows, no vias), shared by every empty tree: nothing is written
-# into it (rows are written only after a compaction has made arrays of the tree's own)
-_NO_TI: Final[npt.NDArray[np.int32]] = np.zeros(HEAD, np.int32)
-_NO_TF: Final[npt.NDArray[np.float64]] = np.empty(0)
 _NO_BYTES: Final = memoryview(b"")
+_F64: Final = struct.Struct("d")  # one float64 in the machine's order, as numpy's
+
+
+def _tree_array(ints: int, floats: int) -> npt.NDArray[np.int32]:
+    """A new tree array of ``ints`` int32 and ``floats`` float64 (from the next even index).
+
+    Uninitialised but for ``H_IEND``, which says where the ints end.
+    """
+    out = np.empty(ints + (ints & 1) + 2 * floats, np.int32)
+    out[H_IEND] = ints
+    return out
+
+
+def _empty_header() -> npt.NDArray[np.int32]:
+    """The header alone: no rows, no vias, no floats (``H_IEND`` = ``HEAD``)."""
+    ti = np.zeros(HEAD, np.int32)
+    ti[H_IEND] = HEAD
+    return ti
+
+
+# the header alone (no rows, no vias), shared by every empty tree: nothing is written
+# into it (rows are written only after a compaction has made an array of the tree's own)
+_NO_TI: Final[npt.NDArray[np.int32]] = _empty_header()
 
 
 def _state_ints(ti: npt.NDArray[np.int32], n: int) -> npt.NDArray[np.int32]:
@@ -118,7 +140,7 @@ def _state_ints(ti: npt.NDArray[np.int32], n: int) -> npt.NDArray[np.int32]:
     out[:, 2] = mine[:, I_PARENT]
     out[:, 3] = mine[:, I_VIAE]
     nf = ti.item(H_NF)
-    fb = len(ti) - ti.item(H_TCAP)
+    fb = ti.item(H_IEND) - ti.item(H_TCAP)
     t0 = ti.item(H_T0)
     firsts = np.minimum(ti[fb:fb + nf], n)
     out[:, 1] = np.repeat(np.arange(t0, t0 + nf, dtype=np.int32),
@@ -135,7 +157,7 @@ def _seq_in(ti: npt.NDArray[np.int32], row: int) -> int:
     from the newest fix, a few steps, before it hands a longer one to the compiled
     binary search.
     """
-    fb = len(ti) - ti.item(H_TCAP)
+    fb = ti.item(H_IEND) - ti.item(H_TCAP)
     j = ti.item(H_NF) - 1
     for _ in range(4):
         if ti.item(fb + j) <= row:
@@ -143,6 +165,19 @@ def _seq_in(ti: npt.NDArray[np.int32], row: int) -> int:
         j -= 1
     seq: int = _t.seq_at(ti, row)
     return seq
+
+
+def _float_at(ti: npt.NDArray[np.int32], i: int) -> float:
+    """Float ``i`` of the tree ``ti`` (``tf[i]``), read from its bytes: no view made.
+
+    The floats start at the even index at or after ``H_IEND``: byte ``8 * ((H_IEND +
+    1) // 2)``. (A view per read, ``ti.view(np.float64)``, cost about 2.6 µs more than
+    ``tf.item`` in a throwaway timeit, this read about 0.3 µs; the live answer's point
+    reads one float a fix: docs/measured.md "Session 30 (lay30)".)
+    """
+    # (numpy arrays are buffers; the stubs do not say so)
+    value: float = _F64.unpack_from(ti, 8 * (((ti.item(H_IEND) + 1) >> 1) + i))[0]  # type: ignore[arg-type]
+    return value
 
 
 def _times_room(cap_t: int, cap: int, m: int, k: int) -> int:
@@ -171,30 +206,43 @@ def _times_room(cap_t: int, cap: int, m: int, k: int) -> int:
 
 
 class CandidateTree:
-    """The candidate tree of one level: rows, vias and counts in two flat arrays.
+    """The candidate tree of one level: rows, vias, counts and floats in one flat array.
 
     Attributes:
         ti: the header (counts), the rows' ints, the vias and each fix's first row
-            (int32; layout in :mod:`livematch.core._tree_kernel`).
-        tf: the rows' positions, the live rows' low and cost, the fix times (float64;
-            an older row keeps no low and cost: nothing reads them once it is not live).
+            (int32; layout in :mod:`livematch.core._tree_kernel`), then, from the
+            header's ``H_IEND`` on, the floats :attr:`tf`.
         lo, hi: the live block (the newest fix's states, in the reference's dict order):
             a copy of the header's, which the tracker reads many times a fix (a slot
             costs a tenth of an array read from Python); every call that moves the block
             hands the new bounds back.
 
     The counts live in the header of ``ti`` (:attr:`n`, :attr:`nv` and the live
-    block), so a compiled call reads and updates them in place.
+    block), so a compiled call reads and updates them in place. One array, not an int
+    and a float one: a numpy array costs about 120 bytes of its own beyond its data
+    (three trees a vehicle), and a compiled call takes the tree as one argument and
+    views its floats itself.
     """
 
-    __slots__ = ("hi", "lo", "tf", "ti")
+    __slots__ = ("hi", "lo", "ti")
 
     def __init__(self) -> None:
-        # zero-size arrays shared by every empty tree (nothing can be written into them:
-        # rows are written only after a compaction has made arrays of this tree's own)
+        # the header alone, shared by every empty tree (nothing can be written into it:
+        # rows are written only after a compaction has made an array of this tree's own)
         self.ti: npt.NDArray[np.int32] = _NO_TI
-        self.tf: npt.NDArray[np.float64] = _NO_TF
         self.lo = self.hi = 0
+
+    @property
+    def tf(self) -> npt.NDArray[np.float64]:
+        """The floats: the rows' positions, the live rows' low and cost, the fix times.
+
+        A float64 view of ``ti`` from ``H_IEND`` on, made per read (a per-fix path reads
+        one float with :func:`_float_at` instead). An older row keeps no low and cost:
+        nothing reads them once it is not live.
+        """
+        ti = self.ti
+        e = ti.item(H_IEND)
+        return ti[e + (e & 1):].view(np.float64)
 
     @property
     def n(self) -> int:
@@ -218,23 +266,24 @@ class CandidateTree:
 
     @property
     def cap_rows(self) -> int:
-        """Rows the arrays have room for."""
+        """Rows the array has room for."""
         return self.ti.item(H_RCAP)
 
     @property
     def cap_vias(self) -> int:
-        """Vias the arrays have room for."""
-        return len(self.ti) - HEAD - ROW_I * self.cap_rows - self.ti.item(H_TCAP)
+        """Vias the array has room for."""
+        return self.ti.item(H_IEND) - HEAD - ROW_I * self.cap_rows - self.ti.item(H_TCAP)
 
     @property
     def cap_live(self) -> int:
-        """Live rows the arrays have room for the floats (low, cost) of."""
+        """Live rows the array has room for the floats (low, cost) of."""
         return self.ti.item(H_LCAP)
 
     @property
     def cap_times(self) -> int:
-        """Fix times the arrays have room for (from the first kept, ``H_T0``, on)."""
-        return len(self.tf) - self._time_base()
+        """Fix times the array has room for (from the first kept, ``H_T0``, on)."""
+        ti = self.ti
+        return (len(ti) >> 1) - ((ti.item(H_IEND) + 1) >> 1) - self._time_base()
 
     def _via_base(self) -> int:
         return HEAD + ROW_I * self.ti.item(H_RCAP)
@@ -250,7 +299,7 @@ class CandidateTree:
 
     def time_of(self, seq: int) -> float:
         """The time of fix ``seq`` (a fix of one of the tree's rows)."""
-        return self.tf.item(self._time_base() + seq - self.ti.item(H_T0))
+        return _float_at(self.ti, self._time_base() + seq - self.ti.item(H_T0))
 
     def _newest_seq(self) -> int:
         """The fix of the last row in use (the newest the tree has a time for), or -1."""
@@ -277,7 +326,7 @@ class CandidateTree:
         """
         rows: int = _CALLS.row_spare(spare_rows, len(self))
         vias = max(spare_vias, rows)
-        self.ti, self.tf = _t.compact(self.ti, self.tf, rows, vias, spare_t, spare_live)
+        self.ti = _t.compact(self.ti, rows, vias, spare_t, spare_live)
         self._synced()
 
     def _compacted(self, cap_rows: int, cap_vias: int, cap_t: int) -> None:
@@ -291,10 +340,10 @@ class CandidateTree:
         is kept for long.
         """
         live = self.hi - self.lo
-        ti = np.empty(HEAD + ROW_I * cap_rows + cap_vias + cap_t, np.int32)
-        tf = np.empty(ROW_F * cap_rows + LIVE_F * live + cap_t)
-        _t.compact_into(self.ti, self.tf, ti, tf, cap_rows, live)
-        self.ti, self.tf = ti, tf
+        ti = _tree_array(HEAD + ROW_I * cap_rows + cap_vias + cap_t,
+                         ROW_F * cap_rows + LIVE_F * live + cap_t)
+        _t.compact_into(self.ti, ti, cap_rows, live)
+        self.ti = ti
         self._synced()
 
     def shrink(self) -> None:
@@ -337,7 +386,7 @@ class CandidateTree:
         """
         # a tree whose arrays are full is compacted within them by the kernel
         top, lo, hi = _t.tree_sweep(arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf,
-                                    ctx, self.ti, self.tf, seq, t, next_commit, newest)
+                                    ctx, self.ti, seq, t, next_commit, newest)
         if top >= DIED:  # a commit point (>= -1), or the window died
             self.lo = lo
             self.hi = hi
@@ -354,23 +403,23 @@ class CandidateTree:
         """
         while True:
             ti = self.ti
-            tf = self.tf
             if top == _t.ARENA_FULL:
                 # the result waits in the kernel's buffers: compact into new arrays with
                 # the room the kernel worked out (as compact() would size them) and
                 # append, in one call
                 cap = ti.item(H_CAP_ROWS)
                 cap_t = _times_room(ti.item(H_CAP_T), cap, ti.item(H_M), self.hi - self.lo)
-                ti2 = np.empty(HEAD + ROW_I * cap + ti.item(H_CAP_VIAS) + cap_t, np.int32)
-                tf2 = np.empty(ROW_F * cap + LIVE_F * ti.item(H_CAP_L) + cap_t)
-                top = _CALLS.compact_append(ti, tf, ti2, tf2, arrays.fbuf, arrays.ibuf, seq,
+                ints = HEAD + ROW_I * cap + ti.item(H_CAP_VIAS) + cap_t
+                ti2 = np.empty(ints + (ints & 1) + 2 * (ROW_F * cap + LIVE_F * ti.item(H_CAP_L)
+                                                        + cap_t), np.int32)
+                top = _CALLS.compact_append(ti, ti2, ints, arrays.fbuf, arrays.ibuf, seq,
                                             t, next_commit, newest)
-                self.ti, self.tf = ti2, tf2
+                self.ti = ti2
                 self._synced()
                 return top
             arrays.grow()  # TREE_OVERFLOW: the kernel's buffers were too small
             top, lo, hi = _t.tree_sweep(arrays.netf, arrays.neti, arrays.fbuf, arrays.ibuf,
-                                        ctx, ti, tf, seq, t, next_commit, newest)
+                                        ctx, ti, seq, t, next_commit, newest)
             if top >= DIED:
                 self.lo = lo
                 self.hi = hi
@@ -503,7 +552,7 @@ class CandidateTree:
                 tf[tb + have:tb + last - t0 + 1] = np.nan
             # each fix's first row (a fix with no rows: where the next one's start); the
             # new rows in fix order
-            fb = len(ti) - ti.item(H_TCAP)
+            fb = ti.item(H_IEND) - ti.item(H_TCAP)
             nf = have
             at = lo
             for node in new.values():
@@ -626,7 +675,7 @@ class CandidateTree:
         sweep kernel), evaluated in the same order, so the same float64 comes out.
         """
         seg: int = self.ti.item(ROW_I * row + K_SEG)
-        pos: float = self.tf.item(ROW_F * row + F_POS)
+        pos = _float_at(self.ti, ROW_F * row + F_POS)
         a = view.sf[seg]
         b = view.st[seg]
         ax = view.vx[a]
@@ -711,7 +760,7 @@ class CandidateTree:
         the lowest score wins instead of the lowest path cost; ties are broken alike.
         """
         if score is None:
-            return _t.best_row(self.ti, self.tf, prefer)
+            return _t.best_row(self.ti, prefer)
         return _t.best_scored(self.ti, score, prefer)
 
     def live_scores(self, view: NetworkView, fix_xy: npt.NDArray[np.float64], fix_seq0: int,
@@ -722,7 +771,7 @@ class CandidateTree:
         ``view``: the network (for the matched points). ``fix_xy[i]`` is the fix of
         sequence number ``fix_seq0 + i``; states older than fix ``first`` are not looked at.
         """
-        return _t.live_scores(sweep_arrays(view).seg_geo, self.ti, self.tf,
+        return _t.live_scores(sweep_arrays(view).seg_geo, self.ti,
                               fix_xy, fix_seq0, first, inv_two_sigma2, 1.0 / tau_s, max_dt)
 
     def live_answer(self, view: NetworkView, prefer: int, fix_xy: npt.NDArray[np.float64],
@@ -734,7 +783,7 @@ class CandidateTree:
         path cost; ``split`` is -1 when ``margin`` is not positive.
         """
         return _t.live_answer(sweep_arrays(view).seg_geo, self.ti,
-                              self.tf, prefer, fix_xy, fix_n, fix_seq0, first, inv_two_sigma2,
+                              prefer, fix_xy, fix_n, fix_seq0, first, inv_two_sigma2,
                               1.0 / tau_s if tau_s > 0.0 else 0.0, max_dt, margin)
 
     def common_ancestor(self, floor: int) -> int:
@@ -765,7 +814,7 @@ class CandidateTree:
         """
         if score is None:
             score = self.costs()
-        return _t.junction_split(self.ti, self.tf, best, margin,
+        return _t.junction_split(self.ti, best, margin,
                                  score)
 
     def driven_since(self, row: int, anc: int, slen: npt.NDArray[np.float64]) -> float:
@@ -774,7 +823,7 @@ class CandidateTree:
         ``slen``: every segment's length (metres). Negative while ``row`` is still on
         ``anc``'s segment.
         """
-        return float(_CALLS.driven_since(self.ti, self.tf, slen, row, anc))
+        return float(_CALLS.driven_since(self.ti, slen, row, anc))
 
     def chain(self, view: NetworkView, top: int,
               min_seq: int) -> tuple[list[Node], Node | None]:
@@ -788,11 +837,11 @@ class CandidateTree:
         # the rows and their fields in one compiled call (livematch.core._chain_kernel):
         # ints into the chain scratch, floats into the kernel's float buffer (free scratch
         # between steps: a step's output is appended before anyone asks for a chain)
-        n = _CALLS.chain_rows(ti, self.tf, arrays.seg_geo, top, min_seq, arrays.chain,
+        n = _CALLS.chain_rows(ti, arrays.seg_geo, top, min_seq, arrays.chain,
                               arrays.fbuf)
         if n < 0 and CHAIN_I * -n > len(arrays.chain):  # the int scratch is too short
             arrays.chain = np.empty(2 * CHAIN_I * -n, dtype=np.int64)
-            n = _CALLS.chain_rows(ti, self.tf, arrays.seg_geo, top, min_seq, arrays.chain,
+            n = _CALLS.chain_rows(ti, arrays.seg_geo, top, min_seq, arrays.chain,
                                   arrays.fbuf)
         if n >= 0:
             # (typed: compiled, the reads below are list reads, not generic ones)
@@ -842,7 +891,7 @@ class CandidateTree:
     # ---------------------------------------------------------------- cutting
     def prune(self, row: int) -> None:
         """Keep only the live states descending from ``row``."""
-        self.hi = _t.prune_live(self.ti, self.tf, row)
+        self.hi = _t.prune_live(self.ti, row)
 
     def trim(self, next_commit: int, seq: int, trim_seq: int, max_lag: int,
              prefer: int) -> tuple[int, int]:
@@ -850,7 +899,7 @@ class CandidateTree:
 
         Returns the new trim point and the seq of the state a forced prune kept (-1).
         """
-        trim_seq, forced, self.hi = _t.trim(self.ti, self.tf, next_commit, seq, trim_seq,
+        trim_seq, forced, self.hi = _t.trim(self.ti, next_commit, seq, trim_seq,
                                             max_lag, prefer)
         return trim_seq, forced
 
@@ -864,9 +913,9 @@ class CandidateTree:
         if self.ti.item(H_N):
             rows, vias, times = _t.kept_rows(self.ti)
             live = self.hi - self.lo
-            out.ti = np.empty(HEAD + ROW_I * rows + vias + times, np.int32)
-            out.tf = np.empty(ROW_F * rows + LIVE_F * live + times)
-            _t.compact_into(self.ti, self.tf, out.ti, out.tf, rows, live)
+            out.ti = _tree_array(HEAD + ROW_I * rows + vias + times,
+                                 ROW_F * rows + LIVE_F * live + times)
+            _t.compact_into(self.ti, out.ti, rows, live)
             out._synced()
         return out
 
@@ -879,9 +928,11 @@ class CandidateTree:
             return 0, 0, 0, 0, (_NO_BYTES,) * 5
         rows, vias, times = _t.kept_rows(self.ti)
         live = self.hi - self.lo
-        ti = np.empty(HEAD + ROW_I * rows + vias + times, np.int32)
-        tf = np.empty(ROW_F * rows + LIVE_F * live + times)
-        _t.compact_into(self.ti, self.tf, ti, tf, rows, live)
+        ti = _tree_array(HEAD + ROW_I * rows + vias + times,
+                         ROW_F * rows + LIVE_F * live + times)
+        _t.compact_into(self.ti, ti, rows, live)
+        e = ti.item(H_IEND)
+        tf = ti[e + (e & 1):].view(np.float64)
         flat = ti.data
         end = HEAD + ROW_I * rows
         floats = tf.data
@@ -906,9 +957,10 @@ class CandidateTree:
         lb = self._live_base()
         tb = self._time_base()
         times = self._newest_seq() - self.ti.item(H_T0) + 1 if n else 0
-        return (_state_ints(self.ti, n).data, self.tf[:ROW_F * n].data,
-                self.tf[lb:lb + LIVE_F * (self.hi - self.lo)].data,
-                self.ti[vb:vb + self.nv].data, self.tf[tb:tb + times].data)
+        tf = self.tf
+        return (_state_ints(self.ti, n).data, tf[:ROW_F * n].data,
+                tf[lb:lb + LIVE_F * (self.hi - self.lo)].data,
+                self.ti[vb:vb + self.nv].data, tf[tb:tb + times].data)
 
     @classmethod
     def unpacked(cls, ti: npt.NDArray[np.int32], pos: npt.NDArray[np.float64],
@@ -931,7 +983,10 @@ class CandidateTree:
             nv = len(tv)
             nf = len(times)
             end = HEAD + ROW_I * rows
-            buf = np.zeros(end + nv + nf, np.int32)  # the header's other slots 0
+            iend = end + nv + nf
+            fstart = iend + (iend & 1)
+            buf = np.zeros(fstart + 2 * (ROW_F * rows + LIVE_F * live + nf), np.int32)
+            buf[H_IEND] = iend  # the header's other slots 0
             state = ti.reshape(rows, STATE_ROW_I)
             mine = buf[HEAD:end].reshape(rows, ROW_I)
             mine[:, I_SEG] = state[:, 0]
@@ -944,7 +999,7 @@ class CandidateTree:
                     or int(seqs[-1]) != t0 + nf - 1:
                 raise ValueError("a tree's rows must be in fix order, from fix t0 to its "
                                  "last time's")
-            buf[end + nv:] = np.searchsorted(seqs, np.arange(t0, t0 + nf), "left")
+            buf[iend - nf:iend] = np.searchsorted(seqs, np.arange(t0, t0 + nf), "left")
             buf[H_N] = rows
             buf[H_NV] = nv
             buf[H_LO] = tree.lo = rows - live
@@ -954,8 +1009,11 @@ class CandidateTree:
             buf[H_LCAP] = live
             buf[H_NF] = buf[H_TCAP] = nf
             tree.ti = buf
-            # numpy's own flat array, in one call (a restore makes three per tracker)
-            tree.tf = np.concatenate((pos, lf, times))
+            tf = buf[fstart:].view(np.float64)
+            lb = ROW_F * rows
+            tf[:lb] = pos
+            tf[lb:lb + LIVE_F * live] = lf
+            tf[lb + LIVE_F * live:] = times
         return tree
 
     @classmethod
@@ -1049,7 +1107,7 @@ def warm_up() -> None:
     ti[H_CAP_ROWS] = tree.cap_rows  # the sizes a full step leaves (these arrays' own)
     ti[H_CAP_T] = tree.cap_times
     ti[H_CAP_L] = tree.cap_live
-    _t.compact_append(ti, tree.tf, ti.copy(), tree.tf.copy(), arrays.fbuf, arrays.ibuf,
+    _t.compact_append(ti, ti.copy(), ti.item(H_IEND), arrays.fbuf, arrays.ibuf,
                       tree.seq_of(tree.lo), tree.time_of(tree.seq_of(tree.lo)), 0, -1)
     rows = np.array([(n.seg, n.low, n.pos, n.x, n.y, n.cost) for n in live.values()])
     _, rows, driven = window_step(

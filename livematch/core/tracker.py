@@ -866,8 +866,8 @@ class Tracker:
                 # the commit check only for a level that covers the oldest pending fix
                 # (Tracker._covering: alive, its tree no newer than that fix)
                 ask = newest if tops is not None and level.tree_seq <= first else -1
-                top, lo, hi = sweep(netf, neti, fbuf, ibuf, step, tree.ti, tree.tf, seq, t,
-                                    first, ask)
+                top, lo, hi = sweep(netf, neti, fbuf, ibuf, step, tree.ti, seq, t, first,
+                                    ask)
                 if top >= DIED:
                     tree.lo = lo
                     tree.hi = hi
@@ -1127,7 +1127,7 @@ class Tracker:
             margin /= math.sqrt(1.0 - rho * rho)
         # (CandidateTree.live_answer's compiled call, made here: a Python call fewer)
         answer: tuple[int, int] = _CALLS.live_answer(
-            sweep_arrays(self._view).seg_geo, tree.ti, tree.tf, self.last_seg, self.fix_xy,
+            sweep_arrays(self._view).seg_geo, tree.ti, self.last_seg, self.fix_xy,
             self.fix_n, self.fix_seq0, self._live_from() - 1,
             1.0 / (2.0 * s.sigma_m * s.sigma_m), 1.0 / s.error_tau_s if scored else 0.0,
             s.gap_s, margin)
