@@ -88,7 +88,8 @@ def _instrument() -> None:
     """Wrap ``Tracker._spike_test`` to record, per suspect, the gate's rise and the verdict."""
     orig = tracker_mod.Tracker._spike_test
 
-    def spike_test(self: Any, fix: Any, seq: int, broke: bool, events: list[Any]) -> Any:
+    def spike_test(self: Any, fix: Any, seq: int, broke: bool, refused: bool,
+                   events: list[Any]) -> Any:
         before = self.before
         charge = self.settings.spike_cost * (fix.t - before.last[0]) / tracker_mod.SPIKE_SPAN_S
         suspect = seq - 1
@@ -98,11 +99,10 @@ def _instrument() -> None:
         if first >= 0 and len(before.levels[first].tree):
             rise = (tracker_mod._best_cost(self.levels[first].tree)
                     - tracker_mod._best_cost(before.levels[first].tree)) / charge
-        n = len(events)
-        out = orig(self, fix, seq, broke, events)
-        dropped = [e.t for e in events[n:] if getattr(e, "reason", None) == "spike"]
-        t = dropped[0] if dropped else self.times[suspect - self.times0]
-        JUDGED[(self.vehicle, float(t))] = (rise, bool(dropped))
+        t = self.times[suspect - self.times0]  # (a drop gives the suspect's slot to fix)
+        out = orig(self, fix, seq, broke, refused, events)
+        # (a suspect no level matched is dropped without a second Filtered event)
+        JUDGED[(self.vehicle, float(t))] = (rise, out is not None)
         return out
 
     tracker_mod.Tracker._spike_test = spike_test  # type: ignore[method-assign]

@@ -42,7 +42,7 @@ Bad input never raises: a message that cannot be decoded becomes an
 ``fixes``                         fixes handed to a tracker
 ``filtered:<reason>``             refused by the tracker's filters (out_of_order...) or
                                   matched by no eps level (``no_road_nearby``,
-                                  ``road_beyond_eps``)
+                                  ``road_beyond_eps``); one reason per fix
 ``assignments`` ``commits``       published events, by kind
 ``alerts`` ``alert:<kind>``
 ``control``                       control messages taken (route assignments)

@@ -665,6 +665,10 @@ class Tracker:
         # (asked only when the spike test will run: it is the only reader)
         broke = self.before is not None and not any(_goes_on(lv, self.seq)
                                                      for lv in self.levels)
+        # whether every level refused the newest fix (a Filtered event already said so:
+        # dropping it as a spike then says nothing again, so each fix is counted once)
+        refused = self.before is not None and not any(lv.tree.hi > lv.tree.lo
+                                                      for lv in self.levels)
         self.seq += 1
         seq = self.seq
         times = self.times
@@ -701,7 +705,7 @@ class Tracker:
                                        turned and not s.reverse_turns, came_v)
         if self.before is not None and prev is not None:
             straight_from = self.before.last
-            dropped = self._spike_test(fix, seq, broke, events)
+            dropped = self._spike_test(fix, seq, broke, refused, events)
             if dropped is not None:
                 # the fix before this one was a spike: this fix now follows the one
                 # before that; it is not tested in turn (two spikes in a row are rare,
@@ -942,7 +946,7 @@ class Tracker:
                        [_copy_level(lv) for lv in self.levels])
 
     def _spike_test(
-        self, fix: Fix, seq: int, broke: bool, events: list[Event]
+        self, fix: Fix, seq: int, broke: bool, refused: bool, events: list[Event]
     ) -> tuple[int, list[tuple[Level, CandidateTree]]] | None:
         """Decide, one fix late, whether the fix before ``fix`` was a spike; drop it if so.
 
@@ -970,6 +974,9 @@ class Tracker:
            the smallest level where it goes on.
 
         ``broke``: no level's tree went on through the suspect from before it.
+        ``refused``: no level matched the suspect (its ``Filtered`` event, with the reason
+        no level took it, is out already): a drop appends no ``spike`` event, so a fix is
+        counted once among the filtered.
         Returns None when the suspect stays (the levels are as they were), else the
         sequence number ``fix`` now has and the levels that started afresh in the
         straight way. A dropped fix is reported as filtered (``spike``); its final answer
@@ -1027,7 +1034,8 @@ class Tracker:
         self.fix_xy[row, 0] = fix.x
         self.fix_xy[row, 1] = fix.y
         self.fix_n = row + 1
-        events.append(Filtered(fix.vehicle, t_suspect, "spike"))
+        if not refused:
+            events.append(Filtered(fix.vehicle, t_suspect, "spike"))
         skipped = list(self.skipped)
         bisect.insort(skipped, t_suspect)
         self.skipped = tuple(skipped)
