@@ -84,6 +84,20 @@ def test_compiled_equals_pure(extract: str, seed: int, every: int) -> None:
     assert _exact(compiled) == _exact(pure)
 
 
+@pytest.mark.parametrize(("extract", "seed", "every"), [("Helsinki", 3, 1), ("test", 6, 15)])
+def test_compiled_equals_pure_with_the_beam(extract: str, seed: int, every: int) -> None:
+    """With the cost beam on (``beam_margin``, ``beam_keep``) both builds agree bit for bit;
+    at 1 s the beam changed what the tracker did (its commits come at other fixes)."""
+    net = osm(extract)
+    fixes = drive(net, seed, every, seconds=300.0)
+    settings = MatchSettings(beam_margin=20.0, beam_keep=6)
+    compiled = _events(tracker_module.Tracker(net, f"v{seed}", settings), fixes)
+    pure = _events(pure_tracker().Tracker(net, f"v{seed}", settings), fixes)
+    assert _exact(compiled) == _exact(pure)
+    plain = _events(tracker_module.Tracker(net, f"v{seed}", MatchSettings()), fixes)
+    assert (_exact(compiled) != _exact(plain)) == (every == 1)
+
+
 def test_checkpoint_crosses_builds() -> None:
     """A state written by the compiled tracker restores into the pure one, and back."""
     net = osm("test")
