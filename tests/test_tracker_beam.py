@@ -109,8 +109,8 @@ def test_beam_leaves_the_answers_on_the_street() -> None:
             [e for e in plain if isinstance(e, Assignment)]
     # with one state a level (beam_keep 1) the first commit comes fixes sooner
     kept = track_points(net, KEEP, pts)
-    first = [e for e in kept if isinstance(e, Commit)][0]
-    first_plain = [e for e in plain if isinstance(e, Commit)][0]
+    first = next(e for e in kept if isinstance(e, Commit))
+    first_plain = next(e for e in plain if isinstance(e, Commit))
     assert kept.index(first) < plain.index(first_plain)
 
 
