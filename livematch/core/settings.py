@@ -855,7 +855,8 @@ class MatchSettings:
             level covering the oldest pending fix (a forced commit reads its best by
             live score), nor the best state. Dropping reachable states leaves every
             kept path within eps of its fixes (each certificate holds); the level can
-            only die and start afresh sooner, and its candidates agree (commit) sooner.
+            only die and start afresh sooner. Its candidates would agree sooner too:
+            with the rule on, only the first covering level commits by agreement.
             Why: memory (issue 9): a driven vehicle's 60 m level holds about 21 live
             states and their ancestors, most of them far from the fixes
             (docs/measured.md, "Session 30 (beam30)"). 0, the default, is off.

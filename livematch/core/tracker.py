@@ -770,9 +770,13 @@ class Tracker:
         (:meth:`CandidateTree.beam`), except the smallest level covering the oldest
         pending fix when that is not the smallest live one: a forced commit reads that
         level's best by live score, which the path cost's beam could drop. The smallest
-        live level decides the live answer and is never thinned. Run after the fix's
-        commits, so the states that fix settled are those without the rule; the next
-        step sweeps from the kept states. Why: memory (``MatchSettings.beam_margin``).
+        live level decides the live answer and is never thinned. The thinned levels are
+        then the covering levels after the first (and the live ones not covering):
+        :meth:`_settle` lets none of them commit by agreement, as their states agree
+        because states were dropped (a first build that let them lost final answers at
+        1 s: docs/measured.md, "Session 30 (beam30)"). Run after the fix's commits, so
+        the states that fix settled are those without the rule; the next step sweeps
+        from the kept states. Why: memory (``MatchSettings.beam_margin``).
 
         Example (a fresh tracker: no live level, nothing to thin):
             >>> from livematch.core.build import Road, network_from_roads
@@ -1552,10 +1556,16 @@ class Tracker:
                     covering = self._covering()
                     break
         waits: bool | None = None  # _into_stand(t, dt, stood), asked when a commit is due
+        # with the cost beam (Tracker._beam) the covering levels after the first are
+        # thinned: their candidates agree because states were dropped, which is no
+        # evidence; only the first commits by agreement (nor do they defer to it)
+        thinned = s.beam_margin > 0.0 or s.beam_keep > 0
         progressed = True
         while progressed:
             progressed = False
             for level in covering:
+                if thinned and level is not covering[0]:
+                    break
                 tree = level.tree
                 # the common ancestor, back to the newest fix that may be committed
                 known = tops.get(level) if tops else None
