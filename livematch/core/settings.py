@@ -859,7 +859,13 @@ class MatchSettings:
             with the rule on, only the first covering level commits by agreement.
             Why: memory (issue 9): a driven vehicle's 60 m level holds about 21 live
             states and their ancestors, most of them far from the fixes
-            (docs/measured.md, "Session 30 (beam30)"). 0, the default, is off.
+            (docs/measured.md, "Session 30 (beam30)"). 0, the default, is off. Off by
+            default: at 20 with ``beam_keep`` 8 a driven 1 Hz vehicle held 7.93 KB instead
+            of 10.19 (``bench/memory.py --steps 6,7``), but on bench/fleetmiss.py's
+            decision runs final road+dir fell in all eight 1 s cells, by 0.02-0.21 points
+            (random walk Helsinki seed 31 0.9864 -> 0.9843): where the vehicle stands
+            and the fixes drift, the 15 m level dies and the thinned 30 m level it falls
+            back to has dropped the road the vehicle came in by.
         beam_keep: with the same rule, each such level keeps at most this many live
             states, the first by cost (:func:`livematch.core.sweep.best_leaf`'s order).
             0, the default, is off.
