@@ -21,9 +21,11 @@ class WorkerPair:
     """The base and the new tree's workers, started from ``command`` (``--worker`` added by
     the caller)."""
 
-    def __init__(self, command: list[str], base: str, new: str) -> None:
+    def __init__(self, command: list[str], base: str, new: str,
+                 new_args: list[str] | None = None) -> None:
+        """``new_args``: added to the new worker's command only (its own settings)."""
         self.base = self._start(command, base)
-        self.new = self._start(command, new)
+        self.new = self._start(command + (new_args or []), new)
 
     @staticmethod
     def _start(command: list[str], tree: str) -> subprocess.Popen[str]:

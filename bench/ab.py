@@ -17,6 +17,11 @@ drives as ``--what tracker``, seed 2009/5), a fresh pipeline per drive that shar
 fleet's prepared routes, then ``flush``. The set-up is this script's own
 (``bench/speed.py`` beside it); each tree only supplies ``livematch``.
 
+``--new-matcher KEY=VALUE`` (``--what tracker``, repeatable): the new tree's trackers run
+with these ``[matcher]`` settings (values read as TOML, as ``bench/accuracy.py
+--matcher``), the base's with the defaults: a setting's CPU in one tree (``--base`` and
+``--new`` the same checkout), without a throwaway checkout and its build.
+
 ``--heading-sigma DEG`` (``--what tracker``): the drives' fixes report a course over
 ground (``DriveSettings.heading_sigma_deg``); a setting such as ``heading_cost`` is then
 compared by giving the two trees different defaults (a throwaway checkout with the
@@ -43,7 +48,7 @@ ROOT = Path(__file__).resolve().parents[1]
 
 
 def worker(extract: str, drives: int, duration: float, what: str = "tracker",
-           heading_sigma: float | None = None) -> None:
+           heading_sigma: float | None = None, matcher: str = "{}") -> None:
     """Serve requests ``<drive> <every>`` on stdin with ``[cpu_s, fixes]`` on stdout."""
     sys.path.insert(0, str(Path(__file__).resolve().parent))
     if what == "pipeline":
@@ -58,11 +63,12 @@ def worker(extract: str, drives: int, duration: float, what: str = "tracker",
     net = load_extract(extract)
     runs = drive_fixes(net, drives, duration, [2009, 5], heading_sigma)
     warm_up()
+    settings = MatchSettings(**json.loads(matcher))  # --new-matcher's, else the defaults
     print("ready", flush=True)
     for line in sys.stdin:
         k, every = map(int, line.split())
         fixes = runs[k][::every]
-        tracker = Tracker(net, fixes[0].vehicle, MatchSettings())
+        tracker = Tracker(net, fixes[0].vehicle, settings)
         t0 = time.process_time()
         for fix in fixes:
             tracker.update(fix)
@@ -103,10 +109,15 @@ def main(argv: list[str] | None = None) -> int:
                     help="--what tracker: fixes report their course over ground with this "
                     "error (degrees; DriveSettings.heading_sigma_deg; both trees' settings "
                     "decide whether it is read); default: no heading, as before")
+    ap.add_argument("--new-matcher", action="append", default=[], metavar="KEY=VALUE",
+                    help="--what tracker: the new tree's [matcher] settings (repeatable; "
+                    "the base runs the defaults)")
+    ap.add_argument("--worker-matcher", default="{}", help=argparse.SUPPRESS)
     ap.add_argument("--worker", action="store_true", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.worker:
-        worker(args.extract, args.drives, args.duration, args.what, args.heading_sigma)
+        worker(args.extract, args.drives, args.duration, args.what, args.heading_sigma,
+               args.worker_matcher)
         return 0
     me = [sys.executable, str(Path(__file__).resolve()), "--base", args.base, "--worker",
           "--extract", args.extract, "--drives", str(args.drives),
@@ -117,7 +128,12 @@ def main(argv: list[str] | None = None) -> int:
     sys.path.insert(0, str(Path(__file__).resolve().parent))
     from _pair import WorkerPair
 
-    workers = WorkerPair(me, args.base, args.new)
+    new_args: list[str] = []
+    if args.new_matcher:
+        from accuracy import matcher_settings
+
+        new_args = ["--worker-matcher", json.dumps(matcher_settings(args.new_matcher))]
+    workers = WorkerPair(me, args.base, args.new, new_args)
     print(f"# bench/ab.py {' '.join(argv if argv is not None else sys.argv[1:])}; "
           f"load average {os.getloadavg()[0]:.2f}")
     for every in (int(e) for e in args.every.split(",")):

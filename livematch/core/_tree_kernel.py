@@ -168,6 +168,7 @@ __all__ = [
     "TREE_OVERFLOW",
     "T_SPARE",
     "ancestor_at",
+    "beam_live",
     "best_row",
     "best_scored",
     "block_ancestor",
@@ -184,6 +185,7 @@ __all__ = [
     "fix_base",
     "floats",
     "junction_split",
+    "keep_live",
     "kept_rows",
     "live_answer",
     "live_base",
@@ -413,6 +415,20 @@ def descends_from(ti: np.ndarray, node: int, anc: int) -> bool:
 def prune_live(ti: np.ndarray, anc: int) -> int:
     """Keep, in order, the live rows descending from ``anc``; returns the block's new end.
 
+    Live rows are leaves, so moving them within the block breaks no back-pointer (see
+    :func:`keep_live`).
+    """
+    lo = ti[H_LO]
+    keep = np.zeros(ti[H_HI] - lo, np.bool_)
+    for r in range(lo, ti[H_HI]):
+        keep[r - lo] = descends_from(ti, r, anc)
+    return keep_live(ti, keep)
+
+
+@_jit
+def keep_live(ti: np.ndarray, keep: np.ndarray) -> int:
+    """Keep, in order, the live rows ``r`` with ``keep[r - lo]``; returns the block's new end.
+
     Live rows are leaves, so moving them within the block breaks no back-pointer. Their
     vias move down with them (each row's vias start where the row before's end), and
     the rows after the block are dropped (``H_N`` is the block's end).
@@ -427,7 +443,7 @@ def prune_live(ti: np.ndarray, anc: int) -> int:
     for r in range(lo, ti[H_HI]):
         v0 = end_before
         end_before = ti[ROW_I * r + K_VIAE]
-        if descends_from(ti, r, anc):
+        if keep[r - lo]:
             for j in range(v0, end_before):
                 ti[vb + nv + j - v0] = ti[vb + j]
             nv += end_before - v0
@@ -444,6 +460,75 @@ def prune_live(ti: np.ndarray, anc: int) -> int:
     ti[H_N] = w
     ti[H_NV] = nv
     return w
+
+
+@_jit
+def _worse(ti: np.ndarray, costs: np.ndarray, lo: int, r: int, b: int, prefer: int) -> bool:
+    """Whether live row ``r`` ranks after row ``b`` by (cost, seg != prefer, seg)."""
+    c, cb = costs[r - lo], costs[b - lo]
+    if c != cb:
+        return c > cb
+    s, sb = ti[ROW_I * r + K_SEG], ti[ROW_I * b + K_SEG]
+    if (s != prefer) != (sb != prefer):
+        return s != prefer
+    return s > sb
+
+
+@_jit
+def beam_live(ti: np.ndarray, margin: float, most: int, prefer: int) -> int:
+    """:func:`livematch.core.sweep.beam`: drop the live rows far from the best; the block's end.
+
+    A row stays when its cost is at most the best row's (:func:`best_row`) plus
+    ``margin`` (``margin`` <= 0: no bound) and, with ``most`` > 0, it is among the
+    ``most`` first by (cost, seg != prefer, seg), the order :func:`best_row` ranks by (a
+    total order: one live state a segment). The best row always stays. Nothing is moved
+    when every row stays (the usual case: one call reads the costs and returns).
+    """
+    tf = ti[ti[H_IEND] + (ti[H_IEND] & 1):].view(np.float64)  # floats(), written out
+    lo = ti[H_LO]
+    hi = ti[H_HI]
+    k = hi - lo
+    lb = ROW_F * ti[H_RCAP]  # live_base
+    costs = tf[lb + LF_COST:lb + LIVE_F * k:LIVE_F]
+    best = best_row(ti, prefer)
+    bound = costs[best - lo] + margin if margin > 0.0 else math.inf
+    drop = 0
+    for j in range(k):
+        if costs[j] > bound:
+            drop += 1
+    if most > 0 and k - drop > most:
+        # the most-th row's cost by a sort of the rows within the bound; ties at that
+        # cost ranked by the rest of the order, pairwise (rare)
+        within = np.empty(k - drop)
+        i = 0
+        for j in range(k):
+            if costs[j] <= bound:
+                within[i] = costs[j]
+                i += 1
+        within.sort()
+        cut = within[most - 1]
+        below = 0
+        for j in range(k):
+            if costs[j] < cut:
+                below += 1
+        keep = np.zeros(k, np.bool_)
+        for r in range(lo, hi):
+            c = costs[r - lo]
+            if c < cut:
+                keep[r - lo] = True
+            elif c == cut:
+                ahead = below
+                for q in range(lo, hi):
+                    if q != r and costs[q - lo] == cut and _worse(ti, costs, lo, r, q, prefer):
+                        ahead += 1
+                keep[r - lo] = ahead < most
+        return keep_live(ti, keep)
+    if drop == 0:
+        return hi
+    keep = np.zeros(k, np.bool_)
+    for j in range(k):
+        keep[j] = costs[j] <= bound
+    return keep_live(ti, keep)
 
 
 @_jit

@@ -893,6 +893,10 @@ class CandidateTree:
         """Keep only the live states descending from ``row``."""
         self.hi = _t.prune_live(self.ti, row)
 
+    def beam(self, margin: float, most: int, prefer: int) -> None:
+        """Keep only the live states near the best (:func:`livematch.core.sweep.beam`)."""
+        self.hi = _t.beam_live(self.ti, margin, most, prefer)
+
     def trim(self, next_commit: int, seq: int, trim_seq: int, max_lag: int,
              prefer: int) -> tuple[int, int]:
         """Cut history older than any future commit needs (``Tracker._trim``).
@@ -1093,6 +1097,7 @@ def warm_up() -> None:
     tree.driven_since(best, row, net.seg_len)
     tree.common_ancestor(0)
     _t.seq_at(tree.ti, 0)  # a row's fix, when it lies more than a few fixes back
+    tree.beam(1.0, 1, -1)  # (MatchSettings.beam_margin / beam_keep, when set)
     tree.prune(row)
     tree.trim(0, tracker.seq, 0, 60, -1)  # a tracker's own trim is rare: the commit check cuts
     # the sweep kernel on its own (the route monitor's step) is a compilation of its own

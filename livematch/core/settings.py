@@ -846,6 +846,29 @@ class MatchSettings:
             trips Helsinki 1 s seed 31 final 0.9800 -> 0.9807, seed 77 0.9832 ->
             0.9821; the random walk Helsinki 1 s 0.9864 -> 0.9852 and 0.9884 -> 0.9871;
             docs/measured.md, "Session 28 (class28)").
+        beam_margin: a cost beam over the levels above the smallest live one (the
+            fallback while that one decides): after each fix, each such level drops its
+            live states whose path cost exceeds its best state's by more than this
+            (cost units: a fix's distance term is d^2 / (2 sigma_m^2));
+            :func:`livematch.core.sweep.beam`, :meth:`livematch.core.tracker.Tracker._beam`.
+            Never the smallest live level (it decides the live answer), nor the smallest
+            level covering the oldest pending fix (a forced commit reads its best by
+            live score), nor the best state. Dropping reachable states leaves every
+            kept path within eps of its fixes (each certificate holds); the level can
+            only die and start afresh sooner. Its candidates would agree sooner too:
+            with the rule on, only the first covering level commits by agreement.
+            Why: memory (issue 9): a driven vehicle's 60 m level holds about 21 live
+            states and their ancestors, most of them far from the fixes
+            (docs/measured.md, "Session 30 (beam30)"). 0, the default, is off. Off by
+            default: at 20 with ``beam_keep`` 8 a driven 1 Hz vehicle held 7.93 KB instead
+            of 10.19 (``bench/memory.py --steps 6,7``), but on bench/fleetmiss.py's
+            decision runs final road+dir fell in all eight 1 s cells, by 0.02-0.21 points
+            (random walk Helsinki seed 31 0.9864 -> 0.9843): where the vehicle stands
+            and the fixes drift, the 15 m level dies and the thinned 30 m level it falls
+            back to has dropped the road the vehicle came in by.
+        beam_keep: with the same rule, each such level keeps at most this many live
+            states, the first by cost (:func:`livematch.core.sweep.best_leaf`'s order).
+            0, the default, is off.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -917,6 +940,8 @@ class MatchSettings:
     join_margin_m: float = 0.0
     filtered_pace: bool = False
     class_cost_m: float = 0.0
+    beam_margin: float = 0.0
+    beam_keep: int = 0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -943,7 +968,8 @@ class MatchSettings:
         for name in ("turn_back_cost", "junction_hold", "junction_hold_m", "error_tau_s",
                      "spike_cost", "street_turn_cost", "join_detour", "live_keep",
                      "live_keep_stand_s", "stand_short_m", "speed_pace_m", "heading_cost",
-                     "roll_back_slack_m", "stub_turn_m", "join_margin_m", "class_cost_m"):
+                     "roll_back_slack_m", "stub_turn_m", "join_margin_m", "class_cost_m",
+                     "beam_margin"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))
@@ -967,6 +993,9 @@ class MatchSettings:
         elif radius > 0 and eps and radius < max(eps):
             out.append(("off_network_m", "must be 0 (the largest eps) or at least the largest "
                         f"eps level ({max(eps):g}), got {radius!r}"))
+        if not (isinstance(self.beam_keep, int) and not isinstance(self.beam_keep, bool)
+                and self.beam_keep >= 0):
+            out.append(("beam_keep", f"must be an integer >= 0, got {self.beam_keep!r}"))
         if not (isinstance(self.reorder_fixes, int) and 0 <= self.reorder_fixes <= 32):
             out.append(("reorder_fixes", f"must be an integer 0..32, got {self.reorder_fixes!r}"))
         return out

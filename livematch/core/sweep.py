@@ -992,6 +992,40 @@ def best_leaf(live: dict[int, Node], prefer: int = -1) -> Node:
     return min(live.values(), key=lambda n: (n.cost, n.seg != prefer, n.seg))
 
 
+def beam(live: dict[int, Node], margin: float, most: int, prefer: int = -1) -> dict[int, Node]:
+    """The live states near the best: a cost beam over one level's candidates.
+
+    A state stays when its cost is at most the best's (:func:`best_leaf`) plus
+    ``margin`` (``margin`` <= 0: no bound) and, with ``most`` > 0, it is among the
+    ``most`` first by :func:`best_leaf`'s order (cost, then segment ``prefer``, then the
+    lowest segment). The best state always stays; the order of ``live`` is kept.
+    Dropping states leaves every kept path as it was (each still within eps of its
+    fixes): the level can only die, and start afresh, sooner. Why: a large level
+    (the fallback while a smaller one decides) holds many states far from the fixes,
+    each a live row and its ancestors in memory (``MatchSettings.beam_margin``,
+    ``MatchSettings.beam_keep``).
+
+    Example (three states on segments 0, 1, 2 costing 1, 4 and 9):
+        >>> live = {s: Node(s, 1, 0.0, 0.5, 0.0, 0.0, None, (), c, 0.0)
+        ...         for s, c in ((0, 1.0), (1, 4.0), (2, 9.0))}
+        >>> list(beam(live, 5.0, 0))  # within 5 of the best
+        [0, 1]
+        >>> list(beam(live, 0.0, 1))  # the best one only
+        [0]
+        >>> list(beam(live, 0.0, 0))  # no bound: every state
+        [0, 1, 2]
+    """
+    if not live:
+        return {}
+    order = sorted(live.values(), key=lambda n: (n.cost, n.seg != prefer, n.seg))
+    bound = order[0].cost + margin if margin > 0.0 else math.inf
+    kept = [n for n in order if n.cost <= bound]
+    if most > 0:
+        kept = kept[:most]
+    ids = {id(n) for n in kept}
+    return {s: n for s, n in live.items() if id(n) in ids}
+
+
 def live_score(
     node: Node, fixes: Mapping[int, tuple[float, float]], first: int,
     inv_two_sigma2: float, tau_s: float, max_dt: float,

@@ -759,11 +759,54 @@ class Tracker:
                                        window_s)
         self._settle(seq, fix.t, dt, salvage, events, hold_newest=before is not None,
                      tops=tops, stood=stood)
+        if s.beam_margin > 0.0 or s.beam_keep > 0:
+            self._beam()
         if prev is not None and fix.t - prev[0] >= SPARSE_S:
             # a vehicle reporting this rarely spends most of its time idle: keep its
             # trees without spare room (a compaction per level; decisions unchanged)
             for level in self.levels:
                 level.tree.shrink()
+
+    def _beam(self) -> None:
+        """Rule ``beam_margin`` / ``beam_keep``: thin the live states of the fallback levels.
+
+        Every live level above the smallest live one keeps only the states near its best
+        (:meth:`CandidateTree.beam`), except the smallest level covering the oldest
+        pending fix when that is not the smallest live one: a forced commit reads that
+        level's best by live score, which the path cost's beam could drop. The smallest
+        live level decides the live answer and is never thinned. The thinned levels are
+        then the covering levels after the first (and the live ones not covering):
+        :meth:`_settle` lets none of them commit by agreement, as their states agree
+        because states were dropped (a first build that let them lost final answers at
+        1 s: docs/measured.md, "Session 30 (beam30)"). Run after the fix's commits, so
+        the states that fix settled are those without the rule; the next step sweeps
+        from the kept states. Why: memory (``MatchSettings.beam_margin``).
+
+        Example (a fresh tracker: no live level, nothing to thin):
+            >>> from livematch.core.build import Road, network_from_roads
+            >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
+            >>> tracker = Tracker(net, "v1", MatchSettings(beam_keep=2))
+            >>> tracker._beam()
+            >>> [len(lv.tree) for lv in tracker.levels]
+            [0, 0, 0]
+        """
+        s = self.settings
+        first = self.next_commit
+        deciding = False
+        covered = False
+        for level in self.levels:
+            tree = level.tree
+            if tree.hi <= tree.lo:
+                continue
+            if not deciding:
+                deciding = True  # the smallest live level: never thinned
+                covered = level.tree_seq <= first
+                continue
+            if not covered and level.tree_seq <= first:
+                covered = True  # the smallest covering level: left whole
+                continue
+            if tree.hi - tree.lo > 1:
+                tree.beam(s.beam_margin, s.beam_keep, self.last_seg)
 
     def _refused_reason(self, fix: Fix) -> str:
         """Why no level matched ``fix``: ``no_road_nearby`` or ``road_beyond_eps``.
@@ -1521,10 +1564,16 @@ class Tracker:
                     covering = self._covering()
                     break
         waits: bool | None = None  # _into_stand(t, dt, stood), asked when a commit is due
+        # with the cost beam (Tracker._beam) the covering levels after the first are
+        # thinned: their candidates agree because states were dropped, which is no
+        # evidence; only the first commits by agreement (nor do they defer to it)
+        thinned = s.beam_margin > 0.0 or s.beam_keep > 0
         progressed = True
         while progressed:
             progressed = False
             for level in covering:
+                if thinned and level is not covering[0]:
+                    break
                 tree = level.tree
                 # the common ancestor, back to the newest fix that may be committed
                 known = tops.get(level) if tops else None

@@ -1,0 +1,156 @@
+"""Rule ``beam_margin`` / ``beam_keep``: a cost beam over the levels above the smallest live one.
+
+The plain case: a street east along y = 0, and two side roads parallel to it, 25 m and
+45 m north, each joined to the street by a ramp at both ends. The vehicle drives the
+street at 10 m/s, one fix a second, the fixes on it. The 15 m level holds the street
+only; the 30 m level the street and the 25 m road; the 60 m level all three. A state on
+the 25 m road pays 25^2 / (2 * 5^2) = 12.5 a fix more than one on the street (the
+distance term of the path cost, sigma_m 5 m), one on the 45 m road 40.5: with a margin of
+5 both side roads leave the upper levels at their first step on the straight.
+"""
+
+from __future__ import annotations
+
+import pytest
+import shapely
+
+from livematch.core.build import Road, network_from_roads
+from livematch.core.candidates import CandidateTree
+from livematch.core.fix import Fix
+from livematch.core.network import RoadNetwork
+from livematch.core.settings import MatchSettings
+from livematch.core.tracker import Tracker
+from livematch.core.view import view_of
+from tests.catalogue import assert_answers_on_road, final_answers, track_points
+
+STREET = [(float(x), 0.0) for x in range(0, 801, 50)]
+MARGIN = MatchSettings(beam_margin=5.0)
+KEEP = MatchSettings(beam_keep=1)
+
+
+def _street_and_side_roads() -> RoadNetwork:
+    roads = [Road(STREET, way=1)]
+    for way, y in ((2, 25.0), (3, 45.0)):
+        roads.append(Road([(0.0, 0.0), (50.0, y)] + [(float(x), y) for x in range(100, 701, 50)]
+                          + [(750.0, 0.0)], way=way))
+    return network_from_roads(roads)
+
+
+def _pts() -> list[tuple[float, float]]:
+    return [(10.0 * i, 0.0) for i in range(70)]
+
+
+def _fed(net: RoadNetwork, settings: MatchSettings, n: int) -> Tracker:
+    tracker = Tracker(net, "v", settings)
+    for i, (x, y) in enumerate(_pts()[:n]):
+        tracker.update(Fix("v", float(i), 0.0, 0.0, x, y))
+    return tracker
+
+
+def _live_points(net: RoadNetwork, tree: CandidateTree) -> list[shapely.Point]:
+    view = view_of(net)
+    return [shapely.Point(tree.point(view, r)[2:]) for r in range(tree.lo, tree.hi)]
+
+
+def test_beam_margin_drops_the_side_roads_from_the_upper_levels() -> None:
+    """Off, the 60 m level keeps states on the side roads 25 and 45 m away; with a margin
+    of 5 every upper level's live states lie on the street (shapely distance) and cost at
+    most 5 more than its best; the 15 m level, which decides, is the same on and off."""
+    net = _street_and_side_roads()
+    street = shapely.LineString(STREET)
+    off = _fed(net, MatchSettings(), 30)
+    on = _fed(net, MARGIN, 30)
+    far = [p for p in _live_points(net, off.levels[2].tree) if street.distance(p) > 20.0]
+    assert far  # the states the rule drops (shapely: more than 20 m from the street)
+    for level in on.levels[1:]:
+        tree = level.tree
+        assert tree.hi > tree.lo
+        assert all(street.distance(p) < 1e-9 for p in _live_points(net, tree))  # shapely
+        costs = tree.costs()
+        assert costs.max() <= costs.min() + 5.0
+    small_off, small_on = off.levels[0].tree, on.levels[0].tree
+    assert _live_points(net, small_off) == _live_points(net, small_on)
+    assert small_off.costs().tolist() == small_on.costs().tolist()
+
+
+def test_beam_keep_holds_at_most_that_many_states_in_the_upper_levels() -> None:
+    """With ``beam_keep`` 1 each upper level holds one live state after every fix, the
+    best by path cost; off, the 60 m level holds more; the smallest is never thinned."""
+    net = _street_and_side_roads()
+    off = Tracker(net, "v", MatchSettings())
+    on = Tracker(net, "v", KEEP)
+    most_off = 0
+    for i, (x, y) in enumerate(_pts()[:40]):
+        fix = Fix("v", float(i), 0.0, 0.0, x, y)
+        off.update(fix)
+        on.update(fix)
+        most_off = max(most_off, off.levels[2].tree.hi - off.levels[2].tree.lo)
+        for level in on.levels[1:]:
+            assert level.tree.hi - level.tree.lo == 1
+        assert (on.levels[0].tree.hi - on.levels[0].tree.lo
+                == off.levels[0].tree.hi - off.levels[0].tree.lo)
+    assert most_off > 1
+
+
+def test_beam_leaves_the_answers_on_the_street() -> None:
+    """On the straight street the events with the rule are those without it: every final
+    answer on the street within eps of its fix (shapely). The upper levels, left with one
+    state (``beam_keep`` 1), agree at once, but only the first covering level commits by
+    agreement while the rule is on, so the commits come when they did."""
+    net = _street_and_side_roads()
+    pts = _pts()
+    plain = track_points(net, MatchSettings(), pts)
+    for settings in (MARGIN, KEEP):
+        events = track_points(net, settings, pts)
+        assert_answers_on_road(final_answers(events), pts, 1.0, STREET, 15.0)
+        assert events == plain
+
+
+@pytest.mark.parametrize("restore_at", [10, 35])
+def test_beam_restored_mid_drive_goes_on_the_same(restore_at: int) -> None:
+    """A tracker checkpointed and restored mid-drive gives the same events as one that never
+    stopped (the setting is not state: the trees kept are the thinned ones)."""
+    net = _street_and_side_roads()
+    for settings in (MARGIN, KEEP):
+        assert track_points(net, settings, _pts(), restore_at=restore_at) == \
+            track_points(net, settings, _pts())
+
+
+def test_beam_spares_the_deciding_and_the_oldest_covering_level() -> None:
+    """The smallest live level is never thinned (here the 30 m one, the 15 m tree being
+    dead), nor the smallest level covering the oldest pending fix when a smaller tree
+    began after it; the levels above those are."""
+    net = _street_and_side_roads()
+    tracker = _fed(net, MatchSettings(), 12)
+    assert tracker.levels[2].tree.hi - tracker.levels[2].tree.lo > 1
+    assert tracker.levels[1].tree.hi - tracker.levels[1].tree.lo > 1
+    # the 15 m tree dead: the 30 m level decides
+    dead = Tracker.from_bytes(net, KEEP, tracker.to_bytes())
+    dead.levels[0].tree = CandidateTree()
+    before = dead.levels[1].tree.hi - dead.levels[1].tree.lo
+    dead._beam()
+    assert dead.levels[1].tree.hi - dead.levels[1].tree.lo == before
+    assert dead.levels[2].tree.hi - dead.levels[2].tree.lo == 1
+    # the 15 m tree began after the oldest pending fix: the 30 m level covers it
+    young = Tracker.from_bytes(net, KEEP, tracker.to_bytes())
+    young.levels[0].tree_seq = young.next_commit + 1
+    young._beam()
+    assert young.levels[1].tree.hi - young.levels[1].tree.lo == before
+    assert young.levels[2].tree.hi - young.levels[2].tree.lo == 1
+    # both young and covered by the 30 m level from the start: the 30 m level is thinned
+    old = Tracker.from_bytes(net, KEEP, tracker.to_bytes())
+    old._beam()
+    assert old.levels[1].tree.hi - old.levels[1].tree.lo == 1
+
+
+def test_beam_is_off_by_default_and_validated() -> None:
+    """Both keys are 0 (off) by default; the margin a finite number >= 0, the count an
+    integer >= 0."""
+    assert (MatchSettings().beam_margin, MatchSettings().beam_keep) == (0.0, 0)
+    for bad in (-1.0, float("nan"), float("inf"), "3"):
+        problems = MatchSettings(beam_margin=bad).problems()  # type: ignore[arg-type]
+        assert ("beam_margin", f"must be a number >= 0, got {bad!r}") in problems
+    for bad_k in (-1, 2.5, "3", True):
+        problems = MatchSettings(beam_keep=bad_k).problems()  # type: ignore[arg-type]
+        assert ("beam_keep", f"must be an integer >= 0, got {bad_k!r}") in problems
+    assert MatchSettings(beam_margin=3.0, beam_keep=4).problems() == []
