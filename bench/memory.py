@@ -6,7 +6,7 @@ Run: ``.venv/bin/python bench/memory.py [--counts 1000,10000,100000] [--drives 4
 [--fleet-trim-every 60] [--breakdown-vehicles 2000] [--breakdown-frames 1]
 [--room-drives 6] [--park-vehicles 2000] [--park-seconds 600] [--park-intervals 15,30]
 [--park-after 5] [--park-warm] [--park-slope] [--steps 1,2,3,4,5,6]
-[--matcher KEY=VALUE ...] [--out DIR]``
+[--matcher KEY=VALUE ...] [--out DIR] [--name STEM]``
 
 Goal (issue 9): <= 4 KB for a typical live vehicle, 100,000 vehicles in <= 1 GB resident.
 
@@ -102,11 +102,13 @@ representation is. Steps, each measuring process a fresh subprocess:
 
 ``--steps 5``, ``--steps 6``, ``--steps 7``, ``--steps 8`` or a mix of them run only those
 (no pool, no report of steps 1-4): ``memory.partial.md`` / ``memory.partial.json`` in
-``--out``.
+``--out``, or ``memory.STEM.md`` / ``.json`` with ``--name STEM`` (so a run lands under
+the name it is cited by, and never over another run's file).
 
 The estimate for 100,000 restored vehicles behind a pipeline: the step-3 growth at
 100,000 plus 100,000 x the step-4 overhead, plus the base RSS of step 3. Results:
-``bench/results/memory.md`` and ``memory.json`` (or ``--out DIR``).
+``bench/results/memory.md`` and ``memory.json`` (or ``--out DIR``; ``memory.STEM.*`` with
+``--name STEM``).
 """
 
 from __future__ import annotations
@@ -1273,11 +1275,21 @@ def partial_run(args: argparse.Namespace, steps: set[int], started: str,
                   "the whole process."]
     text = "\n".join(lines) + "\n"
     print(text)
+    write_result(args, "partial", text, result)
+    return 0
+
+
+def write_result(args: argparse.Namespace, default_stem: str | None, text: str,
+                 result: dict[str, Any]) -> None:
+    """Write the report as ``memory.STEM.md`` / ``.json`` in ``--out``: STEM is
+    ``--name`` if given, else ``default_stem`` (None: plain ``memory.md``)."""
+    stem = args.name or default_stem
+    base = "memory" if stem is None else f"memory.{stem}"
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
-    (out / "memory.partial.md").write_text(text, encoding="utf-8")
-    (out / "memory.partial.json").write_text(json.dumps(result, indent=1), encoding="utf-8")
-    return 0
+    (out / f"{base}.md").write_text(text, encoding="utf-8")
+    (out / f"{base}.json").write_text(json.dumps(result, indent=1), encoding="utf-8")
+    print(f"written: {out / base}.md, .json")
 
 
 def breakdown_lines(b: dict[str, Any] | None) -> list[str]:
@@ -1433,7 +1445,11 @@ def main(argv: list[str] | None = None) -> int:
                          "bench/matcher_ab.py --matcher); the report's header names them")
     ap.add_argument("--steps", default="1,2,3,4,5,6",
                     help="steps to run (the pool, step 1, is built when 2 or 3 is asked)")
-    ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
+    ap.add_argument("--out", default=str(ROOT / "bench" / "results"),
+                    help="folder the report is written to")
+    ap.add_argument("--name", default=None, metavar="STEM",
+                    help="write memory.STEM.md / .json (default: memory.md, or "
+                         "memory.partial.* when only steps 5-8 run)")
     args = ap.parse_args(argv)
     if args.role:
         what, *rest = args.role
@@ -1530,10 +1546,7 @@ def main(argv: list[str] | None = None) -> int:
             "base_mb": round(big["rss_before_kb"] / 1024, 1)}
     text = report(result)
     print(text)
-    out = Path(args.out)
-    out.mkdir(parents=True, exist_ok=True)
-    (out / "memory.md").write_text(text, encoding="utf-8")
-    (out / "memory.json").write_text(json.dumps(result, indent=1), encoding="utf-8")
+    write_result(args, None, text, result)
     return 0
 
 
