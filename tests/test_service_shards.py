@@ -181,15 +181,20 @@ async def publish_feed(port: int, topic: str, feed: list[tuple[float, bytes]]) -
 
 async def test_lease_exclusive_and_renewed(redis_url: str, prefix: str) -> None:
     """A held shard cannot be acquired by another; renewing extends its expiry."""
-    async with managers(redis_url, prefix, "a", "b", lease_s=1.0) as (a, b):
+    # A 3 s lease renewed every 0.5 s: a loaded machine (sleeps overrunning by up to
+    # 2.5 s) cannot let it lapse between renewals, as a 1 s lease could.
+    async with managers(redis_url, prefix, "a", "b", lease_s=3.0) as (a, b):
         assert await a.acquire(2) == 1
         assert await b.acquire(2) is None
-        for _ in range(4):  # 1.6 s in all: past the 1 s lease, kept alive by renewals
-            await asyncio.sleep(0.4)
+        start = time.monotonic()
+        while time.monotonic() - start < 3.5:  # past the 3 s lease, kept by renewals
+            await asyncio.sleep(0.5)
+            renewed = time.monotonic()
             assert await a.renew() == []
         assert await b.acquire(2) is None
         ttl = await a.client.pttl(a.key(2, "lease"))
-        assert 500 < ttl <= 1000
+        since_ms = (time.monotonic() - renewed) * 1000
+        assert 3000 - since_ms - 50 <= ttl <= 3000  # set to the full lease at the renewal
         owners = await b.owners()
         assert owners[2] == f"{a.token}:1"
         assert owners[0] is None
@@ -413,12 +418,17 @@ async def test_renewal_thread_retries_failures_soon(redis_url: str, prefix: str)
         thread = RenewalThread(a, redis.Redis.from_url("redis://127.0.0.1:1/0",
                                                        socket_connect_timeout=0.5),
                                2.0, got.append)
+        started = time.monotonic()
         thread.start()
         try:
-            await asyncio.sleep(0.55)
+            # one per period (2 s) would take 4 s for three rounds; one per 0.1 s about
+            # 0.2 s (plus each refused connection's time): waited for, not slept on
+            await wait_until(lambda: len(got) >= 3, "three failed renewal rounds",
+                             timeout=10.0, poll_s=0.01)
+            took = time.monotonic() - started
         finally:
             await asyncio.to_thread(thread.stop)
-        assert len(got) >= 3  # one per 0.1 s (load permitting); one per period: 1
+        assert took < 2.0, took  # sooner than the period allows a second round
         assert all(r.error is not None and r.members is None for r in got)
 
 
