@@ -48,7 +48,10 @@ on this machine and loopback only:
   CPU the group's workers do not pay, unless ``--probe-groups``); with ``--cpu-per-fix``
   a system written ``SYSTEM*K`` runs at K times the rate (``livematch-2sc*2``: each
   worker of the group matches as many fixes a second as one worker does at the rate, and
-  the two-worker ratio is then taken at equal work per worker, not equal offered load);
+  the two-worker ratio is then taken at equal work per worker, not equal offered load;
+  K may be a decimal: ``livematch-2sc*1.6`` gives each worker 0.8 of the single
+  worker's rate, the share each would match if two reached 1.6 times one's
+  throughput, so a ratio read there of 1.6 or more is self-consistent);
   and ``livematch-1p`` (two lone workers side by side, memory store, no group, w1 fed
   the vehicles w1 of a group would match on a topic of its own, ``fleetb/+/position``,
   w0 the others: a pair of processes as in a group, without the group);
@@ -1606,9 +1609,11 @@ def cpu_per_fix(rate: int, seconds: int, repeat: int, generators: int, systems: 
                 probed = probe and (system == "livematch-1" or (
                     probe_all and system.startswith("livematch")))
                 # SYSTEM*K: that system at K times the rate (a group of two at 2 x: each
-                # worker matches as many fixes a second as one worker at the rate)
+                # worker matches as many fixes a second as one worker at the rate; at
+                # 1.6 x each matches 0.8 of it, as at a throughput 1.6 times one's)
                 base, _, times = system.partition("*")
-                row = run_step(base, rate * int(times or 1), seconds, generators, pool,
+                row = run_step(base, round(rate * float(times or 1)), seconds, generators,
+                               pool,
                                probe_to=probe_dir if probed else None,
                                count_publishes=system.startswith("livematch"))
                 row["system"] = system
