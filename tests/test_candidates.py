@@ -437,9 +437,16 @@ def test_tree_step_answers_commit_point_and_compacts_like_compact(name: str,
                 live = len(plain)
                 vias = sum(plain.row_ints(r)[4] for r in range(plain.lo, plain.hi))
                 if plain.ti is not plain_arrays[0]:
-                    # compacted into new arrays: the sizes compact() gives for this step
+                    # compacted into new arrays: the sizes compact() gives for this step,
+                    # once the old live rows no new row descends from are dropped (one
+                    # live state a segment: the parents' segments name them)
+                    parents = {plain.seg_of(plain.row_ints(r)[2])
+                               for r in range(plain.lo, plain.hi)}
                     ref = copy_tree(level.tree, room)
-                    ref.compact(live, vias)
+                    old_live = len(ref)
+                    ref.hi = _t.keep_live(ref.ti, np.array(
+                        [ref.seg_of(r) in parents for r in range(ref.lo, ref.hi)]))
+                    ref.compact(_t.row_spare(live, old_live), vias)
                     assert (plain.cap_rows, plain.cap_vias) == (ref.cap_rows, ref.cap_vias)
                     assert plain.ti.base is None and plain.tf.base is plain.ti  # numpy's own
                     full += 1
