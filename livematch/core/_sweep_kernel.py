@@ -772,11 +772,16 @@ def tree_sweep(
     to compact into (:func:`compact_append` compacts into arrays the caller made and
     appends the result, which waits in the kernel's buffers).
 
-    A tree whose arrays are full is first compacted in its own arrays
-    (:func:`compact_in_place`) if that makes room and the arrays have room for at most a
-    quarter more rows, and half as many vias again, as a compaction into new arrays would
-    give them (so a tree that shrank gives its memory back, and a tree holds about as
-    many bytes as with new arrays at every compaction).
+    A tree whose arrays are full is first compacted in its own arrays if that makes room
+    and the arrays have room for at most a quarter more rows, and half as many vias
+    again, as a compaction into new arrays would give them (so a tree that shrank gives
+    its memory back, and a tree holds about as many bytes as with new arrays at every
+    compaction). Either compaction keeps what the tree needs once the step is appended
+    (:func:`step_mask`): the old live rows the new ones descend from and their
+    ancestors, not the whole old live block (whose other rows the step leaves dead:
+    about 1 KB a driven 1 Hz vehicle kept until the next compaction before session 31,
+    and 0.12 more new arrays a fix; ``bench/memory.py --steps 6,7``, docs/measured.md
+    "Session 31 (lay31)").
     """
     tf = floats(ti)
     n = ti[H_N]
