@@ -890,12 +890,18 @@ def kept_mask(ti: np.ndarray) -> np.ndarray:
     n = ti[H_N]
     keep = np.zeros(n, np.bool_)
     keep[ti[H_LO]:ti[H_HI]] = True
-    for r in range(n - 1, -1, -1):
+    mark_ancestors(ti, keep)
+    return keep
+
+
+@numba.njit(cache=True, error_model="numpy")
+def mark_ancestors(ti: np.ndarray, keep: np.ndarray) -> None:
+    """Mark in ``keep`` every ancestor of a row it marks (a parent's index is below its child's)."""
+    for r in range(ti[H_N] - 1, -1, -1):
         if keep[r]:
             p = ti[ROW_I * r + K_PARENT]
             if p >= 0:
                 keep[p] = True
-    return keep
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -915,11 +921,7 @@ def step_mask(ti: np.ndarray, ibuf: np.ndarray, m: int) -> np.ndarray:
     out_i0 = layout(ibuf[0], ibuf[1], ibuf[2], ibuf[3], ibuf[4], ibuf[5])[4]
     for j in range(m):
         keep[lo + ibuf[out_i0 + j * OUT_I_STRIDE + 1]] = True
-    for r in range(n - 1, -1, -1):
-        if keep[r]:
-            p = ti[ROW_I * r + K_PARENT]
-            if p >= 0:
-                keep[p] = True
+    mark_ancestors(ti, keep)
     return keep
 
 
