@@ -418,7 +418,7 @@ def test_tree_step_answers_commit_point_and_compacts_like_compact(name: str,
     arrays = sweep_arrays(view)
     tracker = Tracker(net, "v", MatchSettings())
     fixes = drive(net, 3, every, 200.0)
-    stepped = full = tops = 0
+    stepped = full = tops = dead_dropped = 0
     for fix, nxt in itertools.pairwise(fixes):
         tracker.update(fix)
         seq = tracker.seq + 1
@@ -432,14 +432,27 @@ def test_tree_step_answers_commit_point_and_compacts_like_compact(name: str,
             for room in (False, True):
                 plain = copy_tree(level.tree, room)
                 plain_arrays = (plain.ti, plain.tf)
+                n_old = plain.n
                 if not plain.sweep(view, step, seq, nxt.t):
                     continue  # the window died: no commit check to compare
                 live = len(plain)
                 vias = sum(plain.row_ints(r)[4] for r in range(plain.lo, plain.hi))
+                if plain.n < n_old + live:
+                    # compacted in this step (into new arrays or in place): no dead row
+                    # kept, every row the new live block or an ancestor of it
+                    assert _t.kept_rows(plain.ti)[0] == plain.n
+                    dead_dropped += 1
                 if plain.ti is not plain_arrays[0]:
-                    # compacted into new arrays: the sizes compact() gives for this step
+                    # compacted into new arrays: the sizes compact() gives for this step,
+                    # once the old live rows no new row descends from are dropped (one
+                    # live state a segment: the parents' segments name them)
+                    parents = {plain.seg_of(plain.row_ints(r)[2])
+                               for r in range(plain.lo, plain.hi)}
                     ref = copy_tree(level.tree, room)
-                    ref.compact(live, vias)
+                    old_live = len(ref)
+                    ref.hi = _t.keep_live(ref.ti, np.array(
+                        [ref.seg_of(r) in parents for r in range(ref.lo, ref.hi)]))
+                    ref.compact(_t.row_spare(live, old_live), vias)
                     assert (plain.cap_rows, plain.cap_vias) == (ref.cap_rows, ref.cap_vias)
                     assert plain.ti.base is None and plain.tf.base is plain.ti  # numpy's own
                     full += 1
@@ -455,7 +468,7 @@ def test_tree_step_answers_commit_point_and_compacts_like_compact(name: str,
                         assert top == want
                         tops += top >= 0
                 stepped += 1
-    assert stepped > 100 and full > 50 and tops > 50  # the cases really occur
+    assert stepped > 100 and full > 50 and tops > 50 and dead_dropped > 50  # they occur
 
 
 def test_tree_step_with_tiny_kernel_buffers_gives_the_same_rows_and_commit_point() -> None:

@@ -772,11 +772,16 @@ def tree_sweep(
     to compact into (:func:`compact_append` compacts into arrays the caller made and
     appends the result, which waits in the kernel's buffers).
 
-    A tree whose arrays are full is first compacted in its own arrays
-    (:func:`compact_in_place`) if that makes room and the arrays have room for at most a
-    quarter more rows, and half as many vias again, as a compaction into new arrays would
-    give them (so a tree that shrank gives its memory back, and a tree holds about as
-    many bytes as with new arrays at every compaction).
+    A tree whose arrays are full is first compacted in its own arrays if that makes room
+    and the arrays have room for at most a quarter more rows, and half as many vias
+    again, as a compaction into new arrays would give them (so a tree that shrank gives
+    its memory back, and a tree holds about as many bytes as with new arrays at every
+    compaction). Either compaction keeps what the tree needs once the step is appended
+    (:func:`step_mask`): the old live rows the new ones descend from and their
+    ancestors, not the whole old live block (whose other rows the step leaves dead:
+    about 1 KB a driven 1 Hz vehicle kept until the next compaction before session 31,
+    and 0.12 more new arrays a fix; ``bench/memory.py --steps 6,7``, docs/measured.md
+    "Session 31 (lay31)").
     """
     tf = floats(ti)
     n = ti[H_N]
@@ -823,7 +828,11 @@ def tree_sweep(
     cap_l = ti[H_LCAP]
     cap_t = tf.shape[0] - ROW_F * cap_rows - LIVE_F * cap_l
     if n + m > cap_rows or nv + n_via > cap_vias or seq - ti[H_T0] >= cap_t or m > cap_l:
-        kept, kept_v, span = kept_rows(ti)
+        # what the tree holds once the step is appended: the old live rows the new ones
+        # descend from and their ancestors (an old live row no new row descends from is
+        # dead from this step on; until session 31 it was kept until the next compaction)
+        keep = step_mask(ti, ibuf, m)
+        kept, kept_v, span = count_kept(ti, keep)
         # the fix times kept run from the first kept row's fix to the live block's (the
         # last kept row), and the new rows' fix comes after it
         span_t = seq - (ti[H_T0] + ti[H_NF] - 1 - span + 1) + 1
@@ -850,7 +859,8 @@ def tree_sweep(
             # least, so the times do not fill up first)
             ti[H_CAP_T] = span_t + max(span_t // 4, spare)
             return ARENA_FULL, lo, hi
-        compact_in_place(ti)
+        compact_kept(ti, ti, ti[H_RCAP], ti[H_LCAP], keep)
+        step_parents(ibuf, m, keep, lo, hi)
     tree_append(fbuf, ibuf, ti, tf, seq, t, m, n_via)
     if newest < 0:
         return -1, ti[H_LO], ti[H_HI]
@@ -880,12 +890,59 @@ def kept_mask(ti: np.ndarray) -> np.ndarray:
     n = ti[H_N]
     keep = np.zeros(n, np.bool_)
     keep[ti[H_LO]:ti[H_HI]] = True
-    for r in range(n - 1, -1, -1):
+    mark_ancestors(ti, keep)
+    return keep
+
+
+@numba.njit(cache=True, error_model="numpy")
+def mark_ancestors(ti: np.ndarray, keep: np.ndarray) -> None:
+    """Mark in ``keep`` every ancestor of a row it marks (a parent's index is below its child's)."""
+    for r in range(ti[H_N] - 1, -1, -1):
         if keep[r]:
             p = ti[ROW_I * r + K_PARENT]
             if p >= 0:
                 keep[p] = True
+
+
+@numba.njit(cache=True, error_model="numpy")
+def step_mask(ti: np.ndarray, ibuf: np.ndarray, m: int) -> np.ndarray:
+    """Which rows a compaction before appending the step waiting in ``ibuf`` keeps.
+
+    The old live rows that one of the step's ``m`` output rows descends from (its
+    parent, an index into the old live block), and every ancestor of them: what
+    :func:`kept_mask` keeps once the step is appended, less the new rows. An old live
+    row no new row descends from is read by nothing after the step (the live block, and
+    every walk from it, see only its ancestors), so it is not kept, nor are ancestors
+    only it had.
+    """
+    n = ti[H_N]
+    lo = ti[H_LO]
+    keep = np.zeros(n, np.bool_)
+    out_i0 = layout(ibuf[0], ibuf[1], ibuf[2], ibuf[3], ibuf[4], ibuf[5])[4]
+    for j in range(m):
+        keep[lo + ibuf[out_i0 + j * OUT_I_STRIDE + 1]] = True
+    mark_ancestors(ti, keep)
     return keep
+
+
+@numba.njit(cache=True, error_model="numpy")
+def step_parents(ibuf: np.ndarray, m: int, keep: np.ndarray, lo: int, hi: int) -> None:
+    """Renumber the parents of the step's ``m`` output rows after a :func:`step_mask` compaction.
+
+    A parent is an index into the old live block ``[lo, hi)``; the compaction kept only
+    the rows ``keep`` marks, in order, so the new index is the count of kept live rows
+    before it.
+    """
+    out_i0 = layout(ibuf[0], ibuf[1], ibuf[2], ibuf[3], ibuf[4], ibuf[5])[4]
+    rank = np.empty(hi - lo, np.int64)
+    c = 0
+    for j in range(hi - lo):
+        rank[j] = c
+        if keep[lo + j]:
+            c += 1
+    for j in range(m):
+        q = out_i0 + j * OUT_I_STRIDE + 1
+        ibuf[q] = rank[ibuf[q]]
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -895,23 +952,23 @@ def kept_rows(ti: np.ndarray) -> tuple[int, int, int]:
     The fix times: one per fix from the first kept row's to the last's (rows are in fix
     order), 0 when no row is kept.
     """
-    n = ti[H_N]
-    keep = np.zeros(n, np.bool_)
-    keep[ti[H_LO]:ti[H_HI]] = True
+    return count_kept(ti, kept_mask(ti))
+
+
+@numba.njit(cache=True, error_model="numpy")
+def count_kept(ti: np.ndarray, keep: np.ndarray) -> tuple[int, int, int]:
+    """Rows, vias and fix times of the rows ``keep`` marks (:func:`kept_rows`)."""
     rows = 0
     vias = 0
     first = -1
     last = -1
-    for r in range(n - 1, -1, -1):
+    for r in range(ti[H_N]):
         if keep[r]:
             rows += 1
             vias += ti[ROW_I * r + K_VIAE] - (ti[ROW_I * r - ROW_I + K_VIAE] if r else 0)
-            first = r
-            if last < 0:
-                last = r
-            p = ti[ROW_I * r + K_PARENT]
-            if p >= 0:
-                keep[p] = True
+            if first < 0:
+                first = r
+            last = r
     if first < 0:
         return 0, 0, 0
     # the two rows' fix slots (seq_at written out: a call that takes the array costs two
@@ -981,6 +1038,18 @@ def compact_into(ti: np.ndarray, ti2: np.ndarray, cap2: int, cap_l2: int) -> Non
     :func:`compact_in_place` passes its own arrays as the targets (safe: a row only ever
     moves down, and so does a fix time).
     """
+    compact_kept(ti, ti2, cap2, cap_l2, kept_mask(ti))
+
+
+@numba.njit(cache=True, error_model="numpy")
+def compact_kept(ti: np.ndarray, ti2: np.ndarray, cap2: int, cap_l2: int,
+                 keep: np.ndarray) -> None:
+    """:func:`compact_into`, keeping the rows ``keep`` marks (a row's parent with it).
+
+    :func:`kept_mask` (the live block and its ancestors) or :func:`step_mask` (the old
+    live rows a waiting step's rows descend from, and their ancestors): the live rows
+    kept stay the live block, in their order.
+    """
     tf = floats(ti)
     tf2 = floats(ti2)
     n = ti[H_N]
@@ -989,7 +1058,6 @@ def compact_into(ti: np.ndarray, ti2: np.ndarray, cap2: int, cap_l2: int) -> Non
     t0 = ti[H_T0]
     lb = ROW_F * ti[H_RCAP]  # live_base
     tb = lb + LIVE_F * ti[H_LCAP]  # time_base
-    keep = kept_mask(ti)
     new_index = np.full(n, -1, np.int64)
     vb = via_base(ti)
     fb = ti[H_IEND] - ti[H_TCAP]  # fix_base
@@ -1038,19 +1106,22 @@ def compact_into(ti: np.ndarray, ti2: np.ndarray, cap2: int, cap_l2: int) -> Non
             tf2[ROW_F * q + c] = tf[ROW_F * r + c]
         nv += vn
         q += 1
-    # the live block's floats (it keeps its order: the same place from the live base; in
-    # place, the same room, a copy onto itself), then the fix times of the kept rows'
+    # the kept live rows' floats (in their order from the live base: in place, the
+    # same room, each moving down or onto itself), then the fix times of the kept rows'
     # fixes, from the first's on (moving down only)
-    for j in range(LIVE_F * (hi - lo)):
-        tf2[lb2 + j] = tf[lb + j]
+    k2 = 0
+    for j in range(hi - lo):
+        if keep[lo + j]:
+            for c in range(LIVE_F):
+                tf2[lb2 + LIVE_F * k2 + c] = tf[lb + LIVE_F * j + c]
+            k2 += 1
     if first >= 0:
         for s in range(first, last + 1):
             tf2[tb2 + s - first] = tf[tb + s]
-    new_lo = new_index[lo] if hi > lo else q
     ti2[H_N] = q
     ti2[H_NV] = nv
-    ti2[H_LO] = new_lo
-    ti2[H_HI] = new_lo + (hi - lo)
+    ti2[H_LO] = q - k2  # the live rows are the last rows, and so are the kept ones
+    ti2[H_HI] = q
     for c in range(H_M, H_CAP_T + 1):
         ti2[c] = 0
     ti2[H_CAP_L] = 0
@@ -1137,7 +1208,9 @@ def compact_append(
     m = ti[H_M]
     n_via = ti[H_NVIA]
     ti2[H_IEND] = iend2
-    compact_into(ti, ti2, ti[H_CAP_ROWS], ti[H_CAP_L])
+    keep = step_mask(ti, ibuf, m)
+    compact_kept(ti, ti2, ti[H_CAP_ROWS], ti[H_CAP_L], keep)
+    step_parents(ibuf, m, keep, ti[H_LO], ti[H_HI])
     tree_append(fbuf, ibuf, ti2, floats(ti2), seq, t, m, n_via)
     return commit_point(ti2, next_commit, newest) if newest >= 0 else -1
 
