@@ -791,22 +791,26 @@ class Tracker:
             [0, 0, 0]
         """
         s = self.settings
+        if s.beam_moving and self.stand_seq:
+            return  # a stand: no level thinned (MatchSettings.beam_moving)
         first = self.next_commit
-        deciding = False
         covered = False
+        guard: CandidateTree | None = None  # the next smaller live level's tree
+        top = self.levels[-1]
         for level in self.levels:
             tree = level.tree
             if tree.hi <= tree.lo:
                 continue
-            if not deciding:
-                deciding = True  # the smallest live level: never thinned
+            if guard is None:
+                guard = tree  # the smallest live level: never thinned
                 covered = level.tree_seq <= first
                 continue
             if not covered and level.tree_seq <= first:
                 covered = True  # the smallest covering level: left whole
-                continue
-            if tree.hi - tree.lo > 1:
-                tree.beam(s.beam_margin, s.beam_keep, self.last_seg)
+            elif tree.hi - tree.lo > 1 and (level is top or not s.beam_top):
+                tree.beam(s.beam_margin, s.beam_keep, self.last_seg,
+                          guard if s.beam_guard else None)
+            guard = tree
 
     def _refused_reason(self, fix: Fix) -> str:
         """Why no level matched ``fix``: ``no_road_nearby`` or ``road_beyond_eps``.
