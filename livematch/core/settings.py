@@ -880,7 +880,9 @@ class MatchSettings:
             (``stand_seq``, kept by ``stand_hold``) no level is thinned, as a stand's
             drifting fixes are where the fallback is needed. False, the default, is off.
         beam_top: with the same rule, thin only the largest level, leaving the levels
-            between whole as the first fallback. False, the default, is off.
+            between whole as the first fallback; those, not thinned, commit by agreement
+            as without the rule (only the largest is kept out). False, the default, is
+            off.
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)

@@ -782,6 +782,13 @@ class Tracker:
         the states that fix settled are those without the rule; the next step sweeps
         from the kept states. Why: memory (``MatchSettings.beam_margin``).
 
+        Refinements (docs/measured.md, "Session 31 (beam31)"): ``beam_guard`` keeps in
+        each thinned level the states whose segment the next smaller live level holds
+        live (the fallback keeps the roads the decider still holds); ``beam_moving``
+        thins nothing during a stand (``stand_seq``); ``beam_top`` thins the largest
+        level only (the levels between stay whole and commit by agreement as without
+        the rule).
+
         Example (a fresh tracker: no live level, nothing to thin):
             >>> from livematch.core.build import Road, network_from_roads
             >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
@@ -1570,13 +1577,15 @@ class Tracker:
         waits: bool | None = None  # _into_stand(t, dt, stood), asked when a commit is due
         # with the cost beam (Tracker._beam) the covering levels after the first are
         # thinned: their candidates agree because states were dropped, which is no
-        # evidence; only the first commits by agreement (nor do they defer to it)
+        # evidence; only the first commits by agreement (nor do they defer to it); with
+        # beam_top only the largest level is thinned, and only it is kept out
         thinned = s.beam_margin > 0.0 or s.beam_keep > 0
         progressed = True
         while progressed:
             progressed = False
             for level in covering:
-                if thinned and level is not covering[0]:
+                if thinned and level is not covering[0] \
+                        and (level is self.levels[-1] or not s.beam_top):
                     break
                 tree = level.tree
                 # the common ancestor, back to the newest fix that may be committed
