@@ -27,6 +27,7 @@ from tests.test_candidates import drive, osm
 STREET = [(float(x), 0.0) for x in range(0, 801, 50)]
 MARGIN = MatchSettings(beam_margin=5.0)
 KEEP = MatchSettings(beam_keep=1)
+REFINED = MatchSettings(beam_keep=1, beam_top=True, beam_guard=True, beam_moving=True)
 
 
 def _street_and_side_roads() -> RoadNetwork:
@@ -101,7 +102,7 @@ def test_beam_leaves_the_answers_on_the_street() -> None:
     net = _street_and_side_roads()
     pts = _pts()
     plain = track_points(net, MatchSettings(), pts)
-    for settings in (MARGIN, KEEP):
+    for settings in (MARGIN, KEEP, REFINED):
         events = track_points(net, settings, pts)
         assert_answers_on_road(final_answers(events), pts, 1.0, STREET, 15.0)
         assert events == plain
@@ -112,7 +113,7 @@ def test_beam_restored_mid_drive_goes_on_the_same(restore_at: int) -> None:
     """A tracker checkpointed and restored mid-drive gives the same events as one that never
     stopped (the setting is not state: the trees kept are the thinned ones)."""
     net = _street_and_side_roads()
-    for settings in (MARGIN, KEEP):
+    for settings in (MARGIN, KEEP, REFINED):
         assert track_points(net, settings, _pts(), restore_at=restore_at) == \
             track_points(net, settings, _pts())
 
