@@ -882,7 +882,10 @@ class MatchSettings:
         beam_top: with the same rule, thin only the largest level, leaving the levels
             between whole as the first fallback; those, not thinned, commit by agreement
             as without the rule (only the largest is kept out). False, the default, is
-            off.
+            off. Off by default: with all three refinements on (margin 20, keep 8) a
+            driven 1 Hz vehicle held 8.85 KB instead of 9.86 and the 1 s cells of
+            bench/fleetmiss.py's decision runs no longer lost answers, but single fixes
+            were lost in a few 5-30 s cells (docs/measured.md, "Session 31 (beam31)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
