@@ -884,8 +884,8 @@ class MatchSettings:
             as without the rule (only the largest is kept out). False, the default, is
             off. Off by default: with all three refinements on (margin 20, keep 8) a
             driven 1 Hz vehicle held 8.85 KB instead of 9.86 and the 1 s cells of
-            bench/fleetmiss.py's decision runs no longer lost answers, but single fixes
-            were lost in a few 5-30 s cells (docs/measured.md, "Session 31 (beam31)").
+            bench/fleetmiss.py's decision runs no longer lost final answers, but 1-3
+            fixes were lost in five 5-30 s cells (docs/measured.md, "Session 31 (beam31)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
