@@ -268,6 +268,18 @@ def check_tree(tree: CandidateTree, tracker: Tracker,
         assert [fields(n) for n in thinned.rows(view)[thinned.lo:thinned.hi]] == want
         assert thinned.costs().tolist() == [n.cost for n in beam(live_dict, margin, most,
                                                                    tracker.last_seg).values()]
+    # with a guard (MatchSettings.beam_guard): every other live segment guarded, as a
+    # smaller level's tree holding them would
+    guard_dict = dict(list(live_dict.items())[::2])
+    guard_tree = CandidateTree.from_nodes(guard_dict)
+    guard_segs = {n.seg for n in guard_dict.values()}
+    for margin, most in ((0.5, 0), (0.0, 1), (8.0, 2)):
+        thinned = CandidateTree.from_nodes(live_dict)
+        thinned.beam(margin, most, tracker.last_seg, guard_tree)
+        ref = beam(live_dict, margin, most, tracker.last_seg, guard_segs)
+        assert [fields(n) for n in thinned.rows(view)[thinned.lo:thinned.hi]] == \
+            [fields(n) for n in ref.values()]
+        assert guard_segs <= {n.seg for n in ref.values()}
     return splits, ancestors, reranked
 
 

@@ -84,13 +84,18 @@ def test_compiled_equals_pure(extract: str, seed: int, every: int) -> None:
     assert _exact(compiled) == _exact(pure)
 
 
-@pytest.mark.parametrize(("extract", "seed", "every"), [("Helsinki", 3, 1), ("test", 6, 15)])
-def test_compiled_equals_pure_with_the_beam(extract: str, seed: int, every: int) -> None:
-    """With the cost beam on (``beam_margin``, ``beam_keep``) both builds agree bit for bit,
+@pytest.mark.parametrize(("extract", "seed", "every", "refined"),
+                         [("Helsinki", 3, 1, False), ("test", 6, 15, False),
+                          ("Helsinki", 3, 1, True)])
+def test_compiled_equals_pure_with_the_beam(extract: str, seed: int, every: int,
+                                            refined: bool) -> None:
+    """With the cost beam on (``beam_margin``, ``beam_keep``; ``refined``: with
+    ``beam_top``, ``beam_guard`` and ``beam_moving`` too) both builds agree bit for bit,
     events and state; the beam really thinned the upper levels (fewer live states)."""
     net = osm(extract)
     fixes = drive(net, seed, every, seconds=300.0)
-    settings = MatchSettings(beam_margin=20.0, beam_keep=6)
+    settings = MatchSettings(beam_margin=20.0, beam_keep=6, beam_top=refined,
+                             beam_guard=refined, beam_moving=refined)
     compiled = tracker_module.Tracker(net, f"v{seed}", settings)
     pure = pure_tracker().Tracker(net, f"v{seed}", settings)
     plain = tracker_module.Tracker(net, f"v{seed}", MatchSettings())

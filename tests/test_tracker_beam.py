@@ -22,10 +22,12 @@ from livematch.core.settings import MatchSettings
 from livematch.core.tracker import Tracker
 from livematch.core.view import view_of
 from tests.catalogue import assert_answers_on_road, final_answers, track_points
+from tests.test_candidates import drive, osm
 
 STREET = [(float(x), 0.0) for x in range(0, 801, 50)]
 MARGIN = MatchSettings(beam_margin=5.0)
 KEEP = MatchSettings(beam_keep=1)
+REFINED = MatchSettings(beam_keep=1, beam_top=True, beam_guard=True, beam_moving=True)
 
 
 def _street_and_side_roads() -> RoadNetwork:
@@ -100,7 +102,7 @@ def test_beam_leaves_the_answers_on_the_street() -> None:
     net = _street_and_side_roads()
     pts = _pts()
     plain = track_points(net, MatchSettings(), pts)
-    for settings in (MARGIN, KEEP):
+    for settings in (MARGIN, KEEP, REFINED):
         events = track_points(net, settings, pts)
         assert_answers_on_road(final_answers(events), pts, 1.0, STREET, 15.0)
         assert events == plain
@@ -111,7 +113,7 @@ def test_beam_restored_mid_drive_goes_on_the_same(restore_at: int) -> None:
     """A tracker checkpointed and restored mid-drive gives the same events as one that never
     stopped (the setting is not state: the trees kept are the thinned ones)."""
     net = _street_and_side_roads()
-    for settings in (MARGIN, KEEP):
+    for settings in (MARGIN, KEEP, REFINED):
         assert track_points(net, settings, _pts(), restore_at=restore_at) == \
             track_points(net, settings, _pts())
 
@@ -154,3 +156,69 @@ def test_beam_is_off_by_default_and_validated() -> None:
         problems = MatchSettings(beam_keep=bad_k).problems()  # type: ignore[arg-type]
         assert ("beam_keep", f"must be an integer >= 0, got {bad_k!r}") in problems
     assert MatchSettings(beam_margin=3.0, beam_keep=4).problems() == []
+
+
+def _spread(net: RoadNetwork) -> Tracker:
+    """A tracker fed 12 fixes without the rule: both upper levels hold several states."""
+    tracker = _fed(net, MatchSettings(), 12)
+    for level in tracker.levels[1:]:
+        assert level.tree.hi - level.tree.lo > 1
+    return tracker
+
+
+def test_beam_top_thins_only_the_largest_level() -> None:
+    """With ``beam_top`` the 30 m level is left whole and only the 60 m one thinned."""
+    net = _street_and_side_roads()
+    tracker = _spread(net)
+    before = tracker.levels[1].tree.hi - tracker.levels[1].tree.lo
+    top = Tracker.from_bytes(net, MatchSettings(beam_keep=1, beam_top=True), tracker.to_bytes())
+    top._beam()
+    assert top.levels[1].tree.hi - top.levels[1].tree.lo == before
+    assert top.levels[2].tree.hi - top.levels[2].tree.lo == 1
+
+
+def test_beam_moving_thins_nothing_at_a_stand() -> None:
+    """With ``beam_moving`` no level is thinned while a stand is on (``stand_seq``), and
+    the levels are thinned as without it once the vehicle moves."""
+    net = _street_and_side_roads()
+    tracker = _spread(net)
+    widths = [lv.tree.hi - lv.tree.lo for lv in tracker.levels]
+    moving = MatchSettings(beam_keep=1, beam_moving=True)
+    stands = Tracker.from_bytes(net, moving, tracker.to_bytes())
+    stands.stand_seq = stands.next_commit
+    stands._beam()
+    assert [lv.tree.hi - lv.tree.lo for lv in stands.levels] == widths
+    moves = Tracker.from_bytes(net, moving, tracker.to_bytes())
+    assert moves.stand_seq == 0
+    moves._beam()
+    assert [lv.tree.hi - lv.tree.lo for lv in moves.levels[1:]] == [1, 1]
+
+
+def test_beam_guard_keeps_what_the_smaller_level_holds() -> None:
+    """With ``beam_guard`` a thinned level drops no state whose segment is live in the next
+    smaller live level, checked on a real drive (Helsinki, 1 s) before every fix; without
+    it the same states are dropped (the guard kept more states, at least once)."""
+    net = osm("Helsinki")
+    fixes = drive(net, 3, 1, seconds=240.0)
+    plain = Tracker(net, "v3", MatchSettings())
+    guarded = MatchSettings(beam_keep=1, beam_guard=True)
+    extra = 0
+    for fix in fixes:
+        plain.update(fix)
+        live = [lv for lv in plain.levels if lv.tree.hi > lv.tree.lo]
+        if len(live) < 2:
+            continue
+        blob = plain.to_bytes()
+        on = Tracker.from_bytes(net, guarded, blob)
+        bare = Tracker.from_bytes(net, KEEP, blob)
+        on._beam()
+        bare._beam()
+        trees = [lv.tree for lv in on.levels if lv.tree.hi > lv.tree.lo]
+        for small, large, was in zip(trees, trees[1:], live[1:], strict=False):
+            kept = {large.seg_of(r) for r in range(large.lo, large.hi)}
+            held = {small.seg_of(r) for r in range(small.lo, small.hi)}
+            before = {was.tree.seg_of(r) for r in range(was.tree.lo, was.tree.hi)}
+            assert before & held <= kept
+        extra += sum(a.tree.hi - a.tree.lo - (b.tree.hi - b.tree.lo)
+                     for a, b in zip(on.levels, bare.levels, strict=True))
+    assert extra > 0

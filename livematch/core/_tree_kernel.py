@@ -475,14 +475,27 @@ def _worse(ti: np.ndarray, costs: np.ndarray, lo: int, r: int, b: int, prefer: i
 
 
 @_jit
-def beam_live(ti: np.ndarray, margin: float, most: int, prefer: int) -> int:
+def _guarded(ti: np.ndarray, r: int, guard: np.ndarray) -> bool:
+    """Whether live row ``r``'s segment is the segment of a live row of tree ``guard``."""
+    s = ti[ROW_I * r + K_SEG]
+    for q in range(guard[H_LO], guard[H_HI]):  # noqa: SIM110 (numba: a plain loop)
+        if guard[ROW_I * q + K_SEG] == s:
+            return True
+    return False
+
+
+@_jit
+def beam_live(ti: np.ndarray, margin: float, most: int, prefer: int, guard: np.ndarray,
+              guarded: bool) -> int:
     """:func:`livematch.core.sweep.beam`: drop the live rows far from the best; the block's end.
 
     A row stays when its cost is at most the best row's (:func:`best_row`) plus
     ``margin`` (``margin`` <= 0: no bound) and, with ``most`` > 0, it is among the
     ``most`` first by (cost, seg != prefer, seg), the order :func:`best_row` ranks by (a
-    total order: one live state a segment). The best row always stays. Nothing is moved
-    when every row stays (the usual case: one call reads the costs and returns).
+    total order: one live state a segment). The best row always stays. With ``guarded``,
+    a row whose segment is a live row's segment of tree ``guard`` (a smaller level's)
+    stays too, whatever its cost or rank. Nothing is moved when every row stays (the
+    usual case: one call reads the costs and returns).
     """
     tf = ti[ti[H_IEND] + (ti[H_IEND] & 1):].view(np.float64)  # floats(), written out
     lo = ti[H_LO]
@@ -522,12 +535,19 @@ def beam_live(ti: np.ndarray, margin: float, most: int, prefer: int) -> int:
                     if q != r and costs[q - lo] == cut and _worse(ti, costs, lo, r, q, prefer):
                         ahead += 1
                 keep[r - lo] = ahead < most
+            if guarded and not keep[r - lo]:
+                keep[r - lo] = _guarded(ti, r, guard)
         return keep_live(ti, keep)
     if drop == 0:
         return hi
     keep = np.zeros(k, np.bool_)
+    kept = 0
     for j in range(k):
-        keep[j] = costs[j] <= bound
+        if costs[j] <= bound or (guarded and _guarded(ti, lo + j, guard)):
+            keep[j] = True
+            kept += 1
+    if kept == k:
+        return hi
     return keep_live(ti, keep)
 
 

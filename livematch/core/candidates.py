@@ -893,9 +893,17 @@ class CandidateTree:
         """Keep only the live states descending from ``row``."""
         self.hi = _t.prune_live(self.ti, row)
 
-    def beam(self, margin: float, most: int, prefer: int) -> None:
-        """Keep only the live states near the best (:func:`livematch.core.sweep.beam`)."""
-        self.hi = _t.beam_live(self.ti, margin, most, prefer)
+    def beam(self, margin: float, most: int, prefer: int,
+             guard: CandidateTree | None = None) -> None:
+        """Keep only the live states near the best (:func:`livematch.core.sweep.beam`).
+
+        With ``guard`` (a smaller level's tree), a state whose segment is one of its live
+        states' segments stays too (``MatchSettings.beam_guard``).
+        """
+        if guard is None:
+            self.hi = _t.beam_live(self.ti, margin, most, prefer, self.ti, False)
+        else:
+            self.hi = _t.beam_live(self.ti, margin, most, prefer, guard.ti, True)
 
     def trim(self, next_commit: int, seq: int, trim_seq: int, max_lag: int,
              prefer: int) -> tuple[int, int]:
@@ -1098,6 +1106,7 @@ def warm_up() -> None:
     tree.common_ancestor(0)
     _t.seq_at(tree.ti, 0)  # a row's fix, when it lies more than a few fixes back
     tree.beam(1.0, 1, -1)  # (MatchSettings.beam_margin / beam_keep, when set)
+    tree.beam(1.0, 1, -1, tree)  # (and beam_guard)
     tree.prune(row)
     tree.trim(0, tracker.seq, 0, 60, -1)  # a tracker's own trim is rare: the commit check cuts
     # the sweep kernel on its own (the route monitor's step) is a compilation of its own

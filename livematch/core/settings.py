@@ -869,6 +869,23 @@ class MatchSettings:
         beam_keep: with the same rule, each such level keeps at most this many live
             states, the first by cost (:func:`livematch.core.sweep.best_leaf`'s order).
             0, the default, is off.
+        beam_guard: with the same rule, a thinned level keeps every live state whose
+            segment is a live state's segment in the next smaller live level (after that
+            one's own thinning, so by induction in every smaller live level): the
+            fallback always holds the roads the level that decides still holds, the road
+            the vehicle came in by among them when that level dies at a stand or an
+            outlier (the losses of the rule without it: docs/measured.md, "Session 30
+            (beam30)"). False, the default, is off.
+        beam_moving: with the same rule, thin only while the vehicle moves: at a stand
+            (``stand_seq``, kept by ``stand_hold``) no level is thinned, as a stand's
+            drifting fixes are where the fallback is needed. False, the default, is off.
+        beam_top: with the same rule, thin only the largest level, leaving the levels
+            between whole as the first fallback; those, not thinned, commit by agreement
+            as without the rule (only the largest is kept out). False, the default, is
+            off. Off by default: with all three refinements on (margin 20, keep 8) a
+            driven 1 Hz vehicle held 8.85 KB instead of 9.86 and the 1 s cells of
+            bench/fleetmiss.py's decision runs no longer lost final answers, but 1-3
+            fixes were lost in five 5-30 s cells (docs/measured.md, "Session 31 (beam31)").
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -942,6 +959,9 @@ class MatchSettings:
     class_cost_m: float = 0.0
     beam_margin: float = 0.0
     beam_keep: int = 0
+    beam_guard: bool = False
+    beam_moving: bool = False
+    beam_top: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -984,7 +1004,7 @@ class MatchSettings:
                      "start_roots", "flush_scored", "end_stand_centre",
                      "start_way_out", "stand_loops_sparse", "no_roll_back",
                      "smallest_agrees", "monotone_final", "monotone_pool", "end_at_vertex",
-                     "filtered_pace"):
+                     "filtered_pace", "beam_guard", "beam_moving", "beam_top"):
             if not isinstance(getattr(self, name), bool):
                 out.append((name, f"must be true or false, got {getattr(self, name)!r}"))
         radius = self.off_network_m

@@ -48,7 +48,7 @@ from __future__ import annotations
 import heapq
 import math
 from bisect import bisect_left
-from collections.abc import Callable, Iterable, Mapping, Sequence
+from collections.abc import Callable, Collection, Iterable, Mapping, Sequence
 from dataclasses import dataclass, replace
 from typing import Final, NamedTuple
 
@@ -992,13 +992,17 @@ def best_leaf(live: dict[int, Node], prefer: int = -1) -> Node:
     return min(live.values(), key=lambda n: (n.cost, n.seg != prefer, n.seg))
 
 
-def beam(live: dict[int, Node], margin: float, most: int, prefer: int = -1) -> dict[int, Node]:
+def beam(live: dict[int, Node], margin: float, most: int, prefer: int = -1,
+         guard: Collection[int] = ()) -> dict[int, Node]:
     """The live states near the best: a cost beam over one level's candidates.
 
     A state stays when its cost is at most the best's (:func:`best_leaf`) plus
     ``margin`` (``margin`` <= 0: no bound) and, with ``most`` > 0, it is among the
     ``most`` first by :func:`best_leaf`'s order (cost, then segment ``prefer``, then the
-    lowest segment). The best state always stays; the order of ``live`` is kept.
+    lowest segment). The best state always stays, and so does every state whose segment
+    is in ``guard`` (a smaller level's live segments, ``MatchSettings.beam_guard``: the
+    fallback keeps the roads the level that decides still holds); the order of ``live``
+    is kept.
     Dropping states leaves every kept path as it was (each still within eps of its
     fixes): the level can only die, and start afresh, sooner. Why: a large level
     (the fallback while a smaller one decides) holds many states far from the fixes,
@@ -1014,6 +1018,10 @@ def beam(live: dict[int, Node], margin: float, most: int, prefer: int = -1) -> d
         [0]
         >>> list(beam(live, 0.0, 0))  # no bound: every state
         [0, 1, 2]
+        >>> list(beam(live, 0.0, 1, guard={2}))  # the best, and the guarded segment 2
+        [0, 2]
+        >>> list(beam({}, 0.0, 1))  # degenerate: no state
+        []
     """
     if not live:
         return {}
@@ -1023,7 +1031,7 @@ def beam(live: dict[int, Node], margin: float, most: int, prefer: int = -1) -> d
     if most > 0:
         kept = kept[:most]
     ids = {id(n) for n in kept}
-    return {s: n for s, n in live.items() if id(n) in ids}
+    return {s: n for s, n in live.items() if id(n) in ids or n.seg in guard}
 
 
 def live_score(

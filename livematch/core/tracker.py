@@ -782,6 +782,13 @@ class Tracker:
         the states that fix settled are those without the rule; the next step sweeps
         from the kept states. Why: memory (``MatchSettings.beam_margin``).
 
+        Refinements (docs/measured.md, "Session 31 (beam31)"): ``beam_guard`` keeps in
+        each thinned level the states whose segment the next smaller live level holds
+        live (the fallback keeps the roads the decider still holds); ``beam_moving``
+        thins nothing during a stand (``stand_seq``); ``beam_top`` thins the largest
+        level only (the levels between stay whole and commit by agreement as without
+        the rule).
+
         Example (a fresh tracker: no live level, nothing to thin):
             >>> from livematch.core.build import Road, network_from_roads
             >>> net = network_from_roads([Road([(0.0, 0.0), (100.0, 0.0)], way=1)])
@@ -791,22 +798,26 @@ class Tracker:
             [0, 0, 0]
         """
         s = self.settings
+        if s.beam_moving and self.stand_seq:
+            return  # a stand: no level thinned (MatchSettings.beam_moving)
         first = self.next_commit
-        deciding = False
         covered = False
+        guard: CandidateTree | None = None  # the next smaller live level's tree
+        top = self.levels[-1]
         for level in self.levels:
             tree = level.tree
             if tree.hi <= tree.lo:
                 continue
-            if not deciding:
-                deciding = True  # the smallest live level: never thinned
+            if guard is None:
+                guard = tree  # the smallest live level: never thinned
                 covered = level.tree_seq <= first
                 continue
             if not covered and level.tree_seq <= first:
                 covered = True  # the smallest covering level: left whole
-                continue
-            if tree.hi - tree.lo > 1:
-                tree.beam(s.beam_margin, s.beam_keep, self.last_seg)
+            elif tree.hi - tree.lo > 1 and (level is top or not s.beam_top):
+                tree.beam(s.beam_margin, s.beam_keep, self.last_seg,
+                          guard if s.beam_guard else None)
+            guard = tree
 
     def _refused_reason(self, fix: Fix) -> str:
         """Why no level matched ``fix``: ``no_road_nearby`` or ``road_beyond_eps``.
@@ -1566,13 +1577,15 @@ class Tracker:
         waits: bool | None = None  # _into_stand(t, dt, stood), asked when a commit is due
         # with the cost beam (Tracker._beam) the covering levels after the first are
         # thinned: their candidates agree because states were dropped, which is no
-        # evidence; only the first commits by agreement (nor do they defer to it)
+        # evidence; only the first commits by agreement (nor do they defer to it); with
+        # beam_top only the largest level is thinned, and only it is kept out
         thinned = s.beam_margin > 0.0 or s.beam_keep > 0
         progressed = True
         while progressed:
             progressed = False
             for level in covering:
-                if thinned and level is not covering[0]:
+                if thinned and level is not covering[0] \
+                        and (level is self.levels[-1] or not s.beam_top):
                     break
                 tree = level.tree
                 # the common ancestor, back to the newest fix that may be committed
