@@ -369,7 +369,8 @@ class Tracker:
             key, what = problems[0]
             raise ValueError(f"matcher.{key} {what}")
         self._view: NetworkView = view_of(network)
-        self.levels = [Level(e) for e in self.settings.eps_levels]
+        # a tuple, not a list: 64 bytes against 88 for three levels, and never resized
+        self.levels: tuple[Level, ...] = tuple([Level(e) for e in self.settings.eps_levels])
         self.seq = 0
         # t, x, y of the last accepted fix (t NaN: none yet; read as ``last``). A tuple of
         # three floats, not an optional one: compiled, the three doubles are stored in the
@@ -997,7 +998,7 @@ class Tracker:
     def _state_before(self) -> _Before:
         """A copy of the matching state as it is now (before the next fix)."""
         return _Before(self.last, self.speed, self.last_seg,
-                       [_copy_level(lv) for lv in self.levels])
+                       tuple([_copy_level(lv) for lv in self.levels]))
 
     def _spike_test(
         self, fix: Fix, seq: int, broke: bool, refused: bool, events: list[Event]
@@ -1052,7 +1053,7 @@ class Tracker:
                 return None  # the straight way cannot cost spike_cost less than this
         times = self.times
         kept = (self.speed, times[suspect - self.times0])
-        self.levels = [_copy_level(lv) for lv in before.levels]
+        self.levels = tuple([_copy_level(lv) for lv in before.levels])
         self.seq = suspect
         del times[-1]  # fix seq's: this fix takes the suspect's number
         times[suspect - self.times0] = fix.t
@@ -4240,7 +4241,7 @@ class Tracker:
             before = state.get("before")  # absent in states written before the spike test
             if before is not None:
                 last, speed, last_seg, packed = before
-                levels = [Level(lv.eps) for lv in tracker.levels]
+                levels = tuple([Level(lv.eps) for lv in tracker.levels])
                 _unpack_levels(levels, packed, rest, at, old)
                 tracker.before = _Before(tuple(last) if last else None, speed, last_seg,
                                          levels)
@@ -4333,7 +4334,7 @@ def _share_numbers(tracker: Tracker) -> None:
             t.stand_from = (fl(t.stand_from[0]), t.stand_from[1], t.stand_from[2])
     if t.stood_t is not None:
         t.stood_t = fl(t.stood_t)
-    levels = t.levels if t.before is None else [*t.levels, *t.before.levels]
+    levels = t.levels if t.before is None else (*t.levels, *t.before.levels)
     for lv in levels:
         lv.tree_seq = it(lv.tree_seq)
         lv.cert_seq = it(lv.cert_seq)
@@ -4384,7 +4385,7 @@ def motion_gain(dt: float, tau: float) -> float:
     return 1.0 / spread if spread < 1.0 else 1.0
 
 
-def _pack_levels(levels: list[Level],
+def _pack_levels(levels: tuple[Level, ...],
                  arrays: list[bytes | memoryview]) -> list[list[float | int]]:
     """The header rows of ``levels`` for :meth:`Tracker.to_bytes`; their arrays go to ``arrays``.
 
@@ -4401,7 +4402,7 @@ def _pack_levels(levels: list[Level],
     return rows
 
 
-def _unpack_levels(levels: list[Level], rows: list[list[float | int]], rest: memoryview,
+def _unpack_levels(levels: tuple[Level, ...], rows: list[list[float | int]], rest: memoryview,
                    at: int, old: int = 0) -> int:
     """Fill ``levels`` from header ``rows`` and the arrays in ``rest`` from ``at`` on.
 
@@ -4642,7 +4643,7 @@ class _Before:
     __slots__ = ("last", "last_seg", "levels", "speed")
 
     def __init__(self, last: tuple[float, float, float] | None, speed: float | None,
-                 last_seg: int, levels: list[Level]) -> None:
+                 last_seg: int, levels: tuple[Level, ...]) -> None:
         self.last = last
         self.speed = speed
         self.last_seg = last_seg
