@@ -760,7 +760,7 @@ class Tracker:
         self._settle(seq, fix.t, dt, salvage, events, hold_newest=before is not None,
                      tops=tops, stood=stood)
         if (s.beam_margin > 0.0 or s.beam_keep > 0) \
-                and (s.beam_max_gap_s <= 0.0 or dt <= s.beam_max_gap_s):
+                and (s.beam_max_gap_s <= 0.0 or 0.0 < dt <= s.beam_max_gap_s):
             self._beam()
         if prev is not None and fix.t - prev[0] >= SPARSE_S:
             # a vehicle reporting this rarely spends most of its time idle: keep its
@@ -1583,9 +1583,10 @@ class Tracker:
         # evidence; only the first commits by agreement (nor do they defer to it); with
         # beam_top only the largest level is thinned, and only it is kept out
         # (and with beam_max_gap_s, only at a fix the beam thins after: one within
-        # that gap of the previous accepted fix; after a longer gap, as without it)
+        # that gap of the previous accepted fix; after a longer gap, or at a first fix
+        # (dt 0), as without it)
         thinned = (s.beam_margin > 0.0 or s.beam_keep > 0) \
-            and (s.beam_max_gap_s <= 0.0 or dt <= s.beam_max_gap_s)
+            and (s.beam_max_gap_s <= 0.0 or 0.0 < dt <= s.beam_max_gap_s)
         progressed = True
         while progressed:
             progressed = False
