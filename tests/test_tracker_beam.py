@@ -252,12 +252,15 @@ def test_beam_max_gap_s_leaves_a_sparse_reporter_as_without_the_beam() -> None:
 
 def test_beam_max_gap_s_thins_within_the_gap_only() -> None:
     """On the street with its side roads: at fixes 1 s apart the gated beam thins each
-    upper level to one state (``beam_keep`` 1), as the ungated one does; at the fix after
-    a 3 s gap it thins nothing, so the 60 m level again holds the side roads' states."""
+    upper level to one state (``beam_keep`` 1), as the ungated one does after every fix;
+    at the first fix (no gap known) and at the fix after a 3 s gap it thins nothing, so
+    the 60 m level then holds the side roads' states too."""
     net = _street_and_side_roads()
     gated = Tracker(net, "v", MatchSettings(beam_keep=1, beam_max_gap_s=2.5))
     pts = _pts()
-    for i in range(12):
+    gated.update(Fix("v", 0.0, 0.0, 0.0, *pts[0]))
+    assert gated.levels[2].tree.hi - gated.levels[2].tree.lo > 1
+    for i in range(1, 12):
         gated.update(Fix("v", float(i), 0.0, 0.0, *pts[i]))
         assert [lv.tree.hi - lv.tree.lo for lv in gated.levels[1:]] == [1, 1]
     gated.update(Fix("v", 14.0, 0.0, 0.0, *pts[14]))  # 3 s after the fix before

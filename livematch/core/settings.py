@@ -889,10 +889,11 @@ class MatchSettings:
         beam_max_gap_s: with the same rule, thin (and keep the thinned levels out of
             the commits by agreement) only at a fix at most this many seconds after the
             previous accepted one; after a longer gap (and at a vehicle's first fix) the
-            fix is treated as without the rule. Why: the memory the beam saves is a frequent reporter's (a sparse
-            vehicle's trees are shrunk and its state parked), while the answers it
-            cost were at 5-30 s (docs/measured.md, "Session 31 (beam31)"); a vehicle
-            reporting every 5 s or more is then matched exactly as without the beam.
+            fix is treated as without the rule. Why: the memory the beam saves is a
+            frequent reporter's (a sparse vehicle's trees are shrunk and its state
+            parked), while the answers it cost were at 5-30 s (docs/measured.md,
+            "Session 31 (beam31)"); a vehicle reporting every 5 s or more is then
+            matched exactly as without the beam.
             0, the default, is no gate (every fix thinned).
     """
 
