@@ -148,16 +148,18 @@ def test_beam_spares_the_deciding_and_the_oldest_covering_level() -> None:
 
 
 def test_beam_is_off_by_default_and_validated() -> None:
-    """Both keys are 0 (off) by default; the margin a finite number >= 0, the count an
-    integer >= 0."""
-    assert (MatchSettings().beam_margin, MatchSettings().beam_keep) == (0.0, 0)
-    for bad in (-1.0, float("nan"), float("inf"), "3"):
-        problems = MatchSettings(beam_margin=bad).problems()  # type: ignore[arg-type]
-        assert ("beam_margin", f"must be a number >= 0, got {bad!r}") in problems
+    """The keys are 0 (off; ``beam_max_gap_s``: no gate) by default; the margin and the
+    gap a finite number >= 0, the count an integer >= 0."""
+    defaults = MatchSettings()
+    assert (defaults.beam_margin, defaults.beam_keep, defaults.beam_max_gap_s) == (0.0, 0, 0.0)
+    for name in ("beam_margin", "beam_max_gap_s"):
+        for bad in (-1.0, float("nan"), float("inf"), "3"):
+            problems = MatchSettings(**{name: bad}).problems()
+            assert (name, f"must be a number >= 0, got {bad!r}") in problems
     for bad_k in (-1, 2.5, "3", True):
         problems = MatchSettings(beam_keep=bad_k).problems()  # type: ignore[arg-type]
         assert ("beam_keep", f"must be an integer >= 0, got {bad_k!r}") in problems
-    assert MatchSettings(beam_margin=3.0, beam_keep=4).problems() == []
+    assert MatchSettings(beam_margin=3.0, beam_keep=4, beam_max_gap_s=2.5).problems() == []
 
 
 def _spread(net: RoadNetwork) -> Tracker:
@@ -266,11 +268,3 @@ def test_beam_max_gap_s_thins_within_the_gap_only() -> None:
     gated.update(Fix("v", 14.0, 0.0, 0.0, *pts[14]))  # 3 s after the fix before
     assert gated.levels[2].tree.hi - gated.levels[2].tree.lo > 1
 
-
-def test_beam_max_gap_s_is_off_by_default_and_validated() -> None:
-    """0 (no gate) by default; a finite number >= 0."""
-    assert MatchSettings().beam_max_gap_s == 0.0
-    for bad in (-1.0, float("nan"), float("inf"), "3"):
-        problems = MatchSettings(beam_max_gap_s=bad).problems()  # type: ignore[arg-type]
-        assert ("beam_max_gap_s", f"must be a number >= 0, got {bad!r}") in problems
-    assert MatchSettings(beam_max_gap_s=2.5).problems() == []
