@@ -84,18 +84,23 @@ def test_compiled_equals_pure(extract: str, seed: int, every: int) -> None:
     assert _exact(compiled) == _exact(pure)
 
 
-@pytest.mark.parametrize(("extract", "seed", "every", "refined"),
-                         [("Helsinki", 3, 1, False), ("test", 6, 15, False),
-                          ("Helsinki", 3, 1, True)])
+@pytest.mark.parametrize(("extract", "seed", "every", "refined", "gated"),
+                         [("Helsinki", 3, 1, False, False), ("test", 6, 15, False, False),
+                          ("Helsinki", 3, 1, True, False), ("Helsinki", 3, 1, True, True)])
 def test_compiled_equals_pure_with_the_beam(extract: str, seed: int, every: int,
-                                            refined: bool) -> None:
+                                            refined: bool, gated: bool) -> None:
     """With the cost beam on (``beam_margin``, ``beam_keep``; ``refined``: with
-    ``beam_top``, ``beam_guard`` and ``beam_moving`` too) both builds agree bit for bit,
-    events and state; the beam really thinned the upper levels (fewer live states)."""
+    ``beam_top``, ``beam_guard`` and ``beam_moving`` too; ``gated``: with
+    ``beam_max_gap_s`` 2.5 and three fixes of every nine left out, 4 s gaps where the
+    gate shuts) both builds agree bit for bit, events and state; the beam really thinned
+    the upper levels (fewer live states)."""
     net = osm(extract)
     fixes = drive(net, seed, every, seconds=300.0)
+    if gated:
+        fixes = [f for i, f in enumerate(fixes) if i % 9 not in (4, 5, 6)]
     settings = MatchSettings(beam_margin=20.0, beam_keep=6, beam_top=refined,
-                             beam_guard=refined, beam_moving=refined)
+                             beam_guard=refined, beam_moving=refined,
+                             beam_max_gap_s=2.5 if gated else 0.0)
     compiled = tracker_module.Tracker(net, f"v{seed}", settings)
     pure = pure_tracker().Tracker(net, f"v{seed}", settings)
     plain = tracker_module.Tracker(net, f"v{seed}", MatchSettings())

@@ -11,6 +11,8 @@ distance term of the path cost, sigma_m 5 m), one on the 45 m road 40.5: with a 
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import pytest
 import shapely
 
@@ -146,16 +148,18 @@ def test_beam_spares_the_deciding_and_the_oldest_covering_level() -> None:
 
 
 def test_beam_is_off_by_default_and_validated() -> None:
-    """Both keys are 0 (off) by default; the margin a finite number >= 0, the count an
-    integer >= 0."""
-    assert (MatchSettings().beam_margin, MatchSettings().beam_keep) == (0.0, 0)
-    for bad in (-1.0, float("nan"), float("inf"), "3"):
-        problems = MatchSettings(beam_margin=bad).problems()  # type: ignore[arg-type]
-        assert ("beam_margin", f"must be a number >= 0, got {bad!r}") in problems
+    """The keys are 0 (off; ``beam_max_gap_s``: no gate) by default; the margin and the
+    gap a finite number >= 0, the count an integer >= 0."""
+    defaults = MatchSettings()
+    assert (defaults.beam_margin, defaults.beam_keep, defaults.beam_max_gap_s) == (0.0, 0, 0.0)
+    for name in ("beam_margin", "beam_max_gap_s"):
+        for bad in (-1.0, float("nan"), float("inf"), "3"):
+            problems = MatchSettings(**{name: bad}).problems()
+            assert (name, f"must be a number >= 0, got {bad!r}") in problems
     for bad_k in (-1, 2.5, "3", True):
         problems = MatchSettings(beam_keep=bad_k).problems()  # type: ignore[arg-type]
         assert ("beam_keep", f"must be an integer >= 0, got {bad_k!r}") in problems
-    assert MatchSettings(beam_margin=3.0, beam_keep=4).problems() == []
+    assert MatchSettings(beam_margin=3.0, beam_keep=4, beam_max_gap_s=2.5).problems() == []
 
 
 def _spread(net: RoadNetwork) -> Tracker:
@@ -222,3 +226,45 @@ def test_beam_guard_keeps_what_the_smaller_level_holds() -> None:
         extra += sum(a.tree.hi - a.tree.lo - (b.tree.hi - b.tree.lo)
                      for a, b in zip(on.levels, bare.levels, strict=True))
     assert extra > 0
+
+
+GATED = MatchSettings(beam_margin=20.0, beam_keep=8, beam_top=True, beam_guard=True,
+                      beam_moving=True, beam_max_gap_s=2.5)
+
+
+def test_beam_max_gap_s_leaves_a_sparse_reporter_as_without_the_beam() -> None:
+    """With ``beam_max_gap_s`` 2.5 a drive reported every 5 s (Helsinki) gives the events
+    and the state bytes of the tracker without the beam after every fix; without the gate
+    the same beam thinned that drive (the state differed)."""
+    net = osm("Helsinki")
+    fixes = drive(net, 3, 5, seconds=600.0)
+    plain = Tracker(net, "v3", MatchSettings())
+    gated = Tracker(net, "v3", GATED)
+    ungated = Tracker(net, "v3", replace(GATED, beam_max_gap_s=0.0))
+    differed = 0
+    for fix in fixes:
+        want = plain.update(fix)
+        assert gated.update(fix) == want
+        ungated.update(fix)
+        assert gated.to_bytes() == plain.to_bytes()
+        differed += ungated.to_bytes() != plain.to_bytes()
+    assert gated.flush() == plain.flush()
+    assert differed > 0
+
+
+def test_beam_max_gap_s_thins_within_the_gap_only() -> None:
+    """On the street with its side roads: at fixes 1 s apart the gated beam thins each
+    upper level to one state (``beam_keep`` 1), as the ungated one does after every fix;
+    at the first fix (no gap known) and at the fix after a 3 s gap it thins nothing, so
+    the 60 m level then holds the side roads' states too."""
+    net = _street_and_side_roads()
+    gated = Tracker(net, "v", MatchSettings(beam_keep=1, beam_max_gap_s=2.5))
+    pts = _pts()
+    gated.update(Fix("v", 0.0, 0.0, 0.0, *pts[0]))
+    assert gated.levels[2].tree.hi - gated.levels[2].tree.lo > 1
+    for i in range(1, 12):
+        gated.update(Fix("v", float(i), 0.0, 0.0, *pts[i]))
+        assert [lv.tree.hi - lv.tree.lo for lv in gated.levels[1:]] == [1, 1]
+    gated.update(Fix("v", 14.0, 0.0, 0.0, *pts[14]))  # 3 s after the fix before
+    assert gated.levels[2].tree.hi - gated.levels[2].tree.lo > 1
+

@@ -886,6 +886,15 @@ class MatchSettings:
             driven 1 Hz vehicle held 8.85 KB instead of 9.86 and the 1 s cells of
             bench/fleetmiss.py's decision runs no longer lost final answers, but 1-3
             fixes were lost in five 5-30 s cells (docs/measured.md, "Session 31 (beam31)").
+        beam_max_gap_s: with the same rule, thin (and keep the thinned levels out of
+            the commits by agreement) only at a fix at most this many seconds after the
+            previous accepted one; after a longer gap (and at a vehicle's first fix) the
+            fix is treated as without the rule. Why: the memory the beam saves is a
+            frequent reporter's (a sparse vehicle's trees are shrunk and its state
+            parked), while the answers it cost were at 5-30 s (docs/measured.md,
+            "Session 31 (beam31)"); a vehicle reporting every 5 s or more is then
+            matched exactly as without the beam.
+            0, the default, is no gate (every fix thinned).
     """
 
     eps_levels: tuple[float, ...] = (15.0, 30.0, 60.0)
@@ -962,6 +971,7 @@ class MatchSettings:
     beam_guard: bool = False
     beam_moving: bool = False
     beam_top: bool = False
+    beam_max_gap_s: float = 0.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_levels", tuple(float(e) for e in self.eps_levels))
@@ -989,7 +999,7 @@ class MatchSettings:
                      "spike_cost", "street_turn_cost", "join_detour", "live_keep",
                      "live_keep_stand_s", "stand_short_m", "speed_pace_m", "heading_cost",
                      "roll_back_slack_m", "stub_turn_m", "join_margin_m", "class_cost_m",
-                     "beam_margin"):
+                     "beam_margin", "beam_max_gap_s"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 out.append((name, f"must be a number >= 0, got {value!r}"))

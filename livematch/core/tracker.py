@@ -760,7 +760,8 @@ class Tracker:
                                        window_s)
         self._settle(seq, fix.t, dt, salvage, events, hold_newest=before is not None,
                      tops=tops, stood=stood)
-        if s.beam_margin > 0.0 or s.beam_keep > 0:
+        if (s.beam_margin > 0.0 or s.beam_keep > 0) \
+                and (s.beam_max_gap_s <= 0.0 or 0.0 < dt <= s.beam_max_gap_s):
             self._beam()
         if prev is not None and fix.t - prev[0] >= SPARSE_S:
             # a vehicle reporting this rarely spends most of its time idle: keep its
@@ -788,7 +789,9 @@ class Tracker:
         live (the fallback keeps the roads the decider still holds); ``beam_moving``
         thins nothing during a stand (``stand_seq``); ``beam_top`` thins the largest
         level only (the levels between stay whole and commit by agreement as without
-        the rule).
+        the rule). Session 32: with ``beam_max_gap_s`` the caller runs it only at a fix
+        within that gap of the previous accepted one (:meth:`_settle` keeps the same
+        gate on the commit rule), so a sparse reporter is matched as without the beam.
 
         Example (a fresh tracker: no live level, nothing to thin):
             >>> from livematch.core.build import Road, network_from_roads
@@ -1580,7 +1583,11 @@ class Tracker:
         # thinned: their candidates agree because states were dropped, which is no
         # evidence; only the first commits by agreement (nor do they defer to it); with
         # beam_top only the largest level is thinned, and only it is kept out
-        thinned = s.beam_margin > 0.0 or s.beam_keep > 0
+        # (and with beam_max_gap_s, only at a fix the beam thins after: one within
+        # that gap of the previous accepted fix; after a longer gap, or at a first fix
+        # (dt 0), as without it)
+        thinned = (s.beam_margin > 0.0 or s.beam_keep > 0) \
+            and (s.beam_max_gap_s <= 0.0 or 0.0 < dt <= s.beam_max_gap_s)
         progressed = True
         while progressed:
             progressed = False
