@@ -56,16 +56,24 @@ def _ephemeral_range() -> tuple[int, int]:
         return 32768, 60999
 
 
+#: Ports :func:`free_port` has handed out in this process: never handed out twice.
+_GIVEN: set[int] = set()
+
+
 def free_port() -> int:
     """A TCP port on 127.0.0.1 that nobody listens on right now, outside the ephemeral range.
 
     A port from ``bind(0)`` lies in the range the kernel also gives outgoing connections
     (every MQTT and Redis client of a test takes one), so between this call and the
     server's own bind a client could take it: a worker then failed with "address already
-    in use". Ports below (or above) that range are only taken by listeners.
+    in use". Ports below (or above) that range are only taken by listeners. A port is
+    never handed out twice in one process: two calls made before either server binds
+    (two workers' metrics ports) once drew the same random port, and the second worker
+    failed with "address already in use" (session 32's CI run).
     """
     low, high = _ephemeral_range()
-    candidates = [p for p in (*range(20000, low), *range(high + 1, 65536)) if p >= 1024]
+    candidates = [p for p in (*range(20000, low), *range(high + 1, 65536))
+                  if p >= 1024 and p not in _GIVEN]
     rng = random.Random(os.getpid() ^ time.monotonic_ns())
     for port in rng.sample(candidates, min(200, len(candidates))):
         with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
@@ -73,6 +81,7 @@ def free_port() -> int:
                 s.bind(("127.0.0.1", port))
             except OSError:
                 continue
+            _GIVEN.add(port)
             return port
     with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:  # all taken: any port
         s.bind(("127.0.0.1", 0))
