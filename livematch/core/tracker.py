@@ -760,14 +760,24 @@ class Tracker:
                                        window_s)
         self._settle(seq, fix.t, dt, salvage, events, hold_newest=before is not None,
                      tops=tops, stood=stood)
-        if (s.beam_margin > 0.0 or s.beam_keep > 0) \
-                and (s.beam_max_gap_s <= 0.0 or 0.0 < dt <= s.beam_max_gap_s):
+        if self._beam_at(dt):
             self._beam()
         if prev is not None and fix.t - prev[0] >= SPARSE_S:
             # a vehicle reporting this rarely spends most of its time idle: keep its
             # trees without spare room (a compaction per level; decisions unchanged)
             for level in self.levels:
                 level.tree.shrink()
+
+    def _beam_at(self, dt: float) -> bool:
+        """Whether the beam thins at a fix ``dt`` seconds after the previous accepted one.
+
+        On with ``beam_margin`` or ``beam_keep``; with ``beam_max_gap_s`` only within that
+        gap, never at a vehicle's first fix (``dt`` 0). :meth:`_accept` thins by it and
+        :meth:`_settle` keeps the thinned level out of the agreement by it: one gate.
+        """
+        s = self.settings
+        return (s.beam_margin > 0.0 or s.beam_keep > 0) \
+            and (s.beam_max_gap_s <= 0.0 or 0.0 < dt <= s.beam_max_gap_s)
 
     def _beam(self) -> None:
         """Rule ``beam_margin`` / ``beam_keep``: thin the live states of the fallback levels.
@@ -1586,8 +1596,7 @@ class Tracker:
         # (and with beam_max_gap_s, only at a fix the beam thins after: one within
         # that gap of the previous accepted fix; after a longer gap, or at a first fix
         # (dt 0), as without it)
-        thinned = (s.beam_margin > 0.0 or s.beam_keep > 0) \
-            and (s.beam_max_gap_s <= 0.0 or 0.0 < dt <= s.beam_max_gap_s)
+        thinned = self._beam_at(dt)
         progressed = True
         while progressed:
             progressed = False
