@@ -9,7 +9,9 @@ the base every worker pays once decides how many bytes a vehicle may take:
 livematch imported; the matcher's kernels loaded from numba's disk cache (as
 ``livematch warm`` leaves it; the first load pays numba's code generator and its
 runtime, the others each kernel's own code and bookkeeping, read around every
-``Cache.load_overload`` numba makes); the road network read; a
+``Cache.load_overload`` numba makes) or, with the kernels compiled ahead of time by the
+install (``livematch/core/_jit.py``; ``LIVEMATCH_KERNELS=jit`` measures the JIT), their
+extension loaded and numba never imported; the road network read; a
 :class:`~livematch.pipeline.Pipeline` built and one vehicle driven 60 s through it.
 Each stage is reported as resident (``VmRSS``) and split into anonymous memory
 (``RssAnon``: the process's own) and file-backed pages (``RssFile``: shared libraries'
@@ -49,29 +51,39 @@ def status_mb() -> dict[str, float]:
 def measure(extract: str) -> dict[str, Any]:
     """The stages above, in one process (imports done here, in order)."""
     stages: list[dict[str, Any]] = [{"stage": "interpreter", **status_mb()}]
-    import numba
     import numpy  # noqa: F401
-    from numba.core import caching
 
-    stages.append({"stage": "numpy and numba imported", **status_mb()})
+    from livematch.core import _jit
+
+    aot = _jit.mode() == "aot"  # the kernels compiled ahead of time: numba never imported
+    version = "not imported (kernels compiled ahead of time)"
+    if not aot:
+        import numba
+        from numba.core import caching
+
+        version = numba.__version__
+    stages.append({"stage": "numpy imported" if aot else "numpy and numba imported",
+                   **status_mb()})
     import livematch.pipeline
     from livematch.commands.warm import kernel_counts
 
     stages.append({"stage": "livematch imported", **status_mb()})
     loads: list[float] = []
-    original = caching.Cache.load_overload
+    if not aot:
+        original = caching.Cache.load_overload
 
-    def timed_load(self: Any, sig: Any, target_context: Any) -> Any:
-        before = status_mb()["VmRSS"]
-        got = original(self, sig, target_context)
-        loads.append(round(status_mb()["VmRSS"] - before, 2))
-        return got
+        def timed_load(self: Any, sig: Any, target_context: Any) -> Any:
+            before = status_mb()["VmRSS"]
+            got = original(self, sig, target_context)
+            loads.append(round(status_mb()["VmRSS"] - before, 2))
+            return got
 
-    caching.Cache.load_overload = timed_load  # type: ignore[method-assign]
+        caching.Cache.load_overload = timed_load  # type: ignore[method-assign]
     started = time.perf_counter()
     livematch.pipeline.prepare_kernels()
     kernel_s = time.perf_counter() - started
-    caching.Cache.load_overload = original  # type: ignore[method-assign]
+    if not aot:
+        caching.Cache.load_overload = original  # type: ignore[method-assign]
     compiled, loaded = kernel_counts()
     stages.append({"stage": "kernels ready", **status_mb()})
     from _drives import drive_fixes, load_extract
@@ -87,7 +99,8 @@ def measure(extract: str) -> dict[str, Any]:
         payload = json.dumps({"vehicle": "base-1", "time": fix.t, "lat": y, "lon": x})
         pipe.handle("fleet/base-1", payload.encode(), fix.t)
     stages.append({"stage": "pipeline built, one vehicle driven 60 s", **status_mb()})
-    return {"numba": numba.__version__, "stages": stages, "kernel_loads_mb": loads,
+    return {"numba": version, "kernels": _jit.mode(), "stages": stages,
+            "kernel_loads_mb": loads,
             "kernels_compiled": compiled, "kernels_loaded": loaded,
             "kernels_s": round(kernel_s, 2)}
 
@@ -103,11 +116,16 @@ def report(result: dict[str, Any]) -> str:
     for s in result["stages"]:
         lines.append(f"| {s['stage']} | {s['VmRSS']} | {s['RssAnon']} | {s['RssFile']} |")
     loads = result["kernel_loads_mb"]
-    lines += ["", f"Kernels: {result['kernels_loaded']} loaded from numba's cache, "
-              f"{result['kernels_compiled']} compiled, in {result['kernels_s']} s; "
-              f"{len(loads)} cache loads, the first +{loads[0] if loads else 0} MB "
-              f"resident (numba's code generator and runtime start with it), the other "
-              f"{max(0, len(loads) - 1)} +{sum(loads[1:]):.1f} MB together."]
+    if result.get("kernels") == "aot":
+        lines += ["", "Kernels: compiled ahead of time by the install "
+                  "(`livematch.core._aot_kernels`), ready in "
+                  f"{result['kernels_s']} s; numba not imported."]
+    else:
+        lines += ["", f"Kernels: {result['kernels_loaded']} loaded from numba's cache, "
+                  f"{result['kernels_compiled']} compiled, in {result['kernels_s']} s; "
+                  f"{len(loads)} cache loads, the first +{loads[0] if loads else 0} MB "
+                  "resident (numba's code generator and runtime start with it), the other "
+                  f"{max(0, len(loads) - 1)} +{sum(loads[1:]):.1f} MB together."]
     last = result["stages"][-1]
     for label, base in (("resident", last["VmRSS"]), ("anonymous", last["RssAnon"])):
         per = (1024 - base) / 100_000 * 1024

@@ -22,14 +22,34 @@ if os.environ.get("LIVEMATCH_PURE_PYTHON", "") not in ("", "0"):
 
     prefer_source()
 
-from livematch.core.frechet import (
-    discrete_frechet_distance,
-    frechet_decide,
-    frechet_distance,
-    hausdorff_distance,
-)
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from livematch.core.frechet import (
+        discrete_frechet_distance,
+        frechet_decide,
+        frechet_distance,
+        hausdorff_distance,
+    )
 
 __version__ = "0.1.0"
+
+_TOOLKIT = frozenset({"discrete_frechet_distance", "frechet_decide", "frechet_distance",
+                      "hausdorff_distance"})
+
+
+def __getattr__(name: str) -> Any:
+    """The toolkit's functions, imported on first use (PEP 562).
+
+    The toolkit's kernels are numba's (JIT): a worker whose own kernels were compiled
+    ahead of time (``livematch.core._jit``) then never imports numba by importing
+    livematch.
+    """
+    if name in _TOOLKIT:
+        from livematch.core import frechet
+
+        return getattr(frechet, name)
+    raise AttributeError(f"module 'livematch' has no attribute {name!r}")
 
 __all__ = [
     "__version__",

@@ -23,13 +23,16 @@ import importlib.abc
 import importlib.machinery
 import importlib.util
 import json
+import os
 import sys
 from collections.abc import Sequence
 from pathlib import Path
 from types import ModuleType
 
 _PACKAGE = Path(__file__).resolve().parent
-#: Written by setup.py when it compiles: {"modules": {dotted name: sha256 of the source}}.
+#: Written by setup.py when it compiles: {"modules": {dotted name: sha256 of the source}},
+#: and, for the kernels compiled ahead of time (``livematch.core._jit``), ``"kernels"``:
+#: {dotted name of each module the extension was built from: sha256 of its source}.
 MANIFEST = _PACKAGE / "core" / "_native_build.json"
 
 
@@ -38,14 +41,68 @@ def source_hash(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
-def built() -> dict[str, str]:
-    """The modules the last build compiled, with their sources' hashes (empty: pure)."""
+def _manifest(part: str) -> dict[str, str]:
+    """One part of the manifest (``"modules"`` or ``"kernels"``); empty when not built."""
     try:
         data = json.loads(MANIFEST.read_text())
     except FileNotFoundError:
         return {}
-    modules = data.get("modules", {})
-    return {str(k): str(v) for k, v in modules.items()}
+    entries = data.get(part, {})
+    return {str(k): str(v) for k, v in entries.items()}
+
+
+def built() -> dict[str, str]:
+    """The modules the last build compiled, with their sources' hashes (empty: pure)."""
+    return _manifest("modules")
+
+
+def built_kernels() -> dict[str, str]:
+    """The modules the ahead-of-time kernels were built from, with their sources' hashes."""
+    return _manifest("kernels")
+
+
+def _changed(entries: dict[str, str]) -> list[str]:
+    """The dotted names among ``entries`` whose ``.py`` is missing or hashes otherwise."""
+    out = []
+    for name, digest in entries.items():
+        path = _PACKAGE.parent / (name.replace(".", "/") + ".py")
+        if not path.exists() or source_hash(path) != digest:
+            out.append(name)
+    return out
+
+
+#: Environment variable choosing how the kernels run (``livematch.core._jit``): unset or
+#: empty, compiled ahead of time when built and current, else numba's JIT; ``jit``:
+#: numba's JIT; ``checked``: ahead of time with every call's arguments checked against
+#: the compiled signature first (the test suite's setting; slower).
+KERNELS_ENV = "LIVEMATCH_KERNELS"
+
+
+def kernels_choice() -> tuple[ModuleType | None, bool]:
+    """The ahead-of-time kernels' extension for this process, and whether to check calls.
+
+    (None, False): numba's JIT. The second value is whether every call's arguments are
+    checked first (``KERNELS_ENV`` ``checked``). numba's JIT when asked for, when the
+    process imports livematch from source, or when the extension is missing or stale.
+    """
+    want = os.environ.get(KERNELS_ENV, "")
+    if want == "jit" or pure_process() or not kernels_current():
+        return None, False
+    try:
+        module = importlib.import_module("livematch.core._aot_kernels")
+    except ImportError:
+        return None, False
+    return module, want == "checked"
+
+
+def kernels_current() -> bool:
+    """Whether the ahead-of-time kernels were built from the kernel modules as they are now.
+
+    False when none were built or a module they were built from has changed since (the
+    extension would run the old code: ``livematch.core._jit`` then uses numba's JIT).
+    """
+    entries = built_kernels()
+    return bool(entries) and not _changed(entries)
 
 
 def compiled() -> list[str]:
@@ -63,13 +120,10 @@ def stale() -> list[str]:
     """Compiled modules whose ``.py`` has changed since they were compiled.
 
     Each would run the old code: rebuild (module docstring). Pure modules are never stale.
+    A changed kernel module that the ahead-of-time kernels were built from is listed too
+    (the process falls back to numba's JIT for all kernels until the rebuild).
     """
-    out = []
-    for name, digest in built().items():
-        path = _PACKAGE.parent / (name.replace(".", "/") + ".py")
-        if not path.exists() or source_hash(path) != digest:
-            out.append(name)
-    return out
+    return _changed(built()) + [n for n in _changed(built_kernels()) if n not in built()]
 
 
 class _SourceFirst(importlib.abc.MetaPathFinder):
@@ -129,9 +183,13 @@ def describe() -> str:
     if pure_process():
         return "livematch from source (LIVEMATCH_PURE_PYTHON)"
     names = compiled()
+    from livematch.core import _jit
+
+    kernels = ("kernels ahead of time" if _jit.mode() == "aot"
+               else "kernels by numba's JIT")
     if not names:
-        return "livematch pure Python"
-    return f"livematch compiled (mypyc, {len(names)} modules)"
+        return f"livematch pure Python, {kernels}"
+    return f"livematch compiled (mypyc, {len(names)} modules, {kernels})"
 
 
 def main() -> int:
@@ -146,6 +204,13 @@ def main() -> int:
     else:
         print(f"compiled (mypyc): {len(names)} modules, "
               + (f"stale: {', '.join(old)}" if old else "none stale"))
+    from livematch.core import _jit
+
+    if _jit.mode() == "aot":
+        print(f"kernels: ahead of time ({len(built_kernels())} modules, none stale)")
+    else:
+        print("kernels: numba's JIT" + (" (the ahead-of-time build is stale)"
+                                        if built_kernels() and not kernels_current() else ""))
     return 1 if old else 0
 
 

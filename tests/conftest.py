@@ -6,6 +6,12 @@ import os
 
 import pytest
 
+# The kernels compiled ahead of time, every call's arguments checked against the compiled
+# signature (livematch/core/_jit.py): a call with arrays of other types fails loudly here
+# instead of reading them wrongly. Set before livematch is first imported. Subprocesses
+# started with tests/services.subprocess_env() run unchecked, as a worker does.
+os.environ.setdefault("LIVEMATCH_KERNELS", "checked")
+
 
 def pytest_sessionstart(session: pytest.Session) -> None:
     """Refuse to test compiled modules built from other sources than the checkout's.

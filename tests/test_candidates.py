@@ -591,6 +591,7 @@ def test_tracker_keeps_sparse_vehicles_trees_tight() -> None:
                 assert tree.seq_of(tree.n - 1) == tracker.seq
 
 
+@pytest.mark.pure_python  # numba's JIT and its disk cache (a compiled install: ahead of time)
 def test_tree_kernels_calling_the_sweep_kernel_are_keyed_on_its_code() -> None:
     """Every tree kernel that calls a sweep-kernel function carries that file's code key.
 

@@ -8,10 +8,15 @@ arguments whose types it was not compiled for.
 from __future__ import annotations
 
 import numpy as np
+import pytest
 
 from livematch.core import _tree_kernel as _t
 from livematch.core._direct import Direct, resolved, signature
 from livematch.core._sweep_kernel import ROW_I, commit_point
+
+# numba's dispatchers: the kernels under the JIT, which the session from source runs (a
+# compiled install runs them ahead of time: tests/test_aot_kernels.py)
+pytestmark = pytest.mark.pure_python
 
 
 def _chain_tree() -> np.ndarray:

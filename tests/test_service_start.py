@@ -9,6 +9,7 @@ import sys
 import time
 from pathlib import Path
 
+import pytest
 from services import (
     WAIT_S,
     Mosquitto,
@@ -117,9 +118,27 @@ def test_run_without_network_fails_with_one_line(tmp_path: Path) -> None:
     assert "Traceback" not in done.stderr
 
 
-def warm(*args: str) -> subprocess.CompletedProcess[str]:
+def warm(*args: str, kernels: str = "jit") -> subprocess.CompletedProcess[str]:
+    """``livematch warm``; ``kernels``: ``LIVEMATCH_KERNELS`` (numba's JIT by default: the
+    cache these tests are about)."""
+    env = {**subprocess_env(), "LIVEMATCH_KERNELS": kernels}
     return subprocess.run([sys.executable, "-m", "livematch.cli", "warm", *args],
-                          capture_output=True, text=True, env=subprocess_env(), timeout=600)
+                          capture_output=True, text=True, env=env, timeout=600)
+
+
+def test_warm_with_kernels_compiled_ahead_of_time(tmp_path: Path) -> None:
+    """A compiled install's kernels need no warming; the network is still checked."""
+    from livematch.core import _jit
+
+    if _jit.mode() != "aot":
+        pytest.skip("kernels under numba's JIT in this process (from source)")
+    net = tmp_path / "town.lmnet"
+    save_network(town(), net)
+    done = warm("--network", str(net), kernels="")
+    assert done.returncode == 0, done.stderr
+    first, second = done.stdout.splitlines()[:2]
+    assert "compiled ahead of time by the install, nothing to compile" in first
+    assert second.startswith(f"network {net}: read, pipeline built")
 
 
 def test_warm_fills_the_cache_so_a_second_run_compiles_nothing(tmp_path: Path) -> None:
@@ -165,7 +184,8 @@ print(*before)
 print(*kernel_counts())
 """
     done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
-                          env=subprocess_env(), timeout=600, cwd=ROOT)
+                          env={**subprocess_env(), "LIVEMATCH_KERNELS": "jit"}, timeout=600,
+                          cwd=ROOT)
     assert done.returncode == 0, done.stderr
     before, after = done.stdout.splitlines()[-2:]
     assert int(before.split()[1]) >= 20  # kernels loaded (or compiled) by prepare_kernels

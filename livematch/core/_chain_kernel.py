@@ -23,9 +23,9 @@ from __future__ import annotations
 from collections.abc import Callable
 from typing import Final
 
-import numba
 import numpy as np
 
+from livematch.core import _jit
 from livematch.core import _sweep_kernel as _sk
 from livematch.core._kernel_key import code_key
 from livematch.core._sweep_kernel import (
@@ -60,7 +60,7 @@ CHAIN_F: Final = 6
 def _keyed_chain_rows(sweep_key: int) -> Callable[..., int]:
     """``chain_rows`` compiled with the sweep kernel's code key as a constant."""
 
-    @numba.njit(cache=True, error_model="numpy")
+    @_jit.njit(cache=True, error_model="numpy")
     def chain_rows(ti: np.ndarray, geo: np.ndarray, top: int, min_seq: int, oi: np.ndarray,
                    of: np.ndarray) -> int:
         """``top``'s chain back to fix ``min_seq`` and the row before it, with their fields.

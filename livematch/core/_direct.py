@@ -21,6 +21,10 @@ dimensions and layout on every call (the tracker's arrays are all made by numpy 
 fixed dtypes, contiguous and writable: :func:`resolved` refuses a first call that is
 not, and the dispatcher then stays in use). Pure: no I/O; the one piece of state is the
 cache of resolved entry points, which changes no result.
+
+A kernel compiled ahead of time (:mod:`livematch.core._jit`) is a plain C function with
+its signature fixed at build time: :class:`Direct` calls it as it is, and numba is not
+imported.
 """
 
 from __future__ import annotations
@@ -28,12 +32,10 @@ from __future__ import annotations
 from collections.abc import Callable
 from typing import TYPE_CHECKING, Any
 
-import numba
 import numpy as np
 
-#: numba scalar types for the annotations the kernels use on their number arguments
-_SCALARS = {"int": numba.types.int64, "float": numba.types.float64,
-            "bool": numba.types.boolean}
+#: numba scalar types (by name) for the annotations the kernels use on their number arguments
+_SCALARS = {"int": "int64", "float": "float64", "bool": "boolean"}
 
 
 def signature(dispatcher: Any, args: tuple[Any, ...]) -> tuple[Any, ...] | None:
@@ -43,6 +45,8 @@ def signature(dispatcher: Any, args: tuple[Any, ...]) -> tuple[Any, ...] | None:
     array that is not C-contiguous and writable, a number whose parameter has no
     ``int`` / ``float`` / ``bool`` annotation, or another kind of argument.
     """
+    import numba
+
     func = dispatcher.py_func
     code = func.__code__
     if code.co_argcount != len(args):
@@ -60,7 +64,7 @@ def signature(dispatcher: Any, args: tuple[Any, ...]) -> tuple[Any, ...] | None:
             kind = _SCALARS.get(ann if isinstance(ann, str) else getattr(ann, "__name__", ""))
             if kind is None:
                 return None
-            sig.append(kind)
+            sig.append(getattr(numba.types, kind))
         else:
             return None
     return tuple(sig)
@@ -91,7 +95,9 @@ class Direct:
 
     def __init__(self, **kernels: Any) -> None:
         for name, dispatcher in kernels.items():
-            setattr(self, name, self._resolver(name, dispatcher))
+            # (compiled ahead of time: no dispatcher, the C function is the entry point)
+            setattr(self, name, self._resolver(name, dispatcher)
+                    if hasattr(dispatcher, "py_func") else dispatcher)
 
     def _resolver(self, name: str, dispatcher: Any) -> Callable[..., Any]:
         def first(*args: Any) -> Any:

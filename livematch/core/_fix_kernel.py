@@ -11,11 +11,12 @@ numpy.
 
 from __future__ import annotations
 
-import numba
 import numpy as np
 
+from livematch.core import _jit
 
-@numba.njit(cache=True, error_model="numpy")
+
+@_jit.njit(cache=True, error_model="numpy")
 def all_within(xy: np.ndarray, lo: int, hi: int, hx: float, hy: float, r2: float) -> bool:
     """Whether every row ``lo`` to ``hi`` - 1 of ``xy`` lies within ``sqrt(r2)`` of (hx, hy).
 

@@ -63,10 +63,11 @@ number of them written.
 
 from __future__ import annotations
 
-import numba
 import numpy as np
 
-_jit = numba.njit(cache=True, error_model="numpy")
+from livematch.core._jit import njit
+
+_jit = njit(cache=True, error_model="numpy")
 
 # The segment record of ``netf`` (the same numbers as livematch.core._sweep_kernel's; kept
 # here as plain numbers so that numba's cache of this file sees them).

@@ -70,8 +70,9 @@ from __future__ import annotations
 import math
 from typing import Final
 
-import numba
 import numpy as np
+
+from livematch.core import _jit
 
 # Indices of the step scalars at the head of ``live``.
 C_EPS: Final = 0
@@ -131,7 +132,7 @@ _GONE: Final = -2  # ... once an entry for its vertex that pops first has replac
 _CACHED: Final = -2.0
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def free_interval(
     ax: float, ay: float, bx: float, by: float, px: float, py: float, eps2: float
 ) -> tuple[float, float]:
@@ -160,7 +161,7 @@ def free_interval(
     return (lo if lo > 0.0 else 0.0), (hi if hi < 1.0 else 1.0)
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def layout(
     n_v: int, n_e: int, cap_h: int, cap_b: int, cap_m: int, cap_o: int
 ) -> tuple[int, int, int, int, int, int]:
@@ -178,7 +179,7 @@ def layout(
     return es0, offer_f0, out_f0, entry0, out_i0, end
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def _before(s_a: float, c_a: float, a: int, s_b: float, c_b: float, b: int) -> bool:
     """Heap order: Python's tuple order on (s, parent cost, counter), a before b."""
     if s_a != s_b:
@@ -188,7 +189,7 @@ def _before(s_a: float, c_a: float, a: int, s_b: float, c_b: float, b: int) -> b
     return a < b
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def sweep_kernel(
     netf: np.ndarray, neti: np.ndarray, live: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray
 ) -> tuple[int, int]:
@@ -649,7 +650,7 @@ T_SPARE: Final = 3  # fix times of room a compaction leaves, at least (a fix add
 L_SPARE: Final = 2  # live rows of room for floats a compaction leaves, at least
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def live_room(m: int, k: int) -> int:
     """Live rows the live floats' area of new arrays holds: ``m`` new ones, ``k`` before.
 
@@ -665,7 +666,7 @@ def live_room(m: int, k: int) -> int:
     return big + max(big // 8, L_SPARE)
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def row_spare(m: int, k: int) -> int:
     """The least room for rows a compaction into new arrays leaves (``ARENA_FULL``).
 
@@ -680,7 +681,7 @@ def row_spare(m: int, k: int) -> int:
     return max(m, k + k // 4 + MIN_SPARE)
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def floats(ti: np.ndarray) -> np.ndarray:
     """The tree's floats ``tf``: the rest of its one array after the ints, as float64.
 
@@ -691,31 +692,31 @@ def floats(ti: np.ndarray) -> np.ndarray:
     return ti[e + (e & 1):].view(np.float64)
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def via_base(ti: np.ndarray) -> int:
     """Where the vias start in ``ti``: after the header and the rows the arrays have room for."""
     return HEAD + ROW_I * ti[H_RCAP]
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def live_base(ti: np.ndarray) -> int:
     """Where the live block's floats start in ``tf``: after the rows the arrays have room for."""
     return ROW_F * ti[H_RCAP]
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def time_base(ti: np.ndarray) -> int:
     """Where the fix times start in ``tf``: after the rows' and the live block's floats."""
     return ROW_F * ti[H_RCAP] + LIVE_F * ti[H_LCAP]
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def fix_base(ti: np.ndarray) -> int:
     """Where the fixes' first rows start in ``ti``: its last ``H_TCAP`` ints (before ``H_IEND``)."""
     return ti[H_IEND] - ti[H_TCAP]
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def row_from(ti: np.ndarray, seq: int) -> int:
     """The first row whose fix is ``seq`` or later (``H_N`` if none).
 
@@ -731,7 +732,7 @@ def row_from(ti: np.ndarray, seq: int) -> int:
     return ti[ti[H_IEND] - ti[H_TCAP] + j]
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def seq_at(ti: np.ndarray, row: int) -> int:
     """The fix (sequence number) of row ``row``: the last fix whose first row is <= it."""
     fb = ti[H_IEND] - ti[H_TCAP]
@@ -746,13 +747,13 @@ def seq_at(ti: np.ndarray, row: int) -> int:
     return ti[H_T0] + lo
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def time_of(ti: np.ndarray, row: int) -> float:
     """The time of row ``row``'s fix (kept once per fix, after the live floats in ``tf``)."""
     return floats(ti)[time_base(ti) + seq_at(ti, row) - ti[H_T0]]
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def tree_sweep(
     netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
     ctx: np.ndarray, ti: np.ndarray, seq: int, t: float,
@@ -879,7 +880,7 @@ def tree_sweep(
     return top, ti[H_LO], ti[H_HI]
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def kept_mask(ti: np.ndarray) -> np.ndarray:
     """Which of the tree's rows in use a compaction keeps.
 
@@ -894,7 +895,7 @@ def kept_mask(ti: np.ndarray) -> np.ndarray:
     return keep
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def mark_ancestors(ti: np.ndarray, keep: np.ndarray) -> None:
     """Mark in ``keep`` every ancestor of a row it marks (a parent's index is below its child's)."""
     for r in range(ti[H_N] - 1, -1, -1):
@@ -904,7 +905,7 @@ def mark_ancestors(ti: np.ndarray, keep: np.ndarray) -> None:
                 keep[p] = True
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def step_mask(ti: np.ndarray, ibuf: np.ndarray, m: int) -> np.ndarray:
     """Which rows a compaction before appending the step waiting in ``ibuf`` keeps.
 
@@ -925,7 +926,7 @@ def step_mask(ti: np.ndarray, ibuf: np.ndarray, m: int) -> np.ndarray:
     return keep
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def step_parents(ibuf: np.ndarray, m: int, keep: np.ndarray, lo: int, hi: int) -> None:
     """Renumber the parents of the step's ``m`` output rows after a :func:`step_mask` compaction.
 
@@ -945,7 +946,7 @@ def step_parents(ibuf: np.ndarray, m: int, keep: np.ndarray, lo: int, hi: int) -
         ibuf[q] = rank[ibuf[q]]
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def kept_rows(ti: np.ndarray) -> tuple[int, int, int]:
     """Rows, vias and fix times a compaction keeps: the live block and its ancestors.
 
@@ -955,7 +956,7 @@ def kept_rows(ti: np.ndarray) -> tuple[int, int, int]:
     return count_kept(ti, kept_mask(ti))
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def count_kept(ti: np.ndarray, keep: np.ndarray) -> tuple[int, int, int]:
     """Rows, vias and fix times of the rows ``keep`` marks (:func:`kept_rows`)."""
     rows = 0
@@ -986,7 +987,7 @@ def count_kept(ti: np.ndarray, keep: np.ndarray) -> tuple[int, int, int]:
     return rows, vias, j_last - j_first + 1
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def compact(
     ti: np.ndarray, spare_rows: int, spare_vias: int, spare_t: int, spare_live: int,
 ) -> np.ndarray:
@@ -1010,7 +1011,7 @@ def compact(
     return ti2
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def compact_in_place(ti: np.ndarray) -> None:
     """Keep only the live block and its ancestors, moved down within the same arrays.
 
@@ -1022,7 +1023,7 @@ def compact_in_place(ti: np.ndarray) -> None:
     compact_into(ti, ti, ti[H_RCAP], ti[H_LCAP])
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def compact_into(ti: np.ndarray, ti2: np.ndarray, cap2: int, cap_l2: int) -> None:
     """:func:`compact_in_place`, writing into the array ``ti2`` (header included).
 
@@ -1041,7 +1042,7 @@ def compact_into(ti: np.ndarray, ti2: np.ndarray, cap2: int, cap_l2: int) -> Non
     compact_kept(ti, ti2, cap2, cap_l2, kept_mask(ti))
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def compact_kept(ti: np.ndarray, ti2: np.ndarray, cap2: int, cap_l2: int,
                  keep: np.ndarray) -> None:
     """:func:`compact_into`, keeping the rows ``keep`` marks (a row's parent with it).
@@ -1133,7 +1134,7 @@ def compact_kept(ti: np.ndarray, ti2: np.ndarray, cap2: int, cap_l2: int,
         ti2[ti2[H_IEND]] = 0
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def tree_append(
     fbuf: np.ndarray, ibuf: np.ndarray, ti: np.ndarray, tf: np.ndarray,
     seq: int, t: float, m: int, n_via: int,
@@ -1191,7 +1192,7 @@ def tree_append(
     ti[H_HI] = n + m
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def compact_append(
     ti: np.ndarray, ti2: np.ndarray, iend2: int, fbuf: np.ndarray, ibuf: np.ndarray,
     seq: int, t: float, next_commit: int, newest: int,
@@ -1220,7 +1221,7 @@ def compact_append(
 # function's own file only, and ``trim`` and ``junction_split`` in _tree_kernel call the
 # functions below: whoever changes one of them must also change _tree_kernel.py (or
 # clear the cache), else those two keep the cached old code.
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def rows_ancestor(ti: np.ndarray, cur: np.ndarray, k: int, floor: int) -> int:
     """:func:`livematch.core.sweep.common_ancestor` of the ``k`` distinct rows ``cur``."""
     # a row below ``bound`` is of fix <= floor: row_from(ti, floor + 1) written out (a
@@ -1247,7 +1248,7 @@ def rows_ancestor(ti: np.ndarray, cur: np.ndarray, k: int, floor: int) -> int:
     return cur[0] if k == 1 else -1
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def rows_ancestor_marked(ti: np.ndarray, cur: np.ndarray, k: int, floor: int,
                          mark: np.ndarray) -> int:
     """:func:`rows_ancestor`, the distinct parents found with a mark per row (same answer).
@@ -1304,7 +1305,7 @@ def rows_ancestor_marked(ti: np.ndarray, cur: np.ndarray, k: int, floor: int,
     return cur[0] if k == 1 else -1
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def block_ancestor(ti: np.ndarray, floor: int) -> int:
     """The deepest common ancestor of the live block, or -1 (see :func:`rows_ancestor`)."""
     lo = ti[H_LO]
@@ -1313,7 +1314,7 @@ def block_ancestor(ti: np.ndarray, floor: int) -> int:
     return rows_ancestor(ti, cur, hi - lo, floor)
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def commit_point(ti: np.ndarray, next_commit: int, newest: int) -> int:
     """The row a commit of the live block may settle up to, or -1.
 
@@ -1325,7 +1326,7 @@ def commit_point(ti: np.ndarray, next_commit: int, newest: int) -> int:
     return commit_point_of(ti, next_commit, newest, block_ancestor(ti, next_commit - 1))
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def commit_point_of(ti: np.ndarray, next_commit: int, newest: int, top: int) -> int:
     """:func:`commit_point` from the live block's :func:`block_ancestor` ``top``."""
     # rows from ``after`` on are of fixes after newest, from ``start`` on of next_commit
@@ -1344,7 +1345,7 @@ def commit_point_of(ti: np.ndarray, next_commit: int, newest: int, top: int) -> 
     return -1
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def cut_and_check(ti: np.ndarray, next_commit: int, newest: int, cut: bool) -> int:
     """:func:`commit_point`, first cutting (``cut``) the links older than fix ``next_commit - 1``.
 
@@ -1362,7 +1363,7 @@ def cut_and_check(ti: np.ndarray, next_commit: int, newest: int, cut: bool) -> i
     return commit_point(ti, next_commit, newest)
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def cut_links(ti: np.ndarray, cut: int) -> None:
     """Set to -1 the first back-pointer to a state older than fix ``cut`` on each live path."""
     # a row below ``bound`` is of a fix older than cut: row_from(ti, cut), written out
@@ -1381,7 +1382,7 @@ def cut_links(ti: np.ndarray, cut: int) -> None:
             cur = p
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def ancestor_at(ti: np.ndarray, row: int, seq: int) -> int:
     """The ancestor of ``row`` (itself included) with the largest seq <= ``seq``."""
     # rows from ``after`` on are of fixes after seq: row_from(ti, seq + 1), written out
@@ -1393,7 +1394,7 @@ def ancestor_at(ti: np.ndarray, row: int, seq: int) -> int:
     return row
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def step_arc(netf: np.ndarray, ibuf: np.ndarray, via0: int, via_len: int,
              pseg: int, ppos: float, seg: int, pos: float) -> float:
     """Metres driven from ``ppos`` on ``pseg`` to ``pos`` on ``seg`` through vias.
@@ -1411,7 +1412,7 @@ def step_arc(netf: np.ndarray, ibuf: np.ndarray, via0: int, via_len: int,
             + pos * netf[SEG_STRIDE * seg + S_LEN])
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def window_step(
     netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
     ctx: np.ndarray, rows: np.ndarray, driven: np.ndarray,
@@ -1470,7 +1471,7 @@ def window_step(
     return 0, out, new_driven
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def window_best(rows: np.ndarray, driven: np.ndarray) -> int:
     """Row of the window candidate that followed the route longest; -1 when none is live.
 

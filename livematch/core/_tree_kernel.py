@@ -61,10 +61,10 @@ from __future__ import annotations
 import math
 from collections.abc import Callable
 
-import numba
 import numpy as np
 
 from livematch.core import _sweep_kernel as _sk
+from livematch.core._jit import njit
 from livematch.core._kernel_key import code_key
 
 # The row layout, and the sweep step on a tree (``tree_sweep``), live in _sweep_kernel:
@@ -203,7 +203,7 @@ __all__ = [
     "via_base"
 ]
 
-_jit = numba.njit(cache=True, error_model="numpy")
+_jit = njit(cache=True, error_model="numpy")
 
 
 @_jit

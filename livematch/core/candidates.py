@@ -812,8 +812,8 @@ class CandidateTree:
         Near-best: within ``margin`` of ``best`` in path cost, or in ``score`` if given
         (one value per live row, in row order).
         """
-        if score is None:
-            score = self.costs()
+        if score is None:  # (a strided view: contiguous for the compiled kernel)
+            score = np.ascontiguousarray(self.costs())
         return _t.junction_split(self.ti, best, margin,
                                  score)
 

@@ -50,11 +50,12 @@ import math
 from collections.abc import Mapping, Sequence
 from typing import Final
 
-import numba
 import numpy as np
 import numpy.typing as npt
 import shapely
 from shapely.geometry.base import BaseGeometry
+
+from livematch.core import _jit
 
 OUTSIDE: Final = 0
 INSIDE: Final = 1
@@ -155,7 +156,7 @@ def build_tables(polygons: Sequence[tuple[BaseGeometry, BaseGeometry]],
     return fi, ff
 
 
-@numba.njit(cache=True, error_model="numpy", inline="always")
+@_jit.njit(cache=True, error_model="numpy", inline="always")
 def _locate(ff: np.ndarray, bedge: np.ndarray, e0: int, e1: int, v0: int,
             x: float, y: float) -> int:
     """Location of (x, y) given the edges ``bedge[e0:e1]`` of its band (even-odd).
@@ -192,7 +193,7 @@ def _locate(ff: np.ndarray, bedge: np.ndarray, e0: int, e1: int, v0: int,
     return INSIDE if crossings % 2 == 1 else OUTSIDE
 
 
-@numba.njit(cache=True, error_model="numpy", inline="always")
+@_jit.njit(cache=True, error_model="numpy", inline="always")
 def _polygon(fi: np.ndarray, ff: np.ndarray, p: int, x: float, y: float) -> int:
     """Location of (x, y) in polygon ``p`` (``2 * fence`` outer, ``+ 1`` inner)."""
     b = 4 * p
@@ -213,7 +214,7 @@ def _polygon(fi: np.ndarray, ff: np.ndarray, p: int, x: float, y: float) -> int:
     return _locate(ff, fi[fi[9]:], fi[bptr], fi[bptr + 1], 10 * n_f, x, y)
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def fence_probe(x: float, y: float, cell_m: float, fi: np.ndarray, ff: np.ndarray,
                 out: np.ndarray) -> int:
     """Rows ``fence, outer, inner`` in ``out`` for the fences near (x, y); their number.
@@ -263,7 +264,7 @@ def fence_probe(x: float, y: float, cell_m: float, fi: np.ndarray, ff: np.ndarra
     return -n if unsure else n
 
 
-@numba.njit(cache=True, error_model="numpy", inline="always")
+@_jit.njit(cache=True, error_model="numpy", inline="always")
 def _segment_distance2(ax: float, ay: float, bx: float, by: float, x: float,
                        y: float) -> float:
     """Squared distance from (x, y) to the segment from (ax, ay) to (bx, by)."""
@@ -282,7 +283,7 @@ def _segment_distance2(ax: float, ay: float, bx: float, by: float, x: float,
     return px * px + py * py
 
 
-@numba.njit(cache=True, error_model="numpy", inline="always")
+@_jit.njit(cache=True, error_model="numpy", inline="always")
 def _polygon_distance2(fi: np.ndarray, ff: np.ndarray, p: int, x: float, y: float,
                        best: float) -> float:
     """The smaller of ``best`` and a bound below the squared distance to polygon ``p``.
@@ -354,7 +355,7 @@ def _polygon_distance2(fi: np.ndarray, ff: np.ndarray, p: int, x: float, y: floa
     return best
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def fence_clearance(x: float, y: float, cell_m: float, fi: np.ndarray,
                     ff: np.ndarray) -> float:
     """Metres (x, y) can move without :func:`fence_probe`'s answer changing; 0: unknown.
@@ -403,7 +404,7 @@ def fence_clearance(x: float, y: float, cell_m: float, fi: np.ndarray,
     return clear if clear > 0.0 else 0.0
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def fence_probe_clear(x: float, y: float, cell_m: float, fi: np.ndarray, ff: np.ndarray,
                       out: np.ndarray, clear: bool) -> tuple[int, float]:
     """:func:`fence_probe`, and :func:`fence_clearance` when ``clear`` (else 0).

@@ -37,10 +37,10 @@ import math
 from collections.abc import Callable
 from typing import Any
 
-import numba
 import numpy as np
 import numpy.typing as npt
 
+from livematch.core import _jit
 from livematch.core import _sweep_kernel as _k
 from livematch.core._kernel_key import code_key
 from livematch.core.network import RoadNetwork
@@ -66,7 +66,7 @@ assert _k.C_CHORD + 1 + len(WINDOW_WEIGHTS) == _k.N_CTX
 BOX_SLACK_M = 1e-6
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def _best(w: np.ndarray, k: int) -> int:
     """Row of the candidate that followed the route longest (see :func:`best_row`)."""
     best = 0
@@ -80,7 +80,7 @@ def _best(w: np.ndarray, k: int) -> int:
     return best
 
 
-@numba.njit(cache=True, error_model="numpy", inline="always")
+@_jit.njit(cache=True, error_model="numpy", inline="always")
 def _advance(
     netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
     ctx: np.ndarray, w: np.ndarray, buf: np.ndarray,
@@ -202,7 +202,7 @@ def _advance(
 def _entry_points(sweep_key: int) -> tuple[Callable[..., Any], Callable[..., Any]]:
     """The compiled entry points, keyed on the sweep kernel's code (:func:`code_key`)."""
 
-    @numba.njit(cache=True, error_model="numpy")
+    @_jit.njit(cache=True, error_model="numpy")
     def window_advance(
         netf: np.ndarray, neti: np.ndarray, fbuf: np.ndarray, ibuf: np.ndarray,
         ctx: np.ndarray, w: np.ndarray,
@@ -221,7 +221,7 @@ def _entry_points(sweep_key: int) -> tuple[Callable[..., Any], Callable[..., Any
         buf = np.empty(_k.N_CTX + (_k.LIVE_STRIDE + 1) * int(w[0]))
         return _advance(netf, neti, fbuf, ibuf, ctx, w, buf)
 
-    @numba.njit(cache=True, error_model="numpy")
+    @_jit.njit(cache=True, error_model="numpy")
     def route_advance(
         chainf: np.ndarray, chaini: np.ndarray, nf: int, ni: int,
         fbuf: np.ndarray, ibuf: np.ndarray, w: np.ndarray, bw: np.ndarray,
@@ -280,7 +280,7 @@ def _entry_points(sweep_key: int) -> tuple[Callable[..., Any], Callable[..., Any
 window_advance, route_advance = _entry_points(code_key(_k))
 
 
-@numba.njit(cache=True, error_model="numpy")
+@_jit.njit(cache=True, error_model="numpy")
 def _rebase(w: np.ndarray, k: int) -> None:
     """Subtract the smallest cost of the ``k`` rows from each (the window keeps no history)."""
     base = w[1 + 5]
