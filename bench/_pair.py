@@ -22,16 +22,19 @@ class WorkerPair:
     the caller)."""
 
     def __init__(self, command: list[str], base: str, new: str,
-                 new_args: list[str] | None = None) -> None:
-        """``new_args``: added to the new worker's command only (its own settings)."""
-        self.base = self._start(command, base)
-        self.new = self._start(command + (new_args or []), new)
+                 new_args: list[str] | None = None, base_env: dict[str, str] | None = None,
+                 new_env: dict[str, str] | None = None) -> None:
+        """``new_args``: added to the new worker's command only (its own settings);
+        ``base_env`` / ``new_env``: added to one worker's environment (e.g. the kernels'
+        ``LIVEMATCH_KERNELS``)."""
+        self.base = self._start(command, base, base_env or {})
+        self.new = self._start(command + (new_args or []), new, new_env or {})
 
     @staticmethod
-    def _start(command: list[str], tree: str) -> subprocess.Popen[str]:
+    def _start(command: list[str], tree: str, env: dict[str, str]) -> subprocess.Popen[str]:
         proc = subprocess.Popen(command, stdin=subprocess.PIPE, stdout=subprocess.PIPE,
-                                text=True,
-                                env={**os.environ, "PYTHONPATH": str(Path(tree).resolve())})
+                                text=True, env={**os.environ, **env,
+                                                "PYTHONPATH": str(Path(tree).resolve())})
         assert proc.stdout is not None and proc.stdout.readline().strip() == "ready"
         return proc
 

@@ -22,6 +22,10 @@ with these ``[matcher]`` settings (values read as TOML, as ``bench/accuracy.py
 --matcher``), the base's with the defaults: a setting's CPU in one tree (``--base`` and
 ``--new`` the same checkout), without a throwaway checkout and its build.
 
+``--base-env KEY=VALUE`` / ``--new-env KEY=VALUE`` (repeatable): an environment variable
+for one worker: ``--base T --new T --base-env LIVEMATCH_KERNELS=jit`` times the kernels
+under numba's JIT against the same kernels compiled ahead of time (``core/_jit.py``).
+
 ``--heading-sigma DEG`` (``--what tracker``): the drives' fixes report a course over
 ground (``DriveSettings.heading_sigma_deg``); a setting such as ``heading_cost`` is then
 compared by giving the two trees different defaults (a throwaway checkout with the
@@ -112,6 +116,11 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--new-matcher", action="append", default=[], metavar="KEY=VALUE",
                     help="--what tracker: the new tree's [matcher] settings (repeatable; "
                     "the base runs the defaults)")
+    ap.add_argument("--base-env", action="append", default=[], metavar="KEY=VALUE",
+                    help="an environment variable for the base's worker only (repeatable; "
+                    "e.g. LIVEMATCH_KERNELS=jit: the kernels under numba's JIT)")
+    ap.add_argument("--new-env", action="append", default=[], metavar="KEY=VALUE",
+                    help="the same for the new tree's worker")
     ap.add_argument("--worker-matcher", default="{}", help=argparse.SUPPRESS)
     ap.add_argument("--worker", action="store_true", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
@@ -133,7 +142,11 @@ def main(argv: list[str] | None = None) -> int:
         from accuracy import matcher_settings
 
         new_args = ["--worker-matcher", json.dumps(matcher_settings(args.new_matcher))]
-    workers = WorkerPair(me, args.base, args.new, new_args)
+    def env(pairs: list[str]) -> dict[str, str]:
+        return dict(p.split("=", 1) for p in pairs)
+
+    workers = WorkerPair(me, args.base, args.new, new_args, env(args.base_env),
+                         env(args.new_env))
     print(f"# bench/ab.py {' '.join(argv if argv is not None else sys.argv[1:])}; "
           f"load average {os.getloadavg()[0]:.2f}")
     for every in (int(e) for e in args.every.split(",")):

@@ -17,7 +17,10 @@ the health port first answered, every ``/healthz`` status, the slowest answer an
 it came, how many took 0.5 s or more (a probe's timeout is often 1 s), the
 ``/readyz`` bodies in order with when each first appeared, when ``/readyz`` turned 200,
 and the worker's CPU seconds by then (/proc/<pid>/stat); plus the 1-minute load average
-before the start. Results: ``bench/results/start.md`` and ``start.json``.
+before the start. Results: ``bench/results/start.md`` and ``start.json``. The workers
+run the kernels under numba's JIT (``LIVEMATCH_KERNELS=jit``); ``--kernels installed``
+starts them as installed, with the kernels compiled ahead of time when the install built
+them (``core/_jit.py``).
 """
 
 from __future__ import annotations
@@ -64,6 +67,11 @@ def get(port: int, path: str, timeout: float = 5.0) -> tuple[int, str, float] | 
     return int(head.split()[1]), body.decode().strip(), time.monotonic() - started
 
 
+#: ``LIVEMATCH_KERNELS`` for the workers and ``livematch warm`` (``--kernels``; default
+#: ``jit``: the starts this benchmark was made for; ``""``: as installed, ahead of time)
+KERNELS = {"value": "jit"}
+
+
 def start_worker(cache: Path, broker_port: int, folder: Path, interval: float
                  ) -> dict[str, Any]:
     """Start one worker with ``cache`` as numba's cache, probe it until ready, stop it."""
@@ -72,6 +80,7 @@ def start_worker(cache: Path, broker_port: int, folder: Path, interval: float
                         metrics_port=port)
     env = {k: v for k, v in os.environ.items() if not k.startswith("LIVEMATCH")}
     env["NUMBA_CACHE_DIR"] = str(cache)
+    env["LIVEMATCH_KERNELS"] = KERNELS["value"]
     load = load_average()
     t0 = time.monotonic()
     proc = subprocess.Popen([sys.executable, "-m", "livematch.cli", "run", "--config",
@@ -117,7 +126,7 @@ def start_worker(cache: Path, broker_port: int, folder: Path, interval: float
 
 
 def warm(cache: Path) -> dict[str, Any]:
-    env = dict(os.environ, NUMBA_CACHE_DIR=str(cache))
+    env = dict(os.environ, NUMBA_CACHE_DIR=str(cache), LIVEMATCH_KERNELS=KERNELS["value"])
     started = time.monotonic()
     done = subprocess.run([sys.executable, "-m", "livematch.cli", "warm"], env=env, cwd=ROOT,
                           capture_output=True, text=True, check=True)
@@ -126,7 +135,8 @@ def warm(cache: Path) -> dict[str, Any]:
 
 def render(r: dict[str, Any]) -> str:
     lines = ["# A worker's start, cold and warmed numba cache", "",
-             f"Command: `.venv/bin/python bench/start.py --interval {r['interval']}`, "
+             f"Command: `.venv/bin/python bench/start.py --interval {r['interval']}"
+             f" --kernels {r.get('kernels', 'jit')}`, "
              f"started {r['started_utc']} UTC, livematch at commit {r['git']['commit']}; "
              f"{os.cpu_count()} cores shared with other people's work. `livematch warm` "
              f"into the warm run's empty cache: {r['warm']['wall_s']} s wall, "
@@ -153,9 +163,15 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--interval", type=float, default=0.1, help="seconds between probes")
     ap.add_argument("--out", default=str(ROOT / "bench" / "results"))
     ap.add_argument("--name", default="start")
+    ap.add_argument("--kernels", choices=("jit", "installed"), default="jit",
+                    help="jit (default): the kernels under numba's JIT, whose cache this "
+                    "benchmark is about; installed: as installed (ahead of time when built: "
+                    "the three starts then compile nothing)")
     args = ap.parse_args(argv)
+    KERNELS["value"] = "jit" if args.kernels == "jit" else ""
     result: dict[str, Any] = {"started_utc": time.strftime("%Y-%m-%d %H:%M", time.gmtime()),
-                              "interval": args.interval, "git": git_state()}
+                              "interval": args.interval, "git": git_state(),
+                              "kernels": args.kernels}
     with tempfile.TemporaryDirectory(prefix="lm-start-") as tmp:
         folder = Path(tmp)
         broker, port = start_mosquitto(folder)

@@ -194,17 +194,27 @@ def build(out_dir: Path) -> Path:
 
 
 def record(path: Path) -> None:
-    """Add the kernel modules' source hashes to the build manifest (``livematch.native``)."""
-    try:
-        data = json.loads(_MANIFEST.read_text())
-    except FileNotFoundError:
-        data = {}
-    data["kernels"] = {
+    """Add the kernel modules' source hashes to the build manifest (``livematch.native``).
+
+    The source tree's manifest, and the one beside the extension when that is another
+    directory (a wheel's build tree, which ``build_py`` filled before ``build_ext``).
+    """
+    kernels = {
         name: hashlib.sha256(
             (_PACKAGE.parent / (name.replace(".", "/") + ".py")).read_bytes()).hexdigest()
         for name in kernel_modules()}
-    data["kernels_file"] = path.name
-    _MANIFEST.write_text(json.dumps(data, indent=1) + "\n")
+    targets = [_MANIFEST]
+    beside = path.parent / _MANIFEST.name
+    if beside.exists() and beside.resolve() != _MANIFEST.resolve():
+        targets.append(beside)
+    for manifest in targets:
+        try:
+            data = json.loads(manifest.read_text())
+        except FileNotFoundError:
+            data = {}
+        data["kernels"] = kernels
+        data["kernels_file"] = path.name
+        manifest.write_text(json.dumps(data, indent=1) + "\n")
 
 
 def main(argv: list[str] | None = None) -> int:
