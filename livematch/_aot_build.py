@@ -123,6 +123,11 @@ def signatures_in_use() -> dict[str, tuple[Signature, ...]]:
     return out
 
 
+def _entry(key: str, sigs: tuple[Signature, ...]) -> str:
+    """One kernel's line of ``_aot_exports.py`` (long lines: the file is generated)."""
+    return f"    {key!r}: {sigs!r},"
+
+
 def write_exports() -> None:
     """Rewrite ``_aot_exports.py`` from :func:`signatures_in_use`.
 
@@ -140,14 +145,7 @@ def write_exports() -> None:
              "first signature that fits its arguments.",
              '"""', "", "from __future__ import annotations", "",
              "EXPORTS: dict[str, tuple[tuple[str, tuple[str, ...]], ...]] = {"]
-    for key, sigs in signatures_in_use().items():
-        lines.append(f"    {key!r}: (")
-        for ret, args in sigs:
-            lines.append(f"        ({ret!r},")
-            lines.append("         (")
-            lines.extend(f"            {a!r}," for a in args)
-            lines.append("        )),")
-        lines.append("    ),")
+    lines.extend(_entry(key, sigs) for key, sigs in signatures_in_use().items())
     lines.append("}")
     _EXPORTS_FILE.write_text("\n".join(lines) + "\n")
 
