@@ -7,8 +7,8 @@ What the extension is for and how a process picks it: :mod:`livematch.core._jit`
 
 Which kernels and with which signatures: :data:`livematch.core._aot_exports.EXPORTS`,
 the kernels numba's JIT compiles when the service warms up
-(:func:`livematch.pipeline.prepare_kernels`), each with the one signature the callers
-use (the tests check that list against the JIT: ``tests/test_aot_kernels.py``). Each is
+(:func:`livematch.pipeline.prepare_kernels`), each with every signature the JIT compiled
+it for (the tests check that list against the JIT: ``tests/test_aot_kernels.py``). Each is
 exported through a one-line wrapper that calls the kernel itself, so the kernel keeps
 its own compile options (``error_model="numpy"``: a division by zero gives inf or nan
 as under the JIT, not an exception; pycc would compile an exported body with Python's

@@ -84,8 +84,13 @@ def kernels_choice() -> tuple[ModuleType | None, bool]:
     (None, False): numba's JIT. The second value is whether every call's arguments are
     checked first (``KERNELS_ENV`` ``checked``). numba's JIT when asked for, when the
     process imports livematch from source, or when the extension is missing or stale.
+
+    Raises:
+        ValueError: ``KERNELS_ENV`` has another value (named, with the ones it takes).
     """
     want = os.environ.get(KERNELS_ENV, "")
+    if want not in ("", "jit", "checked"):
+        raise ValueError(f"{KERNELS_ENV}={want!r}: expected 'jit', 'checked' or nothing")
     if want == "jit" or pure_process() or not kernels_current():
         return None, False
     try:

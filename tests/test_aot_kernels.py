@@ -127,6 +127,14 @@ def test_checked_calls_refuse_what_the_signature_does_not_fit() -> None:
     assert len(seen) == 1
 
 
+def test_an_unknown_kernels_setting_is_refused_by_name() -> None:
+    done = subprocess.run([sys.executable, "-c", "import livematch.core._jit"], cwd=ROOT,
+                          env={**os.environ, "LIVEMATCH_KERNELS": "fast"},
+                          capture_output=True, text=True, timeout=120, check=False)
+    assert done.returncode != 0
+    assert "LIVEMATCH_KERNELS='fast': expected 'jit', 'checked' or nothing" in done.stderr
+
+
 def test_first_fitting_takes_the_first_variant_that_accepts() -> None:
     def ints(a: object) -> str:
         if not isinstance(a, int):
