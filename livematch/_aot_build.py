@@ -34,6 +34,14 @@ _EXPORTS_FILE = _PACKAGE / "core" / "_aot_exports.py"
 _MANIFEST = _PACKAGE / "core" / "_native_build.json"
 _NAME = "_aot_kernels"
 
+#: The CPU model the extension is compiled for: ``""`` is LLVM's generic model of the
+#: architecture (numba.pycc's default), baseline x86-64 (SSE2) on x86-64, so an extension
+#: built on one machine runs on any server of the same architecture (a wheel, an image).
+#: ``"host"`` would add the build machine's extensions (AVX2, FMA, ...): measured 0.4-1 %
+#: less CPU per fix on this machine (`bench/results/ab.s34-lead-cpuhost.txt`), not worth
+#: a process that dies with SIGILL on an older CPU. `bench/kernelisa.py` counts them.
+TARGET_CPU = ""
+
 #: Modules whose kernels never go into the extension: the Fréchet toolkit (numba's JIT).
 _JIT_ONLY = ("livematch.core._frechet_kernels",)
 
@@ -173,6 +181,7 @@ def build(out_dir: Path) -> Path:
     warnings.simplefilter("ignore", NumbaPendingDeprecationWarning)
     cc = CC(_NAME, source_module=__name__)
     cc.output_dir = str(out_dir)
+    cc.target_cpu = TARGET_CPU
     for key, sigs in EXPORTS.items():
         module_name, _, qualname = key.partition(":")
         module = importlib.import_module(module_name)

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import json
 import os
+import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -20,6 +21,7 @@ import pytest
 
 from livematch import native
 from livematch.core import _jit
+from tests.catalogue import bench_module
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -161,3 +163,35 @@ def test_spelling_reads_back() -> None:
         for ret, args in sigs:
             for text in (ret, *args):
                 assert _aot_build.spell(_aot_build.parse(text)) == text
+
+
+def test_isa_groups_of_known_instructions() -> None:
+    """bench/kernelisa.py's grouping on instructions whose extension the Intel SDM names
+    (vol. 2: MOVSD is SSE2, VMOVSD AVX, ROUNDSD SSE4.1, POPCNT its own CPUID bit, SHLX
+    BMI2, VFMADD231SD FMA; from memory)."""
+    group = bench_module("kernelisa").group
+    assert group("movsd", "%xmm0,(%rax)") is None
+    assert group("addsd", "%xmm1,%xmm0") is None
+    assert group("movq", "%rax,%rbx") is None
+    assert group("vmovsd", "%xmm0,(%rax)") == "avx+"
+    assert group("vfmadd231sd", "%xmm2,%xmm1,%xmm0") == "avx+"
+    assert group("vmovupd", "%ymm0,(%rax)") == "avx+"
+    assert group("roundsd", "$0x9,%xmm0,%xmm0") == "sse3-4.2"
+    assert group("popcntq", "%rax,%rax") == "bit"
+    assert group("shlxq", "%rax,%rbx,%rcx") == "bit"
+
+
+@needs_build
+@pytest.mark.skipif(shutil.which("objdump") is None, reason="binutils' objdump not installed")
+def test_the_extension_runs_on_any_x86_64_cpu() -> None:
+    """Built for the generic CPU (``_aot_build.TARGET_CPU``): baseline x86-64 only, so a
+    wheel or an image built here runs on an older server (no SIGILL)."""
+    import platform
+
+    if platform.machine() != "x86_64":
+        pytest.skip("the instruction groups are x86-64's")
+    isa = bench_module("kernelisa")
+    (path,) = isa.default_paths()
+    total, groups = isa.count(path)
+    assert total > 10_000
+    assert dict(groups) == {}, f"{path}: instructions beyond baseline x86-64: {groups}"
