@@ -183,6 +183,44 @@ def source_module(relative: str, name: str) -> ModuleType:
     return module
 
 
+def kernels_why() -> str:
+    """Why this process's kernels run as they do (``livematch.core._jit`` has chosen).
+
+    ``ahead of time`` (the extension, current), or why numba's JIT runs them:
+    ``asked`` (``KERNELS_ENV=jit``), ``from source`` (``LIVEMATCH_PURE_PYTHON``), ``not
+    built`` (no extension: a pure-Python install, or the build failed), ``stale`` (a
+    kernel module changed since the build) or ``not loadable`` (built and current, but
+    the import failed: a missing or moved file). Under the JIT a cold cache costs about
+    40 s of CPU at start, and the worker's base is some 130 MB larger.
+    """
+    from livematch.core import _jit
+
+    if _jit.mode() == "aot":
+        return "ahead of time"
+    if os.environ.get(KERNELS_ENV, "") == "jit":
+        return "asked"
+    if pure_process():
+        return "from source"
+    if not built_kernels():
+        return "not built"
+    return "stale" if not kernels_current() else "not loadable"
+
+
+def build_info() -> dict[str, str]:
+    """How this process runs livematch, as the labels of ``livematch_build_info``.
+
+    ``modules``: ``compiled`` (mypyc) or ``pure``; ``stale``: compiled modules whose
+    source changed since the build (comma-separated, empty when none); ``kernels``:
+    ``aot`` or ``jit``; ``kernels_why``: :func:`kernels_why`.
+    """
+    from livematch import __version__
+    from livematch.core import _jit
+
+    return {"version": __version__,
+            "modules": "compiled" if compiled() and not pure_process() else "pure",
+            "stale": ",".join(stale()), "kernels": _jit.mode(), "kernels_why": kernels_why()}
+
+
 def describe() -> str:
     """One line for a benchmark's header: how this process runs livematch."""
     if pure_process():
@@ -211,11 +249,12 @@ def main() -> int:
               + (f"stale: {', '.join(old)}" if old else "none stale"))
     from livematch.core import _jit
 
+    why = kernels_why()
     if _jit.mode() == "aot":
         print(f"kernels: ahead of time ({len(built_kernels())} modules, none stale)")
     else:
-        print("kernels: numba's JIT" + (" (the ahead-of-time build is stale)"
-                                        if built_kernels() and not kernels_current() else ""))
+        print(f"kernels: numba's JIT ({why}"
+              + ("; rebuild: python -m livematch._aot_build)" if why == "stale" else ")"))
     return 1 if old else 0
 
 

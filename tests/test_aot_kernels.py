@@ -195,3 +195,16 @@ def test_the_extension_runs_on_any_x86_64_cpu() -> None:
     total, groups = isa.count(path)
     assert total > 10_000
     assert dict(groups) == {}, f"{path}: instructions beyond baseline x86-64: {groups}"
+
+
+@needs_build
+def test_build_info_says_how_and_why() -> None:
+    """What ``livematch_build_info`` and ``python -m livematch.native`` report."""
+    code = "import livematch.native as n; print(sorted(n.build_info().items()))"
+    aot = _python(code, LIVEMATCH_KERNELS="")
+    assert "('kernels', 'aot')" in aot and "('kernels_why', 'ahead of time')" in aot, aot
+    assert "('modules', 'compiled')" in aot and "('stale', '')" in aot, aot
+    jit = _python(code, LIVEMATCH_KERNELS="jit")
+    assert "('kernels', 'jit')" in jit and "('kernels_why', 'asked')" in jit, jit
+    said = _python("import livematch.native as n; n.main()", LIVEMATCH_KERNELS="jit")
+    assert "kernels: numba's JIT (asked)" in said, said

@@ -20,6 +20,8 @@ from services import (
     write_config,
 )
 
+import livematch
+from livematch import native
 from livematch.mapdata.netfile import save_network
 
 pytest_plugins = ("fixtures_services",)
@@ -71,6 +73,7 @@ async def test_run_answers_healthz_while_compiling_then_ready(
                     break
             await asyncio.sleep(0.005)
         assert seen and seen[-1][2:] == (200, "ready\n"), seen[-3:]
+        metrics = await probe(port, "/metrics")
     finally:
         proc.send_signal(signal.SIGTERM)
         assert await asyncio.to_thread(proc.wait, 30) == 0
@@ -86,6 +89,14 @@ async def test_run_answers_healthz_while_compiling_then_ready(
     log = (tmp_path / "daemon.log").read_text()
     assert log.index('event="http listening"') < log.index('event="kernels ready"')
     assert log.index('event="kernels ready"') < log.index('event="network loaded"')
+    # How the worker runs, for operators: the same as this test process decides (the
+    # kernels ahead of time after scripts/test; the check of every call is not a label).
+    assert f'kernels="{native.kernels_why()}"' in log
+    assert metrics is not None and metrics[0] == 200
+    info = next(line for line in metrics[1].splitlines()
+                if line.startswith("livematch_build_info{"))
+    assert f'kernels_why="{native.kernels_why()}"' in info and info.endswith(" 1.0"), info
+    assert f'version="{livematch.__version__}"' in info and 'stale=""' in info, info
 
 
 async def test_run_stopped_while_starting_exits_cleanly(

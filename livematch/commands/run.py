@@ -33,6 +33,7 @@ from typing import TYPE_CHECKING, Any
 
 from livematch.config import DaemonConfig, load_config, parse_hostport, redact_url
 from livematch.errors import BadConfigError
+from livematch.native import build_info
 from livematch.service.http import HealthServer
 from livematch.service.logs import fields, setup_logging
 from livematch.service.metrics import Metrics
@@ -124,8 +125,17 @@ def build_pipeline(config: DaemonConfig, tap: RecordingTap | None = None, *,
         stage("compiling")
     started, cpu = time.monotonic(), time.thread_time()
     prepare_kernels()  # what Pipeline would do first; timed and logged on its own here
+    how = build_info()
     log.info("kernels ready", extra=fields(seconds=round(time.monotonic() - started, 1),
-                                           cpu_s=round(time.thread_time() - cpu, 1)))
+                                           cpu_s=round(time.thread_time() - cpu, 1),
+                                           kernels=how["kernels_why"]))
+    if how["modules"] == "compiled" and how["kernels_why"] in ("stale", "not loadable"):
+        log.warning("the kernels compiled ahead of time are %s: numba's JIT runs them "
+                    "(slower start, a larger base); rebuild with `python -m "
+                    "livematch._aot_build`", how["kernels_why"])
+    if how["stale"]:
+        log.warning("compiled modules older than their source run the old code: %s; "
+                    "reinstall (`pip install -e .`)", how["stale"])
     if stage is not None:
         stage("network")
     network = open_network(config.inputs.network)
@@ -201,6 +211,7 @@ async def _serve(config: DaemonConfig, tap: RecordingTap | None) -> None:
             await http.close()
         return
     start.enter("connecting")
+    metrics.build.info(build_info())
     daemon = Daemon(config, built, metrics=metrics, http=http)
     for sig in (signal.SIGTERM, signal.SIGINT):
         loop.add_signal_handler(sig, daemon.request_stop)

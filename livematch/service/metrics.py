@@ -33,6 +33,7 @@ livematch_shard_buffer_dropped_total                  kept fixes dropped (buffer
 livematch_shard_replayed_total                        kept fixes replayed after a takeover
 livematch_shard_buffer_messages                       fixes currently kept for replays
 livematch_start_seconds{stage}                        wall time of each start stage
+livematch_build_info{version,modules,stale,kernels,...}  how this worker runs (compiled, kernels)
 ====================================================  =======================================
 
 Example:
@@ -48,7 +49,14 @@ import time
 from bisect import bisect_left
 from collections.abc import Iterator, Sequence
 
-from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, generate_latest
+from prometheus_client import (
+    CollectorRegistry,
+    Counter,
+    Gauge,
+    Histogram,
+    Info,
+    generate_latest,
+)
 from prometheus_client.core import HistogramMetricFamily, Metric
 from prometheus_client.registry import Collector
 from prometheus_client.utils import floatToGoString
@@ -175,6 +183,12 @@ class Metrics:
                                    "Wall time of each stage of the start (compiling: the "
                                    "matcher's kernels, network: road map, routes, fences), "
                                    "seconds.", ["stage"], registry=r)
+
+        self.build = Info("livematch_build",
+                          "How this worker runs livematch (livematch.native.build_info): "
+                          "compiled modules or pure Python, stale compiled modules, the "
+                          "kernels ahead of time (aot) or under numba's JIT, and why.",
+                          registry=r)
 
     def render(self) -> bytes:
         """The registry in the Prometheus text exposition format."""
