@@ -45,3 +45,24 @@ def test_metrics_processing_and_lag_render_as_histograms() -> None:
     assert "livematch_processing_seconds_count 1.0" in text
     assert "livematch_fix_to_publish_lag_seconds_sum 2.0" in text
     assert "# TYPE livematch_fix_to_publish_lag_seconds histogram" in text
+
+
+def test_every_metric_is_documented() -> None:
+    """Each metric the daemon registers is in the README's table and the module's list,
+    under the name Prometheus exposes (``_total`` on counters, ``_info`` on info metrics:
+    the OpenMetrics conventions prometheus_client follows)."""
+    from pathlib import Path
+
+    import livematch.service.metrics as module
+
+    root = Path(__file__).resolve().parent.parent
+    readme = (root / "README.md").read_text()
+    listed = (module.__doc__ or "").split()
+    suffix = {"counter": "_total", "info": "_info"}
+    names = {family.name + suffix.get(family.type, "")
+             for family in Metrics().registry.collect()}
+    assert len(names) > 30
+    for name in sorted(names):
+        assert f"`{name}" in readme, f"{name}: not in README.md's metrics table"
+        assert any(word.split("{")[0] == name for word in listed), \
+            f"{name}: not in livematch/service/metrics.py's list"

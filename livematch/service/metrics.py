@@ -32,8 +32,15 @@ livematch_shard_buffered_total                        fixes kept for a replay af
 livematch_shard_buffer_dropped_total                  kept fixes dropped (buffer full)
 livematch_shard_replayed_total                        kept fixes replayed after a takeover
 livematch_shard_buffer_messages                       fixes currently kept for replays
+livematch_fixes_late_total                            fixes matched more than feed.max_age_s late
+livematch_fixes_shed_total                            messages dropped from a full intake queue
+livematch_intake_queue_depth                          messages waiting to be matched now
+livematch_intake_queue_peak                           messages waiting to be matched at most
+livematch_rejects_suppressed_total{why}               rejects counted but not published
+livematch_resident_memory_bytes                       resident set size of the process (Linux)
+livematch_gc_pause_seconds{generation}                garbage collections (histogram)
 livematch_start_seconds{stage}                        wall time of each start stage
-livematch_build_info{version,modules,stale,kernels,...}  how this worker runs (compiled, kernels)
+livematch_build_info{version,modules,kernels,...}       how this worker runs (compiled, kernels)
 ====================================================  =======================================
 
 Example:
