@@ -40,7 +40,7 @@ livematch_rejects_suppressed_total{why}               rejects counted but not pu
 livematch_resident_memory_bytes                       resident set size of the process (Linux)
 livematch_gc_pause_seconds{generation}                garbage collections (histogram)
 livematch_start_seconds{stage}                        wall time of each start stage
-livematch_build_info{version,modules,kernels,...}       how this worker runs (compiled, kernels)
+livematch_build_info{version,modules,kernels,...}     how this worker runs (compiled, kernels)
 ====================================================  =======================================
 
 Example:
