@@ -148,3 +148,16 @@ def test_network_info_subprocess_json(tmp_path: Path) -> None:
     )
     assert bad.returncode == 2
     assert bad.stderr == f"livematch: error: {tmp_path / 'x.osm'}: no such file\n"
+
+
+def test_network_build_for_buses(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """--transport-mode bus reaches the import, is recorded and shown by network info."""
+    out = tmp_path / "bus.lmnet"
+    assert main(["network", "build", str(DATA / "tiny_roads.osm"), "-o", str(out),
+                 "--transport-mode", "bus"]) == 0
+    capsys.readouterr()
+    opened = load_network_detailed(out)
+    assert opened.options is not None and opened.options.transport_mode == "bus"
+    assert main(["network", "info", str(out)]) == 0
+    assert "closed to buses" in capsys.readouterr().out
+    assert info_json(capsys, str(out))["options"]["transport_mode"] == "bus"

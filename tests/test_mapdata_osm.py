@@ -17,7 +17,7 @@ from pyproj import Geod
 from livematch.errors import BadNetworkError
 from livematch.mapdata.build import BACKWARD, BOTH, FORWARD
 from livematch.mapdata.options import ImportOptions
-from livematch.mapdata.osm import closed_to_motor_vehicles, read_osm, travel_direction
+from livematch.mapdata.osm import closed_to, read_osm, travel_direction
 from livematch.mapdata.summary import physical_length_by_class
 
 DATA = Path(__file__).parent / "data"
@@ -315,7 +315,7 @@ def test_travel_direction_rules(tags: dict[str, str], expected: int) -> None:
 )
 def test_closed_to_motor_vehicles_rules(tags: dict[str, str], closed: bool) -> None:
     """The most specific access tag present decides."""
-    assert closed_to_motor_vehicles(tags) is closed
+    assert closed_to(tags) is closed
 
 
 def write(tmp_path: Path, name: str, text: str) -> Path:
@@ -353,3 +353,112 @@ def test_read_osm_missing_file(tmp_path: Path) -> None:
     """A missing path is refused, naming it."""
     with pytest.raises(BadNetworkError, match=r"nope\.osm: no such file"):
         read_osm(tmp_path / "nope.osm")
+
+
+# The bus transport mode. Expected values follow the OpenStreetMap wiki's Key:access
+# page (the hierarchy access > vehicle > motor_vehicle > psv > bus: the most specific
+# key present decides) and its one-way exceptions oneway:bus / oneway:psv (from memory).
+@pytest.mark.parametrize(
+    ("tags", "motor_vehicle", "bus"),
+    [
+        ({"access": "no", "psv": "yes"}, True, False),            # a bus gate
+        ({"access": "no", "bus": "designated"}, True, False),
+        ({"motor_vehicle": "no", "psv": "yes"}, True, False),
+        ({"vehicle": "no", "bus": "yes"}, True, False),
+        ({"access": "no", "psv": "no", "bus": "yes"}, True, False),  # bus beats psv
+        ({"access": "yes", "bus": "no"}, False, True),
+        ({"psv": "no"}, False, True),
+        ({"access": "private"}, True, True),
+        ({"motor_vehicle": "no"}, True, True),
+        ({}, False, False),
+    ],
+)
+def test_closed_to_bus_rules(tags: dict[str, str], motor_vehicle: bool, bus: bool) -> None:
+    assert closed_to(tags) is motor_vehicle
+    assert closed_to(tags, "motor_vehicle") is motor_vehicle
+    assert closed_to(tags, "bus") is bus
+
+
+@pytest.mark.parametrize(
+    ("tags", "motor_vehicle", "bus"),
+    [
+        ({"highway": "residential", "oneway": "yes", "oneway:bus": "no"}, FORWARD, BOTH),
+        ({"highway": "residential", "oneway": "yes", "oneway:psv": "no"}, FORWARD, BOTH),
+        ({"highway": "residential", "oneway": "-1", "oneway:bus": "no"}, BACKWARD, BOTH),
+        ({"highway": "residential", "oneway:bus": "yes"}, BOTH, FORWARD),
+        ({"highway": "residential", "oneway": "yes", "oneway:psv": "no",
+          "oneway:bus": "yes"}, FORWARD, FORWARD),                 # bus beats psv
+        ({"highway": "tertiary", "junction": "roundabout", "oneway:bus": "no"}, FORWARD, BOTH),
+        ({"highway": "busway"}, BOTH, BOTH),
+        ({"highway": "residential", "oneway": "yes"}, FORWARD, FORWARD),
+    ],
+)
+def test_travel_direction_bus_rules(tags: dict[str, str], motor_vehicle: int,
+                                    bus: int) -> None:
+    assert travel_direction(tags) == motor_vehicle
+    assert travel_direction(tags, "bus") == bus
+
+
+def test_read_osm_bus_mode_adds_the_ways_open_to_buses_only() -> None:
+    """Helsinki (open data above): the bus network is the motor vehicle network plus
+    exactly the ways a bus may take and a motor vehicle may not, counted here with
+    osmium alone and the wiki's rules written out again (bus terminals, bus gates)."""
+    path = EXTRACTS["Helsinki.osm.pbf"]
+    bus_only = set()
+    for way in osmium.FileProcessor(str(path), osmium.osm.WAY).with_filter(
+            osmium.filter.KeyFilter("highway")):
+        tags = {t.k: t.v for t in way.tags}
+        if tags["highway"] not in DRIVABLE | {"busway", "bus_guideway"}:
+            continue
+
+        def rule(keys: tuple[str, ...], tags: dict[str, str] = tags) -> str:
+            return next((tags[k] for k in keys if k in tags), "yes")
+
+        general = rule(("motor_vehicle", "vehicle", "access"))
+        bus = rule(("bus", "psv", "motor_vehicle", "vehicle", "access"))
+        if bus not in ("no", "private") and (general in ("no", "private")
+                                             or tags["highway"] not in DRIVABLE):
+            bus_only.add(way.id)
+    assert len(bus_only) >= 20  # the extract's bus terminals and gates
+    plain, plain_stats = read_osm(path, ImportOptions(merge_coincident=False))
+    buses, stats = read_osm(path, ImportOptions(merge_coincident=False,
+                                                transport_mode="bus"))
+    ways_plain, ways_bus = set(plain.seg_way.tolist()), set(buses.seg_way.tolist())
+    assert ways_plain < ways_bus
+    assert ways_bus - ways_plain <= bus_only
+    # the rest of them lie outside the clipped extract: left with no segment
+    assert len(bus_only - ways_bus) == stats.degenerate - plain_stats.degenerate
+    assert plain_stats.excluded_access - stats.excluded_access == len(bus_only)
+    assert stats.excluded_class == plain_stats.excluded_class  # no busway in this extract
+
+
+def test_import_options_transport_mode_round_trip() -> None:
+    options = ImportOptions(transport_mode="bus")
+    assert ImportOptions.from_json(options.to_json()) == options
+    old = ImportOptions().to_json()
+    del old["transport_mode"]  # a network file written before the option existed
+    assert ImportOptions.from_json(old).transport_mode == "motor_vehicle"
+    with pytest.raises(BadNetworkError, match="transport mode 'tram'"):
+        ImportOptions(transport_mode="tram")
+
+
+BUS_XML = """<osm version="0.6">
+  <node id="1" lat="60.0000" lon="25.0000"/><node id="2" lat="60.0010" lon="25.0000"/>
+  <node id="3" lat="60.0020" lon="25.0000"/><node id="4" lat="60.0020" lon="25.0020"/>
+  <way id="10"><nd ref="1"/><nd ref="2"/>
+    <tag k="highway" v="residential"/><tag k="oneway" v="yes"/><tag k="oneway:bus" v="no"/></way>
+  <way id="11"><nd ref="2"/><nd ref="3"/><tag k="highway" v="busway"/></way>
+  <way id="12"><nd ref="3"/><nd ref="4"/>
+    <tag k="highway" v="service"/><tag k="access" v="no"/><tag k="psv" v="yes"/></way>
+</osm>
+"""
+
+
+def test_read_osm_bus_mode_on_a_small_map(tmp_path: Path) -> None:
+    """A contraflow bus lane, a busway and a bus gate: only buses get them."""
+    path = write(tmp_path, "bus.osm", BUS_XML)
+    plain, _ = read_osm(path)
+    assert sorted(ids_of(plain)) == [(10, 1, 2)]
+    buses, _ = read_osm(path, ImportOptions(transport_mode="bus"))
+    assert sorted(ids_of(buses)) == [(10, 1, 2), (10, 2, 1), (11, 2, 3), (11, 3, 2),
+                                     (12, 3, 4), (12, 4, 3)]

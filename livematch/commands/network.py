@@ -15,7 +15,7 @@ from typing import Any
 
 from livematch.errors import BadNetworkError
 from livematch.mapdata.netfile import open_network_detailed, save_network
-from livematch.mapdata.options import DEFAULT_HIGHWAYS, ImportOptions
+from livematch.mapdata.options import DEFAULT_HIGHWAYS, TRANSPORT_MODES, ImportOptions
 from livematch.mapdata.summary import network_summary
 
 
@@ -49,6 +49,10 @@ def _add_import_options(parser: argparse.ArgumentParser) -> None:
     )
     parser.add_argument("--no-service", action="store_true",
                         help="leave out highway=service (driveways, parking aisles)")
+    parser.add_argument("--transport-mode", choices=TRANSPORT_MODES, default="motor_vehicle",
+                        help="whose roads: motor_vehicle (default) or bus (also ways open "
+                             "to buses only: bus gates and terminals, highway=busway, "
+                             "contraflow bus lanes)")
     parser.add_argument("--projection", choices=("local", "utm"), default="local",
                         help="local azimuthal equidistant (default) or the UTM zone")
     parser.add_argument("--epsg", type=int, metavar="N",
@@ -62,7 +66,8 @@ def _options(args: argparse.Namespace) -> ImportOptions:
         if not highways:
             raise BadNetworkError(f"--highways {args.highways!r} names no class")
     return ImportOptions(highways=highways, include_service=not args.no_service,
-                         projection=args.projection, epsg=args.epsg)
+                         projection=args.projection, epsg=args.epsg,
+                         transport_mode=args.transport_mode)
 
 
 def _build(args: argparse.Namespace) -> int:
@@ -95,6 +100,10 @@ def _info(args: argparse.Namespace) -> int:
     return 0
 
 
+#: How ``network info`` names each transport mode's vehicles.
+_PLURAL = {"motor_vehicle": "motor vehicles", "bus": "buses"}
+
+
 def _render(name: str, facts: dict[str, Any]) -> str:
     lines = [
         f"network     {name} ({facts['kind']}; {facts['source']})",
@@ -114,13 +123,14 @@ def _render(name: str, facts: dict[str, Any]) -> str:
         lines.append(f"  {cls:<16}{metres / 1000:10.3f}")
     lines.append(f"  {'total':<16}{facts['length_m_total'] / 1000:10.3f}")
     stats = facts.get("import")
+    mode = (facts.get("options") or {}).get("transport_mode", "motor_vehicle")
     if stats and stats["source_format"] == "geojson":
         lines.append(f"import      {stats['ways_seen']} features, {stats['ways_kept']} kept")
     elif stats:
         lines.append(
             f"import      {stats['ways_seen']} seen, {stats['ways_kept']} kept, "
             f"{stats['excluded_class']} other classes, {stats['excluded_access']} closed to "
-            f"motor vehicles, {stats['ways_clipped']} clipped at "
+            f"{_PLURAL.get(mode, mode)}, {stats['ways_clipped']} clipped at "
             f"{stats['missing_node_refs']} missing nodes, {stats['degenerate']} left with "
             "no segment"
         )

@@ -24,6 +24,16 @@ DEFAULT_HIGHWAYS: tuple[str, ...] = (
 
 PROJECTION_KINDS = ("local", "utm")
 
+#: The transport modes an import can build the network for (OpenStreetMap's access
+#: keys, https://wiki.openstreetmap.org/wiki/Key:access): ``motor_vehicle``, any motor
+#: vehicle (delivery vans, cars, and buses on the roads everyone drives); ``bus``, a bus
+#: in public service, which may also take ways open to buses only (bus terminals, bus
+#: gates, ``highway=busway``) and their contraflow lanes.
+TRANSPORT_MODES = ("motor_vehicle", "bus")
+
+#: Highway classes only a bus may use, kept in addition for the ``bus`` mode.
+BUS_HIGHWAYS: tuple[str, ...] = ("busway", "bus_guideway")
+
 
 @dataclass(frozen=True)
 class ImportOptions:
@@ -41,12 +51,18 @@ class ImportOptions:
             road drawn twice over the same nodes) into one, reporting the way of the more
             important road class (:func:`livematch.core.network.merge_coincident`).
             On by default; False keeps the map as drawn (for comparisons).
+        transport_mode: whose roads (:data:`TRANSPORT_MODES`): ``motor_vehicle`` (the
+            default) or ``bus``, which also keeps :data:`BUS_HIGHWAYS` and reads the bus
+            access and one-way keys first (:mod:`livematch.mapdata.osm`). One network
+            serves one mode: a mixed fleet runs a daemon (or worker group) per mode.
 
     Example:
         >>> "service" in ImportOptions(include_service=False).kept_highways()
         False
         >>> ImportOptions(highways=("service",), include_service=False).kept_highways()
         frozenset()
+        >>> sorted(ImportOptions(highways=("primary",), transport_mode="bus").kept_highways())
+        ['bus_guideway', 'busway', 'primary']
     """
 
     highways: tuple[str, ...] = DEFAULT_HIGHWAYS
@@ -54,8 +70,12 @@ class ImportOptions:
     projection: str = "local"
     epsg: int | None = None
     merge_coincident: bool = True
+    transport_mode: str = "motor_vehicle"
 
     def __post_init__(self) -> None:
+        if self.transport_mode not in TRANSPORT_MODES:
+            raise BadNetworkError(f"unknown transport mode {self.transport_mode!r}; use "
+                                  + " or ".join(repr(m) for m in TRANSPORT_MODES))
         if self.projection not in PROJECTION_KINDS:
             raise BadNetworkError(
                 f"unknown projection kind {self.projection!r}; use 'local' or 'utm'"
@@ -65,8 +85,14 @@ class ImportOptions:
         object.__setattr__(self, "highways", tuple(self.highways))
 
     def kept_highways(self) -> frozenset[str]:
-        """The highway classes actually kept (``highways`` minus service when excluded)."""
+        """The highway classes actually kept.
+
+        ``highways``, with the bus-only classes for the ``bus`` mode, minus ``service``
+        when excluded.
+        """
         kept = set(self.highways)
+        if self.transport_mode == "bus":
+            kept.update(BUS_HIGHWAYS)
         if not self.include_service:
             kept.discard("service")
         return frozenset(kept)
@@ -88,6 +114,8 @@ class ImportOptions:
             # files written before the option existed: their networks are merged on load
             # (see livematch.mapdata.netfile), so the default describes them too
             merge_coincident=bool(data.get("merge_coincident", True)),
+            # files written before the option existed were built for motor vehicles
+            transport_mode=str(data.get("transport_mode", "motor_vehicle")),
         )
 
 
@@ -100,7 +128,8 @@ class ImportStats:
         ways_seen: OSM ways with a ``highway`` tag, or GeoJSON features.
         ways_kept: ways/features that gave at least one segment.
         excluded_class: ways whose highway class is not kept.
-        excluded_access: ways closed to motor vehicles (see :mod:`livematch.mapdata.osm`).
+        excluded_access: ways closed to the import's transport mode (see
+            :mod:`livematch.mapdata.osm`).
         ways_clipped: kept ways that referenced nodes missing from the file (typical of
             extracts cut at a bounding box); only their parts between present nodes are kept.
         missing_node_refs: number of such missing node references.

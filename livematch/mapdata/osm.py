@@ -9,17 +9,21 @@ Rules, each a pure function of a way's tags so that they can be checked alone:
 * **Class.** A way is kept when its ``highway`` value is in
   :attr:`ImportOptions.highways` (default :data:`DEFAULT_HIGHWAYS`); ``service`` can be
   dropped with ``include_service=False``.
-* **Access** (:func:`closed_to_motor_vehicles`). The most specific of ``motor_vehicle``,
+* **Access** (:func:`closed_to`). The most specific of ``motor_vehicle``,
   ``vehicle``, ``access`` that the way carries decides: the way is left out when that
   value is ``no`` or ``private``; any other value (``yes``, ``designated``,
   ``destination``, ``permissive``...) keeps it. So ``access=no`` +
   ``motor_vehicle=yes`` is kept, ``vehicle=no`` alone is dropped, ``access=private`` +
-  ``motor_vehicle=destination`` is kept.
+  ``motor_vehicle=destination`` is kept. For the ``bus`` transport mode
+  (:attr:`ImportOptions.transport_mode`) ``bus`` and then ``psv`` come first: a bus
+  gate or terminal (``access=no`` + ``psv=yes``) is kept, and ``highway=busway`` /
+  ``bus_guideway`` are kept classes.
 * **Direction** (:func:`travel_direction`). ``oneway=yes|1|true`` forward only;
   ``oneway=-1|reverse`` backward only; ``oneway=no|0|false`` both; ``reversible`` and
   ``alternating`` both (each direction is legal at some time). Without a recognised
   ``oneway`` value, ``junction=roundabout|circular`` and ``highway=motorway|motorway_link``
-  are forward only, everything else both ways.
+  are forward only, everything else both ways. For a bus ``oneway:bus``, then
+  ``oneway:psv``, win over ``oneway`` (contraflow bus lanes).
 * **Shape.** Every node of a way is a vertex; a repeated consecutive node reference is
   skipped. A node that the file does not contain (extracts cut at a bounding box keep
   ways whose nodes lie outside) splits the way there: the runs of present nodes are kept,
@@ -56,7 +60,7 @@ __all__ = [
     "DEFAULT_HIGHWAYS",
     "ImportOptions",
     "ImportStats",
-    "closed_to_motor_vehicles",
+    "closed_to",
     "read_osm",
     "travel_direction",
 ]
@@ -66,12 +70,21 @@ _ONEWAY_BACKWARD = frozenset({"-1", "reverse"})
 _ONEWAY_BOTH = frozenset({"no", "0", "false", "reversible", "alternating"})
 _IMPLIED_ONEWAY_HIGHWAYS = frozenset({"motorway", "motorway_link"})
 _IMPLIED_ONEWAY_JUNCTIONS = frozenset({"roundabout", "circular"})
-_ACCESS_KEYS = ("motor_vehicle", "vehicle", "access")  # most specific first
+# Access and one-way keys per transport mode, most specific first (the access
+# hierarchy access > vehicle > motor_vehicle > psv > bus of the OpenStreetMap wiki's
+# Key:access page, and its oneway:bus / oneway:psv one-way exceptions; from memory).
+_ACCESS_KEYS = {"motor_vehicle": ("motor_vehicle", "vehicle", "access"),
+                "bus": ("bus", "psv", "motor_vehicle", "vehicle", "access")}
+_ONEWAY_KEYS = {"motor_vehicle": ("oneway",), "bus": ("oneway:bus", "oneway:psv", "oneway")}
 _CLOSED_VALUES = frozenset({"no", "private"})
 
 
-def travel_direction(tags: Mapping[str, str]) -> int:
-    """Which way traffic may go along a way, from its tags.
+def travel_direction(tags: Mapping[str, str], mode: str = "motor_vehicle") -> int:
+    """Which way traffic of ``mode`` (``motor_vehicle`` or ``bus``) may go along a way.
+
+    The most specific one-way key the way carries decides: for a bus ``oneway:bus``,
+    then ``oneway:psv``, then ``oneway`` (a bus lane against a one-way street:
+    ``oneway=yes`` + ``oneway:bus=no``).
 
     Returns :data:`~livematch.mapdata.build.FORWARD` (drawing order),
     :data:`~livematch.mapdata.build.BACKWARD` or :data:`~livematch.mapdata.build.BOTH`.
@@ -84,8 +97,11 @@ def travel_direction(tags: Mapping[str, str]) -> int:
     1
     >>> travel_direction({"highway": "motorway", "oneway": "no"})
     0
+    >>> street = {"highway": "residential", "oneway": "yes", "oneway:bus": "no"}
+    >>> travel_direction(street), travel_direction(street, "bus")
+    (1, 0)
     """
-    oneway = tags.get("oneway")
+    oneway = next((tags[k] for k in _ONEWAY_KEYS[mode] if k in tags), None)
     if oneway in _ONEWAY_FORWARD:
         return FORWARD
     if oneway in _ONEWAY_BACKWARD:
@@ -98,17 +114,23 @@ def travel_direction(tags: Mapping[str, str]) -> int:
     return BOTH
 
 
-def closed_to_motor_vehicles(tags: Mapping[str, str]) -> bool:
-    """True when the most specific access tag present says ``no`` or ``private``.
+def closed_to(tags: Mapping[str, str], mode: str = "motor_vehicle") -> bool:
+    """Whether a way is closed to ``mode`` (``motor_vehicle`` or ``bus``).
 
-    >>> closed_to_motor_vehicles({"access": "no", "motor_vehicle": "yes"})
+    True when the most specific access tag of the mode present says ``no`` or
+    ``private`` (for a bus: ``bus``, ``psv``, then the motor vehicle keys).
+
+    >>> closed_to({"access": "no", "motor_vehicle": "yes"})
     False
-    >>> closed_to_motor_vehicles({"vehicle": "no"})
+    >>> closed_to({"vehicle": "no"})
     True
-    >>> closed_to_motor_vehicles({})
+    >>> closed_to({})
     False
+    >>> gate = {"highway": "service", "access": "no", "psv": "yes"}   # a bus gate
+    >>> closed_to(gate), closed_to(gate, "bus")
+    (True, False)
     """
-    for key in _ACCESS_KEYS:
+    for key in _ACCESS_KEYS[mode]:
         value = tags.get(key)
         if value is not None:
             return value in _CLOSED_VALUES
@@ -153,7 +175,7 @@ def read_osm(
             if tags["highway"] not in kept_classes:
                 stats.excluded_class += 1
                 continue
-            if closed_to_motor_vehicles(tags):
+            if closed_to(tags, options.transport_mode):
                 stats.excluded_access += 1
                 continue
             refs = drop_consecutive_repeats([n.ref for n in way.nodes])
@@ -193,7 +215,7 @@ def read_osm(
         road = len(roads)
         roads.append({"name": tags.get("name"), "ref": tags.get("ref"),
                       "highway": tags["highway"]})
-        direction = travel_direction(tags)
+        direction = travel_direction(tags, options.transport_mode)
         chains.extend(
             Chain(way=way_id, road=road, nodes=np.asarray(run, dtype=np.int64),
                   direction=direction)
